@@ -1,0 +1,1 @@
+"""Command-line interface. Only this package talks to the terminal; the core never imports it."""

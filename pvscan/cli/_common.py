@@ -1,0 +1,117 @@
+"""Shared CLI helpers: logging set-up, error handling, progress bars."""
+from __future__ import annotations
+
+import functools
+import logging
+import sys
+import traceback
+import warnings
+
+import click
+
+from pvscan.errors import PvscanError, PvscanWarning
+
+EXIT_OK = 0
+EXIT_INPUT = 1
+EXIT_INTERNAL = 3
+
+
+def configure_logging(verbosity: int) -> None:
+    level = logging.WARNING
+    if verbosity >= 2:
+        level = logging.DEBUG
+    elif verbosity == 1:
+        level = logging.INFO
+    elif verbosity < 0:
+        level = logging.ERROR
+    logging.basicConfig(level=level, format="pvscan: %(levelname)s: %(message)s", force=True)
+    logging.getLogger("pvscan").setLevel(level)
+
+
+def verbosity() -> int:
+    ctx = click.get_current_context(silent=True)
+    while ctx is not None:
+        if ctx.obj and "verbosity" in ctx.obj:
+            return ctx.obj["verbosity"]
+        ctx = ctx.parent
+    return 0
+
+
+def echo(msg: str = "", *, err: bool = False, level: int = 0) -> None:
+    """Print ``msg`` unless the verbosity is below ``level`` (0 = normal, 1 = -v)."""
+    if verbosity() >= level:
+        click.echo(msg, err=err)
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None):
+    if issubclass(category, PvscanWarning):
+        click.echo(f"pvscan: warning: {message}", err=True)
+    else:
+        if verbosity() >= 1:
+            click.echo(f"pvscan: warning: {category.__name__}: {message}", err=True)
+
+
+def handle_errors(func):
+    """Run a command body; turn PvscanError into a one-line message and exit code 1."""
+
+    @functools.wraps(func)
+    def wrapper(*args, **kwargs):
+        old = warnings.showwarning
+        warnings.showwarning = _show_warning
+        try:
+            return func(*args, **kwargs)
+        except PvscanError as exc:
+            msg = " ".join(str(exc).split())
+            click.echo(f"pvscan: error: {msg}", err=True)
+            sys.exit(EXIT_INPUT)
+        except (click.exceptions.Exit, click.ClickException, click.Abort, SystemExit):
+            raise
+        except KeyboardInterrupt:
+            click.echo("pvscan: interrupted; nothing was written", err=True)
+            sys.exit(130)
+        except Exception as exc:  # a bug: short message, traceback only with -v
+            if verbosity() >= 1:
+                traceback.print_exc()
+            msg = " ".join(str(exc).split())
+            click.echo(f"pvscan: internal error: {type(exc).__name__}: {msg} (run with -v for details)",
+                       err=True)
+            sys.exit(EXIT_INTERNAL)
+        finally:
+            warnings.showwarning = old
+
+    return wrapper
+
+
+class Progress:
+    """A progress callback ``progress(stage, done, total)`` backed by click progress bars.
+
+    Library code receives this as a plain callable (or None) and never prints itself.
+    """
+
+    def __init__(self, enabled: bool = True):
+        self.enabled = enabled and verbosity() >= 0 and sys.stderr.isatty()
+        self._bars: dict[str, object] = {}
+        self._done: dict[str, int] = {}
+
+    def __call__(self, stage: str, done: int, total: int) -> None:
+        if not self.enabled:
+            return
+        bar = self._bars.get(stage)
+        if bar is None:
+            bar = click.progressbar(length=max(total, 1), label=f"{stage:<14}", file=sys.stderr,
+                                    show_eta=True, show_percent=True)
+            bar.__enter__()
+            self._bars[stage] = bar
+            self._done[stage] = 0
+        step = done - self._done[stage]
+        if step > 0:
+            bar.update(step)
+            self._done[stage] = done
+        if done >= total:
+            bar.__exit__(None, None, None)
+            self._bars.pop(stage, None)
+
+    def close(self) -> None:
+        for bar in list(self._bars.values()):
+            bar.__exit__(None, None, None)
+        self._bars.clear()

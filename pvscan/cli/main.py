@@ -1,0 +1,61 @@
+"""The ``pvscan`` click group. Each command lives in its own module and is imported lazily,
+so ``pvscan --help`` stays fast and one broken command cannot break the others.
+
+Exit codes (documented in the README):
+    0  success
+    1  bad input or a failed check (a one-line ``pvscan: error: ...`` on stderr)
+    2  usage error (unknown option, missing argument; click's own)
+    3  unexpected internal error (a bug: please report it with ``-v`` output)
+"""
+from __future__ import annotations
+
+import importlib
+
+import click
+
+from pvscan import __version__
+from pvscan.cli._common import configure_logging
+
+# command name -> "module:attribute"
+COMMANDS = {
+    "inspect": "pvscan.cli.inspect:inspect_cmd",
+    "simulate": "pvscan.cli.simulate:simulate_cmd",
+    "evaluate": "pvscan.cli.evaluate:evaluate_cmd",
+    "align": "pvscan.cli.align:align_cmd",
+    "report": "pvscan.cli.report:report_cmd",
+    "history": "pvscan.cli.history:history_group",
+}
+
+
+class LazyGroup(click.Group):
+    def list_commands(self, ctx):
+        return sorted(COMMANDS)
+
+    def get_command(self, ctx, cmd_name):
+        target = COMMANDS.get(cmd_name)
+        if target is None:
+            return None
+        module_name, attr = target.split(":")
+        module = importlib.import_module(module_name)
+        return getattr(module, attr)
+
+
+@click.group(cls=LazyGroup, context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="pvscan")
+@click.option("-v", "--verbose", count=True, help="More messages (-vv for debug).")
+@click.option("-q", "--quiet", count=True, help="Fewer messages (no progress bars).")
+@click.pass_context
+def cli(ctx, verbose, quiet):
+    """pvscan: find, classify and rank faulty PV modules in drone thermal orthomosaics."""
+    ctx.ensure_object(dict)
+    ctx.obj["verbosity"] = verbose - quiet
+    configure_logging(verbose - quiet)
+
+
+def main(argv=None):
+    """Console-script entry point."""
+    return cli.main(args=argv, prog_name="pvscan")
+
+
+if __name__ == "__main__":  # pragma: no cover
+    main()

@@ -1,0 +1,41 @@
+"""Where the project's data files (pipelines/, schemas/) live, and JSON-Schema validation."""
+from __future__ import annotations
+
+import json
+from functools import lru_cache
+from pathlib import Path
+
+import jsonschema
+
+ROOT = Path(__file__).resolve().parent.parent
+PIPELINES_DIR = ROOT / "pipelines"
+SCHEMAS_DIR = ROOT / "schemas"
+DEFAULT_PIPELINE = PIPELINES_DIR / "post_flight.toml"
+
+
+@lru_cache(maxsize=None)
+def load_schema(name: str) -> dict:
+    """Load ``schemas/<name>`` (e.g. ``"flight.schema.json"`` or ``"pipeline/zonal.schema.json"``)."""
+    with open(SCHEMAS_DIR / name, encoding="utf-8") as fh:
+        return json.load(fh)
+
+
+def schema_errors(instance, schema: dict) -> list[jsonschema.ValidationError]:
+    """All validation errors of ``instance`` against a JSON Schema 2020-12, best first."""
+    validator = jsonschema.Draft202012Validator(schema, format_checker=jsonschema.FormatChecker())
+    return sorted(validator.iter_errors(instance), key=lambda e: (len(list(e.path)), str(e.path)))
+
+
+def describe_error(err: jsonschema.ValidationError, prefix: str = "") -> str:
+    """One line naming the key path and what is wrong."""
+    path = ".".join(str(p) for p in err.absolute_path)
+    if err.validator == "additionalProperties":
+        extra = sorted(set(err.instance) - set(err.schema.get("properties", {})))
+        where = f"{prefix}{path + '.' if path else ''}"
+        return f"unknown key {where}{extra[0]}" + (f" (and {len(extra) - 1} more)" if len(extra) > 1 else "")
+    if err.validator == "required":
+        missing = [k for k in err.validator_value if k not in err.instance]
+        where = f"{prefix}{path + '.' if path else ''}"
+        return f"missing key {where}{missing[0]}"
+    where = f"{prefix}{path}" if (prefix or path) else "(top level)"
+    return f"key {where}: {err.message}"
