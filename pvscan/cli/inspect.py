@@ -1,0 +1,42 @@
+"""``pvscan inspect FLIGHT.toml --out DIR``: run the post-flight pipeline on one flight."""
+from __future__ import annotations
+
+from pathlib import Path
+
+import click
+
+from pvscan.cli._common import Progress, echo, handle_errors
+
+
+@click.command("inspect")
+@click.argument("flight", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=Path),
+              help="Result folder (written atomically; must not exist unless --overwrite).")
+@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
+              help="Pipeline settings (a tuned copy of pipelines/post_flight.toml).")
+@click.option("--overwrite", is_flag=True, help="Replace an existing result folder.")
+@click.option("--no-report", is_flag=True, help="Do not write report.html.")
+@handle_errors
+def inspect_cmd(flight, out_dir, pipeline_path, overwrite, no_report):
+    """Find, classify and rank faulty modules of one flight (FLIGHT.toml) into --out DIR.
+
+    Writes modules.geojson, anomalies.geojson, workorders.csv, pvscan.gpkg, summary.json and
+    report.html. Exit codes: 0 success, 1 bad input, 2 usage error, 3 internal error.
+    """
+    from pvscan.manifest import load_flight
+    from pvscan.pipeline import inspect_flight
+    from pvscan.settings import load_pipeline
+
+    fl = load_flight(flight)
+    settings = load_pipeline(pipeline_path)
+    echo(f"pvscan: inspecting {fl.site.name}, flight {fl.flight.id} ({len(fl.flight.orthos)} ortho tile(s))",
+         err=True, level=1)
+    progress = Progress()
+    try:
+        result = inspect_flight(fl, settings, out_dir, overwrite=overwrite, report=not no_report,
+                                progress=progress)
+    finally:
+        progress.close()
+    from pvscan.cli._summary import print_inspection_summary
+
+    print_inspection_summary(result.out_dir)
