@@ -1,0 +1,255 @@
+"""Ortho ingest: unit conversion, nodata, windows, overviews, and clear errors for broken files."""
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import rasterio
+from affine import Affine
+from rasterio.windows import Window
+from scipy.constants import zero_Celsius
+
+from pvscan.errors import OrthoError, PvscanError
+from pvscan.ortho import KELVIN_OFFSET, open_orthos
+
+
+def test_kelvin_offset_is_codata_zero_celsius():
+    # Source: scipy.constants (CODATA / SI): 0 degC = 273.15 K exactly.
+    assert KELVIN_OFFSET == zero_Celsius
+
+
+def test_celsius_float_passthrough(write_tif, rng):
+    data = (25 + 5 * rng.random((50, 70))).astype("float32")
+    p = write_tif("c.tif", data)
+    with open_orthos(p, {"units": "celsius"}) as o:
+        got = o.read(0, Window(0, 0, 70, 50))
+    assert got.dtype == np.float32
+    np.testing.assert_array_equal(got, data)
+
+
+def test_kelvin_scale_offset_counts(write_tif):
+    # A 16-bit radiometric export storing centikelvin: K = raw * 0.01; degC = K - 273.15
+    # (SI definition of the Celsius scale, scipy.constants.zero_Celsius).
+    raw = np.array([[30015, 31315], [27315, 0]], dtype="uint16")
+    p = write_tif("k.tif", raw, nodata=0, tiled=False)
+    with open_orthos([p], {"units": "kelvin", "scale": 0.01, "offset": 0.0}) as o:
+        got = o.read(0, Window(0, 0, 2, 2))
+    expect = raw.astype(float) * 0.01 - zero_Celsius
+    # float32 arithmetic on ~300 K values: resolution 3e-5 K.
+    np.testing.assert_allclose(got[raw > 0], expect[raw > 0], atol=1e-4)
+    assert np.isnan(got[1, 1])  # file nodata tag
+
+
+def test_scale_offset_celsius(write_tif):
+    raw = np.array([[1000, 2000, 3000]], dtype="int16")
+    p = write_tif("s.tif", raw, tiled=False)
+    with open_orthos(p, {"units": "celsius", "scale": 0.02, "offset": -10.0}) as o:
+        got = o.read(0, ((0, 1), (0, 3)))
+    np.testing.assert_allclose(got[0], [10.0, 30.0, 50.0], atol=1e-5)
+
+
+def test_nodata_override_replaces_file_tag(write_tif):
+    data = np.array([[0.0, 20.0, -9999.0, 30.0]], dtype="float32")
+    p = write_tif("n.tif", data, nodata=0.0, tiled=False)
+    with open_orthos(p, {"units": "celsius"}) as o:
+        tag = o.read(0, ((0, 1), (0, 4)))
+    with open_orthos(p, {"units": "celsius", "nodata": -9999}) as o:
+        over = o.read(0, ((0, 1), (0, 4)))
+    # File tag: 0 is nodata; -9999 is implausible (below plausible_min_c) -> NaN as well.
+    assert np.isnan(tag[0, 0]) and np.isnan(tag[0, 2])
+    # Override: -9999 is nodata, and 0 degC becomes a valid value.
+    assert over[0, 0] == 0.0 and np.isnan(over[0, 2])
+    assert over[0, 1] == 20.0 and over[0, 3] == 30.0
+
+
+def test_nodata_not_representable_in_dtype(write_tif):
+    raw = np.array([[100, 200]], dtype="uint16")
+    p = write_tif("u.tif", raw, tiled=False)
+    with open_orthos(p, {"units": "celsius", "scale": 0.1, "nodata": -9999}) as o:
+        got = o.read(0, ((0, 1), (0, 2)))
+    np.testing.assert_allclose(got[0], [10.0, 20.0], atol=1e-5)
+
+
+def test_nan_and_implausible_values_become_nan(write_tif):
+    data = np.array([[np.nan, 25.0, 1.0e6, -500.0, 249.0, -59.0]], dtype="float32")
+    p = write_tif("x.tif", data, tiled=False)
+    with open_orthos(p) as o:
+        got = o.read(0, ((0, 1), (0, 6)))
+    assert np.isnan(got[0, [0, 2, 3]]).all()
+    np.testing.assert_array_equal(got[0, [1, 4, 5]], [25.0, 249.0, -59.0])
+
+
+def test_plausible_range_from_settings(write_tif):
+    data = np.array([[5.0, 50.0, 95.0]], dtype="float32")
+    p = write_tif("r.tif", data, tiled=False)
+    settings = {"plausible_min_c": 10.0, "plausible_max_c": 90.0}
+    with open_orthos(p, None, settings) as o:
+        got = o.read(0, ((0, 1), (0, 3)))
+    assert np.isnan(got[0, 0]) and got[0, 1] == 50.0 and np.isnan(got[0, 2])
+
+
+def test_internal_mask_band_is_honoured(write_tif):
+    data = np.full((8, 8), 30.0, dtype="float32")
+    mask = np.ones((8, 8), bool)
+    mask[2:4, 5:7] = False
+    p = write_tif("m.tif", data, mask=mask, tiled=False)
+    with open_orthos(p) as o:
+        assert o.tiles[0].has_mask
+        got = o.read(0, Window(0, 0, 8, 8))
+    np.testing.assert_array_equal(np.isnan(got), ~mask)
+
+
+def test_window_beyond_raster_is_padded_with_nan(write_tif, rng):
+    data = rng.normal(30, 1, (40, 30)).astype("float32")
+    p = write_tif("w.tif", data)
+    with open_orthos(p) as o:
+        got = o.read(0, Window(-5, 35, 20, 10))  # cols -5..15, rows 35..45
+    assert got.shape == (10, 20)
+    np.testing.assert_array_equal(got[:5, 5:], data[35:40, 0:15])
+    assert np.isnan(got[:, :5]).all() and np.isnan(got[5:]).all()
+
+
+def test_tile_metadata(write_tif):
+    p = write_tif("t.tif", np.zeros((100, 200), "float32"), gsd=0.05, block=32)
+    with open_orthos(p) as o:
+        t = o.tiles[0]
+        assert (t.width, t.height, t.block_shape) == (200, 100, (32, 32))
+        assert t.gsd_m == pytest.approx(0.05) and o.gsd_m == pytest.approx(0.05)
+        assert o.crs == rasterio.crs.CRS.from_epsg(32633)
+        assert t.bounds.right - t.bounds.left == pytest.approx(10.0)
+    assert o.closed
+
+
+@pytest.mark.parametrize("tiled,block", [(True, 32), (False, 16)])
+def test_block_windows_cover_raster_once_aligned(write_tif, tiled, block):
+    p = write_tif("b.tif", np.zeros((150, 170), "float32"), tiled=tiled, block=block)
+    with open_orthos(p) as o:
+        bh, bw = o.tiles[0].block_shape
+        hits = np.zeros((150, 170), int)
+        for w in o.block_windows(0, 64):
+            assert w.row_off % bh == 0 and w.col_off % (bw if tiled else 1) == 0
+            hits[w.row_off : w.row_off + w.height, w.col_off : w.col_off + w.width] += 1
+        rows, cols = o.block_shape(0, 64)
+    assert (hits == 1).all()
+    assert rows % bh == 0
+    if tiled:
+        assert cols % bw == 0
+
+
+def test_read_overview_mosaic(write_tif, rng):
+    a = rng.normal(20, 1, (100, 100)).astype("float32")
+    b = rng.normal(40, 1, (100, 100)).astype("float32")
+    pa = write_tif("a.tif", a, origin=(500_000.0, 4_000_000.0))
+    pb = write_tif("b.tif", b, origin=(500_002.5, 4_000_000.0))  # 2.5 m east: half overlap
+    with open_orthos([pa, pb]) as o:
+        ov, tr = o.read_overview(max_px=30)
+    assert max(ov.shape) <= 30
+    assert tr.a == pytest.approx(-tr.e)
+    assert tr.c == pytest.approx(500_000.0) and tr.f == pytest.approx(4_000_000.0)
+    # covers the 7.5 m x 5 m union at 0.25 m/px without gaps
+    assert ov.shape == (20, 30)
+    assert not np.isnan(ov).any()
+    # tile a alone in the west, tile b alone in the east, the first tile wins the overlap
+    assert abs(ov[:, :10].mean() - 20) < 0.5 and abs(ov[:, 20:].mean() - 40) < 0.5
+    assert abs(ov[:, 10:20].mean() - 20) < 0.5
+
+
+def test_open_orthos_accepts_flight_like(write_tif):
+    from types import SimpleNamespace
+
+    from pvscan.manifest import OrthoSpec
+
+    p = write_tif("f.tif", np.full((4, 4), 300.0, "float32"))
+    flight = SimpleNamespace(flight=SimpleNamespace(orthos=(p,)), ortho=OrthoSpec(units="kelvin"))
+    with open_orthos(flight) as o:
+        assert o.read(0, Window(0, 0, 4, 4))[0, 0] == pytest.approx(300.0 - zero_Celsius, abs=1e-4)
+
+
+def test_read_after_close_raises(write_tif):
+    p = write_tif("z.tif", np.zeros((4, 4), "float32"))
+    o = open_orthos(p)
+    o.close()
+    with pytest.raises(OrthoError, match="z.tif"):
+        o.read(0, Window(0, 0, 2, 2))
+
+
+# ------------------------------------------------------------------ broken input
+def _msg(excinfo) -> str:
+    msg = str(excinfo.value)
+    assert "\n" not in msg
+    return msg
+
+
+def test_missing_file(tmp_path):
+    with pytest.raises(OrthoError, match="nothere.tif: ortho file not found") as e:
+        open_orthos([tmp_path / "nothere.tif"])
+    assert isinstance(e.value, PvscanError) and isinstance(e.value, OSError)
+
+
+def test_not_a_raster(tmp_path):
+    p = tmp_path / "notes.tif"
+    p.write_text("this is not an image")
+    with pytest.raises(OrthoError, match="notes.tif: not a readable raster") as e:
+        open_orthos(p)
+    _msg(e)
+
+
+def test_other_raster_format(write_tif):
+    p = write_tif("grid.img", np.zeros((4, 4), "float32"), driver="ENVI")
+    with pytest.raises(OrthoError, match=r"grid.img: not a GeoTIFF \(GDAL reads it as ENVI\)"):
+        open_orthos(p)
+
+
+def test_multiband(write_tif):
+    p = write_tif("rgb.tif", np.zeros((3, 4, 4), "uint8"))
+    with pytest.raises(OrthoError, match="rgb.tif: has 3 bands"):
+        open_orthos(p)
+
+
+def test_no_crs(write_tif):
+    p = write_tif("nocrs.tif", np.zeros((4, 4), "float32"), crs=None)
+    with pytest.raises(OrthoError, match="nocrs.tif: no CRS"):
+        open_orthos(p)
+
+
+def test_no_transform(write_tif):
+    p = write_tif("notr.tif", np.zeros((4, 4), "float32"), transform=False, crs=None)
+    with pytest.raises(OrthoError, match="notr.tif: no geotransform"):
+        open_orthos(p)
+
+
+def test_rotated_transform(write_tif):
+    rot = Affine(0.05, 0.01, 500_000.0, 0.01, -0.05, 4_000_000.0)
+    p = write_tif("rot.tif", np.zeros((4, 4), "float32"), transform=rot)
+    with pytest.raises(OrthoError, match="rot.tif: rotated geotransform"):
+        open_orthos(p)
+
+
+def test_geographic_crs(write_tif):
+    p = write_tif("geo.tif", np.zeros((4, 4), "float32"), crs="EPSG:4326", origin=(13.0, 52.0), gsd=1e-6)
+    with pytest.raises(OrthoError, match="geo.tif: CRS EPSG:4326 is not projected"):
+        open_orthos(p)
+
+
+def test_crs_in_feet(write_tif):
+    # EPSG:2272 (NAD83 / Pennsylvania South, US survey foot): projected but not metres.
+    p = write_tif("ft.tif", np.zeros((4, 4), "float32"), crs="EPSG:2272", origin=(2_000_000.0, 200_000.0))
+    with pytest.raises(OrthoError, match="ft.tif: CRS EPSG:2272 is in .*, not metres"):
+        open_orthos(p)
+
+
+def test_tiles_with_different_crs(write_tif):
+    a = write_tif("a.tif", np.zeros((4, 4), "float32"))
+    b = write_tif("b.tif", np.zeros((4, 4), "float32"), crs="EPSG:32632")
+    with pytest.raises(OrthoError, match="b.tif: CRS EPSG:32632 differs from a.tif"):
+        open_orthos([a, b])
+
+
+def test_bad_units(write_tif):
+    p = write_tif("u.tif", np.zeros((4, 4), "float32"))
+    with pytest.raises(OrthoError, match="u.tif: ortho units 'fahrenheit' unknown"):
+        open_orthos(p, {"units": "fahrenheit"})
+
+
+def test_no_paths():
+    with pytest.raises(OrthoError, match="no ortho file"):
+        open_orthos([])
