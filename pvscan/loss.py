@@ -1,0 +1,609 @@
+"""Power and energy loss of every anomaly.
+
+Three estimators, chosen by defect class (or, for unknown classes, by the kind of region):
+
+*Electrical rules* (``loss_method = "electrical_rule"``). A module of ``n`` bypass-diode
+substrings in series loses about ``k / n`` of its power when ``k`` substrings are bypassed
+(the bypass diode carries the string current around them); an open-circuited module
+delivers nothing; an open string delivers nothing from any of its modules:
+
+- ``bypassed_substring``: ``pmax / n``; ``bypassed_substring_multi``: ``k * pmax / n``;
+- ``open_module``: ``pmax``; ``open_string``: ``pmax`` for every module of the run.
+
+*Thermal deficit* (``"thermal_deficit"``, for ``pid`` and area patterns over a module). By
+the module's heat balance an open-circuited module dissipates the power it would have
+converted, ``eta_op * G`` per square metre, so it runs warmer than its neighbours by the
+*open-module yardstick* ``dT_open = eta_op * G / U(v)`` [K], with the Faiman heat-loss
+coefficient ``U(v) = u0 + u1 * v`` [W/(m2 K)] and the operating efficiency
+``eta_op = eta * (1 + gamma_pmax * (T - 25 degC))`` at the Faiman module temperature ``T``.
+A module that is warmer by ``dT`` has lost the share ``f = clip(dT / dT_open, 0, 1)`` of its
+operating power: ``power_loss_w_flight = f * P_op`` with ``P_op = pmax * G/1000 * (1 +
+gamma_pmax * (T - 25))``, and ``power_loss_w = f * pmax`` at STC (the temperature factor
+cancels in the ratio, which is where ``gamma_pmax`` matters).
+
+*Heat balance* (``"heat_balance"``, for ``hot_cell``, ``hot_cell_multi``, ``soiling``,
+``junction_box`` and spot/cell regions). The extra heat leaving a region of area ``A`` that
+is warmer by ``dT`` is ``U(v) * A * dT`` [W]; it is electrical power dissipated instead of
+delivered (``power_loss_w_flight``). It is scaled to STC as a share of the operating power
+(``* 1000 / G`` and the temperature factor) and bounded by the power of the substrings the
+region touches, ``k * pmax / n`` (beyond that the bypass diode takes over).
+
+Energy: ``energy_loss_kwh_per_year = power_loss_w / 1000 * specific_yield`` with the
+specific yield [kWh/kWp/yr] of the manifest, else :func:`specific_yield` from a clear-sky
+year at the site.
+
+References
+----------
+.. [1] D. Faiman, "Assessing the outdoor operating temperature of photovoltaic modules",
+   Progress in Photovoltaics 16(4), 307-315, 2008. doi:10.1002/pip.813
+.. [2] P. Ineichen and R. Perez, "A new airmass independent formulation for the Linke
+   turbidity coefficient", Solar Energy 73(3), 151-157, 2002. doi:10.1016/S0038-092X(02)00045-2
+.. [3] IEC TS 62446-3:2017, Photovoltaic (PV) systems - Requirements for testing,
+   documentation and maintenance - Part 3: Photovoltaic modules and plants - Outdoor
+   infrared thermography.
+.. [4] W. F. Holmgren, C. W. Hansen and M. A. Mikofski, "pvlib python: a python package for
+   modeling solar energy systems", Journal of Open Source Software 3(29), 884, 2018.
+   doi:10.21105/joss.00884
+"""
+from __future__ import annotations
+
+import logging
+import math
+from collections.abc import Mapping
+from functools import lru_cache
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+__all__ = [
+    "estimate_loss",
+    "module_losses",
+    "faiman_u",
+    "faiman_temperature",
+    "open_module_yardstick",
+    "bypass_loss",
+    "thermal_deficit_fraction",
+    "heat_balance_loss",
+    "region_area_fraction",
+    "substrings_touched",
+    "specific_yield",
+    "site_lonlat",
+    "DEFECT_METHOD",
+]
+
+log = logging.getLogger(__name__)
+
+#: Estimator of each defect class.
+DEFECT_METHOD = {
+    "bypassed_substring": "electrical_rule",
+    "bypassed_substring_multi": "electrical_rule",
+    "open_module": "electrical_rule",
+    "open_string": "electrical_rule",
+    "pid": "thermal_deficit",
+    "hot_cell": "heat_balance",
+    "hot_cell_multi": "heat_balance",
+    "soiling": "heat_balance",
+    "junction_box": "heat_balance",
+}
+_REGION_METHOD = {
+    "cell": "heat_balance", "cells": "heat_balance", "spot": "heat_balance",
+    "substring": "electrical_rule", "substrings": "electrical_rule",
+    "module": "thermal_deficit", "modules": "thermal_deficit", "band": "thermal_deficit",
+}
+_DEFAULTS = {"u0": 25.0, "u1": 6.84, "energy_derate": 0.6, "albedo": 0.2, "yield_year": 2025}
+
+
+def _section(settings: Mapping | None, name: str) -> Mapping:
+    if settings is None:
+        return {}
+    keys = list(iter(settings))
+    return settings[name] if name in keys else settings
+
+
+def _cfg(settings: Mapping | None) -> dict:
+    sec = _section(settings, "loss")
+    out = dict(_DEFAULTS)
+    if settings is not None and "reference" in list(iter(settings)):  # a full pipeline
+        ref = settings["reference"]
+        for k in ("u0", "u1"):
+            if k in list(iter(ref)):
+                out[k] = ref[k]
+    keys = list(iter(sec))
+    for k in ("u0", "u1", "energy_derate", "albedo", "yield_year", "linke_turbidity"):
+        if k in keys:
+            out[k] = sec[k]
+    return out
+
+
+# --------------------------------------------------------------------------- physics
+
+
+def faiman_u(wind_speed, u0: float = 25.0, u1: float = 6.84):
+    """Faiman heat-loss coefficient ``U = u0 + u1 * wind_speed``.
+
+    Parameters
+    ----------
+    wind_speed : float or array-like
+        Wind speed. [m/s]
+    u0 : float
+        Constant heat-loss coefficient. [W/(m2 K)]
+    u1 : float
+        Wind-dependent heat-loss coefficient. [W s/(m3 K)]
+
+    Returns
+    -------
+    float or numpy.ndarray
+        Heat-loss coefficient. [W/(m2 K)]
+
+    References
+    ----------
+    .. [1] D. Faiman, Progress in Photovoltaics 16(4), 307-315, 2008. doi:10.1002/pip.813
+    """
+    return u0 + u1 * np.asarray(wind_speed, dtype=float)
+
+
+def faiman_temperature(poa_global, temp_air, wind_speed, u0: float = 25.0, u1: float = 6.84):
+    """Faiman module temperature ``temp_air + poa_global / (u0 + u1 * wind_speed)``. [degC]
+
+    Parameters
+    ----------
+    poa_global : float or array-like
+        Plane-of-array irradiance. [W/m2]
+    temp_air : float or array-like
+        Air temperature. [degC]
+    wind_speed : float or array-like
+        Wind speed. [m/s]
+    u0, u1 : float
+        Faiman coefficients. [W/(m2 K)], [W s/(m3 K)]
+
+    References
+    ----------
+    .. [1] D. Faiman, Progress in Photovoltaics 16(4), 307-315, 2008. doi:10.1002/pip.813
+    """
+    return np.asarray(temp_air, dtype=float) + np.asarray(poa_global, dtype=float) / faiman_u(wind_speed, u0, u1)
+
+
+def _temp_factor(gamma_pct_per_k: float, temp_module):
+    return 1.0 + gamma_pct_per_k / 100.0 * (np.asarray(temp_module, dtype=float) - 25.0)
+
+
+def open_module_yardstick(poa_global, wind_speed, efficiency: float, temp_module=None,
+                          gamma_pmax_pct_per_k: float = 0.0, u0: float = 25.0, u1: float = 6.84):
+    """Temperature rise of an open-circuited module over a working one, ``eta_op * G / U(v)``. [K]
+
+    Parameters
+    ----------
+    poa_global : float or array-like
+        Plane-of-array irradiance. [W/m2]
+    wind_speed : float or array-like
+        Wind speed. [m/s]
+    efficiency : float
+        Module efficiency at STC, ``pmax / (1000 W/m2 * area)``. [-]
+    temp_module : float or array-like, optional
+        Module temperature for the operating efficiency; ``None`` uses the STC efficiency. [degC]
+    gamma_pmax_pct_per_k : float
+        Power temperature coefficient. [%/K]
+    u0, u1 : float
+        Faiman coefficients. [W/(m2 K)], [W s/(m3 K)]
+
+    Returns
+    -------
+    float or numpy.ndarray
+        The yardstick ``dT_open``. [K]
+
+    Notes
+    -----
+    Heat balance per unit module area: absorbed irradiance minus converted power leaves as
+    heat, ``U * (T - temp_air)``. An open module converts nothing, so it runs warmer by the
+    converted power density ``eta_op * G`` divided by ``U`` (the same difference the PVsyst
+    cell-temperature model gives between ``module_efficiency = 0`` and ``eta_op``).
+
+    References
+    ----------
+    .. [1] D. Faiman, Progress in Photovoltaics 16(4), 307-315, 2008. doi:10.1002/pip.813
+    """
+    eta = efficiency if temp_module is None else efficiency * _temp_factor(gamma_pmax_pct_per_k, temp_module)
+    return eta * np.asarray(poa_global, dtype=float) / faiman_u(wind_speed, u0, u1)
+
+
+def bypass_loss(pmax_w: float, bypass_diodes: int, k: int = 1) -> float:
+    """STC power lost when ``k`` of ``bypass_diodes`` substrings are bypassed, ``k * pmax / n``. [W]
+
+    Notes
+    -----
+    The substrings are equal and in series; a bypassed substring contributes no voltage
+    (strictly a small negative one, the diode's forward drop, about 0.4-0.7 V: from memory),
+    so the module keeps ``(n - k) / n`` of its maximum power (common practice).
+    """
+    n = max(int(bypass_diodes), 1)
+    k = min(max(int(k), 0), n)
+    return float(pmax_w) * k / n
+
+
+def thermal_deficit_fraction(delta_t_k, yardstick_k):
+    """Share of operating power lost, ``clip(delta_t_k / yardstick_k, 0, 1)``. [-]
+
+    NaN where either input is NaN or the yardstick is not positive.
+    """
+    dt = np.asarray(delta_t_k, dtype=float)
+    ys = np.asarray(yardstick_k, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        f = np.where(ys > 0, dt / ys, np.nan)
+    return np.clip(f, 0.0, 1.0)
+
+
+def heat_balance_loss(delta_t_k, area_m2, wind_speed, u0: float = 25.0, u1: float = 6.84):
+    """Extra heat leaving a region warmer than its surroundings, ``U(v) * A * dT``. [W]
+
+    Parameters
+    ----------
+    delta_t_k : float or array-like
+        Region temperature above the local reference (negative values give 0). [K]
+    area_m2 : float or array-like
+        Region area. [m2]
+    wind_speed : float or array-like
+        Wind speed. [m/s]
+    u0, u1 : float
+        Faiman coefficients. [W/(m2 K)], [W s/(m3 K)]
+
+    Returns
+    -------
+    float or numpy.ndarray
+        Dissipated power at the flight's irradiance. [W]
+
+    Notes
+    -----
+    Lateral conduction spreads the heat of a small spot over a larger, less warm area, and
+    the region statistic of spot patterns is a 95th percentile; both make this a rough
+    estimate (order of magnitude), which is why it is bounded by the power of the
+    substrings involved.
+    """
+    dt = np.clip(np.asarray(delta_t_k, dtype=float), 0.0, None)
+    return faiman_u(wind_speed, u0, u1) * np.asarray(area_m2, dtype=float) * dt
+
+
+def _boxes(region_uv) -> list[tuple[float, float, float, float]]:
+    if region_uv is None or (isinstance(region_uv, float) and math.isnan(region_uv)):
+        return []
+    arr = np.asarray(region_uv, dtype=float)
+    if arr.size == 0:
+        return []
+    out = []
+    for u0, u1, v0, v1 in arr.reshape(-1, 4):
+        u0, u1 = sorted((float(np.clip(u0, 0, 1)), float(np.clip(u1, 0, 1))))
+        v0, v1 = sorted((float(np.clip(v0, 0, 1)), float(np.clip(v1, 0, 1))))
+        out.append((u0, u1, v0, v1))
+    return out
+
+
+def region_area_fraction(region_uv) -> float:
+    """Share of the module area covered by the union of local boxes ``(u0, u1, v0, v1)``. [-]
+
+    No boxes means the whole module (1.0).
+    """
+    boxes = _boxes(region_uv)
+    if not boxes:
+        return 1.0
+    import shapely
+    from shapely.geometry import box
+
+    return float(shapely.union_all([box(u0, v0, u1, v1) for u0, u1, v0, v1 in boxes]).area)
+
+
+def substrings_touched(region_uv, bypass_diodes: int) -> int:
+    """Number of bypass-diode substrings (strips ``floor(v * n)``) the boxes overlap. [-]
+
+    No boxes means all ``n`` substrings. Box edges within 1e-6 of a substring border do not
+    count as touching the neighbour.
+    """
+    n = max(int(bypass_diodes), 1)
+    boxes = _boxes(region_uv)
+    if not boxes:
+        return n
+    touched: set[int] = set()
+    for _, _, v0, v1 in boxes:
+        k0 = int(math.floor(v0 * n + 1e-6))
+        k1 = int(math.ceil(v1 * n - 1e-6))
+        touched.update(range(max(k0, 0), min(max(k1, k0 + 1), n)))
+    return max(len(touched), 1)
+
+
+# --------------------------------------------------------------------------- energy
+
+
+@lru_cache(maxsize=32)
+def _specific_yield_cached(lat: float, lon: float, tilt: float, azimuth: float, derate: float, albedo: float,
+                           year: int, linke: float | None, altitude: float) -> float:
+    import pvlib
+
+    loc = pvlib.location.Location(lat, lon, tz="UTC", altitude=altitude)
+    times = pd.date_range(f"{year}-01-01 00:30", periods=int(pd.Timestamp(f"{year}-12-31").dayofyear) * 24,
+                          freq="1h", tz="UTC")
+    solpos = loc.get_solarposition(times)
+    kwargs = {} if linke is None else {"linke_turbidity": linke}
+    cs = loc.get_clearsky(times, model="ineichen", solar_position=solpos, **kwargs)
+    poa = pvlib.irradiance.get_total_irradiance(
+        surface_tilt=tilt, surface_azimuth=azimuth, solar_zenith=solpos["apparent_zenith"],
+        solar_azimuth=solpos["azimuth"], dni=cs["dni"], ghi=cs["ghi"], dhi=cs["dhi"], albedo=albedo,
+        model="isotropic")
+    kwh_m2 = float(np.nansum(poa["poa_global"].to_numpy())) / 1000.0  # hourly W/m2 -> kWh/m2
+    return kwh_m2 * derate
+
+
+def specific_yield(latitude: float, longitude: float, surface_tilt: float = 0.0, surface_azimuth: float = 180.0,
+                   *, derate: float = 0.6, albedo: float = 0.2, year: int = 2025,
+                   linke_turbidity: float | None = None, altitude: float = 0.0) -> float:
+    """Yearly specific yield from a clear-sky year on the plane of array. [kWh/kWp/yr]
+
+    Hourly (mid-hour) Ineichen-Perez clear-sky irradiance over one year, transposed to the
+    plane of array with the isotropic sky model, summed to kWh/m2 (one kWp yields one kWh
+    per kWh/m2 at STC), times ``derate`` for clouds and system losses.
+
+    Parameters
+    ----------
+    latitude, longitude : float
+        Site position, WGS84. [deg]
+    surface_tilt : float
+        Module tilt from horizontal. [deg]
+    surface_azimuth : float
+        Direction the modules face, clockwise from north. [deg]
+    derate : float
+        Cloud and system derate. [-] Default 0.6, from memory: yearly irradiation is
+        typically 55-80 % of the clear-sky irradiation, times a performance ratio of about
+        0.8. A measured yield in the manifest is always better.
+    albedo : float
+        Ground reflectance. [-] 0.2 is the usual default (common practice).
+    year : int
+        Calendar year simulated (only the sun's path matters).
+    linke_turbidity : float, optional
+        Constant Linke turbidity; default: pvlib's monthly climatology at the site.
+    altitude : float
+        Site altitude. [m]
+
+    References
+    ----------
+    .. [1] P. Ineichen and R. Perez, Solar Energy 73(3), 151-157, 2002.
+       doi:10.1016/S0038-092X(02)00045-2
+    .. [2] B. Y. H. Liu and R. C. Jordan, "The long-term average performance of flat-plate
+       solar-energy collectors", Solar Energy 7(2), 53-74, 1963.
+    """
+    return _specific_yield_cached(round(float(latitude), 4), round(float(longitude), 4), float(surface_tilt),
+                                  float(surface_azimuth), float(derate), float(albedo), int(year),
+                                  None if linke_turbidity is None else float(linke_turbidity), float(altitude))
+
+
+def site_lonlat(modules) -> tuple[float, float]:
+    """WGS84 ``(lon, lat)`` [deg] of the layout's centroid (bounding-box centre of the footprints)."""
+    from pyproj import Transformer
+
+    x0, y0, x1, y1 = modules.total_bounds
+    tr = Transformer.from_crs(modules.crs, 4326, always_xy=True)
+    lon, lat = tr.transform((x0 + x1) / 2.0, (y0 + y1) / 2.0)
+    return float(lon), float(lat)
+
+
+# --------------------------------------------------------------------------- per anomaly
+
+
+def _get(obj: Any, *names: str, default=None):
+    for n in names:
+        if isinstance(obj, Mapping):
+            if n in obj and obj[n] is not None:
+                return obj[n]
+        elif getattr(obj, n, None) is not None:
+            return getattr(obj, n)
+    return default
+
+
+def _conditions_at(conditions: Any, i: int) -> tuple[float, float, float]:
+    """(poa_global [W/m2], temp_air [degC], wind_speed [m/s]) of module ``i``; NaN when unknown."""
+    if conditions is None:
+        return (math.nan, math.nan, math.nan)
+    if isinstance(conditions, pd.DataFrame):
+        row = conditions.iloc[i] if 0 <= i < len(conditions) else {}
+        vals = [row.get(c, math.nan) if hasattr(row, "get") else math.nan for c in
+                ("poa_global", "temp_air", "wind_speed")]
+    else:
+        vals = [_get(conditions, "poa_global", "poa_irradiance_w_m2", default=math.nan),
+                _get(conditions, "temp_air", "ambient_c", default=math.nan),
+                _get(conditions, "wind_speed", "wind_m_s", default=math.nan)]
+    out = []
+    for v in vals:
+        try:
+            out.append(float(v))
+        except (TypeError, ValueError):
+            out.append(math.nan)
+    return tuple(out)  # type: ignore[return-value]
+
+
+def _indices(row) -> list[int]:
+    idx = row.get("module_indices")
+    if idx is None or (isinstance(idx, float) and math.isnan(idx)):
+        idx = []
+    idx = [int(i) for i in np.asarray(idx).ravel()] if len(np.atleast_1d(idx)) else []
+    first = row.get("module_index")
+    if first is not None and not (isinstance(first, float) and math.isnan(first)):
+        if int(first) not in idx:
+            idx = [int(first)] + idx
+    return idx
+
+
+def _n_substrings(row, n: int) -> int:
+    for col in ("n_substrings", "substrings"):
+        v = row.get(col)
+        if v is not None and not (isinstance(v, float) and math.isnan(v)):
+            try:
+                return min(max(int(len(v) if isinstance(v, (list, tuple, np.ndarray)) else v), 1), n)
+            except (TypeError, ValueError):
+                pass
+    if _boxes(row.get("region_uv")):
+        return substrings_touched(row.get("region_uv"), n)
+    return 1 if row.get("defect") == "bypassed_substring" else min(2, n)
+
+
+def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = None, site: Any = None,
+                  settings: Mapping | None = None, *, modules=None, layout: Any = None,
+                  specific_yield_kwh_per_kwp: float | None = None) -> pd.DataFrame:
+    """Power and energy loss of every anomaly.
+
+    Parameters
+    ----------
+    anomalies : pandas.DataFrame
+        Classified anomalies (DEVELOPERS.md): ``module_index``, ``module_indices``,
+        ``defect``, ``region``, ``region_uv``, ``delta_t_k`` [K].
+    module_spec : ModuleSpec
+        ``pmax_w`` [W], ``gamma_pmax_pct_per_k`` [%/K], ``bypass_diodes``, ``width_m``,
+        ``length_m`` [m] (``area_m2`` and ``efficiency`` used when present).
+    conditions : pandas.DataFrame or mapping, optional
+        Per-module conditions aligned with the modules (``poa_global`` [W/m2], ``temp_air``
+        [degC], ``wind_speed`` [m/s]), or one set of constants (those names or the manifest's
+        ``poa_irradiance_w_m2``, ``ambient_c``, ``wind_m_s``). Without irradiance the
+        thermal estimators give NaN; the electrical rules still give STC losses.
+    site : Site, optional
+        ``specific_yield_kwh_per_kwp`` [kWh/kWp/yr], ``tariff_per_kwh``, ``currency``.
+    settings : mapping, optional
+        The pipeline or its ``[loss]`` section (``u0``, ``u1``, ``energy_derate``, ``albedo``,
+        ``yield_year``, ``linke_turbidity``).
+    modules : geopandas.GeoDataFrame, optional
+        The modules frame: its centroid places the clear-sky year when the site has no
+        specific yield.
+    layout : LayoutSpec, optional
+        ``tilt_deg``, ``azimuth_deg`` of the plane of array [deg] for the clear-sky year.
+    specific_yield_kwh_per_kwp : float, optional
+        Overrides both the manifest value and the clear-sky estimate. [kWh/kWp/yr]
+
+    Returns
+    -------
+    pandas.DataFrame
+        A copy with ``power_loss_w`` (STC) [W], ``power_loss_w_flight`` [W],
+        ``loss_fraction`` (of the affected modules' power) [-], ``loss_method``,
+        ``energy_loss_kwh_per_year`` [kWh/yr] and, with a tariff, ``yearly_cost`` and
+        ``currency``. ``attrs["specific_yield_kwh_per_kwp"]`` and
+        ``attrs["specific_yield_source"]`` record the yield used.
+
+    Notes
+    -----
+    An anomaly's loss never exceeds the nameplate of its modules; an ``open_string``
+    carries the run's total, split over its modules by :func:`module_losses`.
+    """
+    cfg = _cfg(settings)
+    out = anomalies.copy()
+    n_an = len(out)
+    pmax = float(_get(module_spec, "pmax_w"))
+    n_sub = int(_get(module_spec, "bypass_diodes", default=3))
+    gamma = float(_get(module_spec, "gamma_pmax_pct_per_k", default=-0.35))
+    area = _get(module_spec, "area_m2")
+    if area is None:
+        area = float(_get(module_spec, "width_m")) * float(_get(module_spec, "length_m"))
+    area = float(area)
+    eta = _get(module_spec, "efficiency")
+    eta = float(eta) if eta is not None else pmax / (1000.0 * area)
+    u0, u1 = float(cfg["u0"]), float(cfg["u1"])
+
+    stc = np.full(n_an, np.nan)
+    flight = np.full(n_an, np.nan)
+    frac = np.full(n_an, np.nan)
+    methods: list[str] = []
+    for pos, (_, row) in enumerate(out.iterrows()):
+        idx = _indices(row)
+        m = max(len(idx), 1)
+        defect = row.get("defect")
+        method = DEFECT_METHOD.get(defect) or _REGION_METHOD.get(row.get("region"), "thermal_deficit")
+        g, ta, ws = _conditions_at(conditions, idx[0] if idx else -1)
+        t_mod = faiman_temperature(g, ta, ws, u0, u1) if np.isfinite(ta) else np.nan
+        tf = float(_temp_factor(gamma, t_mod)) if np.isfinite(t_mod) else 1.0
+        p_op = pmax * g / 1000.0 * tf if np.isfinite(g) and g > 0 else np.nan  # one module [W]
+        dt = row.get("delta_t_k")
+        dt = float(dt) if dt is not None and not pd.isna(dt) else np.nan
+        if method == "electrical_rule":
+            if defect in ("open_module", "open_string"):
+                f = 1.0
+            else:
+                k = 1 if defect == "bypassed_substring" else _n_substrings(row, n_sub)
+                f = bypass_loss(pmax, n_sub, k) / pmax
+            frac[pos] = f
+            stc[pos] = f * pmax * m
+            flight[pos] = f * p_op * m
+        elif method == "thermal_deficit":
+            ys = open_module_yardstick(g, ws, eta, t_mod if np.isfinite(t_mod) else None, gamma, u0, u1) \
+                if np.isfinite(g) and g > 0 and np.isfinite(ws) else np.nan
+            f = float(thermal_deficit_fraction(dt, ys))
+            frac[pos] = f
+            stc[pos] = f * pmax * m
+            flight[pos] = f * p_op * m
+        else:  # heat balance
+            region_area = region_area_fraction(row.get("region_uv")) * area
+            q = float(heat_balance_loss(dt, region_area, ws, u0, u1)) if np.isfinite(ws) else np.nan
+            k = substrings_touched(row.get("region_uv"), n_sub)
+            cap = bypass_loss(pmax, n_sub, k) / pmax  # share of one module
+            f = min(q / p_op, cap) if np.isfinite(q) and np.isfinite(p_op) and p_op > 0 else np.nan
+            frac[pos] = f
+            stc[pos] = f * pmax * m
+            flight[pos] = f * p_op * m
+        methods.append(method)
+
+    out["power_loss_w"] = stc
+    out["power_loss_w_flight"] = flight
+    out["loss_fraction"] = frac
+    out["loss_method"] = pd.Series(methods, index=out.index, dtype=object)
+
+    sy, source = _yield(site, modules, layout, cfg, specific_yield_kwh_per_kwp)
+    out["energy_loss_kwh_per_year"] = stc / 1000.0 * sy if sy is not None else np.nan
+    tariff = _get(site, "tariff_per_kwh") if site is not None else None
+    if tariff is not None:
+        out["yearly_cost"] = out["energy_loss_kwh_per_year"] * float(tariff)
+        out["currency"] = _get(site, "currency")
+    out.attrs["specific_yield_kwh_per_kwp"] = sy
+    out.attrs["specific_yield_source"] = source
+    log.debug("loss of %d anomalies; specific yield %s kWh/kWp/yr (%s)", n_an, sy, source)
+    return out
+
+
+def _yield(site, modules, layout, cfg, override) -> tuple[float | None, str]:
+    if override is not None:
+        return float(override), "given"
+    sy = _get(site, "specific_yield_kwh_per_kwp") if site is not None else None
+    if sy is not None:
+        return float(sy), "manifest"
+    if modules is None or len(modules) == 0 or modules.crs is None:
+        log.info("no specific yield and no located layout: energy loss left empty")
+        return None, "none"
+    lon, lat = site_lonlat(modules)
+    tilt = float(_get(layout, "tilt_deg", default=0.0)) if layout is not None else 0.0
+    az = float(_get(layout, "azimuth_deg", default=180.0)) if layout is not None else 180.0
+    sy = specific_yield(lat, lon, tilt, az, derate=float(cfg["energy_derate"]), albedo=float(cfg["albedo"]),
+                        year=int(cfg["yield_year"]), linke_turbidity=cfg.get("linke_turbidity"))
+    return sy, "clear_sky"
+
+
+def module_losses(anomalies: pd.DataFrame, n_modules: int, pmax_w: float | None = None) -> pd.DataFrame:
+    """Each module's own share of the anomalies' losses.
+
+    An anomaly over ``m`` modules gives each of them ``1/m`` of its losses (exact for an
+    open string, whose modules each lose their nameplate). A module's shares are summed and,
+    given ``pmax_w``, capped at the nameplate (several anomalies on one module cannot lose
+    more than the module makes), so the plant total never double counts.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Index ``0..n_modules-1``; columns ``power_loss_w`` [W] (STC), ``power_loss_w_flight``
+        [W] and ``energy_loss_kwh_per_year`` [kWh/yr]. NaN losses count as 0.
+    """
+    cols = ("power_loss_w", "power_loss_w_flight", "energy_loss_kwh_per_year")
+    acc = np.zeros((n_modules, len(cols)))
+    for _, row in anomalies.iterrows():
+        idx = [i for i in _indices(row) if 0 <= i < n_modules]
+        if not idx:
+            continue
+        for c, col in enumerate(cols):
+            v = row.get(col) if col in anomalies.columns else None
+            v = float(v) if v is not None and not pd.isna(v) else 0.0
+            for i in idx:
+                acc[i, c] += v / len(idx)
+    if pmax_w is not None:
+        over = acc[:, 0] > pmax_w
+        scale = np.where(over, pmax_w / np.where(acc[:, 0] > 0, acc[:, 0], 1.0), 1.0)
+        acc *= scale[:, None]
+    return pd.DataFrame(acc, columns=list(cols))
