@@ -1,0 +1,128 @@
+"""``pvscan history``: the site history across flights (add, list, changes, trend, maintenance)."""
+from __future__ import annotations
+
+from pathlib import Path
+
+import click
+
+from pvscan.cli._common import Progress, echo, handle_errors
+
+_DB = click.argument("site_db", metavar="SITE.gpkg", type=click.Path(dir_okay=False, path_type=Path))
+
+
+@click.group("history")
+def history_group():
+    """Site history: store inspected flights of one site and report what changed."""
+
+
+@history_group.command("add")
+@_DB
+@click.argument("result_dir", metavar="RESULT_DIR",
+                type=click.Path(file_okay=False, path_type=Path))
+@click.option("--replace", is_flag=True,
+              help="Replace a stored flight of the same id whose results differ.")
+@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
+              help="Pipeline settings file (its [history] section).")
+@handle_errors
+def add_cmd(site_db, result_dir, replace, pipeline_path):
+    """Store the results of one `pvscan inspect` run (creates SITE.gpkg when needed)."""
+    from pvscan.history import add_flight
+    from pvscan.settings import load_pipeline
+
+    cfg = load_pipeline(pipeline_path)["history"]
+    progress = Progress()
+    try:
+        res = add_flight(site_db, result_dir, replace=replace, settings=cfg, progress=progress)
+    finally:
+        progress.close()
+    if res.status == "unchanged":
+        echo(f"flight {res.flight_id}: already stored with the same results; {site_db} unchanged")
+        return
+    what = "created site history with" if res.created else res.status
+    echo(f"{site_db}: {what} flight {res.flight_id} "
+         f"({res.n_modules} modules, {res.n_anomalies} anomalies)")
+    if not res.layout.same:
+        echo(f"layout: {res.layout.describe()}")
+
+
+@history_group.command("list")
+@_DB
+@handle_errors
+def list_cmd(site_db):
+    """List the flights stored, oldest first."""
+    from pvscan.history import list_flights
+
+    df = list_flights(site_db)
+    if df.empty:
+        echo(f"{site_db}: no flights stored")
+        return
+    echo(f"{'flight':<20} {'start':<26} {'modules':>7} {'anomalies':>9} {'loss kW':>8} "
+         f"{'MWh/yr':>7}  layout")
+    for r in df.to_dict("records"):
+        p = r["total_power_loss_w"]
+        e = r["total_energy_loss_kwh_per_year"]
+        echo(f"{r['flight_id']:<20} {r['start']:<26} {r['n_modules']:>7} {r['n_anomalies']:>9} "
+             f"{'' if p is None else f'{p / 1000:.2f}':>8} {'' if e is None else f'{e / 1000:.2f}':>7}"
+             f"  {r['layout']}")
+
+
+@history_group.command("changes")
+@_DB
+@click.option("--from", "flight_from", metavar="FLIGHT", help="Earlier flight id.")
+@click.option("--to", "flight_to", metavar="FLIGHT", help="Later flight id.")
+@click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="GeoJSON file to write (RFC 7946).")
+@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
+              help="Pipeline settings file (its [history] section).")
+@handle_errors
+def changes_cmd(site_db, flight_from, flight_to, out_path, pipeline_path):
+    """Module-by-module change between two flights (default: the two latest)."""
+    from pvscan.history import CHANGE_CLASSES, compare_flights, write_changes
+    from pvscan.settings import load_pipeline
+
+    cfg = load_pipeline(pipeline_path)["history"]
+    fc = compare_flights(site_db, flight_from, flight_to, settings=cfg)
+    write_changes(fc, out_path)
+    c = fc["counts"]
+    echo(f"{fc['flight_before']['flight_id']} -> {fc['flight_after']['flight_id']}: "
+         + ", ".join(f"{c[k]} {k}" for k in CHANGE_CLASSES)
+         + f" ({c['repaired']} repaired, {c['suspicious']} resolved without a recorded repair)")
+    if fc["not_compared"]:
+        echo(f"{len(fc['not_compared'])} module(s) with an anomaly were not imaged in both flights "
+             "(not compared)")
+    if c["suspicious"]:
+        echo("check resolved defects without a repair on site before closing them; hot surfaces "
+             "and live DC: work only by qualified people under local codes")
+    echo(f"wrote {out_path}")
+
+
+@history_group.command("trend")
+@_DB
+@click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=Path),
+              help="Folder to write (CSV series and PNG plots).")
+@click.option("--overwrite", is_flag=True, help="Replace an existing, non-empty folder.")
+@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
+              help="Pipeline settings file (its [history] section).")
+@handle_errors
+def trend_cmd(site_db, out_dir, overwrite, pipeline_path):
+    """Counts, losses and temperatures per flight; per-module series."""
+    from pvscan.history import site_trend, write_trend
+    from pvscan.settings import load_pipeline
+
+    cfg = load_pipeline(pipeline_path)["history"]
+    trend = site_trend(site_db, settings=cfg)
+    paths = write_trend(trend, out_dir, overwrite=overwrite)
+    echo(f"{len(trend.flights)} flight(s); wrote {', '.join(p.name for p in paths)} to {out_dir}")
+
+
+@history_group.command("maintenance")
+@_DB
+@click.argument("events_csv", metavar="EVENTS.csv",
+                type=click.Path(dir_okay=False, path_type=Path))
+@handle_errors
+def maintenance_cmd(site_db, events_csv):
+    """Import repairs/replacements (CSV: date, module_id, action, note); idempotent."""
+    from pvscan.history import import_maintenance
+
+    res = import_maintenance(site_db, events_csv)
+    echo(f"{events_csv}: {res.n_read} event(s), {res.n_added} new, {res.n_present} already stored")
