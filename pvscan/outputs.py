@@ -314,6 +314,17 @@ def to_jsonable(value: Any) -> Any:
     return str(value)
 
 
+def _round_floats(obj: Any, nd: int = 4) -> Any:
+    """Round floats of property values (not coordinates) to ``nd`` decimals (0.1 mK, 0.1 mW)."""
+    if isinstance(obj, float):
+        return round(obj, nd)
+    if isinstance(obj, list):
+        return [_round_floats(v, nd) for v in obj]
+    if isinstance(obj, dict):
+        return {k: _round_floats(v, nd) for k, v in obj.items()}
+    return obj
+
+
 def _dumps(obj: Any, indent: int | None = None) -> str:
     if indent is None:
         return json.dumps(obj, ensure_ascii=False, allow_nan=False, separators=(",", ":"))
@@ -536,7 +547,7 @@ def modules_feature_collection(modules, module_table: pd.DataFrame | None = None
                     break
             if key == "anomaly_ids" and val is None:
                 val = []
-            props[key] = to_jsonable(val)
+            props[key] = _round_floats(to_jsonable(val))
         if props["module_id"] is not None:
             props["module_id"] = str(props["module_id"])
         if props["table_id"] is not None:
@@ -612,7 +623,7 @@ def anomalies_feature_collection(anomalies: pd.DataFrame, modules, decimals: int
                 val = _table_id_of(modules, idx[0])
             if key == "other_defects" and val is None:
                 val = []
-            props[key] = to_jsonable(val)
+            props[key] = _round_floats(to_jsonable(val))
         props["module_ids"] = [str(m) for m in props["module_ids"]]
         if props["module_id"] is not None:
             props["module_id"] = str(props["module_id"])
@@ -692,7 +703,7 @@ def workorders_table(anomalies: pd.DataFrame, modules_gdf, site_crs=None, settin
             if val is None and i0 is not None and col in modules_gdf.columns and col in (
                     "module_id", "table_id", "table_row", "table_col", "string_id", "string_index"):
                 val = modules_gdf[col].iloc[i0]
-            rec[col] = to_jsonable(val)
+            rec[col] = _round_floats(to_jsonable(val))
         mids = rec["module_ids"]
         if not mids:
             mids = [modules_gdf["module_id"].iloc[i] for i in idx] if "module_id" in modules_gdf.columns else []
