@@ -109,7 +109,8 @@ class Tile:
 
     def window_transform(self, window: Window) -> Affine:
         """Map transform of a window (which may reach beyond the tile)."""
-        return self.transform * Affine.translation(window.col_off, window.row_off)
+        t, c0, r0 = self.transform, window.col_off, window.row_off
+        return Affine(t.a, t.b, t.c + t.a * c0 + t.b * r0, t.d, t.e, t.f + t.d * c0 + t.e * r0)
 
 
 def _get(spec: Any, key: str, default: Any = None) -> Any:
