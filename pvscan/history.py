@@ -48,11 +48,8 @@ import hashlib
 import json
 import logging
 import math
-import os
-import shutil
 import sqlite3
 import struct
-import tempfile
 import time
 import warnings
 from collections.abc import Callable, Iterable, Mapping
@@ -65,6 +62,7 @@ import numpy as np
 import pandas as pd
 import shapely
 from shapely.geometry import shape
+from shapely.geometry.polygon import orient
 
 from pvscan import __version__
 from pvscan.errors import HistoryError, PvscanWarning
@@ -1338,6 +1336,16 @@ def compare(before: tuple[pd.DataFrame, pd.DataFrame], after: tuple[pd.DataFrame
     return out
 
 
+def _rfc7946(geom) -> dict:
+    """GeoJSON geometry with exterior rings counter-clockwise and holes clockwise (RFC 7946
+    section 3.1.6)."""
+    if geom.geom_type == "Polygon":
+        geom = orient(geom, 1.0)
+    elif geom.geom_type == "MultiPolygon":
+        geom = shapely.MultiPolygon([orient(p, 1.0) for p in geom.geoms])
+    return json.loads(shapely.to_geojson(geom))
+
+
 def _pick_flights(con, path: Path, flight_from: str | None, flight_to: str | None):
     order = _flight_order(con)
     ids = [f for f, _ in order]
@@ -1395,7 +1403,7 @@ def compare_flights(db_path: str | Path, flight_from: str | None = None, flight_
             if props[k] is not None:
                 props[k] = round(float(props[k]), 3)
         features.append({"type": "Feature", "id": rec["module_id"],
-                         "geometry": None if g is None else json.loads(shapely.to_geojson(g)),
+                         "geometry": None if g is None else _rfc7946(g),
                          "properties": props})
     counts = {c: int((df["change"] == c).sum()) for c in CHANGE_CLASSES}
     counts["repaired"] = int(df["repaired"].sum())
@@ -1406,26 +1414,20 @@ def compare_flights(db_path: str | Path, flight_from: str | None = None, flight_
             "counts": counts, "not_compared": df.attrs["not_compared"], "features": features}
 
 
-def _atomic_write_text(path: Path, text: str) -> None:
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="\n") as fh:
-            fh.write(text)
-        os.replace(tmp, path)
-    except BaseException:
-        Path(tmp).unlink(missing_ok=True)
-        raise
-
-
 def write_changes(changes: Mapping, out_path: str | Path) -> Path:
-    """Write the FeatureCollection of :func:`compare_flights` as GeoJSON, atomically."""
+    """Write the FeatureCollection of :func:`compare_flights` as GeoJSON, atomically.
+
+    Raises
+    ------
+    OutputError
+        When the file cannot be written.
+    """
+    from pvscan.outputs import atomic_write
+
     p = Path(out_path)
-    try:
-        _atomic_write_text(p, json.dumps(changes, indent=1, allow_nan=False) + "\n")
-    except OSError as exc:
-        raise HistoryError(f"{p}: cannot write: {exc.strerror}") from None
-    return p
+    if p.parent and not p.parent.exists():
+        p.parent.mkdir(parents=True, exist_ok=True)
+    return atomic_write(p, json.dumps(changes, indent=1, allow_nan=False) + "\n")
 
 
 # --------------------------------------------------------------------------------------------
@@ -1621,36 +1623,16 @@ def write_trend(trend: Trend, out_dir: str | Path, *, overwrite: bool = False) -
 
     Raises
     ------
-    HistoryError
+    OutputError
         ``out_dir`` exists, is not empty and ``overwrite`` is false; or it cannot be written.
     """
+    from pvscan.outputs import atomic_write, staging_dir
+
     out = Path(out_dir)
-    if out.exists() and not out.is_dir():
-        raise HistoryError(f"{out}: exists and is not a folder")
-    if out.exists() and any(out.iterdir()) and not overwrite:
-        raise HistoryError(f"{out}: folder exists and is not empty (use --overwrite)")
-    try:
-        out.parent.mkdir(parents=True, exist_ok=True)
-        stage = Path(tempfile.mkdtemp(prefix=f".{out.name}.", dir=out.parent))
-    except OSError as exc:
-        raise HistoryError(f"{out}: cannot write: {exc.strerror}") from None
-    try:
-        trend.flights.to_csv(stage / "flights.csv", index=False, lineterminator="\n")
-        trend.modules.to_csv(stage / "modules.csv", index=False, lineterminator="\n")
+    with staging_dir(out, overwrite=overwrite) as stage:
+        atomic_write(stage / "flights.csv", trend.flights.to_csv(index=False, lineterminator="\n"))
+        atomic_write(stage / "modules.csv", trend.modules.to_csv(index=False, lineterminator="\n"))
         names = ["flights.csv", "modules.csv"]
         if len(trend.flights):
             names += _plot_trend(trend, stage)
-        if out.exists():
-            old = out.with_name(f".{out.name}.old-{os.getpid()}")
-            os.replace(out, old)
-            os.replace(stage, out)
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.replace(stage, out)
-    except OSError as exc:
-        shutil.rmtree(stage, ignore_errors=True)
-        raise HistoryError(f"{out}: cannot write: {exc.strerror}") from None
-    except BaseException:
-        shutil.rmtree(stage, ignore_errors=True)
-        raise
     return [out / n for n in names]

@@ -25,7 +25,8 @@ from shapely.geometry import Polygon, mapping
 
 from pvscan import history as H
 from pvscan.cli.main import cli
-from pvscan.errors import HistoryError
+from pvscan.errors import HistoryError, OutputError
+from pvscan.outputs import validate_geojson_rfc7946
 from pvscan.resources import load_schema, schema_errors
 from pvscan.settings import load_pipeline
 
@@ -214,8 +215,10 @@ def test_every_change_class_and_maintenance(site):
     assert p["T01-R2-C01"]["table_id"] == "T01"
     assert fc["counts"] == {"new": 1, "persisting": 5, "worsened": 2, "improved": 1, "resolved": 4,
                             "repaired": 2, "suspicious": 2}
-    # the output follows its schema (JSON Schema 2020-12)
+    # the output follows its schema (JSON Schema 2020-12) and RFC 7946 (ring orientation,
+    # lon/lat ranges, no crs member), as checked by the outputs stage's validator
     assert schema_errors(fc, load_schema("changes.schema.json")) == []
+    assert validate_geojson_rfc7946(fc) == []
 
 
 def test_seasons_compare_on_normalised_delta_t(site):
@@ -498,7 +501,7 @@ def test_trend_counts_losses_and_plots(site, tmp_path):
     for p in paths:
         assert p.stat().st_size > 0
     assert (out / "counts.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
-    with pytest.raises(HistoryError, match="not empty"):
+    with pytest.raises(OutputError, match="not empty"):
         H.write_trend(tr, out)
     H.write_trend(tr, out, overwrite=True)
     assert not [p for p in tmp_path.iterdir() if p.name.startswith(".trend")]
