@@ -1,0 +1,957 @@
+"""Co-registration of the module layout to the thermal orthomosaic.
+
+Drone orthomosaics are routinely off by tens of centimetres to a few metres against the
+layout drawing; half a module's width of offset is enough to read ground or gap pixels
+as module pixels. This module measures the offset from the image itself and translates
+the footprints used for measuring.
+
+Method
+------
+The ortho is cut into blocks (``block_m`` on a side, per tile). In each block
+
+1. the image is read through windowed reads, reduced to a working grid of about
+   ``work_gsd_m``, clipped to its central percentiles (so that hot spots do not
+   dominate, and high-passed (minus a Gaussian-blurred copy);
+2. the layout footprints are rasterised on the same grid with sub-pixel coverage
+   (``supersample`` x ``supersample`` samples per pixel) and high-passed the same way;
+3. both are tapered and phase-correlated: the cross-power spectrum, partially
+   whitened (``whitening``: 0 = plain cross-correlation, 1 = pure phase correlation),
+   is transformed back and searched for its best peak within ``max_shift_m``;
+   the contrast sign (modules warmer or cooler than their surroundings) is decided
+   for the whole flight by a vote of the blocks;
+4. the integer peak is refined by the matrix-multiply upsampled DFT of
+   Guizar-Sicairos et al. (2008) to ``1 / upsample`` pixel.
+
+Rows of tables are periodic: a shift by one row pitch (or one module pitch) scores
+almost as well as the true shift. Each block therefore keeps every candidate peak
+within ``ambiguity_ratio`` of its best one. The true peak is the best only thanks to
+aperiodic structure (table ends, block and array edges); blocks whose best peak is
+not distinct from the next one get a low confidence, and every block finally takes
+the candidate nearest to the consensus of the confident blocks.
+
+The block shifts are combined by an iteratively reweighted least-squares fit of a
+similarity transform (translation, rotation, scale) with outlier rejection; its
+rotation and scale are reported, and when ``follow_drift`` is set each module is
+translated by the fitted shift at its own centre, so a drift across a large site is
+followed.
+
+References
+----------
+.. [1] M. Guizar-Sicairos, S. T. Thurman and J. R. Fienup, "Efficient subpixel image
+   registration algorithms", Optics Letters 33(2), 156-158, 2008.
+   doi:10.1364/OL.33.000156
+.. [2] C. D. Kuglin and D. C. Hines, "The phase correlation image alignment method",
+   Proc. IEEE Int. Conf. on Cybernetics and Society, 163-165, 1975.
+"""
+from __future__ import annotations
+
+import logging
+import math
+import warnings
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import scipy.fft
+from affine import Affine
+from rasterio import features
+from rasterio.windows import Window
+from scipy import ndimage
+
+from pvscan.errors import RegistrationError, RegistrationWarning
+
+__all__ = [
+    "BlockShift",
+    "Registration",
+    "CorrelationPeak",
+    "estimate_shift",
+    "apply_shift",
+    "phase_correlate",
+    "correlation_surface",
+    "upsampled_peak",
+]
+
+logger = logging.getLogger(__name__)
+
+ProgressFn = Callable[[str, int, int], None]
+
+# Defaults of the [register] section (pipelines/post_flight.toml holds the same values
+# with their sources); used for keys a caller leaves out.
+_DEFAULTS: dict[str, Any] = {
+    "enabled": True,
+    "max_shift_m": 3.0,
+    "block_m": 150.0,
+    "work_gsd_m": 0.10,
+    "supersample": 4,
+    "highpass_sigma_m": 3.0,
+    "clip_percentile": 1.0,
+    "whitening": 0.7,
+    "upsample": 20,
+    "exclusion_m": 0.35,
+    "ambiguity_ratio": 0.8,
+    "min_module_fraction": 0.02,
+    "min_valid_fraction": 0.2,
+    "snr_min": 6.0,
+    "snr_full": 20.0,
+    "distinct_full": 0.2,
+    "reject_m": 0.25,
+    "min_confidence": 0.3,
+    "min_shift_m": 0.02,
+    "follow_drift": True,
+    "apply_weak": False,
+    "require": False,
+}
+
+
+# --------------------------------------------------------------------------------------
+# records
+# --------------------------------------------------------------------------------------
+@dataclass
+class BlockShift:
+    """The shift measured in one block of one ortho tile.
+
+    Attributes
+    ----------
+    x, y : float
+        Centre of the block in the ortho CRS [m].
+    dx, dy : float
+        Shift to add to the layout so it fits the image, east / north [m]
+        (NaN when the block gave no usable peak).
+    confidence : float
+        0..1; product of the peak's signal-to-noise term and its distinctness term.
+    tile : int
+        Index of the ortho tile the block was read from.
+    snr : float
+        Peak height above the median of the correlation surface in robust standard
+        deviations (1.4826 x MAD) [-].
+    distinctness : float
+        ``1 - second / best``: the best peak against the best value outside its main
+        lobe within the search radius; near 0 when the shift is ambiguous [-].
+    candidates : int
+        Number of candidate peaks within ``ambiguity_ratio`` of the best one.
+    used : bool
+        True when the block entered the final fit (not rejected as an outlier).
+    note : str
+        Why a block was not used, or which candidate was taken.
+    """
+
+    x: float
+    y: float
+    dx: float
+    dy: float
+    confidence: float
+    tile: int = 0
+    snr: float = float("nan")
+    distinctness: float = float("nan")
+    candidates: int = 0
+    used: bool = False
+    note: str = ""
+
+    def to_dict(self) -> dict:
+        return {
+            "x": _r(self.x, 3), "y": _r(self.y, 3), "dx_m": _r(self.dx, 4), "dy_m": _r(self.dy, 4),
+            "confidence": _r(self.confidence, 3), "tile": int(self.tile), "snr": _r(self.snr, 2),
+            "distinctness": _r(self.distinctness, 3), "candidates": int(self.candidates),
+            "used": bool(self.used), "note": self.note,
+        }
+
+
+@dataclass
+class Registration:
+    """Result of :func:`estimate_shift`.
+
+    Attributes
+    ----------
+    shift_m : tuple of float
+        Shift applied to the layout (east, north in the ortho CRS) [m]; ``(0, 0)`` when
+        none was applied. With ``follow_drift`` this is the fitted shift at the centre of
+        the layout; each module then moves by the fitted shift at its own centre.
+    measured_m : tuple of float
+        The measured shift, whether applied or not [m] (NaN when nothing was measured).
+    blocks : list of BlockShift
+    residual_rotation_deg : float
+        Rotation of the fitted similarity, counter-clockwise on the map [deg]
+        (NaN with fewer than three usable blocks).
+    residual_scale : float
+        Scale of the fitted similarity [-] (1 = none; NaN with fewer than three blocks).
+    confidence : float
+        0..1, the confidence of the combined fit.
+    applied : bool
+    message : str
+        One line saying what was done and why.
+    notes : list of str
+        Remarks (e.g. tiles that contain no layout module).
+    contrast : str
+        ``"warmer"`` when modules are warmer than their surroundings in the image,
+        ``"cooler"`` otherwise, ``""`` when undecided.
+    model : tuple of float or None
+        Shift field ``(tx, ty, a, b, x0, y0)``: the shift at ``(x, y)`` is
+        ``(tx + a (x - x0) - b (y - y0), ty + b (x - x0) + a (y - y0))`` [m].
+    follow_drift : bool
+        Whether :func:`apply_shift` uses the field (True) or the single ``shift_m``.
+    """
+
+    shift_m: tuple[float, float] = (0.0, 0.0)
+    measured_m: tuple[float, float] = (float("nan"), float("nan"))
+    blocks: list[BlockShift] = field(default_factory=list)
+    residual_rotation_deg: float = float("nan")
+    residual_scale: float = float("nan")
+    confidence: float = 0.0
+    applied: bool = False
+    message: str = ""
+    notes: list[str] = field(default_factory=list)
+    contrast: str = ""
+    model: tuple[float, float, float, float, float, float] | None = None
+    follow_drift: bool = False
+
+    def shift_at(self, x, y) -> tuple[np.ndarray, np.ndarray]:
+        """Applied shift at map points (x, y) [m] (zeros when nothing was applied)."""
+        x = np.asarray(x, float)
+        y = np.asarray(y, float)
+        if not self.applied:
+            return np.zeros_like(x), np.zeros_like(y)
+        if self.follow_drift and self.model is not None:
+            tx, ty, a, b, x0, y0 = self.model
+            return tx + a * (x - x0) - b * (y - y0), ty + b * (x - x0) + a * (y - y0)
+        return np.full_like(x, self.shift_m[0]), np.full_like(y, self.shift_m[1])
+
+    def to_dict(self) -> dict:
+        """Plain-JSON record for ``summary.json``."""
+        return {
+            "layout_shift_m": [_r(self.shift_m[0], 4), _r(self.shift_m[1], 4)],
+            "measured_shift_m": [_r(self.measured_m[0], 4), _r(self.measured_m[1], 4)],
+            "applied": bool(self.applied),
+            "confidence": _r(self.confidence, 3),
+            "residual_rotation_deg": _r(self.residual_rotation_deg, 5),
+            "residual_scale": _r(self.residual_scale, 7),
+            "follow_drift": bool(self.follow_drift and self.applied and self.model is not None),
+            "contrast": self.contrast,
+            "message": self.message,
+            "notes": list(self.notes),
+            "blocks": [b.to_dict() for b in self.blocks],
+        }
+
+
+def _r(v, nd):
+    v = float(v)
+    return None if not math.isfinite(v) else round(v, nd)
+
+
+# --------------------------------------------------------------------------------------
+# correlation core (pure array functions)
+# --------------------------------------------------------------------------------------
+@dataclass
+class CorrelationPeak:
+    """A peak of a correlation surface.
+
+    Attributes
+    ----------
+    shift : tuple of float
+        ``(row, col)`` shift [px] such that ``image(r) ~ reference(r - shift)``.
+    height : float
+        Value of the (signed) surface at the integer peak.
+    snr, distinctness : float
+        See :class:`BlockShift`.
+    at_limit : bool
+        True when the peak lies on the rim of the search radius (the true shift may lie
+        beyond it).
+    """
+
+    shift: tuple[float, float]
+    height: float
+    snr: float = float("nan")
+    distinctness: float = float("nan")
+    at_limit: bool = False
+
+
+def cross_power(image: np.ndarray, reference: np.ndarray, whitening: float = 1.0) -> np.ndarray:
+    """Cross-power spectrum ``F(image) conj(F(reference)) / |.|**whitening``.
+
+    Parameters
+    ----------
+    image, reference : ndarray (M, N)
+        Real arrays of the same shape (NaN not allowed).
+    whitening : float
+        0 = plain cross-correlation, 1 = phase correlation [-].
+
+    Returns
+    -------
+    ndarray (M, N), complex
+    """
+    if image.shape != reference.shape:
+        raise ValueError(f"image {image.shape} and reference {reference.shape} differ in shape")
+    fi = scipy.fft.fft2(np.asarray(image, float), workers=1)
+    fr = scipy.fft.fft2(np.asarray(reference, float), workers=1)
+    r = fi * np.conj(fr)
+    if whitening > 0:
+        mag = np.abs(r)
+        floor = max(float(mag.max()) * 1e-9, np.finfo(float).tiny)
+        r = r / np.maximum(mag, floor) ** whitening
+    return r
+
+
+def correlation_surface(image: np.ndarray, reference: np.ndarray, whitening: float = 1.0) -> np.ndarray:
+    """Circular (phase) correlation surface; element ``[i, j]`` scores the shift ``(i, j)``
+    (modulo the shape): ``image(r) ~ reference(r - (i, j))``.
+
+    With ``whitening = 0`` this is the plain circular cross-correlation
+    ``sum_r image(r) reference(r - s)``.
+    """
+    return scipy.fft.ifft2(cross_power(image, reference, whitening), workers=1).real
+
+
+def upsampled_peak(spectrum: np.ndarray, centre: tuple[float, float], upsample: int = 20,
+                   half_width: float = 1.5, sign: float = 1.0) -> tuple[float, float]:
+    """Refine a correlation peak to ``1 / upsample`` pixel by the matrix-multiply DFT.
+
+    The inverse DFT of ``spectrum`` is evaluated on a grid of spacing ``1 / upsample``
+    pixel within ``half_width`` pixels of ``centre`` and its (signed) maximum returned.
+
+    Parameters
+    ----------
+    spectrum : ndarray (M, N), complex
+        Cross-power spectrum (:func:`cross_power`).
+    centre : (float, float)
+        Integer peak ``(row, col)`` [px], signed (may be negative).
+    upsample : int
+        Sub-pixel factor [-].
+    half_width : float
+        Half size of the refined region [px].
+    sign : float
+        +1 to find a maximum, -1 for a minimum.
+
+    Returns
+    -------
+    (float, float)
+        Refined shift ``(row, col)`` [px].
+
+    References
+    ----------
+    .. [1] Guizar-Sicairos, Thurman and Fienup (2008), Optics Letters 33(2), 156-158.
+    """
+    m, n = spectrum.shape
+    up = max(int(upsample), 1)
+    k = int(math.ceil(half_width * up))
+    offs = np.arange(-k, k + 1) / up
+    rows = centre[0] + offs
+    cols = centre[1] + offs
+    fr = np.fft.fftfreq(m)
+    fc = np.fft.fftfreq(n)
+    kr = np.exp(2j * np.pi * rows[:, None] * fr[None, :])  # (R, M)
+    kc = np.exp(2j * np.pi * fc[:, None] * cols[None, :])  # (N, C)
+    vals = (kr @ spectrum @ kc).real * sign
+    i, j = np.unravel_index(int(np.argmax(vals)), vals.shape)
+    return float(rows[i]), float(cols[j])
+
+
+def _search_region(surface: np.ndarray, radius_px: float) -> tuple[np.ndarray, int]:
+    r = int(math.floor(radius_px))
+    m, n = surface.shape
+    r = max(0, min(r, (m - 1) // 2, (n - 1) // 2))
+    idx_r = np.arange(-r, r + 1) % m
+    idx_c = np.arange(-r, r + 1) % n
+    region = surface[np.ix_(idx_r, idx_c)].copy()
+    yy, xx = np.mgrid[-r:r + 1, -r:r + 1]
+    region[(yy * yy + xx * xx) > radius_px * radius_px + 1e-9] = -np.inf
+    return region, r
+
+
+def _peaks(region: np.ndarray, r: int, exclusion_px: float, ratio: float):
+    """Best peak, its statistics and all candidates >= ratio * best (integer offsets)."""
+    finite = np.isfinite(region)
+    vals = region[finite]
+    best_i = int(np.argmax(np.where(finite, region, -np.inf)))
+    bi, bj = np.unravel_index(best_i, region.shape)
+    best = float(region[bi, bj])
+    med = float(np.median(vals))
+    mad = float(np.median(np.abs(vals - med))) * 1.4826
+    snr = (best - med) / mad if mad > 0 else (math.inf if best > med else 0.0)
+    yy, xx = np.mgrid[-r:r + 1, -r:r + 1]
+    d2 = (yy - (bi - r)) ** 2 + (xx - (bj - r)) ** 2
+    outside = finite & (d2 > exclusion_px * exclusion_px)
+    second = float(region[outside].max()) if outside.any() else -np.inf
+    # distinctness measured above the surface's median, so a constant offset does not count
+    if best - med > 0:
+        distinct = 1.0 - max(second - med, 0.0) / (best - med)
+    else:
+        distinct = 0.0
+    size = max(3, int(2 * math.floor(exclusion_px) + 1))
+    filled = np.where(finite, region, -np.inf)
+    locmax = (ndimage.maximum_filter(filled, size=size, mode="constant", cval=-np.inf) == filled) & finite
+    thr = med + ratio * (best - med)
+    ci, cj = np.nonzero(locmax & (filled >= thr))
+    order = np.argsort(-filled[ci, cj])
+    cands = [(int(ci[k] - r), int(cj[k] - r), float(filled[ci[k], cj[k]])) for k in order]
+    if not cands or (cands[0][0], cands[0][1]) != (bi - r, bj - r):
+        cands.insert(0, (int(bi - r), int(bj - r), best))
+    return (int(bi - r), int(bj - r)), best, snr, distinct, cands
+
+
+def phase_correlate(image: np.ndarray, reference: np.ndarray, max_shift_px: float, *,
+                    whitening: float = 1.0, upsample: int = 20, exclusion_px: float = 3.0,
+                    sign: float = 1.0) -> CorrelationPeak:
+    """Shift of ``image`` against ``reference`` within a search radius, sub-pixel.
+
+    Parameters
+    ----------
+    image, reference : ndarray (M, N)
+        Real arrays of one shape (zero-mean, tapered arrays work best).
+    max_shift_px : float
+        Search radius [px]; only shifts within it are considered.
+    whitening : float
+        0 = cross-correlation, 1 = phase correlation [-].
+    upsample : int
+        Sub-pixel factor of the refinement [-].
+    exclusion_px : float
+        Radius of the main lobe excluded when looking for the second-best peak [px].
+    sign : float
+        +1 when the image resembles the reference, -1 when it resembles its negative.
+
+    Returns
+    -------
+    CorrelationPeak
+        ``shift = (row, col)`` [px] with ``image(r) ~ reference(r - shift)``.
+    """
+    spec = cross_power(image, reference, whitening)
+    surf = scipy.fft.ifft2(spec, workers=1).real * sign
+    region, r = _search_region(surf, max_shift_px)
+    (pi, pj), best, snr, distinct, _ = _peaks(region, r, exclusion_px, 1.0)
+    at_limit = math.hypot(pi, pj) > max_shift_px - 1.0
+    ref = upsampled_peak(spec, (pi, pj), upsample, sign=sign)
+    return CorrelationPeak(ref, best, snr, distinct, at_limit)
+
+
+# --------------------------------------------------------------------------------------
+# helpers on blocks
+# --------------------------------------------------------------------------------------
+def _settings(settings) -> dict:
+    out = dict(_DEFAULTS)
+    if settings is None:
+        try:
+            from pvscan.settings import load_pipeline
+
+            settings = load_pipeline()["register"]
+        except Exception:  # defaults above are the same values
+            settings = {}
+    if isinstance(settings, Mapping) and "register" in settings and isinstance(settings["register"], Mapping):
+        settings = settings["register"]
+    for k, v in dict(settings).items():
+        out[k] = v
+    return out
+
+
+def _nan_reduce(a: np.ndarray, f: int) -> np.ndarray:
+    """Block mean over f x f pixels ignoring NaN (NaN where a block has no valid pixel)."""
+    if f == 1:
+        return a.astype(np.float64)
+    h, w = a.shape[0] // f, a.shape[1] // f
+    a = a[: h * f, : w * f].reshape(h, f, w, f)
+    valid = np.isfinite(a)
+    s = np.where(valid, a, 0.0).sum(axis=(1, 3), dtype=np.float64)
+    c = valid.sum(axis=(1, 3))
+    out = np.full((h, w), np.nan)
+    np.divide(s, c, out=out, where=c > 0)
+    return out
+
+
+def _coverage(geoms, shape, transform: Affine, ss: int) -> np.ndarray:
+    """Fraction of each pixel covered by the footprints (ss x ss samples per pixel)."""
+    h, w = shape
+    if not len(geoms):
+        return np.zeros(shape)
+    fine = features.rasterize(((g, 1) for g in geoms), out_shape=(h * ss, w * ss),
+                              transform=transform @ Affine.scale(1.0 / ss), fill=0, dtype="uint8")
+    return fine.reshape(h, ss, w, ss).mean(axis=(1, 3), dtype=np.float64)
+
+
+def _highpass(a: np.ndarray, sigma_px: float, weights: np.ndarray | None = None) -> np.ndarray:
+    if sigma_px <= 0:
+        return a - (np.average(a, weights=weights) if weights is not None and weights.sum() > 0 else a.mean())
+    if weights is None:
+        return a - ndimage.gaussian_filter(a, sigma_px, mode="reflect")
+    num = ndimage.gaussian_filter(a * weights, sigma_px, mode="reflect")
+    den = ndimage.gaussian_filter(weights.astype(float), sigma_px, mode="reflect")
+    bg = np.divide(num, den, out=np.zeros_like(num), where=den > 1e-6)
+    return (a - bg) * weights
+
+
+def _taper(shape, width_px: float) -> np.ndarray:
+    def one(n):
+        w = np.ones(n)
+        k = int(min(max(width_px, 1), n // 2))
+        if k > 0:
+            ramp = 0.5 - 0.5 * np.cos(np.pi * (np.arange(k) + 0.5) / k)
+            w[:k] = ramp
+            w[n - k:] = ramp[::-1]
+        return w
+
+    return one(shape[0])[:, None] * one(shape[1])[None, :]
+
+
+def _fast_shape(shape):
+    return tuple(scipy.fft.next_fast_len(int(s), real=False) for s in shape)
+
+
+def _pad(a, shape):
+    out = np.zeros(shape)
+    out[: a.shape[0], : a.shape[1]] = a
+    return out
+
+
+def _tile_attr(tile, name, default=None):
+    return getattr(tile, name, default) if not isinstance(tile, Mapping) else tile.get(name, default)
+
+
+def _tile_gsd(tile) -> float:
+    g = _tile_attr(tile, "gsd_m")
+    if g:
+        return float(g)
+    t = _tile_attr(tile, "transform")
+    return float(math.sqrt(abs(t.a * t.e - t.b * t.d)))
+
+
+def _read_reduced(orthos, tile_index: int, window: Window, f: int, stripe_px: int = 1024) -> np.ndarray:
+    """Read a window in stripes and reduce by f x f (memory bounded by a stripe)."""
+    h, w = int(window.height), int(window.width)
+    step = max(f, (stripe_px // f) * f)
+    parts = []
+    for r0 in range(0, h, step):
+        rh = min(step, h - r0)
+        win = Window(window.col_off, window.row_off + r0, w, rh)
+        arr = np.asarray(orthos.read(tile_index, win), dtype=np.float64)
+        if arr.ndim == 3:
+            arr = arr[0]
+        parts.append(_nan_reduce(arr, f))
+    return np.vstack(parts) if parts else np.zeros((0, w // f))
+
+
+@dataclass
+class _BlockData:
+    tile: int
+    x: float
+    y: float
+    spec: np.ndarray
+    lin: np.ndarray  # 2x2: (dcol, drow) work px -> (dx, dy) m
+    radius_px: float
+    pos: tuple[float, float] = (0.0, 0.0)
+    neg: tuple[float, float] = (0.0, 0.0)
+
+
+def _prepare_block(orthos, ti, tile, win, mod_geoms, cfg, f, work_gsd):
+    """Read one block and build the cross-power spectrum; None with a note when unusable."""
+    t = _tile_attr(tile, "transform")
+    img = _read_reduced(orthos, ti, win, f)
+    h, w = img.shape
+    if h < 8 or w < 8:
+        return None, "block too small"
+    wt = t @ Affine.translation(win.col_off, win.row_off) @ Affine.scale(f)
+    valid = np.isfinite(img)
+    vfrac = float(valid.mean())
+    if vfrac < cfg["min_valid_fraction"]:
+        return None, f"valid pixels {vfrac:.0%} < min_valid_fraction"
+    cov = _coverage(mod_geoms, (h, w), wt, int(cfg["supersample"]))
+    mfrac = float(cov[valid].mean()) if valid.any() else 0.0
+    if mfrac < cfg["min_module_fraction"]:
+        return None, f"module area {mfrac:.1%} < min_module_fraction"
+    # clip to the central (100 - 2 p) % of the values: hot spots and dead pixels do not
+    # dominate, while the module/ground contrast (two modes inside that range) is kept
+    # intact (a clip on a MAD scale would cut the module plateau and widen the tables)
+    p = float(cfg["clip_percentile"])
+    lo, hi = np.percentile(img[valid], [p, 100.0 - p])
+    if not hi > lo:
+        return None, "no contrast"
+    z = (np.clip(img, lo, hi) - lo) / (hi - lo)
+    z = np.where(valid, z, 0.0)
+    sig = float(cfg["highpass_sigma_m"]) / work_gsd
+    zi = _highpass(z, sig, valid.astype(float))
+    zm = _highpass(cov, sig)
+    taper = _taper((h, w), float(cfg["max_shift_m"]) / work_gsd)
+    zi *= taper
+    zm *= taper
+    if not np.any(zi) or not np.any(zm):
+        return None, "no contrast"
+    shape = _fast_shape((h, w))
+    spec = cross_power(_pad(zi, shape), _pad(zm, shape), float(cfg["whitening"]))
+    lin = np.array([[wt.a, wt.b], [wt.d, wt.e]])
+    cx, cy = wt @ (w / 2.0, h / 2.0)
+    return _BlockData(ti, float(cx), float(cy), spec, lin, float(cfg["max_shift_m"]) / work_gsd), ""
+
+
+def _block_windows(tile, geoms_bounds, cfg):
+    """Pixel windows (with margin) of the blocks of one tile over the layout's extent."""
+    t = _tile_attr(tile, "transform")
+    width, height = int(_tile_attr(tile, "width")), int(_tile_attr(tile, "height"))
+    inv = ~t
+    margin = float(cfg["max_shift_m"]) * 1.5
+    minx, miny, maxx, maxy = geoms_bounds
+    corners = [(minx - margin, miny - margin), (minx - margin, maxy + margin),
+               (maxx + margin, miny - margin), (maxx + margin, maxy + margin)]
+    cols, rows = zip(*(inv @ c for c in corners))
+    c0, c1 = max(0, int(math.floor(min(cols)))), min(width, int(math.ceil(max(cols))))
+    r0, r1 = max(0, int(math.floor(min(rows)))), min(height, int(math.ceil(max(rows))))
+    if c1 - c0 < 8 or r1 - r0 < 8:
+        return []
+    gsd = _tile_gsd(tile)
+    block_px = max(16, int(round(float(cfg["block_m"]) / gsd)))
+    margin_px = int(math.ceil(margin / gsd))
+    nx = max(1, int(round((c1 - c0) / block_px)))
+    ny = max(1, int(round((r1 - r0) / block_px)))
+    xs = np.linspace(c0, c1, nx + 1).round().astype(int)
+    ys = np.linspace(r0, r1, ny + 1).round().astype(int)
+    out = []
+    for j in range(ny):
+        for i in range(nx):
+            a0 = max(0, xs[i] - (margin_px if i > 0 else 0))
+            a1 = min(width, xs[i + 1] + (margin_px if i < nx - 1 else 0))
+            b0 = max(0, ys[j] - (margin_px if j > 0 else 0))
+            b1 = min(height, ys[j + 1] + (margin_px if j < ny - 1 else 0))
+            out.append(Window(a0, b0, a1 - a0, b1 - b0))
+    return out
+
+
+def _fit_similarity(x, y, dx, dy, w):
+    """Weighted least-squares shift field ``(tx, ty, a, b, x0, y0)`` (see Registration.model)."""
+    x0 = float(np.average(x, weights=w))
+    y0 = float(np.average(y, weights=w))
+    xc, yc = x - x0, y - y0
+    n = len(x)
+    A = np.zeros((2 * n, 4))
+    A[0::2, 0] = 1
+    A[0::2, 2] = xc
+    A[0::2, 3] = -yc
+    A[1::2, 1] = 1
+    A[1::2, 2] = yc
+    A[1::2, 3] = xc
+    rhs = np.empty(2 * n)
+    rhs[0::2] = dx
+    rhs[1::2] = dy
+    sw = np.sqrt(np.repeat(w, 2))
+    sol, *_ = np.linalg.lstsq(A * sw[:, None], rhs * sw, rcond=None)
+    return (float(sol[0]), float(sol[1]), float(sol[2]), float(sol[3]), x0, y0)
+
+
+def _weighted_median(v, w):
+    o = np.argsort(v)
+    cw = np.cumsum(w[o])
+    return float(v[o][np.searchsorted(cw, 0.5 * cw[-1])])
+
+
+def _spread_enough(x, y, min_extent):
+    if len(x) < 3:
+        return False
+    pts = np.column_stack([x - x.mean(), y - y.mean()])
+    sv = np.linalg.svd(pts, compute_uv=False)
+    return sv[-1] / math.sqrt(len(x)) > min_extent
+
+
+# --------------------------------------------------------------------------------------
+# public API
+# --------------------------------------------------------------------------------------
+def estimate_shift(orthos, modules, settings: Mapping | None = None, *,
+                   progress: ProgressFn | None = None) -> Registration:
+    """Measure the layout-to-ortho offset from the image.
+
+    Parameters
+    ----------
+    orthos : OrthoSet
+        ``.tiles`` (each with ``transform``, ``crs``, ``width``, ``height``, ``bounds``,
+        ``gsd_m``) and ``.read(tile_index, window) -> float32`` apparent temperature
+        [degC] with NaN for nodata. Only windowed reads are made.
+    modules : geopandas.GeoDataFrame
+        Module footprints in the ortho CRS [m].
+    settings : mapping, optional
+        The ``[register]`` section (or a whole pipeline); missing keys take the defaults.
+    progress : callable, optional
+        ``progress("register", done, total)`` after each block.
+
+    Returns
+    -------
+    Registration
+        ``shift_m`` is to be *added* to the layout coordinates (east, north) [m].
+
+    Warns
+    -----
+    RegistrationWarning
+        When the image constrains the fit weakly; no shift is applied then unless
+        ``apply_weak`` is set.
+
+    Raises
+    ------
+    RegistrationError
+        When ``require`` is set and no confident fit is found.
+    """
+    cfg = _settings(settings)
+    if not cfg["enabled"]:
+        return Registration(message="registration disabled ([register] enabled = false)")
+    tiles = list(orthos.tiles)
+    notes: list[str] = []
+    geoms = np.asarray(modules.geometry.values, dtype=object) if len(modules) else np.zeros(0, object)
+    import shapely
+
+    valid_geom = ~(shapely.is_missing(geoms) | shapely.is_empty(geoms)) if len(geoms) else np.zeros(0, bool)
+    geoms = geoms[valid_geom]
+    tree = shapely.STRtree(geoms) if len(geoms) else None
+
+    # 1. plan blocks per tile
+    plan = []
+    for ti, tile in enumerate(tiles):
+        name = _tile_attr(tile, "path") or _tile_attr(tile, "name") or f"tile {ti}"
+        l, b, r, t = _tile_attr(tile, "bounds")
+        idx = tree.query(shapely.box(l, b, r, t), predicate="intersects") if tree is not None else []
+        if len(idx) == 0:
+            notes.append(f"ortho tile {ti} ({name}): no layout module; ignored")
+            continue
+        sub = geoms[np.sort(idx)]
+        gb = shapely.total_bounds(sub)
+        gb = (max(gb[0], l), max(gb[1], b), min(gb[2], r), min(gb[3], t))
+        for win in _block_windows(tile, gb, cfg):
+            plan.append((ti, tile, win))
+
+    # 2. spectra of the blocks
+    blocks: list[_BlockData] = []
+    records: list[BlockShift] = []
+    total = len(plan)
+    for k, (ti, tile, win) in enumerate(plan):
+        t = _tile_attr(tile, "transform")
+        gsd = _tile_gsd(tile)
+        f = max(1, int(math.floor(float(cfg["work_gsd_m"]) / gsd + 1e-6)))
+        work_gsd = gsd * f
+        win = Window(win.col_off, win.row_off, (int(win.width) // f) * f, (int(win.height) // f) * f)
+        wb = (t @ (win.col_off, win.row_off + win.height), t @ (win.col_off + win.width, win.row_off))
+        xs = [wb[0][0], wb[1][0]]
+        ys = [wb[0][1], wb[1][1]]
+        pad = float(cfg["max_shift_m"])
+        box = shapely.box(min(xs) - pad, min(ys) - pad, max(xs) + pad, max(ys) + pad)
+        gidx = tree.query(box, predicate="intersects")
+        bd, why = _prepare_block(orthos, ti, tile, win, geoms[np.sort(gidx)], cfg, f, work_gsd)
+        cx, cy = t @ (win.col_off + win.width / 2.0, win.row_off + win.height / 2.0)
+        if bd is None:
+            records.append(BlockShift(float(cx), float(cy), float("nan"), float("nan"), 0.0, ti, note=why))
+            logger.debug("register: block %d (tile %d) skipped: %s", k, ti, why)
+        else:
+            blocks.append(bd)
+            records.append(BlockShift(bd.x, bd.y, float("nan"), float("nan"), 0.0, ti))
+            bd._record = records[-1]  # type: ignore[attr-defined]
+        if progress is not None:
+            progress("register", k + 1, total)
+
+    reg = Registration(notes=notes, follow_drift=bool(cfg["follow_drift"]))
+    reg.blocks = records
+    if not blocks:
+        why = sorted({r.note for r in records if r.note}) or ["no ortho tile contains layout modules"]
+        return _finish_weak(reg, cfg, "no usable ortho block (" + "; ".join(why) + ")")
+
+    # 3. contrast sign by vote, then peaks per block
+    gsd_ex = []
+    surfaces = []
+    vote = 0.0
+    for bd in blocks:
+        work_gsd = math.sqrt(abs(np.linalg.det(bd.lin)))
+        ex = max(2.0, float(cfg["exclusion_m"]) / work_gsd)
+        gsd_ex.append(ex)
+        surf = scipy.fft.ifft2(bd.spec, workers=1).real
+        region, r = _search_region(surf, bd.radius_px)
+        fin = np.isfinite(region)
+        v = region[fin]
+        med = float(np.median(v))
+        mad = float(np.median(np.abs(v - med))) * 1.4826 or 1.0
+        vote += (float(v.max()) - med) / mad - (med - float(v.min())) / mad
+        surfaces.append((region, r))
+    sign = 1.0 if vote >= 0 else -1.0
+    reg.contrast = "warmer" if sign > 0 else "cooler"
+
+    snr_min, snr_full = float(cfg["snr_min"]), float(cfg["snr_full"])
+    dfull = float(cfg["distinct_full"])
+    cands_all = []
+    for bd, (region, r), ex in zip(blocks, surfaces, gsd_ex):
+        (pi, pj), best, snr, distinct, cands = _peaks(region * sign, r, ex, float(cfg["ambiguity_ratio"]))
+        c_snr = min(max((snr - snr_min) / max(snr_full - snr_min, 1e-9), 0.0), 1.0)
+        c_dis = min(max(distinct / max(dfull, 1e-9), 0.0), 1.0)
+        conf = c_snr * c_dis
+        rec: BlockShift = bd._record  # type: ignore[attr-defined]
+        rec.snr, rec.distinctness, rec.candidates = float(snr), float(distinct), len(cands)
+        at_limit = math.hypot(pi, pj) > bd.radius_px - 1.0
+        if at_limit:
+            conf = 0.0
+            rec.note = "peak at the search limit (max_shift_m)"
+        rec.confidence = float(conf)
+        cands_all.append(cands)
+
+    # 4. consensus of confident blocks, then each block takes the candidate nearest to it
+    def to_m(bd, drow, dcol):
+        d = bd.lin @ np.array([dcol, drow])
+        return float(d[0]), float(d[1])
+
+    best_m = np.array([to_m(bd, c[0][0], c[0][1]) for bd, c in zip(blocks, cands_all)])
+    confs = np.array([bd._record.confidence for bd in blocks])  # type: ignore[attr-defined]
+    if confs.max() <= 0:
+        for bd, bm in zip(blocks, best_m):
+            bd._record.dx, bd._record.dy = float(bm[0]), float(bm[1])  # type: ignore[attr-defined]
+        reg.measured_m = (float(np.median(best_m[:, 0])), float(np.median(best_m[:, 1])))
+        return _finish_weak(reg, cfg, "the image does not constrain the layout position "
+                                      "(no block has a distinct correlation peak)")
+    cons = np.array([_weighted_median(best_m[:, 0], confs + 1e-12 * (confs <= 0)),
+                     _weighted_median(best_m[:, 1], confs + 1e-12 * (confs <= 0))])
+    upsample = int(cfg["upsample"])
+    dxs, dys = [], []
+    for bd, cands in zip(blocks, cands_all):
+        rec = bd._record  # type: ignore[attr-defined]
+        cm = np.array([to_m(bd, c[0], c[1]) for c in cands])
+        k = int(np.argmin(np.hypot(cm[:, 0] - cons[0], cm[:, 1] - cons[1])))
+        if k != 0:
+            rec.note = (rec.note + "; " if rec.note else "") + \
+                f"periodic ambiguity: took candidate {k + 1} of {len(cands)} nearest the consensus"
+            # a block that needed the consensus to decide cannot add confidence of its own
+            rec.confidence *= cands[k][2] / cands[0][2] if cands[0][2] > 0 else 0.0
+            if rec.confidence <= 0:
+                rec.confidence = 1e-3
+        drow, dcol = upsampled_peak(bd.spec, (cands[k][0], cands[k][1]), upsample, sign=sign)
+        rec.dx, rec.dy = to_m(bd, drow, dcol)
+        dxs.append(rec.dx)
+        dys.append(rec.dy)
+
+    # 5. robust fit
+    x = np.array([bd.x for bd in blocks])
+    y = np.array([bd.y for bd in blocks])
+    dx = np.array(dxs)
+    dy = np.array(dys)
+    w = np.array([bd._record.confidence for bd in blocks])  # type: ignore[attr-defined]
+    inl = w > 0
+    reject = float(cfg["reject_m"])
+    model = None
+    for _ in range(6):
+        if inl.sum() == 0:
+            break
+        use_sim = _spread_enough(x[inl], y[inl], float(cfg["block_m"]) * 0.25)
+        if use_sim:
+            model = _fit_similarity(x[inl], y[inl], dx[inl], dy[inl], w[inl])
+            tx, ty, a, b, x0, y0 = model
+            px = tx + a * (x - x0) - b * (y - y0)
+            py = ty + b * (x - x0) + a * (y - y0)
+        else:
+            mx = _weighted_median(dx[inl], w[inl])
+            my = _weighted_median(dy[inl], w[inl])
+            model = None
+            px, py = np.full_like(x, mx), np.full_like(y, my)
+        res = np.hypot(dx - px, dy - py)
+        new = (w > 0) & (res <= reject)
+        if not new.any():
+            new = (w > 0) & (res <= np.min(res[w > 0]) + 1e-9)
+        if np.array_equal(new, inl):
+            break
+        inl = new
+    if model is None:
+        cx = float(np.average(x[inl], weights=w[inl]))
+        cy = float(np.average(y[inl], weights=w[inl]))
+        mx = float(np.average(dx[inl], weights=w[inl]))
+        my = float(np.average(dy[inl], weights=w[inl]))
+        model_t = (mx, my, 0.0, 0.0, cx, cy)
+        reg.model = None
+    else:
+        model_t = model
+        reg.model = model
+        a, b = model[2], model[3]
+        reg.residual_scale = float(math.hypot(1.0 + a, b))
+        reg.residual_rotation_deg = float(math.degrees(math.atan2(b, 1.0 + a)))
+    for bd, ok, rs in zip(blocks, inl, res):
+        rec = bd._record  # type: ignore[attr-defined]
+        rec.used = bool(ok)
+        if not ok and rec.confidence > 0:
+            rec.note = (rec.note + "; " if rec.note else "") + f"outlier: {rs:.2f} m from the fit"
+    # overall shift: the field at the centre of the layout
+    lx0, ly0, lx1, ly1 = shapely.total_bounds(geoms)
+    mxc, myc = (lx0 + lx1) / 2.0, (ly0 + ly1) / 2.0
+    tx, ty, a, b, x0, y0 = model_t
+    sx = tx + a * (mxc - x0) - b * (myc - y0)
+    sy = ty + b * (mxc - x0) + a * (myc - y0)
+    reg.measured_m = (float(sx), float(sy))
+    # confidence: mean confidence of the used blocks times the weight fraction they hold
+    wi = w[inl]
+    conf = float(np.sum(wi * wi) / np.sum(wi)) * float(np.sum(wi) / np.sum(w)) if wi.sum() > 0 else 0.0
+    reg.confidence = min(max(conf, 0.0), 1.0)
+    n_used = int(inl.sum())
+    desc = (f"measured shift ({sx:+.3f}, {sy:+.3f}) m from {n_used} of {len(records)} blocks, "
+            f"confidence {reg.confidence:.2f}")
+    if reg.confidence < float(cfg["min_confidence"]):
+        return _finish_weak(reg, cfg, f"weak fit: {desc}")
+    if math.hypot(sx, sy) < float(cfg["min_shift_m"]):
+        reg.applied = False
+        reg.shift_m = (0.0, 0.0)
+        reg.message = f"{desc}; below min_shift_m = {cfg['min_shift_m']} m, not applied"
+        logger.info("register: %s", reg.message)
+        return reg
+    reg.applied = True
+    reg.shift_m = (float(sx), float(sy))
+    if reg.model is not None and not reg.follow_drift:
+        pass
+    reg.message = f"{desc}; applied" + (" (following drift)" if reg.follow_drift and reg.model else "")
+    logger.info("register: %s", reg.message)
+    return reg
+
+
+def _finish_weak(reg: Registration, cfg: Mapping, why: str) -> Registration:
+    if cfg["require"]:
+        raise RegistrationError(f"[register] require = true: {why}")
+    apply = bool(cfg["apply_weak"]) and all(math.isfinite(v) for v in reg.measured_m)
+    if apply and math.hypot(*reg.measured_m) >= float(cfg["min_shift_m"]):
+        reg.applied = True
+        reg.shift_m = (float(reg.measured_m[0]), float(reg.measured_m[1]))
+        reg.message = f"{why}; applied anyway (apply_weak = true)"
+    else:
+        reg.applied = False
+        reg.shift_m = (0.0, 0.0)
+        reg.message = f"{why}; layout used as drawn"
+    warnings.warn(f"layout registration: {reg.message}", RegistrationWarning, stacklevel=3)
+    logger.info("register: %s", reg.message)
+    return reg
+
+
+def apply_shift(modules, shift):
+    """A copy of ``modules`` with footprints and frame origins translated.
+
+    Parameters
+    ----------
+    modules : geopandas.GeoDataFrame
+        Modules with ``geometry`` and optionally the frame columns ``fx0``, ``fy0``.
+    shift : Registration or (float, float)
+        A :class:`Registration` (each module moves by its shift field at the module's
+        centre; nothing moves when it was not applied) or a plain ``(dx, dy)`` [m].
+
+    Returns
+    -------
+    geopandas.GeoDataFrame
+        The input is not modified; the frame vectors (``fux`` ...) are unchanged.
+    """
+    import shapely
+
+    out = modules.copy()
+    n = len(out)
+    if n == 0:
+        return out
+    geoms = np.asarray(out.geometry.values, dtype=object)
+    if isinstance(shift, Registration):
+        c = shapely.centroid(geoms)
+        cx, cy = shapely.get_x(c), shapely.get_y(c)
+        ok = np.isfinite(cx) & np.isfinite(cy)
+        cx = np.where(ok, cx, 0.0)
+        cy = np.where(ok, cy, 0.0)
+        dx, dy = shift.shift_at(cx, cy)
+        dx = np.asarray(dx, float).reshape(n)
+        dy = np.asarray(dy, float).reshape(n)
+    else:
+        sx, sy = (float(v) for v in shift)
+        dx = np.full(n, sx)
+        dy = np.full(n, sy)
+    if not (np.any(dx) or np.any(dy)):
+        return out
+    coords, idx = shapely.get_coordinates(geoms, return_index=True)
+    coords = coords + np.column_stack([dx[idx], dy[idx]])
+    moved = shapely.set_coordinates(geoms.copy(), coords)
+    import geopandas
+
+    out[out.geometry.name] = geopandas.GeoSeries(moved, index=out.index, crs=modules.crs)
+    for col, d in (("fx0", dx), ("fy0", dy)):
+        if col in out.columns:
+            out[col] = out[col].to_numpy(dtype=float) + d
+    return out
