@@ -658,6 +658,9 @@ class _Session:
         except sqlite3.Error as err:
             if exc_type is None:
                 raise HistoryError(f"{self.path}: cannot commit: {err}") from None
+        if exc_type is not None and issubclass(exc_type, sqlite3.Error):
+            # rolled back: nothing of this command was written
+            raise HistoryError(f"{self.path}: database error ({exc}); nothing written") from None
         return False
 
 

@@ -344,7 +344,12 @@ def test_corrupt_and_foreign_files_are_refused_and_untouched(site, tmp_path):
         con.execute("CREATE TABLE parcels (id INTEGER PRIMARY KEY, name TEXT)")
         con.execute("INSERT INTO parcels VALUES (1, 'north field')")
     con.close()
-    for path, pattern in ((corrupt, "not an SQLite"), (foreign, "foreign")):
+    H.add_flight(site["db"], site["a"])
+    raw = site["db"].read_bytes()
+    truncated = tmp_path / "truncated.gpkg"  # valid header, half the pages gone
+    truncated.write_bytes(raw[: len(raw) // 2])
+    for path, pattern in ((corrupt, "not an SQLite"), (foreign, "foreign"),
+                          (truncated, "not a readable SQLite")):
         before = sha(path)
         with pytest.raises(HistoryError, match=pattern):
             H.add_flight(path, site["a"])
