@@ -49,6 +49,7 @@ from __future__ import annotations
 
 import logging
 import math
+import warnings
 from collections.abc import Mapping
 from functools import lru_cache
 from typing import Any
@@ -317,8 +318,16 @@ def _specific_yield_cached(lat: float, lon: float, tilt: float, azimuth: float, 
                            year: int, linke: float | None, altitude: float) -> float:
     import pvlib
 
+    with warnings.catch_warnings():
+        # pvlib (0.13) uses pandas accessors that pandas 3 deprecates; not ours to fix
+        warnings.filterwarnings("ignore", category=DeprecationWarning, module=r"pvlib\..*")
+        warnings.filterwarnings("ignore", category=DeprecationWarning, module=r"pandas\..*")
+        return _clear_sky_yield(pvlib, lat, lon, tilt, azimuth, derate, albedo, year, linke, altitude)
+
+
+def _clear_sky_yield(pvlib, lat, lon, tilt, azimuth, derate, albedo, year, linke, altitude) -> float:
     loc = pvlib.location.Location(lat, lon, tz="UTC", altitude=altitude)
-    times = pd.date_range(f"{year}-01-01 00:30", periods=int(pd.Timestamp(f"{year}-12-31").dayofyear) * 24,
+    times = pd.date_range(f"{year}-01-01 00:30", periods=int(pd.Timestamp(f"{year}-12-31").day_of_year) * 24,
                           freq="1h", tz="UTC")
     solpos = loc.get_solarposition(times)
     kwargs = {} if linke is None else {"linke_turbidity": linke}

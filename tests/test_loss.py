@@ -1,0 +1,258 @@
+"""Power and energy loss rules, checked against pvlib (single-diode model, PVsyst and Faiman
+temperature models, clear-sky models) and handbook arithmetic."""
+from __future__ import annotations
+
+import math
+import warnings
+
+import numpy as np
+import pandas as pd
+import pvlib
+import pytest
+from pvlib.singlediode import bishop88, estimate_voc
+
+from pvscan import loss
+from pvscan.manifest import ModuleSpec
+from pvscan.settings import load_pipeline
+
+# An invented 72-cell, 3-substring module: 400 W on a 2.0 m x 1.0 m footprint (eta = 0.2).
+SPEC = ModuleSpec(pmax_w=400.0, width_m=1.0, length_m=2.0, cells_across=6, cells_along=12, bypass_diodes=3,
+                  gamma_pmax_pct_per_k=-0.35)
+COND = {"poa_global": 850.0, "temp_air": 25.0, "wind_speed": 2.0}
+
+
+def _row(defect, region, delta_t_k, region_uv=(), idx=(0,), **kw):
+    return dict(module_index=idx[0], module_id=f"M{idx[0]}", module_indices=list(idx), defect=defect,
+                region=region, region_uv=list(region_uv), delta_t_k=delta_t_k, severity="repair",
+                confidence=0.8, **kw)
+
+
+# --------------------------------------------------------------------------- electrical rules
+
+
+def _substring_iv(n_sub: int):
+    """IV curve of one substring of an invented module, from pvlib's single-diode model."""
+    # invented module at STC: Desoto reference parameters for the whole module
+    il, i0, rs, rsh, nnsvth = pvlib.pvsystem.calcparams_desoto(
+        1000.0, 25.0, alpha_sc=0.004, a_ref=1.9, I_L_ref=10.5, I_o_ref=1e-10, R_sh_ref=400.0, R_s=0.35)
+    sub = dict(photocurrent=il, saturation_current=i0, resistance_series=rs / n_sub,
+               resistance_shunt=rsh / n_sub, nNsVth=nnsvth / n_sub)
+    voc = float(estimate_voc(il, i0, nnsvth / n_sub))
+    i, v, _ = bishop88(np.linspace(-2.0, 1.1 * voc, 20001), **sub)
+    keep = i >= 0
+    order = np.argsort(i[keep])
+    full = pvlib.pvsystem.singlediode(il, i0, rs, rsh, nnsvth)
+    return i[keep][order], v[keep][order], float(il), float(full["p_mp"])
+
+
+@pytest.mark.parametrize("n_sub", [3, 4])
+def test_bypassed_substring_against_single_diode(n_sub):
+    """k/n rule vs the IV curve of n-1 substrings in series with a conducting bypass diode.
+
+    Reference: pvlib.singlediode.bishop88 (Bishop 1988) on an invented module. The bypass
+    diode's forward drop is 0.5 V (from memory: Schottky bypass diodes drop about 0.4-0.6 V).
+    """
+    i, v, il, p_full_pvlib = _substring_iv(n_sub)
+    grid = np.linspace(0.0, 0.9999 * il, 20001)
+    v_sub = np.interp(grid, i, v)
+    p_all = float(np.max(grid * n_sub * v_sub))
+    # the series stack of n equal substrings is the whole module (pvlib's own single diode, 0.01 %)
+    assert p_all == pytest.approx(p_full_pvlib, rel=1e-4)
+    p_bypassed = float(np.max(grid * ((n_sub - 1) * v_sub - 0.5)))
+    ratio_pvlib = p_bypassed / p_all
+    ratio_rule = 1.0 - loss.bypass_loss(p_all, n_sub, 1) / p_all
+    assert ratio_rule == pytest.approx((n_sub - 1) / n_sub)
+    # within 3 %: the rule ignores the diode drop (0.5 V of ~40 V) and the shifted maximum power point
+    assert ratio_rule == pytest.approx(ratio_pvlib, rel=0.03)
+    assert ratio_pvlib < ratio_rule  # the diode drop only ever costs power
+
+
+def test_electrical_rules_in_estimate_loss():
+    an = pd.DataFrame([
+        _row("bypassed_substring", "substring", 6.0, [(0, 1, 0, 1 / 3)]),
+        _row("bypassed_substring_multi", "substrings", 9.0, [(0, 1, 0, 2 / 3)], idx=(1,)),
+        _row("open_module", "module", 7.0, idx=(2,)),
+        _row("open_string", "modules", 7.0, idx=(3, 4, 5, 6)),
+    ])
+    out = loss.estimate_loss(an, SPEC, COND, {"specific_yield_kwh_per_kwp": 1000.0})
+    # common practice: k of n substrings bypassed -> k/n of pmax; open module/string -> all of it
+    assert out["power_loss_w"].tolist() == pytest.approx([400 / 3, 800 / 3, 400.0, 4 * 400.0])
+    assert (out["loss_method"] == "electrical_rule").all()
+    # at the flight: the same share of the operating power pmax * G/1000 * (1 + gamma (T - 25)),
+    # T from pvlib's Faiman model
+    t = float(pvlib.temperature.faiman(850.0, 25.0, 2.0))
+    p_op = 400.0 * 0.85 * (1 - 0.0035 * (t - 25.0))
+    assert out["power_loss_w_flight"].tolist() == pytest.approx([p_op / 3, 2 * p_op / 3, p_op, 4 * p_op])
+    # energy: kW x kWh/kWp/yr
+    assert out["energy_loss_kwh_per_year"].tolist() == pytest.approx(out["power_loss_w"] / 1000 * 1000.0)
+    # without irradiance the STC rule still holds, the flight value is unknown (NaN, not an error)
+    nog = loss.estimate_loss(an, SPEC, None, {"specific_yield_kwh_per_kwp": 1000.0})
+    assert nog["power_loss_w"].tolist() == pytest.approx(out["power_loss_w"].tolist())
+    assert nog["power_loss_w_flight"].isna().all()
+
+
+def test_open_string_shares_never_double_count():
+    an = pd.DataFrame([_row("open_string", "modules", 7.0, idx=(2, 3, 4)),
+                       _row("hot_cell", "cell", 15.0, [(0.5, 0.6, 0.0, 0.17)], idx=(0,))])
+    out = loss.estimate_loss(an, SPEC, COND, {"specific_yield_kwh_per_kwp": 1200.0})
+    shares = loss.module_losses(out, 6, pmax_w=400.0)
+    assert shares.loc[[2, 3, 4], "power_loss_w"].tolist() == pytest.approx([400.0] * 3)
+    assert shares["power_loss_w"].sum() == pytest.approx(out["power_loss_w"].sum())
+    assert shares["energy_loss_kwh_per_year"].sum() == pytest.approx(out["energy_loss_kwh_per_year"].sum())
+    assert shares.loc[[1, 5], "power_loss_w"].tolist() == [0.0, 0.0]
+    # two anomalies on one module can never lose more than its nameplate
+    both = pd.DataFrame([_row("open_module", "module", 7.0), _row("hot_cell", "cell", 15.0, [(0, 0.1, 0, 0.2)])])
+    s2 = loss.module_losses(loss.estimate_loss(both, SPEC, COND, {"specific_yield_kwh_per_kwp": 1.0}), 1, 400.0)
+    assert s2["power_loss_w"].iloc[0] == pytest.approx(400.0)
+
+
+# --------------------------------------------------------------------------- thermal models
+
+
+def test_faiman_against_pvlib():
+    """U(v) = u0 + u1 v with Faiman's (2008) coefficients, as pvlib.temperature.faiman has them."""
+    g, ta, ws = np.array([200.0, 600.0, 1000.0]), np.array([5.0, 20.0, 35.0]), np.array([0.0, 2.5, 7.0])
+    assert loss.faiman_temperature(g, ta, ws) == pytest.approx(pvlib.temperature.faiman(g, ta, ws), rel=1e-12)
+    u0, u1 = load_pipeline()["reference"]["u0"], load_pipeline()["reference"]["u1"]
+    assert (u0, u1) == (25.0, 6.84)  # Faiman 2008, Prog. Photovolt. 16:307 (pvlib's defaults)
+    assert loss.faiman_u(3.0) == pytest.approx(25.0 + 6.84 * 3.0)
+
+
+def test_open_module_yardstick_against_pvsyst_model():
+    """eta*G/U equals the PVsyst cell-temperature difference between an open and a working module.
+
+    Reference: pvlib.temperature.pvsyst_cell, T = Ta + alpha G (1 - eta) / (u_c + u_v v);
+    with alpha = 1 and the same U, T(eta = 0) - T(eta) = eta G / U.
+    """
+    g, ws, eta = 870.0, 2.1, 0.2
+    u = 25.0 + 6.84 * ws
+    t_open = pvlib.temperature.pvsyst_cell(g, 26.5, ws, u_c=25.0, u_v=6.84, module_efficiency=0.0,
+                                           alpha_absorption=1.0)
+    t_work = pvlib.temperature.pvsyst_cell(g, 26.5, ws, u_c=25.0, u_v=6.84, module_efficiency=eta,
+                                           alpha_absorption=1.0)
+    assert loss.open_module_yardstick(g, ws, eta) == pytest.approx(t_open - t_work, rel=1e-12)
+    assert loss.open_module_yardstick(g, ws, eta) == pytest.approx(eta * g / u)
+    # at the operating temperature the efficiency drops by gamma (datasheet convention)
+    y_hot = loss.open_module_yardstick(g, ws, eta, temp_module=55.0, gamma_pmax_pct_per_k=-0.35)
+    assert y_hot == pytest.approx(eta * (1 - 0.0035 * 30.0) * g / u)
+
+
+def test_thermal_deficit_pid():
+    """A PID module warmer by half the open-module rise has lost half its power."""
+    g, ws, ta = COND["poa_global"], COND["wind_speed"], COND["temp_air"]
+    t = float(pvlib.temperature.faiman(g, ta, ws))
+    yard = loss.open_module_yardstick(g, ws, SPEC.efficiency, t, SPEC.gamma_pmax_pct_per_k)
+    an = pd.DataFrame([_row("pid", "module", yard / 2), _row("pid", "module", -1.0, idx=(1,)),
+                       _row("pid", "module", 3 * yard, idx=(2,)), _row("pid", "module", float("nan"), idx=(3,))])
+    out = loss.estimate_loss(an, SPEC, COND, {"specific_yield_kwh_per_kwp": 1000.0})
+    assert (out["loss_method"] == "thermal_deficit").all()
+    assert out["power_loss_w"].iloc[0] == pytest.approx(200.0, rel=1e-9)
+    assert out["power_loss_w"].iloc[1] == 0.0  # cooler than the reference: no loss
+    assert out["power_loss_w"].iloc[2] == pytest.approx(400.0)  # clipped at the whole module
+    assert math.isnan(out["power_loss_w"].iloc[3])  # degenerate input: NaN, not an exception
+    p_op = 400.0 * g / 1000.0 * (1 - 0.0035 * (t - 25.0))
+    assert out["power_loss_w_flight"].iloc[0] == pytest.approx(p_op / 2, rel=1e-9)
+
+
+def test_heat_balance_hot_cell():
+    """The extra heat of a hot region, recovered from pvlib's PVsyst model, is the power lost.
+
+    A region of area A converting dP less than its neighbours warms, by the PVsyst
+    cell-temperature model (pvlib.temperature.pvsyst_cell), by dT = (dP/A) / U.
+    """
+    g, ta, ws = COND["poa_global"], COND["temp_air"], COND["wind_speed"]
+    cell_uv = (0.5, 0.5 + 1 / 12, 0.0, 1 / 6)
+    area = 2.0 / 12 * 1.0 / 6  # one cell [m2]
+    d_p = 12.0  # W dissipated in the cell at the flight
+    eta_loc = 0.2 - d_p / (g * area)
+    dt = float(pvlib.temperature.pvsyst_cell(g, ta, ws, 25.0, 6.84, module_efficiency=eta_loc, alpha_absorption=1)
+               - pvlib.temperature.pvsyst_cell(g, ta, ws, 25.0, 6.84, module_efficiency=0.2, alpha_absorption=1))
+    an = pd.DataFrame([_row("hot_cell", "cell", dt, [cell_uv])])
+    out = loss.estimate_loss(an, SPEC, COND, {"specific_yield_kwh_per_kwp": 1000.0})
+    assert out["loss_method"].iloc[0] == "heat_balance"
+    assert out["power_loss_w_flight"].iloc[0] == pytest.approx(d_p, rel=1e-9)
+    t = float(pvlib.temperature.faiman(g, ta, ws))
+    assert out["power_loss_w"].iloc[0] == pytest.approx(d_p * 1000 / g / (1 - 0.0035 * (t - 25.0)), rel=1e-9)
+    # bounded by the substring: a huge delta T cannot lose more than pmax / bypass_diodes
+    big = loss.estimate_loss(pd.DataFrame([_row("hot_cell", "cell", 500.0, [cell_uv])]), SPEC, COND, None)
+    assert big["power_loss_w"].iloc[0] == pytest.approx(400.0 / 3)
+    # a spot spanning two substrings is bounded by two of them
+    two = loss.estimate_loss(pd.DataFrame([_row("junction_box", "spot", 900.0, [(0.0, 0.1, 0.2, 0.5)])]),
+                             SPEC, COND, None)
+    assert two["power_loss_w"].iloc[0] == pytest.approx(800.0 / 3)
+
+
+def test_region_geometry_helpers():
+    assert loss.region_area_fraction([]) == 1.0
+    assert loss.region_area_fraction([(0, 0.5, 0, 0.5), (0.25, 0.75, 0, 0.5)]) == pytest.approx(0.375)  # union
+    assert loss.substrings_touched([(0, 1, 1 / 3, 2 / 3)], 3) == 1  # exact borders do not spill over
+    assert loss.substrings_touched([(0, 1, 0.3, 0.7)], 3) == 3
+    assert loss.substrings_touched([], 3) == 3
+
+
+# --------------------------------------------------------------------------- energy
+
+
+def test_specific_yield_clear_sky():
+    lat, lon = 47.6, 9.13
+    flat = loss.specific_yield(lat, lon, 0.0, 180.0, derate=1.0)
+    with warnings.catch_warnings():
+        # pvlib 0.13 calls pandas accessors that pandas 3 deprecates (not ours)
+        warnings.simplefilter("ignore", DeprecationWarning)
+        loc = pvlib.location.Location(lat, lon, tz="UTC", altitude=0.0)
+        times = pd.date_range("2025-01-01 00:30", periods=8760, freq="1h", tz="UTC")
+        sp = loc.get_solarposition(times)
+        ghi_ineichen = float(loc.get_clearsky(times, solar_position=sp)["ghi"].sum()) / 1000.0
+        ghi_haurwitz = float(pvlib.clearsky.haurwitz(sp["apparent_zenith"])["ghi"].sum()) / 1000.0
+    # on a horizontal plane the isotropic transposition (Liu & Jordan 1963) returns GHI itself
+    assert flat == pytest.approx(ghi_ineichen, rel=1e-6)
+    # Haurwitz (1945) ignores turbidity, so it sits above Ineichen with climatological
+    # turbidity, by up to ~20 % at a central European site (from memory)
+    assert 0.8 * ghi_haurwitz < flat < ghi_haurwitz
+    # a south-facing 30 deg tilt gains on a clear-sky year at 47.6 N (common practice: 10-30 %)
+    tilted = loss.specific_yield(lat, lon, 30.0, 180.0, derate=1.0)
+    assert 1.05 * flat < tilted < 1.35 * flat
+    # facing north loses
+    assert loss.specific_yield(lat, lon, 30.0, 0.0, derate=1.0) < flat
+    # with the default derate the yield is in the range of central Europe, 900-1300 kWh/kWp
+    # (from memory, solar atlases for southern Germany / Switzerland)
+    cfg = load_pipeline()["loss"]
+    assert 900.0 < loss.specific_yield(lat, lon, 30.0, 180.0, derate=cfg["energy_derate"]) < 1300.0
+
+
+def test_energy_from_manifest_or_clear_sky_and_cost():
+    import geopandas as gpd
+    from shapely.geometry import box
+
+    from pvscan.manifest import LayoutSpec, Site
+
+    an = pd.DataFrame([_row("open_module", "module", 7.0)])
+    site = Site(name="Invented Meadow", specific_yield_kwh_per_kwp=1150.0, tariff_per_kwh=0.08, currency="EUR")
+    out = loss.estimate_loss(an, SPEC, COND, site, load_pipeline())
+    assert out["energy_loss_kwh_per_year"].iloc[0] == pytest.approx(0.4 * 1150.0)  # kW x kWh/kWp
+    assert out["yearly_cost"].iloc[0] == pytest.approx(0.4 * 1150.0 * 0.08)
+    assert out["currency"].iloc[0] == "EUR"
+    assert out.attrs["specific_yield_source"] == "manifest"
+    # no yield in the manifest: the clear-sky year at the layout's centroid and plane of array
+    mods = gpd.GeoDataFrame({"module_id": ["M0"]}, geometry=[box(510000, 5272000, 510001, 5272002)],
+                            crs="EPSG:32632")
+    lon, lat = loss.site_lonlat(mods)
+    assert (lon, lat) == pytest.approx((9.1330, 47.6013), abs=1e-3)  # pyproj, UTM 32N
+    lay = LayoutSpec(tilt_deg=30.0, azimuth_deg=180.0)
+    cs = loss.estimate_loss(an, SPEC, COND, Site(name="x"), load_pipeline(), modules=mods, layout=lay)
+    sy = loss.specific_yield(lat, lon, 30.0, 180.0, derate=load_pipeline()["loss"]["energy_derate"])
+    assert cs.attrs["specific_yield_source"] == "clear_sky"
+    assert cs["energy_loss_kwh_per_year"].iloc[0] == pytest.approx(0.4 * sy)
+    # nothing to locate: energy is unknown (NaN), the power loss stands
+    none = loss.estimate_loss(an, SPEC, COND, Site(name="x"))
+    assert math.isnan(none["energy_loss_kwh_per_year"].iloc[0]) and none["power_loss_w"].iloc[0] == 400.0
+
+
+def test_loss_settings_schema_rejects_unknown_key():
+    from pvscan.errors import PipelineError
+
+    p = load_pipeline()
+    with pytest.raises(PipelineError, match="loss"):
+        p.replace(loss={"energy_derate": 1.5})
+    with pytest.raises(PipelineError, match="unknown key"):
+        p.replace(loss={"derate_typo": 0.5})
