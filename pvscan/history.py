@@ -313,13 +313,13 @@ def read_result_dir(result_dir: str | Path) -> FlightResult:
         seen.add(mid)
         row = {"module_id": mid,
                "table_id": None if props.get("table_id") is None else str(props.get("table_id")),
-               "defect": props.get("defect") or None}
+               "defect": props.get("defect") or None, "severity": props.get("severity") or None}
         for c in MODULE_COLUMNS:
             row[c] = _num(props.get(c))
         row["geometry"] = _geom(feat, mpath, mid)
         rows.append(row)
-    modules = pd.DataFrame(rows, columns=["module_id", "table_id", "defect", *MODULE_COLUMNS,
-                                          "geometry"])
+    modules = pd.DataFrame(rows, columns=["module_id", "table_id", "defect", "severity",
+                                          *MODULE_COLUMNS, "geometry"])
 
     apath = d / "anomalies.geojson"
     arows = []
@@ -353,7 +353,8 @@ def read_result_dir(result_dir: str | Path) -> FlightResult:
     for mids, s in zip(anomalies["module_ids"], anomalies["severity"]):
         for m in mids:
             sev[m] = _worse_severity(sev.get(m), s)
-    modules["severity"] = [sev.get(m) for m in modules["module_id"]]
+    modules["severity"] = [own if own else sev.get(m)
+                           for m, own in zip(modules["module_id"], modules["severity"])]
     _as_objects(modules, ("module_id", "table_id", "defect", "severity"))
     _as_objects(anomalies, ("anomaly_id", "module_id", "defect", "severity", "priority"))
     return FlightResult(flight_id=str(fid), site=site, start=start, end=end, modules=modules,
@@ -785,15 +786,18 @@ def _f(x):
     return None if math.isnan(v) else v
 
 
-def _update_extent(con: sqlite3.Connection, table: str, now: str) -> None:
-    rows = con.execute(f"SELECT geom FROM {table} WHERE geom IS NOT NULL").fetchall()
-    if rows:
-        geoms = [_gpkg_geom(r[0]) for r in rows]
-        minx, miny, maxx, maxy = shapely.total_bounds(np.array(geoms, dtype=object))
-    else:
-        minx = miny = maxx = maxy = None
+def _update_extent(con: sqlite3.Connection, table: str, geoms: list, now: str) -> None:
+    """Grow the layer's bounding box in gpkg_contents by the geometries just inserted."""
+    geoms = [g for g in geoms if g is not None and not g.is_empty]
+    row = con.execute("SELECT min_x, min_y, max_x, max_y FROM gpkg_contents WHERE table_name=?",
+                      (table,)).fetchone()
+    box = [v for v in row] if row else [None] * 4
+    if geoms:
+        minx, miny, maxx, maxy = (float(v) for v in shapely.total_bounds(np.array(geoms, dtype=object)))
+        box = [minx if box[0] is None else min(box[0], minx), miny if box[1] is None else min(box[1], miny),
+               maxx if box[2] is None else max(box[2], maxx), maxy if box[3] is None else max(box[3], maxy)]
     con.execute("UPDATE gpkg_contents SET min_x=?, min_y=?, max_x=?, max_y=?, last_change=? "
-                "WHERE table_name=?", (_f(minx), _f(miny), _f(maxx), _f(maxy), now, table))
+                "WHERE table_name=?", (*box, now, table))
 
 
 def _totals(result: FlightResult) -> tuple[float | None, float | None]:
@@ -897,7 +901,6 @@ def add_flight(db_path: str | Path, result_dir: str | Path, *, replace: bool = F
             diff = layout_diff(site, result.modules, float(cfg["layout_tolerance_m"]))
         if not diff.same:
             msg = f"{result.source}: flight {result.flight_id}: {diff.describe()}"
-            log.warning(msg)
             warnings.warn(msg, LayoutChangeWarning, stacklevel=2)
         now = _now()
         new_ids = set(diff.added) if not site.empty else set(result.modules["module_id"])
@@ -940,8 +943,11 @@ def add_flight(db_path: str | Path, result_dir: str | Path, *, replace: bool = F
               _f(r["delta_t_norm_k"]), _f(r["t_max_c"]), _f(r["power_loss_w"]),
               _f(r["energy_loss_kwh_per_year"]), r["priority"], _f(r["confidence"]))
              for r in result.anomalies.to_dict("records")])
-        for t in ("site_modules", "module_results", "anomalies"):
-            _update_extent(con, t, now)
+        _update_extent(con, "site_modules", [g for m, g in zip(result.modules["module_id"],
+                                                                result.modules["geometry"])
+                                             if m in new_ids], now)
+        _update_extent(con, "module_results", list(result.modules["geometry"]), now)
+        _update_extent(con, "anomalies", list(result.anomalies["geometry"]), now)
         for t in ("flights",):
             con.execute("UPDATE gpkg_contents SET last_change=? WHERE table_name=?", (now, t))
         if progress:
@@ -1411,10 +1417,15 @@ def compare_flights(db_path: str | Path, flight_from: str | None = None, flight_
     counts = {c: int((df["change"] == c).sum()) for c in CHANGE_CLASSES}
     counts["repaired"] = int(df["repaired"].sum())
     counts["suspicious"] = int(df["suspicious"].sum())
+    from pvscan.outputs import safety_cautions
+
     return {"type": "FeatureCollection", "name": "changes",
             "flight_before": {"flight_id": f_from, "start": starts[f_from]},
             "flight_after": {"flight_id": f_to, "start": starts[f_to]},
-            "counts": counts, "not_compared": df.attrs["not_compared"], "features": features}
+            "counts": counts, "not_compared": df.attrs["not_compared"],
+            "note": ("A defect resolved without a recorded repair (suspicious) may be a missed "
+                     "detection or an intermittent fault: confirm it on site before closing it."),
+            "safety": safety_cautions(), "features": features}
 
 
 def write_changes(changes: Mapping, out_path: str | Path) -> Path:

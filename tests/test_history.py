@@ -397,6 +397,9 @@ def test_geopackage_encoding_opens_in_gdal_and_sqlite(site):
     assert set(mr.geom_type) == {"Polygon"}
     one = mr[(mr.flight_id == "HF-2026-04") & (mr.module_id == "T01-R1-C01")].geometry.iloc[0]
     assert one.equals_exact(footprint("T01-R1-C01"), 1e-12)
+    # GDAL takes the layer extent from gpkg_contents: it must bound every geometry
+    info = pyogrio.read_info(site["db"], layer="module_results")
+    np.testing.assert_allclose(info["total_bounds"], mr.total_bounds, atol=1e-9)
     an = gpd.read_file(site["db"], layer="anomalies")
     assert len(an) == len(BEFORE) + len(AFTER)
     with sqlite3.connect(site["db"]) as con:
