@@ -1,0 +1,139 @@
+"""Serpentine flight path, camera frames and the weather along the flight.
+
+The drone flies east-west lines over the field, alternating direction, one frame every
+``along * (1 - front_overlap)`` metres, lines ``across * (1 - side_overlap)`` apart, at
+``speed_m_s`` with ``turn_s`` seconds per turn. A module is *imaged* at the time of the
+frame whose centre is nearest to the module's centroid (the frame that sees it most
+squarely, which is the one a mosaic keeps); its conditions are the weather of that moment.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import numpy as np
+
+__all__ = ["FlightPlan", "plan_flight", "WeatherSeries", "weather_series"]
+
+
+@dataclass
+class FlightPlan:
+    """Camera frames of a flight.
+
+    Attributes
+    ----------
+    boxes : ndarray (n, 4)
+        Frame footprints (xmin, ymin, xmax, ymax) in the projected CRS [m].
+    times_s : ndarray (n,)
+        Seconds since the start of the flight [s].
+    duration_s : float
+        Time of the last frame [s].
+    """
+
+    boxes: np.ndarray
+    times_s: np.ndarray
+    duration_s: float
+
+    @property
+    def centres(self) -> np.ndarray:
+        b = self.boxes
+        return np.stack([(b[:, 0] + b[:, 2]) / 2, (b[:, 1] + b[:, 3]) / 2], axis=1)
+
+    def imaged_at(self, x, y) -> np.ndarray:
+        """Time each point is imaged: that of the frame whose centre is nearest [s]."""
+        from scipy.spatial import cKDTree
+
+        _, k = cKDTree(self.centres).query(np.stack([np.ravel(x), np.ravel(y)], axis=1))
+        return self.times_s[k].reshape(np.shape(x))
+
+
+def plan_flight(fl: dict, extent, gsd: float) -> FlightPlan:
+    """Plan serpentine lines covering ``extent`` = (xmin, ymin, xmax, ymax) [m].
+
+    Parameters
+    ----------
+    fl : dict
+        The scenario's ``[flight]`` table.
+    gsd : float
+        Ground sampling distance of the frames [m/px].
+    """
+    xmin, ymin, xmax, ymax = extent
+    across = fl["frame_px"][0] * gsd      # frame width across the track (north-south) [m]
+    along = fl["frame_px"][1] * gsd       # frame height along the track (east-west) [m]
+    step_along = max(along * (1.0 - fl["front_overlap"]), gsd)
+    step_lines = max(across * (1.0 - fl["side_overlap"]), gsd)
+    n_lines = max(1, math.ceil(max(ymax - ymin - across, 0.0) / step_lines) + 1)
+    n_frames = max(1, math.ceil(max(xmax - xmin - along, 0.0) / step_along) + 1)
+    xs = xmin + along / 2 + np.arange(n_frames) * step_along
+    boxes, times = [], []
+    t = 0.0
+    for k in range(n_lines):
+        yc = ymax - across / 2 - k * step_lines
+        order = xs if k % 2 == 0 else xs[::-1]
+        for j, xc in enumerate(order):
+            if j:
+                t += step_along / fl["speed_m_s"]
+            boxes.append((xc - along / 2, yc - across / 2, xc + along / 2, yc + across / 2))
+            times.append(t)
+        t += fl["turn_s"] + step_lines / fl["speed_m_s"]
+    times_arr = np.asarray(times)
+    return FlightPlan(np.asarray(boxes), times_arr, float(times_arr.max()))
+
+
+@dataclass
+class WeatherSeries:
+    """Weather sampled along the flight (what a logger would write).
+
+    Attributes
+    ----------
+    times_s : ndarray
+        Seconds since the start [s].
+    poa_global : ndarray
+        Plane-of-array irradiance [W/m2].
+    temp_air : ndarray
+        Air temperature [degC].
+    wind_speed : ndarray
+        Wind speed [m/s].
+    varying : bool
+        False for constant conditions.
+    """
+
+    times_s: np.ndarray
+    poa_global: np.ndarray
+    temp_air: np.ndarray
+    wind_speed: np.ndarray
+    varying: bool
+
+    def at(self, t_s):
+        """(poa_global, temp_air, wind_speed) at times ``t_s``, linearly interpolated."""
+        t = np.asarray(t_s, float)
+        return (np.interp(t, self.times_s, self.poa_global), np.interp(t, self.times_s, self.temp_air),
+                np.interp(t, self.times_s, self.wind_speed))
+
+
+def weather_series(cond: dict, duration_s: float, rng) -> WeatherSeries:
+    """Conditions during the flight: constants, or drift plus irradiance dips and gusts.
+
+    Irradiance dips (thin passing clouds) are Gaussian in time, 20-60 s wide; the gusts are
+    a sum of three sinusoids with random phases. Values are rounded as a logger would
+    write them (0.1 W/m2, 0.01 degC, 0.01 m/s) and the truth uses the rounded series.
+    """
+    g0, ta0, v0 = cond["poa_irradiance_w_m2"], cond["ambient_c"], cond["wind_m_s"]
+    if not cond["varying"]:
+        t = np.array([0.0, max(duration_s, 1.0)])
+        return WeatherSeries(t, np.full(2, float(g0)), np.full(2, float(ta0)), np.full(2, float(v0)), False)
+    step = cond["series_step_s"]
+    t = np.arange(0.0, duration_s + 2 * step, step)
+    minutes = t / 60.0
+    g = g0 + cond["poa_drift_w_m2_per_min"] * minutes
+    for _ in range(int(cond["irradiance_dips"])):
+        tc = rng.uniform(0.15, 0.85) * max(duration_s, 1.0)
+        wd = rng.uniform(20.0, 60.0)
+        g = g - cond["irradiance_dip_depth"] * g0 * np.exp(-(((t - tc) / wd) ** 2))
+    ta = ta0 + cond["ambient_drift_c_per_min"] * minutes
+    v = v0 + cond["wind_drift_m_s_per_min"] * minutes
+    for _ in range(3):
+        period = rng.uniform(30.0, 120.0)
+        v = v + cond["wind_gust_m_s"] / 3.0 * np.sin(2 * np.pi * t / period + rng.uniform(0, 2 * np.pi))
+    v = np.maximum(v, 0.0)
+    return WeatherSeries(t, np.round(np.maximum(g, 0.0), 1), np.round(ta, 2), np.round(v, 2), True)

@@ -1,0 +1,410 @@
+"""The simulated scene: true temperatures of modules and ground, and what the camera sees.
+
+Physics, in the order it is applied to a pixel:
+
+1. **Healthy module** (Faiman [1]_): ``T = T_air + G / (u0 + u1 * v)`` with the
+   module's own irradiance ``G`` (lowered under a cloud shadow), air temperature and wind at
+   the time it was imaged; plus a module-to-module spread (``conditions.module_spread_k``,
+   normal) and a cell-to-cell spread (``conditions.cell_spread_k``). The aluminium frame
+   (``array.frame_width_m``) runs cooler: ``T_frame = T - frame_drop * (T - T_air)``
+   (common practice: frames are cooler than the glass).
+2. **Defects** add their rise in the module-local frame (:mod:`pvscan.simulate.defects`).
+3. **Ground**: ``T_air + sun_rise_k * G / 1000`` in the sun, ``T_air + shade_rise_k`` in the
+   shadow the tables cast (sun position from pvlib [2]_), plus a smooth texture; hot objects
+   (inverter stations, a vehicle) sit on the ground between table rows.
+4. **Radiometry**: band radiance of glass (module emissivity, reflecting the sky from
+   :func:`pvscan.radiometry.sky_temperature`, warmer where a soft reflection patch lies)
+   and ground, through the air path, exported at the export emissivity and reflected
+   temperature (:func:`pvscan.radiometry.apparent_from_true`).
+5. **Mosaic**: rectangular seams add a step of 0.5-2 K to the apparent temperature.
+6. **Camera**: Gaussian point-spread function, then white noise of the camera's NETD;
+   a wavy nodata border at the edge of the mosaic.
+
+References
+----------
+.. [1] D. Faiman, "Assessing the outdoor operating temperature of photovoltaic modules",
+   Progress in Photovoltaics 16(4), 307-315, 2008. doi:10.1002/pip.813
+.. [2] I. Reda and A. Andreas, "Solar position algorithm for solar radiation
+   applications", Solar Energy 76(5), 577-589, 2004 (as implemented in pvlib).
+"""
+from __future__ import annotations
+
+import logging
+import math
+from dataclasses import dataclass
+from datetime import datetime, timedelta
+
+import numpy as np
+from scipy import ndimage
+
+from pvscan import radiometry
+from pvscan.simulate.defects import ModuleGeometry, place_defects
+from pvscan.simulate.flightpath import plan_flight, weather_series
+from pvscan.simulate.geometry import build_field
+
+__all__ = ["Scene", "faiman", "GROUND", "GLASS", "FRAME", "OBJECT"]
+
+log = logging.getLogger(__name__)
+
+GROUND, GLASS, FRAME, OBJECT = 0, 1, 2, 3
+
+
+def faiman(poa_global, temp_air, wind_speed, u0=25.0, u1=6.84):
+    """Module temperature by the Faiman model, ``T_air + G / (u0 + u1 * v)`` [degC].
+
+    Parameters
+    ----------
+    poa_global : array_like
+        Plane-of-array irradiance [W/m2].
+    temp_air : array_like
+        Air temperature [degC].
+    wind_speed : array_like
+        Wind speed [m/s].
+    u0 : float
+        Constant heat-loss coefficient [W/(m2 K)].
+    u1 : float
+        Wind heat-loss coefficient [W s/(m3 K)].
+
+    References
+    ----------
+    D. Faiman, "Assessing the outdoor operating temperature of photovoltaic modules",
+    Progress in Photovoltaics 16(4), 307-315, 2008; coefficients of IEC 61853-2.
+    """
+    return np.asarray(temp_air, float) + np.asarray(poa_global, float) / (
+        u0 + u1 * np.asarray(wind_speed, float))
+
+
+class _SmoothNoise:
+    """A smooth random field over an extent: unit-variance noise on a coarse grid,
+    smoothed and interpolated bilinearly (deterministic for a given rng)."""
+
+    def __init__(self, extent, spacing: float, rng):
+        xmin, ymin, xmax, ymax = extent
+        self.x0, self.y0, self.h = xmin - 2 * spacing, ymin - 2 * spacing, spacing
+        nx = int(math.ceil((xmax - xmin) / spacing)) + 5
+        ny = int(math.ceil((ymax - ymin) / spacing)) + 5
+        g = ndimage.gaussian_filter(rng.standard_normal((ny, nx)), 1.0, mode="wrap")
+        self.grid = g / max(g.std(), 1e-12)
+
+    def __call__(self, x, y):
+        r = (np.asarray(y) - self.y0) / self.h
+        c = (np.asarray(x) - self.x0) / self.h
+        return ndimage.map_coordinates(self.grid, [r.ravel(), c.ravel()], order=1, mode="nearest").reshape(r.shape)
+
+
+@dataclass
+class Blob:
+    """A Gaussian blob on the map: centre (x, y) [m], sigma [m], amplitude."""
+
+    x: float
+    y: float
+    sigma: float
+    amp: float
+
+    def __call__(self, x, y):
+        return self.amp * np.exp(-((x - self.x) ** 2 + (y - self.y) ** 2) / (2 * self.sigma ** 2))
+
+
+class Scene:
+    """Everything needed to render the ortho and write the truth of one scenario.
+
+    Parameters
+    ----------
+    sc : dict
+        Complete scenario (:func:`pvscan.simulate.scenario.scenario_from_dict`).
+    seed : int
+        Seed of every random choice (same seed, same flight).
+    """
+
+    def __init__(self, sc: dict, seed: int):
+        self.sc = sc
+        self.seed = int(seed)
+        rng = np.random.default_rng([self.seed, 1])
+        self.field = fld = build_field(sc)
+        m = sc["module"]
+        half = bool(m["half_cut"])
+        self.geom = ModuleGeometry(
+            length_m=m["length_m"], width_m=m["width_m"],
+            n_along=m["cells_along"] * (2 if half else 1), n_across=m["cells_across"],
+            bypass_diodes=m["bypass_diodes"], lower_edge="u" if fld.portrait else "v",
+            junction_box=m.get("junction_box", "split" if half else "edge"), pmax_w=m["pmax_w"])
+        cam = sc["camera"]
+        self.gsd = gsd = float(cam["gsd_m"])
+        margin = float(sc["ortho"]["margin_m"])
+        b = fld.bounds(margin)
+        self.x0 = math.floor(b[0] / gsd) * gsd
+        self.y1 = math.ceil(b[3] / gsd) * gsd
+        self.width = int(math.ceil((b[2] - self.x0) / gsd))
+        self.height = int(math.ceil((self.y1 - b[1]) / gsd))
+        self.extent = (self.x0, self.y1 - self.height * gsd, self.x0 + self.width * gsd, self.y1)
+
+        # flight and conditions
+        self.start = datetime.fromisoformat(sc["flight"]["start"].replace("Z", "+00:00"))
+        self.plan = plan_flight(sc["flight"], self.extent, gsd)
+        cond = sc["conditions"]
+        self.weather = weather_series(cond, self.plan.duration_s, np.random.default_rng([self.seed, 2]))
+        self.end = self.start + timedelta(seconds=round(self.plan.duration_s))
+        mods = fld.modules
+        self.t_imaged = self.plan.imaged_at(mods["cx"], mods["cy"])
+        self.poa, self.temp_air, self.wind = self.weather.at(self.t_imaged)
+        self.u0, self.u1 = float(cond["u0"]), float(cond["u1"])
+        self.rh = float(cond["relative_humidity_pct"])
+        self.temp_air_mean = float(np.mean(self.temp_air))
+        self.poa_mean = float(np.mean(self.poa))
+        if "sky_c" in cond:
+            self.temp_sky = float(cond["sky_c"])
+        else:
+            self.temp_sky = float(radiometry.sky_temperature(self.temp_air_mean, self.rh, band="camera",
+                                                              band_um=tuple(cam["band_um"])))
+        alt = float(sc["flight"]["altitude_m"])
+        if cam["transmission"] == "auto":
+            self.tau = np.asarray(radiometry.atmospheric_transmission(alt, self.temp_air, self.rh), float)
+            self.tau_ground = float(radiometry.atmospheric_transmission(alt, self.temp_air_mean, self.rh))
+        else:
+            self.tau = np.full(fld.n_modules, float(cam["transmission"]))
+            self.tau_ground = float(cam["transmission"])
+
+        # distractors
+        dis = sc["distractors"]
+        drng = np.random.default_rng([self.seed, 3])
+        fx0, fy0, fx1, fy1 = fld.bounds(0.0)
+        self.clouds = [Blob(drng.uniform(fx0, fx1), drng.uniform(fy0, fy1),
+                            dis["cloud_shadow_size_m"] * drng.uniform(0.7, 1.3), dis["cloud_shadow_depth"])
+                       for _ in range(int(dis["cloud_shadows"]))]
+        self.reflections = []
+        for _ in range(int(dis["reflections"])):
+            i = int(drng.integers(fld.n_modules))
+            self.reflections.append(Blob(mods["cx"][i], mods["cy"][i],
+                                         dis["reflection_size_m"] * drng.uniform(0.7, 1.3),
+                                         dis["reflection_k"] * drng.uniform(0.7, 1.3)))
+        self.seams = self._place_seams(drng, int(dis["seams"]), dis["seam_step_k"])
+        self.objects = self._place_objects(drng, int(dis["hot_objects"]))
+        self.texture = _SmoothNoise(self.extent, 3.0, np.random.default_rng([self.seed, 4]))
+        self.wobble = _SmoothNoise(self.extent, 8.0, np.random.default_rng([self.seed, 5]))
+        self._sun_shadow()
+
+        # modules
+        mrng = np.random.default_rng([self.seed, 6])
+        n = fld.n_modules
+        self.poa_local = self.poa * self.cloud_factor(mods["cx"], mods["cy"])
+        self.u_total = self.u0 + self.u1 * self.wind
+        self.temp_healthy = faiman(self.poa_local, self.temp_air, self.wind, self.u0, self.u1)
+        self.temp_healthy = self.temp_healthy + mrng.normal(0.0, cond["module_spread_k"], n)
+        self.cell_offset = mrng.normal(0.0, cond["cell_spread_k"], (n, self.geom.n_along, self.geom.n_across))
+        self.dt_open = self.geom.eta * self.poa_local / self.u_total
+        self.defects = place_defects(np.random.default_rng([self.seed, 7]), sc, fld, self.geom)
+        self.defect_of = {d.module: d for d in self.defects}
+        self._defect_modules = np.array(sorted(self.defect_of), dtype=np.int64)
+        fw = float(sc["array"]["frame_width_m"])
+        self.frame_u = fw / self.geom.length_m
+        self.frame_v = fw / self.geom.width_m
+
+    # ------------------------------------------------------------------ distractors
+    def cloud_factor(self, x, y):
+        """Irradiance factor of cloud shadows at map points (1 = no shadow) [-]."""
+        f = np.ones(np.shape(x))
+        for c in self.clouds:
+            f = f * (1.0 - c(np.asarray(x), np.asarray(y)))
+        return f
+
+    def _place_seams(self, rng, n, step_range):
+        """Rectangles (row0, row1, col0, col1, step_k) in pixels of the global grid."""
+        out = []
+        fr = self.sc["flight"]["frame_px"]
+        for _ in range(n):
+            h = int(rng.uniform(1.0, 2.5) * fr[1] * 0.5)
+            w = int(rng.uniform(1.0, 2.5) * fr[0] * 0.5)
+            r0 = int(rng.integers(0, max(1, self.height - h // 2)))
+            c0 = int(rng.integers(0, max(1, self.width - w // 2)))
+            step = rng.uniform(*step_range) * rng.choice([-1.0, 1.0])
+            out.append((r0, r0 + h, c0, c0 + w, float(step)))
+        return out
+
+    def _place_objects(self, rng, n):
+        """Hot objects on the ground between table rows: (kind, s0, s1, w0, w1, rise_k)."""
+        fld = self.field
+        aisle = fld.pitch - fld.table_depth
+        kinds = [("inverter", 2.4, 1.2, (20.0, 30.0)), ("vehicle", 4.5, 1.8, (12.0, 18.0))]
+        out = []
+        n_aisles = max(fld.n_trows - 1, 0)
+        for k in range(n):
+            kind, length, width, rise = kinds[k % 2]
+            if aisle < width + 0.6 or n_aisles == 0:
+                if aisle >= width + 0.6 or self.sc["ortho"]["margin_m"] < width + 1.0:
+                    log.info("no room between table rows for a %s; not placed", kind)
+                    continue
+                wc = -0.5 - width / 2  # in front of the first row, in the margin
+            else:
+                tr = int(rng.integers(n_aisles))
+                wc = tr * fld.pitch + fld.table_depth + aisle / 2
+            sc_ = rng.uniform(length, max(length + 0.1, fld.total_s - length))
+            out.append((kind, sc_ - length / 2, sc_ + length / 2, wc - width / 2, wc + width / 2,
+                        float(rng.uniform(*rise))))
+        return out
+
+    def _sun_shadow(self):
+        import pandas as pd
+        import pvlib
+
+        mid = self.start + (self.end - self.start) / 2
+        pos = pvlib.solarposition.get_solarposition(pd.DatetimeIndex([mid]), self.sc["site"]["lat"],
+                                                    self.sc["site"]["lon"])
+        elev = max(float(pos["apparent_elevation"].iloc[0]), 8.0)
+        az = math.radians(float(pos["azimuth"].iloc[0]))
+        self.sun_elevation_deg = elev
+        self.sun_azimuth_deg = math.degrees(az)
+        k = 1.0 / math.tan(math.radians(elev))          # shadow length per metre of height
+        d = -k * np.array([math.sin(az), math.cos(az)])  # away from the sun
+        fld = self.field
+        self.shadow_ds = float(d @ fld.a)
+        self.shadow_dw = float(-(d @ fld.c))
+        tilt = math.radians(fld.tilt_deg)
+        h0 = float(self.sc["array"]["mount_height_m"])
+        self.h_low = h0
+        self.h_high = h0 + fld.table_depth / max(math.cos(tilt), 1e-6) * math.sin(tilt)
+
+    def in_shadow(self, s, w):
+        """True where ground at field coordinates (s, w) lies in a table's shadow or under it."""
+        fld = self.field
+        shaded = np.zeros(np.shape(s), bool)
+        dh = self.h_high - self.h_low
+        den = fld.table_depth + dh * self.shadow_dw
+        reach = max(abs(self.shadow_ds), abs(self.shadow_dw)) * self.h_high
+        tr0 = np.floor(w / fld.pitch).astype(np.int64)
+        tb0 = np.floor(s / fld.table_step).astype(np.int64)
+        kr = int(math.ceil(reach / fld.pitch)) + 1
+        kb = int(math.ceil(reach / fld.table_step)) + 1
+        for dtr in range(-kr, kr + 1):
+            tr = tr0 + dtr
+            okr = (tr >= 0) & (tr < fld.n_trows)
+            wp = w - tr * fld.pitch
+            # under the table
+            if abs(den) > 0.1:
+                lam = (wp - self.h_low * self.shadow_dw) / den
+            else:
+                lam = np.full(np.shape(s), -1.0)
+            okl = okr & (lam >= 0) & (lam <= 1)
+            under_w = okr & (wp >= 0) & (wp <= fld.table_depth)
+            h = self.h_low + np.clip(lam, 0, 1) * dh
+            for dtb in range(-kb, kb + 1):
+                tb = tb0 + dtb
+                okb = (tb >= 0) & (tb < fld.n_tables)
+                sp = s - tb * fld.table_step
+                shaded |= okl & okb & (sp - h * self.shadow_ds >= 0) & (sp - h * self.shadow_ds <= fld.table_len)
+                shaded |= under_w & okb & (sp >= 0) & (sp <= fld.table_len)
+        return shaded
+
+    # ------------------------------------------------------------------ temperatures
+    def module_temperature(self, idx, u, v, *, with_frame: bool = True):
+        """True temperature of module points (module index, module-local u, v) [degC]."""
+        idx = np.asarray(idx, np.int64)
+        u = np.asarray(u, float)
+        v = np.asarray(v, float)
+        g = self.geom
+        ci = np.clip(np.floor(u * g.n_along).astype(np.int64), 0, g.n_along - 1)
+        cj = np.clip(np.floor(v * g.n_across).astype(np.int64), 0, g.n_across - 1)
+        th = self.temp_healthy[idx]
+        t = th + self.cell_offset[idx, ci, cj]
+        if with_frame:
+            fr = self.is_frame(u, v)
+            t = np.where(fr, th - float(self.sc["conditions"]["frame_drop"]) * (th - self.temp_air[idx]), t)
+        if self._defect_modules.size:
+            hit = np.isin(idx, self._defect_modules)
+            if hit.any():
+                t = t.copy()
+                for mod in np.unique(idx[hit]):
+                    sel = idx == mod
+                    d = self.defect_of[int(mod)]
+                    t[sel] += d.rise(u[sel], v[sel], g, self.dt_open[mod])
+        return t
+
+    def is_frame(self, u, v):
+        """True on the module frame [-]."""
+        return (u < self.frame_u) | (u > 1 - self.frame_u) | (v < self.frame_v) | (v > 1 - self.frame_v)
+
+    def true_scene(self, x, y):
+        """True temperature and radiometric parameters of map points.
+
+        Returns
+        -------
+        dict
+            ``temp`` [degC], ``material`` (GROUND, GLASS, FRAME, OBJECT), ``idx`` (module or -1),
+            ``u``, ``v``, ``emissivity`` [-], ``temp_sky`` [degC], ``tau`` [-], ``temp_atm`` [degC].
+        """
+        fld = self.field
+        idx, u, v, s, w = fld.locate(x, y)
+        mod = idx >= 0
+        gcfg = self.sc["ground"]
+        shade = self.in_shadow(s, w)
+        sun = self.poa_mean * self.cloud_factor(x, y) / 1000.0 * gcfg["sun_rise_k"]
+        temp = self.temp_air_mean + np.where(shade, gcfg["shade_rise_k"], sun) + gcfg["texture_k"] * self.texture(x, y)
+        material = np.full(idx.shape, GROUND, np.int8)
+        for _kind, s0, s1, w0, w1, rise in self.objects:
+            inside = (s >= s0) & (s <= s1) & (w >= w0) & (w <= w1) & ~mod
+            temp = np.where(inside, self.temp_air_mean + rise, temp)
+            material[inside] = OBJECT
+        emis = np.full(idx.shape, float(gcfg["emissivity"]))
+        tsky = np.full(idx.shape, self.temp_sky)
+        tau = np.full(idx.shape, self.tau_ground)
+        tatm = np.full(idx.shape, self.temp_air_mean)
+        if mod.any():
+            im, um, vm = idx[mod], u[mod], v[mod]
+            temp[mod] = self.module_temperature(im, um, vm)
+            material[mod] = np.where(self.is_frame(um, vm), FRAME, GLASS)
+            emis[mod] = float(self.sc["module"]["emissivity"])
+            bump = np.zeros(im.shape)
+            for r in self.reflections:
+                bump += r(x[mod], y[mod])
+            tsky[mod] = self.temp_sky + bump
+            tau[mod] = self.tau[im]
+            tatm[mod] = self.temp_air[im]
+        return {"temp": temp, "material": material, "idx": idx, "u": u, "v": v,
+                "emissivity": emis, "temp_sky": tsky, "tau": tau, "temp_atm": tatm}
+
+    def apparent(self, scene: dict):
+        """Apparent temperature of the export for the output of :meth:`true_scene` [degC]."""
+        ex = self.sc["export"]
+        return radiometry.apparent_from_true(
+            scene["temp"], emissivity=scene["emissivity"], temp_sky_c=scene["temp_sky"],
+            export_emissivity=float(ex["emissivity"]), export_reflected_c=float(ex["reflected_c"]),
+            transmission=scene["tau"], temp_atm_c=scene["temp_atm"],
+            band_um=tuple(self.sc["camera"]["band_um"]))
+
+    # ------------------------------------------------------------------ camera
+    def pixel_centres(self, row0, col0, nrows, ncols):
+        """Map coordinates of pixel centres of a window of the global grid [m]."""
+        cols = np.arange(col0, col0 + ncols)
+        rows = np.arange(row0, row0 + nrows)
+        x = self.x0 + (cols + 0.5) * self.gsd
+        y = self.y1 - (rows + 0.5) * self.gsd
+        return np.meshgrid(x, y)
+
+    def render_block(self, row0, col0, nrows, ncols):
+        """Final apparent temperature of a window of the global grid [degC], NaN = nodata.
+
+        The window is rendered with a halo so the point-spread function is exact at its
+        edges; noise is seeded by the window's position, so the result does not depend on
+        which other windows are rendered.
+        """
+        cam = self.sc["camera"]
+        sigma = float(cam["psf_sigma_px"])
+        halo = int(math.ceil(4 * sigma)) + 1 if sigma > 0 else 0
+        x, y = self.pixel_centres(row0 - halo, col0 - halo, nrows + 2 * halo, ncols + 2 * halo)
+        scene = self.true_scene(x, y)
+        app = np.asarray(self.apparent(scene), float)
+        rr = np.arange(row0 - halo, row0 + nrows + halo)[:, None]
+        cc = np.arange(col0 - halo, col0 + ncols + halo)[None, :]
+        for r0, r1, c0, c1, step in self.seams:
+            app = app + np.where((rr >= r0) & (rr < r1) & (cc >= c0) & (cc < c1), step, 0.0)
+        if sigma > 0:
+            app = ndimage.gaussian_filter(app, sigma, mode="nearest")
+        app = app[halo:halo + nrows, halo:halo + ncols]
+        rng = np.random.default_rng([self.seed, 8, row0, col0])
+        app = app + rng.normal(0.0, float(cam["netd_k"]), app.shape)
+        xc, yc = x[halo:halo + nrows, halo:halo + ncols], y[halo:halo + nrows, halo:halo + ncols]
+        border = float(self.sc["ortho"]["nodata_border_m"])
+        if border > 0:
+            e = self.extent
+            dist = np.minimum.reduce([xc - e[0], e[2] - xc, yc - e[1], e[3] - yc])
+            app = np.where(dist < border * (1.0 + 0.6 * np.tanh(self.wobble(xc, yc))), np.nan, app)
+        return app
