@@ -562,3 +562,36 @@ def test_cli_errors_are_one_line(site, tmp_path):
     assert not (tmp_path / "c.geojson").exists()
     r = run(["history", "changes", site["db"]])  # --out missing: click usage error
     assert r.exit_code == 2
+
+
+def test_change_invariants_on_random_flights(tmp_path):
+    """Seeded random pairs of flights: the change classes partition exactly the modules with an
+    anomaly in either flight, and their definitions hold for every feature."""
+    rng = np.random.default_rng(11)
+    kinds = ["hot_cell", "hot_cell_multi", "junction_box", "bypassed_substring", "soiling", "pid"]
+    ids = module_ids()
+    for trial in range(3):
+        flights = []
+        for j, (cond, start) in enumerate(((SPRING, "2026-03-01T10:00:00+01:00"),
+                                           (SUMMER, "2026-08-01T10:00:00+02:00"))):
+            chosen = rng.choice(len(ids), size=8, replace=False)
+            anomalies = [{"module_id": ids[i], "defect": str(rng.choice(kinds)),
+                          "severity": str(rng.choice(["monitor", "repair", "safety"])),
+                          "dtn": float(np.round(rng.uniform(1, 30), 2)), "loss": 10.0} for i in chosen]
+            flights.append(write_result(tmp_path / f"t{trial}_{j}", flight_id=f"R{trial}-{j}", start=start,
+                                        end=start.replace("T10", "T11"), conditions=cond,
+                                        anomalies=anomalies, seed=100 * trial + j))
+        db = tmp_path / f"rand{trial}.gpkg"
+        for f in flights:
+            H.add_flight(db, f)
+        fc = H.compare_flights(db)
+        anom = [{a["properties"]["module_id"] for a in json.loads((f / "anomalies.geojson").read_text())["features"]}
+                for f in flights]
+        p = props_by_module(fc)
+        assert set(p) == anom[0] | anom[1]
+        for m, q in p.items():
+            assert (q["change"] == "new") == (m not in anom[0])
+            assert (q["change"] == "resolved") == (m not in anom[1])
+            assert q["suspicious"] == (q["change"] == "resolved")  # no maintenance recorded
+            assert not q["repaired"]
+        assert sum(fc["counts"][c] for c in H.CHANGE_CLASSES) == len(p)
