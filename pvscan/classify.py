@@ -1,0 +1,1048 @@
+"""Defect patterns in the module-local frame, and their severity.
+
+Every module is compared with what its healthy neighbours look like, cell by cell:
+
+1. its reference temperature (:func:`pvscan.thermal.local_reference`, robust, same row
+   first) and the *shape* its neighbours share (the median over the same neighbours of
+   each cell's and substring's deviation from the neighbour's own median: cooler frames,
+   warm ground seen at a lower edge, reflection gradients). The residual
+   ``R = cell - reference - shape`` is what this module has and its neighbours have not;
+2. the physical yardstick ``eta * G / U(v)`` (:func:`pvscan.thermal.open_module_rise`):
+   a substring whose bypass diode conducts, a module or a string that is open, turns the
+   power it no longer delivers into heat, so its residual plateau must fit that rise. A
+   raised strip that fits it is a bypassed substring; a whole module at that rise is open;
+3. one small function per pattern (``pattern_*``), all vectorised over modules, each
+   returning the modules it recognises, the region, the region's temperature and a
+   confidence;
+4. string-level patterns on top: a run of consecutive open modules of one string (or
+   table row) is one ``open_string``, judged against a reference that excludes the
+   string itself; potential-induced degradation (``pid``) is a string whose modules near
+   the negative end run warmer with a patchy, edge-weighted cell pattern that fades
+   along the string;
+5. overlapping patterns get one class (``precedence``) with the others listed in
+   ``other_defects``, then :func:`assign_severity` sets ``severity`` and ``iec_class``.
+
+Two passes: the first finds suspects, which are then excluded from every neighbour's
+reference before the second, final pass.
+
+References
+----------
+.. [1] IEC TS 62446-3:2017, Photovoltaic (PV) systems - Requirements for testing,
+   documentation and maintenance - Part 3: Photovoltaic modules and plants - Outdoor
+   infrared thermography.
+.. [2] D. Faiman, "Assessing the outdoor operating temperature of photovoltaic modules",
+   Progress in Photovoltaics 16(4), 307-315, 2008. doi:10.1002/pip.813
+"""
+from __future__ import annotations
+
+import logging
+import warnings
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+from scipy import ndimage
+
+from pvscan.thermal import (_REFERENCE_DEFAULTS, _section, local_reference, normalise_delta_t,
+                            open_module_rise)
+
+__all__ = [
+    "classify",
+    "assign_severity",
+    "ANOMALY_COLUMNS",
+    "DEFECTS",
+    "SPOT_DEFECTS",
+    "pattern_open_module",
+    "pattern_bypassed_substring",
+    "pattern_hot_cell",
+    "pattern_junction_box",
+    "pattern_soiling",
+    "pattern_open_string",
+    "pattern_pid",
+    "adjacent_modules",
+]
+
+logger = logging.getLogger(__name__)
+
+#: Columns of the anomalies DataFrame, in order (see DEVELOPERS.md).
+ANOMALY_COLUMNS = [
+    "module_index", "module_id", "module_indices", "module_ids", "defect", "other_defects",
+    "region", "region_uv", "delta_t_k", "delta_t_norm_k", "t_max_c", "confidence",
+    "severity", "iec_class",
+]
+
+#: The defect vocabulary.
+DEFECTS = ("hot_cell", "hot_cell_multi", "bypassed_substring", "bypassed_substring_multi",
+           "open_module", "open_string", "pid", "soiling", "junction_box")
+
+#: Patterns whose region temperature is its 95th percentile (the others: the median).
+SPOT_DEFECTS = frozenset({"hot_cell", "hot_cell_multi", "junction_box"})
+
+_CLASSIFY_DEFAULTS = {
+    "min_valid_fraction": 0.6,
+    "min_cell_fraction": 0.5,
+    "noise_z": 5.0,
+    "local_irradiance": True,
+    "local_irradiance_min": 0.4,
+    "local_irradiance_max": 1.3,
+    "open_ratio_min": 0.55,
+    "open_ratio_max": 1.8,
+    "open_uniform_iqr": 0.35,
+    "open_uniform_floor_k": 0.8,
+    "substring_raise_min": 0.5,
+    "substring_rest_max": 0.25,
+    "substring_ratio_min": 0.5,
+    "substring_ratio_max": 1.8,
+    "substring_cover_min": 0.8,
+    "hot_cell_min_k": 3.0,
+    "hot_cell_whole_min": 0.5,
+    "hot_cell_contrast_min": 0.5,
+    "hot_cell_peak_share": 0.6,
+    "junction_box_min_k": 3.0,
+    "junction_box_spot_max": 0.5,
+    "junction_box_straddle_min": 0.25,
+    "soiling_min_k": 1.5,
+    "soiling_cover_min": 0.7,
+    "soiling_top_max": 0.3,
+    "open_string_min_modules": 2,
+    "pid_min_modules": 2,
+    "pid_seed_z": 3.0,
+    "pid_extend_z": 1.0,
+    "pid_ring_min": 0.15,
+    "pid_max_position": 0.5,
+    "precedence": ["open_string", "open_module", "bypassed_substring_multi", "bypassed_substring",
+                   "junction_box", "pid", "soiling", "hot_cell_multi", "hot_cell"],
+}
+
+_SEVERITY_DEFAULTS = {
+    "safety_t_max_c": 100.0,
+    "safety_delta_t_norm_k": 40.0,
+    "safety_junction_box_delta_t_norm_k": 20.0,
+    "repair_hot_cell_delta_t_norm_k": 10.0,
+    "monitor_defects": ["soiling"],
+    "iec_class_safety": "CoA 3",
+    "iec_class_other": "CoA 2",
+}
+
+
+# --------------------------------------------------------------------------------------
+# helpers
+# --------------------------------------------------------------------------------------
+
+def _nanmedian(a, axis=None):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanmedian(a, axis=axis)
+
+
+def _nanpercentile(a, q, axis=None):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanpercentile(a, q, axis=axis)
+
+
+def _nanmean(a, axis=None):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanmean(a, axis=axis)
+
+
+def _nanmax(a, axis=None):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanmax(a, axis=axis)
+
+
+def _nanmin(a, axis=None):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanmin(a, axis=axis)
+
+
+def _robust_sigma(x) -> float:
+    x = np.asarray(x, float)
+    x = x[np.isfinite(x)]
+    if x.size < 3:
+        return float("nan")
+    return 1.4826 * float(np.median(np.abs(x - np.median(x))))
+
+
+def _spec(module_spec, name, default=None):
+    if isinstance(module_spec, Mapping):
+        return module_spec.get(name, default)
+    return getattr(module_spec, name, default)
+
+
+def _neighbour_median(values: np.ndarray, nb: np.ndarray, chunk: int = 2048) -> np.ndarray:
+    """Median over each module's neighbours (``nb``, -1 = none) of ``values[neighbour]``."""
+    n = len(values)
+    out = np.full(values.shape, np.nan, dtype=np.float64)
+    for s in range(0, n, chunk):
+        idx = nb[s:s + chunk]
+        g = values[np.maximum(idx, 0)].astype(np.float64)
+        g[idx < 0] = np.nan
+        out[s:s + chunk] = _nanmedian(g, axis=1)
+    return out
+
+
+@dataclass
+class Features:
+    """Everything the pattern functions look at, vectorised over modules.
+
+    Temperatures [degC], differences [K]; ``R*`` arrays are residuals: measured minus
+    reference minus the shape the healthy neighbours share.
+    """
+
+    n: int
+    n_along: int
+    n_across: int
+    nsub: int
+    ok: np.ndarray            # (n,) bool: classified
+    ref: np.ndarray           # (n,) reference [degC]
+    t_median: np.ndarray      # (n,)
+    t_max: np.ndarray         # (n,)
+    dT: np.ndarray            # (n,) t_median - ref [K]
+    rise: np.ndarray          # (n,) open-module rise at the module [K]
+    cm: np.ndarray            # (n, A, C) cell median [degC]
+    cp: np.ndarray            # (n, A, C) cell p95 [degC]
+    R: np.ndarray             # (n, A, C) cell-median residual [K]
+    R95: np.ndarray           # (n, A, C) cell-p95 residual [K]
+    Rsub: np.ndarray          # (n, B) substring-median residual [K]
+    base: np.ndarray          # (n,) median residual over the module's cells [K]
+    base_sub: np.ndarray      # (n, B) median residual over each substring's cells [K]
+    col_sub: np.ndarray       # (C,) substring of each cell column
+    lower_u: np.ndarray       # (n,) bool: lower edge at u = 0 (else v = 0)
+    sig_cell: float           # robust spread of healthy cell residuals [K]
+    sig_mod: float            # robust spread of healthy module residuals [K]
+    split_box: bool
+    extra: dict = field(default_factory=dict)
+
+
+@dataclass
+class Hits:
+    """Result of one pattern function.
+
+    Attributes
+    ----------
+    defect : str
+    hit : ndarray of bool (n,)
+    confidence : ndarray (n,) [0..1]
+    temp_c : ndarray (n,)
+        Region temperature (p95 for spot patterns, median for area patterns) [degC].
+    region : dict[int, str]
+    boxes : dict[int, list of (u0, u1, v0, v1)]
+    """
+
+    defect: str
+    hit: np.ndarray
+    confidence: np.ndarray
+    temp_c: np.ndarray
+    region: dict = field(default_factory=dict)
+    boxes: dict = field(default_factory=dict)
+
+
+def _quality(signal, threshold):
+    """0..1: how clearly a signal clears its threshold (0 at the threshold, 1 at twice it)."""
+    with np.errstate(invalid="ignore", divide="ignore"):
+        q = (np.asarray(signal, float) - threshold) / np.maximum(np.abs(threshold), 1e-6)
+    return np.clip(np.nan_to_num(q, nan=0.0), 0.0, 1.0)
+
+
+def _fit(ratio, tol=0.35):
+    """0..1: how well a rise fits the physical yardstick (log-normal closeness)."""
+    with np.errstate(invalid="ignore", divide="ignore"):
+        x = np.log(np.where(ratio > 0, ratio, np.nan)) / tol
+    return np.nan_to_num(np.exp(-0.5 * x * x), nan=0.0)
+
+
+def _conf(*terms):
+    q = np.ones_like(np.asarray(terms[0], float))
+    for t in terms:
+        q = q * np.asarray(t, float)
+    return np.clip(0.4 + 0.6 * q, 0.0, 1.0)
+
+
+# --------------------------------------------------------------------------------------
+# features
+# --------------------------------------------------------------------------------------
+
+def _features(modules, stats, conditions, module_spec, ref, nb, ok, cfg, cfg_ref) -> Features:
+    table = stats.table
+    cm = np.asarray(stats.cell_median, dtype=np.float64)
+    cp = np.asarray(stats.cell_p95, dtype=np.float64)
+    cc = np.asarray(stats.cell_count)
+    n, A, C = cm.shape
+    sm = np.asarray(stats.sub_median, dtype=np.float64)
+    B = sm.shape[1]
+    t_med = table["t_median_c"].to_numpy(dtype=float)
+    t_max = table["t_max_c"].to_numpy(dtype=float)
+
+    # cells with too few pixels compared to the module's typical cell are left out
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        typ = np.nanmedian(np.where(cc > 0, cc, np.nan).reshape(n, -1), axis=1)
+    thin = cc < float(cfg["min_cell_fraction"]) * np.nan_to_num(typ, nan=1.0)[:, None, None]
+    cm = np.where(thin, np.nan, cm)
+    cp = np.where(thin, np.nan, cp)
+
+    # the shape the healthy neighbours share, relative to each neighbour's own median
+    shape_c = _neighbour_median(cm - t_med[:, None, None], nb)
+    shape_p = _neighbour_median(cp - t_med[:, None, None], nb)
+    shape_s = _neighbour_median(sm - t_med[:, None], nb)
+    shape_c = np.nan_to_num(shape_c, nan=0.0)
+    shape_p = np.nan_to_num(shape_p, nan=0.0)
+    shape_s = np.nan_to_num(shape_s, nan=0.0)
+    R = cm - ref[:, None, None] - shape_c
+    R95 = cp - ref[:, None, None] - shape_p
+    Rsub = sm - ref[:, None] - shape_s
+
+    col_sub = np.minimum(((np.arange(C) + 0.5) / C * B).astype(int), B - 1)
+    base = _nanmedian(R.reshape(n, -1), axis=1)
+    base_sub = np.stack([_nanmedian(R[:, :, col_sub == k].reshape(n, -1), axis=1) for k in range(B)], axis=1)
+
+    g = conditions["poa_global"].to_numpy(dtype=float) if "poa_global" in conditions else np.full(n, np.nan)
+    ws = conditions["wind_speed"].to_numpy(dtype=float) if "wind_speed" in conditions else np.full(n, 1.0)
+    ta = conditions["temp_air"].to_numpy(dtype=float) if "temp_air" in conditions else np.full(n, np.nan)
+    eta = float(_spec(module_spec, "efficiency"))
+    u0, u1 = float(cfg_ref["u0"]), float(cfg_ref["u1"])
+    rise = np.asarray(open_module_rise(eta, g, ws, u0, u1), dtype=float)
+    if bool(cfg["local_irradiance"]):
+        # a module's rise over ambient is G / U (Faiman): relative to the plant's typical
+        # rise it tells the local irradiance (cloud shadows, drift) the sensor did not see
+        over = ref - ta
+        typical = _nanmedian(over[ok]) if ok.any() else np.nan
+        if np.isfinite(typical) and typical > 1.0:
+            s = np.clip(over / typical, float(cfg["local_irradiance_min"]), float(cfg["local_irradiance_max"]))
+            rise = rise * np.where(np.isfinite(s), s, 1.0)
+    if not np.isfinite(rise).any():
+        logger.warning("no irradiance for the open-module rise; area patterns use 3 K")
+        rise = np.full(n, 3.0)
+    else:
+        rise = np.where(np.isfinite(rise), rise, _nanmedian(rise))
+
+    lower = modules["lower_edge"].astype(str).to_numpy() if "lower_edge" in modules else np.full(n, "u")
+    lower_u = lower != "v"
+
+    dT = t_med - ref
+    healthy = ok & np.isfinite(dT)
+    sig_mod = _robust_sigma(dT[healthy])
+    X = R - base[:, None, None]
+    sig_cell = _robust_sigma(X[healthy].ravel()) if healthy.any() else float("nan")
+    sig_mod = 0.5 if not np.isfinite(sig_mod) else sig_mod
+    sig_cell = 0.3 if not np.isfinite(sig_cell) else sig_cell
+    split = str(_spec(module_spec, "junction_box", "edge") or "edge") == "split"
+    return Features(n=n, n_along=A, n_across=C, nsub=B, ok=ok, ref=ref, t_median=t_med, t_max=t_max,
+                    dT=dT, rise=rise, cm=cm, cp=cp, R=R, R95=R95, Rsub=Rsub, base=base,
+                    base_sub=base_sub, col_sub=col_sub, lower_u=lower_u, sig_cell=sig_cell,
+                    sig_mod=sig_mod, split_box=split)
+
+
+def adjacent_modules(modules: pd.DataFrame, tol: float = 0.3) -> np.ndarray:
+    """The modules touching each module across its four edges.
+
+    Returns
+    -------
+    ndarray of int, shape (n, 4)
+        Index of the module beyond the edge ``u = 0``, ``u = 1``, ``v = 0``, ``v = 1``
+        (-1 when none): the module whose centre lies within ``tol`` of the centre of this
+        module shifted by one module length (or width) plus a small gap [-] of the width.
+    """
+    from scipy.spatial import cKDTree
+
+    from pvscan.thermal import module_centres
+
+    n = len(modules)
+    out = np.full((n, 4), -1, dtype=np.int64)
+    if n < 2:
+        return out
+    xy = module_centres(modules)
+    fu = modules[["fux", "fuy"]].to_numpy(dtype=float)
+    fv = modules[["fvx", "fvy"]].to_numpy(dtype=float)
+    width = np.hypot(fv[:, 0], fv[:, 1])
+    finite = np.isfinite(xy).all(axis=1)
+    tree = cKDTree(np.where(finite[:, None], xy, 1e12))
+    for col, (vec, sign) in enumerate(((fu, -1), (fu, 1), (fv, -1), (fv, 1))):
+        # the neighbour's centre sits one own extent away (plus a gap of a few
+        # centimetres): take the nearest centre around that point
+        target = xy + sign * vec
+        d, j = tree.query(np.where(finite[:, None], target, 1e12), k=1)
+        ok = finite & np.isfinite(d) & (d <= np.maximum(tol * width, 0.05) + 0.1) & (j != np.arange(n))
+        out[ok, col] = j[ok]
+    return out
+
+
+# --------------------------------------------------------------------------------------
+# pattern functions (one per pattern, vectorised over modules)
+# --------------------------------------------------------------------------------------
+
+def _iqr(x, axis):
+    q = _nanpercentile(x, [25, 75], axis=axis)
+    return q[1] - q[0]
+
+
+def pattern_open_module(F: Features, cfg: Mapping, rsub=None, dT=None, isolated: bool = True) -> Hits:
+    """A whole module raised uniformly by about the open-module rise ``eta * G / U``.
+
+    Parameters
+    ----------
+    F : Features
+    cfg : mapping
+        ``[classify]`` settings (``open_ratio_min``, ``open_ratio_max``, ``open_uniform_iqr``,
+        ``open_uniform_floor_k``, ``substring_raise_min``).
+    rsub, dT : ndarray, optional
+        Substring and module residuals against another reference (used by the open-string
+        test, whose reference excludes the string itself).
+    isolated : bool
+        Require that no module touching this one is raised as much (a raised area that
+        carries on into the next module is an image artefact such as a mosaic seam, or
+        a run of open modules, which :func:`pattern_open_string` judges).
+
+    Returns
+    -------
+    Hits
+        Region ``module``, box (0, 1, 0, 1); region temperature = the module's median.
+    """
+    rsub = F.Rsub if rsub is None else rsub
+    dT = F.dT if dT is None else dT
+    r = F.rise
+    lo = _nanmin(rsub, axis=1)
+    ratio = dT / r
+    spread = _iqr((F.R - F.base[:, None, None]).reshape(F.n, -1), axis=1)
+    uniform = spread <= np.maximum(float(cfg["open_uniform_iqr"]) * r, float(cfg["open_uniform_floor_k"]))
+    floor = float(cfg["noise_z"]) * F.sig_mod
+    hit = (F.ok & (lo >= float(cfg["substring_raise_min"]) * r) & (ratio >= float(cfg["open_ratio_min"]))
+           & (ratio <= float(cfg["open_ratio_max"])) & uniform & (dT >= floor))
+    if isolated and "adjacent" in F.extra:
+        adj = F.extra["adjacent"]
+        t_adj = np.where(adj >= 0, F.t_median[np.maximum(adj, 0)], np.nan)
+        with np.errstate(invalid="ignore"):
+            carried = ((t_adj - (F.t_median - dT)[:, None]) >= 0.5 * dT[:, None]).any(axis=1)
+        hit &= ~carried
+    conf = _conf(_fit(ratio), _quality(dT, floor))
+    h = Hits("open_module", hit, conf, F.ref + dT)
+    for i in np.flatnonzero(hit):
+        h.region[i] = "module"
+        h.boxes[i] = [(0.0, 1.0, 0.0, 1.0)]
+    return h
+
+
+def pattern_bypassed_substring(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
+    """One (or several, not all) substrings raised as a uniform plateau fitting the rise.
+
+    A conducting bypass diode leaves its substring's cells producing nothing, so the whole
+    strip (substring ``k = floor(v * bypass_diodes)``, running the full length) runs
+    ``eta * G / U`` warmer than the producing substrings. The plateau must be aligned with
+    the substring boundaries: every cell column inside raised, every column outside not,
+    and flat within (a mosaic seam or a reflection crossing the module at an angle is not).
+
+    Returns
+    -------
+    (Hits, Hits)
+        ``bypassed_substring`` and ``bypassed_substring_multi``; region temperature = the
+        median of the raised substrings.
+    """
+    n, B, C = F.n, F.nsub, F.n_across
+    r = F.rise
+    lo = _nanmin(F.Rsub, axis=1)
+    raise_k = F.Rsub - lo[:, None]
+    raised = raise_k >= float(cfg["substring_raise_min"]) * r[:, None]
+    rest_ok = np.where(raised, True, raise_k <= float(cfg["substring_rest_max"]) * r[:, None])
+    nr = raised.sum(axis=1)
+    clean = rest_ok.all(axis=1) & (nr >= 1) & (nr < B)
+    with np.errstate(invalid="ignore"):
+        mean_raise = np.where(nr > 0, np.nansum(np.where(raised, raise_k, 0.0), axis=1) / np.maximum(nr, 1), np.nan)
+    ratio = mean_raise / r
+    fit_ok = (ratio >= float(cfg["substring_ratio_min"])) & (ratio <= float(cfg["substring_ratio_max"]))
+    floor = float(cfg["noise_z"]) * F.sig_cell
+    # column coverage: inside raised columns every cell at least half the plateau, outside none
+    Xlo = F.R - _nanmin(F.base_sub, axis=1)[:, None, None]
+    half = 0.5 * mean_raise[:, None, None]
+    col_raised = raised[:, F.col_sub]                      # (n, C)
+    up = Xlo >= half
+    valid = np.isfinite(Xlo)
+    inside = col_raised[:, None, :] & valid
+    outside = ~col_raised[:, None, :] & valid
+    with np.errstate(invalid="ignore", divide="ignore"):
+        cover_in = (up & inside).sum(axis=(1, 2)) / np.maximum(inside.sum(axis=(1, 2)), 1)
+        cover_out = (up & outside).sum(axis=(1, 2)) / np.maximum(outside.sum(axis=(1, 2)), 1)
+    cover_ok = (cover_in >= float(cfg["substring_cover_min"])) & (cover_out <= 1.0 - float(cfg["substring_cover_min"]))
+    # flat plateau: spread inside the raised strips small compared with the rise
+    Xin = np.where(inside, Xlo, np.nan).reshape(n, -1)
+    flat = _iqr(Xin, axis=1) <= np.maximum(float(cfg["open_uniform_iqr"]) * r, float(cfg["open_uniform_floor_k"]))
+    hit = F.ok & clean & fit_ok & cover_ok & flat & (mean_raise >= floor)
+    hit &= ~_carried_across_edge(F, raised)
+    conf = _conf(_fit(ratio), _quality(mean_raise, floor), np.clip((cover_in - cover_out), 0, 1))
+    # region temperature: median of the raised substrings' measured medians
+    temp = _nanmedian(np.where(raised, F.extra["sub_median"], np.nan), axis=1)
+    single = Hits("bypassed_substring", hit & (nr == 1), conf, temp)
+    multi = Hits("bypassed_substring_multi", hit & (nr >= 2), conf, temp)
+    for i in np.flatnonzero(hit):
+        ks = np.flatnonzero(raised[i])
+        target = single if len(ks) == 1 else multi
+        target.region[i] = "substring" if len(ks) == 1 else "substrings"
+        target.boxes[i] = [(0.0, 1.0, k / B, (k + 1) / B) for k in ks]
+    return single, multi
+
+
+def _carried_across_edge(F: Features, raised: np.ndarray) -> np.ndarray:
+    """True where a raised edge substring carries on into the touching module's facing strip.
+
+    A bypassed substring ends at the module's edge; a mosaic seam or a reflection does not:
+    the neighbour's strip facing the raised one is as warm as it.
+    """
+    n, B = raised.shape
+    out = np.zeros(n, bool)
+    adj = F.extra.get("adjacent")
+    if adj is None or n == 0:
+        return out
+    sm = F.extra["sub_median"]
+    centres = F.extra["sub_centres"]           # (n, B, 2)
+    edges = F.extra["edge_points"]             # (n, 2, 2): v = 0 and v = 1 edge midpoints
+    t_cool = _nanmedian(np.where(raised, np.nan, sm), axis=1)
+    t_warm = _nanmedian(np.where(raised, sm, np.nan), axis=1)
+    for side, k_edge, col in ((0, 0, 2), (1, B - 1, 3)):
+        j = adj[:, col]
+        has = (j >= 0) & raised[:, k_edge]
+        if not has.any():
+            continue
+        jj = np.maximum(j, 0)
+        dist = np.linalg.norm(centres[jj] - edges[:, side][:, None, :], axis=2)
+        kf = np.argmin(dist, axis=1)
+        t_face = sm[jj, kf]
+        with np.errstate(invalid="ignore"):
+            out |= has & ((t_face - t_cool) >= 0.5 * (t_warm - t_cool))
+    return out
+
+
+def _box_filter_median(X: np.ndarray) -> np.ndarray:
+    """Median of each cell's (up to 8) neighbours within the module, NaN-aware."""
+    n, A, C = X.shape
+    P = np.pad(X, ((0, 0), (1, 1), (1, 1)), constant_values=np.nan)
+    stack = [P[:, 1 + di:1 + di + A, 1 + dj:1 + dj + C] for di in (-1, 0, 1) for dj in (-1, 0, 1)
+             if (di, dj) != (0, 0)]
+    return _nanmedian(np.stack(stack, axis=0), axis=0)
+
+
+def pattern_hot_cell(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
+    """Single cells markedly warmer than their substring and their neighbouring cells.
+
+    A hot cell (a cell in reverse bias: crack, shading, mismatch) heats the whole cell, so
+    its median rises with its p95 (a junction-box spot raises the p95 only). It must stand
+    out from its own substring (so a hot cell inside a bypassed substring is still seen)
+    and from its neighbouring cells (so a smooth reflection is not a hot cell). Adjacent
+    hot cells are counted separately when each is at least ``hot_cell_peak_share`` of the
+    hottest cell around it; heat spreading into neighbours is not.
+
+    Returns
+    -------
+    (Hits, Hits)
+        ``hot_cell`` (one cell) and ``hot_cell_multi`` (several); region temperature =
+        the hottest hot cell's p95.
+    """
+    base = F.base_sub[:, F.col_sub][:, None, :]
+    X = F.R - base
+    X95 = F.R95 - base
+    thr = max(float(cfg["hot_cell_min_k"]), float(cfg["noise_z"]) * F.sig_cell)
+    loc = X - _box_filter_median(X)
+    with np.errstate(invalid="ignore"):
+        cand = ((X >= thr) & (X95 >= thr) & (X >= float(cfg["hot_cell_whole_min"]) * X95)
+                & (loc >= float(cfg["hot_cell_contrast_min"]) * X))
+    Xc = np.where(cand, X, -np.inf)
+    peak = ndimage.maximum_filter(Xc, size=(1, 3, 3), mode="constant", cval=-np.inf)
+    hot = cand & (X >= float(cfg["hot_cell_peak_share"]) * peak)
+    hot &= F.ok[:, None, None]
+    count = hot.sum(axis=(1, 2))
+    n = F.n
+    xmax = np.where(hot, X95, -np.inf).reshape(n, -1).max(axis=1) if n else np.zeros(0)
+    temp = np.where(hot, F.cp, -np.inf).reshape(n, -1).max(axis=1) if n else np.zeros(0)
+    temp = np.where(count > 0, temp, np.nan)
+    conf = _conf(_quality(xmax, thr))
+    single = Hits("hot_cell", count == 1, conf, temp)
+    multi = Hits("hot_cell_multi", count >= 2, conf, temp)
+    A, C = F.n_along, F.n_across
+    for i in np.flatnonzero(count):
+        cells = np.argwhere(hot[i])
+        target = single if len(cells) == 1 else multi
+        target.region[i] = "cell" if len(cells) == 1 else "cells"
+        target.boxes[i] = [(a / A, (a + 1) / A, c / C, (c + 1) / C) for a, c in cells]
+    F.extra["hot_cells"] = hot
+    return single, multi
+
+
+def _box_centres(F: Features) -> list[tuple[float, float]]:
+    if F.split_box:
+        return [(0.5, (k + 0.5) / F.nsub) for k in range(F.nsub)]
+    return [(0.0, 0.5), (1.0, 0.5)]
+
+
+def pattern_junction_box(F: Features, cfg: Mapping) -> Hits:
+    """A small hot spot where a junction box sits.
+
+    Full-cell modules with one edge box: the centre of a short edge (``u`` near 0 or 1,
+    ``v`` = 0.5); half-cut modules with split boxes: the middle line ``u`` = 0.5, at the
+    centre of each substring. The spot straddles the cells meeting at that point and
+    raises their p95 but much less their median (a hot cell raises the whole cell).
+
+    Returns
+    -------
+    Hits
+        Region ``spot``; region temperature = the highest p95 of the spot's cells.
+    """
+    A, C, n = F.n_along, F.n_across, F.n
+    uc = (np.arange(A) + 0.5) / A
+    vc = (np.arange(C) + 0.5) / C
+    X = F.R - F.base[:, None, None]
+    X95 = F.R95 - F.base[:, None, None]
+    thr = max(float(cfg["junction_box_min_k"]), float(cfg["noise_z"]) * F.sig_cell)
+    best = np.full(n, -np.inf)
+    best_t = np.full(n, np.nan)
+    best_box = [None] * n
+    best_q = np.zeros(n)
+    for (u0, v0) in _box_centres(F):
+        ii = np.flatnonzero(np.abs(uc - u0) <= 1.0 / A + 1e-9)
+        jj = np.flatnonzero(np.abs(vc - v0) <= 1.0 / C + 1e-9)
+        sub95 = X95[:, ii][:, :, jj].reshape(n, -1)
+        subm = X[:, ii][:, :, jj].reshape(n, -1)
+        subt = F.cp[:, ii][:, :, jj].reshape(n, -1)
+        if sub95.shape[1] == 0:
+            continue
+        s = np.where(np.isfinite(sub95), sub95, -np.inf)
+        order = np.argsort(-s, axis=1)
+        top = np.take_along_axis(s, order[:, :1], axis=1)[:, 0]
+        second = np.take_along_axis(s, order[:, 1:2], axis=1)[:, 0] if s.shape[1] > 1 else np.full(n, -np.inf)
+        med_top = np.take_along_axis(subm, order[:, :1], axis=1)[:, 0]
+        # the rest of the same cell rows: a spot stands out of them, a band along the edge not
+        others = np.setdiff1d(np.arange(C), jj)
+        rest = _nanmedian(X95[:, ii][:, :, others].reshape(n, -1), axis=1) if others.size else np.zeros(n)
+        rest = np.nan_to_num(rest, nan=0.0)
+        with np.errstate(invalid="ignore"):
+            spot = med_top <= float(cfg["junction_box_spot_max"]) * top
+            straddle = second >= float(cfg["junction_box_straddle_min"]) * top
+            alone = (top - rest) >= 0.5 * top
+        ok = (top >= thr) & (spot | straddle) & alone
+        better = ok & (top > best)
+        best = np.where(better, top, best)
+        best_t = np.where(better, _nanmax(subt, axis=1), best_t)
+        best_q = np.where(better, _quality(top, thr) * np.where(spot & straddle, 1.0, 0.7), best_q)
+        hu, hv = 0.5 / A, 0.5 / C
+        for i in np.flatnonzero(better):
+            best_box[i] = (max(0.0, u0 - hu), min(1.0, u0 + hu), max(0.0, v0 - hv), min(1.0, v0 + hv))
+    hit = F.ok & np.isfinite(best) & (best > -np.inf)
+    h = Hits("junction_box", hit, _conf(best_q), best_t)
+    for i in np.flatnonzero(hit):
+        h.region[i] = "spot"
+        h.boxes[i] = [best_box[i]]
+    return h
+
+
+def _band_masks(F: Features) -> tuple[np.ndarray, np.ndarray]:
+    """(n, A, C) masks of the lower-edge band of cells and of the opposite (upper) band."""
+    A, C, n = F.n_along, F.n_across, F.n
+    low = np.zeros((n, A, C), bool)
+    top = np.zeros((n, A, C), bool)
+    lu = F.lower_u
+    low[lu, 0, :] = True
+    top[lu, A - 1, :] = True
+    low[~lu, :, 0] = True
+    top[~lu, :, C - 1] = True
+    return low, top
+
+
+def pattern_soiling(F: Features, cfg: Mapping) -> Hits:
+    """A warm band along the module's lower edge (dirt collecting where water runs off).
+
+    The lower edge is ``u = 0`` when ``lower_edge == "u"`` and ``v = 0`` when ``"v"``.
+    The band of cells along it must be raised all along the edge (p95, since a thin
+    band covers only part of each cell) while the opposite edge is not.
+
+    Returns
+    -------
+    Hits
+        Region ``band``; region temperature = the median over the band cells of their p95.
+    """
+    n = F.n
+    low, top = _band_masks(F)
+    X95 = F.R95 - F.base[:, None, None]
+    band = _nanmedian(np.where(low, X95, np.nan).reshape(n, -1), axis=1)
+    topv = _nanmedian(np.where(top, X95, np.nan).reshape(n, -1), axis=1)
+    thr = max(float(cfg["soiling_min_k"]), float(cfg["noise_z"]) * F.sig_cell)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        up = (X95 >= 0.5 * band[:, None, None]) & low
+        cover = up.sum(axis=(1, 2)) / np.maximum(low.sum(axis=(1, 2)), 1)
+        hit = F.ok & (band >= thr) & (cover >= float(cfg["soiling_cover_min"])) & \
+            (topv <= float(cfg["soiling_top_max"]) * band)
+    temp = _nanmedian(np.where(low, F.cp, np.nan).reshape(n, -1), axis=1)
+    h = Hits("soiling", hit, _conf(_quality(band, thr), np.clip(cover, 0, 1)), temp)
+    A, C = F.n_along, F.n_across
+    for i in np.flatnonzero(hit):
+        h.region[i] = "band"
+        h.boxes[i] = [(0.0, 1.0 / A, 0.0, 1.0)] if F.lower_u[i] else [(0.0, 1.0, 0.0, 1.0 / C)]
+    return h
+
+
+def _groups(modules: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, bool]:
+    """Group code (string, else table row) and the position along it for each module."""
+    n = len(modules)
+    has_string = ("string_id" in modules.columns and "string_index" in modules.columns
+                  and modules["string_id"].notna().any())
+    if has_string:
+        key = modules["string_id"].astype("string")
+        pos = pd.to_numeric(modules["string_index"], errors="coerce").to_numpy(dtype=float)
+        codes, _ = pd.factorize(key)
+        codes = np.asarray(codes, np.int64)
+        codes[modules["string_id"].isna().to_numpy() | ~np.isfinite(pos)] = -1
+        return codes, pos, True
+    if "table_id" in modules.columns:
+        row = modules["table_row"] if "table_row" in modules.columns else pd.Series(0, index=modules.index)
+        key = modules["table_id"].astype("string") + "\x00" + row.astype("string")
+        codes, _ = pd.factorize(key)
+        pos = pd.to_numeric(modules.get("table_col", pd.Series(np.arange(n))), errors="coerce").to_numpy(float)
+        codes = np.asarray(codes, np.int64)
+        codes[modules["table_id"].isna().to_numpy()] = -1
+        return codes, pos, False
+    return np.full(n, -1, np.int64), np.arange(n, dtype=float), False
+
+
+def _runs(mask_sorted: np.ndarray) -> list[tuple[int, int]]:
+    """(start, stop) of runs of True in a 1-D boolean array."""
+    d = np.diff(np.concatenate([[0], mask_sorted.astype(np.int8), [0]]))
+    return list(zip(np.flatnonzero(d == 1), np.flatnonzero(d == -1)))
+
+
+def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
+                        open_other: np.ndarray, open_own: np.ndarray) -> list[list[int]]:
+    """Runs of consecutive modules of one string (or table row) all raised like open modules.
+
+    Parameters
+    ----------
+    F : Features
+    cfg : mapping
+    groups, pos : ndarray
+        Group code (string, else table row; -1 none) and position along it.
+    open_other : ndarray of bool
+        Module looks open against a reference that excludes its own group.
+    open_own : ndarray of bool
+        Module looks open against its ordinary local reference.
+
+    Returns
+    -------
+    list of list of int
+        Module indices of each run, in string order (at least ``open_string_min_modules``).
+    """
+    cand = F.ok & open_other
+    out = []
+    min_len = int(cfg["open_string_min_modules"])
+    for g in np.unique(groups[cand & (groups >= 0)]):
+        idx = np.flatnonzero(groups == g)
+        idx = idx[np.argsort(pos[idx], kind="stable")]
+        for a, b in _runs(cand[idx]):
+            if b - a >= min_len:
+                out.append([int(i) for i in idx[a:b]])
+    return out
+
+
+def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
+                d_other: np.ndarray, is_string: bool, exclude: np.ndarray) -> list[list[int]]:
+    """Potential-induced degradation along a string.
+
+    PID shunts cells of the modules nearest the string's negative end (``string_index``
+    1) most, fading along the string, in a patchy pattern strongest at the cells next to
+    the frame. Each module gets a score from its excess over a reference that excludes
+    its own string (``d_other`` [K]) and the contrast of its edge ring of cells over its
+    interior (both in units of the open-module rise). A string qualifies when its module
+    nearest the negative end is clearly raised (``pid_seed_z`` robust standard deviations)
+    with an edge-weighted pattern; the affected run then extends from the negative end
+    while the score stays above ``pid_extend_z``.
+
+    Returns
+    -------
+    list of list of int
+        The affected modules of each PID string (needs ``string_id``/``string_index``).
+    """
+    if not is_string:
+        return []
+    n, A, C = F.n, F.n_along, F.n_across
+    ii, jj = np.indices((A, C))
+    ring = (ii == 0) | (ii == A - 1) | (jj == 0) | (jj == C - 1)
+    R = F.R
+    ring_m = _nanmean(np.where(ring[None], R, np.nan).reshape(n, -1), axis=1)
+    core_m = _nanmean(np.where(~ring[None], R, np.nan).reshape(n, -1), axis=1)
+    contrast = (ring_m - core_m) / F.rise
+    sig = _robust_sigma(d_other[F.ok & ~exclude]) if (F.ok & ~exclude).any() else F.sig_mod
+    sig = F.sig_mod if not np.isfinite(sig) else sig
+    sig = max(sig, 0.05)
+    z = d_other / sig
+    out = []
+    for g in np.unique(groups[groups >= 0]):
+        idx = np.flatnonzero(groups == g)
+        idx = idx[np.argsort(pos[idx], kind="stable")]
+        if len(idx) < 3:
+            continue
+        first = idx[0]
+        if exclude[first] or not F.ok[first]:
+            continue
+        if not (z[first] >= float(cfg["pid_seed_z"]) and contrast[first] >= float(cfg["pid_ring_min"])):
+            continue
+        run = [int(first)]
+        for i in idx[1:]:
+            if exclude[i] or not F.ok[i] or z[i] < float(cfg["pid_extend_z"]):
+                break
+            run.append(int(i))
+        if len(run) < int(cfg["pid_min_modules"]) or len(run) > float(cfg["pid_max_position"]) * len(idx) + 1:
+            continue
+        # fading: the first half of the run warmer than the second half
+        zs = z[run]
+        if len(run) >= 3 and np.mean(zs[: len(run) // 2]) < np.mean(zs[len(run) - len(run) // 2:]):
+            continue
+        out.append(run)
+    return out
+
+
+# --------------------------------------------------------------------------------------
+# orchestration
+# --------------------------------------------------------------------------------------
+
+def _detect(F: Features, cfg: Mapping) -> list[Hits]:
+    hits = [pattern_open_module(F, cfg)]
+    hits += list(pattern_bypassed_substring(F, cfg))
+    hits += list(pattern_hot_cell(F, cfg))
+    hits.append(pattern_junction_box(F, cfg))
+    hits.append(pattern_soiling(F, cfg))
+    return hits
+
+
+def _geometry(modules: pd.DataFrame, nsub: int) -> dict:
+    """Adjacency, substring centres and the v = 0 / v = 1 edge midpoints in map coordinates."""
+    f = {c: modules[c].to_numpy(dtype=float) for c in ("fx0", "fy0", "fux", "fuy", "fvx", "fvy")}
+    p0 = np.column_stack([f["fx0"], f["fy0"]])
+    fu = np.column_stack([f["fux"], f["fuy"]])
+    fv = np.column_stack([f["fvx"], f["fvy"]])
+    vk = (np.arange(nsub) + 0.5) / nsub
+    centres = p0[:, None, :] + 0.5 * fu[:, None, :] + vk[None, :, None] * fv[:, None, :]
+    edges = np.stack([p0 + 0.5 * fu, p0 + 0.5 * fu + fv], axis=1)
+    return {"adjacent": adjacent_modules(modules), "sub_centres": centres, "edge_points": edges}
+
+
+def _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, ok, healthy, groups, pos, is_string):
+    t_med = stats.table["t_median_c"].to_numpy(dtype=float)
+    rr = local_reference(modules, t_med, healthy, cfg_ref, return_details=True)
+    F = _features(modules, stats, conditions, module_spec, rr.reference_c, rr.neighbours, ok, cfg, cfg_ref)
+    F.extra["sub_median"] = np.asarray(stats.sub_median, dtype=np.float64)
+    F.extra["suspect"] = rr.suspect
+    F.extra.update(_geometry(modules, F.nsub))
+    hits = _detect(F, cfg)
+    # a reference that excludes the module's own string (or row): a whole string raised
+    # together would otherwise be its own reference
+    ro = local_reference(modules, t_med, healthy, cfg_ref, exclude_group=groups, return_details=True)
+    ref_o = np.where(np.isfinite(ro.reference_c), ro.reference_c, F.ref)
+    d_other = t_med - ref_o
+    rsub_o = F.Rsub + (F.ref - ref_o)[:, None]
+    open_other = pattern_open_module(F, cfg, rsub=rsub_o, dT=d_other, isolated=False).hit
+    F.extra.update(ref_other=ref_o, d_other=d_other, open_other=open_other)
+    return F, hits
+
+
+def classify(modules, stats, conditions, module_spec, settings=None, confidence_factor: float = 1.0,
+             progress=None):
+    """Classify every module: local reference, delta T, defect patterns and severity.
+
+    Parameters
+    ----------
+    modules : GeoDataFrame
+        Modules (``module_id``, ``table_id``, ``string_id``, ``string_index``, ``table_row``,
+        ``table_col``, module-local frame, ``lower_edge``), projected CRS [m].
+    stats : ZonalStats-like
+        True glass temperatures [degC]: ``table`` (``t_median_c``, ``t_max_c``,
+        ``valid_fraction`` ...), ``cell_median``, ``cell_p95``, ``cell_count``
+        (n, n_along, n_across), ``sub_median``, ``sub_p95`` (n, bypass_diodes).
+    conditions : DataFrame
+        Aligned with the modules: ``poa_global`` [W/m2], ``temp_air`` [degC],
+        ``wind_speed`` [m/s].
+    module_spec : ModuleSpec-like
+        ``efficiency``, ``bypass_diodes``, ``junction_box`` ("edge" | "split"), ...
+    settings : Pipeline, optional
+        Pipeline settings (sections ``reference``, ``classify``, ``severity``); default
+        ``pipelines/post_flight.toml``.
+    confidence_factor : float
+        0..1, multiplies every confidence (acquisition limits not met lower it).
+    progress : callable, optional
+        ``progress(stage, done, total)``.
+
+    Returns
+    -------
+    anomalies : DataFrame
+        One row per anomaly, columns :data:`ANOMALY_COLUMNS`.
+    module_table : DataFrame
+        Aligned with the modules: ``reference_c`` [degC], ``delta_t_k``, ``delta_t_norm_k``
+        [K], ``defect`` (None when healthy), ``classified`` (False when too little of the
+        module was imaged to judge it), ``confidence``.
+    """
+    if settings is None:
+        from pvscan.settings import load_pipeline
+
+        settings = load_pipeline()
+    cfg = _section(settings, "classify", _CLASSIFY_DEFAULTS)
+    cfg_ref = _section(settings, "reference", _REFERENCE_DEFAULTS)
+    cfg_ref.setdefault("u0", 25.0)
+    cfg_ref.setdefault("u1", 6.84)
+    cfg_sev = _section(settings, "severity", _SEVERITY_DEFAULTS)
+    cf = float(np.clip(confidence_factor if confidence_factor is not None else 1.0, 0.0, 1.0))
+    n = len(modules)
+    if progress:
+        progress("classify", 0, 3)
+    table = stats.table
+    vf = table["valid_fraction"].to_numpy(dtype=float) if "valid_fraction" in table else np.ones(n)
+    t_med = table["t_median_c"].to_numpy(dtype=float)
+    ok = np.isfinite(t_med) & (np.nan_to_num(vf, nan=0.0) >= float(cfg["min_valid_fraction"]))
+    if (~ok).any():
+        logger.info("%d of %d modules not classified (valid fraction below %.2f)",
+                    int((~ok).sum()), n, float(cfg["min_valid_fraction"]))
+    groups, pos, is_string = _groups(modules)
+
+    # pass 1: suspects
+    F1, hits1 = _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, ok, ok, groups, pos, is_string)
+    suspect = F1.extra["suspect"] | F1.extra["open_other"]
+    for h in hits1:
+        suspect |= h.hit
+    if progress:
+        progress("classify", 1, 3)
+    # pass 2: final, suspects excluded from every reference
+    F, hits = _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, ok, ok & ~suspect,
+                     groups, pos, is_string)
+    if progress:
+        progress("classify", 2, 3)
+    by = {h.defect: h for h in hits}
+    open_own = by["open_module"].hit
+    runs = pattern_open_string(F, cfg, groups, pos, F.extra["open_other"], open_own)
+    in_run = np.zeros(n, bool)
+    for run in runs:
+        in_run[run] = True
+    any_area = in_run | open_own | by["bypassed_substring"].hit | by["bypassed_substring_multi"].hit
+    pid_runs = pattern_pid(F, cfg, groups, pos, F.extra["d_other"], is_string, any_area)
+
+    g_cond = conditions["poa_global"].to_numpy(dtype=float) if "poa_global" in conditions else np.full(n, np.nan)
+    w_cond = conditions["wind_speed"].to_numpy(dtype=float) if "wind_speed" in conditions else np.full(n, np.nan)
+    norm = lambda dt, i: normalise_delta_t(dt, g_cond[i], w_cond[i], g_ref=float(cfg_ref.get("g_ref_w_m2", 1000.0)),  # noqa: E731
+                                           wind_ref=float(cfg_ref.get("wind_ref_m_s", 1.0)),
+                                           u0=float(cfg_ref["u0"]), u1=float(cfg_ref["u1"]))
+    mod_id = modules["module_id"].astype(str).to_numpy() if "module_id" in modules else np.arange(n).astype(str)
+    t_max = F.t_max
+    rows = []
+    precedence = list(cfg["precedence"])
+    defect_of = np.full(n, None, dtype=object)
+    conf_of = np.full(n, np.nan)
+
+    # string-level anomalies first
+    for run in runs:
+        i0 = run[0]
+        ref_o = F.extra["ref_other"][run]
+        dts = t_med[run] - ref_o
+        dt = float(np.median(dts))
+        dtn = float(np.median(norm(dts, np.asarray(run))))
+        conf = float(np.median(by["open_module"].confidence[run]) if open_own[run].any() else 0.8)
+        rows.append(dict(module_index=i0, module_id=mod_id[i0], module_indices=list(run),
+                         module_ids=[mod_id[i] for i in run], defect="open_string", other_defects=[],
+                         region="modules", region_uv=[(0.0, 1.0, 0.0, 1.0)], delta_t_k=dt,
+                         delta_t_norm_k=dtn, t_max_c=float(np.nanmax(t_max[run])), confidence=cf * conf))
+        defect_of[run] = "open_string"
+        conf_of[run] = cf * conf
+    pid_hits = np.zeros(n, bool)
+    pid_conf = np.zeros(n)
+    for run in pid_runs:
+        pid_hits[run] = True
+        z = F.extra["d_other"][run] / max(F.sig_mod, 0.05)
+        pid_conf[run] = _conf(np.clip(z / 6.0, 0, 1), np.full(len(run), 1.0))
+    pid = Hits("pid", pid_hits, pid_conf, t_med.copy())
+    for i in np.flatnonzero(pid_hits):
+        pid.region[i] = "module"
+        pid.boxes[i] = [(0.0, 1.0, 0.0, 1.0)]
+    by["pid"] = pid
+
+    for i in range(n):
+        if in_run[i] or not F.ok[i]:
+            continue
+        present = [d for d in precedence if d in by and by[d].hit[i]]
+        if not present:
+            continue
+        d = present[0]
+        h = by[d]
+        temp = float(h.temp_c[i])
+        ref_i = F.extra["ref_other"][i] if d == "pid" else F.ref[i]
+        dt = temp - ref_i
+        conf = cf * float(h.confidence[i])
+        rows.append(dict(module_index=i, module_id=mod_id[i], module_indices=[i], module_ids=[mod_id[i]],
+                         defect=d, other_defects=present[1:], region=h.region.get(i, "module"),
+                         region_uv=h.boxes.get(i, [(0.0, 1.0, 0.0, 1.0)]), delta_t_k=dt,
+                         delta_t_norm_k=float(norm(dt, i)), t_max_c=float(t_max[i]), confidence=conf))
+        defect_of[i] = d
+        conf_of[i] = conf
+
+    anomalies = pd.DataFrame(rows, columns=[c for c in ANOMALY_COLUMNS if c not in ("severity", "iec_class")])
+    anomalies = assign_severity(anomalies, cfg_sev)
+    anomalies = anomalies[ANOMALY_COLUMNS].reset_index(drop=True)
+    if len(anomalies):
+        anomalies["module_index"] = anomalies["module_index"].astype(int)
+
+    dT = t_med - F.ref
+    module_table = pd.DataFrame({
+        "reference_c": F.ref,
+        "delta_t_k": dT,
+        "delta_t_norm_k": norm(dT, np.arange(n)),
+        "defect": defect_of,
+        "classified": F.ok,
+        "confidence": conf_of,
+    }, index=modules.index)
+    if progress:
+        progress("classify", 3, 3)
+    logger.info("classified %d modules: %d anomalies", int(F.ok.sum()), len(anomalies))
+    return anomalies, module_table
+
+
+def assign_severity(anomalies: pd.DataFrame, settings=None) -> pd.DataFrame:
+    """Set ``severity`` (safety | repair | monitor) and ``iec_class`` of each anomaly.
+
+    * ``safety``: temperatures that threaten the encapsulant, backsheet, connectors or the
+      junction box, or a fire: ``t_max_c >= safety_t_max_c`` for any pattern; a spot
+      pattern with ``delta_t_norm_k >= safety_delta_t_norm_k``; a junction box with
+      ``delta_t_norm_k >= safety_junction_box_delta_t_norm_k``;
+    * ``monitor``: patterns in ``monitor_defects`` (soiling: cleaning, not repair) and hot
+      cells below ``repair_hot_cell_delta_t_norm_k``;
+    * ``repair``: everything else (lost output: open strings and modules, bypassed
+      substrings, PID, hot cells, junction boxes).
+
+    ``iec_class`` follows the classes of abnormality of IEC TS 62446-3 (from memory:
+    CoA 1 no abnormality, CoA 2 thermal abnormality, CoA 3 safety-relevant thermal
+    abnormality); anomalies are CoA 2 or CoA 3.
+
+    Parameters
+    ----------
+    anomalies : DataFrame
+        With ``defect``, ``delta_t_norm_k`` [K], ``t_max_c`` [degC].
+    settings : Pipeline or mapping, optional
+        The ``[severity]`` section.
+
+    Returns
+    -------
+    DataFrame
+        A copy with ``severity`` and ``iec_class``.
+    """
+    cfg = _section(settings, "severity", _SEVERITY_DEFAULTS)
+    out = anomalies.copy()
+    if out.empty:
+        out["severity"] = pd.Series(dtype=object)
+        out["iec_class"] = pd.Series(dtype=object)
+        return out
+    d = out["defect"].astype(str).to_numpy()
+    dtn = pd.to_numeric(out["delta_t_norm_k"], errors="coerce").to_numpy(dtype=float)
+    tmax = pd.to_numeric(out["t_max_c"], errors="coerce").to_numpy(dtype=float)
+    spot = np.isin(d, list(SPOT_DEFECTS))
+    hot = np.isin(d, ["hot_cell", "hot_cell_multi"])
+    with np.errstate(invalid="ignore"):
+        safety = (tmax >= float(cfg["safety_t_max_c"])) | (spot & (dtn >= float(cfg["safety_delta_t_norm_k"]))) \
+            | ((d == "junction_box") & (dtn >= float(cfg["safety_junction_box_delta_t_norm_k"])))
+        monitor = np.isin(d, list(cfg["monitor_defects"])) | (hot & (dtn < float(cfg["repair_hot_cell_delta_t_norm_k"])))
+    sev = np.where(safety, "safety", np.where(monitor, "monitor", "repair"))
+    out["severity"] = sev.astype(object)
+    out["iec_class"] = np.where(safety, str(cfg["iec_class_safety"]), str(cfg["iec_class_other"])).astype(object)
+    return out

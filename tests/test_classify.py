@@ -1,0 +1,472 @@
+"""Defect patterns and severity on small synthetic plants built cell by cell.
+
+Each test builds a few tables of modules (module-local frames, optionally rotated,
+landscape or half-cut), gives every cell a temperature from the Faiman heat balance as
+computed by pvlib (the outside reference for module temperatures), adds one defect or one
+distractor, and checks what :func:`pvscan.classify.classify` reports.
+
+Sources of the numbers used here:
+* module temperature and the open-module rise: pvlib.temperature.faiman (Faiman 2008,
+  doi:10.1002/pip.813): a module delivering no power runs ``eta * (T_faiman - T_air)``
+  warmer, the share eta of the absorbed heat it no longer exports;
+* hot-cell rises of 10-30 K, junction-box spots of 5-20 K, soiling bands of a few kelvin:
+  common practice (typical thermograms of these faults);
+* severity limits (100 degC, 40 K, 20 K): from memory (see pipelines/post_flight.toml).
+"""
+from __future__ import annotations
+
+from types import SimpleNamespace
+
+import numpy as np
+import pandas as pd
+import pvlib
+import pytest
+
+from pvscan.classify import ANOMALY_COLUMNS, assign_severity, classify
+from pvscan.settings import load_pipeline
+
+POA = 850.0
+TA = 25.0
+WIND = 2.0
+PMAX, WIDTH, LENGTH = 410.0, 1.038, 2.094
+ETA = PMAX / (1000.0 * WIDTH * LENGTH)
+
+
+def faiman_rise(poa=POA, wind=WIND):
+    """Module rise over air [K] from pvlib's Faiman model (the reference implementation)."""
+    return float(pvlib.temperature.faiman(poa, TA, wind) - TA)
+
+
+def open_rise(poa=POA, wind=WIND):
+    """Rise of a module delivering no power over a producing one [K]: eta * (T - T_air)."""
+    return ETA * faiman_rise(poa, wind)
+
+
+class Plant:
+    """A small synthetic plant at cell level.
+
+    Tables of ``rows x cols`` modules, ``n_tables`` side by side along x and ``table_rows``
+    rows of tables along y, all rotated by ``rotation_deg``. Portrait: the module's long
+    side (u) runs across the table, up the slope, and the lower edge is u = 0; landscape:
+    the long side runs along the table and the lower edge is v = 0.
+    """
+
+    def __init__(self, rng, *, n_tables=2, table_rows=2, rows=2, cols=12, orientation="portrait",
+                 rotation_deg=0.0, half_cut=False, split=False, poa=POA, wind=WIND, module_spread=0.3,
+                 cell_noise=0.12, px_noise=0.25, strings="row"):
+        self.rng = rng
+        self.poa, self.wind = poa, wind
+        self.spec = SimpleNamespace(
+            pmax_w=PMAX, width_m=WIDTH, length_m=LENGTH, cells_across=6, cells_along=12,
+            half_cut=half_cut, bypass_diodes=3, junction_box="split" if split else "edge",
+            area_m2=WIDTH * LENGTH, efficiency=ETA, n_along=24 if half_cut else 12, n_across=6)
+        A, C = self.spec.n_along, self.spec.n_across
+        th = np.radians(rotation_deg)
+        rot = np.array([[np.cos(th), -np.sin(th)], [np.sin(th), np.cos(th)]])
+        rec = []
+        gap = 0.02
+        for tr in range(table_rows):
+            for t in range(n_tables):
+                for r in range(rows):
+                    for c in range(cols):
+                        if orientation == "portrait":
+                            step_v, step_u = WIDTH + gap, LENGTH + gap
+                            x0 = t * (cols * step_v + 1.0) + c * step_v
+                            y0 = tr * 7.0 + r * step_u
+                            fu, fv = np.array([0.0, LENGTH]), np.array([WIDTH, 0.0])
+                            lower = "u"
+                        else:
+                            step_u, step_v = LENGTH + gap, WIDTH + gap
+                            x0 = t * (cols * step_u + 1.0) + c * step_u
+                            y0 = tr * 7.0 + r * step_v
+                            fu, fv = np.array([LENGTH, 0.0]), np.array([0.0, WIDTH])
+                            lower = "v"
+                        p0 = rot @ np.array([x0, y0])
+                        fu_r, fv_r = rot @ fu, rot @ fv
+                        tid = f"T{tr}-{t}"
+                        sid = f"{tid}-R{r + 1}" if strings == "row" else None
+                        rec.append(dict(module_id=f"{tid}-{r + 1}-{c + 1:02d}", table_id=tid,
+                                        string_id=sid, string_index=c + 1 if sid else None,
+                                        table_row=r + 1, table_col=c + 1,
+                                        fx0=p0[0], fy0=p0[1], fux=fu_r[0], fuy=fu_r[1],
+                                        fvx=fv_r[0], fvy=fv_r[1], lower_edge=lower))
+        self.modules = pd.DataFrame(rec)
+        self.modules["string_index"] = self.modules["string_index"].astype("Int64")
+        n = len(self.modules)
+        self.n = n
+        base = TA + faiman_rise(poa, wind) + rng.normal(0.0, module_spread, n)
+        self.cm = base[:, None, None] + rng.normal(0.0, cell_noise, (n, A, C))
+        self.extra95 = np.full((n, A, C), 1.65 * px_noise)   # p95 - median of a cell's pixels
+        self.peak = np.zeros(n)                               # extra of the hottest pixel
+        self.valid = np.ones(n)
+        self.truth: dict[int, str] = {}
+        # cell centres in map coordinates
+        uu = (np.arange(A) + 0.5) / A
+        vv = (np.arange(C) + 0.5) / C
+        m = self.modules
+        self.cx = (m.fx0.to_numpy()[:, None, None] + uu[None, :, None] * m.fux.to_numpy()[:, None, None]
+                   + vv[None, None, :] * m.fvx.to_numpy()[:, None, None])
+        self.cy = (m.fy0.to_numpy()[:, None, None] + uu[None, :, None] * m.fuy.to_numpy()[:, None, None]
+                   + vv[None, None, :] * m.fvy.to_numpy()[:, None, None])
+
+    # ---- defects ------------------------------------------------------------------------
+    def index(self, table="T0-0", row=1, col=6):
+        m = self.modules
+        return int(np.flatnonzero((m.table_id == table) & (m.table_row == row) & (m.table_col == col))[0])
+
+    def cols_of_sub(self, k):
+        C, B = self.spec.n_across, self.spec.bypass_diodes
+        return [j for j in range(C) if (j * B) // C == k]
+
+    def bypass(self, i, subs, factor=1.0):
+        for k in subs:
+            self.cm[i][:, self.cols_of_sub(k)] += factor * open_rise(self.poa, self.wind)
+        self.truth[i] = "bypassed_substring" if len(subs) == 1 else "bypassed_substring_multi"
+
+    def open(self, i, label="open_module"):
+        self.cm[i] += open_rise(self.poa, self.wind)
+        self.truth[i] = label
+
+    def hot(self, i, cells, rise):
+        for (a, c) in cells:
+            self.cm[i, a, c] += rise
+            self.peak[i] = max(self.peak[i], rise)
+        self.truth[i] = "hot_cell" if len(cells) == 1 else "hot_cell_multi"
+
+    def junction_box(self, i, rise, k=1):
+        A, C = self.spec.n_along, self.spec.n_across
+        if self.spec.junction_box == "split":
+            a = [A // 2 - 1, A // 2]
+            jc = (k * C) // 3 + C // 6
+            c = [jc - 1, jc]
+        else:
+            a = [A - 1]
+            c = [C // 2 - 1, C // 2]
+        for aa in a:
+            for cc in c:
+                self.extra95[i, aa, cc] += rise   # the spot raises the p95, not the median
+        self.peak[i] = max(self.peak[i], rise)
+        self.truth[i] = "junction_box"
+
+    def soiling(self, i, rise, cover_median=False):
+        A, C = self.spec.n_along, self.spec.n_across
+        sl = (slice(0, 1), slice(None)) if self.modules.lower_edge[i] == "u" else (slice(None), slice(0, 1))
+        self.extra95[i][sl] += rise
+        if cover_median:
+            self.cm[i][sl] += rise
+        self.truth[i] = "soiling"
+
+    def pid(self, string_id, n_mod, f0=0.45):
+        m = self.modules
+        idx = np.flatnonzero(m.string_id == string_id)
+        idx = idx[np.argsort(m.string_index.to_numpy()[idx])][:n_mod]
+        A, C = self.spec.n_along, self.spec.n_across
+        ii, jj = np.indices((A, C))
+        edge = (ii == 0) | (ii == A - 1) | (jj == 0) | (jj == C - 1)
+        for k, i in enumerate(idx):
+            w = self.rng.gamma(2.0, 0.5, (A, C)) + np.where(edge, 1.0, 0.2)
+            f = f0 * (1 / 3) ** (k / max(n_mod - 1, 1))
+            self.cm[i] += f * open_rise(self.poa, self.wind) * w / w.mean()
+            self.truth[int(i)] = "pid"
+        return idx
+
+    # ---- distractors --------------------------------------------------------------------
+    def field(self, fn, p95_too=True):
+        """Add ``fn(x, y)`` [K] to every cell (an image-wide artefact)."""
+        self.cm += fn(self.cx, self.cy)
+
+    # ---- inputs of classify -------------------------------------------------------------
+    def inputs(self):
+        n = self.n
+        A, C, B = self.spec.n_along, self.spec.n_across, self.spec.bypass_diodes
+        cp = self.cm + self.extra95
+        flat = self.cm.reshape(n, -1)
+        table = pd.DataFrame({
+            "t_mean_c": flat.mean(axis=1), "t_median_c": np.median(flat, axis=1),
+            "t_p95_c": np.percentile(cp.reshape(n, -1), 95, axis=1),
+            "t_max_c": cp.reshape(n, -1).max(axis=1) + self.peak * 0.1,
+            "t_min_c": flat.min(axis=1), "t_std_k": flat.std(axis=1), "valid_fraction": self.valid,
+            "n_pixels": np.full(n, 800),
+        })
+        sub = np.stack([np.median(self.cm[:, :, self.cols_of_sub(k)].reshape(n, -1), axis=1)
+                        for k in range(B)], axis=1)
+        sub95 = np.stack([np.percentile(cp[:, :, self.cols_of_sub(k)].reshape(n, -1), 95, axis=1)
+                          for k in range(B)], axis=1)
+        stats = SimpleNamespace(table=table, cell_median=self.cm.astype(np.float32),
+                                cell_p95=cp.astype(np.float32),
+                                cell_count=np.full((n, A, C), 12, np.int32),
+                                sub_median=sub.astype(np.float32), sub_p95=sub95.astype(np.float32))
+        cond = pd.DataFrame({"poa_global": np.full(n, self.poa), "temp_air": np.full(n, TA),
+                             "wind_speed": np.full(n, self.wind)})
+        return self.modules, stats, cond, self.spec
+
+    def run(self, confidence_factor=1.0, settings=None):
+        return classify(*self.inputs(), settings or load_pipeline(), confidence_factor=confidence_factor)
+
+
+def found(anomalies):
+    """{module_index: defect} of the anomalies (every module of an open string)."""
+    out = {}
+    for _, a in anomalies.iterrows():
+        for i in a.module_indices:
+            out[int(i)] = a.defect
+    return out
+
+
+# ---------------------------------------------------------------------------------------
+# healthy plants and distractors: no anomaly at all
+# ---------------------------------------------------------------------------------------
+
+def test_healthy_plant_gives_no_anomaly(rng):
+    an, mt = Plant(rng).run()
+    assert list(an.columns) == ANOMALY_COLUMNS
+    assert len(an) == 0
+    assert mt["defect"].isna().all()
+    # delta T of healthy modules scatters like the module spread (0.3 K), centred on 0
+    assert abs(float(np.median(mt.delta_t_k))) < 0.15
+
+
+def test_cloud_shadow_over_several_tables_is_no_defect(rng):
+    p = Plant(rng, n_tables=3)
+    # a shadow 25 % deep (module rise over air drops by a quarter), 15 m across
+    rise = faiman_rise()
+    p.field(lambda x, y: -0.25 * rise * np.exp(-((x - 14.0) ** 2 + (y - 5.0) ** 2) / (2 * 7.0 ** 2)))
+    an, _ = p.run()
+    assert len(an) == 0, an[["module_id", "defect"]]
+
+
+def test_mosaic_seam_step_across_a_table_is_no_defect(rng):
+    p = Plant(rng)
+    # seam across table T0-0 at x = 6.1 m, slanted: everything beyond is 2 K warmer
+    p.field(lambda x, y: np.where(x + 0.15 * y > 6.1, 2.0, 0.0))
+    an, _ = p.run()
+    assert len(an) == 0, an[["module_id", "defect"]]
+
+
+def test_sky_reflection_gradient_is_no_defect(rng):
+    p = Plant(rng, rotation_deg=30.0)
+    p.field(lambda x, y: 0.15 * x - 0.1 * y)   # a few kelvin over the plant
+    an, _ = p.run()
+    assert len(an) == 0, an[["module_id", "defect"]]
+
+
+def test_hot_ground_between_rows_is_no_defect(rng):
+    p = Plant(rng)
+    # warm ground seen at the lower edge of every lower-row module (blurred into the band)
+    low = p.modules.table_row.to_numpy() == 1
+    p.extra95[low, 0, :] += 4.0
+    p.cm[low, 0, :] += 1.0
+    an, _ = p.run()
+    assert len(an) == 0, an[["module_id", "defect"]]
+
+
+# ---------------------------------------------------------------------------------------
+# one test per pattern
+# ---------------------------------------------------------------------------------------
+
+@pytest.mark.parametrize("orientation, rotation", [("portrait", 0.0), ("portrait", 37.0), ("landscape", -20.0)])
+def test_bypassed_substring(rng, orientation, rotation):
+    p = Plant(rng, orientation=orientation, rotation_deg=rotation)
+    i = p.index(col=5)
+    p.bypass(i, [0])
+    an, mt = p.run()
+    assert found(an) == {i: "bypassed_substring"}
+    a = an.iloc[0]
+    assert a.region == "substring" and a.region_uv == [(0.0, 1.0, 0.0, 1 / 3)]
+    # the strip's median rise is the open-module rise eta * G / U (pvlib Faiman); tolerance:
+    # module spread 0.3 K and cell noise of the synthetic plant
+    assert a.delta_t_k == pytest.approx(open_rise(), abs=0.6)
+    assert mt.defect[i] == "bypassed_substring"
+
+
+def test_bypassed_substring_multi_half_cut(rng):
+    p = Plant(rng, half_cut=True)
+    i = p.index(table="T1-0", row=2, col=7)
+    p.bypass(i, [1, 2])
+    an, _ = p.run()
+    assert found(an) == {i: "bypassed_substring_multi"}
+    assert an.iloc[0].region == "substrings"
+    assert len(an.iloc[0].region_uv) == 2
+
+
+def test_open_module_and_normalised_delta_t(rng):
+    p = Plant(rng, poa=700.0, wind=4.0)
+    i = p.index(col=8)
+    p.open(i)
+    an, mt = p.run()
+    assert found(an) == {i: "open_module"}
+    a = an.iloc[0]
+    assert a.delta_t_k == pytest.approx(open_rise(700.0, 4.0), abs=0.6)
+    # CONTRACT normalisation: dT * 1000/G * U(v)/U(1 m/s), U from pvlib's Faiman defaults
+    u = lambda v: 25.0 + 6.84 * v  # noqa: E731
+    assert a.delta_t_norm_k == pytest.approx(a.delta_t_k * 1000 / 700 * u(4.0) / u(1.0), rel=1e-9)
+    # normalised, an open module's rise is eta * 1000 / U(1 m/s), whatever the flight's conditions
+    assert a.delta_t_norm_k == pytest.approx(ETA * 1000 / u(1.0), abs=1.0)
+    assert a.severity == "repair"
+
+
+def test_open_string_is_one_anomaly_with_all_its_modules(rng):
+    p = Plant(rng)
+    m = p.modules
+    members = np.flatnonzero(m.string_id == "T0-0-R2")
+    for i in members:
+        p.open(int(i), label="open_string")
+    an, mt = p.run()
+    assert len(an) == 1, an[["module_id", "defect"]]
+    a = an.iloc[0]
+    assert a.defect == "open_string"
+    assert sorted(a.module_indices) == sorted(int(i) for i in members)
+    assert a.module_id == m.module_id[members[np.argmin(m.string_index.to_numpy()[members])]]
+    assert a.delta_t_k == pytest.approx(open_rise(), abs=0.6)
+    assert (mt.defect[members] == "open_string").all()
+
+
+def test_open_string_run_without_strings_uses_table_rows(rng):
+    p = Plant(rng, strings=None)
+    run = [p.index(table="T1-1", row=1, col=c) for c in range(3, 9)]
+    for i in run:
+        p.open(i, label="open_string")
+    an, _ = p.run()
+    assert len(an) == 1 and an.iloc[0].defect == "open_string"
+    assert an.iloc[0].module_indices == run
+
+
+def test_hot_cell(rng):
+    p = Plant(rng, rotation_deg=12.0)
+    i = p.index(col=3)
+    p.hot(i, [(4, 2)], 15.0)
+    an, _ = p.run()
+    assert found(an) == {i: "hot_cell"}
+    a = an.iloc[0]
+    A, C = p.spec.n_along, p.spec.n_across
+    assert a.region == "cell" and a.region_uv == [(4 / A, 5 / A, 2 / C, 3 / C)]
+    # spot pattern: delta T from the cell's p95 (15 K rise + 1.65 x 0.25 K pixel noise)
+    assert a.delta_t_k == pytest.approx(15.0 + 1.65 * 0.25, abs=0.8)
+
+
+def test_hot_cell_multi_counts_adjacent_cells(rng):
+    p = Plant(rng, orientation="landscape")
+    i = p.index(table="T0-1", col=4)
+    p.hot(i, [(3, 1), (3, 2), (9, 5)], 12.0)
+    an, _ = p.run()
+    assert found(an) == {i: "hot_cell_multi"}
+    assert len(an.iloc[0].region_uv) == 3
+
+
+def test_junction_box_edge(rng):
+    p = Plant(rng)
+    i = p.index(col=9)
+    p.junction_box(i, 10.0)
+    an, _ = p.run()
+    assert found(an) == {i: "junction_box"}
+    u0, u1, v0, v1 = an.iloc[0].region_uv[0]
+    assert u1 == pytest.approx(1.0) and v0 < 0.5 < v1        # centre of the upper short edge
+
+
+def test_junction_box_split_half_cut(rng):
+    p = Plant(rng, half_cut=True, split=True)
+    i = p.index(col=2)
+    p.junction_box(i, 8.0, k=2)
+    an, _ = p.run()
+    assert found(an) == {i: "junction_box"}
+    u0, u1, v0, v1 = an.iloc[0].region_uv[0]
+    assert u0 < 0.5 < u1 and v0 < 5 / 6 < v1                  # middle line, third substring
+
+
+def test_hot_cell_at_the_junction_box_is_a_hot_cell(rng):
+    p = Plant(rng)
+    i = p.index(col=9)
+    p.hot(i, [(11, 2)], 12.0)                                 # whole cell next to the box
+    an, _ = p.run()
+    assert found(an) == {i: "hot_cell"}
+
+
+@pytest.mark.parametrize("orientation", ["portrait", "landscape"])
+def test_soiling_band_on_the_lower_edge(rng, orientation):
+    p = Plant(rng, orientation=orientation, rotation_deg=8.0)
+    i = p.index(table="T0-1", row=2, col=6)
+    p.soiling(i, 4.0)
+    an, _ = p.run()
+    assert found(an) == {i: "soiling"}
+    a = an.iloc[0]
+    assert a.region == "band" and a.severity == "monitor"
+    box = a.region_uv[0]
+    assert (box[0], box[2]) == (0.0, 0.0)
+    assert (box[1] < 0.2) if orientation == "portrait" else (box[3] < 0.2)
+
+
+def test_warm_band_on_the_upper_edge_is_not_soiling(rng):
+    p = Plant(rng)
+    i = p.index(col=6)
+    p.extra95[i, -1, :] += 4.0                                 # upper edge, not the lower
+    an, _ = p.run()
+    assert "soiling" not in set(an.defect)
+
+
+def test_pid_near_the_negative_end_of_a_string(rng):
+    p = Plant(rng, cols=12)
+    idx = p.pid("T0-1-R1", 5, f0=0.5)
+    an, _ = p.run()
+    got = found(an)
+    pid = sorted(i for i, d in got.items() if d == "pid")
+    # the strongest modules (nearest the negative end) must be found, none outside the string
+    assert set(pid) <= set(int(i) for i in idx)
+    assert set(int(i) for i in idx[:3]) <= set(pid)
+    assert set(got) <= set(int(i) for i in idx)
+
+
+def test_overlapping_patterns_get_one_class(rng):
+    p = Plant(rng)
+    i = p.index(col=6)
+    p.bypass(i, [2])
+    p.hot(i, [(2, 0)], 20.0)                                  # hot cell in another substring
+    an, _ = p.run()
+    assert len(an) == 1
+    a = an.iloc[0]
+    assert a.defect == "bypassed_substring" and a.other_defects == ["hot_cell"]
+
+
+def test_low_valid_fraction_is_not_classified(rng):
+    p = Plant(rng)
+    i = p.index(col=6)
+    p.open(i)
+    p.valid[i] = 0.3
+    an, mt = p.run()
+    assert len(an) == 0
+    assert not mt.classified[i] and mt.classified.drop(index=i).all()
+
+
+def test_confidence_factor_lowers_confidence(rng):
+    p = Plant(rng)
+    i = p.index(col=6)
+    p.bypass(i, [1])
+    an1, _ = p.run(confidence_factor=1.0)
+    an2, _ = p.run(confidence_factor=0.5)
+    assert 0 < an1.confidence[0] <= 1
+    assert an2.confidence[0] == pytest.approx(0.5 * an1.confidence[0])
+
+
+# ---------------------------------------------------------------------------------------
+# severity
+# ---------------------------------------------------------------------------------------
+
+def _one(defect, dtn, tmax):
+    return pd.DataFrame({"defect": [defect], "delta_t_norm_k": [dtn], "t_max_c": [tmax]})
+
+
+@pytest.mark.parametrize("defect, dtn, tmax, sev", [
+    ("hot_cell", 5.0, 60.0, "monitor"),          # small hot cell: watch it
+    ("hot_cell", 15.0, 70.0, "repair"),
+    ("hot_cell", 45.0, 95.0, "safety"),          # large delta T (from memory: > 40 K)
+    ("hot_cell_multi", 20.0, 105.0, "safety"),   # above 100 degC (from memory: backsheet damage)
+    ("junction_box", 25.0, 80.0, "safety"),      # junction box heating (from memory: > 20 K)
+    ("junction_box", 8.0, 60.0, "repair"),
+    ("soiling", 6.0, 60.0, "monitor"),
+    ("open_string", 4.0, 55.0, "repair"),
+    ("bypassed_substring", 4.0, 55.0, "repair"),
+])
+def test_severity_rules(defect, dtn, tmax, sev):
+    out = assign_severity(_one(defect, dtn, tmax), load_pipeline())
+    assert out.severity[0] == sev
+    # classes of abnormality of IEC TS 62446-3 (from memory): CoA 3 safety-relevant
+    assert out.iec_class[0] == ("CoA 3" if sev == "safety" else "CoA 2")
