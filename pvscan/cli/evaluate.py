@@ -1,0 +1,30 @@
+"""``pvscan evaluate TRUTH_DIR RESULT_DIR``: score a result against a simulated flight's truth."""
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import click
+
+from pvscan.cli._common import echo, handle_errors
+
+
+@click.command("evaluate")
+@click.argument("truth_dir", type=click.Path(path_type=Path))
+@click.argument("result_dir", type=click.Path(file_okay=False, path_type=Path))
+@click.option("--json", "json_path", type=click.Path(dir_okay=False, path_type=Path),
+              help="Also write the scores to this JSON file.")
+@handle_errors
+def evaluate_cmd(truth_dir, result_dir, json_path):
+    """Score RESULT_DIR (from `pvscan inspect`) against TRUTH_DIR (from `pvscan simulate`).
+
+    Prints detection precision/recall, per-class recall, the confusion matrix, false alarms,
+    power-loss and temperature errors.
+    """
+    from pvscan.evaluate import evaluate, format_report
+
+    scores = evaluate(truth_dir, result_dir)
+    if json_path is not None:
+        json_path.parent.mkdir(parents=True, exist_ok=True)
+        json_path.write_text(json.dumps(scores, indent=2), encoding="utf-8")
+    echo(format_report(scores))

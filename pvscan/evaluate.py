@@ -1,0 +1,329 @@
+"""Score an inspection result against the ground truth of a simulated flight.
+
+:func:`evaluate` reads ``truth.geojson`` (written by :mod:`pvscan.simulate`) and the result's
+``modules.geojson`` (plus ``anomalies.geojson`` and ``summary.json`` when present) and returns
+a dict of scores:
+
+- module level (defective vs healthy): precision, recall, F1, false alarms per 1,000
+  healthy modules;
+- per class: recall and precision with the right class, and the confusion matrix
+  (truth class x predicted class, ``none`` for healthy);
+- power loss: predicted / true total, absolute and relative error, and per anomaly
+  (bypassed substrings, open modules and strings, PID strings) the relative error of the
+  loss summed over the anomaly's modules;
+- temperatures: RMSE and bias of ``t_median_c`` against ``t_true_median_c`` of healthy
+  modules; median absolute error of ``delta_t_norm_k`` of defective modules (from the
+  matching anomaly when there is one, else from modules.geojson);
+- co-registration: the layout shift the result reports against the offset the truth drew.
+
+Modules are matched by ``module_id``; when fewer than 90 % of the ids match (a layout
+of tables split with other ids), by the nearest centroid within half a module width.
+"""
+from __future__ import annotations
+
+import json
+import logging
+import math
+from pathlib import Path
+
+import numpy as np
+
+from pvscan.errors import OutputError, SimulationError
+
+__all__ = ["evaluate", "format_report", "LOSS_GROUP_KINDS"]
+
+log = logging.getLogger(__name__)
+
+#: Defect kinds whose power loss is scored per anomaly (per defect instance).
+LOSS_GROUP_KINDS = ("bypassed_substring", "bypassed_substring_multi", "open_module", "open_string", "pid")
+
+
+def _read_geojson(path: Path, err) -> dict:
+    try:
+        with open(path, encoding="utf-8") as fh:
+            data = json.load(fh)
+    except FileNotFoundError:
+        raise err(f"{path}: file not found") from None
+    except json.JSONDecodeError as exc:
+        raise err(f"{path}: not valid JSON: {exc.msg} (line {exc.lineno})") from None
+    if data.get("type") != "FeatureCollection" or not isinstance(data.get("features"), list):
+        raise err(f"{path}: not a GeoJSON FeatureCollection")
+    return data
+
+
+def _centroid(geom) -> tuple[float, float]:
+    if not geom:
+        return (math.nan, math.nan)
+    coords = geom.get("coordinates")
+    if geom.get("type") == "MultiPolygon":
+        coords = coords[0]
+    ring = np.asarray(coords[0], float)[:, :2]
+    if len(ring) > 1 and np.allclose(ring[0], ring[-1]):
+        ring = ring[:-1]
+    return tuple(ring.mean(axis=0))
+
+
+def _num(v) -> float:
+    try:
+        f = float(v)
+    except (TypeError, ValueError):
+        return math.nan
+    return f
+
+
+def _defect(v):
+    if v is None or (isinstance(v, float) and math.isnan(v)) or v in ("", "none", "None"):
+        return None
+    return str(v)
+
+
+def _match(truth_feats, res_feats, epsg: int | None):
+    """Index of the result feature of each truth module (-1 when none)."""
+    ids = {}
+    for k, f in enumerate(res_feats):
+        mid = f.get("properties", {}).get("module_id")
+        if mid is not None:
+            ids.setdefault(str(mid), k)
+    by_id = np.array([ids.get(str(f["properties"]["module_id"]), -1) for f in truth_feats])
+    if (by_id >= 0).mean() >= 0.9 or not res_feats:
+        return by_id, "module_id"
+    from pyproj import Transformer
+    from scipy.spatial import cKDTree
+
+    tc = np.array([_centroid(f.get("geometry")) for f in truth_feats])
+    rc = np.array([_centroid(f.get("geometry")) for f in res_feats])
+    if epsg is None:
+        lon, lat = np.nanmean(tc, axis=0)
+        from pvscan.simulate.geometry import utm_epsg
+
+        epsg = utm_epsg(lon, lat)
+    tr = Transformer.from_crs("EPSG:4326", f"EPSG:{epsg}", always_xy=True)
+    tx, ty = tr.transform(tc[:, 0], tc[:, 1])
+    rx, ry = tr.transform(rc[:, 0], rc[:, 1])
+    ok = np.isfinite(rx) & np.isfinite(ry)
+    tree = cKDTree(np.stack([rx[ok], ry[ok]], axis=1))
+    d, k = tree.query(np.stack([tx, ty], axis=1))
+    cand = np.flatnonzero(ok)[np.minimum(k, ok.sum() - 1)]
+    return np.where(d < 0.5, cand, -1), "centroid"
+
+
+def _ratio(a: float, b: float) -> float | None:
+    return None if b == 0 or not np.isfinite(a) or not np.isfinite(b) else float(a / b)
+
+
+def _f(x):
+    if x is None:
+        return None
+    x = float(x)
+    return None if not math.isfinite(x) else round(x, 6)
+
+
+def evaluate(truth_dir, result_dir) -> dict:
+    """Score a result folder against a simulated flight's truth.
+
+    Parameters
+    ----------
+    truth_dir : path-like
+        The simulated flight folder (holding ``truth.geojson``) or the truth file itself.
+    result_dir : path-like
+        The result folder of ``pvscan inspect`` (holding ``modules.geojson``).
+
+    Returns
+    -------
+    dict
+        JSON-serialisable scores (see the module docstring); temperatures [degC], [K],
+        powers [W].
+
+    Raises
+    ------
+    SimulationError
+        The truth is missing or invalid.
+    OutputError
+        The result's modules.geojson is missing or invalid.
+    """
+    truth_path = Path(truth_dir)
+    if truth_path.is_dir():
+        truth_path = truth_path / "truth.geojson"
+    result_dir = Path(result_dir)
+    truth = _read_geojson(truth_path, SimulationError)
+    tf = truth["features"]
+    if not tf or "module_id" not in tf[0].get("properties", {}):
+        raise SimulationError(f"{truth_path}: no module features with module_id")
+    meta = truth.get("pvscan_truth", {})
+    mods = _read_geojson(result_dir / "modules.geojson", OutputError)
+    rf = mods["features"]
+    match, how = _match(tf, rf, meta.get("epsg"))
+
+    tp = [f["properties"] for f in tf]
+    rp = [f.get("properties", {}) for f in rf]
+    t_def = [_defect(p.get("defect")) for p in tp]
+    p_def = [(_defect(rp[k].get("defect")) if k >= 0 else None) for k in match]
+
+    # anomalies by module
+    anom_by_module: dict[str, list[dict]] = {}
+    anom_path = result_dir / "anomalies.geojson"
+    n_anom = None
+    if anom_path.exists():
+        an = _read_geojson(anom_path, OutputError)["features"]
+        n_anom = len(an)
+        for f in an:
+            p = f.get("properties", {})
+            ids = p.get("module_ids") or [p.get("module_id")]
+            if isinstance(ids, str):
+                try:
+                    ids = json.loads(ids)
+                except json.JSONDecodeError:
+                    ids = [ids]
+            for mid in ids:
+                if mid is not None:
+                    anom_by_module.setdefault(str(mid), []).append(p)
+    res_id = [(str(rp[k].get("module_id")) if k >= 0 else None) for k in match]
+
+    n = len(tf)
+    t_bad = np.array([d is not None for d in t_def])
+    p_bad = np.array([d is not None for d in p_def])
+    matched = match >= 0
+    TP = int((t_bad & p_bad).sum())
+    FP = int((~t_bad & p_bad).sum())
+    FN = int((t_bad & ~p_bad).sum())
+    n_healthy = int((~t_bad).sum())
+    precision = _ratio(TP, TP + FP)
+    recall = _ratio(TP, TP + FN)
+    f1 = None if not precision or not recall else 2 * precision * recall / (precision + recall)
+
+    classes_t = sorted({d for d in t_def if d})
+    classes_p = sorted({d for d in p_def if d})
+    labels = sorted(set(classes_t) | set(classes_p)) + ["none"]
+    confusion = {a: {b: 0 for b in labels} for a in labels}
+    for a, b in zip(t_def, p_def):
+        confusion[a or "none"][b or "none"] += 1
+    per_class = {}
+    for c in sorted(set(classes_t) | set(classes_p)):
+        n_true = sum(1 for d in t_def if d == c)
+        n_pred = sum(1 for d in p_def if d == c)
+        right = sum(1 for a, b in zip(t_def, p_def) if a == c and b == c)
+        detected = sum(1 for a, b in zip(t_def, p_def) if a == c and b is not None)
+        per_class[c] = {"n_true": n_true, "n_predicted": n_pred, "correct": right,
+                        "recall": _f(_ratio(right, n_true)), "precision": _f(_ratio(right, n_pred)),
+                        "detected_any_class": _f(_ratio(detected, n_true))}
+    class_ok = sum(1 for a, b in zip(t_def, p_def) if a and a == b)
+
+    # power loss
+    t_loss = np.array([_num(p.get("power_loss_w")) for p in tp])
+    p_loss = np.array([(_num(rp[k].get("power_loss_w")) if k >= 0 else math.nan) for k in match])
+    t_loss = np.nan_to_num(t_loss)
+    p_loss_z = np.nan_to_num(p_loss)
+    total_t = float(t_loss.sum())
+    total_p = float(sum(_num(p.get("power_loss_w")) for p in rp if np.isfinite(_num(p.get("power_loss_w")))))
+    groups: dict[int, list[int]] = {}
+    for i, p in enumerate(tp):
+        if t_def[i] in LOSS_GROUP_KINDS and p.get("defect_group") is not None:
+            groups.setdefault(int(p["defect_group"]), []).append(i)
+    per_anomaly = []
+    for g, members in sorted(groups.items()):
+        tl = float(t_loss[members].sum())
+        pl = float(p_loss_z[members].sum())
+        per_anomaly.append({"defect": t_def[members[0]], "module_id": tp[members[0]]["module_id"],
+                            "n_modules": len(members), "true_w": _f(tl), "predicted_w": _f(pl),
+                            "rel_error": _f((pl - tl) / tl if tl else None)})
+    loss_by_kind = {}
+    for k in LOSS_GROUP_KINDS:
+        errs = [abs(a["rel_error"]) for a in per_anomaly if a["defect"] == k and a["rel_error"] is not None]
+        if errs:
+            loss_by_kind[k] = {"n": len(errs), "median_abs_rel_error": _f(np.median(errs))}
+
+    # temperatures
+    t_true = np.array([_num(p.get("t_true_median_c")) for p in tp])
+    t_meas = np.array([(_num(rp[k].get("t_median_c")) if k >= 0 else math.nan) for k in match])
+    sel = ~t_bad & np.isfinite(t_true) & np.isfinite(t_meas)
+    err = t_meas[sel] - t_true[sel]
+    rmse = float(np.sqrt(np.mean(err ** 2))) if err.size else None
+    bias = float(np.mean(err)) if err.size else None
+
+    dn_true = np.array([_num(p.get("delta_t_norm_k")) for p in tp])
+    dn_pred = np.full(n, math.nan)
+    for i in np.flatnonzero(t_bad & matched):
+        cand = anom_by_module.get(res_id[i] or "", [])
+        same = [a for a in cand if _defect(a.get("defect")) == t_def[i]] or cand
+        if same:
+            dn_pred[i] = _num(same[0].get("delta_t_norm_k"))
+        else:
+            dn_pred[i] = _num(rp[match[i]].get("delta_t_norm_k"))
+    dsel = t_bad & np.isfinite(dn_pred) & np.isfinite(dn_true)
+    dn_mae = float(np.median(np.abs(dn_pred[dsel] - dn_true[dsel]))) if dsel.any() else None
+    dsel_found = dsel & p_bad
+    dn_mae_found = (float(np.median(np.abs(dn_pred[dsel_found] - dn_true[dsel_found])))
+                    if dsel_found.any() else None)
+
+    # co-registration
+    reg = None
+    summary_path = result_dir / "summary.json"
+    if summary_path.exists() and "layout_offset_m" in meta:
+        try:
+            summ = json.loads(summary_path.read_text(encoding="utf-8"))
+        except json.JSONDecodeError:
+            summ = {}
+        shift = summ.get("layout_shift_m")
+        if isinstance(shift, (list, tuple)) and len(shift) == 2:
+            off = meta["layout_offset_m"]
+            ex, ey = float(shift[0]) + float(off[0]), float(shift[1]) + float(off[1])
+            reg = {"truth_offset_m": off, "reported_shift_m": list(shift), "error_m": _f(math.hypot(ex, ey))}
+
+    return {
+        "truth": str(truth_path), "result": str(result_dir), "matched_by": how,
+        "n_modules": n, "n_matched": int(matched.sum()), "n_defective_true": int(t_bad.sum()),
+        "n_defective_predicted": int(p_bad.sum()), "n_anomalies": n_anom,
+        "module": {"true_positive": TP, "false_positive": FP, "false_negative": FN,
+                   "precision": _f(precision), "recall": _f(recall), "f1": _f(f1),
+                   "false_alarms_per_1000_healthy": _f(1000.0 * FP / n_healthy if n_healthy else None),
+                   "class_accuracy_of_true_defects": _f(_ratio(class_ok, int(t_bad.sum())))},
+        "per_class": per_class,
+        "confusion": {"labels": labels, "matrix": confusion},
+        "power_loss": {"true_total_w": _f(total_t), "predicted_total_w": _f(total_p),
+                       "ratio": _f(_ratio(total_p, total_t)), "abs_error_w": _f(total_p - total_t),
+                       "rel_error": _f((total_p - total_t) / total_t if total_t else None),
+                       "per_kind": loss_by_kind, "per_anomaly": per_anomaly},
+        "temperature": {"healthy_rmse_k": _f(rmse), "healthy_bias_k": _f(bias), "n_healthy": int(sel.sum()),
+                        "delta_t_norm_median_abs_error_k": _f(dn_mae),
+                        "delta_t_norm_median_abs_error_detected_k": _f(dn_mae_found),
+                        "n_defective_scored": int(dsel.sum())},
+        "registration": reg,
+    }
+
+
+def format_report(scores: dict) -> str:
+    """A plain-text table of the scores (for the terminal)."""
+    def fmt(v, pct=False):
+        if v is None:
+            return "-"
+        return f"{100 * v:.1f} %" if pct else (f"{v:.3f}" if isinstance(v, float) else str(v))
+
+    m, pl, t = scores["module"], scores["power_loss"], scores["temperature"]
+    lines = [f"truth  {scores['truth']}", f"result {scores['result']} (matched {scores['n_matched']}/"
+             f"{scores['n_modules']} by {scores['matched_by']})", "",
+             f"defective modules  true {scores['n_defective_true']}  predicted {scores['n_defective_predicted']}",
+             f"precision {fmt(m['precision'], True)}   recall {fmt(m['recall'], True)}   F1 {fmt(m['f1'])}",
+             f"false alarms per 1,000 healthy modules  {fmt(m['false_alarms_per_1000_healthy'])}", "",
+             f"{'class':<26}{'true':>6}{'pred':>6}{'right':>7}{'recall':>9}{'precision':>11}"]
+    for c, v in scores["per_class"].items():
+        lines.append(f"{c:<26}{v['n_true']:>6}{v['n_predicted']:>6}{v['correct']:>7}"
+                     f"{fmt(v['recall'], True):>9}{fmt(v['precision'], True):>11}")
+    labels = scores["confusion"]["labels"]
+    short = ["".join(w[0] for w in lab.split("_")) if lab != "none" else "none" for lab in labels]
+    legend = ", ".join(f"{s_}={lab}" for s_, lab in zip(short, labels) if lab != "none")
+    lines += ["", "confusion (rows truth, columns predicted)", f"  ({legend})",
+              " " * 26 + "".join(f"{s_:>6}" for s_ in short)]
+    for a in labels:
+        row = scores["confusion"]["matrix"][a]
+        lines.append(f"{a:<26}" + "".join(f"{row[b]:>6}" for b in labels))
+    lines += ["", f"power loss at STC  true {fmt(pl['true_total_w'])} W  predicted {fmt(pl['predicted_total_w'])} W"
+              f"  ratio {fmt(pl['ratio'])}  error {fmt(pl['rel_error'], True)}"]
+    for k, v in pl["per_kind"].items():
+        lines.append(f"  {k:<26} n={v['n']:<3} median |rel. error| {fmt(v['median_abs_rel_error'], True)}")
+    lines += ["", f"healthy modules: temperature RMSE {fmt(t['healthy_rmse_k'])} K, bias {fmt(t['healthy_bias_k'])} K",
+              f"defective modules: median |error| of delta_t_norm_k {fmt(t['delta_t_norm_median_abs_error_k'])} K"]
+    if scores.get("registration"):
+        r = scores["registration"]
+        lines.append(f"layout shift: reported {r['reported_shift_m']} m for an offset of {r['truth_offset_m']} m"
+                     f" (error {fmt(r['error_m'])} m)")
+    return "\n".join(lines)
