@@ -453,6 +453,7 @@ def _n_substrings(row, n: int) -> int:
 
 def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = None, site: Any = None,
                   settings: Mapping | None = None, *, modules=None, layout: Any = None,
+                  lonlat: tuple[float, float] | None = None,
                   specific_yield_kwh_per_kwp: float | None = None) -> pd.DataFrame:
     """Power and energy loss of every anomaly.
 
@@ -476,7 +477,9 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
         ``yield_year``, ``linke_turbidity``).
     modules : geopandas.GeoDataFrame, optional
         The modules frame: its centroid places the clear-sky year when the site has no
-        specific yield.
+        specific yield (unless ``lonlat`` is given).
+    lonlat : (float, float), optional
+        WGS84 longitude and latitude of the site for the clear-sky year. [deg]
     layout : LayoutSpec, optional
         ``tilt_deg``, ``azimuth_deg`` of the plane of array [deg] for the clear-sky year.
     specific_yield_kwh_per_kwp : float, optional
@@ -557,7 +560,7 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
     out["loss_fraction"] = frac
     out["loss_method"] = pd.Series(methods, index=out.index, dtype=object)
 
-    sy, source = _yield(site, modules, layout, cfg, specific_yield_kwh_per_kwp)
+    sy, source = _yield(site, modules, layout, cfg, specific_yield_kwh_per_kwp, lonlat)
     out["energy_loss_kwh_per_year"] = stc / 1000.0 * sy if sy is not None else np.nan
     tariff = _get(site, "tariff_per_kwh") if site is not None else None
     if tariff is not None:
@@ -569,16 +572,22 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
     return out
 
 
-def _yield(site, modules, layout, cfg, override) -> tuple[float | None, str]:
+def _yield(site, modules, layout, cfg, override, lonlat=None) -> tuple[float | None, str]:
     if override is not None:
         return float(override), "given"
     sy = _get(site, "specific_yield_kwh_per_kwp") if site is not None else None
     if sy is not None:
         return float(sy), "manifest"
-    if modules is None or len(modules) == 0 or modules.crs is None:
-        log.info("no specific yield and no located layout: energy loss left empty")
+    if lonlat is not None:
+        lon, lat = float(lonlat[0]), float(lonlat[1])
+    elif modules is not None and len(modules) and modules.crs is not None:
+        lon, lat = site_lonlat(modules)
+    else:
+        log.info("no specific yield and no site position: energy loss left empty")
         return None, "none"
-    lon, lat = site_lonlat(modules)
+    if not (np.isfinite(lon) and np.isfinite(lat) and -90.0 <= lat <= 90.0):
+        log.info("site position %s, %s is not usable: energy loss left empty", lon, lat)
+        return None, "none"
     tilt = float(_get(layout, "tilt_deg", default=0.0)) if layout is not None else 0.0
     az = float(_get(layout, "azimuth_deg", default=180.0)) if layout is not None else 180.0
     sy = specific_yield(lat, lon, tilt, az, derate=float(cfg["energy_derate"]), albedo=float(cfg["albedo"]),

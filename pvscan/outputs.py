@@ -368,14 +368,58 @@ def geometry_to_geojson(geom, decimals: int = 7) -> dict | None:
 
 
 def _to_lonlat(geoms: Sequence, crs) -> list:
+    """Reproject shapely geometries from ``crs`` to WGS84 lon/lat (one pyproj call for all)."""
     if crs is None:
         raise OutputError("modules: the layout has no CRS; cannot write lon/lat")
     src = CRS.from_user_input(crs)
-    if src.equals(CRS.from_epsg(4326)):
-        return list(geoms)
+    arr = np.empty(len(geoms), dtype=object)
+    arr[:] = list(geoms)
+    if src.equals(CRS.from_epsg(4326)) or len(arr) == 0:
+        return list(arr)
     tr = Transformer.from_crs(src, 4326, always_xy=True)
-    return [None if g is None else shapely.transform(g, lambda xy: np.column_stack(tr.transform(xy[:, 0], xy[:, 1])))
-            for g in geoms]
+    return list(shapely.transform(arr, lambda xy: np.column_stack(tr.transform(xy[:, 0], xy[:, 1]))))
+
+
+def _geoms_to_geojson(geoms: Sequence, decimals: int = 7) -> list:
+    """:func:`geometry_to_geojson` of many lon/lat geometries; hole-free polygons in one vectorised pass."""
+    arr = np.empty(len(geoms), dtype=object)
+    arr[:] = list(geoms)
+    out: list = [None] * len(arr)
+    if len(arr) == 0:
+        return out
+    missing = shapely.is_missing(arr)
+    present = ~missing
+    present[present] = ~shapely.is_empty(arr[present])
+    tid = np.full(len(arr), -1)
+    tid[present] = shapely.get_type_id(arr[present])
+    simple = present & (tid == 3)
+    simple[simple] = shapely.get_num_interior_rings(arr[simple]) == 0
+    pos = np.flatnonzero(simple)
+    if pos.size:
+        ext = shapely.get_exterior_ring(shapely.orient_polygons(arr[pos], exterior_cw=False))
+        coords, index = shapely.get_coordinates(ext, return_index=True)
+        lst = np.round(coords, decimals).tolist()
+        counts = np.bincount(index, minlength=pos.size)
+        start = 0
+        for k, c in zip(pos.tolist(), counts.tolist()):
+            out[k] = {"type": "Polygon", "coordinates": [lst[start:start + c]]}
+            start += c
+    for k in np.flatnonzero(present & ~simple).tolist():
+        out[k] = geometry_to_geojson(arr[k], decimals)
+    return out
+
+
+def _column_values(frame: pd.DataFrame, col: str, nd: int = 4) -> list:
+    """A column as JSON-ready Python values (floats rounded to ``nd`` decimals, NaN -> None)."""
+    ser = frame[col]
+    if pd.api.types.is_float_dtype(ser.dtype):
+        vals = np.round(ser.to_numpy(dtype=float), nd)
+        return [v if math.isfinite(v) else None for v in vals.tolist()]
+    if pd.api.types.is_bool_dtype(ser.dtype) and ser.dtype != object:
+        return [bool(v) for v in ser.tolist()]
+    if pd.api.types.is_integer_dtype(ser.dtype):
+        return [None if pd.isna(v) else int(v) for v in ser.astype(object).tolist()]
+    return [_round_floats(to_jsonable(v), nd) for v in ser.tolist()]
 
 
 def _frame_box(row, u0: float, u1: float, v0: float, v1: float) -> Polygon:
@@ -535,27 +579,24 @@ def modules_feature_collection(modules, module_table: pd.DataFrame | None = None
     if module_table is not None and len(module_table) != n:
         raise OutputError(f"modules.geojson: the module table has {len(module_table)} rows for {n} modules")
     derived = module_results(n, anomalies, pmax_w) if anomalies is not None else None
-    lonlat = _to_lonlat(list(modules.geometry), modules.crs)
+    geoms = _geoms_to_geojson(_to_lonlat(list(modules.geometry), modules.crs), decimals)
+    columns: dict[str, list] = {}
+    for key in MODULE_PROPERTIES:
+        for frame in (module_table, modules, derived):
+            if frame is not None and key in frame.columns:
+                columns[key] = _column_values(frame, key)
+                break
+        else:
+            columns[key] = [[] for _ in range(n)] if key == "anomaly_ids" else [None] * n
+    for key in ("module_id", "table_id", "string_id"):
+        columns[key] = [None if v is None else str(v) for v in columns[key]]
+    columns["anomaly_ids"] = [[] if v is None else v for v in columns["anomaly_ids"]]
+    columns["power_loss_w"] = [0.0 if p is None and d is None else p
+                               for p, d in zip(columns["power_loss_w"], columns["defect"])]
     features = []
     for pos in range(n):
-        props = {}
-        for key in MODULE_PROPERTIES:
-            val = None
-            for frame in (module_table, modules, derived):
-                if frame is not None and key in frame.columns:
-                    val = frame[key].iloc[pos]
-                    break
-            if key == "anomaly_ids" and val is None:
-                val = []
-            props[key] = _round_floats(to_jsonable(val))
-        if props["module_id"] is not None:
-            props["module_id"] = str(props["module_id"])
-        if props["table_id"] is not None:
-            props["table_id"] = str(props["table_id"])
-        if props["defect"] is None and props["power_loss_w"] is None:
-            props["power_loss_w"] = 0.0
-        features.append({"type": "Feature", "id": props["module_id"],
-                         "geometry": geometry_to_geojson(lonlat[pos], decimals), "properties": props})
+        props = {key: columns[key][pos] for key in MODULE_PROPERTIES}
+        features.append({"type": "Feature", "id": props["module_id"], "geometry": geoms[pos], "properties": props})
     return {"type": "FeatureCollection", "features": features}
 
 
@@ -607,8 +648,8 @@ def anomalies_feature_collection(anomalies: pd.DataFrame, modules, decimals: int
     anomalies = assign_anomaly_ids(anomalies)
     if "priority" in anomalies.columns and len(anomalies):
         anomalies = anomalies.sort_values("priority", kind="stable", na_position="last")
-    geoms = anomaly_geometries(anomalies, modules, merge_gap_m)
-    lonlat = _to_lonlat(geoms, modules.crs)
+    geoms = _geoms_to_geojson(_to_lonlat(anomaly_geometries(anomalies, modules, merge_gap_m), modules.crs),
+                              decimals)
     features = []
     for pos, (_, row) in enumerate(anomalies.iterrows()):
         idx = _indices(row)
@@ -629,8 +670,7 @@ def anomalies_feature_collection(anomalies: pd.DataFrame, modules, decimals: int
             props["module_id"] = str(props["module_id"])
         if props["table_id"] is not None:
             props["table_id"] = str(props["table_id"])
-        features.append({"type": "Feature", "id": props["anomaly_id"],
-                         "geometry": geometry_to_geojson(lonlat[pos], decimals), "properties": props})
+        features.append({"type": "Feature", "id": props["anomaly_id"], "geometry": geoms[pos], "properties": props})
     return {"type": "FeatureCollection", "features": features}
 
 
