@@ -1,0 +1,111 @@
+"""The one-screen end-of-run summary of ``pvscan inspect`` (about 30 lines)."""
+from __future__ import annotations
+
+import math
+from pathlib import Path
+
+import click
+
+__all__ = ["print_inspection_summary", "summary_lines"]
+
+_WIDTH = 96
+
+
+def _f(v, digits=0, unit=""):
+    try:
+        x = float(v)
+    except (TypeError, ValueError):
+        return "-"
+    if not math.isfinite(x):
+        return "-"
+    return f"{x:,.{digits}f}{(' ' + unit) if unit else ''}"
+
+
+def _cut(s: str, n: int = _WIDTH) -> str:
+    return s if len(s) <= n else s[: n - 3] + "..."
+
+
+def summary_lines(result_dir, top: int | None = None) -> list[str]:
+    """The summary as a list of lines (see :func:`print_inspection_summary`)."""
+    from pvscan.report import SEVERITIES, load_result, validity_checks
+    from pvscan.settings import load_pipeline
+
+    if top is None:
+        top = int(load_pipeline()["report"].get("summary_top", 5))
+    data = load_result(result_dir)
+    an = data.anomalies
+    tot = data.totals()
+    lines = []
+    head = f"pvscan: {data.site_name}"
+    if data.flight_id:
+        head += f", flight {data.flight_id}"
+    if data.flight_start:
+        head += f" ({data.flight_start[:16].replace('T', ' ')})"
+    lines.append(_cut(head))
+    lines.append("-" * min(_WIDTH, max(40, len(lines[0]))))
+    sev = an["severity"].value_counts() if len(an) else {}
+    sev_txt = ", ".join(f"{int(sev.get(s, 0))} {s}" for s in SEVERITIES)
+    lines.append(f"modules {int(tot['n_modules']):,}   anomalies {int(tot['n_anomalies'])} ({sev_txt})")
+    share = tot["plant_share"]
+    loss = f"power loss {_f(tot['power_loss_w'], 0, 'W')} at STC"
+    if math.isfinite(share):
+        loss += f" ({share * 100:.2f} % of plant)"
+    loss += f"   energy loss {_f(tot['energy_loss_kwh_per_year'], 0, 'kWh/yr')}"
+    lines.append(loss)
+    counts = data.counts()
+    if len(counts):
+        lines.append("by defect:")
+        items = [f"{str(d).replace('_', ' ')} {int(r['total'])}" for d, r in counts.iterrows()]
+        row = "  "
+        for it in items:
+            if len(row) + len(it) + 3 > _WIDTH:
+                lines.append(row.rstrip(" ·"))
+                row = "  "
+            row += it + " · "
+        lines.append(row.rstrip(" ·"))
+    if len(an) and top > 0:
+        lines.append(f"top {min(top, len(an))} work orders:")
+        for k, r in an.head(top).iterrows():
+            prio = int(r["priority"]) if _f(r["priority"]) != "-" else k + 1
+            act = str(r.get("action") or "")
+            act = act if act and act != "nan" else ""
+            s = (f"  {prio:>2} {str(r['severity']):<7} {str(r['module_id']):<14} "
+                 f"{str(r['defect']).replace('_', ' '):<22} dT {_f(r['delta_t_k'], 1, 'K'):>7} "
+                 f"{_f(r['power_loss_w'], 0, 'W'):>7}  {act}")
+            lines.append(_cut(s.rstrip()))
+        if len(an) > top:
+            lines.append(f"  ... {len(an) - top} more in workorders.csv")
+    checks, ok = validity_checks(data.summary)
+    failed = [c for c in checks if c["passed"] is False]
+    if ok is False or failed:
+        lines.append("acquisition conditions outside the limits (results less certain):")
+        for c in failed[:4]:
+            unit = f" {c['unit']}" if c["unit"] else ""
+            rel = {"min": ">=", "max": "<="}.get(c["kind"] or "", "limit")
+            lines.append(_cut(f"  ! {str(c['name']).replace('_', ' ')}: {_f(c['value'], 3)}{unit} "
+                              f"(needs {rel} {_f(c['limit'], 3)}{unit}; {c['source'] or 'see summary.json'})"))
+        if len(failed) > 4:
+            lines.append(f"  ! ... {len(failed) - 4} more in summary.json")
+    elif ok is True:
+        lines.append("acquisition conditions: all validity limits met")
+    dx, dy = data.layout_shift_m
+    if abs(dx) + abs(dy) > 0:
+        lines.append(f"layout shifted onto the ortho by {dx:+.2f} m E, {dy:+.2f} m N")
+    root = Path(data.result_dir)
+    present = [n for n in ("report.html", "workorders.csv", "anomalies.geojson", "modules.geojson",
+                           "pvscan.gpkg", "summary.json") if (root / n).exists()]
+    lines.append(_cut(f"files in {root}/: {', '.join(present)}"))
+    lines.append("safety: arrays are live (DC) in daylight even when disconnected; hot spots burn and")
+    lines.append("  faults can arc and start fires. Site work only by qualified persons under local")
+    lines.append("  electrical codes; drone flights only under local aviation rules.")
+    return lines
+
+
+def print_inspection_summary(result_dir, top: int | None = None) -> None:
+    """Print the end-of-run summary of a result folder (fits one screen, ~30 lines).
+
+    Counts per defect and severity, total power and energy loss, the top work orders,
+    acquisition-validity warnings, where the files are, and short safety notes.
+    """
+    for line in summary_lines(result_dir, top):
+        click.echo(line)

@@ -1,0 +1,43 @@
+"""``pvscan report RESULT_DIR``: (re)write the self-contained report.html of a result folder."""
+from __future__ import annotations
+
+from pathlib import Path
+
+import click
+
+from pvscan.cli._common import Progress, echo, handle_errors
+
+
+@click.command("report")
+@click.argument("result_dir", type=click.Path(file_okay=False, path_type=Path))
+@click.option("--out", "out_path", type=click.Path(dir_okay=False, path_type=Path),
+              help="Where to write the report (default: RESULT_DIR/report.html, replaced).")
+@click.option("--ortho", "orthos", multiple=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="Thermal ortho tile(s) to draw, when the result folder moved away from them "
+                   "(repeat for several tiles; values read as degC).")
+@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
+              help="Pipeline settings whose [report] section to use.")
+@handle_errors
+def report_cmd(result_dir, out_path, orthos, pipeline_path):
+    """Write report.html for RESULT_DIR (a folder written by `pvscan inspect`).
+
+    The report is one HTML file with its images embedded: it opens in any browser, offline,
+    and prints cleanly. The thermal ortho named in summary.json is read for the map and
+    the anomaly crops; without it the map shows module temperatures.
+    """
+    from pvscan.report import write_report
+    from pvscan.settings import load_pipeline
+
+    settings = load_pipeline(pipeline_path)["report"]
+    progress = Progress()
+    try:
+        if orthos:
+            from pvscan.ortho import open_orthos
+
+            with open_orthos(list(orthos)) as oset:
+                path = write_report(result_dir, out_path, orthos=oset, settings=settings, progress=progress)
+        else:
+            path = write_report(result_dir, out_path, settings=settings, progress=progress)
+    finally:
+        progress.close()
+    echo(f"report written: {path}")

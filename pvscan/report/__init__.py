@@ -1,0 +1,17 @@
+"""The inspection report: one self-contained ``report.html`` per result folder.
+
+Public API
+----------
+write_report(result_dir, out_path=None, *, orthos=None, modules=None, flight=None,
+             stats=None, settings=None, progress=None) -> Path
+build_report(result_dir, *, orthos=None, modules=None, flight=None, settings=None,
+             progress=None) -> str
+load_result(result_dir) -> ResultData
+"""
+from __future__ import annotations
+
+from pvscan.report._build import DEFECT_TEXT, SAFETY_CAUTIONS, build_report, write_report
+from pvscan.report._result import SEVERITIES, ResultData, load_result, validity_checks
+
+__all__ = ["write_report", "build_report", "load_result", "ResultData", "validity_checks",
+           "SEVERITIES", "SAFETY_CAUTIONS", "DEFECT_TEXT"]

@@ -1,0 +1,329 @@
+"""Matplotlib figures of the report (Agg canvas, no pyplot state): the site overview map
+and the summary plots. Each function returns PNG bytes."""
+from __future__ import annotations
+
+import io
+import math
+from collections.abc import Mapping, Sequence
+
+import numpy as np
+
+from pvscan.report._result import SEVERITIES
+
+__all__ = ["SEVERITY_STYLE", "overview_png", "temperature_hist_png", "delta_norm_hist_png",
+           "loss_by_defect_png", "validity_png", "nice_length"]
+
+#: Marker and colour of each severity, on the map and in the plots (our own scheme:
+#: distinct shapes so the map reads in grey print and for colour-blind readers too).
+SEVERITY_STYLE = {
+    "safety": {"color": "#d1005d", "marker": "^", "label": "safety: act now"},
+    "repair": {"color": "#1f6fd0", "marker": "s", "label": "repair: schedule"},
+    "monitor": {"color": "#1e9e86", "marker": "o", "label": "monitor: watch"},
+}
+_INK = "#1d2733"
+_MUTED = "#7a8593"
+_HEALTHY = "#9aa7b6"
+
+
+def _figure(w_in: float, h_in: float):
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    fig = Figure(figsize=(w_in, h_in))
+    FigureCanvasAgg(fig)
+    return fig
+
+
+def _png(fig, dpi: int) -> bytes:
+    buf = io.BytesIO()
+    fig.savefig(buf, format="png", dpi=dpi, facecolor="white")
+    return buf.getvalue()
+
+
+def _style(ax) -> None:
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+    for side in ("left", "bottom"):
+        ax.spines[side].set_color(_MUTED)
+    ax.tick_params(colors=_INK, labelsize=8)
+    ax.xaxis.label.set_color(_INK)
+    ax.yaxis.label.set_color(_INK)
+    ax.title.set_color(_INK)
+
+
+def nice_length(target: float) -> float:
+    """The largest 1, 2 or 5 x 10^k not above ``target`` (for scale bars) [same unit]."""
+    if not (target > 0 and math.isfinite(target)):
+        return 1.0
+    exp = math.floor(math.log10(target))
+    for m in (5, 2, 1):
+        if m * 10 ** exp <= target:
+            return float(m * 10 ** exp)
+    return float(10 ** exp)
+
+
+def _polys(geoms) -> list[np.ndarray]:
+    out = []
+    for g in geoms:
+        if g is None or g.is_empty:
+            continue
+        parts = g.geoms if hasattr(g, "geoms") else [g]
+        for p in parts:
+            if p.geom_type == "Polygon":
+                out.append(np.asarray(p.exterior.coords)[:, :2])
+    return out
+
+
+def overview_png(*, extent, image: np.ndarray | None, module_geoms, module_values: np.ndarray | None,
+                 anomaly_points: Sequence[tuple[float, float, str, int]], cmap: str,
+                 vmin: float, vmax: float, north_deg: float, dpi: int, n_labels: int,
+                 image_label: str) -> bytes:
+    """Site overview map.
+
+    Parameters
+    ----------
+    extent : (xmin, xmax, ymin, ymax) [m]
+        Map extent in the ortho CRS.
+    image : ndarray or None
+        Decimated thermal ortho [degC] covering ``extent``; when None the modules are
+        filled with ``module_values`` instead.
+    module_geoms : sequence of shapely polygons (map coordinates)
+    module_values : ndarray or None
+        Module temperatures [degC] (used when ``image`` is None).
+    anomaly_points : sequence of (x, y, severity, priority)
+    cmap : str
+        Matplotlib colour map name.
+    vmin, vmax : float
+        Colour window [degC].
+    north_deg : float
+        Direction of true north, clockwise from the map's up direction [deg].
+    dpi : int
+    n_labels : int
+        Number of anomalies (best priority first) labelled with their priority number.
+    image_label : str
+        Colour-bar label.
+    """
+    import matplotlib.patheffects as pe
+    from matplotlib.collections import PolyCollection
+    from matplotlib.lines import Line2D
+    from matplotlib.patches import FancyArrow, Rectangle
+
+    xmin, xmax, ymin, ymax = extent
+    width, height = xmax - xmin, ymax - ymin
+    aspect = height / width if width > 0 else 1.0
+    fig_w = 10.5
+    map_h = min(max(fig_w * 0.82 * aspect, 3.0), 9.5)
+    fig = _figure(fig_w, map_h + 0.9)
+    ax = fig.add_axes((0.02, 0.11, 0.84, 0.87))
+    cax = fig.add_axes((0.885, 0.2, 0.018, 0.68))
+    ax.set_facecolor("#e9ecef")
+    polys = _polys(module_geoms)
+    if image is not None:
+        im = ax.imshow(image, extent=extent, origin="upper", cmap=cmap, vmin=vmin, vmax=vmax,
+                       interpolation="nearest")
+        if polys:
+            ax.add_collection(PolyCollection(polys, facecolors="none", edgecolors=(1, 1, 1, 0.35),
+                                             linewidths=0.35))
+    else:
+        vals = np.asarray(module_values if module_values is not None else [], dtype=float)
+        coll = PolyCollection(polys, cmap=cmap, edgecolors=(0.2, 0.2, 0.2, 0.6), linewidths=0.3)
+        if len(vals) == len(polys):
+            coll.set_array(np.ma.masked_invalid(vals))
+        coll.set_clim(vmin, vmax)
+        ax.add_collection(coll)
+        im = coll
+    cb = fig.colorbar(im, cax=cax)
+    cb.set_label(image_label, fontsize=8, color=_INK)
+    cb.ax.tick_params(labelsize=7, colors=_INK)
+    # anomalies, lowest urgency first so safety marks stay on top
+    order = sorted(anomaly_points, key=lambda p: -SEVERITIES.index(p[2]) if p[2] in SEVERITIES else -9)
+    msize = 46 if len(anomaly_points) < 200 else 22
+    for sev in reversed(SEVERITIES):
+        pts = [(x, y) for x, y, s, _ in order if s == sev]
+        if pts:
+            st = SEVERITY_STYLE[sev]
+            xy = np.asarray(pts)
+            ax.scatter(xy[:, 0], xy[:, 1], s=msize, marker=st["marker"], c=st["color"],
+                       edgecolors="white", linewidths=0.9, zorder=5)
+    halo = [pe.withStroke(linewidth=2.2, foreground="white")]
+    labelled = sorted(anomaly_points, key=lambda p: p[3])[: max(int(n_labels), 0)]
+    dx = 0.008 * width
+    for x, y, sev, prio in labelled:
+        ax.annotate(str(prio), (x, y), xytext=(x + dx, y + dx), fontsize=7, color=_INK,
+                    fontweight="bold", path_effects=halo, zorder=6)
+    ax.set_xlim(xmin, xmax)
+    ax.set_ylim(ymin, ymax)
+    ax.set_aspect("equal")
+    ax.set_xticks([])
+    ax.set_yticks([])
+    for s in ax.spines.values():
+        s.set_color(_MUTED)
+    # scale bar (bottom left, in map metres)
+    bar = nice_length(width * 0.2)
+    bx, by = xmin + 0.03 * width, ymin + 0.04 * height
+    bh = 0.012 * max(height, width * 0.4)
+    ax.add_patch(Rectangle((bx - 0.01 * width, by - 0.7 * bh), bar + 0.02 * width, 3.9 * bh,
+                           facecolor=(1, 1, 1, 0.8), edgecolor="none", zorder=7))
+    for k in range(4):
+        ax.add_patch(Rectangle((bx + k * bar / 4, by), bar / 4, bh, facecolor=_INK if k % 2 == 0
+                               else "white", edgecolor=_INK, linewidth=0.6, zorder=8))
+    label = f"{bar:g} m" if bar < 1000 else f"{bar / 1000:g} km"
+    ax.text(bx + bar / 2, by + 1.5 * bh, label, ha="center", va="bottom", fontsize=8, color=_INK,
+            zorder=8)
+    # north arrow (top right, pointing to true north)
+    cx, cy = xmax - 0.06 * width, ymax - 0.13 * height
+    length = 0.07 * min(width, height) if min(width, height) > 0 else 1.0
+    th = math.radians(north_deg)
+    ux, uy = math.sin(th), math.cos(th)
+    ax.add_patch(FancyArrow(cx - ux * length / 2, cy - uy * length / 2, ux * length, uy * length,
+                            width=length * 0.12, head_width=length * 0.42, head_length=length * 0.4,
+                            length_includes_head=True, facecolor="white", edgecolor=_INK,
+                            linewidth=1.0, zorder=8))
+    ax.text(cx + ux * length * 0.75, cy + uy * length * 0.75, "N", ha="center", va="center",
+            fontsize=10, fontweight="bold", color=_INK, path_effects=halo, zorder=9)
+    handles = [Line2D([], [], linestyle="none", marker=SEVERITY_STYLE[s]["marker"], markersize=7,
+                      markerfacecolor=SEVERITY_STYLE[s]["color"], markeredgecolor="white",
+                      label=SEVERITY_STYLE[s]["label"]) for s in SEVERITIES]
+    handles.append(Line2D([], [], color=_MUTED, linewidth=0.8, label="module outline"))
+    fig.legend(handles=handles, loc="lower center", ncol=4, frameon=False, fontsize=8,
+               bbox_to_anchor=(0.45, 0.0))
+    return _png(fig, dpi)
+
+
+def temperature_hist_png(t_healthy: np.ndarray, t_by_severity: Mapping[str, np.ndarray], dpi: int) -> bytes:
+    """Histogram of module median temperatures [degC], stacked by severity."""
+    fig = _figure(5.0, 3.0)
+    ax = fig.add_axes((0.13, 0.2, 0.83, 0.68))
+    _style(ax)
+    allv = np.concatenate([np.asarray(t_healthy, float)] + [np.asarray(v, float)
+                                                            for v in t_by_severity.values()])
+    allv = allv[np.isfinite(allv)]
+    if allv.size:
+        lo, hi = np.percentile(allv, [0, 100])
+        bins = np.linspace(lo - 0.25, hi + 0.25, int(np.clip(np.sqrt(allv.size) * 2, 10, 60)) + 1)
+        data, colors, labels = [np.asarray(t_healthy, float)], [_HEALTHY], ["no anomaly"]
+        for sev in SEVERITIES:
+            v = np.asarray(t_by_severity.get(sev, []), float)
+            if v.size:
+                data.append(v)
+                colors.append(SEVERITY_STYLE[sev]["color"])
+                labels.append(sev)
+        data = [d[np.isfinite(d)] for d in data]
+        ax.hist(data, bins=bins, stacked=True, color=colors, label=labels, edgecolor="white",
+                linewidth=0.3)
+        med = float(np.median(allv))
+        ax.axvline(med, color=_INK, linewidth=0.8, linestyle="--")
+        ax.text(med, ax.get_ylim()[1] * 0.97, f" median {med:.1f} °C", fontsize=7, color=_INK, va="top")
+        ax.legend(fontsize=7, frameon=False)
+    else:
+        ax.text(0.5, 0.5, "no module temperatures", ha="center", va="center", transform=ax.transAxes)
+    ax.set_xlabel("module median temperature [°C]", fontsize=8)
+    ax.set_ylabel("modules", fontsize=8)
+    ax.set_title("Module temperature distribution", fontsize=9, loc="left")
+    return _png(fig, dpi)
+
+
+def delta_norm_hist_png(all_dtn: np.ndarray, anomaly_dtn: Mapping[str, np.ndarray], dpi: int) -> bytes:
+    """Histogram of modules' normalised delta T [K] (log counts) with anomalies by severity."""
+    fig = _figure(5.0, 3.0)
+    ax = fig.add_axes((0.13, 0.2, 0.83, 0.68))
+    _style(ax)
+    base = np.asarray(all_dtn, float)
+    base = base[np.isfinite(base)]
+    extra = [np.asarray(v, float) for v in anomaly_dtn.values()]
+    allv = np.concatenate([base] + [e[np.isfinite(e)] for e in extra]) if extra else base
+    if allv.size:
+        lo, hi = float(np.min(allv)), float(np.max(allv))
+        bins = np.linspace(min(lo, -1.0) - 0.5, max(hi, 1.0) + 0.5, 50)
+        if base.size:
+            ax.hist(base, bins=bins, color=_HEALTHY, edgecolor="white", linewidth=0.3,
+                    label="modules")
+        for sev in SEVERITIES:
+            v = np.asarray(anomaly_dtn.get(sev, []), float)
+            v = v[np.isfinite(v)]
+            if v.size:
+                ax.hist(v, bins=bins, histtype="step", color=SEVERITY_STYLE[sev]["color"],
+                        linewidth=1.4, label=f"anomalies: {sev}")
+        ax.set_yscale("log")
+        ax.set_ylim(bottom=0.7)
+        ax.axvline(0.0, color=_INK, linewidth=0.6)
+        ax.legend(fontsize=7, frameon=False)
+    else:
+        ax.text(0.5, 0.5, "no normalised delta T", ha="center", va="center", transform=ax.transAxes)
+    ax.set_xlabel("normalised delta T, 1000 W/m² and 1 m/s [K]", fontsize=8)
+    ax.set_ylabel("count (log)", fontsize=8)
+    ax.set_title("Normalised temperature difference", fontsize=9, loc="left")
+    return _png(fig, dpi)
+
+
+def loss_by_defect_png(names: Sequence[str], power_w: Sequence[float], counts: Sequence[int],
+                       energy_kwh: Sequence[float], dpi: int) -> bytes:
+    """Horizontal bars of power loss at STC [W] per defect class."""
+    n = max(len(names), 1)
+    fig = _figure(5.0, max(2.2, 0.9 + 0.32 * n))
+    ax = fig.add_axes((0.3, 0.22 if n > 2 else 0.3, 0.62, 0.62 if n > 2 else 0.5))
+    _style(ax)
+    if len(names):
+        p = np.nan_to_num(np.asarray(power_w, float))
+        y = np.arange(len(names))[::-1]
+        ax.barh(y, p, color="#4c6a8a", height=0.62)
+        ax.set_yticks(y)
+        ax.set_yticklabels([s.replace("_", " ") for s in names], fontsize=8)
+        pmax = float(p.max()) if p.size else 0.0
+        for yi, pi, c, e in zip(y, p, counts, energy_kwh):
+            txt = f" {pi:,.0f} W · {c} · {e:,.0f} kWh/yr" if np.isfinite(e) else f" {pi:,.0f} W · {c}"
+            ax.text(pi, yi, txt, va="center", fontsize=7, color=_INK)
+        ax.set_xlim(0, max(pmax * 1.9, 1.0))
+    else:
+        ax.text(0.5, 0.5, "no anomalies: no loss", ha="center", va="center", transform=ax.transAxes)
+        ax.set_yticks([])
+    ax.set_xlabel("power loss at STC [W]  (label: W · anomalies · energy)", fontsize=8)
+    ax.set_title("Loss by defect class", fontsize=9, loc="left")
+    return _png(fig, dpi)
+
+
+def validity_png(checks: Sequence[Mapping], dpi: int) -> bytes:
+    """Each acquisition check as a gauge: its value against its limit (limit at 1)."""
+    numeric = []
+    for c in checks:
+        try:
+            v, lim = float(c["value"]), float(c["limit"])
+        except (TypeError, ValueError, KeyError):
+            continue
+        if math.isfinite(v) and math.isfinite(lim) and lim != 0:
+            numeric.append((c, v, lim))
+    n = max(len(numeric), 1)
+    fig = _figure(5.0, max(2.0, 0.75 + 0.42 * n))
+    ax = fig.add_axes((0.36, 0.2 if n > 2 else 0.3, 0.58, 0.66 if n > 2 else 0.5))
+    _style(ax)
+    if numeric:
+        ratios = [v / lim for _, v, lim in numeric]
+        xmax = max(2.0, min(max(ratios) * 1.15, 6.0))
+        for k, (c, v, lim) in enumerate(numeric):
+            y = len(numeric) - 1 - k
+            r = min(v / lim, xmax)
+            kind = c.get("kind")
+            if kind == "min":
+                ax.axhspan(y - 0.32, y + 0.32, xmin=0, xmax=1.0 / xmax, color="#f3d6df", zorder=0)
+            elif kind == "max":
+                ax.axhspan(y - 0.32, y + 0.32, xmin=1.0 / xmax, xmax=1.0, color="#f3d6df", zorder=0)
+            passed = c.get("passed")
+            col = "#1e9e86" if passed else ("#d1005d" if passed is False else _MUTED)
+            ax.plot([0, r], [y, y], color=col, linewidth=3, solid_capstyle="butt")
+            ax.plot([r], [y], marker="o", color=col, markersize=6)
+            unit = f" {c.get('unit')}" if c.get("unit") else ""
+            ax.text(r, y + 0.2, f" {v:.4g}{unit}", fontsize=7, color=_INK, va="bottom")
+        ax.axvline(1.0, color=_INK, linewidth=1.0)
+        ax.text(1.0, len(numeric) - 0.45, " limit", fontsize=7, color=_INK)
+        ax.set_yticks(range(len(numeric))[::-1])
+        ax.set_yticklabels([str(c["name"]).replace("_", " ")[:30] + f"\n(limit {lim:.4g})"
+                            for c, _, lim in numeric], fontsize=7)
+        ax.set_xlim(0, xmax)
+        ax.set_ylim(-0.6, len(numeric) - 0.3)
+    else:
+        ax.text(0.5, 0.5, "no numeric validity checks recorded", ha="center", va="center",
+                transform=ax.transAxes, fontsize=8)
+        ax.set_yticks([])
+    ax.set_xlabel("value / limit (shaded: outside the limit)", fontsize=8)
+    ax.set_title("Flight conditions against the validity limits", fontsize=9, loc="left")
+    return _png(fig, dpi)

@@ -1,0 +1,157 @@
+"""Small thermal crops for the anomaly cards, rendered straight to palette PNGs.
+
+A card needs two small images; drawing them with matplotlib would cost a figure each.
+Here a crop is quantised once into the colour map's palette (240 levels), scaled with
+PIL and outlined with a few reserved palette entries, which keeps every PNG to a few
+kilobytes even for long anomaly lists.
+"""
+from __future__ import annotations
+
+import base64
+import io
+import math
+from collections.abc import Iterable, Sequence
+
+import numpy as np
+from PIL import Image, ImageDraw
+
+__all__ = ["Palette", "render_crop", "png_data_uri", "colour_window", "colourbar_png"]
+
+_LEVELS = 240
+IDX_NAN = 250
+IDX_MODULE = 251
+IDX_REGION = 252
+IDX_NEIGHBOUR = 253
+IDX_HALO = 254
+
+
+class Palette:
+    """A matplotlib colour map as a 256-entry PNG palette with reserved outline colours.
+
+    Parameters
+    ----------
+    cmap_name : str
+        A matplotlib colour map (perceptually uniform ones: inferno, magma, cividis ...).
+    region_rgb : tuple of int
+        Colour of the affected region's outline.
+    """
+
+    def __init__(self, cmap_name: str = "inferno", region_rgb=(49, 215, 255)):
+        import matplotlib
+
+        cmap = matplotlib.colormaps[cmap_name]
+        rgb = (np.asarray(cmap(np.linspace(0.0, 1.0, _LEVELS)))[:, :3] * 255).round().astype(np.uint8)
+        pal = np.zeros((256, 3), dtype=np.uint8)
+        pal[:_LEVELS] = rgb
+        pal[IDX_NAN] = (205, 208, 212)
+        pal[IDX_MODULE] = (255, 255, 255)
+        pal[IDX_REGION] = region_rgb
+        pal[IDX_NEIGHBOUR] = (150, 156, 164)
+        pal[IDX_HALO] = (0, 0, 0)
+        self.name = cmap_name
+        self.flat = pal.reshape(-1).tolist()
+
+    def indices(self, values: np.ndarray, vmin: float, vmax: float) -> np.ndarray:
+        """Palette indices of temperatures [degC] in the window ``vmin..vmax``."""
+        span = max(vmax - vmin, 1e-6)
+        with np.errstate(invalid="ignore"):
+            t = (values - vmin) / span
+        idx = np.clip(np.floor(np.nan_to_num(t, nan=0.0) * _LEVELS), 0, _LEVELS - 1).astype(np.uint8)
+        idx[~np.isfinite(values)] = IDX_NAN
+        return idx
+
+
+def colour_window(values: np.ndarray, percentiles: Sequence[float], min_span: float) -> tuple[float, float]:
+    """Colour window [degC] from percentiles of the finite ``values``, at least ``min_span`` wide.
+
+    Returns (nan, nan) when no value is finite.
+    """
+    v = np.asarray(values, dtype=float)
+    v = v[np.isfinite(v)]
+    if v.size == 0:
+        return (math.nan, math.nan)
+    lo, hi = np.percentile(v, [float(percentiles[0]), float(percentiles[1])])
+    if hi - lo < min_span:
+        mid = 0.5 * (lo + hi)
+        lo, hi = mid - 0.5 * min_span, mid + 0.5 * min_span
+    return float(lo), float(hi)
+
+
+def _to_px(coords: np.ndarray, extent, shape) -> list[tuple[float, float]]:
+    xmin, xmax, ymin, ymax = extent
+    h, w = shape
+    cols = (coords[:, 0] - xmin) / (xmax - xmin) * w
+    rows = (ymax - coords[:, 1]) / (ymax - ymin) * h
+    return list(zip(cols.tolist(), rows.tolist()))
+
+
+def _rings(geom) -> Iterable[np.ndarray]:
+    if geom is None or geom.is_empty:
+        return
+    if geom.geom_type == "Polygon":
+        yield np.asarray(geom.exterior.coords)
+    elif hasattr(geom, "geoms"):
+        for g in geom.geoms:
+            yield from _rings(g)
+    elif geom.geom_type in ("LineString", "LinearRing"):
+        yield np.asarray(geom.coords)
+
+
+def render_crop(values: np.ndarray, extent, palette: Palette, vmin: float, vmax: float, size_px: int,
+                *, modules=(), neighbours=(), regions=()) -> bytes:
+    """A thermal crop as PNG bytes, scaled so its longer side is ``size_px``.
+
+    Parameters
+    ----------
+    values : ndarray (rows, cols)
+        Temperatures [degC], NaN for no data.
+    extent : (xmin, xmax, ymin, ymax)
+        Map extent of the pixel edges [m].
+    palette : Palette
+    vmin, vmax : float
+        Colour window [degC].
+    size_px : int
+        Longer side of the output image [px].
+    modules, neighbours, regions : iterables of shapely geometries in map coordinates
+        Outlined in white (the module), grey (other modules) and the region colour
+        (the affected cell, substring or module) with a dark halo.
+    """
+    h, w = values.shape
+    scale = size_px / max(h, w)
+    out_w, out_h = max(1, int(round(w * scale))), max(1, int(round(h * scale)))
+    img_f = Image.fromarray(np.ascontiguousarray(values, dtype=np.float32))
+    resample = Image.Resampling.NEAREST if scale >= 1 else Image.Resampling.BOX
+    scaled = np.asarray(img_f.resize((out_w, out_h), resample=resample), dtype=np.float32)
+    img = Image.fromarray(palette.indices(scaled, vmin, vmax))
+    img.putpalette(palette.flat)
+    draw = ImageDraw.Draw(img)
+    lw = max(1, int(round(size_px / 110)))
+    for geom in neighbours:
+        for ring in _rings(geom):
+            draw.line(_to_px(ring, extent, (out_h, out_w)), fill=IDX_NEIGHBOUR, width=1)
+    for geom in modules:
+        for ring in _rings(geom):
+            draw.line(_to_px(ring, extent, (out_h, out_w)), fill=IDX_MODULE, width=lw)
+    for geom in regions:
+        for ring in _rings(geom):
+            pts = _to_px(ring, extent, (out_h, out_w))
+            draw.line(pts, fill=IDX_HALO, width=lw + 2)
+            draw.line(pts, fill=IDX_REGION, width=lw)
+    buf = io.BytesIO()
+    img.save(buf, format="PNG", optimize=True)
+    return buf.getvalue()
+
+
+def colourbar_png(palette: Palette, width: int = 160, height: int = 10) -> bytes:
+    """A horizontal colour-bar strip (low temperatures left) as PNG bytes."""
+    row = np.linspace(0, _LEVELS - 1, width).round().astype(np.uint8)
+    img = Image.fromarray(np.repeat(row[None, :], height, axis=0))
+    img.putpalette(palette.flat)
+    buf = io.BytesIO()
+    img.save(buf, format="PNG", optimize=True)
+    return buf.getvalue()
+
+
+def png_data_uri(png: bytes) -> str:
+    """``data:image/png;base64,...`` for embedding in the HTML."""
+    return "data:image/png;base64," + base64.b64encode(png).decode("ascii")

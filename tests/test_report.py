@@ -1,0 +1,530 @@
+"""Tests of the inspection report (pvscan.report) and the CLI end-of-run summary.
+
+The fixture builds a small result folder following the output contract: an invented plant of
+24 portrait modules in two tables (UTM zone 32N), a thermal GeoTIFF at 5 cm/px with three
+planted anomalies (one hot cell, one bypassed substring, one open module), and the four
+result files that ``pvscan inspect`` writes.
+"""
+from __future__ import annotations
+
+import base64
+import csv
+import io
+import json
+import math
+import re
+from html.parser import HTMLParser
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+CRS = "EPSG:32632"
+GSD = 0.05  # [m/px]
+X0, Y0 = 500_000.0, 5_300_000.0  # south-west corner of the ortho [m], UTM 32N
+MOD_W, MOD_L = 1.0, 2.0  # module short / long side [m] (portrait: long side north-south)
+BACKGROUND_C, MODULE_C = 28.0, 41.0  # apparent ground / healthy module temperature [degC]
+
+
+def _module_boxes():
+    """(module_id, table_id, row, col, (x0, y0, x1, y1)) of 2 tables x 1 row x 12 modules."""
+    out = []
+    for t in range(2):
+        ty = Y0 + 4.0 + t * 6.0
+        for c in range(12):
+            x = X0 + 3.0 + c * (MOD_W + 0.05)
+            out.append((f"T{t + 1:02d}-R1-C{c + 1:02d}", f"T{t + 1:02d}", 1, c + 1,
+                        (x, ty, x + MOD_W, ty + MOD_L)))
+    return out
+
+
+# anomaly planted: (module index, defect, severity, region box in local fractions (u0,u1,v0,v1)
+# with u along the long side from the lower (south) edge and v across from the west side, rise [K])
+PLANTED = [
+    (5, "hot_cell", "repair", (0.5, 0.5833, 0.3333, 0.5), 18.0),
+    (14, "bypassed_substring", "repair", (0.0, 1.0, 0.0, 0.3333), 6.0),
+    (20, "open_module", "safety", (0.0, 1.0, 0.0, 1.0), 9.0),
+]
+
+
+def _region_box(box, uv):
+    x0, y0, x1, y1 = box
+    u0, u1, v0, v1 = uv
+    return (x0 + v0 * (x1 - x0), y0 + u0 * (y1 - y0), x0 + v1 * (x1 - x0), y0 + u1 * (y1 - y0))
+
+
+def build_result(tmp_path: Path, *, n_extra: int = 0, with_ortho: bool = True, kelvin: bool = False,
+                 seed: int = 7) -> Path:
+    """Write a result folder (and its thermal ortho) under ``tmp_path``; return the folder.
+
+    ``n_extra`` adds that many monitor-level hot cells (for long-list tests).
+    """
+    import rasterio
+    from pyproj import Transformer
+    from affine import Affine
+    from shapely.geometry import box as sbox, mapping
+    import shapely
+
+    rng = np.random.default_rng(seed)
+    width, height = int(20.0 / GSD), int(16.0 / GSD)
+    img = BACKGROUND_C + rng.normal(0.0, 0.4, (height, width))
+    tr = Affine(GSD, 0.0, X0, 0.0, -GSD, Y0 + height * GSD)
+    mods = _module_boxes()
+
+    def px(b):
+        c0 = int(round((b[0] - X0) / GSD)); c1 = int(round((b[2] - X0) / GSD))
+        r0 = int(round((Y0 + height * GSD - b[3]) / GSD)); r1 = int(round((Y0 + height * GSD - b[1]) / GSD))
+        return slice(r0, r1), slice(c0, c1)
+
+    for _, _, _, _, b in mods:
+        img[px(b)] = MODULE_C + rng.normal(0.0, 0.3, img[px(b)].shape)
+    planted = list(PLANTED)
+    for k in range(n_extra):
+        i = [m for m in range(len(mods)) if m not in (5, 14, 20)][k % 21]
+        planted.append((i, "hot_cell", "monitor", (0.1 + 0.05 * (k % 8), 0.1833 + 0.05 * (k % 8), 0.0, 0.1667),
+                        3.0 + 0.1 * k))
+    for i, _, _, uv, rise in planted:
+        img[px(_region_box(mods[i][4], uv))] += rise
+    img[:6, :6] = -9999.0  # a nodata corner
+    out_tif = tmp_path / "flight" / "thermal.tif"
+    out_tif.parent.mkdir(parents=True, exist_ok=True)
+    data = (img + 273.15).astype(np.float32) if kelvin else img.astype(np.float32)
+    data[:6, :6] = -9999.0
+    with rasterio.open(out_tif, "w", driver="GTiff", width=width, height=height, count=1, dtype="float32",
+                       crs=CRS, transform=tr, nodata=-9999.0, tiled=True, blockxsize=128,
+                       blockysize=128) as ds:
+        ds.write(data, 1)
+
+    to_ll = Transformer.from_crs(CRS, "EPSG:4326", always_xy=True).transform
+
+    def lonlat(geom):
+        return shapely.transform(geom, lambda xy: np.column_stack(to_ll(xy[:, 0], xy[:, 1])))
+
+    def ll(geom):
+        return mapping(lonlat(geom))
+
+    res = tmp_path / "result"
+    res.mkdir()
+    defect_of = {p[0]: p for p in planted}
+    feats = []
+    for i, (mid, tid, row, col, b) in enumerate(mods):
+        p = defect_of.get(i)
+        t_med = MODULE_C + 2.0 + (p[4] if p and p[1] == "open_module" else 0.0)
+        feats.append({"type": "Feature", "geometry": ll(sbox(*b)), "properties": {
+            "module_id": mid, "table_id": tid, "table_row": row, "table_col": col,
+            "t_mean_c": t_med, "t_median_c": t_med, "t_p95_c": t_med + 1.0, "t_max_c": t_med + 2.0,
+            "t_min_c": t_med - 1.0, "t_std_k": 0.4, "valid_fraction": 1.0, "reference_c": MODULE_C + 2.0,
+            "delta_t_k": t_med - MODULE_C - 2.0, "delta_t_norm_k": (t_med - MODULE_C - 2.0) * 1.3,
+            "defect": p[1] if p else None, "power_loss_w": 0.0 if not p else 10.0}})
+    (res / "modules.geojson").write_text(json.dumps({"type": "FeatureCollection", "features": feats}))
+    # anomalies ranked: safety first, then by loss
+    rows = []
+    for i, defect, sev, uv, rise in planted:
+        loss = {"hot_cell": 12.0 + rise, "bypassed_substring": 136.7, "open_module": 410.0}[defect]
+        rows.append(dict(module_index=i, defect=defect, severity=sev, uv=uv, rise=rise, loss=loss))
+    order = sorted(rows, key=lambda r: (("safety", "repair", "monitor").index(r["severity"]), -r["loss"]))
+    a_feats, w_rows = [], []
+    for prio, r in enumerate(order, start=1):
+        mid, tid, row, col, b = mods[r["module_index"]]
+        region = sbox(*_region_box(b, r["uv"]))
+        c = lonlat(region).centroid
+        aid = f"A{prio:04d}"
+        action = {"safety": "Isolate the string and inspect the module and its connectors",
+                  "repair": "Replace the module or its bypass diode at the next service visit",
+                  "monitor": "Check again at the next flight"}[r["severity"]]
+        props = {"anomaly_id": aid, "module_id": mid, "module_ids": [mid], "defect": r["defect"],
+                 "severity": r["severity"], "delta_t_k": r["rise"], "delta_t_norm_k": round(r["rise"] * 1.3, 3),
+                 "t_max_c": MODULE_C + 2.0 + r["rise"], "power_loss_w": r["loss"],
+                 "energy_loss_kwh_per_year": r["loss"] * 1.15, "priority": prio, "confidence": 0.9,
+                 "table_id": tid, "action": action}
+        a_feats.append({"type": "Feature", "geometry": ll(region), "properties": props})
+        w_rows.append({"priority": prio, "anomaly_id": aid, "module_id": mid, "table_id": tid,
+                       "table_row": row, "table_col": col, "defect": r["defect"], "severity": r["severity"],
+                       "action": action, "delta_t_k": r["rise"], "delta_t_norm_k": round(r["rise"] * 1.3, 3),
+                       "power_loss_w": r["loss"], "energy_loss_kwh_per_year": r["loss"] * 1.15,
+                       "lon": round(c.x, 7), "lat": round(c.y, 7)})
+    # the file order is not the priority order: the report must sort
+    (res / "anomalies.geojson").write_text(json.dumps({"type": "FeatureCollection",
+                                                       "features": a_feats[::-1]}))
+    with open(res / "workorders.csv", "w", newline="") as fh:
+        w = csv.DictWriter(fh, fieldnames=list(w_rows[0]))
+        w.writeheader()
+        w.writerows(w_rows)
+    by_def, by_sev = {}, {}
+    for r in rows:
+        by_def[r["defect"]] = by_def.get(r["defect"], 0) + 1
+        by_sev[r["severity"]] = by_sev.get(r["severity"], 0) + 1
+    summary = {
+        "pvscan_version": "0.1.0", "pipeline": None,
+        "site": {"name": "Hollowmere Solar Field (demo)"},
+        "flight": {"id": "HM-2026-06-14-A", "start": "2026-06-14T10:40:00+02:00",
+                   "end": "2026-06-14T11:25:00+02:00"},
+        "inputs": {"files": [str(out_tif) if with_ortho else str(tmp_path / "gone.tif")], "crs": CRS,
+                   "gsd_m": GSD},
+        "conditions": {"poa_global": 870.0, "temp_air": 26.5, "wind_speed": 2.1, "temp_sky": -12.0},
+        "validity": {"ok": False, "checks": [
+            {"name": "poa_global_min", "value": 870.0, "limit": 600.0, "unit": "W/m2", "passed": True,
+             "source": "IEC TS 62446-3"},
+            {"name": "wind_speed_max", "value": 2.1, "limit": 7.8, "unit": "m/s", "passed": True,
+             "source": "IEC TS 62446-3 (from memory)"},
+            {"name": "irradiance_change_max", "value": 14.0, "limit": 10.0, "unit": "%", "passed": False,
+             "source": "common practice"},
+        ]},
+        "counts": {"modules": len(mods), "anomalies": len(rows), "by_defect": by_def, "by_severity": by_sev},
+        "loss": {"power_loss_w": sum(r["loss"] for r in rows)},
+        "power_loss_w": sum(r["loss"] for r in rows),
+        "layout_shift_m": [0.0, 0.0],
+        "safety": ["Keep a fire extinguisher for electrical fires within reach during site work."],
+    }
+    if kelvin:
+        summary["inputs"]["manifest"] = str(_write_manifest(tmp_path / "flight", kelvin=True))
+    (res / "summary.json").write_text(json.dumps(summary, indent=1))
+    return res
+
+
+def _write_manifest(folder: Path, kelvin: bool) -> Path:
+    text = f"""[site]
+name = "Hollowmere Solar Field (demo)"
+
+[flight]
+orthos = ["thermal.tif"]
+layout = "layout.geojson"
+start = "2026-06-14T10:40:00+02:00"
+end = "2026-06-14T11:25:00+02:00"
+
+[ortho]
+units = "{'kelvin' if kelvin else 'celsius'}"
+
+[conditions]
+poa_irradiance_w_m2 = 870.0
+ambient_c = 26.5
+wind_m_s = 2.1
+
+[module]
+pmax_w = 410.0
+gamma_pmax_pct_per_k = -0.35
+width_m = 1.0
+length_m = 2.0
+cells_across = 6
+cells_along = 12
+bypass_diodes = 3
+emissivity = 0.85
+"""
+    (folder / "layout.geojson").write_text('{"type": "FeatureCollection", "features": []}')
+    p = folder / "flight.toml"
+    p.write_text(text)
+    return p
+
+
+# ------------------------------------------------------------------ HTML helpers
+class _Collector(HTMLParser):
+    def __init__(self):
+        super().__init__(convert_charrefs=True)
+        self.imgs, self.links, self.cards, self.scripts, self.ids = [], [], [], 0, set()
+        self.text = []
+        self._in_style = False
+        self.styles = []
+
+    def handle_starttag(self, tag, attrs):
+        a = dict(attrs)
+        if "id" in a:
+            self.ids.add(a["id"])
+        if tag == "img":
+            self.imgs.append(a)
+        if tag in ("a", "link") and "href" in a:
+            self.links.append(a["href"])
+        if tag == "article" and "card" in (a.get("class") or ""):
+            self.cards.append(a)
+        if tag == "script":
+            self.scripts += 1
+        if tag == "style":
+            self._in_style = True
+
+    def handle_endtag(self, tag):
+        if tag == "style":
+            self._in_style = False
+
+    def handle_data(self, data):
+        (self.styles if self._in_style else self.text).append(data)
+
+
+def parse(html_text: str) -> _Collector:
+    c = _Collector()
+    c.feed(html_text)
+    return c
+
+
+def decode_png(uri: str):
+    from PIL import Image
+
+    assert uri.startswith("data:image/png;base64,"), uri[:40]
+    raw = base64.b64decode(uri.split(",", 1)[1], validate=True)
+    assert raw[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature, ISO/IEC 15948 section 5.2
+    im = Image.open(io.BytesIO(raw))
+    im.load()
+    return im
+
+
+@pytest.fixture(scope="module")
+def result(tmp_path_factory):
+    return build_result(tmp_path_factory.mktemp("report"))
+
+
+@pytest.fixture(scope="module")
+def report_html(result):
+    from pvscan.report import write_report
+
+    path = write_report(result)
+    assert path == result / "report.html"
+    return path.read_text(encoding="utf-8")
+
+
+# ------------------------------------------------------------------ structure
+def test_every_anomaly_has_a_card_in_priority_order(result, report_html):
+    doc = parse(report_html)
+    ids = [c["data-anomaly"] for c in doc.cards]
+    prios = [int(c["data-priority"]) for c in doc.cards]
+    with open(result / "workorders.csv") as fh:
+        wo = list(csv.DictReader(fh))
+    assert len(doc.cards) == len(wo) == len(PLANTED)
+    assert prios == sorted(prios) == [int(r["priority"]) for r in wo]
+    assert ids == [r["anomaly_id"] for r in wo]
+    # the safety anomaly (open module) comes first
+    assert "open module" in report_html.split('id="a1"')[1].split("</article>")[0]
+    # every work-list link lands on a card
+    for href in doc.links:
+        if href.startswith("#"):
+            assert href[1:] in doc.ids, href
+
+
+def test_every_embedded_image_decodes(report_html):
+    doc = parse(report_html)
+    # overview, 4 plots, validity plot again in conditions, 3 cards x (2 crops + 2 colour strips)
+    assert len(doc.imgs) >= 1 + 4 + 1 + 3 * 4
+    sizes = []
+    for a in doc.imgs:
+        im = decode_png(a["src"])
+        assert im.size[0] > 0 and im.size[1] > 0
+        assert a.get("alt"), "every image has alt text"
+        sizes.append(im.size)
+    crops = [decode_png(a["src"]).size for a in doc.imgs if "crop" in (a.get("class") or "")]
+    assert len(crops) == 6
+    assert all(max(s) <= 200 and max(s) >= 100 for s in crops), crops
+
+
+def test_no_external_urls_and_no_script(report_html):
+    doc = parse(report_html)
+    assert doc.scripts == 0
+    for a in doc.imgs:
+        assert a["src"].startswith("data:image/png;base64,")
+    for href in doc.links:
+        assert href.startswith("#"), href
+    lowered = report_html.lower()
+    assert "http:" not in lowered and "https:" not in lowered
+    assert not re.search(r"""(src|href)\s*=\s*["']?//""", lowered)
+    assert "@import" not in lowered and "url(" not in "".join(doc.styles).lower()
+
+
+def test_cautions_and_method_present(report_html):
+    text = " ".join(parse(report_html).text).lower()
+    for phrase in ("live (dc)", "even when the inverter or the string is disconnected", "arc",
+                   "fire", "burn", "qualified", "local electrical codes", "aviation rules"):
+        assert phrase in text, phrase
+    # the site's own caution from summary.json is carried over too
+    assert "fire extinguisher" in text
+    # method notes name the published models (Planck, Faiman) and the standard
+    for phrase in ("planck", "faiman", "iec ts 62446-3", "apparent"):
+        assert phrase in text, phrase
+
+
+def test_validity_block_shows_failed_check(report_html):
+    text = " ".join(parse(report_html).text)
+    assert "limits not met" in text
+    assert "irradiance change max" in text
+    # 14 % against a 10 % maximum: the failing verdict appears in the checks table
+    row = report_html.split("irradiance change max")[-1].split("</tr>")[0]
+    assert "fail" in row
+
+
+def test_card_facts_match_the_result(result, report_html):
+    with open(result / "workorders.csv") as fh:
+        first = next(csv.DictReader(fh))
+    card = report_html.split('id="a1"')[1].split("</article>")[0]
+    assert first["module_id"] in card
+    assert f"{float(first['lat']):.6f}, {float(first['lon']):.6f}" in card
+    assert "position" in card and "table T02" in card
+    assert "410 W" in card  # power loss of the open module [W]
+
+
+def test_crop_outlines_the_planted_region(tmp_path):
+    """The close-up is centred on the module and the hot region is where it was planted."""
+    from pvscan.report._images import IDX_REGION, Palette, render_crop
+
+    pal = Palette("inferno")
+    # 40 x 20 px module at 1 px = 1 m, hot strip in the left third
+    vals = np.full((40, 20), 40.0)
+    vals[:, :7] = 46.0
+    from shapely.geometry import box
+
+    png = render_crop(vals, (0, 20, 0, 40), pal, 39.0, 47.0, 160, modules=[box(0, 0, 20, 40)],
+                      regions=[box(0, 0, 20 / 3, 40)])
+    from PIL import Image
+
+    im = Image.open(io.BytesIO(png))
+    assert im.mode == "P" and max(im.size) == 160
+    idx = np.asarray(im)
+    cols = np.where((idx == IDX_REGION).any(axis=0))[0]
+    # region outline spans x = 0 .. 20/3 m -> 0 .. 26.7 px at 4 px/m (the line is 1-2 px wide)
+    assert cols.min() <= 2 and 24 <= cols.max() <= 29
+    # the hot strip is brighter than the rest in the colour map (inferno increases in lightness)
+    hot, cool = np.median(idx[60:100, 8:20]), np.median(idx[60:100, 40:72])
+    assert hot > cool
+
+
+def test_colour_map_is_perceptually_ordered():
+    """inferno/magma/cividis rise monotonically in lightness (matplotlib's documentation of its
+    perceptually uniform maps); checked here with CIE L* from sRGB (IEC 61966-2-1 transfer curve,
+    CIE 1976 L*)."""
+    import matplotlib
+
+    from pvscan.settings import load_pipeline
+
+    name = load_pipeline()["report"]["colormap"]
+    rgb = np.asarray(matplotlib.colormaps[name](np.linspace(0, 1, 64)))[:, :3]
+    lin = np.where(rgb <= 0.04045, rgb / 12.92, ((rgb + 0.055) / 1.055) ** 2.4)
+    y = lin @ np.array([0.2126, 0.7152, 0.0722])  # ITU-R BT.709 luminance weights
+    lstar = np.where(y > (6 / 29) ** 3, 116 * np.cbrt(y) - 16, y * (29 / 3) ** 3)
+    assert np.all(np.diff(lstar) > 0)
+
+
+def test_scale_bar_lengths():
+    from pvscan.report._figures import nice_length
+
+    assert nice_length(37.0) == 20.0
+    assert nice_length(8.0) == 5.0
+    assert nice_length(1.0) == 1.0
+    assert nice_length(0.31) == pytest.approx(0.2)
+
+
+def test_north_arrow_follows_grid_convergence(result):
+    """In transverse Mercator the grid convergence is gamma ~ (lon - lon0) * sin(lat) to first order
+    (Snyder 1987, Map Projections - A Working Manual, USGS PP 1395; formula from memory). East of
+    the central meridian grid north lies east of true north, so true north points left of map up."""
+    from pvscan.report._build import _MapGeometry
+    from pvscan.report._result import load_result
+
+    data = load_result(result)
+    # shift the whole plant 3 degrees east of zone 32's central meridian (9 E)
+    import pandas as pd
+    from shapely.affinity import translate
+
+    data.modules["geometry"] = [translate(g, 3.0, 0.0) for g in data.modules["geometry"]]
+    data.anomalies = data.anomalies.iloc[0:0]
+    geo = _MapGeometry(data, CRS)
+    lat = float(np.mean([g.centroid.y for g in data.modules["geometry"]]))
+    lon = float(np.mean([g.centroid.x for g in data.modules["geometry"]]))
+    expected = -(lon - 9.0) * math.sin(math.radians(lat))
+    assert geo.north_deg() == pytest.approx(expected, abs=0.05)
+    assert isinstance(data.modules, pd.DataFrame)
+
+
+def test_validity_checks_normalised():
+    from pvscan.report import validity_checks
+
+    checks, ok = validity_checks({"validity": {"checks": {
+        "poa": {"value": 500, "limit": 600, "passed": False, "unit": "W/m2", "source": "IEC TS 62446-3"},
+        "wind": {"value": 3, "max": 8, "ok": True}}}})
+    assert ok is False
+    assert [c["name"] for c in checks] == ["poa", "wind"]
+    assert checks[0]["kind"] == "min"  # failing below the limit: a minimum
+    assert checks[1]["kind"] == "max" and checks[1]["passed"] is True
+
+
+def test_report_without_ortho_still_builds(tmp_path):
+    from pvscan.report import write_report
+
+    res = build_result(tmp_path, with_ortho=False)
+    html_text = write_report(res, tmp_path / "r.html").read_text()
+    doc = parse(html_text)
+    assert len(doc.cards) == len(PLANTED)
+    assert "thermal ortho not found" in html_text.lower()
+    assert "module median temperature" in " ".join(doc.text).lower() or len(doc.imgs) >= 5
+    for a in doc.imgs:
+        decode_png(a["src"])
+
+
+def test_kelvin_ortho_is_shown_in_celsius(tmp_path):
+    """A kelvin export is read through the manifest's [ortho] units: the colour windows are
+    in degC (T[degC] = T[K] - 273.15, the definition of the Celsius scale)."""
+    from pvscan.report import write_report
+
+    res = build_result(tmp_path, kelvin=True)
+    html_text = write_report(res).read_text()
+    lows = [float(x) for x in re.findall(r'<span class="scale">(-?[\d.]+)<img', html_text)]
+    assert lows, "colour windows printed"
+    assert all(0.0 < v < 80.0 for v in lows), lows
+
+
+def test_long_lists_keep_the_file_small(tmp_path):
+    from pvscan.report import write_report
+
+    res = build_result(tmp_path, n_extra=160)
+    path = write_report(res, settings={"many_anomalies": 100})
+    doc = parse(path.read_text())
+    assert len(doc.cards) == len(PLANTED) + 160
+    crops = [decode_png(a["src"]).size for a in doc.imgs if "crop" in (a.get("class") or "")]
+    assert max(max(s) for s in crops) <= 120
+    # ~ 2 crops of a few kB per card: the whole file stays below 8 MB
+    assert path.stat().st_size < 8e6
+
+
+def test_missing_result_file_is_a_clear_error(tmp_path):
+    from pvscan.errors import OutputError
+    from pvscan.report import write_report
+
+    res = build_result(tmp_path)
+    (res / "anomalies.geojson").unlink()
+    with pytest.raises(OutputError, match="anomalies.geojson"):
+        write_report(res)
+    assert not (res / "report.html").exists()
+
+
+def test_report_command(result, tmp_path):
+    from click.testing import CliRunner
+
+    from pvscan.cli.main import cli
+
+    out = tmp_path / "again.html"
+    r = CliRunner().invoke(cli, ["report", str(result), "--out", str(out)])
+    assert r.exit_code == 0, r.output
+    assert out.exists() and str(out) in r.output
+    r = CliRunner().invoke(cli, ["report", str(tmp_path / "nowhere")])
+    assert r.exit_code != 0
+    assert "nowhere" in r.output and "Traceback" not in r.output
+
+
+def test_summary_fits_one_screen(result):
+    from click.testing import CliRunner
+    import click
+
+    from pvscan.cli._summary import print_inspection_summary
+
+    @click.command()
+    def show():
+        print_inspection_summary(result)
+
+    r = CliRunner().invoke(show, [])
+    assert r.exit_code == 0, r.output
+    lines = r.output.rstrip("\n").split("\n")
+    assert len(lines) <= 32
+    assert max(len(s) for s in lines) <= 100
+    text = r.output.lower()
+    assert "open module" in text and "bypassed substring" in text
+    # totals: 410 + 136.7 + 30 W = 576.7 W at STC
+    assert "577 w" in text
+    assert "irradiance change max" in text  # the failed validity check is shown
+    assert "report.html" in text or "workorders.csv" in text
+    assert "live" in text and "qualified" in text
+    # the top work order comes first
+    top = [s for s in lines if s.strip().startswith("1 ")]
+    assert top and "T02-R1-C09" in top[0]
