@@ -1042,7 +1042,7 @@ def flight_radiometry(flight, conditions, settings: Mapping[str, Any] | None = N
         tilt = getattr(getattr(flight, "layout", None), "tilt_deg", None) or 0.0
         emissivity = float(effective_emissivity(emissivity, tilt))
     temp_air = np.asarray(conditions["temp_air"], dtype=float)
-    rh_default = float(settings.get("relative_humidity_pct", 50.0))
+    rh_default = float(settings.get("default_relative_humidity_pct", 50.0))
     if "relative_humidity" in getattr(conditions, "columns", conditions):
         rh = np.asarray(conditions["relative_humidity"], dtype=float)
         rh = np.where(np.isfinite(rh), rh, rh_default)
@@ -1058,7 +1058,7 @@ def flight_radiometry(flight, conditions, settings: Mapping[str, Any] | None = N
     if settings.get("atmosphere", True):
         dist = getattr(flight.flight, "altitude_m", None)
         if dist is None:
-            dist = float(settings.get("distance_m", 50.0))
+            dist = float(settings.get("default_altitude_m", 60.0))
         kw["transmission"] = np.asarray(
             atmospheric_transmission(
                 dist, temp_air, rh, pressure_hpa=float(settings.get("pressure_hpa", 1013.25)), band_um=band

@@ -1,0 +1,737 @@
+"""Acquisition conditions: weather during the flight, per module, and their validity.
+
+Three sources, in this order of preference for each quantity:
+
+1. a weather series (CSV, :func:`read_weather_series`), interpolated linearly in time;
+2. the constants of the manifest's ``[conditions]`` table;
+3. a model, for the sky temperature only (:func:`pvscan.radiometry.sky_temperature`).
+
+With camera frame footprints (:func:`read_frames`) each module takes the time of the frame
+that imaged it best (the frame containing the module centre whose own centre is closest
+to it, i.e. the most nadir view, which is the one an orthomosaic keeps) and the weather of
+that moment; without frames every module takes the flight's mean.
+
+:func:`check_validity` compares the flight with the outdoor-thermography acquisition
+conditions of IEC TS 62446-3 (minimum irradiance in the module plane, maximum wind,
+stable irradiance, few clouds) and with the ground sampling distance needed to resolve
+cells. Each limit lives in the ``[conditions]`` section of the pipeline with its source.
+
+References
+----------
+.. [1] IEC TS 62446-3:2017, Photovoltaic (PV) systems - Requirements for testing,
+   documentation and maintenance - Part 3: Photovoltaic modules and plants - Outdoor
+   infrared thermography.
+"""
+from __future__ import annotations
+
+import logging
+import math
+import warnings
+from collections.abc import Mapping
+from dataclasses import asdict, dataclass, field
+from datetime import datetime, timedelta, timezone
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from pvscan import radiometry
+from pvscan.errors import ConditionsError, ValidityWarning
+
+__all__ = [
+    "WEATHER_COLUMNS",
+    "FlightConditions",
+    "Validity",
+    "read_weather_series",
+    "read_frames",
+    "flight_conditions",
+    "module_conditions",
+    "check_validity",
+]
+
+logger = logging.getLogger(__name__)
+
+#: Weather series columns: name -> (pvscan name, required, plausible range, unit).
+WEATHER_COLUMNS: dict[str, tuple[str, bool, tuple[float, float], str]] = {
+    "poa_irradiance_w_m2": ("poa_global", True, (-50.0, 2000.0), "W/m2"),
+    "ambient_c": ("temp_air", True, (-80.0, 70.0), "degC"),
+    "wind_m_s": ("wind_speed", True, (0.0, 75.0), "m/s"),
+    "sky_c": ("temp_sky", False, (-120.0, 70.0), "degC"),
+    "relative_humidity_pct": ("relative_humidity", False, (0.0, 100.0), "%"),
+    "cloud_okta": ("cloud_okta", False, (0.0, 9.0), "okta"),
+}
+
+# spec attribute -> pvscan name
+_SPEC_KEYS = {
+    "poa_irradiance_w_m2": "poa_global",
+    "ambient_c": "temp_air",
+    "wind_m_s": "wind_speed",
+    "sky_c": "temp_sky",
+    "relative_humidity_pct": "relative_humidity",
+}
+
+
+def _settings(settings: Mapping | None) -> Mapping:
+    if settings is None:
+        from pvscan.settings import load_pipeline
+
+        return load_pipeline()["conditions"]
+    return settings
+
+
+def _spec_get(spec, key):
+    if spec is None:
+        return None
+    if isinstance(spec, Mapping):
+        return spec.get(key)
+    return getattr(spec, key, None)
+
+
+# ---------------------------------------------------------------------------------------
+# Reading
+# ---------------------------------------------------------------------------------------
+def _parse_time(text: str, where: str) -> datetime:
+    s = text.strip()
+    if not s:
+        raise ConditionsError(f"{where}: empty time")
+    try:
+        t = datetime.fromisoformat(s[:-1] + "+00:00" if s.endswith(("Z", "z")) else s)
+    except ValueError:
+        raise ConditionsError(f"{where}: time {text!r} is not ISO 8601") from None
+    if t.tzinfo is None or t.tzinfo.utcoffset(t) is None:
+        raise ConditionsError(f"{where}: time {text!r} has no UTC offset (write e.g. +02:00 or Z)")
+    return t.astimezone(timezone.utc)
+
+
+def read_weather_series(path) -> pd.DataFrame:
+    """Read a weather series (CSV) recorded during the flight.
+
+    Columns: ``time`` (ISO 8601 with a UTC offset), ``poa_irradiance_w_m2`` [W/m2],
+    ``ambient_c`` [degC], ``wind_m_s`` [m/s]; optional ``sky_c`` [degC],
+    ``relative_humidity_pct`` [%], ``cloud_okta`` [okta]. Other columns are ignored. Empty
+    cells are gaps (interpolated over); text that is not a number is an error.
+
+    Parameters
+    ----------
+    path : path-like
+        The CSV file.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Index: tz-aware UTC times, sorted, named ``time``. Columns: the file's weather
+        columns as float. ``attrs["source"]`` holds the path.
+
+    Raises
+    ------
+    ConditionsError
+        Missing file or column, an unparsable value, a time without offset, a duplicated
+        time, a value outside its plausible range, or a column without any value; the
+        message names the file, column and row (1 = first data row; line = row + 1).
+    """
+    path = Path(path)
+    try:
+        raw = pd.read_csv(path, dtype=str, keep_default_na=False, skipinitialspace=True, encoding="utf-8-sig")
+    except FileNotFoundError:
+        raise ConditionsError(f"{path}: weather series not found") from None
+    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
+        raise ConditionsError(f"{path}: not a readable CSV: {str(exc).splitlines()[0]}") from None
+    except OSError as exc:
+        raise ConditionsError(f"{path}: cannot read: {exc.strerror}") from None
+    raw.columns = [str(c).strip() for c in raw.columns]
+    for col in ["time"] + [c for c, (_, req, _, _) in WEATHER_COLUMNS.items() if req]:
+        if col not in raw.columns:
+            raise ConditionsError(f"{path}: missing column {col!r} (have: {', '.join(raw.columns)})")
+    if len(raw) == 0:
+        raise ConditionsError(f"{path}: no data rows")
+    times = [_parse_time(v, f"{path}: column 'time', row {i + 1} (line {i + 2})") for i, v in enumerate(raw["time"])]
+    index = pd.DatetimeIndex(times, name="time").tz_convert("UTC")
+    data = {}
+    for col, (_, _, (lo, hi), unit) in WEATHER_COLUMNS.items():
+        if col not in raw.columns:
+            continue
+        text = raw[col].astype(str).str.strip()
+        vals = pd.to_numeric(text.where(text != ""), errors="coerce").to_numpy(dtype=float)
+        bad = np.flatnonzero(np.isnan(vals) & (text != "").to_numpy() | np.isinf(vals))
+        if bad.size:
+            i = int(bad[0])
+            raise ConditionsError(f"{path}: column {col!r}, row {i + 1} (line {i + 2}): {raw[col].iloc[i]!r} is not a number")
+        with np.errstate(invalid="ignore"):
+            out = np.flatnonzero((vals < lo) | (vals > hi))
+        if out.size:
+            i = int(out[0])
+            raise ConditionsError(
+                f"{path}: column {col!r}, row {i + 1} (line {i + 2}): {vals[i]:g} {unit} outside {lo:g}..{hi:g}")
+        if np.all(np.isnan(vals)):
+            raise ConditionsError(f"{path}: column {col!r} has no values")
+        data[col] = vals
+    df = pd.DataFrame(data, index=index)
+    dup = index.duplicated(keep=False)
+    if dup.any():
+        rows = np.flatnonzero(dup)[:2] + 1
+        raise ConditionsError(f"{path}: column 'time': rows {rows[0]} and {rows[1]} have the same time {index[rows[0] - 1].isoformat()}")
+    if not index.is_monotonic_increasing:
+        logger.info("%s: times not in order; sorted", path)
+        df = df.sort_index()
+    df.attrs["source"] = str(path)
+    return df
+
+
+def read_frames(path, crs) -> "geopandas.GeoDataFrame":  # noqa: F821
+    """Read the footprints of the camera frames, each with the time it was taken.
+
+    Parameters
+    ----------
+    path : path-like
+        GeoJSON (RFC 7946 lon/lat, or with a ``crs`` member), GeoPackage or Shapefile of
+        polygons with a ``time`` property (ISO 8601 with a UTC offset); an optional
+        ``frame_id`` property.
+    crs : pyproj.CRS or str
+        Target CRS (the ortho's, projected in metres).
+
+    Returns
+    -------
+    geopandas.GeoDataFrame
+        Columns ``frame_id`` (str), ``time`` (tz-aware UTC), ``cx``, ``cy`` (footprint
+        centroid [m]), ``geometry``; in ``crs``.
+
+    Raises
+    ------
+    ConditionsError
+        Missing or unreadable file, no ``time`` column, a time without offset or not ISO
+        8601, a missing or empty geometry; the message names the file and feature.
+    """
+    import geopandas as gpd
+
+    path = Path(path)
+    if not path.exists():
+        raise ConditionsError(f"{path}: frames file not found")
+    try:
+        gdf = gpd.read_file(path, engine="pyogrio", datetime_as_string=True)
+    except Exception as exc:  # pyogrio/GDAL raise their own families
+        raise ConditionsError(f"{path}: cannot read frames: {str(exc).splitlines()[0]}") from None
+    if "time" not in gdf.columns:
+        raise ConditionsError(f"{path}: frames have no 'time' property")
+    if len(gdf) == 0:
+        raise ConditionsError(f"{path}: no frames")
+    if gdf.crs is None:
+        raise ConditionsError(f"{path}: frames have no CRS")
+    ids = gdf["frame_id"].astype(str).tolist() if "frame_id" in gdf.columns else [str(i) for i in range(len(gdf))]
+    times = []
+    for i, (fid, t, g) in enumerate(zip(ids, gdf["time"], gdf.geometry)):
+        where = f"{path}: frame {fid} (feature {i})"
+        if g is None or g.is_empty:
+            raise ConditionsError(f"{where}: missing or empty geometry")
+        if g.geom_type not in ("Polygon", "MultiPolygon"):
+            raise ConditionsError(f"{where}: geometry is {g.geom_type}, expected a polygon")
+        if t is None or (isinstance(t, float) and math.isnan(t)):
+            raise ConditionsError(f"{where}: missing time")
+        times.append(_parse_time(str(t), where))
+    out = gpd.GeoDataFrame(
+        {"frame_id": ids, "time": pd.DatetimeIndex(times).tz_convert("UTC")},
+        geometry=gdf.geometry.values,
+        crs=gdf.crs,
+    ).to_crs(crs)
+    c = out.geometry.centroid
+    out["cx"] = c.x.to_numpy()
+    out["cy"] = c.y.to_numpy()
+    return out
+
+
+# ---------------------------------------------------------------------------------------
+# Flight conditions
+# ---------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class FlightConditions:
+    """Conditions during a flight (time span, means and spread).
+
+    Attributes
+    ----------
+    start, end : datetime
+        Flight time span (tz-aware, UTC).
+    duration_s : float
+        [s].
+    poa_global, poa_global_min, poa_global_max, poa_global_std : float
+        Time-weighted mean, minimum, maximum and standard deviation of the plane-of-array
+        irradiance during the flight [W/m2].
+    temp_air : float
+        Mean air temperature [degC].
+    wind_speed, wind_speed_max : float
+        Mean and maximum wind speed [m/s].
+    temp_sky : float
+        Mean apparent sky temperature in the camera band [degC].
+    relative_humidity : float or None
+        Mean relative humidity [%].
+    cloud_okta : float or None
+        Maximum cloud cover during the flight [okta], when the series has it.
+    source : str
+        ``"series"`` or ``"constants"``.
+    sky_source : str
+        ``"series"``, ``"constants"`` or ``"model"``.
+    n_samples : int
+        Series samples inside the flight (0 for constants).
+    """
+
+    start: datetime
+    end: datetime
+    duration_s: float
+    poa_global: float
+    poa_global_min: float
+    poa_global_max: float
+    poa_global_std: float
+    temp_air: float
+    wind_speed: float
+    wind_speed_max: float
+    temp_sky: float
+    relative_humidity: float | None = None
+    cloud_okta: float | None = None
+    source: str = "constants"
+    sky_source: str = "model"
+    n_samples: int = 0
+
+    @property
+    def poa_global_change_pct(self) -> float:
+        """Largest change of irradiance during the flight, (max - min) / mean [%]."""
+        if not self.poa_global > 0:
+            return float("nan")
+        return 100.0 * (self.poa_global_max - self.poa_global_min) / self.poa_global
+
+    def to_dict(self) -> dict:
+        """JSON-ready mapping (times as ISO 8601 strings)."""
+        d = asdict(self)
+        d["start"] = self.start.isoformat()
+        d["end"] = self.end.isoformat()
+        d["poa_global_change_pct"] = self.poa_global_change_pct
+        return {k: (None if isinstance(v, float) and math.isnan(v) else v) for k, v in d.items()}
+
+
+def _as_utc(t, name: str) -> datetime:
+    if isinstance(t, str):
+        return _parse_time(t, name)
+    if isinstance(t, pd.Timestamp):
+        t = t.to_pydatetime()
+    if not isinstance(t, datetime):
+        raise ConditionsError(f"{name}: expected a datetime, got {type(t).__name__}")
+    if t.tzinfo is None or t.tzinfo.utcoffset(t) is None:
+        raise ConditionsError(f"{name}: time {t.isoformat()} has no UTC offset")
+    return t.astimezone(timezone.utc)
+
+
+def _epoch_s(times) -> np.ndarray:
+    idx = pd.DatetimeIndex(times)
+    if idx.tz is None:
+        raise ConditionsError("times must be tz-aware")
+    return (idx.tz_convert("UTC").as_unit("ns").asi8 / 1e9).astype(float)
+
+
+def _interp(series: pd.DataFrame, col: str, t_s: np.ndarray) -> np.ndarray:
+    """Linear interpolation of one column at epoch seconds (gaps skipped, ends held)."""
+    x = _epoch_s(series.index)
+    y = series[col].to_numpy(dtype=float)
+    ok = np.isfinite(y)
+    return np.interp(t_s, x[ok], y[ok])
+
+
+def _window_stats(series: pd.DataFrame, col: str, t0: float, t1: float) -> tuple[float, float, float, float, int]:
+    """Time-weighted mean, min, max, std of a column over [t0, t1] [epoch s]."""
+    x = _epoch_s(series.index)
+    y = series[col].to_numpy(dtype=float)
+    ok = np.isfinite(y)
+    inner = x[ok][(x[ok] > t0) & (x[ok] < t1)]
+    pts = np.concatenate([[t0], inner, [t1]])
+    vals = np.interp(pts, x[ok], y[ok])
+    if t1 > t0:
+        mean = float(np.sum(0.5 * (vals[1:] + vals[:-1]) * np.diff(pts)) / (t1 - t0))
+    else:
+        mean = float(vals[0])
+    return mean, float(vals.min()), float(vals.max()), float(vals.std()), int(inner.size)
+
+
+def _check_coverage(series: pd.DataFrame, start: datetime, end: datetime, tol_s: float) -> None:
+    src = series.attrs.get("source", "weather series")
+    if len(series) == 0:
+        raise ConditionsError(f"{src}: no data rows")
+    first, last = series.index[0], series.index[-1]
+    if first > start + timedelta(seconds=tol_s) or last < end - timedelta(seconds=tol_s):
+        raise ConditionsError(
+            f"{src}: series covers {first.isoformat()}..{last.isoformat()}, the flight is "
+            f"{start.isoformat()}..{end.isoformat()} (tolerance {tol_s:g} s)")
+
+
+def _resolve_series(spec, series):
+    if series is None:
+        p = _spec_get(spec, "series")
+        if p is not None:
+            series = read_weather_series(p)
+    if series is not None:
+        if not isinstance(series.index, pd.DatetimeIndex) or series.index.tz is None:
+            raise ConditionsError(f"{series.attrs.get('source', 'weather series')}: index must be tz-aware times")
+        missing = [c for c, (_, req, _, _) in WEATHER_COLUMNS.items() if req and c not in series.columns]
+        if missing:
+            raise ConditionsError(f"{series.attrs.get('source', 'weather series')}: missing column {missing[0]!r}")
+        if not series.index.is_monotonic_increasing:
+            series = series.sort_index()
+    return series
+
+
+def _constant(spec, key: str, required: bool):
+    v = _spec_get(spec, key)
+    if v is None:
+        if required:
+            raise ConditionsError(f"conditions.{key}: missing (give the constant or conditions.series)")
+        return None
+    return float(v)
+
+
+def flight_conditions(spec, start, end, series: pd.DataFrame | None = None, *,
+                      settings: Mapping | None = None) -> FlightConditions:
+    """Conditions during the flight: from a weather series, or constants.
+
+    Parameters
+    ----------
+    spec : pvscan.manifest.ConditionsSpec or Mapping
+        Constants ``poa_irradiance_w_m2`` [W/m2], ``ambient_c`` [degC], ``wind_m_s``
+        [m/s], optional ``sky_c`` [degC], ``relative_humidity_pct`` [%], ``series`` (path,
+        read when ``series`` is not given).
+    start, end : datetime
+        Flight time span (tz-aware).
+    series : pandas.DataFrame, optional
+        From :func:`read_weather_series`. Its columns win over the constants.
+    settings : Mapping, optional
+        The ``[conditions]`` pipeline section (``series_tolerance_s``, ``sky_band``).
+
+    Returns
+    -------
+    FlightConditions
+
+    Raises
+    ------
+    ConditionsError
+        Times without offset, end before start, a series that does not cover the flight
+        (beyond ``series_tolerance_s``), or a missing constant without a series.
+    """
+    st = _settings(settings)
+    start = _as_utc(start, "flight.start")
+    end = _as_utc(end, "flight.end")
+    if end < start:
+        raise ConditionsError(f"flight.end {end.isoformat()} is before flight.start {start.isoformat()}")
+    series = _resolve_series(spec, series)
+    t0, t1 = start.timestamp(), end.timestamp()
+    vals: dict[str, Any] = {}
+    n_samples = 0
+    if series is not None:
+        _check_coverage(series, start, end, float(st.get("series_tolerance_s", 300.0)))
+        g = _window_stats(series, "poa_irradiance_w_m2", t0, t1)
+        vals.update(poa_global=g[0], poa_global_min=g[1], poa_global_max=g[2], poa_global_std=g[3])
+        n_samples = g[4]
+        vals["temp_air"] = _window_stats(series, "ambient_c", t0, t1)[0]
+        w = _window_stats(series, "wind_m_s", t0, t1)
+        vals["wind_speed"], vals["wind_speed_max"] = w[0], w[2]
+        for col, name in (("relative_humidity_pct", "relative_humidity"), ("sky_c", "temp_sky")):
+            if col in series.columns:
+                vals[name] = _window_stats(series, col, t0, t1)[0]
+        if "cloud_okta" in series.columns:
+            vals["cloud_okta"] = _window_stats(series, "cloud_okta", t0, t1)[2]
+        source = "series"
+    else:
+        g = _constant(spec, "poa_irradiance_w_m2", True)
+        vals.update(poa_global=g, poa_global_min=g, poa_global_max=g, poa_global_std=0.0)
+        vals["temp_air"] = _constant(spec, "ambient_c", True)
+        w = _constant(spec, "wind_m_s", True)
+        vals["wind_speed"] = vals["wind_speed_max"] = w
+        source = "constants"
+    if "relative_humidity" not in vals:
+        vals["relative_humidity"] = _constant(spec, "relative_humidity_pct", False)
+    if "temp_sky" in vals:
+        sky_source = "series"
+    elif _spec_get(spec, "sky_c") is not None:
+        vals["temp_sky"], sky_source = float(_spec_get(spec, "sky_c")), "constants"
+    else:
+        vals["temp_sky"] = float(radiometry.sky_temperature(
+            vals["temp_air"], vals["relative_humidity"], band=st.get("sky_band", "camera")))
+        sky_source = "model"
+    return FlightConditions(start=start, end=end, duration_s=t1 - t0, source=source, sky_source=sky_source,
+                            n_samples=n_samples, **vals)
+
+
+# ---------------------------------------------------------------------------------------
+# Per-module conditions
+# ---------------------------------------------------------------------------------------
+def _module_centres(modules) -> tuple[np.ndarray, np.ndarray]:
+    cols = ("fx0", "fy0", "fux", "fuy", "fvx", "fvy")
+    if all(c in modules.columns for c in cols):
+        x = modules["fx0"].to_numpy(float) + 0.5 * (modules["fux"].to_numpy(float) + modules["fvx"].to_numpy(float))
+        y = modules["fy0"].to_numpy(float) + 0.5 * (modules["fuy"].to_numpy(float) + modules["fvy"].to_numpy(float))
+        return x, y
+    c = modules.geometry.centroid
+    return c.x.to_numpy(float), c.y.to_numpy(float)
+
+
+def assign_frames(modules, frames) -> pd.DataFrame:
+    """The frame that imaged each module best.
+
+    The best frame contains the module centre and has its own centre closest to it (the
+    most nadir view). A module outside every frame takes the frame nearest to its centre
+    (``time_source = "nearest_frame"``, logged).
+
+    Parameters
+    ----------
+    modules : geopandas.GeoDataFrame
+        Modules (module-local frame columns, or footprints), same CRS as ``frames``.
+    frames : geopandas.GeoDataFrame
+        From :func:`read_frames`.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Aligned with the modules: ``frame`` (row of ``frames``), ``frame_id``, ``time``,
+        ``time_source`` (``"frame"`` or ``"nearest_frame"``).
+    """
+    import shapely
+
+    mx, my = _module_centres(modules)
+    n = len(mx)
+    points = shapely.points(mx, my)
+    geoms = np.asarray(frames.geometry.values)
+    tree = shapely.STRtree(geoms)
+    pi, fi = tree.query(points, predicate="within")
+    cx = frames["cx"].to_numpy(float) if "cx" in frames.columns else frames.geometry.centroid.x.to_numpy(float)
+    cy = frames["cy"].to_numpy(float) if "cy" in frames.columns else frames.geometry.centroid.y.to_numpy(float)
+    best = np.full(n, -1, dtype=np.intp)
+    if pi.size:
+        d2 = (cx[fi] - mx[pi]) ** 2 + (cy[fi] - my[pi]) ** 2
+        order = np.lexsort((fi, d2, pi))  # by module, then distance, then frame row (ties)
+        pi_s, fi_s = pi[order], fi[order]
+        first = np.r_[True, pi_s[1:] != pi_s[:-1]]
+        best[pi_s[first]] = fi_s[first]
+    source = np.where(best >= 0, "frame", "nearest_frame").astype(object)
+    lost = np.flatnonzero(best < 0)
+    if lost.size:
+        near = tree.query_nearest(points[lost], return_distance=False)
+        # query_nearest returns (input, tree) pairs; keep the first per input
+        inp, tr = near
+        keep = np.r_[True, inp[1:] != inp[:-1]]
+        best[lost[inp[keep]]] = tr[keep]
+        logger.warning("%d of %d modules lie outside every camera frame; they take the nearest frame's time",
+                       lost.size, n)
+    times = pd.DatetimeIndex(frames["time"]).tz_convert("UTC")[best]
+    return pd.DataFrame({"frame": best, "frame_id": frames["frame_id"].to_numpy()[best] if "frame_id" in frames
+                         else best.astype(str), "time": times, "time_source": source}, index=modules.index)
+
+
+def module_conditions(modules, spec, start, end, series: pd.DataFrame | None = None, frames=None,
+                      settings: Mapping | None = None) -> pd.DataFrame:
+    """Conditions of the moment each module was imaged.
+
+    Parameters
+    ----------
+    modules : geopandas.GeoDataFrame
+        Modules from :func:`pvscan.layout.read_layout` (module-local frame columns
+        ``fx0 .. fvy``, else the footprint centroids are used).
+    spec : pvscan.manifest.ConditionsSpec or Mapping
+        Manifest constants (see :func:`flight_conditions`).
+    start, end : datetime
+        Flight time span (tz-aware).
+    series : pandas.DataFrame, optional
+        Weather series (:func:`read_weather_series`); read from ``spec.series`` when None.
+    frames : geopandas.GeoDataFrame, optional
+        Camera frames (:func:`read_frames`) in the modules' CRS.
+    settings : Mapping, optional
+        The ``[conditions]`` pipeline section.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Aligned with ``modules``: ``time`` (UTC), ``poa_global`` [W/m2], ``temp_air``
+        [degC], ``wind_speed`` [m/s], ``temp_sky`` [degC], ``relative_humidity`` [%] (NaN
+        when unknown), ``time_source`` (``"frame"``, ``"nearest_frame"`` or
+        ``"flight_mean"``), ``frame_id`` (None without frames).
+
+    Notes
+    -----
+    With frames and a series, values are interpolated at the frame times; with frames and
+    constants, only the time differs between modules; without frames every module takes
+    the flight's time-weighted mean at the flight's mid time.
+    """
+    st = _settings(settings)
+    series = _resolve_series(spec, series)
+    fc = flight_conditions(spec, start, end, series, settings=st)
+    n = len(modules)
+    index = modules.index
+    mid = fc.start + (fc.end - fc.start) / 2
+    means = {
+        "poa_global": fc.poa_global,
+        "temp_air": fc.temp_air,
+        "wind_speed": fc.wind_speed,
+        "relative_humidity": np.nan if fc.relative_humidity is None else fc.relative_humidity,
+    }
+    out = pd.DataFrame(index=index)
+    if frames is not None and n:
+        fr = assign_frames(modules, frames)
+        times = pd.DatetimeIndex(fr["time"])
+        out["time"] = times
+        out["time_source"] = fr["time_source"].to_numpy()
+        out["frame_id"] = fr["frame_id"].to_numpy()
+        if series is not None:
+            t_s = _epoch_s(times)
+            for col, (name, _, _, _) in WEATHER_COLUMNS.items():
+                if col in series.columns and name != "cloud_okta":
+                    out[name] = _interp(series, col, t_s)
+    else:
+        out["time"] = pd.DatetimeIndex([pd.Timestamp(mid)] * n, tz="UTC") if n else pd.DatetimeIndex([], tz="UTC")
+        out["time_source"] = "flight_mean"
+        out["frame_id"] = None
+    for name, v in means.items():
+        if name not in out.columns:
+            out[name] = np.full(n, v, dtype=float)
+    if "temp_sky" not in out.columns:
+        if fc.sky_source in ("series", "constants"):
+            out["temp_sky"] = np.full(n, fc.temp_sky)
+        else:
+            rh = out["relative_humidity"].to_numpy(float)
+            rh_arg = rh if np.all(np.isfinite(rh)) else None
+            out["temp_sky"] = np.asarray(radiometry.sky_temperature(
+                out["temp_air"].to_numpy(float), rh_arg, band=st.get("sky_band", "camera")), dtype=float) * np.ones(n)
+    cols = ["time", "poa_global", "temp_air", "wind_speed", "temp_sky", "relative_humidity", "time_source", "frame_id"]
+    return out[cols]
+
+
+# ---------------------------------------------------------------------------------------
+# Validity
+# ---------------------------------------------------------------------------------------
+@dataclass(frozen=True)
+class Validity:
+    """Acquisition validity of a flight.
+
+    Attributes
+    ----------
+    checks : tuple of dict
+        One per check: ``name``, ``value``, ``limit``, ``kind`` (``"min"`` or ``"max"``),
+        ``unit``, ``passed`` (None when the value is unknown), ``source``.
+    confidence_factor : float
+        0..1; 1 when every known check passes. Each failed check multiplies it by how far
+        the value is from its limit (``value/limit`` for a minimum, ``limit/value`` for a
+        maximum), and the product is floored at ``confidence_floor`` of the pipeline. A
+        design choice: a flight at 540 W/m2 (limit 600) keeps 0.9 of its confidence.
+    """
+
+    checks: tuple = field(default_factory=tuple)
+    confidence_factor: float = 1.0
+
+    @property
+    def ok(self) -> bool:
+        """True when no known check failed."""
+        return not self.failed
+
+    @property
+    def failed(self) -> list[str]:
+        """Names of the failed checks."""
+        return [c["name"] for c in self.checks if c["passed"] is False]
+
+    def to_dict(self) -> dict:
+        """JSON-ready mapping for summary.json."""
+        return {
+            "ok": self.ok,
+            "failed": self.failed,
+            "confidence_factor": self.confidence_factor,
+            "checks": [dict(c) for c in self.checks],
+            "note": ("Acquisition limits of IEC TS 62446-3 for outdoor thermography; a failed "
+                     "check lowers the confidence of every finding of this flight."),
+        }
+
+
+def _check(name, value, limit, kind, unit, source):
+    if value is None or (isinstance(value, float) and not math.isfinite(value)):
+        passed = None
+        value = None
+    else:
+        value = float(value)
+        passed = bool(value >= limit) if kind == "min" else bool(value <= limit)
+    return {"name": name, "value": value, "limit": float(limit), "kind": kind, "unit": unit,
+            "passed": passed, "source": source}
+
+
+def _factor(c) -> float:
+    if c["passed"] is not False:
+        return 1.0
+    v, lim = c["value"], c["limit"]
+    if c["kind"] == "min":
+        return max(v, 0.0) / lim if lim > 0 else 0.0
+    return lim / v if v > 0 else 0.0
+
+
+def check_validity(conditions: FlightConditions, module_conditions: pd.DataFrame | None = None, *,
+                   gsd_m: float | None = None, module_spec=None, cell_size_m: float | None = None,
+                   cloud_okta: float | None = None, settings: Mapping | None = None) -> Validity:
+    """Check a flight against the acquisition conditions for outdoor thermography.
+
+    Checks (limits from the ``[conditions]`` pipeline section, each with its source):
+
+    - ``irradiance_min``: lowest plane-of-array irradiance during the flight (and at any
+      module's imaging time) >= ``min_irradiance_w_m2`` (600 W/m2, IEC TS 62446-3);
+    - ``wind_max``: highest wind speed <= ``max_wind_m_s`` (28 km/h ~ 4 Bft, IEC TS
+      62446-3, from memory);
+    - ``irradiance_change``: (max - min) / mean of the irradiance during the flight <=
+      ``max_irradiance_change_pct`` (from memory);
+    - ``cloud_cover``: cloud cover <= ``max_cloud_okta`` (IEC TS 62446-3, from memory),
+      when known;
+    - ``pixels_per_cell``: cell edge / ground sampling distance >= ``min_px_per_cell``
+      (detailed inspection, from memory), when the GSD is known.
+
+    Parameters
+    ----------
+    conditions : FlightConditions
+        From :func:`flight_conditions`.
+    module_conditions : pandas.DataFrame, optional
+        From :func:`module_conditions`; its lowest ``poa_global`` and highest
+        ``wind_speed`` enter the checks too.
+    gsd_m : float, optional
+        Ground sampling distance of the ortho [m/px].
+    module_spec : pvscan.manifest.ModuleSpec, optional
+        For the cell size: the shorter of ``width_m / n_across`` and ``length_m / n_along``.
+    cell_size_m : float, optional
+        Cell edge [m]; overrides ``module_spec``.
+    cloud_okta : float, optional
+        Cloud cover [okta]; overrides the series.
+    settings : Mapping, optional
+        The ``[conditions]`` pipeline section.
+
+    Returns
+    -------
+    Validity
+        A :class:`~pvscan.errors.ValidityWarning` is issued when a check fails and the
+        section's ``warn`` is true.
+    """
+    st = _settings(settings)
+    poa_min = conditions.poa_global_min
+    wind_max = conditions.wind_speed_max
+    if module_conditions is not None and len(module_conditions):
+        poa_min = min(poa_min, float(np.nanmin(module_conditions["poa_global"].to_numpy(float))))
+        wind_max = max(wind_max, float(np.nanmax(module_conditions["wind_speed"].to_numpy(float))))
+    if cell_size_m is None and module_spec is not None:
+        cell_size_m = min(module_spec.width_m / module_spec.n_across, module_spec.length_m / module_spec.n_along)
+    px = cell_size_m / gsd_m if (cell_size_m is not None and gsd_m) else None
+    cloud = cloud_okta if cloud_okta is not None else conditions.cloud_okta
+    checks = (
+        _check("irradiance_min", poa_min, st["min_irradiance_w_m2"], "min", "W/m2", "IEC TS 62446-3"),
+        _check("wind_max", wind_max, st["max_wind_m_s"], "max", "m/s", "IEC TS 62446-3 (from memory)"),
+        _check("irradiance_change", conditions.poa_global_change_pct, st["max_irradiance_change_pct"], "max", "%",
+               "from memory"),
+        _check("cloud_cover", cloud, st["max_cloud_okta"], "max", "okta", "IEC TS 62446-3 (from memory)"),
+        _check("pixels_per_cell", px, st["min_px_per_cell"], "min", "px",
+               "IEC TS 62446-3 detailed inspection (from memory)"),
+    )
+    factor = 1.0
+    for c in checks:
+        factor *= _factor(c)
+    if any(c["passed"] is False for c in checks):
+        factor = max(factor, float(st["confidence_floor"]))
+    v = Validity(checks=checks, confidence_factor=float(factor))
+    if not v.ok:
+        msg = "; ".join(f"{c['name']} {c['value']:.4g} {c['unit']} (limit {c['limit']:g})"
+                        for c in checks if c["passed"] is False)
+        logger.warning("flight outside acquisition limits: %s", msg)
+        if st.get("warn", True):
+            warnings.warn(f"flight outside acquisition limits: {msg}", ValidityWarning, stacklevel=2)
+    return v
