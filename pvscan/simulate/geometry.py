@@ -10,7 +10,8 @@ the block being rendered.
 
 Conventions match :mod:`pvscan.layout`: row 1 is the module row at the lower edge,
 col 1 the table end with the smallest easting (northing for tables running north-south),
-module ids ``<table_id>-R<row>-C<col>``; the module-local frame has ``u`` along the long
+module ids ``<table_id>-R<row>-C<col>`` with table ids ``TB<table row>-<table>`` (never a
+string that GDAL would read as a time, such as ``T0101``); the module-local frame has ``u`` along the long
 side and ``v`` across, the lower edge at 0 and (U, V) right-handed.
 """
 from __future__ import annotations
@@ -219,7 +220,7 @@ def build_field(sc: dict) -> Field:
     col_num = (cols - g_c) if col_reversed else (g_c + 1)
     # table numbering: first table row at the lower side, tables in order of increasing col
     tb_num = (n_tables - g_tb) if col_reversed else (g_tb + 1)
-    table_id = np.array([f"T{t + 1:02d}{b:02d}" for t, b in zip(g_tr, tb_num)], dtype=object)
+    table_id = np.array([f"TB{t + 1:02d}-{b:02d}" for t, b in zip(g_tr, tb_num)], dtype=object)
     module_id = np.array([f"{t}-R{r + 1}-C{k:02d}" for t, r, k in zip(table_id, g_r, col_num)], dtype=object)
 
     # strings: runs of modules_per_string along each module row, alternating direction
