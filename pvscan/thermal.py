@@ -170,6 +170,7 @@ _REFERENCE_DEFAULTS = {
     "outlier_mad": 3.5,
     "outlier_floor_k": 1.0,
     "iterations": 2,
+    "trend_correction": True,
 }
 
 
@@ -307,11 +308,45 @@ def reference_neighbours(modules: pd.DataFrame, healthy_mask, settings=None,
     return out
 
 
-def _median_of(values: np.ndarray, nb: np.ndarray) -> np.ndarray:
+def _median_of(values: np.ndarray, nb: np.ndarray, xy: np.ndarray | None = None) -> np.ndarray:
+    """Median of the neighbours' values; with ``xy``, corrected for a linear trend.
+
+    The trend correction matters where the neighbours sit on one side (row ends): the
+    median of the neighbours is then the value at their median position, not at the
+    module's. Positions are projected on the main axis of the neighbours' offsets (the row
+    direction for same-row neighbours); the slope is the Theil-Sen estimate (median of
+    pairwise slopes), robust to a defective neighbour; the reference is the median value
+    moved from the neighbours' median position to the module's. Only neighbours lying on
+    a line through the module (within 0.5 m: a table row) are corrected.
+    """
+    n = len(values)
+    if nb.shape[1] == 0:
+        return np.full(n, np.nan)
     vals = np.where(nb >= 0, values[np.maximum(nb, 0)], np.nan)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        return np.nanmedian(vals, axis=1) if vals.shape[1] else np.full(len(values), np.nan)
+        med = np.nanmedian(vals, axis=1)
+        if xy is None:
+            return med
+        off = np.where((nb >= 0)[:, :, None], xy[np.maximum(nb, 0)] - xy[:, None, :], np.nan)
+        # main axis of the offsets (sign-free): angle of the doubled-angle mean direction
+        ang = np.arctan2(off[:, :, 1], off[:, :, 0])
+        c2 = np.nanmean(np.cos(2 * ang), axis=1)
+        s2 = np.nanmean(np.sin(2 * ang), axis=1)
+        phi = 0.5 * np.arctan2(s2, c2)
+        s = off[:, :, 0] * np.cos(phi)[:, None] + off[:, :, 1] * np.sin(phi)[:, None]
+        perp = -off[:, :, 0] * np.sin(phi)[:, None] + off[:, :, 1] * np.cos(phi)[:, None]
+        # only neighbours on a line through the module (its row): a 2-D window is left alone
+        line = np.nanmax(np.abs(perp), axis=1) < 0.5
+        k = nb.shape[1]
+        ia, ib = np.triu_indices(k, 1)
+        ds = s[:, ib] - s[:, ia]
+        dv = vals[:, ib] - vals[:, ia]
+        ok = np.abs(ds) > 0.2
+        slope = np.nanmedian(np.where(ok, dv / np.where(ok, ds, 1.0), np.nan), axis=1)
+        shift = np.nanmedian(s, axis=1)
+    corr = np.where(line & np.isfinite(slope) & np.isfinite(shift), -slope * shift, 0.0)
+    return med + corr
 
 
 @dataclass(frozen=True)
@@ -349,7 +384,10 @@ def local_reference(modules: pd.DataFrame, t_module_c, healthy_mask=None, settin
     (median of neighbours) gives each module's deviation; modules deviating by more than
     ``outlier_mad`` robust standard deviations (1.4826 * MAD, at least
     ``outlier_floor_k``) become suspects and are excluded from the neighbours of the next
-    pass, so defective modules do not pollute their neighbours' reference.
+    pass, so defective modules do not pollute their neighbours' reference. In that last
+    pass the median is corrected for a linear trend along the neighbours (Theil-Sen slope),
+    so a module at a row end, whose neighbours all sit on one side, is not biased by a
+    gradient (``trend_correction``).
 
     Parameters
     ----------
@@ -385,6 +423,7 @@ def local_reference(modules: pd.DataFrame, t_module_c, healthy_mask=None, settin
     healthy = np.isfinite(t) if healthy_mask is None else (np.asarray(healthy_mask, bool) & np.isfinite(t))
     suspect = np.zeros(n, dtype=bool)
     scale = np.nan
+    xy = module_centres(modules) if bool(cfg["trend_correction"]) else None
     nb = reference_neighbours(modules, healthy, cfg, exclude_group=exclude_group)
     ref = _median_of(t, nb)
     for _ in range(max(int(cfg["iterations"]) - 1, 0)):
@@ -401,6 +440,8 @@ def local_reference(modules: pd.DataFrame, t_module_c, healthy_mask=None, settin
         suspect |= new_suspect
         nb = reference_neighbours(modules, healthy & ~suspect, cfg, exclude_group=exclude_group)
         ref = _median_of(t, nb)
+    if xy is not None:
+        ref = _median_of(t, nb, xy)
     logger.debug("local reference: %d suspects excluded, spread %.3f K", int(suspect.sum()), scale)
     if return_details:
         return ReferenceResult(ref, nb, suspect, scale)
