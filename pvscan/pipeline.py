@@ -58,7 +58,6 @@ class InspectionResult:
 
 
 # ----------------------------------------------------------------------------- radiometry
-_ORDER_FIELDS = ("t_median_c", "t_p95_c", "t_max_c", "t_min_c")
 _ORDER_ARRAYS = ("cell_median", "cell_p95", "sub_median", "sub_p95")
 
 
@@ -66,76 +65,28 @@ def true_statistics(stats, params: dict):
     """Convert apparent-temperature statistics to true glass temperature.
 
     The conversion (``radiometry.true_from_apparent``) is monotonic, so order statistics
-    (median, percentiles, max, min; of modules, cells and substrings) convert exactly. The
-    mean and standard deviation convert through a second-order expansion about the mean:
-    ``mean_true = f(m) + 0.5 f''(m) s^2`` and ``std_true = |f'(m)| s``; over a module's
-    temperature spread (a few K) the error is far below 1 mK.
+    (median, percentiles, max, min; of modules, cells and substrings) convert exactly; the
+    mean and standard deviation through a second-order expansion
+    (``radiometry.correct_statistics``).
 
     Parameters
     ----------
     stats : ZonalStats
         Statistics of apparent temperature [degC].
     params : dict
-        Keyword arguments of ``radiometry.true_from_apparent``; values are scalars or
-        per-module arrays of shape (n,).
+        Keywords of ``radiometry.true_from_apparent``: scalars or per-module arrays (n,).
 
     Returns
     -------
     ZonalStats
         The same structure in true glass temperature [degC].
     """
-    from pvscan import radiometry
+    from pvscan.radiometry import correct_statistics
 
-    n = len(stats.table)
-
-    def f(x, extra_dims=0):
-        kw = {}
-        for k, v in params.items():
-            a = np.asarray(v)
-            if a.ndim == 1 and a.shape[0] == n:
-                a = a.reshape((n,) + (1,) * extra_dims)
-            kw[k] = a
-        return radiometry.true_from_apparent(np.asarray(x, dtype=float), **kw)
-
-    table = stats.table.copy()
-    for col in _ORDER_FIELDS:
-        table[col] = f(table[col].to_numpy())
-    m = stats.table["t_mean_c"].to_numpy(dtype=float)
-    s = stats.table["t_std_k"].to_numpy(dtype=float)
-    h = 0.5
-    fm, fp, fn = f(m), f(m + h), f(m - h)
-    d1 = (fp - fn) / (2 * h)
-    d2 = (fp - 2 * fm + fn) / (h * h)
-    table["t_mean_c"] = fm + 0.5 * d2 * np.square(s)
-    table["t_std_k"] = np.abs(d1) * s
-    arrays = {}
-    for name in _ORDER_ARRAYS:
-        arr = getattr(stats, name)
-        arrays[name] = f(arr, extra_dims=arr.ndim - 1)
+    table = correct_statistics(stats.table, **params)
+    arrays = correct_statistics({k: getattr(stats, k) for k in _ORDER_ARRAYS},
+                                order_keys=_ORDER_ARRAYS, **params)
     return dc_replace(stats, table=table, **arrays)
-
-
-def _radiometry_params(flight: Flight, conds: pd.DataFrame, settings: Pipeline) -> dict:
-    from pvscan import radiometry
-
-    rs = settings["radiometry"]
-    band = tuple(rs.get("band_um", (7.5, 13.5)))
-    altitude = flight.flight.altitude_m or rs.get("default_altitude_m", 60.0)
-    rh = conds["relative_humidity"].to_numpy(dtype=float) if "relative_humidity" in conds else None
-    if rh is not None and np.all(np.isnan(rh)):
-        rh = None
-    tau = radiometry.atmospheric_transmission(
-        altitude, conds["temp_air"].to_numpy(dtype=float),
-        rh if rh is not None else rs.get("default_relative_humidity_pct", 50.0))
-    return {
-        "emissivity": flight.module.emissivity,
-        "temp_sky_c": conds["temp_sky"].to_numpy(dtype=float),
-        "export_emissivity": flight.ortho.emissivity,
-        "export_reflected_c": flight.ortho.reflected_c,
-        "transmission": np.asarray(tau, dtype=float) * np.ones(len(conds)),
-        "temp_atm_c": conds["temp_air"].to_numpy(dtype=float),
-        "band_um": band,
-    }
 
 
 # ----------------------------------------------------------------------------- stages
@@ -190,7 +141,9 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
     timings["conditions"] = time.perf_counter() - t0
 
     t0 = time.perf_counter()
-    params = _radiometry_params(flight, conds, settings)
+    from pvscan.radiometry import flight_radiometry
+
+    params = flight_radiometry(flight, conds, settings["radiometry"])
     stats = true_statistics(stats_app, params)
     timings["radiometry"] = time.perf_counter() - t0
     return {
