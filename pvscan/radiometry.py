@@ -184,7 +184,7 @@ def _band_slope_exact(temp_k, band_um):
     t = np.asarray(temp_k, dtype=float)
     xs, xl = _band_limits_x(t, band_um)
     integral = _planck_tail(xl) - _planck_tail(xs)
-    f = lambda x: x**3 / np.expm1(x)  # noqa: E731
+    f = lambda x: x**3 * np.exp(-x) / -np.expm1(-x)  # noqa: E731  (x^3/(e^x-1) without overflow)
     pref = 2.0 * _K**4 * t**3 / (_H**3 * _C**2)
     return pref * (4.0 * integral - xs * f(xs) + xl * f(xl))
 
