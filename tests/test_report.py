@@ -299,8 +299,8 @@ def test_every_anomaly_has_a_card_in_priority_order(result, report_html):
 
 def test_every_embedded_image_decodes(report_html):
     doc = parse(report_html)
-    # overview, 4 plots, validity plot again in conditions, 3 cards x (2 crops + 2 colour strips)
-    assert len(doc.imgs) >= 1 + 4 + 1 + 3 * 4
+    # overview, 4 plots, 3 cards x (2 crops + 2 colour strips)
+    assert len(doc.imgs) == 1 + 4 + 3 * 4
     sizes = []
     for a in doc.imgs:
         im = decode_png(a["src"])
@@ -528,3 +528,22 @@ def test_summary_fits_one_screen(result):
     # the top work order comes first
     top = [s for s in lines if s.strip().startswith("1 ")]
     assert top and "T02-R1-C09" in top[0]
+
+
+def test_close_up_window_keeps_module_texture_and_saturates_hot_spots():
+    """The module median sits at the configured level of the window; a 35 K hot spot saturates
+    instead of squeezing the module into the bottom colours; a uniform module gets the minimum
+    span (its noise is not stretched)."""
+    from pvscan.report._images import module_window
+
+    rng = np.random.default_rng(3)
+    body = 40.0 + rng.normal(0.0, 0.3, 5000)
+    spot = np.concatenate([body, np.full(40, 75.0)])
+    lo, hi = module_window(spot, percentile_hi=99.8, median_level=0.35, max_rise=12.0, min_span=4.0)
+    med = float(np.median(spot))
+    assert (med - lo) / (hi - lo) == pytest.approx(0.35, abs=1e-9)
+    assert hi == pytest.approx(med + 12.0) and hi < 75.0
+    lo, hi = module_window(body, percentile_hi=99.8, median_level=0.35, max_rise=12.0, min_span=4.0)
+    assert hi - lo == pytest.approx(4.0)
+    assert all(math.isnan(x) for x in module_window(np.array([np.nan]), percentile_hi=99.8,
+                                                    median_level=0.35, max_rise=12.0, min_span=4.0))

@@ -17,7 +17,8 @@ import pandas as pd
 
 from pvscan.errors import PvscanError
 from pvscan.report import _figures as figs
-from pvscan.report._images import Palette, colour_window, colourbar_png, png_data_uri, render_crop
+from pvscan.report._images import (Palette, colour_window, colourbar_png, module_window, png_data_uri,
+                                   render_crop)
 from pvscan.report._raster import ThermalView, open_thermal
 from pvscan.report._result import SEVERITIES, ResultData, get_path, load_result, validity_checks
 
@@ -84,6 +85,16 @@ def _fmt(v: Any, digits: int = 1, unit: str = "", thousands: bool = False) -> st
 
 def _defect_name(defect: Any) -> str:
     return str(defect or "unknown").replace("_", " ")
+
+
+def _first_sentence(text: Any, limit: int = 140) -> str:
+    """The first sentence of an action text (the full text is on the card)."""
+    if not isinstance(text, str) or not text.strip():
+        return ""
+    t = text.strip()
+    cut = t.find(". ")
+    first = t[: cut + 1] if 0 < cut < limit else t
+    return first if len(first) <= limit else first[: limit - 1].rstrip() + "…"
 
 
 def _img(uri: str, alt: str, cls: str = "", style: str = "") -> str:
@@ -273,7 +284,7 @@ def _counts_section(data: ResultData) -> str:
         head = ("<tr><th>defect</th>" + "".join(f'<th class="n"><span class="chip {s}">{s}</span></th>'
                                                  for s in SEVERITIES)
                 + '<th class="n">total</th><th class="n">power loss [W]</th><th class="n">energy [kWh/yr]</th></tr>')
-        body = f"<table>{head}{''.join(rows)}</table>"
+        body = f'<table class="counts">{head}{"".join(rows)}</table>'
     glossary = "".join(f"<tr><td>{_e(_defect_name(k))}</td><td>{_e(v)}</td></tr>"
                        for k, v in DEFECT_TEXT.items()
                        if tab.empty or k in tab.index)
@@ -300,7 +311,7 @@ def _worklist_section(data: ResultData) -> str:
             f'<td class="n">{_fmt(r["delta_t_k"], 1)}</td><td class="n">{_fmt(r["delta_t_norm_k"], 1)}</td>'
             f'<td class="n">{_fmt(r["power_loss_w"], 0, "", True)}</td>'
             f'<td class="n">{_fmt(r["energy_loss_kwh_per_year"], 0, "", True)}</td>'
-            f'<td>{_e(r.get("action") or "")}</td></tr>')
+            f'<td class="act">{_e(_first_sentence(r.get("action")))}</td></tr>')
     head = ('<tr><th class="n">#</th><th>severity</th><th>module</th><th>table</th><th>defect</th>'
             '<th class="n">ΔT [K]</th><th class="n">ΔT norm [K]</th><th class="n">loss [W]</th>'
             '<th class="n">[kWh/yr]</th><th>action</th></tr>')
@@ -326,7 +337,6 @@ def _card(k: int, r: pd.Series, shots: str) -> str:
               else "–")
     others = _as_list(r.get("other_defects"))
     facts = [
-        ("location", ", ".join(pos) or "–"), ("lat, lon", lonlat),
         ("ΔT", _fmt(r["delta_t_k"], 1, "K")), ("ΔT norm", _fmt(r["delta_t_norm_k"], 1, "K")),
         ("t max", _fmt(r["t_max_c"], 1, "°C")), ("confidence", _fmt(r["confidence"], 2)),
         ("power loss", _fmt(r["power_loss_w"], 0, "W", True)),
@@ -344,7 +354,8 @@ def _card(k: int, r: pd.Series, shots: str) -> str:
     return f"""<article class="card {_e(sev)}" id="a{k + 1}" data-priority="{prio}" data-anomaly="{_e(r['anomaly_id'])}">
 <header><span class="prio">#{prio}</span><h3>{_e(_defect_name(r['defect']))}</h3><span class="chip {_e(sev)}">{_e(sev)}</span></header>
 <div class="mid">{_e(r['module_id'])}{_e(span)} · {_e(r['anomaly_id'])}</div>
-{shots}<dl class="facts">{dl}</dl>{action_html}</article>"""
+{shots}<p class="where"><span>{_e(", ".join(pos) or "position not recorded")}</span>
+<span>lat, lon {_e(lonlat)}</span></p><dl class="facts">{dl}</dl>{action_html}</article>"""
 
 
 def _shots(view: ThermalView | None, geo: _MapGeometry, r: pd.Series, ageom, palette: Palette, cfg,
@@ -373,7 +384,9 @@ def _shots(view: ThermalView | None, geo: _MapGeometry, r: pd.Series, ageom, pal
     tr = Affine((ext[1] - ext[0]) / arr.shape[1], 0.0, ext[0], 0.0, -(ext[3] - ext[2]) / arr.shape[0], ext[3])
     inside = ~geometry_mask(mods, out_shape=arr.shape, transform=tr, all_touched=False)
     vals = arr[inside] if inside.any() else arr
-    lo, hi = colour_window(vals, cfg["crop_percentiles"], float(cfg["crop_min_span_k"]))
+    lo, hi = module_window(vals, percentile_hi=float(cfg["crop_percentile_hi"]),
+                           median_level=float(cfg["crop_median_level"]),
+                           max_rise=float(cfg["crop_max_rise_k"]), min_span=float(cfg["crop_min_span_k"]))
     regions = [ageom] if ageom is not None and not ageom.is_empty else []
     neigh = [g for g in geo.near(close_box) if not any(g is m for m in mods)]
     png1 = render_crop(arr, ext, palette, lo, hi, size, modules=mods, neighbours=neigh, regions=regions)
@@ -396,7 +409,30 @@ def _shots(view: ThermalView | None, geo: _MapGeometry, r: pd.Series, ageom, pal
     return f'<div class="shots" style="--crop:{size}px">{"".join(figs_html)}</div>'
 
 
-def _conditions_section(data: ResultData, checks: list[dict], ok, validity_uri: str) -> str:
+_UNITS = (("poa_global", "W/m²"), ("irradiance", "W/m²"), ("temp_", "°C"), ("_c", "°C"),
+          ("wind", "m/s"), ("relative_humidity", "%"), ("_pct", "%"), ("duration_s", "s"),
+          ("cloud_okta", "okta"), ("altitude_m", "m"))
+_LABELS = {"poa_global": "plane-of-array irradiance (mean)", "temp_air": "air temperature (mean)",
+           "wind_speed": "wind speed (mean)", "temp_sky": "sky temperature",
+           "relative_humidity": "relative humidity", "poa_global_change_pct": "irradiance change during flight"}
+
+
+def _unit_of(key: str) -> str:
+    k = key.split(".")[-1]
+    if k.endswith(("_std", "_min", "_max")) and k.startswith("poa_global"):
+        return "W/m²"
+    for frag, unit in _UNITS:
+        if frag in k:
+            return unit
+    return ""
+
+
+def _label_of(key: str) -> str:
+    k = key.split(".")[-1]
+    return _LABELS.get(k, key.replace("_", " ").replace(".", " · "))
+
+
+def _conditions_section(data: ResultData, checks: list[dict], ok) -> str:
     cond = data.summary.get("conditions") or {}
     rows = []
 
@@ -407,8 +443,12 @@ def _conditions_section(data: ResultData, checks: list[dict], ok, validity_uri: 
                     continue
                 walk(f"{prefix}{k}" if not prefix else f"{prefix}.{k}", v, depth + 1)
         elif isinstance(obj, (str, int, float, bool)) or obj is None:
-            val = _fmt(obj, 2) if isinstance(obj, float) else ("–" if obj is None else str(obj))
-            rows.append(f"<tr><td>{_e(prefix.replace('_', ' '))}</td><td>{_e(val)}</td></tr>")
+            unit = _unit_of(prefix)
+            if isinstance(obj, float):
+                val = _fmt(obj, 1 if abs(obj) >= 10 else 2, unit)
+            else:
+                val = "–" if obj is None else (f"{obj} {unit}".strip() if isinstance(obj, int) else str(obj))
+            rows.append(f"<tr><td>{_e(_label_of(prefix))}</td><td>{_e(val)}</td></tr>")
         elif isinstance(obj, list) and len(obj) <= 6:
             rows.append(f"<tr><td>{_e(prefix.replace('_', ' '))}</td><td>{_e(', '.join(map(str, obj)))}</td></tr>")
 
@@ -449,8 +489,9 @@ def _conditions_section(data: ResultData, checks: list[dict], ok, validity_uri: 
     return f"""<section id="conditions" class="sheet"><h2>Acquisition conditions and validity</h2>
 <p class="lead"><span class="verdict {verdict[0]}">{verdict_word}</span>
 {_e(verdict[1])}</p>
-<div class="two"><div>{cond_html}</div><div>{_img(validity_uri, "conditions against limits", "map")}</div></div>
-<h3>Checks</h3>{checks_html}
+<h3>Checks against the acquisition limits</h3>{checks_html}
+<p class="note">The plot of these checks is under <a class="ref" href="#plots">Plots</a>.</p>
+<h3>Conditions during the flight</h3>{cond_html}
 <p class="note">Layout shift applied to fit the ortho: {dx:+.2f} m east, {dy:+.2f} m north{_e(reg_txt)}.{_e(gsd_txt)}
 Result geometries keep the layout's own positions; the map and crops draw them shifted onto the image.</p>
 </section>"""
@@ -588,7 +629,9 @@ def _build(data: ResultData, view, modules_gdf, cfg: dict, notes: list[str], pro
         extent_view = (xmin + c0 * px_w, xmin + c1 * px_w, ymax - r1 * px_h, ymax - r0 * px_h)
     overview = figs.overview_png(
         extent=extent_view, image=image, module_geoms=geo.modules,
-        module_values=tmed if image is None else None, anomaly_points=points, cmap=palette.name,
+        module_values=tmed if image is None else None, anomaly_points=points,
+        anomaly_regions=[(g, r["severity"]) for g, (_, r) in zip(geo.anomalies, an.iterrows())],
+        cmap=palette.name,
         vmin=site_window[0], vmax=site_window[1], north_deg=geo.north_deg(), dpi=dpi,
         n_labels=int(cfg["overview_labels"]), image_label=img_label)
 
@@ -651,7 +694,7 @@ surroundings in the site-wide colour window, for context.</p>
 {_img(png_data_uri(p_temp), "module temperature distribution")}{_img(png_data_uri(p_dtn), "normalised delta T histogram")}
 {_img(png_data_uri(p_loss), "loss by defect class")}{_img(p_valid, "conditions against validity limits")}
 </div></section>''',
-        _conditions_section(data, checks, ok, p_valid),
+        _conditions_section(data, checks, ok),
         _method_section(data),
         _safety_section(data),
         f'<footer>pvscan {_e(__version__)} · result folder <code>{_e(data.result_dir.name)}</code> · '

@@ -76,6 +76,7 @@ def _polys(geoms) -> list[np.ndarray]:
 
 def overview_png(*, extent, image: np.ndarray | None, module_geoms, module_values: np.ndarray | None,
                  anomaly_points: Sequence[tuple[float, float, str, int]], cmap: str,
+                 anomaly_regions: Sequence[tuple[object, str]] = (),
                  vmin: float, vmax: float, north_deg: float, dpi: int, n_labels: int,
                  image_label: str) -> bytes:
     """Site overview map.
@@ -91,6 +92,8 @@ def overview_png(*, extent, image: np.ndarray | None, module_geoms, module_value
     module_values : ndarray or None
         Module temperatures [degC] (used when ``image`` is None).
     anomaly_points : sequence of (x, y, severity, priority)
+    anomaly_regions : sequence of (shapely geometry, severity)
+        Affected regions, outlined in their severity's colour (visible for runs of modules).
     cmap : str
         Matplotlib colour map name.
     vmin, vmax : float
@@ -135,6 +138,11 @@ def overview_png(*, extent, image: np.ndarray | None, module_geoms, module_value
     cb = fig.colorbar(im, cax=cax)
     cb.set_label(image_label, fontsize=8, color=_INK)
     cb.ax.tick_params(labelsize=7, colors=_INK)
+    for sev in reversed(SEVERITIES):
+        rp = _polys([g for g, s in anomaly_regions if s == sev])
+        if rp:
+            ax.add_collection(PolyCollection(rp, facecolors="none", edgecolors=SEVERITY_STYLE[sev]["color"],
+                                             linewidths=1.1, zorder=4))
     # anomalies, lowest urgency first so safety marks stay on top
     order = sorted(anomaly_points, key=lambda p: -SEVERITIES.index(p[2]) if p[2] in SEVERITIES else -9)
     msize = 46 if len(anomaly_points) < 200 else 22
@@ -143,7 +151,8 @@ def overview_png(*, extent, image: np.ndarray | None, module_geoms, module_value
         if pts:
             st = SEVERITY_STYLE[sev]
             xy = np.asarray(pts)
-            ax.scatter(xy[:, 0], xy[:, 1], s=msize, marker=st["marker"], c=st["color"],
+            ax.scatter(xy[:, 0], xy[:, 1], s=msize * (1.6 if sev == "safety" else 1.0), marker=st["marker"],
+                       c=st["color"],
                        edgecolors="white", linewidths=0.9, zorder=5)
     halo = [pe.withStroke(linewidth=2.2, foreground="white")]
     labelled = sorted(anomaly_points, key=lambda p: p[3])[: max(int(n_labels), 0)]
@@ -175,11 +184,15 @@ def overview_png(*, extent, image: np.ndarray | None, module_geoms, module_value
     length = 0.07 * min(width, height) if min(width, height) > 0 else 1.0
     th = math.radians(north_deg)
     ux, uy = math.sin(th), math.cos(th)
+    from matplotlib.patches import Circle
+
+    ax.add_patch(Circle((cx, cy + 0.1 * length), 0.85 * length, facecolor=(1, 1, 1, 0.75), edgecolor="none",
+                        zorder=7))
     ax.add_patch(FancyArrow(cx - ux * length / 2, cy - uy * length / 2, ux * length, uy * length,
                             width=length * 0.12, head_width=length * 0.42, head_length=length * 0.4,
                             length_includes_head=True, facecolor="white", edgecolor=_INK,
                             linewidth=1.0, zorder=8))
-    ax.text(cx + ux * length * 0.75, cy + uy * length * 0.75, "N", ha="center", va="center",
+    ax.text(cx + ux * length * 0.72, cy + uy * length * 0.72, "N", ha="center", va="center",
             fontsize=10, fontweight="bold", color=_INK, path_effects=halo, zorder=9)
     handles = [Line2D([], [], linestyle="none", marker=SEVERITY_STYLE[s]["marker"], markersize=7,
                       markerfacecolor=SEVERITY_STYLE[s]["color"], markeredgecolor="white",

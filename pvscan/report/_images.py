@@ -15,7 +15,7 @@ from collections.abc import Iterable, Sequence
 import numpy as np
 from PIL import Image, ImageDraw
 
-__all__ = ["Palette", "render_crop", "png_data_uri", "colour_window", "colourbar_png"]
+__all__ = ["Palette", "render_crop", "png_data_uri", "colour_window", "module_window", "colourbar_png"]
 
 _LEVELS = 240
 IDX_NAN = 250
@@ -75,6 +75,26 @@ def colour_window(values: np.ndarray, percentiles: Sequence[float], min_span: fl
         mid = 0.5 * (lo + hi)
         lo, hi = mid - 0.5 * min_span, mid + 0.5 * min_span
     return float(lo), float(hi)
+
+
+def module_window(values: np.ndarray, *, percentile_hi: float, median_level: float, max_rise: float,
+                  min_span: float) -> tuple[float, float]:
+    """Close-up colour window [degC] fitted to a module's pixels.
+
+    The median sits at ``median_level`` of the window; the top reaches the
+    ``percentile_hi`` percentile, at most ``max_rise`` [K] above the median (hotter spots
+    saturate), and the window is at least ``min_span`` [K] wide. (nan, nan) without data.
+    """
+    v = np.asarray(values, dtype=float)
+    v = v[np.isfinite(v)]
+    if v.size == 0:
+        return (math.nan, math.nan)
+    med = float(np.median(v))
+    top = float(np.percentile(v, percentile_hi))
+    level = min(max(float(median_level), 0.05), 0.95)
+    rise = min(max(top - med, (1.0 - level) * min_span), max(max_rise, (1.0 - level) * min_span))
+    span = rise / (1.0 - level)
+    return med - level * span, med + rise
 
 
 def _to_px(coords: np.ndarray, extent, shape) -> list[tuple[float, float]]:

@@ -1,0 +1,116 @@
+"""report.html in a real browser: headless Chromium loads it from disk, offline.
+
+Checks: no script error and no console error (the page carries a content-security policy that
+forbids every fetch, so a reference to anything outside the file would show up as an error),
+every image decodes in the browser, the anomaly cards are in the rendered DOM, and a screenshot
+is not blank. Skipped only when Chromium is not installed (CI installs the Debian package).
+"""
+from __future__ import annotations
+
+import json
+import re
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+sys.path.insert(0, str(Path(__file__).parent))
+from test_report import PLANTED, build_result  # noqa: E402
+
+CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser") or (
+    "/usr/bin/chromium" if Path("/usr/bin/chromium").exists() else None)
+
+pytestmark = [pytest.mark.browser,
+              pytest.mark.skipif(CHROMIUM is None, reason="headless Chromium is not installed")]
+
+_FLAGS = ["--headless", "--no-sandbox", "--disable-gpu", "--disable-background-networking",
+          "--disable-component-update", "--disable-sync", "--no-first-run", "--hide-scrollbars",
+          "--disable-extensions", "--mute-audio", "--no-default-browser-check"]
+
+# Collects script errors and image decoding results into the DOM (so --dump-dom shows them).
+_PROBE = """<script>
+window.__errors = [];
+window.addEventListener('error', function (e) {
+  window.__errors.push(String(e.message || (e.target && (e.target.src || e.target.tagName)) || 'error'));
+}, true);
+document.addEventListener('securitypolicyviolation', function (e) {
+  window.__errors.push('csp: ' + e.violatedDirective + ' ' + e.blockedURI);
+});
+window.addEventListener('load', function () {
+  var imgs = Array.prototype.slice.call(document.images);
+  var bad = imgs.filter(function (i) { return !(i.complete && i.naturalWidth > 0); }).length;
+  var out = {errors: window.__errors, images: imgs.length, broken: bad,
+             cards: document.querySelectorAll('article.card').length,
+             width: document.documentElement.scrollWidth, viewport: window.innerWidth};
+  var pre = document.createElement('pre');
+  pre.id = 'probe-result';
+  pre.textContent = JSON.stringify(out);
+  document.body.appendChild(pre);
+});
+</script>"""
+
+
+def _run(args, tmp_path, name):
+    profile = tmp_path / f"profile-{name}"
+    cmd = [CHROMIUM, *_FLAGS, f"--user-data-dir={profile}", *args]
+    return subprocess.run(cmd, capture_output=True, text=True, timeout=120)
+
+
+@pytest.fixture(scope="module")
+def report(tmp_path_factory):
+    from pvscan.report import write_report
+
+    tmp = tmp_path_factory.mktemp("browser")
+    return write_report(build_result(tmp))
+
+
+def test_loads_without_errors_and_all_images_decode(report, tmp_path):
+    html = report.read_text(encoding="utf-8")
+    # the probe needs inline script: allow it in the probe copy only
+    probe_html = html.replace("default-src 'none';", "default-src 'none'; script-src 'unsafe-inline';", 1)
+    probe_html = probe_html.replace("</head>", _PROBE + "\n</head>", 1)
+    probe = tmp_path / "probe.html"
+    probe.write_text(probe_html, encoding="utf-8")
+    r = _run(["--virtual-time-budget=5000", "--window-size=1280,900", "--dump-dom", probe.as_uri()],
+             tmp_path, "probe")
+    m = re.search(r'<pre id="probe-result">(.*?)</pre>', r.stdout, re.S)
+    assert m, f"probe did not run; stderr: {r.stderr[-2000:]}"
+    out = json.loads(m.group(1).replace("&quot;", '"').replace("&amp;", "&"))
+    assert out["errors"] == []
+    assert out["broken"] == 0 and out["images"] == 1 + 4 + 4 * len(PLANTED)
+    assert out["cards"] == len(PLANTED)
+    # no horizontal scrolling at a laptop width
+    assert out["width"] <= out["viewport"] + 1
+
+
+def _console_errors(page: Path, tmp_path, name) -> list[str]:
+    r = _run(["--enable-logging=stderr", "--v=0", "--virtual-time-budget=5000", "--dump-dom", page.as_uri()],
+             tmp_path, name)
+    assert "</html>" in r.stdout, r.stderr[-2000:]
+    return [ln for ln in r.stderr.splitlines() if ":CONSOLE" in ln or "Uncaught" in ln]
+
+
+def test_console_check_detects_errors(tmp_path):
+    """The console scan itself can fail: a page with a script error is caught."""
+    bad = tmp_path / "bad.html"
+    bad.write_text('<!DOCTYPE html><html><head><meta charset="utf-8"><title>t</title></head><body>'
+                   '<script>throw new Error("deliberate")</script></body></html>', encoding="utf-8")
+    assert any("deliberate" in ln for ln in _console_errors(bad, tmp_path, "bad"))
+
+
+def test_console_is_clean_and_screenshot_is_not_blank(report, tmp_path):
+    from PIL import Image
+
+    assert _console_errors(report, tmp_path, "console") == []
+    shot = tmp_path / "report.png"
+    r = _run(["--virtual-time-budget=5000", "--window-size=1280,2400", f"--screenshot={shot}", report.as_uri()],
+             tmp_path, "shot")
+    assert shot.exists(), r.stderr[-2000:]
+    im = np.asarray(Image.open(shot).convert("RGB"), dtype=float)
+    assert im.shape[0] >= 2000 and im.shape[1] == 1280
+    # the page has a dark header band, a light body and a coloured map: many distinct tones
+    assert im[:150].mean() < 110 and im[600:].mean() > 150
+    assert np.unique((im[::7, ::7] // 16).reshape(-1, 3), axis=0).shape[0] > 40
