@@ -265,7 +265,8 @@ class CorrelationPeak:
     at_limit: bool = False
 
 
-def cross_power(image: np.ndarray, reference: np.ndarray, whitening: float = 1.0) -> np.ndarray:
+def cross_power(image: np.ndarray, reference: np.ndarray, whitening: float = 1.0,
+                highpass_sigma_px: float = 0.0) -> np.ndarray:
     """Cross-power spectrum ``F(image) conj(F(reference)) / |.|**whitening``.
 
     Parameters
@@ -274,6 +275,10 @@ def cross_power(image: np.ndarray, reference: np.ndarray, whitening: float = 1.0
         Real arrays of the same shape (NaN not allowed).
     whitening : float
         0 = plain cross-correlation, 1 = phase correlation [-].
+    highpass_sigma_px : float
+        When > 0, both arrays are high-passed first: minus their Gaussian low-pass of
+        this standard deviation [px], applied as the transfer function
+        ``1 - exp(-2 pi^2 sigma^2 f^2)`` [-].
 
     Returns
     -------
@@ -284,6 +289,10 @@ def cross_power(image: np.ndarray, reference: np.ndarray, whitening: float = 1.0
     fi = scipy.fft.fft2(np.asarray(image, float), workers=1)
     fr = scipy.fft.fft2(np.asarray(reference, float), workers=1)
     r = fi * np.conj(fr)
+    if highpass_sigma_px > 0:
+        f2 = np.fft.fftfreq(r.shape[0])[:, None] ** 2 + np.fft.fftfreq(r.shape[1])[None, :] ** 2
+        h = -np.expm1(-2.0 * np.pi ** 2 * highpass_sigma_px ** 2 * f2)
+        r *= h * h
     if whitening > 0:
         mag = np.abs(r)
         floor = max(float(mag.max()) * 1e-9, np.finfo(float).tiny)
@@ -465,17 +474,6 @@ def _coverage(geoms, shape, transform: Affine, ss: int) -> np.ndarray:
     return fine.reshape(h, ss, w, ss).mean(axis=(1, 3), dtype=np.float64)
 
 
-def _highpass(a: np.ndarray, sigma_px: float, weights: np.ndarray | None = None) -> np.ndarray:
-    if sigma_px <= 0:
-        return a - (np.average(a, weights=weights) if weights is not None and weights.sum() > 0 else a.mean())
-    if weights is None:
-        return a - ndimage.gaussian_filter(a, sigma_px, mode="reflect")
-    num = ndimage.gaussian_filter(a * weights, sigma_px, mode="reflect")
-    den = ndimage.gaussian_filter(weights.astype(float), sigma_px, mode="reflect")
-    bg = np.divide(num, den, out=np.zeros_like(num), where=den > 1e-6)
-    return (a - bg) * weights
-
-
 def _taper(shape, width_px: float) -> np.ndarray:
     def one(n):
         w = np.ones(n)
@@ -562,17 +560,16 @@ def _prepare_block(orthos, ti, tile, win, mod_geoms, cfg, f, work_gsd):
     if not hi > lo:
         return None, "no contrast"
     z = (np.clip(img, lo, hi) - lo) / (hi - lo)
-    z = np.where(valid, z, 0.0)
-    sig = float(cfg["highpass_sigma_m"]) / work_gsd
-    zi = _highpass(z, sig, valid.astype(float))
-    zm = _highpass(cov, sig)
+    z = np.where(valid, z - float(z[valid].mean()), 0.0)
+    zm = cov - float(cov.mean())
     taper = _taper((h, w), float(cfg["max_shift_m"]) / work_gsd)
-    zi *= taper
+    z *= taper
     zm *= taper
-    if not np.any(zi) or not np.any(zm):
+    if not np.any(z) or not np.any(zm):
         return None, "no contrast"
     shape = _fast_shape((h, w))
-    spec = cross_power(_pad(zi, shape), _pad(zm, shape), float(cfg["whitening"]))
+    spec = cross_power(_pad(z, shape), _pad(zm, shape), float(cfg["whitening"]),
+                       float(cfg["highpass_sigma_m"]) / work_gsd)
     lin = np.array([[wt.a, wt.b], [wt.d, wt.e]])
     cx, cy = wt @ (w / 2.0, h / 2.0)
     return _BlockData(ti, float(cx), float(cy), spec, lin, float(cfg["max_shift_m"]) / work_gsd), ""
