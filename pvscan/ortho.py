@@ -194,6 +194,16 @@ def _read_into(ds, tile: Tile, window: Window) -> np.ndarray:
     return out
 
 
+def _gdal_env(cache_mb: int | None):
+    """A rasterio environment bounding GDAL's block cache to ``cache_mb`` [MB].
+
+    rasterio hands the value to ``GDALSetCacheMax64``, which takes bytes.
+    """
+    if not cache_mb:
+        return rasterio.Env()
+    return rasterio.Env(GDAL_CACHEMAX=int(cache_mb) * 1024 * 1024)
+
+
 def read_window(tile: Tile, window: Any, *, cache_mb: int | None = None) -> np.ndarray:
     """Read one window of a tile, opening the file for this call only.
 
@@ -213,8 +223,7 @@ def read_window(tile: Tile, window: Any, *, cache_mb: int | None = None) -> np.n
     numpy.ndarray
         float32 apparent temperature [degC], NaN where invalid.
     """
-    env = rasterio.Env(GDAL_CACHEMAX=int(cache_mb)) if cache_mb else rasterio.Env()
-    with env, warnings.catch_warnings():
+    with _gdal_env(cache_mb), warnings.catch_warnings():
         warnings.simplefilter("ignore", NotGeoreferencedWarning)
         with rasterio.open(tile.path) as ds:
             return _read_into(ds, tile, _as_window(window))
@@ -342,7 +351,7 @@ class OrthoSet:
         return f"OrthoSet({len(self.tiles)} tiles, crs={self.crs.to_string()}, gsd={self.gsd_m:.4f} m)"
 
     def _env(self):
-        return rasterio.Env(GDAL_CACHEMAX=int(self.cache_mb)) if self.cache_mb else rasterio.Env()
+        return _gdal_env(self.cache_mb)
 
     # reads -----------------------------------------------------------------------
     def read(self, tile_index: int, window: Any) -> np.ndarray:
@@ -487,7 +496,7 @@ def open_orthos(paths: Any, spec: Any = None, settings: Any = None) -> OrthoSet:
     cache_mb = zonal.get("gdal_cache_mb")
     datasets, tiles = [], []
     try:
-        with rasterio.Env(GDAL_CACHEMAX=int(cache_mb)) if cache_mb else rasterio.Env():
+        with _gdal_env(cache_mb):
             for i, p in enumerate(path_list):
                 ds, tile = _open_one(p, i, spec, zonal)
                 datasets.append(ds)
