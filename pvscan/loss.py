@@ -23,8 +23,10 @@ cancels in the ratio, which is where ``gamma_pmax`` matters).
 
 *Heat balance* (``"heat_balance"``, for ``hot_cell``, ``hot_cell_multi``, ``soiling``,
 ``junction_box`` and spot/cell regions). The extra heat leaving a region of area ``A`` that
-is warmer by ``dT`` is ``U(v) * A * dT`` [W]; it is electrical power dissipated instead of
-delivered (``power_loss_w_flight``). It is scaled to STC as a share of the operating power
+is warmer by ``dT`` is ``U(v) * A * dT`` [W], plus the heat its conduction halo sheds,
+``U(v) * dT * P * L`` for the region's inner edge length ``P`` and the laminate's lateral
+conduction length ``L = sqrt(k t / U)`` (thin-fin theory); it is electrical power
+dissipated instead of delivered (``power_loss_w_flight``). It is scaled to STC as a share of the operating power
 (``* 1000 / G`` and the temperature factor) and bounded by the power of the substrings the
 region touches, ``k * pmax / n`` (beyond that the bypass diode takes over).
 
@@ -67,6 +69,8 @@ __all__ = [
     "thermal_deficit_fraction",
     "heat_balance_loss",
     "region_area_fraction",
+    "region_inner_perimeter_m",
+    "lateral_spread_m",
     "substrings_touched",
     "specific_yield",
     "site_lonlat",
@@ -92,7 +96,8 @@ _REGION_METHOD = {
     "substring": "electrical_rule", "substrings": "electrical_rule",
     "module": "thermal_deficit", "modules": "thermal_deficit", "band": "thermal_deficit",
 }
-_DEFAULTS = {"u0": 25.0, "u1": 6.84, "energy_derate": 0.6, "albedo": 0.2, "yield_year": 2025}
+_DEFAULTS = {"u0": 25.0, "u1": 6.84, "energy_derate": 0.6, "albedo": 0.2, "yield_year": 2025,
+             "sheet_conductance_w_k": 0.03}
 
 
 def _section(settings: Mapping | None, name: str) -> Mapping:
@@ -111,7 +116,7 @@ def _cfg(settings: Mapping | None) -> dict:
             if k in list(iter(ref)):
                 out[k] = ref[k]
     keys = list(iter(sec))
-    for k in ("u0", "u1", "energy_derate", "albedo", "yield_year", "linke_turbidity"):
+    for k in ("u0", "u1", "energy_derate", "albedo", "yield_year", "linke_turbidity", "sheet_conductance_w_k"):
         if k in keys:
             out[k] = sec[k]
     return out
@@ -234,8 +239,36 @@ def thermal_deficit_fraction(delta_t_k, yardstick_k):
     return np.clip(f, 0.0, 1.0)
 
 
-def heat_balance_loss(delta_t_k, area_m2, wind_speed, u0: float = 25.0, u1: float = 6.84):
-    """Extra heat leaving a region warmer than its surroundings, ``U(v) * A * dT``. [W]
+def lateral_spread_m(wind_speed, sheet_conductance_w_k: float = 0.03, u0: float = 25.0, u1: float = 6.84):
+    """Lateral conduction length of the module laminate, ``sqrt(k t / U(v))``. [m]
+
+    Parameters
+    ----------
+    wind_speed : float or array-like
+        Wind speed. [m/s]
+    sheet_conductance_w_k : float
+        In-plane conductance of the laminate, sum of ``k * thickness`` of its layers. [W/K]
+    u0, u1 : float
+        Faiman coefficients. [W/(m2 K)], [W s/(m3 K)]
+
+    Notes
+    -----
+    Outside a region held ``dT`` above its surroundings the laminate behaves as a thin fin
+    losing heat to both faces with ``U``: the excess decays as ``exp(-x / L)`` with this
+    length ``L``, and the heat leaving the halo per metre of region edge is
+    ``U * dT * L`` (the infinite-fin result ``sqrt(h P k A) * theta_b``).
+
+    References
+    ----------
+    .. [1] F. P. Incropera, D. P. DeWitt et al., "Fundamentals of Heat and Mass Transfer",
+       6th ed., Wiley, 2007, section 3.6.2 (fin of infinite length).
+    """
+    return np.sqrt(float(sheet_conductance_w_k) / faiman_u(wind_speed, u0, u1))
+
+
+def heat_balance_loss(delta_t_k, area_m2, wind_speed, u0: float = 25.0, u1: float = 6.84,
+                      perimeter_m=0.0, sheet_conductance_w_k: float = 0.0):
+    """Extra heat leaving a warm region and its conduction halo, ``U(v) * dT * (A + P * L)``. [W]
 
     Parameters
     ----------
@@ -247,6 +280,12 @@ def heat_balance_loss(delta_t_k, area_m2, wind_speed, u0: float = 25.0, u1: floa
         Wind speed. [m/s]
     u0, u1 : float
         Faiman coefficients. [W/(m2 K)], [W s/(m3 K)]
+    perimeter_m : float or array-like
+        Length of the region's edges inside the module (edges on the module frame do not
+        count). [m]
+    sheet_conductance_w_k : float
+        In-plane conductance of the laminate for the halo, see :func:`lateral_spread_m`;
+        0 ignores the halo. [W/K]
 
     Returns
     -------
@@ -255,13 +294,38 @@ def heat_balance_loss(delta_t_k, area_m2, wind_speed, u0: float = 25.0, u1: floa
 
     Notes
     -----
-    Lateral conduction spreads the heat of a small spot over a larger, less warm area, and
-    the region statistic of spot patterns is a 95th percentile; both make this a rough
-    estimate (order of magnitude), which is why it is bounded by the power of the
-    substrings involved.
+    The region statistic of spot patterns is a 95th percentile, and real spots are not
+    uniform, so this is an estimate; it is bounded by the power of the substrings involved
+    where it is used (:func:`estimate_loss`).
+
+    References
+    ----------
+    .. [1] D. Faiman, Progress in Photovoltaics 16(4), 307-315, 2008. doi:10.1002/pip.813
+    .. [2] F. P. Incropera, D. P. DeWitt et al., "Fundamentals of Heat and Mass Transfer",
+       6th ed., Wiley, 2007, section 3.6.2.
     """
     dt = np.clip(np.asarray(delta_t_k, dtype=float), 0.0, None)
-    return faiman_u(wind_speed, u0, u1) * np.asarray(area_m2, dtype=float) * dt
+    halo = np.asarray(perimeter_m, dtype=float) * (
+        lateral_spread_m(wind_speed, sheet_conductance_w_k, u0, u1) if sheet_conductance_w_k > 0 else 0.0)
+    return faiman_u(wind_speed, u0, u1) * (np.asarray(area_m2, dtype=float) + halo) * dt
+
+
+def region_inner_perimeter_m(region_uv, length_m: float, width_m: float) -> float:
+    """Length of the edges of the union of local boxes that lie inside the module. [m]
+
+    Edges on the module's outline (``u`` or ``v`` = 0 or 1) are left out: the frame, not the
+    laminate, lies beyond them. No boxes (the whole module) gives 0.
+    """
+    boxes = _boxes(region_uv)
+    if not boxes:
+        return 0.0
+    import shapely
+    from shapely.geometry import box
+
+    region = shapely.union_all([box(u0 * length_m, v0 * width_m, u1 * length_m, v1 * width_m)
+                                for u0, u1, v0, v1 in boxes])
+    outline = box(0.0, 0.0, length_m, width_m).exterior.buffer(1e-9)
+    return float(region.boundary.difference(outline).length)
 
 
 def _boxes(region_uv) -> list[tuple[float, float, float, float]]:
@@ -454,7 +518,8 @@ def _n_substrings(row, n: int) -> int:
 def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = None, site: Any = None,
                   settings: Mapping | None = None, *, modules=None, layout: Any = None,
                   lonlat: tuple[float, float] | None = None,
-                  specific_yield_kwh_per_kwp: float | None = None) -> pd.DataFrame:
+                  specific_yield_kwh_per_kwp: float | None = None,
+                  stats: Any = None, reference_c=None) -> pd.DataFrame:
     """Power and energy loss of every anomaly.
 
     Parameters
@@ -474,7 +539,7 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
         ``specific_yield_kwh_per_kwp`` [kWh/kWp/yr], ``tariff_per_kwh``, ``currency``.
     settings : mapping, optional
         The pipeline or its ``[loss]`` section (``u0``, ``u1``, ``energy_derate``, ``albedo``,
-        ``yield_year``, ``linke_turbidity``).
+        ``yield_year``, ``linke_turbidity``, ``sheet_conductance_w_k``).
     modules : geopandas.GeoDataFrame, optional
         The modules frame: its centroid places the clear-sky year when the site has no
         specific yield (unless ``lonlat`` is given).
@@ -484,6 +549,12 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
         ``tilt_deg``, ``azimuth_deg`` of the plane of array [deg] for the clear-sky year.
     specific_yield_kwh_per_kwp : float, optional
         Overrides both the manifest value and the clear-sky estimate. [kWh/kWp/yr]
+    stats : ZonalStats, optional
+        True-temperature statistics; with ``reference_c`` their ``cell_p95`` grid gives
+        each box of a multi-box spot region (``hot_cell_multi``) its own rise, so cooler
+        cells of a cluster are not counted at the hottest cell's rise.
+    reference_c : array-like, optional
+        Local reference temperature of every module (aligned with the modules). [degC]
 
     Returns
     -------
@@ -505,13 +576,15 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
     pmax = float(_get(module_spec, "pmax_w"))
     n_sub = int(_get(module_spec, "bypass_diodes", default=3))
     gamma = float(_get(module_spec, "gamma_pmax_pct_per_k", default=-0.35))
+    length_m = float(_get(module_spec, "length_m", default=math.nan))
+    width_m = float(_get(module_spec, "width_m", default=math.nan))
     area = _get(module_spec, "area_m2")
-    if area is None:
-        area = float(_get(module_spec, "width_m")) * float(_get(module_spec, "length_m"))
-    area = float(area)
+    area = float(area) if area is not None else width_m * length_m
     eta = _get(module_spec, "efficiency")
     eta = float(eta) if eta is not None else pmax / (1000.0 * area)
     u0, u1 = float(cfg["u0"]), float(cfg["u1"])
+    cell_p95 = getattr(stats, "cell_p95", None) if stats is not None and reference_c is not None else None
+    ref_c = np.asarray(reference_c, dtype=float) if cell_p95 is not None else None
 
     stc = np.full(n_an, np.nan)
     flight = np.full(n_an, np.nan)
@@ -546,7 +619,13 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
             flight[pos] = f * p_op * m
         else:  # heat balance
             region_area = region_area_fraction(row.get("region_uv")) * area
-            q = float(heat_balance_loss(dt, region_area, ws, u0, u1)) if np.isfinite(ws) else np.nan
+            perim = region_inner_perimeter_m(row.get("region_uv"), length_m, width_m)
+            if cell_p95 is not None and idx:
+                dt_boxes = _mean_box_rise(cell_p95, ref_c, idx[0], row.get("region_uv"))
+                if np.isfinite(dt_boxes):
+                    dt = dt_boxes
+            q = float(heat_balance_loss(dt, region_area, ws, u0, u1, perim, float(cfg["sheet_conductance_w_k"]))) \
+                if np.isfinite(ws) else np.nan
             k = substrings_touched(row.get("region_uv"), n_sub)
             cap = bypass_loss(pmax, n_sub, k) / pmax  # share of one module
             f = min(q / p_op, cap) if np.isfinite(q) and np.isfinite(p_op) and p_op > 0 else np.nan
@@ -570,6 +649,31 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
     out.attrs["specific_yield_source"] = source
     log.debug("loss of %d anomalies; specific yield %s kWh/kWp/yr (%s)", n_an, sy, source)
     return out
+
+
+def _mean_box_rise(cell_p95: np.ndarray, reference_c: np.ndarray, i: int, region_uv) -> float:
+    """Area-weighted mean rise of a multi-box region over ``reference_c[i]``, from cell p95s. [K]
+
+    Each box's rise is the median of the 95th percentiles of the cells it covers minus the
+    module's reference. NaN for fewer than two boxes (the anomaly's own ``delta_t_k`` is
+    then the region's statistic) or when no box has data.
+    """
+    boxes = _boxes(region_uv)
+    if len(boxes) < 2 or not 0 <= i < len(cell_p95) or not np.isfinite(reference_c[i]):
+        return math.nan
+    na, nc = cell_p95.shape[1], cell_p95.shape[2]
+    rises, weights = [], []
+    for u0, u1, v0, v1 in boxes:
+        a0, a1 = int(math.floor(u0 * na + 1e-6)), max(int(math.ceil(u1 * na - 1e-6)), int(math.floor(u0 * na + 1e-6)) + 1)
+        c0, c1 = int(math.floor(v0 * nc + 1e-6)), max(int(math.ceil(v1 * nc - 1e-6)), int(math.floor(v0 * nc + 1e-6)) + 1)
+        vals = cell_p95[i, max(a0, 0):min(a1, na), max(c0, 0):min(c1, nc)]
+        vals = vals[np.isfinite(vals)]
+        if vals.size:
+            rises.append(max(float(np.median(vals)) - float(reference_c[i]), 0.0))
+            weights.append((u1 - u0) * (v1 - v0))
+    if not rises or sum(weights) <= 0:
+        return math.nan
+    return float(np.average(rises, weights=weights))
 
 
 def _yield(site, modules, layout, cfg, override, lonlat=None) -> tuple[float | None, str]:

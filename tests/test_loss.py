@@ -168,11 +168,20 @@ def test_heat_balance_hot_cell():
     dt = float(pvlib.temperature.pvsyst_cell(g, ta, ws, 25.0, 6.84, module_efficiency=eta_loc, alpha_absorption=1)
                - pvlib.temperature.pvsyst_cell(g, ta, ws, 25.0, 6.84, module_efficiency=0.2, alpha_absorption=1))
     an = pd.DataFrame([_row("hot_cell", "cell", dt, [cell_uv])])
-    out = loss.estimate_loss(an, SPEC, COND, {"specific_yield_kwh_per_kwp": 1000.0})
+    no_halo = {"sheet_conductance_w_k": 0.0}  # a region without lateral conduction, as the PVsyst model
+    out = loss.estimate_loss(an, SPEC, COND, {"specific_yield_kwh_per_kwp": 1000.0}, no_halo)
     assert out["loss_method"].iloc[0] == "heat_balance"
     assert out["power_loss_w_flight"].iloc[0] == pytest.approx(d_p, rel=1e-9)
     t = float(pvlib.temperature.faiman(g, ta, ws))
     assert out["power_loss_w"].iloc[0] == pytest.approx(d_p * 1000 / g / (1 - 0.0035 * (t - 25.0)), rel=1e-9)
+    # with the default laminate the conduction halo adds U dT P L; P = the cell's three inner
+    # edges (its edge at v = 0 lies on the module frame)
+    halo = loss.estimate_loss(an, SPEC, COND, None, load_pipeline())
+    kt = load_pipeline()["loss"]["sheet_conductance_w_k"]
+    u = 25.0 + 6.84 * ws
+    perim = 2 * (2.0 / 12) + 1.0 / 6
+    # rel 1e-6: the outline is matched within 1 nm
+    assert halo["power_loss_w_flight"].iloc[0] == pytest.approx(d_p + u * dt * perim * math.sqrt(kt / u), rel=1e-6)
     # bounded by the substring: a huge delta T cannot lose more than pmax / bypass_diodes
     big = loss.estimate_loss(pd.DataFrame([_row("hot_cell", "cell", 500.0, [cell_uv])]), SPEC, COND, None)
     assert big["power_loss_w"].iloc[0] == pytest.approx(400.0 / 3)
@@ -182,7 +191,58 @@ def test_heat_balance_hot_cell():
     assert two["power_loss_w"].iloc[0] == pytest.approx(800.0 / 3)
 
 
+def test_hot_cell_cluster_uses_each_cells_rise():
+    """A cluster of a 30 K and a 10 K cell is not a 2-cell region at 30 K (heat balance per cell)."""
+    from types import SimpleNamespace
+
+    cells = [(0.5, 0.5 + 1 / 12, 0.5, 0.5 + 1 / 6), (0.5 + 1 / 12, 0.5 + 2 / 12, 0.5, 0.5 + 1 / 6)]
+    grid = np.full((1, 12, 6), 40.0)
+    grid[0, 6, 3], grid[0, 7, 3] = 70.0, 50.0
+    stats = SimpleNamespace(cell_p95=grid)
+    an = pd.DataFrame([_row("hot_cell_multi", "cells", 30.0, cells)])
+    kw = dict(conditions=COND, site=None, settings={"sheet_conductance_w_k": 0.0})
+    plain = loss.estimate_loss(an, SPEC, **kw)
+    per_cell = loss.estimate_loss(an, SPEC, **kw, stats=stats, reference_c=[40.0])
+    u = 25.0 + 6.84 * COND["wind_speed"]
+    a_cell = 2.0 / 12 * 1.0 / 6
+    assert plain["power_loss_w_flight"].iloc[0] == pytest.approx(u * 2 * a_cell * 30.0)
+    assert per_cell["power_loss_w_flight"].iloc[0] == pytest.approx(u * a_cell * (30.0 + 10.0))
+    # a single-box region keeps the anomaly's own statistic
+    one = loss.estimate_loss(pd.DataFrame([_row("hot_cell", "cell", 30.0, cells[:1])]), SPEC, **kw,
+                             stats=stats, reference_c=[45.0])
+    assert one["power_loss_w_flight"].iloc[0] == pytest.approx(u * a_cell * 30.0)
+
+
+def test_conduction_halo_against_fin_equation():
+    """Heat shed by the halo beyond a warm edge equals the infinite-fin result U dT L.
+
+    Reference: the thin-fin equation k t theta'' = 2 h theta (here U covers both faces),
+    solved numerically with scipy.integrate.solve_bvp, against Incropera & DeWitt, section
+    3.6.2 (infinite fin: q = sqrt(h P k A) theta_b).
+    """
+    from scipy.integrate import solve_bvp, trapezoid
+
+    kt, ws, dt = 0.03, 2.0, 20.0
+    u = float(loss.faiman_u(ws))
+    lam = float(loss.lateral_spread_m(ws, kt))
+    assert lam == pytest.approx(math.sqrt(kt / u))
+    x = np.linspace(0.0, 20 * lam, 401)
+    sol = solve_bvp(lambda x, y: np.vstack([y[1], u / kt * y[0]]), lambda a, b: np.array([a[0] - dt, b[0]]),
+                    x, np.vstack([dt * (1 - x / x[-1]), np.full_like(x, -dt / x[-1])]), tol=1e-6,
+                    max_nodes=100000)
+    assert sol.success
+    shed = trapezoid(u * sol.sol(x)[0], x)  # W per metre of edge
+    assert float(loss.heat_balance_loss(dt, 0.0, ws, perimeter_m=1.0, sheet_conductance_w_k=kt)) == \
+        pytest.approx(shed, rel=1e-3)
+    # conduction into the fin at its root, -k t theta'(0), is the same heat (energy balance)
+    assert -kt * sol.sol(0.0)[1] == pytest.approx(shed, rel=1e-3)
+
+
 def test_region_geometry_helpers():
+    # edges on the module outline do not count: a corner cell has two inner edges
+    assert loss.region_inner_perimeter_m([(0, 0.5, 0, 0.5)], 2.0, 1.0) == pytest.approx(1.0 + 0.5)
+    assert loss.region_inner_perimeter_m([(0.25, 0.5, 0.25, 0.5)], 2.0, 1.0) == pytest.approx(2 * (0.5 + 0.25))
+    assert loss.region_inner_perimeter_m([], 2.0, 1.0) == 0.0
     assert loss.region_area_fraction([]) == 1.0
     assert loss.region_area_fraction([(0, 0.5, 0, 0.5), (0.25, 0.75, 0, 0.5)]) == pytest.approx(0.375)  # union
     assert loss.substrings_touched([(0, 1, 1 / 3, 2 / 3)], 3) == 1  # exact borders do not spill over
