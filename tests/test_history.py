@@ -595,3 +595,53 @@ def test_change_invariants_on_random_flights(tmp_path):
             assert q["suspicious"] == (q["change"] == "resolved")  # no maintenance recorded
             assert not q["repaired"]
         assert sum(fc["counts"][c] for c in H.CHANGE_CLASSES) == len(p)
+
+
+# ------------------------------------------------------------------------------------------
+# end to end: two simulated flights of one invented site, inspected by the real pipeline
+
+
+@pytest.mark.slow
+def test_end_to_end_two_simulated_seasons(tmp_path):
+    """`simulate_flight` (same plant and defects, spring and summer weather) -> `inspect_flight`
+    -> history. Checks what the history owns on real result folders: the summary keys are
+    read, layouts match, a re-add is byte-identical, the change features are exactly the
+    modules with an anomaly in either flight, the output follows its schema and RFC 7946."""
+    from pvscan.pipeline import inspect_flight
+    from pvscan.simulate import simulate_flight
+
+    base = {"site": {"name": "Kestrel Ridge", "lon": 9.2, "lat": 45.1},
+            "array": {"table_rows": 2, "tables_per_row": 1, "cols": 8},
+            "defects": {"hot_cell": 1, "bypassed_substring": 1, "open_module": 1}}
+    seasons = [("2026-04-20T11:00:00+02:00", SPRING), ("2026-07-15T12:30:00+02:00", SUMMER)]
+    db = tmp_path / "kestrel.gpkg"
+    results = []
+    for i, (start, cond) in enumerate(seasons):
+        sc = json.loads(json.dumps(base))
+        sc["flight"] = {"start": start}
+        sc["conditions"] = dict(cond)
+        sim = simulate_flight(sc, tmp_path / f"flight{i}", seed=5)
+        out = tmp_path / f"result{i}"
+        inspect_flight(sim.manifest, out_dir=out, report=False)
+        results.append(out)
+        res = H.add_flight(db, out)
+        assert res.status == "added" and res.layout.same
+        assert res.n_modules == 32
+    h = sha(db)
+    assert H.add_flight(db, results[0]).status == "unchanged"
+    assert sha(db) == h
+    fl = H.list_flights(db)
+    assert list(fl["site"]) == ["Kestrel Ridge"] * 2
+    assert list(fl["start"]) == [s for s, _ in seasons]
+    fc = H.compare_flights(db)
+    assert schema_errors(fc, load_schema("changes.schema.json")) == []
+    assert validate_geojson_rfc7946(fc) == []
+    with_anomaly = set()
+    for r in results:
+        for f in json.loads((r / "anomalies.geojson").read_text())["features"]:
+            with_anomaly.update(f["properties"]["module_ids"] or [f["properties"]["module_id"]])
+    compared = set(props_by_module(fc))
+    assert compared | {x["module_id"] for x in fc["not_compared"]} == with_anomaly
+    tr = H.site_trend(db)
+    assert len(tr.flights) == 2 and len(tr.modules) == 64
+    assert np.isfinite(tr.flights["median_rise_norm_k"]).all()  # conditions read from summary.json
