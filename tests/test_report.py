@@ -547,3 +547,92 @@ def test_close_up_window_keeps_module_texture_and_saturates_hot_spots():
     assert hi - lo == pytest.approx(4.0)
     assert all(math.isnan(x) for x in module_window(np.array([np.nan]), percentile_hi=99.8,
                                                     median_level=0.35, max_rise=12.0, min_span=4.0))
+
+
+def test_close_up_window_level_from_neighbours():
+    """An open module is warm all over: the healthy neighbours set the level, so the faulty
+    module shows above it instead of being centred in the window."""
+    from pvscan.report._images import module_window
+
+    rng = np.random.default_rng(5)
+    healthy = 40.0 + rng.normal(0.0, 0.3, 8000)
+    faulty = 45.0 + rng.normal(0.0, 0.3, 1000)
+    lo, hi = module_window(np.concatenate([healthy, faulty]), top_values=faulty, percentile_hi=99.8,
+                           median_level=0.35, max_rise=12.0, min_span=4.0)
+    assert (np.median(faulty) - lo) / (hi - lo) > 0.8
+    assert (np.median(healthy) - lo) / (hi - lo) == pytest.approx(0.35, abs=0.02)
+
+
+# ------------------------------------------------------------------ end to end
+@pytest.fixture(scope="module")
+def inspected(tmp_path_factory):
+    """A simulated flight (pvscan.simulate) through pvscan inspect, with the layout drawn
+    0.5 m east / 0.3 m south of the plant so the map must draw the registered positions."""
+    from pvscan.pipeline import inspect_flight
+    from pvscan.simulate import simulate_flight
+
+    d = tmp_path_factory.mktemp("e2e")
+    none = {k: 0 for k in ("hot_cell_multi", "bypassed_substring_multi", "open_string", "pid", "soiling")}
+    sc = {"site": {"name": "Test field Alder Reach (invented)", "lon": 11.37, "lat": 47.26},
+          "array": {"table_rows": 2, "tables_per_row": 2, "rows": 2, "cols": 8, "rotation_deg": 12.0,
+                    "modules_per_string": 8},
+          "layout": {"features": "modules", "offset_m": [0.5, -0.3]},
+          "defects": {"open_module": 1, "bypassed_substring": 1, "hot_cell": 2, "junction_box": 1, **none}}
+    sim = simulate_flight(sc, d / "flight", seed=11)
+    inspect_flight(sim.manifest, out_dir=d / "result", report=True)
+    return sim, d / "result"
+
+
+@pytest.mark.slow
+def test_report_of_a_simulated_flight(inspected):
+    _, out = inspected
+    html_text = (out / "report.html").read_text(encoding="utf-8")
+    doc = parse(html_text)
+    feats = json.loads((out / "anomalies.geojson").read_text())["features"]
+    assert len(feats) >= 1
+    by_prio = sorted(feats, key=lambda f: f["properties"]["priority"])
+    assert [c["data-anomaly"] for c in doc.cards] == [f["properties"]["anomaly_id"] for f in by_prio]
+    for a in doc.imgs:
+        decode_png(a["src"])
+    assert sum("crop" in (a.get("class") or "") for a in doc.imgs) == 2 * len(feats)
+    assert "thermal crop unavailable" not in html_text
+
+
+@pytest.mark.slow
+def test_map_draws_modules_where_the_simulator_put_them(inspected):
+    """Result geometries keep the layout's positions, which the simulator drew offset from the
+    plant in the image by truth.json's layout_offset_m; the report must draw modules at
+    layout - offset, i.e. shifted by the registered layout_shift_m. Checked against the
+    simulator's own offset: drawn centroids within 0.1 m (two pixels at 5 cm/px) of the image
+    positions, while the unshifted layout is |offset| ~ 0.58 m away."""
+    import geopandas as gpd
+
+    from pvscan.report._build import _MapGeometry
+    from pvscan.report._result import load_result
+
+    sim, out = inspected
+    offset = np.array(json.loads(Path(sim.truth_json).read_text())["layout_offset_m"], dtype=float)
+    data = load_result(out)
+    crs = json.loads((out / "summary.json").read_text())["inputs"]["crs"]
+    geo = _MapGeometry(data, crs)
+    truth = gpd.read_file(sim.truth).to_crs(crs).set_index("module_id")
+    drawn = np.array([[g.centroid.x, g.centroid.y] for g in geo.modules])
+    layout_xy = np.array([[truth.geometry[m].centroid.x, truth.geometry[m].centroid.y]
+                          for m in data.modules["module_id"]])
+    in_image = layout_xy - offset
+    assert np.median(np.hypot(*(drawn - in_image).T)) < 0.1
+    assert np.median(np.hypot(*(drawn - layout_xy).T)) == pytest.approx(float(np.hypot(*offset)), abs=0.05)
+
+
+@pytest.mark.slow
+def test_summary_of_a_simulated_flight(inspected):
+    from pvscan.cli._summary import summary_lines
+
+    _, out = inspected
+    lines = summary_lines(out)
+    assert len(lines) <= 32
+    feats = json.loads((out / "anomalies.geojson").read_text())["features"]
+    first = min(feats, key=lambda f: f["properties"]["priority"])["properties"]
+    row = next(s for s in lines if s.strip().startswith("1 "))
+    assert first["module_id"] in row
+    assert any("layout shifted" in s for s in lines)

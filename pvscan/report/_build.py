@@ -372,7 +372,17 @@ def _shots(view: ThermalView | None, geo: _MapGeometry, r: pd.Series, ageom, pal
     m0 = mods[0].bounds
     mlen = max(m0[2] - m0[0], m0[3] - m0[1])
     pad = float(cfg["crop_margin"]) * mlen
-    close_box = (x0 - pad, y0 - pad, x1 + pad, y1 + pad)
+    close_box = [x0 - pad, y0 - pad, x1 + pad, y1 + pad]
+    w_box, h_box = close_box[2] - close_box[0], close_box[3] - close_box[1]
+    if w_box > 2.5 * h_box:  # a run of modules: keep the close-up from becoming a thin strip
+        grow = 0.5 * (w_box / 2.5 - h_box)
+        close_box[1] -= grow
+        close_box[3] += grow
+    elif h_box > 2.5 * w_box:
+        grow = 0.5 * (h_box / 2.5 - w_box)
+        close_box[0] -= grow
+        close_box[2] += grow
+    close_box = tuple(close_box)
     cx, cy = 0.5 * (x0 + x1), 0.5 * (y0 + y1)
     half = 0.5 * max(float(cfg["context_scale"]) * mlen, 1.6 * max(x1 - x0, y1 - y0) + 2 * pad)
     ctx_box = (cx - half, cy - half, cx + half, cy + half)
@@ -382,13 +392,16 @@ def _shots(view: ThermalView | None, geo: _MapGeometry, r: pd.Series, ageom, pal
         return '<div class="shots"><div class="nocrop" style="flex:1">module outside the thermal ortho</div></div>'
     arr, ext = close
     tr = Affine((ext[1] - ext[0]) / arr.shape[1], 0.0, ext[0], 0.0, -(ext[3] - ext[2]) / arr.shape[0], ext[3])
+    neigh = [g for g in geo.near(close_box) if not any(g is m for m in mods)]
+    # the healthy level comes from every module in view, the top from the anomalous module(s)
     inside = ~geometry_mask(mods, out_shape=arr.shape, transform=tr, all_touched=False)
-    vals = arr[inside] if inside.any() else arr
-    lo, hi = module_window(vals, percentile_hi=float(cfg["crop_percentile_hi"]),
+    in_view = inside | ~geometry_mask(neigh, out_shape=arr.shape, transform=tr) if neigh else inside
+    level_vals = arr[in_view] if in_view.any() else arr
+    top_vals = arr[inside] if inside.any() else arr
+    lo, hi = module_window(level_vals, top_values=top_vals, percentile_hi=float(cfg["crop_percentile_hi"]),
                            median_level=float(cfg["crop_median_level"]),
                            max_rise=float(cfg["crop_max_rise_k"]), min_span=float(cfg["crop_min_span_k"]))
     regions = [ageom] if ageom is not None and not ageom.is_empty else []
-    neigh = [g for g in geo.near(close_box) if not any(g is m for m in mods)]
     png1 = render_crop(arr, ext, palette, lo, hi, size, modules=mods, neighbours=neigh, regions=regions)
     out = [(png1, "close-up", lo, hi)]
     if ctx is not None and np.isfinite(ctx[0]).any():
@@ -687,7 +700,7 @@ anomalies marked by severity, the first {int(cfg["overview_labels"])} labelled w
         _worklist_section(data),
         f'''<section id="cards" class="sheet"><h2>Anomaly cards</h2>
 <p class="lead">One card per anomaly in priority order. Left: close-up of the module, colour window fitted to the
-module, the affected region outlined in <b style="color:#1aa6c9">cyan</b> and the module in white. Right: the
+modules in view (healthy modules in the lower third), the affected region outlined in <b style="color:#1aa6c9">cyan</b> and the module in white. Right: the
 surroundings in the site-wide colour window, for context.</p>
 <div class="cards">{''.join(cards) if cards else '<p>No anomalies.</p>'}</div></section>''',
         f'''<section id="plots"><h2>Plots</h2><div class="plots">

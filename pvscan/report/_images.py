@@ -78,19 +78,22 @@ def colour_window(values: np.ndarray, percentiles: Sequence[float], min_span: fl
 
 
 def module_window(values: np.ndarray, *, percentile_hi: float, median_level: float, max_rise: float,
-                  min_span: float) -> tuple[float, float]:
-    """Close-up colour window [degC] fitted to a module's pixels.
+                  min_span: float, top_values: np.ndarray | None = None) -> tuple[float, float]:
+    """Close-up colour window [degC] fitted to module pixels.
 
-    The median sits at ``median_level`` of the window; the top reaches the
-    ``percentile_hi`` percentile, at most ``max_rise`` [K] above the median (hotter spots
-    saturate), and the window is at least ``min_span`` [K] wide. (nan, nan) without data.
+    The median of ``values`` sits at ``median_level`` of the window; the top reaches the
+    ``percentile_hi`` percentile of ``top_values`` (default ``values``), at most
+    ``max_rise`` [K] above the median (hotter spots saturate), and the window is at least
+    ``min_span`` [K] wide. (nan, nan) without data.
     """
     v = np.asarray(values, dtype=float)
     v = v[np.isfinite(v)]
     if v.size == 0:
         return (math.nan, math.nan)
     med = float(np.median(v))
-    top = float(np.percentile(v, percentile_hi))
+    t = v if top_values is None else np.asarray(top_values, dtype=float)
+    t = t[np.isfinite(t)]
+    top = float(np.percentile(t, percentile_hi)) if t.size else med
     level = min(max(float(median_level), 0.05), 0.95)
     rise = min(max(top - med, (1.0 - level) * min_span), max(max_rise, (1.0 - level) * min_span))
     span = rise / (1.0 - level)
