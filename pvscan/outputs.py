@@ -102,7 +102,8 @@ ANOMALY_PROPERTIES = (
 WORKORDER_COLUMNS = (
     "priority", "anomaly_id", "module_id", "module_ids", "table_id", "table_row", "table_col",
     "string_id", "string_index", "defect", "severity", "action", "delta_t_k", "delta_t_norm_k",
-    "power_loss_w", "energy_loss_kwh_per_year", "confidence", "lon", "lat", "x", "y", "crs",
+    "power_loss_w", "energy_loss_kwh_per_year", "yearly_cost", "currency", "confidence", "lon", "lat", "x", "y",
+    "crs",
 )
 
 _LIST_SEP = ";"
