@@ -1588,45 +1588,89 @@ def site_trend(db_path: str | Path, *, settings: Mapping | None = None) -> Trend
     return Trend(per_flight, md)
 
 
+_SEVERITY_COLOURS = {"safety": "#b2182b", "repair": "#ef8a62", "monitor": "#67a9cf"}
+_MARKERS = "osD^vP*Xhp<>"
+
+
 def _plot_trend(trend: Trend, out_dir: Path) -> list[str]:
     # a bare Figure renders with the Agg canvas: no pyplot, no global backend state
     from matplotlib.figure import Figure
+    from matplotlib.ticker import MaxNLocator
 
     fl = trend.flights
-    x = pd.to_datetime([datetime.fromisoformat(s).astimezone(timezone.utc) for s in fl["start"]])
+    # naive UTC datetimes: matplotlib dates, no time-zone conversions
+    x = pd.DatetimeIndex([datetime.fromisoformat(s).astimezone(timezone.utc).replace(tzinfo=None)
+                          for s in fl["start"]])
+    labels = list(fl["flight_id"])
     written = []
 
-    fig = Figure(figsize=(8, 4.5), layout="constrained")
-    ax = fig.add_subplot()
+    fig = Figure(figsize=(8, 7), layout="constrained")
+    ax, ax2 = fig.subplots(2, 1, sharex=True)
     cols = [c for c in fl.columns if c.startswith("count_")]
-    for c in cols:
-        ax.plot(x, fl[c], marker="o", label=c[len("count_"):])
+    for k, c in enumerate(cols):
+        ax.plot(x, fl[c], marker=_MARKERS[k % len(_MARKERS)], linestyle="-" if k < 10 else "--",
+                label=c[len("count_"):])
     ax.plot(x, fl["n_anomalies"], marker="s", color="black", linewidth=2, label="all anomalies")
     ax.set_ylabel("anomalies per flight [-]")
-    ax.set_xlabel("flight start (UTC)")
     ax.set_title("Anomalies per defect pattern")
+    ax.yaxis.set_major_locator(MaxNLocator(integer=True))
     ax.grid(True, alpha=0.3)
     ax.legend(fontsize="small", ncols=2)
+    bottom = np.zeros(len(fl))
+    width = _bar_width(x)
+    for sv in ("safety", "repair", "monitor"):
+        c = f"severity_{sv}"
+        if c in fl.columns:
+            vals = fl[c].to_numpy(dtype=float)
+            ax2.bar(x, vals, width=width, bottom=bottom, color=_SEVERITY_COLOURS[sv], label=sv)
+            bottom += vals
+    ax2.set_ylabel("anomalies per flight [-]")
+    ax2.set_title("Anomalies per severity")
+    ax2.yaxis.set_major_locator(MaxNLocator(integer=True))
+    ax2.grid(True, axis="y", alpha=0.3)
+    ax2.legend(fontsize="small")
+    ax2.set_xlabel("flight start (UTC)")
+    _label_flights(ax2, x, labels)
     fig.savefig(out_dir / "counts.png", dpi=100)
     written.append("counts.png")
 
-    fig = Figure(figsize=(8, 4.5), layout="constrained")
-    ax = fig.add_subplot()
-    ax.plot(x, fl["total_power_loss_w"] / 1000.0, marker="o", color="tab:red", label="power loss at STC")
-    ax.set_ylabel("power loss [kW]")
-    ax.set_xlabel("flight start (UTC)")
-    ax2 = ax.twinx()
-    ax2.plot(x, fl["total_energy_loss_kwh_per_year"] / 1000.0, marker="s", color="tab:blue",
-             label="energy loss")
-    ax2.set_ylabel("energy loss [MWh/yr]")
+    fig = Figure(figsize=(8, 6), layout="constrained")
+    ax, ax2 = fig.subplots(2, 1, sharex=True)
+    ax.plot(x, fl["total_power_loss_w"] / 1000.0, marker="o", color="tab:red")
+    ax.set_ylabel("power loss at STC [kW]")
     ax.set_title("Estimated losses")
+    ax.set_ylim(bottom=0)
     ax.grid(True, alpha=0.3)
-    h1, l1 = ax.get_legend_handles_labels()
-    h2, l2 = ax2.get_legend_handles_labels()
-    ax.legend(h1 + h2, l1 + l2, fontsize="small")
+    ax2.plot(x, fl["total_energy_loss_kwh_per_year"] / 1000.0, marker="s", color="tab:blue")
+    ax2.set_ylabel("energy loss [MWh/yr]")
+    ax2.set_ylim(bottom=0)
+    ax2.grid(True, alpha=0.3)
+    ax2.set_xlabel("flight start (UTC)")
+    _label_flights(ax2, x, labels)
     fig.savefig(out_dir / "loss.png", dpi=100)
     written.append("loss.png")
     return written
+
+
+def _bar_width(x) -> float:
+    """Bar width [days] for bars at dates ``x``: a third of the smallest spacing."""
+    if len(x) < 2:
+        return 10.0
+    gaps = np.diff(np.sort(x.to_numpy()).astype("datetime64[s]").astype(float)) / 86400.0
+    gaps = gaps[gaps > 0]
+    return float(max(gaps.min() / 3.0, 0.5)) if gaps.size else 10.0
+
+
+def _label_flights(ax, x, labels) -> None:
+    from matplotlib.dates import AutoDateLocator, ConciseDateFormatter
+
+    locator = AutoDateLocator(maxticks=7)
+    ax.xaxis.set_major_locator(locator)
+    ax.xaxis.set_major_formatter(ConciseDateFormatter(locator))
+    for xi, lab in zip(x, labels):
+        ax.annotate(str(lab), (xi, 0), xytext=(0, -34), textcoords="offset points",
+                    ha="center", va="top", fontsize="x-small", rotation=0,
+                    annotation_clip=False)
 
 
 def write_trend(trend: Trend, out_dir: str | Path, *, overwrite: bool = False) -> list[Path]:
