@@ -51,7 +51,9 @@ def summary_lines(result_dir, top: int | None = None) -> list[str]:
     if math.isfinite(share):
         loss += f" ({share * 100:.2f} % of plant)"
     loss += f"   energy loss {_f(tot['energy_loss_kwh_per_year'], 0, 'kWh/yr')}"
-    lines.append(loss)
+    if math.isfinite(tot["yearly_cost"]) and tot["currency"]:
+        loss += f" (~{_f(tot['yearly_cost'], 0)} {tot['currency']}/yr)"
+    lines.append(_cut(loss))
     counts = data.counts()
     if len(counts):
         lines.append("by defect:")
@@ -69,6 +71,7 @@ def summary_lines(result_dir, top: int | None = None) -> list[str]:
             prio = int(r["priority"]) if _f(r["priority"]) != "-" else k + 1
             act = str(r.get("action") or "")
             act = act if act and act != "nan" else ""
+            act = act.split(". ")[0].split("; ")[0].rstrip(".")
             s = (f"  {prio:>2} {str(r['severity']):<7} {str(r['module_id']):<14} "
                  f"{str(r['defect']).replace('_', ' '):<22} dT {_f(r['delta_t_k'], 1, 'K'):>7} "
                  f"{_f(r['power_loss_w'], 0, 'W'):>7}  {act}")
@@ -92,9 +95,17 @@ def summary_lines(result_dir, top: int | None = None) -> list[str]:
     if abs(dx) + abs(dy) > 0:
         lines.append(f"layout shifted onto the ortho by {dx:+.2f} m E, {dy:+.2f} m N")
     root = Path(data.result_dir)
-    present = [n for n in ("report.html", "workorders.csv", "anomalies.geojson", "modules.geojson",
-                           "pvscan.gpkg", "summary.json") if (root / n).exists()]
-    lines.append(_cut(f"files in {root}/: {', '.join(present)}"))
+    lines.append(_cut(f"results in {root}/"))
+    parts = []
+    if (root / "report.html").exists():
+        parts.append("report.html")
+    if (root / "workorders.csv").exists():
+        parts.append("workorders.csv")
+    gis = [n for n in ("anomalies.geojson", "modules.geojson", "pvscan.gpkg") if (root / n).exists()]
+    if gis:
+        parts.append("GIS: " + ", ".join(gis))
+    if parts:
+        lines.append(_cut("  " + "; ".join(parts)))
     lines.append("safety: arrays are live (DC) in daylight even when disconnected; hot spots burn and")
     lines.append("  faults can arc and start fires. Site work only by qualified persons under local")
     lines.append("  electrical codes; drone flights only under local aviation rules.")

@@ -83,6 +83,14 @@ def _fmt(v: Any, digits: int = 1, unit: str = "", thousands: bool = False) -> st
     return f"{txt}{(' ' + unit) if unit else ''}"
 
 
+def _sig(v: Any, digits: int = 4) -> str:
+    """A number with ``digits`` significant digits, without exponent for everyday magnitudes."""
+    f = float(v)
+    if f != 0 and (abs(f) >= 1e6 or abs(f) < 1e-3):
+        return f"{f:.{digits - 1}e}"
+    return f"{f:.{digits}g}"
+
+
 def _defect_name(defect: Any) -> str:
     return str(defect or "unknown").replace("_", " ")
 
@@ -229,11 +237,31 @@ def _open_view(data: ResultData, orthos, flight, notes: list[str]):
 
 
 # ---------------------------------------------------------------------- sections
+def _period(start: str, end: str) -> str:
+    """'14 Jun 2026, 10:40–11:25 (UTC+02:00)' from ISO 8601 times (as given when unparsable)."""
+    try:
+        t0 = _dt.datetime.fromisoformat(start)
+    except (TypeError, ValueError):
+        return " – ".join(x for x in (start, end) if x)
+    try:
+        t1 = _dt.datetime.fromisoformat(end) if end else None
+    except (TypeError, ValueError):
+        t1 = None
+    if t1 is not None and t0.tzinfo is not None and t1.tzinfo is not None:
+        t1 = t1.astimezone(t0.tzinfo)
+    off = t0.strftime("%z")
+    zone = f" (UTC{off[:3]}:{off[3:]})" if off else ""
+    day = f"{t0.day} {t0.strftime('%b %Y')}"
+    if t1 is None:
+        return f"{day}, {t0:%H:%M}{zone}"
+    if t1.date() == t0.date():
+        return f"{day}, {t0:%H:%M}–{t1:%H:%M}{zone}"
+    return f"{day} {t0:%H:%M} – {t1.day} {t1.strftime('%b %Y')} {t1:%H:%M}{zone}"
+
+
 def _header(data: ResultData, totals: dict, valid_ok, now: str) -> str:
     sev = data.anomalies["severity"].value_counts() if len(data.anomalies) else pd.Series(dtype=int)
-    period = data.flight_start
-    if data.flight_end:
-        period = f"{period} – {data.flight_end}" if period else data.flight_end
+    period = _period(data.flight_start, data.flight_end)
     share = totals["plant_share"]
     share_txt = f" ({share * 100:.2f} % of plant)" if _isnum(share) else ""
     verdict = {True: ("ok", "within limits"), False: ("fail", "limits not met"),
@@ -243,7 +271,9 @@ def _header(data: ResultData, totals: dict, valid_ok, now: str) -> str:
         ("anomalies", f"{int(totals['n_anomalies']):,}", ""),
         ("safety findings", f"{int(sev.get('safety', 0))}", "safety"),
         ("power loss at STC", _fmt(totals["power_loss_w"] / 1000.0, 2, "kW"), ""),
-        ("energy loss", _fmt(totals["energy_loss_kwh_per_year"] / 1000.0, 2, "MWh/yr"), ""),
+        ("energy loss" + (f" (~{totals['yearly_cost']:,.0f} {totals['currency']}/yr)"
+                          if _isnum(totals["yearly_cost"]) and totals["currency"] else ""),
+         _fmt(totals["energy_loss_kwh_per_year"] / 1000.0, 2, "MWh/yr"), ""),
     ]
     figs_html = "".join(f'<div class="figure {c}"><div class="v">{_e(v)}</div><div class="k">{_e(k)}</div></div>'
                         for k, v, c in items)
@@ -442,7 +472,14 @@ def _unit_of(key: str) -> str:
 
 def _label_of(key: str) -> str:
     k = key.split(".")[-1]
-    return _LABELS.get(k, key.replace("_", " ").replace(".", " · "))
+    if k in _LABELS:
+        return _LABELS[k]
+    label = key
+    for suffix in ("_pct", "_s", "_c", "_m", "_w_m2", "_k"):
+        if label.endswith(suffix):
+            label = label[: -len(suffix)]
+            break
+    return label.replace("_", " ").replace(".", " · ")
 
 
 def _conditions_section(data: ResultData, checks: list[dict], ok) -> str:
@@ -466,16 +503,21 @@ def _conditions_section(data: ResultData, checks: list[dict], ok) -> str:
             rows.append(f"<tr><td>{_e(prefix.replace('_', ' '))}</td><td>{_e(', '.join(map(str, obj)))}</td></tr>")
 
     walk("", cond)
-    cond_html = (f"<table><tr><th>quantity</th><th>value</th></tr>{''.join(rows)}</table>" if rows
-                 else "<p>No conditions recorded.</p>")
+    if rows:
+        half = (len(rows) + 1) // 2
+        head = "<tr><th>quantity</th><th>value</th></tr>"
+        cond_html = (f'<div class="two"><table>{head}{"".join(rows[:half])}</table>'
+                     f'<table>{head if len(rows) > 1 else ""}{"".join(rows[half:])}</table></div>')
+    else:
+        cond_html = "<p>No conditions recorded.</p>"
     if checks:
         crow = []
         for c in checks:
             st = {True: '<span class="verdict ok">pass</span>', False: '<span class="verdict fail">fail</span>',
                   None: '<span class="verdict unknown">n/a</span>'}[c["passed"]]
             lim = ("≥ " if c["kind"] == "min" else "≤ " if c["kind"] == "max" else "") + _e(
-                _fmt(c["limit"], 3) if _isnum(c["limit"]) else (c["limit"] if c["limit"] is not None else "–"))
-            val = _fmt(c["value"], 3) if _isnum(c["value"]) else ("–" if c["value"] is None else c["value"])
+                _sig(c["limit"]) if _isnum(c["limit"]) else (c["limit"] if c["limit"] is not None else "–"))
+            val = _sig(c["value"]) if _isnum(c["value"]) else ("–" if c["value"] is None else c["value"])
             crow.append(f"<tr><td>{_e(str(c['name']).replace('_', ' '))}</td><td class='n'>{_e(val)}</td>"
                         f"<td class='n'>{lim}</td><td>{_e(c['unit'])}</td><td>{st}</td>"
                         f"<td class='note'>{_e(c['source'])}{(' · ' + _e(c['note'])) if c['note'] else ''}</td></tr>")
@@ -536,7 +578,8 @@ diffuse patterns are estimated from their thermal deficit against the heat an op
 (η·G/U), spot patterns from a heat balance of the affected area, each bounded by the substring's share.
 Energy loss = power loss × the site's specific yield (kWh/kWp per year). Losses are estimates for
 prioritising work, not a warranty or yield assessment.</p>
-<p class="note">Priorities order the work by severity first, then by lost energy and confidence.
+<p class="note">Priorities put safety findings first, then order the work by lost energy, then by
+confidence.
 Positions: table, row (1 = lower edge) and position along the table (1 = the end with the smallest
 coordinate along the table's axis).</p>
 </div></section>"""

@@ -148,7 +148,7 @@ class ResultData:
         energy = float(np.nansum(an["energy_loss_kwh_per_year"])) if len(an) else 0.0
         flight = (float(np.nansum(an["power_loss_w_flight"]))
                   if len(an) and an["power_loss_w_flight"].notna().any() else math.nan)
-        nameplate = _num(get_path(self.summary, "totals.plant_pmax_w", "plant_pmax_w",
+        nameplate = _num(get_path(self.summary, "loss.plant_pmax_w", "totals.plant_pmax_w", "plant_pmax_w",
                                   "totals.nameplate_w", "plant.pmax_w"))
         if not math.isfinite(nameplate):
             pmax = _num(get_path(self.summary, "inputs.module.pmax_w", "module.pmax_w"))
@@ -164,6 +164,8 @@ class ResultData:
             "energy_loss_kwh_per_year": energy,
             "plant_pmax_w": nameplate,
             "plant_share": power / nameplate if math.isfinite(nameplate) and nameplate > 0 else math.nan,
+            "yearly_cost": _num(get_path(self.summary, "loss.yearly_cost")),
+            "currency": str(get_path(self.summary, "loss.currency", default="") or ""),
         }
 
     def ortho_paths(self) -> list[Path]:
