@@ -422,3 +422,17 @@ def test_empty_anomalies(tmp_path):
     outputs.write_geopackage(tmp_path / "r.gpkg", mods, empty, wo)
     assert set(dict(pyogrio.list_layers(tmp_path / "r.gpkg"))) == {"modules", "anomalies", "workorders"}
     assert re.fullmatch(r"[A-Z0-9:]+", outputs.workorders_table(empty, mods).crs.to_string())
+
+
+def test_workorders_in_another_site_crs(tmp_path, result):
+    """x, y follow the requested site CRS; lon, lat stay the same point (pyproj as reference)."""
+    mods, an = result
+    rows_utm = outputs.workorders_table(an, mods, CRS)
+    rows_merc = outputs.workorders_table(an, mods, "EPSG:3857")
+    assert (rows_merc["crs"] == "EPSG:3857").all()
+    to_ll = Transformer.from_crs("EPSG:3857", 4326, always_xy=True)
+    lon, lat = to_ll.transform(rows_merc["x"].to_numpy(), rows_merc["y"].to_numpy())
+    # 2-decimal metres in Web Mercator: <= 1 cm, about 1.5e-7 deg at 47.6 N
+    assert lon == pytest.approx(rows_utm["lon"].to_numpy(), abs=3e-7)
+    assert lat == pytest.approx(rows_utm["lat"].to_numpy(), abs=3e-7)
+    assert rows_merc.crs.to_epsg() == 3857
