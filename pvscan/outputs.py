@@ -36,7 +36,7 @@ import os
 import shutil
 import tempfile
 import uuid
-from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -44,7 +44,7 @@ import numpy as np
 import pandas as pd
 import shapely
 from pyproj import CRS, Transformer
-from shapely.geometry import MultiPolygon, Point, Polygon, box as _box, mapping
+from shapely.geometry import MultiPolygon, Point, Polygon, mapping
 from shapely.geometry.polygon import orient
 
 from pvscan.errors import OutputError
