@@ -1017,9 +1017,7 @@ def build_summary(*, modules, anomalies: pd.DataFrame | None, module_spec=None,
         "registration": to_jsonable(registration) if registration is not None else None,
         "safety": safety_cautions(),
     }
-    if isinstance(summary["registration"], Mapping) or summary["registration"] is None:
-        pass
-    else:
+    if summary["registration"] is not None and not isinstance(summary["registration"], Mapping):
         summary["registration"] = {"value": summary["registration"]}
     if summary["validity"] is not None and not isinstance(summary["validity"], Mapping):
         summary["validity"] = {"checks": summary["validity"]}
