@@ -134,7 +134,7 @@ def test_modules_geojson_rfc7946_and_schema(tmp_path, result, flip):
     assert len(doc["features"]) == len(mods)
     for f in doc["features"]:
         for lon, lat in _all_positions(f["geometry"]):
-            assert _decimals(lon) <= 7 and _decimals(lat) <= 7  # 7 decimals (RFC 7946 section 11.2 advice)
+            assert _decimals(lon) <= 7 and _decimals(lat) <= 7  # rounded to 7 decimals, ~1 cm (RFC 7946 section 11.2 on precision)
     props = {f["properties"]["module_id"]: f["properties"] for f in doc["features"]}
     assert props["T1-R1-C3"]["defect"] is None and props["T1-R1-C3"]["power_loss_w"] == 0.0
     assert props["T2-R1-C4"]["t_std_k"] is None  # NaN -> null
@@ -152,7 +152,7 @@ def test_modules_geojson_positions_match_pyproj(tmp_path, result):
         ring = np.array(f["geometry"]["coordinates"][0])
         x, y = back.transform(ring[:, 0], ring[:, 1])
         poly = Polygon(np.column_stack([x, y]))
-        # 7 decimals of a degree are <= 1.1 cm (RFC 7946 section 11.2); area of the symmetric difference
+        # 1e-7 deg is <= 1.1 cm on the ground (WGS84 geometry); symmetric difference
         assert poly.symmetric_difference(geom).area < 0.02 * geom.length
         assert abs(poly.area - geom.area) < 0.01 * geom.area
     # the same as geopandas' own reprojection (reference library)
@@ -200,7 +200,7 @@ def test_anomalies_geojson_regions(tmp_path, result, flip):
 
     def tol(perimeter_m):
         # positions rounded to 1e-7 deg move each vertex by <= 0.56 cm (1e-7 deg of latitude
-        # is 1.1 cm; RFC 7946 section 11.2), so the area may change by about perimeter x 0.56 cm
+        # is 1.1 cm on the WGS84 ellipsoid), so the area may change by about perimeter x 0.56 cm
         return perimeter_m * 0.0056
 
     by = {f["properties"]["defect"]: f for f in doc["features"]}

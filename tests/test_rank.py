@@ -1,8 +1,8 @@
 """Ranking: safety first, then yearly energy loss, then confidence; plain-words actions.
 
-The ordering rule and the live-DC caution are common practice (IEC TS 62446-3 asks that
-thermographic findings with a safety hazard are reported for immediate action; PV modules
-are live whenever lit, so DC work is for qualified persons under local electrical codes).
+The ordering rule and the live-DC caution are common practice (safety-relevant thermal
+abnormalities are a class of their own in IEC TS 62446-3, from memory; PV modules are live
+whenever lit, so DC work is for qualified persons under local electrical codes).
 """
 from __future__ import annotations
 
