@@ -44,8 +44,8 @@ import numpy as np
 import pandas as pd
 from scipy import ndimage
 
-from pvscan.thermal import (_REFERENCE_DEFAULTS, _section, local_reference, normalise_delta_t,
-                            open_module_rise)
+from pvscan.thermal import (_REFERENCE_DEFAULTS, _section, faiman_u, local_reference,
+                            normalise_delta_t, open_module_rise)
 
 __all__ = [
     "classify",
@@ -83,6 +83,7 @@ _CLASSIFY_DEFAULTS = {
     "min_valid_fraction": 0.6,
     "min_cell_fraction": 0.5,
     "noise_z": 5.0,
+    "module_z": 3.0,
     "local_irradiance": True,
     "local_irradiance_min": 0.4,
     "local_irradiance_max": 1.3,
@@ -106,10 +107,12 @@ _CLASSIFY_DEFAULTS = {
     "soiling_cover_min": 0.7,
     "soiling_top_max": 0.3,
     "open_string_min_modules": 2,
+    "open_string_candidate_z": 1.5,
+    "open_string_run_z": 5.0,
+    "open_string_ratio_min": 0.7,
     "pid_min_modules": 2,
-    "pid_seed_z": 3.0,
-    "pid_extend_z": 1.0,
-    "pid_ring_min": 0.15,
+    "pid_seed_z": 4.0,
+    "pid_extend_z": 2.0,
     "pid_max_position": 0.5,
     "precedence": ["open_string", "open_module", "bypassed_substring_multi", "bypassed_substring",
                    "junction_box", "pid", "soiling", "hot_cell_multi", "hot_cell"],
@@ -308,13 +311,13 @@ def _features(modules, stats, conditions, module_spec, ref, nb, ok, cfg, cfg_ref
     u0, u1 = float(cfg_ref["u0"]), float(cfg_ref["u1"])
     rise = np.asarray(open_module_rise(eta, g, ws, u0, u1), dtype=float)
     if bool(cfg["local_irradiance"]):
-        # a module's rise over ambient is G / U (Faiman): relative to the plant's typical
-        # rise it tells the local irradiance (cloud shadows, drift) the sensor did not see
-        over = ref - ta
-        typical = _nanmedian(over[ok]) if ok.any() else np.nan
-        if np.isfinite(typical) and typical > 1.0:
-            s = np.clip(over / typical, float(cfg["local_irradiance_min"]), float(cfg["local_irradiance_max"]))
-            rise = rise * np.where(np.isfinite(s), s, 1.0)
+        # Faiman: a producing module runs G / U(v) above the air, so the local reference's
+        # rise over ambient tells the irradiance the module actually got (cloud shadows,
+        # drift the irradiance sensor did not see): G_local = (T_ref - T_air) * U(v)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            s = (ref - ta) * faiman_u(ws, u0, u1) / g
+        s = np.clip(s, float(cfg["local_irradiance_min"]), float(cfg["local_irradiance_max"]))
+        rise = rise * np.where(np.isfinite(s), s, 1.0)
     if not np.isfinite(rise).any():
         logger.warning("no irradiance for the open-module rise; area patterns use 3 K")
         rise = np.full(n, 3.0)
@@ -410,7 +413,7 @@ def pattern_open_module(F: Features, cfg: Mapping, rsub=None, dT=None, isolated:
     ratio = dT / r
     spread = _iqr((F.R - F.base[:, None, None]).reshape(F.n, -1), axis=1)
     uniform = spread <= np.maximum(float(cfg["open_uniform_iqr"]) * r, float(cfg["open_uniform_floor_k"]))
-    floor = float(cfg["noise_z"]) * F.sig_mod
+    floor = float(cfg["module_z"]) * F.sig_mod
     hit = (F.ok & (lo >= float(cfg["substring_raise_min"]) * r) & (ratio >= float(cfg["open_ratio_min"]))
            & (ratio <= float(cfg["open_ratio_max"])) & uniform & (dT >= floor))
     if isolated and "adjacent" in F.extra:
@@ -636,48 +639,71 @@ def pattern_junction_box(F: Features, cfg: Mapping) -> Hits:
     return h
 
 
-def _band_masks(F: Features) -> tuple[np.ndarray, np.ndarray]:
-    """(n, A, C) masks of the lower-edge band of cells and of the opposite (upper) band."""
-    A, C, n = F.n_along, F.n_across, F.n
-    low = np.zeros((n, A, C), bool)
-    top = np.zeros((n, A, C), bool)
+def _edge_profile(F: Features, X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Median of ``X`` over each line of cells parallel to the lower edge, from the edge up.
+
+    Returns
+    -------
+    profile : ndarray (n, L)
+        Line medians, line 0 at the lower edge (NaN-padded to the longer side).
+    length : ndarray of int (n,)
+        Lines per module (n_along when the lower edge is u = 0, else n_across).
+    """
+    n, A, C = F.n, F.n_along, F.n_across
+    L = max(A, C)
+    prof = np.full((n, L), np.nan)
     lu = F.lower_u
-    low[lu, 0, :] = True
-    top[lu, A - 1, :] = True
-    low[~lu, :, 0] = True
-    top[~lu, :, C - 1] = True
-    return low, top
+    prof[lu, :A] = _nanmedian(X[lu], axis=2)
+    prof[~lu, :C] = _nanmedian(X[~lu], axis=1)
+    return prof, np.where(lu, A, C)
 
 
 def pattern_soiling(F: Features, cfg: Mapping) -> Hits:
     """A warm band along the module's lower edge (dirt collecting where water runs off).
 
     The lower edge is ``u = 0`` when ``lower_edge == "u"`` and ``v = 0`` when ``"v"``.
-    The band of cells along it must be raised all along the edge (p95, since a thin
-    band covers only part of each cell) while the opposite edge is not.
+    Lines of cells parallel to the lower edge are raised from the edge up to the band's
+    depth (at most a third of the module), all along the edge, while the rest of the
+    module and its upper edge are not. The cells' p95 is used, since a thin band covers
+    only part of the cells at the edge.
 
     Returns
     -------
     Hits
-        Region ``band``; region temperature = the median over the band cells of their p95.
+        Region ``band``; region temperature = the median over the band's cells of their p95.
     """
-    n = F.n
-    low, top = _band_masks(F)
+    n, A, C = F.n, F.n_along, F.n_across
     X95 = F.R95 - F.base[:, None, None]
-    band = _nanmedian(np.where(low, X95, np.nan).reshape(n, -1), axis=1)
-    topv = _nanmedian(np.where(top, X95, np.nan).reshape(n, -1), axis=1)
+    prof, length = _edge_profile(F, X95)
+    L = prof.shape[1]
+    band = _nanmax(prof[:, :2], axis=1)
     thr = max(float(cfg["soiling_min_k"]), float(cfg["noise_z"]) * F.sig_cell)
+    with np.errstate(invalid="ignore"):
+        up = prof >= 0.5 * band[:, None]
+        # a missing line at the very edge (all cells too thin) does not end the band
+        up[:, 0] |= ~np.isfinite(prof[:, 0])
+    depth = np.argmin(np.concatenate([up, np.zeros((n, 1), bool)], axis=1), axis=1)
+    maxd = np.ceil(length / 3.0).astype(int)
+    lines = np.arange(L)[None, :]
+    rest = np.where((lines >= depth[:, None]) & (lines < length[:, None]), prof, np.nan)
+    rest_max = _nanmax(rest, axis=1)
+    top = prof[np.arange(n), np.maximum(length - 1, 0)]
+    # coverage along the edge: band cells raised by half the band, among valid cells
+    ii, jj = np.indices((A, C))
+    line_of = np.where(F.lower_u[:, None, None], ii[None], jj[None])          # (n, A, C)
+    in_band = line_of < depth[:, None, None]
+    valid = np.isfinite(X95)
     with np.errstate(invalid="ignore", divide="ignore"):
-        up = (X95 >= 0.5 * band[:, None, None]) & low
-        cover = up.sum(axis=(1, 2)) / np.maximum(low.sum(axis=(1, 2)), 1)
-        hit = F.ok & (band >= thr) & (cover >= float(cfg["soiling_cover_min"])) & \
-            (topv <= float(cfg["soiling_top_max"]) * band)
-    temp = _nanmedian(np.where(low, F.cp, np.nan).reshape(n, -1), axis=1)
+        raised = (X95 >= 0.5 * band[:, None, None]) & in_band & valid
+        cover = raised.sum(axis=(1, 2)) / np.maximum((in_band & valid).sum(axis=(1, 2)), 1)
+        hit = (F.ok & (band >= thr) & (depth >= 1) & (depth <= maxd) & (cover >= float(cfg["soiling_cover_min"]))
+               & (np.nan_to_num(rest_max, nan=0.0) <= float(cfg["soiling_top_max"]) * band)
+               & (np.nan_to_num(top, nan=0.0) <= float(cfg["soiling_top_max"]) * band))
+    temp = _nanmedian(np.where(in_band, F.cp, np.nan).reshape(n, -1), axis=1)
     h = Hits("soiling", hit, _conf(_quality(band, thr), np.clip(cover, 0, 1)), temp)
-    A, C = F.n_along, F.n_across
     for i in np.flatnonzero(hit):
         h.region[i] = "band"
-        h.boxes[i] = [(0.0, 1.0 / A, 0.0, 1.0)] if F.lower_u[i] else [(0.0, 1.0, 0.0, 1.0 / C)]
+        h.boxes[i] = [(0.0, depth[i] / A, 0.0, 1.0)] if F.lower_u[i] else [(0.0, 1.0, 0.0, depth[i] / C)]
     return h
 
 
@@ -710,9 +736,25 @@ def _runs(mask_sorted: np.ndarray) -> list[tuple[int, int]]:
     return list(zip(np.flatnonzero(d == 1), np.flatnonzero(d == -1)))
 
 
-def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
-                        open_other: np.ndarray, open_own: np.ndarray) -> list[list[int]]:
+def _fill_gaps(mask: np.ndarray) -> np.ndarray:
+    """Close single-module gaps in a run (one module below the bar between two above)."""
+    out = mask.copy()
+    if mask.size >= 3:
+        out[1:-1] |= mask[:-2] & mask[2:]
+    return out
+
+
+def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray) -> list[list[int]]:
     """Runs of consecutive modules of one string (or table row) all raised like open modules.
+
+    An open string (blown fuse, open connector, tripped input) leaves all its modules
+    delivering nothing, each ``eta * G / U`` warmer. Its modules are each other's
+    neighbours, so they are judged against a reference that excludes their own string
+    or row (``F.extra["d_other"]``, ``F.extra["rsub_other"]``). Candidates are modules
+    raised uniformly by at least ``open_string_candidate_z`` robust standard deviations;
+    runs of consecutive candidates (single gaps closed) count when their combined
+    evidence ``sum(z) / sqrt(n)`` reaches ``open_string_run_z`` and their median rise fits
+    the open-module rise.
 
     Parameters
     ----------
@@ -720,40 +762,90 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
     cfg : mapping
     groups, pos : ndarray
         Group code (string, else table row; -1 none) and position along it.
-    open_other : ndarray of bool
-        Module looks open against a reference that excludes its own group.
-    open_own : ndarray of bool
-        Module looks open against its ordinary local reference.
 
     Returns
     -------
     list of list of int
         Module indices of each run, in string order (at least ``open_string_min_modules``).
     """
-    cand = F.ok & open_other
+    d_o = F.extra["d_other"]
+    rsub_o = F.extra["rsub_other"]
+    sig = max(F.extra["sig_other"], 0.05)
+    r = F.rise
+    z = d_o / sig
+    lo = _nanmin(rsub_o, axis=1)
+    spread = _iqr((F.R - F.base[:, None, None]).reshape(F.n, -1), axis=1)
+    uniform = spread <= np.maximum(float(cfg["open_uniform_iqr"]) * r, float(cfg["open_uniform_floor_k"]))
+    with np.errstate(invalid="ignore"):
+        cand = (F.ok & (z >= float(cfg["open_string_candidate_z"])) & uniform
+                & (lo >= 0.5 * float(cfg["substring_raise_min"]) * r)
+                & (d_o <= float(cfg["open_ratio_max"]) * r))
     out = []
     min_len = int(cfg["open_string_min_modules"])
     for g in np.unique(groups[cand & (groups >= 0)]):
         idx = np.flatnonzero(groups == g)
         idx = idx[np.argsort(pos[idx], kind="stable")]
-        for a, b in _runs(cand[idx]):
-            if b - a >= min_len:
-                out.append([int(i) for i in idx[a:b]])
+        c = _fill_gaps(cand[idx]) & F.ok[idx]
+        for a, b in _runs(c):
+            run = idx[a:b]
+            if b - a < min_len:
+                continue
+            zc = float(np.nansum(z[run]) / np.sqrt(len(run)))
+            ratio = float(np.nanmedian(d_o[run]) / np.nanmedian(r[run]))
+            if (zc >= float(cfg["open_string_run_z"]) and ratio >= float(cfg["open_string_ratio_min"])
+                    and not _raise_carries_on(F, run)):
+                out.append([int(i) for i in run])
     return out
 
 
+def _raise_carries_on(F: Features, run) -> bool:
+    """True when a run's raise over the other row of its table carries on past its ends.
+
+    An open string stops where the string stops; a mosaic seam running along a table row
+    raises the modules beyond the run as well.
+    """
+    cross = F.extra.get("cross_row")
+    along = F.extra.get("along_row")
+    if cross is None or along is None:
+        return False
+    t = F.t_median
+    run = np.asarray(run)
+    has = cross[run] >= 0
+    if has.sum() < max(1, len(run) // 2):
+        return False
+    d_run = float(np.nanmedian(t[run[has]] - t[cross[run[has]]]))
+    if not np.isfinite(d_run) or d_run <= 0.3 * float(np.nanmedian(F.rise[run])):
+        return False
+    members = set(run.tolist())
+    beyond = {int(j) for i in run for j in along[i] if j >= 0 and int(j) not in members}
+    for b in beyond:
+        if cross[b] >= 0 and np.isfinite(t[b] - t[cross[b]]) and (t[b] - t[cross[b]]) >= 0.5 * d_run:
+            return True
+    return False
+
+
+def pid_ring_contrast(F: Features) -> np.ndarray:
+    """Median residual of a module's edge ring of cells minus that of its interior [K]."""
+    n, A, C = F.n, F.n_along, F.n_across
+    ii, jj = np.indices((A, C))
+    ring = (ii == 0) | (ii == A - 1) | (jj == 0) | (jj == C - 1)
+    flat = F.R.reshape(n, -1)
+    return (_nanmedian(flat[:, ring.ravel()], axis=1) - _nanmedian(flat[:, ~ring.ravel()], axis=1))
+
+
 def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
-                d_other: np.ndarray, is_string: bool, exclude: np.ndarray) -> list[list[int]]:
+                is_string: bool, exclude: np.ndarray) -> list[list[int]]:
     """Potential-induced degradation along a string.
 
     PID shunts cells of the modules nearest the string's negative end (``string_index``
     1) most, fading along the string, in a patchy pattern strongest at the cells next to
-    the frame. Each module gets a score from its excess over a reference that excludes
-    its own string (``d_other`` [K]) and the contrast of its edge ring of cells over its
-    interior (both in units of the open-module rise). A string qualifies when its module
-    nearest the negative end is clearly raised (``pid_seed_z`` robust standard deviations)
-    with an edge-weighted pattern; the affected run then extends from the negative end
-    while the score stays above ``pid_extend_z``.
+    the grounded frame. The telling sign is the contrast of a module's edge ring of cells
+    over its interior (:func:`pid_ring_contrast`), insensitive to the module-to-module
+    spread, in robust standard deviations of healthy modules' contrast. A string
+    qualifies when its module at the negative end reaches ``pid_seed_z`` and is warmer
+    than its surroundings; the affected run extends from the negative end while the
+    contrast stays above ``pid_extend_z``, over at least ``pid_min_modules`` and at most
+    the first ``pid_max_position`` of the string.
 
     Returns
     -------
@@ -762,17 +854,15 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     """
     if not is_string:
         return []
-    n, A, C = F.n, F.n_along, F.n_across
-    ii, jj = np.indices((A, C))
-    ring = (ii == 0) | (ii == A - 1) | (jj == 0) | (jj == C - 1)
-    R = F.R
-    ring_m = _nanmean(np.where(ring[None], R, np.nan).reshape(n, -1), axis=1)
-    core_m = _nanmean(np.where(~ring[None], R, np.nan).reshape(n, -1), axis=1)
-    contrast = (ring_m - core_m) / F.rise
-    sig = _robust_sigma(d_other[F.ok & ~exclude]) if (F.ok & ~exclude).any() else F.sig_mod
-    sig = F.sig_mod if not np.isfinite(sig) else sig
-    sig = max(sig, 0.05)
-    z = d_other / sig
+    contrast = pid_ring_contrast(F)
+    healthy = F.ok & ~exclude & np.isfinite(contrast)
+    if healthy.sum() < 5:
+        return []
+    c0 = float(np.median(contrast[healthy]))
+    sig = max(_robust_sigma(contrast[healthy]), 0.02)
+    z = (contrast - c0) / sig
+    F.extra["pid_z"] = z
+    d_o = F.extra["d_other"]
     out = []
     for g in np.unique(groups[groups >= 0]):
         idx = np.flatnonzero(groups == g)
@@ -782,19 +872,16 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
         first = idx[0]
         if exclude[first] or not F.ok[first]:
             continue
-        if not (z[first] >= float(cfg["pid_seed_z"]) and contrast[first] >= float(cfg["pid_ring_min"])):
+        if not (z[first] >= float(cfg["pid_seed_z"]) and d_o[first] > 0):
             continue
         run = [int(first)]
         for i in idx[1:]:
             if exclude[i] or not F.ok[i] or z[i] < float(cfg["pid_extend_z"]):
                 break
             run.append(int(i))
-        if len(run) < int(cfg["pid_min_modules"]) or len(run) > float(cfg["pid_max_position"]) * len(idx) + 1:
+        if len(run) < int(cfg["pid_min_modules"]):
             continue
-        # fading: the first half of the run warmer than the second half
-        zs = z[run]
-        if len(run) >= 3 and np.mean(zs[: len(run) // 2]) < np.mean(zs[len(run) - len(run) // 2:]):
-            continue
+        run = run[: int(np.floor(float(cfg["pid_max_position"]) * len(idx))) + 1]
         out.append(run)
     return out
 
@@ -821,7 +908,22 @@ def _geometry(modules: pd.DataFrame, nsub: int) -> dict:
     vk = (np.arange(nsub) + 0.5) / nsub
     centres = p0[:, None, :] + 0.5 * fu[:, None, :] + vk[None, :, None] * fv[:, None, :]
     edges = np.stack([p0 + 0.5 * fu, p0 + 0.5 * fu + fv], axis=1)
-    return {"adjacent": adjacent_modules(modules), "sub_centres": centres, "edge_points": edges}
+    adj = adjacent_modules(modules)
+    n = len(modules)
+    cross = np.full(n, -1, np.int64)
+    along = np.full((n, 4), -1, np.int64)
+    if "table_id" in modules.columns and "table_row" in modules.columns:
+        tkey = np.asarray(pd.factorize(modules["table_id"].astype("string"))[0])
+        trow = pd.to_numeric(modules["table_row"], errors="coerce").fillna(-1).to_numpy(np.int64)
+        for c in range(4):
+            j = adj[:, c]
+            jj = np.maximum(j, 0)
+            same_t = (j >= 0) & (tkey[jj] == tkey) & (tkey >= 0)
+            other_row = same_t & (trow[jj] != trow)
+            cross = np.where((cross < 0) & other_row, j, cross)
+            along[:, c] = np.where(same_t & (trow[jj] == trow), j, -1)
+    return {"adjacent": adj, "sub_centres": centres, "edge_points": edges, "cross_row": cross,
+            "along_row": along}
 
 
 def _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, ok, healthy, groups, pos, is_string):
@@ -838,8 +940,14 @@ def _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, ok, healthy, g
     ref_o = np.where(np.isfinite(ro.reference_c), ro.reference_c, F.ref)
     d_other = t_med - ref_o
     rsub_o = F.Rsub + (F.ref - ref_o)[:, None]
-    open_other = pattern_open_module(F, cfg, rsub=rsub_o, dT=d_other, isolated=False).hit
-    F.extra.update(ref_other=ref_o, d_other=d_other, open_other=open_other)
+    sig_o = _robust_sigma(d_other[healthy & F.ok]) if (healthy & F.ok).sum() >= 3 else F.sig_mod
+    F.extra.update(ref_other=ref_o, d_other=d_other, rsub_other=rsub_o,
+                   sig_other=sig_o if np.isfinite(sig_o) else F.sig_mod)
+    runs = pattern_open_string(F, cfg, groups, pos)
+    in_run = np.zeros(F.n, bool)
+    for run in runs:
+        in_run[run] = True
+    F.extra.update(open_runs=runs, in_run=in_run)
     return F, hits
 
 
@@ -902,7 +1010,7 @@ def classify(modules, stats, conditions, module_spec, settings=None, confidence_
 
     # pass 1: suspects
     F1, hits1 = _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, ok, ok, groups, pos, is_string)
-    suspect = F1.extra["suspect"] | F1.extra["open_other"]
+    suspect = F1.extra["suspect"] | F1.extra["in_run"]
     for h in hits1:
         suspect |= h.hit
     if progress:
@@ -914,12 +1022,10 @@ def classify(modules, stats, conditions, module_spec, settings=None, confidence_
         progress("classify", 2, 3)
     by = {h.defect: h for h in hits}
     open_own = by["open_module"].hit
-    runs = pattern_open_string(F, cfg, groups, pos, F.extra["open_other"], open_own)
-    in_run = np.zeros(n, bool)
-    for run in runs:
-        in_run[run] = True
+    runs = F.extra["open_runs"]
+    in_run = F.extra["in_run"]
     any_area = in_run | open_own | by["bypassed_substring"].hit | by["bypassed_substring_multi"].hit
-    pid_runs = pattern_pid(F, cfg, groups, pos, F.extra["d_other"], is_string, any_area)
+    pid_runs = pattern_pid(F, cfg, groups, pos, is_string, any_area)
 
     g_cond = conditions["poa_global"].to_numpy(dtype=float) if "poa_global" in conditions else np.full(n, np.nan)
     w_cond = conditions["wind_speed"].to_numpy(dtype=float) if "wind_speed" in conditions else np.full(n, np.nan)
@@ -951,8 +1057,7 @@ def classify(modules, stats, conditions, module_spec, settings=None, confidence_
     pid_conf = np.zeros(n)
     for run in pid_runs:
         pid_hits[run] = True
-        z = F.extra["d_other"][run] / max(F.sig_mod, 0.05)
-        pid_conf[run] = _conf(np.clip(z / 6.0, 0, 1), np.full(len(run), 1.0))
+        pid_conf[run] = _conf(_quality(F.extra["pid_z"][run], float(cfg["pid_extend_z"])))
     pid = Hits("pid", pid_hits, pid_conf, t_med.copy())
     for i in np.flatnonzero(pid_hits):
         pid.region[i] = "module"
