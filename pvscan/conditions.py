@@ -186,7 +186,7 @@ def read_frames(path, crs) -> "geopandas.GeoDataFrame":  # noqa: F821
     path : path-like
         GeoJSON (RFC 7946 lon/lat, or with a ``crs`` member), GeoPackage or Shapefile of
         polygons with a ``time`` property (ISO 8601 with a UTC offset); an optional
-        ``frame_id`` property.
+        ``frame_id`` (or ``frame``, ``id``) property.
     crs : pyproj.CRS or str
         Target CRS (the ortho's, projected in metres).
 
@@ -217,7 +217,8 @@ def read_frames(path, crs) -> "geopandas.GeoDataFrame":  # noqa: F821
         raise ConditionsError(f"{path}: no frames")
     if gdf.crs is None:
         raise ConditionsError(f"{path}: frames have no CRS")
-    ids = gdf["frame_id"].astype(str).tolist() if "frame_id" in gdf.columns else [str(i) for i in range(len(gdf))]
+    id_col = next((c for c in ("frame_id", "frame", "id") if c in gdf.columns), None)
+    ids = gdf[id_col].astype(str).tolist() if id_col else [str(i) for i in range(len(gdf))]
     times = []
     for i, (fid, t, g) in enumerate(zip(ids, gdf["time"], gdf.geometry)):
         where = f"{path}: frame {fid} (feature {i})"
