@@ -299,8 +299,8 @@ def test_every_anomaly_has_a_card_in_priority_order(result, report_html):
 
 def test_every_embedded_image_decodes(report_html):
     doc = parse(report_html)
-    # overview, 4 plots, 3 cards x (2 crops + 2 colour strips)
-    assert len(doc.imgs) == 1 + 4 + 3 * 4
+    # overview, 4 plots, 3 cards x 2 crops
+    assert len(doc.imgs) == 1 + 4 + 3 * 2
     sizes = []
     for a in doc.imgs:
         im = decode_png(a["src"])
@@ -460,7 +460,7 @@ def test_kelvin_ortho_is_shown_in_celsius(tmp_path):
 
     res = build_result(tmp_path, kelvin=True)
     html_text = write_report(res).read_text()
-    lows = [float(x) for x in re.findall(r'<span class="scale">(-?[\d.]+)<img', html_text)]
+    lows = [float(x) for x in re.findall(r'<span class="scale">(-?[\d.]+)<span class="ramp"', html_text)]
     assert lows, "colour windows printed"
     assert all(0.0 < v < 80.0 for v in lows), lows
 

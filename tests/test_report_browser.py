@@ -80,7 +80,7 @@ def test_loads_without_errors_and_all_images_decode(report, tmp_path):
     assert m, f"probe did not run; stderr: {r.stderr[-2000:]}"
     out = json.loads(m.group(1).replace("&quot;", '"').replace("&amp;", "&"))
     assert out["errors"] == []
-    assert out["broken"] == 0 and out["images"] == 1 + 4 + 4 * len(PLANTED)
+    assert out["broken"] == 0 and out["images"] == 1 + 4 + 2 * len(PLANTED)
     assert out["cards"] == len(PLANTED)
     # no horizontal scrolling at a laptop width
     assert out["width"] <= out["viewport"] + 1

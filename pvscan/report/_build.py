@@ -17,7 +17,7 @@ import pandas as pd
 
 from pvscan.errors import PvscanError
 from pvscan.report import _figures as figs
-from pvscan.report._images import (Palette, colour_window, colourbar_png, module_window, png_data_uri,
+from pvscan.report._images import (Palette, colour_window, module_window, png_data_uri, quantise_png,
                                    render_crop)
 from pvscan.report._raster import ThermalView, open_thermal
 from pvscan.report._result import SEVERITIES, ResultData, get_path, load_result, validity_checks
@@ -389,7 +389,7 @@ def _card(k: int, r: pd.Series, shots: str) -> str:
 
 
 def _shots(view: ThermalView | None, geo: _MapGeometry, r: pd.Series, ageom, palette: Palette, cfg,
-           site_window: tuple[float, float], cbar_uri: str, size: int) -> str:
+           site_window: tuple[float, float], size: int) -> str:
     from affine import Affine
     from rasterio.features import geometry_mask
 
@@ -448,7 +448,7 @@ def _shots(view: ThermalView | None, geo: _MapGeometry, r: pd.Series, ageom, pal
         figs_html.append(
             f'<figure>{_img(png_data_uri(png), cap + " thermal crop", "crop")}'
             f'<figcaption>{_e(cap)}<span class="scale">{_fmt(a, 1)}'
-            f'{_img(cbar_uri, "colour scale")}{_fmt(bnd, 1)} °C</span></figcaption></figure>')
+            f'<span class="ramp" title="colour scale"></span>{_fmt(bnd, 1)} °C</span></figcaption></figure>')
     return f'<div class="shots" style="--crop:{size}px">{"".join(figs_html)}</div>'
 
 
@@ -693,11 +693,10 @@ def _build(data: ResultData, view, modules_gdf, cfg: dict, notes: list[str], pro
 
     # ---- cards
     size = int(cfg["crop_px"] if len(an) <= int(cfg["many_anomalies"]) else cfg["crop_px_many"])
-    cbar_uri = png_data_uri(colourbar_png(palette))
     cards = []
     for k, r in an.iterrows():
         ageom = geo.anomalies[k] if k < len(geo.anomalies) else None
-        shots = _shots(view, geo, r, ageom, palette, cfg, site_window, cbar_uri, size)
+        shots = _shots(view, geo, r, ageom, palette, cfg, site_window, size)
         cards.append(_card(k, r, shots))
         if progress is not None:
             progress("report cards", k + 1, len(an))
@@ -738,7 +737,7 @@ def _build(data: ResultData, view, modules_gdf, cfg: dict, notes: list[str], pro
         f'''<section id="overview"><h2>Site map</h2>
 <p class="lead">{'Thermal orthomosaic' if image is not None else 'Module temperatures'} with module outlines;
 anomalies marked by severity, the first {int(cfg["overview_labels"])} labelled with their priority.</p>
-{_img(png_data_uri(overview), "site overview map", "map")}{notes_html}</section>''',
+{_img(png_data_uri(quantise_png(overview)), "site overview map", "map")}{notes_html}</section>''',
         _counts_section(data),
         _worklist_section(data),
         f'''<section id="cards" class="sheet"><h2>Anomaly cards</h2>
@@ -759,7 +758,8 @@ surroundings in the site-wide colour window, for context.</p>
     ]
     title = f"{data.site_name} · thermographic inspection {data.flight_id}".strip()
     return string.Template(_template("report.html")).substitute(
-        title=_e(title), css=_template("report.css"), body="\n".join(body), version=_e(__version__))
+        title=_e(title), css=_template("report.css") + f".ramp {{ background: {palette.css_gradient()}; }}\n",
+        body="\n".join(body), version=_e(__version__))
 
 
 def write_report(result_dir: str | Path, out_path: str | Path | None = None, *, orthos=None, modules=None,

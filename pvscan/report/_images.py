@@ -15,7 +15,8 @@ from collections.abc import Iterable, Sequence
 import numpy as np
 from PIL import Image, ImageDraw
 
-__all__ = ["Palette", "render_crop", "png_data_uri", "colour_window", "module_window", "colourbar_png"]
+__all__ = ["Palette", "render_crop", "png_data_uri", "colour_window", "module_window", "colourbar_png",
+           "quantise_png"]
 
 _LEVELS = 240
 IDX_NAN = 250
@@ -50,6 +51,16 @@ class Palette:
         pal[IDX_HALO] = (0, 0, 0)
         self.name = cmap_name
         self.flat = pal.reshape(-1).tolist()
+
+    def css_gradient(self, stops: int = 11) -> str:
+        """The colour map as a CSS ``linear-gradient`` (low temperatures left)."""
+        pal = np.asarray(self.flat, dtype=int).reshape(256, 3)[:_LEVELS]
+        parts = []
+        for k in range(stops):
+            i = int(round(k * (_LEVELS - 1) / (stops - 1)))
+            r, g, b = pal[i]
+            parts.append(f"#{r:02x}{g:02x}{b:02x} {100 * k / (stops - 1):.0f}%")
+        return "linear-gradient(to right, " + ", ".join(parts) + ")"
 
     def indices(self, values: np.ndarray, vmin: float, vmax: float) -> np.ndarray:
         """Palette indices of temperatures [degC] in the window ``vmin..vmax``."""
@@ -162,6 +173,15 @@ def render_crop(values: np.ndarray, extent, palette: Palette, vmin: float, vmax:
             draw.line(pts, fill=IDX_REGION, width=lw)
     buf = io.BytesIO()
     img.save(buf, format="PNG", optimize=True)
+    return buf.getvalue()
+
+
+def quantise_png(png: bytes, colours: int = 256) -> bytes:
+    """Re-encode an RGB(A) PNG (e.g. a matplotlib figure) with a palette: smaller file."""
+    im = Image.open(io.BytesIO(png)).convert("RGB")
+    q = im.quantize(colors=colours, method=Image.Quantize.MEDIANCUT, dither=Image.Dither.NONE)
+    buf = io.BytesIO()
+    q.save(buf, format="PNG", optimize=True)
     return buf.getvalue()
 
 
