@@ -142,7 +142,7 @@ def evaluate(truth_dir, result_dir) -> dict:
         The result's modules.geojson is missing or invalid.
     """
     truth_path = Path(truth_dir)
-    if truth_path.is_dir():
+    if truth_path.is_dir() or truth_path.suffix.lower() not in (".geojson", ".json"):
         truth_path = truth_path / "truth.geojson"
     result_dir = Path(result_dir)
     truth = _read_geojson(truth_path, SimulationError)
