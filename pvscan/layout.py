@@ -183,23 +183,66 @@ def region_polygons(modules: pd.DataFrame, i: int, boxes) -> Polygon | MultiPoly
 
 
 # ----------------------------------------------------------------------------- reading
+def _read_geojson(path: Path):
+    """Read GeoJSON ourselves: properties stay exactly as written (GDAL would guess types and
+    turn an id such as "T1006" into a time), and a legacy ``crs`` member is honoured."""
+    import json
+
+    import geopandas as gpd
+    from shapely.geometry import shape
+
+    try:
+        with open(path, encoding="utf-8") as fh:
+            doc = json.load(fh)
+    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+        raise LayoutError(f"{path}: cannot read the layout: {exc}") from None
+    if isinstance(doc, dict) and doc.get("type") == "Feature":
+        doc = {"type": "FeatureCollection", "features": [doc]}
+    if not isinstance(doc, dict) or doc.get("type") != "FeatureCollection" or not isinstance(
+            doc.get("features"), list):
+        raise LayoutError(f"{path}: cannot read the layout: not a GeoJSON FeatureCollection")
+    crs = "EPSG:4326"  # RFC 7946: GeoJSON is WGS84 lon/lat
+    legacy = doc.get("crs")
+    if isinstance(legacy, dict):
+        name = (legacy.get("properties") or {}).get("name")
+        if name:
+            from pyproj import CRS
+
+            try:
+                crs = CRS.from_user_input(name)
+            except Exception:
+                raise LayoutError(f"{path}: crs member {name!r} is not a known coordinate reference system") from None
+    props, geoms = [], []
+    for k, feat in enumerate(doc["features"]):
+        if not isinstance(feat, dict) or feat.get("type") != "Feature":
+            raise LayoutError(f"{path}: feature #{k + 1}: not a GeoJSON Feature")
+        props.append(dict(feat.get("properties") or {}))
+        g = feat.get("geometry")
+        try:
+            geoms.append(shape(g) if g else None)
+        except Exception as exc:
+            name = _feature_name(pd.Series(props[-1], dtype=object), k)
+            raise LayoutError(f"{path}: {name}: invalid geometry: {exc}") from None
+    return gpd.GeoDataFrame(pd.DataFrame(props, dtype=object) if props else None, geometry=geoms, crs=crs)
+
+
 def _read_file(path: Path):
     import geopandas as gpd
 
     if not path.exists():
         raise LayoutError(f"{path}: layout file not found")
-    try:
-        gdf = gpd.read_file(path, engine="pyogrio")
-    except Exception as exc:  # pyogrio raises its own DataSourceError etc.
-        msg = " ".join(str(exc).split())
-        raise LayoutError(f"{path}: cannot read the layout: {msg}") from None
+    if path.suffix.lower() in (".geojson", ".json"):
+        gdf = _read_geojson(path)
+    else:
+        try:
+            gdf = gpd.read_file(path, engine="pyogrio")
+        except Exception as exc:  # pyogrio raises its own DataSourceError etc.
+            msg = " ".join(str(exc).split())
+            raise LayoutError(f"{path}: cannot read the layout: {msg}") from None
     if len(gdf) == 0:
         raise LayoutError(f"{path}: the layout has no features")
     if gdf.crs is None:
-        if path.suffix.lower() in (".geojson", ".json"):
-            gdf = gdf.set_crs("EPSG:4326")  # RFC 7946: GeoJSON is WGS84 lon/lat
-        else:
-            raise LayoutError(f"{path}: the layout has no coordinate reference system")
+        raise LayoutError(f"{path}: the layout has no coordinate reference system")
     return gdf
 
 

@@ -251,15 +251,16 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
 
     t0 = time.perf_counter()
     lon, lat = _site_lonlat(modules)
-    anomalies = loss.estimate_loss(anomalies, flight.module, conds, flight.site, settings["loss"],
-                                   lonlat=(lon, lat), layout=flight.layout)
+    anomalies = loss.estimate_loss(anomalies, flight.module, conds, flight.site, settings,
+                                   lonlat=(lon, lat), layout=flight.layout, stats=stats,
+                                   reference_c=module_table["reference_c"].to_numpy())
     anomalies = rank.rank(anomalies, settings["rank"])
     timings["loss_rank"] = time.perf_counter() - t0
 
     table = stats.table.copy()
     for col in module_table.columns:
         table[col] = module_table[col].to_numpy()
-    shares = loss.module_losses(anomalies, len(modules))
+    shares = loss.module_losses(anomalies, len(modules), pmax_w=flight.module.pmax_w)
     for col in shares.columns:
         table[col] = shares[col].to_numpy()
 

@@ -191,3 +191,15 @@ def test_table_too_small_for_its_modules():
 def test_geojson_feature_mapping_unused_import_guard():
     # mapping() of a footprint is plain GeoJSON (used by outputs); keeps shapely's API honest
     assert mapping(box(0, 0, 1, 1))["type"] == "Polygon"
+
+
+def test_geojson_properties_kept_as_written(tmp_path):
+    # An id like "T1006" must stay a string (a type-guessing reader may take it for a time).
+    t = table_polygon(500000, 5000000, 1, 2, 0.02, 25)
+    gdf = gpd.GeoDataFrame({"table_id": ["T1006"], "string_id": ["0012"]}, geometry=[t], crs=UTM32N)
+    p = tmp_path / "l.geojson"
+    p.write_text(gdf.to_crs("EPSG:4326").to_json())
+    m = read_layout(p, UTM32N, LayoutSpec(rows=1, cols=2))
+    assert list(m.table_id.unique()) == ["T1006"]
+    assert list(m.string_id.unique()) == ["0012"]
+    assert m.module_id.iloc[0] == "T1006-R1-C01"

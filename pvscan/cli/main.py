@@ -24,6 +24,7 @@ COMMANDS = {
     "align": "pvscan.cli.align:align_cmd",
     "report": "pvscan.cli.report:report_cmd",
     "history": "pvscan.cli.history:history_group",
+    "fleet": "pvscan.cli.fleet:fleet_cmd",
 }
 
 
