@@ -150,24 +150,32 @@ def _representable(value: float, dtype: np.dtype) -> bool:
 
 
 def _to_celsius(raw: np.ndarray, tile: Tile, mask: np.ndarray | None = None) -> np.ndarray:
-    """Raw band values -> apparent temperature [degC], float32, NaN where invalid."""
-    out = raw.astype(np.float32, copy=True)
+    """Raw band values -> apparent temperature [degC], float32, NaN where invalid.
+
+    ``raw`` may be modified in place (it is a fresh buffer from a read).
+    """
+    out = raw if raw.dtype == np.float32 else raw.astype(np.float32)
     bad = None
-    if tile.nodata is not None:
-        if math.isnan(tile.nodata):
-            bad = np.isnan(raw) if raw.dtype.kind == "f" else None
-        elif _representable(tile.nodata, raw.dtype):
-            bad = raw == raw.dtype.type(tile.nodata)
+    nd = tile.nodata
+    if nd is not None:
+        nd_c = nd * tile.scale + tile.offset_c
+        # a nodata value outside the plausible range is caught by the range test below
+        if math.isnan(nd):
+            pass  # NaN never passes the range test
+        elif tile.valid_min_c <= nd_c <= tile.valid_max_c and _representable(nd, raw.dtype):
+            bad = raw == raw.dtype.type(nd)
     if tile.scale != 1.0:
         np.multiply(out, np.float32(tile.scale), out=out)
     if tile.offset_c != 0.0:
         np.add(out, np.float32(tile.offset_c), out=out)
     # NaN compares False, so this also catches NaN pixels.
-    implausible = ~((out >= np.float32(tile.valid_min_c)) & (out <= np.float32(tile.valid_max_c)))
-    bad = implausible if bad is None else (bad | implausible)
+    ok = out >= np.float32(tile.valid_min_c)
+    ok &= out <= np.float32(tile.valid_max_c)
+    if bad is not None:
+        ok &= ~bad
     if mask is not None:
-        bad |= mask == 0
-    out[bad] = np.nan
+        ok &= mask != 0
+    np.copyto(out, np.float32(np.nan), where=~ok)
     return out
 
 
