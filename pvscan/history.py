@@ -210,14 +210,25 @@ def _num(value) -> float:
         return math.nan
 
 
-def _geom(feat: dict, path: Path, fid: str):
-    g = feat.get("geometry")
-    if g is None:
-        return None
+def _geometries(raw: list, ids: list, path: Path) -> list:
+    """Shapely geometries of GeoJSON geometry objects (None stays None), converted in one
+    vectorised call; a bad one is named by its feature id."""
+    out: list = [None] * len(raw)
+    idx = [i for i, g in enumerate(raw) if g is not None]
+    if not idx:
+        return out
     try:
-        return shape(g)
-    except Exception as exc:  # shapely raises several types for bad coordinates
-        raise HistoryError(f"{path}: feature {fid}: invalid geometry ({exc})") from None
+        geoms = shapely.from_geojson([json.dumps(raw[i]) for i in idx], on_invalid="raise")
+    except Exception:  # find and name the bad feature
+        for i in idx:
+            try:
+                shape(raw[i])
+            except Exception as exc:  # shapely raises several types for bad coordinates
+                raise HistoryError(f"{path}: feature {ids[i]}: invalid geometry ({exc})") from None
+        raise HistoryError(f"{path}: invalid geometry") from None
+    for i, g in zip(idx, geoms):
+        out[i] = g
+    return out
 
 
 def _pick(d: Mapping, *paths: str):
@@ -255,6 +266,11 @@ def _as_objects(df: pd.DataFrame, cols: Iterable[str]) -> pd.DataFrame:
         df[c] = pd.Series([None if (v is None or (isinstance(v, float) and math.isnan(v))) else v
                            for v in df[c].tolist()], index=df.index, dtype=object)
     return df
+
+
+def _text(v):
+    """A text value, None for missing (None or NaN)."""
+    return None if v is None or (isinstance(v, float) and math.isnan(v)) else v
 
 
 def _worse_severity(a, b):
@@ -316,10 +332,11 @@ def read_result_dir(result_dir: str | Path) -> FlightResult:
                "defect": props.get("defect") or None, "severity": props.get("severity") or None}
         for c in MODULE_COLUMNS:
             row[c] = _num(props.get(c))
-        row["geometry"] = _geom(feat, mpath, mid)
+        row["geometry"] = feat.get("geometry")
         rows.append(row)
     modules = pd.DataFrame(rows, columns=["module_id", "table_id", "defect", "severity",
                                           *MODULE_COLUMNS, "geometry"])
+    modules["geometry"] = _geometries(list(modules["geometry"]), list(modules["module_id"]), mpath)
 
     apath = d / "anomalies.geojson"
     arows = []
@@ -340,10 +357,11 @@ def read_result_dir(result_dir: str | Path) -> FlightResult:
                "priority": None if props.get("priority") is None else int(props["priority"])}
         for c in ANOMALY_COLUMNS:
             row[c] = _num(props.get(c))
-        row["geometry"] = _geom(feat, apath, aid)
+        row["geometry"] = feat.get("geometry")
         arows.append(row)
     anomalies = pd.DataFrame(arows, columns=["anomaly_id", "module_id", "module_ids", "defect",
                                              "severity", "priority", *ANOMALY_COLUMNS, "geometry"])
+    anomalies["geometry"] = _geometries(list(anomalies["geometry"]), list(anomalies["anomaly_id"]), apath)
     if anomalies["anomaly_id"].duplicated().any():
         dup = anomalies.loc[anomalies["anomaly_id"].duplicated(), "anomaly_id"].iloc[0]
         raise HistoryError(f"{apath}: anomaly_id {dup} appears twice")
@@ -361,26 +379,30 @@ def read_result_dir(result_dir: str | Path) -> FlightResult:
                         anomalies=anomalies, summary=summary, source=str(d))
 
 
-def _canon(obj) -> Any:
-    if isinstance(obj, float):
-        return None if math.isnan(obj) else obj
-    if isinstance(obj, dict):
-        return {k: _canon(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_canon(v) for v in obj]
-    if isinstance(obj, (np.floating,)):
-        return _canon(float(obj))
-    if isinstance(obj, (np.integer,)):
-        return int(obj)
-    return obj
+def _records(df: pd.DataFrame) -> list:
+    """Rows as plain lists (NaN -> None, numpy scalars -> Python), geometry as WKB hex."""
+    cols = [c for c in df.columns if c != "geometry"]
+    body = df[cols].astype(object)
+    body = body.where(df[cols].notna(), None)
+    geoms = np.array(list(df["geometry"]), dtype=object)
+    wkb = [None] * len(df)
+    ok = np.array([g is not None for g in geoms], dtype=bool)
+    if ok.any():
+        hexes = shapely.to_wkb(geoms[ok], hex=True, output_dimension=2, byte_order=1, flavor="iso")
+        for i, h in zip(np.flatnonzero(ok), hexes):
+            wkb[i] = h
+    rows = body.values.tolist()
+    for r, w in zip(rows, wkb):
+        r.append(w)
+    return [cols + ["geometry"]] + rows
 
 
 def content_hash(result: FlightResult) -> str:
     """SHA-256 of a flight's results: its identity (site, flight id, start, end) and every
-    module and anomaly row with its geometry (WKB, hex).
+    module and anomaly row with its geometry (ISO WKB, hex), in id order.
 
-    The summary's free-form parts are left out, so the same results give the same hash even
-    when written twice; any changed number, defect or geometry gives a new hash.
+    The summary's free-form parts (timings, paths) are left out, so the same results give the
+    same hash even when written twice; any changed number, defect or geometry gives a new hash.
     """
     h = hashlib.sha256()
     ident = {"site": result.site, "flight_id": result.flight_id,
@@ -390,15 +412,37 @@ def content_hash(result: FlightResult) -> str:
     for name, df, key in (("modules", result.modules, "module_id"),
                           ("anomalies", result.anomalies, "anomaly_id")):
         h.update(name.encode())
-        for rec in df.sort_values(key).to_dict("records"):
-            g = rec.pop("geometry")
-            rec["geometry"] = None if g is None else shapely.to_wkb(g, hex=True, output_dimension=2)
-            h.update(json.dumps(_canon(rec), sort_keys=True, default=str).encode())
+        recs = _records(df.sort_values(key, kind="stable").reset_index(drop=True))
+        h.update(json.dumps(recs, default=_json_default, allow_nan=False).encode())
     return h.hexdigest()
+
+
+def _json_default(obj):
+    if isinstance(obj, np.integer):
+        return int(obj)
+    if isinstance(obj, np.floating):
+        return None if math.isnan(obj) else float(obj)
+    return str(obj)
 
 
 # --------------------------------------------------------------------------------------------
 # GeoPackage binary geometry [1], clause 2.1.3
+
+
+def _gpkg_blobs(geoms, srs_id: int = 4326) -> list:
+    """GeoPackage binary of many geometries (vectorised WKB and envelopes)."""
+    arr = np.array(list(geoms), dtype=object)
+    out: list = [None] * len(arr)
+    ok = np.array([g is not None and not g.is_empty for g in arr], dtype=bool)
+    if ok.any():
+        wkbs = shapely.to_wkb(arr[ok], byte_order=1, output_dimension=2, flavor="iso")
+        bounds = shapely.bounds(arr[ok])
+        head = b"GP" + bytes([0, 0x01 | (1 << 1)]) + struct.pack("<i", srs_id)
+        for i, w, (minx, miny, maxx, maxy) in zip(np.flatnonzero(ok), wkbs, bounds):
+            out[i] = head + struct.pack("<4d", minx, maxx, miny, maxy) + w
+    for i in np.flatnonzero(~ok):
+        out[i] = _gpkg_blob(arr[i], srs_id)
+    return out
 
 
 def _gpkg_blob(geom, srs_id: int = 4326) -> bytes | None:
@@ -415,6 +459,25 @@ def _gpkg_blob(geom, srs_id: int = 4326) -> bytes | None:
 
 
 _ENVELOPE_DOUBLES = {0: 0, 1: 4, 2: 6, 3: 6, 4: 8}
+
+
+def _gpkg_geoms(blobs) -> list:
+    """Shapely geometries of many GeoPackage binary blobs (None stays None)."""
+    out: list = [None] * len(blobs)
+    idx, wkbs = [], []
+    for i, blob in enumerate(blobs):
+        if blob is None:
+            continue
+        b = bytes(blob)
+        if b[:2] != b"GP":
+            raise HistoryError("site history: a stored geometry is not GeoPackage binary")
+        env = _ENVELOPE_DOUBLES.get((b[3] >> 1) & 0x07, 0)
+        idx.append(i)
+        wkbs.append(b[8 + 8 * env:])
+    if wkbs:
+        for i, g in zip(idx, shapely.from_wkb(np.array(wkbs, dtype=object))):
+            out[i] = g
+    return out
 
 
 def _gpkg_geom(blob):
@@ -894,7 +957,7 @@ def add_flight(db_path: str | Path, result_dir: str | Path, *, replace: bool = F
 
         site_rows = con.execute("SELECT module_id, geom FROM site_modules").fetchall()
         site = pd.DataFrame({"module_id": [r[0] for r in site_rows],
-                             "geometry": [_gpkg_geom(r[1]) for r in site_rows]})
+                             "geometry": _gpkg_geoms([r[1] for r in site_rows])})
         if created or site.empty:
             diff = LayoutDiff(tolerance_m=float(cfg["layout_tolerance_m"]))
         else:
@@ -906,9 +969,9 @@ def add_flight(db_path: str | Path, result_dir: str | Path, *, replace: bool = F
         new_ids = set(diff.added) if not site.empty else set(result.modules["module_id"])
         con.executemany(
             "INSERT INTO site_modules (geom, module_id, table_id, first_flight) VALUES (?, ?, ?, ?)",
-            [(_gpkg_blob(g), m, t, result.flight_id)
-             for m, t, g in zip(result.modules["module_id"], result.modules["table_id"],
-                                result.modules["geometry"]) if m in new_ids])
+            [(b, m, t, result.flight_id)
+             for m, t, b in zip(result.modules["module_id"], result.modules["table_id"],
+                                _gpkg_blobs(result.modules["geometry"])) if m in new_ids])
         power, energy = _totals(result)
         con.execute(
             'INSERT INTO flights (flight_id, site, start, start_utc, "end", conditions_json, '
@@ -929,20 +992,22 @@ def add_flight(db_path: str | Path, result_dir: str | Path, *, replace: bool = F
             "t_p95_c, t_max_c, t_min_c, t_std_k, valid_fraction, reference_c, delta_t_k, "
             "delta_t_norm_k, defect, severity, power_loss_w) "
             "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
-            [(_gpkg_blob(r["geometry"]), result.flight_id, r["module_id"], r["table_id"],
+            [(blob, result.flight_id, r["module_id"], r["table_id"],
               _f(r["t_mean_c"]), _f(r["t_median_c"]), _f(r["t_p95_c"]), _f(r["t_max_c"]),
               _f(r["t_min_c"]), _f(r["t_std_k"]), _f(r["valid_fraction"]), _f(r["reference_c"]),
               _f(r["delta_t_k"]), _f(r["delta_t_norm_k"]), r["defect"], r["severity"],
-              _f(r["power_loss_w"])) for r in m.to_dict("records")])
+              _f(r["power_loss_w"]))
+             for r, blob in zip(m.to_dict("records"), _gpkg_blobs(m["geometry"]))])
         con.executemany(
             "INSERT INTO anomalies (geom, flight_id, anomaly_id, module_id, module_ids, defect, "
             "severity, delta_t_k, delta_t_norm_k, t_max_c, power_loss_w, energy_loss_kwh_per_year, "
             "priority, confidence) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
-            [(_gpkg_blob(r["geometry"]), result.flight_id, r["anomaly_id"], r["module_id"],
+            [(blob, result.flight_id, r["anomaly_id"], r["module_id"],
               json.dumps(r["module_ids"]), r["defect"], r["severity"], _f(r["delta_t_k"]),
               _f(r["delta_t_norm_k"]), _f(r["t_max_c"]), _f(r["power_loss_w"]),
               _f(r["energy_loss_kwh_per_year"]), r["priority"], _f(r["confidence"]))
-             for r in result.anomalies.to_dict("records")])
+             for r, blob in zip(result.anomalies.to_dict("records"),
+                                _gpkg_blobs(result.anomalies["geometry"]))])
         _update_extent(con, "site_modules", [g for m, g in zip(result.modules["module_id"],
                                                                 result.modules["geometry"])
                                              if m in new_ids], now)
@@ -997,7 +1062,7 @@ def _read_flight(con, flight_id: str) -> tuple[pd.DataFrame, pd.DataFrame]:
     rows = con.execute(f"SELECT geom, {', '.join(mcols)} FROM module_results WHERE flight_id=? "
                        "ORDER BY module_id", (flight_id,)).fetchall()
     modules = pd.DataFrame([r[1:] for r in rows], columns=mcols)
-    modules["geometry"] = [_gpkg_geom(r[0]) for r in rows]
+    modules["geometry"] = _gpkg_geoms([r[0] for r in rows])
     for c in MODULE_COLUMNS:
         modules[c] = pd.to_numeric(modules[c]).astype(float)
     _as_objects(modules, ("module_id", "table_id", "defect", "severity"))
@@ -1006,7 +1071,7 @@ def _read_flight(con, flight_id: str) -> tuple[pd.DataFrame, pd.DataFrame]:
                        "ORDER BY fid", (flight_id,)).fetchall()
     anomalies = pd.DataFrame([r[1:] for r in rows], columns=acols)
     anomalies["module_ids"] = [json.loads(x) for x in anomalies["module_ids"]]
-    anomalies["geometry"] = [_gpkg_geom(r[0]) for r in rows]
+    anomalies["geometry"] = _gpkg_geoms([r[0] for r in rows])
     for c in ANOMALY_COLUMNS:
         anomalies[c] = pd.to_numeric(anomalies[c]).astype(float)
     _as_objects(anomalies, ("anomaly_id", "module_id", "defect", "severity", "priority"))
@@ -1174,7 +1239,8 @@ def module_states(modules: pd.DataFrame, anomalies: pd.DataFrame,
     for rec in anomalies.to_dict("records"):
         for m in rec["module_ids"]:
             per.setdefault(m, []).append((rec["defect"], rec["severity"], rec["delta_t_norm_k"]))
-    for rec in modules.to_dict("records"):
+    sick = modules[modules["defect"].notna()] if "defect" in modules.columns else modules.iloc[:0]
+    for rec in sick.to_dict("records"):
         d = rec.get("defect")
         if d and not any(x[0] == d for x in per.get(rec["module_id"], [])):
             per.setdefault(rec["module_id"], []).append((d, rec.get("severity"), rec["delta_t_norm_k"]))
@@ -1298,12 +1364,17 @@ def compare(before: tuple[pd.DataFrame, pd.DataFrame], after: tuple[pd.DataFrame
     mb, ab = before
     ma, aa = after
     sb, sa = module_states(mb, ab, rank), module_states(ma, aa, rank)
-    ib, ia = mb.set_index("module_id"), ma.set_index("module_id")
+    def lookup(df: pd.DataFrame) -> dict:
+        return {m: (vf, dt, tid, g) for m, vf, dt, tid, g in zip(
+            df["module_id"], df["valid_fraction"], df["delta_t_norm_k"], df["table_id"], df["geometry"])}
 
-    def imaged(idx: pd.DataFrame, m: str) -> bool:
-        if m not in idx.index:
+    ib, ia = lookup(mb), lookup(ma)
+    stb, sta = sb.to_dict("index"), sa.to_dict("index")
+
+    def imaged(idx: dict, m: str) -> bool:
+        if m not in idx:
             return False
-        vf = idx.at[m, "valid_fraction"]
+        vf = idx[m][0]
         return bool(math.isnan(vf) or vf >= min_valid)
 
     acts: dict[str, list[str]] = {}
@@ -1313,30 +1384,31 @@ def compare(before: tuple[pd.DataFrame, pd.DataFrame], after: tuple[pd.DataFrame
                 acts.setdefault(rec["module_id"], []).append(rec["action"])
 
     rows, skipped = [], []
-    for m in sorted(set(sb.index) | set(sa.index)):
+    for m in sorted(set(stb) | set(sta)):
+        b, a_ = stb.get(m), sta.get(m)
         if not (imaged(ib, m) and imaged(ia, m)):
-            skipped.append({"module_id": m, "in_before": m in ib.index, "in_after": m in ia.index,
-                            "defect_before": sb.at[m, "defect"] if m in sb.index else None,
-                            "defect_after": sa.at[m, "defect"] if m in sa.index else None})
+            skipped.append({"module_id": m, "in_before": m in ib, "in_after": m in ia,
+                            "defect_before": b["defect"] if b else None,
+                            "defect_after": a_["defect"] if a_ else None})
             continue
-        db_ = sb.at[m, "defect"] if m in sb.index else None
-        da_ = sa.at[m, "defect"] if m in sa.index else None
-        tb = sb.at[m, "delta_t_norm_k"] if m in sb.index else float(ib.at[m, "delta_t_norm_k"])
-        ta = sa.at[m, "delta_t_norm_k"] if m in sa.index else float(ia.at[m, "delta_t_norm_k"])
+        db_ = b["defect"] if b else None
+        da_ = a_["defect"] if a_ else None
+        tb = b["delta_t_norm_k"] if b else float(ib[m][1])
+        ta = a_["delta_t_norm_k"] if a_ else float(ia[m][1])
         change = classify_change(db_, float(tb), da_, float(ta), pattern_rank=rank,
                                  margin_k=float(cfg["change_margin_k"]),
                                  margin_rel=float(cfg["change_margin_rel"]))
-        a = acts.get(m, [])
-        repaired = change == "resolved" and any(_explains(x, db_) for x in a)
-        geom = ia.at[m, "geometry"] if ia.at[m, "geometry"] is not None else ib.at[m, "geometry"]
-        table = ia.at[m, "table_id"] if ia.at[m, "table_id"] is not None else ib.at[m, "table_id"]
+        acts_m = acts.get(m, [])
+        repaired = change == "resolved" and any(_explains(x, db_) for x in acts_m)
+        geom = ia[m][3] if ia[m][3] is not None else ib[m][3]
+        table = ia[m][2] if ia[m][2] is not None else ib[m][2]
         rows.append({"module_id": m, "table_id": table, "change": change,
                      "defect_before": db_, "defect_after": da_,
-                     "severity_before": sb.at[m, "severity"] if m in sb.index else None,
-                     "severity_after": sa.at[m, "severity"] if m in sa.index else None,
+                     "severity_before": _text(b["severity"]) if b else None,
+                     "severity_after": _text(a_["severity"]) if a_ else None,
                      "delta_t_norm_k_before": _num(tb), "delta_t_norm_k_after": _num(ta),
                      "repaired": bool(repaired), "suspicious": bool(change == "resolved" and not repaired),
-                     "maintenance": ",".join(a) if a else None, "geometry": geom})
+                     "maintenance": ",".join(acts_m) if acts_m else None, "geometry": geom})
     out = pd.DataFrame(rows, columns=["module_id", "table_id", "change", "defect_before",
                                       "defect_after", "severity_before", "severity_after",
                                       "delta_t_norm_k_before", "delta_t_norm_k_after", "repaired",
