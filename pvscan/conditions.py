@@ -522,7 +522,7 @@ def assign_frames(modules, frames) -> pd.DataFrame:
 
 
 def module_conditions(modules, spec, start, end, series: pd.DataFrame | None = None, frames=None,
-                      settings: Mapping | None = None) -> pd.DataFrame:
+                      settings: Mapping | None = None, *, tilt_deg: float | None = None) -> pd.DataFrame:
     """Conditions of the moment each module was imaged.
 
     Parameters
@@ -540,6 +540,10 @@ def module_conditions(modules, spec, start, end, series: pd.DataFrame | None = N
         Camera frames (:func:`read_frames`) in the modules' CRS.
     settings : Mapping, optional
         The ``[conditions]`` pipeline section.
+    tilt_deg : float, optional
+        Module tilt [deg]. With ``sky_view = "specular"`` in the settings, a modelled sky
+        is taken along the mirror direction of a nadir view, at zenith ``2 * tilt_deg``
+        (:func:`pvscan.radiometry.sky_temperature` with ``zenith_deg``).
 
     Returns
     -------
@@ -592,8 +596,12 @@ def module_conditions(modules, spec, start, end, series: pd.DataFrame | None = N
         else:
             rh = out["relative_humidity"].to_numpy(float)
             rh_arg = rh if np.all(np.isfinite(rh)) else None
+            zenith = None
+            if st.get("sky_view", "hemispherical") == "specular" and tilt_deg is not None:
+                zenith = 2.0 * float(tilt_deg)
             out["temp_sky"] = np.asarray(radiometry.sky_temperature(
-                out["temp_air"].to_numpy(float), rh_arg, band=st.get("sky_band", "camera")), dtype=float) * np.ones(n)
+                out["temp_air"].to_numpy(float), rh_arg, band=st.get("sky_band", "camera"), zenith_deg=zenith),
+                dtype=float) * np.ones(n)
     cols = ["time", "poa_global", "temp_air", "wind_speed", "temp_sky", "relative_humidity", "time_source", "frame_id"]
     return out[cols]
 

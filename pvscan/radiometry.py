@@ -669,7 +669,17 @@ def _window_sky_emissivity(temp_air_c, relative_humidity_pct, band):
     return np.clip(eps_w, 0.0, 1.0)
 
 
-def sky_temperature(temp_air_c, relative_humidity_pct=None, *, band="camera", band_um=DEFAULT_BAND_UM):
+_DIFFUSIVITY = 1.66  # Elsasser's diffusivity factor (common practice in radiative transfer)
+
+
+def _directional_emissivity(eps_hemi, zenith_deg):
+    """Sky emissivity along one zenith angle from its hemispherical value (diffusivity approximation)."""
+    cos_z = np.cos(np.radians(np.clip(np.asarray(zenith_deg, dtype=float), 0.0, 85.0)))
+    return 1.0 - (1.0 - np.asarray(eps_hemi, dtype=float)) ** (1.0 / (_DIFFUSIVITY * cos_z))
+
+
+def sky_temperature(temp_air_c, relative_humidity_pct=None, *, band="camera", band_um=DEFAULT_BAND_UM,
+                    zenith_deg=None):
     r"""Apparent temperature of a clear sky.
 
     *Broadband* (``band="broadband"``): the temperature of a black body emitting the
@@ -703,10 +713,14 @@ def sky_temperature(temp_air_c, relative_humidity_pct=None, *, band="camera", ba
       documented here).
 
     Both are hemispherical (flux) values. For a near-nadir camera over a module tilted by
-    :math:`\beta` the glass reflects the sky at a zenith angle of :math:`2\beta`; by the
-    diffusivity approximation of radiative transfer (flux transmittance = beam
-    transmittance at about 53 deg zenith) the hemispherical value fits tilts of ~20-30 deg
-    best; it underestimates the reflected sky for flatter modules (common practice).
+    :math:`\beta` the glass reflects the sky at a zenith angle of :math:`2\beta`. With
+    ``zenith_deg`` the sky is taken along that one direction instead: by the diffusivity
+    approximation of radiative transfer (the flux transmittance of a plane-parallel
+    atmosphere equals its beam transmittance along a path 1.66 times the vertical, i.e.
+    at about 53 deg zenith; Elsasser 1942, common practice) the directional emissivity is
+    :math:`\varepsilon(\theta) = 1 - (1 - \varepsilon_{hemi})^{1/(1.66 \cos\theta)}`.
+    So the hemispherical value fits tilts of ~25 deg; flatter modules reflect a colder,
+    steeper ones a warmer sky.
 
     Parameters
     ----------
@@ -719,6 +733,9 @@ def sky_temperature(temp_air_c, relative_humidity_pct=None, *, band="camera", ba
         Which sky temperature to return.
     band_um : (float, float)
         Camera band [um] for ``band="camera"``.
+    zenith_deg : array_like, optional
+        Zenith angle of the direction seen [deg] (0 = straight up; clipped at 85 deg).
+        Default: the hemispherical value.
 
     Returns
     -------
@@ -734,16 +751,22 @@ def sky_temperature(temp_air_c, relative_humidity_pct=None, *, band="camera", ba
     .. [3] S. B. Idso, "A set of equations for full spectrum and 8- to 14-um and 10.5- to
        12.5-um thermal radiation from cloudless skies", Water Resources Research 17(2),
        295-304, 1981.
+    .. [4] W. M. Elsasser, Heat Transfer by Infrared Radiation in the Atmosphere, Harvard
+       Meteorological Studies 6, 1942 (diffusivity factor 1.66).
     """
     t_air = np.asarray(temp_air_c, dtype=float)
     t_k = t_air + _ZERO_C
     if band == "broadband":
-        eps = _broadband_sky_emissivity(t_air, relative_humidity_pct)
-        return _scalar(np.clip(eps, 0.0, 1.0) ** 0.25 * t_k - _ZERO_C)
+        eps = np.clip(_broadband_sky_emissivity(t_air, relative_humidity_pct), 0.0, 1.0)
+        if zenith_deg is not None:
+            eps = _directional_emissivity(eps, zenith_deg)
+        return _scalar(eps**0.25 * t_k - _ZERO_C)
     if band != "camera":
         raise ValueError(f"band={band!r}: expected 'camera' or 'broadband'")
     key = _band_key(band_um)
     eps_w = _window_sky_emissivity(t_air, relative_humidity_pct, key)
+    if zenith_deg is not None:
+        eps_w = _directional_emissivity(eps_w, zenith_deg)
     with np.errstate(invalid="ignore"):
         l_sky = eps_w * _table(key).forward(t_k)
     return _scalar(_table(key).inverse(l_sky) - _ZERO_C)

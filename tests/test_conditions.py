@@ -297,3 +297,15 @@ def test_validity_unstable_irradiance_and_module_minimum(tmp_path):
     assert by["irradiance_change"]["value"] == pytest.approx(100 * 160 / 900)
     assert by["irradiance_min"]["value"] == 590.0
     assert math.isclose(by["wind_max"]["value"], 2.0 + 0.02 * 45)
+
+
+def test_specular_sky_view_uses_twice_the_tilt():
+    mods = make_modules([(500_000.0, 4_000_000.0)])
+    s = spec(poa_irradiance_w_m2=870.0, ambient_c=26.0, wind_m_s=2.0, relative_humidity_pct=45.0)
+    hemi = cond.module_conditions(mods, s, START, END, settings=SETTINGS, tilt_deg=10.0)
+    spec_view = cond.module_conditions(mods, s, START, END, settings={**SETTINGS, "sky_view": "specular"},
+                                       tilt_deg=10.0)
+    assert hemi["temp_sky"].iloc[0] == pytest.approx(radiometry.sky_temperature(26.0, 45.0))
+    assert spec_view["temp_sky"].iloc[0] == pytest.approx(radiometry.sky_temperature(26.0, 45.0, zenith_deg=20.0))
+    # a flat module mirrors the steep, colder part of the sky
+    assert spec_view["temp_sky"].iloc[0] < hemi["temp_sky"].iloc[0]

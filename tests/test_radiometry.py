@@ -392,3 +392,21 @@ def test_flight_radiometry_wrapper():
     assert kw["transmission"][1] == pytest.approx(rad.atmospheric_transmission(60.0, 26.0, 40.0))
     out = rad.true_from_apparent(np.array([40.0, 41.0]), **kw)
     assert np.all(out > np.array([40.0, 41.0]))  # cold sky: the true glass is warmer
+
+
+def test_directional_sky_diffusivity():
+    # Diffusivity approximation (Elsasser 1942, common practice): the hemispherical flux
+    # value equals the beam value at 1/cos(z) = 1.66, z = 52.97 deg; the zenith sky is the
+    # coldest and the sky warms toward the horizon. Hand value at the zenith:
+    # eps_z = 1 - (1 - eps_hemi)^(1/1.66).
+    z53 = math.degrees(math.acos(1 / 1.66))
+    for band in ("camera", "broadband"):
+        hemi = rad.sky_temperature(25.0, 40.0, band=band)
+        assert rad.sky_temperature(25.0, 40.0, band=band, zenith_deg=z53) == pytest.approx(hemi, abs=1e-9)
+        z = rad.sky_temperature(25.0, 40.0, band=band, zenith_deg=np.array([0.0, 30.0, 60.0, 80.0]))
+        assert np.all(np.diff(z) > 0) and z[0] < hemi < z[-1] < 25.0
+    tdp = rad.dew_point(25.0, 40.0) / 100
+    eps_h = 0.711 + 0.56 * tdp + 0.73 * tdp**2  # Berdahl & Martin (1984)
+    eps_z = 1 - (1 - eps_h) ** (1 / 1.66)
+    expect = eps_z**0.25 * (25.0 + ZERO_C) - ZERO_C
+    assert rad.sky_temperature(25.0, 40.0, band="broadband", zenith_deg=0.0) == pytest.approx(expect, abs=1e-9)
