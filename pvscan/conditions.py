@@ -38,6 +38,7 @@ import pandas as pd
 
 from pvscan import radiometry
 from pvscan.errors import ConditionsError, ValidityWarning
+from pvscan.resources import load_schema
 
 __all__ = [
     "WEATHER_COLUMNS",
@@ -48,19 +49,35 @@ __all__ = [
     "flight_conditions",
     "module_conditions",
     "check_validity",
+    "assign_frames",
+    "conditions_for_flight",
 ]
 
 logger = logging.getLogger(__name__)
 
-#: Weather series columns: name -> (pvscan name, required, plausible range, unit).
-WEATHER_COLUMNS: dict[str, tuple[str, bool, tuple[float, float], str]] = {
-    "poa_irradiance_w_m2": ("poa_global", True, (-50.0, 2000.0), "W/m2"),
-    "ambient_c": ("temp_air", True, (-80.0, 70.0), "degC"),
-    "wind_m_s": ("wind_speed", True, (0.0, 75.0), "m/s"),
-    "sky_c": ("temp_sky", False, (-120.0, 70.0), "degC"),
-    "relative_humidity_pct": ("relative_humidity", False, (0.0, 100.0), "%"),
-    "cloud_okta": ("cloud_okta", False, (0.0, 9.0), "okta"),
+_PVSCAN_NAMES = {
+    "poa_irradiance_w_m2": "poa_global",
+    "ambient_c": "temp_air",
+    "wind_m_s": "wind_speed",
+    "sky_c": "temp_sky",
+    "relative_humidity_pct": "relative_humidity",
+    "cloud_okta": "cloud_okta",
 }
+
+
+def _weather_columns() -> dict[str, tuple[str, bool, tuple[float, float], str]]:
+    schema = load_schema("weather.schema.json")
+    req = set(schema["required"])
+    return {
+        col: (_PVSCAN_NAMES[col], col in req, (float(p["minimum"]), float(p["maximum"])), p["unit"])
+        for col, p in schema["properties"].items()
+        if col != "time"
+    }
+
+
+#: Weather series columns: name -> (pvscan name, required, plausible range, unit), from
+#: ``schemas/weather.schema.json``.
+WEATHER_COLUMNS: dict[str, tuple[str, bool, tuple[float, float], str]] = _weather_columns()
 
 # spec attribute -> pvscan name
 _SPEC_KEYS = {
@@ -595,13 +612,16 @@ def module_conditions(modules, spec, start, end, series: pd.DataFrame | None = N
             out["temp_sky"] = np.full(n, fc.temp_sky)
         else:
             rh = out["relative_humidity"].to_numpy(float)
-            rh_arg = rh if np.all(np.isfinite(rh)) else None
             zenith = None
             if st.get("sky_view", "hemispherical") == "specular" and tilt_deg is not None:
                 zenith = 2.0 * float(tilt_deg)
-            out["temp_sky"] = np.asarray(radiometry.sky_temperature(
-                out["temp_air"].to_numpy(float), rh_arg, band=st.get("sky_band", "camera"), zenith_deg=zenith),
-                dtype=float) * np.ones(n)
+            kw = dict(band=st.get("sky_band", "camera"), zenith_deg=zenith)
+            t_air = out["temp_air"].to_numpy(float)
+            sky = np.asarray(radiometry.sky_temperature(t_air, None, **kw), dtype=float) * np.ones(n)
+            has_rh = np.isfinite(rh)
+            if has_rh.any():  # humidity-based model where the humidity is known
+                sky[has_rh] = radiometry.sky_temperature(t_air[has_rh], rh[has_rh], **kw)
+            out["temp_sky"] = sky
     cols = ["time", "poa_global", "temp_air", "wind_speed", "temp_sky", "relative_humidity", "time_source", "frame_id"]
     return out[cols]
 
@@ -744,3 +764,41 @@ def check_validity(conditions: FlightConditions, module_conditions: pd.DataFrame
         if st.get("warn", True):
             warnings.warn(f"flight outside acquisition limits: {msg}", ValidityWarning, stacklevel=2)
     return v
+
+
+# ---------------------------------------------------------------------------------------
+# Flight wrapper
+# ---------------------------------------------------------------------------------------
+def conditions_for_flight(flight, modules, *, gsd_m: float | None = None,
+                          settings: Mapping | None = None) -> tuple[FlightConditions, pd.DataFrame, Validity]:
+    """Flight conditions, per-module conditions and validity of a :class:`~pvscan.manifest.Flight`.
+
+    Reads ``flight.conditions.series`` and ``flight.flight.frames`` when given (frames in
+    the modules' CRS), passes ``flight.layout.tilt_deg`` for the sky view and
+    ``flight.module`` for the cell size.
+
+    Parameters
+    ----------
+    flight : pvscan.manifest.Flight
+    modules : geopandas.GeoDataFrame
+        Modules (in the ortho's CRS) as measured.
+    gsd_m : float, optional
+        Ground sampling distance of the ortho [m/px].
+    settings : Mapping, optional
+        The ``[conditions]`` pipeline section.
+
+    Returns
+    -------
+    (FlightConditions, pandas.DataFrame, Validity)
+    """
+    st = _settings(settings)
+    spec = flight.conditions
+    series = read_weather_series(spec.series) if getattr(spec, "series", None) else None
+    frames_path = getattr(flight.flight, "frames", None)
+    frames = read_frames(frames_path, modules.crs) if frames_path else None
+    fc = flight_conditions(spec, flight.flight.start, flight.flight.end, series, settings=st)
+    tilt = getattr(getattr(flight, "layout", None), "tilt_deg", None)
+    mc = module_conditions(modules, spec, flight.flight.start, flight.flight.end, series=series, frames=frames,
+                           settings=st, tilt_deg=tilt)
+    validity = check_validity(fc, mc, gsd_m=gsd_m, module_spec=flight.module, settings=st)
+    return fc, mc, validity

@@ -309,3 +309,36 @@ def test_specular_sky_view_uses_twice_the_tilt():
     assert spec_view["temp_sky"].iloc[0] == pytest.approx(radiometry.sky_temperature(26.0, 45.0, zenith_deg=20.0))
     # a flat module mirrors the steep, colder part of the sky
     assert spec_view["temp_sky"].iloc[0] < hemi["temp_sky"].iloc[0]
+
+
+def test_weather_columns_follow_schema():
+    # The plausibility ranges and required columns come from schemas/weather.schema.json.
+    from pvscan.resources import load_schema
+
+    schema = load_schema("weather.schema.json")
+    assert set(schema["required"]) == {"time"} | {c for c, v in cond.WEATHER_COLUMNS.items() if v[1]}
+    assert cond.WEATHER_COLUMNS["relative_humidity_pct"][2] == (0.0, 100.0)
+
+
+def test_sky_model_per_module_where_humidity_known(tmp_path):
+    rows = ramp_rows()
+    rows = [r + (",40" if i % 2 == 0 else ",") for i, r in enumerate(rows)]
+    p = write_csv(tmp_path / "w.csv", rows, "time,poa_irradiance_w_m2,ambient_c,wind_m_s,relative_humidity_pct")
+    df = cond.read_weather_series(p)
+    x0, y0 = 500_000.0, 4_000_000.0
+    frames = make_frames([((x0, y0, x0 + 40, y0 + 30), START + timedelta(minutes=5))])
+    mods = make_modules([(x0 + 20, y0 + 15)])
+    mc = cond.module_conditions(mods, spec(), START, END, series=df, frames=frames, settings=SETTINGS)
+    assert mc["relative_humidity"].iloc[0] == pytest.approx(40.0)  # gaps interpolated over
+    assert mc["temp_sky"].iloc[0] == pytest.approx(radiometry.sky_temperature(mc["temp_air"].iloc[0], 40.0))
+
+
+def test_conditions_for_flight(tmp_path):
+    p = write_csv(tmp_path / "w.csv", ramp_rows())
+    flight = NS(conditions=spec(series=p, sky_c=-22.0), flight=NS(start=START, end=END, frames=None),
+                layout=NS(tilt_deg=20.0), module=MODULE)
+    mods = make_modules([(500_000.0, 4_000_000.0)])
+    fc, mc, v = cond.conditions_for_flight(flight, mods, gsd_m=0.025, settings=SETTINGS)
+    assert fc.source == "series" and fc.temp_sky == -22.0
+    assert mc["poa_global"].iloc[0] == pytest.approx(850.0)
+    assert v.ok
