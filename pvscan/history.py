@@ -480,17 +480,6 @@ def _gpkg_geoms(blobs) -> list:
     return out
 
 
-def _gpkg_geom(blob):
-    if blob is None:
-        return None
-    b = bytes(blob)
-    if b[:2] != b"GP":
-        raise HistoryError("site history: a stored geometry is not GeoPackage binary")
-    flags = b[3]
-    env = _ENVELOPE_DOUBLES.get((flags >> 1) & 0x07, 0)
-    return shapely.from_wkb(b[8 + 8 * env:])
-
-
 # --------------------------------------------------------------------------------------------
 # the database
 

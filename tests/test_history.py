@@ -25,7 +25,7 @@ from shapely.geometry import Polygon, mapping
 
 from pvscan import history as H
 from pvscan.cli.main import cli
-from pvscan.errors import HistoryError, OutputError
+from pvscan.errors import HistoryError, OutputError, RegistrationWarning, ValidityWarning
 from pvscan.outputs import validate_geojson_rfc7946
 from pvscan.resources import load_schema, schema_errors
 from pvscan.settings import load_pipeline
@@ -622,7 +622,12 @@ def test_end_to_end_two_simulated_seasons(tmp_path):
         sc["conditions"] = dict(cond)
         sim = simulate_flight(sc, tmp_path / f"flight{i}", seed=5)
         out = tmp_path / f"result{i}"
-        inspect_flight(sim.manifest, out_dir=out, report=False)
+        with warnings.catch_warnings():
+            # the tiny site may fit weakly or sit at an acquisition limit: upstream stages'
+            # warnings, not the history's subject here
+            warnings.simplefilter("ignore", RegistrationWarning)
+            warnings.simplefilter("ignore", ValidityWarning)
+            inspect_flight(sim.manifest, out_dir=out, report=False)
         results.append(out)
         res = H.add_flight(db, out)
         assert res.status == "added" and res.layout.same
