@@ -70,6 +70,7 @@ __all__ = [
     "phase_correlate",
     "correlation_surface",
     "upsampled_peak",
+    "align_flight",
 ]
 
 logger = logging.getLogger(__name__)
@@ -87,6 +88,8 @@ _DEFAULTS: dict[str, Any] = {
     "highpass_sigma_m": 3.0,
     "clip_percentile": 1.0,
     "whitening": 0.7,
+    "feature": "gradient",
+    "gradient_sigma_m": 0.1,
     "upsample": 20,
     "exclusion_m": 0.35,
     "ambiguity_ratio": 0.8,
@@ -560,8 +563,22 @@ def _prepare_block(orthos, ti, tile, win, mod_geoms, cfg, f, work_gsd):
     if not hi > lo:
         return None, "no contrast"
     z = (np.clip(img, lo, hi) - lo) / (hi - lo)
-    z = np.where(valid, z - float(z[valid].mean()), 0.0)
-    zm = cov - float(cov.mean())
+    if cfg["feature"] == "gradient":
+        # edges whatever their polarity: ground may be warmer on one side of a table
+        # (sunlit) and cooler on the other (shade)
+        gs = max(float(cfg["gradient_sigma_m"]) / work_gsd, 0.5)
+        zf = np.where(valid, z, float(np.median(z[valid])))
+        z = ndimage.gaussian_gradient_magnitude(zf, gs, mode="nearest")
+        near_gap = ndimage.binary_dilation(~valid, iterations=int(math.ceil(3 * gs)) + 1)
+        ok = ~near_gap
+        if not ok.any():
+            return None, "no valid pixels away from nodata"
+        z = np.where(ok, z - float(z[ok].mean()), 0.0)
+        zm = ndimage.gaussian_gradient_magnitude(cov, gs, mode="nearest")
+        zm -= float(zm.mean())
+    else:
+        z = np.where(valid, z - float(z[valid].mean()), 0.0)
+        zm = cov - float(cov.mean())
     taper = _taper((h, w), float(cfg["max_shift_m"]) / work_gsd)
     z *= taper
     zm *= taper
@@ -755,8 +772,12 @@ def estimate_shift(orthos, modules, settings: Mapping | None = None, *,
         mad = float(np.median(np.abs(v - med))) * 1.4826 or 1.0
         vote += (float(v.max()) - med) / mad - (med - float(v.min())) / mad
         surfaces.append((region, r))
-    sign = 1.0 if vote >= 0 else -1.0
-    reg.contrast = "warmer" if sign > 0 else "cooler"
+    if cfg["feature"] == "gradient":
+        sign = 1.0  # edge strengths correlate positively whatever the contrast's polarity
+        reg.contrast = "edges"
+    else:
+        sign = 1.0 if vote >= 0 else -1.0
+        reg.contrast = "warmer" if sign > 0 else "cooler"
 
     snr_min, snr_full = float(cfg["snr_min"]), float(cfg["snr_full"])
     dfull = float(cfg["distinct_full"])
@@ -952,3 +973,69 @@ def apply_shift(modules, shift):
         if col in out.columns:
             out[col] = out[col].to_numpy(dtype=float) + d
     return out
+
+
+def align_flight(flight, settings=None, out_path=None, *, overwrite: bool = False,
+                 progress: ProgressFn | None = None):
+    """Register a flight's layout to its orthomosaic and optionally write the moved layout.
+
+    Parameters
+    ----------
+    flight : Flight
+        From :func:`pvscan.manifest.load_flight`.
+    settings : Pipeline or mapping, optional
+        A pipeline (its ``[register]`` section is used) or the section itself.
+    out_path : path-like, optional
+        GeoPackage to write: the module footprints moved onto the ortho, with all module
+        properties, in the ortho's CRS (layer ``modules``). Written to a temporary sibling
+        and renamed into place, so it is either absent or complete.
+    overwrite : bool
+        Replace an existing ``out_path``.
+    progress : callable, optional
+
+    Returns
+    -------
+    (Registration, geopandas.GeoDataFrame)
+        The registration and the moved modules.
+
+    Raises
+    ------
+    OutputError
+        ``out_path`` exists without ``overwrite``, or cannot be written.
+    """
+    import contextlib
+    import os
+    import uuid
+    from pathlib import Path
+
+    from pvscan.errors import OutputError
+    from pvscan.layout import read_layout
+    from pvscan.ortho import open_orthos
+
+    if out_path is not None:
+        out_path = Path(out_path)
+        if out_path.suffix.lower() != ".gpkg":
+            raise OutputError(f"{out_path}: the corrected layout is written as GeoPackage; use a .gpkg name")
+        if out_path.exists() and not overwrite:
+            raise OutputError(f"{out_path}: exists (use --overwrite to replace it)")
+        if not out_path.parent.is_dir():
+            raise OutputError(f"{out_path}: folder {out_path.parent} does not exist")
+    with open_orthos(flight.flight.orthos, flight.ortho) as orthos:
+        modules = read_layout(flight, orthos.crs)
+        reg = estimate_shift(orthos, modules, settings, progress=progress)
+    moved = apply_shift(modules, reg)
+    if out_path is not None:
+        tmp = out_path.with_name(f".{out_path.stem}.{uuid.uuid4().hex[:8]}.tmp.gpkg")
+        try:
+            frame = moved.reset_index(drop=True)
+            frame.to_file(tmp, layer="modules", driver="GPKG", engine="pyogrio")
+            with open(tmp, "rb+") as fh:
+                os.fsync(fh.fileno())
+            os.replace(tmp, out_path)
+        except BaseException as exc:
+            with contextlib.suppress(OSError):
+                os.unlink(tmp)
+            if isinstance(exc, OSError):
+                raise OutputError(f"{out_path}: cannot write: {exc.strerror or exc}") from None
+            raise
+    return reg, moved
