@@ -729,8 +729,9 @@ def check_validity(conditions: FlightConditions, module_conditions: pd.DataFrame
     Returns
     -------
     Validity
-        A :class:`~pvscan.errors.ValidityWarning` is issued when a check fails and the
-        section's ``warn`` is true.
+        A failed check is logged (level WARNING); a :class:`~pvscan.errors.ValidityWarning`
+        is issued too when the section's ``warn`` is true (default false: the result
+        records every check).
     """
     st = _settings(settings)
     poa_min = conditions.poa_global_min
@@ -761,7 +762,7 @@ def check_validity(conditions: FlightConditions, module_conditions: pd.DataFrame
         msg = "; ".join(f"{c['name']} {c['value']:.4g} {c['unit']} (limit {c['limit']:g})"
                         for c in checks if c["passed"] is False)
         logger.warning("flight outside acquisition limits: %s", msg)
-        if st.get("warn", True):
+        if st.get("warn", False):
             warnings.warn(f"flight outside acquisition limits: {msg}", ValidityWarning, stacklevel=2)
     return v
 

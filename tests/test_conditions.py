@@ -28,6 +28,7 @@ CRS = "EPSG:32633"
 START = datetime(2026, 6, 14, 10, 40, tzinfo=timezone(timedelta(hours=2)))
 END = datetime(2026, 6, 14, 11, 20, tzinfo=timezone(timedelta(hours=2)))
 SETTINGS = load_pipeline()["conditions"]
+LOUD = {**SETTINGS, "warn": True}
 
 
 def write_csv(path, rows, header="time,poa_irradiance_w_m2,ambient_c,wind_m_s"):
@@ -266,20 +267,19 @@ def test_validity_passes():
 
 def test_validity_fails_and_lowers_confidence():
     with pytest.warns(ValidityWarning, match="irradiance_min"):
-        v = cond.check_validity(fc_const(g=510.0), gsd_m=0.03, module_spec=MODULE, settings=SETTINGS)
+        v = cond.check_validity(fc_const(g=510.0), gsd_m=0.03, module_spec=MODULE, settings=LOUD)
     assert v.failed == ["irradiance_min"] and not v.ok
     assert v.confidence_factor == pytest.approx(510 / 600)
     with pytest.warns(ValidityWarning):
         v = cond.check_validity(fc_const(g=510.0, wind=10.0), gsd_m=0.05, module_spec=MODULE,
-                                cloud_okta=5, settings=SETTINGS)
+                                cloud_okta=5, settings=LOUD)
     assert set(v.failed) == {"irradiance_min", "wind_max", "pixels_per_cell", "cloud_cover"}
     expect = (510 / 600) * (7.8 / 10.0) * ((2.279 / 24 / 0.05) / 3.0) * (2 / 5)
     assert v.confidence_factor == pytest.approx(max(expect, SETTINGS["confidence_floor"]))
     assert v.confidence_factor == SETTINGS["confidence_floor"]  # the product falls below the floor
-    quiet = {**SETTINGS, "warn": False}
-    with warnings.catch_warnings():
+    with warnings.catch_warnings():  # the default pipeline records, it does not warn
         warnings.simplefilter("error")
-        v = cond.check_validity(fc_const(g=510.0), settings=quiet)
+        v = cond.check_validity(fc_const(g=510.0), settings=SETTINGS)
     assert v.failed == ["irradiance_min"]
 
 
@@ -291,7 +291,7 @@ def test_validity_unstable_irradiance_and_module_minimum(tmp_path):
     mc = cond.module_conditions(mods, spec(), START, END, series=df, settings=SETTINGS)
     mc.loc[0, "poa_global"] = 590.0  # a module imaged under a passing cloud
     with pytest.warns(ValidityWarning):
-        v = cond.check_validity(fc, mc, settings=SETTINGS)
+        v = cond.check_validity(fc, mc, settings=LOUD)
     assert set(v.failed) == {"irradiance_change", "irradiance_min"}
     by = {c["name"]: c for c in v.checks}
     assert by["irradiance_change"]["value"] == pytest.approx(100 * 160 / 900)
