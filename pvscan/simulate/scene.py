@@ -264,33 +264,45 @@ class Scene:
         self.h_high = h0 + fld.table_depth / max(math.cos(tilt), 1e-6) * math.sin(tilt)
 
     def in_shadow(self, s, w):
-        """True where ground at field coordinates (s, w) lies in a table's shadow or under it."""
+        """True where ground at field coordinates (s, w) lies in a table's shadow or under it.
+
+        The shadow of the table line at fraction ``lam`` up its slope (height
+        ``h = h_low + lam * (h_high - h_low)``) falls displaced by ``h * (ds, dw)``; a ground
+        point is shaded when, for the one ``lam`` that matches its ``w``, its ``s`` falls on
+        the displaced table. Only the table rows and tables the displacement can reach are
+        tried.
+        """
         fld = self.field
-        shaded = np.zeros(np.shape(s), bool)
+        s = np.asarray(s, float)
+        w = np.asarray(w, float)
+        shaded = np.zeros(s.shape, bool)
+        if s.size == 0:
+            return shaded
         dh = self.h_high - self.h_low
         den = fld.table_depth + dh * self.shadow_dw
-        reach = max(abs(self.shadow_ds), abs(self.shadow_dw)) * self.h_high
         tr0 = np.floor(w / fld.pitch).astype(np.int64)
         tb0 = np.floor(s / fld.table_step).astype(np.int64)
-        kr = int(math.ceil(reach / fld.pitch)) + 1
-        kb = int(math.ceil(reach / fld.table_step)) + 1
-        for dtr in range(-kr, kr + 1):
+
+        def offsets(coord, step, d, base):
+            ks = [np.floor((coord - h * d) / step).astype(np.int64) - base for h in (0.0, self.h_low, self.h_high)]
+            return range(int(min(k.min() for k in ks)), int(max(k.max() for k in ks)) + 1)
+
+        for dtr in offsets(w, fld.pitch, self.shadow_dw, tr0):
             tr = tr0 + dtr
             okr = (tr >= 0) & (tr < fld.n_trows)
+            if not okr.any():
+                continue
             wp = w - tr * fld.pitch
-            # under the table
-            if abs(den) > 0.1:
-                lam = (wp - self.h_low * self.shadow_dw) / den
-            else:
-                lam = np.full(np.shape(s), -1.0)
+            lam = (wp - self.h_low * self.shadow_dw) / den if abs(den) > 0.1 else np.full(s.shape, -1.0)
             okl = okr & (lam >= 0) & (lam <= 1)
             under_w = okr & (wp >= 0) & (wp <= fld.table_depth)
             h = self.h_low + np.clip(lam, 0, 1) * dh
-            for dtb in range(-kb, kb + 1):
+            for dtb in offsets(s, fld.table_step, self.shadow_ds, tb0):
                 tb = tb0 + dtb
                 okb = (tb >= 0) & (tb < fld.n_tables)
                 sp = s - tb * fld.table_step
-                shaded |= okl & okb & (sp - h * self.shadow_ds >= 0) & (sp - h * self.shadow_ds <= fld.table_len)
+                sh = sp - h * self.shadow_ds
+                shaded |= okl & okb & (sh >= 0) & (sh <= fld.table_len)
                 shaded |= under_w & okb & (sp >= 0) & (sp <= fld.table_len)
         return shaded
 
@@ -335,7 +347,8 @@ class Scene:
         idx, u, v, s, w = fld.locate(x, y)
         mod = idx >= 0
         gcfg = self.sc["ground"]
-        shade = self.in_shadow(s, w)
+        shade = np.zeros(idx.shape, bool)
+        shade[~mod] = self.in_shadow(s[~mod], w[~mod])
         sun = self.poa_mean * self.cloud_factor(x, y) / 1000.0 * gcfg["sun_rise_k"]
         temp = self.temp_air_mean + np.where(shade, gcfg["shade_rise_k"], sun) + gcfg["texture_k"] * self.texture(x, y)
         material = np.full(idx.shape, GROUND, np.int8)

@@ -219,7 +219,7 @@ def write_layout(scene, out_dir: Path) -> str:
                  for p, xy in records]
         name = "layout.geojson"
         with open(out_dir / name, "w", encoding="utf-8") as fh:
-            json.dump({"type": "FeatureCollection", "features": feats}, fh)
+            fh.write(json.dumps({"type": "FeatureCollection", "features": feats}))
         return name
     import geopandas as gpd
     from shapely.geometry import Polygon
@@ -249,7 +249,7 @@ def write_frames(scene, out_dir: Path) -> str:
                       "geometry": {"type": "Polygon", "coordinates": [_ring(tr, xy)]}})
     name = "frames.geojson"
     with open(out_dir / name, "w", encoding="utf-8") as fh:
-        json.dump({"type": "FeatureCollection", "features": feats}, fh)
+        fh.write(json.dumps({"type": "FeatureCollection", "features": feats}))
     return name
 
 
@@ -353,7 +353,7 @@ def write_truth(scene, truth: dict, out_dir: Path, extra: dict) -> tuple[str, st
                       "geometry": {"type": "Polygon", "coordinates": [_ring(tr, m["corners"][i] + off)]}})
     meta = {"layout_offset_m": [float(off[0]), float(off[1])], **extra}
     with open(out_dir / "truth.geojson", "w", encoding="utf-8") as fh:
-        json.dump({"type": "FeatureCollection", "pvscan_truth": meta, "features": feats}, fh)
+        fh.write(json.dumps({"type": "FeatureCollection", "pvscan_truth": meta, "features": feats}))
     with open(out_dir / "truth.json", "w", encoding="utf-8") as fh:
         json.dump(meta, fh, indent=2, default=str)
     return "truth.geojson", "truth.json"
