@@ -31,12 +31,13 @@ deviation convert through a second-order expansion (:func:`correct_statistics`).
 Band radiance is computed exactly from the series expansion of the Planck integral
 (:func:`band_radiance` with ``method="exact"``). The fast path (the default) is a cached
 table per band over -120..620 degC in 0.5 K steps with cubic Hermite interpolation on
-exact values *and exact derivatives*; the interpolation error is below 1e-9 relative in
-radiance, i.e. far below 1 mK in temperature over -80..400 degC (checked in the tests).
-The inverse uses the same nodes with the roles of radiance and temperature swapped
-(radiance is strictly increasing with temperature, so the inverse table is monotone).
-Values outside the table range fall back to the exact computation (Newton iteration for
-the inverse).
+exact values *and exact derivatives*. The inverse is a second Hermite table of
+temperature over 4096 equal steps of log radiance (radiance is strictly increasing with
+temperature, so the inverse is single-valued and no search is needed), its nodes solved
+by Newton iteration on the exact integral. Measured over -80..400 degC (tests): forward
+relative error < 1e-11, inverse error < 1e-8 K, i.e. far below 1 mK; about 1 s for 1e7
+conversions apparent -> true on one core. Values outside the table range fall back to
+the exact computation (Newton iteration for the inverse).
 
 References
 ----------
@@ -344,7 +345,7 @@ def band_radiance(temp_k, band_um=DEFAULT_BAND_UM, *, method: str = "lut"):
         Woodall [2]_, and its Bernoulli-number complement for small arguments), accurate
         to machine precision. ``"lut"`` (default) interpolates a cached table of exact
         values and slopes (cubic Hermite, 0.5 K steps, -120..620 degC); relative error
-        below 1e-9, exact computation outside the table range.
+        below 1e-11, exact computation outside the table range.
 
     Returns
     -------
@@ -424,8 +425,8 @@ def temperature_from_band_radiance(radiance, band_um=DEFAULT_BAND_UM, *, method:
     band_um : (float, float)
         Band limits [um].
     method : {"lut", "exact"}
-        ``"lut"`` (default): monotone cubic Hermite table of T(L) with exact nodes and
-        slopes; ``"exact"``: Newton iteration on the exact band integral.
+        ``"lut"`` (default): cubic Hermite table of T over log L with exact nodes and
+        slopes (error < 1e-8 K); ``"exact"``: Newton iteration on the exact band integral.
 
     Returns
     -------
