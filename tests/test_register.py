@@ -442,3 +442,95 @@ def test_register_settings_schema():
         pipe.replace(register={"max_shift_mm": 3})
     with pytest.raises(PipelineError, match="register"):
         pipe.replace(register={"whitening": 1.5})
+
+
+# ----------------------------------------------------------------------------------
+# simulated flights (pvscan.simulate): realistic scenes with shadows, frames, tiles
+# ----------------------------------------------------------------------------------
+def _simulate(tmp_path_factory, name, **scenario):
+    from pvscan.simulate import simulate_flight
+
+    sc = {"site": {"name": "Register test plant", "lon": 8.1, "lat": 47.3},
+          "array": {"table_rows": 3, "tables_per_row": 2}}
+    for k, v in scenario.items():
+        sc[k] = {**sc.get(k, {}), **v}
+    seed = sc.pop("seed", {}).get("value", 6)
+    return simulate_flight(sc, tmp_path_factory.mktemp(name) / "flight", seed=seed)
+
+
+def _register_simulated(res, **settings):
+    from pvscan.layout import read_layout
+    from pvscan.manifest import load_flight
+    from pvscan.ortho import open_orthos
+
+    fl = load_flight(res.manifest)
+    with open_orthos(fl.flight.orthos, fl.ortho) as orthos:
+        modules = read_layout(fl, orthos.crs)
+        with warnings.catch_warnings():
+            warnings.simplefilter("error", RegistrationWarning)
+            reg = estimate_shift(orthos, modules, settings)
+    return reg, modules
+
+
+def _drawn_offset(res):
+    import json
+
+    return json.loads(res.truth_json.read_text())["layout_offset_m"]
+
+
+@pytest.mark.parametrize(
+    "name, scenario",
+    [
+        # southern winter morning: long shadows on ground warmer than the glass
+        ("shadows_south", {"site": {"lat": -33.9}, "ground": {"sun_rise_k": 30.0},
+                           "layout": {"offset_m": [-0.35, 0.9]}}),
+        ("tiles_rotated", {"array": {"table_rows": 4, "tables_per_row": 3, "rotation_deg": 20.0},
+                           "ortho": {"tiles": [2, 2]}, "layout": {"offset_m": [-1.3, 1.1]}}),
+        ("distractors", {"distractors": {"cloud_shadows": 2, "reflections": 3, "seams": 2, "hot_objects": 3},
+                         "defects": {"hot_cell": 4, "bypassed_substring": 2, "open_module": 1},
+                         "layout": {"offset_m": [0.45, 1.45]}}),
+    ],
+)
+def test_simulated_flight_offset_recovered(tmp_path_factory, name, scenario):
+    res = _simulate(tmp_path_factory, name, **scenario)
+    off = _drawn_offset(res)           # the layout was drawn off by this; the fit undoes it
+    reg, _ = _register_simulated(res)
+    assert reg.applied
+    assert math.hypot(reg.shift_m[0] + off[0], reg.shift_m[1] + off[1]) < TOL_M, reg.message
+
+
+def test_simulated_aligned_flight_not_shifted(tmp_path_factory):
+    res = _simulate(tmp_path_factory, "aligned", layout={"offset_m": [0.0, 0.0]})
+    reg, _ = _register_simulated(res)
+    assert math.hypot(*reg.measured_m) < 0.015
+    assert not reg.applied and reg.shift_m == (0.0, 0.0)
+
+
+def test_align_command_writes_the_moved_layout(tmp_path_factory):
+    from click.testing import CliRunner
+
+    from pvscan.cli.main import cli
+
+    res = _simulate(tmp_path_factory, "cli", layout={"offset_m": [0.6, -0.8]})
+    out = res.out_dir.parent / "corrected_layout.gpkg"
+    runner = CliRunner()
+    r = runner.invoke(cli, ["align", str(res.manifest), "--out", str(out)])
+    assert r.exit_code == 0, r.output
+    assert "measured shift" in r.output and "block" in r.output
+    moved = gpd.read_file(out, layer="modules")
+    _, drawn = _register_simulated(res)
+    assert list(moved["module_id"]) == list(drawn["module_id"])
+    assert {"table_id", "fx0", "fy0"} <= set(moved.columns)
+    d = moved.geometry.centroid.to_numpy()
+    e = drawn.geometry.centroid.to_numpy()
+    np.testing.assert_allclose(shapely.get_x(d) - shapely.get_x(e), -0.6, atol=TOL_M)
+    np.testing.assert_allclose(shapely.get_y(d) - shapely.get_y(e), 0.8, atol=TOL_M)
+    np.testing.assert_allclose(moved["fx0"] - drawn["fx0"], -0.6, atol=TOL_M)
+    # an existing output is kept unless --overwrite
+    again = runner.invoke(cli, ["align", str(res.manifest), "--out", str(out)])
+    assert again.exit_code == 1
+    assert "exists" in again.output and "Traceback" not in again.output
+    assert runner.invoke(cli, ["align", str(res.manifest), "--out", str(out), "--overwrite"]).exit_code == 0
+    assert not [p for p in out.parent.iterdir() if p.name.endswith(".tmp.gpkg")]
+    bad = runner.invoke(cli, ["align", str(res.manifest), "--out", str(out.with_suffix(".geojson"))])
+    assert bad.exit_code == 1 and "GeoPackage" in bad.output
