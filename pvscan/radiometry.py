@@ -529,12 +529,12 @@ def true_from_apparent(
     if np.any(eps_x != 1.0):
         l_sensor = l_sensor + (1.0 - eps_x) * _radiance_c(export_reflected_c, band)
     l_refl = (1.0 - eps) * _radiance_c(temp_sky_c, band)
-    if t_atm is None:
-        l_obj = (l_sensor - l_refl) / eps
-    else:
-        l_obj = (l_sensor - (1.0 - tau) * _radiance_c(t_atm, band) - tau * l_refl) / (tau * eps)
-    with np.errstate(invalid="ignore"):
-        bad = ~(l_obj > 0)
+    with np.errstate(divide="ignore", invalid="ignore"):  # eps or tau = 0: no solution, NaN
+        if t_atm is None:
+            l_obj = (l_sensor - l_refl) / eps
+        else:
+            l_obj = (l_sensor - (1.0 - tau) * _radiance_c(t_atm, band) - tau * l_refl) / (tau * eps)
+        bad = ~((l_obj > 0) & np.isfinite(l_obj))
     l_obj = np.where(bad, np.nan, l_obj)
     return _scalar(_table(band).inverse(l_obj) - _ZERO_C)
 
@@ -575,12 +575,12 @@ def apparent_from_true(
         l_sensor = l_surface
     else:
         l_sensor = tau * l_surface + (1.0 - tau) * _radiance_c(t_atm, band)
-    if np.any(eps_x != 1.0):
-        l_app = (l_sensor - (1.0 - eps_x) * _radiance_c(export_reflected_c, band)) / eps_x
-    else:
-        l_app = l_sensor
-    with np.errstate(invalid="ignore"):
-        bad = ~(l_app > 0)
+    with np.errstate(divide="ignore", invalid="ignore"):  # export eps = 0: no solution, NaN
+        if np.any(eps_x != 1.0):
+            l_app = (l_sensor - (1.0 - eps_x) * _radiance_c(export_reflected_c, band)) / eps_x
+        else:
+            l_app = l_sensor
+        bad = ~((l_app > 0) & np.isfinite(l_app))
     l_app = np.where(bad, np.nan, l_app)
     return _scalar(_table(band).inverse(l_app) - _ZERO_C)
 
@@ -881,7 +881,7 @@ def effective_emissivity(emissivity, view_angle_deg=0.0):
        1999, section 1.5 (Fresnel formulae).
     """
     eps0 = np.asarray(emissivity, dtype=float)
-    th = np.radians(np.asarray(view_angle_deg, dtype=float))
+    th = np.radians(np.clip(np.asarray(view_angle_deg, dtype=float), 0.0, 90.0))
     with np.errstate(invalid="ignore", divide="ignore"):
         r0 = np.sqrt(np.clip(1.0 - eps0, 0.0, 1.0))
         n = (1.0 + r0) / (1.0 - r0)

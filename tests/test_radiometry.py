@@ -212,6 +212,12 @@ def test_no_physical_solution_gives_nan_without_warnings():
         warnings.simplefilter("error")
         out = rad.true_from_apparent(np.array([-80.0, 20.0]), emissivity=0.1, temp_sky_c=10.0)
     assert np.isnan(out[0]) and np.isfinite(out[1])
+    with warnings.catch_warnings():  # degenerate parameters give NaN, not warnings
+        warnings.simplefilter("error")
+        assert np.isnan(rad.true_from_apparent(40.0, emissivity=0.0, temp_sky_c=-20.0))
+        assert np.isnan(rad.apparent_from_true(40.0, emissivity=0.85, temp_sky_c=-20.0, export_emissivity=0.0))
+        assert np.isnan(rad.true_from_apparent(40.0, emissivity=0.85, temp_sky_c=-20.0, transmission=0.0,
+                                               temp_atm_c=20.0))
 
 
 def test_transmission_needs_path_temperature():
