@@ -349,3 +349,45 @@ def test_demo_scenario_is_valid_and_sized():
     a = sc["array"]
     n = a["table_rows"] * a["tables_per_row"] * a["rows"] * a["cols"]
     assert 3000 <= n <= 5000
+
+
+def test_shapefile_layout_reads_back_with_strings(tmp_path):
+    # Shapefile field names stop at 10 characters: string_index is written as string_idx.
+    from pvscan.layout import read_layout
+    from pvscan.manifest import load_flight
+
+    sc = dict(TINY, layout={"format": "shp"}, export={"units": "kelvin"})
+    res = simulate_flight(sc, tmp_path / "f", seed=8)
+    assert res.layout.suffix == ".shp"
+    fl = load_flight(res.manifest)
+    with rasterio.open(res.orthos[0]) as ds:
+        mods = read_layout(fl, ds.crs)
+        v = ds.read(1, masked=True)
+        assert 250.0 < float(v.min()) and float(v.max()) < 360.0       # kelvin
+    truth = {f["properties"]["module_id"]: f["properties"] for f in json.loads(res.truth.read_text())["features"]}
+    assert len(mods) == len(truth)
+    for _, r in mods.iterrows():
+        t = truth[r["module_id"]]
+        assert (r["string_id"], int(r["string_index"])) == (t["string_id"], t["string_index"])
+
+
+def test_distractors_change_only_what_they_should():
+    # A mosaic seam adds its step to the apparent temperature inside its rectangle and
+    # nothing elsewhere; a cloud shadow lowers the true module temperature by
+    # depth * G / U at its centre (Faiman with the shaded irradiance).
+    base = _quiet(camera={"psf_sigma_px": 0.0, "netd_k": 0.0}, ortho={"nodata_border_m": 0.0})
+    plain = build_scene(base, 9)
+    seamy = build_scene(dict(base, distractors={"seams": 1}), 9)
+    r0, r1, c0, c1, step = seamy.seams[0]
+    a = plain.render_block(0, 0, plain.height, plain.width)
+    b = seamy.render_block(0, 0, plain.height, plain.width)
+    inside = np.zeros(a.shape, bool)
+    inside[r0:r1, c0:c1] = True
+    assert np.allclose((b - a)[inside], step, atol=1e-6)
+    assert np.allclose((b - a)[~inside], 0.0, atol=1e-6)
+    cloudy = build_scene(dict(base, distractors={"cloud_shadows": 1, "cloud_shadow_depth": 0.3}), 9)
+    c = cloudy.clouds[0]
+    f = cloudy.cloud_factor(cloudy.field.modules["cx"], cloudy.field.modules["cy"])
+    expected = pvlib.temperature.faiman(cloudy.poa * f, cloudy.temp_air, cloudy.wind)
+    assert np.allclose(cloudy.temp_healthy, expected, atol=0.01)
+    assert f.min() < 1.0 and f.min() >= 1.0 - c.amp - 1e-12
