@@ -19,10 +19,12 @@ flat whatever the size of the ortho.
 """
 from __future__ import annotations
 
+import contextlib
 import logging
 import math
+import threading
 import warnings
-from collections.abc import Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from os import PathLike
 from pathlib import Path
@@ -382,6 +384,44 @@ class OrthoSet:
             raise OrthoError(f"{self.tiles[tile_index].path}: ortho is closed")
         with self._env():
             return _read_into(ds, self.tiles[tile_index], _as_window(window))
+
+    @contextlib.contextmanager
+    def reader(self) -> Iterator[Callable[[int, Any], np.ndarray]]:
+        """A thread-safe ``read(tile_index, window)`` for worker threads.
+
+        rasterio datasets must not be shared between threads, so each thread that calls
+        the function opens its own handles (lazily); all are closed when the context
+        ends. GDAL's block cache is shared (and bounded) across them.
+
+        Yields
+        ------
+        callable
+            ``read(tile_index, window) -> float32 ndarray`` [degC], as :meth:`read`.
+        """
+        local = threading.local()
+        opened: list[Any] = []
+        lock = threading.Lock()
+
+        def read(tile_index: int, window: Any) -> np.ndarray:
+            handles = getattr(local, "handles", None)
+            if handles is None:
+                handles = local.handles = {}
+            ds = handles.get(tile_index)
+            tile = self.tiles[tile_index]
+            with self._env():
+                if ds is None:
+                    with warnings.catch_warnings():
+                        warnings.simplefilter("ignore", NotGeoreferencedWarning)
+                        ds = handles[tile_index] = rasterio.open(tile.path)
+                    with lock:
+                        opened.append(ds)
+                return _read_into(ds, tile, _as_window(window))
+
+        try:
+            yield read
+        finally:
+            for ds in opened:
+                ds.close()
 
     def read_raw(self, tile_index: int, window: Any) -> np.ndarray:
         """Read a window of raw band values without conversion (window inside the raster)."""

@@ -376,9 +376,12 @@ def _measure(data, transform, fr, grid, margins, quantum_k, index=None) -> _Bloc
     lab *= good
     labg = lab
     del lab
-    vfill = float(vals[np.argmax(good)])
-    np.copyto(vals, vfill, where=~good)
-    del good
+    # ... with in-range values, so their keys stay inside group 0
+    notgood = ~good
+    np.copyto(vals, float(vals[np.argmax(good)]), where=notgood)
+    np.copyto(u, 0.5, where=notgood)
+    np.copyto(v, 0.5, where=notgood)
+    del good, notgood
 
     # 3. counts, means and standard deviations by label (two passes: no cancellation)
     n_valid = np.bincount(labg, minlength=m + 1)
@@ -403,19 +406,19 @@ def _measure(data, transform, fr, grid, margins, quantum_k, index=None) -> _Bloc
     kt = np.int32 if kbits <= 31 else np.int64
     q = q.astype(kt)
     del vals
+    # measured pixels have mu <= u <= 1 - mu, so floor(u * n) <= n - 1 unless mu == 0
     u *= n_along
     ci = u.astype(kt)
     del u
-    np.maximum(ci, 0, out=ci)
-    np.minimum(ci, n_along - 1, out=ci)
+    if mu <= 0.0:
+        np.minimum(ci, n_along - 1, out=ci)
     sk = (v * nsub).astype(kt)
-    np.maximum(sk, 0, out=sk)
-    np.minimum(sk, nsub - 1, out=sk)
     v *= n_across
     cj = v.astype(kt)
     del v
-    np.maximum(cj, 0, out=cj)
-    np.minimum(cj, n_across - 1, out=cj)
+    if mv <= 0.0:
+        np.minimum(sk, nsub - 1, out=sk)
+        np.minimum(cj, n_across - 1, out=cj)
     labk = labg.astype(kt)
     del labg
 
@@ -544,7 +547,9 @@ class _Accumulator:
         self.sub_p95 = np.full((n, nsub), np.nan, np.float32)
 
     def merge(self, tile: int, r: _BlockResult) -> None:
-        better = r.n_valid > self.best[r.index]
+        # most valid pixels wins; ties go to the lower tile index, whatever the merge order
+        best = self.best[r.index]
+        better = (r.n_valid > best) | ((r.n_valid == best) & (tile < self.tile[r.index]))
         if not better.any():
             return
         gi = r.index[better]
@@ -582,6 +587,7 @@ def zonal_stats(
     shift: tuple[float, float] = (0.0, 0.0),
     progress: Callable[[str, int, int], None] | None = None,
     scheduler: str | None = None,
+    workers: int | None = None,
     prefetch: bool = True,
 ) -> ZonalStats:
     """Apparent-temperature statistics of every module, cell and substring.
@@ -607,9 +613,13 @@ def zonal_stats(
         None: the single-machine block loop (no dask needed). Otherwise blocks run as
         ``dask.delayed`` tasks on that dask scheduler ("dask" = dask's default), each
         opening the file itself.
+    workers : int, optional
+        Threads of the single-machine path (default ``[zonal] workers``). With more than
+        one, blocks are read and reduced on a thread pool (GDAL decoding and numpy's
+        heavy loops release the GIL); results are identical to one thread.
     prefetch : bool
-        Single-machine loop only: read the next block on a helper thread while the
-        current one is reduced (GDAL decoding and numpy sorting release the GIL).
+        One worker only: read the next block on a helper thread while the current one
+        is reduced.
 
     Returns
     -------
@@ -628,6 +638,7 @@ def zonal_stats(
     mv = float(cfg.get("edge_margin_v", 0.0))
     block_px = int(cfg.get("block_px", 1024))
     quantum_k = float(cfg.get("quantum_k", 0.01))
+    workers = int(cfg.get("workers", 1) if workers is None else workers)
     grid = _grid(module_spec)
     fr = _frames(modules, shift)
     n = len(fr)
@@ -645,7 +656,19 @@ def zonal_stats(
         def transform_of(job):
             return tiles[job.tile].window_transform(job.window)
 
-        if prefetch and total > 1:
+        if workers > 1 and total > 1:
+            # blocks on a pool of threads, each with its own dataset handles; numpy and
+            # GDAL release the GIL in the heavy parts. Results are merged in job order.
+            def task(job):
+                data = read(job.tile, job.window)
+                return _measure(data, transform_of(job), fr[job.modules], grid, margins, quantum_k, job.modules)
+
+            with orthos.reader() as read, ThreadPoolExecutor(workers, thread_name_prefix="pvscan-zonal") as pool:
+                for k, (job, r) in enumerate(zip(jobs, pool.map(task, jobs))):
+                    acc.merge(job.tile, r)
+                    if progress is not None:
+                        progress("zonal", k + 1, total)
+        elif prefetch and total > 1:
             with ThreadPoolExecutor(max_workers=1, thread_name_prefix="pvscan-read") as pool:
                 nxt = pool.submit(orthos.read, jobs[0].tile, jobs[0].window)
                 for k, job in enumerate(jobs):

@@ -182,7 +182,9 @@ def test_block_size_prefetch_and_dask_agree(scene, module_spec):
         small = zonal_stats(o, mods, module_spec, _settings(block_px=64), prefetch=False)
         small_pf = zonal_stats(o, mods, module_spec, _settings(block_px=64), prefetch=True)
         dsk = zonal_stats(o, mods, module_spec, _settings(block_px=64), scheduler="synchronous")
-    for other in (small, small_pf, dsk):
+        pool = zonal_stats(o, mods, module_spec, _settings(block_px=64), workers=3)
+        dsk_threads = zonal_stats(o, mods, module_spec, _settings(block_px=64), scheduler="threads")
+    for other in (small, small_pf, dsk, pool, dsk_threads):
         pd.testing.assert_frame_equal(big.table, other.table)
         for name in ("cell_median", "cell_p95", "cell_count", "sub_median", "sub_p95"):
             np.testing.assert_array_equal(getattr(big, name), getattr(other, name))
@@ -274,13 +276,15 @@ def test_overlapping_tiles_best_tile_wins(write_tif, make_modules, module_spec):
     assert t["tile"].iloc[2] == 0 and t["valid_fraction"].iloc[2] == pytest.approx(1.0)
 
 
-def test_equal_coverage_tie_keeps_first_tile(write_tif, make_modules, module_spec):
+@pytest.mark.parametrize("workers", [1, 3])
+def test_equal_coverage_tie_keeps_first_tile(write_tif, make_modules, module_spec, workers):
     a = write_tif("t0.tif", np.full((80, 80), 21.0, "float32"))
     b = write_tif("t1.tif", np.full((80, 80), 22.0, "float32"))
-    mods = make_modules(ORIGIN[0] + 1.0, ORIGIN[1] - 2.0)
+    mods = make_modules(ORIGIN[0] + np.array([1.0, 1.3]), ORIGIN[1] - np.array([1.3, 3.6]), [0.0, 90.0])
     with open_orthos([a, b]) as o:
-        zs = zonal_stats(o, mods, module_spec, _settings())
-    assert zs.table["tile"].iloc[0] == 0 and zs.table["t_median_c"].iloc[0] == pytest.approx(21.0)
+        zs = zonal_stats(o, mods, module_spec, _settings(block_px=64), workers=workers)
+    assert zs.table["tile"].tolist() == [0, 0]
+    assert zs.table["t_median_c"].tolist() == pytest.approx([21.0, 21.0])
 
 
 def test_half_cut_grid_and_pipeline_settings(write_tif, make_modules, module_spec_half_cut):
