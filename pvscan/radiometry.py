@@ -77,6 +77,7 @@ __all__ = [
     "effective_emissivity",
     "correct_mean_std",
     "correct_statistics",
+    "temperature_uncertainty",
     "flight_radiometry",
 ]
 
@@ -1030,6 +1031,55 @@ def correct_statistics(
         m = np.asarray(stats[mean_key], dtype=float)
         out[mean_key] = true_from_apparent(m, **params_for(m.ndim))
     return out
+
+
+def temperature_uncertainty(temp_apparent_c, *, emissivity_sd=0.02, temp_sky_sd_k=10.0,
+                            transmission_sd=0.0, **radiometric):
+    r"""Standard uncertainty of the true temperature from uncertain radiometric inputs.
+
+    First-order propagation (GUM, JCGM 100:2008, law of propagation of uncertainty) for
+    independent inputs: :math:`u_T^2 = \sum_i (\partial T / \partial x_i)^2 u_{x_i}^2`,
+    partial derivatives by central differences of :func:`true_from_apparent`. The defaults,
+    0.02 in emissivity and 10 K in sky temperature, are typical for glass and an estimated
+    clear sky (common practice). Differences between neighbouring modules imaged under the
+    same conditions are far less uncertain than absolute temperatures: these errors are
+    common to both.
+
+    Parameters
+    ----------
+    temp_apparent_c : array_like
+        Apparent temperature [degC].
+    emissivity_sd : float
+        Standard uncertainty of the emissivity [-].
+    temp_sky_sd_k : float
+        Standard uncertainty of the sky temperature [K].
+    transmission_sd : float
+        Standard uncertainty of the transmission [-] (needs ``temp_atm_c``).
+    **radiometric
+        Keywords of :func:`true_from_apparent` (``emissivity`` and ``temp_sky_c`` required).
+
+    Returns
+    -------
+    numpy.ndarray or float
+        Standard uncertainty of the true temperature [K].
+
+    References
+    ----------
+    .. [1] JCGM 100:2008, Evaluation of measurement data - Guide to the expression of
+       uncertainty in measurement (GUM), section 5.1.
+    """
+    t = np.asarray(temp_apparent_c, dtype=float)
+    var = np.zeros_like(np.asarray(true_from_apparent(t, **radiometric), dtype=float))
+    steps = {"emissivity": (emissivity_sd, 1e-4), "temp_sky_c": (temp_sky_sd_k, 1e-2),
+             "transmission": (transmission_sd, 1e-4)}
+    for key, (sd, h) in steps.items():
+        if sd == 0.0:
+            continue
+        base = np.asarray(radiometric.get(key, 1.0), dtype=float)
+        hi = true_from_apparent(t, **{**radiometric, key: base + h})
+        lo = true_from_apparent(t, **{**radiometric, key: base - h})
+        var = var + ((np.asarray(hi) - np.asarray(lo)) / (2 * h) * sd) ** 2
+    return _scalar(np.sqrt(var))
 
 
 # ---------------------------------------------------------------------------------------

@@ -416,3 +416,18 @@ def test_directional_sky_diffusivity():
     eps_z = 1 - (1 - eps_h) ** (1 / 1.66)
     expect = eps_z**0.25 * (25.0 + ZERO_C) - ZERO_C
     assert rad.sky_temperature(25.0, 40.0, band="broadband", zenith_deg=0.0) == pytest.approx(expect, abs=1e-9)
+
+
+def test_uncertainty_against_monte_carlo():
+    # GUM first-order propagation (JCGM 100:2008) against a seeded Monte Carlo propagation
+    # of distributions (JCGM 101:2008): same standard uncertainty within 3 %.
+    rng = np.random.default_rng(2026)
+    n = 200_000
+    eps = rng.normal(0.85, 0.02, n)
+    sky = rng.normal(-30.0, 10.0, n)
+    mc = rad.true_from_apparent(45.0, emissivity=eps, temp_sky_c=sky).std()
+    gum = rad.temperature_uncertainty(45.0, emissivity=0.85, temp_sky_c=-30.0)
+    assert gum == pytest.approx(mc, rel=0.03)
+    # with eps = 1 the glass reflects nothing: the sky's uncertainty does not matter
+    only_sky = rad.temperature_uncertainty(45.0, emissivity=1.0, temp_sky_c=-30.0, emissivity_sd=0.0)
+    assert only_sky == pytest.approx(0.0, abs=1e-6)
