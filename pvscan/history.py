@@ -1314,6 +1314,16 @@ def _event_between(event_date: str, start_before: datetime, start_after: datetim
 
 
 # which actions can explain that a defect pattern disappeared
+def _moved_m(a, b) -> float:
+    """Geodesic distance [m] between the centroids of a module's two footprints (lon/lat)."""
+    if a is None or b is None:
+        return math.nan
+    from pyproj import Geod
+
+    ca, cb = a.centroid, b.centroid
+    return float(Geod(ellps="WGS84").inv(ca.x, ca.y, cb.x, cb.y)[2])
+
+
 def _explains(action: str, defect: str | None) -> bool:
     if action in ("repair", "replace"):
         return True
@@ -1344,7 +1354,9 @@ def compare(before: tuple[pd.DataFrame, pd.DataFrame], after: tuple[pd.DataFrame
         One row per module with an anomaly in either flight that was imaged in both: module_id,
         table_id, change, defect_before, defect_after, severity_before, severity_after,
         delta_t_norm_k_before [K], delta_t_norm_k_after [K], repaired, suspicious, maintenance
-        (actions between the flights), geometry (lon/lat). Modules with an anomaly that were
+        (actions between the flights), moved_m (centroid distance of the module's footprints in
+        the two flights [m]; large values mean a changed layout, not the same place), geometry
+        (lon/lat, the later flight's footprint). Modules with an anomaly that were
         not imaged (or barely) in the other flight are in ``.attrs["not_compared"]``.
     """
     cfg = _settings(settings)
@@ -1397,11 +1409,12 @@ def compare(before: tuple[pd.DataFrame, pd.DataFrame], after: tuple[pd.DataFrame
                      "severity_after": _text(a_["severity"]) if a_ else None,
                      "delta_t_norm_k_before": _num(tb), "delta_t_norm_k_after": _num(ta),
                      "repaired": bool(repaired), "suspicious": bool(change == "resolved" and not repaired),
-                     "maintenance": ",".join(acts_m) if acts_m else None, "geometry": geom})
+                     "maintenance": ",".join(acts_m) if acts_m else None,
+                     "moved_m": _moved_m(ib[m][3], ia[m][3]), "geometry": geom})
     out = pd.DataFrame(rows, columns=["module_id", "table_id", "change", "defect_before",
                                       "defect_after", "severity_before", "severity_after",
                                       "delta_t_norm_k_before", "delta_t_norm_k_after", "repaired",
-                                      "suspicious", "maintenance", "geometry"])
+                                      "suspicious", "maintenance", "moved_m", "geometry"])
     out.attrs["not_compared"] = skipped
     return out
 
@@ -1469,7 +1482,7 @@ def compare_flights(db_path: str | Path, flight_from: str | None = None, flight_
     for rec in df.to_dict("records"):
         g = rec.pop("geometry")
         props = {k: (None if isinstance(v, float) and math.isnan(v) else v) for k, v in rec.items()}
-        for k in ("delta_t_norm_k_before", "delta_t_norm_k_after"):
+        for k in ("delta_t_norm_k_before", "delta_t_norm_k_after", "moved_m"):
             if props[k] is not None:
                 props[k] = round(float(props[k]), 3)
         features.append({"type": "Feature", "id": rec["module_id"],

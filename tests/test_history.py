@@ -414,7 +414,9 @@ def test_layout_difference_is_reported(site, tmp_path):
     moved = write_result(tmp_path / "r_moved", flight_id="HF-2026-10", start="2026-10-02T10:00:00+02:00",
                          end="2026-10-02T10:40:00+02:00", conditions=SPRING, anomalies=[
                              {"module_id": "T01-R1-C02", "defect": "hot_cell", "severity": "repair",
-                              "dtn": 16.5, "loss": 25}],
+                              "dtn": 16.5, "loss": 25},
+                             {"module_id": "T02-R2-C06", "defect": "hot_cell", "severity": "monitor",
+                              "dtn": 9.0, "loss": 10}],
                          seed=9, drop=("T01-R1-C01",), move={"T02-R2-C06": (1.5, 0.0)},
                          valid={"T02-R2-C01": 0.2})
     H.add_flight(site["db"], site["b"])
@@ -432,6 +434,9 @@ def test_layout_difference_is_reported(site, tmp_path):
     assert nc == {"T01-R1-C01", "T02-R2-C01"}
     assert "T01-R1-C01" not in p and "T02-R2-C01" not in p
     assert p["T01-R1-C02"]["change"] == "persisting"
+    assert p["T01-R1-C02"]["moved_m"] == pytest.approx(0.0, abs=1e-6)
+    assert p["T02-R2-C06"]["change"] == "new"
+    assert p["T02-R2-C06"]["moved_m"] == pytest.approx(1.5, abs=0.01)  # pyproj.Geod vs fixture
     assert "moved more than" in H.list_flights(site["db"])["layout"].iloc[-1]
 
 
