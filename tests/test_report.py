@@ -636,3 +636,22 @@ def test_summary_of_a_simulated_flight(inspected):
     row = next(s for s in lines if s.strip().startswith("1 "))
     assert first["module_id"] in row
     assert any("layout shifted" in s for s in lines)
+
+
+def test_map_palette_keeps_marker_colours_exact():
+    """Quantising the map keeps each severity colour and white exactly (a fixed palette)."""
+    from PIL import Image
+
+    from pvscan.report._figures import INK, SEVERITY_STYLE
+    from pvscan.report._images import figure_palette, quantise_png
+
+    pal = figure_palette("inferno", accents=[v["color"] for v in SEVERITY_STYLE.values()], inks=(INK,))
+    colours = [(255, 255, 255)] + [tuple(int(v["color"][i:i + 2], 16) for i in (1, 3, 5))
+                                   for v in SEVERITY_STYLE.values()]
+    src = np.zeros((8, 8 * len(colours), 3), dtype=np.uint8)
+    for k, c in enumerate(colours):
+        src[:, 8 * k:8 * (k + 1)] = c
+    buf = io.BytesIO()
+    Image.fromarray(src).save(buf, format="PNG")
+    out = np.asarray(Image.open(io.BytesIO(quantise_png(buf.getvalue(), pal))).convert("RGB"))
+    assert np.array_equal(out, src)

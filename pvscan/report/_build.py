@@ -17,8 +17,8 @@ import pandas as pd
 
 from pvscan.errors import PvscanError
 from pvscan.report import _figures as figs
-from pvscan.report._images import (Palette, colour_window, module_window, png_data_uri, quantise_png,
-                                   render_crop)
+from pvscan.report._images import (Palette, colour_window, figure_palette, module_window, png_data_uri,
+                                   quantise_png, render_crop)
 from pvscan.report._raster import ThermalView, open_thermal
 from pvscan.report._result import SEVERITIES, ResultData, get_path, load_result, validity_checks
 
@@ -275,7 +275,11 @@ def _header(data: ResultData, totals: dict, valid_ok, now: str) -> str:
                           if _isnum(totals["yearly_cost"]) and totals["currency"] else ""),
          _fmt(totals["energy_loss_kwh_per_year"] / 1000.0, 2, "MWh/yr"), ""),
     ]
-    figs_html = "".join(f'<div class="figure {c}"><div class="v">{_e(v)}</div><div class="k">{_e(k)}</div></div>'
+    def _value(v: str) -> str:  # the unit in a smaller size
+        num, _, unit = v.partition(" ")
+        return f"{_e(num)} <small>{_e(unit)}</small>" if unit else _e(num)
+
+    figs_html = "".join(f'<div class="figure {c}"><div class="v">{_value(v)}</div><div class="k">{_e(k)}</div></div>'
                         for k, v, c in items)
     figs_html += (f'<div class="figure"><div class="v"><span class="verdict {verdict[0]}">{verdict[1]}'
                   f'</span></div><div class="k">acquisition conditions</div></div>')
@@ -690,6 +694,9 @@ def _build(data: ResultData, view, modules_gdf, cfg: dict, notes: list[str], pro
         cmap=palette.name,
         vmin=site_window[0], vmax=site_window[1], north_deg=geo.north_deg(), dpi=dpi,
         n_labels=int(cfg["overview_labels"]), image_label=img_label)
+    overview = quantise_png(overview, figure_palette(
+        palette.name, accents=[figs.SEVERITY_STYLE[s]["color"] for s in SEVERITIES],
+        inks=(figs.INK, figs.MUTED, "#000000")))
 
     # ---- cards
     size = int(cfg["crop_px"] if len(an) <= int(cfg["many_anomalies"]) else cfg["crop_px_many"])
@@ -737,7 +744,7 @@ def _build(data: ResultData, view, modules_gdf, cfg: dict, notes: list[str], pro
         f'''<section id="overview"><h2>Site map</h2>
 <p class="lead">{'Thermal orthomosaic' if image is not None else 'Module temperatures'} with module outlines;
 anomalies marked by severity, the first {int(cfg["overview_labels"])} labelled with their priority.</p>
-{_img(png_data_uri(quantise_png(overview)), "site overview map", "map")}{notes_html}</section>''',
+{_img(png_data_uri(overview), "site overview map", "map")}{notes_html}</section>''',
         _counts_section(data),
         _worklist_section(data),
         f'''<section id="cards" class="sheet"><h2>Anomaly cards</h2>

@@ -20,8 +20,8 @@ SEVERITY_STYLE = {
     "repair": {"color": "#1f6fd0", "marker": "s", "label": "repair: schedule"},
     "monitor": {"color": "#1e9e86", "marker": "o", "label": "monitor: watch"},
 }
-_INK = "#1d2733"
-_MUTED = "#7a8593"
+INK = _INK = "#1d2733"
+MUTED = _MUTED = "#7a8593"
 _HEALTHY = "#9aa7b6"
 
 
@@ -172,7 +172,7 @@ def overview_png(*, extent, image: np.ndarray | None, module_geoms, module_value
     bx, by = xmin + 0.03 * width, ymin + 0.04 * height
     bh = 0.012 * max(height, width * 0.4)
     ax.add_patch(Rectangle((bx - 0.01 * width, by - 0.7 * bh), bar + 0.02 * width, 3.9 * bh,
-                           facecolor=(1, 1, 1, 0.8), edgecolor="none", zorder=7))
+                           facecolor="white", edgecolor="none", zorder=7))
     for k in range(4):
         ax.add_patch(Rectangle((bx + k * bar / 4, by), bar / 4, bh, facecolor=_INK if k % 2 == 0
                                else "white", edgecolor=_INK, linewidth=0.6, zorder=8))
@@ -186,7 +186,7 @@ def overview_png(*, extent, image: np.ndarray | None, module_geoms, module_value
     ux, uy = math.sin(th), math.cos(th)
     from matplotlib.patches import Circle
 
-    ax.add_patch(Circle((cx, cy + 0.1 * length), 0.85 * length, facecolor=(1, 1, 1, 0.75), edgecolor="none",
+    ax.add_patch(Circle((cx, cy + 0.1 * length), 0.85 * length, facecolor="white", edgecolor="none",
                         zorder=7))
     ax.add_patch(FancyArrow(cx - ux * length / 2, cy - uy * length / 2, ux * length, uy * length,
                             width=length * 0.12, head_width=length * 0.42, head_length=length * 0.4,

@@ -15,8 +15,8 @@ from collections.abc import Iterable, Sequence
 import numpy as np
 from PIL import Image, ImageDraw
 
-__all__ = ["Palette", "render_crop", "png_data_uri", "colour_window", "module_window", "colourbar_png",
-           "quantise_png"]
+__all__ = ["Palette", "render_crop", "png_data_uri", "colour_window", "module_window", "quantise_png",
+           "figure_palette"]
 
 _LEVELS = 240
 IDX_NAN = 250
@@ -176,22 +176,56 @@ def render_crop(values: np.ndarray, extent, palette: Palette, vmin: float, vmax:
     return buf.getvalue()
 
 
-def quantise_png(png: bytes, colours: int = 256) -> bytes:
-    """Re-encode an RGB(A) PNG (e.g. a matplotlib figure) with a palette: smaller file."""
-    im = Image.open(io.BytesIO(png)).convert("RGB")
-    q = im.quantize(colors=colours, method=Image.Quantize.MEDIANCUT, dither=Image.Dither.NONE)
+def _hex(h: str) -> tuple[int, int, int]:
+    return tuple(int(h[i:i + 2], 16) for i in (1, 3, 5))
+
+
+def _blend(c1, c2, n: int) -> list[tuple[int, int, int]]:
+    a, b = np.asarray(c1, float), np.asarray(c2, float)
+    return [tuple(int(round(v)) for v in a + (b - a) * t) for t in np.linspace(0.0, 1.0, n)]
+
+
+def figure_palette(cmap_name: str, accents=(), inks=()) -> Image.Image:
+    """A fixed 256-colour palette for a map figure: white, each accent colour blended toward
+    white and black (marker fills and their anti-aliased edges), a ramp from white to each
+    ink (text, lines), and the colour map in the remaining entries."""
+    import matplotlib
+
+    cmap = matplotlib.colormaps[cmap_name]
+    accents, inks = list(accents), list(inks)
+    cols = [(255, 255, 255)]
+    for acc in accents:  # 10 entries each
+        cols += _blend(_hex(acc), (255, 255, 255), 8)[:-1] + _blend(_hex(acc), (0, 0, 0), 4)[1:]
+    for ink in inks:  # 12 entries each
+        cols += _blend((255, 255, 255), _hex(ink), 13)[1:]
+    n_map = 256 - len(cols)
+    if n_map < 64:
+        raise ValueError("figure_palette: too many accent and ink colours")
+    cols += [tuple(int(round(c * 255)) for c in cmap(x)[:3]) for x in np.linspace(0.0, 1.0, n_map)]
+    pal = Image.new("P", (1, 1))
+    pal.putpalette([v for c in cols for v in c])
+    return pal
+
+
+def quantise_png(png: bytes, palette: Image.Image) -> bytes:
+    """Re-encode an RGB(A) PNG (a matplotlib figure) on a fixed palette: about 3x smaller.
+
+    A fixed palette keeps rare colours (small markers) exact, which an adaptive
+    quantiser would merge into their neighbours.
+    """
+    rgb = np.asarray(Image.open(io.BytesIO(png)).convert("RGB"), dtype=np.int32)
+    pal = np.asarray(palette.getpalette()[:768], dtype=np.int32).reshape(-1, 3)
+    packed = (rgb[..., 0] << 16) | (rgb[..., 1] << 8) | rgb[..., 2]
+    uniq, inverse = np.unique(packed.reshape(-1), return_inverse=True)
+    ucol = np.stack([(uniq >> 16) & 255, (uniq >> 8) & 255, uniq & 255], axis=1)
+    nearest = np.empty(len(uniq), dtype=np.uint8)
+    for i in range(0, len(uniq), 8192):  # exact nearest palette entry, in bounded chunks
+        d = ((ucol[i:i + 8192, None, :] - pal[None, :, :]) ** 2).sum(axis=2)
+        nearest[i:i + 8192] = np.argmin(d, axis=1)
+    q = Image.fromarray(nearest[inverse].reshape(packed.shape))
+    q.putpalette(pal.reshape(-1).astype(np.uint8).tolist())
     buf = io.BytesIO()
     q.save(buf, format="PNG", optimize=True)
-    return buf.getvalue()
-
-
-def colourbar_png(palette: Palette, width: int = 160, height: int = 10) -> bytes:
-    """A horizontal colour-bar strip (low temperatures left) as PNG bytes."""
-    row = np.linspace(0, _LEVELS - 1, width).round().astype(np.uint8)
-    img = Image.fromarray(np.repeat(row[None, :], height, axis=0))
-    img.putpalette(palette.flat)
-    buf = io.BytesIO()
-    img.save(buf, format="PNG", optimize=True)
     return buf.getvalue()
 
 
