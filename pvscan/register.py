@@ -532,11 +532,37 @@ class _BlockData:
     tile: int
     x: float
     y: float
-    spec: np.ndarray
     lin: np.ndarray  # 2x2: (dcol, drow) work px -> (dx, dy) m
     radius_px: float
-    pos: tuple[float, float] = (0.0, 0.0)
-    neg: tuple[float, float] = (0.0, 0.0)
+    vote: float = 0.0
+    # sign -> (snr, distinctness, at_limit, [(row, col, height, row_refined, col_refined), ...])
+    peaks: dict = field(default_factory=dict)
+    record: BlockShift | None = None
+
+
+_MAX_CANDIDATES = 6
+
+
+def _analyse_block(bd: _BlockData, spec: np.ndarray, cfg: Mapping, signs) -> None:
+    """Peaks of one block's correlation surface, refined at once (the spectrum is dropped
+    afterwards, so memory does not grow with the number of blocks)."""
+    surf = scipy.fft.ifft2(spec, workers=1).real
+    region, r = _search_region(surf, bd.radius_px)
+    v = region[np.isfinite(region)]
+    med = float(np.median(v))
+    mad = float(np.median(np.abs(v - med))) * 1.4826 or 1.0
+    bd.vote = (float(v.max()) - med) / mad - (med - float(v.min())) / mad
+    work_gsd = math.sqrt(abs(np.linalg.det(bd.lin)))
+    ex = max(2.0, float(cfg["exclusion_m"]) / work_gsd)
+    up = int(cfg["upsample"])
+    for sg in signs:
+        (pi, pj), _best, snr, distinct, cands = _peaks(region * sg, r, ex, float(cfg["ambiguity_ratio"]))
+        refined = []
+        for ci, cj, h in cands[:_MAX_CANDIDATES]:
+            fr, fc = upsampled_peak(spec, (ci, cj), up, half_width=1.0, sign=sg)
+            refined.append((ci, cj, h, fr, fc))
+        at_limit = math.hypot(pi, pj) > bd.radius_px - 1.0
+        bd.peaks[sg] = (float(snr), float(distinct), at_limit, refined)
 
 
 def _prepare_block(orthos, ti, tile, win, mod_geoms, cfg, f, work_gsd):
@@ -589,7 +615,10 @@ def _prepare_block(orthos, ti, tile, win, mod_geoms, cfg, f, work_gsd):
                        float(cfg["highpass_sigma_m"]) / work_gsd)
     lin = np.array([[wt.a, wt.b], [wt.d, wt.e]])
     cx, cy = wt @ (w / 2.0, h / 2.0)
-    return _BlockData(ti, float(cx), float(cy), spec, lin, float(cfg["max_shift_m"]) / work_gsd), ""
+    signs = (1.0,) if cfg["feature"] == "gradient" else (1.0, -1.0)
+    bd = _BlockData(ti, float(cx), float(cy), lin, float(cfg["max_shift_m"]) / work_gsd)
+    _analyse_block(bd, spec, cfg, signs)
+    return bd, ""
 
 
 def _block_windows(tile, geoms_bounds, cfg):
@@ -746,7 +775,7 @@ def estimate_shift(orthos, modules, settings: Mapping | None = None, *,
         else:
             blocks.append(bd)
             records.append(BlockShift(bd.x, bd.y, float("nan"), float("nan"), 0.0, ti))
-            bd._record = records[-1]  # type: ignore[attr-defined]
+            bd.record = records[-1]
         if progress is not None:
             progress("register", k + 1, total)
 
@@ -756,40 +785,24 @@ def estimate_shift(orthos, modules, settings: Mapping | None = None, *,
         why = sorted({r.note for r in records if r.note}) or ["no ortho tile contains layout modules"]
         return _finish_weak(reg, cfg, "no usable ortho block (" + "; ".join(why) + ")")
 
-    # 3. contrast sign by vote, then peaks per block
-    gsd_ex = []
-    surfaces = []
-    vote = 0.0
-    for bd in blocks:
-        work_gsd = math.sqrt(abs(np.linalg.det(bd.lin)))
-        ex = max(2.0, float(cfg["exclusion_m"]) / work_gsd)
-        gsd_ex.append(ex)
-        surf = scipy.fft.ifft2(bd.spec, workers=1).real
-        region, r = _search_region(surf, bd.radius_px)
-        fin = np.isfinite(region)
-        v = region[fin]
-        med = float(np.median(v))
-        mad = float(np.median(np.abs(v - med))) * 1.4826 or 1.0
-        vote += (float(v.max()) - med) / mad - (med - float(v.min())) / mad
-        surfaces.append((region, r))
+    # 3. contrast sign by vote (intensity feature), then the peaks of that sign
     if cfg["feature"] == "gradient":
         sign = 1.0  # edge strengths correlate positively whatever the contrast's polarity
         reg.contrast = "edges"
     else:
-        sign = 1.0 if vote >= 0 else -1.0
+        sign = 1.0 if sum(bd.vote for bd in blocks) >= 0 else -1.0
         reg.contrast = "warmer" if sign > 0 else "cooler"
 
     snr_min, snr_full = float(cfg["snr_min"]), float(cfg["snr_full"])
     dfull = float(cfg["distinct_full"])
     cands_all = []
-    for bd, (region, r), ex in zip(blocks, surfaces, gsd_ex):
-        (pi, pj), best, snr, distinct, cands = _peaks(region * sign, r, ex, float(cfg["ambiguity_ratio"]))
+    for bd in blocks:
+        snr, distinct, at_limit, cands = bd.peaks[sign]
         c_snr = min(max((snr - snr_min) / max(snr_full - snr_min, 1e-9), 0.0), 1.0)
         c_dis = min(max(distinct / max(dfull, 1e-9), 0.0), 1.0)
         conf = c_snr * c_dis
-        rec: BlockShift = bd._record  # type: ignore[attr-defined]
-        rec.snr, rec.distinctness, rec.candidates = float(snr), float(distinct), len(cands)
-        at_limit = math.hypot(pi, pj) > bd.radius_px - 1.0
+        rec = bd.record
+        rec.snr, rec.distinctness, rec.candidates = snr, distinct, len(cands)
         if at_limit:
             conf = 0.0
             rec.note = "peak at the search limit (max_shift_m)"
@@ -801,21 +814,20 @@ def estimate_shift(orthos, modules, settings: Mapping | None = None, *,
         d = bd.lin @ np.array([dcol, drow])
         return float(d[0]), float(d[1])
 
-    best_m = np.array([to_m(bd, c[0][0], c[0][1]) for bd, c in zip(blocks, cands_all)])
-    confs = np.array([bd._record.confidence for bd in blocks])  # type: ignore[attr-defined]
+    best_m = np.array([to_m(bd, c[0][3], c[0][4]) for bd, c in zip(blocks, cands_all)])
+    confs = np.array([bd.record.confidence for bd in blocks])
     if confs.max() <= 0:
         for bd, bm in zip(blocks, best_m):
-            bd._record.dx, bd._record.dy = float(bm[0]), float(bm[1])  # type: ignore[attr-defined]
+            bd.record.dx, bd.record.dy = float(bm[0]), float(bm[1])
         reg.measured_m = (float(np.median(best_m[:, 0])), float(np.median(best_m[:, 1])))
         return _finish_weak(reg, cfg, "the image does not constrain the layout position "
                                       "(no block has a distinct correlation peak)")
     cons = np.array([_weighted_median(best_m[:, 0], confs + 1e-12 * (confs <= 0)),
                      _weighted_median(best_m[:, 1], confs + 1e-12 * (confs <= 0))])
-    upsample = int(cfg["upsample"])
     dxs, dys = [], []
     for bd, cands in zip(blocks, cands_all):
-        rec = bd._record  # type: ignore[attr-defined]
-        cm = np.array([to_m(bd, c[0], c[1]) for c in cands])
+        rec = bd.record
+        cm = np.array([to_m(bd, c[3], c[4]) for c in cands])
         k = int(np.argmin(np.hypot(cm[:, 0] - cons[0], cm[:, 1] - cons[1])))
         if k != 0:
             rec.note = (rec.note + "; " if rec.note else "") + \
@@ -824,8 +836,7 @@ def estimate_shift(orthos, modules, settings: Mapping | None = None, *,
             rec.confidence *= cands[k][2] / cands[0][2] if cands[0][2] > 0 else 0.0
             if rec.confidence <= 0:
                 rec.confidence = 1e-3
-        drow, dcol = upsampled_peak(bd.spec, (cands[k][0], cands[k][1]), upsample, sign=sign)
-        rec.dx, rec.dy = to_m(bd, drow, dcol)
+        rec.dx, rec.dy = float(cm[k, 0]), float(cm[k, 1])
         dxs.append(rec.dx)
         dys.append(rec.dy)
 
@@ -834,7 +845,7 @@ def estimate_shift(orthos, modules, settings: Mapping | None = None, *,
     y = np.array([bd.y for bd in blocks])
     dx = np.array(dxs)
     dy = np.array(dys)
-    w = np.array([bd._record.confidence for bd in blocks])  # type: ignore[attr-defined]
+    w = np.array([bd.record.confidence for bd in blocks])
     inl = w > 0
     reject = float(cfg["reject_m"])
     model = None
@@ -873,7 +884,7 @@ def estimate_shift(orthos, modules, settings: Mapping | None = None, *,
         reg.residual_scale = float(math.hypot(1.0 + a, b))
         reg.residual_rotation_deg = float(math.degrees(math.atan2(b, 1.0 + a)))
     for bd, ok, rs in zip(blocks, inl, res):
-        rec = bd._record  # type: ignore[attr-defined]
+        rec = bd.record
         rec.used = bool(ok)
         if not ok and rec.confidence > 0:
             rec.note = (rec.note + "; " if rec.note else "") + f"outlier: {rs:.2f} m from the fit"
