@@ -622,6 +622,14 @@ def test_map_draws_modules_where_the_simulator_put_them(inspected):
     in_image = layout_xy - offset
     assert np.median(np.hypot(*(drawn - in_image).T)) < 0.1
     assert np.median(np.hypot(*(drawn - layout_xy).T)) == pytest.approx(float(np.hypot(*offset)), abs=0.05)
+    # the same with the modules frame the pipeline hands over (layout positions, ortho CRS)
+    from pvscan.layout import read_layout
+    from pvscan.manifest import load_flight
+
+    frame = read_layout(load_flight(sim.manifest), crs)
+    geo2 = _MapGeometry(data, crs, frame)
+    drawn2 = np.array([[g.centroid.x, g.centroid.y] for g in geo2.modules])
+    assert np.median(np.hypot(*(drawn2 - in_image).T)) < 0.1
 
 
 @pytest.mark.slow
@@ -655,3 +663,33 @@ def test_map_palette_keeps_marker_colours_exact():
     Image.fromarray(src).save(buf, format="PNG")
     out = np.asarray(Image.open(io.BytesIO(quantise_png(buf.getvalue(), pal))).convert("RGB"))
     assert np.array_equal(out, src)
+
+
+def test_healthy_plant_report_and_summary(tmp_path):
+    """No anomaly: the report still has its map, plots, validity and cautions; the summary says so."""
+    from click.testing import CliRunner
+    import click
+
+    from pvscan.cli._summary import print_inspection_summary
+    from pvscan.report import write_report
+
+    res = build_result(tmp_path)
+    (res / "anomalies.geojson").write_text('{"type": "FeatureCollection", "features": []}')
+    with open(res / "workorders.csv") as fh:
+        header = fh.readline()
+    (res / "workorders.csv").write_text(header)
+    html_text = write_report(res).read_text()
+    doc = parse(html_text)
+    assert doc.cards == []
+    assert "No anomalies" in html_text and "Nothing to do" in html_text
+    assert len(doc.imgs) == 1 + 4
+    for a in doc.imgs:
+        decode_png(a["src"])
+
+    @click.command()
+    def show():
+        print_inspection_summary(res)
+
+    r = CliRunner().invoke(show, [])
+    assert r.exit_code == 0, r.output
+    assert "anomalies 0" in r.output and "power loss 0 W" in r.output
