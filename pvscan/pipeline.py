@@ -135,7 +135,8 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
     fc = cond_mod.flight_conditions(flight.conditions, flight.flight.start, flight.flight.end, series,
                                     settings=settings["conditions"])
     conds = cond_mod.module_conditions(measured, flight.conditions, flight.flight.start, flight.flight.end,
-                                       series=series, frames=frames, settings=settings["conditions"])
+                                       series=series, frames=frames, settings=settings["conditions"],
+                                       tilt_deg=flight.layout.tilt_deg)
     validity = cond_mod.check_validity(fc, conds, gsd_m=gsd, module_spec=flight.module,
                                        settings=settings["conditions"])
     timings["conditions"] = time.perf_counter() - t0
