@@ -474,7 +474,8 @@ def _coverage(geoms, shape, transform: Affine, ss: int) -> np.ndarray:
         return np.zeros(shape)
     fine = features.rasterize(((g, 1) for g in geoms), out_shape=(h * ss, w * ss),
                               transform=transform @ Affine.scale(1.0 / ss), fill=0, dtype="uint8")
-    return fine.reshape(h, ss, w, ss).mean(axis=(1, 3), dtype=np.float64)
+    counts = fine.reshape(h, ss, w, ss).sum(axis=(1, 3), dtype=np.uint16)
+    return counts * (1.0 / (ss * ss))
 
 
 def _taper(shape, width_px: float) -> np.ndarray:
