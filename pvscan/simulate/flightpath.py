@@ -9,6 +9,7 @@ squarely, which is the one a mosaic keeps); its conditions are the weather of th
 from __future__ import annotations
 
 import math
+import warnings
 from dataclasses import dataclass
 
 import numpy as np
@@ -96,6 +97,10 @@ class WeatherSeries:
         Wind speed [m/s].
     varying : bool
         False for constant conditions.
+    poa_thermal : ndarray
+        The irradiance the module temperature is in balance with at each time [W/m2]: equal
+        to ``poa_global`` for constant conditions; for varying conditions the module's
+        thermal inertia smooths fast changes (see :func:`weather_series`).
     """
 
     times_s: np.ndarray
@@ -103,6 +108,7 @@ class WeatherSeries:
     temp_air: np.ndarray
     wind_speed: np.ndarray
     varying: bool
+    poa_thermal: np.ndarray | None = None
 
     def at(self, t_s):
         """(poa_global, temp_air, wind_speed) at times ``t_s``, linearly interpolated."""
@@ -110,20 +116,40 @@ class WeatherSeries:
         return (np.interp(t, self.times_s, self.poa_global), np.interp(t, self.times_s, self.temp_air),
                 np.interp(t, self.times_s, self.wind_speed))
 
+    def poa_thermal_at(self, t_s):
+        """Irradiance the module temperature is in balance with at times ``t_s`` [W/m2]."""
+        pt = self.poa_global if self.poa_thermal is None else self.poa_thermal
+        return np.interp(np.asarray(t_s, float), self.times_s, pt)
 
-def weather_series(cond: dict, duration_s: float, rng) -> WeatherSeries:
+
+def weather_series(cond: dict, duration_s: float, rng, start=None) -> WeatherSeries:
     """Conditions during the flight: constants, or drift plus irradiance dips and gusts.
 
     Irradiance dips (thin passing clouds) are Gaussian in time, 20-60 s wide; the gusts are
     a sum of three sinusoids with random phases. Values are rounded as a logger would
     write them (0.1 W/m2, 0.01 degC, 0.01 m/s) and the truth uses the rounded series.
+
+    The module temperature does not follow fast changes: the steady-state Faiman
+    temperature of the series (from 20 minutes before the start, drift continued
+    backwards) is smoothed by the transient weighted moving average of Prilliman et al.
+    [1]_ (``pvlib.temperature.prilliman``, default module mass 11.1 kg/m2), and expressed
+    as the irradiance that would hold the module at that temperature in steady state,
+    ``poa_thermal = (T_smoothed - T_air) * U(v)``.
+
+    References
+    ----------
+    .. [1] M. Prilliman, J. S. Stein, D. Riley and G. Tamizhmani, "Transient weighted
+       moving-average model of photovoltaic module back-surface temperature", IEEE Journal
+       of Photovoltaics 10(4), 1053-1060, 2020. doi:10.1109/JPHOTOV.2020.2992351
     """
     g0, ta0, v0 = cond["poa_irradiance_w_m2"], cond["ambient_c"], cond["wind_m_s"]
     if not cond["varying"]:
         t = np.array([0.0, max(duration_s, 1.0)])
-        return WeatherSeries(t, np.full(2, float(g0)), np.full(2, float(ta0)), np.full(2, float(v0)), False)
+        g = np.full(2, float(g0))
+        return WeatherSeries(t, g, np.full(2, float(ta0)), np.full(2, float(v0)), False, g)
     step = cond["series_step_s"]
-    t = np.arange(0.0, duration_s + 2 * step, step)
+    pre = int(np.ceil(1200.0 / step))
+    t = np.arange(-pre, int(np.ceil((duration_s + 2 * step) / step))) * step
     minutes = t / 60.0
     g = g0 + cond["poa_drift_w_m2_per_min"] * minutes
     for _ in range(int(cond["irradiance_dips"])):
@@ -135,5 +161,23 @@ def weather_series(cond: dict, duration_s: float, rng) -> WeatherSeries:
     for _ in range(3):
         period = rng.uniform(30.0, 120.0)
         v = v + cond["wind_gust_m_s"] / 3.0 * np.sin(2 * np.pi * t / period + rng.uniform(0, 2 * np.pi))
-    v = np.maximum(v, 0.0)
-    return WeatherSeries(t, np.round(np.maximum(g, 0.0), 1), np.round(ta, 2), np.round(v, 2), True)
+    g = np.round(np.maximum(g, 0.0), 1)
+    ta = np.round(ta, 2)
+    v = np.round(np.maximum(v, 0.0), 2)
+    u = cond["u0"] + cond["u1"] * v
+    g_th = _thermal_irradiance(t, g, ta, v, u, step)
+    keep = t >= 0
+    return WeatherSeries(t[keep], g[keep], ta[keep], v[keep], True, g_th[keep])
+
+
+def _thermal_irradiance(t, g, ta, v, u, step):
+    import pandas as pd
+    import pvlib
+
+    idx = pd.date_range("2000-01-01", periods=t.size, freq=pd.Timedelta(seconds=float(step)))
+    t_ss = pd.Series(ta + g / u, index=idx)
+    with warnings.catch_warnings():
+        # pvlib infers the sampling interval through a pandas API that warns about its future
+        warnings.filterwarnings("ignore", message=".*inferred_freq.*")
+        t_sm = pvlib.temperature.prilliman(t_ss, pd.Series(v, index=idx)).to_numpy(float)
+    return (t_sm - ta) * u

@@ -3,8 +3,10 @@
 Physics, in the order it is applied to a pixel:
 
 1. **Healthy module** (Faiman [1]_): ``T = T_air + G / (u0 + u1 * v)`` with the
-   module's own irradiance ``G`` (lowered under a cloud shadow), air temperature and wind at
-   the time it was imaged; plus a module-to-module spread (``conditions.module_spread_k``,
+   module's own irradiance ``G`` (lowered under a cloud shadow; for varying conditions
+   the irradiance smoothed by the module's thermal inertia, see
+   :func:`pvscan.simulate.flightpath.weather_series`), air temperature and wind at the
+   time it was imaged; plus a module-to-module spread (``conditions.module_spread_k``,
    normal) and a cell-to-cell spread (``conditions.cell_spread_k``). The aluminium frame
    (``array.frame_width_m``) runs cooler: ``T_frame = T - frame_drop * (T - T_air)``
    (common practice: frames are cooler than the glass).
@@ -186,7 +188,9 @@ class Scene:
         # modules
         mrng = np.random.default_rng([self.seed, 6])
         n = fld.n_modules
-        self.poa_local = self.poa * self.cloud_factor(mods["cx"], mods["cy"])
+        # irradiance the module temperature is in balance with (thermal inertia), under clouds
+        self.poa_thermal = self.weather.poa_thermal_at(self.t_imaged)
+        self.poa_local = self.poa_thermal * self.cloud_factor(mods["cx"], mods["cy"])
         self.u_total = self.u0 + self.u1 * self.wind
         self.temp_healthy = faiman(self.poa_local, self.temp_air, self.wind, self.u0, self.u1)
         self.temp_healthy = self.temp_healthy + mrng.normal(0.0, cond["module_spread_k"], n)

@@ -339,7 +339,7 @@ def write_truth(scene, truth: dict, out_dir: Path, extra: dict) -> tuple[str, st
             "delta_t_norm_k": truth["delta_t_norm_k"][i],
             "module_delta_t_k": truth["module_delta_t_k"][i],
             "power_loss_w": truth["power_loss_w"][i],
-            "poa_global": scene.poa[i], "poa_local": scene.poa_local[i],
+            "poa_global": scene.poa[i], "poa_thermal": scene.poa_thermal[i], "poa_local": scene.poa_local[i],
             "wind_speed": scene.wind[i], "temp_air": scene.temp_air[i],
             "time": (scene.start + timedelta(seconds=float(scene.t_imaged[i]))).isoformat(),
         }
