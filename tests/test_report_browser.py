@@ -114,3 +114,15 @@ def test_console_is_clean_and_screenshot_is_not_blank(report, tmp_path):
     # the page has a dark header band, a light body and a coloured map: many distinct tones
     assert im[:150].mean() < 110 and im[600:].mean() > 150
     assert np.unique((im[::7, ::7] // 16).reshape(-1, 3), axis=0).shape[0] > 40
+
+
+def test_prints_to_a_few_pages(report, tmp_path):
+    """Print layout: the report of three anomalies prints on a handful of A4 pages (the print
+    style sheet drops the navigation and the scroll box and packs three cards per row)."""
+    pdf = tmp_path / "report.pdf"
+    r = _run(["--no-pdf-header-footer", f"--print-to-pdf={pdf}", report.as_uri()], tmp_path, "pdf")
+    assert pdf.exists(), r.stderr[-2000:]
+    data = pdf.read_bytes()
+    assert data[:5] == b"%PDF-"  # ISO 32000-1 file header
+    pages = len(re.findall(rb"/Type\s*/Page(?![s\w])", data))
+    assert 2 <= pages <= 8, pages

@@ -348,7 +348,7 @@ def _worklist_section(data: ResultData) -> str:
             f'<td class="act">{_e(_first_sentence(r.get("action")))}</td></tr>')
     head = ('<tr><th class="n">#</th><th>severity</th><th>module</th><th>table</th><th>defect</th>'
             '<th class="n">ΔT [K]</th><th class="n">ΔT norm [K]</th><th class="n">loss [W]</th>'
-            '<th class="n">[kWh/yr]</th><th>action</th></tr>')
+            '<th class="n">[kWh/yr]</th><th class="act">action</th></tr>')
     return f"""<section id="worklist"><h2>Work list</h2>
 <p class="lead">All anomalies in priority order (1 first); the number links to the anomaly's card.
 The same list is in <code>workorders.csv</code>.</p>
