@@ -145,7 +145,8 @@ def simulate_flight(scenario, out_dir, seed: int = 0, *, overwrite: bool = False
     from pvscan.simulate.truth import module_truth
 
     out_dir = Path(out_dir)
-    if out_dir.exists() and any(out_dir.iterdir()) if out_dir.is_dir() else out_dir.exists():
+    occupied = out_dir.exists() and (not out_dir.is_dir() or any(out_dir.iterdir()))
+    if occupied:
         if not overwrite:
             raise OutputError(f"{out_dir}: exists and is not empty (use --overwrite to replace it)")
         if not _replaceable(out_dir):

@@ -9,6 +9,7 @@ code: ``simulate_flight({"site": {"lon": 8.1, "lat": 47.3}, "defects": {"open_mo
 from __future__ import annotations
 
 import copy
+import math
 import tomllib
 from collections.abc import Mapping
 from pathlib import Path
@@ -176,7 +177,7 @@ def _check(sc: dict, where: str) -> None:
     if m["cells_across"] % m["bypass_diodes"]:
         raise SimulationError(f"{where}: key module.bypass_diodes does not divide module.cells_across")
     a = sc["array"]
-    cos_t = __import__("math").cos(__import__("math").radians(a["tilt_deg"]))
+    cos_t = math.cos(math.radians(a["tilt_deg"]))
     across = m["length_m"] if a["orientation"] == "portrait" else m["width_m"]
     depth = a["rows"] * across * cos_t + (a["rows"] - 1) * a["gap_m"] * cos_t
     if a["row_pitch_m"] <= depth:

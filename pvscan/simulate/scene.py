@@ -194,7 +194,8 @@ class Scene:
         self.u_total = self.u0 + self.u1 * self.wind
         self.temp_healthy = faiman(self.poa_local, self.temp_air, self.wind, self.u0, self.u1)
         self.temp_healthy = self.temp_healthy + mrng.normal(0.0, cond["module_spread_k"], n)
-        self.cell_offset = mrng.normal(0.0, cond["cell_spread_k"], (n, self.geom.n_along, self.geom.n_across))
+        self.cell_offset = mrng.normal(0.0, cond["cell_spread_k"],
+                                       (n, self.geom.n_along, self.geom.n_across)).astype(np.float32)
         self.dt_open = self.geom.eta * self.poa_local / self.u_total
         self.defects = place_defects(np.random.default_rng([self.seed, 7]), sc, fld, self.geom)
         self.defect_of = {d.module: d for d in self.defects}
@@ -233,14 +234,14 @@ class Scene:
         n_aisles = max(fld.n_trows - 1, 0)
         for k in range(n):
             kind, length, width, rise = kinds[k % 2]
-            if aisle < width + 0.6 or n_aisles == 0:
-                if aisle >= width + 0.6 or self.sc["ortho"]["margin_m"] < width + 1.0:
-                    log.info("no room between table rows for a %s; not placed", kind)
-                    continue
-                wc = -0.5 - width / 2  # in front of the first row, in the margin
-            else:
+            if n_aisles and aisle >= width + 0.6:
                 tr = int(rng.integers(n_aisles))
                 wc = tr * fld.pitch + fld.table_depth + aisle / 2
+            elif self.sc["ortho"]["margin_m"] >= width + 1.5:
+                wc = -0.5 - width / 2  # in front of the first row, in the margin
+            else:
+                log.info("no room between table rows or in the margin for a %s; not placed", kind)
+                continue
             sc_ = rng.uniform(length, max(length + 0.1, fld.total_s - length))
             out.append((kind, sc_ - length / 2, sc_ + length / 2, wc - width / 2, wc + width / 2,
                         float(rng.uniform(*rise))))
