@@ -96,13 +96,14 @@ _CLASSIFY_DEFAULTS = {
     "substring_ratio_min": 0.5,
     "substring_ratio_max": 1.8,
     "substring_cover_min": 0.8,
+    "substring_partial_max": 0.3,
     "hot_cell_min_k": 3.0,
     "hot_cell_whole_min": 0.5,
     "hot_cell_contrast_min": 0.5,
     "hot_cell_peak_share": 0.6,
     "junction_box_min_k": 3.0,
-    "junction_box_spot_max": 0.5,
-    "junction_box_straddle_min": 0.25,
+    "junction_box_spot_max": 0.75,
+    "junction_box_straddle_min": 0.4,
     "soiling_min_k": 1.5,
     "soiling_cover_min": 0.7,
     "soiling_top_max": 0.3,
@@ -111,8 +112,8 @@ _CLASSIFY_DEFAULTS = {
     "open_string_run_z": 5.0,
     "open_string_ratio_min": 0.7,
     "pid_min_modules": 2,
-    "pid_seed_z": 4.0,
-    "pid_extend_z": 2.0,
+    "pid_seed_z": 3.5,
+    "pid_extend_z": 1.0,
     "pid_max_position": 0.5,
     "precedence": ["open_string", "open_module", "bypassed_substring_multi", "bypassed_substring",
                    "junction_box", "pid", "soiling", "hot_cell_multi", "hot_cell"],
@@ -133,16 +134,37 @@ _SEVERITY_DEFAULTS = {
 # helpers
 # --------------------------------------------------------------------------------------
 
+def _nanquantile(a, q, axis=None):
+    """Quantile ``q`` (0..1, linear interpolation) ignoring NaN, vectorised along ``axis``.
+
+    NumPy's nanpercentile loops over rows in Python; sorting once (NaN sort last) and
+    indexing by each row's count of valid values is the same estimate, thousands of times
+    faster for (modules x cells) arrays. All-NaN rows give NaN, without a warning.
+    """
+    a = np.asarray(a, dtype=np.float64)
+    if axis is None:
+        a = a.reshape(-1)
+        axis = 0
+    a = np.moveaxis(a, axis, -1)
+    srt = np.sort(a, axis=-1)
+    cnt = np.isfinite(srt).sum(axis=-1)
+    pos = q * np.maximum(cnt - 1, 0)
+    lo = np.floor(pos).astype(np.int64)
+    hi = np.minimum(lo + 1, np.maximum(cnt - 1, 0))
+    w = pos - lo
+    vlo = np.take_along_axis(srt, lo[..., None], axis=-1)[..., 0]
+    vhi = np.take_along_axis(srt, hi[..., None], axis=-1)[..., 0]
+    out = vlo + w * (vhi - vlo)
+    return np.where(cnt > 0, out, np.nan)
+
+
 def _nanmedian(a, axis=None):
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        return np.nanmedian(a, axis=axis)
+    return _nanquantile(a, 0.5, axis=axis)
 
 
 def _nanpercentile(a, q, axis=None):
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", RuntimeWarning)
-        return np.nanpercentile(a, q, axis=axis)
+    qs = np.atleast_1d(np.asarray(q, float)) / 100.0
+    return np.stack([_nanquantile(a, x, axis=axis) for x in qs], axis=0)
 
 
 def _nanmean(a, axis=None):
@@ -474,7 +496,13 @@ def pattern_bypassed_substring(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
     Xin = np.where(inside, Xlo, np.nan).reshape(n, -1)
     flat = _iqr(Xin, axis=1) <= np.maximum(float(cfg["open_uniform_iqr"]) * r, float(cfg["open_uniform_floor_k"]))
     hit = F.ok & clean & fit_ok & cover_ok & flat & (mean_raise >= floor)
-    hit &= ~_carried_across_edge(F, raised)
+    # columns part raised: expected share from cell noise alone, plus a margin
+    from scipy.stats import norm as _norm
+
+    with np.errstate(invalid="ignore", divide="ignore"):
+        p_noise = 2.0 * _norm.sf(0.25 * mean_raise / max(F.sig_cell, 1e-3))
+    hit &= ~(_intermediate_columns(F, Xlo, mean_raise) > p_noise + float(cfg["substring_partial_max"]))
+    hit &= ~_carried_across_edge(F, raised, hit)
     conf = _conf(_fit(ratio), _quality(mean_raise, floor), np.clip((cover_in - cover_out), 0, 1))
     # region temperature: median of the raised substrings' measured medians
     temp = _nanmedian(np.where(raised, F.extra["sub_median"], np.nan), axis=1)
@@ -488,11 +516,23 @@ def pattern_bypassed_substring(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
     return single, multi
 
 
-def _carried_across_edge(F: Features, raised: np.ndarray) -> np.ndarray:
-    """True where a raised edge substring carries on into the touching module's facing strip.
+def _walk(adj: np.ndarray, start: int, col: int, steps: int = 3) -> list[int]:
+    """Up to ``steps`` modules beyond module ``start`` across its edge ``col`` (same direction)."""
+    out, cur = [], int(adj[start, col])
+    while cur >= 0 and len(out) < steps and cur != start and cur not in out:
+        out.append(cur)
+        cur = int(adj[cur, col])
+    return out
 
-    A bypassed substring ends at the module's edge; a mosaic seam or a reflection does not:
-    the neighbour's strip facing the raised one is as warm as it.
+
+def _carried_across_edge(F: Features, raised: np.ndarray, candidates: np.ndarray) -> np.ndarray:
+    """True where a raised edge strip carries on beyond the module's edge.
+
+    A bypassed substring ends at the module's edge; a mosaic seam (a step of the image,
+    not of the plant) does not: the modules beyond the raised edge are warmer than those
+    beyond the cool edge by about the step. Up to three modules on each side are compared
+    (median), so the module-to-module spread does not decide; at a row end the strip of
+    the touching module facing the raised one is compared instead.
     """
     n, B = raised.shape
     out = np.zeros(n, bool)
@@ -502,20 +542,38 @@ def _carried_across_edge(F: Features, raised: np.ndarray) -> np.ndarray:
     sm = F.extra["sub_median"]
     centres = F.extra["sub_centres"]           # (n, B, 2)
     edges = F.extra["edge_points"]             # (n, 2, 2): v = 0 and v = 1 edge midpoints
-    t_cool = _nanmedian(np.where(raised, np.nan, sm), axis=1)
-    t_warm = _nanmedian(np.where(raised, sm, np.nan), axis=1)
-    for side, k_edge, col in ((0, 0, 2), (1, B - 1, 3)):
-        j = adj[:, col]
-        has = (j >= 0) & raised[:, k_edge]
-        if not has.any():
-            continue
-        jj = np.maximum(j, 0)
-        dist = np.linalg.norm(centres[jj] - edges[:, side][:, None, :], axis=2)
-        kf = np.argmin(dist, axis=1)
-        t_face = sm[jj, kf]
-        with np.errstate(invalid="ignore"):
-            out |= has & ((t_face - t_cool) >= 0.5 * (t_warm - t_cool))
+    t = F.t_median
+    for i in np.flatnonzero(candidates):
+        r0, r1 = bool(raised[i, 0]), bool(raised[i, B - 1])
+        if r0 == r1:
+            continue                           # both edges raised or neither: no one-sided step
+        t_cool = float(_nanmedian(np.where(raised[i], np.nan, sm[i])))
+        t_warm = float(_nanmedian(np.where(raised[i], sm[i], np.nan)))
+        step = t_warm - t_cool
+        warm_col, cool_col, side = (2, 3, 0) if r0 else (3, 2, 1)
+        warm = _walk(adj, i, warm_col)
+        cool = _walk(adj, i, cool_col)
+        if warm and cool:
+            d = float(np.nanmedian(t[warm]) - np.nanmedian(t[cool]))
+            out[i] = np.isfinite(d) and d >= 0.5 * step
+        elif warm:
+            j = warm[0]
+            kf = int(np.argmin(np.linalg.norm(centres[j] - edges[i, side], axis=1)))
+            out[i] = np.isfinite(sm[j, kf]) and (sm[j, kf] - t_cool) >= 0.5 * step
     return out
+
+
+def _intermediate_columns(F: Features, Xlo: np.ndarray, raise_k: np.ndarray) -> np.ndarray:
+    """Largest share, over the module's cell columns, of cells half-way up the plateau.
+
+    A conducting bypass diode raises whole cell columns (its substring's); a step of the
+    image crossing the module at an angle leaves a column of cells part raised.
+    """
+    with np.errstate(invalid="ignore", divide="ignore"):
+        x = Xlo / raise_k[:, None, None]
+        mid = (x > 0.25) & (x < 0.75)
+        valid = np.isfinite(x)
+        return (mid.sum(axis=1) / np.maximum(valid.sum(axis=1), 1)).max(axis=1)
 
 
 def _box_filter_median(X: np.ndarray) -> np.ndarray:
@@ -584,8 +642,9 @@ def pattern_junction_box(F: Features, cfg: Mapping) -> Hits:
 
     Full-cell modules with one edge box: the centre of a short edge (``u`` near 0 or 1,
     ``v`` = 0.5); half-cut modules with split boxes: the middle line ``u`` = 0.5, at the
-    centre of each substring. The spot straddles the cells meeting at that point and
-    raises their p95 but much less their median (a hot cell raises the whole cell).
+    centre of each substring. The spot straddles the cells meeting at that point, raising
+    their p95 more than their median (a hot cell raises its whole cell), and no cell around
+    them is hotter (heat bleeding from a hot cell next to the box raises the p95 too).
 
     Returns
     -------
@@ -619,15 +678,23 @@ def pattern_junction_box(F: Features, cfg: Mapping) -> Hits:
         others = np.setdiff1d(np.arange(C), jj)
         rest = _nanmedian(X95[:, ii][:, :, others].reshape(n, -1), axis=1) if others.size else np.zeros(n)
         rest = np.nan_to_num(rest, nan=0.0)
+        # the cells around the box: none hotter than the box (else it is heat bleeding
+        # from a hot cell next to it)
+        ri = np.arange(max(ii.min() - 1, 0), min(ii.max() + 2, A))
+        rj = np.arange(max(jj.min() - 1, 0), min(jj.max() + 2, C))
+        ring = np.ones((ri.size, rj.size), bool)
+        ring[np.ix_(np.isin(ri, ii), np.isin(rj, jj))] = False
+        around = X95[:, ri][:, :, rj][:, ring] if ring.any() else np.full((n, 1), -np.inf)
+        around = np.where(np.isfinite(around), around, -np.inf).max(axis=1)
         with np.errstate(invalid="ignore"):
             spot = med_top <= float(cfg["junction_box_spot_max"]) * top
             straddle = second >= float(cfg["junction_box_straddle_min"]) * top
-            alone = (top - rest) >= 0.5 * top
-        ok = (top >= thr) & (spot | straddle) & alone
+            alone = ((top - rest) >= 0.5 * top) & (around < top)
+        ok = (top >= thr) & spot & straddle & alone
         better = ok & (top > best)
         best = np.where(better, top, best)
         best_t = np.where(better, _nanmax(subt, axis=1), best_t)
-        best_q = np.where(better, _quality(top, thr) * np.where(spot & straddle, 1.0, 0.7), best_q)
+        best_q = np.where(better, _quality(top, thr), best_q)
         hu, hv = 0.5 / A, 0.5 / C
         for i in np.flatnonzero(better):
             best_box[i] = (max(0.0, u0 - hu), min(1.0, u0 + hu), max(0.0, v0 - hv), min(1.0, v0 + hv))
@@ -817,20 +884,42 @@ def _raise_carries_on(F: Features, run) -> bool:
     if not np.isfinite(d_run) or d_run <= 0.3 * float(np.nanmedian(F.rise[run])):
         return False
     members = set(run.tolist())
-    beyond = {int(j) for i in run for j in along[i] if j >= 0 and int(j) not in members}
-    for b in beyond:
-        if cross[b] >= 0 and np.isfinite(t[b] - t[cross[b]]) and (t[b] - t[cross[b]]) >= 0.5 * d_run:
+    for start in {int(j) for i in run for j in along[i] if j >= 0 and int(j) not in members}:
+        # walk up to three modules along the row away from the run; compare their mean
+        # offset over the other row with the run's (one module alone is too noisy)
+        seen, line, cur = set(members), [], start
+        while cur >= 0 and len(line) < 3 and cur not in seen:
+            seen.add(cur)
+            line.append(cur)
+            nxt = [int(j) for j in along[cur] if j >= 0 and int(j) not in seen]
+            cur = nxt[0] if nxt else -1
+        diffs = [t[b] - t[cross[b]] for b in line if cross[b] >= 0]
+        diffs = [x for x in diffs if np.isfinite(x)]
+        if len(diffs) >= 2 and float(np.mean(diffs)) >= 0.6 * d_run:
             return True
     return False
 
 
+def _trimmed_mean(x: np.ndarray, cut: float = 0.1) -> np.ndarray:
+    """Mean along the last axis without the lowest and highest ``cut`` share, ignoring NaN."""
+    lo = _nanquantile(x, cut, axis=-1)[..., None]
+    hi = _nanquantile(x, 1.0 - cut, axis=-1)[..., None]
+    keep = (x >= lo) & (x <= hi)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(keep, x, 0.0).sum(axis=-1) / np.maximum(keep.sum(axis=-1), 1) + \
+            np.where(keep.sum(axis=-1) > 0, 0.0, np.nan)
+
+
 def pid_ring_contrast(F: Features) -> np.ndarray:
-    """Median residual of a module's edge ring of cells minus that of its interior [K]."""
+    """Trimmed mean residual of a module's edge ring of cells minus that of its interior [K].
+
+    The 10 % trimming keeps a single hot cell from posing as an edge-weighted pattern.
+    """
     n, A, C = F.n, F.n_along, F.n_across
     ii, jj = np.indices((A, C))
-    ring = (ii == 0) | (ii == A - 1) | (jj == 0) | (jj == C - 1)
+    ring = ((ii == 0) | (ii == A - 1) | (jj == 0) | (jj == C - 1)).ravel()
     flat = F.R.reshape(n, -1)
-    return (_nanmedian(flat[:, ring.ravel()], axis=1) - _nanmedian(flat[:, ~ring.ravel()], axis=1))
+    return _trimmed_mean(flat[:, ring]) - _trimmed_mean(flat[:, ~ring])
 
 
 def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
@@ -844,8 +933,9 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     spread, in robust standard deviations of healthy modules' contrast. A string
     qualifies when its module at the negative end reaches ``pid_seed_z`` and is warmer
     than its surroundings; the affected run extends from the negative end while the
-    contrast stays above ``pid_extend_z``, over at least ``pid_min_modules`` and at most
-    the first ``pid_max_position`` of the string.
+    contrast stays above ``pid_extend_z`` (a single weaker module between two above does
+    not end it), over at least ``pid_min_modules`` and at most the first
+    ``pid_max_position`` of the string.
 
     Returns
     -------
@@ -875,10 +965,22 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
         if not (z[first] >= float(cfg["pid_seed_z"]) and d_o[first] > 0):
             continue
         run = [int(first)]
-        for i in idx[1:]:
-            if exclude[i] or not F.ok[i] or z[i] < float(cfg["pid_extend_z"]):
+        ext = float(cfg["pid_extend_z"])
+        k = 1
+        while k < len(idx):
+            i = idx[k]
+            if exclude[i] or not F.ok[i]:
                 break
-            run.append(int(i))
+            if z[i] >= ext:
+                run.append(int(i))
+                k += 1
+                continue
+            # one weak module between two that carry the pattern does not end the run
+            if k + 1 < len(idx) and not exclude[idx[k + 1]] and z[idx[k + 1]] >= ext:
+                run += [int(i), int(idx[k + 1])]
+                k += 2
+                continue
+            break
         if len(run) < int(cfg["pid_min_modules"]):
             continue
         run = run[: int(np.floor(float(cfg["pid_max_position"]) * len(idx))) + 1]

@@ -84,9 +84,15 @@ class Plant:
                         p0 = rot @ np.array([x0, y0])
                         fu_r, fv_r = rot @ fu, rot @ fv
                         tid = f"T{tr}-{t}"
-                        sid = f"{tid}-R{r + 1}" if strings == "row" else None
+                        if strings == "row":
+                            sid, sidx = f"{tid}-R{r + 1}", c + 1
+                        elif strings == "half":
+                            half = c // (cols // 2)
+                            sid, sidx = f"{tid}-R{r + 1}-S{half}", c % (cols // 2) + 1
+                        else:
+                            sid, sidx = None, None
                         rec.append(dict(module_id=f"{tid}-{r + 1}-{c + 1:02d}", table_id=tid,
-                                        string_id=sid, string_index=c + 1 if sid else None,
+                                        string_id=sid, string_index=sidx,
                                         table_row=r + 1, table_col=c + 1,
                                         fx0=p0[0], fy0=p0[1], fux=fu_r[0], fuy=fu_r[1],
                                         fvx=fv_r[0], fvy=fv_r[1], lower_edge=lower))
@@ -151,9 +157,10 @@ class Plant:
     def soiling(self, i, rise, cover_median=False):
         A, C = self.spec.n_along, self.spec.n_across
         sl = (slice(0, 1), slice(None)) if self.modules.lower_edge[i] == "u" else (slice(None), slice(0, 1))
-        self.extra95[i][sl] += rise
-        if cover_median:
+        if cover_median:          # band covering the whole cells: median and p95 raised
             self.cm[i][sl] += rise
+        else:                     # thin band: only part of each cell, the p95 raised
+            self.extra95[i][sl] += rise
         self.truth[i] = "soiling"
 
     def pid(self, string_id, n_mod, f0=0.45):
@@ -470,3 +477,41 @@ def test_severity_rules(defect, dtn, tmax, sev):
     assert out.severity[0] == sev
     # classes of abnormality of IEC TS 62446-3 (from memory): CoA 3 safety-relevant
     assert out.iec_class[0] == ("CoA 3" if sev == "safety" else "CoA 2")
+
+
+def test_deep_soiling_band_over_two_cell_lines(rng):
+    p = Plant(rng)
+    i = p.index(col=4)
+    p.soiling(i, 5.0, cover_median=True)
+    p.cm[i, 1, :] += 5.0                                      # band reaching the second line of cells
+    an, _ = p.run()
+    assert found(an) == {i: "soiling"}
+    assert an.iloc[0].region_uv[0][1] == pytest.approx(2 / p.spec.n_along)
+    # area pattern: the band's temperature (5 K above the module) less the reference
+    assert an.iloc[0].delta_t_k == pytest.approx(5.0, abs=1.0)
+
+
+@pytest.mark.parametrize("poa, wind", [(850.0, 2.0), (650.0, 5.0)])
+def test_seam_along_a_row_is_not_an_open_string(rng, poa, wind):
+    p = Plant(rng, strings="half", poa=poa, wind=wind)
+    m = p.modules
+    # a mosaic seam raising modules 4..10 of the upper row of table T0-0 by 2 K: it runs past
+    # the end of string S0 (modules 1..6) into S1
+    row2 = (m.table_id == "T0-0").to_numpy() & (m.table_row == 2).to_numpy()
+    xmin = m.fx0[row2 & (m.table_col == 4).to_numpy()].iloc[0] - 0.01
+    xmax = m.fx0[row2 & (m.table_col == 10).to_numpy()].iloc[0] + 1.04
+    y0 = m.fy0[row2].iloc[0] - 0.01
+    p.field(lambda x, y: np.where((x > xmin) & (x < xmax) & (y > y0) & (y < y0 + 2.2), 2.0, 0.0))
+    an, _ = p.run()
+    assert "open_string" not in set(an.defect), an[["module_id", "defect"]]
+
+
+def test_pid_ring_contrast_finds_weak_modules(rng):
+    # weak PID (first module loses 30 %): module excess ~1 K, within the module spread,
+    # but the edge ring of cells stands out of the interior
+    p = Plant(rng, module_spread=0.6)
+    idx = p.pid("T1-1-R2", 4, f0=0.3)
+    an, _ = p.run()
+    got = found(an)
+    pid = {i for i, d in got.items() if d == "pid"}
+    assert {int(i) for i in idx[:2]} <= pid <= {int(i) for i in idx}
