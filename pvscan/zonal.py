@@ -17,19 +17,25 @@ the block size. In each window:
 3. cell ``(floor(u * n_along), floor(v * n_across))`` and substring
    ``floor(v * bypass_diodes)`` indices are computed;
 4. values are quantised (``[zonal] quantum_k``, 0.01 K) and combined with the group id
-   into one int64 key; one sort per grouping (module, cell, substring) yields every
-   group's order statistics, read with linear interpolation between order statistics
-   (the default of :func:`numpy.percentile`); counts, means and standard deviations come
-   from :func:`numpy.bincount`.
+   into one integer key (int32 when it fits, else int64); one sort per grouping
+   (module, cell, substring) yields every group's order statistics, read with linear
+   interpolation between order statistics (the default of :func:`numpy.percentile`);
+   counts, means and standard deviations come from :func:`numpy.bincount`.
 
-There are no per-polygon loops. A module seen by several tiles is measured from the tile
-with the most valid pixels (ties: the first tile). All temperatures are *apparent*
-[degC], as the ortho holds them; :mod:`pvscan.radiometry` converts them afterwards.
+There are no per-polygon loops. Blocks are visited in strips of a few block columns so
+the tiles neighbouring windows share are still in GDAL's bounded block cache, and are
+processed on ``[zonal] workers`` threads (each with its own dataset handles; results are
+merged in block order, so they do not depend on the number of threads). Memory is
+bounded by ``workers`` blocks plus the result arrays (12 bytes per cell of each module).
+
+A module seen by several tiles is measured from the tile with the most valid pixels
+(ties: the lower tile index). All temperatures are *apparent* [degC], as the ortho holds
+them; :mod:`pvscan.radiometry` converts them afterwards. Footprints of different modules
+should not overlap (as in a real layout); where they do, a pixel goes to the later module.
 """
 from __future__ import annotations
 
 import logging
-import math
 from collections.abc import Callable, Mapping
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
