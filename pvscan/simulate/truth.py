@@ -72,7 +72,7 @@ def module_truth(scene) -> dict:
     pu, pv = pu[glass], pv[glass]
     t_med = np.empty(n)
     t_p95 = np.empty(n)
-    chunk = max(1, 2_000_000 // pu.size)
+    chunk = max(1, 400_000 // pu.size)  # bounded memory: ~400k sample points at a time
     for i0 in range(0, n, chunk):
         ids = np.arange(i0, min(n, i0 + chunk))
         idx = np.repeat(ids, pu.size)
