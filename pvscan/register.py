@@ -91,6 +91,7 @@ _DEFAULTS: dict[str, Any] = {
     "feature": "gradient",
     "gradient_sigma_m": 0.1,
     "upsample": 20,
+    "guard_factor": 2.0,
     "exclusion_m": 0.35,
     "ambiguity_ratio": 0.8,
     "min_module_fraction": 0.02,
@@ -536,7 +537,7 @@ class _BlockData:
     lin: np.ndarray  # 2x2: (dcol, drow) work px -> (dx, dy) m
     radius_px: float
     vote: float = 0.0
-    # sign -> (snr, distinctness, at_limit, [(row, col, height, row_refined, col_refined), ...])
+    # sign -> (snr, distinctness, beyond (dx, dy) or None, [(row, col, height, row_refined, col_refined), ...])
     peaks: dict = field(default_factory=dict)
     record: BlockShift | None = None
 
@@ -556,14 +557,34 @@ def _analyse_block(bd: _BlockData, spec: np.ndarray, cfg: Mapping, signs) -> Non
     work_gsd = math.sqrt(abs(np.linalg.det(bd.lin)))
     ex = max(2.0, float(cfg["exclusion_m"]) / work_gsd)
     up = int(cfg["upsample"])
+    # guard ring: a stronger peak beyond max_shift_m means the true offset may lie outside
+    # the search radius (and the best peak inside it is an alias)
+    guard_px = bd.radius_px * float(cfg["guard_factor"])
+    if guard_px > bd.radius_px:
+        ring, rg = _search_region(surf, guard_px)
+        yy, xx = np.mgrid[-rg:rg + 1, -rg:rg + 1]
+        ring[(yy * yy + xx * xx) <= bd.radius_px * bd.radius_px + 1e-9] = -np.inf
+    else:
+        ring = None
     for sg in signs:
-        (pi, pj), _best, snr, distinct, cands = _peaks(region * sg, r, ex, float(cfg["ambiguity_ratio"]))
+        (pi, pj), best, snr, distinct, cands = _peaks(region * sg, r, ex, float(cfg["ambiguity_ratio"]))
         refined = []
         for ci, cj, h in cands[:_MAX_CANDIDATES]:
             fr, fc = upsampled_peak(spec, (ci, cj), up, half_width=1.0, sign=sg)
             refined.append((ci, cj, h, fr, fc))
-        at_limit = math.hypot(pi, pj) > bd.radius_px - 1.0
-        bd.peaks[sg] = (float(snr), float(distinct), at_limit, refined)
+        beyond = None
+        if ring is not None:
+            rs = np.where(np.isfinite(ring), ring * sg, -np.inf)
+            k = int(np.argmax(rs))
+            if rs.flat[k] > best:
+                bi, bj = np.unravel_index(k, rs.shape)
+                d = bd.lin @ np.array([bj - rg, bi - rg])
+                beyond = (float(d[0]), float(d[1]))
+            # a near-equal peak just beyond the radius makes the block ambiguous too
+            med_r = float(np.median(region[np.isfinite(region)] * sg))
+            if best > med_r:
+                distinct = min(distinct, 1.0 - max(float(rs.flat[k]) - med_r, 0.0) / (best - med_r))
+        bd.peaks[sg] = (float(snr), max(float(distinct), 0.0), beyond, refined)
 
 
 def _prepare_block(orthos, ti, tile, win, mod_geoms, cfg, f, work_gsd):
@@ -798,15 +819,15 @@ def estimate_shift(orthos, modules, settings: Mapping | None = None, *,
     dfull = float(cfg["distinct_full"])
     cands_all = []
     for bd in blocks:
-        snr, distinct, at_limit, cands = bd.peaks[sign]
+        snr, distinct, beyond, cands = bd.peaks[sign]
         c_snr = min(max((snr - snr_min) / max(snr_full - snr_min, 1e-9), 0.0), 1.0)
         c_dis = min(max(distinct / max(dfull, 1e-9), 0.0), 1.0)
         conf = c_snr * c_dis
         rec = bd.record
         rec.snr, rec.distinctness, rec.candidates = snr, distinct, len(cands)
-        if at_limit:
+        if beyond is not None:
             conf = 0.0
-            rec.note = "peak at the search limit (max_shift_m)"
+            rec.note = (f"a stronger peak lies beyond max_shift_m, at ({beyond[0]:+.2f}, {beyond[1]:+.2f}) m")
         rec.confidence = float(conf)
         cands_all.append(cands)
 

@@ -293,6 +293,18 @@ def test_weak_structure_warns_and_applies_nothing():
         estimate_shift(ArrayOrthos([noise], [tr], "EPSG:32633"), mods, {"require": True})
 
 
+@pytest.mark.parametrize("shift", [(4.4, 0.5), (-3.3, 3.6)])
+def test_offset_beyond_the_search_radius_is_flagged_not_aliased(shift):
+    mods = make_layout((500_000.0, 4_000_000.0))
+    img, tr = render(mods, shift, seed=25)
+    with pytest.warns(RegistrationWarning):
+        reg = estimate_shift(ArrayOrthos([img], [tr], "EPSG:32633"), mods, {"max_shift_m": 3.0})
+    assert not reg.applied and reg.shift_m == (0.0, 0.0)
+    assert "beyond max_shift_m" in reg.blocks[0].note
+    wide = run(ArrayOrthos([img], [tr], "EPSG:32633"), mods, max_shift_m=6.0)
+    assert err(wide, shift) < TOL_M
+
+
 def test_flat_image_has_no_usable_block():
     mods = make_layout((500_000.0, 4_000_000.0))
     img, tr = render(mods, (0.0, 0.0), seed=16)
