@@ -391,3 +391,32 @@ def test_distractors_change_only_what_they_should():
     expected = pvlib.temperature.faiman(cloudy.poa * f, cloudy.temp_air, cloudy.wind)
     assert np.allclose(cloudy.temp_healthy, expected, atol=0.01)
     assert f.min() < 1.0 and f.min() >= 1.0 - c.amp - 1e-12
+
+
+def test_every_defect_pattern_is_placed_as_described():
+    from pvscan.simulate import DEFECT_KINDS
+
+    sc = load_scenario(SCENARIOS / "all_defects_rotated.toml")
+    scene = build_scene(sc, 1)
+    t = module_truth(scene)
+    kinds = {d.kind for d in scene.defects}
+    assert kinds == set(DEFECT_KINDS)
+    m = scene.field.modules
+    for d in scene.defects:
+        assert t["delta_t_k"][d.module] > 0.0, d.kind        # every defect is warmer than its reference
+        for u0, u1, v0, v1 in d.boxes:
+            assert 0.0 <= u0 < u1 <= 1.0 and 0.0 <= v0 < v1 <= 1.0
+    run = [d.module for d in scene.defects if d.kind == "open_string"]
+    assert len({m["string_id"][i] for i in run}) == 1
+    assert sorted(m["string_index"][run]) == list(range(1, len(run) + 1))      # the whole string
+    pid = sorted((m["string_index"][d.module], d.params["loss_fraction"]) for d in scene.defects if d.kind == "pid")
+    assert [p[0] for p in pid] == [1, 2, 3]                                  # from the negative end
+    g = scene.geom
+    for d in scene.defects:
+        if d.kind == "soiling":                                              # band at the lower edge
+            assert d.boxes == [(0.0, d.params["height"], 0.0, 1.0)] and g.lower_edge == "u"
+        if d.kind == "junction_box":                                         # centre of the upper short edge
+            assert d.params["centre"][1] == 0.5 and d.params["centre"][0] > 0.9
+    # spot patterns: region temperature is the p95, area patterns the median (contract)
+    sub = next(d for d in scene.defects if d.kind == "bypassed_substring")
+    assert t["delta_t_k"][sub.module] == pytest.approx(scene.dt_open[sub.module], abs=0.5)
