@@ -448,6 +448,9 @@ def test_report_without_ortho_still_builds(tmp_path):
     doc = parse(html_text)
     assert len(doc.cards) == len(PLANTED)
     assert "thermal ortho not found" in html_text.lower()
+    # each card carries a plan of the module with the affected region instead of crops
+    plans = [a for a in doc.imgs if "plan" in (a.get("class") or "")]
+    assert len(plans) == len(PLANTED)
     assert "module median temperature" in " ".join(doc.text).lower() or len(doc.imgs) >= 5
     for a in doc.imgs:
         decode_png(a["src"])

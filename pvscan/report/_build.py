@@ -398,9 +398,9 @@ def _shots(view: ThermalView | None, geo: _MapGeometry, r: pd.Series, ageom, pal
     from rasterio.features import geometry_mask
 
     mods = geo.module_geoms(r)
-    if view is None or not mods:
-        why = "no thermal ortho" if view is None else "module not in the layout"
-        return f'<div class="shots"><div class="nocrop" style="flex:1">thermal crop unavailable ({why})</div></div>'
+    if not mods:
+        return ('<div class="shots"><div class="nocrop" style="flex:1">thermal crop unavailable '
+                '(module not in the layout)</div></div>')
     b = np.array([g.bounds for g in mods + ([ageom] if ageom is not None and not ageom.is_empty else [])])
     x0, y0, x1, y1 = b[:, 0].min(), b[:, 1].min(), b[:, 2].max(), b[:, 3].max()
     m0 = mods[0].bounds
@@ -420,6 +420,19 @@ def _shots(view: ThermalView | None, geo: _MapGeometry, r: pd.Series, ageom, pal
     cx, cy = 0.5 * (x0 + x1), 0.5 * (y0 + y1)
     half = 0.5 * max(float(cfg["context_scale"]) * mlen, 1.6 * max(x1 - x0, y1 - y0) + 2 * pad)
     ctx_box = (cx - half, cy - half, cx + half, cy + half)
+    if view is None:  # a plan of the module and the region instead of thermal pixels
+        from pvscan.report._images import render_schematic
+
+        sev_rgb = tuple(int(figs.SEVERITY_STYLE.get(str(r["severity"]), figs.SEVERITY_STYLE["monitor"])
+                            ["color"][i:i + 2], 16) for i in (1, 3, 5))
+        regions = [ageom] if ageom is not None and not ageom.is_empty else []
+        neigh = [g for g in geo.near(close_box) if not any(g is m for m in mods)]
+        ext = (close_box[0], close_box[2], close_box[1], close_box[3])
+        png = render_schematic(ext, size, modules=mods, neighbours=neigh, regions=regions, region_rgb=sev_rgb)
+        return (f'<div class="shots" style="--crop:{size}px"><figure>'
+                f'{_img(png_data_uri(png), "plan of the module and the affected region", "crop plan")}'
+                '<figcaption>plan: affected region filled (no thermal ortho available)</figcaption>'
+                '</figure></div>')
     close = view.crop(close_box)
     ctx = view.crop(ctx_box)
     if close is None or not np.isfinite(close[0]).any():
@@ -551,9 +564,36 @@ def _conditions_section(data: ResultData, checks: list[dict], ok) -> str:
 <h3>Checks against the acquisition limits</h3>{checks_html}
 <p class="note">The plot of these checks is under <a class="ref" href="#plots">Plots</a>.</p>
 <h3>Conditions during the flight</h3>{cond_html}
+<h3>Inputs</h3>{_inputs_table(data)}
 <p class="note">Layout shift applied to fit the ortho: {dx:+.2f} m east, {dy:+.2f} m north{_e(reg_txt)}.{_e(gsd_txt)}
 Result geometries keep the layout's own positions; the map and crops draw them shifted onto the image.</p>
 </section>"""
+
+
+def _inputs_table(data: ResultData) -> str:
+    inp = data.summary.get("inputs") or {}
+    rows = []
+
+    def add(label: str, value: Any) -> None:
+        if value is None or value == "" or value == []:
+            return
+        if isinstance(value, (list, tuple)):
+            value = ", ".join(Path(str(v)).name for v in value)
+        rows.append(f"<tr><td>{_e(label)}</td><td><code>{_e(value)}</code></td></tr>")
+
+    add("flight manifest", Path(str(inp["manifest"])).name if inp.get("manifest") else None)
+    add("thermal ortho", data.ortho_paths() or inp.get("files"))
+    add("layout", Path(str(inp["layout"])).name if inp.get("layout") else None)
+    add("map CRS", inp.get("crs"))
+    if _isnum(inp.get("gsd_m")):
+        add("ground sampling distance", f"{float(inp['gsd_m']) * 100:.1f} cm/px")
+    missing = inp.get("modules_without_data")
+    if isinstance(missing, list) and missing:
+        add("modules outside the ortho", f"{len(missing)} ({', '.join(map(str, missing[:5]))}"
+                                         f"{' ...' if len(missing) > 5 else ''})")
+    add("pipeline", Path(str(data.summary["pipeline"])).name if data.summary.get("pipeline") else "default")
+    add("pvscan version", data.summary.get("pvscan_version"))
+    return f"<table>{''.join(rows)}</table>" if rows else "<p>Not recorded.</p>"
 
 
 def _method_section(data: ResultData) -> str:
@@ -662,8 +702,11 @@ def _build(data: ResultData, view, modules_gdf, cfg: dict, notes: list[str], pro
         extent_view = (extent_view[0] - pad, extent_view[1] + pad, extent_view[2] - pad, extent_view[3] + pad)
         img_label = "module median temperature [°C]"
     tmed = data.modules["t_median_c"].to_numpy(dtype=float) if len(data.modules) else np.array([])
-    if not (_isnum(site_window[0]) and _isnum(site_window[1])):
-        site_window = colour_window(tmed, cfg["overview_percentiles"], 1.0) if tmed.size else (0.0, 1.0)
+    if not (_isnum(site_window[0]) and _isnum(site_window[1])):  # module temperatures: level on the median
+        site_window = (module_window(tmed, percentile_hi=float(cfg["overview_percentiles"][1]),
+                                     median_level=float(cfg["crop_median_level"]),
+                                     max_rise=float(cfg["crop_max_rise_k"]), min_span=float(cfg["crop_min_span_k"]))
+                       if tmed.size else (0.0, 1.0))
         if not _isnum(site_window[0]):
             site_window = (0.0, 1.0)
     points = []
@@ -737,6 +780,14 @@ def _build(data: ResultData, view, modules_gdf, cfg: dict, notes: list[str], pro
               + "PV arrays are live whenever light falls on them, even when disconnected; hot spots can burn. "
                 "Work on site only by qualified persons under local electrical codes; drone flights only "
                 'under local aviation rules. See <a class="ref" href="#safety">safety cautions</a>.')
+    if view is not None:
+        cards_lead = ("One card per anomaly in priority order. Left: close-up of the module, colour window fitted "
+                      "to the modules in view (healthy modules in the lower third), the affected region outlined in "
+                      '<b style="color:#1aa6c9">cyan</b> and the module in white. Right: the surroundings in the '
+                      "site-wide colour window, for context. Images show the ortho's apparent temperatures.")
+    else:
+        cards_lead = ("One card per anomaly in priority order, with a plan of the module and its affected region "
+                      "(no thermal ortho was available for crops).")
     body = [
         _header(data, totals, ok, now),
         '<main class="page">',
@@ -748,9 +799,7 @@ anomalies marked by severity, the first {int(cfg["overview_labels"])} labelled w
         _counts_section(data),
         _worklist_section(data),
         f'''<section id="cards" class="sheet"><h2>Anomaly cards</h2>
-<p class="lead">One card per anomaly in priority order. Left: close-up of the module, colour window fitted to the
-modules in view (healthy modules in the lower third), the affected region outlined in <b style="color:#1aa6c9">cyan</b> and the module in white. Right: the
-surroundings in the site-wide colour window, for context.</p>
+<p class="lead">{cards_lead}</p>
 <div class="cards">{''.join(cards) if cards else '<p>No anomalies.</p>'}</div></section>''',
         f'''<section id="plots"><h2>Plots</h2><div class="plots">
 {_img(png_data_uri(p_temp), "module temperature distribution")}{_img(png_data_uri(p_dtn), "normalised delta T histogram")}

@@ -15,7 +15,7 @@ from collections.abc import Iterable, Sequence
 import numpy as np
 from PIL import Image, ImageDraw
 
-__all__ = ["Palette", "render_crop", "png_data_uri", "colour_window", "module_window", "quantise_png",
+__all__ = ["Palette", "render_crop", "render_schematic", "png_data_uri", "colour_window", "module_window", "quantise_png",
            "figure_palette"]
 
 _LEVELS = 240
@@ -70,6 +70,35 @@ class Palette:
         idx = np.clip(np.floor(np.nan_to_num(t, nan=0.0) * _LEVELS), 0, _LEVELS - 1).astype(np.uint8)
         idx[~np.isfinite(values)] = IDX_NAN
         return idx
+
+
+def render_schematic(extent, size_px: int, *, modules=(), neighbours=(), regions=(),
+                     region_rgb=(209, 0, 93)) -> bytes:
+    """A plan of the module(s) and the affected region when no thermal pixels are available.
+
+    Neighbouring modules light grey, the module mid grey with a dark outline, the affected
+    region filled in ``region_rgb``. Geometries in map coordinates; ``extent`` as in
+    :func:`render_crop`.
+    """
+    xmin, xmax, ymin, ymax = extent
+    scale = size_px / max(xmax - xmin, ymax - ymin)
+    w, h = max(1, int(round((xmax - xmin) * scale))), max(1, int(round((ymax - ymin) * scale)))
+    img = Image.new("RGB", (w, h), (244, 246, 248))
+    draw = ImageDraw.Draw(img)
+    for geoms, fill, line in ((neighbours, (222, 226, 231), (190, 196, 204)),
+                              (modules, (176, 186, 198), (29, 39, 51)),
+                              (regions, tuple(region_rgb), tuple(region_rgb))):
+        for geom in geoms:
+            for ring in _rings(geom):
+                pts = _to_px(ring, extent, (h, w))
+                draw.polygon(pts, fill=fill, outline=line)
+    for geom in modules:  # the module's outline stays visible over its region
+        for ring in _rings(geom):
+            draw.line(_to_px(ring, extent, (h, w)), fill=(29, 39, 51), width=1)
+    buf = io.BytesIO()
+    img.quantize(colors=16, method=Image.Quantize.FASTOCTREE, dither=Image.Dither.NONE).save(
+        buf, format="PNG", optimize=True)
+    return buf.getvalue()
 
 
 def colour_window(values: np.ndarray, percentiles: Sequence[float], min_span: float) -> tuple[float, float]:
