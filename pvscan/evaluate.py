@@ -16,8 +16,9 @@ a dict of scores:
   matching anomaly when there is one, else from modules.geojson);
 - co-registration: the layout shift the result reports against the offset the truth drew.
 
-Modules are matched by ``module_id``; when fewer than 90 % of the ids match (a layout
-of tables split with other ids), by the nearest centroid within half a module width.
+Modules are matched by ``module_id``; when fewer than ``min_id_match_fraction`` of the ids
+match (a layout of tables split with other ids), by the nearest centroid within
+``match_distance_m`` (pipeline section ``[evaluate]``).
 """
 from __future__ import annotations
 
@@ -77,7 +78,7 @@ def _defect(v):
     return str(v)
 
 
-def _match(truth_feats, res_feats, epsg: int | None):
+def _match(truth_feats, res_feats, epsg: int | None, min_id_fraction: float = 0.9, max_dist_m: float = 0.5):
     """Index of the result feature of each truth module (-1 when none)."""
     ids = {}
     for k, f in enumerate(res_feats):
@@ -85,7 +86,7 @@ def _match(truth_feats, res_feats, epsg: int | None):
         if mid is not None:
             ids.setdefault(str(mid), k)
     by_id = np.array([ids.get(str(f["properties"]["module_id"]), -1) for f in truth_feats])
-    if (by_id >= 0).mean() >= 0.9 or not res_feats:
+    if (by_id >= 0).mean() >= min_id_fraction or not res_feats:
         return by_id, "module_id"
     from pyproj import Transformer
     from scipy.spatial import cKDTree
@@ -104,7 +105,7 @@ def _match(truth_feats, res_feats, epsg: int | None):
     tree = cKDTree(np.stack([rx[ok], ry[ok]], axis=1))
     d, k = tree.query(np.stack([tx, ty], axis=1))
     cand = np.flatnonzero(ok)[np.minimum(k, ok.sum() - 1)]
-    return np.where(d < 0.5, cand, -1), "centroid"
+    return np.where(d < max_dist_m, cand, -1), "centroid"
 
 
 def _ratio(a: float, b: float) -> float | None:
@@ -118,7 +119,7 @@ def _f(x):
     return None if not math.isfinite(x) else round(x, 6)
 
 
-def evaluate(truth_dir, result_dir) -> dict:
+def evaluate(truth_dir, result_dir, settings=None) -> dict:
     """Score a result folder against a simulated flight's truth.
 
     Parameters
@@ -127,6 +128,8 @@ def evaluate(truth_dir, result_dir) -> dict:
         The simulated flight folder (holding ``truth.geojson``) or the truth file itself.
     result_dir : path-like
         The result folder of ``pvscan inspect`` (holding ``modules.geojson``).
+    settings : mapping, optional
+        The pipeline's ``[evaluate]`` section (default: ``load_pipeline()["evaluate"]``).
 
     Returns
     -------
@@ -152,7 +155,12 @@ def evaluate(truth_dir, result_dir) -> dict:
     meta = truth.get("pvscan_truth", {})
     mods = _read_geojson(result_dir / "modules.geojson", OutputError)
     rf = mods["features"]
-    match, how = _match(tf, rf, meta.get("epsg"))
+    if settings is None:
+        from pvscan.settings import load_pipeline
+
+        settings = load_pipeline()["evaluate"]
+    match, how = _match(tf, rf, meta.get("epsg"), float(settings.get("min_id_match_fraction", 0.9)),
+                        float(settings.get("match_distance_m", 0.5)))
 
     tp = [f["properties"] for f in tf]
     rp = [f.get("properties", {}) for f in rf]
