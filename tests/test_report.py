@@ -696,3 +696,33 @@ def test_healthy_plant_report_and_summary(tmp_path):
     r = CliRunner().invoke(show, [])
     assert r.exit_code == 0, r.output
     assert "anomalies 0" in r.output and "power loss 0 W" in r.output
+
+
+def test_markup_is_balanced(report_html):
+    """Every element that HTML requires to be closed is closed, in order (WHATWG HTML: void
+    elements have no end tag; p, li, dt, dd, tr, td, th may omit theirs but we close them)."""
+    void = {"area", "base", "br", "col", "embed", "hr", "img", "input", "link", "meta", "source",
+            "track", "wbr"}
+
+    class Balance(HTMLParser):
+        def __init__(self):
+            super().__init__()
+            self.stack, self.problems = [], []
+
+        def handle_starttag(self, tag, attrs):
+            if tag not in void:
+                self.stack.append(tag)
+
+        def handle_endtag(self, tag):
+            if not self.stack or self.stack[-1] != tag:
+                self.problems.append((tag, list(self.stack[-3:])))
+            else:
+                self.stack.pop()
+
+    b = Balance()
+    b.feed(report_html)
+    b.close()
+    assert b.problems == [] and b.stack == []
+    assert report_html.lstrip().startswith("<!DOCTYPE html>")
+    ids = re.findall(r'\sid="([^"]+)"', report_html)
+    assert len(ids) == len(set(ids)), "element ids are unique"
