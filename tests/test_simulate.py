@@ -80,11 +80,15 @@ def _band_radiance_quad(temp_k, band=(7.5e-6, 13.5e-6)):
     return integrate.quad(f, *band, epsabs=0, epsrel=1e-10)[0]
 
 
-def test_apparent_temperature_against_planck_quadrature():
+@pytest.mark.parametrize("export", [{"emissivity": 1.0, "reflected_c": 20.0},
+                                    {"emissivity": 0.95, "reflected_c": 5.0}])
+def test_apparent_temperature_against_planck_quadrature(export):
     # Independent reference: L_sensor = tau*(eps*L(T) + (1-eps)*L(T_sky)) + (1-tau)*L(T_air),
     # L = Planck's law integrated over 7.5-13.5 um by quadrature with CODATA constants; the
-    # export (emissivity 1) reports the temperature of that band radiance. 0.01 K tolerance.
-    scene = build_scene(_quiet(defects={"open_module": 1}), 3)
+    # export reports T_app with eps_x*L(T_app) + (1-eps_x)*L(T_refl_x) = L_sensor.
+    # 0.01 K tolerance.
+    scene = build_scene(_quiet(defects={"open_module": 1}, export=export), 3)
+    eps_x, t_rx = export["emissivity"], export["reflected_c"] + 273.15
     x, y = scene.pixel_centres(0, 0, scene.height, scene.width)
     s = scene.true_scene(x, y)
     app = np.asarray(scene.apparent(s))
@@ -96,7 +100,8 @@ def test_apparent_temperature_against_planck_quadrature():
         L = tau * (eps * _band_radiance_quad(s["temp"].ravel()[p] + 273.15)
                    + (1 - eps) * _band_radiance_quad(s["temp_sky"].ravel()[p] + 273.15)) \
             + (1 - tau) * _band_radiance_quad(s["temp_atm"].ravel()[p] + 273.15)
-        t_app = optimize.brentq(lambda t: _band_radiance_quad(t) - L, 150.0, 500.0, xtol=1e-6) - 273.15
+        L_app = (L - (1 - eps_x) * _band_radiance_quad(t_rx)) / eps_x
+        t_app = optimize.brentq(lambda t: _band_radiance_quad(t) - L_app, 150.0, 500.0, xtol=1e-6) - 273.15
         assert abs(app.ravel()[p] - t_app) < 0.01
 
 
