@@ -81,7 +81,7 @@ SPOT_DEFECTS = frozenset({"hot_cell", "hot_cell_multi", "junction_box"})
 
 _CLASSIFY_DEFAULTS = {
     "min_valid_fraction": 0.6,
-    "min_cell_fraction": 0.5,
+    "min_cell_fraction": 0.2,
     "noise_z": 5.0,
     "module_z": 3.0,
     "local_irradiance": True,
@@ -612,6 +612,21 @@ def pattern_hot_cell(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
     Xc = np.where(cand, X, -np.inf)
     peak = ndimage.maximum_filter(Xc, size=(1, 3, 3), mode="constant", cval=-np.inf)
     hot = cand & (X >= float(cfg["hot_cell_peak_share"]) * peak)
+    # a hot cell at a short edge cut away by the edge margin (no pixels) shows only as heat
+    # bleeding into the p95 of the cell inside it: a spot there, away from any junction box
+    A, C = F.n_along, F.n_across
+    nan_c = ~np.isfinite(F.R)
+    beyond = np.zeros_like(nan_c)
+    beyond[:, 1, :] = nan_c[:, 0, :]
+    beyond[:, A - 2, :] |= nan_c[:, A - 1, :]
+    loc95 = X95 - _box_filter_median(X95)
+    with np.errstate(invalid="ignore"):
+        edge_spot = (beyond & (X95 >= thr) & (loc95 >= float(cfg["hot_cell_contrast_min"]) * X95)
+                     & ~_box_cells(F)[None] & ~cand)
+    Xe = np.where(edge_spot, X95, -np.inf)
+    peak_e = ndimage.maximum_filter(np.maximum(Xe, np.where(hot, X95, -np.inf)), size=(1, 3, 3),
+                                    mode="constant", cval=-np.inf)
+    hot |= edge_spot & (X95 >= peak_e)
     hot &= F.ok[:, None, None]
     count = hot.sum(axis=(1, 2))
     n = F.n
@@ -621,7 +636,6 @@ def pattern_hot_cell(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
     conf = _conf(_quality(xmax, thr))
     single = Hits("hot_cell", count == 1, conf, temp)
     multi = Hits("hot_cell_multi", count >= 2, conf, temp)
-    A, C = F.n_along, F.n_across
     for i in np.flatnonzero(count):
         cells = np.argwhere(hot[i])
         target = single if len(cells) == 1 else multi
@@ -635,6 +649,34 @@ def _box_centres(F: Features) -> list[tuple[float, float]]:
     if F.split_box:
         return [(0.5, (k + 0.5) / F.nsub) for k in range(F.nsub)]
     return [(0.0, 0.5), (1.0, 0.5)]
+
+
+def _box_block(F: Features, u0: float, v0: float) -> tuple[np.ndarray, np.ndarray]:
+    """Cell rows and columns meeting at a junction box centre (u0, v0).
+
+    At a short edge the two outermost rows are taken: the outermost may have lost its
+    pixels to the edge margin.
+    """
+    A, C = F.n_along, F.n_across
+    uc = (np.arange(A) + 0.5) / A
+    vc = (np.arange(C) + 0.5) / C
+    if u0 <= 0.0:
+        ii = np.arange(min(2, A))
+    elif u0 >= 1.0:
+        ii = np.arange(max(A - 2, 0), A)
+    else:
+        ii = np.flatnonzero(np.abs(uc - u0) <= 1.0 / A + 1e-9)
+    jj = np.flatnonzero(np.abs(vc - v0) <= 1.0 / C + 1e-9)
+    return ii, jj
+
+
+def _box_cells(F: Features) -> np.ndarray:
+    """(A, C) mask of the cells at any junction box position."""
+    mask = np.zeros((F.n_along, F.n_across), bool)
+    for (u0, v0) in _box_centres(F):
+        ii, jj = _box_block(F, u0, v0)
+        mask[np.ix_(ii, jj)] = True
+    return mask
 
 
 def pattern_junction_box(F: Features, cfg: Mapping) -> Hits:
@@ -662,8 +704,7 @@ def pattern_junction_box(F: Features, cfg: Mapping) -> Hits:
     best_box = [None] * n
     best_q = np.zeros(n)
     for (u0, v0) in _box_centres(F):
-        ii = np.flatnonzero(np.abs(uc - u0) <= 1.0 / A + 1e-9)
-        jj = np.flatnonzero(np.abs(vc - v0) <= 1.0 / C + 1e-9)
+        ii, jj = _box_block(F, u0, v0)
         sub95 = X95[:, ii][:, :, jj].reshape(n, -1)
         subm = X[:, ii][:, :, jj].reshape(n, -1)
         subt = F.cp[:, ii][:, :, jj].reshape(n, -1)
@@ -688,7 +729,9 @@ def pattern_junction_box(F: Features, cfg: Mapping) -> Hits:
         around = np.where(np.isfinite(around), around, -np.inf).max(axis=1)
         with np.errstate(invalid="ignore"):
             spot = med_top <= float(cfg["junction_box_spot_max"]) * top
-            straddle = second >= float(cfg["junction_box_straddle_min"]) * top
+            # a box cell cut away by the edge margin (no pixels) cannot be checked
+            n_valid = np.isfinite(sub95).sum(axis=1)
+            straddle = (second >= float(cfg["junction_box_straddle_min"]) * top) | (n_valid < 2)
             alone = ((top - rest) >= 0.5 * top) & (around < top)
         ok = (top >= thr) & spot & straddle & alone
         better = ok & (top > best)
@@ -720,8 +763,10 @@ def _edge_profile(F: Features, X: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     L = max(A, C)
     prof = np.full((n, L), np.nan)
     lu = F.lower_u
-    prof[lu, :A] = _nanmedian(X[lu], axis=2)
-    prof[~lu, :C] = _nanmedian(X[~lu], axis=1)
+    ok = np.isfinite(X)
+    # a line with fewer than half its cells imaged (edge margin) says nothing
+    prof[lu, :A] = np.where(ok[lu].mean(axis=2) >= 0.5, _nanmedian(X[lu], axis=2), np.nan)
+    prof[~lu, :C] = np.where(ok[~lu].mean(axis=1) >= 0.5, _nanmedian(X[~lu], axis=1), np.nan)
     return prof, np.where(lu, A, C)
 
 
@@ -752,7 +797,8 @@ def pattern_soiling(F: Features, cfg: Mapping) -> Hits:
     depth = np.argmin(np.concatenate([up, np.zeros((n, 1), bool)], axis=1), axis=1)
     maxd = np.ceil(length / 3.0).astype(int)
     lines = np.arange(L)[None, :]
-    rest = np.where((lines >= depth[:, None]) & (lines < length[:, None]), prof, np.nan)
+    # the line just above the band is its fringe; the rest of the module must stay cool
+    rest = np.where((lines >= depth[:, None] + 1) & (lines < length[:, None]), prof, np.nan)
     rest_max = _nanmax(rest, axis=1)
     top = prof[np.arange(n), np.maximum(length - 1, 0)]
     # coverage along the edge: band cells raised by half the band, among valid cells
@@ -760,10 +806,15 @@ def pattern_soiling(F: Features, cfg: Mapping) -> Hits:
     line_of = np.where(F.lower_u[:, None, None], ii[None], jj[None])          # (n, A, C)
     in_band = line_of < depth[:, None, None]
     valid = np.isfinite(X95)
+    edge_len = np.where(F.lower_u, C, A)
+    n_band = (in_band & valid).sum(axis=(1, 2))
+    # flat along the edge: a band, not a few hot cells
+    spread = _iqr(np.where(in_band, X95, np.nan).reshape(n, -1), axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
         raised = (X95 >= 0.5 * band[:, None, None]) & in_band & valid
-        cover = raised.sum(axis=(1, 2)) / np.maximum((in_band & valid).sum(axis=(1, 2)), 1)
+        cover = raised.sum(axis=(1, 2)) / np.maximum(n_band, 1)
         hit = (F.ok & (band >= thr) & (depth >= 1) & (depth <= maxd) & (cover >= float(cfg["soiling_cover_min"]))
+               & (n_band >= 0.5 * edge_len) & (spread <= 0.5 * band)
                & (np.nan_to_num(rest_max, nan=0.0) <= float(cfg["soiling_top_max"]) * band)
                & (np.nan_to_num(top, nan=0.0) <= float(cfg["soiling_top_max"]) * band))
     temp = _nanmedian(np.where(in_band, F.cp, np.nan).reshape(n, -1), axis=1)
