@@ -917,6 +917,19 @@ def estimate_shift(orthos, modules, settings: Mapping | None = None, *,
     sx = tx + a * (mxc - x0) - b * (myc - y0)
     sy = ty + b * (mxc - x0) + a * (myc - y0)
     reg.measured_m = (float(sx), float(sy))
+    if reg.model is not None:
+        # the field is extrapolated to the whole layout: refuse implausible extrapolations
+        # (blocks clustered in one corner) and use the single shift instead
+        corners_x = np.array([lx0, lx0, lx1, lx1])
+        corners_y = np.array([ly0, ly1, ly0, ly1])
+        fx = tx + a * (corners_x - x0) - b * (corners_y - y0)
+        fy = ty + b * (corners_x - x0) + a * (corners_y - y0)
+        spread = float(np.max(np.hypot(fx - sx, fy - sy)))
+        if spread > float(cfg["max_shift_m"]):
+            reg.notes.append(f"shift field varies by {spread:.2f} m across the layout (more than "
+                             f"max_shift_m); one shift is used for all modules")
+            reg.model = None
+            reg.follow_drift = False
     # confidence: mean confidence of the used blocks times the weight fraction they hold
     wi = w[inl]
     conf = float(np.sum(wi * wi) / np.sum(wi)) * float(np.sum(wi) / np.sum(w)) if wi.sum() > 0 else 0.0

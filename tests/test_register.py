@@ -381,6 +381,10 @@ def test_drift_rotation_is_measured_and_followed():
     assert float(np.max(truth.distance(moved))) < TOL_M
     fixed = apply_shift(mods, reg.shift_m).centroid   # one shift for all is worse at the ends
     assert float(np.max(truth.distance(fixed))) > 2 * float(np.max(truth.distance(moved)))
+    single = run(ArrayOrthos([img], [tr], "EPSG:32633"), mods, block_m=25.0, follow_drift=False)
+    same = apply_shift(mods, single).centroid
+    np.testing.assert_allclose(shapely.get_x(same.to_numpy()) - shapely.get_x(mods.centroid.to_numpy()),
+                               single.shift_m[0], atol=1e-9)
 
 
 def test_outlier_block_rejected():
