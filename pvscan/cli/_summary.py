@@ -72,6 +72,9 @@ def summary_lines(result_dir, top: int | None = None) -> list[str]:
             act = str(r.get("action") or "")
             act = act if act and act != "nan" else ""
             act = act.split(". ")[0].split("; ")[0].rstrip(".")
+            head, sep, rest = act.partition(": ")
+            if sep and len(head) <= 24 and rest:  # "Urgent (safety): ..." - the severity is shown
+                act = rest[:1].upper() + rest[1:]
             s = (f"  {prio:>2} {str(r['severity']):<7} {str(r['module_id']):<14} "
                  f"{str(r['defect']).replace('_', ' '):<22} dT {_f(r['delta_t_k'], 1, 'K'):>7} "
                  f"{_f(r['power_loss_w'], 0, 'W'):>7}  {act}")
