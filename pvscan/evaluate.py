@@ -5,7 +5,8 @@
 a dict of scores:
 
 - module level (defective vs healthy): precision, recall, F1, false alarms per 1,000
-  healthy modules;
+  healthy modules, and the false alarms counted by the distractor (seam, reflection,
+  cloud shadow, hot object, or none) the truth records at the module;
 - per class: recall and precision with the right class, and the confusion matrix
   (truth class x predicted class, ``none`` for healthy);
 - power loss: predicted / true total, absolute and relative error, and per anomaly
@@ -215,6 +216,10 @@ def evaluate(truth_dir, result_dir, settings=None) -> dict:
                         "recall": _f(_ratio(right, n_true)), "precision": _f(_ratio(right, n_pred)),
                         "detected_any_class": _f(_ratio(detected, n_true))}
     class_ok = sum(1 for a, b in zip(t_def, p_def) if a and a == b)
+    fa_tags: dict[str, int] = {}
+    for i in np.flatnonzero(~t_bad & p_bad):
+        for tag in tp[i].get("distractors") or ["none"]:
+            fa_tags[tag] = fa_tags.get(tag, 0) + 1
 
     # power loss
     t_loss = np.array([_num(p.get("power_loss_w")) for p in tp])
@@ -284,7 +289,8 @@ def evaluate(truth_dir, result_dir, settings=None) -> dict:
         "module": {"true_positive": TP, "false_positive": FP, "false_negative": FN,
                    "precision": _f(precision), "recall": _f(recall), "f1": _f(f1),
                    "false_alarms_per_1000_healthy": _f(1000.0 * FP / n_healthy if n_healthy else None),
-                   "class_accuracy_of_true_defects": _f(_ratio(class_ok, int(t_bad.sum())))},
+                   "class_accuracy_of_true_defects": _f(_ratio(class_ok, int(t_bad.sum()))),
+                   "false_alarms_by_distractor": fa_tags},
         "per_class": per_class,
         "confusion": {"labels": labels, "matrix": confusion},
         "power_loss": {"true_total_w": _f(total_t), "predicted_total_w": _f(total_p),
@@ -311,7 +317,9 @@ def format_report(scores: dict) -> str:
              f"{scores['n_modules']} by {scores['matched_by']})", "",
              f"defective modules  true {scores['n_defective_true']}  predicted {scores['n_defective_predicted']}",
              f"precision {fmt(m['precision'], True)}   recall {fmt(m['recall'], True)}   F1 {fmt(m['f1'])}",
-             f"false alarms per 1,000 healthy modules  {fmt(m['false_alarms_per_1000_healthy'])}", "",
+             f"false alarms per 1,000 healthy modules  {fmt(m['false_alarms_per_1000_healthy'])}"
+             + (f"  (at distractors: {', '.join(f'{k} {v}' for k, v in sorted(m['false_alarms_by_distractor'].items()))})"
+                if m.get("false_alarms_by_distractor") else ""), "",
              f"{'class':<26}{'true':>6}{'pred':>6}{'right':>7}{'recall':>9}{'precision':>11}"]
     for c, v in scores["per_class"].items():
         lines.append(f"{c:<26}{v['n_true']:>6}{v['n_predicted']:>6}{v['correct']:>7}"

@@ -212,6 +212,34 @@ class Scene:
             f = f * (1.0 - c(np.asarray(x), np.asarray(y)))
         return f
 
+    def distractors_at_modules(self) -> list[list[str]]:
+        """Distractors touching each module: ``seam`` (its centre lies in a mosaic seam
+        rectangle), ``reflection`` (sky reflection above 2 K at its centre), ``cloud_shadow``
+        (irradiance lowered by more than 5 %), ``hot_object`` (within 3 m of one)."""
+        m = self.field.modules
+        cx, cy = m["cx"], m["cy"]
+        col = (cx - self.x0) / self.gsd
+        row = (self.y1 - cy) / self.gsd
+        tags: list[list[str]] = [[] for _ in range(self.field.n_modules)]
+        in_seam = np.zeros(cx.shape, bool)
+        for r0, r1, c0, c1, _ in self.seams:
+            in_seam |= (row >= r0) & (row < r1) & (col >= c0) & (col < c1)
+        refl = np.zeros(cx.shape)
+        for r in self.reflections:
+            refl += r(cx, cy)
+        cloud = self.cloud_factor(cx, cy) < 0.95
+        s, w = self.field.to_field(cx, cy)
+        near = np.zeros(cx.shape, bool)
+        for _kind, s0, s1, w0, w1, _rise in self.objects:
+            ds = np.maximum(0.0, np.maximum(s0 - s, s - s1))
+            dw = np.maximum(0.0, np.maximum(w0 - w, w - w1))
+            near |= np.hypot(ds, dw) < 3.0
+        for name, flag in (("seam", in_seam), ("reflection", refl > 2.0), ("cloud_shadow", cloud),
+                           ("hot_object", near)):
+            for i in np.flatnonzero(flag):
+                tags[i].append(name)
+        return tags
+
     def _place_seams(self, rng, n, step_range):
         """Rectangles (row0, row1, col0, col1, step_k) in pixels of the global grid."""
         out = []

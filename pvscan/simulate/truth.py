@@ -13,6 +13,9 @@ Definitions follow the project's output contract:
   minus the reference.
 - ``delta_t_norm_k = delta_t_k * (1000 / G) * (U(v) / U(1))`` with ``U(v) = u0 + u1 * v`` and
   the irradiance ``G`` and wind ``v`` logged when the module was imaged.
+
+``truth.geojson`` also lists, per module, the ``distractors`` touching it (``seam``,
+``reflection``, ``cloud_shadow``, ``hot_object``), so false alarms can be traced to them.
 """
 from __future__ import annotations
 

@@ -324,6 +324,7 @@ def write_truth(scene, truth: dict, out_dir: Path, extra: dict) -> tuple[str, st
     off = np.asarray(scene.sc["layout"]["offset_m"], float)
     tr = _to_lonlat(fld.epsg)
     feats = []
+    tags = scene.distractors_at_modules()
     for i in range(fld.n_modules):
         d = scene.defect_of.get(i)
         props = {
@@ -342,6 +343,7 @@ def write_truth(scene, truth: dict, out_dir: Path, extra: dict) -> tuple[str, st
             "poa_global": scene.poa[i], "poa_thermal": scene.poa_thermal[i], "poa_local": scene.poa_local[i],
             "wind_speed": scene.wind[i], "temp_air": scene.temp_air[i],
             "time": (scene.start + timedelta(seconds=float(scene.t_imaged[i]))).isoformat(),
+            "distractors": tags[i],
         }
         if d:
             props["region_uv"] = [list(b) for b in d.boxes]
