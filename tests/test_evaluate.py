@@ -50,7 +50,7 @@ def _write(tmp_path, *, ids=True, shift=0.0, anomalies=True):
     for k, (mid, d, loss, dtn, grp) in enumerate(TRUTH):
         feats.append({"type": "Feature", "geometry": _square(k), "properties": {
             "module_id": mid, "defect": d, "power_loss_w": loss, "delta_t_norm_k": dtn,
-            "defect_group": grp, "t_true_median_c": T_TRUE[k]}})
+            "defect_group": grp, "t_true_median_c": T_TRUE[k], "distractors": ["seam"] if k == 7 else []}})
     (tdir / "truth.geojson").write_text(json.dumps(_fc(feats, pvscan_truth={"layout_offset_m": [0.5, 0.0]})))
     res = []
     for k, (mid, *_rest) in enumerate(TRUTH):
@@ -78,6 +78,7 @@ def test_scores_worked_by_hand(tmp_path):
     assert m["recall"] == pytest.approx(0.5)
     assert m["f1"] == pytest.approx(2 * (2 / 3) * 0.5 / (2 / 3 + 0.5), abs=1e-6)
     assert m["false_alarms_per_1000_healthy"] == pytest.approx(1000 / 6, abs=1e-3)
+    assert m["false_alarms_by_distractor"] == {"seam": 1}
     pc = s["per_class"]
     assert pc["open_module"]["recall"] == 1.0 and pc["hot_cell"]["recall"] == 0.0
     assert pc["hot_cell"]["detected_any_class"] == 1.0
