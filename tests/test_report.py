@@ -726,3 +726,19 @@ def test_markup_is_balanced(report_html):
     assert report_html.lstrip().startswith("<!DOCTYPE html>")
     ids = re.findall(r'\sid="([^"]+)"', report_html)
     assert len(ids) == len(set(ids)), "element ids are unique"
+
+
+def test_report_command_with_moved_ortho(tmp_path):
+    """`pvscan report --ortho` draws from a tile given on the command line when the one named
+    in summary.json is gone."""
+    from click.testing import CliRunner
+
+    from pvscan.cli.main import cli
+
+    res = build_result(tmp_path, with_ortho=False)
+    tif = tmp_path / "flight" / "thermal.tif"
+    r = CliRunner().invoke(cli, ["report", str(res), "--ortho", str(tif)])
+    assert r.exit_code == 0, r.output
+    doc = parse((res / "report.html").read_text())
+    crops = [a for a in doc.imgs if (a.get("class") or "") == "crop"]
+    assert len(crops) == 2 * len(PLANTED)

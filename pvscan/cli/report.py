@@ -14,7 +14,7 @@ from pvscan.cli._common import Progress, echo, handle_errors
               help="Where to write the report (default: RESULT_DIR/report.html, replaced).")
 @click.option("--ortho", "orthos", multiple=True, type=click.Path(dir_okay=False, path_type=Path),
               help="Thermal ortho tile(s) to draw, when the result folder moved away from them "
-                   "(repeat for several tiles; values read as degC).")
+                   "(repeat for several tiles; units from the flight manifest when it is found, else degC).")
 @click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
               help="Pipeline settings whose [report] section to use.")
 @handle_errors
@@ -31,13 +31,8 @@ def report_cmd(result_dir, out_path, orthos, pipeline_path):
     settings = load_pipeline(pipeline_path)["report"]
     progress = Progress()
     try:
-        if orthos:
-            from pvscan.ortho import open_orthos
-
-            with open_orthos(list(orthos)) as oset:
-                path = write_report(result_dir, out_path, orthos=oset, settings=settings, progress=progress)
-        else:
-            path = write_report(result_dir, out_path, settings=settings, progress=progress)
+        path = write_report(result_dir, out_path, settings=settings, ortho_paths=list(orthos) or None,
+                            progress=progress)
     finally:
         progress.close()
     echo(f"report written: {path}")

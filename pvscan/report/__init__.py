@@ -3,9 +3,9 @@
 Public API
 ----------
 write_report(result_dir, out_path=None, *, orthos=None, modules=None, flight=None,
-             stats=None, settings=None, progress=None) -> Path
+             stats=None, settings=None, ortho_paths=None, progress=None) -> Path
 build_report(result_dir, *, orthos=None, modules=None, flight=None, settings=None,
-             progress=None) -> str
+             ortho_paths=None, progress=None) -> str
 load_result(result_dir) -> ResultData
 """
 from __future__ import annotations

@@ -192,10 +192,10 @@ class _MapGeometry:
 
 
 # ---------------------------------------------------------------------- thermal source
-def _ortho_spec_and_paths(data: ResultData, flight) -> tuple[list[Path], Any]:
+def _ortho_spec_and_paths(data: ResultData, flight, override=None) -> tuple[list[Path], Any]:
     if flight is not None:
-        return list(flight.flight.orthos), flight.ortho
-    paths = data.ortho_paths()
+        return (list(override) if override else list(flight.flight.orthos)), flight.ortho
+    paths = [Path(p) for p in override] if override else data.ortho_paths()
     spec = get_path(data.summary, "inputs.ortho_spec", "inputs.ortho", default=None)
     manifest = data.manifest_path()
     if manifest is not None:
@@ -204,18 +204,18 @@ def _ortho_spec_and_paths(data: ResultData, flight) -> tuple[list[Path], Any]:
 
             fl = load_flight(manifest, check_files=False)
             spec = fl.ortho
-            if not paths or not all(p.exists() for p in paths):
+            if not override and (not paths or not all(p.exists() for p in paths)):
                 paths = list(fl.flight.orthos)
         except PvscanError as exc:
             log.info("manifest %s not usable for the report: %s", manifest, exc)
     return paths, (spec if not isinstance(spec, Mapping) else dict(spec))
 
 
-def _open_view(data: ResultData, orthos, flight, notes: list[str]):
+def _open_view(data: ResultData, orthos, flight, notes: list[str], ortho_paths=None):
     """(ThermalView or None, ortho set to close or None)."""
     if orthos is not None:
         return ThermalView(orthos), None
-    paths, spec = _ortho_spec_and_paths(data, flight)
+    paths, spec = _ortho_spec_and_paths(data, flight, ortho_paths)
     if not paths:
         notes.append("No thermal ortho is named in summary.json: the map shows module temperatures "
                      "and the cards show no thermal crops.")
@@ -654,12 +654,13 @@ def _settings(settings: Mapping | None) -> dict:
 
 
 def build_report(result_dir: str | Path, *, orthos=None, modules=None, flight=None,
-                 settings: Mapping | None = None, progress: ProgressFn | None = None) -> str:
+                 settings: Mapping | None = None, ortho_paths=None,
+                 progress: ProgressFn | None = None) -> str:
     """The report of a result folder as one HTML string (see :func:`write_report`)."""
     cfg = _settings(settings)
     data = load_result(result_dir)
     notes: list[str] = []
-    view, own = _open_view(data, orthos, flight, notes)
+    view, own = _open_view(data, orthos, flight, notes, ortho_paths)
     try:
         return _build(data, view, modules, cfg, notes, progress)
     finally:
@@ -819,7 +820,7 @@ anomalies marked by severity, the first {int(cfg["overview_labels"])} labelled w
 
 
 def write_report(result_dir: str | Path, out_path: str | Path | None = None, *, orthos=None, modules=None,
-                 flight=None, stats=None, settings: Mapping | None = None,
+                 flight=None, stats=None, settings: Mapping | None = None, ortho_paths=None,
                  progress: ProgressFn | None = None) -> Path:
     """Write the self-contained inspection report ``report.html``.
 
@@ -843,6 +844,10 @@ def write_report(result_dir: str | Path, out_path: str | Path | None = None, *, 
         Accepted from the pipeline and not used: the report reads the result files.
     settings : mapping, optional
         The pipeline or its ``[report]`` section; missing keys take the defaults.
+    ortho_paths : sequence of path-like, optional
+        Ortho tiles to read instead of those named in ``summary.json`` (a result folder
+        moved away from its flight); their units come from the flight manifest when
+        ``summary.json`` names one that exists, else degC.
     progress : callable, optional
         ``progress(stage, done, total)``.
 
@@ -856,7 +861,7 @@ def write_report(result_dir: str | Path, out_path: str | Path | None = None, *, 
     del stats
     out = Path(out_path) if out_path is not None else Path(result_dir) / "report.html"
     text = build_report(result_dir, orthos=orthos, modules=modules, flight=flight, settings=settings,
-                        progress=progress)
+                        ortho_paths=ortho_paths, progress=progress)
     atomic_write(out, text)
     log.info("report written to %s (%.1f MB)", out, len(text.encode("utf-8")) / 1e6)
     return out
