@@ -13,7 +13,7 @@ a dict of scores:
   (bypassed substrings, open modules and strings, PID strings) the relative error of the
   loss summed over the anomaly's modules;
 - temperatures: RMSE and bias of ``t_median_c`` against ``t_true_median_c`` of healthy
-  modules; median absolute error of ``delta_t_norm_k`` of defective modules (from the
+  modules (also of those with no distractor at them); median absolute error of ``delta_t_norm_k`` of defective modules (from the
   matching anomaly when there is one, else from modules.geojson);
 - co-registration: the layout shift the result reports against the offset the truth drew.
 
@@ -252,6 +252,9 @@ def evaluate(truth_dir, result_dir, settings=None) -> dict:
     err = t_meas[sel] - t_true[sel]
     rmse = float(np.sqrt(np.mean(err ** 2))) if err.size else None
     bias = float(np.mean(err)) if err.size else None
+    clean = sel & np.array([not p.get("distractors") for p in tp])
+    err_c = t_meas[clean] - t_true[clean]
+    rmse_clean = float(np.sqrt(np.mean(err_c ** 2))) if err_c.size else None
 
     dn_true = np.array([_num(p.get("delta_t_norm_k")) for p in tp])
     dn_pred = np.full(n, math.nan)
@@ -298,6 +301,7 @@ def evaluate(truth_dir, result_dir, settings=None) -> dict:
                        "rel_error": _f((total_p - total_t) / total_t if total_t else None),
                        "per_kind": loss_by_kind, "per_anomaly": per_anomaly},
         "temperature": {"healthy_rmse_k": _f(rmse), "healthy_bias_k": _f(bias), "n_healthy": int(sel.sum()),
+                        "healthy_rmse_no_distractor_k": _f(rmse_clean), "n_healthy_no_distractor": int(clean.sum()),
                         "delta_t_norm_median_abs_error_k": _f(dn_mae),
                         "delta_t_norm_median_abs_error_detected_k": _f(dn_mae_found),
                         "n_defective_scored": int(dsel.sum())},
@@ -336,7 +340,8 @@ def format_report(scores: dict) -> str:
               f"  ratio {fmt(pl['ratio'])}  error {fmt(pl['rel_error'], True)}"]
     for k, v in pl["per_kind"].items():
         lines.append(f"  {k:<26} n={v['n']:<3} median |rel. error| {fmt(v['median_abs_rel_error'], True)}")
-    lines += ["", f"healthy modules: temperature RMSE {fmt(t['healthy_rmse_k'])} K, bias {fmt(t['healthy_bias_k'])} K",
+    lines += ["", f"healthy modules: temperature RMSE {fmt(t['healthy_rmse_k'])} K, bias {fmt(t['healthy_bias_k'])} K"
+              f" (RMSE {fmt(t.get('healthy_rmse_no_distractor_k'))} K away from distractors)",
               f"defective modules: median |error| of delta_t_norm_k {fmt(t['delta_t_norm_median_abs_error_k'])} K"]
     if scores.get("registration"):
         r = scores["registration"]

@@ -97,6 +97,7 @@ def test_scores_worked_by_hand(tmp_path):
     t = s["temperature"]
     assert t["healthy_rmse_k"] == pytest.approx(0.3, abs=1e-6)
     assert t["healthy_bias_k"] == pytest.approx(0.0, abs=1e-6)
+    assert t["n_healthy_no_distractor"] == 5 and t["healthy_rmse_no_distractor_k"] == pytest.approx(0.3, abs=1e-6)
     # delta_t_norm errors: M0 |4 - 5| = 1 (anomaly), M1 |27 - 30| = 3 (anomaly),
     # M2 |0 - 5.5| = 5.5, M3 |0 - 5.4| = 5.4 (modules.geojson) -> median of (1, 3, 5.4, 5.5) = 4.2
     assert t["delta_t_norm_median_abs_error_k"] == pytest.approx(4.2, abs=1e-6)
