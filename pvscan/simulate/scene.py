@@ -121,7 +121,6 @@ class Scene:
     def __init__(self, sc: dict, seed: int):
         self.sc = sc
         self.seed = int(seed)
-        rng = np.random.default_rng([self.seed, 1])
         self.field = fld = build_field(sc)
         m = sc["module"]
         half = bool(m["half_cut"])
