@@ -516,23 +516,18 @@ def pattern_bypassed_substring(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
     return single, multi
 
 
-def _walk(adj: np.ndarray, start: int, col: int, steps: int = 3) -> list[int]:
-    """Up to ``steps`` modules beyond module ``start`` across its edge ``col`` (same direction)."""
-    out, cur = [], int(adj[start, col])
-    while cur >= 0 and len(out) < steps and cur != start and cur not in out:
-        out.append(cur)
-        cur = int(adj[cur, col])
-    return out
-
-
 def _carried_across_edge(F: Features, raised: np.ndarray, candidates: np.ndarray) -> np.ndarray:
-    """True where a raised edge strip carries on beyond the module's edge.
+    """True where a raised edge strip is a step of the image rather than of the module.
 
-    A bypassed substring ends at the module's edge; a mosaic seam (a step of the image,
-    not of the plant) does not: the modules beyond the raised edge are warmer than those
-    beyond the cool edge by about the step. Up to three modules on each side are compared
-    (median), so the module-to-module spread does not decide; at a row end the strip of
-    the touching module facing the raised one is compared instead.
+    A mosaic seam is a straight step across the ortho: where it splits one module into a
+    warm and a cool strip it splits the modules beside it along the step the same way,
+    while a conducting bypass diode raises one module's substring only. The modules
+    touching this one across its ``u`` edges (the same strips side by side) are checked
+    for the same step between the same substrings; within-module differences do not
+    suffer from the module-to-module spread. Where no such module exists (single-row
+    tables in portrait) or they do not show it, the row is checked: the module beyond the
+    raised edge as warm as the raised strip and the one beyond the cool edge as cool as
+    the cool strip.
     """
     n, B = raised.shape
     out = np.zeros(n, bool)
@@ -542,7 +537,6 @@ def _carried_across_edge(F: Features, raised: np.ndarray, candidates: np.ndarray
     sm = F.extra["sub_median"]
     centres = F.extra["sub_centres"]           # (n, B, 2)
     edges = F.extra["edge_points"]             # (n, 2, 2): v = 0 and v = 1 edge midpoints
-    t = F.t_median
     for i in np.flatnonzero(candidates):
         r0, r1 = bool(raised[i, 0]), bool(raised[i, B - 1])
         if r0 == r1:
@@ -550,30 +544,45 @@ def _carried_across_edge(F: Features, raised: np.ndarray, candidates: np.ndarray
         t_cool = float(_nanmedian(np.where(raised[i], np.nan, sm[i])))
         t_warm = float(_nanmedian(np.where(raised[i], sm[i], np.nan)))
         step = t_warm - t_cool
-        warm_col, cool_col, side = (2, 3, 0) if r0 else (3, 2, 1)
-        warm = _walk(adj, i, warm_col)
-        cool = _walk(adj, i, cool_col)
-        if warm and cool:
-            d = float(np.nanmedian(t[warm]) - np.nanmedian(t[cool]))
-            out[i] = np.isfinite(d) and d >= 0.5 * step
-        elif warm:
-            j = warm[0]
-            kf = int(np.argmin(np.linalg.norm(centres[j] - edges[i, side], axis=1)))
-            out[i] = np.isfinite(sm[j, kf]) and (sm[j, kf] - t_cool) >= 0.5 * step
+        for j in (int(j) for j in adj[i, :2] if j >= 0):
+            d = float(_nanmedian(np.where(raised[i], sm[j], np.nan)) -
+                      _nanmedian(np.where(raised[i], np.nan, sm[j])))
+            if np.isfinite(d) and d >= 0.5 * step:
+                out[i] = True
+        if out[i]:
+            continue
+        # along the row: the module beyond the raised edge as warm as the raised strip and
+        # the one beyond the cool edge as cool as the cool strip (a step through the row)
+        wcol, ccol, wside, cside = (2, 3, 0, 1) if r0 else (3, 2, 1, 0)
+        jw, jc = int(adj[i, wcol]), int(adj[i, ccol])
+        if jw < 0:
+            continue
+        kw = int(np.argmin(np.linalg.norm(centres[jw] - edges[i, wside], axis=1)))
+        warm_ok = np.isfinite(sm[jw, kw]) and (sm[jw, kw] - t_cool) >= 0.7 * step
+        if jc >= 0:
+            kc = int(np.argmin(np.linalg.norm(centres[jc] - edges[i, cside], axis=1)))
+            cool_ok = np.isfinite(sm[jc, kc]) and abs(sm[jc, kc] - t_cool) <= 0.3 * step
+        else:
+            cool_ok = True
+        out[i] = bool(warm_ok and cool_ok)
     return out
 
 
 def _intermediate_columns(F: Features, Xlo: np.ndarray, raise_k: np.ndarray) -> np.ndarray:
-    """Largest share, over the module's cell columns, of cells half-way up the plateau.
+    """Largest share, over the module's cell columns, of cells that break the column's pattern.
 
-    A conducting bypass diode raises whole cell columns (its substring's); a step of the
-    image crossing the module at an angle leaves a column of cells part raised.
+    A conducting bypass diode raises whole cell columns (its substring's) to the plateau;
+    a step of the image crossing the module at an angle leaves columns part raised: cells
+    half-way up, or some cells of the column up and others down.
     """
     with np.errstate(invalid="ignore", divide="ignore"):
         x = Xlo / raise_k[:, None, None]
-        mid = (x > 0.25) & (x < 0.75)
         valid = np.isfinite(x)
-        return (mid.sum(axis=1) / np.maximum(valid.sum(axis=1), 1)).max(axis=1)
+        nv = np.maximum(valid.sum(axis=1), 1)
+        mid = ((x > 0.25) & (x < 0.75)).sum(axis=1) / nv
+        up = (x >= 0.5).sum(axis=1) / nv
+        mixed = np.minimum(up, 1.0 - up)
+        return np.maximum(mid, mixed).max(axis=1)
 
 
 def _box_filter_median(X: np.ndarray) -> np.ndarray:
@@ -814,7 +823,7 @@ def pattern_soiling(F: Features, cfg: Mapping) -> Hits:
         raised = (X95 >= 0.5 * band[:, None, None]) & in_band & valid
         cover = raised.sum(axis=(1, 2)) / np.maximum(n_band, 1)
         hit = (F.ok & (band >= thr) & (depth >= 1) & (depth <= maxd) & (cover >= float(cfg["soiling_cover_min"]))
-               & (n_band >= 0.5 * edge_len) & (spread <= 0.5 * band)
+               & (n_band >= 0.5 * edge_len) & (spread <= 0.6 * band)
                & (np.nan_to_num(rest_max, nan=0.0) <= float(cfg["soiling_top_max"]) * band)
                & (np.nan_to_num(top, nan=0.0) <= float(cfg["soiling_top_max"]) * band))
     temp = _nanmedian(np.where(in_band, F.cp, np.nan).reshape(n, -1), axis=1)
