@@ -47,6 +47,9 @@ log = logging.getLogger(__name__)
 
 #: 0 degC in kelvin [K] (ITS-90 / SI definition of the Celsius scale).
 KELVIN_OFFSET = 273.15
+#: Held around rasterio calls that switch warning filters (``warnings.catch_warnings`` is
+#: not thread-safe: two threads inside it can restore each other's filters).
+WARNINGS_LOCK = threading.RLock()
 
 
 @dataclass(frozen=True)
@@ -233,9 +236,11 @@ def read_window(tile: Tile, window: Any, *, cache_mb: int | None = None) -> np.n
     numpy.ndarray
         float32 apparent temperature [degC], NaN where invalid.
     """
-    with _gdal_env(cache_mb), warnings.catch_warnings():
-        warnings.simplefilter("ignore", NotGeoreferencedWarning)
-        with rasterio.open(tile.path) as ds:
+    with _gdal_env(cache_mb):
+        with WARNINGS_LOCK, warnings.catch_warnings():
+            warnings.simplefilter("ignore", NotGeoreferencedWarning)
+            ds = rasterio.open(tile.path)
+        with ds:
             return _read_into(ds, tile, _as_window(window))
 
 
@@ -410,7 +415,7 @@ class OrthoSet:
             tile = self.tiles[tile_index]
             with self._env():
                 if ds is None:
-                    with warnings.catch_warnings():
+                    with WARNINGS_LOCK, warnings.catch_warnings():
                         warnings.simplefilter("ignore", NotGeoreferencedWarning)
                         ds = handles[tile_index] = rasterio.open(tile.path)
                     with lock:

@@ -47,6 +47,8 @@ from affine import Affine
 from rasterio.features import rasterize
 from rasterio.windows import Window
 
+from pvscan.ortho import WARNINGS_LOCK
+
 __all__ = ["ZonalStats", "zonal_stats", "measure_window", "TABLE_COLUMNS"]
 
 log = logging.getLogger(__name__)
@@ -326,44 +328,61 @@ def _measure(data, transform, fr, grid, margins, quantum_k, index=None) -> _Bloc
     shapes = [({"type": "Polygon", "coordinates": [ring[i]]}, i + 1) for i in np.flatnonzero(ok).tolist()]
     if not shapes:
         return empty()
-    labels = rasterize(shapes, out_shape=(H, W), transform=transform, fill=0, dtype="uint16" if m < 65535 else "int32")
+    with WARNINGS_LOCK:  # rasterio switches warning filters inside rasterize
+        labels = rasterize(shapes, out_shape=(H, W), transform=transform, fill=0, dtype="uint16" if m < 65535 else "int32")
     flat = labels.ravel()
-    burnt = flat != 0
-    idx = np.flatnonzero(burnt)
+    idx = np.flatnonzero(flat != 0)
     if idx.size == 0:
         return empty()
-    # row of each burnt pixel without an integer division: repeat row numbers by counts
-    rows = np.repeat(np.arange(H, dtype=np.float64), np.count_nonzero(burnt.reshape(H, W), axis=1))
-    del burnt
-    lab = flat.take(idx).astype(np.intp)  # 1..m; 0 is used below as the "not measured" group
+    lab16 = flat.take(idx)
+    n = idx.size
+    # Runs: consecutive labelled pixels of one label on one scanline. Along a run u and v
+    # grow linearly with the column, so the per-label coefficients are gathered once per
+    # run and expanded with np.repeat (cheaper than a gather per pixel).
+    newrun = np.empty(n, dtype=bool)
+    newrun[0] = True
+    np.not_equal(lab16[1:], lab16[:-1], out=newrun[1:])
+    newrun[1:] |= np.diff(idx) != 1
+    last, first = labels[:-1, -1], labels[1:, 0]
+    wrap = np.flatnonzero((last != 0) & (last == first)) + 1  # a label wrapping a row end
+    if wrap.size:
+        newrun[np.searchsorted(idx, wrap * W)] = True
     del labels, flat
+    starts = np.flatnonzero(newrun)
+    del newrun
+    lengths = np.diff(np.append(starts, n))
+    s_idx = idx[starts]
+    r_run = s_idx // W
+    c_run = (s_idx - r_run * W).astype(np.float64)
+    r_run = r_run.astype(np.float64)
+    l_run = lab16.take(starts).astype(np.intp)
+    lab = lab16.astype(np.intp)  # 1..m; 0 is used below as the "not measured" group
+    del lab16
 
-    # 2. pixel centres -> (u, v): per-label affine coefficients in (col, row), gathered by
-    # label (row 0 of the coefficient tables is a dummy for label 0)
+    # 2. pixel centres -> (u, v) with per-label affine coefficients in (col, row)
     with np.errstate(divide="ignore", invalid="ignore"):
         iux, iuy = fr[:, 5] / det, -fr[:, 4] / det
         ivx, ivy = -fr[:, 3] / det, fr[:, 2] / det
     dx0 = c + 0.5 * a - fr[:, 0]
     dy0 = f + 0.5 * e - fr[:, 1]
 
-    def table(vec):
+    def table(vec):  # row 0 is a dummy for label 0
         return np.concatenate([[0.0], np.where(ok, vec, 0.0)])
 
-    cols = idx.astype(np.float64)
-    cols -= rows * W
-    u = table(iux * a).take(lab)
-    u *= cols
-    tmp = table(iuy * e).take(lab)
-    tmp *= rows
-    u += tmp
-    u += table(iux * dx0 + iuy * dy0).take(lab)
-    v = table(ivx * a).take(lab, out=tmp)
-    v *= cols
-    tmp = table(ivy * e).take(lab, out=cols)
-    tmp *= rows
-    v += tmp
-    v += table(ivx * dx0 + ivy * dy0).take(lab, out=rows)
-    del rows, cols, tmp
+    pos = np.arange(n, dtype=np.float64)
+    pos0 = starts.astype(np.float64)
+    # u at position p of the run starting at p0: u0 + du * (p - p0) = (u0 - du * p0) + du * p
+    du = table(iux * a).take(l_run)
+    u0 = du * c_run + table(iuy * e).take(l_run) * r_run + table(iux * dx0 + iuy * dy0).take(l_run)
+    u = np.repeat(du, lengths)
+    u *= pos
+    u += np.repeat(u0 - du * pos0, lengths)
+    dv = table(ivx * a).take(l_run)
+    v0 = dv * c_run + table(ivy * e).take(l_run) * r_run + table(ivx * dx0 + ivy * dy0).take(l_run)
+    v = np.repeat(dv, lengths)
+    v *= pos
+    v += np.repeat(v0 - dv * pos0, lengths)
+    del pos, pos0, du, u0, dv, v0, starts, lengths, s_idx, r_run, c_run, l_run
     inside = u >= mu
     inside &= u <= 1.0 - mu
     inside &= v >= mv

@@ -354,3 +354,30 @@ def test_read_window_matches_orthoset(scene):
         w = Window(50, 40, 100, 70)
         np.testing.assert_array_equal(o.read(0, w), read_window(o.tiles[0], w))
         np.testing.assert_array_equal(o.read(0, w), data[40:110, 50:150])
+
+
+def test_measure_window_module_wider_than_window(rng):
+    # Every scanline of the window is covered by one module, so labelled runs meet at the
+    # row ends; each row must still be mapped with its own row coordinate.
+    from affine import Affine
+
+    data = rng.normal(30, 1, (30, 20)).astype("float32")
+    tr = Affine(0.05, 0, 0.0, 0, -0.05, 1.5)  # x 0..1 m, y 0..1.5 m
+    # rotated 90 deg: u runs north from y = -0.013 m, v runs west from x = 0.98 m, so the
+    # module covers x -0.02..0.98 m and y -0.013..1.987 m: all of the window
+    fr = np.array([[0.98, -0.013, 0.0, 2.0, -1.0, 0.0]])
+    r = measure_window(data, tr, fr, (12, 6, 3), (0.0, 0.0))
+    x = 0.025 + 0.05 * np.arange(20)
+    y = 1.5 - 0.025 - 0.05 * np.arange(30)
+    xx, yy = np.meshgrid(x, y)
+    u = (yy - fr[0, 1]) / 2.0
+    v = (fr[0, 0] - xx) / 1.0
+    inside = (u >= 0) & (u <= 1) & (v >= 0) & (v <= 1)
+    assert inside.all()  # labelled runs continue from one row's end to the next row's start
+    assert r["n_valid"][0] == inside.sum()
+    ci = np.minimum((u[inside] * 12).astype(int), 11)
+    cj = np.minimum((v[inside] * 6).astype(int), 5)
+    expect = np.zeros((12, 6), int)
+    np.add.at(expect, (ci, cj), 1)
+    np.testing.assert_array_equal(r["cell_count"][0], expect)
+    assert r["mean"][0] == pytest.approx(data[inside].astype(float).mean(), abs=1e-9)
