@@ -425,3 +425,11 @@ def test_every_defect_pattern_is_placed_as_described():
     # spot patterns: region temperature is the p95, area patterns the median (contract)
     sub = next(d for d in scene.defects if d.kind == "bypassed_substring")
     assert t["delta_t_k"][sub.module] == pytest.approx(scene.dt_open[sub.module], abs=0.5)
+
+
+def test_more_defects_than_room_warns():
+    from pvscan.errors import PvscanWarning
+
+    with pytest.warns(PvscanWarning, match="defects.open_module: no free module left"):
+        scene = build_scene(dict(TINY, defects={"open_module": 40}), 1)
+    assert 0 < len(scene.defects) < 40

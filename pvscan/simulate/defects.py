@@ -21,16 +21,16 @@ and maintenance - Part 3: Photovoltaic modules and plants - Outdoor infrared the
 """
 from __future__ import annotations
 
-import logging
+import warnings
 from dataclasses import dataclass, field
 
 import numpy as np
 
+from pvscan.errors import PvscanWarning
 from pvscan.simulate.scenario import DEFECT_KINDS
 
 __all__ = ["Defect", "ModuleGeometry", "place_defects", "SPOT_PATTERNS"]
 
-log = logging.getLogger(__name__)
 
 #: Patterns whose region temperature is its 95th percentile (the others use the median).
 SPOT_PATTERNS = frozenset({"hot_cell", "hot_cell_multi", "junction_box"})
@@ -215,7 +215,8 @@ def place_defects(rng, sc: dict, fld, geom: ModuleGeometry) -> list[Defect]:
             if kind in ("open_string", "pid"):
                 strings = [s for s in np.unique(m["string_id"]) if not blocked[string_members(s)].any()]
                 if not strings:
-                    log.warning("no free string left for %s; placed fewer than asked", kind)
+                    warnings.warn(f"defects.{kind}: no free string left; placed fewer than asked",
+                                  PvscanWarning, stacklevel=3)
                     break
                 members = string_members(strings[int(rng.integers(len(strings)))])
                 if kind == "open_string":
@@ -239,7 +240,8 @@ def place_defects(rng, sc: dict, fld, geom: ModuleGeometry) -> list[Defect]:
                 continue
             i = free_module()
             if i is None:
-                log.warning("no free module left for %s; placed fewer than asked", kind)
+                warnings.warn(f"defects.{kind}: no free module left; placed fewer than asked",
+                              PvscanWarning, stacklevel=3)
                 break
             p: dict = {}
             if kind == "bypassed_substring":
