@@ -54,7 +54,7 @@ def _region_box(box, uv):
 
 
 def build_result(tmp_path: Path, *, n_extra: int = 0, with_ortho: bool = True, kelvin: bool = False,
-                 seed: int = 7) -> Path:
+                 seed: int = 7, series: bool = False) -> Path:
     """Write a result folder (and its thermal ortho) under ``tmp_path``; return the folder.
 
     ``n_extra`` adds that many monitor-level hot cells (for long-list tests).
@@ -176,13 +176,13 @@ def build_result(tmp_path: Path, *, n_extra: int = 0, with_ortho: bool = True, k
         "layout_shift_m": [0.0, 0.0],
         "safety": ["Keep a fire extinguisher for electrical fires within reach during site work."],
     }
-    if kelvin:
-        summary["inputs"]["manifest"] = str(_write_manifest(tmp_path / "flight", kelvin=True))
+    if kelvin or series:
+        summary["inputs"]["manifest"] = str(_write_manifest(tmp_path / "flight", kelvin=kelvin, series=series))
     (res / "summary.json").write_text(json.dumps(summary, indent=1))
     return res
 
 
-def _write_manifest(folder: Path, kelvin: bool) -> Path:
+def _write_manifest(folder: Path, kelvin: bool, series: bool = False) -> Path:
     text = f"""[site]
 name = "Hollowmere Solar Field (demo)"
 
@@ -196,9 +196,9 @@ end = "2026-06-14T11:25:00+02:00"
 units = "{'kelvin' if kelvin else 'celsius'}"
 
 [conditions]
-poa_irradiance_w_m2 = 870.0
-ambient_c = 26.5
-wind_m_s = 2.1
+{'series = "weather.csv"' if series else 'poa_irradiance_w_m2 = 870.0'}
+{'' if series else 'ambient_c = 26.5'}
+{'' if series else 'wind_m_s = 2.1'}
 
 [module]
 pmax_w = 410.0
@@ -211,6 +211,12 @@ bypass_diodes = 3
 emissivity = 0.85
 """
     (folder / "layout.geojson").write_text('{"type": "FeatureCollection", "features": []}')
+    if series:
+        rows = ["time,poa_irradiance_w_m2,ambient_c,wind_m_s"]
+        for k in range(10):
+            rows.append(f"2026-06-14T10:{40 + 5 * k // 60:02d}:{(5 * k) % 60:02d}+02:00,"
+                        f"{870 - 30 * k:.1f},26.5,{2.0 + 0.1 * k:.2f}")
+        (folder / "weather.csv").write_text("\n".join(rows) + "\n")
     p = folder / "flight.toml"
     p.write_text(text)
     return p
@@ -742,3 +748,14 @@ def test_report_command_with_moved_ortho(tmp_path):
     doc = parse((res / "report.html").read_text())
     crops = [a for a in doc.imgs if (a.get("class") or "") == "crop"]
     assert len(crops) == 2 * len(PLANTED)
+
+
+def test_weather_series_plotted_against_the_limits(tmp_path):
+    from pvscan.report import write_report
+
+    res = build_result(tmp_path, series=True)
+    doc = parse(write_report(res).read_text())
+    imgs = [a for a in doc.imgs if a.get("alt") == "irradiance and wind during the flight"]
+    assert len(imgs) == 1
+    im = decode_png(imgs[0]["src"])
+    assert im.size[0] > 600

@@ -499,7 +499,66 @@ def _label_of(key: str) -> str:
     return label.replace("_", " ").replace(".", " · ")
 
 
-def _conditions_section(data: ResultData, checks: list[dict], ok) -> str:
+def _series_plot(data: ResultData, flight, checks: list[dict], dpi: int) -> str:
+    """The weather series of the flight against the limits, as an <img>; '' when unavailable."""
+    series = None
+    if flight is not None:
+        series = getattr(flight.conditions, "series", None)
+    else:
+        manifest = data.manifest_path()
+        if manifest is not None:
+            try:
+                from pvscan.manifest import load_flight
+
+                series = load_flight(manifest, check_files=False).conditions.series
+            except PvscanError:
+                series = None
+    if series is None or not Path(series).exists():
+        return ""
+    try:
+        df = pd.read_csv(series)
+        times = pd.to_datetime(df["time"], utc=True)
+    except (OSError, KeyError, ValueError, pd.errors.ParserError) as exc:
+        log.info("weather series %s not plotted: %s", series, exc)
+        return ""
+
+    def col(*names):
+        for n in names:
+            if n in df:
+                return pd.to_numeric(df[n], errors="coerce").to_numpy(dtype=float)
+        return np.full(len(df), np.nan)
+
+    def limit(kind: str, *words: str):
+        for c in checks:
+            name = str(c["name"]).lower()
+            if c["kind"] == kind and any(w in name for w in words) and _isnum(c["limit"]):
+                return float(c["limit"])
+        return None
+
+    def when(text: str):
+        try:
+            return pd.Timestamp(text).tz_convert("UTC") if text else None
+        except (ValueError, TypeError):
+            return None
+
+    start, end = when(data.flight_start), when(data.flight_end)
+    tz = None
+    try:
+        tz = _dt.datetime.fromisoformat(data.flight_start).tzinfo
+    except (TypeError, ValueError):
+        pass
+    if tz is not None:
+        times = times.dt.tz_convert(tz)
+        start = start.tz_convert(tz) if start is not None else None
+        end = end.tz_convert(tz) if end is not None else None
+    png = figs.conditions_series_png(
+        list(times), col("poa_irradiance_w_m2", "poa_global"), col("wind_m_s", "wind_speed"),
+        poa_min=limit("min", "irradiance", "poa"), wind_max=limit("max", "wind"),
+        start=start, end=end, dpi=dpi)
+    return _img(png_data_uri(png), "irradiance and wind during the flight", "map")
+
+
+def _conditions_section(data: ResultData, checks: list[dict], ok, series_img: str = "") -> str:
     cond = data.summary.get("conditions") or {}
     rows = []
 
@@ -563,7 +622,7 @@ def _conditions_section(data: ResultData, checks: list[dict], ok) -> str:
 {_e(verdict[1])}</p>
 <h3>Checks against the acquisition limits</h3>{checks_html}
 <p class="note">The plot of these checks is under <a class="ref" href="#plots">Plots</a>.</p>
-<h3>Conditions during the flight</h3>{cond_html}
+<h3>Conditions during the flight</h3>{series_img}{cond_html}
 <h3>Inputs</h3>{_inputs_table(data)}
 <p class="note">Layout shift applied to fit the ortho: {dx:+.2f} m east, {dy:+.2f} m north{_e(reg_txt)}.{_e(gsd_txt)}
 Result geometries keep the layout's own positions; the map and crops draw them shifted onto the image.</p>
@@ -662,13 +721,13 @@ def build_report(result_dir: str | Path, *, orthos=None, modules=None, flight=No
     notes: list[str] = []
     view, own = _open_view(data, orthos, flight, notes, ortho_paths)
     try:
-        return _build(data, view, modules, cfg, notes, progress)
+        return _build(data, view, modules, cfg, notes, progress, flight)
     finally:
         if own is not None:
             own.close()
 
 
-def _build(data: ResultData, view, modules_gdf, cfg: dict, notes: list[str], progress) -> str:
+def _build(data: ResultData, view, modules_gdf, cfg: dict, notes: list[str], progress, flight=None) -> str:
     from pvscan import __version__
 
     crs = view.crs if view is not None else (modules_gdf.crs if modules_gdf is not None else None)
@@ -806,7 +865,7 @@ anomalies marked by severity, the first {int(cfg["overview_labels"])} labelled w
 {_img(png_data_uri(p_temp), "module temperature distribution")}{_img(png_data_uri(p_dtn), "normalised delta T histogram")}
 {_img(png_data_uri(p_loss), "loss by defect class")}{_img(p_valid, "conditions against validity limits")}
 </div></section>''',
-        _conditions_section(data, checks, ok),
+        _conditions_section(data, checks, ok, _series_plot(data, flight, checks, dpi)),
         _method_section(data),
         _safety_section(data),
         f'<footer>pvscan {_e(__version__)} · result folder <code>{_e(data.result_dir.name)}</code> · '

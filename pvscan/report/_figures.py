@@ -340,3 +340,41 @@ def validity_png(checks: Sequence[Mapping], dpi: int) -> bytes:
     ax.set_xlabel("value / limit (shaded: outside the limit)", fontsize=8)
     ax.set_title("Flight conditions against the validity limits", fontsize=9, loc="left")
     return _png(fig, dpi)
+
+
+def conditions_series_png(times, poa, wind, *, poa_min: float | None, wind_max: float | None,
+                          start=None, end=None, dpi: int = 110) -> bytes:
+    """Irradiance [W/m2] and wind speed [m/s] during the flight with their validity limits.
+
+    Parameters
+    ----------
+    times : sequence of datetime
+    poa, wind : array-like
+        Plane-of-array irradiance [W/m2] and wind speed [m/s] (NaN where not recorded).
+    poa_min, wind_max : float, optional
+        Validity limits drawn as lines (minimum irradiance, maximum wind).
+    start, end : datetime, optional
+        The flight's time window, shaded.
+    """
+    import matplotlib.dates as mdates
+
+    fig = _figure(10.0, 2.6)
+    axes = [fig.add_axes((0.07, 0.22, 0.4, 0.62)), fig.add_axes((0.57, 0.22, 0.4, 0.62))]
+    series = ((axes[0], np.asarray(poa, float), poa_min, "min", "plane-of-array irradiance [W/m²]", "#c7792b"),
+              (axes[1], np.asarray(wind, float), wind_max, "max", "wind speed [m/s]", "#4c6a8a"))
+    for ax, y, lim, kind, label, colour in series:
+        _style(ax)
+        if start is not None and end is not None:
+            ax.axvspan(start, end, color="#eef2f5", zorder=0)
+        if np.isfinite(y).any():
+            ax.plot(times, y, color=colour, linewidth=1.4)
+        if lim is not None and math.isfinite(lim):
+            ax.axhline(lim, color="#d1005d", linewidth=1.0, linestyle="--")
+            ax.text(0.01, lim, f" limit {lim:g} ({kind})", transform=ax.get_yaxis_transform(),
+                    fontsize=7, color="#d1005d", va="bottom")
+            lo, hi = ax.get_ylim()
+            ax.set_ylim(min(lo, lim - 0.05 * abs(lim)), max(hi, lim + 0.05 * abs(lim)))
+        ax.set_title(label, fontsize=9, loc="left")
+        ax.xaxis.set_major_formatter(mdates.DateFormatter("%H:%M", tz=getattr(start, "tzinfo", None)))
+        ax.tick_params(axis="x", labelsize=7)
+    return _png(fig, dpi)
