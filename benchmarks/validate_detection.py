@@ -1,0 +1,96 @@
+"""Detection scores on a matrix of simulated flights (not the demo): fixed tilt and tracker
+rows, both hemispheres, 650-900 W/m2, wind up to 5 m/s, seams, cloud shadows, reflections,
+a shifted layout. Prints one line of scores per flight and the pooled scores.
+
+    python benchmarks/validate_detection.py [--quick] [--keep DIR]
+
+Not a test (it takes minutes); it is how the classification settings are calibrated and
+how the closing figures of a change are measured.
+"""
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+import tempfile
+import time
+import warnings
+from pathlib import Path
+
+from pvscan.evaluate import evaluate
+from pvscan.pipeline import inspect_flight
+from pvscan.simulate import simulate_flight
+
+DEFECTS = {"hot_cell": 6, "hot_cell_multi": 3, "bypassed_substring": 5, "bypassed_substring_multi": 2,
+           "open_module": 3, "open_string": 1, "pid": 2, "soiling": 3, "junction_box": 3}
+DISTRACT = {"cloud_shadows": 1, "reflections": 4, "seams": 4, "hot_objects": 2}
+
+
+def scenarios(quick: bool):
+    base_array = {"table_rows": 8, "tables_per_row": 4, "rows": 2, "cols": 24, "modules_per_string": 12}
+    out = [
+        ("fixed-north-870-w2", {"site": {"lon": 8.7, "lat": 48.1},
+                                "conditions": {"poa_irradiance_w_m2": 870, "wind_m_s": 2.0},
+                                "array": {"rotation_deg": 7.0}, "layout": {"offset_m": [1.2, -0.7]}}),
+        ("fixed-south-650-w5", {"site": {"lon": 146.2, "lat": -34.6},
+                                "conditions": {"poa_irradiance_w_m2": 650, "wind_m_s": 5.0, "ambient_c": 18},
+                                "array": {"rotation_deg": -12.0}, "layout": {"offset_m": [-1.5, 0.3]}}),
+        ("tracker-north-900-w3", {"site": {"lon": -5.9, "lat": 37.4},
+                                  "conditions": {"poa_irradiance_w_m2": 900, "wind_m_s": 3.0, "ambient_c": 30},
+                                  "array": {"kind": "tracker", "tilt_deg": 30, "facing": "east", "rows": 1,
+                                            "cols": 28, "modules_per_string": 14}}),
+        ("fixed-north-halfcut-landscape-760", {"site": {"lon": 10.1, "lat": 53.4},
+                                               "conditions": {"poa_irradiance_w_m2": 760, "wind_m_s": 4.0},
+                                               "array": {"orientation": "landscape", "rows": 4, "cols": 12},
+                                               "module": {"half_cut": True, "cells_along": 12}}),
+        ("tracker-south-700-w1", {"site": {"lon": -70.6, "lat": -23.6},
+                                  "conditions": {"poa_irradiance_w_m2": 700, "wind_m_s": 1.0, "varying": True},
+                                  "array": {"kind": "tracker", "tilt_deg": 20, "facing": "west", "rows": 1,
+                                            "cols": 28, "modules_per_string": 14}}),
+    ]
+    if quick:
+        out = out[:2]
+    for name, sc in out:
+        sc.setdefault("array", {})
+        sc["array"] = {**base_array, **sc["array"]}
+        sc["site"]["name"] = f"Validation {name} (invented)"
+        sc["defects"] = dict(DEFECTS)
+        sc["distractors"] = dict(DISTRACT)
+        yield name, sc
+
+
+def main(argv=None):
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--quick", action="store_true", help="two flights only")
+    ap.add_argument("--keep", type=Path, help="keep flights and results in this folder")
+    ap.add_argument("--json", type=Path, help="write all scores as JSON")
+    args = ap.parse_args(argv)
+    warnings.simplefilter("ignore")
+    root = args.keep or Path(tempfile.mkdtemp(prefix="pvscan-validate-"))
+    rows = []
+    print(f"{'flight':36s} {'mods':>5s} {'recall':>7s} {'prec':>6s} {'fa/1k':>6s} {'minCls':>7s} "
+          f"{'dTn MAE':>7s} {'loss ratio':>10s} {'shift err':>9s} {'s':>5s}")
+    for k, (name, sc) in enumerate(scenarios(args.quick)):
+        t0 = time.perf_counter()
+        sim = simulate_flight(sc, root / name / "flight", seed=100 + k)
+        inspect_flight(sim.manifest, out_dir=root / name / "result", overwrite=True, report=False)
+        s = evaluate(root / name / "flight", root / name / "result")
+        rows.append({"flight": name, **s})
+        per = s.get("per_class", {})
+        min_cls = min((v["recall"] for v in per.values() if v.get("n_true", 0)), default=float("nan"))
+        worst = min(((v["recall"], c) for c, v in per.items() if v.get("n_true", 0)), default=(0, "-"))[1]
+        m, t = s["module"], s["temperature"]
+        print(f"{name:36s} {s['n_modules']:5d} {m['recall']:7.3f} {m['precision']:6.3f} "
+              f"{m['false_alarms_per_1000_healthy']:6.2f} {min_cls:7.3f} "
+              f"{t.get('delta_t_norm_median_abs_error_k', float('nan')):7.2f} "
+              f"{s.get('power_loss', {}).get('ratio', float('nan')):10.3f} "
+              f"{(s.get('registration') or {}).get('error_m', float('nan')):9.3f} "
+              f"{time.perf_counter() - t0:5.0f}  worst class: {worst}")
+        sys.stdout.flush()
+    if args.json:
+        args.json.write_text(json.dumps(rows, indent=2, default=str))
+    print(f"flights and results in {root}")
+
+
+if __name__ == "__main__":
+    main()
