@@ -114,6 +114,7 @@ _CLASSIFY_DEFAULTS = {
     "pid_min_modules": 2,
     "pid_seed_z": 3.5,
     "pid_extend_z": 1.0,
+    "pid_run_z": 4.5,
     "pid_max_position": 0.5,
     "precedence": ["open_string", "open_module", "bypassed_substring_multi", "bypassed_substring",
                    "junction_box", "pid", "soiling", "hot_cell_multi", "hot_cell"],
@@ -995,7 +996,8 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     than its surroundings; the affected run extends from the negative end while the
     contrast stays above ``pid_extend_z`` (a single weaker module between two above does
     not end it), over at least ``pid_min_modules`` and at most the first
-    ``pid_max_position`` of the string.
+    ``pid_max_position`` of the string, with combined evidence ``sum(z) / sqrt(n)`` of at
+    least ``pid_run_z``.
 
     Returns
     -------
@@ -1042,6 +1044,8 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
                 continue
             break
         if len(run) < int(cfg["pid_min_modules"]):
+            continue
+        if float(np.sum(z[run]) / np.sqrt(len(run))) < float(cfg["pid_run_z"]):
             continue
         run = run[: int(np.floor(float(cfg["pid_max_position"]) * len(idx))) + 1]
         out.append(run)
