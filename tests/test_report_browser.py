@@ -126,3 +126,16 @@ def test_prints_to_a_few_pages(report, tmp_path):
     assert data[:5] == b"%PDF-"  # ISO 32000-1 file header
     pages = len(re.findall(rb"/Type\s*/Page(?![s\w])", data))
     assert 2 <= pages <= 8, pages
+
+
+def test_no_horizontal_scrolling_on_a_narrow_screen(report, tmp_path):
+    html = report.read_text(encoding="utf-8")
+    probe_html = html.replace("default-src 'none';", "default-src 'none'; script-src 'unsafe-inline';", 1)
+    probe = tmp_path / "probe.html"
+    probe.write_text(probe_html.replace("</head>", _PROBE + "\n</head>", 1), encoding="utf-8")
+    r = _run(["--virtual-time-budget=5000", "--window-size=500,900", "--dump-dom", probe.as_uri()],
+             tmp_path, "narrow")
+    m = re.search(r'<pre id="probe-result">(.*?)</pre>', r.stdout, re.S)
+    assert m, r.stderr[-2000:]
+    out = json.loads(m.group(1).replace("&quot;", '"').replace("&amp;", "&"))
+    assert out["errors"] == [] and out["width"] <= out["viewport"] + 1
