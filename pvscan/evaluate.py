@@ -18,7 +18,8 @@ a dict of scores:
 - co-registration: the layout shift the result reports against the offset the truth drew.
 
 Modules are matched by ``module_id``; when fewer than ``min_id_match_fraction`` of the ids
-match (a layout of tables split with other ids), by the nearest centroid within
+match, or the matched modules do not sit where the truth has them (a layout of tables split
+with other ids or columns numbered from the other end), by the nearest centroid within
 ``match_distance_m`` (pipeline section ``[evaluate]``).
 """
 from __future__ import annotations
@@ -80,14 +81,20 @@ def _defect(v):
 
 
 def _match(truth_feats, res_feats, epsg: int | None, min_id_fraction: float = 0.9, max_dist_m: float = 0.5):
-    """Index of the result feature of each truth module (-1 when none)."""
+    """Index of the result feature of each truth module (-1 when none), and how.
+
+    By ``module_id`` when at least ``min_id_fraction`` of the truth's ids are found *and*
+    at least that fraction of the pairs also sit within ``max_dist_m`` of each other (ids
+    of split tables can coincide while numbering the columns from the other end);
+    otherwise by nearest centroid within ``max_dist_m``.
+    """
     ids = {}
     for k, f in enumerate(res_feats):
         mid = f.get("properties", {}).get("module_id")
         if mid is not None:
             ids.setdefault(str(mid), k)
     by_id = np.array([ids.get(str(f["properties"]["module_id"]), -1) for f in truth_feats])
-    if (by_id >= 0).mean() >= min_id_fraction or not res_feats:
+    if not res_feats:
         return by_id, "module_id"
     from pyproj import Transformer
     from scipy.spatial import cKDTree
@@ -102,7 +109,18 @@ def _match(truth_feats, res_feats, epsg: int | None, min_id_fraction: float = 0.
     tr = Transformer.from_crs("EPSG:4326", f"EPSG:{epsg}", always_xy=True)
     tx, ty = tr.transform(tc[:, 0], tc[:, 1])
     rx, ry = tr.transform(rc[:, 0], rc[:, 1])
+    found = by_id >= 0
+    if found.mean() >= min_id_fraction:
+        j = by_id[found]
+        dist = np.hypot(tx[found] - rx[j], ty[found] - ry[j])
+        no_geom = ~np.isfinite(dist)
+        if (no_geom | (dist < max_dist_m)).mean() >= min_id_fraction:
+            return by_id, "module_id"
+        log.warning("module ids match but %.0f %% of them sit more than %.2f m apart; matching by position",
+                    100 * (dist >= max_dist_m).mean(), max_dist_m)
     ok = np.isfinite(rx) & np.isfinite(ry)
+    if not ok.any():
+        return by_id, "module_id"
     tree = cKDTree(np.stack([rx[ok], ry[ok]], axis=1))
     d, k = tree.query(np.stack([tx, ty], axis=1))
     cand = np.flatnonzero(ok)[np.minimum(k, ok.sum() - 1)]

@@ -41,7 +41,7 @@ T_TRUE = [40.0 + 0.1 * k for k in range(10)]
 ERR = [0.0, 0.0, 0.0, 0.0, 0.3, -0.3, 0.3, -0.3, 0.3, -0.3]   # healthy errors +-0.3 K
 
 
-def _write(tmp_path, *, ids=True, shift=0.0, anomalies=True):
+def _write(tmp_path, *, ids=True, shift=0.0, anomalies=True, reversed_ids=False):
     tdir = tmp_path / "truth"
     rdir = tmp_path / "result"
     tdir.mkdir()
@@ -56,7 +56,8 @@ def _write(tmp_path, *, ids=True, shift=0.0, anomalies=True):
     for k, (mid, *_rest) in enumerate(TRUTH):
         d, loss = PRED.get(mid, (None, 0.0))
         res.append({"type": "Feature", "geometry": _square(k, shift), "properties": {
-            "module_id": mid if ids else f"X{k}", "defect": d, "power_loss_w": loss,
+            "module_id": (TRUTH[9 - k][0] if reversed_ids else mid) if ids else f"X{k}",
+            "defect": d, "power_loss_w": loss,
             "t_median_c": T_TRUE[k] + ERR[k], "delta_t_norm_k": 1.0 if d else 0.0}})
     (rdir / "modules.geojson").write_text(json.dumps(_fc(res)))
     if anomalies:
@@ -114,6 +115,13 @@ def test_matching_by_centroid_when_ids_differ(tmp_path):
     assert s["module"]["true_positive"] == 2
     # without anomalies the module values are used: |1 - 5|, |1 - 30|, 5.5, 5.4 -> median 5.45
     assert s["temperature"]["delta_t_norm_median_abs_error_k"] == pytest.approx(5.45, abs=1e-6)
+
+
+def test_matching_by_position_when_ids_sit_elsewhere(tmp_path):
+    # Same ids, but numbered from the other end of the row: positions decide.
+    s = evaluate(*_write(tmp_path, reversed_ids=True, anomalies=False))
+    assert s["matched_by"] == "centroid"
+    assert (s["module"]["true_positive"], s["module"]["false_positive"]) == (2, 1)
 
 
 def test_missing_inputs_raise(tmp_path):
