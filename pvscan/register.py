@@ -560,6 +560,7 @@ def _analyse_block(bd: _BlockData, spec: np.ndarray, cfg: Mapping, signs) -> Non
     # guard ring: a stronger peak beyond max_shift_m means the true offset may lie outside
     # the search radius (and the best peak inside it is an alias)
     guard_px = bd.radius_px * float(cfg["guard_factor"])
+    med_by_sign = {sg: float(np.median(region[np.isfinite(region)] * sg)) for sg in signs}
     if guard_px > bd.radius_px:
         ring, rg = _search_region(surf, guard_px)
         yy, xx = np.mgrid[-rg:rg + 1, -rg:rg + 1]
@@ -567,7 +568,10 @@ def _analyse_block(bd: _BlockData, spec: np.ndarray, cfg: Mapping, signs) -> Non
     else:
         ring = None
     for sg in signs:
-        (pi, pj), best, snr, distinct, cands = _peaks(region * sg, r, ex, float(cfg["ambiguity_ratio"]))
+        med_r = med_by_sign[sg]
+        # candidates down to half the best peak: the fit may re-admit one of them later
+        (pi, pj), best, snr, distinct, cands = _peaks(region * sg, r, ex,
+                                                      min(float(cfg["ambiguity_ratio"]), 0.5))
         refined = []
         for ci, cj, h in cands[:_MAX_CANDIDATES]:
             fr, fc = upsampled_peak(spec, (ci, cj), up, half_width=1.0, sign=sg)
@@ -581,10 +585,9 @@ def _analyse_block(bd: _BlockData, spec: np.ndarray, cfg: Mapping, signs) -> Non
                 d = bd.lin @ np.array([bj - rg, bi - rg])
                 beyond = (float(d[0]), float(d[1]))
             # a near-equal peak just beyond the radius makes the block ambiguous too
-            med_r = float(np.median(region[np.isfinite(region)] * sg))
             if best > med_r:
                 distinct = min(distinct, 1.0 - max(float(rs.flat[k]) - med_r, 0.0) / (best - med_r))
-        bd.peaks[sg] = (float(snr), max(float(distinct), 0.0), beyond, refined)
+        bd.peaks[sg] = (float(snr), max(float(distinct), 0.0), beyond, refined, med_r)
 
 
 def _prepare_block(orthos, ti, tile, win, mod_geoms, cfg, f, work_gsd):
@@ -819,12 +822,16 @@ def estimate_shift(orthos, modules, settings: Mapping | None = None, *,
     dfull = float(cfg["distinct_full"])
     cands_all = []
     for bd in blocks:
-        snr, distinct, beyond, cands = bd.peaks[sign]
+        snr, distinct, beyond, cands, med = bd.peaks[sign]
+        best_h = cands[0][2]
+        ratio = float(cfg["ambiguity_ratio"])
+        # (all candidates, those within ambiguity_ratio of the best, height above median)
+        cands = (cands, [c for c in cands if c[2] - med >= ratio * (best_h - med)], med)
         c_snr = min(max((snr - snr_min) / max(snr_full - snr_min, 1e-9), 0.0), 1.0)
         c_dis = min(max(distinct / max(dfull, 1e-9), 0.0), 1.0)
         conf = c_snr * c_dis
         rec = bd.record
-        rec.snr, rec.distinctness, rec.candidates = snr, distinct, len(cands)
+        rec.snr, rec.distinctness, rec.candidates = snr, distinct, len(cands[1])
         if beyond is not None:
             conf = 0.0
             rec.note = (f"a stronger peak lies beyond max_shift_m, at ({beyond[0]:+.2f}, {beyond[1]:+.2f}) m")
@@ -836,7 +843,7 @@ def estimate_shift(orthos, modules, settings: Mapping | None = None, *,
         d = bd.lin @ np.array([dcol, drow])
         return float(d[0]), float(d[1])
 
-    best_m = np.array([to_m(bd, c[0][3], c[0][4]) for bd, c in zip(blocks, cands_all)])
+    best_m = np.array([to_m(bd, c[0][0][3], c[0][0][4]) for bd, c in zip(blocks, cands_all)])
     confs = np.array([bd.record.confidence for bd in blocks])
     if confs.max() <= 0:
         for bd, bm in zip(blocks, best_m):
@@ -847,15 +854,18 @@ def estimate_shift(orthos, modules, settings: Mapping | None = None, *,
     cons = np.array([_weighted_median(best_m[:, 0], confs + 1e-12 * (confs <= 0)),
                      _weighted_median(best_m[:, 1], confs + 1e-12 * (confs <= 0))])
     dxs, dys = [], []
-    for bd, cands in zip(blocks, cands_all):
+    cm_all = []
+    for bd, (all_c, cands, med) in zip(blocks, cands_all):
         rec = bd.record
+        cm_all.append((np.array([to_m(bd, c[3], c[4]) for c in all_c]),
+                       np.array([(c[2] - med) / max(all_c[0][2] - med, 1e-300) for c in all_c])))
         cm = np.array([to_m(bd, c[3], c[4]) for c in cands])
         k = int(np.argmin(np.hypot(cm[:, 0] - cons[0], cm[:, 1] - cons[1])))
         if k != 0:
             rec.note = (rec.note + "; " if rec.note else "") + \
                 f"periodic ambiguity: took candidate {k + 1} of {len(cands)} nearest the consensus"
             # a block that needed the consensus to decide cannot add confidence of its own
-            rec.confidence *= cands[k][2] / cands[0][2] if cands[0][2] > 0 else 0.0
+            rec.confidence *= (cands[k][2] - med) / (cands[0][2] - med) if cands[0][2] > med else 0.0
             if rec.confidence <= 0:
                 rec.confidence = 1e-3
         rec.dx, rec.dy = float(cm[k, 0]), float(cm[k, 1])
@@ -886,6 +896,21 @@ def estimate_shift(orthos, modules, settings: Mapping | None = None, *,
             model = None
             px, py = np.full_like(x, mx), np.full_like(y, my)
         res = np.hypot(dx - px, dy - py)
+        for i in np.nonzero((w > 0) & (res > reject))[0]:
+            # an outlier whose runner-up peak agrees with the fit took the wrong one of two
+            # near-equal peaks (periodic rows): re-admit it with that peak
+            cmi, hi = cm_all[i]
+            d = np.hypot(cmi[:, 0] - px[i], cmi[:, 1] - py[i])
+            j = int(np.argmin(d))
+            if d[j] <= reject and hi[j] > 0:
+                rec = blocks[i].record
+                dx[i], dy[i] = cmi[j]
+                rec.dx, rec.dy = float(cmi[j, 0]), float(cmi[j, 1])
+                w[i] *= float(hi[j])
+                rec.confidence = float(w[i])
+                rec.note = (rec.note + "; " if rec.note else "") + \
+                    f"periodic ambiguity: re-admitted with candidate {j + 1} near the fit"
+                res[i] = d[j]
         new = (w > 0) & (res <= reject)
         if not new.any():
             new = (w > 0) & (res <= np.min(res[w > 0]) + 1e-9)
