@@ -759,3 +759,16 @@ def test_weather_series_plotted_against_the_limits(tmp_path):
     assert len(imgs) == 1
     im = decode_png(imgs[0]["src"])
     assert im.size[0] > 600
+
+
+def test_map_marks_link_to_cards_at_the_anomaly(result, report_html):
+    """Each anomaly mark on the map is a link to its card, placed where the anomaly is: the
+    open module (priority 1) lies right of the bypassed substring (2) on the same table, and
+    the hot cell (3) on the southern table, lower on the map."""
+    pins = re.findall(r'<a class="pin" href="#(a\d+)" title="[^"]*" style="left:([\d.]+)%;top:([\d.]+)%"',
+                      report_html)
+    assert [p[0] for p in pins] == ["a1", "a2", "a3"]
+    pos = {p[0]: (float(p[1]), float(p[2])) for p in pins}
+    assert all(0 < x < 100 and 0 < y < 100 for x, y in pos.values())
+    assert pos["a1"][0] > pos["a2"][0] and abs(pos["a1"][1] - pos["a2"][1]) < 5
+    assert pos["a3"][1] > pos["a1"][1] + 10

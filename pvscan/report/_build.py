@@ -790,8 +790,9 @@ def _build(data: ResultData, view, modules_gdf, cfg: dict, notes: list[str], pro
         px_w, px_h = (xmax - xmin) / w, (ymax - ymin) / h
         image = image[r0:r1, c0:c1]
         extent_view = (xmin + c0 * px_w, xmin + c1 * px_w, ymax - r1 * px_h, ymax - r0 * px_h)
+    pins: list = []
     overview = figs.overview_png(
-        extent=extent_view, image=image, module_geoms=geo.modules,
+        pins=pins, extent=extent_view, image=image, module_geoms=geo.modules,
         module_values=tmed if image is None else None, anomaly_points=points,
         anomaly_regions=[(g, r["severity"]) for g, (_, r) in zip(geo.anomalies, an.iterrows())],
         cmap=palette.name,
@@ -840,6 +841,15 @@ def _build(data: ResultData, view, modules_gdf, cfg: dict, notes: list[str], pro
               + "PV arrays are live whenever light falls on them, even when disconnected; hot spots can burn. "
                 "Work on site only by qualified persons under local electrical codes; drone flights only "
                 'under local aviation rules. See <a class="ref" href="#safety">safety cautions</a>.')
+    card_of = {int(r["priority"]) if _isnum(r["priority"]) else k + 1: (k, r) for k, r in an.iterrows()}
+    pin_links = []
+    for prio, fx, fy in pins:
+        if prio in card_of and 0.0 <= fx <= 1.0 and 0.0 <= fy <= 1.0:
+            k, r = card_of[prio]
+            tip = f"#{prio} {_defect_name(r['defect'])} ({r['severity']}), {r['module_id']}"
+            pin_links.append(f'<a class="pin" href="#a{k + 1}" title="{_e(tip)}" '
+                             f'style="left:{100 * fx:.2f}%;top:{100 * fy:.2f}%"></a>')
+    pins_html = "".join(pin_links)
     if view is not None:
         cards_lead = ("One card per anomaly in priority order. Left: close-up of the module, colour window fitted "
                       "to the modules in view (healthy modules in the lower third), the affected region outlined in "
@@ -854,8 +864,9 @@ def _build(data: ResultData, view, modules_gdf, cfg: dict, notes: list[str], pro
         f'<div class="notice">{notice}</div>',
         f'''<section id="overview"><h2>Site map</h2>
 <p class="lead">{'Thermal orthomosaic' if image is not None else 'Module temperatures'} with module outlines;
-anomalies marked by severity, the first {int(cfg["overview_labels"])} labelled with their priority.</p>
-{_img(png_data_uri(overview), "site overview map", "map")}{notes_html}</section>''',
+anomalies marked by severity, the first {int(cfg["overview_labels"])} labelled with their priority;
+each mark links to its card.</p>
+<div class="mapwrap">{_img(png_data_uri(overview), "site overview map", "map")}{pins_html}</div>{notes_html}</section>''',
         _counts_section(data),
         _worklist_section(data),
         f'''<section id="cards" class="sheet"><h2>Anomaly cards</h2>

@@ -78,7 +78,7 @@ def overview_png(*, extent, image: np.ndarray | None, module_geoms, module_value
                  anomaly_points: Sequence[tuple[float, float, str, int]], cmap: str,
                  anomaly_regions: Sequence[tuple[object, str]] = (),
                  vmin: float, vmax: float, north_deg: float, dpi: int, n_labels: int,
-                 image_label: str) -> bytes:
+                 image_label: str, pins: list | None = None) -> bytes:
     """Site overview map.
 
     Parameters
@@ -105,6 +105,9 @@ def overview_png(*, extent, image: np.ndarray | None, module_geoms, module_value
         Number of anomalies (best priority first) labelled with their priority number.
     image_label : str
         Colour-bar label.
+    pins : list, optional
+        Filled with ``(priority, fx, fy)``: each anomaly's position in the PNG as fractions
+        of its width and height (0, 0 = top left), for links laid over the image.
     """
     import matplotlib.patheffects as pe
     from matplotlib.collections import PolyCollection
@@ -200,6 +203,12 @@ def overview_png(*, extent, image: np.ndarray | None, module_geoms, module_value
     handles.append(Line2D([], [], color=_MUTED, linewidth=0.8, label="module outline"))
     fig.legend(handles=handles, loc="lower center", ncol=4, frameon=False, fontsize=8,
                bbox_to_anchor=(0.45, 0.0))
+    if pins is not None:  # where each anomaly lands in the image, as fractions of its size
+        fig.set_dpi(dpi)
+        w_px, h_px = fig.get_size_inches() * dpi
+        for x, y, sev, prio in anomaly_points:
+            px, py = ax.transData.transform((x, y))
+            pins.append((prio, float(px / w_px), float(1.0 - py / h_px)))
     return _png(fig, dpi)
 
 
