@@ -248,6 +248,7 @@ def test_southern_tiles_raw_gpkg_scenario(tmp_path):
     man = tomllib.loads(res.manifest.read_text())
     assert man["layout"]["azimuth_deg"] == pytest.approx((0.0 - 6.0) % 360)   # facing north, rotated
     assert man["ortho"]["units"] == "kelvin" and man["ortho"]["scale"] == 0.01
+    assert (man["layout"]["rows"], man["layout"]["cols"], man["layout"]["orientation"]) == (3, 8, "landscape")
     assert len(res.orthos) == 2 and res.layout.suffix == ".gpkg"
     with rasterio.open(res.orthos[0]) as a, rasterio.open(res.orthos[1]) as b:
         assert a.crs.to_epsg() == 32735                                          # UTM 35 south
@@ -266,7 +267,7 @@ def test_tracker_series_scenario_writes_weather_and_frames(tmp_path):
     res = simulate_flight(sc, tmp_path / "t", seed=3)
     man = tomllib.loads(res.manifest.read_text())
     assert man["conditions"]["series"] == "weather.csv" and man["flight"]["frames"] == "frames.geojson"
-    assert man["layout"]["azimuth_deg"] == 270.0 and man["layout"]["rows"] == 1
+    assert man["layout"]["azimuth_deg"] == 270.0
     lines = res.weather.read_text().splitlines()
     assert lines[0] == "time,poa_irradiance_w_m2,ambient_c,wind_m_s" and len(lines) > 5
     frames = json.loads(res.frames.read_text())["features"]
