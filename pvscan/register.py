@@ -10,16 +10,21 @@ Method
 The ortho is cut into blocks (``block_m`` on a side, per tile). In each block
 
 1. the image is read through windowed reads, reduced to a working grid of about
-   ``work_gsd_m``, clipped to its central percentiles (so that hot spots do not
-   dominate, and high-passed (minus a Gaussian-blurred copy);
+   ``work_gsd_m`` and clipped to its central percentiles (so that hot spots do not
+   dominate);
 2. the layout footprints are rasterised on the same grid with sub-pixel coverage
-   (``supersample`` x ``supersample`` samples per pixel) and high-passed the same way;
-3. both are tapered and phase-correlated: the cross-power spectrum, partially
-   whitened (``whitening``: 0 = plain cross-correlation, 1 = pure phase correlation),
-   is transformed back and searched for its best peak within ``max_shift_m``;
-   the contrast sign (modules warmer or cooler than their surroundings) is decided
-   for the whole flight by a vote of the blocks;
-4. the integer peak is refined by the matrix-multiply upsampled DFT of
+   (``supersample`` x ``supersample`` samples per pixel);
+3. both are turned into the feature that is compared: by default (``feature =
+   "gradient"``) the Gaussian gradient magnitude, i.e. the strength of the edges whatever
+   their polarity, because the glass may be warmer than shaded ground on one side of a
+   table and cooler than sunlit ground on the other; or (``"intensity"``) the values
+   themselves, with one contrast sign for the flight decided by a vote of the blocks;
+4. both are tapered and phase-correlated: the cross-power spectrum, high-passed
+   (``highpass_sigma_m``) and partially whitened (``whitening``: 0 = plain
+   cross-correlation, 1 = pure phase correlation), is transformed back and searched for
+   its best peak within ``max_shift_m``; a stronger peak in a guard ring up to
+   ``guard_factor`` times farther flags the block (the offset may exceed the radius);
+5. the candidate peaks are refined by the matrix-multiply upsampled DFT of
    Guizar-Sicairos et al. (2008) to ``1 / upsample`` pixel.
 
 Rows of tables are periodic: a shift by one row pitch (or one module pitch) scores
@@ -27,7 +32,8 @@ almost as well as the true shift. Each block therefore keeps every candidate pea
 within ``ambiguity_ratio`` of its best one. The true peak is the best only thanks to
 aperiodic structure (table ends, block and array edges); blocks whose best peak is
 not distinct from the next one get a low confidence, and every block finally takes
-the candidate nearest to the consensus of the confident blocks.
+the candidate nearest to the consensus of the confident blocks. A block rejected as an
+outlier whose runner-up peak agrees with the fit is re-admitted with that peak.
 
 The block shifts are combined by an iteratively reweighted least-squares fit of a
 similarity transform (translation, rotation, scale) with outlier rejection; its
@@ -48,7 +54,7 @@ from __future__ import annotations
 import logging
 import math
 import warnings
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -972,8 +978,6 @@ def estimate_shift(orthos, modules, settings: Mapping | None = None, *,
         return reg
     reg.applied = True
     reg.shift_m = (float(sx), float(sy))
-    if reg.model is not None and not reg.follow_drift:
-        pass
     reg.message = f"{desc}; applied" + (" (following drift)" if reg.follow_drift and reg.model else "")
     logger.info("register: %s", reg.message)
     return reg
