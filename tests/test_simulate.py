@@ -238,6 +238,9 @@ def test_flight_folder_follows_the_contract(tmp_path):
             "reference_true_c", "delta_t_k", "delta_t_norm_k", "power_loss_w", "poa_global", "wind_speed"}
     assert need <= set(truth["features"][0]["properties"])
     assert sum(f["properties"]["defect"] is not None for f in truth["features"]) == 1
+    # truth geometry = the layout as drawn (results are reported in layout positions)
+    lay_by_id = {f["properties"]["module_id"]: f["geometry"] for f in lay["features"]}
+    assert all(f["geometry"] == lay_by_id[f["properties"]["module_id"]] for f in truth["features"])
     assert json.loads(res.truth_json.read_text())["seed"] == 1
     assert res.preview.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
 
