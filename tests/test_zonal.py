@@ -16,7 +16,7 @@ import shapely
 from rasterio.windows import Window
 
 from pvscan.ortho import open_orthos
-from pvscan.zonal import ZonalStats, measure_window, zonal_stats
+from pvscan.zonal import TABLE_COLUMNS, ZonalStats, measure_window, zonal_stats
 
 GSD = 0.05
 ORIGIN = (500_000.0, 4_000_000.0)
@@ -381,3 +381,12 @@ def test_measure_window_module_wider_than_window(rng):
     np.add.at(expect, (ci, cj), 1)
     np.testing.assert_array_equal(r["cell_count"][0], expect)
     assert r["mean"][0] == pytest.approx(data[inside].astype(float).mean(), abs=1e-9)
+
+
+def test_no_modules_gives_empty_result(write_tif, module_spec):
+    path = write_tif("n.tif", np.full((20, 20), 25.0, "float32"))
+    empty = pd.DataFrame(columns=["fx0", "fy0", "fux", "fuy", "fvx", "fvy"], dtype=float)
+    with open_orthos(path) as o:
+        zs = zonal_stats(o, empty, module_spec, _settings())
+    assert len(zs) == 0 and list(zs.table.columns) == list(TABLE_COLUMNS)
+    assert zs.cell_median.shape == (0, 12, 6) and zs.sub_p95.shape == (0, 3)
