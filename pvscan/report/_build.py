@@ -440,10 +440,14 @@ def _shots(view: ThermalView | None, geo: _MapGeometry, r: pd.Series, ageom, pal
     arr, ext = close
     tr = Affine((ext[1] - ext[0]) / arr.shape[1], 0.0, ext[0], 0.0, -(ext[3] - ext[2]) / arr.shape[0], ext[3])
     neigh = [g for g in geo.near(close_box) if not any(g is m for m in mods)]
-    # the healthy level comes from every module in view, the top from the anomalous module(s)
+    # the level comes from the neighbouring modules in view (else the module), the top from
+    # the anomalous module(s)
     inside = ~geometry_mask(mods, out_shape=arr.shape, transform=tr, all_touched=False)
-    in_view = inside | ~geometry_mask(neigh, out_shape=arr.shape, transform=tr) if neigh else inside
-    level_vals = arr[in_view] if in_view.any() else arr
+    around = (~geometry_mask(neigh, out_shape=arr.shape, transform=tr) & ~inside) if neigh else None
+    if around is not None and np.isfinite(arr[around]).sum() >= 20:
+        level_vals = arr[around]
+    else:
+        level_vals = arr[inside] if inside.any() else arr
     top_vals = arr[inside] if inside.any() else arr
     lo, hi = module_window(level_vals, top_values=top_vals, percentile_hi=float(cfg["crop_percentile_hi"]),
                            median_level=float(cfg["crop_median_level"]),
@@ -852,7 +856,7 @@ def _build(data: ResultData, view, modules_gdf, cfg: dict, notes: list[str], pro
     pins_html = "".join(pin_links)
     if view is not None:
         cards_lead = ("One card per anomaly in priority order. Left: close-up of the module, colour window fitted "
-                      "to the modules in view (healthy modules in the lower third), the affected region outlined in "
+                      "to the neighbouring modules (they sit in the lower third), the affected region outlined in "
                       '<b style="color:#1aa6c9">cyan</b> and the module in white. Right: the surroundings in the '
                       "site-wide colour window, for context. Images show the ortho's apparent temperatures.")
     else:
