@@ -18,9 +18,10 @@ Physics, in the order it is applied to a pixel:
    :func:`pvscan.radiometry.sky_temperature`, warmer where a soft reflection patch lies)
    and ground, through the air path, exported at the export emissivity and reflected
    temperature (:func:`pvscan.radiometry.apparent_from_true`).
-5. **Mosaic**: rectangular seams add a step of 0.5-2 K to the apparent temperature.
-6. **Camera**: Gaussian point-spread function, then white noise of the camera's NETD;
-   a wavy nodata border at the edge of the mosaic.
+5. **Camera**: Gaussian point-spread function applied to the band radiance (the lens
+   mixes radiance, not temperature).
+6. **Mosaic**: rectangular seams add a sharp step of 0.5-2 K to the apparent temperature;
+   then white noise of the camera's NETD and a wavy nodata border at the edge.
 
 References
 ----------
@@ -49,6 +50,7 @@ __all__ = ["Scene", "faiman", "GROUND", "GLASS", "FRAME", "OBJECT"]
 log = logging.getLogger(__name__)
 
 GROUND, GLASS, FRAME, OBJECT = 0, 1, 2, 3
+_ZERO_C = 273.15  # [K]
 
 
 def faiman(poa_global, temp_air, wind_speed, u0=25.0, u1=6.84):
@@ -437,13 +439,18 @@ class Scene:
         x, y = self.pixel_centres(row0 - halo, col0 - halo, nrows + 2 * halo, ncols + 2 * halo)
         scene = self.true_scene(x, y)
         app = np.asarray(self.apparent(scene), float)
-        rr = np.arange(row0 - halo, row0 + nrows + halo)[:, None]
-        cc = np.arange(col0 - halo, col0 + ncols + halo)[None, :]
+        if sigma > 0:
+            # the lens mixes radiance, not temperature: blur the band radiance of the apparent
+            # temperature (affine in the sensor radiance for any export emissivity)
+            band = tuple(cam["band_um"])
+            rad = ndimage.gaussian_filter(radiometry.band_radiance(app + _ZERO_C, band), sigma, mode="nearest")
+            app = np.asarray(radiometry.temperature_from_band_radiance(rad, band), float) - _ZERO_C
+        app = app[halo:halo + nrows, halo:halo + ncols]
+        # mosaic seams: steps between frames, sharp (applied after each frame's blur)
+        rr = np.arange(row0, row0 + nrows)[:, None]
+        cc = np.arange(col0, col0 + ncols)[None, :]
         for r0, r1, c0, c1, step in self.seams:
             app = app + np.where((rr >= r0) & (rr < r1) & (cc >= c0) & (cc < c1), step, 0.0)
-        if sigma > 0:
-            app = ndimage.gaussian_filter(app, sigma, mode="nearest")
-        app = app[halo:halo + nrows, halo:halo + ncols]
         rng = np.random.default_rng([self.seed, 8, row0, col0])
         app = app + rng.normal(0.0, float(cam["netd_k"]), app.shape)
         xc, yc = x[halo:halo + nrows, halo:halo + ncols], y[halo:halo + nrows, halo:halo + ncols]
