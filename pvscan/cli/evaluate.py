@@ -14,16 +14,19 @@ from pvscan.cli._common import echo, handle_errors
 @click.argument("result_dir", type=click.Path(file_okay=False, path_type=Path))
 @click.option("--json", "json_path", type=click.Path(dir_okay=False, path_type=Path),
               help="Also write the scores to this JSON file.")
+@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
+              help="Pipeline settings whose [evaluate] section sets the module matching.")
 @handle_errors
-def evaluate_cmd(truth_dir, result_dir, json_path):
+def evaluate_cmd(truth_dir, result_dir, json_path, pipeline_path):
     """Score RESULT_DIR (from `pvscan inspect`) against TRUTH_DIR (from `pvscan simulate`).
 
     Prints detection precision/recall, per-class recall, the confusion matrix, false alarms,
     power-loss and temperature errors.
     """
     from pvscan.evaluate import evaluate, format_report
+    from pvscan.settings import load_pipeline
 
-    scores = evaluate(truth_dir, result_dir)
+    scores = evaluate(truth_dir, result_dir, load_pipeline(pipeline_path)["evaluate"])
     if json_path is not None:
         json_path.parent.mkdir(parents=True, exist_ok=True)
         json_path.write_text(json.dumps(scores, indent=2), encoding="utf-8")
