@@ -772,3 +772,22 @@ def test_map_marks_link_to_cards_at_the_anomaly(result, report_html):
     assert all(0 < x < 100 and 0 < y < 100 for x, y in pos.values())
     assert pos["a1"][0] > pos["a2"][0] and abs(pos["a1"][1] - pos["a2"][1]) < 5
     assert pos["a3"][1] > pos["a1"][1] + 10
+
+
+def test_open_module_close_up_stands_out_from_its_neighbours(report_html):
+    """In the close-up of the open module (card 1) the neighbouring modules sit near the
+    configured level (35 % of the colour window) and the warm module well above it."""
+    from pvscan.settings import load_pipeline
+
+    level = load_pipeline()["report"]["crop_median_level"]
+    card = report_html.split('id="a1"')[1].split("</article>")[0]
+    src = re.search(r'<img class="crop" src="([^"]+)"', card).group(1)
+    im = decode_png(src)
+    assert im.mode == "P"
+    idx = np.asarray(im).astype(float)
+    h, w = idx.shape
+    rows = slice(int(0.3 * h), int(0.7 * h))
+    centre = np.median(idx[rows, int(0.4 * w):int(0.6 * w)]) / 240.0
+    side = np.median(idx[rows, 2:int(0.15 * w)]) / 240.0
+    assert side == pytest.approx(level, abs=0.12)
+    assert centre > level + 0.3
