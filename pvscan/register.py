@@ -457,6 +457,12 @@ def _settings(settings) -> dict:
         settings = settings["register"]
     for k, v in dict(settings).items():
         out[k] = v
+    from pvscan.errors import PipelineError
+    from pvscan.resources import describe_error, load_schema, schema_errors
+
+    errs = schema_errors(out, load_schema("pipeline/register.schema.json"))
+    if errs:
+        raise PipelineError(f"[register] settings: {describe_error(errs[0], prefix='register.')}")
     return out
 
 

@@ -458,6 +458,12 @@ def test_register_settings_schema():
         pipe.replace(register={"max_shift_mm": 3})
     with pytest.raises(PipelineError, match="register"):
         pipe.replace(register={"whitening": 1.5})
+    mods = make_layout((500_000.0, 4_000_000.0))
+    img, tr = render(mods, (0.0, 0.0), seed=26, gsd=0.1)
+    with pytest.raises(PipelineError, match="register.max_shift_mm"):
+        estimate_shift(ArrayOrthos([img], [tr], "EPSG:32633"), mods, {"max_shift_mm": 3})
+    reg = estimate_shift(ArrayOrthos([img], [tr], "EPSG:32633"), mods, pipe)   # a whole pipeline works too
+    assert not reg.applied
 
 
 # ----------------------------------------------------------------------------------
