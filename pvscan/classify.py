@@ -101,6 +101,7 @@ _CLASSIFY_DEFAULTS = {
     "hot_cell_whole_min": 0.5,
     "hot_cell_contrast_min": 0.5,
     "hot_cell_peak_share": 0.6,
+    "hot_cell_merge_touching": False,
     "junction_box_min_k": 3.0,
     "junction_box_spot_max": 0.75,
     "junction_box_straddle_min": 0.4,
@@ -601,9 +602,11 @@ def pattern_hot_cell(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
     A hot cell (a cell in reverse bias: crack, shading, mismatch) heats the whole cell, so
     its median rises with its p95 (a junction-box spot raises the p95 only). It must stand
     out from its own substring (so a hot cell inside a bypassed substring is still seen)
-    and from its neighbouring cells (so a smooth reflection is not a hot cell). Adjacent
-    hot cells are counted separately when each is at least ``hot_cell_peak_share`` of the
-    hottest cell around it; heat spreading into neighbours is not.
+    and from its neighbouring cells (so a smooth reflection is not a hot cell). A cell next
+    to a hot one counts only when at least ``hot_cell_peak_share`` of the hottest around
+    it (heat spreading into neighbours does not). With ``hot_cell_merge_touching``,
+    touching hot cells form one hot spot (robust to footprints a few centimetres off, at
+    the price of calling two touching hot cells one).
 
     Returns
     -------
@@ -638,7 +641,18 @@ def pattern_hot_cell(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
                                     mode="constant", cval=-np.inf)
     hot |= edge_spot & (X95 >= peak_e)
     hot &= F.ok[:, None, None]
-    count = hot.sum(axis=(1, 2))
+    if bool(cfg["hot_cell_merge_touching"]):
+        # touching hot cells as one hot spot: a spot straddling a cell boundary (footprints
+        # a few centimetres off) then does not pose as several hot cells
+        struct = np.zeros((3, 3, 3), bool)
+        struct[1] = True
+        labels, _ = ndimage.label(hot, structure=struct)
+        count = np.zeros(F.n, np.int64)
+        if labels.max() > 0:
+            owner = np.array([sl[0].start for sl in ndimage.find_objects(labels)], dtype=np.int64)
+            np.add.at(count, owner, 1)
+    else:
+        count = hot.sum(axis=(1, 2))
     n = F.n
     xmax = np.where(hot, X95, -np.inf).reshape(n, -1).max(axis=1) if n else np.zeros(0)
     temp = np.where(hot, F.cp, -np.inf).reshape(n, -1).max(axis=1) if n else np.zeros(0)
@@ -648,7 +662,7 @@ def pattern_hot_cell(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
     multi = Hits("hot_cell_multi", count >= 2, conf, temp)
     for i in np.flatnonzero(count):
         cells = np.argwhere(hot[i])
-        target = single if len(cells) == 1 else multi
+        target = single if count[i] == 1 else multi
         target.region[i] = "cell" if len(cells) == 1 else "cells"
         target.boxes[i] = [(a / A, (a + 1) / A, c / C, (c + 1) / C) for a, c in cells]
     F.extra["hot_cells"] = hot

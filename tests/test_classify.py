@@ -351,13 +351,25 @@ def test_hot_cell(rng):
     assert a.delta_t_k == pytest.approx(15.0 + 1.65 * 0.25, abs=0.8)
 
 
-def test_hot_cell_multi_counts_adjacent_cells(rng):
+def test_hot_cell_multi_lists_every_cell(rng):
     p = Plant(rng, orientation="landscape")
     i = p.index(table="T0-1", col=4)
     p.hot(i, [(3, 1), (3, 2), (9, 5)], 12.0)
     an, _ = p.run()
     assert found(an) == {i: "hot_cell_multi"}
     assert len(an.iloc[0].region_uv) == 3
+
+
+@pytest.mark.parametrize("merge, expected", [(False, "hot_cell_multi"), (True, "hot_cell")])
+def test_touching_hot_cells(rng, merge, expected):
+    # two touching hot cells, or one hot spot straddling two cells (footprint a few cm off)
+    p = Plant(rng)
+    i = p.index(col=7)
+    p.hot(i, [(3, 0), (4, 0)], 14.0)
+    settings = load_pipeline().replace(classify={"hot_cell_merge_touching": merge})
+    an, _ = p.run(settings=settings)
+    assert found(an) == {i: expected}
+    assert len(an.iloc[0].region_uv) == 2
 
 
 def test_junction_box_edge(rng):
