@@ -791,3 +791,43 @@ def test_open_module_close_up_stands_out_from_its_neighbours(report_html):
     side = np.median(idx[rows, 2:int(0.15 * w)]) / 240.0
     assert side == pytest.approx(level, abs=0.12)
     assert centre > level + 0.3
+
+
+def test_two_overlapping_tiles(tmp_path):
+    """An ortho in two overlapping tiles: the map is one mosaic and each crop comes whole from
+    the tile that covers it best (no nodata inside the module)."""
+    import rasterio
+    from rasterio.windows import Window
+
+    from pvscan.report import write_report
+    from pvscan.report._build import _MapGeometry
+    from pvscan.report._raster import ThermalView, open_thermal
+    from pvscan.report._result import load_result
+
+    res = build_result(tmp_path)
+    src = tmp_path / "flight" / "thermal.tif"
+    tiles = []
+    with rasterio.open(src) as ds:
+        half = ds.width // 2
+        for k, (c0, c1) in enumerate(((0, half + 40), (half - 40, ds.width))):
+            win = Window(c0, 0, c1 - c0, ds.height)
+            prof = ds.profile | {"width": c1 - c0, "transform": ds.window_transform(win)}
+            out = tmp_path / "flight" / f"tile{k}.tif"
+            with rasterio.open(out, "w", **prof) as dst:
+                dst.write(ds.read(1, window=win), 1)
+            tiles.append(out)
+    summary = json.loads((res / "summary.json").read_text())
+    summary["inputs"]["files"] = [str(t) for t in tiles]
+    (res / "summary.json").write_text(json.dumps(summary))
+    doc = parse(write_report(res).read_text())
+    crops = [a for a in doc.imgs if (a.get("class") or "") == "crop"]
+    assert len(crops) == 2 * len(PLANTED)
+    data = load_result(res)
+    with open_thermal(tiles) as oset:
+        view = ThermalView(oset)
+        geo = _MapGeometry(data, view.crs)
+        mosaic, extent = view.overview(400)
+        assert np.isfinite(mosaic).mean() > 0.95
+        for g in geo.modules:
+            arr, _ = view.crop(g.buffer(-0.1).bounds)
+            assert np.isfinite(arr).all()
