@@ -237,6 +237,9 @@ def test_flight_folder_follows_the_contract(tmp_path):
     need = {"module_id", "table_id", "string_id", "string_index", "defect", "t_true_median_c",
             "reference_true_c", "delta_t_k", "delta_t_norm_k", "power_loss_w", "poa_global", "wind_speed"}
     assert need <= set(truth["features"][0]["properties"])
+    from pvscan.resources import load_schema, schema_errors
+
+    assert not schema_errors(truth, load_schema("truth.schema.json"))
     assert sum(f["properties"]["defect"] is not None for f in truth["features"]) == 1
     # truth geometry = the layout as drawn (results are reported in layout positions)
     lay_by_id = {f["properties"]["module_id"]: f["geometry"] for f in lay["features"]}
@@ -260,6 +263,13 @@ def test_southern_tiles_raw_gpkg_scenario(tmp_path):
         v = a.read(1, masked=True) * 0.01 - 273.15
         assert 0.0 < float(v.min()) and float(v.max()) < 90.0
     truth = json.loads(res.truth.read_text())
+    from pvscan.resources import load_schema, schema_errors
+
+    schema = load_schema("truth.schema.json")
+    assert not schema_errors(truth, schema)
+    truth["features"][0]["properties"]["defect"] = "scorch"          # the schema can fail
+    assert schema_errors(truth, schema)
+    truth["features"][0]["properties"]["defect"] = None
     jb = [f["properties"] for f in truth["features"] if f["properties"]["defect"] == "junction_box"]
     assert jb and all(p["centre"][0] == 0.5 for p in jb)       # split boxes on the middle line
     assert json.loads(res.truth_json.read_text())["layout_offset_m"] == [0.4, 0.25]
