@@ -766,6 +766,13 @@ def estimate_shift(orthos, modules, settings: Mapping | None = None, *,
         return Registration(message="registration disabled ([register] enabled = false)")
     tiles = list(orthos.tiles)
     notes: list[str] = []
+    if tiles and getattr(modules, "crs", None) is not None and _tile_attr(tiles[0], "crs") is not None:
+        from pyproj import CRS
+
+        tc = CRS.from_user_input(_tile_attr(tiles[0], "crs"))
+        if CRS.from_user_input(modules.crs) != tc:
+            raise RegistrationError(f"layout CRS {CRS.from_user_input(modules.crs).to_string()} differs from the "
+                                    f"ortho CRS {tc.to_string()}; reproject the modules first")
     geoms = np.asarray(modules.geometry.values, dtype=object) if len(modules) else np.zeros(0, object)
     import shapely
 

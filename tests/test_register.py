@@ -314,6 +314,13 @@ def test_flat_image_has_no_usable_block():
     assert not reg.applied and reg.blocks[0].note == "no contrast"
 
 
+def test_layout_in_another_crs_is_refused():
+    mods = make_layout((500_000.0, 4_000_000.0))
+    img, tr = render(mods, (0.0, 0.0), seed=27, gsd=0.1)
+    with pytest.raises(RegistrationError, match="EPSG:32634"):
+        estimate_shift(ArrayOrthos([img], [tr], "EPSG:32633"), mods.set_crs("EPSG:32634", allow_override=True))
+
+
 def test_disabled():
     mods = make_layout((500_000.0, 4_000_000.0))
     img, tr = render(mods, (1.0, 0.0), seed=17)
