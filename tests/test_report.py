@@ -831,3 +831,8 @@ def test_two_overlapping_tiles(tmp_path):
         for g in geo.modules:
             arr, _ = view.crop(g.buffer(-0.1).bounds)
             assert np.isfinite(arr).all()
+        # a box straddling the seam wider than the overlap is filled from both tiles
+        with rasterio.open(tiles[1]) as ds:
+            x_seam = ds.bounds.left + 2.0  # the middle of the 4 m overlap
+        arr, _ = view.crop((x_seam - 5.0, Y0 + 4.5, x_seam + 5.0, Y0 + 5.5))
+        assert np.isfinite(arr).all()

@@ -96,7 +96,39 @@ class ThermalView:
             arr = np.asarray(self.orthos.read(best, Window(rc0, rr0, rc1 - rc0, rr1 - rr0)), dtype=np.float32)
             out[rr0 - r0:rr1 - r0, rc0 - c0:rc1 - c0] = arr.reshape(rr1 - rr0, rc1 - rc0)
         extent = (t.c + c0 * t.a, t.c + c1 * t.a, t.f + r1 * t.e, t.f + r0 * t.e)
+        self._fill_from_other_tiles(out, best, extent)
         return out, extent
+
+    def _fill_from_other_tiles(self, out: np.ndarray, best: int, extent) -> None:
+        """Fill NaN pixels of a crop from other tiles on the same pixel grid (tiles of one
+        ortho cut at seams); tiles on another grid are left out (no resampling here)."""
+        from rasterio.windows import Window
+
+        if len(self.tiles) < 2 or not np.isnan(out).any():
+            return
+        t0 = self.tiles[best].transform
+        for i, tile in enumerate(self.tiles):
+            if i == best:
+                continue
+            t = tile.transform
+            dc, dr = (t.c - t0.c) / t0.a, (t.f - t0.f) / t0.e
+            if not (math.isclose(t.a, t0.a, rel_tol=1e-9) and math.isclose(t.e, t0.e, rel_tol=1e-9)
+                    and abs(dc - round(dc)) < 1e-3 and abs(dr - round(dr)) < 1e-3):
+                continue
+            c0 = int(round((extent[0] - t.c) / t.a))
+            r0 = int(round((extent[3] - t.f) / t.e))
+            h, w = out.shape
+            rc0, rc1 = max(c0, 0), min(c0 + w, tile.width)
+            rr0, rr1 = max(r0, 0), min(r0 + h, tile.height)
+            if rc1 <= rc0 or rr1 <= rr0:
+                continue
+            dst = out[rr0 - r0:rr1 - r0, rc0 - c0:rc1 - c0]
+            hole = np.isnan(dst)
+            if hole.any():
+                arr = np.asarray(self.orthos.read(i, Window(rc0, rr0, rc1 - rc0, rr1 - rr0)), dtype=np.float32)
+                dst[hole] = arr.reshape(dst.shape)[hole]
+            if not np.isnan(out).any():
+                return
 
 
 def open_thermal(paths: Sequence[str | Path], spec: Any = None):
