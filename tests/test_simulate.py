@@ -5,7 +5,7 @@ References used:
 - Planck's law integrated numerically with scipy.integrate.quad and CODATA constants from
   scipy.constants, for the apparent temperatures the simulator writes;
 - energy conservation (first law): heat added by a defect = electrical power it removes;
-- RFC 7946 (GeoJSON lon/lat, counter-clockwise exterior rings) and the UTM zone rule
+- RFC 7946 (GeoJSON lon/lat, counter-clockwise exterior rings); pyproj's UTM zone query and the zone rule
   (EPSG 326xx north / 327xx south, zone = floor((lon + 180) / 6) + 1) from EPSG's registry
   definitions (from memory).
 """
@@ -180,6 +180,17 @@ def test_open_module_truth_rise_is_eta_g_over_u():
     # normalisation of the contract: delta * 1000/G * U(v)/U(1)
     norm = expected * 1000.0 / scene.poa[i] * (25 + 6.84 * scene.wind[i]) / (25 + 6.84)
     assert t["delta_t_norm_k"][i] == pytest.approx(norm, abs=0.02)
+
+
+@pytest.mark.parametrize("lon,lat", [(8.1, 47.3), (-4.05, 39.23), (24.71, -30.42), (151.2, -33.8), (-106.3, 34.1)])
+def test_utm_zone_matches_pyproj(lon, lat):
+    # Reference: pyproj's UTM zone query (regular zones away from the Norway exceptions).
+    from pyproj.aoi import AreaOfInterest
+    from pyproj.database import query_utm_crs_info
+
+    info = query_utm_crs_info(datum_name="WGS 84", area_of_interest=AreaOfInterest(lon, lat, lon, lat))
+    codes = {int(i.code) for i in info if i.code.startswith("32")}
+    assert utm_epsg(lon, lat) in codes
 
 
 # ----------------------------------------------------------------------------- files

@@ -25,7 +25,11 @@ __all__ = ["Field", "build_field", "utm_epsg"]
 
 
 def utm_epsg(lon: float, lat: float) -> int:
-    """EPSG code of the WGS84 UTM zone of a point (326xx north, 327xx south)."""
+    """EPSG code of the WGS84 UTM zone of a point (326xx north, 327xx south).
+
+    Zones are the regular 6-degree bands; the exceptions around Norway and Svalbard are not
+    applied (any zone projects a site of a few hundred metres without noticeable distortion).
+    """
     zone = int(math.floor((lon + 180.0) / 6.0)) % 60 + 1
     return (32600 if lat >= 0 else 32700) + zone
 
