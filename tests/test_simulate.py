@@ -332,6 +332,8 @@ def test_bad_scenarios_raise_one_line_errors(tmp_path):
         simulate_flight({"site": {"lon": 1.0, "lat": 45.0}, "array": {"tiltdeg": 3}}, tmp_path / "x")
     with pytest.raises(SimulationError, match="row_pitch_m"):
         simulate_flight({"site": {"lon": 1.0, "lat": 45.0}, "array": {"row_pitch_m": 2.0}}, tmp_path / "x")
+    with pytest.raises(SimulationError, match="flight.start.*no UTC offset"):
+        simulate_flight({"site": {"lon": 1.0, "lat": 45.0}, "flight": {"start": "2026-06-14T10:00"}}, tmp_path / "x")
     with pytest.raises(SimulationError, match="site"):
         simulate_flight({"array": {}}, tmp_path / "x")
     bad = tmp_path / "bad.toml"

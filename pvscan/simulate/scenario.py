@@ -193,6 +193,15 @@ def _check(sc: dict, where: str) -> None:
         raise SimulationError(f"{where}: key array.modules_per_string ({mps}) does not divide array.cols ({a['cols']})")
     if sc["camera"]["gsd_m"] * 8 > m["width_m"]:
         raise SimulationError(f"{where}: key camera.gsd_m is too coarse: a module must span at least 8 pixels")
+    from datetime import datetime
+
+    start = sc["flight"]["start"]
+    try:
+        t0 = datetime.fromisoformat(start.replace("Z", "+00:00"))
+    except ValueError:
+        raise SimulationError(f"{where}: key flight.start: {start!r} is not an ISO 8601 date-time") from None
+    if t0.tzinfo is None:
+        raise SimulationError(f"{where}: key flight.start: {start!r} has no UTC offset (write e.g. +02:00 or Z)")
     lo, hi = sc["defects"]["pid_modules"]
     if lo > hi:
         raise SimulationError(f"{where}: key defects.pid_modules: the lower bound exceeds the upper")
