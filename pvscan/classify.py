@@ -97,6 +97,7 @@ _CLASSIFY_DEFAULTS = {
     "substring_ratio_max": 1.8,
     "substring_cover_min": 0.8,
     "substring_partial_max": 0.3,
+    "substring_column_chi2_max": 4.0,
     "hot_cell_min_k": 3.0,
     "hot_cell_whole_min": 0.5,
     "hot_cell_contrast_min": 0.5,
@@ -504,6 +505,19 @@ def pattern_bypassed_substring(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
     with np.errstate(invalid="ignore", divide="ignore"):
         p_noise = 2.0 * _norm.sf(0.25 * mean_raise / max(F.sig_cell, 1e-3))
     hit &= ~(_intermediate_columns(F, Xlo, mean_raise) > p_noise + float(cfg["substring_partial_max"]))
+    # the columns at the plateau's edges on the plateau (raised or not) within the cell
+    # noise: the worst one's mean squared deviation from the plateau model, in cell-noise
+    # units (clipped at 5)
+    model = np.where(col_raised[:, None, :], mean_raise[:, None, None], 0.0)
+    zc = np.clip((Xlo - model) / max(F.sig_cell, 1e-3), -5.0, 5.0)
+    # only the columns on either side of the plateau's edges: where a slanted step shows
+    cr = col_raised.astype(np.int8)
+    edge_col = np.zeros_like(col_raised)
+    edge_col[:, 1:] |= cr[:, 1:] != cr[:, :-1]
+    edge_col[:, :-1] |= cr[:, :-1] != cr[:, 1:]
+    col_chi2 = _nanmax(np.where(edge_col, _nanmean(zc * zc, axis=1), np.nan), axis=1)
+    col_chi2 = np.nan_to_num(col_chi2, nan=0.0)
+    hit &= ~(col_chi2 > float(cfg["substring_column_chi2_max"]))
     hit &= ~_carried_across_edge(F, raised, hit)
     conf = _conf(_fit(ratio), _quality(mean_raise, floor), np.clip((cover_in - cover_out), 0, 1))
     # region temperature: median of the raised substrings' measured medians
