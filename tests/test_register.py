@@ -563,3 +563,9 @@ def test_align_command_writes_the_moved_layout(tmp_path_factory):
     assert not [p for p in out.parent.iterdir() if p.name.endswith(".tmp.gpkg")]
     bad = runner.invoke(cli, ["align", str(res.manifest), "--out", str(out.with_suffix(".geojson"))])
     assert bad.exit_code == 1 and "GeoPackage" in bad.output
+    tuned = out.parent / "tuned.toml"
+    tuned.write_text("[register]\nmax_shift_mm = 2.0\n")
+    typo = runner.invoke(cli, ["align", str(res.manifest), "--out", str(out.parent / "x.gpkg"),
+                               "--pipeline", str(tuned)])
+    assert typo.exit_code == 1 and "max_shift_mm" in typo.output and "Traceback" not in typo.output
+    assert not (out.parent / "x.gpkg").exists()
