@@ -172,15 +172,18 @@ def overview_png(*, extent, image: np.ndarray | None, module_geoms, module_value
         s.set_color(_MUTED)
     # scale bar (bottom left, in map metres)
     bar = nice_length(width * 0.2)
-    bx, by = xmin + 0.03 * width, ymin + 0.04 * height
-    bh = 0.012 * max(height, width * 0.4)
-    ax.add_patch(Rectangle((bx - 0.01 * width, by - 0.7 * bh), bar + 0.02 * width, 3.9 * bh,
+    # map units per typographic point: with an equal aspect the larger ratio wins
+    fw, fh = fig.get_size_inches()
+    per_pt = max(width / (0.84 * fw * 72.0), height / (0.87 * fh * 72.0))
+    bh = 4.0 * per_pt
+    bx, by = xmin + 0.03 * width, ymin + 6.0 * per_pt
+    ax.add_patch(Rectangle((bx - 5.0 * per_pt, by - 4.0 * per_pt), bar + 10.0 * per_pt, 22.0 * per_pt,
                            facecolor="white", edgecolor="none", zorder=7))
     for k in range(4):
         ax.add_patch(Rectangle((bx + k * bar / 4, by), bar / 4, bh, facecolor=_INK if k % 2 == 0
                                else "white", edgecolor=_INK, linewidth=0.6, zorder=8))
     label = f"{bar:g} m" if bar < 1000 else f"{bar / 1000:g} km"
-    ax.text(bx + bar / 2, by + 1.5 * bh, label, ha="center", va="bottom", fontsize=8, color=_INK,
+    ax.text(bx + bar / 2, by + bh + 2.0 * per_pt, label, ha="center", va="bottom", fontsize=8, color=_INK,
             zorder=8)
     # north arrow (top right, pointing to true north)
     cx, cy = xmax - 0.06 * width, ymax - 0.13 * height
