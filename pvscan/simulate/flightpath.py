@@ -1,6 +1,7 @@
 """Serpentine flight path, camera frames and the weather along the flight.
 
-The drone flies east-west lines over the field, alternating direction, one frame every
+The drone flies straight lines over the field (along the table rows, or east-west),
+alternating direction, one frame every
 ``along * (1 - front_overlap)`` metres, lines ``across * (1 - side_overlap)`` apart, at
 ``speed_m_s`` with ``turn_s`` seconds per turn. A module is *imaged* at the time of the
 frame whose centre is nearest to the module's centroid (the frame that sees it most
@@ -23,22 +24,21 @@ class FlightPlan:
 
     Attributes
     ----------
-    boxes : ndarray (n, 4)
-        Frame footprints (xmin, ymin, xmax, ymax) in the projected CRS [m].
+    corners : ndarray (n, 4, 2)
+        Frame footprints (four corners, counter-clockwise) in the projected CRS [m].
     times_s : ndarray (n,)
         Seconds since the start of the flight [s].
     duration_s : float
         Time of the last frame [s].
     """
 
-    boxes: np.ndarray
+    corners: np.ndarray
     times_s: np.ndarray
     duration_s: float
 
     @property
     def centres(self) -> np.ndarray:
-        b = self.boxes
-        return np.stack([(b[:, 0] + b[:, 2]) / 2, (b[:, 1] + b[:, 3]) / 2], axis=1)
+        return self.corners.mean(axis=1)
 
     def imaged_at(self, x, y) -> np.ndarray:
         """Time each point is imaged: that of the frame whose centre is nearest [s]."""
@@ -48,7 +48,7 @@ class FlightPlan:
         return self.times_s[k].reshape(np.shape(x))
 
 
-def plan_flight(fl: dict, extent, gsd: float) -> FlightPlan:
+def plan_flight(fl: dict, extent, gsd: float, heading=(1.0, 0.0)) -> FlightPlan:
     """Plan serpentine lines covering ``extent`` = (xmin, ymin, xmax, ymax) [m].
 
     Parameters
@@ -57,28 +57,39 @@ def plan_flight(fl: dict, extent, gsd: float) -> FlightPlan:
         The scenario's ``[flight]`` table.
     gsd : float
         Ground sampling distance of the frames [m/px].
+    heading : (float, float)
+        Unit vector (east, north) of the flight lines; frames are aligned with it.
     """
+    h = np.asarray(heading, float)
+    h = h / np.hypot(*h)
+    q_axis = np.array([-h[1], h[0]])                 # across the lines (to the left)
     xmin, ymin, xmax, ymax = extent
-    across = fl["frame_px"][0] * gsd      # frame width across the track (north-south) [m]
-    along = fl["frame_px"][1] * gsd       # frame height along the track (east-west) [m]
+    box = np.array([[xmin, ymin], [xmax, ymin], [xmax, ymax], [xmin, ymax]])
+    p_c, q_c = box @ h, box @ q_axis
+    pmin, pmax, qmin, qmax = p_c.min(), p_c.max(), q_c.min(), q_c.max()
+    across = fl["frame_px"][0] * gsd      # frame width across the track [m]
+    along = fl["frame_px"][1] * gsd       # frame height along the track [m]
     step_along = max(along * (1.0 - fl["front_overlap"]), gsd)
     step_lines = max(across * (1.0 - fl["side_overlap"]), gsd)
-    n_lines = max(1, math.ceil(max(ymax - ymin - across, 0.0) / step_lines) + 1)
-    n_frames = max(1, math.ceil(max(xmax - xmin - along, 0.0) / step_along) + 1)
-    xs = xmin + along / 2 + np.arange(n_frames) * step_along
-    boxes, times = [], []
+    n_lines = max(1, math.ceil(max(qmax - qmin - across, 0.0) / step_lines) + 1)
+    n_frames = max(1, math.ceil(max(pmax - pmin - along, 0.0) / step_along) + 1)
+    ps = pmin + along / 2 + np.arange(n_frames) * step_along
+    local = np.array([[-along / 2, -across / 2], [along / 2, -across / 2], [along / 2, across / 2],
+                      [-along / 2, across / 2]])
+    corners, times = [], []
     t = 0.0
     for k in range(n_lines):
-        yc = ymax - across / 2 - k * step_lines
-        order = xs if k % 2 == 0 else xs[::-1]
-        for j, xc in enumerate(order):
+        qc = qmax - across / 2 - k * step_lines
+        order = ps if k % 2 == 0 else ps[::-1]
+        for j, pc in enumerate(order):
             if j:
                 t += step_along / fl["speed_m_s"]
-            boxes.append((xc - along / 2, yc - across / 2, xc + along / 2, yc + across / 2))
+            pq = local + np.array([pc, qc])
+            corners.append(pq[:, :1] * h + pq[:, 1:] * q_axis)
             times.append(t)
         t += fl["turn_s"] + step_lines / fl["speed_m_s"]
     times_arr = np.asarray(times)
-    return FlightPlan(np.asarray(boxes), times_arr, float(times_arr.max()))
+    return FlightPlan(np.asarray(corners), times_arr, float(times_arr.max()))
 
 
 @dataclass

@@ -49,6 +49,7 @@ DEFAULTS: dict[str, Any] = {
         "front_overlap": 0.7,
         "side_overlap": 0.3,
         "turn_s": 8.0,
+        "lines": "rows",
         "write_frames": "auto",
     },
     "array": {

@@ -143,7 +143,8 @@ class Scene:
 
         # flight and conditions
         self.start = datetime.fromisoformat(sc["flight"]["start"].replace("Z", "+00:00"))
-        self.plan = plan_flight(sc["flight"], self.extent, gsd)
+        heading = tuple(fld.a) if sc["flight"]["lines"] == "rows" else (1.0, 0.0)
+        self.plan = plan_flight(sc["flight"], self.extent, gsd, heading)
         cond = sc["conditions"]
         self.weather = weather_series(cond, self.plan.duration_s, np.random.default_rng([self.seed, 2]))
         self.end = self.start + timedelta(seconds=round(self.plan.duration_s))

@@ -241,9 +241,7 @@ def write_frames(scene, out_dir: Path) -> str:
     """Camera frame footprints with their ``time`` (ISO 8601), RFC 7946 lon/lat."""
     tr = _to_lonlat(scene.field.epsg)
     feats = []
-    for k, (box, t) in enumerate(zip(scene.plan.boxes, scene.plan.times_s)):
-        x0, y0, x1, y1 = box
-        xy = np.array([[x0, y0], [x1, y0], [x1, y1], [x0, y1]])
+    for k, (xy, t) in enumerate(zip(scene.plan.corners, scene.plan.times_s)):
         feats.append({"type": "Feature",
                       "properties": {"frame": k + 1, "time": (scene.start + timedelta(seconds=float(t))).isoformat()},
                       "geometry": {"type": "Polygon", "coordinates": [_ring(tr, xy)]}})
