@@ -297,6 +297,9 @@ def test_tracker_series_scenario_writes_weather_and_frames(tmp_path):
     frames = json.loads(res.frames.read_text())["features"]
     times = [f["properties"]["time"] for f in frames]
     assert times == sorted(times) and len(frames) > 4
+    scene = build_scene(sc, 3)                     # lines run along the tracker rows
+    edge = scene.plan.corners[0][1] - scene.plan.corners[0][0]
+    assert abs(edge @ scene.field.a) == pytest.approx(np.hypot(*edge), rel=1e-9)
     truth = [f["properties"] for f in json.loads(res.truth.read_text())["features"]]
     assert len({round(p["poa_global"], 1) for p in truth}) > 1               # conditions vary
     pid = sorted((p["string_index"], p["power_loss_w"]) for p in truth if p["defect"] == "pid")
