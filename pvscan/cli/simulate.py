@@ -12,7 +12,7 @@ from pvscan.cli._common import Progress, echo, handle_errors
 @click.argument("scenario", type=click.Path(dir_okay=False, path_type=Path))
 @click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=Path),
               help="Flight folder to write (must not exist unless --overwrite).")
-@click.option("--seed", type=int, default=0, show_default=True,
+@click.option("--seed", type=click.IntRange(min=0), default=0, show_default=True,
               help="Seed of every random choice; the same seed gives identical files.")
 @click.option("--overwrite", is_flag=True, help="Replace an existing simulated flight folder.")
 @handle_errors

@@ -145,6 +145,8 @@ def simulate_flight(scenario, out_dir, seed: int = 0, *, overwrite: bool = False
     from pvscan.simulate.truth import module_truth
 
     out_dir = Path(out_dir)
+    if int(seed) < 0:
+        raise SimulationError(f"seed {seed}: must be zero or positive")
     occupied = out_dir.exists() and (not out_dir.is_dir() or any(out_dir.iterdir()))
     if occupied:
         if not overwrite:
