@@ -836,3 +836,14 @@ def test_two_overlapping_tiles(tmp_path):
             x_seam = ds.bounds.left + 2.0  # the middle of the 4 m overlap
         arr, _ = view.crop((x_seam - 5.0, Y0 + 4.5, x_seam + 5.0, Y0 + 5.5))
         assert np.isfinite(arr).all()
+
+
+def test_flight_period_is_readable():
+    from pvscan.report._build import _period
+
+    assert _period("2026-06-14T10:40:00+02:00", "2026-06-14T11:25:00+02:00") == "14 Jun 2026, 10:40–11:25 (UTC+02:00)"
+    # the end given in UTC is shown in the flight's own offset (ISO 8601 offsets)
+    assert _period("2026-06-14T10:40:00+02:00", "2026-06-14T09:25:00+00:00") == "14 Jun 2026, 10:40–11:25 (UTC+02:00)"
+    assert _period("2026-06-14T10:40:00+02:00", "2026-06-14T10:40:48+02:00") == \
+        "14 Jun 2026, 10:40:00–10:40:48 (UTC+02:00)"
+    assert _period("not a time", "") == "not a time"

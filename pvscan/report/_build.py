@@ -255,7 +255,8 @@ def _period(start: str, end: str) -> str:
     if t1 is None:
         return f"{day}, {t0:%H:%M}{zone}"
     if t1.date() == t0.date():
-        return f"{day}, {t0:%H:%M}–{t1:%H:%M}{zone}"
+        fmt = "%H:%M:%S" if t1.strftime("%H:%M") == t0.strftime("%H:%M") else "%H:%M"
+        return f"{day}, {t0.strftime(fmt)}–{t1.strftime(fmt)}{zone}"
     return f"{day} {t0:%H:%M} – {t1.day} {t1.strftime('%b %Y')} {t1:%H:%M}{zone}"
 
 
@@ -326,7 +327,7 @@ def _counts_section(data: ResultData) -> str:
 <p class="lead">Anomalies per defect class and severity. <b>Safety</b>: a fire or shock hazard, act now;
 <b>repair</b>: lost power, schedule a repair; <b>monitor</b>: minor, check again at the next flight.
 Power loss at standard test conditions (1000 W/m², 25 °C); an anomaly spanning several modules is counted once.</p>
-<div class="two"><div>{body}</div><div><table><tr><th>defect</th><th>what the image shows</th></tr>{glossary}</table></div></div>
+<div class="two wide-left"><div>{body}</div><div><table><tr><th>defect</th><th>what the image shows</th></tr>{glossary}</table></div></div>
 </section>"""
 
 
