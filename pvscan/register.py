@@ -276,7 +276,7 @@ class CorrelationPeak:
 
 
 def cross_power(image: np.ndarray, reference: np.ndarray, whitening: float = 1.0,
-                highpass_sigma_px: float = 0.0) -> np.ndarray:
+                highpass_sigma_px: float = 0.0, dtype=np.float64) -> np.ndarray:
     """Cross-power spectrum ``F(image) conj(F(reference)) / |.|**whitening``.
 
     Parameters
@@ -289,6 +289,8 @@ def cross_power(image: np.ndarray, reference: np.ndarray, whitening: float = 1.0
         When > 0, both arrays are high-passed first: minus their Gaussian low-pass of
         this standard deviation [px], applied as the transfer function
         ``1 - exp(-2 pi^2 sigma^2 f^2)`` [-].
+    dtype : numpy dtype
+        Real precision of the transforms (float32 halves time and memory on large blocks).
 
     Returns
     -------
@@ -296,17 +298,18 @@ def cross_power(image: np.ndarray, reference: np.ndarray, whitening: float = 1.0
     """
     if image.shape != reference.shape:
         raise ValueError(f"image {image.shape} and reference {reference.shape} differ in shape")
-    fi = scipy.fft.fft2(np.asarray(image, float), workers=1)
-    fr = scipy.fft.fft2(np.asarray(reference, float), workers=1)
+    fi = scipy.fft.fft2(np.asarray(image, dtype), workers=1)
+    fr = scipy.fft.fft2(np.asarray(reference, dtype), workers=1)
     r = fi * np.conj(fr)
+    del fi, fr
     if highpass_sigma_px > 0:
         f2 = np.fft.fftfreq(r.shape[0])[:, None] ** 2 + np.fft.fftfreq(r.shape[1])[None, :] ** 2
         h = -np.expm1(-2.0 * np.pi ** 2 * highpass_sigma_px ** 2 * f2)
-        r *= h * h
+        r *= (h * h).astype(dtype)
     if whitening > 0:
         mag = np.abs(r)
-        floor = max(float(mag.max()) * 1e-9, np.finfo(float).tiny)
-        r = r / np.maximum(mag, floor) ** whitening
+        floor = max(float(mag.max()) * 1e-9, float(np.finfo(mag.dtype).tiny))
+        r /= np.maximum(mag, floor) ** np.asarray(whitening, mag.dtype)
     return r
 
 
@@ -357,8 +360,9 @@ def upsampled_peak(spectrum: np.ndarray, centre: tuple[float, float], upsample: 
     cols = centre[1] + offs
     fr = np.fft.fftfreq(m)
     fc = np.fft.fftfreq(n)
-    kr = np.exp(2j * np.pi * rows[:, None] * fr[None, :])  # (R, M)
-    kc = np.exp(2j * np.pi * fc[:, None] * cols[None, :])  # (N, C)
+    cdt = np.complex64 if spectrum.dtype == np.complex64 else np.complex128
+    kr = np.exp(2j * np.pi * rows[:, None] * fr[None, :]).astype(cdt)  # (R, M)
+    kc = np.exp(2j * np.pi * fc[:, None] * cols[None, :]).astype(cdt)  # (N, C)
     vals = (kr @ spectrum @ kc).real * sign
     i, j = np.unravel_index(int(np.argmax(vals)), vals.shape)
     return float(rows[i]), float(cols[j])
@@ -480,12 +484,30 @@ def _nan_reduce(a: np.ndarray, f: int) -> np.ndarray:
     return out
 
 
+def _as_mappings(geoms) -> list:
+    """GeoJSON-like mappings of simple polygons, built vectorised (rasterio would otherwise
+    call each geometry's ``__geo_interface__``, which dominates on thousands of modules)."""
+    import shapely
+
+    geoms = np.asarray(geoms, dtype=object)
+    simple = (shapely.get_type_id(geoms) == 3) & (shapely.get_num_interior_rings(geoms) == 0)
+    out: list = list(geoms)
+    if simple.any():
+        idx = np.nonzero(simple)[0]
+        rings = shapely.get_exterior_ring(geoms[idx])
+        coords, which = shapely.get_coordinates(rings, return_index=True)
+        bounds = np.searchsorted(which, np.arange(len(idx) + 1))
+        for k, i in enumerate(idx):
+            out[i] = {"type": "Polygon", "coordinates": [coords[bounds[k]:bounds[k + 1]].tolist()]}
+    return out
+
+
 def _coverage(geoms, shape, transform: Affine, ss: int) -> np.ndarray:
     """Fraction of each pixel covered by the footprints (ss x ss samples per pixel)."""
     h, w = shape
     if not len(geoms):
         return np.zeros(shape)
-    fine = features.rasterize(((g, 1) for g in geoms), out_shape=(h * ss, w * ss),
+    fine = features.rasterize(((g, 1) for g in _as_mappings(geoms)), out_shape=(h * ss, w * ss),
                               transform=transform @ Affine.scale(1.0 / ss), fill=0, dtype="uint8")
     counts = fine.reshape(h, ss, w, ss).sum(axis=(1, 3), dtype=np.uint16)
     return counts * (1.0 / (ss * ss))
@@ -649,7 +671,7 @@ def _prepare_block(orthos, ti, tile, win, mod_geoms, cfg, f, work_gsd):
         return None, "no contrast"
     shape = _fast_shape((h, w))
     spec = cross_power(_pad(z, shape), _pad(zm, shape), float(cfg["whitening"]),
-                       float(cfg["highpass_sigma_m"]) / work_gsd)
+                       float(cfg["highpass_sigma_m"]) / work_gsd, dtype=np.float32)
     lin = np.array([[wt.a, wt.b], [wt.d, wt.e]])
     cx, cy = wt @ (w / 2.0, h / 2.0)
     signs = (1.0,) if cfg["feature"] == "gradient" else (1.0, -1.0)

@@ -569,3 +569,22 @@ def test_align_command_writes_the_moved_layout(tmp_path_factory):
                                "--pipeline", str(tuned)])
     assert typo.exit_code == 1 and "max_shift_mm" in typo.output and "Traceback" not in typo.output
     assert not (out.parent / "x.gpkg").exists()
+
+
+def test_footprint_mappings_rasterise_like_the_geometries():
+    # The vectorised GeoJSON mappings must burn exactly the pixels rasterio burns for the
+    # shapely geometries themselves (reference: rasterio.features.rasterize).
+    from pvscan.register import _as_mappings
+
+    mods = make_layout((500_000.0, 4_000_000.0), angle_deg=23.0)
+    holed = shapely.box(500_000.0, 4_000_000.0, 500_006.0, 4_000_006.0).difference(
+        shapely.box(500_002.0, 4_000_002.0, 500_004.0, 4_000_004.0))
+    geoms = list(mods.geometry.values[:50]) + [holed]
+    b = shapely.total_bounds(np.array(geoms, dtype=object))
+    tr = Affine(0.05, 0, b[0] - 1, 0, -0.05, b[3] + 1)
+    shape = (int((b[3] - b[1] + 2) / 0.05), int((b[2] - b[0] + 2) / 0.05))
+    ref = features.rasterize(((g, 1) for g in geoms), out_shape=shape, transform=tr, dtype="uint8")
+    ours = features.rasterize(((g, 1) for g in _as_mappings(geoms)), out_shape=shape, transform=tr,
+                              dtype="uint8")
+    assert ref.sum() > 1000
+    np.testing.assert_array_equal(ours, ref)
