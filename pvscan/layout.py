@@ -296,13 +296,25 @@ def _as_polygon(geom, name: str, path: Path) -> Polygon:
     return geom
 
 
+# Tables within this angle of north-south count columns from the south end [rad]; a layout
+# stored as lon/lat at 7 decimals (about 1 cm) must not flip col 1 between ends.
+_NS_TOLERANCE = math.radians(1.0)
+
+
+def _eastward(vec: np.ndarray) -> np.ndarray:
+    """Orient a table axis toward increasing easting, or northing for north-south tables."""
+    vec = np.asarray(vec, float)
+    if abs(vec[0]) <= math.sin(_NS_TOLERANCE) * np.hypot(*vec):
+        return vec if vec[1] >= 0 else -vec
+    return vec if vec[0] > 0 else -vec
+
+
 def _table_axes(poly: Polygon, azimuth_deg: float):
     """Centre, long-axis vector A (pointing to increasing easting) and across vector B (away
     from the facing direction, so row 1 is the lower row) of a table's rectangle."""
     centre, e1, e2 = _rect_axes(poly)
     A, B = (e1, e2) if np.hypot(*e1) >= np.hypot(*e2) else (e2, e1)
-    if A[0] < -1e-9 or (abs(A[0]) <= 1e-9 and A[1] < 0):
-        A = -A
+    A = _eastward(A)
     f = _facing_vector(azimuth_deg)
     if B @ f > 0:
         B = -B
@@ -415,8 +427,7 @@ def _rows_cols_for_loose(df: pd.DataFrame, groups: np.ndarray, azimuth_deg: floa
         axis = U if spread_u > spread_v else V
         across = V if axis is U else U
         a = axis / np.hypot(*axis)
-        if a[0] < -1e-9 or (abs(a[0]) <= 1e-9 and a[1] < 0):
-            a = -a
+        a = _eastward(a)
         b = across / np.hypot(*across)
         if b @ f > 0:
             b = -b

@@ -203,3 +203,13 @@ def test_geojson_properties_kept_as_written(tmp_path):
     assert list(m.table_id.unique()) == ["T1006"]
     assert list(m.string_id.unique()) == ["0012"]
     assert m.module_id.iloc[0] == "T1006-R1-C01"
+
+
+@pytest.mark.parametrize("angle", [89.9, 90.0, 90.1, -89.95])
+def test_north_south_tables_count_columns_from_the_south(angle):
+    # rounding of a lon/lat layout leaves a north-south table a hair off 90 deg either way
+    t = table_polygon(500000, 5000000, 1, 6, 0.02, 0, angle=angle)
+    m = build_modules(gpd.GeoDataFrame(geometry=[t], crs=UTM32N),
+                      LayoutSpec(rows=1, cols=6, azimuth_deg=90, tilt_deg=0))
+    cy = m.geometry.centroid.y.to_numpy()
+    assert cy[m.table_col.to_numpy() == 1][0] == pytest.approx(cy.min())
