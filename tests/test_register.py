@@ -216,6 +216,8 @@ def test_search_radius_excludes_a_stronger_peak_beyond_it():
 
 # ----------------------------------------------------------------------------------
 # known shifts on drawn scenes
+# Reference for every check below: the offset the scene was drawn with (render(), with
+# sub-pixel coverage), independent of the estimator.
 # ----------------------------------------------------------------------------------
 @pytest.mark.parametrize(
     "shift, angle, crs, origin",
@@ -475,6 +477,8 @@ def test_register_settings_schema():
 
 # ----------------------------------------------------------------------------------
 # simulated flights (pvscan.simulate): realistic scenes with shadows, frames, tiles
+# Reference: the layout offset the simulator drew the layout with (truth.json); the
+# simulator renders the plant with its own optics (PSF, NETD) and radiometry.
 # ----------------------------------------------------------------------------------
 def _simulate(tmp_path_factory, name, **scenario):
     from pvscan.simulate import simulate_flight
