@@ -59,6 +59,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from pvscan.thermal import faiman_u  # one Faiman model for every stage
+
 __all__ = [
     "estimate_loss",
     "module_losses",
@@ -123,30 +125,6 @@ def _cfg(settings: Mapping | None) -> dict:
 
 
 # --------------------------------------------------------------------------- physics
-
-
-def faiman_u(wind_speed, u0: float = 25.0, u1: float = 6.84):
-    """Faiman heat-loss coefficient ``U = u0 + u1 * wind_speed``.
-
-    Parameters
-    ----------
-    wind_speed : float or array-like
-        Wind speed. [m/s]
-    u0 : float
-        Constant heat-loss coefficient. [W/(m2 K)]
-    u1 : float
-        Wind-dependent heat-loss coefficient. [W s/(m3 K)]
-
-    Returns
-    -------
-    float or numpy.ndarray
-        Heat-loss coefficient. [W/(m2 K)]
-
-    References
-    ----------
-    .. [1] D. Faiman, Progress in Photovoltaics 16(4), 307-315, 2008. doi:10.1002/pip.813
-    """
-    return u0 + u1 * np.asarray(wind_speed, dtype=float)
 
 
 def faiman_temperature(poa_global, temp_air, wind_speed, u0: float = 25.0, u1: float = 6.84):
