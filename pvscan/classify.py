@@ -114,9 +114,10 @@ _CLASSIFY_DEFAULTS = {
     "open_string_run_z": 5.0,
     "open_string_ratio_min": 0.7,
     "pid_min_modules": 2,
-    "pid_seed_z": 3.5,
-    "pid_extend_z": 1.0,
-    "pid_run_z": 4.5,
+    "pid_seed_z": 2.0,
+    "pid_extend_z": 0.5,
+    "pid_run_z": 4.0,
+    "pid_excess_weight": 0.0,
     "pid_max_position": 0.5,
     "precedence": ["open_string", "open_module", "bypassed_substring_multi", "bypassed_substring",
                    "junction_box", "pid", "soiling", "hot_cell_multi", "hot_cell"],
@@ -1000,15 +1001,26 @@ def _trimmed_mean(x: np.ndarray, cut: float = 0.1) -> np.ndarray:
 
 
 def pid_ring_contrast(F: Features) -> np.ndarray:
-    """Trimmed mean residual of a module's edge ring of cells minus that of its interior [K].
+    """How much warmer a module's edge cells run than its interior cells [K].
 
-    The 10 % trimming keeps a single hot cell from posing as an edge-weighted pattern.
+    The median over the four edges (lines of cells along ``u = 0``, ``u = 1``, ``v = 0``,
+    ``v = 1``) of the edge's trimmed mean residual minus the interior's.
+
+    The 10 % trimming keeps a single hot cell from posing as an edge-weighted pattern. The
+    residual is taken against modules outside the string (``F.extra["R_other"]``) when
+    available: PID modules sit side by side, and their neighbours' shared shape would
+    carry part of their own pattern.
     """
     n, A, C = F.n, F.n_along, F.n_across
     ii, jj = np.indices((A, C))
     ring = ((ii == 0) | (ii == A - 1) | (jj == 0) | (jj == C - 1)).ravel()
-    flat = F.R.reshape(n, -1)
-    return _trimmed_mean(flat[:, ring]) - _trimmed_mean(flat[:, ~ring])
+    flat = F.extra.get("R_other", F.R).reshape(n, -1)
+    core = _trimmed_mean(flat[:, ~ring])
+    # each of the four edges on its own, then the median of the four: PID warms all edges,
+    # a seam or warm ground along a row one of them
+    sides = [(ii == 0), (ii == A - 1), (jj == 0), (jj == C - 1)]
+    per_side = np.stack([_trimmed_mean(flat[:, m.ravel()]) - core for m in sides], axis=1)
+    return _nanmedian(per_side, axis=1)
 
 
 def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
@@ -1043,6 +1055,11 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     z = (contrast - c0) / sig
     F.extra["pid_z"] = z
     d_o = F.extra["d_other"]
+    # extension: edge-ring contrast and the module's excess over modules outside its string
+    # together (both in robust standard deviations of healthy modules)
+    z_o = d_o / max(float(F.extra.get("sig_other", F.sig_mod)), 0.05)
+    w = float(cfg["pid_excess_weight"])
+    z_ext = (z + w * np.clip(z_o, -3.0, 3.0)) / np.sqrt(1.0 + w * w)
     out = []
     for g in np.unique(groups[groups >= 0]):
         idx = np.flatnonzero(groups == g)
@@ -1050,32 +1067,32 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
         if len(idx) < 3:
             continue
         first = idx[0]
-        if exclude[first] or not F.ok[first]:
+        if exclude[first] or not F.ok[first] or z[first] < float(cfg["pid_seed_z"]):
             continue
-        if not (z[first] >= float(cfg["pid_seed_z"]) and d_o[first] > 0):
+        # the best prefix from the negative end: PID is strongest there and fades, so the
+        # evidence of the first m modules, sum(z) / sqrt(m), peaks where PID stops showing
+        max_len = max(int(np.floor(float(cfg["pid_max_position"]) * len(idx))), 1)
+        zz = np.where(exclude[idx] | ~F.ok[idx], np.nan, z_ext[idx])[:max_len]
+        if np.isnan(zz).any():
+            zz = zz[: int(np.argmax(np.isnan(zz)))]
+        m_min = int(cfg["pid_min_modules"])
+        if len(zz) < m_min or np.min(zz[1:m_min]) < float(cfg["pid_extend_z"]):
             continue
-        run = [int(first)]
+        score = np.cumsum(zz) / np.sqrt(np.arange(1, len(zz) + 1))
+        m = int(np.argmax(score[m_min - 1:])) + m_min
+        if score[m - 1] < float(cfg["pid_run_z"]):
+            continue
+        # and on while the pattern carries on (a single weaker module does not end it)
         ext = float(cfg["pid_extend_z"])
-        k = 1
-        while k < len(idx):
-            i = idx[k]
-            if exclude[i] or not F.ok[i]:
-                break
-            if z[i] >= ext:
-                run.append(int(i))
+        k = m
+        while k < len(zz):
+            if zz[k] >= ext:
                 k += 1
-                continue
-            # one weak module between two that carry the pattern does not end the run
-            if k + 1 < len(idx) and not exclude[idx[k + 1]] and z[idx[k + 1]] >= ext:
-                run += [int(i), int(idx[k + 1])]
+            elif k + 1 < len(zz) and zz[k + 1] >= ext:
                 k += 2
-                continue
-            break
-        if len(run) < int(cfg["pid_min_modules"]):
-            continue
-        if float(np.sum(z[run]) / np.sqrt(len(run))) < float(cfg["pid_run_z"]):
-            continue
-        run = run[: int(np.floor(float(cfg["pid_max_position"]) * len(idx))) + 1]
+            else:
+                break
+        run = [int(i) for i in idx[:k]]
         out.append(run)
     return out
 
@@ -1134,6 +1151,10 @@ def _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, ok, healthy, g
     ref_o = np.where(np.isfinite(ro.reference_c), ro.reference_c, F.ref)
     d_other = t_med - ref_o
     rsub_o = F.Rsub + (F.ref - ref_o)[:, None]
+    # the cell pattern against modules outside the string too: a string-long pattern (PID)
+    # would otherwise be partly taken for the shape its neighbours share
+    shape_o = np.nan_to_num(_neighbour_median(F.cm - t_med[:, None, None], ro.neighbours), nan=0.0)
+    F.extra["R_other"] = F.cm - ref_o[:, None, None] - shape_o
     sig_o = _robust_sigma(d_other[healthy & F.ok]) if (healthy & F.ok).sum() >= 3 else F.sig_mod
     F.extra.update(ref_other=ref_o, d_other=d_other, rsub_other=rsub_o,
                    sig_other=sig_o if np.isfinite(sig_o) else F.sig_mod)
