@@ -56,7 +56,7 @@ import math
 import warnings
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import scipy.fft
@@ -66,6 +66,9 @@ from rasterio.windows import Window
 from scipy import ndimage
 
 from pvscan.errors import RegistrationError, RegistrationWarning
+
+if TYPE_CHECKING:  # pragma: no cover
+    import geopandas
 
 __all__ = [
     "BlockShift",
@@ -750,7 +753,7 @@ def _spread_enough(x, y, min_extent):
 # --------------------------------------------------------------------------------------
 # public API
 # --------------------------------------------------------------------------------------
-def estimate_shift(orthos, modules, settings: Mapping | None = None, *,
+def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mapping | None = None, *,
                    progress: ProgressFn | None = None) -> Registration:
     """Measure the layout-to-ortho offset from the image.
 
@@ -1035,7 +1038,8 @@ def _finish_weak(reg: Registration, cfg: Mapping, why: str) -> Registration:
     return reg
 
 
-def apply_shift(modules, shift):
+def apply_shift(modules: geopandas.GeoDataFrame,
+                shift: Registration | tuple[float, float]) -> geopandas.GeoDataFrame:
     """A copy of ``modules`` with footprints and frame origins translated.
 
     Parameters
@@ -1085,8 +1089,9 @@ def apply_shift(modules, shift):
     return out
 
 
-def align_flight(flight, settings=None, out_path=None, *, overwrite: bool = False,
-                 progress: ProgressFn | None = None):
+def align_flight(flight: Any, settings: Mapping | None = None, out_path: Any = None, *,
+                 overwrite: bool = False, progress: ProgressFn | None = None
+                 ) -> tuple[Registration, geopandas.GeoDataFrame]:
     """Register a flight's layout to its orthomosaic and optionally write the moved layout.
 
     Parameters
