@@ -115,7 +115,8 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         t0 = time.perf_counter()
         reg = register.estimate_shift(orthos, modules, settings["register"], progress=progress)
         shift = tuple(reg.shift_m) if reg.applied else (0.0, 0.0)
-        measured = register.apply_shift(modules, shift) if shift != (0.0, 0.0) else modules
+        # each module moves by the fitted (possibly drifting) shift at its own centre
+        measured = register.apply_shift(modules, reg) if reg.applied else modules
         timings["register"] = time.perf_counter() - t0
 
         t0 = time.perf_counter()
