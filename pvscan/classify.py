@@ -113,6 +113,7 @@ _CLASSIFY_DEFAULTS = {
     "open_string_candidate_z": 1.5,
     "open_string_run_z": 5.0,
     "open_string_ratio_min": 0.7,
+    "open_string_end_z": 1.0,
     "pid_min_modules": 2,
     "pid_seed_z": 2.0,
     "pid_extend_z": 0.5,
@@ -951,7 +952,15 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
             ratio = float(np.nanmedian(d_o[run]) / np.nanmedian(r[run]))
             if (zc >= float(cfg["open_string_run_z"]) and ratio >= float(cfg["open_string_ratio_min"])
                     and not _raise_carries_on(F, run)):
-                out.append([int(i) for i in run])
+                # an established run takes in end modules of its string that are raised,
+                # if less clearly (an open string is normally the whole string)
+                lo_end, hi_end = a, b
+                end_z = float(cfg["open_string_end_z"])
+                while lo_end > 0 and F.ok[idx[lo_end - 1]] and z[idx[lo_end - 1]] >= end_z:
+                    lo_end -= 1
+                while hi_end < len(idx) and F.ok[idx[hi_end]] and z[idx[hi_end]] >= end_z:
+                    hi_end += 1
+                out.append([int(i) for i in idx[lo_end:hi_end]])
     return out
 
 

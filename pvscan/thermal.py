@@ -171,6 +171,7 @@ _REFERENCE_DEFAULTS = {
     "outlier_floor_k": 1.0,
     "iterations": 2,
     "trend_correction": True,
+    "trend_max_shift_m": 5.0,
 }
 
 
@@ -308,7 +309,8 @@ def reference_neighbours(modules: pd.DataFrame, healthy_mask, settings=None,
     return out
 
 
-def _median_of(values: np.ndarray, nb: np.ndarray, xy: np.ndarray | None = None) -> np.ndarray:
+def _median_of(values: np.ndarray, nb: np.ndarray, xy: np.ndarray | None = None,
+               max_shift_m: float = 5.0) -> np.ndarray:
     """Median of the neighbours' values; with ``xy``, corrected for a linear trend.
 
     The trend correction matters where the neighbours sit on one side (row ends): the
@@ -317,7 +319,8 @@ def _median_of(values: np.ndarray, nb: np.ndarray, xy: np.ndarray | None = None)
     direction for same-row neighbours); the slope is the Theil-Sen estimate (median of
     pairwise slopes), robust to a defective neighbour; the reference is the median value
     moved from the neighbours' median position to the module's. Only neighbours lying on
-    a line through the module (within 0.5 m: a table row) are corrected.
+    a line through the module (within 0.5 m: a table row) are corrected, and only when
+    their median position is within ``max_shift_m`` of the module.
     """
     n = len(values)
     if nb.shape[1] == 0:
@@ -345,7 +348,9 @@ def _median_of(values: np.ndarray, nb: np.ndarray, xy: np.ndarray | None = None)
         ok = np.abs(ds) > 0.2
         slope = np.nanmedian(np.where(ok, dv / np.where(ok, ds, 1.0), np.nan), axis=1)
         shift = np.nanmedian(s, axis=1)
-    corr = np.where(line & np.isfinite(slope) & np.isfinite(shift), -slope * shift, 0.0)
+    # extrapolate a few metres at most: beyond that a straight line is a guess
+    near = np.abs(shift) <= max_shift_m
+    corr = np.where(line & near & np.isfinite(slope) & np.isfinite(shift), -slope * shift, 0.0)
     return med + corr
 
 
@@ -441,7 +446,7 @@ def local_reference(modules: pd.DataFrame, t_module_c, healthy_mask=None, settin
         nb = reference_neighbours(modules, healthy & ~suspect, cfg, exclude_group=exclude_group)
         ref = _median_of(t, nb)
     if xy is not None:
-        ref = _median_of(t, nb, xy)
+        ref = _median_of(t, nb, xy, float(cfg["trend_max_shift_m"]))
     logger.debug("local reference: %d suspects excluded, spread %.3f K", int(suspect.sum()), scale)
     if return_details:
         return ReferenceResult(ref, nb, suspect, scale)
