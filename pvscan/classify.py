@@ -1230,6 +1230,12 @@ def classify(modules, stats, conditions, module_spec, settings=None, confidence_
     if (~ok).any():
         logger.info("%d of %d modules not classified (valid fraction below %.2f)",
                     int((~ok).sum()), n, float(cfg["min_valid_fraction"]))
+    if n == 0:
+        anomalies = assign_severity(pd.DataFrame(columns=ANOMALY_COLUMNS[:-2]), cfg_sev)[ANOMALY_COLUMNS]
+        module_table = pd.DataFrame({"reference_c": [], "delta_t_k": [], "delta_t_norm_k": [],
+                                     "defect": pd.Series([], dtype=object), "classified": pd.Series([], dtype=bool),
+                                     "confidence": []}, index=modules.index)
+        return anomalies, module_table
     groups, pos, is_string = _groups(modules)
 
     # pass 1: suspects

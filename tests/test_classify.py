@@ -527,3 +527,30 @@ def test_pid_ring_contrast_finds_weak_modules(rng):
     got = found(an)
     pid = {i for i, d in got.items() if d == "pid"}
     assert {int(i) for i in idx[:2]} <= pid <= {int(i) for i in idx}
+
+
+def test_bypassed_substring_under_a_cloud_shadow(rng):
+    # a table under a shadow gets 60 % of the logged irradiance: its modules and the
+    # bypassed strip run cooler and the strip's rise is 60 % of eta * G / U (pvlib Faiman);
+    # the local irradiance from the reference's rise over ambient keeps the yardstick right
+    p = Plant(rng, n_tables=3)
+    shaded = (p.modules.table_id == "T1-1").to_numpy()
+    p.cm[shaded] = TA + (p.cm[shaded] - TA) * 0.6
+    i = p.index(table="T1-1", row=1, col=6)
+    p.bypass(i, [1], factor=0.6)
+    an, _ = p.run()
+    assert found(an) == {i: "bypassed_substring"}
+    assert an.iloc[0].delta_t_k == pytest.approx(0.6 * open_rise(), abs=0.5)
+
+
+def test_empty_and_stringless_inputs(rng):
+    p = Plant(rng, strings=None)
+    mods, stats, cond, spec = p.inputs()
+    mods = mods.drop(columns=["string_id", "string_index"])
+    an, mt = classify(mods, stats, cond, spec, load_pipeline())
+    assert len(an) == 0 and len(mt) == len(mods)
+    empty = SimpleNamespace(table=stats.table.iloc[:0], cell_median=stats.cell_median[:0],
+                            cell_p95=stats.cell_p95[:0], cell_count=stats.cell_count[:0],
+                            sub_median=stats.sub_median[:0], sub_p95=stats.sub_p95[:0])
+    an, mt = classify(mods.iloc[:0], empty, cond.iloc[:0], spec, load_pipeline())
+    assert list(an.columns) == ANOMALY_COLUMNS and len(an) == 0 and len(mt) == 0
