@@ -390,3 +390,22 @@ def test_no_modules_gives_empty_result(write_tif, module_spec):
         zs = zonal_stats(o, empty, module_spec, _settings())
     assert len(zs) == 0 and list(zs.table.columns) == list(TABLE_COLUMNS)
     assert zs.cell_median.shape == (0, 12, 6) and zs.sub_p95.shape == (0, 3)
+
+
+def test_south_up_raster_gives_the_same_statistics(write_tif, make_modules, module_spec, rng):
+    # The same ground stored bottom row first (positive pixel height) must measure alike.
+    from affine import Affine
+
+    data = rng.normal(30, 1, (120, 160)).astype("float32")
+    north = write_tif("north.tif", data)
+    bottom = ORIGIN[1] - 120 * GSD
+    south = write_tif("south.tif", data[::-1].copy(), transform=Affine(GSD, 0, ORIGIN[0], 0, GSD, bottom))
+    mods = make_modules(ORIGIN[0] + np.array([1.013, 4.507]), ORIGIN[1] - np.array([3.21, 3.47]), [12.0, 77.0])
+    with open_orthos(north) as o:
+        a = zonal_stats(o, mods, module_spec, _settings(block_px=64))
+    with open_orthos(south) as o:
+        b = zonal_stats(o, mods, module_spec, _settings(block_px=64))
+    assert (a.table["n_pixels"] > 500).all()
+    pd.testing.assert_frame_equal(a.table, b.table, atol=1e-9, rtol=0)
+    np.testing.assert_array_equal(a.cell_count, b.cell_count)
+    np.testing.assert_array_equal(a.cell_median, b.cell_median)
