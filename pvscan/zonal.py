@@ -629,7 +629,7 @@ def zonal_stats(
         ``half_cut``) and ``bypass_diodes``.
     settings : Pipeline or mapping, optional
         The pipeline or its ``[zonal]`` section: ``edge_margin_u``, ``edge_margin_v`` [-],
-        ``block_px`` [px], ``quantum_k`` [K]. Default: the default pipeline.
+        ``block_px`` [px], ``quantum_k`` [K], ``workers``. Default: the default pipeline.
     shift : (float, float)
         (dx, dy) [m] added to every frame before measuring (co-registration result).
     progress : callable, optional
