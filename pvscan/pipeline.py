@@ -108,7 +108,7 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
 
     timings = {} if timings is None else timings
     t0 = time.perf_counter()
-    with open_orthos(flight.flight.orthos, flight.ortho) as orthos:
+    with open_orthos(flight.flight.orthos, flight.ortho, settings) as orthos:
         modules = read_layout(flight, orthos.crs)
         timings["layout"] = time.perf_counter() - t0
 
