@@ -72,7 +72,7 @@ def main(argv=None):
           f"{'dTn MAE':>7s} {'loss ratio':>10s} {'shift err':>9s} {'s':>5s}")
     for k, (name, sc) in enumerate(scenarios(args.quick)):
         t0 = time.perf_counter()
-        sim = simulate_flight(sc, root / name / "flight", seed=100 + k)
+        sim = simulate_flight(sc, root / name / "flight", seed=100 + k, overwrite=True)
         inspect_flight(sim.manifest, out_dir=root / name / "result", overwrite=True, report=False)
         s = evaluate(root / name / "flight", root / name / "result")
         rows.append({"flight": name, **s})
