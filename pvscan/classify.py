@@ -506,17 +506,18 @@ def pattern_bypassed_substring(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
 
     with np.errstate(invalid="ignore", divide="ignore"):
         p_noise = 2.0 * _norm.sf(0.25 * mean_raise / max(F.sig_cell, 1e-3))
-    hit &= ~(_intermediate_columns(F, Xlo, mean_raise) > p_noise + float(cfg["substring_partial_max"]))
-    # the columns at the plateau's edges on the plateau (raised or not) within the cell
-    # noise: the worst one's mean squared deviation from the plateau model, in cell-noise
-    # units (clipped at 5)
-    model = np.where(col_raised[:, None, :], mean_raise[:, None, None], 0.0)
-    zc = np.clip((Xlo - model) / max(F.sig_cell, 1e-3), -5.0, 5.0)
-    # only the columns on either side of the plateau's edges: where a slanted step shows
+    # the columns on either side of the plateau's edges, where a slanted step shows (the
+    # module's outer columns see the ground and the frame and are left alone)
     cr = col_raised.astype(np.int8)
     edge_col = np.zeros_like(col_raised)
     edge_col[:, 1:] |= cr[:, 1:] != cr[:, :-1]
     edge_col[:, :-1] |= cr[:, :-1] != cr[:, 1:]
+    partial = _intermediate_columns(F, np.where(edge_col[:, None, :], Xlo, np.nan), mean_raise)
+    hit &= ~(partial > p_noise + float(cfg["substring_partial_max"]))
+    # and those columns on the plateau (raised or not) within the cell noise: the worst
+    # one's mean squared deviation from the plateau model, in cell-noise units (clipped at 5)
+    model = np.where(col_raised[:, None, :], mean_raise[:, None, None], 0.0)
+    zc = np.clip((Xlo - model) / max(F.sig_cell, 1e-3), -5.0, 5.0)
     col_chi2 = _nanmax(np.where(edge_col, _nanmean(zc * zc, axis=1), np.nan), axis=1)
     col_chi2 = np.nan_to_num(col_chi2, nan=0.0)
     hit &= ~(col_chi2 > float(cfg["substring_column_chi2_max"]))
