@@ -116,7 +116,7 @@ _CLASSIFY_DEFAULTS = {
     "open_string_end_z": 1.0,
     "pid_min_modules": 2,
     "pid_seed_z": 2.0,
-    "pid_extend_z": 0.5,
+    "pid_extend_z": 1.25,
     "pid_run_z": 4.0,
     "pid_excess_weight": 0.0,
     "pid_max_position": 0.5,
@@ -1044,10 +1044,11 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     spread, in robust standard deviations of healthy modules' contrast. A string
     qualifies when its module at the negative end reaches ``pid_seed_z`` and is warmer
     than its surroundings; the affected run extends from the negative end while the
-    contrast stays above ``pid_extend_z`` (a single weaker module between two above does
-    not end it), over at least ``pid_min_modules`` and at most the first
-    ``pid_max_position`` of the string, with combined evidence ``sum(z) / sqrt(n)`` of at
-    least ``pid_run_z``.
+    contrast keeps above ``pid_extend_z`` on balance (the end maximises ``sum(z -
+    pid_extend_z)``, so a single weaker module between stronger ones does not end it),
+    over at least ``pid_min_modules`` and at most the first ``pid_max_position`` of the
+    string, the best run from the negative end having combined evidence
+    ``sum(z) / sqrt(n)`` of at least ``pid_run_z``.
 
     Returns
     -------
@@ -1089,19 +1090,13 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
         if len(zz) < m_min or np.min(zz[1:m_min]) < float(cfg["pid_extend_z"]):
             continue
         score = np.cumsum(zz) / np.sqrt(np.arange(1, len(zz) + 1))
-        m = int(np.argmax(score[m_min - 1:])) + m_min
-        if score[m - 1] < float(cfg["pid_run_z"]):
+        if np.max(score[m_min - 1:]) < float(cfg["pid_run_z"]):
             continue
-        # and on while the pattern carries on (a single weaker module does not end it)
-        ext = float(cfg["pid_extend_z"])
-        k = m
-        while k < len(zz):
-            if zz[k] >= ext:
-                k += 1
-            elif k + 1 < len(zz) and zz[k + 1] >= ext:
-                k += 2
-            else:
-                break
+        # where the pattern stops: the end that maximises sum(z - pid_extend_z) from the
+        # negative end (a change point: modules above the bar add, below it take away, so a
+        # single weak module between stronger ones does not end the run)
+        gain = np.cumsum(zz - float(cfg["pid_extend_z"]))
+        k = int(np.argmax(gain[m_min - 1:])) + m_min
         run = [int(i) for i in idx[:k]]
         out.append(run)
     return out
