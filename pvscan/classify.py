@@ -103,7 +103,7 @@ _CLASSIFY_DEFAULTS = {
     "hot_cell_contrast_min": 0.5,
     "hot_cell_peak_share": 0.6,
     "hot_cell_merge_touching": False,
-    "junction_box_min_k": 3.0,
+    "junction_box_min_k": 2.0,
     "junction_box_spot_max": 0.75,
     "junction_box_straddle_min": 0.4,
     "soiling_min_k": 1.5,
@@ -817,8 +817,8 @@ def pattern_soiling(F: Features, cfg: Mapping) -> Hits:
     The lower edge is ``u = 0`` when ``lower_edge == "u"`` and ``v = 0`` when ``"v"``.
     Lines of cells parallel to the lower edge are raised from the edge up to the band's
     depth (at most a third of the module), all along the edge, while the rest of the
-    module and its upper edge are not. The cells' p95 is used, since a thin band covers
-    only part of the cells at the edge.
+    module and its upper edge are not, nor the modules beside it along the edge. The cells'
+    p95 is used, since a thin band covers only part of the cells at the edge.
 
     Returns
     -------
@@ -858,6 +858,14 @@ def pattern_soiling(F: Features, cfg: Mapping) -> Hits:
                & (n_band >= 0.5 * edge_len) & (spread <= 0.6 * band)
                & (np.nan_to_num(rest_max, nan=0.0) <= float(cfg["soiling_top_max"]) * band)
                & (np.nan_to_num(top, nan=0.0) <= float(cfg["soiling_top_max"]) * band))
+    # a band of one module: the modules beside it along the lower edge have none as warm
+    # (a mosaic seam's corner or warm ground along the row would)
+    adj = F.extra.get("adjacent")
+    if adj is not None and hit.any():
+        side = np.where(F.lower_u[:, None], adj[:, 2:4], adj[:, 0:2])
+        nb_band = np.where(side >= 0, np.nan_to_num(band, nan=0.0)[np.maximum(side, 0)], 0.0)
+        with np.errstate(invalid="ignore"):
+            hit &= ~(nb_band >= 0.5 * band[:, None]).any(axis=1)
     temp = _nanmedian(np.where(in_band, F.cp, np.nan).reshape(n, -1), axis=1)
     h = Hits("soiling", hit, _conf(_quality(band, thr), np.clip(cover, 0, 1)), temp)
     for i in np.flatnonzero(hit):
