@@ -1220,8 +1220,6 @@ def classify(modules, stats, conditions, module_spec, settings=None, confidence_
         settings = load_pipeline()
     cfg = _section(settings, "classify", _CLASSIFY_DEFAULTS)
     cfg_ref = _section(settings, "reference", _REFERENCE_DEFAULTS)
-    cfg_ref.setdefault("u0", 25.0)
-    cfg_ref.setdefault("u1", 6.84)
     cfg_sev = _section(settings, "severity", _SEVERITY_DEFAULTS)
     cf = float(np.clip(confidence_factor if confidence_factor is not None else 1.0, 0.0, 1.0))
     n = len(modules)

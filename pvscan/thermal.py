@@ -172,6 +172,10 @@ _REFERENCE_DEFAULTS = {
     "iterations": 2,
     "trend_correction": True,
     "trend_max_shift_m": 5.0,
+    "u0": U0_FAIMAN,
+    "u1": U1_FAIMAN,
+    "g_ref_w_m2": 1000.0,
+    "wind_ref_m_s": 1.0,
 }
 
 

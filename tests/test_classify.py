@@ -554,3 +554,14 @@ def test_empty_and_stringless_inputs(rng):
                             sub_median=stats.sub_median[:0], sub_p95=stats.sub_p95[:0])
     an, mt = classify(mods.iloc[:0], empty, cond.iloc[:0], spec, load_pipeline())
     assert list(an.columns) == ANOMALY_COLUMNS and len(an) == 0 and len(mt) == 0
+
+
+def test_built_in_defaults_match_the_pipeline_file():
+    # library callers without a pipeline get the same choices as pipelines/post_flight.toml
+    from pvscan import thermal
+    from pvscan.classify import _CLASSIFY_DEFAULTS, _SEVERITY_DEFAULTS
+
+    p = load_pipeline()
+    for section, built_in in (("classify", _CLASSIFY_DEFAULTS), ("severity", _SEVERITY_DEFAULTS),
+                              ("reference", thermal._REFERENCE_DEFAULTS)):
+        assert p.to_dict()[section] == built_in, section
