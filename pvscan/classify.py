@@ -1278,7 +1278,11 @@ def classify(modules, stats, conditions, module_spec, settings=None, confidence_
         dts = t_med[run] - ref_o
         dt = float(np.median(dts))
         dtn = float(np.median(norm(dts, np.asarray(run))))
-        conf = float(np.median(by["open_module"].confidence[run]) if open_own[run].any() else 0.8)
+        # confidence from the run's combined evidence and how well its rise fits eta*G/U
+        z_run = F.extra["d_other"][run] / max(F.extra["sig_other"], 0.05)
+        zc = float(np.nansum(z_run) / np.sqrt(len(run)))
+        ratio = float(np.nanmedian(dts) / np.nanmedian(F.rise[run]))
+        conf = float(_conf(_quality(zc, float(cfg["open_string_run_z"])), _fit(np.array(ratio))))
         rows.append(dict(module_index=i0, module_id=mod_id[i0], module_indices=list(run),
                          module_ids=[mod_id[i] for i in run], defect="open_string", other_defects=[],
                          region="modules", region_uv=[(0.0, 1.0, 0.0, 1.0)], delta_t_k=dt,
