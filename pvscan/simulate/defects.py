@@ -48,6 +48,7 @@ class ModuleGeometry:
     lower_edge: str          # "u" (portrait) or "v" (landscape)
     junction_box: str        # "edge" or "split"
     pmax_w: float
+    u_ref: float = 25.0 + 6.84 * 1.0  # Faiman U at the reference wind of 1 m/s [W/(m2 K)]
 
     @property
     def area_m2(self) -> float:
@@ -56,6 +57,11 @@ class ModuleGeometry:
     @property
     def eta(self) -> float:
         return self.pmax_w / (1000.0 * self.area_m2)
+
+    @property
+    def dt_open_ref(self) -> float:
+        """Open-module rise at reference conditions (1000 W/m2, 1 m/s), eta * 1000 / U(1) [K]."""
+        return self.eta * 1000.0 / self.u_ref
 
 
 @dataclass
@@ -96,11 +102,21 @@ class Defect:
         geom : ModuleGeometry
         dt_open : float
             Rise of a fully open module at this module's conditions, eta * G / U(v) [K].
+
+        Notes
+        -----
+        Hot cells, soiling and junction-box spots dissipate power that grows with the
+        current, i.e. with irradiance, and shed it through the same heat-loss coefficient
+        as the module. Their ``rise_k`` parameters are therefore given at the reference
+        conditions of the normalisation (1000 W/m2, wind 1 m/s) and scaled here by
+        ``(G / 1000) * (U(1) / U(v)) = dt_open / dt_open_ref``, so one defect keeps its
+        normalised delta T from one season to the next.
         """
         u = np.asarray(u, float)
         v = np.asarray(v, float)
         k = self.kind
         p = self.params
+        scale = float(dt_open) / geom.dt_open_ref  # reference -> this module's conditions
         if k in ("open_module", "open_string"):
             return np.full(u.shape, dt_open)
         if k in ("bypassed_substring", "bypassed_substring_multi"):
@@ -121,20 +137,20 @@ class Defect:
             for (i, j), r in zip(p["cells"], p["rise_k"]):
                 du = np.maximum(0.0, np.maximum(i * cu - um, um - (i + 1) * cu))
                 dv = np.maximum(0.0, np.maximum(j * cv - vm, vm - (j + 1) * cv))
-                out = np.maximum(out, r * np.exp(-(du ** 2 + dv ** 2) / (2 * sig ** 2)))
+                out = np.maximum(out, scale * r * np.exp(-(du ** 2 + dv ** 2) / (2 * sig ** 2)))
             return out
         if k == "soiling":
             x = u if geom.lower_edge == "u" else v
             h = p["height"]
             fall = 0.3 * h
             shape = np.where(x <= h, 1.0, np.exp(-((x - h) / fall) ** 2))
-            return p["rise_k"] * shape
+            return scale * p["rise_k"] * shape
         if k == "junction_box":
             uc, vc = p["centre"]
             du = (u - uc) * geom.length_m
             dv = (v - vc) * geom.width_m
             sig = p["fwhm_m"] / 2.3548
-            return p["rise_k"] * np.exp(-(du ** 2 + dv ** 2) / (2 * sig ** 2))
+            return scale * p["rise_k"] * np.exp(-(du ** 2 + dv ** 2) / (2 * sig ** 2))
         raise ValueError(f"unknown defect pattern {k}")  # pragma: no cover
 
 

@@ -148,10 +148,10 @@ DEFAULTS: dict[str, Any] = {
     },
     "defects": {
         **{k: 0 for k in DEFECT_KINDS},
-        "hot_cell_rise_k": [8.0, 40.0],
-        "soiling_rise_k": [3.0, 8.0],
+        "hot_cell_rise_k": [10.0, 50.0],
+        "soiling_rise_k": [4.0, 10.0],
         "soiling_height": [0.05, 0.15],
-        "junction_box_rise_k": [6.0, 20.0],
+        "junction_box_rise_k": [8.0, 25.0],
         "junction_box_px": [2.0, 4.0],
         "pid_loss_fraction": [0.25, 0.5],
         "pid_modules": [3, 6],

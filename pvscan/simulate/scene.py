@@ -130,7 +130,8 @@ class Scene:
             length_m=m["length_m"], width_m=m["width_m"],
             n_along=m["cells_along"] * (2 if half else 1), n_across=m["cells_across"],
             bypass_diodes=m["bypass_diodes"], lower_edge="u" if fld.portrait else "v",
-            junction_box=m.get("junction_box", "split" if half else "edge"), pmax_w=m["pmax_w"])
+            junction_box=m.get("junction_box", "split" if half else "edge"), pmax_w=m["pmax_w"],
+            u_ref=float(sc["conditions"]["u0"]) + float(sc["conditions"]["u1"]) * 1.0)
         cam = sc["camera"]
         self.gsd = gsd = float(cam["gsd_m"])
         margin = float(sc["ortho"]["margin_m"])
