@@ -960,7 +960,7 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
             zc = float(np.nansum(z[run]) / np.sqrt(len(run)))
             ratio = float(np.nanmedian(d_o[run]) / np.nanmedian(r[run]))
             if (zc >= float(cfg["open_string_run_z"]) and ratio >= float(cfg["open_string_ratio_min"])
-                    and not _raise_carries_on(F, run)):
+                    and not _raise_carries_on(F, run) and _stands_out_of_its_row(F, run)):
                 # an established run takes in end modules of its string that are raised,
                 # if less clearly (an open string is normally the whole string)
                 lo_end, hi_end = a, b
@@ -971,6 +971,32 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
                     hi_end += 1
                 out.append([int(i) for i in idx[lo_end:hi_end]])
     return out
+
+
+def _stands_out_of_its_row(F: Features, run, radius_m: float = 15.0) -> bool:
+    """False when the run is not warmer than the rest of its own table row.
+
+    The out-of-string reference comes from other rows, which under an irradiance gradient
+    (a cloud shadow's edge) can sit lower; the modules of the run's own row outside it
+    share its irradiance. Runs that fill their row are not checked.
+    """
+    key = F.extra.get("row_key")
+    if key is None:
+        return True
+    run = np.asarray(run)
+    k = key[run[0]]
+    if k < 0:
+        return True
+    xy = F.extra["centre"]
+    mates = np.flatnonzero((key == k) & F.ok)
+    mates = mates[~np.isin(mates, run)]
+    if mates.size:
+        d = np.min(np.linalg.norm(xy[mates][:, None, :] - xy[run][None, :, :], axis=2), axis=1)
+        mates = mates[d <= radius_m]
+    if mates.size < 3:
+        return True
+    own = float(np.nanmedian(F.t_median[run]) - np.nanmedian(F.t_median[mates]))
+    return own >= 0.35 * float(np.nanmedian(F.extra["d_other"][run]))
 
 
 def _raise_carries_on(F: Features, run) -> bool:
@@ -1146,8 +1172,11 @@ def _geometry(modules: pd.DataFrame, nsub: int) -> dict:
             other_row = same_t & (trow[jj] != trow)
             cross = np.where((cross < 0) & other_row, j, cross)
             along[:, c] = np.where(same_t & (trow[jj] == trow), j, -1)
+    from pvscan.thermal import _row_keys
+
     return {"adjacent": adj, "sub_centres": centres, "edge_points": edges, "cross_row": cross,
-            "along_row": along}
+            "along_row": along, "row_key": _row_keys(modules),
+            "centre": p0 + 0.5 * (fu + fv)}
 
 
 def _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, ok, healthy, groups, pos, is_string):
