@@ -297,7 +297,7 @@ def _conf(*terms):
 # features
 # --------------------------------------------------------------------------------------
 
-def _features(modules, stats, conditions, module_spec, ref, nb, ok, cfg, cfg_ref) -> Features:
+def _features(modules, stats, conditions, module_spec, ref, nb, ok, cfg, cfg_ref, ref_irr=None) -> Features:
     table = stats.table
     cm = np.asarray(stats.cell_median, dtype=np.float64)
     cp = np.asarray(stats.cell_p95, dtype=np.float64)
@@ -341,8 +341,11 @@ def _features(modules, stats, conditions, module_spec, ref, nb, ok, cfg, cfg_ref
         # Faiman: a producing module runs G / U(v) above the air, so the local reference's
         # rise over ambient tells the irradiance the module actually got (cloud shadows,
         # drift the irradiance sensor did not see): G_local = (T_ref - T_air) * U(v)
+        # (ref_irr: the mean of the row reference and the out-of-string one, two
+        # neighbourhoods, so a steep shadow edge along one of them does not decide alone)
+        r_irr = ref if ref_irr is None else np.where(np.isfinite(ref_irr), ref_irr, ref)
         with np.errstate(invalid="ignore", divide="ignore"):
-            s = (ref - ta) * faiman_u(ws, u0, u1) / g
+            s = (r_irr - ta) * faiman_u(ws, u0, u1) / g
         s = np.clip(s, float(cfg["local_irradiance_min"]), float(cfg["local_irradiance_max"]))
         rise = rise * np.where(np.isfinite(s), s, 1.0)
     if not np.isfinite(rise).any():
@@ -1182,15 +1185,16 @@ def _geometry(modules: pd.DataFrame, nsub: int) -> dict:
 def _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, ok, healthy, groups, pos, is_string):
     t_med = stats.table["t_median_c"].to_numpy(dtype=float)
     rr = local_reference(modules, t_med, healthy, cfg_ref, return_details=True)
-    F = _features(modules, stats, conditions, module_spec, rr.reference_c, rr.neighbours, ok, cfg, cfg_ref)
+    # a reference that excludes the module's own string (or row): a whole string raised
+    # together would otherwise be its own reference
+    ro = local_reference(modules, t_med, healthy, cfg_ref, exclude_group=groups, return_details=True)
+    ref_o = np.where(np.isfinite(ro.reference_c), ro.reference_c, rr.reference_c)
+    F = _features(modules, stats, conditions, module_spec, rr.reference_c, rr.neighbours, ok, cfg, cfg_ref,
+                  ref_irr=0.5 * (rr.reference_c + ref_o))
     F.extra["sub_median"] = np.asarray(stats.sub_median, dtype=np.float64)
     F.extra["suspect"] = rr.suspect
     F.extra.update(_geometry(modules, F.nsub))
     hits = _detect(F, cfg)
-    # a reference that excludes the module's own string (or row): a whole string raised
-    # together would otherwise be its own reference
-    ro = local_reference(modules, t_med, healthy, cfg_ref, exclude_group=groups, return_details=True)
-    ref_o = np.where(np.isfinite(ro.reference_c), ro.reference_c, F.ref)
     d_other = t_med - ref_o
     rsub_o = F.Rsub + (F.ref - ref_o)[:, None]
     # the cell pattern against modules outside the string too: a string-long pattern (PID)
