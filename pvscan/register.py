@@ -75,6 +75,7 @@ __all__ = [
     "Registration",
     "CorrelationPeak",
     "estimate_shift",
+    "expected_module_apparent_c",
     "apply_shift",
     "phase_correlate",
     "correlation_surface",
@@ -114,6 +115,12 @@ _DEFAULTS: dict[str, Any] = {
     "follow_drift": True,
     "apply_weak": False,
     "require": False,
+    "plausibility": True,
+    "plausibility_ratio": 0.3,
+    "plausibility_candidates": 8,
+    "plausibility_modules": 300,
+    "plausibility_margin_k": 3.0,
+    "plausibility_inset": 0.2,
 }
 
 
@@ -383,8 +390,12 @@ def _search_region(surface: np.ndarray, radius_px: float) -> tuple[np.ndarray, i
     return region, r
 
 
-def _peaks(region: np.ndarray, r: int, exclusion_px: float, ratio: float):
-    """Best peak, its statistics and all candidates >= ratio * best (integer offsets)."""
+def _peaks(region: np.ndarray, r: int, exclusion_px: float, ratio: float, near_zero: bool = False):
+    """Best peak, its statistics and all candidates >= ratio * best (integer offsets).
+
+    With ``near_zero`` the local maximum nearest to the zero shift (within
+    ``exclusion_px``) is kept too, whatever its height (the layout as drawn is always a
+    hypothesis)."""
     finite = np.isfinite(region)
     vals = region[finite]
     best_i = int(np.argmax(np.where(finite, region, -np.inf)))
@@ -411,6 +422,12 @@ def _peaks(region: np.ndarray, r: int, exclusion_px: float, ratio: float):
     cands = [(int(ci[k] - r), int(cj[k] - r), float(filled[ci[k], cj[k]])) for k in order]
     if not cands or (cands[0][0], cands[0][1]) != (bi - r, bj - r):
         cands.insert(0, (int(bi - r), int(bj - r), best))
+    if near_zero and not any(c[0] ** 2 + c[1] ** 2 <= exclusion_px ** 2 for c in cands):
+        zi, zj = np.nonzero(locmax)
+        d2z = (zi - r) ** 2 + (zj - r) ** 2
+        if len(d2z) and d2z.min() <= exclusion_px ** 2:
+            k = int(np.argmin(d2z))
+            cands.append((int(zi[k] - r), int(zj[k] - r), float(filled[zi[k], zj[k]])))
     return (int(bi - r), int(bj - r)), best, snr, distinct, cands
 
 
@@ -606,12 +623,23 @@ def _analyse_block(bd: _BlockData, spec: np.ndarray, cfg: Mapping, signs) -> Non
         ring = None
     for sg in signs:
         med_r = med_by_sign[sg]
-        # candidates down to half the best peak: the fit may re-admit one of them later
-        (pi, pj), best, snr, distinct, cands = _peaks(region * sg, r, ex,
-                                                      min(float(cfg["ambiguity_ratio"]), 0.5))
+        # candidates down to half the best peak: the fit may re-admit one of them later;
+        # with the plausibility test, weaker ones too (and the one nearest zero shift)
+        keep = min(float(cfg["ambiguity_ratio"]), 0.5)
+        plaus = bool(cfg["plausibility"])
+        if plaus:
+            keep = min(keep, float(cfg["plausibility_ratio"]))
+        (pi, pj), best, snr, distinct, cands = _peaks(region * sg, r, ex, keep, near_zero=plaus)
+        n_keep = _MAX_CANDIDATES + (int(cfg["plausibility_candidates"]) if plaus else 0)
         refined = []
-        for ci, cj, h in cands[:_MAX_CANDIDATES]:
-            fr, fc = upsampled_peak(spec, (ci, cj), up, half_width=1.0, sign=sg)
+        for k, (ci, cj, h) in enumerate(cands):
+            if k < _MAX_CANDIDATES:
+                fr, fc = upsampled_peak(spec, (ci, cj), up, half_width=1.0, sign=sg)
+            elif k < n_keep or ci * ci + cj * cj <= ex * ex:
+                # weak candidates serve the plausibility test: a parabolic vertex suffices
+                fr, fc = _parabolic_peak(region * sg, r, ci, cj)
+            else:
+                continue
             refined.append((ci, cj, h, fr, fc))
         beyond = None
         if ring is not None:
@@ -625,6 +653,26 @@ def _analyse_block(bd: _BlockData, spec: np.ndarray, cfg: Mapping, signs) -> Non
             if best > med_r:
                 distinct = min(distinct, 1.0 - max(float(rs.flat[k]) - med_r, 0.0) / (best - med_r))
         bd.peaks[sg] = (float(snr), max(float(distinct), 0.0), beyond, refined, med_r)
+
+
+def _parabolic_peak(region: np.ndarray, r: int, ci: int, cj: int) -> tuple[float, float]:
+    """Sub-pixel vertex of a peak of the search region by a 3-point parabola per axis [px]."""
+    out = []
+    for axis, c in ((0, ci), (1, cj)):
+        i, j = ci + r, cj + r
+        lo = (i - 1, j) if axis == 0 else (i, j - 1)
+        hi = (i + 1, j) if axis == 0 else (i, j + 1)
+        n = region.shape[axis]
+        if min(lo[axis], hi[axis]) < 0 or max(lo[axis], hi[axis]) >= n:
+            out.append(float(c))
+            continue
+        a, b, d = region[lo], region[i, j], region[hi]
+        den = a - 2.0 * b + d
+        if not (np.isfinite(a) and np.isfinite(d)) or den >= 0:
+            out.append(float(c))
+            continue
+        out.append(float(c) + float(np.clip(0.5 * (a - d) / den, -0.5, 0.5)))
+    return out[0], out[1]
 
 
 def _prepare_block(orthos, ti, tile, win, mod_geoms, cfg, f, work_gsd):
@@ -750,11 +798,241 @@ def _spread_enough(x, y, min_extent):
     return sv[-1] / math.sqrt(len(x)) > min_extent
 
 
+
+# --------------------------------------------------------------------------------------
+# physical plausibility of a candidate shift
+# --------------------------------------------------------------------------------------
+def expected_module_apparent_c(flight: Any, pipeline: Any = None) -> float:
+    """Apparent temperature of sunlit module glass at the flight's conditions [degC].
+
+    The true temperature follows the Faiman model, ``T = T_air + G / (u0 + u1 v)``
+    (``G`` the plane-of-array irradiance [W/m2], ``v`` the wind speed [m/s], ``u0``,
+    ``u1`` of the ``[reference]`` section), at the flight's mean conditions
+    (:func:`pvscan.conditions.flight_conditions`); it is turned into what the export
+    reports with :func:`pvscan.radiometry.apparent_from_true` and the keywords of
+    :func:`pvscan.radiometry.flight_radiometry` (module emissivity, reflected sky, the
+    export's emissivity and reflected temperature, air path).
+
+    Parameters
+    ----------
+    flight : Flight
+        From :func:`pvscan.manifest.load_flight`.
+    pipeline : Pipeline, optional
+        Default :func:`pvscan.settings.load_pipeline`.
+
+    Returns
+    -------
+    float
+        [degC]
+
+    Raises
+    ------
+    ConditionsError
+        When the flight gives neither constants nor a series for irradiance, air
+        temperature and wind.
+
+    References
+    ----------
+    .. [1] D. Faiman, "Assessing the outdoor operating temperature of photovoltaic
+       modules", Progress in Photovoltaics 16(4), 307-315, 2008. doi:10.1002/pip.813
+    """
+    import pandas as pd
+
+    from pvscan import radiometry
+    from pvscan.conditions import flight_conditions
+    from pvscan.thermal import U0_FAIMAN, U1_FAIMAN
+
+    if pipeline is None:
+        from pvscan.settings import load_pipeline
+
+        pipeline = load_pipeline()
+
+    def section(name):
+        try:
+            return pipeline[name]
+        except (KeyError, TypeError):
+            return {}
+
+    fc = flight_conditions(flight.conditions, flight.flight.start, flight.flight.end,
+                           settings=section("conditions"))
+    ref = section("reference")
+    u = float(ref.get("u0", U0_FAIMAN)) + float(ref.get("u1", U1_FAIMAN)) * float(fc.wind_speed)
+    t_true = float(fc.temp_air) + float(fc.poa_global) / u
+    rh = fc.relative_humidity
+    cond = pd.DataFrame({"temp_air": [float(fc.temp_air)], "temp_sky": [float(fc.temp_sky)],
+                         "relative_humidity": [float("nan") if rh is None else float(rh)]})
+    kw = radiometry.flight_radiometry(flight, cond, section("radiometry") or None)
+    kw = {k: (float(np.asarray(v).reshape(-1)[0]) if k != "band_um" and np.ndim(v) else v) for k, v in kw.items()}
+    return float(np.asarray(radiometry.apparent_from_true(t_true, **kw)).reshape(-1)[0])
+
+
+def _expected_from_flight(flight) -> float | None:
+    from pvscan.errors import PvscanError
+
+    try:
+        return expected_module_apparent_c(flight)
+    except (PvscanError, AttributeError, TypeError, ValueError) as exc:
+        logger.info("register: no expected module temperature for the plausibility test (%s)", exc)
+        return None
+
+
+def _module_samples(orthos, tiles, geoms, cfg):
+    """Sample points inside a subset of module footprints and one windowed read each.
+
+    Returns a list of ``(x, y, tile_index, transform, col_off, row_off, array)`` [m, px]."""
+    import shapely
+
+    n = len(geoms)
+    if n == 0:
+        return []
+    k = min(n, int(cfg["plausibility_modules"]))
+    idx = np.unique(np.linspace(0, n - 1, k).round().astype(int))
+    g = geoms[idx]
+    area = shapely.area(g)
+    perim = shapely.length(g)
+    # inset: a fraction of the footprint's inscribed half-width 2A/P (w l / (w + l) for a
+    # w x l rectangle), so the points stay on the glass at a slightly wrong shift
+    inset = float(cfg["plausibility_inset"]) * np.where(perim > 0, 2.0 * area / np.maximum(perim, 1e-12), 0.0)
+    inner = shapely.buffer(g, -inset)
+    reach = float(cfg["max_shift_m"]) * float(cfg["guard_factor"]) + 0.5
+    bounds = [(_tile_attr(t, "bounds"), _tile_attr(t, "transform"), int(_tile_attr(t, "width")),
+               int(_tile_attr(t, "height"))) for t in tiles]
+    out = []
+    grid = (np.arange(9) + 0.5) / 9.0
+    for poly in inner:
+        if poly is None or shapely.is_empty(poly):
+            continue
+        x0, y0, x1, y1 = shapely.bounds(poly)
+        gx, gy = np.meshgrid(x0 + grid * (x1 - x0), y0 + grid * (y1 - y0))
+        gx, gy = gx.ravel(), gy.ravel()
+        inside = shapely.contains_xy(poly, gx, gy)
+        if inside.sum() < 3:
+            continue
+        gx, gy = gx[inside], gy[inside]
+        cx, cy = float(gx.mean()), float(gy.mean())
+        for ti, ((l, b, r, t), tr, w, h) in enumerate(bounds):
+            if l <= cx <= r and b <= cy <= t:
+                break
+        else:
+            continue
+        inv = ~tr
+        cols, rows = zip(*(inv @ (xx, yy) for xx in (x0 - reach, x1 + reach) for yy in (y0 - reach, y1 + reach)))
+        c0, c1 = max(0, int(math.floor(min(cols)))), min(w, int(math.ceil(max(cols))))
+        r0, r1 = max(0, int(math.floor(min(rows)))), min(h, int(math.ceil(max(rows))))
+        if c1 - c0 < 1 or r1 - r0 < 1:
+            continue
+        arr = np.asarray(orthos.read(ti, Window(c0, r0, c1 - c0, r1 - r0)), dtype=np.float64)
+        if arr.ndim == 3:
+            arr = arr[0]
+        out.append((gx, gy, tr, c0, r0, arr))
+    return out
+
+
+def _median_at(samples, shift) -> tuple[float, int]:
+    """Median over the sampled modules of each module's median apparent temperature
+    with the footprints moved by ``shift`` [degC], and the number of modules measured."""
+    meds = []
+    for gx, gy, tr, c0, r0, arr in samples:
+        cols, rows = ~tr * (gx + shift[0], gy + shift[1])
+        ci = np.floor(np.asarray(cols)).astype(int) - c0
+        ri = np.floor(np.asarray(rows)).astype(int) - r0
+        ok = (ci >= 0) & (ri >= 0) & (ci < arr.shape[1]) & (ri < arr.shape[0])
+        v = arr[ri[ok], ci[ok]]
+        v = v[np.isfinite(v)]
+        if v.size * 2 >= gx.size:
+            meds.append(float(np.median(v)))
+    if len(meds) < 3:
+        return float("nan"), len(meds)
+    return float(np.median(meds)), len(meds)
+
+
+def _shift_clusters(blocks, phys_all, to_m, radius_m):
+    """Candidate shifts of all blocks grouped within ``radius_m``: ``[(centre, score)]``,
+    score = SNR-weighted mean over the blocks of the relative peak height (0 where a block
+    has no candidate in the group), best first."""
+    pts = []
+    weights = []
+    for i, (bd, (ext, med, snr, ok)) in enumerate(zip(blocks, phys_all)):
+        wb = max(float(snr), 1e-3) if ok else 1e-3
+        weights.append(wb)
+        top = ext[0][2] - med
+        if top <= 0:
+            continue
+        for c in ext:
+            m = to_m(bd, c[3], c[4])
+            pts.append((m[0], m[1], (c[2] - med) / top, wb, i))
+    pts.sort(key=lambda p: -p[2] * p[3])
+    clusters: list[dict] = []
+    for x, y, h, wb, i in pts:
+        for cl in clusters:
+            if math.hypot(x - cl["x"], y - cl["y"]) <= radius_m:
+                if i not in cl["h"]:
+                    cl["h"][i] = (h, wb)
+                    cl["sx"] += x * h * wb
+                    cl["sy"] += y * h * wb
+                    cl["sw"] += h * wb
+                break
+        else:
+            clusters.append({"x": x, "y": y, "h": {i: (h, wb)}, "sx": x * h * wb, "sy": y * h * wb,
+                             "sw": h * wb})
+    total = float(sum(weights))
+    out = []
+    for cl in clusters:
+        score = sum(h * wb for h, wb in cl["h"].values()) / total
+        c = (cl["sx"] / cl["sw"], cl["sy"] / cl["sw"]) if cl["sw"] > 0 else (cl["x"], cl["y"])
+        out.append((c, float(score)))
+    out.sort(key=lambda t: -t[1])
+    return out
+
+
+def _plausibility(orthos, tiles, geoms, blocks, phys_all, to_m, fitted, expected_c, cfg):
+    """Test the fitted shift against the other candidate shifts by the module glass's
+    apparent temperature; returns ``(note, switch)`` with ``switch = (centre, factor)``
+    when another candidate is clearly more plausible, else None."""
+    radius = float(cfg["reject_m"])
+    ratio = float(cfg["plausibility_ratio"])
+    clusters = _shift_clusters(blocks, phys_all, to_m, radius)
+    cands = []
+    for c, score in clusters:
+        if math.hypot(c[0] - fitted[0], c[1] - fitted[1]) <= radius:
+            continue
+        near_zero = math.hypot(*c) <= radius
+        if score >= ratio or near_zero:
+            cands.append((c, score))
+        if len(cands) >= int(cfg["plausibility_candidates"]):
+            break
+    if not cands:
+        return "", None
+    samples = _module_samples(orthos, tiles, geoms, cfg)
+    t_fit, n_fit = _median_at(samples, fitted)
+    if not math.isfinite(t_fit):
+        return "plausibility test skipped: too few modules sampled", None
+    margin = float(cfg["plausibility_margin_k"])
+    d_fit = abs(t_fit - expected_c)
+    best = None
+    for c, score in cands:
+        t_c, _ = _median_at(samples, c)
+        if not math.isfinite(t_c):
+            continue
+        d_c = abs(t_c - expected_c)
+        if best is None or d_c < best[1]:
+            best = (c, d_c, t_c, score)
+    head = (f"plausibility: modules at the fitted shift ({fitted[0]:+.2f}, {fitted[1]:+.2f}) m read "
+            f"{t_fit:.1f} degC (median of {n_fit}), expected {expected_c:.1f} degC for sunlit glass")
+    if best is None or d_fit - best[1] <= margin:
+        return head + "; fit kept", None
+    c, d_c, t_c, score = best
+    factor = min(max((d_fit - d_c) / (2.0 * margin), 0.0), 1.0)
+    note = (f"{head}; candidate ({c[0]:+.2f}, {c[1]:+.2f}) m (correlation score {score:.2f} of the best) "
+            f"reads {t_c:.1f} degC and was taken instead")
+    return note, (c, factor)
+
 # --------------------------------------------------------------------------------------
 # public API
 # --------------------------------------------------------------------------------------
 def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mapping | None = None, *,
-                   progress: ProgressFn | None = None) -> Registration:
+                   progress: ProgressFn | None = None, expected_apparent_c: float | None = None,
+                   flight: Any = None) -> Registration:
     """Measure the layout-to-ortho offset from the image.
 
     Parameters
@@ -769,6 +1047,17 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
         The ``[register]`` section (or a whole pipeline); missing keys take the defaults.
     progress : callable, optional
         ``progress("register", done, total)`` after each block.
+    expected_apparent_c : float, optional
+        Apparent temperature the camera export should report for sunlit module glass at
+        the flight's conditions [degC] (:func:`expected_module_apparent_c`). When given
+        (and ``plausibility`` is on), candidate shifts that the correlation scores close
+        to the best are told apart by the median apparent temperature they put inside a
+        sample of module footprints: a fit that lays the footprints on an equally wide,
+        cooler shadow strip is replaced by the candidate whose modules look like modules.
+    flight : Flight, optional
+        Used only when ``expected_apparent_c`` is not given, to compute it with
+        :func:`expected_module_apparent_c` (skipped with a log line when the flight lacks
+        the conditions).
 
     Returns
     -------
@@ -865,10 +1154,14 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
     snr_min, snr_full = float(cfg["snr_min"]), float(cfg["snr_full"])
     dfull = float(cfg["distinct_full"])
     cands_all = []
+    phys_all = []  # every candidate kept for the plausibility test, and the block's SNR
+    keep_base = min(float(cfg["ambiguity_ratio"]), 0.5)
     for bd in blocks:
-        snr, distinct, beyond, cands, med = bd.peaks[sign]
-        best_h = cands[0][2]
+        snr, distinct, beyond, ext, med = bd.peaks[sign]
+        best_h = ext[0][2]
         ratio = float(cfg["ambiguity_ratio"])
+        # candidates down to half the best peak (the fit may re-admit one of them)
+        cands = [c for c in ext if c[2] - med >= keep_base * (best_h - med)][:_MAX_CANDIDATES]
         # (all candidates, those within ambiguity_ratio of the best, height above median)
         cands = (cands, [c for c in cands if c[2] - med >= ratio * (best_h - med)], med)
         c_snr = min(max((snr - snr_min) / max(snr_full - snr_min, 1e-9), 0.0), 1.0)
@@ -881,6 +1174,7 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
             rec.note = (f"a stronger peak lies beyond max_shift_m, at ({beyond[0]:+.2f}, {beyond[1]:+.2f}) m")
         rec.confidence = float(conf)
         cands_all.append(cands)
+        phys_all.append((ext, med, snr, beyond is None))
 
     # 4. consensus of confident blocks, then each block takes the candidate nearest to it
     def to_m(bd, drow, dcol):
@@ -897,112 +1191,159 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
                                       "(no block has a distinct correlation peak)")
     cons = np.array([_weighted_median(best_m[:, 0], confs + 1e-12 * (confs <= 0)),
                      _weighted_median(best_m[:, 1], confs + 1e-12 * (confs <= 0))])
-    dxs, dys = [], []
-    cm_all = []
-    for bd, (all_c, cands, med) in zip(blocks, cands_all):
-        rec = bd.record
-        cm_all.append((np.array([to_m(bd, c[3], c[4]) for c in all_c]),
-                       np.array([(c[2] - med) / max(all_c[0][2] - med, 1e-300) for c in all_c])))
-        cm = np.array([to_m(bd, c[3], c[4]) for c in cands])
-        k = int(np.argmin(np.hypot(cm[:, 0] - cons[0], cm[:, 1] - cons[1])))
-        if k != 0:
-            rec.note = (rec.note + "; " if rec.note else "") + \
-                f"periodic ambiguity: took candidate {k + 1} of {len(cands)} nearest the consensus"
-            # a block that needed the consensus to decide cannot add confidence of its own
-            rec.confidence *= (cands[k][2] - med) / (cands[0][2] - med) if cands[0][2] > med else 0.0
-            if rec.confidence <= 0:
-                rec.confidence = 1e-3
-        rec.dx, rec.dy = float(cm[k, 0]), float(cm[k, 1])
-        dxs.append(rec.dx)
-        dys.append(rec.dy)
-
-    # 5. robust fit
-    x = np.array([bd.x for bd in blocks])
-    y = np.array([bd.y for bd in blocks])
-    dx = np.array(dxs)
-    dy = np.array(dys)
-    w = np.array([bd.record.confidence for bd in blocks])
-    inl = w > 0
-    reject = float(cfg["reject_m"])
-    model = None
-    for _ in range(6):
-        if inl.sum() == 0:
-            break
-        use_sim = _spread_enough(x[inl], y[inl], float(cfg["block_m"]) * 0.25)
-        if use_sim:
-            model = _fit_similarity(x[inl], y[inl], dx[inl], dy[inl], w[inl])
-            tx, ty, a, b, x0, y0 = model
-            px = tx + a * (x - x0) - b * (y - y0)
-            py = ty + b * (x - x0) + a * (y - y0)
-        else:
-            mx = _weighted_median(dx[inl], w[inl])
-            my = _weighted_median(dy[inl], w[inl])
-            model = None
-            px, py = np.full_like(x, mx), np.full_like(y, my)
-        res = np.hypot(dx - px, dy - py)
-        for i in np.nonzero((w > 0) & (res > reject))[0]:
-            # an outlier whose runner-up peak agrees with the fit took the wrong one of two
-            # near-equal peaks (periodic rows): re-admit it with that peak
-            cmi, hi = cm_all[i]
-            d = np.hypot(cmi[:, 0] - px[i], cmi[:, 1] - py[i])
-            j = int(np.argmin(d))
-            if d[j] <= reject and hi[j] > 0:
-                rec = blocks[i].record
-                dx[i], dy[i] = cmi[j]
-                rec.dx, rec.dy = float(cmi[j, 0]), float(cmi[j, 1])
-                w[i] *= float(hi[j])
-                rec.confidence = float(w[i])
-                rec.note = (rec.note + "; " if rec.note else "") + \
-                    f"periodic ambiguity: re-admitted with candidate {j + 1} near the fit"
-                res[i] = d[j]
-        new = (w > 0) & (res <= reject)
-        if not new.any():
-            new = (w > 0) & (res <= np.min(res[w > 0]) + 1e-9)
-        if np.array_equal(new, inl):
-            break
-        inl = new
-    if model is None:
-        cx = float(np.average(x[inl], weights=w[inl]))
-        cy = float(np.average(y[inl], weights=w[inl]))
-        mx = float(np.average(dx[inl], weights=w[inl]))
-        my = float(np.average(dy[inl], weights=w[inl]))
-        model_t = (mx, my, 0.0, 0.0, cx, cy)
+    def fit(lists, cons, conf_of=None):
+        """Each block takes its candidate nearest ``cons``, then the robust fit of the field;
+        sets the records and ``reg`` (model, residuals, measured shift, confidence)."""
         reg.model = None
-    else:
-        model_t = model
-        reg.model = model
-        a, b = model[2], model[3]
-        reg.residual_scale = float(math.hypot(1.0 + a, b))
-        reg.residual_rotation_deg = float(math.degrees(math.atan2(b, 1.0 + a)))
-    for bd, ok, rs in zip(blocks, inl, res):
-        rec = bd.record
-        rec.used = bool(ok)
-        if not ok and rec.confidence > 0:
-            rec.note = (rec.note + "; " if rec.note else "") + f"outlier: {rs:.2f} m from the fit"
-    # overall shift: the field at the centre of the layout
-    lx0, ly0, lx1, ly1 = shapely.total_bounds(geoms)
-    mxc, myc = (lx0 + lx1) / 2.0, (ly0 + ly1) / 2.0
-    tx, ty, a, b, x0, y0 = model_t
-    sx = tx + a * (mxc - x0) - b * (myc - y0)
-    sy = ty + b * (mxc - x0) + a * (myc - y0)
-    reg.measured_m = (float(sx), float(sy))
-    if reg.model is not None:
-        # the field is extrapolated to the whole layout: refuse implausible extrapolations
-        # (blocks clustered in one corner) and use the single shift instead
-        corners_x = np.array([lx0, lx0, lx1, lx1])
-        corners_y = np.array([ly0, ly1, ly0, ly1])
-        fx = tx + a * (corners_x - x0) - b * (corners_y - y0)
-        fy = ty + b * (corners_x - x0) + a * (corners_y - y0)
-        spread = float(np.max(np.hypot(fx - sx, fy - sy)))
-        if spread > float(cfg["max_shift_m"]):
-            reg.notes.append(f"shift field varies by {spread:.2f} m across the layout (more than "
-                             f"max_shift_m); one shift is used for all modules")
+        reg.residual_scale = reg.residual_rotation_deg = float("nan")
+        reg.follow_drift = bool(cfg["follow_drift"])
+        dxs, dys = [], []
+        cm_all = []
+        for bd, (all_c, cands, med) in zip(blocks, lists):
+            rec = bd.record
+            cm_all.append((np.array([to_m(bd, c[3], c[4]) for c in all_c]),
+                           np.array([(c[2] - med) / max(all_c[0][2] - med, 1e-300) for c in all_c])))
+            cm = np.array([to_m(bd, c[3], c[4]) for c in cands])
+            k = int(np.argmin(np.hypot(cm[:, 0] - cons[0], cm[:, 1] - cons[1])))
+            if k != 0:
+                rec.note = (rec.note + "; " if rec.note else "") + \
+                    f"periodic ambiguity: took candidate {k + 1} of {len(cands)} nearest the consensus"
+                # a block that needed the consensus to decide cannot add confidence of its own
+                rec.confidence *= (cands[k][2] - med) / (cands[0][2] - med) if cands[0][2] > med else 0.0
+                if conf_of is not None:
+                    rec.confidence = conf_of(bd, cands[k], med)
+                if rec.confidence <= 0:
+                    rec.confidence = 1e-3
+            rec.dx, rec.dy = float(cm[k, 0]), float(cm[k, 1])
+            dxs.append(rec.dx)
+            dys.append(rec.dy)
+
+        # 5. robust fit
+        x = np.array([bd.x for bd in blocks])
+        y = np.array([bd.y for bd in blocks])
+        dx = np.array(dxs)
+        dy = np.array(dys)
+        w = np.array([bd.record.confidence for bd in blocks])
+        inl = w > 0
+        reject = float(cfg["reject_m"])
+        model = None
+        for _ in range(6):
+            if inl.sum() == 0:
+                break
+            use_sim = _spread_enough(x[inl], y[inl], float(cfg["block_m"]) * 0.25)
+            if use_sim:
+                model = _fit_similarity(x[inl], y[inl], dx[inl], dy[inl], w[inl])
+                tx, ty, a, b, x0, y0 = model
+                px = tx + a * (x - x0) - b * (y - y0)
+                py = ty + b * (x - x0) + a * (y - y0)
+            else:
+                mx = _weighted_median(dx[inl], w[inl])
+                my = _weighted_median(dy[inl], w[inl])
+                model = None
+                px, py = np.full_like(x, mx), np.full_like(y, my)
+            res = np.hypot(dx - px, dy - py)
+            for i in np.nonzero((w > 0) & (res > reject))[0]:
+                # an outlier whose runner-up peak agrees with the fit took the wrong one of two
+                # near-equal peaks (periodic rows): re-admit it with that peak
+                cmi, hi = cm_all[i]
+                d = np.hypot(cmi[:, 0] - px[i], cmi[:, 1] - py[i])
+                j = int(np.argmin(d))
+                if d[j] <= reject and hi[j] > 0:
+                    rec = blocks[i].record
+                    dx[i], dy[i] = cmi[j]
+                    rec.dx, rec.dy = float(cmi[j, 0]), float(cmi[j, 1])
+                    w[i] *= float(hi[j])
+                    rec.confidence = float(w[i])
+                    rec.note = (rec.note + "; " if rec.note else "") + \
+                        f"periodic ambiguity: re-admitted with candidate {j + 1} near the fit"
+                    res[i] = d[j]
+            new = (w > 0) & (res <= reject)
+            if not new.any():
+                new = (w > 0) & (res <= np.min(res[w > 0]) + 1e-9)
+            if np.array_equal(new, inl):
+                break
+            inl = new
+        if model is None:
+            cx = float(np.average(x[inl], weights=w[inl]))
+            cy = float(np.average(y[inl], weights=w[inl]))
+            mx = float(np.average(dx[inl], weights=w[inl]))
+            my = float(np.average(dy[inl], weights=w[inl]))
+            model_t = (mx, my, 0.0, 0.0, cx, cy)
             reg.model = None
-            reg.follow_drift = False
-    # confidence: mean confidence of the used blocks times the weight fraction they hold
-    wi = w[inl]
-    conf = float(np.sum(wi * wi) / np.sum(wi)) * float(np.sum(wi) / np.sum(w)) if wi.sum() > 0 else 0.0
-    reg.confidence = min(max(conf, 0.0), 1.0)
+        else:
+            model_t = model
+            reg.model = model
+            a, b = model[2], model[3]
+            reg.residual_scale = float(math.hypot(1.0 + a, b))
+            reg.residual_rotation_deg = float(math.degrees(math.atan2(b, 1.0 + a)))
+        for bd, ok, rs in zip(blocks, inl, res):
+            rec = bd.record
+            rec.used = bool(ok)
+            if not ok and rec.confidence > 0:
+                rec.note = (rec.note + "; " if rec.note else "") + f"outlier: {rs:.2f} m from the fit"
+        # overall shift: the field at the centre of the layout
+        lx0, ly0, lx1, ly1 = shapely.total_bounds(geoms)
+        mxc, myc = (lx0 + lx1) / 2.0, (ly0 + ly1) / 2.0
+        tx, ty, a, b, x0, y0 = model_t
+        sx = tx + a * (mxc - x0) - b * (myc - y0)
+        sy = ty + b * (mxc - x0) + a * (myc - y0)
+        reg.measured_m = (float(sx), float(sy))
+        if reg.model is not None:
+            # the field is extrapolated to the whole layout: refuse implausible extrapolations
+            # (blocks clustered in one corner) and use the single shift instead
+            corners_x = np.array([lx0, lx0, lx1, lx1])
+            corners_y = np.array([ly0, ly1, ly0, ly1])
+            fx = tx + a * (corners_x - x0) - b * (corners_y - y0)
+            fy = ty + b * (corners_x - x0) + a * (corners_y - y0)
+            spread = float(np.max(np.hypot(fx - sx, fy - sy)))
+            if spread > float(cfg["max_shift_m"]):
+                reg.notes.append(f"shift field varies by {spread:.2f} m across the layout (more than "
+                                 f"max_shift_m); one shift is used for all modules")
+                reg.model = None
+                reg.follow_drift = False
+        # confidence: mean confidence of the used blocks times the weight fraction they hold
+        wi = w[inl]
+        conf = float(np.sum(wi * wi) / np.sum(wi)) * float(np.sum(wi) / np.sum(w)) if wi.sum() > 0 else 0.0
+        reg.confidence = min(max(conf, 0.0), 1.0)
+        return sx, sy
+
+    n_notes = len(reg.notes)
+    saved = [(bd.record.confidence, bd.record.note) for bd in blocks]
+    sx, sy = fit(cands_all, cons)
+
+    # 6. physical plausibility: among candidate shifts that score close to the best, the
+    # module glass must look like sunlit modules at the flight's conditions
+    if expected_apparent_c is None and flight is not None:
+        expected_apparent_c = _expected_from_flight(flight)
+    if (bool(cfg["plausibility"]) and expected_apparent_c is not None
+            and math.isfinite(float(expected_apparent_c))):
+        alt = _plausibility(orthos, tiles, geoms, blocks, phys_all, to_m, (sx, sy),
+                            float(expected_apparent_c), cfg)
+        note, switch = alt
+        if switch is not None:
+            centre, factor = switch
+            for bd, (c0, n0) in zip(blocks, saved):
+                bd.record.confidence, bd.record.note = c0, n0
+            del reg.notes[n_notes:]
+            snr_scale = max(snr_full - snr_min, 1e-9)
+            by_block = {id(b): e for b, e in zip(blocks, phys_all)}
+
+            def conf_of(bd, cand, med):
+                # the plausibility test, not the consensus, decided: the block keeps the
+                # confidence of the chosen peak's own SNR, scaled by the test's margin
+                ext, med_b, snr, ok = by_block[id(bd)]
+                if not ok or ext[0][2] <= med_b:
+                    return 1e-3
+                snr_c = snr * (cand[2] - med_b) / (ext[0][2] - med_b)
+                return max(min(max((snr_c - snr_min) / snr_scale, 0.0), 1.0) * factor, 1e-3)
+
+            lists = [(ext, ext, med) for ext, med, _, _ in phys_all]
+            sx, sy = fit(lists, np.asarray(centre, float), conf_of)
+        if note:
+            reg.notes.append(note)
+            logger.info("register: %s", note)
+    inl = np.array([bd.record.used for bd in blocks], bool)
+
     n_used = int(inl.sum())
     desc = (f"measured shift ({sx:+.3f}, {sy:+.3f}) m from {n_used} of {len(records)} blocks, "
             f"confidence {reg.confidence:.2f}")
@@ -1137,7 +1478,7 @@ def align_flight(flight: Any, settings: Mapping | None = None, out_path: Any = N
             raise OutputError(f"{out_path}: folder {out_path.parent} does not exist")
     with open_orthos(flight.flight.orthos, flight.ortho) as orthos:
         modules = read_layout(flight, orthos.crs)
-        reg = estimate_shift(orthos, modules, settings, progress=progress)
+        reg = estimate_shift(orthos, modules, settings, progress=progress, flight=flight)
     moved = apply_shift(modules, reg)
     if out_path is not None:
         tmp = out_path.with_name(f".{out_path.stem}.{uuid.uuid4().hex[:8]}.tmp.gpkg")
