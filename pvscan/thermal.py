@@ -301,7 +301,7 @@ def reference_neighbours(modules: pd.DataFrame, healthy_mask, settings=None,
         pool = np.flatnonzero(healthy)
         kq = k_win
         if exclude_group is not None:
-            kq = k_win * 4  # ask for more, then drop the own group
+            kq = k_win + 96  # ask for more (a string may hold dozens of the nearest), then drop it
         win = _knn(xy0, pool, kq, float(cfg["window_radius_m"]))
         if exclude_group is not None:
             grp = np.asarray(exclude_group, dtype=np.int64)
