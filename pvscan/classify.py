@@ -460,7 +460,7 @@ def pattern_open_module(F: Features, cfg: Mapping, rsub=None, dT=None, isolated:
     return h
 
 
-def pattern_bypassed_substring(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
+def pattern_bypassed_substring(F: Features, cfg: Mapping, final: bool = True) -> tuple[Hits, Hits]:
     """One (or several, not all) substrings raised as a uniform plateau fitting the rise.
 
     A conducting bypass diode leaves its substring's cells producing nothing, so the whole
@@ -488,6 +488,12 @@ def pattern_bypassed_substring(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
     ratio = mean_raise / r
     fit_ok = (ratio >= float(cfg["substring_ratio_min"])) & (ratio <= float(cfg["substring_ratio_max"]))
     floor = float(cfg["noise_z"]) * F.sig_cell
+    if final:
+        # a strip's median averages its cells: in the final pass the floor is the noise
+        # of a difference of two strip means (the first pass, which only picks suspects,
+        # keeps the cell floor)
+        n_strip = max(F.n_along * F.n_across // max(B, 1), 1)
+        floor = floor * np.sqrt(2.0 / n_strip)
     # column coverage: inside raised columns every cell at least half the plateau, outside none
     Xlo = F.R - _nanmin(F.base_sub, axis=1)[:, None, None]
     half = 0.5 * mean_raise[:, None, None]
@@ -1143,9 +1149,9 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
 # orchestration
 # --------------------------------------------------------------------------------------
 
-def _detect(F: Features, cfg: Mapping) -> list[Hits]:
+def _detect(F: Features, cfg: Mapping, final: bool = True) -> list[Hits]:
     hits = [pattern_open_module(F, cfg)]
-    hits += list(pattern_bypassed_substring(F, cfg))
+    hits += list(pattern_bypassed_substring(F, cfg, final=final))
     hits += list(pattern_hot_cell(F, cfg))
     hits.append(pattern_junction_box(F, cfg))
     hits.append(pattern_soiling(F, cfg))
@@ -1182,7 +1188,8 @@ def _geometry(modules: pd.DataFrame, nsub: int) -> dict:
             "centre": p0 + 0.5 * (fu + fv)}
 
 
-def _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, ok, healthy, groups, pos, is_string):
+def _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, ok, healthy, groups, pos, is_string,
+           final=True):
     t_med = stats.table["t_median_c"].to_numpy(dtype=float)
     rr = local_reference(modules, t_med, healthy, cfg_ref, return_details=True)
     # a reference that excludes the module's own string (or row): a whole string raised
@@ -1194,7 +1201,7 @@ def _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, ok, healthy, g
     F.extra["sub_median"] = np.asarray(stats.sub_median, dtype=np.float64)
     F.extra["suspect"] = rr.suspect
     F.extra.update(_geometry(modules, F.nsub))
-    hits = _detect(F, cfg)
+    hits = _detect(F, cfg, final=final)
     d_other = t_med - ref_o
     rsub_o = F.Rsub + (F.ref - ref_o)[:, None]
     # the cell pattern against modules outside the string too: a string-long pattern (PID)
@@ -1274,7 +1281,8 @@ def classify(modules, stats, conditions, module_spec, settings=None, confidence_
     groups, pos, is_string = _groups(modules)
 
     # pass 1: suspects
-    F1, hits1 = _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, ok, ok, groups, pos, is_string)
+    F1, hits1 = _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, ok, ok, groups, pos, is_string,
+                       final=False)
     suspect = F1.extra["suspect"] | F1.extra["in_run"]
     for h in hits1:
         suspect |= h.hit
