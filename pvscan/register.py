@@ -116,10 +116,11 @@ _DEFAULTS: dict[str, Any] = {
     "apply_weak": False,
     "require": False,
     "plausibility": True,
-    "plausibility_ratio": 0.3,
+    "plausibility_ratio": 0.1,
     "plausibility_candidates": 8,
     "plausibility_modules": 300,
     "plausibility_margin_k": 3.0,
+    "plausibility_max_error_k": 8.0,
     "plausibility_inset": 0.2,
 }
 
@@ -933,7 +934,10 @@ def _median_at(samples, shift) -> tuple[float, int]:
     with the footprints moved by ``shift`` [degC], and the number of modules measured."""
     meds = []
     for gx, gy, tr, c0, r0, arr in samples:
-        cols, rows = ~tr * (gx + shift[0], gy + shift[1])
+        inv = ~tr
+        xs, ys = gx + shift[0], gy + shift[1]
+        cols = inv.a * xs + inv.b * ys + inv.c
+        rows = inv.d * xs + inv.e * ys + inv.f
         ci = np.floor(np.asarray(cols)).astype(int) - c0
         ri = np.floor(np.asarray(rows)).astype(int) - r0
         ok = (ci >= 0) & (ri >= 0) & (ci < arr.shape[1]) & (ri < arr.shape[0])
@@ -1009,19 +1013,21 @@ def _plausibility(orthos, tiles, geoms, blocks, phys_all, to_m, fitted, expected
         return "plausibility test skipped: too few modules sampled", None
     margin = float(cfg["plausibility_margin_k"])
     d_fit = abs(t_fit - expected_c)
-    best = None
+    tested = []
     for c, score in cands:
         t_c, _ = _median_at(samples, c)
-        if not math.isfinite(t_c):
-            continue
-        d_c = abs(t_c - expected_c)
-        if best is None or d_c < best[1]:
-            best = (c, d_c, t_c, score)
+        if math.isfinite(t_c):
+            tested.append((c, abs(t_c - expected_c), t_c, score))
     head = (f"plausibility: modules at the fitted shift ({fitted[0]:+.2f}, {fitted[1]:+.2f}) m read "
             f"{t_fit:.1f} degC (median of {n_fit}), expected {expected_c:.1f} degC for sunlit glass")
-    if best is None or d_fit - best[1] <= margin:
+    # candidates clearly more plausible than the fit and plausible in themselves
+    better = [t for t in tested if d_fit - t[1] > margin and t[1] <= float(cfg["plausibility_max_error_k"])]
+    if not better:
         return head + "; fit kept", None
-    c, d_c, t_c, score = best
+    # among those the temperature cannot tell apart (e.g. one module pitch along a row:
+    # glass either way), the correlation decides
+    d_min = min(t[1] for t in better)
+    c, d_c, t_c, score = max((t for t in better if t[1] <= d_min + 0.5 * margin), key=lambda t: t[3])
     factor = min(max((d_fit - d_c) / (2.0 * margin), 0.0), 1.0)
     note = (f"{head}; candidate ({c[0]:+.2f}, {c[1]:+.2f}) m (correlation score {score:.2f} of the best) "
             f"reads {t_c:.1f} degC and was taken instead")

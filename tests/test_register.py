@@ -592,3 +592,162 @@ def test_footprint_mappings_rasterise_like_the_geometries():
                               dtype="uint8")
     assert ref.sum() > 1000
     np.testing.assert_array_equal(ours, ref)
+
+
+# ----------------------------------------------------------------------------------
+# physical plausibility: tracker rows beside their own ground shadow
+# A row's shadow on the ground is as wide as the row and uniform, so the edge
+# correlation can prefer it to the row; the glass temperature tells them apart.
+# References: module temperature by pvlib.temperature.faiman (Faiman 2008, Prog.
+# Photovolt. 16:307), turned into what the export reports by pvscan.radiometry
+# (Planck band radiance, checked against CODATA in tests/test_radiometry.py); a shaded
+# ground strip near air temperature is common practice.
+# ----------------------------------------------------------------------------------
+T_AIR, G_POA, WIND = 30.0, 900.0, 3.0
+RADIOMETRY = {"emissivity": 0.85, "temp_sky_c": -12.0, "export_emissivity": 1.0, "export_reflected_c": 20.0}
+
+
+def _glass_apparent_c():
+    import pvlib
+
+    from pvscan.radiometry import apparent_from_true
+
+    t_true = float(pvlib.temperature.faiman(G_POA, T_AIR, WIND))
+    return float(apparent_from_true(t_true, **RADIOMETRY))
+
+
+def tracker_rows(origin, n_rows=5, pitch=6.0, n_mod=24, crs="EPSG:32633"):
+    """Single-axis tracker rows running north-south, one module in portrait across (the
+    long side east-west), 0.02 m gaps along the row."""
+    polys = []
+    for r in range(n_rows):
+        for c in range(n_mod):
+            px, py = r * pitch, c * (MOD_W + 0.02)
+            polys.append(shapely.box(px, py, px + MOD_L, py + MOD_W))
+    g = gpd.GeoSeries(polys).translate(*origin)
+    return gpd.GeoDataFrame({"module_id": [f"M{i:04d}" for i in range(len(polys))]}, geometry=g.values, crs=crs)
+
+
+def render_tracker(modules, shift, t_glass, t_ground, t_shadow, gsd=0.05, pad=6.0, seed=0, noise_k=0.3):
+    """Rows of glass (frames 1 K cooler) with a shadow strip of the row's own width
+    immediately west of each row, over textured sunlit ground; layout moved by ``shift``."""
+    rng = np.random.default_rng(seed)
+    moved = modules.geometry.translate(*shift)
+    rows = shapely.union_all(np.asarray(moved.values, dtype=object)).buffer(0.015).buffer(-0.015)
+    rows = list(getattr(rows, "geoms", [rows]))
+    shadows = [shapely.affinity.translate(shapely.envelope(r), -(r.bounds[2] - r.bounds[0]), 0.0) for r in rows]
+    l, b, r, t = moved.total_bounds + np.array([-pad, -pad, pad, pad])
+    w, h = int(math.ceil((r - l) / gsd)), int(math.ceil((t - b) / gsd))
+    tr = Affine(gsd, 0, l, 0, -gsd, t)
+    ss = 2
+    fine = tr @ Affine.scale(1 / ss)
+    shape = (h * ss, w * ss)
+    step = max(1, int(round(1.0 / gsd)))
+    coarse = ndimage.gaussian_filter(rng.standard_normal((h // step + 2, w // step + 2)), 2.0)
+    ground = t_ground + 0.8 * ndimage.zoom(coarse / coarse.std(), step, order=1)[:h, :w]
+    img = np.repeat(np.repeat(ground, ss, 0), ss, 1)
+    sh = features.rasterize(((s, 1) for s in shadows), out_shape=shape, transform=fine, dtype="uint8")
+    img = np.where(sh > 0, t_shadow, img)
+    temps = t_glass + 0.5 * rng.standard_normal(len(moved))
+    glass = features.rasterize(((p, v) for p, v in zip(moved, temps)), out_shape=shape, transform=fine,
+                               fill=np.nan, dtype="float32")
+    frames = features.rasterize(((p.exterior.buffer(0.03), 1) for p in moved), out_shape=shape,
+                                transform=fine, dtype="uint8")
+    img = np.where(np.isnan(glass), img, glass - 1.0 * frames)
+    img = img.reshape(h, ss, w, ss).mean(axis=(1, 3))
+    img = ndimage.gaussian_filter(img, 1.0) + noise_k * rng.standard_normal((h, w))
+    return img.astype(np.float32), tr
+
+
+def _tracker_scene(shift, seed):
+    mods = tracker_rows((500_000.0, 4_000_000.0))
+    glass = _glass_apparent_c()
+    # glass a little warmer than the sunlit ground, the shadow near air temperature: the
+    # row/shadow and shadow/ground edges are strong, the glass/ground edge weak
+    img, tr = render_tracker(mods, shift, glass, glass - 3.0, T_AIR, seed=seed)
+    return ArrayOrthos([img], [tr], "EPSG:32633"), mods, glass
+
+
+@pytest.mark.parametrize("shift, seed", [((0.0, 0.0), 41), ((0.8, 0.0), 42), ((-0.6, 0.45), 43)])
+def test_tracker_rows_are_not_taken_for_their_shadow(shift, seed):
+    orthos, mods, glass = _tracker_scene(shift, seed)
+    shadow = (shift[0] - MOD_L, shift[1])       # the footprints laid onto the shadow strip
+    plain = run(orthos, mods)
+    assert err(plain, shadow) < TOL_M, plain.message          # the edge correlation alone fails
+    # the expectation of the glass, off by 2 K (the Faiman model's own accuracy, from memory)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        reg = estimate_shift(orthos, mods, {}, expected_apparent_c=glass + 2.0)
+    assert err(reg, shift) < TOL_M, reg.message
+    assert math.hypot(reg.shift_m[0] - shift[0], reg.shift_m[1] - shift[1]) < TOL_M   # applied or below min_shift_m
+    assert any("taken instead" in n for n in reg.notes), reg.notes
+    # switched off, the correlation's choice stands
+    off = estimate_shift(orthos, mods, {"plausibility": False}, expected_apparent_c=glass)
+    assert err(off, shadow) < TOL_M
+
+
+def test_plausibility_keeps_a_correct_fit():
+    # an ordinary fixed-tilt scene: the fit puts the footprints on glass, which reads
+    # the expected temperature, so no other candidate replaces it
+    mods = make_layout((500_000.0, 4_000_000.0))
+    img, tr = render(mods, (0.7, -0.4), seed=44, t_module=45.0, t_ground=38.0)
+    orthos = ArrayOrthos([img], [tr], "EPSG:32633")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        reg = estimate_shift(orthos, mods, {}, expected_apparent_c=44.0)
+    assert err(reg, (0.7, -0.4)) < TOL_M
+    assert not any("taken instead" in n for n in reg.notes)
+
+
+def test_expected_module_apparent_temperature_follows_faiman(tmp_path_factory):
+    # Reference: pvlib.temperature.faiman at the manifest's constants; the apparent
+    # value, converted back by radiometry.true_from_apparent with the flight's keywords,
+    # must give the Faiman temperature (the pair is an exact inverse, tolerance 0.01 K).
+    import pandas as pd
+    import pvlib
+
+    from pvscan import radiometry
+    from pvscan.manifest import load_flight
+    from pvscan.register import expected_module_apparent_c
+
+    res = _simulate(tmp_path_factory, "expected_t", conditions={"poa_irradiance_w_m2": 820.0, "ambient_c": 24.0,
+                                                                "wind_m_s": 2.5})
+    fl = load_flight(res.manifest)
+    t_app = expected_module_apparent_c(fl)
+    c = fl.conditions
+    cond = pd.DataFrame({"temp_air": [c.ambient_c], "temp_sky": [c.sky_c],
+                         "relative_humidity": [c.relative_humidity_pct]})
+    kw = radiometry.flight_radiometry(fl, cond)
+    t_true = float(np.asarray(radiometry.true_from_apparent(t_app, **kw)).reshape(-1)[0])
+    assert t_true == pytest.approx(float(pvlib.temperature.faiman(820.0, 24.0, 2.5)), abs=0.01)
+    # glass emits less than a black body and reflects a cold sky: it reads cooler than it is
+    assert t_app < t_true
+
+
+def test_simulated_tracker_rows_registered_on_the_glass(tmp_path_factory):
+    # Simulated single-axis trackers facing east at 30 deg, 900 W/m2 (pvscan.simulate
+    # renders the rows, their ground shadows and the camera); the layout was drawn in
+    # place (truth.json offset 0). Tolerance 0.1 m (one working pixel): the simulator's
+    # glass edge and frame line sit a few centimetres off the drawn outline, while the
+    # shadow lies a row width (1.8 m) away.
+    from pvscan.layout import read_layout
+    from pvscan.manifest import load_flight
+    from pvscan.ortho import open_orthos
+
+    res = _simulate(tmp_path_factory, "trackers_east",
+                    site={"lon": -5.9, "lat": 37.4},
+                    conditions={"poa_irradiance_w_m2": 900.0, "wind_m_s": 3.0, "ambient_c": 30.0},
+                    array={"kind": "tracker", "tilt_deg": 30, "facing": "east", "rows": 1, "cols": 14,
+                           "modules_per_string": 7, "table_rows": 3, "tables_per_row": 2},
+                    layout={"offset_m": [0.0, 0.0]})
+    off = _drawn_offset(res)
+    fl = load_flight(res.manifest)
+    with open_orthos(fl.flight.orthos, fl.ortho) as orthos:
+        modules = read_layout(fl, orthos.crs)
+        with warnings.catch_warnings():
+            warnings.simplefilter("error", RegistrationWarning)
+            plain = estimate_shift(orthos, modules, {})
+            reg = estimate_shift(orthos, modules, {}, flight=fl)
+    width = float(np.median(modules.geometry.bounds["maxx"] - modules.geometry.bounds["minx"]))
+    assert abs(abs(plain.measured_m[0] + off[0]) - width) < 0.1     # the shadow, a row width off
+    assert math.hypot(reg.measured_m[0] + off[0], reg.measured_m[1] + off[1]) < 0.1, reg.message
