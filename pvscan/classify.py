@@ -89,6 +89,7 @@ _CLASSIFY_DEFAULTS = {
     "local_irradiance_max": 1.3,
     "open_ratio_min": 0.55,
     "open_ratio_max": 1.8,
+    "open_other_share": 0.9,
     "open_uniform_iqr": 0.35,
     "open_uniform_floor_k": 0.8,
     "substring_raise_min": 0.5,
@@ -1202,6 +1203,12 @@ def _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, ok, healthy, g
     F.extra["suspect"] = rr.suspect
     F.extra.update(_geometry(modules, F.nsub))
     hits = _detect(F, cfg, final=final)
+    # an open module is raised against both neighbourhoods: its row, and modules outside its
+    # string (a reference biased by a shadow edge along the row is not both)
+    om = hits[0]
+    d_o = t_med - ref_o
+    with np.errstate(invalid="ignore"):
+        om.hit &= d_o >= float(cfg["open_other_share"]) * float(cfg["module_z"]) * F.sig_mod
     d_other = t_med - ref_o
     rsub_o = F.Rsub + (F.ref - ref_o)[:, None]
     # the cell pattern against modules outside the string too: a string-long pattern (PID)
