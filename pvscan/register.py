@@ -41,6 +41,20 @@ rotation and scale are reported, and when ``follow_drift`` is set each module is
 translated by the fitted shift at its own centre, so a drift across a large site is
 followed.
 
+A row's shadow on the ground can be as wide as the row and more uniform than the glass
+(single-axis trackers in the morning or evening): the footprint mask then fits the
+shadow strip better than the row itself, and no edge or texture statistic tells the two
+apart. Physics does: when the caller gives the apparent temperature sunlit glass should
+show at the flight's conditions (:func:`expected_module_apparent_c`: Faiman model, then
+the radiometric chain of :mod:`pvscan.radiometry`), the candidate shifts of all blocks
+(down to ``plausibility_ratio`` of the best peak, and always the one nearest zero shift)
+are grouped, and the median apparent temperature each puts inside a sample of
+``plausibility_modules`` footprints is measured (one windowed read per module). A
+candidate replaces the fit only when it is ``plausibility_margin_k`` closer to the
+expectation and itself within ``plausibility_max_error_k`` of it; among candidates the
+temperature cannot tell apart (one module pitch along a row), the correlation decides.
+The blocks are then refitted around the chosen candidate.
+
 References
 ----------
 .. [1] M. Guizar-Sicairos, S. T. Thurman and J. R. Fienup, "Efficient subpixel image
@@ -48,6 +62,8 @@ References
    doi:10.1364/OL.33.000156
 .. [2] C. D. Kuglin and D. C. Hines, "The phase correlation image alignment method",
    Proc. IEEE Int. Conf. on Cybernetics and Society, 163-165, 1975.
+.. [3] D. Faiman, "Assessing the outdoor operating temperature of photovoltaic modules",
+   Progress in Photovoltaics 16(4), 307-315, 2008. doi:10.1002/pip.813
 """
 from __future__ import annotations
 
@@ -803,7 +819,7 @@ def _spread_enough(x, y, min_extent):
 # --------------------------------------------------------------------------------------
 # physical plausibility of a candidate shift
 # --------------------------------------------------------------------------------------
-def expected_module_apparent_c(flight: Any, pipeline: Any = None) -> float:
+def expected_module_apparent_c(flight: Any, pipeline: Any = None, *, strict: bool = True) -> float:
     """Apparent temperature of sunlit module glass at the flight's conditions [degC].
 
     The true temperature follows the Faiman model, ``T = T_air + G / (u0 + u1 v)``
@@ -819,7 +835,11 @@ def expected_module_apparent_c(flight: Any, pipeline: Any = None) -> float:
     flight : Flight
         From :func:`pvscan.manifest.load_flight`.
     pipeline : Pipeline, optional
-        Default :func:`pvscan.settings.load_pipeline`.
+        Its ``[conditions]``, ``[reference]`` (``u0``, ``u1``) and ``[radiometry]``
+        sections are used; default :func:`pvscan.settings.load_pipeline`.
+    strict : bool
+        When False, a flight without usable conditions gives NaN (which switches the
+        plausibility test of :func:`estimate_shift` off) instead of raising.
 
     Returns
     -------
@@ -829,14 +849,22 @@ def expected_module_apparent_c(flight: Any, pipeline: Any = None) -> float:
     Raises
     ------
     ConditionsError
-        When the flight gives neither constants nor a series for irradiance, air
-        temperature and wind.
+        With ``strict``, when the flight gives neither constants nor a series for
+        irradiance, air temperature and wind.
 
     References
     ----------
     .. [1] D. Faiman, "Assessing the outdoor operating temperature of photovoltaic
        modules", Progress in Photovoltaics 16(4), 307-315, 2008. doi:10.1002/pip.813
     """
+    if not strict:
+        from pvscan.errors import PvscanError
+
+        try:
+            return expected_module_apparent_c(flight, pipeline, strict=True)
+        except (PvscanError, AttributeError, TypeError, ValueError) as exc:
+            logger.info("register: no expected module temperature for the plausibility test (%s)", exc)
+            return float("nan")
     import pandas as pd
 
     from pvscan import radiometry
@@ -867,14 +895,6 @@ def expected_module_apparent_c(flight: Any, pipeline: Any = None) -> float:
     return float(np.asarray(radiometry.apparent_from_true(t_true, **kw)).reshape(-1)[0])
 
 
-def _expected_from_flight(flight) -> float | None:
-    from pvscan.errors import PvscanError
-
-    try:
-        return expected_module_apparent_c(flight)
-    except (PvscanError, AttributeError, TypeError, ValueError) as exc:
-        logger.info("register: no expected module temperature for the plausibility test (%s)", exc)
-        return None
 
 
 def _module_samples(orthos, tiles, geoms, cfg):
@@ -1320,7 +1340,7 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
     # 6. physical plausibility: among candidate shifts that score close to the best, the
     # module glass must look like sunlit modules at the flight's conditions
     if expected_apparent_c is None and flight is not None:
-        expected_apparent_c = _expected_from_flight(flight)
+        expected_apparent_c = expected_module_apparent_c(flight, strict=False)
     if (bool(cfg["plausibility"]) and expected_apparent_c is not None
             and math.isfinite(float(expected_apparent_c))):
         alt = _plausibility(orthos, tiles, geoms, blocks, phys_all, to_m, (sx, sy),

@@ -722,6 +722,15 @@ def test_expected_module_apparent_temperature_follows_faiman(tmp_path_factory):
     assert t_true == pytest.approx(float(pvlib.temperature.faiman(820.0, 24.0, 2.5)), abs=0.01)
     # glass emits less than a black body and reflects a cold sky: it reads cooler than it is
     assert t_app < t_true
+    # a flight without irradiance: an error, or NaN (plausibility test off) when not strict
+    import dataclasses
+
+    from pvscan.errors import ConditionsError
+
+    bare = dataclasses.replace(fl, conditions=dataclasses.replace(c, poa_irradiance_w_m2=None, series=None))
+    with pytest.raises(ConditionsError):
+        expected_module_apparent_c(bare)
+    assert math.isnan(expected_module_apparent_c(bare, strict=False))
 
 
 def test_simulated_tracker_rows_registered_on_the_glass(tmp_path_factory):
