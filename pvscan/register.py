@@ -1047,8 +1047,14 @@ def _plausibility(orthos, tiles, geoms, blocks, phys_all, to_m, fitted, expected
     # among those the temperature cannot tell apart (e.g. one module pitch along a row:
     # glass either way), the correlation decides
     d_min = min(t[1] for t in better)
-    c, d_c, t_c, score = max((t for t in better if t[1] <= d_min + 0.5 * margin), key=lambda t: t[3])
+    tied = sorted((t for t in better if t[1] <= d_min + 0.5 * margin), key=lambda t: -t[3])
+    c, d_c, t_c, score = tied[0]
     factor = min(max((d_fit - d_c) / (2.0 * margin), 0.0), 1.0)
+    # a rival the temperature cannot tell apart, scoring nearly as well, leaves the
+    # choice ambiguous: the confidence falls with the correlation's own distinctness
+    rivals = [t[3] for t in tied[1:] if math.hypot(t[0][0] - c[0], t[0][1] - c[1]) > radius]
+    if rivals and score > 0:
+        factor *= min(max((1.0 - max(rivals) / score) / float(cfg["distinct_full"]), 0.0), 1.0)
     note = (f"{head}; candidate ({c[0]:+.2f}, {c[1]:+.2f}) m (correlation score {score:.2f} of the best) "
             f"reads {t_c:.1f} degC and was taken instead")
     return note, (c, factor)
@@ -1209,12 +1215,24 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
 
     best_m = np.array([to_m(bd, c[0][0][3], c[0][0][4]) for bd, c in zip(blocks, cands_all)])
     confs = np.array([bd.record.confidence for bd in blocks])
+    if expected_apparent_c is None and flight is not None:
+        expected_apparent_c = expected_module_apparent_c(flight, strict=False)
+    plausible = (bool(cfg["plausibility"]) and expected_apparent_c is not None
+                 and math.isfinite(float(expected_apparent_c)))
+    switch, note = None, ""
     if confs.max() <= 0:
         for bd, bm in zip(blocks, best_m):
             bd.record.dx, bd.record.dy = float(bm[0]), float(bm[1])
         reg.measured_m = (float(np.median(best_m[:, 0])), float(np.median(best_m[:, 1])))
-        return _finish_weak(reg, cfg, "the image does not constrain the layout position "
-                                      "(no block has a distinct correlation peak)")
+        if plausible:
+            # no block is distinct: the glass temperature may still pick one candidate
+            note, switch = _plausibility(orthos, tiles, geoms, blocks, phys_all, to_m, reg.measured_m,
+                                         float(expected_apparent_c), cfg)
+        if switch is None:
+            if note:
+                reg.notes.append(note)
+            return _finish_weak(reg, cfg, "the image does not constrain the layout position "
+                                          "(no block has a distinct correlation peak)")
     cons = np.array([_weighted_median(best_m[:, 0], confs + 1e-12 * (confs <= 0)),
                      _weighted_median(best_m[:, 1], confs + 1e-12 * (confs <= 0))])
     def fit(lists, cons, conf_of=None):
@@ -1231,13 +1249,18 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
                            np.array([(c[2] - med) / max(all_c[0][2] - med, 1e-300) for c in all_c])))
             cm = np.array([to_m(bd, c[3], c[4]) for c in cands])
             k = int(np.argmin(np.hypot(cm[:, 0] - cons[0], cm[:, 1] - cons[1])))
-            if k != 0:
+            if conf_of is not None:
+                # the plausibility test chose the shift: the block's confidence comes from
+                # the chosen peak's own height and the test's margin
+                if k != 0:
+                    rec.note = (rec.note + "; " if rec.note else "") + \
+                        f"took candidate {k + 1} of {len(cands)}, nearest the physically plausible shift"
+                rec.confidence = conf_of(bd, cands[k], med)
+            elif k != 0:
                 rec.note = (rec.note + "; " if rec.note else "") + \
                     f"periodic ambiguity: took candidate {k + 1} of {len(cands)} nearest the consensus"
                 # a block that needed the consensus to decide cannot add confidence of its own
                 rec.confidence *= (cands[k][2] - med) / (cands[0][2] - med) if cands[0][2] > med else 0.0
-                if conf_of is not None:
-                    rec.confidence = conf_of(bd, cands[k], med)
                 if rec.confidence <= 0:
                     rec.confidence = 1e-3
             rec.dx, rec.dy = float(cm[k, 0]), float(cm[k, 1])
@@ -1335,19 +1358,16 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
 
     n_notes = len(reg.notes)
     saved = [(bd.record.confidence, bd.record.note) for bd in blocks]
-    sx, sy = fit(cands_all, cons)
-
-    # 6. physical plausibility: among candidate shifts that score close to the best, the
-    # module glass must look like sunlit modules at the flight's conditions
-    if expected_apparent_c is None and flight is not None:
-        expected_apparent_c = expected_module_apparent_c(flight, strict=False)
-    if (bool(cfg["plausibility"]) and expected_apparent_c is not None
-            and math.isfinite(float(expected_apparent_c))):
-        alt = _plausibility(orthos, tiles, geoms, blocks, phys_all, to_m, (sx, sy),
-                            float(expected_apparent_c), cfg)
-        note, switch = alt
-        if switch is not None:
-            centre, factor = switch
+    if switch is None:
+        sx, sy = fit(cands_all, cons)
+        # 6. physical plausibility: among candidate shifts that score close to the best,
+        # the module glass must look like sunlit modules at the flight's conditions
+        if plausible:
+            note, switch = _plausibility(orthos, tiles, geoms, blocks, phys_all, to_m, (sx, sy),
+                                         float(expected_apparent_c), cfg)
+    if switch is not None:
+        centre, factor = switch
+        if True:
             for bd, (c0, n0) in zip(blocks, saved):
                 bd.record.confidence, bd.record.note = c0, n0
             del reg.notes[n_notes:]
@@ -1365,9 +1385,9 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
 
             lists = [(ext, ext, med) for ext, med, _, _ in phys_all]
             sx, sy = fit(lists, np.asarray(centre, float), conf_of)
-        if note:
-            reg.notes.append(note)
-            logger.info("register: %s", note)
+    if note:
+        reg.notes.append(note)
+        logger.info("register: %s", note)
     inl = np.array([bd.record.used for bd in blocks], bool)
 
     n_used = int(inl.sum())

@@ -684,6 +684,10 @@ def test_tracker_rows_are_not_taken_for_their_shadow(shift, seed):
     # switched off, the correlation's choice stands
     off = estimate_shift(orthos, mods, {"plausibility": False}, expected_apparent_c=glass)
     assert err(off, shadow) < TOL_M
+    # an expectation nothing in the image meets (20 K too warm) moves nothing
+    wrong = estimate_shift(orthos, mods, {}, expected_apparent_c=glass + 20.0)
+    assert err(wrong, shadow) < TOL_M
+    assert any("fit kept" in n for n in wrong.notes), wrong.notes
 
 
 def test_plausibility_keeps_a_correct_fit():
