@@ -915,7 +915,7 @@ def _module_samples(orthos, tiles, geoms, cfg):
     # w x l rectangle), so the points stay on the glass at a slightly wrong shift
     inset = float(cfg["plausibility_inset"]) * np.where(perim > 0, 2.0 * area / np.maximum(perim, 1e-12), 0.0)
     inner = shapely.buffer(g, -inset)
-    reach = float(cfg["max_shift_m"]) * float(cfg["guard_factor"]) + 0.5
+    reach = float(cfg["max_shift_m"]) + 0.5  # candidates lie within the search radius
     bounds = [(_tile_attr(t, "bounds"), _tile_attr(t, "transform"), int(_tile_attr(t, "width")),
                int(_tile_attr(t, "height"))) for t in tiles]
     out = []
