@@ -1367,24 +1367,23 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
                                          float(expected_apparent_c), cfg)
     if switch is not None:
         centre, factor = switch
-        if True:
-            for bd, (c0, n0) in zip(blocks, saved):
-                bd.record.confidence, bd.record.note = c0, n0
-            del reg.notes[n_notes:]
-            snr_scale = max(snr_full - snr_min, 1e-9)
-            by_block = {id(b): e for b, e in zip(blocks, phys_all)}
+        for bd, (c0, n0) in zip(blocks, saved):
+            bd.record.confidence, bd.record.note = c0, n0
+        del reg.notes[n_notes:]
+        snr_scale = max(snr_full - snr_min, 1e-9)
+        by_block = {id(b): e for b, e in zip(blocks, phys_all)}
 
-            def conf_of(bd, cand, med):
-                # the plausibility test, not the consensus, decided: the block keeps the
-                # confidence of the chosen peak's own SNR, scaled by the test's margin
-                ext, med_b, snr, ok = by_block[id(bd)]
-                if not ok or ext[0][2] <= med_b:
-                    return 1e-3
-                snr_c = snr * (cand[2] - med_b) / (ext[0][2] - med_b)
-                return max(min(max((snr_c - snr_min) / snr_scale, 0.0), 1.0) * factor, 1e-3)
+        def conf_of(bd, cand, med):
+            # the plausibility test, not the consensus, decided: the block keeps the
+            # confidence of the chosen peak's own SNR, scaled by the test's margin
+            ext, med_b, snr, ok = by_block[id(bd)]
+            if not ok or ext[0][2] <= med_b:
+                return 1e-3
+            snr_c = snr * (cand[2] - med_b) / (ext[0][2] - med_b)
+            return max(min(max((snr_c - snr_min) / snr_scale, 0.0), 1.0) * factor, 1e-3)
 
-            lists = [(ext, ext, med) for ext, med, _, _ in phys_all]
-            sx, sy = fit(lists, np.asarray(centre, float), conf_of)
+        lists = [(ext, ext, med) for ext, med, _, _ in phys_all]
+        sx, sy = fit(lists, np.asarray(centre, float), conf_of)
     if note:
         reg.notes.append(note)
         logger.info("register: %s", note)
