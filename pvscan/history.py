@@ -182,15 +182,9 @@ ANOMALY_COLUMNS = ("delta_t_k", "delta_t_norm_k", "t_max_c", "power_loss_w",
 
 
 def _read_json(path: Path) -> Any:
-    try:
-        with open(path, encoding="utf-8") as fh:
-            return json.load(fh)
-    except FileNotFoundError:
-        raise HistoryError(f"{path}: file not found (not a pvscan inspect result folder?)") from None
-    except json.JSONDecodeError as exc:
-        raise HistoryError(f"{path}: not valid JSON: {exc.msg} at line {exc.lineno}") from None
-    except OSError as exc:
-        raise HistoryError(f"{path}: cannot read: {exc.strerror}") from None
+    from pvscan.resources import read_json_file
+
+    return read_json_file(path, HistoryError, "file not found (not a pvscan inspect result folder?)")
 
 
 def _features(path: Path) -> list[dict]:

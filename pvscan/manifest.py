@@ -15,13 +15,12 @@ Examples
 from __future__ import annotations
 
 import difflib
-import tomllib
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
 
 from pvscan.errors import ManifestError
-from pvscan.resources import describe_error, load_schema, schema_errors
+from pvscan.resources import describe_error, load_schema, read_toml_file, schema_errors
 
 __all__ = [
     "Flight",
@@ -438,15 +437,5 @@ def load_flight(path: str | Path, check_files: bool = True) -> Flight:
         range, missing referenced file; the message names the file and the key.
     """
     path = Path(path)
-    try:
-        with open(path, "rb") as fh:
-            data = tomllib.load(fh)
-    except FileNotFoundError:
-        raise ManifestError(f"{path}: flight manifest not found") from None
-    except IsADirectoryError:
-        raise ManifestError(f"{path}: is a folder, not a flight manifest") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise ManifestError(f"{path}: not valid TOML: {exc}") from None
-    except OSError as exc:
-        raise ManifestError(f"{path}: cannot read: {exc.strerror}") from None
+    data = read_toml_file(path, ManifestError, "flight manifest")
     return flight_from_dict(data, path, check_files=check_files)

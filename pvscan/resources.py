@@ -39,3 +39,44 @@ def describe_error(err: jsonschema.ValidationError, prefix: str = "") -> str:
         return f"missing key {where}{missing[0]}"
     where = f"{prefix}{path}" if (prefix or path) else "(top level)"
     return f"key {where}: {err.message}"
+
+
+def read_toml_file(path, error_cls, what: str = "file") -> dict:
+    """Parse a TOML file, mapping every failure to ``error_cls`` with a one-line message.
+
+    Parameters
+    ----------
+    path : path-like
+    error_cls : type
+        A :class:`pvscan.errors.PvscanError` subclass.
+    what : str
+        What the file is, for the "not found" message (e.g. "flight manifest").
+    """
+    import tomllib
+
+    path = Path(path)
+    try:
+        with open(path, "rb") as fh:
+            return tomllib.load(fh)
+    except FileNotFoundError:
+        raise error_cls(f"{path}: {what} not found") from None
+    except IsADirectoryError:
+        raise error_cls(f"{path}: is a folder, not a {what}") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise error_cls(f"{path}: not valid TOML: {exc}") from None
+    except OSError as exc:
+        raise error_cls(f"{path}: cannot read: {exc.strerror}") from None
+
+
+def read_json_file(path, error_cls, missing: str = "file not found"):
+    """Parse a JSON file, mapping every failure to ``error_cls`` with a one-line message."""
+    path = Path(path)
+    try:
+        with open(path, encoding="utf-8") as fh:
+            return json.load(fh)
+    except FileNotFoundError:
+        raise error_cls(f"{path}: {missing}") from None
+    except json.JSONDecodeError as exc:
+        raise error_cls(f"{path}: not valid JSON: {exc.msg} at line {exc.lineno}") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise error_cls(f"{path}: cannot read: {getattr(exc, 'strerror', None) or exc}") from None

@@ -8,14 +8,13 @@ with ``pvscan inspect --pipeline FILE``; keys left out of the copy keep their de
 """
 from __future__ import annotations
 
-import tomllib
 from collections.abc import Mapping
 from pathlib import Path
 from types import MappingProxyType
 from typing import Any
 
 from pvscan.errors import PipelineError
-from pvscan.resources import DEFAULT_PIPELINE, SCHEMAS_DIR, describe_error, load_schema, schema_errors
+from pvscan.resources import DEFAULT_PIPELINE, SCHEMAS_DIR, describe_error, load_schema, read_toml_file, schema_errors
 
 __all__ = ["Pipeline", "load_pipeline", "SECTIONS"]
 
@@ -83,15 +82,7 @@ class Pipeline(Mapping):
 
 
 def _read_toml(path: Path) -> dict:
-    try:
-        with open(path, "rb") as fh:
-            return tomllib.load(fh)
-    except FileNotFoundError:
-        raise PipelineError(f"{path}: pipeline file not found") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise PipelineError(f"{path}: not valid TOML: {exc}") from None
-    except OSError as exc:
-        raise PipelineError(f"{path}: cannot read: {exc.strerror}") from None
+    return read_toml_file(path, PipelineError, "pipeline file")
 
 
 def validate_pipeline(data: Mapping, path: Path | None = None) -> None:

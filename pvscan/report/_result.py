@@ -7,7 +7,6 @@ unreadable raise :class:`pvscan.errors.OutputError` naming the file.
 """
 from __future__ import annotations
 
-import json
 import logging
 import math
 from collections.abc import Mapping, Sequence
@@ -251,15 +250,9 @@ def validity_checks(summary: Mapping) -> tuple[list[dict], bool | None]:
 
 
 def _read_json(path: Path) -> Any:
-    try:
-        with open(path, encoding="utf-8") as fh:
-            return json.load(fh)
-    except FileNotFoundError:
-        raise OutputError(f"{path}: file not found in the result folder") from None
-    except json.JSONDecodeError as exc:
-        raise OutputError(f"{path}: not valid JSON: {exc.msg} (line {exc.lineno})") from None
-    except OSError as exc:
-        raise OutputError(f"{path}: cannot read: {exc.strerror}") from None
+    from pvscan.resources import read_json_file
+
+    return read_json_file(path, OutputError, "file not found in the result folder")
 
 
 def _features(path: Path) -> pd.DataFrame:

@@ -10,13 +10,12 @@ from __future__ import annotations
 
 import copy
 import math
-import tomllib
 from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
 from pvscan.errors import SimulationError
-from pvscan.resources import describe_error, load_schema, schema_errors
+from pvscan.resources import describe_error, load_schema, read_toml_file, schema_errors
 
 __all__ = ["DEFAULTS", "DEFECT_KINDS", "load_scenario", "scenario_from_dict"]
 
@@ -257,15 +256,7 @@ def load_scenario(path: str | Path) -> dict:
         Missing file, invalid TOML, unknown key or a value out of range.
     """
     path = Path(path)
-    try:
-        with open(path, "rb") as fh:
-            data = tomllib.load(fh)
-    except FileNotFoundError:
-        raise SimulationError(f"{path}: scenario file not found") from None
-    except tomllib.TOMLDecodeError as exc:
-        raise SimulationError(f"{path}: not valid TOML: {exc}") from None
-    except OSError as exc:
-        raise SimulationError(f"{path}: cannot read: {exc.strerror}") from None
+    data = read_toml_file(path, SimulationError, "scenario file")
     sc = scenario_from_dict(data, str(path))
     sc["_path"] = str(path)
     return sc
