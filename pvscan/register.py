@@ -1088,8 +1088,10 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
         cooler shadow strip is replaced by the candidate whose modules look like modules.
     flight : Flight, optional
         Used only when ``expected_apparent_c`` is not given, to compute it with
-        :func:`expected_module_apparent_c` (skipped with a log line when the flight lacks
-        the conditions).
+        :func:`expected_module_apparent_c` and the default pipeline's ``[conditions]``,
+        ``[reference]`` and ``[radiometry]`` sections (skipped with a log line when the
+        flight lacks the conditions). A caller with its own pipeline passes
+        ``expected_apparent_c=expected_module_apparent_c(flight, pipeline, strict=False)``.
 
     Returns
     -------
