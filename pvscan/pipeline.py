@@ -113,7 +113,11 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         timings["layout"] = time.perf_counter() - t0
 
         t0 = time.perf_counter()
-        reg = register.estimate_shift(orthos, modules, settings["register"], progress=progress)
+        # the expected apparent glass temperature (Faiman + radiometry) settles candidate
+        # shifts that the image correlates alike, e.g. a tracker row and its ground shadow
+        expected = register.expected_module_apparent_c(flight, settings, strict=False)
+        reg = register.estimate_shift(orthos, modules, settings["register"], progress=progress,
+                                      expected_apparent_c=expected)
         shift = tuple(reg.shift_m) if reg.applied else (0.0, 0.0)
         # each module moves by the fitted (possibly drifting) shift at its own centre
         measured = register.apply_shift(modules, reg) if reg.applied else modules
