@@ -99,6 +99,7 @@ _CLASSIFY_DEFAULTS = {
     "substring_cover_min": 0.8,
     "substring_partial_max": 0.3,
     "substring_column_chi2_max": 4.0,
+    "substring_line_tol_m": 0.3,
     "hot_cell_min_k": 3.0,
     "hot_cell_whole_min": 0.5,
     "hot_cell_contrast_min": 0.5,
@@ -115,6 +116,7 @@ _CLASSIFY_DEFAULTS = {
     "open_string_run_z": 5.0,
     "open_string_ratio_min": 0.7,
     "open_string_end_z": 1.0,
+    "open_string_rest_max": 0.5,
     "pid_min_modules": 2,
     "pid_seed_z": 2.0,
     "pid_extend_z": 1.25,
@@ -532,6 +534,7 @@ def pattern_bypassed_substring(F: Features, cfg: Mapping, final: bool = True) ->
     col_chi2 = np.nan_to_num(col_chi2, nan=0.0)
     hit &= ~(col_chi2 > float(cfg["substring_column_chi2_max"]))
     hit &= ~_carried_across_edge(F, raised, hit)
+    hit &= ~_steps_on_one_line(F, raised, hit, float(cfg["substring_line_tol_m"]))
     conf = _conf(_fit(ratio), _quality(mean_raise, floor), np.clip((cover_in - cover_out), 0, 1))
     # region temperature: median of the raised substrings' measured medians
     temp = _nanmedian(np.where(raised, F.extra["sub_median"], np.nan), axis=1)
@@ -543,6 +546,71 @@ def pattern_bypassed_substring(F: Features, cfg: Mapping, final: bool = True) ->
         target.region[i] = "substring" if len(ks) == 1 else "substrings"
         target.boxes[i] = [(0.0, 1.0, k / B, (k + 1) / B) for k in ks]
     return single, multi
+
+
+def _steps_on_one_line(F: Features, raised: np.ndarray, candidates: np.ndarray, tol_m: float,
+                       reach_m: float = 40.0) -> np.ndarray:
+    """Candidates whose plateau edge lies on one straight line with another's in another row.
+
+    A mosaic seam is a straight step in the image; where it runs along the modules' long
+    side it raises part of a module in every row it crosses, and each looks like a
+    bypassed substring. Bypass diodes fail one module at a time, so two candidates in
+    different table rows whose raised/not-raised boundaries (lines along ``u``) lie within
+    ``tol_m`` of one line (and within ``reach_m`` of each other) are taken for a seam.
+    """
+    out = np.zeros(F.n, dtype=bool)
+    cand = np.flatnonzero(candidates)
+    if cand.size < 2 or "fu" not in F.extra:
+        return out
+    fu, fv, p0 = F.extra["fu"], F.extra["fv"], F.extra["p0"]
+    key = F.extra.get("row_key", np.arange(F.n))
+    B = F.nsub
+    lines = []   # (module, point, unit direction)
+    for i in cand:
+        steps = np.flatnonzero(raised[i, 1:] != raised[i, :-1])
+        d = fu[i] / max(float(np.hypot(*fu[i])), 1e-9)
+        for b in steps:
+            lines.append((int(i), p0[i] + 0.5 * fu[i] + (b + 1) / B * fv[i], d))
+    for a in range(len(lines)):
+        i, q, d = lines[a]
+        for b in range(len(lines)):
+            j, qj, dj = lines[b]
+            if j == i or key[j] == key[i]:
+                continue
+            w = qj - q
+            along = abs(float(w @ d))
+            across = abs(float(d[0] * w[1] - d[1] * w[0]))
+            parallel = abs(float(d[0] * dj[1] - d[1] * dj[0])) < 0.1
+            if parallel and across <= tol_m and along <= reach_m and _step_between(F, i, j, q, d, tol_m):
+                out[i] = out[j] = True
+    return out
+
+
+def _step_between(F: Features, i: int, j: int, q: np.ndarray, d: np.ndarray, tol_m: float) -> bool:
+    """True when every module the line crosses between candidates i and j shows the step too.
+
+    A seam raises every module it crosses; two real bypassed substrings that happen to lie
+    on one line have producing modules between them.
+    """
+    fu, fv, p0, centre = F.extra["fu"], F.extra["fv"], F.extra["p0"], F.extra["centre"]
+    B = F.nsub
+    step_i = abs(float(np.nanmax(F.Rsub[i]) - np.nanmin(F.Rsub[i])))
+    t_j = float((centre[j] - q) @ d)
+    w = centre - q
+    t = w @ d
+    off = np.abs(d[0] * w[:, 1] - d[1] * w[:, 0])
+    half_w = 0.5 * np.hypot(fv[:, 0], fv[:, 1])
+    lo, hi = sorted((0.0, t_j))
+    mid = np.flatnonzero((t > lo + 0.3) & (t < hi - 0.3) & (off < half_w) & F.ok)
+    mid = mid[(mid != i) & (mid != j)]
+    for m in mid:
+        vv = float((q - p0[m]) @ fv[m]) / max(float(fv[m] @ fv[m]), 1e-9)
+        b = int(round(vv * B))
+        if b < 1 or b > B - 1 or abs(vv - b / B) * np.sqrt(float(fv[m] @ fv[m])) > tol_m + 0.1:
+            return False
+        if abs(float(F.Rsub[m, b] - F.Rsub[m, b - 1])) < 0.5 * step_i:
+            return False
+    return True
 
 
 def _carried_across_edge(F: Features, raised: np.ndarray, candidates: np.ndarray) -> np.ndarray:
@@ -979,8 +1047,28 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
                     lo_end -= 1
                 while hi_end < len(idx) and F.ok[idx[hi_end]] and z[idx[hi_end]] >= end_z:
                     hi_end += 1
-                out.append([int(i) for i in idx[lo_end:hi_end]])
+                run = idx[lo_end:hi_end]
+                if F.extra.get("is_string", False) and not _string_opens_whole(F, cfg, idx, run):
+                    continue
+                out.append([int(i) for i in run])
     return out
+
+
+def _string_opens_whole(F: Features, cfg: Mapping, members, run) -> bool:
+    """False when the string's modules outside the run are clearly not open.
+
+    An open string carries no current in any of its modules, so all of them run
+    ``eta * G / U`` warmer; a run that covers only part of a string while at least two
+    other classified modules of it sit at a fraction ``open_string_rest_max`` of the rise
+    or less (median, against modules outside the string) is something else (a cloud
+    shadow or a seam raising part of a row over the neighbouring rows).
+    """
+    rest = np.setdiff1d(np.asarray(members), np.asarray(run))
+    rest = rest[F.ok[rest] & np.isfinite(F.extra["d_other"][rest])]
+    if rest.size < 2:
+        return True
+    level = float(np.median(F.extra["d_other"][rest]))
+    return level >= float(cfg["open_string_rest_max"]) * float(np.nanmedian(F.rise[run]))
 
 
 def _stands_out_of_its_row(F: Features, run, radius_m: float = 15.0) -> bool:
@@ -1186,7 +1274,7 @@ def _geometry(modules: pd.DataFrame, nsub: int) -> dict:
 
     return {"adjacent": adj, "sub_centres": centres, "edge_points": edges, "cross_row": cross,
             "along_row": along, "row_key": _row_keys(modules),
-            "centre": p0 + 0.5 * (fu + fv)}
+            "centre": p0 + 0.5 * (fu + fv), "p0": p0, "fu": fu, "fv": fv}
 
 
 def _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, ok, healthy, groups, pos, is_string,
@@ -1216,6 +1304,7 @@ def _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, ok, healthy, g
     shape_o = np.nan_to_num(_neighbour_median(F.cm - t_med[:, None, None], ro.neighbours), nan=0.0)
     F.extra["R_other"] = F.cm - ref_o[:, None, None] - shape_o
     sig_o = _robust_sigma(d_other[healthy & F.ok]) if (healthy & F.ok).sum() >= 3 else F.sig_mod
+    F.extra["is_string"] = bool(is_string)
     F.extra.update(ref_other=ref_o, d_other=d_other, rsub_other=rsub_o,
                    sig_other=sig_o if np.isfinite(sig_o) else F.sig_mod)
     runs = pattern_open_string(F, cfg, groups, pos)
