@@ -123,6 +123,7 @@ _CLASSIFY_DEFAULTS = {
     "pid_run_z": 4.0,
     "pid_excess_weight": 0.0,
     "pid_max_position": 0.5,
+    "pid_warm_min_k": 0.0,
     "precedence": ["open_string", "open_module", "bypassed_substring_multi", "bypassed_substring",
                    "junction_box", "pid", "soiling", "hot_cell_multi", "hot_cell"],
 }
@@ -1180,7 +1181,9 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     pid_extend_z)``, so a single weaker module between stronger ones does not end it),
     over at least ``pid_min_modules`` and at most the first ``pid_max_position`` of the
     string, the best run from the negative end having combined evidence
-    ``sum(z) / sqrt(n)`` of at least ``pid_run_z``.
+    ``sum(z) / sqrt(n)`` of at least ``pid_run_z``, and the run's median excess over
+    modules outside its string at least ``pid_warm_min_k`` (PID takes power away, so the
+    modules run warmer).
 
     Returns
     -------
@@ -1229,6 +1232,10 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
         # single weak module between stronger ones does not end the run)
         gain = np.cumsum(zz - float(cfg["pid_extend_z"]))
         k = int(np.argmax(gain[m_min - 1:])) + m_min
+        # PID takes power away, so the affected modules run warmer than modules outside
+        # their string (a seam or a shadow edge crossing the string's end need not)
+        if not float(np.nanmedian(d_o[idx[:k]])) >= float(cfg["pid_warm_min_k"]):
+            continue
         run = [int(i) for i in idx[:k]]
         out.append(run)
     return out
