@@ -89,6 +89,7 @@ _CLASSIFY_DEFAULTS = {
     "local_irradiance_max": 1.3,
     "open_ratio_min": 0.55,
     "open_ratio_max": 1.8,
+    "open_prior": 0.002,
     "open_other_share": 0.9,
     "open_uniform_iqr": 0.35,
     "open_uniform_floor_k": 0.8,
@@ -418,6 +419,43 @@ def _iqr(x, axis):
     return q[1] - q[0]
 
 
+def open_module_floor(rise, sigma, z_min: float, prior: float):
+    """Least module rise [K] called an open module: a likelihood-ratio test.
+
+    A healthy module's delta T scatters as ``N(0, sigma)`` (the module-to-module spread);
+    an open module's as ``N(rise, sigma)`` with ``rise = eta * G / U`` (the same spread,
+    shifted by the heat of the power it no longer delivers). With a prior share ``prior``
+    of open modules, the open hypothesis is the more probable above
+
+        ``rise / 2 + sigma**2 * ln((1 - prior) / prior) / rise``
+
+    (equal-variance Gaussian classes); the floor is that, and at least ``z_min * sigma``.
+    When the rise is many spreads the floor sits near half the rise; when it is only a few
+    (low irradiance, strong wind) it climbs above the rise, since then a warm healthy
+    module is likelier than an open one.
+
+    Parameters
+    ----------
+    rise : array-like
+        Open-module rise at each module [K].
+    sigma : float
+        Robust spread of healthy modules' delta T [K].
+    z_min : float
+        Least floor in spreads [-].
+    prior : float
+        Prior share of open modules among modules (0..1) [-].
+
+    Returns
+    -------
+    ndarray
+        Floor [K].
+    """
+    r = np.maximum(np.asarray(rise, float), 1e-6)
+    p = float(np.clip(prior, 1e-9, 0.5))
+    lr = r / 2.0 + sigma * sigma * np.log((1.0 - p) / p) / r
+    return np.maximum(z_min * sigma, lr)
+
+
 def pattern_open_module(F: Features, cfg: Mapping, rsub=None, dT=None, isolated: bool = True) -> Hits:
     """A whole module raised uniformly by about the open-module rise ``eta * G / U``.
 
@@ -447,7 +485,7 @@ def pattern_open_module(F: Features, cfg: Mapping, rsub=None, dT=None, isolated:
     ratio = dT / r
     spread = _iqr((F.R - F.base[:, None, None]).reshape(F.n, -1), axis=1)
     uniform = spread <= np.maximum(float(cfg["open_uniform_iqr"]) * r, float(cfg["open_uniform_floor_k"]))
-    floor = float(cfg["module_z"]) * F.sig_mod
+    floor = open_module_floor(r, F.sig_mod, float(cfg["module_z"]), float(cfg["open_prior"]))
     hit = (F.ok & (lo >= float(cfg["substring_raise_min"]) * r) & (ratio >= float(cfg["open_ratio_min"]))
            & (ratio <= float(cfg["open_ratio_max"])) & uniform & (dT >= floor))
     if isolated and "adjacent" in F.extra:
