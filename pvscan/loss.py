@@ -562,7 +562,10 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
     eta = float(eta) if eta is not None else pmax / (1000.0 * area)
     u0, u1 = float(cfg["u0"]), float(cfg["u1"])
     cell_p95 = getattr(stats, "cell_p95", None) if stats is not None and reference_c is not None else None
-    ref_c = np.asarray(reference_c, dtype=float) if cell_p95 is not None else None
+    ref_c = np.asarray(reference_c, dtype=float) if reference_c is not None else None
+    table = getattr(stats, "table", None) if stats is not None else None
+    t_mean = (np.asarray(table["t_mean_c"], dtype=float)
+              if table is not None and ref_c is not None and "t_mean_c" in table else None)
 
     stc = np.full(n_an, np.nan)
     flight = np.full(n_an, np.nan)
@@ -591,7 +594,15 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
         elif method == "thermal_deficit":
             ys = open_module_yardstick(g, ws, eta, t_mod if np.isfinite(t_mod) else None, gamma, u0, u1) \
                 if np.isfinite(g) and g > 0 and np.isfinite(ws) else np.nan
-            f = float(thermal_deficit_fraction(dt, ys))
+            if t_mean is not None and idx and np.isfinite(ys):
+                # heat balance per module: the heat added is U x area x the *mean* rise over the
+                # module (a patchy pattern's median under-reads it), as a share of the yardstick
+                rises = t_mean[idx] - ref_c[idx]
+                fs = np.asarray(thermal_deficit_fraction(rises, ys), dtype=float)
+                fs = np.where(np.isfinite(fs), fs, float(thermal_deficit_fraction(dt, ys)))
+                f = float(np.mean(fs))
+            else:
+                f = float(thermal_deficit_fraction(dt, ys))
             frac[pos] = f
             stc[pos] = f * pmax * m
             flight[pos] = f * p_op * m
