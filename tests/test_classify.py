@@ -565,3 +565,111 @@ def test_built_in_defaults_match_the_pipeline_file():
     for section, built_in in (("classify", _CLASSIFY_DEFAULTS), ("severity", _SEVERITY_DEFAULTS),
                               ("reference", thermal._REFERENCE_DEFAULTS)):
         assert p.to_dict()[section] == built_in, section
+
+
+# ---------------------------------------------------------------------------------------
+# failure modes seen on simulated flights, one small case each
+# ---------------------------------------------------------------------------------------
+
+def _with(**classify_keys):
+    """The pipeline settings with some [classify] keys changed (a plain mapping)."""
+    s = load_pipeline().to_dict()
+    s["classify"] = {**s["classify"], **classify_keys}
+    return s
+
+
+def test_part_of_a_string_raised_over_other_rows_is_not_an_open_string(rng):
+    # a shadow edge between the rows leaves modules 3..10 of string T0-0-R1 (12 modules)
+    # 0.8 x eta*G/U above the rows beside it while modules 1, 2, 11, 12 are not raised: an
+    # open string carries no current in any of its modules (common practice), so all twelve
+    # would be raised
+    p = Plant(rng)
+    m = p.modules
+    part = np.flatnonzero((m.string_id == "T0-0-R1").to_numpy() & m.table_col.between(3, 10).to_numpy())
+    p.cm[part] += 0.8 * open_rise()
+    an, _ = p.run()
+    assert "open_string" not in set(an.defect), an[["module_id", "defect"]]
+    # the rule is what keeps it quiet: without it the part is taken for an open string
+    an0, _ = p.run(settings=_with(open_string_rest_max=-100.0))
+    assert "open_string" in set(an0.defect)
+
+
+def _tracker_rows(rng, **kw):
+    """Three single-row tables one behind the other (tracker-like rows, 7 m pitch)."""
+    return Plant(rng, n_tables=1, table_rows=3, rows=1, cols=12, **kw)
+
+
+def test_seam_along_the_modules_across_rows_is_no_bypassed_substring(rng):
+    # a mosaic seam: a cooler image patch whose edges run straight up the rows, one along the
+    # boundary of the last substring of column 6, the other in the gap to column 7; in every
+    # row it crosses, two strips stand above the third by a plateau of about eta*G/U,
+    # aligned with the substring boundaries, like a double bypass
+    p = _tracker_rows(rng)
+    m = p.modules
+    x6 = float(m.fx0[(m.table_col == 6).to_numpy()].iloc[0])
+    xs, xe = x6 + 2.0 / 3.0 * WIDTH, x6 + WIDTH + 0.01
+    step = -0.9 * open_rise()
+    p.field(lambda x, y: np.where((x > xs) & (x < xe), step, 0.0))
+    an, _ = p.run()
+    assert not {"bypassed_substring", "bypassed_substring_multi"} & set(an.defect), an[["module_id", "defect"]]
+    # the rule is what keeps it quiet
+    an0, _ = p.run(settings=_with(substring_line_tol_m=-1.0))
+    assert set(an0.defect) == {"bypassed_substring_multi"} and len(an0) == 3
+
+
+def test_two_bypassed_substrings_on_one_line_with_producing_modules_between(rng):
+    # the same substring of the same column bypassed in rows 1 and 3: on one line, but the
+    # module of row 2 between them is healthy, so it is no seam
+    p = _tracker_rows(rng)
+    a, b = p.index(table="T0-0", row=1, col=6), p.index(table="T2-0", row=1, col=6)
+    p.bypass(a, [2])
+    p.bypass(b, [2])
+    an, _ = p.run()
+    assert found(an) == {a: "bypassed_substring", b: "bypassed_substring"}
+
+
+def test_edge_ring_pattern_on_cool_modules_is_not_pid(rng):
+    # an edge-weighted cell pattern at a string's negative end, but the modules run 1.5 K
+    # cooler than those outside the string: PID takes power away, so its modules run warmer
+    # (Faiman heat balance); this is not PID
+    p = Plant(rng, module_spread=0.6)
+    idx = p.pid("T1-1-R2", 4, f0=0.3)
+    p.cm[idx] -= 1.5 + np.median(p.cm[idx] - np.median(p.cm), axis=(1, 2))[:, None, None]
+    for i in idx:
+        p.truth.pop(int(i))
+    an, _ = p.run()
+    assert "pid" not in set(an.defect), an[["module_id", "defect"]]
+    an0, _ = p.run(settings=_with(pid_warm_min_k=-100.0))
+    assert "pid" in set(an0.defect)
+
+
+def test_open_module_floor_is_the_likelihood_ratio_boundary():
+    # at the floor the prior-weighted Gaussian densities of healthy N(0, s) and open
+    # N(rise, s) modules are equal (Bayes decision boundary; scipy.stats.norm as reference)
+    from scipy.stats import norm
+
+    from pvscan.classify import open_module_floor
+
+    s, prior = 0.6, 0.002
+    for rise in (1.9, 3.0, 4.2):
+        x = float(open_module_floor(rise, s, 0.0, prior))
+        assert (1 - prior) * norm.pdf(x, 0.0, s) == pytest.approx(prior * norm.pdf(x, rise, s), rel=1e-9)
+    # never below z_min spreads
+    assert float(open_module_floor(1.9, s, 10.0, prior)) == pytest.approx(10.0 * s)
+
+
+def test_warm_healthy_module_at_low_irradiance_and_wind_is_not_open(rng):
+    # 650 W/m2 and 5 m/s: eta*G/U is only ~1.9 K (pvlib Faiman) against a 0.6 K module
+    # spread; a healthy module 3.4 spreads warm (2.05 K, uniform like an open module) is
+    # likelier a warm healthy module than an open one
+    p = Plant(rng, poa=650.0, wind=5.0, module_spread=0.6, n_tables=3)
+    i = p.index(table="T1-1", row=1, col=6)
+    p.cm[i] += 2.05 - (np.median(p.cm[i]) - np.median(p.cm))
+    an, _ = p.run()
+    assert i not in found(an), an[["module_id", "defect"]]
+    # while an open module at 850 W/m2 and 2 m/s (rise ~4 K) is found
+    q = Plant(rng, module_spread=0.6, n_tables=3)
+    j = q.index(table="T1-1", row=1, col=6)
+    q.open(j)
+    an, _ = q.run()
+    assert found(an) == {j: "open_module"}
