@@ -54,6 +54,7 @@ __all__ = [
     "DEFECTS",
     "SPOT_DEFECTS",
     "pattern_open_module",
+    "open_module_floor",
     "pattern_bypassed_substring",
     "pattern_hot_cell",
     "pattern_junction_box",
@@ -631,7 +632,7 @@ def _step_between(F: Features, i: int, j: int, q: np.ndarray, d: np.ndarray, tol
     A seam raises every module it crosses; two real bypassed substrings that happen to lie
     on one line have producing modules between them.
     """
-    fu, fv, p0, centre = F.extra["fu"], F.extra["fv"], F.extra["p0"], F.extra["centre"]
+    fv, p0, centre = F.extra["fv"], F.extra["p0"], F.extra["centre"]
     B = F.nsub
     step_i = abs(float(np.nanmax(F.Rsub[i]) - np.nanmin(F.Rsub[i])))
     t_j = float((centre[j] - q) @ d)
