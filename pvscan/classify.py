@@ -106,7 +106,7 @@ _CLASSIFY_DEFAULTS = {
     "hot_cell_whole_min": 0.5,
     "hot_cell_contrast_min": 0.5,
     "hot_cell_peak_share": 0.6,
-    "hot_cell_merge_touching": False,
+    "hot_cell_merge_touching": True,
     "junction_box_min_k": 2.0,
     "junction_box_spot_max": 0.75,
     "junction_box_straddle_min": 0.4,
