@@ -596,11 +596,13 @@ def _steps_on_one_line(F: Features, raised: np.ndarray, candidates: np.ndarray, 
     side it raises part of a module in every row it crosses, and each looks like a
     bypassed substring. Bypass diodes fail one module at a time, so two candidates in
     different table rows whose raised/not-raised boundaries (lines along ``u``) lie within
-    ``tol_m`` of one line (and within ``reach_m`` of each other) are taken for a seam.
+    ``tol_m`` of one line (and within ``reach_m`` of each other) are taken for a seam, and
+    so is a candidate whose step carries on, at least half as high and of the same sign,
+    across the same line in the nearest module of another row the line crosses.
     """
     out = np.zeros(F.n, dtype=bool)
     cand = np.flatnonzero(candidates)
-    if cand.size < 2 or "fu" not in F.extra:
+    if cand.size < 1 or "fu" not in F.extra:
         return out
     fu, fv, p0 = F.extra["fu"], F.extra["fv"], F.extra["p0"]
     key = F.extra.get("row_key", np.arange(F.n))
@@ -611,6 +613,29 @@ def _steps_on_one_line(F: Features, raised: np.ndarray, candidates: np.ndarray, 
         d = fu[i] / max(float(np.hypot(*fu[i])), 1e-9)
         for b in steps:
             lines.append((int(i), p0[i] + 0.5 * fu[i] + (b + 1) / B * fv[i], d))
+    # the step carried on into the nearest module the line crosses in another row
+    centre, fv_all = F.extra["centre"], F.extra["fv"]
+    half_w = 0.5 * np.hypot(fv_all[:, 0], fv_all[:, 1])
+    for i, q, d in lines:
+        if out[i]:
+            continue
+        vv_i = float((q - p0[i]) @ fv[i]) / max(float(fv[i] @ fv[i]), 1e-9)
+        bi = int(round(vv_i * B))
+        step_i = float(F.Rsub[i, bi] - F.Rsub[i, bi - 1])
+        w = centre - q
+        t = w @ d
+        off = np.abs(d[0] * w[:, 1] - d[1] * w[:, 0])
+        near = np.flatnonzero((off < half_w) & (np.abs(t) <= reach_m) & (key != key[i]) & F.ok)
+        for side in (near[t[near] > 0], near[t[near] < 0]):
+            if not side.size:
+                continue
+            m = int(side[np.argmin(np.abs(t[side]))])
+            vv = float((q - p0[m]) @ fv[m]) / max(float(fv[m] @ fv[m]), 1e-9)
+            b = int(round(vv * B))
+            if 1 <= b <= B - 1 and abs(vv - b / B) * np.sqrt(float(fv[m] @ fv[m])) <= tol_m + 0.1:
+                step_m = float(F.Rsub[m, b] - F.Rsub[m, b - 1])
+                if np.sign(step_m) == np.sign(step_i) and abs(step_m) >= 0.5 * abs(step_i):
+                    out[i] = True
     for a in range(len(lines)):
         i, q, d = lines[a]
         for b in range(len(lines)):

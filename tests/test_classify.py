@@ -617,6 +617,24 @@ def test_seam_along_the_modules_across_rows_is_no_bypassed_substring(rng):
     assert set(an0.defect) == {"bypassed_substring_multi"} and len(an0) == 3
 
 
+def test_seam_step_carried_into_the_next_row_is_no_bypassed_substring(rng):
+    # the same kind of seam patch, over the first two rows only, its step weaker in the
+    # second (0.4 x eta*G/U: no candidate there) than in the first (0.75 x): the step carries
+    # on across the same line into the next row, which a bypass diode never does
+    p = _tracker_rows(rng)
+    m = p.modules
+    x6 = float(m.fx0[(m.table_col == 6).to_numpy()].iloc[0])
+    xs, xe = x6 + 2.0 / 3.0 * WIDTH, x6 + WIDTH + 0.01
+    r = open_rise()
+    y1 = float(m.fy0[(m.table_id == "T1-0").to_numpy()].iloc[0])
+    p.field(lambda x, y: np.where((x > xs) & (x < xe), np.where(y < y1 - 1.0, -0.75 * r,
+                                                                np.where(y < y1 + 3.0, -0.4 * r, 0.0)), 0.0))
+    an, _ = p.run()
+    assert not {"bypassed_substring", "bypassed_substring_multi"} & set(an.defect), an[["module_id", "defect"]]
+    an0, _ = p.run(settings=_with(substring_line_tol_m=-1.0))
+    assert list(an0.module_index) == [p.index(table="T0-0", row=1, col=6)]
+
+
 def test_two_bypassed_substrings_on_one_line_with_producing_modules_between(rng):
     # the same substring of the same column bypassed in rows 1 and 3: on one line, but the
     # module of row 2 between them is healthy, so it is no seam
