@@ -691,3 +691,19 @@ def test_warm_healthy_module_at_low_irradiance_and_wind_is_not_open(rng):
     q.open(j)
     an, _ = q.run()
     assert found(an) == {j: "open_module"}
+
+
+def test_junction_box_heat_filling_the_cells_at_the_box(rng):
+    # a hot junction box whose heat spreads over most of the two cells at the box (median
+    # rise 0.8 of the p95 rise, a box region a cell and a half deep): still the box, not two
+    # touching hot cells
+    p = Plant(rng)
+    i = p.index(col=9)
+    p.junction_box(i, 1.6)
+    A, C = p.spec.n_along, p.spec.n_across
+    p.cm[i, A - 1, [C // 2 - 1, C // 2]] += 6.4
+    p.peak[i] = 8.0
+    an, _ = p.run()
+    assert found(an) == {i: "junction_box"}
+    an0, _ = p.run(settings=_with(junction_box_spot_max=0.75))
+    assert found(an0) == {i: "hot_cell"}
