@@ -121,11 +121,11 @@ _CLASSIFY_DEFAULTS = {
     "open_string_rest_max": 0.5,
     "pid_min_modules": 2,
     "pid_seed_z": 2.0,
-    "pid_extend_z": 1.25,
+    "pid_extend_z": 1.4,
     "pid_run_z": 4.0,
     "pid_excess_weight": 0.0,
     "pid_max_position": 0.5,
-    "pid_warm_min_k": 0.0,
+    "pid_warm_min_z": -0.5,
     "precedence": ["open_string", "open_module", "bypassed_substring_multi", "bypassed_substring",
                    "junction_box", "pid", "soiling", "hot_cell_multi", "hot_cell"],
 }
@@ -1246,8 +1246,9 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     over at least ``pid_min_modules`` and at most the first ``pid_max_position`` of the
     string, the best run from the negative end having combined evidence
     ``sum(z) / sqrt(n)`` of at least ``pid_run_z``, and the run's median excess over
-    modules outside its string at least ``pid_warm_min_k`` (PID takes power away, so the
-    modules run warmer).
+    modules outside its string, in robust spreads of healthy modules, at least
+    ``pid_warm_min_z`` (PID takes power away, so the modules run warmer, not clearly
+    cooler).
 
     Returns
     -------
@@ -1298,7 +1299,7 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
         k = int(np.argmax(gain[m_min - 1:])) + m_min
         # PID takes power away, so the affected modules run warmer than modules outside
         # their string (a seam or a shadow edge crossing the string's end need not)
-        if not float(np.nanmedian(d_o[idx[:k]])) >= float(cfg["pid_warm_min_k"]):
+        if not float(np.nanmedian(z_o[idx[:k]])) >= float(cfg["pid_warm_min_z"]):
             continue
         run = [int(i) for i in idx[:k]]
         out.append(run)

@@ -657,7 +657,7 @@ def test_edge_ring_pattern_on_cool_modules_is_not_pid(rng):
         p.truth.pop(int(i))
     an, _ = p.run()
     assert "pid" not in set(an.defect), an[["module_id", "defect"]]
-    an0, _ = p.run(settings=_with(pid_warm_min_k=-100.0))
+    an0, _ = p.run(settings=_with(pid_warm_min_z=-100.0))
     assert "pid" in set(an0.defect)
 
 
