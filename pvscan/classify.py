@@ -598,7 +598,8 @@ def _steps_on_one_line(F: Features, raised: np.ndarray, candidates: np.ndarray, 
     different table rows whose raised/not-raised boundaries (lines along ``u``) lie within
     ``tol_m`` of one line (and within ``reach_m`` of each other) are taken for a seam, and
     so is a candidate whose step carries on, at least half as high and of the same sign,
-    across the same line in the nearest module of another row the line crosses.
+    across the same line in the nearest module the line crosses on either side (in
+    another row for portrait modules, the next module of the row for landscape ones).
     """
     out = np.zeros(F.n, dtype=bool)
     cand = np.flatnonzero(candidates)
@@ -625,7 +626,7 @@ def _steps_on_one_line(F: Features, raised: np.ndarray, candidates: np.ndarray, 
         w = centre - q
         t = w @ d
         off = np.abs(d[0] * w[:, 1] - d[1] * w[:, 0])
-        near = np.flatnonzero((off < half_w) & (np.abs(t) <= reach_m) & (key != key[i]) & F.ok)
+        near = np.flatnonzero((off < half_w) & (np.abs(t) <= reach_m) & (np.arange(F.n) != i) & F.ok)
         for side in (near[t[near] > 0], near[t[near] < 0]):
             if not side.size:
                 continue

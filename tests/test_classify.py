@@ -707,3 +707,23 @@ def test_junction_box_heat_filling_the_cells_at_the_box(rng):
     assert found(an) == {i: "junction_box"}
     an0, _ = p.run(settings=_with(junction_box_spot_max=0.75))
     assert found(an0) == {i: "hot_cell"}
+
+
+def test_seam_along_a_landscape_row_is_no_bypassed_substring(rng):
+    # landscape modules: substrings run along the row, so a seam patch along the row whose
+    # edge lies on the boundary of the lowest substring raises that strip in the module at
+    # the table end (0.9 x eta*G/U) and, weaker (0.47 x), in the next module:
+    # one straight step carried on along the row, not a failed diode
+    p = Plant(rng, orientation="landscape")
+    m = p.modules
+    row = (m.table_id == "T0-0").to_numpy() & (m.table_row == 1).to_numpy()
+    x2 = float(m.fx0[row & (m.table_col == 2).to_numpy()].iloc[0]) - 0.01
+    x3 = float(m.fx0[row & (m.table_col == 3).to_numpy()].iloc[0]) - 0.01
+    y0 = float(m.fy0[row].iloc[0])
+    r = open_rise()
+    p.field(lambda x, y: np.where((x < x3) & (y > y0 - 0.01) & (y < y0 + WIDTH / 3),
+                                  np.where(x < x2, 0.9 * r, 0.47 * r), 0.0))
+    an, _ = p.run()
+    assert not {"bypassed_substring", "bypassed_substring_multi"} & set(an.defect), an[["module_id", "defect"]]
+    an0, _ = p.run(settings=_with(substring_line_tol_m=-1.0))
+    assert p.index(table="T0-0", row=1, col=1) in set(an0.module_index)
