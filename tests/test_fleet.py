@@ -14,7 +14,7 @@ from pvscan.simulate import simulate_flight
 def _small(name, lat):
     return {"site": {"name": name, "lon": 9.5, "lat": lat},
             "array": {"table_rows": 2, "tables_per_row": 1, "rows": 2, "cols": 8},
-            "defects": {"open_module": 1}}
+            "defects": {"bypassed_substring": 1}}
 
 
 def test_fleet_runs_every_flight_and_isolates_failures(tmp_path):
@@ -29,7 +29,8 @@ def test_fleet_runs_every_flight_and_isolates_failures(tmp_path):
     assert "module.pmax_kw" in outcomes[2].error
     for o in outcomes[:2]:
         summary = json.loads((tmp_path / "out").joinpath(o.out_dir, "summary.json").read_text())
-        assert summary["counts"]["by_defect"].get("open_module") == 1
+        assert summary["counts"]["modules"] == 2 * 2 * 8  # table rows x module rows x cols
+        assert summary["counts"]["by_defect"].get("bypassed_substring") == 1
     # the two sites land in their own folders
     assert len({o.out_dir.split("/")[-2] for o in outcomes[:2]}) == 2
 
