@@ -564,8 +564,9 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
     cell_p95 = getattr(stats, "cell_p95", None) if stats is not None and reference_c is not None else None
     ref_c = np.asarray(reference_c, dtype=float) if reference_c is not None else None
     table = getattr(stats, "table", None) if stats is not None else None
-    t_mean = (np.asarray(table["t_mean_c"], dtype=float)
-              if table is not None and ref_c is not None and "t_mean_c" in table else None)
+    has_stats = table is not None and "t_mean_c" in table and "t_median_c" in table
+    t_mean = np.asarray(table["t_mean_c"], dtype=float) if has_stats else None
+    t_median = np.asarray(table["t_median_c"], dtype=float) if has_stats else None
 
     stc = np.full(n_an, np.nan)
     flight = np.full(n_an, np.nan)
@@ -594,10 +595,11 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
         elif method == "thermal_deficit":
             ys = open_module_yardstick(g, ws, eta, t_mod if np.isfinite(t_mod) else None, gamma, u0, u1) \
                 if np.isfinite(g) and g > 0 and np.isfinite(ws) else np.nan
-            if t_mean is not None and idx and np.isfinite(ys):
+            if t_mean is not None and idx and np.isfinite(ys) and np.isfinite(dt):
                 # heat balance per module: the heat added is U x area x the *mean* rise over the
-                # module (a patchy pattern's median under-reads it), as a share of the yardstick
-                rises = t_mean[idx] - ref_c[idx]
+                # module; a patchy pattern's median (delta_t_k, taken against the anomaly's own
+                # reference) under-reads it by the module's mean - median
+                rises = dt + (t_mean[idx] - t_median[idx])
                 fs = np.asarray(thermal_deficit_fraction(rises, ys), dtype=float)
                 fs = np.where(np.isfinite(fs), fs, float(thermal_deficit_fraction(dt, ys)))
                 f = float(np.mean(fs))

@@ -316,3 +316,21 @@ def test_loss_settings_schema_rejects_unknown_key():
         p.replace(loss={"energy_derate": 1.5})
     with pytest.raises(PipelineError, match="unknown key"):
         p.replace(loss={"derate_typo": 0.5})
+
+
+def test_patchy_pid_uses_the_mean_rise():
+    """Heat balance: heat added = U x area x the *mean* rise. A patchy PID module whose median
+    rise is a quarter of the open-module rise but whose mean is half has lost half its power."""
+    from types import SimpleNamespace
+
+    g, ws, ta = COND["poa_global"], COND["wind_speed"], COND["temp_air"]
+    t = float(pvlib.temperature.faiman(g, ta, ws))
+    yard = loss.open_module_yardstick(g, ws, SPEC.efficiency, t, SPEC.gamma_pmax_pct_per_k)
+    an = pd.DataFrame([_row("pid", "module", yard / 4)])
+    ref = np.array([40.0])
+    stats = SimpleNamespace(table=pd.DataFrame({"t_median_c": ref + yard / 4, "t_mean_c": ref + yard / 2}))
+    out = loss.estimate_loss(an, SPEC, COND, {"specific_yield_kwh_per_kwp": 1000.0}, stats=stats,
+                             reference_c=ref)
+    assert out["power_loss_w"].iloc[0] == pytest.approx(200.0, rel=1e-9)
+    plain = loss.estimate_loss(an, SPEC, COND, {"specific_yield_kwh_per_kwp": 1000.0})
+    assert plain["power_loss_w"].iloc[0] == pytest.approx(100.0, rel=1e-9)
