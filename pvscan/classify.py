@@ -518,7 +518,7 @@ def pattern_bypassed_substring(F: Features, cfg: Mapping, final: bool = True) ->
         ``bypassed_substring`` and ``bypassed_substring_multi``; region temperature = the
         median of the raised substrings.
     """
-    n, B, C = F.n, F.nsub, F.n_across
+    n, B = F.n, F.nsub
     r = F.rise
     lo = _nanmin(F.Rsub, axis=1)
     raise_k = F.Rsub - lo[:, None]
@@ -879,8 +879,6 @@ def pattern_junction_box(F: Features, cfg: Mapping) -> Hits:
         Region ``spot``; region temperature = the highest p95 of the spot's cells.
     """
     A, C, n = F.n_along, F.n_across, F.n
-    uc = (np.arange(A) + 0.5) / A
-    vc = (np.arange(C) + 0.5) / C
     X = F.R - F.base[:, None, None]
     X95 = F.R95 - F.base[:, None, None]
     thr = max(float(cfg["junction_box_min_k"]), float(cfg["noise_z"]) * F.sig_cell)

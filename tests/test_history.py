@@ -20,7 +20,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 from click.testing import CliRunner
-from pyproj import Geod, Transformer
+from pyproj import Transformer
 from shapely.geometry import Polygon, mapping
 
 from pvscan import history as H
