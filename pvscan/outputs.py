@@ -51,6 +51,7 @@ from pvscan.errors import OutputError
 from pvscan.resources import describe_error, load_schema, schema_errors
 
 __all__ = [
+    "atomic_path",
     "atomic_write",
     "staging_dir",
     "to_jsonable",
@@ -148,6 +149,32 @@ def _fsync_dir(path: Path) -> None:
         pass
     finally:
         os.close(fd)
+
+
+@contextlib.contextmanager
+def atomic_path(path: str | os.PathLike, suffix: str = ".tmp") -> Iterator[Path]:
+    """Yield a temporary sibling path for a writer (e.g. GDAL) that needs a file name; on
+    success the file is fsync'ed and renamed over ``path``, on any failure it is removed.
+
+    Raises
+    ------
+    OutputError
+        If the file cannot be written (the message names the file).
+    """
+    path = Path(path)
+    tmp = path.with_name(f".{path.stem}.{uuid.uuid4().hex[:8]}{suffix}")
+    try:
+        yield tmp
+        with open(tmp, "rb+") as fh:
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException as exc:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        if isinstance(exc, OSError):
+            raise OutputError(f"{path}: cannot write: {exc.strerror or exc}") from None
+        raise
+    _fsync_dir(path.parent)
 
 
 def atomic_write(path: str | os.PathLike, data: bytes | str) -> Path:
@@ -877,8 +904,7 @@ def write_geopackage(path: str | os.PathLike, modules, anomalies, workorders, se
     if len(an):
         an = an.set_geometry([g if g is None or isinstance(g, MultiPolygon) else MultiPolygon([g])
                               if isinstance(g, Polygon) else g for g in an.geometry], crs=an.crs)
-    tmp = path.with_name(f".{path.stem}.{uuid.uuid4().hex[:8]}.tmp.gpkg")
-    try:
+    with atomic_path(path, suffix=".tmp.gpkg") as tmp:
         for layer, frame, gtype in (("modules", mod, None), ("anomalies", an, "MultiPolygon"),
                                     ("workorders", workorders, "Point")):
             frame = _flatten_lists(gpd.GeoDataFrame(frame).reset_index(drop=True))
@@ -886,15 +912,6 @@ def write_geopackage(path: str | os.PathLike, modules, anomalies, workorders, se
             if len(frame) == 0 and gtype:
                 kwargs["geometry_type"] = gtype
             frame.to_file(tmp, layer=layer, driver="GPKG", engine="pyogrio", **kwargs)
-        with open(tmp, "rb+") as fh:
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException as exc:
-        with contextlib.suppress(OSError):
-            os.unlink(tmp)
-        if isinstance(exc, OSError):
-            raise OutputError(f"{path}: cannot write: {exc.strerror or exc}") from None
-        raise
     return path
 
 

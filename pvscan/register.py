@@ -1506,9 +1506,6 @@ def align_flight(flight: Any, settings: Mapping | None = None, out_path: Any = N
     OutputError
         ``out_path`` exists without ``overwrite``, or cannot be written.
     """
-    import contextlib
-    import os
-    import uuid
     from pathlib import Path
 
     from pvscan.errors import OutputError
@@ -1528,17 +1525,8 @@ def align_flight(flight: Any, settings: Mapping | None = None, out_path: Any = N
         reg = estimate_shift(orthos, modules, settings, progress=progress, flight=flight)
     moved = apply_shift(modules, reg)
     if out_path is not None:
-        tmp = out_path.with_name(f".{out_path.stem}.{uuid.uuid4().hex[:8]}.tmp.gpkg")
-        try:
-            frame = moved.reset_index(drop=True)
-            frame.to_file(tmp, layer="modules", driver="GPKG", engine="pyogrio")
-            with open(tmp, "rb+") as fh:
-                os.fsync(fh.fileno())
-            os.replace(tmp, out_path)
-        except BaseException as exc:
-            with contextlib.suppress(OSError):
-                os.unlink(tmp)
-            if isinstance(exc, OSError):
-                raise OutputError(f"{out_path}: cannot write: {exc.strerror or exc}") from None
-            raise
+        from pvscan.outputs import atomic_path
+
+        with atomic_path(out_path, suffix=".tmp.gpkg") as tmp:
+            moved.reset_index(drop=True).to_file(tmp, layer="modules", driver="GPKG", engine="pyogrio")
     return reg, moved
