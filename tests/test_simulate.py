@@ -46,7 +46,7 @@ TINY = {
 def _quiet(**over):
     """TINY with no spreads, constant conditions, so model values are exact."""
     sc = json.loads(json.dumps(TINY))
-    sc["conditions"] = {"module_spread_k": 0.0, "cell_spread_k": 0.0}
+    sc["conditions"] = {"module_spread_k": 0.0, "measurement_spread_k": 0.0, "cell_spread_k": 0.0}
     for k, v in over.items():
         sc.setdefault(k, {}).update(v)
     return sc
@@ -463,3 +463,25 @@ def test_more_defects_than_room_warns():
     with pytest.warns(PvscanWarning, match="defects.open_module: no free module left"):
         scene = build_scene(dict(TINY, defects={"open_module": 40}), 1)
     assert 0 < len(scene.defects) < 40
+
+
+def test_module_spread_scales_with_the_rise_over_the_air():
+    # Physics: a module cooled by U + dU runs -(T - T_air) * dU / U off its neighbours
+    # (Faiman heat balance, D. Faiman 2008), so the thermal spread shrinks with G / U(v);
+    # the measurement spread does not. Halving G and raising the wind from 1 to 5 m/s
+    # scales the thermal part by (500 / 59.2) / (1000 / 31.84) = 0.269.
+    def spread(g, v):
+        sc = _quiet(conditions={"poa_irradiance_w_m2": g, "wind_m_s": v, "module_spread_k": 0.8,
+                                "measurement_spread_k": 0.3, "varying": False},
+                    array={"table_rows": 4, "tables_per_row": 4, "cols": 12})
+        scene = build_scene(sc, 5)
+        healthy = np.setdiff1d(np.arange(len(scene.temp_healthy)), scene._defect_modules)
+        base = faiman(scene.poa_local, scene.temp_air, scene.wind, scene.u0, scene.u1)
+        return float(np.std((scene.temp_healthy - base)[healthy]))
+
+    s_ref, s_low = spread(1000.0, 1.0), spread(500.0, 5.0)
+    expect_ref = np.hypot(0.8, 0.3)
+    expect_low = np.hypot(0.8 * (500 / (25 + 6.84 * 5)) / (1000 / (25 + 6.84)), 0.3)
+    assert abs(s_ref - expect_ref) < 0.15 * expect_ref
+    assert abs(s_low - expect_low) < 0.15 * expect_low
+    assert s_low < 0.6 * s_ref

@@ -95,6 +95,7 @@ DEFAULTS: dict[str, Any] = {
         "u0": 25.0,
         "u1": 6.84,
         "module_spread_k": 0.6,
+        "measurement_spread_k": 0.25,
         "cell_spread_k": 0.25,
         "frame_drop": 0.35,
         "varying": False,

@@ -6,8 +6,15 @@ Physics, in the order it is applied to a pixel:
    module's own irradiance ``G`` (lowered under a cloud shadow; for varying conditions
    the irradiance smoothed by the module's thermal inertia, see
    :func:`pvscan.simulate.flightpath.weather_series`), air temperature and wind at the
-   time it was imaged; plus a module-to-module spread (``conditions.module_spread_k``,
-   normal) and a cell-to-cell spread (``conditions.cell_spread_k``). The aluminium frame
+   time it was imaged; plus a module-to-module spread and a cell-to-cell spread
+   (``conditions.cell_spread_k``, normal). The module-to-module spread has two parts: a
+   thermal one (modules cooled a little better or worse, e.g. by their place in the
+   array: ``delta T = -(T - T_air) * delta U / U``, so it grows with the module's rise
+   over the air) given at the reference conditions 1000 W/m2 and 1 m/s
+   (``conditions.module_spread_k``) and scaled by ``(G / U(v)) / (1000 / U(1))`` like the
+   defect rises; and a measurement one that does not scale (glass emissivity and
+   reflection differences between modules, ``conditions.measurement_spread_k``),
+   added in quadrature. The aluminium frame
    (``array.frame_width_m``) runs cooler: ``T_frame = T - frame_drop * (T - T_air)``
    (common practice: frames are cooler than the glass).
 2. **Defects** add their rise in the module-local frame (:mod:`pvscan.simulate.defects`).
@@ -196,10 +203,14 @@ class Scene:
         self.poa_local = self.poa_thermal * self.cloud_factor(mods["cx"], mods["cy"])
         self.u_total = self.u0 + self.u1 * self.wind
         self.temp_healthy = faiman(self.poa_local, self.temp_air, self.wind, self.u0, self.u1)
-        self.temp_healthy = self.temp_healthy + mrng.normal(0.0, cond["module_spread_k"], n)
+        self.dt_open = self.geom.eta * self.poa_local / self.u_total
+        # module-to-module spread: thermal part scaled from the reference conditions like the
+        # defect rises (dt_open / dt_open_ref = (G / U) / (1000 / U(1))), measurement part not
+        spread = np.hypot(float(cond["module_spread_k"]) * self.dt_open / self.geom.dt_open_ref,
+                          float(cond["measurement_spread_k"]))
+        self.temp_healthy = self.temp_healthy + spread * mrng.normal(0.0, 1.0, n)
         self.cell_offset = mrng.normal(0.0, cond["cell_spread_k"],
                                        (n, self.geom.n_along, self.geom.n_across)).astype(np.float32)
-        self.dt_open = self.geom.eta * self.poa_local / self.u_total
         self.defects = place_defects(np.random.default_rng([self.seed, 7]), sc, fld, self.geom)
         self.defect_of = {d.module: d for d in self.defects}
         self._defect_modules = np.array(sorted(self.defect_of), dtype=np.int64)
