@@ -94,6 +94,13 @@ def test_scores_worked_by_hand(tmp_path):
     per = {a["defect"]: a for a in pl["per_anomaly"]}
     assert per["open_module"]["rel_error"] == pytest.approx(-10 / 410, abs=1e-6)
     assert per["open_string"]["n_modules"] == 2 and per["open_string"]["rel_error"] == -1.0
+    # the electrical/thermal-deficit classes together: true 410 + 820 = 1230 W; predicted only
+    # M0's 400 W (M1 is called a junction box, M7 a hot cell: not in those classes);
+    # M0 within 25 %, the missed open string not -> 1 of 2
+    g = pl["group"]
+    assert g["true_total_w"] == 1230.0 and g["predicted_total_w"] == 400.0
+    assert g["ratio"] == pytest.approx(400 / 1230, abs=1e-6)
+    assert g["n_anomalies"] == 2 and g["share_within_25pct"] == 0.5
     # healthy RMSE: all errors +-0.3 K -> 0.3 K, bias 0
     t = s["temperature"]
     assert t["healthy_rmse_k"] == pytest.approx(0.3, abs=1e-6)
