@@ -110,7 +110,7 @@ _CLASSIFY_DEFAULTS = {
     "junction_box_min_k": 2.0,
     "junction_box_spot_max": 0.85,
     "junction_box_straddle_min": 0.4,
-    "soiling_min_k": 1.5,
+    "soiling_min_norm_k": 2.0,
     "soiling_cover_min": 0.7,
     "soiling_top_max": 0.3,
     "open_string_min_modules": 2,
@@ -119,15 +119,18 @@ _CLASSIFY_DEFAULTS = {
     "open_string_ratio_min": 0.7,
     "open_string_end_z": 1.0,
     "open_string_rest_max": 0.5,
+    "open_string_row_radius_m": 5.0,
+    "open_string_row_share": 0.35,
     "pid_min_modules": 2,
     "pid_seed_z": 2.0,
     "pid_extend_z": 1.4,
     "pid_run_z": 4.0,
-    "pid_excess_weight": 0.0,
+    "pid_rest_z": 2.5,
+    "pid_excess_weight": 0.5,
     "pid_max_position": 0.5,
     "pid_warm_min_z": -0.5,
     "precedence": ["open_string", "open_module", "bypassed_substring_multi", "bypassed_substring",
-                   "junction_box", "pid", "soiling", "hot_cell_multi", "hot_cell"],
+                   "soiling", "junction_box", "pid", "hot_cell_multi", "hot_cell"],
 }
 
 _SEVERITY_DEFAULTS = {
@@ -371,10 +374,15 @@ def _features(modules, stats, conditions, module_spec, ref, nb, ok, cfg, cfg_ref
     sig_mod = 0.5 if not np.isfinite(sig_mod) else sig_mod
     sig_cell = 0.3 if not np.isfinite(sig_cell) else sig_cell
     split = str(_spec(module_spec, "junction_box", "edge") or "edge") == "split"
-    return Features(n=n, n_along=A, n_across=C, nsub=B, ok=ok, ref=ref, t_median=t_med, t_max=t_max,
+    # the open-module rise at the reference conditions, to scale rises given there
+    rise_ref = float(open_module_rise(eta, float(cfg_ref.get("g_ref_w_m2", 1000.0)),
+                                      float(cfg_ref.get("wind_ref_m_s", 1.0)), u0, u1))
+    F = Features(n=n, n_along=A, n_across=C, nsub=B, ok=ok, ref=ref, t_median=t_med, t_max=t_max,
                     dT=dT, rise=rise, cm=cm, cp=cp, R=R, R95=R95, Rsub=Rsub, base=base,
                     base_sub=base_sub, col_sub=col_sub, lower_u=lower_u, sig_cell=sig_cell,
                     sig_mod=sig_mod, split_box=split)
+    F.extra["rise_ref"] = rise_ref
+    return F
 
 
 def adjacent_modules(modules: pd.DataFrame, tol: float = 0.3) -> np.ndarray:
@@ -972,7 +980,10 @@ def pattern_soiling(F: Features, cfg: Mapping) -> Hits:
     prof, length = _edge_profile(F, X95)
     L = prof.shape[1]
     band = _nanmax(prof[:, :2], axis=1)
-    thr = max(float(cfg["soiling_min_k"]), float(cfg["noise_z"]) * F.sig_cell)
+    # least band rise: given at the reference conditions and scaled to each module's like
+    # any rise (the dirt's heat grows with G / U(v)), never below the camera's noise floor
+    thr = np.maximum(float(cfg["soiling_min_norm_k"]) * F.rise / F.extra.get("rise_ref", F.rise),
+                     float(cfg["noise_z"]) * F.sig_cell)
     with np.errstate(invalid="ignore"):
         up = prof >= 0.5 * band[:, None]
         # a missing line at the very edge (all cells too thin) does not end the band
@@ -1084,6 +1095,11 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
     z = d_o / sig
     lo = _nanmin(rsub_o, axis=1)
     spread = _iqr((F.R - F.base[:, None, None]).reshape(F.n, -1), axis=1)
+    # uniformity also against the shape of all neighbours, suspects included (the first
+    # pass): the modules of an open string share its raise and any image artefact that
+    # crosses the row, such as a mosaic seam's edge, which neighbours outside it do not
+    if "spread_all" in F.extra:
+        spread = np.fmin(spread, F.extra["spread_all"])
     uniform = spread <= np.maximum(float(cfg["open_uniform_iqr"]) * r, float(cfg["open_uniform_floor_k"]))
     with np.errstate(invalid="ignore"):
         cand = (F.ok & (z >= float(cfg["open_string_candidate_z"])) & uniform
@@ -1102,7 +1118,8 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
             zc = float(np.nansum(z[run]) / np.sqrt(len(run)))
             ratio = float(np.nanmedian(d_o[run]) / np.nanmedian(r[run]))
             if (zc >= float(cfg["open_string_run_z"]) and ratio >= float(cfg["open_string_ratio_min"])
-                    and not _raise_carries_on(F, run) and _stands_out_of_its_row(F, run)):
+                    and not _raise_carries_on(F, run) and _stands_out_of_its_row(F, run, float(cfg["open_string_row_radius_m"]),
+                                                               float(cfg["open_string_row_share"]))):
                 # an established run takes in end modules of its string that are raised,
                 # if less clearly (an open string is normally the whole string)
                 lo_end, hi_end = a, b
@@ -1135,12 +1152,15 @@ def _string_opens_whole(F: Features, cfg: Mapping, members, run) -> bool:
     return level >= float(cfg["open_string_rest_max"]) * float(np.nanmedian(F.rise[run]))
 
 
-def _stands_out_of_its_row(F: Features, run, radius_m: float = 15.0) -> bool:
-    """False when the run is not warmer than the rest of its own table row.
+def _stands_out_of_its_row(F: Features, run, radius_m: float = 5.0, share: float = 0.35) -> bool:
+    """False when the run is not warmer than the rest of its own table row nearby.
 
     The out-of-string reference comes from other rows, which under an irradiance gradient
-    (a cloud shadow's edge) can sit lower; the modules of the run's own row outside it
-    share its irradiance. Runs that fill their row are not checked.
+    (a cloud shadow's edge) can sit lower; the modules of the run's own row outside it,
+    within ``radius_m`` [m] of it, share its irradiance (the nearest ones best; farther
+    along, a mosaic seam crossing the row would decide). The run's median must exceed
+    theirs by ``share`` of its raise over the other rows. Runs that fill their row are
+    not checked.
     """
     key = F.extra.get("row_key")
     if key is None:
@@ -1158,7 +1178,7 @@ def _stands_out_of_its_row(F: Features, run, radius_m: float = 15.0) -> bool:
     if mates.size < 3:
         return True
     own = float(np.nanmedian(F.t_median[run]) - np.nanmedian(F.t_median[mates]))
-    return own >= 0.35 * float(np.nanmedian(F.extra["d_other"][run]))
+    return own >= share * float(np.nanmedian(F.extra["d_other"][run]))
 
 
 def _raise_carries_on(F: Features, run) -> bool:
@@ -1243,7 +1263,8 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     contrast keeps above ``pid_extend_z`` on balance (the end maximises ``sum(z -
     pid_extend_z)``, so a single weaker module between stronger ones does not end it),
     over at least ``pid_min_modules`` and at most the first ``pid_max_position`` of the
-    string, the best run from the negative end having combined evidence
+    string, the modules after the first reaching ``pid_rest_z`` by themselves (the best
+    prefix of them, ``sum(z) / sqrt(m)``), the best run from the negative end having combined evidence
     ``sum(z) / sqrt(n)`` of at least ``pid_run_z``, and the run's median excess over
     modules outside its string, in robust spreads of healthy modules, at least
     ``pid_warm_min_z`` (PID takes power away, so the modules run warmer, not clearly
@@ -1283,10 +1304,20 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
         # evidence of the first m modules, sum(z) / sqrt(m), peaks where PID stops showing
         max_len = max(int(np.floor(float(cfg["pid_max_position"]) * len(idx))), 1)
         zz = np.where(exclude[idx] | ~F.ok[idx], np.nan, z_ext[idx])[:max_len]
+        zr = np.where(exclude[idx] | ~F.ok[idx], np.nan, z[idx])[:max_len]
         if np.isnan(zz).any():
+            zr = zr[: int(np.argmax(np.isnan(zz)))]
             zz = zz[: int(np.argmax(np.isnan(zz)))]
         m_min = int(cfg["pid_min_modules"])
-        if len(zz) < m_min or np.min(zz[1:m_min]) < float(cfg["pid_extend_z"]):
+        if len(zz) < max(m_min, 2):
+            continue
+        # the modules after the first carry the cell pattern on by themselves (best prefix
+        # of their edge-ring contrast, sum(z) / sqrt(m)): one warm-edged module at a
+        # string's end is not PID, nor a string that a reflection or a seam warms as a
+        # whole; but one weaker module right after the first does not undo a string that
+        # shows the pattern further on
+        rest = np.cumsum(zr[1:]) / np.sqrt(np.arange(1, len(zr)))
+        if np.max(rest[max(m_min - 2, 0):]) < float(cfg["pid_rest_z"]):
             continue
         score = np.cumsum(zz) / np.sqrt(np.arange(1, len(zz) + 1))
         if np.max(score[m_min - 1:]) < float(cfg["pid_run_z"]):
@@ -1349,7 +1380,7 @@ def _geometry(modules: pd.DataFrame, nsub: int) -> dict:
 
 
 def _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, ok, healthy, groups, pos, is_string,
-           final=True):
+           final=True, spread_all=None):
     t_med = stats.table["t_median_c"].to_numpy(dtype=float)
     rr = local_reference(modules, t_med, healthy, cfg_ref, return_details=True)
     # a reference that excludes the module's own string (or row): a whole string raised
@@ -1360,6 +1391,8 @@ def _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, ok, healthy, g
                   ref_irr=0.5 * (rr.reference_c + ref_o))
     F.extra["sub_median"] = np.asarray(stats.sub_median, dtype=np.float64)
     F.extra["suspect"] = rr.suspect
+    if spread_all is not None:
+        F.extra["spread_all"] = spread_all
     F.extra.update(_geometry(modules, F.nsub))
     hits = _detect(F, cfg, final=final)
     # an open module is raised against both neighbourhoods: its row, and modules outside its
@@ -1457,7 +1490,8 @@ def classify(modules, stats, conditions, module_spec, settings=None, confidence_
         progress("classify", 1, 3)
     # pass 2: final, suspects excluded from every reference
     F, hits = _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, ok, ok & ~suspect,
-                     groups, pos, is_string)
+                     groups, pos, is_string,
+                     spread_all=_iqr((F1.R - F1.base[:, None, None]).reshape(F1.n, -1), axis=1))
     if progress:
         progress("classify", 2, 3)
     by = {h.defect: h for h in hits}

@@ -529,6 +529,33 @@ def test_pid_ring_contrast_finds_weak_modules(rng):
     assert {int(i) for i in idx[:2]} <= pid <= {int(i) for i in idx}
 
 
+def test_one_warm_edged_module_at_a_string_end_is_not_pid(rng):
+    # PID shunts the cells of several modules at the negative end (common practice); one
+    # module whose edge ring runs warm (a warm frame, a reflection) with healthy modules after
+    # it is not a PID string
+    p = Plant(rng, cols=12)
+    m = p.modules
+    idx = np.flatnonzero(m.string_id == "T0-1-R1")
+    first = int(idx[np.argmin(m.string_index.to_numpy()[idx])])
+    A, C = p.spec.n_along, p.spec.n_across
+    ii, jj = np.indices((A, C))
+    edge = (ii == 0) | (ii == A - 1) | (jj == 0) | (jj == C - 1)
+    p.cm[first] += np.where(edge, 1.2, 0.0)
+    an, _ = p.run()
+    assert "pid" not in set(an.defect)
+
+
+def test_pid_string_with_one_weak_module_after_the_first(rng):
+    # PID is patchy: a module next to the first may show little while the ones after it
+    # show the pattern again; the string is judged by the modules after the first together
+    p = Plant(rng, cols=12)
+    idx = p.pid("T0-1-R1", 5, f0=0.5)
+    p.cm[idx[1]] = np.median(p.cm[idx[1]])                 # second module: no ring pattern
+    an, _ = p.run()
+    pid = {i for i, d in found(an).items() if d == "pid"}
+    assert {int(idx[0]), int(idx[2])} <= pid <= {int(i) for i in idx}
+
+
 def test_bypassed_substring_under_a_cloud_shadow(rng):
     # a table under a shadow gets 60 % of the logged irradiance: its modules and the
     # bypassed strip run cooler and the strip's rise is 60 % of eta * G / U (pvlib Faiman);
