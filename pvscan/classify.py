@@ -120,6 +120,8 @@ _CLASSIFY_DEFAULTS = {
     "open_string_end_z": 1.0,
     "open_string_rest_max": 0.5,
     "open_string_row_radius_m": 5.0,
+    "open_string_cross_min": 0.4,
+    "open_string_cross_fail_max": 0.1,
     "open_string_row_share": 0.35,
     "pid_min_modules": 2,
     "pid_seed_z": 2.0,
@@ -1131,8 +1133,39 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
                 run = idx[lo_end:hi_end]
                 if F.extra.get("is_string", False) and not _string_opens_whole(F, cfg, idx, run):
                     continue
+                if not _raised_over_other_row_throughout(F, cfg, run):
+                    continue
                 out.append([int(i) for i in run])
     return out
+
+
+def _raised_over_other_row_throughout(F: Features, cfg: Mapping, run) -> bool:
+    """False when part of the run is not raised over the modules beside it in the other row.
+
+    An open string carries no current in any of its modules, so each one runs about the
+    open-module rise above the healthy module beside it in the table's other row. A mosaic
+    seam whose edge runs between two rows of a table and ends part-way along them raises
+    one row over the other only where the seam is. The share of the run's modules less
+    than ``open_string_cross_min`` of the rise above their other-row neighbour may be at
+    most ``open_string_cross_fail_max`` (defects are sparse: a defective neighbour is rare).
+    """
+    cross = F.extra.get("cross_row")
+    if cross is None:
+        return True
+    run = np.asarray(run)
+    j = cross[run]
+    members = set(run.tolist())
+    usable = np.array([jj >= 0 and int(jj) not in members for jj in j], bool)
+    if usable.any():
+        jj = np.maximum(j, 0)
+        usable &= F.ok[jj] & np.isfinite(F.t_median[jj])
+    if usable.sum() < 3:
+        return True
+    r = run[usable]
+    diff = F.t_median[r] - F.t_median[cross[r]]
+    with np.errstate(invalid="ignore"):
+        low = diff < float(cfg["open_string_cross_min"]) * F.rise[r]
+    return float(low.mean()) <= float(cfg["open_string_cross_fail_max"])
 
 
 def _string_opens_whole(F: Features, cfg: Mapping, members, run) -> bool:
