@@ -203,24 +203,9 @@ def atomic_write(path: str | os.PathLike, data: bytes | str) -> Path:
     """
     path = Path(path)
     payload = data.encode("utf-8") if isinstance(data, str) else bytes(data)
-    try:
-        fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    except OSError as exc:
-        raise OutputError(f"{path}: cannot write: {exc.strerror or exc}") from None
-    try:
-        with os.fdopen(fd, "wb") as fh:
+    with atomic_path(path) as tmp:
+        with open(tmp, "wb") as fh:
             fh.write(payload)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.chmod(tmp, 0o666 & ~_umask())
-        os.replace(tmp, path)
-    except BaseException as exc:
-        with contextlib.suppress(OSError):
-            os.unlink(tmp)
-        if isinstance(exc, OSError):
-            raise OutputError(f"{path}: cannot write: {exc.strerror or exc}") from None
-        raise
-    _fsync_dir(path.parent)
     return path
 
 

@@ -47,7 +47,7 @@ from affine import Affine
 from rasterio.features import rasterize
 from rasterio.windows import Window
 
-from pvscan.ortho import WARNINGS_LOCK
+from pvscan.ortho import WARNINGS_LOCK, _zonal_section
 
 __all__ = ["ZonalStats", "zonal_stats", "measure_window", "TABLE_COLUMNS"]
 
@@ -126,16 +126,6 @@ class ZonalStats:
 
 
 # --------------------------------------------------------------------------- helpers
-def _zonal_section(settings: Any) -> Mapping:
-    if settings is None:
-        from pvscan.settings import load_pipeline
-
-        return load_pipeline()["zonal"]
-    if isinstance(settings, Mapping) and "zonal" in settings and isinstance(settings["zonal"], Mapping):
-        return settings["zonal"]
-    return settings
-
-
 def _grid(module_spec: Any) -> tuple[int, int, int]:
     """(n_along, n_across, bypass_diodes) of a ModuleSpec-like object or mapping."""
 
