@@ -1291,8 +1291,9 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     the grounded frame. The telling sign is the contrast of a module's edge ring of cells
     over its interior (:func:`pid_ring_contrast`), insensitive to the module-to-module
     spread, in robust standard deviations of healthy modules' contrast. A string
-    qualifies when its module at the negative end reaches ``pid_seed_z`` and is warmer
-    than its surroundings; the affected run extends from the negative end while the
+    qualifies when its module at the negative end reaches ``pid_seed_z`` (or reaches
+    ``pid_extend_z`` with the second module reaching ``pid_seed_z``) and is warmer than its
+    surroundings; the affected run extends from the negative end while the
     contrast keeps above ``pid_extend_z`` on balance (the end maximises ``sum(z -
     pid_extend_z)``, so a single weaker module between stronger ones does not end it),
     over at least ``pid_min_modules`` and at most the first ``pid_max_position`` of the
@@ -1331,7 +1332,17 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
         if len(idx) < 3:
             continue
         first = idx[0]
-        if exclude[first] or not F.ok[first] or z[first] < float(cfg["pid_seed_z"]):
+        if exclude[first] or not F.ok[first]:
+            continue
+        # the seed: the module at the negative end shows the pattern, or shows some of it
+        # (the extension bar) with the next module showing it fully; a PID pattern is
+        # patchy, and the most affected module need not be the most edge-weighted one
+        z_seed = float(cfg["pid_seed_z"])
+        second = idx[1]
+        seeded = z[first] >= z_seed or (
+            z[first] >= float(cfg["pid_extend_z"]) and not exclude[second] and bool(F.ok[second])
+            and z[second] >= z_seed)
+        if not seeded:
             continue
         # the best prefix from the negative end: PID is strongest there and fades, so the
         # evidence of the first m modules, sum(z) / sqrt(m), peaks where PID stops showing

@@ -556,6 +556,25 @@ def test_pid_string_with_one_weak_module_after_the_first(rng):
     assert {int(idx[0]), int(idx[2])} <= pid <= {int(i) for i in idx}
 
 
+@pytest.mark.parametrize("scale, is_pid", [(0.08, True), (0.0, False)])
+def test_pid_string_whose_first_module_shows_little_of_the_pattern(rng, scale, is_pid):
+    # PID is strongest at the negative end, but patchy: the first module may show a faint
+    # edge ring while the next ones show it fully (common practice). A faint ring at the
+    # negative end still seeds the string; no ring there at all does not (the pattern has to
+    # start at the negative end, where the potential to ground is largest)
+    p = Plant(rng, cols=12)
+    idx = p.pid("T0-1-R1", 5, f0=0.5)
+    first = int(idx[0])
+    med = np.median(p.cm[first])
+    p.cm[first] = med + scale * (p.cm[first] - med)
+    an, _ = p.run()
+    pid = {i for i, d in found(an).items() if d == "pid"}
+    if is_pid:
+        assert {int(i) for i in idx[:3]} <= pid <= {int(i) for i in idx}
+    else:
+        assert not pid
+
+
 def test_bypassed_substring_under_a_cloud_shadow(rng):
     # a table under a shadow gets 60 % of the logged irradiance: its modules and the
     # bypassed strip run cooler and the strip's rise is 60 % of eta * G / U (pvlib Faiman);
