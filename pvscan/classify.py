@@ -107,6 +107,7 @@ _CLASSIFY_DEFAULTS = {
     "hot_cell_contrast_min": 0.5,
     "hot_cell_peak_share": 0.6,
     "hot_cell_merge_touching": True,
+    "hot_cell_merge_max_cells": 2,
     "junction_box_min_k": 2.0,
     "junction_box_spot_max": 0.85,
     "junction_box_straddle_min": 0.4,
@@ -777,7 +778,8 @@ def pattern_hot_cell(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
     to a hot one counts only when at least ``hot_cell_peak_share`` of the hottest around
     it (heat spreading into neighbours does not). With ``hot_cell_merge_touching``,
     touching hot cells form one hot spot (robust to footprints a few centimetres off, at
-    the price of calling two touching hot cells one).
+    the price of calling two touching hot cells one), up to ``hot_cell_merge_max_cells``
+    cells; a larger cluster counts as several hot cells.
 
     Returns
     -------
@@ -821,7 +823,11 @@ def pattern_hot_cell(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
         count = np.zeros(F.n, np.int64)
         if labels.max() > 0:
             owner = np.array([sl[0].start for sl in ndimage.find_objects(labels)], dtype=np.int64)
-            np.add.at(count, owner, 1)
+            # a spot a few centimetres off the cell grid raises the median of at most two
+            # cells (a cell's median needs more than half of it hot): a larger cluster of
+            # whole hot cells is several hot cells
+            size = np.bincount(labels.ravel())[1:]
+            np.add.at(count, owner, np.where(size > int(cfg["hot_cell_merge_max_cells"]), 2, 1))
     else:
         count = hot.sum(axis=(1, 2))
     n = F.n

@@ -372,6 +372,25 @@ def test_touching_hot_cells(rng, merge, expected):
     assert len(an.iloc[0].region_uv) == 2
 
 
+@pytest.mark.parametrize("cells, expected", [
+    ([(3, 0), (4, 0), (4, 1)], "hot_cell_multi"),
+    ([(2, 2), (3, 2), (4, 2), (3, 3)], "hot_cell_multi"),
+])
+def test_cluster_of_whole_hot_cells_is_several(rng, cells, expected):
+    # a hot spot a few centimetres off the cell grid raises the median of at most two cells
+    # (a cell's median needs more than half of the cell hot: geometry), so three or more
+    # touching whole hot cells are several hot cells even when touching cells are merged
+    p = Plant(rng)
+    i = p.index(col=7)
+    p.hot(i, cells, 14.0)
+    an, _ = p.run()
+    assert found(an) == {i: expected}
+    assert len(an.iloc[0].region_uv) == len(cells)
+    # with clusters of any size merged, the same module reads as one hot cell
+    an1, _ = p.run(settings=_with(hot_cell_merge_max_cells=100))
+    assert found(an1) == {i: "hot_cell"}
+
+
 def test_junction_box_edge(rng):
     p = Plant(rng)
     i = p.index(col=9)
