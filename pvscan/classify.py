@@ -120,12 +120,14 @@ _CLASSIFY_DEFAULTS = {
     "open_string_ratio_min": 0.7,
     "open_string_end_z": 1.0,
     "open_string_rest_max": 0.5,
+    "open_string_beyond_max": 0.5,
     "open_string_row_radius_m": 5.0,
     "open_string_cross_min": 0.4,
     "open_string_cross_fail_max": 0.1,
     "open_string_row_share": 0.35,
     "pid_min_modules": 2,
     "pid_seed_z": 2.0,
+    "pid_z_cap": 3.0,
     "pid_extend_z": 1.0,
     "pid_run_z": 4.0,
     "pid_rest_z": 2.0,
@@ -1141,6 +1143,8 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
                     continue
                 if not _raised_over_other_row_throughout(F, cfg, run):
                     continue
+                if not _stops_at_its_ends(F, cfg, run):
+                    continue
                 out.append([int(i) for i in run])
     return out
 
@@ -1172,6 +1176,42 @@ def _raised_over_other_row_throughout(F: Features, cfg: Mapping, run) -> bool:
     with np.errstate(invalid="ignore"):
         low = diff < float(cfg["open_string_cross_min"]) * F.rise[r]
     return float(low.mean()) <= float(cfg["open_string_cross_fail_max"])
+
+
+def _stops_at_its_ends(F: Features, cfg: Mapping, run) -> bool:
+    """False when the raise goes on into the module just past an end of the run.
+
+    An open string's raise stops where the string stops: the next module along the row,
+    of another string, carries current and runs no warmer than its neighbours. A mosaic
+    seam does not care where strings end. The module past each end (same table row) may be
+    raised by at most ``open_string_beyond_max`` of the run's median raise: the mean of its
+    raise over the module beside it in the other row and over modules outside its string
+    (the latter alone where there is no other row).
+    """
+    along = F.extra.get("along_row")
+    cross = F.extra.get("cross_row")
+    if along is None:
+        return True
+    run = np.asarray(run)
+    members = set(run.tolist())
+    t = F.t_median
+    has = cross[run] >= 0 if cross is not None else np.zeros(len(run), bool)
+    raise_run = (float(np.nanmedian(t[run[has]] - t[cross[run[has]]])) if has.sum() >= max(1, len(run) // 2)
+                 else float(np.nanmedian(F.extra["d_other"][run])))
+    if not np.isfinite(raise_run) or raise_run <= 0:
+        return True
+    limit = float(cfg["open_string_beyond_max"]) * raise_run
+    for end in (int(run[0]), int(run[-1])):
+        for j in along[end]:
+            j = int(j)
+            if j < 0 or j in members or not F.ok[j]:
+                continue
+            beyond = float(F.extra["d_other"][j])
+            if cross is not None and cross[j] >= 0 and int(cross[j]) not in members and F.ok[cross[j]]:
+                beyond = float(np.nanmean([t[j] - t[cross[j]], beyond]))
+            if np.isfinite(beyond) and beyond > limit:
+                return False
+    return True
 
 
 def _string_opens_whole(F: Features, cfg: Mapping, members, run) -> bool:
@@ -1353,8 +1393,12 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
         # the best prefix from the negative end: PID is strongest there and fades, so the
         # evidence of the first m modules, sum(z) / sqrt(m), peaks where PID stops showing
         max_len = max(int(np.floor(float(cfg["pid_max_position"]) * len(idx))), 1)
+        # no single module after the first carries the string's evidence by itself: its
+        # contrast counts for at most pid_z_cap there (a bypassed strip or a seam edge along
+        # one module's frame can give it a huge edge contrast)
+        cap = float(cfg["pid_z_cap"])
         zz = np.where(exclude[idx] | ~F.ok[idx], np.nan, z_ext[idx])[:max_len]
-        zr = np.where(exclude[idx] | ~F.ok[idx], np.nan, z[idx])[:max_len]
+        zr = np.where(exclude[idx] | ~F.ok[idx], np.nan, np.minimum(z[idx], cap))[:max_len]
         if np.isnan(zz).any():
             zr = zr[: int(np.argmax(np.isnan(zz)))]
             zz = zz[: int(np.argmax(np.isnan(zz)))]

@@ -89,6 +89,17 @@ def true_statistics(stats, params: dict):
     return dc_replace(stats, table=table, **arrays)
 
 
+def _artefact_summary(seams, modules, enabled: bool) -> dict:
+    """summary.json's account of the row stretches levelled as image artefacts (pvscan.seams)."""
+    if not enabled or seams is None:
+        return {"levelling": False}
+    ids = modules["module_id"].astype(str).to_numpy() if "module_id" in modules else np.arange(len(modules)).astype(str)
+    return {"levelling": True,
+            "stretches": [{"modules": [str(ids[i]) for i in s.modules], "offset_k": round(float(s.offset_k), 3),
+                           "reason": s.reason} for s in seams["stretches"]],
+            "levelled_modules": int(np.count_nonzero(seams["offsets_k"]))}
+
+
 # ----------------------------------------------------------------------------- stages
 def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | None = None,
                    timings: dict | None = None):
@@ -152,6 +163,16 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
     params = flight_radiometry(flight, conds, settings["radiometry"])
     stats = true_statistics(stats_app, params)
     timings["radiometry"] = time.perf_counter() - t0
+
+    t0 = time.perf_counter()
+    stretches: list = []
+    seam_offsets = np.zeros(len(modules))
+    if bool(settings["seams"]["enabled"]):
+        from pvscan import seams
+
+        stretches = seams.find_stretches(modules, stats.table["t_median_c"].to_numpy(dtype=float), settings["seams"])
+        stats, seam_offsets = seams.level_stats(stats, stretches)
+    timings["seams"] = time.perf_counter() - t0
     return {
         "modules": modules,
         "registration": reg,
@@ -163,6 +184,7 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         "validity": validity,
         "orthos_info": orthos_info,
         "radiometry": params,
+        "seams": {"stretches": stretches, "offsets_k": seam_offsets},
     }
 
 
@@ -285,6 +307,7 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
                                   {"median": float(np.nanmedian(v)), "min": float(np.nanmin(v)),
                                    "max": float(np.nanmax(v))})
                               for k, v in m["radiometry"].items()},
+               "image_artefacts": _artefact_summary(m.get("seams"), modules, bool(settings["seams"]["enabled"])),
                "timings_s": {k: round(v, 3) for k, v in timings.items()}},
     )
     result = InspectionResult(out_dir=None, modules=modules.assign(**{c: table[c].to_numpy() for c in table}),

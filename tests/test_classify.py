@@ -328,6 +328,27 @@ def test_open_string_is_one_anomaly_with_all_its_modules(rng):
     assert (mt.defect[members] == "open_string").all()
 
 
+@pytest.mark.parametrize("past_end, expected", [(False, True), (True, False)])
+def test_open_string_raise_stops_where_the_string_stops(rng, past_end, expected):
+    # an open string raises its own modules only (the next module along the row belongs to
+    # another string and carries current); an image offset (a mosaic seam) that raises a
+    # whole string and the next module too is not an open string (physics)
+    p = Plant(rng, strings="half")
+    m = p.modules
+    members = np.flatnonzero((m.string_id == "T1-0-R1-S0").to_numpy())
+    for i in members:
+        p.open(int(i), label="open_string")
+    if past_end:
+        nxt = p.index(table="T1-0", row=1, col=7)              # first module of string S1
+        p.cm[nxt] += open_rise()
+    an, _ = p.run()
+    assert ("open_string" in set(an.defect)) is expected, an[["module_id", "defect"]]
+    if past_end:
+        # without the rule the raised run is taken for an open string
+        an0, _ = p.run(settings=_with(open_string_beyond_max=5.0))
+        assert "open_string" in set(an0.defect)
+
+
 def test_open_string_run_without_strings_uses_table_rows(rng):
     p = Plant(rng, strings=None)
     run = [p.index(table="T1-1", row=1, col=c) for c in range(3, 9)]
@@ -564,6 +585,26 @@ def test_one_warm_edged_module_at_a_string_end_is_not_pid(rng):
     assert "pid" not in set(an.defect)
 
 
+def test_one_strongly_edged_module_does_not_carry_a_pid_string(rng):
+    # a warm-edged module at the negative end and, three modules on, one whose frame edge is
+    # very warm (a seam edge along it, a hot strip): the modules between show nothing, so the
+    # string is not PID (PID fades along the string, common practice); one module's contrast
+    # counts for at most pid_z_cap
+    p = Plant(rng, cols=12)
+    m = p.modules
+    idx = np.flatnonzero(m.string_id == "T0-1-R1")
+    idx = idx[np.argsort(m.string_index.to_numpy()[idx])]
+    A, C = p.spec.n_along, p.spec.n_across
+    ii, jj = np.indices((A, C))
+    edge = (ii == 0) | (ii == A - 1) | (jj == 0) | (jj == C - 1)
+    p.cm[idx[0]] += np.where(edge, 1.2, 0.0)
+    p.cm[idx[3]] += np.where(edge, 6.0, 0.0)
+    an, _ = p.run()
+    assert "pid" not in set(an.defect)
+    an0, _ = p.run(settings=_with(pid_z_cap=1000.0))        # uncapped: the one module decides
+    assert "pid" in set(an0.defect)
+
+
 def test_pid_string_with_one_weak_module_after_the_first(rng):
     # PID is patchy: a module next to the first may show little while the ones after it
     # show the pattern again; the string is judged by the modules after the first together
@@ -791,7 +832,7 @@ def test_junction_box_heat_filling_the_cells_at_the_box(rng):
     assert found(an0) == {i: "hot_cell"}
 
 
-def test_seam_along_a_landscape_row_is_no_bypassed_substring(rng):
+def test_seam_along_a_landscape_row_is_no_bypassed_substring(rng, monkeypatch):
     # landscape modules: substrings run along the row, so a seam patch along the row whose
     # edge lies on the boundary of the lowest substring raises that strip in the module at
     # the table end (0.9 x eta*G/U) and, weaker (0.47 x), in the next module:
@@ -807,5 +848,13 @@ def test_seam_along_a_landscape_row_is_no_bypassed_substring(rng):
                                   np.where(x < x2, 0.9 * r, 0.47 * r), 0.0))
     an, _ = p.run()
     assert not {"bypassed_substring", "bypassed_substring_multi"} & set(an.defect), an[["module_id", "defect"]]
+    # the straight-line rule is enough by itself: with the rule that the raise carries on
+    # across the module's edge switched off, it still keeps the module quiet, and with
+    # both off the seam patch is taken for a bypassed substring
+    import pvscan.classify as classify_mod
+
+    monkeypatch.setattr(classify_mod, "_carried_across_edge", lambda F, raised, cand: np.zeros(F.n, bool))
+    an1, _ = p.run()
+    assert not {"bypassed_substring", "bypassed_substring_multi"} & set(an1.defect)
     an0, _ = p.run(settings=_with(substring_line_tol_m=-1.0))
-    assert p.index(table="T0-0", row=1, col=1) in set(an0.module_index)
+    assert found(an0).get(p.index(table="T0-0", row=1, col=1)) == "bypassed_substring"

@@ -1,0 +1,233 @@
+"""Mosaic seams and other image artefacts along table rows: find closed stretches, level them.
+
+An orthomosaic is stitched from frames whose radiometric offsets differ a little (the
+camera drifts between its flat-field corrections), so a seam adds a constant step [K] to
+everything on one side of it; a sky reflection raises a patch of glass. Where such an
+artefact covers part of a table row, the row's module temperatures step up (or down) at
+one place and back at another. Defects follow the electrical layout instead: an open
+string or PID stays within one string, an open module or a bypassed substring within one
+module. So, along every table row (modules ordered by ``table_col``):
+
+1. a candidate edge is a step of at least ``min_step_k`` between the medians of the
+   ``window_modules`` modules either side of a boundary, the strongest within two
+   modules;
+2. an up edge followed by a down edge of about the same size (within ``match_abs_k`` +
+   ``match_rel`` x the step) closes a stretch of at least ``min_modules``; each edge is
+   then put at the boundary that best splits the row into the stretch's level and the
+   levels outside it (least absolute deviation, so one module of the spread does not move
+   it);
+3. the stretch is an artefact, and is levelled by its median excess over the modules
+   either side, when it covers modules of more than one string, or when another row of
+   its table has a stretch over at least half of the same columns at a similar level (a
+   seam or a reflection crosses rows; a defect of one string does not repeat in the row
+   beside it).
+
+Stretches that run to the end of a row are left alone (which side would be the artefact is
+not known from the row). Every module, cell and substring statistic of a levelled module
+is shifted by the same offset.
+"""
+from __future__ import annotations
+
+import logging
+from collections.abc import Mapping
+from dataclasses import dataclass
+from dataclasses import replace as dc_replace
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+__all__ = ["Stretch", "find_stretches", "level_stats", "SEAM_DEFAULTS"]
+
+log = logging.getLogger(__name__)
+
+#: Defaults of the pipeline's ``[seams]`` section (the file documents each key's source).
+SEAM_DEFAULTS = {
+    "enabled": True,
+    "window_modules": 3,
+    "min_step_k": 0.8,
+    "match_abs_k": 0.4,
+    "match_rel": 0.3,
+    "min_modules": 2,
+}
+
+_TABLE_COLS = ("t_mean_c", "t_median_c", "t_p95_c", "t_max_c", "t_min_c")
+
+
+@dataclass
+class Stretch:
+    """A closed stretch of a table row levelled as an image artefact.
+
+    Attributes
+    ----------
+    modules : numpy.ndarray
+        Indices of its modules, in row order.
+    offset_k : float
+        Its median excess over the modules either side [K] (subtracted when levelling).
+    reason : str
+        ``"strings"`` (it covers more than one string) or ``"rows"`` (another row of its
+        table has a matching stretch).
+    """
+
+    modules: np.ndarray
+    offset_k: float
+    reason: str
+
+
+def _cfg(settings: Any) -> dict:
+    if settings is None:
+        return dict(SEAM_DEFAULTS)
+    sec = settings
+    if not (isinstance(settings, Mapping) and "min_step_k" in settings):
+        try:
+            sec = settings["seams"]
+        except (KeyError, TypeError):
+            sec = {}
+    return {**SEAM_DEFAULTS, **dict(sec)}
+
+
+def _steps(t: np.ndarray, w: int) -> np.ndarray:
+    """Step at each boundary b (between positions b and b+1): median of the next ``w`` minus
+    the median of the previous ``w`` (NaN where either side has fewer than two values)."""
+    n = len(t)
+    out = np.full(max(n - 1, 0), np.nan)
+    for b in range(n - 1):
+        left = t[max(0, b - w + 1):b + 1]
+        right = t[b + 1:b + 1 + w]
+        if np.isfinite(left).sum() >= 2 and np.isfinite(right).sum() >= 2:
+            out[b] = np.nanmedian(right) - np.nanmedian(left)
+    return out
+
+
+def _best_split(t: np.ndarray, b: int, lo: int, hi: int, level_in: float, level_out: float,
+                inside_right: bool) -> int:
+    """The boundary in ``lo..hi`` that best separates outside and inside levels (L1)."""
+    best, cost_best = b, np.inf
+    n = len(t)
+    span = np.arange(max(lo - 1, 0), min(hi + 2, n))
+    for c in range(max(lo, 0), min(hi, n - 2) + 1):
+        inside = span > c if inside_right else span <= c
+        lev = np.where(inside, level_in, level_out)
+        cost = float(np.nansum(np.abs(t[span] - lev)))
+        if cost < cost_best - 1e-9:
+            best, cost_best = c, cost
+    return best
+
+
+def _closed_stretches(t: np.ndarray, cfg: Mapping) -> list[tuple[int, int, float]]:
+    """(first, last, offset) position ranges of the closed stretches of one row profile."""
+    w = int(cfg["window_modules"])
+    n = len(t)
+    if n < 2 * w:
+        return []
+    st = _steps(t, w)
+    a = np.abs(np.nan_to_num(st, nan=0.0))
+    cand = [b for b in range(n - 1) if a[b] >= float(cfg["min_step_k"]) and a[b] >= a[max(0, b - 2):b + 3].max()]
+    tol_abs, tol_rel = float(cfg["match_abs_k"]), float(cfg["match_rel"])
+    min_len = int(cfg["min_modules"])
+    out, used = [], set()
+    for i, b1 in enumerate(cand):
+        if b1 in used:
+            continue
+        for b2 in cand[i + 1:]:
+            s1, s2 = st[b1], st[b2]
+            if np.sign(s1) == np.sign(s2):
+                break  # another edge the same way first: not one closed stretch
+            if abs(s1 + s2) <= tol_abs + tol_rel * max(abs(s1), abs(s2)) and b2 - b1 >= min_len:
+                # refine both edges against the stretch's level and the levels outside it
+                inner = t[b1 + 1:b2 + 1]
+                lev_in = float(np.nanmedian(inner))
+                left_out = t[max(0, b1 - w + 1):b1 + 1]
+                right_out = t[b2 + 1:b2 + 1 + w]
+                lev_l, lev_r = float(np.nanmedian(left_out)), float(np.nanmedian(right_out))
+                e1 = _best_split(t, b1, b1 - 2, b1 + 2, lev_in, lev_l, inside_right=True)
+                e2 = _best_split(t, b2, b2 - 2, b2 + 2, lev_in, lev_r, inside_right=False)
+                if e2 - e1 >= min_len:
+                    first, last = e1 + 1, e2
+                    outside = np.concatenate([t[max(0, first - w):first], t[last + 1:last + 1 + w]])
+                    offset = float(np.nanmedian(t[first:last + 1]) - np.nanmedian(outside))
+                    out.append((first, last, offset))
+                    used |= {b1, b2}
+            break
+    return out
+
+
+def find_stretches(modules: pd.DataFrame, t_median: np.ndarray, settings: Any = None) -> list[Stretch]:
+    """Closed stretches of table rows that are image artefacts (see the module notes).
+
+    Parameters
+    ----------
+    modules : DataFrame
+        ``table_id``, ``table_row``, ``table_col`` and, when known, ``string_id``.
+    t_median : numpy.ndarray
+        (n,) module median temperature [degC].
+    settings : Pipeline or mapping, optional
+        The ``[seams]`` section.
+
+    Returns
+    -------
+    list of Stretch
+    """
+    from pvscan.thermal import _row_keys
+
+    cfg = _cfg(settings)
+    n = len(modules)
+    if n == 0 or "table_col" not in modules.columns:
+        return []
+    keys = _row_keys(modules)
+    col = pd.to_numeric(modules["table_col"], errors="coerce").to_numpy(dtype=float)
+    table = modules["table_id"].astype("string").fillna("").to_numpy() if "table_id" in modules else np.full(n, "")
+    has_strings = "string_id" in modules.columns and modules["string_id"].notna().any()
+    sid = modules["string_id"].astype("string").fillna("").to_numpy() if has_strings else None
+    t = np.asarray(t_median, dtype=float)
+    found = []  # (row key, modules, offset)
+    for k in np.unique(keys[keys >= 0]):
+        mem = np.flatnonzero((keys == k) & np.isfinite(col))
+        mem = mem[np.argsort(col[mem], kind="stable")]
+        for first, last, offset in _closed_stretches(t[mem], cfg):
+            found.append((int(k), mem[first:last + 1], offset))
+    tol_abs, tol_rel = float(cfg["match_abs_k"]), float(cfg["match_rel"])
+    out = []
+    for j, (k, seg, off) in enumerate(found):
+        if sid is not None and len(set(sid[seg])) > 1:
+            out.append(Stretch(seg, off, "strings"))
+            continue
+        cols = set(col[seg].tolist())
+        for j2, (k2, seg2, off2) in enumerate(found):
+            if (j2 != j and k2 != k and table[seg2[0]] == table[seg[0]] and np.sign(off2) == np.sign(off)
+                    and abs(off2 - off) <= tol_abs + tol_rel * abs(off)
+                    and len(cols & set(col[seg2].tolist())) >= 0.5 * len(cols)):
+                out.append(Stretch(seg, off, "rows"))
+                break
+    log.debug("seams: %d closed stretches, %d levelled", len(found), len(out))
+    return out
+
+
+def level_stats(stats, stretches: list[Stretch]):
+    """A copy of the statistics with each stretch's offset subtracted from its modules.
+
+    Module (``t_mean_c`` ... ``t_min_c``), cell and substring temperatures [degC] shift;
+    ``t_std_k`` and the counts do not.
+
+    Returns
+    -------
+    (stats, offsets)
+        The levelled statistics and the (n,) offsets subtracted [K].
+    """
+    n = len(stats.table)
+    offsets = np.zeros(n)
+    for s in stretches:
+        offsets[s.modules] = s.offset_k
+    if not offsets.any():
+        return stats, offsets
+    table = stats.table.copy()
+    for c in _TABLE_COLS:
+        if c in table:
+            table[c] = table[c].to_numpy(dtype=float) - offsets
+    o3 = offsets[:, None, None]
+    o2 = offsets[:, None]
+    return dc_replace(stats, table=table,
+                      cell_median=(stats.cell_median - o3).astype(stats.cell_median.dtype),
+                      cell_p95=(stats.cell_p95 - o3).astype(stats.cell_p95.dtype),
+                      sub_median=(stats.sub_median - o2).astype(stats.sub_median.dtype),
+                      sub_p95=(stats.sub_p95 - o2).astype(stats.sub_p95.dtype)), offsets
