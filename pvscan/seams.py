@@ -15,7 +15,10 @@ module. So, along every table row (modules ordered by ``table_col``):
    ``match_rel`` x the step) closes a stretch of at least ``min_modules``; each edge is
    then put at the boundary that best splits the row into the stretch's level and the
    levels outside it (least absolute deviation, so one module of the spread does not move
-   it);
+   it); its offset (median excess over the ``window_modules`` modules either side) must
+   reach ``min_step_k`` and ``seam_z`` standard errors of a difference of means under the
+   module-to-module spread (estimated from neighbour differences along the rows), since
+   among thousands of rows a few stretches of three modules stand out by chance;
 3. the stretch is an artefact, and is levelled by its median excess over the modules
    either side, when it covers modules of more than one string, or when another row of
    its table has a stretch over at least half of the same columns at a similar level (a
@@ -49,6 +52,7 @@ SEAM_DEFAULTS = {
     "match_abs_k": 0.4,
     "match_rel": 0.3,
     "min_modules": 2,
+    "seam_z": 5.0,
 }
 
 _TABLE_COLS = ("t_mean_c", "t_median_c", "t_p95_c", "t_max_c", "t_min_c")
@@ -114,8 +118,12 @@ def _best_split(t: np.ndarray, b: int, lo: int, hi: int, level_in: float, level_
     return best
 
 
-def _closed_stretches(t: np.ndarray, cfg: Mapping) -> list[tuple[int, int, float]]:
-    """(first, last, offset) position ranges of the closed stretches of one row profile."""
+def _closed_stretches(t: np.ndarray, cfg: Mapping, sigma: float = 0.0) -> list[tuple[int, int, float]]:
+    """(first, last, offset) position ranges of the closed stretches of one row profile.
+
+    ``sigma`` [K] is the module-to-module spread; a stretch's offset must reach ``seam_z``
+    standard errors of the difference of the two means (inside and outside).
+    """
     w = int(cfg["window_modules"])
     n = len(t)
     if n < 2 * w:
@@ -145,9 +153,13 @@ def _closed_stretches(t: np.ndarray, cfg: Mapping) -> list[tuple[int, int, float
                 if e2 - e1 >= min_len:
                     first, last = e1 + 1, e2
                     outside = np.concatenate([t[max(0, first - w):first], t[last + 1:last + 1 + w]])
-                    offset = float(np.nanmedian(t[first:last + 1]) - np.nanmedian(outside))
-                    out.append((first, last, offset))
-                    used |= {b1, b2}
+                    inside = t[first:last + 1]
+                    offset = float(np.nanmedian(inside) - np.nanmedian(outside))
+                    n_in, n_out = int(np.isfinite(inside).sum()), int(np.isfinite(outside).sum())
+                    se = sigma * np.sqrt(1.0 / max(n_in, 1) + 1.0 / max(n_out, 1))
+                    if abs(offset) >= float(cfg["min_step_k"]) and abs(offset) >= float(cfg["seam_z"]) * se:
+                        out.append((first, last, offset))
+                        used |= {b1, b2}
             break
     return out
 
@@ -180,11 +192,18 @@ def find_stretches(modules: pd.DataFrame, t_median: np.ndarray, settings: Any = 
     has_strings = "string_id" in modules.columns and modules["string_id"].notna().any()
     sid = modules["string_id"].astype("string").fillna("").to_numpy() if has_strings else None
     t = np.asarray(t_median, dtype=float)
-    found = []  # (row key, modules, offset)
+    rows = []
     for k in np.unique(keys[keys >= 0]):
         mem = np.flatnonzero((keys == k) & np.isfinite(col))
-        mem = mem[np.argsort(col[mem], kind="stable")]
-        for first, last, offset in _closed_stretches(t[mem], cfg):
+        rows.append((int(k), mem[np.argsort(col[mem], kind="stable")]))
+    # the module-to-module spread: robust spread of the differences between neighbours along
+    # the rows, over sqrt(2) (seams and defects are few among the differences)
+    diffs = np.concatenate([np.diff(t[mem]) for _, mem in rows if len(mem) > 1] or [np.zeros(0)])
+    diffs = diffs[np.isfinite(diffs)]
+    sigma = float(1.4826 * np.median(np.abs(diffs - np.median(diffs))) / np.sqrt(2.0)) if diffs.size >= 10 else 0.0
+    found = []  # (row key, modules, offset)
+    for k, mem in rows:
+        for first, last, offset in _closed_stretches(t[mem], cfg, sigma):
             found.append((int(k), mem[first:last + 1], offset))
     tol_abs, tol_rel = float(cfg["match_abs_k"]), float(cfg["match_rel"])
     out = []
