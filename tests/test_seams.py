@@ -106,3 +106,13 @@ def test_level_stats_shifts_every_temperature_of_the_stretch(rng):
     assert lev.table.t_std_k[idx[0]] == 0.2
     others = np.setdiff1d(np.arange(n), idx)
     assert np.array_equal(lev.table.t_median_c.to_numpy()[others], t[others])
+
+
+@pytest.mark.parametrize("spread, levelled", [(0.1, True), (0.6, False)])
+def test_short_stretch_must_stand_out_of_the_spread(rng, spread, levelled):
+    # three modules 1 K up across a string boundary: clear against a 0.1 K module-to-module
+    # spread, but a chance excess against 0.6 K (2.4 standard errors of the difference of the
+    # means, below seam_z)
+    m, t = _rows(rng, spread=spread)
+    t[_sel(m, 1, 12, 14)] += 1.0
+    assert bool(seams.find_stretches(m, t)) is levelled
