@@ -130,7 +130,11 @@ def _closed_stretches(t: np.ndarray, cfg: Mapping, sigma: float = 0.0) -> list[t
         return []
     st = _steps(t, w)
     a = np.abs(np.nan_to_num(st, nan=0.0))
-    cand = [b for b in range(n - 1) if a[b] >= float(cfg["min_step_k"]) and a[b] >= a[max(0, b - 2):b + 3].max()]
+    sgn = np.sign(np.nan_to_num(st, nan=0.0))
+    # the strongest edge of its sign within two boundaries (a short stretch has its opposite
+    # edge that close)
+    cand = [b for b in range(n - 1) if a[b] >= float(cfg["min_step_k"])
+            and a[b] >= np.where(sgn[max(0, b - 2):b + 3] == sgn[b], a[max(0, b - 2):b + 3], 0.0).max()]
     tol_abs, tol_rel = float(cfg["match_abs_k"]), float(cfg["match_rel"])
     min_len = int(cfg["min_modules"])
     out, used = [], set()
@@ -141,13 +145,14 @@ def _closed_stretches(t: np.ndarray, cfg: Mapping, sigma: float = 0.0) -> list[t
             s1, s2 = st[b1], st[b2]
             if np.sign(s1) == np.sign(s2):
                 break  # another edge the same way first: not one closed stretch
-            if abs(s1 + s2) <= tol_abs + tol_rel * max(abs(s1), abs(s2)) and b2 - b1 >= min_len:
+            if abs(s1 + s2) <= tol_abs + tol_rel * max(abs(s1), abs(s2)):
                 # refine both edges against the stretch's level and the levels outside it
                 inner = t[b1 + 1:b2 + 1]
                 lev_in = float(np.nanmedian(inner))
                 left_out = t[max(0, b1 - w + 1):b1 + 1]
                 right_out = t[b2 + 1:b2 + 1 + w]
                 lev_l, lev_r = float(np.nanmedian(left_out)), float(np.nanmedian(right_out))
+                # (the medians of a few modules place an edge only to within a module or two)
                 e1 = _best_split(t, b1, b1 - 2, b1 + 2, lev_in, lev_l, inside_right=True)
                 e2 = _best_split(t, b2, b2 - 2, b2 + 2, lev_in, lev_r, inside_right=False)
                 if e2 - e1 >= min_len:
