@@ -175,6 +175,8 @@ def build_result(tmp_path: Path, *, n_extra: int = 0, with_ortho: bool = True, k
         "power_loss_w": sum(r["loss"] for r in rows),
         "layout_shift_m": [0.0, 0.0],
         "safety": ["Keep a fire extinguisher for electrical fires within reach during site work."],
+        "image_artefacts": {"levelling": True, "levelled_modules": 3, "stretches": [
+            {"modules": ["T01-R2-C04", "T01-R2-C05", "T01-R2-C06"], "offset_k": 1.4, "reason": "strings"}]},
     }
     if kelvin or series:
         summary["inputs"]["manifest"] = str(_write_manifest(tmp_path / "flight", kelvin=kelvin, series=series))
@@ -341,6 +343,12 @@ def test_cautions_and_method_present(report_html):
     # method notes name the published models (Planck, Faiman) and the standard
     for phrase in ("planck", "faiman", "iec ts 62446-3", "apparent"):
         assert phrase in text, phrase
+
+
+def test_levelled_image_artefacts_are_listed(report_html):
+    # the reader must see which temperatures pvscan moved before judging them
+    assert "Image artefacts" in report_html
+    assert "T01-R2-C04 to T01-R2-C06 (3 modules): 1.4 K, crosses a string boundary" in report_html
 
 
 def test_validity_block_shows_failed_check(report_html):
@@ -534,6 +542,7 @@ def test_summary_fits_one_screen(result):
     assert "irradiance change max" in text  # the failed validity check is shown
     assert "report.html" in text or "workorders.csv" in text
     assert "live" in text and "qualified" in text
+    assert "image artefacts levelled: 1 row stretch, 3 modules" in text
     # the top work order comes first
     top = [s for s in lines if s.strip().startswith("1 ")]
     assert top and "T02-R1-C09" in top[0]

@@ -97,6 +97,11 @@ def summary_lines(result_dir, top: int | None = None) -> list[str]:
     dx, dy = data.layout_shift_m
     if abs(dx) + abs(dy) > 0:
         lines.append(f"layout shifted onto the ortho by {dx:+.2f} m E, {dy:+.2f} m N")
+    art = data.summary.get("image_artefacts") or {}
+    if isinstance(art, dict) and art.get("stretches"):
+        ns = len(art["stretches"])
+        lines.append(f"image artefacts levelled: {ns} row stretch{'es' if ns != 1 else ''}, "
+                     f"{int(art.get('levelled_modules') or 0)} modules (mosaic seams, reflections; see summary.json)")
     root = Path(data.result_dir)
     lines.append(_cut(f"results in {root}/"))
     parts = []

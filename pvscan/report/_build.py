@@ -631,7 +631,30 @@ def _conditions_section(data: ResultData, checks: list[dict], ok, series_img: st
 <h3>Inputs</h3>{_inputs_table(data)}
 <p class="note">Layout shift applied to fit the ortho: {dx:+.2f} m east, {dy:+.2f} m north{_e(reg_txt)}.{_e(gsd_txt)}
 Result geometries keep the layout's own positions; the map and crops draw them shifted onto the image.</p>
+{_artefacts_note(data)}
 </section>"""
+
+
+def _artefacts_note(data: ResultData) -> str:
+    """One note on the row stretches levelled as image artefacts (mosaic seams, reflections)."""
+    art = data.summary.get("image_artefacts") or {}
+    if not isinstance(art, Mapping) or not art.get("levelling"):
+        return ""
+    stretches = art.get("stretches") or []
+    if not stretches:
+        return ("<p class='note'>Image artefacts: no stretch of a table row was levelled (none stepped up "
+                "and back down across a string boundary or in both rows of a table).</p>")
+    items = []
+    for s in stretches[:12]:
+        mods = s.get("modules") or []
+        span = f"{mods[0]} to {mods[-1]}" if len(mods) > 1 else (mods[0] if mods else "?")
+        why = {"strings": "crosses a string boundary", "rows": "repeats in the table's other row"}.get(s.get("reason"), "")
+        items.append(f"<li>{_e(span)} ({len(mods)} modules): {_sig(s.get('offset_k'))} K, {_e(why)}</li>")
+    more = f"<li>... {len(stretches) - 12} more in summary.json</li>" if len(stretches) > 12 else ""
+    return (f"<p class='note'>Image artefacts: the temperatures of {int(art.get('levelled_modules') or 0)} modules "
+            "were levelled before any reference was taken, because a stretch of their row stepped up and back "
+            "down as a whole (a mosaic seam or a reflection, not a defect of one string):</p>"
+            f"<ul class='note'>{''.join(items)}{more}</ul>")
 
 
 def _inputs_table(data: ResultData) -> str:
