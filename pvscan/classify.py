@@ -108,7 +108,7 @@ _CLASSIFY_DEFAULTS = {
     "hot_cell_peak_share": 0.6,
     "hot_cell_merge_touching": True,
     "hot_cell_merge_max_cells": 2,
-    "junction_box_min_k": 2.0,
+    "junction_box_min_k": 1.5,
     "junction_box_spot_max": 0.85,
     "junction_box_straddle_min": 0.4,
     "soiling_min_norm_k": 2.0,

@@ -816,6 +816,17 @@ def test_warm_healthy_module_at_low_irradiance_and_wind_is_not_open(rng):
     assert found(an) == {j: "open_module"}
 
 
+@pytest.mark.parametrize("rise, found_it", [(1.8, True), (0.6, False)])
+def test_faint_junction_box_at_the_frame(rng, rise, found_it):
+    # most of a box's spot lies in the edge margin: a hot box leaves 1-2 K in the p95 of the
+    # cells inside, well above the cell noise (5 spreads, common practice); 0.6 K is noise
+    p = Plant(rng)
+    i = p.index(col=5)
+    p.junction_box(i, rise)
+    an, _ = p.run()
+    assert found(an) == ({i: "junction_box"} if found_it else {})
+
+
 def test_junction_box_heat_filling_the_cells_at_the_box(rng):
     # a hot junction box whose heat spreads over most of the two cells at the box (median
     # rise 0.8 of the p95 rise, a box region a cell and a half deep): still the box, not two
