@@ -108,9 +108,11 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
     Returns
     -------
     dict
-        ``modules`` (layout positions), ``registration``, ``stats`` (true temperature),
-        ``stats_apparent``, ``conditions`` (per module), ``flight_conditions``, ``validity``,
-        ``orthos_info``.
+        ``modules`` (layout positions), ``registration``, ``stats`` (true temperature,
+        levelled for image artefacts along the rows when ``[seams] enabled``),
+        ``stats_apparent`` (as measured), ``conditions`` (per module), ``flight_conditions``,
+        ``validity``, ``orthos_info``, ``seams`` (``stretches``: list of
+        :class:`pvscan.seams.Stretch`; ``offsets_k``: (n,) offsets subtracted [K]).
     """
     from pvscan import conditions as cond_mod
     from pvscan import register, zonal
