@@ -92,15 +92,19 @@ def _cfg(settings: Any) -> dict:
 
 def _steps(t: np.ndarray, w: int) -> np.ndarray:
     """Step at each boundary b (between positions b and b+1): median of the next ``w`` minus
-    the median of the previous ``w`` (NaN where either side has fewer than two values)."""
-    n = len(t)
-    out = np.full(max(n - 1, 0), np.nan)
-    for b in range(n - 1):
-        left = t[max(0, b - w + 1):b + 1]
-        right = t[b + 1:b + 1 + w]
-        if np.isfinite(left).sum() >= 2 and np.isfinite(right).sum() >= 2:
-            out[b] = np.nanmedian(right) - np.nanmedian(left)
-    return out
+    the median of the previous ``w`` (NaN where either side has fewer than two values).
+    ``t`` is one row profile, or several of one length stacked (rows along axis 0)."""
+    from pvscan.classify import _nanmedian  # vectorised, no warning on empty windows
+
+    t = np.asarray(t, dtype=float)
+    n = t.shape[-1]
+    if n < 2:
+        return np.full(t.shape[:-1] + (0,), np.nan)
+    pad = np.full(t.shape[:-1] + (w - 1,), np.nan)
+    win = np.lib.stride_tricks.sliding_window_view(np.concatenate([pad, t, pad], axis=-1), w, axis=-1)
+    left, right = win[..., :n - 1, :], win[..., w:w + n - 1, :]  # modules b-w+1..b and b+1..b+w
+    ok = (np.isfinite(left).sum(axis=-1) >= 2) & (np.isfinite(right).sum(axis=-1) >= 2)
+    return np.where(ok, _nanmedian(right, axis=-1) - _nanmedian(left, axis=-1), np.nan)
 
 
 def _best_split(t: np.ndarray, b: int, lo: int, hi: int, level_in: float, level_out: float,
@@ -118,17 +122,19 @@ def _best_split(t: np.ndarray, b: int, lo: int, hi: int, level_in: float, level_
     return best
 
 
-def _closed_stretches(t: np.ndarray, cfg: Mapping, sigma: float = 0.0) -> list[tuple[int, int, float]]:
+def _closed_stretches(t: np.ndarray, cfg: Mapping, sigma: float = 0.0,
+                      st: np.ndarray | None = None) -> list[tuple[int, int, float]]:
     """(first, last, offset) position ranges of the closed stretches of one row profile.
 
     ``sigma`` [K] is the module-to-module spread; a stretch's offset must reach ``seam_z``
-    standard errors of the difference of the two means (inside and outside).
+    standard errors of the difference of the two means (inside and outside). ``st``: the
+    profile's steps (:func:`_steps`) when already computed.
     """
     w = int(cfg["window_modules"])
     n = len(t)
     if n < 2 * w:
         return []
-    st = _steps(t, w)
+    st = _steps(t, w) if st is None else st
     a = np.abs(np.nan_to_num(st, nan=0.0))
     sgn = np.sign(np.nan_to_num(st, nan=0.0))
     # the strongest edge of its sign within two boundaries (a short stretch has its opposite
@@ -206,14 +212,21 @@ def find_stretches(modules: pd.DataFrame, t_median: np.ndarray, settings: Any = 
     diffs = np.concatenate([np.diff(t[mem]) for _, mem in rows if len(mem) > 1] or [np.zeros(0)])
     diffs = diffs[np.isfinite(diffs)]
     sigma = float(1.4826 * np.median(np.abs(diffs - np.median(diffs))) / np.sqrt(2.0)) if diffs.size >= 10 else 0.0
+    # steps of all rows of one length in one vectorised call
+    w = int(cfg["window_modules"])
+    steps = {}
+    for length in {len(mem) for _, mem in rows}:
+        same = [(k, mem) for k, mem in rows if len(mem) == length]
+        st = _steps(np.stack([t[mem] for _, mem in same]), w)
+        steps.update({k: st[j] for j, (k, _) in enumerate(same)})
     found = []  # (row key, modules, offset)
     for k, mem in rows:
-        for first, last, offset in _closed_stretches(t[mem], cfg, sigma):
+        for first, last, offset in _closed_stretches(t[mem], cfg, sigma, steps[k]):
             found.append((int(k), mem[first:last + 1], offset))
     tol_abs, tol_rel = float(cfg["match_abs_k"]), float(cfg["match_rel"])
     out = []
     for j, (k, seg, off) in enumerate(found):
-        if sid is not None and len(set(sid[seg])) > 1:
+        if sid is not None and len(set(sid[seg]) - {""}) > 1:  # modules without a string do not count
             out.append(Stretch(seg, off, "strings"))
             continue
         cols = set(col[seg].tolist())

@@ -173,3 +173,13 @@ def test_pipeline_levels_a_seam_painted_into_the_ortho(tmp_path):
     other = [res[m] - truth[m] for m in truth if m not in set(sel.module_id)]
     assert abs(np.median(err) - np.median(other)) < 0.6
     assert abs(np.median(err) - np.median(other) + st["offset_k"]) > 1.5  # where they were before
+
+
+def test_modules_without_a_string_do_not_make_a_stretch_cross_strings(rng):
+    # a raised run inside one string (a possible open string) stays a defect's business even
+    # when the layout leaves a module of it without a string id
+    m, t = _rows(rng, cols=36)
+    idx = _sel(m, 1, 13, 24)
+    t[idx] += 2.5
+    m.loc[idx[3], "string_id"] = None
+    assert seams.find_stretches(m, t) == []
