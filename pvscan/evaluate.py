@@ -254,9 +254,11 @@ def evaluate(truth_dir, result_dir, settings=None) -> dict:
     for g, members in sorted(groups.items()):
         tl = float(t_loss[members].sum())
         pl = float(p_loss_z[members].sum())
+        # found and named right: every module of the anomaly given the true class
+        right = all(p_def[i] == t_def[i] for i in members)
         per_anomaly.append({"defect": t_def[members[0]], "module_id": tp[members[0]]["module_id"],
                             "n_modules": len(members), "true_w": _f(tl), "predicted_w": _f(pl),
-                            "rel_error": _f((pl - tl) / tl if tl else None)})
+                            "rel_error": _f((pl - tl) / tl if tl else None), "classified_right": right})
     # the classes whose loss follows from electrical rules or the thermal deficit, together:
     # truth over the injected modules of those classes, prediction over the modules the
     # result puts in those classes (a missed module counts as zero, a wrong one against)
@@ -264,14 +266,25 @@ def evaluate(truth_dir, result_dir, settings=None) -> dict:
     grp_p = float(sum(_num(p.get("power_loss_w")) for p in rp
                       if _defect(p.get("defect")) in LOSS_GROUP_KINDS and np.isfinite(_num(p.get("power_loss_w")))))
     rel = [abs(a["rel_error"]) for a in per_anomaly if a["rel_error"] is not None]
+    # the same over the anomalies found and named right: how good the loss rules are when
+    # detection is (a missed anomaly counts as -100 % above, whatever the rule)
+    rel_ok = [abs(a["rel_error"]) for a in per_anomaly if a["rel_error"] is not None and a["classified_right"]]
     loss_group = {"kinds": list(LOSS_GROUP_KINDS), "true_total_w": _f(grp_t), "predicted_total_w": _f(grp_p),
                   "ratio": _f(_ratio(grp_p, grp_t)), "n_anomalies": len(rel),
-                  "share_within_25pct": _f(_ratio(sum(1 for r in rel if r <= 0.25), len(rel)))}
+                  "share_within_25pct": _f(_ratio(sum(1 for r in rel if r <= 0.25), len(rel))),
+                  "n_classified_right": len(rel_ok),
+                  "share_within_25pct_classified_right": _f(_ratio(sum(1 for r in rel_ok if r <= 0.25),
+                                                                   len(rel_ok)))}
     loss_by_kind = {}
     for k in LOSS_GROUP_KINDS:
-        errs = [abs(a["rel_error"]) for a in per_anomaly if a["defect"] == k and a["rel_error"] is not None]
-        if errs:
-            loss_by_kind[k] = {"n": len(errs), "median_abs_rel_error": _f(np.median(errs))}
+        mine = [a for a in per_anomaly if a["defect"] == k and a["rel_error"] is not None]
+        if mine:
+            errs = [abs(a["rel_error"]) for a in mine]
+            loss_by_kind[k] = {"n": len(errs), "median_abs_rel_error": _f(np.median(errs)),
+                               "n_within_25pct": sum(1 for e in errs if e <= 0.25),
+                               "n_classified_right": sum(1 for a in mine if a["classified_right"]),
+                               "n_within_25pct_classified_right": sum(
+                                   1 for a in mine if a["classified_right"] and abs(a["rel_error"]) <= 0.25)}
 
     # temperatures
     t_true = np.array([_num(p.get("t_true_median_c")) for p in tp])
@@ -372,8 +385,14 @@ def format_report(scores: dict) -> str:
         lines.append(f"    true {fmt(g['true_total_w'])} W  predicted {fmt(g['predicted_total_w'])} W"
                      f"  ratio {fmt(g['ratio'])}; {fmt(g['share_within_25pct'], True)} of {g['n_anomalies']}"
                      " anomalies within 25 %")
+        if g.get("n_classified_right") is not None:
+            lines.append(f"    of the {g['n_classified_right']} found and named right:"
+                         f" {fmt(g['share_within_25pct_classified_right'], True)} within 25 %")
     for k, v in pl["per_kind"].items():
-        lines.append(f"  {k:<26} n={v['n']:<3} median |rel. error| {fmt(v['median_abs_rel_error'], True)}")
+        lines.append(f"  {k:<26} n={v['n']:<3} median |rel. error| {fmt(v['median_abs_rel_error'], True)}"
+                     + (f"  within 25 %: {v['n_within_25pct']}/{v['n']}"
+                        f" ({v['n_within_25pct_classified_right']}/{v['n_classified_right']} found and named right)"
+                        if "n_within_25pct" in v else ""))
     lines += ["", f"healthy modules: temperature RMSE {fmt(t['healthy_rmse_k'])} K, bias {fmt(t['healthy_bias_k'])} K"
               f" (RMSE {fmt(t.get('healthy_rmse_no_distractor_k'))} K away from distractors)",
               f"defective modules: median |error| of delta_t_norm_k {fmt(t['delta_t_norm_median_abs_error_k'])} K"]

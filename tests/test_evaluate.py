@@ -101,6 +101,13 @@ def test_scores_worked_by_hand(tmp_path):
     assert g["true_total_w"] == 1230.0 and g["predicted_total_w"] == 400.0
     assert g["ratio"] == pytest.approx(400 / 1230, abs=1e-6)
     assert g["n_anomalies"] == 2 and g["share_within_25pct"] == 0.5
+    # found and named right: only M0 (the open string was missed) -> 1 of 1 within 25 %
+    assert per["open_module"]["classified_right"] and not per["open_string"]["classified_right"]
+    assert g["n_classified_right"] == 1 and g["share_within_25pct_classified_right"] == 1.0
+    k = pl["per_kind"]
+    assert k["open_string"] == {"n": 1, "median_abs_rel_error": 1.0, "n_within_25pct": 0,
+                                "n_classified_right": 0, "n_within_25pct_classified_right": 0}
+    assert k["open_module"]["n_within_25pct_classified_right"] == 1
     # healthy RMSE: all errors +-0.3 K -> 0.3 K, bias 0
     t = s["temperature"]
     assert t["healthy_rmse_k"] == pytest.approx(0.3, abs=1e-6)
