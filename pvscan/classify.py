@@ -117,7 +117,7 @@ _CLASSIFY_DEFAULTS = {
     "open_string_min_modules": 2,
     "open_string_candidate_z": 1.5,
     "open_string_run_z": 5.0,
-    "open_string_ratio_min": 0.7,
+    "open_string_ratio_min": 0.55,
     "open_string_end_z": 1.0,
     "open_string_rest_max": 0.5,
     "open_string_beyond_max": 0.5,
@@ -1158,6 +1158,9 @@ def _raised_over_other_row_throughout(F: Features, cfg: Mapping, run) -> bool:
     one row over the other only where the seam is. The share of the run's modules less
     than ``open_string_cross_min`` of the rise above their other-row neighbour may be at
     most ``open_string_cross_fail_max`` (defects are sparse: a defective neighbour is rare).
+    The differences are taken relative to how the two rows compare beside the run (the
+    median difference of the run's own table row outside it, at least three modules; zero
+    when fewer): a seam or a shadow edge over the whole of one row shifts both alike.
     """
     cross = F.extra.get("cross_row")
     if cross is None:
@@ -1173,6 +1176,16 @@ def _raised_over_other_row_throughout(F: Features, cfg: Mapping, run) -> bool:
         return True
     r = run[usable]
     diff = F.t_median[r] - F.t_median[cross[r]]
+    row_key = F.extra.get("row_key")
+    if row_key is not None and row_key[run[0]] >= 0:
+        beside = np.flatnonzero(row_key == row_key[run[0]])
+        beside = beside[~np.isin(beside, run) & (cross[beside] >= 0)]
+        beside = beside[~np.isin(cross[beside], run)]
+        beside = beside[F.ok[beside] & F.ok[cross[beside]]]
+        d_beside = F.t_median[beside] - F.t_median[cross[beside]]
+        d_beside = d_beside[np.isfinite(d_beside)]
+        if d_beside.size >= 3:
+            diff = diff - float(np.median(d_beside))
     with np.errstate(invalid="ignore"):
         low = diff < float(cfg["open_string_cross_min"]) * F.rise[r]
     return float(low.mean()) <= float(cfg["open_string_cross_fail_max"])

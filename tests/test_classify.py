@@ -869,3 +869,24 @@ def test_seam_along_a_landscape_row_is_no_bypassed_substring(rng, monkeypatch):
     assert not {"bypassed_substring", "bypassed_substring_multi"} & set(an1.defect)
     an0, _ = p.run(settings=_with(substring_line_tol_m=-1.0))
     assert found(an0).get(p.index(table="T0-0", row=1, col=1)) == "bypassed_substring"
+
+
+def test_open_string_beside_a_row_a_seam_raises_is_still_an_open_string(rng):
+    # a mosaic seam warms the whole of row 1 of table T0-0 by 0.3 of the open-module rise;
+    # string T0-0-R2-S0 (modules 1..12 of row 2) is open, each module eta*G/U warmer (no
+    # current in any of them; common practice), two of them 0.35 of the rise less (the
+    # module-to-module spread of a real plant). Against row 1 alone those two stand only
+    # 0.35 of the rise higher, below open_string_cross_min (0.4), two in twelve, more than
+    # open_string_cross_fail_max (0.1); beside the run the two rows differ by -0.3 of the
+    # rise as well, and relative to that the run is raised throughout
+    p = Plant(rng, cols=24, strings="half")
+    m = p.modules
+    t00 = (m.table_id == "T0-0").to_numpy()
+    p.cm[t00 & (m.table_row == 1).to_numpy()] += 0.3 * open_rise()
+    run = np.flatnonzero((m.string_id == "T0-0-R2-S0").to_numpy())
+    p.cm[run] += open_rise()
+    p.cm[run[[3, 7]]] -= 0.35 * open_rise()
+    an, _ = p.run()
+    found = an[an.defect == "open_string"]
+    assert len(found) == 1, an[["module_id", "defect"]]
+    assert sorted(found.iloc[0]["module_ids"]) == sorted(m.module_id.iloc[run])
