@@ -19,7 +19,7 @@ import warnings
 from pathlib import Path
 
 from pvscan.evaluate import evaluate
-from pvscan.thermal import faiman_u
+from pvscan.loss import open_module_yardstick
 from pvscan.pipeline import inspect_flight
 from pvscan.simulate import simulate_flight
 
@@ -90,8 +90,8 @@ def deficit_bound(flight_dir: Path) -> list[float]:
     out = []
     for members in groups.values():
         loss = sum(float(p["power_loss_w"]) for p in members) / pmax  # [modules' output]
-        ys = [eta * float(p["poa_global"]) / float(faiman_u(float(p["wind_speed"]), float(cond["u0"]),
-                                                             float(cond["u1"]))) for p in members]
+        ys = [float(open_module_yardstick(float(p["poa_global"]), float(p["wind_speed"]), eta,
+                                          u0=float(cond["u0"]), u1=float(cond["u1"]))) for p in members]
         s = sigma * math.sqrt(sum(1.0 / y ** 2 for y in ys))
         out.append(math.erf(0.25 * loss / (math.sqrt(2.0) * s)))
     return out
