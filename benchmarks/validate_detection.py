@@ -23,7 +23,7 @@ from pvscan.loss import open_module_yardstick
 from pvscan.pipeline import inspect_flight
 from pvscan.simulate import simulate_flight
 
-DEFECTS = {"hot_cell": 6, "hot_cell_multi": 3, "bypassed_substring": 5, "bypassed_substring_multi": 2,
+DEFECTS = {"hot_cell": 6, "several_hot_cells": 3, "bypassed_substring": 5, "several_bypassed_substrings": 2,
            "open_module": 4, "open_string": 1, "pid": 3, "soiling": 3, "junction_box": 3}
 DISTRACT = {"cloud_shadows": 1, "reflections": 4, "seams": 4, "hot_objects": 2}
 

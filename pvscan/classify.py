@@ -74,11 +74,11 @@ ANOMALY_COLUMNS = [
 ]
 
 #: The defect vocabulary.
-DEFECTS = ("hot_cell", "hot_cell_multi", "bypassed_substring", "bypassed_substring_multi",
+DEFECTS = ("hot_cell", "several_hot_cells", "bypassed_substring", "several_bypassed_substrings",
            "open_module", "open_string", "pid", "soiling", "junction_box")
 
 #: Patterns whose region temperature is its 95th percentile (the others: the median).
-SPOT_DEFECTS = frozenset({"hot_cell", "hot_cell_multi", "junction_box"})
+SPOT_DEFECTS = frozenset({"hot_cell", "several_hot_cells", "junction_box"})
 
 _CLASSIFY_DEFAULTS = {
     "min_valid_fraction": 0.6,
@@ -134,8 +134,8 @@ _CLASSIFY_DEFAULTS = {
     "pid_excess_weight": 0.5,
     "pid_max_position": 0.5,
     "pid_warm_min_z": -0.5,
-    "precedence": ["open_string", "open_module", "bypassed_substring_multi", "bypassed_substring",
-                   "soiling", "junction_box", "pid", "hot_cell_multi", "hot_cell"],
+    "precedence": ["open_string", "open_module", "several_bypassed_substrings", "bypassed_substring",
+                   "soiling", "junction_box", "pid", "several_hot_cells", "hot_cell"],
 }
 
 _SEVERITY_DEFAULTS = {
@@ -528,7 +528,7 @@ def pattern_bypassed_substring(F: Features, cfg: Mapping, final: bool = True) ->
     Returns
     -------
     (Hits, Hits)
-        ``bypassed_substring`` and ``bypassed_substring_multi``; region temperature = the
+        ``bypassed_substring`` and ``several_bypassed_substrings``; region temperature = the
         median of the raised substrings.
     """
     n, B = F.n, F.nsub
@@ -592,7 +592,7 @@ def pattern_bypassed_substring(F: Features, cfg: Mapping, final: bool = True) ->
     # region temperature: median of the raised substrings' measured medians
     temp = _nanmedian(np.where(raised, F.extra["sub_median"], np.nan), axis=1)
     single = Hits("bypassed_substring", hit & (nr == 1), conf, temp)
-    multi = Hits("bypassed_substring_multi", hit & (nr >= 2), conf, temp)
+    multi = Hits("several_bypassed_substrings", hit & (nr >= 2), conf, temp)
     for i in np.flatnonzero(hit):
         ks = np.flatnonzero(raised[i])
         target = single if len(ks) == 1 else multi
@@ -786,7 +786,7 @@ def pattern_hot_cell(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
     Returns
     -------
     (Hits, Hits)
-        ``hot_cell`` (one cell) and ``hot_cell_multi`` (several); region temperature =
+        ``hot_cell`` (one cell) and ``several_hot_cells`` (several); region temperature =
         the hottest hot cell's p95.
     """
     base = F.base_sub[:, F.col_sub][:, None, :]
@@ -838,7 +838,7 @@ def pattern_hot_cell(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
     temp = np.where(count > 0, temp, np.nan)
     conf = _conf(_quality(xmax, thr))
     single = Hits("hot_cell", count == 1, conf, temp)
-    multi = Hits("hot_cell_multi", count >= 2, conf, temp)
+    multi = Hits("several_hot_cells", count >= 2, conf, temp)
     for i in np.flatnonzero(count):
         cells = np.argwhere(hot[i])
         target = single if count[i] == 1 else multi
@@ -1605,7 +1605,7 @@ def classify(modules, stats, conditions, module_spec, settings=None, confidence_
     open_own = by["open_module"].hit
     runs = F.extra["open_runs"]
     in_run = F.extra["in_run"]
-    any_area = in_run | open_own | by["bypassed_substring"].hit | by["bypassed_substring_multi"].hit
+    any_area = in_run | open_own | by["bypassed_substring"].hit | by["several_bypassed_substrings"].hit
     pid_runs = pattern_pid(F, cfg, groups, pos, is_string, any_area)
 
     g_cond = conditions["poa_global"].to_numpy(dtype=float) if "poa_global" in conditions else np.full(n, np.nan)
@@ -1727,7 +1727,7 @@ def assign_severity(anomalies: pd.DataFrame, settings=None) -> pd.DataFrame:
     dtn = pd.to_numeric(out["delta_t_norm_k"], errors="coerce").to_numpy(dtype=float)
     tmax = pd.to_numeric(out["t_max_c"], errors="coerce").to_numpy(dtype=float)
     spot = np.isin(d, list(SPOT_DEFECTS))
-    hot = np.isin(d, ["hot_cell", "hot_cell_multi"])
+    hot = np.isin(d, ["hot_cell", "several_hot_cells"])
     with np.errstate(invalid="ignore"):
         safety = (tmax >= float(cfg["safety_t_max_c"])) | (spot & (dtn >= float(cfg["safety_delta_t_norm_k"]))) \
             | ((d == "junction_box") & (dtn >= float(cfg["safety_junction_box_delta_t_norm_k"])))

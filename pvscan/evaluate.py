@@ -38,7 +38,7 @@ __all__ = ["evaluate", "format_report", "LOSS_GROUP_KINDS"]
 log = logging.getLogger(__name__)
 
 #: Defect kinds whose power loss is scored per anomaly (per defect instance).
-LOSS_GROUP_KINDS = ("bypassed_substring", "bypassed_substring_multi", "open_module", "open_string", "pid")
+LOSS_GROUP_KINDS = ("bypassed_substring", "several_bypassed_substrings", "open_module", "open_string", "pid")
 
 
 def _read_geojson(path: Path, err) -> dict:

@@ -7,7 +7,7 @@ substrings in series loses about ``k / n`` of its power when ``k`` substrings ar
 (the bypass diode carries the string current around them); an open-circuited module
 delivers nothing; an open string delivers nothing from any of its modules:
 
-- ``bypassed_substring``: ``pmax / n``; ``bypassed_substring_multi``: ``k * pmax / n``;
+- ``bypassed_substring``: ``pmax / n``; ``several_bypassed_substrings``: ``k * pmax / n``;
 - ``open_module``: ``pmax``; ``open_string``: ``pmax`` for every module of the run.
 
 *Thermal deficit* (``"thermal_deficit"``, for ``pid`` and area patterns over a module). By
@@ -21,7 +21,7 @@ operating power: ``power_loss_w_flight = f * P_op`` with ``P_op = pmax * G/1000 
 gamma_pmax * (T - 25))``, and ``power_loss_w = f * pmax`` at STC (the temperature factor
 cancels in the ratio, which is where ``gamma_pmax`` matters).
 
-*Heat balance* (``"heat_balance"``, for ``hot_cell``, ``hot_cell_multi``, ``soiling``,
+*Heat balance* (``"heat_balance"``, for ``hot_cell``, ``several_hot_cells``, ``soiling``,
 ``junction_box`` and spot/cell regions). The extra heat leaving a region of area ``A`` that
 is warmer by ``dT`` is ``U(v) * A * dT`` [W], plus the heat its conduction halo sheds,
 ``U(v) * dT * P * L`` for the region's inner edge length ``P`` and the laminate's lateral
@@ -84,12 +84,12 @@ log = logging.getLogger(__name__)
 #: Estimator of each defect class.
 DEFECT_METHOD = {
     "bypassed_substring": "electrical_rule",
-    "bypassed_substring_multi": "electrical_rule",
+    "several_bypassed_substrings": "electrical_rule",
     "open_module": "electrical_rule",
     "open_string": "electrical_rule",
     "pid": "thermal_deficit",
     "hot_cell": "heat_balance",
-    "hot_cell_multi": "heat_balance",
+    "several_hot_cells": "heat_balance",
     "soiling": "heat_balance",
     "junction_box": "heat_balance",
 }
@@ -529,7 +529,7 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
         Overrides both the manifest value and the clear-sky estimate. [kWh/kWp/yr]
     stats : ZonalStats, optional
         True-temperature statistics; with ``reference_c`` their ``cell_p95`` grid gives
-        each box of a multi-box spot region (``hot_cell_multi``) its own rise, so cooler
+        each box of a multi-box spot region (``several_hot_cells``) its own rise, so cooler
         cells of a cluster are not counted at the hottest cell's rise.
     reference_c : array-like, optional
         Local reference temperature of every module (aligned with the modules). [degC]

@@ -40,7 +40,7 @@ ACTIONS: dict[str, tuple[str, bool]] = {
         "Inspect the module front and back for cell cracks, broken glass, backsheet burns or "
         "shading objects; remove any local shading or dirt; replace the module if the cell is "
         "damaged or the hot spot persists.", True),
-    "hot_cell_multi": (
+    "several_hot_cells": (
         "Inspect the module for cracked or broken cells and glass and for local shading or dirt; "
         "measure the module's IV curve and replace it if its output is reduced or the glass or "
         "backsheet is damaged.", True),
@@ -48,7 +48,7 @@ ACTIONS: dict[str, tuple[str, bool]] = {
         "Check the substring's bypass diode and the cell interconnects (IV curve or diode test "
         "at the junction box); replace the module if a diode has failed short or a substring is "
         "interrupted.", True),
-    "bypassed_substring_multi": (
+    "several_bypassed_substrings": (
         "Check the bypass diodes and the cell interconnects of the affected substrings (IV curve "
         "or diode test at the junction box); replace the module if diodes have failed or "
         "substrings are interrupted.", True),
@@ -74,7 +74,7 @@ ACTIONS: dict[str, tuple[str, bool]] = {
 
 _DEFAULT_ACTION = ("Inspect the module and its electrical connections on site and decide on repair "
                    "or replacement.", True)
-_HOT_DEFECTS = {"hot_cell", "hot_cell_multi", "junction_box"}
+_HOT_DEFECTS = {"hot_cell", "several_hot_cells", "junction_box"}
 
 
 def _section(settings: Mapping | None, name: str) -> Mapping:

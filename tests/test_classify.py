@@ -127,7 +127,7 @@ class Plant:
     def bypass(self, i, subs, factor=1.0):
         for k in subs:
             self.cm[i][:, self.cols_of_sub(k)] += factor * open_rise(self.poa, self.wind)
-        self.truth[i] = "bypassed_substring" if len(subs) == 1 else "bypassed_substring_multi"
+        self.truth[i] = "bypassed_substring" if len(subs) == 1 else "several_bypassed_substrings"
 
     def open(self, i, label="open_module"):
         self.cm[i] += open_rise(self.poa, self.wind)
@@ -137,7 +137,7 @@ class Plant:
         for (a, c) in cells:
             self.cm[i, a, c] += rise
             self.peak[i] = max(self.peak[i], rise)
-        self.truth[i] = "hot_cell" if len(cells) == 1 else "hot_cell_multi"
+        self.truth[i] = "hot_cell" if len(cells) == 1 else "several_hot_cells"
 
     def junction_box(self, i, rise, k=1):
         A, C = self.spec.n_along, self.spec.n_across
@@ -286,12 +286,12 @@ def test_bypassed_substring(rng, orientation, rotation):
     assert mt.defect[i] == "bypassed_substring"
 
 
-def test_bypassed_substring_multi_half_cut(rng):
+def test_several_bypassed_substrings_half_cut(rng):
     p = Plant(rng, half_cut=True)
     i = p.index(table="T1-0", row=2, col=7)
     p.bypass(i, [1, 2])
     an, _ = p.run()
-    assert found(an) == {i: "bypassed_substring_multi"}
+    assert found(an) == {i: "several_bypassed_substrings"}
     assert an.iloc[0].region == "substrings"
     assert len(an.iloc[0].region_uv) == 2
 
@@ -372,16 +372,16 @@ def test_hot_cell(rng):
     assert a.delta_t_k == pytest.approx(15.0 + 1.65 * 0.25, abs=0.8)
 
 
-def test_hot_cell_multi_lists_every_cell(rng):
+def test_several_hot_cells_lists_every_cell(rng):
     p = Plant(rng, orientation="landscape")
     i = p.index(table="T0-1", col=4)
     p.hot(i, [(3, 1), (3, 2), (9, 5)], 12.0)
     an, _ = p.run()
-    assert found(an) == {i: "hot_cell_multi"}
+    assert found(an) == {i: "several_hot_cells"}
     assert len(an.iloc[0].region_uv) == 3
 
 
-@pytest.mark.parametrize("merge, expected", [(False, "hot_cell_multi"), (True, "hot_cell")])
+@pytest.mark.parametrize("merge, expected", [(False, "several_hot_cells"), (True, "hot_cell")])
 def test_touching_hot_cells(rng, merge, expected):
     # two touching hot cells, or one hot spot straddling two cells (footprint a few cm off)
     p = Plant(rng)
@@ -394,8 +394,8 @@ def test_touching_hot_cells(rng, merge, expected):
 
 
 @pytest.mark.parametrize("cells, expected", [
-    ([(3, 0), (4, 0), (4, 1)], "hot_cell_multi"),
-    ([(2, 2), (3, 2), (4, 2), (3, 3)], "hot_cell_multi"),
+    ([(3, 0), (4, 0), (4, 1)], "several_hot_cells"),
+    ([(2, 2), (3, 2), (4, 2), (3, 3)], "several_hot_cells"),
 ])
 def test_cluster_of_whole_hot_cells_is_several(rng, cells, expected):
     # a hot spot a few centimetres off the cell grid raises the median of at most two cells
@@ -517,7 +517,7 @@ def _one(defect, dtn, tmax):
     ("hot_cell", 5.0, 60.0, "monitor"),          # small hot cell: watch it
     ("hot_cell", 15.0, 70.0, "repair"),
     ("hot_cell", 45.0, 95.0, "safety"),          # large delta T (from memory: > 40 K)
-    ("hot_cell_multi", 20.0, 105.0, "safety"),   # above 100 degC (from memory: backsheet damage)
+    ("several_hot_cells", 20.0, 105.0, "safety"),   # above 100 degC (from memory: backsheet damage)
     ("junction_box", 25.0, 80.0, "safety"),      # junction box heating (from memory: > 20 K)
     ("junction_box", 8.0, 60.0, "repair"),
     ("soiling", 6.0, 60.0, "monitor"),
@@ -734,10 +734,10 @@ def test_seam_along_the_modules_across_rows_is_no_bypassed_substring(rng):
     step = -0.9 * open_rise()
     p.field(lambda x, y: np.where((x > xs) & (x < xe), step, 0.0))
     an, _ = p.run()
-    assert not {"bypassed_substring", "bypassed_substring_multi"} & set(an.defect), an[["module_id", "defect"]]
+    assert not {"bypassed_substring", "several_bypassed_substrings"} & set(an.defect), an[["module_id", "defect"]]
     # the rule is what keeps it quiet
     an0, _ = p.run(settings=_with(substring_line_tol_m=-1.0))
-    assert set(an0.defect) == {"bypassed_substring_multi"} and len(an0) == 3
+    assert set(an0.defect) == {"several_bypassed_substrings"} and len(an0) == 3
 
 
 def test_seam_step_carried_into_the_next_row_is_no_bypassed_substring(rng):
@@ -753,7 +753,7 @@ def test_seam_step_carried_into_the_next_row_is_no_bypassed_substring(rng):
     p.field(lambda x, y: np.where((x > xs) & (x < xe), np.where(y < y1 - 1.0, -0.75 * r,
                                                                 np.where(y < y1 + 3.0, -0.4 * r, 0.0)), 0.0))
     an, _ = p.run()
-    assert not {"bypassed_substring", "bypassed_substring_multi"} & set(an.defect), an[["module_id", "defect"]]
+    assert not {"bypassed_substring", "several_bypassed_substrings"} & set(an.defect), an[["module_id", "defect"]]
     an0, _ = p.run(settings=_with(substring_line_tol_m=-1.0))
     assert list(an0.module_index) == [p.index(table="T0-0", row=1, col=6)]
 
@@ -858,7 +858,7 @@ def test_seam_along_a_landscape_row_is_no_bypassed_substring(rng, monkeypatch):
     p.field(lambda x, y: np.where((x < x3) & (y > y0 - 0.01) & (y < y0 + WIDTH / 3),
                                   np.where(x < x2, 0.9 * r, 0.47 * r), 0.0))
     an, _ = p.run()
-    assert not {"bypassed_substring", "bypassed_substring_multi"} & set(an.defect), an[["module_id", "defect"]]
+    assert not {"bypassed_substring", "several_bypassed_substrings"} & set(an.defect), an[["module_id", "defect"]]
     # the straight-line rule is enough by itself: with the rule that the raise carries on
     # across the module's edge switched off, it still keeps the module quiet, and with
     # both off the seam patch is taken for a bypassed substring
@@ -866,7 +866,7 @@ def test_seam_along_a_landscape_row_is_no_bypassed_substring(rng, monkeypatch):
 
     monkeypatch.setattr(classify_mod, "_carried_across_edge", lambda F, raised, cand: np.zeros(F.n, bool))
     an1, _ = p.run()
-    assert not {"bypassed_substring", "bypassed_substring_multi"} & set(an1.defect)
+    assert not {"bypassed_substring", "several_bypassed_substrings"} & set(an1.defect)
     an0, _ = p.run(settings=_with(substring_line_tol_m=-1.0))
     assert found(an0).get(p.index(table="T0-0", row=1, col=1)) == "bypassed_substring"
 

@@ -45,7 +45,7 @@ def test_temperatures_and_normalised_delta_t(scores):
 
 def test_electrical_losses(scores):
     per = scores["power_loss"]["per_anomaly"]
-    kinds = ("bypassed_substring", "bypassed_substring_multi", "open_module", "open_string", "pid")
+    kinds = ("bypassed_substring", "several_bypassed_substrings", "open_module", "open_string", "pid")
     true = sum(a["true_w"] for a in per if a["defect"] in kinds)
     pred = sum(a["predicted_w"] for a in per if a["defect"] in kinds)
     assert abs(pred / true - 1.0) <= 0.15

@@ -144,7 +144,7 @@ AFTER = [
     {"module_ids": ["T02-R1-C01", "T02-R1-C02", "T02-R1-C03"], "defect": "open_string",
      "severity": "repair", "dtn": 4.3, "loss": 1200},
     {"module_id": "T02-R2-C01", "defect": "hot_cell", "severity": "monitor", "dtn": 12.4, "loss": 10},
-    {"module_id": "T01-R2-C01", "defect": "hot_cell_multi", "severity": "repair", "dtn": 14.0, "loss": 40},
+    {"module_id": "T01-R2-C01", "defect": "several_hot_cells", "severity": "repair", "dtn": 14.0, "loss": 40},
 ]
 EXPECTED = {  # module -> (change, repaired, suspicious)
     "T01-R1-C01": ("persisting", False, False),   # +0.8 K, within max(2, 3) K
@@ -573,7 +573,7 @@ def test_change_invariants_on_random_flights(tmp_path):
     """Seeded random pairs of flights: the change classes partition exactly the modules with an
     anomaly in either flight, and their definitions hold for every feature."""
     rng = np.random.default_rng(11)
-    kinds = ["hot_cell", "hot_cell_multi", "junction_box", "bypassed_substring", "soiling", "pid"]
+    kinds = ["hot_cell", "several_hot_cells", "junction_box", "bypassed_substring", "soiling", "pid"]
     ids = module_ids()
     for trial in range(3):
         flights = []

@@ -70,7 +70,7 @@ def test_bypassed_substring_against_single_diode(n_sub):
 def test_electrical_rules_in_estimate_loss():
     an = pd.DataFrame([
         _row("bypassed_substring", "substring", 6.0, [(0, 1, 0, 1 / 3)]),
-        _row("bypassed_substring_multi", "substrings", 9.0, [(0, 1, 0, 2 / 3)], idx=(1,)),
+        _row("several_bypassed_substrings", "substrings", 9.0, [(0, 1, 0, 2 / 3)], idx=(1,)),
         _row("open_module", "module", 7.0, idx=(2,)),
         _row("open_string", "modules", 7.0, idx=(3, 4, 5, 6)),
     ])
@@ -199,7 +199,7 @@ def test_hot_cell_cluster_uses_each_cells_rise():
     grid = np.full((1, 12, 6), 40.0)
     grid[0, 6, 3], grid[0, 7, 3] = 70.0, 50.0
     stats = SimpleNamespace(cell_p95=grid)
-    an = pd.DataFrame([_row("hot_cell_multi", "cells", 30.0, cells)])
+    an = pd.DataFrame([_row("several_hot_cells", "cells", 30.0, cells)])
     kw = dict(conditions=COND, site=None, settings={"sheet_conductance_w_k": 0.0})
     plain = loss.estimate_loss(an, SPEC, **kw)
     per_cell = loss.estimate_loss(an, SPEC, **kw, stats=stats, reference_c=[40.0])

@@ -590,7 +590,7 @@ def inspected(tmp_path_factory):
     from pvscan.simulate import simulate_flight
 
     d = tmp_path_factory.mktemp("e2e")
-    none = {k: 0 for k in ("hot_cell_multi", "bypassed_substring_multi", "open_string", "pid", "soiling")}
+    none = {k: 0 for k in ("several_hot_cells", "several_bypassed_substrings", "open_string", "pid", "soiling")}
     sc = {"site": {"name": "Test field Alder Reach (invented)", "lon": 11.37, "lat": 47.26},
           "array": {"table_rows": 2, "tables_per_row": 2, "rows": 2, "cols": 8, "rotation_deg": 12.0,
                     "modules_per_string": 8},

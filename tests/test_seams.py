@@ -136,8 +136,8 @@ def test_pipeline_levels_a_seam_painted_into_the_ortho(tmp_path):
     sc = {"site": {"name": "Test field Seam Hollow (invented)", "lon": 9.8, "lat": 47.5},
           "array": {"table_rows": 2, "tables_per_row": 1, "rows": 2, "cols": 16, "rotation_deg": 0.0,
                     "modules_per_string": 8},
-          "defects": {k: 0 for k in ("hot_cell", "hot_cell_multi", "bypassed_substring",
-                                     "bypassed_substring_multi", "open_module", "open_string", "pid",
+          "defects": {k: 0 for k in ("hot_cell", "several_hot_cells", "bypassed_substring",
+                                     "several_bypassed_substrings", "open_module", "open_string", "pid",
                                      "soiling", "junction_box")}}
     sim = simulate_flight(sc, tmp_path / "flight", seed=11)
     flight = load_flight(sim.manifest)

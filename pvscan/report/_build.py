@@ -50,10 +50,10 @@ SAFETY_CAUTIONS = (
 DEFECT_TEXT = {
     "hot_cell": "one cell clearly warmer than the rest of the module (cell crack, shading, "
                 "mismatch or local shunt)",
-    "hot_cell_multi": "several separate hot cells in one module",
+    "several_hot_cells": "several separate hot cells in one module",
     "bypassed_substring": "one bypass-diode substring uniformly warm: its current no longer flows "
                           "through the string (diode conducting)",
-    "bypassed_substring_multi": "two or more substrings of one module uniformly warm",
+    "several_bypassed_substrings": "two or more substrings of one module uniformly warm",
     "open_module": "the whole module uniformly warm: it delivers no power to the string",
     "open_string": "a run of modules of one string uniformly warm: the string is not producing",
     "pid": "warm modules toward one end of a string and cells warm at the frame edge: a pattern of "

@@ -33,7 +33,7 @@ __all__ = ["Defect", "ModuleGeometry", "place_defects", "SPOT_PATTERNS"]
 
 
 #: Patterns whose region temperature is its 95th percentile (the others use the median).
-SPOT_PATTERNS = frozenset({"hot_cell", "hot_cell_multi", "junction_box"})
+SPOT_PATTERNS = frozenset({"hot_cell", "several_hot_cells", "junction_box"})
 
 
 @dataclass(frozen=True)
@@ -119,7 +119,7 @@ class Defect:
         scale = float(dt_open) / geom.dt_open_ref  # reference -> this module's conditions
         if k in ("open_module", "open_string"):
             return np.full(u.shape, dt_open)
-        if k in ("bypassed_substring", "bypassed_substring_multi"):
+        if k in ("bypassed_substring", "several_bypassed_substrings"):
             sub = np.clip(np.floor(v * geom.bypass_diodes), 0, geom.bypass_diodes - 1)
             return np.where(np.isin(sub, p["substrings"]), dt_open, 0.0)
         if k == "pid":
@@ -127,7 +127,7 @@ class Defect:
             cj = np.clip(np.floor(v * geom.n_across).astype(int), 0, geom.n_across - 1)
             w = np.asarray(p["cell_weights"])
             return p["loss_fraction"] * dt_open * w[ci, cj]
-        if k in ("hot_cell", "hot_cell_multi"):
+        if k in ("hot_cell", "several_hot_cells"):
             out = np.zeros(u.shape)
             cu = geom.length_m / geom.n_along
             cv = geom.width_m / geom.n_across
@@ -159,9 +159,9 @@ def _boxes_of(d: Defect, geom: ModuleGeometry, gsd: float) -> list:
     nd = geom.bypass_diodes
     if d.kind in ("open_module", "open_string", "pid"):
         return [(0.0, 1.0, 0.0, 1.0)]
-    if d.kind.startswith("bypassed_substring"):
+    if d.kind in ("bypassed_substring", "several_bypassed_substrings"):
         return [(0.0, 1.0, k / nd, (k + 1) / nd) for k in p["substrings"]]
-    if d.kind.startswith("hot_cell"):
+    if d.kind in ("hot_cell", "several_hot_cells"):
         return [(i / geom.n_along, (i + 1) / geom.n_along, j / geom.n_across, (j + 1) / geom.n_across)
                 for i, j in p["cells"]]
     if d.kind == "soiling":
@@ -262,9 +262,9 @@ def place_defects(rng, sc: dict, fld, geom: ModuleGeometry) -> list[Defect]:
             p: dict = {}
             if kind == "bypassed_substring":
                 p["substrings"] = [int(rng.integers(nd))]
-            elif kind == "bypassed_substring_multi":
+            elif kind == "several_bypassed_substrings":
                 p["substrings"] = sorted(int(k) for k in rng.choice(nd, size=min(2, nd), replace=False))
-            elif kind in ("hot_cell", "hot_cell_multi"):
+            elif kind in ("hot_cell", "several_hot_cells"):
                 ncell = 1 if kind == "hot_cell" else int(rng.integers(2, 6))
                 lin = rng.choice(geom.n_along * geom.n_across, size=ncell, replace=False)
                 p["cells"] = [(int(c // geom.n_across), int(c % geom.n_across)) for c in lin]
@@ -324,7 +324,7 @@ def power_loss_stc(d: Defect, geom: ModuleGeometry, dt_open: float, u_total: flo
     k = d.kind
     if k in ("open_module", "open_string"):
         return geom.pmax_w
-    if k.startswith("bypassed_substring"):
+    if k in ("bypassed_substring", "several_bypassed_substrings"):
         return geom.pmax_w * len(d.params["substrings"]) / geom.bypass_diodes
     if k == "pid":
         return geom.pmax_w * d.params["loss_fraction"]

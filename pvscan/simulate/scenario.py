@@ -22,9 +22,9 @@ __all__ = ["DEFAULTS", "DEFECT_KINDS", "load_scenario", "scenario_from_dict"]
 #: Defect patterns the simulator can place (the project's defect vocabulary).
 DEFECT_KINDS = (
     "hot_cell",
-    "hot_cell_multi",
+    "several_hot_cells",
     "bypassed_substring",
-    "bypassed_substring_multi",
+    "several_bypassed_substrings",
     "open_module",
     "open_string",
     "pid",

@@ -8,7 +8,7 @@ Definitions follow the project's output contract:
   row within 6 m (centroid distance; widened to 15 m, then the whole row, when fewer than
   three are found), the module itself excluded.
 - ``delta_t_k``: the affected region's temperature minus the reference, the region's
-  temperature being its 95th percentile for spot patterns (hot_cell, hot_cell_multi,
+  temperature being its 95th percentile for spot patterns (hot_cell, several_hot_cells,
   junction_box) and its median for area patterns; for healthy modules the module median
   minus the reference.
 - ``delta_t_norm_k = delta_t_k * (1000 / G) * (U(v) / U(1))`` with ``U(v) = u0 + u1 * v`` and
