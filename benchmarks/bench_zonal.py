@@ -8,7 +8,7 @@ tiled, deflate-compressed float32 GeoTIFF, so building it needs little memory to
 It then measures, each in a fresh subprocess so every peak memory is that stage's own:
 
 * ``read``  - the time just to read and decode the raster: windowed reads of every block;
-* ``stats`` - :func:`pvscan.zonal.zonal_stats` (module + cell + substring statistics,
+* ``stats`` - :func:`pvscan.measure.zonal.zonal_stats` (module + cell + substring statistics,
   including the reads) with the pipeline's ``[zonal] workers`` threads, and again with
   one thread (plus its read-ahead thread);
 
@@ -166,8 +166,8 @@ def _maxrss_mb() -> float:
 
 def stage_read(out: Path) -> dict:
     """Windowed reads (raw decode) of every block of the ortho."""
-    from pvscan.ortho import open_orthos
-    from pvscan.settings import load_pipeline
+    from pvscan.io.ortho import open_orthos
+    from pvscan.io.settings import load_pipeline
 
     zonal = load_pipeline()["zonal"]
     rss0 = _maxrss_mb()
@@ -186,10 +186,10 @@ def stage_stats(out: Path, traced: bool = False, workers: int | None = None) -> 
     With ``traced`` the run is under ``tracemalloc`` (slower: for memory only)."""
     import pandas as pd
 
-    from pvscan.manifest import ModuleSpec
-    from pvscan.ortho import open_orthos
-    from pvscan.settings import load_pipeline
-    from pvscan.zonal import zonal_stats
+    from pvscan.io.manifest import ModuleSpec
+    from pvscan.io.ortho import open_orthos
+    from pvscan.io.settings import load_pipeline
+    from pvscan.measure.zonal import zonal_stats
 
     pipeline = load_pipeline()
     if workers is not None:

@@ -19,7 +19,7 @@ import warnings
 from pathlib import Path
 
 from pvscan.evaluate import evaluate
-from pvscan.loss import open_module_yardstick
+from pvscan.diagnose.loss import open_module_yardstick
 from pvscan.pipeline import inspect_flight
 from pvscan.simulate import simulate_flight
 

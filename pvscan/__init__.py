@@ -8,11 +8,11 @@ __all__ = ["__version__", "load_flight", "load_pipeline", "inspect_flight"]
 
 def __getattr__(name):  # lazy public API, so importing pvscan stays cheap
     if name == "load_flight":
-        from pvscan.manifest import load_flight
+        from pvscan.io.manifest import load_flight
 
         return load_flight
     if name == "load_pipeline":
-        from pvscan.settings import load_pipeline
+        from pvscan.io.settings import load_pipeline
 
         return load_pipeline
     if name == "inspect_flight":

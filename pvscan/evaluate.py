@@ -175,7 +175,7 @@ def evaluate(truth_dir, result_dir, settings=None) -> dict:
     mods = _read_geojson(result_dir / "modules.geojson", OutputError)
     rf = mods["features"]
     if settings is None:
-        from pvscan.settings import load_pipeline
+        from pvscan.io.settings import load_pipeline
 
         settings = load_pipeline()["evaluate"]
     match, how = _match(tf, rf, meta.get("epsg"), float(settings.get("min_id_match_fraction", 0.9)),

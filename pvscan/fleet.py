@@ -61,9 +61,9 @@ def result_folder(out_dir: Path, flight) -> Path:
 
 def _inspect_one(manifest: str, out_dir: str, pipeline_path: str | None, overwrite: bool,
                  report: bool) -> FlightOutcome:
-    from pvscan.manifest import load_flight
+    from pvscan.io.manifest import load_flight
     from pvscan.pipeline import inspect_flight
-    from pvscan.settings import load_pipeline
+    from pvscan.io.settings import load_pipeline
 
     try:
         flight = load_flight(manifest)

@@ -21,8 +21,8 @@ from typing import Any, Callable
 import numpy as np
 import pandas as pd
 
-from pvscan.manifest import Flight, load_flight
-from pvscan.settings import Pipeline, load_pipeline
+from pvscan.io.manifest import Flight, load_flight
+from pvscan.io.settings import Pipeline, load_pipeline
 
 __all__ = ["inspect_flight", "InspectionResult", "measure_flight", "true_statistics"]
 
@@ -81,7 +81,7 @@ def true_statistics(stats, params: dict):
     ZonalStats
         The same structure in true glass temperature [degC].
     """
-    from pvscan.radiometry import correct_statistics
+    from pvscan.physics.radiometry import correct_statistics
 
     table = correct_statistics(stats.table, **params)
     arrays = correct_statistics({k: getattr(stats, k) for k in _ORDER_ARRAYS},
@@ -90,7 +90,7 @@ def true_statistics(stats, params: dict):
 
 
 def _artefact_summary(seams, modules, enabled: bool) -> dict:
-    """summary.json's account of the row stretches levelled as image artefacts (pvscan.seams)."""
+    """summary.json's account of the row stretches levelled as image artefacts (pvscan.measure.seams)."""
     if not enabled or seams is None:
         return {"levelling": False}
     ids = modules["module_id"].astype(str).to_numpy() if "module_id" in modules else np.arange(len(modules)).astype(str)
@@ -112,12 +112,12 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         levelled for image artefacts along the rows when ``[seams] enabled``),
         ``stats_apparent`` (as measured), ``conditions`` (per module), ``flight_conditions``,
         ``validity``, ``orthos_info``, ``seams`` (``stretches``: list of
-        :class:`pvscan.seams.Stretch`; ``offsets_k``: (n,) offsets subtracted [K]).
+        :class:`pvscan.measure.seams.Stretch`; ``offsets_k``: (n,) offsets subtracted [K]).
     """
-    from pvscan import conditions as cond_mod
-    from pvscan import register, zonal
-    from pvscan.layout import read_layout
-    from pvscan.ortho import open_orthos
+    from pvscan.measure import conditions as cond_mod
+    from pvscan.measure import register, zonal
+    from pvscan.io.layout import read_layout
+    from pvscan.io.ortho import open_orthos
 
     timings = {} if timings is None else timings
     t0 = time.perf_counter()
@@ -160,7 +160,7 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
     timings["conditions"] = time.perf_counter() - t0
 
     t0 = time.perf_counter()
-    from pvscan.radiometry import flight_radiometry
+    from pvscan.physics.radiometry import flight_radiometry
 
     params = flight_radiometry(flight, conds, settings["radiometry"])
     stats = true_statistics(stats_app, params)
@@ -170,7 +170,7 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
     stretches: list = []
     seam_offsets = np.zeros(len(modules))
     if bool(settings["seams"]["enabled"]):
-        from pvscan import seams
+        from pvscan.measure import seams
 
         stretches = seams.find_stretches(modules, stats.table["t_median_c"].to_numpy(dtype=float), settings["seams"])
         stats, seam_offsets = seams.level_stats(stats, stretches)
@@ -203,7 +203,7 @@ def _check_out_dir(out_dir: Path, overwrite: bool) -> None:
 def write_results(folder: Path, *, modules, module_table: pd.DataFrame, anomalies: pd.DataFrame,
                   summary: dict, settings=None) -> dict:
     """Write every result file into ``folder`` (a staging folder); return name -> file name."""
-    from pvscan import outputs
+    from pvscan.io import outputs
 
     folder = Path(folder)
     outputs.write_modules_geojson(folder / "modules.geojson", modules, module_table, anomalies, settings=settings)
@@ -257,7 +257,8 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
     PvscanError
         On any bad input; nothing is left in ``out_dir``.
     """
-    from pvscan import classify, loss, outputs, rank
+    from pvscan.diagnose import classify, loss, rank
+    from pvscan.io import outputs
 
     if not isinstance(flight, Flight):
         flight = load_flight(flight)

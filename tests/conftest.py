@@ -138,7 +138,7 @@ def make_modules():
 @pytest.fixture
 def module_spec():
     """A 72-cell full-cell module with three bypass diodes (invented datasheet)."""
-    from pvscan.manifest import ModuleSpec
+    from pvscan.io.manifest import ModuleSpec
 
     return ModuleSpec(
         pmax_w=410.0, width_m=1.038, length_m=2.094, cells_across=6, cells_along=12, bypass_diodes=3
@@ -148,7 +148,7 @@ def module_spec():
 @pytest.fixture
 def module_spec_half_cut():
     """A 144-half-cell module with three bypass diodes (invented datasheet)."""
-    from pvscan.manifest import ModuleSpec
+    from pvscan.io.manifest import ModuleSpec
 
     return ModuleSpec(
         pmax_w=550.0, width_m=1.134, length_m=2.278, cells_across=6, cells_along=12, bypass_diodes=3,

@@ -3,7 +3,7 @@
 Each test builds a few tables of modules (module-local frames, optionally rotated,
 landscape or half-cut), gives every cell a temperature from the Faiman heat balance as
 computed by pvlib (the outside reference for module temperatures), adds one defect or one
-distractor, and checks what :func:`pvscan.classify.classify` reports.
+distractor, and checks what :func:`pvscan.diagnose.classify.classify` reports.
 
 Sources of the numbers used here:
 * module temperature and the open-module rise: pvlib.temperature.faiman (Faiman 2008,
@@ -22,8 +22,8 @@ import pandas as pd
 import pvlib
 import pytest
 
-from pvscan.classify import ANOMALY_COLUMNS, assign_severity, classify
-from pvscan.settings import load_pipeline
+from pvscan.diagnose.classify import ANOMALY_COLUMNS, assign_severity, classify
+from pvscan.io.settings import load_pipeline
 
 POA = 850.0
 TA = 25.0
@@ -664,8 +664,8 @@ def test_empty_and_stringless_inputs(rng):
 
 def test_built_in_defaults_match_the_pipeline_file():
     # library callers without a pipeline get the same choices as pipelines/post_flight.toml
-    from pvscan import thermal
-    from pvscan.classify import _CLASSIFY_DEFAULTS, _SEVERITY_DEFAULTS
+    from pvscan.diagnose import thermal
+    from pvscan.diagnose.classify import _CLASSIFY_DEFAULTS, _SEVERITY_DEFAULTS
 
     p = load_pipeline()
     for section, built_in in (("classify", _CLASSIFY_DEFAULTS), ("severity", _SEVERITY_DEFAULTS),
@@ -789,7 +789,7 @@ def test_open_module_floor_is_the_likelihood_ratio_boundary():
     # N(rise, s) modules are equal (Bayes decision boundary; scipy.stats.norm as reference)
     from scipy.stats import norm
 
-    from pvscan.classify import open_module_floor
+    from pvscan.diagnose.classify import open_module_floor
 
     s, prior = 0.6, 0.002
     for rise in (1.9, 3.0, 4.2):
@@ -862,7 +862,7 @@ def test_seam_along_a_landscape_row_is_no_bypassed_substring(rng, monkeypatch):
     # the straight-line rule is enough by itself: with the rule that the raise carries on
     # across the module's edge switched off, it still keeps the module quiet, and with
     # both off the seam patch is taken for a bypassed substring
-    import pvscan.classify as classify_mod
+    import pvscan.diagnose.classify as classify_mod
 
     monkeypatch.setattr(classify_mod, "_carried_across_edge", lambda F, raised, cand: np.zeros(F.n, bool))
     an1, _ = p.run()

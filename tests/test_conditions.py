@@ -3,7 +3,7 @@
 External references named beside each check: IEC TS 62446-3 acquisition limits (600 W/m2;
 28 km/h wind, from memory), the Beaufort scale (WMO; 4 Bft = 5.5-7.9 m/s, from memory),
 hand-computed linear interpolation and time-weighted means, published sky formulae via
-pvscan.radiometry (checked in test_radiometry.py).
+pvscan.physics.radiometry (checked in test_radiometry.py).
 """
 from __future__ import annotations
 
@@ -19,10 +19,10 @@ import pandas as pd
 import pytest
 import shapely
 
-from pvscan import conditions as cond
-from pvscan import radiometry
+from pvscan.measure import conditions as cond
+from pvscan.physics import radiometry
 from pvscan.errors import ConditionsError, ValidityWarning
-from pvscan.settings import load_pipeline
+from pvscan.io.settings import load_pipeline
 
 CRS = "EPSG:32633"
 START = datetime(2026, 6, 14, 10, 40, tzinfo=timezone(timedelta(hours=2)))
@@ -313,7 +313,7 @@ def test_specular_sky_view_uses_twice_the_tilt():
 
 def test_weather_columns_follow_schema():
     # The plausibility ranges and required columns come from schemas/weather.schema.json.
-    from pvscan.resources import load_schema
+    from pvscan.io.resources import load_schema
 
     schema = load_schema("weather.schema.json")
     assert set(schema["required"]) == {"time"} | {c for c, v in cond.WEATHER_COLUMNS.items() if v[1]}

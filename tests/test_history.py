@@ -26,9 +26,9 @@ from shapely.geometry import Polygon, mapping
 from pvscan import history as H
 from pvscan.cli.main import cli
 from pvscan.errors import HistoryError, OutputError, RegistrationWarning, ValidityWarning
-from pvscan.outputs import validate_geojson_rfc7946
-from pvscan.resources import load_schema, schema_errors
-from pvscan.settings import load_pipeline
+from pvscan.io.outputs import validate_geojson_rfc7946
+from pvscan.io.resources import load_schema, schema_errors
+from pvscan.io.settings import load_pipeline
 
 ROOT = Path(__file__).resolve().parent.parent
 U0, U1 = 25.0, 6.84  # Faiman defaults of pvlib.temperature.faiman (Faiman 2008)

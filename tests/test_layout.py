@@ -12,8 +12,8 @@ from shapely import affinity
 from shapely.geometry import Point, Polygon, box, mapping
 
 from pvscan.errors import LayoutError
-from pvscan.layout import build_modules, read_layout, region_polygon, xy_to_uv, FRAME_COLUMNS
-from pvscan.manifest import LayoutSpec
+from pvscan.io.layout import build_modules, read_layout, region_polygon, xy_to_uv, FRAME_COLUMNS
+from pvscan.io.manifest import LayoutSpec
 
 UTM32N = "EPSG:32632"
 W_MOD, L_MOD = 1.038, 2.094  # module width/length [m]

@@ -11,9 +11,9 @@ import pvlib
 import pytest
 from pvlib.singlediode import bishop88, estimate_voc
 
-from pvscan import loss
-from pvscan.manifest import ModuleSpec
-from pvscan.settings import load_pipeline
+from pvscan.diagnose import loss
+from pvscan.io.manifest import ModuleSpec
+from pvscan.io.settings import load_pipeline
 
 # An invented 72-cell, 3-substring module: 400 W on a 2.0 m x 1.0 m footprint (eta = 0.2).
 SPEC = ModuleSpec(pmax_w=400.0, width_m=1.0, length_m=2.0, cells_across=6, cells_along=12, bypass_diodes=3,
@@ -284,7 +284,7 @@ def test_energy_from_manifest_or_clear_sky_and_cost():
     import geopandas as gpd
     from shapely.geometry import box
 
-    from pvscan.manifest import LayoutSpec, Site
+    from pvscan.io.manifest import LayoutSpec, Site
 
     an = pd.DataFrame([_row("open_module", "module", 7.0)])
     site = Site(name="Invented Meadow", specific_yield_kwh_per_kwp=1150.0, tariff_per_kwh=0.08, currency="EUR")

@@ -6,7 +6,7 @@ import textwrap
 import pytest
 
 from pvscan.errors import ManifestError
-from pvscan.manifest import load_flight
+from pvscan.io.manifest import load_flight
 
 MANIFEST = """
 [site]

@@ -9,7 +9,7 @@ from rasterio.windows import Window
 from scipy.constants import zero_Celsius
 
 from pvscan.errors import OrthoError, PvscanError
-from pvscan.ortho import KELVIN_OFFSET, open_orthos
+from pvscan.io.ortho import KELVIN_OFFSET, open_orthos
 
 
 def test_kelvin_offset_is_codata_zero_celsius():
@@ -156,7 +156,7 @@ def test_read_overview_mosaic(write_tif, rng):
 def test_open_orthos_accepts_flight_like(write_tif):
     from types import SimpleNamespace
 
-    from pvscan.manifest import OrthoSpec
+    from pvscan.io.manifest import OrthoSpec
 
     p = write_tif("f.tif", np.full((4, 4), 300.0, "float32"))
     flight = SimpleNamespace(flight=SimpleNamespace(orthos=(p,)), ortho=OrthoSpec(units="kelvin"))

@@ -19,12 +19,12 @@ import pytest
 from pyproj import Transformer
 from shapely.geometry import Polygon, shape
 
-from pvscan import outputs
+from pvscan.io import outputs
 from pvscan.errors import OutputError
-from pvscan.loss import estimate_loss
-from pvscan.manifest import ModuleSpec
-from pvscan.rank import rank
-from pvscan.resources import load_schema, schema_errors
+from pvscan.diagnose.loss import estimate_loss
+from pvscan.io.manifest import ModuleSpec
+from pvscan.diagnose.rank import rank
+from pvscan.io.resources import load_schema, schema_errors
 
 CRS = "EPSG:32632"  # UTM 32N; the invented site lies near 47.6 N, 9.4 E
 L, W, GAP = 2.0, 1.0, 0.02

@@ -11,9 +11,9 @@ import pytest
 from click.testing import CliRunner
 
 from pvscan.cli.main import cli
-from pvscan.outputs import validate_geojson_rfc7946
+from pvscan.io.outputs import validate_geojson_rfc7946
 from pvscan.pipeline import inspect_flight
-from pvscan.resources import load_schema, schema_errors
+from pvscan.io.resources import load_schema, schema_errors
 from pvscan.simulate import simulate_flight
 
 

@@ -16,7 +16,7 @@ import pytest
 from scipy import constants as C
 from scipy import integrate, optimize
 
-from pvscan import radiometry as rad
+from pvscan.physics import radiometry as rad
 
 ZERO_C = C.zero_Celsius
 BAND = (7.5, 13.5)

@@ -10,8 +10,8 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from pvscan.rank import ACTIONS, LIVE_DC_NOTE, assign_anomaly_ids, rank, recommended_action
-from pvscan.settings import load_pipeline
+from pvscan.diagnose.rank import ACTIONS, LIVE_DC_NOTE, assign_anomaly_ids, rank, recommended_action
+from pvscan.io.settings import load_pipeline
 
 DEFECTS = list(ACTIONS)
 

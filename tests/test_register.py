@@ -1,4 +1,4 @@
-"""Tests of pvscan.register: layout-to-ortho co-registration.
+"""Tests of pvscan.measure.register: layout-to-ortho co-registration.
 
 The scenes are drawn here: rows of tables of modules (portrait, two module rows per table,
 tables of different lengths along a row) rendered into a raster with sub-pixel coverage,
@@ -21,7 +21,7 @@ from rasterio.windows import Window
 from scipy import ndimage
 
 from pvscan.errors import RegistrationError, RegistrationWarning
-from pvscan.register import (
+from pvscan.measure.register import (
     Registration,
     apply_shift,
     correlation_surface,
@@ -45,7 +45,7 @@ class Tile:
 
 
 class ArrayOrthos:
-    """Minimal ortho set over in-memory arrays (the read interface of pvscan.ortho)."""
+    """Minimal ortho set over in-memory arrays (the read interface of pvscan.io.ortho)."""
 
     def __init__(self, arrays, transforms, crs):
         self.arrays = arrays
@@ -459,7 +459,7 @@ def test_progress_reports_every_block():
 
 def test_register_settings_schema():
     from pvscan.errors import PipelineError
-    from pvscan.settings import load_pipeline
+    from pvscan.io.settings import load_pipeline
 
     pipe = load_pipeline()
     assert pipe["register"]["max_shift_m"] == 3.0
@@ -492,9 +492,9 @@ def _simulate(tmp_path_factory, name, **scenario):
 
 
 def _register_simulated(res, **settings):
-    from pvscan.layout import read_layout
-    from pvscan.manifest import load_flight
-    from pvscan.ortho import open_orthos
+    from pvscan.io.layout import read_layout
+    from pvscan.io.manifest import load_flight
+    from pvscan.io.ortho import open_orthos
 
     fl = load_flight(res.manifest)
     with open_orthos(fl.flight.orthos, fl.ortho) as orthos:
@@ -578,7 +578,7 @@ def test_align_command_writes_the_moved_layout(tmp_path_factory):
 def test_footprint_mappings_rasterise_like_the_geometries():
     # The vectorised GeoJSON mappings must burn exactly the pixels rasterio burns for the
     # shapely geometries themselves (reference: rasterio.features.rasterize).
-    from pvscan.register import _as_mappings
+    from pvscan.measure.register import _as_mappings
 
     mods = make_layout((500_000.0, 4_000_000.0), angle_deg=23.0)
     holed = shapely.box(500_000.0, 4_000_000.0, 500_006.0, 4_000_006.0).difference(
@@ -599,7 +599,7 @@ def test_footprint_mappings_rasterise_like_the_geometries():
 # A row's shadow on the ground is as wide as the row and uniform, so the edge
 # correlation can prefer it to the row; the glass temperature tells them apart.
 # References: module temperature by pvlib.temperature.faiman (Faiman 2008, Prog.
-# Photovolt. 16:307), turned into what the export reports by pvscan.radiometry
+# Photovolt. 16:307), turned into what the export reports by pvscan.physics.radiometry
 # (Planck band radiance, checked against CODATA in tests/test_radiometry.py); a shaded
 # ground strip near air temperature is common practice.
 # ----------------------------------------------------------------------------------
@@ -610,7 +610,7 @@ RADIOMETRY = {"emissivity": 0.85, "temp_sky_c": -12.0, "export_emissivity": 1.0,
 def _glass_apparent_c():
     import pvlib
 
-    from pvscan.radiometry import apparent_from_true
+    from pvscan.physics.radiometry import apparent_from_true
 
     t_true = float(pvlib.temperature.faiman(G_POA, T_AIR, WIND))
     return float(apparent_from_true(t_true, **RADIOMETRY))
@@ -710,9 +710,9 @@ def test_expected_module_apparent_temperature_follows_faiman(tmp_path_factory):
     import pandas as pd
     import pvlib
 
-    from pvscan import radiometry
-    from pvscan.manifest import load_flight
-    from pvscan.register import expected_module_apparent_c
+    from pvscan.physics import radiometry
+    from pvscan.io.manifest import load_flight
+    from pvscan.measure.register import expected_module_apparent_c
 
     res = _simulate(tmp_path_factory, "expected_t", conditions={"poa_irradiance_w_m2": 820.0, "ambient_c": 24.0,
                                                                 "wind_m_s": 2.5})
@@ -743,9 +743,9 @@ def test_simulated_tracker_rows_registered_on_the_glass(tmp_path_factory):
     # place (truth.json offset 0). Tolerance 0.1 m (one working pixel): the simulator's
     # glass edge and frame line sit a few centimetres off the drawn outline, while the
     # shadow lies a row width (1.8 m) away.
-    from pvscan.layout import read_layout
-    from pvscan.manifest import load_flight
-    from pvscan.ortho import open_orthos
+    from pvscan.io.layout import read_layout
+    from pvscan.io.manifest import load_flight
+    from pvscan.io.ortho import open_orthos
 
     res = _simulate(tmp_path_factory, "trackers_east",
                     site={"lon": -5.9, "lat": 37.4},

@@ -401,7 +401,7 @@ def test_colour_map_is_perceptually_ordered():
     CIE 1976 L*)."""
     import matplotlib
 
-    from pvscan.settings import load_pipeline
+    from pvscan.io.settings import load_pipeline
 
     name = load_pipeline()["report"]["colormap"]
     rgb = np.asarray(matplotlib.colormaps[name](np.linspace(0, 1, 64)))[:, :3]
@@ -641,8 +641,8 @@ def test_map_draws_modules_where_the_simulator_put_them(inspected):
     assert np.median(np.hypot(*(drawn - in_image).T)) < 0.1
     assert np.median(np.hypot(*(drawn - layout_xy).T)) == pytest.approx(float(np.hypot(*offset)), abs=0.05)
     # the same with the modules frame the pipeline hands over (layout positions, ortho CRS)
-    from pvscan.layout import read_layout
-    from pvscan.manifest import load_flight
+    from pvscan.io.layout import read_layout
+    from pvscan.io.manifest import load_flight
 
     frame = read_layout(load_flight(sim.manifest), crs)
     geo2 = _MapGeometry(data, crs, frame)
@@ -786,7 +786,7 @@ def test_map_marks_link_to_cards_at_the_anomaly(result, report_html):
 def test_open_module_close_up_stands_out_from_its_neighbours(report_html):
     """In the close-up of the open module (card 1) the neighbouring modules sit near the
     configured level (35 % of the colour window) and the warm module well above it."""
-    from pvscan.settings import load_pipeline
+    from pvscan.io.settings import load_pipeline
 
     level = load_pipeline()["report"]["crop_median_level"]
     card = report_html.split('id="a1"')[1].split("</article>")[0]

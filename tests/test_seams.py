@@ -11,7 +11,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from pvscan import seams
+from pvscan.measure import seams
 
 
 @dataclass
@@ -128,8 +128,8 @@ def test_pipeline_levels_a_seam_painted_into_the_ortho(tmp_path):
     import rasterio
     from rasterio.windows import from_bounds
 
-    from pvscan.layout import read_layout
-    from pvscan.manifest import load_flight
+    from pvscan.io.layout import read_layout
+    from pvscan.io.manifest import load_flight
     from pvscan.pipeline import inspect_flight
     from pvscan.simulate import simulate_flight
 

@@ -24,7 +24,7 @@ import rasterio
 from click.testing import CliRunner
 from scipy import constants, integrate, optimize
 
-from pvscan import radiometry
+from pvscan.physics import radiometry
 from pvscan.errors import OutputError, SimulationError
 from pvscan.simulate import build_scene, load_scenario, simulate_flight
 from pvscan.simulate.defects import heat_integral
@@ -106,7 +106,7 @@ def test_apparent_temperature_against_planck_quadrature(export):
 
 
 def test_radiance_round_trip_on_simulator_pixels():
-    # true -> apparent (simulator) -> true (pvscan.radiometry) within 0.05 K on every pixel.
+    # true -> apparent (simulator) -> true (pvscan.physics.radiometry) within 0.05 K on every pixel.
     scene = build_scene(_quiet(defects={"hot_cell": 1}, distractors={"reflections": 2}), 4)
     x, y = scene.pixel_centres(0, 0, scene.height, scene.width)
     s = scene.true_scene(x, y)
@@ -224,7 +224,7 @@ def test_flight_folder_follows_the_contract(tmp_path):
     }.items():
         for k in keys:
             assert k in man[table], f"[{table}] {k}"
-    from pvscan.manifest import load_flight
+    from pvscan.io.manifest import load_flight
 
     fl = load_flight(res.manifest)
     assert fl.flight.start <= fl.flight.end
@@ -248,7 +248,7 @@ def test_flight_folder_follows_the_contract(tmp_path):
     need = {"module_id", "table_id", "string_id", "string_index", "defect", "t_true_median_c",
             "reference_true_c", "delta_t_k", "delta_t_norm_k", "power_loss_w", "poa_global", "wind_speed"}
     assert need <= set(truth["features"][0]["properties"])
-    from pvscan.resources import load_schema, schema_errors
+    from pvscan.io.resources import load_schema, schema_errors
 
     assert not schema_errors(truth, load_schema("truth.schema.json"))
     assert sum(f["properties"]["defect"] is not None for f in truth["features"]) == 1
@@ -274,7 +274,7 @@ def test_southern_tiles_raw_gpkg_scenario(tmp_path):
         v = a.read(1, masked=True) * 0.01 - 273.15
         assert 0.0 < float(v.min()) and float(v.max()) < 90.0
     truth = json.loads(res.truth.read_text())
-    from pvscan.resources import load_schema, schema_errors
+    from pvscan.io.resources import load_schema, schema_errors
 
     schema = load_schema("truth.schema.json")
     assert not schema_errors(truth, schema)
@@ -304,15 +304,15 @@ def test_tracker_series_scenario_writes_weather_and_frames(tmp_path):
     assert len({round(p["poa_global"], 1) for p in truth}) > 1               # conditions vary
     pid = sorted((p["string_index"], p["power_loss_w"]) for p in truth if p["defect"] == "pid")
     assert pid[0][0] == 1 and all(a[1] > b[1] for a, b in zip(pid, pid[1:]))  # fades along the string
-    from pvscan.manifest import load_flight
+    from pvscan.io.manifest import load_flight
 
     load_flight(res.manifest)
 
 
 def test_frames_match_pvscan_layout(tmp_path):
-    # The simulator's module-local frame is the one pvscan.layout derives from the layout.
-    from pvscan.layout import read_layout
-    from pvscan.manifest import load_flight
+    # The simulator's module-local frame is the one pvscan.io.layout derives from the layout.
+    from pvscan.io.layout import read_layout
+    from pvscan.io.manifest import load_flight
 
     sc = dict(TINY, array=dict(TINY["array"], rotation_deg=7.0), layout={"offset_m": [0.5, -0.3]})
     res = simulate_flight(sc, tmp_path / "f", seed=4)
@@ -388,8 +388,8 @@ def test_demo_scenario_is_valid_and_sized():
 
 def test_shapefile_layout_reads_back_with_strings(tmp_path):
     # Shapefile field names stop at 10 characters: string_index is written as string_idx.
-    from pvscan.layout import read_layout
-    from pvscan.manifest import load_flight
+    from pvscan.io.layout import read_layout
+    from pvscan.io.manifest import load_flight
 
     sc = dict(TINY, layout={"format": "shp"}, export={"units": "kelvin"})
     res = simulate_flight(sc, tmp_path / "f", seed=8)

@@ -12,8 +12,8 @@ import pandas as pd
 import pvlib
 import pytest
 
-from pvscan.settings import load_pipeline
-from pvscan.thermal import (faiman_u, local_reference, module_centres, normalise_delta_t,
+from pvscan.io.settings import load_pipeline
+from pvscan.diagnose.thermal import (faiman_u, local_reference, module_centres, normalise_delta_t,
                             open_module_rise, reference_neighbours)
 
 ETA = 410.0 / (1000.0 * 1.038 * 2.094)

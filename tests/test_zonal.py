@@ -15,8 +15,8 @@ import pytest
 import shapely
 from rasterio.windows import Window
 
-from pvscan.ortho import open_orthos
-from pvscan.zonal import TABLE_COLUMNS, ZonalStats, measure_window, zonal_stats
+from pvscan.io.ortho import open_orthos
+from pvscan.measure.zonal import TABLE_COLUMNS, ZonalStats, measure_window, zonal_stats
 
 GSD = 0.05
 ORIGIN = (500_000.0, 4_000_000.0)
@@ -288,7 +288,7 @@ def test_equal_coverage_tie_keeps_first_tile(write_tif, make_modules, module_spe
 
 
 def test_half_cut_grid_and_pipeline_settings(write_tif, make_modules, module_spec_half_cut):
-    from pvscan.settings import load_pipeline
+    from pvscan.io.settings import load_pipeline
 
     data = np.full((100, 100), 33.0, "float32")
     path = write_tif("h.tif", data)
@@ -347,7 +347,7 @@ def test_missing_frame_columns(write_tif, module_spec):
 
 
 def test_read_window_matches_orthoset(scene):
-    from pvscan.ortho import read_window
+    from pvscan.io.ortho import read_window
 
     path, data, _ = scene
     with open_orthos(path) as o:

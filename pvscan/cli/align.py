@@ -29,9 +29,9 @@ def align_cmd(flight, out_path, pipeline_path, overwrite):
     east/north in the ortho's CRS [m], to be added to the layout. Exit codes: 0 success,
     1 bad input, 2 usage error, 3 internal error.
     """
-    from pvscan.manifest import load_flight
-    from pvscan.register import align_flight
-    from pvscan.settings import load_pipeline
+    from pvscan.io.manifest import load_flight
+    from pvscan.measure.register import align_flight
+    from pvscan.io.settings import load_pipeline
 
     fl = load_flight(flight)
     settings = load_pipeline(pipeline_path)

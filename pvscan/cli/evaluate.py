@@ -24,7 +24,7 @@ def evaluate_cmd(truth_dir, result_dir, json_path, pipeline_path):
     power-loss and temperature errors.
     """
     from pvscan.evaluate import evaluate, format_report
-    from pvscan.settings import load_pipeline
+    from pvscan.io.settings import load_pipeline
 
     scores = evaluate(truth_dir, result_dir, load_pipeline(pipeline_path)["evaluate"])
     if json_path is not None:

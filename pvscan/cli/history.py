@@ -27,7 +27,7 @@ def history_group():
 def add_cmd(site_db, result_dir, replace, pipeline_path):
     """Store the results of one `pvscan inspect` run (creates SITE.gpkg when needed)."""
     from pvscan.history import add_flight
-    from pvscan.settings import load_pipeline
+    from pvscan.io.settings import load_pipeline
 
     cfg = load_pipeline(pipeline_path)["history"]
     progress = Progress()
@@ -78,7 +78,7 @@ def list_cmd(site_db):
 def changes_cmd(site_db, flight_from, flight_to, out_path, pipeline_path):
     """Module-by-module change between two flights (default: the two latest)."""
     from pvscan.history import CHANGE_CLASSES, compare_flights, write_changes
-    from pvscan.settings import load_pipeline
+    from pvscan.io.settings import load_pipeline
 
     cfg = load_pipeline(pipeline_path)["history"]
     fc = compare_flights(site_db, flight_from, flight_to, settings=cfg)
@@ -107,7 +107,7 @@ def changes_cmd(site_db, flight_from, flight_to, out_path, pipeline_path):
 def trend_cmd(site_db, out_dir, overwrite, pipeline_path):
     """Counts, losses and temperatures per flight; per-module series."""
     from pvscan.history import site_trend, write_trend
-    from pvscan.settings import load_pipeline
+    from pvscan.io.settings import load_pipeline
 
     cfg = load_pipeline(pipeline_path)["history"]
     trend = site_trend(site_db, settings=cfg)

@@ -23,9 +23,9 @@ def inspect_cmd(flight, out_dir, pipeline_path, overwrite, no_report):
     Writes modules.geojson, anomalies.geojson, workorders.csv, pvscan.gpkg, summary.json and
     report.html. Exit codes: 0 success, 1 bad input, 2 usage error, 3 internal error.
     """
-    from pvscan.manifest import load_flight
+    from pvscan.io.manifest import load_flight
     from pvscan.pipeline import inspect_flight
-    from pvscan.settings import load_pipeline
+    from pvscan.io.settings import load_pipeline
 
     fl = load_flight(flight)
     settings = load_pipeline(pipeline_path)

@@ -26,7 +26,7 @@ def report_cmd(result_dir, out_path, orthos, pipeline_path):
     the anomaly crops; without it the map shows module temperatures.
     """
     from pvscan.report import write_report
-    from pvscan.settings import load_pipeline
+    from pvscan.io.settings import load_pipeline
 
     settings = load_pipeline(pipeline_path)["report"]
     progress = Progress()

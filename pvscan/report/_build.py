@@ -200,7 +200,7 @@ def _ortho_spec_and_paths(data: ResultData, flight, override=None) -> tuple[list
     manifest = data.manifest_path()
     if manifest is not None:
         try:
-            from pvscan.manifest import load_flight
+            from pvscan.io.manifest import load_flight
 
             fl = load_flight(manifest, check_files=False)
             spec = fl.ortho
@@ -513,7 +513,7 @@ def _series_plot(data: ResultData, flight, checks: list[dict], dpi: int) -> str:
         manifest = data.manifest_path()
         if manifest is not None:
             try:
-                from pvscan.manifest import load_flight
+                from pvscan.io.manifest import load_flight
 
                 series = load_flight(manifest, check_files=False).conditions.series
             except PvscanError:
@@ -731,7 +731,7 @@ rules take precedence over anything in this report.</p><ul class="cautions">{lis
 
 # ---------------------------------------------------------------------- main
 def _settings(settings: Mapping | None) -> dict:
-    from pvscan.settings import load_pipeline
+    from pvscan.io.settings import load_pipeline
 
     base = dict(load_pipeline()["report"])
     if settings is not None:
@@ -930,13 +930,13 @@ def write_report(result_dir: str | Path, out_path: str | Path | None = None, *, 
     out_path : path-like, optional
         Where to write; default ``result_dir / "report.html"``.
     orthos : OrthoSet, optional
-        The open thermal ortho (``pvscan.ortho.open_orthos``); left open. Without it the
+        The open thermal ortho (``pvscan.io.ortho.open_orthos``); left open. Without it the
         orthos of ``flight`` or of ``summary.json`` (``inputs.files``, ``inputs.manifest``)
         are opened; when none is readable the map shows module temperatures instead.
     modules : geopandas.GeoDataFrame, optional
         The modules frame in the ortho CRS, in the layout's positions (as drawn); the
         layout shift of ``summary.json`` is applied to draw it on the image.
-    flight : pvscan.manifest.Flight, optional
+    flight : pvscan.io.manifest.Flight, optional
         The flight (for its orthos and their units).
     stats : optional
         Accepted from the pipeline and not used: the report reads the result files.
@@ -954,7 +954,7 @@ def write_report(result_dir: str | Path, out_path: str | Path | None = None, *, 
     Path
         The written file.
     """
-    from pvscan.outputs import atomic_write
+    from pvscan.io.outputs import atomic_write
 
     del stats
     out = Path(out_path) if out_path is not None else Path(result_dir) / "report.html"

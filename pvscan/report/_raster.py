@@ -1,6 +1,6 @@
 """Thermal pixels for the report: a decimated site overview and small crops.
 
-Reads go through the ortho stage's :class:`pvscan.ortho.OrthoSet` (``.tiles``, ``.crs``,
+Reads go through the ortho stage's :class:`pvscan.io.ortho.OrthoSet` (``.tiles``, ``.crs``,
 ``.read(tile_index, window)`` and ``.read_overview(max_px)``, all giving apparent
 temperature [degC] with NaN for nodata). Memory stays bounded: the overview is a
 decimated read and a crop is one small window.
@@ -25,7 +25,7 @@ class ThermalView:
 
     Parameters
     ----------
-    orthos : pvscan.ortho.OrthoSet
+    orthos : pvscan.io.ortho.OrthoSet
         Open tiles of one flight (left open: the caller closes them).
     """
 
@@ -142,9 +142,9 @@ def open_thermal(paths: Sequence[str | Path], spec: Any = None):
 
     Returns
     -------
-    pvscan.ortho.OrthoSet
+    pvscan.io.ortho.OrthoSet
         A context manager; the caller closes it.
     """
-    from pvscan.ortho import open_orthos
+    from pvscan.io.ortho import open_orthos
 
     return open_orthos([Path(p) for p in paths], spec)

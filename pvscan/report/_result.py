@@ -250,7 +250,7 @@ def validity_checks(summary: Mapping) -> tuple[list[dict], bool | None]:
 
 
 def _read_json(path: Path) -> Any:
-    from pvscan.resources import read_json_file
+    from pvscan.io.resources import read_json_file
 
     return read_json_file(path, OutputError, "file not found in the result folder")
 

@@ -8,7 +8,7 @@ are laid out on a regular grid in (s, w), so finding the module (and its module-
 ``u, v``) of any pixel is a few floor divisions: no polygon tests, and memory bounded by
 the block being rendered.
 
-Conventions match :mod:`pvscan.layout`: row 1 is the module row at the lower edge,
+Conventions match :mod:`pvscan.io.layout`: row 1 is the module row at the lower edge,
 col 1 the table end with the smallest easting (northing for tables running north-south),
 module ids ``<table_id>-R<row>-C<col>`` with table ids ``TB<table row>-<table>`` (never a
 string that GDAL would read as a time, such as ``T0101``); the module-local frame has ``u`` along the long

@@ -15,7 +15,7 @@ from pathlib import Path
 from typing import Any
 
 from pvscan.errors import SimulationError
-from pvscan.resources import describe_error, load_schema, read_toml_file, schema_errors
+from pvscan.io.resources import describe_error, load_schema, read_toml_file, schema_errors
 
 __all__ = ["DEFAULTS", "DEFECT_KINDS", "load_scenario", "scenario_from_dict"]
 

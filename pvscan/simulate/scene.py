@@ -22,9 +22,9 @@ Physics, in the order it is applied to a pixel:
    shadow the tables cast (sun position from pvlib [2]_), plus a smooth texture; hot objects
    (inverter stations, a vehicle) sit on the ground between table rows.
 4. **Radiometry**: band radiance of glass (module emissivity, reflecting the sky from
-   :func:`pvscan.radiometry.sky_temperature`, warmer where a soft reflection patch lies)
+   :func:`pvscan.physics.radiometry.sky_temperature`, warmer where a soft reflection patch lies)
    and ground, through the air path, exported at the export emissivity and reflected
-   temperature (:func:`pvscan.radiometry.apparent_from_true`).
+   temperature (:func:`pvscan.physics.radiometry.apparent_from_true`).
 5. **Camera**: Gaussian point-spread function applied to the band radiance (the lens
    mixes radiance, not temperature).
 6. **Mosaic**: rectangular seams add a sharp step of 0.5-2 K to the apparent temperature;
@@ -47,7 +47,7 @@ from datetime import datetime, timedelta
 import numpy as np
 from scipy import ndimage
 
-from pvscan import radiometry
+from pvscan.physics import radiometry
 from pvscan.simulate.defects import ModuleGeometry, place_defects
 from pvscan.simulate.flightpath import plan_flight, weather_series
 from pvscan.simulate.geometry import build_field

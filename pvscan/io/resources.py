@@ -7,7 +7,7 @@ from pathlib import Path
 
 import jsonschema
 
-ROOT = Path(__file__).resolve().parent.parent
+ROOT = Path(__file__).resolve().parents[2]
 PIPELINES_DIR = ROOT / "pipelines"
 SCHEMAS_DIR = ROOT / "schemas"
 DEFAULT_PIPELINE = PIPELINES_DIR / "post_flight.toml"

@@ -128,7 +128,7 @@ class MaintenanceWarning(PvscanWarning):
 def _settings(settings: Mapping | None) -> Mapping:
     if settings is not None:
         return settings
-    from pvscan.settings import load_pipeline
+    from pvscan.io.settings import load_pipeline
 
     return load_pipeline()["history"]
 
@@ -182,7 +182,7 @@ ANOMALY_COLUMNS = ("delta_t_k", "delta_t_norm_k", "t_max_c", "power_loss_w",
 
 
 def _read_json(path: Path) -> Any:
-    from pvscan.resources import read_json_file
+    from pvscan.io.resources import read_json_file
 
     return read_json_file(path, HistoryError, "file not found (not a pvscan inspect result folder?)")
 
@@ -1485,7 +1485,7 @@ def compare_flights(db_path: str | Path, flight_from: str | None = None, flight_
     counts = {c: int((df["change"] == c).sum()) for c in CHANGE_CLASSES}
     counts["repaired"] = int(df["repaired"].sum())
     counts["suspicious"] = int(df["suspicious"].sum())
-    from pvscan.outputs import safety_cautions
+    from pvscan.io.outputs import safety_cautions
 
     return {"type": "FeatureCollection", "name": "changes",
             "flight_before": {"flight_id": f_from, "start": starts[f_from]},
@@ -1504,7 +1504,7 @@ def write_changes(changes: Mapping, out_path: str | Path) -> Path:
     OutputError
         When the file cannot be written.
     """
-    from pvscan.outputs import atomic_write
+    from pvscan.io.outputs import atomic_write
 
     p = Path(out_path)
     if p.parent and not p.parent.exists():
@@ -1752,7 +1752,7 @@ def write_trend(trend: Trend, out_dir: str | Path, *, overwrite: bool = False) -
     OutputError
         ``out_dir`` exists, is not empty and ``overwrite`` is false; or it cannot be written.
     """
-    from pvscan.outputs import atomic_write, staging_dir
+    from pvscan.io.outputs import atomic_write, staging_dir
 
     out = Path(out_dir)
     with staging_dir(out, overwrite=overwrite) as stage:

@@ -1,6 +1,6 @@
 """Pipeline settings: how to process (thresholds, margins, reference conditions).
 
-The facts of a flight live in its manifest (:mod:`pvscan.manifest`); how to process them
+The facts of a flight live in its manifest (:mod:`pvscan.io.manifest`); how to process them
 lives in a pipeline file, by default ``pipelines/post_flight.toml``. Each top-level table
 of that file is a *section* owned by one pipeline stage, validated by its own schema
 ``schemas/pipeline/<section>.schema.json``. A user copies the file, tunes it and passes it
@@ -14,7 +14,7 @@ from types import MappingProxyType
 from typing import Any
 
 from pvscan.errors import PipelineError
-from pvscan.resources import DEFAULT_PIPELINE, SCHEMAS_DIR, describe_error, load_schema, read_toml_file, schema_errors
+from pvscan.io.resources import DEFAULT_PIPELINE, SCHEMAS_DIR, describe_error, load_schema, read_toml_file, schema_errors
 
 __all__ = ["Pipeline", "load_pipeline", "SECTIONS"]
 

@@ -128,7 +128,7 @@ def _get(spec: Any, key: str, default: Any = None) -> Any:
 
 def _zonal_section(settings: Any) -> Mapping:
     if settings is None:
-        from pvscan.settings import load_pipeline
+        from pvscan.io.settings import load_pipeline
 
         return load_pipeline()["zonal"]
     if isinstance(settings, Mapping) and "zonal" in settings and isinstance(settings["zonal"], Mapping):
@@ -517,7 +517,7 @@ def open_orthos(paths: Any, spec: Any = None, settings: Any = None) -> OrthoSet:
     ----------
     paths : path-like, sequence of path-like, or Flight
         One or more single-band GeoTIFFs of one flight (tiles may overlap). A
-        :class:`pvscan.manifest.Flight` may be given instead, with ``spec`` omitted: its
+        :class:`pvscan.io.manifest.Flight` may be given instead, with ``spec`` omitted: its
         ``flight.orthos`` and ``ortho`` are used.
     spec : OrthoSpec or mapping, optional
         ``units`` ("celsius" | "kelvin"), ``scale``, ``offset`` (value = raw * scale +

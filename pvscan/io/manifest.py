@@ -20,7 +20,7 @@ from datetime import datetime, timezone
 from pathlib import Path
 
 from pvscan.errors import ManifestError
-from pvscan.resources import describe_error, load_schema, read_toml_file, schema_errors
+from pvscan.io.resources import describe_error, load_schema, read_toml_file, schema_errors
 
 __all__ = [
     "Flight",

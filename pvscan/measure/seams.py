@@ -94,7 +94,7 @@ def _steps(t: np.ndarray, w: int) -> np.ndarray:
     """Step at each boundary b (between positions b and b+1): median of the next ``w`` minus
     the median of the previous ``w`` (NaN where either side has fewer than two values).
     ``t`` is one row profile, or several of one length stacked (rows along axis 0)."""
-    from pvscan.classify import _nanmedian  # vectorised, no warning on empty windows
+    from pvscan.diagnose.classify import _nanmedian  # vectorised, no warning on empty windows
 
     t = np.asarray(t, dtype=float)
     n = t.shape[-1]
@@ -191,7 +191,7 @@ def find_stretches(modules: pd.DataFrame, t_median: np.ndarray, settings: Any = 
     -------
     list of Stretch
     """
-    from pvscan.thermal import _row_keys
+    from pvscan.diagnose.thermal import _row_keys
 
     cfg = _cfg(settings)
     n = len(modules)

@@ -30,7 +30,7 @@ bounded by ``workers`` blocks plus the result arrays (12 bytes per cell of each 
 
 A module seen by several tiles is measured from the tile with the most valid pixels
 (ties: the lower tile index). All temperatures are *apparent* [degC], as the ortho holds
-them; :mod:`pvscan.radiometry` converts them afterwards. Footprints of different modules
+them; :mod:`pvscan.physics.radiometry` converts them afterwards. Footprints of different modules
 should not overlap (as in a real layout); where they do, a pixel goes to the later module.
 """
 from __future__ import annotations
@@ -47,7 +47,7 @@ from affine import Affine
 from rasterio.features import rasterize
 from rasterio.windows import Window
 
-from pvscan.ortho import WARNINGS_LOCK, _zonal_section
+from pvscan.io.ortho import WARNINGS_LOCK, _zonal_section
 
 __all__ = ["ZonalStats", "zonal_stats", "measure_window", "TABLE_COLUMNS"]
 
@@ -586,7 +586,7 @@ def _run_block(reader, job: _Job, fr, grid, margins, quantum_k, transform) -> _B
 
 
 def _dask_task(tile, window, fr_sub, index, grid, margins, quantum_k, cache_mb):
-    from pvscan.ortho import read_window
+    from pvscan.io.ortho import read_window
 
     data = read_window(tile, window, cache_mb=cache_mb)
     return _measure(data, tile.window_transform(window), fr_sub, grid, margins, quantum_k, index=index)
@@ -609,11 +609,11 @@ def zonal_stats(
 
     Parameters
     ----------
-    orthos : pvscan.ortho.OrthoSet
+    orthos : pvscan.io.ortho.OrthoSet
         The open ortho tiles of the flight (values in apparent temperature [degC]).
     modules : geopandas.GeoDataFrame or pandas.DataFrame
         One row per module with the module-local frame columns ``fx0, fy0, fux, fuy,
-        fvx, fvy`` [m] in the ortho's CRS (see :mod:`pvscan.layout`).
+        fvx, fvy`` [m] in the ortho's CRS (see :mod:`pvscan.io.layout`).
     module_spec : ModuleSpec or mapping
         Gives ``n_along`` / ``n_across`` (or ``cells_along``, ``cells_across``,
         ``half_cut``) and ``bypass_diodes``.

@@ -48,7 +48,7 @@ from shapely.geometry import MultiPolygon, Point, Polygon, mapping
 from shapely.geometry.polygon import orient
 
 from pvscan.errors import OutputError
-from pvscan.resources import describe_error, load_schema, schema_errors
+from pvscan.io.resources import describe_error, load_schema, schema_errors
 
 __all__ = [
     "atomic_path",
@@ -537,11 +537,11 @@ def module_results(n_modules: int, anomalies: pd.DataFrame | None, pmax_w: float
     ``confidence``, ``anomaly_ids`` (list), ``power_loss_w`` [W] and
     ``energy_loss_kwh_per_year`` [kWh/yr]. A module's defect is that of its most urgent
     anomaly (lowest priority number; else safety > repair > monitor); its losses are its own
-    *shares* (:func:`pvscan.loss.module_losses`), so an open string's loss is split over its
+    *shares* (:func:`pvscan.diagnose.loss.module_losses`), so an open string's loss is split over its
     modules and plant totals never double count. Healthy modules get ``defect = None`` and
     zero loss. Given ``pmax_w`` [W], a module's summed shares are capped at its nameplate.
     """
-    from pvscan.loss import module_losses
+    from pvscan.diagnose.loss import module_losses
 
     out = pd.DataFrame({
         "defect": pd.Series([None] * n_modules, dtype=object),
@@ -656,7 +656,7 @@ def _table_id_of(modules, i):
 def anomalies_feature_collection(anomalies: pd.DataFrame, modules, decimals: int = 7,
                                  merge_gap_m: float = 0.05) -> dict:
     """The RFC 7946 FeatureCollection of ``anomalies.geojson`` (see :func:`write_anomalies_geojson`)."""
-    from pvscan.rank import assign_anomaly_ids
+    from pvscan.diagnose.rank import assign_anomaly_ids
 
     anomalies = assign_anomaly_ids(anomalies)
     if "priority" in anomalies.columns and len(anomalies):
@@ -699,7 +699,7 @@ def write_anomalies_geojson(path: str | os.PathLike, anomalies: pd.DataFrame, mo
         Classified, loss-estimated and ranked anomalies (columns of DEVELOPERS.md: ``module_index``,
         ``module_indices``, ``region_uv``, ``defect``, ``severity``, ``delta_t_k`` [K],
         ``power_loss_w`` [W], ``energy_loss_kwh_per_year`` [kWh/yr], ``priority``, ...).
-        Missing ``anomaly_id`` values are assigned by :func:`pvscan.rank.assign_anomaly_ids`.
+        Missing ``anomaly_id`` values are assigned by :func:`pvscan.diagnose.rank.assign_anomaly_ids`.
     modules_gdf : geopandas.GeoDataFrame
         The modules frame (positions as drawn, module-local frame columns).
     settings : mapping, optional
@@ -733,7 +733,7 @@ def workorders_table(anomalies: pd.DataFrame, modules_gdf, site_crs=None, settin
     """
     import geopandas as gpd
 
-    from pvscan.rank import assign_anomaly_ids
+    from pvscan.diagnose.rank import assign_anomaly_ids
 
     cfg = _settings(settings)
     site_crs = CRS.from_user_input(site_crs if site_crs is not None else modules_gdf.crs)
@@ -877,7 +877,7 @@ def write_geopackage(path: str | os.PathLike, modules, anomalies, workorders, se
     mod = gpd.GeoDataFrame(modules.drop(columns=[c for c in ("fx0", "fy0", "fux", "fuy", "fvx", "fvy")
                                                   if c in modules.columns]), crs=crs)
     if not isinstance(anomalies, gpd.GeoDataFrame):
-        from pvscan.rank import assign_anomaly_ids
+        from pvscan.diagnose.rank import assign_anomaly_ids
 
         an = assign_anomaly_ids(anomalies)
         geoms = anomaly_geometries(an, modules, cfg["merge_gap_m"])
@@ -971,7 +971,7 @@ def build_summary(*, modules, anomalies: pd.DataFrame | None, module_spec=None,
         Further top-level keys.
     """
     from pvscan import __version__
-    from pvscan.loss import module_losses
+    from pvscan.diagnose.loss import module_losses
 
     n = len(modules)
     an = anomalies if anomalies is not None else pd.DataFrame()

@@ -584,7 +584,7 @@ def read_layout(flight_or_path, crs, spec=None, module_spec=None):
     Parameters
     ----------
     flight_or_path : Flight or path-like
-        A :class:`pvscan.manifest.Flight` (its layout path, layout and module specs are
+        A :class:`pvscan.io.manifest.Flight` (its layout path, layout and module specs are
         used) or a path to the layout file (then give ``spec``).
     crs : pyproj.CRS or str
         Target CRS: the orthomosaic's (projected, metres).
@@ -599,7 +599,7 @@ def read_layout(flight_or_path, crs, spec=None, module_spec=None):
     """
     from pyproj import CRS
 
-    from pvscan.manifest import LayoutSpec
+    from pvscan.io.manifest import LayoutSpec
 
     if hasattr(flight_or_path, "flight"):
         flight = flight_or_path

@@ -46,7 +46,7 @@ A row's shadow on the ground can be as wide as the row and more uniform than the
 shadow strip better than the row itself, and no edge or texture statistic tells the two
 apart. Physics does: when the caller gives the apparent temperature sunlit glass should
 show at the flight's conditions (:func:`expected_module_apparent_c`: Faiman model, then
-the radiometric chain of :mod:`pvscan.radiometry`), the candidate shifts of all blocks
+the radiometric chain of :mod:`pvscan.physics.radiometry`), the candidate shifts of all blocks
 (down to ``plausibility_ratio`` of the best peak, and always the one nearest zero shift)
 are grouped, and the median apparent temperature each puts inside a sample of
 ``plausibility_modules`` footprints is measured (one windowed read per module). A
@@ -489,7 +489,7 @@ def _settings(settings) -> dict:
     out = dict(_DEFAULTS)
     if settings is None:
         try:
-            from pvscan.settings import load_pipeline
+            from pvscan.io.settings import load_pipeline
 
             settings = load_pipeline()["register"]
         except Exception:  # defaults above are the same values
@@ -499,7 +499,7 @@ def _settings(settings) -> dict:
     for k, v in dict(settings).items():
         out[k] = v
     from pvscan.errors import PipelineError
-    from pvscan.resources import describe_error, load_schema, schema_errors
+    from pvscan.io.resources import describe_error, load_schema, schema_errors
 
     errs = schema_errors(out, load_schema("pipeline/register.schema.json"))
     if errs:
@@ -825,18 +825,18 @@ def expected_module_apparent_c(flight: Any, pipeline: Any = None, *, strict: boo
     The true temperature follows the Faiman model, ``T = T_air + G / (u0 + u1 v)``
     (``G`` the plane-of-array irradiance [W/m2], ``v`` the wind speed [m/s], ``u0``,
     ``u1`` of the ``[reference]`` section), at the flight's mean conditions
-    (:func:`pvscan.conditions.flight_conditions`); it is turned into what the export
-    reports with :func:`pvscan.radiometry.apparent_from_true` and the keywords of
-    :func:`pvscan.radiometry.flight_radiometry` (module emissivity, reflected sky, the
+    (:func:`pvscan.measure.conditions.flight_conditions`); it is turned into what the export
+    reports with :func:`pvscan.physics.radiometry.apparent_from_true` and the keywords of
+    :func:`pvscan.physics.radiometry.flight_radiometry` (module emissivity, reflected sky, the
     export's emissivity and reflected temperature, air path).
 
     Parameters
     ----------
     flight : Flight
-        From :func:`pvscan.manifest.load_flight`.
+        From :func:`pvscan.io.manifest.load_flight`.
     pipeline : Pipeline, optional
         Its ``[conditions]``, ``[reference]`` (``u0``, ``u1``) and ``[radiometry]``
-        sections are used; default :func:`pvscan.settings.load_pipeline`.
+        sections are used; default :func:`pvscan.io.settings.load_pipeline`.
     strict : bool
         When False, a flight without usable conditions gives NaN (which switches the
         plausibility test of :func:`estimate_shift` off) instead of raising.
@@ -867,12 +867,12 @@ def expected_module_apparent_c(flight: Any, pipeline: Any = None, *, strict: boo
             return float("nan")
     import pandas as pd
 
-    from pvscan import radiometry
-    from pvscan.conditions import flight_conditions
-    from pvscan.thermal import U0_FAIMAN, U1_FAIMAN
+    from pvscan.physics import radiometry
+    from pvscan.measure.conditions import flight_conditions
+    from pvscan.diagnose.thermal import U0_FAIMAN, U1_FAIMAN
 
     if pipeline is None:
-        from pvscan.settings import load_pipeline
+        from pvscan.io.settings import load_pipeline
 
         pipeline = load_pipeline()
 
@@ -1485,7 +1485,7 @@ def align_flight(flight: Any, settings: Mapping | None = None, out_path: Any = N
     Parameters
     ----------
     flight : Flight
-        From :func:`pvscan.manifest.load_flight`.
+        From :func:`pvscan.io.manifest.load_flight`.
     settings : Pipeline or mapping, optional
         A pipeline (its ``[register]`` section is used) or the section itself.
     out_path : path-like, optional
@@ -1509,8 +1509,8 @@ def align_flight(flight: Any, settings: Mapping | None = None, out_path: Any = N
     from pathlib import Path
 
     from pvscan.errors import OutputError
-    from pvscan.layout import read_layout
-    from pvscan.ortho import open_orthos
+    from pvscan.io.layout import read_layout
+    from pvscan.io.ortho import open_orthos
 
     if out_path is not None:
         out_path = Path(out_path)
@@ -1525,7 +1525,7 @@ def align_flight(flight: Any, settings: Mapping | None = None, out_path: Any = N
         reg = estimate_shift(orthos, modules, settings, progress=progress, flight=flight)
     moved = apply_shift(modules, reg)
     if out_path is not None:
-        from pvscan.outputs import atomic_path
+        from pvscan.io.outputs import atomic_path
 
         with atomic_path(out_path, suffix=".tmp.gpkg") as tmp:
             moved.reset_index(drop=True).to_file(tmp, layer="modules", driver="GPKG", engine="pyogrio")

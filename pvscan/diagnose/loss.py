@@ -59,7 +59,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from pvscan.thermal import faiman_u  # one Faiman model for every stage
+from pvscan.diagnose.thermal import faiman_u  # one Faiman model for every stage
 
 __all__ = [
     "estimate_loss",

@@ -4,7 +4,7 @@ Three sources, in this order of preference for each quantity:
 
 1. a weather series (CSV, :func:`read_weather_series`), interpolated linearly in time;
 2. the constants of the manifest's ``[conditions]`` table;
-3. a model, for the sky temperature only (:func:`pvscan.radiometry.sky_temperature`).
+3. a model, for the sky temperature only (:func:`pvscan.physics.radiometry.sky_temperature`).
 
 With camera frame footprints (:func:`read_frames`) each module takes the time of the frame
 that imaged it best (the frame containing the module centre whose own centre is closest
@@ -36,9 +36,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from pvscan import radiometry
+from pvscan.physics import radiometry
 from pvscan.errors import ConditionsError, ValidityWarning
-from pvscan.resources import load_schema
+from pvscan.io.resources import load_schema
 
 __all__ = [
     "WEATHER_COLUMNS",
@@ -91,7 +91,7 @@ _SPEC_KEYS = {
 
 def _settings(settings: Mapping | None) -> Mapping:
     if settings is None:
-        from pvscan.settings import load_pipeline
+        from pvscan.io.settings import load_pipeline
 
         return load_pipeline()["conditions"]
     return settings
@@ -408,7 +408,7 @@ def flight_conditions(spec, start, end, series: pd.DataFrame | None = None, *,
 
     Parameters
     ----------
-    spec : pvscan.manifest.ConditionsSpec or Mapping
+    spec : pvscan.io.manifest.ConditionsSpec or Mapping
         Constants ``poa_irradiance_w_m2`` [W/m2], ``ambient_c`` [degC], ``wind_m_s``
         [m/s], optional ``sky_c`` [degC], ``relative_humidity_pct`` [%], ``series`` (path,
         read when ``series`` is not given).
@@ -545,9 +545,9 @@ def module_conditions(modules, spec, start, end, series: pd.DataFrame | None = N
     Parameters
     ----------
     modules : geopandas.GeoDataFrame
-        Modules from :func:`pvscan.layout.read_layout` (module-local frame columns
+        Modules from :func:`pvscan.io.layout.read_layout` (module-local frame columns
         ``fx0 .. fvy``, else the footprint centroids are used).
-    spec : pvscan.manifest.ConditionsSpec or Mapping
+    spec : pvscan.io.manifest.ConditionsSpec or Mapping
         Manifest constants (see :func:`flight_conditions`).
     start, end : datetime
         Flight time span (tz-aware).
@@ -560,7 +560,7 @@ def module_conditions(modules, spec, start, end, series: pd.DataFrame | None = N
     tilt_deg : float, optional
         Module tilt [deg]. With ``sky_view = "specular"`` in the settings, a modelled sky
         is taken along the mirror direction of a nadir view, at zenith ``2 * tilt_deg``
-        (:func:`pvscan.radiometry.sky_temperature` with ``zenith_deg``).
+        (:func:`pvscan.physics.radiometry.sky_temperature` with ``zenith_deg``).
 
     Returns
     -------
@@ -717,7 +717,7 @@ def check_validity(conditions: FlightConditions, module_conditions: pd.DataFrame
         ``wind_speed`` enter the checks too.
     gsd_m : float, optional
         Ground sampling distance of the ortho [m/px].
-    module_spec : pvscan.manifest.ModuleSpec, optional
+    module_spec : pvscan.io.manifest.ModuleSpec, optional
         For the cell size: the shorter of ``width_m / n_across`` and ``length_m / n_along``.
     cell_size_m : float, optional
         Cell edge [m]; overrides ``module_spec``.
@@ -772,7 +772,7 @@ def check_validity(conditions: FlightConditions, module_conditions: pd.DataFrame
 # ---------------------------------------------------------------------------------------
 def conditions_for_flight(flight, modules, *, gsd_m: float | None = None,
                           settings: Mapping | None = None) -> tuple[FlightConditions, pd.DataFrame, Validity]:
-    """Flight conditions, per-module conditions and validity of a :class:`~pvscan.manifest.Flight`.
+    """Flight conditions, per-module conditions and validity of a :class:`~pvscan.io.manifest.Flight`.
 
     Reads ``flight.conditions.series`` and ``flight.flight.frames`` when given (frames in
     the modules' CRS), passes ``flight.layout.tilt_deg`` for the sky view and
@@ -780,7 +780,7 @@ def conditions_for_flight(flight, modules, *, gsd_m: float | None = None,
 
     Parameters
     ----------
-    flight : pvscan.manifest.Flight
+    flight : pvscan.io.manifest.Flight
     modules : geopandas.GeoDataFrame
         Modules (in the ortho's CRS) as measured.
     gsd_m : float, optional

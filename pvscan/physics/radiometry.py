@@ -1090,12 +1090,12 @@ def flight_radiometry(flight, conditions, settings: Mapping[str, Any] | None = N
 
     Parameters
     ----------
-    flight : pvscan.manifest.Flight
+    flight : pvscan.io.manifest.Flight
         Uses ``flight.module.emissivity``, ``flight.ortho.emissivity`` and
         ``flight.ortho.reflected_c`` (the export's assumptions), ``flight.flight.altitude_m``
         (path length) and ``flight.layout.tilt_deg`` (view angle of a nadir camera).
     conditions : pandas.DataFrame
-        Per-module conditions from :func:`pvscan.conditions.module_conditions`
+        Per-module conditions from :func:`pvscan.measure.conditions.module_conditions`
         (``temp_sky``, ``temp_air``, ``relative_humidity``).
     settings : Mapping, optional
         The ``[radiometry]`` pipeline section; default from ``pipelines/post_flight.toml``.
@@ -1107,7 +1107,7 @@ def flight_radiometry(flight, conditions, settings: Mapping[str, Any] | None = N
         ``transmission``, ``temp_atm_c``, ``band_um``; per-module values are 1-D arrays.
     """
     if settings is None:
-        from pvscan.settings import load_pipeline
+        from pvscan.io.settings import load_pipeline
 
         settings = load_pipeline()["radiometry"]
     band = tuple(float(b) for b in settings.get("band_um", DEFAULT_BAND_UM))

@@ -2,12 +2,12 @@
 
 Every module is compared with what its healthy neighbours look like, cell by cell:
 
-1. its reference temperature (:func:`pvscan.thermal.local_reference`, robust, same row
+1. its reference temperature (:func:`pvscan.diagnose.thermal.local_reference`, robust, same row
    first) and the *shape* its neighbours share (the median over the same neighbours of
    each cell's and substring's deviation from the neighbour's own median: cooler frames,
    warm ground seen at a lower edge, reflection gradients). The residual
    ``R = cell - reference - shape`` is what this module has and its neighbours have not;
-2. the physical yardstick ``eta * G / U(v)`` (:func:`pvscan.thermal.open_module_rise`):
+2. the physical yardstick ``eta * G / U(v)`` (:func:`pvscan.diagnose.thermal.open_module_rise`):
    a substring whose bypass diode conducts, a module or a string that is open, turns the
    power it no longer delivers into heat, so its residual plateau must fit that rise. A
    raised strip that fits it is a bypassed substring; a whole module at that rise is open;
@@ -44,7 +44,7 @@ import numpy as np
 import pandas as pd
 from scipy import ndimage
 
-from pvscan.thermal import (_REFERENCE_DEFAULTS, _section, faiman_u, local_reference,
+from pvscan.diagnose.thermal import (_REFERENCE_DEFAULTS, _section, faiman_u, local_reference,
                             normalise_delta_t, open_module_rise)
 
 __all__ = [
@@ -402,7 +402,7 @@ def adjacent_modules(modules: pd.DataFrame, tol: float = 0.3) -> np.ndarray:
     """
     from scipy.spatial import cKDTree
 
-    from pvscan.thermal import module_centres
+    from pvscan.diagnose.thermal import module_centres
 
     n = len(modules)
     out = np.full((n, 4), -1, dtype=np.int64)
@@ -1479,7 +1479,7 @@ def _geometry(modules: pd.DataFrame, nsub: int) -> dict:
             other_row = same_t & (trow[jj] != trow)
             cross = np.where((cross < 0) & other_row, j, cross)
             along[:, c] = np.where(same_t & (trow[jj] == trow), j, -1)
-    from pvscan.thermal import _row_keys
+    from pvscan.diagnose.thermal import _row_keys
 
     return {"adjacent": adj, "sub_centres": centres, "edge_points": edges, "cross_row": cross,
             "along_row": along, "row_key": _row_keys(modules),
@@ -1562,7 +1562,7 @@ def classify(modules, stats, conditions, module_spec, settings=None, confidence_
         module was imaged to judge it), ``confidence``.
     """
     if settings is None:
-        from pvscan.settings import load_pipeline
+        from pvscan.io.settings import load_pipeline
 
         settings = load_pipeline()
     cfg = _section(settings, "classify", _CLASSIFY_DEFAULTS)

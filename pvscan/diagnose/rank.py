@@ -161,7 +161,7 @@ def rank(anomalies: pd.DataFrame, settings: Mapping | None = None) -> pd.DataFra
     ----------
     anomalies : pandas.DataFrame
         Anomalies with ``severity``, ``defect``, ``confidence`` [0..1] and, after
-        :func:`pvscan.loss.estimate_loss`, ``energy_loss_kwh_per_year`` [kWh/yr] and
+        :func:`pvscan.diagnose.loss.estimate_loss`, ``energy_loss_kwh_per_year`` [kWh/yr] and
         ``power_loss_w`` [W].
     settings : mapping, optional
         The pipeline or its ``[rank]`` section: ``first_severities`` (list, default

@@ -1,0 +1,2 @@
+"""Everything that touches files: the flight manifest, pipeline settings, packaged resources,
+orthomosaics, layouts and the result writers."""

@@ -1,0 +1,2 @@
+"""Measuring the flight: layout-to-ortho registration, zonal statistics, seam levelling and
+per-module conditions."""

@@ -1,0 +1,1 @@
+"""Physics the pipeline measures with: radiometry (Planck band radiance, sky, atmosphere)."""
