@@ -1,6 +1,8 @@
 # pvscan: two commands do all the set-up on a fresh machine.
 #   make demo   -> creates .venv, installs, simulates the demo flight if needed, runs the pipeline
 #   make test   -> installs the test extras, runs the test suite
+#   make wheel-check -> builds a wheel, installs it (not editable) into a fresh venv in a
+#                  temporary folder and inspects a simulated flight from there (CI runs it)
 PYTHON ?= python3
 VENV   ?= .venv
 PY     := $(VENV)/bin/python
@@ -8,7 +10,7 @@ PVSCAN := $(VENV)/bin/pvscan
 DEMO_FLIGHT := demo_site/flight
 DEMO_OUT    := demo_out
 
-.PHONY: demo test install bench browser-deps clean
+.PHONY: demo test install bench browser-deps clean wheel-check test-floors
 
 $(VENV)/.installed: pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -28,6 +30,33 @@ demo: $(VENV)/.installed $(DEMO_FLIGHT)/flight.toml
 
 test: $(VENV)/.installed
 	$(PY) -m pytest -q
+
+# A real install: wheel -> fresh venv (no -e) -> `pvscan inspect` run outside the repository.
+wheel-check:
+	@set -e; work=$$(mktemp -d); trap 'rm -rf "$$work"' EXIT; repo=$$(pwd); \
+	$(PYTHON) -m venv "$$work/venv"; \
+	"$$work/venv/bin/pip" install --quiet --upgrade pip; \
+	"$$work/venv/bin/pip" wheel --quiet --no-deps -w "$$work/dist" .; \
+	"$$work/venv/bin/pip" install --quiet "$$work"/dist/pvscan-*.whl; \
+	cd "$$work"; \
+	"$$work/venv/bin/python" -c "import pvscan, sys; sys.exit(0 if '$$repo' not in pvscan.__file__ else 'pvscan imported from the repository')"; \
+	"$$work/venv/bin/pvscan" -q simulate "$$repo/tests/scenarios/all_defects_rotated.toml" --out flight --seed 1; \
+	"$$work/venv/bin/pvscan" inspect flight/flight.toml --out result; \
+	test -s result/summary.json -a -s result/report.html; \
+	echo "wheel-check: the installed wheel inspected a simulated flight in $$work"
+
+# The test suite with every runtime dependency at its floor in pyproject.toml (a numpy 1.26
+# stack; the two ignored warnings come from geopandas 1.0 / pyproj under numpy 1.26).
+FLOORS_VENV ?= .venv-floors
+test-floors:
+	$(PYTHON) -m venv $(FLOORS_VENV)
+	$(FLOORS_VENV)/bin/pip install --quiet --upgrade pip
+	$(FLOORS_VENV)/bin/pip install --quiet --only-binary :all: 'pyparsing<3.3' 'pytest>=8' 'hypothesis>=6.100' 'scikit-image==0.22.*' \
+	  $$($(PYTHON) -c "import tomllib; d = tomllib.load(open('pyproject.toml', 'rb'))['project']; print(' '.join(r.split('#')[0].split(';')[0].strip().replace('>=', '==') for r in d['dependencies']))")
+	$(FLOORS_VENV)/bin/pip install --quiet --no-deps -e .
+	$(FLOORS_VENV)/bin/python -m pytest -q -p no:cacheprovider \
+	  -W "ignore:The 'shapely.geos' module is deprecated:DeprecationWarning" \
+	  -W "ignore:Conversion of an array with ndim:DeprecationWarning"
 
 bench: $(VENV)/.installed
 	$(PY) benchmarks/bench_zonal.py

@@ -80,9 +80,10 @@ def test_stefan_boltzmann_wide_band(temp_k):
     for method in ("exact", "lut"):
         total = math.pi * rad.band_radiance(temp_k, (0.1, 1000.0), method=method)
         assert total == pytest.approx(C.Stefan_Boltzmann * temp_k**4, rel=1e-4)
-    # Practically infinite band: the series is exact to machine precision.
+    # Practically infinite band: the series is exact to machine precision. rel 1e-10: CODATA
+    # tabulates sigma to 10 digits, which scipy < 1.15 returns instead of the derived value.
     total = math.pi * rad.band_radiance(temp_k, (1e-4, 1e7), method="exact")
-    assert total == pytest.approx(C.Stefan_Boltzmann * temp_k**4, rel=1e-12)
+    assert total == pytest.approx(C.Stefan_Boltzmann * temp_k**4, rel=1e-10)
 
 
 @pytest.mark.parametrize("temp_c", [-80.0, -20.0, 0.0, 25.0, 60.0, 120.0, 400.0])

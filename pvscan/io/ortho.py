@@ -36,7 +36,7 @@ from affine import Affine
 from rasterio.coords import BoundingBox
 from rasterio.crs import CRS
 from rasterio.enums import MaskFlags, Resampling
-from rasterio.errors import NotGeoreferencedWarning, RasterioError
+from rasterio.errors import NotGeoreferencedWarning, RasterioError, RasterioIOError
 from rasterio.windows import Window
 
 from pvscan.errors import OrthoError
@@ -197,7 +197,7 @@ def _read_into(ds, tile: Tile, window: Window) -> np.ndarray:
     try:
         raw = ds.read(1, window=inner)
         mask = ds.read_masks(1, window=inner) if tile.has_mask else None
-    except RasterioError as exc:
+    except (RasterioError, RasterioIOError) as exc:  # RasterioIOError is no RasterioError before 1.4
         raise OrthoError(f"{tile.path}: cannot read window {inner}: {exc}") from None
     data = _to_celsius(raw, tile, mask)
     if (rr0, rr1, cc0, cc1) == (r0, r0 + h, c0, c0 + w):
@@ -266,7 +266,7 @@ def _open_one(path: Path, index: int, spec: Any, zonal: Mapping):
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", NotGeoreferencedWarning)
             ds = rasterio.open(path)
-    except RasterioError as exc:
+    except (RasterioError, RasterioIOError) as exc:  # RasterioIOError is no RasterioError before 1.4
         raise OrthoError(f"{path}: not a readable raster ({str(exc).splitlines()[0][:120]})") from None
     try:
         if ds.driver not in ("GTiff", "COG"):

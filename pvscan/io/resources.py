@@ -1,23 +1,49 @@
-"""Where the project's data files (pipelines/, schemas/) live, and JSON-Schema validation."""
+"""The package's data files (pipeline settings, JSON Schemas), and JSON-Schema validation.
+
+The repository keeps them in its top-level folders ``pipelines/`` and ``schemas/``; the build
+maps those folders into the package as ``pvscan.pipelines`` and ``pvscan.schemas``
+(``[tool.setuptools.package-dir]`` in ``pyproject.toml``), so an installed pvscan (editable or
+not) reads them with :mod:`importlib.resources`. A source checkout used without installing
+falls back to the top-level folders themselves.
+"""
 from __future__ import annotations
 
 import json
 from functools import lru_cache
+from importlib import resources
+from importlib.resources.abc import Traversable
 from pathlib import Path
 
 import jsonschema
 
-ROOT = Path(__file__).resolve().parents[2]
-PIPELINES_DIR = ROOT / "pipelines"
-SCHEMAS_DIR = ROOT / "schemas"
-DEFAULT_PIPELINE = PIPELINES_DIR / "post_flight.toml"
+__all__ = ["PIPELINES_DIR", "SCHEMAS_DIR", "DEFAULT_PIPELINE", "load_schema", "schema_errors",
+           "describe_error", "read_toml_file", "read_json_file"]
+
+
+def _data_dir(package: str, folder: str) -> Traversable:
+    """The folder of package data ``package`` (``pvscan.pipelines``), or the repository's
+    ``folder`` when pvscan runs from a source checkout that was not installed."""
+    try:
+        return resources.files(package)
+    except ModuleNotFoundError:
+        here = Path(__file__).resolve().parents[2] / folder
+        if here.is_dir():
+            return here
+        raise ImportError(f"pvscan is installed without its data files ({package}); reinstall it") from None
+
+
+PIPELINES_DIR: Traversable = _data_dir("pvscan.pipelines", "pipelines")
+SCHEMAS_DIR: Traversable = _data_dir("pvscan.schemas", "schemas")
+DEFAULT_PIPELINE: Traversable = PIPELINES_DIR / "post_flight.toml"
 
 
 @lru_cache(maxsize=None)
 def load_schema(name: str) -> dict:
     """Load ``schemas/<name>`` (e.g. ``"flight.schema.json"`` or ``"pipeline/zonal.schema.json"``)."""
-    with open(SCHEMAS_DIR / name, encoding="utf-8") as fh:
-        return json.load(fh)
+    node = SCHEMAS_DIR
+    for part in name.split("/"):
+        node = node / part
+    return json.loads(node.read_text(encoding="utf-8"))
 
 
 def schema_errors(instance, schema: dict) -> list[jsonschema.ValidationError]:
@@ -46,7 +72,7 @@ def read_toml_file(path, error_cls, what: str = "file") -> dict:
 
     Parameters
     ----------
-    path : path-like
+    path : path-like or importlib.resources.abc.Traversable
     error_cls : type
         A :class:`pvscan.errors.PvscanError` subclass.
     what : str
@@ -54,9 +80,10 @@ def read_toml_file(path, error_cls, what: str = "file") -> dict:
     """
     import tomllib
 
-    path = Path(path)
+    if not isinstance(path, Traversable):
+        path = Path(path)
     try:
-        with open(path, "rb") as fh:
+        with path.open("rb") as fh:
             return tomllib.load(fh)
     except FileNotFoundError:
         raise error_cls(f"{path}: {what} not found") from None

@@ -20,7 +20,8 @@ __all__ = ["Pipeline", "load_pipeline", "SECTIONS"]
 
 
 def _sections() -> tuple[str, ...]:
-    return tuple(sorted(p.name.split(".")[0] for p in (SCHEMAS_DIR / "pipeline").glob("*.schema.json")))
+    return tuple(sorted(p.name.split(".")[0] for p in (SCHEMAS_DIR / "pipeline").iterdir()
+                        if p.name.endswith(".schema.json")))
 
 
 SECTIONS = _sections()
