@@ -19,6 +19,8 @@ __all__ = [
     "SimulationError",
     "HistoryError",
     "OutputError",
+    "FleetError",
+    "MismatchError",
     "PvscanWarning",
     "ValidityWarning",
     "RegistrationWarning",
@@ -63,6 +65,14 @@ class HistoryError(PvscanError, OSError):
 
 class OutputError(PvscanError, OSError):
     """An output cannot be written (e.g. the folder exists and --overwrite is not given)."""
+
+
+class FleetError(PvscanError, ValueError):
+    """Flights given together cannot run together (e.g. two would write one result folder)."""
+
+
+class MismatchError(PvscanError, ValueError):
+    """Files given together belong to different flights (e.g. a truth and a result)."""
 
 
 class PvscanWarning(UserWarning):

@@ -33,7 +33,7 @@ import numpy as np
 
 from pvscan.errors import OutputError, SimulationError
 
-__all__ = ["evaluate", "format_report", "LOSS_GROUP_KINDS"]
+__all__ = ["evaluate", "format_report", "flight_identity_check", "LOSS_GROUP_KINDS"]
 
 log = logging.getLogger(__name__)
 
@@ -138,7 +138,78 @@ def _f(x):
     return None if not math.isfinite(x) else round(x, 6)
 
 
-def evaluate(truth_dir, result_dir, settings=None) -> dict:
+def _when(value):
+    """An aware datetime from ISO 8601 text, None when it is not one."""
+    from datetime import datetime
+
+    try:
+        t = datetime.fromisoformat(str(value).replace("Z", "+00:00"))
+    except ValueError:
+        return None
+    return t if t.tzinfo is not None else None
+
+
+def flight_identity_check(truth_path: Path, meta: dict, result_dir: Path, force: bool = False) -> dict:
+    """Check that a truth and a result are of the same flight: site, flight id, start time.
+
+    The truth's side comes from the ``flight.toml`` beside ``truth.geojson`` (else from the
+    truth's own ``pvscan_truth`` record), the result's from its ``summary.json``. Only what
+    both sides state is compared.
+
+    Returns
+    -------
+    dict
+        ``checked`` (names compared), ``differences`` (one line each), ``forced``.
+
+    Raises
+    ------
+    MismatchError
+        When they differ and ``force`` is false.
+    """
+    from pvscan.errors import ManifestError, MismatchError
+
+    truth_side: dict = {"site": meta.get("site"),
+                        "start": ((meta.get("scenario_settings") or {}).get("flight") or {}).get("start")}
+    manifest = truth_path.parent / "flight.toml"
+    if manifest.is_file():
+        from pvscan.io.manifest import load_flight
+
+        try:
+            fl = load_flight(manifest, check_files=False)
+            truth_side = {"site": fl.site.name, "flight_id": fl.flight.id, "start": fl.flight.start.isoformat()}
+        except ManifestError as exc:
+            log.warning("%s: cannot read the flight's identity: %s", manifest, exc)
+    summary_path = result_dir / "summary.json"
+    result_side: dict = {}
+    if summary_path.is_file():
+        try:
+            summary = json.loads(summary_path.read_text(encoding="utf-8"))
+        except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
+            raise OutputError(f"{summary_path}: not valid JSON: {exc}") from None
+        site = summary.get("site") if isinstance(summary, dict) else None
+        flight = summary.get("flight") if isinstance(summary, dict) else None
+        result_side = {"site": site.get("name") if isinstance(site, dict) else None,
+                       "flight_id": flight.get("id") if isinstance(flight, dict) else None,
+                       "start": flight.get("start") if isinstance(flight, dict) else None}
+    checked, differences = [], []
+    for key, label in (("site", "site"), ("flight_id", "flight id"), ("start", "start time")):
+        a, b = truth_side.get(key), result_side.get(key)
+        if a is None or b is None:
+            continue
+        checked.append(key)
+        same = (_when(a) == _when(b) and _when(a) is not None) if key == "start" else str(a) == str(b)
+        if not same:
+            differences.append(f"{label} {a!r} (truth) vs {b!r} (result)")
+    if not checked:
+        log.warning("%s / %s: no site, flight id or start time on both sides; cannot check that they "
+                    "are of one flight", truth_path, summary_path)
+    if differences and not force:
+        raise MismatchError(f"{truth_path} and {result_dir} are of different flights: "
+                            f"{'; '.join(differences)} (use --force to score them anyway)")
+    return {"checked": checked, "differences": differences, "forced": bool(differences and force)}
+
+
+def evaluate(truth_dir, result_dir, settings=None, *, force: bool = False) -> dict:
     """Score a result folder against a simulated flight's truth.
 
     Parameters
@@ -149,6 +220,9 @@ def evaluate(truth_dir, result_dir, settings=None) -> dict:
         The result folder of ``pvscan inspect`` (holding ``modules.geojson``).
     settings : mapping, optional
         The pipeline's ``[evaluate]`` section (default: ``load_pipeline()["evaluate"]``).
+    force : bool
+        Score a truth and a result of different flights anyway (see
+        :func:`flight_identity_check`; the scores record it under ``flight_check``).
 
     Returns
     -------
@@ -162,6 +236,9 @@ def evaluate(truth_dir, result_dir, settings=None) -> dict:
         The truth is missing or invalid.
     OutputError
         The result's modules.geojson is missing or invalid.
+    MismatchError
+        Truth and result are of different flights (site, flight id or start time) and
+        ``force`` is false.
     """
     truth_path = Path(truth_dir)
     if truth_path.is_dir() or truth_path.suffix.lower() not in (".geojson", ".json"):
@@ -173,6 +250,7 @@ def evaluate(truth_dir, result_dir, settings=None) -> dict:
         raise SimulationError(f"{truth_path}: no module features with module_id")
     meta = truth.get("pvscan_truth", {})
     mods = _read_geojson(result_dir / "modules.geojson", OutputError)
+    identity = flight_identity_check(truth_path, meta if isinstance(meta, dict) else {}, result_dir, force)
     rf = mods["features"]
     if settings is None:
         from pvscan.io.settings import load_pipeline
@@ -327,7 +405,7 @@ def evaluate(truth_dir, result_dir, settings=None) -> dict:
             reg = {"truth_offset_m": off, "reported_shift_m": list(shift), "error_m": _f(math.hypot(ex, ey))}
 
     return {
-        "truth": str(truth_path), "result": str(result_dir), "matched_by": how,
+        "truth": str(truth_path), "result": str(result_dir), "flight_check": identity, "matched_by": how,
         "n_modules": n, "n_matched": int(matched.sum()), "n_defective_true": int(t_bad.sum()),
         "n_defective_predicted": int(p_bad.sum()), "n_anomalies": n_anom,
         "module": {"true_positive": TP, "false_positive": FP, "false_negative": FN,
@@ -360,6 +438,8 @@ def format_report(scores: dict) -> str:
     m, pl, t = scores["module"], scores["power_loss"], scores["temperature"]
     lines = [f"truth  {scores['truth']}", f"result {scores['result']} (matched {scores['n_matched']}/"
              f"{scores['n_modules']} by {scores['matched_by']})", "",
+             *([f"DIFFERENT FLIGHTS (scored with --force): {'; '.join(scores['flight_check']['differences'])}", ""]
+               if (scores.get("flight_check") or {}).get("forced") else []),
              f"defective modules  true {scores['n_defective_true']}  predicted {scores['n_defective_predicted']}",
              f"precision {fmt(m['precision'], True)}   recall {fmt(m['recall'], True)}   F1 {fmt(m['f1'])}",
              f"false alarms per 1,000 healthy modules  {fmt(m['false_alarms_per_1000_healthy'])}"

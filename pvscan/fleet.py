@@ -15,7 +15,7 @@ import re
 from dataclasses import dataclass
 from pathlib import Path
 
-from pvscan.errors import PvscanError
+from pvscan.errors import FleetError, PvscanError
 
 __all__ = ["FlightOutcome", "inspect_fleet", "result_folder"]
 
@@ -39,6 +39,8 @@ class FlightOutcome:
         Number of anomalies found.
     power_loss_w : float
         Total power loss at STC [W].
+    warnings : tuple of str
+        Warnings recorded in the flight's ``summary.json`` (e.g. what the layout lacks).
     """
 
     manifest: str
@@ -47,6 +49,7 @@ class FlightOutcome:
     error: str = ""
     anomalies: int = 0
     power_loss_w: float = 0.0
+    warnings: tuple[str, ...] = ()
 
 
 def _slug(text: str) -> str:
@@ -57,6 +60,27 @@ def _slug(text: str) -> str:
 def result_folder(out_dir: Path, flight) -> Path:
     """``<out_dir>/<site id>/<flight id>`` with file-system-safe names."""
     return Path(out_dir) / _slug(flight.site.id or flight.site.name) / _slug(flight.flight.id)
+
+
+def _check_result_folders(manifests: list[str], out_dir: Path) -> None:
+    """Refuse, before any flight starts, two flights that would write the same result folder
+    (same site and flight id): one would silently replace the other. Manifests that do not
+    load are left to their task, which reports them as failed."""
+    from pvscan.io.manifest import load_flight
+
+    seen: dict[str, str] = {}
+    for m in manifests:
+        try:
+            flight = load_flight(m, check_files=False)
+        except PvscanError:
+            continue
+        folder = result_folder(out_dir, flight)
+        key = str(folder.resolve()).casefold()  # case-insensitive file systems fold names
+        if key in seen:
+            raise FleetError(
+                f"{seen[key]} and {m} would both write {folder} (site {flight.site.id or flight.site.name!r}, "
+                f"flight {flight.flight.id!r}); give one of them another [flight] id; no flight was started")
+        seen[key] = m
 
 
 def _inspect_one(manifest: str, out_dir: str, pipeline_path: str | None, overwrite: bool,
@@ -70,9 +94,11 @@ def _inspect_one(manifest: str, out_dir: str, pipeline_path: str | None, overwri
         settings = load_pipeline(pipeline_path)
         folder = result_folder(Path(out_dir), flight)
         res = inspect_flight(flight, settings, folder, overwrite=overwrite, report=report)
+        layout = res.summary.get("layout") or {}
         return FlightOutcome(manifest=manifest, out_dir=str(folder), ok=True,
                              anomalies=int(len(res.anomalies)),
-                             power_loss_w=float(res.summary.get("power_loss_w", 0.0)))
+                             power_loss_w=float(res.summary.get("power_loss_w", 0.0)),
+                             warnings=tuple(str(w) for w in layout.get("warnings") or ()))
     except PvscanError as exc:
         return FlightOutcome(manifest=manifest, out_dir=None, ok=False, error=" ".join(str(exc).split()))
 
@@ -106,10 +132,20 @@ def inspect_fleet(manifests, out_dir, *, pipeline=None, scheduler: str = "proces
     -------
     list of FlightOutcome
         In the order of ``manifests``; failed flights carry their one-line error.
+
+    Raises
+    ------
+    FleetError
+        Before any flight starts, when a manifest is given twice or two flights would write
+        the same result folder (same site and flight id).
     """
     import dask
 
     manifests = [str(Path(m)) for m in manifests]
+    same = sorted({m for m in manifests if manifests.count(m) > 1})
+    if same:
+        raise FleetError(f"{same[0]} is given more than once; no flight was started")
+    _check_result_folders(manifests, Path(out_dir))
     pipeline = None if pipeline is None else str(pipeline)
     total = len(manifests)
     if progress is not None:

@@ -191,8 +191,12 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
 
 
 def _check_out_dir(out_dir: Path, overwrite: bool) -> None:
-    """Fail before any work when the result folder exists and may not be replaced."""
+    """Fail before any work when the result folder exists and may not be replaced; remove
+    what killed runs left beside it (``outputs.clean_stale_staging``)."""
     from pvscan.errors import OutputError
+    from pvscan.io.outputs import clean_stale_staging
+
+    clean_stale_staging(out_dir)
 
     if out_dir.exists() and not out_dir.is_dir():
         raise OutputError(f"{out_dir}: exists and is not a folder")
@@ -311,6 +315,7 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
                                    "max": float(np.nanmax(v))})
                               for k, v in m["radiometry"].items()},
                "image_artefacts": _artefact_summary(m.get("seams"), modules, bool(settings["seams"]["enabled"])),
+               "layout": modules.attrs.get("layout", {}),
                "timings_s": {k: round(v, 3) for k, v in timings.items()}},
     )
     result = InspectionResult(out_dir=None, modules=modules.assign(**{c: table[c].to_numpy() for c in table}),

@@ -43,3 +43,26 @@ def test_fleet_cli_exit_code_on_failure(tmp_path):
     assert r.exit_code == 1
     assert "1 of 2 flights inspected" in r.output
     assert "not found" in r.output
+
+
+def test_fleet_refuses_two_flights_writing_one_folder_before_any_starts(tmp_path):
+    """A copy of a flight (same site, same flight id) would replace the other's results."""
+    a = simulate_flight(_small("Fleet twins (invented)", 46.0), tmp_path / "a", seed=4)
+    twin = tmp_path / "twin"
+    shutil.copytree(a.out_dir, twin)
+    out = tmp_path / "out"
+    for extra in ([], ["--overwrite"]):
+        r = CliRunner().invoke(cli, ["fleet", str(a.manifest), str(twin / "flight.toml"), "--out", str(out),
+                                     "--scheduler", "synchronous", "--no-report", *extra])
+        assert r.exit_code == 1, r.output
+        lines = r.stderr.strip().splitlines()
+        assert len(lines) == 1 and "would both write" in lines[0] and "no flight was started" in lines[0]
+        assert str(a.manifest) in lines[0] and str(twin / "flight.toml") in lines[0]
+        assert not out.exists()
+    # the same manifest twice is refused too; another flight id makes the twin welcome
+    r = CliRunner().invoke(cli, ["fleet", str(a.manifest), str(a.manifest), "--out", str(out)])
+    assert r.exit_code == 1 and "more than once" in r.stderr and not out.exists()
+    text = (twin / "flight.toml").read_text()
+    (twin / "flight.toml").write_text(text.replace("[flight]\n", "[flight]\nid = \"twin-2\"\n", 1))
+    outcomes = inspect_fleet([a.manifest, twin / "flight.toml"], out, scheduler="synchronous", report=False)
+    assert [o.ok for o in outcomes] == [True, True] and outcomes[0].out_dir != outcomes[1].out_dir

@@ -547,6 +547,14 @@ def test_cli_commands(site, tmp_path):
     assert "qualified" in r.stdout  # the on-site caution accompanies suspicious resolutions
     fc = json.loads(out.read_text())
     assert fc["type"] == "FeatureCollection" and len(fc["features"]) == 13
+    # like every writer, changes replaces an existing file only with --overwrite
+    before = out.read_bytes()
+    r = run(["history", "changes", site["db"], "--from", "HF-2026-07", "--to", "HF-2026-04", "--out", out])
+    assert r.exit_code == 1 and "--overwrite" in r.stderr and out.read_bytes() == before
+    r = run(["history", "changes", site["db"], "--from", "HF-2026-07", "--to", "HF-2026-04", "--out", out,
+             "--overwrite"])
+    assert r.exit_code == 0, r.output
+    assert json.loads(out.read_text())["flight_before"]["flight_id"] == "HF-2026-07"
     r = run(["history", "trend", site["db"], "--out", tmp_path / "tr"])
     assert r.exit_code == 0, r.output
     assert (tmp_path / "tr" / "loss.png").exists()

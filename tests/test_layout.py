@@ -12,7 +12,7 @@ from shapely import affinity
 from shapely.geometry import Point, Polygon, box, mapping
 
 from pvscan.errors import LayoutError
-from pvscan.io.layout import build_modules, read_layout, region_polygon, xy_to_uv, FRAME_COLUMNS
+from pvscan.io.layout import FRAME_COLUMNS, LayoutWarning, build_modules, read_layout, region_polygon, xy_to_uv
 from pvscan.io.manifest import LayoutSpec
 
 UTM32N = "EPSG:32632"
@@ -199,7 +199,8 @@ def test_geojson_properties_kept_as_written(tmp_path):
     gdf = gpd.GeoDataFrame({"table_id": ["T1006"], "string_id": ["0012"]}, geometry=[t], crs=UTM32N)
     p = tmp_path / "l.geojson"
     p.write_text(gdf.to_crs("EPSG:4326").to_json())
-    m = read_layout(p, UTM32N, LayoutSpec(rows=1, cols=2))
+    with pytest.warns(LayoutWarning, match="string_id gives 1 string id but no field gives"):
+        m = read_layout(p, UTM32N, LayoutSpec(rows=1, cols=2))  # a table's string: no positions
     assert list(m.table_id.unique()) == ["T1006"]
     assert list(m.string_id.unique()) == ["0012"]
     assert m.module_id.iloc[0] == "T1006-R1-C01"

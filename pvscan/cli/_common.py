@@ -1,8 +1,10 @@
 """Shared CLI helpers: logging set-up, error handling, progress bars."""
 from __future__ import annotations
 
+import contextlib
 import functools
 import logging
+import os
 import sys
 import traceback
 import warnings
@@ -52,7 +54,12 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
 
 
 def handle_errors(func):
-    """Run a command body; turn PvscanError into a one-line message and exit code 1."""
+    """Run a command body; turn PvscanError into a one-line message and exit code 1.
+
+    Errors of the machine rather than of pvscan (a full disk, a permission, a file that GDAL
+    or SQLite cannot write) are input errors too: one line naming the file, exit code 1.
+    Anything else is a bug: exit code 3.
+    """
 
     @functools.wraps(func)
     def wrapper(*args, **kwargs):
@@ -69,7 +76,22 @@ def handle_errors(func):
         except KeyboardInterrupt:
             click.echo("pvscan: interrupted; nothing was written", err=True)
             sys.exit(130)
-        except Exception as exc:  # a bug: short message, traceback only with -v
+        except BrokenPipeError:  # the reader went away (`pvscan ... | head`): stop quietly
+            with contextlib.suppress(OSError):
+                os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+            sys.exit(EXIT_INPUT)
+        except Exception as exc:
+            from pvscan.io.outputs import write_failure
+
+            why = write_failure(exc)
+            if why is not None:
+                # the machine, not pvscan: a full disk, a permission, a file GDAL or SQLite
+                # cannot write or read
+                name = getattr(exc, "filename", None)
+                click.echo(f"pvscan: error: {str(name) + ': ' if name else ''}{' '.join(why.split())}",
+                           err=True)
+                sys.exit(EXIT_INPUT)
+            # a bug: short message, traceback only with -v
             if verbosity() >= 1:
                 traceback.print_exc()
             msg = " ".join(str(exc).split())

@@ -2,6 +2,7 @@
 from __future__ import annotations
 
 import math
+import textwrap
 from pathlib import Path
 
 import click
@@ -102,6 +103,12 @@ def summary_lines(result_dir, top: int | None = None) -> list[str]:
         ns = len(art["stretches"])
         lines.append(f"image artefacts levelled: {ns} row stretch{'es' if ns != 1 else ''}, "
                      f"{int(art.get('levelled_modules') or 0)} modules (mosaic seams, reflections; see summary.json)")
+    lay = data.summary.get("layout") or {}
+    for w in (lay.get("warnings") or []) if isinstance(lay, dict) else []:
+        w = str(w)
+        if lay.get("file") and w.startswith(f"{lay['file']}: "):
+            w = w[len(lay["file"]) + 2:]
+        lines.extend(textwrap.wrap(f"! layout: {w}", _WIDTH, subsequent_indent="  "))
     root = Path(data.result_dir)
     lines.append(_cut(f"results in {root}/"))
     parts = []

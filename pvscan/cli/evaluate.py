@@ -16,18 +16,31 @@ from pvscan.cli._common import echo, handle_errors
               help="Also write the scores to this JSON file.")
 @click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
               help="Pipeline settings whose [evaluate] section sets the module matching.")
+@click.option("--force", is_flag=True,
+              help="Score a truth and a result of different flights (site, flight id, start) anyway.")
 @handle_errors
-def evaluate_cmd(truth_dir, result_dir, json_path, pipeline_path):
+def evaluate_cmd(truth_dir, result_dir, json_path, pipeline_path, force):
     """Score RESULT_DIR (from `pvscan inspect`) against TRUTH_DIR (from `pvscan simulate`).
 
     Prints detection precision/recall, per-class recall, the confusion matrix, false alarms,
-    power-loss and temperature errors.
+    power-loss and temperature errors. Refuses a truth and a result of different flights
+    (site, flight id or start time) unless --force is given.
     """
     from pvscan.evaluate import evaluate, format_report
     from pvscan.io.settings import load_pipeline
 
-    scores = evaluate(truth_dir, result_dir, load_pipeline(pipeline_path)["evaluate"])
+    from pvscan.io.outputs import atomic_write
+
+    scores = evaluate(truth_dir, result_dir, load_pipeline(pipeline_path)["evaluate"], force=force)
+    if scores["flight_check"]["forced"]:
+        click.echo("pvscan: warning: truth and result are of different flights: "
+                   + "; ".join(scores["flight_check"]["differences"]), err=True)
     if json_path is not None:
-        json_path.parent.mkdir(parents=True, exist_ok=True)
-        json_path.write_text(json.dumps(scores, indent=2), encoding="utf-8")
+        try:
+            json_path.parent.mkdir(parents=True, exist_ok=True)
+        except OSError as exc:
+            from pvscan.errors import OutputError
+
+            raise OutputError(f"{json_path.parent}: cannot create the folder: {exc.strerror or exc}") from None
+        atomic_write(json_path, json.dumps(scores, indent=2))
     echo(format_report(scores))

@@ -25,7 +25,8 @@ def fleet_cmd(flights, out_dir, pipeline_path, scheduler, workers, overwrite, no
     """Inspect many flights (FLIGHT.toml files) in parallel with Dask.
 
     A flight that fails is reported and leaves no result folder; the others go on. Exit
-    code 1 when any flight failed.
+    code 1 when any flight failed. Two flights that would write the same result folder
+    (same site and flight id) are refused before any starts.
     """
     from pvscan.fleet import inspect_fleet
 
@@ -40,6 +41,8 @@ def fleet_cmd(flights, out_dir, pipeline_path, scheduler, workers, overwrite, no
     for o in outcomes:
         if o.ok:
             echo(f"ok      {o.manifest} -> {o.out_dir}  ({o.anomalies} anomalies, {o.power_loss_w:,.0f} W)")
+            for w in o.warnings:
+                click.echo(f"pvscan: warning: {w}", err=True)
         else:
             failed += 1
             click.echo(f"failed  {o.manifest}: {o.error}", err=True)

@@ -72,17 +72,22 @@ def list_cmd(site_db):
 @click.option("--to", "flight_to", metavar="FLIGHT", help="Later flight id.")
 @click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
               help="GeoJSON file to write (RFC 7946).")
+@click.option("--overwrite", is_flag=True, help="Replace an existing --out file.")
 @click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
               help="Pipeline settings file (its [history] section).")
 @handle_errors
-def changes_cmd(site_db, flight_from, flight_to, out_path, pipeline_path):
+def changes_cmd(site_db, flight_from, flight_to, out_path, overwrite, pipeline_path):
     """Module-by-module change between two flights (default: the two latest)."""
     from pvscan.history import CHANGE_CLASSES, compare_flights, write_changes
     from pvscan.io.settings import load_pipeline
 
+    if out_path.exists() and not overwrite:  # before any work
+        from pvscan.errors import OutputError
+
+        raise OutputError(f"{out_path}: exists (use --overwrite to replace it)")
     cfg = load_pipeline(pipeline_path)["history"]
     fc = compare_flights(site_db, flight_from, flight_to, settings=cfg)
-    write_changes(fc, out_path)
+    write_changes(fc, out_path, overwrite=overwrite)
     c = fc["counts"]
     echo(f"{fc['flight_before']['flight_id']} -> {fc['flight_after']['flight_id']}: "
          + ", ".join(f"{c[k]} {k}" for k in CHANGE_CLASSES)

@@ -48,9 +48,11 @@ import hashlib
 import json
 import logging
 import math
+import os
 import sqlite3
 import struct
 import time
+import uuid
 import warnings
 from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass, field
@@ -575,6 +577,67 @@ def _create_schema(con: sqlite3.Connection, site: str) -> None:
 _SQLITE_MAGIC = b"SQLite format 3\x00"
 
 
+def _absent_or_empty(path: Path) -> bool:
+    try:
+        return path.stat().st_size == 0
+    except FileNotFoundError:
+        return True
+    except OSError as exc:
+        raise HistoryError(f"{path}: cannot read: {exc.strerror}") from None
+
+
+def _create_database(path: Path, site: str) -> bool:
+    """Create the site database at ``path`` when it is missing (or an empty file).
+
+    Several processes may add the first flights of a site at once. The new database is built
+    in a temporary sibling (schema and metadata, committed) and renamed into place under an
+    exclusive lock, so that ``path`` never shows a half-created database: SQLite writes the
+    pages of a big first transaction before the header page, and another process reading
+    the file meanwhile would take it for a foreign file. Whoever holds the lock checks again
+    whether the file is still missing; the others then use it with the usual transaction.
+
+    Returns
+    -------
+    bool
+        True when this call created the database.
+    """
+    from pvscan.io.locking import exclusive_lock
+
+    if not _absent_or_empty(path):
+        return False
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        lock = path.with_name(f".{path.name}.lock")
+        with exclusive_lock(lock, remove=True):
+            if not _absent_or_empty(path):
+                return False
+            tmp = path.with_name(f".{path.name}.new-{uuid.uuid4().hex[:8]}")
+            try:
+                con = sqlite3.connect(str(tmp), isolation_level=None)
+                try:
+                    con.execute("BEGIN IMMEDIATE")
+                    _create_schema(con, site)
+                    con.execute("COMMIT")
+                finally:
+                    con.close()
+                with open(tmp, "rb+") as fh:
+                    os.fsync(fh.fileno())
+                os.replace(tmp, path)
+            except BaseException:
+                for leftover in (tmp, tmp.with_name(tmp.name + "-journal")):
+                    try:
+                        os.unlink(leftover)
+                    except OSError:
+                        pass
+                raise
+    except sqlite3.Error as exc:
+        raise HistoryError(f"{path}: cannot create the site history: {exc}") from None
+    except OSError as exc:
+        raise HistoryError(f"{path}: cannot create the site history: {exc.strerror or exc}") from None
+    log.info("%s: created the site history of %s", path, site)
+    return True
+
+
 def _check_file(path: Path, must_exist: bool) -> bool:
     """True when ``path`` holds (or may become) a database; raise for a foreign file."""
     if not path.exists():
@@ -905,10 +968,11 @@ def add_flight(db_path: str | Path, result_dir: str | Path, *, replace: bool = F
     path = Path(db_path)
     if progress:
         progress("history add", 0, 3)
+    made = _create_database(path, result.site)
     with _Session(path, write=True, create=True) as s:
         con = s.con
-        created = s.meta is None
-        if created:
+        created = made or s.meta is None
+        if s.meta is None:  # an SQLite file without tables: make it the site history
             _create_schema(con, result.site)
             site_name = result.site
         else:
@@ -941,7 +1005,7 @@ def add_flight(db_path: str | Path, result_dir: str | Path, *, replace: bool = F
         site_rows = con.execute("SELECT module_id, geom FROM site_modules").fetchall()
         site = pd.DataFrame({"module_id": [r[0] for r in site_rows],
                              "geometry": _gpkg_geoms([r[1] for r in site_rows])})
-        if created or site.empty:
+        if site.empty:
             diff = LayoutDiff(tolerance_m=float(cfg["layout_tolerance_m"]))
         else:
             diff = layout_diff(site, result.modules, float(cfg["layout_tolerance_m"]))
@@ -1496,19 +1560,31 @@ def compare_flights(db_path: str | Path, flight_from: str | None = None, flight_
             "safety": safety_cautions(), "features": features}
 
 
-def write_changes(changes: Mapping, out_path: str | Path) -> Path:
+def write_changes(changes: Mapping, out_path: str | Path, *, overwrite: bool = False) -> Path:
     """Write the FeatureCollection of :func:`compare_flights` as GeoJSON, atomically.
+
+    Parameters
+    ----------
+    overwrite : bool
+        Replace an existing file.
 
     Raises
     ------
     OutputError
-        When the file cannot be written.
+        When the file exists and ``overwrite`` is false, or it cannot be written.
     """
+    from pvscan.errors import OutputError
     from pvscan.io.outputs import atomic_write
 
     p = Path(out_path)
-    if p.parent and not p.parent.exists():
+    if p.is_dir():
+        raise OutputError(f"{p}: is a folder, not a file")
+    if p.exists() and not overwrite:
+        raise OutputError(f"{p}: exists (use --overwrite to replace it)")
+    try:
         p.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"{p.parent}: cannot create the folder: {exc.strerror or exc}") from None
     return atomic_write(p, json.dumps(changes, indent=1, allow_nan=False) + "\n")
 
 

@@ -271,6 +271,103 @@ def _feature_name(row, k: int) -> str:
     return f"feature #{k + 1}"
 
 
+#: Field names read for each layout property, in order of preference. Names compare
+#: case-insensitively, with spaces and hyphens read as underscores; each name is also read
+#: cut to the 10 characters a Shapefile keeps (``string_index`` -> ``string_ind``).
+FIELD_NAMES = {
+    "module_id": ("module_id", "moduleid", "module", "mod_id", "module_no", "module_nr", "module_name"),
+    "table_id": ("table_id", "tableid", "table", "tbl_id", "table_no", "table_nr", "table_name"),
+    "string_id": ("string_id", "stringid", "string", "str_id", "string_no", "string_nr", "string_name"),
+    "string_index": ("string_index", "string_idx", "stringindex", "stringidx", "str_index", "str_idx",
+                     "str_ind", "string_pos", "string_position", "str_pos", "pos_in_string",
+                     "position_in_string", "string_order", "string_seq"),
+    "table_row": ("table_row", "tablerow", "tbl_row", "row", "row_no"),
+    "table_col": ("table_col", "tablecol", "tbl_col", "col", "column", "col_no", "table_column", "position"),
+    "rows": ("rows", "n_rows", "nrows", "num_rows"),
+    "cols": ("cols", "n_cols", "ncols", "num_cols", "columns"),
+    "orientation": ("orientation", "orientatn", "orient"),
+}
+
+
+def _norm_field(name) -> str:
+    return "_".join(str(name).strip().lower().replace("-", " ").replace("_", " ").split())
+
+
+def _field_keys() -> dict[str, str]:
+    """Normalised field name -> the property it gives."""
+    keys: dict[str, str] = {}
+    for prop, names in FIELD_NAMES.items():
+        for n in names:
+            for k in (_norm_field(n), _norm_field(n)[:10]):
+                if keys.setdefault(k, prop) != prop:
+                    raise AssertionError(f"layout field {k} read for both {keys[k]} and {prop}")
+    return keys
+
+
+_FIELD_KEYS = _field_keys()
+
+
+def layout_fields(columns) -> tuple[dict[str, str], list[str]]:
+    """Which column gives which layout property.
+
+    Parameters
+    ----------
+    columns : iterable of str
+        The layout's field names.
+
+    Returns
+    -------
+    fields : dict
+        Property (``module_id``, ``string_index``, ...) -> the column read for it.
+    notes : list of str
+        One line per property given by several columns (the preferred one is read).
+    """
+    found: dict[str, list[tuple[int, str]]] = {}
+    for col in columns:
+        if col == "geometry":
+            continue
+        key = _norm_field(col)
+        prop = _FIELD_KEYS.get(key)
+        if prop is None:
+            continue
+        names = [_norm_field(n) for n in FIELD_NAMES[prop]]
+        rank = min((i for i, n in enumerate(names) if key in (n, n[:10])), default=len(names))
+        found.setdefault(prop, []).append((rank, col))
+    fields, notes = {}, []
+    for prop, cands in found.items():
+        cands.sort(key=lambda rc: (rc[0], str(rc[1])))
+        fields[prop] = cands[0][1]
+        if len(cands) > 1:
+            notes.append(f"fields {', '.join(str(c) for _, c in cands)} all give {prop}; "
+                         f"{cands[0][1]} is read")
+    return fields, notes
+
+
+def _whole(value, field: str, name: str, path: Path) -> int | None:
+    """A whole number from a field value (int, integral float, or text such as "3")."""
+    if value is None:
+        return None
+    try:
+        f = float(str(value).strip()) if isinstance(value, str) else float(value)
+    except (TypeError, ValueError):
+        raise LayoutError(f"{path}: {name}: {field} {value!r} is not a whole number") from None
+    if not math.isfinite(f) or f != int(f):
+        raise LayoutError(f"{path}: {name}: {field} {value!r} is not a whole number")
+    return int(f)
+
+
+def _ident(value) -> str | None:
+    """An id as text; whole numbers that a GIS stored as floats (12.0) read as "12"."""
+    if value is None:
+        return None
+    if isinstance(value, (float, np.floating)) and float(value).is_integer():
+        return str(int(value))
+    if isinstance(value, (int, np.integer)):
+        return str(int(value))
+    text = str(value).strip()
+    return text or None
+
+
 def _as_polygon(geom, name: str, path: Path) -> Polygon:
     if geom is None or geom.is_empty:
         raise LayoutError(f"{path}: {name}: empty geometry")
@@ -466,15 +563,18 @@ def build_modules(gdf, spec, module_spec=None, path: Path | str = "layout"):
     import geopandas as gpd
 
     path = Path(path)
+    fields, field_notes = layout_fields(gdf.columns)
+    gdf = gdf.rename(columns={src: f"__{prop}" for prop, src in fields.items()})
+    gdf = gdf.rename(columns={f"__{prop}": prop for prop in fields})
     records = []
     loose = []
     n_tables = 0
     for k, (_, row) in enumerate(gdf.iterrows()):
         name = _feature_name(row, k)
         poly = _as_polygon(row.geometry, name, path)
-        rows_p = _prop(row, "rows")
-        cols_p = _prop(row, "cols")
-        has_mid = _prop(row, "module_id") is not None
+        rows_p = _whole(_prop(row, "rows"), fields.get("rows", "rows"), name, path)
+        cols_p = _whole(_prop(row, "cols"), fields.get("cols", "cols"), name, path)
+        has_mid = _ident(_prop(row, "module_id")) is not None
         is_table = (rows_p is not None and cols_p is not None) or (
             not has_mid and spec.rows is not None and spec.cols is not None
         )
@@ -487,8 +587,8 @@ def build_modules(gdf, spec, module_spec=None, path: Path | str = "layout"):
             orientation = str(_prop(row, "orientation", default=spec.orientation))
             if orientation not in ("portrait", "landscape"):
                 raise LayoutError(f"{path}: {name}: orientation {orientation!r} is not portrait or landscape")
-            table_id = str(_prop(row, "table_id", default=f"T{n_tables:04d}"))
-            string_id = _prop(row, "string_id")
+            table_id = _ident(_prop(row, "table_id")) or f"T{n_tables:04d}"
+            string_id = _ident(_prop(row, "string_id"))
             try:
                 parts = split_table(poly, rows, cols, orientation, spec.gap_m, spec.tilt_deg, spec.azimuth_deg)
             except ValueError as exc:
@@ -497,7 +597,7 @@ def build_modules(gdf, spec, module_spec=None, path: Path | str = "layout"):
                 records.append({
                     "module_id": f"{table_id}-R{r}-C{c:02d}",
                     "table_id": table_id,
-                    "string_id": None if string_id is None else str(string_id),
+                    "string_id": string_id,
                     "string_index": None,
                     "table_row": r,
                     "table_col": c,
@@ -510,17 +610,14 @@ def build_modules(gdf, spec, module_spec=None, path: Path | str = "layout"):
                 fr = frame_from_polygon(poly, spec.azimuth_deg)
             except ValueError:
                 raise LayoutError(f"{path}: {name}: degenerate footprint") from None
-            mid = _prop(row, "module_id")
-            sidx = _prop(row, "string_index", "string_idx")
-            trow = _prop(row, "table_row", "row")
-            tcol = _prop(row, "table_col", "col", "position")
             rec = {
-                "module_id": None if mid is None else str(mid),
-                "table_id": None if _prop(row, "table_id") is None else str(_prop(row, "table_id")),
-                "string_id": None if _prop(row, "string_id") is None else str(_prop(row, "string_id")),
-                "string_index": None if sidx is None else int(sidx),
-                "table_row": None if trow is None else int(trow),
-                "table_col": None if tcol is None else int(tcol),
+                "module_id": _ident(_prop(row, "module_id")),
+                "table_id": _ident(_prop(row, "table_id")),
+                "string_id": _ident(_prop(row, "string_id")),
+                "string_index": _whole(_prop(row, "string_index"), fields.get("string_index", "string_index"),
+                                       name, path),
+                "table_row": _whole(_prop(row, "table_row"), fields.get("table_row", "table_row"), name, path),
+                "table_col": _whole(_prop(row, "table_col"), fields.get("table_col", "table_col"), name, path),
                 "geometry": poly,
                 **dict(zip(FRAME_COLUMNS + ["lower_edge"], fr)),
                 "source_feature": k,
@@ -560,6 +657,66 @@ def build_modules(gdf, spec, module_spec=None, path: Path | str = "layout"):
     out = gpd.GeoDataFrame(df, geometry="geometry", crs=gdf.crs)
     if module_spec is not None:
         _check_sizes(out, module_spec, path)
+    report = {"file": str(path), "features": int(len(gdf)), "tables": int(n_tables), "modules": int(len(out)),
+              "fields": {prop: str(src) for prop, src in sorted(fields.items())}}
+    report.update(_strings_report(out, fields, path))
+    for note in field_notes:
+        log.info("%s: %s", path, note)
+    for w in report["warnings"]:
+        warnings.warn(w, LayoutWarning, stacklevel=2)
+    out.attrs["layout"] = report
+    return out
+
+
+def _strings_report(modules, fields: dict, path: Path) -> dict:
+    """How much of the electrical stringing the layout gives, and what is lost without it.
+
+    Open strings and PID follow the modules of a string in order from its negative end,
+    so they need both a string id and a position along the string for each module.
+
+    Returns
+    -------
+    dict
+        ``strings``: ``complete`` | ``partial`` | ``ids_only`` | ``positions_only`` | ``none``;
+        ``n_strings``; ``warnings``: one line each, naming the field and what is lost.
+    """
+    sid = modules["string_id"].notna().to_numpy()
+    pos = modules["string_index"].notna().to_numpy()
+    n_strings = int(modules.loc[sid, "string_id"].nunique())
+    fid = fields.get("string_id", "string_id")
+    fpos = fields.get("string_index", "string_index")
+    known = ", ".join(n for n in ("string_ind", *FIELD_NAMES["string_index"][1:4]))
+    out: dict = {"n_strings": n_strings, "warnings": []}
+    if not sid.any() and not pos.any():
+        out["strings"] = "none"
+        return out
+    if sid.any() and not pos.any():
+        out["strings"] = "ids_only"
+        out["warnings"].append(
+            f"{path}: field {fid} gives {n_strings} string id{'s' if n_strings != 1 else ''} but no field "
+            "gives the modules' "
+            f"positions along their strings (string_index, also read as {known} ...): open strings "
+            "and PID, which need both, are not looked for")
+        return out
+    if pos.any() and not sid.any():
+        out["strings"] = "positions_only"
+        out["warnings"].append(
+            f"{path}: field {fpos} gives positions along strings but no field gives string ids "
+            "(string_id): PID, which needs both, is not looked for, and open strings only along "
+            "table rows")
+        return out
+    lone = int(np.count_nonzero(sid != pos))
+    dup = modules.loc[sid & pos].duplicated(subset=["string_id", "string_index"], keep=False)
+    bad_strings = int(modules.loc[sid & pos].loc[dup.to_numpy(), "string_id"].nunique())
+    out["strings"] = "complete" if lone == 0 and bad_strings == 0 else "partial"
+    if lone:
+        out["warnings"].append(
+            f"{path}: {lone} of {len(modules)} modules have a string id ({fid}) or a string "
+            f"position ({fpos}) but not both: they are left out of the open-string and PID checks")
+    if bad_strings:
+        out["warnings"].append(
+            f"{path}: {bad_strings} string(s) give one position ({fpos}) to several modules: "
+            "open strings and PID may be judged on a wrong module order there")
     return out
 
 
