@@ -101,6 +101,18 @@ def _artefact_summary(seams, modules, enabled: bool) -> dict:
 
 
 # ----------------------------------------------------------------------------- stages
+def _clock() -> tuple[float, float]:
+    """(wall, CPU) clock readings [s]; CPU is the process's, all threads."""
+    return time.perf_counter(), time.process_time()
+
+
+def _record(timings: dict, stage: str, t0: tuple[float, float]) -> None:
+    """Store a stage's wall time [s] in ``timings`` and log its wall and CPU time."""
+    wall, cpu = time.perf_counter() - t0[0], time.process_time() - t0[1]
+    timings[stage] = wall
+    log.info("stage %s: %.3f s wall, %.3f s CPU", stage, wall, cpu)
+
+
 def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | None = None,
                    timings: dict | None = None):
     """Read, register and measure a flight: modules, registration, true statistics, conditions.
@@ -120,12 +132,12 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
     from pvscan.io.ortho import open_orthos
 
     timings = {} if timings is None else timings
-    t0 = time.perf_counter()
+    t0 = _clock()
     with open_orthos(flight.flight.orthos, flight.ortho, settings) as orthos:
         modules = read_layout(flight, orthos.crs)
-        timings["layout"] = time.perf_counter() - t0
+        _record(timings, "layout", t0)
 
-        t0 = time.perf_counter()
+        t0 = _clock()
         # the expected apparent glass temperature (Faiman + radiometry) settles candidate
         # shifts that the image correlates alike, e.g. a tracker row and its ground shadow
         expected = register.expected_module_apparent_c(flight, settings, strict=False)
@@ -134,11 +146,11 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         shift = tuple(reg.shift_m) if reg.applied else (0.0, 0.0)
         # each module moves by the fitted (possibly drifting) shift at its own centre
         measured = register.apply_shift(modules, reg) if reg.applied else modules
-        timings["register"] = time.perf_counter() - t0
+        _record(timings, "register", t0)
 
-        t0 = time.perf_counter()
+        t0 = _clock()
         stats_app = zonal.zonal_stats(orthos, measured, flight.module, settings["zonal"], progress=progress)
-        timings["zonal"] = time.perf_counter() - t0
+        _record(timings, "zonal", t0)
         orthos_info = {
             "files": [str(t.path) for t in orthos.tiles],
             "crs": orthos.crs.to_string(),
@@ -147,7 +159,7 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         }
         gsd = float(orthos.gsd_m)
 
-    t0 = time.perf_counter()
+    t0 = _clock()
     series = cond_mod.read_weather_series(flight.conditions.series) if flight.conditions.series else None
     frames = cond_mod.read_frames(flight.flight.frames, modules.crs) if flight.flight.frames else None
     fc = cond_mod.flight_conditions(flight.conditions, flight.flight.start, flight.flight.end, series,
@@ -157,16 +169,16 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
                                        tilt_deg=flight.layout.tilt_deg)
     validity = cond_mod.check_validity(fc, conds, gsd_m=gsd, module_spec=flight.module,
                                        settings=settings["conditions"])
-    timings["conditions"] = time.perf_counter() - t0
+    _record(timings, "conditions", t0)
 
-    t0 = time.perf_counter()
+    t0 = _clock()
     from pvscan.physics.radiometry import flight_radiometry
 
     params = flight_radiometry(flight, conds, settings["radiometry"])
     stats = true_statistics(stats_app, params)
-    timings["radiometry"] = time.perf_counter() - t0
+    _record(timings, "radiometry", t0)
 
-    t0 = time.perf_counter()
+    t0 = _clock()
     stretches: list = []
     seam_offsets = np.zeros(len(modules))
     if bool(settings["seams"]["enabled"]):
@@ -174,7 +186,7 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
 
         stretches = seams.find_stretches(modules, stats.table["t_median_c"].to_numpy(dtype=float), settings["seams"])
         stats, seam_offsets = seams.level_stats(stats, stretches)
-    timings["seams"] = time.perf_counter() - t0
+    _record(timings, "seams", t0)
     return {
         "modules": modules,
         "registration": reg,
@@ -274,19 +286,19 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
     conds = m["conditions"]
     validity = m["validity"]
 
-    t0 = time.perf_counter()
+    t0 = _clock()
     anomalies, module_table = classify.classify(
         modules, stats, conds, flight.module, settings,
         confidence_factor=float(getattr(validity, "confidence_factor", 1.0)), progress=progress)
-    timings["classify"] = time.perf_counter() - t0
+    _record(timings, "classify", t0)
 
-    t0 = time.perf_counter()
+    t0 = _clock()
     lon, lat = _site_lonlat(modules)
     anomalies = loss.estimate_loss(anomalies, flight.module, conds, flight.site, settings,
                                    lonlat=(lon, lat), layout=flight.layout, stats=stats,
                                    reference_c=module_table["reference_c"].to_numpy())
     anomalies = rank.rank(anomalies, settings["rank"])
-    timings["loss_rank"] = time.perf_counter() - t0
+    _record(timings, "loss_rank", t0)
 
     table = stats.table.copy()
     for col in module_table.columns:
@@ -318,17 +330,19 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
     if out_dir is None:
         return result
 
-    t0 = time.perf_counter()
+    t0 = _clock()
     with outputs.staging_dir(out_dir, overwrite=overwrite) as tmp:
         files = write_results(tmp, modules=modules, module_table=table, anomalies=anomalies,
                               summary=summary, settings=settings["outputs"])
+        _record(timings, "outputs", t0)
+        t0 = _clock()
         if report:
             from pvscan.report import write_report
 
             write_report(tmp, tmp / "report.html", flight=flight, modules=modules,
                          stats=stats, settings=settings["report"], progress=progress)
             files["report"] = "report.html"
-    timings["outputs"] = time.perf_counter() - t0
+        _record(timings, "report", t0)
     result.out_dir = out_dir
     result.files = {k: out_dir / v for k, v in files.items()}
     return result
