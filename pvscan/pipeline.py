@@ -110,7 +110,19 @@ def _record(timings: dict, stage: str, t0: tuple[float, float]) -> None:
     """Store a stage's wall time [s] in ``timings`` and log its wall and CPU time."""
     wall, cpu = time.perf_counter() - t0[0], time.process_time() - t0[1]
     timings[stage] = wall
-    log.info("stage %s: %.3f s wall, %.3f s CPU", stage, wall, cpu)
+    log.info("stage %s: %.3f s wall, %.3f s CPU, peak RSS so far %s", stage, wall, cpu, _peak_rss())
+
+
+def _peak_rss() -> str:
+    """The process's peak resident set so far (Linux ``VmHWM``), for the stage log."""
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                if line.startswith("VmHWM:"):
+                    return f"{int(line.split()[1]) / 1024:.0f} MiB"
+    except (OSError, ValueError, IndexError):
+        pass
+    return "n/a"
 
 
 def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | None = None,
@@ -232,11 +244,17 @@ def write_results(folder: Path, *, modules, module_table: pd.DataFrame, anomalie
 
 
 def _site_lonlat(modules) -> tuple[float, float]:
-    c = modules.geometry.union_all().centroid
-    import geopandas as gpd
+    """WGS84 (lon, lat) [deg] of the plant's centroid: the area-weighted mean of the footprint
+    centroids (the centroid of their union when they do not overlap; no union is built)."""
+    import shapely
+    from pyproj import Transformer
 
-    p = gpd.GeoSeries([c], crs=modules.crs).to_crs("EPSG:4326").iloc[0]
-    return float(p.x), float(p.y)
+    geoms = modules.geometry.to_numpy()
+    area = shapely.area(geoms)
+    c = shapely.get_coordinates(shapely.centroid(geoms))
+    x, y = (float(np.sum(c[:, k] * area) / np.sum(area)) for k in (0, 1))
+    lon, lat = Transformer.from_crs(modules.crs, 4326, always_xy=True).transform(x, y)
+    return float(lon), float(lat)
 
 
 def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path | None = None,

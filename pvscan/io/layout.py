@@ -296,63 +296,15 @@ def _read_geojson(path: Path):
     return gpd.GeoDataFrame(pd.DataFrame(props, dtype=object) if props else None, geometry=geoms, crs=crs)
 
 
-def _simple_polygon_rings(g):
-    """The rings of a plain 2-D GeoJSON Polygon (closed, 4+ positions each), else None."""
-    if type(g) is not dict or g.get("type") != "Polygon":
-        return None
-    rings = g.get("coordinates")
-    if type(rings) is not list or not rings:
-        return None
-    for r in rings:
-        if type(r) is not list or len(r) < 4 or r[0] != r[-1]:
-            return None
-    return rings
-
-
 def _geojson_geometries(raw: list, props: list, path: Path) -> np.ndarray:
-    """Shapely geometries of GeoJSON geometry members, built as arrays.
+    """Shapely geometries of the features' GeoJSON members (one array build for plain polygons)."""
+    from pvscan.io.geojson import shapes
 
-    Plain polygons (the usual layout) are gathered into one coordinate array and built by
-    :func:`shapely.from_ragged_array`; anything else (multipolygons, 3-D positions, open
-    rings, malformed members) goes through :func:`shapely.geometry.shape` one by one, which
-    also words the error of a bad one.
-    """
-    from shapely.geometry import shape
+    def bad(k: int, exc: Exception) -> None:
+        name = _feature_name(pd.Series(props[k], dtype=object), k)
+        raise LayoutError(f"{path}: {name}: invalid geometry: {exc}") from None
 
-    n = len(raw)
-    out = np.empty(n, dtype=object)
-    flat: list = []
-    ring_len: list[int] = []
-    poly_rings: list[int] = []
-    fast: list[int] = []
-    slow: list[int] = []
-    for k, g in enumerate(raw):
-        rings = _simple_polygon_rings(g)
-        if rings is None:
-            slow.append(k)
-            continue
-        fast.append(k)
-        poly_rings.append(len(rings))
-        for r in rings:
-            ring_len.append(len(r))
-            flat.extend(r)
-    if fast:
-        try:
-            coords = np.array(flat, dtype=np.float64)
-            if coords.ndim != 2 or coords.shape[1] != 2:
-                raise ValueError("not 2-D positions")
-            offsets = (np.concatenate([[0], np.cumsum(ring_len)]), np.concatenate([[0], np.cumsum(poly_rings)]))
-            out[fast] = shapely.from_ragged_array(shapely.GeometryType.POLYGON, coords, offsets)
-        except (ValueError, TypeError, shapely.errors.GEOSException):
-            slow = sorted(slow + fast)  # let shape() read and word them one by one
-    for k in slow:
-        g = raw[k]
-        try:
-            out[k] = shape(g) if g else None
-        except Exception as exc:
-            name = _feature_name(pd.Series(props[k], dtype=object), k)
-            raise LayoutError(f"{path}: {name}: invalid geometry: {exc}") from None
-    return out
+    return shapes(raw, bad)
 
 
 def _read_file(path: Path):
