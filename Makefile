@@ -30,7 +30,8 @@ test: $(VENV)/.installed
 	$(PY) -m pytest -q
 
 bench: $(VENV)/.installed
-	$(PY) benchmarks/bench_zonal.py
+	$(PY) -m pip install --quiet -e '.[test,bench]'
+	$(PY) benchmarks/bench_inspect.py
 
 # Headless Chromium for the report's browser test (Debian packages); needs root.
 browser-deps:

@@ -12,6 +12,7 @@ Stages (each a pure function of arrays and (Geo)DataFrames; see DEVELOPERS.md)::
 """
 from __future__ import annotations
 
+import contextlib
 import logging
 import time
 from dataclasses import dataclass, field, replace as dc_replace
@@ -126,8 +127,12 @@ def _peak_rss() -> str:
 
 
 def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | None = None,
-                   timings: dict | None = None):
+                   timings: dict | None = None, scheduler: Any = None):
     """Read, register and measure a flight: modules, registration, true statistics, conditions.
+
+    ``scheduler`` (see :mod:`pvscan.tasks`): where the block statistics run; None for this
+    process, "threads" / "processes" for local cores, a connected ``distributed.Client``
+    (or a ``tcp://`` address) for a Dask cluster. The results do not depend on it.
 
     Returns
     -------
@@ -161,7 +166,8 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         _record(timings, "register", t0)
 
         t0 = _clock()
-        stats_app = zonal.zonal_stats(orthos, measured, flight.module, settings["zonal"], progress=progress)
+        stats_app = zonal.zonal_stats(orthos, measured, flight.module, settings["zonal"], progress=progress,
+                                      scheduler=scheduler)
         _record(timings, "zonal", t0)
         orthos_info = {
             "files": [str(t.path) for t in orthos.tiles],
@@ -259,7 +265,8 @@ def _site_lonlat(modules) -> tuple[float, float]:
 
 def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path | None = None,
                    out_dir: str | Path | None = None, *, overwrite: bool = False,
-                   report: bool = True, progress: ProgressFn | None = None) -> InspectionResult:
+                   report: bool = True, progress: ProgressFn | None = None,
+                   scheduler: Any = None) -> InspectionResult:
     """Run the whole post-flight pipeline on one flight.
 
     Parameters
@@ -277,6 +284,11 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
         Also write ``report.html``.
     progress : callable, optional
         ``progress(stage, done, total)``.
+    scheduler : None, str or distributed.Client, optional
+        Where the block statistics run (:mod:`pvscan.tasks`): None or "single" (this
+        process, the default), "synchronous", "threads" / "processes" (local cores), a
+        Dask scheduler address ``tcp://host:port`` (connected for this run) or a connected
+        ``distributed.Client``. The results are the same on every scheduler.
 
     Returns
     -------
@@ -297,8 +309,13 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
         out_dir = Path(out_dir)
         _check_out_dir(out_dir, overwrite)
 
+    from pvscan.tasks import cluster, is_address, parse_scheduler
+
+    if scheduler is None or isinstance(scheduler, str):
+        scheduler = parse_scheduler(scheduler)
     timings: dict[str, float] = {}
-    m = measure_flight(flight, settings, progress=progress, timings=timings)
+    with (cluster(scheduler) if is_address(scheduler) else contextlib.nullcontext(scheduler)) as sched:
+        m = measure_flight(flight, settings, progress=progress, timings=timings, scheduler=sched)
     modules = m["modules"]
     stats = m["stats"]
     conds = m["conditions"]
