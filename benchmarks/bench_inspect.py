@@ -258,7 +258,8 @@ def main(argv=None) -> int:
         head = f"  {'':<34} {'wall s':>8} {'CPU s':>8} {'x floor':>8} {'peak RSS MiB':>13}"
         print(head)
         print("  " + "-" * (len(head) - 2))
-        for k, r in best.items():
+        for k in [k for k in best if k != "inspect"] + ["inspect"]:
+            r = best[k]
             print(f"  {k:<34} {r['wall_s']:>8.2f} {r['cpu_s']:>8.2f} {r['wall_s'] / rd['wall_s']:>8.1f} "
                   f"{r['rss_mb']:>13.0f}")
         stages = ins["stages"]
