@@ -142,7 +142,7 @@ def stage_exactextract(flight_path: Path, strategy: str) -> dict:
             "rss_mb": _vmhwm_mb()}
 
 
-_STAGE_LINE = re.compile(r"stage (\w+): ([0-9.]+) s wall, ([0-9.]+) s CPU")
+_STAGE_LINE = re.compile(r"stage (\w+): ([0-9.]+) s wall, ([0-9.]+) s CPU(?:, peak RSS so far ([0-9.]+) MiB)?")
 
 
 def run_inspect(flight_path: Path, out_dir: Path) -> dict:
@@ -158,7 +158,8 @@ def run_inspect(flight_path: Path, out_dir: Path) -> dict:
     if proc.returncode != 0:
         sys.stderr.write(err)
         raise SystemExit(f"pvscan inspect failed (exit {proc.returncode})")
-    stages = {m.group(1): (float(m.group(2)), float(m.group(3))) for m in _STAGE_LINE.finditer(err)}
+    stages = {m.group(1): (float(m.group(2)), float(m.group(3)), float(m.group(4) or "nan"))
+              for m in _STAGE_LINE.finditer(err)}
     return {"wall_s": dt, "stages": stages, "ru": ru}
 
 
@@ -258,13 +259,14 @@ def main(argv=None) -> int:
         head = f"  {'':<34} {'wall s':>8} {'CPU s':>8} {'x floor':>8} {'peak RSS MiB':>13}"
         print(head)
         print("  " + "-" * (len(head) - 2))
-        for k, r in best.items():
+        for k in [k for k in best if k != "inspect"] + ["inspect"]:
+            r = best[k]
             print(f"  {k:<34} {r['wall_s']:>8.2f} {r['cpu_s']:>8.2f} {r['wall_s'] / rd['wall_s']:>8.1f} "
                   f"{r['rss_mb']:>13.0f}")
         stages = ins["stages"]
-        staged = sum(w for w, _ in stages.values())
-        for name, (w, c) in stages.items():
-            print(f"    {name:<32} {w:>8.2f} {c:>8.2f}")
+        staged = sum(v[0] for v in stages.values())
+        for name, (w, c, rss) in stages.items():
+            print(f"    {name:<32} {w:>8.2f} {c:>8.2f} {'':>8} {rss:>13.0f}")
         print(f"    {'start-up, summary, other':<32} {ins['wall_s'] - staged:>8.2f}")
         print(f"  inspect per module: {1e3 * ins['wall_s'] / n:.3f} ms wall, {1e3 * ins['cpu_s'] / n:.3f} ms CPU, "
               f"{1024 * ins['rss_mb'] / n:.1f} KiB peak RSS")
@@ -276,12 +278,16 @@ def main(argv=None) -> int:
         print()
         print(f"time per module, scale {s1} / scale {s0}: {g:.2f} (wall); "
               f"floor per pixel: {(b1['read']['wall_s'] / b1['read']['pixels']) / (b0['read']['wall_s'] / b0['read']['pixels']):.2f}")
+        st0, st1 = b0["inspect"]["stages"], b1["inspect"]["stages"]
+        print(f"per stage (CPU time per module, scale {s1} / scale {s0}; 1.0 = linear): " + ", ".join(
+            f"{k} {(st1[k][1] / n1) / (st0[k][1] / n0):.2f}" for k in st0 if k in st1 and st0[k][1] > 0.05))
     print()
     print("read: windowed reads + decoding of every block (the floor). exactextract: "
           + ", ".join(EXACTEXTRACT_OPS) + " per module footprint,")
     print("call only (polygons prepared before the clock). inspect: the whole `pvscan inspect` process")
     print("(start-up, every stage, outputs and report). CPU: user + system time of the process.")
-    print("peak RSS: VmHWM / ru_maxrss of the measured process. Stages as logged by the pipeline.")
+    print("peak RSS: VmHWM / ru_maxrss of the measured process; stages: wall, CPU and the peak RSS so far,")
+    print("as the pipeline logs them (-v).")
     return 0
 
 

@@ -60,6 +60,8 @@ class InspectionResult:
 
 # ----------------------------------------------------------------------------- radiometry
 _ORDER_ARRAYS = ("cell_median", "cell_p95", "sub_median", "sub_p95")
+#: Modules converted at a time (bounds the temporaries of the cell arrays).
+_CHUNK_MODULES = 8192
 
 
 def true_statistics(stats, params: dict):
@@ -85,8 +87,17 @@ def true_statistics(stats, params: dict):
     from pvscan.physics.radiometry import correct_statistics
 
     table = correct_statistics(stats.table, **params)
-    arrays = correct_statistics({k: getattr(stats, k) for k in _ORDER_ARRAYS},
-                                order_keys=_ORDER_ARRAYS, **params)
+    # the (n, cells) arrays in chunks of modules: the conversion is element-wise, so the
+    # result is the same, and its float64 temporaries stay bounded whatever the plant size
+    n = len(stats.table)
+    arrays = {k: np.empty(np.shape(getattr(stats, k)), dtype=np.float64) for k in _ORDER_ARRAYS}
+    for i0 in range(0, max(n, 1), _CHUNK_MODULES):
+        sl = slice(i0, min(i0 + _CHUNK_MODULES, n))
+        part = {k: (v[sl] if np.ndim(v) == 1 and k != "band_um" else v) for k, v in params.items()}
+        conv = correct_statistics({k: getattr(stats, k)[sl] for k in _ORDER_ARRAYS}, order_keys=_ORDER_ARRAYS,
+                                  **part)
+        for k in _ORDER_ARRAYS:
+            arrays[k][sl] = conv[k]
     return dc_replace(stats, table=table, **arrays)
 
 
@@ -111,19 +122,22 @@ def _record(timings: dict, stage: str, t0: tuple[float, float]) -> None:
     """Store a stage's wall time [s] in ``timings`` and log its wall and CPU time."""
     wall, cpu = time.perf_counter() - t0[0], time.process_time() - t0[1]
     timings[stage] = wall
-    log.info("stage %s: %.3f s wall, %.3f s CPU, peak RSS so far %s", stage, wall, cpu, _peak_rss())
+    rss, peak = _rss()
+    log.info("stage %s: %.3f s wall, %.3f s CPU, peak RSS so far %s, RSS now %s", stage, wall, cpu, peak, rss)
 
 
-def _peak_rss() -> str:
-    """The process's peak resident set so far (Linux ``VmHWM``), for the stage log."""
+def _rss() -> tuple[str, str]:
+    """The process's resident set now and its peak so far (Linux ``VmRSS``, ``VmHWM``)."""
+    found = {"VmRSS:": "n/a", "VmHWM:": "n/a"}
     try:
         with open("/proc/self/status", encoding="ascii") as fh:
             for line in fh:
-                if line.startswith("VmHWM:"):
-                    return f"{int(line.split()[1]) / 1024:.0f} MiB"
+                key = line.split(maxsplit=1)[0] if line.strip() else ""
+                if key in found:
+                    found[key] = f"{int(line.split()[1]) / 1024:.0f} MiB"
     except (OSError, ValueError, IndexError):
         pass
-    return "n/a"
+    return found["VmRSS:"], found["VmHWM:"]
 
 
 def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | None = None,
