@@ -314,6 +314,7 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
         On any bad input; nothing is left in ``out_dir``.
     """
     from pvscan.diagnose import classify, loss, rank
+    from pvscan.diagnose.thermal import Normalisation
     from pvscan.io import outputs
 
     if not isinstance(flight, Flight):
@@ -372,6 +373,7 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
                                    "max": float(np.nanmax(v))})
                               for k, v in m["radiometry"].items()},
                "image_artefacts": _artefact_summary(m.get("seams"), modules, bool(settings["seams"]["enabled"])),
+               "normalisation": Normalisation.from_settings(settings).to_dict(),
                "timings_s": {k: round(v, 3) for k, v in timings.items()}},
     )
     result = InspectionResult(out_dir=None, modules=modules.assign(**{c: table[c].to_numpy() for c in table}),
