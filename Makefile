@@ -52,14 +52,15 @@ test-floors:
 	$(PYTHON) -m venv $(FLOORS_VENV)
 	$(FLOORS_VENV)/bin/pip install --quiet --upgrade pip
 	$(FLOORS_VENV)/bin/pip install --quiet --only-binary :all: 'pyparsing<3.3' 'pytest>=8' 'hypothesis>=6.100' 'scikit-image==0.22.*' \
-	  $$($(PYTHON) -c "import tomllib; d = tomllib.load(open('pyproject.toml', 'rb'))['project']; print(' '.join(r.split('#')[0].split(';')[0].strip().replace('>=', '==') for r in d['dependencies']))")
+	  $$($(PYTHON) -c "import tomllib; d = tomllib.load(open('pyproject.toml', 'rb'))['project']; print(' '.join(r.split('#')[0].split(';')[0].strip().replace('>=', '==') for r in d['dependencies'] + d['optional-dependencies']['distributed']))")
 	$(FLOORS_VENV)/bin/pip install --quiet --no-deps -e .
 	$(FLOORS_VENV)/bin/python -m pytest -q -p no:cacheprovider \
 	  -W "ignore:The 'shapely.geos' module is deprecated:DeprecationWarning" \
 	  -W "ignore:Conversion of an array with ndim:DeprecationWarning"
 
 bench: $(VENV)/.installed
-	$(PY) benchmarks/bench_zonal.py
+	$(PY) -m pip install --quiet -e '.[test,bench]'
+	$(PY) benchmarks/bench_inspect.py
 
 # Headless Chromium for the report's browser test (Debian packages); needs root.
 browser-deps:

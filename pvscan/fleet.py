@@ -141,6 +141,8 @@ def inspect_fleet(manifests, out_dir, *, pipeline=None, scheduler: str = "proces
     """
     import dask
 
+    from pvscan.tasks import cluster, is_address
+
     manifests = [str(Path(m)) for m in manifests]
     same = sorted({m for m in manifests if manifests.count(m) > 1})
     if same:
@@ -152,14 +154,9 @@ def inspect_fleet(manifests, out_dir, *, pipeline=None, scheduler: str = "proces
         progress("fleet", 0, total)
     task = dask.delayed(_inspect_one, pure=False)
     tasks = [task(m, str(out_dir), pipeline, overwrite, report) for m in manifests]
-    if scheduler.startswith(("tcp://", "tls://", "inproc://")):
-        try:
-            from distributed import Client
-        except ImportError:
-            raise PvscanError(
-                f"scheduler {scheduler}: a Dask cluster needs the 'distributed' package "
-                "(pip install 'pvscan[distributed]')") from None
-        with Client(scheduler) as client:
+    if is_address(scheduler):
+        # one task per flight on the cluster; each flight runs embedded on its worker
+        with cluster(scheduler) as client:
             outcomes = list(client.gather(client.compute(tasks)))
     elif scheduler in ("synchronous", "threads", "processes"):
         kw = {"scheduler": scheduler}

@@ -12,6 +12,7 @@ Stages (each a pure function of arrays and (Geo)DataFrames; see DEVELOPERS.md)::
 """
 from __future__ import annotations
 
+import contextlib
 import logging
 import time
 from dataclasses import dataclass, field, replace as dc_replace
@@ -59,6 +60,8 @@ class InspectionResult:
 
 # ----------------------------------------------------------------------------- radiometry
 _ORDER_ARRAYS = ("cell_median", "cell_p95", "sub_median", "sub_p95")
+#: Modules converted at a time (bounds the temporaries of the cell arrays).
+_CHUNK_MODULES = 8192
 
 
 def true_statistics(stats, params: dict):
@@ -84,8 +87,17 @@ def true_statistics(stats, params: dict):
     from pvscan.physics.radiometry import correct_statistics
 
     table = correct_statistics(stats.table, **params)
-    arrays = correct_statistics({k: getattr(stats, k) for k in _ORDER_ARRAYS},
-                                order_keys=_ORDER_ARRAYS, **params)
+    # the (n, cells) arrays in chunks of modules: the conversion is element-wise, so the
+    # result is the same, and its float64 temporaries stay bounded whatever the plant size
+    n = len(stats.table)
+    arrays = {k: np.empty(np.shape(getattr(stats, k)), dtype=np.float64) for k in _ORDER_ARRAYS}
+    for i0 in range(0, max(n, 1), _CHUNK_MODULES):
+        sl = slice(i0, min(i0 + _CHUNK_MODULES, n))
+        part = {k: (v[sl] if np.ndim(v) == 1 and k != "band_um" else v) for k, v in params.items()}
+        conv = correct_statistics({k: getattr(stats, k)[sl] for k in _ORDER_ARRAYS}, order_keys=_ORDER_ARRAYS,
+                                  **part)
+        for k in _ORDER_ARRAYS:
+            arrays[k][sl] = conv[k]
     return dc_replace(stats, table=table, **arrays)
 
 
@@ -101,9 +113,40 @@ def _artefact_summary(seams, modules, enabled: bool) -> dict:
 
 
 # ----------------------------------------------------------------------------- stages
+def _clock() -> tuple[float, float]:
+    """(wall, CPU) clock readings [s]; CPU is the process's, all threads."""
+    return time.perf_counter(), time.process_time()
+
+
+def _record(timings: dict, stage: str, t0: tuple[float, float]) -> None:
+    """Store a stage's wall time [s] in ``timings`` and log its wall and CPU time."""
+    wall, cpu = time.perf_counter() - t0[0], time.process_time() - t0[1]
+    timings[stage] = wall
+    rss, peak = _rss()
+    log.info("stage %s: %.3f s wall, %.3f s CPU, peak RSS so far %s, RSS now %s", stage, wall, cpu, peak, rss)
+
+
+def _rss() -> tuple[str, str]:
+    """The process's resident set now and its peak so far (Linux ``VmRSS``, ``VmHWM``)."""
+    found = {"VmRSS:": "n/a", "VmHWM:": "n/a"}
+    try:
+        with open("/proc/self/status", encoding="ascii") as fh:
+            for line in fh:
+                key = line.split(maxsplit=1)[0] if line.strip() else ""
+                if key in found:
+                    found[key] = f"{int(line.split()[1]) / 1024:.0f} MiB"
+    except (OSError, ValueError, IndexError):
+        pass
+    return found["VmRSS:"], found["VmHWM:"]
+
+
 def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | None = None,
-                   timings: dict | None = None):
+                   timings: dict | None = None, scheduler: Any = None):
     """Read, register and measure a flight: modules, registration, true statistics, conditions.
+
+    ``scheduler`` (see :mod:`pvscan.tasks`): where the block statistics run; None for this
+    process, "threads" / "processes" for local cores, a connected ``distributed.Client``
+    (or a ``tcp://`` address) for a Dask cluster. The results do not depend on it.
 
     Returns
     -------
@@ -120,12 +163,12 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
     from pvscan.io.ortho import open_orthos
 
     timings = {} if timings is None else timings
-    t0 = time.perf_counter()
+    t0 = _clock()
     with open_orthos(flight.flight.orthos, flight.ortho, settings) as orthos:
         modules = read_layout(flight, orthos.crs)
-        timings["layout"] = time.perf_counter() - t0
+        _record(timings, "layout", t0)
 
-        t0 = time.perf_counter()
+        t0 = _clock()
         # the expected apparent glass temperature (Faiman + radiometry) settles candidate
         # shifts that the image correlates alike, e.g. a tracker row and its ground shadow
         expected = register.expected_module_apparent_c(flight, settings, strict=False)
@@ -134,11 +177,12 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         shift = tuple(reg.shift_m) if reg.applied else (0.0, 0.0)
         # each module moves by the fitted (possibly drifting) shift at its own centre
         measured = register.apply_shift(modules, reg) if reg.applied else modules
-        timings["register"] = time.perf_counter() - t0
+        _record(timings, "register", t0)
 
-        t0 = time.perf_counter()
-        stats_app = zonal.zonal_stats(orthos, measured, flight.module, settings["zonal"], progress=progress)
-        timings["zonal"] = time.perf_counter() - t0
+        t0 = _clock()
+        stats_app = zonal.zonal_stats(orthos, measured, flight.module, settings["zonal"], progress=progress,
+                                      scheduler=scheduler)
+        _record(timings, "zonal", t0)
         orthos_info = {
             "files": [str(t.path) for t in orthos.tiles],
             "crs": orthos.crs.to_string(),
@@ -147,7 +191,7 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         }
         gsd = float(orthos.gsd_m)
 
-    t0 = time.perf_counter()
+    t0 = _clock()
     series = cond_mod.read_weather_series(flight.conditions.series) if flight.conditions.series else None
     frames = cond_mod.read_frames(flight.flight.frames, modules.crs) if flight.flight.frames else None
     fc = cond_mod.flight_conditions(flight.conditions, flight.flight.start, flight.flight.end, series,
@@ -157,16 +201,16 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
                                        tilt_deg=flight.layout.tilt_deg)
     validity = cond_mod.check_validity(fc, conds, gsd_m=gsd, module_spec=flight.module,
                                        settings=settings["conditions"])
-    timings["conditions"] = time.perf_counter() - t0
+    _record(timings, "conditions", t0)
 
-    t0 = time.perf_counter()
+    t0 = _clock()
     from pvscan.physics.radiometry import flight_radiometry
 
     params = flight_radiometry(flight, conds, settings["radiometry"])
     stats = true_statistics(stats_app, params)
-    timings["radiometry"] = time.perf_counter() - t0
+    _record(timings, "radiometry", t0)
 
-    t0 = time.perf_counter()
+    t0 = _clock()
     stretches: list = []
     seam_offsets = np.zeros(len(modules))
     if bool(settings["seams"]["enabled"]):
@@ -174,7 +218,7 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
 
         stretches = seams.find_stretches(modules, stats.table["t_median_c"].to_numpy(dtype=float), settings["seams"])
         stats, seam_offsets = seams.level_stats(stats, stretches)
-    timings["seams"] = time.perf_counter() - t0
+    _record(timings, "seams", t0)
     return {
         "modules": modules,
         "registration": reg,
@@ -224,16 +268,23 @@ def write_results(folder: Path, *, modules, module_table: pd.DataFrame, anomalie
 
 
 def _site_lonlat(modules) -> tuple[float, float]:
-    c = modules.geometry.union_all().centroid
-    import geopandas as gpd
+    """WGS84 (lon, lat) [deg] of the plant's centroid: the area-weighted mean of the footprint
+    centroids (the centroid of their union when they do not overlap; no union is built)."""
+    import shapely
+    from pyproj import Transformer
 
-    p = gpd.GeoSeries([c], crs=modules.crs).to_crs("EPSG:4326").iloc[0]
-    return float(p.x), float(p.y)
+    geoms = modules.geometry.to_numpy()
+    area = shapely.area(geoms)
+    c = shapely.get_coordinates(shapely.centroid(geoms))
+    x, y = (float(np.sum(c[:, k] * area) / np.sum(area)) for k in (0, 1))
+    lon, lat = Transformer.from_crs(modules.crs, 4326, always_xy=True).transform(x, y)
+    return float(lon), float(lat)
 
 
 def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path | None = None,
                    out_dir: str | Path | None = None, *, overwrite: bool = False,
-                   report: bool = True, progress: ProgressFn | None = None) -> InspectionResult:
+                   report: bool = True, progress: ProgressFn | None = None,
+                   scheduler: Any = None) -> InspectionResult:
     """Run the whole post-flight pipeline on one flight.
 
     Parameters
@@ -251,6 +302,11 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
         Also write ``report.html``.
     progress : callable, optional
         ``progress(stage, done, total)``.
+    scheduler : None, str or distributed.Client, optional
+        Where the block statistics run (:mod:`pvscan.tasks`): None or "single" (this
+        process, the default), "synchronous", "threads" / "processes" (local cores), a
+        Dask scheduler address ``tcp://host:port`` (connected for this run) or a connected
+        ``distributed.Client``. The results are the same on every scheduler.
 
     Returns
     -------
@@ -262,6 +318,7 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
         On any bad input; nothing is left in ``out_dir``.
     """
     from pvscan.diagnose import classify, loss, rank
+    from pvscan.diagnose.thermal import Normalisation
     from pvscan.io import outputs
 
     if not isinstance(flight, Flight):
@@ -271,26 +328,31 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
         out_dir = Path(out_dir)
         _check_out_dir(out_dir, overwrite)
 
+    from pvscan.tasks import cluster, is_address, parse_scheduler
+
+    if scheduler is None or isinstance(scheduler, str):
+        scheduler = parse_scheduler(scheduler)
     timings: dict[str, float] = {}
-    m = measure_flight(flight, settings, progress=progress, timings=timings)
+    with (cluster(scheduler) if is_address(scheduler) else contextlib.nullcontext(scheduler)) as sched:
+        m = measure_flight(flight, settings, progress=progress, timings=timings, scheduler=sched)
     modules = m["modules"]
     stats = m["stats"]
     conds = m["conditions"]
     validity = m["validity"]
 
-    t0 = time.perf_counter()
+    t0 = _clock()
     anomalies, module_table = classify.classify(
         modules, stats, conds, flight.module, settings,
         confidence_factor=float(getattr(validity, "confidence_factor", 1.0)), progress=progress)
-    timings["classify"] = time.perf_counter() - t0
+    _record(timings, "classify", t0)
 
-    t0 = time.perf_counter()
+    t0 = _clock()
     lon, lat = _site_lonlat(modules)
     anomalies = loss.estimate_loss(anomalies, flight.module, conds, flight.site, settings,
                                    lonlat=(lon, lat), layout=flight.layout, stats=stats,
                                    reference_c=module_table["reference_c"].to_numpy())
     anomalies = rank.rank(anomalies, settings["rank"])
-    timings["loss_rank"] = time.perf_counter() - t0
+    _record(timings, "loss_rank", t0)
 
     table = stats.table.copy()
     for col in module_table.columns:
@@ -316,6 +378,7 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
                               for k, v in m["radiometry"].items()},
                "image_artefacts": _artefact_summary(m.get("seams"), modules, bool(settings["seams"]["enabled"])),
                "layout": modules.attrs.get("layout", {}),
+               "normalisation": Normalisation.from_settings(settings).to_dict(),
                "timings_s": {k: round(v, 3) for k, v in timings.items()}},
     )
     result = InspectionResult(out_dir=None, modules=modules.assign(**{c: table[c].to_numpy() for c in table}),
@@ -323,17 +386,19 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
     if out_dir is None:
         return result
 
-    t0 = time.perf_counter()
+    t0 = _clock()
     with outputs.staging_dir(out_dir, overwrite=overwrite) as tmp:
         files = write_results(tmp, modules=modules, module_table=table, anomalies=anomalies,
                               summary=summary, settings=settings["outputs"])
+        _record(timings, "outputs", t0)
+        t0 = _clock()
         if report:
             from pvscan.report import write_report
 
             write_report(tmp, tmp / "report.html", flight=flight, modules=modules,
                          stats=stats, settings=settings["report"], progress=progress)
             files["report"] = "report.html"
-    timings["outputs"] = time.perf_counter() - t0
+        _record(timings, "report", t0)
     result.out_dir = out_dir
     result.files = {k: out_dir / v for k, v in files.items()}
     return result

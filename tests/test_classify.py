@@ -22,7 +22,9 @@ import pandas as pd
 import pvlib
 import pytest
 
-from pvscan.diagnose.classify import ANOMALY_COLUMNS, assign_severity, classify
+from pvscan.diagnose.classify import classify
+from pvscan.diagnose.results import ANOMALY_COLUMNS
+from pvscan.diagnose.severity import assign_severity
 from pvscan.io.settings import load_pipeline
 
 POA = 850.0
@@ -662,15 +664,18 @@ def test_empty_and_stringless_inputs(rng):
     assert list(an.columns) == ANOMALY_COLUMNS and len(an) == 0 and len(mt) == 0
 
 
-def test_built_in_defaults_match_the_pipeline_file():
-    # library callers without a pipeline get the same choices as pipelines/post_flight.toml
-    from pvscan.diagnose import thermal
-    from pvscan.diagnose.classify import _CLASSIFY_DEFAULTS, _SEVERITY_DEFAULTS
-
-    p = load_pipeline()
-    for section, built_in in (("classify", _CLASSIFY_DEFAULTS), ("severity", _SEVERITY_DEFAULTS),
-                              ("reference", thermal._REFERENCE_DEFAULTS)):
-        assert p.to_dict()[section] == built_in, section
+def test_settings_default_to_the_pipeline_file(rng):
+    # library callers without a pipeline, or with some keys only, get the choices of
+    # pipelines/post_flight.toml for the rest (the code holds no defaults of its own)
+    p = Plant(rng)
+    i = p.index(col=5)
+    p.bypass(i, [0])
+    an_file, mt_file = classify(*p.inputs(), load_pipeline())
+    an_none, mt_none = classify(*p.inputs())
+    an_part, _ = classify(*p.inputs(), {"classify": {"noise_z": float(load_pipeline()["classify"]["noise_z"])}})
+    assert an_file.drop(columns=["region_uv"]).equals(an_none.drop(columns=["region_uv"]))
+    assert list(an_part.module_id) == list(an_file.module_id) == [p.modules.module_id[i]]
+    assert np.allclose(mt_file.delta_t_norm_k, mt_none.delta_t_norm_k, equal_nan=True)
 
 
 # ---------------------------------------------------------------------------------------
@@ -789,7 +794,7 @@ def test_open_module_floor_is_the_likelihood_ratio_boundary():
     # N(rise, s) modules are equal (Bayes decision boundary; scipy.stats.norm as reference)
     from scipy.stats import norm
 
-    from pvscan.diagnose.classify import open_module_floor
+    from pvscan.diagnose.patterns.open_circuit import open_module_floor
 
     s, prior = 0.6, 0.002
     for rise in (1.9, 3.0, 4.2):
@@ -862,9 +867,9 @@ def test_seam_along_a_landscape_row_is_no_bypassed_substring(rng, monkeypatch):
     # the straight-line rule is enough by itself: with the rule that the raise carries on
     # across the module's edge switched off, it still keeps the module quiet, and with
     # both off the seam patch is taken for a bypassed substring
-    import pvscan.diagnose.classify as classify_mod
+    import pvscan.diagnose.patterns.substrings as substrings
 
-    monkeypatch.setattr(classify_mod, "_carried_across_edge", lambda F, raised, cand: np.zeros(F.n, bool))
+    monkeypatch.setattr(substrings, "_carried_across_edge", lambda F, raised, cand: np.zeros(F.n, bool))
     an1, _ = p.run()
     assert not {"bypassed_substring", "several_bypassed_substrings"} & set(an1.defect)
     an0, _ = p.run(settings=_with(substring_line_tol_m=-1.0))

@@ -11,7 +11,7 @@ import pvlib
 import pytest
 from pvlib.singlediode import bishop88, estimate_voc
 
-from pvscan.diagnose import loss
+from pvscan.diagnose import energy, loss
 from pvscan.io.manifest import ModuleSpec
 from pvscan.io.settings import load_pipeline
 
@@ -19,6 +19,8 @@ from pvscan.io.settings import load_pipeline
 SPEC = ModuleSpec(pmax_w=400.0, width_m=1.0, length_m=2.0, cells_across=6, cells_along=12, bypass_diodes=3,
                   gamma_pmax_pct_per_k=-0.35)
 COND = {"poa_global": 850.0, "temp_air": 25.0, "wind_speed": 2.0}
+U0, U1 = 25.0, 6.84   # Faiman 2008 (pvlib's defaults), the pipeline's [heat]
+HEAT = {"u0": U0, "u1": U1}
 
 
 def _row(defect, region, delta_t_k, region_uv=(), idx=(0,), **kw):
@@ -109,13 +111,24 @@ def test_open_string_shares_never_double_count():
 # --------------------------------------------------------------------------- thermal models
 
 
-def test_faiman_against_pvlib():
-    """U(v) = u0 + u1 v with Faiman's (2008) coefficients, as pvlib.temperature.faiman has them."""
-    g, ta, ws = np.array([200.0, 600.0, 1000.0]), np.array([5.0, 20.0, 35.0]), np.array([0.0, 2.5, 7.0])
-    assert loss.faiman_temperature(g, ta, ws) == pytest.approx(pvlib.temperature.faiman(g, ta, ws), rel=1e-12)
-    u0, u1 = load_pipeline()["reference"]["u0"], load_pipeline()["reference"]["u1"]
-    assert (u0, u1) == (25.0, 6.84)  # Faiman 2008, Prog. Photovolt. 16:307 (pvlib's defaults)
-    assert loss.faiman_u(3.0) == pytest.approx(25.0 + 6.84 * 3.0)
+def test_loss_uses_the_pipelines_heat_model():
+    """The heat balance of the losses is the pipeline's [heat] Faiman model (Faiman 2008,
+    Prog. Photovolt. 16:307; pvlib's defaults): a tuned u0 changes the heat-balance loss."""
+    p = load_pipeline()
+    assert (p["heat"]["u0"], p["heat"]["u1"]) == (U0, U1)
+    an = pd.DataFrame([_row("hot_cell", "cell", 20.0, [(0.0, 1 / 12, 0.0, 1 / 6)])])
+    base = loss.estimate_loss(an, SPEC, COND, {"specific_yield_kwh_per_kwp": 1000.0}, p)
+    tuned = loss.estimate_loss(an, SPEC, COND, {"specific_yield_kwh_per_kwp": 1000.0},
+                               p.replace(heat={"u0": 2 * U0, "u1": 2 * U1}))
+    # twice U sheds the same rise's heat twice over, and the halo shrinks by sqrt(2); the
+    # share of the operating power is read at the Faiman temperature of each U
+    u = U0 + U1 * 2.0
+    area = (2.0 / 12) * (1.0 / 6)
+    halo = (2.0 / 12 + 1.0 / 6) * math.sqrt(0.03 / u)   # inner edges of a corner cell [m] x L
+    tf = [1.0 - 0.0035 * float(pvlib.temperature.faiman(850.0, 25.0, 2.0, u0=k * U0, u1=k * U1) - 25.0)
+          for k in (1, 2)]
+    ratio = 2.0 * (area + halo / math.sqrt(2.0)) / (area + halo) * tf[0] / tf[1]
+    assert tuned["power_loss_w"].iloc[0] / base["power_loss_w"].iloc[0] == pytest.approx(ratio, rel=1e-6)
 
 
 def test_open_module_yardstick_against_pvsyst_model():
@@ -130,10 +143,10 @@ def test_open_module_yardstick_against_pvsyst_model():
                                            alpha_absorption=1.0)
     t_work = pvlib.temperature.pvsyst_cell(g, 26.5, ws, u_c=25.0, u_v=6.84, module_efficiency=eta,
                                            alpha_absorption=1.0)
-    assert loss.open_module_yardstick(g, ws, eta) == pytest.approx(t_open - t_work, rel=1e-12)
-    assert loss.open_module_yardstick(g, ws, eta) == pytest.approx(eta * g / u)
+    assert loss.open_module_yardstick(g, ws, eta, **HEAT) == pytest.approx(t_open - t_work, rel=1e-12)
+    assert loss.open_module_yardstick(g, ws, eta, **HEAT) == pytest.approx(eta * g / u)
     # at the operating temperature the efficiency drops by gamma (datasheet convention)
-    y_hot = loss.open_module_yardstick(g, ws, eta, temp_module=55.0, gamma_pmax_pct_per_k=-0.35)
+    y_hot = loss.open_module_yardstick(g, ws, eta, temp_module=55.0, gamma_pmax_pct_per_k=-0.35, **HEAT)
     assert y_hot == pytest.approx(eta * (1 - 0.0035 * 30.0) * g / u)
 
 
@@ -141,7 +154,7 @@ def test_thermal_deficit_pid():
     """A PID module warmer by half the open-module rise has lost half its power."""
     g, ws, ta = COND["poa_global"], COND["wind_speed"], COND["temp_air"]
     t = float(pvlib.temperature.faiman(g, ta, ws))
-    yard = loss.open_module_yardstick(g, ws, SPEC.efficiency, t, SPEC.gamma_pmax_pct_per_k)
+    yard = loss.open_module_yardstick(g, ws, SPEC.efficiency, t, SPEC.gamma_pmax_pct_per_k, **HEAT)
     an = pd.DataFrame([_row("pid", "module", yard / 2), _row("pid", "module", -1.0, idx=(1,)),
                        _row("pid", "module", 3 * yard, idx=(2,)), _row("pid", "module", float("nan"), idx=(3,))])
     out = loss.estimate_loss(an, SPEC, COND, {"specific_yield_kwh_per_kwp": 1000.0})
@@ -223,8 +236,8 @@ def test_conduction_halo_against_fin_equation():
     from scipy.integrate import solve_bvp, trapezoid
 
     kt, ws, dt = 0.03, 2.0, 20.0
-    u = float(loss.faiman_u(ws))
-    lam = float(loss.lateral_spread_m(ws, kt))
+    u = U0 + U1 * ws
+    lam = float(loss.lateral_spread_m(ws, kt, **HEAT))
     assert lam == pytest.approx(math.sqrt(kt / u))
     x = np.linspace(0.0, 20 * lam, 401)
     sol = solve_bvp(lambda x, y: np.vstack([y[1], u / kt * y[0]]), lambda a, b: np.array([a[0] - dt, b[0]]),
@@ -232,7 +245,7 @@ def test_conduction_halo_against_fin_equation():
                     max_nodes=100000)
     assert sol.success
     shed = trapezoid(u * sol.sol(x)[0], x)  # W per metre of edge
-    assert float(loss.heat_balance_loss(dt, 0.0, ws, perimeter_m=1.0, sheet_conductance_w_k=kt)) == \
+    assert float(loss.heat_balance_loss(dt, 0.0, ws, perimeter_m=1.0, sheet_conductance_w_k=kt, **HEAT)) == \
         pytest.approx(shed, rel=1e-3)
     # conduction into the fin at its root, -k t theta'(0), is the same heat (energy balance)
     assert -kt * sol.sol(0.0)[1] == pytest.approx(shed, rel=1e-3)
@@ -255,7 +268,7 @@ def test_region_geometry_helpers():
 
 def test_specific_yield_clear_sky():
     lat, lon = 47.6, 9.13
-    flat = loss.specific_yield(lat, lon, 0.0, 180.0, derate=1.0)
+    flat = energy.specific_yield(lat, lon, 0.0, 180.0, derate=1.0)
     with warnings.catch_warnings():
         # pvlib 0.13 calls pandas accessors that pandas 3 deprecates (not ours)
         warnings.simplefilter("ignore", DeprecationWarning)
@@ -270,14 +283,14 @@ def test_specific_yield_clear_sky():
     # turbidity, by up to ~20 % at a central European site (from memory)
     assert 0.8 * ghi_haurwitz < flat < ghi_haurwitz
     # a south-facing 30 deg tilt gains on a clear-sky year at 47.6 N (common practice: 10-30 %)
-    tilted = loss.specific_yield(lat, lon, 30.0, 180.0, derate=1.0)
+    tilted = energy.specific_yield(lat, lon, 30.0, 180.0, derate=1.0)
     assert 1.05 * flat < tilted < 1.35 * flat
     # facing north loses
-    assert loss.specific_yield(lat, lon, 30.0, 0.0, derate=1.0) < flat
+    assert energy.specific_yield(lat, lon, 30.0, 0.0, derate=1.0) < flat
     # with the default derate the yield is in the range of central Europe, 900-1300 kWh/kWp
     # (from memory, solar atlases for southern Germany / Switzerland)
     cfg = load_pipeline()["loss"]
-    assert 900.0 < loss.specific_yield(lat, lon, 30.0, 180.0, derate=cfg["energy_derate"]) < 1300.0
+    assert 900.0 < energy.specific_yield(lat, lon, 30.0, 180.0, settings=load_pipeline()) < 1300.0
 
 
 def test_energy_from_manifest_or_clear_sky_and_cost():
@@ -296,11 +309,11 @@ def test_energy_from_manifest_or_clear_sky_and_cost():
     # no yield in the manifest: the clear-sky year at the layout's centroid and plane of array
     mods = gpd.GeoDataFrame({"module_id": ["M0"]}, geometry=[box(510000, 5272000, 510001, 5272002)],
                             crs="EPSG:32632")
-    lon, lat = loss.site_lonlat(mods)
+    lon, lat = energy.site_lonlat(mods)
     assert (lon, lat) == pytest.approx((9.1330, 47.6013), abs=1e-3)  # pyproj, UTM 32N
     lay = LayoutSpec(tilt_deg=30.0, azimuth_deg=180.0)
     cs = loss.estimate_loss(an, SPEC, COND, Site(name="x"), load_pipeline(), modules=mods, layout=lay)
-    sy = loss.specific_yield(lat, lon, 30.0, 180.0, derate=load_pipeline()["loss"]["energy_derate"])
+    sy = energy.specific_yield(lat, lon, 30.0, 180.0, derate=float(load_pipeline()["loss"]["energy_derate"]))
     assert cs.attrs["specific_yield_source"] == "clear_sky"
     assert cs["energy_loss_kwh_per_year"].iloc[0] == pytest.approx(0.4 * sy)
     # nothing to locate: energy is unknown (NaN), the power loss stands
@@ -325,7 +338,7 @@ def test_patchy_pid_uses_the_mean_rise():
 
     g, ws, ta = COND["poa_global"], COND["wind_speed"], COND["temp_air"]
     t = float(pvlib.temperature.faiman(g, ta, ws))
-    yard = loss.open_module_yardstick(g, ws, SPEC.efficiency, t, SPEC.gamma_pmax_pct_per_k)
+    yard = loss.open_module_yardstick(g, ws, SPEC.efficiency, t, SPEC.gamma_pmax_pct_per_k, **HEAT)
     an = pd.DataFrame([_row("pid", "module", yard / 4)])
     ref = np.array([40.0])
     stats = SimpleNamespace(table=pd.DataFrame({"t_median_c": ref + yard / 4, "t_mean_c": ref + yard / 2}))

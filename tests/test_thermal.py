@@ -1,4 +1,4 @@
-"""Faiman heat-loss coefficient, normalisation, open-module rise and the local reference.
+"""The thermal stage: normalisation to reference conditions and the local reference.
 
 Outside references: pvlib.temperature.faiman (pvlib's implementation of Faiman 2008,
 doi:10.1002/pip.813) for the heat balance; the CONTRACT formula for the normalisation.
@@ -12,57 +12,37 @@ import pandas as pd
 import pvlib
 import pytest
 
+from pvscan.diagnose.thermal import Normalisation, local_reference, module_thermal, reference_neighbours
 from pvscan.io.settings import load_pipeline
-from pvscan.diagnose.thermal import (faiman_u, local_reference, module_centres, normalise_delta_t,
-                            open_module_rise, reference_neighbours)
+from pvscan.measure.rows import module_centres
 
 ETA = 410.0 / (1000.0 * 1.038 * 2.094)
 
 
-@pytest.mark.parametrize("poa, ta, ws", [(1000.0, 25.0, 1.0), (650.0, 12.0, 5.0), (870.0, 26.5, 2.1),
-                                         (300.0, 35.0, 0.0)])
-def test_faiman_u_matches_pvlib(poa, ta, ws):
-    # pvlib: T_module = T_air + poa / (u0 + u1 * ws); rtol 1e-12: same closed form
-    t_pvlib = pvlib.temperature.faiman(poa, ta, ws)
-    assert ta + poa / faiman_u(ws) == pytest.approx(t_pvlib, rel=1e-12)
-    u0, u1 = 29.0, 0.0   # pvlib's docstring mentions u0 = 29, u1 = 0 as another fit (from memory)
-    assert ta + poa / faiman_u(ws, u0, u1) == pytest.approx(
-        pvlib.temperature.faiman(poa, ta, ws, u0=u0, u1=u1), rel=1e-12)
-
-
-def test_faiman_u_array_and_calm():
-    ws = np.array([0.0, 1.0, 3.0, -1.0])
-    u = faiman_u(ws)
-    assert u.shape == (4,)
-    assert u[1] == pytest.approx(25.0 + 6.84)
-    assert u[3] == pytest.approx(25.0)   # negative wind read as calm
-
-
-@pytest.mark.parametrize("poa, ws", [(650.0, 5.0), (900.0, 0.5), (780.0, 2.5)])
-def test_open_module_rise_is_eta_times_the_faiman_rise(poa, ws):
-    # a module delivering nothing keeps eta*G as heat: rise = eta * (T_faiman - T_air)
-    expected = ETA * (pvlib.temperature.faiman(poa, 20.0, ws) - 20.0)
-    assert open_module_rise(ETA, poa, ws) == pytest.approx(expected, rel=1e-12)
-
-
 @pytest.mark.parametrize("poa, ws", [(650.0, 5.0), (900.0, 0.5), (780.0, 2.5), (1000.0, 1.0)])
 def test_normalised_open_rise_is_the_rise_at_reference_conditions(poa, ws):
-    # normalising the open-module rise measured at (G, v) must give the rise at
-    # (1000 W/m2, 1 m/s) by pvlib's Faiman model, whatever the flight's conditions
+    # normalising the open-module rise measured at (G, v) must give the rise at the
+    # pipeline's reference conditions (1000 W/m2, 1 m/s) by pvlib's Faiman model
+    norm = Normalisation.from_settings(load_pipeline())
+    assert (norm.g_ref_w_m2, norm.wind_ref_m_s) == (1000.0, 1.0)
     measured = ETA * (pvlib.temperature.faiman(poa, 20.0, ws) - 20.0)
     at_ref = ETA * (pvlib.temperature.faiman(1000.0, 20.0, 1.0) - 20.0)
-    assert normalise_delta_t(measured, poa, ws) == pytest.approx(at_ref, rel=1e-12)
+    assert norm(measured, poa, ws) == pytest.approx(at_ref, rel=1e-12)
 
 
-def test_normalise_formula_and_degenerate_input():
-    dt = np.array([2.0, 2.0, 2.0, 2.0])
-    g = np.array([500.0, 0.0, np.nan, -5.0])
+def test_module_thermal_follows_the_contract():
+    # delta_t_k = t_median_c - reference_c; delta_t_norm_k = delta_t_k * 1000/G * U(v)/U(1)
+    p = load_pipeline().replace(heat={"u0": 20.0, "u1": 5.0})
+    cond = pd.DataFrame({"poa_global": [500.0, 0.0, 800.0], "wind_speed": [3.0, 1.0, -2.0]})
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        out = normalise_delta_t(dt, g, 3.0, u0=20.0, u1=5.0)
-    assert out[0] == pytest.approx(2.0 * 1000 / 500 * (20 + 15) / (20 + 5))
-    assert np.isnan(out[1:]).all()
-    assert np.isnan(open_module_rise(ETA, 0.0, 1.0))
+        th = module_thermal([42.0, 40.0, 41.0], [40.0, 40.0, 40.0], cond, Normalisation.from_settings(p))
+    assert th.delta_t_k.tolist() == [2.0, 0.0, 1.0]
+    assert th.delta_t_norm_k[0] == pytest.approx(2.0 * 1000 / 500 * (20 + 15) / (20 + 5))
+    assert np.isnan(th.delta_t_norm_k[1])                  # no irradiance, no normalisation
+    assert th.delta_t_norm_k[2] == pytest.approx(1.0 * 1000 / 800 * 20 / 25)   # wind below 0: calm
+    assert Normalisation.from_settings(p).to_dict() == {"u0": 20.0, "u1": 5.0, "g_ref_w_m2": 1000.0,
+                                                        "wind_ref_m_s": 1.0}
 
 
 def _rows(n_tables=3, rows=2, cols=16, pitch=7.0, seed=0):
@@ -92,12 +72,19 @@ def test_reference_cancels_gradient_and_ignores_defects(rng):
     t[bad] += 8.0
     ref = local_reference(m, t, settings=load_pipeline())
     ok = ~bad
-    # healthy modules: reference within the noise of the truth (median of 6: ~0.1 K)
-    assert np.max(np.abs(ref[ok] - truth[ok])) < 0.6
+    # healthy modules: reference within the noise of the truth. The median of six
+    # neighbours with 0.2 K noise scatters by ~0.13 K inside a row, ~0.19 K at row ends
+    # (extrapolated along the trend); the RMS over 92 modules is 0.14 K typically, 0.20 K
+    # at the 99th percentile of 300 draws: 0.25 K fails only on a systematic error. (No
+    # bound on the single worst module holds on every draw: the extrapolation at a row end
+    # has a tail.)
+    assert np.sqrt(np.mean((ref[ok] - truth[ok]) ** 2)) < 0.25
     # defective modules: their reference is their healthy surroundings, not themselves
-    assert np.max(np.abs(ref[bad] - truth[bad])) < 0.6
-    # neighbours of the defects are not pulled up
-    assert abs(ref[4] - truth[4]) < 0.5 and abs(ref[7] - truth[7]) < 0.5
+    # (8 K above them); 0.7 K is five standard errors of an interior median of six
+    assert np.max(np.abs(ref[bad] - truth[bad])) < 0.7
+    # neighbours of the defects are not pulled up (one defect among six neighbours would
+    # lift a plain mean by 1.3 K)
+    assert abs(ref[4] - truth[4]) < 0.7 and abs(ref[7] - truth[7]) < 0.7
 
 
 def test_reference_uses_the_same_row_first(rng):

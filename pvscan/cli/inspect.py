@@ -16,8 +16,12 @@ from pvscan.cli._common import Progress, echo, handle_errors
               help="Pipeline settings (a tuned copy of pipelines/post_flight.toml).")
 @click.option("--overwrite", is_flag=True, help="Replace an existing result folder.")
 @click.option("--no-report", is_flag=True, help="Do not write report.html.")
+@click.option("--scheduler", default="single", show_default=True,
+              help="Where the block statistics run: single (this process), threads or processes "
+                   "(local cores), or a Dask scheduler address tcp://host:port (workers must see the "
+                   "flight's files by the same paths).")
 @handle_errors
-def inspect_cmd(flight, out_dir, pipeline_path, overwrite, no_report):
+def inspect_cmd(flight, out_dir, pipeline_path, overwrite, no_report, scheduler):
     """Find, classify and rank faulty modules of one flight (FLIGHT.toml) into --out DIR.
 
     Writes modules.geojson, anomalies.geojson, workorders.csv, pvscan.gpkg, summary.json and
@@ -26,7 +30,9 @@ def inspect_cmd(flight, out_dir, pipeline_path, overwrite, no_report):
     from pvscan.io.manifest import load_flight
     from pvscan.pipeline import inspect_flight
     from pvscan.io.settings import load_pipeline
+    from pvscan.tasks import parse_scheduler
 
+    scheduler = parse_scheduler(scheduler)
     fl = load_flight(flight)
     settings = load_pipeline(pipeline_path)
     echo(f"pvscan: inspecting {fl.site.name}, flight {fl.flight.id} ({len(fl.flight.orthos)} ortho tile(s))",
@@ -34,7 +40,7 @@ def inspect_cmd(flight, out_dir, pipeline_path, overwrite, no_report):
     progress = Progress()
     try:
         result = inspect_flight(fl, settings, out_dir, overwrite=overwrite, report=not no_report,
-                                progress=progress)
+                                progress=progress, scheduler=scheduler)
     finally:
         progress.close()
     from pvscan.cli._summary import print_inspection_summary

@@ -31,7 +31,7 @@ dissipated instead of delivered (``power_loss_w_flight``). It is scaled to STC a
 region touches, ``k * pmax / n`` (beyond that the bypass diode takes over).
 
 Energy: ``energy_loss_kwh_per_year = power_loss_w / 1000 * specific_yield`` with the
-specific yield [kWh/kWp/yr] of the manifest, else :func:`specific_yield` from a clear-sky
+specific yield [kWh/kWp/yr] of the manifest, else :func:`pvscan.diagnose.energy.specific_yield` from a clear-sky
 year at the site.
 
 References
@@ -51,21 +51,19 @@ from __future__ import annotations
 
 import logging
 import math
-import warnings
 from collections.abc import Mapping
-from functools import lru_cache
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
-from pvscan.diagnose.thermal import faiman_u  # one Faiman model for every stage
+from pvscan.diagnose.energy import site_yield
+from pvscan.io.settings import section
+from pvscan.physics.heat import Faiman, faiman_u
 
 __all__ = [
     "estimate_loss",
     "module_losses",
-    "faiman_u",
-    "faiman_temperature",
     "open_module_yardstick",
     "bypass_loss",
     "thermal_deficit_fraction",
@@ -74,8 +72,6 @@ __all__ = [
     "region_inner_perimeter_m",
     "lateral_spread_m",
     "substrings_touched",
-    "specific_yield",
-    "site_lonlat",
     "DEFECT_METHOD",
 ]
 
@@ -98,62 +94,17 @@ _REGION_METHOD = {
     "substring": "electrical_rule", "substrings": "electrical_rule",
     "module": "thermal_deficit", "modules": "thermal_deficit", "band": "thermal_deficit",
 }
-_DEFAULTS = {"u0": 25.0, "u1": 6.84, "energy_derate": 0.6, "albedo": 0.2, "yield_year": 2025,
-             "sheet_conductance_w_k": 0.03}
-
-
-def _section(settings: Mapping | None, name: str) -> Mapping:
-    if settings is None:
-        return {}
-    keys = list(iter(settings))
-    return settings[name] if name in keys else settings
-
-
-def _cfg(settings: Mapping | None) -> dict:
-    sec = _section(settings, "loss")
-    out = dict(_DEFAULTS)
-    if settings is not None and "reference" in list(iter(settings)):  # a full pipeline
-        ref = settings["reference"]
-        for k in ("u0", "u1"):
-            if k in list(iter(ref)):
-                out[k] = ref[k]
-    keys = list(iter(sec))
-    for k in ("u0", "u1", "energy_derate", "albedo", "yield_year", "linke_turbidity", "sheet_conductance_w_k"):
-        if k in keys:
-            out[k] = sec[k]
-    return out
 
 
 # --------------------------------------------------------------------------- physics
-
-
-def faiman_temperature(poa_global, temp_air, wind_speed, u0: float = 25.0, u1: float = 6.84):
-    """Faiman module temperature ``temp_air + poa_global / (u0 + u1 * wind_speed)``. [degC]
-
-    Parameters
-    ----------
-    poa_global : float or array-like
-        Plane-of-array irradiance. [W/m2]
-    temp_air : float or array-like
-        Air temperature. [degC]
-    wind_speed : float or array-like
-        Wind speed. [m/s]
-    u0, u1 : float
-        Faiman coefficients. [W/(m2 K)], [W s/(m3 K)]
-
-    References
-    ----------
-    .. [1] D. Faiman, Progress in Photovoltaics 16(4), 307-315, 2008. doi:10.1002/pip.813
-    """
-    return np.asarray(temp_air, dtype=float) + np.asarray(poa_global, dtype=float) / faiman_u(wind_speed, u0, u1)
 
 
 def _temp_factor(gamma_pct_per_k: float, temp_module):
     return 1.0 + gamma_pct_per_k / 100.0 * (np.asarray(temp_module, dtype=float) - 25.0)
 
 
-def open_module_yardstick(poa_global, wind_speed, efficiency: float, temp_module=None,
-                          gamma_pmax_pct_per_k: float = 0.0, u0: float = 25.0, u1: float = 6.84):
+def open_module_yardstick(poa_global: Any, wind_speed: Any, efficiency: float, temp_module: Any = None,
+                          gamma_pmax_pct_per_k: float = 0.0, *, u0: float, u1: float) -> Any:
     """Temperature rise of an open-circuited module over a working one, ``eta_op * G / U(v)``. [K]
 
     Parameters
@@ -188,7 +139,7 @@ def open_module_yardstick(poa_global, wind_speed, efficiency: float, temp_module
     .. [1] D. Faiman, Progress in Photovoltaics 16(4), 307-315, 2008. doi:10.1002/pip.813
     """
     eta = efficiency if temp_module is None else efficiency * _temp_factor(gamma_pmax_pct_per_k, temp_module)
-    return eta * np.asarray(poa_global, dtype=float) / faiman_u(wind_speed, u0, u1)
+    return eta * np.asarray(poa_global, dtype=float) / np.asarray(faiman_u(wind_speed, u0, u1))
 
 
 def bypass_loss(pmax_w: float, bypass_diodes: int, k: int = 1) -> float:
@@ -217,7 +168,7 @@ def thermal_deficit_fraction(delta_t_k, yardstick_k):
     return np.clip(f, 0.0, 1.0)
 
 
-def lateral_spread_m(wind_speed, sheet_conductance_w_k: float = 0.03, u0: float = 25.0, u1: float = 6.84):
+def lateral_spread_m(wind_speed: Any, sheet_conductance_w_k: float, *, u0: float, u1: float) -> Any:
     """Lateral conduction length of the module laminate, ``sqrt(k t / U(v))``. [m]
 
     Parameters
@@ -241,11 +192,11 @@ def lateral_spread_m(wind_speed, sheet_conductance_w_k: float = 0.03, u0: float 
     .. [1] F. P. Incropera, D. P. DeWitt et al., "Fundamentals of Heat and Mass Transfer",
        6th ed., Wiley, 2007, section 3.6.2 (fin of infinite length).
     """
-    return np.sqrt(float(sheet_conductance_w_k) / faiman_u(wind_speed, u0, u1))
+    return np.sqrt(float(sheet_conductance_w_k) / np.asarray(faiman_u(wind_speed, u0, u1)))
 
 
-def heat_balance_loss(delta_t_k, area_m2, wind_speed, u0: float = 25.0, u1: float = 6.84,
-                      perimeter_m=0.0, sheet_conductance_w_k: float = 0.0):
+def heat_balance_loss(delta_t_k: Any, area_m2: Any, wind_speed: Any, *, u0: float, u1: float,
+                      perimeter_m: Any = 0.0, sheet_conductance_w_k: float = 0.0) -> Any:
     """Extra heat leaving a warm region and its conduction halo, ``U(v) * dT * (A + P * L)``. [W]
 
     Parameters
@@ -284,8 +235,8 @@ def heat_balance_loss(delta_t_k, area_m2, wind_speed, u0: float = 25.0, u1: floa
     """
     dt = np.clip(np.asarray(delta_t_k, dtype=float), 0.0, None)
     halo = np.asarray(perimeter_m, dtype=float) * (
-        lateral_spread_m(wind_speed, sheet_conductance_w_k, u0, u1) if sheet_conductance_w_k > 0 else 0.0)
-    return faiman_u(wind_speed, u0, u1) * (np.asarray(area_m2, dtype=float) + halo) * dt
+        lateral_spread_m(wind_speed, sheet_conductance_w_k, u0=u0, u1=u1) if sheet_conductance_w_k > 0 else 0.0)
+    return np.asarray(faiman_u(wind_speed, u0, u1)) * (np.asarray(area_m2, dtype=float) + halo) * dt
 
 
 def region_inner_perimeter_m(region_uv, length_m: float, width_m: float) -> float:
@@ -355,83 +306,12 @@ def substrings_touched(region_uv, bypass_diodes: int) -> int:
 # --------------------------------------------------------------------------- energy
 
 
-@lru_cache(maxsize=32)
-def _specific_yield_cached(lat: float, lon: float, tilt: float, azimuth: float, derate: float, albedo: float,
-                           year: int, linke: float | None, altitude: float) -> float:
-    import pvlib
-
-    with warnings.catch_warnings():
-        # pvlib (0.13) uses pandas accessors that pandas 3 deprecates; not ours to fix
-        warnings.filterwarnings("ignore", category=DeprecationWarning, module=r"pvlib\..*")
-        warnings.filterwarnings("ignore", category=DeprecationWarning, module=r"pandas\..*")
-        return _clear_sky_yield(pvlib, lat, lon, tilt, azimuth, derate, albedo, year, linke, altitude)
 
 
-def _clear_sky_yield(pvlib, lat, lon, tilt, azimuth, derate, albedo, year, linke, altitude) -> float:
-    loc = pvlib.location.Location(lat, lon, tz="UTC", altitude=altitude)
-    times = pd.date_range(f"{year}-01-01 00:30", periods=int(pd.Timestamp(f"{year}-12-31").day_of_year) * 24,
-                          freq="1h", tz="UTC")
-    solpos = loc.get_solarposition(times)
-    kwargs = {} if linke is None else {"linke_turbidity": linke}
-    cs = loc.get_clearsky(times, model="ineichen", solar_position=solpos, **kwargs)
-    poa = pvlib.irradiance.get_total_irradiance(
-        surface_tilt=tilt, surface_azimuth=azimuth, solar_zenith=solpos["apparent_zenith"],
-        solar_azimuth=solpos["azimuth"], dni=cs["dni"], ghi=cs["ghi"], dhi=cs["dhi"], albedo=albedo,
-        model="isotropic")
-    kwh_m2 = float(np.nansum(poa["poa_global"].to_numpy())) / 1000.0  # hourly W/m2 -> kWh/m2
-    return kwh_m2 * derate
 
 
-def specific_yield(latitude: float, longitude: float, surface_tilt: float = 0.0, surface_azimuth: float = 180.0,
-                   *, derate: float = 0.6, albedo: float = 0.2, year: int = 2025,
-                   linke_turbidity: float | None = None, altitude: float = 0.0) -> float:
-    """Yearly specific yield from a clear-sky year on the plane of array. [kWh/kWp/yr]
-
-    Hourly (mid-hour) Ineichen-Perez clear-sky irradiance over one year, transposed to the
-    plane of array with the isotropic sky model, summed to kWh/m2 (one kWp yields one kWh
-    per kWh/m2 at STC), times ``derate`` for clouds and system losses.
-
-    Parameters
-    ----------
-    latitude, longitude : float
-        Site position, WGS84. [deg]
-    surface_tilt : float
-        Module tilt from horizontal. [deg]
-    surface_azimuth : float
-        Direction the modules face, clockwise from north. [deg]
-    derate : float
-        Cloud and system derate. [-] Default 0.6, from memory: yearly irradiation is
-        typically 55-80 % of the clear-sky irradiation, times a performance ratio of about
-        0.8. A measured yield in the manifest is always better.
-    albedo : float
-        Ground reflectance. [-] 0.2 is the usual default (common practice).
-    year : int
-        Calendar year simulated (only the sun's path matters).
-    linke_turbidity : float, optional
-        Constant Linke turbidity; default: pvlib's monthly climatology at the site.
-    altitude : float
-        Site altitude. [m]
-
-    References
-    ----------
-    .. [1] P. Ineichen and R. Perez, Solar Energy 73(3), 151-157, 2002.
-       doi:10.1016/S0038-092X(02)00045-2
-    .. [2] B. Y. H. Liu and R. C. Jordan, "The long-term average performance of flat-plate
-       solar-energy collectors", Solar Energy 7(2), 53-74, 1963.
-    """
-    return _specific_yield_cached(round(float(latitude), 4), round(float(longitude), 4), float(surface_tilt),
-                                  float(surface_azimuth), float(derate), float(albedo), int(year),
-                                  None if linke_turbidity is None else float(linke_turbidity), float(altitude))
 
 
-def site_lonlat(modules) -> tuple[float, float]:
-    """WGS84 ``(lon, lat)`` [deg] of the layout's centroid (bounding-box centre of the footprints)."""
-    from pyproj import Transformer
-
-    x0, y0, x1, y1 = modules.total_bounds
-    tr = Transformer.from_crs(modules.crs, 4326, always_xy=True)
-    lon, lat = tr.transform((x0 + x1) / 2.0, (y0 + y1) / 2.0)
-    return float(lon), float(lat)
 
 
 # --------------------------------------------------------------------------- per anomaly
@@ -516,8 +396,9 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
     site : Site, optional
         ``specific_yield_kwh_per_kwp`` [kWh/kWp/yr], ``tariff_per_kwh``, ``currency``.
     settings : mapping, optional
-        The pipeline or its ``[loss]`` section (``u0``, ``u1``, ``energy_derate``, ``albedo``,
-        ``yield_year``, ``linke_turbidity``, ``sheet_conductance_w_k``).
+        The pipeline (sections ``[loss]``: ``energy_derate``, ``albedo``, ``yield_year``,
+        ``linke_turbidity``, ``sheet_conductance_w_k``; ``[heat]``: ``u0``, ``u1``) or its
+        ``[loss]`` section alone; keys left out take the defaults of the pipeline file.
     modules : geopandas.GeoDataFrame, optional
         The modules frame: its centroid places the clear-sky year when the site has no
         specific yield (unless ``lonlat`` is given).
@@ -548,7 +429,8 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
     An anomaly's loss never exceeds the nameplate of its modules; an ``open_string``
     carries the run's total, split over its modules by :func:`module_losses`.
     """
-    cfg = _cfg(settings)
+    cfg = section(settings, "loss")
+    heat = Faiman.from_settings(section(settings, "heat"))
     out = anomalies.copy()
     n_an = len(out)
     pmax = float(_get(module_spec, "pmax_w"))
@@ -560,7 +442,7 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
     area = float(area) if area is not None else width_m * length_m
     eta = _get(module_spec, "efficiency")
     eta = float(eta) if eta is not None else pmax / (1000.0 * area)
-    u0, u1 = float(cfg["u0"]), float(cfg["u1"])
+    u0, u1 = heat.u0, heat.u1
     cell_p95 = getattr(stats, "cell_p95", None) if stats is not None and reference_c is not None else None
     ref_c = np.asarray(reference_c, dtype=float) if reference_c is not None else None
     table = getattr(stats, "table", None) if stats is not None else None
@@ -578,7 +460,7 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
         defect = row.get("defect")
         method = DEFECT_METHOD.get(defect) or _REGION_METHOD.get(row.get("region"), "thermal_deficit")
         g, ta, ws = _conditions_at(conditions, idx[0] if idx else -1)
-        t_mod = faiman_temperature(g, ta, ws, u0, u1) if np.isfinite(ta) else np.nan
+        t_mod = float(heat.temperature(g, ta, ws)) if np.isfinite(ta) else np.nan
         tf = float(_temp_factor(gamma, t_mod)) if np.isfinite(t_mod) else 1.0
         p_op = pmax * g / 1000.0 * tf if np.isfinite(g) and g > 0 else np.nan  # one module [W]
         dt = row.get("delta_t_k")
@@ -593,7 +475,7 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
             stc[pos] = f * pmax * m
             flight[pos] = f * p_op * m
         elif method == "thermal_deficit":
-            ys = open_module_yardstick(g, ws, eta, t_mod if np.isfinite(t_mod) else None, gamma, u0, u1) \
+            ys = open_module_yardstick(g, ws, eta, t_mod if np.isfinite(t_mod) else None, gamma, u0=u0, u1=u1) \
                 if np.isfinite(g) and g > 0 and np.isfinite(ws) else np.nan
             if t_mean is not None and idx and np.isfinite(ys) and np.isfinite(dt):
                 # heat balance per module: the heat added is U x area x the *mean* rise over the
@@ -615,7 +497,8 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
                 dt_boxes = _mean_box_rise(cell_p95, ref_c, idx[0], row.get("region_uv"))
                 if np.isfinite(dt_boxes):
                     dt = dt_boxes
-            q = float(heat_balance_loss(dt, region_area, ws, u0, u1, perim, float(cfg["sheet_conductance_w_k"]))) \
+            q = float(heat_balance_loss(dt, region_area, ws, u0=u0, u1=u1, perimeter_m=perim,
+                                        sheet_conductance_w_k=float(cfg["sheet_conductance_w_k"]))) \
                 if np.isfinite(ws) else np.nan
             k = substrings_touched(row.get("region_uv"), n_sub)
             cap = bypass_loss(pmax, n_sub, k) / pmax  # share of one module
@@ -630,7 +513,7 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
     out["loss_fraction"] = frac
     out["loss_method"] = pd.Series(methods, index=out.index, dtype=object)
 
-    sy, source = _yield(site, modules, layout, cfg, specific_yield_kwh_per_kwp, lonlat)
+    sy, source = site_yield(site, modules, layout, settings, specific_yield_kwh_per_kwp, lonlat)
     out["energy_loss_kwh_per_year"] = stc / 1000.0 * sy if sy is not None else np.nan
     tariff = _get(site, "tariff_per_kwh") if site is not None else None
     if tariff is not None:
@@ -667,27 +550,6 @@ def _mean_box_rise(cell_p95: np.ndarray, reference_c: np.ndarray, i: int, region
     return float(np.average(rises, weights=weights))
 
 
-def _yield(site, modules, layout, cfg, override, lonlat=None) -> tuple[float | None, str]:
-    if override is not None:
-        return float(override), "given"
-    sy = _get(site, "specific_yield_kwh_per_kwp") if site is not None else None
-    if sy is not None:
-        return float(sy), "manifest"
-    if lonlat is not None:
-        lon, lat = float(lonlat[0]), float(lonlat[1])
-    elif modules is not None and len(modules) and modules.crs is not None:
-        lon, lat = site_lonlat(modules)
-    else:
-        log.info("no specific yield and no site position: energy loss left empty")
-        return None, "none"
-    if not (np.isfinite(lon) and np.isfinite(lat) and -90.0 <= lat <= 90.0):
-        log.info("site position %s, %s is not usable: energy loss left empty", lon, lat)
-        return None, "none"
-    tilt = float(_get(layout, "tilt_deg", default=0.0)) if layout is not None else 0.0
-    az = float(_get(layout, "azimuth_deg", default=180.0)) if layout is not None else 180.0
-    sy = specific_yield(lat, lon, tilt, az, derate=float(cfg["energy_derate"]), albedo=float(cfg["albedo"]),
-                        year=int(cfg["yield_year"]), linke_turbidity=cfg.get("linke_turbidity"))
-    return sy, "clear_sky"
 
 
 def module_losses(anomalies: pd.DataFrame, n_modules: int, pmax_w: float | None = None) -> pd.DataFrame:

@@ -1,16 +1,13 @@
-"""Module thermal model, Faiman normalisation and the local healthy reference.
+"""The thermal stage: each module's local healthy reference, delta T and normalised delta T.
 
-Three things live here:
-
-* the Faiman heat-loss coefficient ``U(v) = u0 + u1 * v`` and the normalisation of a
-  temperature difference to reference conditions (1000 W/m2, 1 m/s wind);
-* the *open-module rise* ``eta * G / U(v)``: a module (or substring) that delivers no
-  electrical power turns the share ``eta`` of the irradiance it would have delivered into
-  heat, so it runs warmer than its producing neighbours by about that much. This is the
-  physical yardstick the classifier compares raised areas against;
 * :func:`local_reference`: each module's reference temperature, the median of its healthy
-  neighbours (same table row first, else a local window), computed twice so that
-  defective modules do not pull their neighbours' reference up.
+  neighbours (same table row first, else a local window), computed twice so that defective
+  modules do not pull their neighbours' reference up;
+* :class:`Normalisation`: a temperature difference driven by absorbed power, scaled to the
+  reference conditions of ``[reference]`` (irradiance, wind) with the Faiman heat-loss
+  coefficient of ``[heat]`` (:mod:`pvscan.physics.heat`, the one home of the model);
+* :func:`module_thermal`: ``delta_t_k`` and ``delta_t_norm_k`` of every module against its
+  reference (CONTRACT: ``delta_t_norm_k = delta_t_k * (1000 / G) * U(v) / U(1 m/s)``).
 
 References
 ----------
@@ -26,201 +23,126 @@ import logging
 import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import pandas as pd
+from numpy.typing import ArrayLike
 from scipy.spatial import cKDTree
 
+from pvscan.io.settings import section
+from pvscan.measure.rows import module_centres, row_keys
+from pvscan.physics.heat import U0_FAIMAN_2008, U1_FAIMAN_2008, Faiman
+from pvscan.robust import scaled_mad
+
 __all__ = [
-    "faiman_u",
-    "normalise_delta_t",
-    "open_module_rise",
     "local_reference",
-    "module_centres",
-    "ReferenceResult",
     "reference_neighbours",
+    "ReferenceResult",
+    "Normalisation",
+    "ModuleThermal",
+    "module_thermal",
+    "condition_column",
 ]
 
 logger = logging.getLogger(__name__)
 
-#: Faiman coefficients fitted in [1] (also pvlib's defaults) [W/(m2 K)], [W s/(m3 K)].
-U0_FAIMAN = 25.0
-U1_FAIMAN = 6.84
+#: Published Faiman coefficients, kept here for callers that have not moved to
+#: :mod:`pvscan.physics.heat` (a run takes its coefficients from ``[heat]``).
+U0_FAIMAN = U0_FAIMAN_2008
+U1_FAIMAN = U1_FAIMAN_2008
 
 
-def faiman_u(wind_speed, u0: float = U0_FAIMAN, u1: float = U1_FAIMAN):
-    """Faiman combined heat-loss coefficient.
+@dataclass(frozen=True)
+class Normalisation:
+    """Scales temperature differences to reference irradiance and wind (Faiman).
+
+    Attributes
+    ----------
+    heat : Faiman
+        Heat-loss coefficients of the run (``[heat]``).
+    g_ref_w_m2 : float
+        Reference irradiance (``[reference] g_ref_w_m2``). [W/m2]
+    wind_ref_m_s : float
+        Reference wind speed (``[reference] wind_ref_m_s``). [m/s]
+    """
+
+    heat: Faiman
+    g_ref_w_m2: float
+    wind_ref_m_s: float
+
+    @classmethod
+    def from_settings(cls, settings: Mapping[str, Any] | None) -> Normalisation:
+        """From a pipeline (sections ``[heat]`` and ``[reference]``); None: the defaults."""
+        ref = section(settings, "reference")
+        return cls(Faiman.from_settings(section(settings, "heat")), float(ref["g_ref_w_m2"]),
+                   float(ref["wind_ref_m_s"]))
+
+    def __call__(self, delta_t_k: ArrayLike, poa_global: ArrayLike, wind_speed: ArrayLike) -> Any:
+        """``delta_t_k * (g_ref / G) * U(v) / U(wind_ref)`` [K]; NaN where G is not positive."""
+        return self.heat.normalise(delta_t_k, poa_global, wind_speed, g_ref=self.g_ref_w_m2,
+                                   wind_ref=self.wind_ref_m_s)
+
+    def to_dict(self) -> dict[str, float]:
+        """The record of ``summary.json`` (``normalisation``)."""
+        return {**self.heat.to_dict(), "g_ref_w_m2": self.g_ref_w_m2, "wind_ref_m_s": self.wind_ref_m_s}
+
+
+def condition_column(conditions: pd.DataFrame | None, name: str, n: int) -> np.ndarray:
+    """Column ``name`` of the per-module conditions as floats, NaN when absent."""
+    if conditions is None or name not in conditions:
+        return np.full(n, np.nan)
+    return conditions[name].to_numpy(dtype=float)
+
+
+@dataclass(frozen=True)
+class ModuleThermal:
+    """Per-module outcome of the thermal stage, aligned with the modules.
+
+    Attributes
+    ----------
+    reference_c : ndarray
+        Local healthy reference. [degC]
+    delta_t_k : ndarray
+        ``t_median_c - reference_c``. [K]
+    delta_t_norm_k : ndarray
+        ``delta_t_k`` at the reference conditions. [K]
+    """
+
+    reference_c: np.ndarray
+    delta_t_k: np.ndarray
+    delta_t_norm_k: np.ndarray
+
+
+def module_thermal(t_median_c: ArrayLike, reference_c: ArrayLike, conditions: pd.DataFrame | None,
+                   norm: Normalisation) -> ModuleThermal:
+    """Every module's delta T against its reference, and normalised.
 
     Parameters
     ----------
-    wind_speed : float or array-like
-        Wind speed [m/s]. Negative values are treated as calm (0 m/s).
-    u0 : float
-        Constant heat-loss coefficient [W/(m2 K)].
-    u1 : float
-        Wind-dependent heat-loss coefficient [W s/(m3 K)].
+    t_median_c : array-like
+        Median true glass temperature per module. [degC]
+    reference_c : array-like
+        Local reference per module (:func:`local_reference`). [degC]
+    conditions : DataFrame
+        ``poa_global`` [W/m2] and ``wind_speed`` [m/s] when each module was imaged.
+    norm : Normalisation
 
     Returns
     -------
-    float or ndarray
-        ``U = u0 + u1 * wind_speed`` [W/(m2 K)], such that the module runs
-        ``poa_global / U`` above the air temperature.
-
-    References
-    ----------
-    .. [1] D. Faiman, Progress in Photovoltaics 16(4), 307-315, 2008. doi:10.1002/pip.813
+    ModuleThermal
     """
-    ws = np.asarray(wind_speed, dtype=float)
-    u = u0 + u1 * np.clip(ws, 0.0, None)
-    return float(u) if u.ndim == 0 else u
-
-
-def normalise_delta_t(delta_t_k, poa_global, wind_speed, *, g_ref: float = 1000.0,
-                      wind_ref: float = 1.0, u0: float = U0_FAIMAN, u1: float = U1_FAIMAN):
-    """Scale a temperature difference to reference irradiance and wind (Faiman).
-
-    A temperature difference driven by absorbed power grows in proportion to irradiance
-    and shrinks with the heat-loss coefficient, so
-
-    ``delta_t_norm = delta_t * (g_ref / G) * (U(v) / U(wind_ref))``.
-
-    Parameters
-    ----------
-    delta_t_k : float or array-like
-        Measured temperature difference [K].
-    poa_global : float or array-like
-        Plane-of-array irradiance when the module was imaged [W/m2].
-    wind_speed : float or array-like
-        Wind speed when the module was imaged [m/s].
-    g_ref : float
-        Reference irradiance [W/m2].
-    wind_ref : float
-        Reference wind speed [m/s].
-    u0, u1 : float
-        Faiman coefficients [W/(m2 K)], [W s/(m3 K)].
-
-    Returns
-    -------
-    float or ndarray
-        Normalised temperature difference [K]; NaN where ``poa_global <= 0`` or is NaN.
-
-    References
-    ----------
-    .. [1] D. Faiman, Progress in Photovoltaics 16(4), 307-315, 2008. doi:10.1002/pip.813
-    """
-    dt = np.asarray(delta_t_k, dtype=float)
-    g = np.asarray(poa_global, dtype=float)
-    with np.errstate(divide="ignore", invalid="ignore"):
-        scale = np.where(g > 0, g_ref / np.where(g > 0, g, 1.0), np.nan)
-        out = dt * scale * (faiman_u(wind_speed, u0, u1) / faiman_u(wind_ref, u0, u1))
-    out = np.asarray(out, dtype=float)
-    return float(out) if out.ndim == 0 else out
-
-
-def open_module_rise(efficiency, poa_global, wind_speed, u0: float = U0_FAIMAN,
-                     u1: float = U1_FAIMAN):
-    """Temperature rise of a module (or substring) that delivers no power.
-
-    A producing module exports the share ``eta`` of the irradiance as electricity; an
-    open-circuited module, or a substring whose bypass diode conducts, turns it into heat
-    instead. With the Faiman heat balance the extra heat flux ``eta * G`` raises it by
-
-    ``rise = eta * G / U(v)``
-
-    above producing neighbours. Lateral conduction to cooler neighbouring cells makes a
-    narrow strip run somewhat below this; the classifier's tolerance bands allow for it.
-
-    Parameters
-    ----------
-    efficiency : float or array-like
-        Module efficiency at STC, ``pmax / (1000 W/m2 * area)`` [-].
-    poa_global : float or array-like
-        Plane-of-array irradiance [W/m2].
-    wind_speed : float or array-like
-        Wind speed [m/s].
-    u0, u1 : float
-        Faiman coefficients [W/(m2 K)], [W s/(m3 K)].
-
-    Returns
-    -------
-    float or ndarray
-        Expected rise [K]; NaN where irradiance is not positive.
-
-    References
-    ----------
-    .. [1] D. Faiman, Progress in Photovoltaics 16(4), 307-315, 2008. doi:10.1002/pip.813
-    """
-    eta = np.asarray(efficiency, dtype=float)
-    g = np.asarray(poa_global, dtype=float)
-    rise = np.where(g > 0, eta * g / faiman_u(wind_speed, u0, u1), np.nan)
-    rise = np.asarray(rise, dtype=float)
-    return float(rise) if rise.ndim == 0 else rise
+    t = np.asarray(t_median_c, dtype=float)
+    ref = np.asarray(reference_c, dtype=float)
+    dt = t - ref
+    n = len(t)
+    dtn = norm(dt, condition_column(conditions, "poa_global", n), condition_column(conditions, "wind_speed", n))
+    return ModuleThermal(ref, dt, np.asarray(dtn, dtype=float).reshape(n))
 
 
 # --------------------------------------------------------------------------------------
 # local reference
 # --------------------------------------------------------------------------------------
-
-_REFERENCE_DEFAULTS = {
-    "row_neighbours": 6,
-    "row_radius_m": 15.0,
-    "min_row_neighbours": 3,
-    "window_neighbours": 8,
-    "window_radius_m": 25.0,
-    "outlier_mad": 3.5,
-    "outlier_floor_k": 1.0,
-    "iterations": 2,
-    "trend_correction": True,
-    "trend_max_shift_m": 5.0,
-    "u0": U0_FAIMAN,
-    "u1": U1_FAIMAN,
-    "g_ref_w_m2": 1000.0,
-    "wind_ref_m_s": 1.0,
-}
-
-
-def _section(settings, name: str, defaults: Mapping) -> dict:
-    """Pick section ``name`` out of a Pipeline, or take a section mapping as it is."""
-    out = dict(defaults)
-    if settings is None:
-        return out
-    sec = settings
-    try:
-        if name in settings:
-            sec = settings[name]
-    except Exception:  # a Pipeline raises PipelineError (not KeyError) for a missing section
-        sec = settings
-    out.update(dict(sec))
-    return out
-
-
-def module_centres(modules: pd.DataFrame) -> np.ndarray:
-    """Module centres from the module-local frame, ``f0 + (fu + fv) / 2`` [m], shape (n, 2)."""
-    cols = ("fx0", "fy0", "fux", "fuy", "fvx", "fvy")
-    if all(c in modules.columns for c in cols):
-        f = {c: np.asarray(modules[c], dtype=float) for c in cols}
-        return np.column_stack([f["fx0"] + 0.5 * (f["fux"] + f["fvx"]),
-                                f["fy0"] + 0.5 * (f["fuy"] + f["fvy"])])
-    geom = modules.geometry.centroid
-    return np.column_stack([geom.x.to_numpy(), geom.y.to_numpy()])
-
-
-def _row_keys(modules: pd.DataFrame) -> np.ndarray:
-    """Integer code of each module's table row (-1 when the table is unknown)."""
-    n = len(modules)
-    if "table_id" not in modules.columns:
-        return np.full(n, -1, dtype=np.int64)
-    table = modules["table_id"].astype("string").fillna("\x00none")
-    if "table_row" in modules.columns:
-        row = pd.to_numeric(modules["table_row"], errors="coerce").fillna(-1).astype(np.int64)
-        key = table + "\x00" + row.astype(str)
-    else:
-        key = table
-    codes, _ = pd.factorize(key)
-    codes = np.asarray(codes, dtype=np.int64)
-    codes[modules["table_id"].isna().to_numpy()] = -1
-    return codes
-
 
 def _knn(points: np.ndarray, pool: np.ndarray, k: int, radius: float) -> np.ndarray:
     """Indices (into ``pool``) of the k nearest pool points of each point, -1 when missing,
@@ -244,8 +166,8 @@ def _knn(points: np.ndarray, pool: np.ndarray, k: int, radius: float) -> np.ndar
     return glob
 
 
-def reference_neighbours(modules: pd.DataFrame, healthy_mask, settings=None,
-                         *, exclude_group=None) -> np.ndarray:
+def reference_neighbours(modules: pd.DataFrame, healthy_mask: ArrayLike, settings: Mapping[str, Any] | None = None,
+                         *, exclude_group: ArrayLike | None = None) -> np.ndarray:
     """The neighbours each module's reference is taken from.
 
     Same table row first: the ``row_neighbours`` nearest healthy modules of the module's
@@ -271,7 +193,7 @@ def reference_neighbours(modules: pd.DataFrame, healthy_mask, settings=None,
     ndarray of int, shape (n, k)
         Module indices, -1 where there is none; ``k = max(row_neighbours, window_neighbours)``.
     """
-    cfg = _section(settings, "reference", _REFERENCE_DEFAULTS)
+    cfg = section(settings, "reference")
     n = len(modules)
     healthy = np.asarray(healthy_mask, dtype=bool).copy()
     xy = module_centres(modules)
@@ -286,7 +208,7 @@ def reference_neighbours(modules: pd.DataFrame, healthy_mask, settings=None,
     far = 10.0 * (span + float(cfg["row_radius_m"]) + float(cfg["window_radius_m"]) + 1.0)
 
     if exclude_group is None:
-        rows = _row_keys(modules)
+        rows = row_keys(modules)
         # one KD-tree over (x, y, row * far): neighbours within row_radius_m share the row
         pts3 = np.column_stack([xy0, np.where(rows >= 0, rows, -np.arange(1, n + 1)) * far])
         pool = np.flatnonzero(healthy & (rows >= 0))
@@ -381,8 +303,9 @@ class ReferenceResult:
     scale_k: float
 
 
-def local_reference(modules: pd.DataFrame, t_module_c, healthy_mask=None, settings=None,
-                    *, exclude_group=None, return_details: bool = False):
+def local_reference(modules: pd.DataFrame, t_module_c: ArrayLike, healthy_mask: ArrayLike | None = None,
+                    settings: Mapping[str, Any] | None = None, *, exclude_group: ArrayLike | None = None,
+                    return_details: bool = False) -> Any:
     """Each module's local reference temperature: the median of its healthy neighbours.
 
     The reference is local so that whatever varies slowly over the plant or steps at a
@@ -417,14 +340,15 @@ def local_reference(modules: pd.DataFrame, t_module_c, healthy_mask=None, settin
     Returns
     -------
     ndarray or ReferenceResult
-        Reference temperature per module [degC] (NaN when no healthy neighbour exists).
+        Reference temperature per module [degC] (NaN when no healthy neighbour exists), or
+        the :class:`ReferenceResult` with ``return_details``.
 
     Notes
     -----
     One KD-tree query over ``(x, y, row code * far)`` finds same-row neighbours for all
     modules at once; 25,000 modules take a fraction of a second.
     """
-    cfg = _section(settings, "reference", _REFERENCE_DEFAULTS)
+    cfg = section(settings, "reference")
     t = np.asarray(t_module_c, dtype=float)
     n = len(t)
     if len(modules) != n:
@@ -441,7 +365,7 @@ def local_reference(modules: pd.DataFrame, t_module_c, healthy_mask=None, settin
         if ok.sum() < 3:
             break
         med = float(np.median(dev[ok]))
-        scale = 1.4826 * float(np.median(np.abs(dev[ok] - med)))
+        scale = scaled_mad(dev[ok])
         lim = max(float(cfg["outlier_mad"]) * scale, float(cfg["outlier_floor_k"]))
         new_suspect = healthy & np.isfinite(dev) & (np.abs(dev - med) > lim)
         if not (new_suspect & ~suspect).any():

@@ -65,38 +65,116 @@ class LayoutWarning(PvscanWarning):
 
 
 # ----------------------------------------------------------------------------- frames
+# The frame functions work on arrays of n footprints at once (shapely 2 array functions and
+# numpy; no Python loop over features). Two-vector dot products are taken with batched
+# matmul, one (1, 2) @ (2, 1) product per row: bit for bit what ``x @ y`` gives on one row,
+# so a layout gives the same frames however many footprints are processed together.
+def _dot(x: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Row-wise dot products of (n, 2) vectors (y may be (2,)) [same unit as the inputs]."""
+    x = np.asarray(x, float)
+    y = np.broadcast_to(np.asarray(y, float), x.shape)
+    return np.matmul(x[:, None, :], y[:, :, None])[:, 0, 0]
+
+
 def _facing_vector(azimuth_deg: float) -> np.ndarray:
     """Unit vector (east, north) of the direction the modules face [-]."""
     a = math.radians(azimuth_deg)
     return np.array([math.sin(a), math.cos(a)])
 
 
+def _rect_axes_many(polys) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Centres and the two full-length side vectors of the minimum rotated rectangles.
+
+    Rotating calipers over the edges of each convex hull (about the hull's first vertex,
+    so map coordinates of 1e6 m keep sub-micrometre precision): the first edge direction
+    whose bounding rectangle is smaller than every earlier one by more than 1e-12 m2.
+
+    Returns
+    -------
+    centre, e1, e2 : numpy.ndarray
+        (n, 2) [m]; e1 along the chosen hull edge, e2 across it.
+    ok : numpy.ndarray
+        (n,) bool; False for degenerate footprints (zero area, fewer than three corners).
+    """
+    polys = np.asarray(polys, dtype=object)
+    n = len(polys)
+    centre = np.full((n, 2), np.nan)
+    e1 = np.full((n, 2), np.nan)
+    e2 = np.full((n, 2), np.nan)
+    ok = np.zeros(n, bool)
+    if n == 0:
+        return centre, e1, e2, ok
+    rings = shapely.get_exterior_ring(shapely.convex_hull(polys))  # None unless a polygon
+    coords, owner = shapely.get_coordinates(rings, return_index=True)
+    counts = np.bincount(owner, minlength=n)
+    starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
+    for k in np.unique(counts[counts >= 4]):  # one vectorised pass per hull size
+        sel = np.flatnonzero(counts == k)
+        pts = coords[starts[sel, None] + np.arange(k)]  # (m, k, 2) closed ring
+        ref = pts[:, 0].copy()
+        pts = pts - ref[:, None, :]
+        edges = np.diff(pts, axis=1)
+        lens = np.hypot(edges[..., 0], edges[..., 1])
+        keep = lens > 1e-12
+        with np.errstate(invalid="ignore", divide="ignore"):
+            dirs = edges / lens[..., None]  # (m, k - 1, 2)
+        nrm = np.stack([-dirs[..., 1], dirs[..., 0]], axis=-1)
+        a = np.matmul(pts[:, None, :, :], dirs[..., None])[..., 0]  # (m, k - 1, k)
+        b = np.matmul(pts[:, None, :, :], nrm[..., None])[..., 0]
+        a0, a1 = a.min(axis=2), a.max(axis=2)
+        b0, b1 = b.min(axis=2), b.max(axis=2)
+        area = (a1 - a0) * (b1 - b0)
+        m = len(sel)
+        best = np.full(m, np.inf)
+        pick = np.full(m, -1)
+        for e in range(k - 1):  # the calipers' sequential choice, on all footprints at once
+            better = keep[:, e] & (area[:, e] < best - 1e-12)
+            best = np.where(better, area[:, e], best)
+            pick = np.where(better, e, pick)
+        good = (pick >= 0) & (best > 0)
+        r = np.arange(m)
+        pk = np.maximum(pick, 0)
+        d, nn = dirs[r, pk], nrm[r, pk]
+        pa0, pa1, pb0, pb1 = a0[r, pk], a1[r, pk], b0[r, pk], b1[r, pk]
+        centre[sel] = ref + d * (pa0 + pa1)[:, None] / 2 + nn * (pb0 + pb1)[:, None] / 2
+        e1[sel] = d * (pa1 - pa0)[:, None]
+        e2[sel] = nn * (pb1 - pb0)[:, None]
+        ok[sel] = good
+    return centre, e1, e2, ok
+
+
 def _rect_axes(poly: Polygon) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Centre and the two full-length side vectors of the minimum rotated rectangle."""
-    # Rotating calipers over the convex hull's edges: the minimum-area bounding rectangle
-    # (computed about a local origin, so map coordinates of 1e6 m keep sub-micrometre precision).
-    hull = np.asarray(poly.convex_hull.exterior.coords)
-    if len(hull) < 4:
+    centre, e1, e2, ok = _rect_axes_many([poly])
+    if not ok[0]:
         raise ValueError("degenerate footprint")
-    ref = hull[0].copy()
-    pts = hull - ref
-    edges = np.diff(pts, axis=0)
-    lens = np.hypot(edges[:, 0], edges[:, 1])
-    keep = lens > 1e-12
-    dirs = edges[keep] / lens[keep, None]
-    best = None
-    for d in dirs:
-        n = np.array([-d[1], d[0]])
-        a = pts @ d
-        b = pts @ n
-        area = np.ptp(a) * np.ptp(b)
-        if best is None or area < best[0] - 1e-12:
-            best = (area, d, n, a.min(), a.max(), b.min(), b.max())
-    area, d, n, a0, a1, b0, b1 = best
-    if area <= 0:
-        raise ValueError("degenerate footprint")
-    centre = ref + d * (a0 + a1) / 2 + n * (b0 + b1) / 2
-    return centre, d * (a1 - a0), n * (b1 - b0)
+    return centre[0], e1[0], e2[0]
+
+
+def _frames_from_axes(centre, long_vec, short_vec, facing):
+    """Normalised frames of n footprints: (n, 6) frames and (n,) ``lower_edge`` ("u"/"v").
+
+    ``facing`` is (2,) or (n, 2), the map direction toward the lower edge. See
+    :func:`frame_from_axes`.
+    """
+    U = np.array(long_vec, float, copy=True).reshape(-1, 2)
+    V = np.array(short_vec, float, copy=True).reshape(-1, 2)
+    c = np.asarray(centre, float).reshape(-1, 2)
+    f = np.broadcast_to(np.asarray(facing, float), U.shape)
+    uf, vf = _dot(U, f), _dot(V, f)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        lower_u = np.abs(uf) / np.hypot(U[:, 0], U[:, 1]) >= np.abs(vf) / np.hypot(V[:, 0], V[:, 1])
+    # lower edge at u = 0: U points away from the facing direction; then right-handed
+    flip = lower_u & (uf > 0)
+    U[flip] = -U[flip]
+    flip = lower_u & (U[:, 0] * V[:, 1] - U[:, 1] * V[:, 0] < 0)
+    V[flip] = -V[flip]
+    flip = ~lower_u & (vf > 0)
+    V[flip] = -V[flip]
+    flip = ~lower_u & (U[:, 0] * V[:, 1] - U[:, 1] * V[:, 0] < 0)
+    U[flip] = -U[flip]
+    o = c - U / 2 - V / 2
+    return np.column_stack([o, U, V]), np.where(lower_u, "u", "v").astype(object)
 
 
 def frame_from_axes(centre, long_vec, short_vec, azimuth_deg: float, facing=None):
@@ -118,31 +196,27 @@ def frame_from_axes(centre, long_vec, short_vec, azimuth_deg: float, facing=None
     -------
     (fx0, fy0, fux, fuy, fvx, fvy, lower_edge)
     """
-    U = np.asarray(long_vec, float)
-    V = np.asarray(short_vec, float)
     f = _facing_vector(azimuth_deg) if facing is None else np.asarray(facing, float)
-    if abs(U @ f) / np.hypot(*U) >= abs(V @ f) / np.hypot(*V):
-        lower = "u"
-        if U @ f > 0:  # u = 0 at the lower edge: U points away from the facing direction
-            U = -U
-        if U[0] * V[1] - U[1] * V[0] < 0:
-            V = -V
-    else:
-        lower = "v"
-        if V @ f > 0:
-            V = -V
-        if U[0] * V[1] - U[1] * V[0] < 0:
-            U = -U
-    o = np.asarray(centre, float) - U / 2 - V / 2
-    return (o[0], o[1], U[0], U[1], V[0], V[1], lower)
+    fr, lower = _frames_from_axes(centre, long_vec, short_vec, f)
+    return (*(float(x) for x in fr[0]), lower[0])
+
+
+def _frames_from_polygons(polys, azimuth_deg: float):
+    """Frames (n, 6), ``lower_edge`` (n,) and ok (n,) of module footprints (minimum rotated rectangles)."""
+    centre, e1, e2, ok = _rect_axes_many(polys)
+    first_long = np.hypot(e1[:, 0], e1[:, 1]) >= np.hypot(e2[:, 0], e2[:, 1])
+    long_vec = np.where(first_long[:, None], e1, e2)
+    short_vec = np.where(first_long[:, None], e2, e1)
+    fr, lower = _frames_from_axes(centre, long_vec, short_vec, _facing_vector(azimuth_deg))
+    return fr, lower, ok
 
 
 def frame_from_polygon(poly: Polygon, azimuth_deg: float):
     """Module-local frame of a module footprint (its minimum rotated rectangle)."""
-    centre, e1, e2 = _rect_axes(poly)
-    if np.hypot(*e1) >= np.hypot(*e2):
-        return frame_from_axes(centre, e1, e2, azimuth_deg)
-    return frame_from_axes(centre, e2, e1, azimuth_deg)
+    fr, lower, ok = _frames_from_polygons([poly], azimuth_deg)
+    if not ok[0]:
+        raise ValueError("degenerate footprint")
+    return (*(float(x) for x in fr[0]), lower[0])
 
 
 def uv_to_xy(modules: pd.DataFrame, idx, u, v):
@@ -212,18 +286,25 @@ def _read_geojson(path: Path):
                 crs = CRS.from_user_input(name)
             except Exception:
                 raise LayoutError(f"{path}: crs member {name!r} is not a known coordinate reference system") from None
-    props, geoms = [], []
+    props, raw = [], []
     for k, feat in enumerate(doc["features"]):
         if not isinstance(feat, dict) or feat.get("type") != "Feature":
             raise LayoutError(f"{path}: feature #{k + 1}: not a GeoJSON Feature")
         props.append(dict(feat.get("properties") or {}))
-        g = feat.get("geometry")
-        try:
-            geoms.append(shape(g) if g else None)
-        except Exception as exc:
-            name = _feature_name(pd.Series(props[-1], dtype=object), k)
-            raise LayoutError(f"{path}: {name}: invalid geometry: {exc}") from None
+        raw.append(feat.get("geometry"))
+    geoms = _geojson_geometries(raw, props, path)
     return gpd.GeoDataFrame(pd.DataFrame(props, dtype=object) if props else None, geometry=geoms, crs=crs)
+
+
+def _geojson_geometries(raw: list, props: list, path: Path) -> np.ndarray:
+    """Shapely geometries of the features' GeoJSON members (one array build for plain polygons)."""
+    from pvscan.io.geojson import shapes
+
+    def bad(k: int, exc: Exception) -> None:
+        name = _feature_name(pd.Series(props[k], dtype=object), k)
+        raise LayoutError(f"{path}: {name}: invalid geometry: {exc}") from None
+
+    return shapes(raw, bad)
 
 
 def _read_file(path: Path):
@@ -398,24 +479,94 @@ def _as_polygon(geom, name: str, path: Path) -> Polygon:
 _NS_TOLERANCE = math.radians(1.0)
 
 
+def _eastward_many(vec: np.ndarray) -> np.ndarray:
+    """Orient (n, 2) axes toward increasing easting, or northing for north-south ones."""
+    vec = np.asarray(vec, float).reshape(-1, 2)
+    ns = np.abs(vec[:, 0]) <= math.sin(_NS_TOLERANCE) * np.hypot(vec[:, 0], vec[:, 1])
+    keep = np.where(ns, vec[:, 1] >= 0, vec[:, 0] > 0)
+    return np.where(keep[:, None], vec, -vec)
+
+
 def _eastward(vec: np.ndarray) -> np.ndarray:
     """Orient a table axis toward increasing easting, or northing for north-south tables."""
-    vec = np.asarray(vec, float)
-    if abs(vec[0]) <= math.sin(_NS_TOLERANCE) * np.hypot(*vec):
-        return vec if vec[1] >= 0 else -vec
-    return vec if vec[0] > 0 else -vec
+    return _eastward_many(vec)[0]
+
+
+def _table_axes_many(polys, azimuth_deg: float):
+    """Centres, long-axis vectors A (toward increasing easting), across vectors B (away from
+    the facing direction, so row 1 is the lower row) and ok flags of n table rectangles."""
+    centre, e1, e2, ok = _rect_axes_many(polys)
+    first_long = np.hypot(e1[:, 0], e1[:, 1]) >= np.hypot(e2[:, 0], e2[:, 1])
+    A = _eastward_many(np.where(first_long[:, None], e1, e2))
+    B = np.where(first_long[:, None], e2, e1)
+    flip = _dot(B, _facing_vector(azimuth_deg)) > 0
+    B[flip] = -B[flip]
+    return centre, A, B, ok
 
 
 def _table_axes(poly: Polygon, azimuth_deg: float):
-    """Centre, long-axis vector A (pointing to increasing easting) and across vector B (away
-    from the facing direction, so row 1 is the lower row) of a table's rectangle."""
-    centre, e1, e2 = _rect_axes(poly)
-    A, B = (e1, e2) if np.hypot(*e1) >= np.hypot(*e2) else (e2, e1)
-    A = _eastward(A)
-    f = _facing_vector(azimuth_deg)
-    if B @ f > 0:
-        B = -B
-    return centre, A, B
+    """Centre, long-axis vector A and across vector B of one table's rectangle."""
+    centre, A, B, ok = _table_axes_many([poly], azimuth_deg)
+    if not ok[0]:
+        raise ValueError("degenerate footprint")
+    return centre[0], A[0], B[0]
+
+
+def _split_tables(polys, rows, cols, portrait, gap_m: float, tilt_deg: float, azimuth_deg: float):
+    """Split n table polygons into module footprints, all tables at once.
+
+    Returns
+    -------
+    dict
+        Per module, tables in input order and rows x cols inside each (row 1 first, col 1
+        first): ``table`` (index into the input), ``row``, ``col`` (1-based), ``geometry``,
+        ``frames`` (m, 6), ``lower_edge``.
+    errors : dict
+        Input index -> message, for tables that cannot be split.
+    """
+    rows = np.asarray(rows, np.int64)
+    cols = np.asarray(cols, np.int64)
+    portrait = np.asarray(portrait, bool)
+    nt = len(rows)
+    errors: dict[int, str] = {}
+    centre, A, B, ok = _table_axes_many(polys, azimuth_deg)
+    L = np.hypot(A[:, 0], A[:, 1])
+    W = np.hypot(B[:, 0], B[:, 1])
+    with np.errstate(invalid="ignore", divide="ignore"):
+        a = A / L[:, None]
+        b = B / W[:, None]
+    gap_b = gap_m * math.cos(math.radians(tilt_deg))
+    mod_a = (L - (cols - 1) * gap_m) / cols
+    mod_b = (W - (rows - 1) * gap_b) / rows
+    for i in np.flatnonzero(~ok):
+        errors[int(i)] = "degenerate footprint"
+    for i in np.flatnonzero(ok & ((mod_a <= 0) | (mod_b <= 0))):
+        errors[int(i)] = (f"table of {L[i]:.2f} x {W[i]:.2f} m cannot hold {rows[i]} x {cols[i]} modules "
+                          f"with {gap_m} m gaps")
+    corner = centre - A / 2 - B / 2  # lower row, col 1 corner
+    per = rows * cols
+    t = np.repeat(np.arange(nt), per)
+    k = np.arange(t.size) - np.repeat(np.cumsum(per) - per, per)
+    r = k // cols[t]
+    c = k % cols[t]
+    at, bt = a[t], b[t]
+    o = corner[t] + at * c[:, None] * (mod_a[t] + gap_m)[:, None] + bt * r[:, None] * (mod_b[t] + gap_b)[:, None]
+    va = at * mod_a[t][:, None]
+    vb = bt * mod_b[t][:, None]
+    p1 = o + va
+    pts = np.stack([o, p1, p1 + vb, o + vb], axis=1)
+    good = np.isfinite(pts).all(axis=(1, 2))
+    geoms = np.full(t.size, None, dtype=object)
+    if good.any():
+        ccw = shapely.is_ccw(shapely.linearrings(pts[good]))
+        pg = pts[good]
+        pg[~ccw] = pg[~ccw][:, ::-1]
+        geoms[good] = shapely.polygons(pg)
+    cen = o + va / 2 + vb / 2
+    pt = portrait[t][:, None]
+    frames, lower = _frames_from_axes(cen, np.where(pt, vb, va), np.where(pt, va, vb), -bt)
+    return {"table": t, "row": r + 1, "col": c + 1, "geometry": geoms, "frames": frames,
+            "lower_edge": lower}, errors
 
 
 def split_table(poly: Polygon, rows: int, cols: int, orientation: str, gap_m: float,
@@ -441,102 +592,126 @@ def split_table(poly: Polygon, rows: int, cols: int, orientation: str, gap_m: fl
         row 1 at the lower-edge side, col 1 at the table end with the smallest coordinate along
         the long axis.
     """
-    centre, A, B = _table_axes(poly, azimuth_deg)
-    L = np.hypot(*A)
-    W = np.hypot(*B)
-    a = A / L
-    b = B / W
-    gap_b = gap_m * math.cos(math.radians(tilt_deg))
-    mod_a = (L - (cols - 1) * gap_m) / cols
-    mod_b = (W - (rows - 1) * gap_b) / rows
-    if mod_a <= 0 or mod_b <= 0:
-        raise ValueError(f"table of {L:.2f} x {W:.2f} m cannot hold {rows} x {cols} modules with {gap_m} m gaps")
-    corner = centre - A / 2 - B / 2  # lower row, col 1 corner
-    out = []
-    for r in range(rows):
-        for c in range(cols):
-            o = corner + a * c * (mod_a + gap_m) + b * r * (mod_b + gap_b)
-            va = a * mod_a
-            vb = b * mod_b
-            pts = [o, o + va, o + va + vb, o + vb]
-            p = Polygon(pts)
-            if not p.exterior.is_ccw:
-                p = Polygon(pts[::-1])
-            cen = o + va / 2 + vb / 2
-            if orientation == "portrait":
-                long_vec, short_vec = vb, va
-            else:
-                long_vec, short_vec = va, vb
-            out.append((r + 1, c + 1, p, frame_from_axes(cen, long_vec, short_vec, azimuth_deg, facing=-b)))
-    return out
+    res, errors = _split_tables([poly], [rows], [cols], [orientation == "portrait"], gap_m, tilt_deg,
+                                azimuth_deg)
+    if errors:
+        raise ValueError(errors[0])
+    return [(int(r), int(c), g, (*(float(x) for x in f), lo))
+            for r, c, g, f, lo in zip(res["row"], res["col"], res["geometry"], res["frames"], res["lower_edge"])]
 
 
-def _group_tables(polys: list[Polygon], tol: float) -> np.ndarray:
-    """Connected components of footprints closer than ``tol`` [m] (loose module layouts)."""
+def _group_tables(polys, tol: float) -> np.ndarray:
+    """Connected components of footprints closer than ``tol`` [m] (loose module layouts),
+    numbered by their first member, so ids follow file order."""
     from scipy.sparse import coo_matrix
     from scipy.sparse.csgraph import connected_components
 
+    polys = np.asarray(polys, dtype=object)
     tree = shapely.STRtree(polys)
     left, right = tree.query(polys, predicate="dwithin", distance=tol)
     n = len(polys)
     graph = coo_matrix((np.ones(len(left)), (left, right)), shape=(n, n))
     _, labels = connected_components(graph, directed=False)
-    # renumber by first member, so ids follow file order
-    first = {}
-    for i, lab in enumerate(labels):
-        first.setdefault(lab, len(first))
-    return np.array([first[lab] for lab in labels])
+    uniq, first = np.unique(labels, return_index=True)
+    rank = np.empty(uniq.size, np.int64)
+    rank[np.argsort(first, kind="stable")] = np.arange(uniq.size)
+    return rank[np.searchsorted(uniq, labels)]
 
 
-def _rank_positions(values: np.ndarray, tol: float) -> np.ndarray:
-    """1-based rank of clustered 1-D positions (values closer than tol share a rank)."""
-    order = np.argsort(values, kind="stable")
-    ranks = np.empty(len(values), int)
-    r = 1
-    prev = None
-    for k in order:
-        if prev is not None and values[k] - prev > tol:
-            r += 1
-        ranks[k] = r
-        prev = values[k]
+def _rank_positions(values: np.ndarray, tol: float, groups: np.ndarray | None = None) -> np.ndarray:
+    """1-based rank of clustered 1-D positions within each group (values closer than tol
+    share a rank). ``tol`` may be a scalar or one value per position (its group's)."""
+    values = np.asarray(values, float)
+    groups = np.zeros(len(values), np.int64) if groups is None else np.asarray(groups)
+    tol = np.broadcast_to(np.asarray(tol, float), values.shape)
+    order = np.lexsort((values, groups))  # stable: ties keep their order
+    v, g = values[order], groups[order]
+    step = np.zeros(len(v), np.int64)
+    if len(v) > 1:
+        step[1:] = (np.diff(v) > tol[order][1:]) & (g[1:] == g[:-1])
+    cs = np.cumsum(step)
+    start = np.ones(len(v), bool)
+    start[1:] = g[1:] != g[:-1]
+    base = cs[np.flatnonzero(start)][np.cumsum(start) - 1]
+    ranks = np.empty(len(values), np.int64)
+    ranks[order] = cs - base + 1
     return ranks
 
 
 def _rows_cols_for_loose(df: pd.DataFrame, groups: np.ndarray, azimuth_deg: float):
     """table_row/table_col of loose modules from their positions within each group."""
-    rows = np.ones(len(df), int)
-    cols = np.ones(len(df), int)
-    cx = df["fx0"] + 0.5 * df["fux"] + 0.5 * df["fvx"]
-    cy = df["fy0"] + 0.5 * df["fuy"] + 0.5 * df["fvy"]
-    centres = np.column_stack([cx, cy])
-    f = _facing_vector(azimuth_deg)
-    for g in np.unique(groups):
-        idx = np.flatnonzero(groups == g)
-        if len(idx) == 1:
-            continue
-        first = idx[0]
-        U = np.array([df["fux"].iloc[first], df["fuy"].iloc[first]])
-        V = np.array([df["fvx"].iloc[first], df["fvy"].iloc[first]])
-        pts = centres[idx]
-        # table long axis: the module axis along which the centres spread the most
-        spread_u = np.ptp(pts @ (U / np.hypot(*U)))
-        spread_v = np.ptp(pts @ (V / np.hypot(*V)))
-        axis = U if spread_u > spread_v else V
-        across = V if axis is U else U
-        a = axis / np.hypot(*axis)
-        a = _eastward(a)
-        b = across / np.hypot(*across)
-        if b @ f > 0:
-            b = -b
-        pa = pts @ a
-        pb = pts @ b
-        cols[idx] = _rank_positions(pa, 0.5 * min(np.hypot(*U), np.hypot(*V)))
-        rows[idx] = _rank_positions(pb, 0.5 * min(np.hypot(*U), np.hypot(*V)))
+    groups = np.asarray(groups)
+    fr = df[FRAME_COLUMNS].to_numpy(dtype=float)
+    cx = df["fx0"].to_numpy(float) + 0.5 * df["fux"].to_numpy(float) + 0.5 * df["fvx"].to_numpy(float)
+    cy = df["fy0"].to_numpy(float) + 0.5 * df["fuy"].to_numpy(float) + 0.5 * df["fvy"].to_numpy(float)
+    pts = np.column_stack([cx, cy])
+    _, first = np.unique(groups, return_index=True)
+    lead = first[np.searchsorted(np.unique(groups), groups)]  # each member's group's first member
+    U, V = fr[lead, 2:4], fr[lead, 4:6]
+    lu, lv = np.hypot(U[:, 0], U[:, 1]), np.hypot(V[:, 0], V[:, 1])
+    pu, pv = _dot(pts, U / lu[:, None]), _dot(pts, V / lv[:, None])
+    # table long axis: the module axis along which the centres spread the most
+    order = np.argsort(groups, kind="stable")
+    cuts = np.flatnonzero(np.diff(groups[order])) + 1
+    starts = np.concatenate([[0], cuts])
+    gid = np.cumsum(np.isin(np.arange(len(order)), cuts))
+    spread_u = np.maximum.reduceat(pu[order], starts) - np.minimum.reduceat(pu[order], starts)
+    spread_v = np.maximum.reduceat(pv[order], starts) - np.minimum.reduceat(pv[order], starts)
+    along_u = np.empty(len(groups), bool)
+    along_u[order] = (spread_u > spread_v)[gid]
+    axis = np.where(along_u[:, None], U, V)
+    across = np.where(along_u[:, None], V, U)
+    a = _eastward_many(axis / np.hypot(axis[:, 0], axis[:, 1])[:, None])
+    b = across / np.hypot(across[:, 0], across[:, 1])[:, None]
+    flip = _dot(b, _facing_vector(azimuth_deg)) > 0
+    b[flip] = -b[flip]
+    tol = 0.5 * np.minimum(lu, lv)
+    cols = _rank_positions(_dot(pts, a), tol, groups)
+    rows = _rank_positions(_dot(pts, b), tol, groups)
     return rows, cols
+
+
+def _column(df: pd.DataFrame, *names) -> tuple[np.ndarray, np.ndarray]:
+    """The first non-missing value among columns ``names`` of each row (object array) and
+    whether there was one (None, NaN, NA and NaT count as missing)."""
+    n = len(df)
+    vals = np.full(n, None, dtype=object)
+    have = np.zeros(n, bool)
+    for name in names:
+        if name in df.columns:
+            col = df[name]
+            take = ~have & ~col.isna().to_numpy()
+            if take.any():
+                vals[take] = col.to_numpy(dtype=object)[take]
+                have |= take
+    return vals, have
+
+
+def _strs(vals: np.ndarray, have: np.ndarray) -> np.ndarray:
+    """Ids as text (:func:`_ident`) of present values, None elsewhere (object array)."""
+    out = np.full(len(vals), None, dtype=object)
+    if have.any():
+        out[have] = [_ident(v) for v in vals[have]]
+    return out
+
+
+def _ints(vals: np.ndarray, have: np.ndarray, field: str, where: np.ndarray, name_of, path: Path) -> np.ndarray:
+    """Whole numbers (:func:`_whole`) of present values, None elsewhere (object array);
+    ``where`` gives each value's feature, named in the error."""
+    out = np.full(len(vals), None, dtype=object)
+    for j in np.flatnonzero(have):
+        out[j] = _whole(vals[j], field, name_of(int(where[j])), path)
+    return out
+
+
+_POLYGON = 3  # shapely.GeometryType.POLYGON
 
 
 def build_modules(gdf, spec, module_spec=None, path: Path | str = "layout"):
     """Turn layout features (already in a projected CRS [m]) into the modules GeoDataFrame.
+
+    Works on whole columns (shapely 2 array functions, numpy): tables are split and frames
+    built for all features at once; only features that need repair go one by one.
 
     Parameters
     ----------
@@ -558,106 +733,159 @@ def build_modules(gdf, spec, module_spec=None, path: Path | str = "layout"):
     Raises
     ------
     LayoutError
-        Empty, non-polygon or unsplittable features and duplicate module ids, by feature id.
+        Empty, non-polygon or unsplittable features and duplicate module ids, by feature id
+        (the first bad feature in file order).
     """
     import geopandas as gpd
 
     path = Path(path)
+    # GIS field names (Shapefile-truncated, other case, variants) -> the names used below
     fields, field_notes = layout_fields(gdf.columns)
     gdf = gdf.rename(columns={src: f"__{prop}" for prop, src in fields.items()})
     gdf = gdf.rename(columns={f"__{prop}": prop for prop in fields})
-    records = []
-    loose = []
-    n_tables = 0
-    for k, (_, row) in enumerate(gdf.iterrows()):
-        name = _feature_name(row, k)
-        poly = _as_polygon(row.geometry, name, path)
-        rows_p = _whole(_prop(row, "rows"), fields.get("rows", "rows"), name, path)
-        cols_p = _whole(_prop(row, "cols"), fields.get("cols", "cols"), name, path)
-        has_mid = _ident(_prop(row, "module_id")) is not None
-        is_table = (rows_p is not None and cols_p is not None) or (
-            not has_mid and spec.rows is not None and spec.cols is not None
-        )
-        if is_table:
-            n_tables += 1
-            rows = int(rows_p if rows_p is not None else spec.rows)
-            cols = int(cols_p if cols_p is not None else spec.cols)
-            if rows < 1 or cols < 1:
-                raise LayoutError(f"{path}: {name}: rows and cols must be at least 1")
-            orientation = str(_prop(row, "orientation", default=spec.orientation))
-            if orientation not in ("portrait", "landscape"):
-                raise LayoutError(f"{path}: {name}: orientation {orientation!r} is not portrait or landscape")
-            table_id = _ident(_prop(row, "table_id")) or f"T{n_tables:04d}"
-            string_id = _ident(_prop(row, "string_id"))
-            try:
-                parts = split_table(poly, rows, cols, orientation, spec.gap_m, spec.tilt_deg, spec.azimuth_deg)
-            except ValueError as exc:
-                raise LayoutError(f"{path}: {name}: {exc}") from None
-            for r, c, p, fr in parts:
-                records.append({
-                    "module_id": f"{table_id}-R{r}-C{c:02d}",
-                    "table_id": table_id,
-                    "string_id": string_id,
-                    "string_index": None,
-                    "table_row": r,
-                    "table_col": c,
-                    "geometry": p,
-                    **dict(zip(FRAME_COLUMNS + ["lower_edge"], fr)),
-                    "source_feature": k,
-                })
-        else:
-            try:
-                fr = frame_from_polygon(poly, spec.azimuth_deg)
-            except ValueError:
-                raise LayoutError(f"{path}: {name}: degenerate footprint") from None
-            rec = {
-                "module_id": _ident(_prop(row, "module_id")),
-                "table_id": _ident(_prop(row, "table_id")),
-                "string_id": _ident(_prop(row, "string_id")),
-                "string_index": _whole(_prop(row, "string_index"), fields.get("string_index", "string_index"),
-                                       name, path),
-                "table_row": _whole(_prop(row, "table_row"), fields.get("table_row", "table_row"), name, path),
-                "table_col": _whole(_prop(row, "table_col"), fields.get("table_col", "table_col"), name, path),
-                "geometry": poly,
-                **dict(zip(FRAME_COLUMNS + ["lower_edge"], fr)),
-                "source_feature": k,
-            }
-            loose.append(len(records))
-            records.append(rec)
+    n = len(gdf)
+    geoms = np.asarray(gdf.geometry.to_numpy(), dtype=object)
+    every = np.arange(n)
 
-    df = pd.DataFrame.from_records(records)
-    # ids for loose modules
-    n_loose = 0
-    for i in loose:
-        if df.at[i, "module_id"] is None:
-            n_loose += 1
-            df.at[i, "module_id"] = f"M{n_loose:05d}"
+    def name_of(k: int) -> str:
+        return _feature_name(gdf.iloc[k], k)
+
+    def ints(prop: str, vals, have, where=every):
+        return _ints(vals, have, fields.get(prop, prop), where, name_of, path)
+
+    # --- properties, whole columns
+    rows_v, rows_h = _column(gdf, "rows")
+    cols_v, cols_h = _column(gdf, "cols")
+    rows_v, cols_v = ints("rows", rows_v, rows_h), ints("cols", cols_v, cols_h)
+    mid_v, mid_h = _column(gdf, "module_id")
+    mid_h = mid_h & np.array([_ident(v) is not None for v in mid_v], bool)
+    is_table = (rows_h & cols_h) | (~mid_h & (spec.rows is not None and spec.cols is not None))
+    n_tables = np.cumsum(is_table)
+    ti = np.flatnonzero(is_table)
+    t_rows = np.array([int(v) if h else int(spec.rows) for v, h in zip(rows_v[ti], rows_h[ti])], np.int64)
+    t_cols = np.array([int(v) if h else int(spec.cols) for v, h in zip(cols_v[ti], cols_h[ti])], np.int64)
+    orient_v, orient_h = _column(gdf, "orientation")
+    t_orient = np.array([str(v) if h else str(spec.orientation) for v, h in zip(orient_v[ti], orient_h[ti])],
+                        dtype=object)
+    # errors that do not depend on the geometry, by feature
+    pre_err: dict[int, str] = {}
+    for j in np.flatnonzero((t_rows < 1) | (t_cols < 1))[::-1]:
+        pre_err[int(ti[j])] = "rows and cols must be at least 1"
+    for j in np.flatnonzero((t_rows >= 1) & (t_cols >= 1) & ~np.isin(t_orient, ["portrait", "landscape"])):
+        pre_err.setdefault(int(ti[j]), f"orientation {t_orient[j]!r} is not portrait or landscape")
+    first_pre = min(pre_err) if pre_err else n
+
+    # --- geometries: plain valid polygons as they are; the rest repaired or refused in file order
+    polys = geoms.copy()
+    missing = shapely.is_missing(geoms)
+    problem = missing.copy()
+    ok_g = ~missing
+    problem[ok_g] = (shapely.is_empty(geoms[ok_g]) | shapely.has_z(geoms[ok_g])
+                     | (shapely.get_type_id(geoms[ok_g]) != _POLYGON) | ~shapely.is_valid(geoms[ok_g])
+                     | ~(shapely.area(geoms[ok_g]) > 0))
+    geom_err: LayoutError | None = None
+    first_geom = n
+    for k in np.flatnonzero(problem):
+        if k > first_pre:
+            break
+        try:
+            polys[k] = _as_polygon(geoms[k], name_of(int(k)), path)
+        except LayoutError as exc:  # raised below unless an earlier feature fails
+            geom_err, first_geom = exc, int(k)
+            break
+
+    # --- tables: split all at once
+    t_ok = np.array([int(k) not in pre_err for k in ti], bool)
+    split, split_err = _split_tables(polys[ti[t_ok]], t_rows[t_ok], t_cols[t_ok], t_orient[t_ok] == "portrait",
+                                     spec.gap_m, spec.tilt_deg, spec.azimuth_deg)
+    errors = dict(pre_err)
+    tio = ti[t_ok]
+    for j, msg in split_err.items():
+        errors.setdefault(int(tio[j]), msg)
+    # --- loose module polygons: frames all at once
+    li = np.flatnonzero(~is_table)
+    l_frames, l_lower, l_ok = _frames_from_polygons(polys[li], spec.azimuth_deg)
+    for j in np.flatnonzero(~l_ok):
+        errors.setdefault(int(li[j]), "degenerate footprint")
+    k = min(errors) if errors else n
+    if geom_err is not None and first_geom <= k:
+        raise geom_err
+    if errors:
+        raise LayoutError(f"{path}: {name_of(k)}: {errors[k]}")
+
+    # --- assemble in file order: a table's modules row by row, col by col
+    count = np.ones(n, np.int64)
+    count[ti] = t_rows * t_cols
+    offset = np.cumsum(count) - count
+    total = int(count.sum())
+    t_pos = offset[ti][split["table"]] + (np.arange(len(split["table"]))
+                                          - (np.cumsum(count[ti]) - count[ti])[split["table"]])
+    l_pos = offset[li]
+    source = np.repeat(np.arange(n), count)
+
+    def column(table_vals, loose_vals):
+        out = np.full(total, None, dtype=object)
+        out[t_pos] = table_vals
+        out[l_pos] = loose_vals
+        return out
+
+    tid_v, tid_h = _column(gdf, "table_id")
+    sid_v, sid_h = _column(gdf, "string_id")
+    table_ids = np.array([(_ident(v) if h else None) or f"T{c:04d}"
+                          for v, h, c in zip(tid_v[ti], tid_h[ti], n_tables[ti])], dtype=object)
+    table_sid = _strs(sid_v[ti], sid_h[ti])
+    tt = split["table"]
+    t_table = table_ids[tt]
+    t_mid = np.array([f"{a}-R{r}-C{c:02d}" for a, r, c in zip(t_table, split["row"], split["col"])], dtype=object)
+    sidx_v, sidx_h = _column(gdf, "string_index")
+    trow_v, trow_h = _column(gdf, "table_row")
+    tcol_v, tcol_h = _column(gdf, "table_col")
+    frames = np.empty((total, 6))
+    frames[t_pos] = split["frames"]
+    frames[l_pos] = l_frames
+    geometry = column(split["geometry"], polys[li])
+    df = pd.DataFrame({
+        "module_id": column(t_mid, _strs(mid_v[li], mid_h[li])),
+        "table_id": column(t_table, _strs(tid_v[li], tid_h[li])),
+        "string_id": column(table_sid[tt], _strs(sid_v[li], sid_h[li])),
+        "string_index": column(np.full(len(tt), None, dtype=object), ints("string_index", sidx_v[li], sidx_h[li], li)),
+        "table_row": column(split["row"].astype(object), ints("table_row", trow_v[li], trow_h[li], li)),
+        "table_col": column(split["col"].astype(object), ints("table_col", tcol_v[li], tcol_h[li], li)),
+    })
+    for j, name in enumerate(FRAME_COLUMNS):
+        df[name] = frames[:, j]
+    df["lower_edge"] = column(split["lower_edge"], l_lower)
+    df["source_feature"] = source
+    # ids for loose modules, in file order
+    no_id = l_pos[~mid_h[li]]
+    if no_id.size:
+        df.loc[no_id, "module_id"] = [f"M{j + 1:05d}" for j in range(no_id.size)]
     dup = df["module_id"][df["module_id"].duplicated()]
     if len(dup):
         raise LayoutError(f"{path}: module_id {dup.iloc[0]} appears more than once")
     # tables / rows / cols of loose modules
-    if loose:
-        sub = df.loc[loose]
+    if li.size:
+        sub = df.loc[l_pos]
         need_group = sub["table_id"].isna().any() or sub["table_row"].isna().any() or sub["table_col"].isna().any()
         if need_group:
-            polys = list(sub.geometry)
             gap_tol = max(3 * spec.gap_m, 0.15)
-            groups = _group_tables(polys, gap_tol)
-            rows, cols = _rows_cols_for_loose(sub, groups, spec.azimuth_deg)
-            for j, i in enumerate(loose):
-                if df.at[i, "table_id"] is None:
-                    df.at[i, "table_id"] = f"G{groups[j] + 1:04d}"
-                if pd.isna(df.at[i, "table_row"]):
-                    df.at[i, "table_row"] = rows[j]
-                if pd.isna(df.at[i, "table_col"]):
-                    df.at[i, "table_col"] = cols[j]
-    df["string_index"] = df["string_index"].astype("Int64")
+            groups = _group_tables(polys[li], gap_tol)
+            g_rows, g_cols = _rows_cols_for_loose(sub, groups, spec.azimuth_deg)
+            tid = sub["table_id"].isna().to_numpy()
+            df.loc[l_pos[tid], "table_id"] = [f"G{g + 1:04d}" for g in groups[tid]]
+            fill = sub["table_row"].isna().to_numpy()
+            df.loc[l_pos[fill], "table_row"] = g_rows[fill]
+            fill = sub["table_col"].isna().to_numpy()
+            df.loc[l_pos[fill], "table_col"] = g_cols[fill]
+    df["string_index"] = pd.array(df["string_index"].to_numpy(dtype=object), dtype="Int64")
     df["table_row"] = df["table_row"].astype(int)
     df["table_col"] = df["table_col"].astype(int)
+    df = df[["module_id", "table_id", "string_id", "string_index", "table_row", "table_col"]].assign(
+        geometry=geometry, **{c: df[c] for c in FRAME_COLUMNS + ["lower_edge", "source_feature"]})
     out = gpd.GeoDataFrame(df, geometry="geometry", crs=gdf.crs)
     if module_spec is not None:
         _check_sizes(out, module_spec, path)
-    report = {"file": str(path), "features": int(len(gdf)), "tables": int(n_tables), "modules": int(len(out)),
+    report = {"file": str(path), "features": int(n), "tables": int(len(ti)), "modules": int(len(out)),
               "fields": {prop: str(src) for prop, src in sorted(fields.items())}}
     report.update(_strings_report(out, fields, path))
     for note in field_notes:

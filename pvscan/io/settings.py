@@ -9,6 +9,7 @@ with ``pvscan inspect --pipeline FILE``; keys left out of the copy keep their de
 from __future__ import annotations
 
 from collections.abc import Mapping
+from functools import lru_cache
 from pathlib import Path
 from types import MappingProxyType
 from typing import Any
@@ -16,7 +17,7 @@ from typing import Any
 from pvscan.errors import PipelineError
 from pvscan.io.resources import DEFAULT_PIPELINE, SCHEMAS_DIR, describe_error, load_schema, read_toml_file, schema_errors
 
-__all__ = ["Pipeline", "load_pipeline", "SECTIONS"]
+__all__ = ["Pipeline", "load_pipeline", "section", "SECTIONS"]
 
 
 def _sections() -> tuple[str, ...]:
@@ -68,6 +69,9 @@ class Pipeline(Mapping):
 
     def __iter__(self):
         return iter(self._data)
+
+    def __contains__(self, key) -> bool:
+        return key in self._data
 
     def __len__(self):
         return len(self._data)
@@ -124,6 +128,43 @@ def load_pipeline(path: str | Path | None = None) -> Pipeline:
     return Pipeline(merged, path)
 
 
+@lru_cache(maxsize=1)
+def _default_pipeline() -> Pipeline:
+    return load_pipeline()
+
+
 def section_defaults(section: str) -> Mapping[str, Any]:
     """The default settings of one section (convenience for tests and library callers)."""
-    return load_pipeline()[section]
+    return _default_pipeline()[section]
+
+
+def section(settings: Mapping[str, Any] | None, name: str) -> Mapping[str, Any]:
+    """Section ``name`` of some settings, over the defaults of ``pipelines/post_flight.toml``.
+
+    The one way a stage reads its settings: the defaults live in the pipeline file only, and
+    a caller may hand a stage a whole pipeline, a plain mapping of sections, the section's
+    own mapping (possibly with only some keys) or nothing.
+
+    Parameters
+    ----------
+    settings : Pipeline or mapping, optional
+        A :class:`Pipeline`, a mapping of sections (its ``[name]`` is taken), or a mapping
+        of the section's own keys. None gives the defaults.
+    name : str
+        Section name, e.g. ``"classify"``.
+
+    Returns
+    -------
+    Mapping
+        Read-only: the defaults of the section updated with the keys given.
+    """
+    base = dict(section_defaults(name))
+    if settings is None:
+        return MappingProxyType(base)
+    sec: Any = settings
+    if name in settings and isinstance(settings[name], Mapping):
+        sec = settings[name]
+    elif any(k in SECTIONS and isinstance(v, Mapping) for k, v in settings.items()):
+        sec = {}  # a pipeline without this section: its defaults
+    base.update(dict(sec))
+    return MappingProxyType(base)

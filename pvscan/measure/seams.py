@@ -40,20 +40,13 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-__all__ = ["Stretch", "find_stretches", "level_stats", "SEAM_DEFAULTS"]
+from pvscan.io.settings import section
+from pvscan.measure.rows import row_keys
+from pvscan.robust import nanmedian, scaled_mad
+
+__all__ = ["Stretch", "find_stretches", "level_stats"]
 
 log = logging.getLogger(__name__)
-
-#: Defaults of the pipeline's ``[seams]`` section (the file documents each key's source).
-SEAM_DEFAULTS = {
-    "enabled": True,
-    "window_modules": 3,
-    "min_step_k": 0.8,
-    "match_abs_k": 0.4,
-    "match_rel": 0.3,
-    "min_modules": 2,
-    "seam_z": 5.0,
-}
 
 _TABLE_COLS = ("t_mean_c", "t_median_c", "t_p95_c", "t_max_c", "t_min_c")
 
@@ -78,24 +71,10 @@ class Stretch:
     reason: str
 
 
-def _cfg(settings: Any) -> dict:
-    if settings is None:
-        return dict(SEAM_DEFAULTS)
-    sec = settings
-    if not (isinstance(settings, Mapping) and "min_step_k" in settings):
-        try:
-            sec = settings["seams"]
-        except (KeyError, TypeError):
-            sec = {}
-    return {**SEAM_DEFAULTS, **dict(sec)}
-
-
 def _steps(t: np.ndarray, w: int) -> np.ndarray:
     """Step at each boundary b (between positions b and b+1): median of the next ``w`` minus
     the median of the previous ``w`` (NaN where either side has fewer than two values).
     ``t`` is one row profile, or several of one length stacked (rows along axis 0)."""
-    from pvscan.diagnose.classify import _nanmedian  # vectorised, no warning on empty windows
-
     t = np.asarray(t, dtype=float)
     n = t.shape[-1]
     if n < 2:
@@ -104,7 +83,7 @@ def _steps(t: np.ndarray, w: int) -> np.ndarray:
     win = np.lib.stride_tricks.sliding_window_view(np.concatenate([pad, t, pad], axis=-1), w, axis=-1)
     left, right = win[..., :n - 1, :], win[..., w:w + n - 1, :]  # modules b-w+1..b and b+1..b+w
     ok = (np.isfinite(left).sum(axis=-1) >= 2) & (np.isfinite(right).sum(axis=-1) >= 2)
-    return np.where(ok, _nanmedian(right, axis=-1) - _nanmedian(left, axis=-1), np.nan)
+    return np.where(ok, nanmedian(right, axis=-1) - nanmedian(left, axis=-1), np.nan)
 
 
 def _best_split(t: np.ndarray, b: int, lo: int, hi: int, level_in: float, level_out: float,
@@ -122,7 +101,7 @@ def _best_split(t: np.ndarray, b: int, lo: int, hi: int, level_in: float, level_
     return best
 
 
-def _closed_stretches(t: np.ndarray, cfg: Mapping, sigma: float = 0.0,
+def _closed_stretches(t: np.ndarray, cfg: Mapping[str, Any], sigma: float = 0.0,
                       st: np.ndarray | None = None) -> list[tuple[int, int, float]]:
     """(first, last, offset) position ranges of the closed stretches of one row profile.
 
@@ -175,7 +154,8 @@ def _closed_stretches(t: np.ndarray, cfg: Mapping, sigma: float = 0.0,
     return out
 
 
-def find_stretches(modules: pd.DataFrame, t_median: np.ndarray, settings: Any = None) -> list[Stretch]:
+def find_stretches(modules: pd.DataFrame, t_median: np.ndarray,
+                   settings: Mapping[str, Any] | None = None) -> list[Stretch]:
     """Closed stretches of table rows that are image artefacts (see the module notes).
 
     Parameters
@@ -191,13 +171,11 @@ def find_stretches(modules: pd.DataFrame, t_median: np.ndarray, settings: Any = 
     -------
     list of Stretch
     """
-    from pvscan.diagnose.thermal import _row_keys
-
-    cfg = _cfg(settings)
+    cfg = section(settings, "seams")
     n = len(modules)
     if n == 0 or "table_col" not in modules.columns:
         return []
-    keys = _row_keys(modules)
+    keys = row_keys(modules)
     col = pd.to_numeric(modules["table_col"], errors="coerce").to_numpy(dtype=float)
     table = modules["table_id"].astype("string").fillna("").to_numpy() if "table_id" in modules else np.full(n, "")
     has_strings = "string_id" in modules.columns and modules["string_id"].notna().any()
@@ -211,7 +189,7 @@ def find_stretches(modules: pd.DataFrame, t_median: np.ndarray, settings: Any = 
     # the rows, over sqrt(2) (seams and defects are few among the differences)
     diffs = np.concatenate([np.diff(t[mem]) for _, mem in rows if len(mem) > 1] or [np.zeros(0)])
     diffs = diffs[np.isfinite(diffs)]
-    sigma = float(1.4826 * np.median(np.abs(diffs - np.median(diffs))) / np.sqrt(2.0)) if diffs.size >= 10 else 0.0
+    sigma = scaled_mad(diffs) / np.sqrt(2.0) if diffs.size >= 10 else 0.0
     # steps of all rows of one length in one vectorised call
     w = int(cfg["window_modules"])
     steps = {}
@@ -240,7 +218,7 @@ def find_stretches(modules: pd.DataFrame, t_median: np.ndarray, settings: Any = 
     return out
 
 
-def level_stats(stats, stretches: list[Stretch]):
+def level_stats(stats: Any, stretches: list[Stretch]) -> tuple[Any, np.ndarray]:
     """A copy of the statistics with each stretch's offset subtracted from its modules.
 
     Module (``t_mean_c`` ... ``t_min_c``), cell and substring temperatures [degC] shift;

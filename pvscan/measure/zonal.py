@@ -585,7 +585,8 @@ def _run_block(reader, job: _Job, fr, grid, margins, quantum_k, transform) -> _B
     return _measure(data, transform, fr[job.modules], grid, margins, quantum_k, index=job.modules)
 
 
-def _dask_task(tile, window, fr_sub, index, grid, margins, quantum_k, cache_mb):
+def _block_task(tile, window, fr_sub, index, grid, margins, quantum_k, cache_mb):
+    """One block as a task (opens the file itself; see :func:`pvscan.tasks.run_tasks`)."""
     from pvscan.io.ortho import read_window
 
     data = read_window(tile, window, cache_mb=cache_mb)
@@ -624,10 +625,12 @@ def zonal_stats(
         (dx, dy) [m] added to every frame before measuring (co-registration result).
     progress : callable, optional
         Called as ``progress("zonal", done_blocks, total_blocks)``.
-    scheduler : {None, "dask", "threads", "processes", "synchronous"}, optional
-        None: the single-machine block loop (no dask needed). Otherwise blocks run as
-        ``dask.delayed`` tasks on that dask scheduler ("dask" = dask's default), each
-        opening the file itself.
+    scheduler : None, {"synchronous", "threads", "processes"}, address or distributed.Client, optional
+        None: the single-machine block loop. Otherwise each block is a task
+        (:func:`pvscan.tasks.run_tasks`) that opens the file itself: in this process, on a
+        pool of local threads or processes, or on a Dask distributed cluster (a
+        ``tcp://host:port`` address or a connected ``Client``; the workers must see the
+        ortho's files by the same paths). Results are identical on every scheduler.
     workers : int, optional
         Threads of the single-machine path (default ``[zonal] workers``). With more than
         one, blocks are read and reduced on a thread pool (GDAL decoding and numpy's
@@ -702,22 +705,16 @@ def zonal_stats(
                 if progress is not None:
                     progress("zonal", k + 1, total)
     else:
-        import dask
+        from pvscan.tasks import run_tasks
 
-        sched = None if scheduler == "dask" else scheduler
-        task = dask.delayed(_dask_task, pure=False)
-        batch = 16
-        done = 0
-        for b0 in range(0, total, batch):
-            part = jobs[b0 : b0 + batch]
-            tasks = [
-                task(orthos.tiles[j.tile], j.window, fr[j.modules], j.modules, grid, margins, quantum_k, orthos.cache_mb)
-                for j in part
-            ]
-            results = dask.compute(*tasks, scheduler=sched) if sched else dask.compute(*tasks)
-            for j, r in zip(part, results):
-                acc.merge(j.tile, r)
-            done += len(part)
+        # tasks on local cores or a Dask cluster: each opens the file itself; results merge
+        # in any order (the accumulator's choice does not depend on it)
+        sched = "threads" if scheduler == "dask" else scheduler
+        args = [(orthos.tiles[j.tile], j.window, fr[j.modules], j.modules, grid, margins, quantum_k, orthos.cache_mb)
+                for j in jobs]
+        for done, (k, r) in enumerate(run_tasks(_block_task, args, sched),
+                                      start=1):
+            acc.merge(jobs[k].tile, r)
             if progress is not None:
                 progress("zonal", done, total)
 

@@ -127,6 +127,16 @@ def _as_list(v: Any) -> list:
     return []
 
 
+def _translate(geoms: np.ndarray, dx: float, dy: float) -> np.ndarray:
+    """Geometries moved by (dx, dy) [m], all at once (the same coordinates as
+    ``shapely.affinity.translate``, which goes one geometry at a time)."""
+    import shapely
+
+    if dx == 0 and dy == 0:
+        return geoms
+    return shapely.transform(geoms, lambda c: c + np.array([dx, dy]))
+
+
 class _MapGeometry:
     """Module and anomaly geometries in the ortho (map) CRS, placed on the image
     (the layout shift of summary.json applied)."""
@@ -146,11 +156,11 @@ class _MapGeometry:
             gdf = modules_gdf if modules_gdf.crs is None else modules_gdf.to_crs(crs)
             own = dict(zip(gdf["module_id"].astype(str), gdf.geometry))
             geo = gpd.GeoSeries([own.get(mid, g) for mid, g in zip(mods["module_id"], geo)], crs=crs)
-        self.modules = list(geo.translate(dx, dy)) if len(geo) else []
+        self.modules = list(_translate(geo.to_numpy(), dx, dy)) if len(geo) else []
         self.module_index = {mid: i for i, mid in enumerate(mods["module_id"])} if len(mods) else {}
         an = data.anomalies
         ageo = gpd.GeoSeries(list(an["geometry"]) if len(an) else [], crs="EPSG:4326")
-        self.anomalies = list(ageo.to_crs(crs).translate(dx, dy)) if len(an) else []
+        self.anomalies = list(_translate(ageo.to_crs(crs).to_numpy(), dx, dy)) if len(an) else []
         self.tree = STRtree(self.modules) if self.modules else None
 
     def module_geoms(self, row: pd.Series) -> list:
@@ -169,7 +179,12 @@ class _MapGeometry:
     def bounds(self) -> tuple[float, float, float, float] | None:
         if not self.modules:
             return None
-        b = np.array([g.bounds for g in self.modules if g is not None and not g.is_empty])
+        import shapely
+
+        geoms = np.asarray(self.modules, dtype=object)
+        keep = ~shapely.is_missing(geoms)
+        keep[keep] = ~shapely.is_empty(geoms[keep])
+        b = shapely.bounds(geoms[keep])
         return (b[:, 0].min(), b[:, 1].min(), b[:, 2].max(), b[:, 3].max())
 
     def north_deg(self) -> float:

@@ -63,15 +63,21 @@ def nice_length(target: float) -> float:
 
 
 def _polys(geoms) -> list[np.ndarray]:
-    out = []
-    for g in geoms:
-        if g is None or g.is_empty:
-            continue
-        parts = g.geoms if hasattr(g, "geoms") else [g]
-        for p in parts:
-            if p.geom_type == "Polygon":
-                out.append(np.asarray(p.exterior.coords)[:, :2])
-    return out
+    """Exterior rings (k, 2) of the polygons (and polygon parts) of ``geoms``, in order."""
+    import shapely
+
+    arr = np.empty(len(geoms), dtype=object)
+    arr[:] = list(geoms)
+    arr = arr[~shapely.is_missing(arr)]
+    if arr.size == 0:
+        return []
+    parts = shapely.get_parts(arr)
+    parts = parts[(shapely.get_type_id(parts) == 3) & ~shapely.is_empty(parts)]
+    if parts.size == 0:
+        return []
+    coords, owner = shapely.get_coordinates(shapely.get_exterior_ring(parts), return_index=True)
+    cuts = np.flatnonzero(np.diff(owner)) + 1
+    return np.split(coords, cuts)
 
 
 def overview_png(*, extent, image: np.ndarray | None, module_geoms, module_values: np.ndarray | None,

@@ -256,24 +256,29 @@ def _read_json(path: Path) -> Any:
 
 
 def _features(path: Path) -> pd.DataFrame:
-    from shapely.geometry import shape
+    from pvscan.io.geojson import shapes
 
     obj = _read_json(path)
     if not isinstance(obj, Mapping) or obj.get("type") != "FeatureCollection":
         raise OutputError(f"{path}: not a GeoJSON FeatureCollection")
-    rows = []
+    rows, members = [], []
     for i, feat in enumerate(obj.get("features") or []):
         if not isinstance(feat, Mapping):
             raise OutputError(f"{path}: feature {i} is not an object")
-        props = dict(feat.get("properties") or {})
-        geom = feat.get("geometry")
-        try:
-            props["geometry"] = shape(geom) if geom else None
-        except (ValueError, TypeError, AttributeError, KeyError) as exc:
-            fid = props.get("anomaly_id", props.get("module_id", i))
-            raise OutputError(f"{path}: feature {fid}: invalid geometry ({exc})") from None
-        rows.append(props)
-    return pd.DataFrame(rows)
+        rows.append(dict(feat.get("properties") or {}))
+        members.append(feat.get("geometry"))
+
+    def bad(i: int, exc: Exception) -> None:
+        if not isinstance(exc, (ValueError, TypeError, AttributeError, KeyError)):
+            raise exc
+        fid = rows[i].get("anomaly_id", rows[i].get("module_id", i))
+        raise OutputError(f"{path}: feature {fid}: invalid geometry ({exc})") from None
+
+    geoms = shapes(members, bad)
+    frame = pd.DataFrame(rows)
+    if len(rows):
+        frame["geometry"] = geoms
+    return frame
 
 
 def _read_workorders(path: Path) -> pd.DataFrame:

@@ -1,0 +1,288 @@
+"""What the pattern tests look at: residual cells, substrings and modules, vectorised.
+
+Every module is compared with what its healthy neighbours look like, cell by cell: its
+reference temperature (:mod:`pvscan.diagnose.thermal`) and the *shape* its neighbours share
+(the median over the same neighbours of each cell's and substring's deviation from the
+neighbour's own median: cooler frames, warm ground seen at a lower edge, reflection
+gradients). The residual ``R = cell - reference - shape`` is what this module has and its
+neighbours have not. :func:`build_features` gathers those residuals, the physical yardstick
+``eta * G / U(v)`` (:func:`pvscan.physics.heat.open_module_rise`) and the noise levels into a
+:class:`Features` record; each pattern test returns a :class:`Hits` record.
+
+References
+----------
+.. [1] D. Faiman, "Assessing the outdoor operating temperature of photovoltaic modules",
+   Progress in Photovoltaics 16(4), 307-315, 2008. doi:10.1002/pip.813
+"""
+from __future__ import annotations
+
+import logging
+import warnings
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from pvscan.measure.rows import adjacent_modules, row_keys
+from pvscan.physics.heat import Faiman
+from pvscan.robust import nanmedian, scaled_mad
+
+__all__ = ["Features", "Hits", "build_features", "row_geometry", "string_groups", "neighbour_median",
+           "quality", "fit_score", "confidence", "spec_value"]
+
+logger = logging.getLogger(__name__)
+
+
+def spec_value(module_spec: Any, name: str, default: Any = None) -> Any:
+    """A datasheet value of a ``ModuleSpec`` or of a mapping (``default`` when absent)."""
+    if isinstance(module_spec, Mapping):
+        return module_spec.get(name, default)
+    return getattr(module_spec, name, default)
+
+
+def neighbour_median(values: np.ndarray, nb: np.ndarray, chunk: int = 2048) -> np.ndarray:
+    """Median over each module's neighbours (``nb``, -1 = none) of ``values[neighbour]``."""
+    n = len(values)
+    out = np.full(values.shape, np.nan, dtype=np.float64)
+    for s in range(0, n, chunk):
+        idx = nb[s:s + chunk]
+        g = values[np.maximum(idx, 0)].astype(np.float64)
+        g[idx < 0] = np.nan
+        out[s:s + chunk] = nanmedian(g, axis=1)
+    return out
+
+
+@dataclass
+class Features:
+    """Everything the pattern functions look at, vectorised over modules.
+
+    Temperatures [degC], differences [K]; ``R*`` arrays are residuals: measured minus
+    reference minus the shape the healthy neighbours share.
+    """
+
+    n: int
+    n_along: int
+    n_across: int
+    nsub: int
+    ok: np.ndarray            # (n,) bool: classified
+    ref: np.ndarray           # (n,) reference [degC]
+    t_median: np.ndarray      # (n,)
+    t_max: np.ndarray         # (n,)
+    dT: np.ndarray            # (n,) t_median - ref [K]
+    rise: np.ndarray          # (n,) open-module rise at the module [K]
+    cm: np.ndarray            # (n, A, C) cell median [degC]
+    cp: np.ndarray            # (n, A, C) cell p95 [degC]
+    R: np.ndarray             # (n, A, C) cell-median residual [K]
+    R95: np.ndarray           # (n, A, C) cell-p95 residual [K]
+    Rsub: np.ndarray          # (n, B) substring-median residual [K]
+    base: np.ndarray          # (n,) median residual over the module's cells [K]
+    base_sub: np.ndarray      # (n, B) median residual over each substring's cells [K]
+    col_sub: np.ndarray       # (C,) substring of each cell column
+    lower_u: np.ndarray       # (n,) bool: lower edge at u = 0 (else v = 0)
+    sig_cell: float           # robust spread of healthy cell residuals [K]
+    sig_mod: float            # robust spread of healthy module residuals [K]
+    split_box: bool
+    extra: dict[str, Any] = field(default_factory=dict)
+
+
+@dataclass
+class Hits:
+    """Result of one pattern function.
+
+    Attributes
+    ----------
+    defect : str
+    hit : ndarray of bool (n,)
+    confidence : ndarray (n,) [0..1]
+    temp_c : ndarray (n,)
+        Region temperature (p95 for spot patterns, median for area patterns) [degC].
+    region : dict[int, str]
+    boxes : dict[int, list of (u0, u1, v0, v1)]
+    """
+
+    defect: str
+    hit: np.ndarray
+    confidence: np.ndarray
+    temp_c: np.ndarray
+    region: dict[int, str] = field(default_factory=dict)
+    boxes: dict[int, list[tuple[float, float, float, float]]] = field(default_factory=dict)
+
+
+def quality(signal: Any, threshold: Any) -> np.ndarray:
+    """0..1: how clearly a signal clears its threshold (0 at the threshold, 1 at twice it)."""
+    with np.errstate(invalid="ignore", divide="ignore"):
+        q = (np.asarray(signal, float) - threshold) / np.maximum(np.abs(threshold), 1e-6)
+    return np.clip(np.nan_to_num(q, nan=0.0), 0.0, 1.0)
+
+
+def fit_score(ratio: Any, tol: float = 0.35) -> np.ndarray:
+    """0..1: how well a rise fits the physical yardstick (log-normal closeness)."""
+    with np.errstate(invalid="ignore", divide="ignore"):
+        x = np.log(np.where(ratio > 0, ratio, np.nan)) / tol
+    return np.nan_to_num(np.exp(-0.5 * x * x), nan=0.0)
+
+
+def confidence(*terms: Any) -> np.ndarray:
+    """0.4..1: the product of 0..1 quality terms mapped onto a confidence (0.4 at none)."""
+    q = np.ones_like(np.asarray(terms[0], float))
+    for t in terms:
+        q = q * np.asarray(t, float)
+    return np.clip(0.4 + 0.6 * q, 0.0, 1.0)
+
+
+def build_features(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module_spec: Any,
+                   ref: np.ndarray, nb: np.ndarray, ok: np.ndarray, cfg: Mapping[str, Any],
+                   cfg_ref: Mapping[str, Any], heat: Faiman, ref_irr: np.ndarray | None = None) -> Features:
+    """The residuals and yardsticks of every module against reference ``ref`` [degC].
+
+    Parameters
+    ----------
+    modules : DataFrame
+        Modules with ``lower_edge`` (``"u"`` or ``"v"``).
+    stats : ZonalStats-like
+        True glass temperatures [degC]: ``table``, ``cell_median``, ``cell_p95``,
+        ``cell_count``, ``sub_median``.
+    conditions : DataFrame
+        ``poa_global`` [W/m2], ``temp_air`` [degC], ``wind_speed`` [m/s] per module.
+    module_spec : ModuleSpec-like
+        ``efficiency``, ``junction_box``.
+    ref : ndarray
+        Reference temperature per module [degC].
+    nb : ndarray of int (n, k)
+        The neighbours the reference came from (-1 none): they give the shared shape.
+    ok : ndarray of bool
+        Modules classified.
+    cfg, cfg_ref : mapping
+        ``[classify]`` and ``[reference]`` settings.
+    heat : Faiman
+        The heat-loss model of the run.
+    ref_irr : ndarray, optional
+        Reference used to read the local irradiance (default ``ref``) [degC].
+    """
+    table = stats.table
+    cm = np.asarray(stats.cell_median, dtype=np.float64)
+    cp = np.asarray(stats.cell_p95, dtype=np.float64)
+    cc = np.asarray(stats.cell_count)
+    n, A, C = cm.shape
+    sm = np.asarray(stats.sub_median, dtype=np.float64)
+    B = sm.shape[1]
+    t_med = table["t_median_c"].to_numpy(dtype=float)
+    t_max = table["t_max_c"].to_numpy(dtype=float)
+
+    # cells with too few pixels compared to the module's typical cell are left out
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        typ = np.nanmedian(np.where(cc > 0, cc, np.nan).reshape(n, -1), axis=1)
+    thin = cc < float(cfg["min_cell_fraction"]) * np.nan_to_num(typ, nan=1.0)[:, None, None]
+    cm = np.where(thin, np.nan, cm)
+    cp = np.where(thin, np.nan, cp)
+
+    # the shape the healthy neighbours share, relative to each neighbour's own median
+    shape_c = neighbour_median(cm - t_med[:, None, None], nb)
+    shape_p = neighbour_median(cp - t_med[:, None, None], nb)
+    shape_s = neighbour_median(sm - t_med[:, None], nb)
+    shape_c = np.nan_to_num(shape_c, nan=0.0)
+    shape_p = np.nan_to_num(shape_p, nan=0.0)
+    shape_s = np.nan_to_num(shape_s, nan=0.0)
+    R = cm - ref[:, None, None] - shape_c
+    R95 = cp - ref[:, None, None] - shape_p
+    Rsub = sm - ref[:, None] - shape_s
+
+    col_sub = np.minimum(((np.arange(C) + 0.5) / C * B).astype(int), B - 1)
+    base = nanmedian(R.reshape(n, -1), axis=1)
+    base_sub = np.stack([nanmedian(R[:, :, col_sub == k].reshape(n, -1), axis=1) for k in range(B)], axis=1)
+
+    g = conditions["poa_global"].to_numpy(dtype=float) if "poa_global" in conditions else np.full(n, np.nan)
+    ws = conditions["wind_speed"].to_numpy(dtype=float) if "wind_speed" in conditions else np.full(n, 1.0)
+    ta = conditions["temp_air"].to_numpy(dtype=float) if "temp_air" in conditions else np.full(n, np.nan)
+    eta = float(spec_value(module_spec, "efficiency"))
+    rise = np.asarray(heat.open_module_rise(eta, g, ws), dtype=float)
+    if bool(cfg["local_irradiance"]):
+        # Faiman: a producing module runs G / U(v) above the air, so the local reference's
+        # rise over ambient tells the irradiance the module actually got (cloud shadows,
+        # drift the irradiance sensor did not see): G_local = (T_ref - T_air) * U(v)
+        # (ref_irr: the mean of the row reference and the out-of-string one, two
+        # neighbourhoods, so a steep shadow edge along one of them does not decide alone)
+        r_irr = ref if ref_irr is None else np.where(np.isfinite(ref_irr), ref_irr, ref)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            s = (r_irr - ta) * heat.u(ws) / g
+        s = np.clip(s, float(cfg["local_irradiance_min"]), float(cfg["local_irradiance_max"]))
+        rise = rise * np.where(np.isfinite(s), s, 1.0)
+    if not np.isfinite(rise).any():
+        logger.warning("no irradiance for the open-module rise; area patterns use 3 K")
+        rise = np.full(n, 3.0)
+    else:
+        rise = np.where(np.isfinite(rise), rise, nanmedian(rise))
+
+    lower = modules["lower_edge"].astype(str).to_numpy() if "lower_edge" in modules else np.full(n, "u")
+    lower_u = lower != "v"
+
+    dT = t_med - ref
+    healthy = ok & np.isfinite(dT)
+    sig_mod = scaled_mad(dT[healthy])
+    X = R - base[:, None, None]
+    sig_cell = scaled_mad(X[healthy].ravel()) if healthy.any() else float("nan")
+    sig_mod = 0.5 if not np.isfinite(sig_mod) else sig_mod
+    sig_cell = 0.3 if not np.isfinite(sig_cell) else sig_cell
+    split = str(spec_value(module_spec, "junction_box", "edge") or "edge") == "split"
+    # the open-module rise at the reference conditions, to scale rises given there
+    rise_ref = float(heat.open_module_rise(eta, float(cfg_ref["g_ref_w_m2"]), float(cfg_ref["wind_ref_m_s"])))
+    F = Features(n=n, n_along=A, n_across=C, nsub=B, ok=ok, ref=ref, t_median=t_med, t_max=t_max,
+                    dT=dT, rise=rise, cm=cm, cp=cp, R=R, R95=R95, Rsub=Rsub, base=base,
+                    base_sub=base_sub, col_sub=col_sub, lower_u=lower_u, sig_cell=sig_cell,
+                    sig_mod=sig_mod, split_box=split)
+    F.extra["rise_ref"] = rise_ref
+    return F
+
+
+def row_geometry(modules: pd.DataFrame, nsub: int) -> dict[str, np.ndarray]:
+    """Adjacency, substring centres and the v = 0 / v = 1 edge midpoints in map coordinates."""
+    f = {c: modules[c].to_numpy(dtype=float) for c in ("fx0", "fy0", "fux", "fuy", "fvx", "fvy")}
+    p0 = np.column_stack([f["fx0"], f["fy0"]])
+    fu = np.column_stack([f["fux"], f["fuy"]])
+    fv = np.column_stack([f["fvx"], f["fvy"]])
+    vk = (np.arange(nsub) + 0.5) / nsub
+    centres = p0[:, None, :] + 0.5 * fu[:, None, :] + vk[None, :, None] * fv[:, None, :]
+    edges = np.stack([p0 + 0.5 * fu, p0 + 0.5 * fu + fv], axis=1)
+    adj = adjacent_modules(modules)
+    n = len(modules)
+    cross = np.full(n, -1, np.int64)
+    along = np.full((n, 4), -1, np.int64)
+    if "table_id" in modules.columns and "table_row" in modules.columns:
+        tkey = np.asarray(pd.factorize(modules["table_id"].astype("string"))[0])
+        trow = pd.to_numeric(modules["table_row"], errors="coerce").fillna(-1).to_numpy(np.int64)
+        for c in range(4):
+            j = adj[:, c]
+            jj = np.maximum(j, 0)
+            same_t = (j >= 0) & (tkey[jj] == tkey) & (tkey >= 0)
+            other_row = same_t & (trow[jj] != trow)
+            cross = np.where((cross < 0) & other_row, j, cross)
+            along[:, c] = np.where(same_t & (trow[jj] == trow), j, -1)
+    return {"adjacent": adj, "sub_centres": centres, "edge_points": edges, "cross_row": cross,
+            "along_row": along, "row_key": row_keys(modules),
+            "centre": p0 + 0.5 * (fu + fv), "p0": p0, "fu": fu, "fv": fv}
+
+
+def string_groups(modules: pd.DataFrame) -> tuple[np.ndarray, np.ndarray, bool]:
+    """Group code (string, else table row) and the position along it for each module."""
+    n = len(modules)
+    has_string = ("string_id" in modules.columns and "string_index" in modules.columns
+                  and modules["string_id"].notna().any())
+    if has_string:
+        key = modules["string_id"].astype("string")
+        pos = pd.to_numeric(modules["string_index"], errors="coerce").to_numpy(dtype=float)
+        codes, _ = pd.factorize(key)
+        codes = np.asarray(codes, np.int64)
+        codes[modules["string_id"].isna().to_numpy() | ~np.isfinite(pos)] = -1
+        return codes, pos, True
+    if "table_id" in modules.columns:
+        row = modules["table_row"] if "table_row" in modules.columns else pd.Series(0, index=modules.index)
+        key = modules["table_id"].astype("string") + "\x00" + row.astype("string")
+        codes, _ = pd.factorize(key)
+        pos = pd.to_numeric(modules.get("table_col", pd.Series(np.arange(n))), errors="coerce").to_numpy(float)
+        codes = np.asarray(codes, np.int64)
+        codes[modules["table_id"].isna().to_numpy()] = -1
+        return codes, pos, False
+    return np.full(n, -1, np.int64), np.arange(n, dtype=float), False

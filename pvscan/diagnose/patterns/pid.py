@@ -1,0 +1,158 @@
+"""Potential-induced degradation along a string: ``pid``.
+
+PID shunts cells of the modules nearest the string's negative end (``string_index`` 1)
+most, fading along the string, in a patchy pattern strongest at the cells next to the
+grounded frame. The telling sign is a module's edge ring of cells running warmer than its
+interior (:func:`pid_ring_contrast`), which the module-to-module spread does not blur.
+
+References
+----------
+.. [1] IEC TS 62446-3:2017, Photovoltaic (PV) systems - Requirements for testing,
+   documentation and maintenance - Part 3: Photovoltaic modules and plants - Outdoor
+   infrared thermography.
+"""
+from __future__ import annotations
+
+from collections.abc import Mapping
+
+import numpy as np
+
+from pvscan.diagnose.features import Features
+from pvscan.robust import nanmedian, nanquantile, scaled_mad
+
+__all__ = ["pid_ring_contrast", "pattern_pid"]
+
+
+def _trimmed_mean(x: np.ndarray, cut: float = 0.1) -> np.ndarray:
+    """Mean along the last axis without the lowest and highest ``cut`` share, ignoring NaN."""
+    lo = nanquantile(x, cut, axis=-1)[..., None]
+    hi = nanquantile(x, 1.0 - cut, axis=-1)[..., None]
+    keep = (x >= lo) & (x <= hi)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(keep, x, 0.0).sum(axis=-1) / np.maximum(keep.sum(axis=-1), 1) + \
+            np.where(keep.sum(axis=-1) > 0, 0.0, np.nan)
+
+
+def pid_ring_contrast(F: Features) -> np.ndarray:
+    """How much warmer a module's edge cells run than its interior cells [K].
+
+    The median over the four edges (lines of cells along ``u = 0``, ``u = 1``, ``v = 0``,
+    ``v = 1``) of the edge's trimmed mean residual minus the interior's.
+
+    The 10 % trimming keeps a single hot cell from posing as an edge-weighted pattern. The
+    residual is taken against modules outside the string (``F.extra["R_other"]``) when
+    available: PID modules sit side by side, and their neighbours' shared shape would
+    carry part of their own pattern.
+    """
+    n, A, C = F.n, F.n_along, F.n_across
+    ii, jj = np.indices((A, C))
+    ring = ((ii == 0) | (ii == A - 1) | (jj == 0) | (jj == C - 1)).ravel()
+    flat = F.extra.get("R_other", F.R).reshape(n, -1)
+    core = _trimmed_mean(flat[:, ~ring])
+    # each of the four edges on its own, then the median of the four: PID warms all edges,
+    # a seam or warm ground along a row one of them
+    sides = [(ii == 0), (ii == A - 1), (jj == 0), (jj == C - 1)]
+    per_side = np.stack([_trimmed_mean(flat[:, m.ravel()]) - core for m in sides], axis=1)
+    return nanmedian(per_side, axis=1)
+
+
+def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
+                is_string: bool, exclude: np.ndarray) -> list[list[int]]:
+    """Potential-induced degradation along a string.
+
+    PID shunts cells of the modules nearest the string's negative end (``string_index``
+    1) most, fading along the string, in a patchy pattern strongest at the cells next to
+    the grounded frame. The telling sign is the contrast of a module's edge ring of cells
+    over its interior (:func:`pid_ring_contrast`), insensitive to the module-to-module
+    spread, in robust standard deviations of healthy modules' contrast. A string
+    qualifies when its module at the negative end reaches ``pid_seed_z`` (or reaches
+    ``pid_extend_z`` with the second module reaching ``pid_seed_z``) and is warmer than its
+    surroundings; the affected run extends from the negative end while the
+    contrast keeps above ``pid_extend_z`` on balance (the end maximises ``sum(z -
+    pid_extend_z)``, so a single weaker module between stronger ones does not end it),
+    over at least ``pid_min_modules`` and at most the first ``pid_max_position`` of the
+    string, the modules after the first reaching ``pid_rest_z`` by themselves (the best
+    prefix of them, ``sum(z) / sqrt(m)``), the best run from the negative end having combined evidence
+    ``sum(z) / sqrt(n)`` of at least ``pid_run_z``, and the run's median excess over
+    modules outside its string, in robust spreads of healthy modules, at least
+    ``pid_warm_min_z`` (PID takes power away, so the modules run warmer, not clearly
+    cooler).
+
+    Returns
+    -------
+    list of list of int
+        The affected modules of each PID string (needs ``string_id``/``string_index``).
+    """
+    if not is_string:
+        return []
+    contrast = pid_ring_contrast(F)
+    healthy = F.ok & ~exclude & np.isfinite(contrast)
+    if healthy.sum() < 5:
+        return []
+    c0 = float(np.median(contrast[healthy]))
+    sig = max(scaled_mad(contrast[healthy]), 0.02)
+    z = (contrast - c0) / sig
+    F.extra["pid_z"] = z
+    d_o = F.extra["d_other"]
+    # extension: edge-ring contrast and the module's excess over modules outside its string
+    # together (both in robust standard deviations of healthy modules)
+    z_o = d_o / max(float(F.extra.get("sig_other", F.sig_mod)), 0.05)
+    w = float(cfg["pid_excess_weight"])
+    z_ext = (z + w * np.clip(z_o, -3.0, 3.0)) / np.sqrt(1.0 + w * w)
+    out = []
+    for g in np.unique(groups[groups >= 0]):
+        idx = np.flatnonzero(groups == g)
+        idx = idx[np.argsort(pos[idx], kind="stable")]
+        if len(idx) < 3:
+            continue
+        first = idx[0]
+        if exclude[first] or not F.ok[first]:
+            continue
+        # the seed: the module at the negative end shows the pattern, or shows some of it
+        # (the extension bar) with the next module showing it fully; a PID pattern is
+        # patchy, and the most affected module need not be the most edge-weighted one
+        z_seed = float(cfg["pid_seed_z"])
+        second = idx[1]
+        seeded = z[first] >= z_seed or (
+            z[first] >= float(cfg["pid_extend_z"]) and not exclude[second] and bool(F.ok[second])
+            and z[second] >= z_seed)
+        if not seeded:
+            continue
+        # the best prefix from the negative end: PID is strongest there and fades, so the
+        # evidence of the first m modules, sum(z) / sqrt(m), peaks where PID stops showing
+        max_len = max(int(np.floor(float(cfg["pid_max_position"]) * len(idx))), 1)
+        # no single module after the first carries the string's evidence by itself: its
+        # contrast counts for at most pid_z_cap there (a bypassed strip or a seam edge along
+        # one module's frame can give it a huge edge contrast)
+        cap = float(cfg["pid_z_cap"])
+        zz = np.where(exclude[idx] | ~F.ok[idx], np.nan, z_ext[idx])[:max_len]
+        zr = np.where(exclude[idx] | ~F.ok[idx], np.nan, np.minimum(z[idx], cap))[:max_len]
+        if np.isnan(zz).any():
+            zr = zr[: int(np.argmax(np.isnan(zz)))]
+            zz = zz[: int(np.argmax(np.isnan(zz)))]
+        m_min = int(cfg["pid_min_modules"])
+        if len(zz) < max(m_min, 2):
+            continue
+        # the modules after the first carry the cell pattern on by themselves (best prefix
+        # of their edge-ring contrast, sum(z) / sqrt(m)): one warm-edged module at a
+        # string's end is not PID, nor a string that a reflection or a seam warms as a
+        # whole; but one weaker module right after the first does not undo a string that
+        # shows the pattern further on
+        rest = np.cumsum(zr[1:]) / np.sqrt(np.arange(1, len(zr)))
+        if np.max(rest[max(m_min - 2, 0):]) < float(cfg["pid_rest_z"]):
+            continue
+        score = np.cumsum(zz) / np.sqrt(np.arange(1, len(zz) + 1))
+        if np.max(score[m_min - 1:]) < float(cfg["pid_run_z"]):
+            continue
+        # where the pattern stops: the end that maximises sum(z - pid_extend_z) from the
+        # negative end (a change point: modules above the bar add, below it take away, so a
+        # single weak module between stronger ones does not end the run)
+        gain = np.cumsum(zz - float(cfg["pid_extend_z"]))
+        k = int(np.argmax(gain[m_min - 1:])) + m_min
+        # PID takes power away, so the affected modules run warmer than modules outside
+        # their string (a seam or a shadow edge crossing the string's end need not)
+        if not float(np.nanmedian(z_o[idx[:k]])) >= float(cfg["pid_warm_min_z"]):
+            continue
+        run = [int(i) for i in idx[:k]]
+        out.append(run)
+    return out

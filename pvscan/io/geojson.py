@@ -1,0 +1,83 @@
+"""Shapely geometries of many GeoJSON geometry members at once.
+
+Layouts and result files hold tens of thousands of plain polygons. Building them one by
+one with :func:`shapely.geometry.shape` costs about 40 us each; gathering their positions
+into one array and building them with :func:`shapely.from_ragged_array` costs about 1 us.
+Anything that is not a plain 2-D polygon with closed rings (multipolygons, points, 3-D
+positions, open rings, malformed members) still goes through ``shape`` one by one, which
+gives the same geometry and the same error as before.
+"""
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+
+import numpy as np
+import shapely
+
+__all__ = ["shapes"]
+
+
+def _plain_polygon_rings(g):
+    """The rings of a plain GeoJSON Polygon member (closed, 4+ positions each), else None."""
+    if type(g) is not dict or g.get("type") != "Polygon":
+        return None
+    rings = g.get("coordinates")
+    if type(rings) is not list or not rings:
+        return None
+    for r in rings:
+        if type(r) is not list or len(r) < 4 or r[0] != r[-1]:
+            return None
+    return rings
+
+
+def shapes(members: Sequence, on_error: Callable[[int, Exception], None]) -> np.ndarray:
+    """Shapely geometries of GeoJSON geometry members (``None`` or ``{}`` -> None).
+
+    Parameters
+    ----------
+    members : sequence
+        The ``geometry`` members of the features, in order.
+    on_error : callable
+        ``on_error(index, exception)`` for a member ``shape`` cannot read; it should raise
+        (the caller's own error naming the feature). If it returns, the geometry is None.
+
+    Returns
+    -------
+    numpy.ndarray
+        Object array of shapely geometries (or None), one per member.
+    """
+    from shapely.geometry import shape
+
+    n = len(members)
+    out = np.full(n, None, dtype=object)
+    flat: list = []
+    ring_len: list[int] = []
+    poly_rings: list[int] = []
+    fast: list[int] = []
+    slow: list[int] = []
+    for k, g in enumerate(members):
+        rings = _plain_polygon_rings(g)
+        if rings is None:
+            slow.append(k)
+            continue
+        fast.append(k)
+        poly_rings.append(len(rings))
+        for r in rings:
+            ring_len.append(len(r))
+            flat.extend(r)
+    if fast:
+        try:
+            coords = np.array(flat, dtype=np.float64)
+            if coords.ndim != 2 or coords.shape[1] != 2:
+                raise ValueError("not 2-D positions")
+            offsets = (np.concatenate([[0], np.cumsum(ring_len)]), np.concatenate([[0], np.cumsum(poly_rings)]))
+            out[fast] = shapely.from_ragged_array(shapely.GeometryType.POLYGON, coords, offsets)
+        except (ValueError, TypeError, shapely.errors.GEOSException):
+            slow = sorted(slow + fast)  # shape() reads and words them one by one
+    for k in slow:
+        g = members[k]
+        try:
+            out[k] = shape(g) if g else None
+        except Exception as exc:
+            on_error(k, exc)
+    return out

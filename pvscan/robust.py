@@ -1,0 +1,110 @@
+"""Robust and NaN-aware statistics shared by every stage.
+
+Order statistics that ignore NaN, vectorised over rows (NumPy's ``nanpercentile`` loops over
+rows in Python), and the one scaled median absolute deviation pvscan uses as a robust
+standard deviation. All-NaN slices give NaN without a warning.
+
+References
+----------
+.. [1] F. R. Hampel, "The influence curve and its role in robust estimation", Journal of the
+   American Statistical Association 69(346), 383-393, 1974 (the MAD scaled by 1.4826 is a
+   consistent estimator of the standard deviation of a normal distribution).
+"""
+from __future__ import annotations
+
+import warnings
+from typing import Any
+
+import numpy as np
+from numpy.typing import ArrayLike
+
+__all__ = ["nanquantile", "nanmedian", "nanpercentile", "iqr", "nanmean", "nanmax", "nanmin",
+           "scaled_mad", "MAD_TO_SIGMA"]
+
+#: 1 / Phi^-1(3/4): scales a median absolute deviation to the standard deviation of a normal
+#: distribution (Hampel 1974).
+MAD_TO_SIGMA = 1.4826
+
+
+def nanquantile(a: ArrayLike, q: float, axis: int | None = None) -> Any:
+    """Quantile ``q`` (0..1, linear interpolation as ``numpy.quantile``) ignoring NaN.
+
+    Sorting once (NaN sort last) and indexing by each row's count of valid values gives the
+    estimate of ``numpy.nanquantile``, vectorised along ``axis`` (thousands of times faster
+    for (modules x cells) arrays). All-NaN slices give NaN, without a warning.
+    """
+    arr = np.asarray(a, dtype=np.float64)
+    if axis is None:
+        arr = arr.reshape(-1)
+        axis = 0
+    arr = np.moveaxis(arr, axis, -1)
+    srt = np.sort(arr, axis=-1)
+    cnt = np.isfinite(srt).sum(axis=-1)
+    pos = q * np.maximum(cnt - 1, 0)
+    lo = np.floor(pos).astype(np.int64)
+    hi = np.minimum(lo + 1, np.maximum(cnt - 1, 0))
+    w = pos - lo
+    vlo = np.take_along_axis(srt, lo[..., None], axis=-1)[..., 0]
+    vhi = np.take_along_axis(srt, hi[..., None], axis=-1)[..., 0]
+    out = vlo + w * (vhi - vlo)
+    return np.where(cnt > 0, out, np.nan)
+
+
+def nanmedian(a: ArrayLike, axis: int | None = None) -> Any:
+    """Median ignoring NaN, vectorised (see :func:`nanquantile`)."""
+    return nanquantile(a, 0.5, axis=axis)
+
+
+def nanpercentile(a: ArrayLike, q: ArrayLike, axis: int | None = None) -> np.ndarray:
+    """Percentiles ``q`` [%] ignoring NaN, stacked along a new first axis."""
+    qs = np.atleast_1d(np.asarray(q, float)) / 100.0
+    return np.stack([nanquantile(a, x, axis=axis) for x in qs], axis=0)
+
+
+def iqr(x: ArrayLike, axis: int | None = None) -> Any:
+    """Interquartile range ignoring NaN."""
+    q = nanpercentile(x, [25, 75], axis=axis)
+    return q[1] - q[0]
+
+
+def nanmean(a: ArrayLike, axis: int | None = None) -> Any:
+    """``numpy.nanmean`` without the warning on all-NaN slices."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanmean(a, axis=axis)
+
+
+def nanmax(a: ArrayLike, axis: int | None = None) -> Any:
+    """``numpy.nanmax`` without the warning on all-NaN slices."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanmax(a, axis=axis)
+
+
+def nanmin(a: ArrayLike, axis: int | None = None) -> Any:
+    """``numpy.nanmin`` without the warning on all-NaN slices."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        return np.nanmin(a, axis=axis)
+
+
+def scaled_mad(x: ArrayLike, min_count: int = 3) -> float:
+    """Robust standard deviation: 1.4826 x the median absolute deviation from the median.
+
+    Parameters
+    ----------
+    x : array-like
+        Values; NaN and infinities are left out.
+    min_count : int
+        Fewer finite values than this give NaN.
+
+    Returns
+    -------
+    float
+        The scaled MAD (in the unit of ``x``); NaN when too few values.
+    """
+    v = np.asarray(x, float).ravel()
+    v = v[np.isfinite(v)]
+    if v.size < max(int(min_count), 1):
+        return float("nan")
+    return MAD_TO_SIGMA * float(np.median(np.abs(v - np.median(v))))
