@@ -256,15 +256,16 @@ def write_results(folder: Path, *, modules, module_table: pd.DataFrame, anomalie
     folder = Path(folder)
     outputs.write_modules_geojson(folder / "modules.geojson", modules, module_table, anomalies, settings=settings)
     outputs.write_anomalies_geojson(folder / "anomalies.geojson", anomalies, modules, settings=settings)
-    outputs.write_workorders_csv(folder / "workorders.csv", anomalies, modules, site_crs=modules.crs,
-                                 settings=settings)
-    work = outputs.workorders_table(anomalies, modules, site_crs=modules.crs, settings=settings)
+    work = outputs.workorders_table(anomalies, modules, site_crs=modules.crs, settings=settings,
+                                    site=summary.get("site"), flight=summary.get("flight"))
+    outputs.write_workorders_csv(folder / "workorders.csv", anomalies, modules, table=work)
+    outputs.write_workorders_gpx(folder / "workorders.gpx", work)
     outputs.write_geopackage(folder / "pvscan.gpkg", modules.assign(**{c: module_table[c].to_numpy()
                                                                         for c in module_table.columns}),
                              anomalies, work, settings=settings)
     outputs.write_summary(folder / "summary.json", summary)
     return {"modules": "modules.geojson", "anomalies": "anomalies.geojson", "workorders": "workorders.csv",
-            "geopackage": "pvscan.gpkg", "summary": "summary.json"}
+            "workorders_gpx": "workorders.gpx", "geopackage": "pvscan.gpkg", "summary": "summary.json"}
 
 
 def _site_lonlat(modules) -> tuple[float, float]:

@@ -25,7 +25,8 @@ from pvscan.simulate import simulate_flight
 
 SEED = int(os.environ.get("PVSCAN_TEST_SEED", "20260614"))
 PVSCAN = [sys.executable, "-m", "pvscan.cli.main"]
-ORDER = ["modules.geojson", "anomalies.geojson", "workorders.csv", "pvscan.gpkg", "summary.json", "report.html"]
+ORDER = ["modules.geojson", "anomalies.geojson", "workorders.csv", "workorders.gpx", "pvscan.gpkg", "summary.json",
+         "report.html"]
 
 
 def _scenario():

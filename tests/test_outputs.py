@@ -20,6 +20,7 @@ from pyproj import Transformer
 from shapely.geometry import Polygon, shape
 
 from pvscan.io import outputs
+from pvscan.io.writers import atomic
 from pvscan.errors import OutputError
 from pvscan.diagnose.loss import estimate_loss
 from pvscan.io.manifest import ModuleSpec
@@ -286,7 +287,8 @@ def test_geopackage_layers(tmp_path, result):
     wo = outputs.workorders_table(an, mods, CRS)
     path = outputs.write_geopackage(tmp_path / "results.gpkg", mods_out, an, wo)
     layers = dict(pyogrio.list_layers(path))
-    assert set(layers) == {"modules", "anomalies", "workorders"}
+    assert set(layers) == {"modules", "anomalies", "workorders", "layer_styles"}
+    assert layers["layer_styles"] is None  # an attribute table: the default styles
     assert layers["workorders"] == "Point"
     g_mod = gpd.read_file(path, layer="modules", engine="pyogrio")
     g_an = gpd.read_file(path, layer="anomalies", engine="pyogrio")
@@ -387,7 +389,7 @@ def test_atomic_write_keeps_old_file_on_failure(tmp_path, monkeypatch):
     def failing_replace(src, dst):
         raise OSError(28, "No space left on device")
 
-    monkeypatch.setattr(outputs.os, "replace", failing_replace)
+    monkeypatch.setattr(atomic.os, "replace", failing_replace)
     with pytest.raises(OutputError, match="summary.json"):
         outputs.atomic_write(p, '{"a": 2}')
     monkeypatch.undo()
@@ -420,7 +422,8 @@ def test_empty_anomalies(tmp_path):
     assert all(f["properties"]["defect"] is None for f in mdoc["features"])
     wo = outputs.workorders_table(empty, mods)
     outputs.write_geopackage(tmp_path / "r.gpkg", mods, empty, wo)
-    assert set(dict(pyogrio.list_layers(tmp_path / "r.gpkg"))) == {"modules", "anomalies", "workorders"}
+    assert set(dict(pyogrio.list_layers(tmp_path / "r.gpkg"))) == {"modules", "anomalies", "workorders",
+                                                                   "layer_styles"}
     assert re.fullmatch(r"[A-Z0-9:]+", outputs.workorders_table(empty, mods).crs.to_string())
 
 

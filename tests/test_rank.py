@@ -38,8 +38,11 @@ def test_safety_items_come_first_then_energy(seed):
     assert n_safety > 0
     assert all(s == "safety" for s in sev[:n_safety])  # every safety item before any other
     assert "safety" not in sev[n_safety:]
-    for block in (out.iloc[:n_safety], out.iloc[n_safety:]):
-        e = block["energy_loss_kwh_per_year"].to_numpy()
+    first = list(load_pipeline()["rank"]["first_severities"])
+    tier = np.array([first.index(s) if s in first else len(first) for s in sev])
+    assert np.all(np.diff(tier) >= 0)  # the tiers of [rank] first_severities in order, the rest after
+    for t in np.unique(tier):
+        e = out["energy_loss_kwh_per_year"].to_numpy()[tier == t]
         assert np.all(np.diff(e) <= 0)  # larger yearly loss first within a tier
     # the input is not modified and nothing is lost
     assert sorted(out["module_id"]) == sorted(an["module_id"]) and "priority" not in an.columns

@@ -1,0 +1,194 @@
+"""``summary.json`` (inputs, conditions, counts, losses, cautions) and the check of a whole
+result folder against its JSON Schemas."""
+from __future__ import annotations
+
+import json
+import math
+import os
+from collections.abc import Iterable, Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from pvscan.errors import OutputError
+from pvscan.io.resources import describe_error, load_schema, schema_errors
+from pvscan.io.writers.atomic import atomic_write
+from pvscan.io.writers.geojson import validate_geojson_rfc7946
+from pvscan.io.writers.geometry import anomaly_indices
+from pvscan.io.writers.values import dumps, to_jsonable
+from pvscan.io.writers.workorders import read_workorders_csv
+
+__all__ = ["safety_cautions", "build_summary", "write_summary", "validate_output"]
+
+def safety_cautions() -> list[str]:
+    """Cautions printed in ``summary.json`` and the report (plain words, deferring to local rules)."""
+    return [
+        "PV modules and strings carry live DC voltage whenever light falls on them, even when the "
+        "inverter or the string is disconnected; daylight alone energises them.",
+        "Faulty connectors, junction boxes and bypass diodes can arc and start fires; DC arcs do not "
+        "self-extinguish. Keep clear of damaged or smoking components and follow the site's emergency "
+        "procedure.",
+        "Hot spots and junction boxes can be hot enough to burn skin; let them cool or use suitable "
+        "protective equipment before touching.",
+        "Only qualified, authorised persons may open, test or repair PV electrical equipment, under the "
+        "local electrical codes and the site's safety rules.",
+        "Drone flights must follow the local aviation rules and the site's permissions; keep clear of "
+        "people, overhead lines and operating equipment.",
+        "These results are estimates from thermal imaging; confirm every finding on site before acting "
+        "on it.",
+    ]
+
+
+def _counts(values: Iterable) -> dict[str, int]:
+    out: dict[str, int] = {}
+    for v in values:
+        if v is None or (isinstance(v, float) and math.isnan(v)):
+            continue
+        out[str(v)] = out.get(str(v), 0) + 1
+    return dict(sorted(out.items()))
+
+
+def _fsum(series) -> float:
+    vals = pd.to_numeric(pd.Series(series), errors="coerce").to_numpy(dtype=float)
+    vals = vals[np.isfinite(vals)]
+    return float(vals.sum()) if vals.size else 0.0
+
+
+def build_summary(*, modules, anomalies: pd.DataFrame | None, module_spec=None,
+                  inputs: Mapping | None = None, conditions: Mapping | None = None,
+                  validity: Any = None, registration: Any = None,
+                  layout_shift_m: Sequence[float] = (0.0, 0.0), pipeline_path=None,
+                  site: Any = None, flight: Any = None, extra: Mapping | None = None) -> dict:
+    """Assemble the ``summary.json`` document (validated later by :func:`write_summary`).
+
+    Parameters
+    ----------
+    modules : geopandas.GeoDataFrame
+        The modules frame (for counts and the plant nameplate).
+    anomalies : pandas.DataFrame or None
+        Loss-estimated, ranked anomalies.
+    module_spec : ModuleSpec, optional
+        For the plant nameplate ``n_modules * pmax_w`` [W] and the plant share of the loss.
+    inputs : mapping, optional
+        ``files`` (list of paths), ``crs`` (site CRS), ``gsd_m`` [m/px], ...
+    conditions : mapping, optional
+        Flight conditions (mean ``poa_global`` [W/m2], ``temp_air`` [degC], ``wind_speed``
+        [m/s], ...).
+    validity : mapping or dataclass, optional
+        The acquisition-validity record (each limit, its value, pass/fail, source).
+    registration : mapping or dataclass, optional
+        Registration details (method, score, ...).
+    layout_shift_m : (float, float)
+        Shift applied to the layout to fit the ortho, east and north [m].
+    pipeline_path : path-like, optional
+        The pipeline file used.
+    site, flight : optional
+        ``Site`` and ``FlightInfo`` records (name, id, start, end).
+    extra : mapping, optional
+        Further top-level keys.
+    """
+    from pvscan import __version__
+    from pvscan.diagnose.loss import module_losses
+
+    n = len(modules)
+    an = anomalies if anomalies is not None else pd.DataFrame()
+    pmax = getattr(module_spec, "pmax_w", None) if module_spec is not None else None
+    shares = module_losses(an, n, pmax) if len(an) and "power_loss_w" in an.columns else None
+    total_stc = float(shares["power_loss_w"].sum()) if shares is not None else 0.0
+    total_flight = float(np.nansum(shares["power_loss_w_flight"])) if shares is not None else 0.0
+    total_energy = float(np.nansum(shares["energy_loss_kwh_per_year"])) if shares is not None else 0.0
+    nameplate = float(n * pmax) if pmax else None
+    affected = set()
+    for _, row in an.iterrows():
+        affected.update(anomaly_indices(row))
+    loss = {
+        "power_loss_w": round(total_stc, 3),
+        "power_loss_w_flight": round(total_flight, 3),
+        "energy_loss_kwh_per_year": round(total_energy, 3),
+        "plant_pmax_w": nameplate,
+        "plant_share": (total_stc / nameplate) if nameplate else None,
+        "specific_yield_kwh_per_kwp": to_jsonable(an.attrs.get("specific_yield_kwh_per_kwp")),
+        "specific_yield_source": an.attrs.get("specific_yield_source"),
+        "basis": "sum of per-module shares (an anomaly over several modules counted once)",
+    }
+    if "yearly_cost" in an.columns:
+        loss["yearly_cost"] = round(_fsum(an["yearly_cost"]), 2)
+        loss["currency"] = getattr(site, "currency", None)
+    summary = {
+        "pvscan_version": __version__,
+        "pipeline": None if pipeline_path is None else os.fspath(pipeline_path),
+        "site": to_jsonable({"name": getattr(site, "name", None), "id": getattr(site, "id", None)}) if site else {},
+        "flight": to_jsonable({k: getattr(flight, k, None) for k in ("id", "start", "end", "altitude_m")})
+        if flight else {},
+        "inputs": to_jsonable(dict(inputs or {})),
+        "conditions": to_jsonable(dict(conditions or {})),
+        "validity": to_jsonable(validity) if validity is not None else None,
+        "counts": {
+            "modules": n,
+            "modules_affected": len(affected),
+            "anomalies": int(len(an)),
+            "by_defect": _counts(an["defect"]) if "defect" in an.columns else {},
+            "by_severity": _counts(an["severity"]) if "severity" in an.columns else {},
+        },
+        "loss": loss,
+        "power_loss_w": loss["power_loss_w"],
+        "layout_shift_m": [float(layout_shift_m[0]), float(layout_shift_m[1])],
+        "registration": to_jsonable(registration) if registration is not None else None,
+        "safety": safety_cautions(),
+    }
+    if summary["registration"] is not None and not isinstance(summary["registration"], Mapping):
+        summary["registration"] = {"value": summary["registration"]}
+    if summary["validity"] is not None and not isinstance(summary["validity"], Mapping):
+        summary["validity"] = {"checks": summary["validity"]}
+    if extra:
+        summary.update(to_jsonable(dict(extra)))
+    return summary
+
+
+def write_summary(path: str | os.PathLike, summary: Mapping) -> Path:
+    """Validate ``summary`` against ``schemas/summary.schema.json`` and write it (indented UTF-8 JSON).
+
+    Raises
+    ------
+    OutputError
+        If the document does not match the schema (the message names the key).
+    """
+    doc = to_jsonable(dict(summary))
+    errs = schema_errors(doc, load_schema("summary.schema.json"))
+    if errs:
+        raise OutputError(f"{Path(path).name}: {describe_error(errs[0])}")
+    return atomic_write(path, dumps(doc, indent=2))
+
+
+
+def validate_output(out_dir: str | os.PathLike) -> dict[str, list[str]]:
+    """Check every output file in ``out_dir`` against its JSON Schema (and RFC 7946 for GeoJSON).
+
+    Returns a mapping ``file name -> problems`` (empty lists when valid); files that do not
+    exist are reported as missing.
+    """
+    out_dir = Path(out_dir)
+    report: dict[str, list[str]] = {}
+    for name, schema in (("modules.geojson", "modules.schema.json"), ("anomalies.geojson", "anomalies.schema.json"),
+                         ("summary.json", "summary.schema.json")):
+        p = out_dir / name
+        if not p.exists():
+            report[name] = ["missing"]
+            continue
+        doc = json.loads(p.read_text(encoding="utf-8"))
+        probs = [describe_error(e) for e in schema_errors(doc, load_schema(schema))]
+        if name.endswith(".geojson"):
+            probs += validate_geojson_rfc7946(doc)
+        report[name] = probs
+    p = out_dir / "workorders.csv"
+    if p.exists():
+        schema = load_schema("workorders.schema.json")
+        probs = []
+        for k, row in enumerate(read_workorders_csv(p)):
+            probs += [f"row {k + 1}: {describe_error(e)}" for e in schema_errors(row, schema)]
+        report["workorders.csv"] = probs
+    else:
+        report["workorders.csv"] = ["missing"]
+    return report
