@@ -89,16 +89,31 @@ def changes_cmd(site_db, flight_from, flight_to, out_path, overwrite, pipeline_p
     fc = compare_flights(site_db, flight_from, flight_to, settings=cfg)
     write_changes(fc, out_path, overwrite=overwrite)
     c = fc["counts"]
+    failed = [f["properties"] for f in fc["features"] if f["properties"]["change"] == "persists_after_repair"]
     echo(f"{fc['flight_before']['flight_id']} -> {fc['flight_after']['flight_id']}: "
-         + ", ".join(f"{c[k]} {k}" for k in CHANGE_CLASSES)
+         + ", ".join(f"{c[k]} {k.replace('_', ' ')}" for k in CHANGE_CLASSES)
          + f" ({c['repaired']} repaired, {c['suspicious']} resolved without a recorded repair)")
+    if failed:
+        echo(f"{len(failed)} defect(s) still there after a recorded repair or replacement (failed repairs):")
+        for p in failed[:20]:
+            ev = "; ".join(f"{e['date']} {e['action']}" + (f" ({e['note']})" if e.get("note") else "")
+                           for e in p["maintenance_events"])
+            echo(f"  {p['module_id']}: {p['defect_before']} -> {p['defect_after']}, "
+                 f"dT norm {_k(p['delta_t_norm_k_before'])} -> {_k(p['delta_t_norm_k_after'])} K; "
+                 f"maintenance {ev}")
+        if len(failed) > 20:
+            echo(f"  ... and {len(failed) - 20} more in {out_path}")
     if fc["not_compared"]:
         echo(f"{len(fc['not_compared'])} module(s) with an anomaly were not imaged in both flights "
              "(not compared)")
-    if c["suspicious"]:
-        echo("check resolved defects without a repair on site before closing them; hot surfaces "
-             "and live DC: work only by qualified people under local codes")
+    if c["suspicious"] or failed:
+        echo("check failed repairs and resolved defects without a repair on site before closing them; "
+             "hot surfaces and live DC: work only by qualified people under local codes")
     echo(f"wrote {out_path}")
+
+
+def _k(v) -> str:
+    return "?" if v is None else f"{v:.1f}"
 
 
 @history_group.command("trend")
@@ -126,7 +141,7 @@ def trend_cmd(site_db, out_dir, overwrite, pipeline_path):
                 type=click.Path(dir_okay=False, path_type=Path))
 @handle_errors
 def maintenance_cmd(site_db, events_csv):
-    """Import repairs/replacements (CSV: date, module_id, action, note); idempotent."""
+    """Import repairs/replacements (CSV: date, module_id, action, note; `,` or `;`); idempotent."""
     from pvscan.history import import_maintenance
 
     res = import_maintenance(site_db, events_csv)

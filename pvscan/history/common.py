@@ -20,7 +20,9 @@ APPLICATION = "pvscan-site-history"
 GPKG_APPLICATION_ID = 0x47504B47  # "GPKG", GeoPackage 1.3.1 [1], Req. 2
 GPKG_USER_VERSION = 10301  # GeoPackage 1.3.1 [1], Req. 2
 
-CHANGE_CLASSES = ("new", "persisting", "worsened", "improved", "resolved")
+#: Change classes between two flights, the most important news first: a defect recorded as
+#: repaired or replaced (or soiling as cleaned) between the flights and still there.
+CHANGE_CLASSES = ("persists_after_repair", "new", "persisting", "worsened", "improved", "resolved")
 MAINTENANCE_ACTIONS = ("repair", "replace", "clean", "other")
 SEVERITY_RANK = {"monitor": 1, "repair": 2, "safety": 3}
 
@@ -33,7 +35,8 @@ class LayoutChangeWarning(PvscanWarning):
 
 
 class MaintenanceWarning(PvscanWarning):
-    """A maintenance event names a module the site does not have."""
+    """Kept for callers that filter it; no longer issued: a maintenance event naming a module
+    the site does not have is an error (:class:`~pvscan.errors.HistoryError` naming the line)."""
 
 
 # --------------------------------------------------------------------------------------------

@@ -168,7 +168,8 @@ def compare(before: tuple[pd.DataFrame, pd.DataFrame], after: tuple[pd.DataFrame
         One row per module with an anomaly in either flight that was imaged in both: module_id,
         table_id, change, defect_before, defect_after, severity_before, severity_after,
         delta_t_norm_k_before [K], delta_t_norm_k_after [K], repaired, suspicious, maintenance
-        (actions between the flights), moved_m (centroid distance of the module's footprints in
+        (actions between the flights), maintenance_events (their date, action and note),
+        moved_m (centroid distance of the module's footprints in
         the two flights [m]; large values mean a changed layout, not the same place), geometry
         (lon/lat, the later flight's footprint). Modules with an anomaly that were
         not imaged (or barely) in the other flight are in ``.attrs["not_compared"]``.
@@ -192,11 +193,12 @@ def compare(before: tuple[pd.DataFrame, pd.DataFrame], after: tuple[pd.DataFrame
         vf = idx[m][0]
         return bool(math.isnan(vf) or vf >= min_valid)
 
-    acts: dict[str, list[str]] = {}
+    acts: dict[str, list[dict]] = {}
     if events is not None and len(events):
-        for rec in events.to_dict("records"):
+        for rec in events.sort_values("date", kind="stable").to_dict("records"):
             if _event_between(rec["date"], start_before, start_after):
-                acts.setdefault(rec["module_id"], []).append(rec["action"])
+                acts.setdefault(rec["module_id"], []).append(
+                    {"date": rec["date"], "action": rec["action"], "note": _text(rec.get("note")) or ""})
 
     rows, skipped = [], []
     for m in sorted(set(stb) | set(sta)):
@@ -214,7 +216,10 @@ def compare(before: tuple[pd.DataFrame, pd.DataFrame], after: tuple[pd.DataFrame
                                  margin_k=float(cfg["change_margin_k"]),
                                  margin_rel=float(cfg["change_margin_rel"]))
         acts_m = acts.get(m, [])
-        repaired = change == "resolved" and any(_explains(x, db_) for x in acts_m)
+        explaining = [e for e in acts_m if _explains(e["action"], db_)]
+        repaired = change == "resolved" and bool(explaining)
+        if db_ is not None and da_ is not None and explaining:
+            change = "persists_after_repair"  # repaired or replaced, and still there: a failed repair
         geom = ia[m][3] if ia[m][3] is not None else ib[m][3]
         table = ia[m][2] if ia[m][2] is not None else ib[m][2]
         rows.append({"module_id": m, "table_id": table, "change": change,
@@ -223,12 +228,14 @@ def compare(before: tuple[pd.DataFrame, pd.DataFrame], after: tuple[pd.DataFrame
                      "severity_after": _text(a_["severity"]) if a_ else None,
                      "delta_t_norm_k_before": _num(tb), "delta_t_norm_k_after": _num(ta),
                      "repaired": bool(repaired), "suspicious": bool(change == "resolved" and not repaired),
-                     "maintenance": ",".join(acts_m) if acts_m else None,
+                     "maintenance": ",".join(e["action"] for e in acts_m) if acts_m else None,
+                     "maintenance_events": acts_m,
                      "moved_m": _moved_m(ib[m][3], ia[m][3]), "geometry": geom})
     out = pd.DataFrame(rows, columns=["module_id", "table_id", "change", "defect_before",
                                       "defect_after", "severity_before", "severity_after",
                                       "delta_t_norm_k_before", "delta_t_norm_k_after", "repaired",
-                                      "suspicious", "maintenance", "moved_m", "geometry"])
+                                      "suspicious", "maintenance", "maintenance_events", "moved_m",
+                                      "geometry"])
     out.attrs["not_compared"] = skipped
     return out
 
@@ -293,6 +300,8 @@ def compare_flights(db_path: str | Path, flight_from: str | None = None, flight_
     lo, hi = (t_from, t_to) if t_from <= t_to else (t_to, t_from)
     df = compare(before, after, start_before=lo, start_after=hi, events=events, settings=settings)
     features = []
+    first = df["change"] == "persists_after_repair"  # the most important news: listed first
+    df = pd.concat([df[first], df[~first]]) if len(df) else df
     for rec in df.to_dict("records"):
         g = rec.pop("geometry")
         props = {k: (None if isinstance(v, float) and math.isnan(v) else v) for k, v in rec.items()}
@@ -311,8 +320,10 @@ def compare_flights(db_path: str | Path, flight_from: str | None = None, flight_
             "flight_before": {"flight_id": f_from, "start": starts[f_from]},
             "flight_after": {"flight_id": f_to, "start": starts[f_to]},
             "counts": counts, "not_compared": df.attrs["not_compared"],
-            "note": ("A defect resolved without a recorded repair (suspicious) may be a missed "
-                     "detection or an intermittent fault: confirm it on site before closing it."),
+            "note": ("A defect still present after a recorded repair or replacement "
+                     "(persists_after_repair) is a failed repair: check the work done. A defect "
+                     "resolved without a recorded repair (suspicious) may be a missed detection or "
+                     "an intermittent fault: confirm it on site before closing it."),
             "safety": safety_cautions(), "features": features}
 
 
