@@ -564,7 +564,8 @@ def test_trend_counts_losses_and_plots(site, tmp_path):
     assert list(tr.modules.columns[:3]) == ["flight_id", "start", "module_id"]
     out = tmp_path / "trend"
     paths = H.write_trend(tr, out)
-    assert sorted(p.name for p in paths) == ["counts.png", "flights.csv", "loss.png", "modules.csv"]
+    assert sorted(p.name for p in paths) == ["counts.png", "flights.csv", "loss.png", "modules.csv",
+                                             "temperature.png"]
     for p in paths:
         assert p.stat().st_size > 0
     assert (out / "counts.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"

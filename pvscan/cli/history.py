@@ -129,10 +129,44 @@ def trend_cmd(site_db, out_dir, overwrite, pipeline_path):
     from pvscan.history import site_trend, write_trend
     from pvscan.io.settings import load_pipeline
 
-    cfg = load_pipeline(pipeline_path)["history"]
-    trend = site_trend(site_db, settings=cfg)
+    trend = site_trend(site_db, settings=load_pipeline(pipeline_path))
     paths = write_trend(trend, out_dir, overwrite=overwrite)
     echo(f"{len(trend.flights)} flight(s); wrote {', '.join(p.name for p in paths)} to {out_dir}")
+
+
+@history_group.command("degradation")
+@_DB
+@click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="CSV file to write (one row per module ever anomalous, one column per flight).")
+@click.option("--overwrite", is_flag=True, help="Replace an existing --out file.")
+@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
+              help="Pipeline settings file (its [history] section).")
+@handle_errors
+def degradation_cmd(site_db, out_path, overwrite, pipeline_path):
+    """Normalised delta T flight by flight and its rate of change per year (Theil-Sen) of every
+    module that was ever anomalous."""
+    import math
+
+    from pvscan.history.degradation import module_degradation, write_degradation_csv
+    from pvscan.io.settings import load_pipeline
+
+    if out_path.exists() and not overwrite:  # before any work
+        from pvscan.errors import OutputError
+
+        raise OutputError(f"{out_path}: exists (use --overwrite to replace it)")
+    deg = module_degradation(site_db, settings=load_pipeline(pipeline_path))
+    write_degradation_csv(deg, out_path, overwrite=overwrite)
+    m = deg.modules
+    sloped = m[[not math.isnan(x) for x in m["slope_k_per_year"]]]
+    echo(f"{len(m)} module(s) ever anomalous over {len(deg.flights)} flight(s); "
+         f"{len(sloped)} with a slope (enough flights)")
+    fastest = sloped.sort_values("slope_k_per_year", ascending=False).head(5)
+    for r in fastest.to_dict("records"):
+        if r["slope_k_per_year"] > 0:
+            echo(f"  {r['module_id']}: {r['slope_k_per_year']:+.1f} K/yr "
+                 f"({r['slope_low_k_per_year']:+.1f} to {r['slope_high_k_per_year']:+.1f}), "
+                 f"last {r['delta_t_norm_k_last']:.1f} K, {r['defects']}")
+    echo(f"wrote {out_path}")
 
 
 @history_group.command("maintenance")

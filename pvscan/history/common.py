@@ -44,11 +44,11 @@ class MaintenanceWarning(PvscanWarning):
 
 
 def _settings(settings: Mapping | None) -> Mapping:
-    if settings is not None:
-        return settings
-    from pvscan.io.settings import load_pipeline
+    """The ``[history]`` section over the pipeline file's defaults (a pipeline, a mapping of
+    sections, the section itself, or None)."""
+    from pvscan.io.settings import section
 
-    return load_pipeline()["history"]
+    return section(settings, "history")
 
 
 def _read_json(path: Path) -> Any:

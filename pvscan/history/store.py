@@ -310,6 +310,9 @@ def add_flight(db_path: str | Path, result_dir: str | Path, *, replace: bool = F
         _update_extent(con, "anomalies", list(result.anomalies["geometry"]), now)
         for t in ("flights",):
             con.execute("UPDATE gpkg_contents SET last_change=? WHERE table_name=?", (now, t))
+        from pvscan.history.degradation import refresh_layer
+
+        refresh_layer(con, cfg)
         if progress:
             progress("history add", 2, 3)
     if progress:
