@@ -1,6 +1,7 @@
 # pvscan: two commands do all the set-up on a fresh machine.
 #   make demo   -> creates .venv, installs, simulates the demo flight if needed, runs the pipeline
 #   make test   -> installs the test extras, runs the test suite
+#   make lint   -> ruff check (style, imports, likely bugs) and mypy (types) of pvscan/ and tests/
 #   make wheel-check -> builds a wheel, installs it (not editable) into a fresh venv in a
 #                  temporary folder and inspects a simulated flight from there (CI runs it)
 PYTHON ?= python3
@@ -10,7 +11,7 @@ PVSCAN := $(VENV)/bin/pvscan
 DEMO_FLIGHT := demo_site/flight
 DEMO_OUT    := demo_out
 
-.PHONY: demo test install bench browser-deps clean wheel-check test-floors
+.PHONY: demo test lint install bench browser-deps clean wheel-check test-floors
 
 $(VENV)/.installed: pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -30,6 +31,11 @@ demo: $(VENV)/.installed $(DEMO_FLIGHT)/flight.toml
 
 test: $(VENV)/.installed
 	$(PY) -m pytest -q
+
+# Lint and type check (configured in pyproject.toml: [tool.ruff], [tool.mypy]).
+lint: $(VENV)/.installed
+	$(VENV)/bin/ruff check pvscan tests
+	$(VENV)/bin/mypy pvscan
 
 # A real install: wheel -> fresh venv (no -e) -> `pvscan inspect` run outside the repository.
 wheel-check:

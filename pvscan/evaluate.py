@@ -13,8 +13,8 @@ a dict of scores:
   (bypassed substrings, open modules and strings, PID strings) the relative error of the
   loss summed over the anomaly's modules;
 - temperatures: RMSE and bias of ``t_median_c`` against ``t_true_median_c`` of healthy
-  modules (also of those with no distractor at them); median absolute error of ``delta_t_norm_k`` of defective modules (from the
-  matching anomaly when there is one, else from modules.geojson);
+  modules (also of those with no distractor at them); median absolute error of ``delta_t_norm_k``
+  of defective modules (from the matching anomaly when there is one, else from modules.geojson);
 - co-registration: the layout shift the result reports against the offset the truth drew.
 
 Modules are matched by ``module_id``; when fewer than ``min_id_match_fraction`` of the ids
@@ -88,7 +88,7 @@ def _match(truth_feats, res_feats, epsg: int | None, min_id_fraction: float = 0.
     of split tables can coincide while numbering the columns from the other end);
     otherwise by nearest centroid within ``max_dist_m``.
     """
-    ids = {}
+    ids: dict[str, int] = {}
     for k, f in enumerate(res_feats):
         mid = f.get("properties", {}).get("module_id")
         if mid is not None:
@@ -313,7 +313,7 @@ def evaluate(truth_dir, result_dir, settings=None, *, force: bool = False) -> di
                         "detected_any_class": _f(_ratio(detected, n_true))}
     class_ok = sum(1 for a, b in zip(t_def, p_def) if a and a == b)
     fa_tags: dict[str, int] = {}
-    for i in np.flatnonzero(~t_bad & p_bad):
+    for i in np.flatnonzero(~t_bad & p_bad).tolist():
         for tag in tp[i].get("distractors") or ["none"]:
             fa_tags[tag] = fa_tags.get(tag, 0) + 1
 
@@ -329,7 +329,7 @@ def evaluate(truth_dir, result_dir, settings=None, *, force: bool = False) -> di
         if t_def[i] in LOSS_GROUP_KINDS and p.get("defect_group") is not None:
             groups.setdefault(int(p["defect_group"]), []).append(i)
     per_anomaly = []
-    for g, members in sorted(groups.items()):
+    for _group, members in sorted(groups.items()):
         tl = float(t_loss[members].sum())
         pl = float(p_loss_z[members].sum())
         # found and named right: every module of the anomaly given the true class
@@ -377,7 +377,7 @@ def evaluate(truth_dir, result_dir, settings=None, *, force: bool = False) -> di
 
     dn_true = np.array([_num(p.get("delta_t_norm_k")) for p in tp])
     dn_pred = np.full(n, math.nan)
-    for i in np.flatnonzero(t_bad & matched):
+    for i in np.flatnonzero(t_bad & matched).tolist():
         cand = anom_by_module.get(res_id[i] or "", [])
         same = [a for a in cand if _defect(a.get("defect")) == t_def[i]] or cand
         if same:
@@ -443,7 +443,8 @@ def format_report(scores: dict) -> str:
              f"defective modules  true {scores['n_defective_true']}  predicted {scores['n_defective_predicted']}",
              f"precision {fmt(m['precision'], True)}   recall {fmt(m['recall'], True)}   F1 {fmt(m['f1'])}",
              f"false alarms per 1,000 healthy modules  {fmt(m['false_alarms_per_1000_healthy'])}"
-             + (f"  (at distractors: {', '.join(f'{k} {v}' for k, v in sorted(m['false_alarms_by_distractor'].items()))})"
+             + ("  (at distractors: "
+                + ", ".join(f"{k} {v}" for k, v in sorted(m["false_alarms_by_distractor"].items())) + ")"
                 if m.get("false_alarms_by_distractor") else ""), "",
              f"{'class':<26}{'true':>6}{'pred':>6}{'right':>7}{'recall':>9}{'precision':>11}"]
     for c, v in scores["per_class"].items():

@@ -14,6 +14,7 @@ import logging
 import re
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 from pvscan.errors import FleetError, PvscanError
 
@@ -86,8 +87,8 @@ def _check_result_folders(manifests: list[str], out_dir: Path) -> None:
 def _inspect_one(manifest: str, out_dir: str, pipeline_path: str | None, overwrite: bool,
                  report: bool) -> FlightOutcome:
     from pvscan.io.manifest import load_flight
-    from pvscan.pipeline import inspect_flight
     from pvscan.io.settings import load_pipeline
+    from pvscan.pipeline import inspect_flight
 
     try:
         flight = load_flight(manifest)
@@ -159,7 +160,7 @@ def inspect_fleet(manifests, out_dir, *, pipeline=None, scheduler: str = "proces
         with cluster(scheduler) as client:
             outcomes = list(client.gather(client.compute(tasks)))
     elif scheduler in ("synchronous", "threads", "processes"):
-        kw = {"scheduler": scheduler}
+        kw: dict[str, Any] = {"scheduler": scheduler}
         if workers and scheduler != "synchronous":
             kw["num_workers"] = int(workers)
         outcomes = list(dask.compute(*tasks, **kw))

@@ -71,7 +71,7 @@ def nanmean(a: ArrayLike, axis: int | None = None) -> Any:
     """``numpy.nanmean`` without the warning on all-NaN slices."""
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        return np.nanmean(a, axis=axis)
+        return np.nanmean(np.asarray(a), axis=axis)
 
 
 def nanmax(a: ArrayLike, axis: int | None = None) -> Any:

@@ -26,7 +26,7 @@ import logging
 import multiprocessing
 import os
 from collections.abc import Callable, Iterator, Sequence
-from concurrent.futures import FIRST_COMPLETED, ProcessPoolExecutor, ThreadPoolExecutor, wait
+from concurrent.futures import FIRST_COMPLETED, Executor, ProcessPoolExecutor, ThreadPoolExecutor, wait
 from typing import Any
 
 from pvscan.errors import PvscanError
@@ -132,6 +132,7 @@ def run_tasks(fn: Callable, args: Sequence[tuple], scheduler: Any = None, *, wor
         return
     if scheduler in ("threads", "processes"):
         n = int(workers or os.cpu_count() or 1)
+        pool: Executor
         if scheduler == "threads":
             pool = ThreadPoolExecutor(n, thread_name_prefix="pvscan-task")
         else:  # spawned, not forked: GDAL's and numpy's threads do not survive a fork

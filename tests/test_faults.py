@@ -18,9 +18,9 @@ from pathlib import Path
 
 import pytest
 
+from pvscan.errors import OutputError
 from pvscan.io.locking import try_lock
 from pvscan.io.outputs import clean_stale_staging, staging_dir
-from pvscan.errors import OutputError
 from pvscan.simulate import simulate_flight
 
 SEED = int(os.environ.get("PVSCAN_TEST_SEED", "20260614"))

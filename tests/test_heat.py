@@ -12,8 +12,15 @@ import pvlib
 import pytest
 
 from pvscan.io.settings import load_pipeline
-from pvscan.physics.heat import (U0_FAIMAN_2008, U1_FAIMAN_2008, Faiman, faiman_temperature, faiman_u,
-                                 normalise_delta_t, open_module_rise)
+from pvscan.physics.heat import (
+    U0_FAIMAN_2008,
+    U1_FAIMAN_2008,
+    Faiman,
+    faiman_temperature,
+    faiman_u,
+    normalise_delta_t,
+    open_module_rise,
+)
 
 ETA = 410.0 / (1000.0 * 1.038 * 2.094)
 U0, U1 = 25.0, 6.84   # Faiman 2008's fit, also pvlib's defaults

@@ -384,8 +384,9 @@ def test_correct_statistics_table_and_arrays():
 
 
 def test_flight_radiometry_wrapper():
-    import pandas as pd
     from types import SimpleNamespace as NS
+
+    import pandas as pd
 
     flight = NS(module=NS(emissivity=0.85), ortho=NS(emissivity=1.0, reflected_c=20.0),
                 flight=NS(altitude_m=None), layout=NS(tilt_deg=25.0))

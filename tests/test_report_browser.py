@@ -20,7 +20,7 @@ import numpy as np
 import pytest
 
 sys.path.insert(0, str(Path(__file__).parent))
-from test_report import PLANTED, build_result  # noqa: E402
+from test_report import PLANTED, build_result
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser") or (
     "/usr/bin/chromium" if Path("/usr/bin/chromium").exists() else None)

@@ -91,7 +91,7 @@ def test_level_stats_shifts_every_temperature_of_the_stretch(rng):
     m, t = _rows(rng)
     idx = _sel(m, 2, 9, 17)
     t[idx] += 1.8
-    n, A, C, B = len(m), 4, 3, 3
+    n, A, C = len(m), 4, 3
     cell = np.repeat(t[:, None, None], A * C, axis=1).reshape(n, A, C).astype(np.float32)
     table = pd.DataFrame({"t_mean_c": t, "t_median_c": t, "t_p95_c": t + 0.5, "t_max_c": t + 1, "t_min_c": t - 1,
                           "t_std_k": np.full(n, 0.2), "valid_fraction": np.ones(n)})

@@ -94,9 +94,9 @@ def _same(res_a, res_b):
 
 
 def test_inspect_on_a_local_cluster_equals_a_single_process(local_cluster, flights, tmp_path):
-    from pvscan.measure.zonal import _plan
     from pvscan.io.manifest import load_flight
     from pvscan.io.ortho import open_orthos
+    from pvscan.measure.zonal import _plan
     from pvscan.pipeline import inspect_flight
 
     settings = _small_blocks()

@@ -35,6 +35,7 @@ import logging
 import math
 import warnings
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -263,7 +264,6 @@ def _read_geojson(path: Path):
     import json
 
     import geopandas as gpd
-    from shapely.geometry import shape
 
     try:
         with open(path, encoding="utf-8") as fh:
@@ -275,7 +275,7 @@ def _read_geojson(path: Path):
     if not isinstance(doc, dict) or doc.get("type") != "FeatureCollection" or not isinstance(
             doc.get("features"), list):
         raise LayoutError(f"{path}: cannot read the layout: not a GeoJSON FeatureCollection")
-    crs = "EPSG:4326"  # RFC 7946: GeoJSON is WGS84 lon/lat
+    crs: Any = "EPSG:4326"  # RFC 7946: GeoJSON is WGS84 lon/lat
     legacy = doc.get("crs")
     if isinstance(legacy, dict):
         name = (legacy.get("properties") or {}).get("name")
@@ -618,17 +618,17 @@ def _group_tables(polys, tol: float) -> np.ndarray:
     return rank[np.searchsorted(uniq, labels)]
 
 
-def _rank_positions(values: np.ndarray, tol: float, groups: np.ndarray | None = None) -> np.ndarray:
+def _rank_positions(values: np.ndarray, tol: float | np.ndarray, groups: np.ndarray | None = None) -> np.ndarray:
     """1-based rank of clustered 1-D positions within each group (values closer than tol
     share a rank). ``tol`` may be a scalar or one value per position (its group's)."""
     values = np.asarray(values, float)
     groups = np.zeros(len(values), np.int64) if groups is None else np.asarray(groups)
-    tol = np.broadcast_to(np.asarray(tol, float), values.shape)
+    tols = np.broadcast_to(np.asarray(tol, float), values.shape)
     order = np.lexsort((values, groups))  # stable: ties keep their order
     v, g = values[order], groups[order]
     step = np.zeros(len(v), np.int64)
     if len(v) > 1:
-        step[1:] = (np.diff(v) > tol[order][1:]) & (g[1:] == g[:-1])
+        step[1:] = (np.diff(v) > tols[order][1:]) & (g[1:] == g[:-1])
     cs = np.cumsum(step)
     start = np.ones(len(v), bool)
     start[1:] = g[1:] != g[:-1]
@@ -785,7 +785,7 @@ def build_modules(gdf, spec, module_spec=None, path: Path | str = "layout"):
                      | ~(shapely.area(geoms[ok_g]) > 0))
     geom_err: LayoutError | None = None
     first_geom = n
-    for k in np.flatnonzero(problem):
+    for k in np.flatnonzero(problem).tolist():
         if k > first_pre:
             break
         try:
@@ -807,7 +807,7 @@ def build_modules(gdf, spec, module_spec=None, path: Path | str = "layout"):
     l_frames, l_lower, l_ok = _frames_from_polygons(polys[li], spec.azimuth_deg)
     for j in np.flatnonzero(~l_ok):
         errors.setdefault(int(li[j]), "degenerate footprint")
-    k = min(errors) if errors else n
+    k = min(errors) if errors else int(n)
     if geom_err is not None and first_geom <= k:
         raise geom_err
     if errors:
@@ -885,7 +885,7 @@ def build_modules(gdf, spec, module_spec=None, path: Path | str = "layout"):
     out = gpd.GeoDataFrame(df, geometry="geometry", crs=gdf.crs)
     if module_spec is not None:
         _check_sizes(out, module_spec, path)
-    report = {"file": str(path), "features": int(n), "tables": int(len(ti)), "modules": int(len(out)),
+    report: dict[str, Any] = {"file": str(path), "features": int(n), "tables": int(len(ti)), "modules": int(len(out)),
               "fields": {prop: str(src) for prop, src in sorted(fields.items())}}
     report.update(_strings_report(out, fields, path))
     for note in field_notes:

@@ -18,7 +18,7 @@ from pathlib import Path
 try:  # POSIX
     import fcntl
 except ImportError:  # pragma: no cover - Windows
-    fcntl = None
+    fcntl = None  # type: ignore[assignment]
 
 __all__ = ["HeldLock", "try_lock", "exclusive_lock"]
 
@@ -38,7 +38,7 @@ class HeldLock:
                 os.close(self._fd)  # closing the descriptor drops the flock
             self._fd = None
 
-    def __enter__(self) -> "HeldLock":
+    def __enter__(self) -> HeldLock:
         return self
 
     def __exit__(self, *exc) -> None:

@@ -16,7 +16,7 @@ from __future__ import annotations
 
 import difflib
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 from pvscan.errors import ManifestError
@@ -334,7 +334,7 @@ def flight_from_dict(data: dict, path: str | Path, check_files: bool = True) -> 
     orthos = tuple(
         _resolve(root, o, f"flight.orthos[{i}]", where, check_files) for i, o in enumerate(f["orthos"])
     )
-    flight_id = f["id"] if "id" in f else start.astimezone(timezone.utc).strftime("%Y%m%dT%H%MZ")
+    flight_id = f["id"] if "id" in f else start.astimezone(UTC).strftime("%Y%m%dT%H%MZ")
     info = FlightInfo(
         id=flight_id,
         orthos=orthos,

@@ -251,7 +251,7 @@ def _check_crs(path: Path, crs: CRS | None) -> None:
         raise OrthoError(f"{path}: CRS {crs.to_string()} is not projected; a projected CRS in metres is needed")
     try:
         unit, factor = crs.linear_units_factor
-    except Exception:  # noqa: BLE001 - rasterio raises its own CRSError family here
+    except Exception:
         raise OrthoError(f"{path}: CRS {crs.to_string()} has no linear unit") from None
     if abs(float(factor) - 1.0) > 1e-9:
         raise OrthoError(f"{path}: CRS {crs.to_string()} is in {unit}, not metres")
@@ -299,7 +299,7 @@ def _open_one(path: Path, index: int, spec: Any, zonal: Mapping):
             height=ds.height,
             bounds=ds.bounds,
             gsd_m=0.5 * (abs(t.a) + abs(t.e)),
-            block_shape=tuple(int(b) for b in ds.block_shapes[0]),
+            block_shape=(int(ds.block_shapes[0][0]), int(ds.block_shapes[0][1])),
             dtype=str(ds.dtypes[0]),
             nodata=None if nodata is None else float(nodata),
             scale=scale,
@@ -343,7 +343,7 @@ class OrthoSet:
         )
 
     # context manager -------------------------------------------------------------
-    def __enter__(self) -> "OrthoSet":
+    def __enter__(self) -> OrthoSet:
         return self
 
     def __exit__(self, *exc) -> None:

@@ -9,7 +9,7 @@ falls back to the top-level folders themselves.
 from __future__ import annotations
 
 import json
-from functools import lru_cache
+from functools import cache
 from importlib import resources
 from importlib.resources.abc import Traversable
 from pathlib import Path
@@ -37,7 +37,7 @@ SCHEMAS_DIR: Traversable = _data_dir("pvscan.schemas", "schemas")
 DEFAULT_PIPELINE: Traversable = PIPELINES_DIR / "post_flight.toml"
 
 
-@lru_cache(maxsize=None)
+@cache
 def load_schema(name: str) -> dict:
     """Load ``schemas/<name>`` (e.g. ``"flight.schema.json"`` or ``"pipeline/zonal.schema.json"``)."""
     node = SCHEMAS_DIR

@@ -10,12 +10,20 @@ from __future__ import annotations
 
 from collections.abc import Mapping
 from functools import lru_cache
+from importlib.resources.abc import Traversable
 from pathlib import Path
 from types import MappingProxyType
 from typing import Any
 
 from pvscan.errors import PipelineError
-from pvscan.io.resources import DEFAULT_PIPELINE, SCHEMAS_DIR, describe_error, load_schema, read_toml_file, schema_errors
+from pvscan.io.resources import (
+    DEFAULT_PIPELINE,
+    SCHEMAS_DIR,
+    describe_error,
+    load_schema,
+    read_toml_file,
+    schema_errors,
+)
 
 __all__ = ["Pipeline", "load_pipeline", "section", "SECTIONS"]
 
@@ -57,7 +65,7 @@ def _thaw(obj):
 class Pipeline(Mapping):
     """Read-only nested mapping of pipeline settings: ``pipeline["zonal"]["edge_margin"]``."""
 
-    def __init__(self, data: Mapping, path: Path | None = None):
+    def __init__(self, data: Mapping, path: Path | Traversable | None = None):
         self._data = _freeze(data)
         self.path = path
 
@@ -79,18 +87,18 @@ class Pipeline(Mapping):
     def to_dict(self) -> dict:
         return _thaw(self._data)
 
-    def replace(self, **sections: Mapping) -> "Pipeline":
+    def replace(self, **sections: Mapping) -> Pipeline:
         """A copy with some sections (partly) overridden, e.g. ``p.replace(zonal={"edge_margin": 0})``."""
         data = _merge(self.to_dict(), sections)
         validate_pipeline(data, self.path)
         return Pipeline(data, self.path)
 
 
-def _read_toml(path: Path) -> dict:
+def _read_toml(path: Path | Traversable) -> dict:
     return read_toml_file(path, PipelineError, "pipeline file")
 
 
-def validate_pipeline(data: Mapping, path: Path | None = None) -> None:
+def validate_pipeline(data: Mapping, path: Path | Traversable | None = None) -> None:
     where = str(path) if path else "pipeline"
     for section in data:
         if section not in SECTIONS:

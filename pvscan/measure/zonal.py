@@ -319,7 +319,8 @@ def _measure(data, transform, fr, grid, margins, quantum_k, index=None) -> _Bloc
     if not shapes:
         return empty()
     with WARNINGS_LOCK:  # rasterio switches warning filters inside rasterize
-        labels = rasterize(shapes, out_shape=(H, W), transform=transform, fill=0, dtype="uint16" if m < 65535 else "int32")
+        labels = rasterize(shapes, out_shape=(H, W), transform=transform, fill=0,
+                           dtype="uint16" if m < 65535 else "int32")
     flat = labels.ravel()
     idx = np.flatnonzero(flat != 0)
     if idx.size == 0:
