@@ -31,12 +31,13 @@ def test_replaced_module_whose_hot_spot_stays_is_a_failed_repair(tmp_path):
                 "array": {"table_rows": 2, "tables_per_row": 2, "rows": 2, "cols": 10},
                 "flight": {"start": "2026-06-14T10:40:00+02:00"},
                 "defects": {"hot_cell": 3, "bypassed_substring": 1, "hot_cell_rise_k": [14.0, 20.0]}}
-    sim = simulate_flight(scenario, tmp_path / "june", seed=SEED)
+    simulate_flight(scenario, tmp_path / "june", seed=SEED)
     # the next flight of the same site, two months later: the same plant as flown, a new start
     shutil.copytree(tmp_path / "june", tmp_path / "august")
     toml = (tmp_path / "august" / "flight.toml").read_text()
     assert 'start = "2026-06-14T10:40:00+02:00"' in toml
-    toml = toml.replace('start = "2026-06-14T', 'start = "2026-08-14T').replace('end = "2026-06-14T', 'end = "2026-08-14T')
+    toml = toml.replace('start = "2026-06-14T', 'start = "2026-08-14T')
+    toml = toml.replace('end = "2026-06-14T', 'end = "2026-08-14T')
     (tmp_path / "august" / "flight.toml").write_text(toml)
     results = []
     for name in ("june", "august"):

@@ -12,13 +12,12 @@ import numpy as np
 import pytest
 from click.testing import CliRunner
 from matplotlib.dates import date2num
+from test_history import SPRING, SUMMER, write_result
 
 from pvscan import history as H
 from pvscan.cli.main import cli
 from pvscan.history.degradation import module_degradation
 from pvscan.history.trend import trend_figures
-
-from test_history import BEFORE, SPRING, SUMMER, write_result
 
 #: Five flights over two years (local time +02:00), the fourth one an odd flight.
 STARTS = [datetime(2025, 4, 10, 10, 30), datetime(2025, 9, 2, 11, 0), datetime(2026, 3, 20, 10, 45),

@@ -49,14 +49,17 @@ References
 """
 from __future__ import annotations
 
-from pvscan.history.common import (CHANGE_CLASSES, MAINTENANCE_ACTIONS, SCHEMA_VERSION, LayoutChangeWarning,
-                                   MaintenanceWarning)
+from pvscan.history.common import (
+                                   CHANGE_CLASSES,
+                                   MAINTENANCE_ACTIONS,
+                                   SCHEMA_VERSION,
+                                   LayoutChangeWarning,
+                                   MaintenanceWarning,
+)
 from pvscan.history.compare import classify_change, compare, compare_flights, module_states, write_changes
-from pvscan.history.maintenance import (MaintenanceResult, import_maintenance, load_maintenance,
-                                        read_maintenance_csv)
+from pvscan.history.maintenance import MaintenanceResult, import_maintenance, load_maintenance, read_maintenance_csv
 from pvscan.history.results import FlightResult, content_hash, read_result_dir
-from pvscan.history.store import (AddResult, LayoutDiff, add_flight, layout_diff, list_flights,
-                                  load_flight_results)
+from pvscan.history.store import AddResult, LayoutDiff, add_flight, layout_diff, list_flights, load_flight_results
 from pvscan.history.trend import Trend, normalised_rise, site_trend, write_trend
 
 __all__ = [

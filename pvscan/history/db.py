@@ -21,7 +21,14 @@ import shapely
 
 from pvscan import __version__
 from pvscan.errors import HistoryError
-from pvscan.history.common import APPLICATION, GPKG_APPLICATION_ID, GPKG_USER_VERSION, SCHEMA_VERSION, _BUSY_TIMEOUT_S, _LOCK_RETRIES
+from pvscan.history.common import (
+    _BUSY_TIMEOUT_S,
+    _LOCK_RETRIES,
+    APPLICATION,
+    GPKG_APPLICATION_ID,
+    GPKG_USER_VERSION,
+    SCHEMA_VERSION,
+)
 
 log = logging.getLogger(__name__)
 

@@ -191,7 +191,8 @@ def refresh_layer(con: sqlite3.Connection, cfg: Mapping) -> None:
     con.execute("INSERT OR IGNORE INTO gpkg_geometry_columns VALUES ('module_degradation', 'geom', 'POLYGON', "
                 "4326, 0, 0)")
     con.execute("DELETE FROM module_degradation")
-    per = {m: [[f, None if not np.isfinite(v) else round(float(v), 4)] for f, v in zip(g["flight_id"], g["delta_t_norm_k"])]
+    per = {m: [[f, None if not np.isfinite(v) else round(float(v), 4)]
+               for f, v in zip(g["flight_id"], g["delta_t_norm_k"])]
            for m, g in deg.series.groupby("module_id", sort=False)}
     recs = []
     for r, blob in zip(deg.modules.to_dict("records"), _gpkg_blobs(deg.modules["geometry"])):

@@ -2,8 +2,8 @@
 from __future__ import annotations
 
 import csv
-import io
 import hashlib
+import io
 import json
 from collections.abc import Mapping
 from dataclasses import dataclass
@@ -14,7 +14,7 @@ import pandas as pd
 
 from pvscan.errors import HistoryError
 from pvscan.history.common import MAINTENANCE_ACTIONS
-from pvscan.history.db import _Session, _now
+from pvscan.history.db import _now, _Session
 
 # --------------------------------------------------------------------------------------------
 # maintenance
@@ -108,7 +108,7 @@ def read_maintenance_csv(path: str | Path) -> pd.DataFrame:
                                f"found {', '.join(repr(f) for f in raw_fields) or 'no header'})")
         rows = []
         for line, values in enumerate(reader, start=2):
-            def cell(name):
+            def cell(name, values=values):
                 k = col.get(name)
                 return values[k].strip() if k is not None and k < len(values) else ""
             if not any(cell(c) for c in ("date", "module_id", "action")):

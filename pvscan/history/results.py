@@ -13,7 +13,16 @@ import pandas as pd
 import shapely
 
 from pvscan.errors import HistoryError
-from pvscan.history.common import _as_objects, _features, _geometries, _num, _parse_time, _pick, _read_json, _worse_severity
+from pvscan.history.common import (
+    _as_objects,
+    _features,
+    _geometries,
+    _num,
+    _parse_time,
+    _pick,
+    _read_json,
+    _worse_severity,
+)
 
 # --------------------------------------------------------------------------------------------
 # reading a result folder

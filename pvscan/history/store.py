@@ -17,8 +17,8 @@ import shapely
 
 from pvscan.errors import HistoryError
 from pvscan.history.common import LayoutChangeWarning, _as_objects, _pick, _settings
-from pvscan.history.db import _Session, _create_database, _create_schema, _gpkg_blobs, _gpkg_geoms, _now
-from pvscan.history.results import ANOMALY_COLUMNS, FlightResult, MODULE_COLUMNS, content_hash, read_result_dir
+from pvscan.history.db import _create_database, _create_schema, _gpkg_blobs, _gpkg_geoms, _now, _Session
+from pvscan.history.results import ANOMALY_COLUMNS, MODULE_COLUMNS, FlightResult, content_hash, read_result_dir
 
 log = logging.getLogger(__name__)
 
