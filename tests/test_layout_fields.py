@@ -130,3 +130,58 @@ def test_whole_numbers_stored_as_text_or_floats_are_read(tmp_path):
     m = _read(path)
     assert m["string_index"].tolist() == [k % 6 + 1 for k in range(12)]
     assert m["module_id"].tolist() == [str(k + 1) for k in range(12)]
+
+
+def test_combiner_and_inverter_ids_are_carried_through_a_shapefile(tmp_path):
+    props, geoms = _modules()
+    props["combiner_id"] = [f"CB{k // 4 + 1}" for k in range(12)]
+    props["inverter_id"] = [7] * 6 + [8] * 6  # numbers, as a GIS often stores them
+    path = _write(tmp_path, props, geoms)
+    written = list(gpd.read_file(path).columns)
+    assert "combiner_i" in written and "inverter_i" in written  # cut at 10 characters
+    m = _read(path)
+    assert m["combiner_id"].tolist() == props["combiner_id"]
+    assert m["inverter_id"].tolist() == ["7"] * 6 + ["8"] * 6
+    assert m.attrs["layout"]["fields"]["combiner_id"] == "combiner_i"
+    cols = list(m.columns)
+    assert cols[cols.index("string_id"):cols.index("table_row")] == [
+        "string_id", "string_index", "combiner_id", "inverter_id"]
+
+
+@pytest.mark.parametrize("combiner, inverter", [("combiner", "inverter"), ("Combiner Box", "INV_ID"),
+                                                ("cb_id", "inv"), ("combiner_box_id", "inverter_no")])
+def test_combiner_and_inverter_variants_are_read(tmp_path, combiner, inverter):
+    props, geoms = _modules()
+    props[combiner] = ["CB-A"] * 12
+    props[inverter] = ["INV-1"] * 12
+    path = tmp_path / "layout.geojson"
+    path.write_text(gpd.GeoDataFrame(props, geometry=geoms, crs=UTM32N).to_crs("EPSG:4326").to_json())
+    m = _read(path)
+    assert set(m["combiner_id"]) == {"CB-A"} and set(m["inverter_id"]) == {"INV-1"}
+    assert m.attrs["layout"]["fields"]["combiner_id"] == combiner
+    assert m.attrs["layout"]["fields"]["inverter_id"] == inverter
+
+
+def test_without_combiner_or_inverter_the_columns_are_none(tmp_path):
+    props, geoms = _modules()
+    props["combiner_id"] = ["CB1"] * 6 + [None] * 6  # given for half the modules only
+    path = tmp_path / "layout.geojson"
+    path.write_text(gpd.GeoDataFrame(props, geometry=geoms, crs=UTM32N).to_crs("EPSG:4326").to_json())
+    m = _read(path)
+    # missing as pandas writes it in a text column (None, or NaN under pandas 3's string dtype)
+    assert m["combiner_id"].tolist()[:6] == ["CB1"] * 6 and m["combiner_id"].isna().tolist() == [False] * 6 + [True] * 6
+    assert m["inverter_id"].isna().all()
+
+
+def test_a_table_gives_its_combiner_and_inverter_to_each_of_its_modules(tmp_path):
+    tables = [box(500000, 5000000 + k * 10, 500000 + 12 * (W + 0.02), 5000000 + k * 10 + 2 * L + 0.02)
+              for k in range(2)]
+    props = {"table_id": ["A", "B"], "rows": [2, 2], "cols": [12, 12], "combiner_id": ["CB1", None],
+             "inverter_id": ["INV1", "INV1"]}
+    path = _write(tmp_path, props, tables, "tables.gpkg")
+    m = _read(path)
+    assert len(m) == 48
+    a = m["table_id"] == "A"
+    assert m.loc[a, "combiner_id"].tolist() == ["CB1"] * 24
+    assert m.loc[~a, "combiner_id"].isna().all()
+    assert set(m["inverter_id"]) == {"INV1"}

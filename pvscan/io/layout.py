@@ -58,7 +58,13 @@ __all__ = [
 log = logging.getLogger(__name__)
 
 FRAME_COLUMNS = ["fx0", "fy0", "fux", "fuy", "fvx", "fvy"]
-MODULE_COLUMNS = ["module_id", "table_id", "string_id", "string_index", "table_row", "table_col"]
+#: Columns of the modules frame before the geometry, in this order. ``combiner_id`` and
+#: ``inverter_id`` (the combiner box and the inverter a module's string feeds) are optional
+#: layout properties: None when the layout does not give them.
+MODULE_COLUMNS = ["module_id", "table_id", "string_id", "string_index", "combiner_id", "inverter_id",
+                  "table_row", "table_col"]
+#: Optional electrical properties carried through as text ids (a table's value for each of its modules).
+ELECTRICAL_IDS = ("combiner_id", "inverter_id")
 
 
 class LayoutWarning(PvscanWarning):
@@ -362,6 +368,11 @@ FIELD_NAMES = {
     "string_index": ("string_index", "string_idx", "stringindex", "stringidx", "str_index", "str_idx",
                      "str_ind", "string_pos", "string_position", "str_pos", "pos_in_string",
                      "position_in_string", "string_order", "string_seq"),
+    "combiner_id": ("combiner_id", "combinerid", "combiner", "combiner_box", "combinerbox", "combiner_box_id",
+                    "cb_id", "cbid", "cb", "cb_no", "cb_nr", "cb_name", "combiner_no", "combiner_nr",
+                    "combiner_name", "scb", "scb_id"),
+    "inverter_id": ("inverter_id", "inverterid", "inverter", "inv_id", "invid", "inv", "inv_no", "inv_nr",
+                    "inv_name", "inverter_no", "inverter_nr", "inverter_name"),
     "table_row": ("table_row", "tablerow", "tbl_row", "row", "row_no"),
     "table_col": ("table_col", "tablecol", "tbl_col", "col", "column", "col_no", "table_column", "position"),
     "rows": ("rows", "n_rows", "nrows", "num_rows"),
@@ -727,7 +738,8 @@ def build_modules(gdf, spec, module_spec=None, path: Path | str = "layout"):
     Returns
     -------
     geopandas.GeoDataFrame
-        Columns module_id, table_id, string_id, string_index, table_row, table_col, geometry,
+        Columns module_id, table_id, string_id, string_index, combiner_id, inverter_id
+        (text ids, None when the layout does not give them), table_row, table_col, geometry,
         fx0, fy0, fux, fuy, fvx, fvy, lower_edge, source_feature.
 
     Raises
@@ -849,6 +861,8 @@ def build_modules(gdf, spec, module_spec=None, path: Path | str = "layout"):
         "table_id": column(t_table, _strs(tid_v[li], tid_h[li])),
         "string_id": column(table_sid[tt], _strs(sid_v[li], sid_h[li])),
         "string_index": column(np.full(len(tt), None, dtype=object), ints("string_index", sidx_v[li], sidx_h[li], li)),
+        **{prop: column(_strs(vals[ti], have[ti])[tt], _strs(vals[li], have[li]))
+           for prop, (vals, have) in ((p, _column(gdf, p)) for p in ELECTRICAL_IDS)},
         "table_row": column(split["row"].astype(object), ints("table_row", trow_v[li], trow_h[li], li)),
         "table_col": column(split["col"].astype(object), ints("table_col", tcol_v[li], tcol_h[li], li)),
     })
@@ -880,7 +894,7 @@ def build_modules(gdf, spec, module_spec=None, path: Path | str = "layout"):
     df["string_index"] = pd.array(df["string_index"].to_numpy(dtype=object), dtype="Int64")
     df["table_row"] = df["table_row"].astype(int)
     df["table_col"] = df["table_col"].astype(int)
-    df = df[["module_id", "table_id", "string_id", "string_index", "table_row", "table_col"]].assign(
+    df = df[MODULE_COLUMNS].assign(
         geometry=geometry, **{c: df[c] for c in FRAME_COLUMNS + ["lower_edge", "source_feature"]})
     out = gpd.GeoDataFrame(df, geometry="geometry", crs=gdf.crs)
     if module_spec is not None:
