@@ -213,8 +213,10 @@ def test_every_change_class_and_maintenance(site):
     assert p["T01-R1-C05"]["maintenance"] == "replace"
     assert p["T01-R1-C06"]["maintenance"] is None
     assert p["T01-R2-C01"]["table_id"] == "T01"
-    assert fc["counts"] == {"new": 1, "persisting": 5, "worsened": 2, "improved": 1, "resolved": 4,
-                            "repaired": 2, "suspicious": 2}
+    assert fc["counts"] == {"persists_after_repair": 0, "new": 1, "persisting": 5, "worsened": 2, "improved": 1,
+                            "resolved": 4, "repaired": 2, "suspicious": 2}
+    assert p["T01-R1-C05"]["maintenance_events"] == [{"date": "2026-05-20", "action": "replace",
+                                                      "note": "module swapped, same type"}]
     # the output follows its schema (JSON Schema 2020-12) and RFC 7946 (ring orientation,
     # lon/lat ranges, no crs member), as checked by the outputs stage's validator
     assert schema_errors(fc, load_schema("changes.schema.json")) == []
@@ -466,10 +468,62 @@ def test_maintenance_csv_errors_name_the_line(tmp_path, site):
     bad.write_text("when,module_id,action\n")
     with pytest.raises(HistoryError, match="missing column date"):
         H.import_maintenance(site["db"], bad)
-    ok = tmp_path / "ok.csv"
-    ok.write_text("date,module_id,action,note\n2026-05-01,T09-R9-C99,replace,\n")
-    with pytest.warns(H.MaintenanceWarning, match="T09-R9-C99"):
-        H.import_maintenance(site["db"], ok)
+    unknown = tmp_path / "unknown.csv"
+    unknown.write_text("date,module_id,action,note\n2026-05-01,T01-R1-C01,replace,\n2026-05-01,T09-R9-C99,replace,\n")
+    before = sha(site["db"])
+    with pytest.raises(HistoryError, match=r"unknown.csv: line 3: module_id 'T09-R9-C99' is not in the site layout"):
+        H.import_maintenance(site["db"], unknown)
+    assert sha(site["db"]) == before  # nothing imported
+
+
+def test_maintenance_csv_as_spreadsheets_write_it(tmp_path, site):
+    """';' separators (spreadsheets with a decimal comma), capitalised headers with spaces, a
+    byte-order mark and actions in capitals are read as the plain form."""
+    H.add_flight(site["db"], site["a"])
+    semi = tmp_path / "semi.csv"
+    semi.write_bytes("\ufeffDate;Module ID;Action;Note\n2026-05-20;T01-R1-C05;Replace;swapped, same type\n"
+                     "2026-06-02;T02-R2-C02;CLEAN;\n".encode("utf-8"))
+    ev = H.read_maintenance_csv(semi)
+    assert ev[["date", "module_id", "action", "note"]].values.tolist() == [
+        ["2026-05-20", "T01-R1-C05", "replace", "swapped, same type"], ["2026-06-02", "T02-R2-C02", "clean", ""]]
+    tabbed = tmp_path / "tab.csv"
+    tabbed.write_text("DATE\tMODULE_ID\tACTION\n2026-05-20\tT01-R1-C05\treplace\n")
+    assert H.read_maintenance_csv(tabbed)["module_id"].tolist() == ["T01-R1-C05"]
+    res = H.import_maintenance(site["db"], semi)
+    assert (res.n_read, res.n_added) == (2, 2)
+    plain = tmp_path / "plain.csv"
+    plain.write_text("date,module_id,action,note\n2026-05-20,T01-R1-C05,replace,\"swapped, same type\"\n")
+    assert H.import_maintenance(site["db"], plain).n_added == 0  # the same event, already stored
+
+
+def test_repair_that_did_not_help_is_persists_after_repair(site, tmp_path):
+    """A hot spot recorded as replaced (and one as repaired) between the flights and still
+    there in the later flight is a failed repair, listed first; a cleaning does not explain
+    a hot cell, so that one stays an ordinary change."""
+    H.add_flight(site["db"], site["a"])
+    H.add_flight(site["db"], site["b"])
+    ev = tmp_path / "ev.csv"
+    ev.write_text("date,module_id,action,note\n2026-05-20,T01-R1-C01,replace,new module fitted\n"
+                  "2026-05-21,T01-R1-C02,repair,connector redone\n2026-05-21,T02-R2-C01,clean,washed\n"
+                  "2026-01-01,T01-R1-C04,replace,before both flights\n")
+    H.import_maintenance(site["db"], ev)
+    fc = H.compare_flights(site["db"])
+    p = props_by_module(fc)
+    assert p["T01-R1-C01"]["change"] == "persists_after_repair"
+    assert p["T01-R1-C01"]["maintenance_events"] == [{"date": "2026-05-20", "action": "replace",
+                                                      "note": "new module fitted"}]
+    assert p["T01-R1-C02"]["change"] == "persists_after_repair"  # and it got worse
+    assert p["T02-R2-C01"]["change"] == "persisting"  # cleaning does not fix a hot cell
+    assert p["T01-R1-C04"]["change"] == "improved"  # the replacement was before both flights
+    assert fc["counts"]["persists_after_repair"] == 2
+    assert [f["properties"]["change"] for f in fc["features"][:2]] == ["persists_after_repair"] * 2
+    assert schema_errors(fc, load_schema("changes.schema.json")) == []
+    r = run(["history", "changes", site["db"], "--out", tmp_path / "c.geojson"])
+    assert r.exit_code == 0, r.output
+    lines = r.stdout.splitlines()
+    assert lines[0].split(": ", 1)[1].startswith("2 persists after repair, ")
+    assert "failed repairs" in lines[1] and lines[2].strip().startswith("T01-R1-C01: hot_cell -> hot_cell")
+    assert "2026-05-20 replace (new module fitted)" in lines[2]
 
 
 def test_normalised_rise_against_pvlib_faiman():
@@ -510,7 +564,8 @@ def test_trend_counts_losses_and_plots(site, tmp_path):
     assert list(tr.modules.columns[:3]) == ["flight_id", "start", "module_id"]
     out = tmp_path / "trend"
     paths = H.write_trend(tr, out)
-    assert sorted(p.name for p in paths) == ["counts.png", "flights.csv", "loss.png", "modules.csv"]
+    assert sorted(p.name for p in paths) == ["counts.png", "flights.csv", "loss.png", "modules.csv",
+                                             "temperature.png"]
     for p in paths:
         assert p.stat().st_size > 0
     assert (out / "counts.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"

@@ -43,4 +43,16 @@ def evaluate_cmd(truth_dir, result_dir, json_path, pipeline_path, force):
 
             raise OutputError(f"{json_path.parent}: cannot create the folder: {exc.strerror or exc}") from None
         atomic_write(json_path, json.dumps(scores, indent=2))
-    echo(format_report(scores))
+    echo(format_report(_rounded(scores)))
+
+
+def _rounded(value, decimals: int = 3):
+    """A copy of the scores with every float rounded for printing (``-0.0`` shown as ``0.0``);
+    the JSON file keeps full precision."""
+    if isinstance(value, float):
+        return round(value, decimals) + 0.0
+    if isinstance(value, dict):
+        return {k: _rounded(v, decimals) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return type(value)(_rounded(v, decimals) for v in value)
+    return value

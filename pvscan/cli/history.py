@@ -89,16 +89,31 @@ def changes_cmd(site_db, flight_from, flight_to, out_path, overwrite, pipeline_p
     fc = compare_flights(site_db, flight_from, flight_to, settings=cfg)
     write_changes(fc, out_path, overwrite=overwrite)
     c = fc["counts"]
+    failed = [f["properties"] for f in fc["features"] if f["properties"]["change"] == "persists_after_repair"]
     echo(f"{fc['flight_before']['flight_id']} -> {fc['flight_after']['flight_id']}: "
-         + ", ".join(f"{c[k]} {k}" for k in CHANGE_CLASSES)
+         + ", ".join(f"{c[k]} {k.replace('_', ' ')}" for k in CHANGE_CLASSES)
          + f" ({c['repaired']} repaired, {c['suspicious']} resolved without a recorded repair)")
+    if failed:
+        echo(f"{len(failed)} defect(s) still there after a recorded repair or replacement (failed repairs):")
+        for p in failed[:20]:
+            ev = "; ".join(f"{e['date']} {e['action']}" + (f" ({e['note']})" if e.get("note") else "")
+                           for e in p["maintenance_events"])
+            echo(f"  {p['module_id']}: {p['defect_before']} -> {p['defect_after']}, "
+                 f"dT norm {_k(p['delta_t_norm_k_before'])} -> {_k(p['delta_t_norm_k_after'])} K; "
+                 f"maintenance {ev}")
+        if len(failed) > 20:
+            echo(f"  ... and {len(failed) - 20} more in {out_path}")
     if fc["not_compared"]:
         echo(f"{len(fc['not_compared'])} module(s) with an anomaly were not imaged in both flights "
              "(not compared)")
-    if c["suspicious"]:
-        echo("check resolved defects without a repair on site before closing them; hot surfaces "
-             "and live DC: work only by qualified people under local codes")
+    if c["suspicious"] or failed:
+        echo("check failed repairs and resolved defects without a repair on site before closing them; "
+             "hot surfaces and live DC: work only by qualified people under local codes")
     echo(f"wrote {out_path}")
+
+
+def _k(v) -> str:
+    return "?" if v is None else f"{v:.1f}"
 
 
 @history_group.command("trend")
@@ -114,10 +129,44 @@ def trend_cmd(site_db, out_dir, overwrite, pipeline_path):
     from pvscan.history import site_trend, write_trend
     from pvscan.io.settings import load_pipeline
 
-    cfg = load_pipeline(pipeline_path)["history"]
-    trend = site_trend(site_db, settings=cfg)
+    trend = site_trend(site_db, settings=load_pipeline(pipeline_path))
     paths = write_trend(trend, out_dir, overwrite=overwrite)
     echo(f"{len(trend.flights)} flight(s); wrote {', '.join(p.name for p in paths)} to {out_dir}")
+
+
+@history_group.command("degradation")
+@_DB
+@click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="CSV file to write (one row per module ever anomalous, one column per flight).")
+@click.option("--overwrite", is_flag=True, help="Replace an existing --out file.")
+@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
+              help="Pipeline settings file (its [history] section).")
+@handle_errors
+def degradation_cmd(site_db, out_path, overwrite, pipeline_path):
+    """Normalised delta T flight by flight and its rate of change per year (Theil-Sen) of every
+    module that was ever anomalous."""
+    import math
+
+    from pvscan.history.degradation import module_degradation, write_degradation_csv
+    from pvscan.io.settings import load_pipeline
+
+    if out_path.exists() and not overwrite:  # before any work
+        from pvscan.errors import OutputError
+
+        raise OutputError(f"{out_path}: exists (use --overwrite to replace it)")
+    deg = module_degradation(site_db, settings=load_pipeline(pipeline_path))
+    write_degradation_csv(deg, out_path, overwrite=overwrite)
+    m = deg.modules
+    sloped = m[[not math.isnan(x) for x in m["slope_k_per_year"]]]
+    echo(f"{len(m)} module(s) ever anomalous over {len(deg.flights)} flight(s); "
+         f"{len(sloped)} with a slope (enough flights)")
+    fastest = sloped.sort_values("slope_k_per_year", ascending=False).head(5)
+    for r in fastest.to_dict("records"):
+        if r["slope_k_per_year"] > 0:
+            echo(f"  {r['module_id']}: {r['slope_k_per_year']:+.1f} K/yr "
+                 f"({r['slope_low_k_per_year']:+.1f} to {r['slope_high_k_per_year']:+.1f}), "
+                 f"last {r['delta_t_norm_k_last']:.1f} K, {r['defects']}")
+    echo(f"wrote {out_path}")
 
 
 @history_group.command("maintenance")
@@ -126,7 +175,7 @@ def trend_cmd(site_db, out_dir, overwrite, pipeline_path):
                 type=click.Path(dir_okay=False, path_type=Path))
 @handle_errors
 def maintenance_cmd(site_db, events_csv):
-    """Import repairs/replacements (CSV: date, module_id, action, note); idempotent."""
+    """Import repairs/replacements (CSV: date, module_id, action, note; `,` or `;`); idempotent."""
     from pvscan.history import import_maintenance
 
     res = import_maintenance(site_db, events_csv)

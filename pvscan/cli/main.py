@@ -10,6 +10,7 @@ Exit codes (documented in the README):
 from __future__ import annotations
 
 import importlib
+import re
 
 import click
 
@@ -28,7 +29,27 @@ COMMANDS = {
 }
 
 
+#: The global verbosity options; they are also accepted after the subcommand
+#: (``pvscan inspect ... -v``, ``pvscan history add ... -q``).
+_VERBOSITY = re.compile(r"^(-v+|-q+|--verbose|--quiet)$")
+
+
+def hoist_verbosity(args: list[str]) -> list[str]:
+    """``args`` with the -v/-q options moved before the subcommand, where the group reads
+    them; everything after a ``--`` is left alone."""
+    args = list(args)
+    end = args.index("--") if "--" in args else len(args)
+    flags = [a for a in args[:end] if _VERBOSITY.match(a)]
+    rest = [a for a in args[:end] if not _VERBOSITY.match(a)]
+    return flags + rest + args[end:]
+
+
 class LazyGroup(click.Group):
+    def parse_args(self, ctx, args):
+        if ctx.parent is None:  # the top-level group: global options anywhere on the line
+            args = hoist_verbosity(args)
+        return super().parse_args(ctx, args)
+
     def list_commands(self, ctx):
         return sorted(COMMANDS)
 
@@ -43,8 +64,8 @@ class LazyGroup(click.Group):
 
 @click.group(cls=LazyGroup, context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="pvscan")
-@click.option("-v", "--verbose", count=True, help="More messages (-vv for debug).")
-@click.option("-q", "--quiet", count=True, help="Fewer messages (no progress bars).")
+@click.option("-v", "--verbose", count=True, help="More messages (-vv for debug); also after the command.")
+@click.option("-q", "--quiet", count=True, help="Fewer messages (no progress bars); also after the command.")
 @click.pass_context
 def cli(ctx, verbose, quiet):
     """pvscan: find, classify and rank faulty PV modules in drone thermal orthomosaics."""

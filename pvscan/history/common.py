@@ -1,0 +1,142 @@
+"""Shared constants, warnings, settings and small readers of the site history."""
+from __future__ import annotations
+
+import json
+import math
+from collections.abc import Iterable, Mapping
+from datetime import datetime
+from pathlib import Path
+from typing import Any
+
+import pandas as pd
+import shapely
+from shapely.geometry import shape
+
+from pvscan.errors import HistoryError, PvscanWarning
+
+#: Version of the database layout written by this module.
+SCHEMA_VERSION = 1
+APPLICATION = "pvscan-site-history"
+GPKG_APPLICATION_ID = 0x47504B47  # "GPKG", GeoPackage 1.3.1 [1], Req. 2
+GPKG_USER_VERSION = 10301  # GeoPackage 1.3.1 [1], Req. 2
+
+#: Change classes between two flights, the most important news first: a defect recorded as
+#: repaired or replaced (or soiling as cleaned) between the flights and still there.
+CHANGE_CLASSES = ("persists_after_repair", "new", "persisting", "worsened", "improved", "resolved")
+MAINTENANCE_ACTIONS = ("repair", "replace", "clean", "other")
+SEVERITY_RANK = {"monitor": 1, "repair": 2, "safety": 3}
+
+_BUSY_TIMEOUT_S = 30.0
+_LOCK_RETRIES = 8
+
+
+class LayoutChangeWarning(PvscanWarning):
+    """A flight's module layout differs from the site's (ids added or missing, modules moved)."""
+
+
+class MaintenanceWarning(PvscanWarning):
+    """Kept for callers that filter it; no longer issued: a maintenance event naming a module
+    the site does not have is an error (:class:`~pvscan.errors.HistoryError` naming the line)."""
+
+
+# --------------------------------------------------------------------------------------------
+# settings
+
+
+def _settings(settings: Mapping | None) -> Mapping:
+    """The ``[history]`` section over the pipeline file's defaults (a pipeline, a mapping of
+    sections, the section itself, or None)."""
+    from pvscan.io.settings import section
+
+    return section(settings, "history")
+
+
+def _read_json(path: Path) -> Any:
+    from pvscan.io.resources import read_json_file
+
+    return read_json_file(path, HistoryError, "file not found (not a pvscan inspect result folder?)")
+
+
+def _features(path: Path) -> list[dict]:
+    doc = _read_json(path)
+    if not isinstance(doc, dict) or doc.get("type") != "FeatureCollection" \
+            or not isinstance(doc.get("features"), list):
+        raise HistoryError(f"{path}: not a GeoJSON FeatureCollection")
+    return doc["features"]
+
+
+def _num(value) -> float:
+    if value is None:
+        return math.nan
+    try:
+        return float(value)
+    except (TypeError, ValueError):
+        return math.nan
+
+
+def _geometries(raw: list, ids: list, path: Path) -> list:
+    """Shapely geometries of GeoJSON geometry objects (None stays None), converted in one
+    vectorised call; a bad one is named by its feature id."""
+    out: list = [None] * len(raw)
+    idx = [i for i, g in enumerate(raw) if g is not None]
+    if not idx:
+        return out
+    try:
+        geoms = shapely.from_geojson([json.dumps(raw[i]) for i in idx], on_invalid="raise")
+    except Exception:  # find and name the bad feature
+        for i in idx:
+            try:
+                shape(raw[i])
+            except Exception as exc:  # shapely raises several types for bad coordinates
+                raise HistoryError(f"{path}: feature {ids[i]}: invalid geometry ({exc})") from None
+        raise HistoryError(f"{path}: invalid geometry") from None
+    for i, g in zip(idx, geoms):
+        out[i] = g
+    return out
+
+
+def _pick(d: Mapping, *paths: str):
+    """First non-empty value among dotted key paths of ``d``."""
+    for p in paths:
+        cur: Any = d
+        for k in p.split("."):
+            if isinstance(cur, Mapping) and k in cur:
+                cur = cur[k]
+            else:
+                cur = None
+                break
+        if cur not in (None, ""):
+            return cur
+    return None
+
+
+def _parse_time(value, where: str) -> datetime:
+    if isinstance(value, datetime):
+        t = value
+    else:
+        try:
+            t = datetime.fromisoformat(str(value).replace("Z", "+00:00"))
+        except ValueError:
+            raise HistoryError(f"{where}: {value!r} is not an ISO 8601 date-time") from None
+    if t.tzinfo is None:
+        raise HistoryError(f"{where}: {value!r} has no UTC offset")
+    return t
+
+
+def _as_objects(df: pd.DataFrame, cols: Iterable[str]) -> pd.DataFrame:
+    """Text columns as plain Python objects with None for missing (pandas may infer a string
+    dtype whose missing value is NaN)."""
+    for c in cols:
+        df[c] = pd.Series([None if (v is None or (isinstance(v, float) and math.isnan(v))) else v
+                           for v in df[c].tolist()], index=df.index, dtype=object)
+    return df
+
+
+def _text(v):
+    """A text value, None for missing (None or NaN)."""
+    return None if v is None or (isinstance(v, float) and math.isnan(v)) else v
+
+
+def _worse_severity(a, b):
+    ra, rb = SEVERITY_RANK.get(a, 0), SEVERITY_RANK.get(b, 0)
+    return a if ra >= rb else b
