@@ -34,7 +34,8 @@ from pathlib import Path
 
 from pvscan.errors import OutputError, SimulationError
 from pvscan.simulate.scenario import DEFAULTS, DEFECT_KINDS, load_scenario, scenario_from_dict
-from pvscan.simulate.scene import Scene, faiman
+from pvscan.simulate.electrical import faiman
+from pvscan.simulate.scene import Scene
 
 __all__ = ["simulate_flight", "load_scenario", "scenario_from_dict", "SimulationResult", "Scene",
            "build_scene", "faiman", "DEFAULTS", "DEFECT_KINDS"]
