@@ -184,7 +184,7 @@ def test_open_module_truth_rise_is_undelivered_power_over_u():
     g = scene.geom
     d = scene.diode
     il, i0, rs, rsh, nv = pvlib.pvsystem.calcparams_desoto(
-        scene.poa[i], scene.temp_healthy[i], d.alpha_sc, d.a_ref, d.isc_a, d.i0_ref, 400.0, d.r_s)
+        scene.poa[i], scene.temp_healthy[i], d.alpha_sc, d.a_ref, d.isc_a, d.i0_ref, 400.0, d.r_s, EgRef=d.eg_ref)
     p_mp = float(pvlib.pvsystem.max_power_point(il, i0, rs, rsh, nv)["p_mp"])
     expected = p_mp / ((25.0 + 6.84 * scene.wind[i]) * g.area_m2)
     assert t["delta_t_k"][i] == pytest.approx(expected, abs=0.01)

@@ -9,7 +9,9 @@ and defects; see ``demo_site/scenario.toml``) into a flight folder:
   (optionally shifted against the ortho);
 - ``flight.toml``: the flight manifest;
 - ``weather.csv`` and ``frames.geojson`` when the conditions vary during the flight;
-- ``truth.geojson`` (per module) and ``truth.json`` (layout offset, scenario, seed, defects);
+- ``truth.geojson`` (per module, geometry as the layout draws it) and ``truth.json`` (layout
+  offset and ``layout_error``, scenario, seed, defects);
+- ``truth_ortho.geojson``: the true module polygons as they stand in the ortho (ortho CRS);
 - ``preview.png``: a quick-look of the ortho.
 
 The physics is documented in :mod:`pvscan.simulate.scene` and
@@ -30,6 +32,7 @@ import shutil
 import tempfile
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
+from datetime import datetime
 from pathlib import Path
 
 from pvscan.errors import OutputError, SimulationError
@@ -37,7 +40,7 @@ from pvscan.simulate.scenario import DEFAULTS, DEFECT_KINDS, load_scenario, scen
 from pvscan.simulate.electrical import faiman
 from pvscan.simulate.scene import Scene
 
-__all__ = ["simulate_flight", "load_scenario", "scenario_from_dict", "SimulationResult", "Scene",
+__all__ = ["simulate_flight", "with_flight", "load_scenario", "scenario_from_dict", "SimulationResult", "Scene",
            "build_scene", "faiman", "DEFAULTS", "DEFECT_KINDS"]
 
 log = logging.getLogger(__name__)
@@ -95,6 +98,34 @@ def _as_scenario(scenario) -> dict:
             return scenario_from_dict(sc, str(scenario["_path"]))
         return scenario_from_dict(scenario)
     return load_scenario(scenario)
+
+
+def with_flight(scenario: dict, *, date: str | None = None, flight_id: str | None = None) -> dict:
+    """A copy of a loaded scenario flown on another ``date`` (YYYY-MM-DD; the time of day and
+    UTC offset kept) and/or under another ``flight_id``.
+
+    Raises
+    ------
+    SimulationError
+        ``date`` is not a calendar date.
+    """
+    import copy
+    from datetime import date as _date
+
+    sc = copy.deepcopy(dict(scenario))
+    where = str(sc.get("_path") or "scenario")
+    if date is not None:
+        try:
+            day = _date.fromisoformat(str(date))
+        except ValueError:
+            raise SimulationError(f"--date {date!r}: not a date (YYYY-MM-DD)") from None
+        start = datetime.fromisoformat(str(sc["flight"]["start"]).replace("Z", "+00:00"))
+        sc["flight"]["start"] = start.replace(year=day.year, month=day.month, day=day.day).isoformat()
+    if flight_id is not None:
+        if not str(flight_id).strip():
+            raise SimulationError(f"{where}: --flight-id is empty")
+        sc["flight"]["id"] = str(flight_id)
+    return sc
 
 
 def build_scene(scenario, seed: int = 0) -> Scene:
@@ -167,6 +198,7 @@ def simulate_flight(scenario, out_dir, seed: int = 0, *, overwrite: bool = False
     try:
         orthos, ortho_keys, preview = writers.write_orthos(scene, stage, progress)
         layout_name = writers.write_layout(scene, stage)
+        writers.write_truth_ortho(scene, stage)
         write_frames = sc["flight"]["write_frames"]
         varying = scene.weather.varying
         frames_name = writers.write_frames(scene, stage) if (write_frames is True or

@@ -72,6 +72,9 @@ DEFAULTS: dict[str, Any] = {
         "features": "modules",
         "format": "geojson",
         "offset_m": [0.0, 0.0],
+        "rotation_deg": 0.0,
+        "scale": 1.0,
+        "local_rms_m": 0.0,
         "strings": True,
     },
     "module": {
@@ -157,6 +160,7 @@ DEFAULTS: dict[str, Any] = {
         "pid_modules": [3, 6],
         "open_string_modules": 0,
         "min_spacing_modules": 2,
+        "heat_model": "diode",
     },
 }
 

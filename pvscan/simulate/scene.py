@@ -55,6 +55,7 @@ from pvscan.simulate.defects import ModuleGeometry, place_defects
 from pvscan.simulate.electrical import diode_module, faiman
 from pvscan.simulate.flightpath import plan_flight, weather_series
 from pvscan.simulate.geometry import build_field
+from pvscan.simulate.layout_error import layout_error
 
 __all__ = ["Scene", "faiman", "GROUND", "GLASS", "FRAME", "OBJECT"]
 
@@ -110,6 +111,7 @@ class Scene:
         self.sc = sc
         self.seed = int(seed)
         self.field = fld = build_field(sc)
+        self.layout_error = layout_error(sc, fld, self.seed)
         m = sc["module"]
         half = bool(m["half_cut"])
         u0, u1 = float(sc["conditions"]["u0"]), float(sc["conditions"]["u1"])
@@ -119,7 +121,8 @@ class Scene:
             n_along=m["cells_along"] * (2 if half else 1), n_across=m["cells_across"],
             bypass_diodes=m["bypass_diodes"], lower_edge="u" if fld.portrait else "v",
             junction_box=m.get("junction_box", "split" if half else "edge"), pmax_w=m["pmax_w"],
-            u_ref=u_ref, p_ref_w=float(diode_module(m).p_mp(1000.0, faiman(1000.0, 25.0, 1.0, u0, u1))))
+            u_ref=u_ref, p_ref_w=(float(diode_module(m).p_mp(1000.0, faiman(1000.0, 25.0, 1.0, u0, u1)))
+                                  if sc["defects"]["heat_model"] == "diode" else None))
         cam = sc["camera"]
         self.gsd = gsd = float(cam["gsd_m"])
         margin = float(sc["ortho"]["margin_m"])
@@ -187,7 +190,10 @@ class Scene:
         # an open module keeps as heat the power it would have delivered (single-diode model at
         # its irradiance and temperature), shed through the Faiman U over its area
         self.diode = diode = diode_module(m)
-        self.p_mp = diode.p_mp(self.poa_local, self.temp_healthy)
+        if sc["defects"]["heat_model"] == "diode":
+            self.p_mp = diode.p_mp(self.poa_local, self.temp_healthy)
+        else:  # "efficiency": STC efficiency, eta * G (the textbook simplification)
+            self.p_mp = self.geom.eta * self.poa_local * self.geom.area_m2
         self.dt_open = self.p_mp / (self.u_total * self.geom.area_m2)
         # module-to-module spread: thermal part scaled from the reference conditions like the
         # defect rises (dt_open / dt_open_ref = (G / U) / (1000 / U(1))), measurement part not
