@@ -14,8 +14,9 @@ from __future__ import annotations
 import os
 import sqlite3
 from collections.abc import Mapping
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -24,7 +25,7 @@ from shapely.geometry import MultiPolygon, Polygon
 from pvscan.io.writers.atomic import atomic_path
 from pvscan.io.writers.geojson import ANOMALY_PROPERTIES
 from pvscan.io.writers.geometry import anomaly_geometries
-from pvscan.io.writers.styles import LAYER_STYLES_SQL, layer_sld
+from pvscan.io.writers.styles import LAYER_STYLES_SQL, layer_qml, layer_sld
 from pvscan.io.writers.values import LIST_SEP, settings_of
 
 __all__ = ["write_geopackage", "STYLED_LAYERS"]
@@ -54,7 +55,7 @@ def _flatten_lists(frame: pd.DataFrame) -> pd.DataFrame:
 
 def _write_styles(path: Path) -> None:
     """Add one default SLD style per layer to the GeoPackage's ``layer_styles`` table."""
-    now = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3] + "Z"
+    now = datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3] + "Z"
     con = sqlite3.connect(str(path), isolation_level=None)
     try:
         con.execute("BEGIN IMMEDIATE")
@@ -69,15 +70,17 @@ def _write_styles(path: Path) -> None:
             con.execute(
                 "INSERT INTO layer_styles (f_table_catalog, f_table_schema, f_table_name, f_geometry_column, "
                 "styleName, styleQML, styleSLD, useAsDefault, description, owner, ui, update_time) "
-                "VALUES ('', '', ?, ?, ?, '', ?, 1, ?, 'pvscan', '', ?)",
+                "VALUES ('', '', ?, ?, ?, ?, ?, 1, ?, 'pvscan', '', ?)",
                 (layer, geom_cols[layer], f"{layer} by severity",
+                 layer_qml(layer, kind, label=label, healthy=healthy),
                  layer_sld(layer, kind, label=label, healthy=healthy), desc, now))
         con.execute("COMMIT")
     finally:
         con.close()
 
 
-def write_geopackage(path: str | os.PathLike, modules, anomalies, workorders, settings: Mapping | None = None) -> Path:
+def write_geopackage(path: str | os.PathLike, modules: Any, anomalies: Any, workorders: Any,
+                     settings: Mapping | None = None) -> Path:
     """Write a GeoPackage with layers ``modules``, ``anomalies`` and ``workorders``, styled.
 
     Parameters
@@ -100,7 +103,8 @@ def write_geopackage(path: str | os.PathLike, modules, anomalies, workorders, se
     -----
     List columns are stored as ``;``-joined text (GeoPackage has no list type). The
     frame columns ``fx0 ... fvy`` and ``region_uv`` are internal and left out. The
-    ``layer_styles`` table holds an SLD 1.1 style per layer (``useAsDefault`` = 1).
+    ``layer_styles`` table holds a style per layer (``useAsDefault`` = 1) as OGC SLD 1.1 and
+    as QML.
     """
     import geopandas as gpd
 
