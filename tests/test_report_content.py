@@ -16,10 +16,9 @@ import sys
 from pathlib import Path
 
 import numpy as np
-import pytest
 
 sys.path.insert(0, str(Path(__file__).parent))
-from test_report import PLANTED, build_result, parse  # noqa: E402
+from test_report import PLANTED, build_result, parse
 
 REPORT = Path(__file__).parents[1] / "pvscan" / "report"
 
