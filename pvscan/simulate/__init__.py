@@ -40,7 +40,7 @@ from pvscan.simulate.scenario import DEFAULTS, DEFECT_KINDS, load_scenario, scen
 from pvscan.simulate.electrical import faiman
 from pvscan.simulate.scene import Scene
 
-__all__ = ["simulate_flight", "with_flight", "load_scenario", "scenario_from_dict", "SimulationResult", "Scene",
+__all__ = ["simulate_flight", "simulate_random", "with_flight", "load_scenario", "scenario_from_dict", "SimulationResult", "Scene",
            "build_scene", "faiman", "DEFAULTS", "DEFECT_KINDS"]
 
 log = logging.getLogger(__name__)
@@ -247,3 +247,36 @@ def simulate_flight(scenario, out_dir, seed: int = 0, *, overwrite: bool = False
         preview=out_dir / "preview.png", weather=out_dir / weather_name if weather_name else None,
         frames=out_dir / frames_name if frames_name else None, n_modules=scene.field.n_modules,
         n_defective=len(scene.defects), defects=counts, seed=int(seed), scenario=sc)
+
+
+def simulate_random(seed: int, out_dir, family: str = "any", *, overwrite: bool = False,
+                    progress: ProgressFn | None = None) -> SimulationResult:
+    """Simulate a random flight of a family (:mod:`pvscan.simulate.sampler`) with ground truth.
+
+    The drawn scenario is written into the flight folder as ``scenario.toml``;
+    ``pvscan simulate DIR/scenario.toml --seed SEED`` replays the flight file for file.
+
+    Parameters
+    ----------
+    seed : int
+        Seed of the draw and of the simulation.
+    out_dir : path-like
+        Flight folder (as :func:`simulate_flight`).
+    family : str
+        One of :data:`pvscan.simulate.sampler.FAMILIES`.
+    """
+    import os
+
+    from pvscan.simulate.sampler import draw_scenario
+    from pvscan.simulate.writers import toml_dumps
+
+    if int(seed) < 0:
+        raise SimulationError(f"--random {seed}: must be zero or positive")
+    drawn = draw_scenario(int(seed), family)
+    res = simulate_flight(drawn, out_dir, seed=int(seed), overwrite=overwrite, progress=progress)
+    header = (f"Scenario drawn by pvscan simulate --random {int(seed)} --family {family}.\n"
+              f"Replay: pvscan simulate scenario.toml --seed {int(seed)} --out DIR")
+    tmp = res.out_dir / ".scenario.toml.part"
+    tmp.write_text(toml_dumps(drawn, header), encoding="utf-8")
+    os.replace(tmp, res.out_dir / "scenario.toml")
+    return res

@@ -115,6 +115,8 @@ DEFAULTS: dict[str, Any] = {
         "sun_rise_k": 14.0,
         "shade_rise_k": 2.0,
         "texture_k": 1.5,
+        "field_k": 0.0,
+        "field_scale_m": 40.0,
     },
     "camera": {
         "gsd_m": 0.05,

@@ -21,7 +21,9 @@ Physics, in the order it is applied to a pixel:
    heat of an open module or bypassed substring is the power the single-diode model
    (:mod:`pvscan.simulate.electrical`) says it no longer delivers.
 3. **Ground**: ``T_air + sun_rise_k * G / 1000`` in the sun, ``T_air + shade_rise_k`` in the
-   shadow the tables cast (sun position from pvlib [2]_), plus a smooth texture; hot objects
+   shadow the tables cast (sun position from pvlib [2]_), plus a smooth texture and a
+   site-wide smooth field (``ground.field_k`` [K] 1 sigma over ``ground.field_scale_m``; with
+   a few kelvin the ground's contrast to the glass can change sign across the site); hot objects
    (inverter stations, a vehicle) sit on the ground between table rows.
 4. **Radiometry**: band radiance of glass (module emissivity, reflecting the sky from
    :func:`pvscan.simulate.radiance.sky_temperature`, warmer where a soft reflection patch lies)
@@ -177,6 +179,9 @@ class Scene:
         self.objects = self._place_objects(drng, int(dis["hot_objects"]))
         self.texture = _SmoothNoise(self.extent, 3.0, np.random.default_rng([self.seed, 4]))
         self.wobble = _SmoothNoise(self.extent, 8.0, np.random.default_rng([self.seed, 5]))
+        gcfg = sc["ground"]
+        self.ground_field = (_SmoothNoise(self.extent, float(gcfg["field_scale_m"]), np.random.default_rng([self.seed, 10]))
+                             if float(gcfg["field_k"]) > 0 else None)
         self._sun_shadow()
 
         # modules
@@ -389,6 +394,8 @@ class Scene:
         shade[~mod] = self.in_shadow(s[~mod], w[~mod])
         sun = self.poa_mean * self.cloud_factor(x, y) / 1000.0 * gcfg["sun_rise_k"]
         temp = self.temp_air_mean + np.where(shade, gcfg["shade_rise_k"], sun) + gcfg["texture_k"] * self.texture(x, y)
+        if self.ground_field is not None:  # site-wide variation (moisture, soil, vegetation)
+            temp = temp + float(gcfg["field_k"]) * self.ground_field(x, y)
         material = np.full(idx.shape, GROUND, np.int8)
         for _kind, s0, s1, w0, w1, rise in self.objects:
             inside = (s >= s0) & (s <= s1) & (w >= w0) & (w <= w1) & ~mod
