@@ -152,12 +152,13 @@ def severity_reason(row: Mapping[str, Any], rules: Mapping[str, Any] | None,
     """
     sev = str(row.get("severity") or "")
     d = str(row.get("defect") or "")
-    dtn, tmax = row.get("delta_t_norm_k"), row.get("t_max_c")
+    dtn: Any = row.get("delta_t_norm_k")
+    tmax: Any = row.get("t_max_c")
     name = defect_name(d)
     r = dict(rules or {})
 
     def num(key: str) -> float | None:
-        v = r.get(key)
+        v: Any = r.get(key)
         return float(v) if isnum(v) else None
 
     t_lim, spot_lim = num("safety_t_max_c"), num("safety_delta_t_norm_k")
