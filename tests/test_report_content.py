@@ -254,6 +254,9 @@ def test_card_says_why_with_the_rule_and_the_value(tmp_path):
         r, {"safety_junction_box_delta_t_norm_k": 20.0, "safety_t_max_c": 100.0})
     r = {"severity": "safety", "defect": "open_module", "delta_t_norm_k": 5.0, "t_max_c": 104.5}
     assert "104.5 °C, at or above the 100 °C safety rule" in severity_reason(r, {"safety_t_max_c": 100.0})
+    r = {"severity": "monitor", "defect": "pid", "delta_t_norm_k": 0.1, "power_loss_w": 12.0}
+    assert "loses 12 W at STC, below the 40 W repair rule for PID strings" in severity_reason(
+        r, {"repair_pid_power_loss_w": 40.0})
     r = {"severity": "monitor", "defect": "soiling", "delta_t_norm_k": 2.0, "t_max_c": 50.0}
     assert "cleaning" in severity_reason(r, {"monitor_defects": ["soiling"]})
 
