@@ -319,8 +319,10 @@ def test_summary_valid_and_cautions(tmp_path, result):
                                           "open_string": 1}
     assert doc["counts"]["by_severity"] == {"repair": 3, "safety": 1}
     assert doc["counts"]["modules_affected"] == 6
-    assert doc["loss"]["power_loss_w"] == pytest.approx(float(an["power_loss_w"].sum()), rel=1e-6)
-    assert doc["loss"]["plant_share"] == pytest.approx(doc["loss"]["power_loss_w"] / (8 * 400.0))
+    assert doc["power_loss_w"] == pytest.approx(float(an["power_loss_w"].sum()), rel=1e-6)
+    assert doc["loss"]["plant_share"] == pytest.approx(doc["power_loss_w"] / (8 * 400.0))
+    assert "power_loss_w" not in doc["loss"]  # one total, no duplicate key
+    assert doc["conditions"] == {"poa_global_w_m2": 850.0, "temp_air_c": 25.0, "wind_speed_m_s": 2.0}  # units
     text = " ".join(doc["safety"]).lower()
     for words in ("live dc", "disconnected", "arc", "fire", "hot", "qualified", "local electrical codes",
                   "aviation"):

@@ -220,6 +220,15 @@ def inspected(tmp_path_factory):
                 "defects": {"hot_cell": 2, "junction_box": 2, "bypassed_substring": 2, "open_module": 1,
                             "soiling": 1, "junction_box_rise_k": [28.0, 36.0]}}
     sim = simulate_flight(scenario, root / "flight", seed=SEED)
+    # the plant's electrical layout: a combiner box per table row of tables, one inverter
+    layout = root / "flight" / "layout.geojson"
+    doc = json.loads(layout.read_text())
+    for f in doc["features"]:
+        p = f["properties"]
+        if p.get("table_id"):
+            p["combiner"] = "CB-" + p["table_id"].split("-")[0]  # a variant spelling of combiner_id
+            p["inverter_id"] = "INV-1"
+    layout.write_text(json.dumps(doc))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RegistrationWarning)  # small site: weak fit is not the subject
         warnings.simplefilter("ignore", ValidityWarning)
@@ -235,6 +244,7 @@ def test_simulated_flight_workorders_stand_alone(inspected):
     for r in rows:
         assert r["site"] == "Sandpiper Lane (invented)" and r["flight_date"] == "2026-06-14"
         assert r["flight_id"] and r["string_id"] and r["status"] is None
+        assert r["combiner_id"] == "CB-" + r["table_id"].split("-")[0] and r["inverter_id"] == "INV-1"
     assert {"walk_order", "string_id", "site", "flight_date", "status"} <= set(raw[0])
     assert {"safety", "repair"} <= {r["severity"] for r in rows}  # hot junction boxes: safety
     walk = sorted(rows, key=lambda r: r["walk_order"])
@@ -253,3 +263,8 @@ def test_simulated_flight_gpx_opens_with_gdal(inspected):
     assert pts.geometry.x.to_numpy() == pytest.approx([r["lon"] for r in walk], abs=1e-7)
     layers = dict(pyogrio.list_layers(inspected / "pvscan.gpkg"))
     assert "layer_styles" in layers
+    assert all("string " in d and "combiner box CB-" in d and "inverter INV-1" in d for d in pts["desc"])
+    anomalies = json.loads((inspected / "anomalies.geojson").read_text())["features"]
+    assert all(f["properties"]["inverter_id"] == "INV-1" and f["properties"]["string_id"] for f in anomalies)
+    modules = json.loads((inspected / "modules.geojson").read_text())["features"]
+    assert {f["properties"]["inverter_id"] for f in modules} == {"INV-1"}

@@ -494,7 +494,10 @@ _UNITS = (("poa_global", "W/m²"), ("irradiance", "W/m²"), ("temp_", "°C"), ("
           ("cloud_okta", "okta"), ("altitude_m", "m"))
 _LABELS = {"poa_global": "plane-of-array irradiance (mean)", "temp_air": "air temperature (mean)",
            "wind_speed": "wind speed (mean)", "temp_sky": "sky temperature",
-           "relative_humidity": "relative humidity", "poa_global_change_pct": "irradiance change during flight"}
+           "relative_humidity": "relative humidity", "poa_global_change_pct": "irradiance change during flight",
+           "poa_global_w_m2": "plane-of-array irradiance (mean)", "temp_air_c": "air temperature (mean)",
+           "wind_speed_m_s": "wind speed (mean)", "temp_sky_c": "sky temperature",
+           "relative_humidity_pct": "relative humidity"}
 
 
 def _unit_of(key: str) -> str:

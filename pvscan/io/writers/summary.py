@@ -20,7 +20,8 @@ from pvscan.io.writers.geometry import anomaly_indices
 from pvscan.io.writers.values import dumps, to_jsonable
 from pvscan.io.writers.workorders import read_workorders_csv
 
-__all__ = ["safety_cautions", "build_summary", "write_summary", "validate_output"]
+__all__ = ["safety_cautions", "build_summary", "write_summary", "validate_output", "conditions_with_units",
+           "CONDITION_KEYS"]
 
 def safety_cautions() -> list[str]:
     """Cautions printed in ``summary.json`` and the report (plain words, deferring to local rules)."""
@@ -54,6 +55,27 @@ def _fsum(series) -> float:
     vals = pd.to_numeric(pd.Series(series), errors="coerce").to_numpy(dtype=float)
     vals = vals[np.isfinite(vals)]
     return float(vals.sum()) if vals.size else 0.0
+
+
+#: Condition keys as the conditions stage names them (pvlib's glossary) -> the key in
+#: ``summary.json``, with its unit as everywhere else in the outputs.
+CONDITION_KEYS = {
+    "poa_global": "poa_global_w_m2", "poa_global_min": "poa_global_min_w_m2",
+    "poa_global_max": "poa_global_max_w_m2", "poa_global_std": "poa_global_std_w_m2",
+    "temp_air": "temp_air_c", "wind_speed": "wind_speed_m_s", "wind_speed_max": "wind_speed_max_m_s",
+    "temp_sky": "temp_sky_c", "relative_humidity": "relative_humidity_pct",
+}
+
+
+def conditions_with_units(conditions: Mapping | None) -> dict:
+    """The flight conditions for ``summary.json``: keys with their units (:data:`CONDITION_KEYS`),
+    and without ``start``/``end``, which ``flight`` already holds."""
+    out = {}
+    for k, v in dict(conditions or {}).items():
+        if k in ("start", "end"):
+            continue
+        out[CONDITION_KEYS.get(k, k)] = v
+    return out
 
 
 def build_summary(*, modules, anomalies: pd.DataFrame | None, module_spec=None,
@@ -104,7 +126,6 @@ def build_summary(*, modules, anomalies: pd.DataFrame | None, module_spec=None,
     for _, row in an.iterrows():
         affected.update(anomaly_indices(row))
     loss = {
-        "power_loss_w": round(total_stc, 3),
         "power_loss_w_flight": round(total_flight, 3),
         "energy_loss_kwh_per_year": round(total_energy, 3),
         "plant_pmax_w": nameplate,
@@ -123,7 +144,7 @@ def build_summary(*, modules, anomalies: pd.DataFrame | None, module_spec=None,
         "flight": to_jsonable({k: getattr(flight, k, None) for k in ("id", "start", "end", "altitude_m")})
         if flight else {},
         "inputs": to_jsonable(dict(inputs or {})),
-        "conditions": to_jsonable(dict(conditions or {})),
+        "conditions": to_jsonable(conditions_with_units(conditions)),
         "validity": to_jsonable(validity) if validity is not None else None,
         "counts": {
             "modules": n,
@@ -133,7 +154,7 @@ def build_summary(*, modules, anomalies: pd.DataFrame | None, module_spec=None,
             "by_severity": _counts(an["severity"]) if "severity" in an.columns else {},
         },
         "loss": loss,
-        "power_loss_w": loss["power_loss_w"],
+        "power_loss_w": round(total_stc, 3),
         "layout_shift_m": [float(layout_shift_m[0]), float(layout_shift_m[1])],
         "registration": to_jsonable(registration) if registration is not None else None,
         "safety": safety_cautions(),
