@@ -24,6 +24,7 @@ __all__ = [
     "PvscanWarning",
     "ValidityWarning",
     "RegistrationWarning",
+    "LayoutWarning",
 ]
 
 
@@ -85,3 +86,7 @@ class ValidityWarning(PvscanWarning):
 
 class RegistrationWarning(PvscanWarning):
     """The layout-to-ortho fit is weakly constrained by the image."""
+
+
+class LayoutWarning(PvscanWarning):
+    """A layout feature was repaired or looks inconsistent with the datasheet."""

@@ -12,11 +12,16 @@ from __future__ import annotations
 
 import logging
 import re
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass
+from os import PathLike
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from pvscan.errors import FleetError, PvscanError
+
+if TYPE_CHECKING:
+    from pvscan.io.manifest import Flight
 
 __all__ = ["FlightOutcome", "inspect_fleet", "result_folder"]
 
@@ -58,7 +63,7 @@ def _slug(text: str) -> str:
     return s or "site"
 
 
-def result_folder(out_dir: Path, flight) -> Path:
+def result_folder(out_dir: Path, flight: Flight) -> Path:
     """``<out_dir>/<site id>/<flight id>`` with file-system-safe names."""
     return Path(out_dir) / _slug(flight.site.id or flight.site.name) / _slug(flight.flight.id)
 
@@ -104,9 +109,10 @@ def _inspect_one(manifest: str, out_dir: str, pipeline_path: str | None, overwri
         return FlightOutcome(manifest=manifest, out_dir=None, ok=False, error=" ".join(str(exc).split()))
 
 
-def inspect_fleet(manifests, out_dir, *, pipeline=None, scheduler: str = "processes",
+def inspect_fleet(manifests: Sequence[str | PathLike[str]], out_dir: str | PathLike[str], *,
+                  pipeline: str | PathLike[str] | None = None, scheduler: str = "processes",
                   workers: int | None = None, overwrite: bool = False, report: bool = True,
-                  progress=None) -> list[FlightOutcome]:
+                  progress: Callable[[str, int, int], None] | None = None) -> list[FlightOutcome]:
     """Inspect many flights, one Dask task per flight.
 
     Parameters
@@ -144,17 +150,17 @@ def inspect_fleet(manifests, out_dir, *, pipeline=None, scheduler: str = "proces
 
     from pvscan.tasks import cluster, is_address
 
-    manifests = [str(Path(m)) for m in manifests]
-    same = sorted({m for m in manifests if manifests.count(m) > 1})
+    paths = [str(Path(m)) for m in manifests]
+    same = sorted({m for m in paths if paths.count(m) > 1})
     if same:
         raise FleetError(f"{same[0]} is given more than once; no flight was started")
-    _check_result_folders(manifests, Path(out_dir))
+    _check_result_folders(paths, Path(out_dir))
     pipeline = None if pipeline is None else str(pipeline)
-    total = len(manifests)
+    total = len(paths)
     if progress is not None:
         progress("fleet", 0, total)
     task = dask.delayed(_inspect_one, pure=False)
-    tasks = [task(m, str(out_dir), pipeline, overwrite, report) for m in manifests]
+    tasks = [task(m, str(out_dir), pipeline, overwrite, report) for m in paths]
     if is_address(scheduler):
         # one task per flight on the cluster; each flight runs embedded on its worker
         with cluster(scheduler) as client:

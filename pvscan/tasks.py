@@ -89,7 +89,7 @@ def cluster(address: str, timeout_s: float = 10.0) -> Iterator[Any]:
         client.close()
 
 
-def _n_workers(client) -> int:
+def _n_workers(client: Any) -> int:
     try:
         return max(1, sum(int(w.get("nthreads", 1)) for w in client.scheduler_info()["workers"].values()))
     except Exception:  # an unusual scheduler: assume a small cluster
@@ -146,7 +146,8 @@ def run_tasks(fn: Callable, args: Sequence[tuple], scheduler: Any = None, *, wor
     yield from _bounded_cluster(scheduler, fn, args, n * per_worker)
 
 
-def _bounded(submit, fn, args, limit: int) -> Iterator[tuple[int, Any]]:
+def _bounded(submit: Callable[..., Any], fn: Callable[..., Any], args: Sequence[Sequence[Any]],
+             limit: int) -> Iterator[tuple[int, Any]]:
     """Local pool: keep at most ``limit`` tasks in flight; yield results as they finish."""
     limit = max(1, int(limit))
     pending: dict[Any, int] = {}
@@ -165,14 +166,15 @@ def _bounded(submit, fn, args, limit: int) -> Iterator[tuple[int, Any]]:
             fut.cancel()
 
 
-def _bounded_cluster(client, fn, args, limit: int) -> Iterator[tuple[int, Any]]:
+def _bounded_cluster(client: Any, fn: Callable[..., Any], args: Sequence[Sequence[Any]],
+                     limit: int) -> Iterator[tuple[int, Any]]:
     """Dask cluster: the same with distributed futures (``as_completed``, topped up)."""
     from distributed import as_completed
 
     limit = max(1, int(limit))
     pending: dict[Any, int] = {}
 
-    def submit(k):
+    def submit(k: int) -> Any:
         fut = client.submit(fn, *args[k], pure=False)
         pending[fut] = k
         return fut

@@ -1,13 +1,9 @@
-"""Site history: storage in a GeoPackage, idempotent adds, concurrency, change classes, trends.
+"""Site history: storage in a GeoPackage, idempotent adds, concurrency, change classes.
 
-Fixtures build small result folders of an invented site ("Heron Flats", two tables of
-2 x 6 modules) in the form `pvscan inspect` writes them (modules.geojson, anomalies.geojson,
-workorders.csv, summary.json), for two flights of different seasons with known changes.
+The invented site and its flights are built by ``history_site``.
 """
 from __future__ import annotations
 
-import csv
-import hashlib
 import json
 import math
 import sqlite3
@@ -15,181 +11,34 @@ import struct
 import subprocess
 import sys
 import warnings
-from pathlib import Path
 
 import numpy as np
 import pytest
-from click.testing import CliRunner
-from pyproj import Transformer
-from shapely.geometry import Polygon, mapping
+from history_site import (
+    AFTER,
+    BEFORE,
+    EXPECTED,
+    ROOT,
+    SPRING,
+    SUMMER,
+    footprint,
+    make_site,
+    module_ids,
+    props_by_module,
+    sha,
+    write_result,
+)
 
 from pvscan import history as H
-from pvscan.cli.main import cli
-from pvscan.errors import HistoryError, OutputError, RegistrationWarning, ValidityWarning
+from pvscan.errors import HistoryError, RegistrationWarning, ValidityWarning
 from pvscan.io.outputs import validate_geojson_rfc7946
 from pvscan.io.resources import load_schema, schema_errors
 from pvscan.io.settings import load_pipeline
 
-ROOT = Path(__file__).resolve().parent.parent
-U0, U1 = 25.0, 6.84  # Faiman defaults of pvlib.temperature.faiman (Faiman 2008)
-
-# Invented plant: UTM zone 33N around an arbitrary point; 2 tables x 2 rows x 6 columns.
-_TO_LONLAT = Transformer.from_crs("EPSG:32633", "EPSG:4326", always_xy=True)
-X0, Y0 = 500_000.0, 5_200_000.0
-W, L, GAP = 1.04, 2.09, 0.02
-
-
-def module_ids():
-    return [f"T{t:02d}-R{r}-C{c:02d}" for t in (1, 2) for r in (1, 2) for c in range(1, 7)]
-
-
-def footprint(mid: str, dx: float = 0.0, dy: float = 0.0) -> Polygon:
-    t, r, c = int(mid[1:3]), int(mid[5]), int(mid[8:10])
-    x = X0 + (c - 1) * (W + GAP) + dx
-    y = Y0 + (t - 1) * 10.0 + (r - 1) * (L + GAP) + dy
-    ring = [(x, y), (x + W, y), (x + W, y + L), (x, y + L), (x, y)]
-    return Polygon([_TO_LONLAT.transform(px, py) for px, py in ring])
-
-
-def norm_factor(g, v):
-    """delta_t_norm_k / delta_t_k per CONTRACT.md: (1000 / G) * U(v) / U(1)."""
-    return (1000.0 / g) * (U0 + U1 * v) / (U0 + U1 * 1.0)
-
-
-def write_result(folder: Path, *, flight_id: str, start: str, end: str, conditions: dict,
-                 anomalies: list[dict], seed: int, site: str = "Heron Flats",
-                 drop: tuple[str, ...] = (), move: dict | None = None,
-                 valid: dict | None = None) -> Path:
-    """A result folder of one flight; ``anomalies`` give the normalised delta T [K]."""
-    rng = np.random.default_rng(seed)
-    g, v, ta = conditions["poa_irradiance_w_m2"], conditions["wind_m_s"], conditions["ambient_c"]
-    k = norm_factor(g, v)
-    rise = g / (U0 + U1 * v)  # Faiman steady rise of a healthy module [K]
-    move = move or {}
-    valid = valid or {}
-    per_module = {}
-    for a in anomalies:
-        for m in a.get("module_ids") or [a["module_id"]]:
-            per_module.setdefault(m, a)
-    feats = []
-    for mid in module_ids():
-        if mid in drop:
-            continue
-        ref = ta + rise + rng.normal(0, 0.2)
-        a = per_module.get(mid)
-        dtn = a["dtn"] if a and a["defect"] in ("bypassed_substring", "open_string", "open_module") \
-            else float(rng.normal(0, 0.3))
-        dt = dtn / k
-        t_med = ref + dt
-        feats.append({"type": "Feature", "geometry": mapping(footprint(mid, *move.get(mid, (0, 0)))),
-                      "properties": {
-                          "module_id": mid, "table_id": mid[:3],
-                          "t_mean_c": round(t_med + 0.1, 3), "t_median_c": round(t_med, 3),
-                          "t_p95_c": round(t_med + 1.0, 3),
-                          "t_max_c": round(t_med + (a["dtn"] / k if a else 1.5), 3),
-                          "t_min_c": round(t_med - 1.5, 3), "t_std_k": 0.6,
-                          "valid_fraction": valid.get(mid, 0.97), "reference_c": round(ref, 3),
-                          "delta_t_k": round(dt, 3), "delta_t_norm_k": round(dtn, 3),
-                          "defect": a["defect"] if a else None,
-                          "power_loss_w": a.get("loss", 0.0) / len(a.get("module_ids", [1])) if a else 0.0}})
-    afeats = []
-    for i, a in enumerate(anomalies, start=1):
-        mids = a.get("module_ids") or [a["module_id"]]
-        afeats.append({"type": "Feature", "geometry": mapping(footprint(mids[0])),
-                       "properties": {
-                           "anomaly_id": f"{flight_id}-A{i:03d}", "module_id": mids[0],
-                           "module_ids": mids, "defect": a["defect"], "severity": a["severity"],
-                           "delta_t_k": round(a["dtn"] / k, 3), "delta_t_norm_k": a["dtn"],
-                           "t_max_c": 60.0, "power_loss_w": a.get("loss", 0.0),
-                           "energy_loss_kwh_per_year": a.get("loss", 0.0) * 1.15,
-                           "priority": i, "confidence": 0.9}})
-    folder.mkdir(parents=True, exist_ok=True)
-    for name, fs in (("modules.geojson", feats), ("anomalies.geojson", afeats)):
-        (folder / name).write_text(json.dumps({"type": "FeatureCollection", "features": fs}))
-    with open(folder / "workorders.csv", "w", newline="") as fh:
-        w = csv.writer(fh)
-        w.writerow(["priority", "module_id", "defect", "severity"])
-        for f in afeats:
-            p = f["properties"]
-            w.writerow([p["priority"], p["module_id"], p["defect"], p["severity"]])
-    summary = {"site": {"name": site}, "flight": {"id": flight_id, "start": start, "end": end},
-               "conditions": conditions, "counts": {}, "layout_shift_m": [0.0, 0.0],
-               "pvscan_version": "0.1.0"}
-    (folder / "summary.json").write_text(json.dumps(summary))
-    return folder
-
-
-# conditions of two seasons: normalised delta T is what stays comparable
-SPRING = {"poa_irradiance_w_m2": 720.0, "ambient_c": 12.0, "wind_m_s": 3.5}
-SUMMER = {"poa_irradiance_w_m2": 960.0, "ambient_c": 29.0, "wind_m_s": 0.8}
-
-BEFORE = [
-    {"module_id": "T01-R1-C01", "defect": "hot_cell", "severity": "repair", "dtn": 12.0, "loss": 20},
-    {"module_id": "T01-R1-C02", "defect": "hot_cell", "severity": "monitor", "dtn": 8.0, "loss": 10},
-    {"module_id": "T01-R1-C03", "defect": "hot_cell", "severity": "monitor", "dtn": 9.0, "loss": 10},
-    {"module_id": "T01-R1-C04", "defect": "bypassed_substring", "severity": "repair", "dtn": 6.0, "loss": 130},
-    {"module_id": "T01-R1-C05", "defect": "hot_cell", "severity": "repair", "dtn": 15.0, "loss": 20},
-    {"module_id": "T01-R1-C06", "defect": "junction_box", "severity": "safety", "dtn": 25.0, "loss": 5},
-    {"module_ids": ["T02-R1-C01", "T02-R1-C02", "T02-R1-C03"], "defect": "open_string",
-     "severity": "repair", "dtn": 4.0, "loss": 1200},
-    {"module_id": "T02-R2-C01", "defect": "hot_cell", "severity": "monitor", "dtn": 10.0, "loss": 10},
-    {"module_id": "T02-R2-C02", "defect": "soiling", "severity": "monitor", "dtn": 3.0, "loss": 8},
-    {"module_id": "T02-R2-C03", "defect": "hot_cell", "severity": "monitor", "dtn": 7.0, "loss": 10},
-]
-AFTER = [
-    {"module_id": "T01-R1-C01", "defect": "hot_cell", "severity": "repair", "dtn": 12.8, "loss": 20},
-    {"module_id": "T01-R1-C02", "defect": "hot_cell", "severity": "repair", "dtn": 16.0, "loss": 25},
-    {"module_id": "T01-R1-C03", "defect": "bypassed_substring", "severity": "repair", "dtn": 5.0, "loss": 130},
-    {"module_id": "T01-R1-C04", "defect": "bypassed_substring", "severity": "monitor", "dtn": 2.5, "loss": 130},
-    {"module_ids": ["T02-R1-C01", "T02-R1-C02", "T02-R1-C03"], "defect": "open_string",
-     "severity": "repair", "dtn": 4.3, "loss": 1200},
-    {"module_id": "T02-R2-C01", "defect": "hot_cell", "severity": "monitor", "dtn": 12.4, "loss": 10},
-    {"module_id": "T01-R2-C01", "defect": "several_hot_cells", "severity": "repair", "dtn": 14.0, "loss": 40},
-]
-EXPECTED = {  # module -> (change, repaired, suspicious)
-    "T01-R1-C01": ("persisting", False, False),   # +0.8 K, within max(2, 3) K
-    "T01-R1-C02": ("worsened", False, False),     # +8 K beyond max(2, 2) K
-    "T01-R1-C03": ("worsened", False, False),     # hot cell -> bypassed substring (pattern)
-    "T01-R1-C04": ("improved", False, False),     # -3.5 K beyond max(2, 1.5) K
-    "T01-R1-C05": ("resolved", True, False),      # replaced between the flights
-    "T01-R1-C06": ("resolved", False, True),      # vanished without any maintenance
-    "T02-R1-C01": ("persisting", False, False),   # open string, every module of the run
-    "T02-R1-C02": ("persisting", False, False),
-    "T02-R1-C03": ("persisting", False, False),
-    "T02-R2-C01": ("persisting", False, False),   # +2.4 K, within max(2, 2.5) K
-    "T02-R2-C02": ("resolved", True, False),      # soiling, cleaned
-    "T02-R2-C03": ("resolved", False, True),      # hot cell does not go away by cleaning
-    "T01-R2-C01": ("new", False, False),
-}
-EVENTS = [
-    ("2026-05-20", "T01-R1-C05", "replace", "module swapped, same type"),
-    ("2026-06-02T09:00:00+02:00", "T02-R2-C02", "clean", "table 2 row 2 washed"),
-    ("2026-06-02", "T02-R2-C03", "clean", "table 2 row 2 washed"),
-    ("2026-01-10", "T01-R1-C06", "repair", "before both flights: explains nothing"),
-]
-
 
 @pytest.fixture
 def site(tmp_path):
-    a = write_result(tmp_path / "r_spring", flight_id="HF-2026-04", start="2026-04-15T10:30:00+02:00",
-                     end="2026-04-15T11:10:00+02:00", conditions=SPRING, anomalies=BEFORE, seed=1)
-    b = write_result(tmp_path / "r_summer", flight_id="HF-2026-07", start="2026-07-09T12:05:00+02:00",
-                     end="2026-07-09T12:50:00+02:00", conditions=SUMMER, anomalies=AFTER, seed=2)
-    ev = tmp_path / "events.csv"
-    with open(ev, "w", newline="") as fh:
-        w = csv.writer(fh)
-        w.writerow(["date", "module_id", "action", "note"])
-        w.writerows(EVENTS)
-    return {"a": a, "b": b, "events": ev, "db": tmp_path / "heron.gpkg", "tmp": tmp_path}
-
-
-def sha(path: Path) -> str:
-    return hashlib.sha256(path.read_bytes()).hexdigest()
-
-
-def props_by_module(fc):
-    return {f["properties"]["module_id"]: f["properties"] for f in fc["features"]}
-
+    return make_site(tmp_path)
 
 # ------------------------------------------------------------------------------------------
 
@@ -453,183 +302,6 @@ def test_explicit_from_to_and_errors(site):
         H.compare_flights(site["db"], "nope", "HF-2026-07")
     with pytest.raises(HistoryError, match="both"):
         H.compare_flights(site["db"], "HF-2026-04", None)
-
-
-def test_maintenance_csv_errors_name_the_line(tmp_path, site):
-    H.add_flight(site["db"], site["a"])
-    bad = tmp_path / "bad.csv"
-    bad.write_text("date,module_id,action,note\n2026-05-01,T01-R1-C01,repair,ok\n"
-                   "2026-05-02,T01-R1-C02,paint,no\n")
-    with pytest.raises(HistoryError, match=r"bad.csv: line 3: action 'paint'"):
-        H.import_maintenance(site["db"], bad)
-    bad.write_text("date,module_id,action,note\n05/01/2026,T01-R1-C01,repair,\n")
-    with pytest.raises(HistoryError, match="line 2: date"):
-        H.import_maintenance(site["db"], bad)
-    bad.write_text("when,module_id,action\n")
-    with pytest.raises(HistoryError, match="missing column date"):
-        H.import_maintenance(site["db"], bad)
-    unknown = tmp_path / "unknown.csv"
-    unknown.write_text("date,module_id,action,note\n2026-05-01,T01-R1-C01,replace,\n2026-05-01,T09-R9-C99,replace,\n")
-    before = sha(site["db"])
-    with pytest.raises(HistoryError, match=r"unknown.csv: line 3: module_id 'T09-R9-C99' is not in the site layout"):
-        H.import_maintenance(site["db"], unknown)
-    assert sha(site["db"]) == before  # nothing imported
-
-
-def test_maintenance_csv_as_spreadsheets_write_it(tmp_path, site):
-    """';' separators (spreadsheets with a decimal comma), capitalised headers with spaces, a
-    byte-order mark and actions in capitals are read as the plain form."""
-    H.add_flight(site["db"], site["a"])
-    semi = tmp_path / "semi.csv"
-    semi.write_bytes("\ufeffDate;Module ID;Action;Note\n2026-05-20;T01-R1-C05;Replace;swapped, same type\n"
-                     "2026-06-02;T02-R2-C02;CLEAN;\n".encode("utf-8"))
-    ev = H.read_maintenance_csv(semi)
-    assert ev[["date", "module_id", "action", "note"]].values.tolist() == [
-        ["2026-05-20", "T01-R1-C05", "replace", "swapped, same type"], ["2026-06-02", "T02-R2-C02", "clean", ""]]
-    tabbed = tmp_path / "tab.csv"
-    tabbed.write_text("DATE\tMODULE_ID\tACTION\n2026-05-20\tT01-R1-C05\treplace\n")
-    assert H.read_maintenance_csv(tabbed)["module_id"].tolist() == ["T01-R1-C05"]
-    res = H.import_maintenance(site["db"], semi)
-    assert (res.n_read, res.n_added) == (2, 2)
-    plain = tmp_path / "plain.csv"
-    plain.write_text("date,module_id,action,note\n2026-05-20,T01-R1-C05,replace,\"swapped, same type\"\n")
-    assert H.import_maintenance(site["db"], plain).n_added == 0  # the same event, already stored
-
-
-def test_repair_that_did_not_help_is_persists_after_repair(site, tmp_path):
-    """A hot spot recorded as replaced (and one as repaired) between the flights and still
-    there in the later flight is a failed repair, listed first; a cleaning does not explain
-    a hot cell, so that one stays an ordinary change."""
-    H.add_flight(site["db"], site["a"])
-    H.add_flight(site["db"], site["b"])
-    ev = tmp_path / "ev.csv"
-    ev.write_text("date,module_id,action,note\n2026-05-20,T01-R1-C01,replace,new module fitted\n"
-                  "2026-05-21,T01-R1-C02,repair,connector redone\n2026-05-21,T02-R2-C01,clean,washed\n"
-                  "2026-01-01,T01-R1-C04,replace,before both flights\n")
-    H.import_maintenance(site["db"], ev)
-    fc = H.compare_flights(site["db"])
-    p = props_by_module(fc)
-    assert p["T01-R1-C01"]["change"] == "persists_after_repair"
-    assert p["T01-R1-C01"]["maintenance_events"] == [{"date": "2026-05-20", "action": "replace",
-                                                      "note": "new module fitted"}]
-    assert p["T01-R1-C02"]["change"] == "persists_after_repair"  # and it got worse
-    assert p["T02-R2-C01"]["change"] == "persisting"  # cleaning does not fix a hot cell
-    assert p["T01-R1-C04"]["change"] == "improved"  # the replacement was before both flights
-    assert fc["counts"]["persists_after_repair"] == 2
-    assert [f["properties"]["change"] for f in fc["features"][:2]] == ["persists_after_repair"] * 2
-    assert schema_errors(fc, load_schema("changes.schema.json")) == []
-    r = run(["history", "changes", site["db"], "--out", tmp_path / "c.geojson"])
-    assert r.exit_code == 0, r.output
-    lines = r.stdout.splitlines()
-    assert lines[0].split(": ", 1)[1].startswith("2 persists after repair, ")
-    assert "failed repairs" in lines[1] and lines[2].strip().startswith("T01-R1-C01: hot_cell -> hot_cell")
-    assert "2026-05-20 replace (new module fitted)" in lines[2]
-
-
-def test_normalised_rise_against_pvlib_faiman():
-    """pvlib.temperature.faiman gives T_m of a module following Faiman (2008) at any G, v;
-    normalising its rise must give the rise at 1000 W/m2 and 1 m/s in every condition."""
-    from pvlib.temperature import faiman
-
-    rng = np.random.default_rng(3)
-    g = rng.uniform(600, 1100, 50)
-    v = rng.uniform(0, 8, 50)
-    ta = rng.uniform(-5, 38, 50)
-    tm = faiman(g, ta, v, u0=U0, u1=U1)
-    got = H.normalised_rise(tm, ta, g, v, U0, U1)
-    ref = faiman(1000.0, 0.0, 1.0, u0=U0, u1=U1)
-    np.testing.assert_allclose(got, ref, rtol=1e-12)  # exact algebra: float64 rounding only
-    assert math.isnan(H.normalised_rise(40.0, 20.0, 0.0, 1.0))
-
-
-def test_trend_counts_losses_and_plots(site, tmp_path):
-    H.add_flight(site["db"], site["b"])
-    H.add_flight(site["db"], site["a"])
-    tr = H.site_trend(site["db"])
-    fl = tr.flights
-    assert list(fl["flight_id"]) == ["HF-2026-04", "HF-2026-07"]
-    assert list(fl["count_hot_cell"]) == [6, 3]
-    assert list(fl["count_open_string"]) == [1, 1]
-    assert list(fl["severity_safety"]) == [1, 0]
-    assert list(fl["n_anomalies"]) == [len(BEFORE), len(AFTER)]
-    # module shares of the open string add up to the run's loss: no double count
-    assert fl["total_power_loss_w"].tolist() == pytest.approx(
-        [sum(a["loss"] for a in BEFORE), sum(a["loss"] for a in AFTER)])
-    assert fl["total_energy_loss_kwh_per_year"].tolist() == pytest.approx(
-        [1.15 * sum(a["loss"] for a in BEFORE), 1.15 * sum(a["loss"] for a in AFTER)])
-    # healthy modules follow Faiman: the normalised rise is 1000 / (u0 + u1) in both seasons
-    assert fl["median_rise_norm_k"].tolist() == pytest.approx([1000 / (U0 + U1)] * 2, abs=0.5)
-    assert fl["median_t_module_c"].iloc[1] > fl["median_t_module_c"].iloc[0] + 15
-    assert len(tr.modules) == 48
-    assert list(tr.modules.columns[:3]) == ["flight_id", "start", "module_id"]
-    out = tmp_path / "trend"
-    paths = H.write_trend(tr, out)
-    assert sorted(p.name for p in paths) == ["counts.png", "flights.csv", "loss.png", "modules.csv",
-                                             "temperature.png"]
-    for p in paths:
-        assert p.stat().st_size > 0
-    assert (out / "counts.png").read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
-    with pytest.raises(OutputError, match="not empty"):
-        H.write_trend(tr, out)
-    H.write_trend(tr, out, overwrite=True)
-    assert not [p for p in tmp_path.iterdir() if p.name.startswith(".trend")]
-
-
-# ------------------------------------------------------------------------------------------
-# CLI
-
-
-def run(args):
-    return CliRunner().invoke(cli, [str(a) for a in args])
-
-
-def test_cli_commands(site, tmp_path):
-    r = run(["history", "add", site["db"], site["a"]])
-    assert r.exit_code == 0, r.output
-    assert "created site history" in r.stdout
-    r = run(["history", "add", site["db"], site["a"]])
-    assert r.exit_code == 0 and "unchanged" in r.stdout
-    assert run(["history", "add", site["db"], site["b"]]).exit_code == 0
-    r = run(["history", "maintenance", site["db"], site["events"]])
-    assert r.exit_code == 0 and "4 new" in r.stdout
-    r = run(["history", "list", site["db"]])
-    assert r.exit_code == 0
-    assert "HF-2026-04" in r.stdout and "HF-2026-07" in r.stdout
-    out = tmp_path / "changes.geojson"
-    r = run(["history", "changes", site["db"], "--out", out])
-    assert r.exit_code == 0, r.output
-    assert "1 new, 5 persisting, 2 worsened, 1 improved, 4 resolved" in r.stdout
-    assert "qualified" in r.stdout  # the on-site caution accompanies suspicious resolutions
-    fc = json.loads(out.read_text())
-    assert fc["type"] == "FeatureCollection" and len(fc["features"]) == 13
-    # like every writer, changes replaces an existing file only with --overwrite
-    before = out.read_bytes()
-    r = run(["history", "changes", site["db"], "--from", "HF-2026-07", "--to", "HF-2026-04", "--out", out])
-    assert r.exit_code == 1 and "--overwrite" in r.stderr and out.read_bytes() == before
-    r = run(["history", "changes", site["db"], "--from", "HF-2026-07", "--to", "HF-2026-04", "--out", out,
-             "--overwrite"])
-    assert r.exit_code == 0, r.output
-    assert json.loads(out.read_text())["flight_before"]["flight_id"] == "HF-2026-07"
-    r = run(["history", "trend", site["db"], "--out", tmp_path / "tr"])
-    assert r.exit_code == 0, r.output
-    assert (tmp_path / "tr" / "loss.png").exists()
-
-
-def test_cli_errors_are_one_line(site, tmp_path):
-    junk = tmp_path / "junk.gpkg"
-    junk.write_bytes(b"not a database at all" * 10)
-    for args in (["history", "add", junk, site["a"]],
-                 ["history", "list", tmp_path / "none.gpkg"],
-                 ["history", "add", site["db"], tmp_path / "no_such_dir"],
-                 ["history", "changes", junk, "--out", tmp_path / "c.geojson"]):
-        r = run(args)
-        assert r.exit_code == 1, (args, r.output)
-        lines = r.stderr.strip().splitlines()
-        assert len(lines) == 1 and lines[0].startswith("pvscan: error: "), r.stderr
-        assert "Traceback" not in r.output
-    assert not (tmp_path / "c.geojson").exists()
-    r = run(["history", "changes", site["db"]])  # --out missing: click usage error
-    assert r.exit_code == 2
 
 
 def test_change_invariants_on_random_flights(tmp_path):

@@ -11,8 +11,8 @@ import geopandas as gpd
 import numpy as np
 import pytest
 from click.testing import CliRunner
+from history_site import SPRING, SUMMER, write_result
 from matplotlib.dates import date2num
-from test_history import SPRING, SUMMER, write_result
 
 from pvscan import history as H
 from pvscan.cli.main import cli

@@ -252,7 +252,8 @@ def test_simulated_flight_workorders_stand_alone(inspected):
     assert bands == sorted(bands)  # every safety item first, monitor items after repairs
     prio = [BANDS.index(r["severity"]) for r in rows]  # the file itself is in priority order
     assert prio == sorted(prio) and [r["priority"] for r in rows] == list(range(1, len(rows) + 1))
-    assert outputs.validate_output(inspected)["workorders.csv"] == []
+    report = outputs.validate_output(inspected)
+    assert report["workorders.csv"] == [] and report["workorders.gpx"] == []
 
 
 def test_simulated_flight_gpx_opens_with_gdal(inspected):

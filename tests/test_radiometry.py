@@ -433,3 +433,17 @@ def test_uncertainty_against_monte_carlo():
     # with eps = 1 the glass reflects nothing: the sky's uncertainty does not matter
     only_sky = rad.temperature_uncertainty(45.0, emissivity=1.0, temp_sky_c=-30.0, emissivity_sd=0.0)
     assert only_sky == pytest.approx(0.0, abs=1e-6)
+
+
+def test_topic_modules_and_radiometry_share_one_copy_of_each_function():
+    # The physics is split by topic; pvscan.physics.radiometry keeps the public names of all.
+    from pvscan.physics import atmosphere, planck, sky
+
+    for mod in (planck, sky, atmosphere):
+        for name in mod.__all__:
+            assert name in rad.__all__ and getattr(rad, name) is getattr(mod, name), name
+    # and the split changed no value: Wien's displacement law (CODATA via scipy.constants) puts
+    # the spectral peak of a 300 K black body at b / T
+    lam = C.Wien / 300.0
+    peak = planck.planck_spectral_radiance(np.array([0.999, 1.0, 1.001]) * lam, 300.0)
+    assert peak[1] > peak[0] and peak[1] > peak[2]

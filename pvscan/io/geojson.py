@@ -17,7 +17,7 @@ import shapely
 __all__ = ["shapes"]
 
 
-def _plain_polygon_rings(g):
+def _plain_polygon_rings(g: object) -> list | None:
     """The rings of a plain GeoJSON Polygon member (closed, 4+ positions each), else None."""
     if type(g) is not dict or g.get("type") != "Polygon":
         return None

@@ -41,7 +41,7 @@ class HeldLock:
     def __enter__(self) -> HeldLock:
         return self
 
-    def __exit__(self, *exc) -> None:
+    def __exit__(self, *exc: object) -> None:
         self.release()
 
 

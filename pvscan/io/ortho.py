@@ -40,6 +40,7 @@ from rasterio.errors import NotGeoreferencedWarning, RasterioError, RasterioIOEr
 from rasterio.windows import Window
 
 from pvscan.errors import OrthoError
+from pvscan.io.settings import section
 
 __all__ = ["Tile", "OrthoSet", "open_orthos", "read_window", "KELVIN_OFFSET"]
 
@@ -126,16 +127,6 @@ def _get(spec: Any, key: str, default: Any = None) -> Any:
     return getattr(spec, key, default)
 
 
-def _zonal_section(settings: Any) -> Mapping:
-    if settings is None:
-        from pvscan.io.settings import load_pipeline
-
-        return load_pipeline()["zonal"]
-    if isinstance(settings, Mapping) and "zonal" in settings and isinstance(settings["zonal"], Mapping):
-        return settings["zonal"]
-    return settings
-
-
 def _as_window(window: Any) -> Window:
     if isinstance(window, Window):
         return window
@@ -184,7 +175,7 @@ def _to_celsius(raw: np.ndarray, tile: Tile, mask: np.ndarray | None = None) -> 
     return out
 
 
-def _read_into(ds, tile: Tile, window: Window) -> np.ndarray:
+def _read_into(ds: Any, tile: Tile, window: Window) -> np.ndarray:
     """Read a window (possibly reaching beyond the raster: padded with NaN) [degC]."""
     window = Window(int(window.col_off), int(window.row_off), int(window.width), int(window.height))
     h, w = int(window.height), int(window.width)
@@ -207,7 +198,7 @@ def _read_into(ds, tile: Tile, window: Window) -> np.ndarray:
     return out
 
 
-def _gdal_env(cache_mb: int | None):
+def _gdal_env(cache_mb: int | None) -> rasterio.Env:
     """A rasterio environment bounding GDAL's block cache to ``cache_mb`` [MB].
 
     rasterio hands the value to ``GDALSetCacheMax64``, which takes bytes.
@@ -257,7 +248,7 @@ def _check_crs(path: Path, crs: CRS | None) -> None:
         raise OrthoError(f"{path}: CRS {crs.to_string()} is in {unit}, not metres")
 
 
-def _open_one(path: Path, index: int, spec: Any, zonal: Mapping):
+def _open_one(path: Path, index: int, spec: Any, zonal: Mapping) -> tuple[Any, Tile]:
     if not path.exists():
         raise OrthoError(f"{path}: ortho file not found")
     if not path.is_file():
@@ -304,8 +295,8 @@ def _open_one(path: Path, index: int, spec: Any, zonal: Mapping):
             nodata=None if nodata is None else float(nodata),
             scale=scale,
             offset_c=offset - KELVIN_OFFSET if units == "kelvin" else offset,
-            valid_min_c=float(zonal.get("plausible_min_c", -60.0)),
-            valid_max_c=float(zonal.get("plausible_max_c", 250.0)),
+            valid_min_c=float(zonal["plausible_min_c"]),
+            valid_max_c=float(zonal["plausible_max_c"]),
             has_mask=bool(has_mask),
         )
     except BaseException:
@@ -346,7 +337,7 @@ class OrthoSet:
     def __enter__(self) -> OrthoSet:
         return self
 
-    def __exit__(self, *exc) -> None:
+    def __exit__(self, *exc: object) -> None:
         self.close()
 
     def close(self) -> None:
@@ -365,7 +356,7 @@ class OrthoSet:
     def __repr__(self) -> str:
         return f"OrthoSet({len(self.tiles)} tiles, crs={self.crs.to_string()}, gsd={self.gsd_m:.4f} m)"
 
-    def _env(self):
+    def _env(self) -> rasterio.Env:
         return _gdal_env(self.cache_mb)
 
     # reads -----------------------------------------------------------------------
@@ -545,7 +536,7 @@ def open_orthos(paths: Any, spec: Any = None, settings: Any = None) -> OrthoSet:
     path_list = _normalise_paths(paths)
     if not path_list:
         raise OrthoError("flight.orthos: no ortho file given")
-    zonal = _zonal_section(settings)
+    zonal = section(settings, "zonal")
     cache_mb = zonal.get("gdal_cache_mb")
     datasets, tiles = [], []
     try:

@@ -12,7 +12,9 @@ import json
 from functools import cache
 from importlib import resources
 from importlib.resources.abc import Traversable
+from os import PathLike
 from pathlib import Path
+from typing import Any
 
 import jsonschema
 
@@ -46,7 +48,7 @@ def load_schema(name: str) -> dict:
     return json.loads(node.read_text(encoding="utf-8"))
 
 
-def schema_errors(instance, schema: dict) -> list[jsonschema.ValidationError]:
+def schema_errors(instance: Any, schema: dict) -> list[jsonschema.ValidationError]:
     """All validation errors of ``instance`` against a JSON Schema 2020-12, best first."""
     validator = jsonschema.Draft202012Validator(schema, format_checker=jsonschema.FormatChecker())
     return sorted(validator.iter_errors(instance), key=lambda e: (len(list(e.path)), str(e.path)))
@@ -67,7 +69,8 @@ def describe_error(err: jsonschema.ValidationError, prefix: str = "") -> str:
     return f"key {where}: {err.message}"
 
 
-def read_toml_file(path, error_cls, what: str = "file") -> dict:
+def read_toml_file(path: str | PathLike[str] | Traversable, error_cls: type[Exception],
+                   what: str = "file") -> dict:
     """Parse a TOML file, mapping every failure to ``error_cls`` with a one-line message.
 
     Parameters
@@ -95,7 +98,7 @@ def read_toml_file(path, error_cls, what: str = "file") -> dict:
         raise error_cls(f"{path}: cannot read: {exc.strerror}") from None
 
 
-def read_json_file(path, error_cls, missing: str = "file not found"):
+def read_json_file(path: str | PathLike[str], error_cls: type[Exception], missing: str = "file not found") -> Any:
     """Parse a JSON file, mapping every failure to ``error_cls`` with a one-line message."""
     path = Path(path)
     try:

@@ -8,7 +8,7 @@ with ``pvscan inspect --pipeline FILE``; keys left out of the copy keep their de
 """
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from functools import lru_cache
 from importlib.resources.abc import Traversable
 from pathlib import Path
@@ -36,7 +36,7 @@ def _sections() -> tuple[str, ...]:
 SECTIONS = _sections()
 
 
-def _freeze(obj):
+def _freeze(obj: Any) -> Any:
     if isinstance(obj, Mapping):
         return MappingProxyType({k: _freeze(v) for k, v in obj.items()})
     if isinstance(obj, list):
@@ -54,7 +54,7 @@ def _merge(base: dict, over: Mapping) -> dict:
     return out
 
 
-def _thaw(obj):
+def _thaw(obj: Any) -> Any:
     if isinstance(obj, Mapping):
         return {k: _thaw(v) for k, v in obj.items()}
     if isinstance(obj, tuple):
@@ -69,19 +69,19 @@ class Pipeline(Mapping):
         self._data = _freeze(data)
         self.path = path
 
-    def __getitem__(self, key):
+    def __getitem__(self, key: str) -> Any:
         try:
             return self._data[key]
         except KeyError:
             raise PipelineError(f"pipeline {self.path or '(default)'}: no section [{key}]") from None
 
-    def __iter__(self):
+    def __iter__(self) -> Iterator[str]:
         return iter(self._data)
 
-    def __contains__(self, key) -> bool:
+    def __contains__(self, key: object) -> bool:
         return key in self._data
 
-    def __len__(self):
+    def __len__(self) -> int:
         return len(self._data)
 
     def to_dict(self) -> dict:

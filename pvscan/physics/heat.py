@@ -37,6 +37,8 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike
 
+from pvscan.physics._arrays import FloatOrArray, as_output
+
 __all__ = [
     "Faiman",
     "faiman_u",
@@ -53,12 +55,6 @@ __all__ = [
 U0_FAIMAN_2008 = 25.0
 U1_FAIMAN_2008 = 6.84
 
-FloatOrArray = Any  # float for scalar input, numpy.ndarray otherwise
-
-
-def _out(x: np.ndarray) -> FloatOrArray:
-    x = np.asarray(x, dtype=float)
-    return float(x) if x.ndim == 0 else x
 
 
 def _wind(wind_speed: ArrayLike) -> np.ndarray:
@@ -87,7 +83,7 @@ def faiman_u(wind_speed: ArrayLike, u0: float, u1: float) -> FloatOrArray:
     ----------
     .. [1] D. Faiman, Progress in Photovoltaics 16(4), 307-315, 2008. doi:10.1002/pip.813
     """
-    return _out(float(u0) + float(u1) * _wind(wind_speed))
+    return as_output(float(u0) + float(u1) * _wind(wind_speed))
 
 
 def faiman_temperature(poa_global: ArrayLike, temp_air: ArrayLike, wind_speed: ArrayLike,
@@ -115,7 +111,7 @@ def faiman_temperature(poa_global: ArrayLike, temp_air: ArrayLike, wind_speed: A
     .. [1] D. Faiman, Progress in Photovoltaics 16(4), 307-315, 2008. doi:10.1002/pip.813
     """
     g = np.asarray(poa_global, dtype=float)
-    return _out(np.asarray(temp_air, dtype=float) + g / np.asarray(faiman_u(wind_speed, u0, u1)))
+    return as_output(np.asarray(temp_air, dtype=float) + g / np.asarray(faiman_u(wind_speed, u0, u1)))
 
 
 def open_module_rise(efficiency: ArrayLike, poa_global: ArrayLike, wind_speed: ArrayLike,
@@ -152,7 +148,7 @@ def open_module_rise(efficiency: ArrayLike, poa_global: ArrayLike, wind_speed: A
     g = np.asarray(poa_global, dtype=float)
     with np.errstate(invalid="ignore"):
         rise = np.where(g > 0, eta * g / np.asarray(faiman_u(wind_speed, u0, u1)), np.nan)
-    return _out(rise)
+    return as_output(rise)
 
 
 def normalise_delta_t(delta_t_k: ArrayLike, poa_global: ArrayLike, wind_speed: ArrayLike, *,
@@ -187,7 +183,7 @@ def normalise_delta_t(delta_t_k: ArrayLike, poa_global: ArrayLike, wind_speed: A
     with np.errstate(divide="ignore", invalid="ignore"):
         scale = np.where(g > 0, float(g_ref) / np.where(g > 0, g, 1.0), np.nan)
         out = dt * scale * (np.asarray(faiman_u(wind_speed, u0, u1)) / float(faiman_u(wind_ref, u0, u1)))
-    return _out(out)
+    return as_output(out)
 
 
 @dataclass(frozen=True)

@@ -188,7 +188,7 @@ def validate_output(out_dir: str | os.PathLike) -> dict[str, list[str]]:
     """Check every output file in ``out_dir`` against its JSON Schema (and RFC 7946 for GeoJSON).
 
     Returns a mapping ``file name -> problems`` (empty lists when valid); files that do not
-    exist are reported as missing.
+    exist are reported as missing (``workorders.gpx``, optional, is checked when present).
     """
     out_dir = Path(out_dir)
     report: dict[str, list[str]] = {}
@@ -212,4 +212,26 @@ def validate_output(out_dir: str | os.PathLike) -> dict[str, list[str]]:
         report["workorders.csv"] = probs
     else:
         report["workorders.csv"] = ["missing"]
+    g = out_dir / "workorders.gpx"
+    if g.exists():
+        report["workorders.gpx"] = _gpx_problems(g, None if report["workorders.csv"] == ["missing"]
+                                                 else len(read_workorders_csv(p)))
     return report
+
+
+def _gpx_problems(path: Path, n_rows: int | None) -> list[str]:
+    """A GPX 1.1 document with one waypoint per work order (XML well-formed, GPX namespace)."""
+    import xml.etree.ElementTree as ET
+
+    from pvscan.io.writers.gpx import GPX_NAMESPACE
+
+    try:
+        root = ET.parse(path).getroot()
+    except ET.ParseError as exc:
+        return [f"not well-formed XML: {exc}"]
+    if root.tag != f"{{{GPX_NAMESPACE}}}gpx" or root.get("version") != "1.1":
+        return ["not a GPX 1.1 document"]
+    n = len(root.findall(f"{{{GPX_NAMESPACE}}}wpt"))
+    if n_rows is not None and n > n_rows:
+        return [f"{n} waypoints for {n_rows} work orders"]
+    return []
