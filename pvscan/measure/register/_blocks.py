@@ -5,7 +5,7 @@ import logging
 import math
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING
 
 import numpy as np
 import scipy.fft
@@ -24,42 +24,6 @@ logger = logging.getLogger(__name__)
 
 ProgressFn = Callable[[str, int, int], None]
 
-# Defaults of the [register] section (pipelines/post_flight.toml holds the same values
-# with their sources); used for keys a caller leaves out.
-_DEFAULTS: dict[str, Any] = {
-    "enabled": True,
-    "max_shift_m": 3.0,
-    "block_m": 150.0,
-    "work_gsd_m": 0.10,
-    "supersample": 4,
-    "highpass_sigma_m": 3.0,
-    "clip_percentile": 1.0,
-    "whitening": 0.7,
-    "feature": "gradient",
-    "gradient_sigma_m": 0.1,
-    "upsample": 20,
-    "guard_factor": 2.0,
-    "exclusion_m": 0.35,
-    "ambiguity_ratio": 0.8,
-    "min_module_fraction": 0.02,
-    "min_valid_fraction": 0.2,
-    "snr_min": 6.0,
-    "snr_full": 20.0,
-    "distinct_full": 0.2,
-    "reject_m": 0.25,
-    "min_confidence": 0.3,
-    "min_shift_m": 0.02,
-    "follow_drift": True,
-    "apply_weak": False,
-    "require": False,
-    "plausibility": True,
-    "plausibility_ratio": 0.1,
-    "plausibility_candidates": 8,
-    "plausibility_modules": 300,
-    "plausibility_margin_k": 3.0,
-    "plausibility_max_error_k": 8.0,
-    "plausibility_inset": 0.2,
-}
 
 
 
@@ -67,22 +31,14 @@ _DEFAULTS: dict[str, Any] = {
 # helpers on blocks
 # --------------------------------------------------------------------------------------
 def _settings(settings) -> dict:
-    out = dict(_DEFAULTS)
-    if settings is None:
-        try:
-            from pvscan.io.settings import load_pipeline
-
-            settings = load_pipeline()["register"]
-        except Exception:  # defaults above are the same values
-            settings = {}
-    if isinstance(settings, Mapping) and "register" in settings and isinstance(settings["register"], Mapping):
-        settings = settings["register"]
-    for k, v in dict(settings).items():
-        out[k] = v
+    """The ``[register]`` section: the keys given over the defaults of the pipeline file."""
     from pvscan.errors import PipelineError
     from pvscan.io.resources import describe_error, load_schema, schema_errors
+    from pvscan.io.settings import section
 
-    errs = schema_errors(out, load_schema("pipeline/register.schema.json"))
+    out = dict(section(settings, "register"))
+    plain = {k: (list(v) if isinstance(v, tuple) else v) for k, v in out.items()}
+    errs = schema_errors(plain, load_schema("pipeline/register.schema.json"))
     if errs:
         raise PipelineError(f"[register] settings: {describe_error(errs[0], prefix='register.')}")
     return out

@@ -5,7 +5,7 @@ import logging
 import math
 from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -116,6 +116,9 @@ class Registration:
     contrast: str = ""
     model: tuple[float, float, float, float, float, float] | None = None
     follow_drift: bool = False
+    placement: Any = None
+    evidence: dict = field(default_factory=dict)
+    status: str = ""
 
     def shift_at(self, x, y) -> tuple[np.ndarray, np.ndarray]:
         """Applied shift at map points (x, y) [m] (zeros when nothing was applied)."""
@@ -142,6 +145,9 @@ class Registration:
             "message": self.message,
             "notes": list(self.notes),
             "blocks": [b.to_dict() for b in self.blocks],
+            "status": self.status,
+            "placement": self.placement.to_dict() if self.placement is not None else None,
+            "evidence": self.evidence,
         }
 
 
