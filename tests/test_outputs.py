@@ -19,13 +19,13 @@ import pytest
 from pyproj import Transformer
 from shapely.geometry import Polygon, shape
 
-from pvscan.io import outputs
-from pvscan.io.writers import atomic
-from pvscan.errors import OutputError
 from pvscan.diagnose.loss import estimate_loss
-from pvscan.io.manifest import ModuleSpec
 from pvscan.diagnose.rank import rank
+from pvscan.errors import OutputError
+from pvscan.io import outputs
+from pvscan.io.manifest import ModuleSpec
 from pvscan.io.resources import load_schema, schema_errors
+from pvscan.io.writers import atomic
 
 CRS = "EPSG:32632"  # UTM 32N; the invented site lies near 47.6 N, 9.4 E
 L, W, GAP = 2.0, 1.0, 0.02
@@ -135,7 +135,8 @@ def test_modules_geojson_rfc7946_and_schema(tmp_path, result, flip):
     assert len(doc["features"]) == len(mods)
     for f in doc["features"]:
         for lon, lat in _all_positions(f["geometry"]):
-            assert _decimals(lon) <= 7 and _decimals(lat) <= 7  # rounded to 7 decimals, ~1 cm (RFC 7946 section 11.2 on precision)
+            # rounded to 7 decimals, ~1 cm (RFC 7946 section 11.2 on precision)
+            assert _decimals(lon) <= 7 and _decimals(lat) <= 7
     props = {f["properties"]["module_id"]: f["properties"] for f in doc["features"]}
     assert props["T1-R1-C3"]["defect"] is None and props["T1-R1-C3"]["power_loss_w"] == 0.0
     assert props["T2-R1-C4"]["t_std_k"] is None  # NaN -> null

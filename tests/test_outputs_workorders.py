@@ -183,7 +183,8 @@ def test_geopackage_has_an_sld_style_per_layer(tmp_path):
     con = sqlite3.connect(path)
     try:
         cols = [r[1] for r in con.execute("PRAGMA table_info(layer_styles)")]
-        styles = con.execute("SELECT f_table_name, f_geometry_column, styleSLD, useAsDefault FROM layer_styles").fetchall()
+        styles = con.execute("SELECT f_table_name, f_geometry_column, styleSLD, useAsDefault "
+                             "FROM layer_styles").fetchall()
         geom_cols = dict(con.execute("SELECT table_name, column_name FROM gpkg_geometry_columns"))
     finally:
         con.close()

@@ -8,6 +8,7 @@ import os
 import sys
 import traceback
 import warnings
+from typing import Any
 
 import click
 
@@ -112,7 +113,7 @@ class Progress:
 
     def __init__(self, enabled: bool = True):
         self.enabled = enabled and verbosity() >= 0 and sys.stderr.isatty()
-        self._bars: dict[str, object] = {}
+        self._bars: dict[str, Any] = {}
         self._done: dict[str, int] = {}
 
     def __call__(self, stage: str, done: int, total: int) -> None:

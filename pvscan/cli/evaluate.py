@@ -27,9 +27,8 @@ def evaluate_cmd(truth_dir, result_dir, json_path, pipeline_path, force):
     (site, flight id or start time) unless --force is given.
     """
     from pvscan.evaluate import evaluate, format_report
-    from pvscan.io.settings import load_pipeline
-
     from pvscan.io.outputs import atomic_write
+    from pvscan.io.settings import load_pipeline
 
     scores = evaluate(truth_dir, result_dir, load_pipeline(pipeline_path)["evaluate"], force=force)
     if scores["flight_check"]["forced"]:

@@ -21,7 +21,8 @@ from pvscan.cli._common import EXIT_INPUT, Progress, echo, handle_errors
 @click.option("--overwrite", is_flag=True, help="Replace existing result folders.")
 @click.option("--no-report", is_flag=True, help="Do not write report.html files.")
 @handle_errors
-def fleet_cmd(flights, out_dir, pipeline_path, scheduler, workers, overwrite, no_report):
+def fleet_cmd(flights: tuple[Path, ...], out_dir: Path, pipeline_path: Path | None, scheduler: str,
+              workers: int | None, overwrite: bool, no_report: bool) -> None:
     """Inspect many flights (FLIGHT.toml files) in parallel with Dask.
 
     A flight that fails is reported and leaves no result folder; the others go on. Exit

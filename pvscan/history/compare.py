@@ -306,8 +306,9 @@ def compare_flights(db_path: str | Path, flight_from: str | None = None, flight_
         g = rec.pop("geometry")
         props = {k: (None if isinstance(v, float) and math.isnan(v) else v) for k, v in rec.items()}
         for k in ("delta_t_norm_k_before", "delta_t_norm_k_after", "moved_m"):
-            if props[k] is not None:
-                props[k] = round(float(props[k]), 3)
+            val = props[k]
+            if val is not None:
+                props[k] = round(float(val), 3)
         features.append({"type": "Feature", "id": rec["module_id"],
                          "geometry": None if g is None else _rfc7946(g),
                          "properties": props})

@@ -13,7 +13,7 @@ import sqlite3
 import struct
 import time
 import uuid
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
@@ -159,7 +159,7 @@ _LAYERS = (
 
 
 def _now() -> str:
-    return datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%fZ")[:-4] + "Z"
+    return datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ")[:-4] + "Z"
 
 
 def _create_schema(con: sqlite3.Connection, site: str) -> None:
@@ -289,7 +289,7 @@ def _check_metadata(con: sqlite3.Connection, path: Path) -> dict | None:
                            f"not {APPLICATION!r}; left unchanged")
     raw = meta.get("schema_version")
     try:
-        version = int(raw)
+        version = int(raw)  # type: ignore[arg-type]  # None raises TypeError, caught below
     except (TypeError, ValueError):
         raise HistoryError(f"{path}: unknown site-history schema_version {raw!r}; left unchanged") from None
     if version > SCHEMA_VERSION:

@@ -5,7 +5,7 @@ import hashlib
 import json
 import math
 from dataclasses import dataclass
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
@@ -200,8 +200,8 @@ def content_hash(result: FlightResult) -> str:
     """
     h = hashlib.sha256()
     ident = {"site": result.site, "flight_id": result.flight_id,
-             "start": result.start.astimezone(timezone.utc).isoformat(),
-             "end": result.end.astimezone(timezone.utc).isoformat() if result.end else None}
+             "start": result.start.astimezone(UTC).isoformat(),
+             "end": result.end.astimezone(UTC).isoformat() if result.end else None}
     h.update(json.dumps(ident, sort_keys=True).encode())
     for name, df, key in (("modules", result.modules, "module_id"),
                           ("anomalies", result.anomalies, "anomaly_id")):

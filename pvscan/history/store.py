@@ -8,7 +8,7 @@ import sqlite3
 import warnings
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass
-from datetime import timezone
+from datetime import UTC
 from pathlib import Path
 
 import numpy as np
@@ -274,7 +274,7 @@ def add_flight(db_path: str | Path, result_dir: str | Path, *, replace: bool = F
             "total_energy_loss_kwh_per_year, layout_json, pvscan_version, source, added_at) "
             "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
             (result.flight_id, result.site, result.start.isoformat(),
-             result.start.astimezone(timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%fZ"),
+             result.start.astimezone(UTC).strftime("%Y-%m-%dT%H:%M:%S.%fZ"),
              result.end.isoformat() if result.end else None,
              json.dumps(result.conditions, sort_keys=True),
              json.dumps(result.summary, sort_keys=True), digest, len(result.modules),

@@ -5,7 +5,7 @@ import json
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
 
 import numpy as np
@@ -211,7 +211,7 @@ def trend_figures(trend: Trend) -> dict:
 
     fl = trend.flights
     # naive UTC datetimes: matplotlib dates, no time-zone conversions
-    x = pd.DatetimeIndex([datetime.fromisoformat(s).astimezone(timezone.utc).replace(tzinfo=None)
+    x = pd.DatetimeIndex([datetime.fromisoformat(s).astimezone(UTC).replace(tzinfo=None)
                           for s in fl["start"]])
     labels = list(fl["flight_id"])
     figures = {}

@@ -11,5 +11,5 @@ References
 """
 from __future__ import annotations
 
-from pvscan.io.writers import *  # noqa: F401,F403
+from pvscan.io.writers import *  # noqa: F403
 from pvscan.io.writers import __all__  # noqa: F401

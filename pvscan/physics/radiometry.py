@@ -477,8 +477,9 @@ def flight_radiometry(flight: Flight, conditions: Any,
     conditions : pandas.DataFrame
         Per-module conditions from :func:`pvscan.measure.conditions.module_conditions`
         (``temp_sky``, ``temp_air``, ``relative_humidity``).
-    settings : Mapping, optional
-        The ``[radiometry]`` pipeline section; default from ``pipelines/post_flight.toml``.
+    settings : Pipeline or Mapping, optional
+        The pipeline or its ``[radiometry]`` section (keys not given keep the defaults of
+        ``pipelines/post_flight.toml``).
 
     Returns
     -------
@@ -486,17 +487,16 @@ def flight_radiometry(flight: Flight, conditions: Any,
         ``emissivity``, ``temp_sky_c``, ``export_emissivity``, ``export_reflected_c``,
         ``transmission``, ``temp_atm_c``, ``band_um``; per-module values are 1-D arrays.
     """
-    if settings is None:
-        from pvscan.io.settings import load_pipeline
+    from pvscan.io.settings import section
 
-        settings = load_pipeline()["radiometry"]
-    band = tuple(float(b) for b in settings.get("band_um", DEFAULT_BAND_UM))
+    cfg = section(settings, "radiometry")
+    band = tuple(float(b) for b in cfg["band_um"])
     emissivity = float(flight.module.emissivity)
-    if settings.get("view_angle_from_tilt", False):
+    if cfg["view_angle_from_tilt"]:
         tilt = getattr(getattr(flight, "layout", None), "tilt_deg", None) or 0.0
         emissivity = float(effective_emissivity(emissivity, tilt))
     temp_air = np.asarray(conditions["temp_air"], dtype=float)
-    rh_default = float(settings.get("default_relative_humidity_pct", 50.0))
+    rh_default = float(cfg["default_relative_humidity_pct"])
     if "relative_humidity" in getattr(conditions, "columns", conditions):
         rh = np.asarray(conditions["relative_humidity"], dtype=float)
         rh = np.where(np.isfinite(rh), rh, rh_default)
@@ -509,13 +509,13 @@ def flight_radiometry(flight: Flight, conditions: Any,
         "export_reflected_c": float(flight.ortho.reflected_c),
         "band_um": band,
     }
-    if settings.get("atmosphere", True):
+    if cfg["atmosphere"]:
         dist = getattr(flight.flight, "altitude_m", None)
         if dist is None:
-            dist = float(settings.get("default_altitude_m", 60.0))
+            dist = float(cfg["default_altitude_m"])
         kw["transmission"] = np.asarray(
             atmospheric_transmission(
-                dist, temp_air, rh, pressure_hpa=float(settings.get("pressure_hpa", 1013.25)), band_um=band
+                dist, temp_air, rh, pressure_hpa=float(cfg["pressure_hpa"]), band_um=band
             )
         )
         kw["temp_atm_c"] = temp_air

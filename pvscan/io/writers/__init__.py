@@ -10,18 +10,24 @@ re-exports the public names.
 from __future__ import annotations
 
 from pvscan.io.writers.atomic import atomic_path, atomic_write, clean_stale_staging, staging_dir, write_failure
-from pvscan.io.writers.geojson import (ANOMALY_PROPERTIES, ELECTRICAL_COLUMNS, MODULE_PROPERTIES,
-                                       anomalies_feature_collection, module_results,
-                                       modules_feature_collection, validate_geojson_rfc7946,
-                                       write_anomalies_geojson, write_modules_geojson)
+from pvscan.io.writers.geojson import (
+                                       ANOMALY_PROPERTIES,
+                                       ELECTRICAL_COLUMNS,
+                                       MODULE_PROPERTIES,
+                                       anomalies_feature_collection,
+                                       module_results,
+                                       modules_feature_collection,
+                                       validate_geojson_rfc7946,
+                                       write_anomalies_geojson,
+                                       write_modules_geojson,
+)
 from pvscan.io.writers.geometry import anomaly_geometries, geometry_to_geojson, region_geometry
 from pvscan.io.writers.gpkg import write_geopackage
 from pvscan.io.writers.gpx import workorders_gpx, write_workorders_gpx
 from pvscan.io.writers.summary import build_summary, safety_cautions, validate_output, write_summary
 from pvscan.io.writers.values import to_jsonable
 from pvscan.io.writers.walk import prepare_anomalies, walk_order
-from pvscan.io.writers.workorders import (WORKORDER_COLUMNS, read_workorders_csv, workorders_table,
-                                          write_workorders_csv)
+from pvscan.io.writers.workorders import WORKORDER_COLUMNS, read_workorders_csv, workorders_table, write_workorders_csv
 
 __all__ = [
     "atomic_path", "atomic_write", "staging_dir", "clean_stale_staging", "write_failure",

@@ -154,7 +154,7 @@ def clean_stale_staging(out_dir: str | os.PathLike) -> list[Path]:
         if p.is_symlink() or not p.is_dir():
             continue
         lock = try_lock(p)
-        if not lock:  # a living run owns it (False), or no way to know (None)
+        if not isinstance(lock, HeldLock):  # a living run owns it (False), or no way to know (None)
             continue
         try:
             if p.name.startswith(prefixes[1]) and not out.exists():
@@ -180,7 +180,7 @@ def _new_staging(out: Path, parent: Path) -> tuple[Path, HeldLock | None]:
         if lock is False:  # a cleaner of another run took it in the instant before us
             continue
         os.chmod(tmp, 0o777 & ~_umask())
-        return tmp, lock
+        return tmp, lock if isinstance(lock, HeldLock) else None
     raise OSError(f"cannot create a staging folder in {parent}")
 
 
@@ -272,7 +272,7 @@ def staging_dir(out_dir: str | os.PathLike, overwrite: bool = False) -> Iterator
                         raise
                     shutil.rmtree(old, ignore_errors=True)
                 finally:
-                    if old_lock:
+                    if isinstance(old_lock, HeldLock):
                         old_lock.release()
             else:
                 os.replace(tmp, out)

@@ -57,7 +57,7 @@ ANOMALY_PROPERTIES = (
 #: Module columns an anomaly takes from its first module when it has none of its own.
 _FROM_MODULE = ("table_id", *ELECTRICAL_COLUMNS)
 
-def _severity_rank(sev) -> int:
+def _severity_rank(sev: Any) -> int:
     return {"safety": 0, "repair": 1, "monitor": 2}.get(sev, 3)
 
 
@@ -110,7 +110,7 @@ def module_results(n_modules: int, anomalies: pd.DataFrame | None, pmax_w: float
 
 
 
-def modules_feature_collection(modules, module_table: pd.DataFrame | None = None,
+def modules_feature_collection(modules: Any, module_table: pd.DataFrame | None = None,
                                anomalies: pd.DataFrame | None = None, decimals: int = 7,
                                pmax_w: float | None = None) -> dict:
     """The RFC 7946 FeatureCollection of ``modules.geojson`` (see :func:`write_modules_geojson`)."""
@@ -139,7 +139,7 @@ def modules_feature_collection(modules, module_table: pd.DataFrame | None = None
     return {"type": "FeatureCollection", "features": features}
 
 
-def write_modules_geojson(path: str | os.PathLike, modules_gdf, module_table: pd.DataFrame | None = None,
+def write_modules_geojson(path: str | os.PathLike, modules_gdf: Any, module_table: pd.DataFrame | None = None,
                           anomalies: pd.DataFrame | None = None, settings: Mapping | None = None,
                           module_spec: Any = None) -> Path:
     """Write ``modules.geojson``: one RFC 7946 feature per module, footprint as drawn.
@@ -175,7 +175,7 @@ def write_modules_geojson(path: str | os.PathLike, modules_gdf, module_table: pd
     return atomic_write(path, dumps(fc))
 
 
-def anomalies_feature_collection(anomalies: pd.DataFrame, modules, decimals: int = 7,
+def anomalies_feature_collection(anomalies: pd.DataFrame, modules: Any, decimals: int = 7,
                                  merge_gap_m: float = 0.05, settings: Mapping | None = None) -> dict:
     """The RFC 7946 FeatureCollection of ``anomalies.geojson`` (see :func:`write_anomalies_geojson`)."""
     from pvscan.io.writers.walk import prepare_anomalies
@@ -204,7 +204,7 @@ def anomalies_feature_collection(anomalies: pd.DataFrame, modules, decimals: int
     return {"type": "FeatureCollection", "features": features}
 
 
-def write_anomalies_geojson(path: str | os.PathLike, anomalies: pd.DataFrame, modules_gdf,
+def write_anomalies_geojson(path: str | os.PathLike, anomalies: pd.DataFrame, modules_gdf: Any,
                             settings: Mapping | None = None) -> Path:
     """Write ``anomalies.geojson``: one RFC 7946 feature per anomaly, geometry = its affected region.
 
@@ -243,7 +243,7 @@ def _signed_area(ring: Sequence[Sequence[float]]) -> float:
     return a / 2.0
 
 
-def _check_position(p, where: str, problems: list[str]) -> None:
+def _check_position(p: Any, where: str, problems: list[str]) -> None:
     if not isinstance(p, list) or len(p) < 2 or not all(isinstance(c, (int, float)) and not isinstance(c, bool)
                                                          for c in p):
         problems.append(f"{where}: position is not a list of 2 or 3 numbers")
@@ -255,7 +255,7 @@ def _check_position(p, where: str, problems: list[str]) -> None:
         problems.append(f"{where}: latitude {lat} outside -90..90")
 
 
-def _check_polygon(rings, where: str, problems: list[str]) -> None:
+def _check_polygon(rings: Any, where: str, problems: list[str]) -> None:
     if not isinstance(rings, list) or not rings:
         problems.append(f"{where}: polygon without rings")
         return
@@ -276,7 +276,7 @@ def _check_polygon(rings, where: str, problems: list[str]) -> None:
             problems.append(f"{w}: hole is not clockwise (RFC 7946 3.1.6)")
 
 
-def _check_geometry(g, where: str, problems: list[str]) -> None:
+def _check_geometry(g: Any, where: str, problems: list[str]) -> None:
     if g is None:
         return
     if not isinstance(g, Mapping) or "type" not in g:

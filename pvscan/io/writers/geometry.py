@@ -19,6 +19,7 @@ from __future__ import annotations
 import json
 import math
 from collections.abc import Iterable, Mapping, Sequence
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -43,7 +44,7 @@ def _polygon_to_rings(poly: Polygon, nd: int) -> list:
     return rings
 
 
-def geometry_to_geojson(geom, decimals: int = 7) -> dict | None:
+def geometry_to_geojson(geom: Any, decimals: int = 7) -> dict | None:
     """A GeoJSON geometry object of a shapely geometry already in lon/lat.
 
     Polygons follow the right-hand rule (RFC 7946 section 3.1.6) and positions are rounded
@@ -65,7 +66,7 @@ def geometry_to_geojson(geom, decimals: int = 7) -> dict | None:
     return json.loads(json.dumps(gj))
 
 
-def to_lonlat(geoms: Sequence, crs) -> list:
+def to_lonlat(geoms: Sequence, crs: Any) -> list:
     """Reproject shapely geometries from ``crs`` to WGS84 lon/lat (one pyproj call for all)."""
     if crs is None:
         raise OutputError("modules: the layout has no CRS; cannot write lon/lat")
@@ -107,7 +108,7 @@ def geoms_to_geojson(geoms: Sequence, decimals: int = 7) -> list:
     return out
 
 
-def _frame_box(row, u0: float, u1: float, v0: float, v1: float) -> Polygon:
+def _frame_box(row: Any, u0: float, u1: float, v0: float, v1: float) -> Polygon:
     ox, oy = float(row["fx0"]), float(row["fy0"])
     ux, uy = float(row["fux"]), float(row["fuy"])
     vx, vy = float(row["fvx"]), float(row["fvy"])
@@ -115,7 +116,7 @@ def _frame_box(row, u0: float, u1: float, v0: float, v1: float) -> Polygon:
     return Polygon(pts)
 
 
-def _boxes(region_uv) -> list[tuple[float, float, float, float]]:
+def _boxes(region_uv: Any) -> list[tuple[float, float, float, float]]:
     if region_uv is None:
         return []
     if isinstance(region_uv, float) and math.isnan(region_uv):
@@ -132,7 +133,7 @@ def _boxes(region_uv) -> list[tuple[float, float, float, float]]:
     return out
 
 
-def anomaly_indices(row) -> list[int]:
+def anomaly_indices(row: Any) -> list[int]:
     """Row numbers (in the modules frame) of the modules an anomaly covers, its own first."""
     idx = row.get("module_indices") if hasattr(row, "get") else None
     if idx is None or (isinstance(idx, float) and math.isnan(idx)):
@@ -146,7 +147,7 @@ def anomaly_indices(row) -> list[int]:
     return idx
 
 
-def region_geometry(modules, anomaly: Mapping, merge_gap_m: float = 0.05):
+def region_geometry(modules: Any, anomaly: Mapping, merge_gap_m: float = 0.05) -> Any:
     """The affected region of one anomaly, in the modules' CRS.
 
     Parameters
@@ -191,6 +192,6 @@ def region_geometry(modules, anomaly: Mapping, merge_gap_m: float = 0.05):
     return geom
 
 
-def anomaly_geometries(anomalies: pd.DataFrame, modules, merge_gap_m: float = 0.05) -> list:
+def anomaly_geometries(anomalies: pd.DataFrame, modules: Any, merge_gap_m: float = 0.05) -> list:
     """:func:`region_geometry` of every anomaly, in the modules' CRS (a list aligned with the rows)."""
     return [region_geometry(modules, row, merge_gap_m) for _, row in anomalies.iterrows()]

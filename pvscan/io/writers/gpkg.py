@@ -14,8 +14,9 @@ from __future__ import annotations
 import os
 import sqlite3
 from collections.abc import Mapping
-from datetime import datetime, timezone
+from datetime import UTC, datetime
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -54,7 +55,7 @@ def _flatten_lists(frame: pd.DataFrame) -> pd.DataFrame:
 
 def _write_styles(path: Path) -> None:
     """Add one default SLD style per layer to the GeoPackage's ``layer_styles`` table."""
-    now = datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3] + "Z"
+    now = datetime.now(UTC).strftime("%Y-%m-%dT%H:%M:%S.%f")[:-3] + "Z"
     con = sqlite3.connect(str(path), isolation_level=None)
     try:
         con.execute("BEGIN IMMEDIATE")
@@ -77,7 +78,8 @@ def _write_styles(path: Path) -> None:
         con.close()
 
 
-def write_geopackage(path: str | os.PathLike, modules, anomalies, workorders, settings: Mapping | None = None) -> Path:
+def write_geopackage(path: str | os.PathLike, modules: Any, anomalies: Any, workorders: Any,
+                     settings: Mapping | None = None) -> Path:
     """Write a GeoPackage with layers ``modules``, ``anomalies`` and ``workorders``, styled.
 
     Parameters

@@ -51,7 +51,7 @@ def _counts(values: Iterable) -> dict[str, int]:
     return dict(sorted(out.items()))
 
 
-def _fsum(series) -> float:
+def _fsum(series: Any) -> float:
     vals = pd.to_numeric(pd.Series(series), errors="coerce").to_numpy(dtype=float)
     vals = vals[np.isfinite(vals)]
     return float(vals.sum()) if vals.size else 0.0
@@ -78,10 +78,10 @@ def conditions_with_units(conditions: Mapping | None) -> dict:
     return out
 
 
-def build_summary(*, modules, anomalies: pd.DataFrame | None, module_spec=None,
+def build_summary(*, modules: Any, anomalies: pd.DataFrame | None, module_spec: Any=None,
                   inputs: Mapping | None = None, conditions: Mapping | None = None,
                   validity: Any = None, registration: Any = None,
-                  layout_shift_m: Sequence[float] = (0.0, 0.0), pipeline_path=None,
+                  layout_shift_m: Sequence[float] = (0.0, 0.0), pipeline_path: Any=None,
                   site: Any = None, flight: Any = None, extra: Mapping | None = None) -> dict:
     """Assemble the ``summary.json`` document (validated later by :func:`write_summary`).
 
@@ -205,10 +205,10 @@ def validate_output(out_dir: str | os.PathLike) -> dict[str, list[str]]:
         report[name] = probs
     p = out_dir / "workorders.csv"
     if p.exists():
-        schema = load_schema("workorders.schema.json")
+        row_schema = load_schema("workorders.schema.json")
         probs = []
         for k, row in enumerate(read_workorders_csv(p)):
-            probs += [f"row {k + 1}: {describe_error(e)}" for e in schema_errors(row, schema)]
+            probs += [f"row {k + 1}: {describe_error(e)}" for e in schema_errors(row, row_schema)]
         report["workorders.csv"] = probs
     else:
         report["workorders.csv"] = ["missing"]

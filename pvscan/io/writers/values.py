@@ -94,7 +94,7 @@ def column_values(frame: pd.DataFrame, col: str, nd: int = 4) -> list:
     return [round_floats(to_jsonable(v), nd) for v in ser.tolist()]
 
 
-def csv_cell(v) -> str:
+def csv_cell(v: Any) -> str:
     """Text of one CSV cell: empty for missing values, floats without a spurious exponent."""
     if v is None:
         return ""

@@ -28,6 +28,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping
+from typing import Any
 
 import numpy as np
 import pandas as pd
@@ -116,7 +117,7 @@ def _first_index(anomalies: pd.DataFrame) -> np.ndarray:
     return out
 
 
-def _column(modules, col: str, rows: np.ndarray) -> np.ndarray:
+def _column(modules: Any, col: str, rows: np.ndarray) -> np.ndarray:
     vals = np.full(len(rows), None, dtype=object)
     if col in modules.columns:
         ok = rows >= 0
@@ -124,7 +125,7 @@ def _column(modules, col: str, rows: np.ndarray) -> np.ndarray:
     return vals
 
 
-def walk_order(anomalies: pd.DataFrame, modules, settings: Mapping | None = None) -> np.ndarray:
+def walk_order(anomalies: pd.DataFrame, modules: Any, settings: Mapping | None = None) -> np.ndarray:
     """The walking order (1..N) of the anomalies, aligned with their rows.
 
     Parameters
@@ -217,7 +218,7 @@ def _plant_end(all_tables: np.ndarray, pts: np.ndarray) -> np.ndarray:
     return pts[0]
 
 
-def prepare_anomalies(anomalies: pd.DataFrame, modules, settings: Mapping | None = None) -> pd.DataFrame:
+def prepare_anomalies(anomalies: pd.DataFrame, modules: Any, settings: Mapping | None = None) -> pd.DataFrame:
     """The anomalies as every writer shows them: in priority order, with ``anomaly_id``,
     ``walk_order`` and the first module's table and electrical attributes (``table_id``,
     ``table_row``, ``table_col``, ``string_id``, ``string_index``, ``combiner_id``,

@@ -41,13 +41,13 @@ WORKORDER_COLUMNS = (
 _TEXT = ("module_id", "table_id", "string_id", "combiner_id", "inverter_id")
 
 
-def _crs_name(crs) -> str:
+def _crs_name(crs: Any) -> str:
     crs = CRS.from_user_input(crs)
     auth = crs.to_authority()
     return f"{auth[0]}:{auth[1]}" if auth else crs.to_string()
 
 
-def _get(obj: Any, *keys: str):
+def _get(obj: Any, *keys: str) -> Any:
     for k in keys:
         v = obj.get(k) if isinstance(obj, Mapping) else getattr(obj, k, None)
         if v not in (None, ""):
@@ -86,8 +86,8 @@ def flight_identity(site: Any = None, flight: Any = None) -> dict:
             "flight_date": day}
 
 
-def workorders_table(anomalies: pd.DataFrame, modules_gdf, site_crs=None, settings: Mapping | None = None,
-                     *, site: Any = None, flight: Any = None):
+def workorders_table(anomalies: pd.DataFrame, modules_gdf: Any, site_crs: Any=None, settings: Mapping | None = None,
+                     *, site: Any = None, flight: Any = None) -> Any:
     """The work orders as a GeoDataFrame of points (region centroids) in ``site_crs``.
 
     Columns are :data:`WORKORDER_COLUMNS`; lists (``module_ids``) are joined with ``;``.
@@ -118,7 +118,8 @@ def workorders_table(anomalies: pd.DataFrame, modules_gdf, site_crs=None, settin
         Transformer.from_crs(src, site_crs, always_xy=True).transform(cxy[:, 0], cxy[:, 1]))
     nd_ll, nd_xy = int(cfg["lonlat_decimals"]), int(cfg["xy_decimals"])
     crs_name = _crs_name(site_crs)
-    rows, points = [], []
+    rows: list[dict] = []
+    points: list[Any] = []
     for k, (_, a) in enumerate(anomalies.iterrows()):
         rec = {col: round_floats(to_jsonable(a.get(col))) if col in anomalies.columns else None
                for col in WORKORDER_COLUMNS}
@@ -146,9 +147,9 @@ def workorders_table(anomalies: pd.DataFrame, modules_gdf, site_crs=None, settin
     return gpd.GeoDataFrame(frame, geometry=gpd.GeoSeries(points, crs=site_crs), crs=site_crs)
 
 
-def write_workorders_csv(path: str | os.PathLike, anomalies: pd.DataFrame, modules_gdf, site_crs=None,
+def write_workorders_csv(path: str | os.PathLike, anomalies: pd.DataFrame, modules_gdf: Any, site_crs: Any=None,
                          settings: Mapping | None = None, *, site: Any = None, flight: Any = None,
-                         table=None) -> Path:
+                         table: Any=None) -> Path:
     """Write ``workorders.csv``: one row per anomaly, in priority order.
 
     A plain comma-separated file with one header line (no comment lines), UTF-8, so any
