@@ -43,7 +43,10 @@ from pvscan.measure.register.evidence import (
 
 logger = logging.getLogger(__name__)
 
-__all__ = ["register_layout", "apply_placement", "placement_of"]
+__all__ = ["register_layout", "apply_placement", "placement_of", "align_layout", "FRAME_COLUMNS"]
+
+#: Internal module-frame columns, left out of a corrected layout file.
+FRAME_COLUMNS = ("fx0", "fy0", "fux", "fuy", "fvx", "fvy")
 
 
 def _centre(modules) -> tuple[float, float]:
@@ -307,3 +310,70 @@ def _no_move(reg: Registration) -> Registration:
     reg.shift_m = (0.0, 0.0)
     reg.model = None
     return reg
+
+
+def align_layout(flight: Any, settings: Mapping | None = None, out_path: Any = None, *, overwrite: bool = False,
+                 progress=None):
+    """Place a flight's layout on its ortho (:func:`register_layout`) and optionally write it.
+
+    Parameters
+    ----------
+    flight : Flight
+    settings : Pipeline or mapping, optional
+    out_path : path-like, optional
+        ``.gpkg`` (layer ``modules``, the ortho's CRS) or ``.geojson`` (RFC 7946, lon/lat):
+        the module footprints where the registration placed them, with the layout's
+        properties (the internal module-frame columns left out). Written atomically.
+    overwrite : bool
+
+    Returns
+    -------
+    (Registration, geopandas.GeoDataFrame)
+        The registration and the placed modules (ortho CRS).
+
+    Raises
+    ------
+    OutputError
+        Unknown suffix, existing file without ``overwrite``, missing folder, write failure.
+        Nothing is written when the registration failed (``reg.status == "failed"``).
+    """
+    from pathlib import Path
+
+    from pvscan.errors import OutputError
+    from pvscan.io.layout import read_layout
+    from pvscan.io.ortho import open_orthos
+    from pvscan.io.settings import load_pipeline
+    from pvscan.measure.register.evidence import sun_vector
+    from pvscan.measure.register.physics import expected_module_apparent_c
+
+    suffix = Path(out_path).suffix.lower() if out_path is not None else ""
+    if out_path is not None:
+        out_path = Path(out_path)
+        if suffix not in (".gpkg", ".geojson"):
+            raise OutputError(f"{out_path}: the corrected layout is written as GeoPackage (.gpkg) or GeoJSON "
+                              "(.geojson)")
+        if out_path.exists() and not overwrite:
+            raise OutputError(f"{out_path}: exists (use --overwrite to replace it)")
+        if not out_path.parent.is_dir():
+            raise OutputError(f"{out_path}: folder {out_path.parent} does not exist")
+    pipeline = settings if (settings is not None and "register" in settings) else load_pipeline()
+    cfg = _settings(settings)
+    with open_orthos(flight.flight.orthos, flight.ortho) as orthos:
+        modules = read_layout(flight, orthos.crs)
+        expected = expected_module_apparent_c(flight, pipeline, strict=False)
+        c = modules.to_crs(4326).geometry.union_all().centroid
+        sun = sun_vector(float(c.x), float(c.y), flight.flight.start + (flight.flight.end - flight.flight.start) / 2)
+        reg = register_layout(orthos, modules, cfg, sun=sun, expected_apparent_c=expected, progress=progress)
+    moved = apply_placement(modules, reg.placement if reg.applied else None)
+    if out_path is not None and reg.status != "failed":
+        from pvscan.io.outputs import atomic_path
+
+        out = moved.drop(columns=[k for k in FRAME_COLUMNS if k in moved.columns]).reset_index(drop=True)
+        if suffix == ".gpkg":
+            with atomic_path(out_path, suffix=".tmp.gpkg") as tmp:
+                out.to_file(tmp, layer="modules", driver="GPKG", engine="pyogrio")
+        else:
+            with atomic_path(out_path, suffix=".tmp.geojson") as tmp:
+                out.to_crs(4326).to_file(tmp, driver="GeoJSON", engine="pyogrio", RFC7946="YES",
+                                         COORDINATE_PRECISION=7)
+    return reg, moved
