@@ -185,6 +185,7 @@ def test_geopackage_has_an_sld_style_per_layer(tmp_path):
         cols = [r[1] for r in con.execute("PRAGMA table_info(layer_styles)")]
         styles = con.execute("SELECT f_table_name, f_geometry_column, styleSLD, useAsDefault "
                              "FROM layer_styles").fetchall()
+        qmls = dict(con.execute("SELECT f_table_name, styleQML FROM layer_styles").fetchall())
         geom_cols = dict(con.execute("SELECT table_name, column_name FROM gpkg_geometry_columns"))
     finally:
         con.close()
@@ -202,6 +203,18 @@ def test_geopackage_has_an_sld_style_per_layer(tmp_path):
             assert filters[sev].text == sev
         labels = [p.text for p in root.findall(".//se:TextSymbolizer/se:Label/ogc:PropertyName", NS)]
         assert labels == ([] if layer == "modules" else ["priority"])
+        fills = {r.find("se:Name", NS).text: r.find(".//se:Fill/se:SvgParameter[@name='fill']", NS).text
+                 for r in rules if r.find("se:Name", NS).text in ("safety", "repair", "monitor")}
+        # the QML copy (the column desktop GIS reads first) has the same categories and colours
+        qml = ET.fromstring(qmls[layer].encode())
+        assert qml.tag == "qgis" and qml.find("renderer-v2").get("attr") == "severity"
+        cats = {c.get("value"): c.get("symbol") for c in qml.iter("category")}
+        for sev, colour in fills.items():
+            sym = next(x for x in qml.iter("symbol") if x.get("name") == cats[sev])
+            rgba = sym.find(".//Option[@name='color']").get("value")
+            assert rgba.split(",")[:3] == [str(int(colour[k:k + 2], 16)) for k in (1, 3, 5)]
+        text = qml.find("labeling/settings/text-style")
+        assert (None if text is None else text.get("fieldName")) == (None if layer == "modules" else "priority")
     # the layers still read as before
     assert len(gpd.read_file(path, layer="anomalies", engine="pyogrio")) == len(an)
 

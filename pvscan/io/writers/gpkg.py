@@ -25,7 +25,7 @@ from shapely.geometry import MultiPolygon, Polygon
 from pvscan.io.writers.atomic import atomic_path
 from pvscan.io.writers.geojson import ANOMALY_PROPERTIES
 from pvscan.io.writers.geometry import anomaly_geometries
-from pvscan.io.writers.styles import LAYER_STYLES_SQL, layer_sld
+from pvscan.io.writers.styles import LAYER_STYLES_SQL, layer_qml, layer_sld
 from pvscan.io.writers.values import LIST_SEP, settings_of
 
 __all__ = ["write_geopackage", "STYLED_LAYERS"]
@@ -70,8 +70,9 @@ def _write_styles(path: Path) -> None:
             con.execute(
                 "INSERT INTO layer_styles (f_table_catalog, f_table_schema, f_table_name, f_geometry_column, "
                 "styleName, styleQML, styleSLD, useAsDefault, description, owner, ui, update_time) "
-                "VALUES ('', '', ?, ?, ?, '', ?, 1, ?, 'pvscan', '', ?)",
+                "VALUES ('', '', ?, ?, ?, ?, ?, 1, ?, 'pvscan', '', ?)",
                 (layer, geom_cols[layer], f"{layer} by severity",
+                 layer_qml(layer, kind, label=label, healthy=healthy),
                  layer_sld(layer, kind, label=label, healthy=healthy), desc, now))
         con.execute("COMMIT")
     finally:
@@ -102,7 +103,8 @@ def write_geopackage(path: str | os.PathLike, modules: Any, anomalies: Any, work
     -----
     List columns are stored as ``;``-joined text (GeoPackage has no list type). The
     frame columns ``fx0 ... fvy`` and ``region_uv`` are internal and left out. The
-    ``layer_styles`` table holds an SLD 1.1 style per layer (``useAsDefault`` = 1).
+    ``layer_styles`` table holds a style per layer (``useAsDefault`` = 1) as OGC SLD 1.1 and
+    as QML.
     """
     import geopandas as gpd
 

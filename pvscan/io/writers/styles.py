@@ -9,6 +9,11 @@ coloured by ``severity`` (safety red, repair orange, monitor blue: a diverging
 colour-blind-safe scheme), anomalies and work orders are labelled with their ``priority``.
 The colours are display choices, never a result.
 
+Desktop GIS reads the ``styleQML`` column first (the QGIS project's own open style format,
+``.qml``), so each style is also written as a QML document with the same categories,
+colours and labels (:func:`layer_qml`); the SLD is the open-standard copy for any other
+software.
+
 References
 ----------
 .. [1] Open Geospatial Consortium, "Styled Layer Descriptor profile of the Web Map Service
@@ -21,7 +26,7 @@ from __future__ import annotations
 
 from xml.sax.saxutils import escape
 
-__all__ = ["SEVERITY_COLOURS", "SLD_NAMESPACE", "SE_NAMESPACE", "OGC_NAMESPACE", "layer_sld",
+__all__ = ["SEVERITY_COLOURS", "SLD_NAMESPACE", "SE_NAMESPACE", "OGC_NAMESPACE", "layer_sld", "layer_qml",
            "LAYER_STYLES_SQL"]
 
 SLD_NAMESPACE = "http://www.opengis.net/sld"
@@ -112,3 +117,56 @@ def layer_sld(layer: str, kind: str, *, label: str | None = "priority", healthy:
             f"<se:Description><se:Title>{escape(title or layer + ' by severity')}</se:Title></se:Description>"
             f"<se:FeatureTypeStyle>{''.join(rules)}</se:FeatureTypeStyle>"
             "</UserStyle></NamedLayer></StyledLayerDescriptor>")
+
+
+def _rgba(colour: str, alpha: float) -> str:
+    """``#rrggbb`` and an opacity 0..1 as the ``r,g,b,a`` text of QML colours."""
+    r, g, b = (int(colour[k:k + 2], 16) for k in (1, 3, 5))
+    return f"{r},{g},{b},{round(255 * alpha)}"
+
+
+def _qml_options(props: dict[str, str]) -> str:
+    options = "".join(f'<Option type="QString" name="{escape(k)}" value="{escape(v)}"/>' for k, v in props.items())
+    legacy = "".join(f'<prop k="{escape(k)}" v="{escape(v)}"/>' for k, v in props.items())
+    return f'<Option type="Map">{options}</Option>{legacy}'
+
+
+def _qml_symbol(name: int, kind: str, colour: str, alpha: float) -> str:
+    if kind == "point":
+        props = {"name": "circle", "color": _rgba(colour, 1.0), "outline_color": _rgba(_OUTLINE, 1.0),
+                 "outline_style": "solid", "outline_width": "0.3", "size": "3", "size_unit": "MM"}
+        return (f'<symbol type="marker" name="{name}" alpha="1" clip_to_extent="1" force_rhr="0">'
+                f'<layer class="SimpleMarker" enabled="1" locked="0" pass="0">{_qml_options(props)}</layer></symbol>')
+    props = {"color": _rgba(colour, alpha), "outline_color": _rgba(_OUTLINE, 1.0), "outline_style": "solid",
+             "outline_width": "0.26", "outline_width_unit": "MM", "style": "solid"}
+    return (f'<symbol type="fill" name="{name}" alpha="1" clip_to_extent="1" force_rhr="0">'
+            f'<layer class="SimpleFill" enabled="1" locked="0" pass="0">{_qml_options(props)}</layer></symbol>')
+
+
+def layer_qml(layer: str, kind: str, *, label: str | None = "priority", healthy: bool = False) -> str:
+    """The same style as :func:`layer_sld` as a QML document: a categorised renderer on
+    ``severity`` (one category per severity, plus "no finding" for empty values when
+    ``healthy``) and, with ``label``, simple labels of that field with a white halo."""
+    cats, syms = [], []
+    items = [(sev, sev, colour, 0.75) for sev, colour in SEVERITY_COLOURS.items()]
+    if healthy:
+        items.append(("", "no finding", _HEALTHY, 0.25))
+    for k, (value, title, colour, alpha) in enumerate(items):
+        cats.append(f'<category type="string" value="{escape(value)}" label="{escape(title)}" symbol="{k}" '
+                    'render="true"/>')
+        syms.append(_qml_symbol(k, kind, colour, alpha))
+    labeling = ""
+    if label:
+        labeling = ('<labeling type="simple"><settings calloutType="simple">'
+                    f'<text-style fieldName="{escape(label)}" isExpression="0" fontFamily="Sans Serif" fontSize="9" '
+                    'fontSizeUnit="Point" fontWeight="75" textColor="0,0,0,255" textOpacity="1"/>'
+                    '<text-buffer bufferDraw="1" bufferSize="1" bufferSizeUnits="MM" bufferColor="255,255,255,255" '
+                    'bufferOpacity="1"/>'
+                    f'<placement placement="{0 if kind == "point" else 1}" dist="1" distUnits="MM"/>'
+                    '<rendering obstacle="1" drawLabels="1" scaleVisibility="0"/></settings></labeling>')
+    geometry_type = 0 if kind == "point" else 2  # QGIS geometry types: 0 point, 1 line, 2 polygon
+    return ("<!DOCTYPE qgis PUBLIC 'http://mrcc.com/qgis.dtd' 'SYSTEM'>"
+            f'<qgis styleCategories="Symbology|Labeling" labelsEnabled="{1 if label else 0}">'
+            '<renderer-v2 type="categorizedSymbol" attr="severity" symbollevels="0" enableorderby="0" '
+            f'forceraster="0"><categories>{"".join(cats)}</categories><symbols>{"".join(syms)}</symbols>'
+            f"</renderer-v2>{labeling}<layerGeometryType>{geometry_type}</layerGeometryType></qgis>")
