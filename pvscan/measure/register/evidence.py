@@ -381,8 +381,8 @@ def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, 
     """How much better the placement is than the same placement moved a little.
 
     The footprints are moved by ``evidence_probe_m`` both ways along the modules' long side
-    and both ways along their short side. Each probe's evidence is compared with the
-    placement's: ``ratio = E(placement) / E(probe)`` (low when the footprints sit on their
+    and both ways along their short side. Each probe's mean spread inside the footprints is
+    compared with the placement's: ``ratio = spread(placement) / spread(probe)`` (low when the footprints sit on their
     modules; near 1 when the image does not show modules where they are placed). The two
     probes of one axis are averaged with weights: a probe moving the footprints away from
     the sun (onto the shadowed side, which may look like glass) counts
@@ -403,6 +403,9 @@ def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, 
           "band_m": float(cfg["evidence_band_m"]), "off_glass_k": float(cfg["evidence_off_glass_k"])}
     sd0, mean0 = module_spread(sample, placement, local=local, with_mean=True, **kw)
     e0 = evidence(sd0)
+    # the probes compare plain spreads: the outline contrast that guides the search (and
+    # keeps it off smooth ground) also grows when a footprint slides onto a table edge
+    sp0 = evidence(module_spread(sample, placement, local=local, inset_u=kw["inset_u"], inset_v=kw["inset_v"]))
     glass = float(np.nanmedian(mean0)) if np.isfinite(mean0).any() else float("nan")
     d = float(cfg["evidence_probe_m"])
     wsh = float(cfg["evidence_shadow_weight"])
@@ -412,14 +415,14 @@ def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, 
         for sgn in (1.0, -1.0):
             step = sgn * ax * d
             p = placement.moved(tx=placement.tx + step[0], ty=placement.ty + step[1])
-            e = evidence(module_spread(sample, p, local=local, **kw))
+            e = evidence(module_spread(sample, p, local=local, inset_u=kw["inset_u"], inset_v=kw["inset_v"]))
             # away from the sun: onto the table's shadow, which may look like glass
             w = wsh if (sun is not None and float(step @ np.asarray(sun[:2])) < 0) else 1.0
             if math.isfinite(e):
                 num += w * e
                 den += w
         e_probe = num / den if den > 0 else float("nan")
-        out[f"ratio_{name}"] = e0 / e_probe if (math.isfinite(e_probe) and e_probe > 0) else float("nan")
+        out[f"ratio_{name}"] = sp0 / e_probe if (math.isfinite(e_probe) and e_probe > 0) else float("nan")
     lim = float(cfg["evidence_max_ratio"])
     known = expected_c is not None and math.isfinite(float(expected_c))
     out["glass_error_k"] = glass - float(expected_c) if known else float("nan")
