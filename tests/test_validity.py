@@ -181,7 +181,8 @@ def test_shift_option_forces_a_known_offset(flight, tmp_path):
     s = json.loads((out / "summary.json").read_text())
     assert s["layout_shift_m"] == pytest.approx([-0.5, 0.35], abs=1e-4)
     assert s["validity"]["ok"] is True
-    res, out = _inspect(d, tmp_path, "--shift", "0.5", "0.35", "--overwrite")
+    # 0.7 m off across the rows puts the footprints on the ground between them: refused
+    res, out = _inspect(d, tmp_path, "--shift", "-0.5", "-0.35", "--overwrite")
     assert res.exit_code == 1 and "given shift" in res.output, res.output
 
 
