@@ -214,3 +214,14 @@ def test_north_south_tables_count_columns_from_the_south(angle):
                       LayoutSpec(rows=1, cols=6, azimuth_deg=90, tilt_deg=0))
     cy = m.geometry.centroid.y.to_numpy()
     assert cy[m.table_col.to_numpy() == 1][0] == pytest.approx(cy.min())
+
+
+def test_layout_package_keeps_one_copy_of_each_public_name():
+    # io/layout/ is split by task (read, fields, frames, split, build); pvscan.io.layout
+    # re-exports every public name, the very objects of the submodules.
+    import pvscan.io.layout as layout
+    from pvscan.io.layout import build, fields, frames, read, split
+
+    for mod in (build, fields, frames, read, split):
+        for name in mod.__all__:
+            assert name in layout.__all__ and getattr(layout, name) is getattr(mod, name), name

@@ -148,3 +148,93 @@ def test_no_horizontal_scrolling_on_a_narrow_screen(report, tmp_path):
     assert m, r.stderr[-2000:]
     out = json.loads(m.group(1).replace("&quot;", '"').replace("&amp;", "&"))
     assert out["errors"] == [] and out["width"] <= out["viewport"] + 1
+
+
+_PHONE_PROBE = """<!DOCTYPE html><html><head><meta charset="utf-8"><style>body{margin:0}iframe{border:0}</style></head>
+<body><iframe id="f" width="390" height="844" srcdoc="%s"></iframe>
+<script>
+document.getElementById('f').addEventListener('load', function () {
+  var f = document.getElementById('f'), d = f.contentDocument, w = f.contentWindow;
+  var wide = [];
+  d.querySelectorAll('body *').forEach(function (e) {
+    var r = e.getBoundingClientRect();
+    if (r.width > 0 && r.right > w.innerWidth + 1) wide.push(e.tagName + '.' + e.className);
+  });
+  var map = d.querySelector('img.map'), rows = d.querySelectorAll('#worklist tbody tr');
+  var rowsInside = Array.prototype.every.call(rows, function (r) {
+    var b = r.getBoundingClientRect(); return b.left >= 0 && b.right <= w.innerWidth + 1; });
+  var pins = Array.prototype.map.call(d.querySelectorAll('a.pin'), function (a) {
+    var b = a.getBoundingClientRect(); return Math.min(b.width, b.height); });
+  var p = document.createElement('pre'); p.id = 'probe-result';
+  p.textContent = JSON.stringify({width: d.documentElement.scrollWidth, viewport: w.innerWidth,
+    wide: wide.slice(0, 20), map: map ? map.getBoundingClientRect().width : 0, rows: rows.length,
+    rowsInside: rowsInside, pins: pins, cards: d.querySelectorAll('article.card').length});
+  document.body.appendChild(p);
+});
+</script></body></html>"""
+
+
+def _phone(report_path: Path, tmp_path, name):
+    """The report in a 390 px wide frame (a phone held upright; headless Chromium will not
+    make its window narrower than 500 px, a frame can be)."""
+    import html as _html
+
+    page = tmp_path / f"{name}.html"
+    page.write_text(_PHONE_PROBE % _html.escape(report_path.read_text(encoding="utf-8"), quote=True),
+                    encoding="utf-8")
+    r = _run(["--virtual-time-budget=8000", "--window-size=800,900", "--dump-dom", page.as_uri()], tmp_path, name)
+    m = re.search(r'<pre id="probe-result">(.*?)</pre>', r.stdout, re.S)
+    assert m, r.stderr[-2000:]
+    return json.loads(m.group(1).replace("&quot;", '"').replace("&amp;", "&"))
+
+
+@pytest.fixture(scope="module")
+def simulated_report(tmp_path_factory):
+    """A simulated flight (pvscan.simulate, seed from PVSCAN_TEST_SEED) through pvscan inspect."""
+    from pvscan.pipeline import inspect_flight
+    from pvscan.simulate import simulate_flight
+
+    seed = int(os.environ.get("PVSCAN_TEST_SEED", "20260614"))
+    d = tmp_path_factory.mktemp("phone")
+    sc = {"site": {"name": "Test field Sedge Hollow (invented)", "lon": 9.2, "lat": 48.1},
+          "array": {"table_rows": 2, "tables_per_row": 2, "rows": 2, "cols": 10, "rotation_deg": 8.0,
+                    "modules_per_string": 10},
+          "layout": {"features": "modules", "offset_m": [0.3, -0.2]},
+          "defects": {"open_module": 1, "bypassed_substring": 1, "hot_cell": 3, "junction_box": 1,
+                      "several_hot_cells": 1, "several_bypassed_substrings": 1, "open_string": 1, "pid": 0,
+                      "soiling": 1}}
+    sim = simulate_flight(sc, d / "flight", seed=seed)
+    inspect_flight(sim.manifest, out_dir=d / "result", report=True)
+    return d / "result" / "report.html"
+
+
+def test_phone_width_simulated_flight(simulated_report, tmp_path):
+    """At 390 px nothing is wider than the screen (the document does not scroll sideways and no
+    box inside it spills), the map spans the screen, every work-list row fits and the map's
+    links stay big enough to tap (common practice: at least ~16 px)."""
+    out = _phone(simulated_report, tmp_path, "phone-sim")
+    assert out["viewport"] == 390
+    assert out["width"] <= out["viewport"], out
+    assert out["wide"] == [], out["wide"]
+    assert out["map"] >= 300
+    assert out["rows"] == out["cards"] >= 1 and out["rowsInside"]
+    assert out["pins"] and min(out["pins"]) >= 16
+
+
+def test_phone_width_check_detects_a_spill(report, tmp_path):
+    """The phone check can fail: a page with a 600 px wide table spills."""
+    bad = tmp_path / "wide.html"
+    bad.write_text(report.read_text(encoding="utf-8").replace(
+        "<main class=\"page\">", "<main class=\"page\"><table style=\"width:600px\"><tr><td>x</td></tr></table>", 1),
+        encoding="utf-8")
+    out = _phone(bad, tmp_path, "phone-bad")
+    assert out["width"] > out["viewport"] or out["wide"]
+
+
+def test_print_one_page_per_table(report, tmp_path):
+    """Printed, each table's field sheet starts on its own page: the PDF has at least one page
+    for the summary plus one per table (2 here)."""
+    pdf = tmp_path / "sheets.pdf"
+    _run(["--no-pdf-header-footer", f"--print-to-pdf={pdf}", report.as_uri()], tmp_path, "pdf-sheets")
+    pages = len(re.findall(rb"/Type\s*/Page(?![s\w])", pdf.read_bytes()))
+    assert pages >= 1 + 2

@@ -409,3 +409,10 @@ def test_south_up_raster_gives_the_same_statistics(write_tif, make_modules, modu
     pd.testing.assert_frame_equal(a.table, b.table, atol=1e-9, rtol=0)
     np.testing.assert_array_equal(a.cell_count, b.cell_count)
     np.testing.assert_array_equal(a.cell_median, b.cell_median)
+
+
+def test_measure_window_is_the_kernel_zonal_stats_exports():
+    from pvscan.measure import zonal, zonal_window
+
+    assert zonal.measure_window is zonal_window.measure_window
+    assert "measure_window" in zonal.__all__

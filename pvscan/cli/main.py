@@ -26,6 +26,7 @@ COMMANDS = {
     "report": "pvscan.cli.report:report_cmd",
     "history": "pvscan.cli.history:history_group",
     "fleet": "pvscan.cli.fleet:fleet_cmd",
+    "layout": "pvscan.cli.layout:layout_group",
 }
 
 

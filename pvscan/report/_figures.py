@@ -11,7 +11,7 @@ import numpy as np
 from pvscan.report._result import SEVERITIES
 
 __all__ = ["SEVERITY_STYLE", "overview_png", "temperature_hist_png", "delta_norm_hist_png",
-           "loss_by_defect_png", "validity_png", "nice_length"]
+           "loss_by_defect_png", "validity_png", "registration_png", "nice_length"]
 
 #: Marker and colour of each severity, on the map and in the plots (our own scheme:
 #: distinct shapes so the map reads in grey print and for colour-blind readers too).
@@ -164,14 +164,10 @@ def overview_png(*, extent, image: np.ndarray | None, module_geoms, module_value
                        c=st["color"],
                        edgecolors="white", linewidths=0.9, zorder=5)
     halo = [pe.withStroke(linewidth=2.2, foreground="white")]
-    labelled = sorted(anomaly_points, key=lambda p: p[3])[: max(int(n_labels), 0)]
-    dx = 0.008 * width
-    for x, y, sev, prio in labelled:
-        ax.annotate(str(prio), (x, y), xytext=(x + dx, y + dx), fontsize=7, color=_INK,
-                    fontweight="bold", path_effects=halo, zorder=6)
     ax.set_xlim(xmin, xmax)
     ax.set_ylim(ymin, ymax)
     ax.set_aspect("equal")
+    _number_marks(fig, ax, anomaly_points, n_labels, msize, dpi)
     ax.set_xticks([])
     ax.set_yticks([])
     for s in ax.spines.values():
@@ -219,6 +215,35 @@ def overview_png(*, extent, image: np.ndarray | None, module_geoms, module_value
             px, py = ax.transData.transform((x, y))
             pins.append((prio, float(px / w_px), float(1.0 - py / h_px)))
     return _png(fig, dpi)
+
+
+def _number_marks(fig, ax, anomaly_points, n_labels: int, msize: float, dpi: int) -> None:
+    """Each mark's priority number beside it, placed so no two labels collide
+    (:func:`pvscan.report._labels.place_labels`); a thin leader joins a label set further out."""
+    import matplotlib.patheffects as pe
+
+    from pvscan.report._labels import place_labels
+
+    labelled = sorted(anomaly_points, key=lambda p: p[3])[: max(int(n_labels), 0)]
+    if not labelled:
+        return
+    fig.set_dpi(dpi)
+    ax.apply_aspect()
+    to_pt = 72.0 / dpi
+    xy = ax.transData.transform(np.array([(p[0], p[1]) for p in labelled], dtype=float)) * to_pt
+    bb = ax.get_window_extent()
+    frame = (bb.x0 * to_pt + 2, bb.y0 * to_pt + 2, bb.x1 * to_pt - 2, bb.y1 * to_pt - 2)
+    fs = 7.0
+    sizes = [(0.62 * fs * len(str(p[3])) + 3.0, fs * 1.25) for p in labelled]
+    radius = 0.5 * math.sqrt(msize * 1.6) + 1.0
+    centres, _ = place_labels(xy, sizes, mark_radius=radius, frame=frame)
+    halo = [pe.withStroke(linewidth=2.2, foreground="white")]
+    for (x, y, _, prio), (px, py), (qx, qy) in zip(labelled, centres, xy):
+        far = math.hypot(px - qx, py - qy) > radius + 0.5 * max(sizes[0]) + 4.0
+        ax.annotate(str(prio), (x, y), xytext=(px - qx, py - qy), textcoords="offset points", fontsize=fs,
+                    color=_INK, fontweight="bold", ha="center", va="center", path_effects=halo, zorder=6,
+                    arrowprops={"arrowstyle": "-", "color": _INK, "linewidth": 0.5, "shrinkA": 0,
+                                "shrinkB": radius} if far else None)
 
 
 def temperature_hist_png(t_healthy: np.ndarray, t_by_severity: Mapping[str, np.ndarray], dpi: int) -> bytes:
@@ -395,4 +420,58 @@ def conditions_series_png(times, poa, wind, *, poa_min: float | None, wind_max: 
         ax.set_title(label, fontsize=9, loc="left")
         ax.xaxis.set_major_formatter(mdates.DateFormatter("%H:%M", tz=getattr(start, "tzinfo", None)))
         ax.tick_params(axis="x", labelsize=7)
+    return _png(fig, dpi)
+
+
+def registration_png(module_geoms, arrows: Sequence[tuple[float, float, float, float, str]],
+                     shift: tuple[float, float], dpi: int) -> bytes:
+    """The registration fit on a plan of the plant: the modules as placed on the image, and at
+    each measuring block (or refined table) an arrow of the shift measured there, drawn longer
+    than true so centimetres show (the factor is printed).
+
+    Parameters
+    ----------
+    module_geoms : sequence of shapely polygons (map coordinates)
+    arrows : sequence of (x, y, dx, dy, kind)
+        Position [m], measured shift [m] and ``kind`` ('used', 'not used', 'table').
+    shift : (dx, dy)
+        The layout shift applied [m] (east, north).
+    """
+    from matplotlib.collections import PolyCollection
+    from matplotlib.lines import Line2D
+
+    polys = _polys(module_geoms)
+    pts = np.concatenate(polys) if polys else np.array([[a[0], a[1]] for a in arrows] or [[0.0, 0.0]])
+    xmin, ymin = pts.min(axis=0)
+    xmax, ymax = pts.max(axis=0)
+    span = max(xmax - xmin, ymax - ymin, 1.0)
+    fig = _figure(5.0, 3.6)
+    ax = fig.add_axes((0.02, 0.14, 0.96, 0.78))
+    ax.add_collection(PolyCollection(polys, facecolors="#e3e8ee", edgecolors="#9aa7b6", linewidths=0.3))
+    lengths = [math.hypot(a[2], a[3]) for a in arrows] + [math.hypot(*shift)]
+    longest = max([v for v in lengths if math.isfinite(v)] + [1e-3])
+    factor = nice_length(0.12 * span / longest) if longest > 0 else 1.0
+    colours = {"used": "#1f6fd0", "not used": "#9aa7b6", "table": "#c7792b"}
+    for x, y, dx, dy, kind in arrows:
+        if all(math.isfinite(v) for v in (x, y, dx, dy)):
+            ax.annotate("", (x + dx * factor, y + dy * factor), (x, y),
+                        arrowprops={"arrowstyle": "-|>", "color": colours.get(kind, _INK), "linewidth": 1.2})
+    cx, cy = 0.5 * (xmin + xmax), 0.5 * (ymin + ymax)
+    ax.annotate("", (cx + shift[0] * factor, cy + shift[1] * factor), (cx, cy),
+                arrowprops={"arrowstyle": "-|>", "color": "#d1005d", "linewidth": 2.0})
+    pad = 0.08 * span
+    ax.set_xlim(xmin - pad, xmax + pad)
+    ax.set_ylim(ymin - pad, ymax + pad)
+    ax.set_aspect("equal")
+    ax.set_xticks([])
+    ax.set_yticks([])
+    for s in ax.spines.values():
+        s.set_color(_MUTED)
+    ax.set_title(f"Layout fitted to the image (arrows {factor:g} × true length)", fontsize=9, loc="left",
+                 color=_INK)
+    handles = [Line2D([], [], color="#d1005d", linewidth=2.0, label="shift applied")]
+    kinds = sorted({a[4] for a in arrows})
+    handles += [Line2D([], [], color=colours.get(k, _INK), linewidth=1.2, label=f"block, {k}" if k != "table"
+                       else "table refined") for k in kinds]
+    fig.legend(handles=handles, loc="lower center", ncol=len(handles), frameon=False, fontsize=7)
     return _png(fig, dpi)

@@ -1,0 +1,102 @@
+"""``pvscan layout detect|check``: a module layout from the ortho, and an audit of a layout."""
+from __future__ import annotations
+
+from pathlib import Path
+
+import click
+
+from pvscan.cli._common import echo, handle_errors
+
+
+@click.group("layout")
+def layout_group():
+    """Find the module layout in the thermal ortho, or hold a layout against it."""
+
+
+def _write(out_path: Path, layers: dict, overwrite: bool) -> None:
+    from pvscan.errors import OutputError
+    from pvscan.io.outputs import atomic_path
+
+    if out_path.suffix.lower() != ".gpkg":
+        raise OutputError(f"{out_path}: the layout is written as GeoPackage; use a .gpkg name")
+    if out_path.exists() and not overwrite:
+        raise OutputError(f"{out_path}: exists (use --overwrite to replace it)")
+    with atomic_path(out_path, suffix=".tmp.gpkg") as tmp:
+        for name, gdf in layers.items():
+            gdf.reset_index(drop=True).to_file(tmp, layer=name, driver="GPKG", engine="pyogrio")
+
+
+@layout_group.command("detect")
+@click.argument("flight", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="Detected layout (GeoPackage, ortho CRS; layers modules and tables; written atomically).")
+@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
+              help="Pipeline settings; uses [layout_detect].")
+@click.option("--overwrite", is_flag=True, help="Replace an existing output file.")
+@handle_errors
+def detect_cmd(flight, out_path, pipeline_path, overwrite):
+    """Find every table and module of FLIGHT.toml's ortho(s) from the module datasheet and
+    write the module footprints to --out (usable as flight.layout).
+
+    Ids: tables D<table row>-<table> (table rows from the lower-edge side, tables from the
+    smallest easting); modules <table>-R<row>-C<col> (row 1 at the lower edge, col 1 at the
+    smallest easting). A module partly on nodata or past the ortho's edge has status "cut".
+    """
+    from pvscan.io.manifest import load_flight
+    from pvscan.io.ortho import open_orthos
+    from pvscan.io.settings import load_pipeline
+    from pvscan.measure.layout_image import detect_layout
+
+    fl = load_flight(flight, check_files=False)
+    settings = load_pipeline(pipeline_path)
+    with open_orthos(fl, settings=settings) as orthos:
+        det = detect_layout(orthos, fl.module, fl.layout, settings)
+    _write(out_path, {"modules": det.modules, "tables": det.tables}, overwrite)
+    s = det.summary()
+    echo(f"found {s['tables']} tables, {s['modules']} modules ({s['modules_cut']} cut by nodata or the "
+         f"ortho's edge); table confidence min {s['confidence_min']:.2f}, median {s['confidence_median']:.2f}")
+    low = det.tables[det.tables["confidence"] < 0.6]
+    for r in low.itertuples():
+        echo(f"check table {r.table_id}: confidence {r.confidence:.2f}, {r.rows} x {r.cols} {r.orientation}")
+    echo(f"wrote {out_path}")
+
+
+@layout_group.command("check")
+@click.argument("flight", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
+              help="Findings (GeoPackage: layer findings; with --fix also layout).")
+@click.option("--fix", is_flag=True, help="Also write the corrected layout (layer layout), keeping the "
+              "layout's ids and attributes of matched modules.")
+@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
+              help="Pipeline settings; uses [layout_detect].")
+@click.option("--overwrite", is_flag=True, help="Replace an existing output file.")
+@handle_errors
+def check_cmd(flight, out_path, fix, pipeline_path, overwrite):
+    """Hold the layout of FLIGHT.toml against the modules found in its ortho: modules
+    missing from the layout, layout modules with no module under them, tables moved or turned.
+    """
+    from pvscan.io.layout import read_layout
+    from pvscan.io.manifest import load_flight
+    from pvscan.io.ortho import open_orthos
+    from pvscan.io.settings import load_pipeline, section
+    from pvscan.measure.layout_image import check_layout, corrected_layout, detect_layout
+
+    fl = load_flight(flight)
+    settings = load_pipeline(pipeline_path)
+    with open_orthos(fl, settings=settings) as orthos:
+        layout = read_layout(fl, orthos.crs)
+        det = detect_layout(orthos, fl.module, fl.layout, settings)
+    chk = check_layout(layout, det.modules, dict(section(settings, "layout_detect")))
+    layers = {"findings": chk.findings}
+    if fix:
+        layers["layout"] = corrected_layout(layout, det.modules, chk)
+    _write(out_path, layers, overwrite)
+    c = chk.counts()
+    dx, dy = chk.common_shift_m
+    echo(f"layout {len(layout)} modules, image {len(det.modules)} modules; common shift "
+         f"{dx:+.2f} m east, {dy:+.2f} m north")
+    echo(f"missing from the layout: {c['missing_from_layout']}; no module found under: {c['no_module_found']}; "
+         f"tables moved: {c['table_moved']}; turned: {c['table_turned']}")
+    for r in chk.findings[chk.findings["finding"].isin(["table_moved", "table_turned"])].itertuples():
+        echo(f"  {r.table_id}: {r.detail}")
+    echo(f"wrote {out_path}" + (" (findings, corrected layout)" if fix else " (findings)"))

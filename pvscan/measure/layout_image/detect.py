@@ -1,0 +1,213 @@
+"""Detect the module layout of a flight from its thermal ortho(s) and the module datasheet.
+
+:func:`detect_layout` finds the tables on a decimated mosaic (:mod:`.segment`), fits a
+lattice of module footprints to each on the full-resolution pixels (:mod:`.lattice`) and
+returns one polygon per module in the ortho's CRS.
+
+Ids (stable for a given image and documented in the README):
+
+- tables are grouped into *table rows* (tables whose centres lie within half a table depth
+  of each other across the table axis), numbered from the row furthest toward the facing
+  direction (the lower edge side; the south-most row for south-facing tables), and within a
+  row from the smallest coordinate along the table axis (easting; northing for tables running
+  north-south): ``table_id = "D<table row:02d>-<table:02d>"``;
+- inside a table, ``table_row`` 1 is the module row at the lower edge and ``table_col`` 1 the
+  module at the table end with the smallest easting (northing for north-south tables), as in
+  :mod:`pvscan.io.layout`; ``module_id = "<table_id>-R<row>-C<col:02d>"``.
+
+A module whose footprint lies partly on nodata or beyond the ortho's edge has ``status`` "cut"
+(its position is where the lattice puts it, the extent of the table beyond the image is not
+guessed: modules wholly beyond it are not written); ``"nodata"`` when most of it is on
+nodata; ``"ok"`` otherwise. ``confidence`` is the table's (0..1).
+"""
+from __future__ import annotations
+
+import logging
+import math
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from pvscan.errors import LayoutError
+from pvscan.io.settings import section
+from pvscan.measure.layout_image.lattice import TableFit, facing_vector, fit_table
+from pvscan.measure.layout_image.segment import find_tables
+
+__all__ = ["DetectedLayout", "detect_layout", "LAYOUT_COLUMNS"]
+
+log = logging.getLogger(__name__)
+
+#: Columns of the detected modules frame (besides geometry).
+LAYOUT_COLUMNS = ("module_id", "table_id", "table_row", "table_col", "status", "confidence", "orientation")
+
+
+@dataclass
+class DetectedLayout:
+    """The result of :func:`detect_layout`.
+
+    Attributes
+    ----------
+    modules : geopandas.GeoDataFrame
+        One row per module: ``LAYOUT_COLUMNS`` and the footprint polygon (ortho CRS).
+    tables : geopandas.GeoDataFrame
+        One row per table: ``table_id``, ``rows``, ``cols``, ``orientation``, ``confidence``,
+        ``misfit``, ``angle_deg`` (of the table axis, counter-clockwise from east),
+        ``module_along_m``, ``module_across_m``, ``contrast_k``, ``cut`` and the table polygon.
+    fits : list of TableFit
+    """
+
+    modules: Any
+    tables: Any
+    fits: list[TableFit]
+
+    def summary(self) -> dict:
+        """Counts for ``summary.json`` and the CLI."""
+        m = self.modules
+        return {
+            "tables": int(len(self.tables)),
+            "modules": int(len(m)),
+            "modules_cut": int((m["status"] == "cut").sum()) if len(m) else 0,
+            "modules_nodata": int((m["status"] == "nodata").sum()) if len(m) else 0,
+            "confidence_min": float(self.tables["confidence"].min()) if len(self.tables) else None,
+            "confidence_median": float(self.tables["confidence"].median()) if len(self.tables) else None,
+        }
+
+
+def _overlaps(a: TableFit, b: TableFit) -> bool:
+    d = b.origin + 0.5 * b.length_m * b.axis + 0.5 * b.depth_m * b.across
+    c = a.origin + 0.5 * a.length_m * a.axis + 0.5 * a.depth_m * a.across
+    rel = d - c
+    return abs(rel @ a.axis) < 0.5 * a.length_m and abs(rel @ a.across) < 0.5 * a.depth_m
+
+
+def _order(fits: list[TableFit], azimuth_deg: float) -> list[tuple[int, int, TableFit]]:
+    """(table row, table, fit) numbered as the module docstring says."""
+    if not fits:
+        return []
+    face = facing_vector(azimuth_deg)
+    centres = np.array([f.origin + 0.5 * f.length_m * f.axis + 0.5 * f.depth_m * f.across for f in fits])
+    axis = np.mean([f.axis for f in fits], axis=0)
+    axis /= np.linalg.norm(axis)
+    across = np.array([-axis[1], axis[0]])
+    if across @ face < 0:
+        across = -across
+    w = centres @ across  # larger = further toward the lower edge side
+    s = centres @ axis
+    depth = float(np.median([f.depth_m for f in fits]))
+    order = np.argsort(-w, kind="stable")
+    row = np.zeros(len(fits), int)
+    r, last = 0, None
+    for i in order:
+        if last is not None and last - w[i] > 0.5 * depth:
+            r += 1
+        row[i] = r
+        last = w[i] if last is None else last if last - w[i] <= 0.5 * depth else w[i]
+    out = []
+    for rr in range(r + 1):
+        members = np.flatnonzero(row == rr)
+        east = axis[0] > 1e-9 or (abs(axis[0]) <= 1e-9 and axis[1] > 0)
+        members = members[np.argsort(s[members] if east else -s[members], kind="stable")]
+        for k, i in enumerate(members):
+            out.append((rr + 1, k + 1, fits[i]))
+    return out
+
+
+def _frames(rows: list[dict], tables: list[dict], crs: Any) -> tuple[Any, Any]:
+    import geopandas as gpd
+
+    cols = [*LAYOUT_COLUMNS, "geometry"]
+    mod = gpd.GeoDataFrame(rows, columns=cols, geometry="geometry", crs=crs) if rows else \
+        gpd.GeoDataFrame({c: [] for c in cols}, geometry="geometry", crs=crs)
+    tcols = ["table_id", "rows", "cols", "orientation", "confidence", "misfit", "angle_deg", "module_along_m",
+             "module_across_m", "contrast_k", "cut", "geometry"]
+    tab = gpd.GeoDataFrame(tables, columns=tcols, geometry="geometry", crs=crs) if tables else \
+        gpd.GeoDataFrame({c: [] for c in tcols}, geometry="geometry", crs=crs)
+    return mod, tab
+
+
+def detect_layout(orthos: Any, module: Any, layout: Any, settings: Any = None, progress: Any = None) -> DetectedLayout:
+    """Find every table and module footprint in the ortho.
+
+    Parameters
+    ----------
+    orthos : OrthoSet
+        The flight's open ortho tiles (apparent temperature [degC]).
+    module : ModuleSpec
+        Datasheet size ``width_m``, ``length_m`` [m].
+    layout : LayoutSpec
+        ``orientation`` (preferred on a tie), ``gap_m`` [m], ``tilt_deg`` [deg] (the side up
+        the slope is seen as ``length * cos(tilt)``), ``azimuth_deg`` [deg] (which edge is
+        the lower edge, row 1).
+    settings : Pipeline or mapping, optional
+        The pipeline; its ``[layout_detect]`` section is used.
+    progress : callable, optional
+        ``progress(stage, done, total)``.
+
+    Returns
+    -------
+    DetectedLayout
+
+    Raises
+    ------
+    LayoutError
+        No table found in the ortho.
+    """
+    from shapely import polygons
+
+    cfg = dict(section(settings, "layout_detect"))
+    img, transform = orthos.read_overview(int(cfg["overview_px"]))
+    step = abs(float(transform.a))
+    if step > module.width_m / float(cfg["min_px_per_module"]):
+        log.info("layout detection on a %.3f m/px mosaic (the ortho is larger than %d px)", step, cfg["overview_px"])
+    cands = find_tables(img, transform, module.width_m, cfg)
+    del img
+    fits: list[TableFit] = []
+    for k, cand in enumerate(cands):
+        fit = fit_table(orthos, cand, module, layout, cfg)
+        if progress is not None:
+            progress("layout_detect", k + 1, len(cands))
+        if fit is None or fit.rows * fit.cols < int(cfg["min_table_modules"]):
+            continue
+        if fit.confidence < float(cfg["min_confidence"]):
+            log.info("table candidate at (%.1f, %.1f) dropped: confidence %.2f", *cand.centre, fit.confidence)
+            continue
+        fits.append(fit)
+    # the same table found twice (two candidates of one table): keep the more confident
+    fits.sort(key=lambda f: -f.confidence)
+    kept: list[TableFit] = []
+    for f in fits:
+        if not any(_overlaps(g, f) or _overlaps(f, g) for g in kept):
+            kept.append(f)
+    if not kept:
+        raise LayoutError(f"{orthos.tiles[0].path}: no table of modules found in the ortho "
+                          f"(module {module.width_m} x {module.length_m} m, tilt {layout.tilt_deg} deg)")
+    rows: list[dict] = []
+    tables: list[dict] = []
+    for trow, tnum, f in _order(kept, layout.azimuth_deg):
+        table_id = f"D{trow:02d}-{tnum:02d}"
+        corners = f.corners()  # (rows, cols, 4, 2), row 0 = upper edge, col 0 = s_lo
+        east = f.axis[0] > 1e-9 or (abs(f.axis[0]) <= 1e-9 and f.axis[1] > 0)
+        visible = f.status != "nodata"
+        for r in range(f.rows):
+            for c in range(f.cols):
+                if not visible[r, c]:
+                    continue
+                row_no = f.rows - r  # row 1 at the lower edge
+                col_no = c + 1 if east else f.cols - c
+                rows.append({"module_id": f"{table_id}-R{row_no}-C{col_no:02d}", "table_id": table_id,
+                             "table_row": row_no, "table_col": col_no, "status": str(f.status[r, c]),
+                             "confidence": round(f.confidence, 3), "orientation": f.orientation,
+                             "geometry": polygons(corners[r, c])})
+        outline = np.array([f.origin, f.origin + f.length_m * f.axis,
+                            f.origin + f.length_m * f.axis + f.depth_m * f.across, f.origin + f.depth_m * f.across])
+        tables.append({"table_id": table_id, "rows": f.rows, "cols": f.cols, "orientation": f.orientation,
+                       "confidence": round(f.confidence, 3), "misfit": round(f.misfit, 3),
+                       "angle_deg": round(math.degrees(math.atan2(f.axis[1], f.axis[0])), 4),
+                       "module_along_m": round(f.module_s_m, 4), "module_across_m": round(f.module_w_m, 4),
+                       "contrast_k": round(f.contrast_k, 2), "cut": ",".join(
+                           n for n, c in zip(("start", "end", "upper", "lower"), f.cut) if c) or None,
+                       "geometry": polygons(outline)})
+    mod, tab = _frames(rows, tables, orthos.crs)
+    log.info("detected %d tables, %d modules", len(tab), len(mod))
+    return DetectedLayout(modules=mod, tables=tab, fits=kept)

@@ -1,0 +1,419 @@
+"""Fit a regular lattice of module footprints to one table on the full-resolution ortho.
+
+A table is a lattice: ``cols`` modules along its axis and ``rows`` across, all of one size,
+with one gap. The table's rectangle from the mosaic (:mod:`.segment`) is refined on the
+pixels of a window around it (a windowed read per tile; the pixels are used as a cloud of
+samples ``(s, w, T)`` in the table's frame, so tiles need no mosaicking and a rotated table
+gives a super-resolved edge profile):
+
+1. **extent**: the share of glass-level samples (``|T - level| <= level_tol_k``) per
+   ``gsd / 2`` bin along each axis, closed over frame lines and module gaps; the run
+   holding the centre is the table;
+2. **edges**: each edge is placed where the mean temperature profile across it crosses half
+   way between the glass and the ground just outside it (a symmetric blur leaves a step's
+   half-way point where the step is), to a fraction of a pixel;
+3. **angle**: the long edges are measured in ``angle_segments`` pieces along the table and a
+   straight line fitted to them by least squares; their mean slope turns the axis; steps 1-3
+   run ``refine_passes`` times;
+4. **lattice**: for each orientation the datasheet allows (portrait, landscape) the number
+   of modules along and across is the nearest whole number of ``(extent + gap) / (module +
+   gap)`` (the module's side up the slope foreshortened to ``length * cos(tilt)``); the
+   orientation with the smaller misfit wins (the manifest's on a tie), and the modules share
+   the measured extent evenly.
+
+An edge whose outside lies on nodata or beyond the ortho is *cut*: the lattice is then laid
+from the other edge with the datasheet pitch, and the modules that reach past the visible
+glass are kept with ``status = "cut"``; a module with too few valid pixels is ``"nodata"``.
+Nothing is extrapolated beyond the ortho.
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from rasterio.windows import Window
+
+from pvscan.measure.layout_image.segment import TableCandidate, _mode, glass_band
+
+__all__ = ["TableFit", "fit_table", "facing_vector"]
+
+
+def facing_vector(azimuth_deg: float) -> np.ndarray:
+    """Unit vector (east, north) of a compass azimuth [deg from north, clockwise]."""
+    phi = math.radians(azimuth_deg)
+    return np.array([math.sin(phi), math.cos(phi)])
+
+
+@dataclass
+class TableFit:
+    """One table's lattice in map coordinates.
+
+    Attributes
+    ----------
+    origin : ndarray (2,)
+        Map point of the table corner at col 1 and the upper edge (``s_lo, w_lo``) [m].
+    axis, across : ndarray (2,)
+        Unit vectors along the table (toward higher cols) and toward its lower edge [-].
+    length_m, depth_m : float
+        Extent of the lattice [m].
+    rows, cols : int
+    orientation : str
+    module_s_m, module_w_m, gap_s_m, gap_w_m : float
+        Module footprint and gaps along / across the table [m].
+    confidence : float
+        0..1: lattice misfit, glass share and edge contrast together.
+    misfit : float
+        Largest distance of the measured extents from a whole number of modules [modules].
+    cut : tuple of bool
+        Edges on nodata: (s_lo, s_hi, w_lo, w_hi).
+    status : ndarray (rows, cols) of str
+        ``ok``, ``cut`` or ``nodata`` per module (row 0 = upper edge, col 0 = s_lo).
+    glass : ndarray (rows, cols)
+        Share of valid pixels of each module at the glass level [-].
+    """
+
+    origin: np.ndarray
+    axis: np.ndarray
+    across: np.ndarray
+    length_m: float
+    depth_m: float
+    rows: int
+    cols: int
+    orientation: str
+    module_s_m: float
+    module_w_m: float
+    gap_s_m: float
+    gap_w_m: float
+    confidence: float
+    misfit: float
+    level_c: float
+    contrast_k: float
+    cut: tuple[bool, bool, bool, bool]
+    status: np.ndarray = field(repr=False)
+    glass: np.ndarray = field(repr=False)
+
+    def corners(self) -> np.ndarray:
+        """Module corners (rows, cols, 4, 2) [m], counter-clockwise for a right-handed frame."""
+        r = np.arange(self.rows)
+        c = np.arange(self.cols)
+        s0 = c * (self.module_s_m + self.gap_s_m)
+        w0 = r * (self.module_w_m + self.gap_w_m)
+        S = np.stack([s0, s0 + self.module_s_m, s0 + self.module_s_m, s0], axis=1)  # (cols, 4)
+        W = np.stack([w0, w0, w0 + self.module_w_m, w0 + self.module_w_m], axis=1)  # (rows, 4)
+        S = np.broadcast_to(S[None], (self.rows, self.cols, 4))
+        W = np.broadcast_to(W[:, None], (self.rows, self.cols, 4))
+        x = self.origin[0] + S * self.axis[0] + W * self.across[0]
+        y = self.origin[1] + S * self.axis[1] + W * self.across[1]
+        return np.stack([x, y], axis=-1)
+
+
+def _samples(orthos: Any, centre: np.ndarray, half: float, win_m: float
+             ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Pixel centres (x, y), values [degC] and log gradient energy of every tile near a point.
+
+    Returns x, y, t (NaN = nodata), log of the gradient magnitude averaged over ``win_m``.
+    """
+    from scipy import ndimage as ndi
+
+    from pvscan.measure.layout_image.segment import _fill_nan
+
+    xs, ys, ts, es = [], [], [], []
+    for i, t in enumerate(orthos.tiles):
+        inv = ~t.transform
+        cols, rows = inv * (np.array([centre[0] - half, centre[0] + half]),
+                            np.array([centre[1] - half, centre[1] + half]))
+        c0, c1 = int(math.floor(min(cols))), int(math.ceil(max(cols)))
+        r0, r1 = int(math.floor(min(rows))), int(math.ceil(max(rows)))
+        c0, r0 = max(c0, 0), max(r0, 0)
+        c1, r1 = min(c1, t.width), min(r1, t.height)
+        if c1 <= c0 or r1 <= r0:
+            continue
+        data = orthos.read(i, Window(c0, r0, c1 - c0, r1 - r0))
+        cc, rr = np.meshgrid(np.arange(c0, c1) + 0.5, np.arange(r0, r1) + 0.5)
+        x, y = t.transform * (cc.ravel(), rr.ravel())
+        xs.append(np.asarray(x))
+        ys.append(np.asarray(y))
+        ts.append(data.ravel().astype(np.float64))
+        work = _fill_nan(data.astype(np.float64))
+        gy, gx = np.gradient(work, t.gsd_m) if min(work.shape) > 1 else (np.zeros_like(work),) * 2
+        win = max(3, int(round(win_m / t.gsd_m)))
+        es.append(np.log(ndi.uniform_filter(np.hypot(gx, gy), win) + 1e-6).ravel())
+    if not xs:
+        e = np.empty(0)
+        return e, e, e, e
+    return np.concatenate(xs), np.concatenate(ys), np.concatenate(ts), np.concatenate(es)
+
+
+def _runs_closed(flag: np.ndarray, close_bins: int) -> np.ndarray:
+    """A boolean profile with gaps up to ``close_bins`` bins filled."""
+    from scipy import ndimage as ndi
+
+    if close_bins < 1:
+        return flag
+    pad = close_bins + 1
+    f = np.pad(flag, pad)
+    f = ndi.binary_closing(f, np.ones(2 * close_bins + 1, bool))
+    return f[pad:-pad]
+
+
+def _extent(coord: np.ndarray, glass: np.ndarray, valid: np.ndarray, bin_m: float, close_m: float,
+            lo: float, hi: float) -> tuple[float, float, bool, bool]:
+    """Run of glass bins holding 0 along one axis; whether each end meets nodata."""
+    edges = np.arange(lo, hi + bin_m, bin_m)
+    k = np.clip(np.searchsorted(edges, coord) - 1, 0, len(edges) - 2)
+    nb = len(edges) - 1
+    n_valid = np.bincount(k, weights=valid, minlength=nb)
+    n_all = np.bincount(k, minlength=nb)
+    n_glass = np.bincount(k, weights=glass & valid, minlength=nb)
+    frac = np.where(n_valid > 0, n_glass / np.maximum(n_valid, 1), np.nan)
+    is_glass = np.nan_to_num(frac, nan=0.0) >= 0.5
+    # nodata bins next to glass count as unknown, not ground
+    nod = (n_all > 0) & (n_valid < 0.5 * n_all)
+    is_glass = _runs_closed(is_glass, int(round(close_m / bin_m)))
+    mid = int(np.clip(np.searchsorted(edges, 0.0) - 1, 0, nb - 1))
+    if not is_glass[mid]:
+        near = np.flatnonzero(is_glass)
+        if near.size == 0:
+            return math.nan, math.nan, False, False
+        mid = int(near[np.argmin(np.abs(near - mid))])
+    a = mid
+    while a > 0 and is_glass[a - 1]:
+        a -= 1
+    b = mid
+    while b < nb - 1 and is_glass[b + 1]:
+        b += 1
+    probe = max(1, int(round(0.3 / bin_m)))
+    cut_lo = a == 0 or bool(nod[max(0, a - probe):a].any())
+    cut_hi = b == nb - 1 or bool(nod[b + 1:b + 1 + probe].any())
+    return float(edges[a]), float(edges[b + 1]), cut_lo, cut_hi
+
+
+def _half_crossing(coord: np.ndarray, t: np.ndarray, edge: float, outward: float, gsd: float) -> float:
+    """Sub-pixel edge: where the mean profile crosses half way between inside and outside.
+
+    ``outward`` is +1 when the outside lies toward larger coordinates.
+    """
+    near = np.abs(coord - edge) < 6 * gsd
+    if near.sum() < 8:
+        return edge
+    d = (coord[near] - edge) * outward
+    tv = t[near]
+    inside = tv[(d < -2 * gsd) & (d > -5 * gsd)]
+    outside = tv[(d > 2 * gsd) & (d < 5 * gsd)]
+    if inside.size < 3 or outside.size < 3:
+        return edge
+    ti, to = float(np.median(inside)), float(np.median(outside))
+    if abs(ti - to) < 0.5:
+        return edge
+    bin_m = gsd / 4
+    nb = int(round(8 * gsd / bin_m))
+    k = np.floor((d + 4 * gsd) / bin_m).astype(int)
+    ok = (k >= 0) & (k < nb)
+    sums = np.bincount(k[ok], weights=tv[ok], minlength=nb)
+    cnt = np.bincount(k[ok], minlength=nb)
+    have = cnt > 0
+    if have.sum() < 4:
+        return edge
+    pos = (np.arange(nb) + 0.5) * bin_m - 4 * gsd
+    prof = (sums[have] / cnt[have] - to) / (ti - to)  # 1 inside, 0 outside
+    pos = pos[have]
+    # last position (from inside outward) where the profile is still above one half
+    above = prof >= 0.5
+    idx = np.flatnonzero(above[:-1] & ~above[1:])
+    if idx.size == 0:
+        return edge
+    j = int(idx[np.argmin(np.abs(pos[idx]))])
+    p0, p1 = prof[j], prof[j + 1]
+    x = pos[j] + (p0 - 0.5) / (p0 - p1) * (pos[j + 1] - pos[j])
+    return edge + x * outward
+
+
+def _lattice(extent: float, mod: float, gap: float) -> tuple[int, float]:
+    n = max(1, int(round((extent + gap) / (mod + gap))))
+    return n, abs((extent + gap) / (mod + gap) - n)
+
+
+def _size(extent: float, n: int, datasheet: float, gap: float, settings: dict) -> float:
+    """Module size along one axis: the datasheet's when the measured extent agrees with it.
+
+    A table's edges are measured through the blur and the cooler frame, so they can sit a
+    centimetre or two inside the footprint; their midpoint is unbiased. Within
+    ``datasheet_tol`` the datasheet size (exact to the millimetre) is laid around the
+    measured centre, else the measured extent is shared evenly (a wrong datasheet or tilt).
+    """
+    measured = (extent - (n - 1) * gap) / n
+    if abs(measured / datasheet - 1.0) <= float(settings["datasheet_tol"]):
+        return datasheet
+    return measured
+
+
+def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, settings: dict) -> TableFit | None:
+    """Refine a table candidate and fit its module lattice (see the module docstring).
+
+    Parameters
+    ----------
+    orthos : OrthoSet
+    cand : TableCandidate
+    module : ModuleSpec
+        ``width_m``, ``length_m`` [m].
+    layout : LayoutSpec
+        ``orientation`` (used on a tie), ``gap_m`` [m], ``tilt_deg``, ``azimuth_deg`` [deg].
+    settings : mapping
+        The ``[layout_detect]`` section.
+
+    Returns
+    -------
+    TableFit or None
+        None when no lattice fits (no glass run at the candidate's centre).
+    """
+    gsd = float(orthos.gsd_m)
+    tol = float(settings["level_tol_k"])
+    margin = float(settings["window_margin_m"])
+    half = 0.5 * math.hypot(cand.length_m, cand.depth_m) + margin
+    x, y, t, _energy = _samples(orthos, cand.centre, half,
+                                0.5 * float(settings["texture_window_modules"]) * module.width_m)
+    if x.size == 0:
+        return None
+    valid = np.isfinite(t)
+    face = facing_vector(layout.azimuth_deg)
+    centre = cand.centre.astype(float).copy()
+    axis = cand.axis.astype(float).copy()
+    length, depth = cand.length_m, cand.depth_m
+    level = cand.level_c
+    band = cand.band_c
+    bin_m = gsd / 2
+    close_m = float(settings["close_m"])
+    cut = (False, False, False, False)
+    s_lo = s_hi = w_lo = w_hi = 0.0
+    for _ in range(int(settings["refine_passes"])):
+        across = np.array([-axis[1], axis[0]])
+        if across @ face < 0:
+            across = -across
+        s = (x - centre[0]) * axis[0] + (y - centre[1]) * axis[1]
+        w = (x - centre[0]) * across[0] + (y - centre[1]) * across[1]
+        inner = valid & (np.abs(s) < 0.35 * length) & (np.abs(w) < 0.35 * depth)
+        if inner.sum() > 16:
+            level = _mode(t[inner], settings["level_bin_k"])
+            band = glass_band(t[inner], level, settings["level_bin_k"], tol)
+        glass = valid & (t >= band[0]) & (t <= band[1])
+        band_w = np.abs(w) < max(0.25 * depth, depth / 2 - 0.3)
+        s_lo, s_hi, c0, c1 = _extent(s[band_w], glass[band_w], valid[band_w], bin_m, close_m,
+                                     -half, half)
+        if not math.isfinite(s_lo):
+            return None
+        band_s = (s > s_lo + 0.3) & (s < s_hi - 0.3)
+        w_lo, w_hi, c2, c3 = _extent(w[band_s], glass[band_s], valid[band_s], bin_m, close_m, -half, half)
+        if not math.isfinite(w_lo):
+            return None
+        cut = (c0, c1, c2, c3)
+        tv = np.where(valid, t, np.nan)
+        ok = valid & band_s
+        if not c2:
+            w_lo = _half_crossing(w[ok], tv[ok], w_lo, -1, gsd)
+        if not c3:
+            w_hi = _half_crossing(w[ok], tv[ok], w_hi, +1, gsd)
+        ok = valid & (w > w_lo + 0.2) & (w < w_hi - 0.2)
+        if not c0:
+            s_lo = _half_crossing(s[ok], tv[ok], s_lo, -1, gsd)
+        if not c1:
+            s_hi = _half_crossing(s[ok], tv[ok], s_hi, +1, gsd)
+        # angle: straight lines through the long edges, measured piecewise
+        n_seg = int(settings["angle_segments"])
+        slopes, weights = [], []
+        seg_edges = np.linspace(s_lo + 0.2, s_hi - 0.2, n_seg + 1)
+        for edge, outward, is_cut in ((w_lo, -1, c2), (w_hi, +1, c3)):
+            if is_cut:
+                continue
+            pts = []
+            for a, b in zip(seg_edges[:-1], seg_edges[1:]):
+                sel = valid & (s >= a) & (s < b)
+                pts.append((0.5 * (a + b), _half_crossing(w[sel], tv[sel], edge, outward, gsd)))
+            p = np.array(pts)
+            if len(p) >= 2 and np.ptp(p[:, 0]) > 0:
+                dev = p[:, 1] - np.median(p[:, 1])
+                keep = np.abs(dev) < 3 * gsd
+                if keep.sum() >= 2:
+                    slopes.append(np.polyfit(p[keep, 0], p[keep, 1], 1)[0])
+                    weights.append(keep.sum())
+        sm, wm = 0.5 * (s_lo + s_hi), 0.5 * (w_lo + w_hi)
+        centre = centre + sm * axis + wm * across
+        length, depth = s_hi - s_lo, w_hi - w_lo
+        if slopes:
+            dth = math.atan(float(np.average(slopes, weights=weights)))
+            sgn = 1.0 if (axis[0] * across[1] - axis[1] * across[0]) > 0 else -1.0
+            ang = math.atan2(axis[1], axis[0]) + sgn * dth
+            axis = np.array([math.cos(ang), math.sin(ang)])
+    across = np.array([-axis[1], axis[0]])
+    if across @ face < 0:
+        across = -across
+    return _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band, cand, cut, module,
+                      layout, settings, gsd)
+
+
+def _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band, cand, cut, module, layout,
+               settings, gsd) -> TableFit | None:
+    cos_t = math.cos(math.radians(layout.tilt_deg))
+    gap_s, gap_w = float(layout.gap_m), float(layout.gap_m) * cos_t
+    best = None
+    for orient in ("portrait", "landscape"):
+        mod_s = module.width_m if orient == "portrait" else module.length_m
+        mod_w = (module.length_m if orient == "portrait" else module.width_m) * cos_t
+        n, rs = _lattice(length, mod_s, gap_s)
+        m, rw = _lattice(depth, mod_w, gap_w)
+        # a cut edge: only whole modules of the visible part count; misfit from the other axis
+        misfit = max(rs if not (cut[0] or cut[1]) else 0.0, rw if not (cut[2] or cut[3]) else 0.0)
+        key = (round(misfit, 2) if misfit > 0.1 else 0.0, orient != layout.orientation)
+        if best is None or key < best[0]:
+            best = (key, orient, mod_s, mod_w, n, m, misfit)
+    assert best is not None
+    _, orient, mod_s, mod_w, n, m, misfit = best
+    s0, w0 = -0.5 * length, -0.5 * depth
+    # even share of the measured extent, unless an edge is cut (then the datasheet pitch from the other edge)
+    if cut[0] or cut[1]:
+        n = max(1, int(math.ceil((length + gap_s) / (mod_s + gap_s) - 0.05)))
+        size_s = mod_s
+        if cut[0] and not cut[1]:
+            s0 = 0.5 * length - n * mod_s - (n - 1) * gap_s
+    else:
+        size_s = _size(length, n, mod_s, gap_s, settings)
+        s0 = -0.5 * (n * size_s + (n - 1) * gap_s)
+    if cut[2] or cut[3]:
+        m = max(1, int(math.ceil((depth + gap_w) / (mod_w + gap_w) - 0.05)))
+        size_w = mod_w
+        if cut[2] and not cut[3]:
+            w0 = 0.5 * depth - m * mod_w - (m - 1) * gap_w
+    else:
+        size_w = _size(depth, m, mod_w, gap_w, settings)
+        w0 = -0.5 * (m * size_w + (m - 1) * gap_w)
+    if n * m > int(settings["max_table_modules"]):
+        return None
+    origin = centre + s0 * axis + w0 * across
+    # per-module share of valid and glass pixels
+    s = (x - origin[0]) * axis[0] + (y - origin[1]) * axis[1]
+    w = (x - origin[0]) * across[0] + (y - origin[1]) * across[1]
+    ci = np.floor(s / (size_s + gap_s)).astype(int)
+    ri = np.floor(w / (size_w + gap_w)).astype(int)
+    inside = (ci >= 0) & (ci < n) & (ri >= 0) & (ri < m)
+    inside &= (s - ci * (size_s + gap_s) < size_s) & (w - ri * (size_w + gap_w) < size_w)
+    lab = np.where(inside, ri * n + ci, n * m)
+    tot = np.bincount(lab, minlength=n * m + 1)[:-1].astype(float)
+    val = np.bincount(lab, weights=valid, minlength=n * m + 1)[:-1]
+    gl = np.bincount(lab, weights=valid & (t >= band[0]) & (t <= band[1]), minlength=n * m + 1)[:-1]
+    expected = size_s * size_w / gsd ** 2
+    valid_frac = (val / np.maximum(expected, 1)).reshape(m, n)
+    glass = (gl / np.maximum(val, 1)).reshape(m, n)
+    status = np.full((m, n), "ok", dtype=object)
+    status[valid_frac < float(settings["min_valid_fraction"])] = "cut"
+    status[(val / np.maximum(tot, 1)).reshape(m, n) < 0.5] = "nodata"
+    status[(tot.reshape(m, n) == 0)] = "nodata"
+    contrast = abs(level - cand.ground_c) if math.isfinite(cand.ground_c) else 0.0
+    conf = (max(0.0, 1.0 - 2.0 * misfit) * float(np.median(glass))
+            * min(1.0, contrast / float(settings["contrast_full_k"])))
+    return TableFit(origin=origin, axis=axis, across=across, length_m=float(length), depth_m=float(depth),
+                    rows=m, cols=n, orientation=orient, module_s_m=float(size_s), module_w_m=float(size_w),
+                    gap_s_m=gap_s, gap_w_m=gap_w, confidence=float(np.clip(conf, 0, 1)), misfit=float(misfit),
+                    level_c=float(level), contrast_k=float(contrast),
+                    cut=(bool(cut[0]), bool(cut[1]), bool(cut[2]), bool(cut[3])),
+                    status=status, glass=glass)

@@ -1,0 +1,201 @@
+"""Layout from the image: rectangles, sub-pixel edges, lattices, layout checks, CLI.
+
+The geometry is checked against outside references: shapely's minimum rotated rectangle
+(``shapely.oriented_envelope``), the half-way point of a Gaussian-blurred step (the blur is
+symmetric, so the step's half value lies at the step: ``scipy.special.erf``), and plain
+trigonometry for the foreshortened module footprint (``length * cos(tilt)``).
+"""
+from __future__ import annotations
+
+import math
+import os
+
+import numpy as np
+import pytest
+import shapely
+from scipy.special import erf
+
+from pvscan.measure.layout_image.check import check_layout, corrected_layout
+from pvscan.measure.layout_image.lattice import TableFit, _half_crossing
+from pvscan.measure.layout_image.segment import _min_rect
+
+SEED = int(os.environ.get("PVSCAN_TEST_SEED", "20260614"))
+
+
+def test_min_rect_matches_shapely_oriented_envelope():
+    # reference: shapely.oriented_envelope (GEOS minimum-area rectangle)
+    rng = np.random.default_rng(SEED)
+    for _ in range(20):
+        ang = rng.uniform(0, math.pi)
+        a = np.array([math.cos(ang), math.sin(ang)])
+        n = np.array([-a[1], a[0]])
+        pts = rng.uniform(-1, 1, (200, 1)) * 12.0 * a + rng.uniform(-1, 1, (200, 1)) * 2.0 * n
+        centre, axis, length, depth = _min_rect(pts)
+        env = shapely.oriented_envelope(shapely.multipoints(pts))
+        area = env.area
+        assert length * depth == pytest.approx(area, rel=1e-9)
+        assert np.allclose(centre, np.array(env.centroid.coords[0]), atol=1e-6)
+        assert axis[0] >= 0  # pointing east (documented)
+
+
+def test_half_crossing_finds_a_blurred_edge_to_a_tenth_of_a_pixel():
+    # reference: a step blurred by a symmetric Gaussian PSF crosses its half value at the step
+    # (the erf profile); pixel centres at a random phase along a rotated table give the profile.
+    rng = np.random.default_rng(SEED)
+    gsd = 0.05
+    for _ in range(10):
+        edge = rng.uniform(-0.02, 0.02)
+        sigma = rng.uniform(0.4, 0.8) * gsd
+        coord = rng.uniform(-0.4, 0.4, 4000)
+        inside, outside = rng.uniform(35, 50), rng.uniform(20, 60)
+        if abs(inside - outside) < 3:
+            outside = inside + 5
+        # outside toward larger coordinates
+        t = outside + (inside - outside) * 0.5 * (1 - erf((coord - edge) / (sigma * math.sqrt(2))))
+        t = t + rng.normal(0, 0.05, t.size)  # NETD 0.05 K (common practice for microbolometers)
+        got = _half_crossing(coord, t, round(edge / gsd) * gsd, +1, gsd)
+        assert abs(got - edge) < 0.1 * gsd
+
+
+def _fit(rng, rows=2, cols=12, tilt=25.0):
+    ang = rng.uniform(-math.pi / 4, math.pi / 4)
+    axis = np.array([math.cos(ang), math.sin(ang)])
+    across = np.array([-axis[1], axis[0]])
+    return TableFit(origin=rng.uniform(0, 100, 2) + 5e5, axis=axis, across=across, length_m=0, depth_m=0,
+                    rows=rows, cols=cols, orientation="portrait", module_s_m=1.038,
+                    module_w_m=2.094 * math.cos(math.radians(tilt)), gap_s_m=0.02,
+                    gap_w_m=0.02 * math.cos(math.radians(tilt)), confidence=1.0, misfit=0.0, level_c=40.0,
+                    contrast_k=5.0, cut=(False,) * 4, status=np.full((rows, cols), "ok", dtype=object),
+                    glass=np.ones((rows, cols)))
+
+
+def test_lattice_corners_are_foreshortened_footprints():
+    # reference: a module tilted by beta is seen from above as length * cos(beta) (trigonometry)
+    rng = np.random.default_rng(SEED)
+    tilt = rng.uniform(0, 40)
+    f = _fit(rng, tilt=tilt)
+    c = f.corners()
+    assert c.shape == (2, 12, 4, 2)
+    side_w = np.hypot(*(c[:, :, 3] - c[:, :, 0]).reshape(-1, 2).T)
+    side_s = np.hypot(*(c[:, :, 1] - c[:, :, 0]).reshape(-1, 2).T)
+    assert np.allclose(side_w, 2.094 * math.cos(math.radians(tilt)), atol=1e-9)
+    assert np.allclose(side_s, 1.038, atol=1e-9)
+    # neighbours one pitch apart along the axis
+    step = c[0, 1, 0] - c[0, 0, 0]
+    assert np.hypot(*step) == pytest.approx(1.058, abs=1e-9)
+
+
+def _modules_gdf(fits, prefix="D"):
+    import geopandas as gpd
+
+    rows = []
+    for k, f in enumerate(fits, 1):
+        c = f.corners()
+        for r in range(f.rows):
+            for j in range(f.cols):
+                rows.append({"module_id": f"{prefix}{k}-R{r + 1}-C{j + 1:02d}", "table_id": f"{prefix}{k}",
+                             "table_row": r + 1, "table_col": j + 1, "status": "ok",
+                             "geometry": shapely.polygons(c[r, j])})
+    return gpd.GeoDataFrame(rows, geometry="geometry", crs="EPSG:32633")
+
+
+def test_check_finds_missing_modules_moved_tables_and_keeps_ids():
+    rng = np.random.default_rng(SEED)
+    fits = [_fit(rng) for _ in range(3)]
+    for k, f in enumerate(fits):
+        f.origin = np.array([5e5, 5.7e6 + 8.0 * k])
+        f.axis = np.array([1.0, 0.0])
+        f.across = np.array([0.0, 1.0])
+    detected = _modules_gdf(fits, "D")
+    layout = _modules_gdf(fits, "L")
+    layout["string_id"] = [f"S{i // 6}" for i in range(len(layout))]
+    # the drawing sits 0.3 m off as a whole; one table moved by 0.5 m more; two modules not drawn;
+    # one drawn module has no glass (a module removed from the plant)
+    common = np.array([0.3, -0.2])
+    layout["geometry"] = layout.geometry.translate(*(-common))
+    moved = layout["table_id"] == "L2"
+    layout.loc[moved, "geometry"] = layout.loc[moved, "geometry"].translate(-0.5, 0.0)
+    drop = rng.choice(np.flatnonzero(~moved.to_numpy()), 2, replace=False)
+    layout = layout.drop(index=drop).reset_index(drop=True)
+    gone = int(rng.integers(len(detected)))
+    detected = detected.drop(index=gone).reset_index(drop=True)
+    settings = {"check_match_m": 0.5, "check_search_m": 3.0, "check_move_m": 0.15, "check_turn_deg": 0.5}
+    chk = check_layout(layout, detected, settings)
+    counts = chk.counts()
+    assert counts["missing_from_layout"] == 2
+    assert counts["no_module_found"] == 1
+    assert counts["table_moved"] == 1
+    assert counts["table_turned"] == 0
+    assert chk.common_shift_m == pytest.approx(tuple(common), abs=1e-6)
+    t2 = chk.tables.set_index("table_id").loc["L2"]
+    assert (t2.dx_m, t2.dy_m) == pytest.approx((0.5, 0.0), abs=1e-6)
+    fixed = corrected_layout(layout, detected, chk)
+    assert len(fixed) == len(detected)
+    assert (fixed["source"] == "layout").sum() == len(layout) - 1
+    kept = fixed[fixed["source"] == "layout"]
+    assert kept["module_id"].str.startswith("L").all()
+    assert kept["string_id"].notna().all()
+
+
+def _run(args):
+    from click.testing import CliRunner
+
+    from pvscan.cli.main import cli
+
+    return CliRunner().invoke(cli, [str(a) for a in args])
+
+
+@pytest.fixture(scope="module")
+def clean_flight(tmp_path_factory):
+    """A small simulated plant without defects or distractors (seeded by PVSCAN_TEST_SEED)."""
+    from pvscan.simulate import simulate_flight
+
+    scenario = {"site": {"name": "Test plant Clearfield (invented)", "lon": 13.42, "lat": 52.51},
+                "array": {"table_rows": 2, "tables_per_row": 2, "rows": 2, "cols": 10, "row_pitch_m": 6.5,
+                          "rotation_deg": 7.0}}
+    out = tmp_path_factory.mktemp("layout") / "flight"
+    simulate_flight(scenario, out, seed=SEED)
+    return out
+
+
+def test_cli_detect_writes_modules_and_tables_with_documented_ids(clean_flight, tmp_path):
+    import geopandas as gpd
+
+    out = tmp_path / "layout.gpkg"
+    res = _run(["layout", "detect", clean_flight / "flight.toml", "--out", out])
+    assert res.exit_code == 0, res.output + res.stderr
+    assert "tables" in res.output
+    mods = gpd.read_file(out, layer="modules")
+    tabs = gpd.read_file(out, layer="tables")
+    assert len(mods) > 0 and len(tabs) > 0
+    assert mods["module_id"].is_unique
+    assert mods["module_id"].str.fullmatch(r"D\d\d-\d\d-R\d+-C\d\d").all()
+    assert set(mods["table_id"]) == set(tabs["table_id"])
+    assert (mods["table_row"] >= 1).all() and (mods["table_col"] >= 1).all()
+    assert mods["status"].isin(["ok", "cut", "nodata"]).all()
+    # a second run refuses to replace the file without --overwrite: one line, exit 1
+    again = _run(["layout", "detect", clean_flight / "flight.toml", "--out", out])
+    assert again.exit_code == 1
+    assert len(again.stderr.strip().splitlines()) == 1 and "overwrite" in again.stderr
+
+
+def test_cli_detect_refuses_a_non_geopackage_name(clean_flight, tmp_path):
+    out = tmp_path / "layout.geojson"
+    res = _run(["layout", "detect", clean_flight / "flight.toml", "--out", out])
+    assert res.exit_code == 1
+    assert "GeoPackage" in res.stderr and "Traceback" not in res.stderr
+    assert not out.exists()
+
+
+def test_cli_check_writes_findings_and_fixed_layout(clean_flight, tmp_path):
+    import geopandas as gpd
+
+    out = tmp_path / "check.gpkg"
+    res = _run(["layout", "check", clean_flight / "flight.toml", "--out", out, "--fix"])
+    assert res.exit_code == 0, res.output + res.stderr
+    assert "missing from the layout" in res.output
+    fixed = gpd.read_file(out, layer="layout")
+    assert fixed["source"].isin(["layout", "detected"]).all()
+    # matched modules carry the drawing's ids (the simulator's TB<row>-<table>-R<r>-C<cc>)
+    kept = fixed[fixed["source"] == "layout"]
+    assert kept["module_id"].str.startswith("TB").all()
