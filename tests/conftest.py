@@ -5,6 +5,7 @@ Keep them general; add new fixtures with small edits. Everything is seeded and s
 """
 from __future__ import annotations
 
+import os
 import warnings
 from pathlib import Path
 
@@ -22,11 +23,35 @@ TEST_CRS = "EPSG:32633"
 TEST_ORIGIN = (500_000.0, 4_000_000.0)
 FRAME_COLUMNS = ["fx0", "fy0", "fux", "fuy", "fvx", "fvy"]
 
+#: Seed of the test suite when PVSCAN_TEST_SEED is not set (the demo's seed).
+DEFAULT_TEST_SEED = 20260614
+
+
+def test_seed(offset: int = 0) -> int:
+    """The suite's random seed: env ``PVSCAN_TEST_SEED`` (default :data:`DEFAULT_TEST_SEED`)
+    plus ``offset`` (distinct draws within one test). Every test that draws or simulates
+    takes its seed from here, so ``PVSCAN_TEST_SEED=N pytest`` reruns the suite on other draws."""
+    raw = os.environ.get("PVSCAN_TEST_SEED", "").strip()
+    try:
+        base = int(raw) if raw else DEFAULT_TEST_SEED
+    except ValueError:
+        raise ValueError(f"PVSCAN_TEST_SEED must be an integer, got {raw!r}") from None
+    return base + int(offset)
+
+
+test_seed.__test__ = False  # a helper, not a test
+
+
+@pytest.fixture
+def seed() -> int:
+    """The suite's random seed (:func:`test_seed`)."""
+    return test_seed()
+
 
 @pytest.fixture
 def rng():
-    """A seeded generator, so every test is deterministic."""
-    return np.random.default_rng(20260614)
+    """A generator seeded from :func:`test_seed`, so every test is deterministic for a seed."""
+    return np.random.default_rng(test_seed())
 
 
 @pytest.fixture

@@ -476,6 +476,27 @@ def test_pid_near_the_negative_end_of_a_string(rng):
     assert set(got) <= set(int(i) for i in idx)
 
 
+def test_pid_string_is_one_anomaly_over_its_modules(rng):
+    # PID is a property of the string (the potential of its cells to ground, IEC TS 62804-1
+    # describes the stress; from memory): one finding per string, listing its modules from
+    # the negative end, like an open string (CONTRACT.md)
+    p = Plant(rng, cols=12)
+    idx = [int(i) for i in p.pid("T0-1-R1", 5, f0=0.5)]
+    an, mt = p.run()
+    pid = an[an.defect == "pid"]
+    assert len(pid) == 1
+    row = pid.iloc[0]
+    ids = p.modules.module_id.to_numpy()
+    assert int(row.module_index) == idx[0] and row.module_id == ids[idx[0]]
+    assert list(row.module_ids) == [ids[i] for i in row.module_indices]
+    assert set(idx[:3]) <= set(int(i) for i in row.module_indices) <= set(idx)
+    assert row.region == "modules" and row.severity == "repair"
+    # the string's delta T (median of its modules' rises over modules outside the string) is a
+    # rise: PID takes power away, so the modules run warmer (heat balance, Faiman 2008)
+    assert row.delta_t_k > 0
+    assert set(mt.defect[mt.defect == "pid"].index) == set(int(i) for i in row.module_indices)
+
+
 def test_overlapping_patterns_get_one_class(rng):
     p = Plant(rng)
     i = p.index(col=6)
@@ -513,6 +534,22 @@ def test_confidence_factor_lowers_confidence(rng):
 
 def _one(defect, dtn, tmax):
     return pd.DataFrame({"defect": [defect], "delta_t_norm_k": [dtn], "t_max_c": [tmax]})
+
+
+@pytest.mark.parametrize("loss_w, dtn, sev", [
+    (None, 0.0, "monitor"), (None, -0.85, "monitor"), (None, 1.5, "repair"),
+    (0.0, -0.85, "monitor"), (5.0, 0.1, "monitor"), (250.0, 0.1, "repair"), (0.0, 1.5, "monitor"),
+])
+def test_pid_severity_from_the_strings_loss(loss_w, dtn, sev):
+    # a PID string at about 0 K and 0 W is not sent to repair: repair takes a loss a string IV
+    # trace can confirm (repair_pid_power_loss_w = 40 W at STC, from memory: 1-2 % of a
+    # string of some 20 modules); before the loss is known, its normalised delta T
+    # (repair_pid_delta_t_norm_k = 0.3 K, about 5 % of the open-module rise eta*G/U at
+    # 1000 W/m2 and 1 m/s, Faiman 2008)
+    an = pd.DataFrame({"defect": ["pid"], "delta_t_norm_k": [dtn], "t_max_c": [50.0]})
+    if loss_w is not None:
+        an["power_loss_w"] = [loss_w]
+    assert assign_severity(an).severity.iloc[0] == sev
 
 
 @pytest.mark.parametrize("defect, dtn, tmax, sev", [

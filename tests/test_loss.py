@@ -347,3 +347,31 @@ def test_patchy_pid_uses_the_mean_rise():
     assert out["power_loss_w"].iloc[0] == pytest.approx(200.0, rel=1e-9)
     plain = loss.estimate_loss(an, SPEC, COND, {"specific_yield_kwh_per_kwp": 1000.0})
     assert plain["power_loss_w"].iloc[0] == pytest.approx(100.0, rel=1e-9)
+
+
+@pytest.mark.parametrize("scale, severity", [(1.0, "repair"), (0.02, "monitor")])
+def test_pid_string_carries_each_modules_own_loss(scale, severity):
+    """A PID string is one anomaly over its modules (CONTRACT.md). By each module's heat
+    balance (Faiman 2008) a module warmer by the share f of the open-module rise eta*G/U has
+    lost f of its power, so a string whose modules fade from the negative end, 0.6, 0.3 and
+    0.15 of the rise, loses 0.6 + 0.3 + 0.15 = 1.05 nameplates: its total is the string's, and
+    each module keeps its own share in modules.geojson (no double count). A string losing less
+    than repair_pid_power_loss_w (40 W at STC, pipelines/post_flight.toml) is monitored."""
+    from types import SimpleNamespace
+
+    g, ws, ta = COND["poa_global"], COND["wind_speed"], COND["temp_air"]
+    t = float(pvlib.temperature.faiman(g, ta, ws))
+    yard = loss.open_module_yardstick(g, ws, SPEC.efficiency, t, SPEC.gamma_pmax_pct_per_k, **HEAT)
+    f = scale * np.array([0.6, 0.3, 0.15])
+    ref = np.full(4, 40.0)
+    t_med = ref + np.append(f * yard, 0.0)
+    stats = SimpleNamespace(table=pd.DataFrame({"t_median_c": t_med, "t_mean_c": t_med}))
+    an = pd.DataFrame([_row("pid", "modules", float(np.median(f)) * yard, idx=(0, 1, 2),
+                            delta_t_norm_k=float(np.median(f)) * yard, t_max_c=50.0)])
+    out = loss.estimate_loss(an, SPEC, COND, {"specific_yield_kwh_per_kwp": 1000.0}, stats=stats,
+                             reference_c=ref)
+    assert out["power_loss_w"].iloc[0] == pytest.approx(400.0 * f.sum(), rel=1e-9)
+    shares = loss.module_losses(out, 4, pmax_w=400.0)
+    assert shares["power_loss_w"].tolist() == pytest.approx(list(400.0 * f) + [0.0], rel=1e-9)
+    assert shares["energy_loss_kwh_per_year"].sum() == pytest.approx(out["energy_loss_kwh_per_year"].iloc[0])
+    assert out["severity"].iloc[0] == severity

@@ -10,6 +10,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 import pytest
+from conftest import test_seed
 
 from pvscan.measure import seams
 
@@ -139,7 +140,7 @@ def test_pipeline_levels_a_seam_painted_into_the_ortho(tmp_path):
           "defects": {k: 0 for k in ("hot_cell", "several_hot_cells", "bypassed_substring",
                                      "several_bypassed_substrings", "open_module", "open_string", "pid",
                                      "soiling", "junction_box")}}
-    sim = simulate_flight(sc, tmp_path / "flight", seed=11)
+    sim = simulate_flight(sc, tmp_path / "flight", seed=test_seed(11))
     flight = load_flight(sim.manifest)
     tif = flight.flight.orthos[0]
     with rasterio.open(tif) as ds:

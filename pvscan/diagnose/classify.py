@@ -208,31 +208,53 @@ def classify(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module
                          delta_t_norm_k=dtn, t_max_c=float(np.nanmax(t_max[run])), confidence=cf * conf))
         defect_of[run] = "open_string"
         conf_of[run] = cf * conf
-    pid_hits = np.zeros(n, bool)
-    pid_conf = np.zeros(n)
+    # potential-induced degradation: one anomaly per string, over the affected run of it
+    # (module_id its first module, the one at the negative end), against modules outside the
+    # string; a module of the run with a pattern that takes precedence over pid keeps its own
+    # anomaly, patterns below pid are listed in the string's other_defects
+    in_pid = np.zeros(n, bool)
+    pid_rank = precedence.index("pid") if "pid" in precedence else len(precedence)
     for run in pid_runs:
-        pid_hits[run] = True
-        pid_conf[run] = confidence(quality(F.extra["pid_z"][run], float(cfg["pid_extend_z"])))
-    pid = Hits("pid", pid_hits, pid_conf, t_med.copy())
-    for i in np.flatnonzero(pid_hits):
-        pid.region[i] = "module"
-        pid.boxes[i] = [(0.0, 1.0, 0.0, 1.0)]
-    by["pid"] = pid
+        run = [i for i in run if not in_run[i]]
+        if not run:
+            continue
+        in_pid[run] = True
+        ref_o = F.extra["ref_other"][run]
+        dts = t_med[run] - ref_o
+        z_run = np.asarray(F.extra["pid_z"], dtype=float)[run]
+        zc = float(np.nansum(z_run) / np.sqrt(len(run)))
+        conf = cf * float(confidence(quality(zc, float(cfg["pid_run_z"]))))
+        lower = []
+        for i in run:
+            for d in precedence[pid_rank + 1:]:
+                if d in by and by[d].hit[i] and d not in lower:
+                    lower.append(d)
+        rows.append(dict(module_index=run[0], module_id=mod_id[run[0]], module_indices=list(run),
+                         module_ids=[mod_id[i] for i in run], defect="pid", other_defects=lower,
+                         region="modules", region_uv=[(0.0, 1.0, 0.0, 1.0)],
+                         delta_t_k=float(np.nanmedian(dts)),
+                         delta_t_norm_k=float(np.nanmedian(norm(dts, g_cond[run], w_cond[run]))),
+                         t_max_c=float(np.nanmax(t_max[run])), confidence=conf))
+        defect_of[run] = "pid"
+        conf_of[run] = conf
 
     for i in range(n):
         if in_run[i] or not F.ok[i]:
             continue
         present = [d for d in precedence if d in by and by[d].hit[i]]
+        if in_pid[i]:
+            # the string's pid anomaly covers the module unless a pattern above pid is there
+            present = present[:1] if present and precedence.index(present[0]) < pid_rank else []
         if not present:
             continue
         d = present[0]
         h = by[d]
         temp = float(h.temp_c[i])
-        ref_i = F.extra["ref_other"][i] if d == "pid" else F.ref[i]
-        dt = temp - ref_i
+        dt = temp - F.ref[i]
         conf = cf * float(h.confidence[i])
         rows.append(dict(module_index=i, module_id=mod_id[i], module_indices=[i], module_ids=[mod_id[i]],
-                         defect=d, other_defects=present[1:], region=h.region.get(i, "module"),
+                         defect=d, other_defects=present[1:] + (["pid"] if in_pid[i] else []),
+                         region=h.region.get(i, "module"),
                          region_uv=h.boxes.get(i, [(0.0, 1.0, 0.0, 1.0)]), delta_t_k=dt,
                          delta_t_norm_k=float(norm(dt, g_cond[i], w_cond[i])), t_max_c=float(t_max[i]),
                          confidence=conf))

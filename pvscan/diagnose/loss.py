@@ -58,6 +58,7 @@ import numpy as np
 import pandas as pd
 
 from pvscan.diagnose.energy import site_yield
+from pvscan.diagnose.severity import assign_severity
 from pvscan.io.settings import section
 from pvscan.physics.heat import Faiman, faiman_u
 
@@ -303,17 +304,6 @@ def substrings_touched(region_uv, bypass_diodes: int) -> int:
     return max(len(touched), 1)
 
 
-# --------------------------------------------------------------------------- energy
-
-
-
-
-
-
-
-
-
-
 # --------------------------------------------------------------------------- per anomaly
 
 
@@ -453,12 +443,14 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
     stc = np.full(n_an, np.nan)
     flight = np.full(n_an, np.nan)
     frac = np.full(n_an, np.nan)
+    shares: list[list[float] | None] = []  # each module's own STC loss where they differ [W]
     methods: list[str] = []
     for pos, (_, row) in enumerate(out.iterrows()):
         idx = _indices(row)
         m = max(len(idx), 1)
         defect = row.get("defect")
         method = DEFECT_METHOD.get(defect) or _REGION_METHOD.get(row.get("region"), "thermal_deficit")
+        shares_row: list[float] | None = None
         g, ta, ws = _conditions_at(conditions, idx[0] if idx else -1)
         t_mod = float(heat.temperature(g, ta, ws)) if np.isfinite(ta) else np.nan
         tf = float(_temp_factor(gamma, t_mod)) if np.isfinite(t_mod) else 1.0
@@ -477,16 +469,22 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
         elif method == "thermal_deficit":
             ys = open_module_yardstick(g, ws, eta, t_mod if np.isfinite(t_mod) else None, gamma, u0=u0, u1=u1) \
                 if np.isfinite(g) and g > 0 and np.isfinite(ws) else np.nan
+            fs = None
             if t_mean is not None and idx and np.isfinite(ys) and np.isfinite(dt):
                 # heat balance per module: the heat added is U x area x the *mean* rise over the
                 # module; a patchy pattern's median (delta_t_k, taken against the anomaly's own
-                # reference) under-reads it by the module's mean - median
-                rises = dt + (t_mean[idx] - t_median[idx])
+                # reference) under-reads it by the module's mean - median. Over a run of modules
+                # (a PID string) each module's own rise: its median's excess over the run's
+                # median (delta_t_k) plus its own mean - median
+                own = t_median[idx] - np.nanmedian(t_median[idx]) if m > 1 else np.zeros(len(idx))
+                rises = dt + np.nan_to_num(own) + (t_mean[idx] - t_median[idx])
                 fs = np.asarray(thermal_deficit_fraction(rises, ys), dtype=float)
                 fs = np.where(np.isfinite(fs), fs, float(thermal_deficit_fraction(dt, ys)))
                 f = float(np.mean(fs))
             else:
                 f = float(thermal_deficit_fraction(dt, ys))
+            if fs is not None and m > 1 and np.isfinite(fs).all():
+                shares_row = [float(v) * pmax for v in fs]
             frac[pos] = f
             stc[pos] = f * pmax * m
             flight[pos] = f * p_op * m
@@ -507,11 +505,13 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
             stc[pos] = f * pmax * m
             flight[pos] = f * p_op * m
         methods.append(method)
+        shares.append(shares_row if method == "thermal_deficit" and shares_row is not None else None)
 
     out["power_loss_w"] = stc
     out["power_loss_w_flight"] = flight
     out["loss_fraction"] = frac
     out["loss_method"] = pd.Series(methods, index=out.index, dtype=object)
+    out["module_power_loss_w"] = pd.Series(shares, index=out.index, dtype=object)
 
     sy, source = site_yield(site, modules, layout, settings, specific_yield_kwh_per_kwp, lonlat)
     out["energy_loss_kwh_per_year"] = stc / 1000.0 * sy if sy is not None else np.nan
@@ -519,6 +519,9 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
     if tariff is not None:
         out["yearly_cost"] = out["energy_loss_kwh_per_year"] * float(tariff)
         out["currency"] = _get(site, "currency")
+    if {"severity", "defect", "delta_t_norm_k", "t_max_c"} <= set(out.columns):
+        # severity rules that depend on the loss (a PID string's total) take it into account
+        out = assign_severity(out, section(settings, "severity"))
     out.attrs["specific_yield_kwh_per_kwp"] = sy
     out.attrs["specific_yield_source"] = source
     log.debug("loss of %d anomalies; specific yield %s kWh/kWp/yr (%s)", n_an, sy, source)
@@ -550,13 +553,13 @@ def _mean_box_rise(cell_p95: np.ndarray, reference_c: np.ndarray, i: int, region
     return float(np.average(rises, weights=weights))
 
 
-
-
 def module_losses(anomalies: pd.DataFrame, n_modules: int, pmax_w: float | None = None) -> pd.DataFrame:
     """Each module's own share of the anomalies' losses.
 
     An anomaly over ``m`` modules gives each of them ``1/m`` of its losses (exact for an
-    open string, whose modules each lose their nameplate). A module's shares are summed and,
+    open string, whose modules each lose their nameplate), or, when it lists each module's
+    own STC loss (``module_power_loss_w``, a PID string whose modules lose more near the
+    negative end), a share in proportion to it. A module's shares are summed and,
     given ``pmax_w``, capped at the nameplate (several anomalies on one module cannot lose
     more than the module makes), so the plant total never double counts.
 
@@ -572,11 +575,17 @@ def module_losses(anomalies: pd.DataFrame, n_modules: int, pmax_w: float | None 
         idx = [i for i in _indices(row) if 0 <= i < n_modules]
         if not idx:
             continue
+        weights = np.full(len(idx), 1.0 / len(idx))
+        own = row.get("module_power_loss_w") if "module_power_loss_w" in anomalies.columns else None
+        if isinstance(own, (list, tuple, np.ndarray)) and len(own) == len(_indices(row)) == len(idx):
+            own_w = np.clip(np.asarray(own, dtype=float), 0.0, None)
+            if np.isfinite(own_w).all() and own_w.sum() > 0:
+                weights = own_w / own_w.sum()
         for c, col in enumerate(cols):
             v = row.get(col) if col in anomalies.columns else None
             v = float(v) if v is not None and not pd.isna(v) else 0.0
-            for i in idx:
-                acc[i, c] += v / len(idx)
+            for i, wgt in zip(idx, weights):
+                acc[i, c] += v * wgt
     if pmax_w is not None:
         over = acc[:, 0] > pmax_w
         scale = np.where(over, pmax_w / np.where(acc[:, 0] > 0, acc[:, 0], 1.0), 1.0)

@@ -30,8 +30,12 @@ def assign_severity(anomalies: pd.DataFrame, settings: Mapping[str, Any] | None 
       junction box, or a fire: ``t_max_c >= safety_t_max_c`` for any pattern; a spot
       pattern with ``delta_t_norm_k >= safety_delta_t_norm_k``; a junction box with
       ``delta_t_norm_k >= safety_junction_box_delta_t_norm_k``;
-    * ``monitor``: patterns in ``monitor_defects`` (soiling: cleaning, not repair) and hot
-      cells below ``repair_hot_cell_delta_t_norm_k``;
+    * ``monitor``: patterns in ``monitor_defects`` (soiling: cleaning, not repair), hot
+      cells below ``repair_hot_cell_delta_t_norm_k``, and PID strings whose total STC power
+      loss (``power_loss_w``, once :func:`pvscan.diagnose.loss.estimate_loss` has set it) is
+      below ``repair_pid_power_loss_w`` or, before the loss is known, whose median
+      ``delta_t_norm_k`` is below ``repair_pid_delta_t_norm_k`` (a string at about 0 K and
+      0 W is not sent to repair);
     * ``repair``: everything else (lost output: open strings and modules, bypassed
       substrings, PID, hot cells, junction boxes).
 
@@ -42,7 +46,8 @@ def assign_severity(anomalies: pd.DataFrame, settings: Mapping[str, Any] | None 
     Parameters
     ----------
     anomalies : DataFrame
-        With ``defect``, ``delta_t_norm_k`` [K], ``t_max_c`` [degC].
+        With ``defect``, ``delta_t_norm_k`` [K], ``t_max_c`` [degC] and, optionally,
+        ``power_loss_w`` [W] (STC).
     settings : Pipeline or mapping, optional
         The ``[severity]`` section.
 
@@ -65,7 +70,15 @@ def assign_severity(anomalies: pd.DataFrame, settings: Mapping[str, Any] | None 
     with np.errstate(invalid="ignore"):
         safety = (tmax >= float(cfg["safety_t_max_c"])) | (spot & (dtn >= float(cfg["safety_delta_t_norm_k"]))) \
             | ((d == "junction_box") & (dtn >= float(cfg["safety_junction_box_delta_t_norm_k"])))
-        monitor = np.isin(d, list(cfg["monitor_defects"])) | (hot & (dtn < float(cfg["repair_hot_cell_delta_t_norm_k"])))
+        if "power_loss_w" in out.columns:
+            loss = pd.to_numeric(out["power_loss_w"], errors="coerce").to_numpy(dtype=float)
+        else:
+            loss = np.full(len(out), np.nan)
+        # a PID string: by its loss when known, else by its normalised delta T (NaN: monitor)
+        pid_repair = np.where(np.isfinite(loss), loss >= float(cfg["repair_pid_power_loss_w"]),
+                              dtn >= float(cfg["repair_pid_delta_t_norm_k"]))
+        monitor = np.isin(d, list(cfg["monitor_defects"])) | (hot & (dtn < float(cfg["repair_hot_cell_delta_t_norm_k"]))) \
+            | ((d == "pid") & ~pid_repair)
     sev = np.where(safety, "safety", np.where(monitor, "monitor", "repair"))
     out["severity"] = sev.astype(object)
     out["iec_class"] = np.where(safety, str(cfg["iec_class_safety"]), str(cfg["iec_class_other"])).astype(object)
