@@ -600,12 +600,19 @@ def test_seam_along_a_row_is_not_an_open_string(rng, poa, wind):
 def test_pid_ring_contrast_finds_weak_modules(rng):
     # weak PID (first module loses 30 %): module excess ~1 K, within the module spread,
     # but the edge ring of cells stands out of the interior
-    p = Plant(rng, module_spread=0.6)
-    idx = p.pid("T1-1-R2", 4, f0=0.3)
-    an, _ = p.run()
-    got = found(an)
-    pid = {i for i, d in got.items() if d == "pid"}
-    assert {int(i) for i in idx[:2]} <= pid <= {int(i) for i in idx}
+    # but the edge ring of cells stands out of the interior. With a module spread as large as
+    # the excess, the string's warmth over other strings is a draw: a rate over 20 random
+    # tables, the string found from its negative end and nothing past it on at least 15
+    # (measured 27 of 30 with the pipeline's settings; binomial, n = 20, p = 0.9:
+    # P(X <= 14) = 1.1 %)
+    right = 0
+    for _ in range(20):
+        p = Plant(rng, module_spread=0.6)
+        idx = p.pid("T1-1-R2", 4, f0=0.3)
+        an, _ = p.run()
+        pid = {i for i, d in found(an).items() if d == "pid"}
+        right += {int(i) for i in idx[:2]} <= pid <= {int(i) for i in idx}
+    assert right >= 15
 
 
 def test_one_warm_edged_module_at_a_string_end_is_not_pid(rng):
@@ -628,20 +635,32 @@ def test_one_strongly_edged_module_does_not_carry_a_pid_string(rng):
     # a warm-edged module at the negative end and, three modules on, one whose frame edge is
     # very warm (a seam edge along it, a hot strip): the modules between show nothing, so the
     # string is not PID (PID fades along the string, common practice); one module's contrast
-    # counts for at most pid_z_cap
-    p = Plant(rng, cols=12)
-    m = p.modules
-    idx = np.flatnonzero(m.string_id == "T0-1-R1")
-    idx = idx[np.argsort(m.string_index.to_numpy()[idx])]
-    A, C = p.spec.n_along, p.spec.n_across
-    ii, jj = np.indices((A, C))
-    edge = (ii == 0) | (ii == A - 1) | (jj == 0) | (jj == C - 1)
-    p.cm[idx[0]] += np.where(edge, 1.2, 0.0)
-    p.cm[idx[3]] += np.where(edge, 6.0, 0.0)
-    an, _ = p.run()
-    assert "pid" not in set(an.defect)
-    an0, _ = p.run(settings=_with(pid_z_cap=1000.0))        # uncapped: the one module decides
-    assert "pid" in set(an0.defect)
+    # counts for at most pid_z_cap, and the modules after the first must show the pattern
+    # without their strongest one too. Noise (z ~ N(0, 1) per module) still passes that bar
+    # now and then (about 5 % of tables, measured over 30), so it is a rate over 20 random
+    # tables: at most 3 false PID strings (binomial, n = 20, p = 0.05: P(X >= 4) = 1.6 %);
+    # the same strings with the modules between showing the ring, and running warmer, are
+    # found on at least 17 of 20 (P(X <= 16) < 1.6 % at a 95 % detection rate)
+    false_pid = found_pid = 0
+    for _ in range(20):
+        p = Plant(rng, cols=12)
+        m = p.modules
+        idx = np.flatnonzero(m.string_id == "T0-1-R1")
+        idx = idx[np.argsort(m.string_index.to_numpy()[idx])]
+        A, C = p.spec.n_along, p.spec.n_across
+        ii, jj = np.indices((A, C))
+        edge = (ii == 0) | (ii == A - 1) | (jj == 0) | (jj == C - 1)
+        p.cm[idx[0]] += np.where(edge, 1.2, 0.0)
+        p.cm[idx[3]] += np.where(edge, 6.0, 0.0)
+        an, _ = p.run()
+        false_pid += "pid" in set(an.defect)
+        p.cm[idx[1]] += np.where(edge, 1.0, 0.0) + 0.4
+        p.cm[idx[2]] += np.where(edge, 0.8, 0.0) + 0.4
+        p.cm[idx[0]] += 0.4
+        an0, _ = p.run()
+        found_pid += "pid" in set(an0.defect)
+    assert false_pid <= 3
+    assert found_pid >= 17
 
 
 def test_pid_string_with_one_weak_module_after_the_first(rng):
