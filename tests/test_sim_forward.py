@@ -78,7 +78,7 @@ def test_apparent_temperature_against_quadrature():
         k0 = constants.zero_Celsius
         ls = tau * (eps * _quad_band(t + k0) + (1 - eps) * _quad_band(sky + k0)) + (1 - tau) * _quad_band(air + k0)
         la = (ls - (1 - eps_x) * _quad_band(t_rx + k0)) / eps_x
-        ref = optimize.brentq(lambda x: _quad_band(x) - la, 150, 500, xtol=1e-7) - k0
+        ref = optimize.brentq(lambda x, la=la: _quad_band(x) - la, 150, 500, xtol=1e-7) - k0
         got = radiance.apparent_temperature(t, emissivity=eps, temp_sky_c=sky, transmission=tau, temp_air_c=air,
                                             export_emissivity=eps_x, export_reflected_c=t_rx)
         assert float(got) == pytest.approx(ref, abs=5e-3)

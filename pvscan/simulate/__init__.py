@@ -40,7 +40,8 @@ from pvscan.simulate.scenario import DEFAULTS, DEFECT_KINDS, load_scenario, scen
 from pvscan.simulate.electrical import faiman
 from pvscan.simulate.scene import Scene
 
-__all__ = ["simulate_flight", "simulate_random", "with_flight", "load_scenario", "scenario_from_dict", "SimulationResult", "Scene",
+__all__ = ["simulate_flight", "simulate_random", "with_flight", "load_scenario", "scenario_from_dict",
+           "SimulationResult", "Scene",
            "build_scene", "faiman", "DEFAULTS", "DEFECT_KINDS"]
 
 log = logging.getLogger(__name__)

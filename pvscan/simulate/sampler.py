@@ -38,7 +38,7 @@ Ranges (uniform unless said otherwise; "common practice" unless a source is name
 from __future__ import annotations
 
 import math
-from datetime import datetime, timedelta, timezone
+from datetime import datetime, timedelta, timezone, UTC
 
 import numpy as np
 
@@ -78,7 +78,7 @@ def _when(rng, lat, lon, family, kind) -> datetime:
             hour = float(rng.uniform(9.5, 15.5)) - tz.utcoffset(None).total_seconds() / 3600.0
         else:
             hour = noon_utc + float(rng.uniform(-4.5, 4.5))
-        when = (day.astimezone(timezone.utc) .replace(hour=0, minute=0) + timedelta(hours=hour)).astimezone(tz)
+        when = (day.astimezone(UTC) .replace(hour=0, minute=0) + timedelta(hours=hour)).astimezone(tz)
         elev, _ = _sun(lat, lon, when)
         low = family == "raised_low_sun"
         if (12.0 <= elev <= 25.0) if low else elev >= 25.0:
@@ -176,7 +176,8 @@ def draw_scenario(seed: int, family: str = "any") -> dict:
                                                                    else u(15.0, 30.0))), 2),
               "shade_rise_k": round(float(u(-3.0, 4.0)), 2), "texture_k": round(float(u(0.5, 2.0)), 2),
               "field_k": round(float(u(0.0, 3.0)), 2)}
-    conditions = {"poa_irradiance_w_m2": round(float(u(600.0, 750.0) if family == "raised_low_sun" else u(600.0, 1000.0)), 1),
+    poa_w_m2 = u(600.0, 750.0) if family == "raised_low_sun" else u(600.0, 1000.0)
+    conditions = {"poa_irradiance_w_m2": round(float(poa_w_m2), 1),
                   "ambient_c": round(float(u(5.0, 35.0)), 1), "wind_m_s": round(float(u(0.5, 6.0)), 2),
                   "relative_humidity_pct": round(float(u(20.0, 80.0)), 1), "varying": bool(u() < 1 / 3)}
     camera = {"gsd_m": round(float(u(0.04, 0.07)), 3), "psf_sigma_px": round(float(u(0.4, 1.0)), 2),

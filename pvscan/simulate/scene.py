@@ -180,7 +180,8 @@ class Scene:
         self.texture = _SmoothNoise(self.extent, 3.0, np.random.default_rng([self.seed, 4]))
         self.wobble = _SmoothNoise(self.extent, 8.0, np.random.default_rng([self.seed, 5]))
         gcfg = sc["ground"]
-        self.ground_field = (_SmoothNoise(self.extent, float(gcfg["field_scale_m"]), np.random.default_rng([self.seed, 10]))
+        self.ground_field = (_SmoothNoise(self.extent, float(gcfg["field_scale_m"]),
+                                          np.random.default_rng([self.seed, 10]))
                              if float(gcfg["field_k"]) > 0 else None)
         self._sun_shadow()
 
