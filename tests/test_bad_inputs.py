@@ -23,6 +23,7 @@ from __future__ import annotations
 import ctypes
 import filecmp
 import json
+import math
 import os
 import resource
 import shutil
@@ -295,6 +296,69 @@ def evaluate_other_truth_forced(ctx: Ctx) -> None:
 
 
 # ----------------------------------------------------------------------------- checks of usable results
+# the ortho's values against the flight's conditions, and its coverage of the layout
+def _values(ctx: Ctx, fn: Callable[[np.ndarray], np.ndarray]) -> None:
+    """Rewrite the ortho's temperatures (nodata pixels stay nodata)."""
+    def edit(a, p):
+        return np.where(a == p["nodata"], a, fn(a)).astype(a.dtype), p
+
+    _rewrite_tif(ctx.flight / "thermal.tif", edit)
+
+
+def ortho_kelvin_said_celsius(ctx: Ctx) -> None:
+    _values(ctx, lambda a: a + 273.15)  # kelvin = degC + 273.15 (SI Brochure, 9th ed., 2019)
+
+
+def ortho_celsius_said_kelvin(ctx: Ctx) -> None:
+    _edit_manifest(ctx, lambda d: d["ortho"].update(units="kelvin"))
+
+
+def ortho_fahrenheit_said_celsius(ctx: Ctx) -> None:
+    _values(ctx, lambda a: a * 1.8 + 32.0)  # degF = 1.8 degC + 32 (NIST SP 811, 2008)
+
+
+def ortho_raw_counts_scale_1(ctx: Ctx) -> None:
+    """Raw uint16 counts of 0.01 K (common practice for radiometric exports), read with scale 1."""
+    def edit(a, p):
+        counts = np.clip(np.round((a + 273.15) * 100.0), 1, 65535).astype("uint16")
+        counts[a == p["nodata"]] = 0
+        return counts, {**p, "nodata": 0}
+
+    _rewrite_tif(ctx.flight / "thermal.tif", edit)
+    _edit_manifest(ctx, lambda d: d["ortho"].update(scale=1.0, offset=0.0, nodata=0))
+
+
+def ortho_all_nodata(ctx: Ctx) -> None:
+    _rewrite_tif(ctx.flight / "thermal.tif", lambda a, p: (np.full_like(a, p["nodata"]), p))
+
+
+def layout_10_km_away(ctx: Ctx) -> None:
+    doc = _layout(ctx)
+    lat = doc["features"][0]["geometry"]["coordinates"][0][0][1]
+    dlon = 10_000.0 / (111_320.0 * math.cos(math.radians(lat)))  # metres per degree of longitude, from memory
+    for f in doc["features"]:
+        f["geometry"]["coordinates"] = [[[x + dlon, y] for x, y in ring] for ring in f["geometry"]["coordinates"]]
+    _write_layout(ctx, doc)
+
+
+def layout_half_outside(ctx: Ctx) -> None:
+    """The ortho cut to its eastern half: the western modules were not imaged."""
+    def edit(a, p):
+        w = a.shape[2] // 2
+        shifted = p["transform"] * Affine.translation(w, 0)
+        return a[:, :, w:].copy(), {**p, "width": a.shape[2] - w, "transform": shifted}
+
+    _rewrite_tif(ctx.flight / "thermal.tif", edit)
+
+
+def coverage_failed(ctx: Ctx, out: Path) -> None:
+    v = json.loads((out / "summary.json").read_text())["validity"]
+    assert v["ok"] is False and "coverage" in v["failed"], v
+    mods = json.loads((out / "modules.geojson").read_text())["features"]
+    no_data = sum(1 for m in mods if m["properties"]["t_median_c"] is None)
+    assert 0.25 * len(mods) <= no_data <= 0.75 * len(mods)  # about half the field was cut away
+
+
 def _anomalies(result: Path) -> list[tuple[str, str]]:
     doc = json.loads((result / "anomalies.geojson").read_text())
     return sorted((f["properties"]["module_id"], f["properties"]["defect"]) for f in doc["features"])
@@ -320,6 +384,15 @@ CASES = [
     Case("ortho_no_crs", ortho_no_crs, 1, ("{flight}/thermal.tif", "no CRS")),
     Case("ortho_geographic_crs", ortho_geographic, 1, ("{flight}/thermal.tif", "EPSG:4326", "not projected")),
     Case("ortho_missing", manifest_missing_ortho, 1, ("flight.orthos[0]", "file not found")),
+    # the ortho's values and coverage
+    Case("ortho_kelvin_said_celsius", ortho_kelvin_said_celsius, 1,
+         ("thermal.tif", "look like kelvin", 'units = "kelvin"')),
+    Case("ortho_celsius_said_kelvin", ortho_celsius_said_kelvin, 1, ("thermal.tif", "look like degrees Celsius")),
+    Case("ortho_fahrenheit_said_celsius", ortho_fahrenheit_said_celsius, 1, ("thermal.tif", "Fahrenheit")),
+    Case("ortho_raw_counts_scale_1", ortho_raw_counts_scale_1, 1, ("thermal.tif", "raw sensor counts", "scale")),
+    Case("ortho_all_nodata", ortho_all_nodata, 1, ("no usable pixel",)),
+    Case("layout_10_km_from_the_ortho", layout_10_km_away, 1, ("no module of the layout lies on the ortho",)),
+    Case("layout_half_outside_the_ortho", layout_half_outside, 0, (), check=coverage_failed),
     # the layout
     Case("layout_point_feature", layout_point_feature, 1, ("{flight}/layout.geojson", "Point is not a polygon")),
     Case("layout_zero_area_feature", layout_zero_area_feature, 1, ("{flight}/layout.geojson", "zero area")),
