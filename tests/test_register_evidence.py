@@ -120,6 +120,35 @@ def test_turned_and_scaled_layout_is_put_back(fixed_flight, tmp_path, rot_deg, s
     assert ev["proposals"] and ev["used"] == "proposal"
 
 
+def _pitch_along_rows_m(flight_dir) -> tuple[float, float]:
+    """Median vector from a module to the next one along its table row, from the truth [m]."""
+    t = gpd.read_file(flight_dir / "truth.geojson")
+    t = t.to_crs(t.estimate_utm_crs())
+    c = t.geometry.centroid
+    t = t.assign(x=c.x, y=c.y).sort_values(["table_id", "table_row", "table_col"])
+    same = (t["table_id"].shift(-1) == t["table_id"]) & (t["table_row"].shift(-1) == t["table_row"])
+    dx = (t["x"].shift(-1) - t["x"])[same]
+    dy = (t["y"].shift(-1) - t["y"])[same]
+    return float(np.median(dx)), float(np.median(dy))
+
+
+@pytest.mark.parametrize("pitches", [1.0, -1.0])
+def test_layout_one_module_pitch_off_along_the_rows_is_put_back(fixed_flight, tmp_path, pitches):
+    """A layout one module pitch off along its rows fits every module but those at the table
+    ends: the ends (ground beyond them, glass left uncovered) decide, and the fit puts every
+    module back (a placement one pitch off would leave every module ~1 m from its own)."""
+    import shutil
+
+    d = tmp_path / "flight"
+    shutil.copytree(fixed_flight, d)
+    px, py = _pitch_along_rows_m(d)
+    _transform_layout(d, 0.0, 1.0, pitches * px + 0.05, pitches * py - 0.04)
+    reg, mods = _register(d)
+    assert reg.status == "ok" and reg.applied, reg.message
+    # the measured footprint keeps 6-8 cm from the module's edge ([zonal] edge_margin_u/v)
+    assert _truth_residual_m(d, reg, mods) < 0.06, reg.message
+
+
 def test_shadowed_tracker_over_hot_ground_keeps_a_right_layout(tmp_path):
     """Flat tracker rows casting shadows on hot ground, layout right: no shift is invented
     (today's correlation took the shadow for the row and moved the layout)."""

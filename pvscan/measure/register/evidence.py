@@ -331,8 +331,10 @@ def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float,
         contrast[nb < min_pixels] = np.nan
         sd = sd / np.maximum(contrast, 0.05)
         if off_glass_k is not None:
+            # absolute means: each window was centred on its own median, which is ground for a
+            # module at a table end and glass inside a table
             with np.errstate(invalid="ignore", divide="ignore"):
-                m_in = s1 / cnt
+                m_in = s1 / cnt + sample.ref
             ok_m = np.isfinite(m_in)
             if ok_m.any():
                 off = ok_m & (np.abs(m_in - np.median(m_in[ok_m])) > off_glass_k)

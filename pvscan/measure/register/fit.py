@@ -34,8 +34,6 @@ from pvscan.measure.register._records import Registration
 from pvscan.measure.register.estimate import estimate_shift
 from pvscan.measure.register.evidence import (
     Placement,
-    evidence,
-    module_spread,
     placement_quality,
     refine_placement,
     sample_modules,
@@ -94,10 +92,10 @@ def apply_placement(modules, placement: Placement | None):
     return out
 
 
-def _sample_at(orthos, modules, placement: Placement | None, cfg: Mapping):
+def _sample_at(orthos, modules, placement: Placement | None, cfg: Mapping, reduce: int = 1):
     moved = apply_placement(modules, placement) if placement is not None else modules
     return sample_modules(orthos, moved, n=int(cfg["evidence_modules"]), margin_m=float(cfg["evidence_margin_m"]),
-                          reduce=1, seed=0)
+                          reduce=reduce, seed=0)
 
 
 def _judge(sample, placement: Placement, cfg: Mapping, sun, expected_c=None) -> dict:
@@ -172,25 +170,23 @@ def register_layout(orthos: Any, modules, settings: Mapping | None = None, *, su
     lim = float(cfg["evidence_max_ratio"])
     gate = float(cfg["evidence_gate"])
     radius = float(cfg["evidence_local_radius_m"])
+    far = float(cfg["evidence_far_gate"])
     chosen, q_c = None, None
-    for cand in proposals:
-        s_c = _sample_at(orthos, modules, cand, cfg)
-        # the sample was read around the proposal: it is the identity of that sample
-        refined = Placement(cx=centre[0], cy=centre[1])
+    for cand in _distinct(proposals, bounds):
         if refine:
-            for inset in cfg["evidence_insets"]:
-                refined, _ = refine_placement(s_c, refined, {**cfg, "evidence_inset": float(inset)},
-                                              rotate=bool(cfg["fit_rotation"]), scale=bool(cfg["fit_scale"]))
-            refined = _resolve_pitch(s_c, refined, _pitches(modules), cfg)
-        q = _judge(s_c, refined, cfg, sun, expected_apparent_c)
-        pl = _compose(cand, refined)
+            pl, s_c, inner = _fit_proposal(orthos, modules, cand, cfg)
+        else:
+            s_c, inner = _sample_at(orthos, modules, cand, cfg), ident
+            pl = cand
+        q = _judge(s_c, inner, cfg, sun, expected_apparent_c)
         move = pl.displacement_max(bounds)
         reg.evidence["proposals"].append({**q, **pl.to_dict(), "largest_move_m": round(move, 4)})
         usable = q["ok"] and (forced_shift is not None or (
             q["evidence"] < (1.0 - gate) * q_id["evidence"]
-            # a layout that already sits on the modules is refined only within a small radius:
-            # a larger move of a periodic field is more likely an alias than a correction
-            and (not q_id["ok"] or move <= radius)))
+            # a layout that already sits on the modules is refined within a small radius; a
+            # larger move of a periodic field (one module pitch: every footprint on the next
+            # module) must cut the evidence far more, as the table ends do when the layout is off
+            and (not q_id["ok"] or move <= radius or q["evidence"] <= far * q_id["evidence"])))
         if usable and move >= float(cfg["min_shift_m"]) and (q_c is None or q["evidence"] < q_c["evidence"]):
             chosen, q_c = pl, q
     if forced_shift is not None:
@@ -269,24 +265,79 @@ def _pitches(modules) -> list[np.ndarray]:
     return out
 
 
-def _resolve_pitch(sample, placement: Placement, pitches, cfg: Mapping) -> Placement:
-    """Rows of modules are periodic: the placement one module pitch along or across a row
-    fits almost as well; only table ends and array edges tell. Each neighbour placement
-    (one pitch either way) is refined by translation and the one with the least evidence
-    kept."""
-    fine = {**cfg, "evidence_inset": float(cfg["evidence_insets"][-1])}
-    kw = {"inset_u": fine["evidence_inset"], "inset_v": fine["evidence_inset"], "band_m": float(cfg["evidence_band_m"]),
-          "off_glass_k": float(cfg["evidence_off_glass_k"])}
-    best = placement
-    fb = evidence(module_spread(sample, placement, **kw))
-    for v in pitches:
+def _reduce_for(orthos, cfg: Mapping) -> int:
+    """Integer pixel reduction giving about ``evidence_coarse_gsd_m`` (at least 1)."""
+    gsd = abs(float(next(iter(orthos.tiles)).transform.a))
+    return max(1, int(round(float(cfg["evidence_coarse_gsd_m"]) / gsd)))
+
+
+def _fit_at(orthos, modules, start: Placement, cfg: Mapping, *, insets, rotate: bool, scale: bool,
+            reduce: int, step_m: float | None = None) -> tuple[Placement, Any, Placement, float]:
+    """Refine ``start`` on a sample read around it; read again around the result while the
+    refinement moved the footprints more than half the margin the sample holds.
+
+    Returns the placement, the sample of its last read, the placement relative to that
+    sample and its evidence at the last inset [-]."""
+    centre = (start.cx, start.cy)
+    bounds = modules.total_bounds
+    pl, sample, inner, e = start, None, Placement(cx=centre[0], cy=centre[1]), float("inf")
+    half = 0.5 * float(cfg["evidence_margin_m"])
+    for _ in range(3):
+        sample = _sample_at(orthos, modules, pl, cfg, reduce=reduce)
+        inner = Placement(cx=centre[0], cy=centre[1])
+        for inset in insets:
+            sub = {**cfg, "evidence_inset": float(inset)}
+            if step_m is not None:
+                sub["evidence_step_m"] = step_m
+            inner, e = refine_placement(sample, inner, sub, rotate=rotate, scale=scale)
+        if inner.displacement_max(bounds) <= half:
+            break
+        pl = _compose(pl, inner)
+    return _compose(pl, inner), sample, inner, e
+
+
+def _fit_proposal(orthos, modules, cand: Placement, cfg: Mapping) -> tuple[Placement, Any, Placement]:
+    """Coarse-to-fine fit of one proposal: the coarse insets on a decimated sample, the
+    one-pitch alternatives along and across the rows compared there, then the last inset at
+    full resolution. Returns the placement, its full-resolution sample and the placement
+    relative to that sample."""
+    insets = [float(v) for v in cfg["evidence_insets"]]
+    red = _reduce_for(orthos, cfg)
+    rot, sca = bool(cfg["fit_rotation"]), bool(cfg["fit_scale"])
+    pl, _, _, e = _fit_at(orthos, modules, cand, cfg, insets=insets[:-1] or insets, rotate=rot, scale=sca,
+                          reduce=red)
+    # rows of modules are periodic: one module pitch along or across a row fits almost as
+    # well; only table ends and array edges tell, each alternative is read where it puts the
+    # footprints and refined by translation
+    step = float(cfg["evidence_step_m"]) / 2.0
+    last = [insets[-2] if len(insets) > 1 else insets[-1]]
+    _, _, _, e = _fit_at(orthos, modules, pl, cfg, insets=last, rotate=False, scale=False, reduce=red, step_m=step)
+    for v in _pitches(modules):
         for sgn in (1.0, -1.0):
-            p = placement.moved(tx=placement.tx + sgn * v[0], ty=placement.ty + sgn * v[1])
-            p, fp = refine_placement(sample, p, {**fine, "evidence_step_m": float(cfg["evidence_step_m"]) / 2.0},
-                                     rotate=False, scale=False)
-            if math.isfinite(fp) and fp < fb:
-                best, fb = p, fp
-    return best
+            alt = pl.moved(tx=pl.tx + sgn * float(v[0]), ty=pl.ty + sgn * float(v[1]))
+            pa, _, _, ea = _fit_at(orthos, modules, alt, cfg, insets=last, rotate=False, scale=False, reduce=red,
+                                   step_m=step)
+            if math.isfinite(ea) and ea < e:
+                pl, e = pa, ea
+    pl, sample, inner, _ = _fit_at(orthos, modules, pl, cfg, insets=insets[-1:], rotate=rot, scale=sca, reduce=1,
+                                   step_m=step)
+    return pl, sample, inner
+
+
+def _distinct(proposals: list[Placement], bounds, tol_m: float = 0.02) -> list[Placement]:
+    """Proposals less any that moves no footprint more than ``tol_m`` from an earlier one."""
+    out: list[Placement] = []
+    for p in proposals:
+        if all(_compose(p, _inverse(q)).displacement_max(bounds) > tol_m for q in out):
+            out.append(p)
+    return out
+
+
+def _inverse(p: Placement) -> Placement:
+    """The placement undoing ``p`` (same centre)."""
+    m = np.linalg.inv(p.matrix)
+    t = -m @ np.array([p.tx, p.ty])
+    return Placement(float(t[0]), float(t[1]), -p.theta_deg, 1.0 / p.scale, p.cx, p.cy)
 
 
 def _compose(outer: Placement, inner: Placement) -> Placement:
