@@ -337,7 +337,7 @@ def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float,
                 m_in = s1 / cnt + sample.ref
             ok_m = np.isfinite(m_in)
             if ok_m.any():
-                off = ok_m & (np.abs(m_in - np.median(m_in[ok_m])) > off_glass_k)
+                off = ok_m & (np.abs(m_in - _glass_mode(m_in[ok_m], off_glass_k)) > off_glass_k)
                 sd[off] = 1.0
     if with_mean:
         with np.errstate(invalid="ignore", divide="ignore"):
@@ -345,6 +345,21 @@ def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float,
         mean[cnt < min_pixels] = np.nan
         return sd, mean
     return sd
+
+
+def _glass_mode(means: np.ndarray, half_width_k: float) -> float:
+    """Centre of the window of +-``half_width_k`` holding the most footprint means [degC].
+
+    The glass of most footprints is the reference: with a placement one module pitch across
+    two-row tables half of the footprints read ground, and their median would lie between
+    ground and glass; the densest window picks one population (ties: the median of it)."""
+    m = np.sort(np.asarray(means, float))
+    if len(m) < 3:
+        return float(np.median(m))
+    hi = np.searchsorted(m, m + 2.0 * half_width_k, side="right")
+    count = hi - np.arange(len(m))
+    i = int(np.argmax(count))
+    return float(np.median(m[i:hi[i]]))
 
 
 def evidence(spread: np.ndarray) -> float:
