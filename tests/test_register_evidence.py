@@ -99,6 +99,38 @@ def test_layout_right_is_not_moved(fixed_flight):
     move = reg.placement.displacement_max(mods.total_bounds) if reg.applied else 0.0
     assert move <= NO_SHIFT_TOL_M, reg.message
     assert reg.evidence["drawn"]["ok"]
+    # nor does the local refinement move any table more than that
+    assert _truth_residual_m(fixed_flight, reg, mods) <= NO_SHIFT_TOL_M, reg.message
+
+
+def _truth_ortho_rms_m(flight_dir, placed) -> float:
+    """RMS distance between placed module centres and the modules in the ortho [m]."""
+    truth = gpd.read_file(flight_dir / "truth_ortho.geojson").to_crs(placed.crs).set_index("module_id")
+    p = placed.set_index("module_id")
+    tc = truth.loc[p.index].geometry.centroid
+    pc = p.geometry.centroid
+    return float(np.sqrt(np.mean((tc.x.to_numpy() - pc.x.to_numpy()) ** 2 + (tc.y.to_numpy() - pc.y.to_numpy()) ** 2)))
+
+
+def test_tables_displaced_one_by_one_are_refined_locally(tmp_path):
+    """Each table of the layout displaced on its own (photogrammetric distortion, 6 cm RMS,
+    the simulator's layout.local_rms_m) after a shift and a turn: the per-table refinement
+    brings the modules closer to where the ortho has them than the global fit alone, and the
+    record says how many tables it refined."""
+    from dataclasses import replace
+
+    d = tmp_path / "flight"
+    simulate_flight(_fixed(layout={"offset_m": [0.3, -0.2], "rotation_deg": 0.3, "local_rms_m": 0.06}), d, seed=SEED)
+    reg, mods = _register(d)
+    assert reg.status == "ok" and reg.applied, reg.message
+    local = reg.to_dict()["local"]
+    assert local["applied"] and local["tables_refined"] >= 1, local
+    whole = _truth_ortho_rms_m(d, apply_placement(mods, reg.placement))
+    global_only = _truth_ortho_rms_m(d, apply_placement(mods, replace(reg.placement, tables=())))
+    assert whole < global_only, (whole, global_only, local)
+    # a third of a cell (16-17 cm cells of a 1.0 x 2.1 m module of 6 x 12 cells)
+    assert whole < 0.055, (whole, local)
+    assert len(reg.to_dict()["tables"]) == local["tables_refined"]
 
 
 @pytest.mark.parametrize("rot_deg,scale,dx,dy", [(1.0, 1.0, 0.0, 0.0), (-0.5, 1.008, 0.4, -0.3)])

@@ -119,6 +119,7 @@ class Registration:
     placement: Any = None
     evidence: dict = field(default_factory=dict)
     status: str = ""
+    local: Any = None
 
     def shift_at(self, x, y) -> tuple[np.ndarray, np.ndarray]:
         """Applied shift at map points (x, y) [m] (zeros when nothing was applied)."""
@@ -148,6 +149,8 @@ class Registration:
             "status": self.status,
             "placement": self.placement.to_dict() if self.placement is not None else None,
             "evidence": self.evidence,
+            "local": self.local.summary() if self.local is not None else None,
+            "tables": self.local.table_records() if self.local is not None else [],
         }
 
 

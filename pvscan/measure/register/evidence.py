@@ -64,6 +64,8 @@ class Placement:
         Scale [-] (1 = none).
     cx, cy : float
         Centre of rotation and scale (the layout's centre) [m].
+    tables : tuple of (table_id, dx, dy)
+        Translations of single tables after the similarity (local refinement) [m].
     """
 
     tx: float = 0.0
@@ -72,6 +74,7 @@ class Placement:
     scale: float = 1.0
     cx: float = 0.0
     cy: float = 0.0
+    tables: tuple = ()
 
     @property
     def matrix(self) -> np.ndarray:
@@ -101,7 +104,8 @@ class Placement:
         return Placement(**d)
 
     def is_identity(self) -> bool:
-        return self.tx == 0.0 and self.ty == 0.0 and self.theta_deg == 0.0 and self.scale == 1.0
+        return (self.tx == 0.0 and self.ty == 0.0 and self.theta_deg == 0.0 and self.scale == 1.0
+                and not self.tables)
 
     def shift_model(self) -> tuple[float, float, float, float, float, float]:
         """The shift field ``(tx, ty, a, b, x0, y0)`` of :class:`Registration` (shift at
@@ -455,15 +459,20 @@ def refine_placement(sample: ModuleSample, start: Placement, cfg: Mapping, *, ro
 
     Steps start at ``evidence_step_m`` (translation), ``evidence_step_deg`` (rotation) and
     ``evidence_step_scale`` and are halved until below an eighth of that; rotation and scale
-    are searched only when asked. Returns the best placement and its evidence [-].
+    are searched only when asked. The evidence is the spread over the outline contrast, or
+    the plain spread [K] when ``cfg["evidence_band_m"]`` is None. Returns the best placement
+    and its evidence.
 
     References
     ----------
     .. [1] R. Hooke and T. A. Jeeves, "'Direct search' solution of numerical and statistical
        problems", Journal of the ACM 8(2), 212-229, 1961. doi:10.1145/321062.321069
     """
-    kw = {"inset_u": float(cfg["evidence_inset"]), "inset_v": float(cfg["evidence_inset"]),
-          "band_m": float(cfg["evidence_band_m"]), "off_glass_k": float(cfg["evidence_off_glass_k"])}
+    kw: dict[str, Any] = {"inset_u": float(cfg["evidence_inset"]), "inset_v": float(cfg["evidence_inset"])}
+    if cfg.get("evidence_band_m") is not None:
+        # the outline contrast widens the basin; without it (the last, local stage) the plain
+        # spread inside a nearly whole footprint has its minimum where the module is
+        kw.update(band_m=float(cfg["evidence_band_m"]), off_glass_k=float(cfg["evidence_off_glass_k"]))
 
     def f(p: Placement) -> float:
         e = evidence(module_spread(sample, p, **kw))

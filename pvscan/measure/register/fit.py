@@ -32,6 +32,7 @@ from pvscan.errors import RegistrationWarning
 from pvscan.measure.register._blocks import _settings
 from pvscan.measure.register._records import Registration
 from pvscan.measure.register.estimate import estimate_shift
+from pvscan.measure.register.local import refine_tables, table_offsets
 from pvscan.measure.register.evidence import (
     Placement,
     placement_quality,
@@ -79,11 +80,12 @@ def apply_placement(modules, placement: Placement | None):
     geoms = np.asarray(out.geometry.values, dtype=object)
     coords, idx = shapely.get_coordinates(geoms, return_index=True)
     x, y = placement.apply(coords[:, 0], coords[:, 1])
-    moved = shapely.set_coordinates(geoms.copy(), np.column_stack([x, y]))
+    local = table_offsets(out, {t: (dx, dy) for t, dx, dy in placement.tables})
+    moved = shapely.set_coordinates(geoms.copy(), np.column_stack([x + local[idx, 0], y + local[idx, 1]]))
     out[out.geometry.name] = geopandas.GeoSeries(moved, index=out.index, crs=modules.crs)
     if "fx0" in out.columns:
         ox, oy = placement.apply(out["fx0"].to_numpy(float), out["fy0"].to_numpy(float))
-        out["fx0"], out["fy0"] = ox, oy
+        out["fx0"], out["fy0"] = ox + local[:, 0], oy + local[:, 1]
         m = placement.matrix
         for a, b in (("fux", "fuy"), ("fvx", "fvy")):
             if a in out.columns:
@@ -236,8 +238,29 @@ def register_layout(orthos: Any, modules, settings: Mapping | None = None, *, su
                        f"(best probe ratios {_num(best.get('ratio_u')):.2f}, {_num(best.get('ratio_v')):.2f}; at most "
                        f"{lim:g} needed)")
         _no_move(reg)
+    if reg.status == "ok" and forced_shift is None and cfg["local_enabled"]:
+        _refine_locally(orthos, modules, reg, cfg, ident)
     logger.info("register: %s", reg.message)
     return reg
+
+
+def _refine_locally(orthos, modules, reg: Registration, cfg: Mapping, ident: Placement) -> None:
+    """Per-table corrections after the global placement (:mod:`.local`), kept in
+    ``reg.placement.tables`` when the module evidence prefers them."""
+    base = reg.placement if (reg.applied and reg.placement is not None) else ident
+    lf = refine_tables(orthos, apply_placement(modules, base), cfg)
+    reg.local = lf
+    if not lf.applied:
+        return
+    reg.placement = Placement(base.tx, base.ty, base.theta_deg, base.scale, base.cx, base.cy,
+                              tables=tuple((str(k), float(v[0]), float(v[1])) for k, v in lf.shifts.items()))
+    if not reg.applied:
+        # the global placement is the layout as drawn; only tables move
+        reg.applied = True
+        reg.model = reg.placement.shift_model()
+        reg.follow_drift = True
+        reg.shift_m = (0.0, 0.0)
+    reg.message += f"; {lf.message}"
 
 
 def _pitches(modules) -> list[np.ndarray]:
@@ -321,7 +344,13 @@ def _fit_proposal(orthos, modules, cand: Placement, cfg: Mapping) -> tuple[Place
                 pl, e = pa, ea
     pl, sample, inner, _ = _fit_at(orthos, modules, pl, cfg, insets=insets[-1:], rotate=rot, scale=sca, reduce=1,
                                    step_m=step)
-    return pl, sample, inner
+    # the outline contrast pulls a footprint toward the strongest edge beside it (a shadow,
+    # a table edge) by centimetres; the plain spread inside a nearly whole footprint does not
+    base = _compose(pl, _inverse(inner))  # where the sample was read
+    fine = {**cfg, "evidence_band_m": None, "evidence_inset": float(cfg["evidence_fine_inset"]),
+            "evidence_step_m": step / 2.0}
+    inner, _ = refine_placement(sample, inner, fine, rotate=rot, scale=sca)
+    return _compose(base, inner), sample, inner
 
 
 def _distinct(proposals: list[Placement], bounds, tol_m: float = 0.02) -> list[Placement]:

@@ -1,0 +1,232 @@
+"""Local refinement of a placed layout: one small translation per table.
+
+After the global fit (shift, rotation, scale) photogrammetry leaves local, non-rigid
+distortions of a few centimetres to decimetres: a table can sit a little off where the
+similarity puts it. :func:`refine_tables` measures, for each table, the translation within
+``local_radius_m`` that minimises the module evidence of its own modules
+(:mod:`pvscan.measure.register.evidence`), and keeps it only when
+
+1. it lowers that table's evidence by ``local_gate`` (else the table keeps the global fit);
+2. it moves the table at least ``local_min_m`` (smaller corrections are noise of the
+   evidence minimum, not worth a move);
+3. it agrees with its neighbours: the median correction of the ``local_neighbours`` nearest
+   tables (refined or not) is within ``local_reject_m`` of it. Distortion of an
+   orthomosaic varies smoothly over a site; a table that disagrees with all around it may
+   have found a defect, a shadow or a seam, not its place: it keeps its own correction only
+   when its modules prefer it to the neighbours' by ``local_gate`` again, takes the
+   neighbours' when that helps it, and is otherwise rejected (kept at the global fit);
+4. the site as a whole is better for it: the mean evidence of all sampled modules with the
+   corrections is lower by ``local_site_gate`` than without (else nothing is applied).
+
+The result says how many tables were refined and rejected, the corrections' root mean
+square and largest length (the local residuals of the global fit) and the evidence before
+and after.
+"""
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from pvscan.measure.register.evidence import (
+    ModuleSample,
+    Placement,
+    evidence,
+    module_spread,
+    refine_placement,
+    sample_modules,
+)
+
+__all__ = ["LocalFit", "refine_tables", "table_offsets"]
+
+
+@dataclass
+class LocalFit:
+    """Per-table corrections after the global fit.
+
+    Attributes
+    ----------
+    shifts : dict
+        ``table_id -> (dx, dy)`` applied after the global placement [m] (refined tables only).
+    tables : list of dict
+        Every table measured: ``table_id``, ``dx_m``, ``dy_m`` (what its own modules
+        preferred), ``evidence_before``, ``evidence_after`` [-], ``status`` (``refined``,
+        ``kept``: no better than the global fit, ``neighbours``: took its neighbours' median
+        correction, ``rejected``: disagreed with its neighbours and kept the global fit).
+    evidence_before, evidence_after : float
+        Mean evidence of all sampled modules without and with the corrections [-].
+    applied : bool
+    message : str
+    """
+
+    shifts: dict = field(default_factory=dict)
+    tables: list = field(default_factory=list)
+    evidence_before: float = float("nan")
+    evidence_after: float = float("nan")
+    applied: bool = False
+    message: str = ""
+
+    def summary(self) -> dict:
+        """Plain-JSON record: counts, residuals, evidence, message."""
+        d = np.array([math.hypot(*v) for v in self.shifts.values()]) if self.shifts else np.zeros(0)
+        return {
+            "applied": bool(self.applied),
+            "tables_measured": len(self.tables),
+            "tables_refined": len(self.shifts) if self.applied else 0,
+            "tables_from_neighbours": int(sum(t["status"] == "neighbours" for t in self.tables)) if self.applied else 0,
+            "tables_rejected": int(sum(t["status"] == "rejected" for t in self.tables)),
+            "residual_rms_m": round(float(np.sqrt(np.mean(d ** 2))), 4) if len(d) and self.applied else 0.0,
+            "residual_max_m": round(float(d.max()), 4) if len(d) and self.applied else 0.0,
+            "evidence_before": _r(self.evidence_before),
+            "evidence_after": _r(self.evidence_after),
+            "message": self.message,
+        }
+
+    def table_records(self) -> list[dict]:
+        """The applied corrections as ``{table_id, dx_m, dy_m}`` (the report draws them)."""
+        if not self.applied:
+            return []
+        return [{"table_id": str(k), "dx_m": round(float(v[0]), 4), "dy_m": round(float(v[1]), 4)}
+                for k, v in self.shifts.items()]
+
+
+def _r(v: float) -> float | None:
+    return round(float(v), 4) if math.isfinite(v) else None
+
+
+def _take(sample: ModuleSample, sel: np.ndarray) -> ModuleSample:
+    """The sampled modules ``sel`` (boolean or index array) as a sample of their own."""
+    assert sample.centred is not None
+    return ModuleSample(index=sample.index[sel], values=sample.values[sel], x0=sample.x0[sel], y0=sample.y0[sel],
+                        gx=sample.gx, gy=sample.gy, frames=sample.frames[sel], table=sample.table[sel],
+                        centred=sample.centred[sel], ref=sample.ref[sel])
+
+
+def _per_table(modules, n: int) -> np.ndarray:
+    """Rows of up to ``n`` modules of every table, spread along it (deterministic)."""
+    tid = modules["table_id"].astype(str).to_numpy()
+    order = np.lexsort((modules["table_col"].to_numpy() if "table_col" in modules.columns else np.zeros(len(tid)),
+                        modules["table_row"].to_numpy() if "table_row" in modules.columns else np.zeros(len(tid)),
+                        tid))
+    out = []
+    start = 0
+    ts = tid[order]
+    while start < len(order):
+        stop = start
+        while stop < len(order) and ts[stop] == ts[start]:
+            stop += 1
+        rows = order[start:stop]
+        if len(rows) > n:
+            rows = rows[np.unique(np.linspace(0, len(rows) - 1, n).round().astype(int))]
+        out.extend(rows.tolist())
+        start = stop
+    return np.sort(np.asarray(out, dtype=np.int64))
+
+
+def table_offsets(modules, shifts: Mapping) -> np.ndarray:
+    """(n, 2) per-module translations of ``shifts`` (``table_id -> (dx, dy)``) [m]."""
+    out = np.zeros((len(modules), 2))
+    if not shifts or "table_id" not in modules.columns:
+        return out
+    tid = modules["table_id"].astype(str).to_numpy()
+    for k, v in shifts.items():
+        out[tid == str(k)] = (float(v[0]), float(v[1]))
+    return out
+
+
+def refine_tables(orthos: Any, modules, cfg: Mapping) -> LocalFit:
+    """Per-table translations of placed ``modules`` (see the module docstring).
+
+    Parameters
+    ----------
+    orthos : OrthoSet
+    modules : geopandas.GeoDataFrame
+        Module footprints with frames and ``table_id``, already placed by the global fit
+        (ortho CRS) [m].
+    cfg : mapping
+        The ``[register]`` section: ``local_*`` keys and the evidence keys.
+    """
+    if "table_id" not in modules.columns or len(modules) == 0:
+        return LocalFit(message="no table ids: no local refinement")
+    radius = float(cfg["local_radius_m"])
+    rows = _per_table(modules, int(cfg["local_modules_per_table"]))
+    sub_mods = modules.iloc[rows]
+    sample = sample_modules(orthos, sub_mods, n=len(sub_mods), margin_m=radius + float(cfg["evidence_band_m"]) + 0.05,
+                            reduce=1, seed=0)
+    if len(sample) == 0:
+        return LocalFit(message="no table could be sampled: no local refinement")
+    b = modules.total_bounds
+    ident = Placement(cx=float((b[0] + b[2]) / 2.0), cy=float((b[1] + b[3]) / 2.0))
+    # the plain spread inside nearly whole footprints: its minimum is where the modules are
+    # (the outline contrast would pull a table toward the strongest edge beside it)
+    inset = float(cfg["evidence_fine_inset"])
+    kw = {"inset_u": inset, "inset_v": inset}
+    sub_cfg = {**cfg, "evidence_inset": inset, "evidence_band_m": None, "evidence_step_m": float(cfg["local_step_m"]),
+               "max_shift_m": radius}
+    tables = sample.table.astype(str)
+    names = list(dict.fromkeys(tables.tolist()))
+    fr = sample.frames
+    cx = fr[:, 0] + 0.5 * (fr[:, 2] + fr[:, 4])
+    cy = fr[:, 1] + 0.5 * (fr[:, 3] + fr[:, 5])
+    recs = []
+    subs = {}
+    for t in names:
+        sel = tables == t
+        sub = subs[t] = _take(sample, sel)
+        e0 = evidence(module_spread(sub, ident, **kw))
+        p, e1 = refine_placement(sub, ident, sub_cfg, rotate=False, scale=False)
+        recs.append({"table_id": t, "dx_m": float(p.tx), "dy_m": float(p.ty), "evidence_before": e0,
+                     "evidence_after": e1, "x": float(np.mean(cx[sel])), "y": float(np.mean(cy[sel]))})
+    gate = float(cfg["local_gate"])
+    min_m = float(cfg["local_min_m"])
+    for r in recs:
+        better = math.isfinite(r["evidence_after"]) and r["evidence_after"] < (1.0 - gate) * r["evidence_before"]
+        r["status"] = "refined" if (better and math.hypot(r["dx_m"], r["dy_m"]) >= min_m) else "kept"
+    # neighbours hold each table: its correction must agree with theirs
+    k = int(cfg["local_neighbours"])
+    reject = float(cfg["local_reject_m"])
+    if len(recs) > k >= 1:
+        xy = np.array([[r["x"], r["y"]] for r in recs])
+        d = np.array([[r["dx_m"], r["dy_m"]] if r["status"] == "refined" else [0.0, 0.0] for r in recs])
+        for i, r in enumerate(recs):
+            if r["status"] != "refined":
+                continue
+            dist = np.hypot(xy[:, 0] - xy[i, 0], xy[:, 1] - xy[i, 1])
+            dist[i] = np.inf
+            nb = np.argsort(dist)[:k]
+            med = np.median(d[nb], axis=0)
+            if math.hypot(*(d[i] - med)) <= reject:
+                continue
+            # an outlier: kept only when its own modules decisively prefer it to what its
+            # neighbours say; else it takes the neighbours' correction if that helps it
+            e_nb = evidence(module_spread(subs[r["table_id"]], ident.moved(tx=float(med[0]), ty=float(med[1])),
+                                          **kw))
+            if math.isfinite(e_nb) and r["evidence_after"] < (1.0 - gate) * e_nb:
+                continue
+            if math.isfinite(e_nb) and e_nb < (1.0 - gate) * r["evidence_before"] and math.hypot(*med) >= min_m:
+                r.update(dx_m=float(med[0]), dy_m=float(med[1]), evidence_after=e_nb, status="neighbours")
+            else:
+                r["status"] = "rejected"
+    shifts = {r["table_id"]: (r["dx_m"], r["dy_m"]) for r in recs if r["status"] in ("refined", "neighbours")}
+    local = np.array([shifts.get(t, (0.0, 0.0)) for t in tables], float)
+    e_before = evidence(module_spread(sample, ident, **kw))
+    e_after = evidence(module_spread(sample, ident, local=local, **kw)) if shifts else e_before
+    site_gate = float(cfg["local_site_gate"])
+    applied = bool(shifts) and math.isfinite(e_after) and e_after < (1.0 - site_gate) * e_before
+    out_recs = [{k2: (round(v, 4) if isinstance(v, float) and math.isfinite(v) else v) for k2, v in r.items()
+                 if k2 not in ("x", "y")} for r in recs]
+    n_ref = len(shifts)
+    n_rej = sum(r["status"] == "rejected" for r in recs)
+    if applied:
+        msg = (f"{n_ref} of {len(recs)} tables refined locally ({n_rej} rejected by their neighbours): "
+               f"evidence {e_before:.3f} -> {e_after:.3f}")
+    elif shifts:
+        msg = (f"local refinement of {n_ref} tables not used: evidence {e_before:.3f} -> {e_after:.3f} "
+               f"(needs {site_gate:.0%} lower)")
+    else:
+        msg = f"no table is better placed by a local correction ({n_rej} rejected by their neighbours)"
+    return LocalFit(shifts=shifts if applied else {}, tables=out_recs, evidence_before=e_before,
+                    evidence_after=e_after, applied=applied, message=msg)
