@@ -268,9 +268,9 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
     from pvscan.errors import RegistrationError
     from pvscan.io.layout import read_layout
     from pvscan.io.ortho import open_orthos
-    from pvscan.measure import conditions as cond_mod
     from pvscan.measure import register, zonal
     from pvscan.measure import validity as val_mod
+    from pvscan.measure.conditions import conditions_for_flight
     from pvscan.measure.plausibility import check_ortho_values
 
     timings = {} if timings is None else timings
@@ -309,15 +309,7 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         gsd = float(orthos.gsd_m)
 
     t0 = _clock()
-    series = cond_mod.read_weather_series(flight.conditions.series) if flight.conditions.series else None
-    frames = cond_mod.read_frames(flight.flight.frames, modules.crs) if flight.flight.frames else None
-    fc = cond_mod.flight_conditions(flight.conditions, flight.flight.start, flight.flight.end, series,
-                                    settings=settings["conditions"])
-    conds = cond_mod.module_conditions(measured, flight.conditions, flight.flight.start, flight.flight.end,
-                                       series=series, frames=frames, settings=settings["conditions"],
-                                       tilt_deg=flight.layout.tilt_deg)
-    validity = cond_mod.check_validity(fc, conds, gsd_m=gsd, module_spec=flight.module,
-                                       settings=settings["conditions"])
+    fc, conds, validity = conditions_for_flight(flight, measured, gsd_m=gsd, settings=settings["conditions"])
     _record(timings, "conditions", t0)
 
     t0 = _clock()
