@@ -30,6 +30,7 @@ from pvscan.physics.heat import Faiman
 from pvscan.robust import nanmedian, scaled_mad
 
 __all__ = ["Features", "Hits", "build_features", "row_geometry", "string_groups", "neighbour_median",
+           "cell_neighbour_median",
            "quality", "fit_score", "confidence", "spec_value"]
 
 logger = logging.getLogger(__name__)
@@ -43,14 +44,51 @@ def spec_value(module_spec: Any, name: str, default: Any = None) -> Any:
 
 
 def neighbour_median(values: np.ndarray, nb: np.ndarray, chunk: int = 2048) -> np.ndarray:
-    """Median over each module's neighbours (``nb``, -1 = none) of ``values[neighbour]``."""
+    """Median over each module's neighbours (``nb``, -1 = none) of ``values[neighbour]``.
+
+    ``values`` is (n, ...) and the result has its shape (float64). Modules are taken
+    ``chunk`` at a time and each chunk's neighbour values are gathered with the neighbours
+    along the last, contiguous axis, so the temporaries stay a few megabytes whatever the
+    plant size and the sort runs over contiguous memory.
+    """
     n = len(values)
-    out = np.full(values.shape, np.nan, dtype=np.float64)
+    flat = np.asarray(values).reshape(n, -1)
+    m = flat.shape[1]
+    k = nb.shape[1] if nb.ndim == 2 else 0
+    out = np.full((n, m), np.nan, dtype=np.float64)
+    if k == 0:
+        return out.reshape(np.shape(values))
     for s in range(0, n, chunk):
         idx = nb[s:s + chunk]
-        g = values[np.maximum(idx, 0)].astype(np.float64)
-        g[idx < 0] = np.nan
-        out[s:s + chunk] = nanmedian(g, axis=1)
+        g = np.empty((len(idx), m, k), dtype=np.float64)
+        for j in range(k):
+            col = idx[:, j]
+            g[:, :, j] = flat[np.maximum(col, 0)]
+            g[col < 0, :, j] = np.nan
+        out[s:s + chunk] = nanmedian(g, axis=-1)
+    return out.reshape(np.shape(values))
+
+
+#: Offsets of a cell's neighbours within the module (the 3 x 3 box without its centre).
+_BOX_OFFSETS = tuple((di, dj) for di in (-1, 0, 1) for dj in (-1, 0, 1) if (di, dj) != (0, 0))
+
+
+def cell_neighbour_median(X: np.ndarray, chunk: int = 4096) -> np.ndarray:
+    """Median of each cell's (up to 8) neighbouring cells within its module, NaN-aware.
+
+    ``X`` is (n, A, C); cells beyond the module's edge and NaN cells are left out; a cell
+    without a finite neighbour gives NaN. Modules are taken ``chunk`` at a time with the 8
+    neighbours along the last, contiguous axis (bounded temporaries).
+    """
+    X = np.asarray(X)
+    n, A, C = X.shape
+    out = np.empty((n, A, C), dtype=np.float64)
+    for s in range(0, n, chunk):
+        P = np.pad(X[s:s + chunk], ((0, 0), (1, 1), (1, 1)), constant_values=np.nan)
+        g = np.empty((P.shape[0], A, C, len(_BOX_OFFSETS)), dtype=np.float64)
+        for k, (di, dj) in enumerate(_BOX_OFFSETS):
+            g[..., k] = P[:, 1 + di:1 + di + A, 1 + dj:1 + dj + C]
+        out[s:s + chunk] = nanmedian(g, axis=-1)
     return out
 
 

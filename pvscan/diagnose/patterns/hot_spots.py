@@ -17,20 +17,15 @@ from collections.abc import Mapping
 import numpy as np
 from scipy import ndimage
 
-from pvscan.diagnose.features import Features, Hits, confidence, quality
+from pvscan.diagnose.features import Features, Hits, cell_neighbour_median, confidence, quality
 from pvscan.diagnose.patterns.junction_box import box_cells
-from pvscan.robust import nanmedian
 
 __all__ = ["pattern_hot_cell"]
 
 
 def _box_filter_median(X: np.ndarray) -> np.ndarray:
     """Median of each cell's (up to 8) neighbours within the module, NaN-aware."""
-    n, A, C = X.shape
-    P = np.pad(X, ((0, 0), (1, 1), (1, 1)), constant_values=np.nan)
-    stack = [P[:, 1 + di:1 + di + A, 1 + dj:1 + dj + C] for di in (-1, 0, 1) for dj in (-1, 0, 1)
-             if (di, dj) != (0, 0)]
-    return nanmedian(np.stack(stack, axis=0), axis=0)
+    return cell_neighbour_median(X)
 
 
 def pattern_hot_cell(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
