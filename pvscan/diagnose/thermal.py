@@ -251,7 +251,7 @@ def reference_neighbours(modules: pd.DataFrame, healthy_mask: ArrayLike, setting
 
 
 def _median_of(values: np.ndarray, nb: np.ndarray, xy: np.ndarray | None = None,
-               max_shift_m: float = 5.0) -> np.ndarray:
+               max_shift_m: float = 5.0, rows: slice | None = None) -> np.ndarray:
     """Median of the neighbours' values; with ``xy``, corrected for a linear trend.
 
     The trend correction matters where the neighbours sit on one side (row ends): the
@@ -262,17 +262,24 @@ def _median_of(values: np.ndarray, nb: np.ndarray, xy: np.ndarray | None = None,
     moved from the neighbours' median position to the module's. Only neighbours lying on
     a line through the module (within 0.5 m: a table row) are corrected, and only when
     their median position is within ``max_shift_m`` of the module.
+
+    ``nb`` may hold the neighbours of the modules ``rows`` only (a slice of all modules;
+    ``values`` and ``xy`` stay whole): the result is then for those modules.
     """
-    n = len(values)
     if nb.shape[1] == 0:
-        return np.full(n, np.nan)
+        return np.full(len(nb), np.nan)
+    if len(nb) > _KNN_CHUNK:
+        # row by row independent: in chunks of modules (bounded (modules x pairs) temporaries)
+        return np.concatenate([_median_of(values, nb[s:s + _KNN_CHUNK], xy, max_shift_m,
+                                          rows=slice(s, s + _KNN_CHUNK)) for s in range(0, len(nb), _KNN_CHUNK)])
     vals = np.where(nb >= 0, values[np.maximum(nb, 0)], np.nan)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
         med = np.nanmedian(vals, axis=1)
         if xy is None:
             return med
-        off = np.where((nb >= 0)[:, :, None], xy[np.maximum(nb, 0)] - xy[:, None, :], np.nan)
+        own = xy if rows is None else xy[rows]
+        off = np.where((nb >= 0)[:, :, None], xy[np.maximum(nb, 0)] - own[:, None, :], np.nan)
         # main axis of the offsets (sign-free): angle of the doubled-angle mean direction
         ang = np.arctan2(off[:, :, 1], off[:, :, 0])
         c2 = np.nanmean(np.cos(2 * ang), axis=1)
