@@ -189,14 +189,19 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
                     lo_end -= 1
                 while hi_end < len(idx) and F.ok[idx[hi_end]] and z[idx[hi_end]] >= end_z:
                     hi_end += 1
-                run = idx[lo_end:hi_end]
-                if F.extra.get("is_string", False) and not _string_opens_whole(F, cfg, idx, run):
-                    continue
-                if not _raised_over_other_row_throughout(F, cfg, run):
-                    continue
-                if not _stops_at_its_ends(F, cfg, run):
-                    continue
-                out.append([int(i) for i in run])
+                # the end modules taken in are less clear (a healthy module is above
+                # open_string_end_z now and then): when the run with them fails a check of
+                # the whole run, the established run is judged alone
+                for lo_i, hi_i in dict.fromkeys([(lo_end, hi_end), (a, b)]):
+                    run = idx[lo_i:hi_i]
+                    if F.extra.get("is_string", False) and not _string_opens_whole(F, cfg, idx, run):
+                        continue
+                    if not _raised_over_other_row_throughout(F, cfg, run):
+                        continue
+                    if not _stops_at_its_ends(F, cfg, run):
+                        continue
+                    out.append([int(i) for i in run])
+                    break
     return out
 
 

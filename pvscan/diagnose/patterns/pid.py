@@ -138,7 +138,13 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
         # string's end is not PID, nor a string that a reflection or a seam warms as a
         # whole; but one weaker module right after the first does not undo a string that
         # shows the pattern further on
-        rest = np.cumsum(zr[1:]) / np.sqrt(np.arange(1, len(zr)))
+        # (beyond one module, without the strongest of them: a single module capped at
+        # pid_z_cap plus the noise of two or three others must not reach pid_rest_z)
+        zs = zr[1:]
+        rest = np.cumsum(zs) / np.sqrt(np.arange(1, len(zr)))
+        m_rest = np.arange(1, len(zr))
+        loo = (np.cumsum(zs) - np.maximum.accumulate(zs)) / np.sqrt(np.maximum(m_rest - 1, 1))
+        rest = np.where(m_rest >= 2, loo, rest)
         if np.max(rest[max(m_min - 2, 0):]) < float(cfg["pid_rest_z"]):
             continue
         score = np.cumsum(zz) / np.sqrt(np.arange(1, len(zz) + 1))
