@@ -254,6 +254,9 @@ def test_card_says_why_with_the_rule_and_the_value(tmp_path):
         r, {"safety_junction_box_delta_t_norm_k": 20.0, "safety_t_max_c": 100.0})
     r = {"severity": "safety", "defect": "open_module", "delta_t_norm_k": 5.0, "t_max_c": 104.5}
     assert "104.5 °C, at or above the 100 °C safety rule" in severity_reason(r, {"safety_t_max_c": 100.0})
+    r = {"severity": "monitor", "defect": "pid", "delta_t_norm_k": 0.1, "power_loss_w": 12.0}
+    assert "loses 12 W at STC, below the 40 W repair rule for PID strings" in severity_reason(
+        r, {"repair_pid_power_loss_w": 40.0})
     r = {"severity": "monitor", "defect": "soiling", "delta_t_norm_k": 2.0, "t_max_c": 50.0}
     assert "cleaning" in severity_reason(r, {"monitor_defects": ["soiling"]})
 
@@ -358,3 +361,41 @@ def test_field_sheets_one_table_per_sheet(tmp_path):
     css = html_text.split("@media print", 1)[1]
     assert ".fieldsheet + .fieldsheet { break-before: page; }" in css
     assert math.isfinite(len(sheets))
+
+
+def test_placement_record_is_applied():
+    """registration.placement (shift_m, rotation_deg, scale, centre) as summary.json records the
+    fit: x' = centre + s R(theta) (x - centre) + shift, checked against shapely.affinity."""
+    from shapely.affinity import rotate, scale, translate
+    from shapely.geometry import box
+
+    from pvscan.report._geometry import registration_transform
+
+    summary = {"layout_shift_m": [9.0, 9.0],  # superseded by the placement's own shift
+               "registration": {"placement": {"shift_m": [-0.4, 0.25], "rotation_deg": -0.8, "scale": 0.995,
+                                              "centre": [1000.0, 2000.0]}}}
+    tf, _ = registration_transform(summary)
+    g = box(1040.0, 1980.0, 1041.0, 1982.0)
+    ref = translate(rotate(scale(g, 0.995, 0.995, origin=(1000.0, 2000.0)), -0.8, origin=(1000.0, 2000.0)),
+                    -0.4, 0.25)
+    assert np.allclose(tf(np.asarray(g.exterior.coords)), np.asarray(ref.exterior.coords), atol=1e-9)
+
+
+def test_cell_grid_on_the_module():
+    """A 6 x 12 cell module (CONTRACT.md's example) turned 30 degrees: 11 lines across its long
+    side and 5 along it, each spanning the module, at equal spacing."""
+    from shapely.affinity import rotate
+    from shapely.geometry import box
+
+    from pvscan.report._geometry import cell_lines
+
+    m = rotate(box(0.0, 0.0, 1.038, 2.094), 30.0, origin=(0.0, 0.0))
+    lines = cell_lines(m, 12, 6)
+    assert len(lines) == 11 + 5
+    lengths = sorted(round(ln.length, 6) for ln in lines)
+    assert lengths[:11] == [1.038] * 11 and lengths[11:] == [2.094] * 5
+    for ln in lines:
+        assert m.buffer(1e-9).contains(ln)
+    mids = sorted(ln.interpolate(0.5, normalized=True).distance(rotate(box(0, 0, 1.038, 0), 30.0, origin=(0, 0)))
+                  for ln in lines[:11])
+    assert np.allclose(np.diff(mids), 2.094 / 12, atol=1e-9)

@@ -11,8 +11,8 @@ load_result(result_dir) -> ResultData
 from __future__ import annotations
 
 from pvscan.report._build import build_report, write_report
-from pvscan.report._text import DEFECT_TEXT, SAFETY_CAUTIONS
 from pvscan.report._result import SEVERITIES, ResultData, load_result, validity_checks
+from pvscan.report._text import DEFECT_TEXT, SAFETY_CAUTIONS
 
 __all__ = ["write_report", "build_report", "load_result", "ResultData", "validity_checks",
            "SEVERITIES", "SAFETY_CAUTIONS", "DEFECT_TEXT"]

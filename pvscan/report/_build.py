@@ -130,8 +130,8 @@ def _overview(data: ResultData, view: ThermalView | None, geo: MapGeometry, cfg:
     if view is not None:
         image, extent = view.overview(int(cfg["overview_max_px"]), progress=progress)
         finite = image[np.isfinite(image)]
-        site_window = (tuple(float(v) for v in np.percentile(finite, cfg["overview_percentiles"]))
-                       if finite.size else (math.nan, math.nan))
+        pct = np.percentile(finite, cfg["overview_percentiles"]) if finite.size else (math.nan, math.nan)
+        site_window = (float(pct[0]), float(pct[1]))
         extent_view = extent
         if mb is not None:  # frame the plant, not the whole ortho
             pad = 0.04 * max(mb[2] - mb[0], mb[3] - mb[1])
@@ -213,6 +213,23 @@ def _plots(data: ResultData, checks: list[dict], dpi: int) -> list[dict[str, str
     ]
 
 
+def _cells(data: ResultData, flight: Any) -> tuple[int, int] | None:
+    """(cells along the long side, cells across) of the flight's module, None when unknown."""
+    spec = getattr(flight, "module", None)
+    manifest = data.manifest_path()
+    if spec is None and manifest is not None:
+        try:
+            from pvscan.io.manifest import load_flight
+
+            spec = load_flight(manifest, check_files=False).module
+        except PvscanError:
+            spec = None
+    try:
+        return (int(spec.n_along), int(spec.cells_across)) if spec is not None else None
+    except (AttributeError, TypeError, ValueError):
+        return None
+
+
 def _registration_figure(data: ResultData, geo: MapGeometry, dpi: int) -> str:
     """The registration fit drawn (a data URI), '' when nothing was measured."""
     reg = data.summary.get("registration")
@@ -245,12 +262,13 @@ def _build(data: ResultData, view: ThermalView | None, modules_gdf: Any, cfg: di
     checks, ok = validity_checks(data.summary)
     rules = sec.severity_rules(data.summary)
 
+    cells = _cells(data, flight)
     overview, pins, site_window, on_ortho = _overview(data, view, geo, cfg, palette, progress)
     size = int(cfg["crop_px"] if len(an) <= int(cfg["many_anomalies"]) else cfg["crop_px_many"])
     shots = []
     for k, r in an.iterrows():
         ageom = geo.anomalies[k] if k < len(geo.anomalies) else None
-        shots.append(card_shots(view, geo, r, ageom, palette, cfg, site_window, size))
+        shots.append(card_shots(view, geo, r, ageom, palette, cfg, site_window, size, cells))
         if progress is not None:
             progress("report cards", k + 1, len(an))
     card_of = {int(r["priority"]) if isnum(r["priority"]) else k + 1: (k, r) for k, r in an.iterrows()}

@@ -211,7 +211,7 @@ def overview_png(*, extent, image: np.ndarray | None, module_geoms, module_value
     if pins is not None:  # where each anomaly lands in the image, as fractions of its size
         fig.set_dpi(dpi)
         w_px, h_px = fig.get_size_inches() * dpi
-        for x, y, sev, prio in anomaly_points:
+        for x, y, _sev, prio in anomaly_points:
             px, py = ax.transData.transform((x, y))
             pins.append((prio, float(px / w_px), float(1.0 - py / h_px)))
     return _png(fig, dpi)

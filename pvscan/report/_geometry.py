@@ -17,7 +17,7 @@ import pandas as pd
 from pvscan.report._result import ResultData, get_path
 from pvscan.report._text import isnum
 
-__all__ = ["MapGeometry", "registration_transform", "as_list"]
+__all__ = ["MapGeometry", "registration_transform", "as_list", "cell_lines"]
 
 Transform = Callable[[np.ndarray], np.ndarray]
 
@@ -50,9 +50,11 @@ def registration_transform(summary: Mapping[str, Any], default_centre: tuple[flo
 
     * ``registration.affine``: six numbers ``[a, b, d, e, xoff, yoff]`` (x' = a x + b y + xoff,
       y' = d x + e y + yoff, map metres), the whole fitted placement;
-    * else a similarity about ``registration.centre_m`` (or ``origin_m``) [m]: scale
-      ``registration.scale`` [-] (1 = none) and rotation ``registration.rotation_deg`` [deg,
-      counter-clockwise], followed by the shift ``layout_shift_m`` [m] (east, north);
+    * else a similarity about a centre [m]: scale [-] (1 = none) and rotation [deg,
+      counter-clockwise], followed by a shift [m] (east, north), read from
+      ``registration.placement`` (``shift_m``, ``rotation_deg``, ``scale``, ``centre``) when
+      recorded, else from ``registration`` (``rotation_deg``, ``scale``, ``centre_m``) and
+      ``layout_shift_m``;
     * per-table refinements after the global fit: ``registration.tables`` as a list of
       ``{table_id, dx_m, dy_m}`` (or ``shift_m: [dx, dy]``) or a mapping ``table_id -> [dx, dy]``.
 
@@ -77,11 +79,15 @@ def registration_transform(summary: Mapping[str, Any], default_centre: tuple[flo
         def transform(xy: np.ndarray) -> np.ndarray:
             return xy @ mat + off
     else:
-        shift = _pair(get_path(summary, "layout_shift_m", "registration.shift_m",
-                               "registration.layout_shift_m", default=None)) or (0.0, 0.0)
-        rot = float(reg["rotation_deg"]) if isnum(reg.get("rotation_deg")) else 0.0
-        scale = float(reg["scale"]) if isnum(reg.get("scale")) and float(reg["scale"]) > 0 else 1.0
-        centre = _pair(reg.get("centre_m", reg.get("origin_m"))) or default_centre
+        place = reg.get("placement") if isinstance(reg.get("placement"), Mapping) else {}
+        assert isinstance(place, Mapping)
+        shift = _pair(place.get("shift_m")) or _pair(get_path(
+            summary, "layout_shift_m", "registration.shift_m", "registration.layout_shift_m", default=None)) \
+            or (0.0, 0.0)
+        src = place if place else reg
+        rot = float(src["rotation_deg"]) if isnum(src.get("rotation_deg")) else 0.0
+        scale = float(src["scale"]) if isnum(src.get("scale")) and float(src["scale"]) > 0 else 1.0
+        centre = _pair(src.get("centre", src.get("centre_m", src.get("origin_m")))) or default_centre
         th = math.radians(rot)
         rmat = scale * np.array([[math.cos(th), math.sin(th)], [-math.sin(th), math.cos(th)]])
         sh = np.array(shift)
@@ -201,3 +207,20 @@ class MapGeometry:
             return math.degrees(math.atan2(x2 - x, y2 - y))
         except Exception:  # an exotic CRS: grid north is as good a guess as any
             return 0.0
+
+
+def cell_lines(module: Any, n_along: int, n_across: int) -> list:
+    """The cell grid of a module as line segments (map coordinates): ``n_along`` cells along
+    its long side, ``n_across`` across, on the module's oriented rectangle."""
+    from shapely.geometry import LineString
+
+    if module is None or module.is_empty or n_along < 1 or n_across < 1:
+        return []
+    rect = np.asarray(module.minimum_rotated_rectangle.exterior.coords)[:4]
+    p0 = rect[0]
+    e1, e2 = rect[1] - p0, rect[3] - p0
+    if np.hypot(*e1) < np.hypot(*e2):
+        e1, e2 = e2, e1  # e1 along the long side
+    lines = [LineString([p0 + e1 * i / n_along, p0 + e1 * i / n_along + e2]) for i in range(1, n_along)]
+    lines += [LineString([p0 + e2 * j / n_across, p0 + e2 * j / n_across + e1]) for j in range(1, n_across)]
+    return lines

@@ -11,12 +11,13 @@ import base64
 import io
 import math
 from collections.abc import Iterable, Sequence
+from typing import Any
 
 import numpy as np
 from PIL import Image, ImageDraw
 
-__all__ = ["Palette", "render_crop", "render_schematic", "png_data_uri", "colour_window", "module_window", "quantise_png",
-           "figure_palette"]
+__all__ = ["Palette", "render_crop", "render_schematic", "png_data_uri", "colour_window", "module_window",
+           "quantise_png", "figure_palette"]
 
 _LEVELS = 240
 IDX_NAN = 250
@@ -205,11 +206,11 @@ def render_crop(values: np.ndarray, extent, palette: Palette, vmin: float, vmax:
     return buf.getvalue()
 
 
-def _hex(h: str) -> tuple[int, int, int]:
+def _hex(h: str) -> tuple[int, ...]:
     return tuple(int(h[i:i + 2], 16) for i in (1, 3, 5))
 
 
-def _blend(c1, c2, n: int) -> list[tuple[int, int, int]]:
+def _blend(c1: Any, c2: Any, n: int) -> list[tuple[int, ...]]:
     a, b = np.asarray(c1, float), np.asarray(c2, float)
     return [tuple(int(round(v)) for v in a + (b - a) * t) for t in np.linspace(0.0, 1.0, n)]
 
@@ -222,7 +223,7 @@ def figure_palette(cmap_name: str, accents=(), inks=()) -> Image.Image:
 
     cmap = matplotlib.colormaps[cmap_name]
     accents, inks = list(accents), list(inks)
-    cols = [(255, 255, 255)]
+    cols: list[tuple[int, ...]] = [(255, 255, 255)]
     for acc in accents:  # 10 entries each
         cols += _blend(_hex(acc), (255, 255, 255), 8)[:-1] + _blend(_hex(acc), (0, 0, 0), 4)[1:]
     for ink in inks:  # 12 entries each
@@ -243,7 +244,7 @@ def quantise_png(png: bytes, palette: Image.Image) -> bytes:
     quantiser would merge into their neighbours.
     """
     rgb = np.asarray(Image.open(io.BytesIO(png)).convert("RGB"), dtype=np.int32)
-    pal = np.asarray(palette.getpalette()[:768], dtype=np.int32).reshape(-1, 3)
+    pal = np.asarray((palette.getpalette() or [])[:768], dtype=np.int32).reshape(-1, 3)
     packed = (rgb[..., 0] << 16) | (rgb[..., 1] << 8) | rgb[..., 2]
     uniq, inverse = np.unique(packed.reshape(-1), return_inverse=True)
     ucol = np.stack([(uniq >> 16) & 255, (uniq >> 8) & 255, uniq & 255], axis=1)

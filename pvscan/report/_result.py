@@ -140,7 +140,7 @@ class ResultData:
         })
         return out.sort_values("power_loss_w", ascending=False, na_position="last")
 
-    def totals(self) -> dict[str, float]:
+    def totals(self) -> dict[str, Any]:
         """Totals over all anomalies (an open string is one anomaly, so nothing counts twice)."""
         an = self.anomalies
         power = float(np.nansum(an["power_loss_w"])) if len(an) else 0.0

@@ -3,7 +3,7 @@ returning dicts, lists and strings (no markup; the templates escape everything).
 from __future__ import annotations
 
 import logging
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -11,8 +11,17 @@ import pandas as pd
 
 from pvscan.report._geometry import as_list
 from pvscan.report._result import SEVERITIES, ResultData, get_path
-from pvscan.report._text import (DEFECT_TEXT, defect_name, first_sentence, fmt, isnum, label_of, severity_reason,
-                                 sig, unit_of)
+from pvscan.report._text import (
+    DEFECT_TEXT,
+    defect_name,
+    first_sentence,
+    fmt,
+    isnum,
+    label_of,
+    severity_reason,
+    sig,
+    unit_of,
+)
 
 log = logging.getLogger(__name__)
 
@@ -67,7 +76,7 @@ def validity(summary: Mapping[str, Any], checks: list[dict], ok: bool | None) ->
     ones first in the banner."""
     rows = []
     for c in checks:
-        lim = c["limit"]
+        lim: Any = c["limit"]
         prefix = "≥ " if c["kind"] == "min" else "≤ " if c["kind"] == "max" else ""
         rows.append({"name": str(c["name"]).replace("_", " "), "value": sig(c["value"]),
                      "limit": (prefix + sig(lim)) if lim is not None else "–", "unit": c["unit"],
@@ -76,7 +85,7 @@ def validity(summary: Mapping[str, Any], checks: list[dict], ok: bool | None) ->
                      "source": c["source"], "message": c["note"]})
     failed = [r for r in rows if r["result"] == "fail"]
     rec = get_path(summary, "validity", default={})
-    cf = rec.get("confidence_factor") if isinstance(rec, Mapping) else None
+    cf: Any = rec.get("confidence_factor") if isinstance(rec, Mapping) else None
     note = rec.get("note") if isinstance(rec, Mapping) and isinstance(rec.get("note"), str) else ""
     return {"ok": ok, "rows": rows, "failed": failed, "banner": ok is False,
             "confidence_factor": fmt(cf, 2) if isnum(cf) and float(cf) < 1.0 else "", "note": note}
@@ -91,7 +100,13 @@ def registration(summary: Mapping[str, Any], shift: tuple[float, float]) -> dict
     if not isinstance(reg, Mapping) or not reg:
         return None
     rows: list[tuple[str, str]] = [("shift applied", f"{shift[0]:+.2f} m east, {shift[1]:+.2f} m north")]
-    used = {"layout_shift_m", "shift_m"}
+    used = {"layout_shift_m", "shift_m", "placement"}
+    place = reg.get("placement")
+    if isinstance(place, Mapping):  # the fitted placement: rotation and scale about a centre
+        if isnum(place.get("rotation_deg")):
+            rows.append(("rotation applied", fmt(place["rotation_deg"], 3, "°")))
+        if isnum(place.get("scale")):
+            rows.append(("scale applied", f"{(float(place['scale']) - 1.0) * 100:+.3f} %"))
     ms = reg.get("measured_shift_m")
     if isinstance(ms, (list, tuple)) and len(ms) == 2 and all(isnum(v) for v in ms):
         rows.append(("shift measured", f"{float(ms[0]):+.2f} m east, {float(ms[1]):+.2f} m north"))
@@ -235,7 +250,7 @@ def card(k: int, r: pd.Series, shots: Mapping[str, Any], rules: Mapping[str, Any
             "action": action if isinstance(action, str) else "", "shots": shots}
 
 
-def cards(data: ResultData, shots: list[Mapping[str, Any]], rules: Mapping[str, Any] | None) -> list[dict]:
+def cards(data: ResultData, shots: Sequence[Mapping[str, Any]], rules: Mapping[str, Any] | None) -> list[dict]:
     return [card(k, r, shots[k], rules) for k, r in data.anomalies.iterrows()]
 
 

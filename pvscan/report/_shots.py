@@ -8,7 +8,7 @@ import numpy as np
 import pandas as pd
 
 from pvscan.report import _figures as figs
-from pvscan.report._geometry import MapGeometry
+from pvscan.report._geometry import MapGeometry, cell_lines
 from pvscan.report._images import Palette, colour_window, module_window, png_data_uri, render_crop
 from pvscan.report._raster import ThermalView
 from pvscan.report._text import isnum
@@ -39,13 +39,16 @@ def _boxes(geo: MapGeometry, mods: list, ageom: Any, cfg: dict) -> tuple[tuple, 
 
 
 def card_shots(view: ThermalView | None, geo: MapGeometry, r: pd.Series, ageom: Any, palette: Palette,
-               cfg: dict, site_window: tuple[float, float], size: int) -> dict[str, Any]:
+               cfg: dict, site_window: tuple[float, float], size: int,
+               cells: tuple[int, int] | None = None) -> dict[str, Any]:
     """What the card shows above its facts, for the template.
 
     Returns a dict: ``kind`` ('crops', 'plan' or 'none'), ``size`` [px], ``message`` (kind
     'none') and ``figures``: dicts of ``uri, alt, cls, caption, lo, hi`` (colour window [degC]).
-    The close-up's window is levelled on the neighbouring modules and reaches the hottest
-    pixel of the affected region, so the hot spot's maximum is on the scale.
+    ``cells`` (cells along, across) draws the cell grid of the module(s) in the close-up (at
+    most four modules, so a run of modules stays readable). The close-up's window is levelled
+    on the neighbouring modules and reaches the hottest pixel of the affected region, so the
+    hot spot's maximum is on the scale.
     """
     from affine import Affine
     from rasterio.features import geometry_mask
@@ -83,12 +86,14 @@ def card_shots(view: ThermalView | None, geo: MapGeometry, r: pd.Series, ageom: 
     lo, hi = module_window(level_vals, top_values=top_vals, percentile_hi=float(cfg["crop_percentile_hi"]),
                            median_level=float(cfg["crop_median_level"]),
                            max_rise=float(cfg["crop_max_rise_k"]), min_span=float(cfg["crop_min_span_k"]))
-    spot = arr[~geometry_mask(regions, out_shape=arr.shape, transform=tr, all_touched=True)] if regions else top_vals
+    spot = (arr[~geometry_mask(regions, out_shape=arr.shape, transform=tr, all_touched=True)] if regions
+            else top_vals)
     spot = spot[np.isfinite(spot)]
     if spot.size and float(spot.max()) > hi:  # the scale reaches the hot spot's maximum
         hi = float(spot.max())
-    figures = [{"uri": png_data_uri(render_crop(arr, ext, palette, lo, hi, size, modules=mods, neighbours=neigh,
-                                                regions=regions)),
+    grid = [ln for m in mods[:4] for ln in cell_lines(m, *cells)] if cells else []
+    figures = [{"uri": png_data_uri(render_crop(arr, ext, palette, lo, hi, size, modules=mods,
+                                                neighbours=neigh + grid, regions=regions)),
                 "alt": "close-up thermal crop", "cls": "crop", "caption": "close-up", "lo": lo, "hi": hi}]
     ctx = view.crop(ctx_box)
     if ctx is not None and np.isfinite(ctx[0]).any():

@@ -152,16 +152,29 @@ def severity_reason(row: Mapping[str, Any], rules: Mapping[str, Any] | None,
     """
     sev = str(row.get("severity") or "")
     d = str(row.get("defect") or "")
-    dtn, tmax = row.get("delta_t_norm_k"), row.get("t_max_c")
+    dtn: Any = row.get("delta_t_norm_k")
+    tmax: Any = row.get("t_max_c")
     name = defect_name(d)
     r = dict(rules or {})
 
     def num(key: str) -> float | None:
-        v = r.get(key)
+        v: Any = r.get(key)
         return float(v) if isnum(v) else None
 
     t_lim, spot_lim = num("safety_t_max_c"), num("safety_delta_t_norm_k")
     jb_lim, hc_lim = num("safety_junction_box_delta_t_norm_k"), num("repair_hot_cell_delta_t_norm_k")
+    pid_w, pid_k = num("repair_pid_power_loss_w"), num("repair_pid_delta_t_norm_k")
+    loss: Any = row.get("power_loss_w")
+    if d == "pid" and sev in ("repair", "monitor"):  # a PID string: by its loss, else its delta T
+        above = sev == "repair"
+        side = "at or above" if above else "below"
+        then = "" if above else "; check again at the next flight"
+        if pid_w is not None and isnum(loss):
+            return (f"{sev.capitalize()}: the string loses {fmt(loss, 0, 'W', True)} at STC, {side} the "
+                    f"{pid_w:g} W repair rule for PID strings{then}.")
+        if pid_k is not None and isnum(dtn):
+            return (f"{sev.capitalize()}: normalised ΔT {fmt(dtn, 2, 'K')}, {side} the {pid_k:g} K repair rule "
+                    f"for PID strings{then}.")
     hot = d in ("hot_cell", "several_hot_cells")
     if sev == "safety":
         if t_lim is not None and isnum(tmax) and float(tmax) >= t_lim:
@@ -186,7 +199,6 @@ def severity_reason(row: Mapping[str, Any], rules: Mapping[str, Any] | None,
             top = f", below the {spot_lim:g} K safety rule" if spot_lim is not None else ""
             return (f"Repair: normalised ΔT {fmt(dtn, 1, 'K')}, at or above the {hc_lim:g} K repair rule "
                     f"for hot cells{top}.")
-        loss = row.get("power_loss_w")
         lost = f" ({fmt(loss, 0, 'W', True)} at STC)" if isnum(loss) else ""
         return f"Repair: {name} loses power{lost}; below every safety rule."
     return ""
