@@ -141,12 +141,19 @@ def _rss() -> tuple[str, str]:
 
 
 def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | None = None,
-                   timings: dict | None = None, scheduler: Any = None):
+                   timings: dict | None = None, scheduler: Any = None, *,
+                   shift: tuple[float, float] | None = None, accept_poor_registration: bool = False):
     """Read, register and measure a flight: modules, registration, true statistics, conditions.
 
     ``scheduler`` (see :mod:`pvscan.tasks`): where the block statistics run; None for this
     process, "threads" / "processes" for local cores, a connected ``distributed.Client``
     (or a ``tcp://`` address) for a Dask cluster. The results do not depend on it.
+
+    ``shift``: a known layout offset (east, north) [m] used instead of the registration's
+    own (it is still judged and recorded). When the registration fails (the layout cannot be
+    placed on the modules) a :class:`~pvscan.errors.RegistrationError` stops the run unless
+    ``accept_poor_registration``; then the run goes on with the layout as drawn and the
+    ``registration`` validity check failed.
 
     Returns
     -------
@@ -157,8 +164,10 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         ``validity``, ``orthos_info``, ``seams`` (``stretches``: list of
         :class:`pvscan.measure.seams.Stretch`; ``offsets_k``: (n,) offsets subtracted [K]).
     """
+    from pvscan.errors import RegistrationError
     from pvscan.measure import conditions as cond_mod
-    from pvscan.measure import register, zonal
+    from pvscan.measure import register, validity as val_mod, zonal
+    from pvscan.measure.plausibility import check_ortho_values
     from pvscan.io.layout import read_layout
     from pvscan.io.ortho import open_orthos
 
@@ -168,15 +177,25 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         modules = read_layout(flight, orthos.crs)
         _record(timings, "layout", t0)
 
-        t0 = _clock()
-        # the expected apparent glass temperature (Faiman + radiometry) settles candidate
-        # shifts that the image correlates alike, e.g. a tracker row and its ground shadow
+        # the expected apparent glass temperature (Faiman + radiometry): the ortho's values are
+        # checked against it before anything is measured (units, scale, coverage)
         expected = register.expected_module_apparent_c(flight, settings, strict=False)
-        reg = register.estimate_shift(orthos, modules, settings["register"], progress=progress,
-                                      expected_apparent_c=expected)
-        shift = tuple(reg.shift_m) if reg.applied else (0.0, 0.0)
-        # each module moves by the fitted (possibly drifting) shift at its own centre
-        measured = register.apply_shift(modules, reg) if reg.applied else modules
+        ortho_values = check_ortho_values(orthos, modules, units=flight.ortho.units, scale=flight.ortho.scale,
+                                          expected_c=expected, settings=settings, manifest=str(flight.path))
+
+        t0 = _clock()
+        lon, lat = _site_lonlat(modules)
+        mid = flight.flight.start + (flight.flight.end - flight.flight.start) / 2
+        sun = register.sun_vector(lon, lat, mid)
+        reg = register.register_layout(orthos, modules, settings["register"], sun=sun, progress=progress,
+                                       expected_apparent_c=expected, forced_shift=shift)
+        if reg.status == "failed" and not accept_poor_registration:
+            raise RegistrationError(
+                f"{flight.flight.layout}: {reg.message}; fit the layout with `pvscan align {flight.path} --out "
+                f"corrected.gpkg` and use the corrected layout, correct the layout, or give a known offset with "
+                f"--shift DX DY (--accept-poor-registration runs anyway, flagged invalid)")
+        applied_shift = tuple(reg.shift_m) if reg.applied else (0.0, 0.0)
+        measured = register.apply_placement(modules, reg.placement) if reg.applied else modules
         _record(timings, "register", t0)
 
         t0 = _clock()
@@ -204,10 +223,19 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
     _record(timings, "conditions", t0)
 
     t0 = _clock()
+    from pvscan.physics.heat import Faiman
     from pvscan.physics.radiometry import flight_radiometry
 
     params = flight_radiometry(flight, conds, settings["radiometry"])
     stats = true_statistics(stats_app, params)
+    predicted = Faiman.from_settings(settings).temperature(conds["poa_global"].to_numpy(float),
+                                                           conds["temp_air"].to_numpy(float),
+                                                           conds["wind_speed"].to_numpy(float))
+    validity = val_mod.with_checks(validity, [
+        val_mod.registration_check(reg, settings),
+        val_mod.coverage_check(stats.table["valid_fraction"].to_numpy(float), settings),
+        val_mod.plausibility_check(stats.table["t_median_c"].to_numpy(float), predicted, settings),
+    ], settings)
     _record(timings, "radiometry", t0)
 
     t0 = _clock()
@@ -222,7 +250,8 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
     return {
         "modules": modules,
         "registration": reg,
-        "shift": shift,
+        "shift": applied_shift,
+        "ortho_values": ortho_values,
         "stats": stats,
         "stats_apparent": stats_app,
         "conditions": conds,
@@ -285,7 +314,8 @@ def _site_lonlat(modules) -> tuple[float, float]:
 def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path | None = None,
                    out_dir: str | Path | None = None, *, overwrite: bool = False,
                    report: bool = True, progress: ProgressFn | None = None,
-                   scheduler: Any = None) -> InspectionResult:
+                   scheduler: Any = None, shift: tuple[float, float] | None = None,
+                   accept_poor_registration: bool = False) -> InspectionResult:
     """Run the whole post-flight pipeline on one flight.
 
     Parameters
@@ -308,6 +338,11 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
         process, the default), "synchronous", "threads" / "processes" (local cores), a
         Dask scheduler address ``tcp://host:port`` (connected for this run) or a connected
         ``distributed.Client``. The results are the same on every scheduler.
+    shift : (float, float), optional
+        A known layout offset (east, north) [m] to use instead of the measured one.
+    accept_poor_registration : bool
+        Run on when the layout cannot be placed on the modules (``validity.ok`` false,
+        every finding at the confidence floor) instead of raising ``RegistrationError``.
 
     Returns
     -------
@@ -335,7 +370,8 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
         scheduler = parse_scheduler(scheduler)
     timings: dict[str, float] = {}
     with (cluster(scheduler) if is_address(scheduler) else contextlib.nullcontext(scheduler)) as sched:
-        m = measure_flight(flight, settings, progress=progress, timings=timings, scheduler=sched)
+        m = measure_flight(flight, settings, progress=progress, timings=timings, scheduler=sched, shift=shift,
+                           accept_poor_registration=accept_poor_registration)
     modules = m["modules"]
     stats = m["stats"]
     conds = m["conditions"]
@@ -367,7 +403,7 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
     summary = outputs.build_summary(
         modules=modules, anomalies=anomalies, module_spec=flight.module,
         inputs={**m["orthos_info"], "manifest": str(flight.path), "layout": str(flight.flight.layout),
-                "modules_without_data": no_data},
+                "modules_without_data": no_data, "ortho_values": m["ortho_values"]},
         conditions=fc.to_dict() if hasattr(fc, "to_dict") else fc,
         validity=validity.to_dict() if hasattr(validity, "to_dict") else validity,
         registration=m["registration"].to_dict(),

@@ -553,19 +553,24 @@ def test_align_command_writes_the_moved_layout(tmp_path_factory):
     moved = gpd.read_file(out, layer="modules")
     _, drawn = _register_simulated(res)
     assert list(moved["module_id"]) == list(drawn["module_id"])
-    assert {"table_id", "fx0", "fy0"} <= set(moved.columns)
+    assert "table_id" in moved.columns and not {"fx0", "fy0", "fux"} & set(moved.columns)
     d = moved.geometry.centroid.to_numpy()
     e = drawn.geometry.centroid.to_numpy()
     np.testing.assert_allclose(shapely.get_x(d) - shapely.get_x(e), -0.6, atol=TOL_M)
     np.testing.assert_allclose(shapely.get_y(d) - shapely.get_y(e), 0.8, atol=TOL_M)
-    np.testing.assert_allclose(moved["fx0"] - drawn["fx0"], -0.6, atol=TOL_M)
     # an existing output is kept unless --overwrite
     again = runner.invoke(cli, ["align", str(res.manifest), "--out", str(out)])
     assert again.exit_code == 1
     assert "exists" in again.output and "Traceback" not in again.output
     assert runner.invoke(cli, ["align", str(res.manifest), "--out", str(out), "--overwrite"]).exit_code == 0
     assert not [p for p in out.parent.iterdir() if p.name.endswith(".tmp.gpkg")]
-    bad = runner.invoke(cli, ["align", str(res.manifest), "--out", str(out.with_suffix(".geojson"))])
+    # GeoJSON too (RFC 7946, lon/lat), same modules where the GeoPackage has them
+    gj = runner.invoke(cli, ["align", str(res.manifest), "--out", str(out.with_suffix(".geojson"))])
+    assert gj.exit_code == 0, gj.output
+    moved_gj = gpd.read_file(out.with_suffix(".geojson")).to_crs(moved.crs)
+    assert list(moved_gj["module_id"]) == list(moved["module_id"]) and "fx0" not in moved_gj.columns
+    np.testing.assert_allclose(shapely.get_x(moved_gj.geometry.centroid.to_numpy()), shapely.get_x(d), atol=1e-3)
+    bad = runner.invoke(cli, ["align", str(res.manifest), "--out", str(out.with_suffix(".txt"))])
     assert bad.exit_code == 1 and "GeoPackage" in bad.output
     tuned = out.parent / "tuned.toml"
     tuned.write_text("[register]\nmax_shift_mm = 2.0\n")

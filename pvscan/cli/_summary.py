@@ -84,17 +84,25 @@ def summary_lines(result_dir, top: int | None = None) -> list[str]:
             lines.append(f"  ... {len(an) - top} more in workorders.csv")
     checks, ok = validity_checks(data.summary)
     failed = [c for c in checks if c["passed"] is False]
+    raw_checks = {c.get("name"): c for c in ((data.summary.get("validity") or {}).get("checks") or [])
+                  if isinstance(c, dict)}
     if ok is False or failed:
-        lines.append("acquisition conditions outside the limits (results less certain):")
-        for c in failed[:4]:
-            unit = f" {c['unit']}" if c["unit"] else ""
-            rel = {"min": ">=", "max": "<="}.get(c["kind"] or "", "limit")
-            lines.append(_cut(f"  ! {str(c['name']).replace('_', ' ')}: {_f(c['value'], 3)}{unit} "
-                              f"(needs {rel} {_f(c['limit'], 3)}{unit}; {c['source'] or 'see summary.json'})"))
-        if len(failed) > 4:
-            lines.append(f"  ! ... {len(failed) - 4} more in summary.json")
+        lines.append("RESULT NOT VALID: checks failed (findings less certain; see summary.json validity):")
+        for c in failed[:5]:
+            msg = raw_checks.get(c["name"], {}).get("message")
+            if not msg:
+                unit = f" {c['unit']}" if c["unit"] else ""
+                rel = {"min": ">=", "max": "<="}.get(c["kind"] or "", "limit")
+                msg = (f"{str(c['name']).replace('_', ' ')}: {_f(c['value'], 3)}{unit} "
+                       f"(needs {rel} {_f(c['limit'], 3)}{unit}; {c['source'] or 'see summary.json'})")
+            lines.extend(textwrap.wrap(f"  ! {msg}", _WIDTH, subsequent_indent="    "))
+        if len(failed) > 5:
+            lines.append(f"  ! ... {len(failed) - 5} more in summary.json")
     elif ok is True:
-        lines.append("acquisition conditions: all validity limits met")
+        lines.append("validity: all checks passed (acquisition limits, registration, coverage, plausibility)")
+    cov = raw_checks.get("coverage")
+    if cov and cov.get("modules_without_data"):
+        lines.append(f"modules without usable pixels: {int(cov['modules_without_data']):,}")
     dx, dy = data.layout_shift_m
     if abs(dx) + abs(dy) > 0:
         lines.append(f"layout shifted onto the ortho by {dx:+.2f} m E, {dy:+.2f} m N")

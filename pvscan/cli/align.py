@@ -1,4 +1,4 @@
-"""``pvscan align FLIGHT.toml --out corrected_layout.gpkg``: fit the layout onto the ortho."""
+"""``pvscan align FLIGHT.toml --out corrected_layout.gpkg|.geojson``: fit the layout onto the ortho."""
 from __future__ import annotations
 
 import math
@@ -16,21 +16,25 @@ def _fmt(v: float, nd: int = 3) -> str:
 @click.command("align")
 @click.argument("flight", type=click.Path(dir_okay=False, path_type=Path))
 @click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
-              help="Corrected layout (GeoPackage, ortho CRS; written atomically).")
+              help="Corrected layout: .gpkg (GeoPackage, ortho CRS) or .geojson (RFC 7946 lon/lat); written "
+                   "atomically, without the internal module-frame columns.")
 @click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
               help="Pipeline settings (a tuned copy of pipelines/post_flight.toml); uses [register].")
 @click.option("--overwrite", is_flag=True, help="Replace an existing output file.")
 @handle_errors
 def align_cmd(flight, out_path, pipeline_path, overwrite):
-    """Measure the offset of the layout against the orthomosaic of FLIGHT.toml and write the
-    moved module footprints (with all their properties) to --out.
+    """Place the layout of FLIGHT.toml on its orthomosaic (shift, rotation, scale) and write
+    the placed module footprints (with the layout's properties) to --out.
 
-    Prints the shift of every block and the overall shift and confidence. The shift is
-    east/north in the ortho's CRS [m], to be added to the layout. Exit codes: 0 success,
-    1 bad input, 2 usage error, 3 internal error.
+    Prints the shift each correlation block measured, the placement used and the module
+    evidence of the drawn layout and of each proposal. The shift is east/north in the
+    ortho's CRS [m], added to the layout (at the site centre when rotated or scaled). Exit
+    codes: 0 success, 1 bad input or a layout that cannot be placed on the modules, 2 usage
+    error, 3 internal error.
     """
+    from pvscan.errors import RegistrationError
     from pvscan.io.manifest import load_flight
-    from pvscan.measure.register import align_flight
+    from pvscan.measure.register import align_layout
     from pvscan.io.settings import load_pipeline
 
     fl = load_flight(flight)
@@ -39,7 +43,7 @@ def align_cmd(flight, out_path, pipeline_path, overwrite):
          f"({len(fl.flight.orthos)} ortho tile(s))", err=True, level=1)
     progress = Progress()
     try:
-        reg, moved = align_flight(fl, settings, out_path, overwrite=overwrite, progress=progress)
+        reg, moved = align_layout(fl, settings, out_path, overwrite=overwrite, progress=progress)
     finally:
         progress.close()
 
@@ -50,11 +54,19 @@ def align_cmd(flight, out_path, pipeline_path, overwrite):
     for note in reg.notes:
         echo(f"note: {note}")
     mx, my = reg.measured_m
-    echo(f"measured shift: dx = {_fmt(mx)} m, dy = {_fmt(my)} m (east, north), "
+    echo(f"measured shift: dx = {_fmt(mx)} m, dy = {_fmt(my)} m (east, north; block correlation), "
          f"confidence {reg.confidence:.2f}")
-    if math.isfinite(reg.residual_rotation_deg):
-        echo(f"residual rotation {reg.residual_rotation_deg:+.4f} deg, scale {reg.residual_scale:.6f}")
+    drawn = reg.evidence.get("drawn") or {}
+    if drawn:
+        echo(f"layout as drawn: module evidence {drawn.get('evidence', float('nan')):.3f}, probe ratios "
+             f"{drawn.get('ratio_u', float('nan')):.2f}, {drawn.get('ratio_v', float('nan')):.2f}")
+    for k, p in enumerate(reg.evidence.get("proposals") or [], 1):
+        echo(f"proposal {k}: shift ({p['shift_m'][0]:+.3f}, {p['shift_m'][1]:+.3f}) m, rotation "
+             f"{p['rotation_deg']:+.4f} deg, scale {p['scale']:.6f}: module evidence {p['evidence']:.3f}, probe "
+             f"ratios {p['ratio_u']:.2f}, {p['ratio_v']:.2f}{'' if p['ok'] else ' (not on the modules)'}")
     sx, sy = reg.shift_m
     echo(f"applied shift:  dx = {_fmt(sx)} m, dy = {_fmt(sy)} m" + ("" if reg.applied else " (none)"))
     echo(reg.message)
+    if reg.status == "failed":
+        raise RegistrationError(f"{fl.flight.layout}: {reg.message}; nothing written")
     echo(f"wrote {out_path} ({len(moved)} modules)")

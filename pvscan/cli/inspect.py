@@ -16,16 +16,24 @@ from pvscan.cli._common import Progress, echo, handle_errors
               help="Pipeline settings (a tuned copy of pipelines/post_flight.toml).")
 @click.option("--overwrite", is_flag=True, help="Replace an existing result folder.")
 @click.option("--no-report", is_flag=True, help="Do not write report.html.")
+@click.option("--shift", "shift", type=float, nargs=2, default=None, metavar="DX DY",
+              help="Use this known layout offset (east, north in the ortho's CRS) [m] instead of the measured one.")
+@click.option("--accept-poor-registration", is_flag=True,
+              help="Run on when the layout cannot be placed on the modules; the result is marked invalid "
+                   "(validity.ok false) and every finding gets the lowest confidence.")
 @click.option("--scheduler", default="single", show_default=True,
               help="Where the block statistics run: single (this process), threads or processes "
                    "(local cores), or a Dask scheduler address tcp://host:port (workers must see the "
                    "flight's files by the same paths).")
 @handle_errors
-def inspect_cmd(flight, out_dir, pipeline_path, overwrite, no_report, scheduler):
+def inspect_cmd(flight, out_dir, pipeline_path, overwrite, no_report, scheduler, shift,
+                accept_poor_registration):
     """Find, classify and rank faulty modules of one flight (FLIGHT.toml) into --out DIR.
 
     Writes modules.geojson, anomalies.geojson, workorders.csv, pvscan.gpkg, summary.json and
-    report.html. Exit codes: 0 success, 1 bad input, 2 usage error, 3 internal error.
+    report.html. Exit codes: 0 success, 1 bad input or a layout that cannot be placed on the
+    ortho's modules (see --shift, --accept-poor-registration, `pvscan align`), 2 usage error,
+    3 internal error.
     """
     from pvscan.io.manifest import load_flight
     from pvscan.pipeline import inspect_flight
@@ -40,7 +48,8 @@ def inspect_cmd(flight, out_dir, pipeline_path, overwrite, no_report, scheduler)
     progress = Progress()
     try:
         result = inspect_flight(fl, settings, out_dir, overwrite=overwrite, report=not no_report,
-                                progress=progress, scheduler=scheduler)
+                                progress=progress, scheduler=scheduler, shift=tuple(shift) if shift else None,
+                                accept_poor_registration=accept_poor_registration)
     finally:
         progress.close()
     from pvscan.cli._summary import print_inspection_summary

@@ -26,19 +26,18 @@ from __future__ import annotations
 
 import logging
 import math
-import warnings
 from collections.abc import Mapping
-from dataclasses import asdict, dataclass, field
+from dataclasses import asdict, dataclass
 from datetime import datetime, timedelta, timezone
-from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
 from pvscan.physics import radiometry
-from pvscan.errors import ConditionsError, ValidityWarning
-from pvscan.io.resources import load_schema
+from pvscan.errors import ConditionsError
+from pvscan.measure.validity import Validity, _check, _factor, check_validity  # noqa: F401  (moved there)
+from pvscan.measure.weather import _PVSCAN_NAMES, WEATHER_COLUMNS, _parse_time, read_frames, read_weather_series  # noqa: F401
 
 __all__ = [
     "WEATHER_COLUMNS",
@@ -55,29 +54,6 @@ __all__ = [
 
 logger = logging.getLogger(__name__)
 
-_PVSCAN_NAMES = {
-    "poa_irradiance_w_m2": "poa_global",
-    "ambient_c": "temp_air",
-    "wind_m_s": "wind_speed",
-    "sky_c": "temp_sky",
-    "relative_humidity_pct": "relative_humidity",
-    "cloud_okta": "cloud_okta",
-}
-
-
-def _weather_columns() -> dict[str, tuple[str, bool, tuple[float, float], str]]:
-    schema = load_schema("weather.schema.json")
-    req = set(schema["required"])
-    return {
-        col: (_PVSCAN_NAMES[col], col in req, (float(p["minimum"]), float(p["maximum"])), p["unit"])
-        for col, p in schema["properties"].items()
-        if col != "time"
-    }
-
-
-#: Weather series columns: name -> (pvscan name, required, plausible range, unit), from
-#: ``schemas/weather.schema.json``.
-WEATHER_COLUMNS: dict[str, tuple[str, bool, tuple[float, float], str]] = _weather_columns()
 
 # spec attribute -> pvscan name
 _SPEC_KEYS = {
@@ -106,157 +82,6 @@ def _spec_get(spec, key):
 
 
 # ---------------------------------------------------------------------------------------
-# Reading
-# ---------------------------------------------------------------------------------------
-def _parse_time(text: str, where: str) -> datetime:
-    s = text.strip()
-    if not s:
-        raise ConditionsError(f"{where}: empty time")
-    try:
-        t = datetime.fromisoformat(s[:-1] + "+00:00" if s.endswith(("Z", "z")) else s)
-    except ValueError:
-        raise ConditionsError(f"{where}: time {text!r} is not ISO 8601") from None
-    if t.tzinfo is None or t.tzinfo.utcoffset(t) is None:
-        raise ConditionsError(f"{where}: time {text!r} has no UTC offset (write e.g. +02:00 or Z)")
-    return t.astimezone(timezone.utc)
-
-
-def read_weather_series(path) -> pd.DataFrame:
-    """Read a weather series (CSV) recorded during the flight.
-
-    Columns: ``time`` (ISO 8601 with a UTC offset), ``poa_irradiance_w_m2`` [W/m2],
-    ``ambient_c`` [degC], ``wind_m_s`` [m/s]; optional ``sky_c`` [degC],
-    ``relative_humidity_pct`` [%], ``cloud_okta`` [okta]. Other columns are ignored. Empty
-    cells are gaps (interpolated over); text that is not a number is an error.
-
-    Parameters
-    ----------
-    path : path-like
-        The CSV file.
-
-    Returns
-    -------
-    pandas.DataFrame
-        Index: tz-aware UTC times, sorted, named ``time``. Columns: the file's weather
-        columns as float. ``attrs["source"]`` holds the path.
-
-    Raises
-    ------
-    ConditionsError
-        Missing file or column, an unparsable value, a time without offset, a duplicated
-        time, a value outside its plausible range, or a column without any value; the
-        message names the file, column and row (1 = first data row; line = row + 1).
-    """
-    path = Path(path)
-    try:
-        raw = pd.read_csv(path, dtype=str, keep_default_na=False, skipinitialspace=True, encoding="utf-8-sig")
-    except FileNotFoundError:
-        raise ConditionsError(f"{path}: weather series not found") from None
-    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as exc:
-        raise ConditionsError(f"{path}: not a readable CSV: {str(exc).splitlines()[0]}") from None
-    except OSError as exc:
-        raise ConditionsError(f"{path}: cannot read: {exc.strerror}") from None
-    raw.columns = [str(c).strip() for c in raw.columns]
-    for col in ["time"] + [c for c, (_, req, _, _) in WEATHER_COLUMNS.items() if req]:
-        if col not in raw.columns:
-            raise ConditionsError(f"{path}: missing column {col!r} (have: {', '.join(raw.columns)})")
-    if len(raw) == 0:
-        raise ConditionsError(f"{path}: no data rows")
-    times = [_parse_time(v, f"{path}: column 'time', row {i + 1} (line {i + 2})") for i, v in enumerate(raw["time"])]
-    index = pd.DatetimeIndex(times, name="time").tz_convert("UTC")
-    data = {}
-    for col, (_, _, (lo, hi), unit) in WEATHER_COLUMNS.items():
-        if col not in raw.columns:
-            continue
-        text = raw[col].astype(str).str.strip()
-        vals = pd.to_numeric(text.where(text != ""), errors="coerce").to_numpy(dtype=float)
-        bad = np.flatnonzero(np.isnan(vals) & (text != "").to_numpy() | np.isinf(vals))
-        if bad.size:
-            i = int(bad[0])
-            raise ConditionsError(f"{path}: column {col!r}, row {i + 1} (line {i + 2}): {raw[col].iloc[i]!r} is not a number")
-        with np.errstate(invalid="ignore"):
-            out = np.flatnonzero((vals < lo) | (vals > hi))
-        if out.size:
-            i = int(out[0])
-            raise ConditionsError(
-                f"{path}: column {col!r}, row {i + 1} (line {i + 2}): {vals[i]:g} {unit} outside {lo:g}..{hi:g}")
-        if np.all(np.isnan(vals)):
-            raise ConditionsError(f"{path}: column {col!r} has no values")
-        data[col] = vals
-    df = pd.DataFrame(data, index=index)
-    dup = index.duplicated(keep=False)
-    if dup.any():
-        rows = np.flatnonzero(dup)[:2] + 1
-        raise ConditionsError(f"{path}: column 'time': rows {rows[0]} and {rows[1]} have the same time {index[rows[0] - 1].isoformat()}")
-    if not index.is_monotonic_increasing:
-        logger.info("%s: times not in order; sorted", path)
-        df = df.sort_index()
-    df.attrs["source"] = str(path)
-    return df
-
-
-def read_frames(path, crs) -> "geopandas.GeoDataFrame":  # noqa: F821
-    """Read the footprints of the camera frames, each with the time it was taken.
-
-    Parameters
-    ----------
-    path : path-like
-        GeoJSON (RFC 7946 lon/lat, or with a ``crs`` member), GeoPackage or Shapefile of
-        polygons with a ``time`` property (ISO 8601 with a UTC offset); an optional
-        ``frame_id`` (or ``frame``, ``id``) property.
-    crs : pyproj.CRS or str
-        Target CRS (the ortho's, projected in metres).
-
-    Returns
-    -------
-    geopandas.GeoDataFrame
-        Columns ``frame_id`` (str), ``time`` (tz-aware UTC), ``cx``, ``cy`` (footprint
-        centroid [m]), ``geometry``; in ``crs``.
-
-    Raises
-    ------
-    ConditionsError
-        Missing or unreadable file, no ``time`` column, a time without offset or not ISO
-        8601, a missing or empty geometry; the message names the file and feature.
-    """
-    import geopandas as gpd
-
-    path = Path(path)
-    if not path.exists():
-        raise ConditionsError(f"{path}: frames file not found")
-    try:
-        gdf = gpd.read_file(path, engine="pyogrio", datetime_as_string=True)
-    except Exception as exc:  # pyogrio/GDAL raise their own families
-        raise ConditionsError(f"{path}: cannot read frames: {str(exc).splitlines()[0]}") from None
-    if "time" not in gdf.columns:
-        raise ConditionsError(f"{path}: frames have no 'time' property")
-    if len(gdf) == 0:
-        raise ConditionsError(f"{path}: no frames")
-    if gdf.crs is None:
-        raise ConditionsError(f"{path}: frames have no CRS")
-    id_col = next((c for c in ("frame_id", "frame", "id") if c in gdf.columns), None)
-    ids = gdf[id_col].astype(str).tolist() if id_col else [str(i) for i in range(len(gdf))]
-    times = []
-    for i, (fid, t, g) in enumerate(zip(ids, gdf["time"], gdf.geometry)):
-        where = f"{path}: frame {fid} (feature {i})"
-        if g is None or g.is_empty:
-            raise ConditionsError(f"{where}: missing or empty geometry")
-        if g.geom_type not in ("Polygon", "MultiPolygon"):
-            raise ConditionsError(f"{where}: geometry is {g.geom_type}, expected a polygon")
-        if t is None or (isinstance(t, float) and math.isnan(t)):
-            raise ConditionsError(f"{where}: missing time")
-        times.append(_parse_time(str(t), where))
-    out = gpd.GeoDataFrame(
-        {"frame_id": ids, "time": pd.DatetimeIndex(times).tz_convert("UTC")},
-        geometry=gdf.geometry.values,
-        crs=gdf.crs,
-    ).to_crs(crs)
-    c = out.geometry.centroid
-    out["cx"] = c.x.to_numpy()
-    out["cy"] = c.y.to_numpy()
-    return out
-
-
 # ---------------------------------------------------------------------------------------
 # Flight conditions
 # ---------------------------------------------------------------------------------------
@@ -624,147 +449,6 @@ def module_conditions(modules, spec, start, end, series: pd.DataFrame | None = N
             out["temp_sky"] = sky
     cols = ["time", "poa_global", "temp_air", "wind_speed", "temp_sky", "relative_humidity", "time_source", "frame_id"]
     return out[cols]
-
-
-# ---------------------------------------------------------------------------------------
-# Validity
-# ---------------------------------------------------------------------------------------
-@dataclass(frozen=True)
-class Validity:
-    """Acquisition validity of a flight.
-
-    Attributes
-    ----------
-    checks : tuple of dict
-        One per check: ``name``, ``value``, ``limit``, ``kind`` (``"min"`` or ``"max"``),
-        ``unit``, ``passed`` (None when the value is unknown), ``source``.
-    confidence_factor : float
-        0..1; 1 when every known check passes. Each failed check multiplies it by how far
-        the value is from its limit (``value/limit`` for a minimum, ``limit/value`` for a
-        maximum), and the product is floored at ``confidence_floor`` of the pipeline. A
-        design choice: a flight at 540 W/m2 (limit 600) keeps 0.9 of its confidence.
-    """
-
-    checks: tuple = field(default_factory=tuple)
-    confidence_factor: float = 1.0
-
-    @property
-    def ok(self) -> bool:
-        """True when no known check failed."""
-        return not self.failed
-
-    @property
-    def failed(self) -> list[str]:
-        """Names of the failed checks."""
-        return [c["name"] for c in self.checks if c["passed"] is False]
-
-    def to_dict(self) -> dict:
-        """JSON-ready mapping for summary.json."""
-        return {
-            "ok": self.ok,
-            "failed": self.failed,
-            "confidence_factor": self.confidence_factor,
-            "checks": [dict(c) for c in self.checks],
-            "note": ("Acquisition limits of IEC TS 62446-3 for outdoor thermography; a failed "
-                     "check lowers the confidence of every finding of this flight."),
-        }
-
-
-def _check(name, value, limit, kind, unit, source):
-    if value is None or (isinstance(value, float) and not math.isfinite(value)):
-        passed = None
-        value = None
-    else:
-        value = float(value)
-        passed = bool(value >= limit) if kind == "min" else bool(value <= limit)
-    return {"name": name, "value": value, "limit": float(limit), "kind": kind, "unit": unit,
-            "passed": passed, "source": source}
-
-
-def _factor(c) -> float:
-    if c["passed"] is not False:
-        return 1.0
-    v, lim = c["value"], c["limit"]
-    if c["kind"] == "min":
-        return max(v, 0.0) / lim if lim > 0 else 0.0
-    return lim / v if v > 0 else 0.0
-
-
-def check_validity(conditions: FlightConditions, module_conditions: pd.DataFrame | None = None, *,
-                   gsd_m: float | None = None, module_spec=None, cell_size_m: float | None = None,
-                   cloud_okta: float | None = None, settings: Mapping | None = None) -> Validity:
-    """Check a flight against the acquisition conditions for outdoor thermography.
-
-    Checks (limits from the ``[conditions]`` pipeline section, each with its source):
-
-    - ``irradiance_min``: lowest plane-of-array irradiance during the flight (and at any
-      module's imaging time) >= ``min_irradiance_w_m2`` (600 W/m2, IEC TS 62446-3);
-    - ``wind_max``: highest wind speed <= ``max_wind_m_s`` (28 km/h ~ 4 Bft, IEC TS
-      62446-3, from memory);
-    - ``irradiance_change``: (max - min) / mean of the irradiance during the flight <=
-      ``max_irradiance_change_pct`` (from memory);
-    - ``cloud_cover``: cloud cover <= ``max_cloud_okta`` (IEC TS 62446-3, from memory),
-      when known;
-    - ``pixels_per_cell``: cell edge / ground sampling distance >= ``min_px_per_cell``
-      (detailed inspection, from memory), when the GSD is known.
-
-    Parameters
-    ----------
-    conditions : FlightConditions
-        From :func:`flight_conditions`.
-    module_conditions : pandas.DataFrame, optional
-        From :func:`module_conditions`; its lowest ``poa_global`` and highest
-        ``wind_speed`` enter the checks too.
-    gsd_m : float, optional
-        Ground sampling distance of the ortho [m/px].
-    module_spec : pvscan.io.manifest.ModuleSpec, optional
-        For the cell size: the shorter of ``width_m / n_across`` and ``length_m / n_along``.
-    cell_size_m : float, optional
-        Cell edge [m]; overrides ``module_spec``.
-    cloud_okta : float, optional
-        Cloud cover [okta]; overrides the series.
-    settings : Mapping, optional
-        The ``[conditions]`` pipeline section.
-
-    Returns
-    -------
-    Validity
-        A failed check is logged (level WARNING); a :class:`~pvscan.errors.ValidityWarning`
-        is issued too when the section's ``warn`` is true (default false: the result
-        records every check).
-    """
-    st = _settings(settings)
-    poa_min = conditions.poa_global_min
-    wind_max = conditions.wind_speed_max
-    if module_conditions is not None and len(module_conditions):
-        poa_min = min(poa_min, float(np.nanmin(module_conditions["poa_global"].to_numpy(float))))
-        wind_max = max(wind_max, float(np.nanmax(module_conditions["wind_speed"].to_numpy(float))))
-    if cell_size_m is None and module_spec is not None:
-        cell_size_m = min(module_spec.width_m / module_spec.n_across, module_spec.length_m / module_spec.n_along)
-    px = cell_size_m / gsd_m if (cell_size_m is not None and gsd_m) else None
-    cloud = cloud_okta if cloud_okta is not None else conditions.cloud_okta
-    checks = (
-        _check("irradiance_min", poa_min, st["min_irradiance_w_m2"], "min", "W/m2", "IEC TS 62446-3"),
-        _check("wind_max", wind_max, st["max_wind_m_s"], "max", "m/s", "IEC TS 62446-3 (from memory)"),
-        _check("irradiance_change", conditions.poa_global_change_pct, st["max_irradiance_change_pct"], "max", "%",
-               "from memory"),
-        _check("cloud_cover", cloud, st["max_cloud_okta"], "max", "okta", "IEC TS 62446-3 (from memory)"),
-        _check("pixels_per_cell", px, st["min_px_per_cell"], "min", "px",
-               "IEC TS 62446-3 detailed inspection (from memory)"),
-    )
-    factor = 1.0
-    for c in checks:
-        factor *= _factor(c)
-    if any(c["passed"] is False for c in checks):
-        factor = max(factor, float(st["confidence_floor"]))
-    v = Validity(checks=checks, confidence_factor=float(factor))
-    if not v.ok:
-        msg = "; ".join(f"{c['name']} {c['value']:.4g} {c['unit']} (limit {c['limit']:g})"
-                        for c in checks if c["passed"] is False)
-        logger.warning("flight outside acquisition limits: %s", msg)
-        if st.get("warn", False):
-            warnings.warn(f"flight outside acquisition limits: {msg}", ValidityWarning, stacklevel=2)
-    return v
 
 
 # ---------------------------------------------------------------------------------------

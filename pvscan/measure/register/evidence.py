@@ -1,0 +1,485 @@
+"""Module-level evidence of where the layout sits on the ortho.
+
+The correlation of :mod:`pvscan.measure.register.estimate` proposes where the layout
+belongs; this module *judges* a proposal on what the image shows inside the module
+footprints, the place the measurements will be taken.
+
+Sunlit glass is the most uniform surface of a PV plant at the scale of a module: inside
+one module the temperature varies by a few tenths of a kelvin from cell to cell, while the
+module's outline is marked: the aluminium frame and the gap to the next module are cooler
+lines, the table edge meets ground or shadow. A footprint that is off its module takes in
+some of those lines (its inside spreads) and its outline falls where the image has no line
+(its outline contrast drops). The evidence of one footprint is therefore
+
+    ratio = spread of the pixels inside (inset) / |mean of the outline band - mean inside|
+
+(lower is better, whatever the sign of the contrast), and a footprint whose mean is far
+from the median footprint's reads no glass (ground at a table end, in the gap between
+tables: where a placement one module pitch off along a row puts some footprints) and counts
+as featureless (ratio 1). The evidence of a placement is the mean over a sample of modules.
+Smooth ground or a shadow as warm as the glass has a low spread but no outline at the
+footprint's edge; a placement one pitch off along a row is told by the table ends.
+
+This uses only the module's own structure: frame lines and gaps (along and across the
+rows) and table edges. A shadow that is as warm as the glass shows no contrast at all and
+cannot pull a footprint; a footprint shifted toward the shadowed side of a table is
+penalised less than one shifted toward the sunlit side, which is why the quality test
+(:func:`placement_quality`) weights its probes by the sun's side (pvlib's solar
+position from the flight's time and place).
+
+A placement is a similarity transform of the layout about a centre ``c``:
+``p' = c + s R(theta) (p - c) + t``, plus optional per-module translations (local
+refinement). The pixels are sampled once (one windowed read per sampled module, at the
+ortho's resolution or reduced by an integer factor), so each evaluation is a few
+vectorised array operations.
+"""
+from __future__ import annotations
+
+import logging
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+from rasterio.windows import Window
+
+logger = logging.getLogger(__name__)
+
+__all__ = ["Placement", "ModuleSample", "sample_modules", "module_spread", "evidence", "placement_quality",
+           "sun_vector", "refine_placement"]
+
+
+@dataclass(frozen=True)
+class Placement:
+    """A similarity transform of the layout: ``p' = c + s R(theta) (p - c) + t``.
+
+    Attributes
+    ----------
+    tx, ty : float
+        Translation, east and north [m].
+    theta_deg : float
+        Rotation, counter-clockwise on the map [deg].
+    scale : float
+        Scale [-] (1 = none).
+    cx, cy : float
+        Centre of rotation and scale (the layout's centre) [m].
+    """
+
+    tx: float = 0.0
+    ty: float = 0.0
+    theta_deg: float = 0.0
+    scale: float = 1.0
+    cx: float = 0.0
+    cy: float = 0.0
+
+    @property
+    def matrix(self) -> np.ndarray:
+        """The 2 x 2 linear part ``s R(theta)``."""
+        t = math.radians(self.theta_deg)
+        c, s = math.cos(t) * self.scale, math.sin(t) * self.scale
+        return np.array([[c, -s], [s, c]])
+
+    def apply(self, x, y) -> tuple[np.ndarray, np.ndarray]:
+        """Transformed map points [m]."""
+        m = self.matrix
+        x = np.asarray(x, float) - self.cx
+        y = np.asarray(y, float) - self.cy
+        return (self.cx + m[0, 0] * x + m[0, 1] * y + self.tx, self.cy + m[1, 0] * x + m[1, 1] * y + self.ty)
+
+    def displacement_max(self, bounds) -> float:
+        """Largest displacement of the corners of ``bounds`` (minx, miny, maxx, maxy) [m]."""
+        xs = np.array([bounds[0], bounds[2], bounds[2], bounds[0]], float)
+        ys = np.array([bounds[1], bounds[1], bounds[3], bounds[3]], float)
+        px, py = self.apply(xs, ys)
+        return float(np.max(np.hypot(px - xs, py - ys)))
+
+    def moved(self, **kw) -> Placement:
+        """A copy with some fields replaced."""
+        d = {k: getattr(self, k) for k in ("tx", "ty", "theta_deg", "scale", "cx", "cy")}
+        d.update(kw)
+        return Placement(**d)
+
+    def is_identity(self) -> bool:
+        return self.tx == 0.0 and self.ty == 0.0 and self.theta_deg == 0.0 and self.scale == 1.0
+
+    def shift_model(self) -> tuple[float, float, float, float, float, float]:
+        """The shift field ``(tx, ty, a, b, x0, y0)`` of :class:`Registration` (shift at
+        ``(x, y)`` = ``(tx + a dx - b dy, ty + b dx + a dy)``, ``d = (x, y) - (x0, y0)``)."""
+        m = self.matrix
+        return (self.tx, self.ty, float(m[0, 0] - 1.0), float(m[1, 0]), self.cx, self.cy)
+
+    def to_dict(self) -> dict:
+        return {"shift_m": [round(self.tx, 4), round(self.ty, 4)], "rotation_deg": round(self.theta_deg, 5),
+                "scale": round(self.scale, 7), "centre": [round(self.cx, 3), round(self.cy, 3)]}
+
+
+@dataclass
+class ModuleSample:
+    """Pixels around a sample of modules, read once.
+
+    Attributes
+    ----------
+    index : numpy.ndarray
+        Row of each sampled module in the modules frame (k,).
+    values : numpy.ndarray
+        (k, S, S) float32 apparent temperature [degC], each module's window centred on
+        the module's drawn centre, NaN where invalid or outside the ortho.
+    x0, y0 : numpy.ndarray
+        Map coordinates of the centre of pixel (0, 0) of each window [m].
+    gx, gy : float
+        Pixel step along columns (east) and rows (usually negative: north-up) [m].
+    frames : numpy.ndarray
+        (k, 6) module frames ``fx0, fy0, fux, fuy, fvx, fvy`` as drawn [m].
+    table : numpy.ndarray
+        Table id of each sampled module (k,).
+    """
+
+    index: np.ndarray
+    values: np.ndarray
+    x0: np.ndarray
+    y0: np.ndarray
+    gx: float
+    gy: float
+    frames: np.ndarray
+    table: np.ndarray = field(default_factory=lambda: np.zeros(0, object))
+    centred: np.ndarray | None = None
+    ref: np.ndarray = field(default_factory=lambda: np.zeros(0))
+
+    def __post_init__(self) -> None:
+        # values minus each window's median (float32), so the spread sums stay exact
+        k = len(self.index)
+        if self.centred is None and k:
+            with _quiet():
+                ref = np.nanmedian(self.values.reshape(k, -1), axis=1)
+            ref = np.where(np.isfinite(ref), ref, 0.0).astype(np.float32)
+            self.centred = self.values - ref[:, None, None]
+            self.ref = ref.astype(np.float64)
+
+    def __len__(self) -> int:
+        return len(self.index)
+
+
+def _frames(modules) -> np.ndarray:
+    cols = ["fx0", "fy0", "fux", "fuy", "fvx", "fvy"]
+    if all(c in modules.columns for c in cols):
+        return modules[cols].to_numpy(dtype=float)
+    raise KeyError("modules need the frame columns fx0, fy0, fux, fuy, fvx, fvy")
+
+
+def sample_modules(orthos: Any, modules, *, n: int, margin_m: float, reduce: int = 1,
+                   seed: int = 0) -> ModuleSample:
+    """Read the pixels around up to ``n`` modules spread over the site.
+
+    Modules are taken in a spatially even order (a shuffled grid of the site cut into about
+    ``n`` cells, one module per cell; deterministic for a ``seed``). Each is read as one
+    square window centred on its drawn centre, large enough for the module and
+    ``margin_m`` around it, and reduced by ``reduce`` x ``reduce`` averaging (NaN-aware).
+
+    Parameters
+    ----------
+    orthos : OrthoSet
+    modules : geopandas.GeoDataFrame
+        Modules with frame columns, in the ortho CRS.
+    n : int
+        Largest number of modules sampled.
+    margin_m : float
+        Margin read around each module [m]: the largest displacement the sample can judge.
+    reduce : int
+        Integer reduction factor of the pixels [-].
+    seed : int
+        Seed of the spatial sampling.
+    """
+    fr = _frames(modules)
+    cx = fr[:, 0] + 0.5 * (fr[:, 2] + fr[:, 4])
+    cy = fr[:, 1] + 0.5 * (fr[:, 3] + fr[:, 5])
+    ok = np.isfinite(cx) & np.isfinite(cy)
+    idx_all = np.nonzero(ok)[0]
+    if len(idx_all) > n:
+        # one module per cell of a grid of about n cells over the site
+        x0, x1, y0, y1 = cx[ok].min(), cx[ok].max(), cy[ok].min(), cy[ok].max()
+        side = math.sqrt(max((x1 - x0) * (y1 - y0), 1.0) / n)
+        key = np.floor((cx[idx_all] - x0) / side).astype(np.int64) * 1_000_003 + np.floor(
+            (cy[idx_all] - y0) / side).astype(np.int64)
+        rng = np.random.default_rng(seed)
+        perm = rng.permutation(len(idx_all))
+        _, first = np.unique(key[perm], return_index=True)
+        chosen = idx_all[perm[first]]
+        if len(chosen) > n:
+            chosen = rng.choice(chosen, n, replace=False)
+        idx_all = np.sort(chosen)
+    tiles = list(orthos.tiles)
+    t0 = tiles[0].transform
+    gsd = abs(float(t0.a))
+    diag = float(np.nanmax(np.hypot(fr[idx_all, 2] + fr[idx_all, 4], fr[idx_all, 3] + fr[idx_all, 5]))) if len(
+        idx_all) else 0.0
+    side_px = int(math.ceil((diag + 2.0 * margin_m) / (gsd * reduce))) * reduce
+    vals = np.full((len(idx_all), side_px // reduce, side_px // reduce), np.nan, np.float32)
+    xs0 = np.zeros(len(idx_all))
+    ys0 = np.zeros(len(idx_all))
+    for k, i in enumerate(idx_all):
+        ti = 0
+        for j, t in enumerate(tiles):
+            b = t.bounds
+            if b.left <= cx[i] <= b.right and b.bottom <= cy[i] <= b.top:
+                ti = j
+                break
+        tr = tiles[ti].transform
+        col, row = ~tr * (cx[i], cy[i])
+        c0 = int(round(col - side_px / 2.0))
+        r0 = int(round(row - side_px / 2.0))
+        a = orthos.read(ti, Window(c0, r0, side_px, side_px)).astype(np.float32)
+        if reduce > 1:
+            a = a.reshape(side_px // reduce, reduce, side_px // reduce, reduce)
+            with np.errstate(invalid="ignore"), _quiet():
+                a = np.nanmean(a, axis=(1, 3))
+        vals[k] = a
+        px, py = tr * (c0 + reduce / 2.0, r0 + reduce / 2.0)
+        xs0[k], ys0[k] = px, py
+    table = modules["table_id"].to_numpy(dtype=object)[idx_all] if "table_id" in modules.columns else np.zeros(
+        len(idx_all), object)
+    return ModuleSample(index=idx_all, values=vals, x0=xs0, y0=ys0, gx=float(t0.a) * reduce,
+                        gy=float(t0.e) * reduce, frames=fr[idx_all], table=table)
+
+
+class _quiet:
+    def __enter__(self):
+        import warnings
+
+        self._w = warnings.catch_warnings()
+        self._w.__enter__()
+        warnings.simplefilter("ignore", RuntimeWarning)
+
+    def __exit__(self, *exc):
+        self._w.__exit__(*exc)
+
+
+def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float, inset_v: float,
+                  local: np.ndarray | None = None, min_pixels: int = 8, with_mean: bool = False,
+                  band_m: float | None = None, off_glass_k: float | None = None):
+    """Spread of the pixels inside each placed footprint: standard deviation [K], or with
+    ``band_m`` its ratio to the outline contrast [-] (NaN: too few pixels).
+
+    A pixel is inside when its centre, mapped back to the layout as drawn, has module-local
+    coordinates ``u`` in ``[inset_u, 1 - inset_u]`` and ``v`` in ``[inset_v, 1 - inset_v]``.
+
+    Parameters
+    ----------
+    local : numpy.ndarray, optional
+        (k, 2) translations added to each module after the placement [m].
+    band_m : float, optional
+        When given, the spread is divided by the contrast between the footprint and a band
+        of this half-width [m] along its outline (frame, gap, table edge: the module's own
+        outline; ground or shadow show no such line at a footprint's edge unless the
+        footprint sits on its module), so the result is a ratio [-].
+    off_glass_k : float, optional
+        With ``band_m``: a footprint whose mean is this far from the median of all the
+        footprints' means [K] (ground at a table end, a gap between tables: what a placement
+        one module pitch off along a row puts some footprints on) gets the ratio 1, that of
+        a featureless placement.
+    """
+    k = len(sample)
+    if k == 0:
+        return np.zeros(0)
+    minv = np.linalg.inv(placement.matrix)
+    fr = sample.frames
+    ox, oy, ux, uy, vx, vy = (fr[:, j] for j in range(6))
+    # layout point of a map point P: q = c + Minv (P - c - t - local)
+    tx = placement.tx + (local[:, 0] if local is not None else 0.0)
+    ty = placement.ty + (local[:, 1] if local is not None else 0.0)
+    out = []
+    for ax, ay in ((ux, uy), (vx, vy)):
+        n2 = ax * ax + ay * ay
+        # coordinate = ((q - o) . a) / |a|^2, q linear in P: coefficient vector Minv^T a
+        cxv = (minv[0, 0] * ax + minv[1, 0] * ay) / n2
+        cyv = (minv[0, 1] * ax + minv[1, 1] * ay) / n2
+        const = ((placement.cx - ox) * ax + (placement.cy - oy) * ay) / n2 - (
+            cxv * (placement.cx + tx) + cyv * (placement.cy + ty))
+        base = cxv * sample.x0 + cyv * sample.y0 + const
+        s = sample.values.shape[1]
+        j = np.arange(s, dtype=np.float32)
+        coord = (base[:, None, None].astype(np.float32) + (cxv * sample.gx)[:, None, None].astype(np.float32)
+                 * j[None, None, :] + (cyv * sample.gy)[:, None, None].astype(np.float32) * j[None, :, None])
+        out.append(coord)
+    u, v = out
+    inside = (u >= inset_u) & (u <= 1.0 - inset_u) & (v >= inset_v) & (v <= 1.0 - inset_v)
+    vals = sample.centred
+    assert vals is not None
+    inside &= np.isfinite(vals)
+    cnt = inside.sum(axis=(1, 2))
+    d = np.where(inside, vals, np.float32(0.0))
+    s1 = d.sum(axis=(1, 2), dtype=np.float64)
+    s2 = np.einsum("kij,kij->k", d, d, dtype=np.float64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        var = s2 / cnt - (s1 / cnt) ** 2
+    sd = np.sqrt(np.maximum(var, 0.0))
+    sd[cnt < min_pixels] = np.nan
+    if band_m is not None:
+        lu = np.hypot(fr[:, 2], fr[:, 3]) * placement.scale
+        lv = np.hypot(fr[:, 4], fr[:, 5]) * placement.scale
+        bu = (band_m / lu)[:, None, None].astype(np.float32)
+        bv = (band_m / lv)[:, None, None].astype(np.float32)
+        in_u = (u >= -bu) & (u <= 1.0 + bu)
+        in_v = (v >= -bv) & (v <= 1.0 + bv)
+        band = ((((np.abs(u) <= bu) | (np.abs(u - 1.0) <= bu)) & in_v)
+                | (((np.abs(v) <= bv) | (np.abs(v - 1.0) <= bv)) & in_u))
+        band &= np.isfinite(vals)
+        nb = band.sum(axis=(1, 2))
+        sb = np.where(band, vals, np.float32(0.0)).sum(axis=(1, 2), dtype=np.float64)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            contrast = np.abs(sb / nb - s1 / cnt)
+        contrast[nb < min_pixels] = np.nan
+        sd = sd / np.maximum(contrast, 0.05)
+        if off_glass_k is not None:
+            with np.errstate(invalid="ignore", divide="ignore"):
+                m_in = s1 / cnt
+            ok_m = np.isfinite(m_in)
+            if ok_m.any():
+                off = ok_m & (np.abs(m_in - np.median(m_in[ok_m])) > off_glass_k)
+                sd[off] = 1.0
+    if with_mean:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = s1 / cnt + sample.ref
+        mean[cnt < min_pixels] = np.nan
+        return sd, mean
+    return sd
+
+
+def evidence(spread: np.ndarray) -> float:
+    """Evidence of a placement from the per-module values: their mean (lower is better)."""
+    s = np.asarray(spread, float)
+    s = s[np.isfinite(s)]
+    return float(np.mean(s)) if len(s) else float("nan")
+
+
+def sun_vector(lon: float, lat: float, when) -> tuple[float, float, float]:
+    """Unit vector toward the sun on the map (east, north) and its elevation [deg].
+
+    pvlib's solar position (NREL SPA) at ``when`` (aware datetime) and (lon, lat) [deg].
+    Returns (east, north, elevation_deg); (0, 0, elevation) when the sun is at the zenith.
+    """
+    import pandas as pd
+    import pvlib
+
+    sp = pvlib.solarposition.get_solarposition(pd.DatetimeIndex([pd.Timestamp(when)]), lat, lon)
+    az = math.radians(float(sp["azimuth"].iloc[0]))
+    el = float(sp["apparent_elevation"].iloc[0])
+    return math.sin(az), math.cos(az), el
+
+
+def _unit_axes(sample: ModuleSample) -> tuple[np.ndarray, np.ndarray]:
+    """Median unit vectors of the modules' long (u) and short (v) sides."""
+    fr = sample.frames
+    u = np.array([np.median(fr[:, 2]), np.median(fr[:, 3])])
+    v = np.array([np.median(fr[:, 4]), np.median(fr[:, 5])])
+    return u / max(np.hypot(*u), 1e-12), v / max(np.hypot(*v), 1e-12)
+
+
+def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, *,
+                      sun: tuple[float, float] | None = None, local: np.ndarray | None = None,
+                      expected_c: float | None = None) -> dict:
+    """How much better the placement is than the same placement moved a little.
+
+    The footprints are moved by ``evidence_probe_m`` both ways along the modules' long side
+    and both ways along their short side. Each probe's mean spread inside the footprints is
+    compared with the placement's: ``ratio = spread(placement) / spread(probe)`` (low when the footprints sit on their
+    modules; near 1 when the image does not show modules where they are placed). The two
+    probes of one axis are averaged with weights: a probe moving the footprints away from
+    the sun (onto the shadowed side, which may look like glass) counts
+    ``evidence_shadow_weight`` of one moving toward it.
+
+    Uniform ground between rows can look as even as glass; when the apparent temperature of
+    sunlit glass at the flight's conditions is known (``expected_c``), the median of the
+    footprints' mean values must also lie within ``evidence_glass_max_k`` of it.
+
+    Returns
+    -------
+    dict
+        ``evidence`` (E of the placement) [-], ``ratio_u``, ``ratio_v`` [-],
+        ``glass_error_k`` [K] (NaN when unknown) and ``ok`` (both ratios at most
+        ``evidence_max_ratio``, and the glass temperature within its limit when known).
+    """
+    kw = {"inset_u": float(cfg["evidence_inset"]), "inset_v": float(cfg["evidence_inset"]),
+          "band_m": float(cfg["evidence_band_m"]), "off_glass_k": float(cfg["evidence_off_glass_k"])}
+    sd0, mean0 = module_spread(sample, placement, local=local, with_mean=True, **kw)
+    e0 = evidence(sd0)
+    # the probes compare plain spreads: the outline contrast that guides the search (and
+    # keeps it off smooth ground) also grows when a footprint slides onto a table edge
+    sp0 = evidence(module_spread(sample, placement, local=local, inset_u=kw["inset_u"], inset_v=kw["inset_v"]))
+    glass = float(np.nanmedian(mean0)) if np.isfinite(mean0).any() else float("nan")
+    d = float(cfg["evidence_probe_m"])
+    wsh = float(cfg["evidence_shadow_weight"])
+    out: dict[str, Any] = {"evidence": e0}
+    for name, ax in zip(("u", "v"), _unit_axes(sample)):
+        num, den = 0.0, 0.0
+        for sgn in (1.0, -1.0):
+            step = sgn * ax * d
+            p = placement.moved(tx=placement.tx + step[0], ty=placement.ty + step[1])
+            e = evidence(module_spread(sample, p, local=local, inset_u=kw["inset_u"], inset_v=kw["inset_v"]))
+            # away from the sun: onto the table's shadow, which may look like glass
+            w = wsh if (sun is not None and float(step @ np.asarray(sun[:2])) < 0) else 1.0
+            if math.isfinite(e):
+                num += w * e
+                den += w
+        e_probe = num / den if den > 0 else float("nan")
+        out[f"ratio_{name}"] = sp0 / e_probe if (math.isfinite(e_probe) and e_probe > 0) else float("nan")
+    lim = float(cfg["evidence_max_ratio"])
+    known = expected_c is not None and math.isfinite(float(expected_c))
+    out["glass_error_k"] = glass - float(expected_c) if known else float("nan")
+    glass_ok = (not known) or abs(out["glass_error_k"]) <= float(cfg["evidence_glass_max_k"])
+    out["ok"] = bool(all(math.isfinite(out[f"ratio_{a}"]) and out[f"ratio_{a}"] <= lim for a in ("u", "v"))
+                     and math.isfinite(e0) and glass_ok)
+    return out
+
+
+def refine_placement(sample: ModuleSample, start: Placement, cfg: Mapping, *, rotate: bool = True,
+                     scale: bool = True) -> tuple[Placement, float]:
+    """Pattern search (Hooke and Jeeves 1961) of the placement minimising the evidence.
+
+    Steps start at ``evidence_step_m`` (translation), ``evidence_step_deg`` (rotation) and
+    ``evidence_step_scale`` and are halved until below an eighth of that; rotation and scale
+    are searched only when asked. Returns the best placement and its evidence [-].
+
+    References
+    ----------
+    .. [1] R. Hooke and T. A. Jeeves, "'Direct search' solution of numerical and statistical
+       problems", Journal of the ACM 8(2), 212-229, 1961. doi:10.1145/321062.321069
+    """
+    kw = {"inset_u": float(cfg["evidence_inset"]), "inset_v": float(cfg["evidence_inset"]),
+          "band_m": float(cfg["evidence_band_m"]), "off_glass_k": float(cfg["evidence_off_glass_k"])}
+
+    def f(p: Placement) -> float:
+        e = evidence(module_spread(sample, p, **kw))
+        return e if math.isfinite(e) else float("inf")
+
+    steps = {"tx": float(cfg["evidence_step_m"]), "ty": float(cfg["evidence_step_m"])}
+    if rotate:
+        steps["theta_deg"] = float(cfg["evidence_step_deg"])
+    if scale:
+        steps["scale"] = float(cfg["evidence_step_scale"])
+    lim_shift = float(cfg["max_shift_m"])
+    lim_rot = float(cfg["max_rotation_deg"])
+    lim_scale = float(cfg["max_scale_error"])
+    best, fb = start, f(start)
+    floor = {k: v / 8.0 for k, v in steps.items()}
+    for _ in range(200):
+        improved = False
+        for key, st in steps.items():
+            for sgn in (1.0, -1.0):
+                val = getattr(best, key) + sgn * st
+                if key in ("tx", "ty") and abs(val) > lim_shift + 1e-9:
+                    continue
+                if key == "theta_deg" and abs(val) > lim_rot + 1e-9:
+                    continue
+                if key == "scale" and abs(val - 1.0) > lim_scale + 1e-12:
+                    continue
+                p = best.moved(**{key: val})
+                fp = f(p)
+                if fp < fb - 1e-9:
+                    best, fb, improved = p, fp, True
+                    break
+        if not improved:
+            if all(steps[k] <= floor[k] * 1.0001 for k in steps):
+                break
+            steps = {k: max(v / 2.0, floor[k]) for k, v in steps.items()}
+    return best, fb

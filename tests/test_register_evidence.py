@@ -1,0 +1,165 @@
+"""Co-registration judged on module evidence (pvscan.measure.register.fit / evidence).
+
+Flights are simulated (pvscan.simulate) and their layout file is turned, scaled or shifted
+about the site centre with shapely.affinity; the truth stays where the modules are in the
+ortho, so the correction that puts the layout back is known exactly. The seed comes from
+PVSCAN_TEST_SEED (any seed must pass).
+"""
+from __future__ import annotations
+
+import math
+import os
+
+import geopandas as gpd
+import numpy as np
+import pytest
+import shapely.affinity as aff
+
+from pvscan.io.layout import read_layout
+from pvscan.io.manifest import load_flight
+from pvscan.io.ortho import open_orthos
+from pvscan.io.settings import load_pipeline
+from pvscan.measure.register import Placement, apply_placement, expected_module_apparent_c, register_layout
+from pvscan.measure.register.evidence import sun_vector
+from pvscan.simulate import simulate_flight
+
+SEED = int(os.environ.get("PVSCAN_TEST_SEED", "18"))
+#: "within 3 cm of none" on a layout that is right (the tolerance a correct layout must keep).
+NO_SHIFT_TOL_M = 0.03
+
+
+def _fixed(**over):
+    sc = {"site": {"name": "Register test site (invented)", "lon": -4.05, "lat": 39.23},
+          "flight": {"start": "2026-06-14T10:40:00+02:00"},
+          "array": {"kind": "fixed", "table_rows": 4, "tables_per_row": 2, "rows": 2, "cols": 16,
+                    "row_pitch_m": 7.0, "rotation_deg": 3.0, "mount_height_m": 0.8},
+          "layout": {"offset_m": [0.0, 0.0]}}
+    for k, v in over.items():
+        sc.setdefault(k, {}).update(v)
+    return sc
+
+
+def _tracker_hot():
+    """Flat single-axis tracker rows raised 1.8 m over hot bare ground, early afternoon."""
+    return {"site": {"name": "Tracker test field (invented)", "lon": -4.05, "lat": 39.23},
+            "flight": {"start": "2026-06-14T14:10:00+02:00"},
+            "array": {"kind": "tracker", "facing": "west", "table_rows": 6, "tables_per_row": 2, "rows": 1,
+                      "cols": 20, "tilt_deg": 5.0, "row_pitch_m": 5.5, "modules_per_string": 10,
+                      "mount_height_m": 1.8},
+            "ground": {"sun_rise_k": 32.0, "shade_rise_k": 2.0},
+            "layout": {"offset_m": [0.0, 0.0]},
+            "conditions": {"poa_irradiance_w_m2": 900.0, "ambient_c": 30.0, "wind_m_s": 1.5}}
+
+
+def _transform_layout(flight_dir, rot_deg=0.0, scale=1.0, dx=0.0, dy=0.0):
+    """Turn / scale / shift the layout file about the centre of its modules (in UTM)."""
+    lay = next(p for p in flight_dir.iterdir() if p.name.startswith("layout."))
+    g = gpd.read_file(lay)
+    utm = g.estimate_utm_crs()
+    gu = g.to_crs(utm)
+    c = gu.union_all().centroid
+    geo = gu.geometry.apply(lambda p: aff.translate(aff.scale(aff.rotate(p, rot_deg, origin=c), scale, scale,
+                                                                  origin=c), dx, dy))
+    lay.unlink()
+    gu.set_geometry(geo).to_crs(g.crs).to_file(lay, driver="GeoJSON")
+
+
+def _register(flight_dir, **kw):
+    fl = load_flight(flight_dir / "flight.toml")
+    st = load_pipeline()
+    with open_orthos(fl.flight.orthos, fl.ortho) as o:
+        mods = read_layout(fl, o.crs)
+        c = mods.to_crs(4326).union_all().centroid
+        sun = sun_vector(c.x, c.y, fl.flight.start)
+        expected = expected_module_apparent_c(fl, st, strict=False)
+        reg = register_layout(o, mods, st, sun=sun, expected_apparent_c=expected, **kw)
+    return reg, mods
+
+
+def _truth_residual_m(flight_dir, reg, mods) -> float:
+    """Largest distance between a module's placed centre and where the truth has it [m]."""
+    truth = gpd.read_file(flight_dir / "truth.geojson").to_crs(mods.crs).set_index("module_id")
+    placed = apply_placement(mods, reg.placement if reg.applied else None).set_index("module_id")
+    tc = truth.loc[placed.index].geometry.centroid
+    pc = placed.geometry.centroid
+    return float(np.max(np.hypot(tc.x.to_numpy() - pc.x.to_numpy(), tc.y.to_numpy() - pc.y.to_numpy())))
+
+
+@pytest.fixture(scope="module")
+def fixed_flight(tmp_path_factory):
+    d = tmp_path_factory.mktemp("fixed") / "flight"
+    simulate_flight(_fixed(), d, seed=SEED)
+    return d
+
+
+def test_layout_right_is_not_moved(fixed_flight):
+    """A layout that is right: the fitted correction is within 3 cm of none everywhere."""
+    reg, mods = _register(fixed_flight)
+    assert reg.status == "ok", reg.message
+    move = reg.placement.displacement_max(mods.total_bounds) if reg.applied else 0.0
+    assert move <= NO_SHIFT_TOL_M, reg.message
+    assert reg.evidence["drawn"]["ok"]
+
+
+@pytest.mark.parametrize("rot_deg,scale,dx,dy", [(1.0, 1.0, 0.0, 0.0), (-0.5, 1.008, 0.4, -0.3)])
+def test_turned_and_scaled_layout_is_put_back(fixed_flight, tmp_path, rot_deg, scale, dx, dy):
+    """A small site (one correlation block at the configured size) whose layout is turned
+    (and scaled, shifted): the fit undoes it to a few centimetres on every module."""
+    import shutil
+
+    d = tmp_path / "flight"
+    shutil.copytree(fixed_flight, d)
+    _transform_layout(d, rot_deg, scale, dx, dy)
+    reg, mods = _register(d)
+    assert reg.status == "ok" and reg.applied, reg.message
+    assert reg.placement.theta_deg == pytest.approx(-rot_deg, abs=0.05)
+    # a turn of rot_deg moves the far modules by decimetres; the fit leaves < 6 cm
+    # (the measured footprint keeps 6-8 cm from the module's edge: [zonal] edge_margin_u/v)
+    assert _truth_residual_m(d, reg, mods) < 0.06, reg.message
+    ev = reg.to_dict()["evidence"]
+    assert ev["proposals"] and ev["used"] == "proposal"
+
+
+def test_shadowed_tracker_over_hot_ground_keeps_a_right_layout(tmp_path):
+    """Flat tracker rows casting shadows on hot ground, layout right: no shift is invented
+    (today's correlation took the shadow for the row and moved the layout)."""
+    d = tmp_path / "flight"
+    simulate_flight(_tracker_hot(), d, seed=SEED)
+    reg, mods = _register(d)
+    assert reg.status == "ok", reg.message
+    move = reg.placement.displacement_max(mods.total_bounds) if reg.applied else 0.0
+    assert move <= NO_SHIFT_TOL_M, reg.message
+
+
+def test_forced_shift_is_used_and_judged(fixed_flight, tmp_path):
+    """--shift DX DY: the given offset is applied as given and judged by the same evidence."""
+    import shutil
+
+    d = tmp_path / "flight"
+    shutil.copytree(fixed_flight, d)
+    _transform_layout(d, 0.0, 1.0, 0.5, -0.35)
+    reg, mods = _register(d, forced_shift=(-0.5, 0.35))
+    assert reg.applied and reg.shift_m == pytest.approx((-0.5, 0.35), abs=1e-9)
+    assert reg.status == "ok"
+    assert _truth_residual_m(d, reg, mods) < 0.01
+
+
+def test_placement_algebra():
+    """Placement: rotation about the centre keeps the centre; 90 deg maps east to north."""
+    p = Placement(1.0, 2.0, 90.0, 2.0, 10.0, 20.0)
+    x, y = p.apply(np.array([10.0, 11.0]), np.array([20.0, 20.0]))
+    assert x == pytest.approx([11.0, 11.0], abs=1e-12)
+    assert y == pytest.approx([22.0, 24.0], abs=1e-12)
+    assert math.isclose(p.displacement_max((10, 20, 10, 20)), math.hypot(1, 2))
+
+
+def test_sun_vector_matches_pvlib_noon():
+    """Solar noon in the northern mid-latitudes: the sun is due south (pvlib SPA; the
+    equation of time at mid-June is near zero, so 12:00 local mean solar time at -4.05 deg
+    is ~12:16 UTC)."""
+    from datetime import UTC, datetime
+
+    e, n, el = sun_vector(-4.05, 39.23, datetime(2026, 6, 14, 12, 16, tzinfo=UTC))
+    assert n == pytest.approx(-1.0, abs=0.01) and abs(e) < 0.1
+    # noon elevation = 90 - lat + declination (23.3 deg mid-June, from memory)
+    assert el == pytest.approx(90 - 39.23 + 23.3, abs=0.6)

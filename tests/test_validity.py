@@ -1,0 +1,196 @@
+"""Checks that can fail a flight: ortho values, registration, coverage, plausibility.
+
+Each case breaks one simulated flight the way real exports and layouts go wrong and checks
+the one-line error (kelvin, degF, raw counts, nothing on the ortho) or the failed validity
+check (coverage, registration with --accept-poor-registration) and the refusal of
+`pvscan inspect` (click's CliRunner). The seed comes from PVSCAN_TEST_SEED.
+"""
+from __future__ import annotations
+
+import json
+import os
+import shutil
+
+import numpy as np
+import pytest
+import rasterio
+from click.testing import CliRunner
+
+from pvscan.cli.main import cli
+from pvscan.measure.validity import coverage_check, plausibility_check
+from pvscan.simulate import simulate_flight
+
+SEED = int(os.environ.get("PVSCAN_TEST_SEED", "18"))
+#: 0 degC in kelvin (SI definition of the Celsius scale).
+KELVIN = 273.15
+
+
+def _scenario():
+    return {"site": {"name": "Validity test site (invented)", "lon": -4.05, "lat": 39.23},
+            "flight": {"start": "2026-06-14T10:40:00+02:00"},
+            "array": {"kind": "fixed", "table_rows": 3, "tables_per_row": 2, "rows": 2, "cols": 12,
+                      "row_pitch_m": 7.0, "rotation_deg": 2.0},
+            "layout": {"offset_m": [0.0, 0.0]},
+            "conditions": {"varying": False, "poa_irradiance_w_m2": 880.0, "ambient_c": 25.0, "wind_m_s": 2.0}}
+
+
+@pytest.fixture(scope="module")
+def flight(tmp_path_factory):
+    d = tmp_path_factory.mktemp("validity") / "flight"
+    simulate_flight(_scenario(), d, seed=SEED)
+    return d
+
+
+def _copy(flight, tmp_path, fn=None, dtype=None):
+    """A copy of the flight whose ortho values are rewritten by ``fn(values, valid)``."""
+    d = tmp_path / "flight"
+    shutil.copytree(flight, d)
+    if fn is not None:
+        tif = d / "thermal.tif"
+        with rasterio.open(tif) as src:
+            prof = src.profile
+            a = src.read(1).astype(np.float64)
+            nd = src.nodata
+        valid = a != nd if nd is not None else np.isfinite(a)
+        out = fn(a, valid)
+        if dtype is not None:
+            prof.update(dtype=dtype, nodata=0)
+            out = np.where(valid, out, 0).astype(dtype)
+        with rasterio.open(tif, "w", **prof) as dst:
+            dst.write(out.astype(prof["dtype"]), 1)
+    return d
+
+
+def _set_manifest(d, old, new):
+    p = d / "flight.toml"
+    txt = p.read_text()
+    assert old in txt
+    p.write_text(txt.replace(old, new))
+
+
+def _inspect(d, tmp_path, *args):
+    out = tmp_path / "out"
+    res = CliRunner().invoke(cli, ["inspect", str(d / "flight.toml"), "--out", str(out), "--no-report", *args])
+    return res, out
+
+
+def test_correct_flight_is_valid(flight, tmp_path):
+    res, out = _inspect(flight, tmp_path)
+    assert res.exit_code == 0, res.output
+    s = json.loads((out / "summary.json").read_text())
+    checks = {c["name"]: c for c in s["validity"]["checks"]}
+    for name in ("registration", "coverage", "plausibility"):
+        assert checks[name]["passed"] is True, checks[name]
+        assert checks[name]["message"]
+    assert s["validity"]["ok"] is True
+    assert s["layout_shift_m"] == [0.0, 0.0]
+    assert s["registration"]["status"] == "ok"
+
+
+@pytest.mark.parametrize("case,fn,dtype,words", [
+    # 273.15 K = 0 degC (SI); the manifest says celsius
+    ("kelvin", lambda a, v: np.where(v, a + KELVIN, a), None, ['look like kelvin', 'units = "kelvin"']),
+    # degF = degC * 9/5 + 32 (definition of the Fahrenheit scale)
+    ("degF", lambda a, v: np.where(v, a * 1.8 + 32.0, a), None, ["Fahrenheit"]),
+    # centi-kelvin counts in uint16 (common practice for radiometric TIFF exports)
+    ("counts", lambda a, v: np.round((a + KELVIN) * 100.0), "uint16", ["raw sensor counts", "0.01 K"]),
+])
+def test_units_mix_ups_are_named_errors(flight, tmp_path, case, fn, dtype, words):
+    d = _copy(flight, tmp_path, fn, dtype)
+    res, out = _inspect(d, tmp_path)
+    assert res.exit_code == 1, res.output
+    line = res.output.strip().splitlines()[-1]
+    assert "thermal.tif" in line and "[ortho]" in line, line
+    for w in words:
+        assert w in line, line
+    assert "Traceback" not in res.output and not out.exists()
+
+
+def test_celsius_read_as_kelvin_is_named(flight, tmp_path):
+    d = _copy(flight, tmp_path)
+    _set_manifest(d, 'units = "celsius"', 'units = "kelvin"')
+    res, out = _inspect(d, tmp_path)
+    assert res.exit_code == 1 and 'units = "celsius"' in res.output, res.output
+
+
+def test_no_usable_pixel_is_an_error(flight, tmp_path):
+    d = _copy(flight, tmp_path, lambda a, v: np.full_like(a, -9999.0))
+    res, out = _inspect(d, tmp_path)
+    assert res.exit_code == 1 and "no usable pixel" in res.output, res.output
+
+
+def test_partial_coverage_fails_the_coverage_check(flight, tmp_path):
+    """Half the ortho nodata: the run goes on, the count is on the CLI and validity.ok false."""
+    def half(a, v):
+        b = a.copy()
+        b[:, : a.shape[1] // 2] = -9999.0
+        return b
+
+    d = _copy(flight, tmp_path, half)
+    res, out = _inspect(d, tmp_path)
+    assert res.exit_code == 0, res.output
+    s = json.loads((out / "summary.json").read_text())
+    cov = {c["name"]: c for c in s["validity"]["checks"]}["coverage"]
+    assert cov["passed"] is False and cov["modules_without_data"] > 0
+    assert s["validity"]["ok"] is False and "coverage" in s["validity"]["failed"]
+    assert f"{cov['modules_without_data']:,}" in res.output and "NOT VALID" in res.output
+
+
+def test_featureless_ortho_is_refused_then_accepted(flight, tmp_path):
+    """An ortho that shows no modules where the layout is: `inspect` refuses (exit 1, one line
+    saying what was measured and what to do); --accept-poor-registration runs with
+    validity.ok false and every finding at the confidence floor."""
+    rng = np.random.default_rng(SEED)
+
+    def smooth(a, v):
+        med = float(np.median(a[v]))
+        return np.where(v, med + rng.normal(0.0, 0.4, a.shape), a)
+
+    d = _copy(flight, tmp_path, smooth)
+    res, out = _inspect(d, tmp_path)
+    assert res.exit_code == 1, res.output
+    line = res.output.strip().splitlines()[-1]
+    assert "probe ratios" in line and "pvscan align" in line and "--shift DX DY" in line, line
+    assert not out.exists()
+    res, out = _inspect(d, tmp_path, "--accept-poor-registration")
+    assert res.exit_code == 0, res.output
+    s = json.loads((out / "summary.json").read_text())
+    reg = {c["name"]: c for c in s["validity"]["checks"]}["registration"]
+    assert reg["passed"] is False and s["validity"]["ok"] is False
+    from pvscan.io.settings import load_pipeline
+
+    floor = load_pipeline()["conditions"]["confidence_floor"]
+    assert s["validity"]["confidence_factor"] == pytest.approx(floor)
+    an = json.loads((out / "anomalies.geojson").read_text())["features"]
+    assert all(f["properties"]["confidence"] <= floor + 1e-9 for f in an)
+
+
+def test_shift_option_forces_a_known_offset(flight, tmp_path):
+    """--shift DX DY: a layout drawn 0.5 m east, 0.35 m south is used with the given offset;
+    a wrong offset is judged by the same evidence and refused."""
+    import geopandas as gpd
+
+    d = _copy(flight, tmp_path)
+    lay = d / "layout.geojson"
+    g = gpd.read_file(lay)
+    utm = g.estimate_utm_crs()
+    g.to_crs(utm).translate(0.5, -0.35).to_crs(g.crs).to_frame("geometry").join(g.drop(columns="geometry")).pipe(
+        gpd.GeoDataFrame).to_file(lay, driver="GeoJSON")
+    res, out = _inspect(d, tmp_path, "--shift", "-0.5", "0.35")
+    assert res.exit_code == 0, res.output
+    s = json.loads((out / "summary.json").read_text())
+    assert s["layout_shift_m"] == pytest.approx([-0.5, 0.35], abs=1e-4)
+    assert s["validity"]["ok"] is True
+    # 0.7 m off across the rows puts the footprints on the ground between them: refused
+    res, out = _inspect(d, tmp_path, "--shift", "-0.5", "-0.35", "--overwrite")
+    assert res.exit_code == 1 and "given shift" in res.output, res.output
+
+
+def test_coverage_and_plausibility_checks():
+    c = coverage_check(np.r_[np.ones(95), np.zeros(5)])
+    assert c["value"] == pytest.approx(5.0) and c["passed"] is False and c["modules_without_data"] == 5
+    assert coverage_check(np.ones(100))["passed"] is True
+    # Faiman: T = T_air + G / (u0 + u1 v) = 25 + 900 / (25 + 6.84 * 2) = 48.26 degC (Faiman 2008)
+    pred = np.full(50, 25 + 900 / (25 + 6.84 * 2))
+    assert plausibility_check(pred + 1.0, pred)["passed"] is True
+    assert plausibility_check(pred + KELVIN, pred)["passed"] is False
