@@ -33,7 +33,7 @@ import numpy as np
 
 from pvscan.errors import OutputError, SimulationError
 
-__all__ = ["evaluate", "format_report", "flight_identity_check", "LOSS_GROUP_KINDS"]
+__all__ = ["evaluate", "format_report", "flight_identity_check", "LOSS_GROUP_KINDS", "evaluate_layout"]
 
 log = logging.getLogger(__name__)
 
@@ -482,3 +482,90 @@ def format_report(scores: dict) -> str:
         lines.append(f"layout shift: reported {r['reported_shift_m']} m for an offset of {r['truth_offset_m']} m"
                      f" (error {fmt(r['error_m'])} m)")
     return "\n".join(lines)
+
+
+# ----------------------------------------------------------------------------- layouts
+def evaluate_layout(truth_dir, layout_path, settings=None) -> dict:
+    """Score a detected module layout against a simulated flight's truth.
+
+    The truth's module polygons are where the modules are *in the ortho*: ``truth_ortho.geojson``
+    when the flight has one, else ``truth.geojson`` shifted back by the ``layout_offset_m``
+    it was drawn with (``truth.json``).
+
+    Parameters
+    ----------
+    truth_dir : path-like
+        A folder written by ``pvscan simulate``.
+    layout_path : path-like
+        The layout to score (any file GeoPandas reads; layer ``modules`` of a GeoPackage).
+    settings : mapping, optional
+        ``[evaluate]``: ``match_distance_m`` (largest centroid distance of a match) [m].
+
+    Returns
+    -------
+    dict
+        ``truth_modules``, ``layout_modules``, ``found`` (matched truth modules),
+        ``found_fraction``, ``extra`` (layout modules matching no truth module),
+        ``extra_fraction`` (of the truth's count), ``corner_error_m`` (per matched module the
+        largest distance of a truth corner to the nearest layout corner [m]: ``median``,
+        ``p95``, ``max``) and ``within_5cm`` (fraction of matched modules whose corner error is
+        at most 0.05 m).
+    """
+    import geopandas as gpd
+    import shapely
+    from scipy.spatial import cKDTree
+
+    truth_dir, layout_path = Path(truth_dir), Path(layout_path)
+    max_d = float((settings or {}).get("match_distance_m", 0.5))
+    ortho = truth_dir / "truth_ortho.geojson"
+    try:
+        if ortho.exists():
+            truth = gpd.read_file(ortho)
+            offset = (0.0, 0.0)
+        else:
+            truth = gpd.read_file(truth_dir / "truth.geojson")
+            with open(truth_dir / "truth.json", encoding="utf-8") as fh:
+                offset = tuple(json.load(fh).get("layout_offset_m", [0.0, 0.0]))
+    except Exception as exc:  # any reader failure (GDAL, JSON) is a bad input named by file
+        raise SimulationError(f"{truth_dir}: cannot read the truth: {exc}") from None
+    try:
+        layers = list(gpd.list_layers(layout_path)["name"])
+        layout = gpd.read_file(layout_path, layer="modules" if "modules" in layers else None)
+    except Exception as exc:  # any reader failure is a bad input named by file
+        raise OutputError(f"{layout_path}: cannot read the layout: {exc}") from None
+    if layout.crs is None or not layout.crs.is_projected:
+        raise OutputError(f"{layout_path}: the layout needs a projected CRS in metres")
+    truth = truth.to_crs(layout.crs)
+    tg = shapely.transform(np.asarray(truth.geometry.to_numpy()), lambda xy: xy - np.asarray(offset))
+    lg = np.asarray(layout.geometry.to_numpy())
+    tc = shapely.get_coordinates(shapely.centroid(tg))
+    lc = shapely.get_coordinates(shapely.centroid(lg))
+    n_t, n_l = len(tc), len(lc)
+    out: dict = {"truth_modules": n_t, "layout_modules": n_l}
+    if n_l == 0 or n_t == 0:
+        return {**out, "found": 0, "found_fraction": 0.0, "extra": n_l, "extra_fraction": None,
+                "corner_error_m": None, "within_5cm": None}
+    d, j = cKDTree(lc).query(tc)
+    hit = d < max_d
+    # one layout module matched by two truth modules counts once (the nearer)
+    order = np.argsort(d, kind="stable")
+    seen: set[int] = set()
+    for i in order:
+        if hit[i]:
+            if int(j[i]) in seen:
+                hit[i] = False
+            else:
+                seen.add(int(j[i]))
+    errs = []
+    for i in np.flatnonzero(hit):
+        a = shapely.get_coordinates(tg[i])[:4]
+        b = shapely.get_coordinates(lg[j[i]])[:4]
+        errs.append(float(np.max(np.min(np.hypot(a[:, None, 0] - b[None, :, 0], a[:, None, 1] - b[None, :, 1]),
+                                        axis=1))))
+    e = np.array(errs)
+    found = int(hit.sum())
+    return {**out, "found": found, "found_fraction": found / n_t, "extra": n_l - found,
+            "extra_fraction": (n_l - found) / n_t,
+            "corner_error_m": {"median": float(np.median(e)), "p95": float(np.percentile(e, 95)),
+                               "max": float(e.max())} if e.size else None,
+            "within_5cm": float((e <= 0.05).mean()) if e.size else None}

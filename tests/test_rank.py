@@ -9,6 +9,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
+from conftest import test_seed
 
 from pvscan.diagnose.rank import ACTIONS, LIVE_DC_NOTE, assign_anomaly_ids, rank, recommended_action
 from pvscan.io.settings import load_pipeline
@@ -28,9 +29,9 @@ def _random_anomalies(n: int, seed: int) -> pd.DataFrame:
     })
 
 
-@pytest.mark.parametrize("seed", [1, 2, 3])
-def test_safety_items_come_first_then_energy(seed):
-    an = _random_anomalies(60, seed)
+@pytest.mark.parametrize("offset", [1, 2, 3])
+def test_safety_items_come_first_then_energy(offset):
+    an = _random_anomalies(60, test_seed(offset))
     out = rank(an, load_pipeline())
     assert out["priority"].tolist() == list(range(1, 61))
     sev = out["severity"].tolist()
@@ -61,7 +62,7 @@ def test_safety_beats_a_larger_loss_and_confidence_breaks_ties():
 
 
 def test_first_severities_from_settings():
-    an = _random_anomalies(30, 9)
+    an = _random_anomalies(30, test_seed(9))
     p = load_pipeline().replace(rank={"first_severities": ["safety", "repair"]})
     out = rank(an, p)
     tiers = out["severity"].map({"safety": 0, "repair": 1, "monitor": 2}).to_numpy()

@@ -45,7 +45,7 @@ def test_module_thermal_follows_the_contract():
                                                         "wind_ref_m_s": 1.0}
 
 
-def _rows(n_tables=3, rows=2, cols=16, pitch=7.0, seed=0):
+def _rows(n_tables=3, rows=2, cols=16, pitch=7.0):
     rec = []
     for t in range(n_tables):
         for r in range(rows):

@@ -100,3 +100,24 @@ def check_cmd(flight, out_path, fix, pipeline_path, overwrite):
     for r in chk.findings[chk.findings["finding"].isin(["table_moved", "table_turned"])].itertuples():
         echo(f"  {r.table_id}: {r.detail}")
     echo(f"wrote {out_path}" + (" (findings, corrected layout)" if fix else " (findings)"))
+
+
+@layout_group.command("score")
+@click.argument("truth_dir", type=click.Path(file_okay=False, path_type=Path))
+@click.argument("layout_path", type=click.Path(dir_okay=False, path_type=Path))
+@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
+              help="Pipeline settings; [evaluate] match_distance_m.")
+@handle_errors
+def score_cmd(truth_dir, layout_path, pipeline_path):
+    """Score a detected layout against the truth of a simulated flight (TRUTH_DIR): modules
+    found, extra, corner error."""
+    from pvscan.evaluate import evaluate_layout
+    from pvscan.io.settings import load_pipeline
+
+    s = evaluate_layout(truth_dir, layout_path, load_pipeline(pipeline_path)["evaluate"])
+    echo(f"truth {s['truth_modules']} modules, layout {s['layout_modules']}")
+    echo(f"found {s['found']} ({100 * s['found_fraction']:.1f} %), extra {s['extra']}")
+    ce = s["corner_error_m"]
+    if ce:
+        echo(f"corner error [m]: median {ce['median']:.3f}, p95 {ce['p95']:.3f}, max {ce['max']:.3f}; "
+             f"within 5 cm {100 * s['within_5cm']:.1f} %")

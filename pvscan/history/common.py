@@ -140,3 +140,27 @@ def _text(v):
 def _worse_severity(a, b):
     ra, rb = SEVERITY_RANK.get(a, 0), SEVERITY_RANK.get(b, 0)
     return a if ra >= rb else b
+
+
+def write_new_file(out_path: str | Path, text: str, *, overwrite: bool = False) -> Path:
+    """Write ``text`` to ``out_path`` atomically; an existing file only with ``overwrite``.
+
+    Raises
+    ------
+    OutputError
+        When the path is a folder, the file exists and ``overwrite`` is false, or it cannot be
+        written.
+    """
+    from pvscan.errors import OutputError
+    from pvscan.io.outputs import atomic_write
+
+    p = Path(out_path)
+    if p.is_dir():
+        raise OutputError(f"{p}: is a folder, not a file")
+    if p.exists() and not overwrite:
+        raise OutputError(f"{p}: exists (use --overwrite to replace it)")
+    try:
+        p.parent.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise OutputError(f"{p.parent}: cannot create the folder: {exc.strerror or exc}") from None
+    return atomic_write(p, text)

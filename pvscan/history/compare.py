@@ -13,7 +13,7 @@ import shapely
 from shapely.geometry.polygon import orient
 
 from pvscan.errors import HistoryError
-from pvscan.history.common import CHANGE_CLASSES, SEVERITY_RANK, _num, _settings, _text
+from pvscan.history.common import CHANGE_CLASSES, SEVERITY_RANK, _num, _settings, _text, write_new_file
 from pvscan.history.db import _Session
 from pvscan.history.store import _flight_order, _read_flight
 
@@ -341,16 +341,4 @@ def write_changes(changes: Mapping, out_path: str | Path, *, overwrite: bool = F
     OutputError
         When the file exists and ``overwrite`` is false, or it cannot be written.
     """
-    from pvscan.errors import OutputError
-    from pvscan.io.outputs import atomic_write
-
-    p = Path(out_path)
-    if p.is_dir():
-        raise OutputError(f"{p}: is a folder, not a file")
-    if p.exists() and not overwrite:
-        raise OutputError(f"{p}: exists (use --overwrite to replace it)")
-    try:
-        p.parent.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise OutputError(f"{p.parent}: cannot create the folder: {exc.strerror or exc}") from None
-    return atomic_write(p, json.dumps(changes, indent=1, allow_nan=False) + "\n")
+    return write_new_file(out_path, json.dumps(changes, indent=1, allow_nan=False) + "\n", overwrite=overwrite)

@@ -33,7 +33,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from pvscan.history.common import _settings
+from pvscan.history.common import _settings, write_new_file
 from pvscan.history.db import _gpkg_blobs, _gpkg_geoms, _now, _Session
 
 __all__ = ["Degradation", "module_degradation", "write_degradation_csv", "DEGRADATION_COLUMNS"]
@@ -233,16 +233,5 @@ def write_degradation_csv(deg: Degradation, out_path: str | Path, *, overwrite: 
     OutputError
         When the file exists and ``overwrite`` is false, or it cannot be written.
     """
-    from pvscan.errors import OutputError
-    from pvscan.io.outputs import atomic_write
-
-    p = Path(out_path)
-    if p.is_dir():
-        raise OutputError(f"{p}: is a folder, not a file")
-    if p.exists() and not overwrite:
-        raise OutputError(f"{p}: exists (use --overwrite to replace it)")
-    try:
-        p.parent.mkdir(parents=True, exist_ok=True)
-    except OSError as exc:
-        raise OutputError(f"{p.parent}: cannot create the folder: {exc.strerror or exc}") from None
-    return atomic_write(p, degradation_table(deg).to_csv(index=False, lineterminator="\n"))
+    text = degradation_table(deg).to_csv(index=False, lineterminator="\n")
+    return write_new_file(out_path, text, overwrite=overwrite)

@@ -15,6 +15,7 @@ Examples
 from __future__ import annotations
 
 import difflib
+import math
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
@@ -284,6 +285,20 @@ def _suggest(err_msg: str, data: dict) -> str:
     return err_msg + (f" (did you mean {close[0]}?)" if close else "")
 
 
+def _non_finite(data: dict, prefix: str = "") -> tuple[str, float] | None:
+    """The first number that is NaN or infinite (TOML writes them as nan and inf, and JSON
+    Schema ranges let them through), but a NaN ortho.nodata, a common nodata value."""
+    for k, v in data.items():
+        key = f"{prefix}{k}"
+        if isinstance(v, dict):
+            hit = _non_finite(v, key + ".")
+            if hit is not None:
+                return hit
+        elif isinstance(v, float) and not math.isfinite(v) and not (key == "ortho.nodata" and math.isnan(v)):
+            return key, v
+    return None
+
+
 def _resolve(root: Path, rel: str, key: str, where: str, must_exist: bool = True) -> Path:
     p = Path(rel)
     if not p.is_absolute():
@@ -312,6 +327,9 @@ def flight_from_dict(data: dict, path: str | Path, check_files: bool = True) -> 
     """
     path = Path(path)
     where = str(path)
+    bad = _non_finite(data)
+    if bad is not None:
+        raise ManifestError(f"{where}: key {bad[0]}: {bad[1]} is not a finite number")
     errs = schema_errors(data, load_schema("flight.schema.json"))
     if errs:
         raise ManifestError(f"{where}: {_suggest(describe_error(errs[0]), data)}")

@@ -422,7 +422,10 @@ class OrthoSet:
     def read_raw(self, tile_index: int, window: Any) -> np.ndarray:
         """Read a window of raw band values without conversion (window inside the raster)."""
         with self._env():
-            return self._datasets[tile_index].read(1, window=_as_window(window))
+            try:
+                return self._datasets[tile_index].read(1, window=_as_window(window))
+            except (RasterioError, RasterioIOError) as exc:  # a truncated or damaged file
+                raise OrthoError(f"{self.tiles[tile_index].path}: cannot read window {window}: {exc}") from None
 
     def block_shape(self, tile_index: int, block_px: int) -> tuple[int, int]:
         """Processing block (rows, cols) [px] near ``block_px``, aligned with the file's tiling.

@@ -9,7 +9,9 @@ and defects; see ``demo_site/scenario.toml``) into a flight folder:
   (optionally shifted against the ortho);
 - ``flight.toml``: the flight manifest;
 - ``weather.csv`` and ``frames.geojson`` when the conditions vary during the flight;
-- ``truth.geojson`` (per module) and ``truth.json`` (layout offset, scenario, seed, defects);
+- ``truth.geojson`` (per module, geometry as the layout draws it) and ``truth.json`` (layout
+  offset and ``layout_error``, scenario, seed, defects);
+- ``truth_ortho.geojson``: the true module polygons as they stand in the ortho (ortho CRS);
 - ``preview.png``: a quick-look of the ortho.
 
 The physics is documented in :mod:`pvscan.simulate.scene` and
@@ -30,13 +32,16 @@ import shutil
 import tempfile
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
+from datetime import datetime
 from pathlib import Path
 
 from pvscan.errors import OutputError, SimulationError
 from pvscan.simulate.scenario import DEFAULTS, DEFECT_KINDS, load_scenario, scenario_from_dict
-from pvscan.simulate.scene import Scene, faiman
+from pvscan.simulate.electrical import faiman
+from pvscan.simulate.scene import Scene
 
-__all__ = ["simulate_flight", "load_scenario", "scenario_from_dict", "SimulationResult", "Scene",
+__all__ = ["simulate_flight", "simulate_random", "with_flight", "load_scenario", "scenario_from_dict",
+           "SimulationResult", "Scene",
            "build_scene", "faiman", "DEFAULTS", "DEFECT_KINDS"]
 
 log = logging.getLogger(__name__)
@@ -94,6 +99,34 @@ def _as_scenario(scenario) -> dict:
             return scenario_from_dict(sc, str(scenario["_path"]))
         return scenario_from_dict(scenario)
     return load_scenario(scenario)
+
+
+def with_flight(scenario: dict, *, date: str | None = None, flight_id: str | None = None) -> dict:
+    """A copy of a loaded scenario flown on another ``date`` (YYYY-MM-DD; the time of day and
+    UTC offset kept) and/or under another ``flight_id``.
+
+    Raises
+    ------
+    SimulationError
+        ``date`` is not a calendar date.
+    """
+    import copy
+    from datetime import date as _date
+
+    sc = copy.deepcopy(dict(scenario))
+    where = str(sc.get("_path") or "scenario")
+    if date is not None:
+        try:
+            day = _date.fromisoformat(str(date))
+        except ValueError:
+            raise SimulationError(f"--date {date!r}: not a date (YYYY-MM-DD)") from None
+        start = datetime.fromisoformat(str(sc["flight"]["start"]).replace("Z", "+00:00"))
+        sc["flight"]["start"] = start.replace(year=day.year, month=day.month, day=day.day).isoformat()
+    if flight_id is not None:
+        if not str(flight_id).strip():
+            raise SimulationError(f"{where}: --flight-id is empty")
+        sc["flight"]["id"] = str(flight_id)
+    return sc
 
 
 def build_scene(scenario, seed: int = 0) -> Scene:
@@ -166,6 +199,7 @@ def simulate_flight(scenario, out_dir, seed: int = 0, *, overwrite: bool = False
     try:
         orthos, ortho_keys, preview = writers.write_orthos(scene, stage, progress)
         layout_name = writers.write_layout(scene, stage)
+        writers.write_truth_ortho(scene, stage)
         write_frames = sc["flight"]["write_frames"]
         varying = scene.weather.varying
         frames_name = writers.write_frames(scene, stage) if (write_frames is True or
@@ -214,3 +248,36 @@ def simulate_flight(scenario, out_dir, seed: int = 0, *, overwrite: bool = False
         preview=out_dir / "preview.png", weather=out_dir / weather_name if weather_name else None,
         frames=out_dir / frames_name if frames_name else None, n_modules=scene.field.n_modules,
         n_defective=len(scene.defects), defects=counts, seed=int(seed), scenario=sc)
+
+
+def simulate_random(seed: int, out_dir, family: str = "any", *, overwrite: bool = False,
+                    progress: ProgressFn | None = None) -> SimulationResult:
+    """Simulate a random flight of a family (:mod:`pvscan.simulate.sampler`) with ground truth.
+
+    The drawn scenario is written into the flight folder as ``scenario.toml``;
+    ``pvscan simulate DIR/scenario.toml --seed SEED`` replays the flight file for file.
+
+    Parameters
+    ----------
+    seed : int
+        Seed of the draw and of the simulation.
+    out_dir : path-like
+        Flight folder (as :func:`simulate_flight`).
+    family : str
+        One of :data:`pvscan.simulate.sampler.FAMILIES`.
+    """
+    import os
+
+    from pvscan.simulate.sampler import draw_scenario
+    from pvscan.simulate.writers import toml_dumps
+
+    if int(seed) < 0:
+        raise SimulationError(f"--random {seed}: must be zero or positive")
+    drawn = draw_scenario(int(seed), family)
+    res = simulate_flight(drawn, out_dir, seed=int(seed), overwrite=overwrite, progress=progress)
+    header = (f"Scenario drawn by pvscan simulate --random {int(seed)} --family {family}.\n"
+              f"Replay: pvscan simulate scenario.toml --seed {int(seed)} --out DIR")
+    tmp = res.out_dir / ".scenario.toml.part"
+    tmp.write_text(toml_dumps(drawn, header), encoding="utf-8")
+    os.replace(tmp, res.out_dir / "scenario.toml")
+    return res

@@ -3,8 +3,9 @@
 Every defect turns part of the module's electrical output into heat. With the Faiman
 heat-loss coefficient ``U(v) = u0 + u1 * v`` [W/(m2 K)] a surface heat flux ``q`` [W/m2]
 raises the module temperature by ``q / U``. An open module (no current) keeps the power
-it would have delivered, ``eta * G`` per unit area, so it is warmer by
-``dT_open = eta * G / U(v)`` (eta = pmax / (1000 W/m2 x area)). A bypassed substring does
+it would have delivered, ``P_mp(G, T)`` from the single-diode model of
+:mod:`pvscan.simulate.electrical`, so it is warmer by ``dT_open = P_mp / (U(v) * area)``
+(close to, but not the same as, ``eta * G / U``). A bypassed substring does
 the same over its strip, a PID-affected module over the fraction ``f`` of its output it
 lost. Spot patterns (hot cells, soiling band, junction box) are given a temperature rise;
 their power loss follows from the same energy balance, ``P_heat = U * integral(rise dA)``,
@@ -49,6 +50,7 @@ class ModuleGeometry:
     junction_box: str        # "edge" or "split"
     pmax_w: float
     u_ref: float = 25.0 + 6.84 * 1.0  # Faiman U at the reference wind of 1 m/s [W/(m2 K)]
+    p_ref_w: float | None = None      # power delivered at 1000 W/m2, 1 m/s, 25 degC air [W]
 
     @property
     def area_m2(self) -> float:
@@ -60,8 +62,10 @@ class ModuleGeometry:
 
     @property
     def dt_open_ref(self) -> float:
-        """Open-module rise at reference conditions (1000 W/m2, 1 m/s), eta * 1000 / U(1) [K]."""
-        return self.eta * 1000.0 / self.u_ref
+        """Open-module rise at reference conditions (1000 W/m2, 1 m/s) [K]: the power the
+        module delivers there (``p_ref_w``, else ``eta * 1000 W/m2 * area``) over ``U(1) * area``."""
+        p = self.eta * 1000.0 * self.area_m2 if self.p_ref_w is None else self.p_ref_w
+        return p / (self.u_ref * self.area_m2)
 
 
 @dataclass
@@ -101,7 +105,7 @@ class Defect:
             Module-local coordinates [-].
         geom : ModuleGeometry
         dt_open : float
-            Rise of a fully open module at this module's conditions, eta * G / U(v) [K].
+            Rise of a fully open module at this module's conditions, P_mp / (U(v) * area) [K].
 
         Notes
         -----
@@ -309,7 +313,7 @@ def power_loss_stc(d: Defect, geom: ModuleGeometry, dt_open: float, u_total: flo
     d : Defect
     geom : ModuleGeometry
     dt_open : float
-        eta * G / U at the module's conditions [K].
+        P_mp / (U * area) at the module's conditions [K].
     u_total : float
         Faiman U(v) at the module's wind speed [W/(m2 K)].
     poa : float

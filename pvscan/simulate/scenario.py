@@ -72,6 +72,9 @@ DEFAULTS: dict[str, Any] = {
         "features": "modules",
         "format": "geojson",
         "offset_m": [0.0, 0.0],
+        "rotation_deg": 0.0,
+        "scale": 1.0,
+        "local_rms_m": 0.0,
         "strings": True,
     },
     "module": {
@@ -112,6 +115,8 @@ DEFAULTS: dict[str, Any] = {
         "sun_rise_k": 14.0,
         "shade_rise_k": 2.0,
         "texture_k": 1.5,
+        "field_k": 0.0,
+        "field_scale_m": 40.0,
     },
     "camera": {
         "gsd_m": 0.05,
@@ -157,6 +162,7 @@ DEFAULTS: dict[str, Any] = {
         "pid_modules": [3, 6],
         "open_string_modules": 0,
         "min_spacing_modules": 2,
+        "heat_model": "diode",
     },
 }
 

@@ -2,7 +2,7 @@
 
 Physics, in the order it is applied to a pixel:
 
-1. **Healthy module** (Faiman [1]_): ``T = T_air + G / (u0 + u1 * v)`` with the
+1. **Healthy module** (Faiman [1]_, :func:`pvlib.temperature.faiman`): ``T = T_air + G / (u0 + u1 * v)`` with the
    module's own irradiance ``G`` (lowered under a cloud shadow; for varying conditions
    the irradiance smoothed by the module's thermal inertia, see
    :func:`pvscan.simulate.flightpath.weather_series`), air temperature and wind at the
@@ -17,14 +17,19 @@ Physics, in the order it is applied to a pixel:
    added in quadrature. The aluminium frame
    (``array.frame_width_m``) runs cooler: ``T_frame = T - frame_drop * (T - T_air)``
    (common practice: frames are cooler than the glass).
-2. **Defects** add their rise in the module-local frame (:mod:`pvscan.simulate.defects`).
+2. **Defects** add their rise in the module-local frame (:mod:`pvscan.simulate.defects`); the
+   heat of an open module or bypassed substring is the power the single-diode model
+   (:mod:`pvscan.simulate.electrical`) says it no longer delivers.
 3. **Ground**: ``T_air + sun_rise_k * G / 1000`` in the sun, ``T_air + shade_rise_k`` in the
-   shadow the tables cast (sun position from pvlib [2]_), plus a smooth texture; hot objects
+   shadow the tables cast (sun position from pvlib [2]_), plus a smooth texture and a
+   site-wide smooth field (``ground.field_k`` [K] 1 sigma over ``ground.field_scale_m``; with
+   a few kelvin the ground's contrast to the glass can change sign across the site); hot objects
    (inverter stations, a vehicle) sit on the ground between table rows.
 4. **Radiometry**: band radiance of glass (module emissivity, reflecting the sky from
-   :func:`pvscan.physics.radiometry.sky_temperature`, warmer where a soft reflection patch lies)
+   :func:`pvscan.simulate.radiance.sky_temperature`, warmer where a soft reflection patch lies)
    and ground, through the air path, exported at the export emissivity and reflected
-   temperature (:func:`pvscan.physics.radiometry.apparent_from_true`).
+   temperature (:func:`pvscan.simulate.radiance.apparent_temperature`; the simulator's own
+   Planck band integrals, sharing no code with the pipeline).
 5. **Camera**: Gaussian point-spread function applied to the band radiance (the lens
    mixes radiance, not temperature).
 6. **Mosaic**: rectangular seams add a sharp step of 0.5-2 K to the apparent temperature;
@@ -47,10 +52,12 @@ from datetime import datetime, timedelta
 import numpy as np
 from scipy import ndimage
 
-from pvscan.physics import radiometry
+from pvscan.simulate import radiance
 from pvscan.simulate.defects import ModuleGeometry, place_defects
+from pvscan.simulate.electrical import diode_module, faiman
 from pvscan.simulate.flightpath import plan_flight, weather_series
 from pvscan.simulate.geometry import build_field
+from pvscan.simulate.layout_error import layout_error
 
 __all__ = ["Scene", "faiman", "GROUND", "GLASS", "FRAME", "OBJECT"]
 
@@ -58,31 +65,6 @@ log = logging.getLogger(__name__)
 
 GROUND, GLASS, FRAME, OBJECT = 0, 1, 2, 3
 _ZERO_C = 273.15  # [K]
-
-
-def faiman(poa_global, temp_air, wind_speed, u0=25.0, u1=6.84):
-    """Module temperature by the Faiman model, ``T_air + G / (u0 + u1 * v)`` [degC].
-
-    Parameters
-    ----------
-    poa_global : array_like
-        Plane-of-array irradiance [W/m2].
-    temp_air : array_like
-        Air temperature [degC].
-    wind_speed : array_like
-        Wind speed [m/s].
-    u0 : float
-        Constant heat-loss coefficient [W/(m2 K)].
-    u1 : float
-        Wind heat-loss coefficient [W s/(m3 K)].
-
-    References
-    ----------
-    D. Faiman, "Assessing the outdoor operating temperature of photovoltaic modules",
-    Progress in Photovoltaics 16(4), 307-315, 2008; coefficients of IEC 61853-2.
-    """
-    return np.asarray(temp_air, float) + np.asarray(poa_global, float) / (
-        u0 + u1 * np.asarray(wind_speed, float))
 
 
 class _SmoothNoise:
@@ -131,14 +113,18 @@ class Scene:
         self.sc = sc
         self.seed = int(seed)
         self.field = fld = build_field(sc)
+        self.layout_error = layout_error(sc, fld, self.seed)
         m = sc["module"]
         half = bool(m["half_cut"])
+        u0, u1 = float(sc["conditions"]["u0"]), float(sc["conditions"]["u1"])
+        u_ref = u0 + u1 * 1.0
         self.geom = ModuleGeometry(
             length_m=m["length_m"], width_m=m["width_m"],
             n_along=m["cells_along"] * (2 if half else 1), n_across=m["cells_across"],
             bypass_diodes=m["bypass_diodes"], lower_edge="u" if fld.portrait else "v",
             junction_box=m.get("junction_box", "split" if half else "edge"), pmax_w=m["pmax_w"],
-            u_ref=float(sc["conditions"]["u0"]) + float(sc["conditions"]["u1"]) * 1.0)
+            u_ref=u_ref, p_ref_w=(float(diode_module(m).p_mp(1000.0, faiman(1000.0, 25.0, 1.0, u0, u1)))
+                                  if sc["defects"]["heat_model"] == "diode" else None))
         cam = sc["camera"]
         self.gsd = gsd = float(cam["gsd_m"])
         margin = float(sc["ortho"]["margin_m"])
@@ -166,12 +152,12 @@ class Scene:
         if "sky_c" in cond:
             self.temp_sky = float(cond["sky_c"])
         else:
-            self.temp_sky = float(radiometry.sky_temperature(self.temp_air_mean, self.rh, band="camera",
-                                                              band_um=tuple(cam["band_um"])))
+            self.temp_sky = radiance.sky_temperature(self.temp_air_mean, self.rh, tuple(cam["band_um"]))
         alt = float(sc["flight"]["altitude_m"])
         if cam["transmission"] == "auto":
-            self.tau = np.asarray(radiometry.atmospheric_transmission(alt, self.temp_air, self.rh), float)
-            self.tau_ground = float(radiometry.atmospheric_transmission(alt, self.temp_air_mean, self.rh))
+            band = tuple(cam["band_um"])
+            self.tau = np.asarray(radiance.air_transmission(alt, self.temp_air, self.rh, band), float)
+            self.tau_ground = float(radiance.air_transmission(alt, self.temp_air_mean, self.rh, band))
         else:
             self.tau = np.full(fld.n_modules, float(cam["transmission"]))
             self.tau_ground = float(cam["transmission"])
@@ -193,6 +179,10 @@ class Scene:
         self.objects = self._place_objects(drng, int(dis["hot_objects"]))
         self.texture = _SmoothNoise(self.extent, 3.0, np.random.default_rng([self.seed, 4]))
         self.wobble = _SmoothNoise(self.extent, 8.0, np.random.default_rng([self.seed, 5]))
+        gcfg = sc["ground"]
+        self.ground_field = (_SmoothNoise(self.extent, float(gcfg["field_scale_m"]),
+                                          np.random.default_rng([self.seed, 10]))
+                             if float(gcfg["field_k"]) > 0 else None)
         self._sun_shadow()
 
         # modules
@@ -203,7 +193,14 @@ class Scene:
         self.poa_local = self.poa_thermal * self.cloud_factor(mods["cx"], mods["cy"])
         self.u_total = self.u0 + self.u1 * self.wind
         self.temp_healthy = faiman(self.poa_local, self.temp_air, self.wind, self.u0, self.u1)
-        self.dt_open = self.geom.eta * self.poa_local / self.u_total
+        # an open module keeps as heat the power it would have delivered (single-diode model at
+        # its irradiance and temperature), shed through the Faiman U over its area
+        self.diode = diode = diode_module(m)
+        if sc["defects"]["heat_model"] == "diode":
+            self.p_mp = diode.p_mp(self.poa_local, self.temp_healthy)
+        else:  # "efficiency": STC efficiency, eta * G (the textbook simplification)
+            self.p_mp = self.geom.eta * self.poa_local * self.geom.area_m2
+        self.dt_open = self.p_mp / (self.u_total * self.geom.area_m2)
         # module-to-module spread: thermal part scaled from the reference conditions like the
         # defect rises (dt_open / dt_open_ref = (G / U) / (1000 / U(1))), measurement part not
         spread = np.hypot(float(cond["module_spread_k"]) * self.dt_open / self.geom.dt_open_ref,
@@ -398,6 +395,8 @@ class Scene:
         shade[~mod] = self.in_shadow(s[~mod], w[~mod])
         sun = self.poa_mean * self.cloud_factor(x, y) / 1000.0 * gcfg["sun_rise_k"]
         temp = self.temp_air_mean + np.where(shade, gcfg["shade_rise_k"], sun) + gcfg["texture_k"] * self.texture(x, y)
+        if self.ground_field is not None:  # site-wide variation (moisture, soil, vegetation)
+            temp = temp + float(gcfg["field_k"]) * self.ground_field(x, y)
         material = np.full(idx.shape, GROUND, np.int8)
         for _kind, s0, s1, w0, w1, rise in self.objects:
             inside = (s >= s0) & (s <= s1) & (w >= w0) & (w <= w1) & ~mod
@@ -424,10 +423,10 @@ class Scene:
     def apparent(self, scene: dict):
         """Apparent temperature of the export for the output of :meth:`true_scene` [degC]."""
         ex = self.sc["export"]
-        return radiometry.apparent_from_true(
+        return radiance.apparent_temperature(
             scene["temp"], emissivity=scene["emissivity"], temp_sky_c=scene["temp_sky"],
+            transmission=scene["tau"], temp_air_c=scene["temp_atm"],
             export_emissivity=float(ex["emissivity"]), export_reflected_c=float(ex["reflected_c"]),
-            transmission=scene["tau"], temp_atm_c=scene["temp_atm"],
             band_um=tuple(self.sc["camera"]["band_um"]))
 
     # ------------------------------------------------------------------ camera
@@ -456,8 +455,8 @@ class Scene:
             # the lens mixes radiance, not temperature: blur the band radiance of the apparent
             # temperature (affine in the sensor radiance for any export emissivity)
             band = tuple(cam["band_um"])
-            rad = ndimage.gaussian_filter(radiometry.band_radiance(app + _ZERO_C, band), sigma, mode="nearest")
-            app = np.asarray(radiometry.temperature_from_band_radiance(rad, band), float) - _ZERO_C
+            rad = ndimage.gaussian_filter(radiance.band_radiance(app + _ZERO_C, band), sigma, mode="nearest")
+            app = np.asarray(radiance.band_temperature(rad, band), float) - _ZERO_C
         app = app[halo:halo + nrows, halo:halo + ncols]
         # mosaic seams: steps between frames, sharp (applied after each frame's blur)
         rr = np.arange(row0, row0 + nrows)[:, None]

@@ -179,7 +179,7 @@ def _ring(tr, xy: np.ndarray) -> list:
     return pts if area > 0 else pts[::-1]
 
 
-def _table_corners(fld, offset):
+def _table_corners(fld, err):
     out = []
     for tr in range(fld.n_trows):
         for tb in range(fld.n_tables):
@@ -188,22 +188,47 @@ def _table_corners(fld, offset):
             w = np.array([w0, w0, w0 + fld.table_depth, w0 + fld.table_depth])
             x, y = fld.to_map(s, w)
             i = int(fld.lut[tr, tb, 0, 0])
-            out.append((fld.modules["table_id"][i], np.stack([x + offset[0], y + offset[1]], axis=1)))
+            out.append((fld.modules["table_id"][i], err.apply(np.stack([x, y], axis=1), tr * fld.n_tables + tb)))
     return out
 
 
+def drawn_corners(scene) -> np.ndarray:
+    """Module corners as the layout draws them, (n, 4, 2) in the ortho CRS [m]."""
+    m = scene.field.modules
+    return scene.layout_error.apply(m["corners"], m["trow"] * scene.field.n_tables + m["table"])
+
+
+def write_truth_ortho(scene, out_dir: Path) -> str:
+    """``truth_ortho.geojson``: the true module polygons as they stand in the ortho, in the
+    ortho's CRS (a GeoJSON 2008 ``crs`` member names it), with module_id and table_id."""
+    fld = scene.field
+    m = fld.modules
+    feats = []
+    for i in range(fld.n_modules):
+        ring = [[round(float(x), 4), round(float(y), 4)] for x, y in m["corners"][i]]
+        ring.append(ring[0])
+        feats.append({"type": "Feature", "properties": {"module_id": m["module_id"][i], "table_id": m["table_id"][i]},
+                      "geometry": {"type": "Polygon", "coordinates": [ring]}})
+    name = "truth_ortho.geojson"
+    crs = {"type": "name", "properties": {"name": f"urn:ogc:def:crs:EPSG::{fld.epsg}"}}
+    with open(out_dir / name, "w", encoding="utf-8") as fh:
+        fh.write(json.dumps({"type": "FeatureCollection", "crs": crs, "features": feats}))
+    return name
+
+
 def write_layout(scene, out_dir: Path) -> str:
-    """Write the layout as drawn (shifted by ``layout.offset_m``); returns the file name."""
+    """Write the layout as drawn (with the errors of :mod:`pvscan.simulate.layout_error`);
+    returns the file name."""
     sc = scene.sc
     lay = sc["layout"]
     fld = scene.field
     m = fld.modules
-    off = np.asarray(lay["offset_m"], float)
+    drawn = drawn_corners(scene)
     fmt = lay["format"]
     tables = lay["features"] == "tables"
     records = []
     if tables:
-        for tid, xy in _table_corners(fld, off):
+        for tid, xy in _table_corners(fld, scene.layout_error):
             records.append(({"table_id": tid, "rows": fld.rows, "cols": fld.cols,
                              "orientation": sc["array"]["orientation"]}, xy))
     else:
@@ -212,7 +237,7 @@ def write_layout(scene, out_dir: Path) -> str:
             if lay["strings"]:
                 props["string_id"] = m["string_id"][i]
                 props["string_index"] = int(m["string_index"][i])
-            records.append((props, m["corners"][i] + off))
+            records.append((props, drawn[i]))
     if fmt == "geojson":
         tr = _to_lonlat(fld.epsg)
         feats = [{"type": "Feature", "properties": p, "geometry": {"type": "Polygon", "coordinates": [_ring(tr, xy)]}}
@@ -320,6 +345,7 @@ def write_truth(scene, truth: dict, out_dir: Path, extra: dict) -> tuple[str, st
     fld = scene.field
     m = fld.modules
     off = np.asarray(scene.sc["layout"]["offset_m"], float)
+    drawn = drawn_corners(scene)
     tr = _to_lonlat(fld.epsg)
     feats = []
     tags = scene.distractors_at_modules()
@@ -350,8 +376,9 @@ def write_truth(scene, truth: dict, out_dir: Path, extra: dict) -> tuple[str, st
                     props[k] = d.params[k]
         props = {k: _clean(v) for k, v in props.items()}
         feats.append({"type": "Feature", "properties": props,
-                      "geometry": {"type": "Polygon", "coordinates": [_ring(tr, m["corners"][i] + off)]}})
-    meta = {"layout_offset_m": [float(off[0]), float(off[1])], **extra}
+                      "geometry": {"type": "Polygon", "coordinates": [_ring(tr, drawn[i])]}})
+    meta = {"layout_offset_m": [float(off[0]), float(off[1])],
+            "layout_error": scene.layout_error.as_truth(), **extra}
     with open(out_dir / "truth.geojson", "w", encoding="utf-8") as fh:
         fh.write(json.dumps({"type": "FeatureCollection", "pvscan_truth": meta, "features": feats}))
     with open(out_dir / "truth.json", "w", encoding="utf-8") as fh:

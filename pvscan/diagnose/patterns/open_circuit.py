@@ -182,9 +182,11 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
                     and not _raise_carries_on(F, run) and _stands_out_of_its_row(F, run, float(cfg["open_string_row_radius_m"]),
                                                                float(cfg["open_string_row_share"]))):
                 # an established run takes in end modules of its string that are raised,
-                # if less clearly (an open string is normally the whole string)
+                # if less clearly (an open string is normally the whole string); a table row
+                # standing in for unknown strings is not a string, so its run is not extended
+                # (a healthy neighbour a spread warm would join it one time in six)
                 lo_end, hi_end = a, b
-                end_z = float(cfg["open_string_end_z"])
+                end_z = float(cfg["open_string_end_z"]) if F.extra.get("is_string", False) else np.inf
                 while lo_end > 0 and F.ok[idx[lo_end - 1]] and z[idx[lo_end - 1]] >= end_z:
                     lo_end -= 1
                 while hi_end < len(idx) and F.ok[idx[hi_end]] and z[idx[hi_end]] >= end_z:

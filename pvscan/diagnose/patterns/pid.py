@@ -66,7 +66,7 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     over its interior (:func:`pid_ring_contrast`), insensitive to the module-to-module
     spread, in robust standard deviations of healthy modules' contrast. A string
     qualifies when its module at the negative end reaches ``pid_seed_z`` (or reaches
-    ``pid_extend_z`` with the second module reaching ``pid_seed_z``) and is warmer than its
+    ``pid_faint_seed_z`` with the second module reaching ``pid_seed_z``) and is warmer than its
     surroundings; the affected run extends from the negative end while the
     contrast keeps above ``pid_extend_z`` on balance (the end maximises ``sum(z -
     pid_extend_z)``, so a single weaker module between stronger ones does not end it),
@@ -114,7 +114,7 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
         z_seed = float(cfg["pid_seed_z"])
         second = idx[1]
         seeded = z[first] >= z_seed or (
-            z[first] >= float(cfg["pid_extend_z"]) and not exclude[second] and bool(F.ok[second])
+            z[first] >= float(cfg["pid_faint_seed_z"]) and not exclude[second] and bool(F.ok[second])
             and z[second] >= z_seed)
         if not seeded:
             continue
@@ -138,12 +138,12 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
         # string's end is not PID, nor a string that a reflection or a seam warms as a
         # whole; but one weaker module right after the first does not undo a string that
         # shows the pattern further on
-        # (beyond one module, without the strongest of them: a single module capped at
-        # pid_z_cap plus the noise of two or three others must not reach pid_rest_z)
-        zs = zr[1:]
-        rest = np.cumsum(zs) / np.sqrt(np.arange(1, len(zr)))
+        rest = np.cumsum(zr[1:]) / np.sqrt(np.arange(1, len(zr)))
+        # over two or more modules after the first, the evidence holds without the strongest
+        # of them (leave-max-out): one strongly edged module and a little noise around it do
+        # not make a string PID, while every module of a PID string shows the pattern
         m_rest = np.arange(1, len(zr))
-        loo = (np.cumsum(zs) - np.maximum.accumulate(zs)) / np.sqrt(np.maximum(m_rest - 1, 1))
+        loo = (np.cumsum(zr[1:]) - np.maximum.accumulate(zr[1:])) / np.sqrt(np.maximum(m_rest - 1, 1))
         rest = np.where(m_rest >= 2, loo, rest)
         if np.max(rest[max(m_min - 2, 0):]) < float(cfg["pid_rest_z"]):
             continue

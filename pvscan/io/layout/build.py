@@ -115,7 +115,7 @@ def build_modules(gdf: gpd.GeoDataFrame, spec: LayoutSpec, module_spec: ModuleSp
     ok_g = ~missing
     problem[ok_g] = (shapely.is_empty(geoms[ok_g]) | shapely.has_z(geoms[ok_g])
                      | (shapely.get_type_id(geoms[ok_g]) != _POLYGON) | ~shapely.is_valid(geoms[ok_g])
-                     | ~(shapely.area(geoms[ok_g]) > 0))
+                     | ~(shapely.area(geoms[ok_g]) > 1e-6 * shapely.length(geoms[ok_g]) ** 2))  # as _as_polygon
     geom_err: LayoutError | None = None
     first_geom = n
     for k in np.flatnonzero(problem).tolist():

@@ -45,7 +45,10 @@ def _as_polygon(geom: Any, name: str, path: Path) -> Polygon:
             raise LayoutError(f"{path}: {name}: invalid polygon ({reason})")
         geom = max(polys, key=lambda g: g.area)
         warnings.warn(f"{path}: {name}: invalid polygon ({reason}) repaired", LayoutWarning, stacklevel=3)
-    if geom.area <= 0:
+    # A ring drawn on one line gets a sliver of area from reprojection and rounding; below
+    # 1e-6 of the squared outline (a strip a few micrometres wide per metre of outline) a
+    # polygon has no area at any survey precision (numerical zero, not a tuned threshold).
+    if geom.area <= 1e-6 * geom.length**2:
         raise LayoutError(f"{path}: {name}: polygon has zero area")
     return geom
 

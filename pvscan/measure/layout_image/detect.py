@@ -81,6 +81,26 @@ def _overlaps(a: TableFit, b: TableFit) -> bool:
     return abs(rel @ a.axis) < 0.5 * a.length_m and abs(rel @ a.across) < 0.5 * a.depth_m
 
 
+def _remainders(cand: Any, fit: TableFit, module_width_m: float) -> list[Any]:
+    """Parts of a candidate along its axis the fitted table does not cover.
+
+    Two tables of one row whose gap the mosaic closed form one candidate; the lattice takes
+    one of them, and each uncovered part longer than two modules is searched again.
+    """
+    from dataclasses import replace
+
+    a = cand.axis
+    c_fit = fit.origin + 0.5 * fit.length_m * fit.axis + 0.5 * fit.depth_m * fit.across
+    rel = float((c_fit - cand.centre) @ a)
+    half_fit = 0.5 * abs(fit.length_m * float(fit.axis @ a)) + 0.5 * abs(fit.depth_m * float(fit.across @ a))
+    lo_c, hi_c = -0.5 * cand.length_m, 0.5 * cand.length_m
+    out = []
+    for lo, hi in ((lo_c, rel - half_fit - 0.3), (rel + half_fit + 0.3, hi_c)):
+        if hi - lo > 2.0 * module_width_m:
+            out.append(replace(cand, centre=cand.centre + 0.5 * (lo + hi) * a, length_m=hi - lo))
+    return out
+
+
 def _order(fits: list[TableFit], azimuth_deg: float) -> list[tuple[int, int, TableFit]]:
     """(table row, table, fit) numbered as the module docstring says."""
     if not fits:
@@ -163,11 +183,18 @@ def detect_layout(orthos: Any, module: Any, layout: Any, settings: Any = None, p
     cands = find_tables(img, transform, module.width_m, cfg)
     del img
     fits: list[TableFit] = []
-    for k, cand in enumerate(cands):
+    queue = list(cands)
+    k = 0
+    while queue and k < 4 * len(cands) + 16:
+        cand = queue.pop(0)
+        k += 1
         fit = fit_table(orthos, cand, module, layout, cfg)
         if progress is not None:
-            progress("layout_detect", k + 1, len(cands))
-        if fit is None or fit.rows * fit.cols < int(cfg["min_table_modules"]):
+            progress("layout_detect", k, k + len(queue))
+        if fit is None:
+            continue
+        queue.extend(_remainders(cand, fit, module.width_m))
+        if fit.rows * fit.cols < int(cfg["min_table_modules"]):
             continue
         if fit.confidence < float(cfg["min_confidence"]):
             log.info("table candidate at (%.1f, %.1f) dropped: confidence %.2f", *cand.centre, fit.confidence)

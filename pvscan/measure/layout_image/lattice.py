@@ -298,15 +298,23 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
             level = _mode(t[inner], settings["level_bin_k"])
             band = glass_band(t[inner], level, settings["level_bin_k"], tol)
         glass = valid & (t >= band[0]) & (t <= band[1])
-        band_w = np.abs(w) < max(0.25 * depth, depth / 2 - 0.3)
-        s_lo, s_hi, c0, c1 = _extent(s[band_w], glass[band_w], valid[band_w], bin_m, close_m,
-                                     -half, half)
-        if not math.isfinite(s_lo):
-            return None
-        band_s = (s > s_lo + 0.3) & (s < s_hi - 0.3)
-        w_lo, w_hi, c2, c3 = _extent(w[band_s], glass[band_s], valid[band_s], bin_m, close_m, -half, half)
-        if not math.isfinite(w_lo):
-            return None
+        comb = _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd)
+        if comb is not None:
+            # the frame-line comb: the table's extent whatever the ground's temperature
+            _, ds, dw, ext_s, ext_w = comb
+            s_lo, s_hi, w_lo, w_hi = ds - 0.5 * ext_s, ds + 0.5 * ext_s, dw - 0.5 * ext_w, dw + 0.5 * ext_w
+            c0 = c1 = c2 = c3 = False
+            band_s = (s > s_lo + 0.3) & (s < s_hi - 0.3)
+        else:
+            band_w = np.abs(w) < max(0.25 * depth, depth / 2 - 0.3)
+            s_lo, s_hi, c0, c1 = _extent(s[band_w], glass[band_w], valid[band_w], bin_m, close_m,
+                                         -half, half)
+            if not math.isfinite(s_lo):
+                return None
+            band_s = (s > s_lo + 0.3) & (s < s_hi - 0.3)
+            w_lo, w_hi, c2, c3 = _extent(w[band_s], glass[band_s], valid[band_s], bin_m, close_m, -half, half)
+            if not math.isfinite(w_lo):
+                return None
         cut = (c0, c1, c2, c3)
         tv = np.where(valid, t, np.nan)
         ok = valid & band_s
@@ -348,16 +356,53 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
     across = np.array([-axis[1], axis[0]])
     if across @ face < 0:
         across = -across
+    orientations: tuple[str, ...] = ("portrait", "landscape")
+    if not any(cut):
+        comb = _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd)
+        if comb is not None:
+            orient, ds, dw, length, depth = comb
+            centre = centre + ds * axis + dw * across
+            orientations = (orient,)
     return _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band, cand, cut, module,
-                      layout, settings, gsd)
+                      layout, settings, gsd, orientations)
+
+
+def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd):
+    """Orientation, centre offset (along, across) [m] and extents [m] from the frame-line comb."""
+    from pvscan.measure.layout_image.periodic import comb_extent
+
+    cos_t = math.cos(math.radians(layout.tilt_deg))
+    gap = float(layout.gap_m)
+    s = (x - centre[0]) * axis[0] + (y - centre[1]) * axis[1]
+    w = (x - centre[0]) * across[0] + (y - centre[1]) * across[1]
+    reach = float(settings["comb_reach_m"])
+    best = None
+    for orient in ("portrait", "landscape"):
+        mod_s = module.width_m if orient == "portrait" else module.length_m
+        r = comb_extent(s, w, t, (-0.5 * length - reach, 0.5 * length + reach),
+                        (-0.5 * depth - reach, 0.5 * depth + reach), (-0.15 * depth, 0.15 * depth),
+                        mod_s + gap, gsd, float(settings["dip_fraction"]), float(settings["close_m"]))
+        if r is None:
+            continue
+        s_lo, s_hi, w_lo, w_hi, contrast = r
+        n = int(round((s_hi - s_lo) / (mod_s + gap)))
+        key = (n * (mod_s + gap), contrast, orient == layout.orientation)
+        if best is None or key > best[0]:
+            mod_w = (module.length_m if orient == "portrait" else module.width_m) * cos_t
+            best = (key, orient, s_lo, s_hi, w_lo, w_hi, n, mod_s, mod_w)
+    if best is None:
+        return None
+    _, orient, s_lo, s_hi, w_lo, w_hi, n, mod_s, mod_w = best
+    ext_s = n * mod_s + (n - 1) * gap
+    return orient, 0.5 * (s_lo + s_hi), 0.5 * (w_lo + w_hi), ext_s, w_hi - w_lo
 
 
 def _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band, cand, cut, module, layout,
-               settings, gsd) -> TableFit | None:
+               settings, gsd, orientations=("portrait", "landscape")) -> TableFit | None:
     cos_t = math.cos(math.radians(layout.tilt_deg))
     gap_s, gap_w = float(layout.gap_m), float(layout.gap_m) * cos_t
     best = None
-    for orient in ("portrait", "landscape"):
+    for orient in orientations:
         mod_s = module.width_m if orient == "portrait" else module.length_m
         mod_w = (module.length_m if orient == "portrait" else module.width_m) * cos_t
         n, rs = _lattice(length, mod_s, gap_s)

@@ -82,13 +82,13 @@ def _otsu(values: np.ndarray, bins: int = 256) -> float:
     return float(mids[int(np.argmax(between))])
 
 
-def _mode(values: np.ndarray, bin_k: float) -> float:
-    """Mode of a sample from a histogram smoothed over three bins [same unit]."""
+def _mode(values: np.ndarray, bin_k: float, weights: np.ndarray | None = None) -> float:
+    """Mode of a (weighted) sample from a histogram smoothed over three bins [same unit]."""
     lo, hi = float(values.min()), float(values.max())
     if hi - lo < bin_k:
         return float(np.median(values))
     nb = int(math.ceil((hi - lo) / bin_k)) + 1
-    hist, edges = np.histogram(values, bins=nb, range=(lo, lo + nb * bin_k))
+    hist, edges = np.histogram(values, bins=nb, range=(lo, lo + nb * bin_k), weights=weights)
     hist = ndi.uniform_filter1d(hist.astype(float), 3, mode="constant")
     k = int(np.argmax(hist))
     return float(0.5 * (edges[k] + edges[k + 1]))
@@ -97,10 +97,10 @@ def _mode(values: np.ndarray, bin_k: float) -> float:
 def glass_band(values: np.ndarray, level: float, bin_k: float, tol_k: float) -> tuple[float, float]:
     """Temperature band of the glass around its mode [degC].
 
-    From half of ``tol_k`` either side of the mode the band widens bin by bin while the
-    smoothed histogram keeps falling and stays above 2 % of the peak, at most ``tol_k`` each
+    From the mode the band widens bin by bin while the smoothed histogram keeps falling (a
+    rise of up to 10 % is a bump of the glass) and stays above 2 % of the peak, at most ``tol_k`` each
     way: it stops at the valley toward a neighbouring mode (shaded or sunlit ground a few
-    kelvin away) or where the glass runs out.
+    kelvin away) or where the glass runs out; never narrower than a quarter of ``tol_k``.
     """
     lo, hi = level - tol_k - bin_k, level + tol_k + bin_k
     sel = values[(values >= lo) & (values <= hi)]
@@ -108,18 +108,18 @@ def glass_band(values: np.ndarray, level: float, bin_k: float, tol_k: float) -> 
         return level - tol_k, level + tol_k
     nb = int(math.ceil((hi - lo) / bin_k))
     hist, edges = np.histogram(sel, bins=nb, range=(lo, lo + nb * bin_k))
-    hist = ndi.uniform_filter1d(hist.astype(float), 3, mode="constant")
+    hist = ndi.uniform_filter1d(hist.astype(float), 5, mode="constant")
     k = int(np.clip(np.searchsorted(edges, level) - 1, 0, nb - 1))
     floor = 0.02 * hist[k]
-    k_lo = int(np.clip(np.searchsorted(edges, level - 0.5 * tol_k) - 1, 0, nb - 1))
-    k_hi = int(np.clip(np.searchsorted(edges, level + 0.5 * tol_k) - 1, 0, nb - 1))
-    a = k_lo
-    while a > 0 and hist[a - 1] <= hist[a] * 1.02 and hist[a - 1] > floor:
+    a = k
+    while a > 0 and hist[a - 1] <= hist[a] * 1.1 and hist[a - 1] > floor:
         a -= 1
-    b = k_hi
-    while b < nb - 1 and hist[b + 1] <= hist[b] * 1.02 and hist[b + 1] > floor:
+    b = k
+    while b < nb - 1 and hist[b + 1] <= hist[b] * 1.1 and hist[b + 1] > floor:
         b += 1
-    return float(max(edges[a], level - tol_k)), float(min(edges[b + 1], level + tol_k))
+    lo_c = min(float(edges[a]), level - 0.25 * tol_k)
+    hi_c = max(float(edges[b + 1]), level + 0.25 * tol_k)
+    return max(lo_c, level - tol_k), min(hi_c, level + tol_k)
 
 
 def _min_rect(points: np.ndarray) -> tuple[np.ndarray, np.ndarray, float, float]:
@@ -178,6 +178,8 @@ def find_tables(img: np.ndarray, transform: Any, module_width_m: float, settings
     grad = np.hypot(gx, gy)
     win = max(3, int(round(settings["texture_window_modules"] * module_width_m / step)))
     energy = ndi.uniform_filter(grad, win)
+    # finer texture: high next to frame lines inside a table, low inside a shadow or on ground
+    fine = ndi.uniform_filter(grad, max(3, win // 2))
     sample = np.log(energy[valid] + 1e-6)
     if sample.size < 16:
         return []
@@ -203,10 +205,13 @@ def find_tables(img: np.ndarray, transform: Any, module_width_m: float, settings
         if region.sum() < min_px:
             continue
         sub = img[r0:r1, c0:c1]
-        vals = sub[region & np.isfinite(sub)]
+        inreg = region & np.isfinite(sub)
+        vals = sub[inreg]
         if vals.size < min_px:
             continue
-        level = _mode(vals, settings["level_bin_k"])
+        # the glass level: the mode of the region's temperatures weighted by fine texture, so a
+        # smooth shadow larger than the table does not take the place of the glass
+        level = _mode(vals, settings["level_bin_k"], fine[r0:r1, c0:c1][inreg])
         band = glass_band(vals, level, settings["level_bin_k"], tol)
         glass = region & (sub >= band[0]) & (sub <= band[1])
         glass = ndi.binary_closing(glass, close, iterations=2)
