@@ -237,13 +237,14 @@ def test_seam_at_a_large_module_spread_is_found_as_a_rate(rng):
     # a 1.8 K seam over six modules across a string boundary against a 0.6 K module spread
     # (three spreads: the simulator's default spread): whether the row shows it depends on
     # the draw of the six modules' own temperatures, so it is a rate over 20 random tables.
-    # Measured on seeds 1000-1059 (held apart from the suite's): 39 of 60 found (65 %), with
-    # 29 falsely levelled modules in 480 healthy rows (two-row tables of 24, strings of 12);
-    # the earlier edge pairing found 24 of 60 at 23 false modules. Bounds: found on at least
-    # 8 of 20 (binomial, n = 20, p = 0.65: P(X <= 7) = 0.6 %), and healthy tables of the same
-    # spread make at most 4 falsely levelled stretches over 20 tables of 4 rows (29 modules in
-    # 480 rows are about 6.5 stretches, 0.0135 per row; Poisson mean 1.08 over 80 rows:
-    # P(X >= 5) = 0.5 %)
+    # Measured on seeds 1000-1059 (calibration) 48 of 60 found and on 2000-2059 (held out)
+    # 40 of 60, about 70 %, with 33 and 0 falsely levelled modules in 480 healthy rows
+    # (two-row tables of 24, strings of 12); the earlier edge pairing found 24 of 60 at 23
+    # false modules on 1000-1059. Bounds: found on at least
+    # 9 of 20 (binomial, n = 20, p = 0.7: P(X <= 8) = 0.5 %), and healthy tables of the same
+    # spread make at most 4 falsely levelled stretches over 20 tables of 4 rows (33 modules in
+    # 960 rows of both seed ranges are about 7 stretches, under 0.01 per row; Poisson mean
+    # 0.8 over 80 rows, taken as 1.08: P(X >= 5) = 0.5 %)
     found = false_stretches = 0
     for _ in range(20):
         m, t = _rows(rng, spread=0.6)
@@ -253,5 +254,5 @@ def test_seam_at_a_large_module_spread_is_found_as_a_rate(rng):
         found += any(set(idx.tolist()) <= set(s.modules.tolist()) for s in out)
         m0, t0 = _rows(rng, n_tables=2, spread=0.6)
         false_stretches += len(seams.find_stretches(m0, t0))
-    assert found >= 8
+    assert found >= 9
     assert false_stretches <= 4

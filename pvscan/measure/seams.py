@@ -23,9 +23,9 @@ module. So, along every table row (modules ordered by ``table_col``):
    ``match_rel`` x the offset of each other. Found stretches are levelled in a working copy
    and the row is fitted again for more;
 3. the stretch is an artefact, and is levelled by its offset, when it covers modules of
-   more than one string, or when another row of its table has a stretch over at least half of the same columns at a similar level (a
-   seam or a reflection crosses rows; a defect of one string does not repeat in the row
-   beside it).
+   more than one string, or when another row of its table has a stretch over at least
+   half of the same columns at a similar level (a seam or a reflection crosses rows; a
+   defect of one string does not repeat in the row beside it).
 
 Stretches that run to the end of a row are left alone (which side would be the artefact is
 not known from the row). Every module, cell and substring statistic of a levelled module
@@ -133,8 +133,7 @@ def _closed_stretches(t: np.ndarray, cfg: Mapping[str, Any], sigma: float = 0.0)
         cost = np.where(fin, np.abs(dev), 0.0).sum(axis=1)
         lo_l, hi_l, n_l = _masked_median(work, left)
         lo_rr, hi_rr, n_r = _masked_median(work, right)
-        lo_o, hi_o, n_out = _masked_median(work, left | right)
-        m_l, m_r, m_out = 0.5 * (lo_l + hi_l), 0.5 * (lo_rr + hi_rr), 0.5 * (lo_o + hi_o)
+        m_l, m_r = 0.5 * (lo_l + hi_l), 0.5 * (lo_rr + hi_rr)
         # the inside level at the order statistic nearer the outside level
         lev_in = np.where(m_in >= m_rest, lo_in, hi_in)
         off = m_in - m_rest
