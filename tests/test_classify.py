@@ -868,6 +868,12 @@ def test_open_module_floor_is_the_likelihood_ratio_boundary():
     for rise in (1.9, 3.0, 4.2):
         x = float(open_module_floor(rise, s, 0.0, prior))
         assert (1 - prior) * norm.pdf(x, 0.0, s) == pytest.approx(prior * norm.pdf(x, rise, s), rel=1e-9)
+    # with an uncertain rise, open modules scatter as N(rise, sqrt(s^2 + (c rise)^2)): the
+    # boundary of the two densities again (unequal variances)
+    for rise, c in ((1.9, 0.2), (3.5, 0.2), (4.2, 0.1)):
+        x = float(open_module_floor(rise, s, 0.0, prior, c))
+        so = np.hypot(s, c * rise)
+        assert (1 - prior) * norm.pdf(x, 0.0, s) == pytest.approx(prior * norm.pdf(x, rise, so), rel=1e-9)
     # never below z_min spreads
     assert float(open_module_floor(1.9, s, 10.0, prior)) == pytest.approx(10.0 * s)
 
