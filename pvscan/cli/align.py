@@ -22,7 +22,7 @@ def _fmt(v: float, nd: int = 3) -> str:
               help="Pipeline settings (a tuned copy of pipelines/post_flight.toml); uses [register].")
 @click.option("--overwrite", is_flag=True, help="Replace an existing output file.")
 @handle_errors
-def align_cmd(flight, out_path, pipeline_path, overwrite):
+def align_cmd(flight: Path, out_path: Path, pipeline_path: Path | None, overwrite: bool) -> None:
     """Place the layout of FLIGHT.toml on its orthomosaic (shift, rotation, scale) and write
     the placed module footprints (with the layout's properties) to --out.
 

@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
+from typing import Any
 
 import click
 
@@ -19,7 +20,8 @@ from pvscan.cli._common import echo, handle_errors
 @click.option("--force", is_flag=True,
               help="Score a truth and a result of different flights (site, flight id, start) anyway.")
 @handle_errors
-def evaluate_cmd(truth_dir, result_dir, json_path, pipeline_path, force):
+def evaluate_cmd(truth_dir: Path, result_dir: Path, json_path: Path | None, pipeline_path: Path | None,
+                 force: bool) -> None:
     """Score RESULT_DIR (from `pvscan inspect`) against TRUTH_DIR (from `pvscan simulate`).
 
     Prints detection precision/recall, per-class recall, the confusion matrix, false alarms,
@@ -45,7 +47,7 @@ def evaluate_cmd(truth_dir, result_dir, json_path, pipeline_path, force):
     echo(format_report(_rounded(scores)))
 
 
-def _rounded(value, decimals: int = 3):
+def _rounded(value: Any, decimals: int = 3) -> Any:
     """A copy of the scores with every float rounded for printing (``-0.0`` shown as ``0.0``);
     the JSON file keeps full precision."""
     if isinstance(value, float):

@@ -11,7 +11,7 @@ _DB = click.argument("site_db", metavar="SITE.gpkg", type=click.Path(dir_okay=Fa
 
 
 @click.group("history")
-def history_group():
+def history_group() -> None:
     """Site history: store inspected flights of one site and report what changed."""
 
 
@@ -24,7 +24,7 @@ def history_group():
 @click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
               help="Pipeline settings file (its [history] section).")
 @handle_errors
-def add_cmd(site_db, result_dir, replace, pipeline_path):
+def add_cmd(site_db: Path, result_dir: Path, replace: bool, pipeline_path: Path | None) -> None:
     """Store the results of one `pvscan inspect` run (creates SITE.gpkg when needed)."""
     from pvscan.history import add_flight
     from pvscan.io.settings import load_pipeline
@@ -48,7 +48,7 @@ def add_cmd(site_db, result_dir, replace, pipeline_path):
 @history_group.command("list")
 @_DB
 @handle_errors
-def list_cmd(site_db):
+def list_cmd(site_db: Path) -> None:
     """List the flights stored, oldest first."""
     from pvscan.history import list_flights
 
@@ -76,7 +76,8 @@ def list_cmd(site_db):
 @click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
               help="Pipeline settings file (its [history] section).")
 @handle_errors
-def changes_cmd(site_db, flight_from, flight_to, out_path, overwrite, pipeline_path):
+def changes_cmd(site_db: Path, flight_from: str | None, flight_to: str | None, out_path: Path, overwrite: bool,
+                pipeline_path: Path | None) -> None:
     """Module-by-module change between two flights (default: the two latest)."""
     from pvscan.history import CHANGE_CLASSES, compare_flights, write_changes
     from pvscan.io.settings import load_pipeline
@@ -112,7 +113,7 @@ def changes_cmd(site_db, flight_from, flight_to, out_path, overwrite, pipeline_p
     echo(f"wrote {out_path}")
 
 
-def _k(v) -> str:
+def _k(v: float | None) -> str:
     return "?" if v is None else f"{v:.1f}"
 
 
@@ -124,7 +125,7 @@ def _k(v) -> str:
 @click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
               help="Pipeline settings file (its [history] section).")
 @handle_errors
-def trend_cmd(site_db, out_dir, overwrite, pipeline_path):
+def trend_cmd(site_db: Path, out_dir: Path, overwrite: bool, pipeline_path: Path | None) -> None:
     """Counts, losses and temperatures per flight; per-module series."""
     from pvscan.history import site_trend, write_trend
     from pvscan.io.settings import load_pipeline
@@ -142,7 +143,7 @@ def trend_cmd(site_db, out_dir, overwrite, pipeline_path):
 @click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
               help="Pipeline settings file (its [history] section).")
 @handle_errors
-def degradation_cmd(site_db, out_path, overwrite, pipeline_path):
+def degradation_cmd(site_db: Path, out_path: Path, overwrite: bool, pipeline_path: Path | None) -> None:
     """Normalised delta T flight by flight and its rate of change per year (Theil-Sen) of every
     module that was ever anomalous."""
     import math
@@ -174,7 +175,7 @@ def degradation_cmd(site_db, out_path, overwrite, pipeline_path):
 @click.argument("events_csv", metavar="EVENTS.csv",
                 type=click.Path(dir_okay=False, path_type=Path))
 @handle_errors
-def maintenance_cmd(site_db, events_csv):
+def maintenance_cmd(site_db: Path, events_csv: Path) -> None:
     """Import repairs/replacements (CSV: date, module_id, action, note; `,` or `;`); idempotent."""
     from pvscan.history import import_maintenance
 

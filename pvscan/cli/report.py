@@ -18,7 +18,7 @@ from pvscan.cli._common import Progress, echo, handle_errors
 @click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
               help="Pipeline settings whose [report] section to use.")
 @handle_errors
-def report_cmd(result_dir, out_path, orthos, pipeline_path):
+def report_cmd(result_dir: Path, out_path: Path | None, orthos: tuple[Path, ...], pipeline_path: Path | None) -> None:
     """Write report.html for RESULT_DIR (a folder written by `pvscan inspect`).
 
     The report is one HTML file with its images embedded: it opens in any browser, offline,
