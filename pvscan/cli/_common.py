@@ -9,6 +9,7 @@ import sys
 import traceback
 import warnings
 from collections.abc import Callable
+from pathlib import Path
 from typing import Any, ParamSpec, TextIO, TypeVar
 
 import click
@@ -17,6 +18,7 @@ from pvscan.errors import PvscanError, PvscanWarning
 
 P = ParamSpec("P")
 R = TypeVar("R")
+F = TypeVar("F", bound=Callable[..., Any])
 
 EXIT_OK = 0
 EXIT_INPUT = 1
@@ -33,6 +35,16 @@ def configure_logging(verbosity: int) -> None:
         level = logging.ERROR
     logging.basicConfig(level=level, format="pvscan: %(levelname)s: %(message)s", force=True)
     logging.getLogger("pvscan").setLevel(level)
+
+
+def pipeline_option(help: str) -> Callable[[F], F]:
+    """``--pipeline FILE``: the pipeline settings a command reads (``help`` says which section)."""
+    return click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path), help=help)
+
+
+def overwrite_option(help: str) -> Callable[[F], F]:
+    """``--overwrite``: replace an existing output (``help`` says which)."""
+    return click.option("--overwrite", is_flag=True, help=help)
 
 
 def verbosity() -> int:

@@ -7,7 +7,7 @@ from typing import Any
 
 import click
 
-from pvscan.cli._common import echo, handle_errors
+from pvscan.cli._common import echo, handle_errors, pipeline_option
 
 
 @click.command("evaluate")
@@ -15,8 +15,7 @@ from pvscan.cli._common import echo, handle_errors
 @click.argument("result_dir", type=click.Path(file_okay=False, path_type=Path))
 @click.option("--json", "json_path", type=click.Path(dir_okay=False, path_type=Path),
               help="Also write the scores to this JSON file.")
-@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
-              help="Pipeline settings whose [evaluate] section sets the module matching.")
+@pipeline_option("Pipeline settings whose [evaluate] section sets the module matching.")
 @click.option("--force", is_flag=True,
               help="Score a truth and a result of different flights (site, flight id, start) anyway.")
 @handle_errors

@@ -5,7 +5,7 @@ from pathlib import Path
 
 import click
 
-from pvscan.cli._common import Progress, echo, handle_errors
+from pvscan.cli._common import Progress, echo, handle_errors, overwrite_option, pipeline_option
 
 _DB = click.argument("site_db", metavar="SITE.gpkg", type=click.Path(dir_okay=False, path_type=Path))
 
@@ -21,8 +21,7 @@ def history_group() -> None:
                 type=click.Path(file_okay=False, path_type=Path))
 @click.option("--replace", is_flag=True,
               help="Replace a stored flight of the same id whose results differ.")
-@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
-              help="Pipeline settings file (its [history] section).")
+@pipeline_option("Pipeline settings file (its [history] section).")
 @handle_errors
 def add_cmd(site_db: Path, result_dir: Path, replace: bool, pipeline_path: Path | None) -> None:
     """Store the results of one `pvscan inspect` run (creates SITE.gpkg when needed)."""
@@ -72,9 +71,8 @@ def list_cmd(site_db: Path) -> None:
 @click.option("--to", "flight_to", metavar="FLIGHT", help="Later flight id.")
 @click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
               help="GeoJSON file to write (RFC 7946).")
-@click.option("--overwrite", is_flag=True, help="Replace an existing --out file.")
-@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
-              help="Pipeline settings file (its [history] section).")
+@overwrite_option("Replace an existing --out file.")
+@pipeline_option("Pipeline settings file (its [history] section).")
 @handle_errors
 def changes_cmd(site_db: Path, flight_from: str | None, flight_to: str | None, out_path: Path, overwrite: bool,
                 pipeline_path: Path | None) -> None:
@@ -121,9 +119,8 @@ def _k(v: float | None) -> str:
 @_DB
 @click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=Path),
               help="Folder to write (CSV series and PNG plots).")
-@click.option("--overwrite", is_flag=True, help="Replace an existing, non-empty folder.")
-@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
-              help="Pipeline settings file (its [history] section).")
+@overwrite_option("Replace an existing, non-empty folder.")
+@pipeline_option("Pipeline settings file (its [history] section).")
 @handle_errors
 def trend_cmd(site_db: Path, out_dir: Path, overwrite: bool, pipeline_path: Path | None) -> None:
     """Counts, losses and temperatures per flight; per-module series."""
@@ -139,9 +136,8 @@ def trend_cmd(site_db: Path, out_dir: Path, overwrite: bool, pipeline_path: Path
 @_DB
 @click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
               help="CSV file to write (one row per module ever anomalous, one column per flight).")
-@click.option("--overwrite", is_flag=True, help="Replace an existing --out file.")
-@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
-              help="Pipeline settings file (its [history] section).")
+@overwrite_option("Replace an existing --out file.")
+@pipeline_option("Pipeline settings file (its [history] section).")
 @handle_errors
 def degradation_cmd(site_db: Path, out_path: Path, overwrite: bool, pipeline_path: Path | None) -> None:
     """Normalised delta T flight by flight and its rate of change per year (Theil-Sen) of every

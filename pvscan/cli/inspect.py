@@ -5,16 +5,15 @@ from pathlib import Path
 
 import click
 
-from pvscan.cli._common import Progress, echo, handle_errors
+from pvscan.cli._common import Progress, echo, handle_errors, overwrite_option, pipeline_option
 
 
 @click.command("inspect")
 @click.argument("flight", type=click.Path(dir_okay=False, path_type=Path))
 @click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=Path),
               help="Result folder (written atomically; must not exist unless --overwrite).")
-@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
-              help="Pipeline settings (a tuned copy of pipelines/post_flight.toml).")
-@click.option("--overwrite", is_flag=True, help="Replace an existing result folder.")
+@pipeline_option("Pipeline settings (a tuned copy of pipelines/post_flight.toml).")
+@overwrite_option("Replace an existing result folder.")
 @click.option("--no-report", is_flag=True, help="Do not write report.html.")
 @click.option("--shift", "shift", type=float, nargs=2, default=None, metavar="DX DY",
               help="Use this known layout offset (east, north in the ortho's CRS) [m] instead of the measured one.")

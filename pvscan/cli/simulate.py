@@ -7,7 +7,7 @@ from typing import TYPE_CHECKING, Any
 
 import click
 
-from pvscan.cli._common import Progress, echo, handle_errors
+from pvscan.cli._common import Progress, echo, handle_errors, overwrite_option
 
 if TYPE_CHECKING:
     from pvscan.simulate import SimulationResult
@@ -19,7 +19,7 @@ if TYPE_CHECKING:
               help="Flight folder to write (must not exist unless --overwrite).")
 @click.option("--seed", type=click.IntRange(min=0), default=0, show_default=True,
               help="Seed of every random choice; the same seed gives identical files.")
-@click.option("--overwrite", is_flag=True, help="Replace an existing simulated flight folder.")
+@overwrite_option("Replace an existing simulated flight folder.")
 @click.option("--date", "flight_date", default=None, metavar="YYYY-MM-DD",
               help="Fly on this date instead of the scenario's (time of day and UTC offset kept).")
 @click.option("--flight-id", default=None, help="Flight id written into flight.toml and the truth.")
