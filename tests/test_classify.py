@@ -887,8 +887,8 @@ def test_warm_healthy_module_at_low_irradiance_and_wind_is_not_open(rng):
     # outcome is a rate over 20 random plants: called open on at most 6 (measured 34 of 360
     # plants on seeds 100-139, 1000-1079, 7000-7039 and ten streams of 20, about 10 %;
     # binomial, n = 20, p = 0.1: P(X >= 7) = 0.24 %, p = 0.125: 0.8 %). Without the floor
-    # (prior 0.5 and module_z 1: floor rise/2) it is called on at least 15 (the module sits at ratio ~1 of the rise; measured
-    # 27 of 30; binomial, p = 0.9: P(X <= 14) = 1.1 %)
+    # (prior 0.5 and module_z 1: floor rise/2) it is called on at least 15 (the module sits
+    # at ratio ~1 of the rise; measured 27 of 30; binomial, p = 0.9: P(X <= 14) = 1.1 %)
     warm = warm_free = 0
     for _ in range(20):
         p = Plant(rng, poa=650.0, wind=5.0, module_spread=0.6, n_tables=3)
