@@ -110,7 +110,9 @@ def _compute(con: sqlite3.Connection, cfg: Mapping) -> Degradation:
         marks = ", ".join("?" * len(extra))
         more = con.execute("SELECT module_id, table_id, flight_id, delta_t_norm_k, defect, valid_fraction "
                            f"FROM module_results WHERE module_id IN ({marks})", extra).fetchall()
-        series = pd.concat([series, pd.DataFrame(more, columns=series.columns)], ignore_index=True)
+        # one frame from both row lists (concatenating onto an empty frame changes dtypes
+        # between pandas versions)
+        series = pd.DataFrame(list(rows) + list(more), columns=series.columns)
     series["delta_t_norm_k"] = pd.to_numeric(series["delta_t_norm_k"]).astype(float)
     own = [found.get((f, m)) for f, m in zip(series["flight_id"], series["module_id"])]
     series["source"] = ["anomaly" if v is not None else "module" for v in own]
