@@ -14,13 +14,15 @@ Flights run on a process pool (``--workers``, default 2); each finished flight i
 ``--summarise`` prints (and ``--notes`` writes) the tables of any records file.
 
 Reported per family, per kind of flight (fixed / tracker, north / south, morning / noon /
-afternoon by the sun's hour angle, hot / cold ground) and per seed set: worst / 10th
+afternoon by the sun's hour angle, hot / cold ground, the ortho's surface model: true ortho /
+smoothed surface / ground level, level / sloping terrain) and per seed set: worst / 10th
 percentile / median of module recall and precision, the power-loss ratio predicted / true
 (worst low, p10, median, p90, worst high), false alarms per 1,000 healthy modules and the
 registration error; how many flights ``inspect`` refused (exit 1), how many it flagged
 ``validity.ok: false``, and every flight that scored recall or precision below 0.9 (or a
 loss ratio outside 0.5-2) and yet called itself valid ("wrong and valid", the worst
-outcome), with what looked wrong. The registration error is ``pvscan evaluate``'s: the
+outcome), with what looked wrong. ``inspect`` runs with ``--no-report`` (the report is not
+scored). The registration error is ``pvscan evaluate``'s: the
 distance between the reported layout shift and the true layout offset [m]. Wall times are
 printed, never asserted.
 """
@@ -96,7 +98,7 @@ def run_flight(job: dict) -> dict:
         meta = json.loads((flight / "truth.json").read_text())
         rec["n_modules"] = meta.get("n_modules")
         rec["layout_error"] = meta.get("layout_error")
-        p = subprocess.run(PVSCAN + ["-q", "inspect", str(flight / "flight.toml"), "--out", str(result)],
+        p = subprocess.run(PVSCAN + ["-q", "inspect", str(flight / "flight.toml"), "--out", str(result), "--no-report"],
                            capture_output=True, text=True)
         rec["inspect_exit"] = p.returncode
         if p.returncode:
@@ -183,11 +185,29 @@ def _group(recs: list[dict]) -> dict:
     }
 
 
-STRATA = ("family", "kind", "hemisphere", "hour", "ground")
+STRATA = ("family", "kind", "hemisphere", "hour", "ground", "ortho_relief", "terrain")
+
+
+def _enrich(records: list[dict]) -> None:
+    """Strata of the simulator's optics and terrain, from the scenario the seed draws
+    (:func:`pvscan.simulate.sampler.draw_scenario` is deterministic); the demo has neither."""
+    from pvscan.simulate.sampler import draw_scenario
+
+    for r in records:
+        if "ortho_relief" in r:
+            continue
+        if r["family"] == "demo":
+            r["ortho_relief"], r["terrain"] = "true_ortho", "level"
+            continue
+        sc = draw_scenario(int(r["seed"]), r["family"])
+        f = float(sc.get("ortho", {}).get("relief_height_fraction", 0.0))
+        r["ortho_relief"] = "true_ortho" if f == 0 else ("ground_level" if f >= 1 else "smoothed_surface")
+        r["terrain"] = "level" if float(sc.get("terrain", {}).get("slope_deg", 0.0)) == 0 else "sloping"
 
 
 def summarise(records: list[dict]) -> dict:
     """Per seed set: one row per family and per value of each stratum, and 'all'."""
+    _enrich(records)
     table: dict = {}
     for sset in ("calibration", "held-out"):
         recs = [r for r in records if r["set"] == sset]
@@ -321,7 +341,7 @@ def main(argv=None) -> int:
     log = args.out / "records.jsonl"
     t0 = time.perf_counter()
     records = []
-    with ProcessPoolExecutor(max_workers=args.workers) as pool, open(log, "a", encoding="utf-8") as fh:
+    with ProcessPoolExecutor(max_workers=args.workers) as pool, open(log, "w", encoding="utf-8") as fh:
         futs = [pool.submit(run_flight, j) for j in jobs]
         for k, f in enumerate(as_completed(futs), 1):
             r = f.result()
