@@ -15,21 +15,32 @@ from __future__ import annotations
 import contextlib
 import logging
 import time
-from dataclasses import dataclass, field, replace as dc_replace
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from dataclasses import replace as dc_replace
 from pathlib import Path
-from typing import Any, Callable
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
 
+from pvscan._typing import ProgressFn
 from pvscan.io.manifest import Flight, load_flight
 from pvscan.io.settings import Pipeline, load_pipeline
 
-__all__ = ["inspect_flight", "InspectionResult", "measure_flight", "true_statistics"]
+if TYPE_CHECKING:
+    import geopandas as gpd
+
+    from pvscan.measure.conditions import FlightConditions
+    from pvscan.measure.register import Registration
+    from pvscan.measure.seams import Stretch
+    from pvscan.measure.validity import Validity
+    from pvscan.measure.zonal import ZonalStats
+
+__all__ = ["inspect_flight", "InspectionResult", "Measurement", "OrthoInfo", "SeamLevelling", "measure_flight",
+           "true_statistics", "write_results"]
 
 log = logging.getLogger(__name__)
-
-ProgressFn = Callable[[str, int, int], None]
 
 
 @dataclass
@@ -46,16 +57,121 @@ class InspectionResult:
         Ranked anomalies.
     summary : dict
         The ``summary.json`` document.
+    files : dict
+        Result name -> path of each file written (empty when nothing was written).
     timings_s : dict
         Wall time per stage [s].
     """
 
     out_dir: Path | None
-    modules: Any
+    modules: gpd.GeoDataFrame
     anomalies: pd.DataFrame
-    summary: dict
-    files: dict = field(default_factory=dict)
-    timings_s: dict = field(default_factory=dict)
+    summary: dict[str, Any]
+    files: dict[str, Path] = field(default_factory=dict)
+    timings_s: dict[str, float] = field(default_factory=dict)
+
+
+# ----------------------------------------------------------------------------- stage records
+@dataclass(frozen=True)
+class OrthoInfo:
+    """The orthomosaic tiles measured (``summary.json`` ``inputs``).
+
+    Attributes
+    ----------
+    files : list of str
+        Tile paths.
+    crs : str
+        The ortho's CRS (the site CRS of every geometry before output).
+    gsd_m : float
+        Finest ground sampling distance of the tiles [m/px].
+    tiles : int
+        Number of tiles.
+    """
+
+    files: list[str]
+    crs: str
+    gsd_m: float
+    tiles: int
+
+    def to_dict(self) -> dict[str, Any]:
+        """The keys of ``summary.json`` ``inputs``."""
+        return {"files": list(self.files), "crs": self.crs, "gsd_m": self.gsd_m, "tiles": self.tiles}
+
+
+@dataclass(frozen=True)
+class SeamLevelling:
+    """The row stretches levelled as image artefacts (:mod:`pvscan.measure.seams`).
+
+    Attributes
+    ----------
+    stretches : list of Stretch
+        Levelled stretches (empty when none, or when ``[seams] enabled`` is false).
+    offsets_k : numpy.ndarray
+        (n,) offset subtracted from each module's temperatures [K] (0 where none).
+    enabled : bool
+        Whether ``[seams] enabled`` was on.
+    """
+
+    stretches: list[Stretch]
+    offsets_k: np.ndarray
+    enabled: bool
+
+    def to_dict(self, module_ids: np.ndarray) -> dict[str, Any]:
+        """``summary.json`` ``image_artefacts``; ``module_ids`` name the modules by index."""
+        if not self.enabled:
+            return {"levelling": False}
+        return {"levelling": True,
+                "stretches": [{"modules": [str(module_ids[i]) for i in s.modules],
+                               "offset_k": round(float(s.offset_k), 3), "reason": s.reason}
+                              for s in self.stretches],
+                "levelled_modules": int(np.count_nonzero(self.offsets_k))}
+
+
+@dataclass(frozen=True)
+class Measurement:
+    """What :func:`measure_flight` hands the diagnosis: every module measured and its conditions.
+
+    Attributes
+    ----------
+    modules : geopandas.GeoDataFrame
+        The modules in the layout's positions (ortho CRS) with their local frames.
+    registration : Registration
+        How the layout was placed on the ortho.
+    shift : (float, float)
+        The layout shift applied, east and north [m] (``(0, 0)`` when none).
+    ortho_values : dict
+        The ortho value check (:func:`pvscan.measure.plausibility.check_ortho_values`).
+    stats : ZonalStats
+        True glass temperatures [degC], levelled for image artefacts along the rows when
+        ``[seams] enabled``.
+    stats_apparent : ZonalStats
+        Apparent temperatures as measured [degC].
+    conditions : pandas.DataFrame
+        Per-module conditions (:func:`pvscan.measure.conditions.module_conditions`).
+    flight_conditions : FlightConditions
+        The flight's mean conditions.
+    validity : Validity
+        Acquisition limits and measurement checks.
+    orthos_info : OrthoInfo
+        The tiles measured.
+    radiometry : dict
+        Keywords of ``radiometry.true_from_apparent`` the run used (scalars or (n,) arrays).
+    seams : SeamLevelling
+        The stretches levelled and the offsets subtracted.
+    """
+
+    modules: gpd.GeoDataFrame
+    registration: Registration
+    shift: tuple[float, float]
+    ortho_values: dict[str, Any]
+    stats: ZonalStats
+    stats_apparent: ZonalStats
+    conditions: pd.DataFrame
+    flight_conditions: FlightConditions
+    validity: Validity
+    orthos_info: OrthoInfo
+    radiometry: dict[str, Any]
+    seams: SeamLevelling
 
 
 # ----------------------------------------------------------------------------- radiometry
@@ -64,7 +180,7 @@ _ORDER_ARRAYS = ("cell_median", "cell_p95", "sub_median", "sub_p95")
 _CHUNK_MODULES = 8192
 
 
-def true_statistics(stats, params: dict):
+def true_statistics(stats: ZonalStats, params: Mapping[str, Any]) -> ZonalStats:
     """Convert apparent-temperature statistics to true glass temperature.
 
     The conversion (``radiometry.true_from_apparent``) is monotonic, so order statistics
@@ -76,7 +192,7 @@ def true_statistics(stats, params: dict):
     ----------
     stats : ZonalStats
         Statistics of apparent temperature [degC].
-    params : dict
+    params : mapping
         Keywords of ``radiometry.true_from_apparent``: scalars or per-module arrays (n,).
 
     Returns
@@ -98,18 +214,8 @@ def true_statistics(stats, params: dict):
                                   **part)
         for k in _ORDER_ARRAYS:
             arrays[k][sl] = conv[k]
-    return dc_replace(stats, table=table, **arrays)
-
-
-def _artefact_summary(seams, modules, enabled: bool) -> dict:
-    """summary.json's account of the row stretches levelled as image artefacts (pvscan.measure.seams)."""
-    if not enabled or seams is None:
-        return {"levelling": False}
-    ids = modules["module_id"].astype(str).to_numpy() if "module_id" in modules else np.arange(len(modules)).astype(str)
-    return {"levelling": True,
-            "stretches": [{"modules": [str(ids[i]) for i in s.modules], "offset_k": round(float(s.offset_k), 3),
-                           "reason": s.reason} for s in seams["stretches"]],
-            "levelled_modules": int(np.count_nonzero(seams["offsets_k"]))}
+    return dc_replace(stats, table=table, cell_median=arrays["cell_median"], cell_p95=arrays["cell_p95"],
+                      sub_median=arrays["sub_median"], sub_p95=arrays["sub_p95"])
 
 
 # ----------------------------------------------------------------------------- stages
@@ -118,7 +224,7 @@ def _clock() -> tuple[float, float]:
     return time.perf_counter(), time.process_time()
 
 
-def _record(timings: dict, stage: str, t0: tuple[float, float]) -> None:
+def _record(timings: dict[str, float], stage: str, t0: tuple[float, float]) -> None:
     """Store a stage's wall time [s] in ``timings`` and log its wall and CPU time."""
     wall, cpu = time.perf_counter() - t0[0], time.process_time() - t0[1]
     timings[stage] = wall
@@ -141,8 +247,8 @@ def _rss() -> tuple[str, str]:
 
 
 def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | None = None,
-                   timings: dict | None = None, scheduler: Any = None, *,
-                   shift: tuple[float, float] | None = None, accept_poor_registration: bool = False):
+                   timings: dict[str, float] | None = None, scheduler: Any = None, *,
+                   shift: tuple[float, float] | None = None, accept_poor_registration: bool = False) -> Measurement:
     """Read, register and measure a flight: modules, registration, true statistics, conditions.
 
     ``scheduler`` (see :mod:`pvscan.tasks`): where the block statistics run; None for this
@@ -157,19 +263,15 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
 
     Returns
     -------
-    dict
-        ``modules`` (layout positions), ``registration``, ``stats`` (true temperature,
-        levelled for image artefacts along the rows when ``[seams] enabled``),
-        ``stats_apparent`` (as measured), ``conditions`` (per module), ``flight_conditions``,
-        ``validity``, ``orthos_info``, ``seams`` (``stretches``: list of
-        :class:`pvscan.measure.seams.Stretch`; ``offsets_k``: (n,) offsets subtracted [K]).
+    Measurement
     """
     from pvscan.errors import RegistrationError
-    from pvscan.measure import conditions as cond_mod
-    from pvscan.measure import register, validity as val_mod, zonal
-    from pvscan.measure.plausibility import check_ortho_values
     from pvscan.io.layout import read_layout
     from pvscan.io.ortho import open_orthos
+    from pvscan.measure import register, zonal
+    from pvscan.measure import validity as val_mod
+    from pvscan.measure.conditions import conditions_for_flight
+    from pvscan.measure.plausibility import check_ortho_values
 
     timings = {} if timings is None else timings
     t0 = _clock()
@@ -194,7 +296,7 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
                 f"{flight.flight.layout}: {reg.message}; fit the layout with `pvscan align {flight.path} --out "
                 f"corrected.gpkg` and use the corrected layout, correct the layout, or give a known offset with "
                 f"--shift DX DY (--accept-poor-registration runs anyway, flagged invalid)")
-        applied_shift = tuple(reg.shift_m) if reg.applied else (0.0, 0.0)
+        applied_shift = (float(reg.shift_m[0]), float(reg.shift_m[1])) if reg.applied else (0.0, 0.0)
         measured = register.apply_placement(modules, reg.placement) if reg.applied else modules
         _record(timings, "register", t0)
 
@@ -202,24 +304,12 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         stats_app = zonal.zonal_stats(orthos, measured, flight.module, settings["zonal"], progress=progress,
                                       scheduler=scheduler)
         _record(timings, "zonal", t0)
-        orthos_info = {
-            "files": [str(t.path) for t in orthos.tiles],
-            "crs": orthos.crs.to_string(),
-            "gsd_m": float(orthos.gsd_m),
-            "tiles": len(orthos.tiles),
-        }
+        orthos_info = OrthoInfo(files=[str(t.path) for t in orthos.tiles], crs=orthos.crs.to_string(),
+                                gsd_m=float(orthos.gsd_m), tiles=len(orthos.tiles))
         gsd = float(orthos.gsd_m)
 
     t0 = _clock()
-    series = cond_mod.read_weather_series(flight.conditions.series) if flight.conditions.series else None
-    frames = cond_mod.read_frames(flight.flight.frames, modules.crs) if flight.flight.frames else None
-    fc = cond_mod.flight_conditions(flight.conditions, flight.flight.start, flight.flight.end, series,
-                                    settings=settings["conditions"])
-    conds = cond_mod.module_conditions(measured, flight.conditions, flight.flight.start, flight.flight.end,
-                                       series=series, frames=frames, settings=settings["conditions"],
-                                       tilt_deg=flight.layout.tilt_deg)
-    validity = cond_mod.check_validity(fc, conds, gsd_m=gsd, module_spec=flight.module,
-                                       settings=settings["conditions"])
+    fc, conds, validity = conditions_for_flight(flight, measured, gsd_m=gsd, settings=settings["conditions"])
     _record(timings, "conditions", t0)
 
     t0 = _clock()
@@ -239,28 +329,19 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
     _record(timings, "radiometry", t0)
 
     t0 = _clock()
-    stretches: list = []
+    stretches: list[Stretch] = []
     seam_offsets = np.zeros(len(modules))
-    if bool(settings["seams"]["enabled"]):
+    levelling = bool(settings["seams"]["enabled"])
+    if levelling:
         from pvscan.measure import seams
 
         stretches = seams.find_stretches(modules, stats.table["t_median_c"].to_numpy(dtype=float), settings["seams"])
         stats, seam_offsets = seams.level_stats(stats, stretches)
     _record(timings, "seams", t0)
-    return {
-        "modules": modules,
-        "registration": reg,
-        "shift": applied_shift,
-        "ortho_values": ortho_values,
-        "stats": stats,
-        "stats_apparent": stats_app,
-        "conditions": conds,
-        "flight_conditions": fc,
-        "validity": validity,
-        "orthos_info": orthos_info,
-        "radiometry": params,
-        "seams": {"stretches": stretches, "offsets_k": seam_offsets},
-    }
+    return Measurement(modules=modules, registration=reg, shift=applied_shift, ortho_values=ortho_values,
+                       stats=stats, stats_apparent=stats_app, conditions=conds, flight_conditions=fc,
+                       validity=validity, orthos_info=orthos_info, radiometry=params,
+                       seams=SeamLevelling(stretches=stretches, offsets_k=seam_offsets, enabled=levelling))
 
 
 def _check_out_dir(out_dir: Path, overwrite: bool) -> None:
@@ -277,8 +358,9 @@ def _check_out_dir(out_dir: Path, overwrite: bool) -> None:
         raise OutputError(f"{out_dir}: output folder exists and is not empty (use --overwrite to replace it)")
 
 
-def write_results(folder: Path, *, modules, module_table: pd.DataFrame, anomalies: pd.DataFrame,
-                  summary: dict, settings=None) -> dict:
+def write_results(folder: Path, *, modules: gpd.GeoDataFrame, module_table: pd.DataFrame,
+                  anomalies: pd.DataFrame, summary: Mapping[str, Any],
+                  settings: Mapping[str, Any] | None = None) -> dict[str, str]:
     """Write every result file into ``folder`` (a staging folder); return name -> file name."""
     from pvscan.io import outputs
 
@@ -297,7 +379,7 @@ def write_results(folder: Path, *, modules, module_table: pd.DataFrame, anomalie
             "workorders_gpx": "workorders.gpx", "geopackage": "pvscan.gpkg", "summary": "summary.json"}
 
 
-def _site_lonlat(modules) -> tuple[float, float]:
+def _site_lonlat(modules: gpd.GeoDataFrame) -> tuple[float, float]:
     """WGS84 (lon, lat) [deg] of the plant's centroid: the area-weighted mean of the footprint
     centroids (the centroid of their union when they do not overlap; no union is built)."""
     import shapely
@@ -372,15 +454,15 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
     with (cluster(scheduler) if is_address(scheduler) else contextlib.nullcontext(scheduler)) as sched:
         m = measure_flight(flight, settings, progress=progress, timings=timings, scheduler=sched, shift=shift,
                            accept_poor_registration=accept_poor_registration)
-    modules = m["modules"]
-    stats = m["stats"]
-    conds = m["conditions"]
-    validity = m["validity"]
+    modules = m.modules
+    stats = m.stats
+    conds = m.conditions
+    validity = m.validity
 
     t0 = _clock()
     anomalies, module_table = classify.classify(
         modules, stats, conds, flight.module, settings,
-        confidence_factor=float(getattr(validity, "confidence_factor", 1.0)), progress=progress)
+        confidence_factor=float(validity.confidence_factor), progress=progress)
     _record(timings, "classify", t0)
 
     t0 = _clock()
@@ -399,21 +481,22 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
         table[col] = shares[col].to_numpy()
 
     no_data = modules.loc[table["valid_fraction"].to_numpy() <= 0, "module_id"].tolist()
-    fc = m["flight_conditions"]
+    module_ids = (modules["module_id"].astype(str).to_numpy() if "module_id" in modules
+                  else np.arange(len(modules)).astype(str))
     summary = outputs.build_summary(
         modules=modules, anomalies=anomalies, module_spec=flight.module,
-        inputs={**m["orthos_info"], "manifest": str(flight.path), "layout": str(flight.flight.layout),
-                "modules_without_data": no_data, "ortho_values": m["ortho_values"]},
-        conditions=fc.to_dict() if hasattr(fc, "to_dict") else fc,
-        validity=validity.to_dict() if hasattr(validity, "to_dict") else validity,
-        registration=m["registration"].to_dict(),
-        layout_shift_m=m["shift"],
+        inputs={**m.orthos_info.to_dict(), "manifest": str(flight.path), "layout": str(flight.flight.layout),
+                "modules_without_data": no_data, "ortho_values": m.ortho_values},
+        conditions=m.flight_conditions.to_dict(),
+        validity=validity.to_dict(),
+        registration=m.registration.to_dict(),
+        layout_shift_m=m.shift,
         pipeline_path=settings.path, site=flight.site, flight=flight.flight,
         extra={"radiometry": {k: (v if np.ndim(v) == 0 or k == "band_um" else
                                   {"median": float(np.nanmedian(v)), "min": float(np.nanmin(v)),
                                    "max": float(np.nanmax(v))})
-                              for k, v in m["radiometry"].items()},
-               "image_artefacts": _artefact_summary(m.get("seams"), modules, bool(settings["seams"]["enabled"])),
+                              for k, v in m.radiometry.items()},
+               "image_artefacts": m.seams.to_dict(module_ids),
                "layout": modules.attrs.get("layout", {}),
                "normalisation": Normalisation.from_settings(settings).to_dict(),
                "timings_s": {k: round(v, 3) for k, v in timings.items()}},

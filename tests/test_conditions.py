@@ -10,7 +10,7 @@ from __future__ import annotations
 import json
 import math
 import warnings
-from datetime import datetime, timedelta, timezone
+from datetime import UTC, datetime, timedelta, timezone
 from types import SimpleNamespace as NS
 
 import geopandas as gpd
@@ -19,10 +19,10 @@ import pandas as pd
 import pytest
 import shapely
 
-from pvscan.measure import conditions as cond
-from pvscan.physics import radiometry
 from pvscan.errors import ConditionsError, ValidityWarning
 from pvscan.io.settings import load_pipeline
+from pvscan.measure import conditions as cond
+from pvscan.physics import radiometry
 
 CRS = "EPSG:32633"
 START = datetime(2026, 6, 14, 10, 40, tzinfo=timezone(timedelta(hours=2)))
@@ -57,7 +57,7 @@ def test_read_weather_series_sorted_utc(tmp_path):
     rows = rows[3:] + rows[:3]  # out of order
     rows[0] = rows[0].replace("+02:00", "+02:00")
     # one row written in UTC with Z: same instant, other notation
-    t = (START - timedelta(minutes=5)).astimezone(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ")
+    t = (START - timedelta(minutes=5)).astimezone(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
     rows[-3] = t + rows[-3][rows[-3].index(","):]
     p = write_csv(tmp_path / "w.csv", rows)
     df = cond.read_weather_series(p)
@@ -72,7 +72,8 @@ def test_read_weather_series_sorted_utc(tmp_path):
     [
         (lambda rows: rows, "missing column 'wind_m_s'"),
         (lambda rows: [rows[0].replace("+02:00", "")] + rows[1:], r"row 1 \(line 2\).*no UTC offset"),
-        (lambda rows: rows[:2] + [rows[2].replace(",820.000,", ",8o0,")] + rows[3:], r"poa_irradiance_w_m2', row 3.*not a number"),
+        (lambda rows: rows[:2] + [rows[2].replace(",820.000,", ",8o0,")] + rows[3:],
+         r"poa_irradiance_w_m2', row 3.*not a number"),
         (lambda rows: rows + [rows[1]], "rows 2 and 12 have the same time"),
         (lambda rows: [rows[0].replace("2026-06-14T", "14.06.2026 ")] + rows[1:], "not ISO 8601"),
         (lambda rows: rows[:1] + [rows[1].replace(",2.100", ",-3")] + rows[2:], r"wind_m_s', row 2.*outside"),
@@ -152,12 +153,12 @@ def test_flight_conditions_constants_and_sky():
 
 
 # ----------------------------------------------------------------------------- per-module
-def make_modules(centres, w=1.0, l=2.0):
+def make_modules(centres, width_m=1.0, length_m=2.0):
     rows = []
     for x, y in centres:
-        fx0, fy0 = x - l / 2, y - w / 2
-        rows.append(dict(module_id=f"M{len(rows)}", fx0=fx0, fy0=fy0, fux=l, fuy=0.0, fvx=0.0, fvy=w,
-                         geometry=shapely.box(fx0, fy0, fx0 + l, fy0 + w)))
+        fx0, fy0 = x - length_m / 2, y - width_m / 2
+        rows.append(dict(module_id=f"M{len(rows)}", fx0=fx0, fy0=fy0, fux=length_m, fuy=0.0, fvx=0.0, fvy=width_m,
+                         geometry=shapely.box(fx0, fy0, fx0 + length_m, fy0 + width_m)))
     return gpd.GeoDataFrame(rows, geometry="geometry", crs=CRS)
 
 

@@ -12,8 +12,8 @@ from click.testing import CliRunner
 
 from pvscan.cli.main import cli
 from pvscan.io.outputs import validate_geojson_rfc7946
-from pvscan.pipeline import inspect_flight
 from pvscan.io.resources import load_schema, schema_errors
+from pvscan.pipeline import inspect_flight
 from pvscan.simulate import simulate_flight
 
 

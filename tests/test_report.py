@@ -60,10 +60,11 @@ def build_result(tmp_path: Path, *, n_extra: int = 0, with_ortho: bool = True, k
     ``n_extra`` adds that many monitor-level hot cells (for long-list tests).
     """
     import rasterio
-    from pyproj import Transformer
-    from affine import Affine
-    from shapely.geometry import box as sbox, mapping
     import shapely
+    from affine import Affine
+    from pyproj import Transformer
+    from shapely.geometry import box as sbox
+    from shapely.geometry import mapping
 
     rng = np.random.default_rng(seed)
     width, height = int(20.0 / GSD), int(16.0 / GSD)
@@ -72,8 +73,8 @@ def build_result(tmp_path: Path, *, n_extra: int = 0, with_ortho: bool = True, k
     mods = _module_boxes()
 
     def px(b):
-        c0 = int(round((b[0] - X0) / GSD)); c1 = int(round((b[2] - X0) / GSD))
-        r0 = int(round((Y0 + height * GSD - b[3]) / GSD)); r1 = int(round((Y0 + height * GSD - b[1]) / GSD))
+        c0, c1 = int(round((b[0] - X0) / GSD)), int(round((b[2] - X0) / GSD))
+        r0, r1 = int(round((Y0 + height * GSD - b[3]) / GSD)), int(round((Y0 + height * GSD - b[1]) / GSD))
         return slice(r0, r1), slice(c0, c1)
 
     for _, _, _, _, b in mods:
@@ -521,8 +522,8 @@ def test_report_command(result, tmp_path):
 
 
 def test_summary_fits_one_screen(result):
-    from click.testing import CliRunner
     import click
+    from click.testing import CliRunner
 
     from pvscan.cli._summary import print_inspection_summary
 
@@ -685,8 +686,8 @@ def test_map_palette_keeps_marker_colours_exact():
 
 def test_healthy_plant_report_and_summary(tmp_path):
     """No anomaly: the report still has its map, plots, validity and cautions; the summary says so."""
-    from click.testing import CliRunner
     import click
+    from click.testing import CliRunner
 
     from pvscan.cli._summary import print_inspection_summary
     from pvscan.report import write_report

@@ -28,8 +28,8 @@ def _cut(s: str, n: int = _WIDTH) -> str:
 
 def summary_lines(result_dir, top: int | None = None) -> list[str]:
     """The summary as a list of lines (see :func:`print_inspection_summary`)."""
-    from pvscan.report import SEVERITIES, load_result, validity_checks
     from pvscan.io.settings import load_pipeline
+    from pvscan.report import SEVERITIES, load_result, validity_checks
 
     if top is None:
         top = int(load_pipeline()["report"].get("summary_top", 5))

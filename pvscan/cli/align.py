@@ -34,8 +34,8 @@ def align_cmd(flight, out_path, pipeline_path, overwrite):
     """
     from pvscan.errors import RegistrationError
     from pvscan.io.manifest import load_flight
-    from pvscan.measure.register import align_layout
     from pvscan.io.settings import load_pipeline
+    from pvscan.measure.register import align_layout
 
     fl = load_flight(flight)
     settings = load_pipeline(pipeline_path)

@@ -36,8 +36,8 @@ def inspect_cmd(flight, out_dir, pipeline_path, overwrite, no_report, scheduler,
     3 internal error.
     """
     from pvscan.io.manifest import load_flight
-    from pvscan.pipeline import inspect_flight
     from pvscan.io.settings import load_pipeline
+    from pvscan.pipeline import inspect_flight
     from pvscan.tasks import parse_scheduler
 
     scheduler = parse_scheduler(scheduler)

@@ -25,8 +25,8 @@ def report_cmd(result_dir, out_path, orthos, pipeline_path):
     and prints cleanly. The thermal ortho named in summary.json is read for the map and
     the anomaly crops; without it the map shows module temperatures.
     """
-    from pvscan.report import write_report
     from pvscan.io.settings import load_pipeline
+    from pvscan.report import write_report
 
     settings = load_pipeline(pipeline_path)["report"]
     progress = Progress()

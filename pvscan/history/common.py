@@ -13,6 +13,7 @@ import shapely
 from shapely.geometry import shape
 
 from pvscan.errors import HistoryError, PvscanWarning
+from pvscan.io.times import parse_datetime
 
 #: Version of the database layout written by this module.
 SCHEMA_VERSION = 1
@@ -110,17 +111,9 @@ def _pick(d: Mapping, *paths: str):
     return None
 
 
-def _parse_time(value, where: str) -> datetime:
-    if isinstance(value, datetime):
-        t = value
-    else:
-        try:
-            t = datetime.fromisoformat(str(value).replace("Z", "+00:00"))
-        except ValueError:
-            raise HistoryError(f"{where}: {value!r} is not an ISO 8601 date-time") from None
-    if t.tzinfo is None:
-        raise HistoryError(f"{where}: {value!r} has no UTC offset")
-    return t
+def _parse_time(value: object, where: str) -> datetime:
+    """A recorded time (:func:`pvscan.io.times.parse_datetime`, errors as HistoryError)."""
+    return parse_datetime(value, where, HistoryError)
 
 
 def _as_objects(df: pd.DataFrame, cols: Iterable[str]) -> pd.DataFrame:

@@ -22,6 +22,7 @@ from pathlib import Path
 
 from pvscan.errors import ManifestError
 from pvscan.io.resources import describe_error, load_schema, read_toml_file, schema_errors
+from pvscan.io.times import parse_datetime
 
 __all__ = [
     "Flight",
@@ -260,16 +261,6 @@ class Flight:
     layout: LayoutSpec = field(default_factory=LayoutSpec)
 
 
-def _parse_time(value: str, key: str, where: str) -> datetime:
-    try:
-        dt = datetime.fromisoformat(value.replace("Z", "+00:00"))
-    except ValueError:
-        raise ManifestError(f"{where}: key {key}: {value!r} is not an ISO 8601 date-time") from None
-    if dt.tzinfo is None:
-        raise ManifestError(f"{where}: key {key}: {value!r} has no UTC offset (write e.g. +02:00 or Z)")
-    return dt
-
-
 def _suggest(err_msg: str, data: dict) -> str:
     """Add a 'did you mean' hint to an unknown-key message."""
     if not err_msg.startswith("unknown key "):
@@ -345,8 +336,8 @@ def flight_from_dict(data: dict, path: str | Path, check_files: bool = True) -> 
     )
 
     f = data["flight"]
-    start = _parse_time(f["start"], "flight.start", where)
-    end = _parse_time(f["end"], "flight.end", where)
+    start = parse_datetime(f["start"], f"{where}: key flight.start", ManifestError)
+    end = parse_datetime(f["end"], f"{where}: key flight.end", ManifestError)
     if end < start:
         raise ManifestError(f"{where}: key flight.end: {f['end']} is before flight.start {f['start']}")
     orthos = tuple(

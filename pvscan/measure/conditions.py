@@ -28,16 +28,23 @@ import logging
 import math
 from collections.abc import Mapping
 from dataclasses import asdict, dataclass
-from datetime import datetime, timedelta, timezone
-from typing import Any
+from datetime import UTC, datetime, timedelta
+from typing import TYPE_CHECKING, Any, TypeAlias
 
 import numpy as np
 import pandas as pd
 
-from pvscan.physics import radiometry
 from pvscan.errors import ConditionsError
-from pvscan.measure.validity import Validity, _check, _factor, check_validity  # noqa: F401  (moved there)
-from pvscan.measure.weather import _PVSCAN_NAMES, WEATHER_COLUMNS, _parse_time, read_frames, read_weather_series  # noqa: F401
+from pvscan.io.settings import section
+from pvscan.io.times import parse_datetime
+from pvscan.measure.validity import Validity, check_validity
+from pvscan.measure.weather import WEATHER_COLUMNS, read_frames, read_weather_series
+from pvscan.physics import radiometry
+
+if TYPE_CHECKING:
+    import geopandas as gpd
+
+    from pvscan.io.manifest import ConditionsSpec, Flight
 
 __all__ = [
     "WEATHER_COLUMNS",
@@ -65,15 +72,18 @@ _SPEC_KEYS = {
 }
 
 
-def _settings(settings: Mapping | None) -> Mapping:
-    if settings is None:
-        from pvscan.io.settings import load_pipeline
-
-        return load_pipeline()["conditions"]
-    return settings
+#: The manifest's ``[conditions]``: a :class:`~pvscan.io.manifest.ConditionsSpec` or a mapping of its keys.
+Spec: TypeAlias = "ConditionsSpec | Mapping[str, Any] | None"
+#: A time as given: aware datetime, pandas Timestamp or ISO 8601 text with a UTC offset.
+TimeLike: TypeAlias = "datetime | pd.Timestamp | str"
 
 
-def _spec_get(spec, key):
+def _settings(settings: Mapping[str, Any] | None) -> Mapping[str, Any]:
+    """The ``[conditions]`` section over the pipeline file's defaults."""
+    return section(settings, "conditions")
+
+
+def _spec_get(spec: Spec, key: str) -> Any:
     if spec is None:
         return None
     if isinstance(spec, Mapping):
@@ -140,7 +150,7 @@ class FlightConditions:
             return float("nan")
         return 100.0 * (self.poa_global_max - self.poa_global_min) / self.poa_global
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         """JSON-ready mapping (times as ISO 8601 strings)."""
         d = asdict(self)
         d["start"] = self.start.isoformat()
@@ -149,19 +159,13 @@ class FlightConditions:
         return {k: (None if isinstance(v, float) and math.isnan(v) else v) for k, v in d.items()}
 
 
-def _as_utc(t, name: str) -> datetime:
-    if isinstance(t, str):
-        return _parse_time(t, name)
-    if isinstance(t, pd.Timestamp):
-        t = t.to_pydatetime()
-    if not isinstance(t, datetime):
+def _as_utc(t: TimeLike, name: str) -> datetime:
+    if not isinstance(t, (str, datetime)):
         raise ConditionsError(f"{name}: expected a datetime, got {type(t).__name__}")
-    if t.tzinfo is None or t.tzinfo.utcoffset(t) is None:
-        raise ConditionsError(f"{name}: time {t.isoformat()} has no UTC offset")
-    return t.astimezone(timezone.utc)
+    return parse_datetime(t, name, ConditionsError).astimezone(UTC)
 
 
-def _epoch_s(times) -> np.ndarray:
+def _epoch_s(times: pd.DatetimeIndex | pd.Series) -> np.ndarray:
     idx = pd.DatetimeIndex(times)
     if idx.tz is None:
         raise ConditionsError("times must be tz-aware")
@@ -202,7 +206,7 @@ def _check_coverage(series: pd.DataFrame, start: datetime, end: datetime, tol_s:
             f"{start.isoformat()}..{end.isoformat()} (tolerance {tol_s:g} s)")
 
 
-def _resolve_series(spec, series):
+def _resolve_series(spec: Spec, series: pd.DataFrame | None) -> pd.DataFrame | None:
     if series is None:
         p = _spec_get(spec, "series")
         if p is not None:
@@ -218,7 +222,7 @@ def _resolve_series(spec, series):
     return series
 
 
-def _constant(spec, key: str, required: bool):
+def _constant(spec: Spec, key: str, required: bool) -> float | None:
     v = _spec_get(spec, key)
     if v is None:
         if required:
@@ -227,8 +231,8 @@ def _constant(spec, key: str, required: bool):
     return float(v)
 
 
-def flight_conditions(spec, start, end, series: pd.DataFrame | None = None, *,
-                      settings: Mapping | None = None) -> FlightConditions:
+def flight_conditions(spec: Spec, start: TimeLike, end: TimeLike, series: pd.DataFrame | None = None, *,
+                      settings: Mapping[str, Any] | None = None) -> FlightConditions:
     """Conditions during the flight: from a weather series, or constants.
 
     Parameters
@@ -242,7 +246,8 @@ def flight_conditions(spec, start, end, series: pd.DataFrame | None = None, *,
     series : pandas.DataFrame, optional
         From :func:`read_weather_series`. Its columns win over the constants.
     settings : Mapping, optional
-        The ``[conditions]`` pipeline section (``series_tolerance_s``, ``sky_band``).
+        The pipeline or its ``[conditions]`` section (``series_tolerance_s``, ``sky_band``);
+        keys not given keep the pipeline file's defaults.
 
     Returns
     -------
@@ -255,16 +260,16 @@ def flight_conditions(spec, start, end, series: pd.DataFrame | None = None, *,
         (beyond ``series_tolerance_s``), or a missing constant without a series.
     """
     st = _settings(settings)
-    start = _as_utc(start, "flight.start")
-    end = _as_utc(end, "flight.end")
-    if end < start:
-        raise ConditionsError(f"flight.end {end.isoformat()} is before flight.start {start.isoformat()}")
+    t_start = _as_utc(start, "flight.start")
+    t_end = _as_utc(end, "flight.end")
+    if t_end < t_start:
+        raise ConditionsError(f"flight.end {t_end.isoformat()} is before flight.start {t_start.isoformat()}")
     series = _resolve_series(spec, series)
-    t0, t1 = start.timestamp(), end.timestamp()
+    t0, t1 = t_start.timestamp(), t_end.timestamp()
     vals: dict[str, Any] = {}
     n_samples = 0
     if series is not None:
-        _check_coverage(series, start, end, float(st.get("series_tolerance_s", 300.0)))
+        _check_coverage(series, t_start, t_end, float(st["series_tolerance_s"]))
         g = _window_stats(series, "poa_irradiance_w_m2", t0, t1)
         vals.update(poa_global=g[0], poa_global_min=g[1], poa_global_max=g[2], poa_global_std=g[3])
         n_samples = g[4]
@@ -278,11 +283,10 @@ def flight_conditions(spec, start, end, series: pd.DataFrame | None = None, *,
             vals["cloud_okta"] = _window_stats(series, "cloud_okta", t0, t1)[2]
         source = "series"
     else:
-        g = _constant(spec, "poa_irradiance_w_m2", True)
-        vals.update(poa_global=g, poa_global_min=g, poa_global_max=g, poa_global_std=0.0)
+        poa = _constant(spec, "poa_irradiance_w_m2", True)
+        vals.update(poa_global=poa, poa_global_min=poa, poa_global_max=poa, poa_global_std=0.0)
         vals["temp_air"] = _constant(spec, "ambient_c", True)
-        w = _constant(spec, "wind_m_s", True)
-        vals["wind_speed"] = vals["wind_speed_max"] = w
+        vals["wind_speed"] = vals["wind_speed_max"] = _constant(spec, "wind_m_s", True)
         source = "constants"
     if "relative_humidity" not in vals:
         vals["relative_humidity"] = _constant(spec, "relative_humidity_pct", False)
@@ -292,16 +296,16 @@ def flight_conditions(spec, start, end, series: pd.DataFrame | None = None, *,
         vals["temp_sky"], sky_source = float(_spec_get(spec, "sky_c")), "constants"
     else:
         vals["temp_sky"] = float(radiometry.sky_temperature(
-            vals["temp_air"], vals["relative_humidity"], band=st.get("sky_band", "camera")))
+            vals["temp_air"], vals["relative_humidity"], band=st["sky_band"]))
         sky_source = "model"
-    return FlightConditions(start=start, end=end, duration_s=t1 - t0, source=source, sky_source=sky_source,
+    return FlightConditions(start=t_start, end=t_end, duration_s=t1 - t0, source=source, sky_source=sky_source,
                             n_samples=n_samples, **vals)
 
 
 # ---------------------------------------------------------------------------------------
 # Per-module conditions
 # ---------------------------------------------------------------------------------------
-def _module_centres(modules) -> tuple[np.ndarray, np.ndarray]:
+def _module_centres(modules: gpd.GeoDataFrame) -> tuple[np.ndarray, np.ndarray]:
     cols = ("fx0", "fy0", "fux", "fuy", "fvx", "fvy")
     if all(c in modules.columns for c in cols):
         x = modules["fx0"].to_numpy(float) + 0.5 * (modules["fux"].to_numpy(float) + modules["fvx"].to_numpy(float))
@@ -311,7 +315,7 @@ def _module_centres(modules) -> tuple[np.ndarray, np.ndarray]:
     return c.x.to_numpy(float), c.y.to_numpy(float)
 
 
-def assign_frames(modules, frames) -> pd.DataFrame:
+def assign_frames(modules: gpd.GeoDataFrame, frames: gpd.GeoDataFrame) -> pd.DataFrame:
     """The frame that imaged each module best.
 
     The best frame contains the module centre and has its own centre closest to it (the
@@ -363,8 +367,9 @@ def assign_frames(modules, frames) -> pd.DataFrame:
                          else best.astype(str), "time": times, "time_source": source}, index=modules.index)
 
 
-def module_conditions(modules, spec, start, end, series: pd.DataFrame | None = None, frames=None,
-                      settings: Mapping | None = None, *, tilt_deg: float | None = None) -> pd.DataFrame:
+def module_conditions(modules: gpd.GeoDataFrame, spec: Spec, start: TimeLike, end: TimeLike,
+                      series: pd.DataFrame | None = None, frames: gpd.GeoDataFrame | None = None,
+                      settings: Mapping[str, Any] | None = None, *, tilt_deg: float | None = None) -> pd.DataFrame:
     """Conditions of the moment each module was imaged.
 
     Parameters
@@ -438,24 +443,26 @@ def module_conditions(modules, spec, start, end, series: pd.DataFrame | None = N
         else:
             rh = out["relative_humidity"].to_numpy(float)
             zenith = None
-            if st.get("sky_view", "hemispherical") == "specular" and tilt_deg is not None:
+            if st["sky_view"] == "specular" and tilt_deg is not None:
                 zenith = 2.0 * float(tilt_deg)
-            kw = dict(band=st.get("sky_band", "camera"), zenith_deg=zenith)
+            kw: dict[str, Any] = {"band": st["sky_band"], "zenith_deg": zenith}
             t_air = out["temp_air"].to_numpy(float)
             sky = np.asarray(radiometry.sky_temperature(t_air, None, **kw), dtype=float) * np.ones(n)
             has_rh = np.isfinite(rh)
             if has_rh.any():  # humidity-based model where the humidity is known
                 sky[has_rh] = radiometry.sky_temperature(t_air[has_rh], rh[has_rh], **kw)
             out["temp_sky"] = sky
-    cols = ["time", "poa_global", "temp_air", "wind_speed", "temp_sky", "relative_humidity", "time_source", "frame_id"]
+    cols = ["time", "poa_global", "temp_air", "wind_speed", "temp_sky", "relative_humidity", "time_source",
+            "frame_id"]
     return out[cols]
 
 
 # ---------------------------------------------------------------------------------------
 # Flight wrapper
 # ---------------------------------------------------------------------------------------
-def conditions_for_flight(flight, modules, *, gsd_m: float | None = None,
-                          settings: Mapping | None = None) -> tuple[FlightConditions, pd.DataFrame, Validity]:
+def conditions_for_flight(flight: Flight, modules: gpd.GeoDataFrame, *, gsd_m: float | None = None,
+                          settings: Mapping[str, Any] | None = None
+                          ) -> tuple[FlightConditions, pd.DataFrame, Validity]:
     """Flight conditions, per-module conditions and validity of a :class:`~pvscan.io.manifest.Flight`.
 
     Reads ``flight.conditions.series`` and ``flight.flight.frames`` when given (frames in
@@ -478,11 +485,10 @@ def conditions_for_flight(flight, modules, *, gsd_m: float | None = None,
     """
     st = _settings(settings)
     spec = flight.conditions
-    series = read_weather_series(spec.series) if getattr(spec, "series", None) else None
-    frames_path = getattr(flight.flight, "frames", None)
-    frames = read_frames(frames_path, modules.crs) if frames_path else None
+    series = read_weather_series(spec.series) if spec.series else None
+    frames = read_frames(flight.flight.frames, modules.crs) if flight.flight.frames else None
     fc = flight_conditions(spec, flight.flight.start, flight.flight.end, series, settings=st)
-    tilt = getattr(getattr(flight, "layout", None), "tilt_deg", None)
+    tilt = flight.layout.tilt_deg
     mc = module_conditions(modules, spec, flight.flight.start, flight.flight.end, series=series, frames=frames,
                            settings=st, tilt_deg=tilt)
     validity = check_validity(fc, mc, gsd_m=gsd_m, module_spec=flight.module, settings=st)

@@ -6,15 +6,17 @@ from __future__ import annotations
 
 import logging
 import math
+import os
 from datetime import UTC, datetime
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
 
 from pvscan.errors import ConditionsError
 from pvscan.io.resources import load_schema
+from pvscan.io.times import parse_datetime
 
 if TYPE_CHECKING:  # pragma: no cover
     import geopandas
@@ -49,19 +51,11 @@ WEATHER_COLUMNS: dict[str, tuple[str, bool, tuple[float, float], str]] = _weathe
 
 
 def _parse_time(text: str, where: str) -> datetime:
-    s = text.strip()
-    if not s:
-        raise ConditionsError(f"{where}: empty time")
-    try:
-        t = datetime.fromisoformat(s[:-1] + "+00:00" if s.endswith(("Z", "z")) else s)
-    except ValueError:
-        raise ConditionsError(f"{where}: time {text!r} is not ISO 8601") from None
-    if t.tzinfo is None or t.tzinfo.utcoffset(t) is None:
-        raise ConditionsError(f"{where}: time {text!r} has no UTC offset (write e.g. +02:00 or Z)")
-    return t.astimezone(UTC)
+    """A series or frame time as UTC (:func:`pvscan.io.times.parse_datetime`)."""
+    return parse_datetime(text, where, ConditionsError).astimezone(UTC)
 
 
-def read_weather_series(path) -> pd.DataFrame:
+def read_weather_series(path: str | os.PathLike[str]) -> pd.DataFrame:
     """Read a weather series (CSV) recorded during the flight.
 
     Columns: ``time`` (ISO 8601 with a UTC offset), ``poa_irradiance_w_m2`` [W/m2],
@@ -137,7 +131,7 @@ def read_weather_series(path) -> pd.DataFrame:
     return df
 
 
-def read_frames(path, crs) -> geopandas.GeoDataFrame:
+def read_frames(path: str | os.PathLike[str], crs: Any) -> geopandas.GeoDataFrame:
     """Read the footprints of the camera frames, each with the time it was taken.
 
     Parameters
