@@ -365,6 +365,8 @@ def write_results(folder: Path, *, modules: gpd.GeoDataFrame, module_table: pd.D
     from pvscan.io import outputs
 
     folder = Path(folder)
+    # priority order, ids, walk order and the first module's attributes: once for every writer
+    anomalies = outputs.prepare_anomalies(anomalies, modules, settings)
     outputs.write_modules_geojson(folder / "modules.geojson", modules, module_table, anomalies, settings=settings)
     outputs.write_anomalies_geojson(folder / "anomalies.geojson", anomalies, modules, settings=settings)
     work = outputs.workorders_table(anomalies, modules, site_crs=modules.crs, settings=settings,

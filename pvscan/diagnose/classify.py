@@ -60,7 +60,8 @@ def _detect(F: Features, cfg: Mapping[str, Any], final: bool = True) -> list[Hit
 def _stage(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module_spec: Any,
            cfg: Mapping[str, Any], cfg_ref: Mapping[str, Any], heat: Faiman, ok: np.ndarray,
            healthy: np.ndarray, groups: np.ndarray, pos: np.ndarray, is_string: bool,
-           final: bool = True, spread_all: np.ndarray | None = None) -> tuple[Features, list[Hits]]:
+           final: bool = True, spread_all: np.ndarray | None = None,
+           geometry: dict[str, np.ndarray] | None = None) -> tuple[Features, list[Hits]]:
     """One pass: references (own row, and outside the own string), features, module patterns,
     open strings."""
     t_med = stats.table["t_median_c"].to_numpy(dtype=float)
@@ -75,7 +76,7 @@ def _stage(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module_s
     F.extra["suspect"] = rr.suspect
     if spread_all is not None:
         F.extra["spread_all"] = spread_all
-    F.extra.update(row_geometry(modules, F.nsub))
+    F.extra.update(row_geometry(modules, F.nsub) if geometry is None else geometry)
     hits = _detect(F, cfg, final=final)
     # an open module is raised against both neighbourhoods: its row, and modules outside its
     # string (a reference biased by a shadow edge along the row is not both)
@@ -159,19 +160,23 @@ def classify(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module
                                      "confidence": []}, index=modules.index)
         return Diagnosis(anomalies, module_table)
     groups, pos, is_string = string_groups(modules)
+    # adjacency and row geometry depend on the layout alone: built once for both passes
+    geometry = row_geometry(modules, int(np.shape(stats.sub_median)[1]))
 
     # pass 1: suspects
     F1, hits1 = _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, heat, ok, ok, groups, pos,
-                       is_string, final=False)
+                       is_string, final=False, geometry=geometry)
     suspect = F1.extra["suspect"] | F1.extra["in_run"]
     for h in hits1:
         suspect |= h.hit
+    spread_all = iqr((F1.R - F1.base[:, None, None]).reshape(F1.n, -1), axis=1)
+    # pass 1's (modules x cells) arrays are not needed any more: freed before pass 2 builds its own
+    del F1, hits1
     if progress:
         progress("classify", 1, 3)
     # pass 2: final, suspects excluded from every reference
     F, hits = _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, heat, ok, ok & ~suspect,
-                     groups, pos, is_string,
-                     spread_all=iqr((F1.R - F1.base[:, None, None]).reshape(F1.n, -1), axis=1))
+                     groups, pos, is_string, spread_all=spread_all, geometry=geometry)
     if progress:
         progress("classify", 2, 3)
     by = {h.defect: h for h in hits}

@@ -27,12 +27,16 @@ import pandas as pd
 
 from pvscan.measure.rows import adjacent_modules, row_keys
 from pvscan.physics.heat import Faiman
-from pvscan.robust import nanmedian, scaled_mad
+from pvscan.robust import MAD_TO_SIGMA, nanmedian, scaled_mad
 
 __all__ = ["Features", "Hits", "build_features", "row_geometry", "string_groups", "neighbour_median",
+           "cell_neighbour_median",
            "quality", "fit_score", "confidence", "spec_value"]
 
 logger = logging.getLogger(__name__)
+
+#: Modules per chunk of the row-wise reductions (bounds their temporaries).
+_CHUNK = 8192
 
 
 def spec_value(module_spec: Any, name: str, default: Any = None) -> Any:
@@ -42,15 +46,87 @@ def spec_value(module_spec: Any, name: str, default: Any = None) -> Any:
     return getattr(module_spec, name, default)
 
 
-def neighbour_median(values: np.ndarray, nb: np.ndarray, chunk: int = 2048) -> np.ndarray:
-    """Median over each module's neighbours (``nb``, -1 = none) of ``values[neighbour]``."""
+def neighbour_median(values: np.ndarray, nb: np.ndarray, chunk: int = 2048,
+                     offset: np.ndarray | None = None) -> np.ndarray:
+    """Median over each module's neighbours (``nb``, -1 = none) of ``values[neighbour]``.
+
+    With ``offset`` (n,), of ``values[neighbour] - offset[neighbour]`` (each neighbour's
+    values relative to its own offset, without a full-size copy of the differences).
+    ``values`` is (n, ...) and the result has its shape (float64). Modules are taken
+    ``chunk`` at a time and each chunk's neighbour values are gathered with the neighbours
+    along the last, contiguous axis, so the temporaries stay a few megabytes whatever the
+    plant size and the sort runs over contiguous memory.
+    """
     n = len(values)
-    out = np.full(values.shape, np.nan, dtype=np.float64)
+    flat = np.asarray(values).reshape(n, -1)
+    m = flat.shape[1]
+    k = nb.shape[1] if nb.ndim == 2 else 0
+    out = np.full((n, m), np.nan, dtype=np.float64)
+    if k == 0:
+        return out.reshape(np.shape(values))
+    off = None if offset is None else np.asarray(offset, dtype=np.float64)
     for s in range(0, n, chunk):
         idx = nb[s:s + chunk]
-        g = values[np.maximum(idx, 0)].astype(np.float64)
-        g[idx < 0] = np.nan
-        out[s:s + chunk] = nanmedian(g, axis=1)
+        g = np.empty((len(idx), m, k), dtype=np.float64)
+        for j in range(k):
+            col = idx[:, j]
+            jj = np.maximum(col, 0)
+            if offset is None:
+                g[:, :, j] = flat[jj]
+            else:
+                g[:, :, j] = flat[jj] - off[jj][:, None]
+            g[col < 0, :, j] = np.nan
+        out[s:s + chunk] = nanmedian(g, axis=-1)
+    return out.reshape(np.shape(values))
+
+
+#: Offsets of a cell's neighbours within the module (the 3 x 3 box without its centre).
+_BOX_OFFSETS = tuple((di, dj) for di in (-1, 0, 1) for dj in (-1, 0, 1) if (di, dj) != (0, 0))
+
+
+def _row_median(a: np.ndarray, chunk: int = 8192) -> np.ndarray:
+    """:func:`pvscan.robust.nanmedian` of each row of the 2-D ``a``, ``chunk`` rows at a time."""
+    out = np.empty(len(a), dtype=np.float64)
+    for s in range(0, len(a), chunk):
+        out[s:s + chunk] = nanmedian(a[s:s + chunk], axis=1)
+    return out
+
+
+def _cell_spread(R: np.ndarray, base: np.ndarray, rows: np.ndarray, chunk: int = 8192) -> float:
+    """``scaled_mad`` of the finite ``R - base`` over the cells of modules ``rows`` (bool),
+    gathered chunk by chunk (one array of the values, no full-size temporaries)."""
+    parts = []
+    for s in range(0, len(R), chunk):
+        sel = rows[s:s + chunk]
+        if sel.any():
+            x = R[s:s + chunk][sel] - base[s:s + chunk][sel][:, None, None]
+            parts.append(x[np.isfinite(x)])
+    v = np.concatenate(parts) if parts else np.zeros(0)
+    if v.size < 3:  # as scaled_mad's min_count
+        return float("nan")
+    # scaled_mad(v), its medians taken in place (the same order statistics)
+    med = np.median(v, overwrite_input=True)
+    np.subtract(v, med, out=v)
+    np.abs(v, out=v)
+    return MAD_TO_SIGMA * float(np.median(v, overwrite_input=True))
+
+
+def cell_neighbour_median(X: np.ndarray, chunk: int = 4096) -> np.ndarray:
+    """Median of each cell's (up to 8) neighbouring cells within its module, NaN-aware.
+
+    ``X`` is (n, A, C); cells beyond the module's edge and NaN cells are left out; a cell
+    without a finite neighbour gives NaN. Modules are taken ``chunk`` at a time with the 8
+    neighbours along the last, contiguous axis (bounded temporaries).
+    """
+    X = np.asarray(X)
+    n, A, C = X.shape
+    out = np.empty((n, A, C), dtype=np.float64)
+    for s in range(0, n, chunk):
+        P = np.pad(X[s:s + chunk], ((0, 0), (1, 1), (1, 1)), constant_values=np.nan)
+        g = np.empty((P.shape[0], A, C, len(_BOX_OFFSETS)), dtype=np.float64)
+        for k, (di, dj) in enumerate(_BOX_OFFSETS):
+            g[..., k] = P[:, 1 + di:1 + di + A, 1 + dj:1 + dj + C]
+        out[s:s + chunk] = nanmedian(g, axis=-1)
     return out
 
 
@@ -172,27 +248,32 @@ def build_features(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, 
     t_max = table["t_max_c"].to_numpy(dtype=float)
 
     # cells with too few pixels compared to the module's typical cell are left out
+    typ = np.empty(n, dtype=np.float64)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        typ = np.nanmedian(np.where(cc > 0, cc, np.nan).reshape(n, -1), axis=1)
+        for i0 in range(0, n, _CHUNK):
+            c = cc[i0:i0 + _CHUNK]
+            typ[i0:i0 + _CHUNK] = np.nanmedian(np.where(c > 0, c, np.nan).reshape(len(c), -1), axis=1)
     thin = cc < float(cfg["min_cell_fraction"]) * np.nan_to_num(typ, nan=1.0)[:, None, None]
     cm = np.where(thin, np.nan, cm)
     cp = np.where(thin, np.nan, cp)
+    del thin
 
-    # the shape the healthy neighbours share, relative to each neighbour's own median
-    shape_c = neighbour_median(cm - t_med[:, None, None], nb)
-    shape_p = neighbour_median(cp - t_med[:, None, None], nb)
-    shape_s = neighbour_median(sm - t_med[:, None], nb)
-    shape_c = np.nan_to_num(shape_c, nan=0.0)
-    shape_p = np.nan_to_num(shape_p, nan=0.0)
-    shape_s = np.nan_to_num(shape_s, nan=0.0)
-    R = cm - ref[:, None, None] - shape_c
-    R95 = cp - ref[:, None, None] - shape_p
+    # the shape the healthy neighbours share, relative to each neighbour's own median; the
+    # residuals built in place (the same operations in the same order, fewer full-size copies)
+    R = cm - ref[:, None, None]
+    shape = np.nan_to_num(neighbour_median(cm, nb, offset=t_med), nan=0.0, copy=False)
+    R -= shape
+    R95 = cp - ref[:, None, None]
+    shape = np.nan_to_num(neighbour_median(cp, nb, offset=t_med), nan=0.0, copy=False)
+    R95 -= shape
+    del shape
+    shape_s = np.nan_to_num(neighbour_median(sm - t_med[:, None], nb), nan=0.0, copy=False)
     Rsub = sm - ref[:, None] - shape_s
 
     col_sub = np.minimum(((np.arange(C) + 0.5) / C * B).astype(int), B - 1)
-    base = nanmedian(R.reshape(n, -1), axis=1)
-    base_sub = np.stack([nanmedian(R[:, :, col_sub == k].reshape(n, -1), axis=1) for k in range(B)], axis=1)
+    base = _row_median(R.reshape(n, -1))
+    base_sub = np.stack([_row_median(R[:, :, col_sub == k].reshape(n, -1)) for k in range(B)], axis=1)
 
     g = conditions["poa_global"].to_numpy(dtype=float) if "poa_global" in conditions else np.full(n, np.nan)
     ws = conditions["wind_speed"].to_numpy(dtype=float) if "wind_speed" in conditions else np.full(n, 1.0)
@@ -222,8 +303,7 @@ def build_features(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, 
     dT = t_med - ref
     healthy = ok & np.isfinite(dT)
     sig_mod = scaled_mad(dT[healthy])
-    X = R - base[:, None, None]
-    sig_cell = scaled_mad(X[healthy].ravel()) if healthy.any() else float("nan")
+    sig_cell = _cell_spread(R, base, healthy) if healthy.any() else float("nan")
     sig_mod = 0.5 if not np.isfinite(sig_mod) else sig_mod
     sig_cell = 0.3 if not np.isfinite(sig_cell) else sig_cell
     split = str(spec_value(module_spec, "junction_box", "edge") or "edge") == "split"

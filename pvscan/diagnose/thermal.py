@@ -144,26 +144,45 @@ def module_thermal(t_median_c: ArrayLike, reference_c: ArrayLike, conditions: pd
 # local reference
 # --------------------------------------------------------------------------------------
 
-def _knn(points: np.ndarray, pool: np.ndarray, k: int, radius: float) -> np.ndarray:
-    """Indices (into ``pool``) of the k nearest pool points of each point, -1 when missing,
-    the point itself excluded."""
+#: Modules queried at a time by :func:`_knn` (bounds its (modules x neighbours) temporaries).
+_KNN_CHUNK = 8192
+
+
+def _knn(points: np.ndarray, pool: np.ndarray, k: int, radius: float, *, group: np.ndarray | None = None,
+         keep: int | None = None) -> np.ndarray:
+    """Indices (into ``points``) of the k nearest pool points of each point, -1 when missing,
+    the point itself excluded.
+
+    With ``group`` (a code per point, -1 = none), neighbours of the point's own group are
+    then dropped and the first ``keep`` of the rest returned. Points are queried in chunks
+    (each point's answer does not depend on the others), so the temporaries stay bounded.
+    """
     n = len(points)
+    width = k if keep is None else keep
     if len(pool) == 0 or k <= 0:
-        return np.full((n, max(k, 0)), -1, dtype=np.int64)
+        return np.full((n, max(width, 0)), -1, dtype=np.int64)
     tree = cKDTree(points[pool])
     kq = min(k + 1, len(pool))
-    dist, idx = tree.query(points, k=kq, distance_upper_bound=radius)
-    dist = dist.reshape(n, kq)
-    idx = idx.reshape(n, kq)
-    ok = np.isfinite(dist)
-    glob = np.where(ok, pool[np.minimum(idx, len(pool) - 1)], -1)
-    glob[glob == np.arange(n)[:, None]] = -1  # drop self
-    # keep the first k valid entries per row (sorted by distance already)
-    order = np.argsort(glob < 0, axis=1, kind="stable")
-    glob = np.take_along_axis(glob, order, axis=1)[:, :k]
-    if glob.shape[1] < k:
-        glob = np.hstack([glob, np.full((n, k - glob.shape[1]), -1, dtype=np.int64)])
-    return glob
+    out = np.full((n, width), -1, dtype=np.int64)
+    for s in range(0, n, _KNN_CHUNK):
+        e = min(s + _KNN_CHUNK, n)
+        dist, idx = tree.query(points[s:e], k=kq, distance_upper_bound=radius)
+        dist = dist.reshape(e - s, kq)
+        idx = idx.reshape(e - s, kq)
+        ok = np.isfinite(dist)
+        glob = np.where(ok, pool[np.minimum(idx, len(pool) - 1)], -1)
+        glob[glob == np.arange(s, e)[:, None]] = -1  # drop self
+        # keep the first k valid entries per row (sorted by distance already)
+        order = np.argsort(glob < 0, axis=1, kind="stable")
+        glob = np.take_along_axis(glob, order, axis=1)[:, :k]
+        if group is not None:
+            own = group[s:e, None]
+            same = (glob >= 0) & (group[np.maximum(glob, 0)] == own) & (own >= 0)
+            glob = np.where(same, -1, glob)
+            order = np.argsort(glob < 0, axis=1, kind="stable")
+            glob = np.take_along_axis(glob, order, axis=1)[:, :width]
+        out[s:e, :glob.shape[1]] = glob
+    return out
 
 
 def reference_neighbours(modules: pd.DataFrame, healthy_mask: ArrayLike, settings: Mapping[str, Any] | None = None,
@@ -221,22 +240,18 @@ def reference_neighbours(modules: pd.DataFrame, healthy_mask: ArrayLike, setting
         need = np.ones(n, dtype=bool)
     if need.any():
         pool = np.flatnonzero(healthy)
-        kq = k_win
-        if exclude_group is not None:
-            kq = k_win + 96  # ask for more (a string may hold dozens of the nearest), then drop it
-        win = _knn(xy0, pool, kq, float(cfg["window_radius_m"]))
-        if exclude_group is not None:
-            grp = np.asarray(exclude_group, dtype=np.int64)
-            same = (win >= 0) & (grp[np.maximum(win, 0)] == grp[:, None]) & (grp[:, None] >= 0)
-            win = np.where(same, -1, win)
-            order = np.argsort(win < 0, axis=1, kind="stable")
-            win = np.take_along_axis(win, order, axis=1)[:, :k_win]
+        if exclude_group is None:
+            win = _knn(xy0, pool, k_win, float(cfg["window_radius_m"]))
+        else:
+            # ask for more (a string may hold dozens of the nearest), then drop it
+            win = _knn(xy0, pool, k_win + 96, float(cfg["window_radius_m"]),
+                       group=np.asarray(exclude_group, dtype=np.int64), keep=k_win)
         out[need, :k_win] = win[need]
     return out
 
 
 def _median_of(values: np.ndarray, nb: np.ndarray, xy: np.ndarray | None = None,
-               max_shift_m: float = 5.0) -> np.ndarray:
+               max_shift_m: float = 5.0, rows: slice | None = None) -> np.ndarray:
     """Median of the neighbours' values; with ``xy``, corrected for a linear trend.
 
     The trend correction matters where the neighbours sit on one side (row ends): the
@@ -247,17 +262,24 @@ def _median_of(values: np.ndarray, nb: np.ndarray, xy: np.ndarray | None = None,
     moved from the neighbours' median position to the module's. Only neighbours lying on
     a line through the module (within 0.5 m: a table row) are corrected, and only when
     their median position is within ``max_shift_m`` of the module.
+
+    ``nb`` may hold the neighbours of the modules ``rows`` only (a slice of all modules;
+    ``values`` and ``xy`` stay whole): the result is then for those modules.
     """
-    n = len(values)
     if nb.shape[1] == 0:
-        return np.full(n, np.nan)
+        return np.full(len(nb), np.nan)
+    if len(nb) > _KNN_CHUNK:
+        # row by row independent: in chunks of modules (bounded (modules x pairs) temporaries)
+        return np.concatenate([_median_of(values, nb[s:s + _KNN_CHUNK], xy, max_shift_m,
+                                          rows=slice(s, s + _KNN_CHUNK)) for s in range(0, len(nb), _KNN_CHUNK)])
     vals = np.where(nb >= 0, values[np.maximum(nb, 0)], np.nan)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
         med = np.nanmedian(vals, axis=1)
         if xy is None:
             return med
-        off = np.where((nb >= 0)[:, :, None], xy[np.maximum(nb, 0)] - xy[:, None, :], np.nan)
+        own = xy if rows is None else xy[rows]
+        off = np.where((nb >= 0)[:, :, None], xy[np.maximum(nb, 0)] - own[:, None, :], np.nan)
         # main axis of the offsets (sign-free): angle of the doubled-angle mean direction
         ang = np.arctan2(off[:, :, 1], off[:, :, 0])
         c2 = np.nanmean(np.cos(2 * ang), axis=1)

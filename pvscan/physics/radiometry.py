@@ -464,6 +464,10 @@ def temperature_uncertainty(temp_apparent_c: ArrayLike, *, emissivity_sd: float 
 # ---------------------------------------------------------------------------------------
 # Flight wrapper
 # ---------------------------------------------------------------------------------------
+#: Modules per call of the band transmission in :func:`flight_radiometry` (bounds its temporaries).
+_TRANSMISSION_CHUNK = 8192
+
+
 def flight_radiometry(flight: Flight, conditions: Any,
                       settings: Mapping[str, Any] | None = None) -> dict[str, Any]:
     """Radiometric keywords for :func:`true_from_apparent` / :func:`correct_statistics`.
@@ -513,10 +517,17 @@ def flight_radiometry(flight: Flight, conditions: Any,
         dist = getattr(flight.flight, "altitude_m", None)
         if dist is None:
             dist = float(cfg["default_altitude_m"])
-        kw["transmission"] = np.asarray(
-            atmospheric_transmission(
-                dist, temp_air, rh, pressure_hpa=float(cfg["pressure_hpa"]), band_um=band
-            )
-        )
+        pressure = float(cfg["pressure_hpa"])
+        if temp_air.ndim == 1:
+            # in chunks of modules: the band integral holds (modules x wavenumbers)
+            # temporaries, and each module's value depends on its own conditions only
+            kw["transmission"] = np.concatenate([
+                np.atleast_1d(np.asarray(atmospheric_transmission(
+                    dist, temp_air[i:i + _TRANSMISSION_CHUNK], rh[i:i + _TRANSMISSION_CHUNK],
+                    pressure_hpa=pressure, band_um=band)))
+                for i in range(0, max(temp_air.size, 1), _TRANSMISSION_CHUNK)])
+        else:
+            kw["transmission"] = np.asarray(atmospheric_transmission(dist, temp_air, rh, pressure_hpa=pressure,
+                                                                     band_um=band))
         kw["temp_atm_c"] = temp_air
     return kw

@@ -17,20 +17,52 @@ from collections.abc import Mapping
 import numpy as np
 from scipy import ndimage
 
-from pvscan.diagnose.features import Features, Hits, confidence, quality
+from pvscan.diagnose.features import Features, Hits, cell_neighbour_median, confidence, quality
 from pvscan.diagnose.patterns.junction_box import box_cells
-from pvscan.robust import nanmedian
 
 __all__ = ["pattern_hot_cell"]
 
 
 def _box_filter_median(X: np.ndarray) -> np.ndarray:
     """Median of each cell's (up to 8) neighbours within the module, NaN-aware."""
-    n, A, C = X.shape
-    P = np.pad(X, ((0, 0), (1, 1), (1, 1)), constant_values=np.nan)
-    stack = [P[:, 1 + di:1 + di + A, 1 + dj:1 + dj + C] for di in (-1, 0, 1) for dj in (-1, 0, 1)
-             if (di, dj) != (0, 0)]
-    return nanmedian(np.stack(stack, axis=0), axis=0)
+    return cell_neighbour_median(X)
+
+
+#: Modules per chunk of the hot-cell tests.
+_CHUNK = 8192
+
+
+def _hot_cells(R: np.ndarray, R95: np.ndarray, base_sub: np.ndarray, col_sub: np.ndarray, ok: np.ndarray,
+               box: np.ndarray, thr: float, cfg: Mapping) -> tuple[np.ndarray, np.ndarray]:
+    """The hot cells (m, A, C) of a chunk of modules and each module's largest hot-cell p95 residual."""
+    m, A, C = R.shape
+    base = base_sub[:, col_sub][:, None, :]
+    X = R - base
+    X95 = R95 - base
+    loc = X - _box_filter_median(X)
+    with np.errstate(invalid="ignore"):
+        cand = ((X >= thr) & (X95 >= thr) & (X >= float(cfg["hot_cell_whole_min"]) * X95)
+                & (loc >= float(cfg["hot_cell_contrast_min"]) * X))
+    Xc = np.where(cand, X, -np.inf)
+    peak = ndimage.maximum_filter(Xc, size=(1, 3, 3), mode="constant", cval=-np.inf)
+    hot = cand & (X >= float(cfg["hot_cell_peak_share"]) * peak)
+    # a hot cell at a short edge cut away by the edge margin (no pixels) shows only as heat
+    # bleeding into the p95 of the cell inside it: a spot there, away from any junction box
+    nan_c = ~np.isfinite(R)
+    beyond = np.zeros_like(nan_c)
+    beyond[:, 1, :] = nan_c[:, 0, :]
+    beyond[:, A - 2, :] |= nan_c[:, A - 1, :]
+    loc95 = X95 - _box_filter_median(X95)
+    with np.errstate(invalid="ignore"):
+        edge_spot = (beyond & (X95 >= thr) & (loc95 >= float(cfg["hot_cell_contrast_min"]) * X95)
+                     & ~box[None] & ~cand)
+    Xe = np.where(edge_spot, X95, -np.inf)
+    peak_e = ndimage.maximum_filter(np.maximum(Xe, np.where(hot, X95, -np.inf)), size=(1, 3, 3),
+                                    mode="constant", cval=-np.inf)
+    hot |= edge_spot & (X95 >= peak_e)
+    hot &= ok[:, None, None]
+    xmax = np.where(hot, X95, -np.inf).reshape(m, -1).max(axis=1) if m else np.zeros(0)
+    return hot, xmax
 
 
 def pattern_hot_cell(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
@@ -52,33 +84,15 @@ def pattern_hot_cell(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
         ``hot_cell`` (one cell) and ``several_hot_cells`` (several); region temperature =
         the hottest hot cell's p95.
     """
-    base = F.base_sub[:, F.col_sub][:, None, :]
-    X = F.R - base
-    X95 = F.R95 - base
     thr = max(float(cfg["hot_cell_min_k"]), float(cfg["noise_z"]) * F.sig_cell)
-    loc = X - _box_filter_median(X)
-    with np.errstate(invalid="ignore"):
-        cand = ((X >= thr) & (X95 >= thr) & (X >= float(cfg["hot_cell_whole_min"]) * X95)
-                & (loc >= float(cfg["hot_cell_contrast_min"]) * X))
-    Xc = np.where(cand, X, -np.inf)
-    peak = ndimage.maximum_filter(Xc, size=(1, 3, 3), mode="constant", cval=-np.inf)
-    hot = cand & (X >= float(cfg["hot_cell_peak_share"]) * peak)
-    # a hot cell at a short edge cut away by the edge margin (no pixels) shows only as heat
-    # bleeding into the p95 of the cell inside it: a spot there, away from any junction box
-    A, C = F.n_along, F.n_across
-    nan_c = ~np.isfinite(F.R)
-    beyond = np.zeros_like(nan_c)
-    beyond[:, 1, :] = nan_c[:, 0, :]
-    beyond[:, A - 2, :] |= nan_c[:, A - 1, :]
-    loc95 = X95 - _box_filter_median(X95)
-    with np.errstate(invalid="ignore"):
-        edge_spot = (beyond & (X95 >= thr) & (loc95 >= float(cfg["hot_cell_contrast_min"]) * X95)
-                     & ~box_cells(F)[None] & ~cand)
-    Xe = np.where(edge_spot, X95, -np.inf)
-    peak_e = ndimage.maximum_filter(np.maximum(Xe, np.where(hot, X95, -np.inf)), size=(1, 3, 3),
-                                    mode="constant", cval=-np.inf)
-    hot |= edge_spot & (X95 >= peak_e)
-    hot &= F.ok[:, None, None]
+    n, A, C = F.n, F.n_along, F.n_across
+    box = box_cells(F)
+    hot = np.zeros((n, A, C), bool)
+    xmax = np.full(n, -np.inf)
+    # modules in chunks (every test below is within one module): bounded temporaries
+    for s in range(0, n, _CHUNK):
+        sl = slice(s, min(s + _CHUNK, n))
+        hot[sl], xmax[sl] = _hot_cells(F.R[sl], F.R95[sl], F.base_sub[sl], F.col_sub, F.ok[sl], box, thr, cfg)
     if bool(cfg["hot_cell_merge_touching"]):
         # touching hot cells as one hot spot: a spot straddling a cell boundary (footprints
         # a few centimetres off) then does not pose as several hot cells
@@ -95,8 +109,6 @@ def pattern_hot_cell(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
             np.add.at(count, owner, np.where(size > int(cfg["hot_cell_merge_max_cells"]), 2, 1))
     else:
         count = hot.sum(axis=(1, 2))
-    n = F.n
-    xmax = np.where(hot, X95, -np.inf).reshape(n, -1).max(axis=1) if n else np.zeros(0)
     temp = np.where(hot, F.cp, -np.inf).reshape(n, -1).max(axis=1) if n else np.zeros(0)
     temp = np.where(count > 0, temp, np.nan)
     conf = confidence(quality(xmax, thr))

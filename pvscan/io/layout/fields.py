@@ -169,6 +169,14 @@ def _ints(vals: np.ndarray, have: np.ndarray, field: str, where: np.ndarray, nam
     """Whole numbers (:func:`_whole`) of present values, None elsewhere (object array);
     ``where`` gives each value's feature, named in the error."""
     out = np.full(len(vals), None, dtype=object)
-    for j in np.flatnonzero(have):
-        out[j] = _whole(vals[j], field, name_of(int(where[j])), path)
+    idx = np.flatnonzero(have)
+    if idx.size and pd.api.types.infer_dtype(vals[idx], skipna=False) == "integer":
+        # whole numbers already (the usual case): no per-feature parsing
+        out[idx] = [int(v) for v in vals[idx]]
+        return out
+    for j in idx:
+        try:
+            out[j] = _whole(vals[j], field, "", path)
+        except LayoutError:  # again with the feature's name (built only for the message)
+            out[j] = _whole(vals[j], field, name_of(int(where[j])), path)
     return out

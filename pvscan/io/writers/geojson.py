@@ -132,10 +132,10 @@ def modules_feature_collection(modules: Any, module_table: pd.DataFrame | None =
     columns["anomaly_ids"] = [[] if v is None else v for v in columns["anomaly_ids"]]
     columns["power_loss_w"] = [0.0 if p is None and d is None else p
                                for p, d in zip(columns["power_loss_w"], columns["defect"])]
-    features = []
-    for pos in range(n):
-        props = {key: columns[key][pos] for key in MODULE_PROPERTIES}
-        features.append({"type": "Feature", "id": props["module_id"], "geometry": geoms[pos], "properties": props})
+    # one dict per feature, built by zipping whole columns (no per-key lookups)
+    props = [dict(zip(MODULE_PROPERTIES, vals)) for vals in zip(*(columns[key] for key in MODULE_PROPERTIES))]
+    features = [{"type": "Feature", "id": mid, "geometry": geom, "properties": p}
+                for mid, geom, p in zip(columns["module_id"], geoms, props)]
     return {"type": "FeatureCollection", "features": features}
 
 
