@@ -11,7 +11,7 @@ PVSCAN := $(VENV)/bin/pvscan
 DEMO_FLIGHT := demo_site/flight
 DEMO_OUT    := demo_out
 
-.PHONY: demo test lint install bench browser-deps clean wheel-check test-floors
+.PHONY: demo test lint install bench campaign browser-deps clean wheel-check test-floors
 
 $(VENV)/.installed: pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -67,6 +67,14 @@ test-floors:
 bench: $(VENV)/.installed
 	$(PY) -m pip install --quiet -e '.[test,bench]'
 	$(PY) benchmarks/bench_inspect.py
+
+# Accuracy over 102 random flights nobody tuned on (9 families x 11 + 3 demo seeds; calibration
+# seeds 0-4, held-out seeds 200000-200005; demo 0 and 200000-200001), niced, two workers;
+# records and a markdown summary in the git-ignored .campaign/latest/ (about an hour on a
+# shared 2-core machine).
+CAMPAIGN_ARGS ?= --per-family 11 --demo-seeds 3 --workers 2 --held-out-seeds 200000-200999
+campaign: $(VENV)/.installed
+	nice -n 10 $(PY) benchmarks/campaign.py $(CAMPAIGN_ARGS) --out .campaign/latest --notes .campaign/latest/notes.md
 
 # Headless Chromium for the report's browser test (Debian packages); needs root.
 browser-deps:

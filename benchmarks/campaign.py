@@ -1,29 +1,35 @@
 """Accuracy over many random flights nobody tuned on: simulate -> inspect -> evaluate.
 
     python benchmarks/campaign.py [--per-family 5] [--demo-seeds 3] [--families any,fixed,...]
-                                  [--calibration-seeds 0-99] [--held-out-seeds 1000-1099]
-                                  [--workers 2] [--json out.json] [--keep DIR]
+                                  [--calibration-seeds 0-999] [--held-out-seeds 100000-100999]
+                                  [--workers 2] [--out .campaign/NAME] [--notes FILE.md] [--keep DIR]
+    python benchmarks/campaign.py --summarise .campaign/NAME/records.jsonl [--notes FILE.md]
 
 Every flight family of :mod:`pvscan.simulate.sampler` gets ``--per-family`` random flights
 and ``demo_site/scenario.toml`` gets ``--demo-seeds`` seeds; half of each set is drawn from
 the calibration seed range and half from the held-out range (disjoint), and the two are
 printed apart: a threshold chosen on calibration flights must be judged on held-out ones.
-Flights run on a process pool (``--workers``, default 2).
+Flights run on a process pool (``--workers``, default 2); each finished flight is appended to
+``records.jsonl`` in ``--out`` at once, so an interrupted campaign keeps what it measured and
+``--summarise`` prints (and ``--notes`` writes) the tables of any records file.
 
-Printed per family and seed set: worst / 10th percentile / median of module recall,
-precision, false alarms per 1,000 healthy modules and registration error; how many flights
-``inspect`` refused (exit 1) and how many it flagged ``validity.ok: false``. A flight that
-scores recall or precision below 0.9 and calls itself valid is counted and listed as
-"wrong and valid" (the worst outcome). The registration error is the RMS over modules of
-the distance between the true module centre (``truth_ortho.geojson``) and the layout's centre
-moved by ``summary.json`` ``layout_shift_m`` (shift only; a fitted rotation or scale the
-pipeline may apply is not counted), in metres. Wall times are printed, never asserted.
+Reported per family, per kind of flight (fixed / tracker, north / south, morning / noon /
+afternoon by the sun's hour angle, hot / cold ground, the ortho's surface model: true ortho /
+smoothed surface / ground level, level / sloping terrain) and per seed set: worst / 10th
+percentile / median of module recall and precision, the power-loss ratio predicted / true
+(worst low, p10, median, p90, worst high), false alarms per 1,000 healthy modules and the
+registration error; how many flights ``inspect`` refused (exit 1), how many it flagged
+``validity.ok: false``, and every flight that scored recall or precision below 0.9 (or a
+loss ratio outside 0.5-2) and yet called itself valid ("wrong and valid", the worst
+outcome), with what looked wrong. ``inspect`` runs with ``--no-report`` (the report is not
+scored). The registration error is ``pvscan evaluate``'s: the
+distance between the reported layout shift and the true layout offset [m]. Wall times are
+printed, never asserted.
 """
 from __future__ import annotations
 
 import argparse
 import json
-import math
 import shutil
 import subprocess
 import sys
@@ -37,39 +43,38 @@ import numpy as np
 ROOT = Path(__file__).resolve().parent.parent
 DEMO = ROOT / "demo_site" / "scenario.toml"
 PVSCAN = [sys.executable, "-m", "pvscan.cli.main"]
+#: a flight is "wrong" below this recall or precision (common practice for a usable survey) ...
+WRONG_BELOW = 0.9
+#: ... or with its power-loss ratio outside this range
+LOSS_RATIO_OK = (0.5, 2.0)
 
 
-def _centres_lonlat(path: Path, epsg: int) -> dict:
-    from pyproj import Transformer
-
-    tr = Transformer.from_crs("EPSG:4326", f"EPSG:{epsg}", always_xy=True)
-    out = {}
-    for f in json.loads(path.read_text())["features"]:
-        ring = np.asarray(f["geometry"]["coordinates"][0][:-1], float)
-        x, y = tr.transform(ring[:, 0], ring[:, 1])
-        out[f["properties"]["module_id"]] = (float(np.mean(x)), float(np.mean(y)))
-    return out
+def _last_line(p) -> str:
+    lines = (p.stderr or p.stdout or "").strip().splitlines()
+    return lines[-1] if lines else ""
 
 
-def registration_error(flight: Path, result: Path) -> float | None:
-    """RMS distance between true module centres and the layout's centres moved by the
-    reported shift [m]; None when the flight has no truth_ortho.geojson or no shift."""
-    t_path = flight / "truth_ortho.geojson"
-    s_path = result / "summary.json"
-    if not t_path.exists() or not s_path.exists():
-        return None
-    shift = json.loads(s_path.read_text()).get("layout_shift_m") or [0.0, 0.0]
+def _strata(flight: Path) -> dict:
+    """Kind of flight from the truth: array kind, hemisphere, hour, ground, sun."""
     meta = json.loads((flight / "truth.json").read_text())
-    drawn = _centres_lonlat(flight / "truth.geojson", int(meta["epsg"]))
-    d2 = []
-    for f in json.loads(t_path.read_text())["features"]:
-        mid = f["properties"]["module_id"]
-        ring = np.asarray(f["geometry"]["coordinates"][0][:-1], float)
-        tx, ty = ring.mean(axis=0)
-        if mid in drawn:
-            dx, dy = drawn[mid]
-            d2.append((dx + shift[0] - tx) ** 2 + (dy + shift[1] - ty) ** 2)
-    return float(math.sqrt(np.mean(d2))) if d2 else None
+    sc = meta.get("scenario_settings") or {}
+    site = sc.get("site", {})
+    lon, lat = float(site.get("lon", 0.0)), float(site.get("lat", 0.0))
+    out = {"kind": sc.get("array", {}).get("kind"), "hemisphere": "north" if lat >= 0 else "south",
+           "sun_elevation_deg": meta.get("sun_elevation_deg")}
+    try:
+        from datetime import UTC, datetime
+
+        start = datetime.fromisoformat(str(sc["flight"]["start"]).replace("Z", "+00:00")).astimezone(UTC)
+        utc_h = start.hour + start.minute / 60.0
+        solar_h = (utc_h + lon / 15.0) % 24.0  # local mean solar time [h]
+        out["solar_hour"] = round(solar_h, 2)
+        out["hour"] = "noon" if abs(solar_h - 12.0) <= 1.5 else ("morning" if solar_h < 12.0 else "afternoon")
+    except (KeyError, ValueError, TypeError):
+        out["hour"] = None
+    rise = sc.get("ground", {}).get("sun_rise_k")
+    out["ground"] = None if rise is None else ("hot" if float(rise) >= 10.0 else "cold")
+    return out
 
 
 def run_flight(job: dict) -> dict:
@@ -77,36 +82,51 @@ def run_flight(job: dict) -> dict:
     work = Path(tempfile.mkdtemp(prefix="pvscan-campaign-"))
     flight, result = work / "flight", work / "result"
     rec = dict(job)
+    rec.pop("keep", None)
     t0 = time.perf_counter()
     try:
         if job["family"] == "demo":
-            sim = PVSCAN + ["simulate", str(DEMO), "--out", str(flight), "--seed", str(job["seed"])]
+            sim = PVSCAN + ["-q", "simulate", str(DEMO), "--out", str(flight), "--seed", str(job["seed"])]
         else:
-            sim = PVSCAN + ["simulate", "--random", str(job["seed"]), "--family", job["family"], "--out", str(flight)]
+            sim = PVSCAN + ["-q", "simulate", "--random", str(job["seed"]), "--family", job["family"],
+                            "--out", str(flight)]
         p = subprocess.run(sim, capture_output=True, text=True)
         if p.returncode:
-            rec.update(status="simulate_failed", message=(p.stderr or p.stdout).strip().splitlines()[-1:])
+            rec.update(status="simulate_failed", message=_last_line(p))
             return rec
-        p = subprocess.run(PVSCAN + ["-q", "inspect", str(flight / "flight.toml"), "--out", str(result)],
+        rec.update(_strata(flight))
+        meta = json.loads((flight / "truth.json").read_text())
+        rec["n_modules"] = meta.get("n_modules")
+        rec["layout_error"] = meta.get("layout_error")
+        p = subprocess.run(PVSCAN + ["-q", "inspect", str(flight / "flight.toml"), "--out", str(result), "--no-report"],
                            capture_output=True, text=True)
         rec["inspect_exit"] = p.returncode
         if p.returncode:
-            rec.update(status="refused", message=(p.stderr or p.stdout).strip().splitlines()[-1:])
+            rec.update(status="refused", message=_last_line(p))
             return rec
         ev = work / "ev.json"
         p = subprocess.run(PVSCAN + ["-q", "evaluate", str(flight), str(result), "--json", str(ev)],
                            capture_output=True, text=True)
         if p.returncode:
-            rec.update(status="evaluate_failed", message=(p.stderr or p.stdout).strip().splitlines()[-1:])
+            rec.update(status="evaluate_failed", message=_last_line(p))
             return rec
         e = json.loads(ev.read_text())
         summ = json.loads((result / "summary.json").read_text())
         m = e["module"]
+        val = summ.get("validity", {})
+        pl = e.get("power_loss", {})
+        missed = {k: c["n_true"] - c["correct"] for k, c in e.get("per_class", {}).items()
+                  if c.get("n_true") and c["n_true"] - c["correct"] > 0}
         rec.update(status="ok", recall=m["recall"], precision=m["precision"],
+                   n_defective_true=e.get("n_defective_true"), n_defective_predicted=e.get("n_defective_predicted"),
                    false_alarms_per_1000=m["false_alarms_per_1000_healthy"],
-                   registration_error_m=registration_error(flight, result),
-                   valid=bool(summ.get("validity", {}).get("ok", True)),
-                   layout_error=json.loads((flight / "truth.json").read_text()).get("layout_error"))
+                   false_alarms_by_distractor=m.get("false_alarms_by_distractor"),
+                   missed_by_class=missed,
+                   loss_ratio=pl.get("ratio"), loss_ratio_group=(pl.get("group") or {}).get("ratio"),
+                   registration_error_m=(e.get("registration") or {}).get("error_m"),
+                   registration_status=(summ.get("registration") or {}).get("status"),
+                   valid=bool(val.get("ok", True)), failed_checks=val.get("failed", []),
+                   healthy_rmse_k=(e.get("temperature") or {}).get("healthy_rmse_k"))
         return rec
     finally:
         rec["wall_s"] = round(time.perf_counter() - t0, 1)
@@ -117,6 +137,30 @@ def run_flight(job: dict) -> dict:
         shutil.rmtree(work, ignore_errors=True)
 
 
+def is_wrong(r: dict) -> bool:
+    """Recall or precision below :data:`WRONG_BELOW`, or the loss ratio outside :data:`LOSS_RATIO_OK`."""
+    if min(r.get("recall") or 0.0, r.get("precision") or 0.0) < WRONG_BELOW:
+        return True
+    lr = r.get("loss_ratio")
+    return lr is not None and not (LOSS_RATIO_OK[0] <= lr <= LOSS_RATIO_OK[1])
+
+
+def what_looked_wrong(r: dict) -> str:
+    """A short reading of a wrong flight's record (registration, false alarms, misses)."""
+    bits = []
+    if (r.get("registration_error_m") or 0.0) > 0.3:
+        bits.append(f"registration off by {r['registration_error_m']:.2f} m")
+    fa = {k: v for k, v in (r.get("false_alarms_by_distractor") or {}).items() if v}
+    if fa:
+        bits.append("false alarms at " + ", ".join(f"{k} {v}" for k, v in sorted(fa.items())))
+    if r.get("missed_by_class"):
+        bits.append("missed " + ", ".join(f"{k} {v}" for k, v in sorted(r["missed_by_class"].items())))
+    lr = r.get("loss_ratio")
+    if lr is not None and not (LOSS_RATIO_OK[0] <= lr <= LOSS_RATIO_OK[1]):
+        bits.append(f"loss ratio {lr:.2f}")
+    return "; ".join(bits) or "-"
+
+
 def _stats(vals):
     v = np.asarray([x for x in vals if x is not None and np.isfinite(x)], float)
     if not v.size:
@@ -125,59 +169,133 @@ def _stats(vals):
             "p10": float(np.percentile(v, 10)), "p90": float(np.percentile(v, 90)), "median": float(np.median(v))}
 
 
+def _group(recs: list[dict]) -> dict:
+    ok = [r for r in recs if r["status"] == "ok"]
+    return {
+        "flights": len(recs), "scored": len(ok),
+        "refused": sum(r["status"] == "refused" for r in recs),
+        "failed": sum(r["status"] in ("simulate_failed", "evaluate_failed") for r in recs),
+        "flagged_invalid": sum(not r["valid"] for r in ok),
+        "wrong_and_valid": [r["seed"] for r in ok if r["valid"] and is_wrong(r)],
+        "wrong_and_flagged": sum((not r["valid"]) and is_wrong(r) for r in ok),
+        "recall": _stats([r["recall"] for r in ok]), "precision": _stats([r["precision"] or 0.0 for r in ok]),
+        "loss_ratio": _stats([r.get("loss_ratio") for r in ok]),
+        "false_alarms_per_1000": _stats([r["false_alarms_per_1000"] for r in ok]),
+        "registration_error_m": _stats([r.get("registration_error_m") for r in ok]),
+    }
+
+
+STRATA = ("family", "kind", "hemisphere", "hour", "ground", "ortho_relief", "terrain")
+
+
+def _enrich(records: list[dict]) -> None:
+    """Strata of the simulator's optics and terrain, from the scenario the seed draws
+    (:func:`pvscan.simulate.sampler.draw_scenario` is deterministic); the demo has neither."""
+    from pvscan.simulate.sampler import draw_scenario
+
+    for r in records:
+        if "ortho_relief" in r:
+            continue
+        if r["family"] == "demo":
+            r["ortho_relief"], r["terrain"] = "true_ortho", "level"
+            continue
+        sc = draw_scenario(int(r["seed"]), r["family"])
+        f = float(sc.get("ortho", {}).get("relief_height_fraction", 0.0))
+        r["ortho_relief"] = "true_ortho" if f == 0 else ("ground_level" if f >= 1 else "smoothed_surface")
+        r["terrain"] = "level" if float(sc.get("terrain", {}).get("slope_deg", 0.0)) == 0 else "sloping"
+
+
 def summarise(records: list[dict]) -> dict:
-    """Per (seed set, family): distributions, refusals, flags, wrong-and-valid flights."""
-    out: dict = {}
-    for rec in records:
-        out.setdefault(rec["set"], {}).setdefault(rec["family"], []).append(rec)
+    """Per seed set: one row per family and per value of each stratum, and 'all'."""
+    _enrich(records)
     table: dict = {}
-    for sset, fams in out.items():
-        for fam, recs in fams.items():
-            ok = [r for r in recs if r["status"] == "ok"]
-            wrong_valid = [r["seed"] for r in ok if r["valid"] and min(r["recall"] or 0, r["precision"] or 0) < 0.9]
-            table.setdefault(sset, {})[fam] = {
-                "flights": len(recs), "scored": len(ok),
-                "refused": sum(r["status"] == "refused" for r in recs),
-                "failed": sum(r["status"] in ("simulate_failed", "evaluate_failed") for r in recs),
-                "flagged_invalid": sum(not r["valid"] for r in ok),
-                "wrong_and_valid": wrong_valid,
-                "recall": _stats([r["recall"] for r in ok]), "precision": _stats([r["precision"] for r in ok]),
-                "false_alarms_per_1000": _stats([r["false_alarms_per_1000"] for r in ok]),
-                "registration_error_m": _stats([r["registration_error_m"] for r in ok]),
-            }
+    for sset in ("calibration", "held-out"):
+        recs = [r for r in records if r["set"] == sset]
+        if not recs:
+            continue
+        rows = {"all": _group(recs)}
+        for key in STRATA:
+            for val in sorted({str(r.get(key)) for r in recs if r.get(key) is not None}):
+                rows[f"{key}={val}"] = _group([r for r in recs if str(r.get(key)) == val])
+        table[sset] = rows
     return table
 
 
-def _fmt(s, low=True, nd=2):
+def _fmt(s, nd=2, cols=("worst_low", "p10", "median")):
     if s is None:
-        return "       -        "
-    w = s["worst_low"] if low else s["worst_high"]
-    p = s["p10"] if low else s["p90"]
-    return f"{w:5.{nd}f} {p:5.{nd}f} {s['median']:5.{nd}f}"
+        return " - "
+    return " / ".join(f"{s[c]:.{nd}f}" for c in cols)
+
+
+def markdown(records: list[dict], title: str = "Campaign") -> str:
+    """The tables and the wrong-and-valid list as markdown."""
+    table = summarise(records)
+    done = len(records)
+    lines = [f"# {title}", "",
+             f"{done} flights finished. Recall / precision: worst / p10 / median. Loss ratio (predicted / true "
+             "power loss at STC): worst low / p10 / median / p90 / worst high. False alarms per 1,000 healthy "
+             "modules and registration error [m]: median / p90 / worst. ref = refused (exit 1), inv = flagged "
+             "validity.ok false, w&v = wrong (recall or precision < 0.9, or loss ratio outside 0.5-2) and valid.",
+             ""]
+    for sset, rows in table.items():
+        lines += [f"## {sset} seeds", "",
+                  "| group | n | ref | inv | w&v | recall | precision | loss ratio | false alarms/1000 "
+                  "| registration [m] |",
+                  "|---|---|---|---|---|---|---|---|---|---|"]
+        for name, g in rows.items():
+            lines.append(
+                f"| {name} | {g['flights']} | {g['refused']} | {g['flagged_invalid']} | {len(g['wrong_and_valid'])} | "
+                f"{_fmt(g['recall'])} | {_fmt(g['precision'])} | "
+                f"{_fmt(g['loss_ratio'], 2, ('worst_low', 'p10', 'median', 'p90', 'worst_high'))} | "
+                f"{_fmt(g['false_alarms_per_1000'], 1, ('median', 'p90', 'worst_high'))} | "
+                f"{_fmt(g['registration_error_m'], 2, ('median', 'p90', 'worst_high'))} |")
+        lines.append("")
+    wv = [r for r in records if r["status"] == "ok" and r["valid"] and is_wrong(r)]
+    lines += ["## Wrong and valid flights", "",
+              "Replay: `pvscan simulate --random SEED --family FAMILY --out F` (demo: "
+              "`pvscan simulate demo_site/scenario.toml --seed SEED --out F`), then `pvscan inspect F/flight.toml "
+              "--out R` and `pvscan evaluate F R`.", "",
+              "| set | family | seed | kind | hemisphere | hour | ground | P | R | loss ratio | what looked wrong |",
+              "|---|---|---|---|---|---|---|---|---|---|---|"]
+    for r in sorted(wv, key=lambda r: (r["set"], r["family"], r["seed"])):
+        lr = r.get("loss_ratio")
+        lines.append(f"| {r['set']} | {r['family']} | {r['seed']} | {r.get('kind')} | {r.get('hemisphere')} | "
+                     f"{r.get('hour')} | {r.get('ground')} | {(r['precision'] or 0):.2f} | {r['recall']:.2f} | "
+                     f"{'-' if lr is None else f'{lr:.2f}'} | {what_looked_wrong(r)} |")
+    if not wv:
+        lines.append("| (none) | | | | | | | | | | |")
+    other = [r for r in records if r["status"] not in ("ok", "refused")]
+    if other:
+        lines += ["", "Failed to simulate or evaluate: " + ", ".join(
+            f"{r['family']} {r['seed']} ({r['status']}: {r.get('message', '')})" for r in other)]
+    refused = [r for r in records if r["status"] == "refused"]
+    if refused:
+        lines += ["", "Refused: " + "; ".join(f"{r['family']} {r['seed']}: {r.get('message', '')}" for r in refused)]
+    return "\n".join(lines) + "\n"
 
 
 def print_table(table: dict) -> None:
-    for sset in ("calibration", "held-out"):
-        if sset not in table:
-            continue
-        print(f"\n== {sset} seeds ==   (recall/precision: worst p10 median; false alarms/1000 and "
-              "registration error [m]: worst p90 median)")
-        print(f"{'family':26s} {'n':>3s} {'ref':>3s} {'inv':>3s} {'w&v':>3s} | {'recall':17s} | {'precision':17s} | "
-              f"{'false alarms/1000':17s} | registration [m]")
-        for fam, r in table[sset].items():
-            print(f"{fam:26s} {r['flights']:3d} {r['refused']:3d} {r['flagged_invalid']:3d} {len(r['wrong_and_valid']):3d} | "
-                  f"{_fmt(r['recall'])} | {_fmt(r['precision'])} | {_fmt(r['false_alarms_per_1000'], False, 1)} | "
-                  f"{_fmt(r['registration_error_m'], False, 3)}")
-        for fam, r in table[sset].items():
-            if r["wrong_and_valid"]:
-                print(f"  wrong and valid, {fam}: seeds {r['wrong_and_valid']}")
-            if r["failed"]:
-                print(f"  {fam}: {r['failed']} flight(s) failed to simulate or evaluate")
+    for sset, rows in table.items():
+        print(f"\n== {sset} seeds ==   (recall/precision: worst p10 median; loss ratio: worst-low p10 median "
+              "p90 worst-high; false alarms/1000 and registration error [m]: median p90 worst)")
+        for name, g in rows.items():
+            print(f"{name:28s} n {g['flights']:3d} ref {g['refused']:2d} inv {g['flagged_invalid']:3d} "
+                  f"w&v {len(g['wrong_and_valid']):2d} | R {_fmt(g['recall'])} | P {_fmt(g['precision'])} | "
+                  f"loss {_fmt(g['loss_ratio'], 2, ('worst_low', 'p10', 'median', 'p90', 'worst_high'))} | "
+                  f"FA {_fmt(g['false_alarms_per_1000'], 1, ('median', 'p90', 'worst_high'))} | "
+                  f"reg {_fmt(g['registration_error_m'], 2, ('median', 'p90', 'worst_high'))}")
 
 
 def _range(text: str) -> range:
     a, b = (int(x) for x in text.split("-"))
     return range(a, b + 1)
+
+
+def _write_atomic(path: Path, text: str) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = path.with_name(f".{path.name}.part")
+    tmp.write_text(text, encoding="utf-8")
+    tmp.replace(path)
 
 
 def main(argv=None) -> int:
@@ -191,34 +309,56 @@ def main(argv=None) -> int:
     ap.add_argument("--calibration-seeds", type=_range, default=_range("0-999"))
     ap.add_argument("--held-out-seeds", type=_range, default=_range("100000-100999"))
     ap.add_argument("--workers", type=int, default=2)
+    ap.add_argument("--out", type=Path, default=ROOT / ".campaign" / "latest",
+                    help="folder for records.jsonl and table.json (git-ignored .campaign/ by default)")
+    ap.add_argument("--notes", type=Path, default=None, help="markdown summary, rewritten as flights finish")
+    ap.add_argument("--title", default="Campaign of random flights")
+    ap.add_argument("--summarise", type=Path, default=None, help="only summarise this records.jsonl")
     ap.add_argument("--json", type=Path, default=None, help="write every record and the table here")
     ap.add_argument("--keep", type=Path, default=None, help="keep every flight and result here")
     args = ap.parse_args(argv)
+    if args.summarise:
+        records = [json.loads(x) for x in args.summarise.read_text().splitlines() if x.strip()]
+        print_table(summarise(records))
+        if args.notes:
+            _write_atomic(args.notes, markdown(records, args.title))
+        return 0
     if set(args.calibration_seeds) & set(args.held_out_seeds):
         ap.error("calibration and held-out seed ranges overlap")
     jobs = []
     fams = [f for f in args.families.split(",") if f]
     for fam, n in [(f, args.per_family) for f in fams] + [("demo", args.demo_seeds)]:
         n_cal = n // 2
-        for sset, rng_, k in (("calibration", args.calibration_seeds, n_cal), ("held-out", args.held_out_seeds, n - n_cal)):
+        for sset, rng_, k in (("calibration", args.calibration_seeds, n_cal),
+                              ("held-out", args.held_out_seeds, n - n_cal)):
             for i in range(k):
                 jobs.append({"family": fam, "seed": rng_[i], "set": sset,
                              "keep": str(args.keep) if args.keep else None})
+    # interleave families so that an early summary already covers every kind of flight
+    jobs.sort(key=lambda j: (j["seed"] - (args.calibration_seeds[0] if j["set"] == "calibration"
+                                          else args.held_out_seeds[0]), j["set"], j["family"]))
+    args.out.mkdir(parents=True, exist_ok=True)
+    log = args.out / "records.jsonl"
     t0 = time.perf_counter()
     records = []
-    with ProcessPoolExecutor(max_workers=args.workers) as pool:
+    with ProcessPoolExecutor(max_workers=args.workers) as pool, open(log, "w", encoding="utf-8") as fh:
         futs = [pool.submit(run_flight, j) for j in jobs]
         for k, f in enumerate(as_completed(futs), 1):
             r = f.result()
             records.append(r)
+            fh.write(json.dumps(r, default=str) + "\n")
+            fh.flush()
             print(f"[{k}/{len(jobs)}] {r['set']:11s} {r['family']:24s} seed {r['seed']:6d} {r['status']:9s} "
-                  f"recall {r.get('recall')} precision {r.get('precision')} valid {r.get('valid')} "
+                  f"R {r.get('recall')} P {r.get('precision')} loss {r.get('loss_ratio')} valid {r.get('valid')} "
                   f"reg {r.get('registration_error_m')} ({r['wall_s']} s)", flush=True)
+            if args.notes and (k % 5 == 0 or k == len(jobs)):
+                _write_atomic(args.notes, markdown(records, args.title))
     table = summarise(records)
     print_table(table)
     print(f"\n{len(jobs)} flights in {time.perf_counter() - t0:.0f} s on {args.workers} workers")
+    _write_atomic(args.out / "table.json", json.dumps(table, indent=1, default=str))
     if args.json:
-        args.json.write_text(json.dumps({"records": records, "table": table}, indent=1, default=str))
+        _write_atomic(args.json, json.dumps({"records": records, "table": table}, indent=1, default=str))
     return 0
 
 

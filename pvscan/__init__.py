@@ -1,12 +1,14 @@
 """pvscan: post-flight analysis of drone thermal orthomosaics of PV plants."""
 from __future__ import annotations
 
+from typing import Any
+
 __version__ = "0.1.0"
 
 __all__ = ["__version__", "load_flight", "load_pipeline", "inspect_flight"]
 
 
-def __getattr__(name):  # lazy public API, so importing pvscan stays cheap
+def __getattr__(name: str) -> Any:  # lazy public API, so importing pvscan stays cheap
     if name == "load_flight":
         from pvscan.io.manifest import load_flight
 

@@ -38,9 +38,20 @@ if TYPE_CHECKING:
     from pvscan.measure.zonal import ZonalStats
 
 __all__ = ["inspect_flight", "InspectionResult", "Measurement", "OrthoInfo", "SeamLevelling", "measure_flight",
-           "true_statistics", "write_results"]
+           "run_settings", "true_statistics", "write_results"]
 
 log = logging.getLogger(__name__)
+
+#: Pipeline sections read by other commands (``pvscan evaluate``, ``pvscan history``, ``pvscan
+#: layout detect``), not by :func:`inspect_flight`; ``summary.json`` ``settings`` holds the others.
+OTHER_COMMANDS_SECTIONS = frozenset({"evaluate", "history", "layout_detect"})
+
+
+def run_settings(settings: Pipeline) -> dict[str, dict[str, Any]]:
+    """The settings sections an inspection reads, as plain data (``summary.json`` ``settings``):
+    what a reader of the result (the report, a site history) needs to know how it was made."""
+    data = settings.to_dict()
+    return {name: data[name] for name in sorted(data) if name not in OTHER_COMMANDS_SECTIONS}
 
 
 @dataclass
@@ -501,6 +512,7 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
                "image_artefacts": m.seams.to_dict(module_ids),
                "layout": modules.attrs.get("layout", {}),
                "normalisation": Normalisation.from_settings(settings).to_dict(),
+               "settings": run_settings(settings),
                "timings_s": {k: round(v, 3) for k, v in timings.items()}},
     )
     result = InspectionResult(out_dir=None, modules=modules.assign(**{c: table[c].to_numpy() for c in table}),

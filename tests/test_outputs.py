@@ -325,7 +325,7 @@ def test_summary_valid_and_cautions(tmp_path, result):
     assert "power_loss_w" not in doc["loss"]  # one total, no duplicate key
     assert doc["conditions"] == {"poa_global_w_m2": 850.0, "temp_air_c": 25.0, "wind_speed_m_s": 2.0}  # units
     text = " ".join(doc["safety"]).lower()
-    for words in ("live dc", "disconnected", "arc", "fire", "hot", "qualified", "local electrical codes",
+    for words in ("live (dc)", "disconnected", "arc", "fire", "hot", "qualified", "local electrical codes",
                   "aviation"):
         assert words in text
     bad = dict(summ)

@@ -66,13 +66,29 @@ def test_open_string_is_not_levelled(rng):
 
 def test_stretch_repeated_in_the_other_row_is_levelled(rng):
     # a reflection or a seam crossing both rows of a table over the same modules of one string
-    m, t = _rows(rng)
-    a, b = _sel(m, 1, 3, 8), _sel(m, 2, 3, 8)
-    t[a] -= 1.5
-    t[b] -= 1.6
-    out = seams.find_stretches(m, t)
-    assert {s.reason for s in out} == {"rows"}
-    assert sorted(np.concatenate([s.modules for s in out]).tolist()) == sorted(np.concatenate([a, b]).tolist())
+    # (1.5 K, five module spreads): levelled as "rows" in every draw; exactly those modules in
+    # most (a module at a stretch's end 2.5 spreads off its level sits nearer the other one,
+    # so the ends are a rate: 58 of 66 exact on seeds 1-5, 100-159 and the demo's; binomial,
+    # n = 20, p = 0.88: P(X <= 13) = 0.9 %), never more than one module off at either end
+    exact = levelled = 0
+    for _ in range(20):
+        m, t = _rows(rng)
+        a, b = _sel(m, 1, 3, 8), _sel(m, 2, 3, 8)
+        t[a] -= 1.5
+        t[b] -= 1.6
+        out = seams.find_stretches(m, t)
+        if not out:
+            continue
+        assert {s.reason for s in out} == {"rows"}
+        levelled += 1
+        got = set(np.concatenate([s.modules for s in out]).tolist())
+        want = set(np.concatenate([a, b]).tolist())
+        exact += got == want
+        assert len(got ^ want) <= 4 and (set(_sel(m, 1, 4, 7)) | set(_sel(m, 2, 4, 7))) <= got
+    # levelled at all on at least 17 of 20 (116 of 120 on seeds 1000-1059 and 2000-2059;
+    # binomial, p = 0.97: P(X <= 16) = 0.3 %)
+    assert levelled >= 17
+    assert exact >= 14
 
 
 def test_stretch_running_to_the_row_end_is_left_alone(rng):
@@ -83,9 +99,19 @@ def test_stretch_running_to_the_row_end_is_left_alone(rng):
 
 
 def test_small_steps_are_not_edges(rng):
-    m, t = _rows(rng)
-    t[_sel(m, 2, 9, 17)] += 0.5              # below min_step_k: within the spread's reach
-    assert seams.find_stretches(m, t) == []
+    # a 0.5 K step over nine modules (below min_step_k, within the reach of a 0.3 K module
+    # spread): a window of its warmest modules passes min_step_k now and then, so it is a rate
+    # over 20 random tables: levelled on at most 3 (measured 8 of 200 on seeds 3000-3199;
+    # binomial, n = 20, p = 0.04: P(X >= 4) = 0.7 %); a 1.8 K step is levelled on every one
+    small = big = 0
+    for _ in range(20):
+        m, t = _rows(rng)
+        t[_sel(m, 2, 9, 17)] += 0.5
+        small += bool(seams.find_stretches(m, t))
+        t[_sel(m, 2, 9, 17)] += 1.3
+        big += bool(seams.find_stretches(m, t))
+    assert small <= 3
+    assert big == 20
 
 
 def test_level_stats_shifts_every_temperature_of_the_stretch(rng):
@@ -109,14 +135,23 @@ def test_level_stats_shifts_every_temperature_of_the_stretch(rng):
     assert np.array_equal(lev.table.t_median_c.to_numpy()[others], t[others])
 
 
-@pytest.mark.parametrize("spread, levelled", [(0.1, True), (0.6, False)])
-def test_short_stretch_must_stand_out_of_the_spread(rng, spread, levelled):
+def test_short_stretch_must_stand_out_of_the_spread(rng):
     # three modules 1 K up across a string boundary: clear against a 0.1 K module-to-module
-    # spread, but a chance excess against 0.6 K (2.4 standard errors of the difference of the
-    # means, below seam_z)
-    m, t = _rows(rng, spread=spread)
-    t[_sel(m, 1, 12, 14)] += 1.0
-    assert bool(seams.find_stretches(m, t)) is levelled
+    # spread (levelled on every draw), but a chance excess against 0.6 K (2.4 standard errors
+    # of the difference of the means, below seam_z). At 0.6 K healthy rows themselves make a
+    # stretch now and then (33 falsely levelled modules in 480 healthy rows of seeds
+    # 1000-1059, about 3 % of two-row tables), so that case is a rate over 20 random tables:
+    # levelled on at most 6 (binomial, n = 20, p = 0.1: P(X >= 7) = 0.24 %)
+    clear = chance = 0
+    for _ in range(20):
+        m, t = _rows(rng, spread=0.1)
+        t[_sel(m, 1, 12, 14)] += 1.0
+        clear += bool(seams.find_stretches(m, t))
+        m, t = _rows(rng, spread=0.6)
+        t[_sel(m, 1, 12, 14)] += 1.0
+        chance += bool(seams.find_stretches(m, t))
+    assert clear == 20
+    assert chance <= 6
 
 
 def test_pipeline_levels_a_seam_painted_into_the_ortho(tmp_path):
@@ -137,6 +172,11 @@ def test_pipeline_levels_a_seam_painted_into_the_ortho(tmp_path):
     sc = {"site": {"name": "Test field Seam Hollow (invented)", "lon": 9.8, "lat": 47.5},
           "array": {"table_rows": 2, "tables_per_row": 1, "rows": 2, "cols": 16, "rotation_deg": 0.0,
                     "modules_per_string": 8},
+          # a module-to-module spread of about 0.3 K (0.25 K thermal at the reference
+          # conditions, 0.25 K emissivity/reflection): the 1.8 K step is then about six
+          # spreads, a seam every draw must show (at the simulator's default 0.6 K it is three
+          # spreads, found as a rate: test_seam_at_a_large_module_spread_is_found_as_a_rate)
+          "conditions": {"module_spread_k": 0.25},
           "defects": {k: 0 for k in ("hot_cell", "several_hot_cells", "bypassed_substring",
                                      "several_bypassed_substrings", "open_module", "open_string", "pid",
                                      "soiling", "junction_box")}}
@@ -162,18 +202,31 @@ def test_pipeline_levels_a_seam_painted_into_the_ortho(tmp_path):
     got = {m for s in art["stretches"] for m in s["modules"]}
     assert set(sel.module_id.iloc[1:-1]) <= got <= set(sel.module_id)
     st = [s for s in art["stretches"] if set(s["modules"]) & set(sel.module_id)][0]
-    assert st["reason"] == "strings" and st["offset_k"] == pytest.approx(1.8 * 1.05, abs=0.4)
-    # levelled temperatures are back at the truth (true glass temperature, simulator's truth),
-    # to within the spread of the modules the offset was measured against (about 0.35 K for
-    # two medians of six modules each)
+    assert st["reason"] == "strings"
+    # the offset is the stretch's median excess over the rest of its row
+    # (pvscan/measure/seams.py), so it carries the painted step (1.8 K apparent, about 1.05 x
+    # in true glass temperature through the measurement equation with emissivity 0.85) plus
+    # the difference of the true temperatures of those two groups of modules (module spread
+    # about 0.6 K: that difference alone scatters by ~0.4 K, so it is taken from the
+    # simulator's truth, not tolerated); what is left is radiometric and pixel noise
     truth = {f["properties"]["module_id"]: f["properties"]["t_true_median_c"]
              for f in json.loads((tmp_path / "flight" / "truth.geojson").read_text())["features"]}
     res = {f["properties"]["module_id"]: f["properties"]["t_median_c"]
            for f in json.loads((tmp_path / "result" / "modules.geojson").read_text())["features"]}
+    row = mods[(mods.table_id == table) & (mods.table_row == 2)].sort_values("table_col")
+    ids = row.module_id.tolist()
+    inside = [m for m in ids if m in set(st["modules"])]
+    i0, i1 = ids.index(inside[0]), ids.index(inside[-1])
+    outside = ids[:i0] + ids[i1 + 1:]
+    expected = 1.8 * 1.05 + np.median([truth[m] for m in inside]) - np.median([truth[m] for m in outside])
+    assert st["offset_k"] == pytest.approx(expected, abs=0.3)
+    # levelled temperatures are back at the truth: the painted step is gone up to that same
+    # difference of the true temperatures either side
     err = [res[m] - truth[m] for m in sel.module_id.iloc[1:-1]]
     other = [res[m] - truth[m] for m in truth if m not in set(sel.module_id)]
-    assert abs(np.median(err) - np.median(other)) < 0.6
-    assert abs(np.median(err) - np.median(other) + st["offset_k"]) > 1.5  # where they were before
+    resid = np.median(err) - np.median(other)
+    assert abs(resid - (1.8 * 1.05 - expected)) < 0.3
+    assert abs(resid + st["offset_k"]) > 1.5  # where they were before
 
 
 def test_modules_without_a_string_do_not_make_a_stretch_cross_strings(rng):
@@ -184,3 +237,28 @@ def test_modules_without_a_string_do_not_make_a_stretch_cross_strings(rng):
     t[idx] += 2.5
     m.loc[idx[3], "string_id"] = None
     assert seams.find_stretches(m, t) == []
+
+
+def test_seam_at_a_large_module_spread_is_found_as_a_rate(rng):
+    # a 1.8 K seam over six modules across a string boundary against a 0.6 K module spread
+    # (three spreads: the simulator's default spread): whether the row shows it depends on
+    # the draw of the six modules' own temperatures, so it is a rate over 20 random tables.
+    # Measured on seeds 1000-1059 (calibration) 48 of 60 found and on 2000-2059 (held out)
+    # 40 of 60, about 70 %, with 33 and 0 falsely levelled modules in 480 healthy rows
+    # (two-row tables of 24, strings of 12); the earlier edge pairing found 24 of 60 at 23
+    # false modules on 1000-1059. Bounds: found on at least
+    # 9 of 20 (binomial, n = 20, p = 0.7: P(X <= 8) = 0.5 %), and healthy tables of the same
+    # spread make at most 4 falsely levelled stretches over 20 tables of 4 rows (33 modules in
+    # 960 rows of both seed ranges are about 7 stretches, under 0.01 per row; Poisson mean
+    # 0.8 over 80 rows, taken as 1.08: P(X >= 5) = 0.5 %)
+    found = false_stretches = 0
+    for _ in range(20):
+        m, t = _rows(rng, spread=0.6)
+        idx = _sel(m, 2, 9, 14)
+        t[idx] += 1.8
+        out = seams.find_stretches(m, t)
+        found += any(set(idx.tolist()) <= set(s.modules.tolist()) for s in out)
+        m0, t0 = _rows(rng, n_tables=2, spread=0.6)
+        false_stretches += len(seams.find_stretches(m0, t0))
+    assert found >= 9
+    assert false_stretches <= 4

@@ -116,3 +116,27 @@ def test_simulate_random_refuses_negative_seed(tmp_path):
 
     with pytest.raises(SimulationError):
         simulate_random(-1, tmp_path / "x")
+
+
+def test_terrain_optics_and_shade_draws():
+    # Documented ranges of pvscan.simulate.sampler (terrain, diffuse share, vignetting, seam
+    # misalignment, relief); raised_low_sun puts half its flights near a winter noon, where pvlib's
+    # solar position has the sun within 60 deg of the rows' facing azimuth (in front of them).
+    from datetime import datetime
+
+    draws = _draws("any", 30)
+    slopes = [sc["terrain"]["slope_deg"] for sc in draws]
+    assert all(s == 0.0 or 1.0 <= s <= 8.0 for s in slopes) and 0.0 in slopes and max(slopes) > 0
+    relief = [sc["ortho"]["relief_height_fraction"] for sc in draws]
+    assert all(r == 0.0 or r == 1.0 or 0.05 <= r <= 0.3 for r in relief) and len(set(relief)) > 2
+    for sc in draws:
+        assert 0.12 <= sc["conditions"]["diffuse_fraction"] <= 0.3
+        assert 0.0 <= sc["camera"]["vignetting"] <= 0.03
+        lo, hi = sc["distractors"]["seam_shift_m"]
+        assert 0.02 == lo <= hi <= 0.12
+    in_front = 0
+    for sc in _draws("raised_low_sun", 12):
+        elev, az = _sun(sc["site"]["lat"], sc["site"]["lon"], datetime.fromisoformat(sc["flight"]["start"]))
+        facing = 180.0 if sc["site"]["lat"] >= 0 else 0.0
+        in_front += abs((az - facing + 180.0) % 360.0 - 180.0) < 60.0
+    assert in_front >= 2

@@ -63,7 +63,7 @@ def _scenario(name: str, lat: float) -> dict:
 def local_cluster():
     distributed = pytest.importorskip("distributed")  # a test extra; installed by `make test`
     with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True, host="127.0.0.1",
-                                  dashboard_address=None, silence_logs=50) as lc:
+                                  dashboard_address="127.0.0.1:0", silence_logs=50) as lc:
         yield lc
 
 

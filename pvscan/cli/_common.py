@@ -8,11 +8,17 @@ import os
 import sys
 import traceback
 import warnings
-from typing import Any
+from collections.abc import Callable
+from pathlib import Path
+from typing import Any, ParamSpec, TextIO, TypeVar
 
 import click
 
 from pvscan.errors import PvscanError, PvscanWarning
+
+P = ParamSpec("P")
+R = TypeVar("R")
+F = TypeVar("F", bound=Callable[..., Any])
 
 EXIT_OK = 0
 EXIT_INPUT = 1
@@ -31,6 +37,16 @@ def configure_logging(verbosity: int) -> None:
     logging.getLogger("pvscan").setLevel(level)
 
 
+def pipeline_option(help: str) -> Callable[[F], F]:
+    """``--pipeline FILE``: the pipeline settings a command reads (``help`` says which section)."""
+    return click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path), help=help)
+
+
+def overwrite_option(help: str) -> Callable[[F], F]:
+    """``--overwrite``: replace an existing output (``help`` says which)."""
+    return click.option("--overwrite", is_flag=True, help=help)
+
+
 def verbosity() -> int:
     ctx = click.get_current_context(silent=True)
     while ctx is not None:
@@ -46,7 +62,8 @@ def echo(msg: str = "", *, err: bool = False, level: int = 0) -> None:
         click.echo(msg, err=err)
 
 
-def _show_warning(message, category, filename, lineno, file=None, line=None):
+def _show_warning(message: Warning | str, category: type[Warning], filename: str, lineno: int,
+                  file: TextIO | None = None, line: str | None = None) -> None:
     if issubclass(category, PvscanWarning):
         click.echo(f"pvscan: warning: {message}", err=True)
     else:
@@ -54,7 +71,7 @@ def _show_warning(message, category, filename, lineno, file=None, line=None):
             click.echo(f"pvscan: warning: {category.__name__}: {message}", err=True)
 
 
-def handle_errors(func):
+def handle_errors(func: Callable[P, R]) -> Callable[P, R]:
     """Run a command body; turn PvscanError into a one-line message and exit code 1.
 
     Errors of the machine rather than of pvscan (a full disk, a permission, a file that GDAL
@@ -63,7 +80,7 @@ def handle_errors(func):
     """
 
     @functools.wraps(func)
-    def wrapper(*args, **kwargs):
+    def wrapper(*args: P.args, **kwargs: P.kwargs) -> R:
         old = warnings.showwarning
         warnings.showwarning = _show_warning
         try:

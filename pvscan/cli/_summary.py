@@ -2,8 +2,10 @@
 from __future__ import annotations
 
 import math
+import os
 import textwrap
 from pathlib import Path
+from typing import SupportsFloat
 
 import click
 
@@ -12,7 +14,9 @@ __all__ = ["print_inspection_summary", "summary_lines"]
 _WIDTH = 96
 
 
-def _f(v, digits=0, unit=""):
+def _f(v: SupportsFloat | str | None, digits: int = 0, unit: str = "") -> str:
+    if v is None:
+        return "-"
     try:
         x = float(v)
     except (TypeError, ValueError):
@@ -26,17 +30,18 @@ def _cut(s: str, n: int = _WIDTH) -> str:
     return s if len(s) <= n else s[: n - 3] + "..."
 
 
-def summary_lines(result_dir, top: int | None = None) -> list[str]:
-    """The summary as a list of lines (see :func:`print_inspection_summary`)."""
+def summary_lines(result_dir: str | os.PathLike[str], top: int | None = None) -> list[str]:
+    """The summary as a list of lines (see :func:`print_inspection_summary`); ``top`` work
+    orders listed (default: ``[report] summary_top`` of the default pipeline)."""
     from pvscan.io.settings import load_pipeline
     from pvscan.report import SEVERITIES, load_result, validity_checks
 
     if top is None:
-        top = int(load_pipeline()["report"].get("summary_top", 5))
+        top = int(load_pipeline()["report"]["summary_top"])
     data = load_result(result_dir)
     an = data.anomalies
     tot = data.totals()
-    lines = []
+    lines: list[str] = []
     head = f"pvscan: {data.site_name}"
     if data.flight_id:
         head += f", flight {data.flight_id}"
@@ -122,8 +127,9 @@ def summary_lines(result_dir, top: int | None = None) -> list[str]:
     parts = []
     if (root / "report.html").exists():
         parts.append("report.html")
-    if (root / "workorders.csv").exists():
-        parts.append("workorders.csv")
+    field = [n for n in ("workorders.csv", "workorders.gpx") if (root / n).exists()]
+    if field:
+        parts.append(", ".join(field))
     gis = [n for n in ("anomalies.geojson", "modules.geojson", "pvscan.gpkg") if (root / n).exists()]
     if gis:
         parts.append("GIS: " + ", ".join(gis))
@@ -135,7 +141,7 @@ def summary_lines(result_dir, top: int | None = None) -> list[str]:
     return lines
 
 
-def print_inspection_summary(result_dir, top: int | None = None) -> None:
+def print_inspection_summary(result_dir: str | os.PathLike[str], top: int | None = None) -> None:
     """Print the end-of-run summary of a result folder (fits one screen, ~30 lines).
 
     Counts per defect and severity, total power and energy loss, the top work orders,

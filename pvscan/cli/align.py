@@ -6,7 +6,7 @@ from pathlib import Path
 
 import click
 
-from pvscan.cli._common import Progress, echo, handle_errors
+from pvscan.cli._common import Progress, echo, handle_errors, overwrite_option, pipeline_option
 
 
 def _fmt(v: float, nd: int = 3) -> str:
@@ -18,11 +18,10 @@ def _fmt(v: float, nd: int = 3) -> str:
 @click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
               help="Corrected layout: .gpkg (GeoPackage, ortho CRS) or .geojson (RFC 7946 lon/lat); written "
                    "atomically, without the internal module-frame columns.")
-@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
-              help="Pipeline settings (a tuned copy of pipelines/post_flight.toml); uses [register].")
-@click.option("--overwrite", is_flag=True, help="Replace an existing output file.")
+@pipeline_option("Pipeline settings (a tuned copy of pipelines/post_flight.toml); uses [register].")
+@overwrite_option("Replace an existing output file.")
 @handle_errors
-def align_cmd(flight, out_path, pipeline_path, overwrite):
+def align_cmd(flight: Path, out_path: Path, pipeline_path: Path | None, overwrite: bool) -> None:
     """Place the layout of FLIGHT.toml on its orthomosaic (shift, rotation, scale) and write
     the placed module footprints (with the layout's properties) to --out.
 

@@ -3,10 +3,11 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
+from typing import Any
 
 import click
 
-from pvscan.cli._common import echo, handle_errors
+from pvscan.cli._common import echo, handle_errors, pipeline_option
 
 
 @click.command("evaluate")
@@ -14,12 +15,12 @@ from pvscan.cli._common import echo, handle_errors
 @click.argument("result_dir", type=click.Path(file_okay=False, path_type=Path))
 @click.option("--json", "json_path", type=click.Path(dir_okay=False, path_type=Path),
               help="Also write the scores to this JSON file.")
-@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
-              help="Pipeline settings whose [evaluate] section sets the module matching.")
+@pipeline_option("Pipeline settings whose [evaluate] section sets the module matching.")
 @click.option("--force", is_flag=True,
               help="Score a truth and a result of different flights (site, flight id, start) anyway.")
 @handle_errors
-def evaluate_cmd(truth_dir, result_dir, json_path, pipeline_path, force):
+def evaluate_cmd(truth_dir: Path, result_dir: Path, json_path: Path | None, pipeline_path: Path | None,
+                 force: bool) -> None:
     """Score RESULT_DIR (from `pvscan inspect`) against TRUTH_DIR (from `pvscan simulate`).
 
     Prints detection precision/recall, per-class recall, the confusion matrix, false alarms,
@@ -45,7 +46,7 @@ def evaluate_cmd(truth_dir, result_dir, json_path, pipeline_path, force):
     echo(format_report(_rounded(scores)))
 
 
-def _rounded(value, decimals: int = 3):
+def _rounded(value: Any, decimals: int = 3) -> Any:
     """A copy of the scores with every float rounded for printing (``-0.0`` shown as ``0.0``);
     the JSON file keeps full precision."""
     if isinstance(value, float):

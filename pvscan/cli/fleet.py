@@ -6,19 +6,18 @@ from pathlib import Path
 
 import click
 
-from pvscan.cli._common import EXIT_INPUT, Progress, echo, handle_errors
+from pvscan.cli._common import EXIT_INPUT, Progress, echo, handle_errors, overwrite_option, pipeline_option
 
 
 @click.command("fleet")
 @click.argument("flights", nargs=-1, required=True, type=click.Path(dir_okay=False, path_type=Path))
 @click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=Path),
               help="Root folder: results go to OUT/<site>/<flight>/.")
-@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
-              help="Pipeline settings for every flight.")
+@pipeline_option("Pipeline settings for every flight.")
 @click.option("--scheduler", default="processes", show_default=True,
               help="synchronous, threads, processes, or a Dask scheduler address tcp://host:port.")
 @click.option("--workers", type=click.IntRange(1, 1024), help="Local workers (default: all cores).")
-@click.option("--overwrite", is_flag=True, help="Replace existing result folders.")
+@overwrite_option("Replace existing result folders.")
 @click.option("--no-report", is_flag=True, help="Do not write report.html files.")
 @handle_errors
 def fleet_cmd(flights: tuple[Path, ...], out_dir: Path, pipeline_path: Path | None, scheduler: str,

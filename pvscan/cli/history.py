@@ -5,13 +5,13 @@ from pathlib import Path
 
 import click
 
-from pvscan.cli._common import Progress, echo, handle_errors
+from pvscan.cli._common import Progress, echo, handle_errors, overwrite_option, pipeline_option
 
 _DB = click.argument("site_db", metavar="SITE.gpkg", type=click.Path(dir_okay=False, path_type=Path))
 
 
 @click.group("history")
-def history_group():
+def history_group() -> None:
     """Site history: store inspected flights of one site and report what changed."""
 
 
@@ -21,10 +21,9 @@ def history_group():
                 type=click.Path(file_okay=False, path_type=Path))
 @click.option("--replace", is_flag=True,
               help="Replace a stored flight of the same id whose results differ.")
-@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
-              help="Pipeline settings file (its [history] section).")
+@pipeline_option("Pipeline settings file (its [history] section).")
 @handle_errors
-def add_cmd(site_db, result_dir, replace, pipeline_path):
+def add_cmd(site_db: Path, result_dir: Path, replace: bool, pipeline_path: Path | None) -> None:
     """Store the results of one `pvscan inspect` run (creates SITE.gpkg when needed)."""
     from pvscan.history import add_flight
     from pvscan.io.settings import load_pipeline
@@ -48,7 +47,7 @@ def add_cmd(site_db, result_dir, replace, pipeline_path):
 @history_group.command("list")
 @_DB
 @handle_errors
-def list_cmd(site_db):
+def list_cmd(site_db: Path) -> None:
     """List the flights stored, oldest first."""
     from pvscan.history import list_flights
 
@@ -72,11 +71,11 @@ def list_cmd(site_db):
 @click.option("--to", "flight_to", metavar="FLIGHT", help="Later flight id.")
 @click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
               help="GeoJSON file to write (RFC 7946).")
-@click.option("--overwrite", is_flag=True, help="Replace an existing --out file.")
-@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
-              help="Pipeline settings file (its [history] section).")
+@overwrite_option("Replace an existing --out file.")
+@pipeline_option("Pipeline settings file (its [history] section).")
 @handle_errors
-def changes_cmd(site_db, flight_from, flight_to, out_path, overwrite, pipeline_path):
+def changes_cmd(site_db: Path, flight_from: str | None, flight_to: str | None, out_path: Path, overwrite: bool,
+                pipeline_path: Path | None) -> None:
     """Module-by-module change between two flights (default: the two latest)."""
     from pvscan.history import CHANGE_CLASSES, compare_flights, write_changes
     from pvscan.io.settings import load_pipeline
@@ -112,7 +111,7 @@ def changes_cmd(site_db, flight_from, flight_to, out_path, overwrite, pipeline_p
     echo(f"wrote {out_path}")
 
 
-def _k(v) -> str:
+def _k(v: float | None) -> str:
     return "?" if v is None else f"{v:.1f}"
 
 
@@ -120,11 +119,10 @@ def _k(v) -> str:
 @_DB
 @click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=Path),
               help="Folder to write (CSV series and PNG plots).")
-@click.option("--overwrite", is_flag=True, help="Replace an existing, non-empty folder.")
-@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
-              help="Pipeline settings file (its [history] section).")
+@overwrite_option("Replace an existing, non-empty folder.")
+@pipeline_option("Pipeline settings file (its [history] section).")
 @handle_errors
-def trend_cmd(site_db, out_dir, overwrite, pipeline_path):
+def trend_cmd(site_db: Path, out_dir: Path, overwrite: bool, pipeline_path: Path | None) -> None:
     """Counts, losses and temperatures per flight; per-module series."""
     from pvscan.history import site_trend, write_trend
     from pvscan.io.settings import load_pipeline
@@ -138,11 +136,10 @@ def trend_cmd(site_db, out_dir, overwrite, pipeline_path):
 @_DB
 @click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
               help="CSV file to write (one row per module ever anomalous, one column per flight).")
-@click.option("--overwrite", is_flag=True, help="Replace an existing --out file.")
-@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
-              help="Pipeline settings file (its [history] section).")
+@overwrite_option("Replace an existing --out file.")
+@pipeline_option("Pipeline settings file (its [history] section).")
 @handle_errors
-def degradation_cmd(site_db, out_path, overwrite, pipeline_path):
+def degradation_cmd(site_db: Path, out_path: Path, overwrite: bool, pipeline_path: Path | None) -> None:
     """Normalised delta T flight by flight and its rate of change per year (Theil-Sen) of every
     module that was ever anomalous."""
     import math
@@ -174,7 +171,7 @@ def degradation_cmd(site_db, out_path, overwrite, pipeline_path):
 @click.argument("events_csv", metavar="EVENTS.csv",
                 type=click.Path(dir_okay=False, path_type=Path))
 @handle_errors
-def maintenance_cmd(site_db, events_csv):
+def maintenance_cmd(site_db: Path, events_csv: Path) -> None:
     """Import repairs/replacements (CSV: date, module_id, action, note; `,` or `;`); idempotent."""
     from pvscan.history import import_maintenance
 

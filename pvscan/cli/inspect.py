@@ -5,16 +5,15 @@ from pathlib import Path
 
 import click
 
-from pvscan.cli._common import Progress, echo, handle_errors
+from pvscan.cli._common import Progress, echo, handle_errors, overwrite_option, pipeline_option
 
 
 @click.command("inspect")
 @click.argument("flight", type=click.Path(dir_okay=False, path_type=Path))
 @click.option("--out", "out_dir", required=True, type=click.Path(file_okay=False, path_type=Path),
               help="Result folder (written atomically; must not exist unless --overwrite).")
-@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
-              help="Pipeline settings (a tuned copy of pipelines/post_flight.toml).")
-@click.option("--overwrite", is_flag=True, help="Replace an existing result folder.")
+@pipeline_option("Pipeline settings (a tuned copy of pipelines/post_flight.toml).")
+@overwrite_option("Replace an existing result folder.")
 @click.option("--no-report", is_flag=True, help="Do not write report.html.")
 @click.option("--shift", "shift", type=float, nargs=2, default=None, metavar="DX DY",
               help="Use this known layout offset (east, north in the ortho's CRS) [m] instead of the measured one.")
@@ -26,8 +25,8 @@ from pvscan.cli._common import Progress, echo, handle_errors
                    "(local cores), or a Dask scheduler address tcp://host:port (workers must see the "
                    "flight's files by the same paths).")
 @handle_errors
-def inspect_cmd(flight, out_dir, pipeline_path, overwrite, no_report, scheduler, shift,
-                accept_poor_registration):
+def inspect_cmd(flight: Path, out_dir: Path, pipeline_path: Path | None, overwrite: bool, no_report: bool,
+                scheduler: str, shift: tuple[float, float] | None, accept_poor_registration: bool) -> None:
     """Find, classify and rank faulty modules of one flight (FLIGHT.toml) into --out DIR.
 
     Writes modules.geojson, anomalies.geojson, workorders.csv, pvscan.gpkg, summary.json and
@@ -40,7 +39,7 @@ def inspect_cmd(flight, out_dir, pipeline_path, overwrite, no_report, scheduler,
     from pvscan.pipeline import inspect_flight
     from pvscan.tasks import parse_scheduler
 
-    scheduler = parse_scheduler(scheduler)
+    sched = parse_scheduler(scheduler)
     fl = load_flight(flight)
     settings = load_pipeline(pipeline_path)
     echo(f"pvscan: inspecting {fl.site.name}, flight {fl.flight.id} ({len(fl.flight.orthos)} ortho tile(s))",
@@ -48,10 +47,11 @@ def inspect_cmd(flight, out_dir, pipeline_path, overwrite, no_report, scheduler,
     progress = Progress()
     try:
         result = inspect_flight(fl, settings, out_dir, overwrite=overwrite, report=not no_report,
-                                progress=progress, scheduler=scheduler, shift=tuple(shift) if shift else None,
+                                progress=progress, scheduler=sched, shift=(shift[0], shift[1]) if shift else None,
                                 accept_poor_registration=accept_poor_registration)
     finally:
         progress.close()
     from pvscan.cli._summary import print_inspection_summary
 
-    print_inspection_summary(result.out_dir)
+    if result.out_dir is not None:
+        print_inspection_summary(result.out_dir, top=int(settings["report"]["summary_top"]))

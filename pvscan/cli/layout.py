@@ -5,11 +5,11 @@ from pathlib import Path
 
 import click
 
-from pvscan.cli._common import echo, handle_errors
+from pvscan.cli._common import echo, handle_errors, overwrite_option, pipeline_option
 
 
 @click.group("layout")
-def layout_group():
+def layout_group() -> None:
     """Find the module layout in the thermal ortho, or hold a layout against it."""
 
 
@@ -30,11 +30,10 @@ def _write(out_path: Path, layers: dict, overwrite: bool) -> None:
 @click.argument("flight", type=click.Path(dir_okay=False, path_type=Path))
 @click.option("--out", "out_path", required=True, type=click.Path(dir_okay=False, path_type=Path),
               help="Detected layout (GeoPackage, ortho CRS; layers modules and tables; written atomically).")
-@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
-              help="Pipeline settings; uses [layout_detect].")
-@click.option("--overwrite", is_flag=True, help="Replace an existing output file.")
+@pipeline_option("Pipeline settings; uses [layout_detect].")
+@overwrite_option("Replace an existing output file.")
 @handle_errors
-def detect_cmd(flight, out_path, pipeline_path, overwrite):
+def detect_cmd(flight: Path, out_path: Path, pipeline_path: Path | None, overwrite: bool) -> None:
     """Find every table and module of FLIGHT.toml's ortho(s) from the module datasheet and
     write the module footprints to --out (usable as flight.layout).
 
@@ -67,11 +66,10 @@ def detect_cmd(flight, out_path, pipeline_path, overwrite):
               help="Findings (GeoPackage: layer findings; with --fix also layout).")
 @click.option("--fix", is_flag=True, help="Also write the corrected layout (layer layout), keeping the "
               "layout's ids and attributes of matched modules.")
-@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
-              help="Pipeline settings; uses [layout_detect].")
-@click.option("--overwrite", is_flag=True, help="Replace an existing output file.")
+@pipeline_option("Pipeline settings; uses [layout_detect].")
+@overwrite_option("Replace an existing output file.")
 @handle_errors
-def check_cmd(flight, out_path, fix, pipeline_path, overwrite):
+def check_cmd(flight: Path, out_path: Path, fix: bool, pipeline_path: Path | None, overwrite: bool) -> None:
     """Hold the layout of FLIGHT.toml against the modules found in its ortho: modules
     missing from the layout, layout modules with no module under them, tables moved or turned.
     """
@@ -105,10 +103,9 @@ def check_cmd(flight, out_path, fix, pipeline_path, overwrite):
 @layout_group.command("score")
 @click.argument("truth_dir", type=click.Path(file_okay=False, path_type=Path))
 @click.argument("layout_path", type=click.Path(dir_okay=False, path_type=Path))
-@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
-              help="Pipeline settings; [evaluate] match_distance_m.")
+@pipeline_option("Pipeline settings; [evaluate] match_distance_m.")
 @handle_errors
-def score_cmd(truth_dir, layout_path, pipeline_path):
+def score_cmd(truth_dir: Path, layout_path: Path, pipeline_path: Path | None) -> None:
     """Score a detected layout against the truth of a simulated flight (TRUTH_DIR): modules
     found, extra, corner error."""
     from pvscan.evaluate import evaluate_layout

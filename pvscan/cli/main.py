@@ -11,6 +11,8 @@ from __future__ import annotations
 
 import importlib
 import re
+from collections.abc import Sequence
+from typing import Any
 
 import click
 
@@ -46,15 +48,15 @@ def hoist_verbosity(args: list[str]) -> list[str]:
 
 
 class LazyGroup(click.Group):
-    def parse_args(self, ctx, args):
+    def parse_args(self, ctx: click.Context, args: list[str]) -> list[str]:
         if ctx.parent is None:  # the top-level group: global options anywhere on the line
             args = hoist_verbosity(args)
         return super().parse_args(ctx, args)
 
-    def list_commands(self, ctx):
+    def list_commands(self, ctx: click.Context) -> list[str]:
         return sorted(COMMANDS)
 
-    def get_command(self, ctx, cmd_name):
+    def get_command(self, ctx: click.Context, cmd_name: str) -> click.Command | None:
         target = COMMANDS.get(cmd_name)
         if target is None:
             return None
@@ -68,14 +70,14 @@ class LazyGroup(click.Group):
 @click.option("-v", "--verbose", count=True, help="More messages (-vv for debug); also after the command.")
 @click.option("-q", "--quiet", count=True, help="Fewer messages (no progress bars); also after the command.")
 @click.pass_context
-def cli(ctx, verbose, quiet):
+def cli(ctx: click.Context, verbose: int, quiet: int) -> None:
     """pvscan: find, classify and rank faulty PV modules in drone thermal orthomosaics."""
     ctx.ensure_object(dict)
     ctx.obj["verbosity"] = verbose - quiet
     configure_logging(verbose - quiet)
 
 
-def main(argv=None):
+def main(argv: Sequence[str] | None = None) -> Any:
     """Console-script entry point."""
     return cli.main(args=argv, prog_name="pvscan")
 

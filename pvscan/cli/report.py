@@ -5,7 +5,7 @@ from pathlib import Path
 
 import click
 
-from pvscan.cli._common import Progress, echo, handle_errors
+from pvscan.cli._common import Progress, echo, handle_errors, pipeline_option
 
 
 @click.command("report")
@@ -15,10 +15,9 @@ from pvscan.cli._common import Progress, echo, handle_errors
 @click.option("--ortho", "orthos", multiple=True, type=click.Path(dir_okay=False, path_type=Path),
               help="Thermal ortho tile(s) to draw, when the result folder moved away from them "
                    "(repeat for several tiles; units from the flight manifest when it is found, else degC).")
-@click.option("--pipeline", "pipeline_path", type=click.Path(dir_okay=False, path_type=Path),
-              help="Pipeline settings whose [report] section to use.")
+@pipeline_option("Pipeline settings whose [report] section to use.")
 @handle_errors
-def report_cmd(result_dir, out_path, orthos, pipeline_path):
+def report_cmd(result_dir: Path, out_path: Path | None, orthos: tuple[Path, ...], pipeline_path: Path | None) -> None:
     """Write report.html for RESULT_DIR (a folder written by `pvscan inspect`).
 
     The report is one HTML file with its images embedded: it opens in any browser, offline,

@@ -3,10 +3,14 @@ write a synthetic flight with its ground truth."""
 from __future__ import annotations
 
 from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 import click
 
-from pvscan.cli._common import Progress, echo, handle_errors
+from pvscan.cli._common import Progress, echo, handle_errors, overwrite_option
+
+if TYPE_CHECKING:
+    from pvscan.simulate import SimulationResult
 
 
 @click.command("simulate")
@@ -15,7 +19,7 @@ from pvscan.cli._common import Progress, echo, handle_errors
               help="Flight folder to write (must not exist unless --overwrite).")
 @click.option("--seed", type=click.IntRange(min=0), default=0, show_default=True,
               help="Seed of every random choice; the same seed gives identical files.")
-@click.option("--overwrite", is_flag=True, help="Replace an existing simulated flight folder.")
+@overwrite_option("Replace an existing simulated flight folder.")
 @click.option("--date", "flight_date", default=None, metavar="YYYY-MM-DD",
               help="Fly on this date instead of the scenario's (time of day and UTC offset kept).")
 @click.option("--flight-id", default=None, help="Flight id written into flight.toml and the truth.")
@@ -25,7 +29,8 @@ from pvscan.cli._common import Progress, echo, handle_errors
               help="Family of the random flight: any, fixed, tracker, tracker_hot_ground_noon, "
                    "raised_low_sun, cold_ground, turned_layout, no_layout_error, small_site, large_site.")
 @handle_errors
-def simulate_cmd(scenario, out_dir, seed, overwrite, flight_date, flight_id, random_seed, family):
+def simulate_cmd(scenario: Path | None, out_dir: Path, seed: int, overwrite: bool, flight_date: str | None,
+                 flight_id: str | None, random_seed: int | None, family: str) -> None:
     """Simulate a drone thermal flight of the invented plant in SCENARIO.toml.
 
     Writes the ortho GeoTIFF(s), the layout, flight.toml (ready for `pvscan inspect`),
@@ -49,7 +54,8 @@ def simulate_cmd(scenario, out_dir, seed, overwrite, flight_date, flight_id, ran
         _report(res)
         echo(f"scenario: {res.out_dir / 'scenario.toml'} (replay with --seed {random_seed})")
         return
-    sc = scenario
+    assert scenario is not None  # one of the two, checked above
+    sc: Path | dict[str, Any] = scenario
     if flight_date is not None or flight_id is not None:
         sc = with_flight(load_scenario(scenario), date=flight_date, flight_id=flight_id)
     progress = Progress()
@@ -60,7 +66,7 @@ def simulate_cmd(scenario, out_dir, seed, overwrite, flight_date, flight_id, ran
     _report(res)
 
 
-def _report(res) -> None:
+def _report(res: SimulationResult) -> None:
     parts = ", ".join(f"{n} {k}" for k, n in res.defects.items() if n)
     echo(f"simulated {res.n_modules} modules, {res.n_defective} defective ({parts or 'none'})")
     echo(f"flight: {res.manifest}")

@@ -279,6 +279,16 @@ def build_features(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, 
     ws = conditions["wind_speed"].to_numpy(dtype=float) if "wind_speed" in conditions else np.full(n, 1.0)
     ta = conditions["temp_air"].to_numpy(dtype=float) if "temp_air" in conditions else np.full(n, np.nan)
     eta = float(spec_value(module_spec, "efficiency"))
+    gamma = spec_value(module_spec, "gamma_pmax_pct_per_k")
+    if gamma is not None:
+        # the power an open module no longer delivers is that of the operating point: the
+        # efficiency at the producing neighbours' temperature, eta * (1 + gamma_pmax *
+        # (T - 25 degC)) (datasheet temperature coefficient, IEC 61215 / IEC 60891; the same
+        # operating efficiency as diagnose/loss.py), about 8 % below eta_STC at 48 degC
+        with np.errstate(invalid="ignore"):
+            f_t = 1.0 + float(gamma) / 100.0 * (ref - 25.0)
+        eta = eta * np.clip(np.where(np.isfinite(f_t), f_t, 1.0), 0.5, 1.2)
+    eta = np.asarray(eta, dtype=float)
     rise = np.asarray(heat.open_module_rise(eta, g, ws), dtype=float)
     if bool(cfg["local_irradiance"]):
         # Faiman: a producing module runs G / U(v) above the air, so the local reference's
@@ -308,7 +318,9 @@ def build_features(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, 
     sig_cell = 0.3 if not np.isfinite(sig_cell) else sig_cell
     split = str(spec_value(module_spec, "junction_box", "edge") or "edge") == "split"
     # the open-module rise at the reference conditions, to scale rises given there
-    rise_ref = float(heat.open_module_rise(eta, float(cfg_ref["g_ref_w_m2"]), float(cfg_ref["wind_ref_m_s"])))
+    # (with the flight's median operating efficiency, so rise / rise_ref scales the conditions only)
+    eta_med = float(np.nanmedian(eta)) if np.isfinite(eta).any() else float(spec_value(module_spec, "efficiency"))
+    rise_ref = float(heat.open_module_rise(eta_med, float(cfg_ref["g_ref_w_m2"]), float(cfg_ref["wind_ref_m_s"])))
     F = Features(n=n, n_along=A, n_across=C, nsub=B, ok=ok, ref=ref, t_median=t_med, t_max=t_max,
                     dT=dT, rise=rise, cm=cm, cp=cp, R=R, R95=R95, Rsub=Rsub, base=base,
                     base_sub=base_sub, col_sub=col_sub, lower_u=lower_u, sig_cell=sig_cell,

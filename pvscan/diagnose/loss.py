@@ -541,8 +541,10 @@ def _mean_box_rise(cell_p95: np.ndarray, reference_c: np.ndarray, i: int, region
     na, nc = cell_p95.shape[1], cell_p95.shape[2]
     rises, weights = [], []
     for u0, u1, v0, v1 in boxes:
-        a0, a1 = int(math.floor(u0 * na + 1e-6)), max(int(math.ceil(u1 * na - 1e-6)), int(math.floor(u0 * na + 1e-6)) + 1)
-        c0, c1 = int(math.floor(v0 * nc + 1e-6)), max(int(math.ceil(v1 * nc - 1e-6)), int(math.floor(v0 * nc + 1e-6)) + 1)
+        a0 = int(math.floor(u0 * na + 1e-6))
+        a1 = max(int(math.ceil(u1 * na - 1e-6)), a0 + 1)
+        c0 = int(math.floor(v0 * nc + 1e-6))
+        c1 = max(int(math.ceil(v1 * nc - 1e-6)), c0 + 1)
         vals = cell_p95[i, max(a0, 0):min(a1, na), max(c0, 0):min(c1, nc)]
         vals = vals[np.isfinite(vals)]
         if vals.size:

@@ -104,7 +104,7 @@ def recommended_action(defect: str | None, severity: str | None = None,
         The action text; live DC work always ends with :data:`LIVE_DC_NOTE`.
     """
     text, live = ACTIONS.get(str(defect), _DEFAULT_ACTION)
-    if overrides and defect in overrides:
+    if overrides and defect is not None and defect in overrides:
         text = str(overrides[defect])
     if severity == "safety":
         text = ("Urgent (safety): keep people away from the affected area until it is made safe. "

@@ -77,8 +77,8 @@ def assign_severity(anomalies: pd.DataFrame, settings: Mapping[str, Any] | None 
         # a PID string: by its loss when known, else by its normalised delta T (NaN: monitor)
         pid_repair = np.where(np.isfinite(loss), loss >= float(cfg["repair_pid_power_loss_w"]),
                               dtn >= float(cfg["repair_pid_delta_t_norm_k"]))
-        monitor = np.isin(d, list(cfg["monitor_defects"])) | (hot & (dtn < float(cfg["repair_hot_cell_delta_t_norm_k"]))) \
-            | ((d == "pid") & ~pid_repair)
+        below_repair = hot & (dtn < float(cfg["repair_hot_cell_delta_t_norm_k"]))
+        monitor = np.isin(d, list(cfg["monitor_defects"])) | below_repair | ((d == "pid") & ~pid_repair)
     sev = np.where(safety, "safety", np.where(monitor, "monitor", "repair"))
     out["severity"] = sev.astype(object)
     out["iec_class"] = np.where(safety, str(cfg["iec_class_safety"]), str(cfg["iec_class_other"])).astype(object)

@@ -13,6 +13,7 @@ import shapely
 from shapely.geometry import shape
 
 from pvscan.errors import HistoryError, PvscanWarning
+from pvscan.io.records import get_path
 from pvscan.io.times import parse_datetime
 
 #: Version of the database layout written by this module.
@@ -66,15 +67,6 @@ def _features(path: Path) -> list[dict]:
     return doc["features"]
 
 
-def _num(value) -> float:
-    if value is None:
-        return math.nan
-    try:
-        return float(value)
-    except (TypeError, ValueError):
-        return math.nan
-
-
 def _geometries(raw: list, ids: list, path: Path) -> list:
     """Shapely geometries of GeoJSON geometry objects (None stays None), converted in one
     vectorised call; a bad one is named by its feature id."""
@@ -96,19 +88,9 @@ def _geometries(raw: list, ids: list, path: Path) -> list:
     return out
 
 
-def _pick(d: Mapping, *paths: str):
-    """First non-empty value among dotted key paths of ``d``."""
-    for p in paths:
-        cur: Any = d
-        for k in p.split("."):
-            if isinstance(cur, Mapping) and k in cur:
-                cur = cur[k]
-            else:
-                cur = None
-                break
-        if cur not in (None, ""):
-            return cur
-    return None
+def _pick(d: Mapping[str, Any], *paths: str) -> Any:
+    """First non-empty value among dotted key paths of ``d`` (:func:`pvscan.io.records.get_path`)."""
+    return get_path(d, *paths, skip_empty=True)
 
 
 def _parse_time(value: object, where: str) -> datetime:
@@ -125,13 +107,13 @@ def _as_objects(df: pd.DataFrame, cols: Iterable[str]) -> pd.DataFrame:
     return df
 
 
-def _text(v):
+def _text(v: Any) -> Any:
     """A text value, None for missing (None or NaN)."""
     return None if v is None or (isinstance(v, float) and math.isnan(v)) else v
 
 
-def _worse_severity(a, b):
-    ra, rb = SEVERITY_RANK.get(a, 0), SEVERITY_RANK.get(b, 0)
+def _worse_severity(a: str | None, b: str | None) -> str | None:
+    ra, rb = SEVERITY_RANK.get(a or "", 0), SEVERITY_RANK.get(b or "", 0)
     return a if ra >= rb else b
 
 

@@ -4,18 +4,21 @@ from __future__ import annotations
 import json
 import logging
 import math
+import sqlite3
 from collections.abc import Mapping
 from datetime import date, datetime
 from pathlib import Path
+from typing import Any
 
 import pandas as pd
 import shapely
 from shapely.geometry.polygon import orient
 
 from pvscan.errors import HistoryError
-from pvscan.history.common import CHANGE_CLASSES, SEVERITY_RANK, _num, _settings, _text, write_new_file
+from pvscan.history.common import CHANGE_CLASSES, SEVERITY_RANK, _settings, _text, write_new_file
 from pvscan.history.db import _Session
 from pvscan.history.store import _flight_order, _read_flight
+from pvscan.io.records import as_float as _num
 
 log = logging.getLogger(__name__)
 
@@ -48,9 +51,9 @@ def module_states(modules: pd.DataFrame, anomalies: pd.DataFrame,
         if d and not any(x[0] == d for x in per.get(rec["module_id"], [])):
             per.setdefault(rec["module_id"], []).append((d, rec.get("severity"), rec["delta_t_norm_k"]))
 
-    def key(x):
+    def key(x: tuple[str, str | None, float | None]) -> tuple[int, int, float]:
         dt = x[2] if x[2] is not None and not (isinstance(x[2], float) and math.isnan(x[2])) else -math.inf
-        return (pattern_rank.get(x[0], 0), SEVERITY_RANK.get(x[1], 0), dt)
+        return (pattern_rank.get(x[0], 0), SEVERITY_RANK.get(x[1] or "", 0), dt)
 
     rows = []
     for m, items in per.items():
@@ -128,7 +131,7 @@ def _event_between(event_date: str, start_before: datetime, start_after: datetim
 
 
 # which actions can explain that a defect pattern disappeared
-def _moved_m(a, b) -> float:
+def _moved_m(a: Any, b: Any) -> float:
     """Geodesic distance [m] between the centroids of a module's two footprints (lon/lat)."""
     if a is None or b is None:
         return math.nan
@@ -240,7 +243,7 @@ def compare(before: tuple[pd.DataFrame, pd.DataFrame], after: tuple[pd.DataFrame
     return out
 
 
-def _rfc7946(geom) -> dict:
+def _rfc7946(geom: Any) -> dict[str, Any]:
     """GeoJSON geometry with exterior rings counter-clockwise and holes clockwise (RFC 7946
     section 3.1.6)."""
     if geom.geom_type == "Polygon":
@@ -250,7 +253,8 @@ def _rfc7946(geom) -> dict:
     return json.loads(shapely.to_geojson(geom))
 
 
-def _pick_flights(con, path: Path, flight_from: str | None, flight_to: str | None):
+def _pick_flights(con: sqlite3.Connection, path: Path, flight_from: str | None, flight_to: str | None
+                  ) -> tuple[str, str, dict[str, str]]:
     order = _flight_order(con)
     ids = [f for f, _ in order]
     starts = dict(order)

@@ -13,8 +13,11 @@ import sqlite3
 import struct
 import time
 import uuid
+from collections.abc import Iterable, Sequence
 from datetime import UTC, datetime
 from pathlib import Path
+from types import TracebackType
+from typing import Any
 
 import numpy as np
 import shapely
@@ -36,7 +39,7 @@ log = logging.getLogger(__name__)
 # GeoPackage binary geometry [1], clause 2.1.3
 
 
-def _gpkg_blobs(geoms, srs_id: int = 4326) -> list:
+def _gpkg_blobs(geoms: Iterable[Any], srs_id: int = 4326) -> list[bytes | None]:
     """GeoPackage binary of many geometries (vectorised WKB and envelopes)."""
     arr = np.array(list(geoms), dtype=object)
     out: list = [None] * len(arr)
@@ -52,7 +55,7 @@ def _gpkg_blobs(geoms, srs_id: int = 4326) -> list:
     return out
 
 
-def _gpkg_blob(geom, srs_id: int = 4326) -> bytes | None:
+def _gpkg_blob(geom: Any, srs_id: int = 4326) -> bytes | None:
     if geom is None:
         return None
     wkb = shapely.to_wkb(geom, byte_order=1, output_dimension=2, flavor="iso")
@@ -68,7 +71,7 @@ def _gpkg_blob(geom, srs_id: int = 4326) -> bytes | None:
 _ENVELOPE_DOUBLES = {0: 0, 1: 4, 2: 6, 3: 6, 4: 8}
 
 
-def _gpkg_geoms(blobs) -> list:
+def _gpkg_geoms(blobs: Sequence[bytes | None]) -> list[Any]:
     """Shapely geometries of many GeoPackage binary blobs (None stays None)."""
     out: list = [None] * len(blobs)
     idx, wkbs = [], []
@@ -343,7 +346,7 @@ class _Session:
     def discard(self) -> None:
         self._discard = True
 
-    def __enter__(self):
+    def __enter__(self) -> _Session:
         existed = _check_file(self.path, must_exist=not self.create)
         if not self.write:
             uri = self.path.resolve().as_uri() + "?mode=ro"
@@ -372,7 +375,8 @@ class _Session:
         finally:
             self.con.close()
 
-    def __exit__(self, exc_type, exc, tb):
+    def __exit__(self, exc_type: type[BaseException] | None, exc: BaseException | None,
+                 tb: TracebackType | None) -> None:
         rollback = exc_type is not None or self._discard or not self.write
         try:
             self._close(rollback)
@@ -382,4 +386,3 @@ class _Session:
         if exc_type is not None and issubclass(exc_type, sqlite3.Error):
             # rolled back: nothing of this command was written
             raise HistoryError(f"{self.path}: database error ({exc}); nothing written") from None
-        return False

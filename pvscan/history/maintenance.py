@@ -108,7 +108,7 @@ def read_maintenance_csv(path: str | Path) -> pd.DataFrame:
                                f"found {', '.join(repr(f) for f in raw_fields) or 'no header'})")
         rows = []
         for line, values in enumerate(reader, start=2):
-            def cell(name, values=values):
+            def cell(name: str, values: list[str] = values) -> str:
                 k = col.get(name)
                 return values[k].strip() if k is not None and k < len(values) else ""
             if not any(cell(c) for c in ("date", "module_id", "action")):

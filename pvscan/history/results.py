@@ -17,12 +17,12 @@ from pvscan.history.common import (
     _as_objects,
     _features,
     _geometries,
-    _num,
     _parse_time,
     _pick,
     _read_json,
     _worse_severity,
 )
+from pvscan.io.records import as_float as _num
 
 # --------------------------------------------------------------------------------------------
 # reading a result folder
@@ -211,7 +211,7 @@ def content_hash(result: FlightResult) -> str:
     return h.hexdigest()
 
 
-def _json_default(obj):
+def _json_default(obj: object) -> int | float | str | None:
     if isinstance(obj, np.integer):
         return int(obj)
     if isinstance(obj, np.floating):

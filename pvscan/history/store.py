@@ -6,10 +6,11 @@ import logging
 import math
 import sqlite3
 import warnings
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterable, Mapping
 from dataclasses import dataclass
 from datetime import UTC
 from pathlib import Path
+from typing import SupportsFloat
 
 import numpy as np
 import pandas as pd
@@ -53,7 +54,7 @@ class LayoutDiff:
         return not (self.added or self.missing or self.moved)
 
     def describe(self, limit: int = 5) -> str:
-        def ids(xs):
+        def ids(xs: Iterable[str]) -> str:
             xs = list(xs)
             more = f" (+{len(xs) - limit} more)" if len(xs) > limit else ""
             return ", ".join(xs[:limit]) + more
@@ -133,7 +134,7 @@ class AddResult:
     created: bool = False
 
 
-def _f(x):
+def _f(x: SupportsFloat | str | None) -> float | None:
     if x is None:
         return None
     try:
@@ -222,7 +223,7 @@ def add_flight(db_path: str | Path, result_dir: str | Path, *, replace: bool = F
         created = made or s.meta is None
         if s.meta is None:  # an SQLite file without tables: make it the site history
             _create_schema(con, result.site)
-            site_name = result.site
+            site_name: str | None = result.site
         else:
             site_name = s.meta.get("site")
         if site_name != result.site:
@@ -351,11 +352,11 @@ def list_flights(db_path: str | Path) -> pd.DataFrame:
     return df
 
 
-def _flight_order(con) -> list[tuple[str, str]]:
+def _flight_order(con: sqlite3.Connection) -> list[tuple[str, str]]:
     return con.execute("SELECT flight_id, start FROM flights ORDER BY start_utc, flight_id").fetchall()
 
 
-def _read_flight(con, flight_id: str) -> tuple[pd.DataFrame, pd.DataFrame]:
+def _read_flight(con: sqlite3.Connection, flight_id: str) -> tuple[pd.DataFrame, pd.DataFrame]:
     mcols = ["module_id", "table_id", *MODULE_COLUMNS, "defect", "severity"]
     rows = con.execute(f"SELECT geom, {', '.join(mcols)} FROM module_results WHERE flight_id=? "
                        "ORDER BY module_id", (flight_id,)).fetchall()

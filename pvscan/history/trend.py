@@ -3,24 +3,32 @@ from __future__ import annotations
 
 import json
 import math
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
+from numpy.typing import ArrayLike
 
-from pvscan.history.common import SEVERITY_RANK, _num
+from pvscan.history.common import SEVERITY_RANK
 from pvscan.history.db import _Session
+from pvscan.io.records import as_float as _num
+from pvscan.physics._arrays import FloatOrArray
 from pvscan.physics.heat import U0_FAIMAN_2008, U1_FAIMAN_2008, normalise_delta_t
+
+if TYPE_CHECKING:
+    from matplotlib.axes import Axes
 
 # --------------------------------------------------------------------------------------------
 # trend
 
 
-def normalised_rise(temp_module, temp_air, poa_global, wind_speed, u0: float = U0_FAIMAN_2008,
-                    u1: float = U1_FAIMAN_2008, *, g_ref: float = 1000.0, wind_ref: float = 1.0):
+def normalised_rise(temp_module: ArrayLike, temp_air: ArrayLike, poa_global: ArrayLike, wind_speed: ArrayLike,
+                    u0: float = U0_FAIMAN_2008, u1: float = U1_FAIMAN_2008, *, g_ref: float = 1000.0,
+                    wind_ref: float = 1.0) -> FloatOrArray:
     """Module temperature rise over air scaled to reference irradiance and wind (Faiman model).
 
     In the Faiman model [2] the steady rise is ``T_m - T_a = G / (u0 + u1 * v)``; scaling the
@@ -82,7 +90,7 @@ class Trend:
     modules: pd.DataFrame = field(repr=False)
 
 
-def _cond(conds: Mapping, *keys) -> float:
+def _cond(conds: Mapping[str, Any], *keys: str) -> float:
     for k in keys:
         v = conds.get(k)
         if isinstance(v, Mapping):
@@ -184,7 +192,7 @@ def defect_words(defect: str) -> str:
     return DEFECT_WORDS.get(defect, defect.replace("_", " "))
 
 
-def _keep_markers_inside(ax, *, y_floor: float | None = None) -> None:
+def _keep_markers_inside(ax: Axes, *, y_floor: float | None = None) -> None:
     """Pad the axes so markers at the first and last flight and at the extremes are drawn
     whole: a data margin on both axes, and the y floor set below the lowest value."""
     ax.margins(x=0.08, y=0.1)
@@ -287,7 +295,7 @@ def trend_figures(trend: Trend) -> dict:
     return figures
 
 
-def _bar_width(x) -> float:
+def _bar_width(x: pd.Series) -> float:
     """Bar width [days] for bars at dates ``x``: a third of the smallest spacing."""
     if len(x) < 2:
         return 10.0
@@ -296,7 +304,7 @@ def _bar_width(x) -> float:
     return float(max(gaps.min() / 3.0, 0.5)) if gaps.size else 10.0
 
 
-def _label_flights(ax, x, labels) -> None:
+def _label_flights(ax: Axes, x: Iterable[Any], labels: Iterable[object]) -> None:
     from matplotlib.dates import AutoDateLocator, ConciseDateFormatter
 
     locator = AutoDateLocator(maxticks=7)

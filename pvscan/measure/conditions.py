@@ -62,16 +62,6 @@ __all__ = [
 logger = logging.getLogger(__name__)
 
 
-# spec attribute -> pvscan name
-_SPEC_KEYS = {
-    "poa_irradiance_w_m2": "poa_global",
-    "ambient_c": "temp_air",
-    "wind_m_s": "wind_speed",
-    "sky_c": "temp_sky",
-    "relative_humidity_pct": "relative_humidity",
-}
-
-
 #: The manifest's ``[conditions]``: a :class:`~pvscan.io.manifest.ConditionsSpec` or a mapping of its keys.
 Spec: TypeAlias = "ConditionsSpec | Mapping[str, Any] | None"
 #: A time as given: aware datetime, pandas Timestamp or ISO 8601 text with a UTC offset.

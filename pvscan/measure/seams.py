@@ -8,22 +8,24 @@ one place and back at another. Defects follow the electrical layout instead: an 
 string or PID stays within one string, an open module or a bypassed substring within one
 module. So, along every table row (modules ordered by ``table_col``):
 
-1. a candidate edge is a step of at least ``min_step_k`` between the medians of the
-   ``window_modules`` modules either side of a boundary, the strongest within two
-   modules;
-2. an up edge followed by a down edge of about the same size (within ``match_abs_k`` +
-   ``match_rel`` x the step) closes a stretch of at least ``min_modules``; each edge is
-   then put at the boundary that best splits the row into the stretch's level and the
-   levels outside it (least absolute deviation, so one module of the spread does not move
-   it); its offset (median excess over the ``window_modules`` modules either side) must
-   reach ``min_step_k`` and ``seam_z`` standard errors of a difference of means under the
-   module-to-module spread (estimated from neighbour differences along the rows), since
-   among thousands of rows a few stretches of three modules stand out by chance;
-3. the stretch is an artefact, and is levelled by its median excess over the modules
-   either side, when it covers modules of more than one string, or when another row of
-   its table has a stretch over at least half of the same columns at a similar level (a
-   seam or a reflection crosses rows; a defect of one string does not repeat in the row
-   beside it).
+1. every window of at least ``min_modules`` modules with two or more modules on each side
+   is a candidate; the one kept is the best box fit of the row (least absolute deviation
+   from one level inside the window and one outside it: one module off the level neither
+   moves an edge nor makes a stretch, and a window taking in modules of the outside level
+   fits worse);
+2. its offset (median inside minus the median of the rest of the row) must reach
+   ``min_step_k`` and ``seam_z`` standard errors of a difference of means under the
+   module-to-module spread (estimated from neighbour differences along the rows, again
+   once the stretches found are levelled), with the inside median taken at the order
+   statistic nearer the outside level (a stretch of two modules needs both raised); and
+   the row must step back: the medians of the ``window_modules`` modules either side lie
+   each at least half the offset away, on the same side, within ``match_abs_k`` +
+   ``match_rel`` x the offset of each other. Found stretches are levelled in a working copy
+   and the row is fitted again for more;
+3. the stretch is an artefact, and is levelled by its offset, when it covers modules of
+   more than one string, or when another row of its table has a stretch over at least
+   half of the same columns at a similar level (a seam or a reflection crosses rows; a
+   defect of one string does not repeat in the row beside it).
 
 Stretches that run to the end of a row are left alone (which side would be the artefact is
 not known from the row). Every module, cell and substring statistic of a levelled module
@@ -42,7 +44,7 @@ import pandas as pd
 
 from pvscan.io.settings import section
 from pvscan.measure.rows import row_keys
-from pvscan.robust import nanmedian, scaled_mad
+from pvscan.robust import scaled_mad
 
 __all__ = ["Stretch", "find_stretches", "level_stats"]
 
@@ -60,7 +62,7 @@ class Stretch:
     modules : numpy.ndarray
         Indices of its modules, in row order.
     offset_k : float
-        Its median excess over the modules either side [K] (subtracted when levelling).
+        Its median excess over the rest of its row [K] (subtracted when levelling).
     reason : str
         ``"strings"`` (it covers more than one string) or ``"rows"`` (another row of its
         table has a matching stretch).
@@ -71,87 +73,88 @@ class Stretch:
     reason: str
 
 
-def _steps(t: np.ndarray, w: int) -> np.ndarray:
-    """Step at each boundary b (between positions b and b+1): median of the next ``w`` minus
-    the median of the previous ``w`` (NaN where either side has fewer than two values).
-    ``t`` is one row profile, or several of one length stacked (rows along axis 0)."""
-    t = np.asarray(t, dtype=float)
-    n = t.shape[-1]
-    if n < 2:
-        return np.full(t.shape[:-1] + (0,), np.nan)
-    pad = np.full(t.shape[:-1] + (w - 1,), np.nan)
-    win = np.lib.stride_tricks.sliding_window_view(np.concatenate([pad, t, pad], axis=-1), w, axis=-1)
-    left, right = win[..., :n - 1, :], win[..., w:w + n - 1, :]  # modules b-w+1..b and b+1..b+w
-    ok = (np.isfinite(left).sum(axis=-1) >= 2) & (np.isfinite(right).sum(axis=-1) >= 2)
-    return np.where(ok, nanmedian(right, axis=-1) - nanmedian(left, axis=-1), np.nan)
+def _masked_median(row: np.ndarray, mask: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Lower and upper median of ``row`` over each line of ``mask``, and the count.
+
+    ``row``: (n,) values (NaN ignored); ``mask``: (k, n). The median of an even count is the
+    mean of the two; the lower (upper) one alone is the value nearer the low (high) end.
+    """
+    use = mask & np.isfinite(row)
+    cnt = use.sum(axis=1)
+    srt = np.sort(np.where(use, row, np.inf), axis=1)
+    lo_i = np.clip((cnt - 1) // 2, 0, row.size - 1)
+    hi_i = np.clip(cnt // 2, 0, row.size - 1)
+    lo = np.take_along_axis(srt, lo_i[:, None], axis=1)[:, 0]
+    hi = np.take_along_axis(srt, hi_i[:, None], axis=1)[:, 0]
+    none = cnt == 0
+    return np.where(none, np.nan, lo), np.where(none, np.nan, hi), cnt
 
 
-def _best_split(t: np.ndarray, b: int, lo: int, hi: int, level_in: float, level_out: float,
-                inside_right: bool) -> int:
-    """The boundary in ``lo..hi`` that best separates outside and inside levels (L1)."""
-    best, cost_best = b, np.inf
-    n = len(t)
-    span = np.arange(max(lo - 1, 0), min(hi + 2, n))
-    for c in range(max(lo, 0), min(hi, n - 2) + 1):
-        inside = span > c if inside_right else span <= c
-        lev = np.where(inside, level_in, level_out)
-        cost = float(np.nansum(np.abs(t[span] - lev)))
-        if cost < cost_best - 1e-9:
-            best, cost_best = c, cost
-    return best
-
-
-def _closed_stretches(t: np.ndarray, cfg: Mapping[str, Any], sigma: float = 0.0,
-                      st: np.ndarray | None = None) -> list[tuple[int, int, float]]:
+def _closed_stretches(t: np.ndarray, cfg: Mapping[str, Any], sigma: float = 0.0) -> list[tuple[int, int, float]]:
     """(first, last, offset) position ranges of the closed stretches of one row profile.
 
-    ``sigma`` [K] is the module-to-module spread; a stretch's offset must reach ``seam_z``
-    standard errors of the difference of the two means (inside and outside). ``st``: the
-    profile's steps (:func:`_steps`) when already computed.
+    Every window of at least ``min_modules`` modules with two or more modules on each side
+    is a candidate. The window kept is the best box fit of the row (least absolute
+    deviation of the row from one level inside the window and one outside it, so one
+    module off the level neither moves an edge nor makes a stretch). Its offset is the
+    median inside minus the median of the ``window_modules`` modules either side; it counts
+    when the two sides agree (within ``match_abs_k`` + ``match_rel`` x the offset: the row
+    steps back to where it was) and the offset, with the inside median taken at the order
+    statistic nearer the outside level (so that a stretch of two modules needs both
+    raised), reaches ``min_step_k`` and ``seam_z`` standard errors
+    ``sigma * sqrt(1/n_in + 1/n_out)`` (``sigma`` [K] the module-to-module spread). Its
+    modules are then levelled in a working copy and the row is fitted again for further
+    stretches that do not overlap it.
     """
     w = int(cfg["window_modules"])
-    n = len(t)
-    if n < 2 * w:
-        return []
-    st = _steps(t, w) if st is None else st
-    a = np.abs(np.nan_to_num(st, nan=0.0))
-    sgn = np.sign(np.nan_to_num(st, nan=0.0))
-    # the strongest edge of its sign within two boundaries (a short stretch has its opposite
-    # edge that close)
-    cand = [b for b in range(n - 1) if a[b] >= float(cfg["min_step_k"])
-            and a[b] >= np.where(sgn[max(0, b - 2):b + 3] == sgn[b], a[max(0, b - 2):b + 3], 0.0).max()]
-    tol_abs, tol_rel = float(cfg["match_abs_k"]), float(cfg["match_rel"])
     min_len = int(cfg["min_modules"])
-    out, used = [], set()
-    for i, b1 in enumerate(cand):
-        if b1 in used:
-            continue
-        for b2 in cand[i + 1:]:
-            s1, s2 = st[b1], st[b2]
-            if np.sign(s1) == np.sign(s2):
-                break  # another edge the same way first: not one closed stretch
-            if abs(s1 + s2) <= tol_abs + tol_rel * max(abs(s1), abs(s2)):
-                # refine both edges against the stretch's level and the levels outside it
-                inner = t[b1 + 1:b2 + 1]
-                lev_in = float(np.nanmedian(inner))
-                left_out = t[max(0, b1 - w + 1):b1 + 1]
-                right_out = t[b2 + 1:b2 + 1 + w]
-                lev_l, lev_r = float(np.nanmedian(left_out)), float(np.nanmedian(right_out))
-                # (the medians of a few modules place an edge only to within a module or two)
-                e1 = _best_split(t, b1, b1 - 2, b1 + 2, lev_in, lev_l, inside_right=True)
-                e2 = _best_split(t, b2, b2 - 2, b2 + 2, lev_in, lev_r, inside_right=False)
-                if e2 - e1 >= min_len:
-                    first, last = e1 + 1, e2
-                    outside = np.concatenate([t[max(0, first - w):first], t[last + 1:last + 1 + w]])
-                    inside = t[first:last + 1]
-                    offset = float(np.nanmedian(inside) - np.nanmedian(outside))
-                    n_in, n_out = int(np.isfinite(inside).sum()), int(np.isfinite(outside).sum())
-                    se = sigma * np.sqrt(1.0 / max(n_in, 1) + 1.0 / max(n_out, 1))
-                    if abs(offset) >= float(cfg["min_step_k"]) and abs(offset) >= float(cfg["seam_z"]) * se:
-                        out.append((first, last, offset))
-                        used |= {b1, b2}
+    min_step = float(cfg["min_step_k"])
+    tol_abs, tol_rel = float(cfg["match_abs_k"]), float(cfg["match_rel"])
+    z_min = float(cfg["seam_z"])
+    work = np.asarray(t, dtype=float).copy()
+    n = len(work)
+    if n < min_len + 4 or np.isfinite(work).sum() < min_len + 4:
+        return []
+    first, last = np.triu_indices(n, k=min_len - 1)
+    keep = (first >= 2) & (last <= n - 3)
+    first, last = first[keep], last[keep]
+    pos = np.arange(n)
+    inside = (pos >= first[:, None]) & (pos <= last[:, None])
+    left = (pos < first[:, None]) & (pos >= first[:, None] - w)
+    right = (pos > last[:, None]) & (pos <= last[:, None] + w)
+    taken = np.zeros(n, bool)
+    out: list[tuple[int, int, float]] = []
+    for _ in range(n // (min_len + 2) + 1):
+        fin = np.isfinite(work)
+        lo_in, hi_in, n_in = _masked_median(work, inside)
+        lo_r, hi_r, n_rest = _masked_median(work, ~inside)
+        m_in, m_rest = 0.5 * (lo_in + hi_in), 0.5 * (lo_r + hi_r)
+        dev = np.where(inside, work - m_in[:, None], work - m_rest[:, None])
+        cost = np.where(fin, np.abs(dev), 0.0).sum(axis=1)
+        lo_l, hi_l, n_l = _masked_median(work, left)
+        lo_rr, hi_rr, n_r = _masked_median(work, right)
+        m_l, m_r = 0.5 * (lo_l + hi_l), 0.5 * (lo_rr + hi_rr)
+        # the inside level at the order statistic nearer the outside level
+        lev_in = np.where(m_in >= m_rest, lo_in, hi_in)
+        off = m_in - m_rest
+        se = max(sigma, 1e-9) * np.sqrt(1.0 / np.maximum(n_in, 1) + 1.0 / np.maximum(n_rest, 1))
+        with np.errstate(invalid="ignore"):
+            # each side steps by at least half the offset, the same way, to about one level
+            closed = ((np.sign(m_in - m_l) == np.sign(off)) & (np.sign(m_in - m_r) == np.sign(off))
+                      & (np.abs(m_in - m_l) >= 0.5 * np.abs(off)) & (np.abs(m_in - m_r) >= 0.5 * np.abs(off))
+                      & (np.abs(m_l - m_r) <= tol_abs + tol_rel * np.abs(off)))
+            low = np.abs(lev_in - m_rest)
+            good = (closed & (n_l >= 2) & (n_r >= 2) & (n_in >= min_len) & ~(inside & taken).any(axis=1)
+                    & np.isfinite(cost) & (np.sign(lev_in - m_rest) == np.sign(off))
+                    & (low >= min_step) & (low >= z_min * se))
+        if not good.any():
             break
-    return out
+        k = int(np.flatnonzero(good)[np.argmin(cost[good])])
+        a, b, o = int(first[k]), int(last[k]), float(off[k])
+        out.append((a, b, o))
+        work[a:b + 1] -= o
+        taken[a:b + 1] = True
+    return sorted(out)
 
 
 def find_stretches(modules: pd.DataFrame, t_median: np.ndarray,
@@ -187,20 +190,21 @@ def find_stretches(modules: pd.DataFrame, t_median: np.ndarray,
         rows.append((int(k), mem[np.argsort(col[mem], kind="stable")]))
     # the module-to-module spread: robust spread of the differences between neighbours along
     # the rows, over sqrt(2) (seams and defects are few among the differences)
-    diffs = np.concatenate([np.diff(t[mem]) for _, mem in rows if len(mem) > 1] or [np.zeros(0)])
-    diffs = diffs[np.isfinite(diffs)]
-    sigma = scaled_mad(diffs) / np.sqrt(2.0) if diffs.size >= 10 else 0.0
-    # steps of all rows of one length in one vectorised call
-    w = int(cfg["window_modules"])
-    steps = {}
-    for length in {len(mem) for _, mem in rows}:
-        same = [(k, mem) for k, mem in rows if len(mem) == length]
-        st = _steps(np.stack([t[mem] for _, mem in same]), w)
-        steps.update({k: st[j] for j, (k, _) in enumerate(same)})
-    found = []  # (row key, modules, offset)
-    for k, mem in rows:
-        for first, last, offset in _closed_stretches(t[mem], cfg, sigma, steps[k]):
-            found.append((int(k), mem[first:last + 1], offset))
+    # (twice: the second time with the stretches of the first levelled, whose edges would
+    # widen the spread of a few short rows)
+    level = np.zeros_like(t)
+    for _ in range(2):
+        tl = t - level
+        diffs = np.concatenate([np.diff(tl[mem]) for _, mem in rows if len(mem) > 1] or [np.zeros(0)])
+        diffs = diffs[np.isfinite(diffs)]
+        sigma = scaled_mad(diffs) / np.sqrt(2.0) if diffs.size >= 10 else 0.0
+        found = []  # (row key, modules, offset)
+        for k, mem in rows:
+            for first, last, offset in _closed_stretches(t[mem], cfg, sigma):
+                found.append((int(k), mem[first:last + 1], offset))
+        level = np.zeros_like(t)
+        for _k, seg, off in found:
+            level[seg] = off
     tol_abs, tol_rel = float(cfg["match_abs_k"]), float(cfg["match_rel"])
     out = []
     for j, (k, seg, off) in enumerate(found):
@@ -210,7 +214,7 @@ def find_stretches(modules: pd.DataFrame, t_median: np.ndarray,
         cols = set(col[seg].tolist())
         for j2, (k2, seg2, off2) in enumerate(found):
             if (j2 != j and k2 != k and table[seg2[0]] == table[seg[0]] and np.sign(off2) == np.sign(off)
-                    and abs(off2 - off) <= tol_abs + tol_rel * abs(off)
+                    and abs(off2 - off) <= tol_abs + tol_rel * max(abs(off), abs(off2))
                     and len(cols & set(col[seg2].tolist())) >= 0.5 * len(cols)):
                 out.append(Stretch(seg, off, "rows"))
                 break

@@ -4,11 +4,22 @@ from __future__ import annotations
 
 import io
 import math
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
+from datetime import datetime
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from pvscan.report._result import SEVERITIES
+
+if TYPE_CHECKING:
+    from matplotlib.axes import Axes
+    from matplotlib.cm import ScalarMappable
+    from matplotlib.figure import Figure
+
+#: Map extent ``(xmin, xmax, ymin, ymax)`` in the ortho CRS [m].
+Extent = tuple[float, float, float, float]
 
 __all__ = ["SEVERITY_STYLE", "overview_png", "temperature_hist_png", "delta_norm_hist_png",
            "loss_by_defect_png", "validity_png", "registration_png", "nice_length"]
@@ -25,7 +36,7 @@ MUTED = _MUTED = "#7a8593"
 _HEALTHY = "#9aa7b6"
 
 
-def _figure(w_in: float, h_in: float):
+def _figure(w_in: float, h_in: float) -> Figure:
     from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.figure import Figure
 
@@ -34,13 +45,13 @@ def _figure(w_in: float, h_in: float):
     return fig
 
 
-def _png(fig, dpi: int) -> bytes:
+def _png(fig: Figure, dpi: int) -> bytes:
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=dpi, facecolor="white")
     return buf.getvalue()
 
 
-def _style(ax) -> None:
+def _style(ax: Axes) -> None:
     for side in ("top", "right"):
         ax.spines[side].set_visible(False)
     for side in ("left", "bottom"):
@@ -62,12 +73,13 @@ def nice_length(target: float) -> float:
     return float(10 ** exp)
 
 
-def _polys(geoms) -> list[np.ndarray]:
+def _polys(geoms: Iterable[Any]) -> list[np.ndarray]:
     """Exterior rings (k, 2) of the polygons (and polygon parts) of ``geoms``, in order."""
     import shapely
 
-    arr = np.empty(len(geoms), dtype=object)
-    arr[:] = list(geoms)
+    items = list(geoms)
+    arr = np.empty(len(items), dtype=object)
+    arr[:] = items
     arr = arr[~shapely.is_missing(arr)]
     if arr.size == 0:
         return []
@@ -80,11 +92,11 @@ def _polys(geoms) -> list[np.ndarray]:
     return np.split(coords, cuts)
 
 
-def overview_png(*, extent, image: np.ndarray | None, module_geoms, module_values: np.ndarray | None,
-                 anomaly_points: Sequence[tuple[float, float, str, int]], cmap: str,
+def overview_png(*, extent: Extent, image: np.ndarray | None, module_geoms: Iterable[Any],
+                 module_values: np.ndarray | None, anomaly_points: Sequence[tuple[float, float, str, int]], cmap: str,
                  anomaly_regions: Sequence[tuple[object, str]] = (),
                  vmin: float, vmax: float, north_deg: float, dpi: int, n_labels: int,
-                 image_label: str, pins: list | None = None) -> bytes:
+                 image_label: str, pins: list[tuple[int, float, float]] | None = None) -> bytes:
     """Site overview map.
 
     Parameters
@@ -130,6 +142,7 @@ def overview_png(*, extent, image: np.ndarray | None, module_geoms, module_value
     cax = fig.add_axes((0.885, 0.2, 0.018, 0.68))
     ax.set_facecolor("#e9ecef")
     polys = _polys(module_geoms)
+    im: ScalarMappable
     if image is not None:
         im = ax.imshow(image, extent=extent, origin="upper", cmap=cmap, vmin=vmin, vmax=vmax,
                        interpolation="nearest")
@@ -217,7 +230,8 @@ def overview_png(*, extent, image: np.ndarray | None, module_geoms, module_value
     return _png(fig, dpi)
 
 
-def _number_marks(fig, ax, anomaly_points, n_labels: int, msize: float, dpi: int) -> None:
+def _number_marks(fig: Figure, ax: Axes, anomaly_points: Sequence[tuple[float, float, str, int]], n_labels: int,
+                  msize: float, dpi: int) -> None:
     """Each mark's priority number beside it, placed so no two labels collide
     (:func:`pvscan.report._labels.place_labels`); a thin leader joins a label set further out."""
     import matplotlib.patheffects as pe
@@ -265,7 +279,7 @@ def temperature_hist_png(t_healthy: np.ndarray, t_by_severity: Mapping[str, np.n
                 colors.append(SEVERITY_STYLE[sev]["color"])
                 labels.append(sev)
         data = [d[np.isfinite(d)] for d in data]
-        ax.hist(data, bins=bins, stacked=True, color=colors, label=labels, edgecolor="white",
+        ax.hist(data, bins=bins.tolist(), stacked=True, color=colors, label=labels, edgecolor="white",
                 linewidth=0.3)
         med = float(np.median(allv))
         ax.axvline(med, color=_INK, linewidth=0.8, linestyle="--")
@@ -292,13 +306,13 @@ def delta_norm_hist_png(all_dtn: np.ndarray, anomaly_dtn: Mapping[str, np.ndarra
         lo, hi = float(np.min(allv)), float(np.max(allv))
         bins = np.linspace(min(lo, -1.0) - 0.5, max(hi, 1.0) + 0.5, 50)
         if base.size:
-            ax.hist(base, bins=bins, color=_HEALTHY, edgecolor="white", linewidth=0.3,
+            ax.hist(base, bins=bins.tolist(), color=_HEALTHY, edgecolor="white", linewidth=0.3,
                     label="modules")
         for sev in SEVERITIES:
             v = np.asarray(anomaly_dtn.get(sev, []), float)
             v = v[np.isfinite(v)]
             if v.size:
-                ax.hist(v, bins=bins, histtype="step", color=SEVERITY_STYLE[sev]["color"],
+                ax.hist(v, bins=bins.tolist(), histtype="step", color=SEVERITY_STYLE[sev]["color"],
                         linewidth=1.4, label=f"anomalies: {sev}")
         ax.set_yscale("log")
         ax.set_ylim(bottom=0.7)
@@ -385,8 +399,9 @@ def validity_png(checks: Sequence[Mapping], dpi: int) -> bytes:
     return _png(fig, dpi)
 
 
-def conditions_series_png(times, poa, wind, *, poa_min: float | None, wind_max: float | None,
-                          start=None, end=None, dpi: int = 110) -> bytes:
+def conditions_series_png(times: Sequence[datetime], poa: ArrayLike, wind: ArrayLike, *, poa_min: float | None,
+                          wind_max: float | None, start: datetime | None = None, end: datetime | None = None,
+                          dpi: int = 110) -> bytes:
     """Irradiance [W/m2] and wind speed [m/s] during the flight with their validity limits.
 
     Parameters
@@ -401,6 +416,10 @@ def conditions_series_png(times, poa, wind, *, poa_min: float | None, wind_max: 
     """
     import matplotlib.dates as mdates
 
+    # matplotlib converts datetimes through its units registry (dates on the x axis, with its
+    # date locator); its type stubs list floats only, so the times pass untyped
+    x_times: Any = times
+    span: tuple[Any, Any] = (start, end)
     fig = _figure(10.0, 2.6)
     axes = [fig.add_axes((0.07, 0.22, 0.4, 0.62)), fig.add_axes((0.57, 0.22, 0.4, 0.62))]
     series = ((axes[0], np.asarray(poa, float), poa_min, "min", "plane-of-array irradiance [W/m²]", "#c7792b"),
@@ -408,9 +427,9 @@ def conditions_series_png(times, poa, wind, *, poa_min: float | None, wind_max: 
     for ax, y, lim, kind, label, colour in series:
         _style(ax)
         if start is not None and end is not None:
-            ax.axvspan(start, end, color="#eef2f5", zorder=0)
+            ax.axvspan(*span, color="#eef2f5", zorder=0)
         if np.isfinite(y).any():
-            ax.plot(times, y, color=colour, linewidth=1.4)
+            ax.plot(x_times, y, color=colour, linewidth=1.4)
         if lim is not None and math.isfinite(lim):
             ax.axhline(lim, color="#d1005d", linewidth=1.0, linestyle="--")
             ax.text(0.01, lim, f" limit {lim:g} ({kind})", transform=ax.get_yaxis_transform(),
@@ -423,7 +442,7 @@ def conditions_series_png(times, poa, wind, *, poa_min: float | None, wind_max: 
     return _png(fig, dpi)
 
 
-def registration_png(module_geoms, arrows: Sequence[tuple[float, float, float, float, str]],
+def registration_png(module_geoms: Iterable[Any], arrows: Sequence[tuple[float, float, float, float, str]],
                      shift: tuple[float, float], dpi: int) -> bytes:
     """The registration fit on a plan of the plant: the modules as placed on the image, and at
     each measuring block (or refined table) an arrow of the shift measured there, drawn longer

@@ -10,14 +10,19 @@ from __future__ import annotations
 import base64
 import io
 import math
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from typing import Any
 
 import numpy as np
 from PIL import Image, ImageDraw
 
 __all__ = ["Palette", "render_crop", "render_schematic", "png_data_uri", "colour_window", "module_window",
-           "quantise_png", "figure_palette"]
+           "quantise_png", "figure_palette", "hex_rgb"]
+
+#: Map extent ``(xmin, xmax, ymin, ymax)`` of the pixel edges [m].
+Extent = tuple[float, float, float, float]
+#: An RGB colour, 0..255 each.
+RGB = tuple[int, int, int]
 
 _LEVELS = 240
 IDX_NAN = 250
@@ -38,7 +43,7 @@ class Palette:
         Colour of the affected region's outline.
     """
 
-    def __init__(self, cmap_name: str = "inferno", region_rgb=(49, 215, 255)):
+    def __init__(self, cmap_name: str = "inferno", region_rgb: RGB = (49, 215, 255)) -> None:
         import matplotlib
 
         cmap = matplotlib.colormaps[cmap_name]
@@ -73,8 +78,8 @@ class Palette:
         return idx
 
 
-def render_schematic(extent, size_px: int, *, modules=(), neighbours=(), regions=(),
-                     region_rgb=(209, 0, 93)) -> bytes:
+def render_schematic(extent: Extent, size_px: int, *, modules: Iterable[Any] = (), neighbours: Iterable[Any] = (),
+                     regions: Iterable[Any] = (), region_rgb: RGB = (209, 0, 93)) -> bytes:
     """A plan of the module(s) and the affected region when no thermal pixels are available.
 
     Neighbouring modules light grey, the module mid grey with a dark outline, the affected
@@ -141,7 +146,7 @@ def module_window(values: np.ndarray, *, percentile_hi: float, median_level: flo
     return med - level * span, med + rise
 
 
-def _to_px(coords: np.ndarray, extent, shape) -> list[tuple[float, float]]:
+def _to_px(coords: np.ndarray, extent: Extent, shape: tuple[int, int]) -> list[tuple[float, float]]:
     xmin, xmax, ymin, ymax = extent
     h, w = shape
     cols = (coords[:, 0] - xmin) / (xmax - xmin) * w
@@ -149,7 +154,7 @@ def _to_px(coords: np.ndarray, extent, shape) -> list[tuple[float, float]]:
     return list(zip(cols.tolist(), rows.tolist()))
 
 
-def _rings(geom) -> Iterable[np.ndarray]:
+def _rings(geom: Any) -> Iterator[np.ndarray]:
     if geom is None or geom.is_empty:
         return
     if geom.geom_type == "Polygon":
@@ -161,8 +166,8 @@ def _rings(geom) -> Iterable[np.ndarray]:
         yield np.asarray(geom.coords)
 
 
-def render_crop(values: np.ndarray, extent, palette: Palette, vmin: float, vmax: float, size_px: int,
-                *, modules=(), neighbours=(), regions=()) -> bytes:
+def render_crop(values: np.ndarray, extent: Extent, palette: Palette, vmin: float, vmax: float, size_px: int,
+                *, modules: Iterable[Any] = (), neighbours: Iterable[Any] = (), regions: Iterable[Any] = ()) -> bytes:
     """A thermal crop as PNG bytes, scaled so its longer side is ``size_px``.
 
     Parameters
@@ -206,8 +211,9 @@ def render_crop(values: np.ndarray, extent, palette: Palette, vmin: float, vmax:
     return buf.getvalue()
 
 
-def _hex(h: str) -> tuple[int, ...]:
-    return tuple(int(h[i:i + 2], 16) for i in (1, 3, 5))
+def hex_rgb(h: str) -> RGB:
+    """``(r, g, b)`` of a ``#rrggbb`` colour."""
+    return int(h[1:3], 16), int(h[3:5], 16), int(h[5:7], 16)
 
 
 def _blend(c1: Any, c2: Any, n: int) -> list[tuple[int, ...]]:
@@ -215,19 +221,18 @@ def _blend(c1: Any, c2: Any, n: int) -> list[tuple[int, ...]]:
     return [tuple(int(round(v)) for v in a + (b - a) * t) for t in np.linspace(0.0, 1.0, n)]
 
 
-def figure_palette(cmap_name: str, accents=(), inks=()) -> Image.Image:
+def figure_palette(cmap_name: str, accents: Iterable[str] = (), inks: Iterable[str] = ()) -> Image.Image:
     """A fixed 256-colour palette for a map figure: white, each accent colour blended toward
     white and black (marker fills and their anti-aliased edges), a ramp from white to each
     ink (text, lines), and the colour map in the remaining entries."""
     import matplotlib
 
     cmap = matplotlib.colormaps[cmap_name]
-    accents, inks = list(accents), list(inks)
     cols: list[tuple[int, ...]] = [(255, 255, 255)]
-    for acc in accents:  # 10 entries each
-        cols += _blend(_hex(acc), (255, 255, 255), 8)[:-1] + _blend(_hex(acc), (0, 0, 0), 4)[1:]
-    for ink in inks:  # 12 entries each
-        cols += _blend((255, 255, 255), _hex(ink), 13)[1:]
+    for acc in list(accents):  # 10 entries each
+        cols += _blend(hex_rgb(acc), (255, 255, 255), 8)[:-1] + _blend(hex_rgb(acc), (0, 0, 0), 4)[1:]
+    for ink in list(inks):  # 12 entries each
+        cols += _blend((255, 255, 255), hex_rgb(ink), 13)[1:]
     n_map = 256 - len(cols)
     if n_map < 64:
         raise ValueError("figure_palette: too many accent and ink colours")

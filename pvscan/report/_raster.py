@@ -11,13 +11,21 @@ import logging
 import math
 from collections.abc import Sequence
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
+
+from pvscan._typing import ProgressFn
+
+if TYPE_CHECKING:
+    from pvscan.io.ortho import OrthoSet
 
 log = logging.getLogger(__name__)
 
 __all__ = ["ThermalView", "open_thermal"]
+
+#: Map extent ``(xmin, xmax, ymin, ymax)`` of the pixel edges [m] (matplotlib ``imshow`` order).
+Extent = tuple[float, float, float, float]
 
 
 class ThermalView:
@@ -29,13 +37,13 @@ class ThermalView:
         Open tiles of one flight (left open: the caller closes them).
     """
 
-    def __init__(self, orthos):
+    def __init__(self, orthos: OrthoSet) -> None:
         self.orthos = orthos
         self.tiles = list(orthos.tiles)
         self.crs = orthos.crs
         self.gsd_m = min(abs(t.transform.a) for t in self.tiles)
 
-    def overview(self, max_px: int, progress=None) -> tuple[np.ndarray, tuple[float, float, float, float]]:
+    def overview(self, max_px: int, progress: ProgressFn | None = None) -> tuple[np.ndarray, Extent]:
         """Decimated mosaic of all tiles.
 
         Parameters
@@ -57,7 +65,7 @@ class ThermalView:
             progress("report overview", 1, 1)
         return arr, (t.c, t.c + t.a * w, t.f + t.e * h, t.f)
 
-    def crop(self, bounds: tuple[float, float, float, float]) -> tuple[np.ndarray, tuple] | None:
+    def crop(self, bounds: tuple[float, float, float, float]) -> tuple[np.ndarray, Extent] | None:
         """Full-resolution pixels of a map box from the tile that covers it best.
 
         Parameters
@@ -99,7 +107,7 @@ class ThermalView:
         self._fill_from_other_tiles(out, best, extent)
         return out, extent
 
-    def _fill_from_other_tiles(self, out: np.ndarray, best: int, extent) -> None:
+    def _fill_from_other_tiles(self, out: np.ndarray, best: int, extent: Extent) -> None:
         """Fill NaN pixels of a crop from other tiles on the same pixel grid (tiles of one
         ortho cut at seams); tiles on another grid are left out (no resampling here)."""
         from rasterio.windows import Window
@@ -131,7 +139,7 @@ class ThermalView:
                 return
 
 
-def open_thermal(paths: Sequence[str | Path], spec: Any = None):
+def open_thermal(paths: Sequence[str | Path], spec: Any = None) -> OrthoSet:
     """Open ortho tiles for the report with the ortho stage's reader.
 
     Parameters

@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import logging
 import math
+import os
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -18,6 +19,8 @@ import numpy as np
 import pandas as pd
 
 from pvscan.errors import OutputError
+from pvscan.io.records import as_float as _num
+from pvscan.io.records import get_path
 
 __all__ = ["ResultData", "load_result", "SEVERITIES", "get_path", "validity_checks"]
 
@@ -28,31 +31,6 @@ SEVERITIES = ("safety", "repair", "monitor")
 
 _ANOMALY_NUMERIC = ("delta_t_k", "delta_t_norm_k", "t_max_c", "power_loss_w",
                     "power_loss_w_flight", "energy_loss_kwh_per_year", "confidence")
-
-
-def get_path(obj: Any, *paths: str, default: Any = None) -> Any:
-    """First value found at one of the dotted ``paths`` in nested mappings, else ``default``."""
-    for path in paths:
-        cur = obj
-        ok = True
-        for key in path.split("."):
-            if isinstance(cur, Mapping) and key in cur:
-                cur = cur[key]
-            else:
-                ok = False
-                break
-        if ok and cur is not None:
-            return cur
-    return default
-
-
-def _num(value: Any) -> float:
-    """A float, NaN for None / non-numeric."""
-    try:
-        out = float(value)
-    except (TypeError, ValueError):
-        return math.nan
-    return out
 
 
 @dataclass
@@ -352,7 +330,7 @@ def _merge_anomalies(anomalies: pd.DataFrame, workorders: pd.DataFrame,
     return an
 
 
-def load_result(result_dir: str | Path) -> ResultData:
+def load_result(result_dir: str | os.PathLike[str]) -> ResultData:
     """Read a result folder written by ``pvscan inspect``.
 
     Parameters

@@ -337,12 +337,14 @@ def artefacts(data: ResultData) -> dict[str, Any] | None:
 
 
 def severity_rules(summary: Mapping[str, Any]) -> dict[str, Any] | None:
-    """The ``[severity]`` rules the run used: ``summary.json`` ``severity`` when recorded, else
-    the pipeline file it names (when it still exists), else the default pipeline's."""
+    """The ``[severity]`` rules the run used: as ``summary.json`` records them (``settings``),
+    else (a result written before the settings were recorded) the pipeline file it names when
+    it still exists, else the default pipeline's."""
     from pvscan.errors import PvscanError
     from pvscan.io.settings import load_pipeline
 
-    rec = summary.get("severity")
+    recorded = summary.get("settings")
+    rec = recorded.get("severity") if isinstance(recorded, Mapping) else None
     if isinstance(rec, Mapping) and rec:
         return dict(rec)
     path = summary.get("pipeline")

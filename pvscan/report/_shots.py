@@ -60,10 +60,10 @@ def card_shots(view: ThermalView | None, geo: MapGeometry, r: pd.Series, ageom: 
     regions = [ageom] if ageom is not None and not ageom.is_empty else []
     neigh = [g for g in geo.near(close_box) if not any(g is m for m in mods)]
     if view is None:  # a plan of the module and the region instead of thermal pixels
-        from pvscan.report._images import render_schematic
+        from pvscan.report._images import hex_rgb, render_schematic
 
         colour = figs.SEVERITY_STYLE.get(str(r["severity"]), figs.SEVERITY_STYLE["monitor"])["color"]
-        sev_rgb = tuple(int(colour[i:i + 2], 16) for i in (1, 3, 5))
+        sev_rgb = hex_rgb(colour)
         ext = (close_box[0], close_box[2], close_box[1], close_box[3])
         png = render_schematic(ext, size, modules=mods, neighbours=neigh, regions=regions, region_rgb=sev_rgb)
         return {"kind": "plan", "size": size, "figures": [{

@@ -9,29 +9,10 @@ import re
 from collections.abc import Mapping, Sequence
 from typing import Any
 
+from pvscan.io.writers.summary import SAFETY_CAUTIONS
+
 __all__ = ["SAFETY_CAUTIONS", "DEFECT_TEXT", "fmt", "sig", "isnum", "defect_name", "first_sentence",
            "period", "cautions", "severity_reason", "label_of", "unit_of"]
-
-#: The cautions printed once in every report (our own wording; local codes and the site's rules
-#: come first). One item per hazard: live DC, arcs and fire, hot surfaces, who may do the work,
-#: drone flights, and that findings are estimates.
-SAFETY_CAUTIONS = (
-    "PV modules and strings are live (DC) whenever light falls on them, even when the inverter or "
-    "the string is disconnected: daylight alone energises them, and DC circuits cannot be switched "
-    "off from the array side.",
-    "Damaged connectors, junction boxes and bypass diodes can arc and start fires; DC arcs do not "
-    "go out by themselves. Keep clear of smoking or charred parts and follow the site's emergency "
-    "procedure.",
-    "Hot spots, junction boxes and modules in the sun can be hot enough to burn skin; let them cool "
-    "or wear suitable protective equipment.",
-    "Only qualified, licensed and authorised people may open, test or repair PV electrical equipment, "
-    "under the local electrical codes and the site's safety rules (lock-out, permits, protective "
-    "equipment).",
-    "Drone flights must follow the local aviation rules and the site's permissions; keep clear of "
-    "people, overhead lines and operating machinery.",
-    "The findings are estimates from thermal imaging: confirm each one on site, with suitable "
-    "instruments, before acting on it.",
-)
 
 #: Plain description of each defect pattern (our own wording).
 DEFECT_TEXT = {

@@ -227,6 +227,8 @@ def simulate_flight(scenario, out_dir, seed: int = 0, *, overwrite: bool = False
             "seams": [list(s) for s in scene.seams],
             "hot_objects": [{"kind": o[0], "rise_k": round(o[5], 3)} for o in scene.objects],
             "cloud_shadows": len(scene.clouds),
+            "row_shaded_modules": int(scene.row_shade.any.sum()) if scene.row_shade is not None else 0,
+            "seam_shift_m": [[round(float(a), 4) for a in d] for d in scene.seam_shift],
             "reflections": len(scene.reflections),
             "scenario_settings": sc,
         }

@@ -158,16 +158,18 @@ class Field:
             u, v = fs, fw
         return idx, u, v, s, w
 
-    def uv_to_map(self, idx, u, v):
-        """Map points of module-local (u, v) of modules ``idx`` [m]."""
+    def uv_to_field(self, idx, u, v):
+        """Field coordinates (s, w) of module-local (u, v) of modules ``idx`` [m]."""
         m = self.modules
         if self.portrait:
             fw, fs = np.asarray(u, float), 1.0 - np.asarray(v, float)
         else:
             fs, fw = np.asarray(u, float), np.asarray(v, float)
-        s = m["s0"][idx] + fs * self.mod_s
-        w = m["w0"][idx] + fw * self.mod_w
-        return self.to_map(s, w)
+        return m["s0"][idx] + fs * self.mod_s, m["w0"][idx] + fw * self.mod_w
+
+    def uv_to_map(self, idx, u, v):
+        """Map points of module-local (u, v) of modules ``idx`` [m]."""
+        return self.to_map(*self.uv_to_field(idx, u, v))
 
 
 def build_field(sc: dict) -> Field:

@@ -30,6 +30,15 @@ Ranges (uniform unless said otherwise; "common practice" unless a source is name
   8-14 um; export emissivity 1.0 or 0.95.
 - **distractors**: 0-1 cloud shadows, 0-3 sky reflections, 0-2 mosaic seams, 0-1 hot objects.
 - **defects**: every pattern 0-2 times (open string and PID 0-1 strings), at least one defect.
+- **terrain** (own random stream, so the draws above stay as they were for a seed): level in
+  half the flights, else a plane sloping 1-8 deg toward any azimuth; tables follow it.
+- **diffuse share** of the irradiance 0.12-0.3 (what a cell keeps in another row's shadow).
+- **mosaic optics**: residual vignetting 0-0.03 of the cosine-fourth falloff; seams misaligned
+  by 0.02-0.12 m; the ortho's surface model misses none of the tables' height (a true ortho)
+  in 45 % of flights, 5-30 % of it (a smoothed surface model) in 40 %, all of it (an ortho on
+  a ground-level model) in 15 %.
+- ``raised_low_sun``: half its flights in the morning (sun beside the rows), half within two
+  hours of noon in winter at latitude 40-55 deg (sun in front: the rows shade the next row).
 - **layout error**: shift within +-1 m, rotation within +-0.3 deg, scale within +-0.2 %,
   local distortion 0-3 cm (``turned_layout``: rotation 0.2-2 deg either way, scale error
   up to 1 %, shift up to 1.5 m; ``no_layout_error``: none; ``tracker_hot_ground_noon``,
@@ -64,13 +73,15 @@ def _sun(lat: float, lon: float, when: datetime) -> tuple[float, float]:
     return float(pos["apparent_elevation"].iloc[0]), float(pos["azimuth"].iloc[0])
 
 
-def _when(rng, lat, lon, family, kind) -> datetime:
+def _when(rng, lat, lon, family, kind, low_noon=False) -> datetime:
     """A flight start with the sun in the family's range (solar position by pvlib)."""
     tz = timezone(timedelta(hours=int(round(lon / 15.0))))
-    for _ in range(200):
+    for _ in range(400 if low_noon else 200):
         day = datetime(2026, 1, 1, tzinfo=tz) + timedelta(days=int(rng.integers(0, 365)))
         noon_utc = 12.0 - lon / 15.0  # solar noon, ignoring the equation of time [h UTC]
-        if family == "raised_low_sun":
+        if family == "raised_low_sun" and low_noon:  # a winter sun low in front of the rows
+            hour = noon_utc + float(rng.uniform(-2.0, 2.0))
+        elif family == "raised_low_sun":
             hour = noon_utc + float(rng.uniform(-6.0, -3.0))
         elif family == "tracker_hot_ground_noon":
             hour = noon_utc + float(rng.uniform(-1.0, 1.0))
@@ -130,7 +141,12 @@ def draw_scenario(seed: int, family: str = "any") -> dict:
         kind = "tracker" if u() < 0.4 else "fixed"
     lat = float(u(20.0, 55.0)) * (1 if u() < 0.5 else -1)
     lon = float(u(-120.0, 150.0))
-    when = _when(rng, lat, lon, family, kind)
+    # the keys added later draw from their own stream, so that every earlier draw of a seed stays
+    rng2 = np.random.default_rng([int(seed), 20260614, FAMILIES.index(family), 2])
+    low_noon = family == "raised_low_sun" and bool(rng2.uniform() < 0.5)
+    if low_noon:
+        lat = float(np.sign(lat) * rng2.uniform(40.0, 55.0))
+    when = _when(rng, lat, lon, family, kind, low_noon)
 
     half = bool(u() < 0.5)
     pmax, width, length, voc, isc, _ = _MODULES[half]
@@ -208,10 +224,18 @@ def draw_scenario(seed: int, family: str = "any") -> dict:
                   "local_rms_m": round(float(u(0.0, 0.03)), 3)}
     layout["features"] = "modules" if u() < 0.7 else "tables"
     name = f"Random plant {family} {int(seed)} (invented)"
+    u2 = rng2.uniform
+    slope = 0.0 if u2() < 0.5 else round(float(u2(1.0, 8.0)), 2)
+    terrain = {"slope_deg": slope, "aspect_deg": round(float(u2(0.0, 360.0)), 1)}
+    conditions["diffuse_fraction"] = round(float(u2(0.12, 0.3)), 3)
+    camera["vignetting"] = round(float(u2(0.0, 0.03)), 4)
+    k = u2()
+    relief = 0.0 if k < 0.45 else (1.0 if k > 0.85 else round(float(u2(0.05, 0.3)), 3))
+    distractors["seam_shift_m"] = [0.02, round(float(u2(0.02, 0.12)), 3)]
     return {
         "site": {"name": name, "lon": round(lon, 5), "lat": round(lat, 5)},
         "flight": {"start": when.isoformat(), "id": f"random-{family}-{int(seed)}", "speed_m_s": 4.0},
         "array": array, "module": module, "conditions": conditions, "ground": ground, "camera": camera,
         "export": export, "distractors": distractors, "defects": defects, "layout": layout,
-        "ortho": {"margin_m": 5.0, "preview_px": 600},
+        "ortho": {"margin_m": 5.0, "preview_px": 600, "relief_height_fraction": relief}, "terrain": terrain,
     }

@@ -101,6 +101,7 @@ DEFAULTS: dict[str, Any] = {
         "measurement_spread_k": 0.25,
         "cell_spread_k": 0.25,
         "frame_drop": 0.35,
+        "diffuse_fraction": 0.2,
         "varying": False,
         "poa_drift_w_m2_per_min": 2.0,
         "ambient_drift_c_per_min": 0.05,
@@ -109,6 +110,10 @@ DEFAULTS: dict[str, Any] = {
         "irradiance_dips": 1,
         "irradiance_dip_depth": 0.12,
         "series_step_s": 10.0,
+    },
+    "terrain": {
+        "slope_deg": 0.0,
+        "aspect_deg": 0.0,
     },
     "ground": {
         "emissivity": 0.95,
@@ -124,6 +129,7 @@ DEFAULTS: dict[str, Any] = {
         "netd_k": 0.05,
         "band_um": [7.5, 13.5],
         "transmission": "auto",
+        "vignetting": 0.0,
     },
     "export": {
         "units": "celsius",
@@ -139,6 +145,7 @@ DEFAULTS: dict[str, Any] = {
         "nodata_border_m": 2.0,
         "block_px": 512,
         "preview_px": 1400,
+        "relief_height_fraction": 0.0,
     },
     "distractors": {
         "cloud_shadows": 0,
@@ -149,6 +156,7 @@ DEFAULTS: dict[str, Any] = {
         "reflection_size_m": 3.0,
         "seams": 0,
         "seam_step_k": [0.5, 2.0],
+        "seam_shift_m": [0.0, 0.0],
         "hot_objects": 0,
     },
     "defects": {

@@ -31,9 +31,20 @@ Physics, in the order it is applied to a pixel:
    temperature (:func:`pvscan.simulate.radiance.apparent_temperature`; the simulator's own
    Planck band integrals, sharing no code with the pipeline).
 5. **Camera**: Gaussian point-spread function applied to the band radiance (the lens
-   mixes radiance, not temperature).
-6. **Mosaic**: rectangular seams add a sharp step of 0.5-2 K to the apparent temperature;
+   mixes radiance, not temperature); residual vignetting scales the sensor radiance
+   (cosine-fourth law, ``camera.vignetting``; :mod:`pvscan.simulate.optics`).
+6. **Mosaic**: each pixel comes from the frame with the nearest centre; raised tables are
+   displaced away from that frame's nadir when the ortho's surface model misses their height
+   (``ortho.relief_height_fraction``); rectangular seams add a sharp step of 0.5-2 K to the
+   apparent temperature and may show the scene shifted (``distractors.seam_shift_m``);
    then white noise of the camera's NETD and a wavy nodata border at the edge.
+
+Shadows (:mod:`pvscan.simulate.shading`): the tables shade the ground and, when the sun is
+low in front of them, the lower part of the next row; a shaded cell keeps the diffuse share
+of its rise over the air (``conditions.diffuse_fraction``) and a substring with a cell more
+than half shaded is bypassed. The terrain may slope (``terrain.slope_deg``,
+``terrain.aspect_deg``): the rows follow it, which changes their shadows, and sunlit ground
+warms with the beam on its slope.
 
 References
 ----------
@@ -58,6 +69,8 @@ from pvscan.simulate.electrical import diode_module, faiman
 from pvscan.simulate.flightpath import plan_flight, weather_series
 from pvscan.simulate.geometry import build_field
 from pvscan.simulate.layout_error import layout_error
+from pvscan.simulate.optics import FrameLookup, relief_source, vignetting_factor
+from pvscan.simulate.shading import RowShade, ground_beam_factor, shadow_geometry
 
 __all__ = ["Scene", "faiman", "GROUND", "GLASS", "FRAME", "OBJECT"]
 
@@ -176,6 +189,10 @@ class Scene:
                                          dis["reflection_size_m"] * drng.uniform(0.7, 1.3),
                                          dis["reflection_k"] * drng.uniform(0.7, 1.3)))
         self.seams = self._place_seams(drng, int(dis["seams"]), dis["seam_step_k"])
+        srng = np.random.default_rng([self.seed, 11])  # own stream: earlier draws stay as they were
+        lo, hi = (float(x) for x in dis["seam_shift_m"])
+        self.seam_shift = [tuple(float(srng.uniform(lo, hi)) * np.array([math.cos(a), math.sin(a)]))
+                           for a in srng.uniform(0.0, 2 * math.pi, len(self.seams))]
         self.objects = self._place_objects(drng, int(dis["hot_objects"]))
         self.texture = _SmoothNoise(self.extent, 3.0, np.random.default_rng([self.seed, 4]))
         self.wobble = _SmoothNoise(self.extent, 8.0, np.random.default_rng([self.seed, 5]))
@@ -184,6 +201,9 @@ class Scene:
                                           np.random.default_rng([self.seed, 10]))
                              if float(gcfg["field_k"]) > 0 else None)
         self._sun_shadow()
+        self.frames = FrameLookup(self.plan.centres)
+        self.relief_fraction = float(sc["ortho"]["relief_height_fraction"])
+        self.altitude_m = alt
 
         # modules
         mrng = np.random.default_rng([self.seed, 6])
@@ -214,6 +234,9 @@ class Scene:
         fw = float(sc["array"]["frame_width_m"])
         self.frame_u = fw / self.geom.length_m
         self.frame_v = fw / self.geom.width_m
+        self.beam_fraction = 1.0 - float(cond["diffuse_fraction"])
+        shade = RowShade(fld, self.shadow, self.geom.n_along, self.geom.n_across, self.geom.bypass_diodes)
+        self.row_shade = shade if shade.any.any() else None
 
     # ------------------------------------------------------------------ distractors
     def cloud_factor(self, x, y):
@@ -226,7 +249,8 @@ class Scene:
     def distractors_at_modules(self) -> list[list[str]]:
         """Distractors touching each module: ``seam`` (its centre lies in a mosaic seam
         rectangle), ``reflection`` (sky reflection above 2 K at its centre), ``cloud_shadow``
-        (irradiance lowered by more than 5 %), ``hot_object`` (within 3 m of one)."""
+        (irradiance lowered by more than 5 %), ``hot_object`` (within 3 m of one),
+        ``row_shade`` (a cell in the shadow of another row)."""
         m = self.field.modules
         cx, cy = m["cx"], m["cy"]
         col = (cx - self.x0) / self.gsd
@@ -245,8 +269,9 @@ class Scene:
             ds = np.maximum(0.0, np.maximum(s0 - s, s - s1))
             dw = np.maximum(0.0, np.maximum(w0 - w, w - w1))
             near |= np.hypot(ds, dw) < 3.0
+        row_shade = self.row_shade.any if self.row_shade is not None else np.zeros(cx.shape, bool)
         for name, flag in (("seam", in_seam), ("reflection", refl > 2.0), ("cloud_shadow", cloud),
-                           ("hot_object", near)):
+                           ("hot_object", near), ("row_shade", row_shade)):
             for i in np.flatnonzero(flag):
                 tags[i].append(name)
         return tags
@@ -293,62 +318,33 @@ class Scene:
         mid = self.start + (self.end - self.start) / 2
         pos = pvlib.solarposition.get_solarposition(pd.DatetimeIndex([mid]), self.sc["site"]["lat"],
                                                     self.sc["site"]["lon"])
-        elev = max(float(pos["apparent_elevation"].iloc[0]), 8.0)
-        az = math.radians(float(pos["azimuth"].iloc[0]))
-        self.sun_elevation_deg = elev
-        self.sun_azimuth_deg = math.degrees(az)
-        k = 1.0 / math.tan(math.radians(elev))          # shadow length per metre of height
-        d = -k * np.array([math.sin(az), math.cos(az)])  # away from the sun
-        fld = self.field
-        self.shadow_ds = float(d @ fld.a)
-        self.shadow_dw = float(-(d @ fld.c))
-        tilt = math.radians(fld.tilt_deg)
-        h0 = float(self.sc["array"]["mount_height_m"])
-        self.h_low = h0
-        self.h_high = h0 + fld.table_depth / max(math.cos(tilt), 1e-6) * math.sin(tilt)
+        self.sun_elevation_deg = max(float(pos["apparent_elevation"].iloc[0]), 8.0)
+        self.sun_azimuth_deg = float(pos["azimuth"].iloc[0])
+        ter = self.sc["terrain"]
+        self.shadow = shadow_geometry(self.field, self.sun_elevation_deg, self.sun_azimuth_deg,
+                                      float(self.sc["array"]["mount_height_m"]), float(ter["slope_deg"]),
+                                      float(ter["aspect_deg"]))
+        self.h_low, self.h_high = self.shadow.h_low, self.shadow.h_high
+        diffuse = float(self.sc["conditions"]["diffuse_fraction"])
+        self.ground_sun_factor = ground_beam_factor(float(ter["slope_deg"]), float(ter["aspect_deg"]),
+                                                    self.sun_elevation_deg, self.sun_azimuth_deg, diffuse)
 
     def in_shadow(self, s, w):
-        """True where ground at field coordinates (s, w) lies in a table's shadow or under it.
+        """True where ground at field coordinates (s, w) lies in a table's shadow or under it
+        (:meth:`pvscan.simulate.shading.ShadowGeometry.shaded`)."""
+        return self.shadow.shaded(s, w, self.shadow.ground_z(s, w))
 
-        The shadow of the table line at fraction ``lam`` up its slope (height
-        ``h = h_low + lam * (h_high - h_low)``) falls displaced by ``h * (ds, dw)``; a ground
-        point is shaded when, for the one ``lam`` that matches its ``w``, its ``s`` falls on
-        the displaced table. Only the table rows and tables the displacement can reach are
-        tried.
-        """
-        fld = self.field
-        s = np.asarray(s, float)
-        w = np.asarray(w, float)
-        shaded = np.zeros(s.shape, bool)
-        if s.size == 0:
-            return shaded
-        dh = self.h_high - self.h_low
-        den = fld.table_depth + dh * self.shadow_dw
-        tr0 = np.floor(w / fld.pitch).astype(np.int64)
-        tb0 = np.floor(s / fld.table_step).astype(np.int64)
-
-        def offsets(coord, step, d, base):
-            ks = [np.floor((coord - h * d) / step).astype(np.int64) - base for h in (0.0, self.h_low, self.h_high)]
-            return range(int(min(k.min() for k in ks)), int(max(k.max() for k in ks)) + 1)
-
-        for dtr in offsets(w, fld.pitch, self.shadow_dw, tr0):
-            tr = tr0 + dtr
-            okr = (tr >= 0) & (tr < fld.n_trows)
-            if not okr.any():
-                continue
-            wp = w - tr * fld.pitch
-            lam = (wp - self.h_low * self.shadow_dw) / den if abs(den) > 0.1 else np.full(s.shape, -1.0)
-            okl = okr & (lam >= 0) & (lam <= 1)
-            under_w = okr & (wp >= 0) & (wp <= fld.table_depth)
-            h = self.h_low + np.clip(lam, 0, 1) * dh
-            for dtb in offsets(s, fld.table_step, self.shadow_ds, tb0):
-                tb = tb0 + dtb
-                okb = (tb >= 0) & (tb < fld.n_tables)
-                sp = s - tb * fld.table_step
-                sh = sp - h * self.shadow_ds
-                shaded |= okl & okb & (sh >= 0) & (sh <= fld.table_len)
-                shaded |= under_w & okb & (sp >= 0) & (sp <= fld.table_len)
-        return shaded
+    def raised_height(self, x, y):
+        """Height above the ground the ortho's surface model misses at map points [m]:
+        ``ortho.relief_height_fraction`` of the table plane's height on tables, 0 elsewhere."""
+        fld, sh = self.field, self.shadow
+        s, w = fld.to_field(x, y)
+        tr = np.floor(w / fld.pitch)
+        tb = np.floor(s / fld.table_step)
+        on = ((tr >= 0) & (tr < fld.n_trows) & (tb >= 0) & (tb < fld.n_tables)
+              & (w - tr * fld.pitch <= fld.table_depth) & (s - tb * fld.table_step <= fld.table_len))
+        h = sh.table_z(s, w) - sh.ground_z(s, w)
+        return np.where(on, self.relief_fraction * h, 0.0)
 
     # ------------------------------------------------------------------ temperatures
     def module_temperature(self, idx, u, v, *, with_frame: bool = True):
@@ -364,6 +360,10 @@ class Scene:
         if with_frame:
             fr = self.is_frame(u, v)
             t = np.where(fr, th - float(self.sc["conditions"]["frame_drop"]) * (th - self.temp_air[idx]), t)
+        if self.row_shade is not None:  # shade of other rows: less beam, and bypassed substrings
+            ta = self.temp_air[idx]
+            f = self.row_shade.factor(idx, ci, cj, self.beam_fraction)
+            t = ta + (t - ta) * f + np.where(self.row_shade.bypassed_at(idx, cj), self.dt_open[idx] * f, 0.0)
         if self._defect_modules.size:
             hit = np.isin(idx, self._defect_modules)
             if hit.any():
@@ -393,7 +393,7 @@ class Scene:
         gcfg = self.sc["ground"]
         shade = np.zeros(idx.shape, bool)
         shade[~mod] = self.in_shadow(s[~mod], w[~mod])
-        sun = self.poa_mean * self.cloud_factor(x, y) / 1000.0 * gcfg["sun_rise_k"]
+        sun = self.poa_mean * self.cloud_factor(x, y) / 1000.0 * gcfg["sun_rise_k"] * self.ground_sun_factor
         temp = self.temp_air_mean + np.where(shade, gcfg["shade_rise_k"], sun) + gcfg["texture_k"] * self.texture(x, y)
         if self.ground_field is not None:  # site-wide variation (moisture, soil, vegetation)
             temp = temp + float(gcfg["field_k"]) * self.ground_field(x, y)
@@ -438,6 +438,27 @@ class Scene:
         y = self.y1 - (rows + 0.5) * self.gsd
         return np.meshgrid(x, y)
 
+    def _seen_points(self, row0, col0, x, y):
+        """Map points the ortho pixels show: shifted inside misaligned seam rectangles, then
+        displaced by relief (:mod:`pvscan.simulate.optics`) [m]."""
+        rr = np.arange(row0, row0 + x.shape[0])[:, None]
+        cc = np.arange(col0, col0 + x.shape[1])[None, :]
+        xs, ys = x, y
+        for (r0, r1, c0, c1, _), (dx, dy) in zip(self.seams, self.seam_shift):
+            if dx or dy:
+                inside = (rr >= r0) & (rr < r1) & (cc >= c0) & (cc < c1)
+                xs, ys = xs + np.where(inside, dx, 0.0), ys + np.where(inside, dy, 0.0)
+        if self.relief_fraction > 0:
+            nx, ny = self.frames.nadir(x, y)
+            sh = self.shadow
+            s, w = self.field.to_field(xs, ys)
+            s_c, w_c = self.field.to_field(*np.mean(self.plan.centres, axis=0))
+            alt = self.altitude_m - (sh.ground_z(s, w) - sh.ground_z(s_c, w_c))
+            f = self.relief_fraction
+            starts = (f * self.h_high, f * (self.h_low + self.h_high) / 2, f * self.h_low)
+            xs, ys, _ = relief_source(xs, ys, nx, ny, self.raised_height, alt, starts=starts)
+        return xs, ys
+
     def render_block(self, row0, col0, nrows, ncols):
         """Final apparent temperature of a window of the global grid [degC], NaN = nodata.
 
@@ -449,13 +470,24 @@ class Scene:
         sigma = float(cam["psf_sigma_px"])
         halo = int(math.ceil(4 * sigma)) + 1 if sigma > 0 else 0
         x, y = self.pixel_centres(row0 - halo, col0 - halo, nrows + 2 * halo, ncols + 2 * halo)
-        scene = self.true_scene(x, y)
+        xs, ys = self._seen_points(row0 - halo, col0 - halo, x, y)
+        scene = self.true_scene(xs, ys)
         app = np.asarray(self.apparent(scene), float)
-        if sigma > 0:
+        vig = float(cam["vignetting"])
+        if sigma > 0 or vig > 0:
             # the lens mixes radiance, not temperature: blur the band radiance of the apparent
-            # temperature (affine in the sensor radiance for any export emissivity)
+            # temperature (affine in the sensor radiance for any export emissivity); vignetting
+            # scales the sensor radiance
             band = tuple(cam["band_um"])
-            rad = ndimage.gaussian_filter(radiance.band_radiance(app + _ZERO_C, band), sigma, mode="nearest")
+            rad = radiance.band_radiance(app + _ZERO_C, band)
+            if sigma > 0:
+                rad = ndimage.gaussian_filter(rad, sigma, mode="nearest")
+            if vig > 0:
+                ex_eps = float(self.sc["export"]["emissivity"])
+                l_refl = radiance.band_radiance(float(self.sc["export"]["reflected_c"]) + _ZERO_C, band)
+                nx, ny = self.frames.nadir(x, y)
+                f = vignetting_factor(np.hypot(x - nx, y - ny), self.altitude_m, vig)
+                rad = (f * (ex_eps * rad + (1 - ex_eps) * l_refl) - (1 - ex_eps) * l_refl) / ex_eps
             app = np.asarray(radiance.band_temperature(rad, band), float) - _ZERO_C
         app = app[halo:halo + nrows, halo:halo + ncols]
         # mosaic seams: steps between frames, sharp (applied after each frame's blur)

@@ -15,7 +15,7 @@ Definitions follow the project's output contract:
   the irradiance ``G`` and wind ``v`` logged when the module was imaged.
 
 ``truth.geojson`` also lists, per module, the ``distractors`` touching it (``seam``,
-``reflection``, ``cloud_shadow``, ``hot_object``), so false alarms can be traced to them.
+``reflection``, ``cloud_shadow``, ``hot_object``, ``row_shade``), so false alarms can be traced to them.
 """
 from __future__ import annotations
 

@@ -28,20 +28,25 @@ from pvscan.robust import iqr, nanmin
 __all__ = ["open_module_floor", "pattern_open_module", "pattern_open_string"]
 
 
-def open_module_floor(rise, sigma, z_min: float, prior: float):
+def open_module_floor(rise, sigma, z_min: float, prior: float, rise_rel_sigma: float = 0.0):
     """Least module rise [K] called an open module: a likelihood-ratio test.
 
     A healthy module's delta T scatters as ``N(0, sigma)`` (the module-to-module spread);
-    an open module's as ``N(rise, sigma)`` with ``rise = eta * G / U`` (the same spread,
-    shifted by the heat of the power it no longer delivers). With a prior share ``prior``
-    of open modules, the open hypothesis is the more probable above
+    an open module's as ``N(rise, s_open)`` with ``rise = eta * G / U`` (the heat of the
+    power it no longer delivers) and ``s_open**2 = sigma**2 + (rise_rel_sigma * rise)**2``:
+    the same spread plus the uncertainty of the rise itself (the heat-loss coefficient of
+    the mounting, the operating efficiency, the irradiance the module got). With a prior
+    share ``prior`` of open modules, the open hypothesis is the more probable above the
+    root of
 
-        ``rise / 2 + sigma**2 * ln((1 - prior) / prior) / rise``
+        ``ln(sigma / s_open) - (x - rise)**2 / (2 s_open**2) + x**2 / (2 sigma**2)
+        = ln((1 - prior) / prior)``
 
-    (equal-variance Gaussian classes); the floor is that, and at least ``z_min * sigma``.
-    When the rise is many spreads the floor sits near half the rise; when it is only a few
-    (low irradiance, strong wind) it climbs above the rise, since then a warm healthy
-    module is likelier than an open one.
+    (Gaussian classes; with ``rise_rel_sigma = 0`` it is
+    ``rise / 2 + sigma**2 * ln((1 - prior) / prior) / rise``); the floor is that, and at
+    least ``z_min * sigma``. When the rise is many spreads the floor sits near half the
+    rise; when it is only a few (low irradiance, strong wind) it climbs above the rise,
+    since then a warm healthy module is likelier than an open one.
 
     Parameters
     ----------
@@ -53,6 +58,8 @@ def open_module_floor(rise, sigma, z_min: float, prior: float):
         Least floor in spreads [-].
     prior : float
         Prior share of open modules among modules (0..1) [-].
+    rise_rel_sigma : float
+        Relative uncertainty of the open-module rise (1 sigma) [-].
 
     Returns
     -------
@@ -61,8 +68,17 @@ def open_module_floor(rise, sigma, z_min: float, prior: float):
     """
     r = np.maximum(np.asarray(rise, float), 1e-6)
     p = float(np.clip(prior, 1e-9, 0.5))
-    lr = r / 2.0 + sigma * sigma * np.log((1.0 - p) / p) / r
-    return np.maximum(z_min * sigma, lr)
+    big_l = np.log((1.0 - p) / p)
+    sig = max(float(sigma), 1e-6)
+    s2 = sig * sig + (float(rise_rel_sigma) * r) ** 2
+    a = 0.5 * (1.0 / (sig * sig) - 1.0 / s2)
+    b = r / s2
+    c = -r * r / (2.0 * s2) + 0.5 * np.log(sig * sig / s2) - big_l
+    with np.errstate(invalid="ignore", divide="ignore"):
+        quad = (-b + np.sqrt(np.maximum(b * b - 4.0 * a * c, 0.0))) / (2.0 * a)
+    lin = r / 2.0 + sig * sig * big_l / r
+    lr = np.where(a > 1e-12, quad, lin)
+    return np.maximum(z_min * sig, lr)
 
 
 def pattern_open_module(F: Features, cfg: Mapping, rsub=None, dT=None, isolated: bool = True) -> Hits:
@@ -94,7 +110,8 @@ def pattern_open_module(F: Features, cfg: Mapping, rsub=None, dT=None, isolated:
     ratio = dT / r
     spread = iqr((F.R - F.base[:, None, None]).reshape(F.n, -1), axis=1)
     uniform = spread <= np.maximum(float(cfg["open_uniform_iqr"]) * r, float(cfg["open_uniform_floor_k"]))
-    floor = open_module_floor(r, F.sig_mod, float(cfg["module_z"]), float(cfg["open_prior"]))
+    floor = open_module_floor(r, F.sig_mod, float(cfg["module_z"]), float(cfg["open_prior"]),
+                              float(cfg["open_rise_rel_sigma"]))
     hit = (F.ok & (lo >= float(cfg["substring_raise_min"]) * r) & (ratio >= float(cfg["open_ratio_min"]))
            & (ratio <= float(cfg["open_ratio_max"])) & uniform & (dT >= floor))
     if isolated and "adjacent" in F.extra:
@@ -191,14 +208,19 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
                     lo_end -= 1
                 while hi_end < len(idx) and F.ok[idx[hi_end]] and z[idx[hi_end]] >= end_z:
                     hi_end += 1
-                run = idx[lo_end:hi_end]
-                if F.extra.get("is_string", False) and not _string_opens_whole(F, cfg, idx, run):
-                    continue
-                if not _raised_over_other_row_throughout(F, cfg, run):
-                    continue
-                if not _stops_at_its_ends(F, cfg, run):
-                    continue
-                out.append([int(i) for i in run])
+                # the end modules taken in are less clear (a healthy module is above
+                # open_string_end_z now and then): when the run with them fails a check of
+                # the whole run, the established run is judged alone
+                for lo_i, hi_i in dict.fromkeys([(lo_end, hi_end), (a, b)]):
+                    run = idx[lo_i:hi_i]
+                    if F.extra.get("is_string", False) and not _string_opens_whole(F, cfg, idx, run):
+                        continue
+                    if not _raised_over_other_row_throughout(F, cfg, run):
+                        continue
+                    if not _stops_at_its_ends(F, cfg, run):
+                        continue
+                    out.append([int(i) for i in run])
+                    break
     return out
 
 

@@ -20,26 +20,35 @@ from pvscan.io.writers.geometry import anomaly_indices
 from pvscan.io.writers.values import dumps, to_jsonable
 from pvscan.io.writers.workorders import read_workorders_csv
 
-__all__ = ["safety_cautions", "build_summary", "write_summary", "validate_output", "conditions_with_units",
-           "CONDITION_KEYS"]
+__all__ = ["SAFETY_CAUTIONS", "safety_cautions", "build_summary", "write_summary", "validate_output",
+           "conditions_with_units", "CONDITION_KEYS"]
+
+#: The cautions of every result: ``summary.json`` ``safety``, the report, ``pvscan history
+#: changes`` (our own wording; local codes and the site's rules come first). One item per
+#: hazard: live DC, arcs and fire, hot surfaces, who may do the work, drone flights, and that
+#: findings are estimates.
+SAFETY_CAUTIONS = (
+    "PV modules and strings are live (DC) whenever light falls on them, even when the inverter or "
+    "the string is disconnected: daylight alone energises them, and DC circuits cannot be switched "
+    "off from the array side.",
+    "Damaged connectors, junction boxes and bypass diodes can arc and start fires; DC arcs do not "
+    "go out by themselves. Keep clear of smoking or charred parts and follow the site's emergency "
+    "procedure.",
+    "Hot spots, junction boxes and modules in the sun can be hot enough to burn skin; let them cool "
+    "or wear suitable protective equipment.",
+    "Only qualified, licensed and authorised people may open, test or repair PV electrical equipment, "
+    "under the local electrical codes and the site's safety rules (lock-out, permits, protective "
+    "equipment).",
+    "Drone flights must follow the local aviation rules and the site's permissions; keep clear of "
+    "people, overhead lines and operating machinery.",
+    "The findings are estimates from thermal imaging: confirm each one on site, with suitable "
+    "instruments, before acting on it.",
+)
+
 
 def safety_cautions() -> list[str]:
-    """Cautions printed in ``summary.json`` and the report (plain words, deferring to local rules)."""
-    return [
-        "PV modules and strings carry live DC voltage whenever light falls on them, even when the "
-        "inverter or the string is disconnected; daylight alone energises them.",
-        "Faulty connectors, junction boxes and bypass diodes can arc and start fires; DC arcs do not "
-        "self-extinguish. Keep clear of damaged or smoking components and follow the site's emergency "
-        "procedure.",
-        "Hot spots and junction boxes can be hot enough to burn skin; let them cool or use suitable "
-        "protective equipment before touching.",
-        "Only qualified, authorised persons may open, test or repair PV electrical equipment, under the "
-        "local electrical codes and the site's safety rules.",
-        "Drone flights must follow the local aviation rules and the site's permissions; keep clear of "
-        "people, overhead lines and operating equipment.",
-        "These results are estimates from thermal imaging; confirm every finding on site before acting "
-        "on it.",
-    ]
+    """:data:`SAFETY_CAUTIONS` as a list (``summary.json`` ``safety``; plain words, deferring to local rules)."""
+    return list(SAFETY_CAUTIONS)
 
 
 def _counts(values: Iterable) -> dict[str, int]:

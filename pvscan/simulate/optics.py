@@ -1,0 +1,114 @@
+"""What the camera and the mosaic do to geometry and level: relief displacement, vignetting,
+misaligned frames.
+
+An orthomosaic keeps, for each ground point, the frame whose centre is nearest (the one that
+sees it most squarely; :meth:`pvscan.simulate.flightpath.FlightPlan.imaged_at` uses the same
+rule). The camera looks straight down from ``H`` metres above the ground at that frame's
+nadir point ``N``.
+
+**Relief displacement.** An ortho rectified on a ground-level surface model puts every ray
+where it meets the ground. A point at height ``h`` above the ground and at horizontal
+distance ``r`` from the nadir therefore lands at ``r' = r * H / (H - h)``: displaced
+radially away from the nadir by ``d = r' * h / H`` (the photogrammetry textbook relation
+``d = r h / H``, ``r`` measured to the displaced image point; e.g. Wolf, Dewitt & Wilkinson,
+*Elements of Photogrammetry*, chapter on vertical photographs). Seen from the other side,
+ortho pixel ``P`` shows the surface point ``Q = P - (P - N) * h(Q) / H``, found here by a
+short fixed-point iteration on the table height ``h(Q)``. ``ortho.relief_height_fraction``
+is the share of the table height the ortho's surface model misses: 1 for an ortho built on
+a ground-level model, 0 for a true ortho (the default), between for a smoothed surface
+model. Where neighbouring frames meet, the displacement jumps: edges are doubled or cut.
+
+**Vignetting.** The irradiance on the focal plane falls off as ``cos^4(theta)`` with the
+angle ``theta`` off the optical axis (the cosine-fourth law of radiometric optics);
+radiometric calibration removes most of it. ``camera.vignetting`` is the share left:
+the sensor radiance is multiplied by ``1 - vignetting * (1 - cos^4 theta)``, with
+``tan theta = r / H`` for a nadir camera.
+
+**Misaligned frames.** A seam rectangle (``distractors.seams``) may also be shifted by a
+few centimetres (``distractors.seam_shift_m``): inside it the mosaic shows the scene
+``shift`` metres away, so edges crossing the seam's border are doubled or cut.
+"""
+from __future__ import annotations
+
+import numpy as np
+from scipy.spatial import cKDTree
+
+__all__ = ["FrameLookup", "relief_source", "vignetting_factor"]
+
+
+class FrameLookup:
+    """Nadir point of the frame an ortho pixel comes from (nearest frame centre).
+
+    Parameters
+    ----------
+    centres : ndarray (n, 2)
+        Frame centres (nadir points) in the projected CRS [m].
+    """
+
+    def __init__(self, centres):
+        self.centres = np.asarray(centres, float)
+        self._tree = cKDTree(self.centres)
+
+    def nadir(self, x, y):
+        """Nadir (x, y) of the frame kept for each point [m]."""
+        x = np.asarray(x, float)
+        _, k = self._tree.query(np.stack([x.ravel(), np.asarray(y, float).ravel()], axis=1))
+        c = self.centres[k]
+        return c[:, 0].reshape(x.shape), c[:, 1].reshape(x.shape)
+
+
+def relief_source(px, py, nx, ny, height, altitude_m: float, starts=(1.0,), n_iter: int = 4, tol_m: float = 0.02):
+    """Surface point shown by ortho pixels under relief displacement [m].
+
+    Parameters
+    ----------
+    px, py : ndarray
+        Ortho pixel centres (ground level) [m].
+    nx, ny : ndarray
+        Nadir of the frame each pixel comes from [m].
+    height : callable
+        ``height(x, y)`` -> height above the ground of the surface the ortho's model misses
+        (0 off raised objects) [m].
+    altitude_m : float
+        Camera height above the ground [m].
+    starts : sequence of float
+        Heights to start the fixed-point search from, highest first (the highest surface a
+        ray meets hides what lies below it) [m].
+
+    Returns
+    -------
+    qx, qy : ndarray
+        The surface point seen (``Q = P - (P - N) * h(Q) / H``; ``P`` itself where the ray
+        meets no raised surface) [m].
+    h : ndarray
+        Its height [m] (0 where the pixel sees the ground).
+    """
+    px = np.asarray(px, float)
+    py = np.asarray(py, float)
+    ex, ey = (px - nx) / altitude_m, (py - ny) / altitude_m
+    found = np.zeros(px.shape, bool)
+    out = np.zeros(px.shape)
+    for h0 in starts:
+        alive = ~found
+        if not alive.any():
+            break
+        h = np.full(px.shape, float(h0))
+        for _ in range(n_iter):
+            hq = height(px - ex * h, py - ey * h)
+            alive &= hq > 0
+            h = np.where(alive, hq, h)
+        hq = height(px - ex * h, py - ey * h)
+        conv = alive & (np.abs(hq - h) < tol_m)
+        out[conv] = h[conv]
+        found |= conv
+    return px - ex * out, py - ey * out, out
+
+
+def vignetting_factor(r_m, altitude_m: float, residual: float):
+    """Sensor radiance factor of residual vignetting at ground distance ``r_m`` from the nadir [-].
+
+    ``1 - residual * (1 - cos^4 theta)``, ``tan theta = r / H`` (cosine-fourth law).
+    """
+    r = np.asarray(r_m, float)
+    cos2 = altitude_m ** 2 / (altitude_m ** 2 + r ** 2)
+    return 1.0 - residual * (1.0 - cos2 ** 2)
