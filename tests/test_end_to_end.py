@@ -59,7 +59,7 @@ def test_detection_scores(scores):
     # this scenario: 6 misses in 527 defective modules, 9 false modules in 530 findings). A
     # flight fails when its misses would occur at most 1 % of the time at the target rate
     # (n = 50: more than 7 misses): a detector at the target fails on fewer than 1 seed in 100,
-    # one missing 15 % of the defects on about half the seeds, 20 % on nine in ten. The weak
+    # one missing 15 % of the defects on about half the seeds, 20 % on four in five. The weak
     # classes (PID modules far from the negative end, open modules at a seam's edge, PID at
     # a seam's edge) are tested as rates over 20 tables in tests/test_classify.py.
     m = scores["module"]
