@@ -33,7 +33,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.spatial import cKDTree
 
-__all__ = ["FrameLookup", "relief_source", "vignetting_factor"]
+__all__ = ["FrameLookup", "relief_image", "relief_source", "vignetting_factor"]
 
 
 class FrameLookup:
@@ -102,6 +102,40 @@ def relief_source(px, py, nx, ny, height, altitude_m: float, starts=(1.0,), n_it
         out[conv] = h[conv]
         found |= conv
     return px - ex * out, py - ey * out, out
+
+
+def relief_image(qx, qy, height, altitude_m, lookup: FrameLookup, n_iter: int = 4):
+    """Where surface points at ``height`` above the ground land in the ortho [m].
+
+    The inverse of :func:`relief_source`: ``P = N + (Q - N) * H / (H - h)``, with ``N`` the
+    nadir of the frame the ortho keeps at ``P`` (found by a few fixed-point steps from the
+    frame nearest ``Q``; at a frame border the point may land in either frame, as an edge
+    of the ortho is doubled or cut there).
+
+    Parameters
+    ----------
+    qx, qy : ndarray
+        Surface points (their map position) [m].
+    height : ndarray or float
+        Their height above the ground that the ortho's surface model misses [m].
+    altitude_m : ndarray or float
+        Camera height above the ground there [m].
+    lookup : FrameLookup
+        The frames' nadir points.
+
+    Returns
+    -------
+    px, py : ndarray
+        The ortho positions [m].
+    """
+    qx = np.asarray(qx, float)
+    qy = np.asarray(qy, float)
+    k = np.asarray(altitude_m, float) / (np.asarray(altitude_m, float) - np.asarray(height, float))
+    px, py = qx, qy
+    for _ in range(n_iter):
+        nx, ny = lookup.nadir(px, py)
+        px, py = nx + (qx - nx) * k, ny + (qy - ny) * k
+    return px, py
 
 
 def vignetting_factor(r_m, altitude_m: float, residual: float):
