@@ -59,6 +59,7 @@ def test_draws_resolve_cells_as_the_pipeline_requires(family):
         h = sc["flight"]["altitude_m"]
         assert 25.0 <= h <= 100.0
         assert min(abs(h - gsd * f / 12e-6) for f in (0.009, 0.013, 0.019, 0.025)) <= 0.05
+        assert 7.0 <= sc["camera"]["time_constant_ms"] <= 14.0  # microbolometers (common practice)
         cuts.add(mod["half_cut"])
     if family == "any":
         assert cuts == {True, False}

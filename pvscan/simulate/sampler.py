@@ -33,7 +33,8 @@ Ranges (uniform unless said otherwise; "common practice" unless a source is name
   is 2.9-5.2 cm on full cells and 1.6-2.9 cm on half-cut cells; a 640 x 512 px sensor of 12 um
   pitch behind a 9, 13, 19 or 25 mm lens, the one (drawn among those that fit) that puts the
   flight 25-100 m above the modules (``altitude = GSD * focal length / pitch``, the pinhole
-  camera; common practice for thermal mapping flights); point spread 0.4-1.0 px,
+  camera; common practice for thermal mapping flights); detector time constant 7-14 ms
+  (motion blur over 4 m/s x the time constant); point spread 0.4-1.0 px,
   NETD 0.03-0.08 K, band 7.5-13.5 or 8-14 um; export emissivity 1.0 or 0.95.
 - **distractors**: 0-1 cloud shadows, 0-3 sky reflections, 0-2 mosaic seams, 0-1 hot objects.
 - **defects**: every pattern 0-2 times (open string and PID 0-1 strings), at least one defect.
@@ -81,6 +82,9 @@ PIXEL_PITCH_M = 12e-6
 FOCAL_LENGTHS_M = (0.009, 0.013, 0.019, 0.025)
 #: Flight height above the modules [m] (common practice for mapping flights over plants).
 ALTITUDE_M = (25.0, 100.0)
+#: Thermal time constant of the microbolometer [ms] (common practice: 7-15 ms): at the
+#: sampler's 4 m/s the image trails 3-6 cm behind the travel (motion blur).
+TIME_CONSTANT_MS = (7.0, 14.0)
 
 
 def cell_edge_m(module: dict) -> float:
@@ -274,8 +278,9 @@ def draw_scenario(seed: int, family: str = "any") -> dict:
     k = u2()
     relief = 0.0 if k < 0.45 else (1.0 if k > 0.85 else round(float(u2(0.05, 0.3)), 3))
     distractors["seam_shift_m"] = [0.02, round(float(u2(0.02, 0.12)), 3)]
-    altitude_m = _altitude_m(np.random.default_rng([int(seed), 20260614, FAMILIES.index(family), 3]),
-                             camera["gsd_m"])
+    rng3 = np.random.default_rng([int(seed), 20260614, FAMILIES.index(family), 3])
+    altitude_m = _altitude_m(rng3, camera["gsd_m"])
+    camera["time_constant_ms"] = round(float(rng3.uniform(*TIME_CONSTANT_MS)), 1)
     return {
         "site": {"name": name, "lon": round(lon, 5), "lat": round(lat, 5)},
         "flight": {"start": when.isoformat(), "id": f"random-{family}-{int(seed)}", "speed_m_s": 4.0,
