@@ -219,7 +219,10 @@ BASE = {"site": {"name": "Property field (invented)"},
 def broken_manifests(draw) -> tuple[dict, str]:
     sec, key, spec = draw(st.sampled_from(_keys()))
     data = {s: dict(v) for s, v in BASE.items()}
-    data[sec][key] = draw(_invalid_values(spec))
+    values = _invalid_values(spec)
+    if (sec, key) == ("ortho", "nodata"):  # NaN is a valid nodata value of float GeoTIFFs
+        values = values.filter(lambda v: not (isinstance(v, float) and math.isnan(v)))
+    data[sec][key] = draw(values)
     return data, f"{sec}.{key}"
 
 
