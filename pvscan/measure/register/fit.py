@@ -277,8 +277,9 @@ def _resolve_pitch(orthos, modules, reg: Registration, cfg: Mapping, ident: Plac
     Rows of modules are periodic: the placement used and the same placement one module
     pitch along or across the table rows put footprints on modules everywhere but at the
     table ends. Each such alternative is judged on its own sample (footprints read where it
-    puts them); an alternative whose evidence is lower replaces the placement (repeated,
-    so two pitches off are undone too). The decision is recorded in
+    puts them); an alternative whose evidence is below ``pitch_move_ratio`` times the
+    placement's replaces it (repeated up to ``pitch_max_steps``, so two pitches off are undone
+    too). The decision is recorded in
     ``reg.evidence["pitch"]``: the lowest ratio evidence(alternative) / evidence(used) and
     ``decisive`` when it exceeds ``1 + pitch_min_margin``. An indecisive decision leaves
     the placement in use but fails the ``registration`` validity check (a finding may sit
@@ -297,7 +298,8 @@ def _resolve_pitch(orthos, modules, reg: Registration, cfg: Mapping, ident: Plac
         for v in steps:
             p = cur.moved(tx=cur.tx + float(v[0]), ty=cur.ty + float(v[1]))
             alts.append((v, _judge(_sample_at(orthos, modules, p, cfg), ident, cfg, sun, expected_c)))
-        better = [(v, q) for v, q in alts if q["ok"] and _num(q["evidence"]) < _num(q_cur["evidence"])]
+        move_below = float(cfg["pitch_move_ratio"]) * _num(q_cur["evidence"])
+        better = [(v, q) for v, q in alts if q["ok"] and _num(q["evidence"]) < move_below]
         if not better or len(reg.evidence.get("pitch_moves", [])) >= rounds:
             break
         v, q = min(better, key=lambda t: _num(t[1]["evidence"]))
