@@ -182,6 +182,104 @@ def test_rendered_relief_displacement_puts_table_points_where_the_rays_meet_the_
     assert n_checked >= scene.field.n_modules // 2
 
 
+@pytest.mark.parametrize("fraction", [1.0, 0.3])
+def test_truth_ortho_polygons_are_where_the_ortho_shows_the_modules(fraction):
+    # truth_ortho.geojson holds the modules as they stand in the ortho: with relief
+    # displacement, every point inside a module's written polygon (bilinear in its corners,
+    # u, v in 0.1..0.9) is an ortho pixel whose ray (the renderer's relief_source, the textbook
+    # d = r h / H) meets that same module. Checked on the modules whose corners lie in one
+    # frame's part of the mosaic (a frame border cuts or doubles a module there); the
+    # undisplaced footprints fail the same check on raised tables (so the check can fail).
+    from pvscan.simulate.writers import ortho_corners
+
+    scene = _scene(ortho={"relief_height_fraction": fraction}, array={"mount_height_m": 1.5, "tilt_deg": 30.0},
+                   distractors={"seams": 0})
+    fld = scene.field
+    shown = ortho_corners(scene)
+    true = np.asarray(fld.modules["corners"], float)
+    uu, vv = np.meshgrid(np.linspace(0.1, 0.9, 9), np.linspace(0.1, 0.9, 9))
+    uu, vv = uu.ravel(), vv.ravel()
+
+    def inside_share(corners, i):
+        c = corners[i]  # corners 0-1-2-3 around the module
+        p = ((1 - uu)[:, None] * (1 - vv)[:, None] * c[0] + uu[:, None] * (1 - vv)[:, None] * c[1]
+             + uu[:, None] * vv[:, None] * c[2] + (1 - uu)[:, None] * vv[:, None] * c[3])
+        sx, sy = scene._seen_points(0, 0, p[:, 0][None, :], p[:, 1][None, :])
+        idx = fld.locate(sx.ravel(), sy.ravel())[0]
+        return float(np.mean(idx == i))
+
+    nx, ny = scene.frames.nadir(shown[..., 0], shown[..., 1])
+    one_frame = [i for i in range(fld.n_modules) if np.ptp(nx[i]) == 0.0 and np.ptp(ny[i]) == 0.0]
+    assert len(one_frame) >= fld.n_modules // 3
+    moved = np.max(np.hypot(*(shown - true).transpose(2, 0, 1)), axis=1)
+    assert np.median(moved) > 0.1 * fraction  # the tables stand 1.5-2.6 m high
+    written = [inside_share(shown, i) for i in one_frame]
+    assert min(written) == 1.0
+    drawn = [inside_share(true, i) for i in one_frame]
+    assert np.mean(drawn) < 0.995
+
+
+@pytest.mark.parametrize("angle_deg", [0.0, 180.0, 30.0, 117.0])
+@pytest.mark.parametrize("sigma_px,trail_px", [(0.6, 0.8), (0.8, 2.5), (1.0, 0.3)])
+def test_blurred_edge_is_the_exponentially_modified_gaussian(angle_deg, sigma_px, trail_px):
+    # A straight edge across the travel, blurred by the lens (Gaussian PSF, sigma) and trailed
+    # by the detector's time constant (exponential of length L behind the motion): the edge
+    # spread function is the CDF of a normal plus an exponential variable, the exponentially
+    # modified Gaussian (scipy.stats.exponnorm, K = L / sigma); without the trail, the normal
+    # CDF (scipy.stats.norm). Rastered 8x finer than the camera's pixels so the raster's own
+    # sampling stays under the 0.015 tolerance; a trail pointing the wrong way is off by
+    # 0.2-0.6.
+    from scipy import ndimage
+    from scipy.stats import exponnorm, norm
+
+    from pvscan.simulate.optics import smear
+
+    f = 8
+    sigma, trail = sigma_px * f, trail_px * f
+    d = np.array([math.cos(math.radians(angle_deg)), math.sin(math.radians(angle_deg))])
+    n = 401
+    rows, cols = np.mgrid[0:n, 0:n]
+    p = (cols + 0.5) * d[0] - (rows + 0.5) * d[1]  # position along the travel [fine px]
+    c = float(np.median(p)) + 0.37
+    lens = ndimage.gaussian_filter((p >= c).astype(float), sigma, mode="nearest")
+    out = smear(lens, trail, d)
+    inner = (np.minimum(rows, cols) > 120) & (np.maximum(rows, cols) < n - 120)
+    assert np.abs(lens - norm.cdf((p - c) / sigma))[inner].max() < 0.015
+    assert np.abs(out - exponnorm.cdf(p - c, trail / sigma, scale=sigma))[inner].max() < 0.015
+    wrong = smear(lens, trail, -d)
+    assert np.abs(wrong - exponnorm.cdf(p - c, trail / sigma, scale=sigma))[inner].max() > 0.1
+
+
+def test_rendered_motion_blur_trails_behind_each_frames_travel():
+    # With a detector time constant, each ortho pixel is the unblurred band radiance trailed
+    # behind the travel of the frame kept there (speed x time constant): frames of a
+    # serpentine flight alternate direction, and each pixel matches its own frame's trail
+    # (1e-9 relative) and not the other (the trail is 0.9 px: 3 m/s x 12 ms on 4 cm pixels).
+    from pvscan.simulate.optics import smear
+
+    kw = dict(camera={"gsd_m": 0.04, "time_constant_ms": 0.0}, flight={"speed_m_s": 3.0, "frame_px": [320, 256]},
+              distractors={"seams": 0})
+    plain = _scene(**kw)
+    kw["camera"] = {"gsd_m": 0.04, "time_constant_ms": 12.0}
+    moving = _scene(**kw)
+    assert moving.motion_trail_px == pytest.approx(3.0 * 0.012 / 0.04)
+    band = tuple(plain.sc["camera"]["band_um"])
+    pad = 12
+    r0, c0, nr, nc = pad, pad, plain.height - 2 * pad, plain.width - 2 * pad  # the whole ortho
+    base = radiance.band_radiance(plain.render_block(r0 - pad, c0 - pad, nr + 2 * pad, nc + 2 * pad) + 273.15, band)
+    got = radiance.band_radiance(moving.render_block(r0, c0, nr, nc) + 273.15, band)
+    h0 = moving.plan.headings[0]
+    fwd_img = smear(base, moving.motion_trail_px, h0)[pad:-pad, pad:-pad]
+    back_img = smear(base, moving.motion_trail_px, -h0)[pad:-pad, pad:-pad]
+    x, y = moving.pixel_centres(r0, c0, nr, nc)
+    fwd = (moving.plan.headings[moving.frames.index(x, y)] @ h0) > 0
+    ok = np.isfinite(got) & np.isfinite(fwd_img) & np.isfinite(back_img)
+    assert fwd[ok].any() and (~fwd[ok]).any()  # both directions in the block
+    expect = np.where(fwd, fwd_img, back_img)
+    np.testing.assert_allclose(got[ok], expect[ok], rtol=1e-9)
+    assert np.abs(np.where(fwd, back_img, fwd_img) - got)[ok].max() > 1e-3 * np.abs(got[ok]).max()
+
+
 def test_vignetting_follows_the_cosine_fourth_law():
     # cos^4 law: the sensor radiance falls by residual * (1 - cos^4 theta), cos theta = H / |C - P|
     # from the 3-D distance to the camera of the frame kept (nearest frame centre); the rendered

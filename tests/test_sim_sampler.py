@@ -37,6 +37,34 @@ def test_draws_are_valid_scenarios_within_acquisition_limits(family):
         assert any(v for k, v in sc["defects"].items() if k != "min_spacing_modules")
 
 
+@pytest.mark.parametrize("family", FAMILIES)
+def test_draws_resolve_cells_as_the_pipeline_requires(family):
+    # A detailed inspection needs at least [conditions] min_px_per_cell pixels along a cell's
+    # edge (IEC TS 62446-3, from memory; the pipeline's own limit, read from its settings):
+    # every draw, full or half-cut cells, meets it. The cell edge is computed here from the
+    # datasheet (width / 6 across; length / 12 or / 24 along, half-cut cells doubled), the
+    # flight height from the pinhole camera: H = GSD * f / pitch with a 12 um pitch and one of
+    # the sampler's lenses (common practice), 25-100 m above the modules.
+    from pvscan.io.settings import load_pipeline, section
+
+    limit = float(section(load_pipeline(), "conditions")["min_px_per_cell"])
+    assert limit >= 3.0
+    cuts = set()
+    for sc in _draws(family, 12):
+        mod = sc["module"]
+        along = mod["cells_along"] * (2 if mod["half_cut"] else 1)
+        edge = min(mod["width_m"] / mod["cells_across"], mod["length_m"] / along)
+        gsd = sc["camera"]["gsd_m"]
+        assert limit < edge / gsd <= 6.05  # 6 px drawn, GSD rounded down to 0.1 mm
+        h = sc["flight"]["altitude_m"]
+        assert 25.0 <= h <= 100.0
+        assert min(abs(h - gsd * f / 12e-6) for f in (0.009, 0.013, 0.019, 0.025)) <= 0.05
+        assert 7.0 <= sc["camera"]["time_constant_ms"] <= 14.0  # microbolometers (common practice)
+        cuts.add(mod["half_cut"])
+    if family == "any":
+        assert cuts == {True, False}
+
+
 def test_same_seed_same_draw_and_families_differ():
     assert draw_scenario(SEED, "any") == draw_scenario(SEED, "any")
     anys = _draws("any", 30)

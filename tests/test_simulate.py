@@ -476,6 +476,26 @@ def test_more_defects_than_room_warns():
     assert 0 < len(scene.defects) < 40
 
 
+def test_string_defects_find_a_string_on_a_small_plant(seed):
+    # TINY has 4 tables of two strings of 6 modules; four spot defects, each keeping its
+    # table's neighbouring columns free, can block every string before the PID and open
+    # strings are placed: they are then placed first, from the same random state, and every
+    # defect is there (no warning; warnings are errors in this suite). Counted against the
+    # scenario: 4 modules + a whole string of 6 + a PID run of 2-3 modules from the string's
+    # negative end.
+    sc = dict(TINY, defects={"hot_cell": 1, "junction_box": 1, "open_module": 2, "open_string": 1, "pid": 1,
+                             "pid_modules": [2, 3], "min_spacing_modules": 1})
+    for k in range(4):
+        scene = build_scene(sc, seed + k)
+        kinds = [d.kind for d in scene.defects]
+        assert kinds.count("hot_cell") == 1 and kinds.count("junction_box") == 1 and kinds.count("open_module") == 2
+        assert kinds.count("open_string") == 6 and 2 <= kinds.count("pid") <= 3
+        m = scene.field.modules
+        pid = sorted(m["string_index"][d.module] for d in scene.defects if d.kind == "pid")
+        assert pid == list(range(1, len(pid) + 1))
+        assert len({d.module for d in scene.defects}) == len(scene.defects)
+
+
 def test_module_spread_scales_with_the_rise_over_the_air():
     # Physics: a module cooled by U + dU runs -(T - T_air) * dU / U off its neighbours
     # (Faiman heat balance, D. Faiman 2008), so the thermal spread shrinks with G / U(v);

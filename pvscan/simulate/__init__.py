@@ -11,7 +11,8 @@ and defects; see ``demo_site/scenario.toml``) into a flight folder:
 - ``weather.csv`` and ``frames.geojson`` when the conditions vary during the flight;
 - ``truth.geojson`` (per module, geometry as the layout draws it) and ``truth.json`` (layout
   offset and ``layout_error``, scenario, seed, defects);
-- ``truth_ortho.geojson``: the true module polygons as they stand in the ortho (ortho CRS);
+- ``truth_ortho.geojson``: the true module polygons as they stand in the ortho (ortho CRS;
+  displaced by relief when the ortho's surface model misses the tables' height);
 - ``preview.png``: a quick-look of the ortho.
 
 The physics is documented in :mod:`pvscan.simulate.scene` and

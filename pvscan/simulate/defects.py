@@ -197,13 +197,33 @@ def place_defects(rng, sc: dict, fld, geom: ModuleGeometry) -> list[Defect]:
 
     Defects never share a module, and two defect instances in the same table are at least
     ``defects.min_spacing_modules`` columns apart, so every defect has healthy neighbours
-    for its local reference.
+    for its local reference. The defects are placed in the order of :data:`DEFECT_KINDS`;
+    when that leaves an open string or PID string without a free string (a small plant with
+    few strings), the placement starts again from the same random state with the string
+    defects first (the largest items first), so every plant that can hold them gets them.
 
     Returns
     -------
     list of Defect
         One entry per affected module (an open string gives one entry per module).
     """
+    state = rng.bit_generator.state
+    out, short = _place(rng, sc, fld, geom, DEFECT_KINDS)
+    if any(k in _STRING_KINDS for k in short):
+        rng.bit_generator.state = state
+        order = tuple(k for k in DEFECT_KINDS if k in _STRING_KINDS) + \
+            tuple(k for k in DEFECT_KINDS if k not in _STRING_KINDS)
+        out, short = _place(rng, sc, fld, geom, order)
+    for kind, what in short.items():
+        warnings.warn(f"defects.{kind}: no free {what} left; placed fewer than asked", PvscanWarning, stacklevel=2)
+    return out
+
+
+_STRING_KINDS = ("open_string", "pid")
+
+
+def _place(rng, sc: dict, fld, geom: ModuleGeometry, order) -> tuple[list[Defect], dict[str, str]]:
+    """Defects placed in ``order`` of kinds; also the kinds placed fewer than asked."""
     dcfg = sc["defects"]
     gsd = sc["camera"]["gsd_m"]
     m = fld.modules
@@ -212,6 +232,7 @@ def place_defects(rng, sc: dict, fld, geom: ModuleGeometry) -> list[Defect]:
     spacing = int(dcfg["min_spacing_modules"])
     key_table = m["trow"] * fld.n_tables + m["table"]
     out: list[Defect] = []
+    short: dict[str, str] = {}
     group = 0
 
     def block(idxs):
@@ -230,13 +251,12 @@ def place_defects(rng, sc: dict, fld, geom: ModuleGeometry) -> list[Defect]:
         return idx[np.argsort(m["string_index"][idx])]
 
     nd = geom.bypass_diodes
-    for kind in DEFECT_KINDS:
+    for kind in order:
         for _ in range(int(dcfg[kind])):
-            if kind in ("open_string", "pid"):
+            if kind in _STRING_KINDS:
                 strings = [s for s in np.unique(m["string_id"]) if not blocked[string_members(s)].any()]
                 if not strings:
-                    warnings.warn(f"defects.{kind}: no free string left; placed fewer than asked",
-                                  PvscanWarning, stacklevel=3)
+                    short[kind] = "string"
                     break
                 members = string_members(strings[int(rng.integers(len(strings)))])
                 if kind == "open_string":
@@ -260,8 +280,7 @@ def place_defects(rng, sc: dict, fld, geom: ModuleGeometry) -> list[Defect]:
                 continue
             i = free_module()
             if i is None:
-                warnings.warn(f"defects.{kind}: no free module left; placed fewer than asked",
-                              PvscanWarning, stacklevel=3)
+                short[kind] = "module"
                 break
             p: dict = {}
             if kind == "bypassed_substring":
@@ -292,7 +311,7 @@ def place_defects(rng, sc: dict, fld, geom: ModuleGeometry) -> list[Defect]:
             group += 1
     for d in out:
         d.boxes = _boxes_of(d, geom, gsd)
-    return out
+    return out, short
 
 
 def heat_integral(d: Defect, geom: ModuleGeometry, dt_open: float, n: int = 400) -> float:

@@ -30,11 +30,14 @@ class FlightPlan:
         Seconds since the start of the flight [s].
     duration_s : float
         Time of the last frame [s].
+    headings : ndarray (n, 2), optional
+        Unit vector (east, north) of the drone's travel when each frame was taken.
     """
 
     corners: np.ndarray
     times_s: np.ndarray
     duration_s: float
+    headings: np.ndarray | None = None
 
     @property
     def centres(self) -> np.ndarray:
@@ -76,7 +79,7 @@ def plan_flight(fl: dict, extent, gsd: float, heading=(1.0, 0.0)) -> FlightPlan:
     ps = pmin + along / 2 + np.arange(n_frames) * step_along
     local = np.array([[-along / 2, -across / 2], [along / 2, -across / 2], [along / 2, across / 2],
                       [-along / 2, across / 2]])
-    corners, times = [], []
+    corners, times, travel = [], [], []
     t = 0.0
     for k in range(n_lines):
         qc = qmax - across / 2 - k * step_lines
@@ -87,9 +90,10 @@ def plan_flight(fl: dict, extent, gsd: float, heading=(1.0, 0.0)) -> FlightPlan:
             pq = local + np.array([pc, qc])
             corners.append(pq[:, :1] * h + pq[:, 1:] * q_axis)
             times.append(t)
+            travel.append(h if k % 2 == 0 else -h)
         t += fl["turn_s"] + step_lines / fl["speed_m_s"]
     times_arr = np.asarray(times)
-    return FlightPlan(np.asarray(corners), times_arr, float(times_arr.max()))
+    return FlightPlan(np.asarray(corners), times_arr, float(times_arr.max()), np.asarray(travel))
 
 
 @dataclass

@@ -24,6 +24,15 @@ radiometric calibration removes most of it. ``camera.vignetting`` is the share l
 the sensor radiance is multiplied by ``1 - vignetting * (1 - cos^4 theta)``, with
 ``tan theta = r / H`` for a nadir camera.
 
+**Motion blur.** A microbolometer's pixel answers a change of the scene like a first-order
+low-pass with the detector's thermal time constant ``tau`` (common practice: 7-15 ms for
+uncooled microbolometers). Flying at ``v`` along the unit vector ``d``, the pixel imaging
+ground point ``g`` at time ``t`` imaged ``g - s d`` at ``t - s / v``, so the image is the scene
+convolved with a one-sided exponential trail behind the motion: ``(1 / L) exp(-s / L)``,
+``s >= 0``, of length ``L = v tau`` (:func:`motion_kernel`); the lens's Gaussian
+point-spread function acts on the same band radiance, so an edge across the track spreads as
+the exponentially modified Gaussian.
+
 **Misaligned frames.** A seam rectangle (``distractors.seams``) may also be shifted by a
 few centimetres (``distractors.seam_shift_m``): inside it the mosaic shows the scene
 ``shift`` metres away, so edges crossing the seam's border are doubled or cut.
@@ -33,7 +42,7 @@ from __future__ import annotations
 import numpy as np
 from scipy.spatial import cKDTree
 
-__all__ = ["FrameLookup", "relief_source", "vignetting_factor"]
+__all__ = ["FrameLookup", "motion_kernel", "relief_image", "relief_source", "smear", "vignetting_factor"]
 
 
 class FrameLookup:
@@ -55,6 +64,12 @@ class FrameLookup:
         _, k = self._tree.query(np.stack([x.ravel(), np.asarray(y, float).ravel()], axis=1))
         c = self.centres[k]
         return c[:, 0].reshape(x.shape), c[:, 1].reshape(x.shape)
+
+    def index(self, x, y):
+        """Index of the frame kept for each point [-]."""
+        x = np.asarray(x, float)
+        _, k = self._tree.query(np.stack([x.ravel(), np.asarray(y, float).ravel()], axis=1))
+        return k.reshape(x.shape)
 
 
 def relief_source(px, py, nx, ny, height, altitude_m: float, starts=(1.0,), n_iter: int = 4, tol_m: float = 0.02):
@@ -102,6 +117,90 @@ def relief_source(px, py, nx, ny, height, altitude_m: float, starts=(1.0,), n_it
         out[conv] = h[conv]
         found |= conv
     return px - ex * out, py - ey * out, out
+
+
+def relief_image(qx, qy, height, altitude_m, lookup: FrameLookup, n_iter: int = 4):
+    """Where surface points at ``height`` above the ground land in the ortho [m].
+
+    The inverse of :func:`relief_source`: ``P = N + (Q - N) * H / (H - h)``, with ``N`` the
+    nadir of the frame the ortho keeps at ``P`` (found by a few fixed-point steps from the
+    frame nearest ``Q``; at a frame border the point may land in either frame, as an edge
+    of the ortho is doubled or cut there).
+
+    Parameters
+    ----------
+    qx, qy : ndarray
+        Surface points (their map position) [m].
+    height : ndarray or float
+        Their height above the ground that the ortho's surface model misses [m].
+    altitude_m : ndarray or float
+        Camera height above the ground there [m].
+    lookup : FrameLookup
+        The frames' nadir points.
+
+    Returns
+    -------
+    px, py : ndarray
+        The ortho positions [m].
+    """
+    qx = np.asarray(qx, float)
+    qy = np.asarray(qy, float)
+    k = np.asarray(altitude_m, float) / (np.asarray(altitude_m, float) - np.asarray(height, float))
+    px, py = qx, qy
+    for _ in range(n_iter):
+        nx, ny = lookup.nadir(px, py)
+        px, py = nx + (qx - nx) * k, ny + (qy - ny) * k
+    return px, py
+
+
+def motion_kernel(length_px: float, direction, step_px: float = 0.05, reach: float = 7.0) -> np.ndarray:
+    """Raster kernel of the exponential trail of motion blur, normalised to sum 1.
+
+    Parameters
+    ----------
+    length_px : float
+        Trail length ``L = v tau / GSD`` [px].
+    direction : (float, float)
+        Unit vector (east, north) of the travel; the trail points the other way.
+    step_px : float
+        Sampling step along the trail (each sample spread bilinearly on the raster) [px].
+    reach : float
+        The trail is cut at ``reach * L`` (``exp(-7)``: 0.1 % of the weight) [-].
+
+    Returns
+    -------
+    ndarray (2 r + 1, 2 r + 1)
+        Convolution kernel centred on the middle pixel (rows run south, columns east).
+    """
+    ln = float(length_px)
+    if ln <= 0:
+        return np.ones((1, 1))
+    r = int(np.ceil(reach * ln)) + 1
+    k = np.zeros((2 * r + 1, 2 * r + 1))
+    s = (np.arange(int(np.ceil(reach * ln / step_px))) + 0.5) * step_px
+    w = np.exp(-s / ln)  # weight of each sample of the trail (the step is constant)
+    dx, dy = float(direction[0]), float(direction[1])
+    # a convolution kernel: out(g) = sum k(j) in(g - j), so the trail's samples sit at
+    # j = +s d (the scene at g - s d); rows grow southwards
+    col = r + s * dx
+    row = r - s * dy
+    c0, r0 = np.floor(col).astype(int), np.floor(row).astype(int)
+    fc, fr = col - c0, row - r0
+    for ddr, ddc, ww in ((0, 0, (1 - fr) * (1 - fc)), (0, 1, (1 - fr) * fc), (1, 0, fr * (1 - fc)), (1, 1, fr * fc)):
+        np.add.at(k, (r0 + ddr, c0 + ddc), w * ww)
+    return k / k.sum()
+
+
+def smear(image: np.ndarray, length_px: float, direction) -> np.ndarray:
+    """``image`` convolved with :func:`motion_kernel` (FFT; edges: nearest value repeated)."""
+    from scipy.signal import fftconvolve
+
+    if length_px <= 0:
+        return image
+    k = motion_kernel(length_px, direction)
+    r = k.shape[0] // 2
+    out = fftconvolve(np.pad(image, r, mode="edge"), k, mode="same")
+    return out[r:r + image.shape[0], r:r + image.shape[1]]
 
 
 def vignetting_factor(r_m, altitude_m: float, residual: float):

@@ -26,8 +26,16 @@ Ranges (uniform unless said otherwise; "common practice" unless a source is name
 - **ground**: hot (sunlit ground 15-30 K above the air at 1000 W/m2) or cold (-3..6 K) with
   equal odds (``cold_ground``: cold, ``tracker_hot_ground_noon``: 20-30 K); shade -3..4 K;
   texture 0.5-2 K; site-wide field 0-3 K.
-- **camera**: GSD 0.04-0.07 m, point spread 0.4-1.0 px, NETD 0.03-0.08 K, band 7.5-13.5 or
-  8-14 um; export emissivity 1.0 or 0.95.
+- **camera and altitude** within the resolution a detailed inspection needs (at least
+  ``[conditions] min_px_per_cell`` = 3 px along a cell edge, IEC TS 62446-3 from memory; common
+  practice flies for several pixels per cell): the ortho's pixels per cell edge (the shorter
+  edge: 0.173 m full cells, 0.095 m half-cut cells) 3.3-6 px, so the ground sampling distance
+  is 2.9-5.2 cm on full cells and 1.6-2.9 cm on half-cut cells; a 640 x 512 px sensor of 12 um
+  pitch behind a 9, 13, 19 or 25 mm lens, the one (drawn among those that fit) that puts the
+  flight 25-100 m above the modules (``altitude = GSD * focal length / pitch``, the pinhole
+  camera; common practice for thermal mapping flights); detector time constant 7-14 ms
+  (motion blur over 4 m/s x the time constant); point spread 0.4-1.0 px,
+  NETD 0.03-0.08 K, band 7.5-13.5 or 8-14 um; export emissivity 1.0 or 0.95.
 - **distractors**: 0-1 cloud shadows, 0-3 sky reflections, 0-2 mosaic seams, 0-1 hot objects.
 - **defects**: every pattern 0-2 times (open string and PID 0-1 strings), at least one defect.
 - **terrain** (own random stream, so the draws above stay as they were for a seed): level in
@@ -63,6 +71,43 @@ _MODULES = {  # invented datasheets: (pmax, width, length, voc, isc, half_cut)
     False: (410.0, 1.038, 2.094, 49.1, 10.6, False),
     True: (545.0, 1.134, 2.279, 49.6, 13.9, True),
 }
+
+
+#: Pixels of the ortho along a cell's shorter edge [px]: at least the 3 px of a detailed
+#: inspection (``[conditions] min_px_per_cell``, IEC TS 62446-3 from memory), with a margin.
+PX_PER_CELL = (3.3, 6.0)
+#: Sensor pixel pitch [m] and lens focal lengths [m] of the drawn thermal cameras (common
+#: practice for 640 x 512 px uncooled microbolometers).
+PIXEL_PITCH_M = 12e-6
+FOCAL_LENGTHS_M = (0.009, 0.013, 0.019, 0.025)
+#: Flight height above the modules [m] (common practice for mapping flights over plants).
+ALTITUDE_M = (25.0, 100.0)
+#: Thermal time constant of the microbolometer [ms] (common practice: 7-15 ms): at the
+#: sampler's 4 m/s the image trails 3-6 cm behind the travel (motion blur).
+TIME_CONSTANT_MS = (7.0, 14.0)
+
+
+def cell_edge_m(module: dict) -> float:
+    """Shorter edge of a cell [m]: ``width / cells_across`` or ``length / cells_along`` (doubled
+    along the length for half-cut cells)."""
+    along = int(module["cells_along"]) * (2 if module.get("half_cut") else 1)
+    return min(float(module["width_m"]) / int(module["cells_across"]), float(module["length_m"]) / along)
+
+
+def _gsd_m(module: dict, px_per_cell: float) -> float:
+    """Ground sampling distance giving ``px_per_cell`` pixels along the cell's shorter edge
+    [m/px], rounded down to 0.1 mm (never fewer pixels per cell than drawn)."""
+    return math.floor(cell_edge_m(module) / px_per_cell * 1e4) / 1e4
+
+
+def _altitude_m(rng, gsd_m: float) -> float:
+    """Height above the modules of a lens that gives ``gsd_m``: ``GSD * f / pitch`` (pinhole
+    camera), for a focal length drawn among those that keep it within :data:`ALTITUDE_M`."""
+    heights = [gsd_m * f / PIXEL_PITCH_M for f in FOCAL_LENGTHS_M]
+    fit = [h for h in heights if ALTITUDE_M[0] <= h <= ALTITUDE_M[1]]
+    if not fit:  # no lens fits: the nearest height within the range
+        fit = [min(max(h, ALTITUDE_M[0]), ALTITUDE_M[1]) for h in heights]
+    return round(float(fit[int(rng.integers(len(fit)))]), 1)
 
 
 def _sun(lat: float, lon: float, when: datetime) -> tuple[float, float]:
@@ -196,7 +241,8 @@ def draw_scenario(seed: int, family: str = "any") -> dict:
     conditions = {"poa_irradiance_w_m2": round(float(poa_w_m2), 1),
                   "ambient_c": round(float(u(5.0, 35.0)), 1), "wind_m_s": round(float(u(0.5, 6.0)), 2),
                   "relative_humidity_pct": round(float(u(20.0, 80.0)), 1), "varying": bool(u() < 1 / 3)}
-    camera = {"gsd_m": round(float(u(0.04, 0.07)), 3), "psf_sigma_px": round(float(u(0.4, 1.0)), 2),
+    px_per_cell = float(u(*PX_PER_CELL))
+    camera = {"gsd_m": _gsd_m(module, px_per_cell), "psf_sigma_px": round(float(u(0.4, 1.0)), 2),
               "netd_k": round(float(u(0.03, 0.08)), 3),
               "band_um": [7.5, 13.5] if u() < 0.5 else [8.0, 14.0]}
     export = {"emissivity": 1.0 if u() < 0.6 else 0.95}
@@ -232,9 +278,13 @@ def draw_scenario(seed: int, family: str = "any") -> dict:
     k = u2()
     relief = 0.0 if k < 0.45 else (1.0 if k > 0.85 else round(float(u2(0.05, 0.3)), 3))
     distractors["seam_shift_m"] = [0.02, round(float(u2(0.02, 0.12)), 3)]
+    rng3 = np.random.default_rng([int(seed), 20260614, FAMILIES.index(family), 3])
+    altitude_m = _altitude_m(rng3, camera["gsd_m"])
+    camera["time_constant_ms"] = round(float(rng3.uniform(*TIME_CONSTANT_MS)), 1)
     return {
         "site": {"name": name, "lon": round(lon, 5), "lat": round(lat, 5)},
-        "flight": {"start": when.isoformat(), "id": f"random-{family}-{int(seed)}", "speed_m_s": 4.0},
+        "flight": {"start": when.isoformat(), "id": f"random-{family}-{int(seed)}", "speed_m_s": 4.0,
+                   "altitude_m": altitude_m},
         "array": array, "module": module, "conditions": conditions, "ground": ground, "camera": camera,
         "export": export, "distractors": distractors, "defects": defects, "layout": layout,
         "ortho": {"margin_m": 5.0, "preview_px": 600, "relief_height_fraction": relief}, "terrain": terrain,

@@ -130,6 +130,7 @@ DEFAULTS: dict[str, Any] = {
         "band_um": [7.5, 13.5],
         "transmission": "auto",
         "vignetting": 0.0,
+        "time_constant_ms": 0.0,
     },
     "export": {
         "units": "celsius",

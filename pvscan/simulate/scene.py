@@ -32,7 +32,9 @@ Physics, in the order it is applied to a pixel:
    Planck band integrals, sharing no code with the pipeline).
 5. **Camera**: Gaussian point-spread function applied to the band radiance (the lens
    mixes radiance, not temperature); residual vignetting scales the sensor radiance
-   (cosine-fourth law, ``camera.vignetting``; :mod:`pvscan.simulate.optics`).
+   (cosine-fourth law, ``camera.vignetting``; :mod:`pvscan.simulate.optics`); the detector's
+   time constant trails the image behind the drone's travel (motion blur,
+   ``camera.time_constant_ms``).
 6. **Mosaic**: each pixel comes from the frame with the nearest centre; raised tables are
    displaced away from that frame's nadir when the ortho's surface model misses their height
    (``ortho.relief_height_fraction``); rectangular seams add a sharp step of 0.5-2 K to the
@@ -69,7 +71,7 @@ from pvscan.simulate.electrical import diode_module, faiman
 from pvscan.simulate.flightpath import plan_flight, weather_series
 from pvscan.simulate.geometry import build_field
 from pvscan.simulate.layout_error import layout_error
-from pvscan.simulate.optics import FrameLookup, relief_source, vignetting_factor
+from pvscan.simulate.optics import FrameLookup, relief_source, smear, vignetting_factor
 from pvscan.simulate.shading import RowShade, ground_beam_factor, shadow_geometry
 
 __all__ = ["Scene", "faiman", "GROUND", "GLASS", "FRAME", "OBJECT"]
@@ -204,6 +206,8 @@ class Scene:
         self.frames = FrameLookup(self.plan.centres)
         self.relief_fraction = float(sc["ortho"]["relief_height_fraction"])
         self.altitude_m = alt
+        #: length of the motion-blur trail, speed x detector time constant [px]
+        self.motion_trail_px = (float(sc["flight"]["speed_m_s"]) * float(cam["time_constant_ms"]) * 1e-3 / gsd)
 
         # modules
         mrng = np.random.default_rng([self.seed, 6])
@@ -468,13 +472,14 @@ class Scene:
         """
         cam = self.sc["camera"]
         sigma = float(cam["psf_sigma_px"])
-        halo = int(math.ceil(4 * sigma)) + 1 if sigma > 0 else 0
+        trail = self.motion_trail_px
+        halo = (int(math.ceil(4 * sigma)) + 1 if sigma > 0 else 0) + (int(math.ceil(7 * trail)) + 2 if trail > 0 else 0)
         x, y = self.pixel_centres(row0 - halo, col0 - halo, nrows + 2 * halo, ncols + 2 * halo)
         xs, ys = self._seen_points(row0 - halo, col0 - halo, x, y)
         scene = self.true_scene(xs, ys)
         app = np.asarray(self.apparent(scene), float)
         vig = float(cam["vignetting"])
-        if sigma > 0 or vig > 0:
+        if sigma > 0 or vig > 0 or trail > 0:
             # the lens mixes radiance, not temperature: blur the band radiance of the apparent
             # temperature (affine in the sensor radiance for any export emissivity); vignetting
             # scales the sensor radiance
@@ -482,6 +487,11 @@ class Scene:
             rad = radiance.band_radiance(app + _ZERO_C, band)
             if sigma > 0:
                 rad = ndimage.gaussian_filter(rad, sigma, mode="nearest")
+            if trail > 0:  # motion blur: the trail behind the travel of the frame kept there
+                k = self.frames.index(x, y)
+                fwd = (self.plan.headings[k] @ self.plan.headings[0]) > 0
+                h0 = self.plan.headings[0]
+                rad = np.where(fwd, smear(rad, trail, h0), smear(rad, trail, -h0))
             if vig > 0:
                 ex_eps = float(self.sc["export"]["emissivity"])
                 l_refl = radiance.band_radiance(float(self.sc["export"]["reflected_c"]) + _ZERO_C, band)

@@ -9,6 +9,8 @@ from pathlib import Path
 
 import numpy as np
 
+from pvscan.simulate.optics import relief_image
+
 __all__ = ["write_orthos", "write_layout", "write_manifest", "write_weather", "write_frames",
            "write_truth", "toml_dumps"]
 
@@ -198,14 +200,37 @@ def drawn_corners(scene) -> np.ndarray:
     return scene.layout_error.apply(m["corners"], m["trow"] * scene.field.n_tables + m["table"])
 
 
+def ortho_corners(scene) -> np.ndarray:
+    """Module corners where the ortho shows them, (n, 4, 2) in the ortho CRS [m]: the true
+    corners, displaced by relief when the ortho's surface model misses part of the tables'
+    height (``ortho.relief_height_fraction``; :func:`pvscan.simulate.optics.relief_image`)."""
+    corners = np.asarray(scene.field.modules["corners"], float)
+    f = float(scene.relief_fraction)
+    if f <= 0:
+        return corners
+    fld, sh = scene.field, scene.shadow
+    # heights taken 1 mm inside each corner (a corner on a row's lower edge is in that row)
+    centre = corners.mean(axis=1, keepdims=True)
+    d = centre - corners
+    inner = corners + 1e-3 * d / np.maximum(np.hypot(d[..., :1], d[..., 1:]), 1e-9)
+    s, w = fld.to_field(inner[..., 0], inner[..., 1])
+    h = f * (sh.table_z(s, w) - sh.ground_z(s, w))
+    s_c, w_c = fld.to_field(*np.mean(scene.plan.centres, axis=0))
+    alt = scene.altitude_m - (sh.ground_z(s, w) - sh.ground_z(s_c, w_c))
+    px, py = relief_image(corners[..., 0], corners[..., 1], h, alt, scene.frames)
+    return np.stack([px, py], axis=-1)
+
+
 def write_truth_ortho(scene, out_dir: Path) -> str:
-    """``truth_ortho.geojson``: the true module polygons as they stand in the ortho, in the
-    ortho's CRS (a GeoJSON 2008 ``crs`` member names it), with module_id and table_id."""
+    """``truth_ortho.geojson``: the true module polygons as they stand in the ortho (relief
+    displacement included, :func:`ortho_corners`), in the ortho's CRS (a GeoJSON 2008 ``crs``
+    member names it), with module_id and table_id."""
     fld = scene.field
     m = fld.modules
+    corners = ortho_corners(scene)
     feats = []
     for i in range(fld.n_modules):
-        ring = [[round(float(x), 4), round(float(y), 4)] for x, y in m["corners"][i]]
+        ring = [[round(float(x), 4), round(float(y), 4)] for x, y in corners[i]]
         ring.append(ring[0])
         feats.append({"type": "Feature", "properties": {"module_id": m["module_id"][i], "table_id": m["table_id"][i]},
                       "geometry": {"type": "Polygon", "coordinates": [ring]}})
