@@ -62,10 +62,10 @@ def table_arrows(reg: Mapping, modules: Any, geoms: list) -> list[tuple[float, f
     for t in tables:
         if not isinstance(t, Mapping) or not (isnum(t.get("dx_m")) and isnum(t.get("dy_m"))):
             continue
-        s = sx.get(str(t.get("table_id")))
-        if s is None or s[2] == 0:
+        acc = sx.get(str(t.get("table_id")))
+        if acc is None or acc[2] == 0:
             continue
-        out.append((s[0] / s[2], s[1] / s[2], float(t["dx_m"]), float(t["dy_m"]), "table"))
+        out.append((acc[0] / acc[2], acc[1] / acc[2], float(t["dx_m"]), float(t["dy_m"]), "table"))
     return out
 
 
@@ -83,7 +83,7 @@ def registration_detail(summary: Mapping[str, Any], modules: Any, geoms: list, d
     if not isinstance(reg, Mapping) or not reg:
         return None
     status = str(reg.get("status") or "")
-    place = reg.get("placement") if isinstance(reg.get("placement"), Mapping) else {}
+    place: Mapping[str, Any] = reg["placement"] if isinstance(reg.get("placement"), Mapping) else {}
     shift = reg.get("layout_shift_m") or summary.get("layout_shift_m") or [0.0, 0.0]
     sx, sy = (float(shift[0]), float(shift[1])) if (
         isinstance(shift, (list, tuple)) and len(shift) == 2 and all(isnum(v) for v in shift)) else (0.0, 0.0)
@@ -97,7 +97,7 @@ def registration_detail(summary: Mapping[str, Any], modules: Any, geoms: list, d
         rows.append(("about the point", f"{float(c[0]):.1f} E, {float(c[1]):.1f} N (ortho CRS)"))
     rows.append(("applied", "yes" if reg.get("applied") else "no (layout used as drawn)"))
 
-    ev = reg.get("evidence") if isinstance(reg.get("evidence"), Mapping) else {}
+    ev: Mapping[str, Any] = reg["evidence"] if isinstance(reg.get("evidence"), Mapping) else {}
     ev_rows = []
     if isinstance(ev.get("drawn"), Mapping):
         ev_rows.append(_evidence_row("layout as drawn", ev["drawn"]))
