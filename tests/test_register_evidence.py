@@ -99,6 +99,9 @@ def test_layout_right_is_not_moved(fixed_flight):
     move = reg.placement.displacement_max(mods.total_bounds) if reg.applied else 0.0
     assert move <= NO_SHIFT_TOL_M, reg.message
     assert reg.evidence["drawn"]["ok"]
+    # the placement one module pitch along or across the rows fits clearly worse: decisive
+    assert reg.evidence["pitch"]["decisive"], reg.evidence["pitch"]
+    assert reg.evidence["pitch"]["lowest_ratio"] > reg.evidence["pitch"]["limit"]
     # nor does the local refinement move any table more than that
     assert _truth_residual_m(fixed_flight, reg, mods) <= NO_SHIFT_TOL_M, reg.message
 
@@ -224,3 +227,22 @@ def test_sun_vector_matches_pvlib_noon():
     assert n == pytest.approx(-1.0, abs=0.01) and abs(e) < 0.1
     # noon elevation = 90 - lat + declination (23.3 deg mid-June, from memory)
     assert el == pytest.approx(90 - 39.23 + 23.3, abs=0.6)
+
+
+def test_row_pitch_of_the_layout(fixed_flight):
+    """The pitch between rows of tables read from the layout is the simulated plant's
+    ``row_pitch_m`` (7.0 m, the scenario's own figure) and points across the rows."""
+    from pvscan.measure.register.fit import _pitches, _row_pitch
+
+    fl = load_flight(fixed_flight / "flight.toml")
+    with open_orthos(fl.flight.orthos, fl.ortho) as o:
+        mods = read_layout(fl, o.crs)
+    along = _pitches(mods)[0]
+    rp = _row_pitch(mods, along)
+    assert rp is not None
+    assert float(np.hypot(*rp)) == pytest.approx(_fixed()["array"]["row_pitch_m"], rel=0.01)
+    # across the rows: perpendicular to the module pitch along them (cos < 0.05)
+    assert abs(float(rp @ along)) / (np.hypot(*rp) * np.hypot(*along)) < 0.05
+    # one row of tables: no pitch across the rows
+    one_row = mods[mods["table_id"] == mods["table_id"].iloc[0]]
+    assert _row_pitch(one_row, along) is None

@@ -194,3 +194,27 @@ def test_coverage_and_plausibility_checks():
     pred = np.full(50, 25 + 900 / (25 + 6.84 * 2))
     assert plausibility_check(pred + 1.0, pred)["passed"] is True
     assert plausibility_check(pred + KELVIN, pred)["passed"] is False
+
+
+def test_registration_check_reads_the_placement_used():
+    """The check's value is the worse probe ratio of the placement used; an indecisive
+    choice between placements one module pitch apart fails it like a failed fit (a finding
+    could sit on the neighbouring module: common practice, a result must say when it could not
+    tell)."""
+    from types import SimpleNamespace
+
+    from pvscan.io.settings import load_pipeline
+    from pvscan.measure.validity import registration_check
+
+    st = load_pipeline()
+    lim = float(st["register"]["evidence_max_ratio"])
+    ev = {"drawn": {"ratio_u": 0.9, "ratio_v": 1.1}, "chosen": {"ratio_u": 0.2, "ratio_v": 0.35}}
+    ok = registration_check(SimpleNamespace(status="ok", applied=True, evidence=ev, message="m"), st)
+    assert ok["value"] == pytest.approx(0.35) and ok["limit"] == pytest.approx(lim) and ok["passed"] is True
+    amb = registration_check(SimpleNamespace(status="ambiguous", applied=True, evidence=ev, message="m"), st)
+    assert amb["passed"] is False and amb["value"] == pytest.approx(0.35)
+    drawn = registration_check(SimpleNamespace(status="ok", applied=False, evidence=ev, message="m"), st)
+    assert drawn["value"] == pytest.approx(1.1) and drawn["passed"] is False
+    failed = registration_check(SimpleNamespace(status="failed", applied=False, message="m", evidence={
+        "drawn": {"ratio_u": 0.9, "ratio_v": 1.1}, "proposals": [{"ratio_u": 0.7, "ratio_v": 0.65}]}), st)
+    assert failed["passed"] is False and failed["value"] == pytest.approx(0.7)

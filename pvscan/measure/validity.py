@@ -193,22 +193,25 @@ def check_validity(conditions: Any, module_conditions: pd.DataFrame | None = Non
 def registration_check(reg: Any, settings: Mapping | None = None) -> dict:
     """``registration``: the worse probe ratio of the placement used (at most
     ``[register] evidence_max_ratio``); failed when the registration found no placement that
-    sits on the modules. The message says what was measured."""
+    sits on the modules, or when a placement one module pitch away fits almost as well
+    (``ambiguous``). The message says what was measured."""
     from pvscan.io.settings import section
 
     lim = float(section(settings, "register")["evidence_max_ratio"])
     status = getattr(reg, "status", "")
     ev = getattr(reg, "evidence", {}) or {}
-    used = ev.get("proposal") if getattr(reg, "applied", False) else ev.get("drawn")
+    used = (ev.get("chosen") or ev.get("drawn")) if getattr(reg, "applied", False) else ev.get("drawn")
     if status == "failed":
-        cands = [v for v in (ev.get("drawn"), ev.get("proposal")) if v]
+        cands = [v for v in [ev.get("drawn"), *(ev.get("proposals") or [])] if v]
         used = min(cands, key=lambda q: max(q.get("ratio_u") or 9, q.get("ratio_v") or 9)) if cands else None
     value = None
     if used and used.get("ratio_u") is not None and used.get("ratio_v") is not None:
         value = max(float(used["ratio_u"]), float(used["ratio_v"]))
     c = _check("registration", value, lim, "max", "", "module evidence (pvscan.measure.register; calibrated)",
                message=f"registration: {getattr(reg, 'message', '') or status}")
-    if status == "failed":
+    if status in ("failed", "ambiguous"):
+        # failed: no placement sits on the modules; ambiguous: one a module pitch away fits
+        # almost as well (findings may sit on the neighbouring module)
         c["passed"] = False
     elif status in ("", "not_run"):
         c["passed"] = None

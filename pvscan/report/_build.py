@@ -23,6 +23,7 @@ from pvscan.report import _sections as sec
 from pvscan.report._geometry import MapGeometry, as_list
 from pvscan.report._images import Palette, figure_palette, module_window, png_data_uri, quantise_png
 from pvscan.report._raster import ThermalView, open_thermal
+from pvscan.report._registration import registration_detail
 from pvscan.report._result import SEVERITIES, ResultData, get_path, load_result, validity_checks
 from pvscan.report._series import series_plot
 from pvscan.report._shots import card_shots
@@ -289,6 +290,7 @@ def _build(data: ResultData, view: ThermalView | None, modules_gdf: Any, cfg: di
         "validity": valid,
         "registration": sec.registration(data.summary, data.layout_shift_m),
         "registration_figure": _registration_figure(data, geo, dpi),
+        "registration_detail": registration_detail(data.summary, data.modules, geo.modules, dpi),
         "n_safety": n_safety,
         "map": {"uri": png_data_uri(overview), "on_ortho": on_ortho, "pins": pin_links, "notes": notes},
         "counts": sec.counts(data),

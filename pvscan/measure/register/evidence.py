@@ -333,7 +333,9 @@ def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float,
         with np.errstate(invalid="ignore", divide="ignore"):
             contrast = np.abs(sb / nb - s1 / cnt)
         contrast[nb < min_pixels] = np.nan
-        sd = sd / np.maximum(contrast, 0.05)
+        # at most 1, the ratio of a featureless footprint: one module with a hot spot or a
+        # reflection (its spread far above any outline contrast) cannot outweigh the others
+        sd = np.minimum(sd / np.maximum(contrast, 0.05), 1.0)
         if off_glass_k is not None:
             # absolute means: each window was centred on its own median, which is ground for a
             # module at a table end and glass inside a table

@@ -174,7 +174,9 @@ def register_layout(orthos: Any, modules, settings: Mapping | None = None, *, su
     radius = float(cfg["evidence_local_radius_m"])
     far = float(cfg["evidence_far_gate"])
     chosen, q_c = None, None
-    for cand in _distinct(proposals, bounds):
+
+    def consider(cand: Placement) -> None:
+        nonlocal chosen, q_c
         if refine:
             pl, s_c, inner = _fit_proposal(orthos, modules, cand, cfg)
         else:
@@ -191,6 +193,27 @@ def register_layout(orthos: Any, modules, settings: Mapping | None = None, *, su
             and (not q_id["ok"] or move <= radius or q["evidence"] <= far * q_id["evidence"])))
         if usable and move >= float(cfg["min_shift_m"]) and (q_c is None or q["evidence"] < q_c["evidence"]):
             chosen, q_c = pl, q
+
+    fitted = _distinct(proposals, bounds)
+    for cand in fitted:
+        consider(cand)
+    if refine and chosen is None and not q_id["ok"]:
+        # rows are periodic across too: a proposal half a row pitch off puts every footprint
+        # on the ground between rows (it fails the glass test); the fit is tried again from
+        # half and one row pitch either side of each proposal
+        along = _pitches(modules)
+        rp = _row_pitch(modules, along[0] if along else None)
+        steps = [k * along[0] for k in (1.0, -1.0)] if along else []
+        if rp is not None:
+            steps += [k * rp for k in (0.5, -0.5)]
+        first = list(reg.evidence["proposals"])
+        lim_m = float(cfg["max_shift_m"])
+        for q0 in first:
+            p0 = Placement(q0["shift_m"][0], q0["shift_m"][1], q0["rotation_deg"], q0["scale"], centre[0], centre[1])
+            for v in steps:
+                alt = p0.moved(tx=p0.tx + float(v[0]), ty=p0.ty + float(v[1]))
+                if math.hypot(alt.tx, alt.ty) <= lim_m:
+                    consider(alt)
     if forced_shift is not None:
         # a known offset is used as given; the evidence only says whether it fits
         q_c = reg.evidence["proposals"][0]
@@ -238,10 +261,76 @@ def register_layout(orthos: Any, modules, settings: Mapping | None = None, *, su
                        f"(best probe ratios {_num(best.get('ratio_u')):.2f}, {_num(best.get('ratio_v')):.2f}; at most "
                        f"{lim:g} needed)")
         _no_move(reg)
-    if reg.status == "ok" and forced_shift is None and cfg["local_enabled"]:
+    if q_c is not None:
+        reg.evidence["chosen"] = q_c
+    if reg.status == "ok" and forced_shift is None:
+        _resolve_pitch(orthos, modules, reg, cfg, ident, sun, expected_apparent_c)
+    if reg.status in ("ok", "ambiguous") and forced_shift is None and cfg["local_enabled"]:
         _refine_locally(orthos, modules, reg, cfg, ident)
     logger.info("register: %s", reg.message)
     return reg
+
+
+def _resolve_pitch(orthos, modules, reg: Registration, cfg: Mapping, ident: Placement, sun, expected_c) -> None:
+    """The one-pitch ambiguity of rows, decided at full resolution on module evidence.
+
+    Rows of modules are periodic: the placement used and the same placement one module
+    pitch along or across the table rows put footprints on modules everywhere but at the
+    table ends. Each such alternative is judged on its own sample (footprints read where it
+    puts them); an alternative whose evidence is below ``pitch_move_ratio`` times the
+    placement's replaces it (repeated up to ``pitch_max_steps``, so two pitches off are undone
+    too). The decision is recorded in
+    ``reg.evidence["pitch"]``: the lowest ratio evidence(alternative) / evidence(used) and
+    ``decisive`` when it exceeds ``1 + pitch_min_margin``. An indecisive decision leaves
+    the placement in use but fails the ``registration`` validity check (a finding may sit
+    on the neighbouring module)."""
+    base = reg.placement if (reg.applied and reg.placement is not None) else ident
+    steps = [s * v for v in _pitches(modules) for s in (1.0, -1.0)]
+    if not steps:
+        return
+    cur = Placement(base.tx, base.ty, base.theta_deg, base.scale, base.cx, base.cy)
+    q_cur = _judge(_sample_at(orthos, modules, cur, cfg), ident, cfg, sun, expected_c)
+    moved_by = np.zeros(2)
+    rounds = int(cfg["pitch_max_steps"])
+    alts: list[tuple[np.ndarray, dict]] = []
+    for _ in range(rounds + 1):
+        alts = []
+        for v in steps:
+            p = cur.moved(tx=cur.tx + float(v[0]), ty=cur.ty + float(v[1]))
+            alts.append((v, _judge(_sample_at(orthos, modules, p, cfg), ident, cfg, sun, expected_c)))
+        move_below = float(cfg["pitch_move_ratio"]) * _num(q_cur["evidence"])
+        better = [(v, q) for v, q in alts if q["ok"] and _num(q["evidence"]) < move_below]
+        if not better or len(reg.evidence.get("pitch_moves", [])) >= rounds:
+            break
+        v, q = min(better, key=lambda t: _num(t[1]["evidence"]))
+        reg.evidence.setdefault("pitch_moves", []).append([round(float(v[0]), 4), round(float(v[1]), 4)])
+        cur = cur.moved(tx=cur.tx + float(v[0]), ty=cur.ty + float(v[1]))
+        moved_by += v
+        q_cur = q
+    e_cur = _num(q_cur["evidence"])
+    ratios = [_num(q["evidence"]) / e_cur for _, q in alts if math.isfinite(_num(q["evidence"]))] if (
+        math.isfinite(e_cur) and e_cur > 0) else []
+    low = min(ratios) if ratios else float("inf")
+    margin = float(cfg["pitch_min_margin"])
+    decisive = low > 1.0 + margin
+    reg.evidence["pitch"] = {"lowest_ratio": round(low, 4) if math.isfinite(low) else None,
+                             "limit": round(1.0 + margin, 4), "decisive": bool(decisive),
+                             "moved_m": [round(float(moved_by[0]), 4), round(float(moved_by[1]), 4)]}
+    if np.hypot(*moved_by) > 0:
+        reg.placement = cur
+        reg.applied = True
+        reg.model = cur.shift_model()
+        reg.follow_drift = True
+        reg.shift_m = (cur.tx, cur.ty)
+        reg.residual_rotation_deg, reg.residual_scale = cur.theta_deg, cur.scale
+        reg.evidence["chosen"] = q_cur
+        reg.evidence["used"] = "pitch"
+        reg.message += (f"; moved by ({moved_by[0]:+.3f}, {moved_by[1]:+.3f}) m, whole module pitches along or "
+                        f"across the rows, where the table ends fit better (evidence {e_cur:.3f})")
+    if not decisive:
+        reg.status = "ambiguous"
+        reg.message += (f"; a placement one module pitch away fits almost as well (evidence ratio {low:.2f}, more "
+                        f"than {1.0 + margin:.2f} needed): findings may sit on the neighbouring module")
 
 
 def _refine_locally(orthos, modules, reg: Registration, cfg: Mapping, ident: Placement) -> None:
@@ -286,6 +375,46 @@ def _pitches(modules) -> list[np.ndarray]:
             if np.all(np.isfinite(v)) and np.hypot(*v) > 0:
                 out.append(v)
     return out
+
+
+def _row_pitch(modules, along: np.ndarray | None) -> np.ndarray | None:
+    """Median vector from a table to the next table across the rows (the row pitch) [m].
+
+    ``along`` is the vector between neighbouring modules along a table row. For each table
+    the nearest other table whose centre lies across the rows (its offset along the row
+    shorter than half the longer table) gives one vector; the median of those pointing one
+    way is the pitch. None when the site has one row of tables."""
+    if along is None or "table_id" not in modules.columns or len(modules) == 0:
+        return None
+    a = np.asarray(along, float)
+    a = a / max(float(np.hypot(*a)), 1e-12)
+    n = np.array([-a[1], a[0]])
+    fr = modules[["fx0", "fy0", "fux", "fuy", "fvx", "fvy"]].to_numpy(float)
+    cx = fr[:, 0] + 0.5 * (fr[:, 2] + fr[:, 4])
+    cy = fr[:, 1] + 0.5 * (fr[:, 3] + fr[:, 5])
+    tid = modules["table_id"].astype(str).to_numpy()
+    names, inv = np.unique(tid, return_inverse=True)
+    if len(names) < 2:
+        return None
+    cnt = np.bincount(inv).astype(float)
+    tx = np.bincount(inv, cx) / cnt
+    ty = np.bincount(inv, cy) / cnt
+    s_al = (cx - tx[inv]) * a[0] + (cy - ty[inv]) * a[1]
+    half = np.zeros(len(names))
+    np.maximum.at(half, inv, np.abs(s_al))
+    vecs = []
+    for i in range(len(names)):
+        dx, dy = tx - tx[i], ty - ty[i]
+        d_al = dx * a[0] + dy * a[1]
+        d_n = dx * n[0] + dy * n[1]
+        ok = (np.abs(d_al) < np.maximum(half, half[i])) & (d_n > 0.3)
+        if ok.any():
+            j = int(np.argmin(np.where(ok, d_n, np.inf)))
+            vecs.append((dx[j], dy[j]))
+    if not vecs:
+        return None
+    v = np.median(np.asarray(vecs), axis=0)
+    return v if np.all(np.isfinite(v)) and np.hypot(*v) > 0.3 else None
 
 
 def _reduce_for(orthos, cfg: Mapping) -> int:
