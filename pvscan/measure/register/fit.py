@@ -32,13 +32,13 @@ from pvscan.errors import RegistrationWarning
 from pvscan.measure.register._blocks import _settings
 from pvscan.measure.register._records import Registration
 from pvscan.measure.register.estimate import estimate_shift
-from pvscan.measure.register.local import refine_tables, table_offsets
 from pvscan.measure.register.evidence import (
     Placement,
     placement_quality,
     refine_placement,
     sample_modules,
 )
+from pvscan.measure.register.local import refine_tables, table_offsets
 
 logger = logging.getLogger(__name__)
 
@@ -150,17 +150,17 @@ def register_layout(orthos: Any, modules, settings: Mapping | None = None, *, su
         # besides the configured blocks, at least min_blocks_across blocks across the site, so
         # that rotation and scale are measured on a small site too (one block: a shift only)
         small = min(float(cfg["block_m"]), max(float(cfg["min_block_m"]), extent / float(cfg["min_blocks_across"])))
-        reg = None
+        fits: list[Registration] = []
         for block in dict.fromkeys([float(cfg["block_m"]), small]):
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", RegistrationWarning)
                 r = estimate_shift(orthos, modules, {**cfg, "block_m": block}, progress=progress,
                                    expected_apparent_c=expected_apparent_c)
-            reg = r if reg is None else reg
+            fits.append(r)
             p = placement_of(r, centre)
             if p is not None:
                 proposals.append(p)
-        assert reg is not None
+        reg = fits[0]
         refine = True
     s_id = _sample_at(orthos, modules, None, cfg)
     if len(s_id) == 0:
