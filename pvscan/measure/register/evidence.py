@@ -418,7 +418,8 @@ def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, 
     Returns
     -------
     dict
-        ``evidence`` (E of the placement) [-], ``ratio_u``, ``ratio_v`` [-],
+        ``evidence`` (E of the placement) [-], ``spread_k`` (the plain spread inside the
+        footprints, the numerator of the probe ratios) [K], ``ratio_u``, ``ratio_v`` [-],
         ``glass_error_k`` [K] (NaN when unknown) and ``ok`` (both ratios at most
         ``evidence_max_ratio``, and the glass temperature within its limit when known).
     """
@@ -432,7 +433,7 @@ def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, 
     glass = float(np.nanmedian(mean0)) if np.isfinite(mean0).any() else float("nan")
     d = float(cfg["evidence_probe_m"])
     wsh = float(cfg["evidence_shadow_weight"])
-    out: dict[str, Any] = {"evidence": e0}
+    out: dict[str, Any] = {"evidence": e0, "spread_k": sp0}
     for name, ax in zip(("u", "v"), _unit_axes(sample)):
         num, den = 0.0, 0.0
         for sgn in (1.0, -1.0):
