@@ -174,6 +174,7 @@ def register_layout(orthos: Any, modules, settings: Mapping | None = None, *, su
     radius = float(cfg["evidence_local_radius_m"])
     far = float(cfg["evidence_far_gate"])
     chosen, q_c = None, None
+    rescue = False
 
     def consider(cand: Placement) -> None:
         nonlocal chosen, q_c
@@ -251,6 +252,21 @@ def register_layout(orthos: Any, modules, settings: Mapping | None = None, *, su
         reg.message = (f"layout used as drawn ({why}): module evidence {q_id['evidence']:.3f}, probe ratios "
                        f"{q_id['ratio_u']:.2f}, {q_id['ratio_v']:.2f} (limit {lim:g})")
         _no_move(reg)
+    elif refine and (rescued := _rescue_locally(orthos, modules, reg, cfg, ident, sun, expected_apparent_c)):
+        chosen, q_c = rescued
+        rescue = True
+        reg.placement = chosen
+        reg.applied = True
+        reg.model = chosen.shift_model()
+        reg.follow_drift = True
+        reg.shift_m = (chosen.tx, chosen.ty)
+        reg.residual_rotation_deg, reg.residual_scale = chosen.theta_deg, chosen.scale
+        reg.status = "ok"
+        reg.evidence["used"] = "proposal"
+        reg.message = (f"layout moved by ({chosen.tx:+.3f}, {chosen.ty:+.3f}) m, rotated {chosen.theta_deg:+.3f} deg, "
+                       f"scaled {chosen.scale:.5f}, then table by table ({reg.local.message}): module evidence "
+                       f"{q_id['evidence']:.3f} -> {q_c['evidence']:.3f} (probe ratios {q_c['ratio_u']:.2f}, "
+                       f"{q_c['ratio_v']:.2f}; limit {lim:g})")
     else:
         reg.placement = ident
         reg.status = "failed"
@@ -265,7 +281,17 @@ def register_layout(orthos: Any, modules, settings: Mapping | None = None, *, su
         reg.evidence["chosen"] = q_c
     if reg.status == "ok" and forced_shift is None:
         _resolve_pitch(orthos, modules, reg, cfg, ident, sun, expected_apparent_c)
-    if reg.status in ("ok", "ambiguous") and forced_shift is None and cfg["local_enabled"]:
+    if rescue and q_c is not None and reg.status != "ok":
+        # put on glass only table by table, and one module pitch away fits almost as well:
+        # too weak to measure on
+        reg.placement = ident
+        reg.status = "failed"
+        reg.evidence["used"] = "none"
+        reg.message = ("the layout could not be placed on the modules of the ortho: refined table by table its "
+                       f"footprints sit on glass (probe ratios {q_c['ratio_u']:.2f}, {q_c['ratio_v']:.2f}), but a "
+                       "placement one module pitch away fits almost as well")
+        _no_move(reg)
+    if reg.status in ("ok", "ambiguous") and forced_shift is None and cfg["local_enabled"] and reg.local is None:
         _refine_locally(orthos, modules, reg, cfg, ident)
     logger.info("register: %s", reg.message)
     return reg
@@ -331,6 +357,36 @@ def _resolve_pitch(orthos, modules, reg: Registration, cfg: Mapping, ident: Plac
         reg.status = "ambiguous"
         reg.message += (f"; a placement one module pitch away fits almost as well (evidence ratio {low:.2f}, more "
                         f"than {1.0 + margin:.2f} needed): findings may sit on the neighbouring module")
+
+
+def _rescue_locally(orthos, modules, reg: Registration, cfg: Mapping, ident: Placement, sun,
+                    expected_c) -> tuple[Placement, dict] | None:
+    """The proposal nearest to sitting on glass, refined table by table (:mod:`.local`) and
+    judged again by the same glass test.
+
+    A global similarity cannot follow the tables one by one: where the ortho's local
+    distortion is a few centimetres, the footprints of a right global fit straddle the
+    module edges enough to fail the probe ratios. Returns the placement with its table
+    corrections and its quality when it passes, else None (``reg.local`` keeps the attempt)."""
+    if not cfg["local_enabled"]:
+        return None
+    props = [q for q in (reg.evidence or {}).get("proposals", []) if "shift_m" in q]
+    if not props:
+        return None
+    best = min(props, key=lambda q: max(_num(q.get("ratio_u")), _num(q.get("ratio_v"))))
+    if not math.isfinite(max(_num(best.get("ratio_u")), _num(best.get("ratio_v")))):
+        return None
+    p0 = Placement(float(best["shift_m"][0]), float(best["shift_m"][1]), float(best["rotation_deg"]),
+                   float(best["scale"]), ident.cx, ident.cy)
+    lf = refine_tables(orthos, apply_placement(modules, p0), cfg)
+    reg.local = lf
+    if not lf.applied:
+        return None
+    pl = Placement(p0.tx, p0.ty, p0.theta_deg, p0.scale, p0.cx, p0.cy,
+                   tables=tuple((str(k), float(v[0]), float(v[1])) for k, v in lf.shifts.items()))
+    q = _judge(_sample_at(orthos, modules, pl, cfg), ident, cfg, sun, expected_c)
+    reg.evidence["local_rescue"] = {**q, "tables_refined": int(lf.summary().get("tables_refined", 0))}
+    return (pl, q) if q["ok"] else None
 
 
 def _refine_locally(orthos, modules, reg: Registration, cfg: Mapping, ident: Placement) -> None:
