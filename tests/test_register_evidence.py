@@ -257,8 +257,9 @@ def test_row_pitch_of_the_layout(fixed_flight):
 ])
 def test_distorted_layout_is_placed_right_or_refused(tmp_path, layout):
     """Right on every flight, or say so: a layout turned, scaled and displaced table by table
-    is either placed with every module within a third of a cell of where the ortho shows it
-    (RMS against truth_ortho.geojson; 16-17 cm cells), or the registration fails or is
+    is either placed with its modules within 8 cm RMS of where the ortho shows them (against
+    truth_ortho.geojson; the measured footprint keeps 6-8 cm from the module's edge, [zonal]
+    edge_margin_u/v, so its pixels stay on the module's glass), or the registration fails or is
     ambiguous, which fails the registration validity check. Never placed wrong and called
     right (an earlier version put layouts one or two module pitches off along the rows and
     called the flight valid)."""
@@ -267,7 +268,7 @@ def test_distorted_layout_is_placed_right_or_refused(tmp_path, layout):
     reg, mods = _register(d)
     if reg.status == "ok":
         rms = _truth_ortho_rms_m(d, apply_placement(mods, reg.placement if reg.applied else None))
-        assert rms < 0.055, (rms, reg.message)
+        assert rms < 0.08, (rms, reg.message)
     else:
         assert reg.status in ("failed", "ambiguous"), reg.message
         from pvscan.measure.validity import registration_check
