@@ -157,7 +157,6 @@ class Plant:
         self.truth[i] = "junction_box"
 
     def soiling(self, i, rise, cover_median=False):
-        A, C = self.spec.n_along, self.spec.n_across
         sl = (slice(0, 1), slice(None)) if self.modules.lower_edge[i] == "u" else (slice(None), slice(0, 1))
         if cover_median:          # band covering the whole cells: median and p95 raised
             self.cm[i][sl] += rise

@@ -289,7 +289,6 @@ def test_specific_yield_clear_sky():
     assert energy.specific_yield(lat, lon, 30.0, 0.0, derate=1.0) < flat
     # with the default derate the yield is in the range of central Europe, 900-1300 kWh/kWp
     # (from memory, solar atlases for southern Germany / Switzerland)
-    cfg = load_pipeline()["loss"]
     assert 900.0 < energy.specific_yield(lat, lon, 30.0, 180.0, settings=load_pipeline()) < 1300.0
 
 

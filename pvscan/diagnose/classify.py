@@ -32,15 +32,31 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from pvscan.diagnose.features import (Features, Hits, build_features, confidence, fit_score,
-                                      neighbour_median, quality, row_geometry, string_groups)
-from pvscan.diagnose.patterns import (pattern_bypassed_substring, pattern_hot_cell, pattern_junction_box,
-                                      pattern_open_module, pattern_open_string, pattern_pid, pattern_soiling)
+from pvscan.diagnose.features import (
+    Features,
+    Hits,
+    build_features,
+    confidence,
+    fit_score,
+    neighbour_median,
+    quality,
+    row_geometry,
+    string_groups,
+)
+from pvscan.diagnose.patterns import (
+    pattern_bypassed_substring,
+    pattern_hot_cell,
+    pattern_junction_box,
+    pattern_open_module,
+    pattern_open_string,
+    pattern_pid,
+    pattern_soiling,
+)
 from pvscan.diagnose.results import ANOMALY_COLUMNS, Diagnosis
 from pvscan.diagnose.severity import assign_severity
 from pvscan.diagnose.thermal import Normalisation, condition_column, local_reference, module_thermal
-from pvscan.physics.heat import Faiman
 from pvscan.io.settings import section
+from pvscan.physics.heat import Faiman
 from pvscan.robust import iqr, scaled_mad
 
 __all__ = ["classify"]

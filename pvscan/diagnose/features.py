@@ -71,7 +71,7 @@ def neighbour_median(values: np.ndarray, nb: np.ndarray, chunk: int = 2048,
         for j in range(k):
             col = idx[:, j]
             jj = np.maximum(col, 0)
-            if offset is None:
+            if off is None:
                 g[:, :, j] = flat[jj]
             else:
                 g[:, :, j] = flat[jj] - off[jj][:, None]
@@ -278,7 +278,7 @@ def build_features(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, 
     g = conditions["poa_global"].to_numpy(dtype=float) if "poa_global" in conditions else np.full(n, np.nan)
     ws = conditions["wind_speed"].to_numpy(dtype=float) if "wind_speed" in conditions else np.full(n, 1.0)
     ta = conditions["temp_air"].to_numpy(dtype=float) if "temp_air" in conditions else np.full(n, np.nan)
-    eta = float(spec_value(module_spec, "efficiency"))
+    eta: float | np.ndarray = float(spec_value(module_spec, "efficiency"))
     gamma = spec_value(module_spec, "gamma_pmax_pct_per_k")
     if gamma is not None:
         # the power an open module no longer delivers is that of the operating point: the

@@ -114,7 +114,7 @@ def pattern_hot_cell(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
     conf = confidence(quality(xmax, thr))
     single = Hits("hot_cell", count == 1, conf, temp)
     multi = Hits("several_hot_cells", count >= 2, conf, temp)
-    for i in np.flatnonzero(count):
+    for i in np.flatnonzero(count).tolist():
         cells = np.argwhere(hot[i])
         target = single if count[i] == 1 else multi
         target.region[i] = "cell" if len(cells) == 1 else "cells"

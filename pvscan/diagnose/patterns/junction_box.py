@@ -77,7 +77,7 @@ def pattern_junction_box(F: Features, cfg: Mapping) -> Hits:
     thr = max(float(cfg["junction_box_min_k"]), float(cfg["noise_z"]) * F.sig_cell)
     best = np.full(n, -np.inf)
     best_t = np.full(n, np.nan)
-    best_box = [None] * n
+    best_box: list[tuple[float, float, float, float] | None] = [None] * n
     best_q = np.zeros(n)
     for (u0, v0) in _box_centres(F):
         ii, jj = _box_block(F, u0, v0)
@@ -115,11 +115,12 @@ def pattern_junction_box(F: Features, cfg: Mapping) -> Hits:
         best_t = np.where(better, nanmax(subt, axis=1), best_t)
         best_q = np.where(better, quality(top, thr), best_q)
         hu, hv = 0.5 / A, 0.5 / C
-        for i in np.flatnonzero(better):
+        for i in np.flatnonzero(better).tolist():
             best_box[i] = (max(0.0, u0 - hu), min(1.0, u0 + hu), max(0.0, v0 - hv), min(1.0, v0 + hv))
     hit = F.ok & np.isfinite(best) & (best > -np.inf)
     h = Hits("junction_box", hit, confidence(best_q), best_t)
-    for i in np.flatnonzero(hit):
+    for i in np.flatnonzero(hit).tolist():
         h.region[i] = "spot"
-        h.boxes[i] = [best_box[i]]
+        box = best_box[i]  # set wherever best is finite, so wherever hit
+        h.boxes[i] = [box] if box is not None else []
     return h

@@ -21,6 +21,7 @@ from __future__ import annotations
 from collections.abc import Mapping
 
 import numpy as np
+from numpy.typing import ArrayLike
 
 from pvscan.diagnose.features import Features, Hits, confidence, fit_score, quality
 from pvscan.robust import iqr, nanmin
@@ -28,7 +29,8 @@ from pvscan.robust import iqr, nanmin
 __all__ = ["open_module_floor", "pattern_open_module", "pattern_open_string"]
 
 
-def open_module_floor(rise, sigma, z_min: float, prior: float, rise_rel_sigma: float = 0.0):
+def open_module_floor(rise: ArrayLike, sigma: float, z_min: float, prior: float,
+                      rise_rel_sigma: float = 0.0) -> np.ndarray:
     """Least module rise [K] called an open module: a likelihood-ratio test.
 
     A healthy module's delta T scatters as ``N(0, sigma)`` (the module-to-module spread);
@@ -81,7 +83,8 @@ def open_module_floor(rise, sigma, z_min: float, prior: float, rise_rel_sigma: f
     return np.maximum(z_min * sig, lr)
 
 
-def pattern_open_module(F: Features, cfg: Mapping, rsub=None, dT=None, isolated: bool = True) -> Hits:
+def pattern_open_module(F: Features, cfg: Mapping, rsub: np.ndarray | None = None, dT: np.ndarray | None = None,
+                        isolated: bool = True) -> Hits:
     """A whole module raised uniformly by about the open-module rise ``eta * G / U``.
 
     Parameters
@@ -122,7 +125,7 @@ def pattern_open_module(F: Features, cfg: Mapping, rsub=None, dT=None, isolated:
         hit &= ~carried
     conf = confidence(fit_score(ratio), quality(dT, floor))
     h = Hits("open_module", hit, conf, F.ref + dT)
-    for i in np.flatnonzero(hit):
+    for i in np.flatnonzero(hit).tolist():
         h.region[i] = "module"
         h.boxes[i] = [(0.0, 1.0, 0.0, 1.0)]
     return h
@@ -196,8 +199,9 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
             zc = float(np.nansum(z[run]) / np.sqrt(len(run)))
             ratio = float(np.nanmedian(d_o[run]) / np.nanmedian(r[run]))
             if (zc >= float(cfg["open_string_run_z"]) and ratio >= float(cfg["open_string_ratio_min"])
-                    and not _raise_carries_on(F, run) and _stands_out_of_its_row(F, run, float(cfg["open_string_row_radius_m"]),
-                                                               float(cfg["open_string_row_share"]))):
+                    and not _raise_carries_on(F, run)
+                    and _stands_out_of_its_row(F, run, float(cfg["open_string_row_radius_m"]),
+                                               float(cfg["open_string_row_share"]))):
                 # an established run takes in end modules of its string that are raised,
                 # if less clearly (an open string is normally the whole string); a table row
                 # standing in for unknown strings is not a string, so its run is not extended
@@ -224,7 +228,7 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
     return out
 
 
-def _raised_over_other_row_throughout(F: Features, cfg: Mapping, run) -> bool:
+def _raised_over_other_row_throughout(F: Features, cfg: Mapping, run: np.ndarray) -> bool:
     """False when part of the run is not raised over the modules beside it in the other row.
 
     An open string carries no current in any of its modules, so each one runs about the
@@ -266,7 +270,7 @@ def _raised_over_other_row_throughout(F: Features, cfg: Mapping, run) -> bool:
     return float(low.mean()) <= float(cfg["open_string_cross_fail_max"])
 
 
-def _stops_at_its_ends(F: Features, cfg: Mapping, run) -> bool:
+def _stops_at_its_ends(F: Features, cfg: Mapping, run: np.ndarray) -> bool:
     """False when the raise goes on into the module just past an end of the run.
 
     An open string's raise stops where the string stops: the next module along the row,
@@ -284,7 +288,8 @@ def _stops_at_its_ends(F: Features, cfg: Mapping, run) -> bool:
     members = set(run.tolist())
     t = F.t_median
     has = cross[run] >= 0 if cross is not None else np.zeros(len(run), bool)
-    raise_run = (float(np.nanmedian(t[run[has]] - t[cross[run[has]]])) if has.sum() >= max(1, len(run) // 2)
+    raise_run = (float(np.nanmedian(t[run[has]] - t[cross[run[has]]]))
+                 if cross is not None and has.sum() >= max(1, len(run) // 2)
                  else float(np.nanmedian(F.extra["d_other"][run])))
     if not np.isfinite(raise_run) or raise_run <= 0:
         return True
@@ -302,7 +307,7 @@ def _stops_at_its_ends(F: Features, cfg: Mapping, run) -> bool:
     return True
 
 
-def _string_opens_whole(F: Features, cfg: Mapping, members, run) -> bool:
+def _string_opens_whole(F: Features, cfg: Mapping, members: np.ndarray, run: np.ndarray) -> bool:
     """False when the string's modules outside the run are clearly not open.
 
     An open string carries no current in any of its modules, so all of them run
@@ -319,7 +324,7 @@ def _string_opens_whole(F: Features, cfg: Mapping, members, run) -> bool:
     return level >= float(cfg["open_string_rest_max"]) * float(np.nanmedian(F.rise[run]))
 
 
-def _stands_out_of_its_row(F: Features, run, radius_m: float = 5.0, share: float = 0.35) -> bool:
+def _stands_out_of_its_row(F: Features, run: np.ndarray, radius_m: float = 5.0, share: float = 0.35) -> bool:
     """False when the run is not warmer than the rest of its own table row nearby.
 
     The out-of-string reference comes from other rows, which under an irradiance gradient
@@ -348,7 +353,7 @@ def _stands_out_of_its_row(F: Features, run, radius_m: float = 5.0, share: float
     return own >= share * float(np.nanmedian(F.extra["d_other"][run]))
 
 
-def _raise_carries_on(F: Features, run) -> bool:
+def _raise_carries_on(F: Features, run: np.ndarray) -> bool:
     """True when a run's raise over the other row of its table carries on past its ends.
 
     An open string stops where the string stops; a mosaic seam running along a table row
@@ -370,7 +375,8 @@ def _raise_carries_on(F: Features, run) -> bool:
     for start in {int(j) for i in run for j in along[i] if j >= 0 and int(j) not in members}:
         # walk up to three modules along the row away from the run; compare their mean
         # offset over the other row with the run's (one module alone is too noisy)
-        seen, line, cur = set(members), [], start
+        seen, cur = set(members), start
+        line: list[int] = []
         while cur >= 0 and len(line) < 3 and cur not in seen:
             seen.add(cur)
             line.append(cur)

@@ -97,7 +97,7 @@ def pattern_soiling(F: Features, cfg: Mapping) -> Hits:
             hit &= ~(nb_band >= 0.5 * band[:, None]).any(axis=1)
     temp = nanmedian(np.where(in_band, F.cp, np.nan).reshape(n, -1), axis=1)
     h = Hits("soiling", hit, confidence(quality(band, thr), np.clip(cover, 0, 1)), temp)
-    for i in np.flatnonzero(hit):
+    for i in np.flatnonzero(hit).tolist():
         h.region[i] = "band"
         h.boxes[i] = [(0.0, depth[i] / A, 0.0, 1.0)] if F.lower_u[i] else [(0.0, 1.0, 0.0, depth[i] / C)]
     return h

@@ -100,7 +100,7 @@ def pattern_bypassed_substring(F: Features, cfg: Mapping, final: bool = True) ->
     temp = nanmedian(np.where(raised, F.extra["sub_median"], np.nan), axis=1)
     single = Hits("bypassed_substring", hit & (nr == 1), conf, temp)
     multi = Hits("several_bypassed_substrings", hit & (nr >= 2), conf, temp)
-    for i in np.flatnonzero(hit):
+    for i in np.flatnonzero(hit).tolist():
         ks = np.flatnonzero(raised[i])
         target = single if len(ks) == 1 else multi
         target.region[i] = "substring" if len(ks) == 1 else "substrings"
@@ -129,11 +129,11 @@ def _steps_on_one_line(F: Features, raised: np.ndarray, candidates: np.ndarray, 
     key = F.extra.get("row_key", np.arange(F.n))
     B = F.nsub
     lines = []   # (module, point, unit direction)
-    for i in cand:
+    for i in cand.tolist():
         steps = np.flatnonzero(raised[i, 1:] != raised[i, :-1])
         d = fu[i] / max(float(np.hypot(*fu[i])), 1e-9)
-        for b in steps:
-            lines.append((int(i), p0[i] + 0.5 * fu[i] + (b + 1) / B * fv[i], d))
+        for s in steps:
+            lines.append((int(i), p0[i] + 0.5 * fu[i] + (s + 1) / B * fv[i], d))
     # the step carried on into the nearest module the line crosses in another row
     centre, fv_all = F.extra["centre"], F.extra["fv"]
     half_w = 0.5 * np.hypot(fv_all[:, 0], fv_all[:, 1])
