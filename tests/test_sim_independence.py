@@ -67,3 +67,29 @@ def test_the_check_can_fail():
         assert _forbidden(_imports_of_source(src, "pvscan.simulate")), src
     for src in ("from pvscan.errors import SimulationError", "import pvlib", "from . import scene"):
         assert not _forbidden(_imports_of_source(src, "pvscan.simulate")), src
+
+
+_LOADED = """
+import importlib, json, pkgutil, sys
+import pvscan.simulate as sim
+for m in pkgutil.iter_modules(sim.__path__):
+    importlib.import_module("pvscan.simulate." + m.name)
+print(json.dumps(sorted(sys.modules)))
+"""
+
+
+def test_no_pipeline_module_is_loaded_with_the_simulator():
+    # the same rule through every indirect path (a helper of pvscan.io that imported physics
+    # would pass the parse above): a fresh interpreter imports every simulator module and lists
+    # what got loaded
+    import json
+    import subprocess
+    import sys
+
+    out = subprocess.run([sys.executable, "-c", _LOADED], capture_output=True, text=True, check=True).stdout
+    loaded = json.loads(out.strip().splitlines()[-1])
+    assert any(m.startswith("pvscan.simulate.") for m in loaded)
+    assert not _forbidden(loaded), _forbidden(loaded)
+    # and the check sees a forbidden module when one is loaded
+    assert _forbidden(["pvscan.physics.radiometry", "pvscan.pipelines", "pvscan.io.resources"]) == [
+        "pvscan.physics.radiometry"]

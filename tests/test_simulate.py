@@ -24,8 +24,8 @@ import rasterio
 from click.testing import CliRunner
 from scipy import constants, integrate, optimize
 
-from pvscan.physics import radiometry
 from pvscan.errors import OutputError, SimulationError
+from pvscan.physics import radiometry
 from pvscan.simulate import build_scene, load_scenario, simulate_flight
 from pvscan.simulate.defects import heat_integral
 from pvscan.simulate.geometry import utm_epsg
@@ -101,7 +101,7 @@ def test_apparent_temperature_against_planck_quadrature(export):
                    + (1 - eps) * _band_radiance_quad(s["temp_sky"].ravel()[p] + 273.15)) \
             + (1 - tau) * _band_radiance_quad(s["temp_atm"].ravel()[p] + 273.15)
         L_app = (L - (1 - eps_x) * _band_radiance_quad(t_rx)) / eps_x
-        t_app = optimize.brentq(lambda t: _band_radiance_quad(t) - L_app, 150.0, 500.0, xtol=1e-6) - 273.15
+        t_app = optimize.brentq(lambda t, L_app=L_app: _band_radiance_quad(t) - L_app, 150.0, 500.0, xtol=1e-6) - 273.15
         assert abs(app.ravel()[p] - t_app) < 0.01
 
 
@@ -126,8 +126,9 @@ def test_radiance_round_trip_on_simulator_pixels():
 def test_energy_balance_of_heat_added(kind, share):
     # First law: heat added U * integral(T_defect - T_healthy) dA equals the electrical power
     # removed, P_mp * share, P_mp from pvlib's single-diode model (calcparams_desoto +
-    # max_power_point) at the module's irradiance and temperature. The integral is the mean rise over the rendered pixels
-    # of the module times its (tilted) surface area, so pixel quantisation of the footprint
+    # max_power_point) at the module's irradiance and temperature. The integral is the mean
+    # rise over the rendered pixels of the module times its (tilted) surface area, so pixel
+    # quantisation of the footprint
     # does not enter; 2 % tolerance.
     over = {"defects": {kind: 1, "pid_modules": [1, 1]}, "camera": {"gsd_m": 0.02}}
     scene = build_scene(_quiet(**over), 5)

@@ -37,8 +37,8 @@ from datetime import datetime
 from pathlib import Path
 
 from pvscan.errors import OutputError, SimulationError
-from pvscan.simulate.scenario import DEFAULTS, DEFECT_KINDS, load_scenario, scenario_from_dict
 from pvscan.simulate.electrical import faiman
+from pvscan.simulate.scenario import DEFAULTS, DEFECT_KINDS, load_scenario, scenario_from_dict
 from pvscan.simulate.scene import Scene
 
 __all__ = ["simulate_flight", "simulate_random", "with_flight", "load_scenario", "scenario_from_dict",

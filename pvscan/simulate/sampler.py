@@ -55,7 +55,8 @@ Ranges (uniform unless said otherwise; "common practice" unless a source is name
 from __future__ import annotations
 
 import math
-from datetime import datetime, timedelta, timezone, UTC
+from datetime import UTC, datetime, timedelta, timezone
+from typing import Any
 
 import numpy as np
 
@@ -242,11 +243,11 @@ def draw_scenario(seed: int, family: str = "any") -> dict:
                   "ambient_c": round(float(u(5.0, 35.0)), 1), "wind_m_s": round(float(u(0.5, 6.0)), 2),
                   "relative_humidity_pct": round(float(u(20.0, 80.0)), 1), "varying": bool(u() < 1 / 3)}
     px_per_cell = float(u(*PX_PER_CELL))
-    camera = {"gsd_m": _gsd_m(module, px_per_cell), "psf_sigma_px": round(float(u(0.4, 1.0)), 2),
+    camera: dict[str, Any] = {"gsd_m": _gsd_m(module, px_per_cell), "psf_sigma_px": round(float(u(0.4, 1.0)), 2),
               "netd_k": round(float(u(0.03, 0.08)), 3),
               "band_um": [7.5, 13.5] if u() < 0.5 else [8.0, 14.0]}
     export = {"emissivity": 1.0 if u() < 0.6 else 0.95}
-    distractors = {"cloud_shadows": int(rng.integers(0, 2)), "reflections": int(rng.integers(0, 4)),
+    distractors: dict[str, Any] = {"cloud_shadows": int(rng.integers(0, 2)), "reflections": int(rng.integers(0, 4)),
                    "seams": int(rng.integers(0, 3)), "hot_objects": int(rng.integers(0, 2))}
     defects = {k: int(rng.integers(0, 3)) for k in ("hot_cell", "several_hot_cells", "bypassed_substring",
                                                      "several_bypassed_substrings", "open_module", "soiling",
@@ -256,6 +257,7 @@ def draw_scenario(seed: int, family: str = "any") -> dict:
     if not any(defects.values()):
         defects["hot_cell"] = 1
     defects["min_spacing_modules"] = 1
+    layout: dict[str, Any]
     if family == "no_layout_error":
         layout = {"offset_m": [0.0, 0.0]}
     elif family == "turned_layout":

@@ -94,12 +94,12 @@ def module_truth(scene) -> dict:
     loss = np.zeros(n)
     for d in scene.defects:
         i = d.module
-        us, vs = [], []
+        u_parts, v_parts = [], []
         for (u0, u1, v0, v1) in d.boxes:
             bu, bv = _grid(24, 24)
-            us.append(u0 + bu * (u1 - u0))
-            vs.append(v0 + bv * (v1 - v0))
-        us, vs = np.concatenate(us), np.concatenate(vs)
+            u_parts.append(u0 + bu * (u1 - u0))
+            v_parts.append(v0 + bv * (v1 - v0))
+        us, vs = np.concatenate(u_parts), np.concatenate(v_parts)
         keep = ~scene.is_frame(us, vs)
         if keep.sum() >= 4:
             us, vs = us[keep], vs[keep]

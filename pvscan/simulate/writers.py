@@ -82,6 +82,7 @@ def write_orthos(scene, out_dir: Path, progress=None):
     sc = scene.sc
     ex, orth = sc["export"], sc["ortho"]
     units = ex["units"]
+    nodata: float
     if units == "raw":
         dtype, nodata = "uint16", 0
         scale, offset, m_units = float(ex["raw_scale"]), 0.0, "kelvin"
@@ -274,14 +275,14 @@ def write_layout(scene, out_dir: Path) -> str:
     import geopandas as gpd
     from shapely.geometry import Polygon
 
-    props = [dict(p) for p, _ in records]
+    rows = [dict(p) for p, _ in records]
     if fmt == "shp":
-        for p in props:
+        for p in rows:
             if "string_index" in p:
                 p["string_idx"] = p.pop("string_index")
             if "orientation" in p:
                 p["orientatn"] = p.pop("orientation")
-    gdf = gpd.GeoDataFrame(props, geometry=[Polygon(xy) for _, xy in records], crs=f"EPSG:{fld.epsg}")
+    gdf = gpd.GeoDataFrame(rows, geometry=[Polygon(xy) for _, xy in records], crs=f"EPSG:{fld.epsg}")
     name = "layout.gpkg" if fmt == "gpkg" else "layout.shp"
     gdf.to_file(out_dir / name, engine="pyogrio")
     return name
