@@ -32,8 +32,10 @@ from pathlib import Path
 import numpy as np
 
 from pvscan.errors import OutputError, SimulationError
+from pvscan.layout_scores import STRING_CLASSES, detected_match, evaluate_layout, no_string_scores
 
-__all__ = ["evaluate", "format_report", "flight_identity_check", "LOSS_GROUP_KINDS", "evaluate_layout"]
+__all__ = ["evaluate", "format_report", "flight_identity_check", "LOSS_GROUP_KINDS", "evaluate_layout",
+           "STRING_CLASSES"]
 
 log = logging.getLogger(__name__)
 
@@ -256,8 +258,18 @@ def evaluate(truth_dir, result_dir, settings=None, *, force: bool = False) -> di
         from pvscan.io.settings import load_pipeline
 
         settings = load_pipeline()["evaluate"]
-    match, how = _match(tf, rf, meta.get("epsg"), float(settings.get("min_id_match_fraction", 0.9)),
-                        float(settings.get("match_distance_m", 0.5)))
+    summ = _read_summary(result_dir)
+    lay = summ.get("layout")
+    layout_detected = isinstance(lay, dict) and lay.get("source") == "detected"
+    layout_scores = None
+    if layout_detected:
+        # the result's modules are where the ortho shows them (no drawing to place): matched by
+        # position against the truth's modules in the ortho
+        layout_scores, match = detected_match(truth_path.parent, tf, rf, float(settings.get("match_distance_m", 0.5)))
+        how = "position in the ortho (layout detected)"
+    else:
+        match, how = _match(tf, rf, meta.get("epsg"), float(settings.get("min_id_match_fraction", 0.9)),
+                            float(settings.get("match_distance_m", 0.5)))
 
     tp = [f["properties"] for f in tf]
     rp = [f.get("properties", {}) for f in rf]
@@ -390,14 +402,9 @@ def evaluate(truth_dir, result_dir, settings=None, *, force: bool = False) -> di
     dn_mae_found = (float(np.median(np.abs(dn_pred[dsel_found] - dn_true[dsel_found])))
                     if dsel_found.any() else None)
 
-    # co-registration
+    # co-registration (none on a detected layout: nothing was drawn to place)
     reg = None
-    summary_path = result_dir / "summary.json"
-    if summary_path.exists() and "layout_offset_m" in meta:
-        try:
-            summ = json.loads(summary_path.read_text(encoding="utf-8"))
-        except json.JSONDecodeError:
-            summ = {}
+    if not layout_detected and "layout_offset_m" in meta:
         shift = summ.get("layout_shift_m")
         if isinstance(shift, (list, tuple)) and len(shift) == 2:
             off = meta["layout_offset_m"]
@@ -425,7 +432,18 @@ def evaluate(truth_dir, result_dir, settings=None, *, force: bool = False) -> di
                         "delta_t_norm_median_abs_error_detected_k": _f(dn_mae_found),
                         "n_defective_scored": int(dsel.sum())},
         "registration": reg,
+        "detected_layout": (None if layout_scores is None else
+                            {**layout_scores, **no_string_scores(t_def, p_def, match, rf)}),
     }
+
+
+def _read_summary(result_dir: Path) -> dict:
+    """The result's ``summary.json`` ({} when missing or unreadable)."""
+    try:
+        data = json.loads((result_dir / "summary.json").read_text(encoding="utf-8"))
+    except (OSError, json.JSONDecodeError):
+        return {}
+    return data if isinstance(data, dict) else {}
 
 
 def format_report(scores: dict) -> str:
@@ -477,95 +495,18 @@ def format_report(scores: dict) -> str:
     lines += ["", f"healthy modules: temperature RMSE {fmt(t['healthy_rmse_k'])} K, bias {fmt(t['healthy_bias_k'])} K"
               f" (RMSE {fmt(t.get('healthy_rmse_no_distractor_k'))} K away from distractors)",
               f"defective modules: median |error| of delta_t_norm_k {fmt(t['delta_t_norm_median_abs_error_k'])} K"]
+    dl = scores.get("detected_layout")
+    if dl:
+        ce = dl.get("corner_error_m") or {}
+        ns = dl["no_string_classes"]
+        lines += [f"layout detected in the ortho: found {dl['found']}/{dl['truth_modules']} modules "
+                  f"({fmt(dl['found_fraction'], True)}), extra {dl['extra']}, corner error median "
+                  f"{fmt(ce.get('median'))} m, p95 {fmt(ce.get('p95'))} m",
+                  f"  classes without string ids (not {', '.join(ns['excluded'])}): recall {fmt(ns['recall'], True)}"
+                  f"  precision {fmt(ns['precision'], True)}  named right {fmt(ns['class_right'], True)}"
+                  f" of {ns['n_true']}"]
     if scores.get("registration"):
         r = scores["registration"]
         lines.append(f"layout shift: reported {r['reported_shift_m']} m for an offset of {r['truth_offset_m']} m"
                      f" (error {fmt(r['error_m'])} m)")
     return "\n".join(lines)
-
-
-# ----------------------------------------------------------------------------- layouts
-def evaluate_layout(truth_dir, layout_path, settings=None) -> dict:
-    """Score a detected module layout against a simulated flight's truth.
-
-    The truth's module polygons are where the modules are *in the ortho*: ``truth_ortho.geojson``
-    when the flight has one, else ``truth.geojson`` shifted back by the ``layout_offset_m``
-    it was drawn with (``truth.json``).
-
-    Parameters
-    ----------
-    truth_dir : path-like
-        A folder written by ``pvscan simulate``.
-    layout_path : path-like
-        The layout to score (any file GeoPandas reads; layer ``modules`` of a GeoPackage).
-    settings : mapping, optional
-        ``[evaluate]``: ``match_distance_m`` (largest centroid distance of a match) [m].
-
-    Returns
-    -------
-    dict
-        ``truth_modules``, ``layout_modules``, ``found`` (matched truth modules),
-        ``found_fraction``, ``extra`` (layout modules matching no truth module),
-        ``extra_fraction`` (of the truth's count), ``corner_error_m`` (per matched module the
-        largest distance of a truth corner to the nearest layout corner [m]: ``median``,
-        ``p95``, ``max``) and ``within_5cm`` (fraction of matched modules whose corner error is
-        at most 0.05 m).
-    """
-    import geopandas as gpd
-    import shapely
-    from scipy.spatial import cKDTree
-
-    truth_dir, layout_path = Path(truth_dir), Path(layout_path)
-    max_d = float((settings or {}).get("match_distance_m", 0.5))
-    ortho = truth_dir / "truth_ortho.geojson"
-    try:
-        if ortho.exists():
-            truth = gpd.read_file(ortho)
-            offset = (0.0, 0.0)
-        else:
-            truth = gpd.read_file(truth_dir / "truth.geojson")
-            with open(truth_dir / "truth.json", encoding="utf-8") as fh:
-                offset = tuple(json.load(fh).get("layout_offset_m", [0.0, 0.0]))
-    except Exception as exc:  # any reader failure (GDAL, JSON) is a bad input named by file
-        raise SimulationError(f"{truth_dir}: cannot read the truth: {exc}") from None
-    try:
-        layers = list(gpd.list_layers(layout_path)["name"])
-        layout = gpd.read_file(layout_path, layer="modules" if "modules" in layers else None)
-    except Exception as exc:  # any reader failure is a bad input named by file
-        raise OutputError(f"{layout_path}: cannot read the layout: {exc}") from None
-    if layout.crs is None or not layout.crs.is_projected:
-        raise OutputError(f"{layout_path}: the layout needs a projected CRS in metres")
-    truth = truth.to_crs(layout.crs)
-    tg = shapely.transform(np.asarray(truth.geometry.to_numpy()), lambda xy: xy - np.asarray(offset))
-    lg = np.asarray(layout.geometry.to_numpy())
-    tc = shapely.get_coordinates(shapely.centroid(tg))
-    lc = shapely.get_coordinates(shapely.centroid(lg))
-    n_t, n_l = len(tc), len(lc)
-    out: dict = {"truth_modules": n_t, "layout_modules": n_l}
-    if n_l == 0 or n_t == 0:
-        return {**out, "found": 0, "found_fraction": 0.0, "extra": n_l, "extra_fraction": None,
-                "corner_error_m": None, "within_5cm": None}
-    d, j = cKDTree(lc).query(tc)
-    hit = d < max_d
-    # one layout module matched by two truth modules counts once (the nearer)
-    order = np.argsort(d, kind="stable")
-    seen: set[int] = set()
-    for i in order:
-        if hit[i]:
-            if int(j[i]) in seen:
-                hit[i] = False
-            else:
-                seen.add(int(j[i]))
-    errs = []
-    for i in np.flatnonzero(hit):
-        a = shapely.get_coordinates(tg[i])[:4]
-        b = shapely.get_coordinates(lg[j[i]])[:4]
-        errs.append(float(np.max(np.min(np.hypot(a[:, None, 0] - b[None, :, 0], a[:, None, 1] - b[None, :, 1]),
-                                        axis=1))))
-    e = np.array(errs)
-    found = int(hit.sum())
-    return {**out, "found": found, "found_fraction": found / n_t, "extra": n_l - found,
-            "extra_fraction": (n_l - found) / n_t,
-            "corner_error_m": {"median": float(np.median(e)), "p95": float(np.percentile(e, 95)),
-                               "max": float(e.max())} if e.size else None,
-            "within_5cm": float((e <= 0.05).mean()) if e.size else None}

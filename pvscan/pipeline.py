@@ -38,7 +38,7 @@ if TYPE_CHECKING:
     from pvscan.measure.zonal import ZonalStats
 
 __all__ = ["inspect_flight", "InspectionResult", "Measurement", "OrthoInfo", "SeamLevelling", "measure_flight",
-           "run_settings", "true_statistics", "write_results"]
+           "run_settings", "true_statistics", "write_results", "detected_layout", "STRING_PATTERNS"]
 
 log = logging.getLogger(__name__)
 
@@ -286,8 +286,9 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
 
     timings = {} if timings is None else timings
     t0 = _clock()
+    detected = flight.flight.layout is None
     with open_orthos(flight.flight.orthos, flight.ortho, settings) as orthos:
-        modules = read_layout(flight, orthos.crs)
+        modules = detected_layout(flight, orthos, settings, progress) if detected else read_layout(flight, orthos.crs)
         _record(timings, "layout", t0)
 
         # the expected apparent glass temperature (Faiman + radiometry): the ortho's values are
@@ -300,8 +301,12 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         lon, lat = _site_lonlat(modules)
         mid = flight.flight.start + (flight.flight.end - flight.flight.start) / 2
         sun = register.sun_vector(lon, lat, mid)
-        reg = register.register_layout(orthos, modules, settings["register"], sun=sun, progress=progress,
-                                       expected_apparent_c=expected, forced_shift=shift)
+        if detected:
+            # the layout was found in this ortho: it is where the modules are, nothing to place
+            reg = register.Registration(status="not_run", message="layout detected in the ortho; no registration")
+        else:
+            reg = register.register_layout(orthos, modules, settings["register"], sun=sun, progress=progress,
+                                           expected_apparent_c=expected, forced_shift=shift)
         if reg.status == "failed" and not accept_poor_registration:
             raise RegistrationError(
                 f"{flight.flight.layout}: {reg.message}; fit the layout with `pvscan align {flight.path} --out "
@@ -353,6 +358,37 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
                        stats=stats, stats_apparent=stats_app, conditions=conds, flight_conditions=fc,
                        validity=validity, orthos_info=orthos_info, radiometry=params,
                        seams=SeamLevelling(stretches=stretches, offsets_k=seam_offsets, enabled=levelling))
+
+
+#: String-level patterns: they follow a string from its negative end, so they need string ids.
+STRING_PATTERNS = ("open_string", "pid")
+
+
+def detected_layout(flight: Flight, orthos: Any, settings: Pipeline,
+                    progress: ProgressFn | None = None) -> gpd.GeoDataFrame:
+    """The modules of a flight without ``flight.layout``: detected in the ortho
+    (:func:`pvscan.measure.layout_image.detect_layout`), as :func:`pvscan.io.layout.read_layout`
+    returns a drawn layout (ids as ``pvscan layout detect`` writes them, no string ids).
+
+    ``attrs["layout"]`` records ``source`` "detected", the detection's counts
+    (``detected``), the string patterns not run (``skipped_patterns``) and a warning saying so.
+    """
+    from pvscan.io.layout.build import build_modules
+    from pvscan.measure.layout_image import detect_layout
+
+    det = detect_layout(orthos, flight.module, flight.layout, settings, progress)
+    name = "layout detected in the ortho"
+    out = build_modules(det.modules.drop(columns=["status", "confidence", "orientation"]), flight.layout,
+                        flight.module, name)
+    info = dict(out.attrs.get("layout", {}))
+    s = det.summary()
+    info.update(file=name, source="detected", detected=s, skipped_patterns=list(STRING_PATTERNS))
+    info["warnings"] = [*info.get("warnings", []), (
+        f"{name}: no flight.layout, {s['tables']} tables and {s['modules']} modules found in the ortho "
+        f"(table confidence min {s['confidence_min']:.2f}); open_string and pid need string ids and were not "
+        f"looked for")]
+    out.attrs["layout"] = info
+    return out
 
 
 def _check_out_dir(out_dir: Path, overwrite: bool) -> None:
@@ -475,7 +511,8 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
     t0 = _clock()
     anomalies, module_table = classify.classify(
         modules, stats, conds, flight.module, settings,
-        confidence_factor=float(validity.confidence_factor), progress=progress)
+        confidence_factor=float(validity.confidence_factor), progress=progress,
+        string_patterns=flight.flight.layout is not None)
     _record(timings, "classify", t0)
 
     t0 = _clock()
@@ -498,8 +535,9 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
                   else np.arange(len(modules)).astype(str))
     summary = outputs.build_summary(
         modules=modules, anomalies=anomalies, module_spec=flight.module,
-        inputs={**m.orthos_info.to_dict(), "manifest": str(flight.path), "layout": str(flight.flight.layout),
-                "modules_without_data": no_data, "ortho_values": m.ortho_values},
+        inputs={**m.orthos_info.to_dict(), "manifest": str(flight.path),
+                "layout": str(flight.flight.layout or "detected in the ortho"), "modules_without_data": no_data,
+                "ortho_values": m.ortho_values},
         conditions=m.flight_conditions.to_dict(),
         validity=validity.to_dict(),
         registration=m.registration.to_dict(),

@@ -28,7 +28,7 @@ LAYERS: dict[str, int] = {
     "physics": 2,
     "measure": 3,
     "diagnose": 4,
-    "pipeline": 5, "fleet": 5, "evaluate": 5, "report": 5, "history": 5,
+    "pipeline": 5, "fleet": 5, "evaluate": 5, "layout_scores": 5, "report": 5, "history": 5,
     "cli": 6,
 }
 #: The simulator: what it may import, and who may import it.

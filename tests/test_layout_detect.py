@@ -16,6 +16,7 @@ import shapely
 from scipy.special import erf
 
 from pvscan.measure.layout_image.check import check_layout, corrected_layout
+from pvscan.measure.layout_image.detect import _consistent, _overlaps
 from pvscan.measure.layout_image.lattice import TableFit, _half_crossing
 from pvscan.measure.layout_image.segment import _min_rect
 
@@ -83,6 +84,70 @@ def test_lattice_corners_are_foreshortened_footprints():
     # neighbours one pitch apart along the axis
     step = c[0, 1, 0] - c[0, 0, 0]
     assert np.hypot(*step) == pytest.approx(1.058, abs=1e-9)
+
+
+def _table(origin, axis, length, depth, orientation="portrait", confidence=0.9, contrast=8.0, rows=2, cols=12):
+    axis = np.asarray(axis, float) / np.linalg.norm(axis)
+    return TableFit(origin=np.asarray(origin, float), axis=axis, across=np.array([-axis[1], axis[0]]),
+                    length_m=length, depth_m=depth, rows=rows, cols=cols, orientation=orientation,
+                    module_s_m=1.038, module_w_m=1.9, gap_s_m=0.02, gap_w_m=0.018, confidence=confidence,
+                    misfit=0.0, level_c=40.0, contrast_k=contrast, cut=(False,) * 4,
+                    status=np.full((rows, cols), "ok", dtype=object), glass=np.ones((rows, cols)))
+
+
+def test_two_fits_of_one_table_overlap_by_the_rectangles_shared_area():
+    # reference: two equal rectangles d apart along their long side share (L - d) * D (plane geometry)
+    rng = np.random.default_rng(SEED)
+    ang = rng.uniform(-math.pi, math.pi)
+    axis = np.array([math.cos(ang), math.sin(ang)])
+    length, depth = rng.uniform(8, 25), rng.uniform(2, 4)
+    origin = rng.uniform(0, 100, 2) + 5e5
+    share = 0.2
+    for d in (rng.uniform(0, 0.75) * length, rng.uniform(0.85, 0.99) * length, length + 1.0):
+        a = _table(origin, axis, length, depth)
+        b = _table(origin + d * axis, axis, length, depth)
+        shared = max(length - d, 0.0) * depth
+        assert _overlaps(a, b, share) == (shared > share * length * depth)
+
+
+def test_a_candidate_over_two_table_rows_is_searched_again_beside_the_fitted_one():
+    # reference: plane geometry; a candidate rectangle holding two tables across its axis, the
+    # lattice fitted to one: the strip left over is centred on the other table
+    from pvscan.measure.layout_image.detect import _remainders
+    from pvscan.measure.layout_image.segment import TableCandidate
+
+    rng = np.random.default_rng(SEED)
+    ang = rng.uniform(-math.pi / 4, math.pi / 4)
+    axis = np.array([math.cos(ang), math.sin(ang)])
+    across = np.array([-axis[1], axis[0]])
+    length, depth, gap = rng.uniform(10, 25), rng.uniform(2, 4), rng.uniform(2, 4)
+    low = rng.uniform(0, 100, 2) + 5e5  # the first table's corner
+    fit = _table(low, axis, length, depth)
+    other_centre = low + 0.5 * length * axis + (1.5 * depth + gap) * across
+    cand_centre = low + 0.5 * length * axis + 0.5 * (2 * depth + gap) * across
+    cand = TableCandidate(centre=cand_centre, axis=axis, length_m=length, depth_m=2 * depth + gap, level_c=40.0,
+                          band_c=(38.0, 42.0), energy_log_thr=0.0, ground_c=30.0, area_px=1000)
+    parts = _remainders(cand, fit, 1.038)
+    assert len(parts) == 1
+    p = parts[0]
+    # across the axis, the strip holds the whole other table and stays off the fitted one
+    w = float((p.centre - low) @ across)
+    assert w - 0.5 * p.depth_m > depth  # beyond the fitted table's far edge
+    assert w - 0.5 * p.depth_m <= depth + gap  # ... and before the other table's near edge
+    assert w + 0.5 * p.depth_m >= float((other_centre - low) @ across) + 0.5 * depth - 1e-9
+    assert float((p.centre - low) @ axis) == pytest.approx(0.5 * length)
+    assert p.length_m == pytest.approx(length)
+
+
+def test_lattices_on_ground_or_across_the_plant_are_not_tables():
+    # reference: the plant is one orientation and one kind of glass-ground contrast (common
+    # practice); a fit in the other orientation or with a fraction of the plant's contrast is not
+    rng = np.random.default_rng(SEED)
+    tables = [_table(rng.uniform(0, 100, 2), (1.0, 0.0), 12.0, 3.6, contrast=rng.uniform(6, 11)) for _ in range(5)]
+    turned = _table((0.0, 0.0), (1.0, 0.0), 4.0, 6.0, orientation="landscape", rows=6, cols=2)
+    faint = _table((0.0, 50.0), (1.0, 0.0), 12.0, 3.6, contrast=0.2 * float(np.median([t.contrast_k for t in tables])))
+    kept = _consistent([*tables, turned, faint], 0.25)
+    assert kept == tables
 
 
 def _modules_gdf(fits, prefix="D"):

@@ -44,6 +44,9 @@ def inspect_cmd(flight: Path, out_dir: Path, pipeline_path: Path | None, overwri
     settings = load_pipeline(pipeline_path)
     echo(f"pvscan: inspecting {fl.site.name}, flight {fl.flight.id} ({len(fl.flight.orthos)} ortho tile(s))",
          err=True, level=1)
+    if fl.flight.layout is None:
+        echo("pvscan: no flight.layout: detecting the module layout in the ortho first (no string ids: "
+             "open_string and pid are not looked for)", err=True)
     progress = Progress()
     try:
         result = inspect_flight(fl, settings, out_dir, overwrite=overwrite, report=not no_report,

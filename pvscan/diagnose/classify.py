@@ -77,7 +77,8 @@ def _stage(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module_s
            cfg: Mapping[str, Any], cfg_ref: Mapping[str, Any], heat: Faiman, ok: np.ndarray,
            healthy: np.ndarray, groups: np.ndarray, pos: np.ndarray, is_string: bool,
            final: bool = True, spread_all: np.ndarray | None = None,
-           geometry: dict[str, np.ndarray] | None = None) -> tuple[Features, list[Hits]]:
+           geometry: dict[str, np.ndarray] | None = None,
+           string_patterns: bool = True) -> tuple[Features, list[Hits]]:
     """One pass: references (own row, and outside the own string), features, module patterns,
     open strings."""
     t_med = stats.table["t_median_c"].to_numpy(dtype=float)
@@ -110,7 +111,7 @@ def _stage(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module_s
     F.extra["is_string"] = bool(is_string)
     F.extra.update(ref_other=ref_o, d_other=d_other, rsub_other=rsub_o,
                    sig_other=sig_o if np.isfinite(sig_o) else F.sig_mod)
-    runs = pattern_open_string(F, cfg, groups, pos)
+    runs = pattern_open_string(F, cfg, groups, pos) if string_patterns else []
     in_run = np.zeros(F.n, bool)
     for run in runs:
         in_run[run] = True
@@ -120,7 +121,8 @@ def _stage(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module_s
 
 def classify(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module_spec: Any,
              settings: Mapping[str, Any] | None = None, confidence_factor: float = 1.0,
-             progress: Callable[[str, int, int], None] | None = None) -> Diagnosis:
+             progress: Callable[[str, int, int], None] | None = None, *,
+             string_patterns: bool = True) -> Diagnosis:
     """Classify every module: local reference, delta T, defect patterns and severity.
 
     Parameters
@@ -144,6 +146,10 @@ def classify(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module
         0..1, multiplies every confidence (acquisition limits not met lower it).
     progress : callable, optional
         ``progress(stage, done, total)``.
+    string_patterns : bool
+        Run the string-level patterns (``open_string``, ``pid``). False when the modules'
+        stringing is unknown and the table rows would only guess it (a layout detected in
+        the ortho): their modules are then judged one by one.
 
     Returns
     -------
@@ -181,7 +187,7 @@ def classify(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module
 
     # pass 1: suspects
     F1, hits1 = _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, heat, ok, ok, groups, pos,
-                       is_string, final=False, geometry=geometry)
+                       is_string, final=False, geometry=geometry, string_patterns=string_patterns)
     suspect = F1.extra["suspect"] | F1.extra["in_run"]
     for h in hits1:
         suspect |= h.hit
@@ -192,7 +198,8 @@ def classify(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module
         progress("classify", 1, 3)
     # pass 2: final, suspects excluded from every reference
     F, hits = _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, heat, ok, ok & ~suspect,
-                     groups, pos, is_string, spread_all=spread_all, geometry=geometry)
+                     groups, pos, is_string, spread_all=spread_all, geometry=geometry,
+                     string_patterns=string_patterns)
     if progress:
         progress("classify", 2, 3)
     by = {h.defect: h for h in hits}
@@ -200,7 +207,7 @@ def classify(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module
     runs = F.extra["open_runs"]
     in_run = F.extra["in_run"]
     any_area = in_run | open_own | by["bypassed_substring"].hit | by["several_bypassed_substrings"].hit
-    pid_runs = pattern_pid(F, cfg, groups, pos, is_string, any_area)
+    pid_runs = pattern_pid(F, cfg, groups, pos, is_string, any_area) if string_patterns else []
 
     g_cond = condition_column(conditions, "poa_global", n)
     w_cond = condition_column(conditions, "wind_speed", n)

@@ -71,8 +71,9 @@ class FlightInfo:
         Flight identifier (default: the start time, ``YYYYMMDDTHHMM`` UTC).
     orthos : tuple of Path
         Single-band GeoTIFF tiles of one flight.
-    layout : Path
-        Module or table polygons (GeoJSON, GeoPackage or Shapefile).
+    layout : Path or None
+        Module or table polygons (GeoJSON, GeoPackage or Shapefile); None when the manifest
+        gives none (``pvscan inspect`` then detects the module layout in the ortho).
     start, end : datetime
         Time span of the flight (timezone-aware).
     frames : Path or None
@@ -83,7 +84,7 @@ class FlightInfo:
 
     id: str
     orthos: tuple[Path, ...]
-    layout: Path
+    layout: Path | None
     start: datetime
     end: datetime
     frames: Path | None = None
@@ -347,7 +348,7 @@ def flight_from_dict(data: dict, path: str | Path, check_files: bool = True) -> 
     info = FlightInfo(
         id=flight_id,
         orthos=orthos,
-        layout=_resolve(root, f["layout"], "flight.layout", where, check_files),
+        layout=_resolve(root, f["layout"], "flight.layout", where, check_files) if "layout" in f else None,
         start=start,
         end=end,
         frames=_resolve(root, f["frames"], "flight.frames", where, check_files) if "frames" in f else None,

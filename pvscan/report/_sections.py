@@ -307,6 +307,10 @@ def inputs(data: ResultData) -> list[dict[str, str]]:
     add("flight manifest", Path(str(inp["manifest"])).name if inp.get("manifest") else None)
     add("thermal ortho", data.ortho_paths() or inp.get("files"))
     add("layout", Path(str(inp["layout"])).name if inp.get("layout") else None)
+    lay = data.summary.get("layout") or {}
+    if isinstance(lay, Mapping) and lay.get("skipped_patterns"):
+        add("patterns not looked for", f"{', '.join(map(str, lay['skipped_patterns']))} (they need string ids; "
+                                       "the layout was detected in the ortho)")
     add("map CRS", inp.get("crs"))
     if isnum(inp.get("gsd_m")):
         add("ground sampling distance", f"{float(inp['gsd_m']) * 100:.1f} cm/px")

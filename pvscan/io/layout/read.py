@@ -113,6 +113,9 @@ def read_layout(flight_or_path: Flight | str | Path, crs: Any, spec: LayoutSpec 
 
     if hasattr(flight_or_path, "flight"):
         flight: Any = flight_or_path
+        if flight.flight.layout is None:
+            raise LayoutError(f"{flight.path}: key flight.layout: no layout given (pvscan inspect detects one "
+                              f"in the ortho; `pvscan layout detect` writes one)")
         path = Path(flight.flight.layout)
         spec = flight.layout
         module_spec = flight.module

@@ -74,30 +74,66 @@ class DetectedLayout:
         }
 
 
-def _overlaps(a: TableFit, b: TableFit) -> bool:
-    d = b.origin + 0.5 * b.length_m * b.axis + 0.5 * b.depth_m * b.across
-    c = a.origin + 0.5 * a.length_m * a.axis + 0.5 * a.depth_m * a.across
-    rel = d - c
-    return abs(rel @ a.axis) < 0.5 * a.length_m and abs(rel @ a.across) < 0.5 * a.depth_m
+def _consistent(fits: list[TableFit], contrast_share: float) -> list[TableFit]:
+    """The fits that look like the plant's tables: the orientation most of the modules have
+    (weighted by confidence), and a contrast (glass against ground, or of the frame-line comb)
+    at least ``contrast_share`` of the median of those; a lattice fitted to textured ground
+    or to a strip of a shadow fails one or the other."""
+    if len(fits) < 3:
+        return fits
+    weight: dict[str, float] = {}
+    for f in fits:
+        weight[f.orientation] = weight.get(f.orientation, 0.0) + f.rows * f.cols * f.confidence
+    major = max(weight, key=lambda k: weight[k])
+    same = [f for f in fits if f.orientation == major]
+    floor = contrast_share * float(np.median([f.contrast_k for f in same]))
+    return [f for f in same if f.contrast_k >= floor]
+
+
+def _outline(f: TableFit) -> Any:
+    from shapely import polygons
+
+    return polygons(np.array([f.origin, f.origin + f.length_m * f.axis,
+                              f.origin + f.length_m * f.axis + f.depth_m * f.across, f.origin + f.depth_m * f.across]))
+
+
+def _overlaps(a: TableFit, b: TableFit, share: float) -> bool:
+    """Whether two fitted tables cover each other by more than ``share`` of the smaller one."""
+    pa, pb = _outline(a), _outline(b)
+    inter = pa.intersection(pb).area
+    return inter > share * min(pa.area, pb.area)
 
 
 def _remainders(cand: Any, fit: TableFit, module_width_m: float) -> list[Any]:
-    """Parts of a candidate along its axis the fitted table does not cover.
+    """Parts of a candidate the fitted table does not cover, to be searched again.
 
-    Two tables of one row whose gap the mosaic closed form one candidate; the lattice takes
-    one of them, and each uncovered part longer than two modules is searched again.
+    Two tables whose gap the mosaic closed form one candidate (along a row, or rows across
+    one another when the ground between them is as textured as the glass); the lattice
+    takes one of them. The candidate's rectangle is cut into the strips beside the fitted
+    table across the axis (full length) and the parts before and after it along the axis
+    (within the fitted table's band); each wider than the limits below is searched again.
     """
     from dataclasses import replace
 
     a = cand.axis
+    n = np.array([-a[1], a[0]])
     c_fit = fit.origin + 0.5 * fit.length_m * fit.axis + 0.5 * fit.depth_m * fit.across
-    rel = float((c_fit - cand.centre) @ a)
-    half_fit = 0.5 * abs(fit.length_m * float(fit.axis @ a)) + 0.5 * abs(fit.depth_m * float(fit.across @ a))
-    lo_c, hi_c = -0.5 * cand.length_m, 0.5 * cand.length_m
+    rel = c_fit - cand.centre
+    rel_s, rel_w = float(rel @ a), float(rel @ n)
+    half_s = 0.5 * abs(fit.length_m * float(fit.axis @ a)) + 0.5 * abs(fit.depth_m * float(fit.across @ a))
+    half_w = 0.5 * abs(fit.length_m * float(fit.axis @ n)) + 0.5 * abs(fit.depth_m * float(fit.across @ n))
     out = []
-    for lo, hi in ((lo_c, rel - half_fit - 0.3), (rel + half_fit + 0.3, hi_c)):
+    lo_c, hi_c = -0.5 * cand.depth_m, 0.5 * cand.depth_m
+    band_lo, band_hi = max(lo_c, rel_w - half_w), min(hi_c, rel_w + half_w)
+    for lo, hi in ((lo_c, rel_w - half_w - 0.3), (rel_w + half_w + 0.3, hi_c)):
+        if hi - lo > module_width_m:
+            out.append(replace(cand, centre=cand.centre + 0.5 * (lo + hi) * n, depth_m=hi - lo))
+    lo_c, hi_c = -0.5 * cand.length_m, 0.5 * cand.length_m
+    band_c = cand.centre + 0.5 * (band_lo + band_hi) * n
+    for lo, hi in ((lo_c, rel_s - half_s - 0.3), (rel_s + half_s + 0.3, hi_c)):
         if hi - lo > 2.0 * module_width_m:
-            out.append(replace(cand, centre=cand.centre + 0.5 * (lo + hi) * a, length_m=hi - lo))
+            out.append(replace(cand, centre=band_c + 0.5 * (lo + hi) * a, length_m=hi - lo,
+                               depth_m=max(band_hi - band_lo, module_width_m)))
     return out
 
 
@@ -185,7 +221,7 @@ def detect_layout(orthos: Any, module: Any, layout: Any, settings: Any = None, p
     fits: list[TableFit] = []
     queue = list(cands)
     k = 0
-    while queue and k < 4 * len(cands) + 16:
+    while queue and k < 8 * len(cands) + 32:
         cand = queue.pop(0)
         k += 1
         fit = fit_table(orthos, cand, module, layout, cfg)
@@ -196,15 +232,18 @@ def detect_layout(orthos: Any, module: Any, layout: Any, settings: Any = None, p
         queue.extend(_remainders(cand, fit, module.width_m))
         if fit.rows * fit.cols < int(cfg["min_table_modules"]):
             continue
-        if fit.confidence < float(cfg["min_confidence"]):
-            log.info("table candidate at (%.1f, %.1f) dropped: confidence %.2f", *cand.centre, fit.confidence)
+        if fit.confidence < float(cfg["min_confidence"]) or fit.misfit > float(cfg["max_misfit"]):
+            log.info("table candidate at (%.1f, %.1f) dropped: confidence %.2f, misfit %.2f", *cand.centre,
+                     fit.confidence, fit.misfit)
             continue
         fits.append(fit)
+    fits = _consistent(fits, float(cfg["plant_contrast_share"]))
     # the same table found twice (two candidates of one table): keep the more confident
-    fits.sort(key=lambda f: -f.confidence)
+    # (a bigger table wins over a confident part of it: a part is fitted on fewer frame lines)
+    fits.sort(key=lambda f: -f.confidence * math.sqrt(f.rows * f.cols))
     kept: list[TableFit] = []
     for f in fits:
-        if not any(_overlaps(g, f) or _overlaps(f, g) for g in kept):
+        if not any(_overlaps(g, f, float(cfg["overlap_share"])) for g in kept):
             kept.append(f)
     if not kept:
         raise LayoutError(f"{orthos.tiles[0].path}: no table of modules found in the ortho "

@@ -287,6 +287,7 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
     close_m = float(settings["close_m"])
     cut = (False, False, False, False)
     s_lo = s_hi = w_lo = w_hi = 0.0
+    comb_k = 0.0
     for _ in range(int(settings["refine_passes"])):
         across = np.array([-axis[1], axis[0]])
         if across @ face < 0:
@@ -301,7 +302,7 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
         comb = _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd)
         if comb is not None:
             # the frame-line comb: the table's extent whatever the ground's temperature
-            _, ds, dw, ext_s, ext_w = comb
+            _, ds, dw, ext_s, ext_w, comb_k = comb
             s_lo, s_hi, w_lo, w_hi = ds - 0.5 * ext_s, ds + 0.5 * ext_s, dw - 0.5 * ext_w, dw + 0.5 * ext_w
             c0 = c1 = c2 = c3 = False
             band_s = (s > s_lo + 0.3) & (s < s_hi - 0.3)
@@ -360,11 +361,11 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
     if not any(cut):
         comb = _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd)
         if comb is not None:
-            orient, ds, dw, length, depth = comb
+            orient, ds, dw, length, depth, comb_k = comb
             centre = centre + ds * axis + dw * across
             orientations = (orient,)
     return _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band, cand, cut, module,
-                      layout, settings, gsd, orientations)
+                      layout, settings, gsd, orientations, comb_k)
 
 
 def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd):
@@ -392,13 +393,13 @@ def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings
             best = (key, orient, s_lo, s_hi, w_lo, w_hi, n, mod_s, mod_w)
     if best is None:
         return None
-    _, orient, s_lo, s_hi, w_lo, w_hi, n, mod_s, mod_w = best
+    key, orient, s_lo, s_hi, w_lo, w_hi, n, mod_s, mod_w = best
     ext_s = n * mod_s + (n - 1) * gap
-    return orient, 0.5 * (s_lo + s_hi), 0.5 * (w_lo + w_hi), ext_s, w_hi - w_lo
+    return orient, 0.5 * (s_lo + s_hi), 0.5 * (w_lo + w_hi), ext_s, w_hi - w_lo, float(key[1])
 
 
 def _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band, cand, cut, module, layout,
-               settings, gsd, orientations=("portrait", "landscape")) -> TableFit | None:
+               settings, gsd, orientations=("portrait", "landscape"), comb_k=0.0) -> TableFit | None:
     cos_t = math.cos(math.radians(layout.tilt_deg))
     gap_s, gap_w = float(layout.gap_m), float(layout.gap_m) * cos_t
     best = None
@@ -453,7 +454,9 @@ def _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band,
     status[valid_frac < float(settings["min_valid_fraction"])] = "cut"
     status[(val / np.maximum(tot, 1)).reshape(m, n) < 0.5] = "nodata"
     status[(tot.reshape(m, n) == 0)] = "nodata"
-    contrast = abs(level - cand.ground_c) if math.isfinite(cand.ground_c) else 0.0
+    # the evidence of a table: its glass against the ground, or (ground at the glass
+    # temperature) the comb of frame lines between its modules [K]
+    contrast = max(abs(level - cand.ground_c) if math.isfinite(cand.ground_c) else 0.0, comb_k)
     conf = (max(0.0, 1.0 - 2.0 * misfit) * float(np.median(glass))
             * min(1.0, contrast / float(settings["contrast_full_k"])))
     return TableFit(origin=origin, axis=axis, across=across, length_m=float(length), depth_m=float(depth),
