@@ -341,6 +341,8 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         val_mod.registration_check(reg, settings),
         val_mod.coverage_check(stats.table["valid_fraction"].to_numpy(float), settings),
         val_mod.plausibility_check(stats.table["t_median_c"].to_numpy(float), predicted, settings),
+        val_mod.row_shading_check(measured, flight.layout.tilt_deg, flight.layout.azimuth_deg, lon, lat,
+                                  (flight.flight.start, mid, flight.flight.end), settings),
     ], settings)
     _record(timings, "radiometry", t0)
 

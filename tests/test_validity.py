@@ -218,3 +218,78 @@ def test_registration_check_reads_the_placement_used():
     failed = registration_check(SimpleNamespace(status="failed", applied=False, message="m", evidence={
         "drawn": {"ratio_u": 0.9, "ratio_v": 1.1}, "proposals": [{"ratio_u": 0.7, "ratio_v": 0.65}]}), st)
     assert failed["passed"] is False and failed["value"] == pytest.approx(0.7)
+
+
+# ---------------------------------------------------------------- inter-row shading
+def _rows_layout(tilt_deg: float, width_m: float, pitch_m: float, n_rows: int = 3):
+    """South-facing rows on flat ground (EPSG:32632): tables 2 per row, modules 1 m along the
+    row, each table `width_m` of slant width seen in plan (width x cos tilt deep)."""
+    import geopandas as gpd
+    from shapely.geometry import box
+
+    depth = width_m * np.cos(np.radians(tilt_deg))
+    geoms, tables = [], []
+    for r in range(n_rows):
+        y0 = 5_300_000.0 - r * pitch_m  # the row in front (south) first
+        for t in range(2):
+            for m in range(10):
+                x0 = 700_000.0 + t * 11.0 + m * 1.0
+                geoms.append(box(x0, y0 - depth, x0 + 0.98, y0))
+                tables.append(f"R{r}T{t}")
+    return gpd.GeoDataFrame({"table_id": tables}, geometry=geoms, crs="EPSG:32632")
+
+
+def _closed_form_shade(tilt_deg, width_m, pitch_m, sun_elev_deg, sun_az_deg, facing_deg=180.0):
+    """Shaded share of a tilted row's slant width by the row in front, in the plane across
+    the rows: f = 1 - p / (W (cos b + sin b / tan a_p)), tan a_p = tan(elevation) /
+    cos(sun azimuth - facing) (row-spacing geometry of flat-ground arrays; common practice)."""
+    b = np.radians(tilt_deg)
+    cos_rel = np.cos(np.radians(sun_az_deg - facing_deg))
+    if sun_elev_deg <= 0 or cos_rel <= 0:
+        return None
+    tan_ap = np.tan(np.radians(sun_elev_deg)) / cos_rel
+    return float(max(0.0, 1.0 - pitch_m / (width_m * (np.cos(b) + np.sin(b) / tan_ap))))
+
+
+def test_row_geometry_reads_depth_and_pitch_from_the_layout():
+    from pvscan.measure.validity import row_geometry
+
+    depth, pitch = row_geometry(_rows_layout(25.0, 2.0, 4.5), 180.0)
+    assert depth == pytest.approx(2.0 * np.cos(np.radians(25.0)), abs=1e-9)
+    assert pitch == pytest.approx(4.5, abs=1e-9)
+    _, single = row_geometry(_rows_layout(25.0, 2.0, 4.5, n_rows=1), 180.0)
+    assert single is None
+
+
+@pytest.mark.parametrize("when, shaded", [
+    ("2026-12-21T08:45:00+01:00", True),   # a low winter sun: the rows shade each other
+    ("2026-06-21T13:00:00+02:00", False),  # a high summer sun at noon: no row shade
+])
+def test_row_shading_check_against_the_closed_form(when, shaded):
+    """The check's shaded share equals the closed-form row-spacing geometry at pvlib's sun
+    position (NREL SPA), and fails the flight exactly when some of a row is shaded."""
+    import pandas as pd
+    import pvlib
+
+    from pvscan.measure.validity import row_shading_check
+
+    lon, lat, tilt, width, pitch = 11.0, 47.8, 25.0, 2.0, 4.0
+    c = row_shading_check(_rows_layout(tilt, width, pitch), tilt, 180.0, lon, lat, [when])
+    sp = pvlib.solarposition.get_solarposition(pd.DatetimeIndex([pd.Timestamp(when)]), lat, lon)
+    expected = _closed_form_shade(tilt, width, pitch, float(sp["apparent_elevation"].iloc[0]),
+                                  float(sp["azimuth"].iloc[0]))
+    assert expected is not None
+    assert c["value"] == pytest.approx(expected, abs=2e-4)
+    assert (c["value"] > 0) is shaded
+    assert c["passed"] is (not shaded)
+    assert c["pitch_m"] == pytest.approx(pitch, abs=1e-3) and c["collector_width_m"] == pytest.approx(width, abs=1e-3)
+
+
+def test_row_shading_check_unknown_for_one_row_and_zero_for_flat_rows():
+    from pvscan.measure.validity import row_shading_check
+
+    one = row_shading_check(_rows_layout(25.0, 2.0, 4.0, n_rows=1), 25.0, 180.0, 11.0, 47.8,
+                            ["2026-12-21T08:45:00+01:00"])
+    assert one["passed"] is None and one["value"] is None
+    flat = row_shading_check(_rows_layout(0.0, 2.0, 4.0), 0.0, 180.0, 11.0, 47.8, ["2026-12-21T08:45:00+01:00"])
+    assert flat["value"] == 0.0 and flat["passed"] is True

@@ -8,7 +8,11 @@ pipeline once it knows them (:func:`with_checks`):
   (:func:`registration_check`, from the module evidence of :mod:`pvscan.measure.register`);
 - ``coverage``: the share of layout modules without usable pixels (:func:`coverage_check`);
 - ``plausibility``: the modules' true temperatures against what the Faiman model predicts
-  from irradiance, air temperature and wind (:func:`plausibility_check`).
+  from irradiance, air temperature and wind (:func:`plausibility_check`);
+- ``row_shading``: the share of a fixed-tilt row that the row in front of it shades during
+  the flight, from the sun's position and the rows' geometry in the layout
+  (:func:`row_shading_check`): a shaded strip reads as a cool or a bypassed band on
+  healthy modules.
 
 Every check is a dict ``name, value, limit, kind ("min" | "max"), unit, passed (None when
 unknown), source, message``; ``Validity.ok`` is false when any check failed.
@@ -28,7 +32,7 @@ import pandas as pd
 from pvscan.errors import ValidityWarning
 
 __all__ = ["Validity", "check_validity", "registration_check", "coverage_check", "plausibility_check",
-           "with_checks"]
+           "row_geometry", "row_shading_check", "with_checks"]
 
 logger = logging.getLogger(__name__)
 
@@ -252,6 +256,77 @@ def plausibility_check(temp_module: np.ndarray, temp_predicted: np.ndarray, sett
     c = _check("plausibility", abs(med) if math.isfinite(med) else None, lim, "max", "K",
                "Faiman 2008 heat balance; limit from memory", message=msg)
     c["median_difference_k"] = med if math.isfinite(med) else None
+    return c
+
+
+def row_geometry(modules: Any, azimuth_deg: float) -> tuple[float, float | None]:
+    """Plan depth of the tables and the spacing of their rows [m], from the layout.
+
+    Every vertex of the module footprints is projected on the direction the modules face
+    (``azimuth_deg``, degrees from north, clockwise; map x east, y north). A table's plan
+    depth is the extent of its vertices along that direction; a row's position, the middle of
+    that extent. Returns ``(median plan depth, median step between neighbouring rows)``; the
+    step is None when the layout holds a single row (nothing in front of it).
+    """
+    import shapely
+
+    geoms = modules.geometry.to_numpy()
+    if len(geoms) == 0:
+        return float("nan"), None
+    az = math.radians(float(azimuth_deg))
+    coords, idx = shapely.get_coordinates(geoms, return_index=True)
+    along = coords @ np.array([math.sin(az), math.cos(az)])
+    tables = modules["table_id"].astype(str).to_numpy()[idx]
+    ext = pd.DataFrame({"table": tables, "s": along}).groupby("table")["s"].agg(["min", "max"])
+    depth = float(np.median(ext["max"] - ext["min"]))
+    mids = np.sort(((ext["max"] + ext["min"]) / 2.0).to_numpy(float))
+    steps = np.diff(mids)
+    # tables of one row share their position; a step of more than half a table is a new row
+    steps = steps[steps > 0.5 * depth]
+    return depth, (float(np.median(steps)) if len(steps) else None)
+
+
+def row_shading_check(modules: Any, tilt_deg: float, azimuth_deg: float, lon: float, lat: float,
+                      times: Any, settings: Mapping | None = None) -> dict:
+    """``row_shading``: the largest share of a row's slant width that the row in front of it
+    shades at any of ``times`` [-] (at most ``[validity] max_row_shaded_fraction``).
+
+    The sun's position is pvlib's (NREL SPA) at the site (``lon``, ``lat`` [deg]); the shaded
+    share is pvlib's ``shading.shaded_fraction1d`` (Anderson and Jensen 2024) for rows tilted
+    ``tilt_deg`` toward ``azimuth_deg`` with the collector width and pitch of the layout
+    (:func:`row_geometry`: the plan depth over cos(tilt), the median row step). Thermography
+    needs the imaged modules unshaded (IEC TS 62446-3, from memory): a shaded strip on healthy
+    modules reads as a cool band or a bypassed substring. Unknown (passes) when the layout
+    holds one row; 0 for horizontal rows, which do not shade each other.
+    """
+    import pvlib
+
+    st = _validity_settings(settings)
+    lim = float(st["max_row_shaded_fraction"])
+    src = "IEC TS 62446-3 (modules unshaded, from memory); pvlib.shading.shaded_fraction1d"
+    depth, pitch = row_geometry(modules, azimuth_deg)
+    tilt = float(tilt_deg)
+    if pitch is None or not math.isfinite(depth) or not 0.0 <= tilt < 85.0:
+        return _check("row_shading", None, lim, "max", "", src,
+                      message="row shading: unknown (a single row, or no row geometry in the layout)")
+    width = depth / math.cos(math.radians(tilt))
+    idx = pd.DatetimeIndex([pd.Timestamp(t) for t in times])
+    sp = pvlib.solarposition.get_solarposition(idx, lat, lon)
+    frac = pvlib.shading.shaded_fraction1d(sp["apparent_zenith"].to_numpy(float), sp["azimuth"].to_numpy(float),
+                                           (float(azimuth_deg) - 90.0) % 360.0, tilt,
+                                           collector_width=width, pitch=pitch)
+    frac = np.asarray(frac, float)
+    worst = round(float(np.nanmax(frac)), 4) if np.isfinite(frac).any() else float("nan")
+    elev = float(np.min(90.0 - sp["apparent_zenith"].to_numpy(float)))
+    if math.isfinite(worst):
+        msg = (f"row shading: up to {100 * worst:.0f} % of each row's width in the shade of the row in front "
+               f"(sun down to {elev:.0f} deg; rows {pitch:.2f} m apart, {width:.2f} m wide at {tilt:g} deg; "
+               f"at most {100 * lim:g} %)")
+    else:
+        msg = "row shading: unknown"
+    c = _check("row_shading", worst, lim, "max", "", src, message=msg)
+    c.update({"pitch_m": round(pitch, 3), "collector_width_m": round(width, 3),
+              "lowest_sun_elevation_deg": round(elev, 2)})
     return c
 
 
