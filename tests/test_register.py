@@ -52,9 +52,9 @@ class ArrayOrthos:
         self.tiles = []
         for k, (a, t) in enumerate(zip(arrays, transforms)):
             h, w = a.shape
-            l, top = t @ (0, 0)
+            x0, top = t @ (0, 0)
             r, b = t @ (w, h)
-            self.tiles.append(Tile(t, crs, w, h, (min(l, r), min(b, top), max(l, r), max(b, top)),
+            self.tiles.append(Tile(t, crs, w, h, (min(x0, r), min(b, top), max(x0, r), max(b, top)),
                                    abs(t.a), f"tile{k}.tif"))
         self.reads = []
 
@@ -103,9 +103,9 @@ def render(modules, shift, gsd=0.05, pad=8.0, ss=2, t_ground=38.0, t_module=45.0
         origin = rotate_origin or ((b[0] + b[2]) / 2, (b[1] + b[3]) / 2)
         g = g.rotate(rotate_deg, origin=origin)
     moved = g.translate(*shift)
-    l, b, r, t = moved.total_bounds + np.array([-pad, -pad, pad, pad])
-    w, h = int(math.ceil((r - l) / gsd)), int(math.ceil((t - b) / gsd))
-    tr = Affine(gsd, 0, l, 0, -gsd, t)
+    x0, b, r, t = moved.total_bounds + np.array([-pad, -pad, pad, pad])
+    w, h = int(math.ceil((r - x0) / gsd)), int(math.ceil((t - b) / gsd))
+    tr = Affine(gsd, 0, x0, 0, -gsd, t)
     fine = tr @ Affine.scale(1 / ss)
     temps = t_module + spread_k * rng.standard_normal(len(moved))
     img_f = features.rasterize(((p, v) for p, v in zip(moved, temps)), out_shape=(h * ss, w * ss),
@@ -641,9 +641,9 @@ def render_tracker(modules, shift, t_glass, t_ground, t_shadow, gsd=0.05, pad=6.
     rows = shapely.union_all(np.asarray(moved.values, dtype=object)).buffer(0.015).buffer(-0.015)
     rows = list(getattr(rows, "geoms", [rows]))
     shadows = [shapely.affinity.translate(shapely.envelope(r), -(r.bounds[2] - r.bounds[0]), 0.0) for r in rows]
-    l, b, r, t = moved.total_bounds + np.array([-pad, -pad, pad, pad])
-    w, h = int(math.ceil((r - l) / gsd)), int(math.ceil((t - b) / gsd))
-    tr = Affine(gsd, 0, l, 0, -gsd, t)
+    x0, b, r, t = moved.total_bounds + np.array([-pad, -pad, pad, pad])
+    w, h = int(math.ceil((r - x0) / gsd)), int(math.ceil((t - b) / gsd))
+    tr = Affine(gsd, 0, x0, 0, -gsd, t)
     ss = 2
     fine = tr @ Affine.scale(1 / ss)
     shape = (h * ss, w * ss)
@@ -715,9 +715,9 @@ def test_expected_module_apparent_temperature_follows_faiman(tmp_path_factory):
     import pandas as pd
     import pvlib
 
-    from pvscan.physics import radiometry
     from pvscan.io.manifest import load_flight
     from pvscan.measure.register import expected_module_apparent_c
+    from pvscan.physics import radiometry
 
     res = _simulate(tmp_path_factory, "expected_t", conditions={"poa_irradiance_w_m2": 820.0, "ambient_c": 24.0,
                                                                 "wind_m_s": 2.5})

@@ -246,3 +246,31 @@ def test_row_pitch_of_the_layout(fixed_flight):
     # one row of tables: no pitch across the rows
     one_row = mods[mods["table_id"] == mods["table_id"].iloc[0]]
     assert _row_pitch(one_row, along) is None
+
+
+@pytest.mark.parametrize("layout", [
+    # turned 1 deg and scaled 0.8 % (the limits a layout error reaches on the sampler's
+    # turned_layout family), tables displaced 5 cm RMS each
+    {"offset_m": [0.4, -0.3], "rotation_deg": 1.0, "scale": 1.008, "local_rms_m": 0.05},
+    # tables displaced 12 cm RMS each: no similarity puts every footprint on glass
+    {"offset_m": [0.3, -0.2], "rotation_deg": 0.5, "local_rms_m": 0.12},
+])
+def test_distorted_layout_is_placed_right_or_refused(tmp_path, layout):
+    """Right on every flight, or say so: a layout turned, scaled and displaced table by table
+    is either placed with its modules within 8 cm RMS of where the ortho shows them (against
+    truth_ortho.geojson; the measured footprint keeps 6-8 cm from the module's edge, [zonal]
+    edge_margin_u/v, so its pixels stay on the module's glass), or the registration fails or is
+    ambiguous, which fails the registration validity check. Never placed wrong and called
+    right (an earlier version put layouts one or two module pitches off along the rows and
+    called the flight valid)."""
+    d = tmp_path / "flight"
+    simulate_flight(_fixed(layout=layout), d, seed=SEED)
+    reg, mods = _register(d)
+    if reg.status == "ok":
+        rms = _truth_ortho_rms_m(d, apply_placement(mods, reg.placement if reg.applied else None))
+        assert rms < 0.08, (rms, reg.message)
+    else:
+        assert reg.status in ("failed", "ambiguous"), reg.message
+        from pvscan.measure.validity import registration_check
+
+        assert registration_check(reg, load_pipeline())["passed"] is False, reg.message

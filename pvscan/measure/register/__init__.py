@@ -71,8 +71,8 @@ from pvscan.measure.register._blocks import _as_mappings  # noqa: F401  (used by
 from pvscan.measure.register._records import BlockShift, Registration
 from pvscan.measure.register.correlate import CorrelationPeak, correlation_surface, phase_correlate, upsampled_peak
 from pvscan.measure.register.estimate import align_flight, apply_shift, estimate_shift
-from pvscan.measure.register.fit import align_layout, apply_placement, placement_of, register_layout
 from pvscan.measure.register.evidence import Placement, sun_vector
+from pvscan.measure.register.fit import align_layout, apply_placement, placement_of, register_layout
 from pvscan.measure.register.physics import expected_module_apparent_c
 
 __all__ = [

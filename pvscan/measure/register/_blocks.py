@@ -147,7 +147,7 @@ class _BlockData:
     vote: float = 0.0
     # sign -> (snr, distinctness, beyond (dx, dy) or None, [(row, col, height, row_refined, col_refined), ...])
     peaks: dict = field(default_factory=dict)
-    record: BlockShift | None = None
+    record: BlockShift = field(default_factory=lambda: BlockShift(math.nan, math.nan, math.nan, math.nan, 0.0))
 
 
 _MAX_CANDIDATES = 6

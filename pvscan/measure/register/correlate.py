@@ -159,7 +159,7 @@ def _peaks(region: np.ndarray, r: int, exclusion_px: float, ratio: float, near_z
     finite = np.isfinite(region)
     vals = region[finite]
     best_i = int(np.argmax(np.where(finite, region, -np.inf)))
-    bi, bj = np.unravel_index(best_i, region.shape)
+    bi, bj = (int(v) for v in np.unravel_index(best_i, region.shape))
     best = float(region[bi, bj])
     med = float(np.median(vals))
     mad = float(np.median(np.abs(vals - med))) * 1.4826

@@ -103,14 +103,14 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
     plan = []
     for ti, tile in enumerate(tiles):
         name = _tile_attr(tile, "path") or _tile_attr(tile, "name") or f"tile {ti}"
-        l, b, r, t = _tile_attr(tile, "bounds")
-        idx = tree.query(shapely.box(l, b, r, t), predicate="intersects") if tree is not None else []
+        x0, b, r, t = _tile_attr(tile, "bounds")
+        idx = tree.query(shapely.box(x0, b, r, t), predicate="intersects") if tree is not None else []
         if len(idx) == 0:
             notes.append(f"ortho tile {ti} ({name}): no layout module; ignored")
             continue
         sub = geoms[np.sort(idx)]
         gb = shapely.total_bounds(sub)
-        gb = (max(gb[0], l), max(gb[1], b), min(gb[2], r), min(gb[3], t))
+        gb = (max(gb[0], x0), max(gb[1], b), min(gb[2], r), min(gb[3], t))
         for win in _block_windows(tile, gb, cfg):
             plan.append((ti, tile, win))
 
@@ -129,7 +129,7 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
         ys = [wb[0][1], wb[1][1]]
         pad = float(cfg["max_shift_m"])
         box = shapely.box(min(xs) - pad, min(ys) - pad, max(xs) + pad, max(ys) + pad)
-        gidx = tree.query(box, predicate="intersects")
+        gidx = tree.query(box, predicate="intersects") if tree is not None else np.zeros(0, int)
         bd, why = _prepare_block(orthos, ti, tile, win, geoms[np.sort(gidx)], cfg, f, work_gsd)
         cx, cy = t @ (win.col_off + win.width / 2.0, win.row_off + win.height / 2.0)
         if bd is None:
@@ -166,9 +166,9 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
         best_h = ext[0][2]
         ratio = float(cfg["ambiguity_ratio"])
         # candidates down to half the best peak (the fit may re-admit one of them)
-        cands = [c for c in ext if c[2] - med >= keep_base * (best_h - med)][:_MAX_CANDIDATES]
+        kept = [c for c in ext if c[2] - med >= keep_base * (best_h - med)][:_MAX_CANDIDATES]
         # (all candidates, those within ambiguity_ratio of the best, height above median)
-        cands = (cands, [c for c in cands if c[2] - med >= ratio * (best_h - med)], med)
+        cands = (kept, [c for c in kept if c[2] - med >= ratio * (best_h - med)], med)
         c_snr = min(max((snr - snr_min) / max(snr_full - snr_min, 1e-9), 0.0), 1.0)
         c_dis = min(max(distinct / max(dfull, 1e-9), 0.0), 1.0)
         conf = c_snr * c_dis
@@ -190,8 +190,8 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
     confs = np.array([bd.record.confidence for bd in blocks])
     if expected_apparent_c is None and flight is not None:
         expected_apparent_c = expected_module_apparent_c(flight, strict=False)
-    plausible = (bool(cfg["plausibility"]) and expected_apparent_c is not None
-                 and math.isfinite(float(expected_apparent_c)))
+    exp_c = float(expected_apparent_c) if expected_apparent_c is not None else math.nan
+    plausible = bool(cfg["plausibility"]) and math.isfinite(exp_c)
     switch, note = None, ""
     if confs.max() <= 0:
         for bd, bm in zip(blocks, best_m):
@@ -200,7 +200,7 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
         if plausible:
             # no block is distinct: the glass temperature may still pick one candidate
             note, switch = _plausibility(orthos, tiles, geoms, blocks, phys_all, to_m, reg.measured_m,
-                                         float(expected_apparent_c), cfg)
+                                         exp_c, cfg)
         if switch is None:
             if note:
                 reg.notes.append(note)
@@ -337,7 +337,7 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
         # the module glass must look like sunlit modules at the flight's conditions
         if plausible:
             note, switch = _plausibility(orthos, tiles, geoms, blocks, phys_all, to_m, (sx, sy),
-                                         float(expected_apparent_c), cfg)
+                                         exp_c, cfg)
     if switch is not None:
         centre, factor = switch
         for bd, (c0, n0) in zip(blocks, saved):
@@ -360,7 +360,7 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
     if note:
         reg.notes.append(note)
         logger.info("register: %s", note)
-    inl = np.array([bd.record.used for bd in blocks], bool)
+    inl = np.array([bool(bd.record.used) for bd in blocks], dtype=bool)
 
     n_used = int(inl.sum())
     desc = (f"measured shift ({sx:+.3f}, {sy:+.3f}) m from {n_used} of {len(records)} blocks, "

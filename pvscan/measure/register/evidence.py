@@ -418,27 +418,28 @@ def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, 
     Returns
     -------
     dict
-        ``evidence`` (E of the placement) [-], ``ratio_u``, ``ratio_v`` [-],
+        ``evidence`` (E of the placement) [-], ``spread_k`` (the plain spread inside the
+        footprints, the numerator of the probe ratios) [K], ``ratio_u``, ``ratio_v`` [-],
         ``glass_error_k`` [K] (NaN when unknown) and ``ok`` (both ratios at most
         ``evidence_max_ratio``, and the glass temperature within its limit when known).
     """
-    kw = {"inset_u": float(cfg["evidence_inset"]), "inset_v": float(cfg["evidence_inset"]),
-          "band_m": float(cfg["evidence_band_m"]), "off_glass_k": float(cfg["evidence_off_glass_k"])}
-    sd0, mean0 = module_spread(sample, placement, local=local, with_mean=True, **kw)
+    inset = float(cfg["evidence_inset"])
+    sd0, mean0 = module_spread(sample, placement, local=local, with_mean=True, inset_u=inset, inset_v=inset,
+                               band_m=float(cfg["evidence_band_m"]), off_glass_k=float(cfg["evidence_off_glass_k"]))
     e0 = evidence(sd0)
     # the probes compare plain spreads: the outline contrast that guides the search (and
     # keeps it off smooth ground) also grows when a footprint slides onto a table edge
-    sp0 = evidence(module_spread(sample, placement, local=local, inset_u=kw["inset_u"], inset_v=kw["inset_v"]))
+    sp0 = evidence(module_spread(sample, placement, local=local, inset_u=inset, inset_v=inset))
     glass = float(np.nanmedian(mean0)) if np.isfinite(mean0).any() else float("nan")
     d = float(cfg["evidence_probe_m"])
     wsh = float(cfg["evidence_shadow_weight"])
-    out: dict[str, Any] = {"evidence": e0}
+    out: dict[str, Any] = {"evidence": e0, "spread_k": sp0}
     for name, ax in zip(("u", "v"), _unit_axes(sample)):
         num, den = 0.0, 0.0
         for sgn in (1.0, -1.0):
             step = sgn * ax * d
             p = placement.moved(tx=placement.tx + step[0], ty=placement.ty + step[1])
-            e = evidence(module_spread(sample, p, local=local, inset_u=kw["inset_u"], inset_v=kw["inset_v"]))
+            e = evidence(module_spread(sample, p, local=local, inset_u=inset, inset_v=inset))
             # away from the sun: onto the table's shadow, which may look like glass
             w = wsh if (sun is not None and float(step @ np.asarray(sun[:2])) < 0) else 1.0
             if math.isfinite(e):
@@ -447,8 +448,9 @@ def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, 
         e_probe = num / den if den > 0 else float("nan")
         out[f"ratio_{name}"] = sp0 / e_probe if (math.isfinite(e_probe) and e_probe > 0) else float("nan")
     lim = float(cfg["evidence_max_ratio"])
-    known = expected_c is not None and math.isfinite(float(expected_c))
-    out["glass_error_k"] = glass - float(expected_c) if known else float("nan")
+    exp_c = float(expected_c) if expected_c is not None else math.nan
+    known = math.isfinite(exp_c)
+    out["glass_error_k"] = glass - exp_c if known else float("nan")
     glass_ok = (not known) or abs(out["glass_error_k"]) <= float(cfg["evidence_glass_max_k"])
     out["ok"] = bool(all(math.isfinite(out[f"ratio_{a}"]) and out[f"ratio_{a}"] <= lim for a in ("u", "v"))
                      and math.isfinite(e0) and glass_ok)

@@ -30,15 +30,16 @@ import numpy as np
 
 from pvscan.errors import RegistrationWarning
 from pvscan.measure.register._blocks import _settings
+from pvscan.measure.register._pitch import _pitches, _row_pitch
 from pvscan.measure.register._records import Registration
 from pvscan.measure.register.estimate import estimate_shift
-from pvscan.measure.register.local import refine_tables, table_offsets
 from pvscan.measure.register.evidence import (
     Placement,
     placement_quality,
     refine_placement,
     sample_modules,
 )
+from pvscan.measure.register.local import refine_tables, table_offsets
 
 logger = logging.getLogger(__name__)
 
@@ -150,17 +151,17 @@ def register_layout(orthos: Any, modules, settings: Mapping | None = None, *, su
         # besides the configured blocks, at least min_blocks_across blocks across the site, so
         # that rotation and scale are measured on a small site too (one block: a shift only)
         small = min(float(cfg["block_m"]), max(float(cfg["min_block_m"]), extent / float(cfg["min_blocks_across"])))
-        reg = None
+        fits: list[Registration] = []
         for block in dict.fromkeys([float(cfg["block_m"]), small]):
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", RegistrationWarning)
                 r = estimate_shift(orthos, modules, {**cfg, "block_m": block}, progress=progress,
                                    expected_apparent_c=expected_apparent_c)
-            reg = r if reg is None else reg
+            fits.append(r)
             p = placement_of(r, centre)
             if p is not None:
                 proposals.append(p)
-        assert reg is not None
+        reg = fits[0]
         refine = True
     s_id = _sample_at(orthos, modules, None, cfg)
     if len(s_id) == 0:
@@ -174,6 +175,7 @@ def register_layout(orthos: Any, modules, settings: Mapping | None = None, *, su
     radius = float(cfg["evidence_local_radius_m"])
     far = float(cfg["evidence_far_gate"])
     chosen, q_c = None, None
+    rescue = False
 
     def consider(cand: Placement) -> None:
         nonlocal chosen, q_c
@@ -251,6 +253,21 @@ def register_layout(orthos: Any, modules, settings: Mapping | None = None, *, su
         reg.message = (f"layout used as drawn ({why}): module evidence {q_id['evidence']:.3f}, probe ratios "
                        f"{q_id['ratio_u']:.2f}, {q_id['ratio_v']:.2f} (limit {lim:g})")
         _no_move(reg)
+    elif refine and (rescued := _rescue_locally(orthos, modules, reg, cfg, ident, sun, expected_apparent_c)):
+        chosen, q_c = rescued
+        rescue = True
+        reg.placement = chosen
+        reg.applied = True
+        reg.model = chosen.shift_model()
+        reg.follow_drift = True
+        reg.shift_m = (chosen.tx, chosen.ty)
+        reg.residual_rotation_deg, reg.residual_scale = chosen.theta_deg, chosen.scale
+        reg.status = "ok"
+        reg.evidence["used"] = "proposal"
+        reg.message = (f"layout moved by ({chosen.tx:+.3f}, {chosen.ty:+.3f}) m, rotated {chosen.theta_deg:+.3f} deg, "
+                       f"scaled {chosen.scale:.5f}, then table by table ({reg.local.message}): module evidence "
+                       f"{q_id['evidence']:.3f} -> {q_c['evidence']:.3f} (probe ratios {q_c['ratio_u']:.2f}, "
+                       f"{q_c['ratio_v']:.2f}; limit {lim:g})")
     else:
         reg.placement = ident
         reg.status = "failed"
@@ -265,7 +282,17 @@ def register_layout(orthos: Any, modules, settings: Mapping | None = None, *, su
         reg.evidence["chosen"] = q_c
     if reg.status == "ok" and forced_shift is None:
         _resolve_pitch(orthos, modules, reg, cfg, ident, sun, expected_apparent_c)
-    if reg.status in ("ok", "ambiguous") and forced_shift is None and cfg["local_enabled"]:
+    if rescue and q_c is not None and reg.status != "ok":
+        # put on glass only table by table, and one module pitch away fits almost as well:
+        # too weak to measure on
+        reg.placement = ident
+        reg.status = "failed"
+        reg.evidence["used"] = "none"
+        reg.message = ("the layout could not be placed on the modules of the ortho: refined table by table its "
+                       f"footprints sit on glass (probe ratios {q_c['ratio_u']:.2f}, {q_c['ratio_v']:.2f}), but a "
+                       "placement one module pitch away fits almost as well")
+        _no_move(reg)
+    if reg.status in ("ok", "ambiguous") and forced_shift is None and cfg["local_enabled"] and reg.local is None:
         _refine_locally(orthos, modules, reg, cfg, ident)
     logger.info("register: %s", reg.message)
     return reg
@@ -333,6 +360,36 @@ def _resolve_pitch(orthos, modules, reg: Registration, cfg: Mapping, ident: Plac
                         f"than {1.0 + margin:.2f} needed): findings may sit on the neighbouring module")
 
 
+def _rescue_locally(orthos, modules, reg: Registration, cfg: Mapping, ident: Placement, sun,
+                    expected_c) -> tuple[Placement, dict] | None:
+    """The proposal nearest to sitting on glass, refined table by table (:mod:`.local`) and
+    judged again by the same glass test.
+
+    A global similarity cannot follow the tables one by one: where the ortho's local
+    distortion is a few centimetres, the footprints of a right global fit straddle the
+    module edges enough to fail the probe ratios. Returns the placement with its table
+    corrections and its quality when it passes, else None (``reg.local`` keeps the attempt)."""
+    if not cfg["local_enabled"]:
+        return None
+    props = [q for q in (reg.evidence or {}).get("proposals", []) if "shift_m" in q]
+    if not props:
+        return None
+    best = min(props, key=lambda q: max(_num(q.get("ratio_u")), _num(q.get("ratio_v"))))
+    if not math.isfinite(max(_num(best.get("ratio_u")), _num(best.get("ratio_v")))):
+        return None
+    p0 = Placement(float(best["shift_m"][0]), float(best["shift_m"][1]), float(best["rotation_deg"]),
+                   float(best["scale"]), ident.cx, ident.cy)
+    lf = refine_tables(orthos, apply_placement(modules, p0), cfg)
+    reg.local = lf
+    if not lf.applied:
+        return None
+    pl = Placement(p0.tx, p0.ty, p0.theta_deg, p0.scale, p0.cx, p0.cy,
+                   tables=tuple((str(k), float(v[0]), float(v[1])) for k, v in lf.shifts.items()))
+    q = _judge(_sample_at(orthos, modules, pl, cfg), ident, cfg, sun, expected_c)
+    reg.evidence["local_rescue"] = {**q, "tables_refined": int(lf.summary().get("tables_refined", 0))}
+    return (pl, q) if q["ok"] else None
+
+
 def _refine_locally(orthos, modules, reg: Registration, cfg: Mapping, ident: Placement) -> None:
     """Per-table corrections after the global placement (:mod:`.local`), kept in
     ``reg.placement.tables`` when the module evidence prefers them."""
@@ -350,71 +407,6 @@ def _refine_locally(orthos, modules, reg: Registration, cfg: Mapping, ident: Pla
         reg.follow_drift = True
         reg.shift_m = (0.0, 0.0)
     reg.message += f"; {lf.message}"
-
-
-def _pitches(modules) -> list[np.ndarray]:
-    """Median vectors from a module to its next neighbour along a table row and across it [m]."""
-    import pandas as pd
-
-    need = {"table_id", "table_row", "table_col", "fx0", "fy0", "fux", "fuy", "fvx", "fvy"}
-    if not need <= set(modules.columns):
-        return []
-    cx = modules["fx0"].to_numpy(float) + 0.5 * (modules["fux"].to_numpy(float) + modules["fvx"].to_numpy(float))
-    cy = modules["fy0"].to_numpy(float) + 0.5 * (modules["fuy"].to_numpy(float) + modules["fvy"].to_numpy(float))
-    df = pd.DataFrame({"t": modules["table_id"].astype(str).to_numpy(), "r": modules["table_row"].to_numpy(),
-                       "c": modules["table_col"].to_numpy(), "x": cx, "y": cy})
-    out = []
-    for key, step in (("r", "c"), ("c", "r")):
-        d = df.sort_values(["t", key, step])
-        same = (d["t"].to_numpy()[1:] == d["t"].to_numpy()[:-1]) & (d[key].to_numpy()[1:] == d[key].to_numpy()[:-1]) & (
-            np.diff(d[step].to_numpy()) == 1)
-        if same.any():
-            dx = np.diff(d["x"].to_numpy())[same]
-            dy = np.diff(d["y"].to_numpy())[same]
-            v = np.array([np.median(dx), np.median(dy)])
-            if np.all(np.isfinite(v)) and np.hypot(*v) > 0:
-                out.append(v)
-    return out
-
-
-def _row_pitch(modules, along: np.ndarray | None) -> np.ndarray | None:
-    """Median vector from a table to the next table across the rows (the row pitch) [m].
-
-    ``along`` is the vector between neighbouring modules along a table row. For each table
-    the nearest other table whose centre lies across the rows (its offset along the row
-    shorter than half the longer table) gives one vector; the median of those pointing one
-    way is the pitch. None when the site has one row of tables."""
-    if along is None or "table_id" not in modules.columns or len(modules) == 0:
-        return None
-    a = np.asarray(along, float)
-    a = a / max(float(np.hypot(*a)), 1e-12)
-    n = np.array([-a[1], a[0]])
-    fr = modules[["fx0", "fy0", "fux", "fuy", "fvx", "fvy"]].to_numpy(float)
-    cx = fr[:, 0] + 0.5 * (fr[:, 2] + fr[:, 4])
-    cy = fr[:, 1] + 0.5 * (fr[:, 3] + fr[:, 5])
-    tid = modules["table_id"].astype(str).to_numpy()
-    names, inv = np.unique(tid, return_inverse=True)
-    if len(names) < 2:
-        return None
-    cnt = np.bincount(inv).astype(float)
-    tx = np.bincount(inv, cx) / cnt
-    ty = np.bincount(inv, cy) / cnt
-    s_al = (cx - tx[inv]) * a[0] + (cy - ty[inv]) * a[1]
-    half = np.zeros(len(names))
-    np.maximum.at(half, inv, np.abs(s_al))
-    vecs = []
-    for i in range(len(names)):
-        dx, dy = tx - tx[i], ty - ty[i]
-        d_al = dx * a[0] + dy * a[1]
-        d_n = dx * n[0] + dy * n[1]
-        ok = (np.abs(d_al) < np.maximum(half, half[i])) & (d_n > 0.3)
-        if ok.any():
-            j = int(np.argmin(np.where(ok, d_n, np.inf)))
-            vecs.append((dx[j], dy[j]))
-    if not vecs:
-        return None
-    v = np.median(np.asarray(vecs), axis=0)
-    return v if np.all(np.isfinite(v)) and np.hypot(*v) > 0.3 else None
 
 
 def _reduce_for(orthos, cfg: Mapping) -> int:

@@ -163,7 +163,6 @@ def refine_tables(orthos: Any, modules, cfg: Mapping) -> LocalFit:
     # the plain spread inside nearly whole footprints: its minimum is where the modules are
     # (the outline contrast would pull a table toward the strongest edge beside it)
     inset = float(cfg["evidence_fine_inset"])
-    kw = {"inset_u": inset, "inset_v": inset}
     sub_cfg = {**cfg, "evidence_inset": inset, "evidence_band_m": None, "evidence_step_m": float(cfg["local_step_m"]),
                "max_shift_m": radius}
     tables = sample.table.astype(str)
@@ -176,7 +175,7 @@ def refine_tables(orthos: Any, modules, cfg: Mapping) -> LocalFit:
     for t in names:
         sel = tables == t
         sub = subs[t] = _take(sample, sel)
-        e0 = evidence(module_spread(sub, ident, **kw))
+        e0 = evidence(module_spread(sub, ident, inset_u=inset, inset_v=inset))
         p, e1 = refine_placement(sub, ident, sub_cfg, rotate=False, scale=False)
         recs.append({"table_id": t, "dx_m": float(p.tx), "dy_m": float(p.ty), "evidence_before": e0,
                      "evidence_after": e1, "x": float(np.mean(cx[sel])), "y": float(np.mean(cy[sel]))})
@@ -203,7 +202,7 @@ def refine_tables(orthos: Any, modules, cfg: Mapping) -> LocalFit:
             # an outlier: kept only when its own modules decisively prefer it to what its
             # neighbours say; else it takes the neighbours' correction if that helps it
             e_nb = evidence(module_spread(subs[r["table_id"]], ident.moved(tx=float(med[0]), ty=float(med[1])),
-                                          **kw))
+                                          inset_u=inset, inset_v=inset))
             if math.isfinite(e_nb) and r["evidence_after"] < (1.0 - gate) * e_nb:
                 continue
             if math.isfinite(e_nb) and e_nb < (1.0 - gate) * r["evidence_before"] and math.hypot(*med) >= min_m:
@@ -212,8 +211,8 @@ def refine_tables(orthos: Any, modules, cfg: Mapping) -> LocalFit:
                 r["status"] = "rejected"
     shifts = {r["table_id"]: (r["dx_m"], r["dy_m"]) for r in recs if r["status"] in ("refined", "neighbours")}
     local = np.array([shifts.get(t, (0.0, 0.0)) for t in tables], float)
-    e_before = evidence(module_spread(sample, ident, **kw))
-    e_after = evidence(module_spread(sample, ident, local=local, **kw)) if shifts else e_before
+    e_before = evidence(module_spread(sample, ident, inset_u=inset, inset_v=inset))
+    e_after = evidence(module_spread(sample, ident, local=local, inset_u=inset, inset_v=inset)) if shifts else e_before
     site_gate = float(cfg["local_site_gate"])
     applied = bool(shifts) and math.isfinite(e_after) and e_after < (1.0 - site_gate) * e_before
     out_recs = [{k2: (round(v, 4) if isinstance(v, float) and math.isfinite(v) else v) for k2, v in r.items()

@@ -130,11 +130,11 @@ def _module_samples(orthos, tiles, geoms, cfg):
             continue
         gx, gy = gx[inside], gy[inside]
         cx, cy = float(gx.mean()), float(gy.mean())
-        for ti, ((l, b, r, t), tr, w, h) in enumerate(bounds):
-            if l <= cx <= r and b <= cy <= t:
-                break
-        else:
+        ti = next((k for k, ((bx0, by0, bx1, by1), _, _, _) in enumerate(bounds)
+                   if bx0 <= cx <= bx1 and by0 <= cy <= by1), None)
+        if ti is None:
             continue
+        _, tr, w, h = bounds[ti]
         inv = ~tr
         cols, rows = zip(*(inv @ (xx, yy) for xx in (x0 - reach, x1 + reach) for yy in (y0 - reach, y1 + reach)))
         c0, c1 = max(0, int(math.floor(min(cols)))), min(w, int(math.ceil(max(cols))))

@@ -1,0 +1,72 @@
+"""Pitches of the layout's rows: the vectors one module along a table row and one table
+across the rows, which the one-pitch ambiguity of periodic rows is tested against [m]."""
+from __future__ import annotations
+
+import numpy as np
+
+__all__ = ["_pitches", "_row_pitch"]
+
+
+def _pitches(modules) -> list[np.ndarray]:
+    """Median vectors from a module to its next neighbour along a table row and across it [m]."""
+    import pandas as pd
+
+    need = {"table_id", "table_row", "table_col", "fx0", "fy0", "fux", "fuy", "fvx", "fvy"}
+    if not need <= set(modules.columns):
+        return []
+    cx = modules["fx0"].to_numpy(float) + 0.5 * (modules["fux"].to_numpy(float) + modules["fvx"].to_numpy(float))
+    cy = modules["fy0"].to_numpy(float) + 0.5 * (modules["fuy"].to_numpy(float) + modules["fvy"].to_numpy(float))
+    df = pd.DataFrame({"t": modules["table_id"].astype(str).to_numpy(), "r": modules["table_row"].to_numpy(),
+                       "c": modules["table_col"].to_numpy(), "x": cx, "y": cy})
+    out = []
+    for key, step in (("r", "c"), ("c", "r")):
+        d = df.sort_values(["t", key, step])
+        same = (d["t"].to_numpy()[1:] == d["t"].to_numpy()[:-1]) & (d[key].to_numpy()[1:] == d[key].to_numpy()[:-1]) & (
+            np.diff(d[step].to_numpy()) == 1)
+        if same.any():
+            dx = np.diff(d["x"].to_numpy())[same]
+            dy = np.diff(d["y"].to_numpy())[same]
+            v = np.array([np.median(dx), np.median(dy)])
+            if np.all(np.isfinite(v)) and np.hypot(*v) > 0:
+                out.append(v)
+    return out
+
+
+def _row_pitch(modules, along: np.ndarray | None) -> np.ndarray | None:
+    """Median vector from a table to the next table across the rows (the row pitch) [m].
+
+    ``along`` is the vector between neighbouring modules along a table row. For each table
+    the nearest other table whose centre lies across the rows (its offset along the row
+    shorter than half the longer table) gives one vector; the median of those pointing one
+    way is the pitch. None when the site has one row of tables."""
+    if along is None or "table_id" not in modules.columns or len(modules) == 0:
+        return None
+    a = np.asarray(along, float)
+    a = a / max(float(np.hypot(*a)), 1e-12)
+    n = np.array([-a[1], a[0]])
+    fr = modules[["fx0", "fy0", "fux", "fuy", "fvx", "fvy"]].to_numpy(float)
+    cx = fr[:, 0] + 0.5 * (fr[:, 2] + fr[:, 4])
+    cy = fr[:, 1] + 0.5 * (fr[:, 3] + fr[:, 5])
+    tid = modules["table_id"].astype(str).to_numpy()
+    names, inv = np.unique(tid, return_inverse=True)
+    if len(names) < 2:
+        return None
+    cnt = np.bincount(inv).astype(float)
+    tx = np.bincount(inv, cx) / cnt
+    ty = np.bincount(inv, cy) / cnt
+    s_al = (cx - tx[inv]) * a[0] + (cy - ty[inv]) * a[1]
+    half = np.zeros(len(names))
+    np.maximum.at(half, inv, np.abs(s_al))
+    vecs = []
+    for i in range(len(names)):
+        dx, dy = tx - tx[i], ty - ty[i]
+        d_al = dx * a[0] + dy * a[1]
+        d_n = dx * n[0] + dy * n[1]
+        ok = (np.abs(d_al) < np.maximum(half, half[i])) & (d_n > 0.3)
+        if ok.any():
+            j = int(np.argmin(np.where(ok, d_n, np.inf)))
+            vecs.append((dx[j], dy[j]))
+    if not vecs:
+        return None
+    v = np.median(np.asarray(vecs), axis=0)
+    return v if np.all(np.isfinite(v)) and np.hypot(*v) > 0.3 else None
