@@ -9,8 +9,9 @@ measures measures nothing; see also tests/test_sim_independence.py). Some packag
 to less than their layer allows (``ONLY``: physics uses no files, manifests or settings;
 ``FORBIDDEN``: the report does not measure, the evaluation does not use the stages it
 checks). ``pvscan/__init__.py`` only names the public API lazily and is exempt, as is
-``from pvscan import __version__``. Own rule of the project, after the layering of the libraries it is modelled on (rasterio keeps its CLI in ``rio/``;
-pvlib keeps all file access in ``iotools/``).
+``from pvscan import __version__``. Own rule of the project, after the layering of the
+libraries it is modelled on (rasterio keeps its CLI in ``rio/``; pvlib keeps all file access
+in ``iotools/``).
 """
 from __future__ import annotations
 
