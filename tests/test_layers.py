@@ -5,10 +5,13 @@ another pvscan module (``import``, ``from ... import``, relative imports resolve
 inside functions included) must go to the module's own layer or one below it. The simulator
 is a column of its own: it may use only the error family, the packaged resources and the
 shared type aliases, and no core layer imports it (a yardstick that moves with the thing it
-measures measures nothing; see also tests/test_sim_independence.py). ``pvscan/__init__.py``
-only names the public API lazily and is exempt, as is ``from pvscan import __version__``. Own rule of the project,
-after the layering of the libraries it is modelled on (rasterio keeps its CLI in ``rio/``;
-pvlib keeps all file access in ``iotools/``).
+measures measures nothing; see also tests/test_sim_independence.py). Some packages are held
+to less than their layer allows (``ONLY``: physics uses no files, manifests or settings;
+``FORBIDDEN``: the report does not measure, the evaluation does not use the stages it
+checks). ``pvscan/__init__.py`` only names the public API lazily and is exempt, as is
+``from pvscan import __version__``. Own rule of the project, after the layering of the
+libraries it is modelled on (rasterio keeps its CLI in ``rio/``; pvlib keeps all file access
+in ``iotools/``).
 """
 from __future__ import annotations
 
@@ -35,6 +38,22 @@ LAYERS: dict[str, int] = {
 SIMULATOR = "simulate"
 SIMULATOR_MAY_USE = ("pvscan.errors", "pvscan.io.resources", "pvscan._typing")
 SIMULATOR_USERS = ("evaluate", "cli")
+#: Packages held to a shorter list than their layer allows: what they may import beside
+#: themselves, and why.
+ONLY: dict[str, tuple[tuple[str, ...], str]] = {
+    "physics": (("pvscan.errors", "pvscan._typing", "pvscan.robust"),
+                "physics is functions of numbers: no files, manifests or settings"),
+}
+#: Imports forbidden although they point down: (importer prefix, imported prefix, why).
+FORBIDDEN: tuple[tuple[str, str, str], ...] = (
+    ("pvscan.report", "pvscan.measure", "the report draws the results, it does not measure"),
+    ("pvscan.report", "pvscan.pipeline", "the report draws the results, it does not run the pipeline"),
+    ("pvscan.report", "pvscan.fleet", "the report draws the results, it does not run the pipeline"),
+    ("pvscan.evaluate", "pvscan.physics", "the yardstick does not use the physics it checks"),
+    ("pvscan.evaluate", "pvscan.measure", "the yardstick does not use the stages it checks"),
+    ("pvscan.evaluate", "pvscan.diagnose", "the yardstick does not use the stages it checks"),
+    ("pvscan.evaluate", "pvscan.pipeline", "the yardstick does not use the stages it checks"),
+)
 
 #: Imports that still point the wrong way, each with the reason it is still there. An entry
 #: that no longer occurs fails the test below: remove it when the import is gone.
@@ -43,6 +62,8 @@ KNOWN_UPWARD: dict[tuple[str, str], str] = {
     ("pvscan.io.writers.summary", "pvscan.diagnose.loss"): "per-module loss shares (module_losses)",
     ("pvscan.io.writers.walk", "pvscan.diagnose.rank"): "anomaly ids (assign_anomaly_ids)",
     ("pvscan.measure.register.physics", "pvscan.diagnose.thermal"): "reference conditions (Normalisation)",
+    ("pvscan.physics.radiometry", "pvscan.io.manifest"): "flight_radiometry reads a Flight's keywords",
+    ("pvscan.physics.radiometry", "pvscan.io.settings"): "flight_radiometry reads [radiometry]",
 }
 
 
@@ -69,6 +90,10 @@ def _imports(path: Path, root: Path = ROOT) -> set[str]:
     return {m for m in found if m == "pvscan" or m.startswith("pvscan.")}
 
 
+def _under(module: str, prefix: str) -> bool:
+    return module == prefix or module.startswith(prefix + ".")
+
+
 def _top(module: str) -> str:
     parts = module.split(".")
     return parts[1] if len(parts) > 1 else "__init__"
@@ -90,14 +115,22 @@ def _wrong_way(importer: str, imported: str) -> str | None:
         return f"{a if a not in LAYERS else b!r} has no layer (add it to LAYERS and to DEVELOPERS.md)"
     if LAYERS[b] > LAYERS[a]:
         return f"layer {a} ({LAYERS[a]}) imports layer {b} ({LAYERS[b]})"
+    if a in ONLY:
+        allowed, why = ONLY[a]
+        if not any(_under(imported, m) for m in allowed):
+            return f"{a} imports only {', '.join(allowed)}: {why}"
+    for src, dst, why in FORBIDDEN:
+        if _under(importer, src) and _under(imported, dst):
+            return why
     return None
 
 
-def _all_edges() -> list[tuple[str, str, str]]:
+def _all_edges(root: Path = ROOT) -> list[tuple[str, str, str]]:
+    """(importer, imported, why) of every import of ``root/pvscan`` that points the wrong way."""
     edges = []
-    for path in sorted(PKG.rglob("*.py")):
-        importer = _module_name(path)
-        for imported in sorted(_imports(path)):
+    for path in sorted((root / "pvscan").rglob("*.py")):
+        importer = _module_name(path, root)
+        for imported in sorted(_imports(path, root)):
             why = _wrong_way(importer, imported)
             if why:
                 edges.append((importer, imported, why))
@@ -131,6 +164,20 @@ def test_known_upward_imports_still_exist():
     ("pvscan.diagnose.classify", "pvscan.measure.seams", None),
     ("pvscan.cli.simulate", "pvscan.simulate", None),
     ("pvscan.simulate.scenario", "pvscan.io.resources", None),
+    ("pvscan.simulate.electrical", "pvscan.io.manifest", "shares no code"),
+    ("pvscan.physics.heat", "pvscan.io.settings", "physics imports only"),
+    ("pvscan.physics.heat", "pvscan.robust", None),
+    ("pvscan.physics.sky", "pvscan.physics.planck", None),
+    ("pvscan.io.writers.summary", "pvscan.report._build", "layer io"),
+    ("pvscan.io.ortho", "pvscan.diagnose.rank", "layer io"),
+    ("pvscan.report._build", "pvscan.measure.zonal", "does not measure"),
+    ("pvscan.report._build", "pvscan.pipeline", "does not run the pipeline"),
+    ("pvscan.report._build", "pvscan.io.records", None),
+    ("pvscan.evaluate", "pvscan.diagnose.classify", "yardstick"),
+    ("pvscan.evaluate", "pvscan.simulate.scenario", None),
+    ("pvscan.history.store", "pvscan.cli._common", "layer history"),
+    ("pvscan.diagnose.loss", "pvscan.simulate.electrical", "never imports the simulator"),
+    ("pvscan.measure.zonal", "pvscan.physics.radiometry", None),
 ])
 def test_the_rule_itself(importer, imported, expected):
     """The checker catches what it should (so an empty list above means something)."""
@@ -147,3 +194,42 @@ def test_relative_imports_are_resolved(tmp_path):
     src = pkg / "x.py"
     src.write_text("from ..diagnose import thermal\nfrom . import heat\n\n\ndef f():\n    import pvscan.cli.main\n")
     assert _imports(src, tmp_path) == {"pvscan.diagnose", "pvscan.physics", "pvscan.cli.main"}
+
+
+#: A small package with one wrong import of each kind; the whole scan must find exactly these.
+_SYNTHETIC = {
+    "pvscan/__init__.py": "from pvscan.pipeline import inspect_flight\n",
+    "pvscan/errors.py": "",
+    "pvscan/physics/__init__.py": "",
+    "pvscan/physics/heat.py": "from pvscan.errors import PvscanError\nfrom pvscan.io.settings import section\n",
+    "pvscan/io/__init__.py": "",
+    "pvscan/io/settings.py": "from pvscan.errors import PvscanError\n",
+    "pvscan/io/ortho.py": "def f():\n    from ..measure import zonal\n",
+    "pvscan/measure/__init__.py": "",
+    "pvscan/measure/zonal.py": "import pvscan.physics.heat\nfrom pvscan.simulate import scene\n",
+    "pvscan/diagnose/__init__.py": "",
+    "pvscan/diagnose/rank.py": "from pvscan.cli import main\n",
+    "pvscan/report/__init__.py": "from pvscan.measure.zonal import stats\nfrom pvscan.io import settings\n",
+    "pvscan/simulate/__init__.py": "",
+    "pvscan/simulate/scene.py": "from pvscan.physics import heat\nfrom pvscan.errors import PvscanError\n",
+    "pvscan/pipeline.py": "from pvscan import report\nfrom pvscan.diagnose import rank\n",
+    "pvscan/cli/__init__.py": "",
+    "pvscan/cli/main.py": "from pvscan.pipeline import inspect_flight\nfrom pvscan.simulate import scene\n",
+}
+
+
+def test_the_scan_finds_each_wrong_import_in_a_synthetic_package(tmp_path):
+    """Parsing, resolving and judging together: a package with planted wrong imports fails."""
+    for rel, src in _SYNTHETIC.items():
+        path = tmp_path / rel
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_text(src, encoding="utf-8")
+    found = {(a, b) for a, b, _ in _all_edges(tmp_path)}
+    assert found == {
+        ("pvscan.physics.heat", "pvscan.io.settings"),     # physics reads no settings
+        ("pvscan.io.ortho", "pvscan.measure"),             # io below measure (relative, in a function)
+        ("pvscan.measure.zonal", "pvscan.simulate"),       # the core never imports the simulator
+        ("pvscan.diagnose.rank", "pvscan.cli"),            # nothing imports the CLI
+        ("pvscan.report", "pvscan.measure.zonal"),         # the report does not measure
+        ("pvscan.simulate.scene", "pvscan.physics"),       # the simulator has its own physics
+    }

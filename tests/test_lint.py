@@ -69,3 +69,9 @@ def test_long_module_exemptions_are_still_needed():
              if not (ROOT / rel).is_file()
              or len((ROOT / rel).read_text(encoding="utf-8").splitlines()) <= MAX_LINES]
     assert stale == [], f"LONG_MODULES_BEING_SPLIT entries no longer needed: {stale}"
+
+
+def test_no_pvscan_module_is_exempt_from_type_checking():
+    exempt = [m for o in PYPROJECT["tool"]["mypy"]["overrides"] if o.get("ignore_errors")
+              for m in o["module"] if m.startswith("pvscan")]
+    assert exempt == [], f"mypy ignore_errors for pvscan modules: {exempt}"

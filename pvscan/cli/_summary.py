@@ -30,6 +30,44 @@ def _cut(s: str, n: int = _WIDTH) -> str:
     return s if len(s) <= n else s[: n - 3] + "..."
 
 
+def _wrap(text: str, indent: str = "  ", first: str = "") -> list[str]:
+    """``text`` in lines of at most ``_WIDTH`` columns, broken at spaces only: a file name or
+    path is never cut or hyphenated (one longer than a line stands alone on its line)."""
+    return textwrap.wrap(text, _WIDTH, initial_indent=first, subsequent_indent=indent,
+                         break_long_words=False, break_on_hyphens=False) or [first + text]
+
+
+#: Result files in the order the summary names them, grouped by use.
+_RESULT_FILES: tuple[tuple[str, tuple[str, ...]], ...] = (
+    ("", ("report.html", "summary.json")),
+    ("field: ", ("workorders.csv", "workorders.gpx")),
+    ("GIS: ", ("anomalies.geojson", "modules.geojson", "pvscan.gpkg")),
+)
+
+
+def _file_lines(root: Path) -> list[str]:
+    """Where the results are and which files the folder holds: on one line where they fit,
+    else one group a line, wrapped between names."""
+    lines = [f"results in {root}/"] if len(f"results in {root}/") <= _WIDTH else ["results in", f"  {root}/"]
+    present = sorted(p.name for p in root.iterdir() if p.is_file() and not p.name.startswith(".")) \
+        if root.is_dir() else []
+    named = {n for _, names in _RESULT_FILES for n in names}
+    parts = []
+    for label, names in _RESULT_FILES:
+        found = [n for n in names if n in present]
+        if found:
+            parts.append(label + ", ".join(found))
+    others = [n for n in present if n not in named]
+    if others:
+        parts.append("also: " + ", ".join(others))
+    if parts and len("  " + "; ".join(parts)) <= _WIDTH:
+        lines.append("  " + "; ".join(parts))
+    else:  # one group a line, a long group wrapped between its names
+        for part in parts:
+            lines.extend(_wrap(part, indent="    ", first="  "))
+    return lines
+
+
 def summary_lines(result_dir: str | os.PathLike[str], top: int | None = None) -> list[str]:
     """The summary as a list of lines (see :func:`print_inspection_summary`); ``top`` work
     orders listed (default: ``[report] summary_top`` of the default pipeline)."""
@@ -114,27 +152,16 @@ def summary_lines(result_dir: str | os.PathLike[str], top: int | None = None) ->
     art = data.summary.get("image_artefacts") or {}
     if isinstance(art, dict) and art.get("stretches"):
         ns = len(art["stretches"])
-        lines.append(f"image artefacts levelled: {ns} row stretch{'es' if ns != 1 else ''}, "
-                     f"{int(art.get('levelled_modules') or 0)} modules (mosaic seams, reflections; see summary.json)")
+        lines.extend(_wrap(f"image artefacts levelled: {ns} row stretch{'es' if ns != 1 else ''}, "
+                           f"{int(art.get('levelled_modules') or 0)} modules (mosaic seams, reflections; "
+                           "see summary.json)"))
     lay = data.summary.get("layout") or {}
     for w in (lay.get("warnings") or []) if isinstance(lay, dict) else []:
         w = str(w)
         if lay.get("file") and w.startswith(f"{lay['file']}: "):
             w = w[len(lay["file"]) + 2:]
         lines.extend(textwrap.wrap(f"! layout: {w}", _WIDTH, subsequent_indent="  "))
-    root = Path(data.result_dir)
-    lines.append(_cut(f"results in {root}/"))
-    parts = []
-    if (root / "report.html").exists():
-        parts.append("report.html")
-    field = [n for n in ("workorders.csv", "workorders.gpx") if (root / n).exists()]
-    if field:
-        parts.append(", ".join(field))
-    gis = [n for n in ("anomalies.geojson", "modules.geojson", "pvscan.gpkg") if (root / n).exists()]
-    if gis:
-        parts.append("GIS: " + ", ".join(gis))
-    if parts:
-        lines.append(_cut("  " + "; ".join(parts)))
+    lines.extend(_file_lines(Path(data.result_dir)))
     lines.append("safety: arrays are live (DC) in daylight even when disconnected; hot spots burn and")
     lines.append("  faults can arc and start fires. Site work only by qualified persons under local")
     lines.append("  electrical codes; drone flights only under local aviation rules.")

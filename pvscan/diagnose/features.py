@@ -35,8 +35,9 @@ __all__ = ["Features", "Hits", "build_features", "row_geometry", "string_groups"
 
 logger = logging.getLogger(__name__)
 
-#: Modules per chunk of the row-wise reductions (bounds their temporaries).
-_CHUNK = 8192
+#: Modules per chunk of the row-wise reductions of features and pattern tests (bounds their
+#: temporaries; results do not depend on it).
+CHUNK_MODULES = 8192
 
 
 def spec_value(module_spec: Any, name: str, default: Any = None) -> Any:
@@ -84,7 +85,7 @@ def neighbour_median(values: np.ndarray, nb: np.ndarray, chunk: int = 2048,
 _BOX_OFFSETS = tuple((di, dj) for di in (-1, 0, 1) for dj in (-1, 0, 1) if (di, dj) != (0, 0))
 
 
-def _row_median(a: np.ndarray, chunk: int = 8192) -> np.ndarray:
+def _row_median(a: np.ndarray, chunk: int = CHUNK_MODULES) -> np.ndarray:
     """:func:`pvscan.robust.nanmedian` of each row of the 2-D ``a``, ``chunk`` rows at a time."""
     out = np.empty(len(a), dtype=np.float64)
     for s in range(0, len(a), chunk):
@@ -92,7 +93,7 @@ def _row_median(a: np.ndarray, chunk: int = 8192) -> np.ndarray:
     return out
 
 
-def _cell_spread(R: np.ndarray, base: np.ndarray, rows: np.ndarray, chunk: int = 8192) -> float:
+def _cell_spread(R: np.ndarray, base: np.ndarray, rows: np.ndarray, chunk: int = CHUNK_MODULES) -> float:
     """``scaled_mad`` of the finite ``R - base`` over the cells of modules ``rows`` (bool),
     gathered chunk by chunk (one array of the values, no full-size temporaries)."""
     parts = []
@@ -251,9 +252,9 @@ def build_features(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, 
     typ = np.empty(n, dtype=np.float64)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        for i0 in range(0, n, _CHUNK):
-            c = cc[i0:i0 + _CHUNK]
-            typ[i0:i0 + _CHUNK] = np.nanmedian(np.where(c > 0, c, np.nan).reshape(len(c), -1), axis=1)
+        for i0 in range(0, n, CHUNK_MODULES):
+            c = cc[i0:i0 + CHUNK_MODULES]
+            typ[i0:i0 + CHUNK_MODULES] = np.nanmedian(np.where(c > 0, c, np.nan).reshape(len(c), -1), axis=1)
     thin = cc < float(cfg["min_cell_fraction"]) * np.nan_to_num(typ, nan=1.0)[:, None, None]
     cm = np.where(thin, np.nan, cm)
     cp = np.where(thin, np.nan, cp)

@@ -436,9 +436,11 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
     cell_p95 = getattr(stats, "cell_p95", None) if stats is not None and reference_c is not None else None
     ref_c = np.asarray(reference_c, dtype=float) if reference_c is not None else None
     table = getattr(stats, "table", None) if stats is not None else None
-    has_stats = table is not None and "t_mean_c" in table and "t_median_c" in table
-    t_mean = np.asarray(table["t_mean_c"], dtype=float) if has_stats else None
-    t_median = np.asarray(table["t_median_c"], dtype=float) if has_stats else None
+    t_mean: np.ndarray | None = None
+    t_median: np.ndarray | None = None
+    if table is not None and "t_mean_c" in table and "t_median_c" in table:
+        t_mean = np.asarray(table["t_mean_c"], dtype=np.float64)
+        t_median = np.asarray(table["t_median_c"], dtype=np.float64)
 
     stc = np.full(n_an, np.nan)
     flight = np.full(n_an, np.nan)
@@ -470,7 +472,7 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
             ys = open_module_yardstick(g, ws, eta, t_mod if np.isfinite(t_mod) else None, gamma, u0=u0, u1=u1) \
                 if np.isfinite(g) and g > 0 and np.isfinite(ws) else np.nan
             fs = None
-            if t_mean is not None and idx and np.isfinite(ys) and np.isfinite(dt):
+            if t_mean is not None and t_median is not None and idx and np.isfinite(ys) and np.isfinite(dt):
                 # heat balance per module: the heat added is U x area x the *mean* rise over the
                 # module; a patchy pattern's median (delta_t_k, taken against the anomaly's own
                 # reference) under-reads it by the module's mean - median. Over a run of modules
@@ -491,7 +493,7 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
         else:  # heat balance
             region_area = region_area_fraction(row.get("region_uv")) * area
             perim = region_inner_perimeter_m(row.get("region_uv"), length_m, width_m)
-            if cell_p95 is not None and idx:
+            if cell_p95 is not None and ref_c is not None and idx:
                 dt_boxes = _mean_box_rise(cell_p95, ref_c, idx[0], row.get("region_uv"))
                 if np.isfinite(dt_boxes):
                     dt = dt_boxes

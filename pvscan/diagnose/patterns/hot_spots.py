@@ -17,7 +17,7 @@ from collections.abc import Mapping
 import numpy as np
 from scipy import ndimage
 
-from pvscan.diagnose.features import Features, Hits, cell_neighbour_median, confidence, quality
+from pvscan.diagnose.features import CHUNK_MODULES, Features, Hits, cell_neighbour_median, confidence, quality
 from pvscan.diagnose.patterns.junction_box import box_cells
 
 __all__ = ["pattern_hot_cell"]
@@ -27,9 +27,6 @@ def _box_filter_median(X: np.ndarray) -> np.ndarray:
     """Median of each cell's (up to 8) neighbours within the module, NaN-aware."""
     return cell_neighbour_median(X)
 
-
-#: Modules per chunk of the hot-cell tests.
-_CHUNK = 8192
 
 
 def _hot_cells(R: np.ndarray, R95: np.ndarray, base_sub: np.ndarray, col_sub: np.ndarray, ok: np.ndarray,
@@ -90,8 +87,8 @@ def pattern_hot_cell(F: Features, cfg: Mapping) -> tuple[Hits, Hits]:
     hot = np.zeros((n, A, C), bool)
     xmax = np.full(n, -np.inf)
     # modules in chunks (every test below is within one module): bounded temporaries
-    for s in range(0, n, _CHUNK):
-        sl = slice(s, min(s + _CHUNK, n))
+    for s in range(0, n, CHUNK_MODULES):
+        sl = slice(s, min(s + CHUNK_MODULES, n))
         hot[sl], xmax[sl] = _hot_cells(F.R[sl], F.R95[sl], F.base_sub[sl], F.col_sub, F.ok[sl], box, thr, cfg)
     if bool(cfg["hot_cell_merge_touching"]):
         # touching hot cells as one hot spot: a spot straddling a cell boundary (footprints
