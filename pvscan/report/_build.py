@@ -10,13 +10,14 @@ from __future__ import annotations
 
 import logging
 import math
-from collections.abc import Callable, Mapping
+from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import pandas as pd
 
+from pvscan._typing import ProgressFn
 from pvscan.errors import PvscanError
 from pvscan.report import _figures as figs
 from pvscan.report import _sections as sec
@@ -33,7 +34,6 @@ log = logging.getLogger(__name__)
 
 __all__ = ["build_report", "write_report", "SAFETY_CAUTIONS", "DEFECT_TEXT"]
 
-ProgressFn = Callable[[str, int, int], None]
 
 # kept importable under their former names
 _MapGeometry = MapGeometry

@@ -31,11 +31,12 @@ from __future__ import annotations
 import logging
 import shutil
 import tempfile
-from collections.abc import Callable, Mapping
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from datetime import datetime
 from pathlib import Path
 
+from pvscan._typing import ProgressFn
 from pvscan.errors import OutputError, SimulationError
 from pvscan.simulate.electrical import faiman
 from pvscan.simulate.scenario import DEFAULTS, DEFECT_KINDS, load_scenario, scenario_from_dict
@@ -47,7 +48,6 @@ __all__ = ["simulate_flight", "simulate_random", "with_flight", "load_scenario",
 
 log = logging.getLogger(__name__)
 
-ProgressFn = Callable[[str, int, int], None]
 
 
 @dataclass(frozen=True)

@@ -3,9 +3,8 @@ from __future__ import annotations
 
 import logging
 import math
-from collections.abc import Callable, Mapping
+from collections.abc import Mapping
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING
 
 import numpy as np
 import scipy.fft
@@ -17,12 +16,8 @@ from scipy import ndimage
 from pvscan.measure.register._records import BlockShift
 from pvscan.measure.register.correlate import _peaks, _search_region, cross_power, upsampled_peak
 
-if TYPE_CHECKING:  # pragma: no cover
-    pass
-
 logger = logging.getLogger(__name__)
 
-ProgressFn = Callable[[str, int, int], None]
 
 
 

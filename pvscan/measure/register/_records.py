@@ -3,18 +3,13 @@ from __future__ import annotations
 
 import logging
 import math
-from collections.abc import Callable
 from dataclasses import dataclass, field
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 import numpy as np
 
-if TYPE_CHECKING:  # pragma: no cover
-    pass
-
 logger = logging.getLogger(__name__)
 
-ProgressFn = Callable[[str, int, int], None]
 
 # --------------------------------------------------------------------------------------
 # records

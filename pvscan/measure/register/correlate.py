@@ -3,20 +3,14 @@ from __future__ import annotations
 
 import logging
 import math
-from collections.abc import Callable
 from dataclasses import dataclass
-from typing import TYPE_CHECKING
 
 import numpy as np
 import scipy.fft
 from scipy import ndimage
 
-if TYPE_CHECKING:  # pragma: no cover
-    pass
-
 logger = logging.getLogger(__name__)
 
-ProgressFn = Callable[[str, int, int], None]
 
 # --------------------------------------------------------------------------------------
 # correlation core (pure array functions)

@@ -4,12 +4,13 @@ from __future__ import annotations
 import logging
 import math
 import warnings
-from collections.abc import Callable, Mapping
+from collections.abc import Mapping
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from rasterio.windows import Window
 
+from pvscan._typing import ProgressFn
 from pvscan.errors import RegistrationError, RegistrationWarning
 from pvscan.measure.register._blocks import (
     _MAX_CANDIDATES,
@@ -31,7 +32,6 @@ if TYPE_CHECKING:  # pragma: no cover
 
 logger = logging.getLogger(__name__)
 
-ProgressFn = Callable[[str, int, int], None]
 
 def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mapping | None = None, *,
                    progress: ProgressFn | None = None, expected_apparent_c: float | None = None,

@@ -220,11 +220,7 @@ def register_layout(orthos: Any, modules, settings: Mapping | None = None, *, su
         # a known offset is used as given; the evidence only says whether it fits
         q_c = reg.evidence["proposals"][0]
         chosen = ident.moved(tx=float(forced_shift[0]), ty=float(forced_shift[1]))
-        reg.placement = chosen
-        reg.applied = True
-        reg.model = chosen.shift_model()
-        reg.follow_drift = True
-        reg.shift_m = (chosen.tx, chosen.ty)
+        _use_placement(reg, chosen, residuals=False)
         reg.status = "ok" if q_c["ok"] else "failed"
         reg.evidence["used"] = "given"
         reg.message = (f"layout moved by the given shift ({chosen.tx:+.3f}, {chosen.ty:+.3f}) m: module evidence "
@@ -232,12 +228,7 @@ def register_layout(orthos: Any, modules, settings: Mapping | None = None, *, su
                        f"{q_c['ratio_v']:.2f}; at most {lim:g}"
                        + ("" if q_c["ok"] else "; the footprints do not sit on glass there") + ")")
     elif chosen is not None and q_c is not None:
-        reg.placement = chosen
-        reg.applied = True
-        reg.model = chosen.shift_model()
-        reg.follow_drift = True
-        reg.shift_m = (chosen.tx, chosen.ty)
-        reg.residual_rotation_deg, reg.residual_scale = chosen.theta_deg, chosen.scale
+        _use_placement(reg, chosen)
         reg.status = "ok"
         reg.evidence["used"] = "proposal"
         reg.message = (f"layout moved by ({chosen.tx:+.3f}, {chosen.ty:+.3f}) m, rotated {chosen.theta_deg:+.3f} deg, "
@@ -256,12 +247,7 @@ def register_layout(orthos: Any, modules, settings: Mapping | None = None, *, su
     elif refine and (rescued := _rescue_locally(orthos, modules, reg, cfg, ident, sun, expected_apparent_c)):
         chosen, q_c = rescued
         rescue = True
-        reg.placement = chosen
-        reg.applied = True
-        reg.model = chosen.shift_model()
-        reg.follow_drift = True
-        reg.shift_m = (chosen.tx, chosen.ty)
-        reg.residual_rotation_deg, reg.residual_scale = chosen.theta_deg, chosen.scale
+        _use_placement(reg, chosen)
         reg.status = "ok"
         reg.evidence["used"] = "proposal"
         reg.message = (f"layout moved by ({chosen.tx:+.3f}, {chosen.ty:+.3f}) m, rotated {chosen.theta_deg:+.3f} deg, "
@@ -344,12 +330,7 @@ def _resolve_pitch(orthos, modules, reg: Registration, cfg: Mapping, ident: Plac
                              "limit": round(1.0 + margin, 4), "decisive": bool(decisive),
                              "moved_m": [round(float(moved_by[0]), 4), round(float(moved_by[1]), 4)]}
     if np.hypot(*moved_by) > 0:
-        reg.placement = cur
-        reg.applied = True
-        reg.model = cur.shift_model()
-        reg.follow_drift = True
-        reg.shift_m = (cur.tx, cur.ty)
-        reg.residual_rotation_deg, reg.residual_scale = cur.theta_deg, cur.scale
+        _use_placement(reg, cur)
         reg.evidence["chosen"] = q_cur
         reg.evidence["used"] = "pitch"
         reg.message += (f"; moved by ({moved_by[0]:+.3f}, {moved_by[1]:+.3f}) m, whole module pitches along or "
@@ -504,6 +485,18 @@ def _num(v) -> float:
     except (TypeError, ValueError):
         return float("inf")
     return f if math.isfinite(f) else float("inf")
+
+
+def _use_placement(reg: Registration, p: Placement, *, residuals: bool = True) -> None:
+    """Record ``p`` as the placement applied to the layout (its shift at the site centre and,
+    with ``residuals``, its rotation [deg] and scale)."""
+    reg.placement = p
+    reg.applied = True
+    reg.model = p.shift_model()
+    reg.follow_drift = True
+    reg.shift_m = (p.tx, p.ty)
+    if residuals:
+        reg.residual_rotation_deg, reg.residual_scale = p.theta_deg, p.scale
 
 
 def _no_move(reg: Registration) -> Registration:

@@ -3,20 +3,15 @@ from __future__ import annotations
 
 import logging
 import math
-from collections.abc import Callable
-from typing import TYPE_CHECKING, Any
+from typing import Any
 
 import numpy as np
 from rasterio.windows import Window
 
 from pvscan.measure.register._blocks import _tile_attr
 
-if TYPE_CHECKING:  # pragma: no cover
-    pass
-
 logger = logging.getLogger(__name__)
 
-ProgressFn = Callable[[str, int, int], None]
 
 def expected_module_apparent_c(flight: Any, pipeline: Any = None, *, strict: bool = True) -> float:
     """Apparent temperature of sunlit module glass at the flight's conditions [degC].
