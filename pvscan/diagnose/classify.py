@@ -108,6 +108,9 @@ def _stage(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module_s
     shape_o = np.nan_to_num(neighbour_median(F.cm - t_med[:, None, None], ro.neighbours), nan=0.0)
     F.extra["R_other"] = F.cm - ref_o[:, None, None] - shape_o
     sig_o = scaled_mad(d_other[healthy & F.ok]) if (healthy & F.ok).sum() >= 3 else F.sig_mod
+    # no wider than other_spread_max_ratio module spreads: on a small plant a faulty string's own
+    # offset (and the mirror offset of the row beside it) would widen it and hide the string
+    sig_o = min(sig_o, float(cfg["other_spread_max_ratio"]) * F.sig_mod)
     F.extra["is_string"] = bool(is_string)
     F.extra.update(ref_other=ref_o, d_other=d_other, rsub_other=rsub_o,
                    sig_other=sig_o if np.isfinite(sig_o) else F.sig_mod)

@@ -78,13 +78,18 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     ``pid_warm_min_z`` (PID takes power away, so the modules run warmer, not clearly
     cooler).
 
+    Without strings (``is_string`` false, ``groups`` the table rows of a layout of table
+    polygons), a string's negative end may be at any module of a row, facing either way:
+    every module is tried as the first, both ways along the row, when it reaches
+    ``pid_row_seed_z`` by itself and the module before it shows at most half its contrast
+    (PID is strongest at the negative end); the run's evidence must reach ``pid_row_run_z``,
+    and the runs of one row may not overlap (the strongest kept).
+
     Returns
     -------
     list of list of int
-        The affected modules of each PID string (needs ``string_id``/``string_index``).
+        The affected modules of each PID string (or table-row run), from the negative end.
     """
-    if not is_string:
-        return []
     contrast = pid_ring_contrast(F)
     healthy = F.ok & ~exclude & np.isfinite(contrast)
     if healthy.sum() < 5:
@@ -99,66 +104,110 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     z_o = d_o / max(float(F.extra.get("sig_other", F.sig_mod)), 0.05)
     w = float(cfg["pid_excess_weight"])
     z_ext = (z + w * np.clip(z_o, -3.0, 3.0)) / np.sqrt(1.0 + w * w)
-    out = []
+    out: list[list[int]] = []
+    usable = F.ok & ~exclude
     for g in np.unique(groups[groups >= 0]):
         idx = np.flatnonzero(groups == g)
         idx = idx[np.argsort(pos[idx], kind="stable")]
         if len(idx) < 3:
             continue
-        first = idx[0]
-        if exclude[first] or not F.ok[first]:
+        if is_string:
+            max_len = max(int(np.floor(float(cfg["pid_max_position"]) * len(idx))), 1)
+            run = _run_from(idx, z, z_ext, z_o, usable, cfg, max_len, float(cfg["pid_run_z"]))
+            if run:
+                out.append(run)
             continue
-        # the seed: the module at the negative end shows the pattern, or shows some of it
-        # (the extension bar) with the next module showing it fully; a PID pattern is
-        # patchy, and the most affected module need not be the most edge-weighted one
-        z_seed = float(cfg["pid_seed_z"])
-        second = idx[1]
-        seeded = z[first] >= z_seed or (
-            z[first] >= float(cfg["pid_faint_seed_z"]) and not exclude[second] and bool(F.ok[second])
-            and z[second] >= z_seed)
-        if not seeded:
-            continue
-        # the best prefix from the negative end: PID is strongest there and fades, so the
-        # evidence of the first m modules, sum(z) / sqrt(m), peaks where PID stops showing
-        max_len = max(int(np.floor(float(cfg["pid_max_position"]) * len(idx))), 1)
-        # no single module after the first carries the string's evidence by itself: its
-        # contrast counts for at most pid_z_cap there (a bypassed strip or a seam edge along
-        # one module's frame can give it a huge edge contrast)
-        cap = float(cfg["pid_z_cap"])
-        zz = np.where(exclude[idx] | ~F.ok[idx], np.nan, z_ext[idx])[:max_len]
-        zr = np.where(exclude[idx] | ~F.ok[idx], np.nan, np.minimum(z[idx], cap))[:max_len]
-        if np.isnan(zz).any():
-            zr = zr[: int(np.argmax(np.isnan(zz)))]
-            zz = zz[: int(np.argmax(np.isnan(zz)))]
-        m_min = int(cfg["pid_min_modules"])
-        if len(zz) < max(m_min, 2):
-            continue
-        # the modules after the first carry the cell pattern on by themselves (best prefix
-        # of their edge-ring contrast, sum(z) / sqrt(m)): one warm-edged module at a
-        # string's end is not PID, nor a string that a reflection or a seam warms as a
-        # whole; but one weaker module right after the first does not undo a string that
-        # shows the pattern further on
-        rest = np.cumsum(zr[1:]) / np.sqrt(np.arange(1, len(zr)))
-        # over two or more modules after the first, the evidence holds without the strongest
-        # of them (leave-max-out): one strongly edged module and a little noise around it do
-        # not make a string PID, while every module of a PID string shows the pattern
-        m_rest = np.arange(1, len(zr))
-        loo = (np.cumsum(zr[1:]) - np.maximum.accumulate(zr[1:])) / np.sqrt(np.maximum(m_rest - 1, 1))
-        rest = np.where(m_rest >= 2, loo, rest)
-        if np.max(rest[max(m_min - 2, 0):]) < float(cfg["pid_rest_z"]):
-            continue
-        score = np.cumsum(zz) / np.sqrt(np.arange(1, len(zz) + 1))
-        if np.max(score[m_min - 1:]) < float(cfg["pid_run_z"]):
-            continue
-        # where the pattern stops: the end that maximises sum(z - pid_extend_z) from the
-        # negative end (a change point: modules above the bar add, below it take away, so a
-        # single weak module between stronger ones does not end the run)
-        gain = np.cumsum(zz - float(cfg["pid_extend_z"]))
-        k = int(np.argmax(gain[m_min - 1:])) + m_min
-        # PID takes power away, so the affected modules run warmer than modules outside
-        # their string (a seam or a shadow edge crossing the string's end need not)
-        if not float(np.nanmedian(z_o[idx[:k]])) >= float(cfg["pid_warm_min_z"]):
-            continue
-        run = [int(i) for i in idx[:k]]
-        out.append(run)
+        # a table row standing in for unknown strings: a string's negative end may be at any
+        # module of the row, facing either way; the run must start where the pattern starts
+        # (its first module reaching pid_row_seed_z, the module before it, if any, showing at
+        # most half its contrast: PID is strongest at the negative end), its evidence reach
+        # pid_row_run_z (many more starts are tried than in a string), and runs found in one
+        # row may not overlap (the strongest first)
+        max_len = max(int(np.floor(float(cfg["pid_max_position"]) * len(idx))), 2)
+        found = []
+        for step in (1, -1):
+            seq_all = idx if step == 1 else idx[::-1]
+            for s0 in range(len(seq_all) - 1):
+                if s0 > 0:
+                    prev = seq_all[s0 - 1]
+                    if usable[prev] and z[prev] >= 0.5 * z[seq_all[s0]]:
+                        continue
+                run = _run_from(seq_all[s0:], z, z_ext, z_o, usable, cfg, max_len, float(cfg["pid_row_run_z"]),
+                                float(cfg["pid_row_seed_z"]))
+                if run:
+                    zc = float(np.nansum(z[run]) / np.sqrt(len(run)))
+                    found.append((zc, run))
+        taken: set[int] = set()
+        for _zc, run in sorted(found, key=lambda t: -t[0]):
+            if taken.isdisjoint(run):
+                taken.update(run)
+                out.append(run)
     return out
+
+
+def _run_from(idx: np.ndarray, z: np.ndarray, z_ext: np.ndarray, z_o: np.ndarray, usable: np.ndarray,
+              cfg: Mapping, max_len: int, run_z: float, seed_z: float | None = None) -> list[int] | None:
+    """The PID run starting at ``idx[0]`` (the negative end) along ``idx``, or None.
+
+    ``z``: edge-ring contrast [robust SD]; ``z_ext``: contrast and excess combined; ``z_o``:
+    excess over modules outside the string [robust SD]; ``usable``: classified modules
+    without a pattern of more weight; ``max_len``: longest run; ``run_z``: least combined
+    evidence of the best run; ``seed_z``: when given, the first module must reach it by
+    itself (no faint seed). See :func:`pattern_pid` for the tests.
+    """
+    if len(idx) < 2:
+        return None
+    first, second = idx[0], idx[1]
+    if not usable[first]:
+        return None
+    # the seed: the module at the negative end shows the pattern, or shows some of it
+    # (the extension bar) with the next module showing it fully; a PID pattern is
+    # patchy, and the most affected module need not be the most edge-weighted one
+    z_seed = float(cfg["pid_seed_z"])
+    if seed_z is not None:
+        seeded = bool(z[first] >= seed_z)
+    else:
+        seeded = z[first] >= z_seed or (
+            z[first] >= float(cfg["pid_faint_seed_z"]) and bool(usable[second]) and z[second] >= z_seed)
+    if not seeded:
+        return None
+    # no single module after the first carries the string's evidence by itself: its
+    # contrast counts for at most pid_z_cap there (a bypassed strip or a seam edge along
+    # one module's frame can give it a huge edge contrast)
+    cap = float(cfg["pid_z_cap"])
+    sub = idx[:max_len]
+    zz = np.where(usable[sub], z_ext[sub], np.nan)
+    zr = np.where(usable[sub], np.minimum(z[sub], cap), np.nan)
+    if np.isnan(zz).any():
+        cut = int(np.argmax(np.isnan(zz)))
+        zr, zz = zr[:cut], zz[:cut]
+    m_min = int(cfg["pid_min_modules"])
+    if len(zz) < max(m_min, 2):
+        return None
+    # the modules after the first carry the cell pattern on by themselves (best prefix
+    # of their edge-ring contrast, sum(z) / sqrt(m)): one warm-edged module at a
+    # string's end is not PID, nor a string that a reflection or a seam warms as a
+    # whole; but one weaker module right after the first does not undo a string that
+    # shows the pattern further on
+    rest = np.cumsum(zr[1:]) / np.sqrt(np.arange(1, len(zr)))
+    # over two or more modules after the first, the evidence holds without the strongest
+    # of them (leave-max-out): one strongly edged module and a little noise around it do
+    # not make a string PID, while every module of a PID string shows the pattern
+    m_rest = np.arange(1, len(zr))
+    loo = (np.cumsum(zr[1:]) - np.maximum.accumulate(zr[1:])) / np.sqrt(np.maximum(m_rest - 1, 1))
+    rest = np.where(m_rest >= 2, loo, rest)
+    if np.max(rest[max(m_min - 2, 0):]) < float(cfg["pid_rest_z"]):
+        return None
+    score = np.cumsum(zz) / np.sqrt(np.arange(1, len(zz) + 1))
+    if np.max(score[m_min - 1:]) < run_z:
+        return None
+    # where the pattern stops: the end that maximises sum(z - pid_extend_z) from the
+    # negative end (a change point: modules above the bar add, below it take away, so a
+    # single weak module between stronger ones does not end the run)
+    gain = np.cumsum(zz - float(cfg["pid_extend_z"]))
+    k = int(np.argmax(gain[m_min - 1:])) + m_min
+    # PID takes power away, so the affected modules run warmer than modules outside
+    # their string (a seam or a shadow edge crossing the string's end need not)
+    if not float(np.nanmedian(z_o[idx[:k]])) >= float(cfg["pid_warm_min_z"]):
+        return None
+    return [int(i) for i in idx[:k]]

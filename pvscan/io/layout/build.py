@@ -265,8 +265,7 @@ def _strings_report(modules: pd.DataFrame, fields: dict[str, str], path: Path) -
         out["strings"] = "positions_only"
         out["warnings"].append(
             f"{path}: field {fpos} gives positions along strings but no field gives string ids "
-            "(string_id): PID, which needs both, is not looked for, and open strings only along "
-            "table rows")
+            "(string_id): open strings and PID are looked for only along table rows")
         return out
     lone = int(np.count_nonzero(sid != pos))
     dup = modules.loc[sid & pos].duplicated(subset=["string_id", "string_index"], keep=False)
