@@ -39,10 +39,13 @@ import logging
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from rasterio.windows import Window
+
+if TYPE_CHECKING:  # pragma: no cover
+    import geopandas as gpd
 
 logger = logging.getLogger(__name__)
 
@@ -83,21 +86,21 @@ class Placement:
         c, s = math.cos(t) * self.scale, math.sin(t) * self.scale
         return np.array([[c, -s], [s, c]])
 
-    def apply(self, x, y) -> tuple[np.ndarray, np.ndarray]:
+    def apply(self, x: Any, y: Any) -> tuple[np.ndarray, np.ndarray]:
         """Transformed map points [m]."""
         m = self.matrix
         x = np.asarray(x, float) - self.cx
         y = np.asarray(y, float) - self.cy
         return (self.cx + m[0, 0] * x + m[0, 1] * y + self.tx, self.cy + m[1, 0] * x + m[1, 1] * y + self.ty)
 
-    def displacement_max(self, bounds) -> float:
+    def displacement_max(self, bounds: Any) -> float:
         """Largest displacement of the corners of ``bounds`` (minx, miny, maxx, maxy) [m]."""
         xs = np.array([bounds[0], bounds[2], bounds[2], bounds[0]], float)
         ys = np.array([bounds[1], bounds[1], bounds[3], bounds[3]], float)
         px, py = self.apply(xs, ys)
         return float(np.max(np.hypot(px - xs, py - ys)))
 
-    def moved(self, **kw) -> Placement:
+    def moved(self, **kw: float) -> Placement:
         """A copy with some fields replaced."""
         d = {k: getattr(self, k) for k in ("tx", "ty", "theta_deg", "scale", "cx", "cy")}
         d.update(kw)
@@ -164,14 +167,14 @@ class ModuleSample:
         return len(self.index)
 
 
-def _frames(modules) -> np.ndarray:
+def _frames(modules: gpd.GeoDataFrame) -> np.ndarray:
     cols = ["fx0", "fy0", "fux", "fuy", "fvx", "fvy"]
     if all(c in modules.columns for c in cols):
         return modules[cols].to_numpy(dtype=float)
     raise KeyError("modules need the frame columns fx0, fy0, fux, fuy, fvx, fvy")
 
 
-def sample_modules(orthos: Any, modules, *, n: int, margin_m: float, reduce: int = 1,
+def sample_modules(orthos: Any, modules: gpd.GeoDataFrame, *, n: int, margin_m: float, reduce: int = 1,
                    seed: int = 0) -> ModuleSample:
     """Read the pixels around up to ``n`` modules spread over the site.
 
@@ -247,20 +250,21 @@ def sample_modules(orthos: Any, modules, *, n: int, margin_m: float, reduce: int
 
 
 class _quiet:
-    def __enter__(self):
+    def __enter__(self) -> None:
         import warnings
 
         self._w = warnings.catch_warnings()
         self._w.__enter__()
         warnings.simplefilter("ignore", RuntimeWarning)
 
-    def __exit__(self, *exc):
+    def __exit__(self, *exc: Any) -> None:
         self._w.__exit__(*exc)
 
 
 def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float, inset_v: float,
                   local: np.ndarray | None = None, min_pixels: int = 8, with_mean: bool = False,
-                  band_m: float | None = None, off_glass_k: float | None = None):
+                  band_m: float | None = None,
+                  off_glass_k: float | None = None) -> Any:
     """Spread of the pixels inside each placed footprint: standard deviation [K], or with
     ``band_m`` its ratio to the outline contrast [-] (NaN: too few pixels).
 
@@ -375,7 +379,7 @@ def evidence(spread: np.ndarray) -> float:
     return float(np.mean(s)) if len(s) else float("nan")
 
 
-def sun_vector(lon: float, lat: float, when) -> tuple[float, float, float]:
+def sun_vector(lon: float, lat: float, when: Any) -> tuple[float, float, float]:
     """Unit vector toward the sun on the map (east, north) and its elevation [deg].
 
     pvlib's solar position (NREL SPA) at ``when`` (aware datetime) and (lon, lat) [deg].
@@ -399,7 +403,7 @@ def _unit_axes(sample: ModuleSample) -> tuple[np.ndarray, np.ndarray]:
 
 
 def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, *,
-                      sun: tuple[float, float] | None = None, local: np.ndarray | None = None,
+                      sun: tuple[float, ...] | None = None, local: np.ndarray | None = None,
                       expected_c: float | None = None) -> dict:
     """How much better the placement is than the same placement moved a little.
 

@@ -27,9 +27,12 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
+
+if TYPE_CHECKING:  # pragma: no cover
+    import geopandas as gpd
 
 from pvscan.measure.register.evidence import (
     ModuleSample,
@@ -105,7 +108,7 @@ def _take(sample: ModuleSample, sel: np.ndarray) -> ModuleSample:
                         centred=sample.centred[sel], ref=sample.ref[sel])
 
 
-def _per_table(modules, n: int) -> np.ndarray:
+def _per_table(modules: gpd.GeoDataFrame, n: int) -> np.ndarray:
     """Rows of up to ``n`` modules of every table, spread along it (deterministic)."""
     tid = modules["table_id"].astype(str).to_numpy()
     order = np.lexsort((modules["table_col"].to_numpy() if "table_col" in modules.columns else np.zeros(len(tid)),
@@ -126,7 +129,7 @@ def _per_table(modules, n: int) -> np.ndarray:
     return np.sort(np.asarray(out, dtype=np.int64))
 
 
-def table_offsets(modules, shifts: Mapping) -> np.ndarray:
+def table_offsets(modules: gpd.GeoDataFrame, shifts: Mapping[Any, Any]) -> np.ndarray:
     """(n, 2) per-module translations of ``shifts`` (``table_id -> (dx, dy)``) [m]."""
     out = np.zeros((len(modules), 2))
     if not shifts or "table_id" not in modules.columns:
@@ -137,7 +140,7 @@ def table_offsets(modules, shifts: Mapping) -> np.ndarray:
     return out
 
 
-def refine_tables(orthos: Any, modules, cfg: Mapping) -> LocalFit:
+def refine_tables(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any]) -> LocalFit:
     """Per-table translations of placed ``modules`` (see the module docstring).
 
     Parameters
