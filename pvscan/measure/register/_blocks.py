@@ -45,10 +45,17 @@ def _nan_reduce(a: np.ndarray, f: int) -> np.ndarray:
     if f == 1:
         return a.astype(np.float64)
     h, w = a.shape[0] // f, a.shape[1] // f
-    a = a[: h * f, : w * f].reshape(h, f, w, f)
+    a = a[: h * f, : w * f]
     valid = np.isfinite(a)
-    s = np.where(valid, a, 0.0).sum(axis=(1, 3), dtype=np.float64)
-    c = valid.sum(axis=(1, 3))
+    z = np.where(valid, a, a.dtype.type(0))
+    # one strided add per position in the block (a reduction over two strided axes is
+    # several times slower); float32 pixels sum exactly in float64
+    s = np.zeros((h, w))
+    c = np.zeros((h, w), np.int64)
+    for i in range(f):
+        for j in range(f):
+            s += z[i::f, j::f]
+            c += valid[i::f, j::f]
     out = np.full((h, w), np.nan)
     np.divide(s, c, out=out, where=c > 0)
     return out
@@ -79,7 +86,10 @@ def _coverage(geoms: Any, shape: tuple[int, int], transform: Affine, ss: int) ->
         return np.zeros(shape)
     fine = features.rasterize(((g, 1) for g in _as_mappings(geoms)), out_shape=(h * ss, w * ss),
                               transform=transform @ Affine.scale(1.0 / ss), fill=0, dtype="uint8")
-    counts = fine.reshape(h, ss, w, ss).sum(axis=(1, 3), dtype=np.uint16)
+    counts = np.zeros((h, w), np.uint16)
+    for i in range(ss):
+        for j in range(ss):
+            counts += fine[i::ss, j::ss]
     return counts * (1.0 / (ss * ss))
 
 
@@ -100,8 +110,8 @@ def _fast_shape(shape: tuple[int, int]) -> tuple[int, int]:
     return tuple(scipy.fft.next_fast_len(int(s), real=False) for s in shape)
 
 
-def _pad(a: np.ndarray, shape: tuple[int, int]) -> np.ndarray:
-    out = np.zeros(shape)
+def _pad(a: np.ndarray, shape: tuple[int, int], dtype: Any = np.float64) -> np.ndarray:
+    out = np.zeros(shape, dtype)
     out[: a.shape[0], : a.shape[1]] = a
     return out
 
@@ -126,7 +136,7 @@ def _read_reduced(orthos: Any, tile_index: int, window: Window, f: int, stripe_p
     for r0 in range(0, h, step):
         rh = min(step, h - r0)
         win = Window(window.col_off, window.row_off + r0, w, rh)
-        arr = np.asarray(orthos.read(tile_index, win), dtype=np.float64)
+        arr = np.asarray(orthos.read(tile_index, win))
         if arr.ndim == 3:
             arr = arr[0]
         parts.append(_nan_reduce(arr, f))
@@ -272,7 +282,8 @@ def _prepare_block(orthos: Any, ti: int, tile: Any, win: Window, mod_geoms: Any,
     if not np.any(z) or not np.any(zm):
         return None, "no contrast"
     shape = _fast_shape((h, w))
-    spec = cross_power(_pad(z, shape), _pad(zm, shape), float(cfg["whitening"]),
+    # padded straight into the transforms' precision (the same values as a cast afterwards)
+    spec = cross_power(_pad(z, shape, np.float32), _pad(zm, shape, np.float32), float(cfg["whitening"]),
                        float(cfg["highpass_sigma_m"]) / work_gsd, dtype=np.float32)
     lin = np.array([[wt.a, wt.b], [wt.d, wt.e]])
     cx, cy = wt @ (w / 2.0, h / 2.0)

@@ -131,7 +131,9 @@ class ModuleSample:
         Row of each sampled module in the modules frame (k,).
     values : numpy.ndarray
         (k, S, S) float32 apparent temperature [degC], each module's window centred on
-        the module's drawn centre, NaN where invalid or outside the ortho.
+        the module's drawn centre, NaN where invalid or outside the ortho. Given without
+        ``centred``, it is centred in place (minus ``ref``) and ``centred`` is the same array:
+        one copy of the pixels, not two.
     x0, y0 : numpy.ndarray
         Map coordinates of the centre of pixel (0, 0) of each window [m].
     gx, gy : float
@@ -160,7 +162,8 @@ class ModuleSample:
             with _quiet():
                 ref = np.nanmedian(self.values.reshape(k, -1), axis=1)
             ref = np.where(np.isfinite(ref), ref, 0.0).astype(np.float32)
-            self.centred = self.values - ref[:, None, None]
+            self.values -= ref[:, None, None]
+            self.centred = self.values
             self.ref = ref.astype(np.float64)
 
     def __len__(self) -> int:
@@ -289,12 +292,48 @@ def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float,
     k = len(sample)
     if k == 0:
         return np.zeros(0)
+    # module by module in chunks: the (modules x pixels) temporaries stay bounded on a large
+    # sample (each module's figures depend on its own pixels only)
+    parts = [_spread_chunk(sample, placement, sl, inset_u=inset_u, inset_v=inset_v, local=local,
+                           min_pixels=min_pixels, band_m=band_m)
+             for sl in (slice(lo, min(lo + _SPREAD_CHUNK, k)) for lo in range(0, k, _SPREAD_CHUNK))]
+    if len(parts) == 1:
+        sd, s1, cnt = parts[0]
+    else:
+        sd, s1, cnt = (np.concatenate([p[j] for p in parts]) for j in range(3))
+    if band_m is not None and off_glass_k is not None:
+        # absolute means: each window was centred on its own median, which is ground for a
+        # module at a table end and glass inside a table
+        with np.errstate(invalid="ignore", divide="ignore"):
+            m_in = s1 / cnt + sample.ref
+        ok_m = np.isfinite(m_in)
+        if ok_m.any():
+            off = ok_m & (np.abs(m_in - _glass_mode(m_in[ok_m], off_glass_k)) > off_glass_k)
+            sd[off] = 1.0
+    if with_mean:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = s1 / cnt + sample.ref
+        mean[cnt < min_pixels] = np.nan
+        return sd, mean
+    return sd
+
+
+#: Modules per chunk of :func:`module_spread` (bounds its temporaries: a few MB per array).
+_SPREAD_CHUNK = 512
+
+
+def _spread_chunk(sample: ModuleSample, placement: Placement, sl: slice, *, inset_u: float, inset_v: float,
+                  local: np.ndarray | None, min_pixels: int,
+                  band_m: float | None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`module_spread` of the modules ``sl`` before the off-glass test: the spread (or
+    its ratio to the outline contrast), the sum of the centred values inside and their count."""
     minv = np.linalg.inv(placement.matrix)
-    fr = sample.frames
+    fr = sample.frames[sl]
     ox, oy, ux, uy, vx, vy = (fr[:, j] for j in range(6))
     # layout point of a map point P: q = c + Minv (P - c - t - local)
-    tx = placement.tx + (local[:, 0] if local is not None else 0.0)
-    ty = placement.ty + (local[:, 1] if local is not None else 0.0)
+    tx = placement.tx + (local[sl, 0] if local is not None else 0.0)
+    ty = placement.ty + (local[sl, 1] if local is not None else 0.0)
+    x0, y0 = sample.x0[sl], sample.y0[sl]
     out = []
     for ax, ay in ((ux, uy), (vx, vy)):
         n2 = ax * ax + ay * ay
@@ -303,7 +342,7 @@ def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float,
         cyv = (minv[0, 1] * ax + minv[1, 1] * ay) / n2
         const = ((placement.cx - ox) * ax + (placement.cy - oy) * ay) / n2 - (
             cxv * (placement.cx + tx) + cyv * (placement.cy + ty))
-        base = cxv * sample.x0 + cyv * sample.y0 + const
+        base = cxv * x0 + cyv * y0 + const
         s = sample.values.shape[1]
         j = np.arange(s, dtype=np.float32)
         coord = (base[:, None, None].astype(np.float32) + (cxv * sample.gx)[:, None, None].astype(np.float32)
@@ -311,9 +350,10 @@ def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float,
         out.append(coord)
     u, v = out
     inside = (u >= inset_u) & (u <= 1.0 - inset_u) & (v >= inset_v) & (v <= 1.0 - inset_v)
-    vals = sample.centred
-    assert vals is not None
-    inside &= np.isfinite(vals)
+    assert sample.centred is not None
+    vals = sample.centred[sl]
+    finite = np.isfinite(vals)
+    inside &= finite
     cnt = inside.sum(axis=(1, 2))
     d = np.where(inside, vals, np.float32(0.0))
     s1 = d.sum(axis=(1, 2), dtype=np.float64)
@@ -331,7 +371,7 @@ def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float,
         in_v = (v >= -bv) & (v <= 1.0 + bv)
         band = ((((np.abs(u) <= bu) | (np.abs(u - 1.0) <= bu)) & in_v)
                 | (((np.abs(v) <= bv) | (np.abs(v - 1.0) <= bv)) & in_u))
-        band &= np.isfinite(vals)
+        band &= finite
         nb = band.sum(axis=(1, 2))
         sb = np.where(band, vals, np.float32(0.0)).sum(axis=(1, 2), dtype=np.float64)
         with np.errstate(invalid="ignore", divide="ignore"):
@@ -340,21 +380,7 @@ def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float,
         # at most 1, the ratio of a featureless footprint: one module with a hot spot or a
         # reflection (its spread far above any outline contrast) cannot outweigh the others
         sd = np.minimum(sd / np.maximum(contrast, 0.05), 1.0)
-        if off_glass_k is not None:
-            # absolute means: each window was centred on its own median, which is ground for a
-            # module at a table end and glass inside a table
-            with np.errstate(invalid="ignore", divide="ignore"):
-                m_in = s1 / cnt + sample.ref
-            ok_m = np.isfinite(m_in)
-            if ok_m.any():
-                off = ok_m & (np.abs(m_in - _glass_mode(m_in[ok_m], off_glass_k)) > off_glass_k)
-                sd[off] = 1.0
-    if with_mean:
-        with np.errstate(invalid="ignore", divide="ignore"):
-            mean = s1 / cnt + sample.ref
-        mean[cnt < min_pixels] = np.nan
-        return sd, mean
-    return sd
+    return sd, s1, cnt
 
 
 def _glass_mode(means: np.ndarray, half_width_k: float) -> float:
