@@ -83,8 +83,8 @@ def test_every_alias_reads_one_property():
 @pytest.mark.parametrize("drop, status, words", [
     ("string_index", "ids_only", ["string_id gives 2 string ids", "string_index", "open strings and PID",
                                   "not looked for"]),
-    ("string_id", "positions_only", ["field string_ind gives positions", "string_id", "PID",
-                                     "open strings only along table rows"]),
+    ("string_id", "positions_only", ["field string_ind gives positions", "string_id",
+                                     "open strings and PID are looked for only along table rows"]),
 ])
 def test_half_a_stringing_is_a_warning_naming_the_field_and_the_loss(tmp_path, drop, status, words):
     props, geoms = _modules()

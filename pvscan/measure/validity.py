@@ -22,14 +22,21 @@ from __future__ import annotations
 import logging
 import math
 import warnings
-from collections.abc import Mapping
+from collections.abc import Iterable, Mapping
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import pandas as pd
 
 from pvscan.errors import ValidityWarning
+
+if TYPE_CHECKING:
+    from pvscan.io.manifest import ModuleSpec
+    from pvscan.measure.conditions import FlightConditions
+
+#: One check of :class:`Validity`: name, value, limit, kind, unit, passed, source, message.
+Check = dict[str, Any]
 
 __all__ = ["Validity", "check_validity", "registration_check", "coverage_check", "plausibility_check",
            "row_geometry", "row_shading_check", "with_checks"]
@@ -37,13 +44,13 @@ __all__ = ["Validity", "check_validity", "registration_check", "coverage_check",
 logger = logging.getLogger(__name__)
 
 
-def _settings(settings: Mapping | None) -> Mapping:
+def _settings(settings: Mapping[str, Any] | None) -> Mapping[str, Any]:
     from pvscan.io.settings import section
 
     return section(settings, "conditions")
 
 
-def _validity_settings(settings: Mapping | None) -> Mapping:
+def _validity_settings(settings: Mapping[str, Any] | None) -> Mapping[str, Any]:
     from pvscan.io.settings import section
 
     return section(settings, "validity")
@@ -65,7 +72,7 @@ class Validity:
         design choice: a flight at 540 W/m2 (limit 600) keeps 0.9 of its confidence.
     """
 
-    checks: tuple = field(default_factory=tuple)
+    checks: tuple[Check, ...] = field(default_factory=tuple)
     confidence_factor: float = 1.0
 
     @property
@@ -78,7 +85,7 @@ class Validity:
         """Names of the failed checks."""
         return [c["name"] for c in self.checks if c["passed"] is False]
 
-    def to_dict(self) -> dict:
+    def to_dict(self) -> dict[str, Any]:
         """JSON-ready mapping for summary.json."""
         return {
             "ok": self.ok,
@@ -92,7 +99,8 @@ class Validity:
         }
 
 
-def _check(name, value, limit, kind, unit, source, message=None):
+def _check(name: str, value: float | None, limit: float, kind: str, unit: str, source: str,
+           message: str | None = None) -> Check:
     if value is None or (isinstance(value, float) and not math.isfinite(value)):
         passed = None
         value = None
@@ -108,7 +116,7 @@ def _check(name, value, limit, kind, unit, source, message=None):
             "passed": passed, "source": source, "message": message}
 
 
-def _factor(c) -> float:
+def _factor(c: Mapping[str, Any]) -> float:
     if c["passed"] is not False:
         return 1.0
     v, lim = c["value"], c["limit"]
@@ -117,9 +125,10 @@ def _factor(c) -> float:
     return lim / v if v > 0 else 0.0
 
 
-def check_validity(conditions: Any, module_conditions: pd.DataFrame | None = None, *,
-                   gsd_m: float | None = None, module_spec=None, cell_size_m: float | None = None,
-                   cloud_okta: float | None = None, settings: Mapping | None = None) -> Validity:
+def check_validity(conditions: FlightConditions, module_conditions: pd.DataFrame | None = None, *,
+                   gsd_m: float | None = None, module_spec: ModuleSpec | None = None,
+                   cell_size_m: float | None = None, cloud_okta: float | None = None,
+                   settings: Mapping[str, Any] | None = None) -> Validity:
     """Check a flight against the acquisition conditions for outdoor thermography.
 
     Checks (limits from the ``[conditions]`` pipeline section, each with its source):
@@ -330,13 +339,14 @@ def row_shading_check(modules: Any, tilt_deg: float, azimuth_deg: float, lon: fl
     return c
 
 
-def with_checks(validity: Validity, checks, settings: Mapping | None = None) -> Validity:
+def with_checks(validity: Validity, checks: Iterable[Check], settings: Mapping[str, Any] | None = None) -> Validity:
     """``validity`` with more checks; the confidence factor drops to ``[conditions]
     confidence_floor`` when ``registration`` failed, and is multiplied like the acquisition
     checks' for the others."""
     st = _settings(settings)
     floor = float(st["confidence_floor"])
     factor = float(validity.confidence_factor)
+    checks = tuple(checks)
     for c in checks:
         if c["passed"] is False:
             factor = floor if c["name"] == "registration" else min(factor, max(factor * _factor(c), floor))
