@@ -9,12 +9,53 @@ gives the same geometry and the same error as before.
 """
 from __future__ import annotations
 
+import json
 from collections.abc import Callable, Sequence
+from pathlib import Path
+from typing import Any
 
 import numpy as np
 import shapely
 
-__all__ = ["shapes"]
+__all__ = ["read_feature_collection", "shapes"]
+
+
+def read_feature_collection(path: Path, error: Callable[[str], Exception], *, what: str | None = None,
+                            single_feature: bool = False) -> dict[str, Any]:
+    """The parsed GeoJSON FeatureCollection of ``path`` (properties exactly as written).
+
+    Parameters
+    ----------
+    path : Path
+        The GeoJSON file.
+    error : callable
+        The error to raise, called with the one-line message (a :class:`pvscan.errors.PvscanError` class).
+    what : str, optional
+        What the file is (``"the layout"``): messages read ``<path>: cannot read <what>: ...``.
+    single_feature : bool
+        Also accept a lone Feature, as a collection of one.
+
+    Raises
+    ------
+    error
+        The file is missing or unreadable, not JSON, or not a FeatureCollection.
+    """
+    prefix = f"{path}: cannot read {what}: " if what else f"{path}: "
+    try:
+        with open(path, encoding="utf-8") as fh:
+            doc = json.load(fh)
+    except FileNotFoundError:
+        raise error(f"{prefix}file not found") from None
+    except json.JSONDecodeError as exc:
+        raise error(f"{prefix}not valid JSON: {exc.msg} (line {exc.lineno})") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise error(f"{prefix}{exc}") from None
+    if single_feature and isinstance(doc, dict) and doc.get("type") == "Feature":
+        doc = {"type": "FeatureCollection", "features": [doc]}
+    if not isinstance(doc, dict) or doc.get("type") != "FeatureCollection" or not isinstance(
+            doc.get("features"), list):
+        raise error(f"{prefix}not a GeoJSON FeatureCollection")
+    return doc
 
 
 def _plain_polygon_rings(g: object) -> list | None:
