@@ -9,7 +9,6 @@ gives the same geometry and the same error as before.
 """
 from __future__ import annotations
 
-import json
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
@@ -20,16 +19,18 @@ import shapely
 __all__ = ["read_feature_collection", "shapes"]
 
 
-def read_feature_collection(path: Path, error: Callable[[str], Exception], *, what: str | None = None,
-                            single_feature: bool = False) -> dict[str, Any]:
+def read_feature_collection(path: Path, error_cls: type[Exception], missing: str = "file not found", *,
+                            what: str | None = None, single_feature: bool = False) -> dict[str, Any]:
     """The parsed GeoJSON FeatureCollection of ``path`` (properties exactly as written).
 
     Parameters
     ----------
     path : Path
         The GeoJSON file.
-    error : callable
-        The error to raise, called with the one-line message (a :class:`pvscan.errors.PvscanError` class).
+    error_cls : type
+        The error raised, with a one-line message (a :class:`pvscan.errors.PvscanError` class).
+    missing : str
+        Message when the file does not exist.
     what : str, optional
         What the file is (``"the layout"``): messages read ``<path>: cannot read <what>: ...``.
     single_feature : bool
@@ -37,24 +38,19 @@ def read_feature_collection(path: Path, error: Callable[[str], Exception], *, wh
 
     Raises
     ------
-    error
-        The file is missing or unreadable, not JSON, or not a FeatureCollection.
+    error_cls
+        The file is missing or unreadable, not JSON (:func:`pvscan.io.resources.read_json_file`),
+        or not a FeatureCollection.
     """
+    from pvscan.io.resources import read_json_file
+
+    doc = read_json_file(path, error_cls, missing, what=what)
     prefix = f"{path}: cannot read {what}: " if what else f"{path}: "
-    try:
-        with open(path, encoding="utf-8") as fh:
-            doc = json.load(fh)
-    except FileNotFoundError:
-        raise error(f"{prefix}file not found") from None
-    except json.JSONDecodeError as exc:
-        raise error(f"{prefix}not valid JSON: {exc.msg} (line {exc.lineno})") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise error(f"{prefix}{exc}") from None
     if single_feature and isinstance(doc, dict) and doc.get("type") == "Feature":
         doc = {"type": "FeatureCollection", "features": [doc]}
     if not isinstance(doc, dict) or doc.get("type") != "FeatureCollection" or not isinstance(
             doc.get("features"), list):
-        raise error(f"{prefix}not a GeoJSON FeatureCollection")
+        raise error_cls(f"{prefix}not a GeoJSON FeatureCollection")
     return doc
 
 
