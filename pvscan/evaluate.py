@@ -38,6 +38,7 @@ import numpy as np
 from pvscan._typing import IntArray
 from pvscan.errors import OutputError, SimulationError
 from pvscan.io.geojson import read_feature_collection
+from pvscan.io.records import as_float as _num
 from pvscan.layout_scores import STRING_CLASSES, detected_match, evaluate_layout, no_string_scores
 
 __all__ = ["evaluate", "format_report", "flight_identity_check", "LOSS_GROUP_KINDS", "evaluate_layout",
@@ -59,14 +60,6 @@ def _centroid(geom: Mapping[str, Any] | None) -> tuple[float, float]:
     if len(ring) > 1 and np.allclose(ring[0], ring[-1]):
         ring = ring[:-1]
     return tuple(ring.mean(axis=0))
-
-
-def _num(v: Any) -> float:
-    try:
-        f = float(v)
-    except (TypeError, ValueError):
-        return math.nan
-    return f
 
 
 def _defect(v: Any) -> str | None:
