@@ -369,7 +369,13 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
 
 
 def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd):
-    """Orientation, centre offset (along, across) [m] and extents [m] from the frame-line comb."""
+    """Orientation, centre offset (along, across) [m] and extents [m] from the frame-line comb.
+
+    The orientation is chosen on the common phase of the comb (each line looked for where the
+    comb puts it: a module twice as long matches every other line of the shorter one when
+    lines may move); the chosen orientation's extent is then measured with each line looked
+    for within ``line_shift_m`` (seams).
+    """
     from pvscan.measure.layout_image.periodic import comb_extent
 
     cos_t = math.cos(math.radians(layout.tilt_deg))
@@ -377,25 +383,46 @@ def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings
     s = (x - centre[0]) * axis[0] + (y - centre[1]) * axis[1]
     w = (x - centre[0]) * across[0] + (y - centre[1]) * across[1]
     reach = float(settings["comb_reach_m"])
-    best = None
-    for orient in ("portrait", "landscape"):
+
+    def run(orient: str, shift_m: float) -> Any:
         mod_s = module.width_m if orient == "portrait" else module.length_m
-        r = comb_extent(s, w, t, (-0.5 * length - reach, 0.5 * length + reach),
-                        (-0.5 * depth - reach, 0.5 * depth + reach), (-0.15 * depth, 0.15 * depth),
-                        mod_s + gap, gsd, float(settings["dip_fraction"]), float(settings["close_m"]))
-        if r is None:
-            continue
-        s_lo, s_hi, w_lo, w_hi, contrast = r
-        n = int(round((s_hi - s_lo) / (mod_s + gap)))
-        key = (n * (mod_s + gap), contrast, orient == layout.orientation)
-        if best is None or key > best[0]:
-            mod_w = (module.length_m if orient == "portrait" else module.width_m) * cos_t
-            best = (key, orient, s_lo, s_hi, w_lo, w_hi, n, mod_s, mod_w)
-    if best is None:
+        mod_w = (module.length_m if orient == "portrait" else module.width_m) * cos_t
+        lattice = (mod_w + gap * cos_t, gap * cos_t)
+        return comb_extent(s, w, t, (-0.5 * length - reach, 0.5 * length + reach),
+                           (-0.5 * depth - reach, 0.5 * depth + reach), (-0.15 * depth, 0.15 * depth),
+                           mod_s + gap, gsd, float(settings["dip_fraction"]), float(settings["close_m"]),
+                           shift_m, lattice)
+
+    found = {}
+    for orient in ("portrait", "landscape"):
+        r = run(orient, float(settings["line_shift_m"]))
+        if r is not None:
+            found[orient] = r
+    if not found:
         return None
-    key, orient, s_lo, s_hi, w_lo, w_hi, n, mod_s, mod_w = best
+    # a comb of twice the module pitch runs over every other line of the shorter module, but
+    # the glass between its lines is a line too (its row contrast is low) and its lines are
+    # found one by one near the glass (their median contrast is low)
+    top_line = max(r[4] for r in found.values())
+    top_row = max(r[5] for r in found.values())
+    best = None
+    for orient, r in found.items():
+        if len(found) > 1 and (r[5] < 0.5 * top_row or r[4] < 0.5 * top_line):
+            continue
+        mod_s = module.width_m if orient == "portrait" else module.length_m
+        n = int(round((r[1] - r[0]) / (mod_s + gap)))
+        key = (n * (mod_s + gap), r[4], orient == layout.orientation)
+        if best is None or key > best[0]:
+            best = (key, orient, r)
+    if best is None:  # each wins on one contrast: the larger product
+        orient, r = max(found.items(), key=lambda kv: kv[1][4] * kv[1][5])
+    else:
+        orient, r = best[1], best[2]
+    s_lo, s_hi, w_lo, w_hi, contrast, _ = r
+    mod_s = module.width_m if orient == "portrait" else module.length_m
+    n = int(round((s_hi - s_lo) / (mod_s + gap)))
     ext_s = n * mod_s + (n - 1) * gap
-    return orient, 0.5 * (s_lo + s_hi), 0.5 * (w_lo + w_hi), ext_s, w_hi - w_lo, float(key[1])
+    return orient, 0.5 * (s_lo + s_hi), 0.5 * (w_lo + w_hi), ext_s, w_hi - w_lo, float(contrast)
 
 
 def _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band, cand, cut, module, layout,
