@@ -37,6 +37,29 @@ def test_draws_are_valid_scenarios_within_acquisition_limits(family):
         assert any(v for k, v in sc["defects"].items() if k != "min_spacing_modules")
 
 
+def test_varying_conditions_stay_within_the_irradiance_limit_along_the_flight():
+    """A flight with varying conditions keeps at least 600 W/m2 at its dimmest moment.
+
+    IEC TS 62446-3 (from memory): outdoor thermography at no less than 600 W/m2 in the plane
+    of the array. The weather series is the simulator's own (a drift plus a passing cloud's dip
+    of ``irradiance_dip_depth`` of the mean); flights up to 30 min long.
+    """
+    from pvscan.simulate.flightpath import weather_series
+    from pvscan.simulate.scenario import DEFAULTS
+
+    seen = 0
+    for family in FAMILIES:
+        for sc in _draws(family, 12):
+            if not sc["conditions"]["varying"]:
+                continue
+            cond = {**DEFAULTS["conditions"], **sc["conditions"]}
+            for k in range(3):
+                ws = weather_series(cond, 1800.0, np.random.default_rng([SEED, k]))
+                assert float(ws.poa_global.min()) >= 600.0, (family, sc["flight"]["id"])
+            seen += 1
+    assert seen >= 10  # one flight in three varies: at least 10 of 120 draws (binomial, p < 1e-9 to fail)
+
+
 @pytest.mark.parametrize("family", FAMILIES)
 def test_draws_resolve_cells_as_the_pipeline_requires(family):
     # A detailed inspection needs at least [conditions] min_px_per_cell pixels along a cell's

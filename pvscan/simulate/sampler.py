@@ -14,7 +14,8 @@ Ranges (uniform unless said otherwise; "common practice" unless a source is name
   ``*_noon`` family within an hour of solar noon.
 - **conditions** within the acquisition limits of IEC TS 62446-3 (irradiance at least
   600 W/m2, steady sky, moderate wind): plane-of-array 600-1000 W/m2, air 5-35 degC,
-  wind 0.5-6 m/s, humidity 20-80 %; one flight in three with conditions varying along it.
+  wind 0.5-6 m/s, humidity 20-80 %; one flight in three with conditions varying along it
+  (those start at least 692 W/m2 bright, so a passing cloud's 12 % dip stays above 600 W/m2).
 - **array**: fixed tables (60 %) or single-axis trackers (40 %); portrait or landscape;
   full or half-cut cells; fixed: 1-3 module rows (landscape 2-4), 8-20 columns, tilt 10-35 deg,
   pitch 1.6-2.6 x the table depth, lower edge 0.5-1.2 m above ground (``raised_low_sun`` 1-2 m),
@@ -61,6 +62,7 @@ from typing import Any
 import numpy as np
 
 from pvscan.errors import SimulationError
+from pvscan.simulate.scenario import DEFAULTS
 
 __all__ = ["FAMILIES", "draw_scenario"]
 
@@ -86,6 +88,11 @@ ALTITUDE_M = (25.0, 100.0)
 #: Thermal time constant of the microbolometer [ms] (common practice: 7-15 ms): at the
 #: sampler's 4 m/s the image trails 3-6 cm behind the travel (motion blur).
 TIME_CONSTANT_MS = (7.0, 14.0)
+
+# Flights with varying conditions start at least this bright, so the deepest irradiance dip of
+# the scenario defaults still leaves 600 W/m2 (the acquisition limit, IEC TS 62446-3 from memory)
+# with a 10 W/m2 margin.
+_VARYING_MIN_POA_W_M2 = float(math.ceil(600.0 / (1.0 - float(DEFAULTS["conditions"]["irradiance_dip_depth"])) + 10.0))
 
 
 def cell_edge_m(module: dict) -> float:
@@ -242,6 +249,10 @@ def draw_scenario(seed: int, family: str = "any") -> dict:
     conditions = {"poa_irradiance_w_m2": round(float(poa_w_m2), 1),
                   "ambient_c": round(float(u(5.0, 35.0)), 1), "wind_m_s": round(float(u(0.5, 6.0)), 2),
                   "relative_humidity_pct": round(float(u(20.0, 80.0)), 1), "varying": bool(u() < 1 / 3)}
+    if conditions["varying"]:
+        # a passing cloud dims the sun by irradiance_dip_depth of the mean: start high enough
+        # that the dimmest moment still meets the acquisition limit of 600 W/m2
+        conditions["poa_irradiance_w_m2"] = round(max(conditions["poa_irradiance_w_m2"], _VARYING_MIN_POA_W_M2), 1)
     px_per_cell = float(u(*PX_PER_CELL))
     camera: dict[str, Any] = {"gsd_m": _gsd_m(module, px_per_cell), "psf_sigma_px": round(float(u(0.4, 1.0)), 2),
               "netd_k": round(float(u(0.03, 0.08)), 3),

@@ -5,6 +5,7 @@ import logging
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 import scipy.fft
@@ -25,7 +26,7 @@ logger = logging.getLogger(__name__)
 # --------------------------------------------------------------------------------------
 # helpers on blocks
 # --------------------------------------------------------------------------------------
-def _settings(settings) -> dict:
+def _settings(settings: Mapping[str, Any] | None) -> dict[str, Any]:
     """The ``[register]`` section: the keys given over the defaults of the pipeline file."""
     from pvscan.errors import PipelineError
     from pvscan.io.resources import describe_error, load_schema, schema_errors
@@ -44,16 +45,23 @@ def _nan_reduce(a: np.ndarray, f: int) -> np.ndarray:
     if f == 1:
         return a.astype(np.float64)
     h, w = a.shape[0] // f, a.shape[1] // f
-    a = a[: h * f, : w * f].reshape(h, f, w, f)
+    a = a[: h * f, : w * f]
     valid = np.isfinite(a)
-    s = np.where(valid, a, 0.0).sum(axis=(1, 3), dtype=np.float64)
-    c = valid.sum(axis=(1, 3))
+    z = np.where(valid, a, a.dtype.type(0))
+    # one strided add per position in the block (a reduction over two strided axes is
+    # several times slower); float32 pixels sum exactly in float64
+    s = np.zeros((h, w))
+    c = np.zeros((h, w), np.int64)
+    for i in range(f):
+        for j in range(f):
+            s += z[i::f, j::f]
+            c += valid[i::f, j::f]
     out = np.full((h, w), np.nan)
     np.divide(s, c, out=out, where=c > 0)
     return out
 
 
-def _as_mappings(geoms) -> list:
+def _as_mappings(geoms: Any) -> list[Any]:
     """GeoJSON-like mappings of simple polygons, built vectorised (rasterio would otherwise
     call each geometry's ``__geo_interface__``, which dominates on thousands of modules)."""
     import shapely
@@ -71,19 +79,22 @@ def _as_mappings(geoms) -> list:
     return out
 
 
-def _coverage(geoms, shape, transform: Affine, ss: int) -> np.ndarray:
+def _coverage(geoms: Any, shape: tuple[int, int], transform: Affine, ss: int) -> np.ndarray:
     """Fraction of each pixel covered by the footprints (ss x ss samples per pixel)."""
     h, w = shape
     if not len(geoms):
         return np.zeros(shape)
     fine = features.rasterize(((g, 1) for g in _as_mappings(geoms)), out_shape=(h * ss, w * ss),
                               transform=transform @ Affine.scale(1.0 / ss), fill=0, dtype="uint8")
-    counts = fine.reshape(h, ss, w, ss).sum(axis=(1, 3), dtype=np.uint16)
+    counts = np.zeros((h, w), np.uint16)
+    for i in range(ss):
+        for j in range(ss):
+            counts += fine[i::ss, j::ss]
     return counts * (1.0 / (ss * ss))
 
 
-def _taper(shape, width_px: float) -> np.ndarray:
-    def one(n):
+def _taper(shape: tuple[int, int], width_px: float) -> np.ndarray:
+    def one(n: int) -> np.ndarray:
         w = np.ones(n)
         k = int(min(max(width_px, 1), n // 2))
         if k > 0:
@@ -95,21 +106,21 @@ def _taper(shape, width_px: float) -> np.ndarray:
     return one(shape[0])[:, None] * one(shape[1])[None, :]
 
 
-def _fast_shape(shape):
+def _fast_shape(shape: tuple[int, int]) -> tuple[int, int]:
     return tuple(scipy.fft.next_fast_len(int(s), real=False) for s in shape)
 
 
-def _pad(a, shape):
-    out = np.zeros(shape)
+def _pad(a: np.ndarray, shape: tuple[int, int], dtype: Any = np.float64) -> np.ndarray:
+    out = np.zeros(shape, dtype)
     out[: a.shape[0], : a.shape[1]] = a
     return out
 
 
-def _tile_attr(tile, name, default=None):
+def _tile_attr(tile: Any, name: str, default: Any = None) -> Any:
     return getattr(tile, name, default) if not isinstance(tile, Mapping) else tile.get(name, default)
 
 
-def _tile_gsd(tile) -> float:
+def _tile_gsd(tile: Any) -> float:
     g = _tile_attr(tile, "gsd_m")
     if g:
         return float(g)
@@ -117,7 +128,7 @@ def _tile_gsd(tile) -> float:
     return float(math.sqrt(abs(t.a * t.e - t.b * t.d)))
 
 
-def _read_reduced(orthos, tile_index: int, window: Window, f: int, stripe_px: int = 1024) -> np.ndarray:
+def _read_reduced(orthos: Any, tile_index: int, window: Window, f: int, stripe_px: int = 1024) -> np.ndarray:
     """Read a window in stripes and reduce by f x f (memory bounded by a stripe)."""
     h, w = int(window.height), int(window.width)
     step = max(f, (stripe_px // f) * f)
@@ -125,7 +136,7 @@ def _read_reduced(orthos, tile_index: int, window: Window, f: int, stripe_px: in
     for r0 in range(0, h, step):
         rh = min(step, h - r0)
         win = Window(window.col_off, window.row_off + r0, w, rh)
-        arr = np.asarray(orthos.read(tile_index, win), dtype=np.float64)
+        arr = np.asarray(orthos.read(tile_index, win))
         if arr.ndim == 3:
             arr = arr[0]
         parts.append(_nan_reduce(arr, f))
@@ -148,7 +159,7 @@ class _BlockData:
 _MAX_CANDIDATES = 6
 
 
-def _analyse_block(bd: _BlockData, spec: np.ndarray, cfg: Mapping, signs) -> None:
+def _analyse_block(bd: _BlockData, spec: np.ndarray, cfg: Mapping[str, Any], signs: tuple[float, ...]) -> None:
     """Peaks of one block's correlation surface, refined at once (the spectrum is dropped
     afterwards, so memory does not grow with the number of blocks)."""
     surf = scipy.fft.ifft2(spec, workers=1).real
@@ -224,7 +235,8 @@ def _parabolic_peak(region: np.ndarray, r: int, ci: int, cj: int) -> tuple[float
     return out[0], out[1]
 
 
-def _prepare_block(orthos, ti, tile, win, mod_geoms, cfg, f, work_gsd):
+def _prepare_block(orthos: Any, ti: int, tile: Any, win: Window, mod_geoms: Any, cfg: Mapping[str, Any], f: int,
+                   work_gsd: float) -> tuple[_BlockData | None, str]:
     """Read one block and build the cross-power spectrum; None with a note when unusable."""
     t = _tile_attr(tile, "transform")
     img = _read_reduced(orthos, ti, win, f)
@@ -270,17 +282,25 @@ def _prepare_block(orthos, ti, tile, win, mod_geoms, cfg, f, work_gsd):
     if not np.any(z) or not np.any(zm):
         return None, "no contrast"
     shape = _fast_shape((h, w))
-    spec = cross_power(_pad(z, shape), _pad(zm, shape), float(cfg["whitening"]),
+    # padded straight into the transforms' precision (the same values as a cast afterwards)
+    spec = cross_power(_pad(z, shape, np.float32), _pad(zm, shape, np.float32), float(cfg["whitening"]),
                        float(cfg["highpass_sigma_m"]) / work_gsd, dtype=np.float32)
     lin = np.array([[wt.a, wt.b], [wt.d, wt.e]])
     cx, cy = wt @ (w / 2.0, h / 2.0)
     signs = (1.0,) if cfg["feature"] == "gradient" else (1.0, -1.0)
     bd = _BlockData(ti, float(cx), float(cy), lin, float(cfg["max_shift_m"]) / work_gsd)
-    _analyse_block(bd, spec, cfg, signs)
+    # the peak refinement is a (41 x M) @ (M x N) complex product per candidate: on one BLAS
+    # thread it takes about a sixth of the CPU time of a threaded product on two busy cores
+    # (the threads spin), and the figures do not depend on the thread count
+    from threadpoolctl import threadpool_limits
+
+    with threadpool_limits(limits=1, user_api="blas"):
+        _analyse_block(bd, spec, cfg, signs)
     return bd, ""
 
 
-def _block_windows(tile, geoms_bounds, cfg):
+def _block_windows(tile: Any, geoms_bounds: tuple[float, float, float, float],
+                   cfg: Mapping[str, Any]) -> list[Window]:
     """Pixel windows (with margin) of the blocks of one tile over the layout's extent."""
     t = _tile_attr(tile, "transform")
     width, height = int(_tile_attr(tile, "width")), int(_tile_attr(tile, "height"))
@@ -312,7 +332,8 @@ def _block_windows(tile, geoms_bounds, cfg):
     return out
 
 
-def _fit_similarity(x, y, dx, dy, w):
+def _fit_similarity(x: np.ndarray, y: np.ndarray, dx: np.ndarray, dy: np.ndarray,
+                    w: np.ndarray) -> tuple[float, float, float, float, float, float]:
     """Weighted least-squares shift field ``(tx, ty, a, b, x0, y0)`` (see Registration.model)."""
     x0 = float(np.average(x, weights=w))
     y0 = float(np.average(y, weights=w))
@@ -333,13 +354,13 @@ def _fit_similarity(x, y, dx, dy, w):
     return (float(sol[0]), float(sol[1]), float(sol[2]), float(sol[3]), x0, y0)
 
 
-def _weighted_median(v, w):
+def _weighted_median(v: np.ndarray, w: np.ndarray) -> float:
     o = np.argsort(v)
     cw = np.cumsum(w[o])
     return float(v[o][np.searchsorted(cw, 0.5 * cw[-1])])
 
 
-def _spread_enough(x, y, min_extent):
+def _spread_enough(x: np.ndarray, y: np.ndarray, min_extent: float) -> bool:
     if len(x) < 3:
         return False
     pts = np.column_stack([x - x.mean(), y - y.mean()])

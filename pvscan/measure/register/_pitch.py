@@ -2,12 +2,17 @@
 across the rows, which the one-pitch ambiguity of periodic rows is tested against [m]."""
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import numpy as np
+
+if TYPE_CHECKING:  # pragma: no cover
+    import geopandas as gpd
 
 __all__ = ["_pitches", "_row_pitch"]
 
 
-def _pitches(modules) -> list[np.ndarray]:
+def _pitches(modules: gpd.GeoDataFrame) -> list[np.ndarray]:
     """Median vectors from a module to its next neighbour along a table row and across it [m]."""
     import pandas as pd
 
@@ -32,7 +37,7 @@ def _pitches(modules) -> list[np.ndarray]:
     return out
 
 
-def _row_pitch(modules, along: np.ndarray | None) -> np.ndarray | None:
+def _row_pitch(modules: gpd.GeoDataFrame, along: np.ndarray | None) -> np.ndarray | None:
     """Median vector from a table to the next table across the rows (the row pitch) [m].
 
     ``along`` is the vector between neighbouring modules along a table row. For each table

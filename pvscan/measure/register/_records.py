@@ -116,7 +116,7 @@ class Registration:
     status: str = ""
     local: Any = None
 
-    def shift_at(self, x, y) -> tuple[np.ndarray, np.ndarray]:
+    def shift_at(self, x: Any, y: Any) -> tuple[np.ndarray, np.ndarray]:
         """Applied shift at map points (x, y) [m] (zeros when nothing was applied)."""
         x = np.asarray(x, float)
         y = np.asarray(y, float)
@@ -149,6 +149,6 @@ class Registration:
         }
 
 
-def _r(v, nd):
+def _r(v: Any, nd: int) -> float | None:
     v = float(v)
     return None if not math.isfinite(v) else round(v, nd)

@@ -4,6 +4,7 @@ from __future__ import annotations
 import logging
 import math
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 import scipy.fft
@@ -40,7 +41,7 @@ class CorrelationPeak:
 
 
 def cross_power(image: np.ndarray, reference: np.ndarray, whitening: float = 1.0,
-                highpass_sigma_px: float = 0.0, dtype=np.float64) -> np.ndarray:
+                highpass_sigma_px: float = 0.0, dtype: Any = np.float64) -> np.ndarray:
     """Cross-power spectrum ``F(image) conj(F(reference)) / |.|**whitening``.
 
     Parameters
@@ -144,7 +145,8 @@ def _search_region(surface: np.ndarray, radius_px: float) -> tuple[np.ndarray, i
     return region, r
 
 
-def _peaks(region: np.ndarray, r: int, exclusion_px: float, ratio: float, near_zero: bool = False):
+def _peaks(region: np.ndarray, r: int, exclusion_px: float, ratio: float, near_zero: bool = False
+           ) -> tuple[tuple[int, int], float, float, float, list[tuple[int, int, float]]]:
     """Best peak, its statistics and all candidates >= ratio * best (integer offsets).
 
     With ``near_zero`` the local maximum nearest to the zero shift (within

@@ -4,7 +4,7 @@ from __future__ import annotations
 import logging
 import math
 import warnings
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -145,8 +145,8 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
     reg = Registration(notes=notes, follow_drift=bool(cfg["follow_drift"]))
     reg.blocks = records
     if not blocks:
-        why = sorted({r.note for r in records if r.note}) or ["no ortho tile contains layout modules"]
-        return _finish_weak(reg, cfg, "no usable ortho block (" + "; ".join(why) + ")")
+        whys = sorted({r.note for r in records if r.note}) or ["no ortho tile contains layout modules"]
+        return _finish_weak(reg, cfg, "no usable ortho block (" + "; ".join(whys) + ")")
 
     # 3. contrast sign by vote (intensity feature), then the peaks of that sign
     if cfg["feature"] == "gradient":
@@ -182,7 +182,7 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
         phys_all.append((ext, med, snr, beyond is None))
 
     # 4. consensus of confident blocks, then each block takes the candidate nearest to it
-    def to_m(bd, drow, dcol):
+    def to_m(bd: _BlockData, drow: float, dcol: float) -> tuple[float, float]:
         d = bd.lin @ np.array([dcol, drow])
         return float(d[0]), float(d[1])
 
@@ -208,7 +208,7 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
                                           "(no block has a distinct correlation peak)")
     cons = np.array([_weighted_median(best_m[:, 0], confs + 1e-12 * (confs <= 0)),
                      _weighted_median(best_m[:, 1], confs + 1e-12 * (confs <= 0))])
-    def fit(lists, cons, conf_of=None):
+    def fit(lists: list[Any], cons: Any, conf_of: Callable[..., float] | None = None) -> tuple[Any, Any]:
         """Each block takes its candidate nearest ``cons``, then the robust fit of the field;
         sets the records and ``reg`` (model, residuals, measured shift, confidence)."""
         reg.model = None
@@ -346,7 +346,7 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
         snr_scale = max(snr_full - snr_min, 1e-9)
         by_block = {id(b): e for b, e in zip(blocks, phys_all)}
 
-        def conf_of(bd, cand, med):
+        def conf_of(bd: _BlockData, cand: tuple[Any, ...], med: float) -> float:
             # the plausibility test, not the consensus, decided: the block keeps the
             # confidence of the chosen peak's own SNR, scaled by the test's margin
             ext, med_b, snr, ok = by_block[id(bd)]

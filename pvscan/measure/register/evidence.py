@@ -39,10 +39,13 @@ import logging
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from rasterio.windows import Window
+
+if TYPE_CHECKING:  # pragma: no cover
+    import geopandas as gpd
 
 logger = logging.getLogger(__name__)
 
@@ -83,21 +86,21 @@ class Placement:
         c, s = math.cos(t) * self.scale, math.sin(t) * self.scale
         return np.array([[c, -s], [s, c]])
 
-    def apply(self, x, y) -> tuple[np.ndarray, np.ndarray]:
+    def apply(self, x: Any, y: Any) -> tuple[np.ndarray, np.ndarray]:
         """Transformed map points [m]."""
         m = self.matrix
         x = np.asarray(x, float) - self.cx
         y = np.asarray(y, float) - self.cy
         return (self.cx + m[0, 0] * x + m[0, 1] * y + self.tx, self.cy + m[1, 0] * x + m[1, 1] * y + self.ty)
 
-    def displacement_max(self, bounds) -> float:
+    def displacement_max(self, bounds: Any) -> float:
         """Largest displacement of the corners of ``bounds`` (minx, miny, maxx, maxy) [m]."""
         xs = np.array([bounds[0], bounds[2], bounds[2], bounds[0]], float)
         ys = np.array([bounds[1], bounds[1], bounds[3], bounds[3]], float)
         px, py = self.apply(xs, ys)
         return float(np.max(np.hypot(px - xs, py - ys)))
 
-    def moved(self, **kw) -> Placement:
+    def moved(self, **kw: float) -> Placement:
         """A copy with some fields replaced."""
         d = {k: getattr(self, k) for k in ("tx", "ty", "theta_deg", "scale", "cx", "cy")}
         d.update(kw)
@@ -128,7 +131,9 @@ class ModuleSample:
         Row of each sampled module in the modules frame (k,).
     values : numpy.ndarray
         (k, S, S) float32 apparent temperature [degC], each module's window centred on
-        the module's drawn centre, NaN where invalid or outside the ortho.
+        the module's drawn centre, NaN where invalid or outside the ortho. Given without
+        ``centred``, it is centred in place (minus ``ref``) and ``centred`` is the same array:
+        one copy of the pixels, not two.
     x0, y0 : numpy.ndarray
         Map coordinates of the centre of pixel (0, 0) of each window [m].
     gx, gy : float
@@ -157,21 +162,22 @@ class ModuleSample:
             with _quiet():
                 ref = np.nanmedian(self.values.reshape(k, -1), axis=1)
             ref = np.where(np.isfinite(ref), ref, 0.0).astype(np.float32)
-            self.centred = self.values - ref[:, None, None]
+            self.values -= ref[:, None, None]
+            self.centred = self.values
             self.ref = ref.astype(np.float64)
 
     def __len__(self) -> int:
         return len(self.index)
 
 
-def _frames(modules) -> np.ndarray:
+def _frames(modules: gpd.GeoDataFrame) -> np.ndarray:
     cols = ["fx0", "fy0", "fux", "fuy", "fvx", "fvy"]
     if all(c in modules.columns for c in cols):
         return modules[cols].to_numpy(dtype=float)
     raise KeyError("modules need the frame columns fx0, fy0, fux, fuy, fvx, fvy")
 
 
-def sample_modules(orthos: Any, modules, *, n: int, margin_m: float, reduce: int = 1,
+def sample_modules(orthos: Any, modules: gpd.GeoDataFrame, *, n: int, margin_m: float, reduce: int = 1,
                    seed: int = 0) -> ModuleSample:
     """Read the pixels around up to ``n`` modules spread over the site.
 
@@ -247,20 +253,21 @@ def sample_modules(orthos: Any, modules, *, n: int, margin_m: float, reduce: int
 
 
 class _quiet:
-    def __enter__(self):
+    def __enter__(self) -> None:
         import warnings
 
         self._w = warnings.catch_warnings()
         self._w.__enter__()
         warnings.simplefilter("ignore", RuntimeWarning)
 
-    def __exit__(self, *exc):
+    def __exit__(self, *exc: Any) -> None:
         self._w.__exit__(*exc)
 
 
 def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float, inset_v: float,
                   local: np.ndarray | None = None, min_pixels: int = 8, with_mean: bool = False,
-                  band_m: float | None = None, off_glass_k: float | None = None):
+                  band_m: float | None = None,
+                  off_glass_k: float | None = None) -> Any:
     """Spread of the pixels inside each placed footprint: standard deviation [K], or with
     ``band_m`` its ratio to the outline contrast [-] (NaN: too few pixels).
 
@@ -285,12 +292,48 @@ def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float,
     k = len(sample)
     if k == 0:
         return np.zeros(0)
+    # module by module in chunks: the (modules x pixels) temporaries stay bounded on a large
+    # sample (each module's figures depend on its own pixels only)
+    parts = [_spread_chunk(sample, placement, sl, inset_u=inset_u, inset_v=inset_v, local=local,
+                           min_pixels=min_pixels, band_m=band_m)
+             for sl in (slice(lo, min(lo + _SPREAD_CHUNK, k)) for lo in range(0, k, _SPREAD_CHUNK))]
+    if len(parts) == 1:
+        sd, s1, cnt = parts[0]
+    else:
+        sd, s1, cnt = (np.concatenate([p[j] for p in parts]) for j in range(3))
+    if band_m is not None and off_glass_k is not None:
+        # absolute means: each window was centred on its own median, which is ground for a
+        # module at a table end and glass inside a table
+        with np.errstate(invalid="ignore", divide="ignore"):
+            m_in = s1 / cnt + sample.ref
+        ok_m = np.isfinite(m_in)
+        if ok_m.any():
+            off = ok_m & (np.abs(m_in - _glass_mode(m_in[ok_m], off_glass_k)) > off_glass_k)
+            sd[off] = 1.0
+    if with_mean:
+        with np.errstate(invalid="ignore", divide="ignore"):
+            mean = s1 / cnt + sample.ref
+        mean[cnt < min_pixels] = np.nan
+        return sd, mean
+    return sd
+
+
+#: Modules per chunk of :func:`module_spread` (bounds its temporaries: a few MB per array).
+_SPREAD_CHUNK = 512
+
+
+def _spread_chunk(sample: ModuleSample, placement: Placement, sl: slice, *, inset_u: float, inset_v: float,
+                  local: np.ndarray | None, min_pixels: int,
+                  band_m: float | None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """:func:`module_spread` of the modules ``sl`` before the off-glass test: the spread (or
+    its ratio to the outline contrast), the sum of the centred values inside and their count."""
     minv = np.linalg.inv(placement.matrix)
-    fr = sample.frames
+    fr = sample.frames[sl]
     ox, oy, ux, uy, vx, vy = (fr[:, j] for j in range(6))
     # layout point of a map point P: q = c + Minv (P - c - t - local)
-    tx = placement.tx + (local[:, 0] if local is not None else 0.0)
-    ty = placement.ty + (local[:, 1] if local is not None else 0.0)
+    tx = placement.tx + (local[sl, 0] if local is not None else 0.0)
+    ty = placement.ty + (local[sl, 1] if local is not None else 0.0)
+    x0, y0 = sample.x0[sl], sample.y0[sl]
     out = []
     for ax, ay in ((ux, uy), (vx, vy)):
         n2 = ax * ax + ay * ay
@@ -299,7 +342,7 @@ def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float,
         cyv = (minv[0, 1] * ax + minv[1, 1] * ay) / n2
         const = ((placement.cx - ox) * ax + (placement.cy - oy) * ay) / n2 - (
             cxv * (placement.cx + tx) + cyv * (placement.cy + ty))
-        base = cxv * sample.x0 + cyv * sample.y0 + const
+        base = cxv * x0 + cyv * y0 + const
         s = sample.values.shape[1]
         j = np.arange(s, dtype=np.float32)
         coord = (base[:, None, None].astype(np.float32) + (cxv * sample.gx)[:, None, None].astype(np.float32)
@@ -307,9 +350,10 @@ def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float,
         out.append(coord)
     u, v = out
     inside = (u >= inset_u) & (u <= 1.0 - inset_u) & (v >= inset_v) & (v <= 1.0 - inset_v)
-    vals = sample.centred
-    assert vals is not None
-    inside &= np.isfinite(vals)
+    assert sample.centred is not None
+    vals = sample.centred[sl]
+    finite = np.isfinite(vals)
+    inside &= finite
     cnt = inside.sum(axis=(1, 2))
     d = np.where(inside, vals, np.float32(0.0))
     s1 = d.sum(axis=(1, 2), dtype=np.float64)
@@ -327,7 +371,7 @@ def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float,
         in_v = (v >= -bv) & (v <= 1.0 + bv)
         band = ((((np.abs(u) <= bu) | (np.abs(u - 1.0) <= bu)) & in_v)
                 | (((np.abs(v) <= bv) | (np.abs(v - 1.0) <= bv)) & in_u))
-        band &= np.isfinite(vals)
+        band &= finite
         nb = band.sum(axis=(1, 2))
         sb = np.where(band, vals, np.float32(0.0)).sum(axis=(1, 2), dtype=np.float64)
         with np.errstate(invalid="ignore", divide="ignore"):
@@ -336,21 +380,7 @@ def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float,
         # at most 1, the ratio of a featureless footprint: one module with a hot spot or a
         # reflection (its spread far above any outline contrast) cannot outweigh the others
         sd = np.minimum(sd / np.maximum(contrast, 0.05), 1.0)
-        if off_glass_k is not None:
-            # absolute means: each window was centred on its own median, which is ground for a
-            # module at a table end and glass inside a table
-            with np.errstate(invalid="ignore", divide="ignore"):
-                m_in = s1 / cnt + sample.ref
-            ok_m = np.isfinite(m_in)
-            if ok_m.any():
-                off = ok_m & (np.abs(m_in - _glass_mode(m_in[ok_m], off_glass_k)) > off_glass_k)
-                sd[off] = 1.0
-    if with_mean:
-        with np.errstate(invalid="ignore", divide="ignore"):
-            mean = s1 / cnt + sample.ref
-        mean[cnt < min_pixels] = np.nan
-        return sd, mean
-    return sd
+    return sd, s1, cnt
 
 
 def _glass_mode(means: np.ndarray, half_width_k: float) -> float:
@@ -375,7 +405,7 @@ def evidence(spread: np.ndarray) -> float:
     return float(np.mean(s)) if len(s) else float("nan")
 
 
-def sun_vector(lon: float, lat: float, when) -> tuple[float, float, float]:
+def sun_vector(lon: float, lat: float, when: Any) -> tuple[float, float, float]:
     """Unit vector toward the sun on the map (east, north) and its elevation [deg].
 
     pvlib's solar position (NREL SPA) at ``when`` (aware datetime) and (lon, lat) [deg].
@@ -399,7 +429,7 @@ def _unit_axes(sample: ModuleSample) -> tuple[np.ndarray, np.ndarray]:
 
 
 def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, *,
-                      sun: tuple[float, float] | None = None, local: np.ndarray | None = None,
+                      sun: tuple[float, ...] | None = None, local: np.ndarray | None = None,
                       expected_c: float | None = None) -> dict:
     """How much better the placement is than the same placement moved a little.
 

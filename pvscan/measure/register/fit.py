@@ -24,16 +24,19 @@ import logging
 import math
 import warnings
 from collections.abc import Mapping
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from pvscan._typing import ProgressFn
 from pvscan.errors import RegistrationWarning
+from pvscan.io.layout.frames import FRAME_COLUMNS
 from pvscan.measure.register._blocks import _settings
 from pvscan.measure.register._pitch import _pitches, _row_pitch
 from pvscan.measure.register._records import Registration
 from pvscan.measure.register.estimate import estimate_shift
 from pvscan.measure.register.evidence import (
+    ModuleSample,
     Placement,
     placement_quality,
     refine_placement,
@@ -41,15 +44,15 @@ from pvscan.measure.register.evidence import (
 )
 from pvscan.measure.register.local import refine_tables, table_offsets
 
+if TYPE_CHECKING:  # pragma: no cover
+    import geopandas as gpd
+
 logger = logging.getLogger(__name__)
 
-__all__ = ["register_layout", "apply_placement", "placement_of", "align_layout", "FRAME_COLUMNS"]
-
-#: Internal module-frame columns, left out of a corrected layout file.
-FRAME_COLUMNS = ("fx0", "fy0", "fux", "fuy", "fvx", "fvy")
+__all__ = ["register_layout", "apply_placement", "placement_of", "align_layout"]
 
 
-def _centre(modules) -> tuple[float, float]:
+def _centre(modules: gpd.GeoDataFrame) -> tuple[float, float]:
     b = modules.total_bounds
     return float((b[0] + b[2]) / 2.0), float((b[1] + b[3]) / 2.0)
 
@@ -70,7 +73,7 @@ def placement_of(reg: Registration, centre: tuple[float, float]) -> Placement | 
     return None
 
 
-def apply_placement(modules, placement: Placement | None):
+def apply_placement(modules: gpd.GeoDataFrame, placement: Placement | None) -> gpd.GeoDataFrame:
     """A copy of ``modules`` with footprints and module frames moved by ``placement``."""
     import geopandas
     import shapely
@@ -95,19 +98,22 @@ def apply_placement(modules, placement: Placement | None):
     return out
 
 
-def _sample_at(orthos, modules, placement: Placement | None, cfg: Mapping, reduce: int = 1):
+def _sample_at(orthos: Any, modules: gpd.GeoDataFrame, placement: Placement | None, cfg: Mapping[str, Any],
+               reduce: int = 1) -> ModuleSample:
     moved = apply_placement(modules, placement) if placement is not None else modules
     return sample_modules(orthos, moved, n=int(cfg["evidence_modules"]), margin_m=float(cfg["evidence_margin_m"]),
                           reduce=reduce, seed=0)
 
 
-def _judge(sample, placement: Placement, cfg: Mapping, sun, expected_c=None) -> dict:
+def _judge(sample: ModuleSample, placement: Placement, cfg: Mapping[str, Any], sun: tuple[float, ...] | None,
+           expected_c: float | None = None) -> dict[str, Any]:
     q = placement_quality(sample, placement, cfg, sun=sun, expected_c=expected_c)
     return {k: (round(float(v), 4) if isinstance(v, float) and math.isfinite(v) else v) for k, v in q.items()}
 
 
-def register_layout(orthos: Any, modules, settings: Mapping | None = None, *, sun=None,
-                    expected_apparent_c: float | None = None, progress=None,
+def register_layout(orthos: Any, modules: gpd.GeoDataFrame, settings: Mapping[str, Any] | None = None, *,
+                    sun: tuple[float, ...] | None = None,
+                    expected_apparent_c: float | None = None, progress: ProgressFn | None = None,
                     forced_shift: tuple[float, float] | None = None) -> Registration:
     """Find where the layout sits on the ortho, and whether it can be measured there.
 
@@ -284,7 +290,8 @@ def register_layout(orthos: Any, modules, settings: Mapping | None = None, *, su
     return reg
 
 
-def _resolve_pitch(orthos, modules, reg: Registration, cfg: Mapping, ident: Placement, sun, expected_c) -> None:
+def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cfg: Mapping[str, Any], ident: Placement,
+                   sun: tuple[float, ...] | None, expected_c: float | None) -> None:
     """The one-pitch ambiguity of rows, decided at full resolution on module evidence.
 
     Rows of modules are periodic: the placement used and the same placement one module
@@ -341,8 +348,9 @@ def _resolve_pitch(orthos, modules, reg: Registration, cfg: Mapping, ident: Plac
                         f"than {1.0 + margin:.2f} needed): findings may sit on the neighbouring module")
 
 
-def _rescue_locally(orthos, modules, reg: Registration, cfg: Mapping, ident: Placement, sun,
-                    expected_c) -> tuple[Placement, dict] | None:
+def _rescue_locally(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cfg: Mapping[str, Any], ident: Placement,
+                    sun: tuple[float, ...] | None,
+                    expected_c: float | None) -> tuple[Placement, dict[str, Any]] | None:
     """The proposal nearest to sitting on glass, refined table by table (:mod:`.local`) and
     judged again by the same glass test.
 
@@ -371,7 +379,8 @@ def _rescue_locally(orthos, modules, reg: Registration, cfg: Mapping, ident: Pla
     return (pl, q) if q["ok"] else None
 
 
-def _refine_locally(orthos, modules, reg: Registration, cfg: Mapping, ident: Placement) -> None:
+def _refine_locally(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cfg: Mapping[str, Any],
+                    ident: Placement) -> None:
     """Per-table corrections after the global placement (:mod:`.local`), kept in
     ``reg.placement.tables`` when the module evidence prefers them."""
     base = reg.placement if (reg.applied and reg.placement is not None) else ident
@@ -390,14 +399,15 @@ def _refine_locally(orthos, modules, reg: Registration, cfg: Mapping, ident: Pla
     reg.message += f"; {lf.message}"
 
 
-def _reduce_for(orthos, cfg: Mapping) -> int:
+def _reduce_for(orthos: Any, cfg: Mapping[str, Any]) -> int:
     """Integer pixel reduction giving about ``evidence_coarse_gsd_m`` (at least 1)."""
     gsd = abs(float(next(iter(orthos.tiles)).transform.a))
     return max(1, int(round(float(cfg["evidence_coarse_gsd_m"]) / gsd)))
 
 
-def _fit_at(orthos, modules, start: Placement, cfg: Mapping, *, insets, rotate: bool, scale: bool,
-            reduce: int, step_m: float | None = None) -> tuple[Placement, Any, Placement, float]:
+def _fit_at(orthos: Any, modules: gpd.GeoDataFrame, start: Placement, cfg: Mapping[str, Any], *, insets: Any,
+            rotate: bool, scale: bool, reduce: int,
+            step_m: float | None = None) -> tuple[Placement, Any, Placement, float]:
     """Refine ``start`` on a sample read around it; read again around the result while the
     refinement moved the footprints more than half the margin the sample holds.
 
@@ -421,7 +431,8 @@ def _fit_at(orthos, modules, start: Placement, cfg: Mapping, *, insets, rotate: 
     return _compose(pl, inner), sample, inner, e
 
 
-def _fit_proposal(orthos, modules, cand: Placement, cfg: Mapping) -> tuple[Placement, Any, Placement]:
+def _fit_proposal(orthos: Any, modules: gpd.GeoDataFrame, cand: Placement,
+                  cfg: Mapping[str, Any]) -> tuple[Placement, Any, Placement]:
     """Coarse-to-fine fit of one proposal: the coarse insets on a decimated sample, the
     one-pitch alternatives along and across the rows compared there, then the last inset at
     full resolution. Returns the placement, its full-resolution sample and the placement
@@ -455,7 +466,7 @@ def _fit_proposal(orthos, modules, cand: Placement, cfg: Mapping) -> tuple[Place
     return _compose(base, inner), sample, inner
 
 
-def _distinct(proposals: list[Placement], bounds, tol_m: float = 0.02) -> list[Placement]:
+def _distinct(proposals: list[Placement], bounds: Any, tol_m: float = 0.02) -> list[Placement]:
     """Proposals less any that moves no footprint more than ``tol_m`` from an earlier one."""
     out: list[Placement] = []
     for p in proposals:
@@ -479,7 +490,7 @@ def _compose(outer: Placement, inner: Placement) -> Placement:
     return Placement(float(t[0]), float(t[1]), th, float(math.hypot(m[0, 0], m[1, 0])), outer.cx, outer.cy)
 
 
-def _num(v) -> float:
+def _num(v: Any) -> float:
     try:
         f = float(v)
     except (TypeError, ValueError):
@@ -506,8 +517,8 @@ def _no_move(reg: Registration) -> Registration:
     return reg
 
 
-def align_layout(flight: Any, settings: Mapping | None = None, out_path: Any = None, *, overwrite: bool = False,
-                 progress=None):
+def align_layout(flight: Any, settings: Mapping[str, Any] | None = None, out_path: Any = None, *,
+                 overwrite: bool = False, progress: ProgressFn | None = None) -> tuple[Registration, gpd.GeoDataFrame]:
     """Place a flight's layout on its ortho (:func:`register_layout`) and optionally write it.
 
     Parameters

@@ -27,9 +27,12 @@ from __future__ import annotations
 import math
 from collections.abc import Mapping
 from dataclasses import dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
+
+if TYPE_CHECKING:  # pragma: no cover
+    import geopandas as gpd
 
 from pvscan.measure.register.evidence import (
     ModuleSample,
@@ -100,12 +103,28 @@ def _r(v: float) -> float | None:
 def _take(sample: ModuleSample, sel: np.ndarray) -> ModuleSample:
     """The sampled modules ``sel`` (boolean or index array) as a sample of their own."""
     assert sample.centred is not None
-    return ModuleSample(index=sample.index[sel], values=sample.values[sel], x0=sample.x0[sel], y0=sample.y0[sel],
+    centred = sample.centred[sel]
+    # values and centred are one array in a sample read by sample_modules: one copy serves both
+    values = centred if sample.values is sample.centred else sample.values[sel]
+    return ModuleSample(index=sample.index[sel], values=values, x0=sample.x0[sel], y0=sample.y0[sel],
                         gx=sample.gx, gy=sample.gy, frames=sample.frames[sel], table=sample.table[sel],
-                        centred=sample.centred[sel], ref=sample.ref[sel])
+                        centred=centred, ref=sample.ref[sel])
 
 
-def _per_table(modules, n: int) -> np.ndarray:
+def _groups(keys: np.ndarray) -> dict[str, np.ndarray]:
+    """Ascending positions of each distinct key, in order of first appearance (one sort,
+    not one comparison of every key per group)."""
+    if len(keys) == 0:
+        return {}
+    order = np.argsort(keys, kind="stable")
+    ks = keys[order]
+    cut = np.flatnonzero(ks[1:] != ks[:-1]) + 1
+    runs = np.split(order, cut)
+    firsts = [int(r[0]) for r in runs]
+    return {str(keys[f]): runs[i] for i, f in sorted(enumerate(firsts), key=lambda t: t[1])}
+
+
+def _per_table(modules: gpd.GeoDataFrame, n: int) -> np.ndarray:
     """Rows of up to ``n`` modules of every table, spread along it (deterministic)."""
     tid = modules["table_id"].astype(str).to_numpy()
     order = np.lexsort((modules["table_col"].to_numpy() if "table_col" in modules.columns else np.zeros(len(tid)),
@@ -126,18 +145,21 @@ def _per_table(modules, n: int) -> np.ndarray:
     return np.sort(np.asarray(out, dtype=np.int64))
 
 
-def table_offsets(modules, shifts: Mapping) -> np.ndarray:
+def table_offsets(modules: gpd.GeoDataFrame, shifts: Mapping[Any, Any]) -> np.ndarray:
     """(n, 2) per-module translations of ``shifts`` (``table_id -> (dx, dy)``) [m]."""
     out = np.zeros((len(modules), 2))
     if not shifts or "table_id" not in modules.columns:
         return out
     tid = modules["table_id"].astype(str).to_numpy()
-    for k, v in shifts.items():
-        out[tid == str(k)] = (float(v[0]), float(v[1]))
+    vals = {str(k): (float(v[0]), float(v[1])) for k, v in shifts.items()}
+    # one lookup per module (a later key equal as a string wins, as it did key by key)
+    hit = np.array([t in vals for t in tid], dtype=bool) if len(tid) else np.zeros(0, bool)
+    if hit.any():
+        out[hit] = [vals[t] for t in tid[hit]]
     return out
 
 
-def refine_tables(orthos: Any, modules, cfg: Mapping) -> LocalFit:
+def refine_tables(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any]) -> LocalFit:
     """Per-table translations of placed ``modules`` (see the module docstring).
 
     Parameters
@@ -166,15 +188,15 @@ def refine_tables(orthos: Any, modules, cfg: Mapping) -> LocalFit:
     sub_cfg = {**cfg, "evidence_inset": inset, "evidence_band_m": None, "evidence_step_m": float(cfg["local_step_m"]),
                "max_shift_m": radius}
     tables = sample.table.astype(str)
-    names = list(dict.fromkeys(tables.tolist()))
+    # the sampled modules of each table (positions ascending), tables in order of appearance;
+    # each table's pixels are taken when needed, not all copied at once
+    groups = _groups(tables)
     fr = sample.frames
     cx = fr[:, 0] + 0.5 * (fr[:, 2] + fr[:, 4])
     cy = fr[:, 1] + 0.5 * (fr[:, 3] + fr[:, 5])
-    recs = []
-    subs = {}
-    for t in names:
-        sel = tables == t
-        sub = subs[t] = _take(sample, sel)
+    recs: list[dict[str, Any]] = []
+    for t, sel in groups.items():
+        sub = _take(sample, sel)
         e0 = evidence(module_spread(sub, ident, inset_u=inset, inset_v=inset))
         p, e1 = refine_placement(sub, ident, sub_cfg, rotate=False, scale=False)
         recs.append({"table_id": t, "dx_m": float(p.tx), "dy_m": float(p.ty), "evidence_before": e0,
@@ -201,8 +223,8 @@ def refine_tables(orthos: Any, modules, cfg: Mapping) -> LocalFit:
                 continue
             # an outlier: kept only when its own modules decisively prefer it to what its
             # neighbours say; else it takes the neighbours' correction if that helps it
-            e_nb = evidence(module_spread(subs[r["table_id"]], ident.moved(tx=float(med[0]), ty=float(med[1])),
-                                          inset_u=inset, inset_v=inset))
+            at_nb = ident.moved(tx=float(med[0]), ty=float(med[1]))
+            e_nb = evidence(module_spread(_take(sample, groups[r["table_id"]]), at_nb, inset_u=inset, inset_v=inset))
             if math.isfinite(e_nb) and r["evidence_after"] < (1.0 - gate) * e_nb:
                 continue
             if math.isfinite(e_nb) and e_nb < (1.0 - gate) * r["evidence_before"] and math.hypot(*med) >= min_m:

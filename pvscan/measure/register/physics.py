@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import logging
 import math
+from collections.abc import Callable, Mapping
 from typing import Any
 
 import numpy as np
@@ -70,7 +71,7 @@ def expected_module_apparent_c(flight: Any, pipeline: Any = None, *, strict: boo
 
         pipeline = load_pipeline()
 
-    def section(name):
+    def section(name: str) -> Any:
         try:
             return pipeline[name]
         except (KeyError, TypeError):
@@ -91,7 +92,8 @@ def expected_module_apparent_c(flight: Any, pipeline: Any = None, *, strict: boo
 
 
 
-def _module_samples(orthos, tiles, geoms, cfg):
+def _module_samples(orthos: Any, tiles: list[Any], geoms: np.ndarray,
+                    cfg: Mapping[str, Any]) -> list[tuple[Any, ...]]:
     """Sample points inside a subset of module footprints and one windowed read each.
 
     Returns a list of ``(x, y, tile_index, transform, col_off, row_off, array)`` [m, px]."""
@@ -143,7 +145,7 @@ def _module_samples(orthos, tiles, geoms, cfg):
     return out
 
 
-def _median_at(samples, shift) -> tuple[float, int]:
+def _median_at(samples: list[tuple[Any, ...]], shift: tuple[float, float]) -> tuple[float, int]:
     """Median over the sampled modules of each module's median apparent temperature
     with the footprints moved by ``shift`` [degC], and the number of modules measured."""
     meds = []
@@ -164,7 +166,8 @@ def _median_at(samples, shift) -> tuple[float, int]:
     return float(np.median(meds)), len(meds)
 
 
-def _shift_clusters(blocks, phys_all, to_m, radius_m):
+def _shift_clusters(blocks: list[Any], phys_all: list[Any], to_m: Callable[..., tuple[float, float]],
+                    radius_m: float) -> list[tuple[tuple[float, float], float]]:
     """Candidate shifts of all blocks grouped within ``radius_m``: ``[(centre, score)]``,
     score = SNR-weighted mean over the blocks of the relative peak height (0 where a block
     has no candidate in the group), best first."""
@@ -180,7 +183,7 @@ def _shift_clusters(blocks, phys_all, to_m, radius_m):
             m = to_m(bd, c[3], c[4])
             pts.append((m[0], m[1], (c[2] - med) / top, wb, i))
     pts.sort(key=lambda p: -p[2] * p[3])
-    clusters: list[dict] = []
+    clusters: list[dict[str, Any]] = []
     for x, y, h, wb, i in pts:
         for cl in clusters:
             if math.hypot(x - cl["x"], y - cl["y"]) <= radius_m:
@@ -203,7 +206,9 @@ def _shift_clusters(blocks, phys_all, to_m, radius_m):
     return out
 
 
-def _plausibility(orthos, tiles, geoms, blocks, phys_all, to_m, fitted, expected_c, cfg):
+def _plausibility(orthos: Any, tiles: list[Any], geoms: np.ndarray, blocks: list[Any], phys_all: list[Any],
+                  to_m: Callable[..., tuple[float, float]], fitted: tuple[float, float], expected_c: float,
+                  cfg: Mapping[str, Any]) -> tuple[str, tuple[tuple[float, float], float] | None]:
     """Test the fitted shift against the other candidate shifts by the module glass's
     apparent temperature; returns ``(note, switch)`` with ``switch = (centre, factor)``
     when another candidate is clearly more plausible, else None."""
