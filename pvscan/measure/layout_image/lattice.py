@@ -377,10 +377,10 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
 def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd):
     """Orientation, centre offset (along, across) [m] and extents [m] from the frame-line comb.
 
-    The orientation is chosen on the common phase of the comb (each line looked for where the
-    comb puts it: a module twice as long matches every other line of the shorter one when
-    lines may move); the chosen orientation's extent is then measured with each line looked
-    for within ``line_shift_m`` (seams).
+    Each orientation's comb is measured with each line looked for within ``line_shift_m``
+    (seams); an orientation whose line or row contrast is under half the other's is a comb of
+    twice the module pitch over a table of the shorter module and is not taken; of the rest,
+    the longer extent wins (then the larger line contrast, then the manifest's orientation).
     """
     from pvscan.measure.layout_image.periodic import comb_extent
 
