@@ -27,11 +27,18 @@ from __future__ import annotations
 import json
 import logging
 import math
+from collections.abc import Mapping, Sequence
+from datetime import datetime
+from os import PathLike
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
+from pvscan._typing import IntArray
 from pvscan.errors import OutputError, SimulationError
+from pvscan.io.geojson import read_feature_collection
+from pvscan.io.records import as_float as _num
 from pvscan.layout_scores import STRING_CLASSES, detected_match, evaluate_layout, no_string_scores
 
 __all__ = ["evaluate", "format_report", "flight_identity_check", "LOSS_GROUP_KINDS", "evaluate_layout",
@@ -43,23 +50,10 @@ log = logging.getLogger(__name__)
 LOSS_GROUP_KINDS = ("bypassed_substring", "several_bypassed_substrings", "open_module", "open_string", "pid")
 
 
-def _read_geojson(path: Path, err) -> dict:
-    try:
-        with open(path, encoding="utf-8") as fh:
-            data = json.load(fh)
-    except FileNotFoundError:
-        raise err(f"{path}: file not found") from None
-    except json.JSONDecodeError as exc:
-        raise err(f"{path}: not valid JSON: {exc.msg} (line {exc.lineno})") from None
-    if data.get("type") != "FeatureCollection" or not isinstance(data.get("features"), list):
-        raise err(f"{path}: not a GeoJSON FeatureCollection")
-    return data
-
-
-def _centroid(geom) -> tuple[float, float]:
+def _centroid(geom: Mapping[str, Any] | None) -> tuple[float, float]:
     if not geom:
         return (math.nan, math.nan)
-    coords = geom.get("coordinates")
+    coords: Any = geom.get("coordinates")
     if geom.get("type") == "MultiPolygon":
         coords = coords[0]
     ring = np.asarray(coords[0], float)[:, :2]
@@ -68,21 +62,14 @@ def _centroid(geom) -> tuple[float, float]:
     return tuple(ring.mean(axis=0))
 
 
-def _num(v) -> float:
-    try:
-        f = float(v)
-    except (TypeError, ValueError):
-        return math.nan
-    return f
-
-
-def _defect(v):
+def _defect(v: Any) -> str | None:
     if v is None or (isinstance(v, float) and math.isnan(v)) or v in ("", "none", "None"):
         return None
     return str(v)
 
 
-def _match(truth_feats, res_feats, epsg: int | None, min_id_fraction: float = 0.9, max_dist_m: float = 0.5):
+def _match(truth_feats: Sequence[Mapping[str, Any]], res_feats: Sequence[Mapping[str, Any]], epsg: int | None,
+           min_id_fraction: float = 0.9, max_dist_m: float = 0.5) -> tuple[IntArray, str]:
     """Index of the result feature of each truth module (-1 when none), and how.
 
     By ``module_id`` when at least ``min_id_fraction`` of the truth's ids are found *and*
@@ -133,17 +120,15 @@ def _ratio(a: float, b: float) -> float | None:
     return None if b == 0 or not np.isfinite(a) or not np.isfinite(b) else float(a / b)
 
 
-def _f(x):
+def _f(x: float | None) -> float | None:
     if x is None:
         return None
     x = float(x)
     return None if not math.isfinite(x) else round(x, 6)
 
 
-def _when(value):
+def _when(value: object) -> datetime | None:
     """An aware datetime from ISO 8601 text, None when it is not one."""
-    from datetime import datetime
-
     try:
         t = datetime.fromisoformat(str(value).replace("Z", "+00:00"))
     except ValueError:
@@ -151,7 +136,8 @@ def _when(value):
     return t if t.tzinfo is not None else None
 
 
-def flight_identity_check(truth_path: Path, meta: dict, result_dir: Path, force: bool = False) -> dict:
+def flight_identity_check(truth_path: Path, meta: Mapping[str, Any], result_dir: Path,
+                          force: bool = False) -> dict[str, Any]:
     """Check that a truth and a result are of the same flight: site, flight id, start time.
 
     The truth's side comes from the ``flight.toml`` beside ``truth.geojson`` (else from the
@@ -170,7 +156,7 @@ def flight_identity_check(truth_path: Path, meta: dict, result_dir: Path, force:
     """
     from pvscan.errors import ManifestError, MismatchError
 
-    truth_side: dict = {"site": meta.get("site"),
+    truth_side: dict[str, Any] = {"site": meta.get("site"),
                         "start": ((meta.get("scenario_settings") or {}).get("flight") or {}).get("start")}
     manifest = truth_path.parent / "flight.toml"
     if manifest.is_file():
@@ -182,7 +168,7 @@ def flight_identity_check(truth_path: Path, meta: dict, result_dir: Path, force:
         except ManifestError as exc:
             log.warning("%s: cannot read the flight's identity: %s", manifest, exc)
     summary_path = result_dir / "summary.json"
-    result_side: dict = {}
+    result_side: dict[str, Any] = {}
     if summary_path.is_file():
         try:
             summary = json.loads(summary_path.read_text(encoding="utf-8"))
@@ -193,7 +179,8 @@ def flight_identity_check(truth_path: Path, meta: dict, result_dir: Path, force:
         result_side = {"site": site.get("name") if isinstance(site, dict) else None,
                        "flight_id": flight.get("id") if isinstance(flight, dict) else None,
                        "start": flight.get("start") if isinstance(flight, dict) else None}
-    checked, differences = [], []
+    checked: list[str] = []
+    differences: list[str] = []
     for key, label in (("site", "site"), ("flight_id", "flight id"), ("start", "start time")):
         a, b = truth_side.get(key), result_side.get(key)
         if a is None or b is None:
@@ -211,7 +198,8 @@ def flight_identity_check(truth_path: Path, meta: dict, result_dir: Path, force:
     return {"checked": checked, "differences": differences, "forced": bool(differences and force)}
 
 
-def evaluate(truth_dir, result_dir, settings=None, *, force: bool = False) -> dict:
+def evaluate(truth_dir: str | PathLike[str], result_dir: str | PathLike[str],
+             settings: Mapping[str, Any] | None = None, *, force: bool = False) -> dict[str, Any]:
     """Score a result folder against a simulated flight's truth.
 
     Parameters
@@ -246,12 +234,12 @@ def evaluate(truth_dir, result_dir, settings=None, *, force: bool = False) -> di
     if truth_path.is_dir() or truth_path.suffix.lower() not in (".geojson", ".json"):
         truth_path = truth_path / "truth.geojson"
     result_dir = Path(result_dir)
-    truth = _read_geojson(truth_path, SimulationError)
+    truth = read_feature_collection(truth_path, SimulationError)
     tf = truth["features"]
     if not tf or "module_id" not in tf[0].get("properties", {}):
         raise SimulationError(f"{truth_path}: no module features with module_id")
     meta = truth.get("pvscan_truth", {})
-    mods = _read_geojson(result_dir / "modules.geojson", OutputError)
+    mods = read_feature_collection(result_dir / "modules.geojson", OutputError)
     identity = flight_identity_check(truth_path, meta if isinstance(meta, dict) else {}, result_dir, force)
     rf = mods["features"]
     if settings is None:
@@ -281,7 +269,7 @@ def evaluate(truth_dir, result_dir, settings=None, *, force: bool = False) -> di
     anom_path = result_dir / "anomalies.geojson"
     n_anom = None
     if anom_path.exists():
-        an = _read_geojson(anom_path, OutputError)["features"]
+        an = read_feature_collection(anom_path, OutputError)["features"]
         n_anom = len(an)
         for f in an:
             p = f.get("properties", {})
@@ -314,7 +302,7 @@ def evaluate(truth_dir, result_dir, settings=None, *, force: bool = False) -> di
     confusion = {a: {b: 0 for b in labels} for a in labels}
     for a, b in zip(t_def, p_def):
         confusion[a or "none"][b or "none"] += 1
-    per_class = {}
+    per_class: dict[str, dict[str, Any]] = {}
     for c in sorted(set(classes_t) | set(classes_p)):
         n_true = sum(1 for d in t_def if d == c)
         n_pred = sum(1 for d in p_def if d == c)
@@ -340,7 +328,7 @@ def evaluate(truth_dir, result_dir, settings=None, *, force: bool = False) -> di
     for i, p in enumerate(tp):
         if t_def[i] in LOSS_GROUP_KINDS and p.get("defect_group") is not None:
             groups.setdefault(int(p["defect_group"]), []).append(i)
-    per_anomaly = []
+    per_anomaly: list[dict[str, Any]] = []
     for _group, members in sorted(groups.items()):
         tl = float(t_loss[members].sum())
         pl = float(p_loss_z[members].sum())
@@ -365,7 +353,7 @@ def evaluate(truth_dir, result_dir, settings=None, *, force: bool = False) -> di
                   "n_classified_right": len(rel_ok),
                   "share_within_25pct_classified_right": _f(_ratio(sum(1 for r in rel_ok if r <= 0.25),
                                                                    len(rel_ok)))}
-    loss_by_kind = {}
+    loss_by_kind: dict[str, dict[str, Any]] = {}
     for k in LOSS_GROUP_KINDS:
         mine = [a for a in per_anomaly if a["defect"] == k and a["rel_error"] is not None]
         if mine:
@@ -437,7 +425,7 @@ def evaluate(truth_dir, result_dir, settings=None, *, force: bool = False) -> di
     }
 
 
-def _read_summary(result_dir: Path) -> dict:
+def _read_summary(result_dir: Path) -> dict[str, Any]:
     """The result's ``summary.json`` ({} when missing or unreadable)."""
     try:
         data = json.loads((result_dir / "summary.json").read_text(encoding="utf-8"))
@@ -446,9 +434,9 @@ def _read_summary(result_dir: Path) -> dict:
     return data if isinstance(data, dict) else {}
 
 
-def format_report(scores: dict) -> str:
+def format_report(scores: Mapping[str, Any]) -> str:
     """A plain-text table of the scores (for the terminal)."""
-    def fmt(v, pct=False):
+    def fmt(v: float | int | None, pct: bool = False) -> str:
         if v is None:
             return "-"
         return f"{100 * v:.1f} %" if pct else (f"{v:.3f}" if isinstance(v, float) else str(v))

@@ -6,6 +6,8 @@ layout detected in the ortho, the matching and scores :func:`pvscan.evaluate.eva
 from __future__ import annotations
 
 import json
+from collections.abc import Mapping
+from os import PathLike
 from pathlib import Path
 from typing import Any
 
@@ -81,7 +83,8 @@ def layout_scores(tg: np.ndarray, lg: np.ndarray, max_d: float) -> tuple[dict, n
             np.where(hit, j, -1))
 
 
-def evaluate_layout(truth_dir, layout_path, settings=None) -> dict:
+def evaluate_layout(truth_dir: str | PathLike[str], layout_path: str | PathLike[str],
+                    settings: Mapping[str, Any] | None = None) -> dict[str, Any]:
     """Score a detected module layout against a simulated flight's truth.
 
     The truth's module polygons are where the modules are *in the ortho*: ``truth_ortho.geojson``

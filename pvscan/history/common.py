@@ -53,18 +53,15 @@ def _settings(settings: Mapping | None) -> Mapping:
     return section(settings, "history")
 
 
-def _read_json(path: Path) -> Any:
-    from pvscan.io.resources import read_json_file
-
-    return read_json_file(path, HistoryError, "file not found (not a pvscan inspect result folder?)")
+#: Message for a result file that is missing.
+NOT_A_RESULT = "file not found (not a pvscan inspect result folder?)"
 
 
 def _features(path: Path) -> list[dict]:
-    doc = _read_json(path)
-    if not isinstance(doc, dict) or doc.get("type") != "FeatureCollection" \
-            or not isinstance(doc.get("features"), list):
-        raise HistoryError(f"{path}: not a GeoJSON FeatureCollection")
-    return doc["features"]
+    from pvscan.io.geojson import read_feature_collection
+
+    features: list[dict] = read_feature_collection(path, HistoryError, NOT_A_RESULT)["features"]
+    return features
 
 
 def _geometries(raw: list, ids: list, path: Path) -> list:

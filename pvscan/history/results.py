@@ -14,15 +14,16 @@ import shapely
 
 from pvscan.errors import HistoryError
 from pvscan.history.common import (
+    NOT_A_RESULT,
     _as_objects,
     _features,
     _geometries,
     _parse_time,
     _pick,
-    _read_json,
     _worse_severity,
 )
 from pvscan.io.records import as_float as _num
+from pvscan.io.resources import read_json_file
 
 # --------------------------------------------------------------------------------------------
 # reading a result folder
@@ -66,10 +67,12 @@ class FlightResult:
         return c if isinstance(c, dict) else {}
 
 
-MODULE_COLUMNS = ("t_mean_c", "t_median_c", "t_p95_c", "t_max_c", "t_min_c", "t_std_k",
-                  "valid_fraction", "reference_c", "delta_t_k", "delta_t_norm_k", "power_loss_w")
-ANOMALY_COLUMNS = ("delta_t_k", "delta_t_norm_k", "t_max_c", "power_loss_w",
-                   "energy_loss_kwh_per_year", "confidence")
+#: Numeric properties of a result's modules the history keeps (read as floats, NaN when missing).
+MODULE_NUMERIC_COLUMNS = ("t_mean_c", "t_median_c", "t_p95_c", "t_max_c", "t_min_c", "t_std_k",
+                          "valid_fraction", "reference_c", "delta_t_k", "delta_t_norm_k", "power_loss_w")
+#: Numeric properties of a result's anomalies the history keeps (read as floats, NaN when missing).
+ANOMALY_NUMERIC_COLUMNS = ("delta_t_k", "delta_t_norm_k", "t_max_c", "power_loss_w",
+                           "energy_loss_kwh_per_year", "confidence")
 
 
 def read_result_dir(result_dir: str | Path) -> FlightResult:
@@ -93,7 +96,7 @@ def read_result_dir(result_dir: str | Path) -> FlightResult:
     d = Path(result_dir)
     if not d.is_dir():
         raise HistoryError(f"{d}: result folder not found")
-    summary = _read_json(d / "summary.json")
+    summary = read_json_file(d / "summary.json", HistoryError, NOT_A_RESULT)
     if not isinstance(summary, dict):
         raise HistoryError(f"{d / 'summary.json'}: not a JSON object")
     fid = _pick(summary, "flight.id", "flight_id", "flight.flight_id")
@@ -124,12 +127,12 @@ def read_result_dir(result_dir: str | Path) -> FlightResult:
         row = {"module_id": mid,
                "table_id": None if props.get("table_id") is None else str(props.get("table_id")),
                "defect": props.get("defect") or None, "severity": props.get("severity") or None}
-        for c in MODULE_COLUMNS:
+        for c in MODULE_NUMERIC_COLUMNS:
             row[c] = _num(props.get(c))
         row["geometry"] = feat.get("geometry")
         rows.append(row)
     modules = pd.DataFrame(rows, columns=["module_id", "table_id", "defect", "severity",
-                                          *MODULE_COLUMNS, "geometry"])
+                                          *MODULE_NUMERIC_COLUMNS, "geometry"])
     modules["geometry"] = _geometries(list(modules["geometry"]), list(modules["module_id"]), mpath)
 
     apath = d / "anomalies.geojson"
@@ -149,12 +152,12 @@ def read_result_dir(result_dir: str | Path) -> FlightResult:
         row = {"anomaly_id": aid, "module_id": str(mid), "module_ids": [str(m) for m in mids],
                "defect": str(props["defect"]), "severity": props.get("severity") or None,
                "priority": None if props.get("priority") is None else int(props["priority"])}
-        for c in ANOMALY_COLUMNS:
+        for c in ANOMALY_NUMERIC_COLUMNS:
             row[c] = _num(props.get(c))
         row["geometry"] = feat.get("geometry")
         arows.append(row)
     anomalies = pd.DataFrame(arows, columns=["anomaly_id", "module_id", "module_ids", "defect",
-                                             "severity", "priority", *ANOMALY_COLUMNS, "geometry"])
+                                             "severity", "priority", *ANOMALY_NUMERIC_COLUMNS, "geometry"])
     anomalies["geometry"] = _geometries(list(anomalies["geometry"]), list(anomalies["anomaly_id"]), apath)
     if anomalies["anomaly_id"].duplicated().any():
         dup = anomalies.loc[anomalies["anomaly_id"].duplicated(), "anomaly_id"].iloc[0]

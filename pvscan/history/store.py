@@ -19,7 +19,13 @@ import shapely
 from pvscan.errors import HistoryError
 from pvscan.history.common import LayoutChangeWarning, _as_objects, _pick, _settings
 from pvscan.history.db import _create_database, _create_schema, _gpkg_blobs, _gpkg_geoms, _now, _Session
-from pvscan.history.results import ANOMALY_COLUMNS, MODULE_COLUMNS, FlightResult, content_hash, read_result_dir
+from pvscan.history.results import (
+    ANOMALY_NUMERIC_COLUMNS,
+    MODULE_NUMERIC_COLUMNS,
+    FlightResult,
+    content_hash,
+    read_result_dir,
+)
 
 log = logging.getLogger(__name__)
 
@@ -357,21 +363,21 @@ def _flight_order(con: sqlite3.Connection) -> list[tuple[str, str]]:
 
 
 def _read_flight(con: sqlite3.Connection, flight_id: str) -> tuple[pd.DataFrame, pd.DataFrame]:
-    mcols = ["module_id", "table_id", *MODULE_COLUMNS, "defect", "severity"]
+    mcols = ["module_id", "table_id", *MODULE_NUMERIC_COLUMNS, "defect", "severity"]
     rows = con.execute(f"SELECT geom, {', '.join(mcols)} FROM module_results WHERE flight_id=? "
                        "ORDER BY module_id", (flight_id,)).fetchall()
     modules = pd.DataFrame([r[1:] for r in rows], columns=mcols)
     modules["geometry"] = _gpkg_geoms([r[0] for r in rows])
-    for c in MODULE_COLUMNS:
+    for c in MODULE_NUMERIC_COLUMNS:
         modules[c] = pd.to_numeric(modules[c]).astype(float)
     _as_objects(modules, ("module_id", "table_id", "defect", "severity"))
-    acols = ["anomaly_id", "module_id", "module_ids", "defect", "severity", "priority", *ANOMALY_COLUMNS]
+    acols = ["anomaly_id", "module_id", "module_ids", "defect", "severity", "priority", *ANOMALY_NUMERIC_COLUMNS]
     rows = con.execute(f"SELECT geom, {', '.join(acols)} FROM anomalies WHERE flight_id=? "
                        "ORDER BY fid", (flight_id,)).fetchall()
     anomalies = pd.DataFrame([r[1:] for r in rows], columns=acols)
     anomalies["module_ids"] = [json.loads(x) for x in anomalies["module_ids"]]
     anomalies["geometry"] = _gpkg_geoms([r[0] for r in rows])
-    for c in ANOMALY_COLUMNS:
+    for c in ANOMALY_NUMERIC_COLUMNS:
         anomalies[c] = pd.to_numeric(anomalies[c]).astype(float)
     _as_objects(anomalies, ("anomaly_id", "module_id", "defect", "severity", "priority"))
     return modules, anomalies

@@ -10,11 +10,48 @@ gives the same geometry and the same error as before.
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
+from pathlib import Path
+from typing import Any
 
 import numpy as np
 import shapely
 
-__all__ = ["shapes"]
+__all__ = ["read_feature_collection", "shapes"]
+
+
+def read_feature_collection(path: Path, error_cls: type[Exception], missing: str = "file not found", *,
+                            what: str | None = None, single_feature: bool = False) -> dict[str, Any]:
+    """The parsed GeoJSON FeatureCollection of ``path`` (properties exactly as written).
+
+    Parameters
+    ----------
+    path : Path
+        The GeoJSON file.
+    error_cls : type
+        The error raised, with a one-line message (a :class:`pvscan.errors.PvscanError` class).
+    missing : str
+        Message when the file does not exist.
+    what : str, optional
+        What the file is (``"the layout"``): messages read ``<path>: cannot read <what>: ...``.
+    single_feature : bool
+        Also accept a lone Feature, as a collection of one.
+
+    Raises
+    ------
+    error_cls
+        The file is missing or unreadable, not JSON (:func:`pvscan.io.resources.read_json_file`),
+        or not a FeatureCollection.
+    """
+    from pvscan.io.resources import read_json_file
+
+    doc = read_json_file(path, error_cls, missing, what=what)
+    prefix = f"{path}: cannot read {what}: " if what else f"{path}: "
+    if single_feature and isinstance(doc, dict) and doc.get("type") == "Feature":
+        doc = {"type": "FeatureCollection", "features": [doc]}
+    if not isinstance(doc, dict) or doc.get("type") != "FeatureCollection" or not isinstance(
+            doc.get("features"), list):
+        raise error_cls(f"{prefix}not a GeoJSON FeatureCollection")
+    return doc
 
 
 def _plain_polygon_rings(g: object) -> list | None:

@@ -98,15 +98,18 @@ def read_toml_file(path: str | PathLike[str] | Traversable, error_cls: type[Exce
         raise error_cls(f"{path}: cannot read: {exc.strerror}") from None
 
 
-def read_json_file(path: str | PathLike[str], error_cls: type[Exception], missing: str = "file not found") -> Any:
-    """Parse a JSON file, mapping every failure to ``error_cls`` with a one-line message."""
+def read_json_file(path: str | PathLike[str], error_cls: type[Exception], missing: str = "file not found", *,
+                   what: str | None = None) -> Any:
+    """Parse a JSON file, mapping every failure to ``error_cls`` with a one-line message
+    (``<path>: cannot read <what>: ...`` when ``what`` names the file's role)."""
     path = Path(path)
+    head = f"{path}: cannot read {what}:" if what else f"{path}:"
     try:
         with open(path, encoding="utf-8") as fh:
             return json.load(fh)
     except FileNotFoundError:
-        raise error_cls(f"{path}: {missing}") from None
+        raise error_cls(f"{head} {missing}") from None
     except json.JSONDecodeError as exc:
-        raise error_cls(f"{path}: not valid JSON: {exc.msg} at line {exc.lineno}") from None
+        raise error_cls(f"{head} not valid JSON: {exc.msg} at line {exc.lineno}") from None
     except (OSError, UnicodeDecodeError) as exc:
-        raise error_cls(f"{path}: cannot read: {getattr(exc, 'strerror', None) or exc}") from None
+        raise error_cls(f"{head}{'' if what else ' cannot read:'} {getattr(exc, 'strerror', None) or exc}") from None

@@ -16,12 +16,18 @@ from __future__ import annotations
 import logging
 import math
 from collections.abc import Mapping
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 from rasterio.windows import Window
 
+from pvscan._typing import FloatArray
 from pvscan.errors import OrthoError
+
+if TYPE_CHECKING:
+    import geopandas as gpd
+
+    from pvscan.io.ortho import OrthoSet
 
 __all__ = ["check_ortho_values", "ortho_value_sample"]
 
@@ -35,7 +41,8 @@ _COUNT_READINGS = ((0.01, -KELVIN, "0.01 K"), (0.1, -KELVIN, "0.1 K"), (0.04, -K
                    (0.01, 0.0, "0.01 degC"), (0.1, 0.0, "0.1 degC"))
 
 
-def ortho_value_sample(orthos: Any, modules, *, n: int, window_m: float) -> tuple[np.ndarray, np.ndarray, int, int]:
+def ortho_value_sample(orthos: OrthoSet, modules: gpd.GeoDataFrame, *, n: int,
+                       window_m: float) -> tuple[FloatArray, FloatArray, int, int]:
     """Raw values around up to ``n`` module centres, converted as the manifest says.
 
     Returns
@@ -82,8 +89,8 @@ def ortho_value_sample(orthos: Any, modules, *, n: int, window_m: float) -> tupl
     return np.concatenate(vals), np.concatenate(raws), len(on), tile
 
 
-def check_ortho_values(orthos: Any, modules, *, units: str, scale: float, expected_c: float,
-                       settings: Mapping | None = None, manifest: str = "flight.toml",
+def check_ortho_values(orthos: OrthoSet, modules: gpd.GeoDataFrame, *, units: str, scale: float, expected_c: float,
+                       settings: Mapping[str, Any] | None = None, manifest: str = "flight.toml",
                        integer_raw: bool | None = None) -> dict:
     """Fail with a one-line error when the ortho's values cannot be glass temperatures.
 

@@ -11,15 +11,13 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 from numpy.typing import ArrayLike
 
+from pvscan.report._images import Extent
 from pvscan.report._result import SEVERITIES
 
 if TYPE_CHECKING:
     from matplotlib.axes import Axes
     from matplotlib.cm import ScalarMappable
     from matplotlib.figure import Figure
-
-#: Map extent ``(xmin, xmax, ymin, ymax)`` in the ortho CRS [m].
-Extent = tuple[float, float, float, float]
 
 __all__ = ["SEVERITY_STYLE", "overview_png", "temperature_hist_png", "delta_norm_hist_png",
            "loss_by_defect_png", "validity_png", "registration_png", "nice_length"]

@@ -19,7 +19,8 @@ from PIL import Image, ImageDraw
 __all__ = ["Palette", "render_crop", "render_schematic", "png_data_uri", "colour_window", "module_window",
            "quantise_png", "figure_palette", "hex_rgb"]
 
-#: Map extent ``(xmin, xmax, ymin, ymax)`` of the pixel edges [m].
+#: Map extent ``(xmin, xmax, ymin, ymax)`` of the pixel edges, in the ortho CRS [m]
+#: (matplotlib ``imshow`` order); the one alias of the report's images, rasters and figures.
 Extent = tuple[float, float, float, float]
 #: An RGB colour, 0..255 each.
 RGB = tuple[int, int, int]

@@ -16,6 +16,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from pvscan._typing import ProgressFn
+from pvscan.report._images import Extent
 
 if TYPE_CHECKING:
     from pvscan.io.ortho import OrthoSet
@@ -23,9 +24,6 @@ if TYPE_CHECKING:
 log = logging.getLogger(__name__)
 
 __all__ = ["ThermalView", "open_thermal"]
-
-#: Map extent ``(xmin, xmax, ymin, ymax)`` of the pixel edges [m] (matplotlib ``imshow`` order).
-Extent = tuple[float, float, float, float]
 
 
 class ThermalView:

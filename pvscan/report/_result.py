@@ -21,6 +21,7 @@ import pandas as pd
 from pvscan.errors import OutputError
 from pvscan.io.records import as_float as _num
 from pvscan.io.records import get_path
+from pvscan.io.resources import read_json_file
 
 __all__ = ["ResultData", "load_result", "SEVERITIES", "get_path", "validity_checks"]
 
@@ -28,6 +29,8 @@ log = logging.getLogger(__name__)
 
 #: Severity vocabulary in order of urgency (CONTRACT.md).
 SEVERITIES = ("safety", "repair", "monitor")
+#: Message for a result file that is missing.
+_MISSING = "file not found in the result folder"
 
 _ANOMALY_NUMERIC = ("delta_t_k", "delta_t_norm_k", "t_max_c", "power_loss_w",
                     "power_loss_w_flight", "energy_loss_kwh_per_year", "confidence")
@@ -227,16 +230,10 @@ def validity_checks(summary: Mapping) -> tuple[list[dict], bool | None]:
     return checks, ok
 
 
-def _read_json(path: Path) -> Any:
-    from pvscan.io.resources import read_json_file
-
-    return read_json_file(path, OutputError, "file not found in the result folder")
-
-
 def _features(path: Path) -> pd.DataFrame:
     from pvscan.io.geojson import shapes
 
-    obj = _read_json(path)
+    obj = read_json_file(path, OutputError, _MISSING)
     if not isinstance(obj, Mapping) or obj.get("type") != "FeatureCollection":
         raise OutputError(f"{path}: not a GeoJSON FeatureCollection")
     rows, members = [], []
@@ -351,7 +348,7 @@ def load_result(result_dir: str | os.PathLike[str]) -> ResultData:
     root = Path(result_dir)
     if not root.is_dir():
         raise OutputError(f"{root}: result folder not found")
-    summary = _read_json(root / "summary.json")
+    summary = read_json_file(root / "summary.json", OutputError, _MISSING)
     if not isinstance(summary, Mapping):
         raise OutputError(f"{root / 'summary.json'}: expected a JSON object")
     modules = _features(root / "modules.geojson")

@@ -34,12 +34,14 @@ import tempfile
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from datetime import datetime
+from os import PathLike
 from pathlib import Path
+from typing import Any
 
 from pvscan._typing import ProgressFn
 from pvscan.errors import OutputError, SimulationError
 from pvscan.simulate.electrical import faiman
-from pvscan.simulate.scenario import DEFAULTS, DEFECT_KINDS, load_scenario, scenario_from_dict
+from pvscan.simulate.scenario import DEFAULTS, DEFECT_KINDS, Scenario, load_scenario, scenario_from_dict
 from pvscan.simulate.scene import Scene
 
 __all__ = ["simulate_flight", "simulate_random", "with_flight", "load_scenario", "scenario_from_dict",
@@ -48,7 +50,8 @@ __all__ = ["simulate_flight", "simulate_random", "with_flight", "load_scenario",
 
 log = logging.getLogger(__name__)
 
-
+#: A scenario mapping, or the path of a scenario TOML file.
+ScenarioLike = Mapping[str, Any] | str | PathLike[str]
 
 @dataclass(frozen=True)
 class SimulationResult:
@@ -78,7 +81,7 @@ class SimulationResult:
 
     out_dir: Path
     manifest: Path
-    orthos: tuple
+    orthos: tuple[Path, ...]
     layout: Path
     truth: Path
     truth_json: Path
@@ -87,12 +90,12 @@ class SimulationResult:
     frames: Path | None
     n_modules: int
     n_defective: int
-    defects: dict = field(default_factory=dict)
+    defects: dict[str, int] = field(default_factory=dict)
     seed: int = 0
-    scenario: dict = field(default_factory=dict, repr=False)
+    scenario: Scenario = field(default_factory=dict, repr=False)
 
 
-def _as_scenario(scenario) -> dict:
+def _as_scenario(scenario: ScenarioLike) -> Scenario:
     if isinstance(scenario, Mapping):
         if "_path" in scenario:
             sc = dict(scenario)
@@ -102,7 +105,7 @@ def _as_scenario(scenario) -> dict:
     return load_scenario(scenario)
 
 
-def with_flight(scenario: dict, *, date: str | None = None, flight_id: str | None = None) -> dict:
+def with_flight(scenario: Scenario, *, date: str | None = None, flight_id: str | None = None) -> Scenario:
     """A copy of a loaded scenario flown on another ``date`` (YYYY-MM-DD; the time of day and
     UTC offset kept) and/or under another ``flight_id``.
 
@@ -130,7 +133,7 @@ def with_flight(scenario: dict, *, date: str | None = None, flight_id: str | Non
     return sc
 
 
-def build_scene(scenario, seed: int = 0) -> Scene:
+def build_scene(scenario: ScenarioLike, seed: int = 0) -> Scene:
     """The :class:`Scene` of a scenario (dict or path), without writing anything."""
     sc = _as_scenario(scenario)
     sc.pop("_path", None)
@@ -146,7 +149,7 @@ def _replaceable(path: Path) -> bool:
     return not entries or (path / "truth.json").exists() or (path / "flight.toml").exists()
 
 
-def simulate_flight(scenario, out_dir, seed: int = 0, *, overwrite: bool = False,
+def simulate_flight(scenario: ScenarioLike, out_dir: str | PathLike[str], seed: int = 0, *, overwrite: bool = False,
                     progress: ProgressFn | None = None) -> SimulationResult:
     """Simulate a flight with ground truth.
 
@@ -253,7 +256,7 @@ def simulate_flight(scenario, out_dir, seed: int = 0, *, overwrite: bool = False
         n_defective=len(scene.defects), defects=counts, seed=int(seed), scenario=sc)
 
 
-def simulate_random(seed: int, out_dir, family: str = "any", *, overwrite: bool = False,
+def simulate_random(seed: int, out_dir: str | PathLike[str], family: str = "any", *, overwrite: bool = False,
                     progress: ProgressFn | None = None) -> SimulationResult:
     """Simulate a random flight of a family (:mod:`pvscan.simulate.sampler`) with ground truth.
 

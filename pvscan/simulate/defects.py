@@ -23,12 +23,22 @@ and maintenance - Part 3: Photovoltaic modules and plants - Outdoor infrared the
 from __future__ import annotations
 
 import warnings
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
+from numpy.typing import ArrayLike
 
+from pvscan._typing import FloatArray, IntArray
 from pvscan.errors import PvscanWarning
-from pvscan.simulate.scenario import DEFECT_KINDS
+from pvscan.simulate.scenario import DEFECT_KINDS, Scenario
+
+if TYPE_CHECKING:
+    from pvscan.simulate.geometry import Field
+
+#: A region in module-local coordinates: (u0, u1, v0, v1) [-].
+Box = tuple[float, float, float, float]
 
 __all__ = ["Defect", "ModuleGeometry", "place_defects", "SPOT_PATTERNS"]
 
@@ -89,14 +99,14 @@ class Defect:
     kind: str
     module: int
     group: int
-    params: dict = field(default_factory=dict)
-    boxes: list = field(default_factory=list)
+    params: dict[str, Any] = field(default_factory=dict)
+    boxes: list[Box] = field(default_factory=list)
 
     @property
     def spot(self) -> bool:
         return self.kind in SPOT_PATTERNS
 
-    def rise(self, u, v, geom: ModuleGeometry, dt_open: float):
+    def rise(self, u: ArrayLike, v: ArrayLike, geom: ModuleGeometry, dt_open: float) -> FloatArray:
         """Temperature rise of this defect at module-local points [K].
 
         Parameters
@@ -158,7 +168,7 @@ class Defect:
         raise ValueError(f"unknown defect pattern {k}")  # pragma: no cover
 
 
-def _boxes_of(d: Defect, geom: ModuleGeometry, gsd: float) -> list:
+def _boxes_of(d: Defect, geom: ModuleGeometry, gsd: float) -> list[Box]:
     p = d.params
     nd = geom.bypass_diodes
     if d.kind in ("open_module", "open_string", "pid"):
@@ -179,7 +189,7 @@ def _boxes_of(d: Defect, geom: ModuleGeometry, gsd: float) -> list:
     raise ValueError(d.kind)  # pragma: no cover
 
 
-def _pid_weights(rng, geom: ModuleGeometry) -> np.ndarray:
+def _pid_weights(rng: np.random.Generator, geom: ModuleGeometry) -> FloatArray:
     """Patchy per-cell weights of a PID-affected module, mean 1 over the cells [-].
 
     PID shunts cells unevenly, most often those next to the grounded frame (common
@@ -192,7 +202,7 @@ def _pid_weights(rng, geom: ModuleGeometry) -> np.ndarray:
     return w / w.mean()
 
 
-def place_defects(rng, sc: dict, fld, geom: ModuleGeometry) -> list[Defect]:
+def place_defects(rng: np.random.Generator, sc: Scenario, fld: Field, geom: ModuleGeometry) -> list[Defect]:
     """Choose modules and parameters for the scenario's defects.
 
     Defects never share a module, and two defect instances in the same table are at least
@@ -222,7 +232,8 @@ def place_defects(rng, sc: dict, fld, geom: ModuleGeometry) -> list[Defect]:
 _STRING_KINDS = ("open_string", "pid")
 
 
-def _place(rng, sc: dict, fld, geom: ModuleGeometry, order) -> tuple[list[Defect], dict[str, str]]:
+def _place(rng: np.random.Generator, sc: Scenario, fld: Field, geom: ModuleGeometry,
+           order: Sequence[str]) -> tuple[list[Defect], dict[str, str]]:
     """Defects placed in ``order`` of kinds; also the kinds placed fewer than asked."""
     dcfg = sc["defects"]
     gsd = sc["camera"]["gsd_m"]
@@ -235,18 +246,18 @@ def _place(rng, sc: dict, fld, geom: ModuleGeometry, order) -> tuple[list[Defect
     short: dict[str, str] = {}
     group = 0
 
-    def block(idxs):
+    def block(idxs: Iterable[int]) -> None:
         for i in idxs:
             same = (key_table == key_table[i]) & (np.abs(m["col"] - m["col"][i]) <= spacing)
             blocked[same] = True
 
-    def free_module():
+    def free_module() -> int | None:
         cand = np.flatnonzero(~blocked)
         if cand.size == 0:
             return None
         return int(rng.choice(cand))
 
-    def string_members(sid):
+    def string_members(sid: str) -> IntArray:
         idx = np.flatnonzero(m["string_id"] == sid)
         return idx[np.argsort(m["string_index"][idx])]
 
@@ -282,7 +293,7 @@ def _place(rng, sc: dict, fld, geom: ModuleGeometry, order) -> tuple[list[Defect
             if i is None:
                 short[kind] = "module"
                 break
-            p: dict = {}
+            p: dict[str, Any] = {}
             if kind == "bypassed_substring":
                 p["substrings"] = [int(rng.integers(nd))]
             elif kind == "several_bypassed_substrings":
@@ -291,7 +302,8 @@ def _place(rng, sc: dict, fld, geom: ModuleGeometry, order) -> tuple[list[Defect
                 ncell = 1 if kind == "hot_cell" else int(rng.integers(2, 6))
                 lin = rng.choice(geom.n_along * geom.n_across, size=ncell, replace=False)
                 p["cells"] = [(int(c // geom.n_across), int(c % geom.n_across)) for c in lin]
-                p["rise_k"] = [float(r) for r in rng.uniform(*dcfg["hot_cell_rise_k"], size=ncell)]
+                rise_lo, rise_hi = dcfg["hot_cell_rise_k"]
+                p["rise_k"] = [float(r) for r in rng.uniform(rise_lo, rise_hi, size=ncell)]
             elif kind == "soiling":
                 p["height"] = float(rng.uniform(*dcfg["soiling_height"]))
                 p["rise_k"] = float(rng.uniform(*dcfg["soiling_rise_k"]))

@@ -31,9 +31,14 @@ from __future__ import annotations
 
 import functools
 import math
+from collections.abc import Mapping
+from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy import constants, optimize
+
+from pvscan._typing import FloatArray
 
 __all__ = ["DiodeModule", "diode_module", "faiman"]
 
@@ -41,7 +46,8 @@ _IDEALITY = 1.1
 _R_SH_OHM = 400.0
 
 
-def faiman(poa_global, temp_air, wind_speed, u0=25.0, u1=6.84):
+def faiman(poa_global: ArrayLike, temp_air: ArrayLike, wind_speed: ArrayLike, u0: float = 25.0,
+           u1: float = 6.84) -> FloatArray:
     """Module temperature by the Faiman model [degC] (:func:`pvlib.temperature.faiman`).
 
     Parameters
@@ -80,7 +86,7 @@ class DiodeModule:
     """
 
     def __init__(self, pmax_w: float, cells_series: int, voc_v: float, isc_a: float,
-                 gamma_pmax_pct_per_k: float = -0.35):
+                 gamma_pmax_pct_per_k: float = -0.35) -> None:
         self.pmax_w, self.voc_v, self.isc_a = float(pmax_w), float(voc_v), float(isc_a)
         self.a_ref = _IDEALITY * int(cells_series) * constants.k * (25.0 + constants.zero_Celsius) / constants.e
         self.i0_ref = self.isc_a / math.expm1(self.voc_v / self.a_ref)
@@ -99,7 +105,7 @@ class DiodeModule:
         except ValueError:  # coefficient outside what the model can give: keep silicon's
             self.eg_ref = 1.121
 
-    def p_mp(self, poa_global, temp_cell, r_s: float | None = None):
+    def p_mp(self, poa_global: ArrayLike, temp_cell: ArrayLike, r_s: float | None = None) -> FloatArray:
         """Power at the maximum power point [W] at irradiance [W/m2] and cell temperature [degC]."""
         import pvlib
 
@@ -115,7 +121,7 @@ def _cached(pmax_w: float, cells_series: int, voc_v: float, isc_a: float, gamma:
     return DiodeModule(pmax_w, cells_series, voc_v, isc_a, gamma)
 
 
-def diode_module(module: dict) -> DiodeModule:
+def diode_module(module: Mapping[str, Any]) -> DiodeModule:
     """The :class:`DiodeModule` of a scenario's ``[module]`` table (cached)."""
     ns = int(module["cells_across"]) * int(module["cells_along"])
     voc = float(module.get("voc_v", 0.682 * ns))

@@ -11,9 +11,15 @@ from __future__ import annotations
 
 import math
 import warnings
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
+from datetime import datetime
+from typing import Any
 
 import numpy as np
+from numpy.typing import ArrayLike
+
+from pvscan._typing import FloatArray
 
 __all__ = ["FlightPlan", "plan_flight", "WeatherSeries", "weather_series"]
 
@@ -30,20 +36,20 @@ class FlightPlan:
         Seconds since the start of the flight [s].
     duration_s : float
         Time of the last frame [s].
-    headings : ndarray (n, 2), optional
+    headings : ndarray (n, 2)
         Unit vector (east, north) of the drone's travel when each frame was taken.
     """
 
-    corners: np.ndarray
-    times_s: np.ndarray
+    corners: FloatArray
+    times_s: FloatArray
     duration_s: float
-    headings: np.ndarray | None = None
+    headings: FloatArray
 
     @property
-    def centres(self) -> np.ndarray:
+    def centres(self) -> FloatArray:
         return self.corners.mean(axis=1)
 
-    def imaged_at(self, x, y) -> np.ndarray:
+    def imaged_at(self, x: ArrayLike, y: ArrayLike) -> FloatArray:
         """Time each point is imaged: that of the frame whose centre is nearest [s]."""
         from scipy.spatial import cKDTree
 
@@ -51,7 +57,8 @@ class FlightPlan:
         return self.times_s[k].reshape(np.shape(x))
 
 
-def plan_flight(fl: dict, extent, gsd: float, heading=(1.0, 0.0)) -> FlightPlan:
+def plan_flight(fl: Mapping[str, Any], extent: Sequence[float], gsd: float,
+                heading: Sequence[float] = (1.0, 0.0)) -> FlightPlan:
     """Plan serpentine lines covering ``extent`` = (xmin, ymin, xmax, ymax) [m].
 
     Parameters
@@ -118,26 +125,27 @@ class WeatherSeries:
         thermal inertia smooths fast changes (see :func:`weather_series`).
     """
 
-    times_s: np.ndarray
-    poa_global: np.ndarray
-    temp_air: np.ndarray
-    wind_speed: np.ndarray
+    times_s: FloatArray
+    poa_global: FloatArray
+    temp_air: FloatArray
+    wind_speed: FloatArray
     varying: bool
-    poa_thermal: np.ndarray | None = None
+    poa_thermal: FloatArray | None = None
 
-    def at(self, t_s):
+    def at(self, t_s: ArrayLike) -> tuple[FloatArray, FloatArray, FloatArray]:
         """(poa_global, temp_air, wind_speed) at times ``t_s``, linearly interpolated."""
         t = np.asarray(t_s, float)
         return (np.interp(t, self.times_s, self.poa_global), np.interp(t, self.times_s, self.temp_air),
                 np.interp(t, self.times_s, self.wind_speed))
 
-    def poa_thermal_at(self, t_s):
+    def poa_thermal_at(self, t_s: ArrayLike) -> FloatArray:
         """Irradiance the module temperature is in balance with at times ``t_s`` [W/m2]."""
         pt = self.poa_global if self.poa_thermal is None else self.poa_thermal
         return np.interp(np.asarray(t_s, float), self.times_s, pt)
 
 
-def weather_series(cond: dict, duration_s: float, rng, start=None) -> WeatherSeries:
+def weather_series(cond: Mapping[str, Any], duration_s: float, rng: np.random.Generator,
+                   start: datetime | None = None) -> WeatherSeries:
     """Conditions during the flight: constants, or drift plus irradiance dips and gusts.
 
     Irradiance dips (thin passing clouds) are Gaussian in time, 20-60 s wide; the gusts are
@@ -185,7 +193,8 @@ def weather_series(cond: dict, duration_s: float, rng, start=None) -> WeatherSer
     return WeatherSeries(t[keep], g[keep], ta[keep], v[keep], True, g_th[keep])
 
 
-def _thermal_irradiance(t, g, ta, v, u, step):
+def _thermal_irradiance(t: FloatArray, g: FloatArray, ta: FloatArray, v: FloatArray, u: FloatArray,
+                        step: float) -> FloatArray:
     import pandas as pd
     import pvlib
 

@@ -18,10 +18,35 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import TypedDict
 
 import numpy as np
+import numpy.typing as npt
+from numpy.typing import ArrayLike
 
-__all__ = ["Field", "build_field", "utm_epsg"]
+from pvscan._typing import FloatArray, IntArray
+from pvscan.simulate.scenario import Scenario
+
+__all__ = ["Field", "ModuleArrays", "build_field", "utm_epsg"]
+
+
+class ModuleArrays(TypedDict):
+    """Per-module arrays of a :class:`Field` (index = module index)."""
+
+    trow: IntArray            #: table row (0-based)
+    table: IntArray           #: table along the row (0-based)
+    row: IntArray             #: module row across the table (0-based)
+    col: IntArray             #: module column along the table (0-based grid position)
+    col_num: IntArray         #: column number in the module id (1-based, smallest easting first)
+    s0: FloatArray            #: field coordinate s of the module's lower corner [m]
+    w0: FloatArray            #: field coordinate w of the module's lower corner [m]
+    module_id: npt.NDArray[np.object_]
+    table_id: npt.NDArray[np.object_]
+    string_id: npt.NDArray[np.object_]
+    string_index: IntArray    #: position in the string (1-based)
+    cx: FloatArray            #: centroid east [m]
+    cy: FloatArray            #: centroid north [m]
+    corners: FloatArray       #: (n, 4, 2) footprint corners [m]
 
 
 def utm_epsg(lon: float, lat: float) -> int:
@@ -69,9 +94,9 @@ class Field:
     """
 
     epsg: int
-    origin: np.ndarray
-    a: np.ndarray
-    c: np.ndarray
+    origin: FloatArray
+    a: FloatArray
+    c: FloatArray
     azimuth_deg: float
     tilt_deg: float
     n_trows: int
@@ -88,27 +113,27 @@ class Field:
     table_step: float
     pitch: float
     col_reversed: bool
-    modules: dict
-    lut: np.ndarray
+    modules: ModuleArrays
+    lut: IntArray
 
     @property
     def n_modules(self) -> int:
         return int(self.lut.size)
 
-    def to_field(self, x, y):
+    def to_field(self, x: ArrayLike, y: ArrayLike) -> tuple[FloatArray, FloatArray]:
         """Field coordinates (s, w) of map points [m]."""
         dx = np.asarray(x, float) - self.origin[0]
         dy = np.asarray(y, float) - self.origin[1]
         return dx * self.a[0] + dy * self.a[1], -(dx * self.c[0] + dy * self.c[1])
 
-    def to_map(self, s, w):
+    def to_map(self, s: ArrayLike, w: ArrayLike) -> tuple[FloatArray, FloatArray]:
         """Map points of field coordinates [m]."""
         s = np.asarray(s, float)
         w = np.asarray(w, float)
         return (self.origin[0] + s * self.a[0] - w * self.c[0],
                 self.origin[1] + s * self.a[1] - w * self.c[1])
 
-    def bounds(self, margin: float = 0.0):
+    def bounds(self, margin: float = 0.0) -> tuple[float, float, float, float]:
         """(xmin, ymin, xmax, ymax) of all tables plus a margin [m]."""
         s = np.array([0.0, self.total_s, 0.0, self.total_s])
         w = np.array([0.0, 0.0, self.total_w, self.total_w])
@@ -123,7 +148,8 @@ class Field:
     def total_w(self) -> float:
         return (self.n_trows - 1) * self.pitch + self.table_depth
 
-    def locate(self, x, y):
+    def locate(self, x: ArrayLike, y: ArrayLike
+               ) -> tuple[IntArray, FloatArray, FloatArray, FloatArray, FloatArray]:
         """Module index and module-local (u, v) of map points.
 
         Returns
@@ -158,7 +184,7 @@ class Field:
             u, v = fs, fw
         return idx, u, v, s, w
 
-    def uv_to_field(self, idx, u, v):
+    def uv_to_field(self, idx: IntArray | int, u: ArrayLike, v: ArrayLike) -> tuple[FloatArray, FloatArray]:
         """Field coordinates (s, w) of module-local (u, v) of modules ``idx`` [m]."""
         m = self.modules
         if self.portrait:
@@ -167,12 +193,12 @@ class Field:
             fs, fw = np.asarray(u, float), np.asarray(v, float)
         return m["s0"][idx] + fs * self.mod_s, m["w0"][idx] + fw * self.mod_w
 
-    def uv_to_map(self, idx, u, v):
+    def uv_to_map(self, idx: IntArray | int, u: ArrayLike, v: ArrayLike) -> tuple[FloatArray, FloatArray]:
         """Map points of module-local (u, v) of modules ``idx`` [m]."""
         return self.to_map(*self.uv_to_field(idx, u, v))
 
 
-def build_field(sc: dict) -> Field:
+def build_field(sc: Scenario) -> Field:
     """Build the field of a (complete) scenario.
 
     Parameters
@@ -244,7 +270,7 @@ def build_field(sc: dict) -> Field:
     corners = np.stack([xs, ys], axis=2)
     cxm = corners[:, :, 0].mean(axis=1)
     cym = corners[:, :, 1].mean(axis=1)
-    modules = {
+    modules: ModuleArrays = {
         "trow": g_tr, "table": g_tb, "row": g_r, "col": g_c, "col_num": col_num,
         "s0": s0, "w0": w0, "module_id": module_id, "table_id": table_id,
         "string_id": string_id, "string_index": string_index.astype(np.int64),

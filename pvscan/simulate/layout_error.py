@@ -17,8 +17,16 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
+from numpy.typing import ArrayLike
+
+from pvscan._typing import FloatArray, IntArray
+from pvscan.simulate.scenario import Scenario
+
+if TYPE_CHECKING:
+    from pvscan.simulate.geometry import Field
 
 __all__ = ["LayoutError", "layout_error"]
 
@@ -49,14 +57,14 @@ class LayoutError:
     scale: float
     local_rms_m: float
     centre: tuple[float, float]
-    table_shift: np.ndarray
+    table_shift: FloatArray
 
     @property
     def is_identity(self) -> bool:
         return (self.dx_m == 0 and self.dy_m == 0 and self.rotation_deg == 0 and self.scale == 1
                 and self.local_rms_m == 0)
 
-    def apply(self, xy, table_index=None) -> np.ndarray:
+    def apply(self, xy: ArrayLike, table_index: IntArray | int | None = None) -> FloatArray:
         """Drawn positions of true map points ``xy`` (..., 2) [m] of tables ``table_index``."""
         xy = np.asarray(xy, float)
         a = math.radians(self.rotation_deg)
@@ -68,7 +76,7 @@ class LayoutError:
             out = out + (d[..., None, :] if out.ndim == d.ndim + 1 else d)
         return out
 
-    def as_truth(self) -> dict:
+    def as_truth(self) -> dict[str, Any]:
         """``truth.json`` ``layout_error``: what was drawn wrong, in the ortho CRS."""
         rms = float(np.sqrt(np.mean(np.sum(self.table_shift ** 2, axis=1)))) if self.table_shift.size else 0.0
         return {"dx_m": self.dx_m, "dy_m": self.dy_m, "rotation_deg": self.rotation_deg, "scale": self.scale,
@@ -78,7 +86,7 @@ class LayoutError:
                 "formula": "p_drawn = c + scale * R(rotation) (p_true - c) + [dx, dy] + d_table"}
 
 
-def layout_error(sc: dict, fld, seed: int) -> LayoutError:
+def layout_error(sc: Scenario, fld: Field, seed: int) -> LayoutError:
     """The :class:`LayoutError` of a scenario (``[layout]`` keys) on its field."""
     lay = sc["layout"]
     off = lay["offset_m"]

@@ -39,8 +39,16 @@ few centimetres (``distractors.seam_shift_m``): inside it the mosaic shows the s
 """
 from __future__ import annotations
 
+from collections.abc import Callable, Sequence
+
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy.spatial import cKDTree
+
+from pvscan._typing import FloatArray, IntArray
+
+#: ``height(x, y)``: height above the ground at map points [m].
+HeightFn = Callable[[FloatArray, FloatArray], FloatArray]
 
 __all__ = ["FrameLookup", "motion_kernel", "relief_image", "relief_source", "smear", "vignetting_factor"]
 
@@ -54,25 +62,27 @@ class FrameLookup:
         Frame centres (nadir points) in the projected CRS [m].
     """
 
-    def __init__(self, centres):
+    def __init__(self, centres: ArrayLike) -> None:
         self.centres = np.asarray(centres, float)
         self._tree = cKDTree(self.centres)
 
-    def nadir(self, x, y):
+    def nadir(self, x: ArrayLike, y: ArrayLike) -> tuple[FloatArray, FloatArray]:
         """Nadir (x, y) of the frame kept for each point [m]."""
         x = np.asarray(x, float)
         _, k = self._tree.query(np.stack([x.ravel(), np.asarray(y, float).ravel()], axis=1))
         c = self.centres[k]
         return c[:, 0].reshape(x.shape), c[:, 1].reshape(x.shape)
 
-    def index(self, x, y):
+    def index(self, x: ArrayLike, y: ArrayLike) -> IntArray:
         """Index of the frame kept for each point [-]."""
         x = np.asarray(x, float)
         _, k = self._tree.query(np.stack([x.ravel(), np.asarray(y, float).ravel()], axis=1))
         return k.reshape(x.shape)
 
 
-def relief_source(px, py, nx, ny, height, altitude_m: float, starts=(1.0,), n_iter: int = 4, tol_m: float = 0.02):
+def relief_source(px: ArrayLike, py: ArrayLike, nx: FloatArray, ny: FloatArray, height: HeightFn,
+                  altitude_m: FloatArray | float, starts: Sequence[float] = (1.0,), n_iter: int = 4,
+                  tol_m: float = 0.02) -> tuple[FloatArray, FloatArray, FloatArray]:
     """Surface point shown by ortho pixels under relief displacement [m].
 
     Parameters
@@ -119,7 +129,8 @@ def relief_source(px, py, nx, ny, height, altitude_m: float, starts=(1.0,), n_it
     return px - ex * out, py - ey * out, out
 
 
-def relief_image(qx, qy, height, altitude_m, lookup: FrameLookup, n_iter: int = 4):
+def relief_image(qx: ArrayLike, qy: ArrayLike, height: ArrayLike, altitude_m: ArrayLike, lookup: FrameLookup,
+                 n_iter: int = 4) -> tuple[FloatArray, FloatArray]:
     """Where surface points at ``height`` above the ground land in the ortho [m].
 
     The inverse of :func:`relief_source`: ``P = N + (Q - N) * H / (H - h)``, with ``N`` the
@@ -153,7 +164,8 @@ def relief_image(qx, qy, height, altitude_m, lookup: FrameLookup, n_iter: int = 
     return px, py
 
 
-def motion_kernel(length_px: float, direction, step_px: float = 0.05, reach: float = 7.0) -> np.ndarray:
+def motion_kernel(length_px: float, direction: Sequence[float] | FloatArray, step_px: float = 0.05,
+                  reach: float = 7.0) -> FloatArray:
     """Raster kernel of the exponential trail of motion blur, normalised to sum 1.
 
     Parameters
@@ -191,7 +203,7 @@ def motion_kernel(length_px: float, direction, step_px: float = 0.05, reach: flo
     return k / k.sum()
 
 
-def smear(image: np.ndarray, length_px: float, direction) -> np.ndarray:
+def smear(image: FloatArray, length_px: float, direction: Sequence[float] | FloatArray) -> FloatArray:
     """``image`` convolved with :func:`motion_kernel` (FFT; edges: nearest value repeated)."""
     from scipy.signal import fftconvolve
 
@@ -203,7 +215,7 @@ def smear(image: np.ndarray, length_px: float, direction) -> np.ndarray:
     return out[r:r + image.shape[0], r:r + image.shape[1]]
 
 
-def vignetting_factor(r_m, altitude_m: float, residual: float):
+def vignetting_factor(r_m: ArrayLike, altitude_m: float, residual: float) -> FloatArray:
     """Sensor radiance factor of residual vignetting at ground distance ``r_m`` from the nadir [-].
 
     ``1 - residual * (1 - cos^4 theta)``, ``tan theta = r / H`` (cosine-fourth law).

@@ -38,9 +38,13 @@ from __future__ import annotations
 
 import functools
 import math
+from collections.abc import Sequence
 
 import numpy as np
+from numpy.typing import ArrayLike
 from scipy import constants, integrate
+
+from pvscan._typing import FloatArray
 
 __all__ = ["planck", "band_radiance", "band_temperature", "apparent_temperature",
            "vapour_pressure_hpa", "sky_temperature", "air_transmission", "ZERO_C"]
@@ -50,7 +54,7 @@ _T_MIN_C, _T_MAX_C, _T_STEP_K = -150.0, 300.0, 0.02
 _N_WAVELENGTHS = 401
 
 
-def planck(wavelength_m, temp_k):
+def planck(wavelength_m: ArrayLike, temp_k: ArrayLike) -> FloatArray:
     """Spectral radiance of a black body, Planck's law [W/(m2 sr m)].
 
     Parameters
@@ -67,7 +71,7 @@ def planck(wavelength_m, temp_k):
         return 2.0 * h * c ** 2 / lam ** 5 / np.expm1(h * c / (lam * k * t))
 
 
-def _band_integral(temp_k: np.ndarray, band_um: tuple[float, float]) -> np.ndarray:
+def _band_integral(temp_k: FloatArray, band_um: tuple[float, ...]) -> FloatArray:
     lam = np.linspace(band_um[0], band_um[1], _N_WAVELENGTHS) * 1e-6
     out = np.empty(temp_k.shape)
     for i0 in range(0, temp_k.size, 2000):  # bounded memory
@@ -77,12 +81,12 @@ def _band_integral(temp_k: np.ndarray, band_um: tuple[float, float]) -> np.ndarr
 
 
 @functools.lru_cache(maxsize=8)
-def _table(band_um: tuple[float, float]) -> tuple[np.ndarray, np.ndarray]:
+def _table(band_um: tuple[float, ...]) -> tuple[FloatArray, FloatArray]:
     temp_k = np.arange(_T_MIN_C, _T_MAX_C + _T_STEP_K / 2, _T_STEP_K) + ZERO_C
     return temp_k, _band_integral(temp_k, band_um)
 
 
-def band_radiance(temp_k, band_um=(7.5, 13.5)):
+def band_radiance(temp_k: ArrayLike, band_um: Sequence[float] = (7.5, 13.5)) -> FloatArray:
     """Radiance of a black body integrated over the camera band [W/(m2 sr)].
 
     Parameters
@@ -96,7 +100,7 @@ def band_radiance(temp_k, band_um=(7.5, 13.5)):
     return np.interp(np.asarray(temp_k, float), tk, lk)
 
 
-def band_temperature(radiance, band_um=(7.5, 13.5)):
+def band_temperature(radiance: ArrayLike, band_um: Sequence[float] = (7.5, 13.5)) -> FloatArray:
     """Inverse of :func:`band_radiance`: the black-body temperature of a band radiance [K].
 
     Radiances outside the table give NaN.
@@ -105,8 +109,9 @@ def band_temperature(radiance, band_um=(7.5, 13.5)):
     return np.interp(np.asarray(radiance, float), lk, tk, left=np.nan, right=np.nan)
 
 
-def apparent_temperature(temp_c, *, emissivity, temp_sky_c, transmission, temp_air_c,
-                         export_emissivity, export_reflected_c, band_um=(7.5, 13.5)):
+def apparent_temperature(temp_c: ArrayLike, *, emissivity: ArrayLike, temp_sky_c: ArrayLike,
+                         transmission: ArrayLike, temp_air_c: ArrayLike, export_emissivity: float,
+                         export_reflected_c: float, band_um: Sequence[float] = (7.5, 13.5)) -> FloatArray:
     """Apparent temperature the camera export writes for a surface [degC].
 
     Parameters
@@ -139,13 +144,14 @@ def apparent_temperature(temp_c, *, emissivity, temp_sky_c, transmission, temp_a
     return band_temperature(l_app, b) - ZERO_C
 
 
-def vapour_pressure_hpa(temp_air_c, relative_humidity_pct):
+def vapour_pressure_hpa(temp_air_c: ArrayLike, relative_humidity_pct: ArrayLike) -> FloatArray:
     """Vapour pressure, Magnus form of Alduchov & Eskridge (1996) [hPa]."""
     t = np.asarray(temp_air_c, float)
     return np.asarray(relative_humidity_pct, float) / 100.0 * 6.1094 * np.exp(17.625 * t / (t + 243.04))
 
 
-def sky_temperature(temp_air_c: float, relative_humidity_pct: float, band_um=(7.5, 13.5)) -> float:
+def sky_temperature(temp_air_c: float, relative_humidity_pct: float,
+                    band_um: Sequence[float] = (7.5, 13.5)) -> float:
     """Apparent clear-sky temperature in the camera band [degC] (Idso 1981, capped by
     Brutsaert 1975; see the module notes)."""
     t = float(temp_air_c) + ZERO_C
@@ -155,8 +161,8 @@ def sky_temperature(temp_air_c: float, relative_humidity_pct: float, band_um=(7.
     return float(band_temperature(eps_w * band_radiance(t, band_um), band_um)) - ZERO_C
 
 
-def air_transmission(distance_m, temp_air_c, relative_humidity_pct, band_um=(7.5, 13.5),
-                     pressure_hpa: float = 1013.25):
+def air_transmission(distance_m: ArrayLike, temp_air_c: ArrayLike, relative_humidity_pct: ArrayLike,
+                     band_um: Sequence[float] = (7.5, 13.5), pressure_hpa: float = 1013.25) -> FloatArray | float:
     """Band transmission of an air path by water-vapour continuum absorption [-].
 
     ``k(nu) = (4.18 + 5578 exp(-7.87e-3 nu)) exp(1800 (1/T - 1/296)) (e + 0.002 P)``

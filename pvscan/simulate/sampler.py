@@ -108,7 +108,7 @@ def _gsd_m(module: dict, px_per_cell: float) -> float:
     return math.floor(cell_edge_m(module) / px_per_cell * 1e4) / 1e4
 
 
-def _altitude_m(rng, gsd_m: float) -> float:
+def _altitude_m(rng: np.random.Generator, gsd_m: float) -> float:
     """Height above the modules of a lens that gives ``gsd_m``: ``GSD * f / pitch`` (pinhole
     camera), for a focal length drawn among those that keep it within :data:`ALTITUDE_M`."""
     heights = [gsd_m * f / PIXEL_PITCH_M for f in FOCAL_LENGTHS_M]
@@ -126,7 +126,8 @@ def _sun(lat: float, lon: float, when: datetime) -> tuple[float, float]:
     return float(pos["apparent_elevation"].iloc[0]), float(pos["azimuth"].iloc[0])
 
 
-def _when(rng, lat, lon, family, kind, low_noon=False) -> datetime:
+def _when(rng: np.random.Generator, lat: float, lon: float, family: str, kind: str,
+          low_noon: bool = False) -> datetime:
     """A flight start with the sun in the family's range (solar position by pvlib)."""
     tz = timezone(timedelta(hours=int(round(lon / 15.0))))
     for _ in range(400 if low_noon else 200):
@@ -150,7 +151,7 @@ def _when(rng, lat, lon, family, kind, low_noon=False) -> datetime:
     raise SimulationError(f"random flight: no date with the sun in range for family {family!r}")
 
 
-def _tracker_tilt(lat, lon, when, gcr) -> tuple[float, str]:
+def _tracker_tilt(lat: float, lon: float, when: datetime, gcr: float) -> tuple[float, str]:
     import pandas as pd
     import pvlib
 

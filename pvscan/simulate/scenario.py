@@ -11,13 +11,18 @@ from __future__ import annotations
 import copy
 import math
 from collections.abc import Mapping
+from os import PathLike
 from pathlib import Path
-from typing import Any
+from typing import Any, TypeAlias
 
 from pvscan.errors import SimulationError
 from pvscan.io.resources import describe_error, load_schema, read_toml_file, schema_errors
 
-__all__ = ["DEFAULTS", "DEFECT_KINDS", "load_scenario", "scenario_from_dict"]
+__all__ = ["DEFAULTS", "DEFECT_KINDS", "Scenario", "load_scenario", "scenario_from_dict"]
+
+#: A scenario: its TOML tables (``site``, ``array``, ``module``, ``flight`` ...) as nested dicts,
+#: complete once :func:`scenario_from_dict` filled in the defaults.
+Scenario: TypeAlias = dict[str, Any]
 
 #: Defect patterns the simulator can place (the project's defect vocabulary).
 DEFECT_KINDS = (
@@ -176,7 +181,7 @@ DEFAULTS: dict[str, Any] = {
 }
 
 
-def _merge(base: dict, over: Mapping) -> dict:
+def _merge(base: dict[str, Any], over: Mapping[str, Any]) -> dict[str, Any]:
     out = copy.deepcopy(base)
     for k, v in over.items():
         if isinstance(v, Mapping) and isinstance(out.get(k), dict):
@@ -186,7 +191,7 @@ def _merge(base: dict, over: Mapping) -> dict:
     return out
 
 
-def _check(sc: dict, where: str) -> None:
+def _check(sc: Scenario, where: str) -> None:
     m = sc["module"]
     if m["width_m"] > m["length_m"]:
         raise SimulationError(f"{where}: key module.width_m is larger than module.length_m (width is the short side)")
@@ -223,7 +228,7 @@ def _check(sc: dict, where: str) -> None:
         raise SimulationError(f"{where}: key defects.pid_modules: the lower bound exceeds the upper")
 
 
-def scenario_from_dict(data: Mapping, where: str = "scenario") -> dict:
+def scenario_from_dict(data: Mapping[str, Any], where: str = "scenario") -> Scenario:
     """Validate a scenario mapping and fill in the defaults.
 
     Parameters
@@ -253,7 +258,7 @@ def scenario_from_dict(data: Mapping, where: str = "scenario") -> dict:
     return sc
 
 
-def load_scenario(path: str | Path) -> dict:
+def load_scenario(path: str | PathLike[str]) -> Scenario:
     """Read and validate a scenario TOML file.
 
     Parameters

@@ -59,12 +59,17 @@ from __future__ import annotations
 
 import logging
 import math
+from collections.abc import Sequence
 from dataclasses import dataclass
 from datetime import datetime, timedelta
+from typing import TypedDict
 
 import numpy as np
+import numpy.typing as npt
+from numpy.typing import ArrayLike
 from scipy import ndimage
 
+from pvscan._typing import BoolArray, FloatArray, IntArray
 from pvscan.simulate import radiance
 from pvscan.simulate.defects import ModuleGeometry, place_defects
 from pvscan.simulate.electrical import diode_module, faiman
@@ -72,9 +77,29 @@ from pvscan.simulate.flightpath import plan_flight, weather_series
 from pvscan.simulate.geometry import build_field
 from pvscan.simulate.layout_error import layout_error
 from pvscan.simulate.optics import FrameLookup, relief_source, smear, vignetting_factor
+from pvscan.simulate.scenario import Scenario
 from pvscan.simulate.shading import RowShade, ground_beam_factor, shadow_geometry
 
-__all__ = ["Scene", "faiman", "GROUND", "GLASS", "FRAME", "OBJECT"]
+__all__ = ["Scene", "SceneSample", "faiman", "GROUND", "GLASS", "FRAME", "OBJECT"]
+
+#: A mosaic seam rectangle in pixels of the global grid: (row0, row1, col0, col1, step_k).
+Seam = tuple[int, int, int, int, float]
+#: A hot object on the ground: (kind, s0, s1, w0, w1, rise_k), field coordinates [m], [K].
+HotObject = tuple[str, float, float, float, float, float]
+
+
+class SceneSample(TypedDict):
+    """True temperature and radiometric parameters of map points (:meth:`Scene.true_scene`)."""
+
+    temp: FloatArray        #: true temperature [degC]
+    material: npt.NDArray[np.int8]  #: GROUND, GLASS, FRAME or OBJECT
+    idx: IntArray           #: module index, -1 off the modules
+    u: FloatArray           #: module-local u [-]
+    v: FloatArray           #: module-local v [-]
+    emissivity: FloatArray  #: [-]
+    temp_sky: FloatArray    #: apparent temperature reflected [degC]
+    tau: FloatArray         #: air path transmission [-]
+    temp_atm: FloatArray    #: air temperature of the path [degC]
 
 log = logging.getLogger(__name__)
 
@@ -86,7 +111,7 @@ class _SmoothNoise:
     """A smooth random field over an extent: unit-variance noise on a coarse grid,
     smoothed and interpolated bilinearly (deterministic for a given rng)."""
 
-    def __init__(self, extent, spacing: float, rng):
+    def __init__(self, extent: Sequence[float], spacing: float, rng: np.random.Generator) -> None:
         xmin, ymin, xmax, ymax = extent
         self.x0, self.y0, self.h = xmin - 2 * spacing, ymin - 2 * spacing, spacing
         nx = int(math.ceil((xmax - xmin) / spacing)) + 5
@@ -94,7 +119,7 @@ class _SmoothNoise:
         g = ndimage.gaussian_filter(rng.standard_normal((ny, nx)), 1.0, mode="wrap")
         self.grid = g / max(g.std(), 1e-12)
 
-    def __call__(self, x, y):
+    def __call__(self, x: ArrayLike, y: ArrayLike) -> FloatArray:
         r = (np.asarray(y) - self.y0) / self.h
         c = (np.asarray(x) - self.x0) / self.h
         return ndimage.map_coordinates(self.grid, [r.ravel(), c.ravel()], order=1, mode="nearest").reshape(r.shape)
@@ -109,7 +134,7 @@ class Blob:
     sigma: float
     amp: float
 
-    def __call__(self, x, y):
+    def __call__(self, x: FloatArray, y: FloatArray) -> FloatArray:
         return self.amp * np.exp(-((x - self.x) ** 2 + (y - self.y) ** 2) / (2 * self.sigma ** 2))
 
 
@@ -124,7 +149,7 @@ class Scene:
         Seed of every random choice (same seed, same flight).
     """
 
-    def __init__(self, sc: dict, seed: int):
+    def __init__(self, sc: Scenario, seed: int) -> None:
         self.sc = sc
         self.seed = int(seed)
         self.field = fld = build_field(sc)
@@ -184,7 +209,7 @@ class Scene:
         self.clouds = [Blob(drng.uniform(fx0, fx1), drng.uniform(fy0, fy1),
                             dis["cloud_shadow_size_m"] * drng.uniform(0.7, 1.3), dis["cloud_shadow_depth"])
                        for _ in range(int(dis["cloud_shadows"]))]
-        self.reflections = []
+        self.reflections: list[Blob] = []
         for _ in range(int(dis["reflections"])):
             i = int(drng.integers(fld.n_modules))
             self.reflections.append(Blob(mods["cx"][i], mods["cy"][i],
@@ -243,7 +268,7 @@ class Scene:
         self.row_shade = shade if shade.any.any() else None
 
     # ------------------------------------------------------------------ distractors
-    def cloud_factor(self, x, y):
+    def cloud_factor(self, x: ArrayLike, y: ArrayLike) -> FloatArray:
         """Irradiance factor of cloud shadows at map points (1 = no shadow) [-]."""
         f = np.ones(np.shape(x))
         for c in self.clouds:
@@ -280,25 +305,26 @@ class Scene:
                 tags[i].append(name)
         return tags
 
-    def _place_seams(self, rng, n, step_range):
+    def _place_seams(self, rng: np.random.Generator, n: int, step_range: Sequence[float]) -> list[Seam]:
         """Rectangles (row0, row1, col0, col1, step_k) in pixels of the global grid."""
-        out = []
+        out: list[Seam] = []
         fr = self.sc["flight"]["frame_px"]
         for _ in range(n):
             h = int(rng.uniform(1.0, 2.5) * fr[1] * 0.5)
             w = int(rng.uniform(1.0, 2.5) * fr[0] * 0.5)
             r0 = int(rng.integers(0, max(1, self.height - h // 2)))
             c0 = int(rng.integers(0, max(1, self.width - w // 2)))
-            step = rng.uniform(*step_range) * rng.choice([-1.0, 1.0])
+            lo, hi = step_range
+            step = rng.uniform(lo, hi) * rng.choice([-1.0, 1.0])
             out.append((r0, r0 + h, c0, c0 + w, float(step)))
         return out
 
-    def _place_objects(self, rng, n):
+    def _place_objects(self, rng: np.random.Generator, n: int) -> list[HotObject]:
         """Hot objects on the ground between table rows: (kind, s0, s1, w0, w1, rise_k)."""
         fld = self.field
         aisle = fld.pitch - fld.table_depth
         kinds = [("inverter", 2.4, 1.2, (20.0, 30.0)), ("vehicle", 4.5, 1.8, (12.0, 18.0))]
-        out = []
+        out: list[HotObject] = []
         n_aisles = max(fld.n_trows - 1, 0)
         for k in range(n):
             kind, length, width, rise = kinds[k % 2]
@@ -315,7 +341,7 @@ class Scene:
                         float(rng.uniform(*rise))))
         return out
 
-    def _sun_shadow(self):
+    def _sun_shadow(self) -> None:
         import pandas as pd
         import pvlib
 
@@ -333,12 +359,12 @@ class Scene:
         self.ground_sun_factor = ground_beam_factor(float(ter["slope_deg"]), float(ter["aspect_deg"]),
                                                     self.sun_elevation_deg, self.sun_azimuth_deg, diffuse)
 
-    def in_shadow(self, s, w):
+    def in_shadow(self, s: FloatArray, w: FloatArray) -> BoolArray:
         """True where ground at field coordinates (s, w) lies in a table's shadow or under it
         (:meth:`pvscan.simulate.shading.ShadowGeometry.shaded`)."""
         return self.shadow.shaded(s, w, self.shadow.ground_z(s, w))
 
-    def raised_height(self, x, y):
+    def raised_height(self, x: FloatArray, y: FloatArray) -> FloatArray:
         """Height above the ground the ortho's surface model misses at map points [m]:
         ``ortho.relief_height_fraction`` of the table plane's height on tables, 0 elsewhere."""
         fld, sh = self.field, self.shadow
@@ -351,7 +377,8 @@ class Scene:
         return np.where(on, self.relief_fraction * h, 0.0)
 
     # ------------------------------------------------------------------ temperatures
-    def module_temperature(self, idx, u, v, *, with_frame: bool = True):
+    def module_temperature(self, idx: ArrayLike, u: ArrayLike, v: ArrayLike, *,
+                           with_frame: bool = True) -> FloatArray:
         """True temperature of module points (module index, module-local u, v) [degC]."""
         idx = np.asarray(idx, np.int64)
         u = np.asarray(u, float)
@@ -378,16 +405,16 @@ class Scene:
                     t[sel] += d.rise(u[sel], v[sel], g, self.dt_open[mod])
         return t
 
-    def is_frame(self, u, v):
+    def is_frame(self, u: FloatArray, v: FloatArray) -> BoolArray:
         """True on the module frame [-]."""
         return (u < self.frame_u) | (u > 1 - self.frame_u) | (v < self.frame_v) | (v > 1 - self.frame_v)
 
-    def true_scene(self, x, y):
+    def true_scene(self, x: FloatArray, y: FloatArray) -> SceneSample:
         """True temperature and radiometric parameters of map points.
 
         Returns
         -------
-        dict
+        SceneSample
             ``temp`` [degC], ``material`` (GROUND, GLASS, FRAME, OBJECT), ``idx`` (module or -1),
             ``u``, ``v``, ``emissivity`` [-], ``temp_sky`` [degC], ``tau`` [-], ``temp_atm`` [degC].
         """
@@ -424,7 +451,7 @@ class Scene:
         return {"temp": temp, "material": material, "idx": idx, "u": u, "v": v,
                 "emissivity": emis, "temp_sky": tsky, "tau": tau, "temp_atm": tatm}
 
-    def apparent(self, scene: dict):
+    def apparent(self, scene: SceneSample) -> FloatArray:
         """Apparent temperature of the export for the output of :meth:`true_scene` [degC]."""
         ex = self.sc["export"]
         return radiance.apparent_temperature(
@@ -434,7 +461,7 @@ class Scene:
             band_um=tuple(self.sc["camera"]["band_um"]))
 
     # ------------------------------------------------------------------ camera
-    def pixel_centres(self, row0, col0, nrows, ncols):
+    def pixel_centres(self, row0: int, col0: int, nrows: int, ncols: int) -> tuple[FloatArray, FloatArray]:
         """Map coordinates of pixel centres of a window of the global grid [m]."""
         cols = np.arange(col0, col0 + ncols)
         rows = np.arange(row0, row0 + nrows)
@@ -442,7 +469,7 @@ class Scene:
         y = self.y1 - (rows + 0.5) * self.gsd
         return np.meshgrid(x, y)
 
-    def _seen_points(self, row0, col0, x, y):
+    def _seen_points(self, row0: int, col0: int, x: FloatArray, y: FloatArray) -> tuple[FloatArray, FloatArray]:
         """Map points the ortho pixels show: shifted inside misaligned seam rectangles, then
         displaced by relief (:mod:`pvscan.simulate.optics`) [m]."""
         rr = np.arange(row0, row0 + x.shape[0])[:, None]
@@ -463,7 +490,7 @@ class Scene:
             xs, ys, _ = relief_source(xs, ys, nx, ny, self.raised_height, alt, starts=starts)
         return xs, ys
 
-    def render_block(self, row0, col0, nrows, ncols):
+    def render_block(self, row0: int, col0: int, nrows: int, ncols: int) -> FloatArray:
         """Final apparent temperature of a window of the global grid [degC], NaN = nodata.
 
         The window is rendered with a halo so the point-spread function is exact at its

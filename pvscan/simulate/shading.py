@@ -33,8 +33,16 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
+import numpy.typing as npt
+from numpy.typing import ArrayLike
+
+from pvscan._typing import BoolArray, FloatArray, IntArray
+
+if TYPE_CHECKING:
+    from pvscan.simulate.geometry import Field
 
 __all__ = ["ShadowGeometry", "shadow_geometry", "terrain_grades", "ground_beam_factor", "RowShade"]
 
@@ -69,11 +77,11 @@ class ShadowGeometry:
     n_trows: int
     n_tables: int
 
-    def ground_z(self, s, w):
+    def ground_z(self, s: ArrayLike, w: ArrayLike) -> FloatArray:
         """Terrain height at field points [m]."""
         return self.grade_s * np.asarray(s, float) + self.grade_w * np.asarray(w, float)
 
-    def table_z(self, s, w):
+    def table_z(self, s: ArrayLike, w: ArrayLike) -> FloatArray:
         """Height of the table plane of the row each point lies in [m]: a rigid table whose
         lower edge stands ``h_low`` above the terrain there, tilted against the horizontal."""
         w = np.asarray(w, float)
@@ -81,7 +89,7 @@ class ShadowGeometry:
         lam = np.clip((w - w0) / self.depth, 0.0, 1.0)
         return self.ground_z(s, w0) + self.h_low + lam * (self.h_high - self.h_low)
 
-    def shaded(self, s, w, z, own_row=None):
+    def shaded(self, s: ArrayLike, w: ArrayLike, z: ArrayLike, own_row: ArrayLike | None = None) -> BoolArray:
         """True where points ``(s, w)`` at height ``z`` lie in the shadow of a table.
 
         Parameters
@@ -128,7 +136,7 @@ class ShadowGeometry:
         return out
 
 
-def terrain_grades(slope_deg: float, aspect_deg: float, a, c) -> tuple[float, float]:
+def terrain_grades(slope_deg: float, aspect_deg: float, a: ArrayLike, c: ArrayLike) -> tuple[float, float]:
     """Terrain height gained per metre along the field's ``s`` and ``w`` [-].
 
     Parameters
@@ -164,7 +172,7 @@ def ground_beam_factor(slope_deg: float, aspect_deg: float, sun_elevation_deg: f
     return (1.0 - diffuse_fraction) * beam + diffuse_fraction * (1.0 + math.cos(beta)) / 2.0
 
 
-def shadow_geometry(field, sun_elevation_deg: float, sun_azimuth_deg: float, mount_height_m: float,
+def shadow_geometry(field: Field, sun_elevation_deg: float, sun_azimuth_deg: float, mount_height_m: float,
                     slope_deg: float = 0.0, aspect_deg: float = 0.0) -> ShadowGeometry:
     """The :class:`ShadowGeometry` of a field under a sun position (pvlib's convention:
     elevation above the horizon, azimuth clockwise from north) [deg]."""
@@ -193,7 +201,8 @@ class RowShade:
         Sample points per cell side (``sub**2`` per cell) for the shaded fraction.
     """
 
-    def __init__(self, field, geom: ShadowGeometry, n_along: int, n_across: int, bypass_diodes: int, sub: int = 4):
+    def __init__(self, field: Field, geom: ShadowGeometry, n_along: int, n_across: int, bypass_diodes: int,
+                 sub: int = 4) -> None:
         n = field.n_modules
         uu = (np.arange(n_along * sub) + 0.5) / (n_along * sub)
         vv = (np.arange(n_across * sub) + 0.5) / (n_across * sub)
@@ -207,7 +216,7 @@ class RowShade:
             z = geom.table_z(s, w)
             sh = geom.shaded(s, w, z, own_row=np.broadcast_to(m["trow"][ids][:, None, None], s.shape))
             frac[ids] = sh.reshape(ids.size, n_along, sub, n_across, sub).mean(axis=(2, 4))
-        self.fraction = frac
+        self.fraction: npt.NDArray[np.float32] = frac
         per = n_across // bypass_diodes
         sub_max = frac.reshape(n, n_along, bypass_diodes, per).max(axis=(1, 3))
         #: (n_modules, bypass_diodes): substring with a cell more than half shaded
@@ -215,14 +224,14 @@ class RowShade:
         self.per = per
 
     @property
-    def any(self) -> np.ndarray:
+    def any(self) -> BoolArray:
         """Modules with any shaded cell (n,)."""
         return self.fraction.reshape(self.fraction.shape[0], -1).max(axis=1) > 0.0
 
-    def factor(self, idx, ci, cj, beam_fraction: float):
+    def factor(self, idx: IntArray, ci: IntArray, cj: IntArray, beam_fraction: float) -> npt.NDArray[np.float32]:
         """Share of the module's rise over the air a cell keeps under shade [-]."""
         return 1.0 - beam_fraction * self.fraction[idx, ci, cj]
 
-    def bypassed_at(self, idx, cj):
+    def bypassed_at(self, idx: IntArray, cj: IntArray) -> BoolArray:
         """True where a point's substring is bypassed by the shade [-]."""
         return self.bypassed[idx, cj // self.per]

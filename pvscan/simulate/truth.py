@@ -19,20 +19,43 @@ Definitions follow the project's output contract:
 """
 from __future__ import annotations
 
+from typing import TYPE_CHECKING, TypedDict
+
 import numpy as np
+import numpy.typing as npt
 from scipy.spatial import cKDTree
 
-__all__ = ["module_truth"]
+from pvscan._typing import BoolArray, FloatArray
+
+if TYPE_CHECKING:
+    from pvscan.simulate.geometry import Field
+    from pvscan.simulate.scene import Scene
+
+__all__ = ["ModuleTruth", "module_truth"]
 
 
-def _grid(n_u: int, n_v: int):
+class ModuleTruth(TypedDict):
+    """Per-module truth arrays (index = module index) of :func:`module_truth`."""
+
+    t_true_median_c: FloatArray    #: [degC]
+    t_true_p95_c: FloatArray       #: [degC]
+    reference_true_c: FloatArray   #: [degC], NaN without healthy neighbours
+    delta_t_k: FloatArray          #: [K]
+    delta_t_norm_k: FloatArray     #: [K] at 1000 W/m2 and 1 m/s
+    module_delta_t_k: FloatArray   #: [K]
+    power_loss_w: FloatArray       #: [W] at STC
+    defect: npt.NDArray[np.object_]  #: defect pattern, None when healthy
+    region_t_c: FloatArray         #: [degC]
+
+
+def _grid(n_u: int, n_v: int) -> tuple[FloatArray, FloatArray]:
     uu = (np.arange(n_u) + 0.5) / n_u
     vv = (np.arange(n_v) + 0.5) / n_v
     U, V = np.meshgrid(uu, vv, indexing="ij")
     return U.ravel(), V.ravel()
 
 
-def _reference(fld, t_med: np.ndarray, healthy: np.ndarray) -> np.ndarray:
+def _reference(fld: Field, t_med: FloatArray, healthy: BoolArray) -> FloatArray:
     m = fld.modules
     ref = np.full(fld.n_modules, np.nan)
     xy = np.stack([m["cx"], m["cy"]], axis=1)
@@ -56,12 +79,12 @@ def _reference(fld, t_med: np.ndarray, healthy: np.ndarray) -> np.ndarray:
     return ref
 
 
-def module_truth(scene) -> dict:
+def module_truth(scene: Scene) -> ModuleTruth:
     """Per-module truth arrays of a :class:`~pvscan.simulate.scene.Scene`.
 
     Returns
     -------
-    dict of ndarray
+    ModuleTruth
         ``t_true_median_c``, ``t_true_p95_c``, ``reference_true_c``, ``delta_t_k``,
         ``delta_t_norm_k``, ``module_delta_t_k``, ``power_loss_w`` [W at STC], ``defect``
         (object, None when healthy), ``region_t_c``.

@@ -4,12 +4,27 @@ from __future__ import annotations
 import csv
 import json
 import math
+from collections.abc import Mapping, Sequence
 from datetime import timedelta
 from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
+import numpy.typing as npt
 
+from pvscan._typing import FloatArray, ProgressFn
 from pvscan.simulate.optics import relief_image
+
+if TYPE_CHECKING:
+    from pyproj import Transformer
+
+    from pvscan.simulate.geometry import Field
+    from pvscan.simulate.layout_error import LayoutError
+    from pvscan.simulate.scene import Scene
+    from pvscan.simulate.truth import ModuleTruth
+
+#: A GeoJSON ring: [[lon, lat], ...], closed.
+Ring = list[list[float]]
 
 __all__ = ["write_orthos", "write_layout", "write_manifest", "write_weather", "write_frames",
            "write_truth", "toml_dumps"]
@@ -18,7 +33,7 @@ _KELVIN = 273.15
 
 
 # ----------------------------------------------------------------------------- TOML
-def _toml_value(v) -> str:
+def _toml_value(v: object) -> str:
     if isinstance(v, bool):
         return "true" if v else "false"
     if isinstance(v, int):
@@ -34,7 +49,7 @@ def _toml_value(v) -> str:
     raise TypeError(f"cannot write {type(v).__name__} to TOML")
 
 
-def toml_dumps(data: dict, header: str = "") -> str:
+def toml_dumps(data: Mapping[str, Mapping[str, Any]], header: str = "") -> str:
     """A TOML document of tables of scalars/lists (enough for a manifest)."""
     lines = [f"# {h}" if h else "#" for h in header.splitlines()] if header else []
     for table, items in data.items():
@@ -48,7 +63,8 @@ def toml_dumps(data: dict, header: str = "") -> str:
 
 
 # ----------------------------------------------------------------------------- orthos
-def _tile_windows(width: int, height: int, tiles, overlap_px: int):
+def _tile_windows(width: int, height: int, tiles: Sequence[int],
+                  overlap_px: int) -> list[tuple[int, int, int, int, int, int]]:
     nc, nr = int(tiles[0]), int(tiles[1])
     ce = np.linspace(0, width, nc + 1).round().astype(int)
     re = np.linspace(0, height, nr + 1).round().astype(int)
@@ -63,7 +79,8 @@ def _tile_windows(width: int, height: int, tiles, overlap_px: int):
     return out
 
 
-def write_orthos(scene, out_dir: Path, progress=None):
+def write_orthos(scene: Scene, out_dir: Path, progress: ProgressFn | None = None
+                 ) -> tuple[list[str], dict[str, Any], npt.NDArray[np.float32]]:
     """Render the ortho block by block and write the GeoTIFF tile(s).
 
     Returns
@@ -147,7 +164,7 @@ def write_orthos(scene, out_dir: Path, progress=None):
     return names, ortho_keys, preview
 
 
-def write_preview(preview: np.ndarray, path: Path, title: str = "") -> None:
+def write_preview(preview: npt.NDArray[np.floating[Any]], path: Path, title: str = "") -> None:
     """Quick-look PNG of the ortho, perceptual colour map (matplotlib 'inferno')."""
     from matplotlib.figure import Figure
 
@@ -167,13 +184,13 @@ def write_preview(preview: np.ndarray, path: Path, title: str = "") -> None:
 
 
 # ----------------------------------------------------------------------------- vectors
-def _to_lonlat(epsg: int):
+def _to_lonlat(epsg: int) -> Transformer:
     from pyproj import Transformer
 
     return Transformer.from_crs(f"EPSG:{epsg}", "EPSG:4326", always_xy=True)
 
 
-def _ring(tr, xy: np.ndarray) -> list:
+def _ring(tr: Transformer, xy: FloatArray) -> Ring:
     lon, lat = tr.transform(xy[:, 0], xy[:, 1])
     pts = [[round(float(a), 9), round(float(b), 9)] for a, b in zip(lon, lat)]
     pts.append(pts[0])
@@ -182,7 +199,7 @@ def _ring(tr, xy: np.ndarray) -> list:
     return pts if area > 0 else pts[::-1]
 
 
-def _table_corners(fld, err):
+def _table_corners(fld: Field, err: LayoutError) -> list[tuple[str, FloatArray]]:
     out = []
     for tr in range(fld.n_trows):
         for tb in range(fld.n_tables):
@@ -195,13 +212,13 @@ def _table_corners(fld, err):
     return out
 
 
-def drawn_corners(scene) -> np.ndarray:
+def drawn_corners(scene: Scene) -> FloatArray:
     """Module corners as the layout draws them, (n, 4, 2) in the ortho CRS [m]."""
     m = scene.field.modules
     return scene.layout_error.apply(m["corners"], m["trow"] * scene.field.n_tables + m["table"])
 
 
-def ortho_corners(scene) -> np.ndarray:
+def ortho_corners(scene: Scene) -> FloatArray:
     """Module corners where the ortho shows them, (n, 4, 2) in the ortho CRS [m]: the true
     corners, displaced by relief when the ortho's surface model misses part of the tables'
     height (``ortho.relief_height_fraction``; :func:`pvscan.simulate.optics.relief_image`)."""
@@ -222,7 +239,7 @@ def ortho_corners(scene) -> np.ndarray:
     return np.stack([px, py], axis=-1)
 
 
-def write_truth_ortho(scene, out_dir: Path) -> str:
+def write_truth_ortho(scene: Scene, out_dir: Path) -> str:
     """``truth_ortho.geojson``: the true module polygons as they stand in the ortho (relief
     displacement included, :func:`ortho_corners`), in the ortho's CRS (a GeoJSON 2008 ``crs``
     member names it), with module_id and table_id."""
@@ -242,7 +259,7 @@ def write_truth_ortho(scene, out_dir: Path) -> str:
     return name
 
 
-def write_layout(scene, out_dir: Path) -> str:
+def write_layout(scene: Scene, out_dir: Path) -> str:
     """Write the layout as drawn (with the errors of :mod:`pvscan.simulate.layout_error`);
     returns the file name."""
     sc = scene.sc
@@ -288,7 +305,7 @@ def write_layout(scene, out_dir: Path) -> str:
     return name
 
 
-def write_frames(scene, out_dir: Path) -> str:
+def write_frames(scene: Scene, out_dir: Path) -> str:
     """Camera frame footprints with their ``time`` (ISO 8601), RFC 7946 lon/lat."""
     tr = _to_lonlat(scene.field.epsg)
     feats = []
@@ -302,7 +319,7 @@ def write_frames(scene, out_dir: Path) -> str:
     return name
 
 
-def write_weather(scene, out_dir: Path) -> str:
+def write_weather(scene: Scene, out_dir: Path) -> str:
     """Weather series (time, poa_irradiance_w_m2, ambient_c, wind_m_s) as CSV."""
     w = scene.weather
     name = "weather.csv"
@@ -314,11 +331,12 @@ def write_weather(scene, out_dir: Path) -> str:
     return name
 
 
-def write_manifest(scene, out_dir: Path, orthos, ortho_keys, layout_name, frames_name, weather_name) -> str:
+def write_manifest(scene: Scene, out_dir: Path, orthos: Sequence[str], ortho_keys: dict[str, Any],
+                   layout_name: str, frames_name: str | None, weather_name: str | None) -> str:
     """Write ``flight.toml`` following the flight manifest contract."""
     sc = scene.sc
     site, fl, cond, mod, arr = sc["site"], sc["flight"], sc["conditions"], sc["module"], sc["array"]
-    data = {
+    data: dict[str, dict[str, Any]] = {
         "site": {"name": site["name"], "id": site.get("id"),
                  "specific_yield_kwh_per_kwp": float(site["specific_yield_kwh_per_kwp"]),
                  "tariff_per_kwh": float(site["tariff_per_kwh"]), "currency": site["currency"]},
@@ -356,7 +374,7 @@ def write_manifest(scene, out_dir: Path, orthos, ortho_keys, layout_name, frames
     return name
 
 
-def _clean(v):
+def _clean(v: object) -> object:
     if isinstance(v, (np.floating, float)):
         return None if not np.isfinite(v) else round(float(v), 4)
     if isinstance(v, np.integer):
@@ -366,7 +384,7 @@ def _clean(v):
     return v
 
 
-def write_truth(scene, truth: dict, out_dir: Path, extra: dict) -> tuple[str, str]:
+def write_truth(scene: Scene, truth: ModuleTruth, out_dir: Path, extra: Mapping[str, Any]) -> tuple[str, str]:
     """Write ``truth.geojson`` (one feature per module, layout positions) and ``truth.json``."""
     fld = scene.field
     m = fld.modules

@@ -21,20 +21,11 @@ __all__ = ["read_layout"]
 def _read_geojson(path: Path) -> gpd.GeoDataFrame:
     """Read GeoJSON ourselves: properties stay exactly as written (GDAL would guess types and
     turn an id such as "T1006" into a time), and a legacy ``crs`` member is honoured."""
-    import json
-
     import geopandas as gpd
 
-    try:
-        with open(path, encoding="utf-8") as fh:
-            doc = json.load(fh)
-    except (OSError, UnicodeDecodeError, json.JSONDecodeError) as exc:
-        raise LayoutError(f"{path}: cannot read the layout: {exc}") from None
-    if isinstance(doc, dict) and doc.get("type") == "Feature":
-        doc = {"type": "FeatureCollection", "features": [doc]}
-    if not isinstance(doc, dict) or doc.get("type") != "FeatureCollection" or not isinstance(
-            doc.get("features"), list):
-        raise LayoutError(f"{path}: cannot read the layout: not a GeoJSON FeatureCollection")
+    from pvscan.io.geojson import read_feature_collection
+
+    doc = read_feature_collection(path, LayoutError, what="the layout", single_feature=True)
     crs: Any = "EPSG:4326"  # RFC 7946: GeoJSON is WGS84 lon/lat
     legacy = doc.get("crs")
     if isinstance(legacy, dict):
