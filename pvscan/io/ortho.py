@@ -383,55 +383,11 @@ class OrthoSet:
 
     @contextlib.contextmanager
     def window_cache(self, chunk_px: int = 256, max_chunks: int = 128) -> Iterator[Callable[[int, Any], np.ndarray]]:
-        """A ``read(tile_index, window)`` for many small windows close to each other.
+        """A ``read(tile_index, window)`` for many small windows close to each other, through
+        aligned chunks converted once (:func:`pvscan.io.ortho_chunks.chunked_reader`)."""
+        from pvscan.io.ortho_chunks import chunked_reader
 
-        The tile is read in aligned chunks of ``chunk_px`` x ``chunk_px`` pixels, each
-        converted once and kept (the ``max_chunks`` most recently used; at most
-        ``max_chunks * chunk_px**2 * 4`` bytes); a window is copied out of the chunks it
-        overlaps. The values are those of :meth:`read` pixel for pixel (the conversion is
-        per pixel), at a fraction of the cost of one read per window. Not thread-safe.
-
-        Yields
-        ------
-        callable
-            ``read(tile_index, window) -> float32 ndarray`` [degC], as :meth:`read`.
-        """
-        chunks: dict[tuple[int, int, int], np.ndarray] = {}
-        n = int(chunk_px)
-
-        def chunk(ti: int, cr: int, cc: int) -> np.ndarray:
-            key = (ti, cr, cc)
-            got = chunks.pop(key, None)
-            if got is None:
-                tile = self.tiles[ti]
-                r0, c0 = cr * n, cc * n
-                win = Window(c0, r0, min(n, tile.width - c0), min(n, tile.height - r0))
-                got = _read_into(self._datasets[ti], tile, win)
-                if len(chunks) >= max_chunks:
-                    del chunks[next(iter(chunks))]
-            chunks[key] = got  # most recently used last
-            return got
-
-        def read(tile_index: int, window: Any) -> np.ndarray:
-            ds = self._datasets[tile_index]
-            if ds.closed:
-                raise OrthoError(f"{self.tiles[tile_index].path}: ortho is closed")
-            tile = self.tiles[tile_index]
-            win = _as_window(window)
-            h, w = int(win.height), int(win.width)
-            r0, c0 = int(win.row_off), int(win.col_off)
-            out = np.full((h, w), np.nan, dtype=np.float32)
-            rr0, rr1 = max(r0, 0), min(r0 + h, tile.height)
-            cc0, cc1 = max(c0, 0), min(c0 + w, tile.width)
-            for cr in range(rr0 // n, (rr1 - 1) // n + 1) if rr1 > rr0 and cc1 > cc0 else ():
-                for cc in range(cc0 // n, (cc1 - 1) // n + 1):
-                    a = chunk(tile_index, cr, cc)
-                    y0, y1 = max(rr0, cr * n), min(rr1, cr * n + a.shape[0])
-                    x0, x1 = max(cc0, cc * n), min(cc1, cc * n + a.shape[1])
-                    out[y0 - r0 : y1 - r0, x0 - c0 : x1 - c0] = a[y0 - cr * n : y1 - cr * n, x0 - cc * n : x1 - cc * n]
-            return out
-
-        with self._env():
+        with self._env(), chunked_reader(self, chunk_px, max_chunks) as read:
             yield read
 
     @contextlib.contextmanager
