@@ -21,6 +21,12 @@ gives a super-resolved edge profile):
    orientation with the smaller misfit wins (the manifest's on a tie), and the modules share
    the measured extent evenly.
 
+5. **rows**: a table of several module rows shows the lines between its rows as a row shows
+   the lines between its modules; a lattice whose row lines are weaker than ``dip_fraction``
+   of its frame-line comb, or than ``contrast_full_k``, lies on a shadow or on ground beside
+   a table (a tracker's shadow shows the comb of light through the module gaps) and gets
+   confidence 0 (dropped, its candidate searched again beside it).
+
 An edge whose outside lies on nodata or beyond the ortho is *cut*: the lattice is then laid
 from the other edge with the datasheet pitch, and the modules that reach past the visible
 glass are kept with ``status = "cut"``; a module with too few valid pixels is ``"nodata"``.
@@ -369,7 +375,13 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
 
 
 def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd):
-    """Orientation, centre offset (along, across) [m] and extents [m] from the frame-line comb."""
+    """Orientation, centre offset (along, across) [m] and extents [m] from the frame-line comb.
+
+    Each orientation's comb is measured with each line looked for within ``line_shift_m``
+    (seams); an orientation whose line or row contrast is under half the other's is a comb of
+    twice the module pitch over a table of the shorter module and is not taken; of the rest,
+    the longer extent wins (then the larger line contrast, then the manifest's orientation).
+    """
     from pvscan.measure.layout_image.periodic import comb_extent
 
     cos_t = math.cos(math.radians(layout.tilt_deg))
@@ -377,25 +389,80 @@ def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings
     s = (x - centre[0]) * axis[0] + (y - centre[1]) * axis[1]
     w = (x - centre[0]) * across[0] + (y - centre[1]) * across[1]
     reach = float(settings["comb_reach_m"])
-    best = None
-    for orient in ("portrait", "landscape"):
+
+    def run(orient: str, shift_m: float) -> Any:
         mod_s = module.width_m if orient == "portrait" else module.length_m
-        r = comb_extent(s, w, t, (-0.5 * length - reach, 0.5 * length + reach),
-                        (-0.5 * depth - reach, 0.5 * depth + reach), (-0.15 * depth, 0.15 * depth),
-                        mod_s + gap, gsd, float(settings["dip_fraction"]), float(settings["close_m"]))
-        if r is None:
-            continue
-        s_lo, s_hi, w_lo, w_hi, contrast = r
-        n = int(round((s_hi - s_lo) / (mod_s + gap)))
-        key = (n * (mod_s + gap), contrast, orient == layout.orientation)
-        if best is None or key > best[0]:
-            mod_w = (module.length_m if orient == "portrait" else module.width_m) * cos_t
-            best = (key, orient, s_lo, s_hi, w_lo, w_hi, n, mod_s, mod_w)
-    if best is None:
+        mod_w = (module.length_m if orient == "portrait" else module.width_m) * cos_t
+        lattice = (mod_w + gap * cos_t, gap * cos_t)
+        return comb_extent(s, w, t, (-0.5 * length - reach, 0.5 * length + reach),
+                           (-0.5 * depth - reach, 0.5 * depth + reach), (-0.15 * depth, 0.15 * depth),
+                           mod_s + gap, gsd, float(settings["dip_fraction"]), float(settings["close_m"]),
+                           shift_m, lattice)
+
+    found = {}
+    for orient in ("portrait", "landscape"):
+        r = run(orient, float(settings["line_shift_m"]))
+        if r is not None:
+            found[orient] = r
+    if not found:
         return None
-    key, orient, s_lo, s_hi, w_lo, w_hi, n, mod_s, mod_w = best
+    # a comb of twice the module pitch runs over every other line of the shorter module, but
+    # the glass between its lines is a line too (its row contrast is low) and its lines are
+    # found one by one near the glass (their median contrast is low)
+    top_line = max(r[4] for r in found.values())
+    top_row = max(r[5] for r in found.values())
+    best = None
+    for orient, r in found.items():
+        if len(found) > 1 and (r[5] < 0.5 * top_row or r[4] < 0.5 * top_line):
+            continue
+        mod_s = module.width_m if orient == "portrait" else module.length_m
+        n = int(round((r[1] - r[0]) / (mod_s + gap)))
+        key = (n * (mod_s + gap), r[4], orient == layout.orientation)
+        if best is None or key > best[0]:
+            best = (key, orient, r)
+    if best is None:  # each wins on one contrast: the larger product
+        orient, r = max(found.items(), key=lambda kv: kv[1][4] * kv[1][5])
+    else:
+        orient, r = best[1], best[2]
+    s_lo, s_hi, w_lo, w_hi, contrast, _ = r
+    mod_s = module.width_m if orient == "portrait" else module.length_m
+    n = int(round((s_hi - s_lo) / (mod_s + gap)))
     ext_s = n * mod_s + (n - 1) * gap
-    return orient, 0.5 * (s_lo + s_hi), 0.5 * (w_lo + w_hi), ext_s, w_hi - w_lo, float(key[1])
+    return orient, 0.5 * (s_lo + s_hi), 0.5 * (w_lo + w_hi), ext_s, w_hi - w_lo, float(contrast)
+
+
+def _row_lines(s: np.ndarray, w: np.ndarray, t: np.ndarray, n: int, m: int, size_s: float, size_w: float,
+               gap_s: float, gap_w: float, gsd: float, shift_m: float) -> float:
+    """Median contrast of the lines between a table's module rows [K]: the glass half a row
+    pitch either side (the cooler of the two: a slope is not a line) against the coolest bin
+    within ``shift_m`` of each line;
+    NaN for a table of one row. ``s, w`` are the samples' coordinates from the lattice's
+    origin [m]."""
+    if m < 2:
+        return math.nan
+    pitch_w = size_w + gap_w
+    inside = (s > 0) & (s < n * size_s + (n - 1) * gap_s) & np.isfinite(t)
+    bin_m = gsd / 2
+    nb = int(math.ceil((m * pitch_w) / bin_m)) + 1
+    k = np.floor(w[inside] / bin_m).astype(int)
+    ok = (k >= 0) & (k < nb)
+    sums = np.bincount(k[ok], weights=t[inside][ok], minlength=nb)
+    cnt = np.bincount(k[ok], minlength=nb)
+    prof = np.where(cnt > 0, sums / np.maximum(cnt, 1), np.nan)
+    reach = max(1, int(round(shift_m / bin_m)))
+    out = []
+    for r in range(1, m):
+        c = (r * pitch_w - 0.5 * gap_w) / bin_m
+        j0, j1 = int(max(0, round(c) - reach)), int(min(nb - 1, round(c) + reach))
+        jl, jh = int(round(c - 0.5 * pitch_w / bin_m)), int(round(c + 0.5 * pitch_w / bin_m))
+        if j1 < j0 or jl < 0 or jh >= nb:
+            continue
+        line = np.nanmin(prof[j0:j1 + 1]) if np.isfinite(prof[j0:j1 + 1]).any() else math.nan
+        side = np.nanmin(prof[[jl, jh]]) if np.isfinite(prof[[jl, jh]]).any() else math.nan
+        out.append(side - line)
+    v = np.array(out, float)
+    v = v[np.isfinite(v)]
+    return float(np.median(v)) if v.size else math.nan
 
 
 def _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band, cand, cut, module, layout,
@@ -459,6 +526,12 @@ def _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band,
     contrast = max(abs(level - cand.ground_c) if math.isfinite(cand.ground_c) else 0.0, comb_k)
     conf = (max(0.0, 1.0 - 2.0 * misfit) * float(np.median(glass))
             * min(1.0, contrast / float(settings["contrast_full_k"])))
+    # rows of modules show the lines between them as the modules of a row do (a lattice laid
+    # over a shadow or ground beside the table does not)
+    row_lines = _row_lines(s, w, t, n, m, size_s, size_w, gap_s, gap_w, gsd, float(settings["line_shift_m"]))
+    if math.isfinite(row_lines) and (row_lines < float(settings["dip_fraction"]) * comb_k
+                                     or row_lines < float(settings["contrast_full_k"])):
+        conf = 0.0
     return TableFit(origin=origin, axis=axis, across=across, length_m=float(length), depth_m=float(depth),
                     rows=m, cols=n, orientation=orient, module_s_m=float(size_s), module_w_m=float(size_w),
                     gap_s_m=gap_s, gap_w_m=gap_w, confidence=float(np.clip(conf, 0, 1)), misfit=float(misfit),

@@ -10,9 +10,16 @@ with the module pitch; ground and shadows beside the table have no such comb. So
    side half a pitch away (the profile averaged over the table's inner rows);
 3. per ``w`` row of bins the comb's contrast (glass between the lines minus the lines) is
    measured: glass rows show it, ground and shadow rows do not; the table's rows are the run
-   above half the contrast of the centre, its edges at the half-way crossings;
-4. along ``s``, the table runs over the lines whose contrast is at least ``dip_fraction`` of
-   the median: the first and the last are the table's ends.
+   above half the contrast of the centre, its edges at the half-way crossings (step 5);
+4. along ``s``, each line is looked for within ``line_shift_m`` of its place on the comb
+   (a mosaic seam shows part of a table shifted); the table runs over the lines whose
+   contrast is at least ``dip_fraction`` of the median, and one more line at either end at
+   half that when it sits on the lattice (a table's end is one frame, not two and a gap);
+   the lattice's phase is the median offset of the lines between modules from the datasheet
+   pitch (their dips are symmetric; an end's leans toward the glass);
+5. across, of the rows' comb contrast at the lines' places and at each row's coolest bin near
+   them (rows a seam shows shifted), the extent nearer a whole number of module rows is kept
+   (the second may join a shadow's comb of light through the module gaps).
 """
 from __future__ import annotations
 
@@ -55,9 +62,31 @@ def _fill_cols(grid: np.ndarray) -> np.ndarray:
     return g
 
 
+def _local_lines(dip: np.ndarray, lines: np.ndarray, reach: int) -> tuple[np.ndarray, np.ndarray]:
+    """Position [bins, sub-bin by a parabola through the peak] and depth of each line's deepest
+    dip within ``reach`` bins of its place on the comb."""
+    ns = dip.size
+    pos = np.empty(lines.size)
+    val = np.empty(lines.size)
+    for i, p in enumerate(lines):
+        j0 = int(np.clip(round(p) - reach, 0, ns - 1))
+        j1 = int(np.clip(round(p) + reach, 0, ns - 1))
+        j = j0 + int(np.argmax(dip[j0:j1 + 1]))
+        off = 0.0
+        if 0 < j < ns - 1:
+            y0, y1, y2 = dip[j - 1], dip[j], dip[j + 1]
+            den = y0 - 2.0 * y1 + y2
+            if den < 0:
+                off = float(np.clip(0.5 * (y0 - y2) / den, -0.5, 0.5))
+        pos[i], val[i] = j + off, dip[j]
+    return pos, val
+
+
 def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[float, float],
                 w_range: tuple[float, float], w_inner: tuple[float, float], pitch_s: float, gsd: float,
-                dip_fraction: float, close_m: float) -> tuple[float, float, float, float, float] | None:
+                dip_fraction: float, close_m: float, line_shift_m: float,
+                across_lattice: tuple[float, float] | None = None
+                ) -> tuple[float, float, float, float, float, float] | None:
     """Table extent in its frame from the comb of frame lines along its axis.
 
     Parameters
@@ -78,12 +107,20 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
         A line counts when its contrast is at least this fraction of the median [-].
     close_m : float
         Gaps in the rows' comb contrast up to this are row gaps, not the table's edge [m].
+    line_shift_m : float
+        Each line is looked for this far either side of its place on the comb (a mosaic seam
+        shows part of a table shifted) [m].
+    across_lattice : (pitch_w, gap_w), optional
+        Module pitch and gap across the table [m]: of the rows' extent at the lines' places
+        and at each row's own line places, the one nearer a whole number of module rows.
 
     Returns
     -------
-    (s_lo, s_hi, w_lo, w_hi, contrast_k) or None
+    (s_lo, s_hi, w_lo, w_hi, contrast_k, row_contrast_k) or None
         Edges [m] (the first and last lines along s; the half-way crossings of the comb
-        contrast across) and the median line contrast [K]; None without a comb.
+        contrast across), the median line contrast [K] and the median contrast of the glass
+        between the lines against the lines over the inner rows [K] (small for a comb of
+        twice the module pitch: its midpoints are lines too); None without a comb.
     """
     bin_m = gsd / 2
     with np.errstate(invalid="ignore"):
@@ -120,12 +157,16 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
                     best, phase = sc_p, float(p)
             if best <= 0:
                 return None
-            # sub-bin phase: the centroid of the dip around the best line positions
             k_all = np.arange(-1, int(ns / period) + 2)
             lines = phase + k_all * period
             lines = lines[(lines >= 0) & (lines < ns)]
             li = np.clip(np.round(lines).astype(int), 0, ns - 1)
-            d = dip[li]
+            # each line where its own dip is deepest within line_shift_m (at most a quarter
+            # pitch): a mosaic seam that shows part of the table shifted by a few centimetres
+            # moves its lines off the common phase
+            reach = int(max(0, round(min(line_shift_m / bin_m, period / 4))))
+            pos, d = _local_lines(dip, lines, reach)
+            li = np.clip(np.round(pos).astype(int), 0, ns - 1)
             med = float(np.median(d[d > 0])) if (d > 0).any() else 0.0
             if med <= 0:
                 return None
@@ -145,40 +186,95 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
                 b += 1
             if b - a < 1:
                 return None
-            s_lo, s_hi = float(sc[li[a]]), float(sc[li[b]])
+            # the lattice's phase from the lines between modules (symmetric dips), not from
+            # the table's ends (a glass-ground edge, whose dip leans toward the glass): the
+            # median of the lines' offsets from the datasheet pitch
+            k = np.arange(lines.size)
+
+            def lattice_phase(a: int, b: int) -> float:
+                inner_k = k[a + 1:b][on[a + 1:b]]
+                if inner_k.size >= 2:
+                    return float(np.median(pos[inner_k] - inner_k * period))
+                return 0.5 * (pos[a] + pos[b] - (a + b) * period)
+
+            phi = lattice_phase(a, b)
+            # a table's end is one frame, not two and a gap: against ground at the glass
+            # temperature its dip is about half a line's. One more line at either end counts
+            # at half the threshold when it sits on the lattice (within a pixel)
+            for side in (-1, 1):
+                j = a - 1 if side < 0 else b + 1
+                if 0 <= j < on.size and d[j] >= 0.5 * dip_fraction * med and \
+                        abs(pos[j] - (phi + j * period)) <= 2.0:
+                    a, b = (j, b) if side < 0 else (a, j)
+            phi = lattice_phase(a, b)
+            s_lo = float(s_range[0] + (phi + a * period + 0.5) * bin_m)
+            s_hi = float(s_range[0] + (phi + b * period + 0.5) * bin_m)
             # across: the comb contrast per row of bins, over the lines found
             sel = li[a:b + 1]
-            mids = np.clip(np.round(0.5 * (lines[a:b] + lines[a + 1:b + 1])).astype(int), 0, ns - 1)
+            mids = np.clip(np.round(0.5 * (pos[a:b] + pos[a + 1:b + 1])).astype(int), 0, ns - 1)
             if mids.size == 0:
                 return None
-            row_c = np.nanmedian(grid[:, mids], axis=1) - np.nanmedian(grid[:, sel], axis=1)
-            row_c = np.nan_to_num(row_c, nan=0.0)
-            ref = float(np.median(row_c[inner])) if inner.any() else 0.0
-            if ref <= 0:
-                return None
-            on_w = row_c >= 0.5 * ref
-            # row gaps (a gap and two frames, ~0.1 m) do not end the table
+            # the rows' contrast at the lines' places; and at each row's coolest bin near the
+            # line (rows of a table a seam shows shifted keep their contrast; a shadow's comb
+            # of light through the module gaps beside the table may join too): of the two, the
+            # extent nearer a whole number of module rows
             from scipy import ndimage as ndi
 
-            k_close = max(1, int(round(close_m / bin_m)))
-            padded = np.pad(on_w, k_close + 1)
-            on_w = ndi.binary_closing(padded, np.ones(2 * k_close + 1, bool))[k_close + 1:-(k_close + 1)]
-            ci = int(np.argmin(np.abs(wc - 0.5 * (w_inner[0] + w_inner[1]))))
-            if not on_w[ci]:
+            glass_c = np.nanmedian(grid[:, mids], axis=1)
+            best_w = None
+            variants = [grid]
+            if reach > 0:
+                low = ndi.minimum_filter1d(np.where(np.isnan(grid), np.inf, grid), 2 * reach + 1, axis=1,
+                                           mode="nearest")
+                variants.append(np.where(np.isfinite(low), low, np.nan))
+            for low in variants:
+                row_c = np.nan_to_num(glass_c - np.nanmedian(low[:, sel], axis=1), nan=0.0)
+                r = _rows_extent(row_c, wc, inner, close_m, bin_m, w_inner)
+                if r is None:
+                    continue
+                w_lo, w_hi, ref = r
+                miss = 0.0
+                if across_lattice is not None:
+                    n_w = (w_hi - w_lo + across_lattice[1]) / across_lattice[0]
+                    miss = abs(n_w - round(n_w))
+                if best_w is None or miss < best_w[0] - 0.05:
+                    best_w = (miss, w_lo, w_hi, ref)
+            if best_w is None:
                 return None
-            a2 = ci
-            while a2 > 0 and on_w[a2 - 1]:
-                a2 -= 1
-            b2 = ci
-            while b2 < on_w.size - 1 and on_w[b2 + 1]:
-                b2 += 1
+            _, w_lo, w_hi, ref = best_w
+    return s_lo, s_hi, w_lo, w_hi, med, ref
 
-            def cross(i0: int, i1: int) -> float:
-                y0, y1 = row_c[i0] - 0.5 * ref, row_c[i1] - 0.5 * ref
-                if y0 == y1:
-                    return float(0.5 * (wc[i0] + wc[i1]))
-                return float(wc[i0] + (wc[i1] - wc[i0]) * y0 / (y0 - y1))
 
-            w_lo = cross(a2, a2 - 1) if a2 > 0 else float(wc[0])
-            w_hi = cross(b2, b2 + 1) if b2 < on_w.size - 1 else float(wc[-1])
-    return s_lo, s_hi, w_lo, w_hi, med
+def _rows_extent(row_c: np.ndarray, wc: np.ndarray, inner: np.ndarray, close_m: float, bin_m: float,
+                 w_inner: tuple[float, float]) -> tuple[float, float, float] | None:
+    """The run of rows whose comb contrast is at least half the inner rows' (gaps up to
+    ``close_m`` closed) and its half-way crossings [m]; with that reference contrast [K]."""
+    from scipy import ndimage as ndi
+
+    ref = float(np.median(row_c[inner])) if inner.any() else 0.0
+    if ref <= 0:
+        return None
+    on_w = row_c >= 0.5 * ref
+    # row gaps (a gap and two frames, ~0.1 m) do not end the table
+    k_close = max(1, int(round(close_m / bin_m)))
+    padded = np.pad(on_w, k_close + 1)
+    on_w = ndi.binary_closing(padded, np.ones(2 * k_close + 1, bool))[k_close + 1:-(k_close + 1)]
+    ci = int(np.argmin(np.abs(wc - 0.5 * (w_inner[0] + w_inner[1]))))
+    if not on_w[ci]:
+        return None
+    a2 = ci
+    while a2 > 0 and on_w[a2 - 1]:
+        a2 -= 1
+    b2 = ci
+    while b2 < on_w.size - 1 and on_w[b2 + 1]:
+        b2 += 1
+
+    def cross(i0: int, i1: int) -> float:
+        y0, y1 = row_c[i0] - 0.5 * ref, row_c[i1] - 0.5 * ref
+        if y0 == y1:
+            return float(0.5 * (wc[i0] + wc[i1]))
+        return float(wc[i0] + (wc[i1] - wc[i0]) * y0 / (y0 - y1))
+
+    w_lo = cross(a2, a2 - 1) if a2 > 0 else float(wc[0])
+    w_hi = cross(b2, b2 + 1) if b2 < on_w.size - 1 else float(wc[-1])
+    return w_lo, w_hi, ref
