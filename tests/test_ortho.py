@@ -108,6 +108,30 @@ def test_window_beyond_raster_is_padded_with_nan(write_tif, rng):
     assert np.isnan(got[:, :5]).all() and np.isnan(got[5:]).all()
 
 
+def test_window_cache_reads_the_same_pixels_as_read(write_tif, rng):
+    # Reference: the array written to the file (numpy) and OrthoSet.read: windows inside, across
+    # chunk borders, beyond the raster and wholly outside, with nodata and implausible values.
+    data = rng.normal(30, 3, (150, 170)).astype("float32")
+    data[rng.random(data.shape) < 0.05] = -9999.0
+    data[10:14, 20:30] = 500.0  # outside the plausible range: NaN
+    p = write_tif("cache.tif", data, nodata=-9999.0)
+    wins = [Window(0, 0, 170, 150), Window(60, 60, 9, 9), Window(30, 50, 40, 35), Window(-7, 140, 25, 20),
+            Window(160, -4, 15, 12), Window(400, 400, 5, 5)]
+    wins += [Window(int(c), int(r), 11, 13) for c, r in zip(rng.integers(-10, 175, 40), rng.integers(-10, 155, 40))]
+    with open_orthos(p) as o:
+        plain = [o.read(0, w) for w in wins]
+        with o.window_cache(chunk_px=32, max_chunks=3) as read:
+            cached = [read(0, w) for w in wins]
+    for w, a, b in zip(wins, plain, cached):
+        assert b.dtype == np.float32 and b.shape == (int(w.height), int(w.width))
+        np.testing.assert_array_equal(a, b)
+    inner = plain[0]
+    assert np.isnan(inner[data == -9999.0]).all() and np.isnan(inner[10:14, 20:30]).all()
+    ok = (data != -9999.0)
+    ok[10:14, 20:30] = False
+    np.testing.assert_array_equal(inner[ok], data[ok])
+
+
 def test_tile_metadata(write_tif):
     p = write_tif("t.tif", np.zeros((100, 200), "float32"), gsd=0.05, block=32)
     with open_orthos(p) as o:

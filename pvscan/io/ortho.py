@@ -382,6 +382,15 @@ class OrthoSet:
             return _read_into(ds, self.tiles[tile_index], _as_window(window))
 
     @contextlib.contextmanager
+    def window_cache(self, chunk_px: int = 256, max_chunks: int = 128) -> Iterator[Callable[[int, Any], np.ndarray]]:
+        """A ``read(tile_index, window)`` for many small windows close to each other, through
+        aligned chunks converted once (:func:`pvscan.io.ortho_chunks.chunked_reader`)."""
+        from pvscan.io.ortho_chunks import chunked_reader
+
+        with self._env(), chunked_reader(self, chunk_px, max_chunks) as read:
+            yield read
+
+    @contextlib.contextmanager
     def reader(self) -> Iterator[Callable[[int, Any], np.ndarray]]:
         """A thread-safe ``read(tile_index, window)`` for worker threads.
 

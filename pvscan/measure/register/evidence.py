@@ -35,6 +35,7 @@ vectorised array operations.
 """
 from __future__ import annotations
 
+import contextlib
 import logging
 import math
 from collections.abc import Mapping
@@ -227,25 +228,29 @@ def sample_modules(orthos: Any, modules: gpd.GeoDataFrame, *, n: int, margin_m: 
     vals = np.full((len(idx_all), side_px // reduce, side_px // reduce), np.nan, np.float32)
     xs0 = np.zeros(len(idx_all))
     ys0 = np.zeros(len(idx_all))
-    for k, i in enumerate(idx_all):
-        ti = 0
-        for j, t in enumerate(tiles):
-            b = t.bounds
-            if b.left <= cx[i] <= b.right and b.bottom <= cy[i] <= b.top:
-                ti = j
-                break
-        tr = tiles[ti].transform
-        col, row = ~tr * (cx[i], cy[i])
-        c0 = int(round(col - side_px / 2.0))
-        r0 = int(round(row - side_px / 2.0))
-        a = orthos.read(ti, Window(c0, r0, side_px, side_px)).astype(np.float32)
-        if reduce > 1:
-            a = a.reshape(side_px // reduce, reduce, side_px // reduce, reduce)
-            with np.errstate(invalid="ignore"), _quiet():
-                a = np.nanmean(a, axis=(1, 3))
-        vals[k] = a
-        px, py = tr * (c0 + reduce / 2.0, r0 + reduce / 2.0)
-        xs0[k], ys0[k] = px, py
+    # the windows of neighbouring modules share blocks of the ortho: read through a chunk
+    # cache where the ortho set has one (the same pixels as one read per window)
+    cache = getattr(orthos, "window_cache", None)
+    with cache() if cache is not None else contextlib.nullcontext(orthos.read) as read:
+        for k, i in enumerate(idx_all):
+            ti = 0
+            for j, t in enumerate(tiles):
+                b = t.bounds
+                if b.left <= cx[i] <= b.right and b.bottom <= cy[i] <= b.top:
+                    ti = j
+                    break
+            tr = tiles[ti].transform
+            col, row = ~tr * (cx[i], cy[i])
+            c0 = int(round(col - side_px / 2.0))
+            r0 = int(round(row - side_px / 2.0))
+            a = read(ti, Window(c0, r0, side_px, side_px)).astype(np.float32)
+            if reduce > 1:
+                a = a.reshape(side_px // reduce, reduce, side_px // reduce, reduce)
+                with np.errstate(invalid="ignore"), _quiet():
+                    a = np.nanmean(a, axis=(1, 3))
+            vals[k] = a
+            px, py = tr * (c0 + reduce / 2.0, r0 + reduce / 2.0)
+            xs0[k], ys0[k] = px, py
     table = modules["table_id"].to_numpy(dtype=object)[idx_all] if "table_id" in modules.columns else np.zeros(
         len(idx_all), object)
     return ModuleSample(index=idx_all, values=vals, x0=xs0, y0=ys0, gx=float(t0.a) * reduce,
