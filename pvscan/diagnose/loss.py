@@ -56,7 +56,9 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
+from numpy.typing import ArrayLike
 
+from pvscan._typing import FloatArray
 from pvscan.diagnose.energy import site_yield
 from pvscan.diagnose.severity import assign_severity
 from pvscan.io.settings import section
@@ -100,7 +102,7 @@ _REGION_METHOD = {
 # --------------------------------------------------------------------------- physics
 
 
-def _temp_factor(gamma_pct_per_k: float, temp_module):
+def _temp_factor(gamma_pct_per_k: float, temp_module: ArrayLike) -> FloatArray:
     return 1.0 + gamma_pct_per_k / 100.0 * (np.asarray(temp_module, dtype=float) - 25.0)
 
 
@@ -157,7 +159,7 @@ def bypass_loss(pmax_w: float, bypass_diodes: int, k: int = 1) -> float:
     return float(pmax_w) * k / n
 
 
-def thermal_deficit_fraction(delta_t_k, yardstick_k):
+def thermal_deficit_fraction(delta_t_k: ArrayLike, yardstick_k: ArrayLike) -> FloatArray:
     """Share of operating power lost, ``clip(delta_t_k / yardstick_k, 0, 1)``. [-]
 
     NaN where either input is NaN or the yardstick is not positive.
@@ -240,7 +242,7 @@ def heat_balance_loss(delta_t_k: Any, area_m2: Any, wind_speed: Any, *, u0: floa
     return np.asarray(faiman_u(wind_speed, u0, u1)) * (np.asarray(area_m2, dtype=float) + halo) * dt
 
 
-def region_inner_perimeter_m(region_uv, length_m: float, width_m: float) -> float:
+def region_inner_perimeter_m(region_uv: ArrayLike | None, length_m: float, width_m: float) -> float:
     """Length of the edges of the union of local boxes that lie inside the module. [m]
 
     Edges on the module's outline (``u`` or ``v`` = 0 or 1) are left out: the frame, not the
@@ -258,7 +260,7 @@ def region_inner_perimeter_m(region_uv, length_m: float, width_m: float) -> floa
     return float(region.boundary.difference(outline).length)
 
 
-def _boxes(region_uv) -> list[tuple[float, float, float, float]]:
+def _boxes(region_uv: ArrayLike | None) -> list[tuple[float, float, float, float]]:
     if region_uv is None or (isinstance(region_uv, float) and math.isnan(region_uv)):
         return []
     arr = np.asarray(region_uv, dtype=float)
@@ -272,7 +274,7 @@ def _boxes(region_uv) -> list[tuple[float, float, float, float]]:
     return out
 
 
-def region_area_fraction(region_uv) -> float:
+def region_area_fraction(region_uv: ArrayLike | None) -> float:
     """Share of the module area covered by the union of local boxes ``(u0, u1, v0, v1)``. [-]
 
     No boxes means the whole module (1.0).
@@ -286,7 +288,7 @@ def region_area_fraction(region_uv) -> float:
     return float(shapely.union_all([box(u0, v0, u1, v1) for u0, u1, v0, v1 in boxes]).area)
 
 
-def substrings_touched(region_uv, bypass_diodes: int) -> int:
+def substrings_touched(region_uv: ArrayLike | None, bypass_diodes: int) -> int:
     """Number of bypass-diode substrings (strips ``floor(v * n)``) the boxes overlap. [-]
 
     No boxes means all ``n`` substrings. Box edges within 1e-6 of a substring border do not
@@ -307,7 +309,7 @@ def substrings_touched(region_uv, bypass_diodes: int) -> int:
 # --------------------------------------------------------------------------- per anomaly
 
 
-def _get(obj: Any, *names: str, default=None):
+def _get(obj: Any, *names: str, default: Any = None) -> Any:
     for n in names:
         if isinstance(obj, Mapping):
             if n in obj and obj[n] is not None:
@@ -338,7 +340,7 @@ def _conditions_at(conditions: Any, i: int) -> tuple[float, float, float]:
     return tuple(out)  # type: ignore[return-value]
 
 
-def _indices(row) -> list[int]:
+def _indices(row: Mapping[str, Any]) -> list[int]:
     idx = row.get("module_indices")
     if idx is None or (isinstance(idx, float) and math.isnan(idx)):
         idx = []
@@ -350,7 +352,7 @@ def _indices(row) -> list[int]:
     return idx
 
 
-def _n_substrings(row, n: int) -> int:
+def _n_substrings(row: Mapping[str, Any], n: int) -> int:
     for col in ("n_substrings", "substrings"):
         v = row.get(col)
         if v is not None and not (isinstance(v, float) and math.isnan(v)):
@@ -364,10 +366,10 @@ def _n_substrings(row, n: int) -> int:
 
 
 def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = None, site: Any = None,
-                  settings: Mapping | None = None, *, modules=None, layout: Any = None,
+                  settings: Mapping | None = None, *, modules: Any = None, layout: Any = None,
                   lonlat: tuple[float, float] | None = None,
                   specific_yield_kwh_per_kwp: float | None = None,
-                  stats: Any = None, reference_c=None) -> pd.DataFrame:
+                  stats: Any = None, reference_c: ArrayLike | None = None) -> pd.DataFrame:
     """Power and energy loss of every anomaly.
 
     Parameters
@@ -530,7 +532,7 @@ def estimate_loss(anomalies: pd.DataFrame, module_spec: Any, conditions: Any = N
     return out
 
 
-def _mean_box_rise(cell_p95: np.ndarray, reference_c: np.ndarray, i: int, region_uv) -> float:
+def _mean_box_rise(cell_p95: np.ndarray, reference_c: np.ndarray, i: int, region_uv: ArrayLike | None) -> float:
     """Area-weighted mean rise of a multi-box region over ``reference_c[i]``, from cell p95s. [K]
 
     Each box's rise is the median of the 95th percentiles of the cells it covers minus the
