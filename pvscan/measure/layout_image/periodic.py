@@ -178,12 +178,7 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
                 if cand.size == 0:
                     return None
                 centre = int(cand[np.argmin(np.abs(cand - centre))])
-            a = centre
-            while a > 0 and on[a - 1]:
-                a -= 1
-            b = centre
-            while b < on.size - 1 and on[b + 1]:
-                b += 1
+            a, b = _run_around(on, centre)
             if b - a < 1:
                 return None
             # the lattice's phase from the lines between modules (symmetric dips), not from
@@ -262,12 +257,7 @@ def _rows_extent(row_c: np.ndarray, wc: np.ndarray, inner: np.ndarray, close_m: 
     ci = int(np.argmin(np.abs(wc - 0.5 * (w_inner[0] + w_inner[1]))))
     if not on_w[ci]:
         return None
-    a2 = ci
-    while a2 > 0 and on_w[a2 - 1]:
-        a2 -= 1
-    b2 = ci
-    while b2 < on_w.size - 1 and on_w[b2 + 1]:
-        b2 += 1
+    a2, b2 = _run_around(on_w, ci)
 
     def cross(i0: int, i1: int) -> float:
         y0, y1 = row_c[i0] - 0.5 * ref, row_c[i1] - 0.5 * ref
@@ -278,3 +268,14 @@ def _rows_extent(row_c: np.ndarray, wc: np.ndarray, inner: np.ndarray, close_m: 
     w_lo = cross(a2, a2 - 1) if a2 > 0 else float(wc[0])
     w_hi = cross(b2, b2 + 1) if b2 < on_w.size - 1 else float(wc[-1])
     return w_lo, w_hi, ref
+
+
+def _run_around(on: np.ndarray, i: int) -> tuple[int, int]:
+    """First and last index of the run of True in ``on`` that holds index ``i`` (``on[i]`` True)."""
+    a = i
+    while a > 0 and on[a - 1]:
+        a -= 1
+    b = i
+    while b < on.size - 1 and on[b + 1]:
+        b += 1
+    return a, b

@@ -237,10 +237,7 @@ def register_layout(orthos: Any, modules: gpd.GeoDataFrame, settings: Mapping[st
         _use_placement(reg, chosen)
         reg.status = "ok"
         reg.evidence["used"] = "proposal"
-        reg.message = (f"layout moved by ({chosen.tx:+.3f}, {chosen.ty:+.3f}) m, rotated {chosen.theta_deg:+.3f} deg, "
-                       f"scaled {chosen.scale:.5f}: module evidence {q_id['evidence']:.3f} -> "
-                       f"{q_c['evidence']:.3f} (probe ratios {q_c['ratio_u']:.2f}, {q_c['ratio_v']:.2f}; "
-                       f"limit {lim:g})")
+        reg.message = _moved_message(chosen, "", q_id, q_c, lim)
     elif q_id["ok"]:
         reg.placement = ident
         reg.status = "ok"
@@ -256,10 +253,7 @@ def register_layout(orthos: Any, modules: gpd.GeoDataFrame, settings: Mapping[st
         _use_placement(reg, chosen)
         reg.status = "ok"
         reg.evidence["used"] = "proposal"
-        reg.message = (f"layout moved by ({chosen.tx:+.3f}, {chosen.ty:+.3f}) m, rotated {chosen.theta_deg:+.3f} deg, "
-                       f"scaled {chosen.scale:.5f}, then table by table ({reg.local.message}): module evidence "
-                       f"{q_id['evidence']:.3f} -> {q_c['evidence']:.3f} (probe ratios {q_c['ratio_u']:.2f}, "
-                       f"{q_c['ratio_v']:.2f}; limit {lim:g})")
+        reg.message = _moved_message(chosen, f", then table by table ({reg.local.message})", q_id, q_c, lim)
     else:
         reg.placement = ident
         reg.status = "failed"
@@ -496,6 +490,14 @@ def _num(v: Any) -> float:
     except (TypeError, ValueError):
         return float("inf")
     return f if math.isfinite(f) else float("inf")
+
+
+def _moved_message(p: Placement, how: str, q_id: Mapping[str, Any], q_c: Mapping[str, Any], lim: float) -> str:
+    """The registration message of a moved placement: shift [m], rotation [deg], scale, ``how``
+    it was found, and the module evidence as drawn and as placed."""
+    return (f"layout moved by ({p.tx:+.3f}, {p.ty:+.3f}) m, rotated {p.theta_deg:+.3f} deg, "
+            f"scaled {p.scale:.5f}{how}: module evidence {q_id['evidence']:.3f} -> {q_c['evidence']:.3f} "
+            f"(probe ratios {q_c['ratio_u']:.2f}, {q_c['ratio_v']:.2f}; limit {lim:g})")
 
 
 def _use_placement(reg: Registration, p: Placement, *, residuals: bool = True) -> None:
