@@ -47,7 +47,8 @@ def test_comb_counts_the_modules_of_a_table_a_seam_shows_shifted():
         n = int(length * depth / gsd ** 2 * 3)
         s = rng.uniform(-1.5, length + 1.5, n)
         w = rng.uniform(-1.5, depth + 1.5, n)
-        # a seam across the table: beyond it the scene is shown shifted along the axis
+        # a seam across the table: beyond it the scene is shown shifted along the axis (by up to
+        # a frame, a gap and a frame: a line can vanish at the seam)
         split = rng.uniform(0.3, 0.7) * length
         shift = rng.choice([-1, 1]) * rng.uniform(0.04, 0.10)
         t = _table(rng, np.where(s > split, s - shift, s), w, cols, rows, mod_w, glass, ground, dip)
@@ -56,7 +57,7 @@ def test_comb_counts_the_modules_of_a_table_a_seam_shows_shifted():
         c_w = 0.5 * depth + rng.uniform(-0.1, 0.1)
         r = comb_extent(s - c_s, w - c_w, t, (-0.5 * length - 1.0, 0.5 * length + 1.0),
                         (-0.5 * depth - 1.0, 0.5 * depth + 1.0), (-0.15 * depth, 0.15 * depth), WIDTH + GAP,
-                        gsd, 0.4, 0.4, 0.15, (mod_w + GAP, GAP))
+                        gsd, 0.4, 0.4, 0.15, (mod_w + GAP, GAP), 3.0, ground)
         assert r is not None
         s_lo, s_hi, w_lo, w_hi, line_k, row_k = r
         # the end lines lie half a gap outside the table: their span is cols pitches
@@ -65,6 +66,44 @@ def test_comb_counts_the_modules_of_a_table_a_seam_shows_shifted():
         assert abs(0.5 * (s_lo + s_hi) + c_s - 0.5 * length) <= abs(shift) + gsd / 2
         assert round((w_hi - w_lo + GAP) / (mod_w + GAP)) == rows
         assert line_k > 0.5 * dip and row_k > 0.5 * dip
+
+
+def test_comb_ends_at_the_table_and_not_at_the_next_table_about_one_pitch_beyond():
+    # tables of one row stand about 1 m apart (common practice), close to one module pitch:
+    # the ground just before the next table, with that table's glass half a pitch beyond it,
+    # looks like one more frame line of this table's comb
+    rng = np.random.default_rng(SEED + 2)
+    gsd = 0.04
+    for _ in range(6):
+        cols, rows = int(rng.integers(8, 16)), int(rng.integers(1, 4))
+        mod_w = LENGTH * math.cos(math.radians(rng.uniform(10, 35)))
+        length, depth = cols * (WIDTH + GAP) - GAP, rows * (mod_w + GAP) - GAP
+        glass = rng.uniform(30, 45)
+        # ground warmer or cooler than the glass by more than the glass band of 3 K
+        # ([layout_detect] level_tol_k: sunlit or shaded ground differs by more)
+        ground = glass + rng.choice([-1, 1]) * rng.uniform(4.0, 15)
+        dip = rng.uniform(1.5, 4.0)
+        between = rng.uniform(0.9, 1.1, 2)  # gaps to the tables before and after [m]
+        reach = rng.uniform(1.0, 1.4)  # the search runs this far beyond the table's ends [m]
+        n = int((length + 2 * reach) * depth / gsd ** 2 * 3)
+        s = rng.uniform(-reach - 0.5, length + reach + 0.5, n)
+        w = rng.uniform(-1.5, depth + 1.5, n)
+        t = _table(rng, s, w, cols, rows, mod_w, glass, ground, dip)
+        before = s < -between[0] + 1e-9
+        after = s > length + between[1]
+        t[before] = _table(rng, s[before] + between[0] + length, w[before], cols, rows, mod_w, glass, ground,
+                           dip)
+        t[after] = _table(rng, s[after] - between[1] - length, w[after], cols, rows, mod_w, glass, ground, dip)
+        c_s = 0.5 * length + rng.uniform(-0.2, 0.2)
+        c_w = 0.5 * depth + rng.uniform(-0.1, 0.1)
+        r = comb_extent(s - c_s, w - c_w, t, (-0.5 * length - reach, 0.5 * length + reach),
+                        (-0.5 * depth - 1.0, 0.5 * depth + 1.0), (-0.15 * depth, 0.15 * depth), WIDTH + GAP,
+                        gsd, 0.4, 0.4, 0.15, (mod_w + GAP, GAP), 3.0, ground)
+        assert r is not None
+        s_lo, s_hi = r[0] + c_s, r[1] + c_s
+        assert round((s_hi - s_lo) / (WIDTH + GAP)) == cols, (s_lo, s_hi, length, between, reach)
+        # the ends lie on the table's ends (half a gap outside; within a pixel)
+        assert abs(s_lo + 0.5 * GAP) <= gsd and abs(s_hi - length - 0.5 * GAP) <= gsd, (s_lo, s_hi, length)
 
 
 def test_lines_between_module_rows_show_the_drawn_frame_contrast_and_not_on_a_shadow():

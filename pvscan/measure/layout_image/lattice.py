@@ -305,7 +305,7 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
             level = _mode(t[inner], settings["level_bin_k"])
             band = glass_band(t[inner], level, settings["level_bin_k"], tol)
         glass = valid & (t >= band[0]) & (t <= band[1])
-        comb = _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd)
+        comb = _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd, cand.ground_c)
         if comb is not None:
             # the frame-line comb: the table's extent whatever the ground's temperature
             _, ds, dw, ext_s, ext_w, comb_k = comb
@@ -365,7 +365,7 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
         across = -across
     orientations: tuple[str, ...] = ("portrait", "landscape")
     if not any(cut):
-        comb = _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd)
+        comb = _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd, cand.ground_c)
         if comb is not None:
             orient, ds, dw, length, depth, comb_k = comb
             centre = centre + ds * axis + dw * across
@@ -374,13 +374,15 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
                       layout, settings, gsd, orientations, comb_k)
 
 
-def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd):
+def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd, ground_c=math.nan):
     """Orientation, centre offset (along, across) [m] and extents [m] from the frame-line comb.
 
     Each orientation's comb is measured with each line looked for within ``line_shift_m``
     (seams); an orientation whose line or row contrast is under half the other's is a comb of
     twice the module pitch over a table of the shorter module and is not taken; of the rest,
     the longer extent wins (then the larger line contrast, then the manifest's orientation).
+    ``ground_c`` [degC], the ground around the table, tells the ground between two tables of a
+    row from an end module (``level_tol_k``).
     """
     from pvscan.measure.layout_image.periodic import comb_extent
 
@@ -397,7 +399,7 @@ def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings
         return comb_extent(s, w, t, (-0.5 * length - reach, 0.5 * length + reach),
                            (-0.5 * depth - reach, 0.5 * depth + reach), (-0.15 * depth, 0.15 * depth),
                            mod_s + gap, gsd, float(settings["dip_fraction"]), float(settings["close_m"]),
-                           shift_m, lattice)
+                           shift_m, lattice, float(settings["level_tol_k"]), ground_c)
 
     found = {}
     for orient in ("portrait", "landscape"):

@@ -85,7 +85,8 @@ def _local_lines(dip: np.ndarray, lines: np.ndarray, reach: int) -> tuple[np.nda
 def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[float, float],
                 w_range: tuple[float, float], w_inner: tuple[float, float], pitch_s: float, gsd: float,
                 dip_fraction: float, close_m: float, line_shift_m: float,
-                across_lattice: tuple[float, float] | None = None
+                across_lattice: tuple[float, float] | None = None, glass_tol_k: float = math.inf,
+                ground_c: float = math.nan
                 ) -> tuple[float, float, float, float, float, float] | None:
     """Table extent in its frame from the comb of frame lines along its axis.
 
@@ -113,6 +114,14 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
     across_lattice : (pitch_w, gap_w), optional
         Module pitch and gap across the table [m]: of the rows' extent at the lines' places
         and at each row's own line places, the one nearer a whole number of module rows.
+    glass_tol_k : float, optional
+        An end module whose middle half is further than this from the glass level of the
+        table's modules and nearer the ground's level is the ground between this table and
+        the next one of its row (tables stand about a pitch apart), not a module [K].
+    ground_c : float, optional
+        The ground's level around the table [degC]: an end module nearer it than the glass
+        level (and off the glass level by more than ``glass_tol_k``) is ground; without it
+        (NaN) no end module is dropped.
 
     Returns
     -------
@@ -145,6 +154,12 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
             lo_j, hi_j = np.clip(jj - half, 0, ns - 1), np.clip(jj + half, 0, ns - 1)
             # against the warmer side: at a table's end the other side is ground
             dip = np.maximum(prof[lo_j], prof[hi_j]) - prof
+            # the phase on the lines between modules: narrow, with glass a quarter pitch either
+            # side (a table's end against warmer ground is a dip against the ground over half a
+            # pitch, the ground between two tables about a pitch apart a dip one pitch wide)
+            quarter = max(1, int(round(period / 4)))
+            sym = (np.minimum(prof[np.clip(jj - quarter, 0, ns - 1)], prof[np.clip(jj + quarter, 0, ns - 1)])
+                   - prof)
             n_phase = int(round(period))
             if n_phase < 3:
                 return None
@@ -152,7 +167,7 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
             for p in range(n_phase):
                 idx = np.round(p + np.arange(0, ns, period)).astype(int)
                 idx = idx[idx < ns]
-                sc_p = float(np.sort(dip[idx])[::-1][: max(2, idx.size // 2)].mean())
+                sc_p = float(np.sort(sym[idx])[::-1][: max(2, idx.size // 2)].mean())
                 if sc_p > best:
                     best, phase = sc_p, float(p)
             if best <= 0:
@@ -178,7 +193,35 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
                 if cand.size == 0:
                     return None
                 centre = int(cand[np.argmin(np.abs(cand - centre))])
-            a, b = _run_around(on, centre)
+
+            # the middle half of the module between lines j0 and j1 [degC]
+            def middle(j0: int, j1: int) -> float:
+                q = 0.25 * (pos[j1] - pos[j0])
+                m0, m1 = int(np.clip(round(pos[j0] + q), 0, ns - 1)), int(np.clip(round(pos[j1] - q), 0, ns - 1))
+                return float(np.median(prof[m0:m1 + 1]))
+
+            pairs = np.flatnonzero(on[:-1] & on[1:])
+            glass_c = float(np.median([middle(j, j + 1) for j in pairs])) if pairs.size else math.nan
+            # one line missing between two lines of the comb, the modules either side at the
+            # glass level: a mosaic seam that skipped the frames (the table goes on)
+            run_on = on.copy()
+            for j in np.flatnonzero(~on[1:-1]) + 1:
+                if on[j - 1] and on[j + 1] and all(abs(middle(p, p + 1) - glass_c) <= glass_tol_k for p in (j - 1, j)):
+                    run_on[j] = True
+            a, b = _run_around(run_on, centre)
+
+            # the ground between this table's end and the next table of its row (tables stand
+            # about a pitch apart) looks like one more module between two lines: its middle
+            # half is off the glass level and nearer the ground's
+            def ground_between(j0: int, j1: int) -> bool:
+                mid = middle(j0, j1)
+                return abs(mid - glass_c) > glass_tol_k and abs(mid - ground_c) < abs(mid - glass_c)
+
+            if math.isfinite(glass_tol_k) and math.isfinite(ground_c) and math.isfinite(glass_c) and b - a >= 3:
+                while b - a >= 2 and ground_between(b - 1, b):
+                    b -= 1
+                while b - a >= 2 and ground_between(a, a + 1):
+                    a += 1
             if b - a < 1:
                 return None
             # the lattice's phase from the lines between modules (symmetric dips), not from
@@ -199,7 +242,9 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
             for side in (-1, 1):
                 j = a - 1 if side < 0 else b + 1
                 if 0 <= j < on.size and d[j] >= 0.5 * dip_fraction * med and \
-                        abs(pos[j] - (phi + j * period)) <= 2.0:
+                        abs(pos[j] - (phi + j * period)) <= 2.0 and \
+                        not (math.isfinite(glass_tol_k) and math.isfinite(ground_c) and math.isfinite(glass_c)
+                             and ground_between(min(j, j - side), max(j, j - side))):
                     a, b = (j, b) if side < 0 else (a, j)
             phi = lattice_phase(a, b)
             s_lo = float(s_range[0] + (phi + a * period + 0.5) * bin_m)
