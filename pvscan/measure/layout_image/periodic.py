@@ -201,13 +201,13 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
                 return float(np.median(prof[m0:m1 + 1]))
 
             pairs = np.flatnonzero(on[:-1] & on[1:])
-            glass_c = float(np.median([middle(j, j + 1) for j in pairs])) if pairs.size else math.nan
+            glass_c = float(np.median([middle(i, i + 1) for i in pairs.tolist()])) if pairs.size else math.nan
             # one line missing between two lines of the comb, the modules either side at the
             # glass level: a mosaic seam that skipped the frames (the table goes on)
             run_on = on.copy()
-            for j in np.flatnonzero(~on[1:-1]) + 1:
-                if on[j - 1] and on[j + 1] and all(abs(middle(p, p + 1) - glass_c) <= glass_tol_k for p in (j - 1, j)):
-                    run_on[j] = True
+            for i in (np.flatnonzero(~on[1:-1]) + 1).tolist():
+                if on[i - 1] and on[i + 1] and all(abs(middle(p, p + 1) - glass_c) <= glass_tol_k for p in (i - 1, i)):
+                    run_on[i] = True
             a, b = _run_around(run_on, centre)
 
             # the ground between this table's end and the next table of its row (tables stand
