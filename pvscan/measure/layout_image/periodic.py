@@ -156,10 +156,11 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
             dip = np.maximum(prof[lo_j], prof[hi_j]) - prof
             # the phase on the lines between modules: narrow, with glass a quarter pitch either
             # side (a table's end against warmer ground is a dip against the ground over half a
-            # pitch, the ground between two tables about a pitch apart a dip one pitch wide)
+            # pitch, the ground between two tables about a pitch apart a dip one pitch wide),
+            # and deeper than the line half a pitch away (the middle of a half-cut module)
             quarter = max(1, int(round(period / 4)))
-            sym = (np.minimum(prof[np.clip(jj - quarter, 0, ns - 1)], prof[np.clip(jj + quarter, 0, ns - 1)])
-                   - prof)
+            sym = np.minimum(np.minimum(prof[np.clip(jj - quarter, 0, ns - 1)],
+                                        prof[np.clip(jj + quarter, 0, ns - 1)]) - prof, dip)
             n_phase = int(round(period))
             if n_phase < 3:
                 return None
