@@ -57,7 +57,7 @@ def test_comb_counts_the_modules_of_a_table_a_seam_shows_shifted():
         c_w = 0.5 * depth + rng.uniform(-0.1, 0.1)
         r = comb_extent(s - c_s, w - c_w, t, (-0.5 * length - 1.0, 0.5 * length + 1.0),
                         (-0.5 * depth - 1.0, 0.5 * depth + 1.0), (-0.15 * depth, 0.15 * depth), WIDTH + GAP,
-                        gsd, 0.4, 0.4, 0.15, (mod_w + GAP, GAP), 3.0, ground, bridge_seams=True)
+                        gsd, 0.4, 0.4, 0.15, (mod_w + GAP, GAP), 3.0, ground)
         assert r is not None
         s_lo, s_hi, w_lo, w_hi, line_k, row_k = r
         # the end lines lie half a gap outside the table: their span is cols pitches

@@ -380,8 +380,7 @@ def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings
     Each orientation's comb is measured with each line looked for within ``line_shift_m``
     (seams); an orientation whose line or row contrast is under half the other's is a comb of
     twice the module pitch over a table of the shorter module and is not taken; of the rest,
-    the longer extent wins (then the larger line contrast, then the manifest's orientation);
-    the chosen one is measured again over a line a seam skipped (``bridge_seams``).
+    the longer extent wins (then the larger line contrast, then the manifest's orientation).
     ``ground_c`` [degC], the ground around the table, tells the ground between two tables of a
     row from an end module (``level_tol_k``).
     """
@@ -393,14 +392,14 @@ def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings
     w = (x - centre[0]) * across[0] + (y - centre[1]) * across[1]
     reach = float(settings["comb_reach_m"])
 
-    def run(orient: str, shift_m: float, bridge: bool = False) -> Any:
+    def run(orient: str, shift_m: float) -> Any:
         mod_s = module.width_m if orient == "portrait" else module.length_m
         mod_w = (module.length_m if orient == "portrait" else module.width_m) * cos_t
         lattice = (mod_w + gap * cos_t, gap * cos_t)
         return comb_extent(s, w, t, (-0.5 * length - reach, 0.5 * length + reach),
                            (-0.5 * depth - reach, 0.5 * depth + reach), (-0.15 * depth, 0.15 * depth),
                            mod_s + gap, gsd, float(settings["dip_fraction"]), float(settings["close_m"]),
-                           shift_m, lattice, float(settings["level_tol_k"]), ground_c, bridge)
+                           shift_m, lattice, float(settings["level_tol_k"]), ground_c)
 
     found = {}
     for orient in ("portrait", "landscape"):
@@ -427,8 +426,6 @@ def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings
         orient, r = max(found.items(), key=lambda kv: kv[1][4] * kv[1][5])
     else:
         orient, r = best[1], best[2]
-    # the chosen comb again, over a line a mosaic seam skipped
-    r = run(orient, float(settings["line_shift_m"]), bridge=True) or r
     s_lo, s_hi, w_lo, w_hi, contrast, _ = r
     mod_s = module.width_m if orient == "portrait" else module.length_m
     n = int(round((s_hi - s_lo) / (mod_s + gap)))

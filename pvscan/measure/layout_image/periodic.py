@@ -86,7 +86,7 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
                 w_range: tuple[float, float], w_inner: tuple[float, float], pitch_s: float, gsd: float,
                 dip_fraction: float, close_m: float, line_shift_m: float,
                 across_lattice: tuple[float, float] | None = None, glass_tol_k: float = math.inf,
-                ground_c: float = math.nan, bridge_seams: bool = False
+                ground_c: float = math.nan
                 ) -> tuple[float, float, float, float, float, float] | None:
     """Table extent in its frame from the comb of frame lines along its axis.
 
@@ -122,12 +122,6 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
         The ground's level around the table [degC]: an end module nearer it than the glass
         level (and off the glass level by more than ``glass_tol_k``) is ground; without it
         (NaN) no end module is dropped.
-    bridge_seams : bool, optional
-        One line missing between two lines of the comb, the modules either side at the glass
-        level (within ``glass_tol_k``), is taken as a line a mosaic seam skipped (the seam
-        shows the table shifted by about a frame, a gap and a frame). Only for the comb of an
-        orientation already chosen: bridged, the comb of twice a short module over the
-        middles of half-cut long modules runs on over whole tables.
 
     Returns
     -------
@@ -209,14 +203,7 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
 
             pairs = np.flatnonzero(on[:-1] & on[1:])
             glass_c = float(np.median([middle(i, i + 1) for i in pairs.tolist()])) if pairs.size else math.nan
-            # one line missing between two lines of the comb, the modules either side at the
-            # glass level: a mosaic seam that skipped the frames (the table goes on)
-            run_on = on.copy()
-            for i in (np.flatnonzero(~on[1:-1]) + 1).tolist():
-                if bridge_seams and on[i - 1] and on[i + 1] and \
-                        all(abs(middle(p, p + 1) - glass_c) <= glass_tol_k for p in (i - 1, i)):
-                    run_on[i] = True
-            a, b = _run_around(run_on, centre)
+            a, b = _run_around(on, centre)
 
             # the ground between this table's end and the next table of its row (tables stand
             # about a pitch apart) looks like one more module between two lines: its middle
