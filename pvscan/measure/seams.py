@@ -184,10 +184,12 @@ def find_stretches(modules: pd.DataFrame, t_median: np.ndarray,
     has_strings = "string_id" in modules.columns and modules["string_id"].notna().any()
     sid = modules["string_id"].astype("string").fillna("").to_numpy() if has_strings else None
     t = np.asarray(t_median, dtype=float)
-    rows = []
-    for k in np.unique(keys[keys >= 0]):
-        mem = np.flatnonzero((keys == k) & np.isfinite(col))
-        rows.append((int(k), mem[np.argsort(col[mem], kind="stable")]))
+    # the modules of each row in column order (ties in module order), rows by key: one
+    # stable sort for all rows (a comparison of every module per row grew as rows x modules)
+    use = np.flatnonzero((keys >= 0) & np.isfinite(col))
+    order = use[np.lexsort((col[use], keys[use]))]
+    cuts = np.flatnonzero(np.diff(keys[order])) + 1
+    rows = [(int(keys[mem[0]]), mem) for mem in np.split(order, cuts) if len(mem)]
     # the module-to-module spread: robust spread of the differences between neighbours along
     # the rows, over sqrt(2) (seams and defects are few among the differences)
     # (twice: the second time with the stretches of the first levelled, whose edges would
