@@ -6,7 +6,7 @@ import io
 import math
 from collections.abc import Iterable, Mapping, Sequence
 from datetime import datetime
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
 from numpy.typing import ArrayLike
@@ -71,7 +71,7 @@ def nice_length(target: float) -> float:
     return float(10 ** exp)
 
 
-def _polys(geoms: Iterable[Any]) -> list[np.ndarray] | np.ndarray:
+def _polys(geoms: Iterable[Any]) -> Sequence[np.ndarray]:
     """Exterior rings (k, 2) of the polygons (and polygon parts) of ``geoms``, in order.
 
     When every ring has the same number of points (module rectangles) they come as one
@@ -93,7 +93,8 @@ def _polys(geoms: Iterable[Any]) -> list[np.ndarray] | np.ndarray:
     cuts = np.flatnonzero(np.diff(owner)) + 1
     sizes = np.diff(np.concatenate(([0], cuts, [len(coords)])))
     if len(sizes) and (sizes == sizes[0]).all():
-        return coords.reshape(len(sizes), int(sizes[0]), 2)
+        # an array of rings: indexing, iteration and len() as for the list
+        return cast(Sequence[np.ndarray], coords.reshape(len(sizes), int(sizes[0]), 2))
     return np.split(coords, cuts)
 
 
