@@ -43,6 +43,7 @@ import numpy as np
 import pandas as pd
 
 from pvscan.io.settings import section
+from pvscan.measure._memory import release_freed_memory
 from pvscan.measure.rows import row_keys
 from pvscan.robust import scaled_mad
 
@@ -276,6 +277,9 @@ def level_stats(stats: Any, stretches: list[Stretch]) -> tuple[Any, np.ndarray]:
     offsets = np.zeros(n)
     for s in stretches:
         offsets[s.modules] = s.offset_k
+    # the last step of measuring: what the measuring freed goes back to the system before
+    # the pattern tests build their (modules x cells) arrays
+    release_freed_memory()
     if not offsets.any():
         return stats, offsets
     table = stats.table.copy()
