@@ -115,7 +115,9 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
         Module pitch and gap across the table [m]: of the rows' extent at the lines' places
         and at each row's own line places, the one nearer a whole number of module rows.
     glass_tol_k : float, optional
-        An end module whose middle half is further than this from the glass level of the
+        A line missing between two pairs of regular lines two pitches apart, the modules
+        either side within this of the glass level, is a line a mosaic seam skipped (the
+        table goes on). An end module whose middle half is further than this from the glass level of the
         table's modules and nearer the ground's level is the ground between this table and
         the next one of its row (tables stand about a pitch apart), not a module [K].
     ground_c : float, optional
@@ -203,7 +205,19 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
 
             pairs = np.flatnonzero(on[:-1] & on[1:])
             glass_c = float(np.median([middle(i, i + 1) for i in pairs.tolist()])) if pairs.size else math.nan
-            a, b = _run_around(on, centre)
+            # one line a mosaic seam skipped (the seam showed the table shifted by about a frame,
+            # a gap and a frame): two regular lines between modules either side (not a table's
+            # end), two pitches apart, the glass level between
+            run_on = on.copy()
+            regular = on & (d <= 2.0 * med)
+            for i in range(2, lines.size - 2):
+                if on[i] or not (regular[i - 2] and regular[i - 1] and regular[i + 1] and regular[i + 2]):
+                    continue
+                if abs(pos[i + 1] - pos[i - 1] - 2 * period) > 2 * reach + 1:
+                    continue
+                if all(abs(middle(p, p + 1) - glass_c) <= glass_tol_k for p in (i - 1, i)):
+                    run_on[i] = True
+            a, b = _run_around(run_on, centre)
 
             # the ground between this table's end and the next table of its row (tables stand
             # about a pitch apart) looks like one more module between two lines: its middle
