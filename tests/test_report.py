@@ -857,3 +857,34 @@ def test_flight_period_is_readable():
     assert _period("2026-06-14T10:40:00+02:00", "2026-06-14T10:40:48+02:00") == \
         "14 Jun 2026, 10:40:00–10:40:48 (UTC+02:00)"
     assert _period("not a time", "") == "not a time"
+
+
+def test_result_read_again_is_the_same_and_independent(result, tmp_path):
+    """Reading a result folder twice gives equal records that do not share state; a folder
+    renamed into place is the same folder; a rewritten file is read anew (checks against the
+    files themselves, parsed with the standard json module)."""
+    import shutil
+
+    from pvscan.report._result import load_result
+
+    first = load_result(result)
+    second = load_result(result)
+    assert first.modules.equals(second.modules) and first.anomalies.equals(second.anomalies)
+    assert first.summary == second.summary
+    first.modules.loc[0, "t_median_c"] = -999.0
+    first.summary["site"] = "changed"
+    third = load_result(result)
+    assert third.modules.loc[0, "t_median_c"] != -999.0 and third.summary.get("site") != "changed"
+    moved = tmp_path / "moved"
+    shutil.copytree(result, tmp_path / "copy")
+    (tmp_path / "copy").rename(moved)
+    assert load_result(moved).result_dir == moved
+    # a file written anew (a new inode, as the atomic writers do) is parsed again
+    gj = json.loads((moved / "modules.geojson").read_text())
+    gj["features"][0]["properties"]["t_median_c"] = 12.5
+    tmp = moved / "modules.tmp"
+    tmp.write_text(json.dumps(gj))
+    tmp.replace(moved / "modules.geojson")
+    again = load_result(moved)
+    mid = gj["features"][0]["properties"]["module_id"]
+    assert float(again.modules.set_index("module_id").loc[str(mid), "t_median_c"]) == 12.5

@@ -256,8 +256,15 @@ def build_features(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, 
             c = cc[i0:i0 + CHUNK_MODULES]
             typ[i0:i0 + CHUNK_MODULES] = np.nanmedian(np.where(c > 0, c, np.nan).reshape(len(c), -1), axis=1)
     thin = cc < float(cfg["min_cell_fraction"]) * np.nan_to_num(typ, nan=1.0)[:, None, None]
-    cm = np.where(thin, np.nan, cm)
-    cp = np.where(thin, np.nan, cp)
+    if thin.any():
+        cm = np.where(thin, np.nan, cm)
+        cp = np.where(thin, np.nan, cp)
+    else:
+        # nothing left out: the statistics' own arrays, read-only (two (modules x cells)
+        # copies fewer while the pattern tests run, the largest memory of the run)
+        cm, cp = cm.view(), cp.view()
+        cm.flags.writeable = False
+        cp.flags.writeable = False
     del thin
 
     # the shape the healthy neighbours share, relative to each neighbour's own median; the
@@ -265,6 +272,7 @@ def build_features(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, 
     R = cm - ref[:, None, None]
     shape = np.nan_to_num(neighbour_median(cm, nb, offset=t_med), nan=0.0, copy=False)
     R -= shape
+    del shape
     R95 = cp - ref[:, None, None]
     shape = np.nan_to_num(neighbour_median(cp, nb, offset=t_med), nan=0.0, copy=False)
     R95 -= shape

@@ -43,6 +43,7 @@ import numpy as np
 import pandas as pd
 
 from pvscan.io.settings import section
+from pvscan.measure._memory import release_freed_memory
 from pvscan.measure.rows import row_keys
 from pvscan.robust import scaled_mad
 
@@ -73,19 +74,26 @@ class Stretch:
     reason: str
 
 
-def _masked_median(row: np.ndarray, mask: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Lower and upper median of ``row`` over each line of ``mask``, and the count.
+#: Elements (rows x windows x modules) of the arrays of one batch of rows in
+#: :func:`_closed_stretches_rows` (bounds its temporaries to a few MB each).
+_BATCH_ELEMENTS = 1 << 19
 
-    ``row``: (n,) values (NaN ignored); ``mask``: (k, n). The median of an even count is the
-    mean of the two; the lower (upper) one alone is the value nearer the low (high) end.
+
+def _masked_median(rows: np.ndarray, mask: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Lower and upper median of each row of ``rows`` over each line of ``mask``, and the count.
+
+    ``rows``: (r, n) values (NaN ignored); ``mask``: (k, n); results (r, k). The median of an
+    even count is the mean of the two; the lower (upper) one alone is the value nearer the
+    low (high) end.
     """
-    use = mask & np.isfinite(row)
-    cnt = use.sum(axis=1)
-    srt = np.sort(np.where(use, row, np.inf), axis=1)
-    lo_i = np.clip((cnt - 1) // 2, 0, row.size - 1)
-    hi_i = np.clip(cnt // 2, 0, row.size - 1)
-    lo = np.take_along_axis(srt, lo_i[:, None], axis=1)[:, 0]
-    hi = np.take_along_axis(srt, hi_i[:, None], axis=1)[:, 0]
+    n = rows.shape[1]
+    use = mask[None, :, :] & np.isfinite(rows)[:, None, :]
+    cnt = use.sum(axis=2)
+    srt = np.sort(np.where(use, rows[:, None, :], np.inf), axis=2)
+    lo_i = np.clip((cnt - 1) // 2, 0, n - 1)
+    hi_i = np.clip(cnt // 2, 0, n - 1)
+    lo = np.take_along_axis(srt, lo_i[:, :, None], axis=2)[:, :, 0]
+    hi = np.take_along_axis(srt, hi_i[:, :, None], axis=2)[:, :, 0]
     none = cnt == 0
     return np.where(none, np.nan, lo), np.where(none, np.nan, hi), cnt
 
@@ -106,15 +114,23 @@ def _closed_stretches(t: np.ndarray, cfg: Mapping[str, Any], sigma: float = 0.0)
     modules are then levelled in a working copy and the row is fitted again for further
     stretches that do not overlap it.
     """
+    return _closed_stretches_rows(np.asarray(t, dtype=float)[None, :], cfg, sigma)[0]
+
+
+def _closed_stretches_rows(profiles: np.ndarray, cfg: Mapping[str, Any],
+                           sigma: float = 0.0) -> list[list[tuple[int, int, float]]]:
+    """:func:`_closed_stretches` of every row of ``profiles`` (r, n): rows of one length,
+    fitted together a batch at a time (each row's figures depend on its own values only)."""
     w = int(cfg["window_modules"])
     min_len = int(cfg["min_modules"])
     min_step = float(cfg["min_step_k"])
     tol_abs, tol_rel = float(cfg["match_abs_k"]), float(cfg["match_rel"])
     z_min = float(cfg["seam_z"])
-    work = np.asarray(t, dtype=float).copy()
-    n = len(work)
-    if n < min_len + 4 or np.isfinite(work).sum() < min_len + 4:
-        return []
+    profiles = np.asarray(profiles, dtype=float)
+    n_rows, n = profiles.shape
+    out: list[list[tuple[int, int, float]]] = [[] for _ in range(n_rows)]
+    if n < min_len + 4:
+        return out
     first, last = np.triu_indices(n, k=min_len - 1)
     keep = (first >= 2) & (last <= n - 3)
     first, last = first[keep], last[keep]
@@ -122,39 +138,53 @@ def _closed_stretches(t: np.ndarray, cfg: Mapping[str, Any], sigma: float = 0.0)
     inside = (pos >= first[:, None]) & (pos <= last[:, None])
     left = (pos < first[:, None]) & (pos >= first[:, None] - w)
     right = (pos > last[:, None]) & (pos <= last[:, None] + w)
-    taken = np.zeros(n, bool)
-    out: list[tuple[int, int, float]] = []
-    for _ in range(n // (min_len + 2) + 1):
-        fin = np.isfinite(work)
-        lo_in, hi_in, n_in = _masked_median(work, inside)
-        lo_r, hi_r, n_rest = _masked_median(work, ~inside)
-        m_in, m_rest = 0.5 * (lo_in + hi_in), 0.5 * (lo_r + hi_r)
-        dev = np.where(inside, work - m_in[:, None], work - m_rest[:, None])
-        cost = np.where(fin, np.abs(dev), 0.0).sum(axis=1)
-        lo_l, hi_l, n_l = _masked_median(work, left)
-        lo_rr, hi_rr, n_r = _masked_median(work, right)
-        m_l, m_r = 0.5 * (lo_l + hi_l), 0.5 * (lo_rr + hi_rr)
-        # the inside level at the order statistic nearer the outside level
-        lev_in = np.where(m_in >= m_rest, lo_in, hi_in)
-        off = m_in - m_rest
-        se = max(sigma, 1e-9) * np.sqrt(1.0 / np.maximum(n_in, 1) + 1.0 / np.maximum(n_rest, 1))
-        with np.errstate(invalid="ignore"):
-            # each side steps by at least half the offset, the same way, to about one level
-            closed = ((np.sign(m_in - m_l) == np.sign(off)) & (np.sign(m_in - m_r) == np.sign(off))
-                      & (np.abs(m_in - m_l) >= 0.5 * np.abs(off)) & (np.abs(m_in - m_r) >= 0.5 * np.abs(off))
-                      & (np.abs(m_l - m_r) <= tol_abs + tol_rel * np.abs(off)))
-            low = np.abs(lev_in - m_rest)
-            good = (closed & (n_l >= 2) & (n_r >= 2) & (n_in >= min_len) & ~(inside & taken).any(axis=1)
-                    & np.isfinite(cost) & (np.sign(lev_in - m_rest) == np.sign(off))
-                    & (low >= min_step) & (low >= z_min * se))
-        if not good.any():
-            break
-        k = int(np.flatnonzero(good)[np.argmin(cost[good])])
-        a, b, o = int(first[k]), int(last[k]), float(off[k])
-        out.append((a, b, o))
-        work[a:b + 1] -= o
-        taken[a:b + 1] = True
-    return sorted(out)
+    todo = np.flatnonzero(np.isfinite(profiles).sum(axis=1) >= min_len + 4)
+    batch = max(1, _BATCH_ELEMENTS // max(len(first) * n, 1))
+    for b0 in range(0, len(todo), batch):
+        rows = todo[b0:b0 + batch]
+        work = profiles[rows].copy()
+        taken = np.zeros(work.shape, bool)
+        active = np.ones(len(rows), bool)
+        for _ in range(n // (min_len + 2) + 1):
+            act = np.flatnonzero(active)
+            if not act.size:
+                break
+            wk = work[act]
+            fin = np.isfinite(wk)
+            lo_in, hi_in, n_in = _masked_median(wk, inside)
+            lo_r, hi_r, n_rest = _masked_median(wk, ~inside)
+            m_in, m_rest = 0.5 * (lo_in + hi_in), 0.5 * (lo_r + hi_r)
+            dev = np.where(inside[None, :, :], wk[:, None, :] - m_in[:, :, None], wk[:, None, :] - m_rest[:, :, None])
+            cost = np.where(fin[:, None, :], np.abs(dev), 0.0).sum(axis=2)
+            del dev
+            lo_l, hi_l, n_l = _masked_median(wk, left)
+            lo_rr, hi_rr, n_r = _masked_median(wk, right)
+            m_l, m_r = 0.5 * (lo_l + hi_l), 0.5 * (lo_rr + hi_rr)
+            # the inside level at the order statistic nearer the outside level
+            lev_in = np.where(m_in >= m_rest, lo_in, hi_in)
+            off = m_in - m_rest
+            se = max(sigma, 1e-9) * np.sqrt(1.0 / np.maximum(n_in, 1) + 1.0 / np.maximum(n_rest, 1))
+            with np.errstate(invalid="ignore"):
+                # each side steps by at least half the offset, the same way, to about one level
+                closed = ((np.sign(m_in - m_l) == np.sign(off)) & (np.sign(m_in - m_r) == np.sign(off))
+                          & (np.abs(m_in - m_l) >= 0.5 * np.abs(off)) & (np.abs(m_in - m_r) >= 0.5 * np.abs(off))
+                          & (np.abs(m_l - m_r) <= tol_abs + tol_rel * np.abs(off)))
+                low = np.abs(lev_in - m_rest)
+                good = (closed & (n_l >= 2) & (n_r >= 2) & (n_in >= min_len)
+                        & ~(inside[None, :, :] & taken[act][:, None, :]).any(axis=2)
+                        & np.isfinite(cost) & (np.sign(lev_in - m_rest) == np.sign(off))
+                        & (low >= min_step) & (low >= z_min * se))
+            found = good.any(axis=1)
+            active[act[~found]] = False
+            # the best fit of each row: the first window of least cost among the good ones
+            best = np.argmin(np.where(good, cost, np.inf), axis=1)
+            for j in np.flatnonzero(found):
+                r, k = int(act[j]), int(best[j])
+                a, b, o = int(first[k]), int(last[k]), float(off[j, k])
+                out[int(rows[r])].append((a, b, o))
+                work[r, a:b + 1] -= o
+                taken[r, a:b + 1] = True
+    return [sorted(o) for o in out]
 
 
 def find_stretches(modules: pd.DataFrame, t_median: np.ndarray,
@@ -184,10 +214,12 @@ def find_stretches(modules: pd.DataFrame, t_median: np.ndarray,
     has_strings = "string_id" in modules.columns and modules["string_id"].notna().any()
     sid = modules["string_id"].astype("string").fillna("").to_numpy() if has_strings else None
     t = np.asarray(t_median, dtype=float)
-    rows = []
-    for k in np.unique(keys[keys >= 0]):
-        mem = np.flatnonzero((keys == k) & np.isfinite(col))
-        rows.append((int(k), mem[np.argsort(col[mem], kind="stable")]))
+    # the modules of each row in column order (ties in module order), rows by key: one
+    # stable sort for all rows (a comparison of every module per row grew as rows x modules)
+    use = np.flatnonzero((keys >= 0) & np.isfinite(col))
+    order = use[np.lexsort((col[use], keys[use]))]
+    cuts = np.flatnonzero(np.diff(keys[order])) + 1
+    rows = [(int(keys[mem[0]]), mem) for mem in np.split(order, cuts) if len(mem)]
     # the module-to-module spread: robust spread of the differences between neighbours along
     # the rows, over sqrt(2) (seams and defects are few among the differences)
     # (twice: the second time with the stretches of the first levelled, whose edges would
@@ -198,9 +230,17 @@ def find_stretches(modules: pd.DataFrame, t_median: np.ndarray,
         diffs = np.concatenate([np.diff(tl[mem]) for _, mem in rows if len(mem) > 1] or [np.zeros(0)])
         diffs = diffs[np.isfinite(diffs)]
         sigma = scaled_mad(diffs) / np.sqrt(2.0) if diffs.size >= 10 else 0.0
+        # rows of one length are fitted together
+        fits: dict[int, list[tuple[int, int, float]]] = {}
+        by_len: dict[int, list[int]] = {}
+        for i, (_k, mem) in enumerate(rows):
+            by_len.setdefault(len(mem), []).append(i)
+        for members in by_len.values():
+            for i, f in zip(members, _closed_stretches_rows(np.stack([t[rows[i][1]] for i in members]), cfg, sigma)):
+                fits[i] = f
         found = []  # (row key, modules, offset)
-        for k, mem in rows:
-            for first, last, offset in _closed_stretches(t[mem], cfg, sigma):
+        for i, (k, mem) in enumerate(rows):
+            for first, last, offset in fits[i]:
                 found.append((int(k), mem[first:last + 1], offset))
         level = np.zeros_like(t)
         for _k, seg, off in found:
@@ -237,6 +277,9 @@ def level_stats(stats: Any, stretches: list[Stretch]) -> tuple[Any, np.ndarray]:
     offsets = np.zeros(n)
     for s in stretches:
         offsets[s.modules] = s.offset_k
+    # the last step of measuring: what the measuring freed goes back to the system before
+    # the pattern tests build their (modules x cells) arrays
+    release_freed_memory()
     if not offsets.any():
         return stats, offsets
     table = stats.table.copy()

@@ -49,6 +49,7 @@ from rasterio.windows import Window
 from pvscan.io.layout import FRAME_COLUMNS
 from pvscan.io.ortho import OrthoSet, Tile
 from pvscan.io.settings import section
+from pvscan.measure._memory import release_freed_memory
 from pvscan.measure.zonal_window import _BlockResult, _frame_corners, _measure, measure_window
 
 __all__ = ["ZonalStats", "zonal_stats", "measure_window", "TABLE_COLUMNS"]
@@ -392,7 +393,11 @@ def zonal_stats(
             if progress is not None:
                 progress("zonal", done, total)
 
-    return _finish(acc, modules, n, grid, (float(shift[0]), float(shift[1])), quantum_k, cfg)
+    out = _finish(acc, modules, n, grid, (float(shift[0]), float(shift[1])), quantum_k, cfg)
+    del acc
+    # the blocks' arrays freed on the worker threads stay resident in their arenas otherwise
+    release_freed_memory()
+    return out
 
 
 def _finish(acc: _Accumulator, modules: Any, n: int, grid: tuple[int, int, int], shift: tuple[float, float],

@@ -6,7 +6,7 @@ import io
 import math
 from collections.abc import Iterable, Mapping, Sequence
 from datetime import datetime
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, cast
 
 import numpy as np
 from numpy.typing import ArrayLike
@@ -71,8 +71,12 @@ def nice_length(target: float) -> float:
     return float(10 ** exp)
 
 
-def _polys(geoms: Iterable[Any]) -> list[np.ndarray]:
-    """Exterior rings (k, 2) of the polygons (and polygon parts) of ``geoms``, in order."""
+def _polys(geoms: Iterable[Any]) -> Sequence[np.ndarray]:
+    """Exterior rings (k, 2) of the polygons (and polygon parts) of ``geoms``, in order.
+
+    When every ring has the same number of points (module rectangles) they come as one
+    (rings, k, 2) array: a ``PolyCollection`` then builds its paths from one template, the
+    same vertices and codes as from a list, many times faster on thousands of modules."""
     import shapely
 
     items = list(geoms)
@@ -87,6 +91,10 @@ def _polys(geoms: Iterable[Any]) -> list[np.ndarray]:
         return []
     coords, owner = shapely.get_coordinates(shapely.get_exterior_ring(parts), return_index=True)
     cuts = np.flatnonzero(np.diff(owner)) + 1
+    sizes = np.diff(np.concatenate(([0], cuts, [len(coords)])))
+    if len(sizes) and (sizes == sizes[0]).all():
+        # an array of rings: indexing, iteration and len() as for the list
+        return cast(Sequence[np.ndarray], coords.reshape(len(sizes), int(sizes[0]), 2))
     return np.split(coords, cuts)
 
 
@@ -144,7 +152,7 @@ def overview_png(*, extent: Extent, image: np.ndarray | None, module_geoms: Iter
     if image is not None:
         im = ax.imshow(image, extent=extent, origin="upper", cmap=cmap, vmin=vmin, vmax=vmax,
                        interpolation="nearest")
-        if polys:
+        if len(polys):
             ax.add_collection(PolyCollection(polys, facecolors="none", edgecolors=(1, 1, 1, 0.35),
                                              linewidths=0.35))
     else:
@@ -160,7 +168,7 @@ def overview_png(*, extent: Extent, image: np.ndarray | None, module_geoms: Iter
     cb.ax.tick_params(labelsize=7, colors=_INK)
     for sev in reversed(SEVERITIES):
         rp = _polys([g for g, s in anomaly_regions if s == sev])
-        if rp:
+        if len(rp):
             ax.add_collection(PolyCollection(rp, facecolors="none", edgecolors=SEVERITY_STYLE[sev]["color"],
                                              linewidths=1.1, zorder=4))
     # anomalies, lowest urgency first so safety marks stay on top
@@ -458,7 +466,7 @@ def registration_png(module_geoms: Iterable[Any], arrows: Sequence[tuple[float, 
     from matplotlib.lines import Line2D
 
     polys = _polys(module_geoms)
-    pts = np.concatenate(polys) if polys else np.array([[a[0], a[1]] for a in arrows] or [[0.0, 0.0]])
+    pts = np.concatenate(polys) if len(polys) else np.array([[a[0], a[1]] for a in arrows] or [[0.0, 0.0]])
     xmin, ymin = pts.min(axis=0)
     xmax, ymax = pts.max(axis=0)
     span = max(xmax - xmin, ymax - ymin, 1.0)

@@ -327,6 +327,38 @@ def _merge_anomalies(anomalies: pd.DataFrame, workorders: pd.DataFrame,
     return an
 
 
+#: The result files :func:`load_result` reads.
+_RESULT_FILES = ("summary.json", "modules.geojson", "anomalies.geojson", "workorders.csv")
+#: The last folder read: ``{"entry": (identity of its files, ResultData)}`` (one dict
+#: lookup to read it, so threads reading other folders do not mix entries up).
+_LAST: dict[str, tuple[tuple[Any, ...], ResultData]] = {}
+
+
+def _identity(root: Path) -> tuple[Any, ...] | None:
+    """Device, inode, size and modification time of each result file (None when one of the
+    required files is missing): the same tuple means the same files, also after the folder
+    was renamed into place."""
+    out: list[Any] = []
+    for name in _RESULT_FILES:
+        try:
+            st = (root / name).stat()
+        except OSError:
+            if name == "workorders.csv":
+                out.append(None)
+                continue
+            return None
+        out.append((st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns))
+    return tuple(out)
+
+
+def _copy(data: ResultData, root: Path) -> ResultData:
+    """A copy of ``data`` for the folder ``root`` that its user may change freely."""
+    import copy
+
+    return ResultData(root, copy.deepcopy(data.summary), data.modules.copy(), data.anomalies.copy(),
+                      data.workorders.copy(), list(data.notes))
+
+
 def load_result(result_dir: str | os.PathLike[str]) -> ResultData:
     """Read a result folder written by ``pvscan inspect``.
 
@@ -344,10 +376,27 @@ def load_result(result_dir: str | os.PathLike[str]) -> ResultData:
     ------
     OutputError
         When the folder or a required file is missing or unreadable.
+
+    Notes
+    -----
+    The last folder read is remembered by the identity of its files (device, inode, size,
+    modification time): reading the same files again (the end-of-run summary after the
+    report, the folder renamed into place in between) returns a copy without parsing them.
     """
     root = Path(result_dir)
     if not root.is_dir():
         raise OutputError(f"{root}: result folder not found")
+    key = _identity(root)
+    last = _LAST.get("entry")
+    if key is not None and last is not None and last[0] == key:
+        return _copy(last[1], root)
+    data = _load(root)
+    if key is not None:
+        _LAST["entry"] = (key, data)
+    return _copy(data, root)
+
+
+def _load(root: Path) -> ResultData:
     summary = read_json_file(root / "summary.json", OutputError, _MISSING)
     if not isinstance(summary, Mapping):
         raise OutputError(f"{root / 'summary.json'}: expected a JSON object")

@@ -62,20 +62,24 @@ def _nan_reduce(a: np.ndarray, f: int) -> np.ndarray:
 
 
 def _as_mappings(geoms: Any) -> list[Any]:
-    """GeoJSON-like mappings of simple polygons, built vectorised (rasterio would otherwise
-    call each geometry's ``__geo_interface__``, which dominates on thousands of modules)."""
+    """GeoJSON-like mappings of the footprints for ``rasterio.features.rasterize``, built
+    vectorised: every simple polygon in one MultiPolygon mapping (rasterize hands each of its
+    polygons to GDAL as a polygon of its own, so the burn is the same as one shape per
+    footprint, without a Python validity check and a ``__geo_interface__`` per footprint),
+    the other geometries (holes, several parts) as they are."""
     import shapely
 
     geoms = np.asarray(geoms, dtype=object)
-    simple = (shapely.get_type_id(geoms) == 3) & (shapely.get_num_interior_rings(geoms) == 0)
-    out: list = list(geoms)
+    simple = ((shapely.get_type_id(geoms) == 3) & (shapely.get_num_interior_rings(geoms) == 0)
+              & ~shapely.is_empty(geoms))
+    out: list = list(geoms[~simple])
     if simple.any():
-        idx = np.nonzero(simple)[0]
-        rings = shapely.get_exterior_ring(geoms[idx])
+        rings = shapely.get_exterior_ring(geoms[simple])
         coords, which = shapely.get_coordinates(rings, return_index=True)
-        bounds = np.searchsorted(which, np.arange(len(idx) + 1))
-        for k, i in enumerate(idx):
-            out[i] = {"type": "Polygon", "coordinates": [coords[bounds[k]:bounds[k + 1]].tolist()]}
+        bounds = np.searchsorted(which, np.arange(len(rings) + 1)).tolist()
+        flat = coords.tolist()
+        out.append({"type": "MultiPolygon",
+                    "coordinates": [[flat[b0:b1]] for b0, b1 in zip(bounds[:-1], bounds[1:])]})
     return out
 
 

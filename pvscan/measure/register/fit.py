@@ -31,6 +31,7 @@ import numpy as np
 from pvscan._typing import ProgressFn
 from pvscan.errors import RegistrationWarning
 from pvscan.io.layout.frames import FRAME_COLUMNS
+from pvscan.measure._memory import release_freed_memory
 from pvscan.measure.register._blocks import _settings
 from pvscan.measure.register._pitch import _pitches, _row_pitch
 from pvscan.measure.register._records import Registration
@@ -281,6 +282,8 @@ def register_layout(orthos: Any, modules: gpd.GeoDataFrame, settings: Mapping[st
     if reg.status in ("ok", "ambiguous") and forced_shift is None and cfg["local_enabled"] and reg.local is None:
         _refine_locally(orthos, modules, reg, cfg, ident)
     logger.info("register: %s", reg.message)
+    # the block passes' and samples' arrays, freed, would stay resident in the C heap
+    release_freed_memory()
     return reg
 
 
