@@ -444,6 +444,23 @@ def _site_lonlat(modules: gpd.GeoDataFrame) -> tuple[float, float]:
     return float(lon), float(lat)
 
 
+def _evidence_validity(validity: Validity, diagnosis: Any, settings: Pipeline
+                       ) -> tuple[Validity, pd.DataFrame, pd.DataFrame]:
+    """``validity`` with the checks of the classification's evidence
+    (:func:`pvscan.measure.validity.evidence_checks`); when one fails, every confidence of
+    the findings drops by the same factor as the flight's."""
+    from pvscan.measure import validity as val_mod
+
+    before = float(validity.confidence_factor)
+    validity = val_mod.with_checks(validity, val_mod.evidence_checks(diagnosis.evidence, settings), settings)
+    anomalies, module_table = diagnosis.anomalies, diagnosis.modules
+    after = float(validity.confidence_factor)
+    if before > 0 and after < before:
+        anomalies = anomalies.assign(confidence=anomalies["confidence"] * (after / before))
+        module_table = module_table.assign(confidence=module_table["confidence"] * (after / before))
+    return validity, anomalies, module_table
+
+
 def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path | None = None,
                    out_dir: str | Path | None = None, *, overwrite: bool = False,
                    report: bool = True, progress: ProgressFn | None = None,
@@ -511,10 +528,13 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
     validity = m.validity
 
     t0 = _clock()
-    anomalies, module_table = classify.classify(
+    diagnosis = classify.classify(
         modules, stats, conds, flight.module, settings,
         confidence_factor=float(validity.confidence_factor), progress=progress,
         string_patterns=flight.flight.layout is not None)
+    anomalies, module_table = diagnosis
+    # checks of what the classification measured about the flight as a whole
+    validity, anomalies, module_table = _evidence_validity(validity, diagnosis, settings)
     _record(timings, "classify", t0)
 
     t0 = _clock()

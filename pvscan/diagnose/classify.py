@@ -108,6 +108,7 @@ def _stage(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module_s
     shape_o = np.nan_to_num(neighbour_median(F.cm - t_med[:, None, None], ro.neighbours), nan=0.0)
     F.extra["R_other"] = F.cm - ref_o[:, None, None] - shape_o
     sig_o = scaled_mad(d_other[healthy & F.ok]) if (healthy & F.ok).sum() >= 3 else F.sig_mod
+    F.extra["sig_other_measured"] = float(sig_o) if np.isfinite(sig_o) else float("nan")
     # no wider than other_spread_max_ratio module spreads: on a small plant a faulty string's own
     # offset (and the mirror offset of the row beside it) would widen it and hide the string
     sig_o = min(sig_o, float(cfg["other_spread_max_ratio"]) * F.sig_mod)
@@ -310,4 +311,20 @@ def classify(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module
     if progress:
         progress("classify", 3, 3)
     logger.info("classified %d modules: %d anomalies", int(F.ok.sum()), len(anomalies))
-    return Diagnosis(anomalies, module_table)
+    return Diagnosis(anomalies, module_table, evidence=_evidence(F, groups))
+
+
+def _evidence(F: Features, groups: np.ndarray) -> dict[str, Any]:
+    """What the final pass measured about the flight as a whole, for the validity checks of
+    :mod:`pvscan.measure.validity`: the module-to-module spread of healthy modules
+    (``module_spread_k`` [K]), the spread of their excess over modules outside their own
+    string or table row as measured, before any cap (``other_spread_k`` [K]), the median
+    open-module rise ``eta * G / U`` (``open_rise_k`` [K]), and how many strings (or table
+    rows standing in for them) hold classified modules (``groups``)."""
+    rise = F.rise[F.ok] if F.ok.any() else F.rise
+    g = groups[F.ok & (groups >= 0)]
+    return {"module_spread_k": float(F.sig_mod),
+            "other_spread_k": float(F.extra.get("sig_other_measured", float("nan"))),
+            "open_rise_k": float(np.nanmedian(rise)) if np.isfinite(rise).any() else float("nan"),
+            "groups": int(len(np.unique(g))),
+            "strings_known": bool(F.extra.get("is_string", False))}

@@ -7,7 +7,8 @@ tables; :class:`Diagnosis` bundles it with the per-module table.
 from __future__ import annotations
 
 from collections.abc import Iterator
-from dataclasses import dataclass
+from dataclasses import dataclass, field
+from typing import Any
 
 import pandas as pd
 
@@ -54,10 +55,15 @@ class Diagnosis:
         Aligned with the modules, columns :data:`MODULE_COLUMNS`: ``reference_c`` [degC],
         ``delta_t_k``, ``delta_t_norm_k`` [K], ``defect`` (None when healthy),
         ``classified`` (False when too little of the module was imaged), ``confidence``.
+    evidence : dict
+        What the classification measured about the flight as a whole (module spread,
+        out-of-string spread, open-module rise, strings or rows; see
+        ``classify._evidence``), read by the validity checks.
     """
 
     anomalies: pd.DataFrame
     modules: pd.DataFrame
+    evidence: dict[str, Any] = field(default_factory=dict)
 
     def __iter__(self) -> Iterator[pd.DataFrame]:
         return iter((self.anomalies, self.modules))

@@ -39,7 +39,8 @@ if TYPE_CHECKING:
 Check = dict[str, Any]
 
 __all__ = ["Validity", "check_validity", "registration_check", "coverage_check", "plausibility_check",
-           "row_geometry", "row_shading_check", "with_checks"]
+           "row_geometry", "row_shading_check", "string_reference_check", "evidence_checks",
+           "with_checks"]
 
 logger = logging.getLogger(__name__)
 
@@ -337,6 +338,58 @@ def row_shading_check(modules: Any, tilt_deg: float, azimuth_deg: float, lon: fl
     c.update({"pitch_m": round(pitch, 3), "collector_width_m": round(width, 3),
               "lowest_sun_elevation_deg": round(elev, 2)})
     return c
+
+
+def _finite(x: Any) -> float | None:
+    """``x`` as a float, or None when missing or not finite."""
+    try:
+        v = float(x)
+    except (TypeError, ValueError):
+        return None
+    return v if math.isfinite(v) else None
+
+
+def string_reference_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> Check:
+    """``string_reference``: the spread of healthy modules' excess over modules outside their
+    own string (or table row), in module-to-module spreads [-] (at most ``[validity]
+    max_other_spread_ratio``).
+
+    Open strings and PID are judged against modules outside the string, since a string
+    raised as a whole would be its own reference. On an ordinary plant that reference
+    scatters about as much as module against module; when it scatters far more, the plant
+    holds too few strings (or table rows) for it, or one group's offset (an open string
+    filling half a small plant, and the mirror offset it lends the rest) widens it: the
+    string-level findings, found or missed, are then not measured. Unknown (passes) when the
+    classification measured no spread.
+    """
+    st = _validity_settings(settings)
+    lim = float(st["max_other_spread_ratio"])
+    sig = _finite(evidence.get("module_spread_k"))
+    other = _finite(evidence.get("other_spread_k"))
+    value = other / sig if sig is not None and other is not None and sig > 0 else None
+    groups = evidence.get("groups")
+    what = "strings" if evidence.get("strings_known", False) else "table rows"
+    if value is None:
+        msg = "string reference: unknown (no spread measured)"
+    else:
+        msg = (f"string reference: modules against those outside their own string scatter {value:.2f} x as much as "
+               f"module against module ({other:.2f} K vs {sig:.2f} K over {groups} {what}; at most "
+               f"{lim:g} x)")
+        if value > lim:
+            msg += ": open strings and PID cannot be measured on this plant (failed)"
+    c = _check("string_reference", value, lim, "max", "", "module spread (pvscan.diagnose.classify; calibrated)",
+               message=msg)
+    c.update({"module_spread_k": sig, "other_spread_k": other, "groups": groups})
+    return c
+
+
+def evidence_checks(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> list[Check]:
+    """The checks of what the classification measured about the flight as a whole
+    (:attr:`pvscan.diagnose.results.Diagnosis.evidence`): ``string_reference``. Empty when
+    there is no evidence (no module classified)."""
+    if not evidence:
+        return []
+    return [string_reference_check(evidence, settings)]
 
 
 def with_checks(validity: Validity, checks: Iterable[Check], settings: Mapping[str, Any] | None = None) -> Validity:

@@ -89,7 +89,12 @@ def pattern_bypassed_substring(F: Features, cfg: Mapping, final: bool = True) ->
     # and those columns on the plateau (raised or not) within the cell noise: the worst
     # one's mean squared deviation from the plateau model, in cell-noise units (clipped at 5)
     model = np.where(col_raised[:, None, :], mean_raise[:, None, None], 0.0)
-    zc = np.clip((Xlo - model) / max(F.sig_cell, 1e-3), -5.0, 5.0)
+    # the yardstick of an edge column: cell noise, and the share of the plateau's raise that
+    # spreads into the column beside it (heat conducted across the cell gap, footprints a
+    # few centimetres off the cell grid): a large raise lends its neighbour a fraction of it
+    bleed = float(cfg["substring_edge_bleed"]) * np.nan_to_num(mean_raise, nan=0.0)
+    scale = np.sqrt(max(F.sig_cell, 1e-3) ** 2 + bleed * bleed)[:, None, None]
+    zc = np.clip((Xlo - model) / scale, -5.0, 5.0)
     col_chi2 = nanmax(np.where(edge_col, nanmean(zc * zc, axis=1), np.nan), axis=1)
     col_chi2 = np.nan_to_num(col_chi2, nan=0.0)
     hit &= ~(col_chi2 > float(cfg["substring_column_chi2_max"]))
