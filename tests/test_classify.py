@@ -1081,3 +1081,20 @@ def test_bypassed_substring_lending_heat_to_the_next_cell_column(rng, bleed, fou
     p.cm[i][:, nxt] += 0.15 * open_rise()
     an, _ = p.run(settings=_with(substring_edge_bleed=bleed))
     assert (found(an) == {i: "bypassed_substring"}) is found_it, an[["module_id", "defect"]]
+
+
+@pytest.mark.parametrize("row_min, expected", [(3, "open_module"), (2, "open_string")])
+def test_open_module_beside_a_warm_module_of_its_table_row(rng, row_min, expected):
+    # table polygons without strings: the table row stands in for the strings; an open module
+    # (eta * G / U warmer, pvlib Faiman) beside a healthy module that happens to run 0.55 of
+    # that warmer is one open module, not an open string of two (strings are many modules,
+    # common practice); [classify] open_string_row_min_modules = 2 would take the pair
+    p = Plant(rng, strings=None)
+    i, j = p.index(col=6), p.index(col=7)
+    p.open(i)
+    p.cm[j] += 0.55 * open_rise()
+    an, _ = p.run(settings=_with(open_string_row_min_modules=row_min))
+    if expected == "open_module":
+        assert found(an) == {i: "open_module"}, an[["module_id", "defect"]]
+    else:
+        assert found(an) == {i: "open_string", j: "open_string"}, an[["module_id", "defect"]]

@@ -188,6 +188,10 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
                 & (d_o <= float(cfg["open_ratio_max"]) * r))
     out = []
     min_len = int(cfg["open_string_min_modules"])
+    if not F.extra.get("is_string", False):
+        # a table row standing in for unknown strings: an open module beside a healthy module a
+        # spread warm would make a run of two
+        min_len = max(min_len, int(cfg["open_string_row_min_modules"]))
     for g in np.unique(groups[cand & (groups >= 0)]):
         idx = np.flatnonzero(groups == g)
         idx = idx[np.argsort(pos[idx], kind="stable")]
