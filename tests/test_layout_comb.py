@@ -34,13 +34,20 @@ def _table(rng, s, w, cols, rows, mod_w, glass, ground, dip):
     return t + rng.normal(0.0, 0.05, t.size)
 
 
+def _drawn_size(rng: np.random.Generator, cols_range: tuple[int, int],
+                rows_range: tuple[int, int]) -> tuple[int, int, float, float, float]:
+    """A random table: columns, rows, the module's foreshortened width [m] (tilt 10-35 deg),
+    the table's length and depth [m] (gaps between modules, none outside)."""
+    cols, rows = int(rng.integers(*cols_range)), int(rng.integers(*rows_range))
+    mod_w = LENGTH * math.cos(math.radians(rng.uniform(10, 35)))
+    return cols, rows, mod_w, cols * (WIDTH + GAP) - GAP, rows * (mod_w + GAP) - GAP
+
+
 def test_comb_counts_the_modules_of_a_table_a_seam_shows_shifted():
     rng = np.random.default_rng(SEED)
     gsd = 0.04
     for _ in range(6):
-        cols, rows = int(rng.integers(8, 16)), int(rng.integers(1, 4))
-        mod_w = LENGTH * math.cos(math.radians(rng.uniform(10, 35)))
-        length, depth = cols * (WIDTH + GAP) - GAP, rows * (mod_w + GAP) - GAP
+        cols, rows, mod_w, length, depth = _drawn_size(rng, (8, 16), (1, 4))
         glass = rng.uniform(30, 45)
         ground = glass + rng.choice([-1, 1]) * rng.uniform(0.5, 15)
         dip = rng.uniform(1.5, 4.0)
@@ -75,9 +82,7 @@ def test_comb_ends_at_the_table_and_not_at_the_next_table_about_one_pitch_beyond
     rng = np.random.default_rng(SEED + 2)
     gsd = 0.04
     for _ in range(6):
-        cols, rows = int(rng.integers(8, 16)), int(rng.integers(1, 4))
-        mod_w = LENGTH * math.cos(math.radians(rng.uniform(10, 35)))
-        length, depth = cols * (WIDTH + GAP) - GAP, rows * (mod_w + GAP) - GAP
+        cols, rows, mod_w, length, depth = _drawn_size(rng, (8, 16), (1, 4))
         glass = rng.uniform(30, 45)
         # ground warmer or cooler than the glass by more than the glass band of 3 K
         # ([layout_detect] level_tol_k: sunlit or shaded ground differs by more)
@@ -110,9 +115,7 @@ def test_lines_between_module_rows_show_the_drawn_frame_contrast_and_not_on_a_sh
     rng = np.random.default_rng(SEED + 1)
     gsd = 0.04
     for _ in range(6):
-        cols, rows = int(rng.integers(6, 14)), int(rng.integers(2, 5))
-        mod_w = LENGTH * math.cos(math.radians(rng.uniform(10, 35)))
-        length, depth = cols * (WIDTH + GAP) - GAP, rows * (mod_w + GAP) - GAP
+        cols, rows, mod_w, length, depth = _drawn_size(rng, (6, 14), (2, 5))
         glass, dip = rng.uniform(30, 45), rng.uniform(1.5, 4.0)
         n = int(length * depth / gsd ** 2 * 2)
         s = rng.uniform(0, length, n)
