@@ -131,3 +131,65 @@ def test_lines_between_module_rows_show_the_drawn_frame_contrast_and_not_on_a_sh
         shadow = glass - 8.0 + 3.0 * np.tanh((w - rng.uniform(0, depth)) / 0.3) + rng.normal(0, 0.05, n)
         assert _row_lines(s, w, shadow, cols, rows, WIDTH, mod_w, GAP, GAP, gsd, 0.15) < 1.0
         assert math.isnan(_row_lines(s, w, t, cols, 1, WIDTH, mod_w, GAP, GAP, gsd, 0.15))
+
+
+def _write_ortho(path, rng, cols, rows, mod_w, glass, ground, dip, gsd, origin, margin_m):
+    """A north-up GeoTIFF of one drawn table running east (pixel centres on a grid, NETD noise)."""
+    import rasterio
+    from rasterio.transform import from_origin
+
+    length, depth = cols * (WIDTH + GAP) - GAP, rows * (mod_w + GAP) - GAP
+    nx = int(math.ceil((length + 2 * margin_m) / gsd))
+    ny = int(math.ceil((depth + 2 * margin_m) / gsd))
+    x0, y_top = origin[0] - margin_m, origin[1] + depth + margin_m
+    cx = x0 + (np.arange(nx) + 0.5) * gsd
+    cy = y_top - (np.arange(ny) + 0.5) * gsd
+    xx, yy = np.meshgrid(cx, cy)
+    # s east from the table's west end, w south from its north (upper) edge
+    t = _table(rng, (xx - origin[0]).ravel(), (origin[1] + depth - yy).ravel(), cols, rows, mod_w, glass,
+               ground, dip).reshape(ny, nx)
+    with rasterio.open(path, "w", driver="GTiff", width=nx, height=ny, count=1, dtype="float32",
+                       crs="EPSG:32633", transform=from_origin(x0, y_top, gsd, gsd), nodata=-9999.0) as ds:
+        ds.write(t.astype(np.float32), 1)
+    return length, depth
+
+
+def test_a_table_longer_than_its_candidate_is_fitted_to_its_ends(tmp_path):
+    # the mosaic can see only part of a table (a seam or a shadow breaks it up): the fit must
+    # run on to the table's drawn ends, counting its modules (plain geometry of the drawing)
+    from pvscan.io.manifest import LayoutSpec, ModuleSpec
+    from pvscan.io.ortho import open_orthos
+    from pvscan.io.settings import load_pipeline, section
+    from pvscan.measure.layout_image.lattice import fit_table
+    from pvscan.measure.layout_image.segment import TableCandidate
+
+    rng = np.random.default_rng(SEED + 3)
+    cfg = dict(section(load_pipeline(), "layout_detect"))
+    gsd = 0.05
+    for k in range(3):
+        cols, rows = int(rng.integers(16, 26)), int(rng.integers(1, 3))
+        tilt = rng.uniform(10, 35)
+        mod_w = LENGTH * math.cos(math.radians(tilt))
+        glass = rng.uniform(30, 45)
+        # ground off the glass level by more than the glass band ([layout_detect] level_tol_k)
+        ground = glass + rng.choice([-1, 1]) * rng.uniform(5, 15)
+        origin = np.array([500000.0, 5000000.0])
+        path = tmp_path / f"t{k}.tif"
+        length, depth = _write_ortho(path, rng, cols, rows, mod_w, glass, ground, rng.uniform(1.5, 4.0), gsd,
+                                     origin, 3.0)
+        # a candidate over 30-50 % of the table, somewhere along it
+        part = rng.uniform(0.3, 0.5) * length
+        start = rng.uniform(0.05, 0.95 - part / length) * length
+        cand = TableCandidate(centre=origin + np.array([start + 0.5 * part, 0.5 * depth]),
+                              axis=np.array([1.0, 0.0]), length_m=part, depth_m=depth, level_c=glass,
+                              band_c=(glass - 1.0, glass + 1.0), energy_log_thr=0.0, ground_c=ground, area_px=1)
+        module = ModuleSpec(pmax_w=400.0, width_m=WIDTH, length_m=LENGTH, cells_across=6, cells_along=10,
+                            bypass_diodes=3)
+        layout = LayoutSpec(orientation="portrait", gap_m=GAP, tilt_deg=float(tilt), azimuth_deg=180.0)
+        with open_orthos(path) as orthos:
+            fit = fit_table(orthos, cand, module, layout, cfg)
+        assert fit is not None
+        assert (fit.cols, fit.rows) == (cols, rows), (fit.cols, fit.rows, cols, rows, start, part)
+        # the ends where they are drawn, within a pixel
+        assert abs(fit.origin[0] - origin[0]) <= gsd, (fit.origin, origin)
+        assert abs(fit.origin[0] + fit.length_m - origin[0] - length) <= gsd

@@ -258,6 +258,14 @@ def _size(extent: float, n: int, datasheet: float, gap: float, settings: dict) -
 def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, settings: dict) -> TableFit | None:
     """Refine a table candidate and fit its module lattice (see the module docstring).
 
+    The pixels are read around the candidate; a candidate shorter than its table (the mosaic
+    saw part of it) is fitted with its comb running to the end of that window. Then, when the
+    ground around the table is off the glass level by more than ``level_tol_k`` (so the comb
+    stops at the ground between two tables of a row, :func:`.periodic.comb_extent`), the
+    candidate is made longer by ``grow_m`` on each end beyond which glass goes on and the
+    table fitted again, up to ``grow_steps`` times, while the fit gains modules (same rows,
+    confidence not lower by more than 0.1).
+
     Parameters
     ----------
     orthos : OrthoSet
@@ -274,6 +282,33 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
     TableFit or None
         None when no lattice fits (no glass run at the candidate's centre).
     """
+    from dataclasses import replace
+
+    fit, ends = _fit_window(orthos, cand, module, layout, settings)
+    tol = float(settings["level_tol_k"])
+    stops = math.isfinite(cand.ground_c) and abs(cand.level_c - cand.ground_c) > tol
+    grow = float(settings["grow_m"])
+    for _ in range(int(settings["grow_steps"]) if stops else 0):
+        if fit is None or not any(ends) or any(fit.cut):
+            break
+        lo, hi = grow * ends[0], grow * ends[1]
+        # the grown candidate: the fitted table, longer on the ends where glass goes on
+        centre = fit.origin + 0.5 * fit.length_m * fit.axis + 0.5 * fit.depth_m * fit.across
+        grown = replace(cand, centre=centre + 0.5 * (hi - lo) * fit.axis, axis=fit.axis,
+                        length_m=fit.length_m + lo + hi, depth_m=fit.depth_m)
+        fit2, ends2 = _fit_window(orthos, grown, module, layout, settings)
+        if fit2 is None or fit2.cols <= fit.cols or fit2.rows != fit.rows or fit2.confidence < fit.confidence - 0.1:
+            break
+        fit, ends = fit2, ends2
+    return fit
+
+
+def _fit_window(orthos: Any, cand: TableCandidate, module: Any, layout: Any, settings: dict
+                ) -> tuple[TableFit | None, tuple[bool, bool]]:
+    """:func:`fit_table` on the pixels around one candidate; with whether glass goes on
+    beyond the fitted table's start and end along its axis (the band up to most of a module
+    pitch beyond the end, over the table's middle rows, within ``level_tol_k`` of the glass
+    level and nearer it than the ground's level)."""
     gsd = float(orthos.gsd_m)
     tol = float(settings["level_tol_k"])
     margin = float(settings["window_margin_m"])
@@ -281,7 +316,7 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
     x, y, t, _energy = _samples(orthos, cand.centre, half,
                                 0.5 * float(settings["texture_window_modules"]) * module.width_m)
     if x.size == 0:
-        return None
+        return None, (False, False)
     valid = np.isfinite(t)
     face = facing_vector(layout.azimuth_deg)
     centre = cand.centre.astype(float).copy()
@@ -317,11 +352,11 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
             s_lo, s_hi, c0, c1 = _extent(s[band_w], glass[band_w], valid[band_w], bin_m, close_m,
                                          -half, half)
             if not math.isfinite(s_lo):
-                return None
+                return None, (False, False)
             band_s = (s > s_lo + 0.3) & (s < s_hi - 0.3)
             w_lo, w_hi, c2, c3 = _extent(w[band_s], glass[band_s], valid[band_s], bin_m, close_m, -half, half)
             if not math.isfinite(w_lo):
-                return None
+                return None, (False, False)
         cut = (c0, c1, c2, c3)
         tv = np.where(valid, t, np.nan)
         ok = valid & band_s
@@ -370,8 +405,25 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
             orient, ds, dw, length, depth, comb_k = comb
             centre = centre + ds * axis + dw * across
             orientations = (orient,)
-    return _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band, cand, cut, module,
-                      layout, settings, gsd, orientations, comb_k)
+    fit = _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band, cand, cut, module,
+                     layout, settings, gsd, orientations, comb_k)
+    if fit is None:
+        return None, (False, False)
+    # the ends: the table goes on when the ground band beyond an end (up to most of a pitch:
+    # the next table of a row stands about a pitch away) is at the glass level
+    pitch = fit.module_s_m + fit.gap_s_m
+    s_f = (x - fit.origin[0]) * fit.axis[0] + (y - fit.origin[1]) * fit.axis[1]
+    w_f = (x - fit.origin[0]) * fit.across[0] + (y - fit.origin[1]) * fit.across[1]
+    rows_in = valid & (w_f > 0.2 * fit.depth_m) & (w_f < 0.8 * fit.depth_m)
+    ends = []
+    for beyond in (-s_f, s_f - fit.length_m):
+        sel = rows_in & (beyond > 0.15) & (beyond < 0.85 * pitch)
+        if sel.sum() < 16:
+            ends.append(False)
+            continue
+        mid = float(np.median(t[sel]))
+        ends.append(abs(mid - level) <= tol and abs(mid - level) < abs(mid - cand.ground_c))
+    return fit, (ends[0], ends[1])
 
 
 def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd, ground_c=math.nan):
