@@ -264,3 +264,47 @@ def test_cli_check_writes_findings_and_fixed_layout(clean_flight, tmp_path):
     # matched modules carry the drawing's ids (the simulator's TB<row>-<table>-R<r>-C<cc>)
     kept = fixed[fixed["source"] == "layout"]
     assert kept["module_id"].str.startswith("TB").all()
+
+
+def _lattice_fit(origin, axis, cols, rows, mod_w, gap=0.02, mod_s=1.038):
+    across = np.array([-axis[1], axis[0]])
+    length = cols * (mod_s + gap) - gap
+    depth = rows * (mod_w + gap) - gap
+    return TableFit(origin=origin, axis=axis, across=across, length_m=length, depth_m=depth, rows=rows, cols=cols,
+                    orientation="portrait", module_s_m=mod_s, module_w_m=mod_w, gap_s_m=gap, gap_w_m=gap,
+                    confidence=0.8, misfit=0.02, level_c=40.0, contrast_k=5.0, cut=(False,) * 4,
+                    status=np.full((rows, cols), "ok", dtype=object), glass=np.ones((rows, cols)))
+
+
+def test_two_fits_of_one_split_table_join_and_neighbouring_tables_do_not():
+    # reference: plane geometry of a drawn lattice (module 1.038 m, gaps 0.02 m, common practice
+    # for 60-cell modules); tables of a row stand about a pitch (~1 m) apart (common practice)
+    from pvscan.measure.layout_image.detect import _join_rows
+
+    rng = np.random.default_rng(SEED)
+    pitch = 1.038 + 0.02
+    for _ in range(10):
+        ang = rng.uniform(-math.pi / 4, math.pi / 4)
+        axis = np.array([math.cos(ang), math.sin(ang)])
+        across = np.array([-axis[1], axis[0]])
+        cols, rows = int(rng.integers(12, 30)), int(rng.integers(1, 4))
+        mod_w = 2.094 * math.cos(math.radians(rng.uniform(10, 40)))
+        origin = rng.uniform(0, 100, 2) + 5e5
+        # a shadow splits the table; each part fitted with up to two modules of the other
+        # (0 = the parts just meet) and a few millimetres of error
+        k = int(rng.integers(4, cols - 4))
+        over = int(rng.integers(0, 3))
+        err = rng.normal(0, 0.005, 4)
+        a = _lattice_fit(origin + err[0] * axis + err[1] * across, axis, k + over, rows, mod_w)
+        b = _lattice_fit(origin + (k * pitch + err[2]) * axis + err[3] * across, axis, cols - k, rows, mod_w)
+        got = _join_rows([b, a], 0.15)
+        assert len(got) == 1
+        j = got[0]
+        assert (j.cols, j.rows) == (cols, rows)
+        assert np.allclose(j.corners()[0, 0, 0], origin, atol=0.02)
+        assert np.allclose(j.corners()[-1, -1, 2], origin + (cols * pitch - 0.02) * axis + (rows * (mod_w + 0.02) - 0.02)
+                           * across, atol=0.02)
+        # the next table of the row, a metre beyond the end, and the next table row: apart
+        c = _lattice_fit(origin + (cols * pitch - 0.02 + rng.uniform(0.9, 1.1)) * axis, axis, cols, rows, mod_w)
+        d = _lattice_fit(origin + (rows * (mod_w + 0.02) + rng.uniform(2, 5)) * across, axis, cols, rows, mod_w)
+        assert len(_join_rows([j, c, d], 0.15)) == 3

@@ -285,30 +285,116 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
     from dataclasses import replace
 
     fit, ends = _fit_window(orthos, cand, module, layout, settings)
+    across_reach = None
+    min_conf = float(settings["min_confidence"])
+    if fit is None or fit.confidence < min_conf:
+        # no table on the candidate as a whole: it may hold a table and a region beside it at
+        # the glass level (a tracker row and its shadow); fit the strip of frame lines alone
+        strip = _comb_strip(orthos, cand, module, layout, settings)
+        if strip is not None:
+            # across, the comb stays near the strip (a quarter of a module width either side:
+            # the region beside it has a comb of its own)
+            across_reach = 0.25 * module.width_m
+            fit_s, ends_s = _fit_window(orthos, strip, module, layout, settings, across_reach)
+            if fit_s is not None and (fit is None or fit_s.confidence > fit.confidence):
+                fit, ends, cand = fit_s, ends_s, strip
     tol = float(settings["level_tol_k"])
     stops = math.isfinite(cand.ground_c) and abs(cand.level_c - cand.ground_c) > tol
     grow = float(settings["grow_m"])
     for _ in range(int(settings["grow_steps"]) if stops else 0):
-        if fit is None or not any(ends) or any(fit.cut):
+        if fit is None or not any(ends) or any(fit.cut) or fit.confidence < min_conf:
             break
         lo, hi = grow * ends[0], grow * ends[1]
         # the grown candidate: the fitted table, longer on the ends where glass goes on
         centre = fit.origin + 0.5 * fit.length_m * fit.axis + 0.5 * fit.depth_m * fit.across
         grown = replace(cand, centre=centre + 0.5 * (hi - lo) * fit.axis, axis=fit.axis,
                         length_m=fit.length_m + lo + hi, depth_m=fit.depth_m)
-        fit2, ends2 = _fit_window(orthos, grown, module, layout, settings)
+        fit2, ends2 = _fit_window(orthos, grown, module, layout, settings, across_reach)
         if fit2 is None or fit2.cols <= fit.cols or fit2.rows != fit.rows or fit2.confidence < fit.confidence - 0.1:
             break
         fit, ends = fit2, ends2
     return fit
 
 
-def _fit_window(orthos: Any, cand: TableCandidate, module: Any, layout: Any, settings: dict
-                ) -> tuple[TableFit | None, tuple[bool, bool]]:
+def _comb_strip(orthos: Any, cand: TableCandidate, module: Any, layout: Any, settings: dict
+                ) -> TableCandidate | None:
+    """The strip of a candidate across its axis that shows the frame lines of modules.
+
+    Per row of bins across the axis, the temperature profile along the axis folded on the
+    module pitch of either orientation: its dip below the row's median less its peak above
+    it [K] (frame lines are narrow cool lines; light through the gaps of a tracker's modules
+    onto its shadow makes narrow warm ones; ground carries neither). The run of rows above
+    half the largest score is the table. None when the strip is most of the candidate
+    (nothing to gain) or narrower than half a foreshortened module side.
+    """
+    from dataclasses import replace
+
+    gsd = float(orthos.gsd_m)
+    reach = float(settings["comb_reach_m"])
+    half = 0.5 * math.hypot(cand.length_m, cand.depth_m) + float(settings["window_margin_m"])
+    x, y, t, _ = _samples(orthos, cand.centre, half, gsd)
+    if x.size == 0:
+        return None
+    axis = cand.axis.astype(float)
+    across = np.array([-axis[1], axis[0]])
+    s = (x - cand.centre[0]) * axis[0] + (y - cand.centre[1]) * axis[1]
+    w = (x - cand.centre[0]) * across[0] + (y - cand.centre[1]) * across[1]
+    w_half = 0.5 * cand.depth_m + reach
+    sel = np.isfinite(t) & (np.abs(s) < 0.5 * cand.length_m) & (np.abs(w) < w_half)
+    if sel.sum() < 64:
+        return None
+    s, w, t = s[sel], w[sel], t[sel]
+    bin_m = gsd
+    nb = int(math.ceil(2 * w_half / bin_m))
+    k = np.clip(np.floor((w + w_half) / bin_m).astype(int), 0, nb - 1)
+    cnt = np.bincount(k, minlength=nb).astype(float)
+    amp = np.zeros(nb)
+    cos_t = math.cos(math.radians(layout.tilt_deg))
+    n_ph = 16
+    for mod_s in (module.width_m, module.length_m):
+        ph = np.floor(np.mod(s / (mod_s + float(layout.gap_m)), 1.0) * n_ph).astype(int)
+        kk = k * n_ph + np.clip(ph, 0, n_ph - 1)
+        c2 = np.bincount(kk, minlength=nb * n_ph).reshape(nb, n_ph)
+        fold = (np.bincount(kk, weights=t, minlength=nb * n_ph).reshape(nb, n_ph) / np.maximum(c2, 1))
+        fold = np.where(c2 > 0, fold, np.nan)
+        with np.errstate(invalid="ignore"):
+            import warnings
+
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore", RuntimeWarning)
+                med = np.nanmedian(fold, axis=1)
+                # frame lines are narrow cool lines (the dip below the row's median); light
+                # through the gaps of a tracker's modules onto its shadow, narrow warm ones
+                score = (med - np.nanmin(fold, axis=1)) - (np.nanmax(fold, axis=1) - med)
+        amp = np.maximum(amp, np.nan_to_num(score, nan=0.0))
+    amp[cnt < 8] = 0.0
+    from scipy import ndimage as ndi
+
+    amp = ndi.uniform_filter1d(amp, 3, mode="constant")
+    top = int(np.argmax(amp))
+    if amp[top] <= 0:
+        return None
+    on = amp >= 0.5 * amp[top]
+    on = _runs_closed(on, max(1, int(round(float(settings["close_m"]) / bin_m))))
+    a = b = top
+    while a > 0 and on[a - 1]:
+        a -= 1
+    while b < nb - 1 and on[b + 1]:
+        b += 1
+    lo, hi = -w_half + a * bin_m, -w_half + (b + 1) * bin_m
+    depth = hi - lo
+    if depth < min(module.width_m, module.length_m * cos_t) * 0.5 or depth > 0.8 * cand.depth_m:
+        return None
+    return replace(cand, centre=cand.centre + 0.5 * (lo + hi) * across, depth_m=depth)
+
+
+def _fit_window(orthos: Any, cand: TableCandidate, module: Any, layout: Any, settings: dict,
+                across_reach_m: float | None = None) -> tuple[TableFit | None, tuple[bool, bool]]:
     """:func:`fit_table` on the pixels around one candidate; with whether glass goes on
     beyond the fitted table's start and end along its axis (the band up to most of a module
     pitch beyond the end, over the table's middle rows, within ``level_tol_k`` of the glass
-    level and nearer it than the ground's level)."""
+    level and nearer it than the ground's level). The comb looks ``comb_reach_m`` beyond the
+    candidate across the axis, or ``across_reach_m`` [m] when given."""
     gsd = float(orthos.gsd_m)
     tol = float(settings["level_tol_k"])
     margin = float(settings["window_margin_m"])
@@ -340,7 +426,8 @@ def _fit_window(orthos: Any, cand: TableCandidate, module: Any, layout: Any, set
             level = _mode(t[inner], settings["level_bin_k"])
             band = glass_band(t[inner], level, settings["level_bin_k"], tol)
         glass = valid & (t >= band[0]) & (t <= band[1])
-        comb = _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd, cand.ground_c)
+        comb = _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd, cand.ground_c,
+                     across_reach_m)
         if comb is not None:
             # the frame-line comb: the table's extent whatever the ground's temperature
             _, ds, dw, ext_s, ext_w, comb_k = comb
@@ -400,7 +487,8 @@ def _fit_window(orthos: Any, cand: TableCandidate, module: Any, layout: Any, set
         across = -across
     orientations: tuple[str, ...] = ("portrait", "landscape")
     if not any(cut):
-        comb = _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd, cand.ground_c)
+        comb = _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd, cand.ground_c,
+                     across_reach_m)
         if comb is not None:
             orient, ds, dw, length, depth, comb_k = comb
             centre = centre + ds * axis + dw * across
@@ -426,7 +514,8 @@ def _fit_window(orthos: Any, cand: TableCandidate, module: Any, layout: Any, set
     return fit, (ends[0], ends[1])
 
 
-def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd, ground_c=math.nan):
+def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd, ground_c=math.nan,
+          across_reach_m=None):
     """Orientation, centre offset (along, across) [m] and extents [m] from the frame-line comb.
 
     Each orientation's comb is measured with each line looked for within ``line_shift_m``
@@ -443,13 +532,14 @@ def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings
     s = (x - centre[0]) * axis[0] + (y - centre[1]) * axis[1]
     w = (x - centre[0]) * across[0] + (y - centre[1]) * across[1]
     reach = float(settings["comb_reach_m"])
+    reach_w = reach if across_reach_m is None else float(across_reach_m)
 
     def run(orient: str, shift_m: float) -> Any:
         mod_s = module.width_m if orient == "portrait" else module.length_m
         mod_w = (module.length_m if orient == "portrait" else module.width_m) * cos_t
         lattice = (mod_w + gap * cos_t, gap * cos_t)
         return comb_extent(s, w, t, (-0.5 * length - reach, 0.5 * length + reach),
-                           (-0.5 * depth - reach, 0.5 * depth + reach), (-0.15 * depth, 0.15 * depth),
+                           (-0.5 * depth - reach_w, 0.5 * depth + reach_w), (-0.15 * depth, 0.15 * depth),
                            mod_s + gap, gsd, float(settings["dip_fraction"]), float(settings["close_m"]),
                            shift_m, lattice, float(settings["level_tol_k"]), ground_c)
 
