@@ -133,8 +133,10 @@ def test_lines_between_module_rows_show_the_drawn_frame_contrast_and_not_on_a_sh
         assert math.isnan(_row_lines(s, w, t, cols, 1, WIDTH, mod_w, GAP, GAP, gsd, 0.15))
 
 
-def _write_ortho(path, rng, cols, rows, mod_w, glass, ground, dip, gsd, origin, margin_m):
-    """A north-up GeoTIFF of one drawn table running east (pixel centres on a grid, NETD noise)."""
+def _write_ortho(path, rng, cols, rows, mod_w, glass, ground, dip, gsd, origin, margin_m, beside=None):
+    """A north-up GeoTIFF of one drawn table running east (pixel centres on a grid, NETD noise);
+    ``beside(s, w, t)`` may change the scene (``s`` east from the table's west end, ``w`` south
+    from its north edge [m])."""
     import rasterio
     from rasterio.transform import from_origin
 
@@ -147,7 +149,10 @@ def _write_ortho(path, rng, cols, rows, mod_w, glass, ground, dip, gsd, origin, 
     xx, yy = np.meshgrid(cx, cy)
     # s east from the table's west end, w south from its north (upper) edge
     t = _table(rng, (xx - origin[0]).ravel(), (origin[1] + depth - yy).ravel(), cols, rows, mod_w, glass,
-               ground, dip).reshape(ny, nx)
+               ground, dip)
+    if beside is not None:
+        t = beside((xx - origin[0]).ravel(), (origin[1] + depth - yy).ravel(), t)
+    t = t.reshape(ny, nx)
     with rasterio.open(path, "w", driver="GTiff", width=nx, height=ny, count=1, dtype="float32",
                        crs="EPSG:32633", transform=from_origin(x0, y_top, gsd, gsd), nodata=-9999.0) as ds:
         ds.write(t.astype(np.float32), 1)
@@ -193,3 +198,56 @@ def test_a_table_longer_than_its_candidate_is_fitted_to_its_ends(tmp_path):
         # the ends where they are drawn, within a pixel
         assert abs(fit.origin[0] - origin[0]) <= gsd, (fit.origin, origin)
         assert abs(fit.origin[0] + fit.length_m - origin[0] - length) <= gsd
+
+
+def test_a_tracker_row_merged_with_its_shadow_is_fitted_on_the_row(tmp_path):
+    # a tracker row (one module row, portrait, steep tilt) and its shadow beside it at about the
+    # glass level, with warm lines of sunlight through the gaps between the modules, form one
+    # candidate; the fit must count the row's drawn modules, one row, the row where it is drawn
+    from pvscan.io.manifest import LayoutSpec, ModuleSpec
+    from pvscan.io.ortho import open_orthos
+    from pvscan.io.settings import load_pipeline, section
+    from pvscan.measure.layout_image.lattice import fit_table
+    from pvscan.measure.layout_image.segment import TableCandidate
+
+    rng = np.random.default_rng(SEED + 4)
+    cfg = dict(section(load_pipeline(), "layout_detect"))
+    gsd = 0.05
+    module = ModuleSpec(pmax_w=400.0, width_m=WIDTH, length_m=LENGTH, cells_across=6, cells_along=10,
+                        bypass_diodes=3)
+    for k in range(3):
+        cols = int(rng.integers(10, 16))
+        tilt = rng.uniform(45, 55)
+        mod_w = LENGTH * math.cos(math.radians(tilt))
+        glass = rng.uniform(10, 20)
+        ground = glass + rng.uniform(15, 25)  # sunlit ground far warmer than the glass
+        shadow_w = rng.uniform(2.0, 3.0)  # the shadow's width beside the row [m]
+        # where the sunlight through the gaps falls along the row: near the gaps' places (the sun
+        # about across the row, as over a tracker's row in the morning or afternoon)
+        shift = rng.uniform(-0.2, 0.2)
+
+        def beside(s, w, t):
+            in_shadow = (w < 0) & (w > -shadow_w) & (s > 0) & (s < cols * (WIDTH + GAP))
+            lit = in_shadow & (np.mod(s - shift, WIDTH + GAP) < 0.04)
+            out = np.where(in_shadow, glass + rng.uniform(-1.0, 1.0), t)
+            return np.where(lit, ground - 2.0, out)
+
+        origin = np.array([500000.0, 5000000.0])
+        path = tmp_path / f"r{k}.tif"
+        length, depth = _write_ortho(path, rng, cols, 1, mod_w, glass, ground, rng.uniform(1.5, 3.0), gsd, origin,
+                                     4.0, beside)
+        # the candidate: the row and its shadow (north of the row, w < 0)
+        cand = TableCandidate(centre=origin + np.array([0.5 * length, depth - 0.5 * (depth + shadow_w)]) +
+                              np.array([0.0, shadow_w]), axis=np.array([1.0, 0.0]), length_m=length,
+                              depth_m=depth + shadow_w, level_c=glass, band_c=(glass - 1.0, glass + 1.0),
+                              energy_log_thr=0.0, ground_c=ground, area_px=1)
+        layout = LayoutSpec(orientation="portrait", gap_m=GAP, tilt_deg=float(tilt), azimuth_deg=180.0)
+        with open_orthos(path) as orthos:
+            fit = fit_table(orthos, cand, module, layout, cfg)
+        assert fit is not None and fit.confidence >= float(cfg["min_confidence"])
+        assert (fit.cols, fit.rows, fit.orientation) == (cols, 1, "portrait"), (fit.cols, fit.rows, fit.orientation)
+        # the row where it is drawn: its north edge at the origin's northing + depth, within two
+        # pixels (against a shadow at the glass level that edge is seen by the comb alone)
+        north = max(fit.origin[1], fit.origin[1] + fit.depth_m * fit.across[1])
+        assert abs(north - (origin[1] + depth)) <= 2 * gsd, (north, origin[1] + depth)
+        assert abs(fit.origin[0] - origin[0]) <= gsd

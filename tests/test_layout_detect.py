@@ -282,29 +282,35 @@ def test_two_fits_of_one_split_table_join_and_neighbouring_tables_do_not():
     from pvscan.measure.layout_image.detect import _join_rows
 
     rng = np.random.default_rng(SEED)
-    pitch = 1.038 + 0.02
-    for _ in range(10):
+    for i in range(10):
         ang = rng.uniform(-math.pi / 4, math.pi / 4)
         axis = np.array([math.cos(ang), math.sin(ang)])
         across = np.array([-axis[1], axis[0]])
         cols, rows = int(rng.integers(12, 30)), int(rng.integers(1, 4))
-        mod_w = 2.094 * math.cos(math.radians(rng.uniform(10, 40)))
+        # portrait and landscape modules in turn (module 1.038 x 2.094 m)
+        mod_s, mod_long = (1.038, 2.094) if i % 2 == 0 else (2.094, 1.038)
+        mod_w = mod_long * math.cos(math.radians(rng.uniform(10, 40)))
+        pitch = mod_s + 0.02
         origin = rng.uniform(0, 100, 2) + 5e5
         # a shadow splits the table; each part fitted with up to two modules of the other
         # (0 = the parts just meet) and a few millimetres of error
         k = int(rng.integers(4, cols - 4))
         over = int(rng.integers(0, 3))
         err = rng.normal(0, 0.005, 4)
-        a = _lattice_fit(origin + err[0] * axis + err[1] * across, axis, k + over, rows, mod_w)
-        b = _lattice_fit(origin + (k * pitch + err[2]) * axis + err[3] * across, axis, cols - k, rows, mod_w)
-        got = _join_rows([b, a], 0.15)
+        a = _lattice_fit(origin + err[0] * axis + err[1] * across, axis, k + over, rows, mod_w, mod_s=mod_s)
+        b = _lattice_fit(origin + (k * pitch + err[2]) * axis + err[3] * across, axis, cols - k, rows, mod_w,
+                         mod_s=mod_s)
+        got = _join_rows([b, a], 0.15, 0.3)
         assert len(got) == 1
         j = got[0]
         assert (j.cols, j.rows) == (cols, rows)
         assert np.allclose(j.corners()[0, 0, 0], origin, atol=0.02)
         assert np.allclose(j.corners()[-1, -1, 2], origin + (cols * pitch - 0.02) * axis + (rows * (mod_w + 0.02) - 0.02)
                            * across, atol=0.02)
-        # the next table of the row, a metre beyond the end, and the next table row: apart
-        c = _lattice_fit(origin + (cols * pitch - 0.02 + rng.uniform(0.9, 1.1)) * axis, axis, cols, rows, mod_w)
-        d = _lattice_fit(origin + (rows * (mod_w + 0.02) + rng.uniform(2, 5)) * across, axis, cols, rows, mod_w)
-        assert len(_join_rows([j, c, d], 0.15)) == 3
+        # the next table of the row, a metre beyond the end, and the next table row: apart (also
+        # for landscape modules, whose half pitch is more than the metre between tables)
+        c = _lattice_fit(origin + (cols * pitch - 0.02 + rng.uniform(0.9, 1.1)) * axis, axis, cols, rows, mod_w,
+                         mod_s=mod_s)
+        d = _lattice_fit(origin + (rows * (mod_w + 0.02) + rng.uniform(2, 5)) * across, axis, cols, rows, mod_w,
+                         mod_s=mod_s)
+        assert len(_join_rows([j, c, d], 0.15, 0.3)) == 3

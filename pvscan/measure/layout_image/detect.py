@@ -137,14 +137,14 @@ def _remainders(cand: Any, fit: TableFit, module_width_m: float) -> list[Any]:
     return out
 
 
-def _joined(f: TableFit, g: TableFit, across_tol_m: float) -> TableFit | None:
+def _joined(f: TableFit, g: TableFit, across_tol_m: float, gap_m: float) -> TableFit | None:
     """One table from two fits of one row of modules, or None when they are not that.
 
     A shadow or a seam across a table can split it into two candidates, each fitted to its
     part; the parts lie on one lattice: same orientation, rows, module size and axis, the
-    same line across (within ``across_tol_m``), and along the axis they overlap or leave less
-    than half a pitch between them (tables of a row stand about a pitch apart, common
-    practice). The larger fit's lattice is run on, whole pitches, over the other's extent;
+    same line across (within ``across_tol_m``), and along the axis they overlap or leave at
+    most ``gap_m`` between them (tables of a row stand about a metre apart, common practice:
+    two tables are never joined). The larger fit's lattice is run on, whole pitches, over the other's extent;
     the modules it adds keep the other fit's status and glass share.
     """
     from dataclasses import replace
@@ -162,7 +162,7 @@ def _joined(f: TableFit, g: TableFit, across_tol_m: float) -> TableFit | None:
         return None
     s0 = float((g_start - f.origin) @ f.axis)
     s1 = s0 + g.length_m * float(g_axis @ f.axis)
-    if s0 > f.length_m + 0.5 * pitch or s1 < -0.5 * pitch or (s0 >= -0.5 * pitch and s1 <= f.length_m + 0.5 * pitch):
+    if s0 > f.length_m + gap_m or s1 < -gap_m or (s0 >= -0.5 * pitch and s1 <= f.length_m + 0.5 * pitch):
         return None  # apart, or within the larger one (the overlap rule's case)
     before = max(0, int(round(-s0 / pitch)))
     after = max(0, int(round((s1 - f.length_m) / pitch)))
@@ -187,7 +187,7 @@ def _joined(f: TableFit, g: TableFit, across_tol_m: float) -> TableFit | None:
                    status=status, glass=glass)
 
 
-def _join_rows(fits: list[TableFit], across_tol_m: float) -> list[TableFit]:
+def _join_rows(fits: list[TableFit], across_tol_m: float, gap_m: float) -> list[TableFit]:
     """Fits of one table's parts joined (:func:`_joined`) until no two join."""
     out = list(fits)
     changed = True
@@ -195,7 +195,7 @@ def _join_rows(fits: list[TableFit], across_tol_m: float) -> list[TableFit]:
         changed = False
         for i in range(len(out)):
             for j in range(i + 1, len(out)):
-                m = _joined(out[i], out[j], across_tol_m)
+                m = _joined(out[i], out[j], across_tol_m, gap_m)
                 if m is not None:
                     out = [f for k, f in enumerate(out) if k not in (i, j)] + [m]
                     changed = True
@@ -313,7 +313,7 @@ def detect_layout(orthos: Any, module: Any, layout: Any, settings: Any = None, p
     for f in fits:
         if not any(_overlaps(g, f, float(cfg["overlap_share"])) for g in kept):
             kept.append(f)
-    kept = _join_rows(kept, float(cfg["join_across_m"]))
+    kept = _join_rows(kept, float(cfg["join_across_m"]), float(cfg["join_gap_m"]))
     if not kept:
         raise LayoutError(f"{orthos.tiles[0].path}: no table of modules found in the ortho "
                           f"(module {module.width_m} x {module.length_m} m, tilt {layout.tilt_deg} deg)")
