@@ -161,7 +161,8 @@ def _write_ortho(path, rng, cols, rows, mod_w, glass, ground, dip, gsd, origin, 
 
 def test_a_table_longer_than_its_candidate_is_fitted_to_its_ends(tmp_path):
     # the mosaic can see only part of a table (a seam or a shadow breaks it up): the fit must
-    # run on to the table's drawn ends, counting its modules (plain geometry of the drawing)
+    # run on to the table's drawn ends, counting its modules (plain geometry of the drawing),
+    # and stop there, before the next tables of its row
     from pvscan.io.manifest import LayoutSpec, ModuleSpec
     from pvscan.io.ortho import open_orthos
     from pvscan.io.settings import load_pipeline, section
@@ -180,8 +181,20 @@ def test_a_table_longer_than_its_candidate_is_fitted_to_its_ends(tmp_path):
         ground = glass + rng.choice([-1, 1]) * rng.uniform(5, 15)
         origin = np.array([500000.0, 5000000.0])
         path = tmp_path / f"t{k}.tif"
-        length, depth = _write_ortho(path, rng, cols, rows, mod_w, glass, ground, rng.uniform(1.5, 4.0), gsd,
-                                     origin, 3.0)
+        dip = rng.uniform(1.5, 4.0)
+        # the tables before and after it in the row, about a metre away (common practice)
+        between = rng.uniform(0.9, 1.1, 2)
+        full = cols * (WIDTH + GAP) - GAP
+
+        def beside(s, w, t):
+            before, after = s < -between[0], s > full + between[1]
+            t = t.copy()
+            t[before] = _table(rng, s[before] + between[0] + full, w[before], cols, rows, mod_w, glass, ground, dip)
+            t[after] = _table(rng, s[after] - between[1] - full, w[after], cols, rows, mod_w, glass, ground, dip)
+            return t
+
+        length, depth = _write_ortho(path, rng, cols, rows, mod_w, glass, ground, dip, gsd, origin, full + 3.0,
+                                     beside)
         # a candidate over 30-50 % of the table, somewhere along it
         part = rng.uniform(0.3, 0.5) * length
         start = rng.uniform(0.05, 0.95 - part / length) * length
