@@ -159,6 +159,31 @@ def _write_ortho(path, rng, cols, rows, mod_w, glass, ground, dip, gsd, origin, 
     return length, depth
 
 
+def _neighbours(rng, between, full, drawn):
+    """The scene changed to hold the tables before and after the drawn one, ``between`` [m]
+    away; ``drawn`` = (cols, rows, mod_w, glass, ground, dip) of the drawn table."""
+
+    def beside(s, w, t):
+        before, after = s < -between[0], s > full + between[1]
+        t = t.copy()
+        t[before] = _table(rng, s[before] + between[0] + full, w[before], *drawn)
+        t[after] = _table(rng, s[after] - between[1] - full, w[after], *drawn)
+        return t
+
+    return beside
+
+
+def _shadow_beside(rng, shadow_w, shadow, length):
+    """The scene changed to hold a shadow ``shadow_w`` [m] wide north of the drawn row, at
+    ``shadow`` [degC]."""
+
+    def beside(s, w, t):
+        in_shadow = (w < 0) & (w > -shadow_w) & (s > 0) & (s < length)
+        return np.where(in_shadow, shadow + rng.normal(0.0, 0.05, s.size), t)
+
+    return beside
+
+
 def test_a_table_longer_than_its_candidate_is_fitted_to_its_ends(tmp_path):
     # the mosaic can see only part of a table (a seam or a shadow breaks it up): the fit must
     # run on to the table's drawn ends, counting its modules (plain geometry of the drawing),
@@ -183,16 +208,8 @@ def test_a_table_longer_than_its_candidate_is_fitted_to_its_ends(tmp_path):
         path = tmp_path / f"t{k}.tif"
         dip = rng.uniform(1.5, 4.0)
         # the tables before and after it in the row, about a metre away (common practice)
-        between = rng.uniform(0.9, 1.1, 2)
         full = cols * (WIDTH + GAP) - GAP
-
-        def beside(s, w, t):
-            before, after = s < -between[0], s > full + between[1]
-            t = t.copy()
-            t[before] = _table(rng, s[before] + between[0] + full, w[before], cols, rows, mod_w, glass, ground, dip)
-            t[after] = _table(rng, s[after] - between[1] - full, w[after], cols, rows, mod_w, glass, ground, dip)
-            return t
-
+        beside = _neighbours(rng, rng.uniform(0.9, 1.1, 2), full, (cols, rows, mod_w, glass, ground, dip))
         length, depth = _write_ortho(path, rng, cols, rows, mod_w, glass, ground, dip, gsd, origin, full + 3.0,
                                      beside)
         # a candidate over 30-50 % of the table, somewhere along it
@@ -236,10 +253,7 @@ def test_a_tracker_row_merged_with_its_shadow_is_fitted_on_the_row(tmp_path):
         ground = glass + rng.uniform(15, 25)  # sunlit ground far warmer than the glass
         shadow_w = rng.uniform(2.0, 3.0)  # the shadow's width beside the row [m]
         shadow = glass + rng.uniform(-1.0, 1.0)  # shaded ground within the glass band of 3 K
-
-        def beside(s, w, t):
-            in_shadow = (w < 0) & (w > -shadow_w) & (s > 0) & (s < cols * (WIDTH + GAP))
-            return np.where(in_shadow, shadow + rng.normal(0.0, 0.05, s.size), t)
+        beside = _shadow_beside(rng, shadow_w, shadow, cols * (WIDTH + GAP))
 
         origin = np.array([500000.0, 5000000.0])
         path = tmp_path / f"r{k}.tif"

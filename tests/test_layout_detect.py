@@ -305,8 +305,8 @@ def test_two_fits_of_one_split_table_join_and_neighbouring_tables_do_not():
         j = got[0]
         assert (j.cols, j.rows) == (cols, rows)
         assert np.allclose(j.corners()[0, 0, 0], origin, atol=0.02)
-        assert np.allclose(j.corners()[-1, -1, 2], origin + (cols * pitch - 0.02) * axis + (rows * (mod_w + 0.02) - 0.02)
-                           * across, atol=0.02)
+        far = origin + (cols * pitch - 0.02) * axis + (rows * (mod_w + 0.02) - 0.02) * across
+        assert np.allclose(j.corners()[-1, -1, 2], far, atol=0.02)
         # the next table of the row, a metre beyond the end, and the next table row: apart (also
         # for landscape modules, whose half pitch is more than the metre between tables)
         c = _lattice_fit(origin + (cols * pitch - 0.02 + rng.uniform(0.9, 1.1)) * axis, axis, cols, rows, mod_w,
