@@ -314,3 +314,30 @@ def test_two_fits_of_one_split_table_join_and_neighbouring_tables_do_not():
         d = _lattice_fit(origin + (rows * (mod_w + 0.02) + rng.uniform(2, 5)) * across, axis, cols, rows, mod_w,
                          mod_s=mod_s)
         assert len(_join_rows([j, c, d], 0.15, 0.3)) == 3
+
+
+def test_a_part_overlapping_a_larger_fit_of_its_table_adds_its_modules():
+    # reference: plane geometry of a drawn lattice; a table fitted as two parts on one lattice
+    # that overlap by more than the overlap rule's share of the smaller one (the same table
+    # found twice, in part): the plant keeps the whole table, not only the larger part
+    from pvscan.io.settings import load_pipeline, section
+    from pvscan.measure.layout_image.detect import _combine
+
+    cfg = dict(section(load_pipeline(), "layout_detect"))
+    rng = np.random.default_rng(SEED + 1)
+    pitch = 2.094 + 0.02  # landscape modules along the table
+    for _ in range(6):
+        ang = rng.uniform(-math.pi / 4, math.pi / 4)
+        axis = np.array([math.cos(ang), math.sin(ang)])
+        cols, rows = int(rng.integers(8, 16)), int(rng.integers(2, 5))
+        mod_w = 1.038 * math.cos(math.radians(rng.uniform(10, 35)))
+        origin = rng.uniform(0, 100, 2) + 5e5
+        small = int(rng.integers(3, 5))
+        over = small - 1  # the part shares all but one of its columns with the larger one
+        big = _lattice_fit(origin, axis, cols - 1, rows, mod_w, mod_s=2.094)
+        part = _lattice_fit(origin + (cols - small) * pitch * axis, axis, small, rows, mod_w, mod_s=2.094)
+        assert _overlaps(big, part, float(cfg["overlap_share"]))  # the case the overlap rule sees
+        assert over >= 2
+        got = _combine([big, part], cfg)
+        assert len(got) == 1 and (got[0].cols, got[0].rows) == (cols, rows)
+        assert np.allclose(got[0].origin, origin, atol=1e-6)

@@ -205,6 +205,23 @@ def _join_rows(fits: list[TableFit], across_tol_m: float, gap_m: float) -> list[
     return out
 
 
+def _combine(fits: list[TableFit], cfg: dict) -> list[TableFit]:
+    """The plant's tables from all fits: those consistent with the plant (:func:`_consistent`),
+    parts of one row joined (:func:`_join_rows`; before the overlap rule, which would keep
+    the larger of two overlapping parts and lose the rest of the table), then of the fits
+    covering each other by more than ``overlap_share`` the one with the larger confidence x
+    sqrt(modules) (the same table found twice: a part is fitted on fewer frame lines), and
+    the parts joined again."""
+    join = (float(cfg["join_across_m"]), float(cfg["join_gap_m"]))
+    fits = _join_rows(_consistent(fits, float(cfg["plant_contrast_share"])), *join)
+    fits.sort(key=lambda f: -f.confidence * math.sqrt(f.rows * f.cols))
+    kept: list[TableFit] = []
+    for f in fits:
+        if not any(_overlaps(g, f, float(cfg["overlap_share"])) for g in kept):
+            kept.append(f)
+    return _join_rows(kept, *join)
+
+
 def _order(fits: list[TableFit], azimuth_deg: float) -> list[tuple[int, int, TableFit]]:
     """(table row, table, fit) numbered as the module docstring says."""
     if not fits:
@@ -305,15 +322,7 @@ def detect_layout(orthos: Any, module: Any, layout: Any, settings: Any = None, p
                      fit.confidence, fit.misfit)
             continue
         fits.append(fit)
-    fits = _consistent(fits, float(cfg["plant_contrast_share"]))
-    # the same table found twice (two candidates of one table): keep the more confident
-    # (a bigger table wins over a confident part of it: a part is fitted on fewer frame lines)
-    fits.sort(key=lambda f: -f.confidence * math.sqrt(f.rows * f.cols))
-    kept: list[TableFit] = []
-    for f in fits:
-        if not any(_overlaps(g, f, float(cfg["overlap_share"])) for g in kept):
-            kept.append(f)
-    kept = _join_rows(kept, float(cfg["join_across_m"]), float(cfg["join_gap_m"]))
+    kept = _combine(fits, cfg)
     if not kept:
         raise LayoutError(f"{orthos.tiles[0].path}: no table of modules found in the ortho "
                           f"(module {module.width_m} x {module.length_m} m, tilt {layout.tilt_deg} deg)")
