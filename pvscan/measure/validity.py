@@ -383,13 +383,53 @@ def string_reference_check(evidence: Mapping[str, Any], settings: Mapping[str, A
     return c
 
 
+def row_cluster_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> Check:
+    """``row_cluster``: -log10 of the chance that the densest stretch of a table row holds as
+    many findings of faults of single modules as it does, were they independent from module to
+    module at the flight's own rate (binomial, Bonferroni over every stretch; at most
+    ``[validity] max_row_cluster_score``), as the classification measured it
+    (``row_cluster_score``).
+
+    Faults of cells, bypass diodes and junction boxes strike module by module; findings that
+    crowd a stretch of a row follow an image artefact along it (a mosaic seam running through
+    the modules, a reflection), and the findings of the flight are then not measured. Unknown
+    (passes) when the classification measured nothing.
+    """
+    st = _validity_settings(settings)
+    lim = float(st["max_row_cluster_score"])
+    value = _finite(evidence.get("row_cluster_score"))
+    mods = list(evidence.get("row_cluster_modules") or [])
+    k = int(evidence.get("row_cluster_findings") or 0)
+    rate = _finite(evidence.get("row_cluster_rate"))
+    if value is None:
+        msg = "row cluster: unknown (no findings measured)"
+    elif not mods:
+        msg = (f"row cluster: findings of single modules do not crowd along any table row "
+               f"(score {value:.2f}; at most {lim:g})")
+    else:
+        where = mods[0] if len(mods) == 1 else f"{mods[0]} .. {mods[-1]}"
+        msg = (f"row cluster: {k} of {len(mods)} modules of one table row ({where}) hold findings of single "
+               f"modules at a flight rate of {100.0 * (rate or 0.0):.1f} %: a chance of 1 in "
+               f"{10 ** min(value, 99.0):,.0f} anywhere on the flight (score {value:.2f}; at most {lim:g})")
+        if value > lim:
+            msg += (": the findings follow an image artefact along the row (a mosaic seam, a reflection); "
+                    "check the ortho there (failed)")
+    c = _check("row_cluster", value, lim, "max", "", "binomial chance, Bonferroni (pvscan.diagnose.classify)",
+               message=msg)
+    c.update({"modules": mods, "findings": k, "rate": rate})
+    return c
+
+
 def evidence_checks(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> list[Check]:
     """The checks of what the classification measured about the flight as a whole
-    (:attr:`pvscan.diagnose.results.Diagnosis.evidence`): ``string_reference``. Empty when
-    there is no evidence (no module classified)."""
+    (:attr:`pvscan.diagnose.results.Diagnosis.evidence`): ``string_reference`` and
+    ``row_cluster``. Empty when there is no evidence (no module classified)."""
     if not evidence:
         return []
-    return [string_reference_check(evidence, settings)]
+    checks = [string_reference_check(evidence, settings)]
+    if "row_cluster_score" in evidence:
+        checks.append(row_cluster_check(evidence, settings))
+    return checks
 
 
 def with_checks(validity: Validity, checks: Iterable[Check], settings: Mapping[str, Any] | None = None) -> Validity:
