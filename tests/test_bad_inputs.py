@@ -42,6 +42,7 @@ import numpy as np
 import pytest
 import rasterio
 from click.testing import CliRunner
+from conftest import test_seed
 from pyproj import Transformer
 from rasterio.transform import Affine
 
@@ -49,7 +50,7 @@ from pvscan.cli.main import cli
 from pvscan.pipeline import inspect_flight
 from pvscan.simulate.writers import toml_dumps
 
-SEED = int(os.environ.get("PVSCAN_TEST_SEED", "20260614"))
+SEED = test_seed()
 SCENARIOS = Path(__file__).parent / "scenarios"
 #: The simulated flights every case starts from: a fixed-tilt field with one anomaly of every
 #: class (open string and PID included), and tracker rows with a weather series and frames.

@@ -2,17 +2,17 @@
 from __future__ import annotations
 
 import logging
-import os
 import re
 import warnings
 
 import pytest
 from click.testing import CliRunner
+from conftest import test_seed
 
 from pvscan.cli.main import cli, hoist_verbosity
 from pvscan.errors import RegistrationWarning, ValidityWarning
 
-SEED = int(os.environ.get("PVSCAN_TEST_SEED", "20260614"))
+SEED = test_seed()
 
 
 def run(args):

@@ -3,10 +3,10 @@ start time), unless told --force; small simulated flights of invented sites."""
 from __future__ import annotations
 
 import json
-import os
 
 import pytest
 from click.testing import CliRunner
+from conftest import test_seed
 
 from pvscan.cli.main import cli
 from pvscan.errors import MismatchError
@@ -14,7 +14,7 @@ from pvscan.evaluate import evaluate
 from pvscan.pipeline import inspect_flight
 from pvscan.simulate import simulate_flight
 
-SEED = int(os.environ.get("PVSCAN_TEST_SEED", "20260614"))
+SEED = test_seed()
 
 
 def _scenario(name, start="2026-06-14T10:40:00+02:00"):

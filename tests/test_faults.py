@@ -17,13 +17,14 @@ import time
 from pathlib import Path
 
 import pytest
+from conftest import test_seed
 
 from pvscan.errors import OutputError
 from pvscan.io.locking import try_lock
 from pvscan.io.outputs import clean_stale_staging, staging_dir
 from pvscan.simulate import simulate_flight
 
-SEED = int(os.environ.get("PVSCAN_TEST_SEED", "20260614"))
+SEED = test_seed()
 PVSCAN = [sys.executable, "-m", "pvscan.cli.main"]
 ORDER = ["modules.geojson", "anomalies.geojson", "workorders.csv", "workorders.gpx", "pvscan.gpkg", "summary.json",
          "report.html"]

@@ -10,7 +10,6 @@ the form `pvscan inspect` writes them (an invented site, 1,200 modules each).
 from __future__ import annotations
 
 import json
-import os
 import sqlite3
 import subprocess
 import sys
@@ -19,10 +18,11 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from conftest import test_seed
 
 from pvscan import history as H
 
-SEED = int(os.environ.get("PVSCAN_TEST_SEED", "20260614"))
+SEED = test_seed()
 N_MODULES = 4000
 LON0, LAT0 = 13.40, 52.50  # invented site
 DLON, DLAT = 1.5e-5, 3.0e-5  # about 1 m x 3 m [deg]

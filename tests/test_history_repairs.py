@@ -4,18 +4,18 @@ module as `persists_after_repair`, first (library, CLI and schema)."""
 from __future__ import annotations
 
 import json
-import os
 import shutil
 import warnings
 
 import pytest
 from click.testing import CliRunner
+from conftest import test_seed
 
 from pvscan.cli.main import cli
 from pvscan.errors import RegistrationWarning, ValidityWarning
 from pvscan.io.resources import load_schema, schema_errors
 
-SEED = int(os.environ.get("PVSCAN_TEST_SEED", "20260614"))
+SEED = test_seed()
 
 
 def run(args):

@@ -9,14 +9,14 @@ grid), with the NETD of a microbolometer (0.05 K, common practice).
 from __future__ import annotations
 
 import math
-import os
 
 import numpy as np
+from conftest import test_seed
 
 from pvscan.measure.layout_image.lattice import _row_lines
 from pvscan.measure.layout_image.periodic import comb_extent
 
-SEED = int(os.environ.get("PVSCAN_TEST_SEED", "20260614"))
+SEED = test_seed()
 WIDTH, LENGTH, GAP = 1.038, 2.094, 0.02
 FRAME = 0.035  # frame width seen from above [m] (common practice: 30-40 mm frames)
 

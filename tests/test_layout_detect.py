@@ -8,11 +8,11 @@ trigonometry for the foreshortened module footprint (``length * cos(tilt)``).
 from __future__ import annotations
 
 import math
-import os
 
 import numpy as np
 import pytest
 import shapely
+from conftest import test_seed
 from scipy.special import erf
 
 from pvscan.measure.layout_image.check import check_layout, corrected_layout
@@ -20,7 +20,7 @@ from pvscan.measure.layout_image.detect import _consistent, _overlaps
 from pvscan.measure.layout_image.lattice import TableFit, _half_crossing
 from pvscan.measure.layout_image.segment import _min_rect
 
-SEED = int(os.environ.get("PVSCAN_TEST_SEED", "20260614"))
+SEED = test_seed()
 
 
 def test_min_rect_matches_shapely_oriented_envelope():

@@ -6,18 +6,18 @@ hypot(dx, dy) from where it was, so the corner error of a shifted copy is known 
 from __future__ import annotations
 
 import json
-import os
 
 import geopandas as gpd
 import numpy as np
 import pytest
 import shapely
 from click.testing import CliRunner
+from conftest import test_seed
 
 from pvscan.cli.main import cli
 from pvscan.evaluate import evaluate_layout
 
-SEED = int(os.environ.get("PVSCAN_TEST_SEED", "20260614"))
+SEED = test_seed()
 
 
 def _grid(n_rows, n_cols, x0=500000.0, y0=5700000.0):

@@ -8,7 +8,6 @@ from __future__ import annotations
 import csv
 import itertools
 import json
-import os
 import sqlite3
 import warnings
 import xml.etree.ElementTree as ET
@@ -18,6 +17,7 @@ import numpy as np
 import pandas as pd
 import pyogrio
 import pytest
+from conftest import test_seed
 from shapely.geometry import Polygon
 
 from pvscan.errors import RegistrationWarning, ValidityWarning
@@ -25,7 +25,7 @@ from pvscan.io import outputs
 from pvscan.io.resources import load_schema, schema_errors
 from pvscan.io.writers.walk import BANDS, path_length, two_opt
 
-SEED = int(os.environ.get("PVSCAN_TEST_SEED", "20260614"))
+SEED = test_seed()
 CRS = "EPSG:32632"  # UTM 32N; invented plant
 W, L, GAP = 1.0, 2.0, 0.02
 

@@ -16,7 +16,6 @@ run is deterministic and quick; the example database is off so earlier runs do n
 from __future__ import annotations
 
 import math
-import os
 import tomllib
 from datetime import UTC, datetime, timedelta, timezone
 from pathlib import Path
@@ -24,6 +23,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import shapely
+from conftest import test_seed
 from hypothesis import HealthCheck, assume, given, seed, settings
 from hypothesis import strategies as st
 from shapely import affinity
@@ -35,7 +35,7 @@ from pvscan.io.manifest import Flight, flight_from_dict, load_flight
 from pvscan.io.resources import load_schema
 from pvscan.simulate.writers import toml_dumps
 
-SEED = int(os.environ.get("PVSCAN_TEST_SEED", "20260614"))
+SEED = test_seed()
 PROPS = settings(max_examples=40, deadline=None, database=None,
                  suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
 SCHEMA = load_schema("flight.schema.json")

@@ -8,12 +8,12 @@ PVSCAN_TEST_SEED (any seed must pass).
 from __future__ import annotations
 
 import math
-import os
 
 import geopandas as gpd
 import numpy as np
 import pytest
 import shapely.affinity as aff
+from conftest import test_seed
 
 from pvscan.io.layout import read_layout
 from pvscan.io.manifest import load_flight
@@ -23,7 +23,7 @@ from pvscan.measure.register import Placement, apply_placement, expected_module_
 from pvscan.measure.register.evidence import sun_vector
 from pvscan.simulate import simulate_flight
 
-SEED = int(os.environ.get("PVSCAN_TEST_SEED", "18"))
+SEED = test_seed()
 #: "within 3 cm of none" on a layout that is right (the tolerance a correct layout must keep).
 NO_SHIFT_TOL_M = 0.03
 

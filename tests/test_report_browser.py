@@ -20,6 +20,7 @@ import numpy as np
 import pytest
 
 sys.path.insert(0, str(Path(__file__).parent))
+from conftest import test_seed
 from test_report import PLANTED, build_result
 
 CHROMIUM = shutil.which("chromium") or shutil.which("chromium-browser") or (
@@ -194,7 +195,7 @@ def simulated_report(tmp_path_factory):
     from pvscan.pipeline import inspect_flight
     from pvscan.simulate import simulate_flight
 
-    seed = int(os.environ.get("PVSCAN_TEST_SEED", "20260614"))
+    seed = test_seed()
     d = tmp_path_factory.mktemp("phone")
     sc = {"site": {"name": "Test field Sedge Hollow (invented)", "lon": 9.2, "lat": 48.1},
           "array": {"table_rows": 2, "tables_per_row": 2, "rows": 2, "cols": 10, "rotation_deg": 8.0,

@@ -18,6 +18,7 @@ from pathlib import Path
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).parent))
+from conftest import test_seed
 from test_report import PLANTED, build_result, parse
 
 REPORT = Path(__file__).parents[1] / "pvscan" / "report"
@@ -323,7 +324,7 @@ def test_labels_do_not_collide():
     no mark, inside the frame."""
     from pvscan.report._labels import place_labels
 
-    rng = np.random.default_rng(int(__import__("os").environ.get("PVSCAN_TEST_SEED", "20260614")))
+    rng = np.random.default_rng(test_seed())
     pts = 200.0 + rng.uniform(-40.0, 40.0, (40, 2))
     sizes = [(4.3 * len(str(i + 1)) + 3.0, 8.75) for i in range(40)]
     r = 4.0

@@ -6,15 +6,14 @@ Wien's displacement law (b = 2.897771955e-3 m K, CODATA), the Stefan-Boltzmann l
 """
 from __future__ import annotations
 
-import os
-
 import numpy as np
 import pytest
+from conftest import test_seed
 from scipy import constants, integrate, optimize
 
 from pvscan.simulate import electrical, radiance
 
-SEED = int(os.environ.get("PVSCAN_TEST_SEED", "20260614"))
+SEED = test_seed()
 BAND = (7.5, 13.5)
 
 

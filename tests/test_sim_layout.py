@@ -7,19 +7,19 @@ from __future__ import annotations
 
 import json
 import math
-import os
 import tomllib
 
 import numpy as np
 import pytest
 from click.testing import CliRunner
+from conftest import test_seed
 from shapely import affinity
 from shapely.geometry import Polygon, shape
 
 from pvscan.cli.main import cli
 from pvscan.simulate import simulate_flight
 
-SEED = int(os.environ.get("PVSCAN_TEST_SEED", "20260614")) % 100_000
+SEED = test_seed() % 100_000
 TINY = {"site": {"name": "Layout test plant", "lon": 8.1, "lat": 47.3},
         "array": {"table_rows": 2, "tables_per_row": 2, "rows": 2, "cols": 6},
         "ortho": {"margin_m": 3.0, "preview_px": 200}, "camera": {"gsd_m": 0.1}}

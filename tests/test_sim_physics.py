@@ -12,17 +12,17 @@ textbooks, from memory).
 from __future__ import annotations
 
 import math
-import os
 from types import SimpleNamespace
 
 import numpy as np
 import pytest
+from conftest import test_seed
 
 from pvscan.simulate import build_scene, radiance
 from pvscan.simulate.optics import relief_source
 from pvscan.simulate.shading import ground_beam_factor, shadow_geometry, terrain_grades
 
-SEED = int(os.environ.get("PVSCAN_TEST_SEED", "20260614"))
+SEED = test_seed()
 
 
 def _rows(tilt_deg, depth_slant, pitch, facing_az=180.0, n_trows=3):

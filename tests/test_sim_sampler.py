@@ -7,19 +7,19 @@ from __future__ import annotations
 
 import hashlib
 import json
-import os
 import tomllib
 
 import numpy as np
 import pytest
 from click.testing import CliRunner
+from conftest import test_seed
 
 from pvscan.cli.main import cli
 from pvscan.io.resources import load_schema, schema_errors
 from pvscan.simulate import simulate_random
 from pvscan.simulate.sampler import FAMILIES, _sun, draw_scenario
 
-SEED = int(os.environ.get("PVSCAN_TEST_SEED", "20260614")) % 10_000
+SEED = test_seed() % 10_000
 
 
 def _draws(family, n=12):

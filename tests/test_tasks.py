@@ -9,16 +9,16 @@ from __future__ import annotations
 import json
 import math
 import operator
-import os
 
 import numpy as np
 import pandas as pd
 import pytest
+from conftest import test_seed
 
 from pvscan.errors import PvscanError
 from pvscan.tasks import parse_scheduler, run_tasks
 
-SEED = int(os.environ.get("PVSCAN_TEST_SEED", "18"))
+SEED = test_seed()
 
 
 def test_parse_scheduler_names_and_addresses():

@@ -8,19 +8,19 @@ check (coverage, registration with --accept-poor-registration) and the refusal o
 from __future__ import annotations
 
 import json
-import os
 import shutil
 
 import numpy as np
 import pytest
 import rasterio
 from click.testing import CliRunner
+from conftest import test_seed
 
 from pvscan.cli.main import cli
 from pvscan.measure.validity import coverage_check, plausibility_check
 from pvscan.simulate import simulate_flight
 
-SEED = int(os.environ.get("PVSCAN_TEST_SEED", "18"))
+SEED = test_seed()
 #: 0 degC in kelvin (SI definition of the Celsius scale).
 KELVIN = 273.15
 
