@@ -156,3 +156,54 @@ def test_row_cluster_check_reads_the_score(score, passed):
     assert (v.ok is False) is (passed is False)
     if passed is False:
         assert v.failed == ["row_cluster"] and v.confidence_factor < 1.0
+
+
+# ---- unexplained_pid ----------------------------------------------------------------------------
+
+def _pid_check(d):
+    return {c["name"]: c for c in evidence_checks(d.evidence)}["unexplained_pid"]
+
+
+def test_pid_string_found_or_healthy_passes_unexplained_pid(seed):
+    # a healthy plant has no warm module with a strong edge ring; a PID string that is found
+    # takes its first module in (PID shunts the cells of the modules at the negative end most,
+    # edge cells first: common practice; modules warmer by the power lost, Faiman heat balance)
+    for k in range(4):
+        c = _pid_check(_plant(seed + k).run())
+        assert c["passed"] is True, c["message"]
+        p = _plant(seed + 100 + k)
+        p.pid("T1-1-R2", 4, f0=0.5)
+        d = p.run()
+        assert "pid" in set(d.anomalies.defect)
+        assert _pid_check(d)["passed"] is True
+
+
+def test_pid_seed_left_unexplained_fails_unexplained_pid(seed):
+    # the module at the string's negative end shows PID strongly and runs warm, the modules
+    # after it show no edge pattern (as under a cloud shadow or a patchy start): no PID string
+    # is found, and the flight must say a string-level fault may be missed. Weak PID (first
+    # module losing 30 %), so that its edge cells stay below the hot-cell floor (3 K, common
+    # practice) and no other finding covers the module
+    failed = 0
+    for k in range(4):
+        p = _plant(seed + 200 + k)
+        idx = p.pid("T1-1-R2", 3, f0=0.3)
+        for i in idx[1:]:
+            p.cm[i] = np.median(p.cm[i])
+        d = p.run()
+        assert "pid" not in set(d.anomalies.defect)
+        c = _pid_check(d)
+        failed += c["passed"] is False
+        if c["passed"] is False:
+            assert c["module"] == p.modules.module_id.to_numpy()[idx[0]] and "string-level" in c["message"]
+            v = with_checks(Validity(), evidence_checks(d.evidence), load_pipeline())
+            assert v.ok is False and "unexplained_pid" in v.failed
+    assert failed >= 3
+
+
+@pytest.mark.parametrize("z, passed", [(3.5, True), (7.4, False), (None, None)])
+def test_unexplained_pid_check_reads_the_contrast(z, passed):
+    from pvscan.measure.validity import unexplained_pid_check
+
+    c = unexplained_pid_check({"pid_unexplained_z": z, "pid_unexplained_module": "M1"})
+    assert c["passed"] is passed

@@ -313,6 +313,7 @@ def classify(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module
     logger.info("classified %d modules: %d anomalies", int(F.ok.sum()), len(anomalies))
     evidence = _evidence(F, groups)
     evidence.update(_row_clusters(modules, defect_of, F.ok, cfg))
+    evidence.update(_unexplained_pid(F, groups, pos, is_string, defect_of, mod_id, cfg))
     return Diagnosis(anomalies, module_table, evidence=evidence)
 
 
@@ -370,6 +371,40 @@ def _row_clusters(modules: pd.DataFrame, defect: np.ndarray, ok: np.ndarray,
     ids = modules["module_id"].astype(str).to_numpy() if "module_id" in modules else np.arange(len(modules)).astype(str)
     out.update(row_cluster_score=float(0.0 - np.log10(max(min(best_p * n_tests, 1.0), 1e-300))),
                row_cluster_modules=[str(x) for x in ids[mem_b[a_b:b_b]]], row_cluster_findings=k_b)
+    return out
+
+
+def _unexplained_pid(F: Features, groups: np.ndarray, pos: np.ndarray, is_string: bool,
+                     defect: np.ndarray, mod_id: np.ndarray, cfg: Mapping[str, Any]) -> dict[str, Any]:
+    """The strongest PID pattern that no finding explains.
+
+    Among classified modules without a finding that could start a PID string (the module at a
+    string's negative end; any module of a table row when strings are unknown) and run warmer
+    than modules outside their string by at least ``[classify] pid_warm_min_z`` robust
+    spreads (PID takes power away, so its modules run warm), the highest edge-ring contrast
+    ``pid_z`` [robust SD] (``pid_unexplained_z``, None when PID was not looked for) and its
+    module (``pid_unexplained_module``). A pattern this strong that no PID string took in is
+    a string-level fault the patterns could not place.
+    """
+    out: dict[str, Any] = {"pid_unexplained_z": None, "pid_unexplained_module": None}
+    z = F.extra.get("pid_z")
+    if z is None:
+        return out
+    z = np.asarray(z, dtype=float)
+    z_o = np.asarray(F.extra["d_other"], dtype=float) / max(float(F.extra["sig_other"]), 0.05)
+    free = F.ok & np.array([d is None for d in defect], bool) & (groups >= 0)
+    if is_string:
+        first = np.zeros(F.n, bool)
+        for g in np.unique(groups[groups >= 0]):
+            idx = np.flatnonzero(groups == g)
+            first[idx[np.argmin(pos[idx])]] = True
+        free &= first
+    with np.errstate(invalid="ignore"):
+        cand = free & np.isfinite(z) & (z_o >= float(cfg["pid_unexplained_min_excess_z"]))
+    out["pid_unexplained_z"] = 0.0
+    if cand.any():
+        i = int(np.argmax(np.where(cand, z, -np.inf)))
+        out.update(pid_unexplained_z=max(float(z[i]), 0.0), pid_unexplained_module=str(mod_id[i]))
     return out
 
 

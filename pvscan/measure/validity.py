@@ -420,15 +420,46 @@ def row_cluster_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] |
     return c
 
 
+def unexplained_pid_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> Check:
+    """``unexplained_pid``: the PID edge-ring contrast [robust SD] of the strongest warm module
+    that could start a PID string and is in no finding (at most ``[validity]
+    max_unexplained_pid_z``), as the classification measured it (``pid_unexplained_z``).
+
+    A pattern that strong would start a PID run by itself; when no finding takes it in, the
+    string-level fault behind it (PID fading along the string, a string under a cloud shadow)
+    was not placed, and the flight's string findings are not measured. Unknown (passes) when
+    PID was not looked for.
+    """
+    st = _validity_settings(settings)
+    lim = float(st["max_unexplained_pid_z"])
+    value = _finite(evidence.get("pid_unexplained_z"))
+    module = evidence.get("pid_unexplained_module")
+    if value is None:
+        msg = "unexplained PID: unknown (PID not looked for)"
+    elif module is None:
+        msg = f"unexplained PID: no warm module outside the findings could start a PID string (at most {lim:g})"
+    else:
+        msg = (f"unexplained PID: module {module} could start a PID string, runs warm and shows the edge-ring "
+               f"pattern at z {value:.1f}, but no finding takes it in (at most {lim:g})")
+        if value > lim:
+            msg += ": a string-level fault may be missed; check that string (failed)"
+    c = _check("unexplained_pid", value, lim, "max", "robust SD", "PID pattern (pvscan.diagnose.classify; calibrated)",
+               message=msg)
+    c.update({"module": module})
+    return c
+
+
 def evidence_checks(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> list[Check]:
     """The checks of what the classification measured about the flight as a whole
-    (:attr:`pvscan.diagnose.results.Diagnosis.evidence`): ``string_reference`` and
-    ``row_cluster``. Empty when there is no evidence (no module classified)."""
+    (:attr:`pvscan.diagnose.results.Diagnosis.evidence`): ``string_reference``,
+    ``row_cluster`` and ``unexplained_pid``. Empty when there is no evidence (no module classified)."""
     if not evidence:
         return []
     checks = [string_reference_check(evidence, settings)]
     if "row_cluster_score" in evidence:
         checks.append(row_cluster_check(evidence, settings))
+    if "pid_unexplained_z" in evidence:
+        checks.append(unexplained_pid_check(evidence, settings))
     return checks
 
 
