@@ -16,6 +16,7 @@ import numpy as np
 import pytest
 import shapely
 from affine import Affine
+from conftest import test_seed
 from rasterio import features
 from rasterio.windows import Window
 from scipy import ndimage
@@ -769,3 +770,30 @@ def test_simulated_tracker_rows_registered_on_the_glass(tmp_path_factory):
     width = float(np.median(modules.geometry.bounds["maxx"] - modules.geometry.bounds["minx"]))
     assert abs(abs(plain.measured_m[0] + off[0]) - width) < 0.1     # the shadow, a row width off
     assert math.hypot(reg.measured_m[0] + off[0], reg.measured_m[1] + off[1]) < 0.1, reg.message
+
+
+def test_block_cache_reuses_equal_windows_with_the_same_result():
+    # Reference: the offset the scene was drawn with (render()), and the same estimate made
+    # without the cache. Two block sizes that cut this site into one block each give the
+    # same window: the second pass reads nothing and analyses nothing again; a block size
+    # giving other windows analyses its own blocks.
+    rng = np.random.default_rng(test_seed(181))
+    shift = (float(rng.uniform(-1.2, 1.2)), float(rng.uniform(-1.2, 1.2)))
+    mods = make_layout((500_000.0, 4_000_000.0), angle_deg=float(rng.uniform(-20.0, 20.0)))
+    img, tr = render(mods, shift, seed=test_seed(182))
+    cache: dict = {}
+    orthos = ArrayOrthos([img], [tr], "EPSG:32633")
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        first = estimate_shift(orthos, mods, {"block_m": 150.0}, block_cache=cache)
+        n_reads, n_blocks = len(orthos.reads), len(cache)
+        again = estimate_shift(orthos, mods, {"block_m": 120.0}, block_cache=cache)
+        assert len(orthos.reads) == n_reads and len(cache) == n_blocks == 1
+        fresh = estimate_shift(ArrayOrthos([img], [tr], "EPSG:32633"), mods, {"block_m": 120.0})
+        assert again.to_dict() == fresh.to_dict()
+        assert err(first, shift) < TOL_M and err(again, shift) < TOL_M
+        small = estimate_shift(orthos, mods, {"block_m": 20.0}, block_cache=cache)
+        assert len(cache) > n_blocks and len(orthos.reads) > n_reads
+        assert small.to_dict() == estimate_shift(ArrayOrthos([img], [tr], "EPSG:32633"), mods,
+                                                 {"block_m": 20.0}).to_dict()
+        assert err(small, shift) < TOL_M

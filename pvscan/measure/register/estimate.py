@@ -1,6 +1,7 @@
 """The block fit: :func:`estimate_shift`, :func:`apply_shift`, :func:`align_flight`."""
 from __future__ import annotations
 
+import dataclasses
 import logging
 import math
 import warnings
@@ -35,7 +36,7 @@ logger = logging.getLogger(__name__)
 
 def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mapping | None = None, *,
                    progress: ProgressFn | None = None, expected_apparent_c: float | None = None,
-                   flight: Any = None) -> Registration:
+                   flight: Any = None, block_cache: dict[Any, Any] | None = None) -> Registration:
     """Measure the layout-to-ortho offset from the image.
 
     Parameters
@@ -63,6 +64,13 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
         ``[reference]`` and ``[radiometry]`` sections (skipped with a log line when the
         flight lacks the conditions). A caller with its own pipeline passes
         ``expected_apparent_c=expected_module_apparent_c(flight, pipeline, strict=False)``.
+    block_cache : dict, optional
+        Prepared blocks kept between calls on the same ortho and modules (a new empty dict
+        per registration): a block read through the same window with the same settings
+        (``block_m`` aside, which only decides where the windows fall) is analysed once.
+        Two block sizes that cut a site into the same number of blocks across and along
+        give the same windows, so the second pass reuses the first one's blocks and
+        differs only in its fit.
 
     Returns
     -------
@@ -114,7 +122,9 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
         for win in _block_windows(tile, gb, cfg):
             plan.append((ti, tile, win))
 
-    # 2. spectra of the blocks
+    # 2. spectra of the blocks (a block depends on its window and on every setting but
+    # block_m, which only placed the windows)
+    cfg_key = repr(sorted((k, v) for k, v in cfg.items() if k != "block_m"))
     blocks: list[_BlockData] = []
     records: list[BlockShift] = []
     total = len(plan)
@@ -130,7 +140,15 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
         pad = float(cfg["max_shift_m"])
         box = shapely.box(min(xs) - pad, min(ys) - pad, max(xs) + pad, max(ys) + pad)
         gidx = tree.query(box, predicate="intersects") if tree is not None else np.zeros(0, int)
-        bd, why = _prepare_block(orthos, ti, tile, win, geoms[np.sort(gidx)], cfg, f, work_gsd)
+        key = (ti, int(win.col_off), int(win.row_off), int(win.width), int(win.height), f, cfg_key)
+        if block_cache is not None and key in block_cache:
+            bd, why = block_cache[key]
+            # a fresh block record for this call (the fit below writes into it)
+            bd = dataclasses.replace(bd) if bd is not None else None
+        else:
+            bd, why = _prepare_block(orthos, ti, tile, win, geoms[np.sort(gidx)], cfg, f, work_gsd)
+            if block_cache is not None:
+                block_cache[key] = (dataclasses.replace(bd) if bd is not None else None, why)
         cx, cy = t @ (win.col_off + win.width / 2.0, win.row_off + win.height / 2.0)
         if bd is None:
             records.append(BlockShift(float(cx), float(cy), float("nan"), float("nan"), 0.0, ti, note=why))

@@ -358,9 +358,14 @@ def _spread_chunk(sample: ModuleSample, placement: Placement, sl: slice, *, inse
     assert sample.centred is not None
     vals = sample.centred[sl]
     finite = np.isfinite(vals)
-    inside &= finite
+    if finite.all():
+        # no pixel to leave out: the values times the mask are the values selected (a zero
+        # outside may carry a sign, which changes no sum)
+        d = vals * inside
+    else:
+        inside &= finite
+        d = np.where(inside, vals, np.float32(0.0))
     cnt = inside.sum(axis=(1, 2))
-    d = np.where(inside, vals, np.float32(0.0))
     s1 = d.sum(axis=(1, 2), dtype=np.float64)
     s2 = np.einsum("kij,kij->k", d, d, dtype=np.float64)
     with np.errstate(invalid="ignore", divide="ignore"):
@@ -493,14 +498,16 @@ def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, 
 
 
 def refine_placement(sample: ModuleSample, start: Placement, cfg: Mapping, *, rotate: bool = True,
-                     scale: bool = True) -> tuple[Placement, float]:
+                     scale: bool = True, start_evidence: float | None = None) -> tuple[Placement, float]:
     """Pattern search (Hooke and Jeeves 1961) of the placement minimising the evidence.
 
     Steps start at ``evidence_step_m`` (translation), ``evidence_step_deg`` (rotation) and
     ``evidence_step_scale`` and are halved until below an eighth of that; rotation and scale
     are searched only when asked. The evidence is the spread over the outline contrast, or
     the plain spread [K] when ``cfg["evidence_band_m"]`` is None. Returns the best placement
-    and its evidence.
+    and its evidence. ``start_evidence``, when the caller has it, is the evidence of
+    ``start`` with these settings (not computed again). A placement the search comes back to
+    (a step forth and back gives the same numbers) is not measured twice.
 
     References
     ----------
@@ -513,9 +520,15 @@ def refine_placement(sample: ModuleSample, start: Placement, cfg: Mapping, *, ro
         # spread inside a nearly whole footprint has its minimum where the module is
         kw.update(band_m=float(cfg["evidence_band_m"]), off_glass_k=float(cfg["evidence_off_glass_k"]))
 
+    seen: dict[tuple[str, ...], float] = {}
+
     def f(p: Placement) -> float:
-        e = evidence(module_spread(sample, p, **kw))
-        return e if math.isfinite(e) else float("inf")
+        # keyed by the exact numbers (float.hex tells -0.0 from 0.0): a hit is the same sum
+        key = tuple(float(v).hex() for v in (p.tx, p.ty, p.theta_deg, p.scale))
+        if key not in seen:
+            e = evidence(module_spread(sample, p, **kw))
+            seen[key] = e if math.isfinite(e) else float("inf")
+        return seen[key]
 
     steps = {"tx": float(cfg["evidence_step_m"]), "ty": float(cfg["evidence_step_m"])}
     if rotate:
@@ -525,6 +538,10 @@ def refine_placement(sample: ModuleSample, start: Placement, cfg: Mapping, *, ro
     lim_shift = float(cfg["max_shift_m"])
     lim_rot = float(cfg["max_rotation_deg"])
     lim_scale = float(cfg["max_scale_error"])
+    if start_evidence is not None:
+        f_start = float(start_evidence)
+        f_start = f_start if math.isfinite(f_start) else float("inf")
+        seen[tuple(float(v).hex() for v in (start.tx, start.ty, start.theta_deg, start.scale))] = f_start
     best, fb = start, f(start)
     floor = {k: v / 8.0 for k, v in steps.items()}
     for _ in range(200):

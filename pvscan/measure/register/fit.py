@@ -159,11 +159,14 @@ def register_layout(orthos: Any, modules: gpd.GeoDataFrame, settings: Mapping[st
         # that rotation and scale are measured on a small site too (one block: a shift only)
         small = min(float(cfg["block_m"]), max(float(cfg["min_block_m"]), extent / float(cfg["min_blocks_across"])))
         fits: list[Registration] = []
+        # two block sizes that cut the site into as many blocks give the same windows: the
+        # second pass reuses the first one's blocks
+        cache: dict[Any, Any] = {}
         for block in dict.fromkeys([float(cfg["block_m"]), small]):
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", RegistrationWarning)
                 r = estimate_shift(orthos, modules, {**cfg, "block_m": block}, progress=progress,
-                                   expected_apparent_c=expected_apparent_c)
+                                   expected_apparent_c=expected_apparent_c, block_cache=cache)
             fits.append(r)
             p = placement_of(r, centre)
             if p is not None:

@@ -198,7 +198,7 @@ def refine_tables(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any]
     for t, sel in groups.items():
         sub = _take(sample, sel)
         e0 = evidence(module_spread(sub, ident, inset_u=inset, inset_v=inset))
-        p, e1 = refine_placement(sub, ident, sub_cfg, rotate=False, scale=False)
+        p, e1 = refine_placement(sub, ident, sub_cfg, rotate=False, scale=False, start_evidence=e0)
         recs.append({"table_id": t, "dx_m": float(p.tx), "dy_m": float(p.ty), "evidence_before": e0,
                      "evidence_after": e1, "x": float(np.mean(cx[sel])), "y": float(np.mean(cy[sel]))})
     gate = float(cfg["local_gate"])
