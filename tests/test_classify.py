@@ -934,6 +934,27 @@ def test_edge_ring_pattern_on_cool_modules_is_not_pid(rng):
     assert "pid" in set(an0.defect)
 
 
+def test_edge_ring_on_a_cool_first_module_does_not_seed_pid(rng):
+    # the module at a string's negative end loses the most power to PID (the potential to
+    # ground is largest there: IEC TS 62804-1 describes the stress, from memory), and the power
+    # it no longer exports turns into heat (Faiman heat balance), so it runs warmest. An edge
+    # ring on a first module that runs clearly cooler than modules outside its string (a seam
+    # along the row warming edge cells) does not seed a PID string, even when the modules after
+    # it run warm; the run's median excess alone would let it through
+    p = Plant(rng, module_spread=0.6)
+    idx = p.pid("T1-1-R2", 4, f0=0.4)
+    first = int(idx[0])
+    p.cm[first] -= 1.5 + np.median(p.cm[first] - np.median(p.cm))
+    an, _ = p.run()
+    assert "pid" not in set(an.defect), an[["module_id", "defect"]]
+    # the same string with its first module left as PID made it: found from its negative end
+    p0 = Plant(np.random.default_rng(int(rng.integers(2**31))), module_spread=0.6)
+    idx0 = p0.pid("T1-1-R2", 4, f0=0.4)
+    an0, _ = p0.run()
+    pid0 = {i for i, d in found(an0).items() if d == "pid"}
+    assert int(idx0[0]) in pid0
+
+
 def test_open_module_floor_is_the_likelihood_ratio_boundary():
     # at the floor the prior-weighted Gaussian densities of healthy N(0, s) and open
     # N(rise, s) modules are equal (Bayes decision boundary; scipy.stats.norm as reference)

@@ -143,7 +143,7 @@ def summary_lines(result_dir: str | os.PathLike[str], top: int | None = None) ->
             lines.append(f"  ! ... {len(failed) - 5} more in summary.json")
     elif ok is True:
         lines.append("validity: all checks passed (acquisition limits, registration, coverage, plausibility, "
-                     "row shading, string reference)")
+                     "row shading, string reference, row cluster, unexplained PID)")
     cov = raw_checks.get("coverage")
     if cov and cov.get("modules_without_data"):
         lines.append(f"modules without usable pixels: {int(cov['modules_without_data']):,}")

@@ -311,7 +311,101 @@ def classify(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module
     if progress:
         progress("classify", 3, 3)
     logger.info("classified %d modules: %d anomalies", int(F.ok.sum()), len(anomalies))
-    return Diagnosis(anomalies, module_table, evidence=_evidence(F, groups))
+    evidence = _evidence(F, groups)
+    evidence.update(_row_clusters(modules, defect_of, F.ok, cfg))
+    evidence.update(_unexplained_pid(F, groups, pos, is_string, defect_of, mod_id, cfg))
+    return Diagnosis(anomalies, module_table, evidence=evidence)
+
+
+def _row_clusters(modules: pd.DataFrame, defect: np.ndarray, ok: np.ndarray,
+                  cfg: Mapping[str, Any]) -> dict[str, Any]:
+    """How unlikely the densest stretch of findings along a table row is, were the findings
+    independent from module to module.
+
+    Faults of cells, bypass diodes and junction boxes (``[classify] cluster_kinds``) strike
+    module by module; an image artefact along a row (a mosaic seam running through the
+    modules, a reflection) marks a stretch of neighbours. With ``p`` the flight's share of
+    classified modules holding such a finding, every stretch of at least three modules of every
+    table row (modules ordered by ``table_col``) holding ``k`` of them among ``n`` classified
+    modules has the binomial chance ``P(X >= k)``, ``X ~ Bin(n, p)``; the least of them, times
+    the number of stretches tested (Bonferroni), is the chance of so dense a stretch anywhere
+    on the flight. Returns ``row_cluster_score`` = -log10 of that chance (0 when fewer than
+    three findings), and where the stretch is (``row_cluster_modules`` [module ids],
+    ``row_cluster_findings``, ``row_cluster_rate``).
+    """
+    from scipy.stats import binom
+
+    from pvscan.measure.rows import row_keys
+
+    kinds = set(cfg["cluster_kinds"])
+    hit = np.array([d in kinds for d in defect], bool) & ok
+    out: dict[str, Any] = {"row_cluster_score": 0.0, "row_cluster_modules": [], "row_cluster_findings": 0,
+                           "row_cluster_rate": float(hit.sum() / max(int(ok.sum()), 1))}
+    if hit.sum() < 3 or "table_col" not in modules.columns:
+        return out
+    p = out["row_cluster_rate"]
+    keys = row_keys(modules)
+    col = pd.to_numeric(modules["table_col"], errors="coerce").to_numpy(dtype=float)
+    use = np.flatnonzero((keys >= 0) & np.isfinite(col))
+    order = use[np.lexsort((col[use], keys[use]))]
+    rows = np.split(order, np.flatnonzero(np.diff(keys[order])) + 1)
+    best_p, best, n_tests = 1.0, None, 0
+    for mem in rows:
+        if len(mem) < 3:
+            continue
+        c_hit = np.concatenate([[0], np.cumsum(hit[mem])])
+        c_ok = np.concatenate([[0], np.cumsum(ok[mem])])
+        a, b = np.triu_indices(len(mem) + 1, k=3)
+        n_tests += len(a)
+        k = c_hit[b] - c_hit[a]
+        sel = k >= 3
+        if not sel.any():
+            continue
+        pv = binom.sf(k[sel] - 1, c_ok[b][sel] - c_ok[a][sel], p)
+        j = int(np.argmin(pv))
+        if pv[j] < best_p:
+            best_p, best = float(pv[j]), (mem, int(a[sel][j]), int(b[sel][j]), int(k[sel][j]))
+    if best is None:
+        return out
+    mem_b, a_b, b_b, k_b = best
+    ids = modules["module_id"].astype(str).to_numpy() if "module_id" in modules else np.arange(len(modules)).astype(str)
+    out.update(row_cluster_score=float(0.0 - np.log10(max(min(best_p * n_tests, 1.0), 1e-300))),
+               row_cluster_modules=[str(x) for x in ids[mem_b[a_b:b_b]]], row_cluster_findings=k_b)
+    return out
+
+
+def _unexplained_pid(F: Features, groups: np.ndarray, pos: np.ndarray, is_string: bool,
+                     defect: np.ndarray, mod_id: np.ndarray, cfg: Mapping[str, Any]) -> dict[str, Any]:
+    """The strongest PID pattern that no finding explains.
+
+    Among classified modules without a finding that could start a PID string (the module at a
+    string's negative end; any module of a table row when strings are unknown) and run warmer
+    than modules outside their string by at least ``[classify] pid_warm_min_z`` robust
+    spreads (PID takes power away, so its modules run warm), the highest edge-ring contrast
+    ``pid_z`` [robust SD] (``pid_unexplained_z``, None when PID was not looked for) and its
+    module (``pid_unexplained_module``). A pattern this strong that no PID string took in is
+    a string-level fault the patterns could not place.
+    """
+    out: dict[str, Any] = {"pid_unexplained_z": None, "pid_unexplained_module": None}
+    z = F.extra.get("pid_z")
+    if z is None:
+        return out
+    z = np.asarray(z, dtype=float)
+    z_o = np.asarray(F.extra["d_other"], dtype=float) / max(float(F.extra["sig_other"]), 0.05)
+    free = F.ok & np.array([d is None for d in defect], bool) & (groups >= 0)
+    if is_string:
+        first = np.zeros(F.n, bool)
+        for g in np.unique(groups[groups >= 0]):
+            idx = np.flatnonzero(groups == g)
+            first[idx[np.argmin(pos[idx])]] = True
+        free &= first
+    with np.errstate(invalid="ignore"):
+        cand = free & np.isfinite(z) & (z_o >= float(cfg["pid_unexplained_min_excess_z"]))
+    out["pid_unexplained_z"] = 0.0
+    if cand.any():
+        i = int(np.argmax(np.where(cand, z, -np.inf)))
+        out.update(pid_unexplained_z=max(float(z[i]), 0.0), pid_unexplained_module=str(mod_id[i]))
+    return out
 
 
 def _evidence(F: Features, groups: np.ndarray) -> dict[str, Any]:

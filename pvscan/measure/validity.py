@@ -383,13 +383,84 @@ def string_reference_check(evidence: Mapping[str, Any], settings: Mapping[str, A
     return c
 
 
+def row_cluster_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> Check:
+    """``row_cluster``: -log10 of the chance that the densest stretch of a table row holds as
+    many findings of faults of single modules as it does, were they independent from module to
+    module at the flight's own rate (binomial, Bonferroni over every stretch; at most
+    ``[validity] max_row_cluster_score``), as the classification measured it
+    (``row_cluster_score``).
+
+    Faults of cells, bypass diodes and junction boxes strike module by module; findings that
+    crowd a stretch of a row follow an image artefact along it (a mosaic seam running through
+    the modules, a reflection), and the findings of the flight are then not measured. Unknown
+    (passes) when the classification measured nothing.
+    """
+    st = _validity_settings(settings)
+    lim = float(st["max_row_cluster_score"])
+    value = _finite(evidence.get("row_cluster_score"))
+    mods = list(evidence.get("row_cluster_modules") or [])
+    k = int(evidence.get("row_cluster_findings") or 0)
+    rate = _finite(evidence.get("row_cluster_rate"))
+    if value is None:
+        msg = "row cluster: unknown (no findings measured)"
+    elif not mods:
+        msg = (f"row cluster: findings of single modules do not crowd along any table row "
+               f"(score {value:.2f}; at most {lim:g})")
+    else:
+        where = mods[0] if len(mods) == 1 else f"{mods[0]} .. {mods[-1]}"
+        msg = (f"row cluster: {k} of {len(mods)} modules of one table row ({where}) hold findings of single "
+               f"modules at a flight rate of {100.0 * (rate or 0.0):.1f} %: a chance of 1 in "
+               f"{10 ** min(value, 99.0):,.0f} anywhere on the flight (score {value:.2f}; at most {lim:g})")
+        if value > lim:
+            msg += (": the findings follow an image artefact along the row (a mosaic seam, a reflection); "
+                    "check the ortho there (failed)")
+    c = _check("row_cluster", value, lim, "max", "", "binomial chance, Bonferroni (pvscan.diagnose.classify)",
+               message=msg)
+    c.update({"modules": mods, "findings": k, "rate": rate})
+    return c
+
+
+def unexplained_pid_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> Check:
+    """``unexplained_pid``: the PID edge-ring contrast [robust SD] of the strongest warm module
+    that could start a PID string and is in no finding (at most ``[validity]
+    max_unexplained_pid_z``), as the classification measured it (``pid_unexplained_z``).
+
+    A pattern that strong would start a PID run by itself; when no finding takes it in, the
+    string-level fault behind it (PID fading along the string, a string under a cloud shadow)
+    was not placed, and the flight's string findings are not measured. Unknown (passes) when
+    PID was not looked for.
+    """
+    st = _validity_settings(settings)
+    lim = float(st["max_unexplained_pid_z"])
+    value = _finite(evidence.get("pid_unexplained_z"))
+    module = evidence.get("pid_unexplained_module")
+    if value is None:
+        msg = "unexplained PID: unknown (PID not looked for)"
+    elif module is None:
+        msg = f"unexplained PID: no warm module outside the findings could start a PID string (at most {lim:g})"
+    else:
+        msg = (f"unexplained PID: module {module} could start a PID string, runs warm and shows the edge-ring "
+               f"pattern at z {value:.1f}, but no finding takes it in (at most {lim:g})")
+        if value > lim:
+            msg += ": a string-level fault may be missed; check that string (failed)"
+    c = _check("unexplained_pid", value, lim, "max", "robust SD", "PID pattern (pvscan.diagnose.classify; calibrated)",
+               message=msg)
+    c.update({"module": module})
+    return c
+
+
 def evidence_checks(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> list[Check]:
     """The checks of what the classification measured about the flight as a whole
-    (:attr:`pvscan.diagnose.results.Diagnosis.evidence`): ``string_reference``. Empty when
-    there is no evidence (no module classified)."""
+    (:attr:`pvscan.diagnose.results.Diagnosis.evidence`): ``string_reference``,
+    ``row_cluster`` and ``unexplained_pid``. Empty when there is no evidence (no module classified)."""
     if not evidence:
         return []
-    return [string_reference_check(evidence, settings)]
+    checks = [string_reference_check(evidence, settings)]
+    if "row_cluster_score" in evidence:
+        checks.append(row_cluster_check(evidence, settings))
+    if "pid_unexplained_z" in evidence:
+        checks.append(unexplained_pid_check(evidence, settings))
+    return checks
 
 
 def with_checks(validity: Validity, checks: Iterable[Check], settings: Mapping[str, Any] | None = None) -> Validity:

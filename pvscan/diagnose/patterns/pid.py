@@ -75,8 +75,8 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     prefix of them, ``sum(z) / sqrt(m)``), the best run from the negative end having combined evidence
     ``sum(z) / sqrt(n)`` of at least ``pid_run_z``, and the run's median excess over
     modules outside its string, in robust spreads of healthy modules, at least
-    ``pid_warm_min_z`` (PID takes power away, so the modules run warmer, not clearly
-    cooler).
+    ``pid_warm_min_z``, and so the excess of its module at the negative end, the most
+    affected one (PID takes power away, so the modules run warmer, not clearly cooler).
 
     Without strings (``is_string`` false, ``groups`` the table rows of a layout of table
     polygons), a string's negative end may be at any module of a row, facing either way:
@@ -207,7 +207,10 @@ def _run_from(idx: np.ndarray, z: np.ndarray, z_ext: np.ndarray, z_o: np.ndarray
     gain = np.cumsum(zz - float(cfg["pid_extend_z"]))
     k = int(np.argmax(gain[m_min - 1:])) + m_min
     # PID takes power away, so the affected modules run warmer than modules outside
-    # their string (a seam or a shadow edge crossing the string's end need not)
-    if not float(np.nanmedian(z_o[idx[:k]])) >= float(cfg["pid_warm_min_z"]):
+    # their string (a seam or a shadow edge crossing the string's end need not); the run as
+    # a whole, and its module at the negative end, which loses the most, by itself (a seam
+    # along a row warms the edge cells of modules that run no warmer)
+    w_min = float(cfg["pid_warm_min_z"])
+    if not float(np.nanmedian(z_o[idx[:k]])) >= w_min or not float(z_o[first]) >= w_min:
         return None
     return [int(i) for i in idx[:k]]
