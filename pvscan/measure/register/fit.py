@@ -20,11 +20,10 @@ proposal has to show that it puts footprints on glass better before it is used.
 """
 from __future__ import annotations
 
-import contextlib
 import logging
 import math
 import warnings
-from collections.abc import Iterator, Mapping
+from collections.abc import Mapping
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -34,6 +33,7 @@ from pvscan.errors import RegistrationWarning
 from pvscan.io.layout.frames import FRAME_COLUMNS
 from pvscan.measure._memory import release_freed_memory
 from pvscan.measure.register._blocks import _settings
+from pvscan.measure.register._chunks import shared_chunks
 from pvscan.measure.register._pitch import _pitches, _row_pitch
 from pvscan.measure.register._records import Registration
 from pvscan.measure.register.estimate import estimate_shift
@@ -146,10 +146,7 @@ def register_layout(orthos: Any, modules: gpd.GeoDataFrame, settings: Mapping[st
     cfg = _settings(settings)
     if not cfg["enabled"]:
         return Registration(message="registration disabled ([register] enabled = false)", status="not_run")
-    # the samples of module windows read and judged again and again (every proposal, step of a
-    # fit and pitch alternative reads the same modules around the same places) share one chunk
-    # cache: each part of the ortho is decoded once, not once per sample
-    with _shared_chunks(orthos) as shared:
+    with shared_chunks(orthos) as shared:  # every module sample decodes a part of the ortho once
         reg = _register(shared, modules, cfg, sun, expected_apparent_c, progress, forced_shift)
     logger.info("register: %s", reg.message)
     # the block passes' and samples' arrays, freed, would stay resident in the C heap
@@ -157,41 +154,8 @@ def register_layout(orthos: Any, modules: gpd.GeoDataFrame, settings: Mapping[st
     return reg
 
 
-#: Chunks (256 x 256 px, float32: 256 KiB each) kept by the chunk cache of one registration:
-#: at most 128 MiB; a sample of modules spread over the site touches a few hundred.
-_SHARED_CHUNKS = 512
-
-
-class _ChunkedOrthos:
-    """An ortho set whose small-window reader is one chunk cache shared by every sample."""
-
-    def __init__(self, orthos: Any, read: Any) -> None:
-        self._orthos = orthos
-        self._read = read
-
-    def __getattr__(self, name: str) -> Any:
-        return getattr(self._orthos, name)
-
-    def window_cache(self, *args: Any, **kwargs: Any) -> contextlib.AbstractContextManager[Any]:
-        return contextlib.nullcontext(self._read)
-
-
-@contextlib.contextmanager
-def _shared_chunks(orthos: Any) -> Iterator[Any]:
-    """``orthos`` with one chunk cache for all the module samples of a registration (the same
-    pixels as single reads: :meth:`pvscan.io.ortho.OrthoSet.window_cache`); ``orthos`` itself
-    when it has no window cache."""
-    cache = getattr(orthos, "window_cache", None)
-    if cache is None:
-        yield orthos
-        return
-    with cache(max_chunks=_SHARED_CHUNKS) as read:
-        yield _ChunkedOrthos(orthos, read)
-
-
 def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], sun: tuple[float, ...] | None,
-              expected_apparent_c: float | None, progress: ProgressFn | None,
-              forced_shift: tuple[float, float] | None) -> Registration:
+              expected_apparent_c: float | None, progress: Any, forced_shift: Any) -> Registration:
     """:func:`register_layout` on settings already read."""
     centre = _centre(modules)
     ident = Placement(cx=centre[0], cy=centre[1])
@@ -207,9 +171,7 @@ def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], su
         # that rotation and scale are measured on a small site too (one block: a shift only)
         small = min(float(cfg["block_m"]), max(float(cfg["min_block_m"]), extent / float(cfg["min_blocks_across"])))
         fits: list[Registration] = []
-        # two block sizes that cut the site into as many blocks give the same windows: the
-        # second pass reuses the first one's blocks
-        cache: dict[Any, Any] = {}
+        cache: dict[Any, Any] = {}  # equal windows of the two block sizes are analysed once
         for block in dict.fromkeys([float(cfg["block_m"]), small]):
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", RegistrationWarning)
