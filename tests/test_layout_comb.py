@@ -131,3 +131,146 @@ def test_lines_between_module_rows_show_the_drawn_frame_contrast_and_not_on_a_sh
         shadow = glass - 8.0 + 3.0 * np.tanh((w - rng.uniform(0, depth)) / 0.3) + rng.normal(0, 0.05, n)
         assert _row_lines(s, w, shadow, cols, rows, WIDTH, mod_w, GAP, GAP, gsd, 0.15) < 1.0
         assert math.isnan(_row_lines(s, w, t, cols, 1, WIDTH, mod_w, GAP, GAP, gsd, 0.15))
+
+
+def _write_ortho(path, rng, cols, rows, mod_w, glass, ground, dip, gsd, origin, margin_m, beside=None):
+    """A north-up GeoTIFF of one drawn table running east (pixel centres on a grid, NETD noise);
+    ``beside(s, w, t)`` may change the scene (``s`` east from the table's west end, ``w`` south
+    from its north edge [m])."""
+    import rasterio
+    from rasterio.transform import from_origin
+
+    length, depth = cols * (WIDTH + GAP) - GAP, rows * (mod_w + GAP) - GAP
+    nx = int(math.ceil((length + 2 * margin_m) / gsd))
+    ny = int(math.ceil((depth + 2 * margin_m) / gsd))
+    x0, y_top = origin[0] - margin_m, origin[1] + depth + margin_m
+    cx = x0 + (np.arange(nx) + 0.5) * gsd
+    cy = y_top - (np.arange(ny) + 0.5) * gsd
+    xx, yy = np.meshgrid(cx, cy)
+    # s east from the table's west end, w south from its north (upper) edge
+    t = _table(rng, (xx - origin[0]).ravel(), (origin[1] + depth - yy).ravel(), cols, rows, mod_w, glass,
+               ground, dip)
+    if beside is not None:
+        t = beside((xx - origin[0]).ravel(), (origin[1] + depth - yy).ravel(), t)
+    t = t.reshape(ny, nx)
+    with rasterio.open(path, "w", driver="GTiff", width=nx, height=ny, count=1, dtype="float32",
+                       crs="EPSG:32633", transform=from_origin(x0, y_top, gsd, gsd), nodata=-9999.0) as ds:
+        ds.write(t.astype(np.float32), 1)
+    return length, depth
+
+
+def _neighbours(rng, between, full, drawn):
+    """The scene changed to hold the tables before and after the drawn one, ``between`` [m]
+    away; ``drawn`` = (cols, rows, mod_w, glass, ground, dip) of the drawn table."""
+
+    def beside(s, w, t):
+        before, after = s < -between[0], s > full + between[1]
+        t = t.copy()
+        t[before] = _table(rng, s[before] + between[0] + full, w[before], *drawn)
+        t[after] = _table(rng, s[after] - between[1] - full, w[after], *drawn)
+        return t
+
+    return beside
+
+
+def _shadow_beside(rng, shadow_w, shadow, length):
+    """The scene changed to hold a shadow ``shadow_w`` [m] wide north of the drawn row, at
+    ``shadow`` [degC]."""
+
+    def beside(s, w, t):
+        in_shadow = (w < 0) & (w > -shadow_w) & (s > 0) & (s < length)
+        return np.where(in_shadow, shadow + rng.normal(0.0, 0.05, s.size), t)
+
+    return beside
+
+
+def test_a_table_longer_than_its_candidate_is_fitted_to_its_ends(tmp_path):
+    # the mosaic can see only part of a table (a seam or a shadow breaks it up): the fit must
+    # run on to the table's drawn ends, counting its modules (plain geometry of the drawing),
+    # and stop there, before the next tables of its row
+    from pvscan.io.manifest import LayoutSpec, ModuleSpec
+    from pvscan.io.ortho import open_orthos
+    from pvscan.io.settings import load_pipeline, section
+    from pvscan.measure.layout_image.lattice import fit_table
+    from pvscan.measure.layout_image.segment import TableCandidate
+
+    rng = np.random.default_rng(SEED + 3)
+    cfg = dict(section(load_pipeline(), "layout_detect"))
+    gsd = 0.05
+    for k in range(3):
+        cols, rows = int(rng.integers(16, 26)), int(rng.integers(1, 3))
+        tilt = rng.uniform(10, 35)
+        mod_w = LENGTH * math.cos(math.radians(tilt))
+        glass = rng.uniform(30, 45)
+        # ground off the glass level by more than the glass band ([layout_detect] level_tol_k)
+        ground = glass + rng.choice([-1, 1]) * rng.uniform(5, 15)
+        origin = np.array([500000.0, 5000000.0])
+        path = tmp_path / f"t{k}.tif"
+        dip = rng.uniform(1.5, 4.0)
+        # the tables before and after it in the row, about a metre away (common practice)
+        full = cols * (WIDTH + GAP) - GAP
+        beside = _neighbours(rng, rng.uniform(0.9, 1.1, 2), full, (cols, rows, mod_w, glass, ground, dip))
+        length, depth = _write_ortho(path, rng, cols, rows, mod_w, glass, ground, dip, gsd, origin, full + 3.0,
+                                     beside)
+        # a candidate over 30-50 % of the table, somewhere along it
+        part = rng.uniform(0.3, 0.5) * length
+        start = rng.uniform(0.05, 0.95 - part / length) * length
+        cand = TableCandidate(centre=origin + np.array([start + 0.5 * part, 0.5 * depth]),
+                              axis=np.array([1.0, 0.0]), length_m=part, depth_m=depth, level_c=glass,
+                              band_c=(glass - 1.0, glass + 1.0), energy_log_thr=0.0, ground_c=ground, area_px=1)
+        module = ModuleSpec(pmax_w=400.0, width_m=WIDTH, length_m=LENGTH, cells_across=6, cells_along=10,
+                            bypass_diodes=3)
+        layout = LayoutSpec(orientation="portrait", gap_m=GAP, tilt_deg=float(tilt), azimuth_deg=180.0)
+        with open_orthos(path) as orthos:
+            fit = fit_table(orthos, cand, module, layout, cfg)
+        assert fit is not None
+        assert (fit.cols, fit.rows) == (cols, rows), (fit.cols, fit.rows, cols, rows, start, part)
+        # the ends where they are drawn, within a pixel
+        assert abs(fit.origin[0] - origin[0]) <= gsd, (fit.origin, origin)
+        assert abs(fit.origin[0] + fit.length_m - origin[0] - length) <= gsd
+
+
+def test_a_tracker_row_merged_with_its_shadow_is_fitted_on_the_row(tmp_path):
+    # a tracker row (one module row, portrait, steep tilt) and its shadow beside it at about the
+    # glass level form one candidate; the fit must count the row's drawn modules, one row, the
+    # row where it is drawn
+    from pvscan.io.manifest import LayoutSpec, ModuleSpec
+    from pvscan.io.ortho import open_orthos
+    from pvscan.io.settings import load_pipeline, section
+    from pvscan.measure.layout_image.lattice import fit_table
+    from pvscan.measure.layout_image.segment import TableCandidate
+
+    rng = np.random.default_rng(SEED + 4)
+    cfg = dict(section(load_pipeline(), "layout_detect"))
+    gsd = 0.05
+    module = ModuleSpec(pmax_w=400.0, width_m=WIDTH, length_m=LENGTH, cells_across=6, cells_along=10,
+                        bypass_diodes=3)
+    for k in range(3):
+        cols = int(rng.integers(10, 16))
+        tilt = rng.uniform(45, 55)
+        mod_w = LENGTH * math.cos(math.radians(tilt))
+        glass = rng.uniform(10, 20)
+        ground = glass + rng.uniform(15, 25)  # sunlit ground far warmer than the glass
+        shadow_w = rng.uniform(2.0, 3.0)  # the shadow's width beside the row [m]
+        shadow = glass + rng.uniform(-1.0, 1.0)  # shaded ground within the glass band of 3 K
+        beside = _shadow_beside(rng, shadow_w, shadow, cols * (WIDTH + GAP))
+
+        origin = np.array([500000.0, 5000000.0])
+        path = tmp_path / f"r{k}.tif"
+        length, depth = _write_ortho(path, rng, cols, 1, mod_w, glass, ground, rng.uniform(1.5, 3.0), gsd, origin,
+                                     4.0, beside)
+        # the candidate: the row and its shadow (north of the row, w < 0)
+        cand = TableCandidate(centre=origin + np.array([0.5 * length, depth - 0.5 * (depth + shadow_w)]) +
+                              np.array([0.0, shadow_w]), axis=np.array([1.0, 0.0]), length_m=length,
+                              depth_m=depth + shadow_w, level_c=glass, band_c=(glass - 1.0, glass + 1.0),
+                              energy_log_thr=0.0, ground_c=ground, area_px=1)
+        layout = LayoutSpec(orientation="portrait", gap_m=GAP, tilt_deg=float(tilt), azimuth_deg=180.0)
+        with open_orthos(path) as orthos:
+            fit = fit_table(orthos, cand, module, layout, cfg)
+        assert fit is not None and fit.confidence >= float(cfg["min_confidence"])
+        assert (fit.cols, fit.rows, fit.orientation) == (cols, 1, "portrait"), (fit.cols, fit.rows, fit.orientation)
+        # the row where it is drawn: its north edge at the origin's northing + depth, within two
+        # pixels (against a shadow at the glass level that edge is seen by the comb alone)
+        north = max(fit.origin[1], fit.origin[1] + fit.depth_m * fit.across[1])
+        assert abs(north - (origin[1] + depth)) <= 2 * gsd, (north, origin[1] + depth)
+        assert abs(fit.origin[0] - origin[0]) <= gsd

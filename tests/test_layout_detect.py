@@ -264,3 +264,80 @@ def test_cli_check_writes_findings_and_fixed_layout(clean_flight, tmp_path):
     # matched modules carry the drawing's ids (the simulator's TB<row>-<table>-R<r>-C<cc>)
     kept = fixed[fixed["source"] == "layout"]
     assert kept["module_id"].str.startswith("TB").all()
+
+
+def _lattice_fit(origin, axis, cols, rows, mod_w, gap=0.02, mod_s=1.038):
+    across = np.array([-axis[1], axis[0]])
+    length = cols * (mod_s + gap) - gap
+    depth = rows * (mod_w + gap) - gap
+    return TableFit(origin=origin, axis=axis, across=across, length_m=length, depth_m=depth, rows=rows, cols=cols,
+                    orientation="portrait", module_s_m=mod_s, module_w_m=mod_w, gap_s_m=gap, gap_w_m=gap,
+                    confidence=0.8, misfit=0.02, level_c=40.0, contrast_k=5.0, cut=(False,) * 4,
+                    status=np.full((rows, cols), "ok", dtype=object), glass=np.ones((rows, cols)))
+
+
+def test_two_fits_of_one_split_table_join_and_neighbouring_tables_do_not():
+    # reference: plane geometry of a drawn lattice (module 1.038 m, gaps 0.02 m, common practice
+    # for 60-cell modules); tables of a row stand about a pitch (~1 m) apart (common practice)
+    from pvscan.measure.layout_image.detect import _join_rows
+
+    rng = np.random.default_rng(SEED)
+    for i in range(10):
+        ang = rng.uniform(-math.pi / 4, math.pi / 4)
+        axis = np.array([math.cos(ang), math.sin(ang)])
+        across = np.array([-axis[1], axis[0]])
+        cols, rows = int(rng.integers(12, 30)), int(rng.integers(1, 4))
+        # portrait and landscape modules in turn (module 1.038 x 2.094 m)
+        mod_s, mod_long = (1.038, 2.094) if i % 2 == 0 else (2.094, 1.038)
+        mod_w = mod_long * math.cos(math.radians(rng.uniform(10, 40)))
+        pitch = mod_s + 0.02
+        origin = rng.uniform(0, 100, 2) + 5e5
+        # a shadow splits the table; each part fitted with up to two modules of the other
+        # (0 = the parts just meet) and a few millimetres of error
+        k = int(rng.integers(4, cols - 4))
+        over = int(rng.integers(0, 3))
+        err = rng.normal(0, 0.005, 4)
+        a = _lattice_fit(origin + err[0] * axis + err[1] * across, axis, k + over, rows, mod_w, mod_s=mod_s)
+        b = _lattice_fit(origin + (k * pitch + err[2]) * axis + err[3] * across, axis, cols - k, rows, mod_w,
+                         mod_s=mod_s)
+        got = _join_rows([b, a], 0.15, 0.3)
+        assert len(got) == 1
+        j = got[0]
+        assert (j.cols, j.rows) == (cols, rows)
+        assert np.allclose(j.corners()[0, 0, 0], origin, atol=0.02)
+        far = origin + (cols * pitch - 0.02) * axis + (rows * (mod_w + 0.02) - 0.02) * across
+        assert np.allclose(j.corners()[-1, -1, 2], far, atol=0.02)
+        # the next table of the row, a metre beyond the end, and the next table row: apart (also
+        # for landscape modules, whose half pitch is more than the metre between tables)
+        c = _lattice_fit(origin + (cols * pitch - 0.02 + rng.uniform(0.9, 1.1)) * axis, axis, cols, rows, mod_w,
+                         mod_s=mod_s)
+        d = _lattice_fit(origin + (rows * (mod_w + 0.02) + rng.uniform(2, 5)) * across, axis, cols, rows, mod_w,
+                         mod_s=mod_s)
+        assert len(_join_rows([j, c, d], 0.15, 0.3)) == 3
+
+
+def test_a_part_overlapping_a_larger_fit_of_its_table_adds_its_modules():
+    # reference: plane geometry of a drawn lattice; a table fitted as two parts on one lattice
+    # that overlap by more than the overlap rule's share of the smaller one (the same table
+    # found twice, in part): the plant keeps the whole table, not only the larger part
+    from pvscan.io.settings import load_pipeline, section
+    from pvscan.measure.layout_image.detect import _combine
+
+    cfg = dict(section(load_pipeline(), "layout_detect"))
+    rng = np.random.default_rng(SEED + 1)
+    pitch = 2.094 + 0.02  # landscape modules along the table
+    for _ in range(6):
+        ang = rng.uniform(-math.pi / 4, math.pi / 4)
+        axis = np.array([math.cos(ang), math.sin(ang)])
+        cols, rows = int(rng.integers(8, 16)), int(rng.integers(2, 5))
+        mod_w = 1.038 * math.cos(math.radians(rng.uniform(10, 35)))
+        origin = rng.uniform(0, 100, 2) + 5e5
+        small = int(rng.integers(3, 5))
+        over = small - 1  # the part shares all but one of its columns with the larger one
+        big = _lattice_fit(origin, axis, cols - 1, rows, mod_w, mod_s=2.094)
+        part = _lattice_fit(origin + (cols - small) * pitch * axis, axis, small, rows, mod_w, mod_s=2.094)
+        assert _overlaps(big, part, float(cfg["overlap_share"]))  # the case the overlap rule sees
+        assert over >= 2
+        got = _combine([big, part], cfg)
+        assert len(got) == 1 and (got[0].cols, got[0].rows) == (cols, rows)
+        assert np.allclose(got[0].origin, origin, atol=1e-6)

@@ -137,6 +137,91 @@ def _remainders(cand: Any, fit: TableFit, module_width_m: float) -> list[Any]:
     return out
 
 
+def _joined(f: TableFit, g: TableFit, across_tol_m: float, gap_m: float) -> TableFit | None:
+    """One table from two fits of one row of modules, or None when they are not that.
+
+    A shadow or a seam across a table can split it into two candidates, each fitted to its
+    part; the parts lie on one lattice: same orientation, rows, module size and axis, the
+    same line across (within ``across_tol_m``), and along the axis they overlap or leave at
+    most ``gap_m`` between them (tables of a row stand about a metre apart, common practice:
+    two tables are never joined). The larger fit's lattice is run on, whole pitches, over the other's extent;
+    the modules it adds keep the other fit's status and glass share.
+    """
+    from dataclasses import replace
+
+    if f.cols < g.cols:
+        f, g = g, f
+    if (f.orientation != g.orientation or f.rows != g.rows or abs(f.module_s_m - g.module_s_m) > 0.01
+            or abs(f.module_w_m - g.module_w_m) > 0.01 or abs(float(f.axis @ g.axis)) < math.cos(math.radians(1.0))):
+        return None
+    pitch = f.module_s_m + f.gap_s_m
+    g_axis = g.axis if float(f.axis @ g.axis) > 0 else -g.axis
+    g_start = g.origin if float(f.axis @ g.axis) > 0 else g.origin + g.length_m * g.axis
+    g_across = g_start if float(f.across @ g.across) > 0 else g_start + g.depth_m * g.across
+    if abs(float((g_across - f.origin) @ f.across)) > across_tol_m:
+        return None
+    s0 = float((g_start - f.origin) @ f.axis)
+    s1 = s0 + g.length_m * float(g_axis @ f.axis)
+    if s0 > f.length_m + gap_m or s1 < -gap_m or (s0 >= -0.5 * pitch and s1 <= f.length_m + 0.5 * pitch):
+        return None  # apart, or within the larger one (the overlap rule's case)
+    before = max(0, int(round(-s0 / pitch)))
+    after = max(0, int(round((s1 - f.length_m) / pitch)))
+    cols = f.cols + before + after
+    status = np.empty((f.rows, cols), dtype=object)
+    glass = np.empty((f.rows, cols))
+    g_flip = float(f.axis @ g.axis) < 0
+    rows_g = slice(None) if float(f.across @ g.across) > 0 else slice(None, None, -1)
+    for c in range(cols):
+        if before <= c < before + f.cols:
+            status[:, c], glass[:, c] = f.status[:, c - before], f.glass[:, c - before]
+            continue
+        k = int(np.clip(round(((c - before) * pitch - s0) / pitch), 0, g.cols - 1))
+        k = g.cols - 1 - k if g_flip else k
+        status[:, c], glass[:, c] = g.status[rows_g, k], g.glass[rows_g, k]
+    n_f, n_g = f.rows * f.cols, g.rows * g.cols
+    g_cut = (g.cut[1], g.cut[0]) if g_flip else (g.cut[0], g.cut[1])
+    return replace(f, origin=f.origin - before * pitch * f.axis, length_m=cols * pitch - f.gap_s_m, cols=cols,
+                   confidence=(f.confidence * n_f + g.confidence * n_g) / (n_f + n_g),
+                   misfit=max(f.misfit, g.misfit), contrast_k=(f.contrast_k * n_f + g.contrast_k * n_g) / (n_f + n_g),
+                   cut=(g_cut[0] if before else f.cut[0], g_cut[1] if after else f.cut[1], f.cut[2], f.cut[3]),
+                   status=status, glass=glass)
+
+
+def _join_rows(fits: list[TableFit], across_tol_m: float, gap_m: float) -> list[TableFit]:
+    """Fits of one table's parts joined (:func:`_joined`) until no two join."""
+    out = list(fits)
+    changed = True
+    while changed:
+        changed = False
+        for i in range(len(out)):
+            for j in range(i + 1, len(out)):
+                m = _joined(out[i], out[j], across_tol_m, gap_m)
+                if m is not None:
+                    out = [f for k, f in enumerate(out) if k not in (i, j)] + [m]
+                    changed = True
+                    break
+            if changed:
+                break
+    return out
+
+
+def _combine(fits: list[TableFit], cfg: dict) -> list[TableFit]:
+    """The plant's tables from all fits: those consistent with the plant (:func:`_consistent`),
+    parts of one row joined (:func:`_join_rows`; before the overlap rule, which would keep
+    the larger of two overlapping parts and lose the rest of the table), then of the fits
+    covering each other by more than ``overlap_share`` the one with the larger confidence x
+    sqrt(modules) (the same table found twice: a part is fitted on fewer frame lines), and
+    the parts joined again."""
+    join = (float(cfg["join_across_m"]), float(cfg["join_gap_m"]))
+    fits = _join_rows(_consistent(fits, float(cfg["plant_contrast_share"])), *join)
+    fits.sort(key=lambda f: -f.confidence * math.sqrt(f.rows * f.cols))
+    kept: list[TableFit] = []
+    for f in fits:
+        if not any(_overlaps(g, f, float(cfg["overlap_share"])) for g in kept):
+            kept.append(f)
+    return _join_rows(kept, *join)
+
+
 def _order(fits: list[TableFit], azimuth_deg: float) -> list[tuple[int, int, TableFit]]:
     """(table row, table, fit) numbered as the module docstring says."""
     if not fits:
@@ -237,14 +322,7 @@ def detect_layout(orthos: Any, module: Any, layout: Any, settings: Any = None, p
                      fit.confidence, fit.misfit)
             continue
         fits.append(fit)
-    fits = _consistent(fits, float(cfg["plant_contrast_share"]))
-    # the same table found twice (two candidates of one table): keep the more confident
-    # (a bigger table wins over a confident part of it: a part is fitted on fewer frame lines)
-    fits.sort(key=lambda f: -f.confidence * math.sqrt(f.rows * f.cols))
-    kept: list[TableFit] = []
-    for f in fits:
-        if not any(_overlaps(g, f, float(cfg["overlap_share"])) for g in kept):
-            kept.append(f)
+    kept = _combine(fits, cfg)
     if not kept:
         raise LayoutError(f"{orthos.tiles[0].path}: no table of modules found in the ortho "
                           f"(module {module.width_m} x {module.length_m} m, tilt {layout.tilt_deg} deg)")

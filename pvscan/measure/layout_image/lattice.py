@@ -39,8 +39,8 @@ from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
-from rasterio.windows import Window
 
+from pvscan.measure.layout_image.samples import _comb_strip, _extent, _half_crossing, _samples
 from pvscan.measure.layout_image.segment import TableCandidate, _mode, glass_band
 
 __all__ = ["TableFit", "fit_table", "facing_vector"]
@@ -115,127 +115,6 @@ class TableFit:
         return np.stack([x, y], axis=-1)
 
 
-def _samples(orthos: Any, centre: np.ndarray, half: float, win_m: float
-             ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """Pixel centres (x, y), values [degC] and log gradient energy of every tile near a point.
-
-    Returns x, y, t (NaN = nodata), log of the gradient magnitude averaged over ``win_m``.
-    """
-    from scipy import ndimage as ndi
-
-    from pvscan.measure.layout_image.segment import _fill_nan
-
-    xs, ys, ts, es = [], [], [], []
-    for i, t in enumerate(orthos.tiles):
-        inv = ~t.transform
-        cols, rows = inv * (np.array([centre[0] - half, centre[0] + half]),
-                            np.array([centre[1] - half, centre[1] + half]))
-        c0, c1 = int(math.floor(min(cols))), int(math.ceil(max(cols)))
-        r0, r1 = int(math.floor(min(rows))), int(math.ceil(max(rows)))
-        c0, r0 = max(c0, 0), max(r0, 0)
-        c1, r1 = min(c1, t.width), min(r1, t.height)
-        if c1 <= c0 or r1 <= r0:
-            continue
-        data = orthos.read(i, Window(c0, r0, c1 - c0, r1 - r0))
-        cc, rr = np.meshgrid(np.arange(c0, c1) + 0.5, np.arange(r0, r1) + 0.5)
-        x, y = t.transform * (cc.ravel(), rr.ravel())
-        xs.append(np.asarray(x))
-        ys.append(np.asarray(y))
-        ts.append(data.ravel().astype(np.float64))
-        work = _fill_nan(data.astype(np.float64))
-        gy, gx = np.gradient(work, t.gsd_m) if min(work.shape) > 1 else (np.zeros_like(work),) * 2
-        win = max(3, int(round(win_m / t.gsd_m)))
-        es.append(np.log(ndi.uniform_filter(np.hypot(gx, gy), win) + 1e-6).ravel())
-    if not xs:
-        e = np.empty(0)
-        return e, e, e, e
-    return np.concatenate(xs), np.concatenate(ys), np.concatenate(ts), np.concatenate(es)
-
-
-def _runs_closed(flag: np.ndarray, close_bins: int) -> np.ndarray:
-    """A boolean profile with gaps up to ``close_bins`` bins filled."""
-    from scipy import ndimage as ndi
-
-    if close_bins < 1:
-        return flag
-    pad = close_bins + 1
-    f = np.pad(flag, pad)
-    f = ndi.binary_closing(f, np.ones(2 * close_bins + 1, bool))
-    return f[pad:-pad]
-
-
-def _extent(coord: np.ndarray, glass: np.ndarray, valid: np.ndarray, bin_m: float, close_m: float,
-            lo: float, hi: float) -> tuple[float, float, bool, bool]:
-    """Run of glass bins holding 0 along one axis; whether each end meets nodata."""
-    edges = np.arange(lo, hi + bin_m, bin_m)
-    k = np.clip(np.searchsorted(edges, coord) - 1, 0, len(edges) - 2)
-    nb = len(edges) - 1
-    n_valid = np.bincount(k, weights=valid, minlength=nb)
-    n_all = np.bincount(k, minlength=nb)
-    n_glass = np.bincount(k, weights=glass & valid, minlength=nb)
-    frac = np.where(n_valid > 0, n_glass / np.maximum(n_valid, 1), np.nan)
-    is_glass = np.nan_to_num(frac, nan=0.0) >= 0.5
-    # nodata bins next to glass count as unknown, not ground
-    nod = (n_all > 0) & (n_valid < 0.5 * n_all)
-    is_glass = _runs_closed(is_glass, int(round(close_m / bin_m)))
-    mid = int(np.clip(np.searchsorted(edges, 0.0) - 1, 0, nb - 1))
-    if not is_glass[mid]:
-        near = np.flatnonzero(is_glass)
-        if near.size == 0:
-            return math.nan, math.nan, False, False
-        mid = int(near[np.argmin(np.abs(near - mid))])
-    a = mid
-    while a > 0 and is_glass[a - 1]:
-        a -= 1
-    b = mid
-    while b < nb - 1 and is_glass[b + 1]:
-        b += 1
-    probe = max(1, int(round(0.3 / bin_m)))
-    cut_lo = a == 0 or bool(nod[max(0, a - probe):a].any())
-    cut_hi = b == nb - 1 or bool(nod[b + 1:b + 1 + probe].any())
-    return float(edges[a]), float(edges[b + 1]), cut_lo, cut_hi
-
-
-def _half_crossing(coord: np.ndarray, t: np.ndarray, edge: float, outward: float, gsd: float) -> float:
-    """Sub-pixel edge: where the mean profile crosses half way between inside and outside.
-
-    ``outward`` is +1 when the outside lies toward larger coordinates.
-    """
-    near = np.abs(coord - edge) < 6 * gsd
-    if near.sum() < 8:
-        return edge
-    d = (coord[near] - edge) * outward
-    tv = t[near]
-    inside = tv[(d < -2 * gsd) & (d > -5 * gsd)]
-    outside = tv[(d > 2 * gsd) & (d < 5 * gsd)]
-    if inside.size < 3 or outside.size < 3:
-        return edge
-    ti, to = float(np.median(inside)), float(np.median(outside))
-    if abs(ti - to) < 0.5:
-        return edge
-    bin_m = gsd / 4
-    nb = int(round(8 * gsd / bin_m))
-    k = np.floor((d + 4 * gsd) / bin_m).astype(int)
-    ok = (k >= 0) & (k < nb)
-    sums = np.bincount(k[ok], weights=tv[ok], minlength=nb)
-    cnt = np.bincount(k[ok], minlength=nb)
-    have = cnt > 0
-    if have.sum() < 4:
-        return edge
-    pos = (np.arange(nb) + 0.5) * bin_m - 4 * gsd
-    prof = (sums[have] / cnt[have] - to) / (ti - to)  # 1 inside, 0 outside
-    pos = pos[have]
-    # last position (from inside outward) where the profile is still above one half
-    above = prof >= 0.5
-    idx = np.flatnonzero(above[:-1] & ~above[1:])
-    if idx.size == 0:
-        return edge
-    j = int(idx[np.argmin(np.abs(pos[idx]))])
-    p0, p1 = prof[j], prof[j + 1]
-    x = pos[j] + (p0 - 0.5) / (p0 - p1) * (pos[j + 1] - pos[j])
-    return edge + x * outward
-
-
 def _lattice(extent: float, mod: float, gap: float) -> tuple[int, float]:
     n = max(1, int(round((extent + gap) / (mod + gap))))
     return n, abs((extent + gap) / (mod + gap) - n)
@@ -258,6 +137,14 @@ def _size(extent: float, n: int, datasheet: float, gap: float, settings: dict) -
 def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, settings: dict) -> TableFit | None:
     """Refine a table candidate and fit its module lattice (see the module docstring).
 
+    The pixels are read around the candidate; a candidate shorter than its table (the mosaic
+    saw part of it) is fitted with its comb running to the end of that window. Then, when the
+    ground around the table is off the glass level by more than ``level_tol_k`` (so the comb
+    stops at the ground between two tables of a row, :func:`.periodic.comb_extent`), the
+    candidate is made longer by ``grow_m`` on each end beyond which glass goes on and the
+    table fitted again, up to ``grow_steps`` times, while the fit gains modules (same rows,
+    confidence not lower by more than 0.1).
+
     Parameters
     ----------
     orthos : OrthoSet
@@ -274,6 +161,47 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
     TableFit or None
         None when no lattice fits (no glass run at the candidate's centre).
     """
+    from dataclasses import replace
+
+    fit, ends = _fit_window(orthos, cand, module, layout, settings)
+    across_reach = None
+    min_conf = float(settings["min_confidence"])
+    if fit is None or fit.confidence < min_conf:
+        # no table on the candidate as a whole: it may hold a table and a region beside it at
+        # the glass level (a tracker row and its shadow); fit the strip of frame lines alone
+        strip = _comb_strip(orthos, cand, module, layout, settings)
+        if strip is not None:
+            # across, the comb stays near the strip (a quarter of a module width either side:
+            # the region beside it has a comb of its own)
+            across_reach = 0.25 * module.width_m
+            fit_s, ends_s = _fit_window(orthos, strip, module, layout, settings, across_reach)
+            if fit_s is not None and (fit is None or fit_s.confidence > fit.confidence):
+                fit, ends, cand = fit_s, ends_s, strip
+    tol = float(settings["level_tol_k"])
+    stops = math.isfinite(cand.ground_c) and abs(cand.level_c - cand.ground_c) > tol
+    grow = float(settings["grow_m"])
+    for _ in range(int(settings["grow_steps"]) if stops else 0):
+        if fit is None or not any(ends) or any(fit.cut) or fit.confidence < min_conf:
+            break
+        lo, hi = grow * ends[0], grow * ends[1]
+        # the grown candidate: the fitted table, longer on the ends where glass goes on
+        centre = fit.origin + 0.5 * fit.length_m * fit.axis + 0.5 * fit.depth_m * fit.across
+        grown = replace(cand, centre=centre + 0.5 * (hi - lo) * fit.axis, axis=fit.axis,
+                        length_m=fit.length_m + lo + hi, depth_m=fit.depth_m)
+        fit2, ends2 = _fit_window(orthos, grown, module, layout, settings, across_reach)
+        if fit2 is None or fit2.cols <= fit.cols or fit2.rows != fit.rows or fit2.confidence < fit.confidence - 0.1:
+            break
+        fit, ends = fit2, ends2
+    return fit
+
+
+def _fit_window(orthos: Any, cand: TableCandidate, module: Any, layout: Any, settings: dict,
+                across_reach_m: float | None = None) -> tuple[TableFit | None, tuple[bool, bool]]:
+    """:func:`fit_table` on the pixels around one candidate; with whether glass goes on
+    beyond the fitted table's start and end along its axis (the band up to most of a module
+    pitch beyond the end, over the table's middle rows, within ``level_tol_k`` of the glass
+    level and nearer it than the ground's level). The comb looks ``comb_reach_m`` beyond the
+    candidate across the axis, or ``across_reach_m`` [m] when given."""
     gsd = float(orthos.gsd_m)
     tol = float(settings["level_tol_k"])
     margin = float(settings["window_margin_m"])
@@ -281,7 +209,7 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
     x, y, t, _energy = _samples(orthos, cand.centre, half,
                                 0.5 * float(settings["texture_window_modules"]) * module.width_m)
     if x.size == 0:
-        return None
+        return None, (False, False)
     valid = np.isfinite(t)
     face = facing_vector(layout.azimuth_deg)
     centre = cand.centre.astype(float).copy()
@@ -305,7 +233,8 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
             level = _mode(t[inner], settings["level_bin_k"])
             band = glass_band(t[inner], level, settings["level_bin_k"], tol)
         glass = valid & (t >= band[0]) & (t <= band[1])
-        comb = _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd, cand.ground_c)
+        comb = _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd, cand.ground_c,
+                     across_reach_m)
         if comb is not None:
             # the frame-line comb: the table's extent whatever the ground's temperature
             _, ds, dw, ext_s, ext_w, comb_k = comb
@@ -317,11 +246,11 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
             s_lo, s_hi, c0, c1 = _extent(s[band_w], glass[band_w], valid[band_w], bin_m, close_m,
                                          -half, half)
             if not math.isfinite(s_lo):
-                return None
+                return None, (False, False)
             band_s = (s > s_lo + 0.3) & (s < s_hi - 0.3)
             w_lo, w_hi, c2, c3 = _extent(w[band_s], glass[band_s], valid[band_s], bin_m, close_m, -half, half)
             if not math.isfinite(w_lo):
-                return None
+                return None, (False, False)
         cut = (c0, c1, c2, c3)
         tv = np.where(valid, t, np.nan)
         ok = valid & band_s
@@ -365,16 +294,35 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
         across = -across
     orientations: tuple[str, ...] = ("portrait", "landscape")
     if not any(cut):
-        comb = _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd, cand.ground_c)
+        comb = _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd, cand.ground_c,
+                     across_reach_m)
         if comb is not None:
             orient, ds, dw, length, depth, comb_k = comb
             centre = centre + ds * axis + dw * across
             orientations = (orient,)
-    return _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band, cand, cut, module,
-                      layout, settings, gsd, orientations, comb_k)
+    fit = _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band, cand, cut, module,
+                     layout, settings, gsd, orientations, comb_k)
+    if fit is None:
+        return None, (False, False)
+    # the ends: the table goes on when the ground band beyond an end (up to most of a pitch:
+    # the next table of a row stands about a pitch away) is at the glass level
+    pitch = fit.module_s_m + fit.gap_s_m
+    s_f = (x - fit.origin[0]) * fit.axis[0] + (y - fit.origin[1]) * fit.axis[1]
+    w_f = (x - fit.origin[0]) * fit.across[0] + (y - fit.origin[1]) * fit.across[1]
+    rows_in = valid & (w_f > 0.2 * fit.depth_m) & (w_f < 0.8 * fit.depth_m)
+    ends = []
+    for beyond in (-s_f, s_f - fit.length_m):
+        sel = rows_in & (beyond > 0.15) & (beyond < 0.85 * pitch)
+        if sel.sum() < 16:
+            ends.append(False)
+            continue
+        mid = float(np.median(t[sel]))
+        ends.append(abs(mid - level) <= tol and abs(mid - level) < abs(mid - cand.ground_c))
+    return fit, (ends[0], ends[1])
 
 
-def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd, ground_c=math.nan):
+def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings, gsd, ground_c=math.nan,
+          across_reach_m=None):
     """Orientation, centre offset (along, across) [m] and extents [m] from the frame-line comb.
 
     Each orientation's comb is measured with each line looked for within ``line_shift_m``
@@ -391,13 +339,14 @@ def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings
     s = (x - centre[0]) * axis[0] + (y - centre[1]) * axis[1]
     w = (x - centre[0]) * across[0] + (y - centre[1]) * across[1]
     reach = float(settings["comb_reach_m"])
+    reach_w = reach if across_reach_m is None else float(across_reach_m)
 
     def run(orient: str, shift_m: float) -> Any:
         mod_s = module.width_m if orient == "portrait" else module.length_m
         mod_w = (module.length_m if orient == "portrait" else module.width_m) * cos_t
         lattice = (mod_w + gap * cos_t, gap * cos_t)
         return comb_extent(s, w, t, (-0.5 * length - reach, 0.5 * length + reach),
-                           (-0.5 * depth - reach, 0.5 * depth + reach), (-0.15 * depth, 0.15 * depth),
+                           (-0.5 * depth - reach_w, 0.5 * depth + reach_w), (-0.15 * depth, 0.15 * depth),
                            mod_s + gap, gsd, float(settings["dip_fraction"]), float(settings["close_m"]),
                            shift_m, lattice, float(settings["level_tol_k"]), ground_c)
 

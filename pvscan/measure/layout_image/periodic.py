@@ -117,9 +117,10 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
     glass_tol_k : float, optional
         A line missing between two pairs of regular lines two pitches apart, the modules
         either side within this of the glass level, is a line a mosaic seam skipped (the
-        table goes on). An end module whose middle half is further than this from the glass level of the
+        table goes on). A module whose middle half is further than this from the glass level of the
         table's modules and nearer the ground's level is the ground between this table and
-        the next one of its row (tables stand about a pitch apart), not a module [K].
+        the next one of its row (tables stand about a pitch apart), not a module: the table
+        ends there (the run of lines holding the window's centre stops at it) [K].
     ground_c : float, optional
         The ground's level around the table [degC]: an end module nearer it than the glass
         level (and off the glass level by more than ``glass_tol_k``) is ground; without it
@@ -227,6 +228,16 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
                 return abs(mid - glass_c) > glass_tol_k and abs(mid - ground_c) < abs(mid - glass_c)
 
             if math.isfinite(glass_tol_k) and math.isfinite(ground_c) and math.isfinite(glass_c) and b - a >= 3:
+                # within the run too: a window longer than the table holds the next table of
+                # the row, whose first frame is about where this table's next line would be
+                j = centre
+                while j < b and not ground_between(j, j + 1):
+                    j += 1
+                b = j
+                j = centre
+                while j > a and not ground_between(j - 1, j):
+                    j -= 1
+                a = j
                 while b - a >= 2 and ground_between(b - 1, b):
                     b -= 1
                 while b - a >= 2 and ground_between(a, a + 1):
