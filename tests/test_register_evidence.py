@@ -274,3 +274,44 @@ def test_distorted_layout_is_placed_right_or_refused(tmp_path, layout):
         from pvscan.measure.validity import registration_check
 
         assert registration_check(reg, load_pipeline())["passed"] is False, reg.message
+
+
+class _CountingOrthos:
+    """An ortho set that counts the chunk caches opened on it (or, with ``cache=False``, has
+    none: every window is read on its own)."""
+
+    def __init__(self, orthos, cache=True):
+        self._orthos, self.caches = orthos, 0
+        if cache:
+            self.window_cache = self._counted
+
+    def __getattr__(self, name):
+        if name == "window_cache":
+            raise AttributeError(name)
+        return getattr(self._orthos, name)
+
+    def _counted(self, *args, **kwargs):
+        self.caches += 1
+        return self._orthos.window_cache(*args, **kwargs)
+
+
+def test_one_chunk_cache_serves_the_whole_registration(fixed_flight):
+    """Every module sample of one registration reads through one chunk cache, and the result is
+    the one of reading every window on its own. Reference: the simulator's truth (the layout is
+    right: within 3 cm of none)."""
+    fl = load_flight(fixed_flight / "flight.toml")
+    st = load_pipeline()
+    out = []
+    for cache in (True, False):
+        with open_orthos(fl.flight.orthos, fl.ortho) as o:
+            mods = read_layout(fl, o.crs)
+            c = mods.to_crs(4326).union_all().centroid
+            counting = _CountingOrthos(o, cache=cache)
+            reg = register_layout(counting, mods, st, sun=sun_vector(c.x, c.y, fl.flight.start),
+                                  expected_apparent_c=expected_module_apparent_c(fl, st, strict=False))
+        out.append((reg, counting.caches))
+    (shared, n_shared), (single, n_single) = out
+    assert n_shared == 1 and n_single == 0
+    assert shared.to_dict() == single.to_dict()
+    assert shared.status == "ok", shared.message
+    assert _truth_residual_m(fixed_flight, shared, mods) <= NO_SHIFT_TOL_M, shared.message

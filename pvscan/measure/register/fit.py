@@ -33,6 +33,7 @@ from pvscan.errors import RegistrationWarning
 from pvscan.io.layout.frames import FRAME_COLUMNS
 from pvscan.measure._memory import release_freed_memory
 from pvscan.measure.register._blocks import _settings
+from pvscan.measure.register._chunks import shared_chunks
 from pvscan.measure.register._pitch import _pitches, _row_pitch
 from pvscan.measure.register._records import Registration
 from pvscan.measure.register.estimate import estimate_shift
@@ -145,6 +146,17 @@ def register_layout(orthos: Any, modules: gpd.GeoDataFrame, settings: Mapping[st
     cfg = _settings(settings)
     if not cfg["enabled"]:
         return Registration(message="registration disabled ([register] enabled = false)", status="not_run")
+    with shared_chunks(orthos) as shared:  # every module sample decodes a part of the ortho once
+        reg = _register(shared, modules, cfg, sun, expected_apparent_c, progress, forced_shift)
+    logger.info("register: %s", reg.message)
+    # the block passes' and samples' arrays, freed, would stay resident in the C heap
+    release_freed_memory()
+    return reg
+
+
+def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], sun: tuple[float, ...] | None,
+              expected_apparent_c: float | None, progress: Any, forced_shift: Any) -> Registration:
+    """:func:`register_layout` on settings already read."""
     centre = _centre(modules)
     ident = Placement(cx=centre[0], cy=centre[1])
     bounds = modules.total_bounds
@@ -159,9 +171,7 @@ def register_layout(orthos: Any, modules: gpd.GeoDataFrame, settings: Mapping[st
         # that rotation and scale are measured on a small site too (one block: a shift only)
         small = min(float(cfg["block_m"]), max(float(cfg["min_block_m"]), extent / float(cfg["min_blocks_across"])))
         fits: list[Registration] = []
-        # two block sizes that cut the site into as many blocks give the same windows: the
-        # second pass reuses the first one's blocks
-        cache: dict[Any, Any] = {}
+        cache: dict[Any, Any] = {}  # equal windows of the two block sizes are analysed once
         for block in dict.fromkeys([float(cfg["block_m"]), small]):
             with warnings.catch_warnings():
                 warnings.simplefilter("ignore", RegistrationWarning)
@@ -284,9 +294,6 @@ def register_layout(orthos: Any, modules: gpd.GeoDataFrame, settings: Mapping[st
         _no_move(reg)
     if reg.status in ("ok", "ambiguous") and forced_shift is None and cfg["local_enabled"] and reg.local is None:
         _refine_locally(orthos, modules, reg, cfg, ident)
-    logger.info("register: %s", reg.message)
-    # the block passes' and samples' arrays, freed, would stay resident in the C heap
-    release_freed_memory()
     return reg
 
 
