@@ -131,8 +131,11 @@ def test_findings_crowding_a_stretch_of_a_row_fail_row_cluster(seed):
     defect[rest] = "hot_cell"
     ev = _clusters(m, defect)
     c = {x["name"]: x for x in evidence_checks({"module_spread_k": 0.5, "other_spread_k": 0.5, **ev})}["row_cluster"]
-    assert c["passed"] is False and ev["row_cluster_findings"] >= 9
-    assert set(m.module_id.to_numpy()[crowd]) <= set(c["modules"]) | set()
+    # the densest stretch is in the crowded row (its least chance may be a part of the 13
+    # modules, such as 8 of 10) and holds most of the crowd
+    assert c["passed"] is False
+    row = set(m.module_id.to_numpy()[3 * 22:4 * 22])
+    assert set(c["modules"]) <= row and ev["row_cluster_findings"] >= 7
     assert "image artefact" in c["message"]
     scattered = np.full(n, None, dtype=object)
     scattered[rng.choice(n, len(crowd) + len(rest), replace=False)] = "hot_cell"
@@ -182,23 +185,27 @@ def test_pid_seed_left_unexplained_fails_unexplained_pid(seed):
     # the module at the string's negative end shows PID strongly and runs warm, the modules
     # after it show no edge pattern (as under a cloud shadow or a patchy start): no PID string
     # is found, and the flight must say a string-level fault may be missed. Weak PID (first
-    # module losing 30 %), so that its edge cells stay below the hot-cell floor (3 K, common
-    # practice) and no other finding covers the module
-    failed = 0
-    for k in range(4):
+    # module losing 30 %), so that its edge cells mostly stay below the hot-cell floor (3 K,
+    # common practice). Rates measured on 200 plants (seeds 1000-1199): no PID found on 200,
+    # the check failed on 186 (93 %; on 13 of the others a hot-cell finding covers the first
+    # module, which is then explained). Over 12 plants: PID found on at most 1 (binomial at
+    # 0.5 %: P(X >= 2) = 0.16 %), the check failed on at least 8 (at 93 %: P(X <= 7) = 0.09 %)
+    failed = pid_found = 0
+    for k in range(12):
         p = _plant(seed + 200 + k)
         idx = p.pid("T1-1-R2", 3, f0=0.3)
         for i in idx[1:]:
             p.cm[i] = np.median(p.cm[i])
         d = p.run()
-        assert "pid" not in set(d.anomalies.defect)
+        pid_found += "pid" in set(d.anomalies.defect)
         c = _pid_check(d)
         failed += c["passed"] is False
         if c["passed"] is False:
             assert c["module"] == p.modules.module_id.to_numpy()[idx[0]] and "string-level" in c["message"]
             v = with_checks(Validity(), evidence_checks(d.evidence), load_pipeline())
             assert v.ok is False and "unexplained_pid" in v.failed
-    assert failed >= 3
+    assert pid_found <= 1
+    assert failed >= 8
 
 
 @pytest.mark.parametrize("z, passed", [(3.5, True), (7.4, False), (None, None)])
