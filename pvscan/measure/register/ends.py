@@ -20,9 +20,9 @@ alternative P + s (one pitch ``s`` toward module n):
 - P + s puts ground in cell 1 and glass in cell n + 1;
 
 so ``d = NCC(cell 1, cell 2) - NCC(cell n + 1, cell n)`` is positive when P is right and
-negative when P + s is. Lines of modules at their table's ends on a healthy site each
-give one such vote; their median over the site decides (a defective or shaded end module,
-a neighbouring table within one pitch, are single votes).
+negative when P + s is. Every line of modules whose end is clear of other tables gives one
+such vote; their median over the site decides (a defective or shaded end module is a
+single vote), and a median at or below ``[register] ends_min_vote`` flags the placement.
 
 References
 ----------
@@ -243,7 +243,8 @@ def judge_ends(orthos: Any, modules: gpd.GeoDataFrame, placed: gpd.GeoDataFrame,
         modules that way): the median vote against one pitch forward and one back over the
         lines, and the number of lines [-]; ``lowest`` (the lowest of those medians, None
         when no line could be read), ``limit`` (``ends_min_vote``) and ``decisive``
-        (``lowest`` above ``limit``, or nothing to read).
+        (``lowest`` above ``limit``, or nothing to read: the ends do not prefer a placement
+        one pitch away).
     """
     lines = end_lines(modules)
     out: dict[str, Any] = {}

@@ -359,7 +359,7 @@ def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cf
                         f"than {1.0 + margin:.2f} needed): findings may sit on the neighbouring module")
     elif not ends["decisive"]:
         reg.status = "ambiguous"
-        reg.message += (f"; the table ends do not tell it from a placement one module pitch away (median vote "
+        reg.message += (f"; the table ends prefer a placement one module pitch away (median vote "
                         f"{ends['lowest']:.2f}, more than {ends['limit']:g} needed): findings may sit on the "
                         "neighbouring module")
 
