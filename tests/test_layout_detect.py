@@ -15,12 +15,15 @@ import shapely
 from conftest import test_seed
 from scipy.special import erf
 
+from pvscan.io.settings import section
 from pvscan.measure.layout_image.check import check_layout, corrected_layout
 from pvscan.measure.layout_image.detect import _consistent, _overlaps
 from pvscan.measure.layout_image.lattice import TableFit, _half_crossing
 from pvscan.measure.layout_image.segment import _min_rect
 
 SEED = test_seed()
+#: The pipeline's [layout_detect] tolerances.
+_CFG = dict(section(None, "layout_detect"))
 
 
 def test_min_rect_matches_shapely_oriented_envelope():
@@ -54,7 +57,7 @@ def test_half_crossing_finds_a_blurred_edge_to_a_tenth_of_a_pixel():
         # outside toward larger coordinates
         t = outside + (inside - outside) * 0.5 * (1 - erf((coord - edge) / (sigma * math.sqrt(2))))
         t = t + rng.normal(0, 0.05, t.size)  # NETD 0.05 K (common practice for microbolometers)
-        got = _half_crossing(coord, t, round(edge / gsd) * gsd, +1, gsd)
+        got = _half_crossing(coord, t, round(edge / gsd) * gsd, +1, gsd, _CFG["edge_step_min_k"])
         assert abs(got - edge) < 0.1 * gsd
 
 
@@ -127,7 +130,7 @@ def test_a_candidate_over_two_table_rows_is_searched_again_beside_the_fitted_one
     cand_centre = low + 0.5 * length * axis + 0.5 * (2 * depth + gap) * across
     cand = TableCandidate(centre=cand_centre, axis=axis, length_m=length, depth_m=2 * depth + gap, level_c=40.0,
                           band_c=(38.0, 42.0), energy_log_thr=0.0, ground_c=30.0, area_px=1000)
-    parts = _remainders(cand, fit, 1.038)
+    parts = _remainders(cand, fit, 1.038, _CFG["remainder_clear_m"])
     assert len(parts) == 1
     p = parts[0]
     # across the axis, the strip holds the whole other table and stays off the fitted one
@@ -300,7 +303,7 @@ def test_two_fits_of_one_split_table_join_and_neighbouring_tables_do_not():
         a = _lattice_fit(origin + err[0] * axis + err[1] * across, axis, k + over, rows, mod_w, mod_s=mod_s)
         b = _lattice_fit(origin + (k * pitch + err[2]) * axis + err[3] * across, axis, cols - k, rows, mod_w,
                          mod_s=mod_s)
-        got = _join_rows([b, a], 0.15, 0.3)
+        got = _join_rows([b, a], _CFG)
         assert len(got) == 1
         j = got[0]
         assert (j.cols, j.rows) == (cols, rows)
@@ -313,7 +316,7 @@ def test_two_fits_of_one_split_table_join_and_neighbouring_tables_do_not():
                          mod_s=mod_s)
         d = _lattice_fit(origin + (rows * (mod_w + 0.02) + rng.uniform(2, 5)) * across, axis, cols, rows, mod_w,
                          mod_s=mod_s)
-        assert len(_join_rows([j, c, d], 0.15, 0.3)) == 3
+        assert len(_join_rows([j, c, d], _CFG)) == 3
 
 
 def test_a_part_overlapping_a_larger_fit_of_its_table_adds_its_modules():

@@ -24,6 +24,7 @@ from __future__ import annotations
 
 import logging
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass
 from typing import Any
 
@@ -104,14 +105,15 @@ def _overlaps(a: TableFit, b: TableFit, share: float) -> bool:
     return inter > share * min(pa.area, pb.area)
 
 
-def _remainders(cand: Any, fit: TableFit, module_width_m: float) -> list[Any]:
+def _remainders(cand: Any, fit: TableFit, module_width_m: float, clear_m: float) -> list[Any]:
     """Parts of a candidate the fitted table does not cover, to be searched again.
 
     Two tables whose gap the mosaic closed form one candidate (along a row, or rows across
     one another when the ground between them is as textured as the glass); the lattice
     takes one of them. The candidate's rectangle is cut into the strips beside the fitted
     table across the axis (full length) and the parts before and after it along the axis
-    (within the fitted table's band); each wider than the limits below is searched again.
+    (within the fitted table's band), each starting ``clear_m`` [m] from the fitted table;
+    each wider than the limits below is searched again.
     """
     from dataclasses import replace
 
@@ -125,34 +127,39 @@ def _remainders(cand: Any, fit: TableFit, module_width_m: float) -> list[Any]:
     out = []
     lo_c, hi_c = -0.5 * cand.depth_m, 0.5 * cand.depth_m
     band_lo, band_hi = max(lo_c, rel_w - half_w), min(hi_c, rel_w + half_w)
-    for lo, hi in ((lo_c, rel_w - half_w - 0.3), (rel_w + half_w + 0.3, hi_c)):
+    for lo, hi in ((lo_c, rel_w - half_w - clear_m), (rel_w + half_w + clear_m, hi_c)):
         if hi - lo > module_width_m:
             out.append(replace(cand, centre=cand.centre + 0.5 * (lo + hi) * n, depth_m=hi - lo))
     lo_c, hi_c = -0.5 * cand.length_m, 0.5 * cand.length_m
     band_c = cand.centre + 0.5 * (band_lo + band_hi) * n
-    for lo, hi in ((lo_c, rel_s - half_s - 0.3), (rel_s + half_s + 0.3, hi_c)):
+    for lo, hi in ((lo_c, rel_s - half_s - clear_m), (rel_s + half_s + clear_m, hi_c)):
         if hi - lo > 2.0 * module_width_m:
             out.append(replace(cand, centre=band_c + 0.5 * (lo + hi) * a, length_m=hi - lo,
                                depth_m=max(band_hi - band_lo, module_width_m)))
     return out
 
 
-def _joined(f: TableFit, g: TableFit, across_tol_m: float, gap_m: float) -> TableFit | None:
+def _joined(f: TableFit, g: TableFit, join: Mapping[str, float]) -> TableFit | None:
     """One table from two fits of one row of modules, or None when they are not that.
 
     A shadow or a seam across a table can split it into two candidates, each fitted to its
-    part; the parts lie on one lattice: same orientation, rows, module size and axis, the
-    same line across (within ``across_tol_m``), and along the axis they overlap or leave at
-    most ``gap_m`` between them (tables of a row stand about a metre apart, common practice:
-    two tables are never joined). The larger fit's lattice is run on, whole pitches, over the other's extent;
-    the modules it adds keep the other fit's status and glass share.
+    part; the parts lie on one lattice: same orientation and rows, module sizes within
+    ``join_size_m`` [m] and axes within ``join_axis_deg`` [deg], the same line across (within
+    ``join_across_m`` [m]), and along the axis they overlap or leave at most ``join_gap_m`` [m]
+    between them (tables of a row stand about a metre apart, common practice: two tables are
+    never joined); ``join`` holds these ``[layout_detect]`` keys. The larger fit's lattice is
+    run on, whole pitches, over the other's extent; the modules it adds keep the other fit's
+    status and glass share.
     """
     from dataclasses import replace
 
     if f.cols < g.cols:
         f, g = g, f
-    if (f.orientation != g.orientation or f.rows != g.rows or abs(f.module_s_m - g.module_s_m) > 0.01
-            or abs(f.module_w_m - g.module_w_m) > 0.01 or abs(float(f.axis @ g.axis)) < math.cos(math.radians(1.0))):
+    size_tol = float(join["join_size_m"])
+    across_tol_m, gap_m = float(join["join_across_m"]), float(join["join_gap_m"])
+    if (f.orientation != g.orientation or f.rows != g.rows or abs(f.module_s_m - g.module_s_m) > size_tol
+            or abs(f.module_w_m - g.module_w_m) > size_tol
+            or abs(float(f.axis @ g.axis)) < math.cos(math.radians(float(join["join_axis_deg"])))):
         return None
     pitch = f.module_s_m + f.gap_s_m
     g_axis = g.axis if float(f.axis @ g.axis) > 0 else -g.axis
@@ -187,15 +194,15 @@ def _joined(f: TableFit, g: TableFit, across_tol_m: float, gap_m: float) -> Tabl
                    status=status, glass=glass)
 
 
-def _join_rows(fits: list[TableFit], across_tol_m: float, gap_m: float) -> list[TableFit]:
-    """Fits of one table's parts joined (:func:`_joined`) until no two join."""
+def _join_rows(fits: list[TableFit], join: Mapping[str, float]) -> list[TableFit]:
+    """Fits of one table's parts joined (:func:`_joined`, tolerances ``join``) until no two join."""
     out = list(fits)
     changed = True
     while changed:
         changed = False
         for i in range(len(out)):
             for j in range(i + 1, len(out)):
-                m = _joined(out[i], out[j], across_tol_m, gap_m)
+                m = _joined(out[i], out[j], join)
                 if m is not None:
                     out = [f for k, f in enumerate(out) if k not in (i, j)] + [m]
                     changed = True
@@ -212,14 +219,14 @@ def _combine(fits: list[TableFit], cfg: dict) -> list[TableFit]:
     covering each other by more than ``overlap_share`` the one with the larger confidence x
     sqrt(modules) (the same table found twice: a part is fitted on fewer frame lines), and
     the parts joined again."""
-    join = (float(cfg["join_across_m"]), float(cfg["join_gap_m"]))
-    fits = _join_rows(_consistent(fits, float(cfg["plant_contrast_share"])), *join)
+    join = {k: float(cfg[k]) for k in ("join_across_m", "join_gap_m", "join_size_m", "join_axis_deg")}
+    fits = _join_rows(_consistent(fits, float(cfg["plant_contrast_share"])), join)
     fits.sort(key=lambda f: -f.confidence * math.sqrt(f.rows * f.cols))
     kept: list[TableFit] = []
     for f in fits:
         if not any(_overlaps(g, f, float(cfg["overlap_share"])) for g in kept):
             kept.append(f)
-    return _join_rows(kept, *join)
+    return _join_rows(kept, join)
 
 
 def _order(fits: list[TableFit], azimuth_deg: float) -> list[tuple[int, int, TableFit]]:
@@ -314,7 +321,7 @@ def detect_layout(orthos: Any, module: Any, layout: Any, settings: Any = None, p
             progress("layout_detect", k, k + len(queue))
         if fit is None:
             continue
-        queue.extend(_remainders(cand, fit, module.width_m))
+        queue.extend(_remainders(cand, fit, module.width_m, float(cfg["remainder_clear_m"])))
         if fit.rows * fit.cols < int(cfg["min_table_modules"]):
             continue
         if fit.confidence < float(cfg["min_confidence"]) or fit.misfit > float(cfg["max_misfit"]):

@@ -143,7 +143,7 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
     stops at the ground between two tables of a row, :func:`.periodic.comb_extent`), the
     candidate is made longer by ``grow_m`` on each end beyond which glass goes on and the
     table fitted again, up to ``grow_steps`` times, while the fit gains modules (same rows,
-    confidence not lower by more than 0.1).
+    confidence not lower by more than ``grow_confidence_drop``).
 
     Parameters
     ----------
@@ -180,6 +180,7 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
     tol = float(settings["level_tol_k"])
     stops = math.isfinite(cand.ground_c) and abs(cand.level_c - cand.ground_c) > tol
     grow = float(settings["grow_m"])
+    drop = float(settings["grow_confidence_drop"])
     for _ in range(int(settings["grow_steps"]) if stops else 0):
         if fit is None or not any(ends) or any(fit.cut) or fit.confidence < min_conf:
             break
@@ -189,7 +190,7 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
         grown = replace(cand, centre=centre + 0.5 * (hi - lo) * fit.axis, axis=fit.axis,
                         length_m=fit.length_m + lo + hi, depth_m=fit.depth_m)
         fit2, ends2 = _fit_window(orthos, grown, module, layout, settings, across_reach)
-        if fit2 is None or fit2.cols <= fit.cols or fit2.rows != fit.rows or fit2.confidence < fit.confidence - 0.1:
+        if fit2 is None or fit2.cols <= fit.cols or fit2.rows != fit.rows or fit2.confidence < fit.confidence - drop:
             break
         fit, ends = fit2, ends2
     return fit
@@ -198,10 +199,10 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
 def _fit_window(orthos: Any, cand: TableCandidate, module: Any, layout: Any, settings: dict,
                 across_reach_m: float | None = None) -> tuple[TableFit | None, tuple[bool, bool]]:
     """:func:`fit_table` on the pixels around one candidate; with whether glass goes on
-    beyond the fitted table's start and end along its axis (the band up to most of a module
-    pitch beyond the end, over the table's middle rows, within ``level_tol_k`` of the glass
-    level and nearer it than the ground's level). The comb looks ``comb_reach_m`` beyond the
-    candidate across the axis, or ``across_reach_m`` [m] when given."""
+    beyond the fitted table's start and end along its axis (the band from ``end_band_m`` to
+    ``end_band_pitch`` module pitches beyond the end, over the table's middle rows, within
+    ``level_tol_k`` of the glass level and nearer it than the ground's level). The comb looks
+    ``comb_reach_m`` beyond the candidate across the axis, or ``across_reach_m`` [m] when given."""
     gsd = float(orthos.gsd_m)
     tol = float(settings["level_tol_k"])
     margin = float(settings["window_margin_m"])
@@ -219,6 +220,10 @@ def _fit_window(orthos: Any, cand: TableCandidate, module: Any, layout: Any, set
     band = cand.band_c
     bin_m = gsd / 2
     close_m = float(settings["close_m"])
+    clear = float(settings["edge_clear_m"])
+    clear_x = float(settings["crossing_clear_m"])
+    step_k = float(settings["edge_step_min_k"])
+    probe = float(settings["cut_probe_m"])
     cut = (False, False, False, False)
     s_lo = s_hi = w_lo = w_hi = 0.0
     comb_k = 0.0
@@ -240,44 +245,45 @@ def _fit_window(orthos: Any, cand: TableCandidate, module: Any, layout: Any, set
             _, ds, dw, ext_s, ext_w, comb_k = comb
             s_lo, s_hi, w_lo, w_hi = ds - 0.5 * ext_s, ds + 0.5 * ext_s, dw - 0.5 * ext_w, dw + 0.5 * ext_w
             c0 = c1 = c2 = c3 = False
-            band_s = (s > s_lo + 0.3) & (s < s_hi - 0.3)
+            band_s = (s > s_lo + clear) & (s < s_hi - clear)
         else:
-            band_w = np.abs(w) < max(0.25 * depth, depth / 2 - 0.3)
+            band_w = np.abs(w) < max(0.25 * depth, depth / 2 - clear)
             s_lo, s_hi, c0, c1 = _extent(s[band_w], glass[band_w], valid[band_w], bin_m, close_m,
-                                         -half, half)
+                                         -half, half, probe)
             if not math.isfinite(s_lo):
                 return None, (False, False)
-            band_s = (s > s_lo + 0.3) & (s < s_hi - 0.3)
-            w_lo, w_hi, c2, c3 = _extent(w[band_s], glass[band_s], valid[band_s], bin_m, close_m, -half, half)
+            band_s = (s > s_lo + clear) & (s < s_hi - clear)
+            w_lo, w_hi, c2, c3 = _extent(w[band_s], glass[band_s], valid[band_s], bin_m, close_m, -half, half,
+                                         probe)
             if not math.isfinite(w_lo):
                 return None, (False, False)
         cut = (c0, c1, c2, c3)
         tv = np.where(valid, t, np.nan)
         ok = valid & band_s
         if not c2:
-            w_lo = _half_crossing(w[ok], tv[ok], w_lo, -1, gsd)
+            w_lo = _half_crossing(w[ok], tv[ok], w_lo, -1, gsd, step_k)
         if not c3:
-            w_hi = _half_crossing(w[ok], tv[ok], w_hi, +1, gsd)
-        ok = valid & (w > w_lo + 0.2) & (w < w_hi - 0.2)
+            w_hi = _half_crossing(w[ok], tv[ok], w_hi, +1, gsd, step_k)
+        ok = valid & (w > w_lo + clear_x) & (w < w_hi - clear_x)
         if not c0:
-            s_lo = _half_crossing(s[ok], tv[ok], s_lo, -1, gsd)
+            s_lo = _half_crossing(s[ok], tv[ok], s_lo, -1, gsd, step_k)
         if not c1:
-            s_hi = _half_crossing(s[ok], tv[ok], s_hi, +1, gsd)
+            s_hi = _half_crossing(s[ok], tv[ok], s_hi, +1, gsd, step_k)
         # angle: straight lines through the long edges, measured piecewise
         n_seg = int(settings["angle_segments"])
         slopes, weights = [], []
-        seg_edges = np.linspace(s_lo + 0.2, s_hi - 0.2, n_seg + 1)
+        seg_edges = np.linspace(s_lo + clear_x, s_hi - clear_x, n_seg + 1)
         for edge, outward, is_cut in ((w_lo, -1, c2), (w_hi, +1, c3)):
             if is_cut:
                 continue
             pts = []
             for a, b in zip(seg_edges[:-1], seg_edges[1:]):
                 sel = valid & (s >= a) & (s < b)
-                pts.append((0.5 * (a + b), _half_crossing(w[sel], tv[sel], edge, outward, gsd)))
+                pts.append((0.5 * (a + b), _half_crossing(w[sel], tv[sel], edge, outward, gsd, step_k)))
             p = np.array(pts)
             if len(p) >= 2 and np.ptp(p[:, 0]) > 0:
                 dev = p[:, 1] - np.median(p[:, 1])
-                keep = np.abs(dev) < 3 * gsd
+                keep = np.abs(dev) < float(settings["angle_outlier_px"]) * gsd
                 if keep.sum() >= 2:
                     slopes.append(np.polyfit(p[keep, 0], p[keep, 1], 1)[0])
                     weights.append(keep.sum())
@@ -307,12 +313,13 @@ def _fit_window(orthos: Any, cand: TableCandidate, module: Any, layout: Any, set
     # the ends: the table goes on when the ground band beyond an end (up to most of a pitch:
     # the next table of a row stands about a pitch away) is at the glass level
     pitch = fit.module_s_m + fit.gap_s_m
+    end_lo, end_hi = float(settings["end_band_m"]), float(settings["end_band_pitch"]) * pitch
     s_f = (x - fit.origin[0]) * fit.axis[0] + (y - fit.origin[1]) * fit.axis[1]
     w_f = (x - fit.origin[0]) * fit.across[0] + (y - fit.origin[1]) * fit.across[1]
     rows_in = valid & (w_f > 0.2 * fit.depth_m) & (w_f < 0.8 * fit.depth_m)
     ends = []
     for beyond in (-s_f, s_f - fit.length_m):
-        sel = rows_in & (beyond > 0.15) & (beyond < 0.85 * pitch)
+        sel = rows_in & (beyond > end_lo) & (beyond < end_hi)
         if sel.sum() < 16:
             ends.append(False)
             continue
@@ -420,6 +427,8 @@ def _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band,
                settings, gsd, orientations=("portrait", "landscape"), comb_k=0.0) -> TableFit | None:
     cos_t = math.cos(math.radians(layout.tilt_deg))
     gap_s, gap_w = float(layout.gap_m), float(layout.gap_m) * cos_t
+    tie = float(settings["orientation_tie_misfit"])
+    part = float(settings["cut_module_share"])
     best = None
     for orient in orientations:
         mod_s = module.width_m if orient == "portrait" else module.length_m
@@ -428,7 +437,7 @@ def _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band,
         m, rw = _lattice(depth, mod_w, gap_w)
         # a cut edge: only whole modules of the visible part count; misfit from the other axis
         misfit = max(rs if not (cut[0] or cut[1]) else 0.0, rw if not (cut[2] or cut[3]) else 0.0)
-        key = (round(misfit, 2) if misfit > 0.1 else 0.0, orient != layout.orientation)
+        key = (round(misfit, 2) if misfit > tie else 0.0, orient != layout.orientation)
         if best is None or key < best[0]:
             best = (key, orient, mod_s, mod_w, n, m, misfit)
     assert best is not None
@@ -436,7 +445,7 @@ def _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band,
     s0, w0 = -0.5 * length, -0.5 * depth
     # even share of the measured extent, unless an edge is cut (then the datasheet pitch from the other edge)
     if cut[0] or cut[1]:
-        n = max(1, int(math.ceil((length + gap_s) / (mod_s + gap_s) - 0.05)))
+        n = max(1, int(math.ceil((length + gap_s) / (mod_s + gap_s) - part)))
         size_s = mod_s
         if cut[0] and not cut[1]:
             s0 = 0.5 * length - n * mod_s - (n - 1) * gap_s
@@ -444,7 +453,7 @@ def _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band,
         size_s = _size(length, n, mod_s, gap_s, settings)
         s0 = -0.5 * (n * size_s + (n - 1) * gap_s)
     if cut[2] or cut[3]:
-        m = max(1, int(math.ceil((depth + gap_w) / (mod_w + gap_w) - 0.05)))
+        m = max(1, int(math.ceil((depth + gap_w) / (mod_w + gap_w) - part)))
         size_w = mod_w
         if cut[2] and not cut[3]:
             w0 = 0.5 * depth - m * mod_w - (m - 1) * gap_w
@@ -470,7 +479,7 @@ def _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band,
     glass = (gl / np.maximum(val, 1)).reshape(m, n)
     status = np.full((m, n), "ok", dtype=object)
     status[valid_frac < float(settings["min_valid_fraction"])] = "cut"
-    status[(val / np.maximum(tot, 1)).reshape(m, n) < 0.5] = "nodata"
+    status[(val / np.maximum(tot, 1)).reshape(m, n) < float(settings["nodata_share"])] = "nodata"
     status[(tot.reshape(m, n) == 0)] = "nodata"
     # the evidence of a table: its glass against the ground, or (ground at the glass
     # temperature) the comb of frame lines between its modules [K]

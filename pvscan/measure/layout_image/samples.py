@@ -63,8 +63,9 @@ def _runs_closed(flag: np.ndarray, close_bins: int) -> np.ndarray:
 
 
 def _extent(coord: np.ndarray, glass: np.ndarray, valid: np.ndarray, bin_m: float, close_m: float,
-            lo: float, hi: float) -> tuple[float, float, bool, bool]:
-    """Run of glass bins holding 0 along one axis; whether each end meets nodata."""
+            lo: float, hi: float, probe_m: float) -> tuple[float, float, bool, bool]:
+    """Run of glass bins holding 0 along one axis; whether each end meets nodata (a bin
+    mostly on nodata within ``probe_m`` [m] beyond it, or the window's end)."""
     edges = np.arange(lo, hi + bin_m, bin_m)
     k = np.clip(np.searchsorted(edges, coord) - 1, 0, len(edges) - 2)
     nb = len(edges) - 1
@@ -88,16 +89,18 @@ def _extent(coord: np.ndarray, glass: np.ndarray, valid: np.ndarray, bin_m: floa
     b = mid
     while b < nb - 1 and is_glass[b + 1]:
         b += 1
-    probe = max(1, int(round(0.3 / bin_m)))
+    probe = max(1, int(round(probe_m / bin_m)))
     cut_lo = a == 0 or bool(nod[max(0, a - probe):a].any())
     cut_hi = b == nb - 1 or bool(nod[b + 1:b + 1 + probe].any())
     return float(edges[a]), float(edges[b + 1]), cut_lo, cut_hi
 
 
-def _half_crossing(coord: np.ndarray, t: np.ndarray, edge: float, outward: float, gsd: float) -> float:
+def _half_crossing(coord: np.ndarray, t: np.ndarray, edge: float, outward: float, gsd: float,
+                   min_step_k: float) -> float:
     """Sub-pixel edge: where the mean profile crosses half way between inside and outside.
 
-    ``outward`` is +1 when the outside lies toward larger coordinates.
+    ``outward`` is +1 when the outside lies toward larger coordinates. An edge whose inside
+    and outside medians differ by less than ``min_step_k`` [K] stays at ``edge``.
     """
     near = np.abs(coord - edge) < 6 * gsd
     if near.sum() < 8:
@@ -109,7 +112,7 @@ def _half_crossing(coord: np.ndarray, t: np.ndarray, edge: float, outward: float
     if inside.size < 3 or outside.size < 3:
         return edge
     ti, to = float(np.median(inside)), float(np.median(outside))
-    if abs(ti - to) < 0.5:
+    if abs(ti - to) < min_step_k:
         return edge
     bin_m = gsd / 4
     nb = int(round(8 * gsd / bin_m))
