@@ -94,6 +94,10 @@ def _stage(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module_s
     if spread_all is not None:
         F.extra["spread_all"] = spread_all
     F.extra.update(row_geometry(modules, F.nsub) if geometry is None else geometry)
+    F.extra["is_string"] = bool(is_string)
+    if string_patterns:
+        # the open-module test hands a raise shared along a string (or row) to the open-string test
+        F.extra.update(groups=groups, pos=pos)
     hits = _detect(F, cfg, final=final)
     # an open module is raised against both neighbourhoods: its row, and modules outside its
     # string (a reference biased by a shadow edge along the row is not both)
@@ -112,7 +116,6 @@ def _stage(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module_s
     # no wider than other_spread_max_ratio module spreads: on a small plant a faulty string's own
     # offset (and the mirror offset of the row beside it) would widen it and hide the string
     sig_o = min(sig_o, float(cfg["other_spread_max_ratio"]) * F.sig_mod)
-    F.extra["is_string"] = bool(is_string)
     F.extra.update(ref_other=ref_o, d_other=d_other, rsub_other=rsub_o,
                    sig_other=sig_o if np.isfinite(sig_o) else F.sig_mod)
     runs = pattern_open_string(F, cfg, groups, pos) if string_patterns else []

@@ -118,17 +118,68 @@ def pattern_open_module(F: Features, cfg: Mapping, rsub: np.ndarray | None = Non
     hit = (F.ok & (lo >= float(cfg["substring_raise_min"]) * r) & (ratio >= float(cfg["open_ratio_min"]))
            & (ratio <= float(cfg["open_ratio_max"])) & uniform & (dT >= floor))
     if isolated and "adjacent" in F.extra:
-        adj = F.extra["adjacent"]
-        t_adj = np.where(adj >= 0, F.t_median[np.maximum(adj, 0)], np.nan)
-        with np.errstate(invalid="ignore"):
-            carried = ((t_adj - (F.t_median - dT)[:, None]) >= 0.5 * dT[:, None]).any(axis=1)
-        hit &= ~carried
+        hit &= ~_carried(F, cfg, dT, hit)
     conf = confidence(fit_score(ratio), quality(dT, floor))
     h = Hits("open_module", hit, conf, F.ref + dT)
     for i in np.flatnonzero(hit).tolist():
         h.region[i] = "module"
         h.boxes[i] = [(0.0, 1.0, 0.0, 1.0)]
     return h
+
+
+def open_string_min_len(F: Features, cfg: Mapping) -> int:
+    """Fewest modules of a run :func:`pattern_open_string` calls an open string: a table row
+    standing in for unknown strings needs ``open_string_row_min_modules`` (an open module beside
+    a healthy module a spread warm would make a run of two), a string ``open_string_min_modules``."""
+    min_len = int(cfg["open_string_min_modules"])
+    if not F.extra.get("is_string", False):
+        min_len = max(min_len, int(cfg["open_string_row_min_modules"]))
+    return min_len
+
+
+def _carried(F: Features, cfg: Mapping, dT: np.ndarray, hit: np.ndarray) -> np.ndarray:
+    """Modules whose raise carries on into a module touching them: not open modules by themselves.
+
+    A neighbour raised by at least half the module's raise over the module's reference means a
+    raised area larger than the module: an image artefact (a mosaic seam) or a run of open
+    modules, which :func:`pattern_open_string` judges. That hand-over holds only where an open
+    string could take the module: when the stretch of such modules along the module's string
+    (or table row) is shorter than :func:`open_string_min_len` (or string patterns are not run,
+    ``F.extra["groups"]`` absent), a neighbour along it carries the module only when raised at
+    least as much as the module itself (the module is then the shoulder of a warmer one, not
+    its peak). A neighbour outside the string (the table's other row) carries it as before.
+    """
+    adj = F.extra["adjacent"]
+    base = F.t_median - dT
+    t_adj = np.where(adj >= 0, F.t_median[np.maximum(adj, 0)], np.nan)
+    with np.errstate(invalid="ignore"):
+        lift = t_adj - base[:, None]
+        half = lift >= 0.5 * dT[:, None]
+        carried = half.any(axis=1)
+    groups, pos = F.extra.get("groups"), F.extra.get("pos")
+    if groups is None or pos is None:
+        return carried
+    min_len = open_string_min_len(F, cfg)
+    jj = np.maximum(adj, 0)
+    same = (adj >= 0) & (groups[jj] == groups[:, None]) & (groups[:, None] >= 0)
+    for i in np.flatnonzero(hit & carried).tolist():
+        if (half[i] & ~same[i]).any():
+            continue
+        idx = np.flatnonzero(groups == groups[i])
+        idx = idx[np.argsort(pos[idx], kind="stable")]
+        with np.errstate(invalid="ignore"):
+            raised = (F.t_median[idx] - base[i]) >= 0.5 * dT[i]
+        k = int(np.flatnonzero(idx == i)[0])
+        lo_k, hi_k = k, k + 1
+        while lo_k > 0 and raised[lo_k - 1]:
+            lo_k -= 1
+        while hi_k < len(idx) and raised[hi_k]:
+            hi_k += 1
+        if hi_k - lo_k >= min_len:
+            continue
+        with np.errstate(invalid="ignore"):
+            carried[i] = bool((lift[i] >= dT[i]).any())
+    return carried
 
 
 def _runs(mask_sorted: np.ndarray) -> list[tuple[int, int]]:
@@ -187,11 +238,7 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
                 & (lo >= 0.5 * float(cfg["substring_raise_min"]) * r)
                 & (d_o <= float(cfg["open_ratio_max"]) * r))
     out = []
-    min_len = int(cfg["open_string_min_modules"])
-    if not F.extra.get("is_string", False):
-        # a table row standing in for unknown strings: an open module beside a healthy module a
-        # spread warm would make a run of two
-        min_len = max(min_len, int(cfg["open_string_row_min_modules"]))
+    min_len = open_string_min_len(F, cfg)
     for g in np.unique(groups[cand & (groups >= 0)]):
         idx = np.flatnonzero(groups == g)
         idx = idx[np.argsort(pos[idx], kind="stable")]
