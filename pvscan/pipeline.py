@@ -268,9 +268,11 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
 
     ``shift``: a known layout offset (east, north) [m] used instead of the registration's
     own (it is still judged and recorded). When the registration fails (the layout cannot be
-    placed on the modules) a :class:`~pvscan.errors.RegistrationError` stops the run unless
-    ``accept_poor_registration``; then the run goes on with the layout as drawn and the
-    ``registration`` validity check failed.
+    placed on the modules, status ``failed``; or a placement one module pitch away fits as
+    well, status ``ambiguous``) a :class:`~pvscan.errors.RegistrationError` stops the run
+    unless ``accept_poor_registration``; then the run goes on (with the layout as drawn when
+    failed, with the ambiguous placement when ambiguous) and the ``registration`` validity
+    check failed.
 
     Returns
     -------
@@ -307,9 +309,12 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         else:
             reg = register.register_layout(orthos, modules, settings["register"], sun=sun, progress=progress,
                                            expected_apparent_c=expected, forced_shift=shift)
-        if reg.status == "failed" and not accept_poor_registration:
+        if reg.status in ("failed", "ambiguous") and not accept_poor_registration:
+            # ambiguous: placed on modules, but one a module pitch away is as likely; a work order
+            # on the neighbouring module sends a crew to the wrong one, so it stops as a failure
+            todo = ("fit the layout with" if reg.status == "failed" else "check the placement drawn by")
             raise RegistrationError(
-                f"{flight.flight.layout}: {reg.message}; fit the layout with `pvscan align {flight.path} --out "
+                f"{flight.flight.layout}: {reg.message}; {todo} `pvscan align {flight.path} --out "
                 f"corrected.gpkg` and use the corrected layout, correct the layout, or give a known offset with "
                 f"--shift DX DY (--accept-poor-registration runs anyway, flagged invalid)")
         applied_shift = (float(reg.shift_m[0]), float(reg.shift_m[1])) if reg.applied else (0.0, 0.0)

@@ -114,3 +114,39 @@ def test_placement_one_pitch_off_is_right_or_flagged(plant):
     err = _median_error_m(plant, apply_placement(mods, reg.placement if reg.applied else None))
     check = registration_check(reg, st)
     assert err < RIGHT_M or check["passed"] is False, (err, reg.message, reg.evidence.get("pitch"))
+
+
+def test_inspect_refuses_a_placement_it_cannot_tell_from_one_pitch_away(plant, tmp_path):
+    """`pvscan inspect` on the same flight: a result is written without
+    --accept-poor-registration only when the registration check passed; a registration that
+    failed or stayed ambiguous by one pitch (default seed: the table ends vote for one pitch
+    away) stops with
+    exit 1 and one line that names the layout, what was measured and what to do, writing
+    nothing; with --accept-poor-registration it runs, flagged invalid (validity.ok false,
+    registration check failed)."""
+    import json
+
+    from click.testing import CliRunner
+
+    from pvscan.cli.main import cli
+
+    out = tmp_path / "out"
+    res = CliRunner().invoke(cli, ["inspect", str(plant / "flight.toml"), "--out", str(out), "--no-report"])
+    if res.exit_code == 0:
+        # written without the option: only on a registration that passed (with the test above:
+        # placed on its own modules)
+        s = json.loads((out / "summary.json").read_text())
+        reg = {c["name"]: c for c in s["validity"]["checks"]}["registration"]
+        assert reg["passed"] is True, res.output
+        return
+    assert res.exit_code == 1, res.output
+    line = res.output.strip().splitlines()[-1]
+    assert "layout" in line and "pvscan align" in line and "--shift DX DY" in line, line
+    assert ("pitch" in line) or ("could not be placed" in line), line
+    assert not out.exists()
+    res = CliRunner().invoke(cli, ["inspect", str(plant / "flight.toml"), "--out", str(out), "--no-report",
+                                   "--accept-poor-registration"])
+    assert res.exit_code == 0, res.output
+    s = json.loads((out / "summary.json").read_text())
+    reg = {c["name"]: c for c in s["validity"]["checks"]}["registration"]
+    assert reg["passed"] is False and s["validity"]["ok"] is False and "registration" in s["validity"]["failed"]

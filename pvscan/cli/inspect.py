@@ -18,7 +18,8 @@ from pvscan.cli._common import Progress, echo, handle_errors, overwrite_option, 
 @click.option("--shift", "shift", type=float, nargs=2, default=None, metavar="DX DY",
               help="Use this known layout offset (east, north in the ortho's CRS) [m] instead of the measured one.")
 @click.option("--accept-poor-registration", is_flag=True,
-              help="Run on when the layout cannot be placed on the modules; the result is marked invalid "
+              help="Run on when the layout cannot be placed on the modules (or only up to one module pitch); "
+                   "the result is marked invalid "
                    "(validity.ok false) and every finding gets the lowest confidence.")
 @click.option("--scheduler", default="single", show_default=True,
               help="Where the block statistics run: single (this process), threads or processes "
@@ -31,7 +32,8 @@ def inspect_cmd(flight: Path, out_dir: Path, pipeline_path: Path | None, overwri
 
     Writes modules.geojson, anomalies.geojson, workorders.csv, pvscan.gpkg, summary.json and
     report.html. Exit codes: 0 success, 1 bad input or a layout that cannot be placed on the
-    ortho's modules (see --shift, --accept-poor-registration, `pvscan align`), 2 usage error,
+    ortho's modules, or only up to one module pitch (see --shift, --accept-poor-registration,
+    `pvscan align`), 2 usage error,
     3 internal error.
     """
     from pvscan.io.manifest import load_flight
