@@ -268,11 +268,9 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
 
     ``shift``: a known layout offset (east, north) [m] used instead of the registration's
     own (it is still judged and recorded). When the registration fails (the layout cannot be
-    placed on the modules, status ``failed``; or a placement one module pitch away fits as
-    well, status ``ambiguous``) a :class:`~pvscan.errors.RegistrationError` stops the run
-    unless ``accept_poor_registration``; then the run goes on (with the layout as drawn when
-    failed, with the ambiguous placement when ambiguous) and the ``registration`` validity
-    check failed.
+    placed on the modules: ``failed``; one a module pitch away fits as well: ``ambiguous``) a
+    :class:`~pvscan.errors.RegistrationError` stops the run unless ``accept_poor_registration``;
+    then it goes on (failed: the layout as drawn) with the ``registration`` check failed.
 
     Returns
     -------
@@ -309,9 +307,7 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         else:
             reg = register.register_layout(orthos, modules, settings["register"], sun=sun, progress=progress,
                                            expected_apparent_c=expected, forced_shift=shift)
-        if reg.status in ("failed", "ambiguous") and not accept_poor_registration:
-            # ambiguous: placed on modules, but one a module pitch away is as likely; a work order
-            # on the neighbouring module sends a crew to the wrong one, so it stops as a failure
+        if reg.status in ("failed", "ambiguous") and not accept_poor_registration:  # ambiguous: one pitch off?
             todo = ("fit the layout with" if reg.status == "failed" else "check the placement drawn by")
             raise RegistrationError(
                 f"{flight.flight.layout}: {reg.message}; {todo} `pvscan align {flight.path} --out "
