@@ -1167,3 +1167,28 @@ def test_edge_ring_past_the_first_half_without_warmth_is_not_pid(rng):
     an0, _ = p.run(settings=_with(pid_past_min_excess_z=-100.0))
     run0 = [int(i) for i in an0[an0.defect == "pid"].iloc[0]["module_indices"]]
     assert len(run0) > 3 and set(run0) <= set(idx)
+
+
+def test_open_string_of_a_whole_table_row_with_a_cooler_end_module(rng):
+    # table polygons without strings: a whole table row open (each module eta * G / U warmer,
+    # pvlib Faiman); its end module, the most open to the wind, runs cooler along its outer
+    # part (common practice), a graded raise from 1.4 x the rise at its inner edge down to none:
+    # not uniform enough for a candidate by itself, yet raised by 0.7 of the run on its median.
+    # The row is one open string over all its modules; without [classify]
+    # open_string_row_end_modules the raised end module rejected the run as carrying on
+    p = Plant(rng, strings=None)
+    m = p.modules
+    row = np.flatnonzero(((m.table_id == "T0-1") & (m.table_row == 1)).to_numpy())
+    row = row[np.argsort(m.table_col.to_numpy()[row])]
+    for i in row:
+        p.open(int(i), label="open_string")
+    end = int(row[-1])
+    A = p.spec.n_along
+    ramp = np.linspace(1.4, 0.0, p.spec.n_across)[None, :] * np.ones((A, 1))
+    p.cm[end] += (ramp - 1.0) * open_rise()
+    an, _ = p.run()
+    got = an[an.defect == "open_string"]
+    assert len(got) == 1, an[["module_id", "defect"]]
+    assert sorted(int(i) for i in got.iloc[0]["module_indices"]) == sorted(int(i) for i in row)
+    an0, _ = p.run(settings=_with(open_string_row_end_modules=0))
+    assert "open_string" not in set(an0.defect)
