@@ -888,3 +888,49 @@ def test_result_read_again_is_the_same_and_independent(result, tmp_path):
     again = load_result(moved)
     mid = gj["features"][0]["properties"]["module_id"]
     assert float(again.modules.set_index("module_id").loc[str(mid), "t_median_c"]) == 12.5
+
+
+def test_result_just_written_is_read_as_the_file_says(tmp_path):
+    """The report in the process that wrote the result takes the written documents instead of
+    parsing the files again; what it gets must be what the files say (checked against the
+    files parsed with the standard json module, RFC 8259), and a file changed since must be
+    read anew."""
+    import geopandas as gpd
+    import pandas as pd
+    import shapely
+    from conftest import test_seed
+    from shapely.geometry import box as sbox
+
+    from pvscan.io import geojson as gj
+    from pvscan.io import outputs
+    from pvscan.report import _result
+
+    rng = np.random.default_rng(test_seed())
+    n = 12
+    x = X0 + np.arange(n) * (MOD_W + 0.05) + rng.uniform(0, 0.01, n)
+    mods = gpd.GeoDataFrame({"module_id": [f"T01-R1-C{c + 1:02d}" for c in range(n)], "table_id": "T01",
+                             "geometry": [sbox(v, Y0, v + MOD_W, Y0 + MOD_L) for v in x]}, crs=CRS)
+    t = 40.0 + rng.normal(0.0, 0.7, n)  # values with many digits, rounded by the writer
+    table = pd.DataFrame({"t_mean_c": t, "t_median_c": t, "t_p95_c": t + 1, "t_max_c": t + 3, "t_min_c": t - 2,
+                          "t_std_k": rng.uniform(0.3, 0.9, n), "valid_fraction": rng.uniform(0.9, 1.0, n),
+                          "reference_c": np.full(n, 40.0)})
+    table["delta_t_k"] = table["t_median_c"] - table["reference_c"]
+    table["delta_t_norm_k"] = table["delta_t_k"] * 1.3
+    table.loc[int(rng.integers(n)), "t_std_k"] = np.nan
+    path = outputs.write_modules_geojson(tmp_path / "modules.geojson", mods, table)
+    handed = _result._features(path)  # the document written, as the report after inspect reads it
+    assert gj.written_document(path) is None  # handed out once
+    parsed = _result._features(path)  # the file parsed
+    assert list(handed.columns) == list(parsed.columns)
+    pd.testing.assert_frame_equal(handed.drop(columns="geometry"), parsed.drop(columns="geometry"))
+    assert all(shapely.equals_exact(a, b, 0.0) for a, b in zip(handed["geometry"], parsed["geometry"]))
+    on_disk = json.loads(path.read_text(encoding="utf-8"))
+    assert [f["properties"]["t_median_c"] for f in on_disk["features"]] == handed["t_median_c"].tolist()
+    # written, then changed on disk: the file is read
+    path = outputs.write_modules_geojson(tmp_path / "modules.geojson", mods, table)
+    doc = json.loads(path.read_text(encoding="utf-8"))
+    doc["features"][0]["properties"]["t_median_c"] = 12.5
+    tmp = tmp_path / "modules.tmp"
+    tmp.write_text(json.dumps(doc), encoding="utf-8")
+    tmp.replace(path)
+    assert _result._features(path)["t_median_c"].iloc[0] == 12.5

@@ -9,6 +9,7 @@ gives the same geometry and the same error as before.
 """
 from __future__ import annotations
 
+import os
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
@@ -16,7 +17,43 @@ from typing import Any
 import numpy as np
 import shapely
 
-__all__ = ["read_feature_collection", "shapes"]
+__all__ = ["read_feature_collection", "shapes", "remember_written", "written_document"]
+
+#: The GeoJSON documents this process wrote last, by the identity of their file (device,
+#: inode, size, modification time): a reader in the same process (the report after
+#: ``pvscan inspect``) takes the document instead of parsing the file again. At most
+#: ``_WRITTEN_KEEP`` documents (a result's modules and anomalies) are held.
+_WRITTEN: dict[tuple[int, int, int, int], Any] = {}
+_WRITTEN_KEEP = 2
+
+
+def _file_identity(path: str | os.PathLike[str]) -> tuple[int, int, int, int] | None:
+    try:
+        st = os.stat(path)
+    except OSError:
+        return None
+    return (st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns)
+
+
+def remember_written(path: str | os.PathLike[str], doc: Any) -> None:
+    """Keep ``doc``, the JSON-ready document just written to ``path`` (exactly what
+    ``json.loads`` gives back from the file: plain dicts, lists, str, int, float, bool, None),
+    for :func:`written_document`. The caller must not change ``doc`` afterwards."""
+    key = _file_identity(path)
+    if key is None:
+        return
+    _WRITTEN.pop(key, None)
+    _WRITTEN[key] = doc
+    while len(_WRITTEN) > _WRITTEN_KEEP:
+        _WRITTEN.pop(next(iter(_WRITTEN)))
+
+
+def written_document(path: str | os.PathLike[str]) -> Any:
+    """The document this process wrote to ``path`` (:func:`remember_written`) while the file
+    is still the one written (same device, inode, size and modification time; a file renamed
+    since is the same file), else None. Handed out once: the holder lets it go."""
+    key = _file_identity(path)
+    return _WRITTEN.pop(key, None) if key is not None else None
 
 
 def read_feature_collection(path: Path, error_cls: type[Exception], missing: str = "file not found", *,

@@ -137,18 +137,31 @@ class MapGeometry:
         from shapely import STRtree
 
         mods = data.modules
-        geo = gpd.GeoSeries(list(mods["geometry"]) if len(mods) else [], crs="EPSG:4326")
+        n = len(mods)
+        # the result's lon/lat outlines; the pipeline's own footprints (``modules_gdf``, as
+        # drawn) stand in for every module they hold, so only the others are reprojected
+        lonlat = np.empty(n, dtype=object)
+        if n:
+            lonlat[:] = list(mods["geometry"])
         if crs is None:
-            crs = geo.estimate_utm_crs() if len(geo) else "EPSG:3857"
+            crs = gpd.GeoSeries(lonlat, crs="EPSG:4326").estimate_utm_crs() if n else "EPSG:3857"
         self.crs = crs
-        geo = geo.to_crs(crs)
+        ids = mods["module_id"].tolist() if n else []
+        placed = np.empty(n, dtype=object)
+        todo = np.ones(n, dtype=bool)
         if modules_gdf is not None and len(modules_gdf) and "module_id" in modules_gdf:
             gdf = modules_gdf if modules_gdf.crs is None else modules_gdf.to_crs(crs)
-            own = dict(zip(gdf["module_id"].astype(str), gdf.geometry))
-            geo = gpd.GeoSeries([own.get(mid, g) for mid, g in zip(mods["module_id"], geo)], crs=crs)
+            own = dict(zip(gdf["module_id"].astype(str).tolist(), np.asarray(gdf.geometry.to_numpy(), dtype=object)))
+            for i, mid in enumerate(ids):
+                if mid in own:
+                    placed[i] = own[mid]
+                    todo[i] = False
+        if todo.any():
+            placed[todo] = gpd.GeoSeries(lonlat[todo], crs="EPSG:4326").to_crs(crs).to_numpy()
+        geo = gpd.GeoSeries(placed, crs=crs)
 
         centre = None
-        if len(geo):
+        if n:
             b = geo.total_bounds
             centre = (0.5 * (b[0] + b[2]), 0.5 * (b[1] + b[3]))
         transform, tables = registration_transform(data.summary, centre)
@@ -156,11 +169,11 @@ class MapGeometry:
         def table_shift(table_ids: pd.Series) -> np.ndarray | None:
             if not tables:
                 return None
-            return np.array([tables.get(str(t), (0.0, 0.0)) for t in table_ids], dtype=float)
+            return np.array([tables.get(str(t), (0.0, 0.0)) for t in table_ids.tolist()], dtype=float)
 
-        mt = mods["table_id"] if "table_id" in mods else pd.Series([None] * len(mods))
-        self.modules = list(_place(geo.to_numpy(), transform, table_shift(mt))) if len(geo) else []
-        self.module_index = {mid: i for i, mid in enumerate(mods["module_id"])} if len(mods) else {}
+        mt = mods["table_id"] if "table_id" in mods else pd.Series([None] * n)
+        self.modules = list(_place(placed, transform, table_shift(mt))) if n else []
+        self.module_index = {mid: i for i, mid in enumerate(ids)}
         an = data.anomalies
         ageo = gpd.GeoSeries(list(an["geometry"]) if len(an) else [], crs="EPSG:4326")
         at = an["table_id"] if "table_id" in an else pd.Series([None] * len(an))

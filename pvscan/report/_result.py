@@ -231,9 +231,12 @@ def validity_checks(summary: Mapping) -> tuple[list[dict], bool | None]:
 
 
 def _features(path: Path) -> pd.DataFrame:
-    from pvscan.io.geojson import shapes
+    from pvscan.io.geojson import shapes, written_document
 
-    obj = read_json_file(path, OutputError, _MISSING)
+    # the document itself when this process just wrote the file (``pvscan inspect``), else parsed
+    obj = written_document(path)
+    if obj is None:
+        obj = read_json_file(path, OutputError, _MISSING)
     if not isinstance(obj, Mapping) or obj.get("type") != "FeatureCollection":
         raise OutputError(f"{path}: not a GeoJSON FeatureCollection")
     rows, members = [], []

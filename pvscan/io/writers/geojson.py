@@ -22,6 +22,7 @@ import numpy as np
 import pandas as pd
 
 from pvscan.errors import OutputError
+from pvscan.io.geojson import remember_written
 from pvscan.io.writers.atomic import atomic_write
 from pvscan.io.writers.geometry import anomaly_geometries, anomaly_indices, geoms_to_geojson, to_lonlat
 from pvscan.io.writers.values import column_values, dumps, round_floats, settings_of, to_jsonable
@@ -172,7 +173,9 @@ def write_modules_geojson(path: str | os.PathLike, modules_gdf: Any, module_tabl
     cfg = settings_of(settings)
     pmax = getattr(module_spec, "pmax_w", None) if module_spec is not None else None
     fc = modules_feature_collection(modules_gdf, module_table, anomalies, cfg["lonlat_decimals"], pmax)
-    return atomic_write(path, dumps(fc))
+    out = atomic_write(path, dumps(fc))
+    remember_written(out, fc)  # the report reads it back in this process
+    return out
 
 
 def anomalies_feature_collection(anomalies: pd.DataFrame, modules: Any, decimals: int = 7,
@@ -232,7 +235,9 @@ def write_anomalies_geojson(path: str | os.PathLike, anomalies: pd.DataFrame, mo
     cfg = settings_of(settings)
     fc = anomalies_feature_collection(anomalies, modules_gdf, cfg["lonlat_decimals"], cfg["merge_gap_m"],
                                       settings=cfg)
-    return atomic_write(path, dumps(fc))
+    out = atomic_write(path, dumps(fc))
+    remember_written(out, fc)
+    return out
 
 
 
