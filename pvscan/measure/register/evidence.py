@@ -122,6 +122,21 @@ class Placement:
                 "scale": round(self.scale, 7), "centre": [round(self.cx, 3), round(self.cy, 3)]}
 
 
+def _inverse(p: Placement) -> Placement:
+    """The placement undoing ``p`` (same centre)."""
+    m = np.linalg.inv(p.matrix)
+    t = -m @ np.array([p.tx, p.ty])
+    return Placement(float(t[0]), float(t[1]), -p.theta_deg, 1.0 / p.scale, p.cx, p.cy)
+
+
+def _compose(outer: Placement, inner: Placement) -> Placement:
+    """``inner`` after ``outer`` (both about the same centre): one placement."""
+    m = inner.matrix @ outer.matrix
+    t = inner.matrix @ np.array([outer.tx, outer.ty]) + np.array([inner.tx, inner.ty])
+    th = math.degrees(math.atan2(m[1, 0], m[0, 0]))
+    return Placement(float(t[0]), float(t[1]), th, float(math.hypot(m[0, 0], m[1, 0])), outer.cx, outer.cy)
+
+
 @dataclass
 class ModuleSample:
     """Pixels around a sample of modules, read once.

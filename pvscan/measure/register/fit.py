@@ -16,7 +16,8 @@
    otherwise the registration has failed, and says so.
 
 Nothing is moved on a layout that is right: the drawn placement is the default, and a
-proposal has to show that it puts footprints on glass better before it is used.
+proposal has to show that it puts footprints on glass better before it is used. A placement
+the table ends do not tell from one a module pitch away is flagged (``_resolve_pitch``).
 """
 from __future__ import annotations
 
@@ -36,10 +37,13 @@ from pvscan.measure.register._blocks import _settings
 from pvscan.measure.register._chunks import shared_chunks
 from pvscan.measure.register._pitch import _pitches, _row_pitch
 from pvscan.measure.register._records import Registration
+from pvscan.measure.register.ends import judge_ends
 from pvscan.measure.register.estimate import estimate_shift
 from pvscan.measure.register.evidence import (
     ModuleSample,
     Placement,
+    _compose,
+    _inverse,
     placement_quality,
     refine_placement,
     sample_modules,
@@ -55,8 +59,7 @@ __all__ = ["register_layout", "apply_placement", "placement_of", "align_layout"]
 
 
 def _centre(modules: gpd.GeoDataFrame) -> tuple[float, float]:
-    b = modules.total_bounds
-    return float((b[0] + b[2]) / 2.0), float((b[1] + b[3]) / 2.0)
+    return float(np.mean(modules.total_bounds[[0, 2]])), float(np.mean(modules.total_bounds[[1, 3]]))
 
 
 def placement_of(reg: Registration, centre: tuple[float, float]) -> Placement | None:
@@ -305,12 +308,12 @@ def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cf
     pitch along or across the table rows put footprints on modules everywhere but at the
     table ends. Each such alternative is judged on its own sample (footprints read where it
     puts them); an alternative whose evidence is below ``pitch_move_ratio`` times the
-    placement's replaces it (repeated up to ``pitch_max_steps``, so two pitches off are undone
-    too). The decision is recorded in
-    ``reg.evidence["pitch"]``: the lowest ratio evidence(alternative) / evidence(used) and
-    ``decisive`` when it exceeds ``1 + pitch_min_margin``. An indecisive decision leaves
-    the placement in use but fails the ``registration`` validity check (a finding may sit
-    on the neighbouring module)."""
+    placement's replaces it (up to ``pitch_max_steps`` times). ``reg.evidence["pitch"]``
+    records the lowest ratio evidence(alternative) / evidence(used), ``decisive`` when it
+    exceeds ``1 + pitch_min_margin``, and ``ends``: the table ends alone
+    (:func:`pvscan.measure.register.ends.judge_ends`). Either one indecisive leaves the
+    placement in use but fails the ``registration`` validity check (a finding may sit on
+    the neighbouring module)."""
     base = reg.placement if (reg.applied and reg.placement is not None) else ident
     steps = [s * v for v in _pitches(modules) for s in (1.0, -1.0)]
     if not steps:
@@ -340,9 +343,10 @@ def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cf
     low = min(ratios) if ratios else float("inf")
     margin = float(cfg["pitch_min_margin"])
     decisive = low > 1.0 + margin
+    ends = judge_ends(orthos, modules, apply_placement(modules, cur), cfg)
     reg.evidence["pitch"] = {"lowest_ratio": round(low, 4) if math.isfinite(low) else None,
                              "limit": round(1.0 + margin, 4), "decisive": bool(decisive),
-                             "moved_m": [round(float(moved_by[0]), 4), round(float(moved_by[1]), 4)]}
+                             "moved_m": [round(float(moved_by[0]), 4), round(float(moved_by[1]), 4)], "ends": ends}
     if np.hypot(*moved_by) > 0:
         _use_placement(reg, cur)
         reg.evidence["chosen"] = q_cur
@@ -353,6 +357,11 @@ def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cf
         reg.status = "ambiguous"
         reg.message += (f"; a placement one module pitch away fits almost as well (evidence ratio {low:.2f}, more "
                         f"than {1.0 + margin:.2f} needed): findings may sit on the neighbouring module")
+    elif not ends["decisive"]:
+        reg.status = "ambiguous"
+        reg.message += (f"; the table ends prefer a placement one module pitch away (median vote "
+                        f"{ends['lowest']:.2f}, more than {ends['limit']:g} needed): findings may sit on the "
+                        "neighbouring module")
 
 
 def _rescue_locally(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cfg: Mapping[str, Any], ident: Placement,
@@ -482,21 +491,6 @@ def _distinct(proposals: list[Placement], bounds: Any, tol_m: float = 0.02) -> l
     return out
 
 
-def _inverse(p: Placement) -> Placement:
-    """The placement undoing ``p`` (same centre)."""
-    m = np.linalg.inv(p.matrix)
-    t = -m @ np.array([p.tx, p.ty])
-    return Placement(float(t[0]), float(t[1]), -p.theta_deg, 1.0 / p.scale, p.cx, p.cy)
-
-
-def _compose(outer: Placement, inner: Placement) -> Placement:
-    """``inner`` after ``outer`` (both about the same centre): one placement."""
-    m = inner.matrix @ outer.matrix
-    t = inner.matrix @ np.array([outer.tx, outer.ty]) + np.array([inner.tx, inner.ty])
-    th = math.degrees(math.atan2(m[1, 0], m[0, 0]))
-    return Placement(float(t[0]), float(t[1]), th, float(math.hypot(m[0, 0], m[1, 0])), outer.cx, outer.cy)
-
-
 def _num(v: Any) -> float:
     try:
         f = float(v)
@@ -594,6 +588,5 @@ def align_layout(flight: Any, settings: Mapping[str, Any] | None = None, out_pat
                 out.to_file(tmp, layer="modules", driver="GPKG", engine="pyogrio")
         else:
             with atomic_path(out_path, suffix=".tmp.geojson") as tmp:
-                out.to_crs(4326).to_file(tmp, driver="GeoJSON", engine="pyogrio", RFC7946="YES",
-                                         COORDINATE_PRECISION=7)
+                out.to_crs(4326).to_file(tmp, driver="GeoJSON", engine="pyogrio", RFC7946="YES", COORDINATE_PRECISION=7)
     return reg, moved
