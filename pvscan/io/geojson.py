@@ -10,6 +10,7 @@ gives the same geometry and the same error as before.
 from __future__ import annotations
 
 import os
+import threading
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
@@ -25,6 +26,8 @@ __all__ = ["read_feature_collection", "shapes", "remember_written", "written_doc
 #: ``_WRITTEN_KEEP`` documents (a result's modules and anomalies) are held.
 _WRITTEN: dict[tuple[int, int, int, int], Any] = {}
 _WRITTEN_KEEP = 2
+#: Flights inspected in threads of one process (``pvscan.fleet``) share the registry.
+_WRITTEN_LOCK = threading.Lock()
 
 
 def _file_identity(path: str | os.PathLike[str]) -> tuple[int, int, int, int] | None:
@@ -42,10 +45,11 @@ def remember_written(path: str | os.PathLike[str], doc: Any) -> None:
     key = _file_identity(path)
     if key is None:
         return
-    _WRITTEN.pop(key, None)
-    _WRITTEN[key] = doc
-    while len(_WRITTEN) > _WRITTEN_KEEP:
-        _WRITTEN.pop(next(iter(_WRITTEN)))
+    with _WRITTEN_LOCK:
+        _WRITTEN.pop(key, None)
+        _WRITTEN[key] = doc
+        while len(_WRITTEN) > _WRITTEN_KEEP:
+            _WRITTEN.pop(next(iter(_WRITTEN)))
 
 
 def written_document(path: str | os.PathLike[str]) -> Any:
@@ -53,7 +57,10 @@ def written_document(path: str | os.PathLike[str]) -> Any:
     is still the one written (same device, inode, size and modification time; a file renamed
     since is the same file), else None. Handed out once: the holder lets it go."""
     key = _file_identity(path)
-    return _WRITTEN.pop(key, None) if key is not None else None
+    if key is None:
+        return None
+    with _WRITTEN_LOCK:
+        return _WRITTEN.pop(key, None)
 
 
 def read_feature_collection(path: Path, error_cls: type[Exception], missing: str = "file not found", *,
