@@ -255,14 +255,27 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
                                                float(cfg["open_string_row_share"]))):
                 # an established run takes in end modules of its string that are raised,
                 # if less clearly (an open string is normally the whole string); a table row
-                # standing in for unknown strings is not a string, so its run is not extended
-                # (a healthy neighbour a spread warm would join it one time in six)
+                # standing in for unknown strings is not a string, so its run is not extended so
+                # (a healthy neighbour a spread warm would join it one time in six) ...
                 lo_end, hi_end = a, b
                 end_z = float(cfg["open_string_end_z"]) if F.extra.get("is_string", False) else np.inf
                 while lo_end > 0 and F.ok[idx[lo_end - 1]] and z[idx[lo_end - 1]] >= end_z:
                     lo_end -= 1
                 while hi_end < len(idx) and F.ok[idx[hi_end]] and z[idx[hi_end]] >= end_z:
                     hi_end += 1
+                if not F.extra.get("is_string", False):
+                    # ... but a run that stops at most open_string_row_end_modules short of
+                    # its row's end takes in those end modules when they are raised beyond
+                    # what a neighbour of an open string may be (open_string_beyond_max of the
+                    # run's raise): the module at a row's end is the most open to the wind and
+                    # runs cooler, and would otherwise, raised, reject the run as carrying on
+                    n_end = int(cfg["open_string_row_end_modules"])
+                    lim = float(cfg["open_string_beyond_max"]) * float(np.nanmedian(d_o[run]))
+                    with np.errstate(invalid="ignore"):
+                        if 0 < a <= n_end and bool((F.ok[idx[:a]] & (d_o[idx[:a]] > lim)).all()):
+                            lo_end = 0
+                        if 0 < len(idx) - b <= n_end and bool((F.ok[idx[b:]] & (d_o[idx[b:]] > lim)).all()):
+                            hi_end = len(idx)
                 # the end modules taken in are less clear (a healthy module is above
                 # open_string_end_z now and then): when the run with them fails a check of
                 # the whole run, the established run is judged alone

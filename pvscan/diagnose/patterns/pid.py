@@ -213,4 +213,14 @@ def _run_from(idx: np.ndarray, z: np.ndarray, z_ext: np.ndarray, z_o: np.ndarray
     w_min = float(cfg["pid_warm_min_z"])
     if not float(np.nanmedian(z_o[idx[:k]])) >= w_min or not float(z_o[first]) >= w_min:
         return None
+    # past the first pid_max_position of the string PID is less likely (the modules there sit
+    # at a lesser negative potential), not ruled out (the split of the potential depends on the
+    # inverter's grounding and the string's voltage): a run that reaches the limit goes on only
+    # while each next module shows both signs by itself, the edge-ring pattern at the seed bar
+    # and an excess of pid_past_min_excess_z robust spreads over modules outside the string
+    if k == len(zz) == max_len and seed_z is None:
+        z_bar, o_bar = float(cfg["pid_seed_z"]), float(cfg["pid_past_min_excess_z"])
+        while (k < len(idx) and usable[idx[k]] and bool(z[idx[k]] >= z_bar)
+               and bool(z_o[idx[k]] >= o_bar)):
+            k += 1
     return [int(i) for i in idx[:k]]
