@@ -140,7 +140,8 @@ def open_string_min_len(F: Features, cfg: Mapping) -> int:
 def _carried(F: Features, cfg: Mapping, dT: np.ndarray, hit: np.ndarray) -> np.ndarray:
     """Modules whose raise carries on into a module touching them: not open modules by themselves.
 
-    A neighbour raised by at least half the module's raise over the module's reference means a
+    A neighbour raised by at least ``open_module_carried_share`` (a half) of the module's raise
+    over the module's reference means a
     raised area larger than the module: an image artefact (a mosaic seam) or a run of open
     modules, which :func:`pattern_open_string` judges. That hand-over holds only where an open
     string could take the module: when the stretch of such modules along the module's string
@@ -150,11 +151,12 @@ def _carried(F: Features, cfg: Mapping, dT: np.ndarray, hit: np.ndarray) -> np.n
     its peak). A neighbour outside the string (the table's other row) carries it as before.
     """
     adj = F.extra["adjacent"]
+    share = float(cfg["open_module_carried_share"])
     base = F.t_median - dT
     t_adj = np.where(adj >= 0, F.t_median[np.maximum(adj, 0)], np.nan)
     with np.errstate(invalid="ignore"):
         lift = t_adj - base[:, None]
-        half = lift >= 0.5 * dT[:, None]
+        half = lift >= share * dT[:, None]
         carried = half.any(axis=1)
     groups, pos = F.extra.get("groups"), F.extra.get("pos")
     if groups is None or pos is None:
@@ -168,7 +170,7 @@ def _carried(F: Features, cfg: Mapping, dT: np.ndarray, hit: np.ndarray) -> np.n
         idx = np.flatnonzero(groups == groups[i])
         idx = idx[np.argsort(pos[idx], kind="stable")]
         with np.errstate(invalid="ignore"):
-            raised = (F.t_median[idx] - base[i]) >= 0.5 * dT[i]
+            raised = (F.t_median[idx] - base[i]) >= share * dT[i]
         k = int(np.flatnonzero(idx == i)[0])
         lo_k, hi_k = k, k + 1
         while lo_k > 0 and raised[lo_k - 1]:
