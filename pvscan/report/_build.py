@@ -177,7 +177,7 @@ def _overview(data: ResultData, view: ThermalView | None, geo: MapGeometry, cfg:
         extent_view = (xmin + c0 * px_w, xmin + c1 * px_w, ymax - r1 * px_h, ymax - r0 * px_h)
     pins: list = []
     png = figs.overview_png(
-        pins=pins, extent=extent_view, image=image, module_geoms=geo.modules,
+        pins=pins, extent=extent_view, image=image, module_geoms=geo.rings,
         module_values=tmed if image is None else None, anomaly_points=points,
         anomaly_regions=[(g, r["severity"]) for g, (_, r) in zip(geo.anomalies, an.iterrows())],
         cmap=palette.name, vmin=site_window[0], vmax=site_window[1], north_deg=geo.north_deg(),
@@ -247,7 +247,7 @@ def _registration_figure(data: ResultData, geo: MapGeometry, dpi: int) -> str:
             arrows.append((float(t["x"]), float(t["y"]), float(t["dx_m"]), float(t["dy_m"]), "table"))
     if not arrows or not geo.modules:
         return ""
-    return png_data_uri(figs.registration_png(geo.modules, arrows, data.layout_shift_m, dpi))
+    return png_data_uri(figs.registration_png(geo.rings, arrows, data.layout_shift_m, dpi))
 
 
 def _build(data: ResultData, view: ThermalView | None, modules_gdf: Any, cfg: dict, notes: list[str],
@@ -290,7 +290,8 @@ def _build(data: ResultData, view: ThermalView | None, modules_gdf: Any, cfg: di
         "validity": valid,
         "registration": sec.registration(data.summary, data.layout_shift_m),
         "registration_figure": _registration_figure(data, geo, dpi),
-        "registration_detail": registration_detail(data.summary, data.modules, geo.modules, dpi),
+        "registration_detail": registration_detail(data.summary, data.modules, geo.modules, dpi,
+                                                   rings=geo.rings),
         "n_safety": n_safety,
         "map": {"uri": png_data_uri(overview), "on_ortho": on_ortho, "pins": pin_links, "notes": notes},
         "counts": sec.counts(data),

@@ -20,7 +20,7 @@ if TYPE_CHECKING:
     from matplotlib.figure import Figure
 
 __all__ = ["SEVERITY_STYLE", "overview_png", "temperature_hist_png", "delta_norm_hist_png",
-           "loss_by_defect_png", "validity_png", "registration_png", "nice_length"]
+           "loss_by_defect_png", "validity_png", "registration_png", "nice_length", "Rings"]
 
 #: Marker and colour of each severity, on the map and in the plots (our own scheme:
 #: distinct shapes so the map reads in grey print and for colour-blind readers too).
@@ -71,14 +71,36 @@ def nice_length(target: float) -> float:
     return float(10 ** exp)
 
 
-def _polys(geoms: Iterable[Any]) -> Sequence[np.ndarray]:
-    """Exterior rings (k, 2) of the polygons (and polygon parts) of ``geoms``, in order.
+class Rings:
+    """The exterior rings of many polygons (:func:`_polys`), gathered once for figures that
+    draw the same modules (the overview and the registration plans); pass it where a figure
+    takes ``module_geoms``.
+
+    Parameters
+    ----------
+    geoms : iterable of shapely geometries (map coordinates) [m]
+    """
+
+    __slots__ = ("rings",)
+
+    def __init__(self, geoms: Iterable[Any]) -> None:
+        self.rings = _polys(geoms)
+
+    def __len__(self) -> int:
+        return len(self.rings)
+
+
+def _polys(geoms: Iterable[Any] | Rings) -> Sequence[np.ndarray]:
+    """Exterior rings (k, 2) of the polygons (and polygon parts) of ``geoms``, in order
+    (``geoms.rings`` when they were gathered already).
 
     When every ring has the same number of points (module rectangles) they come as one
     (rings, k, 2) array: a ``PolyCollection`` then builds its paths from one template, the
     same vertices and codes as from a list, many times faster on thousands of modules."""
     import shapely
 
+    if isinstance(geoms, Rings):
+        return geoms.rings
     items = list(geoms)
     arr = np.empty(len(items), dtype=object)
     arr[:] = items
@@ -112,7 +134,7 @@ def overview_png(*, extent: Extent, image: np.ndarray | None, module_geoms: Iter
     image : ndarray or None
         Decimated thermal ortho [degC] covering ``extent``; when None the modules are
         filled with ``module_values`` instead.
-    module_geoms : sequence of shapely polygons (map coordinates)
+    module_geoms : sequence of shapely polygons (map coordinates), or their :class:`Rings`
     module_values : ndarray or None
         Module temperatures [degC] (used when ``image`` is None).
     anomaly_points : sequence of (x, y, severity, priority)
@@ -148,20 +170,21 @@ def overview_png(*, extent: Extent, image: np.ndarray | None, module_geoms: Iter
     cax = fig.add_axes((0.885, 0.2, 0.018, 0.68))
     ax.set_facecolor("#e9ecef")
     polys = _polys(module_geoms)
+    # the collections leave the data limits alone (autolim=False): the view is set below
     im: ScalarMappable
     if image is not None:
         im = ax.imshow(image, extent=extent, origin="upper", cmap=cmap, vmin=vmin, vmax=vmax,
                        interpolation="nearest")
         if len(polys):
             ax.add_collection(PolyCollection(polys, facecolors="none", edgecolors=(1, 1, 1, 0.35),
-                                             linewidths=0.35))
+                                             linewidths=0.35), autolim=False)
     else:
         vals = np.asarray(module_values if module_values is not None else [], dtype=float)
         coll = PolyCollection(polys, cmap=cmap, edgecolors=(0.2, 0.2, 0.2, 0.6), linewidths=0.3)
         if len(vals) == len(polys):
             coll.set_array(np.ma.masked_invalid(vals))
         coll.set_clim(vmin, vmax)
-        ax.add_collection(coll)
+        ax.add_collection(coll, autolim=False)
         im = coll
     cb = fig.colorbar(im, cax=cax)
     cb.set_label(image_label, fontsize=8, color=_INK)
@@ -170,7 +193,7 @@ def overview_png(*, extent: Extent, image: np.ndarray | None, module_geoms: Iter
         rp = _polys([g for g, s in anomaly_regions if s == sev])
         if len(rp):
             ax.add_collection(PolyCollection(rp, facecolors="none", edgecolors=SEVERITY_STYLE[sev]["color"],
-                                             linewidths=1.1, zorder=4))
+                                             linewidths=1.1, zorder=4), autolim=False)
     # anomalies, lowest urgency first so safety marks stay on top
     order = sorted(anomaly_points, key=lambda p: -SEVERITIES.index(p[2]) if p[2] in SEVERITIES else -9)
     msize = 46 if len(anomaly_points) < 200 else 22
@@ -456,7 +479,7 @@ def registration_png(module_geoms: Iterable[Any], arrows: Sequence[tuple[float, 
 
     Parameters
     ----------
-    module_geoms : sequence of shapely polygons (map coordinates)
+    module_geoms : sequence of shapely polygons (map coordinates), or their :class:`Rings`
     arrows : sequence of (x, y, dx, dy, kind)
         Position [m], measured shift [m] and ``kind`` ('used', 'not used', 'table').
     shift : (dx, dy)
@@ -472,7 +495,8 @@ def registration_png(module_geoms: Iterable[Any], arrows: Sequence[tuple[float, 
     span = max(xmax - xmin, ymax - ymin, 1.0)
     fig = _figure(5.0, 3.6)
     ax = fig.add_axes((0.02, 0.14, 0.96, 0.78))
-    ax.add_collection(PolyCollection(polys, facecolors="#e3e8ee", edgecolors="#9aa7b6", linewidths=0.3))
+    ax.add_collection(PolyCollection(polys, facecolors="#e3e8ee", edgecolors="#9aa7b6", linewidths=0.3),
+                      autolim=False)
     lengths = [math.hypot(a[2], a[3]) for a in arrows] + [math.hypot(*shift)]
     longest = max([v for v in lengths if math.isfinite(v)] + [1e-3])
     factor = nice_length(0.12 * span / longest) if longest > 0 else 1.0

@@ -179,6 +179,17 @@ class MapGeometry:
         at = an["table_id"] if "table_id" in an else pd.Series([None] * len(an))
         self.anomalies = list(_place(ageo.to_crs(crs).to_numpy(), transform, table_shift(at))) if len(an) else []
         self.tree = STRtree(self.modules) if self.modules else None
+        self._rings: Any = None
+
+    @property
+    def rings(self) -> Any:
+        """The modules' outlines as :class:`pvscan.report._figures.Rings`, gathered on first
+        use and shared by every figure that draws all modules."""
+        if self._rings is None:
+            from pvscan.report._figures import Rings
+
+            self._rings = Rings(self.modules)
+        return self._rings
 
     def module_geoms(self, row: pd.Series) -> list:
         ids = as_list(row.get("module_ids")) or [str(row.get("module_id"))]

@@ -69,7 +69,8 @@ def table_arrows(reg: Mapping, modules: Any, geoms: list) -> list[tuple[float, f
     return out
 
 
-def registration_detail(summary: Mapping[str, Any], modules: Any, geoms: list, dpi: int) -> dict[str, Any] | None:
+def registration_detail(summary: Mapping[str, Any], modules: Any, geoms: list, dpi: int, *,
+                        rings: Any = None) -> dict[str, Any] | None:
     """The registration section's content (None when ``summary.json`` has no registration).
 
     Returns
@@ -138,7 +139,7 @@ def registration_detail(summary: Mapping[str, Any], modules: Any, geoms: list, d
     if geoms:
         from pvscan.report import _figures as figs
 
-        figure = png_data_uri(figs.registration_png(geoms, arrows, (sx, sy), dpi))
+        figure = png_data_uri(figs.registration_png(geoms if rings is None else rings, arrows, (sx, sy), dpi))
     return {"status": status or "unknown", "status_text": STATUS_TEXT.get(status, status),
             "message": str(reg.get("message") or ""), "placement": rows, "evidence": ev_rows, "pitch": pitch,
             "local": local, "figure": figure, "n_tables": len(arrows)}
