@@ -27,6 +27,7 @@ import pandas as pd
 from pvscan._typing import ProgressFn
 from pvscan.io.manifest import Flight, load_flight
 from pvscan.io.settings import Pipeline, load_pipeline
+from pvscan.pipeline_outputs import write_results
 
 if TYPE_CHECKING:
     import geopandas as gpd
@@ -408,29 +409,6 @@ def _check_out_dir(out_dir: Path, overwrite: bool) -> None:
         raise OutputError(f"{out_dir}: output folder exists and is not empty (use --overwrite to replace it)")
 
 
-def write_results(folder: Path, *, modules: gpd.GeoDataFrame, module_table: pd.DataFrame,
-                  anomalies: pd.DataFrame, summary: Mapping[str, Any],
-                  settings: Mapping[str, Any] | None = None) -> dict[str, str]:
-    """Write every result file into ``folder`` (a staging folder); return name -> file name."""
-    from pvscan.io import outputs
-
-    folder = Path(folder)
-    # priority order, ids, walk order and the first module's attributes: once for every writer
-    anomalies = outputs.prepare_anomalies(anomalies, modules, settings)
-    outputs.write_modules_geojson(folder / "modules.geojson", modules, module_table, anomalies, settings=settings)
-    outputs.write_anomalies_geojson(folder / "anomalies.geojson", anomalies, modules, settings=settings)
-    work = outputs.workorders_table(anomalies, modules, site_crs=modules.crs, settings=settings,
-                                    site=summary.get("site"), flight=summary.get("flight"))
-    outputs.write_workorders_csv(folder / "workorders.csv", anomalies, modules, table=work)
-    outputs.write_workorders_gpx(folder / "workorders.gpx", work)
-    outputs.write_geopackage(folder / "pvscan.gpkg", modules.assign(**{c: module_table[c].to_numpy()
-                                                                        for c in module_table.columns}),
-                             anomalies, work, settings=settings)
-    outputs.write_summary(folder / "summary.json", summary)
-    return {"modules": "modules.geojson", "anomalies": "anomalies.geojson", "workorders": "workorders.csv",
-            "workorders_gpx": "workorders.gpx", "geopackage": "pvscan.gpkg", "summary": "summary.json"}
-
-
 def _site_lonlat(modules: gpd.GeoDataFrame) -> tuple[float, float]:
     """WGS84 (lon, lat) [deg] of the plant's centroid: the area-weighted mean of the footprint
     centroids (the centroid of their union when they do not overlap; no union is built)."""
@@ -581,19 +559,19 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
     if out_dir is None:
         return result
 
-    t0 = _clock()
-    with outputs.staging_dir(out_dir, overwrite=overwrite) as tmp:
-        files = write_results(tmp, modules=modules, module_table=table, anomalies=anomalies,
-                              summary=summary, settings=settings["outputs"])
-        _record(timings, "outputs", t0)
-        t0 = _clock()
-        if report:
-            from pvscan.report import write_report
+    from pvscan.pipeline_outputs import write_outputs
 
-            write_report(tmp, tmp / "report.html", flight=flight, modules=modules,
-                         stats=stats, settings=settings["report"], progress=progress)
-            files["report"] = "report.html"
-        _record(timings, "report", t0)
+    t0 = _clock()
+
+    def stage_done(name: str) -> None:
+        nonlocal t0
+        _record(timings, name, t0)
+        t0 = _clock()
+
+    with outputs.staging_dir(out_dir, overwrite=overwrite) as tmp:
+        files = write_outputs(tmp, modules=modules, module_table=table, anomalies=anomalies, summary=summary,
+                              settings=settings, flight=flight, report=report, progress=progress,
+                              stage_done=stage_done)
     result.out_dir = out_dir
     result.files = {k: out_dir / v for k, v in files.items()}
     return result

@@ -23,7 +23,7 @@ from pvscan.report import _figures as figs
 from pvscan.report import _sections as sec
 from pvscan.report._geometry import MapGeometry, as_list
 from pvscan.report._images import Palette, figure_palette, module_window, png_data_uri, quantise_png
-from pvscan.report._raster import ThermalView, open_thermal
+from pvscan.report._raster import OverviewRead, ThermalView, open_thermal
 from pvscan.report._registration import registration_detail
 from pvscan.report._result import SEVERITIES, ResultData, get_path, load_result, validity_checks
 from pvscan.report._series import series_plot
@@ -32,7 +32,7 @@ from pvscan.report._text import DEFECT_TEXT, SAFETY_CAUTIONS, cautions, defect_n
 
 log = logging.getLogger(__name__)
 
-__all__ = ["build_report", "write_report", "SAFETY_CAUTIONS", "DEFECT_TEXT"]
+__all__ = ["build_report", "write_report", "read_overview_ahead", "SAFETY_CAUTIONS", "DEFECT_TEXT"]
 
 
 # kept importable under their former names
@@ -70,11 +70,11 @@ def _ortho_spec_and_paths(data: ResultData, flight: Any, override: Any = None) -
     return paths, (spec if not isinstance(spec, Mapping) else dict(spec))
 
 
-def _open_view(data: ResultData, orthos: Any, flight: Any, notes: list[str], ortho_paths: Any = None
-               ) -> tuple[ThermalView | None, Any]:
+def _open_view(data: ResultData, orthos: Any, flight: Any, notes: list[str], ortho_paths: Any = None,
+               overview: OverviewRead | None = None) -> tuple[ThermalView | None, Any]:
     """(ThermalView or None, ortho set to close or None)."""
     if orthos is not None:
-        return ThermalView(orthos), None
+        return ThermalView(orthos, overview), None
     paths, spec = _ortho_spec_and_paths(data, flight, ortho_paths)
     if not paths:
         notes.append("No thermal ortho is named in summary.json: the map shows module temperatures "
@@ -92,7 +92,17 @@ def _open_view(data: ResultData, orthos: Any, flight: Any, notes: list[str], ort
         notes.append(f"Thermal ortho not readable ({exc}): the map shows module temperatures.")
         log.warning("report: ortho not readable: %s", exc)
         return None, None
-    return ThermalView(oset), oset
+    return ThermalView(oset, overview), oset
+
+
+def read_overview_ahead(flight: Any, settings: Mapping | None, executor: Any) -> OverviewRead | None:
+    """Start reading the report's ortho overview of ``flight`` on ``executor`` (a thread
+    pool), for :func:`write_report` (``overview=``) later; None when the flight names no
+    ortho. The same tiles and units as the report opens for ``flight``."""
+    if flight is None or not list(flight.flight.orthos):
+        return None
+    cfg = _settings(settings)
+    return OverviewRead(list(flight.flight.orthos), flight.ortho, int(cfg["overview_max_px"]), executor)
 
 
 # ---------------------------------------------------------------------- settings
@@ -108,12 +118,12 @@ def _settings(settings: Mapping | None) -> dict:
 
 def build_report(result_dir: str | Path, *, orthos: Any = None, modules: Any = None, flight: Any = None,
                  settings: Mapping | None = None, ortho_paths: Any = None,
-                 progress: ProgressFn | None = None) -> str:
+                 progress: ProgressFn | None = None, overview: OverviewRead | None = None) -> str:
     """The report of a result folder as one HTML string (see :func:`write_report`)."""
     cfg = _settings(settings)
     data = load_result(result_dir)
     notes: list[str] = []
-    view, own = _open_view(data, orthos, flight, notes, ortho_paths)
+    view, own = _open_view(data, orthos, flight, notes, ortho_paths, overview)
     try:
         return _build(data, view, modules, cfg, notes, progress, flight)
     finally:
@@ -321,7 +331,8 @@ def _css(palette: Palette) -> str:
 
 def write_report(result_dir: str | Path, out_path: str | Path | None = None, *, orthos: Any = None,
                  modules: Any = None, flight: Any = None, stats: Any = None, settings: Mapping | None = None,
-                 ortho_paths: Any = None, progress: ProgressFn | None = None) -> Path:
+                 ortho_paths: Any = None, progress: ProgressFn | None = None,
+                 overview: OverviewRead | None = None) -> Path:
     """Write the self-contained inspection report ``report.html``.
 
     Parameters
@@ -350,6 +361,9 @@ def write_report(result_dir: str | Path, out_path: str | Path | None = None, *, 
         ``summary.json`` names one that exists, else degC.
     progress : callable, optional
         ``progress(stage, done, total)``.
+    overview : OverviewRead, optional
+        The ortho overview already being read in another thread (:func:`read_overview_ahead`);
+        used when it was read from the orthos the report draws, at the size it draws.
 
     Returns
     -------
@@ -361,7 +375,7 @@ def write_report(result_dir: str | Path, out_path: str | Path | None = None, *, 
     del stats
     out = Path(out_path) if out_path is not None else Path(result_dir) / "report.html"
     text = build_report(result_dir, orthos=orthos, modules=modules, flight=flight, settings=settings,
-                        ortho_paths=ortho_paths, progress=progress)
+                        ortho_paths=ortho_paths, progress=progress, overview=overview)
     atomic_write(out, text)
     log.info("report written to %s (%.1f MB)", out, len(text.encode("utf-8")) / 1e6)
     return out

@@ -23,7 +23,7 @@ if TYPE_CHECKING:
 
 log = logging.getLogger(__name__)
 
-__all__ = ["ThermalView", "open_thermal"]
+__all__ = ["ThermalView", "open_thermal", "OverviewRead"]
 
 
 class ThermalView:
@@ -35,11 +35,12 @@ class ThermalView:
         Open tiles of one flight (left open: the caller closes them).
     """
 
-    def __init__(self, orthos: OrthoSet) -> None:
+    def __init__(self, orthos: OrthoSet, overview_read: OverviewRead | None = None) -> None:
         self.orthos = orthos
         self.tiles = list(orthos.tiles)
         self.crs = orthos.crs
         self.gsd_m = min(abs(t.transform.a) for t in self.tiles)
+        self._overview_read = overview_read
 
     def overview(self, max_px: int, progress: ProgressFn | None = None) -> tuple[np.ndarray, Extent]:
         """Decimated mosaic of all tiles.
@@ -56,12 +57,13 @@ class ThermalView:
         extent : tuple
             (xmin, xmax, ymin, ymax) [m] in the ortho CRS (matplotlib ``imshow`` order).
         """
-        arr, t = self.orthos.read_overview(int(max_px))
-        arr = np.asarray(arr, dtype=np.float32)
-        h, w = arr.shape
+        done = self._overview_read.result(self.orthos, int(max_px)) if self._overview_read is not None else None
+        self._overview_read = None
+        if done is None:
+            done = _overview(self.orthos, int(max_px))
         if progress is not None:
             progress("report overview", 1, 1)
-        return arr, (t.c, t.c + t.a * w, t.f + t.e * h, t.f)
+        return done
 
     def crop(self, bounds: tuple[float, float, float, float]) -> tuple[np.ndarray, Extent] | None:
         """Full-resolution pixels of a map box from the tile that covers it best.
@@ -135,6 +137,60 @@ class ThermalView:
                 dst[hole] = arr.reshape(dst.shape)[hole]
             if not np.isnan(out).any():
                 return
+
+
+def _overview(orthos: OrthoSet, max_px: int) -> tuple[np.ndarray, Extent]:
+    """``orthos.read_overview(max_px)`` as float32 [degC] with its extent (``ThermalView.overview``)."""
+    arr, t = orthos.read_overview(int(max_px))
+    arr = np.asarray(arr, dtype=np.float32)
+    h, w = arr.shape
+    return arr, (t.c, t.c + t.a * w, t.f + t.e * h, t.f)
+
+
+class OverviewRead:
+    """The report's decimated overview of a flight's orthos, read in a background thread
+    while other work (the result writers) runs: GDAL decodes without holding Python's
+    interpreter lock, so the read uses the machine's second core.
+
+    The thread opens its own handles of the tiles (a dataset handle is not shared between
+    threads) and reads exactly what :meth:`ThermalView.overview` reads, so the image is the
+    same; :meth:`result` hands it over only for the same tiles, units and size.
+
+    Parameters
+    ----------
+    paths : sequence of path-like
+        The ortho tiles.
+    spec : OrthoSpec or mapping, optional
+        Their units (as for :func:`open_thermal`).
+    max_px : int
+        Longest side of the overview [px] (``[report] overview_max_px``).
+    executor : concurrent.futures.Executor
+        Where the read runs.
+    """
+
+    def __init__(self, paths: Sequence[str | Path], spec: Any, max_px: int, executor: Any) -> None:
+        self.paths = [Path(p) for p in paths]
+        self.spec = spec
+        self.max_px = int(max_px)
+        self._future = executor.submit(self._read)
+
+    def _read(self) -> tuple[tuple[Any, ...], tuple[np.ndarray, Extent]]:
+        with open_thermal(self.paths, self.spec) as oset:
+            return tuple(oset.tiles), _overview(oset, self.max_px)
+
+    def result(self, orthos: OrthoSet, max_px: int) -> tuple[np.ndarray, Extent] | None:
+        """The overview read for ``orthos`` at ``max_px``; None when it was read for other
+        tiles, units or size, or the read failed (the caller then reads it itself and meets
+        the same failure in its own thread)."""
+        from pvscan.errors import PvscanError
+
+        try:
+            tiles, done = self._future.result()
+        except (PvscanError, OSError, ValueError) as exc:
+            log.debug("report: the overview read beforehand failed (%s); reading it again", exc)
+            return None
+        # the same files, grids and value conversions (Tile equality), the same size
+        return done if int(max_px) == self.max_px and tuple(orthos.tiles) == tiles else None
 
 
 def open_thermal(paths: Sequence[str | Path], spec: Any = None) -> OrthoSet:
