@@ -27,7 +27,6 @@ import pandas as pd
 from pvscan._typing import ProgressFn
 from pvscan.io.manifest import Flight, load_flight
 from pvscan.io.settings import Pipeline, load_pipeline
-from pvscan.pipeline_outputs import write_results
 
 if TYPE_CHECKING:
     import geopandas as gpd
@@ -39,7 +38,7 @@ if TYPE_CHECKING:
     from pvscan.measure.zonal import ZonalStats
 
 __all__ = ["inspect_flight", "InspectionResult", "Measurement", "OrthoInfo", "SeamLevelling", "measure_flight",
-           "run_settings", "true_statistics", "write_results", "detected_layout", "STRING_PATTERNS"]
+           "run_settings", "true_statistics", "detected_layout", "STRING_PATTERNS"]
 
 log = logging.getLogger(__name__)
 
@@ -409,6 +408,14 @@ def _check_out_dir(out_dir: Path, overwrite: bool) -> None:
         raise OutputError(f"{out_dir}: output folder exists and is not empty (use --overwrite to replace it)")
 
 
+def __getattr__(name: str) -> Any:  # moved to the report package; importable here as before
+    if name == "write_results":
+        from pvscan.report._outputs import write_results
+
+        return write_results
+    raise AttributeError(name)
+
+
 def _site_lonlat(modules: gpd.GeoDataFrame) -> tuple[float, float]:
     """WGS84 (lon, lat) [deg] of the plant's centroid: the area-weighted mean of the footprint
     centroids (the centroid of their union when they do not overlap; no union is built)."""
@@ -559,7 +566,7 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
     if out_dir is None:
         return result
 
-    from pvscan.pipeline_outputs import write_outputs
+    from pvscan.report._outputs import write_outputs
 
     t0 = _clock()
 

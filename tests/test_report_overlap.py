@@ -1,10 +1,10 @@
-"""The last stages on two threads (pvscan.pipeline_outputs.write_outputs): the ortho overview
+"""The last stages on two threads (pvscan.report._outputs.write_outputs): the ortho overview
 read ahead, the GeoPackage and GPX written while the report is drawn.
 
 References: the overview is checked against rasterio's own decimated (nearest-neighbour)
 read of the GeoTIFF and the ``value = raw * scale + offset`` conversion of the flight's
 manifest; the files against the same files written one after the other
-(:func:`pvscan.pipeline_outputs.write_results`, then :func:`pvscan.report.write_report`).
+(:func:`pvscan.report._outputs.write_results`, then :func:`pvscan.report.write_report`).
 """
 from __future__ import annotations
 
@@ -26,7 +26,7 @@ RESULT_TEXT_FILES = ("modules.geojson", "anomalies.geojson", "workorders.csv", "
 def captured(tmp_path_factory):
     """A small simulated flight through ``inspect_flight`` (report on), with the arguments
     the pipeline handed to ``write_outputs`` kept (the function itself runs unchanged)."""
-    import pvscan.pipeline_outputs as po
+    import pvscan.report._outputs as po
     from pvscan.pipeline import inspect_flight
     from pvscan.simulate import simulate_flight
 
@@ -104,8 +104,8 @@ def test_files_are_those_written_one_after_another(captured):
 
     import pyogrio
 
-    from pvscan.pipeline_outputs import write_outputs, write_results
     from pvscan.report import write_report
+    from pvscan.report._outputs import write_outputs, write_results
 
     d, kw = captured
     threaded, one_by_one = d / "again", d / "sequential"
@@ -142,7 +142,7 @@ def test_a_writer_error_on_the_second_thread_reaches_the_caller(captured):
     """A GeoPackage that cannot be written (its name taken by a non-empty folder) fails the
     run with the same error as written one after the other; the report thread's files do
     not hide it."""
-    from pvscan.pipeline_outputs import write_outputs, write_results
+    from pvscan.report._outputs import write_outputs, write_results
 
     d, kw = captured
     errors = []

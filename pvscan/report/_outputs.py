@@ -116,7 +116,7 @@ def write_outputs(folder: Path, *, modules: gpd.GeoDataFrame, module_table: pd.D
         done("outputs")
         done("report")
         return files
-    from pvscan.report import read_overview_ahead, write_report
+    from pvscan.report._build import read_overview_ahead, write_report
 
     with ThreadPoolExecutor(max_workers=1, thread_name_prefix="pvscan-outputs") as pool:
         # leaving the block waits for the thread's work, also on an error: nothing is still
@@ -127,8 +127,14 @@ def write_outputs(folder: Path, *, modules: gpd.GeoDataFrame, module_table: pd.D
         done("outputs")
         others = pool.submit(_other_files, folder, modules=modules, module_table=module_table,
                              anomalies=prepared, work=work, settings=out_cfg)
-        write_report(folder, folder / "report.html", flight=flight, modules=modules,
-                     settings=settings["report"], progress=progress, overview=ahead)
+        try:
+            write_report(folder, folder / "report.html", flight=flight, modules=modules,
+                         settings=settings["report"], progress=progress, overview=ahead)
+        except BaseException:
+            # one after the other, the GeoPackage and GPX came first: their error is the one to report
+            if others.exception() is not None:
+                others.result()
+            raise
         t0 = time.perf_counter()
         others.result()  # a writer's error is raised here
         log.debug("report: %.3f s waiting for the GeoPackage and GPX", time.perf_counter() - t0)
