@@ -91,7 +91,8 @@ def column_values(frame: pd.DataFrame, col: str, nd: int = 4) -> list:
         return [bool(v) for v in ser.tolist()]
     if pd.api.types.is_integer_dtype(ser.dtype):
         return [None if pd.isna(v) else int(v) for v in ser.astype(object).tolist()]
-    return [round_floats(to_jsonable(v), nd) for v in ser.tolist()]
+    # text and missing values (ids, classes) as they are: what to_jsonable and round_floats give them
+    return [v if v is None or type(v) is str else round_floats(to_jsonable(v), nd) for v in ser.tolist()]
 
 
 def csv_cell(v: Any) -> str:
