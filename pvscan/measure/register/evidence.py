@@ -466,13 +466,12 @@ def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, 
     the sun (onto the shadowed side, which may look like glass) counts
     ``evidence_shadow_weight`` of one moving toward it.
 
-    The ratio of means is carried by the modules of large spread of their own (a shaded
-    lower edge, a hot cell, glass blurred across a frame seam), which a small move hardly
-    changes. Module by module, a footprint sitting on its module has its spread lower than
-    at both probes of an axis; ``minimum_share_u`` / ``minimum_share_v`` are the shares of
-    the sampled footprints where it is. Either test passed along both axes shows the
-    footprints on their modules: the ratios at most ``evidence_max_ratio``, or the shares
-    at least ``evidence_min_share``.
+    The ratio of means is carried by modules of large spread of their own (a shaded edge, a
+    hot cell, glass blurred at a frame seam) that a small move hardly changes; module by
+    module, a footprint on its module has its spread lower than at both probes of an axis
+    (``minimum_share_u`` / ``_v``: the share of footprints where it is). Either test passed
+    on both axes (ratios at most ``evidence_max_ratio``, shares at least
+    ``evidence_min_share``) shows the footprints on their modules.
 
     Uniform ground between rows can look as even as glass; when the apparent temperature of
     sunlit glass at the flight's conditions is known (``expected_c``), the median of the
@@ -507,9 +506,7 @@ def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, 
             p = placement.moved(tx=placement.tx + step[0], ty=placement.ty + step[1])
             sd_p = module_spread(sample, p, local=local, inset_u=inset, inset_v=inset)
             e = evidence(sd_p)
-            # a module's own minimum: its spread lower here than at either probe
-            with np.errstate(invalid="ignore"):
-                lowest &= np.isfinite(sd_p) & (sd_at < sd_p)
+            lowest &= np.isfinite(sd_p) & (sd_at < sd_p)  # a footprint's own minimum: lower than either probe
             # away from the sun: onto the table's shadow, which may look like glass
             w = wsh if (sun is not None and float(step @ np.asarray(sun[:2])) < 0) else 1.0
             if math.isfinite(e):
@@ -517,19 +514,16 @@ def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, 
                 den += w
         e_probe = num / den if den > 0 else float("nan")
         out[f"ratio_{name}"] = sp0 / e_probe if (math.isfinite(e_probe) and e_probe > 0) else float("nan")
-        n_fin = int(np.count_nonzero(np.isfinite(sd_at)))
-        out[f"minimum_share_{name}"] = float(np.count_nonzero(lowest)) / n_fin if n_fin else float("nan")
+        n_fin = np.count_nonzero(np.isfinite(sd_at))
+        out[f"minimum_share_{name}"] = np.count_nonzero(lowest) / n_fin if n_fin else float("nan")
     lim = float(cfg["evidence_max_ratio"])
-    share_min = float(cfg["evidence_min_share"])
     exp_c = float(expected_c) if expected_c is not None else math.nan
     known = math.isfinite(exp_c)
     out["glass_error_k"] = glass - exp_c if known else float("nan")
     glass_ok = (not known) or abs(out["glass_error_k"]) <= float(cfg["evidence_glass_max_k"])
     by_ratio = all(math.isfinite(out[f"ratio_{a}"]) and out[f"ratio_{a}"] <= lim for a in ("u", "v"))
-    # module by module: most footprints at their own minimum along both axes (a placement a
-    # few decimetres off moves most of them toward their module: lower on one side)
-    by_share = all(math.isfinite(out[f"minimum_share_{a}"]) and out[f"minimum_share_{a}"] >= share_min
-                   for a in ("u", "v"))
+    # a placement a few decimetres off has most footprints lower on one side (nearer their module)
+    by_share = all(out[f"minimum_share_{a}"] >= float(cfg["evidence_min_share"]) for a in ("u", "v"))
     out["ok"] = bool((by_ratio or by_share) and math.isfinite(e0) and glass_ok)
     return out
 
