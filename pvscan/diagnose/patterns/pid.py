@@ -33,7 +33,7 @@ def _trimmed_mean(x: np.ndarray, cut: float = 0.1) -> np.ndarray:
             np.where(keep.sum(axis=-1) > 0, 0.0, np.nan)
 
 
-def pid_ring_contrast(F: Features) -> np.ndarray:
+def pid_ring_contrast(F: Features, residual: np.ndarray | None = None) -> np.ndarray:
     """How much warmer a module's edge cells run than its interior cells [K].
 
     The median over the four edges (lines of cells along ``u = 0``, ``u = 1``, ``v = 0``,
@@ -42,12 +42,15 @@ def pid_ring_contrast(F: Features) -> np.ndarray:
     The 10 % trimming keeps a single hot cell from posing as an edge-weighted pattern. The
     residual is taken against modules outside the string (``F.extra["R_other"]``) when
     available: PID modules sit side by side, and their neighbours' shared shape would
-    carry part of their own pattern.
+    carry part of their own pattern. ``residual`` (modules x cells along x cells across
+    [K]) replaces it, e.g. ``F.R``, the residual against the module's own table row.
     """
     n, A, C = F.n, F.n_along, F.n_across
     ii, jj = np.indices((A, C))
     ring = ((ii == 0) | (ii == A - 1) | (jj == 0) | (jj == C - 1)).ravel()
-    flat = F.extra.get("R_other", F.R).reshape(n, -1)
+    if residual is None:
+        residual = F.extra.get("R_other", F.R)
+    flat = np.asarray(residual).reshape(n, -1)
     core = _trimmed_mean(flat[:, ~ring])
     # each of the four edges on its own, then the median of the four: PID warms all edges,
     # a seam or warm ground along a row one of them
@@ -77,6 +80,12 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     modules outside its string, in robust spreads of healthy modules, at least
     ``pid_warm_min_z``, and so the excess of its module at the negative end, the most
     affected one (PID takes power away, so the modules run warmer, not clearly cooler).
+    With strings known, the run must show the edge-ring pattern against its own table row
+    too (the contrast of :func:`pid_ring_contrast` on the residual against the row, ``F.R``,
+    in robust spreads of healthy modules, combined evidence ``sum(z) / sqrt(n)`` at least
+    ``pid_own_row_min_z``): an image artefact shared by a stretch of a row (a mosaic seam
+    shifting its pixels, a reflection band) shows against modules of other rows, not
+    against the row's own modules beside the string.
 
     Without strings (``is_string`` false, ``groups`` the table rows of a layout of table
     polygons), a string's negative end may be at any module of a row, facing either way:
@@ -106,6 +115,15 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     z_ext = (z + w * np.clip(z_o, -3.0, 3.0)) / np.sqrt(1.0 + w * w)
     out: list[list[int]] = []
     usable = F.ok & ~exclude
+    z_row = None
+    if is_string:
+        # the same contrast against the module's own table row (strings known: the row holds
+        # modules of other strings beside the string)
+        c_row = pid_ring_contrast(F, F.R)
+        ok_row = F.ok & ~exclude & np.isfinite(c_row)
+        if ok_row.sum() >= 5:
+            z_row = (c_row - float(np.median(c_row[ok_row]))) / max(scaled_mad(c_row[ok_row]), 0.02)
+        F.extra["pid_z_row"] = z_row
     for g in np.unique(groups[groups >= 0]):
         idx = np.flatnonzero(groups == g)
         idx = idx[np.argsort(pos[idx], kind="stable")]
@@ -114,6 +132,9 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
         if is_string:
             max_len = max(int(np.floor(float(cfg["pid_max_position"]) * len(idx))), 1)
             run = _run_from(idx, z, z_ext, z_o, usable, cfg, max_len, float(cfg["pid_run_z"]))
+            if run and z_row is not None and not (
+                    float(np.nansum(z_row[run])) / np.sqrt(len(run)) >= float(cfg["pid_own_row_min_z"])):
+                run = None
             if run:
                 out.append(run)
             continue
