@@ -1192,3 +1192,40 @@ def test_open_string_of_a_whole_table_row_with_a_cooler_end_module(rng):
     assert sorted(int(i) for i in got.iloc[0]["module_indices"]) == sorted(int(i) for i in row)
     an0, _ = p.run(settings=_with(open_string_row_end_modules=0))
     assert "open_string" not in set(an0.defect)
+
+
+def test_edge_ring_shared_by_a_stretch_of_a_row_is_not_pid(rng):
+    # a stretch of a table row whose footprints the ortho shifted by a few centimetres onto the
+    # gaps between modules (a mosaic seam), over hot ground seen through the gaps (common
+    # practice: sunlit ground runs tens of kelvin above the glass): every module of the stretch
+    # (a string of six and the next string's first module) reads its edge cells warmer than its
+    # interior, PID's edge-ring sign (IEC TS 62446-3 thermograms), and warmer on its median (by
+    # the module-to-module spread). Against modules of other rows it is a PID string at its
+    # negative end; against the row's own modules beside it nothing: the own-row evidence is
+    # then noise, z ~ N(0, 1), so a stretch passes the bar of 1 robust spread by chance with
+    # P(z >= 1) = 0.16 (normal distribution). Of 8 plants at most 4 may keep it (binomial
+    # P(X >= 5 | 8, 0.16) = 3e-3); without the own-row test at least 6 are taken for PID. A
+    # true PID string (its row holds another string beside it) loses no module to the bar.
+    k1 = k0 = n1 = n0 = 0
+    for _ in range(8):
+        p = Plant(rng, strings="half")
+        m = p.modules
+        A, C = p.spec.n_along, p.spec.n_across
+        ii, jj = np.indices((A, C))
+        edge = (ii == 0) | (ii == A - 1) | (jj == 0) | (jj == C - 1)
+        stretch = np.flatnonzero(((m.table_id == "T0-1") & (m.table_row == 1) & (m.table_col <= 7)).to_numpy())
+        for i in stretch:
+            p.cm[i] += np.where(edge, 0.9, 0.5)
+        true_pid = [int(i) for i in p.pid("T1-0-R2-S1", 3)]
+        an, _ = p.run()
+        got = found(an)
+        k1 += any(got.get(int(i)) == "pid" for i in stretch)
+        # without the own-row test the stretch's first string is taken for PID
+        an0, _ = p.run(settings=_with(pid_own_row_min_z=-100.0))
+        got0 = found(an0)
+        k0 += any(got0.get(int(i)) == "pid" for i in stretch)
+        n1 += sum(got.get(i) == "pid" for i in true_pid)
+        n0 += sum(got0.get(i) == "pid" for i in true_pid)
+    assert k1 <= 4 and k0 >= 6, (k1, k0)
+    # the true strings keep every module the test without the own-row bar finds
+    assert n1 == n0 >= 18, (n1, n0)

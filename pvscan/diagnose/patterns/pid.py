@@ -82,7 +82,8 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     affected one (PID takes power away, so the modules run warmer, not clearly cooler).
     With strings known, the run must show the edge-ring pattern against its own table row
     too (the contrast of :func:`pid_ring_contrast` on the residual against the row, ``F.R``,
-    in robust spreads of healthy modules, combined evidence ``sum(z) / sqrt(n)`` at least
+    in robust spreads of healthy modules, combined evidence ``sum(z) / sqrt(n)`` over the
+    run within the first ``pid_max_position`` of the string at least
     ``pid_own_row_min_z``): an image artefact shared by a stretch of a row (a mosaic seam
     shifting its pixels, a reflection band) shows against modules of other rows, not
     against the row's own modules beside the string.
@@ -132,8 +133,11 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
         if is_string:
             max_len = max(int(np.floor(float(cfg["pid_max_position"]) * len(idx))), 1)
             run = _run_from(idx, z, z_ext, z_o, usable, cfg, max_len, float(cfg["pid_run_z"]))
-            if run and z_row is not None and not (
-                    float(np.nansum(z_row[run])) / np.sqrt(len(run)) >= float(cfg["pid_own_row_min_z"])):
+            # (over the run within the first pid_max_position of the string: modules past it
+            # join by a stricter test of their own)
+            core = run[:max_len] if run else run
+            if core and z_row is not None and not (
+                    float(np.nansum(z_row[core])) / np.sqrt(len(core)) >= float(cfg["pid_own_row_min_z"])):
                 run = None
             if run:
                 out.append(run)
