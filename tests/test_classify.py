@@ -1229,3 +1229,47 @@ def test_edge_ring_shared_by_a_stretch_of_a_row_is_not_pid(rng):
     assert k1 <= 4 and k0 >= 6, (k1, k0)
     # the true strings keep every module the test without the own-row bar finds
     assert n1 == n0 >= 18, (n1, n0)
+
+
+def _pattern_check(an_diag, settings=None):
+    from pvscan.measure.validity import evidence_checks
+
+    checks = {c["name"]: c for c in evidence_checks(an_diag.evidence, settings or load_pipeline())}
+    return checks["unexplained_pid_pattern"]
+
+
+def test_pid_string_read_cool_is_flagged_not_called_valid(rng):
+    # a PID string (edge-ring pattern, IEC TS 62446-3 thermograms) whose modules read cooler than
+    # modules outside the string: a cloud shadow over them, a 10 % dip of the irradiance on a
+    # Faiman rise of about 30 K (pvlib.temperature.faiman) cools them by some 3 K. PID takes power
+    # away and warms its modules, so the patterns do not take a cool string for PID; the pattern
+    # is the module's own all the same (seen against other rows and against its own row), and
+    # the flight is flagged rather than called valid. Healthy plants and a row's artefact (an edge
+    # ring shared by the modules of one string along a row) pass.
+    p = Plant(rng, strings="half")
+    idx = [int(i) for i in p.pid("T1-0-R2-S1", 3, f0=0.2)]
+    for i in idx:
+        p.cm[i] -= 0.10 * faiman_rise()
+    diag = p.run()
+    assert "pid" not in set(diag.anomalies.defect)
+    c = _pattern_check(diag)
+    assert c["passed"] is False and c["module"] == p.modules.module_id[idx[0]], c
+    assert _pattern_check(diag, _with_validity(max_unexplained_pid_pattern_z=100.0))["passed"] is True
+    # a healthy plant passes
+    assert _pattern_check(Plant(rng, strings="half").run())["passed"] is True
+    # an edge ring shared by a stretch of a row: against its own row the pattern is not there
+    q = Plant(rng, strings="half")
+    m = q.modules
+    A, C = q.spec.n_along, q.spec.n_across
+    ii, jj = np.indices((A, C))
+    edge = (ii == 0) | (ii == A - 1) | (jj == 0) | (jj == C - 1)
+    for i in np.flatnonzero(((m.table_id == "T0-1") & (m.table_row == 1) & (m.table_col <= 6)).to_numpy()):
+        q.cm[i] += np.where(edge, 0.9, 0.5)
+    assert _pattern_check(q.run())["passed"] is True
+
+
+def _with_validity(**keys):
+    """The pipeline settings with some [validity] keys changed (a plain mapping)."""
+    s = load_pipeline().to_dict()
+    s["validity"] = {**s["validity"], **keys}
+    return s
