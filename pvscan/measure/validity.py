@@ -484,7 +484,8 @@ def unexplained_pid_pattern_check(evidence: Mapping[str, Any], settings: Mapping
 def evidence_checks(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> list[Check]:
     """The checks of what the classification measured about the flight as a whole
     (:attr:`pvscan.diagnose.results.Diagnosis.evidence`): ``string_reference``,
-    ``row_cluster``, ``unexplained_pid`` and ``unexplained_pid_pattern``. Empty when there is no evidence (no module classified)."""
+    ``row_cluster``, ``unexplained_pid`` and ``unexplained_pid_pattern``. Empty when there is no
+    evidence (no module classified)."""
     if not evidence:
         return []
     checks = [string_reference_check(evidence, settings)]
