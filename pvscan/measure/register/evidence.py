@@ -466,6 +466,13 @@ def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, 
     the sun (onto the shadowed side, which may look like glass) counts
     ``evidence_shadow_weight`` of one moving toward it.
 
+    The ratio of means is carried by modules of large spread of their own (a shaded edge, a
+    hot cell, glass blurred at a frame seam) that a small move hardly changes; module by
+    module, a footprint on its module has its spread lower than at both probes of an axis
+    (``minimum_share_u`` / ``_v``: the share of footprints where it is). Either test passed
+    on both axes (ratios at most ``evidence_max_ratio``, shares at least
+    ``evidence_min_share``) shows the footprints on their modules.
+
     Uniform ground between rows can look as even as glass; when the apparent temperature of
     sunlit glass at the flight's conditions is known (``expected_c``), the median of the
     footprints' mean values must also lie within ``evidence_glass_max_k`` of it.
@@ -475,8 +482,9 @@ def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, 
     dict
         ``evidence`` (E of the placement) [-], ``spread_k`` (the plain spread inside the
         footprints, the numerator of the probe ratios) [K], ``ratio_u``, ``ratio_v`` [-],
-        ``glass_error_k`` [K] (NaN when unknown) and ``ok`` (both ratios at most
-        ``evidence_max_ratio``, and the glass temperature within its limit when known).
+        ``minimum_share_u``, ``minimum_share_v`` [-], ``glass_error_k`` [K] (NaN when
+        unknown) and ``ok`` (both ratios at most ``evidence_max_ratio`` or both shares at
+        least ``evidence_min_share``, and the glass temperature within its limit when known).
     """
     inset = float(cfg["evidence_inset"])
     sd0, mean0 = module_spread(sample, placement, local=local, with_mean=True, inset_u=inset, inset_v=inset,
@@ -484,17 +492,21 @@ def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, 
     e0 = evidence(sd0)
     # the probes compare plain spreads: the outline contrast that guides the search (and
     # keeps it off smooth ground) also grows when a footprint slides onto a table edge
-    sp0 = evidence(module_spread(sample, placement, local=local, inset_u=inset, inset_v=inset))
+    sd_at = module_spread(sample, placement, local=local, inset_u=inset, inset_v=inset)
+    sp0 = evidence(sd_at)
     glass = float(np.nanmedian(mean0)) if np.isfinite(mean0).any() else float("nan")
     d = float(cfg["evidence_probe_m"])
     wsh = float(cfg["evidence_shadow_weight"])
     out: dict[str, Any] = {"evidence": e0, "spread_k": sp0}
     for name, ax in zip(("u", "v"), _unit_axes(sample)):
         num, den = 0.0, 0.0
+        lowest = np.isfinite(sd_at)
         for sgn in (1.0, -1.0):
             step = sgn * ax * d
             p = placement.moved(tx=placement.tx + step[0], ty=placement.ty + step[1])
-            e = evidence(module_spread(sample, p, local=local, inset_u=inset, inset_v=inset))
+            sd_p = module_spread(sample, p, local=local, inset_u=inset, inset_v=inset)
+            e = evidence(sd_p)
+            lowest &= np.isfinite(sd_p) & (sd_at < sd_p)  # a footprint's own minimum: lower than either probe
             # away from the sun: onto the table's shadow, which may look like glass
             w = wsh if (sun is not None and float(step @ np.asarray(sun[:2])) < 0) else 1.0
             if math.isfinite(e):
@@ -502,13 +514,17 @@ def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, 
                 den += w
         e_probe = num / den if den > 0 else float("nan")
         out[f"ratio_{name}"] = sp0 / e_probe if (math.isfinite(e_probe) and e_probe > 0) else float("nan")
+        n_fin = np.count_nonzero(np.isfinite(sd_at))
+        out[f"minimum_share_{name}"] = np.count_nonzero(lowest) / n_fin if n_fin else float("nan")
     lim = float(cfg["evidence_max_ratio"])
     exp_c = float(expected_c) if expected_c is not None else math.nan
     known = math.isfinite(exp_c)
     out["glass_error_k"] = glass - exp_c if known else float("nan")
     glass_ok = (not known) or abs(out["glass_error_k"]) <= float(cfg["evidence_glass_max_k"])
-    out["ok"] = bool(all(math.isfinite(out[f"ratio_{a}"]) and out[f"ratio_{a}"] <= lim for a in ("u", "v"))
-                     and math.isfinite(e0) and glass_ok)
+    by_ratio = all(math.isfinite(out[f"ratio_{a}"]) and out[f"ratio_{a}"] <= lim for a in ("u", "v"))
+    # a placement a few decimetres off has most footprints lower on one side (nearer their module)
+    by_share = all(out[f"minimum_share_{a}"] >= float(cfg["evidence_min_share"]) for a in ("u", "v"))
+    out["ok"] = bool((by_ratio or by_share) and math.isfinite(e0) and glass_ok)
     return out
 
 

@@ -25,6 +25,7 @@ import logging
 import math
 import warnings
 from collections.abc import Mapping
+from dataclasses import replace
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
@@ -318,7 +319,9 @@ def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cf
     steps = [s * v for v in _pitches(modules) for s in (1.0, -1.0)]
     if not steps:
         return
-    cur = Placement(base.tx, base.ty, base.theta_deg, base.scale, base.cx, base.cy)
+    # the table corrections of a placement rescued table by table stay: without them its
+    # footprints straddle the module edges and every alternative looks almost as good
+    cur = base
     q_cur = _judge(_sample_at(orthos, modules, cur, cfg), ident, cfg, sun, expected_c)
     moved_by = np.zeros(2)
     rounds = int(cfg["pitch_max_steps"])
@@ -326,7 +329,7 @@ def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cf
     for _ in range(rounds + 1):
         alts = []
         for v in steps:
-            p = cur.moved(tx=cur.tx + float(v[0]), ty=cur.ty + float(v[1]))
+            p = replace(cur, tx=cur.tx + float(v[0]), ty=cur.ty + float(v[1]))
             alts.append((v, _judge(_sample_at(orthos, modules, p, cfg), ident, cfg, sun, expected_c)))
         move_below = float(cfg["pitch_move_ratio"]) * _num(q_cur["evidence"])
         better = [(v, q) for v, q in alts if q["ok"] and _num(q["evidence"]) < move_below]
@@ -334,7 +337,7 @@ def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cf
             break
         v, q = min(better, key=lambda t: _num(t[1]["evidence"]))
         reg.evidence.setdefault("pitch_moves", []).append([round(float(v[0]), 4), round(float(v[1]), 4)])
-        cur = cur.moved(tx=cur.tx + float(v[0]), ty=cur.ty + float(v[1]))
+        cur = replace(cur, tx=cur.tx + float(v[0]), ty=cur.ty + float(v[1]))
         moved_by += v
         q_cur = q
     e_cur = _num(q_cur["evidence"])
@@ -504,7 +507,8 @@ def _moved_message(p: Placement, how: str, q_id: Mapping[str, Any], q_c: Mapping
     it was found, and the module evidence as drawn and as placed."""
     return (f"layout moved by ({p.tx:+.3f}, {p.ty:+.3f}) m, rotated {p.theta_deg:+.3f} deg, "
             f"scaled {p.scale:.5f}{how}: module evidence {q_id['evidence']:.3f} -> {q_c['evidence']:.3f} "
-            f"(probe ratios {q_c['ratio_u']:.2f}, {q_c['ratio_v']:.2f}; limit {lim:g})")
+            f"(probe ratios {q_c['ratio_u']:.2f}, {q_c['ratio_v']:.2f}; limit {lim:g}; footprints at their own "
+            f"minimum {_num(q_c.get('minimum_share_u')):.0%}, {_num(q_c.get('minimum_share_v')):.0%})")
 
 
 def _use_placement(reg: Registration, p: Placement, *, residuals: bool = True) -> None:
