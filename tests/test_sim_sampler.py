@@ -60,6 +60,37 @@ def test_varying_conditions_stay_within_the_irradiance_limit_along_the_flight():
     assert seen >= 10  # one flight in three varies: at least 10 of 120 draws (binomial, p < 1e-9 to fail)
 
 
+def test_varying_conditions_change_less_than_the_acquisition_limit_along_the_flight():
+    """A random flight's irradiance changes by less than the acquisition limit while it flies.
+
+    IEC TS 62446-3 (from memory): the irradiance may change by at most 10 % during the
+    measurement; the pipeline's ``[conditions] max_irradiance_change_pct`` holds that limit and
+    its check ``irradiance_change`` measures (max - min) / mean of the logged series. Every
+    family promises flights within the acquisition limits, so none of its varying flights may
+    fail that check by construction (a 12 % dip did, on flights of 80 s). The change is computed
+    here from the series as a logger writes it, for flights of 1 to 30 min.
+    """
+    from pvscan.io.settings import load_pipeline, section
+    from pvscan.simulate.flightpath import weather_series
+    from pvscan.simulate.scenario import DEFAULTS
+
+    limit_pct = float(section(load_pipeline(), "conditions")["max_irradiance_change_pct"])
+    assert limit_pct <= 10.0
+    seen = 0
+    for family in FAMILIES:
+        for sc in _draws(family, 12):
+            if not sc["conditions"]["varying"]:
+                continue
+            cond = {**DEFAULTS["conditions"], **sc["conditions"]}
+            for k, duration_s in enumerate((60.0, 80.0, 300.0, 1800.0)):
+                ws = weather_series(cond, duration_s, np.random.default_rng([SEED, k]))
+                g = ws.poa_global
+                change_pct = 100.0 * (float(g.max()) - float(g.min())) / float(g.mean())
+                assert change_pct < limit_pct, (family, sc["flight"]["id"], duration_s, change_pct)
+            seen += 1
+    assert seen >= 10  # one flight in three varies: at least 10 of 120 draws (binomial, p < 1e-9 to fail)
+
+
 @pytest.mark.parametrize("family", FAMILIES)
 def test_draws_resolve_cells_as_the_pipeline_requires(family):
     # A detailed inspection needs at least [conditions] min_px_per_cell pixels along a cell's
