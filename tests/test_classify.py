@@ -1192,3 +1192,84 @@ def test_open_string_of_a_whole_table_row_with_a_cooler_end_module(rng):
     assert sorted(int(i) for i in got.iloc[0]["module_indices"]) == sorted(int(i) for i in row)
     an0, _ = p.run(settings=_with(open_string_row_end_modules=0))
     assert "open_string" not in set(an0.defect)
+
+
+def test_edge_ring_shared_by_a_stretch_of_a_row_is_not_pid(rng):
+    # a stretch of a table row whose footprints the ortho shifted by a few centimetres onto the
+    # gaps between modules (a mosaic seam), over hot ground seen through the gaps (common
+    # practice: sunlit ground runs tens of kelvin above the glass): every module of the stretch
+    # (a string of six and the next string's first module) reads its edge cells warmer than its
+    # interior, PID's edge-ring sign (IEC TS 62446-3 thermograms), and warmer on its median (by
+    # the module-to-module spread). Against modules of other rows it is a PID string at its
+    # negative end; against the row's own modules beside it nothing: the own-row evidence is
+    # then noise, z ~ N(0, 1), so a stretch passes the bar of 1 robust spread by chance with
+    # P(z >= 1) = 0.16 (normal distribution). Of 8 plants at most 4 may keep it (binomial
+    # P(X >= 5 | 8, 0.16) = 3e-3); without the own-row test at least 6 are taken for PID. A
+    # true PID string (its row holds another string beside it) loses no module to the bar.
+    k1 = k0 = n1 = n0 = 0
+    for _ in range(8):
+        p = Plant(rng, strings="half")
+        m = p.modules
+        A, C = p.spec.n_along, p.spec.n_across
+        ii, jj = np.indices((A, C))
+        edge = (ii == 0) | (ii == A - 1) | (jj == 0) | (jj == C - 1)
+        stretch = np.flatnonzero(((m.table_id == "T0-1") & (m.table_row == 1) & (m.table_col <= 7)).to_numpy())
+        for i in stretch:
+            p.cm[i] += np.where(edge, 0.9, 0.5)
+        true_pid = [int(i) for i in p.pid("T1-0-R2-S1", 3)]
+        an, _ = p.run()
+        got = found(an)
+        k1 += any(got.get(int(i)) == "pid" for i in stretch)
+        # without the own-row test the stretch's first string is taken for PID
+        an0, _ = p.run(settings=_with(pid_own_row_min_z=-100.0))
+        got0 = found(an0)
+        k0 += any(got0.get(int(i)) == "pid" for i in stretch)
+        n1 += sum(got.get(i) == "pid" for i in true_pid)
+        n0 += sum(got0.get(i) == "pid" for i in true_pid)
+    assert k1 <= 4 and k0 >= 6, (k1, k0)
+    # the true strings keep every module the test without the own-row bar finds
+    assert n1 == n0 >= 18, (n1, n0)
+
+
+def _pattern_check(an_diag, settings=None):
+    from pvscan.measure.validity import evidence_checks
+
+    checks = {c["name"]: c for c in evidence_checks(an_diag.evidence, settings or load_pipeline())}
+    return checks["unexplained_pid_pattern"]
+
+
+def test_pid_string_read_cool_is_flagged_not_called_valid(rng):
+    # a PID string (edge-ring pattern, IEC TS 62446-3 thermograms) whose modules read cooler than
+    # modules outside the string: a cloud shadow over them, a 10 % dip of the irradiance on a
+    # Faiman rise of about 30 K (pvlib.temperature.faiman) cools them by some 3 K. PID takes power
+    # away and warms its modules, so the patterns do not take a cool string for PID; the pattern
+    # is the module's own all the same (seen against other rows and against its own row), and
+    # the flight is flagged rather than called valid. Healthy plants and a row's artefact (an edge
+    # ring shared by the modules of one string along a row) pass.
+    p = Plant(rng, strings="half")
+    idx = [int(i) for i in p.pid("T1-0-R2-S1", 3, f0=0.2)]
+    for i in idx:
+        p.cm[i] -= 0.10 * faiman_rise()
+    diag = p.run()
+    assert "pid" not in set(diag.anomalies.defect)
+    c = _pattern_check(diag)
+    assert c["passed"] is False and c["module"] == p.modules.module_id[idx[0]], c
+    assert _pattern_check(diag, _with_validity(max_unexplained_pid_pattern_z=100.0))["passed"] is True
+    # a healthy plant passes
+    assert _pattern_check(Plant(rng, strings="half").run())["passed"] is True
+    # an edge ring shared by a stretch of a row: against its own row the pattern is not there
+    q = Plant(rng, strings="half")
+    m = q.modules
+    A, C = q.spec.n_along, q.spec.n_across
+    ii, jj = np.indices((A, C))
+    edge = (ii == 0) | (ii == A - 1) | (jj == 0) | (jj == C - 1)
+    for i in np.flatnonzero(((m.table_id == "T0-1") & (m.table_row == 1) & (m.table_col <= 6)).to_numpy()):
+        q.cm[i] += np.where(edge, 0.9, 0.5)
+    assert _pattern_check(q.run())["passed"] is True
+
+
+def _with_validity(**keys):
+    """The pipeline settings with some [validity] keys changed (a plain mapping)."""
+    s = load_pipeline().to_dict()
+    s["validity"] = {**s["validity"], **keys}
+    return s

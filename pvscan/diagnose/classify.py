@@ -388,6 +388,12 @@ def _unexplained_pid(F: Features, groups: np.ndarray, pos: np.ndarray, is_string
     ``pid_z`` [robust SD] (``pid_unexplained_z``, None when PID was not looked for) and its
     module (``pid_unexplained_module``). A pattern this strong that no PID string took in is
     a string-level fault the patterns could not place.
+
+    With strings known, also the highest of the lesser of the contrast against modules of other
+    rows (``pid_z``) and against the module's own table row (``pid_z_row``) among those modules,
+    warm or not (``pid_pattern_unexplained_z`` [robust SD], ``pid_pattern_unexplained_module``):
+    a pattern both references see is the module's own, not a row's artefact, whatever the
+    module's warmth against a reference a small plant or a shadow may bias.
     """
     out: dict[str, Any] = {"pid_unexplained_z": None, "pid_unexplained_module": None}
     z = F.extra.get("pid_z")
@@ -408,6 +414,17 @@ def _unexplained_pid(F: Features, groups: np.ndarray, pos: np.ndarray, is_string
     if cand.any():
         i = int(np.argmax(np.where(cand, z, -np.inf)))
         out.update(pid_unexplained_z=max(float(z[i]), 0.0), pid_unexplained_module=str(mod_id[i]))
+    # with strings known: the pattern against both references, modules of other rows (z) and
+    # the module's own table row (pid_z_row), the lesser of the two, warm or not
+    z_row = F.extra.get("pid_z_row")
+    if is_string and z_row is not None:
+        both = np.minimum(z, np.asarray(z_row, dtype=float))
+        cand_b = free & np.isfinite(both)
+        out.update(pid_pattern_unexplained_z=0.0, pid_pattern_unexplained_module=None)
+        if cand_b.any():
+            i = int(np.argmax(np.where(cand_b, both, -np.inf)))
+            out.update(pid_pattern_unexplained_z=max(float(both[i]), 0.0),
+                       pid_pattern_unexplained_module=str(mod_id[i]))
     return out
 
 

@@ -39,7 +39,8 @@ if TYPE_CHECKING:
 Check = dict[str, Any]
 
 __all__ = ["Validity", "check_validity", "registration_check", "coverage_check", "plausibility_check",
-           "row_geometry", "row_shading_check", "string_reference_check", "evidence_checks",
+           "row_geometry", "row_shading_check", "string_reference_check", "unexplained_pid_check",
+           "unexplained_pid_pattern_check", "evidence_checks",
            "with_checks"]
 
 logger = logging.getLogger(__name__)
@@ -452,10 +453,42 @@ def unexplained_pid_check(evidence: Mapping[str, Any], settings: Mapping[str, An
     return c
 
 
+def unexplained_pid_pattern_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> Check:
+    """``unexplained_pid_pattern``: with strings known, the PID edge-ring contrast [robust SD] that
+    a module at a string's negative end in no finding shows against both references, modules of
+    other rows and its own table row (the lesser of the two, ``pid_pattern_unexplained_z``), at
+    most ``[validity] max_unexplained_pid_pattern_z``.
+
+    A row's artefact (a seam, a reflection band) shows against one reference only; a pattern both
+    see is the module's own. Unlike ``unexplained_pid`` the module need not run warm: the warmth
+    is measured against modules outside the string, which a small plant or a shadow can bias, and
+    a PID string taken for not warm is missed. Unknown (passes) without strings.
+    """
+    st = _validity_settings(settings)
+    lim = float(st["max_unexplained_pid_pattern_z"])
+    value = _finite(evidence.get("pid_pattern_unexplained_z"))
+    module = evidence.get("pid_pattern_unexplained_module")
+    if value is None:
+        msg = "unexplained PID pattern: unknown (strings not known)"
+    elif module is None:
+        msg = f"unexplained PID pattern: no module outside the findings could start a PID string (at most {lim:g})"
+    else:
+        msg = (f"unexplained PID pattern: module {module} at a string's negative end shows the edge-ring "
+               f"pattern against other rows and its own row at z {value:.1f}, but no finding takes it in "
+               f"(at most {lim:g})")
+        if value > lim:
+            msg += ": a string-level fault may be missed; check that string (failed)"
+    c = _check("unexplained_pid_pattern", value, lim, "max", "robust SD",
+               "PID pattern (pvscan.diagnose.classify; calibrated)", message=msg)
+    c.update({"module": module})
+    return c
+
+
 def evidence_checks(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> list[Check]:
     """The checks of what the classification measured about the flight as a whole
     (:attr:`pvscan.diagnose.results.Diagnosis.evidence`): ``string_reference``,
-    ``row_cluster`` and ``unexplained_pid``. Empty when there is no evidence (no module classified)."""
+    ``row_cluster``, ``unexplained_pid`` and ``unexplained_pid_pattern``. Empty when there is no
+    evidence (no module classified)."""
     if not evidence:
         return []
     checks = [string_reference_check(evidence, settings)]
@@ -463,6 +496,8 @@ def evidence_checks(evidence: Mapping[str, Any], settings: Mapping[str, Any] | N
         checks.append(row_cluster_check(evidence, settings))
     if "pid_unexplained_z" in evidence:
         checks.append(unexplained_pid_check(evidence, settings))
+    if "pid_pattern_unexplained_z" in evidence:
+        checks.append(unexplained_pid_pattern_check(evidence, settings))
     return checks
 
 

@@ -18,22 +18,39 @@ from collections.abc import Mapping
 import numpy as np
 
 from pvscan.diagnose.features import Features
-from pvscan.robust import nanmedian, nanquantile, scaled_mad
+from pvscan.robust import nanmedian, scaled_mad
 
 __all__ = ["pid_ring_contrast", "pattern_pid"]
 
 
+def _sorted_quantile(srt: np.ndarray, cnt: np.ndarray, q: float) -> np.ndarray:
+    """Quantile ``q`` (linear interpolation) of each row of ``srt``, sorted along its last axis
+    with NaN last, from its ``cnt`` finite values (NaN where there are none): the estimate of
+    :func:`pvscan.robust.nanquantile`, without sorting again."""
+    pos = q * np.maximum(cnt - 1, 0)
+    lo = np.floor(pos).astype(np.int64)
+    hi = np.minimum(lo + 1, np.maximum(cnt - 1, 0))
+    w = pos - lo
+    vlo = np.take_along_axis(srt, lo[..., None], axis=-1)[..., 0]
+    vhi = np.take_along_axis(srt, hi[..., None], axis=-1)[..., 0]
+    return np.where(cnt > 0, vlo + w * (vhi - vlo), np.nan)
+
+
 def _trimmed_mean(x: np.ndarray, cut: float = 0.1) -> np.ndarray:
-    """Mean along the last axis without the lowest and highest ``cut`` share, ignoring NaN."""
-    lo = nanquantile(x, cut, axis=-1)[..., None]
-    hi = nanquantile(x, 1.0 - cut, axis=-1)[..., None]
+    """Mean along the last axis without the lowest and highest ``cut`` share, ignoring NaN.
+
+    Both bounds come from one sort of the rows (:func:`_sorted_quantile`)."""
+    srt = np.sort(np.asarray(x, dtype=np.float64), axis=-1)
+    cnt = np.isfinite(srt).sum(axis=-1)
+    lo = _sorted_quantile(srt, cnt, cut)[..., None]
+    hi = _sorted_quantile(srt, cnt, 1.0 - cut)[..., None]
     keep = (x >= lo) & (x <= hi)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(keep, x, 0.0).sum(axis=-1) / np.maximum(keep.sum(axis=-1), 1) + \
             np.where(keep.sum(axis=-1) > 0, 0.0, np.nan)
 
 
-def pid_ring_contrast(F: Features) -> np.ndarray:
+def pid_ring_contrast(F: Features, residual: np.ndarray | None = None) -> np.ndarray:
     """How much warmer a module's edge cells run than its interior cells [K].
 
     The median over the four edges (lines of cells along ``u = 0``, ``u = 1``, ``v = 0``,
@@ -42,12 +59,15 @@ def pid_ring_contrast(F: Features) -> np.ndarray:
     The 10 % trimming keeps a single hot cell from posing as an edge-weighted pattern. The
     residual is taken against modules outside the string (``F.extra["R_other"]``) when
     available: PID modules sit side by side, and their neighbours' shared shape would
-    carry part of their own pattern.
+    carry part of their own pattern. ``residual`` (modules x cells along x cells across
+    [K]) replaces it, e.g. ``F.R``, the residual against the module's own table row.
     """
     n, A, C = F.n, F.n_along, F.n_across
     ii, jj = np.indices((A, C))
     ring = ((ii == 0) | (ii == A - 1) | (jj == 0) | (jj == C - 1)).ravel()
-    flat = F.extra.get("R_other", F.R).reshape(n, -1)
+    if residual is None:
+        residual = F.extra.get("R_other", F.R)
+    flat = np.asarray(residual).reshape(n, -1)
     core = _trimmed_mean(flat[:, ~ring])
     # each of the four edges on its own, then the median of the four: PID warms all edges,
     # a seam or warm ground along a row one of them
@@ -77,6 +97,13 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     modules outside its string, in robust spreads of healthy modules, at least
     ``pid_warm_min_z``, and so the excess of its module at the negative end, the most
     affected one (PID takes power away, so the modules run warmer, not clearly cooler).
+    With strings known, the run must show the edge-ring pattern against its own table row
+    too (the contrast of :func:`pid_ring_contrast` on the residual against the row, ``F.R``,
+    in robust spreads of healthy modules, combined evidence ``sum(z) / sqrt(n)`` over the
+    run within the first ``pid_max_position`` of the string at least
+    ``pid_own_row_min_z``): an image artefact shared by a stretch of a row (a mosaic seam
+    shifting its pixels, a reflection band) shows against modules of other rows, not
+    against the row's own modules beside the string.
 
     Without strings (``is_string`` false, ``groups`` the table rows of a layout of table
     polygons), a string's negative end may be at any module of a row, facing either way:
@@ -106,6 +133,15 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     z_ext = (z + w * np.clip(z_o, -3.0, 3.0)) / np.sqrt(1.0 + w * w)
     out: list[list[int]] = []
     usable = F.ok & ~exclude
+    z_row = None
+    if is_string:
+        # the same contrast against the module's own table row (strings known: the row holds
+        # modules of other strings beside the string)
+        c_row = pid_ring_contrast(F, F.R)
+        ok_row = F.ok & ~exclude & np.isfinite(c_row)
+        if ok_row.sum() >= 5:
+            z_row = (c_row - float(np.median(c_row[ok_row]))) / max(scaled_mad(c_row[ok_row]), 0.02)
+        F.extra["pid_z_row"] = z_row
     for g in np.unique(groups[groups >= 0]):
         idx = np.flatnonzero(groups == g)
         idx = idx[np.argsort(pos[idx], kind="stable")]
@@ -114,6 +150,12 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
         if is_string:
             max_len = max(int(np.floor(float(cfg["pid_max_position"]) * len(idx))), 1)
             run = _run_from(idx, z, z_ext, z_o, usable, cfg, max_len, float(cfg["pid_run_z"]))
+            # (over the run within the first pid_max_position of the string: modules past it
+            # join by a stricter test of their own)
+            core = run[:max_len] if run else run
+            if core and z_row is not None and not (
+                    float(np.nansum(z_row[core])) / np.sqrt(len(core)) >= float(cfg["pid_own_row_min_z"])):
+                run = None
             if run:
                 out.append(run)
             continue

@@ -356,7 +356,10 @@ def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cf
         reg.evidence["used"] = "pitch"
         reg.message += (f"; moved by ({moved_by[0]:+.3f}, {moved_by[1]:+.3f}) m, whole module pitches along or "
                         f"across the rows, where the table ends fit better (evidence {e_cur:.3f})")
-    if not decisive:
+    # the table ends alone clearly for the placement (well above any vote of one a pitch off)
+    confirmed = ends.get("lowest") is not None and ends["lowest"] >= float(cfg["ends_confirm_vote"])
+    reg.evidence["pitch"]["ends_confirm"] = bool(confirmed and not decisive)
+    if not decisive and not confirmed:
         reg.status = "ambiguous"
         reg.message += (f"; a placement one module pitch away fits almost as well (evidence ratio {low:.2f}, more "
                         f"than {1.0 + margin:.2f} needed): findings may sit on the neighbouring module")

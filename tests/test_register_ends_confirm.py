@@ -1,0 +1,60 @@
+"""A placement the module evidence leaves ambiguous by one module pitch, confirmed by the table ends.
+
+The flight is a random plant of the simulator (``pvscan simulate --random 830002 --family
+tracker_hot_ground_noon``: single-axis tracker tables near noon over ground hotter than the
+glass). Simulated with seed 830002 (the suite's default seed shifted, see :data:`FLIGHT_SEED`),
+the layout was placed 3 cm from the truth, but the module evidence of the placement one module
+pitch along the rows was within 10 % of it (ratio 1.09), so the registration was ambiguous and
+the flight refused, though every table end voted for the placement (0.48). Other
+PVSCAN_TEST_SEED values draw other noise, defects and distractors on the same plant; the checks
+below must hold for every one.
+
+Where the modules are is the simulator's truth (truth_ortho.geojson), which no registration
+code reads.
+"""
+from __future__ import annotations
+
+import pytest
+from conftest import DEFAULT_TEST_SEED, test_seed
+from test_register_relief import RIGHT_M, _median_error_m, _sun
+
+from pvscan.io.layout import read_layout
+from pvscan.io.manifest import load_flight
+from pvscan.io.ortho import open_orthos
+from pvscan.io.settings import load_pipeline
+from pvscan.measure.register import apply_placement, expected_module_apparent_c, register_layout
+from pvscan.measure.validity import registration_check
+from pvscan.simulate import simulate_flight
+from pvscan.simulate.sampler import draw_scenario
+
+#: Seed of the flight: 830002 in the suite's default run, another draw for any other seed
+#: (kept non-negative for any PVSCAN_TEST_SEED).
+FLIGHT_SEED = test_seed(830002 - DEFAULT_TEST_SEED) % 2**31
+
+
+@pytest.fixture(scope="module")
+def plant(tmp_path_factory):
+    d = tmp_path_factory.mktemp("confirm") / "flight"
+    simulate_flight(draw_scenario(830002, "tracker_hot_ground_noon"), d, seed=FLIGHT_SEED)
+    return d
+
+
+def test_placement_confirmed_by_the_table_ends_is_right(plant):
+    """The whole registration: a placement that passes the registration check is on its own
+    modules (within a quarter of a module width, common practice); a placement the table ends
+    confirm against one pitch away is right. In the default run (the flight that was refused)
+    it is placed and passes."""
+    st = load_pipeline()
+    fl = load_flight(plant / "flight.toml")
+    with open_orthos(fl.flight.orthos, fl.ortho) as o:
+        mods = read_layout(fl, o.crs)
+        reg = register_layout(o, mods, st, sun=_sun(fl, mods),
+                              expected_apparent_c=expected_module_apparent_c(fl, st, strict=False))
+    err = _median_error_m(plant, apply_placement(mods, reg.placement if reg.applied else None))
+    check = registration_check(reg, st)
+    pitch = (reg.evidence or {}).get("pitch") or {}
+    assert err < RIGHT_M or check["passed"] is False, (err, reg.message, pitch)
+    if pitch.get("ends_confirm"):
+        assert err < RIGHT_M and reg.status == "ok", (err, reg.message, pitch)
+    if FLIGHT_SEED == 830002:
+        assert reg.status == "ok" and check["passed"] is True and err < RIGHT_M, (err, reg.message, pitch)
