@@ -142,8 +142,9 @@ def summary_lines(result_dir: str | os.PathLike[str], top: int | None = None) ->
         if len(failed) > 5:
             lines.append(f"  ! ... {len(failed) - 5} more in summary.json")
     elif ok is True:
-        lines.append("validity: all checks passed (acquisition limits, registration, coverage, plausibility, "
-                     "row shading, string reference, row cluster, unexplained PID)")
+        names = [str(n).replace("_", " ") for n in raw_checks if n]
+        lines.extend(textwrap.wrap(f"validity: all {len(names)} checks passed ({', '.join(names)})", _WIDTH,
+                                   subsequent_indent="  "))
     cov = raw_checks.get("coverage")
     if cov and cov.get("modules_without_data"):
         lines.append(f"modules without usable pixels: {int(cov['modules_without_data']):,}")
