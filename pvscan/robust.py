@@ -18,7 +18,7 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike
 
-__all__ = ["nanquantile", "nanmedian", "nanpercentile", "iqr", "nanmean", "nanmax", "nanmin",
+__all__ = ["nanquantile", "sorted_quantile", "nanmedian", "nanpercentile", "iqr", "nanmean", "nanmax", "nanmin",
            "scaled_mad", "MAD_TO_SIGMA"]
 
 #: 1 / Phi^-1(3/4): scales a median absolute deviation to the standard deviation of a normal
@@ -41,7 +41,7 @@ def nanquantile(a: ArrayLike, q: float, axis: int | None = None) -> Any:
     srt = np.sort(arr, axis=-1)
     n = srt.shape[-1]
     if srt.size == 0 or n > 255:
-        return _pick(srt, np.isfinite(srt).sum(axis=-1), q)
+        return sorted_quantile(srt, np.isfinite(srt).sum(axis=-1), q)
     # rows of the sorted array; the count of finite values per row as a product with ones
     # (bytes: exact up to 255; a sum along a short last axis is several times slower)
     flat = srt.reshape(-1, n)
@@ -57,8 +57,10 @@ def nanquantile(a: ArrayLike, q: float, axis: int | None = None) -> Any:
     return np.where(cnt > 0, out, np.nan).reshape(srt.shape[:-1])
 
 
-def _pick(srt: np.ndarray, cnt: np.ndarray, q: float) -> Any:
-    """Quantile ``q`` of each row of the sorted ``srt`` (NaN last) from its ``cnt`` finite values."""
+def sorted_quantile(srt: np.ndarray, cnt: np.ndarray, q: float) -> Any:
+    """Quantile ``q`` (0..1, linear interpolation) of each row of ``srt``, already sorted along
+    its last axis with NaN last, from its ``cnt`` finite values (NaN where there are none): the
+    estimate of :func:`nanquantile` without sorting again, for several quantiles of one sort."""
     pos = q * np.maximum(cnt - 1, 0)
     lo = np.floor(pos).astype(np.int64)
     hi = np.minimum(lo + 1, np.maximum(cnt - 1, 0))

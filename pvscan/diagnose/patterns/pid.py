@@ -18,32 +18,19 @@ from collections.abc import Mapping
 import numpy as np
 
 from pvscan.diagnose.features import Features
-from pvscan.robust import nanmedian, scaled_mad
+from pvscan.robust import nanmedian, scaled_mad, sorted_quantile
 
 __all__ = ["pid_ring_contrast", "pattern_pid"]
-
-
-def _sorted_quantile(srt: np.ndarray, cnt: np.ndarray, q: float) -> np.ndarray:
-    """Quantile ``q`` (linear interpolation) of each row of ``srt``, sorted along its last axis
-    with NaN last, from its ``cnt`` finite values (NaN where there are none): the estimate of
-    :func:`pvscan.robust.nanquantile`, without sorting again."""
-    pos = q * np.maximum(cnt - 1, 0)
-    lo = np.floor(pos).astype(np.int64)
-    hi = np.minimum(lo + 1, np.maximum(cnt - 1, 0))
-    w = pos - lo
-    vlo = np.take_along_axis(srt, lo[..., None], axis=-1)[..., 0]
-    vhi = np.take_along_axis(srt, hi[..., None], axis=-1)[..., 0]
-    return np.where(cnt > 0, vlo + w * (vhi - vlo), np.nan)
 
 
 def _trimmed_mean(x: np.ndarray, cut: float = 0.1) -> np.ndarray:
     """Mean along the last axis without the lowest and highest ``cut`` share, ignoring NaN.
 
-    Both bounds come from one sort of the rows (:func:`_sorted_quantile`)."""
+    Both bounds come from one sort of the rows (:func:`pvscan.robust.sorted_quantile`)."""
     srt = np.sort(np.asarray(x, dtype=np.float64), axis=-1)
     cnt = np.isfinite(srt).sum(axis=-1)
-    lo = _sorted_quantile(srt, cnt, cut)[..., None]
-    hi = _sorted_quantile(srt, cnt, 1.0 - cut)[..., None]
+    lo = sorted_quantile(srt, cnt, cut)[..., None]
+    hi = sorted_quantile(srt, cnt, 1.0 - cut)[..., None]
     keep = (x >= lo) & (x <= hi)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(keep, x, 0.0).sum(axis=-1) / np.maximum(keep.sum(axis=-1), 1) + \
