@@ -26,6 +26,16 @@ def _draws(family, n=12):
     return [draw_scenario(SEED + k, family) for k in range(n)]
 
 
+def _varying_conditions(n=12):
+    """(family, flight id, conditions with the simulator's defaults) of every varying draw."""
+    from pvscan.simulate.scenario import DEFAULTS
+
+    for family in FAMILIES:
+        for sc in _draws(family, n):
+            if sc["conditions"]["varying"]:
+                yield family, sc["flight"]["id"], {**DEFAULTS["conditions"], **sc["conditions"]}
+
+
 @pytest.mark.parametrize("family", FAMILIES)
 def test_draws_are_valid_scenarios_within_acquisition_limits(family):
     schema = load_schema("scenario.schema.json")
@@ -45,18 +55,13 @@ def test_varying_conditions_stay_within_the_irradiance_limit_along_the_flight():
     of ``irradiance_dip_depth`` of the mean); flights up to 30 min long.
     """
     from pvscan.simulate.flightpath import weather_series
-    from pvscan.simulate.scenario import DEFAULTS
 
     seen = 0
-    for family in FAMILIES:
-        for sc in _draws(family, 12):
-            if not sc["conditions"]["varying"]:
-                continue
-            cond = {**DEFAULTS["conditions"], **sc["conditions"]}
-            for k in range(3):
-                ws = weather_series(cond, 1800.0, np.random.default_rng([SEED, k]))
-                assert float(ws.poa_global.min()) >= 600.0, (family, sc["flight"]["id"])
-            seen += 1
+    for family, flight_id, cond in _varying_conditions():
+        for k in range(3):
+            ws = weather_series(cond, 1800.0, np.random.default_rng([SEED, k]))
+            assert float(ws.poa_global.min()) >= 600.0, (family, flight_id)
+        seen += 1
     assert seen >= 10  # one flight in three varies: at least 10 of 120 draws (binomial, p < 1e-9 to fail)
 
 
@@ -72,22 +77,17 @@ def test_varying_conditions_change_less_than_the_acquisition_limit_along_the_fli
     """
     from pvscan.io.settings import load_pipeline, section
     from pvscan.simulate.flightpath import weather_series
-    from pvscan.simulate.scenario import DEFAULTS
 
     limit_pct = float(section(load_pipeline(), "conditions")["max_irradiance_change_pct"])
     assert limit_pct <= 10.0
     seen = 0
-    for family in FAMILIES:
-        for sc in _draws(family, 12):
-            if not sc["conditions"]["varying"]:
-                continue
-            cond = {**DEFAULTS["conditions"], **sc["conditions"]}
-            for k, duration_s in enumerate((60.0, 80.0, 300.0, 1800.0)):
-                ws = weather_series(cond, duration_s, np.random.default_rng([SEED, k]))
-                g = ws.poa_global
-                change_pct = 100.0 * (float(g.max()) - float(g.min())) / float(g.mean())
-                assert change_pct < limit_pct, (family, sc["flight"]["id"], duration_s, change_pct)
-            seen += 1
+    for family, flight_id, cond in _varying_conditions():
+        for k, duration_s in enumerate((60.0, 80.0, 300.0, 1800.0)):
+            ws = weather_series(cond, duration_s, np.random.default_rng([SEED, k]))
+            g = ws.poa_global
+            change_pct = 100.0 * (float(g.max()) - float(g.min())) / float(g.mean())
+            assert change_pct < limit_pct, (family, flight_id, duration_s, change_pct)
+        seen += 1
     assert seen >= 10  # one flight in three varies: at least 10 of 120 draws (binomial, p < 1e-9 to fail)
 
 
