@@ -565,7 +565,7 @@ def align_layout(flight: Any, settings: Mapping[str, Any] | None = None, out_pat
     from pvscan.io.ortho import open_orthos
     from pvscan.io.settings import load_pipeline
     from pvscan.measure.register.evidence import sun_vector
-    from pvscan.measure.register.physics import expected_module_apparent_c
+    from pvscan.measure.register.physics import expected_module_apparent_c, site_lonlat
 
     suffix = Path(out_path).suffix.lower() if out_path is not None else ""
     if out_path is not None:
@@ -582,8 +582,8 @@ def align_layout(flight: Any, settings: Mapping[str, Any] | None = None, out_pat
     with open_orthos(flight.flight.orthos, flight.ortho) as orthos:
         modules = read_layout(flight, orthos.crs)
         expected = expected_module_apparent_c(flight, pipeline, strict=False)
-        c = modules.to_crs(4326).geometry.union_all().centroid
-        sun = sun_vector(float(c.x), float(c.y), flight.flight.start + (flight.flight.end - flight.flight.start) / 2)
+        lon, lat = site_lonlat(modules)
+        sun = sun_vector(lon, lat, flight.flight.start + (flight.flight.end - flight.flight.start) / 2)
         reg = register_layout(orthos, modules, cfg, sun=sun, expected_apparent_c=expected, progress=progress)
     moved = apply_placement(modules, reg.placement if reg.applied else None)
     if out_path is not None and reg.status != "failed":
