@@ -20,7 +20,7 @@ import numpy as np
 from pvscan.diagnose.features import Features
 from pvscan.robust import nanmedian, scaled_mad, sorted_quantile
 
-__all__ = ["pid_ring_contrast", "pattern_pid"]
+__all__ = ["pid_ring_contrast", "pattern_pid", "unexplained_string_pattern"]
 
 
 def _trimmed_mean(x: np.ndarray, cut: float = 0.1) -> np.ndarray:
@@ -253,3 +253,39 @@ def _run_from(idx: np.ndarray, z: np.ndarray, z_ext: np.ndarray, z_o: np.ndarray
                and bool(z_o[idx[k]] >= o_bar)):
             k += 1
     return [int(i) for i in idx[:k]]
+
+
+def unexplained_string_pattern(z: np.ndarray, z_row: np.ndarray, groups: np.ndarray, pos: np.ndarray,
+                               free: np.ndarray, max_position: float) -> tuple[float, int | None, int]:
+    """The strongest PID pattern from a string's negative end that no finding takes in.
+
+    For every string (``groups``, ordered by ``pos`` from the negative end) whose first module
+    is ``free`` (classified, in no finding), the combined evidence ``sum(z) / sqrt(m)`` of the
+    lesser of the edge-ring contrast against modules of other rows (``z``) and against the
+    module's own table row (``z_row``) [robust SD], over the first ``m`` modules, ``m`` from 1
+    up to the first ``max_position`` of the string and while the modules stay free (the best
+    ``m``). PID fades along the string from its negative end (IEC TS 62446-3; common practice),
+    so a faint pattern shows over several modules there before any one of them reaches a bar
+    by itself; ``m = 1`` is the module at the negative end alone.
+
+    Returns
+    -------
+    (value, module, m)
+        The highest evidence (0 when no string qualifies, never below 0), the index of the
+        first module of its string (None when none) and ``m``.
+    """
+    both = np.minimum(np.asarray(z, dtype=float), np.asarray(z_row, dtype=float))
+    best: tuple[float, int | None, int] = (-np.inf, None, 0)
+    for g in np.unique(groups[groups >= 0]):
+        idx = np.flatnonzero(groups == g)
+        idx = idx[np.argsort(pos[idx], kind="stable")]
+        sub = idx[:max(int(np.floor(max_position * len(idx))), 1)]
+        ok = free[sub] & np.isfinite(both[sub])
+        if not ok[0]:
+            continue
+        sub = sub[:len(sub) if ok.all() else int(np.argmax(~ok))]
+        ev = np.cumsum(both[sub]) / np.sqrt(np.arange(1, len(sub) + 1))
+        j = int(np.argmax(ev))
+        if float(ev[j]) > best[0]:
+            best = (float(ev[j]), int(sub[0]), j + 1)
+    return (max(best[0], 0.0), best[1], best[2])
