@@ -97,7 +97,11 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     every module is tried as the first, both ways along the row, when it reaches
     ``pid_row_seed_z`` by itself and the module before it shows at most half its contrast
     (PID is strongest at the negative end); the run's evidence must reach ``pid_row_run_z``,
-    and the runs of one row may not overlap (the strongest kept).
+    and the runs of one row may not overlap (the strongest kept). At a row's end (a string's
+    end wherever strings run along the rows) a run is also tried as in a string, when its
+    edge-ring contrast over the run within the first ``pid_max_position`` of the row, less the
+    median contrast of the row's modules past it, has combined evidence ``sum / sqrt(n)`` of
+    at least ``pid_row_end_far_z`` (the row's far part standing in for its other strings).
 
     Returns
     -------
@@ -169,6 +173,25 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
         taken: set[int] = set()
         for _zc, run in sorted(found, key=lambda t: -t[0]):
             if taken.isdisjoint(run):
+                taken.update(run)
+                out.append(run)
+        # a row's end is a string's end wherever strings run along the rows (common practice):
+        # there the run is tried as in a string (the string's seed and run bars), and its
+        # evidence must hold against the far part of its own row too (the modules past the
+        # first pid_max_position from that end, their median contrast subtracted), the row's
+        # own modules standing in for the other strings of the row: an artefact along the
+        # whole row (a seam, warm ground beside it) shows there as well
+        far_z = float(cfg["pid_row_end_far_z"])
+        for seq_all in (idx, idx[::-1]):
+            far = seq_all[max_len:]
+            far = far[usable[far]]
+            if len(far) < 2:
+                continue
+            run = _run_from(seq_all, z, z_ext, z_o, usable, cfg, max_len, float(cfg["pid_run_z"]))
+            if not run or not taken.isdisjoint(run):
+                continue
+            core = run[:max_len]
+            if float(np.sum(z[core] - np.median(z[far]))) / np.sqrt(len(core)) >= far_z:
                 taken.update(run)
                 out.append(run)
     return out
