@@ -422,10 +422,10 @@ def _unexplained_pid(F: Features, groups: np.ndarray, pos: np.ndarray, is_string
     # modules of a string in no finding (pvscan.diagnose.patterns.pid.unexplained_string_pattern)
     z_row = F.extra.get("pid_z_row")
     if is_string and z_row is not None:
-        v, i, m = unexplained_string_pattern(z, np.asarray(z_row, dtype=float), groups, pos,
-                                             F.ok & np.array([d is None for d in defect], bool),
-                                             float(cfg["pid_max_position"]))
-        out.update(pid_pattern_unexplained_z=v, pid_pattern_unexplained_module=None if i is None else str(mod_id[i]),
+        v, at, m = unexplained_string_pattern(z, np.asarray(z_row, dtype=float), groups, pos,
+                                              F.ok & np.array([d is None for d in defect], bool),
+                                              float(cfg["pid_max_position"]))
+        out.update(pid_pattern_unexplained_z=v, pid_pattern_unexplained_module=None if at is None else str(mod_id[at]),
                    pid_pattern_unexplained_modules=m)
     return out
 
