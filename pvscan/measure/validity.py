@@ -40,7 +40,7 @@ Check = dict[str, Any]
 
 __all__ = ["Validity", "check_validity", "registration_check", "coverage_check", "plausibility_check",
            "row_geometry", "row_shading_check", "string_reference_check", "unexplained_pid_check",
-           "unexplained_pid_pattern_check", "evidence_checks",
+           "unexplained_pid_pattern_check", "row_edge_check", "evidence_checks",
            "with_checks"]
 
 logger = logging.getLogger(__name__)
@@ -444,6 +444,35 @@ def _unexplained_check(name: str, value: float | None, module: Any, limit: float
     return c
 
 
+def row_edge_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> Check:
+    """``row_edge``: the largest departure [K] of a table row's median edge line of cells from the
+    rows at the same position in their tables (``row_edge_offset_k``, see
+    :func:`pvscan.diagnose.classify`), at most ``[validity] max_row_edge_offset_k``.
+
+    Above it a row's footprints sit across its modules (one edge line on the gap and the ground
+    beside it), and the cell patterns of that row are not measured.
+    """
+    lim = float(_validity_settings(settings)["max_row_edge_offset_k"])
+    value = _finite(evidence.get("row_edge_offset_k"))
+    mods = list(evidence.get("row_edge_modules") or [])
+    if value is None:
+        msg = "row edge: unknown (no rows compared)"
+    elif not mods:
+        msg = f"row edge: fewer than two table rows to compare (at most {lim:g} K)"
+    else:
+        msg = (f"row edge: table row {mods[0]} .. {mods[-1]} reads its {evidence.get('row_edge_line')} lines "
+               f"{_finite(evidence.get('row_edge_line_k')) or 0.0:+.2f} K off the module against "
+               f"{_finite(evidence.get('row_edge_reference_k')) or 0.0:+.2f} K on rows like it: "
+               f"{value:.2f} K apart (at most {lim:g} K)")
+        if value > lim:
+            msg += (": the row's footprints sit across its modules (relief, a seam shifting part of a table); "
+                    "its cell patterns are not measured; check the placement there (failed)")
+    c = _check("row_edge", value, lim, "max", "K", "edge lines of table rows (pvscan.diagnose.classify; calibrated)",
+               message=msg)
+    c.update({"modules": mods})
+    return c
+
+
 def unexplained_pid_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> Check:
     """``unexplained_pid``: the PID edge-ring contrast [robust SD] of the strongest warm module
     that could start a PID string and is in no finding (at most ``[validity]
@@ -499,6 +528,8 @@ def evidence_checks(evidence: Mapping[str, Any], settings: Mapping[str, Any] | N
     checks = [string_reference_check(evidence, settings)]
     if "row_cluster_score" in evidence:
         checks.append(row_cluster_check(evidence, settings))
+    if "row_edge_offset_k" in evidence:
+        checks.append(row_edge_check(evidence, settings))
     if "pid_unexplained_z" in evidence:
         checks.append(unexplained_pid_check(evidence, settings))
     if "pid_pattern_unexplained_z" in evidence:
