@@ -52,6 +52,7 @@ from pvscan.diagnose.patterns import (
     pattern_pid,
     pattern_soiling,
 )
+from pvscan.diagnose.patterns.pid import unexplained_string_pattern
 from pvscan.diagnose.results import ANOMALY_COLUMNS, Diagnosis
 from pvscan.diagnose.severity import assign_severity
 from pvscan.diagnose.thermal import Normalisation, condition_column, local_reference, module_thermal
@@ -460,11 +461,13 @@ def _unexplained_pid(F: Features, groups: np.ndarray, pos: np.ndarray, is_string
     module (``pid_unexplained_module``). A pattern this strong that no PID string took in is
     a string-level fault the patterns could not place.
 
-    With strings known, also the highest of the lesser of the contrast against modules of other
-    rows (``pid_z``) and against the module's own table row (``pid_z_row``) among those modules,
-    warm or not (``pid_pattern_unexplained_z`` [robust SD], ``pid_pattern_unexplained_module``):
-    a pattern both references see is the module's own, not a row's artefact, whatever the
-    module's warmth against a reference a small plant or a shadow may bias.
+    With strings known, also the lesser of the contrast against modules of other rows (``pid_z``)
+    and against the module's own table row (``pid_z_row``), combined over the first modules of a
+    string in no finding, warm or not (``pid_pattern_unexplained_z`` [robust SD],
+    ``pid_pattern_unexplained_module`` at the string's negative end, over
+    ``pid_pattern_unexplained_modules``; :func:`pvscan.diagnose.patterns.pid.unexplained_string_pattern`):
+    a pattern both references see is the modules' own, not a row's artefact, whatever their
+    warmth against a reference a small plant or a shadow may bias.
     """
     out: dict[str, Any] = {"pid_unexplained_z": None, "pid_unexplained_module": None}
     z = F.extra.get("pid_z")
@@ -486,16 +489,15 @@ def _unexplained_pid(F: Features, groups: np.ndarray, pos: np.ndarray, is_string
         i = int(np.argmax(np.where(cand, z, -np.inf)))
         out.update(pid_unexplained_z=max(float(z[i]), 0.0), pid_unexplained_module=str(mod_id[i]))
     # with strings known: the pattern against both references, modules of other rows (z) and
-    # the module's own table row (pid_z_row), the lesser of the two, warm or not
+    # the module's own table row (pid_z_row), the lesser of the two, warm or not, over the first
+    # modules of a string in no finding (pvscan.diagnose.patterns.pid.unexplained_string_pattern)
     z_row = F.extra.get("pid_z_row")
     if is_string and z_row is not None:
-        both = np.minimum(z, np.asarray(z_row, dtype=float))
-        cand_b = free & np.isfinite(both)
-        out.update(pid_pattern_unexplained_z=0.0, pid_pattern_unexplained_module=None)
-        if cand_b.any():
-            i = int(np.argmax(np.where(cand_b, both, -np.inf)))
-            out.update(pid_pattern_unexplained_z=max(float(both[i]), 0.0),
-                       pid_pattern_unexplained_module=str(mod_id[i]))
+        v, at, m = unexplained_string_pattern(z, np.asarray(z_row, dtype=float), groups, pos,
+                                              F.ok & np.array([d is None for d in defect], bool),
+                                              float(cfg["pid_max_position"]))
+        out.update(pid_pattern_unexplained_z=v, pid_pattern_unexplained_module=None if at is None else str(mod_id[at]),
+                   pid_pattern_unexplained_modules=m)
     return out
 
 
