@@ -36,7 +36,7 @@ from pvscan.io.layout.frames import FRAME_COLUMNS
 from pvscan.measure._memory import release_freed_memory
 from pvscan.measure.register._blocks import _settings
 from pvscan.measure.register._chunks import shared_chunks
-from pvscan.measure.register._pitch import _pitches, _row_pitch
+from pvscan.measure.register._pitch import _distinct, _pitches, _placement_of, _row_pitch, _turned
 from pvscan.measure.register._records import Registration
 from pvscan.measure.register.ends import judge_ends
 from pvscan.measure.register.estimate import estimate_shift
@@ -235,11 +235,19 @@ def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], su
         first = list(reg.evidence["proposals"])
         lim_m = float(cfg["max_shift_m"])
         for q0 in first:
-            p0 = Placement(q0["shift_m"][0], q0["shift_m"][1], q0["rotation_deg"], q0["scale"], centre[0], centre[1])
+            p0 = _placement_of(q0, centre)
             for v in steps:
                 alt = p0.moved(tx=p0.tx + float(v[0]), ty=p0.ty + float(v[1]))
                 if math.hypot(alt.tx, alt.ty) <= lim_m:
                     consider(alt)
+        # a layout turned on a long site: a proposal's rotation off by a degree puts the far
+        # modules beyond the fit's reach; tried again from each proposal turned by steps, the
+        # nearest turns first, until one puts the footprints on glass
+        for alt in (_turned(modules, _distinct([_placement_of(q0, centre) for q0 in first], bounds), cfg)
+                    if chosen is None else []):
+            consider(alt)
+            if chosen is not None:
+                break
     if forced_shift is not None:
         # a known offset is used as given; the evidence only says whether it fits
         q_c = reg.evidence["proposals"][0]
@@ -486,15 +494,6 @@ def _fit_proposal(orthos: Any, modules: gpd.GeoDataFrame, cand: Placement,
             "evidence_step_m": step / 2.0}
     inner, _ = refine_placement(sample, inner, fine, rotate=rot, scale=sca)
     return _compose(base, inner), sample, inner
-
-
-def _distinct(proposals: list[Placement], bounds: Any, tol_m: float = 0.02) -> list[Placement]:
-    """Proposals less any that moves no footprint more than ``tol_m`` from an earlier one."""
-    out: list[Placement] = []
-    for p in proposals:
-        if all(_compose(p, _inverse(q)).displacement_max(bounds) > tol_m for q in out):
-            out.append(p)
-    return out
 
 
 def _num(v: Any) -> float:
