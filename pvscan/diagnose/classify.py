@@ -52,12 +52,13 @@ from pvscan.diagnose.patterns import (
     pattern_pid,
     pattern_soiling,
 )
+from pvscan.diagnose.patterns.pid import unexplained_string_pattern
 from pvscan.diagnose.results import ANOMALY_COLUMNS, Diagnosis
 from pvscan.diagnose.severity import assign_severity
 from pvscan.diagnose.thermal import Normalisation, condition_column, local_reference, module_thermal
 from pvscan.io.settings import section
 from pvscan.physics.heat import Faiman
-from pvscan.robust import iqr, scaled_mad
+from pvscan.robust import iqr, nanmedian, scaled_mad
 
 __all__ = ["classify"]
 
@@ -316,6 +317,7 @@ def classify(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module
     logger.info("classified %d modules: %d anomalies", int(F.ok.sum()), len(anomalies))
     evidence = _evidence(F, groups)
     evidence.update(_row_clusters(modules, defect_of, F.ok, cfg))
+    evidence.update(_row_edges(modules, F, cfg))
     evidence.update(_unexplained_pid(F, groups, pos, is_string, defect_of, mod_id, cfg))
     return Diagnosis(anomalies, module_table, evidence=evidence)
 
@@ -377,6 +379,76 @@ def _row_clusters(modules: pd.DataFrame, defect: np.ndarray, ok: np.ndarray,
     return out
 
 
+def _row_edges(modules: pd.DataFrame, F: Features, cfg: Mapping[str, Any]) -> dict[str, Any]:
+    """How far a table row's edge cells depart from those of the rows like it.
+
+    Each module's edge lines of cells (the line along each long edge, ``v = 0`` and ``v = 1``,
+    and the first two lines at each end, ``u = 0`` and ``u = 1``: the narrow end cells of half-cut
+    modules may be lost to the edge margin), as the line's median minus the median of all the
+    module's cells [K] (its own shape, no reference); a line with fewer than half its cells
+    measured is left out. Per table row, the median over its classified modules (rows of at least
+    ``[classify] row_edge_min_modules`` of them), compared with the median of the rows at the same
+    position in their tables (``table_row``; all rows when fewer than three share it).
+
+    Every row of a plant sees its edges alike (the same glass, frame and gap); a row whose
+    footprints sit a few centimetres across its modules (relief displacement the placement of
+    whole tables cannot follow, a mosaic seam shifting part of a table) puts one edge line on
+    the gap and the ground beside it, which reads far off, and every cell-level pattern of that
+    row is then not measured. A defect strikes single modules, which the row's median ignores.
+
+    Returns ``row_edge_offset_k`` [K] (the largest absolute departure; 0 with fewer than two rows),
+    ``row_edge_modules`` (the row's classified module ids), ``row_edge_line`` (which line)
+    and ``row_edge_line_k`` / ``row_edge_reference_k`` [K] (the row's median and its reference).
+    """
+    from pvscan.measure.rows import row_keys
+
+    out: dict[str, Any] = {"row_edge_offset_k": 0.0, "row_edge_modules": [], "row_edge_line": None,
+                           "row_edge_line_k": None, "row_edge_reference_k": None}
+    n, A, C = F.n, F.n_along, F.n_across
+    if n == 0 or A < 4 or C < 2:
+        return out
+    X = F.cm - np.asarray(F.t_median, dtype=float)[:, None, None]
+    whole = nanmedian(X.reshape(n, -1), axis=1)
+    names = ("u = 0 end", "u = 0 end, second line", "u = 1 end, second line", "u = 1 end", "v = 0 edge", "v = 1 edge")
+    lines = [X[:, 0, :], X[:, 1, :], X[:, A - 2, :], X[:, A - 1, :], X[:, :, 0], X[:, :, C - 1]]
+    side = np.full((n, len(lines)), np.nan)
+    for k, L in enumerate(lines):
+        measured = np.isfinite(L).mean(axis=1) >= 0.5
+        side[:, k] = np.where(measured, nanmedian(L, axis=1) - whole, np.nan)
+    keys = row_keys(modules)
+    pos = (pd.to_numeric(modules["table_row"], errors="coerce").to_numpy(dtype=float)
+           if "table_row" in modules.columns else np.full(n, np.nan))
+    min_mod = int(cfg["row_edge_min_modules"])
+    rows, meds, where = [], [], []
+    for r in np.unique(keys[keys >= 0]):
+        mem = np.flatnonzero((keys == r) & F.ok)
+        if len(mem) < min_mod:
+            continue
+        rows.append(mem)
+        with np.errstate(all="ignore"):
+            meds.append(nanmedian(side[mem], axis=0))
+        where.append(float(np.nanmedian(pos[mem])) if np.isfinite(pos[mem]).any() else np.nan)
+    if len(rows) < 2:
+        return out
+    meds_a = np.asarray(meds)
+    where_a = np.asarray(where)
+    ids = modules["module_id"].astype(str).to_numpy() if "module_id" in modules else np.arange(n).astype(str)
+    best = 0.0
+    for j, mem in enumerate(rows):
+        same = (where_a == where_a[j]) if np.isfinite(where_a[j]) else np.zeros(len(rows), bool)
+        ref = nanmedian(meds_a[same], axis=0) if same.sum() >= 3 else nanmedian(meds_a, axis=0)
+        dev = meds_a[j] - ref
+        if not np.isfinite(dev).any():
+            continue
+        k = int(np.nanargmax(np.abs(dev)))
+        if abs(dev[k]) > best:
+            best = float(abs(dev[k]))
+            out.update(row_edge_offset_k=best, row_edge_modules=sorted(str(x) for x in ids[mem]),
+                       row_edge_line=names[k], row_edge_line_k=float(meds_a[j, k]),
+                       row_edge_reference_k=float(ref[k]))
+    return out
+
+
 def _unexplained_pid(F: Features, groups: np.ndarray, pos: np.ndarray, is_string: bool,
                      defect: np.ndarray, mod_id: np.ndarray, cfg: Mapping[str, Any]) -> dict[str, Any]:
     """The strongest PID pattern that no finding explains.
@@ -389,11 +461,13 @@ def _unexplained_pid(F: Features, groups: np.ndarray, pos: np.ndarray, is_string
     module (``pid_unexplained_module``). A pattern this strong that no PID string took in is
     a string-level fault the patterns could not place.
 
-    With strings known, also the highest of the lesser of the contrast against modules of other
-    rows (``pid_z``) and against the module's own table row (``pid_z_row``) among those modules,
-    warm or not (``pid_pattern_unexplained_z`` [robust SD], ``pid_pattern_unexplained_module``):
-    a pattern both references see is the module's own, not a row's artefact, whatever the
-    module's warmth against a reference a small plant or a shadow may bias.
+    With strings known, also the lesser of the contrast against modules of other rows (``pid_z``)
+    and against the module's own table row (``pid_z_row``), combined over the first modules of a
+    string in no finding, warm or not (``pid_pattern_unexplained_z`` [robust SD],
+    ``pid_pattern_unexplained_module`` at the string's negative end, over
+    ``pid_pattern_unexplained_modules``; :func:`pvscan.diagnose.patterns.pid.unexplained_string_pattern`):
+    a pattern both references see is the modules' own, not a row's artefact, whatever their
+    warmth against a reference a small plant or a shadow may bias.
     """
     out: dict[str, Any] = {"pid_unexplained_z": None, "pid_unexplained_module": None}
     z = F.extra.get("pid_z")
@@ -415,16 +489,15 @@ def _unexplained_pid(F: Features, groups: np.ndarray, pos: np.ndarray, is_string
         i = int(np.argmax(np.where(cand, z, -np.inf)))
         out.update(pid_unexplained_z=max(float(z[i]), 0.0), pid_unexplained_module=str(mod_id[i]))
     # with strings known: the pattern against both references, modules of other rows (z) and
-    # the module's own table row (pid_z_row), the lesser of the two, warm or not
+    # the module's own table row (pid_z_row), the lesser of the two, warm or not, over the first
+    # modules of a string in no finding (pvscan.diagnose.patterns.pid.unexplained_string_pattern)
     z_row = F.extra.get("pid_z_row")
     if is_string and z_row is not None:
-        both = np.minimum(z, np.asarray(z_row, dtype=float))
-        cand_b = free & np.isfinite(both)
-        out.update(pid_pattern_unexplained_z=0.0, pid_pattern_unexplained_module=None)
-        if cand_b.any():
-            i = int(np.argmax(np.where(cand_b, both, -np.inf)))
-            out.update(pid_pattern_unexplained_z=max(float(both[i]), 0.0),
-                       pid_pattern_unexplained_module=str(mod_id[i]))
+        v, at, m = unexplained_string_pattern(z, np.asarray(z_row, dtype=float), groups, pos,
+                                              F.ok & np.array([d is None for d in defect], bool),
+                                              float(cfg["pid_max_position"]))
+        out.update(pid_pattern_unexplained_z=v, pid_pattern_unexplained_module=None if at is None else str(mod_id[at]),
+                   pid_pattern_unexplained_modules=m)
     return out
 
 

@@ -40,7 +40,7 @@ Check = dict[str, Any]
 
 __all__ = ["Validity", "check_validity", "registration_check", "coverage_check", "plausibility_check",
            "row_geometry", "row_shading_check", "string_reference_check", "unexplained_pid_check",
-           "unexplained_pid_pattern_check", "evidence_checks",
+           "unexplained_pid_pattern_check", "row_edge_check", "evidence_checks",
            "with_checks"]
 
 logger = logging.getLogger(__name__)
@@ -424,6 +424,55 @@ def row_cluster_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] |
     return c
 
 
+def _unexplained_check(name: str, value: float | None, module: Any, limit: float, title: str,
+                       unknown: str, nothing: str, found: str, **fields: Any) -> Check:
+    """The shape every ``unexplained_*`` check shares: a strength [robust SD] of a pattern no
+    finding takes in, at most ``limit``; the message names the module (``found``, formatted with
+    ``module``, ``value`` and ``fields``), says nothing was there (``nothing``) or that the value
+    is unknown (``unknown``, passes)."""
+    if value is None:
+        msg = f"{title}: {unknown}"
+    elif module is None:
+        msg = f"{title}: {nothing} (at most {limit:g})"
+    else:
+        msg = f"{title}: " + found.format(module=module, value=value, **fields) + f" (at most {limit:g})"
+        if value > limit:
+            msg += ": a string-level fault may be missed; check that string (failed)"
+    c = _check(name, value, limit, "max", "robust SD", "PID pattern (pvscan.diagnose.classify; calibrated)",
+               message=msg)
+    c.update({"module": module})
+    return c
+
+
+def row_edge_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> Check:
+    """``row_edge``: the largest departure [K] of a table row's median edge line of cells from the
+    rows at the same position in their tables (``row_edge_offset_k``, see
+    :func:`pvscan.diagnose.classify`), at most ``[validity] max_row_edge_offset_k``.
+
+    Above it a row's footprints sit across its modules (one edge line on the gap and the ground
+    beside it), and the cell patterns of that row are not measured.
+    """
+    lim = float(_validity_settings(settings)["max_row_edge_offset_k"])
+    value = _finite(evidence.get("row_edge_offset_k"))
+    mods = list(evidence.get("row_edge_modules") or [])
+    if value is None:
+        msg = "row edge: unknown (no rows compared)"
+    elif not mods:
+        msg = f"row edge: fewer than two table rows to compare (at most {lim:g} K)"
+    else:
+        msg = (f"row edge: table row {mods[0]} .. {mods[-1]} reads its {evidence.get('row_edge_line')} lines "
+               f"{_finite(evidence.get('row_edge_line_k')) or 0.0:+.2f} K off the module against "
+               f"{_finite(evidence.get('row_edge_reference_k')) or 0.0:+.2f} K on rows like it: "
+               f"{value:.2f} K apart (at most {lim:g} K)")
+        if value > lim:
+            msg += (": the row's footprints sit across its modules (relief, a seam shifting part of a table); "
+                    "its cell patterns are not measured; check the placement there (failed)")
+    c = _check("row_edge", value, lim, "max", "K", "edge lines of table rows (pvscan.diagnose.classify; calibrated)",
+               message=msg)
+    c.update({"modules": mods})
+    return c
+
+
 def unexplained_pid_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> Check:
     """``unexplained_pid``: the PID edge-ring contrast [robust SD] of the strongest warm module
     that could start a PID string and is in no finding (at most ``[validity]
@@ -434,54 +483,39 @@ def unexplained_pid_check(evidence: Mapping[str, Any], settings: Mapping[str, An
     was not placed, and the flight's string findings are not measured. Unknown (passes) when
     PID was not looked for.
     """
-    st = _validity_settings(settings)
-    lim = float(st["max_unexplained_pid_z"])
-    value = _finite(evidence.get("pid_unexplained_z"))
-    module = evidence.get("pid_unexplained_module")
-    if value is None:
-        msg = "unexplained PID: unknown (PID not looked for)"
-    elif module is None:
-        msg = f"unexplained PID: no warm module outside the findings could start a PID string (at most {lim:g})"
-    else:
-        msg = (f"unexplained PID: module {module} could start a PID string, runs warm and shows the edge-ring "
-               f"pattern at z {value:.1f}, but no finding takes it in (at most {lim:g})")
-        if value > lim:
-            msg += ": a string-level fault may be missed; check that string (failed)"
-    c = _check("unexplained_pid", value, lim, "max", "robust SD", "PID pattern (pvscan.diagnose.classify; calibrated)",
-               message=msg)
-    c.update({"module": module})
-    return c
+    return _unexplained_check(
+        "unexplained_pid", _finite(evidence.get("pid_unexplained_z")), evidence.get("pid_unexplained_module"),
+        float(_validity_settings(settings)["max_unexplained_pid_z"]), "unexplained PID",
+        "unknown (PID not looked for)", "no warm module outside the findings could start a PID string",
+        "module {module} could start a PID string, runs warm and shows the edge-ring pattern at z {value:.1f}, "
+        "but no finding takes it in")
 
 
 def unexplained_pid_pattern_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> Check:
     """``unexplained_pid_pattern``: with strings known, the PID edge-ring contrast [robust SD] that
-    a module at a string's negative end in no finding shows against both references, modules of
-    other rows and its own table row (the lesser of the two, ``pid_pattern_unexplained_z``), at
-    most ``[validity] max_unexplained_pid_pattern_z``.
+    the first modules of a string in no finding show against both references, modules of other
+    rows and their own table row (the lesser of the two, combined ``sum(z) / sqrt(m)`` over the
+    best ``m`` modules from the negative end within the first ``[classify] pid_max_position`` of
+    the string, ``pid_pattern_unexplained_z``), at most ``[validity] max_unexplained_pid_pattern_z``.
 
     A row's artefact (a seam, a reflection band) shows against one reference only; a pattern both
-    see is the module's own. Unlike ``unexplained_pid`` the module need not run warm: the warmth
+    see is the modules' own. Unlike ``unexplained_pid`` the modules need not run warm: the warmth
     is measured against modules outside the string, which a small plant or a shadow can bias, and
-    a PID string taken for not warm is missed. Unknown (passes) without strings.
+    a PID string taken for not warm is missed; nor need one module carry the pattern by itself:
+    PID fades along the string, and a faint string shows over several modules. Unknown (passes)
+    without strings.
     """
-    st = _validity_settings(settings)
-    lim = float(st["max_unexplained_pid_pattern_z"])
-    value = _finite(evidence.get("pid_pattern_unexplained_z"))
-    module = evidence.get("pid_pattern_unexplained_module")
-    if value is None:
-        msg = "unexplained PID pattern: unknown (strings not known)"
-    elif module is None:
-        msg = f"unexplained PID pattern: no module outside the findings could start a PID string (at most {lim:g})"
-    else:
-        msg = (f"unexplained PID pattern: module {module} at a string's negative end shows the edge-ring "
-               f"pattern against other rows and its own row at z {value:.1f}, but no finding takes it in "
-               f"(at most {lim:g})")
-        if value > lim:
-            msg += ": a string-level fault may be missed; check that string (failed)"
-    c = _check("unexplained_pid_pattern", value, lim, "max", "robust SD",
-               "PID pattern (pvscan.diagnose.classify; calibrated)", message=msg)
-    c.update({"module": module})
-    return c
+    m = int(evidence.get("pid_pattern_unexplained_modules") or 1)
+    return _unexplained_check(
+        "unexplained_pid_pattern", _finite(evidence.get("pid_pattern_unexplained_z")),
+        evidence.get("pid_pattern_unexplained_module"),
+        float(_validity_settings(settings)["max_unexplained_pid_pattern_z"]), "unexplained PID pattern",
+        "unknown (strings not known)", "no module outside the findings could start a PID string",
+        ("module {module} at a string's negative end shows the edge-ring pattern against other rows and its "
+         "own row at z {value:.1f}" if m == 1 else
+         "the first {m} modules of a string from {module} (its negative end) show the edge-ring pattern "
+         "against other rows and their own row at combined z {value:.1f}") + ", but no finding takes it in",
+        m=m)
 
 
 def evidence_checks(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> list[Check]:
@@ -494,6 +528,8 @@ def evidence_checks(evidence: Mapping[str, Any], settings: Mapping[str, Any] | N
     checks = [string_reference_check(evidence, settings)]
     if "row_cluster_score" in evidence:
         checks.append(row_cluster_check(evidence, settings))
+    if "row_edge_offset_k" in evidence:
+        checks.append(row_edge_check(evidence, settings))
     if "pid_unexplained_z" in evidence:
         checks.append(unexplained_pid_check(evidence, settings))
     if "pid_pattern_unexplained_z" in evidence:

@@ -20,7 +20,7 @@ import numpy as np
 from pvscan.diagnose.features import Features
 from pvscan.robust import nanmedian, scaled_mad, sorted_quantile
 
-__all__ = ["pid_ring_contrast", "pattern_pid"]
+__all__ = ["pid_ring_contrast", "pattern_pid", "unexplained_string_pattern"]
 
 
 def _trimmed_mean(x: np.ndarray, cut: float = 0.1) -> np.ndarray:
@@ -97,7 +97,11 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     every module is tried as the first, both ways along the row, when it reaches
     ``pid_row_seed_z`` by itself and the module before it shows at most half its contrast
     (PID is strongest at the negative end); the run's evidence must reach ``pid_row_run_z``,
-    and the runs of one row may not overlap (the strongest kept).
+    and the runs of one row may not overlap (the strongest kept). At a row's end (a string's
+    end wherever strings run along the rows) a run is also tried as in a string, when its
+    edge-ring contrast over the run within the first ``pid_max_position`` of the row, less the
+    median contrast of the row's modules past it, has combined evidence ``sum / sqrt(n)`` of
+    at least ``pid_row_end_far_z`` (the row's far part standing in for its other strings).
 
     Returns
     -------
@@ -169,6 +173,25 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
         taken: set[int] = set()
         for _zc, run in sorted(found, key=lambda t: -t[0]):
             if taken.isdisjoint(run):
+                taken.update(run)
+                out.append(run)
+        # a row's end is a string's end wherever strings run along the rows (common practice):
+        # there the run is tried as in a string (the string's seed and run bars), and its
+        # evidence must hold against the far part of its own row too (the modules past the
+        # first pid_max_position from that end, their median contrast subtracted), the row's
+        # own modules standing in for the other strings of the row: an artefact along the
+        # whole row (a seam, warm ground beside it) shows there as well
+        far_z = float(cfg["pid_row_end_far_z"])
+        for seq_all in (idx, idx[::-1]):
+            far = seq_all[max_len:]
+            far = far[usable[far]]
+            if len(far) < 2:
+                continue
+            run = _run_from(seq_all, z, z_ext, z_o, usable, cfg, max_len, float(cfg["pid_run_z"]))
+            if not run or not taken.isdisjoint(run):
+                continue
+            core = run[:max_len]
+            if float(np.sum(z[core] - np.median(z[far]))) / np.sqrt(len(core)) >= far_z:
                 taken.update(run)
                 out.append(run)
     return out
@@ -253,3 +276,39 @@ def _run_from(idx: np.ndarray, z: np.ndarray, z_ext: np.ndarray, z_o: np.ndarray
                and bool(z_o[idx[k]] >= o_bar)):
             k += 1
     return [int(i) for i in idx[:k]]
+
+
+def unexplained_string_pattern(z: np.ndarray, z_row: np.ndarray, groups: np.ndarray, pos: np.ndarray,
+                               free: np.ndarray, max_position: float) -> tuple[float, int | None, int]:
+    """The strongest PID pattern from a string's negative end that no finding takes in.
+
+    For every string (``groups``, ordered by ``pos`` from the negative end) whose first module
+    is ``free`` (classified, in no finding), the combined evidence ``sum(z) / sqrt(m)`` of the
+    lesser of the edge-ring contrast against modules of other rows (``z``) and against the
+    module's own table row (``z_row``) [robust SD], over the first ``m`` modules, ``m`` from 1
+    up to the first ``max_position`` of the string and while the modules stay free (the best
+    ``m``). PID fades along the string from its negative end (IEC TS 62446-3; common practice),
+    so a faint pattern shows over several modules there before any one of them reaches a bar
+    by itself; ``m = 1`` is the module at the negative end alone.
+
+    Returns
+    -------
+    (value, module, m)
+        The highest evidence (0 when no string qualifies, never below 0), the index of the
+        first module of its string (None when none) and ``m``.
+    """
+    both = np.minimum(np.asarray(z, dtype=float), np.asarray(z_row, dtype=float))
+    best: tuple[float, int | None, int] = (-np.inf, None, 0)
+    for g in np.unique(groups[groups >= 0]):
+        idx = np.flatnonzero(groups == g)
+        idx = idx[np.argsort(pos[idx], kind="stable")]
+        sub = idx[:max(int(np.floor(max_position * len(idx))), 1)]
+        ok = free[sub] & np.isfinite(both[sub])
+        if not ok[0]:
+            continue
+        sub = sub[:len(sub) if ok.all() else int(np.argmax(~ok))]
+        ev = np.cumsum(both[sub]) / np.sqrt(np.arange(1, len(sub) + 1))
+        j = int(np.argmax(ev))
+        if float(ev[j]) > best[0]:
+            best = (float(ev[j]), int(sub[0]), j + 1)
+    return (max(best[0], 0.0), best[1], best[2])

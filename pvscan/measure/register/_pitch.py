@@ -2,14 +2,18 @@
 across the rows, which the one-pitch ambiguity of periodic rows is tested against [m]."""
 from __future__ import annotations
 
-from typing import TYPE_CHECKING
+import math
+from collections.abc import Mapping
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
+
+from pvscan.measure.register.evidence import Placement, _compose, _inverse
 
 if TYPE_CHECKING:  # pragma: no cover
     import geopandas as gpd
 
-__all__ = ["_pitches", "_row_pitch"]
+__all__ = ["_pitches", "_row_pitch", "_placement_of", "_turned", "_distinct"]
 
 
 def _pitches(modules: gpd.GeoDataFrame) -> list[np.ndarray]:
@@ -75,3 +79,42 @@ def _row_pitch(modules: gpd.GeoDataFrame, along: np.ndarray | None) -> np.ndarra
         return None
     v = np.median(np.asarray(vecs), axis=0)
     return v if np.all(np.isfinite(v)) and np.hypot(*v) > 0.3 else None
+
+
+def _placement_of(q: Mapping[str, Any], centre: tuple[float, float]) -> Placement:
+    """The placement of a judged proposal's record (shift [m], rotation [deg], scale)."""
+    return Placement(float(q["shift_m"][0]), float(q["shift_m"][1]), float(q["rotation_deg"]), float(q["scale"]),
+                     centre[0], centre[1])
+
+
+def _turned(modules: gpd.GeoDataFrame, starts: list[Placement], cfg: Mapping[str, Any]) -> list[Placement]:
+    """Each start turned by whole steps either way within ``max_rotation_deg`` [deg]: the step
+    moves the module farthest from the centre by ``retry_turn_fraction`` of the modules' shorter
+    side (the reach of the fit from a start), nearest turns first."""
+    if not starts or len(modules) == 0:
+        return []
+    fr = modules[["fux", "fuy", "fvx", "fvy"]].to_numpy(float)
+    side = float(np.nanmedian(np.minimum(np.hypot(fr[:, 0], fr[:, 1]), np.hypot(fr[:, 2], fr[:, 3]))))
+    b = modules.total_bounds
+    reach = 0.5 * float(np.hypot(b[2] - b[0], b[3] - b[1]))
+    if not (math.isfinite(side) and reach > 0):
+        return []
+    step = math.degrees(float(cfg["retry_turn_fraction"]) * side / reach)
+    lim = float(cfg["max_rotation_deg"])
+    out = []
+    for k in range(1, int(lim // step) + 1 if step > 0 else 1):
+        for p in starts:
+            for sgn in (1.0, -1.0):
+                th = p.theta_deg + sgn * k * step
+                if abs(th) <= lim:
+                    out.append(p.moved(theta_deg=th))
+    return out
+
+
+def _distinct(proposals: list[Placement], bounds: Any, tol_m: float = 0.02) -> list[Placement]:
+    """Proposals less any that moves no footprint more than ``tol_m`` from an earlier one."""
+    out: list[Placement] = []
+    for p in proposals:
+        if all(_compose(p, _inverse(q)).displacement_max(bounds) > tol_m for q in out):
+            out.append(p)
+    return out

@@ -56,26 +56,35 @@ def end_lines(modules: gpd.GeoDataFrame) -> dict[str, list[tuple[int, int, int]]
     Returns ``{"along": [...], "across": [...]}``: for each table row (``along``, ordered by
     ``table_col``) and each table column (``across``, ordered by ``table_row``) of at least
     two modules with no missing one, the positions (row numbers in ``modules``) of its
-    first and last module and its number of modules."""
+    first and last module and its number of modules. Lines are listed by table id (as
+    text) and then by row (``along``) or column (``across``)."""
     import pandas as pd
 
     out: dict[str, list[tuple[int, int, int]]] = {"along": [], "across": []}
     need = {"table_id", "table_row", "table_col", *_FRAME}
     if not need <= set(modules.columns) or len(modules) == 0:
         return out
-    df = pd.DataFrame({"t": modules["table_id"].astype(str).to_numpy(),
-                       "r": pd.to_numeric(modules["table_row"], errors="coerce").to_numpy(),
-                       "c": pd.to_numeric(modules["table_col"], errors="coerce").to_numpy(),
-                       "pos": np.arange(len(modules))}).dropna()
+    tid = modules["table_id"].astype(str).to_numpy()
+    rc = {"r": pd.to_numeric(modules["table_row"], errors="coerce").to_numpy(dtype=float),
+          "c": pd.to_numeric(modules["table_col"], errors="coerce").to_numpy(dtype=float)}
+    pos = np.nonzero(np.isfinite(rc["r"]) & np.isfinite(rc["c"]))[0]
+    if len(pos) == 0:
+        return out
+    _, code = np.unique(tid[pos], return_inverse=True)  # table ids in text order
     for name, key, step in (("along", "r", "c"), ("across", "c", "r")):
-        for _, g in df.groupby(["t", key], sort=True):
-            if len(g) < 2:
-                continue
-            g = g.sort_values(step)
-            k = g[step].to_numpy()
-            if np.any(np.diff(k) != 1):
-                continue
-            out[name].append((int(g["pos"].iloc[0]), int(g["pos"].iloc[-1]), len(g)))
+        kv, sv = rc[key][pos], rc[step][pos]
+        order = np.lexsort((sv, kv, code))
+        g_code, g_key, g_step, g_pos = code[order], kv[order], sv[order], pos[order]
+        head = np.ones(len(order), bool)
+        head[1:] = (g_code[1:] != g_code[:-1]) | (g_key[1:] != g_key[:-1])
+        starts = np.nonzero(head)[0]
+        ends = np.append(starts[1:], len(order))
+        # a step other than one module between neighbours of a line: a module missing (or twice)
+        gap = np.zeros(len(order), np.int64)
+        gap[1:] = (~head[1:]) & (np.diff(g_step) != 1)
+        gaps = np.add.reduceat(gap, starts)
+        keep = ((ends - starts) >= 2) & (gaps == 0)
+        out[name] = [(int(g_pos[a]), int(g_pos[b - 1]), int(b - a)) for a, b in zip(starts[keep], ends[keep])]
     return out
 
 
@@ -87,7 +96,6 @@ def free_ends(modules: gpd.GeoDataFrame, lines: list[tuple[int, int, int]], clea
     that end cannot vote. The module's outline moved one pitch is shrunk by ``clear_m`` [m]
     first (it touches its own table's end)."""
     import shapely
-    import shapely.affinity
 
     out = np.zeros((len(lines), 2), bool)
     if not lines:
@@ -97,53 +105,177 @@ def free_ends(modules: gpd.GeoDataFrame, lines: list[tuple[int, int, int]], clea
     fr = modules[_FRAME].to_numpy(float)
     cx = fr[:, 0] + 0.5 * (fr[:, 2] + fr[:, 4])
     cy = fr[:, 1] + 0.5 * (fr[:, 3] + fr[:, 5])
-    for i, (first, last, n) in enumerate(lines):
-        sx, sy = (cx[last] - cx[first]) / max(n - 1, 1), (cy[last] - cy[first]) / max(n - 1, 1)
-        for j, (pos, sgn) in enumerate(((last, 1.0), (first, -1.0))):
-            g = geoms[pos]
-            if g is None or g.is_empty:
-                continue
-            cell = shapely.affinity.translate(g, sgn * sx, sgn * sy).buffer(-clear_m)
-            out[i, j] = cell.is_empty is False and len(tree.query(cell, predicate="intersects")) == 0
+    first, last, n = np.asarray(lines, np.int64).reshape(-1, 3).T
+    den = np.maximum(n - 1, 1).astype(float)
+    sx, sy = (cx[last] - cx[first]) / den, (cy[last] - cy[first]) / den
+    for j, (pos, sgn) in enumerate(((last, 1.0), (first, -1.0))):
+        src = geoms[pos]
+        ok = ~(shapely.is_missing(src) | shapely.is_empty(src))
+        if not ok.any():
+            continue
+        src = src[ok]
+        coords, idx = shapely.get_coordinates(src, return_index=True)
+        # the translation of shapely.affinity.translate, one offset per outline
+        xoff, yoff = (sgn * sx)[ok][idx], (sgn * sy)[ok][idx]
+        moved = np.column_stack([1.0 * coords[:, 0] + 0.0 * coords[:, 1] + xoff,
+                                 0.0 * coords[:, 0] + 1.0 * coords[:, 1] + yoff])
+        cells = shapely.buffer(shapely.set_coordinates(src.copy(), moved), -clear_m)
+        hits = np.zeros(len(cells), np.int64)
+        q = tree.query(cells, predicate="intersects")
+        np.add.at(hits, q[0], 1)
+        out[np.nonzero(ok)[0], j] = ~shapely.is_empty(cells) & (hits == 0)
     return out
 
 
-def _cell_grid(frame: np.ndarray, step: np.ndarray, gsd: float, inset: float) -> tuple[np.ndarray, np.ndarray]:
-    """Map points (x, y) of a module's pitch cell: ``|step|`` long along ``step``, centred on
-    the module, and the module's side across ``step`` less ``inset`` of it at each side [m]."""
-    ox, oy, ux, uy, vx, vy = frame
+def _cell_grids(frames: np.ndarray, stx: np.ndarray, sty: np.ndarray, gsd: float, inset: float, na: int,
+                nn: int) -> tuple[np.ndarray, np.ndarray]:
+    """Map points (x, y) of the pitch cells of modules ``frames`` (k, 6), each with its step
+    (``stx``, ``sty``): ``|step|`` long along the step, centred on the module, and the module's
+    side across the step less ``inset`` of it at each side, ``nn`` x ``na`` points [m]."""
+    ox, oy, ux, uy, vx, vy = (frames[:, j] for j in range(6))
     cx, cy = ox + 0.5 * (ux + vx), oy + 0.5 * (uy + vy)
-    ls = float(np.hypot(*step))
-    a = step / ls
-    n = np.array([-a[1], a[0]])
+    ls = np.hypot(stx, sty)
+    a0, a1 = stx / ls, sty / ls
+    n0, n1 = -a1, a0
     # the module's extent across the step: the larger projection of its two sides
-    across = max(abs(ux * n[0] + uy * n[1]), abs(vx * n[0] + vy * n[1]))
-    na = max(int(math.ceil(ls / gsd)), 4)
-    nn = max(int(math.ceil(across * (1.0 - 2.0 * inset) / gsd)), 2)
-    s = (np.arange(na) + 0.5) / na * ls - 0.5 * ls
-    t = (np.arange(nn) + 0.5) / nn * across * (1.0 - 2.0 * inset) - 0.5 * across * (1.0 - 2.0 * inset)
-    ss, tt = np.meshgrid(s, t)
-    return cx + ss * a[0] + tt * n[0], cy + ss * a[1] + tt * n[1]
+    across = np.maximum(np.abs(ux * n0 + uy * n1), np.abs(vx * n0 + vy * n1))
+    wide = 1.0 - 2.0 * inset
+    s = ((np.arange(na) + 0.5) / na)[None, :] * ls[:, None] - (0.5 * ls)[:, None]
+    t = ((np.arange(nn) + 0.5) / nn)[None, :] * across[:, None] * wide - (0.5 * across * wide)[:, None]
+    gx = cx[:, None, None] + s[:, None, :] * a0[:, None, None] + t[:, :, None] * n0[:, None, None]
+    gy = cy[:, None, None] + s[:, None, :] * a1[:, None, None] + t[:, :, None] * n1[:, None, None]
+    return gx, gy
 
 
-def _ncc(a: np.ndarray, b: np.ndarray, min_valid: float) -> float:
-    """Normalised cross-correlation of the ranks of two equal grids [-] (NaN: too few valid
-    points or flat).
+def _cell_sizes(frames: np.ndarray, stx: np.ndarray, sty: np.ndarray, gsd: float,
+                inset: float) -> tuple[np.ndarray, np.ndarray]:
+    """Points of a pitch cell along the step (at least 4) and across it (at least 2) [-]."""
+    ls = np.hypot(stx, sty)
+    a0, a1 = stx / ls, sty / ls
+    n0, n1 = -a1, a0
+    across = np.maximum(np.abs(frames[:, 2] * n0 + frames[:, 3] * n1), np.abs(frames[:, 4] * n0 + frames[:, 5] * n1))
+    na = np.maximum(np.ceil(ls / gsd), 4).astype(np.int64)
+    nn = np.maximum(np.ceil(across * (1.0 - 2.0 * inset) / gsd), 2).astype(np.int64)
+    return na, nn
+
+
+def _average_ranks(a: np.ndarray) -> np.ndarray:
+    """Ranks of the values of each row of ``a`` (k, p), 1 to p, tied values sharing the mean of
+    their ranks (Spearman's ranks; those of ``scipy.stats.rankdata``'s default method)."""
+    k, p = a.shape
+    order = np.argsort(a, axis=1)  # any order of ties: they share their mean rank
+    srt = np.take_along_axis(a, order, axis=1)
+    head = np.ones((k, p), bool)
+    head[:, 1:] = srt[:, 1:] != srt[:, :-1]
+    tail = np.ones((k, p), bool)
+    tail[:, :-1] = head[:, 1:]
+    at = np.arange(p)
+    lo = np.maximum.accumulate(np.where(head, at, 0), axis=1)
+    hi = np.minimum.accumulate(np.where(tail, at, p)[:, ::-1], axis=1)[:, ::-1]
+    out = np.empty((k, p))
+    np.put_along_axis(out, order, 0.5 * (lo + hi + 2), axis=1)
+    return out
+
+
+def _ncc_ranked(x: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """Normalised cross-correlation of rows of ranks [-] (NaN: flat). Ranks are multiples of
+    a half and sum to p (p + 1) / 2: every sum here is exact, in any order."""
+    x = x - x.mean(axis=1, keepdims=True)
+    y = y - y.mean(axis=1, keepdims=True)
+    den = np.sqrt(np.einsum("ij,ij->i", x, x) * np.einsum("ij,ij->i", y, y))
+    num = np.einsum("ij,ij->i", x, y)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(den > 0, num / np.where(den > 0, den, 1.0), np.nan)
+
+
+def _ncc(a: np.ndarray, b: np.ndarray, min_valid: float) -> np.ndarray:
+    """Normalised cross-correlation of the ranks of the rows of two (k, p) arrays [-] (NaN:
+    fewer than ``min_valid`` of the points valid in both, or flat).
 
     Ranks (Spearman's correlation) rather than values: a table end beside ground 10-20 K
     warmer or cooler than the glass leaks a strip of that contrast into the end module's
     cell, which would outweigh the frame lines of a few kelvin that make modules alike."""
-    from scipy.stats import rankdata
-
     ok = np.isfinite(a) & np.isfinite(b)
-    if ok.mean() < min_valid:
-        return float("nan")
-    x = rankdata(a[ok])
-    y = rankdata(b[ok])
-    x -= x.mean()
-    y -= y.mean()
-    den = math.sqrt(float(x @ x) * float(y @ y))
-    return float(x @ y) / den if den > 0 else float("nan")
+    out = np.full(len(a), np.nan)
+    use = ok.mean(axis=1) >= min_valid
+    full = use & ok.all(axis=1)
+    if full.any():
+        out[full] = _ncc_ranked(_average_ranks(a[full]), _average_ranks(b[full]))
+    for i in np.nonzero(use & ~full)[0]:
+        m = ok[i]
+        out[i] = _ncc_ranked(_average_ranks(a[i, m][None, :]), _average_ranks(b[i, m][None, :]))[0]
+    return out
+
+
+def _ncc3(v: np.ndarray, min_valid: float) -> np.ndarray:
+    """:func:`_ncc` of cells 0 and 1 and of cells 1 and 2 of (k, 3, p) samples, (k, 2) [-]; a
+    row valid in all three cells has each cell ranked once."""
+    k, _, p = v.shape
+    out = np.full((k, 2), np.nan)
+    whole = np.isfinite(v).all(axis=(1, 2)) & (1.0 >= min_valid)
+    if whole.any():
+        r = _average_ranks(v[whole].reshape(-1, p)).reshape(-1, 3, p)
+        out[whole, 0] = _ncc_ranked(r[:, 0], r[:, 1])
+        out[whole, 1] = _ncc_ranked(r[:, 1], r[:, 2])
+    if not whole.all():
+        rest = ~whole
+        out[rest, 0] = _ncc(v[rest, 0], v[rest, 1], min_valid)
+        out[rest, 1] = _ncc(v[rest, 1], v[rest, 2], min_valid)
+    return out
+
+
+#: Window reads of the cell sampling are grouped by the square of this side [px] holding
+#: their corner: one read and one interpolation per group.
+_GROUP_PX = 256
+#: Pitch cells whose samples are held at once (the temporaries stay bounded on a large site).
+_BATCH = 512
+
+
+def _sample_cells(read: Any, tiles: list[Any], gx: np.ndarray, gy: np.ndarray, stx: np.ndarray, sty: np.ndarray,
+                  ks: tuple[int, ...]) -> np.ndarray:
+    """Bilinear samples of the cells ``k`` pitches from each module's cell (``gx``, ``gy``:
+    (m, nn, na) map points; ``stx``, ``sty``: each one's step [m]); (m, len(ks), nn * na).
+
+    Each module's cells are read on the tile holding the mean of their points, through a
+    window of their extent and 2 pixels around it; the windows of neighbouring modules are
+    read together. The coordinates relative to a shared window differ from those relative to
+    the module's own by a whole number of pixels (exactly: both are non-negative), so the
+    samples are the same."""
+    from scipy.ndimage import map_coordinates
+
+    m = len(gx)
+    px = np.stack([gx + k * stx[:, None, None] for k in ks], axis=1).reshape(m, -1)
+    py = np.stack([gy + k * sty[:, None, None] for k in ks], axis=1).reshape(m, -1)
+    ti = np.zeros(m, np.int64)
+    if len(tiles) > 1:
+        for i in range(m):
+            mx, my = float(np.mean(px[i])), float(np.mean(py[i]))
+            ti[i] = next((j for j, t in enumerate(tiles)
+                          if t.bounds.left <= mx <= t.bounds.right and t.bounds.bottom <= my <= t.bounds.top), 0)
+    cols, rows = np.empty_like(px), np.empty_like(py)
+    for j in np.unique(ti):
+        sel = ti == j
+        cols[sel], rows[sel] = ~tiles[j].transform * (px[sel], py[sel])
+    c0 = np.floor(cols.min(axis=1)).astype(np.int64) - 2
+    r0 = np.floor(rows.min(axis=1)).astype(np.int64) - 2
+    c1 = np.ceil(cols.max(axis=1)).astype(np.int64) + 3
+    r1 = np.ceil(rows.max(axis=1)).astype(np.int64) + 3
+    inside = (c0 >= 0) & (r0 >= 0)
+    # a window reaching beyond the top or left edge is read alone, as its own
+    key = np.where(inside, (r0 // _GROUP_PX) * 1_000_003 + c0 // _GROUP_PX, -1 - np.arange(m))
+    out = np.empty_like(px)
+    groups: dict[tuple[int, int], list[int]] = {}
+    for i, (j, kk) in enumerate(zip(ti.tolist(), key.tolist())):
+        groups.setdefault((j, kk), []).append(i)
+    for (j, _), members in groups.items():
+        g = np.asarray(members)
+        wc0, wr0 = int(c0[g].min()), int(r0[g].min())
+        img = read(j, Window(wc0, wr0, int(c1[g].max()) - wc0, int(r1[g].max()) - wr0)).astype(np.float64)
+        # pixel centres sit at half-integer pixel coordinates
+        v = map_coordinates(img, [(rows[g] - wr0 - 0.5).ravel(), (cols[g] - wc0 - 0.5).ravel()], order=1,
+                            mode="constant", cval=np.nan)
+        out[g] = v.reshape(len(g), -1)
+    return out.reshape(m, len(ks), -1)
 
 
 def end_votes(orthos: Any, placed: gpd.GeoDataFrame, lines: list[tuple[int, int, int]],
@@ -171,11 +303,19 @@ def end_votes(orthos: Any, placed: gpd.GeoDataFrame, lines: list[tuple[int, int,
         ``NCC(cell n, cell n-1) - NCC(cell 0, cell 1)``; positive favours the placement,
         NaN where a cell could not be read.
     """
-    from scipy.ndimage import map_coordinates
+    return _votes(orthos, placed, [lines], cfg)[0]
 
+
+def _votes(orthos: Any, placed: gpd.GeoDataFrame, sets: list[list[tuple[int, int, int]]],
+           cfg: Mapping[str, Any]) -> list[np.ndarray]:
+    """:func:`end_votes` of several sets of lines, in one pass over the ortho: the pitch cells
+    are read band by band across the site (each band's chunks decoded once), the lines of one
+    band and cell size together."""
+    sizes = [len(v) for v in sets]
+    lines = [t for v in sets for t in v]
     out = np.full((len(lines), 2), np.nan)
     if not lines:
-        return out
+        return [out[:0] for _ in sets]
     fr = placed[_FRAME].to_numpy(float)
     tiles = list(orthos.tiles)
     gsd = abs(float(tiles[0].transform.a))
@@ -183,43 +323,37 @@ def end_votes(orthos: Any, placed: gpd.GeoDataFrame, lines: list[tuple[int, int,
     min_valid = float(cfg["ends_min_valid"])
     cx = fr[:, 0] + 0.5 * (fr[:, 2] + fr[:, 4])
     cy = fr[:, 1] + 0.5 * (fr[:, 3] + fr[:, 5])
+    first, last, n = np.asarray(lines, np.int64).reshape(-1, 3).T
+    den = np.maximum(n - 1, 1).astype(float)
+    stx, sty = (cx[last] - cx[first]) / den, (cy[last] - cy[first]) / den
+    with np.errstate(invalid="ignore"):
+        idx = np.nonzero(np.isfinite(stx) & np.isfinite(sty) & (np.hypot(stx, sty) > 0))[0]
+    # the cells seen from each end of a line (item = line, end): from the first (end 0) cells
+    # 0, 1, 2 (0: one pitch before it), from the last (end 1) cells n + 1, n, n - 1
+    line = np.concatenate([idx, idx])
+    end = np.repeat([0, 1], len(idx))
+    pos = np.where(end == 0, first[line], last[line])
+    na, nn = _cell_sizes(fr[pos], stx[line], sty[line], gsd, inset)
+    band = np.floor(cy[pos] / (_GROUP_PX * gsd))
+    order = np.lexsort((cx[pos], nn, na, end, band))
+    key = np.column_stack([band, end, na, nn])[order]
+    cut = np.nonzero(np.any(key[1:] != key[:-1], axis=1))[0] + 1
+    # per line: NCC(cell 0, cell 1), NCC(cell 1, cell 2), NCC(cell n + 1, cell n), NCC(cell n,
+    # cell n - 1)
+    ncc = np.full((len(lines), 4), np.nan)
     cache = getattr(orthos, "window_cache", None)
-
-    def cells(read: Any, frame: np.ndarray, ks: tuple[int, ...], step: np.ndarray) -> list[np.ndarray]:
-        """The cells k pitches ``step`` from ``frame``'s module, sampled bilinearly."""
-        gx, gy = _cell_grid(frame, step, gsd, inset)
-        pts = [(gx + k * step[0], gy + k * step[1]) for k in ks]
-        allx = np.concatenate([p[0].ravel() for p in pts])
-        ally = np.concatenate([p[1].ravel() for p in pts])
-        mx, my = float(np.mean(allx)), float(np.mean(ally))
-        ti = next((j for j, t in enumerate(tiles)
-                   if t.bounds.left <= mx <= t.bounds.right and t.bounds.bottom <= my <= t.bounds.top), 0)
-        tr = tiles[ti].transform
-        cols, rows = ~tr * (allx, ally)
-        c0, r0 = int(math.floor(np.min(cols))) - 2, int(math.floor(np.min(rows))) - 2
-        w, h = int(math.ceil(np.max(cols))) + 3 - c0, int(math.ceil(np.max(rows))) + 3 - r0
-        img = read(ti, Window(c0, r0, w, h)).astype(np.float64)
-        res = []
-        for px, py in pts:
-            c, r = ~tr * (px, py)
-            # pixel centres sit at half-integer pixel coordinates
-            v = map_coordinates(img, [np.asarray(r) - r0 - 0.5, np.asarray(c) - c0 - 0.5], order=1,
-                                mode="constant", cval=np.nan)
-            res.append(v)
-        return res
-
     with cache() if cache is not None else contextlib.nullcontext(orthos.read) as read:
-        for i, (first, last, n) in enumerate(lines):
-            step = np.array([cx[last] - cx[first], cy[last] - cy[first]]) / max(n - 1, 1)
-            if not (np.all(np.isfinite(step)) and np.hypot(*step) > 0):
-                continue
-            # cells 0, 1, 2 seen from the first module (0: one pitch before it) ...
-            c0, c1, c2 = cells(read, fr[first], (-1, 0, 1), step)
-            # ... and n + 1, n, n - 1 seen from the last
-            e1, en, em = cells(read, fr[last], (1, 0, -1), step)
-            out[i, 0] = _ncc(c1, c2, min_valid) - _ncc(e1, en, min_valid)
-            out[i, 1] = _ncc(en, em, min_valid) - _ncc(c0, c1, min_valid)
-    return out
+        for run in np.split(order, cut):
+            e, size = int(end[run[0]]), (int(na[run[0]]), int(nn[run[0]]))
+            ks, cols = ((-1, 0, 1), [0, 1]) if e == 0 else ((1, 0, -1), [2, 3])
+            for lo in range(0, len(run), _BATCH):
+                it = run[lo:lo + _BATCH]
+                b = line[it]
+                gx, gy = _cell_grids(fr[pos[it]], stx[b], sty[b], gsd, inset, *size)
+                ncc[b[:, None], cols] = _ncc3(_sample_cells(read, tiles, gx, gy, stx[b], sty[b], ks), min_valid)
+    out[:, 0] = ncc[:, 1] - ncc[:, 2]
+    out[:, 1] = ncc[:, 3] - ncc[:, 0]
+    return list(np.split(out, np.cumsum(sizes)[:-1]))
 
 
 def judge_ends(orthos: Any, modules: gpd.GeoDataFrame, placed: gpd.GeoDataFrame,
@@ -249,10 +383,10 @@ def judge_ends(orthos: Any, modules: gpd.GeoDataFrame, placed: gpd.GeoDataFrame,
     lines = end_lines(modules)
     out: dict[str, Any] = {}
     meds: list[float] = []
-    for name in ("along", "across"):
-        if not lines[name]:
-            continue
-        v = end_votes(orthos, placed, lines[name], cfg)
+    names = [name for name in ("along", "across") if lines[name]]
+    votes = dict(zip(names, _votes(orthos, placed, [lines[name] for name in names], cfg)))
+    for name in names:
+        v = votes[name]
         v[~free_ends(modules, lines[name], float(cfg["ends_clear_m"]))] = np.nan
         m = []
         for j in range(2):

@@ -36,7 +36,7 @@ from pvscan.io.layout.frames import FRAME_COLUMNS
 from pvscan.measure._memory import release_freed_memory
 from pvscan.measure.register._blocks import _settings
 from pvscan.measure.register._chunks import shared_chunks
-from pvscan.measure.register._pitch import _pitches, _row_pitch
+from pvscan.measure.register._pitch import _distinct, _pitches, _placement_of, _row_pitch, _turned
 from pvscan.measure.register._records import Registration
 from pvscan.measure.register.ends import judge_ends
 from pvscan.measure.register.estimate import estimate_shift
@@ -235,11 +235,19 @@ def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], su
         first = list(reg.evidence["proposals"])
         lim_m = float(cfg["max_shift_m"])
         for q0 in first:
-            p0 = Placement(q0["shift_m"][0], q0["shift_m"][1], q0["rotation_deg"], q0["scale"], centre[0], centre[1])
+            p0 = _placement_of(q0, centre)
             for v in steps:
                 alt = p0.moved(tx=p0.tx + float(v[0]), ty=p0.ty + float(v[1]))
                 if math.hypot(alt.tx, alt.ty) <= lim_m:
                     consider(alt)
+        # a layout turned on a long site: a proposal's rotation off by a degree puts the far
+        # modules beyond the fit's reach; tried again from each proposal turned by steps, the
+        # nearest turns first, until one puts the footprints on glass
+        for alt in (_turned(modules, _distinct([_placement_of(q0, centre) for q0 in first], bounds), cfg)
+                    if chosen is None else []):
+            consider(alt)
+            if chosen is not None:
+                break
     if forced_shift is not None:
         # a known offset is used as given; the evidence only says whether it fits
         q_c = reg.evidence["proposals"][0]
@@ -488,15 +496,6 @@ def _fit_proposal(orthos: Any, modules: gpd.GeoDataFrame, cand: Placement,
     return _compose(base, inner), sample, inner
 
 
-def _distinct(proposals: list[Placement], bounds: Any, tol_m: float = 0.02) -> list[Placement]:
-    """Proposals less any that moves no footprint more than ``tol_m`` from an earlier one."""
-    out: list[Placement] = []
-    for p in proposals:
-        if all(_compose(p, _inverse(q)).displacement_max(bounds) > tol_m for q in out):
-            out.append(p)
-    return out
-
-
 def _num(v: Any) -> float:
     try:
         f = float(v)
@@ -565,7 +564,7 @@ def align_layout(flight: Any, settings: Mapping[str, Any] | None = None, out_pat
     from pvscan.io.ortho import open_orthos
     from pvscan.io.settings import load_pipeline
     from pvscan.measure.register.evidence import sun_vector
-    from pvscan.measure.register.physics import expected_module_apparent_c
+    from pvscan.measure.register.physics import expected_module_apparent_c, site_lonlat
 
     suffix = Path(out_path).suffix.lower() if out_path is not None else ""
     if out_path is not None:
@@ -582,8 +581,8 @@ def align_layout(flight: Any, settings: Mapping[str, Any] | None = None, out_pat
     with open_orthos(flight.flight.orthos, flight.ortho) as orthos:
         modules = read_layout(flight, orthos.crs)
         expected = expected_module_apparent_c(flight, pipeline, strict=False)
-        c = modules.to_crs(4326).geometry.union_all().centroid
-        sun = sun_vector(float(c.x), float(c.y), flight.flight.start + (flight.flight.end - flight.flight.start) / 2)
+        lon, lat = site_lonlat(modules)
+        sun = sun_vector(lon, lat, flight.flight.start + (flight.flight.end - flight.flight.start) / 2)
         reg = register_layout(orthos, modules, cfg, sun=sun, expected_apparent_c=expected, progress=progress)
     moved = apply_placement(modules, reg.placement if reg.applied else None)
     if out_path is not None and reg.status != "failed":

@@ -261,3 +261,18 @@ def _plausibility(orthos: Any, tiles: list[Any], geoms: np.ndarray, blocks: list
 # --------------------------------------------------------------------------------------
 # public API
 # --------------------------------------------------------------------------------------
+
+
+def site_lonlat(modules: Any) -> tuple[float, float]:
+    """WGS84 (lon, lat) [deg] of the plant's centroid, as the pipeline takes it: the area-weighted
+    mean of the footprint centroids (that of their union when they do not overlap; no union of
+    thousands of outlines is built)."""
+    import shapely
+    from pyproj import Transformer
+
+    geoms = modules.geometry.to_numpy()
+    area = shapely.area(geoms)
+    c = shapely.get_coordinates(shapely.centroid(geoms))
+    x, y = (float(np.sum(c[:, k] * area) / np.sum(area)) for k in (0, 1))
+    lon, lat = Transformer.from_crs(modules.crs, 4326, always_xy=True).transform(x, y)
+    return float(lon), float(lat)
