@@ -298,7 +298,9 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
                                           expected_c=expected, settings=settings, manifest=str(flight.path))
 
         t0 = _clock()
-        lon, lat = _site_lonlat(modules)
+        from pvscan.measure.register.physics import site_lonlat
+
+        lon, lat = site_lonlat(modules)
         mid = flight.flight.start + (flight.flight.end - flight.flight.start) / 2
         sun = register.sun_vector(lon, lat, mid)
         if detected:
@@ -416,20 +418,6 @@ def __getattr__(name: str) -> Any:  # moved to the report package; importable he
     raise AttributeError(name)
 
 
-def _site_lonlat(modules: gpd.GeoDataFrame) -> tuple[float, float]:
-    """WGS84 (lon, lat) [deg] of the plant's centroid: the area-weighted mean of the footprint
-    centroids (the centroid of their union when they do not overlap; no union is built)."""
-    import shapely
-    from pyproj import Transformer
-
-    geoms = modules.geometry.to_numpy()
-    area = shapely.area(geoms)
-    c = shapely.get_coordinates(shapely.centroid(geoms))
-    x, y = (float(np.sum(c[:, k] * area) / np.sum(area)) for k in (0, 1))
-    lon, lat = Transformer.from_crs(modules.crs, 4326, always_xy=True).transform(x, y)
-    return float(lon), float(lat)
-
-
 def _evidence_validity(validity: Validity, diagnosis: Any, settings: Pipeline
                        ) -> tuple[Validity, pd.DataFrame, pd.DataFrame]:
     """``validity`` with the checks of the classification's evidence
@@ -524,7 +512,9 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
     _record(timings, "classify", t0)
 
     t0 = _clock()
-    lon, lat = _site_lonlat(modules)
+    from pvscan.measure.register.physics import site_lonlat
+
+    lon, lat = site_lonlat(modules)
     anomalies = loss.estimate_loss(anomalies, flight.module, conds, flight.site, settings,
                                    lonlat=(lon, lat), layout=flight.layout, stats=stats,
                                    reference_c=module_table["reference_c"].to_numpy())

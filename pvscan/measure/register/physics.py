@@ -264,7 +264,7 @@ def _plausibility(orthos: Any, tiles: list[Any], geoms: np.ndarray, blocks: list
 
 
 def site_lonlat(modules: Any) -> tuple[float, float]:
-    """WGS84 (lon, lat) [deg] of the plant's centroid, as the pipeline takes it: the area-weighted
+    """WGS84 (lon, lat) [deg] of the plant's centroid, used by the pipeline and `pvscan align`: the area-weighted
     mean of the footprint centroids (that of their union when they do not overlap; no union of
     thousands of outlines is built)."""
     import shapely
