@@ -16,14 +16,8 @@ from __future__ import annotations
 
 import pytest
 from conftest import DEFAULT_TEST_SEED, test_seed
-from test_register_relief import RIGHT_M, _median_error_m, _sun
+from register_flights import RIGHT_M, register_whole
 
-from pvscan.io.layout import read_layout
-from pvscan.io.manifest import load_flight
-from pvscan.io.ortho import open_orthos
-from pvscan.io.settings import load_pipeline
-from pvscan.measure.register import apply_placement, expected_module_apparent_c, register_layout
-from pvscan.measure.validity import registration_check
 from pvscan.simulate import simulate_flight
 from pvscan.simulate.sampler import draw_scenario
 
@@ -44,14 +38,7 @@ def test_placement_confirmed_by_the_table_ends_is_right(plant):
     modules (within a quarter of a module width, common practice); a placement the table ends
     confirm against one pitch away is right. In the default run (the flight that was refused)
     it is placed and passes."""
-    st = load_pipeline()
-    fl = load_flight(plant / "flight.toml")
-    with open_orthos(fl.flight.orthos, fl.ortho) as o:
-        mods = read_layout(fl, o.crs)
-        reg = register_layout(o, mods, st, sun=_sun(fl, mods),
-                              expected_apparent_c=expected_module_apparent_c(fl, st, strict=False))
-    err = _median_error_m(plant, apply_placement(mods, reg.placement if reg.applied else None))
-    check = registration_check(reg, st)
+    _, _, reg, err, check = register_whole(plant)
     pitch = (reg.evidence or {}).get("pitch") or {}
     assert err < RIGHT_M or check["passed"] is False, (err, reg.message, pitch)
     if pitch.get("ends_confirm"):

@@ -18,30 +18,23 @@ ortho shows them), which no registration code reads.
 """
 from __future__ import annotations
 
-import geopandas as gpd
-import numpy as np
 import pytest
-import shapely
 from conftest import DEFAULT_TEST_SEED, test_seed
-from test_register_ends import _truth_placement
+from register_flights import RIGHT_M, median_error_m, register_whole, sun, truth_placement
 
 from pvscan.io.layout import read_layout
 from pvscan.io.manifest import load_flight
 from pvscan.io.ortho import open_orthos
 from pvscan.io.settings import load_pipeline
-from pvscan.measure.register import Placement, apply_placement, expected_module_apparent_c, register_layout
+from pvscan.measure.register import Placement, apply_placement
 from pvscan.measure.register._blocks import _settings
-from pvscan.measure.register.evidence import _unit_axes, placement_quality, sample_modules, sun_vector
-from pvscan.measure.validity import registration_check
+from pvscan.measure.register.evidence import _unit_axes, placement_quality, sample_modules
 from pvscan.simulate import simulate_flight
 from pvscan.simulate.sampler import draw_scenario
 
 #: Seed of the flight: 720000 in the suite's default run, another draw for any other seed
 #: (kept non-negative for any PVSCAN_TEST_SEED).
 FLIGHT_SEED = test_seed(720000 - DEFAULT_TEST_SEED) % 2**31
-#: A placement is right when the median module centre is within a quarter of a module
-#: width of the truth (common practice; the plant's modules are about 1 m wide).
-RIGHT_M = 0.25
 #: A placement this far off along or across the modules is wrong: more than a quarter of a
 #: module width (common practice), well beyond the centimetres of a right one.
 WRONG_M = 0.3
@@ -56,20 +49,6 @@ def plant(tmp_path_factory):
     return d
 
 
-def _median_error_m(d, placed) -> float:
-    """Median distance between placed module centres and the truth in the ortho [m]."""
-    truth = gpd.read_file(d / "truth_ortho.geojson").to_crs(placed.crs).set_index("module_id")
-    p = placed.set_index("module_id")
-    tc = shapely.centroid(truth.loc[p.index].geometry.values)
-    pc = shapely.centroid(p.geometry.values)
-    return float(np.median(shapely.distance(tc, pc)))
-
-
-def _sun(fl, mods):
-    c = mods.to_crs(4326).union_all().centroid
-    return sun_vector(c.x, c.y, fl.flight.start + (fl.flight.end - fl.flight.start) / 2)
-
-
 def test_true_placement_sits_on_glass_and_a_wrong_one_does_not(plant):
     """At the true placement (the similarity fitted to the truth) the footprints count as on
     their modules; the same placement 0.3 m off along or across the modules does not."""
@@ -77,18 +56,18 @@ def test_true_placement_sits_on_glass_and_a_wrong_one_does_not(plant):
     fl = load_flight(plant / "flight.toml")
     with open_orthos(fl.flight.orthos, fl.ortho) as o:
         mods = read_layout(fl, o.crs)
-        true = _truth_placement(plant, mods)
-        assert _median_error_m(plant, apply_placement(mods, true)) < 0.1
+        true = truth_placement(plant, mods)
+        assert median_error_m(plant, apply_placement(mods, true)) < 0.1
         sample = sample_modules(o, apply_placement(mods, true), n=int(cfg["evidence_modules"]),
                                 margin_m=float(cfg["evidence_margin_m"]), seed=0)
-    sun = _sun(fl, mods)
+    sun_dir = sun(fl, mods)
     at = Placement(cx=true.cx, cy=true.cy)  # the sample was read at the truth: identity relative to it
-    q = placement_quality(sample, at, cfg, sun=sun)
+    q = placement_quality(sample, at, cfg, sun=sun_dir)
     assert q["ok"], q
     for ax in _unit_axes(sample):
         for s in (1.0, -1.0):
             off = at.moved(tx=s * WRONG_M * float(ax[0]), ty=s * WRONG_M * float(ax[1]))
-            qo = placement_quality(sample, off, cfg, sun=sun)
+            qo = placement_quality(sample, off, cfg, sun=sun_dir)
             assert not qo["ok"], (s, ax, qo)
 
 
@@ -96,14 +75,7 @@ def test_layout_is_placed_on_its_modules_or_flagged(plant):
     """The whole registration: the layout (drawn about 1 m off) is placed on its own modules
     and the registration check passes, or the check fails; a wrong placement never passes. In
     the default run (the flight that was refused) it is placed and passes."""
-    st = load_pipeline()
-    fl = load_flight(plant / "flight.toml")
-    with open_orthos(fl.flight.orthos, fl.ortho) as o:
-        mods = read_layout(fl, o.crs)
-        reg = register_layout(o, mods, st, sun=_sun(fl, mods),
-                              expected_apparent_c=expected_module_apparent_c(fl, st, strict=False))
-    err = _median_error_m(plant, apply_placement(mods, reg.placement if reg.applied else None))
-    check = registration_check(reg, st)
+    _, _, reg, err, check = register_whole(plant)
     assert err < RIGHT_M or check["passed"] is False, (err, reg.message)
     if FLIGHT_SEED == 720000:
         assert reg.status == "ok" and check["passed"] is True and err < RIGHT_M, (err, reg.message)

@@ -21,24 +21,15 @@ from __future__ import annotations
 
 import pytest
 from conftest import DEFAULT_TEST_SEED, test_seed
-from test_register_ends import _truth_placement
-from test_register_relief import _median_error_m, _sun
+from register_flights import RIGHT_M, median_error_m, register_whole, truth_placement
 
-from pvscan.io.layout import read_layout
-from pvscan.io.manifest import load_flight
-from pvscan.io.ortho import open_orthos
-from pvscan.io.settings import load_pipeline
-from pvscan.measure.register import apply_placement, expected_module_apparent_c, register_layout
-from pvscan.measure.validity import registration_check
+from pvscan.measure.register import apply_placement
 from pvscan.simulate import simulate_flight
 from pvscan.simulate.sampler import draw_scenario
 
 #: Seed of the flights: 760000 in the suite's default run, another draw for any other seed
 #: (kept non-negative for any PVSCAN_TEST_SEED).
 FLIGHT_SEED = test_seed(760000 - DEFAULT_TEST_SEED) % 2**31
-#: A placement is right when the median module centre is within a quarter of a module
-#: width of the truth (common practice; the plants' modules are 1.0-1.1 m wide).
-RIGHT_M = 0.25
 
 
 @pytest.fixture(scope="module", params=["turned_layout", "any"])
@@ -53,17 +44,9 @@ def test_layout_is_placed_on_its_modules_or_flagged(plant):
     check passes, or the check fails; a wrong placement never passes. In the default run (the
     flights that were refused) it is placed and passes."""
     family, d = plant
-    st = load_pipeline()
-    fl = load_flight(d / "flight.toml")
-    with open_orthos(fl.flight.orthos, fl.ortho) as o:
-        mods = read_layout(fl, o.crs)
-        true = _truth_placement(d, mods)
-        # the truth is a similarity here: within centimetres of every module
-        assert _median_error_m(d, apply_placement(mods, true)) < 0.1
-        reg = register_layout(o, mods, st, sun=_sun(fl, mods),
-                              expected_apparent_c=expected_module_apparent_c(fl, st, strict=False))
-    err = _median_error_m(d, apply_placement(mods, reg.placement if reg.applied else None))
-    check = registration_check(reg, st)
+    _, mods, reg, err, check = register_whole(d)
+    # the truth is a similarity here: within centimetres of every module
+    assert median_error_m(d, apply_placement(mods, truth_placement(d, mods))) < 0.1
     assert err < RIGHT_M or check["passed"] is False, (family, err, reg.message)
     if FLIGHT_SEED == 760000:
         assert reg.status == "ok" and check["passed"] is True and err < RIGHT_M, (family, err, reg.message)

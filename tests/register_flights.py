@@ -1,0 +1,73 @@
+"""Shared set-up of the registration tests on simulated flights (test_register_ends,
+test_register_ends_confirm, test_register_relief, test_register_turned).
+
+Where the modules are is the simulator's truth (truth_ortho.geojson: the modules where the
+ortho shows them), which no registration code reads.
+"""
+from __future__ import annotations
+
+import math
+from pathlib import Path
+from typing import Any
+
+import geopandas as gpd
+import numpy as np
+import shapely
+
+from pvscan.io.layout import read_layout
+from pvscan.io.manifest import load_flight
+from pvscan.io.ortho import open_orthos
+from pvscan.io.settings import load_pipeline
+from pvscan.measure.register import Placement, apply_placement, expected_module_apparent_c, register_layout
+from pvscan.measure.register.evidence import sun_vector
+from pvscan.measure.validity import registration_check
+
+#: A placement is right when the median module centre is within a quarter of a module width of
+#: the truth (common practice; the plants' modules are 1.0-1.1 m wide; one pitch off is ~1.06 m).
+RIGHT_M = 0.25
+
+
+def median_error_m(d: Path, placed: gpd.GeoDataFrame) -> float:
+    """Median distance between placed module centres and the truth in the ortho [m]."""
+    truth = gpd.read_file(d / "truth_ortho.geojson").to_crs(placed.crs).set_index("module_id")
+    p = placed.set_index("module_id")
+    tc = shapely.centroid(truth.loc[p.index].geometry.values)
+    pc = shapely.centroid(p.geometry.values)
+    return float(np.median(shapely.distance(tc, pc)))
+
+
+def truth_placement(d: Path, mods: gpd.GeoDataFrame) -> Placement:
+    """The similarity carrying the layout's module centres onto the truth's (least squares)."""
+    truth = gpd.read_file(d / "truth_ortho.geojson").to_crs(mods.crs).set_index("module_id")
+    a = shapely.centroid(mods.geometry.values)
+    b = shapely.centroid(truth.loc[mods["module_id"].astype(str)].geometry.values)
+    b0 = mods.total_bounds
+    c = complex((b0[0] + b0[2]) / 2.0, (b0[1] + b0[3]) / 2.0)
+    za = shapely.get_x(a) + 1j * shapely.get_y(a) - c
+    zb = shapely.get_x(b) + 1j * shapely.get_y(b) - c
+    am, bm = za.mean(), zb.mean()
+    k = np.vdot(za - am, zb - bm) / np.vdot(za - am, za - am)
+    t = bm - k * am
+    return Placement(float(t.real), float(t.imag), math.degrees(float(np.angle(k))), float(abs(k)), c.real, c.imag)
+
+
+def sun(fl: Any, mods: gpd.GeoDataFrame, *, at_start: bool = False) -> Any:
+    """The sun (pvlib's position, as the registration takes it) over the plant's centroid, in
+    the middle of the flight (or at its start)."""
+    c = mods.to_crs(4326).union_all().centroid
+    when = fl.flight.start if at_start else fl.flight.start + (fl.flight.end - fl.flight.start) / 2
+    return sun_vector(c.x, c.y, when)
+
+
+def register_whole(d: Path, *, sun_at_start: bool = False) -> tuple[Any, gpd.GeoDataFrame, Any, float, dict]:
+    """The whole registration of the flight in ``d`` with the default pipeline settings:
+    (flight, layout modules, registration, median module error of the placement used [m],
+    registration check)."""
+    st = load_pipeline()
+    fl = load_flight(d / "flight.toml")
+    with open_orthos(fl.flight.orthos, fl.ortho) as o:
+        mods = read_layout(fl, o.crs)
+        reg = register_layout(o, mods, st, sun=sun(fl, mods, at_start=sun_at_start),
+                              expected_apparent_c=expected_module_apparent_c(fl, st, strict=False))
+    err = median_error_m(d, apply_placement(mods, reg.placement if reg.applied else None))
+    return fl, mods, reg, err, registration_check(reg, st)
