@@ -13,6 +13,7 @@ from typing import Any
 import geopandas as gpd
 import numpy as np
 import shapely
+from conftest import DEFAULT_TEST_SEED, test_seed
 
 from pvscan.io.layout import read_layout
 from pvscan.io.manifest import load_flight
@@ -21,10 +22,26 @@ from pvscan.io.settings import load_pipeline
 from pvscan.measure.register import Placement, apply_placement, expected_module_apparent_c, register_layout
 from pvscan.measure.register.evidence import sun_vector
 from pvscan.measure.validity import registration_check
+from pvscan.simulate import simulate_flight
+from pvscan.simulate.sampler import draw_scenario
 
 #: A placement is right when the median module centre is within a quarter of a module width of
 #: the truth (common practice; the plants' modules are 1.0-1.1 m wide; one pitch off is ~1.06 m).
 RIGHT_M = 0.25
+
+
+def flight_seed(scenario_seed: int) -> int:
+    """The simulator seed of a test's flight: ``scenario_seed`` (the random plant's own seed) in
+    the suite's default run, another draw for any other PVSCAN_TEST_SEED (non-negative)."""
+    return test_seed(scenario_seed - DEFAULT_TEST_SEED) % 2**31
+
+
+def simulate_plant(tmp_path_factory: Any, scenario_seed: int, family: str) -> Path:
+    """The random plant ``pvscan simulate --random SCENARIO_SEED --family FAMILY`` flown with
+    :func:`flight_seed`; the flight folder."""
+    d = tmp_path_factory.mktemp(f"{family}-{scenario_seed}") / "flight"
+    simulate_flight(draw_scenario(scenario_seed, family), d, seed=flight_seed(scenario_seed))
+    return d
 
 
 def median_error_m(d: Path, placed: gpd.GeoDataFrame) -> float:

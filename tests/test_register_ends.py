@@ -14,8 +14,7 @@ ortho shows them), which no registration code reads.
 from __future__ import annotations
 
 import pytest
-from conftest import DEFAULT_TEST_SEED, test_seed
-from register_flights import RIGHT_M, median_error_m, register_whole, truth_placement
+from register_flights import RIGHT_M, flight_seed, median_error_m, register_whole, simulate_plant, truth_placement
 
 from pvscan.io.layout import read_layout
 from pvscan.io.manifest import load_flight
@@ -25,19 +24,15 @@ from pvscan.measure.register import apply_placement
 from pvscan.measure.register._blocks import _settings
 from pvscan.measure.register._pitch import _pitches
 from pvscan.measure.register.ends import judge_ends
-from pvscan.simulate import simulate_flight
-from pvscan.simulate.sampler import draw_scenario
 
 #: Seed of the flight: 800000 in the suite's default run, another draw for any other seed
 #: (kept non-negative for any PVSCAN_TEST_SEED).
-FLIGHT_SEED = test_seed(800000 - DEFAULT_TEST_SEED) % 2**31
+FLIGHT_SEED = flight_seed(800000)
 
 
 @pytest.fixture(scope="module")
 def plant(tmp_path_factory):
-    d = tmp_path_factory.mktemp("ends") / "flight"
-    simulate_flight(draw_scenario(800000, "any"), d, seed=FLIGHT_SEED)
-    return d
+    return simulate_plant(tmp_path_factory, 800000, "any")
 
 
 def _open(d):

@@ -15,22 +15,16 @@ code reads.
 from __future__ import annotations
 
 import pytest
-from conftest import DEFAULT_TEST_SEED, test_seed
-from register_flights import RIGHT_M, register_whole
-
-from pvscan.simulate import simulate_flight
-from pvscan.simulate.sampler import draw_scenario
+from register_flights import RIGHT_M, flight_seed, register_whole, simulate_plant
 
 #: Seed of the flight: 830002 in the suite's default run, another draw for any other seed
 #: (kept non-negative for any PVSCAN_TEST_SEED).
-FLIGHT_SEED = test_seed(830002 - DEFAULT_TEST_SEED) % 2**31
+FLIGHT_SEED = flight_seed(830002)
 
 
 @pytest.fixture(scope="module")
 def plant(tmp_path_factory):
-    d = tmp_path_factory.mktemp("confirm") / "flight"
-    simulate_flight(draw_scenario(830002, "tracker_hot_ground_noon"), d, seed=FLIGHT_SEED)
-    return d
+    return simulate_plant(tmp_path_factory, 830002, "tracker_hot_ground_noon")
 
 
 def test_placement_confirmed_by_the_table_ends_is_right(plant):

@@ -19,8 +19,7 @@ ortho shows them), which no registration code reads.
 from __future__ import annotations
 
 import pytest
-from conftest import DEFAULT_TEST_SEED, test_seed
-from register_flights import RIGHT_M, median_error_m, register_whole, sun, truth_placement
+from register_flights import RIGHT_M, flight_seed, median_error_m, register_whole, sun, truth_placement
 
 from pvscan.io.layout import read_layout
 from pvscan.io.manifest import load_flight
@@ -34,7 +33,7 @@ from pvscan.simulate.sampler import draw_scenario
 
 #: Seed of the flight: 720000 in the suite's default run, another draw for any other seed
 #: (kept non-negative for any PVSCAN_TEST_SEED).
-FLIGHT_SEED = test_seed(720000 - DEFAULT_TEST_SEED) % 2**31
+FLIGHT_SEED = flight_seed(720000)
 #: A placement this far off along or across the modules is wrong: more than a quarter of a
 #: module width (common practice), well beyond the centimetres of a right one.
 WRONG_M = 0.3

@@ -20,23 +20,18 @@ shows them), which no registration code reads.
 from __future__ import annotations
 
 import pytest
-from conftest import DEFAULT_TEST_SEED, test_seed
-from register_flights import RIGHT_M, median_error_m, register_whole, truth_placement
+from register_flights import RIGHT_M, flight_seed, median_error_m, register_whole, simulate_plant, truth_placement
 
 from pvscan.measure.register import apply_placement
-from pvscan.simulate import simulate_flight
-from pvscan.simulate.sampler import draw_scenario
 
 #: Seed of the flights: 760000 in the suite's default run, another draw for any other seed
 #: (kept non-negative for any PVSCAN_TEST_SEED).
-FLIGHT_SEED = test_seed(760000 - DEFAULT_TEST_SEED) % 2**31
+FLIGHT_SEED = flight_seed(760000)
 
 
 @pytest.fixture(scope="module", params=["turned_layout", "any"])
 def plant(request, tmp_path_factory):
-    d = tmp_path_factory.mktemp(request.param) / "flight"
-    simulate_flight(draw_scenario(760000, request.param), d, seed=FLIGHT_SEED)
-    return request.param, d
+    return request.param, simulate_plant(tmp_path_factory, 760000, request.param)
 
 
 def test_layout_is_placed_on_its_modules_or_flagged(plant):
