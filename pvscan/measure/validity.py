@@ -40,7 +40,7 @@ Check = dict[str, Any]
 
 __all__ = ["Validity", "check_validity", "registration_check", "coverage_check", "plausibility_check",
            "row_geometry", "row_shading_check", "string_reference_check", "unexplained_pid_check",
-           "unexplained_pid_pattern_check", "row_edge_check", "evidence_checks",
+           "unexplained_pid_pattern_check", "row_edge_check", "module_spread_check", "evidence_checks",
            "with_checks"]
 
 logger = logging.getLogger(__name__)
@@ -518,14 +518,46 @@ def unexplained_pid_pattern_check(evidence: Mapping[str, Any], settings: Mapping
         m=m)
 
 
+def module_spread_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> Check:
+    """``module_spread``: the robust module-to-module spread of healthy modules' delta T
+    (``module_spread_k`` [K]) over the median open-module rise ``eta * G / U``
+    (``open_rise_k`` [K], Faiman), at most ``[validity] max_module_spread_ratio`` [-].
+
+    Every finding of the classification is a contrast against healthy modules, judged in
+    their spreads: a fault is told from a healthy module when its heat, a share of the
+    open-module rise, stands several spreads clear. When the spread is a large share of the
+    rise, the fainter faults (PID fading along a string, a bypassed substring, soiling) sit
+    inside the healthy scatter and are missed, and a reference drawn from a plant where many
+    modules are anomalous (a small plant, a string-level fault filling a good part of it)
+    scatters the same way. Unknown (passes) when either is not measured.
+    """
+    lim = float(_validity_settings(settings)["max_module_spread_ratio"])
+    sig = _finite(evidence.get("module_spread_k"))
+    rise = _finite(evidence.get("open_rise_k"))
+    value = sig / rise if sig is not None and rise is not None and rise > 0 else None
+    if value is None:
+        msg = "module spread: unknown (no spread or open-module rise measured)"
+    else:
+        msg = (f"module spread: healthy modules scatter {sig:.2f} K, {value:.2f} of the open-module rise "
+               f"({rise:.2f} K at the flight's irradiance and wind; at most {lim:g})")
+        if value > lim:
+            msg += (": faults fainter than a few spreads (PID, bypassed substrings, soiling) cannot be told from "
+                    "healthy modules, or too many modules are anomalous for a reference drawn from the plant; "
+                    "check the result by hand (failed)")
+    c = _check("module_spread", value, lim, "max", "", "module spread over the Faiman open-module rise "
+               "(pvscan.diagnose.classify; calibrated)", message=msg)
+    c.update({"module_spread_k": sig, "open_rise_k": rise})
+    return c
+
+
 def evidence_checks(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> list[Check]:
     """The checks of what the classification measured about the flight as a whole
     (:attr:`pvscan.diagnose.results.Diagnosis.evidence`): ``string_reference``,
-    ``row_cluster``, ``unexplained_pid`` and ``unexplained_pid_pattern``. Empty when there is no
+    ``module_spread``, ``row_cluster``, ``row_edge``, ``unexplained_pid`` and ``unexplained_pid_pattern``. Empty when there is no
     evidence (no module classified)."""
     if not evidence:
         return []
-    checks = [string_reference_check(evidence, settings)]
+    checks = [string_reference_check(evidence, settings), module_spread_check(evidence, settings)]
     if "row_cluster_score" in evidence:
         checks.append(row_cluster_check(evidence, settings))
     if "row_edge_offset_k" in evidence:
