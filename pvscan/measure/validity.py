@@ -553,8 +553,8 @@ def module_spread_check(evidence: Mapping[str, Any], settings: Mapping[str, Any]
 def evidence_checks(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> list[Check]:
     """The checks of what the classification measured about the flight as a whole
     (:attr:`pvscan.diagnose.results.Diagnosis.evidence`): ``string_reference``,
-    ``module_spread``, ``row_cluster``, ``row_edge``, ``unexplained_pid`` and ``unexplained_pid_pattern``. Empty when there is no
-    evidence (no module classified)."""
+    ``module_spread``, ``row_cluster``, ``row_edge``, ``unexplained_pid`` and
+    ``unexplained_pid_pattern``. Empty when there is no evidence (no module classified)."""
     if not evidence:
         return []
     checks = [string_reference_check(evidence, settings), module_spread_check(evidence, settings)]
