@@ -207,8 +207,7 @@ def _fit_window(orthos: Any, cand: TableCandidate, module: Any, layout: Any, set
     tol = float(settings["level_tol_k"])
     margin = float(settings["window_margin_m"])
     half = 0.5 * math.hypot(cand.length_m, cand.depth_m) + margin
-    x, y, t, _energy = _samples(orthos, cand.centre, half,
-                                0.5 * float(settings["texture_window_modules"]) * module.width_m)
+    x, y, t = _samples(orthos, cand.centre, half)
     if x.size == 0:
         return None, (False, False)
     valid = np.isfinite(t)
@@ -277,9 +276,12 @@ def _fit_window(orthos: Any, cand: TableCandidate, module: Any, layout: Any, set
             if is_cut:
                 continue
             pts = []
+            # the samples near the edge (all that _half_crossing looks at), then piece by piece
+            near = np.flatnonzero(valid & (np.abs(w - edge) < 6 * gsd))
+            s_n, w_n, t_n = s[near], w[near], tv[near]
             for a, b in zip(seg_edges[:-1], seg_edges[1:]):
-                sel = valid & (s >= a) & (s < b)
-                pts.append((0.5 * (a + b), _half_crossing(w[sel], tv[sel], edge, outward, gsd, step_k)))
+                sel = (s_n >= a) & (s_n < b)
+                pts.append((0.5 * (a + b), _half_crossing(w_n[sel], t_n[sel], edge, outward, gsd, step_k)))
             p = np.array(pts)
             if len(p) >= 2 and np.ptp(p[:, 0]) > 0:
                 dev = p[:, 1] - np.median(p[:, 1])
@@ -347,6 +349,10 @@ def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings
     w = (x - centre[0]) * across[0] + (y - centre[1]) * across[1]
     reach = float(settings["comb_reach_m"])
     reach_w = reach if across_reach_m is None else float(across_reach_m)
+    # the samples of the search window (a bin of slack: the comb's grid drops the rest)
+    slack = gsd
+    near = (np.abs(s) <= 0.5 * length + reach + slack) & (np.abs(w) <= 0.5 * depth + reach_w + slack)
+    s, w, t = s[near], w[near], t[near]
 
     def run(orient: str, shift_m: float) -> Any:
         mod_s = module.width_m if orient == "portrait" else module.length_m

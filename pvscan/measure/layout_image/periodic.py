@@ -47,18 +47,24 @@ def _grid(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[float, flo
 
 
 def _fill_cols(grid: np.ndarray) -> np.ndarray:
-    """Empty bins (an axis-aligned table leaves every other bin empty) from their neighbours."""
+    """Empty bins (an axis-aligned table leaves every other bin empty) from their neighbours:
+    three passes, each filling a NaN bin with the mean of its four neighbours that hold a
+    value (rows and columns wrap around at the grid's edges; a bin without any stays NaN)."""
     g = grid.copy()
     for _ in range(3):
         bad = np.isnan(g)
         if not bad.any():
             break
-        left = np.roll(g, 1, axis=1)
-        right = np.roll(g, -1, axis=1)
-        up = np.roll(g, 1, axis=0)
-        down = np.roll(g, -1, axis=0)
-        est = np.nanmean(np.stack([left, right, up, down]), axis=0)
-        g[bad] = est[bad]
+        p = np.pad(g, 1, mode="wrap")
+        total = np.zeros(g.shape)
+        count = np.zeros(g.shape)
+        # left, right, up, down neighbours, summed in this order
+        for v in (p[1:-1, :-2], p[1:-1, 2:], p[:-2, 1:-1], p[2:, 1:-1]):
+            have = ~np.isnan(v)
+            total += np.where(have, v, 0.0)
+            count += have
+        with np.errstate(invalid="ignore", divide="ignore"):
+            g[bad] = total[bad] / count[bad]
     return g
 
 

@@ -13,17 +13,10 @@ from pvscan.measure.layout_image.segment import TableCandidate
 __all__: list[str] = []
 
 
-def _samples(orthos: Any, centre: np.ndarray, half: float, win_m: float
-             ) -> tuple[np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
-    """Pixel centres (x, y), values [degC] and log gradient energy of every tile near a point.
-
-    Returns x, y, t (NaN = nodata), log of the gradient magnitude averaged over ``win_m``.
-    """
-    from scipy import ndimage as ndi
-
-    from pvscan.measure.layout_image.segment import _fill_nan
-
-    xs, ys, ts, es = [], [], [], []
+def _samples(orthos: Any, centre: np.ndarray, half: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Pixel centres (x, y) [m] and values [degC] (NaN = nodata) of every tile within
+    ``half`` [m] of a point (a square window, one windowed read per tile)."""
+    xs, ys, ts = [], [], []
     for i, t in enumerate(orthos.tiles):
         inv = ~t.transform
         cols, rows = inv * (np.array([centre[0] - half, centre[0] + half]),
@@ -40,14 +33,10 @@ def _samples(orthos: Any, centre: np.ndarray, half: float, win_m: float
         xs.append(np.asarray(x))
         ys.append(np.asarray(y))
         ts.append(data.ravel().astype(np.float64))
-        work = _fill_nan(data.astype(np.float64))
-        gy, gx = np.gradient(work, t.gsd_m) if min(work.shape) > 1 else (np.zeros_like(work),) * 2
-        win = max(3, int(round(win_m / t.gsd_m)))
-        es.append(np.log(ndi.uniform_filter(np.hypot(gx, gy), win) + 1e-6).ravel())
     if not xs:
         e = np.empty(0)
-        return e, e, e, e
-    return np.concatenate(xs), np.concatenate(ys), np.concatenate(ts), np.concatenate(es)
+        return e, e, e
+    return np.concatenate(xs), np.concatenate(ys), np.concatenate(ts)
 
 
 def _runs_closed(flag: np.ndarray, close_bins: int) -> np.ndarray:
@@ -153,7 +142,7 @@ def _comb_strip(orthos: Any, cand: TableCandidate, module: Any, layout: Any, set
     gsd = float(orthos.gsd_m)
     reach = float(settings["comb_reach_m"])
     half = 0.5 * math.hypot(cand.length_m, cand.depth_m) + float(settings["window_margin_m"])
-    x, y, t, _ = _samples(orthos, cand.centre, half, gsd)
+    x, y, t = _samples(orthos, cand.centre, half)
     if x.size == 0:
         return None
     axis = cand.axis.astype(float)
