@@ -66,8 +66,13 @@ def one_flight(seed: int, family: str, root: Path, inspect: bool, scenario: Path
         with open_orthos(fl, settings=settings) as orthos:
             det = detect_layout(orthos, fl.module, fl.layout, settings)
         path = flight_dir / "detected.gpkg"
-        det.modules.to_file(path, layer="modules", driver="GPKG", engine="pyogrio")
+        for name, frame in (("modules", det.modules), ("tables", det.tables), ("dropped_tables", det.dropped)):
+            if len(frame) or name == "modules":
+                frame.to_file(path, layer=name, driver="GPKG", engine="pyogrio")
         s = evaluate_layout(flight_dir, path, settings["evaluate"])
+        summ = det.summary()
+        s.update(dropped_modules=summ["dropped_modules"], dropped_share=summ["dropped_share"],
+                 tables_to_check=summ["tables_to_check"])
     except Exception as exc:  # a flight the detector refuses counts as nothing found
         s = {"truth_modules": None, "layout_modules": 0, "found": 0, "found_fraction": 0.0, "extra": 0,
              "extra_fraction": 0.0, "corner_error_m": None, "within_5cm": None, "error": str(exc)}
@@ -120,6 +125,7 @@ def main(argv: list[str] | None = None) -> int:
             print(f"seed {seed:>4} {s['flight']:<46} found {s['found']}/{s['truth_modules']} "
                   f"({100 * s['found_fraction']:.1f} %) extra {s['extra']}  corner p95 "
                   f"{ce.get('p95', float('nan')):.3f} m  within 5 cm {s.get('within_5cm') or 0:.3f}"
+                  + f"  dropped {s.get('dropped_modules', 0)} ({100 * s.get('dropped_share', 0.0):.1f} %)"
                   + (f"  recall {ns.get('recall')} precision {ns.get('precision')}" if ns else "")
                   + (f"  ERROR {s['error']}" if s.get("error") else "")
                   + f"  [{s['detect_s']} s]", flush=True)
@@ -127,6 +133,7 @@ def main(argv: list[str] | None = None) -> int:
     print(f"extra fraction     {_stats([r['extra_fraction'] for r in rows], False)}")
     print(f"corner p95 [m]     {_stats([(r.get('corner_error_m') or {}).get('p95') for r in rows], False)}")
     print(f"within 5 cm        {_stats([r.get('within_5cm') for r in rows], True)}")
+    print(f"dropped share      {_stats([r.get('dropped_share') for r in rows], False)}")
     if args.inspect:
         ns = [r.get("no_string_classes") or {} for r in rows]
         print(f"recall (no string) {_stats([n.get('recall') for n in ns], True)}")

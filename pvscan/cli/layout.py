@@ -50,13 +50,19 @@ def detect_cmd(flight: Path, out_path: Path, pipeline_path: Path | None, overwri
     settings = load_pipeline(pipeline_path)
     with open_orthos(fl, settings=settings) as orthos:
         det = detect_layout(orthos, fl.module, fl.layout, settings)
-    _write(out_path, {"modules": det.modules, "tables": det.tables}, overwrite)
+    layers = {"modules": det.modules, "tables": det.tables}
+    if len(det.dropped):
+        layers["dropped_tables"] = det.dropped
+    _write(out_path, layers, overwrite)
     s = det.summary()
     echo(f"found {s['tables']} tables, {s['modules']} modules ({s['modules_cut']} cut by nodata or the "
          f"ortho's edge); table confidence min {s['confidence_min']:.2f}, median {s['confidence_median']:.2f}")
-    low = det.tables[det.tables["confidence"] < 0.6]
-    for r in low.itertuples():
+    for r in det.tables[det.tables["status"] == "check"].itertuples():
         echo(f"check table {r.table_id}: confidence {r.confidence:.2f}, {r.rows} x {r.cols} {r.orientation}")
+    if s["dropped_tables"]:
+        echo(f"unsure: {s['dropped_tables']} lattices of {s['dropped_modules']} modules fitted but not kept "
+             f"({100 * s['dropped_share']:.0f} % of the modules seen; layer dropped_tables): the layout may miss "
+             f"tables there")
     echo(f"wrote {out_path}")
 
 

@@ -33,7 +33,7 @@ import numpy as np
 from pvscan.errors import LayoutError
 from pvscan.io.settings import section
 from pvscan.measure.layout_image.lattice import TableFit, facing_vector, fit_table
-from pvscan.measure.layout_image.segment import find_tables
+from pvscan.measure.layout_image.segment import TableCandidate, find_tables
 
 __all__ = ["DetectedLayout", "detect_layout", "LAYOUT_COLUMNS"]
 
@@ -55,23 +55,43 @@ class DetectedLayout:
         One row per table: ``table_id``, ``rows``, ``cols``, ``orientation``, ``confidence``,
         ``misfit``, ``angle_deg`` (of the table axis, counter-clockwise from east),
         ``module_along_m``, ``module_across_m``, ``contrast_k``, ``cut`` and the table polygon.
+        ``status`` is ``"ok"``, or ``"check"`` below ``[layout_detect] check_confidence``.
     fits : list of TableFit
+    dropped : geopandas.GeoDataFrame
+        The lattices of at least ``min_table_modules`` modules fitted where the mosaic showed a
+        table but not kept (``reason``: ``"confidence"`` below ``min_confidence`` or
+        ``"misfit"`` above ``max_misfit``), that no kept table covers: the places where the
+        detection was unsure and wrote no modules. Columns ``rows``, ``cols``,
+        ``orientation``, ``confidence``, ``misfit``, ``reason`` and the outline polygon.
     """
 
     modules: Any
     tables: Any
     fits: list[TableFit]
+    dropped: Any = None
 
     def summary(self) -> dict:
-        """Counts for ``summary.json`` and the CLI."""
+        """Counts for ``summary.json`` and the CLI.
+
+        ``dropped_modules`` counts the modules of the lattices not kept (``dropped``);
+        ``dropped_share`` is their share of all modules found and dropped [-]: a detected
+        layout with a large share has missed part of the plant.
+        """
         m = self.modules
+        d = self.dropped
+        n_drop = int((d["rows"] * d["cols"]).sum()) if d is not None and len(d) else 0
+        n_mod = int(len(m))
         return {
             "tables": int(len(self.tables)),
-            "modules": int(len(m)),
+            "modules": n_mod,
             "modules_cut": int((m["status"] == "cut").sum()) if len(m) else 0,
             "modules_nodata": int((m["status"] == "nodata").sum()) if len(m) else 0,
             "confidence_min": float(self.tables["confidence"].min()) if len(self.tables) else None,
             "confidence_median": float(self.tables["confidence"].median()) if len(self.tables) else None,
+            "tables_to_check": int((self.tables["status"] == "check").sum()) if len(self.tables) else 0,
+            "dropped_tables": int(len(d)) if d is not None else 0,
+            "dropped_modules": n_drop,
+            "dropped_share": round(n_drop / (n_mod + n_drop), 4) if n_mod + n_drop else 0.0,
         }
 
 
@@ -212,6 +232,39 @@ def _join_rows(fits: list[TableFit], join: Mapping[str, float]) -> list[TableFit
     return out
 
 
+def _axis_deg(f: TableFit) -> float:
+    """Direction of a table's axis [deg, 0..180, counter-clockwise from east]."""
+    return math.degrees(math.atan2(f.axis[1], f.axis[0])) % 180.0
+
+
+def plant_axis_deg(fits: list[TableFit], tol_deg: float) -> float | None:
+    """The direction most of the plant's modules share [deg, 0..180]: of the fits' own
+    directions, the one with the most modules x confidence within ``tol_deg`` of it, averaged
+    over those (weighted the same); None without fits. Tables of a plant are set out parallel
+    (common practice), so one table's angle that differs is more often a wrong edge fit (a
+    shadow or the ground along one long edge) than a turned table."""
+    if not fits:
+        return None
+    ang = np.array([_axis_deg(f) for f in fits])
+    wt = np.array([f.rows * f.cols * max(f.confidence, 1e-6) for f in fits])
+    diff = (ang[None, :] - ang[:, None] + 90.0) % 180.0 - 90.0  # [i, j]: j relative to i
+    near = np.abs(diff) <= tol_deg
+    k = int(np.argmax((near * wt[None, :]).sum(axis=1)))
+    return float((ang[k] + np.average(diff[k, near[k]], weights=wt[near[k]])) % 180.0)
+
+
+def _turned_to(cand: TableCandidate, f: TableFit, axis_deg: float) -> TableCandidate:
+    """The candidate of fit ``f`` (its centre and extent) with its axis at ``axis_deg``."""
+    from dataclasses import replace
+
+    a = math.radians(axis_deg)
+    axis = np.array([math.cos(a), math.sin(a)])
+    if axis @ f.axis < 0:
+        axis = -axis
+    centre = f.origin + 0.5 * f.length_m * f.axis + 0.5 * f.depth_m * f.across
+    return replace(cand, centre=centre, axis=axis, length_m=f.length_m, depth_m=f.depth_m)
+
+
 def _combine(fits: list[TableFit], cfg: dict) -> list[TableFit]:
     """The plant's tables from all fits: those consistent with the plant (:func:`_consistent`),
     parts of one row joined (:func:`_join_rows`; before the overlap rule, which would keep
@@ -261,17 +314,29 @@ def _order(fits: list[TableFit], azimuth_deg: float) -> list[tuple[int, int, Tab
     return out
 
 
-def _frames(rows: list[dict], tables: list[dict], crs: Any) -> tuple[Any, Any]:
+def _frame(rows: list[dict], cols: list[str], crs: Any) -> Any:
     import geopandas as gpd
 
-    cols = [*LAYOUT_COLUMNS, "geometry"]
-    mod = gpd.GeoDataFrame(rows, columns=cols, geometry="geometry", crs=crs) if rows else \
+    return gpd.GeoDataFrame(rows, columns=cols, geometry="geometry", crs=crs) if rows else \
         gpd.GeoDataFrame({c: [] for c in cols}, geometry="geometry", crs=crs)
-    tcols = ["table_id", "rows", "cols", "orientation", "confidence", "misfit", "angle_deg", "module_along_m",
-             "module_across_m", "contrast_k", "cut", "geometry"]
-    tab = gpd.GeoDataFrame(tables, columns=tcols, geometry="geometry", crs=crs) if tables else \
-        gpd.GeoDataFrame({c: [] for c in tcols}, geometry="geometry", crs=crs)
-    return mod, tab
+
+
+def _frames(rows: list[dict], tables: list[dict], crs: Any) -> tuple[Any, Any]:
+    tcols = ["table_id", "rows", "cols", "orientation", "confidence", "status", "misfit", "angle_deg",
+             "module_along_m", "module_across_m", "contrast_k", "cut", "geometry"]
+    return _frame(rows, [*LAYOUT_COLUMNS, "geometry"], crs), _frame(tables, tcols, crs)
+
+
+def _dropped(dropped: list[tuple[TableFit, str]], kept: list[TableFit], share: float, crs: Any) -> Any:
+    """The dropped lattices no kept table (nor a larger dropped one) covers by more than
+    ``share`` of the smaller, as a GeoDataFrame (:class:`DetectedLayout` ``dropped``)."""
+    out: list[tuple[TableFit, str]] = []
+    for f, reason in sorted(dropped, key=lambda fr: -fr[0].rows * fr[0].cols):
+        if not any(_overlaps(g, f, share) for g in kept) and not any(_overlaps(g, f, share) for g, _ in out):
+            out.append((f, reason))
+    rows = [{"rows": f.rows, "cols": f.cols, "orientation": f.orientation, "confidence": round(f.confidence, 3),
+             "misfit": round(f.misfit, 3), "reason": reason, "geometry": _outline(f)} for f, reason in out]
+    return _frame(rows, ["rows", "cols", "orientation", "confidence", "misfit", "reason", "geometry"], crs)
 
 
 def detect_layout(orthos: Any, module: Any, layout: Any, settings: Any = None, progress: Any = None) -> DetectedLayout:
@@ -311,6 +376,8 @@ def detect_layout(orthos: Any, module: Any, layout: Any, settings: Any = None, p
     cands = find_tables(img, transform, module.width_m, cfg)
     del img
     fits: list[TableFit] = []
+    fitted: list[TableCandidate] = []  # the candidate of each fit
+    dropped: list[tuple[TableFit, str]] = []
     queue = list(cands)
     k = 0
     while queue and k < 8 * len(cands) + 32:
@@ -327,8 +394,23 @@ def detect_layout(orthos: Any, module: Any, layout: Any, settings: Any = None, p
         if fit.confidence < float(cfg["min_confidence"]) or fit.misfit > float(cfg["max_misfit"]):
             log.info("table candidate at (%.1f, %.1f) dropped: confidence %.2f, misfit %.2f", *cand.centre,
                      fit.confidence, fit.misfit)
+            dropped.append((fit, "confidence" if fit.confidence < float(cfg["min_confidence"]) else "misfit"))
             continue
         fits.append(fit)
+        fitted.append(cand)
+    # a table turned against the plant's direction is fitted again along it; the turned fit
+    # is kept only when it is not more sure of itself
+    tol = float(cfg["plant_axis_tol_deg"])
+    axis_deg = plant_axis_deg(fits, tol)
+    for i, (cand, fit) in enumerate(zip(fitted, fits)):
+        if axis_deg is None or abs((_axis_deg(fit) - axis_deg + 90.0) % 180.0 - 90.0) <= tol:
+            continue
+        again = fit_table(orthos, _turned_to(cand, fit, axis_deg), module, layout, cfg, fixed_axis=True)
+        if again is not None and again.rows * again.cols >= int(cfg["min_table_modules"]) \
+                and again.confidence >= fit.confidence and again.misfit <= float(cfg["max_misfit"]):
+            log.info("table at (%.1f, %.1f) turned %.1f deg off the plant's %.1f deg: fitted along the plant",
+                     *cand.centre, _axis_deg(fit) - axis_deg, axis_deg)
+            fits[i] = again
     kept = _combine(fits, cfg)
     if not kept:
         raise LayoutError(f"{orthos.tiles[0].path}: no table of modules found in the ortho "
@@ -353,12 +435,15 @@ def detect_layout(orthos: Any, module: Any, layout: Any, settings: Any = None, p
         outline = np.array([f.origin, f.origin + f.length_m * f.axis,
                             f.origin + f.length_m * f.axis + f.depth_m * f.across, f.origin + f.depth_m * f.across])
         tables.append({"table_id": table_id, "rows": f.rows, "cols": f.cols, "orientation": f.orientation,
-                       "confidence": round(f.confidence, 3), "misfit": round(f.misfit, 3),
+                       "confidence": round(f.confidence, 3),
+                       "status": "check" if f.confidence < float(cfg["check_confidence"]) else "ok",
+                       "misfit": round(f.misfit, 3),
                        "angle_deg": round(math.degrees(math.atan2(f.axis[1], f.axis[0])), 4),
                        "module_along_m": round(f.module_s_m, 4), "module_across_m": round(f.module_w_m, 4),
                        "contrast_k": round(f.contrast_k, 2), "cut": ",".join(
                            n for n, c in zip(("start", "end", "upper", "lower"), f.cut) if c) or None,
                        "geometry": polygons(outline)})
     mod, tab = _frames(rows, tables, orthos.crs)
-    log.info("detected %d tables, %d modules", len(tab), len(mod))
-    return DetectedLayout(modules=mod, tables=tab, fits=kept)
+    drop = _dropped(dropped, kept, float(cfg["overlap_share"]), orthos.crs)
+    log.info("detected %d tables, %d modules; %d lattices dropped", len(tab), len(mod), len(drop))
+    return DetectedLayout(modules=mod, tables=tab, fits=kept, dropped=drop)

@@ -134,7 +134,8 @@ def _size(extent: float, n: int, datasheet: float, gap: float, settings: dict) -
     return measured
 
 
-def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, settings: dict) -> TableFit | None:
+def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, settings: dict,
+              fixed_axis: bool = False) -> TableFit | None:
     """Refine a table candidate and fit its module lattice (see the module docstring).
 
     The pixels are read around the candidate; a candidate shorter than its table (the mosaic
@@ -155,6 +156,9 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
         ``orientation`` (used on a tie), ``gap_m`` [m], ``tilt_deg``, ``azimuth_deg`` [deg].
     settings : mapping
         The ``[layout_detect]`` section.
+    fixed_axis : bool, optional
+        Keep the candidate's axis (the plant's, :func:`.detect.detect_layout`) instead of
+        measuring the table's angle from its long edges.
 
     Returns
     -------
@@ -163,7 +167,7 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
     """
     from dataclasses import replace
 
-    fit, ends = _fit_window(orthos, cand, module, layout, settings)
+    fit, ends = _fit_window(orthos, cand, module, layout, settings, fixed_axis=fixed_axis)
     across_reach = None
     min_conf = float(settings["min_confidence"])
     if fit is None or fit.confidence < min_conf:
@@ -174,7 +178,7 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
             # across, the comb stays near the strip (a quarter of a module width either side:
             # the region beside it has a comb of its own)
             across_reach = 0.25 * module.width_m
-            fit_s, ends_s = _fit_window(orthos, strip, module, layout, settings, across_reach)
+            fit_s, ends_s = _fit_window(orthos, strip, module, layout, settings, across_reach, fixed_axis)
             if fit_s is not None and (fit is None or fit_s.confidence > fit.confidence):
                 fit, ends, cand = fit_s, ends_s, strip
     tol = float(settings["level_tol_k"])
@@ -189,7 +193,7 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
         centre = fit.origin + 0.5 * fit.length_m * fit.axis + 0.5 * fit.depth_m * fit.across
         grown = replace(cand, centre=centre + 0.5 * (hi - lo) * fit.axis, axis=fit.axis,
                         length_m=fit.length_m + lo + hi, depth_m=fit.depth_m)
-        fit2, ends2 = _fit_window(orthos, grown, module, layout, settings, across_reach)
+        fit2, ends2 = _fit_window(orthos, grown, module, layout, settings, across_reach, fixed_axis)
         if fit2 is None or fit2.cols <= fit.cols or fit2.rows != fit.rows or fit2.confidence < fit.confidence - drop:
             break
         fit, ends = fit2, ends2
@@ -197,7 +201,8 @@ def fit_table(orthos: Any, cand: TableCandidate, module: Any, layout: Any, setti
 
 
 def _fit_window(orthos: Any, cand: TableCandidate, module: Any, layout: Any, settings: dict,
-                across_reach_m: float | None = None) -> tuple[TableFit | None, tuple[bool, bool]]:
+                across_reach_m: float | None = None, fixed_axis: bool = False
+                ) -> tuple[TableFit | None, tuple[bool, bool]]:
     """:func:`fit_table` on the pixels around one candidate; with whether glass goes on
     beyond the fitted table's start and end along its axis (the band from ``end_band_m`` to
     ``end_band_pitch`` module pitches beyond the end, over the table's middle rows, within
@@ -292,7 +297,7 @@ def _fit_window(orthos: Any, cand: TableCandidate, module: Any, layout: Any, set
         sm, wm = 0.5 * (s_lo + s_hi), 0.5 * (w_lo + w_hi)
         centre = centre + sm * axis + wm * across
         length, depth = s_hi - s_lo, w_hi - w_lo
-        if slopes:
+        if slopes and not fixed_axis:
             dth = math.atan(float(np.average(slopes, weights=weights)))
             sgn = 1.0 if (axis[0] * across[1] - axis[1] * across[0]) > 0 else -1.0
             ang = math.atan2(axis[1], axis[0]) + sgn * dth
