@@ -385,10 +385,11 @@ def _row_edges(modules: pd.DataFrame, F: Features, cfg: Mapping[str, Any]) -> di
     Each module's edge lines of cells (the line along each long edge, ``v = 0`` and ``v = 1``,
     and the first two lines at each end, ``u = 0`` and ``u = 1``: the narrow end cells of half-cut
     modules may be lost to the edge margin), as the line's median minus the median of all the
-    module's cells [K] (its own shape, no reference); a line with fewer than half its cells
-    measured is left out. Per table row, the median over its classified modules (rows of at least
-    ``[classify] row_edge_min_modules`` of them), compared with the median of the rows at the same
-    position in their tables (``table_row``; all rows when fewer than three share it).
+    module's cells [K] (its own shape, no reference); a line with less than ``[classify]
+    row_edge_min_measured_share`` of its cells measured is left out. Per table row, the median over
+    its classified modules (rows of at least ``[classify] row_edge_min_modules`` of them), compared
+    with the median of the rows at the same position in their tables (``table_row``; all rows when
+    fewer than ``[classify] row_edge_min_rows`` share it).
 
     Every row of a plant sees its edges alike (the same glass, frame and gap); a row whose
     footprints sit a few centimetres across its modules (relief displacement the placement of
@@ -412,8 +413,9 @@ def _row_edges(modules: pd.DataFrame, F: Features, cfg: Mapping[str, Any]) -> di
     names = ("u = 0 end", "u = 0 end, second line", "u = 1 end, second line", "u = 1 end", "v = 0 edge", "v = 1 edge")
     lines = [X[:, 0, :], X[:, 1, :], X[:, A - 2, :], X[:, A - 1, :], X[:, :, 0], X[:, :, C - 1]]
     side = np.full((n, len(lines)), np.nan)
+    min_share = float(cfg["row_edge_min_measured_share"])
     for k, L in enumerate(lines):
-        measured = np.isfinite(L).mean(axis=1) >= 0.5
+        measured = np.isfinite(L).mean(axis=1) >= min_share
         side[:, k] = np.where(measured, nanmedian(L, axis=1) - whole, np.nan)
     keys = row_keys(modules)
     pos = (pd.to_numeric(modules["table_row"], errors="coerce").to_numpy(dtype=float)
@@ -434,9 +436,10 @@ def _row_edges(modules: pd.DataFrame, F: Features, cfg: Mapping[str, Any]) -> di
     where_a = np.asarray(where)
     ids = modules["module_id"].astype(str).to_numpy() if "module_id" in modules else np.arange(n).astype(str)
     best = 0.0
+    min_rows = int(cfg["row_edge_min_rows"])
     for j, mem in enumerate(rows):
         same = (where_a == where_a[j]) if np.isfinite(where_a[j]) else np.zeros(len(rows), bool)
-        ref = nanmedian(meds_a[same], axis=0) if same.sum() >= 3 else nanmedian(meds_a, axis=0)
+        ref = nanmedian(meds_a[same], axis=0) if same.sum() >= min_rows else nanmedian(meds_a, axis=0)
         dev = meds_a[j] - ref
         if not np.isfinite(dev).any():
             continue

@@ -387,6 +387,19 @@ def string_reference_check(evidence: Mapping[str, Any], settings: Mapping[str, A
     return c
 
 
+def _message(title: str, value: float | None, limit: float, unknown: str, nothing: str | None,
+             found: str | None, failed: str) -> str:
+    """The message shape of the checks of what the classification measured about the flight:
+    ``title: unknown`` when ``value`` is None, ``title: nothing`` when nothing was found (``found``
+    None), else ``title: found``, with ``: failed (failed)`` after it when ``value`` exceeds
+    ``limit``."""
+    if value is None:
+        return f"{title}: {unknown}"
+    if found is None:
+        return f"{title}: {nothing}"
+    return f"{title}: {found}" + (f": {failed} (failed)" if value > limit else "")
+
+
 def row_cluster_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> Check:
     """``row_cluster``: -log10 of the chance that the densest stretch of a table row holds as
     many findings of faults of single modules as it does, were they independent from module to
@@ -405,19 +418,17 @@ def row_cluster_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] |
     mods = list(evidence.get("row_cluster_modules") or [])
     k = int(evidence.get("row_cluster_findings") or 0)
     rate = _finite(evidence.get("row_cluster_rate"))
-    if value is None:
-        msg = "row cluster: unknown (no findings measured)"
-    elif not mods:
-        msg = (f"row cluster: findings of single modules do not crowd along any table row "
-               f"(score {value:.2f}; at most {lim:g})")
-    else:
+    found = nothing = None
+    if value is not None and mods:
         where = mods[0] if len(mods) == 1 else f"{mods[0]} .. {mods[-1]}"
-        msg = (f"row cluster: {k} of {len(mods)} modules of one table row ({where}) hold findings of single "
-               f"modules at a flight rate of {100.0 * (rate or 0.0):.1f} %: a chance of 1 in "
-               f"{10 ** min(value, 99.0):,.0f} anywhere on the flight (score {value:.2f}; at most {lim:g})")
-        if value > lim:
-            msg += (": the findings follow an image artefact along the row (a mosaic seam, a reflection); "
-                    "check the ortho there (failed)")
+        found = (f"{k} of {len(mods)} modules of one table row ({where}) hold findings of single modules at a "
+                 f"flight rate of {100.0 * (rate or 0.0):.1f} %: a chance of 1 in {10 ** min(value, 99.0):,.0f} "
+                 f"anywhere on the flight (score {value:.2f}; at most {lim:g})")
+    elif value is not None:
+        nothing = f"findings of single modules do not crowd along any table row (score {value:.2f}; at most {lim:g})"
+    msg = _message("row cluster", value, lim, "unknown (no findings measured)", nothing, found,
+                   "the findings follow an image artefact along the row (a mosaic seam, a reflection); "
+                   "check the ortho there")
     c = _check("row_cluster", value, lim, "max", "", "binomial chance, Bonferroni (pvscan.diagnose.classify)",
                message=msg)
     c.update({"modules": mods, "findings": k, "rate": rate})
@@ -430,14 +441,9 @@ def _unexplained_check(name: str, value: float | None, module: Any, limit: float
     finding takes in, at most ``limit``; the message names the module (``found``, formatted with
     ``module``, ``value`` and ``fields``), says nothing was there (``nothing``) or that the value
     is unknown (``unknown``, passes)."""
-    if value is None:
-        msg = f"{title}: {unknown}"
-    elif module is None:
-        msg = f"{title}: {nothing} (at most {limit:g})"
-    else:
-        msg = f"{title}: " + found.format(module=module, value=value, **fields) + f" (at most {limit:g})"
-        if value > limit:
-            msg += ": a string-level fault may be missed; check that string (failed)"
+    msg = _message(title, value, limit, unknown, f"{nothing} (at most {limit:g})",
+                   None if module is None or value is None else found.format(module=module, value=value, **fields)
+                   + f" (at most {limit:g})", "a string-level fault may be missed; check that string")
     c = _check(name, value, limit, "max", "robust SD", "PID pattern (pvscan.diagnose.classify; calibrated)",
                message=msg)
     c.update({"module": module})
@@ -455,18 +461,16 @@ def row_edge_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] | No
     lim = float(_validity_settings(settings)["max_row_edge_offset_k"])
     value = _finite(evidence.get("row_edge_offset_k"))
     mods = list(evidence.get("row_edge_modules") or [])
-    if value is None:
-        msg = "row edge: unknown (no rows compared)"
-    elif not mods:
-        msg = f"row edge: fewer than two table rows to compare (at most {lim:g} K)"
-    else:
-        msg = (f"row edge: table row {mods[0]} .. {mods[-1]} reads its {evidence.get('row_edge_line')} lines "
-               f"{_finite(evidence.get('row_edge_line_k')) or 0.0:+.2f} K off the module against "
-               f"{_finite(evidence.get('row_edge_reference_k')) or 0.0:+.2f} K on rows like it: "
-               f"{value:.2f} K apart (at most {lim:g} K)")
-        if value > lim:
-            msg += (": the row's footprints sit across its modules (relief, a seam shifting part of a table); "
-                    "its cell patterns are not measured; check the placement there (failed)")
+    found = None
+    if value is not None and mods:
+        found = (f"table row {mods[0]} .. {mods[-1]} reads its {evidence.get('row_edge_line')} lines "
+                 f"{_finite(evidence.get('row_edge_line_k')) or 0.0:+.2f} K off the module against "
+                 f"{_finite(evidence.get('row_edge_reference_k')) or 0.0:+.2f} K on rows like it: "
+                 f"{value:.2f} K apart (at most {lim:g} K)")
+    msg = _message("row edge", value, lim, "unknown (no rows compared)",
+                   f"fewer than two table rows to compare (at most {lim:g} K)", found,
+                   "the row's footprints sit across its modules (relief, a seam shifting part of a table); "
+                   "its cell patterns are not measured; check the placement there")
     c = _check("row_edge", value, lim, "max", "K", "edge lines of table rows (pvscan.diagnose.classify; calibrated)",
                message=msg)
     c.update({"modules": mods})
