@@ -52,7 +52,7 @@ from pvscan.diagnose.patterns import (
     pattern_pid,
     pattern_soiling,
 )
-from pvscan.diagnose.patterns.pid import unexplained_string_pattern
+from pvscan.diagnose.patterns.pid import unexplained_string_pattern, unexplained_tail_evidence
 from pvscan.diagnose.results import ANOMALY_COLUMNS, Diagnosis
 from pvscan.diagnose.severity import assign_severity
 from pvscan.diagnose.thermal import Normalisation, condition_column, local_reference, module_thermal
@@ -318,7 +318,7 @@ def classify(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module
     evidence = _evidence(F, groups)
     evidence.update(_row_clusters(modules, defect_of, F.ok, cfg))
     evidence.update(_row_edges(modules, F, cfg))
-    evidence.update(_unexplained_pid(F, groups, pos, is_string, defect_of, mod_id, cfg))
+    evidence.update(_unexplained_pid(F, groups, pos, is_string, defect_of, mod_id, cfg, pid_runs))
     return Diagnosis(anomalies, module_table, evidence=evidence)
 
 
@@ -453,7 +453,8 @@ def _row_edges(modules: pd.DataFrame, F: Features, cfg: Mapping[str, Any]) -> di
 
 
 def _unexplained_pid(F: Features, groups: np.ndarray, pos: np.ndarray, is_string: bool,
-                     defect: np.ndarray, mod_id: np.ndarray, cfg: Mapping[str, Any]) -> dict[str, Any]:
+                     defect: np.ndarray, mod_id: np.ndarray, cfg: Mapping[str, Any],
+                     pid_runs: list[list[int]] | None = None) -> dict[str, Any]:
     """The strongest PID pattern that no finding explains.
 
     Among classified modules without a finding that could start a PID string (the module at a
@@ -471,6 +472,13 @@ def _unexplained_pid(F: Features, groups: np.ndarray, pos: np.ndarray, is_string
     ``pid_pattern_unexplained_modules``; :func:`pvscan.diagnose.patterns.pid.unexplained_string_pattern`):
     a pattern both references see is the modules' own, not a row's artefact, whatever their
     warmth against a reference a small plant or a shadow may bias.
+
+    And the combined evidence of the edge-ring contrast with the excess over modules outside the
+    string (the evidence a run is extended by, ``(pid_z + w * clip(z_o, -3, 3)) / sqrt(1 + w^2)``,
+    ``w`` = ``[classify] pid_excess_weight``) over modules in no finding past the end of each found
+    PID run, to its string's end (``pid_tail_unexplained_z`` [robust SD], ``pid_tail_unexplained_module``
+    where it starts, over ``pid_tail_unexplained_modules``;
+    :func:`pvscan.diagnose.patterns.pid.unexplained_tail_evidence`): a PID string found only in part.
     """
     out: dict[str, Any] = {"pid_unexplained_z": None, "pid_unexplained_module": None}
     z = F.extra.get("pid_z")
@@ -501,6 +509,13 @@ def _unexplained_pid(F: Features, groups: np.ndarray, pos: np.ndarray, is_string
                                               float(cfg["pid_max_position"]))
         out.update(pid_pattern_unexplained_z=v, pid_pattern_unexplained_module=None if at is None else str(mod_id[at]),
                    pid_pattern_unexplained_modules=m)
+    # PID going on past a found run, below the bars of a run
+    w = float(cfg["pid_excess_weight"])
+    z_ext = (z + w * np.clip(z_o, -3.0, 3.0)) / np.sqrt(1.0 + w * w)
+    v, at, m = unexplained_tail_evidence(z_ext, groups, pos, is_string, F.ok & np.array([d is None for d in defect], bool),
+                                         [list(r) for r in (pid_runs or [])])
+    out.update(pid_tail_unexplained_z=v, pid_tail_unexplained_module=None if at is None else str(mod_id[at]),
+               pid_tail_unexplained_modules=m)
     return out
 
 

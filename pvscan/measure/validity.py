@@ -40,8 +40,8 @@ Check = dict[str, Any]
 
 __all__ = ["Validity", "check_validity", "registration_check", "coverage_check", "plausibility_check",
            "row_geometry", "row_shading_check", "string_reference_check", "unexplained_pid_check",
-           "unexplained_pid_pattern_check", "row_edge_check", "module_spread_check", "evidence_checks",
-           "with_checks"]
+           "unexplained_pid_pattern_check", "unexplained_pid_tail_check", "row_edge_check", "module_spread_check",
+           "evidence_checks", "with_checks"]
 
 logger = logging.getLogger(__name__)
 
@@ -554,11 +554,34 @@ def module_spread_check(evidence: Mapping[str, Any], settings: Mapping[str, Any]
     return c
 
 
+def unexplained_pid_tail_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> Check:
+    """``unexplained_pid_tail``: the combined PID evidence [robust SD] of modules in no finding past
+    the end of a found PID run, to its string's end: the edge-ring contrast and the excess over
+    modules outside the string together, ``sum / sqrt(m)`` over the best ``m`` modules
+    (``pid_tail_unexplained_z``, :func:`pvscan.diagnose.patterns.pid.unexplained_tail_evidence`), at
+    most ``[validity] max_unexplained_pid_tail_z``.
+
+    PID fades along a string from its negative end (common practice), and its last modules lose
+    little enough to sit near the noise one by one: a run found only in part leaves this evidence
+    behind, and the string's loss and extent are then not measured. Unknown (passes) when PID was
+    not looked for.
+    """
+    m = int(evidence.get("pid_tail_unexplained_modules") or 1)
+    return _unexplained_check(
+        "unexplained_pid_tail", _finite(evidence.get("pid_tail_unexplained_z")),
+        evidence.get("pid_tail_unexplained_module"),
+        float(_validity_settings(settings)["max_unexplained_pid_tail_z"]), "unexplained PID tail",
+        "unknown (PID not looked for)", "no module past a PID run found carries the pattern on",
+        "{m} module(s) from {module}, past a PID run found, show the edge-ring pattern and run warm at "
+        "combined z {value:.1f}, but no finding takes them in", m=m)
+
+
 def evidence_checks(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> list[Check]:
     """The checks of what the classification measured about the flight as a whole
     (:attr:`pvscan.diagnose.results.Diagnosis.evidence`): ``string_reference``,
-    ``module_spread``, ``row_cluster``, ``row_edge``, ``unexplained_pid`` and
-    ``unexplained_pid_pattern``. Empty when there is no evidence (no module classified)."""
+    ``module_spread``, ``row_cluster``, ``row_edge``, ``unexplained_pid``,
+    ``unexplained_pid_pattern`` and ``unexplained_pid_tail``. Empty when there is no evidence (no
+    module classified)."""
     if not evidence:
         return []
     checks = [string_reference_check(evidence, settings), module_spread_check(evidence, settings)]
@@ -570,6 +593,8 @@ def evidence_checks(evidence: Mapping[str, Any], settings: Mapping[str, Any] | N
         checks.append(unexplained_pid_check(evidence, settings))
     if "pid_pattern_unexplained_z" in evidence:
         checks.append(unexplained_pid_pattern_check(evidence, settings))
+    if "pid_tail_unexplained_z" in evidence:
+        checks.append(unexplained_pid_tail_check(evidence, settings))
     return checks
 
 

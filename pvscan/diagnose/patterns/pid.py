@@ -20,7 +20,7 @@ import numpy as np
 from pvscan.diagnose.features import Features
 from pvscan.robust import nanmedian, scaled_mad, sorted_quantile
 
-__all__ = ["pid_ring_contrast", "pattern_pid", "unexplained_string_pattern"]
+__all__ = ["pid_ring_contrast", "pattern_pid", "unexplained_string_pattern", "unexplained_tail_evidence"]
 
 
 def _trimmed_mean(x: np.ndarray, cut: float = 0.1) -> np.ndarray:
@@ -312,3 +312,47 @@ def unexplained_string_pattern(z: np.ndarray, z_row: np.ndarray, groups: np.ndar
         if float(ev[j]) > best[0]:
             best = (float(ev[j]), int(sub[0]), j + 1)
     return (max(best[0], 0.0), best[1], best[2])
+
+
+def unexplained_tail_evidence(z_ext: np.ndarray, groups: np.ndarray, pos: np.ndarray, is_string: bool,
+                              free: np.ndarray, runs: list[list[int]]) -> tuple[float, int | None, int]:
+    """The strongest combined PID evidence over modules in no finding past the end of a found PID run.
+
+    ``z_ext``: each module's edge-ring contrast and its excess over modules outside its string
+    combined (the evidence :func:`pattern_pid` extends a run by) [robust SD]. From the module
+    after each found PID run (``runs``, each from its negative end) on along its string (``groups``
+    ordered by ``pos``) to the string's end, over ``m`` consecutive modules that are ``free``
+    (classified, in no finding), the combined evidence ``sum(z_ext) / sqrt(m)`` (the best ``m``,
+    :func:`unexplained_string_pattern`). PID fades along the string (common practice), and where a
+    run stops is uncertain: its last modules lose little enough to sit near the noise one by one.
+    Without strings (``is_string`` false, ``groups`` the table rows) along the row from both ends
+    of the run (a run found along a row may face the wrong way).
+
+    Returns
+    -------
+    (value, module, m)
+        The highest evidence (0 when nothing qualifies, never below 0), the first module of its
+        modules (None when none) and ``m``.
+    """
+    zx = np.asarray(z_ext, dtype=float)
+    best: tuple[float, int | None, int] = (0.0, None, 0)
+    for run in runs:
+        if not run:
+            continue
+        idx = np.flatnonzero(groups == groups[run[0]])
+        order = idx[np.argsort(pos[idx], kind="stable")]
+        if len(run) >= 2 and pos[run[1]] < pos[run[0]]:
+            order = order[::-1]
+        at = np.flatnonzero(np.isin(order, run))
+        if not len(at):
+            continue
+        tails = [order[int(at.max()) + 1:]] + ([] if is_string else [order[:int(at.min())][::-1]])
+        for tail in tails:
+            tg = np.full(len(zx), -1)
+            tg[tail] = 0
+            tpos = np.zeros(len(zx))
+            tpos[tail] = np.arange(len(tail))
+            v, i, m = unexplained_string_pattern(zx, zx, tg, tpos, free, 1.0)
+            if i is not None and v > best[0]:
+                best = (v, i, m)
+    return best
