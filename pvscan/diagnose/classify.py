@@ -512,8 +512,8 @@ def _unexplained_pid(F: Features, groups: np.ndarray, pos: np.ndarray, is_string
     # PID going on past a found run, below the bars of a run
     w = float(cfg["pid_excess_weight"])
     z_ext = (z + w * np.clip(z_o, -3.0, 3.0)) / np.sqrt(1.0 + w * w)
-    v, at, m = unexplained_tail_evidence(z_ext, groups, pos, is_string, F.ok & np.array([d is None for d in defect], bool),
-                                         [list(r) for r in (pid_runs or [])])
+    in_none = F.ok & np.array([d is None for d in defect], bool)
+    v, at, m = unexplained_tail_evidence(z_ext, groups, pos, is_string, in_none, [list(r) for r in (pid_runs or [])])
     out.update(pid_tail_unexplained_z=v, pid_tail_unexplained_module=None if at is None else str(mod_id[at]),
                pid_tail_unexplained_modules=m)
     return out
