@@ -435,12 +435,15 @@ def row_cluster_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] |
     return c
 
 
-def _unexplained_check(name: str, value: float | None, module: Any, limit: float, title: str,
-                       unknown: str, nothing: str, found: str, **fields: Any) -> Check:
+def _unexplained_check(name: str, evidence: Mapping[str, Any], key: str, settings: Mapping[str, Any] | None,
+                       title: str, unknown: str, nothing: str, found: str, **fields: Any) -> Check:
     """The shape every ``unexplained_*`` check shares: a strength [robust SD] of a pattern no
-    finding takes in, at most ``limit``; the message names the module (``found``, formatted with
-    ``module``, ``value`` and ``fields``), says nothing was there (``nothing``) or that the value
-    is unknown (``unknown``, passes)."""
+    finding takes in (the evidence's ``KEY_z``, at its module ``KEY_module``), at most ``[validity]
+    max_NAME_z``; the message names the module (``found``, formatted with ``module``, ``value``
+    and ``fields``), says nothing was there (``nothing``) or that the value is unknown
+    (``unknown``, passes)."""
+    value, module = _finite(evidence.get(f"{key}_z")), evidence.get(f"{key}_module")
+    limit = float(_validity_settings(settings)[f"max_{name}_z"])
     msg = _message(title, value, limit, unknown, f"{nothing} (at most {limit:g})",
                    None if module is None or value is None else found.format(module=module, value=value, **fields)
                    + f" (at most {limit:g})", "a string-level fault may be missed; check that string")
@@ -488,8 +491,7 @@ def unexplained_pid_check(evidence: Mapping[str, Any], settings: Mapping[str, An
     PID was not looked for.
     """
     return _unexplained_check(
-        "unexplained_pid", _finite(evidence.get("pid_unexplained_z")), evidence.get("pid_unexplained_module"),
-        float(_validity_settings(settings)["max_unexplained_pid_z"]), "unexplained PID",
+        "unexplained_pid", evidence, "pid_unexplained", settings, "unexplained PID",
         "unknown (PID not looked for)", "no warm module outside the findings could start a PID string",
         "module {module} could start a PID string, runs warm and shows the edge-ring pattern at z {value:.1f}, "
         "but no finding takes it in")
@@ -511,9 +513,7 @@ def unexplained_pid_pattern_check(evidence: Mapping[str, Any], settings: Mapping
     """
     m = int(evidence.get("pid_pattern_unexplained_modules") or 1)
     return _unexplained_check(
-        "unexplained_pid_pattern", _finite(evidence.get("pid_pattern_unexplained_z")),
-        evidence.get("pid_pattern_unexplained_module"),
-        float(_validity_settings(settings)["max_unexplained_pid_pattern_z"]), "unexplained PID pattern",
+        "unexplained_pid_pattern", evidence, "pid_pattern_unexplained", settings, "unexplained PID pattern",
         "unknown (strings not known)", "no module outside the findings could start a PID string",
         ("module {module} at a string's negative end shows the edge-ring pattern against other rows and its "
          "own row at z {value:.1f}" if m == 1 else
@@ -568,9 +568,7 @@ def unexplained_pid_tail_check(evidence: Mapping[str, Any], settings: Mapping[st
     """
     m = int(evidence.get("pid_tail_unexplained_modules") or 1)
     return _unexplained_check(
-        "unexplained_pid_tail", _finite(evidence.get("pid_tail_unexplained_z")),
-        evidence.get("pid_tail_unexplained_module"),
-        float(_validity_settings(settings)["max_unexplained_pid_tail_z"]), "unexplained PID tail",
+        "unexplained_pid_tail", evidence, "pid_tail_unexplained", settings, "unexplained PID tail",
         "unknown (PID not looked for)", "no module past a PID run found carries the pattern on",
         "{m} module(s) from {module}, past a PID run found, show the edge-ring pattern and run warm at "
         "combined z {value:.1f}, but no finding takes them in", m=m)
