@@ -45,3 +45,30 @@ def test_layout_is_placed_on_its_modules_or_flagged(plant):
     assert err < RIGHT_M or check["passed"] is False, (family, err, reg.message)
     if FLIGHT_SEED == 760000:
         assert reg.status == "ok" and check["passed"] is True and err < RIGHT_M, (family, err, reg.message)
+
+
+def test_screen_of_turned_starts_puts_the_truth_first(plant):
+    """The cheap first look that orders the turned starts (only the first
+    ``retry_turn_max_fits`` are fitted) ranks the start at the true placement ahead of the same
+    start turned by whole retry steps either way (each moves the farthest module half a
+    module's short side: common practice for the reach of the fit, see ``retry_turn_fraction``).
+    The truth is the simulator's (truth_ortho.geojson), which no registration code reads; it is
+    listed last so that order alone cannot put it first."""
+    from pvscan.io.layout import read_layout
+    from pvscan.io.manifest import load_flight
+    from pvscan.io.ortho import open_orthos
+    from pvscan.io.settings import load_pipeline
+    from pvscan.measure.register._blocks import _settings
+    from pvscan.measure.register._pitch import _turned
+    from pvscan.measure.register.fit import _screen_turned
+
+    _, d = plant
+    cfg = _settings(load_pipeline())
+    fl = load_flight(d / "flight.toml")
+    with open_orthos(fl.flight.orthos, fl.ortho) as o:
+        mods = read_layout(fl, o.crs)
+        truth = truth_placement(d, mods)
+        turned = _turned(mods, [truth], cfg)[:4]  # one and two steps either way
+        assert len(turned) == 4
+        order = _screen_turned(o, mods, turned + [truth], cfg)
+    assert order[0] == truth, [(p.theta_deg, truth.theta_deg) for p in order]

@@ -111,8 +111,9 @@ def _turned(modules: gpd.GeoDataFrame, starts: list[Placement], cfg: Mapping[str
     return out
 
 
-def _distinct(proposals: list[Placement], bounds: Any, tol_m: float = 0.02) -> list[Placement]:
-    """Proposals less any that moves no footprint more than ``tol_m`` from an earlier one."""
+def _distinct(proposals: list[Placement], bounds: Any, tol_m: float) -> list[Placement]:
+    """Proposals less any that moves no footprint more than ``tol_m`` from an earlier one [m]
+    (``[register] distinct_tol_m``)."""
     out: list[Placement] = []
     for p in proposals:
         if all(_compose(p, _inverse(q)).displacement_max(bounds) > tol_m for q in out):

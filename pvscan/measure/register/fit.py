@@ -220,7 +220,8 @@ def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], su
         if usable and move >= float(cfg["min_shift_m"]) and (q_c is None or q["evidence"] < q_c["evidence"]):
             chosen, q_c = pl, q
 
-    fitted = _distinct(proposals, bounds)
+    tol = float(cfg["distinct_tol_m"])
+    fitted = _distinct(proposals, bounds, tol)
     for cand in fitted:
         consider(cand)
     if refine and chosen is None and not q_id["ok"]:
@@ -243,8 +244,11 @@ def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], su
         # a layout turned on a long site: a proposal's rotation off by a degree puts the far
         # modules beyond the fit's reach; tried again from each proposal turned by steps, the
         # nearest turns first, until one puts the footprints on glass
-        for alt in (_turned(modules, _distinct([_placement_of(q0, centre) for q0 in first], bounds), cfg)
-                    if chosen is None else []):
+        # (each fit costs seconds on a large site: the turned starts are screened cheaply first
+        # and at most retry_turn_max_fits of them, the most promising first, are fitted)
+        turned = (_turned(modules, _distinct([_placement_of(q0, centre) for q0 in first], bounds, tol), cfg)
+                  if chosen is None else [])
+        for alt in _screen_turned(orthos, modules, turned, cfg)[:int(cfg["retry_turn_max_fits"])]:
             consider(alt)
             if chosen is not None:
                 break
@@ -459,6 +463,26 @@ def _fit_at(orthos: Any, modules: gpd.GeoDataFrame, start: Placement, cfg: Mappi
             break
         pl = _compose(pl, inner)
     return _compose(pl, inner), sample, inner, e
+
+
+def _screen_turned(orthos: Any, modules: gpd.GeoDataFrame, starts: list[Placement],
+                   cfg: Mapping[str, Any]) -> list[Placement]:
+    """``starts`` ordered by a cheap first look, the most promising first (ties: given order).
+
+    Each start is read on the decimated grid of the coarse fit, moved by translation only
+    (first inset, no re-read) and scored by its module evidence: a turn near the truth puts
+    the far modules' cores on glass, a wrong one half a module off. Fitting a start in full
+    costs tens of evidence evaluations on several reads; this look costs one read."""
+    if len(starts) < 2:
+        return list(starts)
+    red = _reduce_for(orthos, cfg)
+    sub = {**cfg, "evidence_inset": float(cfg["evidence_insets"][0])}
+    scores = []
+    for p in starts:
+        inner, e = refine_placement(_sample_at(orthos, modules, p, cfg, reduce=red), Placement(cx=p.cx, cy=p.cy),
+                                    sub, rotate=False, scale=False)
+        scores.append(e if math.isfinite(e) else float("inf"))
+    return [starts[i] for i in sorted(range(len(starts)), key=lambda i: (scores[i], i))]
 
 
 def _fit_proposal(orthos: Any, modules: gpd.GeoDataFrame, cand: Placement,
