@@ -59,8 +59,8 @@ def test_screen_of_turned_starts_puts_the_truth_first(plant):
     from pvscan.io.ortho import open_orthos
     from pvscan.io.settings import load_pipeline
     from pvscan.measure.register._blocks import _settings
-    from pvscan.measure.register._pitch import _turned
-    from pvscan.measure.register.fit import _screen_turned
+    from pvscan.measure.register._pitch import _screen_turned, _turned
+    from pvscan.measure.register.fit import _reduce_for, _sample_at
 
     _, d = plant
     cfg = _settings(load_pipeline())
@@ -70,5 +70,6 @@ def test_screen_of_turned_starts_puts_the_truth_first(plant):
         truth = truth_placement(d, mods)
         turned = _turned(mods, [truth], cfg)[:4]  # one and two steps either way
         assert len(turned) == 4
-        order = _screen_turned(o, mods, turned + [truth], cfg)
+        red = _reduce_for(o, cfg)
+        order = _screen_turned(turned + [truth], cfg, lambda p: _sample_at(o, mods, p, cfg, reduce=red))
     assert order[0] == truth, [(p.theta_deg, truth.theta_deg) for p in order]

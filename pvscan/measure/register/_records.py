@@ -3,6 +3,7 @@ from __future__ import annotations
 
 import logging
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -115,6 +116,7 @@ class Registration:
     evidence: dict = field(default_factory=dict)
     status: str = ""
     local: Any = None
+    local_rows: Any = None
 
     def shift_at(self, x: Any, y: Any) -> tuple[np.ndarray, np.ndarray]:
         """Applied shift at map points (x, y) [m] (zeros when nothing was applied)."""
@@ -146,9 +148,28 @@ class Registration:
             "evidence": self.evidence,
             "local": self.local.summary() if self.local is not None else None,
             "tables": self.local.table_records() if self.local is not None else [],
+            "local_rows": self.local_rows.summary() if self.local_rows is not None else None,
+            "rows": self.local_rows.table_records() if self.local_rows is not None else [],
         }
 
 
 def _r(v: Any, nd: int) -> float | None:
     v = float(v)
     return None if not math.isfinite(v) else round(v, nd)
+
+
+def _num(v: Any) -> float:
+    try:
+        f = float(v)
+    except (TypeError, ValueError):
+        return float("inf")
+    return f if math.isfinite(f) else float("inf")
+
+
+def _moved_message(p: Any, how: str, q_id: Mapping[str, Any], q_c: Mapping[str, Any], lim: float) -> str:
+    """The registration message of a moved placement: shift [m], rotation [deg], scale, ``how``
+    it was found, and the module evidence as drawn and as placed."""
+    return (f"layout moved by ({p.tx:+.3f}, {p.ty:+.3f}) m, rotated {p.theta_deg:+.3f} deg, "
+            f"scaled {p.scale:.5f}{how}: module evidence {q_id['evidence']:.3f} -> {q_c['evidence']:.3f} "
+            f"(probe ratios {q_c['ratio_u']:.2f}, {q_c['ratio_v']:.2f}; limit {lim:g}; footprints at their own "
+            f"minimum {_num(q_c.get('minimum_share_u')):.0%}, {_num(q_c.get('minimum_share_v')):.0%})")

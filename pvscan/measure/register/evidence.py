@@ -70,6 +70,8 @@ class Placement:
         Centre of rotation and scale (the layout's centre) [m].
     tables : tuple of (table_id, dx, dy)
         Translations of single tables after the similarity (local refinement) [m].
+    rows : tuple of (table_id, table_row, dx, dy)
+        Translations of single rows of tables after the tables' [m].
     """
 
     tx: float = 0.0
@@ -79,6 +81,7 @@ class Placement:
     cx: float = 0.0
     cy: float = 0.0
     tables: tuple = ()
+    rows: tuple = ()
 
     @property
     def matrix(self) -> np.ndarray:
@@ -109,7 +112,7 @@ class Placement:
 
     def is_identity(self) -> bool:
         return (self.tx == 0.0 and self.ty == 0.0 and self.theta_deg == 0.0 and self.scale == 1.0
-                and not self.tables)
+                and not self.tables and not self.rows)
 
     def shift_model(self) -> tuple[float, float, float, float, float, float]:
         """The shift field ``(tx, ty, a, b, x0, y0)`` of :class:`Registration` (shift at

@@ -36,8 +36,8 @@ from pvscan.io.layout.frames import FRAME_COLUMNS
 from pvscan.measure._memory import release_freed_memory
 from pvscan.measure.register._blocks import _settings
 from pvscan.measure.register._chunks import shared_chunks
-from pvscan.measure.register._pitch import _distinct, _pitches, _placement_of, _row_pitch, _turned
-from pvscan.measure.register._records import Registration
+from pvscan.measure.register._pitch import _distinct, _pitches, _placement_of, _row_pitch, _screen_turned, _turned
+from pvscan.measure.register._records import Registration, _moved_message, _num
 from pvscan.measure.register.ends import judge_ends
 from pvscan.measure.register.estimate import estimate_shift
 from pvscan.measure.register.evidence import (
@@ -49,7 +49,7 @@ from pvscan.measure.register.evidence import (
     refine_placement,
     sample_modules,
 )
-from pvscan.measure.register.local import refine_tables, table_offsets
+from pvscan.measure.register.local import refine_rows, refine_tables, row_offsets, table_offsets
 
 if TYPE_CHECKING:  # pragma: no cover
     import geopandas as gpd
@@ -90,7 +90,7 @@ def apply_placement(modules: gpd.GeoDataFrame, placement: Placement | None) -> g
     geoms = np.asarray(out.geometry.values, dtype=object)
     coords, idx = shapely.get_coordinates(geoms, return_index=True)
     x, y = placement.apply(coords[:, 0], coords[:, 1])
-    local = table_offsets(out, {t: (dx, dy) for t, dx, dy in placement.tables})
+    local = table_offsets(out, {t: (dx, dy) for t, dx, dy in placement.tables}) + row_offsets(out, placement.rows)
     moved = shapely.set_coordinates(geoms.copy(), np.column_stack([x + local[idx, 0], y + local[idx, 1]]))
     out[out.geometry.name] = geopandas.GeoSeries(moved, index=out.index, crs=modules.crs)
     if "fx0" in out.columns:
@@ -248,7 +248,9 @@ def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], su
         # and at most retry_turn_max_fits of them, the most promising first, are fitted)
         turned = (_turned(modules, _distinct([_placement_of(q0, centre) for q0 in first], bounds, tol), cfg)
                   if chosen is None else [])
-        for alt in _screen_turned(orthos, modules, turned, cfg)[:int(cfg["retry_turn_max_fits"])]:
+        red = _reduce_for(orthos, cfg)
+        for alt in _screen_turned(turned, cfg, lambda p: _sample_at(orthos, modules, p, cfg, reduce=red))[
+                :int(cfg["retry_turn_max_fits"])]:
             consider(alt)
             if chosen is not None:
                 break
@@ -420,17 +422,27 @@ def _refine_locally(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, c
     base = reg.placement if (reg.applied and reg.placement is not None) else ident
     lf = refine_tables(orthos, apply_placement(modules, base), cfg)
     reg.local = lf
-    if not lf.applied:
+    if lf.applied:
+        base = Placement(base.tx, base.ty, base.theta_deg, base.scale, base.cx, base.cy,
+                         tables=tuple((str(k), float(v[0]), float(v[1])) for k, v in lf.shifts.items()))
+        reg.message += f"; {lf.message}"
+    if cfg["local_rows_enabled"]:
+        # then each row of a table, from where its table now sits
+        lr = refine_rows(orthos, apply_placement(modules, base), cfg)
+        reg.local_rows = lr
+        if lr.applied:
+            base = replace(base, rows=tuple((t["table_id"], t["table_row"], t["dx_m"], t["dy_m"])
+                                            for t in lr.table_records()))
+            reg.message += f"; {lr.message}"
+    if not (lf.applied or (reg.local_rows is not None and reg.local_rows.applied)):
         return
-    reg.placement = Placement(base.tx, base.ty, base.theta_deg, base.scale, base.cx, base.cy,
-                              tables=tuple((str(k), float(v[0]), float(v[1])) for k, v in lf.shifts.items()))
+    reg.placement = base
     if not reg.applied:
-        # the global placement is the layout as drawn; only tables move
+        # the global placement is the layout as drawn; only tables (rows) move
         reg.applied = True
         reg.model = reg.placement.shift_model()
         reg.follow_drift = True
         reg.shift_m = (0.0, 0.0)
-    reg.message += f"; {lf.message}"
 
 
 def _reduce_for(orthos: Any, cfg: Mapping[str, Any]) -> int:
@@ -463,26 +475,6 @@ def _fit_at(orthos: Any, modules: gpd.GeoDataFrame, start: Placement, cfg: Mappi
             break
         pl = _compose(pl, inner)
     return _compose(pl, inner), sample, inner, e
-
-
-def _screen_turned(orthos: Any, modules: gpd.GeoDataFrame, starts: list[Placement],
-                   cfg: Mapping[str, Any]) -> list[Placement]:
-    """``starts`` ordered by a cheap first look, the most promising first (ties: given order).
-
-    Each start is read on the decimated grid of the coarse fit, moved by translation only
-    (first inset, no re-read) and scored by its module evidence: a turn near the truth puts
-    the far modules' cores on glass, a wrong one half a module off. Fitting a start in full
-    costs tens of evidence evaluations on several reads; this look costs one read."""
-    if len(starts) < 2:
-        return list(starts)
-    red = _reduce_for(orthos, cfg)
-    sub = {**cfg, "evidence_inset": float(cfg["evidence_insets"][0])}
-    scores = []
-    for p in starts:
-        inner, e = refine_placement(_sample_at(orthos, modules, p, cfg, reduce=red), Placement(cx=p.cx, cy=p.cy),
-                                    sub, rotate=False, scale=False)
-        scores.append(e if math.isfinite(e) else float("inf"))
-    return [starts[i] for i in sorted(range(len(starts)), key=lambda i: (scores[i], i))]
 
 
 def _fit_proposal(orthos: Any, modules: gpd.GeoDataFrame, cand: Placement,
@@ -518,23 +510,6 @@ def _fit_proposal(orthos: Any, modules: gpd.GeoDataFrame, cand: Placement,
             "evidence_step_m": step / 2.0}
     inner, _ = refine_placement(sample, inner, fine, rotate=rot, scale=sca)
     return _compose(base, inner), sample, inner
-
-
-def _num(v: Any) -> float:
-    try:
-        f = float(v)
-    except (TypeError, ValueError):
-        return float("inf")
-    return f if math.isfinite(f) else float("inf")
-
-
-def _moved_message(p: Placement, how: str, q_id: Mapping[str, Any], q_c: Mapping[str, Any], lim: float) -> str:
-    """The registration message of a moved placement: shift [m], rotation [deg], scale, ``how``
-    it was found, and the module evidence as drawn and as placed."""
-    return (f"layout moved by ({p.tx:+.3f}, {p.ty:+.3f}) m, rotated {p.theta_deg:+.3f} deg, "
-            f"scaled {p.scale:.5f}{how}: module evidence {q_id['evidence']:.3f} -> {q_c['evidence']:.3f} "
-            f"(probe ratios {q_c['ratio_u']:.2f}, {q_c['ratio_v']:.2f}; limit {lim:g}; footprints at their own "
-            f"minimum {_num(q_c.get('minimum_share_u')):.0%}, {_num(q_c.get('minimum_share_v')):.0%})")
 
 
 def _use_placement(reg: Registration, p: Placement, *, residuals: bool = True) -> None:

@@ -21,6 +21,13 @@ similarity puts it. :func:`refine_tables` measures, for each table, the translat
 The result says how many tables were refined and rejected, the corrections' root mean
 square and largest length (the local residuals of the global fit) and the evidence before
 and after.
+
+:func:`refine_rows` does the same one level down, after the tables: each row of modules of a
+table (``table_row``) gets its own translation within ``local_row_radius_m``, held by the
+nearest rows (of its own table and of the tables around it) under the same gates. Relief
+displaces one row of a raised table against the other in an ortho built on a surface below
+the glass (the upper row of a tilted table stands higher); one translation per table cannot
+follow that.
 """
 from __future__ import annotations
 
@@ -43,7 +50,10 @@ from pvscan.measure.register.evidence import (
     sample_modules,
 )
 
-__all__ = ["LocalFit", "refine_tables", "table_offsets"]
+__all__ = ["LocalFit", "refine_tables", "refine_rows", "table_offsets", "row_offsets"]
+
+#: Separator of a row's key ``table_id`` + SEP + ``table_row`` (a character no id holds).
+_SEP = "\x1f"
 
 
 @dataclass
@@ -71,16 +81,19 @@ class LocalFit:
     evidence_after: float = float("nan")
     applied: bool = False
     message: str = ""
+    what: str = "table"
 
     def summary(self) -> dict:
-        """Plain-JSON record: counts, residuals, evidence, message."""
+        """Plain-JSON record: counts, residuals, evidence, message (``tables_*`` keys, or
+        ``rows_*`` for the rows of :func:`refine_rows`)."""
         d = np.array([math.hypot(*v) for v in self.shifts.values()]) if self.shifts else np.zeros(0)
+        w = self.what
         return {
             "applied": bool(self.applied),
-            "tables_measured": len(self.tables),
-            "tables_refined": len(self.shifts) if self.applied else 0,
-            "tables_from_neighbours": int(sum(t["status"] == "neighbours" for t in self.tables)) if self.applied else 0,
-            "tables_rejected": int(sum(t["status"] == "rejected" for t in self.tables)),
+            f"{w}s_measured": len(self.tables),
+            f"{w}s_refined": len(self.shifts) if self.applied else 0,
+            f"{w}s_from_neighbours": int(sum(t["status"] == "neighbours" for t in self.tables)) if self.applied else 0,
+            f"{w}s_rejected": int(sum(t["status"] == "rejected" for t in self.tables)),
             "residual_rms_m": round(float(np.sqrt(np.mean(d ** 2))), 4) if len(d) and self.applied else 0.0,
             "residual_max_m": round(float(d.max()), 4) if len(d) and self.applied else 0.0,
             "evidence_before": _r(self.evidence_before),
@@ -89,11 +102,18 @@ class LocalFit:
         }
 
     def table_records(self) -> list[dict]:
-        """The applied corrections as ``{table_id, dx_m, dy_m}`` (the report draws them)."""
+        """The applied corrections as ``{table_id, dx_m, dy_m}`` (the report draws them), with
+        ``table_row`` for rows."""
         if not self.applied:
             return []
-        return [{"table_id": str(k), "dx_m": round(float(v[0]), 4), "dy_m": round(float(v[1]), 4)}
-                for k, v in self.shifts.items()]
+        out = []
+        for k, v in self.shifts.items():
+            rec: dict[str, Any] = {"table_id": str(k)}
+            if self.what == "row":
+                t, r = str(k).split(_SEP, 1)
+                rec = {"table_id": t, "table_row": int(r) if r.lstrip("-").isdigit() else r}
+            out.append({**rec, "dx_m": round(float(v[0]), 4), "dy_m": round(float(v[1]), 4)})
+        return out
 
 
 def _r(v: float) -> float | None:
@@ -124,9 +144,10 @@ def _groups(keys: np.ndarray) -> dict[str, np.ndarray]:
     return {str(keys[f]): runs[i] for i, f in sorted(enumerate(firsts), key=lambda t: t[1])}
 
 
-def _per_table(modules: gpd.GeoDataFrame, n: int) -> np.ndarray:
-    """Rows of up to ``n`` modules of every table, spread along it (deterministic)."""
-    tid = modules["table_id"].astype(str).to_numpy()
+def _per_table(modules: gpd.GeoDataFrame, n: int, keys: np.ndarray | None = None) -> np.ndarray:
+    """Rows of up to ``n`` modules of every table (or of every group of ``keys``), spread
+    along it (deterministic)."""
+    tid = modules["table_id"].astype(str).to_numpy() if keys is None else keys
     order = np.lexsort((modules["table_col"].to_numpy() if "table_col" in modules.columns else np.zeros(len(tid)),
                         modules["table_row"].to_numpy() if "table_row" in modules.columns else np.zeros(len(tid)),
                         tid))
@@ -159,6 +180,25 @@ def table_offsets(modules: gpd.GeoDataFrame, shifts: Mapping[Any, Any]) -> np.nd
     return out
 
 
+def row_keys(modules: gpd.GeoDataFrame) -> np.ndarray:
+    """The key of each module's table row: ``table_id`` and ``table_row`` joined."""
+    return np.char.add(np.char.add(modules["table_id"].astype(str).to_numpy().astype(str), _SEP),
+                       modules["table_row"].astype(str).to_numpy().astype(str)).astype(object)
+
+
+def row_offsets(modules: gpd.GeoDataFrame, rows: Any) -> np.ndarray:
+    """(n, 2) per-module translations of ``rows`` (``(table_id, table_row, dx, dy)``) [m]."""
+    if not rows or not {"table_id", "table_row"} <= set(modules.columns):
+        return np.zeros((len(modules), 2))
+    shifts = {f"{t}{_SEP}{r}": (dx, dy) for t, r, dx, dy in rows}
+    out = np.zeros((len(modules), 2))
+    keys = row_keys(modules)
+    hit = np.array([k in shifts for k in keys], dtype=bool) if len(keys) else np.zeros(0, bool)
+    if hit.any():
+        out[hit] = [shifts[k] for k in keys[hit]]
+    return out
+
+
 def refine_tables(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any]) -> LocalFit:
     """Per-table translations of placed ``modules`` (see the module docstring).
 
@@ -173,13 +213,33 @@ def refine_tables(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any]
     """
     if "table_id" not in modules.columns or len(modules) == 0:
         return LocalFit(message="no table ids: no local refinement")
-    radius = float(cfg["local_radius_m"])
-    rows = _per_table(modules, int(cfg["local_modules_per_table"]))
+    return _refine_groups(orthos, modules, cfg, None, float(cfg["local_radius_m"]),
+                          int(cfg["local_modules_per_table"]), float(cfg["local_min_m"]), "table")
+
+
+def refine_rows(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any]) -> LocalFit:
+    """Per-row translations (each ``table_row`` of each table) of placed ``modules``, within
+    ``local_row_radius_m``, under the gates of :func:`refine_tables` (see the module
+    docstring). ``modules`` are placed with their table corrections already."""
+    if not {"table_id", "table_row"} <= set(modules.columns) or len(modules) == 0:
+        return LocalFit(message="no table rows: no row refinement", what="row")
+    keys = row_keys(modules)
+    if len(np.unique(keys)) == len(np.unique(modules["table_id"].astype(str).to_numpy())):
+        return LocalFit(message="one row per table: no row refinement", what="row")
+    return _refine_groups(orthos, modules, cfg, keys, float(cfg["local_row_radius_m"]),
+                          int(cfg["local_modules_per_row"]), float(cfg["local_row_min_m"]), "row")
+
+
+def _refine_groups(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], keys: np.ndarray | None,
+                   radius: float, per_group: int, min_m: float, what: str) -> LocalFit:
+    """One translation per table (``keys`` None) or per group of ``keys`` (see the module
+    docstring)."""
+    rows = _per_table(modules, per_group, keys)
     sub_mods = modules.iloc[rows]
     sample = sample_modules(orthos, sub_mods, n=len(sub_mods), margin_m=radius + float(cfg["evidence_band_m"]) + 0.05,
                             reduce=1, seed=0)
     if len(sample) == 0:
-        return LocalFit(message="no table could be sampled: no local refinement")
+        return LocalFit(message=f"no {what} could be sampled: no local refinement", what=what)
     b = modules.total_bounds
     ident = Placement(cx=float((b[0] + b[2]) / 2.0), cy=float((b[1] + b[3]) / 2.0))
     # the plain spread inside nearly whole footprints: its minimum is where the modules are
@@ -187,7 +247,8 @@ def refine_tables(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any]
     inset = float(cfg["evidence_fine_inset"])
     sub_cfg = {**cfg, "evidence_inset": inset, "evidence_band_m": None, "evidence_step_m": float(cfg["local_step_m"]),
                "max_shift_m": radius}
-    tables = sample.table.astype(str)
+    # the group of each sampled module (sample.index: positions in sub_mods)
+    tables = sample.table.astype(str) if keys is None else keys[rows][sample.index].astype(str)
     # the sampled modules of each table (positions ascending), tables in order of appearance;
     # each table's pixels are taken when needed, not all copied at once
     groups = _groups(tables)
@@ -202,7 +263,6 @@ def refine_tables(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any]
         recs.append({"table_id": t, "dx_m": float(p.tx), "dy_m": float(p.ty), "evidence_before": e0,
                      "evidence_after": e1, "x": float(np.mean(cx[sel])), "y": float(np.mean(cy[sel]))})
     gate = float(cfg["local_gate"])
-    min_m = float(cfg["local_min_m"])
     for r in recs:
         better = math.isfinite(r["evidence_after"]) and r["evidence_after"] < (1.0 - gate) * r["evidence_before"]
         r["status"] = "refined" if (better and math.hypot(r["dx_m"], r["dy_m"]) >= min_m) else "kept"
@@ -242,12 +302,12 @@ def refine_tables(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any]
     n_ref = len(shifts)
     n_rej = sum(r["status"] == "rejected" for r in recs)
     if applied:
-        msg = (f"{n_ref} of {len(recs)} tables refined locally ({n_rej} rejected by their neighbours): "
+        msg = (f"{n_ref} of {len(recs)} {what}s refined locally ({n_rej} rejected by their neighbours): "
                f"evidence {e_before:.3f} -> {e_after:.3f}")
     elif shifts:
-        msg = (f"local refinement of {n_ref} tables not used: evidence {e_before:.3f} -> {e_after:.3f} "
+        msg = (f"local refinement of {n_ref} {what}s not used: evidence {e_before:.3f} -> {e_after:.3f} "
                f"(needs {site_gate:.0%} lower)")
     else:
-        msg = f"no table is better placed by a local correction ({n_rej} rejected by their neighbours)"
+        msg = f"no {what} is better placed by a local correction ({n_rej} rejected by their neighbours)"
     return LocalFit(shifts=shifts if applied else {}, tables=out_recs, evidence_before=e_before,
-                    evidence_after=e_after, applied=applied, message=msg)
+                    evidence_after=e_after, applied=applied, message=msg, what=what)
