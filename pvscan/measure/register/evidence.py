@@ -68,10 +68,9 @@ class Placement:
         Scale [-] (1 = none).
     cx, cy : float
         Centre of rotation and scale (the layout's centre) [m].
-    tables : tuple of (table_id, dx, dy)
-        Translations of single tables after the similarity (local refinement) [m].
-    rows : tuple of (table_id, table_row, dx, dy)
-        Translations of single rows of tables after the tables' [m].
+    tables, rows : tuple
+        Translations ``(table_id, dx, dy)`` of single tables after the similarity, then
+        ``(table_id, table_row, dx, dy)`` of single rows of tables (local refinement) [m].
     """
 
     tx: float = 0.0
