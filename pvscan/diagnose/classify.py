@@ -52,7 +52,12 @@ from pvscan.diagnose.patterns import (
     pattern_pid,
     pattern_soiling,
 )
-from pvscan.diagnose.patterns.pid import unexplained_string_pattern, unexplained_tail_evidence
+from pvscan.diagnose.patterns.pid import (
+    excess_z,
+    extension_evidence,
+    unexplained_string_pattern,
+    unexplained_tail_evidence,
+)
 from pvscan.diagnose.results import ANOMALY_COLUMNS, Diagnosis
 from pvscan.diagnose.severity import assign_severity
 from pvscan.diagnose.thermal import Normalisation, condition_column, local_reference, module_thermal
@@ -474,8 +479,8 @@ def _unexplained_pid(F: Features, groups: np.ndarray, pos: np.ndarray, is_string
     warmth against a reference a small plant or a shadow may bias.
 
     And the combined evidence of the edge-ring contrast with the excess over modules outside the
-    string (the evidence a run is extended by, ``(pid_z + w * clip(z_o, -3, 3)) / sqrt(1 + w^2)``,
-    ``w`` = ``[classify] pid_excess_weight``) over modules in no finding past the end of each found
+    string (the evidence a run is extended by,
+    :func:`pvscan.diagnose.patterns.pid.extension_evidence`) over modules in no finding past the end of each found
     PID run, to its string's end (``pid_tail_unexplained_z`` [robust SD], ``pid_tail_unexplained_module``
     where it starts, over ``pid_tail_unexplained_modules``;
     :func:`pvscan.diagnose.patterns.pid.unexplained_tail_evidence`): a PID string found only in part.
@@ -485,7 +490,7 @@ def _unexplained_pid(F: Features, groups: np.ndarray, pos: np.ndarray, is_string
     if z is None:
         return out
     z = np.asarray(z, dtype=float)
-    z_o = np.asarray(F.extra["d_other"], dtype=float) / max(float(F.extra["sig_other"]), 0.05)
+    z_o = excess_z(F)
     free = F.ok & np.array([d is None for d in defect], bool) & (groups >= 0)
     if is_string:
         first = np.zeros(F.n, bool)
@@ -510,8 +515,7 @@ def _unexplained_pid(F: Features, groups: np.ndarray, pos: np.ndarray, is_string
         out.update(pid_pattern_unexplained_z=v, pid_pattern_unexplained_module=None if at is None else str(mod_id[at]),
                    pid_pattern_unexplained_modules=m)
     # PID going on past a found run, below the bars of a run
-    w = float(cfg["pid_excess_weight"])
-    z_ext = (z + w * np.clip(z_o, -3.0, 3.0)) / np.sqrt(1.0 + w * w)
+    z_ext = extension_evidence(z, z_o, cfg)
     in_none = F.ok & np.array([d is None for d in defect], bool)
     v, at, m = unexplained_tail_evidence(z_ext, groups, pos, is_string, in_none, [list(r) for r in (pid_runs or [])])
     out.update(pid_tail_unexplained_z=v, pid_tail_unexplained_module=None if at is None else str(mod_id[at]),

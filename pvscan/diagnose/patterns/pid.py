@@ -20,7 +20,8 @@ import numpy as np
 from pvscan.diagnose.features import Features
 from pvscan.robust import nanmedian, scaled_mad, sorted_quantile
 
-__all__ = ["pid_ring_contrast", "pattern_pid", "unexplained_string_pattern", "unexplained_tail_evidence"]
+__all__ = ["pid_ring_contrast", "pattern_pid", "unexplained_string_pattern", "unexplained_tail_evidence",
+           "extension_evidence", "excess_z"]
 
 
 def _trimmed_mean(x: np.ndarray, cut: float = 0.1) -> np.ndarray:
@@ -116,12 +117,8 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     sig = max(scaled_mad(contrast[healthy]), 0.02)
     z = (contrast - c0) / sig
     F.extra["pid_z"] = z
-    d_o = F.extra["d_other"]
-    # extension: edge-ring contrast and the module's excess over modules outside its string
-    # together (both in robust standard deviations of healthy modules)
-    z_o = d_o / max(float(F.extra.get("sig_other", F.sig_mod)), 0.05)
-    w = float(cfg["pid_excess_weight"])
-    z_ext = (z + w * np.clip(z_o, -3.0, 3.0)) / np.sqrt(1.0 + w * w)
+    z_o = excess_z(F)
+    z_ext = extension_evidence(z, z_o, cfg)
     out: list[list[int]] = []
     usable = F.ok & ~exclude
     z_row = None
@@ -312,6 +309,22 @@ def unexplained_string_pattern(z: np.ndarray, z_row: np.ndarray, groups: np.ndar
         if float(ev[j]) > best[0]:
             best = (float(ev[j]), int(sub[0]), j + 1)
     return (max(best[0], 0.0), best[1], best[2])
+
+
+def excess_z(F: Features) -> np.ndarray:
+    """Each module's excess over modules outside its string, in robust spreads of that excess [-]."""
+    return np.asarray(F.extra["d_other"], dtype=float) / max(float(F.extra.get("sig_other", F.sig_mod)), 0.05)
+
+
+def extension_evidence(z: np.ndarray, z_o: np.ndarray, cfg: Mapping) -> np.ndarray:
+    """The evidence a PID run is extended by [robust SD]: the edge-ring contrast ``z`` and the
+    module's excess over modules outside its string ``z_o`` together,
+    ``(z + w * clip(z_o, -c, c)) / sqrt(1 + w^2)`` with ``w`` = ``[classify] pid_excess_weight`` and
+    ``c`` = ``pid_excess_clip_z`` (one very warm or cool module, a hot spot or a shadow, does not
+    carry a run by its excess alone)."""
+    w = float(cfg["pid_excess_weight"])
+    c = float(cfg["pid_excess_clip_z"])
+    return (np.asarray(z, dtype=float) + w * np.clip(z_o, -c, c)) / np.sqrt(1.0 + w * w)
 
 
 def unexplained_tail_evidence(z_ext: np.ndarray, groups: np.ndarray, pos: np.ndarray, is_string: bool,
