@@ -8,7 +8,8 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from pvscan.measure.register.evidence import Placement, _compose, _inverse, refine_placement
+from pvscan.measure.register.evidence import Placement, _compose, _inverse
+from pvscan.measure.register.search import refine_placement
 
 if TYPE_CHECKING:  # pragma: no cover
     import geopandas as gpd

@@ -167,13 +167,23 @@ def _average_ranks(a: np.ndarray) -> np.ndarray:
     srt = np.take_along_axis(a, order, axis=1)
     head = np.ones((k, p), bool)
     head[:, 1:] = srt[:, 1:] != srt[:, :-1]
-    tail = np.ones((k, p), bool)
-    tail[:, :-1] = head[:, 1:]
-    at = np.arange(p)
-    lo = np.maximum.accumulate(np.where(head, at, 0), axis=1)
-    hi = np.minimum.accumulate(np.where(tail, at, p)[:, ::-1], axis=1)[:, ::-1]
     out = np.empty((k, p))
-    np.put_along_axis(out, order, 0.5 * (lo + hi + 2), axis=1)
+    # rows without ties (the usual case for interpolated pixels): the rank is the position
+    free = np.asarray(head.all(axis=1), bool)
+    if free.any():
+        np.put_along_axis(out, np.where(free[:, None], order, 0) if not free.all() else order,
+                          np.broadcast_to(np.arange(1.0, p + 1.0), (k, p)), axis=1)
+    tied = np.nonzero(~free)[0]
+    if len(tied):
+        h = head[tied]
+        tail = np.ones((len(tied), p), bool)
+        tail[:, :-1] = h[:, 1:]
+        at = np.arange(p)
+        lo = np.maximum.accumulate(np.where(h, at, 0), axis=1)
+        hi = np.minimum.accumulate(np.where(tail, at, p)[:, ::-1], axis=1)[:, ::-1]
+        sub = np.empty((len(tied), p))
+        np.put_along_axis(sub, order[tied], 0.5 * (lo + hi + 2), axis=1)
+        out[tied] = sub
     return out
 
 

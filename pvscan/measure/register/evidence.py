@@ -51,7 +51,7 @@ if TYPE_CHECKING:  # pragma: no cover
 logger = logging.getLogger(__name__)
 
 __all__ = ["Placement", "ModuleSample", "sample_modules", "module_spread", "evidence", "placement_quality",
-           "sun_vector", "refine_placement"]
+           "sun_vector"]
 
 
 @dataclass(frozen=True)
@@ -344,11 +344,12 @@ def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float,
 _SPREAD_CHUNK = 512
 
 
-def _spread_chunk(sample: ModuleSample, placement: Placement, sl: slice, *, inset_u: float, inset_v: float,
+def _spread_chunk(sample: ModuleSample, placement: Placement, sl: slice | np.ndarray, *, inset_u: float, inset_v: float,
                   local: np.ndarray | None, min_pixels: int,
                   band_m: float | None) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """:func:`module_spread` of the modules ``sl`` before the off-glass test: the spread (or
-    its ratio to the outline contrast), the sum of the centred values inside and their count."""
+    """:func:`module_spread` of the modules ``sl`` (a slice or positions in the sample) before
+    the off-glass test: the spread (or its ratio to the outline contrast), the sum of the
+    centred values inside and their count. ``local`` covers the whole sample."""
     minv = np.linalg.inv(placement.matrix)
     fr = sample.frames[sl]
     ox, oy, ux, uy, vx, vy = (fr[:, j] for j in range(6))
@@ -356,7 +357,7 @@ def _spread_chunk(sample: ModuleSample, placement: Placement, sl: slice, *, inse
     tx = placement.tx + (local[sl, 0] if local is not None else 0.0)
     ty = placement.ty + (local[sl, 1] if local is not None else 0.0)
     x0, y0 = sample.x0[sl], sample.y0[sl]
-    out = []
+    coef = []
     for ax, ay in ((ux, uy), (vx, vy)):
         n2 = ax * ax + ay * ay
         # coordinate = ((q - o) . a) / |a|^2, q linear in P: coefficient vector Minv^T a
@@ -364,16 +365,29 @@ def _spread_chunk(sample: ModuleSample, placement: Placement, sl: slice, *, inse
         cyv = (minv[0, 1] * ax + minv[1, 1] * ay) / n2
         const = ((placement.cx - ox) * ax + (placement.cy - oy) * ay) / n2 - (
             cxv * (placement.cx + tx) + cyv * (placement.cy + ty))
-        base = cxv * x0 + cyv * y0 + const
-        s = sample.values.shape[1]
-        j = np.arange(s, dtype=np.float32)
-        coord = (base[:, None, None].astype(np.float32) + (cxv * sample.gx)[:, None, None].astype(np.float32)
-                 * j[None, None, :] + (cyv * sample.gy)[:, None, None].astype(np.float32) * j[None, :, None])
-        out.append(coord)
+        # coordinate at pixel (row i, column j) of the window: base + a j + b i
+        coef.append((cxv * x0 + cyv * y0 + const, cxv * sample.gx, cyv * sample.gy))
+    if band_m is not None:
+        lu = np.hypot(fr[:, 2], fr[:, 3]) * placement.scale
+        lv = np.hypot(fr[:, 4], fr[:, 5]) * placement.scale
+        reach_u, reach_v = band_m / lu, band_m / lv
+    else:
+        reach_u = reach_v = np.zeros(len(fr))
+    s = sample.values.shape[1]
+    r0, c0, h, w = _crop(coef, np.minimum(inset_u, -reach_u), np.minimum(inset_v, -reach_v), s)
+    # the same float32 sums as over the whole window, on the footprint's box (+ its band)
+    # only: pixels outside it are in neither the footprint nor its band
+    jj = (c0[:, None] + np.arange(w)).astype(np.float32)
+    ii = (r0[:, None] + np.arange(h)).astype(np.float32)
+    out = []
+    for base, a, b in coef:
+        out.append(base[:, None, None].astype(np.float32) + a[:, None, None].astype(np.float32)
+                   * jj[:, None, :] + b[:, None, None].astype(np.float32) * ii[:, :, None])
     u, v = out
     inside = (u >= inset_u) & (u <= 1.0 - inset_u) & (v >= inset_v) & (v <= 1.0 - inset_v)
     assert sample.centred is not None
-    vals = sample.centred[sl]
+    kk = np.arange(len(sample))[sl]
+    vals = np.lib.stride_tricks.sliding_window_view(sample.centred, (h, w), axis=(1, 2))[kk, r0, c0]
     finite = np.isfinite(vals)
     if finite.all():
         # no pixel to leave out: the values times the mask are the values selected (a zero
@@ -390,8 +404,6 @@ def _spread_chunk(sample: ModuleSample, placement: Placement, sl: slice, *, inse
     sd = np.sqrt(np.maximum(var, 0.0))
     sd[cnt < min_pixels] = np.nan
     if band_m is not None:
-        lu = np.hypot(fr[:, 2], fr[:, 3]) * placement.scale
-        lv = np.hypot(fr[:, 4], fr[:, 5]) * placement.scale
         bu = (band_m / lu)[:, None, None].astype(np.float32)
         bv = (band_m / lv)[:, None, None].astype(np.float32)
         in_u = (u >= -bu) & (u <= 1.0 + bu)
@@ -408,6 +420,40 @@ def _spread_chunk(sample: ModuleSample, placement: Placement, sl: slice, *, inse
         # reflection (its spread far above any outline contrast) cannot outweigh the others
         sd = np.minimum(sd / np.maximum(contrast, 0.05), 1.0)
     return sd, s1, cnt
+
+
+def _crop(coef: list, lo_u: np.ndarray, lo_v: np.ndarray, side: int) -> tuple[np.ndarray, np.ndarray, int, int]:
+    """One box of rows and columns per module holding every pixel whose module coordinates
+    ``(u, v)`` lie in ``[lo_u, 1 - lo_u] x [lo_v, 1 - lo_v]``, of one size for all (the
+    largest, within the window of ``side`` pixels): first row, first column, height, width.
+
+    ``coef`` holds per axis ``(base, a, b)``: coordinate = base + a j + b i at pixel (i, j).
+    The box is the corners of that parallelogram mapped to pixels, plus two pixels (the
+    float32 rounding of the coordinates)."""
+    (bu, au, cu), (bv, av, cv) = coef
+    det = au * cv - cu * av
+    ok = np.abs(det) > 1e-12
+    det = np.where(ok, det, 1.0)
+    js, iss = [], []
+    for u in (lo_u, 1.0 - lo_u):
+        for v in (lo_v, 1.0 - lo_v):
+            du, dv = u - bu, v - bv
+            js.append((cv * du - cu * dv) / det)
+            iss.append((au * dv - av * du) / det)
+    jmin = np.floor(np.min(js, axis=0)) - 2
+    jmax = np.ceil(np.max(js, axis=0)) + 2
+    imin = np.floor(np.min(iss, axis=0)) - 2
+    imax = np.ceil(np.max(iss, axis=0)) + 2
+    fin = ok & np.isfinite(jmin) & np.isfinite(jmax) & np.isfinite(imin) & np.isfinite(imax)
+    jmin = np.clip(np.where(fin, jmin, 0), 0, side - 1).astype(np.int64)
+    jmax = np.clip(np.where(fin, jmax, side - 1), 0, side - 1).astype(np.int64)
+    imin = np.clip(np.where(fin, imin, 0), 0, side - 1).astype(np.int64)
+    imax = np.clip(np.where(fin, imax, side - 1), 0, side - 1).astype(np.int64)
+    w = int(np.max(jmax - jmin)) + 1 if len(jmin) else 1
+    h = int(np.max(imax - imin)) + 1 if len(imin) else 1
+    c0 = np.minimum(jmin, side - w)
+    r0 = np.minimum(imin, side - h)
+    return r0, c0, h, w
 
 
 def _glass_mode(means: np.ndarray, half_width_k: float) -> float:
@@ -528,73 +574,3 @@ def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, 
     by_share = all(out[f"minimum_share_{a}"] >= float(cfg["evidence_min_share"]) for a in ("u", "v"))
     out["ok"] = bool((by_ratio or by_share) and math.isfinite(e0) and glass_ok)
     return out
-
-
-def refine_placement(sample: ModuleSample, start: Placement, cfg: Mapping, *, rotate: bool = True,
-                     scale: bool = True, start_evidence: float | None = None) -> tuple[Placement, float]:
-    """Pattern search (Hooke and Jeeves 1961) of the placement minimising the evidence.
-
-    Steps start at ``evidence_step_m`` (translation), ``evidence_step_deg`` (rotation) and
-    ``evidence_step_scale`` and are halved until below an eighth of that; rotation and scale
-    are searched only when asked. The evidence is the spread over the outline contrast, or
-    the plain spread [K] when ``cfg["evidence_band_m"]`` is None. Returns the best placement
-    and its evidence. ``start_evidence``, when the caller has it, is the evidence of
-    ``start`` with these settings (not computed again). A placement the search comes back to
-    (a step forth and back gives the same numbers) is not measured twice.
-
-    References
-    ----------
-    .. [1] R. Hooke and T. A. Jeeves, "'Direct search' solution of numerical and statistical
-       problems", Journal of the ACM 8(2), 212-229, 1961. doi:10.1145/321062.321069
-    """
-    kw: dict[str, Any] = {"inset_u": float(cfg["evidence_inset"]), "inset_v": float(cfg["evidence_inset"])}
-    if cfg.get("evidence_band_m") is not None:
-        # the outline contrast widens the basin; without it (the last, local stage) the plain
-        # spread inside a nearly whole footprint has its minimum where the module is
-        kw.update(band_m=float(cfg["evidence_band_m"]), off_glass_k=float(cfg["evidence_off_glass_k"]))
-
-    seen: dict[tuple[str, ...], float] = {}
-
-    def f(p: Placement) -> float:
-        # keyed by the exact numbers (float.hex tells -0.0 from 0.0): a hit is the same sum
-        key = tuple(float(v).hex() for v in (p.tx, p.ty, p.theta_deg, p.scale))
-        if key not in seen:
-            e = evidence(module_spread(sample, p, **kw))
-            seen[key] = e if math.isfinite(e) else float("inf")
-        return seen[key]
-
-    steps = {"tx": float(cfg["evidence_step_m"]), "ty": float(cfg["evidence_step_m"])}
-    if rotate:
-        steps["theta_deg"] = float(cfg["evidence_step_deg"])
-    if scale:
-        steps["scale"] = float(cfg["evidence_step_scale"])
-    lim_shift = float(cfg["max_shift_m"])
-    lim_rot = float(cfg["max_rotation_deg"])
-    lim_scale = float(cfg["max_scale_error"])
-    if start_evidence is not None:
-        f_start = float(start_evidence)
-        f_start = f_start if math.isfinite(f_start) else float("inf")
-        seen[tuple(float(v).hex() for v in (start.tx, start.ty, start.theta_deg, start.scale))] = f_start
-    best, fb = start, f(start)
-    floor = {k: v / 8.0 for k, v in steps.items()}
-    for _ in range(200):
-        improved = False
-        for key, st in steps.items():
-            for sgn in (1.0, -1.0):
-                val = getattr(best, key) + sgn * st
-                if key in ("tx", "ty") and abs(val) > lim_shift + 1e-9:
-                    continue
-                if key == "theta_deg" and abs(val) > lim_rot + 1e-9:
-                    continue
-                if key == "scale" and abs(val - 1.0) > lim_scale + 1e-12:
-                    continue
-                p = best.moved(**{key: val})
-                fp = f(p)
-                if fp < fb - 1e-9:
-                    best, fb, improved = p, fp, True
-                    break
-        if not improved:
-            if all(steps[k] <= floor[k] * 1.0001 for k in steps):
-                break
-            steps = {k: max(v / 2.0, floor[k]) for k, v in steps.items()}
-    return best, fb

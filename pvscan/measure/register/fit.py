@@ -46,10 +46,10 @@ from pvscan.measure.register.evidence import (
     _compose,
     _inverse,
     placement_quality,
-    refine_placement,
     sample_modules,
 )
 from pvscan.measure.register.local import refine_rows, refine_tables, row_offsets, table_offsets
+from pvscan.measure.register.search import refine_placement
 
 if TYPE_CHECKING:  # pragma: no cover
     import geopandas as gpd

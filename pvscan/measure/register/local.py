@@ -46,9 +46,9 @@ from pvscan.measure.register.evidence import (
     Placement,
     evidence,
     module_spread,
-    refine_placement,
     sample_modules,
 )
+from pvscan.measure.register.search import group_evidence, refine_translations
 
 __all__ = ["LocalFit", "refine_tables", "refine_rows", "table_offsets", "row_offsets"]
 
@@ -256,10 +256,11 @@ def _refine_groups(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any
     cx = fr[:, 0] + 0.5 * (fr[:, 2] + fr[:, 4])
     cy = fr[:, 1] + 0.5 * (fr[:, 3] + fr[:, 5])
     recs: list[dict[str, Any]] = []
-    for t, sel in groups.items():
-        sub = _take(sample, sel)
-        e0 = evidence(module_spread(sub, ident, inset_u=inset, inset_v=inset))
-        p, e1 = refine_placement(sub, ident, sub_cfg, rotate=False, scale=False, start_evidence=e0)
+    # every table's search at once (each on its own modules, the path it takes alone)
+    sels = list(groups.values())
+    e0s = group_evidence(sample, ident, sels, sub_cfg)
+    found = refine_translations(sample, sels, ident, sub_cfg, start_evidence=e0s)
+    for t, sel, e0, (p, e1) in zip(groups, sels, e0s, found):
         recs.append({"table_id": t, "dx_m": float(p.tx), "dy_m": float(p.ty), "evidence_before": e0,
                      "evidence_after": e1, "x": float(np.mean(cx[sel])), "y": float(np.mean(cy[sel]))})
     gate = float(cfg["local_gate"])
