@@ -22,7 +22,7 @@ from pvscan.errors import PvscanError
 from pvscan.report import _figures as figs
 from pvscan.report import _sections as sec
 from pvscan.report._geometry import MapGeometry, as_list
-from pvscan.report._images import Palette, figure_palette, module_window, png_data_uri, quantise_png
+from pvscan.report._images import Palette, figure_palette, module_window, png_data_uri, quantise_rgb
 from pvscan.report._raster import OverviewRead, ThermalView, open_thermal
 from pvscan.report._registration import registration_detail
 from pvscan.report._result import SEVERITIES, ResultData, get_path, load_result, validity_checks
@@ -186,13 +186,13 @@ def _overview(data: ResultData, view: ThermalView | None, geo: MapGeometry, cfg:
         image = image[r0:r1, c0:c1]
         extent_view = (xmin + c0 * px_w, xmin + c1 * px_w, ymax - r1 * px_h, ymax - r0 * px_h)
     pins: list = []
-    png = figs.overview_png(
+    rgb = figs.overview_rgb(
         pins=pins, extent=extent_view, image=image, module_geoms=geo.rings,
         module_values=tmed if image is None else None, anomaly_points=points,
         anomaly_regions=[(g, r["severity"]) for g, (_, r) in zip(geo.anomalies, an.iterrows())],
         cmap=palette.name, vmin=site_window[0], vmax=site_window[1], north_deg=geo.north_deg(),
         dpi=int(cfg["plot_dpi"]), n_labels=int(cfg["overview_labels"]), image_label=img_label)
-    png = quantise_png(png, figure_palette(palette.name, accents=[figs.SEVERITY_STYLE[s]["color"] for s in SEVERITIES],
+    png = quantise_rgb(rgb, figure_palette(palette.name, accents=[figs.SEVERITY_STYLE[s]["color"] for s in SEVERITIES],
                                            inks=(figs.INK, figs.MUTED, "#000000")))
     return png, pins, site_window, image is not None
 

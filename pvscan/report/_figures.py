@@ -19,7 +19,7 @@ if TYPE_CHECKING:
     from matplotlib.cm import ScalarMappable
     from matplotlib.figure import Figure
 
-__all__ = ["SEVERITY_STYLE", "overview_png", "temperature_hist_png", "delta_norm_hist_png",
+__all__ = ["SEVERITY_STYLE", "overview_rgb", "temperature_hist_png", "delta_norm_hist_png",
            "loss_by_defect_png", "validity_png", "registration_png", "nice_length", "Rings"]
 
 #: Marker and colour of each severity, on the map and in the plots (our own scheme:
@@ -47,6 +47,15 @@ def _png(fig: Figure, dpi: int) -> bytes:
     buf = io.BytesIO()
     fig.savefig(buf, format="png", dpi=dpi, facecolor="white")
     return buf.getvalue()
+
+
+def _rgb(fig: Figure, dpi: int) -> np.ndarray:
+    """The figure drawn at ``dpi`` on white, as an RGB array (height x width x 3, uint8): the
+    pixels :func:`_png` would encode, for a caller that re-encodes them anyway."""
+    fig.set_dpi(dpi)
+    fig.patch.set_facecolor("white")
+    fig.canvas.draw()
+    return np.array(cast(Any, fig.canvas).buffer_rgba())[..., :3]
 
 
 def _style(ax: Axes) -> None:
@@ -120,11 +129,11 @@ def _polys(geoms: Iterable[Any] | Rings) -> Sequence[np.ndarray]:
     return np.split(coords, cuts)
 
 
-def overview_png(*, extent: Extent, image: np.ndarray | None, module_geoms: Iterable[Any],
+def overview_rgb(*, extent: Extent, image: np.ndarray | None, module_geoms: Iterable[Any],
                  module_values: np.ndarray | None, anomaly_points: Sequence[tuple[float, float, str, int]], cmap: str,
                  anomaly_regions: Sequence[tuple[object, str]] = (),
                  vmin: float, vmax: float, north_deg: float, dpi: int, n_labels: int,
-                 image_label: str, pins: list[tuple[int, float, float]] | None = None) -> bytes:
+                 image_label: str, pins: list[tuple[int, float, float]] | None = None) -> np.ndarray:
     """Site overview map.
 
     Parameters
@@ -256,7 +265,7 @@ def overview_png(*, extent: Extent, image: np.ndarray | None, module_geoms: Iter
         for x, y, _sev, prio in anomaly_points:
             px, py = ax.transData.transform((x, y))
             pins.append((prio, float(px / w_px), float(1.0 - py / h_px)))
-    return _png(fig, dpi)
+    return _rgb(fig, dpi)
 
 
 def _number_marks(fig: Figure, ax: Axes, anomaly_points: Sequence[tuple[float, float, str, int]], n_labels: int,

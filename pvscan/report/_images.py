@@ -16,8 +16,12 @@ from typing import Any
 import numpy as np
 from PIL import Image, ImageDraw
 
+#: zlib level of the report's PNGs: 6 (zlib's default) is within 1 % of the size of 9 with
+#: PIL's optimiser at a third of the time (measured on a 25,000-module report's 78 images).
+_PNG_LEVEL = 6
+
 __all__ = ["Palette", "render_crop", "render_schematic", "png_data_uri", "colour_window", "module_window",
-           "quantise_png", "figure_palette", "hex_rgb"]
+           "quantise_png", "quantise_rgb", "figure_palette", "hex_rgb"]
 
 #: Map extent ``(xmin, xmax, ymin, ymax)`` of the pixel edges, in the ortho CRS [m]
 #: (matplotlib ``imshow`` order); the one alias of the report's images, rasters and figures.
@@ -104,7 +108,7 @@ def render_schematic(extent: Extent, size_px: int, *, modules: Iterable[Any] = (
             draw.line(_to_px(ring, extent, (h, w)), fill=(29, 39, 51), width=1)
     buf = io.BytesIO()
     img.quantize(colors=16, method=Image.Quantize.FASTOCTREE, dither=Image.Dither.NONE).save(
-        buf, format="PNG", optimize=True)
+        buf, format="PNG", compress_level=_PNG_LEVEL)
     return buf.getvalue()
 
 
@@ -208,7 +212,7 @@ def render_crop(values: np.ndarray, extent: Extent, palette: Palette, vmin: floa
             draw.line(pts, fill=IDX_HALO, width=lw + 2)
             draw.line(pts, fill=IDX_REGION, width=lw)
     buf = io.BytesIO()
-    img.save(buf, format="PNG", optimize=True)
+    img.save(buf, format="PNG", compress_level=_PNG_LEVEL)
     return buf.getvalue()
 
 
@@ -249,7 +253,12 @@ def quantise_png(png: bytes, palette: Image.Image) -> bytes:
     A fixed palette keeps rare colours (small markers) exact, which an adaptive
     quantiser would merge into their neighbours.
     """
-    rgb = np.asarray(Image.open(io.BytesIO(png)).convert("RGB"), dtype=np.int32)
+    return quantise_rgb(np.asarray(Image.open(io.BytesIO(png)).convert("RGB")), palette)
+
+
+def quantise_rgb(rgb: np.ndarray, palette: Image.Image) -> bytes:
+    """:func:`quantise_png` of an RGB image (height x width x 3, uint8) not yet encoded."""
+    rgb = np.asarray(rgb, dtype=np.int32)
     pal = np.asarray((palette.getpalette() or [])[:768], dtype=np.int32).reshape(-1, 3)
     packed = (rgb[..., 0] << 16) | (rgb[..., 1] << 8) | rgb[..., 2]
     uniq, inverse = np.unique(packed.reshape(-1), return_inverse=True)
@@ -261,7 +270,7 @@ def quantise_png(png: bytes, palette: Image.Image) -> bytes:
     q = Image.fromarray(nearest[inverse].reshape(packed.shape))
     q.putpalette(pal.reshape(-1).astype(np.uint8).tolist())
     buf = io.BytesIO()
-    q.save(buf, format="PNG", optimize=True)
+    q.save(buf, format="PNG", compress_level=_PNG_LEVEL)
     return buf.getvalue()
 
 
