@@ -80,3 +80,27 @@ def test_ambiguous_and_missing_registrations():
     assert registration_detail({}, mods, geoms, dpi=60) is None
     # no geometry to draw on: the rows stay, no figure
     assert registration_detail(_summary(), mods, [], dpi=60)["figure"] == ""
+
+
+def test_row_arrows_sit_at_the_row_centres():
+    # T1 as two table rows (modules 0-4 row 0, 5-9 row 1); a row correction draws one arrow at
+    # the mean of that row's module centroids, a table row given as 1, 1.0 or "1" the same
+    mods, geoms = _site()
+    mods["table_row"] = [0] * 5 + [1] * 5 + [0] * 10
+    rows = [mods.index[(mods["table_id"] == "T1") & (mods["table_row"] == 1)]]
+    g1 = [geoms[i] for i in rows[0]]
+    cx = sum(g.centroid.x for g in g1) / len(g1)
+    cy = sum(g.centroid.y for g in g1) / len(g1)
+    for given in (1, 1.0, "1"):
+        rec = {"rows": [{"table_id": "T1", "table_row": given, "dx_m": -0.02, "dy_m": 0.05}]}
+        arrows = table_arrows(rec, mods, geoms)
+        assert len(arrows) == 1
+        x, y, dx, dy, kind = arrows[0]
+        assert (x, y) == pytest.approx((cx, cy)) and (dx, dy) == (-0.02, 0.05) and kind == "row"
+    summary = _summary()
+    summary["registration"]["local_rows"] = {"applied": True, "rows_measured": 4, "rows_refined": 1,
+                                             "rows_rejected": 0, "residual_rms_m": 0.054, "residual_max_m": 0.054}
+    summary["registration"]["rows"] = [{"table_id": "T1", "table_row": 1, "dx_m": -0.02, "dy_m": 0.05}]
+    d = registration_detail(summary, mods, geoms, dpi=60)
+    assert dict(d["local"])["table rows refined"] == "1"
+    assert d["n_tables"] == 1 and d["n_rows"] == 1

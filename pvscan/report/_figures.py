@@ -490,7 +490,7 @@ def registration_png(module_geoms: Iterable[Any], arrows: Sequence[tuple[float, 
     ----------
     module_geoms : sequence of shapely polygons (map coordinates), or their :class:`Rings`
     arrows : sequence of (x, y, dx, dy, kind)
-        Position [m], measured shift [m] and ``kind`` ('used', 'not used', 'table').
+        Position [m], measured shift [m] and ``kind`` ('used', 'not used', 'table', 'row').
     shift : (dx, dy)
         The layout shift applied [m] (east, north).
     """
@@ -509,7 +509,7 @@ def registration_png(module_geoms: Iterable[Any], arrows: Sequence[tuple[float, 
     lengths = [math.hypot(a[2], a[3]) for a in arrows] + [math.hypot(*shift)]
     longest = max([v for v in lengths if math.isfinite(v)] + [1e-3])
     factor = nice_length(0.12 * span / longest) if longest > 0 else 1.0
-    colours = {"used": "#1f6fd0", "not used": "#9aa7b6", "table": "#c7792b"}
+    colours = {"used": "#1f6fd0", "not used": "#9aa7b6", "table": "#c7792b", "row": "#2a9d8f"}
     for x, y, dx, dy, kind in arrows:
         if all(math.isfinite(v) for v in (x, y, dx, dy)):
             ax.annotate("", (x + dx * factor, y + dy * factor), (x, y),
@@ -529,7 +529,8 @@ def registration_png(module_geoms: Iterable[Any], arrows: Sequence[tuple[float, 
                  color=_INK)
     handles = [Line2D([], [], color="#d1005d", linewidth=2.0, label="shift applied")]
     kinds = sorted({a[4] for a in arrows})
-    handles += [Line2D([], [], color=colours.get(k, _INK), linewidth=1.2, label=f"block, {k}" if k != "table"
-                       else "table refined") for k in kinds]
+    names = {"table": "table refined", "row": "table row refined"}
+    handles += [Line2D([], [], color=colours.get(k, _INK), linewidth=1.2, label=names.get(k, f"block, {k}"))
+                for k in kinds]
     fig.legend(handles=handles, loc="lower center", ncol=len(handles), frameon=False, fontsize=7)
     return _png(fig, dpi)

@@ -42,30 +42,48 @@ def _evidence_row(name: str, q: Mapping) -> dict[str, str]:
             "ok": "yes" if ok is True else ("no" if ok is False else "–")}
 
 
+def _row_key(v: Any) -> str:
+    """A table row id as text, the same for 3, 3.0 and '3'."""
+    try:
+        return repr(float(v))
+    except (TypeError, ValueError):
+        return str(v)
+
+
 def table_arrows(reg: Mapping, modules: Any, geoms: list) -> list[tuple[float, float, float, float, str]]:
-    """(x, y, dx, dy, 'table') of each refined table: its correction [m] at the centre of its
-    placed modules (``modules`` the result's module table with ``table_id``, ``geoms`` their
-    placed polygons in the same order)."""
-    tables = reg.get("tables")
-    if not isinstance(tables, list) or not tables or modules is None or "table_id" not in modules:
+    """(x, y, dx, dy, kind) of each refined table (kind 'table') and table row (kind 'row'): its
+    correction [m] at the centre of its placed modules (``modules`` the result's module table
+    with ``table_id`` and, for rows, ``table_row``; ``geoms`` their placed polygons in the same
+    order)."""
+    if modules is None or "table_id" not in modules:
         return []
-    sx: dict[str, list[float]] = {}
-    for tid, g in zip(modules["table_id"].astype(str), geoms):
-        if g is None or g.is_empty:
+    out: list[tuple[float, float, float, float, str]] = []
+    for key, kind in (("tables", "table"), ("rows", "row")):
+        records = reg.get(key)
+        if not isinstance(records, list) or not records or (kind == "row" and "table_row" not in modules):
             continue
-        c = g.centroid
-        s = sx.setdefault(tid, [0.0, 0.0, 0.0])
-        s[0] += c.x
-        s[1] += c.y
-        s[2] += 1.0
-    out = []
-    for t in tables:
-        if not isinstance(t, Mapping) or not (isnum(t.get("dx_m")) and isnum(t.get("dy_m"))):
-            continue
-        acc = sx.get(str(t.get("table_id")))
-        if acc is None or acc[2] == 0:
-            continue
-        out.append((acc[0] / acc[2], acc[1] / acc[2], float(t["dx_m"]), float(t["dy_m"]), "table"))
+        ids = modules["table_id"].astype(str).tolist()
+        if kind == "row":
+            ids = [f"{t}|{_row_key(r)}" for t, r in zip(ids, modules["table_row"].tolist())]
+        sums: dict[str, list[float]] = {}
+        for gid, g in zip(ids, geoms):
+            if g is None or g.is_empty:
+                continue
+            c = g.centroid
+            acc = sums.setdefault(gid, [0.0, 0.0, 0.0])
+            acc[0] += c.x
+            acc[1] += c.y
+            acc[2] += 1.0
+        for t in records:
+            if not isinstance(t, Mapping) or not (isnum(t.get("dx_m")) and isnum(t.get("dy_m"))):
+                continue
+            gid = str(t.get("table_id"))
+            if kind == "row":
+                gid += "|" + _row_key(t.get("table_row"))
+            got = sums.get(gid)
+            if got is None or got[2] == 0:
+                continue
+            out.append((got[0] / got[2], got[1] / got[2], float(t["dx_m"]), float(t["dy_m"]), kind))
     return out
 
 
@@ -78,7 +96,7 @@ def registration_detail(summary: Mapping[str, Any], modules: Any, geoms: list, d
     dict
         ``status`` / ``status_text``, ``placement`` rows (label, value), ``evidence`` rows
         (drawn, proposals, used), ``pitch`` rows, ``local`` rows, ``figure`` (a PNG data URI
-        or '') and ``n_tables`` (arrows drawn).
+        or ''), ``n_tables`` and ``n_rows`` (arrows drawn).
     """
     reg = summary.get("registration")
     if not isinstance(reg, Mapping) or not reg:
@@ -134,6 +152,14 @@ def registration_detail(summary: Mapping[str, Any], modules: Any, geoms: list, d
                  ("evidence without / with the local corrections",
                   f"{_num(lo.get('evidence_before'))} / {_num(lo.get('evidence_after'))}")]
 
+    lr = reg.get("local_rows")
+    if isinstance(lr, Mapping):
+        local += [("table rows measured", str(lr.get("rows_measured", "–"))),
+                  ("table rows refined", str(lr.get("rows_refined", "–"))),
+                  ("rows rejected by their neighbours", str(lr.get("rows_rejected", "–"))),
+                  ("row residuals (rms / largest)",
+                   f"{_num(lr.get('residual_rms_m'))} m / {_num(lr.get('residual_max_m'))} m")]
+
     arrows = table_arrows(reg, modules, geoms)
     figure = ""
     if geoms:
@@ -142,4 +168,5 @@ def registration_detail(summary: Mapping[str, Any], modules: Any, geoms: list, d
         figure = png_data_uri(figs.registration_png(geoms if rings is None else rings, arrows, (sx, sy), dpi))
     return {"status": status or "unknown", "status_text": STATUS_TEXT.get(status, status),
             "message": str(reg.get("message") or ""), "placement": rows, "evidence": ev_rows, "pitch": pitch,
-            "local": local, "figure": figure, "n_tables": len(arrows)}
+            "local": local, "figure": figure, "n_tables": sum(a[4] == "table" for a in arrows),
+            "n_rows": sum(a[4] == "row" for a in arrows)}
