@@ -84,9 +84,10 @@ def _stage(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module_s
            healthy: np.ndarray, groups: np.ndarray, pos: np.ndarray, is_string: bool,
            final: bool = True, spread_all: np.ndarray | None = None,
            geometry: dict[str, np.ndarray] | None = None,
-           string_patterns: bool = True) -> tuple[Features, list[Hits]]:
+           string_patterns: bool = True, spread_from: np.ndarray | None = None) -> tuple[Features, list[Hits]]:
     """One pass: references (own row, and outside the own string), features, module patterns,
-    open strings."""
+    open strings. ``spread_from``: the modules whose delta T gives the module spread
+    (:func:`pvscan.diagnose.features.build_features`)."""
     t_med = stats.table["t_median_c"].to_numpy(dtype=float)
     rr = local_reference(modules, t_med, healthy, cfg_ref, return_details=True)
     # a reference that excludes the module's own string (or row): a whole string raised
@@ -94,7 +95,7 @@ def _stage(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module_s
     ro = local_reference(modules, t_med, healthy, cfg_ref, exclude_group=groups, return_details=True)
     ref_o = np.where(np.isfinite(ro.reference_c), ro.reference_c, rr.reference_c)
     F = build_features(modules, stats, conditions, module_spec, rr.reference_c, rr.neighbours, ok, cfg, cfg_ref,
-                       heat, ref_irr=0.5 * (rr.reference_c + ref_o))
+                       heat, ref_irr=0.5 * (rr.reference_c + ref_o), spread_from=spread_from)
     F.extra["sub_median"] = np.asarray(stats.sub_median, dtype=np.float64)
     F.extra["suspect"] = rr.suspect
     if spread_all is not None:
@@ -202,6 +203,11 @@ def classify(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module
     F1, hits1 = _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, heat, ok, ok, groups, pos,
                        is_string, final=False, geometry=geometry, string_patterns=string_patterns)
     suspect = F1.extra["suspect"] | F1.extra["in_run"]
+    # the modules of a run found in pass 1 have only suspects about them in their row, so pass 2
+    # refers them to other rows and their delta T holds the whole open-module rise: a string of
+    # a third of a small plant would then pass for the healthy modules' spread (and raise the
+    # bar that finds it); the spread is taken without them
+    not_run = ~F1.extra["in_run"]
     for h in hits1:
         suspect |= h.hit
     spread_all = iqr((F1.R - F1.base[:, None, None]).reshape(F1.n, -1), axis=1)
@@ -212,7 +218,7 @@ def classify(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module
     # pass 2: final, suspects excluded from every reference
     F, hits = _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, heat, ok, ok & ~suspect,
                      groups, pos, is_string, spread_all=spread_all, geometry=geometry,
-                     string_patterns=string_patterns)
+                     string_patterns=string_patterns, spread_from=not_run)
     if progress:
         progress("classify", 2, 3)
     by = {h.defect: h for h in hits}

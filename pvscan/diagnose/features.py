@@ -211,7 +211,8 @@ def confidence(*terms: Any) -> np.ndarray:
 
 def build_features(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module_spec: Any,
                    ref: np.ndarray, nb: np.ndarray, ok: np.ndarray, cfg: Mapping[str, Any],
-                   cfg_ref: Mapping[str, Any], heat: Faiman, ref_irr: np.ndarray | None = None) -> Features:
+                   cfg_ref: Mapping[str, Any], heat: Faiman, ref_irr: np.ndarray | None = None,
+                   spread_from: np.ndarray | None = None) -> Features:
     """The residuals and yardsticks of every module against reference ``ref`` [degC].
 
     Parameters
@@ -237,6 +238,9 @@ def build_features(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, 
         The heat-loss model of the run.
     ref_irr : ndarray, optional
         Reference used to read the local irradiance (default ``ref``) [degC].
+    spread_from : ndarray of bool, optional
+        Modules whose delta T gives the module-to-module spread ``sig_mod`` (default: every
+        classified module; the robust spread ignores the few defective ones).
     """
     table = stats.table
     cm = np.asarray(stats.cell_median, dtype=np.float64)
@@ -321,6 +325,8 @@ def build_features(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, 
 
     dT = t_med - ref
     healthy = ok & np.isfinite(dT)
+    if spread_from is not None:
+        healthy &= np.asarray(spread_from, bool)
     sig_mod = scaled_mad(dT[healthy])
     sig_cell = _cell_spread(R, base, healthy) if healthy.any() else float("nan")
     sig_mod = 0.5 if not np.isfinite(sig_mod) else sig_mod

@@ -251,10 +251,7 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
                 continue
             zc = float(np.nansum(z[run]) / np.sqrt(len(run)))
             ratio = float(np.nanmedian(d_o[run]) / np.nanmedian(r[run]))
-            if (zc >= float(cfg["open_string_run_z"]) and ratio >= float(cfg["open_string_ratio_min"])
-                    and not _raise_carries_on(F, run)
-                    and _stands_out_of_its_row(F, run, float(cfg["open_string_row_radius_m"]),
-                                               float(cfg["open_string_row_share"]))):
+            if zc >= float(cfg["open_string_run_z"]) and ratio >= float(cfg["open_string_ratio_min"]):
                 # an established run takes in end modules of its string that are raised,
                 # if less clearly (an open string is normally the whole string); a table row
                 # standing in for unknown strings is not a string, so its run is not extended so
@@ -280,9 +277,15 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
                             hi_end = len(idx)
                 # the end modules taken in are less clear (a healthy module is above
                 # open_string_end_z now and then): when the run with them fails a check of
-                # the whole run, the established run is judged alone
+                # the whole run, the established run is judged alone. The checks against the
+                # modules beside the run are of the run with them: an open string whose middle
+                # modules fell below open_string_candidate_z is established in part, and the
+                # rest of it, beside that part, is as warm
                 for lo_i, hi_i in dict.fromkeys([(lo_end, hi_end), (a, b)]):
                     run = idx[lo_i:hi_i]
+                    if _raise_carries_on(F, run) or not _stands_out_of_its_row(
+                            F, run, float(cfg["open_string_row_radius_m"]), float(cfg["open_string_row_share"])):
+                        continue
                     if F.extra.get("is_string", False) and not _string_opens_whole(F, cfg, idx, run):
                         continue
                     if not _raised_over_other_row_throughout(F, cfg, run):
@@ -301,8 +304,10 @@ def _raised_over_other_row_throughout(F: Features, cfg: Mapping, run: np.ndarray
     open-module rise above the healthy module beside it in the table's other row. A mosaic
     seam whose edge runs between two rows of a table and ends part-way along them raises
     one row over the other only where the seam is. The share of the run's modules less
-    than ``open_string_cross_min`` of the rise above their other-row neighbour may be at
-    most ``open_string_cross_fail_max`` (defects are sparse: a defective neighbour is rare).
+    than ``open_string_cross_min`` of the rise above their other-row neighbour (the mean
+    difference of the module and the run's modules on either side of it, which the
+    module-to-module spread of one module alone does not decide) may be at most
+    ``open_string_cross_fail_max`` (defects are sparse: a defective neighbour is rare).
     The differences are taken relative to how the two rows compare beside the run (the
     median difference of the run's own table row outside it, at least three modules; zero
     when fewer): a seam or a shadow edge over the whole of one row shifts both alike.
@@ -331,8 +336,14 @@ def _raised_over_other_row_throughout(F: Features, cfg: Mapping, run: np.ndarray
         d_beside = d_beside[np.isfinite(d_beside)]
         if d_beside.size >= 3:
             diff = diff - float(np.median(d_beside))
-    with np.errstate(invalid="ignore"):
-        low = diff < float(cfg["open_string_cross_min"]) * F.rise[r]
+    # each module with its neighbours along the run (a window of three, two at the run's ends):
+    # a seam's edge leaves a stretch of the run unraised, which the window keeps, while one
+    # module read low by the module-to-module spread is carried by the two beside it
+    fin = np.isfinite(diff)
+    num = np.convolve(np.where(fin, diff, 0.0), np.ones(3), mode="same")
+    cnt = np.convolve(fin.astype(float), np.ones(3), mode="same")
+    with np.errstate(invalid="ignore", divide="ignore"):
+        low = num / cnt < float(cfg["open_string_cross_min"]) * F.rise[r]
     return float(low.mean()) <= float(cfg["open_string_cross_fail_max"])
 
 
