@@ -13,6 +13,7 @@ References
 """
 from __future__ import annotations
 
+import warnings
 from collections.abc import Mapping
 
 import numpy as np
@@ -91,9 +92,25 @@ def pattern_junction_box(F: Features, cfg: Mapping) -> Hits:
         top = np.take_along_axis(s, order[:, :1], axis=1)[:, 0]
         second = np.take_along_axis(s, order[:, 1:2], axis=1)[:, 0] if s.shape[1] > 1 else np.full(n, -np.inf)
         med_top = np.take_along_axis(subm, order[:, :1], axis=1)[:, 0]
-        # the rest of the same cell rows: a spot stands out of them, a band along the edge not
+        # the rest of the same cell rows: a spot stands out of a quiet line, a band along the
+        # edge not. Each row on its own (the least quiet row counts) and its cells' departures
+        # either way (the median absolute residual), so a line the ground or the frame fills in
+        # part, warm and cold cells side by side where a mosaic seam shifted the module, is not
+        # diluted by the line inside it. And the rest of the box's cell columns, away from the
+        # rows around the box, each column on its own: a spot is local, a band along a column (a
+        # shadow's edge) is not
         others = np.setdiff1d(np.arange(C), jj)
-        rest = nanmedian(X95[:, ii][:, :, others].reshape(n, -1), axis=1) if others.size else np.zeros(n)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            if others.size:
+                rest = np.nanmax(np.stack([nanmedian(np.abs(X95[:, r, others]), axis=1) for r in ii], axis=1),
+                                 axis=1)
+            else:
+                rest = np.zeros(n)
+            far = np.setdiff1d(np.arange(A), np.arange(max(ii.min() - 1, 0), min(ii.max() + 2, A)))
+            if far.size:
+                col_rest = np.nanmax(np.stack([nanmedian(X95[:, far, c], axis=1) for c in jj], axis=1), axis=1)
+                rest = np.fmax(rest, col_rest)
         rest = np.nan_to_num(rest, nan=0.0)
         # the cells around the box: none hotter than the box (else it is heat bleeding
         # from a hot cell next to it)
