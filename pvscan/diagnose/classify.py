@@ -245,7 +245,7 @@ def classify(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module
         dt = float(np.median(dts))
         dtn = float(np.median(norm(dts, g_cond[run], w_cond[run])))
         # confidence from the run's combined evidence and how well its rise fits eta*G/U
-        z_run = F.extra["d_other"][run] / max(F.extra["sig_other"], 0.05)
+        z_run = F.extra["d_other"][run] / max(F.extra["sig_other"], float(cfg["other_spread_floor_k"]))
         zc = float(np.nansum(z_run) / np.sqrt(len(run)))
         ratio = float(np.nanmedian(dts) / np.nanmedian(F.rise[run]))
         conf = float(confidence(quality(zc, float(cfg["open_string_run_z"])), fit_score(np.array(ratio))))
@@ -496,7 +496,7 @@ def _unexplained_pid(F: Features, groups: np.ndarray, pos: np.ndarray, is_string
     if z is None:
         return out
     z = np.asarray(z, dtype=float)
-    z_o = excess_z(F)
+    z_o = excess_z(F, cfg)
     free = F.ok & np.array([d is None for d in defect], bool) & (groups >= 0)
     if is_string:
         first = np.zeros(F.n, bool)

@@ -224,7 +224,7 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
     """
     d_o = F.extra["d_other"]
     rsub_o = F.extra["rsub_other"]
-    sig = max(F.extra["sig_other"], 0.05)
+    sig = max(F.extra["sig_other"], float(cfg["other_spread_floor_k"]))
     r = F.rise
     z = d_o / sig
     lo = nanmin(rsub_o, axis=1)

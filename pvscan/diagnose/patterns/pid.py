@@ -117,7 +117,7 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     sig = max(scaled_mad(contrast[healthy]), 0.02)
     z = (contrast - c0) / sig
     F.extra["pid_z"] = z
-    z_o = excess_z(F)
+    z_o = excess_z(F, cfg)
     z_ext = extension_evidence(z, z_o, cfg)
     out: list[list[int]] = []
     usable = F.ok & ~exclude
@@ -311,9 +311,13 @@ def unexplained_string_pattern(z: np.ndarray, z_row: np.ndarray, groups: np.ndar
     return (max(best[0], 0.0), best[1], best[2])
 
 
-def excess_z(F: Features) -> np.ndarray:
-    """Each module's excess over modules outside its string, in robust spreads of that excess [-]."""
-    return np.asarray(F.extra["d_other"], dtype=float) / max(float(F.extra.get("sig_other", F.sig_mod)), 0.05)
+def excess_z(F: Features, cfg: Mapping) -> np.ndarray:
+    """Each module's excess over modules outside its string, in robust spreads of that excess [-].
+
+    The spread is taken at least ``[classify] other_spread_floor_k`` [K] (``cfg``; a camera's
+    noise-equivalent temperature difference)."""
+    floor_k = float(cfg["other_spread_floor_k"])
+    return np.asarray(F.extra["d_other"], dtype=float) / max(float(F.extra.get("sig_other", F.sig_mod)), floor_k)
 
 
 def extension_evidence(z: np.ndarray, z_o: np.ndarray, cfg: Mapping) -> np.ndarray:
