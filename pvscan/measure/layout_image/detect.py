@@ -32,6 +32,7 @@ import numpy as np
 
 from pvscan.errors import LayoutError
 from pvscan.io.settings import section
+from pvscan.measure.layout_image.coverage import uncovered_glass
 from pvscan.measure.layout_image.lattice import TableFit, facing_vector, fit_table
 from pvscan.measure.layout_image.segment import TableCandidate, find_tables
 
@@ -63,19 +64,26 @@ class DetectedLayout:
         ``"misfit"`` above ``max_misfit``), that no kept table covers: the places where the
         detection was unsure and wrote no modules. Columns ``rows``, ``cols``,
         ``orientation``, ``confidence``, ``misfit``, ``reason`` and the outline polygon.
+    coverage : dict, optional
+        What the layout left out (:func:`.coverage.uncovered_glass`): ``uncovered_m2``,
+        ``uncovered_modules``, ``uncovered_share``.
     """
 
     modules: Any
     tables: Any
     fits: list[TableFit]
     dropped: Any = None
+    coverage: dict | None = None
 
     def summary(self) -> dict:
         """Counts for ``summary.json`` and the CLI.
 
         ``dropped_modules`` counts the modules of the lattices not kept (``dropped``);
-        ``dropped_share`` is their share of all modules found and dropped [-]: a detected
-        layout with a large share has missed part of the plant.
+        ``dropped_share`` is their share of all modules found and dropped [-] (lattices on
+        shadows between rows count too, so it can be high on a right layout);
+        ``uncovered_share`` is the share of the plant's glass no kept table covers
+        (:func:`.coverage.uncovered_glass`): a detected layout with a large one has missed
+        part of the plant.
         """
         m = self.modules
         d = self.dropped
@@ -92,6 +100,7 @@ class DetectedLayout:
             "dropped_tables": int(len(d)) if d is not None else 0,
             "dropped_modules": n_drop,
             "dropped_share": round(n_drop / (n_mod + n_drop), 4) if n_mod + n_drop else 0.0,
+            **(self.coverage or {"uncovered_m2": None, "uncovered_modules": None, "uncovered_share": None}),
         }
 
 
@@ -374,7 +383,6 @@ def detect_layout(orthos: Any, module: Any, layout: Any, settings: Any = None, p
     if step > module.width_m / float(cfg["min_px_per_module"]):
         log.info("layout detection on a %.3f m/px mosaic (the ortho is larger than %d px)", step, cfg["overview_px"])
     cands = find_tables(img, transform, module.width_m, cfg)
-    del img
     fits: list[TableFit] = []
     fitted: list[TableCandidate] = []  # the candidate of each fit
     dropped: list[tuple[TableFit, str]] = []
@@ -444,6 +452,10 @@ def detect_layout(orthos: Any, module: Any, layout: Any, settings: Any = None, p
                            n for n, c in zip(("start", "end", "upper", "lower"), f.cut) if c) or None,
                        "geometry": polygons(outline)})
     mod, tab = _frames(rows, tables, orthos.crs)
+    footprint_m2 = module.width_m * module.length_m * math.cos(math.radians(float(layout.tilt_deg or 0.0)))
+    cover = uncovered_glass(img, transform, [_outline(f) for f in kept], len(mod), module.width_m, footprint_m2,
+                            cfg)
+    del img
     drop = _dropped(dropped, kept, float(cfg["overlap_share"]), orthos.crs)
     log.info("detected %d tables, %d modules; %d lattices dropped", len(tab), len(mod), len(drop))
-    return DetectedLayout(modules=mod, tables=tab, fits=kept, dropped=drop)
+    return DetectedLayout(modules=mod, tables=tab, fits=kept, dropped=drop, coverage=cover)

@@ -192,6 +192,11 @@ def find_tables(img: np.ndarray, transform: Any, module_width_m: float, settings
     objs = ndi.find_objects(labels)
     tol = float(settings["level_tol_k"])
     close = np.ones((3, 3), bool)
+    # frame lines and module gaps (dips shorter than close_m) are closed, so a table is one
+    # region even where relief or blur widens its frame lines to several pixels; the opening
+    # then takes off what is thinner than half of that (a shadow's edge at the glass level)
+    n_close = max(2, int(math.ceil(0.5 * float(settings["close_m"]) / step)))
+    n_open = max(1, n_close // 2)
     out: list[TableCandidate] = []
     pad = win + 2
     for k, sl in enumerate(objs, start=1):
@@ -214,9 +219,9 @@ def find_tables(img: np.ndarray, transform: Any, module_width_m: float, settings
         level = _mode(vals, settings["level_bin_k"], fine[r0:r1, c0:c1][inreg])
         band = glass_band(vals, level, settings["level_bin_k"], tol)
         glass = region & (sub >= band[0]) & (sub <= band[1])
-        glass = ndi.binary_closing(glass, close, iterations=2)
+        glass = ndi.binary_closing(glass, close, iterations=n_close)
         glass = ndi.binary_fill_holes(glass)
-        glass = ndi.binary_opening(glass, close, iterations=1)
+        glass = ndi.binary_opening(glass, close, iterations=n_open)
         sub_lab, m = ndi.label(glass)
         if m == 0:
             continue
