@@ -53,11 +53,12 @@ from pvscan.measure.evidence_checks import (
     unexplained_pid_pattern_check,
     unexplained_pid_tail_check,
 )
+from pvscan.measure.layout_image.coverage import detected_layout_check
 
 __all__ = ["Validity", "check_validity", "registration_check", "coverage_check", "plausibility_check",
            "row_geometry", "row_shading_check", "string_reference_check", "unexplained_pid_check",
            "unexplained_pid_pattern_check", "unexplained_pid_tail_check", "row_edge_check", "module_spread_check",
-           "row_cluster_check", "evidence_checks", "with_checks"]
+           "row_cluster_check", "evidence_checks", "with_checks", "detected_layout_check"]
 
 logger = logging.getLogger(__name__)
 
