@@ -63,6 +63,11 @@ def detect_cmd(flight: Path, out_path: Path, pipeline_path: Path | None, overwri
         echo(f"unsure: {s['dropped_tables']} lattices of {s['dropped_modules']} modules fitted but not kept "
              f"({100 * s['dropped_share']:.0f} % of the modules seen; layer dropped_tables): the layout may miss "
              f"tables there")
+    lim = float(settings["layout_detect"]["max_uncovered_share"])
+    if s["uncovered_share"] is not None and s["uncovered_share"] > lim:
+        echo(f"incomplete: glass of about {s['uncovered_modules']:.0f} modules ({100 * s['uncovered_share']:.0f} % "
+             f"of the plant's glass) lies outside the tables found (at most {100 * lim:g} %): check the layout "
+             f"before use")
     echo(f"wrote {out_path}")
 
 
