@@ -346,6 +346,7 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         val_mod.plausibility_check(stats.table["t_median_c"].to_numpy(float), predicted, settings),
         val_mod.row_shading_check(measured, flight.layout.tilt_deg, flight.layout.azimuth_deg, lon, lat,
                                   (flight.flight.start, mid, flight.flight.end), settings),
+        val_mod.detected_layout_check(measured, settings),
     ], settings)
     _record(timings, "radiometry", t0)
 

@@ -113,3 +113,40 @@ def test_glass_left_out_by_the_layout_is_measured_and_flagged(relief_flight):
         assert detected_layout_check(mods, settings)["passed"] is True
     mods.attrs["layout"] = {"source": "file"}
     assert detected_layout_check(mods, settings)["passed"] is None
+
+
+def test_inspect_on_a_detected_layout_that_missed_a_table_is_not_valid(relief_flight, tmp_path, monkeypatch):
+    import json
+    from dataclasses import replace
+
+    import pvscan.measure.layout_image as li
+    from pvscan.measure.layout_image.coverage import uncovered_glass
+    from pvscan.pipeline import inspect_flight
+
+    out, fl, settings, _, _, _, _ = relief_flight
+    real = li.detect_layout
+
+    def missing_one_table(orthos, module, layout, st=None, progress=None):
+        # the detection as it is, less its largest table: the result covers part of the plant
+        det = real(orthos, module, layout, st, progress)
+        k = int(det.tables["rows"].mul(det.tables["cols"]).to_numpy().argmax())
+        gone = det.tables["table_id"].iloc[k]
+        mods = det.modules[det.modules["table_id"] != gone].reset_index(drop=True)
+        tabs = det.tables[det.tables["table_id"] != gone].reset_index(drop=True)
+        img, transform = orthos.read_overview(int(st["layout_detect"]["overview_px"]))
+        foot = module.width_m * module.length_m * math.cos(math.radians(layout.tilt_deg))
+        cover = uncovered_glass(img, transform, list(tabs.geometry), len(mods), module.width_m, foot,
+                                st["layout_detect"])
+        return replace(det, modules=mods, tables=tabs, coverage=cover)
+
+    monkeypatch.setattr(li, "detect_layout", missing_one_table)
+    text = (out / "flight.toml").read_text(encoding="utf-8")
+    manifest = out / "no_layout.toml"
+    manifest.write_text("\n".join(ln for ln in text.splitlines() if not ln.startswith("layout = ")) + "\n",
+                        encoding="utf-8")
+    inspect_flight(manifest, settings, tmp_path / "result", overwrite=True, report=False)
+    summary = json.loads((tmp_path / "result" / "summary.json").read_text(encoding="utf-8"))
+    check = {c["name"]: c for c in summary["validity"]["checks"]}["detected_layout"]
+    assert check["passed"] is False, check
+    assert summary["validity"]["ok"] is False
+    assert summary["layout"]["detected"]["uncovered_share"] > float(settings["layout_detect"]["max_uncovered_share"])
