@@ -165,6 +165,7 @@ def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], su
     ident = Placement(cx=centre[0], cy=centre[1])
     bounds = modules.total_bounds
     proposals: list[Placement] = []
+    correlation: tuple[Placement | None, float] = (None, 0.0)
     if forced_shift is not None:
         reg = Registration(notes=[f"shift given by the user: ({forced_shift[0]:+.3f}, {forced_shift[1]:+.3f}) m"])
         proposals.append(ident.moved(tx=float(forced_shift[0]), ty=float(forced_shift[1])))
@@ -187,6 +188,9 @@ def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], su
                 proposals.append(p)
         reg = fits[0]
         refine = True
+        # the block correlation's own placement (the whole table outlines, ends included) and
+        # its confidence: a vote on the one-pitch ambiguity independent of the module evidence
+        correlation = (placement_of(reg, centre), float(reg.confidence))
     s_id = _sample_at(orthos, modules, None, cfg)
     if len(s_id) == 0:
         reg.status = "failed"
@@ -299,7 +303,7 @@ def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], su
     if q_c is not None:
         reg.evidence["chosen"] = q_c
     if reg.status == "ok" and forced_shift is None:
-        _resolve_pitch(orthos, modules, reg, cfg, ident, sun, expected_apparent_c)
+        _resolve_pitch(orthos, modules, reg, cfg, ident, sun, expected_apparent_c, correlation)
     if rescue and q_c is not None and reg.status != "ok":
         # put on glass only table by table, and one module pitch away fits almost as well:
         # too weak to measure on
@@ -316,7 +320,8 @@ def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], su
 
 
 def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cfg: Mapping[str, Any], ident: Placement,
-                   sun: tuple[float, ...] | None, expected_c: float | None) -> None:
+                   sun: tuple[float, ...] | None, expected_c: float | None,
+                   correlation: tuple[Placement | None, float] = (None, 0.0)) -> None:
     """The one-pitch ambiguity of rows, decided at full resolution on module evidence.
 
     Rows of modules are periodic: the placement used and the same placement one module
@@ -328,7 +333,12 @@ def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cf
     exceeds ``1 + pitch_min_margin``, and ``ends``: the table ends alone
     (:func:`pvscan.measure.register.ends.judge_ends`). Either one indecisive leaves the
     placement in use but fails the ``registration`` validity check (a finding may sit on
-    the neighbouring module)."""
+    the neighbouring module), unless the table ends vote clearly for it
+    (``ends_confirm_vote``) or the block correlation does: its own placement (``correlation``:
+    placement, confidence), confident (``pitch_corr_confidence``), moves no footprint more
+    than ``pitch_corr_agree_m`` from the one used. A placement decided on module evidence is
+    flagged all the same when that confident correlation sits one module pitch from it
+    (within ``pitch_corr_against_m``) and the table ends do not confirm it."""
     base = reg.placement if (reg.applied and reg.placement is not None) else ident
     steps = [s * v for v in _pitches(modules) for s in (1.0, -1.0)]
     if not steps:
@@ -373,7 +383,34 @@ def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cf
     # the table ends alone clearly for the placement (well above any vote of one a pitch off)
     confirmed = ends.get("lowest") is not None and ends["lowest"] >= float(cfg["ends_confirm_vote"])
     reg.evidence["pitch"]["ends_confirm"] = bool(confirmed and not decisive)
-    if not decisive and not confirmed:
+    corr_p, corr_conf = correlation
+    gap = _largest_gap(cur, corr_p, modules.total_bounds) if corr_p is not None else float("nan")
+    by_corr = (math.isfinite(gap) and gap <= float(cfg["pitch_corr_agree_m"])
+               and corr_conf >= float(cfg["pitch_corr_confidence"]))
+    # the correlation one module pitch from the placement: the module evidence alone would
+    # move the layout by a whole pitch against it
+    gaps_pitch = [_largest_gap(replace(cur, tx=cur.tx + float(v[0]), ty=cur.ty + float(v[1])), corr_p,
+                               modules.total_bounds) for v in steps] if corr_p is not None else []
+    gap_pitch = min(gaps_pitch) if gaps_pitch else float("nan")
+    against = (math.isfinite(gap_pitch) and gap_pitch <= float(cfg["pitch_corr_against_m"])
+               and corr_conf >= float(cfg["pitch_corr_confidence"]))
+    reg.evidence["pitch"]["correlation"] = {"confidence": round(corr_conf, 3),
+                                            "gap_m": round(gap, 4) if math.isfinite(gap) else None,
+                                            "pitch_gap_m": round(gap_pitch, 4) if math.isfinite(gap_pitch) else None,
+                                            "against": bool(against),
+                                            "confirms": bool(by_corr and not decisive and not confirmed
+                                                                        and ends["decisive"])}
+    if not decisive and not confirmed and by_corr and ends["decisive"]:
+        reg.message += (f"; a placement one module pitch away fits almost as well on the modules (evidence ratio "
+                        f"{low:.2f}), but the block correlation (confidence {corr_conf:.2f}, table outlines and "
+                        f"ends) puts the layout within {gap:.3f} m of it")
+    elif against and not confirmed:
+        reg.status = "ambiguous"
+        reg.message += (f"; the block correlation (confidence {corr_conf:.2f}) puts the layout one module pitch "
+                        f"from this placement (within {gap_pitch:.3f} m) and the table ends do not confirm it "
+                        f"(median vote {_num(ends.get('lowest')):.2f}, {float(cfg['ends_confirm_vote']):g} needed): "
+                        "findings may sit on the neighbouring module")
+    elif not decisive and not confirmed:
         reg.status = "ambiguous"
         reg.message += (f"; a placement one module pitch away fits almost as well (evidence ratio {low:.2f}, more "
                         f"than {1.0 + margin:.2f} needed): findings may sit on the neighbouring module")
@@ -382,6 +419,15 @@ def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cf
         reg.message += (f"; the table ends prefer a placement one module pitch away (median vote "
                         f"{ends['lowest']:.2f}, more than {ends['limit']:g} needed): findings may sit on the "
                         "neighbouring module")
+
+
+def _largest_gap(a: Placement, b: Placement, bounds: Any) -> float:
+    """Largest distance between where two placements put the corners of ``bounds`` [m]."""
+    xs = np.array([bounds[0], bounds[2], bounds[2], bounds[0]], float)
+    ys = np.array([bounds[1], bounds[1], bounds[3], bounds[3]], float)
+    ax, ay = a.apply(xs, ys)
+    bx, by = b.apply(xs, ys)
+    return float(np.max(np.hypot(ax - bx, ay - by)))
 
 
 def _rescue_locally(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cfg: Mapping[str, Any], ident: Placement,
