@@ -37,6 +37,14 @@ from pvscan.measure._memory import release_freed_memory
 from pvscan.measure.register._blocks import _settings
 from pvscan.measure.register._chunks import shared_chunks
 from pvscan.measure.register._pitch import _distinct, _pitches, _placement_of, _row_pitch, _screen_turned, _turned
+from pvscan.measure.register._place import (
+    _centre,
+    _largest_gap,
+    _no_move,
+    _use_placement,
+    apply_placement,
+    placement_of,
+)
 from pvscan.measure.register._records import Registration, _moved_message, _num
 from pvscan.measure.register.ends import judge_ends
 from pvscan.measure.register.estimate import estimate_shift
@@ -48,7 +56,7 @@ from pvscan.measure.register.evidence import (
     placement_quality,
     sample_modules,
 )
-from pvscan.measure.register.local import refine_rows, refine_tables, row_offsets, table_offsets
+from pvscan.measure.register.local import refine_rows, refine_tables
 from pvscan.measure.register.search import refine_placement
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -57,51 +65,6 @@ if TYPE_CHECKING:  # pragma: no cover
 logger = logging.getLogger(__name__)
 
 __all__ = ["register_layout", "apply_placement", "placement_of", "align_layout"]
-
-
-def _centre(modules: gpd.GeoDataFrame) -> tuple[float, float]:
-    return float(np.mean(modules.total_bounds[[0, 2]])), float(np.mean(modules.total_bounds[[1, 3]]))
-
-
-def placement_of(reg: Registration, centre: tuple[float, float]) -> Placement | None:
-    """The placement a block fit measured (its shift field, or its one measured shift)."""
-    cx, cy = centre
-    if reg.model is not None:
-        tx, ty, a, b, x0, y0 = reg.model
-        s = math.hypot(1.0 + a, b)
-        th = math.degrees(math.atan2(b, 1.0 + a))
-        sx = tx + a * (cx - x0) - b * (cy - y0)
-        sy = ty + b * (cx - x0) + a * (cy - y0)
-        return Placement(float(sx), float(sy), float(th), float(s), cx, cy)
-    mx, my = reg.measured_m
-    if math.isfinite(mx) and math.isfinite(my):
-        return Placement(float(mx), float(my), 0.0, 1.0, cx, cy)
-    return None
-
-
-def apply_placement(modules: gpd.GeoDataFrame, placement: Placement | None) -> gpd.GeoDataFrame:
-    """A copy of ``modules`` with footprints and module frames moved by ``placement``."""
-    import geopandas
-    import shapely
-
-    out = modules.copy()
-    if placement is None or placement.is_identity() or len(out) == 0:
-        return out
-    geoms = np.asarray(out.geometry.values, dtype=object)
-    coords, idx = shapely.get_coordinates(geoms, return_index=True)
-    x, y = placement.apply(coords[:, 0], coords[:, 1])
-    local = table_offsets(out, {t: (dx, dy) for t, dx, dy in placement.tables}) + row_offsets(out, placement.rows)
-    moved = shapely.set_coordinates(geoms.copy(), np.column_stack([x + local[idx, 0], y + local[idx, 1]]))
-    out[out.geometry.name] = geopandas.GeoSeries(moved, index=out.index, crs=modules.crs)
-    if "fx0" in out.columns:
-        ox, oy = placement.apply(out["fx0"].to_numpy(float), out["fy0"].to_numpy(float))
-        out["fx0"], out["fy0"] = ox + local[:, 0], oy + local[:, 1]
-        m = placement.matrix
-        for a, b in (("fux", "fuy"), ("fvx", "fvy")):
-            if a in out.columns:
-                ax, ay = out[a].to_numpy(float), out[b].to_numpy(float)
-                out[a], out[b] = m[0, 0] * ax + m[0, 1] * ay, m[1, 0] * ax + m[1, 1] * ay
-    return out
 
 
 def _sample_at(orthos: Any, modules: gpd.GeoDataFrame, placement: Placement | None, cfg: Mapping[str, Any],
@@ -421,15 +384,6 @@ def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cf
                         "neighbouring module")
 
 
-def _largest_gap(a: Placement, b: Placement, bounds: Any) -> float:
-    """Largest distance between where two placements put the corners of ``bounds`` [m]."""
-    xs = np.array([bounds[0], bounds[2], bounds[2], bounds[0]], float)
-    ys = np.array([bounds[1], bounds[1], bounds[3], bounds[3]], float)
-    ax, ay = a.apply(xs, ys)
-    bx, by = b.apply(xs, ys)
-    return float(np.max(np.hypot(ax - bx, ay - by)))
-
-
 def _rescue_locally(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cfg: Mapping[str, Any], ident: Placement,
                     sun: tuple[float, ...] | None,
                     expected_c: float | None) -> tuple[Placement, dict[str, Any]] | None:
@@ -556,25 +510,6 @@ def _fit_proposal(orthos: Any, modules: gpd.GeoDataFrame, cand: Placement,
             "evidence_step_m": step / 2.0}
     inner, _ = refine_placement(sample, inner, fine, rotate=rot, scale=sca)
     return _compose(base, inner), sample, inner
-
-
-def _use_placement(reg: Registration, p: Placement, *, residuals: bool = True) -> None:
-    """Record ``p`` as the placement applied to the layout (its shift at the site centre and,
-    with ``residuals``, its rotation [deg] and scale)."""
-    reg.placement = p
-    reg.applied = True
-    reg.model = p.shift_model()
-    reg.follow_drift = True
-    reg.shift_m = (p.tx, p.ty)
-    if residuals:
-        reg.residual_rotation_deg, reg.residual_scale = p.theta_deg, p.scale
-
-
-def _no_move(reg: Registration) -> Registration:
-    reg.applied = False
-    reg.shift_m = (0.0, 0.0)
-    reg.model = None
-    return reg
 
 
 def align_layout(flight: Any, settings: Mapping[str, Any] | None = None, out_path: Any = None, *,
