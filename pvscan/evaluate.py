@@ -15,7 +15,16 @@ a dict of scores:
 - temperatures: RMSE and bias of ``t_median_c`` against ``t_true_median_c`` of healthy
   modules (also of those with no distractor at them); median absolute error of ``delta_t_norm_k``
   of defective modules (from the matching anomaly when there is one, else from modules.geojson);
-- co-registration: the layout shift the result reports against the offset the truth drew.
+- co-registration: the layout shift the result reports against the offset the truth drew and,
+  where the flight has the modules' true positions in the ortho (``truth_ortho.geojson``), how
+  far the measured footprints (the drawn layout moved as the registration record says: shift,
+  rotation, scale, tables, rows) sat from them (``placed_error_m``: median, p95, largest);
+- missed defects (``missed``): each truly defective module the result calls healthy, with its
+  true rise (``delta_t_k`` of the truth) over the robust spread of the measured ``delta_t_k`` of
+  the truly healthy modules (the scatter a detector has to see a defect through), and how many
+  of them rise less than ``faint_contrast`` times that spread: a miss of a faint defect is a
+  limit of the flight (the result should then say it is unsure), a miss of a clear one a
+  fault of the method.
 
 Modules are matched by ``module_id``; when fewer than ``min_id_match_fraction`` of the ids
 match, or the matched modules do not sit where the truth has them (a layout of tables split
@@ -39,7 +48,8 @@ from pvscan._typing import IntArray
 from pvscan.errors import OutputError, SimulationError
 from pvscan.io.geojson import read_feature_collection
 from pvscan.io.records import as_float as _num
-from pvscan.layout_scores import STRING_CLASSES, detected_match, evaluate_layout, no_string_scores
+from pvscan.layout_scores import STRING_CLASSES, detected_match, evaluate_layout, no_string_scores, placement_error
+from pvscan.robust import scaled_mad
 
 __all__ = ["evaluate", "format_report", "flight_identity_check", "LOSS_GROUP_KINDS", "evaluate_layout",
            "STRING_CLASSES"]
@@ -114,6 +124,31 @@ def _match(truth_feats: Sequence[Mapping[str, Any]], res_feats: Sequence[Mapping
     d, k = tree.query(np.stack([tx, ty], axis=1))
     cand = np.flatnonzero(ok)[np.minimum(k, ok.sum() - 1)]
     return np.where(d < max_dist_m, cand, -1), "centroid"
+
+
+def _missed(tp: Sequence[Mapping[str, Any]], rp: Sequence[Mapping[str, Any]], match: IntArray,
+            t_def: Sequence[str | None], p_bad: np.ndarray, faint_contrast: float) -> dict[str, Any]:
+    """The truly defective modules the result calls healthy, with their contrast.
+
+    Contrast = true rise of the module (``delta_t_k`` of the truth) [K] / robust spread (1.4826
+    MAD) of the measured ``delta_t_k`` of the truly healthy matched modules [K]; below
+    ``faint_contrast`` a miss counts as faint.
+    """
+    t_bad = np.array([d is not None for d in t_def], dtype=bool)
+    healthy = [_num(rp[k].get("delta_t_k")) for i, k in enumerate(match.tolist()) if k >= 0 and not t_bad[i]]
+    spread = scaled_mad(np.asarray(healthy, dtype=float)) if healthy else math.nan
+    mods: list[dict[str, Any]] = []
+    faint = 0
+    for i in np.flatnonzero(t_bad & ~p_bad).tolist():
+        rise = _num(tp[i].get("delta_t_k"))
+        contrast = rise / spread if np.isfinite(rise) and np.isfinite(spread) and spread > 0 else math.nan
+        k = int(match[i])
+        mods.append({"module_id": tp[i].get("module_id"), "defect": t_def[i], "true_delta_t_k": _f(rise),
+                     "measured_delta_t_k": _f(_num(rp[k].get("delta_t_k")) if k >= 0 else math.nan),
+                     "contrast": _f(contrast)})
+        faint += int(bool(np.isfinite(contrast)) and contrast < faint_contrast)
+    return {"healthy_spread_k": _f(spread), "faint_contrast": faint_contrast, "n_missed": len(mods),
+            "n_faint": faint, "modules": mods}
 
 
 def _ratio(a: float, b: float) -> float | None:
@@ -398,6 +433,9 @@ def evaluate(truth_dir: str | PathLike[str], result_dir: str | PathLike[str],
             off = meta["layout_offset_m"]
             ex, ey = float(shift[0]) + float(off[0]), float(shift[1]) + float(off[1])
             reg = {"truth_offset_m": off, "reported_shift_m": list(shift), "error_m": _f(math.hypot(ex, ey))}
+    if reg is not None and (truth_path.parent / "truth_ortho.geojson").exists():
+        placed = placement_error(truth_path.parent, rf, match, summ.get("registration"), summ.get("layout_shift_m"))
+        reg["placed_error_m"] = None if placed is None else {k: (_f(v) if k != "n" else v) for k, v in placed.items()}
 
     return {
         "truth": str(truth_path), "result": str(result_dir), "flight_check": identity, "matched_by": how,
@@ -420,6 +458,7 @@ def evaluate(truth_dir: str | PathLike[str], result_dir: str | PathLike[str],
                         "delta_t_norm_median_abs_error_detected_k": _f(dn_mae_found),
                         "n_defective_scored": int(dsel.sum())},
         "registration": reg,
+        "missed": _missed(tp, rp, match, t_def, p_bad, float(settings["faint_contrast"])),
         "detected_layout": (None if layout_scores is None else
                             {**layout_scores, **no_string_scores(t_def, p_def, match, rf)}),
     }
@@ -432,6 +471,18 @@ def _read_summary(result_dir: Path) -> dict[str, Any]:
     except (OSError, json.JSONDecodeError):
         return {}
     return data if isinstance(data, dict) else {}
+
+
+def _missed_lines(missed: Mapping[str, Any] | None) -> list[str]:
+    """The terminal line on missed defects: how many rose less than ``faint_contrast`` times
+    the healthy modules' measured spread."""
+    if not missed or not missed.get("n_missed"):
+        return []
+    if missed.get("healthy_spread_k") is None:
+        return [f"missed defects {missed['n_missed']} (no spread of healthy modules to read them against)"]
+    return [f"missed defects {missed['n_missed']}: {missed['n_faint']} faint (true rise under "
+            f"{missed['faint_contrast']:g} x the healthy spread of {missed['healthy_spread_k']:.2f} K), "
+            f"{missed['n_missed'] - missed['n_faint']} clear"]
 
 
 def format_report(scores: Mapping[str, Any]) -> str:
@@ -451,7 +502,8 @@ def format_report(scores: Mapping[str, Any]) -> str:
              f"false alarms per 1,000 healthy modules  {fmt(m['false_alarms_per_1000_healthy'])}"
              + ("  (at distractors: "
                 + ", ".join(f"{k} {v}" for k, v in sorted(m["false_alarms_by_distractor"].items())) + ")"
-                if m.get("false_alarms_by_distractor") else ""), "",
+                if m.get("false_alarms_by_distractor") else ""),
+             *_missed_lines(scores.get("missed")), "",
              f"{'class':<26}{'true':>6}{'pred':>6}{'right':>7}{'recall':>9}{'precision':>11}"]
     for c, v in scores["per_class"].items():
         lines.append(f"{c:<26}{v['n_true']:>6}{v['n_predicted']:>6}{v['correct']:>7}"
@@ -497,4 +549,8 @@ def format_report(scores: Mapping[str, Any]) -> str:
         r = scores["registration"]
         lines.append(f"layout shift: reported {r['reported_shift_m']} m for an offset of {r['truth_offset_m']} m"
                      f" (error {fmt(r['error_m'])} m)")
+        pe = r.get("placed_error_m")
+        if pe:
+            lines.append(f"footprints placed from the modules in the ortho: median {fmt(pe['median_m'])} m, "
+                         f"p95 {fmt(pe['p95_m'])} m, largest {fmt(pe['max_m'])} m ({pe['n']} modules)")
     return "\n".join(lines)

@@ -16,7 +16,7 @@ import numpy as np
 from pvscan.errors import OutputError, SimulationError
 
 __all__ = ["STRING_CLASSES", "truth_in_ortho", "layout_scores", "evaluate_layout", "detected_match",
-           "no_string_scores"]
+           "no_string_scores", "placement_error"]
 
 #: Defect classes that follow a string from its negative end: they need string ids, so an
 #: inspection on a layout detected in the ortho does not look for them.
@@ -168,3 +168,66 @@ def no_string_scores(t_def: list, p_def: list, match: np.ndarray, rf: list) -> d
                                   "n_true_in_layout": int(held.sum()),
                                   "recall_in_layout": _f(_ratio(int((held & p_bad).sum()), int(held.sum()))),
                                   "class_right": _f(_ratio(right, n_true))}}
+
+
+def _placed(xy: np.ndarray, reg: Mapping[str, Any], tables: list, rows: list) -> np.ndarray:
+    """Drawn module centres ``xy`` (ortho CRS) [m] moved as a registration record says.
+
+    ``placement`` (when the record has one): ``c + scale * R(rotation) (p - c) + shift``, then
+    the translation of the module's table (``tables``) and of its table row (``rows``); without
+    one, ``layout_shift_m``. Written here from the record's documented meaning, not with the
+    pipeline's own placement code, so an error in either shows.
+    """
+    pl = reg.get("placement") if isinstance(reg.get("placement"), Mapping) else None
+    if pl:
+        c = np.asarray(pl["centre"], dtype=float)
+        a = np.radians(float(pl["rotation_deg"]))
+        m = float(pl["scale"]) * np.array([[np.cos(a), -np.sin(a)], [np.sin(a), np.cos(a)]])
+        out = c + (xy - c) @ m.T + np.asarray(pl["shift_m"], dtype=float)
+    else:
+        out = xy + np.asarray(reg.get("layout_shift_m") or [0.0, 0.0], dtype=float)
+    by_table = {str(t["table_id"]): (float(t["dx_m"]), float(t["dy_m"])) for t in reg.get("tables") or []}
+    by_row = {(str(r["table_id"]), int(r["table_row"])): (float(r["dx_m"]), float(r["dy_m"]))
+              for r in reg.get("rows") or [] if r.get("table_row") is not None}
+    for i, (t, r) in enumerate(zip(tables, rows)):
+        out[i] += by_table.get(str(t), (0.0, 0.0))
+        if r is not None:
+            out[i] += by_row.get((str(t), int(r)), (0.0, 0.0))
+    return out
+
+
+def placement_error(truth_dir: Path, rf: list, match: np.ndarray, reg: Mapping[str, Any] | None,
+                    layout_shift_m: Any) -> dict[str, Any] | None:
+    """How far the footprints a result measured sat from the modules in the ortho [m].
+
+    The result's modules (``rf``, drawn positions, lon/lat) are moved as its registration record
+    ``reg`` (summary.json ``registration``) says, then their centres compared with the centres
+    of the matched truth modules in the ortho (:func:`truth_in_ortho`; ``match[i]`` the result
+    feature of truth module ``i``). Median, 95th percentile and largest distance; ``None`` when
+    nothing is matched. Unlike the reported shift against the drawn offset, this sees rotation,
+    scale and table-by-table errors of the placement.
+    """
+    import geopandas as gpd
+    import shapely
+
+    pos = truth_in_ortho(truth_dir)
+    if len(pos) == 0:
+        return None
+    reg = dict(reg or {})
+    if "layout_shift_m" not in reg and layout_shift_m is not None:
+        reg["layout_shift_m"] = layout_shift_m
+    by_id = {str(m): k for k, m in enumerate(pos["module_id"].astype(str))}
+    pairs = [(i, int(k)) for i, k in enumerate(np.asarray(match).tolist()) if k >= 0]
+    pairs = [(by_id.get(str(rf[k]["properties"].get("module_id")), -1), k) for _, k in pairs]
+    pairs = [(t, k) for t, k in pairs if t >= 0 and rf[k].get("geometry")]
+    if not pairs:
+        return None
+    geoms = [shapely.geometry.shape(rf[k]["geometry"]) for _, k in pairs]
+    drawn = gpd.GeoSeries(geoms, crs="EPSG:4326").to_crs(pos.crs)
+    xy = shapely.get_coordinates(shapely.centroid(np.asarray(drawn.to_numpy())))
+    props = [rf[k]["properties"] for _, k in pairs]
+    placed = _placed(xy, reg, [p.get("table_id") for p in props], [p.get("table_row") for p in props])
+    truth_xy = shapely.get_coordinates(shapely.centroid(np.asarray(pos.geometry.to_numpy())[[t for t, _ in pairs]]))
+    d = np.hypot(*(placed - truth_xy).T)
+    return {"n": int(len(d)), "median_m": float(np.median(d)), "p95_m": float(np.percentile(d, 95)),
+            "max_m": float(d.max())}
