@@ -434,7 +434,7 @@ def evaluate(truth_dir: str | PathLike[str], result_dir: str | PathLike[str],
             ex, ey = float(shift[0]) + float(off[0]), float(shift[1]) + float(off[1])
             reg = {"truth_offset_m": off, "reported_shift_m": list(shift), "error_m": _f(math.hypot(ex, ey))}
     if reg is not None and (truth_path.parent / "truth_ortho.geojson").exists():
-        placed = placement_error(truth_path.parent, rf, match, summ.get("registration"), summ.get("layout_shift_m"))
+        placed = placement_error(truth_path.parent, tf, rf, match, summ.get("registration"), summ.get("layout_shift_m"))
         reg["placed_error_m"] = None if placed is None else {k: (_f(v) if k != "n" else v) for k, v in placed.items()}
 
     return {

@@ -196,14 +196,15 @@ def _placed(xy: np.ndarray, reg: Mapping[str, Any], tables: list, rows: list) ->
     return out
 
 
-def placement_error(truth_dir: Path, rf: list, match: np.ndarray, reg: Mapping[str, Any] | None,
+def placement_error(truth_dir: Path, tf: list, rf: list, match: np.ndarray, reg: Mapping[str, Any] | None,
                     layout_shift_m: Any) -> dict[str, Any] | None:
     """How far the footprints a result measured sat from the modules in the ortho [m].
 
     The result's modules (``rf``, drawn positions, lon/lat) are moved as its registration record
     ``reg`` (summary.json ``registration``) says, then their centres compared with the centres
-    of the matched truth modules in the ortho (:func:`truth_in_ortho`; ``match[i]`` the result
-    feature of truth module ``i``). Median, 95th percentile and largest distance; ``None`` when
+    of the matched truth modules in the ortho (:func:`truth_in_ortho`, found by the module_id of
+    the truth feature ``tf[i]``; ``match[i]`` the result feature of truth module ``i``, so a
+    result whose ids differ from the truth's is compared module by module all the same). Median, 95th percentile and largest distance; ``None`` when
     nothing is matched. Unlike the reported shift against the drawn offset, this sees rotation,
     scale and table-by-table errors of the placement.
     """
@@ -217,8 +218,8 @@ def placement_error(truth_dir: Path, rf: list, match: np.ndarray, reg: Mapping[s
     if "layout_shift_m" not in reg and layout_shift_m is not None:
         reg["layout_shift_m"] = layout_shift_m
     by_id = {str(m): k for k, m in enumerate(pos["module_id"].astype(str))}
-    pairs = [(i, int(k)) for i, k in enumerate(np.asarray(match).tolist()) if k >= 0]
-    pairs = [(by_id.get(str(rf[k]["properties"].get("module_id")), -1), k) for _, k in pairs]
+    pairs = [(by_id.get(str(tf[i]["properties"].get("module_id")), -1), int(k))
+             for i, k in enumerate(np.asarray(match).tolist()) if k >= 0]
     pairs = [(t, k) for t, k in pairs if t >= 0 and rf[k].get("geometry")]
     if not pairs:
         return None

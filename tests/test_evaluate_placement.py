@@ -47,7 +47,7 @@ def _draw(ring: np.ndarray, theta: float, scale: float, shift: np.ndarray, extra
     return CENTRE + scale * (ring - CENTRE) @ _rot(theta).T + shift + extra
 
 
-def _write(tmp_path, seed: int, registration: dict, *, delta: dict | None = None):
+def _write(tmp_path, seed: int, registration: dict, *, delta: dict | None = None, rename: bool = False):
     """Truth in the ortho (EPSG 32632), the drawn layout as a result (lon/lat) and a summary."""
     tdir, rdir = tmp_path / "flight", tmp_path / "result"
     tdir.mkdir()
@@ -65,7 +65,8 @@ def _write(tmp_path, seed: int, registration: dict, *, delta: dict | None = None
         truth.append({"type": "Feature", "geometry": geom, "properties": {
             "module_id": mid, "defect": defect, "power_loss_w": 0.0, "delta_t_k": d_true, "t_true_median_c": 40.0}})
         result.append({"type": "Feature", "geometry": geom, "properties": {
-            "module_id": mid, "table_id": tid, "table_row": row, "defect": None, "power_loss_w": 0.0,
+            "module_id": f"X{len(result)}" if rename else mid, "table_id": tid, "table_row": row,
+            "defect": None, "power_loss_w": 0.0,
             "t_median_c": 40.0, "delta_t_k": d_meas}})
     fc = {"type": "FeatureCollection", "crs": {"type": "name", "properties": {"name": f"urn:ogc:def:crs:EPSG::{EPSG}"}},
           "features": ortho}
@@ -91,8 +92,11 @@ def _inverse(extra_rotation_deg: float = 0.0) -> dict:
             "rows": [], "layout_shift_m": (rd @ t).tolist()}
 
 
-def test_exact_inverse_places_every_module(tmp_path, seed):
-    tdir, rdir, _ = _write(tmp_path, seed, _inverse())
+@pytest.mark.parametrize("rename", [False, True])
+def test_exact_inverse_places_every_module(tmp_path, seed, rename):
+    # with other ids in the result (matched by position), modules are still paired through the
+    # truth's ids, not the result's
+    tdir, rdir, _ = _write(tmp_path, seed, _inverse(), rename=rename)
     pe = evaluate(tdir, rdir)["registration"]["placed_error_m"]
     assert pe["n"] == 40
     assert pe["max_m"] < 1e-3
