@@ -205,8 +205,9 @@ def placement_error(truth_dir: Path, tf: list, rf: list, match: np.ndarray, reg:
     of the matched truth modules in the ortho (:func:`truth_in_ortho`, found by the module_id of
     the truth feature ``tf[i]``; ``match[i]`` the result feature of truth module ``i``, so a
     result whose ids differ from the truth's is compared module by module all the same).
-    Median, 95th percentile and largest distance; ``None`` when nothing is matched. Unlike the reported shift against the drawn offset, this sees rotation,
-    scale and table-by-table errors of the placement.
+    Median, 95th percentile and largest distance; ``None`` when nothing is matched. Unlike the
+    reported shift against the drawn offset, this sees rotation, scale and table-by-table errors
+    of the placement.
     """
     import geopandas as gpd
     import shapely
