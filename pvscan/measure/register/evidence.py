@@ -45,6 +45,8 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 from rasterio.windows import Window
 
+from pvscan.measure.register._glass import _glass_mode, _glass_modes, neighbourhoods
+
 if TYPE_CHECKING:  # pragma: no cover
     import geopandas as gpd
 
@@ -187,6 +189,14 @@ class ModuleSample:
     def __len__(self) -> int:
         return len(self.index)
 
+    def near(self, radius_m: float, neighbours: int) -> np.ndarray | None:
+        """:func:`~pvscan.measure.register._glass.neighbourhoods` of the sampled modules (cached)."""
+        cache = self.__dict__.setdefault("_near", {})
+        key = (float(radius_m), int(neighbours))
+        if key not in cache:
+            cache[key] = neighbourhoods(self.frames, *key)
+        return cache[key]
+
 
 def _frames(modules: gpd.GeoDataFrame) -> np.ndarray:
     cols = ["fx0", "fy0", "fux", "fuy", "fvx", "fvy"]
@@ -289,7 +299,8 @@ class _quiet:
 def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float, inset_v: float,
                   local: np.ndarray | None = None, min_pixels: int = 8, with_mean: bool = False,
                   band_m: float | None = None,
-                  off_glass_k: float | None = None) -> Any:
+                  off_glass_k: float | None = None,
+                  off_glass_near: tuple[float, int] | None = None) -> Any:
     """Spread of the pixels inside each placed footprint: standard deviation [K], or with
     ``band_m`` its ratio to the outline contrast [-] (NaN: too few pixels).
 
@@ -310,6 +321,13 @@ def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float,
         footprints' means [K] (ground at a table end, a gap between tables: what a placement
         one module pitch off along a row puts some footprints on) gets the ratio 1, that of
         a featureless placement.
+    off_glass_near : (float, int), optional
+        ``(radius_m, neighbours)``: the glass a footprint is compared with is that of the
+        sampled modules within ``radius_m`` of it (at least its ``neighbours`` nearest, itself
+        included) [m, -], not of the whole sample: over a long flight of a large plant the glass
+        warms or cools with the sun (2.7 K per 100 m across the rows of a 2 h flight), so the
+        glass of one end of the site is not the glass of the other. When every sampled module
+        is a neighbour of every other, the same test as without it.
     """
     k = len(sample)
     if k == 0:
@@ -330,7 +348,9 @@ def module_spread(sample: ModuleSample, placement: Placement, *, inset_u: float,
             m_in = s1 / cnt + sample.ref
         ok_m = np.isfinite(m_in)
         if ok_m.any():
-            off = ok_m & (np.abs(m_in - _glass_mode(m_in[ok_m], off_glass_k)) > off_glass_k)
+            near = sample.near(*off_glass_near) if off_glass_near is not None else None
+            glass = _glass_mode(m_in[ok_m], off_glass_k) if near is None else _glass_modes(m_in, near, off_glass_k)
+            off = ok_m & (np.abs(m_in - glass) > off_glass_k)
             sd[off] = 1.0
     if with_mean:
         with np.errstate(invalid="ignore", divide="ignore"):
@@ -456,21 +476,6 @@ def _crop(coef: list, lo_u: np.ndarray, lo_v: np.ndarray, side: int) -> tuple[np
     return r0, c0, h, w
 
 
-def _glass_mode(means: np.ndarray, half_width_k: float) -> float:
-    """Centre of the window of +-``half_width_k`` holding the most footprint means [degC].
-
-    The glass of most footprints is the reference: with a placement one module pitch across
-    two-row tables half of the footprints read ground, and their median would lie between
-    ground and glass; the densest window picks one population (ties: the median of it)."""
-    m = np.sort(np.asarray(means, float))
-    if len(m) < 3:
-        return float(np.median(m))
-    hi = np.searchsorted(m, m + 2.0 * half_width_k, side="right")
-    count = hi - np.arange(len(m))
-    i = int(np.argmax(count))
-    return float(np.median(m[i:hi[i]]))
-
-
 def evidence(spread: np.ndarray) -> float:
     """Evidence of a placement from the per-module values: their mean (lower is better)."""
     s = np.asarray(spread, float)
@@ -499,6 +504,12 @@ def _unit_axes(sample: ModuleSample) -> tuple[np.ndarray, np.ndarray]:
     u = np.array([np.median(fr[:, 2]), np.median(fr[:, 3])])
     v = np.array([np.median(fr[:, 4]), np.median(fr[:, 5])])
     return u / max(np.hypot(*u), 1e-12), v / max(np.hypot(*v), 1e-12)
+
+
+def off_glass_near(cfg: Mapping) -> tuple[float, int]:
+    """The neighbourhood of the off-glass test (:func:`module_spread`'s ``off_glass_near``):
+    ``[register] evidence_off_glass_radius_m`` [m] and ``evidence_off_glass_neighbours`` [-]."""
+    return float(cfg["evidence_off_glass_radius_m"]), int(cfg["evidence_off_glass_neighbours"])
 
 
 def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, *,
@@ -536,7 +547,8 @@ def placement_quality(sample: ModuleSample, placement: Placement, cfg: Mapping, 
     """
     inset = float(cfg["evidence_inset"])
     sd0, mean0 = module_spread(sample, placement, local=local, with_mean=True, inset_u=inset, inset_v=inset,
-                               band_m=float(cfg["evidence_band_m"]), off_glass_k=float(cfg["evidence_off_glass_k"]))
+                               band_m=float(cfg["evidence_band_m"]), off_glass_k=float(cfg["evidence_off_glass_k"]),
+                               off_glass_near=off_glass_near(cfg))
     e0 = evidence(sd0)
     # the probes compare plain spreads: the outline contrast that guides the search (and
     # keeps it off smooth ground) also grows when a footprint slides onto a table edge

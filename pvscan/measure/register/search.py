@@ -29,6 +29,7 @@ from pvscan.measure.register.evidence import (
     _spread_chunk,
     evidence,
     module_spread,
+    off_glass_near,
 )
 
 __all__ = ["refine_placement", "refine_translations"]
@@ -96,7 +97,8 @@ def _spread_kw(cfg: Mapping) -> dict[str, Any]:
     if cfg.get("evidence_band_m") is not None:
         # the outline contrast widens the basin; without it (the last, local stage) the plain
         # spread inside a nearly whole footprint has its minimum where the module is
-        kw.update(band_m=float(cfg["evidence_band_m"]), off_glass_k=float(cfg["evidence_off_glass_k"]))
+        kw.update(band_m=float(cfg["evidence_band_m"]), off_glass_k=float(cfg["evidence_off_glass_k"]),
+                  off_glass_near=off_glass_near(cfg))
     return kw
 
 
