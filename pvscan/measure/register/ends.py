@@ -366,6 +366,15 @@ def _votes(orthos: Any, placed: gpd.GeoDataFrame, sets: list[list[tuple[int, int
     return list(np.split(out, np.cumsum(sizes)[:-1]))
 
 
+def _spread_subset(lines: list[tuple[int, int, int]], most: int) -> list[tuple[int, int, int]]:
+    """At most ``most`` of ``lines``, evenly spaced through their order (table by table, so
+    across the whole site); all of them when there are no more (``most`` 0: all)."""
+    if most <= 0 or len(lines) <= most:
+        return lines
+    keep = np.unique(np.round(np.linspace(0, len(lines) - 1, most)).astype(np.int64))
+    return [lines[i] for i in keep.tolist()]
+
+
 def judge_ends(orthos: Any, modules: gpd.GeoDataFrame, placed: gpd.GeoDataFrame,
                cfg: Mapping[str, Any]) -> dict[str, Any]:
     """Whether the table ends confirm a placement against one module pitch either way.
@@ -378,19 +387,20 @@ def judge_ends(orthos: Any, modules: gpd.GeoDataFrame, placed: gpd.GeoDataFrame,
     placed : geopandas.GeoDataFrame
         The same modules, in the same order, where the placement puts them [m].
     cfg : mapping
-        ``[register]`` settings (``ends_inset``, ``ends_min_valid``, ``ends_min_vote``).
+        ``[register]`` settings (``ends_inset``, ``ends_min_valid``, ``ends_min_vote``,
+        ``ends_max_lines``: a large site votes with that many lines a direction, evenly spread).
 
     Returns
     -------
     dict
         Per direction (``along``, ``across`` the table rows, when the tables have lines of
         modules that way): the median vote against one pitch forward and one back over the
-        lines, and the number of lines [-]; ``lowest`` (the lowest of those medians, None
+        lines, and the number of lines that voted [-]; ``lowest`` (the lowest of those medians, None
         when no line could be read), ``limit`` (``ends_min_vote``) and ``decisive``
         (``lowest`` above ``limit``, or nothing to read: the ends do not prefer a placement
         one pitch away).
     """
-    lines = end_lines(modules)
+    lines = {name: _spread_subset(v, int(cfg["ends_max_lines"])) for name, v in end_lines(modules).items()}
     out: dict[str, Any] = {}
     meds: list[float] = []
     names = [name for name in ("along", "across") if lines[name]]
