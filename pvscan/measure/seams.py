@@ -25,7 +25,11 @@ module. So, along every table row (modules ordered by ``table_col``):
 3. the stretch is an artefact, and is levelled by its offset, when it covers modules of
    more than one string, or when another row of its table has a stretch over at least
    half of the same columns at a similar level (a seam or a reflection crosses rows; a
-   defect of one string does not repeat in the row beside it).
+   defect of one string does not repeat in the row beside it), or (``level_cold_in_string``)
+   when it is colder than the modules either side and they and it belong to one string (a
+   string's faults only warm its modules: an open string all of them, PID from its negative
+   end; so a string cooler in its middle than at both sides is the image's doing, such as two
+   seams over a one-row table whose string opened).
 
 Stretches that run to the end of a row are left alone (which side would be the artefact is
 not known from the row). Every module, cell and substring statistic of a levelled module
@@ -65,8 +69,8 @@ class Stretch:
     offset_k : float
         Its median excess over the rest of its row [K] (subtracted when levelling).
     reason : str
-        ``"strings"`` (it covers more than one string) or ``"rows"`` (another row of its
-        table has a matching stretch).
+        ``"strings"`` (it covers more than one string), ``"rows"`` (another row of its
+        table has a matching stretch) or ``"cold"`` (colder than the same string either side).
     """
 
     modules: np.ndarray
@@ -238,28 +242,40 @@ def find_stretches(modules: pd.DataFrame, t_median: np.ndarray,
         for members in by_len.values():
             for i, f in zip(members, _closed_stretches_rows(np.stack([t[rows[i][1]] for i in members]), cfg, sigma)):
                 fits[i] = f
-        found = []  # (row key, modules, offset)
+        found = []  # (row key, modules, offset, the modules either side)
+        w = int(cfg["window_modules"])
         for i, (k, mem) in enumerate(rows):
             for first, last, offset in fits[i]:
-                found.append((int(k), mem[first:last + 1], offset))
+                sides = np.concatenate([mem[max(first - w, 0):first], mem[last + 1:last + 1 + w]])
+                found.append((int(k), mem[first:last + 1], offset, sides))
         level = np.zeros_like(t)
-        for _k, seg, off in found:
+        for _k, seg, off, _s in found:
             level[seg] = off
     tol_abs, tol_rel = float(cfg["match_abs_k"]), float(cfg["match_rel"])
+    in_string = bool(cfg["level_cold_in_string"])
     out = []
-    for j, (k, seg, off) in enumerate(found):
+    for j, (k, seg, off, sides) in enumerate(found):
         if sid is not None and len(set(sid[seg]) - {""}) > 1:  # modules without a string do not count
             out.append(Stretch(seg, off, "strings"))
             continue
         cols = set(col[seg].tolist())
-        for j2, (k2, seg2, off2) in enumerate(found):
+        for j2, (k2, seg2, off2, _s2) in enumerate(found):
             if (j2 != j and k2 != k and table[seg2[0]] == table[seg[0]] and np.sign(off2) == np.sign(off)
                     and abs(off2 - off) <= tol_abs + tol_rel * max(abs(off), abs(off2))
                     and len(cols & set(col[seg2].tolist())) >= 0.5 * len(cols)):
                 out.append(Stretch(seg, off, "rows"))
                 break
+        else:
+            if in_string and sid is not None and off < 0 and _inside_one_string(sid, seg, sides):
+                out.append(Stretch(seg, off, "cold"))
     log.debug("seams: %d closed stretches, %d levelled", len(found), len(out))
     return out
+
+
+def _inside_one_string(sid: np.ndarray, seg: np.ndarray, sides: np.ndarray) -> bool:
+    """Whether a stretch and the modules either side of it all belong to one known string."""
+    names = set(sid[seg].tolist()) | set(sid[sides].tolist())
+    return len(names) == 1 and "" not in names
 
 
 def level_stats(stats: Any, stretches: list[Stretch]) -> tuple[Any, np.ndarray]:

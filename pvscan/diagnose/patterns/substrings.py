@@ -84,7 +84,8 @@ def pattern_bypassed_substring(F: Features, cfg: Mapping, final: bool = True) ->
     edge_col = np.zeros_like(col_raised)
     edge_col[:, 1:] |= cr[:, 1:] != cr[:, :-1]
     edge_col[:, :-1] |= cr[:, :-1] != cr[:, 1:]
-    partial = _intermediate_columns(F, np.where(edge_col[:, None, :], Xlo, np.nan), mean_raise)
+    partial = _intermediate_columns(F, np.where(edge_col[:, None, :], Xlo, np.nan), mean_raise,
+                                    float(cfg["substring_edge_bleed"]))
     hit &= ~(partial > p_noise + float(cfg["substring_partial_max"]))
     # and those columns on the plateau (raised or not) within the cell noise: the worst
     # one's mean squared deviation from the plateau model, in cell-noise units (clipped at 5)
@@ -256,18 +257,24 @@ def _carried_across_edge(F: Features, raised: np.ndarray, candidates: np.ndarray
     return out
 
 
-def _intermediate_columns(F: Features, Xlo: np.ndarray, raise_k: np.ndarray) -> np.ndarray:
+def _intermediate_columns(F: Features, Xlo: np.ndarray, raise_k: np.ndarray, bleed: float = 0.0) -> np.ndarray:
     """Largest share, over the module's cell columns, of cells that break the column's pattern.
 
     A conducting bypass diode raises whole cell columns (its substring's) to the plateau;
     a step of the image crossing the module at an angle leaves columns part raised: cells
-    half-way up, or some cells of the column up and others down.
+    half-way up, or some cells of the column up and others down. Half-way is between
+    ``0.25 + bleed`` and ``0.75 - bleed`` of the raise: the column beside the plateau
+    borrows up to ``bleed`` of it (heat across the cell gap, a footprint a few centimetres
+    off the cell grid) and the plateau's edge column lends as much, so the band keeps the
+    quarter-raise margin from either level (and the noise share expected, computed with
+    that margin, stays the same).
     """
+    lo, hi = 0.25 + bleed, 0.75 - bleed
     with np.errstate(invalid="ignore", divide="ignore"):
         x = Xlo / raise_k[:, None, None]
         valid = np.isfinite(x)
         nv = np.maximum(valid.sum(axis=1), 1)
-        mid = ((x > 0.25) & (x < 0.75)).sum(axis=1) / nv
+        mid = ((x > lo) & (x < hi)).sum(axis=1) / nv
         up = (x >= 0.5).sum(axis=1) / nv
         mixed = np.minimum(up, 1.0 - up)
         return np.maximum(mid, mixed).max(axis=1)
