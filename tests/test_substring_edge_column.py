@@ -9,9 +9,7 @@ leaves a column half raised. [classify] substring_edge_bleed (0.15) is the borro
 allowed: the part-raised-column test counts cells between 0.25 + bleed and 0.75 - bleed
 of the raise.
 """
-import numpy as np
 import pytest
-
 from test_classify import Plant, _with, found, open_rise
 
 
