@@ -49,7 +49,6 @@ from pvscan.errors import OutputError, SimulationError
 from pvscan.io.geojson import read_feature_collection
 from pvscan.io.records import as_float as _num
 from pvscan.layout_scores import STRING_CLASSES, detected_match, evaluate_layout, no_string_scores, placement_error
-from pvscan.robust import scaled_mad
 
 __all__ = ["evaluate", "format_report", "flight_identity_check", "LOSS_GROUP_KINDS", "evaluate_layout",
            "STRING_CLASSES"]
@@ -135,8 +134,13 @@ def _missed(tp: Sequence[Mapping[str, Any]], rp: Sequence[Mapping[str, Any]], ma
     ``faint_contrast`` a miss counts as faint.
     """
     t_bad = np.array([d is not None for d in t_def], dtype=bool)
-    healthy = [_num(rp[k].get("delta_t_k")) for i, k in enumerate(match.tolist()) if k >= 0 and not t_bad[i]]
-    spread = scaled_mad(np.asarray(healthy, dtype=float)) if healthy else math.nan
+    healthy = np.asarray([_num(rp[k].get("delta_t_k")) for i, k in enumerate(match.tolist())
+                          if k >= 0 and not t_bad[i]], dtype=float)
+    healthy = healthy[np.isfinite(healthy)]
+    # 1.4826 x the median absolute deviation (Hampel 1974), written here: the yardstick uses
+    # none of the pipeline's statistics
+    spread = (1.4826 * float(np.median(np.abs(healthy - np.median(healthy)))) if len(healthy) >= 3
+              else math.nan)
     mods: list[dict[str, Any]] = []
     faint = 0
     for i in np.flatnonzero(t_bad & ~p_bad).tolist():

@@ -53,6 +53,9 @@ FORBIDDEN: tuple[tuple[str, str, str], ...] = (
     ("pvscan.evaluate", "pvscan.measure", "the yardstick does not use the stages it checks"),
     ("pvscan.evaluate", "pvscan.diagnose", "the yardstick does not use the stages it checks"),
     ("pvscan.evaluate", "pvscan.pipeline", "the yardstick does not use the stages it checks"),
+    ("pvscan.evaluate", "pvscan.robust", "the yardstick does not use the statistics of the stages it checks"),
+    ("pvscan.layout_scores", "pvscan.measure", "the yardstick does not use the stages it checks"),
+    ("pvscan.layout_scores", "pvscan.robust", "the yardstick does not use the statistics of the stages it checks"),
 )
 
 #: Imports that still point the wrong way, each with the reason it is still there. An entry
@@ -175,6 +178,8 @@ def test_known_upward_imports_still_exist():
     ("pvscan.report._build", "pvscan.io.records", None),
     ("pvscan.evaluate", "pvscan.diagnose.classify", "yardstick"),
     ("pvscan.evaluate", "pvscan.simulate.scenario", None),
+    ("pvscan.evaluate", "pvscan.robust", "statistics"),
+    ("pvscan.layout_scores", "pvscan.measure.register", "yardstick"),
     ("pvscan.history.store", "pvscan.cli._common", "layer history"),
     ("pvscan.diagnose.loss", "pvscan.simulate.electrical", "never imports the simulator"),
     ("pvscan.measure.zonal", "pvscan.physics.radiometry", None),
