@@ -70,7 +70,7 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
         (``block_m`` aside, which only decides where the windows fall) is analysed once.
         Two block sizes that cut a site into the same number of blocks across and along
         give the same windows, so the second pass reuses the first one's blocks and
-        differs only in its fit.
+        differs only in its fit. The plausibility test's module samples are kept there too.
 
     Returns
     -------
@@ -218,7 +218,7 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
         if plausible:
             # no block is distinct: the glass temperature may still pick one candidate
             note, switch = _plausibility(orthos, tiles, geoms, blocks, phys_all, to_m, reg.measured_m,
-                                         exp_c, cfg)
+                                         exp_c, cfg, block_cache)
         if switch is None:
             if note:
                 reg.notes.append(note)
@@ -355,7 +355,7 @@ def estimate_shift(orthos: Any, modules: geopandas.GeoDataFrame, settings: Mappi
         # the module glass must look like sunlit modules at the flight's conditions
         if plausible:
             note, switch = _plausibility(orthos, tiles, geoms, blocks, phys_all, to_m, (sx, sy),
-                                         exp_c, cfg)
+                                         exp_c, cfg, block_cache)
     if switch is not None:
         centre, factor = switch
         for bd, (c0, n0) in zip(blocks, saved):

@@ -149,6 +149,7 @@ def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], su
             p = placement_of(r, centre)
             if p is not None:
                 proposals.append(p)
+        cache.clear()  # the blocks' arrays and module samples are not needed beyond the passes
         reg = fits[0]
         refine = True
         # the block correlation's own placement (the whole table outlines, ends included) and

@@ -208,10 +208,13 @@ def _shift_clusters(blocks: list[Any], phys_all: list[Any], to_m: Callable[..., 
 
 def _plausibility(orthos: Any, tiles: list[Any], geoms: np.ndarray, blocks: list[Any], phys_all: list[Any],
                   to_m: Callable[..., tuple[float, float]], fitted: tuple[float, float], expected_c: float,
-                  cfg: Mapping[str, Any]) -> tuple[str, tuple[tuple[float, float], float] | None]:
+                  cfg: Mapping[str, Any],
+                  cache: dict[Any, Any] | None = None) -> tuple[str, tuple[tuple[float, float], float] | None]:
     """Test the fitted shift against the other candidate shifts by the module glass's
     apparent temperature; returns ``(note, switch)`` with ``switch = (centre, factor)``
-    when another candidate is clearly more plausible, else None."""
+    when another candidate is clearly more plausible, else None. ``cache`` (the block
+    correlation's, shared by its passes over one layout) keeps the module samples, which do
+    not depend on the block size: read once for all passes."""
     radius = float(cfg["reject_m"])
     ratio = float(cfg["plausibility_ratio"])
     clusters = _shift_clusters(blocks, phys_all, to_m, radius)
@@ -226,7 +229,13 @@ def _plausibility(orthos: Any, tiles: list[Any], geoms: np.ndarray, blocks: list
             break
     if not cands:
         return "", None
-    samples = _module_samples(orthos, tiles, geoms, cfg)
+    key = ("plausibility_samples", len(geoms), int(cfg["plausibility_modules"]), float(cfg["plausibility_inset"]),
+           float(cfg["max_shift_m"]))
+    samples = cache.get(key) if cache is not None else None
+    if samples is None:
+        samples = _module_samples(orthos, tiles, geoms, cfg)
+        if cache is not None:
+            cache[key] = samples
     t_fit, n_fit = _median_at(samples, fitted)
     if not math.isfinite(t_fit):
         return "plausibility test skipped: too few modules sampled", None
