@@ -78,6 +78,9 @@ class TableFit:
         ``ok``, ``cut`` or ``nodata`` per module (row 0 = upper edge, col 0 = s_lo).
     glass : ndarray (rows, cols)
         Share of valid pixels of each module at the glass level [-].
+    rows_comb_k : float
+        Contrast of the frame lines between the modules of the weakest row [K] (measured for
+        a lattice laid on whole rows, :func:`_snap_rows`; NaN otherwise).
     """
 
     origin: np.ndarray
@@ -99,6 +102,7 @@ class TableFit:
     cut: tuple[bool, bool, bool, bool]
     status: np.ndarray = field(repr=False)
     glass: np.ndarray = field(repr=False)
+    rows_comb_k: float = math.nan
 
     def corners(self) -> np.ndarray:
         """Module corners (rows, cols, 4, 2) [m], counter-clockwise for a right-handed frame."""
@@ -317,6 +321,10 @@ def _fit_window(orthos: Any, cand: TableCandidate, module: Any, layout: Any, set
                      layout, settings, gsd, orientations, comb_k)
     if fit is None:
         return None, (False, False)
+    if not (cut[2] or cut[3]) and (fit.confidence < float(settings["min_confidence"])
+                                   or fit.misfit > float(settings["max_misfit"])):
+        fit = _snap_rows(x, y, t, valid, centre, axis, across, length, depth, level, band, cand, cut, module,
+                         layout, settings, gsd, comb_k, fit)
     # the ends: the table goes on when the ground band beyond an end (up to most of a pitch:
     # the next table of a row stands about a pitch away) is at the glass level
     pitch = fit.module_s_m + fit.gap_s_m
@@ -401,10 +409,10 @@ def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings
 
 
 def _row_lines(s: np.ndarray, w: np.ndarray, t: np.ndarray, n: int, m: int, size_s: float, size_w: float,
-               gap_s: float, gap_w: float, gsd: float, shift_m: float) -> float:
-    """Median contrast of the lines between a table's module rows [K]: the glass half a row
-    pitch either side (the cooler of the two: a slope is not a line) against the coolest bin
-    within ``shift_m`` of each line;
+               gap_s: float, gap_w: float, gsd: float, shift_m: float, weakest: bool = False) -> float:
+    """Median (``weakest``: smallest) contrast of the lines between a table's module rows [K]:
+    the glass half a row pitch either side (the cooler of the two: a slope is not a line)
+    against the coolest bin within ``shift_m`` of each line;
     NaN for a table of one row. ``s, w`` are the samples' coordinates from the lattice's
     origin [m]."""
     if m < 2:
@@ -431,11 +439,59 @@ def _row_lines(s: np.ndarray, w: np.ndarray, t: np.ndarray, n: int, m: int, size
         out.append(side - line)
     v = np.array(out, float)
     v = v[np.isfinite(v)]
-    return float(np.median(v)) if v.size else math.nan
+    if not v.size:
+        return math.nan
+    return float(v.min() if weakest else np.median(v))
+
+
+def _snap_rows(x, y, t, valid, centre, axis, across, length, depth, level, band, cand, cut, module, layout,
+               settings, gsd, comb_k, fit: TableFit) -> TableFit:
+    """A lattice of whole module rows laid from either long edge, for a fit refused for its
+    extent across (misfit or row-line test).
+
+    The comb of a fixed table's frame lines can run on into its shadow (light through the
+    module gaps), and a cloud shadow or a seam can stop it a row short: the extent across is
+    then not a whole number of rows and the lattice laid over it misses the lines between the
+    rows. Each of the two extents across (the comb's and the mosaic candidate's) is cut or
+    grown to the whole numbers of rows either side of it, laid from its one long edge and from
+    the other. A lattice counts when every line between its rows shows and every row shows the
+    frame lines between its modules (:func:`_build_fit` with ``every_row``), which a lattice a
+    part of a row off, or a row laid on a shadow (light through the module gaps: warm lines)
+    does not; of those the one of most rows, then of the strongest weakest row
+    (``rows_comb_k``), is kept when its confidence beats ``fit``'s. Nothing is laid where the
+    comb itself (``comb_k``) is weaker than ``contrast_full_k``, or over a single column.
+    Its ``misfit`` is its own (along the axis; across it lies on whole rows by construction).
+    """
+    cos_t = math.cos(math.radians(layout.tilt_deg))
+    gap_w = float(layout.gap_m) * cos_t
+    mod_w = (module.length_m if fit.orientation == "portrait" else module.width_m) * cos_t
+    pitch_w = mod_w + gap_w
+    w_cand = float((cand.centre - centre) @ across)
+    best, best_key = fit, None
+    if comb_k < float(settings["contrast_full_k"]):
+        return fit  # no comb of frame lines to lay rows on (ground, a strip of shadow)
+    for lo, hi in ((-0.5 * depth, 0.5 * depth), (w_cand - 0.5 * cand.depth_m, w_cand + 0.5 * cand.depth_m)):
+        n_w = (hi - lo + gap_w) / pitch_w
+        for m in sorted({math.floor(n_w), math.ceil(n_w)}):
+            if m < 1:
+                continue
+            d_new = m * pitch_w - gap_w
+            for mid in (lo + 0.5 * d_new, hi - 0.5 * d_new):
+                f = _build_fit(x, y, t, valid, centre + mid * across, axis, across, length, d_new, level, band,
+                               cand, cut, module, layout, settings, gsd, (fit.orientation,), comb_k, True)
+                if f is None:
+                    continue
+                if f.confidence <= 0:
+                    continue
+                key = (f.rows, f.rows_comb_k)
+                if best_key is None or key > best_key:
+                    best, best_key = f, key
+    return best if best.confidence > fit.confidence else fit
 
 
 def _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band, cand, cut, module, layout,
-               settings, gsd, orientations=("portrait", "landscape"), comb_k=0.0) -> TableFit | None:
+               settings, gsd, orientations=("portrait", "landscape"), comb_k=0.0,
+               every_row: bool = False) -> TableFit | None:
     cos_t = math.cos(math.radians(layout.tilt_deg))
     gap_s, gap_w = float(layout.gap_m), float(layout.gap_m) * cos_t
     tie = float(settings["orientation_tie_misfit"])
@@ -494,18 +550,40 @@ def _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band,
     status[(tot.reshape(m, n) == 0)] = "nodata"
     # the evidence of a table: its glass against the ground, or (ground at the glass
     # temperature) the comb of frame lines between its modules [K]
-    contrast = max(abs(level - cand.ground_c) if math.isfinite(cand.ground_c) else 0.0, comb_k)
+    # (the ground off the glass level too: a shadow at the glass level beside the table can
+    # take the ring's median to it)
+    contrast = max(abs(level - cand.ground_c) if math.isfinite(cand.ground_c) else 0.0,
+                   abs(level - cand.ground_off_c) if math.isfinite(cand.ground_off_c) else 0.0, comb_k)
     conf = (max(0.0, 1.0 - 2.0 * misfit) * float(np.median(glass))
             * min(1.0, contrast / float(settings["contrast_full_k"])))
     # rows of modules show the lines between them as the modules of a row do (a lattice laid
     # over a shadow or ground beside the table does not)
-    row_lines = _row_lines(s, w, t, n, m, size_s, size_w, gap_s, gap_w, gsd, float(settings["line_shift_m"]))
+    # (``every_row``: every line, not the median, for a lattice whose rows were not measured)
+    row_lines = _row_lines(s, w, t, n, m, size_s, size_w, gap_s, gap_w, gsd, float(settings["line_shift_m"]),
+                           every_row)
     if math.isfinite(row_lines) and (row_lines < float(settings["dip_fraction"]) * comb_k
                                      or row_lines < float(settings["contrast_full_k"])):
         conf = 0.0
+    rows_comb = math.nan
+    if every_row and n < 2:
+        conf = 0.0  # one module has no frame lines of its own to test
+    if every_row and conf > 0 and n >= 2:
+        # and each row shows the frame lines between its modules (a shadow beside a fixed
+        # table shows light through the module gaps instead, warmer lines)
+        shift = float(settings["line_shift_m"])
+        col_lines = []
+        for r in range(m):
+            w_r = w - r * (size_w + gap_w)
+            near = (w_r > -0.5 * size_w) & (w_r < 1.5 * size_w)
+            col_lines.append(_row_lines(w_r[near], s[near], t[near], 1, n, size_w, size_s, gap_w, gap_s, gsd,
+                                        shift))
+        rows_comb = float(np.min(col_lines))
+        if not (rows_comb >= float(settings["dip_fraction"]) * comb_k
+                and rows_comb >= float(settings["contrast_full_k"])):
+            conf = 0.0
     return TableFit(origin=origin, axis=axis, across=across, length_m=float(length), depth_m=float(depth),
                     rows=m, cols=n, orientation=orient, module_s_m=float(size_s), module_w_m=float(size_w),
                     gap_s_m=gap_s, gap_w_m=gap_w, confidence=float(np.clip(conf, 0, 1)), misfit=float(misfit),
                     level_c=float(level), contrast_k=float(contrast),
                     cut=(bool(cut[0]), bool(cut[1]), bool(cut[2]), bool(cut[3])),
-                    status=status, glass=glass)
+                    status=status, glass=glass, rows_comb_k=rows_comb)

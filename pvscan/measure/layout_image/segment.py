@@ -45,6 +45,12 @@ class TableCandidate:
         Median of the ground around the table [degC].
     area_px : int
         Glass pixels of the region on the mosaic.
+    ground_off_c : float
+        Median of the ground around the table that is off the glass level (by more than
+        ``level_tol_k``) when it is at least ``ground_off_share`` of the ring [degC]; NaN
+        otherwise. A table's shadow at about the glass temperature can fill half the ring and
+        take ``ground_c`` to the glass level; the sunlit ground beside it still shows the
+        table's contrast.
     """
 
     centre: np.ndarray
@@ -56,6 +62,7 @@ class TableCandidate:
     energy_log_thr: float
     ground_c: float
     area_px: int
+    ground_off_c: float = math.nan
 
 
 def _fill_nan(img: np.ndarray) -> np.ndarray:
@@ -237,7 +244,10 @@ def find_tables(img: np.ndarray, transform: Any, module_width_m: float, settings
             ring = ndi.binary_dilation(sub_lab == j + 1, close, iterations=max(2, win // 2)) & ~glass
             gvals = sub[ring & np.isfinite(sub)]
             ground = float(np.median(gvals)) if gvals.size else math.nan
+            off = gvals[np.abs(gvals - level) > tol]
+            ground_off = float(np.median(off)) if gvals.size and off.size >= float(
+                settings["ground_off_share"]) * gvals.size else math.nan
             out.append(TableCandidate(centre=centre, axis=axis, length_m=length, depth_m=depth,
                                       level_c=level, band_c=band, energy_log_thr=thr, ground_c=ground,
-                                      area_px=int(sizes[j])))
+                                      area_px=int(sizes[j]), ground_off_c=ground_off))
     return out
