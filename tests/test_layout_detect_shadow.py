@@ -10,8 +10,6 @@ misses the lines between the rows; it used to be refused (confidence 0) and the 
 """
 from __future__ import annotations
 
-import math
-
 import numpy as np
 import pytest
 from conftest import test_seed
