@@ -40,6 +40,7 @@ from typing import Any
 
 import numpy as np
 
+from pvscan.measure.layout_image.rows import _columns_run, _row_lines
 from pvscan.measure.layout_image.samples import _comb_strip, _extent, _half_crossing, _samples
 from pvscan.measure.layout_image.segment import TableCandidate, _mode, glass_band
 
@@ -408,42 +409,6 @@ def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings
     return orient, 0.5 * (s_lo + s_hi), 0.5 * (w_lo + w_hi), ext_s, w_hi - w_lo, float(contrast)
 
 
-def _row_lines(s: np.ndarray, w: np.ndarray, t: np.ndarray, n: int, m: int, size_s: float, size_w: float,
-               gap_s: float, gap_w: float, gsd: float, shift_m: float, weakest: bool = False) -> float:
-    """Median (``weakest``: smallest) contrast of the lines between a table's module rows [K]:
-    the glass half a row pitch either side (the cooler of the two: a slope is not a line)
-    against the coolest bin within ``shift_m`` of each line;
-    NaN for a table of one row. ``s, w`` are the samples' coordinates from the lattice's
-    origin [m]."""
-    if m < 2:
-        return math.nan
-    pitch_w = size_w + gap_w
-    inside = (s > 0) & (s < n * size_s + (n - 1) * gap_s) & np.isfinite(t)
-    bin_m = gsd / 2
-    nb = int(math.ceil((m * pitch_w) / bin_m)) + 1
-    k = np.floor(w[inside] / bin_m).astype(int)
-    ok = (k >= 0) & (k < nb)
-    sums = np.bincount(k[ok], weights=t[inside][ok], minlength=nb)
-    cnt = np.bincount(k[ok], minlength=nb)
-    prof = np.where(cnt > 0, sums / np.maximum(cnt, 1), np.nan)
-    reach = max(1, int(round(shift_m / bin_m)))
-    out = []
-    for r in range(1, m):
-        c = (r * pitch_w - 0.5 * gap_w) / bin_m
-        j0, j1 = int(max(0, round(c) - reach)), int(min(nb - 1, round(c) + reach))
-        jl, jh = int(round(c - 0.5 * pitch_w / bin_m)), int(round(c + 0.5 * pitch_w / bin_m))
-        if j1 < j0 or jl < 0 or jh >= nb:
-            continue
-        line = np.nanmin(prof[j0:j1 + 1]) if np.isfinite(prof[j0:j1 + 1]).any() else math.nan
-        side = np.nanmin(prof[[jl, jh]]) if np.isfinite(prof[[jl, jh]]).any() else math.nan
-        out.append(side - line)
-    v = np.array(out, float)
-    v = v[np.isfinite(v)]
-    if not v.size:
-        return math.nan
-    return float(v.min() if weakest else np.median(v))
-
-
 def _snap_rows(x, y, t, valid, centre, axis, across, length, depth, level, band, cand, cut, module, layout,
                settings, gsd, comb_k, fit: TableFit) -> TableFit:
     """A lattice of whole module rows laid from either long edge, for a fit refused for its
@@ -454,8 +419,9 @@ def _snap_rows(x, y, t, valid, centre, axis, across, length, depth, level, band,
     then not a whole number of rows and the lattice laid over it misses the lines between the
     rows. Each of the two extents across (the comb's and the mosaic candidate's) is cut or
     grown to the whole numbers of rows either side of it, laid from its one long edge and from
-    the other. A lattice counts when every line between its rows shows and every row shows the
-    frame lines between its modules (:func:`_build_fit` with ``every_row``), which a lattice a
+    the other (to one row only from a lattice of one row). A lattice counts when every line
+    between its rows shows and every row shows the frame lines between its modules
+    (:func:`_build_fit` with ``every_row``), which a lattice a
     part of a row off, or a row laid on a shadow (light through the module gaps: warm lines)
     does not; of those the one of most rows, then of the strongest weakest row
     (``rows_comb_k``), is kept when its confidence beats ``fit``'s. Nothing is laid where the
@@ -473,8 +439,8 @@ def _snap_rows(x, y, t, valid, centre, axis, across, length, depth, level, band,
     for lo, hi in ((-0.5 * depth, 0.5 * depth), (w_cand - 0.5 * cand.depth_m, w_cand + 0.5 * cand.depth_m)):
         n_w = (hi - lo + gap_w) / pitch_w
         for m in sorted({math.floor(n_w), math.ceil(n_w)}):
-            if m < 1:
-                continue
+            if m < 1 or (m == 1 and fit.rows > 1):
+                continue  # a lattice of rows is not cut to one row (no line between rows to test)
             d_new = m * pitch_w - gap_w
             for mid in (lo + 0.5 * d_new, hi - 0.5 * d_new):
                 f = _build_fit(x, y, t, valid, centre + mid * across, axis, across, length, d_new, level, band,
@@ -491,7 +457,7 @@ def _snap_rows(x, y, t, valid, centre, axis, across, length, depth, level, band,
 
 def _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band, cand, cut, module, layout,
                settings, gsd, orientations=("portrait", "landscape"), comb_k=0.0,
-               every_row: bool = False) -> TableFit | None:
+               every_row: bool = False, split: bool = True) -> TableFit | None:
     cos_t = math.cos(math.radians(layout.tilt_deg))
     gap_s, gap_w = float(layout.gap_m), float(layout.gap_m) * cos_t
     tie = float(settings["orientation_tie_misfit"])
@@ -564,6 +530,17 @@ def _build_fit(x, y, t, valid, centre, axis, across, length, depth, level, band,
     if math.isfinite(row_lines) and (row_lines < float(settings["dip_fraction"]) * comb_k
                                      or row_lines < float(settings["contrast_full_k"])):
         conf = 0.0
+    if split and conf > 0 and m >= 2 and n >= 3 and not (cut[0] or cut[1]):
+        run = _columns_run(s, w, t, n, m, size_s, size_w, gap_s, gap_w, gsd, settings,
+                           float((cand.centre - origin) @ axis) / (size_s + gap_s))
+        if run is not None:
+            # the lattice over the run of columns that are modules (:func:`.rows._columns_run`)
+            c0, c1 = run
+            k = c1 - c0 + 1
+            mid = s0 + (c0 + 0.5 * k) * (size_s + gap_s) - 0.5 * gap_s
+            return _build_fit(x, y, t, valid, centre + mid * axis, axis, across, k * size_s + (k - 1) * gap_s,
+                              depth, level, band, cand, cut, module, layout, settings, gsd, (orient,), comb_k,
+                              every_row, split=False)
     rows_comb = math.nan
     if every_row and n < 2:
         conf = 0.0  # one module has no frame lines of its own to test
