@@ -72,7 +72,7 @@ def summary_lines(result_dir: str | os.PathLike[str], top: int | None = None) ->
     """The summary as a list of lines (see :func:`print_inspection_summary`); ``top`` work
     orders listed (default: ``[report] summary_top`` of the default pipeline)."""
     from pvscan.io.settings import load_pipeline
-    from pvscan.report import SEVERITIES, load_result, validity_checks
+    from pvscan.report import SEVERITIES, detection_limit, load_result, validity_checks
 
     if top is None:
         top = int(load_pipeline()["report"]["summary_top"])
@@ -145,6 +145,10 @@ def summary_lines(result_dir: str | os.PathLike[str], top: int | None = None) ->
         names = [str(n).replace("_", " ") for n in raw_checks if n]
         lines.extend(textwrap.wrap(f"validity: all {len(names)} checks passed ({', '.join(names)})", _WIDTH,
                                    subsequent_indent="  "))
+    lim = detection_limit(data.summary, float(load_pipeline()["report"]["detection_limit_spreads"]))
+    if lim is not None:
+        lines.extend(_wrap(f"detection limit: faults warming a module by less than ~{lim[1]:.1f} K "
+                           f"({lim[0]:.2f} K healthy scatter) may be missed (faint PID, light soiling)"))
     cov = raw_checks.get("coverage")
     if cov and cov.get("modules_without_data"):
         lines.append(f"modules without usable pixels: {int(cov['modules_without_data']):,}")

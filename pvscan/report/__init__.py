@@ -12,8 +12,9 @@ load_result(result_dir) -> ResultData
 from __future__ import annotations
 
 from pvscan.report._build import build_report, read_overview_ahead, write_report
-from pvscan.report._result import SEVERITIES, ResultData, load_result, validity_checks
+from pvscan.report._result import SEVERITIES, ResultData, detection_limit, load_result, validity_checks
 from pvscan.report._text import DEFECT_TEXT, SAFETY_CAUTIONS
 
 __all__ = ["write_report", "build_report", "read_overview_ahead", "load_result", "ResultData", "validity_checks",
+           "detection_limit",
            "SEVERITIES", "SAFETY_CAUTIONS", "DEFECT_TEXT"]

@@ -25,7 +25,7 @@ from pvscan.report._geometry import MapGeometry, as_list
 from pvscan.report._images import Palette, figure_palette, module_window, png_data_uri, quantise_rgb
 from pvscan.report._raster import OverviewRead, ThermalView, open_thermal
 from pvscan.report._registration import registration_detail
-from pvscan.report._result import SEVERITIES, ResultData, get_path, load_result, validity_checks
+from pvscan.report._result import SEVERITIES, ResultData, detection_limit, get_path, load_result, validity_checks
 from pvscan.report._series import series_plot
 from pvscan.report._shots import card_shots
 from pvscan.report._text import DEFECT_TEXT, SAFETY_CAUTIONS, cautions, defect_name, fmt, isnum, period
@@ -289,7 +289,7 @@ def _build(data: ResultData, view: ThermalView | None, modules_gdf: Any, cfg: di
             k, r = card_of[prio]
             pin_links.append({"href": f"#a{k + 1}", "left": f"{100 * fx:.2f}", "top": f"{100 * fy:.2f}",
                               "title": f"#{prio} {defect_name(r['defect'])} ({r['severity']}), {r['module_id']}"})
-    valid = sec.validity(data.summary, checks, ok)
+    valid = sec.validity(data.summary, checks, ok, detection_limit(data.summary, float(cfg["detection_limit_spreads"])))
     n_safety = int((an["severity"] == "safety").sum()) if len(an) else 0
     pipeline_name = Path(str(data.summary.get("pipeline") or "default")).name
     context = {

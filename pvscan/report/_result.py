@@ -179,6 +179,23 @@ class ResultData:
         return p if p.exists() else None
 
 
+def detection_limit(summary: Mapping, spreads: float) -> tuple[float, float] | None:
+    """The scatter of the healthy modules [K] (the ``module_spread`` check's ``module_spread_k``:
+    robust spread of module against module) and ``spreads`` times it [K]: a fault that warms a
+    module by less is inside the healthy scatter of this flight and may be missed (faint PID,
+    light soiling). None when the result does not record the spread."""
+    rec = get_path(summary, "validity", default=None)
+    checks = rec.get("checks") if isinstance(rec, Mapping) else None
+    if not isinstance(checks, Sequence) or isinstance(checks, str):
+        return None
+    for c in checks:
+        if isinstance(c, Mapping) and c.get("name") == "module_spread":
+            k = _num(c.get("module_spread_k"))
+            if math.isfinite(k) and k > 0:
+                return k, spreads * k
+    return None
+
+
 def validity_checks(summary: Mapping) -> tuple[list[dict], bool | None]:
     """The acquisition-validity checks of summary.json as a list of plain dicts.
 

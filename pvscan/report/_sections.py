@@ -71,9 +71,11 @@ def data_period(data: ResultData) -> str:
     return period(data.flight_start, data.flight_end)
 
 
-def validity(summary: Mapping[str, Any], checks: list[dict], ok: bool | None) -> dict[str, Any]:
+def validity(summary: Mapping[str, Any], checks: list[dict], ok: bool | None,
+             limit: tuple[float, float] | None = None) -> dict[str, Any]:
     """Every check of ``summary.json`` ``validity.checks`` as rows (whatever its name), the failed
-    ones first in the banner."""
+    ones first in the banner; ``limit`` (healthy scatter, detection limit [K], see
+    :func:`pvscan.report._result.detection_limit`) as a sentence."""
     rows = []
     for c in checks:
         lim: Any = c["limit"]
@@ -88,7 +90,16 @@ def validity(summary: Mapping[str, Any], checks: list[dict], ok: bool | None) ->
     cf: Any = rec.get("confidence_factor") if isinstance(rec, Mapping) else None
     note = rec.get("note") if isinstance(rec, Mapping) and isinstance(rec.get("note"), str) else ""
     return {"ok": ok, "rows": rows, "failed": failed, "banner": ok is False,
-            "confidence_factor": fmt(cf, 2) if isnum(cf) and float(cf) < 1.0 else "", "note": note}
+            "confidence_factor": fmt(cf, 2) if isnum(cf) and float(cf) < 1.0 else "", "note": note,
+            "limit": "" if limit is None else detection_sentence(*limit)}
+
+
+def detection_sentence(spread_k: float, limit_k: float) -> str:
+    """What a crew cannot expect this flight to show, from the healthy modules' scatter [K]."""
+    return (f"Detection limit: healthy modules scatter {spread_k:.2f} K module against module, so a fault "
+            f"that warms a module by less than about {limit_k:.1f} K (a faint PID string, light soiling, an "
+            f"open module at low irradiance) cannot be told from that scatter and may be missing from this "
+            f"result; a clean result is no proof that such faults are absent.")
 
 
 _REG_SKIP = {"blocks", "notes", "message", "tables", "affine", "evidence"}
