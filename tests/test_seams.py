@@ -305,3 +305,22 @@ def test_cold_stretches_on_healthy_rows_are_rare(rng):
         m0, t0 = _rows(rng, n_tables=2, spread=0.6)
         n += sum(s.reason == "cold" for s in seams.find_stretches(m0, t0))
     assert n <= 3
+
+
+def test_every_levelling_reason_is_one_summary_json_accepts(rng):
+    # summary.json (schemas/summary.schema.json) lists the reasons a stretch was levelled; a
+    # reason the seams stage gives but the schema lacks makes the run end in an error when the
+    # result is written (each reason drawn here from a row that makes it)
+    from pvscan.io.resources import load_schema
+
+    enum = set(load_schema("summary.schema.json")["properties"]["image_artefacts"]["properties"]
+               ["stretches"]["items"]["properties"]["reason"]["enum"])
+    m, t = _rows(rng, n_tables=3, rows=1, cols=17, per_string=17)
+    t[_sel(m, 1, 1, 17, "T1")] += 3.3
+    t[_sel(m, 1, 6, 12, "T1")] -= 2.0
+    reasons = {s.reason for s in seams.find_stretches(m, t)}
+    m2, t2 = _rows(rng)
+    t2[_sel(m2, 2, 9, 17)] += 1.8
+    reasons |= {s.reason for s in seams.find_stretches(m2, t2)}
+    assert {"cold", "strings"} <= reasons
+    assert reasons <= enum
