@@ -52,3 +52,15 @@ def test_an_unknown_reason_is_refused(seed):
     lev = SeamLevelling([Stretch(np.arange(3), 0.5, f"unknown-{seed}")], np.zeros(3), True)
     art_schema = load_schema("summary.schema.json")["properties"]["image_artefacts"]
     assert schema_errors(lev.to_dict(ids), art_schema)
+
+
+def test_every_stretch_reason_is_explained_in_the_report():
+    from types import SimpleNamespace
+
+    from pvscan.report._sections import artefacts
+
+    for reason in sorted(_reasons()):
+        doc = {"image_artefacts": {"levelling": True, "levelled_modules": 2,
+                                   "stretches": [{"modules": ["A", "B"], "offset_k": -1.1, "reason": reason}]}}
+        item = artefacts(SimpleNamespace(summary=doc))["items"][0]
+        assert not item.rstrip().endswith(","), (reason, item)  # a reason without words leaves "..., "

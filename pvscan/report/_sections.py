@@ -344,7 +344,8 @@ def artefacts(data: ResultData) -> dict[str, Any] | None:
     for s in stretches[:12]:
         mods = s.get("modules") or []
         span = f"{mods[0]} to {mods[-1]}" if len(mods) > 1 else (mods[0] if mods else "?")
-        why = {"strings": "crosses a string boundary", "rows": "repeats in the table's other row"}.get(
+        why = {"strings": "crosses a string boundary", "rows": "repeats in the table's other row",
+               "cold": "colder than its own string on both sides (a string's faults only warm it)"}.get(
             s.get("reason"), "")
         items.append(f"{span} ({len(mods)} modules): {sig(s.get('offset_k'))} K, {why}")
     return {"n": int(art.get("levelled_modules") or 0), "items": items,
