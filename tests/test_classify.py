@@ -1087,23 +1087,6 @@ def test_open_string_beside_a_row_a_seam_raises_is_still_an_open_string(rng):
     assert sorted(found.iloc[0]["module_ids"]) == sorted(m.module_id.iloc[run])
 
 
-@pytest.mark.parametrize("bleed, found_it", [(0.15, True), (0.0, False)])
-def test_bypassed_substring_lending_heat_to_the_next_cell_column(rng, bleed, found_it):
-    # a bypassed strip (eta * G / U warmer, pvlib Faiman: about 4 K at 850 W/m2 and 2 m/s)
-    # lends the cell column beside it 15 % of its raise (heat conducted across the cell gap,
-    # a footprint a few centimetres off the cell grid; from memory): still a bypassed
-    # substring, which the edge column's yardstick (cell noise plus
-    # [classify] substring_edge_bleed of the raise) keeps; without it the column's excess
-    # over the model is about five cell-noise units and the strip is rejected as a slanted step
-    p = Plant(rng)
-    i = p.index(col=5)
-    p.bypass(i, [1])
-    nxt = max(p.cols_of_sub(1)) + 1
-    p.cm[i][:, nxt] += 0.15 * open_rise()
-    an, _ = p.run(settings=_with(substring_edge_bleed=bleed))
-    assert (found(an) == {i: "bypassed_substring"}) is found_it, an[["module_id", "defect"]]
-
-
 @pytest.mark.parametrize("row_min, expected", [(3, "open_module"), (2, "open_string")])
 def test_open_module_beside_a_warm_module_of_its_table_row(rng, row_min, expected):
     # table polygons without strings: the table row stands in for the strings; an open module
