@@ -49,6 +49,10 @@ PVSCAN = [sys.executable, "-m", "pvscan.cli.main"]
 WRONG_BELOW = 0.9
 #: ... or with its power-loss ratio outside this range
 LOSS_RATIO_OK = (0.5, 2.0)
+#: 95th-percentile placement error [m] above which a wrong flight's reading says the registration
+#: was off: about half the shorter side of a cell (full cells are about 0.16 m; common practice),
+#: where a footprint's edge band starts to take in the neighbouring cell or the ground.
+PLACEMENT_OFF_M = 0.1
 
 
 def _last_line(p) -> str:
@@ -161,7 +165,7 @@ def _placement_p95(reg: dict | None) -> float | None:
 def what_looked_wrong(r: dict) -> str:
     """A short reading of a wrong flight's record (registration, false alarms, misses)."""
     bits = []
-    if (r.get("registration_error_m") or 0.0) > 0.1:
+    if (r.get("registration_error_m") or 0.0) > PLACEMENT_OFF_M:
         bits.append(f"registration off by {r['registration_error_m']:.2f} m")
     fa = {k: v for k, v in (r.get("false_alarms_by_distractor") or {}).items() if v}
     if fa:
