@@ -45,3 +45,15 @@ def test_no_limit_without_a_recorded_scatter(tmp_path):
     folder = build_result(tmp_path)
     assert "Detection limit" not in write_report(folder).read_text(encoding="utf-8")
     assert "detection limit" not in " ".join(summary_lines(folder))
+
+
+def test_the_run_s_own_factor_is_used(tmp_path, seed):
+    # a run made with a tuned pipeline records its [report] settings in summary.json; the limit
+    # it states is its own, not the default pipeline's
+    spread = float(np.round(np.random.default_rng(seed + 1).uniform(0.2, 1.2), 3))
+    folder = build_result(tmp_path)
+    s = _with_spread(folder, spread)
+    s.setdefault("settings", {})["report"] = {"detection_limit_spreads": 4.5}
+    (folder / "summary.json").write_text(json.dumps(s), encoding="utf-8")
+    assert detection_limit(s, 3.0) == (spread, 4.5 * spread)
+    assert f"less than ~{4.5 * spread:.1f} K" in " ".join(summary_lines(folder))

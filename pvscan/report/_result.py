@@ -181,9 +181,13 @@ class ResultData:
 
 def detection_limit(summary: Mapping, spreads: float) -> tuple[float, float] | None:
     """The scatter of the healthy modules [K] (the ``module_spread`` check's ``module_spread_k``:
-    robust spread of module against module) and ``spreads`` times it [K]: a fault that warms a
-    module by less is inside the healthy scatter of this flight and may be missed (faint PID,
-    light soiling). None when the result does not record the spread."""
+    robust spread of module against module) and ``[report] detection_limit_spreads`` times it
+    [K]: a fault that warms a module by less is inside the healthy scatter of this flight and may
+    be missed (faint PID, light soiling). The factor is the one the run recorded (summary.json
+    ``settings.report``), else ``spreads``. None when the result does not record the spread."""
+    rec_spreads = _num(get_path(summary, "settings.report.detection_limit_spreads", default=None))
+    if math.isfinite(rec_spreads) and rec_spreads > 0:
+        spreads = rec_spreads
     rec = get_path(summary, "validity", default=None)
     checks = rec.get("checks") if isinstance(rec, Mapping) else None
     if not isinstance(checks, Sequence) or isinstance(checks, str):
