@@ -349,7 +349,7 @@ def _row_clusters(modules: pd.DataFrame, defect: np.ndarray, ok: np.ndarray,
     three findings), and where the stretch is (``row_cluster_modules`` [module ids],
     ``row_cluster_findings``, ``row_cluster_rate``).
     """
-    from scipy.stats import binom
+    from scipy.special import bdtrc
 
     from pvscan.measure.rows import row_keys
 
@@ -377,7 +377,9 @@ def _row_clusters(modules: pd.DataFrame, defect: np.ndarray, ok: np.ndarray,
         sel = k >= 3
         if not sel.any():
             continue
-        pv = binom.sf(k[sel] - 1, c_ok[b][sel] - c_ok[a][sel], p)
+        # P(X >= k) = P(X > k - 1), X ~ Bin(n, p); bdtrc is NaN where k > n, a chance of 0
+        n_ok = c_ok[b][sel] - c_ok[a][sel]
+        pv = np.where(k[sel] > n_ok, 0.0, bdtrc(k[sel] - 1, n_ok, p))
         j = int(np.argmin(pv))
         if pv[j] < best_p:
             best_p, best = float(pv[j]), (mem, int(a[sel][j]), int(b[sel][j]), int(k[sel][j]))

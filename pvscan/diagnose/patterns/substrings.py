@@ -17,7 +17,7 @@ from __future__ import annotations
 from collections.abc import Mapping
 
 import numpy as np
-from scipy.stats import norm
+from scipy.special import ndtr
 
 from pvscan.diagnose.features import Features, Hits, confidence, fit_score, quality
 from pvscan.robust import iqr, nanmax, nanmean, nanmedian, nanmin
@@ -77,7 +77,7 @@ def pattern_bypassed_substring(F: Features, cfg: Mapping, final: bool = True) ->
     hit = F.ok & clean & fit_ok & cover_ok & flat & (mean_raise >= floor)
     # columns part raised: expected share from cell noise alone, plus a margin
     with np.errstate(invalid="ignore", divide="ignore"):
-        p_noise = 2.0 * norm.sf(0.25 * mean_raise / max(F.sig_cell, 1e-3))
+        p_noise = 2.0 * ndtr(-0.25 * mean_raise / max(F.sig_cell, 1e-3))  # normal upper tail
     # the columns on either side of the plateau's edges, where a slanted step shows (the
     # module's outer columns see the ground and the frame and are left alone)
     cr = col_raised.astype(np.int8)
