@@ -1,7 +1,7 @@
 """Layout detection over random simulated flights: modules found, extra, corner error.
 
     nice -n 10 python benchmarks/validate_layout_detect.py [--seeds 300-311] [--family any]
-        [--scenario FILE] [--inspect] [--keep DIR] [--json FILE]
+        [--scenario FILE] [--inspect] [--keep DIR [--reuse]] [--json FILE]
 
 Each seed draws a whole random flight (``pvscan simulate --random``: fixed tables and
 trackers, portrait and landscape, full and half-cut modules, hot and cold ground, seams,
@@ -41,7 +41,8 @@ def _seeds(text: str) -> list[int]:
     return out
 
 
-def one_flight(seed: int, family: str, root: Path, inspect: bool, scenario: Path | None = None) -> dict:
+def one_flight(seed: int, family: str, root: Path, inspect: bool, scenario: Path | None = None,
+               reuse: bool = False) -> dict:
     from pvscan.evaluate import evaluate, evaluate_layout
     from pvscan.io.manifest import load_flight
     from pvscan.io.ortho import open_orthos
@@ -51,7 +52,11 @@ def one_flight(seed: int, family: str, root: Path, inspect: bool, scenario: Path
 
     flight_dir = root / f"{scenario.stem if scenario else family}-{seed}"
     t0 = time.perf_counter()
-    if scenario is not None:
+    if reuse and (flight_dir / "truth.json").exists() and (flight_dir / "flight.toml").exists():
+        from types import SimpleNamespace
+
+        sim = SimpleNamespace(manifest=flight_dir / "flight.toml")
+    elif scenario is not None:
         sim = simulate_flight(scenario, flight_dir, seed=seed, overwrite=True)
     else:
         sim = simulate_random(seed, flight_dir, family, overwrite=True)
@@ -111,6 +116,8 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--inspect", action="store_true", help="also inspect each flight without its layout")
     ap.add_argument("--keep", type=Path, default=None, help="keep the flights in this folder")
     ap.add_argument("--json", type=Path, default=None, help="write every flight's figures here")
+    ap.add_argument("--reuse", action="store_true",
+                    help="with --keep: detect again on flights simulated there before (same seeds, no new simulation)")
     args = ap.parse_args(argv)
     warnings.simplefilter("ignore")
     rows = []
@@ -118,7 +125,7 @@ def main(argv: list[str] | None = None) -> int:
         root = args.keep or Path(tmp)
         root.mkdir(parents=True, exist_ok=True)
         for seed in _seeds(args.seeds):
-            s = one_flight(seed, args.family, root, args.inspect, args.scenario)
+            s = one_flight(seed, args.family, root, args.inspect, args.scenario, args.reuse and args.keep is not None)
             rows.append(s)
             ce = s.get("corner_error_m") or {}
             ns = s.get("no_string_classes") or {}

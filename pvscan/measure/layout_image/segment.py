@@ -217,37 +217,67 @@ def find_tables(img: np.ndarray, transform: Any, module_width_m: float, settings
         if region.sum() < min_px:
             continue
         sub = img[r0:r1, c0:c1]
-        inreg = region & np.isfinite(sub)
-        vals = sub[inreg]
-        if vals.size < min_px:
-            continue
-        # the glass level: the mode of the region's temperatures weighted by fine texture, so a
-        # smooth shadow larger than the table does not take the place of the glass
-        level = _mode(vals, settings["level_bin_k"], fine[r0:r1, c0:c1][inreg])
-        band = glass_band(vals, level, settings["level_bin_k"], tol)
-        glass = region & (sub >= band[0]) & (sub <= band[1])
-        glass = ndi.binary_closing(glass, close, iterations=n_close)
-        glass = ndi.binary_fill_holes(glass)
-        glass = ndi.binary_opening(glass, close, iterations=n_open)
-        sub_lab, m = ndi.label(glass)
-        if m == 0:
-            continue
-        sizes = ndi.sum_labels(glass, sub_lab, index=np.arange(1, m + 1))
-        for j in np.flatnonzero(sizes >= min_px):
-            rr, cc = np.nonzero(sub_lab == j + 1)
-            # pixel corners, so the hull covers whole pixels
-            xs = np.concatenate([cc, cc + 1, cc, cc + 1]) + c0
-            ys = np.concatenate([rr, rr, rr + 1, rr + 1]) + r0
-            x = transform.c + xs * transform.a
-            y = transform.f + ys * transform.e
-            centre, axis, length, depth = _min_rect(np.stack([x, y], axis=1))
-            ring = ndi.binary_dilation(sub_lab == j + 1, close, iterations=max(2, win // 2)) & ~glass
-            gvals = sub[ring & np.isfinite(sub)]
-            ground = float(np.median(gvals)) if gvals.size else math.nan
-            off = gvals[np.abs(gvals - level) > tol]
-            ground_off = float(np.median(off)) if gvals.size and off.size >= float(
-                settings["ground_off_share"]) * gvals.size else math.nan
-            out.append(TableCandidate(centre=centre, axis=axis, length_m=length, depth_m=depth,
-                                      level_c=level, band_c=band, energy_log_thr=thr, ground_c=ground,
-                                      area_px=int(sizes[j]), ground_off_c=ground_off))
+        fine_sub = fine[r0:r1, c0:c1]
+        remaining = region & np.isfinite(sub)
+        for _ in range(int(settings["level_passes"])):
+            vals = sub[remaining]
+            if vals.size < min_px:
+                break
+            # the glass level: the mode of the region's temperatures weighted by fine texture, so
+            # a smooth shadow larger than the table does not take the place of the glass
+            level = _mode(vals, settings["level_bin_k"], fine_sub[remaining])
+            band = glass_band(vals, level, settings["level_bin_k"], tol)
+            in_band = remaining & (sub >= band[0]) & (sub <= band[1])
+            found = _level_tables(sub, in_band, level, band, (r0, c0), transform, thr, min_px, close, n_close,
+                                  n_open, win, tol, settings)
+            out.extend(c for c, _ in found)
+            # the rest of the region at another level: the part of the plant a cloud shadow or a
+            # mosaic seam shows warmer or cooler (one textured region can hold the whole plant),
+            # or ground and shadows (their candidates show no comb of frame lines, :mod:`.lattice`)
+            taken = np.zeros_like(remaining)
+            for _, mask in found:
+                taken |= mask
+            taken = ndi.binary_dilation(taken, close, iterations=max(1, win // 2))
+            remaining &= ~(taken | in_band)
+    return out
+
+
+def _level_tables(sub: np.ndarray, in_band: np.ndarray, level: float, band: tuple[float, float],
+                  offset: tuple[int, int], transform: Any, thr: float, min_px: float, close: np.ndarray,
+                  n_close: int, n_open: int, win: int, tol: float, settings: dict
+                  ) -> list[tuple[TableCandidate, np.ndarray]]:
+    """The candidates of one glass level of a textured region, with their pixel masks.
+
+    ``sub`` is the region's window of the mosaic [degC] at row, column ``offset``; ``in_band``
+    its pixels within ``band`` [degC] of the level ``level`` [degC]: closed across frame lines,
+    filled and opened (``n_close``, ``n_open`` iterations of ``close``), each connected part of
+    at least ``min_px`` pixels is a candidate.
+    """
+    r0, c0 = offset
+    glass = ndi.binary_closing(in_band, close, iterations=n_close)
+    glass = ndi.binary_fill_holes(glass)
+    glass = ndi.binary_opening(glass, close, iterations=n_open)
+    sub_lab, m = ndi.label(glass)
+    if m == 0:
+        return []
+    sizes = ndi.sum_labels(glass, sub_lab, index=np.arange(1, m + 1))
+    out = []
+    for j in np.flatnonzero(sizes >= min_px):
+        mask = sub_lab == j + 1
+        rr, cc = np.nonzero(mask)
+        # pixel corners, so the hull covers whole pixels
+        xs = np.concatenate([cc, cc + 1, cc, cc + 1]) + c0
+        ys = np.concatenate([rr, rr, rr + 1, rr + 1]) + r0
+        x = transform.c + xs * transform.a
+        y = transform.f + ys * transform.e
+        centre, axis, length, depth = _min_rect(np.stack([x, y], axis=1))
+        ring = ndi.binary_dilation(mask, close, iterations=max(2, win // 2)) & ~glass
+        gvals = sub[ring & np.isfinite(sub)]
+        ground = float(np.median(gvals)) if gvals.size else math.nan
+        off = gvals[np.abs(gvals - level) > tol]
+        ground_off = float(np.median(off)) if gvals.size and off.size >= float(
+            settings["ground_off_share"]) * gvals.size else math.nan
+        out.append((TableCandidate(centre=centre, axis=axis, length_m=length, depth_m=depth,
+                                   level_c=level, band_c=band, energy_log_thr=thr, ground_c=ground,
+                                   area_px=int(sizes[j]), ground_off_c=ground_off), mask))
     return out
