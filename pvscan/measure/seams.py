@@ -70,7 +70,8 @@ class Stretch:
         Its median excess over the rest of its row [K] (subtracted when levelling).
     reason : str
         ``"strings"`` (it covers more than one string), ``"rows"`` (another row of its
-        table has a matching stretch) or ``"cold"`` (colder than the same string either side).
+        table has a matching stretch), ``"cold"`` (colder than the same string either side) or
+        ``"edge"`` (it runs to its table's end, where every row of the table steps at one column).
     """
 
     modules: np.ndarray
@@ -268,8 +269,109 @@ def find_stretches(modules: pd.DataFrame, t_median: np.ndarray,
         else:
             if in_string and sid is not None and off < 0 and _inside_one_string(sid, seg, sides):
                 out.append(Stretch(seg, off, "cold"))
+    if bool(cfg["level_table_edges"]):
+        out += _table_edges(rows, t, col, table, sid, out, cfg, sigma)
     log.debug("seams: %d closed stretches, %d levelled", len(found), len(out))
     return out
+
+
+def _table_edges(rows: list[tuple[int, np.ndarray]], t: np.ndarray, col: np.ndarray, table: np.ndarray,
+                 sid: np.ndarray | None, levelled: list[Stretch], cfg: Mapping[str, Any],
+                 sigma: float) -> list[Stretch]:
+    """Stretches that run to a table's end and are a mosaic seam crossing the whole table.
+
+    A seam that reaches the end of a table steps every row of it at the same column by about
+    the same amount; a row's stretch from that column to the table's end is then not closed,
+    and :func:`find_stretches` leaves it. It is levelled here when, at one boundary column
+    ``c`` (at least ``min_modules`` modules from the table's end), every row of the table
+    (two or more) steps the same way by at least ``min_step_k``, the steps agree within
+    ``match_abs_k`` + ``match_rel`` x the step, their mean reaches ``seam_z`` standard errors
+    (end side against the ``window_modules`` modules beyond the boundary, over the rows), at
+    least one row is plain (beyond the boundary it stays at the level of the rest of its row:
+    the step is not the edge of a defect there), and the end sides hold modules of more than
+    one string (one string's fault stepping two rows at one column is
+    not levelled), and the boundary cuts a string standing ``min_step_k`` or more above the rest
+    of its row beyond the boundary (a warm string, open or PID, split into two levels by the seam:
+    only then is the string's own test misled; levelling every seam edge would leave the module
+    the seam line crosses half at each level, a false finding). Strings must be known. Of
+    several such boundaries the one of the largest mean step is taken; each row's end side is
+    levelled by the mean step of the rows.
+    """
+    if sid is None:
+        return []
+    w = int(cfg["window_modules"])
+    min_len = int(cfg["min_modules"])
+    min_step = float(cfg["min_step_k"])
+    tol_abs, tol_rel = float(cfg["match_abs_k"]), float(cfg["match_rel"])
+    z_min = float(cfg["seam_z"])
+    level = np.zeros_like(t)
+    for st in levelled:
+        level[st.modules] = st.offset_k
+    tl = t - level
+    by_table: dict[str, list[np.ndarray]] = {}
+    for _k, mem in rows:
+        if table[mem[0]]:
+            by_table.setdefault(str(table[mem[0]]), []).append(mem)
+    out: list[Stretch] = []
+    for mems in by_table.values():
+        if len(mems) < 2:
+            continue
+        cols = np.unique(np.concatenate([col[m] for m in mems]))
+        best: tuple[float, list[tuple[np.ndarray, float]]] | None = None
+        for end in (0, 1):
+            for j in range(min_len, len(cols) - w + 1):
+                c = cols[j] if end == 0 else cols[len(cols) - j]
+                steps, sides, plain, cut_warm = [], [], False, False
+                for mem in mems:
+                    cm, v = col[mem], tl[mem]
+                    side = mem[cm < c] if end == 0 else mem[cm >= c]
+                    beyond = v[(cm >= c) & (cm < c + w)] if end == 0 else v[(cm < c) & (cm >= c - w)]
+                    rest = v[cm >= c] if end == 0 else v[cm < c]
+                    if len(side) < min_len or (level[side] != 0).any() or np.isfinite(beyond).sum() < 2:
+                        break
+                    d = float(np.nanmedian(tl[side]) - np.nanmedian(beyond))
+                    if not np.isfinite(d):
+                        break
+                    steps.append(d)
+                    sides.append(side)
+                    plain |= abs(float(np.nanmedian(beyond)) - float(np.nanmedian(rest))) <= tol_abs
+                    cut_warm |= _warm_string_cut(mem, cm, tl, sid, c, end, min_step)
+                else:
+                    st_arr = np.asarray(steps)
+                    mean = float(st_arr.mean())
+                    n_side = min(len(sd) for sd in sides)
+                    se = max(sigma, 1e-9) * np.sqrt(1.0 / n_side + 1.0 / w) / np.sqrt(len(steps))
+                    strings = set(np.concatenate([sid[sd] for sd in sides]).tolist()) - {""}
+                    if (plain and cut_warm and (np.sign(st_arr) == np.sign(mean)).all()
+                            and (np.abs(st_arr) >= min_step).all()
+                            and np.ptp(st_arr) <= tol_abs + tol_rel * abs(mean) and abs(mean) >= z_min * se
+                            and len(strings) > 1
+                            and (best is None or abs(mean) > best[0])):
+                        best = (abs(mean), [(sd, mean) for sd in sides])
+        if best is not None:
+            out += [Stretch(sd, off, "edge") for sd, off in best[1]]
+    return out
+
+
+def _warm_string_cut(mem: np.ndarray, cm: np.ndarray, tl: np.ndarray, sid: np.ndarray, c: float, end: int,
+                     min_step: float) -> bool:
+    """Whether the boundary at column ``c`` cuts a string of this row whose part beyond it
+    (away from the table's end) stands ``min_step`` [K] or more above the rest of the row: a
+    warm string (open, PID) that a seam over the table's end would split into two levels. The
+    rest is the row's other strings on the same side of the boundary (the end side is the seam's)."""
+    side = cm < c if end == 0 else cm >= c
+    if not side.any() or side.all():
+        return False
+    inner = int(np.flatnonzero(side)[-1]) if end == 0 else int(np.flatnonzero(side)[0])
+    outer = inner + 1 if end == 0 else inner - 1
+    name = sid[mem[inner]]
+    if not name or sid[mem[outer]] != name:
+        return False
+    own = sid[mem] == name
+    part, others = tl[mem[own & ~side]], tl[mem[~own & ~side]]
+    if np.isfinite(part).sum() < 1 or np.isfinite(others).sum() < 2:
+        return False
+    return bool(np.nanmedian(part) - np.nanmedian(others) >= min_step)
 
 
 def _inside_one_string(sid: np.ndarray, seg: np.ndarray, sides: np.ndarray) -> bool:

@@ -345,7 +345,8 @@ def artefacts(data: ResultData) -> dict[str, Any] | None:
         mods = s.get("modules") or []
         span = f"{mods[0]} to {mods[-1]}" if len(mods) > 1 else (mods[0] if mods else "?")
         why = {"strings": "crosses a string boundary", "rows": "repeats in the table's other row",
-               "cold": "colder than its own string on both sides (a string's faults only warm it)"}.get(
+               "cold": "colder than its own string on both sides (a string's faults only warm it)",
+               "edge": "runs to the table's end, where every row of the table steps at the same column"}.get(
             s.get("reason"), "")
         items.append(f"{span} ({len(mods)} modules): {sig(s.get('offset_k'))} K, {why}")
     return {"n": int(art.get("levelled_modules") or 0), "items": items,
