@@ -324,3 +324,73 @@ def test_every_levelling_reason_is_one_summary_json_accepts(rng):
     reasons |= {s.reason for s in seams.find_stretches(m2, t2)}
     assert {"cold", "strings"} <= reasons
     assert reasons <= enum
+
+
+def _rows_quiet(rng):
+    """A table of two 28-module rows, strings of 12 modules per row, each module within
+    +-0.25 K of 45 degC (a bounded spread keeps the checks below off chance edges)."""
+    m, _t = _rows(rng, cols=28, per_string=12)
+    return m, 45.0 + rng.uniform(-0.25, 0.25, len(m))
+
+
+def test_seam_over_table_end_splitting_an_open_string_is_levelled(rng):
+    # a -1.8 K seam covers columns 1..7 of both rows from the table's end; row 1's first string
+    # (columns 1..12) is open (+3.7 K): without levelling the string reads at two levels
+    m, t = _rows_quiet(rng)
+    t[_sel(m, 1, 1, 12)] += 3.7
+    end1, end2 = _sel(m, 1, 1, 7), _sel(m, 2, 1, 7)
+    t[end1] -= 1.8
+    t[end2] -= 1.8
+    out = [s for s in seams.find_stretches(m, t) if s.reason == "edge"]
+    assert sorted(tuple(sorted(s.modules.tolist())) for s in out) == sorted(
+        [tuple(sorted(end1.tolist())), tuple(sorted(end2.tolist()))])
+    assert all(s.offset_k == pytest.approx(-1.8, abs=0.45) for s in out)
+    # levelled, the open string is one level again: its two parts agree within the spread
+    lev = t.copy()
+    for s in out:
+        lev[s.modules] -= s.offset_k
+    assert abs(np.median(lev[end1]) - np.median(lev[_sel(m, 1, 8, 12)])) < 0.6
+
+
+def test_seam_over_table_end_without_a_warm_string_is_left(rng):
+    # the same seam over healthy rows: nothing is misread, and levelling would leave the module
+    # the seam line crosses half at each level, so it is left alone
+    m, t = _rows_quiet(rng)
+    t[_sel(m, 1, 1, 7)] -= 1.8
+    t[_sel(m, 2, 1, 7)] -= 1.8
+    assert not [s for s in seams.find_stretches(m, t) if s.reason == "edge"]
+
+
+def test_one_string_fault_over_both_rows_end_is_not_levelled(rng):
+    # one string laid along row 1 and back along row 2 from the table's end (common practice):
+    # open, it warms both rows from one column to the end, a defect, not a seam
+    m, t = _rows_quiet(rng)
+    own = np.concatenate([_sel(m, 1, 1, 12), _sel(m, 2, 1, 12)])
+    m.loc[own, "string_id"] = "T0-X"
+    t[own] += 3.7
+    assert not [s for s in seams.find_stretches(m, t) if s.reason == "edge"]
+
+
+def test_table_edges_can_be_switched_off(rng):
+    from pvscan.io.settings import load_pipeline
+
+    m, t = _rows_quiet(rng)
+    t[_sel(m, 1, 1, 12)] += 3.7
+    t[_sel(m, 1, 1, 7)] -= 1.8
+    t[_sel(m, 2, 1, 7)] -= 1.8
+    cfg = dict(load_pipeline()["seams"])
+    cfg["level_table_edges"] = False
+    assert not [s for s in seams.find_stretches(m, t, cfg) if s.reason == "edge"]
+
+
+def test_string_in_two_rows_end_sides_is_not_levelled(rng):
+    # one string laid along row 1 (columns 1..12) and back over row 2's first seven columns:
+    # a fault warming it unevenly (2 K at the end, 3.7 K beyond) steps both rows at column 12
+    # like a seam would; a string in the end sides of two rows is not levelled
+    m, t = _rows_quiet(rng)
+    ends = np.concatenate([_sel(m, 1, 1, 7), _sel(m, 2, 1, 7)])
+    m.loc[ends, "string_id"] = "T0-X"
+    m.loc[_sel(m, 1, 8, 12), "string_id"] = "T0-X"
+    t[ends] += 2.0
+    t[_sel(m, 1, 8, 12)] += 3.7
+    assert not [s for s in seams.find_stretches(m, t) if s.reason == "edge"]

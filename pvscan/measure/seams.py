@@ -287,14 +287,16 @@ def _table_edges(rows: list[tuple[int, np.ndarray]], t: np.ndarray, col: np.ndar
     (two or more) steps the same way by at least ``min_step_k``, the steps agree within
     ``match_abs_k`` + ``match_rel`` x the step, their mean reaches ``seam_z`` standard errors
     (end side against the ``window_modules`` modules beyond the boundary, over the rows), at
-    least one row is plain (beyond the boundary it stays at the level of the rest of its row:
-    the step is not the edge of a defect there), and the end sides hold modules of more than
-    one string (one string's fault stepping two rows at one column is
-    not levelled), and the boundary cuts a string standing ``min_step_k`` or more above the rest
+    least one row is plain (beyond the boundary it stays at the level of the rest of its row,
+    within the same tolerance:
+    the step is not the edge of a defect there), the end sides hold modules of more than one
+    string and no string in two rows' end sides (a string laid along one row and back along the
+    next, whose fault steps both rows at one column, is not levelled), and the boundary cuts a string standing ``min_step_k`` or more above the rest
     of its row beyond the boundary (a warm string, open or PID, split into two levels by the seam:
     only then is the string's own test misled; levelling every seam edge would leave the module
     the seam line crosses half at each level, a false finding). Strings must be known. Of
-    several such boundaries the one of the largest mean step is taken; each row's end side is
+    several such boundaries the best fit is taken (least absolute deviation of the plain rows
+    from one level on the end side and one on the rest); each row's end side is
     levelled by the mean step of the rows.
     """
     if sid is None:
@@ -321,7 +323,7 @@ def _table_edges(rows: list[tuple[int, np.ndarray]], t: np.ndarray, col: np.ndar
         for end in (0, 1):
             for j in range(min_len, len(cols) - w + 1):
                 c = cols[j] if end == 0 else cols[len(cols) - j]
-                steps, sides, plain, cut_warm = [], [], False, False
+                steps, sides, plain, cut_warm, cost = [], [], False, False, 0.0
                 for mem in mems:
                     cm, v = col[mem], tl[mem]
                     side = mem[cm < c] if end == 0 else mem[cm >= c]
@@ -334,20 +336,26 @@ def _table_edges(rows: list[tuple[int, np.ndarray]], t: np.ndarray, col: np.ndar
                         break
                     steps.append(d)
                     sides.append(side)
-                    plain |= abs(float(np.nanmedian(beyond)) - float(np.nanmedian(rest))) <= tol_abs
+                    if abs(float(np.nanmedian(beyond)) - float(np.nanmedian(rest))) <= tol_abs + tol_rel * abs(d):
+                        plain = True
+                        # the boundary's fit on a plain row: the whole row at two levels, the end side's
+                        # and the rest's (least absolute deviation)
+                        cost += float(np.nansum(np.abs(tl[side] - np.nanmedian(tl[side])))
+                                      + np.nansum(np.abs(rest - np.nanmedian(rest))))
                     cut_warm |= _warm_string_cut(mem, cm, tl, sid, c, end, min_step)
                 else:
                     st_arr = np.asarray(steps)
                     mean = float(st_arr.mean())
                     n_side = min(len(sd) for sd in sides)
                     se = max(sigma, 1e-9) * np.sqrt(1.0 / n_side + 1.0 / w) / np.sqrt(len(steps))
-                    strings = set(np.concatenate([sid[sd] for sd in sides]).tolist()) - {""}
+                    per_row = [set(sid[sd].tolist()) - {""} for sd in sides]
+                    strings = set().union(*per_row)
                     if (plain and cut_warm and (np.sign(st_arr) == np.sign(mean)).all()
                             and (np.abs(st_arr) >= min_step).all()
                             and np.ptp(st_arr) <= tol_abs + tol_rel * abs(mean) and abs(mean) >= z_min * se
-                            and len(strings) > 1
-                            and (best is None or abs(mean) > best[0])):
-                        best = (abs(mean), [(sd, mean) for sd in sides])
+                            and len(strings) > 1 and sum(len(p) for p in per_row) == len(strings)
+                            and (best is None or cost < best[0])):
+                        best = (cost, [(sd, mean) for sd in sides])
         if best is not None:
             out += [Stretch(sd, off, "edge") for sd, off in best[1]]
     return out
