@@ -288,11 +288,11 @@ def _table_edges(rows: list[tuple[int, np.ndarray]], t: np.ndarray, col: np.ndar
     ``match_abs_k`` + ``match_rel`` x the step, their mean reaches ``seam_z`` standard errors
     (end side against the ``window_modules`` modules beyond the boundary, over the rows), at
     least one row is plain (beyond the boundary it stays at the level of the rest of its row,
-    within the same tolerance:
-    the step is not the edge of a defect there), the end sides hold modules of more than one
-    string and no string in two rows' end sides (a string laid along one row and back along the
-    next, whose fault steps both rows at one column, is not levelled), and the boundary cuts a string standing ``min_step_k`` or more above the rest
-    of its row beyond the boundary (a warm string, open or PID, split into two levels by the seam:
+    within the same tolerance: the step is not the edge of a defect there), the end sides hold
+    modules of more than one string and no string in two rows' end sides (a string laid along
+    one row and back along the next, whose fault steps both rows at one column, is not
+    levelled), and the boundary cuts a string standing ``min_step_k`` or more above the rest of
+    its row beyond the boundary (a warm string, open or PID, split into two levels by the seam:
     only then is the string's own test misled; levelling every seam edge would leave the module
     the seam line crosses half at each level, a false finding). Strings must be known. Of
     several such boundaries the best fit is taken (least absolute deviation of the plain rows
