@@ -66,7 +66,7 @@ def test_open_string_is_not_levelled(rng):
 
 def test_stretch_repeated_in_the_other_row_is_levelled(rng):
     # a reflection or a seam crossing both rows of a table over the same modules of one string
-    # (1.5 K, five module spreads): levelled as "rows" in every draw; exactly those modules in
+    # (1.5 K, five module spreads): levelled as an artefact in every draw; exactly those modules in
     # most (a module at a stretch's end 2.5 spreads off its level sits nearer the other one,
     # so the ends are a rate: 58 of 66 exact on seeds 1-5, 100-159 and the demo's; binomial,
     # n = 20, p = 0.88: P(X <= 13) = 0.9 %), never more than one module off at either end
@@ -79,7 +79,9 @@ def test_stretch_repeated_in_the_other_row_is_levelled(rng):
         out = seams.find_stretches(m, t)
         if not out:
             continue
-        assert {s.reason for s in out} == {"rows"}
+        # as "rows", or, where the two rows' fits came out a module apart at an end, as "cold"
+        # (colder than its own string either side): an artefact either way
+        assert {s.reason for s in out} <= {"rows", "cold"}
         levelled += 1
         got = set(np.concatenate([s.modules for s in out]).tolist())
         want = set(np.concatenate([a, b]).tolist())
@@ -101,8 +103,9 @@ def test_stretch_running_to_the_row_end_is_left_alone(rng):
 def test_small_steps_are_not_edges(rng):
     # a 0.5 K step over nine modules (below min_step_k, within the reach of a 0.3 K module
     # spread): a window of its warmest modules passes min_step_k now and then, so it is a rate
-    # over 20 random tables: levelled on at most 3 (measured 8 of 200 on seeds 3000-3199;
-    # binomial, n = 20, p = 0.04: P(X >= 4) = 0.7 %); a 1.8 K step is levelled on every one
+    # over 20 random tables: levelled on at most 5 (measured 30 of 600 tables, 5 %, one draw
+    # of seed 12345; binomial, n = 20, p = 0.05: P(X >= 6) = 0.03 %; the bound of 3 used before
+    # failed on two of 21 test seeds); a 1.8 K step is levelled on every one
     small = big = 0
     for _ in range(20):
         m, t = _rows(rng)
@@ -110,7 +113,7 @@ def test_small_steps_are_not_edges(rng):
         small += bool(seams.find_stretches(m, t))
         t[_sel(m, 2, 9, 17)] += 1.3
         big += bool(seams.find_stretches(m, t))
-    assert small <= 3
+    assert small <= 5
     assert big == 20
 
 
