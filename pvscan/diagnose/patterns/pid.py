@@ -87,11 +87,14 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
     affected one (PID takes power away, so the modules run warmer, not clearly cooler).
     With strings known, the run must show the edge-ring pattern against its own table row
     too (the contrast of :func:`pid_ring_contrast` on the residual against the row, ``F.R``,
-    in robust spreads of healthy modules, combined evidence ``sum(z) / sqrt(n)`` over the
-    run within the first ``pid_max_position`` of the string at least
-    ``pid_own_row_min_z``): an image artefact shared by a stretch of a row (a mosaic seam
-    shifting its pixels, a reflection band) shows against modules of other rows, not
-    against the row's own modules beside the string.
+    in robust spreads of healthy modules, combined evidence ``sum(z) / sqrt(m)`` over the
+    run's first ``m`` modules within the first ``pid_max_position`` of the string, the best
+    ``m`` of at least two, at least ``pid_own_row_min_z``; the row's shared shape is taken from
+    the module's neighbours, which along a PID string are PID modules themselves, so the
+    pattern holds against them mainly at the negative end, where it fades from): an image
+    artefact shared by a stretch of a row (a mosaic seam shifting its pixels, a reflection
+    band) shows against modules of other rows, not against the row's own modules beside the
+    string.
 
     Without strings (``is_string`` false, ``groups`` the table rows of a layout of table
     polygons), a string's negative end may be at any module of a row, facing either way:
@@ -142,7 +145,7 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
             # join by a stricter test of their own)
             core = run[:max_len] if run else run
             if core and z_row is not None and not (
-                    float(np.nansum(z_row[core])) / np.sqrt(len(core)) >= float(cfg["pid_own_row_min_z"])):
+                    _best_prefix(z_row[core], 2) >= float(cfg["pid_own_row_min_z"])):
                 run = None
             if run:
                 out.append(run)
@@ -192,6 +195,14 @@ def pattern_pid(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.ndarray,
                 taken.update(run)
                 out.append(run)
     return out
+
+
+def _best_prefix(z: np.ndarray, m_min: int) -> float:
+    """The highest ``sum(z[:m]) / sqrt(m)`` over ``m >= m_min`` (NaN counted as 0; over all of
+    ``z`` when it is shorter) [robust SD]."""
+    zz = np.nan_to_num(np.asarray(z, dtype=float), nan=0.0)
+    ev = np.cumsum(zz) / np.sqrt(np.arange(1, len(zz) + 1))
+    return float(np.max(ev[min(m_min, len(ev)) - 1:]))
 
 
 def _run_from(idx: np.ndarray, z: np.ndarray, z_ext: np.ndarray, z_o: np.ndarray, usable: np.ndarray,
