@@ -321,44 +321,101 @@ def _table_edges(rows: list[tuple[int, np.ndarray]], t: np.ndarray, col: np.ndar
         cols = np.unique(np.concatenate([col[m] for m in mems]))
         best: tuple[float, list[tuple[np.ndarray, float]]] | None = None
         for end in (0, 1):
-            for j in range(min_len, len(cols) - w + 1):
-                c = cols[j] if end == 0 else cols[len(cols) - j]
-                steps, sides, plain, cut_warm, cost = [], [], False, False, 0.0
-                for mem in mems:
-                    cm, v = col[mem], tl[mem]
-                    side = mem[cm < c] if end == 0 else mem[cm >= c]
-                    beyond = v[(cm >= c) & (cm < c + w)] if end == 0 else v[(cm < c) & (cm >= c - w)]
-                    rest = v[cm >= c] if end == 0 else v[cm < c]
-                    if len(side) < min_len or (level[side] != 0).any() or np.isfinite(beyond).sum() < 2:
+            js = np.arange(min_len, len(cols) - w + 1)
+            if not js.size:
+                continue
+            cands = cols[js] if end == 0 else cols[len(cols) - js]
+            # each row's statistics at every boundary at once (the boundaries along the first
+            # axis): the modules on the end side, beyond the boundary (window) and the rest
+            per_row = [_row_sides(col[mem], tl[mem], level[mem] != 0, cands, end, w) for mem in mems]
+            for jj, c in enumerate(cands):
+                steps, plain = [], False
+                for rs in per_row:
+                    if rs.n_side[jj] < min_len or rs.levelled[jj] or rs.n_beyond[jj] < 2:
                         break
-                    d = float(np.nanmedian(tl[side]) - np.nanmedian(beyond))
+                    d = float(rs.med_side[jj] - rs.med_beyond[jj])
                     if not np.isfinite(d):
                         break
                     steps.append(d)
-                    sides.append(side)
-                    if abs(float(np.nanmedian(beyond)) - float(np.nanmedian(rest))) <= tol_abs + tol_rel * abs(d):
-                        plain = True
-                        # the boundary's fit on a plain row: the whole row at two levels, the end side's
-                        # and the rest's (least absolute deviation)
-                        cost += float(np.nansum(np.abs(tl[side] - np.nanmedian(tl[side])))
-                                      + np.nansum(np.abs(rest - np.nanmedian(rest))))
-                    cut_warm |= _warm_string_cut(mem, cm, tl, sid, c, end, min_step)
+                    plain |= bool(abs(float(rs.med_beyond[jj]) - float(rs.med_rest[jj])) <= tol_abs + tol_rel * abs(d))
                 else:
                     st_arr = np.asarray(steps)
                     mean = float(st_arr.mean())
+                    if not (plain and (np.sign(st_arr) == np.sign(mean)).all()
+                            and (np.abs(st_arr) >= min_step).all()
+                            and np.ptp(st_arr) <= tol_abs + tol_rel * abs(mean)):
+                        continue
+                    sides = [mem[col[mem] < c] if end == 0 else mem[col[mem] >= c] for mem in mems]
                     n_side = min(len(sd) for sd in sides)
                     se = max(sigma, 1e-9) * np.sqrt(1.0 / n_side + 1.0 / w) / np.sqrt(len(steps))
-                    per_row = [set(sid[sd].tolist()) - {""} for sd in sides]
-                    strings = set().union(*per_row)
-                    if (plain and cut_warm and (np.sign(st_arr) == np.sign(mean)).all()
-                            and (np.abs(st_arr) >= min_step).all()
-                            and np.ptp(st_arr) <= tol_abs + tol_rel * abs(mean) and abs(mean) >= z_min * se
-                            and len(strings) > 1 and sum(len(p) for p in per_row) == len(strings)
-                            and (best is None or cost < best[0])):
+                    strings_of = [set(sid[sd].tolist()) - {""} for sd in sides]
+                    strings = set().union(*strings_of)
+                    if not (abs(mean) >= z_min * se and len(strings) > 1
+                            and sum(len(p) for p in strings_of) == len(strings)):
+                        continue
+                    if not any(_warm_string_cut(mem, col[mem], tl, sid, c, end, min_step) for mem in mems):
+                        continue
+                    cost = _plain_rows_cost(mems, col, tl, c, end, w, tol_abs, tol_rel)
+                    if best is None or cost < best[0]:
                         best = (cost, [(sd, mean) for sd in sides])
         if best is not None:
             out += [Stretch(sd, off, "edge") for sd, off in best[1]]
     return out
+
+
+@dataclass(frozen=True)
+class _Sides:
+    """One table row's statistics at each candidate boundary of :func:`_table_edges`."""
+
+    n_side: np.ndarray        # modules on the end side
+    levelled: np.ndarray      # an end-side module already levelled by another stretch
+    n_beyond: np.ndarray      # finite temperatures in the window beyond the boundary
+    med_side: np.ndarray      # median of the end side [degC]
+    med_beyond: np.ndarray    # median of the window beyond the boundary [degC]
+    med_rest: np.ndarray      # median of the row beyond the boundary [degC]
+
+
+def _side_masks(cm: np.ndarray, cands: np.ndarray, end: int, w: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """(boundaries x modules) masks of the end side, the window beyond it and the rest of a row."""
+    c = cands[:, None]
+    x = cm[None, :]
+    if end == 0:
+        return x < c, (x >= c) & (x < c + w), x >= c
+    return x >= c, (x < c) & (x >= c - w), x < c
+
+
+def _median_over(v: np.ndarray, mask: np.ndarray) -> np.ndarray:
+    """Median of ``v`` over each line of ``mask``, ignoring NaN (NaN where none) [unit of v]:
+    the mean of the lower and the upper median, as numpy's median takes it."""
+    lo, hi, cnt = _masked_median(v[None, :], mask)
+    return np.where(cnt[0] > 0, (lo[0] + hi[0]) / 2.0, np.nan)
+
+
+def _row_sides(cm: np.ndarray, v: np.ndarray, lev: np.ndarray, cands: np.ndarray, end: int, w: int) -> _Sides:
+    side, beyond, rest = _side_masks(cm, cands, end, w)
+    return _Sides(n_side=side.sum(axis=1), levelled=(side & lev[None, :]).any(axis=1),
+                  n_beyond=(beyond & np.isfinite(v)[None, :]).sum(axis=1),
+                  med_side=_median_over(v, side), med_beyond=_median_over(v, beyond),
+                  med_rest=_median_over(v, rest))
+
+
+def _plain_rows_cost(mems: list[np.ndarray], col: np.ndarray, tl: np.ndarray, c: float, end: int, w: int,
+                     tol_abs: float, tol_rel: float) -> float:
+    """The fit of the boundary at column ``c`` on the table's plain rows: each such row at two
+    levels, the end side's and the rest's, least absolute deviation [K]. A row is plain when
+    beyond the boundary it stays at the level of the rest of its row (within the tolerance of
+    the step)."""
+    cost = 0.0
+    for mem in mems:
+        cm, v = col[mem], tl[mem]
+        side = mem[cm < c] if end == 0 else mem[cm >= c]
+        beyond = v[(cm >= c) & (cm < c + w)] if end == 0 else v[(cm < c) & (cm >= c - w)]
+        rest = v[cm >= c] if end == 0 else v[cm < c]
+        d = float(np.nanmedian(tl[side]) - np.nanmedian(beyond))
+        if abs(float(np.nanmedian(beyond)) - float(np.nanmedian(rest))) <= tol_abs + tol_rel * abs(d):
+            cost += float(np.nansum(np.abs(tl[side] - np.nanmedian(tl[side])))
+                          + np.nansum(np.abs(rest - np.nanmedian(rest))))
+    return cost
 
 
 def _warm_string_cut(mem: np.ndarray, cm: np.ndarray, tl: np.ndarray, sid: np.ndarray, c: float, end: int,
