@@ -684,6 +684,25 @@ def test_map_palette_keeps_marker_colours_exact():
     assert np.array_equal(out, src)
 
 
+def test_quantise_takes_the_nearest_palette_entry_first_on_ties(rng):
+    """Each pixel gets the palette entry at the least integer squared distance, the lowest
+    index among equals (a palette with repeated entries), as a brute-force search gives."""
+    from PIL import Image
+
+    from pvscan.report._images import quantise_rgb
+
+    pal_rgb = rng.integers(0, 256, size=(256, 3))
+    pal_rgb[128:] = pal_rgb[:128]  # every colour twice: ties everywhere
+    pal = Image.new("P", (1, 1))
+    pal.putpalette(pal_rgb.astype(np.uint8).reshape(-1).tolist())
+    src = rng.integers(0, 256, size=(37, 53, 3)).astype(np.uint8)
+    src[0, :10] = pal_rgb[:10]  # some pixels exactly on a palette colour
+    out = np.asarray(Image.open(io.BytesIO(quantise_rgb(src, pal))))
+    d = ((src.reshape(-1, 1, 3).astype(np.int64) - pal_rgb[None, :, :]) ** 2).sum(axis=2)
+    assert np.array_equal(out.reshape(-1), np.argmin(d, axis=1))
+    assert out.max() < 128
+
+
 def test_healthy_plant_report_and_summary(tmp_path):
     """No anomaly: the report still has its map, plots, validity and cautions; the summary says so."""
     import click

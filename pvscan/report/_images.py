@@ -264,9 +264,18 @@ def quantise_rgb(rgb: np.ndarray, palette: Image.Image) -> bytes:
     uniq, inverse = np.unique(packed.reshape(-1), return_inverse=True)
     ucol = np.stack([(uniq >> 16) & 255, (uniq >> 8) & 255, uniq & 255], axis=1)
     nearest = np.empty(len(uniq), dtype=np.uint8)
-    for i in range(0, len(uniq), 8192):  # exact nearest palette entry, in bounded chunks
-        d = ((ucol[i:i + 8192, None, :] - pal[None, :, :]) ** 2).sum(axis=2)
-        nearest[i:i + 8192] = np.argmin(d, axis=1)
+    # exact nearest palette entry, in bounded chunks: |c - p|^2 less the row's constant |c|^2,
+    # i.e. |p|^2 - 2 c.p, as one matrix product; every term is an integer below 2^53, so the
+    # float64 distances are exact and argmin breaks ties as on the integer distances. One BLAS
+    # thread: the products are small, and threads only spin on a busy machine
+    from threadpoolctl import threadpool_limits
+
+    palf = pal.astype(np.float64)
+    pal_sq = (palf ** 2).sum(axis=1)
+    with threadpool_limits(limits=1, user_api="blas"):
+        for i in range(0, len(uniq), 8192):
+            d = pal_sq[None, :] - 2.0 * (ucol[i:i + 8192].astype(np.float64) @ palf.T)
+            nearest[i:i + 8192] = np.argmin(d, axis=1)
     q = Image.fromarray(nearest[inverse].reshape(packed.shape))
     q.putpalette(pal.reshape(-1).astype(np.uint8).tolist())
     buf = io.BytesIO()
