@@ -20,6 +20,7 @@ import logging
 import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass, field
+from functools import cache
 from typing import Any
 
 import numpy as np
@@ -27,7 +28,7 @@ import pandas as pd
 
 from pvscan.measure.rows import adjacent_modules, row_keys
 from pvscan.physics.heat import Faiman
-from pvscan.robust import MAD_TO_SIGMA, nanmedian, scaled_mad
+from pvscan.robust import MAD_TO_SIGMA, nanmedian, scaled_mad, sorted_quantile
 
 __all__ = ["Features", "Hits", "build_features", "row_geometry", "string_groups", "neighbour_median",
            "cell_neighbour_median",
@@ -47,6 +48,58 @@ def spec_value(module_spec: Any, name: str, default: Any = None) -> Any:
     return getattr(module_spec, name, default)
 
 
+#: Longest neighbour axis sorted by a sorting network (:func:`_nanmedian_first_axis`); longer
+#: ones go to :func:`pvscan.robust.nanmedian` (a network's comparisons grow as k log^2 k).
+_NETWORK_MAX = 16
+
+
+@cache
+def _network(k: int) -> tuple[tuple[int, int], ...]:
+    """Comparators (i, j), i < j, of Batcher's odd-even merge sort of ``k`` inputs (19 for
+    k = 8); comparators reaching past ``k`` are left out, which sorts ``k`` inputs as the
+    network of the next power of two does with +inf in the extra inputs.
+
+    References
+    ----------
+    .. [1] K. E. Batcher, "Sorting networks and their applications", AFIPS Spring Joint
+       Computer Conference, 307-314, 1968. doi:10.1145/1468075.1468121
+    """
+    pairs = []
+    p = 1
+    while p < k:
+        step = p
+        while step >= 1:
+            for j in range(step % p, k - step, 2 * step):
+                for i in range(min(step, k - j - step)):
+                    if (i + j) // (2 * p) == (i + j + step) // (2 * p):
+                        pairs.append((i + j, i + j + step))
+            step //= 2
+        p *= 2
+    return tuple(pairs)
+
+
+def _nanmedian_first_axis(g: np.ndarray) -> np.ndarray:
+    """:func:`pvscan.robust.nanmedian` of ``g`` (k, ...) float64 along its first axis,
+    overwriting ``g``: the same numbers, with each of the ``k`` values of an element in its
+    own contiguous slice instead of along a short last axis.
+
+    NaN is set to +inf so it sorts last (the order statistics below the count of finite
+    values are those of a sort with NaN last), the slices are sorted element-wise by the
+    comparators of :func:`_network` (``numpy.minimum`` / ``numpy.maximum``), and
+    :func:`pvscan.robust.sorted_quantile` reads the median from the finite count.
+    """
+    cnt = np.zeros(g.shape[1:], dtype=np.int64)
+    for c in g:
+        cnt += np.isfinite(c)
+        c[np.isnan(c)] = np.inf
+    tmp = np.empty(g.shape[1:], dtype=g.dtype)
+    for i, j in _network(len(g)):
+        np.minimum(g[i], g[j], out=tmp)
+        np.maximum(g[i], g[j], out=g[j])
+        g[i] = tmp
+    return sorted_quantile(np.moveaxis(g, 0, -1), cnt, 0.5)
+
+
 def neighbour_median(values: np.ndarray, nb: np.ndarray, chunk: int = 2048,
                      offset: np.ndarray | None = None) -> np.ndarray:
     """Median over each module's neighbours (``nb``, -1 = none) of ``values[neighbour]``.
@@ -54,9 +107,10 @@ def neighbour_median(values: np.ndarray, nb: np.ndarray, chunk: int = 2048,
     With ``offset`` (n,), of ``values[neighbour] - offset[neighbour]`` (each neighbour's
     values relative to its own offset, without a full-size copy of the differences).
     ``values`` is (n, ...) and the result has its shape (float64). Modules are taken
-    ``chunk`` at a time and each chunk's neighbour values are gathered with the neighbours
-    along the last, contiguous axis, so the temporaries stay a few megabytes whatever the
-    plant size and the sort runs over contiguous memory.
+    ``chunk`` at a time, so the temporaries stay a few megabytes whatever the plant size;
+    each neighbour's values are gathered into their own contiguous slice and, up to
+    :data:`_NETWORK_MAX` neighbours, sorted across the slices (:func:`_nanmedian_first_axis`),
+    else by :func:`pvscan.robust.nanmedian`: the same numbers either way.
     """
     n = len(values)
     flat = np.asarray(values).reshape(n, -1)
@@ -68,16 +122,19 @@ def neighbour_median(values: np.ndarray, nb: np.ndarray, chunk: int = 2048,
     off = None if offset is None else np.asarray(offset, dtype=np.float64)
     for s in range(0, n, chunk):
         idx = nb[s:s + chunk]
-        g = np.empty((len(idx), m, k), dtype=np.float64)
+        g = np.empty((k, len(idx), m), dtype=np.float64)
         for j in range(k):
             col = idx[:, j]
             jj = np.maximum(col, 0)
             if off is None:
-                g[:, :, j] = flat[jj]
+                g[j] = flat[jj]
             else:
-                g[:, :, j] = flat[jj] - off[jj][:, None]
-            g[col < 0, :, j] = np.nan
-        out[s:s + chunk] = nanmedian(g, axis=-1)
+                g[j] = flat[jj] - off[jj][:, None]
+            g[j, col < 0] = np.nan
+        if k <= _NETWORK_MAX:
+            out[s:s + chunk] = _nanmedian_first_axis(g)
+        else:
+            out[s:s + chunk] = nanmedian(g, axis=0)
     return out.reshape(np.shape(values))
 
 
@@ -116,18 +173,19 @@ def cell_neighbour_median(X: np.ndarray, chunk: int = 4096) -> np.ndarray:
     """Median of each cell's (up to 8) neighbouring cells within its module, NaN-aware.
 
     ``X`` is (n, A, C); cells beyond the module's edge and NaN cells are left out; a cell
-    without a finite neighbour gives NaN. Modules are taken ``chunk`` at a time with the 8
-    neighbours along the last, contiguous axis (bounded temporaries).
+    without a finite neighbour gives NaN. Modules are taken ``chunk`` at a time, each of
+    the 8 neighbours in its own contiguous slice, sorted across them
+    (:func:`_nanmedian_first_axis`; bounded temporaries).
     """
     X = np.asarray(X)
     n, A, C = X.shape
     out = np.empty((n, A, C), dtype=np.float64)
     for s in range(0, n, chunk):
         P = np.pad(X[s:s + chunk], ((0, 0), (1, 1), (1, 1)), constant_values=np.nan)
-        g = np.empty((P.shape[0], A, C, len(_BOX_OFFSETS)), dtype=np.float64)
+        g = np.empty((len(_BOX_OFFSETS), P.shape[0], A, C), dtype=np.float64)
         for k, (di, dj) in enumerate(_BOX_OFFSETS):
-            g[..., k] = P[:, 1 + di:1 + di + A, 1 + dj:1 + dj + C]
-        out[s:s + chunk] = nanmedian(g, axis=-1)
+            g[k] = P[:, 1 + di:1 + di + A, 1 + dj:1 + dj + C]
+        out[s:s + chunk] = _nanmedian_first_axis(g)
     return out
 
 
