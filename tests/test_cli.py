@@ -28,6 +28,26 @@ def test_hoist_verbosity_moves_only_the_global_flags():
     assert hoist_verbosity(["fleet", "--overwrite"]) == ["fleet", "--overwrite"]
 
 
+def test_console_entry_sets_the_collector_thresholds_for_the_process():
+    """``main`` (the console script) sets the garbage collector's thresholds; the click
+    group alone (the library's callers, CliRunner) leaves them as they were."""
+    import gc
+
+    from pvscan.cli.main import GC_THRESHOLDS, main
+
+    before = gc.get_threshold()
+    try:
+        gc.set_threshold(700, 10, 10)
+        assert CliRunner().invoke(cli, ["--version"]).exit_code == 0
+        assert gc.get_threshold() == (700, 10, 10)
+        with pytest.raises(SystemExit) as exc:
+            main(["--version"])
+        assert exc.value.code == 0
+        assert gc.get_threshold() == GC_THRESHOLDS != (700, 10, 10)
+    finally:
+        gc.set_threshold(*before)
+
+
 @pytest.mark.parametrize("where", ["before", "after"])
 def test_verbosity_flags_before_or_after_the_subcommand(tmp_path, where):
     db = tmp_path / "none.gpkg"

@@ -9,6 +9,7 @@ Exit codes (documented in the README):
 """
 from __future__ import annotations
 
+import gc
 import importlib
 import re
 from collections.abc import Sequence
@@ -18,6 +19,14 @@ import click
 
 from pvscan import __version__
 from pvscan.cli._common import configure_logging
+
+#: Thresholds of Python's cyclic garbage collector in a ``pvscan`` process (CPython's default
+#: is (700, 10, 10)). A run builds millions of small containers that live for a stage (GeoJSON
+#: documents, object columns, per-module records) and hardly any reference cycles; with the
+#: default thresholds the collector ran about 3,400 times, 25 of them over every live object,
+#: for 3.3 s CPU of a 35 s inspect of 25,536 modules (0.5 s with these), the same results and
+#: peak memory. Set for the process by :func:`main` only: the library leaves it alone.
+GC_THRESHOLDS = (20_000, 20, 20)
 
 # command name -> "module:attribute"
 COMMANDS = {
@@ -78,7 +87,8 @@ def cli(ctx: click.Context, verbose: int, quiet: int) -> None:
 
 
 def main(argv: Sequence[str] | None = None) -> Any:
-    """Console-script entry point."""
+    """Console-script entry point (sets :data:`GC_THRESHOLDS` for the process)."""
+    gc.set_threshold(*GC_THRESHOLDS)
     return cli.main(args=argv, prog_name="pvscan")
 
 
