@@ -347,6 +347,12 @@ def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cf
     # the table ends alone clearly for the placement (well above any vote of one a pitch off)
     confirmed = ends.get("lowest") is not None and ends["lowest"] >= float(cfg["ends_confirm_vote"])
     reg.evidence["pitch"]["ends_confirm"] = bool(confirmed and not decisive)
+    # neither alone decisive, but both lean the same way: the placement fits the modules better
+    # than every placement one module pitch away, and no table end prefers one of those
+    e_low = ends.get("lowest")
+    both = (not decisive and not confirmed and math.isfinite(low) and low >= float(cfg["pitch_support_ratio"])
+            and e_low is not None and e_low >= float(cfg["ends_support_vote"]))
+    reg.evidence["pitch"]["both_lean"] = bool(both)
     corr_p, corr_conf = correlation
     gap = _largest_gap(cur, corr_p, modules.total_bounds) if corr_p is not None else float("nan")
     by_corr = (math.isfinite(gap) and gap <= float(cfg["pitch_corr_agree_m"])
@@ -374,6 +380,10 @@ def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cf
                         f"from this placement (within {gap_pitch:.3f} m) and the table ends do not confirm it "
                         f"(median vote {_num(ends.get('lowest')):.2f}, {float(cfg['ends_confirm_vote']):g} needed): "
                         "findings may sit on the neighbouring module")
+    elif both:
+        reg.message += (f"; a placement one module pitch away fits almost as well on the modules (evidence ratio "
+                        f"{low:.2f}), but every one fits worse and no table end prefers it (lowest median vote "
+                        f"{e_low:.2f}, at least {float(cfg['ends_support_vote']):g})")
     elif not decisive and not confirmed:
         reg.status = "ambiguous"
         reg.message += (f"; a placement one module pitch away fits almost as well (evidence ratio {low:.2f}, more "
