@@ -12,6 +12,7 @@ from typing import Any
 
 import geopandas as gpd
 import numpy as np
+import pytest
 import shapely
 from conftest import DEFAULT_TEST_SEED, test_seed
 
@@ -44,13 +45,28 @@ def simulate_plant(tmp_path_factory: Any, scenario_seed: int, family: str) -> Pa
     return d
 
 
-def median_error_m(d: Path, placed: gpd.GeoDataFrame) -> float:
-    """Median distance between placed module centres and the truth in the ortho [m]."""
+def plant_fixture(scenario_seed: int, family: str) -> Any:
+    """A module-scoped fixture ``plant``: the folder of :func:`simulate_plant`'s flight."""
+
+    @pytest.fixture(scope="module")
+    def plant(tmp_path_factory: Any) -> Path:
+        return simulate_plant(tmp_path_factory, scenario_seed, family)
+
+    return plant
+
+
+def module_errors_m(d: Path, placed: gpd.GeoDataFrame) -> np.ndarray:
+    """Distance between each placed module centre and the truth in the ortho [m]."""
     truth = gpd.read_file(d / "truth_ortho.geojson").to_crs(placed.crs).set_index("module_id")
     p = placed.set_index("module_id")
     tc = shapely.centroid(truth.loc[p.index].geometry.values)
     pc = shapely.centroid(p.geometry.values)
-    return float(np.median(shapely.distance(tc, pc)))
+    return np.asarray(shapely.distance(tc, pc), float)
+
+
+def median_error_m(d: Path, placed: gpd.GeoDataFrame) -> float:
+    """Median distance between placed module centres and the truth in the ortho [m]."""
+    return float(np.median(module_errors_m(d, placed)))
 
 
 def truth_placement(d: Path, mods: gpd.GeoDataFrame) -> Placement:

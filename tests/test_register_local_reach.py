@@ -16,11 +16,8 @@ code reads. A placement is right within a quarter of a module width (common prac
 """
 from __future__ import annotations
 
-import geopandas as gpd
 import numpy as np
-import pytest
-import shapely
-from register_flights import RIGHT_M, flight_seed, register_whole, simulate_plant
+from register_flights import RIGHT_M, flight_seed, module_errors_m, plant_fixture, register_whole
 
 from pvscan.io.settings import load_pipeline
 from pvscan.measure.register import apply_placement
@@ -30,18 +27,7 @@ from pvscan.measure.register import apply_placement
 FLIGHT_SEED = flight_seed(1040000)
 
 
-@pytest.fixture(scope="module")
-def plant(tmp_path_factory):
-    return simulate_plant(tmp_path_factory, 1040000, "raised_low_sun")
-
-
-def _p95_error_m(d, mods, reg) -> float:
-    """95th percentile of the distance between placed module centres and the truth [m]."""
-    placed = apply_placement(mods, reg.placement if reg.applied else None)
-    truth = gpd.read_file(d / "truth_ortho.geojson").to_crs(placed.crs).set_index("module_id")
-    p = placed.set_index("module_id")
-    e = shapely.distance(shapely.centroid(truth.loc[p.index].geometry.values), shapely.centroid(p.geometry.values))
-    return float(np.percentile(e, 95))
+plant = plant_fixture(1040000, "raised_low_sun")
 
 
 def test_table_at_the_edge_of_its_search_is_not_ok(plant):
@@ -59,4 +45,5 @@ def test_table_at_the_edge_of_its_search_is_not_ok(plant):
     assert err < RIGHT_M or check["passed"] is False, (err, reg.message)
     if FLIGHT_SEED == 1040000:
         assert at_edge and reg.status == "ambiguous", (reg.message, shifts)
-        assert _p95_error_m(plant, mods, reg) > RIGHT_M, reg.message
+        placed = apply_placement(mods, reg.placement if reg.applied else None)
+        assert float(np.percentile(module_errors_m(plant, placed), 95)) > RIGHT_M, reg.message

@@ -18,7 +18,7 @@ from __future__ import annotations
 from dataclasses import replace
 
 import pytest
-from register_flights import RIGHT_M, flight_seed, median_error_m, register_whole, simulate_plant, sun, truth_placement
+from register_flights import RIGHT_M, flight_seed, median_error_m, plant_fixture, register_whole, sun, truth_placement
 
 from pvscan.io.layout import read_layout
 from pvscan.io.manifest import load_flight
@@ -39,9 +39,7 @@ FLIGHT_SEED = flight_seed(1040000)
 pytestmark = pytest.mark.filterwarnings("ignore:defects\\.[a-z_]+. no free module left:pvscan.errors.PvscanWarning")
 
 
-@pytest.fixture(scope="module")
-def plant(tmp_path_factory):
-    return simulate_plant(tmp_path_factory, 1040000, "small_site")
+plant = plant_fixture(1040000, "small_site")
 
 
 def test_placement_both_tests_lean_to_is_right(plant):
