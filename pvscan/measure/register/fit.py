@@ -56,7 +56,7 @@ from pvscan.measure.register.evidence import (
     placement_quality,
     sample_modules,
 )
-from pvscan.measure.register.local import refine_rows, refine_tables
+from pvscan.measure.register.local import check_reach, refine_rows, refine_tables
 from pvscan.measure.register.search import refine_placement
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -281,30 +281,8 @@ def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], su
     if reg.status in ("ok", "ambiguous") and forced_shift is None and cfg["local_enabled"] and reg.local is None:
         _refine_locally(orthos, modules, reg, cfg, ident)
     if reg.status == "ok" and forced_shift is None:
-        _check_local_reach(reg, cfg)
+        check_reach(reg, cfg)
     return reg
-
-
-def _check_local_reach(reg: Registration, cfg: Mapping[str, Any]) -> None:
-    """A table whose applied correction reached the edge of the local search (``local_radius_m``
-    east or north, within the search's finest step, ``local_step_m`` / 8) may belong farther:
-    the global fit is off there by more than the local refinement can follow, and the table's
-    footprints may straddle its modules. Such a registration is not ``ok`` (``ambiguous``: the
-    pipeline stops unless told to run anyway); ``reg.evidence["local_reach"]`` records it."""
-    lf = reg.local
-    if lf is None or not lf.applied or not lf.shifts:
-        return
-    radius = float(cfg["local_radius_m"])
-    edge = radius - float(cfg["local_step_m"]) / 8.0
-    at = {str(t): (float(d[0]), float(d[1])) for t, d in lf.shifts.items() if max(abs(d[0]), abs(d[1])) >= edge}
-    reg.evidence["local_reach"] = {"tables_at_edge": len(at), "radius_m": radius}
-    if not at:
-        return
-    t, d = max(at.items(), key=lambda kv: max(abs(kv[1][0]), abs(kv[1][1])))
-    reg.status = "ambiguous"
-    reg.message += (f"; {len(at)} of {len(lf.shifts)} corrected tables at the edge of the local search (table {t}: "
-                    f"({d[0]:+.3f}, {d[1]:+.3f}) m, at most {radius:g} m east and north): the global fit is off "
-                    "there by more than the table refinement can follow, findings may sit beside their modules")
 
 
 def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cfg: Mapping[str, Any], ident: Placement,

@@ -50,7 +50,7 @@ from pvscan.measure.register.evidence import (
 )
 from pvscan.measure.register.search import group_evidence, refine_translations
 
-__all__ = ["LocalFit", "refine_tables", "refine_rows", "table_offsets", "row_offsets"]
+__all__ = ["LocalFit", "refine_tables", "refine_rows", "table_offsets", "row_offsets", "check_reach"]
 
 #: Separator of a row's key ``table_id`` + SEP + ``table_row`` (a character no id holds).
 _SEP = "\x1f"
@@ -164,6 +164,28 @@ def _per_table(modules: gpd.GeoDataFrame, n: int, keys: np.ndarray | None = None
         out.extend(rows.tolist())
         start = stop
     return np.sort(np.asarray(out, dtype=np.int64))
+
+
+def check_reach(reg: Any, cfg: Mapping[str, Any]) -> None:
+    """A registration (:class:`pvscan.measure.register.Registration`) whose applied table
+    correction reached the edge of the search (``local_radius_m`` east or north, within the
+    search's finest step, ``local_step_m`` / 8) is made ``ambiguous``: the table may belong
+    farther, the global fit is off there by more than the table refinement can follow, and its
+    footprints may straddle its modules. ``reg.evidence["local_reach"]`` records the count."""
+    lf = reg.local
+    if lf is None or not lf.applied or not lf.shifts:
+        return
+    radius = float(cfg["local_radius_m"])
+    edge = radius - float(cfg["local_step_m"]) / 8.0
+    at = {str(t): (float(d[0]), float(d[1])) for t, d in lf.shifts.items() if max(abs(d[0]), abs(d[1])) >= edge}
+    reg.evidence["local_reach"] = {"tables_at_edge": len(at), "radius_m": radius}
+    if not at:
+        return
+    t, d = max(at.items(), key=lambda kv: max(abs(kv[1][0]), abs(kv[1][1])))
+    reg.status = "ambiguous"
+    reg.message += (f"; {len(at)} of {len(lf.shifts)} corrected tables at the edge of the local search (table {t}: "
+                    f"({d[0]:+.3f}, {d[1]:+.3f}) m, at most {radius:g} m east and north): the global fit is off "
+                    "there by more than the table refinement can follow, findings may sit beside their modules")
 
 
 def table_offsets(modules: gpd.GeoDataFrame, shifts: Mapping[Any, Any]) -> np.ndarray:
