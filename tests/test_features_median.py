@@ -66,6 +66,24 @@ def test_neighbour_median_is_robust_nanmedian_bit_for_bit(rng, k, with_offset, d
     assert np.isfinite(got).any()
 
 
+def test_empty_neighbourhoods_give_nan_without_a_warning(rng):
+    """Modules without any finite neighbour value (no neighbour, or only NaN) give NaN and no
+    RuntimeWarning (the suite turns warnings into errors), as the sort along an axis did."""
+    n = 50
+    values = np.round(rng.normal(40.0, 3.0, size=(n, 4, 3)), 1)
+    values[:10] = np.nan
+    nb = rng.integers(0, 10, size=(n, 8))  # the first half: only all-NaN neighbours
+    nb[n // 2:] = rng.integers(10, n, size=(n - n // 2, 8))
+    nb[-5:] = -1
+    got = neighbour_median(values, nb, chunk=16, offset=np.zeros(n))
+    assert np.isnan(got[: n // 2]).all() and np.isnan(got[-5:]).all()
+    assert np.isfinite(got[n // 2:-5]).all()
+    X = np.full((3, 4, 3), np.nan)
+    X[1, 0, 0] = 40.0
+    cm = cell_neighbour_median(X)
+    assert np.isnan(cm[0]).all() and cm[1, 0, 1] == 40.0 and np.isnan(cm[1, 0, 0])
+
+
 def test_cell_neighbour_median_is_robust_nanmedian_bit_for_bit(rng):
     n, A, C = 97, 6, 5
     X = _values(rng, (n, A, C))

@@ -97,7 +97,10 @@ def _nanmedian_first_axis(g: np.ndarray) -> np.ndarray:
         np.minimum(g[i], g[j], out=tmp)
         np.maximum(g[i], g[j], out=g[j])
         g[i] = tmp
-    return sorted_quantile(np.moveaxis(g, 0, -1), cnt, 0.5)
+    # an element without a finite value reads +inf - +inf (NaN, as NaN - NaN did), and gives
+    # NaN by its count of 0: no warning, as for the NaN the sort along an axis put there
+    with np.errstate(invalid="ignore"):
+        return sorted_quantile(np.moveaxis(g, 0, -1), cnt, 0.5)
 
 
 def neighbour_median(values: np.ndarray, nb: np.ndarray, chunk: int = 2048,
