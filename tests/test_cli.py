@@ -29,8 +29,9 @@ def test_hoist_verbosity_moves_only_the_global_flags():
 
 
 def test_console_entry_sets_the_collector_thresholds_for_the_process():
-    """``main`` (the console script) sets the garbage collector's thresholds; the click
-    group alone (the library's callers, CliRunner) leaves them as they were."""
+    """``main`` (the console script) sets the garbage collector's thresholds and freezes what
+    is alive when the command ends; the click group alone (the library's callers, CliRunner)
+    leaves the collector as it was."""
     import gc
 
     from pvscan.cli.main import GC_THRESHOLDS, main
@@ -38,13 +39,16 @@ def test_console_entry_sets_the_collector_thresholds_for_the_process():
     before = gc.get_threshold()
     try:
         gc.set_threshold(700, 10, 10)
+        gc.unfreeze()
         assert CliRunner().invoke(cli, ["--version"]).exit_code == 0
-        assert gc.get_threshold() == (700, 10, 10)
+        assert gc.get_threshold() == (700, 10, 10) and gc.get_freeze_count() == 0
         with pytest.raises(SystemExit) as exc:
             main(["--version"])
         assert exc.value.code == 0
         assert gc.get_threshold() == GC_THRESHOLDS != (700, 10, 10)
+        assert gc.get_freeze_count() > 0  # what was alive at the end: no last collection over it
     finally:
+        gc.unfreeze()
         gc.set_threshold(*before)
 
 
