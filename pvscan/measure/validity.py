@@ -202,8 +202,9 @@ def check_validity(conditions: FlightConditions, module_conditions: pd.DataFrame
 def registration_check(reg: Any, settings: Mapping | None = None) -> dict:
     """``registration``: the worse probe ratio of the placement used (at most
     ``[register] evidence_max_ratio``); failed when the registration found no placement that
-    sits on the modules, or when a placement one module pitch away fits almost as well
-    (``ambiguous``). The message says what was measured."""
+    sits on the modules, or when the placement is ``ambiguous``: one a module pitch away fits
+    almost as well, or a table's local correction reached the edge of its search
+    (``[register] local_radius_m``). The message says what was measured."""
     from pvscan.io.settings import section
 
     lim = float(section(settings, "register")["evidence_max_ratio"])
@@ -223,7 +224,8 @@ def registration_check(reg: Any, settings: Mapping | None = None) -> dict:
         c["passed"] = True
     if status in ("failed", "ambiguous"):
         # failed: no placement sits on the modules; ambiguous: one a module pitch away fits
-        # almost as well (findings may sit on the neighbouring module)
+        # almost as well (findings may sit on the neighbouring module), or a table needed a
+        # correction as large as its local search allows
         c["passed"] = False
     elif status in ("", "not_run"):
         c["passed"] = None
