@@ -302,6 +302,83 @@ def _median_of(values: np.ndarray, nb: np.ndarray, xy: np.ndarray | None = None,
     return med + corr
 
 
+def _table_columns(modules: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
+    """Code of each module's table column (``table_id``, ``table_col``) and of its table row;
+    -1 where either is unknown."""
+    n = len(modules)
+    rows = row_keys(modules)
+    if n == 0 or "table_id" not in modules.columns or "table_col" not in modules.columns:
+        return np.full(n, -1, dtype=np.int64), rows
+    col = pd.to_numeric(modules["table_col"], errors="coerce").to_numpy(dtype=float)
+    known = np.isfinite(col) & modules["table_id"].notna().to_numpy() & (rows >= 0)
+    keys = pd.Series(list(zip(modules["table_id"].astype(str), np.where(known, col, -1.0), strict=True)))
+    code = pd.factorize(keys)[0].astype(np.int64)
+    return np.where(known, code, -1), rows
+
+
+def _column_correction(t: np.ndarray, ref: np.ndarray, columns: np.ndarray, rows: np.ndarray,
+                       cfg: Mapping[str, Any], exclude_group: np.ndarray | None = None) -> np.ndarray:
+    """The correction [K] to add to each module's row reference where its table column is colder
+    than the row references in every other row of the table (a step shared by the rows).
+
+    A mosaic seam or a cloud-shadow edge that crosses a table across its rows makes the modules
+    beyond it colder or warmer than the same-row neighbours they are compared with; at a table's
+    end those neighbours all lie on the other side of the step and the trend correction cannot
+    reach them. The other rows' modules of the same table column share the step: their
+    deviations ``e = t - reference`` give it: the median of the rows within
+    ``column_match_abs_k + column_match_rel * |step|`` of their median, ``column_min_rows``
+    of them at least, none colder than that (a warmer row may hold a defect at that column
+    and is left out). Only a colder column
+    (a step of at least ``column_min_step_k`` below the row references) moves the reference:
+    every defect heats a module, so a column colder in every row is the image or the
+    irradiance, whereas a warmer one may be defects at the same place of several strings
+    (PID at the strings' negative ends). The module's own value is not used, nor, with
+    ``exclude_group``, modules of its own group (string).
+    """
+    n = len(t)
+    out = np.zeros(n)
+    e = t - ref
+    use = (columns >= 0) & np.isfinite(e)
+    if n == 0 or use.sum() < 2:
+        return out
+    idx = np.flatnonzero(use)
+    order = idx[np.argsort(columns[idx], kind="stable")]
+    cs = columns[order]
+    starts = np.flatnonzero(np.r_[True, cs[1:] != cs[:-1]])
+    sizes = np.diff(np.r_[starts, len(cs)])
+    width = int(sizes.max())
+    if width < 2:
+        return out
+    slot = np.arange(len(cs)) - np.repeat(starts, sizes)
+    grp = np.repeat(np.arange(len(starts)), sizes)
+    mat = np.full((len(starts), width), -1, dtype=np.int64)
+    mat[grp, slot] = order
+    # each member of a column against the other members (own row and own group left out)
+    others = mat[grp]
+    valid = others >= 0
+    o = np.maximum(others, 0)
+    valid &= rows[o] != rows[order][:, None]
+    if exclude_group is not None:
+        own = exclude_group[order][:, None]
+        valid &= ~((exclude_group[o] == own) & (own >= 0))
+    vals = np.where(valid, e[o], np.nan)
+    abs_k, rel = float(cfg["column_match_abs_k"]), float(cfg["column_match_rel"])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        step = np.nanmedian(vals, axis=1)
+        # the rows that share the step; a row warmer than that may hold a defect there (left out),
+        # a row colder than that means no common step
+        near = np.abs(vals - step[:, None]) <= (abs_k + rel * np.abs(step))[:, None]
+        step = np.nanmedian(np.where(near, vals, np.nan), axis=1)
+        tol = (abs_k + rel * np.abs(step))[:, None]
+        near = np.abs(vals - step[:, None]) <= tol
+        colder = (vals < step[:, None] - tol).any(axis=1)
+    apply = ((near.sum(axis=1) >= int(cfg["column_min_rows"])) & ~colder
+             & (step <= -float(cfg["column_min_step_k"])))
+    out[order[apply]] = step[apply]
+    return out
+
+
 @dataclass(frozen=True)
 class ReferenceResult:
     """Outcome of :func:`local_reference` with ``return_details=True``.
@@ -380,7 +457,15 @@ def local_reference(modules: pd.DataFrame, t_module_c: ArrayLike, healthy_mask: 
     scale = np.nan
     xy = module_centres(modules) if bool(cfg["trend_correction"]) else None
     nb = reference_neighbours(modules, healthy, cfg, exclude_group=exclude_group)
-    ref = _median_of(t, nb)
+    columns, rows = _table_columns(modules) if bool(cfg["column_correction"]) else (None, None)
+    groups = None if exclude_group is None else np.asarray(exclude_group, dtype=np.int64)
+
+    def follow_columns(r: np.ndarray) -> np.ndarray:
+        if columns is None or rows is None:
+            return r
+        return r + _column_correction(t, r, columns, rows, cfg, groups)
+
+    ref = follow_columns(_median_of(t, nb))
     for _ in range(max(int(cfg["iterations"]) - 1, 0)):
         dev = t - ref
         ok = healthy & np.isfinite(dev)
@@ -394,9 +479,13 @@ def local_reference(modules: pd.DataFrame, t_module_c: ArrayLike, healthy_mask: 
             break
         suspect |= new_suspect
         nb = reference_neighbours(modules, healthy & ~suspect, cfg, exclude_group=exclude_group)
-        ref = _median_of(t, nb)
+        ref = follow_columns(_median_of(t, nb))
     if xy is not None:
-        ref = _median_of(t, nb, xy, float(cfg["trend_max_shift_m"]))
+        # the trend along the row where no column step explains the module (a line fitted
+        # across a step is neither the one level nor the other)
+        plain = _median_of(t, nb)
+        stepped = follow_columns(plain)
+        ref = np.where(stepped != plain, stepped, _median_of(t, nb, xy, float(cfg["trend_max_shift_m"])))
     logger.debug("local reference: %d suspects excluded, spread %.3f K", int(suspect.sum()), scale)
     if return_details:
         return ReferenceResult(ref, nb, suspect, scale)
