@@ -53,7 +53,8 @@ def nanquantile(a: ArrayLike, q: float, axis: int | None = None) -> Any:
     rows = np.arange(flat.shape[0])
     vlo = flat[rows, lo]
     vhi = flat[rows, hi]
-    out = vlo + w * (vhi - vlo)
+    with np.errstate(invalid="ignore"):  # rows without a finite value (inf - inf), NaN below
+        out = vlo + w * (vhi - vlo)
     return np.where(cnt > 0, out, np.nan).reshape(srt.shape[:-1])
 
 
@@ -67,7 +68,8 @@ def sorted_quantile(srt: np.ndarray, cnt: np.ndarray, q: float) -> Any:
     w = pos - lo
     vlo = np.take_along_axis(srt, lo[..., None], axis=-1)[..., 0]
     vhi = np.take_along_axis(srt, hi[..., None], axis=-1)[..., 0]
-    out = vlo + w * (vhi - vlo)
+    with np.errstate(invalid="ignore"):  # rows without a finite value (inf - inf), NaN below
+        out = vlo + w * (vhi - vlo)
     return np.where(cnt > 0, out, np.nan)
 
 
