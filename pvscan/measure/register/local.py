@@ -48,7 +48,7 @@ from pvscan.measure.register.evidence import (
     module_spread,
     sample_modules,
 )
-from pvscan.measure.register.search import group_evidence, refine_translations
+from pvscan.measure.register.search import FINEST_STEP_SHARE, group_evidence, refine_translations
 
 __all__ = ["LocalFit", "refine_tables", "refine_rows", "table_offsets", "row_offsets", "check_reach"]
 
@@ -169,14 +169,14 @@ def _per_table(modules: gpd.GeoDataFrame, n: int, keys: np.ndarray | None = None
 def check_reach(reg: Any, cfg: Mapping[str, Any]) -> None:
     """A registration (:class:`pvscan.measure.register.Registration`) whose applied table
     correction reached the edge of the search (``local_radius_m`` east or north, within the
-    search's finest step, ``local_step_m`` / 8) is made ``ambiguous``: the table may belong
+    search's finest step, ``local_step_m`` x ``search.FINEST_STEP_SHARE``) is made ``ambiguous``: the table may belong
     farther, the global fit is off there by more than the table refinement can follow, and its
     footprints may straddle its modules. ``reg.evidence["local_reach"]`` records the count."""
     lf = reg.local
     if lf is None or not lf.applied or not lf.shifts:
         return
     radius = float(cfg["local_radius_m"])
-    edge = radius - float(cfg["local_step_m"]) / 8.0
+    edge = radius - float(cfg["local_step_m"]) * FINEST_STEP_SHARE
     at = {str(t): (float(d[0]), float(d[1])) for t, d in lf.shifts.items() if max(abs(d[0]), abs(d[1])) >= edge}
     reg.evidence["local_reach"] = {"tables_at_edge": len(at), "radius_m": radius}
     if not at:

@@ -32,7 +32,10 @@ from pvscan.measure.register.evidence import (
     off_glass_near,
 )
 
-__all__ = ["refine_placement", "refine_translations"]
+__all__ = ["refine_placement", "refine_translations", "FINEST_STEP_SHARE"]
+
+#: The pattern search halves each first step until below this share of it: its finest step [-].
+FINEST_STEP_SHARE = 1.0 / 8.0
 
 _Search = Generator[Placement, float, tuple[Placement, float]]
 
@@ -68,7 +71,7 @@ def _pattern_search(start: Placement, cfg: Mapping, *, rotate: bool, scale: bool
         seen[_key(start)] = f_start if math.isfinite(f_start) else float("inf")
     best = start
     fb = yield from f(start)
-    floor = {k: v / 8.0 for k, v in steps.items()}
+    floor = {k: v * FINEST_STEP_SHARE for k, v in steps.items()}
     for _ in range(200):
         improved = False
         for key, st in steps.items():
