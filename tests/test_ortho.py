@@ -132,6 +132,57 @@ def test_window_cache_reads_the_same_pixels_as_read(write_tif, rng):
     np.testing.assert_array_equal(inner[ok], data[ok])
 
 
+
+def test_window_cache_keeps_part_of_a_cycle_longer_than_itself(write_tif, rng, monkeypatch):
+    # Reference: Johnson and Shasha (1994), "2Q: a low overhead high performance buffer
+    # management replacement algorithm" (VLDB); and the textbook property of LRU that a loop
+    # over more pages than the cache holds misses on every access (each page is dropped just
+    # before it is needed again). A registration samples the same spread of modules pass after
+    # pass: the chunk reader must keep part of such a loop, and return OrthoSet.read's pixels.
+    import pvscan.io.ortho_chunks as oc
+
+    data = rng.normal(30, 3, (16 * 8, 16 * 8)).astype("float32")  # 8 x 8 chunks of 16 px
+    p = write_tif("twoq.tif", data)
+    decoded: list[tuple[int, int]] = []
+    read_into = oc._read_into
+
+    def counting(ds, tile, win):
+        decoded.append((int(win.row_off), int(win.col_off)))
+        return read_into(ds, tile, win)
+
+    monkeypatch.setattr(oc, "_read_into", counting)
+    loop = [Window(16 * (k % 8), 16 * (k // 8), 16, 16) for k in range(20)]  # 20 chunks, 16 kept
+    passes = 4
+    with open_orthos(p) as o:
+        with o.window_cache(chunk_px=16, max_chunks=16) as read:
+            for _ in range(passes):
+                for w in loop:
+                    np.testing.assert_array_equal(read(0, w), o.read(0, w))
+    assert len(set(decoded)) == len(loop)
+    assert len(loop) <= len(decoded) < passes * len(loop)  # LRU: passes * len(loop)
+
+
+def test_two_queues_bounds_and_promotion():
+    # Reference: Johnson and Shasha (1994), the 2Q "full version": Kin = 25 %, Kout = 50 % of
+    # the capacity; a key met again while remembered in A1out goes to Am.
+    from pvscan.io.ortho_chunks import _TwoQueues
+
+    q = _TwoQueues(8)
+    assert (q.k_in, q.k_out) == (2, 4)
+    for k in range(8):
+        q.put(k, str(k))
+    assert len(q.a1in) == 8 and not q.am
+    q.put(8, "8")  # full: the oldest of A1in leaves, its key remembered
+    assert 0 not in q.a1in and list(q.a1out) == [0] and q.get(0) is None
+    q.put(0, "0")  # met again while remembered: the main queue
+    assert q.am == {0: "0"} and q.get(0) == "0"
+    for k in range(100, 200):
+        if q.get(k) is None:
+            q.put(k, str(k))
+        assert len(q.a1in) + len(q.am) <= 8 and len(q.a1out) <= 4
+    assert q.get(0) == "0"  # a scan of keys met once did not push it out
+
+
 def test_tile_metadata(write_tif):
     p = write_tif("t.tif", np.zeros((100, 200), "float32"), gsd=0.05, block=32)
     with open_orthos(p) as o:

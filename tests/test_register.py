@@ -600,6 +600,27 @@ def test_footprint_mappings_rasterise_like_the_geometries():
     np.testing.assert_array_equal(ours, ref)
 
 
+@pytest.mark.parametrize("ss", [1, 3, 4, 16])
+def test_footprint_coverage_counts_the_burnt_samples_of_each_pixel(ss):
+    # Reference: rasterio.features.rasterize on the ss-times finer grid (a sample burns when
+    # its centre lies inside a footprint), its samples counted per pixel by plain numpy sums:
+    # the coverage must be that count times 1 / (ss * ss), exactly, whatever the summing order.
+    from pvscan.measure.register._blocks import _coverage
+
+    mods = make_layout((500_000.0, 4_000_000.0), angle_deg=17.0)
+    geoms = np.asarray(mods.geometry.values[:40], dtype=object)
+    b = shapely.total_bounds(geoms)
+    gsd = 0.1
+    tr = Affine(gsd, 0, b[0] - 0.73, 0, -gsd, b[3] + 0.41)
+    shape = (int((b[3] - b[1] + 1.5) / gsd), int((b[2] - b[0] + 1.5) / gsd))
+    fine = features.rasterize(((g, 1) for g in geoms), out_shape=(shape[0] * ss, shape[1] * ss),
+                              transform=tr @ Affine.scale(1.0 / ss), dtype="uint8")
+    want = fine.reshape(shape[0], ss, shape[1], ss).sum(axis=(1, 3)) * (1.0 / (ss * ss))
+    got = _coverage(geoms, shape, tr, ss)
+    assert got.shape == shape and 0.0 < got.mean() < 1.0 and ((got > 0) & (got < 1)).any() == (ss > 1)
+    np.testing.assert_array_equal(got, want)
+
+
 # ----------------------------------------------------------------------------------
 # physical plausibility: tracker rows beside their own ground shadow
 # A row's shadow on the ground is as wide as the row and uniform, so the edge

@@ -90,10 +90,15 @@ def _coverage(geoms: Any, shape: tuple[int, int], transform: Affine, ss: int) ->
         return np.zeros(shape)
     fine = features.rasterize(((g, 1) for g in _as_mappings(geoms)), out_shape=(h * ss, w * ss),
                               transform=transform @ Affine.scale(1.0 / ss), fill=0, dtype="uint8")
-    counts = np.zeros((h, w), np.uint16)
-    for i in range(ss):
-        for j in range(ss):
-            counts += fine[i::ss, j::ss]
+    # the samples of each pixel summed in integers (exact in any order): first the ss rows of
+    # samples (contiguous rows, in the narrowest type that holds ss * ss), then the ss columns
+    rows = fine[0::ss].astype(np.uint8 if ss * ss <= 255 else np.uint16)
+    for i in range(1, ss):
+        rows += fine[i::ss]
+    cols = rows.reshape(h, w, ss)
+    counts = cols[:, :, 0].astype(np.uint16)
+    for j in range(1, ss):
+        counts += cols[:, :, j]
     return counts * (1.0 / (ss * ss))
 
 

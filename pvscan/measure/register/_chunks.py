@@ -9,7 +9,10 @@ __all__ = ["shared_chunks"]
 
 
 #: Chunks (256 x 256 px, float32: 256 KiB each) kept by the chunk cache of one registration:
-#: at most 128 MiB; a sample of modules spread over the site touches a few hundred.
+#: at most 128 MiB; a sample of modules spread over the site touches a few hundred. One
+#: registration of the 25,536-module benchmark plant asks 14,166 times for 655 chunks: kept
+#: in least-recently-used order 1,407 were decoded, with the 2Q policy of the reader 908
+#: (768 chunks would hold all 655, but raise the process's peak memory by about 50 MiB).
 _SHARED_CHUNKS = 512
 
 
