@@ -67,9 +67,11 @@ def one_flight(seed: int, family: str, root: Path, inspect: bool, scenario: Path
     settings = load_pipeline()
     fl = load_flight(sim.manifest)
     t1 = time.perf_counter()
+    c1 = time.process_time()
     try:
         with open_orthos(fl, settings=settings) as orthos:
             det = detect_layout(orthos, fl.module, fl.layout, settings)
+        cpu = time.process_time() - c1
         path = flight_dir / "detected.gpkg"
         for name, frame in (("modules", det.modules), ("tables", det.tables), ("dropped_tables", det.dropped)):
             if len(frame) or name == "modules":
@@ -79,9 +81,11 @@ def one_flight(seed: int, family: str, root: Path, inspect: bool, scenario: Path
         s.update(dropped_modules=summ["dropped_modules"], dropped_share=summ["dropped_share"],
                  tables_to_check=summ["tables_to_check"])
     except Exception as exc:  # a flight the detector refuses counts as nothing found
+        cpu = time.process_time() - c1
         s = {"truth_modules": None, "layout_modules": 0, "found": 0, "found_fraction": 0.0, "extra": 0,
              "extra_fraction": 0.0, "corner_error_m": None, "within_5cm": None, "error": str(exc)}
     s.update(seed=seed, family=family, flight=desc, detect_s=round(time.perf_counter() - t1, 1),
+             detect_cpu_s=round(cpu, 1),
              simulate_s=round(t1 - t0, 1))
     if inspect and s.get("found"):
         from pvscan.pipeline import inspect_flight
@@ -135,12 +139,13 @@ def main(argv: list[str] | None = None) -> int:
                   + f"  dropped {s.get('dropped_modules', 0)} ({100 * s.get('dropped_share', 0.0):.1f} %)"
                   + (f"  recall {ns.get('recall')} precision {ns.get('precision')}" if ns else "")
                   + (f"  ERROR {s['error']}" if s.get("error") else "")
-                  + f"  [{s['detect_s']} s]", flush=True)
+                  + f"  [{s['detect_s']} s, cpu {s['detect_cpu_s']} s]", flush=True)
     print(f"found fraction     {_stats([r['found_fraction'] for r in rows], True)}")
     print(f"extra fraction     {_stats([r['extra_fraction'] for r in rows], False)}")
     print(f"corner p95 [m]     {_stats([(r.get('corner_error_m') or {}).get('p95') for r in rows], False)}")
     print(f"within 5 cm        {_stats([r.get('within_5cm') for r in rows], True)}")
     print(f"dropped share      {_stats([r.get('dropped_share') for r in rows], False)}")
+    print(f"detect cpu [s]     {_stats([r.get('detect_cpu_s') for r in rows], False)}")
     if args.inspect:
         ns = [r.get("no_string_classes") or {} for r in rows]
         print(f"recall (no string) {_stats([n.get('recall') for n in ns], True)}")
