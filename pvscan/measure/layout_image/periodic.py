@@ -133,10 +133,10 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
         level (and off the glass level by more than ``glass_tol_k``) is ground; without it
         (NaN) no end module is dropped.
     local_pitches : float, optional
-        When the run of lines the comb's phase over the whole window gives does not hold the
-        window's centre (a window over several tables of a row, each on a phase of its own),
-        the phase is looked for again over the lines within this many pitches of the centre,
-        and its run taken when it holds the centre [pitches]; infinite: not.
+        When the comb's phase over the whole window leaves no run of lines at the window's
+        centre (a window over several tables of a row, each on a phase of its own), the phase
+        is looked for again over the lines within this many pitches of the centre
+        [pitches]; infinite: not.
 
     Returns
     -------
@@ -179,14 +179,12 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
             n_phase = int(round(period))
             if n_phase < 3:
                 return None
-            # the phase of the whole window, then (its run of lines does not hold the window's
-            # centre: the tables of a row stand about a metre apart, not whole pitches, so the
-            # lines of a window over several tables are on one phase per table) the phase of
-            # the lines within local_pitches pitches of the centre, taken when its run holds it
+            # the phase of the whole window, then (no run of lines at the window's centre: the
+            # tables of a row stand about a metre apart, not whole pitches, so the lines of a
+            # window over several tables are on one phase per table) the phase of the lines
+            # within local_pitches pitches of the centre
             centre_s = 0.5 * (s_range[0] + s_range[1])
-            centre_bin = (centre_s - s_range[0]) / bin_m - 0.5
             chosen: tuple | None = None
-            fallback: tuple | None = None
             for near_centre in (None, local_pitches * period):
                 if near_centre is not None and not math.isfinite(near_centre):
                     break
@@ -274,13 +272,9 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
                         b -= 1
                     while b - a >= 2 and ground_between(a, a + 1):
                         a += 1
-                state = (lines, li, pos, d, med, on, a, b, glass_c, middle, ground_between)
-                if b - a >= 1 and pos[a] <= centre_bin <= pos[b]:
-                    chosen = state
+                if b - a >= 1:
+                    chosen = (lines, li, pos, d, med, on, a, b, glass_c, middle, ground_between)
                     break
-                if near_centre is None and b - a >= 1:
-                    fallback = state
-            chosen = chosen or fallback
             if chosen is None:
                 return None
             lines, li, pos, d, med, on, a, b, glass_c, middle, ground_between = chosen
