@@ -375,8 +375,7 @@ def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings
         return comb_extent(s, w, t, (-0.5 * length - reach, 0.5 * length + reach),
                            (-0.5 * depth - reach_w, 0.5 * depth + reach_w), (-0.15 * depth, 0.15 * depth),
                            mod_s + gap, gsd, float(settings["dip_fraction"]), float(settings["close_m"]),
-                           shift_m, lattice, float(settings["level_tol_k"]), ground_c,
-                           float(settings["comb_local_pitches"]))
+                           shift_m, lattice, float(settings["level_tol_k"]), ground_c)
 
     found = {}
     for orient in ("portrait", "landscape"):

@@ -24,7 +24,6 @@ with the module pitch; ground and shadows beside the table have no such comb. So
 from __future__ import annotations
 
 import math
-from typing import Any
 
 import numpy as np
 
@@ -93,7 +92,7 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
                 w_range: tuple[float, float], w_inner: tuple[float, float], pitch_s: float, gsd: float,
                 dip_fraction: float, close_m: float, line_shift_m: float,
                 across_lattice: tuple[float, float] | None = None, glass_tol_k: float = math.inf,
-                ground_c: float = math.nan, local_pitches: float = math.inf
+                ground_c: float = math.nan
                 ) -> tuple[float, float, float, float, float, float] | None:
     """Table extent in its frame from the comb of frame lines along its axis.
 
@@ -132,11 +131,6 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
         The ground's level around the table [degC]: an end module nearer it than the glass
         level (and off the glass level by more than ``glass_tol_k``) is ground; without it
         (NaN) no end module is dropped.
-    local_pitches : float, optional
-        When the comb's phase over the whole window leaves no run of lines at the window's
-        centre (a window over several tables of a row, each on a phase of its own), the phase
-        is looked for again over the lines within this many pitches of the centre
-        [pitches]; infinite: not.
 
     Returns
     -------
@@ -179,105 +173,83 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
             n_phase = int(round(period))
             if n_phase < 3:
                 return None
-            # the phase of the whole window, then (no run of lines at the window's centre: the
-            # tables of a row stand about a metre apart, not whole pitches, so the lines of a
-            # window over several tables are on one phase per table) the phase of the lines
-            # within local_pitches pitches of the centre
-            centre_s = 0.5 * (s_range[0] + s_range[1])
-            chosen: tuple | None = None
-            for near_centre in (None, local_pitches * period):
-                if near_centre is not None and not math.isfinite(near_centre):
-                    break
-                best, phase = -np.inf, 0.0
-                for p in range(n_phase):
-                    idx = np.round(p + np.arange(0, ns, period)).astype(int)
-                    idx = idx[idx < ns]
-                    if near_centre is not None:
-                        idx = idx[np.abs(sc[idx] - centre_s) <= near_centre * bin_m]
-                    if idx.size < 2:
-                        continue
-                    sc_p = float(np.sort(sym[idx])[::-1][: max(2, idx.size // 2)].mean())
-                    if sc_p > best:
-                        best, phase = sc_p, float(p)
-                if best <= 0:
-                    continue
-                k_all = np.arange(-1, int(ns / period) + 2)
-                lines = phase + k_all * period
-                lines = lines[(lines >= 0) & (lines < ns)]
-                li = np.clip(np.round(lines).astype(int), 0, ns - 1)
-                # each line where its own dip is deepest within line_shift_m (at most a quarter
-                # pitch): a mosaic seam that shows part of the table shifted by a few centimetres
-                # moves its lines off the common phase
-                reach = int(max(0, round(min(line_shift_m / bin_m, period / 4))))
-                pos, d = _local_lines(dip, lines, reach)
-                li = np.clip(np.round(pos).astype(int), 0, ns - 1)
-                # the median line contrast (of the lines near the centre on the centre's phase)
-                lined = d > 0
-                if near_centre is not None:
-                    lined &= np.abs(sc[li] - centre_s) <= near_centre * bin_m
-                med = float(np.median(d[lined])) if lined.any() else 0.0
-                if med <= 0:
-                    continue
-                on = d >= dip_fraction * med
-                # the run of lines holding the window's centre
-                centre = int(np.argmin(np.abs(sc[li] - centre_s)))
-                if not on[centre]:
-                    cand = np.flatnonzero(on)
-                    if cand.size == 0:
-                        continue
-                    centre = int(cand[np.argmin(np.abs(cand - centre))])
-
-                # the middle half of the module between lines j0 and j1 [degC]
-                def middle(j0: int, j1: int, pos: np.ndarray = pos) -> float:
-                    q = 0.25 * (pos[j1] - pos[j0])
-                    m0 = int(np.clip(round(pos[j0] + q), 0, ns - 1))
-                    m1 = int(np.clip(round(pos[j1] - q), 0, ns - 1))
-                    return float(np.median(prof[m0:m1 + 1]))
-
-                pairs = np.flatnonzero(on[:-1] & on[1:])
-                glass_c = float(np.median([middle(i, i + 1) for i in pairs.tolist()])) if pairs.size else math.nan
-                # one line a mosaic seam skipped (the seam showed the table shifted by about a frame,
-                # a gap and a frame): two regular lines between modules either side (not a table's
-                # end), two pitches apart, the glass level between
-                run_on = on.copy()
-                regular = on & (d <= 2.0 * med)
-                for i in range(2, lines.size - 2):
-                    if on[i] or not (regular[i - 2] and regular[i - 1] and regular[i + 1] and regular[i + 2]):
-                        continue
-                    if abs(pos[i + 1] - pos[i - 1] - 2 * period) > 2 * reach + 1:
-                        continue
-                    if all(abs(middle(p, p + 1) - glass_c) <= glass_tol_k for p in (i - 1, i)):
-                        run_on[i] = True
-                a, b = _run_around(run_on, centre)
-
-                # the ground between this table's end and the next table of its row (tables stand
-                # about a pitch apart) looks like one more module between two lines: its middle
-                # half is off the glass level and nearer the ground's
-                def ground_between(j0: int, j1: int, middle: Any = middle, glass_c: float = glass_c) -> bool:
-                    mid = middle(j0, j1)
-                    return abs(mid - glass_c) > glass_tol_k and abs(mid - ground_c) < abs(mid - glass_c)
-
-                if math.isfinite(glass_tol_k) and math.isfinite(ground_c) and math.isfinite(glass_c) and b - a >= 3:
-                    # within the run too: a window longer than the table holds the next table of
-                    # the row, whose first frame is about where this table's next line would be
-                    j = centre
-                    while j < b and not ground_between(j, j + 1):
-                        j += 1
-                    b = j
-                    j = centre
-                    while j > a and not ground_between(j - 1, j):
-                        j -= 1
-                    a = j
-                    while b - a >= 2 and ground_between(b - 1, b):
-                        b -= 1
-                    while b - a >= 2 and ground_between(a, a + 1):
-                        a += 1
-                if b - a >= 1:
-                    chosen = (lines, li, pos, d, med, on, a, b, glass_c, middle, ground_between)
-                    break
-            if chosen is None:
+            best, phase = -np.inf, 0.0
+            for p in range(n_phase):
+                idx = np.round(p + np.arange(0, ns, period)).astype(int)
+                idx = idx[idx < ns]
+                sc_p = float(np.sort(sym[idx])[::-1][: max(2, idx.size // 2)].mean())
+                if sc_p > best:
+                    best, phase = sc_p, float(p)
+            if best <= 0:
                 return None
-            lines, li, pos, d, med, on, a, b, glass_c, middle, ground_between = chosen
+            k_all = np.arange(-1, int(ns / period) + 2)
+            lines = phase + k_all * period
+            lines = lines[(lines >= 0) & (lines < ns)]
+            li = np.clip(np.round(lines).astype(int), 0, ns - 1)
+            # each line where its own dip is deepest within line_shift_m (at most a quarter
+            # pitch): a mosaic seam that shows part of the table shifted by a few centimetres
+            # moves its lines off the common phase
+            reach = int(max(0, round(min(line_shift_m / bin_m, period / 4))))
+            pos, d = _local_lines(dip, lines, reach)
+            li = np.clip(np.round(pos).astype(int), 0, ns - 1)
+            med = float(np.median(d[d > 0])) if (d > 0).any() else 0.0
+            if med <= 0:
+                return None
+            on = d >= dip_fraction * med
+            # the run of lines holding the window's centre
+            centre = int(np.argmin(np.abs(sc[li] - 0.5 * (s_range[0] + s_range[1]))))
+            if not on[centre]:
+                cand = np.flatnonzero(on)
+                if cand.size == 0:
+                    return None
+                centre = int(cand[np.argmin(np.abs(cand - centre))])
+
+            # the middle half of the module between lines j0 and j1 [degC]
+            def middle(j0: int, j1: int) -> float:
+                q = 0.25 * (pos[j1] - pos[j0])
+                m0, m1 = int(np.clip(round(pos[j0] + q), 0, ns - 1)), int(np.clip(round(pos[j1] - q), 0, ns - 1))
+                return float(np.median(prof[m0:m1 + 1]))
+
+            pairs = np.flatnonzero(on[:-1] & on[1:])
+            glass_c = float(np.median([middle(i, i + 1) for i in pairs.tolist()])) if pairs.size else math.nan
+            # one line a mosaic seam skipped (the seam showed the table shifted by about a frame,
+            # a gap and a frame): two regular lines between modules either side (not a table's
+            # end), two pitches apart, the glass level between
+            run_on = on.copy()
+            regular = on & (d <= 2.0 * med)
+            for i in range(2, lines.size - 2):
+                if on[i] or not (regular[i - 2] and regular[i - 1] and regular[i + 1] and regular[i + 2]):
+                    continue
+                if abs(pos[i + 1] - pos[i - 1] - 2 * period) > 2 * reach + 1:
+                    continue
+                if all(abs(middle(p, p + 1) - glass_c) <= glass_tol_k for p in (i - 1, i)):
+                    run_on[i] = True
+            a, b = _run_around(run_on, centre)
+
+            # the ground between this table's end and the next table of its row (tables stand
+            # about a pitch apart) looks like one more module between two lines: its middle
+            # half is off the glass level and nearer the ground's
+            def ground_between(j0: int, j1: int) -> bool:
+                mid = middle(j0, j1)
+                return abs(mid - glass_c) > glass_tol_k and abs(mid - ground_c) < abs(mid - glass_c)
+
+            if math.isfinite(glass_tol_k) and math.isfinite(ground_c) and math.isfinite(glass_c) and b - a >= 3:
+                # within the run too: a window longer than the table holds the next table of
+                # the row, whose first frame is about where this table's next line would be
+                j = centre
+                while j < b and not ground_between(j, j + 1):
+                    j += 1
+                b = j
+                j = centre
+                while j > a and not ground_between(j - 1, j):
+                    j -= 1
+                a = j
+                while b - a >= 2 and ground_between(b - 1, b):
+                    b -= 1
+                while b - a >= 2 and ground_between(a, a + 1):
+                    a += 1
+            if b - a < 1:
+                return None
             # the lattice's phase from the lines between modules (symmetric dips), not from
             # the table's ends (a glass-ground edge, whose dip leans toward the glass): the
             # median of the lines' offsets from the datasheet pitch
