@@ -316,6 +316,41 @@ def _table_columns(modules: pd.DataFrame) -> tuple[np.ndarray, np.ndarray]:
     return np.where(known, code, -1), rows
 
 
+def _column_others(values: np.ndarray, columns: np.ndarray, rows: np.ndarray,
+                   exclude_group: np.ndarray | None = None) -> tuple[np.ndarray | None, np.ndarray]:
+    """For each module of a known table column with a finite value: the values of the other
+    members of its column (same table and ``table_col``) in the other rows of the table (and,
+    with ``exclude_group``, of other groups), NaN elsewhere.
+
+    Returns ``(order, vals)``: the module indices and, per module, a row of ``vals``; ``order``
+    is None when no column holds two such modules.
+    """
+    use = (columns >= 0) & np.isfinite(values)
+    if len(values) == 0 or use.sum() < 2:
+        return None, np.empty((0, 0))
+    idx = np.flatnonzero(use)
+    order = idx[np.argsort(columns[idx], kind="stable")]
+    cs = columns[order]
+    starts = np.flatnonzero(np.r_[True, cs[1:] != cs[:-1]])
+    sizes = np.diff(np.r_[starts, len(cs)])
+    width = int(sizes.max())
+    if width < 2:
+        return None, np.empty((0, 0))
+    slot = np.arange(len(cs)) - np.repeat(starts, sizes)
+    grp = np.repeat(np.arange(len(starts)), sizes)
+    mat = np.full((len(starts), width), -1, dtype=np.int64)
+    mat[grp, slot] = order
+    # each member of a column against the other members (own row and own group left out)
+    others = mat[grp]
+    valid = others >= 0
+    o = np.maximum(others, 0)
+    valid &= rows[o] != rows[order][:, None]
+    if exclude_group is not None:
+        own = exclude_group[order][:, None]
+        valid &= ~((exclude_group[o] == own) & (own >= 0))
+    return order, np.where(valid, values[o], np.nan)
+
+
 def _column_correction(t: np.ndarray, ref: np.ndarray, columns: np.ndarray, rows: np.ndarray,
                        cfg: Mapping[str, Any], exclude_group: np.ndarray | None = None) -> np.ndarray:
     """The correction [K] to add to each module's row reference where its table column is colder
@@ -338,30 +373,9 @@ def _column_correction(t: np.ndarray, ref: np.ndarray, columns: np.ndarray, rows
     n = len(t)
     out = np.zeros(n)
     e = t - ref
-    use = (columns >= 0) & np.isfinite(e)
-    if n == 0 or use.sum() < 2:
+    order, vals = _column_others(e, columns, rows, exclude_group)
+    if order is None:
         return out
-    idx = np.flatnonzero(use)
-    order = idx[np.argsort(columns[idx], kind="stable")]
-    cs = columns[order]
-    starts = np.flatnonzero(np.r_[True, cs[1:] != cs[:-1]])
-    sizes = np.diff(np.r_[starts, len(cs)])
-    width = int(sizes.max())
-    if width < 2:
-        return out
-    slot = np.arange(len(cs)) - np.repeat(starts, sizes)
-    grp = np.repeat(np.arange(len(starts)), sizes)
-    mat = np.full((len(starts), width), -1, dtype=np.int64)
-    mat[grp, slot] = order
-    # each member of a column against the other members (own row and own group left out)
-    others = mat[grp]
-    valid = others >= 0
-    o = np.maximum(others, 0)
-    valid &= rows[o] != rows[order][:, None]
-    if exclude_group is not None:
-        own = exclude_group[order][:, None]
-        valid &= ~((exclude_group[o] == own) & (own >= 0))
-    vals = np.where(valid, e[o], np.nan)
     abs_k, rel = float(cfg["column_match_abs_k"]), float(cfg["column_match_rel"])
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
@@ -377,6 +391,50 @@ def _column_correction(t: np.ndarray, ref: np.ndarray, columns: np.ndarray, rows
              & (step <= -float(cfg["column_min_step_k"])))
     out[order[apply]] = step[apply]
     return out
+
+
+def _row_block_suspects(t: np.ndarray, dev: np.ndarray, med: float, lim: float, healthy: np.ndarray,
+                        columns: np.ndarray, rows: np.ndarray,
+                        cfg: Mapping[str, Any]) -> tuple[np.ndarray, np.ndarray] | None:
+    """The rows whose own reference the row's warm majority carries (a mask of their modules) and
+    their suspects, judged against their table columns instead; None when no row is.
+
+    Every defect heats a module. A row whose modules read well below their row reference (by
+    more than the outlier limit ``lim`` [K] about the flight's median deviation ``med`` [K]) while
+    they read level with the modules of their table column in the table's other rows (the
+    median of those, within the same kind of limit about its flight median) is a row whose
+    reference is warm: most of its modules are raised together (an open string and an open
+    module filling the row of a table whose stringing is unknown). With ``row_block_min_cold``
+    such modules or more in a row, that row's suspects are the modules warmer than their
+    column by more than the limit, and its cold modules stay healthy references.
+    """
+    order, vals = _column_others(t, columns, rows)
+    if order is None:
+        return None
+    level = np.full(len(t), np.nan)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        level[order] = np.nanmedian(vals, axis=1)
+    dev_c = t - level
+    ok_c = healthy & np.isfinite(dev_c)
+    if ok_c.sum() < 3:
+        return None
+    med_c = float(np.median(dev_c[ok_c]))
+    lim_c = max(float(cfg["outlier_mad"]) * scaled_mad(dev_c[ok_c]), float(cfg["outlier_floor_k"]))
+    with np.errstate(invalid="ignore"):
+        cold = healthy & (dev - med < -lim) & (np.abs(dev_c - med_c) <= lim_c) & (rows >= 0)
+    if not cold.any():
+        return None
+    k, cnt = np.unique(rows[cold], return_counts=True)
+    broken = k[cnt >= int(cfg["row_block_min_cold"])]
+    if len(broken) == 0:
+        return None
+    in_broken = np.isin(rows, broken)
+    with np.errstate(invalid="ignore"):
+        warm = healthy & in_broken & (dev_c - med_c > lim_c)
+    logger.debug("row reference: %d rows carried by their warm majority, %d modules suspect against their columns",
+                 len(broken), int(warm.sum()))
+    return in_broken, warm
 
 
 @dataclass(frozen=True)
@@ -457,11 +515,13 @@ def local_reference(modules: pd.DataFrame, t_module_c: ArrayLike, healthy_mask: 
     scale = np.nan
     xy = module_centres(modules) if bool(cfg["trend_correction"]) else None
     nb = reference_neighbours(modules, healthy, cfg, exclude_group=exclude_group)
-    columns, rows = _table_columns(modules) if bool(cfg["column_correction"]) else (None, None)
+    row_block = bool(cfg["row_block_check"]) and exclude_group is None
+    columns, rows = (_table_columns(modules) if bool(cfg["column_correction"]) or row_block
+                     else (None, None))
     groups = None if exclude_group is None else np.asarray(exclude_group, dtype=np.int64)
 
     def follow_columns(r: np.ndarray) -> np.ndarray:
-        if columns is None or rows is None:
+        if columns is None or rows is None or not bool(cfg["column_correction"]):
             return r
         return r + _column_correction(t, r, columns, rows, cfg, groups)
 
@@ -475,6 +535,10 @@ def local_reference(modules: pd.DataFrame, t_module_c: ArrayLike, healthy_mask: 
         scale = scaled_mad(dev[ok])
         lim = max(float(cfg["outlier_mad"]) * scale, float(cfg["outlier_floor_k"]))
         new_suspect = healthy & np.isfinite(dev) & (np.abs(dev - med) > lim)
+        if row_block and columns is not None and rows is not None:
+            block = _row_block_suspects(t, dev, med, lim, healthy, columns, rows, cfg)
+            if block is not None:
+                new_suspect = np.where(block[0], block[1], new_suspect)
         if not (new_suspect & ~suspect).any():
             break
         suspect |= new_suspect
