@@ -84,10 +84,13 @@ def _stage(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module_s
            healthy: np.ndarray, groups: np.ndarray, pos: np.ndarray, is_string: bool,
            final: bool = True, spread_all: np.ndarray | None = None,
            geometry: dict[str, np.ndarray] | None = None,
-           string_patterns: bool = True, spread_from: np.ndarray | None = None) -> tuple[Features, list[Hits]]:
+           string_patterns: bool = True, spread_from: np.ndarray | None = None,
+           max_other_ratio: float = np.inf) -> tuple[Features, list[Hits]]:
     """One pass: references (own row, and outside the own string), features, module patterns,
     open strings. ``spread_from``: the modules whose delta T gives the module spread
-    (:func:`pvscan.diagnose.features.build_features`)."""
+    (:func:`pvscan.diagnose.features.build_features`); ``max_other_ratio``: the reference outside
+    the string scattering more than this many module spreads is not used to confirm an open
+    module (``[validity] max_other_spread_ratio``, the bar of the ``string_reference`` check)."""
     t_med = stats.table["t_median_c"].to_numpy(dtype=float)
     rr = local_reference(modules, t_med, healthy, cfg_ref, return_details=True)
     # a reference that excludes the module's own string (or row): a whole string raised
@@ -106,19 +109,23 @@ def _stage(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module_s
         # the open-module test hands a raise shared along a string (or row) to the open-string test
         F.extra.update(groups=groups, pos=pos)
     hits = _detect(F, cfg, final=final)
-    # an open module is raised against both neighbourhoods: its row, and modules outside its
-    # string (a reference biased by a shadow edge along the row is not both)
-    om = hits[0]
-    d_o = t_med - ref_o
-    with np.errstate(invalid="ignore"):
-        om.hit &= d_o >= float(cfg["open_other_share"]) * float(cfg["module_z"]) * F.sig_mod
     d_other = t_med - ref_o
+    sig_o = scaled_mad(d_other[healthy & F.ok]) if (healthy & F.ok).sum() >= 3 else F.sig_mod
+    # an open module is raised against both neighbourhoods: its row, and modules outside its
+    # string (a reference biased by a shadow edge along the row is not both); not where the
+    # reference outside the string scatters more than max_other_ratio module spreads (the flight's
+    # string_reference check fails): that reference then says nothing about the module
+    om = hits[0]
+    reliable = not (np.isfinite(sig_o) and F.sig_mod > 0 and sig_o > max_other_ratio * F.sig_mod)
+    if reliable:
+        with np.errstate(invalid="ignore"):
+            om.hit &= d_other >= float(cfg["open_other_share"]) * float(cfg["module_z"]) * F.sig_mod
+    F.extra["other_reference_reliable"] = reliable
     rsub_o = F.Rsub + (F.ref - ref_o)[:, None]
     # the cell pattern against modules outside the string too: a string-long pattern (PID)
     # would otherwise be partly taken for the shape its neighbours share
     shape_o = np.nan_to_num(neighbour_median(F.cm - t_med[:, None, None], ro.neighbours), nan=0.0)
     F.extra["R_other"] = F.cm - ref_o[:, None, None] - shape_o
-    sig_o = scaled_mad(d_other[healthy & F.ok]) if (healthy & F.ok).sum() >= 3 else F.sig_mod
     F.extra["sig_other_measured"] = float(sig_o) if np.isfinite(sig_o) else float("nan")
     # no wider than other_spread_max_ratio module spreads: on a small plant a faulty string's own
     # offset (and the mirror offset of the row beside it) would widen it and hide the string
@@ -176,6 +183,8 @@ def classify(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module
     cfg = section(settings, "classify")
     cfg_ref = section(settings, "reference")
     cfg_sev = section(settings, "severity")
+    # the bar of the string_reference check: beyond it the reference outside the string is not used
+    max_other_ratio = float(section(settings, "validity")["max_other_spread_ratio"])
     heat = Faiman.from_settings(section(settings, "heat"))
     norm = Normalisation.from_settings(settings)
     cf = float(np.clip(confidence_factor if confidence_factor is not None else 1.0, 0.0, 1.0))
@@ -201,7 +210,8 @@ def classify(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module
 
     # pass 1: suspects
     F1, hits1 = _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, heat, ok, ok, groups, pos,
-                       is_string, final=False, geometry=geometry, string_patterns=string_patterns)
+                       is_string, final=False, geometry=geometry, string_patterns=string_patterns,
+                       max_other_ratio=max_other_ratio)
     suspect = F1.extra["suspect"] | F1.extra["in_run"]
     # the modules of a run found in pass 1 have only suspects about them in their row, so pass 2
     # refers them to other rows and their delta T holds the whole open-module rise: a string of
@@ -218,7 +228,7 @@ def classify(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module
     # pass 2: final, suspects excluded from every reference
     F, hits = _stage(modules, stats, conditions, module_spec, cfg, cfg_ref, heat, ok, ok & ~suspect,
                      groups, pos, is_string, spread_all=spread_all, geometry=geometry,
-                     string_patterns=string_patterns, spread_from=not_run)
+                     string_patterns=string_patterns, spread_from=not_run, max_other_ratio=max_other_ratio)
     if progress:
         progress("classify", 2, 3)
     by = {h.defect: h for h in hits}
