@@ -245,6 +245,12 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
         idx = np.flatnonzero(groups == g)
         idx = idx[np.argsort(pos[idx], kind="stable")]
         c = _fill_gaps(cand[idx]) & F.ok[idx]
+        if not F.extra.get("is_string", False):
+            # a table row standing in for unknown strings holds several strings: a module between
+            # two raised stretches that is not raised itself (open_string_end_z) is where one
+            # string ends, not a dip in an open one (all of whose modules carry no current)
+            with np.errstate(invalid="ignore"):
+                c &= cand[idx] | (z[idx] >= float(cfg["open_string_end_z"]))
         for a, b in _runs(c):
             run = idx[a:b]
             if b - a < min_len:
