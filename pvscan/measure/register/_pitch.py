@@ -19,17 +19,23 @@ __all__ = ["_pitches", "_row_pitch", "_placement_of", "_turned", "_screen_turned
 
 def _pitches(modules: gpd.GeoDataFrame) -> list[np.ndarray]:
     """Median vectors from a module to its next neighbour along a table row and across it [m]."""
+    return list(_named_pitches(modules).values())
+
+
+def _named_pitches(modules: gpd.GeoDataFrame) -> dict[str, np.ndarray]:
+    """:func:`_pitches` by direction: ``along`` a table row, ``across`` it (the names of
+    :func:`pvscan.measure.register.ends.end_lines`), each when the tables have one [m]."""
     import pandas as pd
 
     need = {"table_id", "table_row", "table_col", "fx0", "fy0", "fux", "fuy", "fvx", "fvy"}
     if not need <= set(modules.columns):
-        return []
+        return {}
     cx = modules["fx0"].to_numpy(float) + 0.5 * (modules["fux"].to_numpy(float) + modules["fvx"].to_numpy(float))
     cy = modules["fy0"].to_numpy(float) + 0.5 * (modules["fuy"].to_numpy(float) + modules["fvy"].to_numpy(float))
     df = pd.DataFrame({"t": modules["table_id"].astype(str).to_numpy(), "r": modules["table_row"].to_numpy(),
                        "c": modules["table_col"].to_numpy(), "x": cx, "y": cy})
-    out = []
-    for key, step in (("r", "c"), ("c", "r")):
+    out = {}
+    for name, key, step in (("along", "r", "c"), ("across", "c", "r")):
         d = df.sort_values(["t", key, step])
         same = (d["t"].to_numpy()[1:] == d["t"].to_numpy()[:-1]) & (d[key].to_numpy()[1:] == d[key].to_numpy()[:-1]) & (
             np.diff(d[step].to_numpy()) == 1)
@@ -38,7 +44,7 @@ def _pitches(modules: gpd.GeoDataFrame) -> list[np.ndarray]:
             dy = np.diff(d["y"].to_numpy())[same]
             v = np.array([np.median(dx), np.median(dy)])
             if np.all(np.isfinite(v)) and np.hypot(*v) > 0:
-                out.append(v)
+                out[name] = v
     return out
 
 

@@ -45,7 +45,8 @@ from rasterio.windows import Window
 if TYPE_CHECKING:  # pragma: no cover
     import geopandas as gpd
 
-__all__ = ["end_votes", "end_lines", "free_ends", "judge_ends"]
+__all__ = ["end_votes", "end_lines", "free_ends", "glass_decides", "glass_votes", "judge_ends", "pitch_steps",
+           "sunlit_ends"]
 
 _FRAME = ["fx0", "fy0", "fux", "fuy", "fvx", "fvy"]
 
@@ -318,14 +319,26 @@ def end_votes(orthos: Any, placed: gpd.GeoDataFrame, lines: list[tuple[int, int,
 
 def _votes(orthos: Any, placed: gpd.GeoDataFrame, sets: list[list[tuple[int, int, int]]],
            cfg: Mapping[str, Any]) -> list[np.ndarray]:
-    """:func:`end_votes` of several sets of lines, in one pass over the ortho: the pitch cells
-    are read band by band across the site (each band's chunks decoded once), the lines of one
-    band and cell size together."""
+    """:func:`end_votes` of several sets of lines."""
+    return [v for v, _ in _read_ends(orthos, placed, sets, cfg)]
+
+
+def _read_ends(orthos: Any, placed: gpd.GeoDataFrame, sets: list[list[tuple[int, int, int]]],
+               cfg: Mapping[str, Any]) -> list[tuple[np.ndarray, np.ndarray]]:
+    """:func:`end_votes` of several sets of lines and the moments of their end cells, in one
+    pass over the ortho: the pitch cells are read band by band across the site (each band's
+    chunks decoded once), the lines of one band and cell size together.
+
+    Per set: the votes (len(lines), 2) and the moments (len(lines), 2, 4, 2): at the first end
+    (0) cells 0, 1, 2, 3 and at the last (1) cells n + 1, n, n - 1, n - 2 (the cell beyond
+    the end, the end module's, two inside), each one's mean and standard deviation of its
+    samples [image units] (NaN: fewer than ``ends_min_valid`` of them valid)."""
     sizes = [len(v) for v in sets]
     lines = [t for v in sets for t in v]
     out = np.full((len(lines), 2), np.nan)
+    mom = np.full((len(lines), 2, 4, 2), np.nan)
     if not lines:
-        return [out[:0] for _ in sets]
+        return [(out[:0], mom[:0]) for _ in sets]
     fr = placed[_FRAME].to_numpy(float)
     tiles = list(orthos.tiles)
     gsd = abs(float(tiles[0].transform.a))
@@ -355,15 +368,83 @@ def _votes(orthos: Any, placed: gpd.GeoDataFrame, sets: list[list[tuple[int, int
     with cache() if cache is not None else contextlib.nullcontext(orthos.read) as read:
         for run in np.split(order, cut):
             e, size = int(end[run[0]]), (int(na[run[0]]), int(nn[run[0]]))
-            ks, cols = ((-1, 0, 1), [0, 1]) if e == 0 else ((1, 0, -1), [2, 3])
+            ks, cols = ((-1, 0, 1, 2), [0, 1]) if e == 0 else ((1, 0, -1, -2), [2, 3])
             for lo in range(0, len(run), _BATCH):
                 it = run[lo:lo + _BATCH]
                 b = line[it]
                 gx, gy = _cell_grids(fr[pos[it]], stx[b], sty[b], gsd, inset, *size)
-                ncc[b[:, None], cols] = _ncc3(_sample_cells(read, tiles, gx, gy, stx[b], sty[b], ks), min_valid)
+                v = _sample_cells(read, tiles, gx, gy, stx[b], sty[b], ks)
+                ncc[b[:, None], cols] = _ncc3(v[:, :3], min_valid)
+                mom[b, e] = _moments(v, min_valid)
     out[:, 0] = ncc[:, 1] - ncc[:, 2]
     out[:, 1] = ncc[:, 3] - ncc[:, 0]
-    return list(np.split(out, np.cumsum(sizes)[:-1]))
+    cut_at = np.cumsum(sizes)[:-1]
+    return list(zip(np.split(out, cut_at), np.split(mom, cut_at)))
+
+
+def _moments(v: np.ndarray, min_valid: float) -> np.ndarray:
+    """Mean and standard deviation of the valid samples of each cell of (k, c, p) samples,
+    (k, c, 2) [image units]; NaN where fewer than ``min_valid`` of a cell's samples are valid."""
+    ok = np.isfinite(v)
+    cnt = ok.sum(axis=2)
+    z = np.where(ok, v, 0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = z.sum(axis=2) / cnt
+        var = np.where(ok, (v - mean[..., None]) ** 2, 0.0).sum(axis=2) / cnt
+    use = (cnt >= min_valid * v.shape[2]) & (cnt > 0)
+    return np.stack([np.where(use, mean, np.nan), np.where(use, np.sqrt(var), np.nan)], axis=-1)
+
+
+def glass_votes(mom: np.ndarray, n: np.ndarray, free: np.ndarray) -> np.ndarray:
+    """Per line of modules, how much more its end modules look like its glass than the cells
+    beyond its ends do [-] (NaN: no free end read).
+
+    A cell is compared with the line's own glass: the cells one and two modules inside each
+    end (those within the line; a line of two modules has only its end modules), their median
+    mean ``g`` and median standard deviation ``s``. A cell's distance from glass is
+    ``|mean - g| / S + |ln(std / s)|`` (``S``: the median ``s`` of all the lines, so one flat
+    line does not weigh more): ground beyond a table end is warmer or colder than the glass, or
+    smoother or rougher, and a cell of glass is neither. At each free end (``free``: beyond
+    the last, beyond the first, as :func:`free_ends`) the distance of the cell beyond the end
+    less that of the end module's counts; the line's value is the mean of its free ends.
+
+    The right placement puts glass in the end cells and no glass beyond them: a positive
+    value. A placement one module pitch short of an end puts glass beyond it (both cells
+    glass), one a pitch beyond an end puts ground in both: about zero either way, and a
+    placement one pitch off along a line is one or the other at each of its ends."""
+    k = len(mom)
+    out = np.full(k, np.nan)
+    if k == 0:
+        return out
+    mean, std = mom[..., 0], mom[..., 1]
+    # cells inside the line: index 2 (one module inside) always, index 3 from three modules
+    inner = np.zeros((k, 2, 4), bool)
+    inner[:, :, 2] = True
+    inner[:, :, 3] = (np.asarray(n) >= 3)[:, None]
+    with np.errstate(invalid="ignore", divide="ignore"), _quiet():
+        g = np.nanmedian(np.where(inner, mean, np.nan).reshape(k, -1), axis=1)
+        s = np.nanmedian(np.where(inner, std, np.nan).reshape(k, -1), axis=1)
+        scale = float(np.nanmedian(s)) if np.isfinite(s).any() else float("nan")
+        if not (math.isfinite(scale) and scale > 0):
+            return out
+        floor = 1e-3 * scale
+        dist = (np.abs(mean - g[:, None, None]) / scale
+                + np.abs(np.log(np.maximum(std, floor) / np.maximum(s, floor)[:, None, None])))
+        # ends: 0 the first (free column 1), 1 the last (free column 0)
+        v = dist[:, :, 0] - dist[:, :, 1]
+        v = np.where(np.column_stack([free[:, 1], free[:, 0]]), v, np.nan)
+        out = np.nanmean(v, axis=1)
+    return out
+
+
+@contextlib.contextmanager
+def _quiet() -> Any:
+    """Silence numpy's warnings about all-NaN slices (a line with no free end is NaN)."""
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)
+        yield
 
 
 def _spread_subset(lines: list[tuple[int, int, int]], most: int) -> list[tuple[int, int, int]]:
@@ -375,8 +456,39 @@ def _spread_subset(lines: list[tuple[int, int, int]], most: int) -> list[tuple[i
     return [lines[i] for i in keep.tolist()]
 
 
+def sunlit_ends(placed: gpd.GeoDataFrame, lines: list[tuple[int, int, int]], sun: tuple[float, ...] | None,
+                shadow_cos: float) -> np.ndarray | None:
+    """Whether the place beyond each end of each line is clear of the table's own shadow [bool].
+
+    (len(lines), 2), the columns of :func:`free_ends` (beyond the last module, beyond the
+    first). A raised table's shadow falls away from the sun (``sun``: east, north, elevation
+    [deg], :func:`pvscan.measure.register.evidence.sun_vector`): the end whose outward
+    direction makes a cosine above ``shadow_cos`` [-] with the horizontal direction away
+    from the sun has the shadow beyond it, cool and even like glass. None when the sun is not
+    known or below the horizon; every end when it stands at the zenith (no shadow beyond an
+    end)."""
+    if sun is None or len(sun) < 3 or not float(sun[2]) > 0.0:
+        return None
+    out = np.ones((len(lines), 2), bool)
+    h = math.hypot(float(sun[0]), float(sun[1]))
+    if not lines or h == 0.0:
+        return out
+    away = -np.array([float(sun[0]), float(sun[1])]) / h
+    fr = placed[_FRAME].to_numpy(float)
+    cx = fr[:, 0] + 0.5 * (fr[:, 2] + fr[:, 4])
+    cy = fr[:, 1] + 0.5 * (fr[:, 3] + fr[:, 5])
+    first, last, _ = np.asarray(lines, np.int64).reshape(-1, 3).T
+    dx, dy = cx[last] - cx[first], cy[last] - cy[first]
+    with np.errstate(invalid="ignore", divide="ignore"):
+        cos = (dx * away[0] + dy * away[1]) / np.hypot(dx, dy)
+    # beyond the last module the line runs on (+), beyond the first it runs back (-)
+    out[:, 0] = ~(cos > shadow_cos)
+    out[:, 1] = ~(-cos > shadow_cos)
+    return out
+
+
 def judge_ends(orthos: Any, modules: gpd.GeoDataFrame, placed: gpd.GeoDataFrame,
-               cfg: Mapping[str, Any]) -> dict[str, Any]:
+               cfg: Mapping[str, Any], sun: tuple[float, ...] | None = None) -> dict[str, Any]:
     """Whether the table ends confirm a placement against one module pitch either way.
 
     Parameters
@@ -404,10 +516,12 @@ def judge_ends(orthos: Any, modules: gpd.GeoDataFrame, placed: gpd.GeoDataFrame,
     out: dict[str, Any] = {}
     meds: list[float] = []
     names = [name for name in ("along", "across") if lines[name]]
-    votes = dict(zip(names, _votes(orthos, placed, [lines[name] for name in names], cfg)))
+    read = dict(zip(names, _read_ends(orthos, placed, [lines[name] for name in names], cfg)))
+    glass: dict[str, Any] = {}
     for name in names:
-        v = votes[name]
-        v[~free_ends(modules, lines[name], float(cfg["ends_clear_m"]))] = np.nan
+        v, mom = read[name]
+        free = free_ends(modules, lines[name], float(cfg["ends_clear_m"]))
+        v[~free] = np.nan
         m = []
         for j in range(2):
             col = v[:, j][np.isfinite(v[:, j])]
@@ -415,8 +529,54 @@ def judge_ends(orthos: Any, modules: gpd.GeoDataFrame, placed: gpd.GeoDataFrame,
         out[name] = {"votes": [round(x, 4) if math.isfinite(x) else None for x in m],
                      "lines": int(np.isfinite(v).all(axis=1).sum())}
         meds += [x for x in m if math.isfinite(x)]
+        lit = sunlit_ends(placed, lines[name], sun, float(cfg["ends_glass_shadow_cos"]))
+        if lit is None:
+            continue
+        gv = glass_votes(mom, np.asarray([t[2] for t in lines[name]], np.int64), free & lit)
+        gv = gv[np.isfinite(gv)]
+        if len(gv):
+            glass[name] = {"vote": round(float(np.median(gv)), 4), "lines": len(gv)}
     lim = float(cfg["ends_min_vote"])
     low = min(meds) if meds else None
+    g_low = min((g["vote"] for g in glass.values()), default=None)
     out.update(lowest=round(low, 4) if low is not None else None, limit=lim,
-               decisive=bool(low is None or low > lim))
+               decisive=bool(low is None or low > lim),
+               glass={**glass, "lowest": g_low, "limit": float(cfg["ends_glass_vote"])})
     return out
+
+
+def pitch_steps(modules: gpd.GeoDataFrame) -> tuple[list[str], list[np.ndarray]]:
+    """The placements one module pitch away, as steps [m] and their directions: one pitch forward
+    and one back along a table row (``along``) and across it (``across``), as the tables have."""
+    from pvscan.measure.register._pitch import _named_pitches
+
+    named = _named_pitches(modules)
+    return ([name for name in named for _ in (1.0, -1.0)],
+            [s * v for v in named.values() for s in (1.0, -1.0)])
+
+
+def glass_decides(glass: Mapping[str, Any], dirs: list[str], ratios: list[float], cfg: Mapping[str, Any]) -> bool:
+    """Whether every direction of one-pitch alternatives is told apart, by the module evidence
+    or by the glass at the sunlit table ends.
+
+    ``ratios``: the module evidence of each placement one pitch away over the placement's [-],
+    ``dirs`` its direction (``along``, ``across``; NaN: not read); ``glass``: :func:`judge_ends`'s
+    ``glass`` (per direction the median :func:`glass_votes` of the lines). A direction is told
+    apart when its ratio is above ``1 + pitch_min_margin`` (the module evidence decides), or
+    when its glass vote is at least ``ends_glass_vote`` and its ratio at least
+    ``ends_glass_ratio`` [-]."""
+    by_dir: dict[str, float] = {}
+    for d, r in zip(dirs, ratios):
+        ok = math.isfinite(r) and math.isfinite(by_dir.get(d, 0.0))
+        by_dir[d] = min(by_dir.get(d, math.inf), r) if ok else math.nan
+    if not by_dir or len(ratios) != len(dirs):
+        return False
+    margin = 1.0 + float(cfg["pitch_min_margin"])
+    need, floor = float(cfg["ends_glass_vote"]), float(cfg["ends_glass_ratio"])
+    for name, r in by_dir.items():
+        g = (glass.get(name) or {}).get("vote") if isinstance(glass.get(name), Mapping) else None
+        if r > margin:
+            continue
+        if g is None or not (g >= need and r >= floor):
+            return False
+    return True

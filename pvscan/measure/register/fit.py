@@ -46,7 +46,7 @@ from pvscan.measure.register._place import (
     placement_of,
 )
 from pvscan.measure.register._records import Registration, _moved_message, _num
-from pvscan.measure.register.ends import judge_ends
+from pvscan.measure.register.ends import glass_decides, judge_ends, pitch_steps
 from pvscan.measure.register.estimate import estimate_shift
 from pvscan.measure.register.evidence import (
     ModuleSample,
@@ -306,7 +306,7 @@ def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cf
     flagged all the same when that confident correlation sits one module pitch from it
     (within ``pitch_corr_against_m``) and the table ends do not confirm it."""
     base = reg.placement if (reg.applied and reg.placement is not None) else ident
-    steps = [s * v for v in _pitches(modules) for s in (1.0, -1.0)]
+    dirs, steps = pitch_steps(modules)
     if not steps:
         return
     # the table corrections of a placement rescued table by table stay: without them its
@@ -336,7 +336,7 @@ def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cf
     low = min(ratios) if ratios else float("inf")
     margin = float(cfg["pitch_min_margin"])
     decisive = low > 1.0 + margin
-    ends = judge_ends(orthos, modules, apply_placement(modules, cur), cfg)
+    ends = judge_ends(orthos, modules, apply_placement(modules, cur), cfg, sun)
     reg.evidence["pitch"] = {"lowest_ratio": round(low, 4) if math.isfinite(low) else None,
                              "limit": round(1.0 + margin, 4), "decisive": bool(decisive),
                              "moved_m": [round(float(moved_by[0]), 4), round(float(moved_by[1]), 4)], "ends": ends}
@@ -355,6 +355,10 @@ def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cf
     both = (not decisive and not confirmed and math.isfinite(low) and low >= float(cfg["pitch_support_ratio"])
             and e_low is not None and e_low >= float(cfg["ends_support_vote"]))
     reg.evidence["pitch"]["both_lean"] = bool(both)
+    # ... or each direction's alternatives fit the modules worse or leave glass beyond a sunlit end
+    by_glass = not (decisive or confirmed or both) and glass_decides(
+        ends.get("glass") or {}, dirs, [_num(q["evidence"]) / e_cur for _, q in alts] if e_cur > 0 else [], cfg)
+    reg.evidence["pitch"]["glass_ends"] = bool(by_glass)
     corr_p, corr_conf = correlation
     gap = _largest_gap(cur, corr_p, modules.total_bounds) if corr_p is not None else float("nan")
     by_corr = (math.isfinite(gap) and gap <= float(cfg["pitch_corr_agree_m"])
@@ -386,6 +390,10 @@ def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cf
         reg.message += (f"; a placement one module pitch away fits almost as well on the modules (evidence ratio "
                         f"{low:.2f}), but every one fits worse and no table end prefers it (lowest median vote "
                         f"{e_low:.2f}, at least {float(cfg['ends_support_vote']):g})")
+    elif by_glass:
+        reg.message += (f"; a placement one module pitch away fits almost as well on the modules (evidence ratio "
+                        f"{low:.2f}), but only this one has glass in the end modules of the lines and none beyond "
+                        f"their sunlit ends (lowest median glass vote {_num(ends['glass'].get('lowest')):.2f})")
     elif not decisive and not confirmed:
         reg.status = "ambiguous"
         reg.message += (f"; a placement one module pitch away fits almost as well (evidence ratio {low:.2f}, more "
