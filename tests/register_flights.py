@@ -104,3 +104,19 @@ def register_whole(d: Path, *, sun_at_start: bool = False) -> tuple[Any, gpd.Geo
                               expected_apparent_c=expected_module_apparent_c(fl, st, strict=False))
     err = median_error_m(d, apply_placement(mods, reg.placement if reg.applied else None))
     return fl, mods, reg, err, registration_check(reg, st)
+
+
+def assert_pitch_rule_right(d: Path, rule: str, default_run: bool) -> None:
+    """The whole registration of the flight in ``d``: a placement that passes the registration
+    check is on its own modules (within :data:`RIGHT_M`, a quarter of a module width, common
+    practice); one a one-pitch rule (``evidence.pitch[rule]``) used is right. In the default run
+    (``default_run``: the flight that rule was made for, refused before it) the rule decides, the
+    module evidence alone does not, and the placement is right and passes."""
+    _, _, reg, err, check = register_whole(d)
+    pitch = (reg.evidence or {}).get("pitch") or {}
+    assert err < RIGHT_M or check["passed"] is False, (err, reg.message, pitch)
+    if pitch.get(rule):
+        assert err < RIGHT_M and reg.status == "ok", (err, reg.message, pitch)
+    if default_run:
+        assert pitch.get(rule) and not pitch.get("decisive"), (reg.message, pitch)
+        assert reg.status == "ok" and check["passed"] is True and err < RIGHT_M, (err, reg.message, pitch)

@@ -26,7 +26,15 @@ import geopandas as gpd
 import numpy as np
 import pytest
 import shapely
-from register_flights import RIGHT_M, flight_seed, median_error_m, plant_fixture, register_whole, sun, truth_placement
+from register_flights import (
+    RIGHT_M,
+    assert_pitch_rule_right,
+    flight_seed,
+    median_error_m,
+    plant_fixture,
+    sun,
+    truth_placement,
+)
 
 from pvscan.io.layout import read_layout
 from pvscan.io.manifest import load_flight
@@ -84,14 +92,7 @@ def test_right_placement_of_the_tracker_rows_is_used_on_the_glass_ends(plant):
     """The whole registration: a placement that passes the registration check is on its own
     modules; one used on the glass ends is right. In the default run (the flight that was
     refused) it is placed, right, used on the glass ends, and passes."""
-    _, _, reg, err, check = register_whole(plant)
-    pitch = (reg.evidence or {}).get("pitch") or {}
-    assert err < RIGHT_M or check["passed"] is False, (err, reg.message, pitch)
-    if pitch.get("glass_ends"):
-        assert err < RIGHT_M and reg.status == "ok", (err, reg.message, pitch)
-    if FLIGHT_SEED == 1020000:
-        assert pitch.get("glass_ends") and not pitch.get("decisive"), (reg.message, pitch)
-        assert reg.status == "ok" and check["passed"] is True and err < RIGHT_M, (err, reg.message, pitch)
+    assert_pitch_rule_right(plant, "glass_ends", FLIGHT_SEED == 1020000)
 
 
 def test_placement_one_pitch_off_is_not_used_on_the_glass_ends(plant):

@@ -18,7 +18,15 @@ from __future__ import annotations
 from dataclasses import replace
 
 import pytest
-from register_flights import RIGHT_M, flight_seed, median_error_m, plant_fixture, register_whole, sun, truth_placement
+from register_flights import (
+    RIGHT_M,
+    assert_pitch_rule_right,
+    flight_seed,
+    median_error_m,
+    plant_fixture,
+    sun,
+    truth_placement,
+)
 
 from pvscan.io.layout import read_layout
 from pvscan.io.manifest import load_flight
@@ -46,14 +54,7 @@ def test_placement_both_tests_lean_to_is_right(plant):
     """The whole registration: a placement that passes the registration check is on its own
     modules; one used because both tests lean its way is right. In the default run (the flight
     that was refused) it is placed, right, and passes."""
-    _, _, reg, err, check = register_whole(plant)
-    pitch = (reg.evidence or {}).get("pitch") or {}
-    assert err < RIGHT_M or check["passed"] is False, (err, reg.message, pitch)
-    if pitch.get("both_lean"):
-        assert err < RIGHT_M and reg.status == "ok", (err, reg.message, pitch)
-    if FLIGHT_SEED == 1040000:
-        assert pitch.get("both_lean") and not pitch.get("decisive"), (reg.message, pitch)
-        assert reg.status == "ok" and check["passed"] is True and err < RIGHT_M, (err, reg.message, pitch)
+    assert_pitch_rule_right(plant, "both_lean", FLIGHT_SEED == 1040000)
 
 
 def test_placement_one_pitch_off_is_not_used_on_the_lean(plant):
