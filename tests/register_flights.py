@@ -1,13 +1,17 @@
 """Shared set-up of the registration tests on simulated flights (test_register_ends,
-test_register_ends_confirm, test_register_relief, test_register_turned).
+test_register_ends_confirm, test_register_relief, test_register_turned, test_register_glass_ends,
+test_register_pitch_support).
 
 Where the modules are is the simulator's truth (truth_ortho.geojson: the modules where the
 ortho shows them), which no registration code reads.
 """
 from __future__ import annotations
 
+import contextlib
 import math
+from collections.abc import Iterator
 from pathlib import Path
+from types import SimpleNamespace
 from typing import Any
 
 import geopandas as gpd
@@ -21,7 +25,11 @@ from pvscan.io.manifest import load_flight
 from pvscan.io.ortho import open_orthos
 from pvscan.io.settings import load_pipeline
 from pvscan.measure.register import Placement, apply_placement, expected_module_apparent_c, register_layout
+from pvscan.measure.register._blocks import _settings
+from pvscan.measure.register._place import _use_placement
+from pvscan.measure.register._records import Registration
 from pvscan.measure.register.evidence import sun_vector
+from pvscan.measure.register.fit import _resolve_pitch
 from pvscan.measure.validity import registration_check
 from pvscan.simulate import simulate_flight
 from pvscan.simulate.sampler import draw_scenario
@@ -120,3 +128,28 @@ def assert_pitch_rule_right(d: Path, rule: str, default_run: bool) -> None:
     if default_run:
         assert pitch.get(rule) and not pitch.get("decisive"), (reg.message, pitch)
         assert reg.status == "ok" and check["passed"] is True and err < RIGHT_M, (err, reg.message, pitch)
+
+
+@contextlib.contextmanager
+def plant_at_truth(d: Path) -> Iterator[SimpleNamespace]:
+    """The flight in ``d`` opened with the default pipeline settings, for the one-pitch tests:
+    ``st``, ``cfg`` (the registration's settings), ``fl``, ``o`` (the open orthos), ``mods``,
+    ``truth`` (the simulator's placement, :func:`truth_placement`), ``ident`` (no correction about
+    the truth's centre), ``expected`` (the modules' expected apparent temperature) and ``sun``."""
+    st = load_pipeline()
+    fl = load_flight(d / "flight.toml")
+    with open_orthos(fl.flight.orthos, fl.ortho) as o:
+        mods = read_layout(fl, o.crs)
+        truth = truth_placement(d, mods)
+        yield SimpleNamespace(st=st, cfg=_settings(st), fl=fl, o=o, mods=mods, truth=truth,
+                              ident=Placement(cx=truth.cx, cy=truth.cy),
+                              expected=expected_module_apparent_c(fl, st, strict=False), sun=sun(fl, mods))
+
+
+def resolve_pitch_at(p: SimpleNamespace, placement: Placement, message: str) -> Registration:
+    """The one-pitch decision (:func:`pvscan.measure.register.fit._resolve_pitch`) of the plant
+    ``p`` (:func:`plant_at_truth`) with ``placement`` used: the registration it leaves."""
+    reg = Registration(evidence={}, status="ok", message=message)
+    _use_placement(reg, placement)
+    _resolve_pitch(p.o, p.mods, reg, p.cfg, p.ident, p.sun, p.expected)
+    return reg

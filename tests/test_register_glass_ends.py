@@ -31,22 +31,16 @@ from register_flights import (
     assert_pitch_rule_right,
     flight_seed,
     median_error_m,
+    plant_at_truth,
     plant_fixture,
-    sun,
-    truth_placement,
+    resolve_pitch_at,
 )
 
-from pvscan.io.layout import read_layout
-from pvscan.io.manifest import load_flight
-from pvscan.io.ortho import open_orthos
 from pvscan.io.settings import load_pipeline
-from pvscan.measure.register import Placement, apply_placement, expected_module_apparent_c
+from pvscan.measure.register import apply_placement
 from pvscan.measure.register._blocks import _settings
-from pvscan.measure.register._place import _use_placement
-from pvscan.measure.register._records import Registration
 from pvscan.measure.register.ends import pitch_steps, sunlit_ends
 from pvscan.measure.register.evidence import sun_vector
-from pvscan.measure.register.fit import _resolve_pitch
 
 #: Seed of the flight: 1020000 (the flight described above) in the suite's default run, another
 #: draw for any other PVSCAN_TEST_SEED (kept non-negative).
@@ -99,29 +93,18 @@ def test_placement_one_pitch_off_is_not_used_on_the_glass_ends(plant):
     """The same plant placed one module pitch off along its rows, either way (the truth's own
     placement moved by the pitch, each table's residual kept): the glass ends do not decide for it
     and it is not called ok; at the truth they read glass in the end modules and none beyond."""
-    st = load_pipeline()
-    cfg = _settings(st)
-    fl = load_flight(plant / "flight.toml")
-    with open_orthos(fl.flight.orthos, fl.ortho) as o:
-        mods = read_layout(fl, o.crs)
-        truth = truth_placement(plant, mods)
-        ident = Placement(cx=truth.cx, cy=truth.cy)
-        dirs, steps = pitch_steps(mods)
-        expected = expected_module_apparent_c(fl, st, strict=False)
-        sn = sun(fl, mods)
-        reg = Registration(evidence={}, status="ok", message="placed at the truth")
-        _use_placement(reg, truth)
-        _resolve_pitch(o, mods, reg, cfg, ident, sn, expected)
+    with plant_at_truth(plant) as p:
+        cfg, truth = p.cfg, p.truth
+        dirs, steps = pitch_steps(p.mods)
+        reg = resolve_pitch_at(p, truth, "placed at the truth")
         glass = reg.evidence["pitch"]["ends"]["glass"]
         assert glass["along"]["vote"] >= cfg["ends_glass_vote"], glass
         for d, v in zip(dirs, steps):
             if d != "along":
                 continue
             off = replace(truth, tx=truth.tx + float(v[0]), ty=truth.ty + float(v[1]))
-            assert median_error_m(plant, apply_placement(mods, off)) > RIGHT_M  # it is one pitch off
-            reg = Registration(evidence={}, status="ok", message="placed one pitch off")
-            _use_placement(reg, off)
-            _resolve_pitch(o, mods, reg, cfg, ident, sn, expected)
+            assert median_error_m(plant, apply_placement(p.mods, off)) > RIGHT_M  # it is one pitch off
+            reg = resolve_pitch_at(p, off, "placed one pitch off")
             pitch = reg.evidence["pitch"]
             assert not pitch["glass_ends"], (v, pitch)
             assert reg.status != "ok", (v, reg.message, pitch)

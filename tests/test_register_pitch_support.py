@@ -23,21 +23,13 @@ from register_flights import (
     assert_pitch_rule_right,
     flight_seed,
     median_error_m,
+    plant_at_truth,
     plant_fixture,
-    sun,
-    truth_placement,
+    resolve_pitch_at,
 )
 
-from pvscan.io.layout import read_layout
-from pvscan.io.manifest import load_flight
-from pvscan.io.ortho import open_orthos
-from pvscan.io.settings import load_pipeline
-from pvscan.measure.register import Placement, apply_placement, expected_module_apparent_c
-from pvscan.measure.register._blocks import _settings
+from pvscan.measure.register import apply_placement
 from pvscan.measure.register._pitch import _pitches
-from pvscan.measure.register._place import _use_placement
-from pvscan.measure.register._records import Registration
-from pvscan.measure.register.fit import _resolve_pitch
 
 #: Seed of the flight: 1040000 (the flight described above) in the suite's default run, another
 #: draw for any other PVSCAN_TEST_SEED (kept non-negative).
@@ -61,21 +53,13 @@ def test_placement_one_pitch_off_is_not_used_on_the_lean(plant):
     """The same plant placed one module pitch off along its rows, either way (the truth's own
     placement moved by the pitch): the module evidence prefers the truth to it or a table end
     prefers the truth, so the two do not lean its way, and it is not called ok."""
-    st = load_pipeline()
-    cfg = _settings(st)
-    fl = load_flight(plant / "flight.toml")
-    with open_orthos(fl.flight.orthos, fl.ortho) as o:
-        mods = read_layout(fl, o.crs)
-        truth = truth_placement(plant, mods)
-        ident = Placement(cx=truth.cx, cy=truth.cy)
-        along = _pitches(mods)[0]
-        expected = expected_module_apparent_c(fl, st, strict=False)
+    with plant_at_truth(plant) as p:
+        truth = p.truth
+        along = _pitches(p.mods)[0]
         for sgn in (1.0, -1.0):
             off = replace(truth, tx=truth.tx + sgn * float(along[0]), ty=truth.ty + sgn * float(along[1]))
-            assert median_error_m(plant, apply_placement(mods, off)) > RIGHT_M  # it is one pitch off
-            reg = Registration(evidence={}, status="ok", message="placed one pitch off")
-            _use_placement(reg, off)
-            _resolve_pitch(o, mods, reg, cfg, ident, sun(fl, mods), expected)
+            assert median_error_m(plant, apply_placement(p.mods, off)) > RIGHT_M  # it is one pitch off
+            reg = resolve_pitch_at(p, off, "placed one pitch off")
             pitch = reg.evidence["pitch"]
             assert not pitch["both_lean"], (sgn, pitch)
             assert reg.status != "ok", (sgn, reg.message, pitch)
