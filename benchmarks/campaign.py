@@ -130,6 +130,7 @@ def run_flight(job: dict) -> dict:
                    missed_by_class=missed,
                    missed_faint=(e.get("missed") or {}).get("n_faint"),
                    missed_clear=((e.get("missed") or {}).get("n_missed", 0) - ((e.get("missed") or {}).get("n_faint") or 0)),
+                   recall_clear=(e.get("missed") or {}).get("recall_clear"),
                    loss_ratio=pl.get("ratio"), loss_ratio_group=(pl.get("group") or {}).get("ratio"),
                    registration_error_m=_placement_p95(e.get("registration")),
                    shift_error_m=(e.get("registration") or {}).get("error_m"),
@@ -146,9 +147,12 @@ def run_flight(job: dict) -> dict:
         shutil.rmtree(work, ignore_errors=True)
 
 
-def is_wrong(r: dict) -> bool:
-    """Recall or precision below :data:`WRONG_BELOW`, or the loss ratio outside :data:`LOSS_RATIO_OK`."""
-    if min(r.get("recall") or 0.0, r.get("precision") or 0.0) < WRONG_BELOW:
+def is_wrong(r: dict, *, clear: bool = False) -> bool:
+    """Recall or precision below :data:`WRONG_BELOW`, or the loss ratio outside :data:`LOSS_RATIO_OK`.
+    ``clear``: recall over the defects the flight lets be seen (evaluate's ``recall_clear``: faint
+    ones, under ``faint_contrast`` x the healthy spread, left out) in place of the recall."""
+    recall = r.get("recall_clear") if clear and r.get("recall_clear") is not None else r.get("recall")
+    if min(recall or 0.0, r.get("precision") or 0.0) < WRONG_BELOW:
         return True
     lr = r.get("loss_ratio")
     return lr is not None and not (LOSS_RATIO_OK[0] <= lr <= LOSS_RATIO_OK[1])
@@ -198,6 +202,8 @@ def _group(recs: list[dict]) -> dict:
         "wrong_and_valid": [r["seed"] for r in ok if r["valid"] and is_wrong(r)],
         "wrong_and_flagged": sum((not r["valid"]) and is_wrong(r) for r in ok),
         "recall": _stats([r["recall"] for r in ok]), "precision": _stats([r["precision"] or 0.0 for r in ok]),
+        "recall_clear": _stats([r.get("recall_clear") for r in ok]),
+        "wrong_and_valid_clear": [r["seed"] for r in ok if r["valid"] and is_wrong(r, clear=True)],
         "loss_ratio": _stats([r.get("loss_ratio") for r in ok]),
         "false_alarms_per_1000": _stats([r["false_alarms_per_1000"] for r in ok]),
         "registration_error_m": _stats([r.get("registration_error_m") for r in ok]),
@@ -254,17 +260,20 @@ def markdown(records: list[dict], title: str = "Campaign") -> str:
              f"{done} flights finished. Recall / precision: worst / p10 / median. Loss ratio (predicted / true "
              "power loss at STC): worst low / p10 / median / p90 / worst high. False alarms per 1,000 healthy "
              "modules and registration error [m]: median / p90 / worst. ref = refused (exit 1), inv = flagged "
-             "validity.ok false, w&v = wrong (recall or precision < 0.9, or loss ratio outside 0.5-2) and valid.",
+             "validity.ok false, w&v = wrong (recall or precision < 0.9, or loss ratio outside 0.5-2) and valid; "
+             "w&v clear = the same with the recall over clear defects (faint ones, under evaluate's faint_contrast "
+             "x the healthy modules' spread, left out). Recall clear: worst / p10 / median.",
              ""]
     for sset, rows in table.items():
         lines += [f"## {sset} seeds", "",
-                  "| group | n | ref | inv | w&v | recall | precision | loss ratio | false alarms/1000 "
-                  "| registration [m] |",
-                  "|---|---|---|---|---|---|---|---|---|---|"]
+                  "| group | n | ref | inv | w&v | w&v clear | recall | recall clear | precision | loss ratio "
+                  "| false alarms/1000 | registration [m] |",
+                  "|---|---|---|---|---|---|---|---|---|---|---|---|"]
         for name, g in rows.items():
             lines.append(
                 f"| {name} | {g['flights']} | {g['refused']} | {g['flagged_invalid']} | {len(g['wrong_and_valid'])} | "
-                f"{_fmt(g['recall'])} | {_fmt(g['precision'])} | "
+                f"{len(g['wrong_and_valid_clear'])} | {_fmt(g['recall'])} | {_fmt(g['recall_clear'])} | "
+                f"{_fmt(g['precision'])} | "
                 f"{_fmt(g['loss_ratio'], 2, ('worst_low', 'p10', 'median', 'p90', 'worst_high'))} | "
                 f"{_fmt(g['false_alarms_per_1000'], 1, ('median', 'p90', 'worst_high'))} | "
                 f"{_fmt(g['registration_error_m'], 2, ('median', 'p90', 'worst_high'))} |")
@@ -299,7 +308,8 @@ def print_table(table: dict) -> None:
               "p90 worst-high; false alarms/1000 and registration error [m]: median p90 worst)")
         for name, g in rows.items():
             print(f"{name:28s} n {g['flights']:3d} ref {g['refused']:2d} inv {g['flagged_invalid']:3d} "
-                  f"w&v {len(g['wrong_and_valid']):2d} | R {_fmt(g['recall'])} | P {_fmt(g['precision'])} | "
+                  f"w&v {len(g['wrong_and_valid']):2d} ({len(g['wrong_and_valid_clear']):2d} clear) | "
+                  f"R {_fmt(g['recall'])} | Rc {_fmt(g['recall_clear'])} | P {_fmt(g['precision'])} | "
                   f"loss {_fmt(g['loss_ratio'], 2, ('worst_low', 'p10', 'median', 'p90', 'worst_high'))} | "
                   f"FA {_fmt(g['false_alarms_per_1000'], 1, ('median', 'p90', 'worst_high'))} | "
                   f"reg {_fmt(g['registration_error_m'], 2, ('median', 'p90', 'worst_high'))}")

@@ -131,7 +131,9 @@ def _missed(tp: Sequence[Mapping[str, Any]], rp: Sequence[Mapping[str, Any]], ma
 
     Contrast = true rise of the module (``delta_t_k`` of the truth) [K] / robust spread (1.4826
     MAD) of the measured ``delta_t_k`` of the truly healthy matched modules [K]; below
-    ``faint_contrast`` a miss counts as faint.
+    ``faint_contrast`` a miss counts as faint. ``recall_clear``: the share of the truly defective
+    modules at or above ``faint_contrast`` (or of unknown contrast) that the result calls defective
+    (None when there is none): the recall of the method where the flight lets a defect be seen.
     """
     t_bad = np.array([d is not None for d in t_def], dtype=bool)
     healthy = np.asarray([_num(rp[k].get("delta_t_k")) for i, k in enumerate(match.tolist())
@@ -143,6 +145,15 @@ def _missed(tp: Sequence[Mapping[str, Any]], rp: Sequence[Mapping[str, Any]], ma
               else math.nan)
     mods: list[dict[str, Any]] = []
     faint = 0
+    # every truly defective module, found or not: a faint one (rise below faint_contrast x the
+    # spread) is a limit of the flight; recall over the others scores the method alone
+    clear_true = clear_found = 0
+    for i in np.flatnonzero(t_bad).tolist():
+        rise = _num(tp[i].get("delta_t_k"))
+        c = rise / spread if np.isfinite(rise) and np.isfinite(spread) and spread > 0 else math.nan
+        if not (np.isfinite(c) and c < faint_contrast):
+            clear_true += 1
+            clear_found += int(bool(p_bad[i]))
     for i in np.flatnonzero(t_bad & ~p_bad).tolist():
         rise = _num(tp[i].get("delta_t_k"))
         contrast = rise / spread if np.isfinite(rise) and np.isfinite(spread) and spread > 0 else math.nan
@@ -152,7 +163,8 @@ def _missed(tp: Sequence[Mapping[str, Any]], rp: Sequence[Mapping[str, Any]], ma
                      "contrast": _f(contrast)})
         faint += int(bool(np.isfinite(contrast)) and contrast < faint_contrast)
     return {"healthy_spread_k": _f(spread), "faint_contrast": faint_contrast, "n_missed": len(mods),
-            "n_faint": faint, "modules": mods}
+            "n_faint": faint, "n_clear_true": clear_true, "n_clear_found": clear_found,
+            "recall_clear": _f(clear_found / clear_true if clear_true else None), "modules": mods}
 
 
 def _ratio(a: float, b: float) -> float | None:
@@ -486,7 +498,10 @@ def _missed_lines(missed: Mapping[str, Any] | None) -> list[str]:
         return [f"missed defects {missed['n_missed']} (no spread of healthy modules to read them against)"]
     return [f"missed defects {missed['n_missed']}: {missed['n_faint']} faint (true rise under "
             f"{missed['faint_contrast']:g} x the healthy spread of {missed['healthy_spread_k']:.2f} K), "
-            f"{missed['n_missed'] - missed['n_faint']} clear"]
+            f"{missed['n_missed'] - missed['n_faint']} clear"
+            + ("" if missed.get("recall_clear") is None else
+               f"; recall over the clear defects {missed['recall_clear']:.2f} "
+               f"({missed['n_clear_found']} of {missed['n_clear_true']})")]
 
 
 def format_report(scores: Mapping[str, Any]) -> str:

@@ -47,7 +47,8 @@ def _draw(ring: np.ndarray, theta: float, scale: float, shift: np.ndarray, extra
     return CENTRE + scale * (ring - CENTRE) @ _rot(theta).T + shift + extra
 
 
-def _write(tmp_path, seed: int, registration: dict, *, delta: dict | None = None, rename: bool = False):
+def _write(tmp_path, seed: int, registration: dict, *, delta: dict | None = None, rename: bool = False,
+           found: frozenset = frozenset()):
     """Truth in the ortho (EPSG 32632), the drawn layout as a result (lon/lat) and a summary."""
     tdir, rdir = tmp_path / "flight", tmp_path / "result"
     tdir.mkdir()
@@ -66,7 +67,7 @@ def _write(tmp_path, seed: int, registration: dict, *, delta: dict | None = None
             "module_id": mid, "defect": defect, "power_loss_w": 0.0, "delta_t_k": d_true, "t_true_median_c": 40.0}})
         result.append({"type": "Feature", "geometry": geom, "properties": {
             "module_id": f"X{len(result)}" if rename else mid, "table_id": tid, "table_row": row,
-            "defect": None, "power_loss_w": 0.0,
+            "defect": defect if mid in found else None, "power_loss_w": 0.0,
             "t_median_c": 40.0, "delta_t_k": d_meas}})
     fc = {"type": "FeatureCollection", "crs": {"type": "name", "properties": {"name": f"urn:ogc:def:crs:EPSG::{EPSG}"}},
           "features": ortho}
@@ -145,3 +146,28 @@ def test_missed_defects_are_read_against_the_healthy_spread(tmp_path, seed):
     assert by_id[faint]["contrast"] == pytest.approx(0.8 / (1.4826 * 0.3), rel=1e-4)
     assert by_id[clear]["contrast"] == pytest.approx(4.0 / (1.4826 * 0.3), rel=1e-4)
     assert "1 faint" in format_report(scores) and "1 clear" in format_report(scores)
+    # recall over the defects a flight lets be seen: the faint one does not count, the clear one does
+    assert (m["n_clear_true"], m["n_clear_found"], m["recall_clear"]) == (1, 0, 0.0)
+
+
+def test_recall_clear_leaves_out_faint_defects_only(tmp_path, seed):
+    """Four defects: one faint (contrast < 3, missed), three clear (two found, one missed).
+    Recall 2/4; recall over the clear ones 2/3 (a signal under about three times the noise is
+    not reliably seen: common practice, from memory)."""
+    rng = np.random.default_rng(seed)
+    ids = [m[0] for m in _modules(seed)]
+    # two odd and two even ids: 18 healthy at +0.3 K and 18 at -0.3 K (spread 1.4826 x 0.3 K)
+    faint, clear_found, clear_missed, found2 = ids[5], ids[11], ids[30], ids[20]
+    delta = {mid: (0.0, 0.3 if k % 2 else -0.3, None) for k, mid in enumerate(ids)}
+    delta[faint] = (float(rng.uniform(0.2, 1.2)), 0.1, "pid")            # contrast < 2.7
+    delta[clear_found] = (float(rng.uniform(3.0, 6.0)), 3.0, "open_module")
+    delta[clear_missed] = (float(rng.uniform(1.5, 6.0)), 0.2, "junction_box")  # contrast > 3.3
+    delta[found2] = (float(rng.uniform(3.0, 6.0)), 2.5, "hot_cell")
+    tdir, rdir, _ = _write(tmp_path, seed, _inverse(), delta=delta, found=frozenset({clear_found, found2}))
+    scores = evaluate(tdir, rdir)
+    m = scores["missed"]
+    assert scores["module"]["recall"] == pytest.approx(0.5, abs=1e-6)
+    assert m["n_faint"] == 1 and m["n_missed"] == 2
+    assert (m["n_clear_true"], m["n_clear_found"]) == (3, 2)
+    assert m["recall_clear"] == pytest.approx(2 / 3, abs=1e-6)
+    assert "recall over the clear defects 0.67 (2 of 3)" in format_report(scores)
