@@ -146,6 +146,55 @@ def module_thermal(t_median_c: ArrayLike, reference_c: ArrayLike, conditions: pd
 
 #: Modules queried at a time by :func:`_knn` (bounds its (modules x neighbours) temporaries).
 _KNN_CHUNK = 8192
+#: Extra neighbours :func:`_knn` asks for first, beyond those it keeps, when it drops a group
+#: (rows this settles need no longer query; see :func:`_knn_settled`).
+_KNN_SPARE = 16
+
+
+def _knn_pick(dist: np.ndarray, idx: np.ndarray, pool: np.ndarray, rows: np.ndarray, k: int, width: int,
+              group: np.ndarray | None) -> np.ndarray:
+    """The answer of :func:`_knn` for the points ``rows`` from their query ``dist``, ``idx``
+    (sorted by distance; missing: ``dist`` inf)."""
+    ok = np.isfinite(dist)
+    glob = np.where(ok, pool[np.minimum(idx, len(pool) - 1)], -1)
+    glob[glob == rows[:, None]] = -1  # drop self
+    # keep the first k valid entries per row (sorted by distance already)
+    order = np.argsort(glob < 0, axis=1, kind="stable")
+    glob = np.take_along_axis(glob, order, axis=1)[:, :k]
+    if group is not None:
+        own = group[rows, None]
+        same = (glob >= 0) & (group[np.maximum(glob, 0)] == own) & (own >= 0)
+        glob = np.where(same, -1, glob)
+        order = np.argsort(glob < 0, axis=1, kind="stable")
+        glob = np.take_along_axis(glob, order, axis=1)[:, :width]
+    return glob
+
+
+def _knn_settled(dist: np.ndarray, idx: np.ndarray, pool: np.ndarray, rows: np.ndarray, width: int,
+                 group: np.ndarray) -> np.ndarray:
+    """Rows whose short query (the ``kf`` nearest) already gives their whole answer.
+
+    The answer of a row is its first ``width`` neighbours outside its group, in the order of
+    distance. A longer query lists the same nearest entries in the same order wherever the
+    distances up to and including the next entry after the last one used strictly increase
+    (the nearest j form one set when the j-th is nearer than the (j+1)-th). So a row is
+    settled when it holds ``width`` kept entries and no tie up to the entry after the last
+    of them, or when the short query already lists every pool point within the radius (its
+    last entry is missing) without a tie among them. Other rows are asked again in full.
+    """
+    ok = np.isfinite(dist)
+    glob = np.where(ok, pool[np.minimum(idx, len(pool) - 1)], -1)
+    own = group[rows, None]
+    kept = (glob >= 0) & (glob != rows[:, None]) & ~((group[np.maximum(glob, 0)] == own) & (own >= 0))
+    count = np.cumsum(kept, axis=1)
+    tie = np.cumsum((dist[:, 1:] == dist[:, :-1]) & ok[:, :-1], axis=1) > 0  # a tie at or before j, j + 1
+    kf = dist.shape[1]
+    last = np.argmax(count >= width, axis=1)  # position of the width-th kept entry
+    enough = count[:, -1] >= width
+    inside = last < kf - 1
+    full = enough & inside & ~tie[np.arange(len(rows)), np.minimum(last, kf - 2)]
+    complete = ~enough & ~ok[:, -1] & ~tie[:, -1]
+    return full | complete
 
 
 def _knn(points: np.ndarray, pool: np.ndarray, k: int, radius: float, *, group: np.ndarray | None = None,
@@ -156,6 +205,9 @@ def _knn(points: np.ndarray, pool: np.ndarray, k: int, radius: float, *, group: 
     With ``group`` (a code per point, -1 = none), neighbours of the point's own group are
     then dropped and the first ``keep`` of the rest returned. Points are queried in chunks
     (each point's answer does not depend on the others), so the temporaries stay bounded.
+    With a group, each point first asks for ``keep + 1 + _KNN_SPARE`` neighbours only and
+    the points that settles (:func:`_knn_settled`) keep that answer, the same as the full
+    query's; the rest ask for all k.
     """
     n = len(points)
     width = k if keep is None else keep
@@ -163,25 +215,24 @@ def _knn(points: np.ndarray, pool: np.ndarray, k: int, radius: float, *, group: 
         return np.full((n, max(width, 0)), -1, dtype=np.int64)
     tree = cKDTree(points[pool])
     kq = min(k + 1, len(pool))
+    kf = min(width + 1 + _KNN_SPARE, kq) if group is not None else kq
     out = np.full((n, width), -1, dtype=np.int64)
     for s in range(0, n, _KNN_CHUNK):
         e = min(s + _KNN_CHUNK, n)
-        dist, idx = tree.query(points[s:e], k=kq, distance_upper_bound=radius)
-        dist = dist.reshape(e - s, kq)
-        idx = idx.reshape(e - s, kq)
-        ok = np.isfinite(dist)
-        glob = np.where(ok, pool[np.minimum(idx, len(pool) - 1)], -1)
-        glob[glob == np.arange(s, e)[:, None]] = -1  # drop self
-        # keep the first k valid entries per row (sorted by distance already)
-        order = np.argsort(glob < 0, axis=1, kind="stable")
-        glob = np.take_along_axis(glob, order, axis=1)[:, :k]
-        if group is not None:
-            own = group[s:e, None]
-            same = (glob >= 0) & (group[np.maximum(glob, 0)] == own) & (own >= 0)
-            glob = np.where(same, -1, glob)
-            order = np.argsort(glob < 0, axis=1, kind="stable")
-            glob = np.take_along_axis(glob, order, axis=1)[:, :width]
+        rows = np.arange(s, e)
+        dist, idx = tree.query(points[s:e], k=kf, distance_upper_bound=radius)
+        dist = dist.reshape(e - s, kf)
+        idx = idx.reshape(e - s, kf)
+        glob = _knn_pick(dist, idx, pool, rows, k, width, group)
         out[s:e, :glob.shape[1]] = glob
+        if kf < kq and group is not None:
+            again = rows[~_knn_settled(dist, idx, pool, rows, width, group)]
+            if len(again):
+                dist, idx = tree.query(points[again], k=kq, distance_upper_bound=radius)
+                glob = _knn_pick(dist.reshape(len(again), kq), idx.reshape(len(again), kq), pool, again, k,
+                                 width, group)
+                out[again] = -1
+                out[again, :glob.shape[1]] = glob
     return out
 
 
