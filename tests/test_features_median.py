@@ -1,5 +1,6 @@
 """The neighbour medians of diagnose/features.py: a sorting network across contiguous slices
-gives the very numbers of pvscan.robust.nanmedian along a last axis (bit for bit), with
+gives the very numbers of pvscan.robust.nanmedian along a last axis (bit for bit, for every
+number of neighbours up to the network's longest and one beyond), with
 NaN, infinities, missing neighbours and empty neighbourhoods."""
 from __future__ import annotations
 
@@ -47,7 +48,7 @@ def _reference(values, nb, offset=None):
     return nanmedian(g, axis=-1).reshape(np.shape(values))
 
 
-@pytest.mark.parametrize("k", [1, 2, 3, 5, 8, 9, 16, 17])
+@pytest.mark.parametrize("k", range(1, 18))
 @pytest.mark.parametrize("with_offset", [False, True])
 @pytest.mark.parametrize("dtype", [np.float64, np.float32])
 def test_neighbour_median_is_robust_nanmedian_bit_for_bit(rng, k, with_offset, dtype):
@@ -95,3 +96,24 @@ def test_cell_neighbour_median_is_robust_nanmedian_bit_for_bit(rng):
         want = nanmedian(g, axis=-1)
     assert np.array_equal(got.view(np.uint64), want.view(np.uint64))
     assert np.isnan(got[0]).all() and np.isfinite(got[1:]).any()
+
+
+def test_default_chunks_give_the_numbers_of_one_chunk(rng):
+    """The default chunk (a fixed count of values per neighbour slice) splits these modules
+    into several chunks; the medians are those of one chunk over all and of the reference."""
+    from pvscan.diagnose.features import _SLICE_VALUES
+    n, A, C = 1500, 6, 4
+    assert n * A * C > 2 * _SLICE_VALUES  # several default chunks
+    X = _values(rng, (n, A, C))
+    nb = rng.integers(0, n, size=(n, 8))
+    nb[rng.random((n, 8)) < 0.2] = -1
+    offset = rng.normal(40.0, 1.0, size=n)
+    with np.errstate(invalid="ignore"):  # inf - inf between equal order statistics, both ways
+        got = neighbour_median(X, nb, offset=offset)
+        one = neighbour_median(X, nb, chunk=n, offset=offset)
+        want = _reference(X, nb, offset)
+        cells = cell_neighbour_median(X)
+        cells_one = cell_neighbour_median(X, chunk=n)
+    assert np.array_equal(got.view(np.uint64), one.view(np.uint64))
+    assert np.array_equal(got.view(np.uint64), want.view(np.uint64))
+    assert np.array_equal(cells.view(np.uint64), cells_one.view(np.uint64))
