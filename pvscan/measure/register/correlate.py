@@ -68,14 +68,29 @@ def cross_power(image: np.ndarray, reference: np.ndarray, whitening: float = 1.0
     r = fi * np.conj(fr)
     del fi, fr
     if highpass_sigma_px > 0:
-        f2 = np.fft.fftfreq(r.shape[0])[:, None] ** 2 + np.fft.fftfreq(r.shape[1])[None, :] ** 2
-        h = -np.expm1(-2.0 * np.pi ** 2 * highpass_sigma_px ** 2 * f2)
-        r *= (h * h).astype(dtype)
+        r *= _highpass_squared(r.shape, float(highpass_sigma_px), np.dtype(dtype))
     if whitening > 0:
         mag = np.abs(r)
         floor = max(float(mag.max()) * 1e-9, float(np.finfo(mag.dtype).tiny))
         r /= np.maximum(mag, floor) ** np.asarray(whitening, mag.dtype)
     return r
+
+
+def _highpass_squared(shape: tuple[int, ...], sigma_px: float, dtype: np.dtype) -> np.ndarray:
+    """``h * h`` of the high-pass ``h = 1 - exp(-2 pi^2 sigma^2 f^2)`` on the FFT grid of ``shape``
+    (``f^2`` from ``numpy.fft.fftfreq`` along both axes), as ``dtype``.
+
+    The frequencies of index ``i`` and ``m - i`` differ in sign only, so their squares are the
+    same numbers: ``h`` is computed once per distinct ``|f|`` (a quarter of the grid) and
+    spread by index, the very values of the whole grid computed element by element.
+    """
+    m, n = (int(v) for v in shape)
+    fr, fc = np.abs(np.fft.fftfreq(m)), np.abs(np.fft.fftfreq(n))
+    ir = np.minimum(np.arange(m), m - np.arange(m))  # index of the same |f|, in 0 .. m // 2
+    ic = np.minimum(np.arange(n), n - np.arange(n))
+    f2 = fr[:m // 2 + 1, None] ** 2 + fc[None, :n // 2 + 1] ** 2
+    h = -np.expm1(-2.0 * np.pi ** 2 * sigma_px ** 2 * f2)
+    return np.take((h * h).astype(dtype), ic, axis=1)[ir]
 
 
 def correlation_surface(image: np.ndarray, reference: np.ndarray, whitening: float = 1.0) -> np.ndarray:
