@@ -21,7 +21,10 @@ module. So, along every table row (modules ordered by ``table_col``):
    the row must step back: the medians of the ``window_modules`` modules either side lie
    each at least half the offset away, on the same side, within ``match_abs_k`` +
    ``match_rel`` x the offset of each other. Found stretches are levelled in a working copy
-   and the row is fitted again for more;
+   and the row is fitted again for more. Over the very columns of a stretch found in one
+   row, the table's other rows are tested once more without the sides' agreement (a seam
+   crosses the rows, and the spread can make one row's sides disagree), at ``repeat_z``
+   standard errors (one test at given columns, not a search);
 3. the stretch is an artefact, and is levelled by its offset, when it covers modules of
    more than one string, or when another row of its table has a stretch over at least
    half of the same columns at a similar level (a seam or a reflection crosses rows; a
@@ -252,6 +255,7 @@ def find_stretches(modules: pd.DataFrame, t_median: np.ndarray,
         level = np.zeros_like(t)
         for _k, seg, off, _s in found:
             level[seg] = off
+    found += _repeated_in_rows(rows, t - level, col, table, found, cfg, sigma)
     tol_abs, tol_rel = float(cfg["match_abs_k"]), float(cfg["match_rel"])
     in_string = bool(cfg["level_cold_in_string"])
     out = []
@@ -272,6 +276,69 @@ def find_stretches(modules: pd.DataFrame, t_median: np.ndarray,
     if bool(cfg["level_table_edges"]):
         out += _table_edges(rows, t, col, table, sid, out, cfg, sigma)
     log.debug("seams: %d closed stretches, %d levelled", len(found), len(out))
+    return out
+
+
+def _repeated_in_rows(rows: list[tuple[int, np.ndarray]], tl: np.ndarray, col: np.ndarray, table: np.ndarray,
+                      found: list[tuple[int, np.ndarray, float, np.ndarray]], cfg: Mapping[str, Any],
+                      sigma: float) -> list[tuple[int, np.ndarray, float, np.ndarray]]:
+    """Stretches of the other rows of a table over the columns of a stretch found in one row.
+
+    A seam or a reflection that crosses the rows of a table steps each of them over about the
+    same columns; the module-to-module spread can make one row's two sides disagree by more
+    than ``match_abs_k`` + ``match_rel`` x the offset (a median of three modules carries
+    about 0.4 K of a 0.3 K spread), so that row alone is not a closed stretch. Over the very
+    columns of a stretch found in another row of its table, a row counts with the closed
+    test's other bars: its offset (median inside minus the median of the rest of the row,
+    ``tl`` with the stretches found levelled [degC]) matches the found one's within that
+    tolerance, reaches ``min_step_k`` and ``repeat_z`` standard errors (inside median at the
+    order statistic nearer the outside level; one test at given columns, where ``seam_z``
+    guards a search over every window), and each side (the ``window_modules``
+    modules, two or more) steps by at least half the offset the same way. The rows are then
+    levelled together (reason ``rows``). Rows that hold a found stretch over those columns
+    are not looked at again.
+    """
+    w = int(cfg["window_modules"])
+    min_len = int(cfg["min_modules"])
+    min_step = float(cfg["min_step_k"])
+    tol_abs, tol_rel = float(cfg["match_abs_k"]), float(cfg["match_rel"])
+    z_min = float(cfg["repeat_z"])
+    by_table: dict[str, list[tuple[int, np.ndarray]]] = {}
+    for k, mem in rows:
+        if table[mem[0]]:
+            by_table.setdefault(str(table[mem[0]]), []).append((k, mem))
+    taken = np.zeros(tl.size, bool)
+    for _k, seg, _o, _s in found:
+        taken[seg] = True
+    out: list[tuple[int, np.ndarray, float, np.ndarray]] = []
+    for k, seg, off, _s in found:
+        cols = col[seg]
+        for k2, mem in by_table.get(str(table[seg[0]]), []):
+            if k2 == k:
+                continue
+            inside = np.isin(col[mem], cols)
+            pos = np.flatnonzero(inside)
+            if pos.size < min_len or taken[mem[inside]].any() or pos.size != pos[-1] - pos[0] + 1:
+                continue
+            a, b = int(pos[0]), int(pos[-1])
+            left, right = mem[max(a - w, 0):a], mem[b + 1:b + 1 + w]
+            v_in, v_rest = tl[mem[inside]], tl[mem[~inside]]
+            v_l, v_r = tl[left], tl[right]
+            v_in, v_rest, v_l, v_r = (v[np.isfinite(v)] for v in (v_in, v_rest, v_l, v_r))
+            if v_in.size < min_len or v_l.size < 2 or v_r.size < 2 or v_rest.size < 2:
+                continue
+            m_in, m_rest = float(np.median(v_in)), float(np.median(v_rest))
+            off2 = m_in - m_rest
+            srt = np.sort(v_in)
+            lev_in = srt[(v_in.size - 1) // 2] if off2 >= 0 else srt[v_in.size // 2]
+            low = abs(lev_in - m_rest)
+            se = max(sigma, 1e-9) * np.sqrt(1.0 / v_in.size + 1.0 / v_rest.size)
+            steps = [m_in - float(np.median(v_l)), m_in - float(np.median(v_r))]
+            if (np.sign(off2) == np.sign(off) and abs(off2 - off) <= tol_abs + tol_rel * max(abs(off), abs(off2))
+                    and np.sign(lev_in - m_rest) == np.sign(off2) and low >= min_step and low >= z_min * se
+                    and all(np.sign(d) == np.sign(off2) and abs(d) >= 0.5 * abs(off2) for d in steps)):
+                out.append((int(k2), mem[a:b + 1], off2, np.concatenate([left, right])))
+                taken[mem[a:b + 1]] = True
     return out
 
 

@@ -10,7 +10,9 @@ in this flight:
   inside the kept tables (module-to-module spread, seams and hot spots included);
 - *textured like a table*: the gradient energy over a module width (the frame lines and
   gaps of a table; :mod:`.segment`) at least the ``texture_pct`` percentile of the energy
-  inside the kept tables; smooth ground at the glass level fails it;
+  inside the kept tables; smooth ground at the glass level fails it (the middle of a
+  module, about half a module width from its frame lines, can too: glass-level pixels that
+  such texture encloses count);
 - *outside the kept tables* by more than ``reach_modules`` module widths (the blur and the
   energy window spread a table's texture beyond its edge);
 - *table-sized*: after closing across frame lines (``close_m``) and an opening of a quarter
@@ -84,10 +86,15 @@ def uncovered_glass(img: np.ndarray, transform: Any, outlines: Sequence[Any], n_
     e_thr = float(np.percentile(log_e[inside_ok], float(settings["uncovered_texture_pct"])))
     reach_px = max(1, int(math.ceil(float(settings["uncovered_reach_modules"]) * module_width_m / step)))
     near = ndi.binary_dilation(inside, np.ones((3, 3), bool), iterations=reach_px)
-    like = valid & ~near & (img >= t_lo) & (img <= t_hi) & (log_e >= e_thr)
+    level = valid & ~near & (img >= t_lo) & (img <= t_hi)
+    like = level & (log_e >= e_thr)
     sq = np.ones((3, 3), bool)
     n_close = max(1, int(math.ceil(0.5 * float(settings["close_m"]) / step)))
     like = ndi.binary_closing(like, sq, iterations=n_close) & ~near
+    # the middle of a module lies about half a module width from its frame lines, where a
+    # window of one module width can miss them: glass-level pixels that textured glass
+    # encloses are glass too
+    like |= ndi.binary_fill_holes(like) & level
     like = ndi.binary_opening(like, sq, iterations=max(1, int(round(0.3 * module_width_m / step))))
     lab, n = ndi.label(like)
     area_px = 0
