@@ -133,6 +133,31 @@ def test_lines_between_module_rows_show_the_drawn_frame_contrast_and_not_on_a_sh
         assert math.isnan(_row_lines(s, w, t, cols, 1, WIDTH, mod_w, GAP, GAP, gsd, 0.15))
 
 
+
+def test_lines_between_module_rows_along_the_pixel_grid_take_no_side_from_one_bin():
+    # a table along the pixel grid leaves every other half-pixel bin of the profile across it
+    # empty: a line with glass-level shadow on one side and sunlit ground 10-20 K warmer on the
+    # other (a lattice laid a row too far, over a tracker row's shadow) is no line whatever
+    # the bins' phase against the pixel grid (plain geometry: the cooler side is the shadow,
+    # at the line's own temperature; within a few NETD). Every phase of the grid is drawn, so
+    # a side taken from one bin reads the ground's 10-20 K on about half of them.
+    rng = np.random.default_rng(SEED + 5)
+    gsd = 0.05
+    cols, mod_w = 8, LENGTH * math.cos(math.radians(rng.uniform(10, 35)))
+    pitch_w = mod_w + GAP
+    line_w = pitch_w - 0.5 * GAP  # the line between the lattice's two rows
+    for k in range(8):
+        off = (k + rng.uniform()) / 8 * gsd  # the pixel grid's phase against the lattice
+        s_c = (np.arange(int(cols * (WIDTH + GAP) / gsd)) + 0.5) * gsd
+        w_c = (np.arange(int(2 * pitch_w / gsd) + 2) + 0.5) * gsd - off
+        s, w = (a.ravel() for a in np.meshgrid(s_c, w_c))
+        shadow = rng.uniform(30, 45)
+        ground = shadow + rng.uniform(10, 20)
+        t = np.where(w < line_w + 0.5 * gsd, shadow, ground) + rng.normal(0.0, 0.05, s.size)
+        got = _row_lines(s, w, t, cols, 2, WIDTH, mod_w, GAP, GAP, gsd, 0.15)
+        assert got < 0.5, (k, off, got)
+
+
 def _write_ortho(path, rng, cols, rows, mod_w, glass, ground, dip, gsd, origin, margin_m, beside=None):
     """A north-up GeoTIFF of one drawn table running east (pixel centres on a grid, NETD noise);
     ``beside(s, w, t)`` may change the scene (``s`` east from the table's west end, ``w`` south
