@@ -1,8 +1,11 @@
 """The reference's neighbour search (diagnose/thermal.py ``_knn``) against a brute-force
 search: every pool point's distance computed and sorted (the definition of the k nearest,
-here on random points where no two distances tie); and, on a grid where distances tie
-exactly, the short first query with its settled rows against one full query."""
+here on random points where no two distances tie); on a grid where distances tie
+exactly, the short first query with its settled rows against one full query; and the row
+median of the reference against numpy.nanmedian."""
 from __future__ import annotations
+
+import warnings
 
 import numpy as np
 import pytest
@@ -80,3 +83,22 @@ def test_knn_short_query_rows_that_are_not_settled_are_asked_again(rng, monkeypa
     dist, idx = thermal.cKDTree(xy).query(xy, k=kf, distance_upper_bound=25.0)
     settled = thermal._knn_settled(dist, idx, pool, pool, 8, group)
     assert settled.mean() > 0.5
+
+
+@pytest.mark.parametrize("k", range(31))
+def test_row_median_is_numpy_nanmedian_bit_for_bit(rng, k):
+    """The reference's row medians (``_nanmedian_rows``) give numpy.nanmedian(axis=1) bit for
+    bit, with NaN, infinities, signed zeros, ties and all-NaN rows."""
+    a = np.round(rng.normal(0.0, 3.0, size=(500, k)), 1)
+    r = rng.random(a.shape)
+    a[r < 0.3] = np.nan
+    a[(r >= 0.3) & (r < 0.33)] = np.inf
+    a[(r >= 0.33) & (r < 0.36)] = -np.inf
+    a[(r >= 0.36) & (r < 0.40)] = -0.0
+    a[:9] = np.nan
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN rows
+        want = np.nanmedian(a, axis=1) if k else np.full(len(a), np.nan)
+    got = thermal._nanmedian_rows(a)
+    assert np.array_equal(got.view(np.uint64), want.view(np.uint64))
+    assert np.isnan(got[:9]).all()
