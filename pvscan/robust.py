@@ -18,8 +18,8 @@ from typing import Any
 import numpy as np
 from numpy.typing import ArrayLike
 
-__all__ = ["nanquantile", "sorted_quantile", "nanmedian", "nanpercentile", "iqr", "nanmean", "nanmax", "nanmin",
-           "scaled_mad", "MAD_TO_SIGMA"]
+__all__ = ["nanquantile", "sorted_quantile", "nanmedian", "numpy_nanmedian_rows", "nanpercentile", "iqr", "nanmean",
+           "nanmax", "nanmin", "scaled_mad", "MAD_TO_SIGMA"]
 
 #: 1 / Phi^-1(3/4): scales a median absolute deviation to the standard deviation of a normal
 #: distribution (Hampel 1974).
@@ -76,6 +76,34 @@ def sorted_quantile(srt: np.ndarray, cnt: np.ndarray, q: float) -> Any:
 def nanmedian(a: ArrayLike, axis: int | None = None) -> Any:
     """Median ignoring NaN, vectorised (see :func:`nanquantile`)."""
     return nanquantile(a, 0.5, axis=axis)
+
+
+def numpy_nanmedian_rows(a: np.ndarray) -> np.ndarray:
+    """``numpy.nanmedian(a, axis=1)`` of a 2-D float64 array, the same numbers bit for bit
+    (for rows shorter than 600 numpy takes the masked-array median: NaN sorted last, the
+    mean of the two middle values as ``(0 + low + high) / 2``, NaN for an all-NaN row),
+    by one sort along the rows instead of a masked array (several times faster on short
+    rows); where results must stay those of ``numpy.nanmedian`` (:func:`nanmedian`
+    interpolates as ``low + 0.5 (high - low)``, which may differ in the last bit). Rows of
+    600 values or more go to ``numpy.nanmedian`` itself (another method there).
+    """
+    n, k = a.shape
+    if k == 0:
+        return np.full(n, np.nan)
+    if k >= 600:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN rows: NaN
+            return np.asarray(np.nanmedian(a, axis=1))
+    srt = np.sort(a, axis=1)
+    cnt = k - np.isnan(a).sum(axis=1)
+    h = cnt // 2
+    rows = np.arange(n)
+    lo = srt[rows, np.maximum(np.where(cnt % 2 == 1, h, h - 1), 0)]
+    hi = srt[rows, np.minimum(h, k - 1)]
+    with np.errstate(invalid="ignore"):  # -inf and +inf in the middle: NaN, as numpy's
+        out = ((0.0 + lo) + hi) / 2.0
+    out[cnt == 0] = np.nan
+    return out
 
 
 def nanpercentile(a: ArrayLike, q: ArrayLike, axis: int | None = None) -> np.ndarray:

@@ -11,6 +11,7 @@ import numpy as np
 import pytest
 
 import pvscan.diagnose.thermal as thermal
+from pvscan.robust import numpy_nanmedian_rows
 
 
 def _plant(rng, rows=12, cols=60, strings=(8, 31)):
@@ -87,8 +88,9 @@ def test_knn_short_query_rows_that_are_not_settled_are_asked_again(rng, monkeypa
 
 @pytest.mark.parametrize("k", range(31))
 def test_row_median_is_numpy_nanmedian_bit_for_bit(rng, k):
-    """The reference's row medians (``_nanmedian_rows``) give numpy.nanmedian(axis=1) bit for
-    bit, with NaN, infinities, signed zeros, ties and all-NaN rows."""
+    """The row medians of the reference and of the cell counts (``robust.numpy_nanmedian_rows``)
+    give numpy.nanmedian(axis=1) bit for bit, with NaN, infinities, signed zeros, ties and
+    all-NaN rows."""
     a = np.round(rng.normal(0.0, 3.0, size=(500, k)), 1)
     r = rng.random(a.shape)
     a[r < 0.3] = np.nan
@@ -99,6 +101,6 @@ def test_row_median_is_numpy_nanmedian_bit_for_bit(rng, k):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN rows
         want = np.nanmedian(a, axis=1) if k else np.full(len(a), np.nan)
-    got = thermal._nanmedian_rows(a)
+    got = numpy_nanmedian_rows(a)
     assert np.array_equal(got.view(np.uint64), want.view(np.uint64))
     assert np.isnan(got[:9]).all()

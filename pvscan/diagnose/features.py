@@ -28,7 +28,7 @@ import pandas as pd
 
 from pvscan.measure.rows import adjacent_modules, row_keys
 from pvscan.physics.heat import Faiman
-from pvscan.robust import MAD_TO_SIGMA, nanmedian, scaled_mad
+from pvscan.robust import MAD_TO_SIGMA, nanmedian, numpy_nanmedian_rows, scaled_mad
 
 __all__ = ["Features", "Hits", "build_features", "row_geometry", "string_groups", "neighbour_median",
            "cell_neighbour_median",
@@ -372,7 +372,7 @@ def build_features(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, 
         warnings.simplefilter("ignore", RuntimeWarning)
         for i0 in range(0, n, CHUNK_MODULES):
             c = cc[i0:i0 + CHUNK_MODULES]
-            typ[i0:i0 + CHUNK_MODULES] = np.nanmedian(np.where(c > 0, c, np.nan).reshape(len(c), -1), axis=1)
+            typ[i0:i0 + CHUNK_MODULES] = numpy_nanmedian_rows(np.where(c > 0, c, np.nan).reshape(len(c), -1))
     thin = cc < float(cfg["min_cell_fraction"]) * np.nan_to_num(typ, nan=1.0)[:, None, None]
     if thin.any():
         cm = np.where(thin, np.nan, cm)

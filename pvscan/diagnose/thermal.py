@@ -33,7 +33,7 @@ from scipy.spatial import cKDTree
 from pvscan.io.settings import section
 from pvscan.measure.rows import module_centres, row_keys
 from pvscan.physics.heat import U0_FAIMAN_2008, U1_FAIMAN_2008, Faiman
-from pvscan.robust import scaled_mad
+from pvscan.robust import numpy_nanmedian_rows, scaled_mad
 
 __all__ = [
     "local_reference",
@@ -301,26 +301,6 @@ def reference_neighbours(modules: pd.DataFrame, healthy_mask: ArrayLike, setting
     return out
 
 
-def _nanmedian_rows(a: np.ndarray) -> np.ndarray:
-    """``numpy.nanmedian(a, axis=1)`` of a 2-D float64 array, the same numbers bit for bit
-    (for rows shorter than 600 numpy takes the masked-array median: NaN sorted last, the
-    mean of the two middle values as ``(0 + low + high) / 2``, NaN for an all-NaN row),
-    by one sort along the rows instead of a masked array."""
-    n, k = a.shape
-    if k == 0:
-        return np.full(n, np.nan)
-    srt = np.sort(a, axis=1)
-    cnt = k - np.isnan(a).sum(axis=1)
-    h = cnt // 2
-    rows = np.arange(n)
-    lo = srt[rows, np.maximum(np.where(cnt % 2 == 1, h, h - 1), 0)]
-    hi = srt[rows, np.minimum(h, k - 1)]
-    with np.errstate(invalid="ignore"):  # -inf and +inf in the middle: NaN, as numpy's
-        out = ((0.0 + lo) + hi) / 2.0
-    out[cnt == 0] = np.nan
-    return out
-
-
 def _median_of(values: np.ndarray, nb: np.ndarray, xy: np.ndarray | None = None,
                max_shift_m: float = 5.0, rows: slice | None = None) -> np.ndarray:
     """Median of the neighbours' values; with ``xy``, corrected for a linear trend.
@@ -346,7 +326,7 @@ def _median_of(values: np.ndarray, nb: np.ndarray, xy: np.ndarray | None = None,
     vals = np.where(nb >= 0, values[np.maximum(nb, 0)], np.nan)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
-        med = _nanmedian_rows(vals)
+        med = numpy_nanmedian_rows(vals)
         if xy is None:
             return med
         own = xy if rows is None else xy[rows]
@@ -365,8 +345,8 @@ def _median_of(values: np.ndarray, nb: np.ndarray, xy: np.ndarray | None = None,
         ds = s[:, ib] - s[:, ia]
         dv = vals[:, ib] - vals[:, ia]
         ok = np.abs(ds) > 0.2
-        slope = _nanmedian_rows(np.where(ok, dv / np.where(ok, ds, 1.0), np.nan))
-        shift = _nanmedian_rows(s)
+        slope = numpy_nanmedian_rows(np.where(ok, dv / np.where(ok, ds, 1.0), np.nan))
+        shift = numpy_nanmedian_rows(s)
     # extrapolate a few metres at most: beyond that a straight line is a guess
     near = np.abs(shift) <= max_shift_m
     corr = np.where(line & near & np.isfinite(slope) & np.isfinite(shift), -slope * shift, 0.0)
