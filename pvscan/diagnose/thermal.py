@@ -146,8 +146,7 @@ def module_thermal(t_median_c: ArrayLike, reference_c: ArrayLike, conditions: pd
 
 #: Modules queried at a time by :func:`_knn` (bounds its (modules x neighbours) temporaries).
 _KNN_CHUNK = 8192
-#: Extra neighbours :func:`_knn` asks for first, beyond those it keeps, when it drops a group
-#: (rows this settles need no longer query; see :func:`_knn_settled`).
+#: Extra neighbours :func:`_knn` asks for first beyond those it keeps when it drops a group.
 _KNN_SPARE = 16
 
 
@@ -172,16 +171,11 @@ def _knn_pick(dist: np.ndarray, idx: np.ndarray, pool: np.ndarray, rows: np.ndar
 
 def _knn_settled(dist: np.ndarray, idx: np.ndarray, pool: np.ndarray, rows: np.ndarray, width: int,
                  group: np.ndarray) -> np.ndarray:
-    """Rows whose short query (the ``kf`` nearest) already gives their whole answer.
-
-    The answer of a row is its first ``width`` neighbours outside its group, in the order of
-    distance. A longer query lists the same nearest entries in the same order wherever the
-    distances up to and including the next entry after the last one used strictly increase
-    (the nearest j form one set when the j-th is nearer than the (j+1)-th). So a row is
-    settled when it holds ``width`` kept entries and no tie up to the entry after the last
-    of them, or when the short query already lists every pool point within the radius (its
-    last entry is missing) without a tie among them. Other rows are asked again in full.
-    """
+    """Rows whose short query (the ``kf`` nearest) already gives their whole answer: a longer
+    query lists the same nearest entries in the same order while the distances strictly
+    increase, so a row is settled when it holds ``width`` kept entries (outside its group) and
+    no tie up to the entry after the last of them, or when it lists every pool point within
+    the radius (last entry missing) without a tie. Other rows are asked again in full."""
     ok = np.isfinite(dist)
     glob = np.where(ok, pool[np.minimum(idx, len(pool) - 1)], -1)
     own = group[rows, None]
@@ -205,9 +199,8 @@ def _knn(points: np.ndarray, pool: np.ndarray, k: int, radius: float, *, group: 
     With ``group`` (a code per point, -1 = none), neighbours of the point's own group are
     then dropped and the first ``keep`` of the rest returned. Points are queried in chunks
     (each point's answer does not depend on the others), so the temporaries stay bounded.
-    With a group, each point first asks for ``keep + 1 + _KNN_SPARE`` neighbours only and
-    the points that settles (:func:`_knn_settled`) keep that answer, the same as the full
-    query's; the rest ask for all k.
+    With a group, each point first asks for ``keep + 1 + _KNN_SPARE`` neighbours; those this
+    settles (:func:`_knn_settled`: the full query's answer) keep it, the rest ask for all k.
     """
     n = len(points)
     width = k if keep is None else keep
@@ -221,8 +214,7 @@ def _knn(points: np.ndarray, pool: np.ndarray, k: int, radius: float, *, group: 
         e = min(s + _KNN_CHUNK, n)
         rows = np.arange(s, e)
         dist, idx = tree.query(points[s:e], k=kf, distance_upper_bound=radius)
-        dist = dist.reshape(e - s, kf)
-        idx = idx.reshape(e - s, kf)
+        dist, idx = dist.reshape(e - s, kf), idx.reshape(e - s, kf)
         glob = _knn_pick(dist, idx, pool, rows, k, width, group)
         out[s:e, :glob.shape[1]] = glob
         if kf < kq and group is not None:
