@@ -146,10 +146,13 @@ def plant_at_truth(d: Path) -> Iterator[SimpleNamespace]:
                               expected=expected_module_apparent_c(fl, st, strict=False), sun=sun(fl, mods))
 
 
-def resolve_pitch_at(p: SimpleNamespace, placement: Placement, message: str) -> Registration:
-    """The one-pitch decision (:func:`pvscan.measure.register.fit._resolve_pitch`) of the plant
-    ``p`` (:func:`plant_at_truth`) with ``placement`` used: the registration it leaves."""
+def resolve_pitch_at(p: SimpleNamespace, placement: Placement, message: str, *, switch: bool = True) -> Registration:
+    """The one-pitch decision (:func:`pvscan.measure.register._pitch._resolve_pitch`) of the plant
+    ``p`` (:func:`plant_at_truth`) with ``placement`` used: the registration it leaves. Without
+    ``switch`` an undecided placement never gives way to one a module pitch away
+    (``pitch_switch_ratio`` 0): the tests of the decision's own rules."""
     reg = Registration(evidence={}, status="ok", message=message)
     _use_placement(reg, placement)
-    _resolve_pitch(p.o, p.mods, reg, p.cfg, p.ident, p.sun, p.expected)
+    cfg = p.cfg if switch else {**p.cfg, "pitch_switch_ratio": 0.0}
+    _resolve_pitch(p.o, p.mods, reg, cfg, p.ident, p.sun, p.expected)
     return reg

@@ -1,20 +1,35 @@
 """Pitches of the layout's rows: the vectors one module along a table row and one table
-across the rows, which the one-pitch ambiguity of periodic rows is tested against [m]."""
+across the rows, which the one-pitch ambiguity of periodic rows is tested against [m]; and
+that test (:func:`_resolve_pitch`: the placement used against the same placement one module
+pitch along and across the rows, decided on module evidence, the table ends and the block
+correlation; an undecided placement gives way to an alternative that passes in its own right)."""
 from __future__ import annotations
 
 import math
 from collections.abc import Callable, Mapping
+from dataclasses import dataclass, replace
 from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from pvscan.measure.register.evidence import Placement, _compose, _inverse
+from pvscan.measure.register._place import _largest_gap, _use_placement, apply_placement
+from pvscan.measure.register._records import Registration, _num
+from pvscan.measure.register.ends import glass_decides, judge_ends, pitch_steps
+from pvscan.measure.register.evidence import (
+    ModuleSample,
+    Placement,
+    _compose,
+    _inverse,
+    placement_quality,
+    sample_modules,
+)
 from pvscan.measure.register.search import refine_placement
 
 if TYPE_CHECKING:  # pragma: no cover
     import geopandas as gpd
 
-__all__ = ["_pitches", "_row_pitch", "_placement_of", "_turned", "_screen_turned", "_distinct"]
+__all__ = ["_pitches", "_row_pitch", "_placement_of", "_turned", "_screen_turned", "_distinct", "_resolve_pitch",
+           "_sample_at", "_judge"]
 
 
 def _pitches(modules: gpd.GeoDataFrame) -> list[np.ndarray]:
@@ -145,3 +160,235 @@ def _screen_turned(starts: list[Placement], cfg: Mapping[str, Any],
         _, e = refine_placement(sample_at(p), Placement(cx=p.cx, cy=p.cy), sub, rotate=False, scale=False)
         scores.append(e if math.isfinite(e) else float("inf"))
     return [starts[i] for i in sorted(range(len(starts)), key=lambda i: (scores[i], i))]
+
+
+def _sample_at(orthos: Any, modules: gpd.GeoDataFrame, placement: Placement | None, cfg: Mapping[str, Any],
+               reduce: int = 1) -> ModuleSample:
+    moved = apply_placement(modules, placement) if placement is not None else modules
+    return sample_modules(orthos, moved, n=int(cfg["evidence_modules"]), margin_m=float(cfg["evidence_margin_m"]),
+                          reduce=reduce, seed=0)
+
+
+def _judge(sample: ModuleSample, placement: Placement, cfg: Mapping[str, Any], sun: tuple[float, ...] | None,
+           expected_c: float | None = None) -> dict[str, Any]:
+    q = placement_quality(sample, placement, cfg, sun=sun, expected_c=expected_c)
+    return {k: (round(float(v), 4) if isinstance(v, float) and math.isfinite(v) else v) for k, v in q.items()}
+
+
+@dataclass
+class _Verdict:
+    """The one-pitch tests of one placement (:func:`_pitch_verdict`)."""
+
+    low: float
+    decisive: bool
+    ends: dict[str, Any]
+    confirmed: bool
+    both: bool
+    by_glass: bool
+    by_corr: bool
+    against: bool
+    gap: float
+    gap_pitch: float
+    corr_conf: float
+
+    @property
+    def ambiguous(self) -> bool:
+        """Whether the placement fails the one-pitch decision (findings may sit on the
+        neighbouring module)."""
+        if not self.decisive and not self.confirmed and self.by_corr and self.ends["decisive"]:
+            return False
+        if self.against and not self.confirmed:
+            return True
+        if self.both or self.by_glass:
+            return False
+        return not (self.decisive or self.confirmed) or not self.ends["decisive"]
+
+    def record(self, cfg: Mapping[str, Any]) -> dict[str, Any]:
+        """The decision as ``evidence.pitch`` (summary.json) records it."""
+        low, gap, gp = self.low, self.gap, self.gap_pitch
+        return {"lowest_ratio": round(low, 4) if math.isfinite(low) else None,
+                "limit": round(1.0 + float(cfg["pitch_min_margin"]), 4), "decisive": bool(self.decisive),
+                "ends": self.ends, "ends_confirm": bool(self.confirmed and not self.decisive),
+                "both_lean": bool(self.both), "glass_ends": bool(self.by_glass),
+                "correlation": {"confidence": round(self.corr_conf, 3),
+                                "gap_m": round(gap, 4) if math.isfinite(gap) else None,
+                                "pitch_gap_m": round(gp, 4) if math.isfinite(gp) else None,
+                                "against": bool(self.against),
+                                "confirms": bool(self.by_corr and not self.decisive and not self.confirmed
+                                                 and self.ends["decisive"])}}
+
+    def message(self, cfg: Mapping[str, Any]) -> str:
+        """What the decision adds to the registration's message (empty when nothing needs saying)."""
+        low, e_low = self.low, self.ends.get("lowest")
+        almost = f"; a placement one module pitch away fits almost as well on the modules (evidence ratio {low:.2f})"
+        if not self.decisive and not self.confirmed and self.by_corr and self.ends["decisive"]:
+            return (f"{almost}, but the block correlation (confidence {self.corr_conf:.2f}, table outlines and "
+                    f"ends) puts the layout within {self.gap:.3f} m of it")
+        if self.against and not self.confirmed:
+            return (f"; the block correlation (confidence {self.corr_conf:.2f}) puts the layout one module pitch "
+                    f"from this placement (within {self.gap_pitch:.3f} m) and the table ends do not confirm it "
+                    f"(median vote {_num(e_low):.2f}, {float(cfg['ends_confirm_vote']):g} needed): "
+                    "findings may sit on the neighbouring module")
+        if self.both:
+            return (f"{almost}, but every one fits worse and no table end prefers it (lowest median vote "
+                    f"{_num(e_low):.2f}, at least {float(cfg['ends_support_vote']):g})")
+        if self.by_glass:
+            return (f"{almost}, but only this one has glass in the end modules of the lines and none beyond "
+                    f"their sunlit ends (lowest median glass vote {_num(self.ends['glass'].get('lowest')):.2f})")
+        if not self.decisive and not self.confirmed:
+            return (f"; a placement one module pitch away fits almost as well (evidence ratio {low:.2f}, more "
+                    f"than {1.0 + float(cfg['pitch_min_margin']):.2f} needed): findings may sit on the "
+                    "neighbouring module")
+        if not self.ends["decisive"]:
+            return (f"; the table ends prefer a placement one module pitch away (median vote "
+                    f"{self.ends['lowest']:.2f}, more than {self.ends['limit']:g} needed): findings may sit on the "
+                    "neighbouring module")
+        return ""
+
+
+def _pitch_verdict(orthos: Any, modules: gpd.GeoDataFrame, cur: Placement, q_cur: Mapping[str, Any],
+                   alts: list[tuple[np.ndarray, dict]], dirs: list[str], steps: list[np.ndarray],
+                   cfg: Mapping[str, Any], sun: tuple[float, ...] | None,
+                   correlation: tuple[Placement | None, float]) -> _Verdict:
+    """Every one-pitch test of the placement ``cur`` (its quality ``q_cur``) against ``alts``,
+    the qualities of the same placement moved by each of ``steps`` (directions ``dirs``)."""
+    e_cur = _num(q_cur["evidence"])
+    ratios = [_num(q["evidence"]) / e_cur for _, q in alts if math.isfinite(_num(q["evidence"]))] if (
+        math.isfinite(e_cur) and e_cur > 0) else []
+    low = min(ratios) if ratios else float("inf")
+    decisive = low > 1.0 + float(cfg["pitch_min_margin"])
+    ends = judge_ends(orthos, modules, apply_placement(modules, cur), cfg, sun)
+    # the table ends alone clearly for the placement (well above any vote of one a pitch off)
+    confirmed = ends.get("lowest") is not None and ends["lowest"] >= float(cfg["ends_confirm_vote"])
+    # neither alone decisive, but both lean the same way: the placement fits the modules better
+    # than every placement one module pitch away, and no table end prefers one of those
+    e_low = ends.get("lowest")
+    both = (not decisive and not confirmed and math.isfinite(low) and low >= float(cfg["pitch_support_ratio"])
+            and e_low is not None and e_low >= float(cfg["ends_support_vote"]))
+    # ... or each direction's alternatives fit the modules worse or leave glass beyond a sunlit end
+    by_glass = not (decisive or confirmed or both) and glass_decides(
+        ends.get("glass") or {}, dirs, [_num(q["evidence"]) / e_cur for _, q in alts] if e_cur > 0 else [], cfg)
+    corr_p, corr_conf = correlation
+    bounds = modules.total_bounds
+    gap = _largest_gap(cur, corr_p, bounds) if corr_p is not None else float("nan")
+    by_corr = (math.isfinite(gap) and gap <= float(cfg["pitch_corr_agree_m"])
+               and corr_conf >= float(cfg["pitch_corr_confidence"]))
+    # the correlation one module pitch from the placement: the module evidence alone would
+    # move the layout by a whole pitch against it
+    gaps_pitch = [_largest_gap(replace(cur, tx=cur.tx + float(v[0]), ty=cur.ty + float(v[1])), corr_p, bounds)
+                  for v in steps] if corr_p is not None else []
+    gap_pitch = min(gaps_pitch) if gaps_pitch else float("nan")
+    against = (math.isfinite(gap_pitch) and gap_pitch <= float(cfg["pitch_corr_against_m"])
+               and corr_conf >= float(cfg["pitch_corr_confidence"]))
+    return _Verdict(low, bool(decisive), ends, bool(confirmed), bool(both), bool(by_glass), bool(by_corr),
+                    bool(against), gap, gap_pitch, float(corr_conf))
+
+
+def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cfg: Mapping[str, Any], ident: Placement,
+                   sun: tuple[float, ...] | None, expected_c: float | None,
+                   correlation: tuple[Placement | None, float] = (None, 0.0)) -> None:
+    """The one-pitch ambiguity of rows, decided at full resolution on module evidence.
+
+    Rows of modules are periodic: the placement used and the same placement one module
+    pitch along or across the table rows put footprints on modules everywhere but at the
+    table ends. Each such alternative is judged on its own sample (footprints read where it
+    puts them); an alternative whose evidence is below ``pitch_move_ratio`` times the
+    placement's replaces it (up to ``pitch_max_steps`` times). ``reg.evidence["pitch"]``
+    records the lowest ratio evidence(alternative) / evidence(used), ``decisive`` when it
+    exceeds ``1 + pitch_min_margin``, and ``ends``: the table ends alone
+    (:func:`pvscan.measure.register.ends.judge_ends`). Either one indecisive leaves the
+    placement in use but fails the ``registration`` validity check (a finding may sit on
+    the neighbouring module), unless the table ends vote clearly for it
+    (``ends_confirm_vote``) or the block correlation does: its own placement (``correlation``:
+    placement, confidence), confident (``pitch_corr_confidence``), moves no footprint more
+    than ``pitch_corr_agree_m`` from the one used. A placement decided on module evidence is
+    flagged all the same when that confident correlation sits one module pitch from it
+    (within ``pitch_corr_against_m``) and the table ends do not confirm it.
+
+    A placement the decision leaves undecided is replaced by the alternative one module pitch
+    away that fits the modules best, when that one's evidence is at most ``pitch_switch_ratio``
+    times the placement's and it passes the same decision in its own right (the table ends, the
+    glass beyond them or the correlation for it): ``reg.evidence["pitch"]["switch"]``."""
+    base = reg.placement if (reg.applied and reg.placement is not None) else ident
+    dirs, steps = pitch_steps(modules)
+    if not steps:
+        return
+
+    def alternatives(p0: Placement, known: dict[int, dict] | None = None) -> list[tuple[np.ndarray, dict]]:
+        return [(v, (known or {}).get(k) or _judge(_sample_at(
+            orthos, modules, replace(p0, tx=p0.tx + float(v[0]), ty=p0.ty + float(v[1])), cfg), ident, cfg, sun,
+            expected_c)) for k, v in enumerate(steps)]
+
+    # the table corrections of a placement rescued table by table stay: without them its
+    # footprints straddle the module edges and every alternative looks almost as good
+    cur = base
+    q_cur = _judge(_sample_at(orthos, modules, cur, cfg), ident, cfg, sun, expected_c)
+    moved_by = np.zeros(2)
+    rounds = int(cfg["pitch_max_steps"])
+    alts: list[tuple[np.ndarray, dict]] = []
+    for _ in range(rounds + 1):
+        alts = alternatives(cur)
+        move_below = float(cfg["pitch_move_ratio"]) * _num(q_cur["evidence"])
+        better = [(v, q) for v, q in alts if q["ok"] and _num(q["evidence"]) < move_below]
+        if not better or len(reg.evidence.get("pitch_moves", [])) >= rounds:
+            break
+        v, q = min(better, key=lambda t: _num(t[1]["evidence"]))
+        reg.evidence.setdefault("pitch_moves", []).append([round(float(v[0]), 4), round(float(v[1]), 4)])
+        cur = replace(cur, tx=cur.tx + float(v[0]), ty=cur.ty + float(v[1]))
+        moved_by += v
+        q_cur = q
+    verdict = _pitch_verdict(orthos, modules, cur, q_cur, alts, dirs, steps, cfg, sun, correlation)
+    switch = _switch(orthos, modules, cur, q_cur, alts, verdict, alternatives, dirs, steps, cfg, sun, correlation)
+    if switch is not None and switch[0]["used"]:
+        rec, cur, q_cur, verdict = switch
+        moved_by += np.asarray(rec["moved_m"], float)
+    reg.evidence["pitch"] = {**verdict.record(cfg), "moved_m": [round(float(moved_by[0]), 4),
+                                                                round(float(moved_by[1]), 4)]}
+    if switch is not None:
+        reg.evidence["pitch"]["switch"] = switch[0]
+    if np.hypot(*moved_by) > 0:
+        _use_placement(reg, cur)
+        reg.evidence["chosen"] = q_cur
+        reg.evidence["used"] = "pitch"
+        why = ("where the table ends fit better" if switch is None or not switch[0]["used"] else
+               f"where the modules fit better (evidence ratio {switch[0]['ratio']:.2f}) and the one-pitch "
+               "decision holds")
+        reg.message += (f"; moved by ({moved_by[0]:+.3f}, {moved_by[1]:+.3f}) m, whole module pitches along or "
+                        f"across the rows, {why} (evidence {_num(q_cur['evidence']):.3f})")
+    reg.message += verdict.message(cfg)
+    if verdict.ambiguous:
+        reg.status = "ambiguous"
+
+
+def _switch(orthos: Any, modules: gpd.GeoDataFrame, cur: Placement, q_cur: dict, alts: list[tuple[np.ndarray, dict]],
+            verdict: _Verdict, alternatives: Callable[..., list[tuple[np.ndarray, dict]]], dirs: list[str],
+            steps: list[np.ndarray], cfg: Mapping[str, Any], sun: tuple[float, ...] | None,
+            correlation: tuple[Placement | None, float]) -> tuple[dict, Placement, dict, _Verdict] | None:
+    """The alternative one module pitch away that an undecided placement gives way to.
+
+    Only when ``verdict`` is ambiguous: the alternative with the lowest evidence, if at most
+    ``pitch_switch_ratio`` times the placement's and on glass, is put through the same decision
+    (its own alternatives, the placement among them); it is used when that decision holds.
+    Returns (record, placement, quality, verdict) of the alternative tried (``record["used"]``
+    says whether it is used), or None when none was tried."""
+    e_cur = _num(q_cur["evidence"])
+    lim = float(cfg["pitch_switch_ratio"])
+    if not verdict.ambiguous or not (math.isfinite(e_cur) and e_cur > 0) or lim <= 0:
+        return None
+    cands = [(k, v, q) for k, (v, q) in enumerate(alts) if q["ok"] and _num(q["evidence"]) <= lim * e_cur]
+    if not cands:
+        return None
+    k, v, q = min(cands, key=lambda t: _num(t[2]["evidence"]))
+    alt = replace(cur, tx=cur.tx + float(v[0]), ty=cur.ty + float(v[1]))
+    # the placement itself is the alternative one pitch back: its quality is known
+    back = [j for j, w in enumerate(steps) if np.allclose(w, -v)]
+    alts2 = alternatives(alt, {back[0]: q_cur} if back else None)
+    v2 = _pitch_verdict(orthos, modules, alt, q, alts2, dirs, steps, cfg, sun, correlation)
+    rec = {"moved_m": [round(float(v[0]), 4), round(float(v[1]), 4)], "direction": dirs[k],
+           "ratio": round(_num(q["evidence"]) / e_cur, 4), "limit": lim, "used": not v2.ambiguous,
+           "before": {"lowest_ratio": round(verdict.low, 4) if math.isfinite(verdict.low) else None,
+                      "ends_lowest": verdict.ends.get("lowest"),
+                      "glass_lowest": (verdict.ends.get("glass") or {}).get("lowest")},
+           "after": {"lowest_ratio": round(v2.low, 4) if math.isfinite(v2.low) else None,
+                     "ends_lowest": v2.ends.get("lowest"), "glass_lowest": (v2.ends.get("glass") or {}).get("lowest")}}
+    return rec, alt, q, v2

@@ -28,34 +28,33 @@ from collections.abc import Mapping
 from dataclasses import replace
 from typing import TYPE_CHECKING, Any
 
-import numpy as np
-
 from pvscan._typing import ProgressFn
 from pvscan.errors import RegistrationWarning
 from pvscan.io.layout.frames import FRAME_COLUMNS
 from pvscan.measure._memory import release_freed_memory
 from pvscan.measure.register._blocks import _settings
 from pvscan.measure.register._chunks import shared_chunks
-from pvscan.measure.register._pitch import _distinct, _pitches, _placement_of, _row_pitch, _screen_turned, _turned
+from pvscan.measure.register._pitch import (
+    _distinct,
+    _judge,
+    _pitches,
+    _placement_of,
+    _resolve_pitch,
+    _row_pitch,
+    _sample_at,
+    _screen_turned,
+    _turned,
+)
 from pvscan.measure.register._place import (
     _centre,
-    _largest_gap,
     _no_move,
     _use_placement,
     apply_placement,
     placement_of,
 )
 from pvscan.measure.register._records import Registration, _moved_message, _num
-from pvscan.measure.register.ends import glass_decides, judge_ends, pitch_steps
 from pvscan.measure.register.estimate import estimate_shift
-from pvscan.measure.register.evidence import (
-    ModuleSample,
-    Placement,
-    _compose,
-    _inverse,
-    placement_quality,
-    sample_modules,
-)
+from pvscan.measure.register.evidence import Placement, _compose, _inverse
 from pvscan.measure.register.local import check_reach, refine_rows, refine_tables
 from pvscan.measure.register.search import refine_placement
 
@@ -65,19 +64,6 @@ if TYPE_CHECKING:  # pragma: no cover
 logger = logging.getLogger(__name__)
 
 __all__ = ["register_layout", "apply_placement", "placement_of", "align_layout"]
-
-
-def _sample_at(orthos: Any, modules: gpd.GeoDataFrame, placement: Placement | None, cfg: Mapping[str, Any],
-               reduce: int = 1) -> ModuleSample:
-    moved = apply_placement(modules, placement) if placement is not None else modules
-    return sample_modules(orthos, moved, n=int(cfg["evidence_modules"]), margin_m=float(cfg["evidence_margin_m"]),
-                          reduce=reduce, seed=0)
-
-
-def _judge(sample: ModuleSample, placement: Placement, cfg: Mapping[str, Any], sun: tuple[float, ...] | None,
-           expected_c: float | None = None) -> dict[str, Any]:
-    q = placement_quality(sample, placement, cfg, sun=sun, expected_c=expected_c)
-    return {k: (round(float(v), 4) if isinstance(v, float) and math.isfinite(v) else v) for k, v in q.items()}
 
 
 def register_layout(orthos: Any, modules: gpd.GeoDataFrame, settings: Mapping[str, Any] | None = None, *,
@@ -283,126 +269,6 @@ def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], su
     if reg.status == "ok" and forced_shift is None:
         check_reach(reg, cfg)
     return reg
-
-
-def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cfg: Mapping[str, Any], ident: Placement,
-                   sun: tuple[float, ...] | None, expected_c: float | None,
-                   correlation: tuple[Placement | None, float] = (None, 0.0)) -> None:
-    """The one-pitch ambiguity of rows, decided at full resolution on module evidence.
-
-    Rows of modules are periodic: the placement used and the same placement one module
-    pitch along or across the table rows put footprints on modules everywhere but at the
-    table ends. Each such alternative is judged on its own sample (footprints read where it
-    puts them); an alternative whose evidence is below ``pitch_move_ratio`` times the
-    placement's replaces it (up to ``pitch_max_steps`` times). ``reg.evidence["pitch"]``
-    records the lowest ratio evidence(alternative) / evidence(used), ``decisive`` when it
-    exceeds ``1 + pitch_min_margin``, and ``ends``: the table ends alone
-    (:func:`pvscan.measure.register.ends.judge_ends`). Either one indecisive leaves the
-    placement in use but fails the ``registration`` validity check (a finding may sit on
-    the neighbouring module), unless the table ends vote clearly for it
-    (``ends_confirm_vote``) or the block correlation does: its own placement (``correlation``:
-    placement, confidence), confident (``pitch_corr_confidence``), moves no footprint more
-    than ``pitch_corr_agree_m`` from the one used. A placement decided on module evidence is
-    flagged all the same when that confident correlation sits one module pitch from it
-    (within ``pitch_corr_against_m``) and the table ends do not confirm it."""
-    base = reg.placement if (reg.applied and reg.placement is not None) else ident
-    dirs, steps = pitch_steps(modules)
-    if not steps:
-        return
-    # the table corrections of a placement rescued table by table stay: without them its
-    # footprints straddle the module edges and every alternative looks almost as good
-    cur = base
-    q_cur = _judge(_sample_at(orthos, modules, cur, cfg), ident, cfg, sun, expected_c)
-    moved_by = np.zeros(2)
-    rounds = int(cfg["pitch_max_steps"])
-    alts: list[tuple[np.ndarray, dict]] = []
-    for _ in range(rounds + 1):
-        alts = []
-        for v in steps:
-            p = replace(cur, tx=cur.tx + float(v[0]), ty=cur.ty + float(v[1]))
-            alts.append((v, _judge(_sample_at(orthos, modules, p, cfg), ident, cfg, sun, expected_c)))
-        move_below = float(cfg["pitch_move_ratio"]) * _num(q_cur["evidence"])
-        better = [(v, q) for v, q in alts if q["ok"] and _num(q["evidence"]) < move_below]
-        if not better or len(reg.evidence.get("pitch_moves", [])) >= rounds:
-            break
-        v, q = min(better, key=lambda t: _num(t[1]["evidence"]))
-        reg.evidence.setdefault("pitch_moves", []).append([round(float(v[0]), 4), round(float(v[1]), 4)])
-        cur = replace(cur, tx=cur.tx + float(v[0]), ty=cur.ty + float(v[1]))
-        moved_by += v
-        q_cur = q
-    e_cur = _num(q_cur["evidence"])
-    ratios = [_num(q["evidence"]) / e_cur for _, q in alts if math.isfinite(_num(q["evidence"]))] if (
-        math.isfinite(e_cur) and e_cur > 0) else []
-    low = min(ratios) if ratios else float("inf")
-    margin = float(cfg["pitch_min_margin"])
-    decisive = low > 1.0 + margin
-    ends = judge_ends(orthos, modules, apply_placement(modules, cur), cfg, sun)
-    reg.evidence["pitch"] = {"lowest_ratio": round(low, 4) if math.isfinite(low) else None,
-                             "limit": round(1.0 + margin, 4), "decisive": bool(decisive),
-                             "moved_m": [round(float(moved_by[0]), 4), round(float(moved_by[1]), 4)], "ends": ends}
-    if np.hypot(*moved_by) > 0:
-        _use_placement(reg, cur)
-        reg.evidence["chosen"] = q_cur
-        reg.evidence["used"] = "pitch"
-        reg.message += (f"; moved by ({moved_by[0]:+.3f}, {moved_by[1]:+.3f}) m, whole module pitches along or "
-                        f"across the rows, where the table ends fit better (evidence {e_cur:.3f})")
-    # the table ends alone clearly for the placement (well above any vote of one a pitch off)
-    confirmed = ends.get("lowest") is not None and ends["lowest"] >= float(cfg["ends_confirm_vote"])
-    reg.evidence["pitch"]["ends_confirm"] = bool(confirmed and not decisive)
-    # neither alone decisive, but both lean the same way: the placement fits the modules better
-    # than every placement one module pitch away, and no table end prefers one of those
-    e_low = ends.get("lowest")
-    both = (not decisive and not confirmed and math.isfinite(low) and low >= float(cfg["pitch_support_ratio"])
-            and e_low is not None and e_low >= float(cfg["ends_support_vote"]))
-    reg.evidence["pitch"]["both_lean"] = bool(both)
-    # ... or each direction's alternatives fit the modules worse or leave glass beyond a sunlit end
-    by_glass = not (decisive or confirmed or both) and glass_decides(
-        ends.get("glass") or {}, dirs, [_num(q["evidence"]) / e_cur for _, q in alts] if e_cur > 0 else [], cfg)
-    reg.evidence["pitch"]["glass_ends"] = bool(by_glass)
-    corr_p, corr_conf = correlation
-    gap = _largest_gap(cur, corr_p, modules.total_bounds) if corr_p is not None else float("nan")
-    by_corr = (math.isfinite(gap) and gap <= float(cfg["pitch_corr_agree_m"])
-               and corr_conf >= float(cfg["pitch_corr_confidence"]))
-    # the correlation one module pitch from the placement: the module evidence alone would
-    # move the layout by a whole pitch against it
-    gaps_pitch = [_largest_gap(replace(cur, tx=cur.tx + float(v[0]), ty=cur.ty + float(v[1])), corr_p,
-                               modules.total_bounds) for v in steps] if corr_p is not None else []
-    gap_pitch = min(gaps_pitch) if gaps_pitch else float("nan")
-    against = (math.isfinite(gap_pitch) and gap_pitch <= float(cfg["pitch_corr_against_m"])
-               and corr_conf >= float(cfg["pitch_corr_confidence"]))
-    reg.evidence["pitch"]["correlation"] = {"confidence": round(corr_conf, 3),
-                                            "gap_m": round(gap, 4) if math.isfinite(gap) else None,
-                                            "pitch_gap_m": round(gap_pitch, 4) if math.isfinite(gap_pitch) else None,
-                                            "against": bool(against),
-                                            "confirms": bool(by_corr and not decisive and not confirmed
-                                                                        and ends["decisive"])}
-    if not decisive and not confirmed and by_corr and ends["decisive"]:
-        reg.message += (f"; a placement one module pitch away fits almost as well on the modules (evidence ratio "
-                        f"{low:.2f}), but the block correlation (confidence {corr_conf:.2f}, table outlines and "
-                        f"ends) puts the layout within {gap:.3f} m of it")
-    elif against and not confirmed:
-        reg.status = "ambiguous"
-        reg.message += (f"; the block correlation (confidence {corr_conf:.2f}) puts the layout one module pitch "
-                        f"from this placement (within {gap_pitch:.3f} m) and the table ends do not confirm it "
-                        f"(median vote {_num(ends.get('lowest')):.2f}, {float(cfg['ends_confirm_vote']):g} needed): "
-                        "findings may sit on the neighbouring module")
-    elif both:
-        reg.message += (f"; a placement one module pitch away fits almost as well on the modules (evidence ratio "
-                        f"{low:.2f}), but every one fits worse and no table end prefers it (lowest median vote "
-                        f"{e_low:.2f}, at least {float(cfg['ends_support_vote']):g})")
-    elif by_glass:
-        reg.message += (f"; a placement one module pitch away fits almost as well on the modules (evidence ratio "
-                        f"{low:.2f}), but only this one has glass in the end modules of the lines and none beyond "
-                        f"their sunlit ends (lowest median glass vote {_num(ends['glass'].get('lowest')):.2f})")
-    elif not decisive and not confirmed:
-        reg.status = "ambiguous"
-        reg.message += (f"; a placement one module pitch away fits almost as well (evidence ratio {low:.2f}, more "
-                        f"than {1.0 + margin:.2f} needed): findings may sit on the neighbouring module")
-    elif not ends["decisive"]:
-        reg.status = "ambiguous"
-        reg.message += (f"; the table ends prefer a placement one module pitch away (median vote "
-                        f"{ends['lowest']:.2f}, more than {ends['limit']:g} needed): findings may sit on the "
-                        "neighbouring module")
 
 
 def _rescue_locally(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cfg: Mapping[str, Any], ident: Placement,
