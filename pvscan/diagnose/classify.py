@@ -51,6 +51,7 @@ from pvscan.diagnose.patterns import (
     pattern_open_string,
     pattern_pid,
     pattern_soiling,
+    walk_along_row,
 )
 from pvscan.diagnose.patterns.pid import (
     excess_z,
@@ -118,8 +119,13 @@ def _stage(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module_s
     om = hits[0]
     reliable = not (np.isfinite(sig_o) and F.sig_mod > 0 and sig_o > max_other_ratio * F.sig_mod)
     if reliable:
+        # the raise over modules outside the string counts from where the module's own row stands
+        # against them on both sides of it (a seam or a shadow over the other row offsets that
+        # reference for the whole stretch; a shadow edge crossing the row leaves one side level)
+        off = _other_offset_both_sides(F, d_other, healthy & F.ok, int(cfg["open_other_side_modules"]),
+                                       np.flatnonzero(om.hit))
         with np.errstate(invalid="ignore"):
-            om.hit &= d_other >= float(cfg["open_other_share"]) * float(cfg["module_z"]) * F.sig_mod
+            om.hit &= d_other - off >= float(cfg["open_other_share"]) * float(cfg["module_z"]) * F.sig_mod
     F.extra["other_reference_reliable"] = reliable
     rsub_o = F.Rsub + (F.ref - ref_o)[:, None]
     # the cell pattern against modules outside the string too: a string-long pattern (PID)
@@ -138,6 +144,33 @@ def _stage(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module_s
         in_run[run] = True
     F.extra.update(open_runs=runs, in_run=in_run)
     return F, hits
+
+
+def _other_offset_both_sides(F: Features, d_other: np.ndarray, healthy: np.ndarray, k: int,
+                             which: np.ndarray) -> np.ndarray:
+    """How far below the reference outside its string a module's own row stands on both sides [K].
+
+    For each module of ``which``: the median raise over the reference outside the string
+    (``d_other``) of up to ``k`` healthy modules along its table row on each side, and of the
+    two sides the higher, when both sides have one and it is below zero; else 0 (a module at a
+    row's end, or a row level with or above the other reference, is judged as before). A
+    reference outside the string taken from a row under a mosaic seam, or out of a cloud
+    shadow the module's row is in, stands above the whole stretch of the row; the edge of a
+    shadow over the row (which biases the row reference) leaves one side of it level.
+    """
+    off = np.zeros(F.n)
+    along = F.extra.get("along_row")
+    if along is None or k <= 0:
+        return off
+    for i in which.tolist():
+        sides = []
+        for start in {int(j) for j in along[i] if j >= 0}:
+            line = [j for j in walk_along_row(along, start, {int(i)}, k) if healthy[j] and np.isfinite(d_other[j])]
+            if line:
+                sides.append(float(np.median(d_other[line])))
+        if len(sides) == 2:
+            off[i] = min(0.0, max(sides))
+    return off
 
 
 def classify(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module_spec: Any,

@@ -26,7 +26,7 @@ from numpy.typing import ArrayLike
 from pvscan.diagnose.features import Features, Hits, confidence, fit_score, quality
 from pvscan.robust import iqr, nanmin
 
-__all__ = ["open_module_floor", "pattern_open_module", "pattern_open_string"]
+__all__ = ["open_module_floor", "pattern_open_module", "pattern_open_string", "walk_along_row"]
 
 
 def open_module_floor(rise: ArrayLike, sigma: float, z_min: float, prior: float,
@@ -458,15 +458,24 @@ def _raise_carries_on(F: Features, run: np.ndarray) -> bool:
     for start in {int(j) for i in run for j in along[i] if j >= 0 and int(j) not in members}:
         # walk up to three modules along the row away from the run; compare their mean
         # offset over the other row with the run's (one module alone is too noisy)
-        seen, cur = set(members), start
-        line: list[int] = []
-        while cur >= 0 and len(line) < 3 and cur not in seen:
-            seen.add(cur)
-            line.append(cur)
-            nxt = [int(j) for j in along[cur] if j >= 0 and int(j) not in seen]
-            cur = nxt[0] if nxt else -1
+        line = walk_along_row(along, start, members, 3)
         diffs = [t[b] - t[cross[b]] for b in line if cross[b] >= 0]
         diffs = [x for x in diffs if np.isfinite(x)]
         if len(diffs) >= 2 and float(np.mean(diffs)) >= 0.6 * d_run:
             return True
     return False
+
+
+def walk_along_row(along: np.ndarray, start: int, exclude: set[int], k: int) -> list[int]:
+    """Up to ``k`` modules along a table row from ``start`` away from the modules ``exclude``.
+
+    ``along``: (n, 4) indices of the modules touching each one in its own table row (-1 none).
+    """
+    seen, cur = set(exclude), int(start)
+    line: list[int] = []
+    while cur >= 0 and len(line) < k and cur not in seen:
+        seen.add(cur)
+        line.append(cur)
+        nxt = [int(j) for j in along[cur] if j >= 0 and int(j) not in seen]
+        cur = nxt[0] if nxt else -1
+    return line
