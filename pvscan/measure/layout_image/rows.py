@@ -18,8 +18,8 @@ __all__: list[str] = []
 def _row_lines(s: np.ndarray, w: np.ndarray, t: np.ndarray, n: int, m: int, size_s: float, size_w: float,
                gap_s: float, gap_w: float, gsd: float, shift_m: float, weakest: bool = False) -> float:
     """Median (``weakest``: smallest) contrast of the lines between a table's module rows [K]:
-    the glass half a row pitch either side (each side's mean over a pixel; the cooler of the
-    two: a slope is not a line) against the coolest bin within ``shift_m`` of each line;
+    the glass half a row pitch either side (an empty bin there taken from its neighbours; the
+    cooler of the two: a slope is not a line) against the coolest bin within ``shift_m`` of each line;
     NaN for a table of one row. ``s, w`` are the samples' coordinates from the lattice's
     origin [m]."""
     if m < 2:
@@ -42,10 +42,15 @@ def _row_lines(s: np.ndarray, w: np.ndarray, t: np.ndarray, n: int, m: int, size
         if j1 < j0 or jl < 0 or jh >= nb:
             continue
         line = np.nanmin(prof[j0:j1 + 1]) if np.isfinite(prof[j0:j1 + 1]).any() else math.nan
-        # each side over a pixel (three bins): a table along the pixel grid leaves every
-        # other bin empty, and one empty bin must not leave the other side alone to decide
-        sides = [float(np.nanmean(v)) for v in (prof[max(0, j - 1):j + 2] for j in (jl, jh))
-                 if np.isfinite(v).any()]
+        # each side's bin, or where it is empty the mean of its two neighbours (a table along
+        # the pixel grid leaves every other bin empty, and one empty bin must not leave the
+        # other side alone to decide)
+        sides = []
+        for j in (jl, jh):
+            v = prof[j] if np.isfinite(prof[j]) else (
+                np.nanmean(prof[max(0, j - 1):j + 2]) if np.isfinite(prof[max(0, j - 1):j + 2]).any() else math.nan)
+            if np.isfinite(v):
+                sides.append(float(v))
         side = min(sides) if sides else math.nan
         out.append(side - line)
     v = np.array(out, float)
