@@ -259,7 +259,9 @@ def _pitch_verdict(orthos: Any, modules: gpd.GeoDataFrame, cur: Placement, q_cur
     decisive = low > 1.0 + float(cfg["pitch_min_margin"])
     ends = judge_ends(orthos, modules, apply_placement(modules, cur), cfg, sun)
     # the table ends alone clearly for the placement (well above any vote of one a pitch off)
-    confirmed = ends.get("lowest") is not None and ends["lowest"] >= float(cfg["ends_confirm_vote"])
+    # ... unless a placement one module pitch away fits the modules clearly better
+    confirmed = (ends.get("lowest") is not None and ends["lowest"] >= float(cfg["ends_confirm_vote"])
+                 and not low < float(cfg["ends_confirm_min_ratio"]))
     # neither alone decisive, but both lean the same way: the placement fits the modules better
     # than every placement one module pitch away, and no table end prefers one of those
     e_low = ends.get("lowest")
@@ -299,7 +301,8 @@ def _resolve_pitch(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cf
     (:func:`pvscan.measure.register.ends.judge_ends`). Either one indecisive leaves the
     placement in use but fails the ``registration`` validity check (a finding may sit on
     the neighbouring module), unless the table ends vote clearly for it
-    (``ends_confirm_vote``) or the block correlation does: its own placement (``correlation``:
+    (``ends_confirm_vote``; not when an alternative's evidence is below ``ends_confirm_min_ratio``
+    times the placement's) or the block correlation does: its own placement (``correlation``:
     placement, confidence), confident (``pitch_corr_confidence``), moves no footprint more
     than ``pitch_corr_agree_m`` from the one used. A placement decided on module evidence is
     flagged all the same when that confident correlation sits one module pitch from it
