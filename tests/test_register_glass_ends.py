@@ -24,9 +24,9 @@ from dataclasses import replace
 
 import geopandas as gpd
 import numpy as np
-import pytest
 import shapely
 from register_flights import (
+    FEWER_DEFECTS_OK,
     RIGHT_M,
     assert_pitch_rule_right,
     flight_seed,
@@ -46,7 +46,7 @@ from pvscan.measure.register.evidence import sun_vector
 #: draw for any other PVSCAN_TEST_SEED (kept non-negative).
 FLIGHT_SEED = flight_seed(1020000)
 
-pytestmark = pytest.mark.filterwarnings("ignore:defects\\.[a-z_]+. no free module left:pvscan.errors.PvscanWarning")
+pytestmark = FEWER_DEFECTS_OK
 
 plant = plant_fixture(1020000, "tracker")
 

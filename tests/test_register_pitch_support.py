@@ -17,8 +17,8 @@ from __future__ import annotations
 
 from dataclasses import replace
 
-import pytest
 from register_flights import (
+    FEWER_DEFECTS_OK,
     RIGHT_M,
     assert_pitch_rule_right,
     flight_seed,
@@ -36,7 +36,7 @@ from pvscan.measure.register._pitch import _pitches
 FLIGHT_SEED = flight_seed(1040000)
 
 # a small plant: the simulator may place fewer defects than the scenario asks, and says so
-pytestmark = pytest.mark.filterwarnings("ignore:defects\\.[a-z_]+. no free module left:pvscan.errors.PvscanWarning")
+pytestmark = FEWER_DEFECTS_OK
 
 
 plant = plant_fixture(1040000, "small_site")

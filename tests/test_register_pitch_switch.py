@@ -23,8 +23,8 @@ from __future__ import annotations
 from dataclasses import replace
 
 import numpy as np
-import pytest
 from register_flights import (
+    FEWER_DEFECTS_OK,
     RIGHT_M,
     flight_seed,
     median_error_m,
@@ -47,7 +47,7 @@ FLIGHT_SEED = flight_seed(1925000)
 #: Largest move of a right placement by the one-pitch decision [m] (issue 14, see above).
 NO_MOVE_M = 0.03
 
-pytestmark = pytest.mark.filterwarnings("ignore:defects\\.[a-z_]+. no free module left:pvscan.errors.PvscanWarning")
+pytestmark = FEWER_DEFECTS_OK
 
 plant = plant_fixture(1925000, "tracker_hot_ground_noon")
 
