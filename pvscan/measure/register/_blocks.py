@@ -275,8 +275,8 @@ def _prepare_block(orthos: Any, ti: int, tile: Any, win: Window, mod_geoms: Any,
         gs = max(float(cfg["gradient_sigma_m"]) / work_gsd, 0.5)
         zf = np.where(valid, z, float(np.median(z[valid])))
         z = ndimage.gaussian_gradient_magnitude(zf, gs, mode="nearest")
-        near_gap = ndimage.binary_dilation(~valid, iterations=int(math.ceil(3 * gs)) + 1)
-        ok = ~near_gap
+        # pixels near nodata (none without nodata: the dilation of nothing is nothing)
+        ok = valid.copy() if valid.all() else ~ndimage.binary_dilation(~valid, iterations=int(math.ceil(3 * gs)) + 1)
         if not ok.any():
             return None, "no valid pixels away from nodata"
         z = np.where(ok, z - float(z[ok].mean()), 0.0)

@@ -1,11 +1,14 @@
-"""One chunk cache for every module sample of a registration (see :func:`shared_chunks`)."""
+"""Where the module samples of a registration are read: one chunk cache for all of them
+(:func:`shared_chunks`) and their windows (:func:`window_corners`)."""
 from __future__ import annotations
 
 import contextlib
 from collections.abc import Iterator
 from typing import Any
 
-__all__ = ["shared_chunks"]
+import numpy as np
+
+__all__ = ["shared_chunks", "window_corners"]
 
 
 #: Chunks (256 x 256 px, float32: 256 KiB each) kept by the chunk cache of one registration:
@@ -41,3 +44,25 @@ def shared_chunks(orthos: Any) -> Iterator[Any]:
         return
     with cache(max_chunks=_SHARED_CHUNKS) as read:
         yield _ChunkedOrthos(orthos, read)
+
+
+def window_corners(tiles: list[Any], x: np.ndarray, y: np.ndarray,
+                   side_px: int) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Tile (the first whose bounds hold the point, else the first tile), first column and
+    first row [px] of the square window of ``side_px`` centred on each point ``(x, y)`` [m]
+    (the column and row rounded half to even, as Python's ``round``)."""
+    ti = np.zeros(len(x), np.int64)
+    todo = np.ones(len(x), bool)
+    for j, t in enumerate(tiles):
+        b = t.bounds
+        hit = todo & (b.left <= x) & (x <= b.right) & (b.bottom <= y) & (y <= b.top)
+        ti[hit] = j
+        todo &= ~hit
+    c0 = np.zeros(len(x), np.int64)
+    r0 = np.zeros(len(x), np.int64)
+    for j in np.unique(ti):
+        sel = ti == j
+        col, row = ~tiles[j].transform @ (x[sel], y[sel])
+        c0[sel] = np.round(col - side_px / 2.0)
+        r0[sel] = np.round(row - side_px / 2.0)
+    return ti, c0, r0

@@ -255,18 +255,24 @@ def _sample_cells(read: Any, tiles: list[Any], gx: np.ndarray, gy: np.ndarray, s
     from scipy.ndimage import map_coordinates
 
     m = len(gx)
-    px = np.stack([gx + k * stx[:, None, None] for k in ks], axis=1).reshape(m, -1)
-    py = np.stack([gy + k * sty[:, None, None] for k in ks], axis=1).reshape(m, -1)
+    px, py = np.empty((m, len(ks), *gx.shape[1:])), np.empty((m, len(ks), *gy.shape[1:]))
+    for n, k in enumerate(ks):
+        np.add(gx, k * stx[:, None, None], out=px[:, n])
+        np.add(gy, k * sty[:, None, None], out=py[:, n])
+    px, py = px.reshape(m, -1), py.reshape(m, -1)
     ti = np.zeros(m, np.int64)
     if len(tiles) > 1:
         for i in range(m):
             mx, my = float(np.mean(px[i])), float(np.mean(py[i]))
             ti[i] = next((j for j, t in enumerate(tiles)
                           if t.bounds.left <= mx <= t.bounds.right and t.bounds.bottom <= my <= t.bounds.top), 0)
-    cols, rows = np.empty_like(px), np.empty_like(py)
-    for j in np.unique(ti):
-        sel = ti == j
-        cols[sel], rows[sel] = ~tiles[j].transform * (px[sel], py[sel])
+    if m == 0 or (ti == ti[0]).all():  # one tile: the same products without the copies
+        cols, rows = ~tiles[int(ti[0]) if m else 0].transform @ (px, py)
+    else:
+        cols, rows = np.empty_like(px), np.empty_like(py)
+        for j in np.unique(ti):
+            sel = ti == j
+            cols[sel], rows[sel] = ~tiles[j].transform @ (px[sel], py[sel])
     c0 = np.floor(cols.min(axis=1)).astype(np.int64) - 2
     r0 = np.floor(rows.min(axis=1)).astype(np.int64) - 2
     c1 = np.ceil(cols.max(axis=1)).astype(np.int64) + 3

@@ -45,7 +45,9 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 from rasterio.windows import Window
 
+from pvscan.measure.register._chunks import window_corners
 from pvscan.measure.register._glass import _glass_mode, _glass_modes, neighbourhoods
+from pvscan.robust import numpy_nanmedian_rows
 
 if TYPE_CHECKING:  # pragma: no cover
     import geopandas as gpd
@@ -179,8 +181,14 @@ class ModuleSample:
         # values minus each window's median (float32), so the spread sums stay exact
         k = len(self.index)
         if self.centred is None and k:
-            with _quiet():
-                ref = np.nanmedian(self.values.reshape(k, -1), axis=1)
+            flat = self.values.reshape(k, -1)
+            if flat.dtype in (np.float32, np.float64):
+                # numpy.nanmedian's numbers by one sort, 1,024 windows at a time (the sorted
+                # copy stays a few MB)
+                ref = np.concatenate([numpy_nanmedian_rows(flat[lo:lo + 1024]) for lo in range(0, k, 1024)])
+            else:
+                with _quiet():
+                    ref = np.nanmedian(flat, axis=1)
             ref = np.where(np.isfinite(ref), ref, 0.0).astype(np.float32)
             self.values -= ref[:, None, None]
             self.centred = self.values
@@ -255,29 +263,22 @@ def sample_modules(orthos: Any, modules: gpd.GeoDataFrame, *, n: int, margin_m: 
     vals = np.full((len(idx_all), side_px // reduce, side_px // reduce), np.nan, np.float32)
     xs0 = np.zeros(len(idx_all))
     ys0 = np.zeros(len(idx_all))
+    ti, c0, r0 = window_corners(tiles, cx[idx_all], cy[idx_all], side_px)
+    for j in np.unique(ti):
+        sel = ti == j
+        # the first pixel's centre (the same products as for one point at a time)
+        xs0[sel], ys0[sel] = tiles[j].transform @ (c0[sel] + reduce / 2.0, r0[sel] + reduce / 2.0)
     # the windows of neighbouring modules share blocks of the ortho: read through a chunk
     # cache where the ortho set has one (the same pixels as one read per window)
     cache = getattr(orthos, "window_cache", None)
     with cache() if cache is not None else contextlib.nullcontext(orthos.read) as read:
-        for k, i in enumerate(idx_all):
-            ti = 0
-            for j, t in enumerate(tiles):
-                b = t.bounds
-                if b.left <= cx[i] <= b.right and b.bottom <= cy[i] <= b.top:
-                    ti = j
-                    break
-            tr = tiles[ti].transform
-            col, row = ~tr * (cx[i], cy[i])
-            c0 = int(round(col - side_px / 2.0))
-            r0 = int(round(row - side_px / 2.0))
-            a = read(ti, Window(c0, r0, side_px, side_px)).astype(np.float32)
+        for k, (j, wc0, wr0) in enumerate(zip(ti.tolist(), c0.tolist(), r0.tolist())):
+            a = read(j, Window(wc0, wr0, side_px, side_px)).astype(np.float32, copy=False)
             if reduce > 1:
                 a = a.reshape(side_px // reduce, reduce, side_px // reduce, reduce)
                 with np.errstate(invalid="ignore"), _quiet():
                     a = np.nanmean(a, axis=(1, 3))
             vals[k] = a
-            px, py = tr * (c0 + reduce / 2.0, r0 + reduce / 2.0)
-            xs0[k], ys0[k] = px, py
     table = modules["table_id"].to_numpy(dtype=object)[idx_all] if "table_id" in modules.columns else np.zeros(
         len(idx_all), object)
     return ModuleSample(index=idx_all, values=vals, x0=xs0, y0=ys0, gx=float(t0.a) * reduce,
