@@ -299,3 +299,44 @@ def test_a_tracker_row_merged_with_its_shadow_is_fitted_on_the_row(tmp_path):
         north = max(fit.origin[1], fit.origin[1] + fit.depth_m * fit.across[1])
         assert abs(north - (origin[1] + depth)) <= 2 * gsd, (north, origin[1] + depth)
         assert abs(fit.origin[0] - origin[0]) <= gsd
+
+
+def test_the_ground_between_two_tables_is_no_module_of_a_longer_comb():
+    # two tables of a row about 1 m apart (common practice) with the ground between them off the
+    # glass level: framed by the two end frames, the ground looks like one module of a comb of
+    # the other orientation's longer pitch (landscape over portrait tables; plain geometry: one
+    # pitch of 2.11 m spans an end module, the gap and the next end module), and its "glass"
+    # against those frames shows the ground's contrast, many kelvin. A window over one table
+    # that takes in the gap and the next table's end (a candidate grown along its row): no
+    # module of the comb that comes back has its middle on that ground.
+    rng = np.random.default_rng(SEED + 6)
+    gsd = 0.05
+    long_pitch = LENGTH + GAP
+    for k in range(16):
+        cols, rows, mod_w, length, depth = _drawn_size(rng, (10, 16), (1, 3))
+        glass = rng.uniform(30, 45)
+        # ground off the glass by more than the glass band ([layout_detect] level_tol_k = 3 K)
+        ground = glass + rng.choice([-1, 1]) * rng.uniform(5.0, 15.0)
+        dip = rng.uniform(1.5, 4.0)
+        between = rng.uniform(0.9, 1.1)
+        before = rng.uniform(1.5, 2.5)            # the window this far before the gap's middle [m]
+        after = rng.uniform(0.6, 0.9) * length     # and this far after it
+        n = int((before + after + 1.0) * (depth + 3.0) / gsd ** 2 * 3)
+        s = rng.uniform(-before - 0.5, after + 0.5, n)  # from the gap's middle
+        w = rng.uniform(-1.5, depth + 1.5, n)
+        left = s < -0.5 * between
+        t = np.empty(n)
+        t[left] = _table(rng, s[left] + 0.5 * between + length, w[left], cols, rows, mod_w, glass, ground, dip)
+        t[~left] = _table(rng, s[~left] - 0.5 * between, w[~left], cols, rows, mod_w, glass, ground, dip)
+        c_w = 0.5 * depth + rng.uniform(-0.1, 0.1)
+        r = comb_extent(s, w - c_w, t, (-before, after), (-0.5 * depth - 1.0, 0.5 * depth + 1.0),
+                        (-0.15 * depth, 0.15 * depth), long_pitch, gsd, 0.4, 0.4, 0.15, (mod_w + GAP, GAP), 3.0,
+                        ground)
+        if r is None:
+            continue
+        s_lo, s_hi = r[0], r[1]
+        # the modules of the run: none has its middle on the ground between the tables (the
+        # middle half of a module whose middle is on the gap lies mostly on the ground; two
+        # pixels of slack where it is half on the ground, half on a table)
+        mids = s_lo + long_pitch * (np.arange(int(round((s_hi - s_lo) / long_pitch))) + 0.5)
+        assert not (np.abs(mids) < 0.5 * between - 2 * gsd).any(), (k, s_lo, s_hi, between)

@@ -66,10 +66,17 @@ def test_open_string_is_not_levelled(rng):
 
 def test_stretch_repeated_in_the_other_row_is_levelled(rng):
     # a reflection or a seam crossing both rows of a table over the same modules of one string
-    # (1.5 K, five module spreads): levelled as an artefact in every draw; exactly those modules in
-    # most (a module at a stretch's end 2.5 spreads off its level sits nearer the other one,
-    # so the ends are a rate: 58 of 66 exact on seeds 1-5, 100-159 and the demo's; binomial,
-    # n = 20, p = 0.88: P(X <= 13) = 0.9 %), never more than one module off at either end
+    # (1.5 K, five module spreads): levelled as an artefact in both rows, within one module of
+    # the stretch at either end, on nearly every draw; exactly those modules in most (a module
+    # at a stretch's end 2.5 spreads off its level sits nearer the other one, so the ends are a
+    # rate: 58 of 66 exact on seeds 1-5, 100-159 and the demo's; binomial, n = 20, p = 0.88:
+    # P(X <= 13) = 0.9 %). A row is not levelled when one of its sides draws more than half the
+    # offset toward the stretch (two modules left of column 3: their mean carries 0.21 K of the
+    # 0.3 K spread, and each side must step by half the offset, [seams]); the other row is then
+    # levelled alone, and now and then a row's fit ends two modules off. So a draw counts when
+    # both rows are levelled within one module at either end: 2396 of 2400 draws on seeds
+    # 1000-1059 and 2000-2059 (20 tables each; 2 one row only, 2 a row two or three modules
+    # off at an end; seed 26 of the suite drew one row only)
     exact = levelled = 0
     for _ in range(20):
         m, t = _rows(rng)
@@ -77,18 +84,14 @@ def test_stretch_repeated_in_the_other_row_is_levelled(rng):
         t[a] -= 1.5
         t[b] -= 1.6
         out = seams.find_stretches(m, t)
-        if not out:
-            continue
         # as "rows", or, where the two rows' fits came out a module apart at an end, as "cold"
         # (colder than its own string either side): an artefact either way
         assert {s.reason for s in out} <= {"rows", "cold"}
-        levelled += 1
-        got = set(np.concatenate([s.modules for s in out]).tolist())
-        want = set(np.concatenate([a, b]).tolist())
-        exact += got == want
-        assert len(got ^ want) <= 4 and (set(_sel(m, 1, 4, 7)) | set(_sel(m, 2, 4, 7))) <= got
-    # levelled at all on at least 17 of 20 (116 of 120 on seeds 1000-1059 and 2000-2059;
-    # binomial, p = 0.97: P(X <= 16) = 0.3 %)
+        got = set(np.concatenate([s.modules for s in out]).tolist()) if out else set()
+        levelled += all(set(_sel(m, row, 4, 7).tolist()) <= got & set(_sel(m, row, 1, 24).tolist())
+                        <= set(_sel(m, row, 2, 9).tolist()) for row in (1, 2))
+        exact += got == set(np.concatenate([a, b]).tolist())
+    # at least 17 of 20 (binomial, p = 0.97, below the 2396 of 2400 measured: P(X <= 16) = 0.3 %)
     assert levelled >= 17
     assert exact >= 14
 
@@ -139,15 +142,19 @@ def test_level_stats_shifts_every_temperature_of_the_stretch(rng):
 
 
 def test_short_stretch_must_stand_out_of_the_spread(rng):
-    # three modules 1 K up across a string boundary: clear against a 0.1 K module-to-module
+    # three modules 1 K up across a string boundary: clear against a 0.05 K module-to-module
     # spread (levelled on every draw), but a chance excess against 0.6 K (2.4 standard errors
     # of the difference of the means, below seam_z). At 0.6 K healthy rows themselves make a
     # stretch now and then (33 falsely levelled modules in 480 healthy rows of seeds
     # 1000-1059, about 3 % of two-row tables), so that case is a rate over 20 random tables:
-    # levelled on at most 6 (binomial, n = 20, p = 0.1: P(X >= 7) = 0.24 %)
+    # levelled on at most 6 (binomial, n = 20, p = 0.1: P(X >= 7) = 0.24 %).
+    # The clear case is drawn at 0.05 K, not 0.1 K: the step is measured as the median of the
+    # three minus the row's (about 0.07 K of scatter at 0.1 K), and 1 K lies only 0.2 K, three
+    # of those, above [seams] min_step_k = 0.8 K: at 0.1 K it fell under the bar on 11 of
+    # 3000 tables (seed 12345; seed 24 of the suite drew one, 0.79 K), at 0.05 K on none
     clear = chance = 0
     for _ in range(20):
-        m, t = _rows(rng, spread=0.1)
+        m, t = _rows(rng, spread=0.05)
         t[_sel(m, 1, 12, 14)] += 1.0
         clear += bool(seams.find_stretches(m, t))
         m, t = _rows(rng, spread=0.6)

@@ -387,15 +387,21 @@ def _comb(x, y, t, centre, axis, across, length, depth, module, layout, settings
     # a comb of twice the module pitch runs over every other line of the shorter module, but
     # the glass between its lines is a line too (its row contrast is low) and its lines are
     # found one by one near the glass (their median contrast is low)
+    # (the line contrast is the median over the window's lines of the comb's phase; the row
+    # contrast is measured over the run's modules, and a run of one module has a single
+    # middle, which beyond a table's end may be ground or shadow at any temperature: its row
+    # contrast sets no bar for the other orientation)
+    def modules(orient: str, r: Any) -> int:
+        return int(round((r[1] - r[0]) / ((module.width_m if orient == "portrait" else module.length_m) + gap)))
+
     top_line = max(r[4] for r in found.values())
-    top_row = max(r[5] for r in found.values())
+    top_row = max(r[5] for r in ({o: r for o, r in found.items() if modules(o, r) >= 2} or found).values())
     best = None
     for orient, r in found.items():
         if len(found) > 1 and (r[5] < 0.5 * top_row or r[4] < 0.5 * top_line):
             continue
         mod_s = module.width_m if orient == "portrait" else module.length_m
-        n = int(round((r[1] - r[0]) / (mod_s + gap)))
-        key = (n * (mod_s + gap), r[4], orient == layout.orientation)
+        key = (modules(orient, r) * (mod_s + gap), r[4], orient == layout.orientation)
         if best is None or key > best[0]:
             best = (key, orient, r)
     if best is None:  # each wins on one contrast: the larger product

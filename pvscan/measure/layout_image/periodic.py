@@ -233,21 +233,27 @@ def comb_extent(s: np.ndarray, w: np.ndarray, t: np.ndarray, s_range: tuple[floa
                 mid = middle(j0, j1)
                 return abs(mid - glass_c) > glass_tol_k and abs(mid - ground_c) < abs(mid - glass_c)
 
-            if math.isfinite(glass_tol_k) and math.isfinite(ground_c) and math.isfinite(glass_c) and b - a >= 3:
-                # within the run too: a window longer than the table holds the next table of
-                # the row, whose first frame is about where this table's next line would be
-                j = centre
-                while j < b and not ground_between(j, j + 1):
-                    j += 1
-                b = j
-                j = centre
-                while j > a and not ground_between(j - 1, j):
-                    j -= 1
-                a = j
+            if math.isfinite(glass_tol_k) and math.isfinite(ground_c) and math.isfinite(glass_c):
+                if b - a >= 3:
+                    # within the run too: a window longer than the table holds the next table of
+                    # the row, whose first frame is about where this table's next line would be
+                    j = centre
+                    while j < b and not ground_between(j, j + 1):
+                        j += 1
+                    b = j
+                    j = centre
+                    while j > a and not ground_between(j - 1, j):
+                        j -= 1
+                    a = j
+                # at the ends, a short run too: framed by the end frames of two tables, the
+                # ground between them is one module of a comb of a longer pitch (the other
+                # orientation's), whose "glass" is the ground
                 while b - a >= 2 and ground_between(b - 1, b):
                     b -= 1
                 while b - a >= 2 and ground_between(a, a + 1):
                     a += 1
+                if b - a == 1 and ground_between(a, b):
+                    return None
             if b - a < 1:
                 return None
             # the lattice's phase from the lines between modules (symmetric dips), not from
