@@ -335,8 +335,9 @@ def test_the_ground_between_two_tables_is_no_module_of_a_longer_comb():
         if r is None:
             continue
         s_lo, s_hi = r[0], r[1]
-        # the modules of the run: none has its middle on the ground between the tables (the
-        # middle half of a module whose middle is on the gap lies mostly on the ground; two
-        # pixels of slack where it is half on the ground, half on a table)
+        # the modules of the run: none has its middle on the middle half of the ground between
+        # the tables (the middle half of such a module lies about three quarters on the ground;
+        # one whose middle is nearer a table's end is about half on each, which the comb may
+        # take either way)
         mids = s_lo + long_pitch * (np.arange(int(round((s_hi - s_lo) / long_pitch))) + 0.5)
-        assert not (np.abs(mids) < 0.5 * between - 2 * gsd).any(), (k, s_lo, s_hi, between)
+        assert not (np.abs(mids) < 0.25 * between).any(), (k, s_lo, s_hi, between)

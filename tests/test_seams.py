@@ -75,7 +75,7 @@ def test_stretch_repeated_in_the_other_row_is_levelled(rng):
     # 0.3 K spread, and each side must step by half the offset, [seams]); the other row is then
     # levelled alone, and now and then a row's fit ends two modules off. So a draw counts when
     # both rows are levelled within one module at either end: 2396 of 2400 draws on seeds
-    # 1000-1059 and 2000-2059 (20 tables each; 2 one row only, 2 a row two or three modules
+    # 1000-1059 and 2000-2059 (20 tables each; 1 one row only, 3 a row two or three modules
     # off at an end; seed 26 of the suite drew one row only)
     exact = levelled = 0
     for _ in range(20):
