@@ -53,6 +53,7 @@ from pvscan.measure.register._place import (
     placement_of,
 )
 from pvscan.measure.register._records import Registration, _moved_message, _num
+from pvscan.measure.register._turn import measure_rotation
 from pvscan.measure.register.estimate import estimate_shift
 from pvscan.measure.register.evidence import Placement, _compose, _inverse
 from pvscan.measure.register.local import check_reach, refine_rows, refine_tables
@@ -195,7 +196,13 @@ def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], su
                 alt = p0.moved(tx=p0.tx + float(v[0]), ty=p0.ty + float(v[1]))
                 if math.hypot(alt.tx, alt.ty) <= lim_m:
                     consider(alt)
-        # a layout turned on a long site: a proposal's rotation off by a degree puts the far
+        # a layout turned on a long site: the block correlation aliases and its rotation is
+        # wrong; the turn of the rows, measured from the ortho alone, and the blocks correlated
+        # again on the layout so turned give a start of the right turn and shift
+        if chosen is None:
+            for alt in _turned_proposals(orthos, modules, reg, cfg, centre, expected_apparent_c):
+                consider(alt)
+        # a proposal's rotation off by a degree puts the far
         # modules beyond the fit's reach; tried again from each proposal turned by steps, the
         # nearest turns first, until one puts the footprints on glass
         # (each fit costs seconds on a large site: the turned starts are screened cheaply first
@@ -269,6 +276,33 @@ def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], su
     if reg.status == "ok" and forced_shift is None:
         check_reach(reg, cfg)
     return reg
+
+
+def _turned_proposals(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cfg: Mapping[str, Any],
+                      centre: tuple[float, float], expected_c: float | None) -> list[Placement]:
+    """Starts at the turn of the ortho's rows (:func:`._turn.measure_rotation`): the block fit
+    of the layout turned by it (its shift and any further turn and scale composed after the
+    turn), then the layout as drawn turned by it; none when the turn cannot be measured.
+    ``reg.evidence["rotation_probe"]`` records the measurement and the starts made."""
+    if not cfg["rotation_probe"]:
+        return []
+    got = measure_rotation(orthos, modules, cfg)
+    if got is None:
+        return []
+    th = float(got["rotation_deg"])
+    rec: dict[str, Any] = {**got, "starts": 0}
+    reg.evidence["rotation_probe"] = rec
+    turn = Placement(cx=centre[0], cy=centre[1], theta_deg=th)
+    out = []
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", RegistrationWarning)
+        r = estimate_shift(orthos, apply_placement(modules, turn), cfg, expected_apparent_c=expected_c)
+    p = placement_of(r, centre)
+    if p is not None:
+        out.append(_compose(turn, p))
+    out.append(turn)
+    rec["starts"] = len(out)
+    return out
 
 
 def _rescue_locally(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cfg: Mapping[str, Any], ident: Placement,
