@@ -32,7 +32,10 @@ module. So, along every table row (modules ordered by ``table_col``):
    when it is colder than the modules either side and they and it belong to one string (a
    string's faults only warm its modules: an open string all of them, PID from its negative
    end; so a string cooler in its middle than at both sides is the image's doing, such as two
-   seams over a one-row table whose string opened).
+   seams over a one-row table whose string opened). A stretch over several strings is not
+   levelled (``spare_whole_string_runs``) when it holds one string's whole run of its row
+   standing above the stretch's other modules by more than the match tolerance: an open
+   string beside a reflection or seam that reached over the next string's modules.
 
 Stretches that run to the end of a row are left alone (which side would be the artefact is
 not known from the row). Every module, cell and substring statistic of a levelled module
@@ -258,10 +261,13 @@ def find_stretches(modules: pd.DataFrame, t_median: np.ndarray,
     found += _repeated_in_rows(rows, t - level, col, table, found, cfg, sigma)
     tol_abs, tol_rel = float(cfg["match_abs_k"]), float(cfg["match_rel"])
     in_string = bool(cfg["level_cold_in_string"])
+    spare_runs = bool(cfg["spare_whole_string_runs"])
+    row_of = dict(rows)
     out = []
     for j, (k, seg, off, sides) in enumerate(found):
         if sid is not None and len(set(sid[seg]) - {""}) > 1:  # modules without a string do not count
-            out.append(Stretch(seg, off, "strings"))
+            if not (spare_runs and _whole_string_run_stands_out(sid, seg, row_of[k], t, cfg)):
+                out.append(Stretch(seg, off, "strings"))
             continue
         cols = set(col[seg].tolist())
         for j2, (k2, seg2, off2, _s2) in enumerate(found):
@@ -504,6 +510,40 @@ def _warm_string_cut(mem: np.ndarray, cm: np.ndarray, tl: np.ndarray, sid: np.nd
     if np.isfinite(part).sum() < 1 or np.isfinite(others).sum() < 2:
         return False
     return bool(np.nanmedian(part) - np.nanmedian(others) >= min_step)
+
+
+def _whole_string_run_stands_out(sid: np.ndarray, seg: np.ndarray, row: np.ndarray, t: np.ndarray,
+                                 cfg: Mapping[str, Any]) -> bool:
+    """Whether a stretch over several strings holds one string's whole run of its row standing above the rest.
+
+    An open string warms every module of its string by about the same amount; a reflection or a
+    seam that also covers a neighbouring string's modules makes the closed stretch reach over both
+    strings, and levelling it as an artefact would erase the open string. True when the stretch
+    holds every module of one string in the row (``min_modules`` or more) and that run's median
+    excess over the rest of the row exceeds the excess of the stretch's other modules by more
+    than ``match_abs_k`` + ``match_rel`` x the larger of the two (the tolerance within which two
+    parts of one artefact agree). ``row``: the row's modules; ``t``: module medians [degC].
+    """
+    rest = np.setdiff1d(row, seg)
+    rest_t = t[rest][np.isfinite(t[rest])]
+    if rest_t.size == 0:
+        return False
+    base = float(np.median(rest_t))
+    in_seg = np.isin(row, seg)
+    tol_abs, tol_rel = float(cfg["match_abs_k"]), float(cfg["match_rel"])
+    for name in set(sid[seg].tolist()) - {""}:
+        run = row[sid[row] == name]
+        part = seg[sid[seg] == name]
+        others = seg[sid[seg] != name]
+        if len(part) < int(cfg["min_modules"]) or not in_seg[sid[row] == name].all() or not len(others):
+            continue
+        part_t, other_t = t[part][np.isfinite(t[part])], t[others][np.isfinite(t[others])]
+        if len(run) != len(part) or part_t.size == 0 or other_t.size == 0:
+            continue
+        excess, other = float(np.median(part_t)) - base, float(np.median(other_t)) - base
+        if excess - other > tol_abs + tol_rel * max(abs(excess), abs(other)):
+            return True
+    return False
 
 
 def _inside_one_string(sid: np.ndarray, seg: np.ndarray, sides: np.ndarray) -> bool:
