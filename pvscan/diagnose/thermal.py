@@ -294,7 +294,7 @@ def reference_neighbours(modules: pd.DataFrame, healthy_mask: ArrayLike, setting
 
 
 def _median_of(values: np.ndarray, nb: np.ndarray, xy: np.ndarray | None = None,
-               max_shift_m: float = 5.0, rows: slice | None = None) -> np.ndarray:
+               max_shift_m: float = 5.0, rows: slice | None = None, min_k: int = 4) -> np.ndarray:
     """Median of the neighbours' values; with ``xy``, corrected for a linear trend.
 
     The trend correction matters where the neighbours sit on one side (row ends): the
@@ -304,7 +304,7 @@ def _median_of(values: np.ndarray, nb: np.ndarray, xy: np.ndarray | None = None,
     pairwise slopes), robust to a defective neighbour; the reference is the median value
     moved from the neighbours' median position to the module's. Only neighbours lying on
     a line through the module (within 0.5 m: a table row) are corrected, and only when
-    their median position is within ``max_shift_m`` of the module.
+    their median position is within ``max_shift_m`` of the module, and from ``min_k`` of them at least.
 
     ``nb`` may hold the neighbours of the modules ``rows`` only (a slice of all modules;
     ``values`` and ``xy`` stay whole): the result is then for those modules.
@@ -313,8 +313,8 @@ def _median_of(values: np.ndarray, nb: np.ndarray, xy: np.ndarray | None = None,
         return np.full(len(nb), np.nan)
     if len(nb) > _KNN_CHUNK:
         # row by row independent: in chunks of modules (bounded (modules x pairs) temporaries)
-        return np.concatenate([_median_of(values, nb[s:s + _KNN_CHUNK], xy, max_shift_m,
-                                          rows=slice(s, s + _KNN_CHUNK)) for s in range(0, len(nb), _KNN_CHUNK)])
+        return np.concatenate([_median_of(values, nb[s:s + _KNN_CHUNK], xy, max_shift_m, slice(s, s + _KNN_CHUNK),
+                                          min_k) for s in range(0, len(nb), _KNN_CHUNK)])
     vals = np.where(nb >= 0, values[np.maximum(nb, 0)], np.nan)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", RuntimeWarning)
@@ -340,7 +340,7 @@ def _median_of(values: np.ndarray, nb: np.ndarray, xy: np.ndarray | None = None,
         slope = numpy_nanmedian_rows(np.where(ok, dv / np.where(ok, ds, 1.0), np.nan))
         shift = numpy_nanmedian_rows(s)
     # extrapolate a few metres at most: beyond that a straight line is a guess
-    near = np.abs(shift) <= max_shift_m
+    near = (np.abs(shift) <= max_shift_m) & ((nb >= 0).sum(axis=1) >= min_k)
     corr = np.where(line & near & np.isfinite(slope) & np.isfinite(shift), -slope * shift, 0.0)
     return med + corr
 
@@ -592,7 +592,8 @@ def local_reference(modules: pd.DataFrame, t_module_c: ArrayLike, healthy_mask: 
         # across a step is neither the one level nor the other)
         plain = _median_of(t, nb)
         stepped = follow_columns(plain)
-        ref = np.where(stepped != plain, stepped, _median_of(t, nb, xy, float(cfg["trend_max_shift_m"])))
+        trend = _median_of(t, nb, xy, float(cfg["trend_max_shift_m"]), min_k=int(cfg["trend_min_neighbours"]))
+        ref = np.where(stepped != plain, stepped, trend)
     logger.debug("local reference: %d suspects excluded, spread %.3f K", int(suspect.sum()), scale)
     if return_details:
         return ReferenceResult(ref, nb, suspect, scale)

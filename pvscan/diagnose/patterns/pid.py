@@ -266,6 +266,11 @@ def _run_from(idx: np.ndarray, z: np.ndarray, z_ext: np.ndarray, z_o: np.ndarray
     # single weak module between stronger ones does not end the run)
     gain = np.cumsum(zz - float(cfg["pid_extend_z"]))
     k = int(np.argmax(gain[m_min - 1:])) + m_min
+    # ... and a last module showing less than pid_end_min_share of the evidence of the module
+    # before it is past the run (PID fades along the string, neighbouring modules alike; a
+    # healthy module after a strong run clears the extension bar by its noise alone)
+    while k > m_min and zz[k - 1] < float(cfg["pid_end_min_share"]) * zz[k - 2]:
+        k -= 1
     # PID takes power away, so the affected modules run warmer than modules outside
     # their string (a seam or a shadow edge crossing the string's end need not); the run as
     # a whole, and its module at the negative end, which loses the most, by itself (a seam
