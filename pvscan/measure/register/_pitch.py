@@ -28,8 +28,8 @@ from pvscan.measure.register.search import refine_placement
 if TYPE_CHECKING:  # pragma: no cover
     import geopandas as gpd
 
-__all__ = ["_pitches", "_row_pitch", "_placement_of", "_turned", "_screen_turned", "_distinct", "_resolve_pitch",
-           "_sample_at", "_judge"]
+__all__ = ["_pitches", "_row_pitch", "_placement_of", "_turned", "_across", "_pitch_m", "_screen_turned", "_distinct",
+           "_resolve_pitch", "_sample_at", "_judge"]
 
 
 def _pitches(modules: gpd.GeoDataFrame) -> list[np.ndarray]:
@@ -131,6 +131,39 @@ def _turned(modules: gpd.GeoDataFrame, starts: list[Placement], cfg: Mapping[str
                 if abs(th) <= lim:
                     out.append(p.moved(theta_deg=th))
     return out
+
+
+def _across(modules: gpd.GeoDataFrame, starts: list[Placement], lim_m: float,
+            sun: tuple[float, ...] | None = None) -> list[Placement]:
+    """Each start moved across the table rows by one to as many module pitches as a table has
+    rows of modules, toward the sun (either way when ``sun`` is not known), nearest first;
+    shifts beyond ``lim_m`` [m] left out.
+
+    A raised table's shadow beside it, away from the sun, can be about as wide as the table
+    and carry the table's outline (ground, shadow and glass at three levels): the block
+    correlation of edges then matches the table's outline to its shadow's, whole module widths
+    across the rows away from the sun."""
+    across = _named_pitches(modules).get("across")
+    if across is None or not starts or "table_row" not in modules.columns:
+        return []
+    rows = modules.groupby(modules["table_id"].astype(str))["table_row"].nunique()
+    n = int(rows.max()) if len(rows) else 0
+    toward = float(np.dot(across, np.asarray(sun[:2], float))) if sun is not None else 0.0
+    signs = (1.0, -1.0) if toward == 0.0 else (math.copysign(1.0, toward),)
+    out = []
+    for k in range(1, n + 1):
+        for p in starts:
+            for sgn in signs:
+                tx, ty = p.tx + sgn * k * float(across[0]), p.ty + sgn * k * float(across[1])
+                if math.hypot(tx, ty) <= lim_m:
+                    out.append(p.moved(tx=tx, ty=ty))
+    return out
+
+
+def _pitch_m(modules: gpd.GeoDataFrame, direction: str) -> float:
+    """Length of the module pitch ``along`` or ``across`` the table rows [m] (NaN: none)."""
+    v = _named_pitches(modules).get(direction)
+    return float(np.hypot(*v)) if v is not None else float("nan")
 
 
 def _distinct(proposals: list[Placement], bounds: Any, tol_m: float) -> list[Placement]:

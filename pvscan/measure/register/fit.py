@@ -35,8 +35,10 @@ from pvscan.measure._memory import release_freed_memory
 from pvscan.measure.register._blocks import _settings
 from pvscan.measure.register._chunks import shared_chunks
 from pvscan.measure.register._pitch import (
+    _across,
     _distinct,
     _judge,
+    _pitch_m,
     _pitches,
     _placement_of,
     _resolve_pitch,
@@ -212,6 +214,20 @@ def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], su
         red = _reduce_for(orthos, cfg)
         for alt in _screen_turned(turned, cfg, lambda p: _sample_at(orthos, modules, p, cfg, reduce=red))[
                 :int(cfg["retry_turn_max_fits"])]:
+            consider(alt)
+            if chosen is not None:
+                break
+        # a raised table's shadow as wide as the table: the blocks matched the table's outline
+        # to its shadow's, whole module pitches across the rows away from the sun; every
+        # proposal so far moved back toward the sun is looked at cheaply and at most
+        # retry_across_max_fits of them fitted, the best first
+        # (starts closer than the fit's reach, retry_turn_fraction of a pitch, are one)
+        tried = [_placement_of(q0, centre) for q0 in reg.evidence["proposals"]]
+        reach = float(cfg["retry_turn_fraction"]) * _pitch_m(modules, "across")
+        across = (_distinct(_across(modules, _distinct(tried, bounds, tol), lim_m, sun), bounds,
+                            reach if math.isfinite(reach) else tol) if chosen is None else [])
+        for alt in _screen_turned(across, cfg, lambda p: _sample_at(orthos, modules, p, cfg, reduce=red))[
+                :int(cfg["retry_across_max_fits"])]:
             consider(alt)
             if chosen is not None:
                 break
