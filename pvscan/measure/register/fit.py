@@ -226,11 +226,16 @@ def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], su
         reach = float(cfg["retry_turn_fraction"]) * _pitch_m(modules, "across")
         across = (_distinct(_across(modules, _distinct(tried, bounds, tol), lim_m, sun), bounds,
                             reach if math.isfinite(reach) else tol) if chosen is None else [])
+        fitted_across = 0
         for alt in _screen_turned(across, cfg, lambda p: _sample_at(orthos, modules, p, cfg, reduce=red))[
                 :int(cfg["retry_across_max_fits"])]:
             consider(alt)
+            fitted_across += 1
             if chosen is not None:
                 break
+        if across:
+            reg.evidence["across_starts"] = {"starts": len(across), "fitted": fitted_across,
+                                             "placed": chosen is not None}
     if forced_shift is not None:
         # a known offset is used as given; the evidence only says whether it fits
         q_c = reg.evidence["proposals"][0]
