@@ -40,7 +40,7 @@ from typing import Any
 
 import numpy as np
 
-from pvscan.measure.layout_image.rows import _columns_run, _row_lines
+from pvscan.measure.layout_image.rows import _columns_run, _row_line_offset, _row_lines
 from pvscan.measure.layout_image.samples import _comb_strip, _extent, _half_crossing, _samples
 from pvscan.measure.layout_image.segment import TableCandidate, _mode, glass_band
 
@@ -429,8 +429,10 @@ def _snap_rows(x, y, t, valid, centre, axis, across, length, depth, level, band,
     between its rows shows and every row shows the frame lines between its modules
     (:func:`_build_fit` with ``every_row``), which a lattice a
     part of a row off, or a row laid on a shadow (light through the module gaps: warm lines)
-    does not; of those the one of most rows, then of the strongest weakest row
-    (``rows_comb_k``), is kept when its confidence beats ``fit``'s. Nothing is laid where the
+    does not; of those the one of most rows, then the one whose row lines lie nearest their
+    places (:func:`.rows._row_line_offset`, in whole pixels: the strongest weakest row does not
+    see a lattice a few pixels off, whose lines are still found within ``line_shift_m``), then
+    of the strongest weakest row (``rows_comb_k``), is kept when its confidence beats ``fit``'s. Nothing is laid where the
     comb itself (``comb_k``) is weaker than ``contrast_full_k``, or over a single column.
     Its ``misfit`` is its own (along the axis; across it lies on whole rows by construction).
     """
@@ -455,7 +457,12 @@ def _snap_rows(x, y, t, valid, centre, axis, across, length, depth, level, band,
                     continue
                 if f.confidence <= 0:
                     continue
-                key = (f.rows, f.rows_comb_k)
+                # where its row lines lie, in whole pixels (the resolution of the image)
+                sf = (x - f.origin[0]) * axis[0] + (y - f.origin[1]) * axis[1]
+                wf = (x - f.origin[0]) * across[0] + (y - f.origin[1]) * across[1]
+                off = _row_line_offset(sf, wf, t, f.cols, f.rows, f.module_s_m, f.module_w_m, f.gap_s_m, f.gap_w_m,
+                                       gsd, float(settings["line_shift_m"]))
+                key = (f.rows, -round(off / gsd) if math.isfinite(off) else 0, f.rows_comb_k)
                 if best_key is None or key > best_key:
                     best, best_key = f, key
     return best if best.confidence > fit.confidence else fit

@@ -15,6 +15,46 @@ import numpy as np
 __all__: list[str] = []
 
 
+def _profile(s: np.ndarray, w: np.ndarray, t: np.ndarray, n: int, m: int, size_s: float, pitch_w: float,
+             gap_s: float, gsd: float) -> tuple[np.ndarray, float]:
+    """Mean temperature across a lattice of ``m`` rows of pitch ``pitch_w`` [m], over its
+    ``n`` columns, in bins of half a pixel from its origin (NaN where a bin is empty); with the
+    bin size [m]."""
+    inside = (s > 0) & (s < n * size_s + (n - 1) * gap_s) & np.isfinite(t)
+    bin_m = gsd / 2
+    nb = int(math.ceil((m * pitch_w) / bin_m)) + 1
+    k = np.floor(w[inside] / bin_m).astype(int)
+    ok = (k >= 0) & (k < nb)
+    sums = np.bincount(k[ok], weights=t[inside][ok], minlength=nb)
+    cnt = np.bincount(k[ok], minlength=nb)
+    return np.where(cnt > 0, sums / np.maximum(cnt, 1), np.nan), bin_m
+
+
+def _row_line_offset(s: np.ndarray, w: np.ndarray, t: np.ndarray, n: int, m: int, size_s: float, size_w: float,
+                     gap_s: float, gap_w: float, gsd: float, shift_m: float) -> float:
+    """How far [m] the lines between a lattice's rows lie from where the lattice puts them:
+    the median over the lines of the distance from each line's middle to the coolest bin
+    within ``shift_m`` of it (the profile across, :func:`_profile`, a line's dip a pixel or
+    two wide). A lattice a part of a row off across its table still finds a cool bin near each
+    line, and so a row-line contrast (:func:`_row_lines`), but not at the line's place; NaN
+    for a table of one row. ``s, w`` are the samples' coordinates from the lattice's origin [m].
+    """
+    if m < 2:
+        return math.nan
+    pitch_w = size_w + gap_w
+    prof, bin_m = _profile(s, w, t, n, m, size_s, pitch_w, gap_s, gsd)
+    reach = max(1, int(round(shift_m / bin_m)))
+    off = []
+    for r in range(1, m):
+        c = (r * pitch_w - 0.5 * gap_w) / bin_m - 0.5  # the line's middle in bins (bin j spans j..j+1)
+        j0, j1 = int(max(0, round(c) - reach)), int(min(prof.size - 1, round(c) + reach))
+        seg = prof[j0:j1 + 1]
+        if j1 < j0 or not np.isfinite(seg).any():
+            continue
+        off.append((j0 + int(np.nanargmin(seg)) - c) * bin_m)
+    return float(np.median(np.abs(off))) if off else math.nan
+
+
 def _row_lines(s: np.ndarray, w: np.ndarray, t: np.ndarray, n: int, m: int, size_s: float, size_w: float,
                gap_s: float, gap_w: float, gsd: float, shift_m: float, weakest: bool = False) -> float:
     """Median (``weakest``: smallest) contrast of the lines between a table's module rows [K]:
@@ -25,14 +65,8 @@ def _row_lines(s: np.ndarray, w: np.ndarray, t: np.ndarray, n: int, m: int, size
     if m < 2:
         return math.nan
     pitch_w = size_w + gap_w
-    inside = (s > 0) & (s < n * size_s + (n - 1) * gap_s) & np.isfinite(t)
-    bin_m = gsd / 2
-    nb = int(math.ceil((m * pitch_w) / bin_m)) + 1
-    k = np.floor(w[inside] / bin_m).astype(int)
-    ok = (k >= 0) & (k < nb)
-    sums = np.bincount(k[ok], weights=t[inside][ok], minlength=nb)
-    cnt = np.bincount(k[ok], minlength=nb)
-    prof = np.where(cnt > 0, sums / np.maximum(cnt, 1), np.nan)
+    prof, bin_m = _profile(s, w, t, n, m, size_s, pitch_w, gap_s, gsd)
+    nb = prof.size
     reach = max(1, int(round(shift_m / bin_m)))
     out = []
     for r in range(1, m):
