@@ -24,7 +24,7 @@ from __future__ import annotations
 
 import logging
 import math
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -274,15 +274,23 @@ def _turned_to(cand: TableCandidate, f: TableFit, axis_deg: float) -> TableCandi
     return replace(cand, centre=centre, axis=axis, length_m=f.length_m, depth_m=f.depth_m)
 
 
-def _combine(fits: list[TableFit], cfg: dict) -> list[TableFit]:
+def _combine(fits: list[TableFit], cfg: dict, parts: Sequence[TableFit] = ()) -> list[TableFit]:
     """The plant's tables from all fits: those consistent with the plant (:func:`_consistent`),
     parts of one row joined (:func:`_join_rows`; before the overlap rule, which would keep
     the larger of two overlapping parts and lose the rest of the table), then of the fits
     covering each other by more than ``overlap_share`` the one with the larger confidence x
     sqrt(modules) (the same table found twice: a part is fitted on fewer frame lines), and
-    the parts joined again."""
+    the parts joined again. ``parts`` are sure fits of fewer than ``min_table_modules``
+    modules: each is kept only as the part of a table it joins (a seam or a shadow across a
+    table's end leaves a part of a few modules; alone it may be anything warm or cool)."""
     join = {k: float(cfg[k]) for k in ("join_across_m", "join_gap_m", "join_size_m", "join_axis_deg")}
     fits = _join_rows(_consistent(fits, float(cfg["plant_contrast_share"])), join)
+    for part in parts:
+        for i, f in enumerate(fits):
+            m = _joined(f, part, join)
+            if m is not None:
+                fits[i] = m
+                break
     fits.sort(key=lambda f: -f.confidence * math.sqrt(f.rows * f.cols))
     kept: list[TableFit] = []
     for f in fits:
@@ -386,6 +394,7 @@ def detect_layout(orthos: Any, module: Any, layout: Any, settings: Any = None, p
     fits: list[TableFit] = []
     fitted: list[TableCandidate] = []  # the candidate of each fit
     dropped: list[tuple[TableFit, str]] = []
+    parts: list[TableFit] = []  # sure fits smaller than a table
     queue = list(cands)
     k = 0
     while queue and k < 8 * len(cands) + 32:
@@ -398,6 +407,8 @@ def detect_layout(orthos: Any, module: Any, layout: Any, settings: Any = None, p
             continue
         queue.extend(_remainders(cand, fit, module.width_m, float(cfg["remainder_clear_m"])))
         if fit.rows * fit.cols < int(cfg["min_table_modules"]):
+            if fit.confidence >= float(cfg["min_confidence"]) and fit.misfit <= float(cfg["max_misfit"]):
+                parts.append(fit)  # kept only as the part of a table it joins (_combine)
             continue
         if fit.confidence < float(cfg["min_confidence"]) or fit.misfit > float(cfg["max_misfit"]):
             log.info("table candidate at (%.1f, %.1f) dropped: confidence %.2f, misfit %.2f", *cand.centre,
@@ -419,7 +430,7 @@ def detect_layout(orthos: Any, module: Any, layout: Any, settings: Any = None, p
             log.info("table at (%.1f, %.1f) turned %.1f deg off the plant's %.1f deg: fitted along the plant",
                      *cand.centre, _axis_deg(fit) - axis_deg, axis_deg)
             fits[i] = again
-    kept = _combine(fits, cfg)
+    kept = _combine(fits, cfg, parts)
     if not kept:
         raise LayoutError(f"{orthos.tiles[0].path}: no table of modules found in the ortho "
                           f"(module {module.width_m} x {module.length_m} m, tilt {layout.tilt_deg} deg)")

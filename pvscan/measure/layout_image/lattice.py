@@ -432,8 +432,8 @@ def _snap_rows(x, y, t, valid, centre, axis, across, length, depth, level, band,
     does not; of those the one of most rows, then the one whose row lines lie nearest their
     places (:func:`.rows._row_line_offset`, in whole pixels: the strongest weakest row does not
     see a lattice a few pixels off, whose lines are still found within ``line_shift_m``), then
-    of the strongest weakest row (``rows_comb_k``), is kept when its confidence beats ``fit``'s. Nothing is laid where the
-    comb itself (``comb_k``) is weaker than ``contrast_full_k``, or over a single column.
+    of the strongest weakest row (``rows_comb_k``), is kept when its confidence beats ``fit``'s.
+    Nothing is laid where the comb itself (``comb_k``) is weaker than ``contrast_full_k``, or over a single column.
     Its ``misfit`` is its own (along the axis; across it lies on whole rows by construction).
     """
     cos_t = math.cos(math.radians(layout.tilt_deg))
