@@ -169,6 +169,9 @@ class Measurement:
         Keywords of ``radiometry.true_from_apparent`` the run used (scalars or (n,) arrays).
     seams : SeamLevelling
         The stretches levelled and the offsets subtracted.
+    overview : pvscan.report._raster.OverviewDone or None
+        The report's decimated ortho overview, made from the zonal statistics' block reads
+        (``overview_px`` of :func:`measure_flight`); None when not asked for or not made.
     """
 
     modules: gpd.GeoDataFrame
@@ -183,6 +186,7 @@ class Measurement:
     orthos_info: OrthoInfo
     radiometry: dict[str, Any]
     seams: SeamLevelling
+    overview: Any = None
 
 
 # ----------------------------------------------------------------------------- radiometry
@@ -259,7 +263,8 @@ def _rss() -> tuple[str, str]:
 
 def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | None = None,
                    timings: dict[str, float] | None = None, scheduler: Any = None, *,
-                   shift: tuple[float, float] | None = None, accept_poor_registration: bool = False) -> Measurement:
+                   shift: tuple[float, float] | None = None, accept_poor_registration: bool = False,
+                   overview_px: int | None = None) -> Measurement:
     """Read, register and measure a flight: modules, registration, true statistics, conditions.
 
     ``scheduler`` (see :mod:`pvscan.tasks`): where the block statistics run; None for this
@@ -272,13 +277,18 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
     :class:`~pvscan.errors.RegistrationError` stops the run unless ``accept_poor_registration``;
     then it goes on (failed: the layout as drawn) with the ``registration`` check failed.
 
+    ``overview_px``: also make the report's ortho overview of that longest side [px]
+    (``[report] overview_max_px``) from the blocks the zonal statistics read
+    (:class:`pvscan.io.ortho.OverviewSampler`: the same image as a decimated read of the
+    ortho, without decoding those blocks again); in this process only (``scheduler`` None).
+
     Returns
     -------
     Measurement
     """
     from pvscan.errors import RegistrationError
     from pvscan.io.layout import read_layout
-    from pvscan.io.ortho import open_orthos
+    from pvscan.io.ortho import OverviewSampler, open_orthos
     from pvscan.measure import register, zonal
     from pvscan.measure import validity as val_mod
     from pvscan.measure.conditions import conditions_for_flight
@@ -320,8 +330,10 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         _record(timings, "register", t0)
 
         t0 = _clock()
+        sampler = OverviewSampler(orthos, overview_px) if overview_px and scheduler is None else None
         stats_app = zonal.zonal_stats(orthos, measured, flight.module, settings["zonal"], progress=progress,
-                                      scheduler=scheduler)
+                                      scheduler=scheduler, overview=sampler)
+        overview = _finish_overview(sampler, orthos)
         _record(timings, "zonal", t0)
         orthos_info = OrthoInfo(files=[str(t.path) for t in orthos.tiles], crs=orthos.crs.to_string(),
                                 gsd_m=float(orthos.gsd_m), tiles=len(orthos.tiles))
@@ -363,7 +375,29 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
     return Measurement(modules=modules, registration=reg, shift=applied_shift, ortho_values=ortho_values,
                        stats=stats, stats_apparent=stats_app, conditions=conds, flight_conditions=fc,
                        validity=validity, orthos_info=orthos_info, radiometry=params,
-                       seams=SeamLevelling(stretches=stretches, offsets_k=seam_offsets, enabled=levelling))
+                       seams=SeamLevelling(stretches=stretches, offsets_k=seam_offsets, enabled=levelling),
+                       overview=overview)
+
+
+def _finish_overview(sampler: Any, orthos: Any) -> Any:
+    """The report's overview from an :class:`~pvscan.io.ortho.OverviewSampler` the zonal
+    pass filled, its remaining pixels read on a thread of its own (with its own file handles:
+    the flight's are closed meanwhile) while the diagnosis runs; None without a usable one."""
+    if sampler is None or not sampler.usable:
+        return None
+    from concurrent.futures import ThreadPoolExecutor
+
+    from pvscan.report._raster import OverviewDone
+
+    def finish() -> tuple[np.ndarray, Any]:
+        with orthos.reader() as read:
+            return sampler.finish(read)
+
+    pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="pvscan-overview")
+    try:
+        return OverviewDone(orthos.tiles, sampler.max_px, pool.submit(finish))
+    finally:
+        pool.shutdown(wait=False)  # the thread ends with its one task
 
 
 #: String-level patterns: they follow a string from its negative end, so they need string ids.
@@ -496,7 +530,9 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
     timings: dict[str, float] = {}
     with (cluster(scheduler) if is_address(scheduler) else contextlib.nullcontext(scheduler)) as sched:
         m = measure_flight(flight, settings, progress=progress, timings=timings, scheduler=sched, shift=shift,
-                           accept_poor_registration=accept_poor_registration)
+                           accept_poor_registration=accept_poor_registration,
+                           overview_px=(int(settings["report"]["overview_max_px"])
+                                        if report and out_dir is not None and flight.flight.orthos else None))
     modules = m.modules
     stats = m.stats
     conds = m.conditions
@@ -569,7 +605,7 @@ def inspect_flight(flight: Flight | str | Path, pipeline: Pipeline | str | Path 
     with outputs.staging_dir(out_dir, overwrite=overwrite) as tmp:
         files = write_outputs(tmp, modules=modules, module_table=table, anomalies=anomalies, summary=summary,
                               settings=settings, flight=flight, report=report, progress=progress,
-                              stage_done=stage_done)
+                              stage_done=stage_done, overview=m.overview)
     result.out_dir = out_dir
     result.files = {k: out_dir / v for k, v in files.items()}
     return result

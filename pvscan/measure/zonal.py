@@ -47,7 +47,7 @@ from affine import Affine
 from rasterio.windows import Window
 
 from pvscan.io.layout import FRAME_COLUMNS
-from pvscan.io.ortho import OrthoSet, Tile
+from pvscan.io.ortho import OrthoSet, OverviewSampler, Tile
 from pvscan.io.settings import section
 from pvscan.measure._memory import release_freed_memory
 from pvscan.measure.zonal_window import _BlockResult, _frame_corners, _measure, measure_window
@@ -255,8 +255,11 @@ class _Accumulator:
 
 
 def _run_block(reader: Callable[[int, Window], np.ndarray], job: _Job, fr: np.ndarray, grid: tuple[int, int, int],
-               margins: tuple[float, float], quantum_k: float, transform: Affine) -> _BlockResult:
+               margins: tuple[float, float], quantum_k: float, transform: Affine,
+               overview: OverviewSampler | None = None) -> _BlockResult:
     data = reader(job.tile, job.window)
+    if overview is not None:
+        overview.take(job.tile, job.window, data)
     return _measure(data, transform, fr[job.modules], grid, margins, quantum_k, index=job.modules)
 
 
@@ -280,6 +283,7 @@ def zonal_stats(
     scheduler: Any = None,
     workers: int | None = None,
     prefetch: bool = True,
+    overview: OverviewSampler | None = None,
 ) -> ZonalStats:
     """Apparent-temperature statistics of every module, cell and substring.
 
@@ -313,6 +317,10 @@ def zonal_stats(
     prefetch : bool
         One worker only: read the next block on a helper thread while the current one
         is reduced.
+    overview : pvscan.io.ortho.OverviewSampler, optional
+        Keeps the report's decimated overview pixels of every block read (this process's
+        loops only; not with ``scheduler``), so the overview needs no second decoding of
+        those blocks.
 
     Returns
     -------
@@ -354,6 +362,8 @@ def zonal_stats(
             # GDAL release the GIL in the heavy parts. Results are merged in job order.
             def task(job: _Job) -> _BlockResult:
                 data = read(job.tile, job.window)
+                if overview is not None:
+                    overview.take(job.tile, job.window, data)
                 return _measure(data, transform_of(job), fr[job.modules], grid, margins, quantum_k, job.modules)
 
             with orthos.reader() as read, ThreadPoolExecutor(workers, thread_name_prefix="pvscan-zonal") as pool:
@@ -366,6 +376,8 @@ def zonal_stats(
                 nxt = pool.submit(orthos.read, jobs[0].tile, jobs[0].window)
                 for k, job in enumerate(jobs):
                     data = nxt.result()
+                    if overview is not None:
+                        overview.take(job.tile, job.window, data)
                     if k + 1 < total:
                         nxt = pool.submit(orthos.read, jobs[k + 1].tile, jobs[k + 1].window)
                     r = _measure(data, transform_of(job), fr[job.modules], grid, margins, quantum_k, job.modules)
@@ -375,7 +387,7 @@ def zonal_stats(
                         progress("zonal", k + 1, total)
         else:
             for k, job in enumerate(jobs):
-                r = _run_block(orthos.read, job, fr, grid, margins, quantum_k, transform_of(job))
+                r = _run_block(orthos.read, job, fr, grid, margins, quantum_k, transform_of(job), overview)
                 acc.merge(job.tile, r)
                 if progress is not None:
                     progress("zonal", k + 1, total)

@@ -23,7 +23,7 @@ from pvscan.report import _figures as figs
 from pvscan.report import _sections as sec
 from pvscan.report._geometry import MapGeometry, as_list
 from pvscan.report._images import Palette, figure_palette, module_window, png_data_uri, quantise_rgb
-from pvscan.report._raster import OverviewRead, ThermalView, open_thermal
+from pvscan.report._raster import OverviewDone, OverviewRead, ThermalView, open_thermal
 from pvscan.report._registration import registration_detail
 from pvscan.report._result import SEVERITIES, ResultData, detection_limit, get_path, load_result, validity_checks
 from pvscan.report._series import series_plot
@@ -71,7 +71,7 @@ def _ortho_spec_and_paths(data: ResultData, flight: Any, override: Any = None) -
 
 
 def _open_view(data: ResultData, orthos: Any, flight: Any, notes: list[str], ortho_paths: Any = None,
-               overview: OverviewRead | None = None) -> tuple[ThermalView | None, Any]:
+               overview: OverviewRead | OverviewDone | None = None) -> tuple[ThermalView | None, Any]:
     """(ThermalView or None, ortho set to close or None)."""
     if orthos is not None:
         return ThermalView(orthos, overview), None
@@ -118,7 +118,7 @@ def _settings(settings: Mapping | None) -> dict:
 
 def build_report(result_dir: str | Path, *, orthos: Any = None, modules: Any = None, flight: Any = None,
                  settings: Mapping | None = None, ortho_paths: Any = None,
-                 progress: ProgressFn | None = None, overview: OverviewRead | None = None) -> str:
+                 progress: ProgressFn | None = None, overview: OverviewRead | OverviewDone | None = None) -> str:
     """The report of a result folder as one HTML string (see :func:`write_report`)."""
     cfg = _settings(settings)
     data = load_result(result_dir)
@@ -332,7 +332,7 @@ def _css(palette: Palette) -> str:
 def write_report(result_dir: str | Path, out_path: str | Path | None = None, *, orthos: Any = None,
                  modules: Any = None, flight: Any = None, stats: Any = None, settings: Mapping | None = None,
                  ortho_paths: Any = None, progress: ProgressFn | None = None,
-                 overview: OverviewRead | None = None) -> Path:
+                 overview: OverviewRead | OverviewDone | None = None) -> Path:
     """Write the self-contained inspection report ``report.html``.
 
     Parameters
@@ -361,9 +361,10 @@ def write_report(result_dir: str | Path, out_path: str | Path | None = None, *, 
         ``summary.json`` names one that exists, else degC.
     progress : callable, optional
         ``progress(stage, done, total)``.
-    overview : OverviewRead, optional
-        The ortho overview already being read in another thread (:func:`read_overview_ahead`);
-        used when it was read from the orthos the report draws, at the size it draws.
+    overview : OverviewRead or OverviewDone, optional
+        The ortho overview already being read in another thread (:func:`read_overview_ahead`)
+        or made beforehand (:class:`~pvscan.report._raster.OverviewDone`); used when it was
+        made from the orthos the report draws, at the size it draws.
 
     Returns
     -------

@@ -79,7 +79,7 @@ def write_results(folder: Path, *, modules: gpd.GeoDataFrame, module_table: pd.D
 def write_outputs(folder: Path, *, modules: gpd.GeoDataFrame, module_table: pd.DataFrame,
                   anomalies: pd.DataFrame, summary: Mapping[str, Any], settings: Any,
                   flight: Any = None, report: bool = True, progress: ProgressFn | None = None,
-                  stage_done: Callable[[str], None] | None = None) -> dict[str, str]:
+                  stage_done: Callable[[str], None] | None = None, overview: Any = None) -> dict[str, str]:
     """Write every result file and, with ``report``, ``report.html`` into ``folder`` (a
     staging folder), using a second thread where the work allows (module docstring); return
     name -> file name.
@@ -101,6 +101,9 @@ def write_outputs(folder: Path, *, modules: gpd.GeoDataFrame, module_table: pd.D
     stage_done : callable, optional
         ``stage_done(name)`` when a stage ends: ``"outputs"`` once the files the report reads
         are written, ``"report"`` once the report and the files written beside it are.
+    overview : pvscan.report._raster.OverviewDone, optional
+        The report's ortho overview made beforehand; without it (or when it was made for
+        other tiles or another size) the overview is read in the second thread.
 
     Raises
     ------
@@ -121,7 +124,7 @@ def write_outputs(folder: Path, *, modules: gpd.GeoDataFrame, module_table: pd.D
     with ThreadPoolExecutor(max_workers=1, thread_name_prefix="pvscan-outputs") as pool:
         # leaving the block waits for the thread's work, also on an error: nothing is still
         # writing when the caller removes the staging folder
-        ahead = read_overview_ahead(flight, settings["report"], pool)
+        ahead = overview if overview is not None else read_overview_ahead(flight, settings["report"], pool)
         prepared, work = _report_inputs(folder, modules=modules, module_table=module_table,
                                         anomalies=anomalies, summary=summary, settings=out_cfg)
         done("outputs")

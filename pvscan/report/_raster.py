@@ -23,7 +23,7 @@ if TYPE_CHECKING:
 
 log = logging.getLogger(__name__)
 
-__all__ = ["ThermalView", "open_thermal", "OverviewRead"]
+__all__ = ["ThermalView", "open_thermal", "OverviewRead", "OverviewDone"]
 
 
 class ThermalView:
@@ -35,7 +35,7 @@ class ThermalView:
         Open tiles of one flight (left open: the caller closes them).
     """
 
-    def __init__(self, orthos: OrthoSet, overview_read: OverviewRead | None = None) -> None:
+    def __init__(self, orthos: OrthoSet, overview_read: OverviewRead | OverviewDone | None = None) -> None:
         self.orthos = orthos
         self.tiles = list(orthos.tiles)
         self.crs = orthos.crs
@@ -141,10 +141,50 @@ class ThermalView:
 
 def _overview(orthos: OrthoSet, max_px: int) -> tuple[np.ndarray, Extent]:
     """``orthos.read_overview(max_px)`` as float32 [degC] with its extent (``ThermalView.overview``)."""
-    arr, t = orthos.read_overview(int(max_px))
+    return _with_extent(*orthos.read_overview(int(max_px)))
+
+
+def _with_extent(arr: np.ndarray, t: Any) -> tuple[np.ndarray, Extent]:
+    """An overview mosaic as float32 [degC] with its extent from its north-up transform ``t``."""
     arr = np.asarray(arr, dtype=np.float32)
     h, w = arr.shape
     return arr, (t.c, t.c + t.a * w, t.f + t.e * h, t.f)
+
+
+class OverviewDone:
+    """The report's overview made beforehand (by the pipeline, from the blocks the zonal
+    statistics read: :class:`pvscan.io.ortho.OverviewSampler`), handed over like
+    :class:`OverviewRead`: only for the same tiles (files, grids, value conversions) and size.
+
+    Parameters
+    ----------
+    tiles : sequence of Tile
+        The tiles it is made from.
+    max_px : int
+        Its longest side [px] (``[report] overview_max_px``).
+    future : concurrent.futures.Future
+        Gives ``(image, transform)``: the mosaic [degC] and its north-up map transform, as
+        ``OrthoSet.read_overview`` gives them.
+    """
+
+    def __init__(self, tiles: Sequence[Any], max_px: int, future: Any) -> None:
+        self.tiles = tuple(tiles)
+        self.max_px = int(max_px)
+        self._future = future
+
+    def result(self, orthos: OrthoSet, max_px: int) -> tuple[np.ndarray, Extent] | None:
+        """The overview when ``orthos`` and ``max_px`` are those it was made for, else None
+        (also when making it failed: the caller then reads it itself, and meets the failure)."""
+        from pvscan.errors import PvscanError
+
+        try:
+            image, transform = self._future.result()
+        except (PvscanError, OSError, ValueError) as exc:
+            log.debug("report: the overview made beforehand failed (%s); reading it again", exc)
+            return None
+        if int(max_px) != self.max_px or tuple(orthos.tiles) != self.tiles:
+            return None
+        return _with_extent(image, transform)
 
 
 class OverviewRead:
