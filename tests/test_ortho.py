@@ -328,3 +328,75 @@ def test_bad_units(write_tif):
 def test_no_paths():
     with pytest.raises(OrthoError, match="no ortho file"):
         open_orthos([])
+
+
+def test_nearest_source_index_is_gdals_decimation(write_tif, rng):
+    """Reference: GDAL's own nearest-neighbour decimated read (rasterio ``out_shape``) of a
+    raster whose values are their pixel's index: the pixels it returns are those
+    ``nearest_source_index`` names, on both axes, for random raster and output sizes."""
+    from rasterio.enums import Resampling
+
+    from pvscan.io.ortho import nearest_source_index
+
+    for k in range(12):
+        h, w = int(rng.integers(20, 400)), int(rng.integers(20, 400))
+        index = np.arange(h * w, dtype="int32").reshape(h, w)
+        p = write_tif(f"idx{k}.tif", index, block=int(rng.choice([16, 64, 256])))
+        oh, ow = int(rng.integers(1, h + 1)), int(rng.integers(1, w + 1))
+        with rasterio.open(p) as ds:
+            got = ds.read(1, out_shape=(oh, ow), resampling=Resampling.nearest)
+        want = index[np.ix_(nearest_source_index(h, oh), nearest_source_index(w, ow))]
+        assert np.array_equal(got, want), (h, w, oh, ow)
+
+
+def _sampler_mosaic(o, max_px, windows):
+    from pvscan.io.ortho import OverviewSampler
+
+    s = OverviewSampler(o, max_px)
+    for tile, win in windows:
+        s.take(tile, win, o.read(tile, win))
+    return s, s.finish()
+
+
+def test_overview_sampler_is_read_overview(write_tif, rng):
+    """Reference: ``OrthoSet.read_overview`` (GDAL's decimated reads): the mosaic gathered
+    from any set of full-resolution windows (reaching beyond the tiles too) and completed by
+    the sampler is the same array, NaN (nodata, implausible values) where it is NaN, with
+    the same transform; for two overlapping tiles at several sizes."""
+    a = rng.normal(20, 1, (150, 210)).astype("float32")
+    b = rng.normal(40, 1, (130, 170)).astype("float32")
+    a[rng.random(a.shape) < 0.05] = -9999.0  # nodata
+    b[:5, :7] = 900.0  # implausible: NaN
+    pa = write_tif("a.tif", a, nodata=-9999.0, origin=(500_000.0, 4_000_000.0))
+    pb = write_tif("b.tif", b, origin=(500_004.3, 3_999_998.1), block=32)
+    with open_orthos([pa, pb]) as o:
+        for max_px in (7, 40, 101, 215):
+            want, wt = o.read_overview(max_px)
+            for n_windows in (0, 3, 25):
+                windows = []
+                for _ in range(n_windows):
+                    t = int(rng.integers(0, 2))
+                    th, tw = o.tiles[t].height, o.tiles[t].width
+                    r0, c0 = int(rng.integers(-20, th)), int(rng.integers(-20, tw))
+                    windows.append((t, Window(c0, r0, int(rng.integers(1, 90)), int(rng.integers(1, 90)))))
+                s, (got, gt) = _sampler_mosaic(o, max_px, windows)
+                assert s.usable
+                assert gt == wt
+                assert got.dtype == want.dtype == np.float32
+                assert np.array_equal(got, want, equal_nan=True), (max_px, n_windows)
+
+
+def test_overview_sampler_defers_to_files_with_overview_levels(write_tif, rng):
+    """A file with overview levels (GDAL reads those for a decimated read): the sampler is
+    not usable and gives ``read_overview``'s own mosaic."""
+    from rasterio.enums import Resampling
+
+    data = rng.normal(30, 2, (256, 256)).astype("float32")
+    p = write_tif("ovr.tif", data)
+    with rasterio.open(p, "r+") as ds:
+        ds.build_overviews([2, 4], Resampling.average)
+    with open_orthos(p) as o:
+        want, _ = o.read_overview(50)
+        s, (got, _) = _sampler_mosaic(o, 50, [(0, Window(0, 0, 256, 256))])
+    assert not s.usable
+    assert np.array_equal(got, want, equal_nan=True)

@@ -1,5 +1,6 @@
 """The last stages on two threads (pvscan.report._outputs.write_outputs): the ortho overview
-read ahead, the GeoPackage and GPX written while the report is drawn.
+read ahead (or made beforehand from the zonal statistics' block reads), the GeoPackage and
+GPX written while the report is drawn.
 
 References: the overview is checked against rasterio's own decimated (nearest-neighbour)
 read of the GeoTIFF and the ``value = raw * scale + offset`` conversion of the flight's
@@ -94,6 +95,26 @@ def test_overview_read_ahead_is_rasterios_decimated_read(captured):
     assert np.array_equal(np.isnan(image), np.isnan(want))
     assert np.allclose(image[~np.isnan(image)], want[~np.isnan(want)], rtol=0, atol=1e-4)
     assert extent == pytest.approx((b.left, b.left + step * w, b.top - step * h, b.top))
+
+
+def test_overview_from_the_zonal_blocks_is_the_decimated_read(captured):
+    """Reference: the report's own decimated read of the ortho (``ThermalView.overview``, GDAL's
+    nearest-neighbour read; checked against rasterio above): the overview the pipeline made
+    from the zonal statistics' block reads (``OverviewSampler``) is the same image and extent."""
+    from pvscan.io.ortho import open_orthos
+    from pvscan.report._raster import OverviewDone, ThermalView
+
+    _, kw = captured
+    flight, made = kw["flight"], kw["overview"]
+    max_px = int(kw["settings"]["report"]["overview_max_px"])
+    assert isinstance(made, OverviewDone)
+    with open_orthos(list(flight.flight.orthos), flight.ortho) as oset:
+        got = made.result(oset, max_px)
+        assert made.result(oset, max_px // 2) is None  # another size: the report reads its own
+        in_place = ThermalView(oset).overview(max_px)
+    assert got is not None
+    assert np.isfinite(got[0]).mean() > 0.5
+    assert np.array_equal(got[0], in_place[0], equal_nan=True) and got[1] == in_place[1]
 
 
 def test_files_are_those_written_one_after_another(captured):
