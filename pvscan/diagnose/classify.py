@@ -372,6 +372,7 @@ def classify(modules: pd.DataFrame, stats: Any, conditions: pd.DataFrame, module
     evidence = _evidence(F, groups)
     evidence.update(_row_clusters(modules, defect_of, F.ok, cfg))
     evidence.update(_row_edges(modules, F, cfg))
+    evidence.update(_cold_runs(modules, th.delta_t_k, F, cfg))
     evidence.update(_unexplained_pid(F, groups, pos, is_string, defect_of, mod_id, cfg, pid_runs))
     return Diagnosis(anomalies, module_table, evidence=evidence)
 
@@ -432,6 +433,50 @@ def _row_clusters(modules: pd.DataFrame, defect: np.ndarray, ok: np.ndarray,
     ids = modules["module_id"].astype(str).to_numpy() if "module_id" in modules else np.arange(len(modules)).astype(str)
     out.update(row_cluster_score=float(0.0 - np.log10(max(min(best_p * n_tests, 1.0), 1e-300))),
                row_cluster_modules=[str(x) for x in ids[mem_b[a_b:b_b]]], row_cluster_findings=k_b)
+    return out
+
+
+def _cold_runs(modules: pd.DataFrame, delta_t_k: np.ndarray, F: Features, cfg: Mapping[str, Any]) -> dict[str, Any]:
+    """The coldest run of neighbouring modules along a table row, against their references.
+
+    Along every table row (classified modules ordered by ``table_col``), each run of
+    ``[classify] cold_run_modules`` neighbours is as cold as its warmest module; the coldest run
+    of the flight, as that module's ``-delta_t_k`` over the module-to-module spread ``sig_mod``
+    (``cold_run_z`` [robust SD], 0 when no run is colder than its reference), where it is
+    (``cold_run_modules``) and its warmest module's delta T (``cold_run_k`` [K]).
+
+    A PV module's faults all turn power it no longer delivers into heat (IEC TS 62446-3; common
+    practice): no fault makes a module run colder than its producing neighbours. Several
+    neighbours far colder than their references are the image's doing: a mosaic seam or a
+    reflection of the cold sky the levelling of :mod:`pvscan.measure.seams` did not take (a
+    stretch running to a row's end, a one-row table), or one it levelled by too much (a stretch
+    over a warm string and healthy modules levelled by their common median). The same artefact
+    shifts the modules beside them, whose findings (an open string under a seam, a warm string
+    levelled away) are then not measured.
+    """
+    from pvscan.measure.rows import row_keys
+
+    m = int(cfg["cold_run_modules"])
+    out: dict[str, Any] = {"cold_run_z": 0.0, "cold_run_modules": [], "cold_run_k": None}
+    sig = float(F.sig_mod)
+    if F.n == 0 or "table_col" not in modules.columns or not np.isfinite(sig) or sig <= 0:
+        return out
+    dt = np.asarray(delta_t_k, dtype=float)
+    keys = row_keys(modules)
+    col = pd.to_numeric(modules["table_col"], errors="coerce").to_numpy(dtype=float)
+    use = np.flatnonzero((keys >= 0) & np.isfinite(col) & F.ok & np.isfinite(dt))
+    order = use[np.lexsort((col[use], keys[use]))]
+    ids = modules["module_id"].astype(str).to_numpy() if "module_id" in modules else np.arange(len(modules)).astype(str)
+    best = 0.0
+    for mem in np.split(order, np.flatnonzero(np.diff(keys[order])) + 1):
+        if len(mem) < m:
+            continue
+        warmest = np.lib.stride_tricks.sliding_window_view(dt[mem], m).max(axis=1)
+        j = int(np.argmin(warmest))
+        if -warmest[j] / sig > best:
+            best = float(-warmest[j] / sig)
+            out.update(cold_run_z=best, cold_run_modules=[str(x) for x in ids[mem[j:j + m]]],
+                       cold_run_k=float(warmest[j]))
     return out
 
 

@@ -3,8 +3,8 @@
 Each reads :attr:`pvscan.diagnose.results.Diagnosis.evidence` (:func:`evidence_checks` runs them
 all; ``pipeline._evidence_validity`` adds them to the flight's
 :class:`~pvscan.measure.validity.Validity`): ``string_reference``, ``module_spread``,
-``row_cluster``, ``row_edge``, ``unexplained_pid``, ``unexplained_pid_pattern`` and
-``unexplained_pid_tail``. Every check is a dict ``name, value, limit, kind, unit, passed, source,
+``row_cluster``, ``row_edge``, ``unexplained_pid``, ``unexplained_pid_pattern``,
+``unexplained_pid_tail`` and ``cold_run``. Every check is a dict ``name, value, limit, kind, unit, passed, source,
 message`` (:func:`pvscan.measure.checks.make_check`).
 """
 from __future__ import annotations
@@ -19,7 +19,7 @@ from pvscan.measure.checks import validity_settings as _validity_settings
 
 __all__ = ["string_reference_check", "module_spread_check", "row_cluster_check", "row_edge_check",
            "unexplained_pid_check", "unexplained_pid_pattern_check", "unexplained_pid_tail_check",
-           "evidence_checks"]
+           "cold_run_check", "evidence_checks"]
 
 
 def string_reference_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> Check:
@@ -243,11 +243,42 @@ def unexplained_pid_tail_check(evidence: Mapping[str, Any], settings: Mapping[st
         "combined z {value:.1f}, but no finding takes them in", m=m)
 
 
+def cold_run_check(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> Check:
+    """``cold_run``: how far the coldest run of neighbouring modules along a table row sits below
+    its references, in module-to-module spreads (``cold_run_z`` [robust SD], its warmest module;
+    :func:`pvscan.diagnose.classify`), at most ``[validity] max_cold_run_z``.
+
+    No fault of a module makes it run colder than its producing neighbours (every fault turns
+    power into heat); neighbours far colder are an image artefact not levelled (a mosaic seam or a
+    sky reflection running to a row's end) or levelled by too much, and the findings beside it (an
+    open string under the same seam) are not measured. Unknown (passes) when the classification
+    measured nothing.
+    """
+    lim = float(_validity_settings(settings)["max_cold_run_z"])
+    value = _finite(evidence.get("cold_run_z"))
+    mods = list(evidence.get("cold_run_modules") or [])
+    dt = _finite(evidence.get("cold_run_k"))
+    found = nothing = None
+    if value is not None and mods and dt is not None:
+        found = (f"{len(mods)} neighbouring modules of a table row ({mods[0]} .. {mods[-1]}) read at least "
+                 f"{-dt:.2f} K below their references, {value:.1f} module spreads (at most {lim:g})")
+    elif value is not None:
+        nothing = f"no run of neighbouring modules reads below its references (at most {lim:g})"
+    msg = _message("cold run", value, lim, "unknown (no modules measured)", nothing, found,
+                   "no fault cools a module: an image artefact (a mosaic seam, a sky reflection) is not "
+                   "levelled there, and the findings of that row (an open string under it) are not measured; "
+                   "check the ortho there")
+    c = _check("cold_run", value, lim, "max", "robust SD",
+               "faults only warm a module (IEC TS 62446-3; pvscan.diagnose.classify; calibrated)", message=msg)
+    c.update({"modules": mods, "delta_t_k": dt})
+    return c
+
+
 def evidence_checks(evidence: Mapping[str, Any], settings: Mapping[str, Any] | None = None) -> list[Check]:
     """The checks of what the classification measured about the flight as a whole
     (:attr:`pvscan.diagnose.results.Diagnosis.evidence`): ``string_reference``,
     ``module_spread``, ``row_cluster``, ``row_edge``, ``unexplained_pid``,
-    ``unexplained_pid_pattern`` and ``unexplained_pid_tail``. Empty when there is no evidence (no
+    ``unexplained_pid_pattern``, ``unexplained_pid_tail`` and ``cold_run``. Empty when there is no evidence (no
     module classified)."""
     if not evidence:
         return []
@@ -262,4 +293,6 @@ def evidence_checks(evidence: Mapping[str, Any], settings: Mapping[str, Any] | N
         checks.append(unexplained_pid_pattern_check(evidence, settings))
     if "pid_tail_unexplained_z" in evidence:
         checks.append(unexplained_pid_tail_check(evidence, settings))
+    if "cold_run_z" in evidence:
+        checks.append(cold_run_check(evidence, settings))
     return checks

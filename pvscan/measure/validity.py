@@ -15,7 +15,7 @@ pipeline once it knows them (:func:`with_checks`):
   healthy modules.
 
 The checks of what the classification measured about the flight as a whole (``string_reference``,
-``module_spread``, ``row_cluster``, ``row_edge``, ``unexplained_pid*``) live in
+``module_spread``, ``row_cluster``, ``row_edge``, ``unexplained_pid*``, ``cold_run``) live in
 :mod:`pvscan.measure.evidence_checks` and are importable from here too; the check record they all
 share in :mod:`pvscan.measure.checks`.
 
@@ -44,6 +44,7 @@ from pvscan.measure.checks import Check
 from pvscan.measure.checks import make_check as _check
 from pvscan.measure.checks import validity_settings as _validity_settings
 from pvscan.measure.evidence_checks import (
+    cold_run_check,
     evidence_checks,
     module_spread_check,
     row_cluster_check,
@@ -58,7 +59,7 @@ from pvscan.measure.layout_image.coverage import detected_layout_check
 __all__ = ["Validity", "check_validity", "registration_check", "coverage_check", "plausibility_check",
            "row_geometry", "row_shading_check", "string_reference_check", "unexplained_pid_check",
            "unexplained_pid_pattern_check", "unexplained_pid_tail_check", "row_edge_check", "module_spread_check",
-           "row_cluster_check", "evidence_checks", "with_checks", "detected_layout_check"]
+           "row_cluster_check", "cold_run_check", "evidence_checks", "with_checks", "detected_layout_check"]
 
 logger = logging.getLogger(__name__)
 
