@@ -274,6 +274,17 @@ def test_seam_at_a_large_module_spread_is_found_as_a_rate(rng):
     assert false_stretches <= 4
 
 
+def _string_run_beside_its_neighbour(rng, run_rise, neighbour_rise):
+    """A two-row table of 24 (strings of 6) whose row 2 has string 2's whole run (columns 7-12)
+    raised by ``run_rise`` and the last three modules of string 1 by ``neighbour_rise`` [K]:
+    the modules raised and the stretches found."""
+    m, t = _rows(rng, per_string=6)
+    run, neighbour = _sel(m, 2, 7, 12), _sel(m, 2, 4, 6)
+    t[run] += run_rise
+    t[neighbour] += neighbour_rise
+    return set(run.tolist()), set(neighbour.tolist()), seams.find_stretches(m, t)
+
+
 def test_open_string_beside_a_reflection_over_the_next_string_is_not_levelled(rng):
     # a whole string of a row opened (+3 to +5 K, the open-string rise of a clear day) while a
     # sky reflection lifts the last three modules of the string before it by 0.8-1.5 K: the
@@ -285,11 +296,8 @@ def test_open_string_beside_a_reflection_over_the_next_string_is_not_levelled(rn
     # p = 0.0075: P(X >= 4) = 0.1 %; with p = 0.16, as without the rule, P(X <= 3) = 0.5 %)
     levelled = 0
     for _ in range(60):
-        m, t = _rows(rng, per_string=6)
-        run = _sel(m, 2, 7, 12)
-        t[run] += rng.uniform(3.0, 5.0)
-        t[_sel(m, 2, 4, 6)] += rng.uniform(0.8, 1.5)
-        levelled += any(set(run.tolist()) & set(s.modules.tolist()) for s in seams.find_stretches(m, t))
+        run, _nb, out = _string_run_beside_its_neighbour(rng, rng.uniform(3.0, 5.0), rng.uniform(0.8, 1.5))
+        levelled += any(run & set(s.modules.tolist()) for s in out)
     assert levelled <= 3
 
 
@@ -301,11 +309,9 @@ def test_seam_over_a_whole_string_run_and_the_next_string_is_still_levelled(rng)
     # (binomial n = 60, p = 0.99: P(X <= 56) = 0.3 %)
     found = 0
     for _ in range(60):
-        m, t = _rows(rng, per_string=6)
-        idx = _sel(m, 2, 4, 12)
-        t[idx] += rng.uniform(1.2, 2.5)
-        found += any(set(idx.tolist()) <= set(s.modules.tolist()) and s.reason == "strings"
-                     for s in seams.find_stretches(m, t))
+        rise = rng.uniform(1.2, 2.5)
+        run, neighbour, out = _string_run_beside_its_neighbour(rng, rise, rise)
+        found += any((run | neighbour) <= set(s.modules.tolist()) and s.reason == "strings" for s in out)
     assert found >= 57
 
 
