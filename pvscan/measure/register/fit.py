@@ -28,6 +28,8 @@ from collections.abc import Mapping
 from dataclasses import replace
 from typing import TYPE_CHECKING, Any
 
+import numpy as np
+
 from pvscan._typing import ProgressFn
 from pvscan.errors import RegistrationWarning
 from pvscan.io.layout.frames import FRAME_COLUMNS
@@ -58,7 +60,7 @@ from pvscan.measure.register._records import Registration, _moved_message, _num
 from pvscan.measure.register._turn import measure_rotation
 from pvscan.measure.register.estimate import estimate_shift
 from pvscan.measure.register.evidence import Placement, _compose, _inverse
-from pvscan.measure.register.local import check_reach, refine_rows, refine_tables
+from pvscan.measure.register.local import check_reach, refine_rows, refine_tables, take_modules
 from pvscan.measure.register.search import refine_placement
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -277,6 +279,11 @@ def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], su
         reg.message = ("the layout could not be placed on the modules of the ortho: footprints do not sit on glass "
                        f"(best probe ratios {_num(best.get('ratio_u')):.2f}, {_num(best.get('ratio_v')):.2f}; at most "
                        f"{lim:g} needed)")
+        off = (reg.evidence.get("local_rescue") or {}).get("tables_off_glass")
+        if off:
+            reg.message += (f"; refined table by table, {len(off)} table(s) still off glass ("
+                            f"{reg.evidence['local_rescue']['off_glass_share']:.0%} of the sampled modules: "
+                            f"{', '.join(off[:5])}{' ...' if len(off) > 5 else ''})")
         _no_move(reg)
     if q_c is not None:
         reg.evidence["chosen"] = q_c
@@ -352,9 +359,34 @@ def _rescue_locally(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, c
         return None
     pl = Placement(p0.tx, p0.ty, p0.theta_deg, p0.scale, p0.cx, p0.cy,
                    tables=tuple((str(k), float(v[0]), float(v[1])) for k, v in lf.shifts.items()))
-    q = _judge(_sample_at(orthos, modules, pl, cfg), ident, cfg, sun, expected_c)
-    reg.evidence["local_rescue"] = {**q, "tables_refined": int(lf.summary().get("tables_refined", 0))}
-    return (pl, q) if q["ok"] else None
+    sample = _sample_at(orthos, modules, pl, cfg)
+    q = _judge(sample, ident, cfg, sun, expected_c)
+    rec = reg.evidence["local_rescue"] = {**q, "tables_refined": int(lf.summary().get("tables_refined", 0))}
+    if not q["ok"]:
+        return None
+    # the tables the refinement could not move onto glass stay where the global fit, off
+    # glass, put them: the site's mean can pass with a third of the tables off their modules
+    off, share = _tables_off_glass(sample, ident, cfg, sun, expected_c)
+    rec.update(tables_off_glass=off, off_glass_share=round(share, 4))
+    return (pl, q) if share <= float(cfg["rescue_max_off_glass_share"]) else None
+
+
+def _tables_off_glass(sample: Any, placement: Placement, cfg: Mapping[str, Any], sun: tuple[float, ...] | None,
+                      expected_c: float | None) -> tuple[list[str], float]:
+    """The tables whose own sampled modules (at least ``rescue_table_min_modules``) fail the
+    glass test of :func:`_judge`, and the share of the sampled modules they hold [-]."""
+    tables = np.asarray(sample.table).astype(str)
+    if len(tables) == 0:
+        return [], 0.0
+    off, n_off = [], 0
+    for t in np.unique(tables):
+        sel = np.flatnonzero(tables == t)
+        if len(sel) < int(cfg["rescue_table_min_modules"]):
+            continue
+        if not _judge(take_modules(sample, sel), placement, cfg, sun, expected_c)["ok"]:
+            off.append(str(t))
+            n_off += len(sel)
+    return off, n_off / len(tables)
 
 
 def _refine_locally(orthos: Any, modules: gpd.GeoDataFrame, reg: Registration, cfg: Mapping[str, Any],

@@ -50,7 +50,7 @@ from pvscan.measure.register.evidence import (
 )
 from pvscan.measure.register.search import FINEST_STEP_SHARE, group_evidence, refine_translations
 
-__all__ = ["LocalFit", "refine_tables", "refine_rows", "table_offsets", "row_offsets", "check_reach"]
+__all__ = ["LocalFit", "refine_tables", "refine_rows", "table_offsets", "row_offsets", "check_reach", "take_modules"]
 
 #: Separator of a row's key ``table_id`` + SEP + ``table_row`` (a character no id holds).
 _SEP = "\x1f"
@@ -120,7 +120,7 @@ def _r(v: float) -> float | None:
     return round(float(v), 4) if math.isfinite(v) else None
 
 
-def _take(sample: ModuleSample, sel: np.ndarray) -> ModuleSample:
+def take_modules(sample: ModuleSample, sel: np.ndarray) -> ModuleSample:
     """The sampled modules ``sel`` (boolean or index array) as a sample of their own."""
     assert sample.centred is not None
     centred = sample.centred[sel]
@@ -307,7 +307,8 @@ def _refine_groups(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any
             # an outlier: kept only when its own modules decisively prefer it to what its
             # neighbours say; else it takes the neighbours' correction if that helps it
             at_nb = ident.moved(tx=float(med[0]), ty=float(med[1]))
-            e_nb = evidence(module_spread(_take(sample, groups[r["table_id"]]), at_nb, inset_u=inset, inset_v=inset))
+            e_nb = evidence(module_spread(take_modules(sample, groups[r["table_id"]]), at_nb, inset_u=inset,
+                                          inset_v=inset))
             if math.isfinite(e_nb) and r["evidence_after"] < (1.0 - gate) * e_nb:
                 continue
             if math.isfinite(e_nb) and e_nb < (1.0 - gate) * r["evidence_before"] and math.hypot(*med) >= min_m:
