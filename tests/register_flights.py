@@ -105,18 +105,20 @@ def sun(fl: Any, mods: gpd.GeoDataFrame, *, at_start: bool = False) -> Any:
     return sun_vector(c.x, c.y, when)
 
 
-def register_whole(d: Path, *, sun_at_start: bool = False) -> tuple[Any, gpd.GeoDataFrame, Any, float, dict]:
-    """The whole registration of the flight in ``d`` with the default pipeline settings:
-    (flight, layout modules, registration, median module error of the placement used [m],
-    registration check)."""
+def register_whole(d: Path, *, sun_at_start: bool = False,
+                   register: dict | None = None) -> tuple[Any, gpd.GeoDataFrame, Any, float, dict]:
+    """The whole registration of the flight in ``d`` with the default pipeline settings (the
+    ``[register]`` keys of ``register`` over them): (flight, layout modules, registration, median
+    module error of the placement used [m], registration check)."""
     st = load_pipeline()
+    reg_settings = {"register": {**st["register"], **register}} if register else st
     fl = load_flight(d / "flight.toml")
     with open_orthos(fl.flight.orthos, fl.ortho) as o:
         mods = read_layout(fl, o.crs)
-        reg = register_layout(o, mods, st, sun=sun(fl, mods, at_start=sun_at_start),
+        reg = register_layout(o, mods, reg_settings, sun=sun(fl, mods, at_start=sun_at_start),
                               expected_apparent_c=expected_module_apparent_c(fl, st, strict=False))
     err = median_error_m(d, apply_placement(mods, reg.placement if reg.applied else None))
-    return fl, mods, reg, err, registration_check(reg, st)
+    return fl, mods, reg, err, registration_check(reg, reg_settings)
 
 
 def assert_pitch_rule_right(d: Path, rule: str, default_run: bool) -> None:
