@@ -214,11 +214,19 @@ def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], su
         turned = (_turned(modules, _distinct([_placement_of(q0, centre) for q0 in first], bounds, tol), cfg)
                   if chosen is None else [])
         red = _reduce_for(orthos, cfg)
-        for alt in _screen_turned(turned, cfg, lambda p: _sample_at(orthos, modules, p, cfg, reduce=red))[
-                :int(cfg["retry_turn_max_fits"])]:
-            consider(alt)
-            if chosen is not None:
-                break
+
+        def fit_screened(starts: list[Placement], most: int) -> int:
+            """Fit the most promising ``most`` of ``starts`` (one cheap look each), best first,
+            until one is chosen; returns how many were fitted."""
+            n = 0
+            for alt in _screen_turned(starts, cfg, lambda p: _sample_at(orthos, modules, p, cfg, reduce=red))[:most]:
+                consider(alt)
+                n += 1
+                if chosen is not None:
+                    break
+            return n
+
+        fit_screened(turned, int(cfg["retry_turn_max_fits"]))
         # a raised table's shadow as wide as the table: the blocks matched the table's outline
         # to its shadow's, whole module pitches across the rows away from the sun; every
         # proposal so far moved back toward the sun is looked at cheaply and at most
@@ -228,13 +236,7 @@ def _register(orthos: Any, modules: gpd.GeoDataFrame, cfg: Mapping[str, Any], su
         reach = float(cfg["retry_turn_fraction"]) * _pitch_m(modules, "across")
         across = (_distinct(_across(modules, _distinct(tried, bounds, tol), lim_m, sun), bounds,
                             reach if math.isfinite(reach) else tol) if chosen is None else [])
-        fitted_across = 0
-        for alt in _screen_turned(across, cfg, lambda p: _sample_at(orthos, modules, p, cfg, reduce=red))[
-                :int(cfg["retry_across_max_fits"])]:
-            consider(alt)
-            fitted_across += 1
-            if chosen is not None:
-                break
+        fitted_across = fit_screened(across, int(cfg["retry_across_max_fits"]))
         if across:
             reg.evidence["across_starts"] = {"starts": len(across), "fitted": fitted_across,
                                              "placed": chosen is not None}
