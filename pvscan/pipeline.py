@@ -279,7 +279,7 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
 
     ``overview_px``: also make the report's ortho overview of that longest side [px]
     (``[report] overview_max_px``) from the blocks the zonal statistics read
-    (:class:`pvscan.io.ortho.OverviewSampler`: the same image as a decimated read of the
+    (:class:`pvscan.io.ortho_overview.OverviewSampler`: the same image as a decimated read of the
     ortho, without decoding those blocks again); in this process only (``scheduler`` None).
 
     Returns
@@ -288,7 +288,8 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
     """
     from pvscan.errors import RegistrationError
     from pvscan.io.layout import read_layout
-    from pvscan.io.ortho import OverviewSampler, open_orthos
+    from pvscan.io.ortho import open_orthos
+    from pvscan.io.ortho_overview import OverviewSampler, finish_overview_ahead
     from pvscan.measure import register, zonal
     from pvscan.measure import validity as val_mod
     from pvscan.measure.conditions import conditions_for_flight
@@ -333,7 +334,7 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         sampler = OverviewSampler(orthos, overview_px) if overview_px and scheduler is None else None
         stats_app = zonal.zonal_stats(orthos, measured, flight.module, settings["zonal"], progress=progress,
                                       scheduler=scheduler, overview=sampler)
-        overview = _finish_overview(sampler, orthos)
+        overview = finish_overview_ahead(sampler, orthos)
         _record(timings, "zonal", t0)
         orthos_info = OrthoInfo(files=[str(t.path) for t in orthos.tiles], crs=orthos.crs.to_string(),
                                 gsd_m=float(orthos.gsd_m), tiles=len(orthos.tiles))
@@ -377,27 +378,6 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
                        validity=validity, orthos_info=orthos_info, radiometry=params,
                        seams=SeamLevelling(stretches=stretches, offsets_k=seam_offsets, enabled=levelling),
                        overview=overview)
-
-
-def _finish_overview(sampler: Any, orthos: Any) -> Any:
-    """The report's overview from an :class:`~pvscan.io.ortho.OverviewSampler` the zonal
-    pass filled, its remaining pixels read on a thread of its own (with its own file handles:
-    the flight's are closed meanwhile) while the diagnosis runs; None without a usable one."""
-    if sampler is None or not sampler.usable:
-        return None
-    from concurrent.futures import ThreadPoolExecutor
-
-    from pvscan.report._raster import OverviewDone
-
-    def finish() -> tuple[np.ndarray, Any]:
-        with orthos.reader() as read:
-            return sampler.finish(read)
-
-    pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="pvscan-overview")
-    try:
-        return OverviewDone(orthos.tiles, sampler.max_px, pool.submit(finish))
-    finally:
-        pool.shutdown(wait=False)  # the thread ends with its one task
 
 
 #: String-level patterns: they follow a string from its negative end, so they need string ids.

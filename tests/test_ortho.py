@@ -336,7 +336,7 @@ def test_nearest_source_index_is_gdals_decimation(write_tif, rng):
     ``nearest_source_index`` names, on both axes, for random raster and output sizes."""
     from rasterio.enums import Resampling
 
-    from pvscan.io.ortho import nearest_source_index
+    from pvscan.io.ortho_overview import nearest_source_index
 
     for k in range(12):
         h, w = int(rng.integers(20, 400)), int(rng.integers(20, 400))
@@ -350,7 +350,7 @@ def test_nearest_source_index_is_gdals_decimation(write_tif, rng):
 
 
 def _sampler_mosaic(o, max_px, windows):
-    from pvscan.io.ortho import OverviewSampler
+    from pvscan.io.ortho_overview import OverviewSampler
 
     s = OverviewSampler(o, max_px)
     for tile, win in windows:

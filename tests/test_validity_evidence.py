@@ -92,7 +92,7 @@ def _rows_layout(n_rows=12, per_row=22):
 
 
 def _clusters(modules, defect):
-    from pvscan.diagnose.classify import _row_clusters
+    from pvscan.diagnose.row_evidence import row_clusters as _row_clusters
 
     cfg = load_pipeline()["classify"]
     return _row_clusters(modules, np.asarray(defect, dtype=object), np.ones(len(modules), bool), cfg)

@@ -47,7 +47,8 @@ from affine import Affine
 from rasterio.windows import Window
 
 from pvscan.io.layout import FRAME_COLUMNS
-from pvscan.io.ortho import OrthoSet, OverviewSampler, Tile
+from pvscan.io.ortho import OrthoSet, Tile
+from pvscan.io.ortho_overview import OverviewSampler
 from pvscan.io.settings import section
 from pvscan.measure._memory import release_freed_memory
 from pvscan.measure.zonal_window import _BlockResult, _frame_corners, _measure, measure_window
@@ -317,7 +318,7 @@ def zonal_stats(
     prefetch : bool
         One worker only: read the next block on a helper thread while the current one
         is reduced.
-    overview : pvscan.io.ortho.OverviewSampler, optional
+    overview : pvscan.io.ortho_overview.OverviewSampler, optional
         Keeps the report's decimated overview pixels of every block read (this process's
         loops only; not with ``scheduler``), so the overview needs no second decoding of
         those blocks.

@@ -153,7 +153,7 @@ def _with_extent(arr: np.ndarray, t: Any) -> tuple[np.ndarray, Extent]:
 
 class OverviewDone:
     """The report's overview made beforehand (by the pipeline, from the blocks the zonal
-    statistics read: :class:`pvscan.io.ortho.OverviewSampler`), handed over like
+    statistics read: :class:`pvscan.io.ortho_overview.OverviewSampler`), handed over like
     :class:`OverviewRead`: only for the same tiles (files, grids, value conversions) and size.
 
     Parameters
