@@ -281,6 +281,10 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
                             lo_end = 0
                         if 0 < len(idx) - b <= n_end and bool((F.ok[idx[b:]] & (d_o[idx[b:]] > lim)).all()):
                             hi_end = len(idx)
+                    if _raised_to_the_row_end(F, cfg, z, idx[:a], b - a):
+                        lo_end = 0
+                    if _raised_to_the_row_end(F, cfg, z, idx[b:], b - a):
+                        hi_end = len(idx)
                 # the end modules taken in are less clear (a healthy module is above
                 # open_string_end_z now and then): when the run with them fails a check of
                 # the whole run, the established run is judged alone. The checks against the
@@ -301,6 +305,29 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
                     out.append([int(i) for i in run])
                     break
     return out
+
+
+def _raised_to_the_row_end(F: Features, cfg: Mapping, z: np.ndarray, tail: np.ndarray, n_run: int) -> bool:
+    """True when every module from a run to its table row's end is raised: the same open row.
+
+    Along a table row standing in for unknown strings, a run that stops short of the row's
+    end while the raise goes on, module after module, to that end is an open row whose end
+    lies under an image artefact (a mosaic seam, a cloud shadow's edge) that spoils the
+    candidates' uniformity there, not a seam that carries on past an open string: no module of
+    an open string carries current (IEC TS 62446-3, from memory), and a seam does not stop at
+    a row's end. The tail (``tail``, modules in row order, at least one) counts when it is
+    no longer than the run (``n_run`` modules: the established run is most of the row), every
+    module of it is classified and raised by at least ``open_string_candidate_z`` robust
+    standard deviations over modules outside the row, and its median raise is at least
+    ``open_string_ratio_min`` of its median open-module rise (the run's own bar).
+    """
+    if tail.size == 0 or tail.size > n_run:
+        return False
+    d_o = F.extra["d_other"][tail]
+    with np.errstate(invalid="ignore"):
+        raised = F.ok[tail] & (z[tail] >= float(cfg["open_string_candidate_z"]))
+        level = float(np.nanmedian(d_o) / np.nanmedian(F.rise[tail]))
+    return bool(raised.all()) and level >= float(cfg["open_string_ratio_min"])
 
 
 def _raised_over_other_row_throughout(F: Features, cfg: Mapping, run: np.ndarray) -> bool:
