@@ -1158,7 +1158,8 @@ def test_open_string_of_a_whole_table_row_with_a_cooler_end_module(rng):
     # part (common practice), a graded raise from 1.4 x the rise at its inner edge down to none:
     # not uniform enough for a candidate by itself, yet raised by 0.7 of the run on its median.
     # The row is one open string over all its modules; without [classify]
-    # open_string_row_end_modules the raised end module rejected the run as carrying on
+    # open_string_row_end_modules (and open_string_row_tail_share, which also takes in a raised
+    # rest of the row) the raised end module rejected the run as carrying on
     p = Plant(rng, strings=None)
     m = p.modules
     row = np.flatnonzero(((m.table_id == "T0-1") & (m.table_row == 1)).to_numpy())
@@ -1173,7 +1174,7 @@ def test_open_string_of_a_whole_table_row_with_a_cooler_end_module(rng):
     got = an[an.defect == "open_string"]
     assert len(got) == 1, an[["module_id", "defect"]]
     assert sorted(int(i) for i in got.iloc[0]["module_indices"]) == sorted(int(i) for i in row)
-    an0, _ = p.run(settings=_with(open_string_row_end_modules=0))
+    an0, _ = p.run(settings=_with(open_string_row_end_modules=0, open_string_row_tail_share=0.0))
     assert "open_string" not in set(an0.defect)
 
 

@@ -316,12 +316,13 @@ def _raised_to_the_row_end(F: Features, cfg: Mapping, z: np.ndarray, tail: np.nd
     candidates' uniformity there, not a seam that carries on past an open string: no module of
     an open string carries current (IEC TS 62446-3, from memory), and a seam does not stop at
     a row's end. The tail (``tail``, modules in row order, at least one) counts when it is
-    no longer than the run (``n_run`` modules: the established run is most of the row), every
+    at most ``open_string_row_tail_share`` of the run's length (``n_run`` modules: the
+    established run is most of the row), every
     module of it is classified and raised by at least ``open_string_candidate_z`` robust
     standard deviations over modules outside the row, and its median raise is at least
     ``open_string_ratio_min`` of its median open-module rise (the run's own bar).
     """
-    if tail.size == 0 or tail.size > n_run:
+    if tail.size == 0 or tail.size > float(cfg["open_string_row_tail_share"]) * n_run:
         return False
     d_o = F.extra["d_other"][tail]
     with np.errstate(invalid="ignore"):
