@@ -251,10 +251,9 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
             # string ends, not a dip in an open one (all of whose modules carry no current)
             with np.errstate(invalid="ignore"):
                 c &= cand[idx] | (z[idx] >= float(cfg["open_string_end_z"]))
-        for a, b in _runs(c):
+        long_runs = [(a, b) for a, b in _runs(c) if b - a >= min_len]
+        for a, b in long_runs:
             run = idx[a:b]
-            if b - a < min_len:
-                continue
             zc = float(np.nansum(z[run]) / np.sqrt(len(run)))
             ratio = float(np.nanmedian(d_o[run]) / np.nanmedian(r[run]))
             if zc >= float(cfg["open_string_run_z"]) and ratio >= float(cfg["open_string_ratio_min"]):
@@ -281,9 +280,10 @@ def pattern_open_string(F: Features, cfg: Mapping, groups: np.ndarray, pos: np.n
                             lo_end = 0
                         if 0 < len(idx) - b <= n_end and bool((F.ok[idx[b:]] & (d_o[idx[b:]] > lim)).all()):
                             hi_end = len(idx)
-                    if _raised_to_the_row_end(F, cfg, z, idx[:a], b - a):
+                    # (the rest of the row holding no other run, which is judged by itself)
+                    if a == long_runs[0][0] and _raised_to_the_row_end(F, cfg, z, idx[:a], b - a):
                         lo_end = 0
-                    if _raised_to_the_row_end(F, cfg, z, idx[b:], b - a):
+                    if b == long_runs[-1][1] and _raised_to_the_row_end(F, cfg, z, idx[b:], b - a):
                         hi_end = len(idx)
                 # the end modules taken in are less clear (a healthy module is above
                 # open_string_end_z now and then): when the run with them fails a check of
