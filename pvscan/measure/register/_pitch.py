@@ -236,6 +236,11 @@ class _Verdict:
             return False
         return not (self.decisive or self.confirmed) or not self.ends["decisive"]
 
+    def votes(self) -> dict[str, Any]:
+        """The lowest evidence ratio one pitch away, table-end and glass votes (``evidence.pitch.switch``)."""
+        return {"lowest_ratio": round(self.low, 4) if math.isfinite(self.low) else None,
+                "ends_lowest": self.ends.get("lowest"), "glass_lowest": (self.ends.get("glass") or {}).get("lowest")}
+
     def record(self, cfg: Mapping[str, Any]) -> dict[str, Any]:
         """The decision as ``evidence.pitch`` (summary.json) records it."""
         low, gap, gp = self.low, self.gap, self.gap_pitch
@@ -405,6 +410,10 @@ def _switch(orthos: Any, modules: gpd.GeoDataFrame, cur: Placement, q_cur: dict,
     Only when ``verdict`` is ambiguous: the alternative with the lowest evidence, if at most
     ``pitch_switch_ratio`` times the placement's and on glass, is put through the same decision
     (its own alternatives, the placement among them); it is used when that decision holds.
+    An alternative whose footprints read further from the expected apparent temperature of
+    sunlit glass than the placement's by more than ``pitch_switch_glass_k`` [K] is not tried
+    (``record["glass_error_k"]``): moved one module row across a table of tilted modules, half
+    its footprints sit beside the table, on ground as even as glass but not as warm.
     Returns (record, placement, quality, verdict) of the alternative tried (``record["used"]``
     says whether it is used), or None when none was tried."""
     e_cur = _num(q_cur["evidence"])
@@ -416,15 +425,17 @@ def _switch(orthos: Any, modules: gpd.GeoDataFrame, cur: Placement, q_cur: dict,
         return None
     k, v, q = min(cands, key=lambda t: _num(t[2]["evidence"]))
     alt = replace(cur, tx=cur.tx + float(v[0]), ty=cur.ty + float(v[1]))
+    rec = {"moved_m": [round(float(v[0]), 4), round(float(v[1]), 4)], "direction": dirs[k],
+           "ratio": round(_num(q["evidence"]) / e_cur, 4), "limit": lim, "used": False, "before": verdict.votes()}
+    g_cur, g_alt = abs(_num(q_cur.get("glass_error_k"))), abs(_num(q.get("glass_error_k")))
+    if math.isfinite(g_cur) and math.isfinite(g_alt) and g_alt - g_cur > float(cfg["pitch_switch_glass_k"]):
+        rec["glass_error_k"] = {"placement": round(g_cur, 3), "alternative": round(g_alt, 3),
+                                "limit": float(cfg["pitch_switch_glass_k"])}
+        return rec, alt, q, verdict
     # the placement itself is the alternative one pitch back: its quality is known
     back = [j for j, w in enumerate(steps) if np.allclose(w, -v)]
     alts2 = alternatives(alt, {back[0]: q_cur} if back else None)
     v2 = _pitch_verdict(orthos, modules, alt, q, alts2, dirs, steps, cfg, sun, correlation)
-    rec = {"moved_m": [round(float(v[0]), 4), round(float(v[1]), 4)], "direction": dirs[k],
-           "ratio": round(_num(q["evidence"]) / e_cur, 4), "limit": lim, "used": not v2.ambiguous,
-           "before": {"lowest_ratio": round(verdict.low, 4) if math.isfinite(verdict.low) else None,
-                      "ends_lowest": verdict.ends.get("lowest"),
-                      "glass_lowest": (verdict.ends.get("glass") or {}).get("lowest")},
-           "after": {"lowest_ratio": round(v2.low, 4) if math.isfinite(v2.low) else None,
-                     "ends_lowest": v2.ends.get("lowest"), "glass_lowest": (v2.ends.get("glass") or {}).get("lowest")}}
+    rec["used"] = not v2.ambiguous
+    rec["after"] = v2.votes()
     return rec, alt, q, v2
