@@ -294,6 +294,7 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
     from pvscan.measure import validity as val_mod
     from pvscan.measure.conditions import conditions_for_flight
     from pvscan.measure.plausibility import check_ortho_values
+    from pvscan.report._raster import OverviewDone
 
     timings = {} if timings is None else timings
     t0 = _clock()
@@ -334,7 +335,8 @@ def measure_flight(flight: Flight, settings: Pipeline, progress: ProgressFn | No
         sampler = OverviewSampler(orthos, overview_px) if overview_px and scheduler is None else None
         stats_app = zonal.zonal_stats(orthos, measured, flight.module, settings["zonal"], progress=progress,
                                       scheduler=scheduler, overview=sampler)
-        overview = finish_overview_ahead(sampler, orthos)
+        ahead = finish_overview_ahead(sampler, orthos)
+        overview = None if ahead is None or sampler is None else OverviewDone(orthos.tiles, sampler.max_px, ahead)
         _record(timings, "zonal", t0)
         orthos_info = OrthoInfo(files=[str(t.path) for t in orthos.tiles], crs=orthos.crs.to_string(),
                                 gsd_m=float(orthos.gsd_m), tiles=len(orthos.tiles))

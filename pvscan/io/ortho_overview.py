@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import threading
 from collections.abc import Callable
+from concurrent.futures import Future, ThreadPoolExecutor
 from typing import Any
 
 import numpy as np
@@ -117,22 +118,20 @@ class OverviewSampler:
         return _compose_overview(self.shape, self.parts, self.orthos.tiles, self._data), self.transform
 
 
-def finish_overview_ahead(sampler: OverviewSampler | None, orthos: OrthoSet) -> Any:
-    """The report's overview from an :class:`OverviewSampler` the zonal
-    pass filled, its remaining pixels read on a thread of its own (with its own file handles:
-    the flight's are closed meanwhile) while the diagnosis runs; None without a usable one."""
+def finish_overview_ahead(sampler: OverviewSampler | None, orthos: OrthoSet) -> Future | None:
+    """The rest of an :class:`OverviewSampler` the zonal pass filled, read on a thread of its
+    own (with its own file handles: the flight's are closed meanwhile) while the diagnosis
+    runs: a future of :meth:`OverviewSampler.finish`'s (mosaic, transform); None without a
+    usable sampler."""
     if sampler is None or not sampler.usable:
         return None
-    from concurrent.futures import ThreadPoolExecutor
 
-    from pvscan.report._raster import OverviewDone
-
-    def finish() -> tuple[np.ndarray, Any]:
+    def finish() -> tuple[np.ndarray, Affine]:
         with orthos.reader() as read:
             return sampler.finish(read)
 
     pool = ThreadPoolExecutor(max_workers=1, thread_name_prefix="pvscan-overview")
     try:
-        return OverviewDone(orthos.tiles, sampler.max_px, pool.submit(finish))
+        return pool.submit(finish)
     finally:
         pool.shutdown(wait=False)  # the thread ends with its one task
